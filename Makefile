@@ -1,0 +1,39 @@
+# Skydrift developer entry points. `make serve` and `make test` work on a fresh machine
+# with Python 3.11+ and make: they create .venv and install the project first.
+
+PYTHON ?= python3
+VENV   ?= .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed-stamp
+
+.PHONY: venv serve test lint openapi bench demo clean
+
+venv: $(STAMP)
+
+$(STAMP): pyproject.toml
+	@test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[dev]'
+	@touch $(STAMP)
+
+serve: venv
+	$(BIN)/gunicorn --config deploy/gunicorn.conf.py service.wsgi:app
+
+lint: venv
+	$(BIN)/ruff check service tests benchmarks deploy
+	$(BIN)/ruff format --check service tests benchmarks deploy
+
+test: lint
+	$(BIN)/python -m pytest -q
+
+openapi: venv
+	$(BIN)/skydrift openapi --output openapi/openapi.json
+
+bench: venv
+	$(BIN)/python -m benchmarks.run
+
+demo: venv
+	$(BIN)/python -m shared.demo.run
+
+clean:
+	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .hypothesis

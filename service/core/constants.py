@@ -1,0 +1,58 @@
+"""Physical and astronomical constants used by the core, each with unit and source.
+
+Every constant the core uses lives here, named with its unit (and its source where more
+than one value is in circulation).
+"""
+
+import math
+
+#: Astronomical unit, metres (exact; IAU 2012 Resolution B2).
+AU_M = 149_597_870_700.0
+
+#: Julian year, days (exact by definition; IAU 1976 system, IAU 2006 Resolution B3 use).
+JULIAN_YEAR_DAYS = 365.25
+
+#: Day, seconds (SI; exact).
+DAY_S = 86_400.0
+
+#: Julian year, seconds (exact: 365.25 d x 86400 s).
+JULIAN_YEAR_S = JULIAN_YEAR_DAYS * DAY_S
+
+#: One astronomical unit per Julian year expressed in km/s: the transverse-velocity factor
+#: ``A`` of the Hipparcos Catalogue (ESA 1997, Vol. 1, section 1.5.5, Table 1.2.2 quotes the
+#: rounded 4.74047). Derived here from the exact IAU 2012 au: 4.740470463533348 km/s.
+AU_PER_JULIAN_YEAR_KM_S = AU_M / 1000.0 / JULIAN_YEAR_S
+
+#: Parsec, astronomical units (IAU 2015 Resolution B2: 648000/pi au, exact).
+PC_AU = 648_000.0 / math.pi
+
+#: Parsec, kilometres (derived from the two exact values above).
+PC_KM = PC_AU * AU_M / 1000.0
+
+#: Speed of light, km/s (SI, exact).
+C_KM_S = 299_792.458
+
+#: Speed of light, au per Julian year (derived from exact values).
+C_AU_PER_JULIAN_YEAR = C_KM_S / AU_PER_JULIAN_YEAR_KM_S
+
+#: Julian date of the epoch J2000.0, TT (IAU 1976 / IAU 2006 definition: 2000 January 1.5 TT).
+JD_J2000 = 2_451_545.0
+
+#: Offset between Julian date and modified Julian date, days (MJD = JD - 2400000.5).
+MJD_ZERO_JD = 2_400_000.5
+
+#: Besselian epoch origin B1900.0 as a Julian date and the length of the tropical year in
+#: days, as used by SOFA/ERFA epb2jd/epb (Lieske 1979, A&A 73, 282).
+JD_B1900 = 2_415_020.313_52
+TROPICAL_YEAR_DAYS_LIESKE1979 = 365.242_198_781
+
+#: Milliarcseconds per radian, and degrees <-> radians, spelled out for readability.
+MAS_PER_RAD = 180.0 / math.pi * 3_600_000.0
+ARCSEC_PER_RAD = 180.0 / math.pi * 3_600.0
+DEG_PER_RAD = 180.0 / math.pi
+RAD_PER_DEG = math.pi / 180.0
+
+#: Total proper motion above which an input is implausible, mas/yr. The largest known
+#: stellar proper motion is about 10.4 arcsec/yr (common practice, from memory); a larger
+#: value usually means a unit mistake (e.g. arcsec given as mas, or RA motion without cos dec).
+IMPLAUSIBLE_PROPER_MOTION_MAS_YR = 10_400.0
