@@ -1391,3 +1391,454 @@ def boundary_crossings(
         count=np.bincount(star, minlength=n),
         flags=flags.astype(np.uint16),
     )
+
+
+# ---------------------------------------------------------------------------------------
+# Outlines
+# ---------------------------------------------------------------------------------------
+
+#: Initial spacing of outline vertices along each boundary arc, degrees.
+OUTLINE_INITIAL_SPACING_DEG = 0.25
+#: Default largest distance (arcsec) between the true transformed boundary and the
+#: straight line between consecutive outline vertices in (longitude, latitude).
+DEFAULT_OUTLINE_TOLERANCE_ARCSEC = 0.05
+#: Limit on halvings of an outline edge (2**-20 of 0.25 degrees is below 1 mas).
+_OUTLINE_MAX_HALVINGS = 20
+
+
+def _edge_table():
+    """Elementary boundary edges: kind, j, i, side-a, side-b (see _elementary_edges)."""
+    (hj, hi, hs, hn), (vj, vi, vw, ve) = _elementary_edges()
+    kind = np.concatenate([np.zeros(hj.size, np.int8), np.ones(vj.size, np.int8)])
+    return (
+        kind,
+        np.concatenate([hj, vj]),
+        np.concatenate([hi, vi]),
+        np.concatenate([hs, vw]),
+        np.concatenate([hn, ve]),
+    )
+
+
+@functools.cache
+def _rings(x: int) -> tuple:
+    """Closed rings of directed elementary edges around constellation ``x``.
+
+    Each ring is a tuple of (edge id, forward) with the constellation on the left of the
+    direction of travel in the (RA, Dec) plane (RA increasing to the east).
+    """
+    table = boundary_table()
+    nr = table.ra_edges_h.size - 1
+    kind, ej, ei, side_a, side_b = _edge_table()
+    outgoing: dict = {}
+    for e in np.flatnonzero((side_a == x) | (side_b == x)):
+        j, i = int(ej[e]), int(ei[e])
+        if kind[e] == 0:  # constant Dec at dec_edges[j], RA from ra_edges[i] to [i+1]
+            a, b = (i % nr, j), ((i + 1) % nr, j)
+            forward = side_b[e] == x  # north side is x: walk east
+        else:  # constant RA at ra_edges[i], Dec from dec_edges[j] to [j+1]
+            a, b = (i % nr, j), (i % nr, j + 1)
+            forward = side_a[e] == x  # west side is x: walk north
+        start, end = (a, b) if forward else (b, a)
+        outgoing.setdefault(start, []).append((int(e), bool(forward), end))
+    rings = []
+    while outgoing:
+        node = next(iter(outgoing))
+        ring = []
+        first = node
+        while True:
+            e, forward, end = outgoing[node].pop()
+            if not outgoing[node]:
+                del outgoing[node]
+            ring.append((e, forward))
+            node = end
+            if node == first and node not in outgoing:
+                break
+            if node == first and ring:
+                break
+        rings.append(tuple(ring))
+    return tuple(rings)
+
+
+def _edge_points_b1875(edge_ids, t):
+    """B1875.0 unit vectors at parameter t in [0, 1] along elementary edges."""
+    table = boundary_table()
+    kind, ej, ei, _a, _b = _edge_table()
+    ra_e = table.ra_edges_h * 15.0
+    dec_e = table.dec_edges_deg
+    k, j, i = kind[edge_ids], ej[edge_ids], ei[edge_ids]
+    ra = np.where(k == 0, ra_e[i] + t * (ra_e[np.minimum(i + 1, ra_e.size - 1)] - ra_e[i]), ra_e[i])
+    dec = np.where(
+        k == 0, dec_e[j], dec_e[j] + t * (dec_e[np.minimum(j + 1, dec_e.size - 1)] - dec_e[j])
+    )
+    return _unit_vectors(ra, dec)
+
+
+def _frame_from_icrs(frame: str, equinox):
+    """Function mapping ICRS unit vectors (N, 3) to (lon_deg, lat_deg) in ``frame``."""
+    if frame == "icrs":
+        return _angles_deg
+    if frame == "galactic":
+
+        def to_galactic(vec):
+            ra, dec = _angles_deg(vec)
+            lon, lat = erfa.icrs2g(ra * RAD_PER_DEG, dec * RAD_PER_DEG)
+            return np.mod(lon * DEG_PER_RAD, 360.0), lat * DEG_PER_RAD
+
+        return to_galactic
+    if frame == "fk5":
+        m = _fk5_rotation(float(2000.0 if equinox is None else equinox))
+        return lambda vec: _angles_deg(_apply(m, vec))
+    if frame == "fk4":
+        eq = float(1950.0 if equinox is None else equinox)
+        m = _fk4_rotation(eq, eq)
+        e_terms = _fk4_e_terms(eq)
+        return lambda vec: _angles_deg(_add_e_terms(_apply(m, vec), e_terms))
+    raise ValueError(f"frame must be one of {OUTLINE_FRAMES}, not {frame!r}")
+
+
+def _wrap180(x):
+    return (x + 180.0) % 360.0 - 180.0
+
+
+def _densify(edge_ids, project, tolerance_arcsec):
+    """Vertices along each edge, refined until chords in (lon, lat) follow the boundary.
+
+    Returns a dict edge id -> (t, lon_deg, lat_deg) arrays sorted by t. The vertices of an
+    edge depend only on the edge and the frame, so neighbouring outlines share them.
+    """
+    table = boundary_table()
+    kind, ej, ei, _a, _b = _edge_table()
+    ra_e = table.ra_edges_h * 15.0
+    dec_e = table.dec_edges_deg
+    k, j, i = kind[edge_ids], ej[edge_ids], ei[edge_ids]
+    length = np.where(
+        k == 0,
+        (ra_e[np.minimum(i + 1, ra_e.size - 1)] - ra_e[i]) * np.cos(dec_e[j] * RAD_PER_DEG),
+        dec_e[np.minimum(j + 1, dec_e.size - 1)] - dec_e[j],
+    )
+    nseg = np.maximum(1, np.ceil(np.abs(length) / OUTLINE_INITIAL_SPACING_DEG)).astype(int)
+    eid = np.repeat(edge_ids, nseg + 1)
+    t = np.concatenate([np.linspace(0.0, 1.0, m + 1) for m in nseg])
+
+    lon, lat = project(_edge_points_b1875(eid, t))
+    tol_rad = tolerance_arcsec / ARCSEC_PER_RAD
+    for _ in range(_OUTLINE_MAX_HALVINGS):
+        same = eid[1:] == eid[:-1]
+        pair = np.flatnonzero(same)
+        tm = 0.5 * (t[pair] + t[pair + 1])
+        lon_m, lat_m = project(_edge_points_b1875(eid[pair], tm))
+        chord_lon = lon[pair] + 0.5 * _wrap180(lon[pair + 1] - lon[pair])
+        chord_lat = 0.5 * (lat[pair] + lat[pair + 1])
+        err = _gc_distance(
+            chord_lon * RAD_PER_DEG,
+            chord_lat * RAD_PER_DEG,
+            lon_m * RAD_PER_DEG,
+            lat_m * RAD_PER_DEG,
+        )
+        bad = err > tol_rad
+        if not np.any(bad):
+            break
+        eid = np.concatenate([eid, eid[pair[bad]]])
+        t = np.concatenate([t, tm[bad]])
+        lon = np.concatenate([lon, lon_m[bad]])
+        lat = np.concatenate([lat, lat_m[bad]])
+        order = np.lexsort((t, eid))
+        eid, t, lon, lat = eid[order], t[order], lon[order], lat[order]
+    out = {}
+    bounds = np.flatnonzero(np.diff(eid)) + 1
+    for chunk in np.split(np.arange(eid.size), bounds):
+        out[int(eid[chunk[0]])] = (t[chunk], lon[chunk], lat[chunk])
+    return out
+
+
+def _signed_area(x, y):
+    return 0.5 * float(np.sum(x * np.roll(y, -1) - np.roll(x, -1) * y))
+
+
+def _split_vertical(poly, cut_x):
+    """Split a simple planar polygon (M, 2) by the line x = cut_x.
+
+    Returns (pieces west of the line, pieces east of it), each a list of (K, 2) arrays.
+
+    Notes
+    -----
+    1. Crossing points are paired along the cut line in order of y (the polygon's interior
+       on the line is the union of those intervals); each side's pieces are traced by
+       following that side's boundary chains and jumping along the cut between partners.
+    """
+    east = poly[:, 0] >= cut_x
+    if east.all():
+        return [], [poly]
+    if not east.any():
+        return [poly], []
+    m = poly.shape[0]
+    verts, tags = [], []  # tag: -1 ordinary vertex, else crossing number
+    crossings = []
+    for a in range(m):
+        b = (a + 1) % m
+        verts.append(poly[a])
+        tags.append(-1)
+        if east[a] != east[b]:
+            (x0, y0), (x1, y1) = poly[a], poly[b]
+            f = (cut_x - x0) / (x1 - x0)
+            q = np.array([cut_x, y0 + f * (y1 - y0)])
+            verts.append(q)
+            tags.append(len(crossings))
+            crossings.append(q[1])
+    verts = np.array(verts)
+    tags = np.array(tags)
+    order = np.argsort(np.array(crossings), kind="stable")
+    partner = np.empty(len(crossings), dtype=int)
+    partner[order[0::2]] = order[1::2]
+    partner[order[1::2]] = order[0::2]
+    pos_of = {int(c): int(p) for p, c in enumerate(tags) if c >= 0}
+    n = len(verts)
+    # chains: from each crossing to the next one along the ring (>= 1 vertex between)
+    chains = {}
+    for c, p in pos_of.items():
+        pts = [verts[p]]
+        k = (p + 1) % n
+        while tags[k] < 0:
+            pts.append(verts[k])
+            k = (k + 1) % n
+        pts.append(verts[k])
+        chains[c] = (pts, int(tags[k]), bool(pts[1][0] >= cut_x))
+    result = ([], [])
+    for want_east in (False, True):
+        unused = {c for c, ch in chains.items() if ch[2] is want_east}
+        while unused:
+            start = min(unused)
+            ring = []
+            c = start
+            while c in unused:
+                unused.discard(c)
+                pts, end_c, _ = chains[c]
+                ring.extend(pts)
+                c = int(partner[end_c])
+            result[int(want_east)].append(np.array(ring))
+    return result
+
+
+def _ring_pieces(lon, lat):
+    """GeoJSON rings (lists of [lon, lat], lon in -180..180) for one closed outline ring.
+
+    Notes
+    -----
+    1. Longitudes are unwrapped along the ring. A ring that winds once around a pole of
+       the frame (its region contains that pole: the north pole if it winds eastward, the
+       region being on the left) is closed along the pole's latitude line, as RFC 7946
+       section 3.1.9 suggests for shapes over a pole.
+    2. The planar polygon is then cut along lon = 180 + 360 k and each piece shifted into
+       -180..180 (RFC 7946 section 3.1.9, antimeridian cutting).
+    3. Exterior rings are counterclockwise (RFC 7946 section 3.1.6, right-hand rule).
+    """
+    lonu = lon[0] + np.concatenate([[0.0], np.cumsum(_wrap180(np.diff(lon)))])
+    closing = lonu[-1] + _wrap180(lon[0] - lon[-1])
+    winding = int(round((closing - lonu[0]) / 360.0))
+    xs, ys = list(lonu), list(lat)
+    if winding != 0:
+        pole = 90.0 if winding > 0 else -90.0
+        xs += [closing, closing, lonu[0]]
+        ys += [lat[0], pole, pole]
+    poly = np.column_stack([xs, ys])
+    lo, hi = poly[:, 0].min(), poly[:, 0].max()
+    pieces = [poly]
+    k0 = int(math.floor((lo - 180.0) / 360.0))
+    k1 = int(math.ceil((hi - 180.0) / 360.0))
+    for k in range(k0, k1 + 1):
+        cut = 180.0 + 360.0 * k
+        if not (lo < cut < hi):
+            continue
+        new = []
+        for piece in pieces:
+            west, east = _split_vertical(piece, cut)
+            new.extend(west)
+            new.extend(east)
+        pieces = new
+    out = []
+    for piece in pieces:
+        shift = 360.0 * math.floor((0.5 * (piece[:, 0].min() + piece[:, 0].max()) + 180.0) / 360.0)
+        x = np.clip(piece[:, 0] - shift, -180.0, 180.0)
+        y = piece[:, 1]
+        keep = np.ones(x.size, dtype=bool)
+        keep[1:] = (np.diff(x) != 0.0) | (np.diff(y) != 0.0)
+        x, y = x[keep], y[keep]
+        if x.size > 1 and x[0] == x[-1] and y[0] == y[-1]:
+            x, y = x[:-1], y[:-1]
+        if x.size < 3:
+            continue
+        if _signed_area(x, y) < 0.0:
+            x, y = x[::-1], y[::-1]
+        ring = np.column_stack([np.append(x, x[0]), np.append(y, y[0])])
+        out.append(ring)
+    return out
+
+
+def outline(
+    constellation,
+    *,
+    frame: str = "icrs",
+    equinox=None,
+    reduction: str = "fk4",
+    tolerance_arcsec: float = DEFAULT_OUTLINE_TOLERANCE_ARCSEC,
+) -> dict:
+    """Outline of one constellation as a GeoJSON Feature (RFC 7946).
+
+    Parameters
+    ----------
+    constellation : str or int
+        IAU abbreviation (case-insensitive) or index.
+    frame : {"icrs", "galactic", "fk5", "fk4", "b1875"}
+        Frame of the coordinates: ICRS; galactic (IAU 1958 via ICRS, ERFA ``icrs2g``); FK5
+        at a Julian ``equinox`` (default J2000.0, IAU 1976 precession); FK4 at a Besselian
+        ``equinox`` (default B1950.0, E-terms included, FK4 realised at the equinox
+        epoch); or the B1875.0 frame of the reduction itself.
+    equinox : float, optional
+        Julian (fk5) or Besselian (fk4) epoch of the equinox, years.
+    reduction : {"fk4", "fk5", "fk5_iau1976"}
+        Which B1875.0 frame the boundaries are taken to be drawn in (see
+        :func:`icrs_to_b1875`).
+    tolerance_arcsec : float
+        Largest distance between the transformed boundary and the straight (lon, lat)
+        lines joining the vertices, arcsec (Note 2).
+
+    Returns
+    -------
+    dict
+        GeoJSON Feature: geometry Polygon, or MultiPolygon when the constellation has two
+        parts (Serpens) or is cut at the antimeridian; longitudes in -180..180 and
+        latitudes in degrees; properties give the abbreviation, name, frame, equinox,
+        reduction and the solid angle in steradians and square degrees.
+
+    Notes
+    -----
+    1. The boundary is made of the table's arcs (constant RA or Dec at B1875.0), each
+       sampled and carried through the inverse reduction and into the frame.
+    2. Vertices are added (by halving) until the midpoint of every straight (lon, lat)
+       segment is within ``tolerance_arcsec`` of the true transformed arc, so the polygon
+       stays correct after transformation; the vertices of an arc depend only on the arc,
+       so neighbouring outlines share them and the 88 outlines tile the sphere.
+    3. Antimeridian and poles: see :func:`_ring_pieces`.
+    """
+    table = boundary_table()
+    x = (
+        constellation
+        if isinstance(constellation, int | np.integer)
+        else constellation_index(constellation)
+    )
+    x = int(x)
+    if frame not in OUTLINE_FRAMES:
+        raise ValueError(f"frame must be one of {OUTLINE_FRAMES}, not {frame!r}")
+    if reduction not in REDUCTIONS:
+        raise ValueError(f"reduction must be one of {REDUCTIONS}, not {reduction!r}")
+    if not (math.isfinite(tolerance_arcsec) and tolerance_arcsec > 0):
+        raise ValueError("tolerance_arcsec must be positive")
+    polygons = _outline_polygons([x], frame, equinox, reduction, tolerance_arcsec)[x]
+    if len(polygons) == 1:
+        geometry = {"type": "Polygon", "coordinates": polygons[0]}
+    else:
+        geometry = {"type": "MultiPolygon", "coordinates": polygons}
+    return {
+        "type": "Feature",
+        "geometry": geometry,
+        "properties": {
+            "abbreviation": table.abbreviations[x],
+            "name": table.names[x],
+            "frame": frame,
+            "equinox": _default_equinox(frame, equinox),
+            "reduction": reduction,
+            "area_sr": float(table.area_sr[x]),
+            "area_deg2": float(table.area_sr[x] * DEG_PER_RAD**2),
+        },
+    }
+
+
+def _default_equinox(frame, equinox):
+    if frame == "fk5":
+        return 2000.0 if equinox is None else float(equinox)
+    if frame == "fk4":
+        return 1950.0 if equinox is None else float(equinox)
+    if frame == "b1875":
+        return BOUNDARY_BESSELIAN_EPOCH
+    return None
+
+
+def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
+    """GeoJSON polygon coordinate lists (list of rings, each list of [lon, lat]) per index."""
+    if frame == "b1875":
+
+        def project(vec):
+            return _angles_deg(vec)
+
+    else:
+        to_lonlat = _frame_from_icrs(frame, equinox)
+
+        def project(vec):
+            return to_lonlat(b1875_to_icrs(vec, reduction))
+
+    rings = {x: _rings(x) for x in indices}
+    edge_ids = np.unique([e for x in indices for ring in rings[x] for e, _f in ring])
+    dense = _densify(edge_ids, project, tolerance_arcsec)
+    out = {}
+    for x in indices:
+        polys = []
+        for ring in rings[x]:
+            lons, lats = [], []
+            for e, forward in ring:
+                _t, lon, lat = dense[e]
+                if not forward:
+                    lon, lat = lon[::-1], lat[::-1]
+                lons.append(lon[:-1])
+                lats.append(lat[:-1])
+            for piece in _ring_pieces(np.concatenate(lons), np.concatenate(lats)):
+                polys.append([np.round(piece, 10).tolist()])
+        out[x] = polys
+    return out
+
+
+def outline_collection(
+    *,
+    frame: str = "icrs",
+    equinox=None,
+    reduction: str = "fk4",
+    tolerance_arcsec: float = DEFAULT_OUTLINE_TOLERANCE_ARCSEC,
+) -> dict:
+    """Outlines of all 88 constellations as a GeoJSON FeatureCollection (see outline)."""
+    table = boundary_table()
+    indices = list(range(len(table.abbreviations)))
+    polygons = _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec)
+    features = []
+    for x in indices:
+        geometry = (
+            {"type": "Polygon", "coordinates": polygons[x][0]}
+            if len(polygons[x]) == 1
+            else {"type": "MultiPolygon", "coordinates": polygons[x]}
+        )
+        features.append(
+            {
+                "type": "Feature",
+                "geometry": geometry,
+                "properties": {
+                    "abbreviation": table.abbreviations[x],
+                    "name": table.names[x],
+                    "frame": frame,
+                    "equinox": _default_equinox(frame, equinox),
+                    "reduction": reduction,
+                },
+            }
+        )
+    return {"type": "FeatureCollection", "features": features}
+
+
+def constellation_list() -> list[dict]:
+    """The 88 IAU constellations: abbreviation, name and solid angle (B1875.0 table)."""
+    table = boundary_table()
+    return [
+        {
+            "abbreviation": a,
+            "name": nm,
+            "area_sr": float(area),
+            "area_deg2": float(area * DEG_PER_RAD**2),
+        }
+        for a, nm, area in zip(table.abbreviations, table.names, table.area_sr, strict=True)
+    ]
