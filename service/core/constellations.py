@@ -403,8 +403,13 @@ def _add_e_terms(vec, e_terms):
 
 
 def _remove_e_terms(vec, e_terms):
-    out = vec - e_terms + (vec @ e_terms)[..., None] * vec
-    return out / np.linalg.norm(out, axis=-1, keepdims=True)
+    """Exact inverse of :func:`_add_e_terms`: the unit u with u + E parallel to ``vec``.
+
+    u = lambda w - E with |u| = 1 gives lambda = w.E + sqrt((w.E)^2 + 1 - |E|^2).
+    """
+    we = vec @ e_terms
+    lam = we + np.sqrt(we * we + 1.0 - float(e_terms @ e_terms))
+    return lam[..., None] * vec - e_terms
 
 
 @functools.cache
@@ -1049,12 +1054,24 @@ def _space_motion(
     3. A missing radial velocity is taken as zero and flagged; a missing proper motion
        component as zero and flagged PROPER_MOTION_UNKNOWN.
     """
-    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
-    dec = np.asarray(dec_deg, dtype=float) * RAD_PER_DEG
-    plx = np.asarray(parallax_mas, dtype=float)
-    pma = np.asarray(pm_ra_cosdec_mas_yr, dtype=float)
-    pmd = np.asarray(pm_dec_mas_yr, dtype=float)
-    rv = np.asarray(radial_velocity_km_s, dtype=float)
+    ra, dec, plx, pma, pmd, rv = (
+        a.ravel()
+        for a in np.broadcast_arrays(
+            *(
+                np.atleast_1d(np.asarray(a, dtype=float))
+                for a in (
+                    ra_deg,
+                    dec_deg,
+                    parallax_mas,
+                    pm_ra_cosdec_mas_yr,
+                    pm_dec_mas_yr,
+                    radial_velocity_km_s,
+                )
+            )
+        )
+    )
+    ra = ra * RAD_PER_DEG
+    dec = dec * RAD_PER_DEG
     flags = np.zeros(ra.shape, dtype=np.int64)
     pm_missing = ~np.isfinite(pma) | ~np.isfinite(pmd)
     flags |= np.where(pm_missing, int(ConstellationFlag.PROPER_MOTION_UNKNOWN), 0)
@@ -1626,8 +1643,9 @@ def _ring_pieces(lon, lat):
     -----
     1. Longitudes are unwrapped along the ring. A ring that winds once around a pole of
        the frame (its region contains that pole: the north pole if it winds eastward, the
-       region being on the left) is closed along the pole's latitude line, as RFC 7946
-       section 3.1.9 suggests for shapes over a pole.
+       region being on the left) is opened at its vertex nearest that pole and closed
+       along that vertex's meridian and the pole's latitude line, so that the planar
+       polygon stays simple (RFC 7946 section 3.1.9).
     2. The planar polygon is then cut along lon = 180 + 360 k and each piece shifted into
        -180..180 (RFC 7946 section 3.1.9, antimeridian cutting).
     3. Exterior rings are counterclockwise (RFC 7946 section 3.1.6, right-hand rule).
@@ -1635,6 +1653,13 @@ def _ring_pieces(lon, lat):
     lonu = lon[0] + np.concatenate([[0.0], np.cumsum(_wrap180(np.diff(lon)))])
     closing = lonu[-1] + _wrap180(lon[0] - lon[-1])
     winding = int(round((closing - lonu[0]) / 360.0))
+    if winding != 0:
+        # start at the vertex nearest the pole, so that the closing lines along its
+        # meridian (up to the pole) cannot cross the ring
+        start = int(np.argmax(lat) if winding > 0 else np.argmin(lat))
+        lon, lat = np.roll(lon, -start), np.roll(lat, -start)
+        lonu = lon[0] + np.concatenate([[0.0], np.cumsum(_wrap180(np.diff(lon)))])
+        closing = lonu[-1] + _wrap180(lon[0] - lon[-1])
     xs, ys = list(lonu), list(lat)
     if winding != 0:
         pole = 90.0 if winding > 0 else -90.0
