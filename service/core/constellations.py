@@ -734,8 +734,10 @@ def _segment_distance(p, ra, dec, seg_index, segs: _Segments):
     return out
 
 
-#: Coarse index cells for the margin search: 1 degree in Dec by 1 degree of RA.
-_INDEX_CELL_DEG = 1.0
+#: Index cells for the margin search: 0.25 degree in Dec by 0.25 degree of RA, built from
+#: 2-degree parent cells (Note 2 of _margin_index).
+_INDEX_CELL_DEG = 0.5
+_INDEX_PARENT_CELL_DEG = 2.0
 #: Extra distance (rad) kept in candidate lists so the rounding check also sees the
 #: segments within the table's rounding (2.7 arcsec) of a point, not only the nearest.
 _INDEX_SLACK_RAD = 3.0 / ARCSEC_PER_RAD
@@ -753,43 +755,34 @@ class _MarginIndex:
     n_dec: int
 
 
-@functools.cache
-def _margin_index() -> _MarginIndex:
-    """Candidate boundary segments per (coarse cell, constellation).
+def _presence(step):
+    """(cell Dec index, cell RA index, constellation) for every constellation present in
+    each cell of a ``step``-degree grid, sorted by cell then constellation.
 
     Notes
     -----
-    1. For a coarse cell with centre c and angular radius r (the largest distance from c
-       to a corner, which bounds the distance to every point of the cell), and a
-       constellation X present in it, let D = min over X's segments of d(c, s). Any point p
-       of the cell in X has its nearest boundary point on X's own boundary, at distance at
-       most D + r; a segment can be that near to p only if d(c, s) <= D + 2r (triangle
-       inequality). Those segments (plus a slack for the rounding check) are kept.
+    1. The union of the index grid's lines and the table grid's lines cuts the sphere into
+       pieces that each lie in one index cell and one constellation; each piece's centre
+       gives both.
     """
     table = boundary_table()
-    segs = _segments()
-    ncon = len(table.abbreviations)
-    step = _INDEX_CELL_DEG
     n_ra = int(round(360.0 / step))
     n_dec = int(round(180.0 / step))
+    ra_e = np.unique(np.concatenate([table.ra_edges_h * 15.0, step * np.arange(n_ra + 1)]))
+    dec_e = np.unique(np.concatenate([table.dec_edges_deg, step * np.arange(n_dec + 1) - 90.0]))
+    ra_mid = 0.5 * (ra_e[1:] + ra_e[:-1])
+    dec_mid = 0.5 * (dec_e[1:] + dec_e[:-1])
+    rr, dd = np.meshgrid(ra_mid, dec_mid)
+    x = _grid_lookup(rr.ravel(), dd.ravel()).astype(np.int64)
+    ci = np.clip((rr.ravel() / step).astype(np.int64), 0, n_ra - 1)
+    cj = np.clip(((dd.ravel() + 90.0) / step).astype(np.int64), 0, n_dec - 1)
+    ncon = len(table.abbreviations)
+    key = np.unique((cj * n_ra + ci) * ncon + x)
+    cell = key // ncon
+    return cell // n_ra, cell % n_ra, key % ncon, n_ra, n_dec
 
-    # constellations present in each coarse cell (from the exact grid)
-    present = np.zeros((n_dec, n_ra, ncon), dtype=bool)
-    ra_e = table.ra_edges_h * 15.0
-    dec_e = table.dec_edges_deg
-    for j in range(dec_e.size - 1):
-        j0 = int(math.floor((dec_e[j] + 90.0) / step))
-        j1 = min(int(math.ceil((dec_e[j + 1] + 90.0) / step)), n_dec)
-        row = table.cell_index[j]
-        for i in range(ra_e.size - 1):
-            i0 = int(math.floor(ra_e[i] / step))
-            i1 = min(int(math.ceil(ra_e[i + 1] / step)), n_ra)
-            present[j0:j1, i0:i1, row[i]] = True
 
-    cj, ci, cx = np.nonzero(present)
-    cell_id = cj * n_ra + ci
-    cell_first = np.searchsorted(cell_id, np.arange(n_dec * n_ra), side="left")
-    max_present = int(np.max(np.bincount(cell_id)))
+def _cell_geometry(cj, ci, step):
     dec0 = (cj * step - 90.0) * RAD_PER_DEG
     dec1 = dec0 + step * RAD_PER_DEG
     ra0 = ci * step * RAD_PER_DEG
@@ -799,8 +792,53 @@ def _margin_index() -> _MarginIndex:
     radius = np.maximum.reduce(
         [_gc_distance(cra, cdec, a, d) for a in (ra0, ra1) for d in (dec0, dec1)]
     )
-    radius = radius * (1.0 + 1e-9) + 1e-12
+    return cra, cdec, radius * (1.0 + 1e-9) + 1e-12
 
+
+def _filter_candidates(cj, ci, step, src_start, src_count, src_flat):
+    """Keep, per entry, the source segments that can be nearest (Note 1 of _margin_index)."""
+    segs = _segments()
+    cra, cdec, radius = _cell_geometry(cj, ci, step)
+    entry = np.repeat(np.arange(cj.size), src_count)
+    starts = np.cumsum(src_count) - src_count
+    within = np.arange(entry.size) - np.repeat(starts, src_count)
+    pair_seg = src_flat[np.repeat(src_start, src_count) + within]
+    centre = _unit_vectors(cra * DEG_PER_RAD, cdec * DEG_PER_RAD)
+    dist = _segment_distance(centre[entry], cra[entry], cdec[entry], pair_seg, segs)
+    nearest = np.minimum.reduceat(dist, starts)
+    keep = dist <= (nearest + 2.0 * radius)[entry] + _INDEX_SLACK_RAD
+    flat = pair_seg[keep].astype(np.int32)
+    count = np.bincount(entry[keep], minlength=cj.size)
+    return np.cumsum(count) - count, count, flat
+
+
+def _find_entries(cell_first, key_x, max_present, cell, x):
+    pos = cell_first[cell].astype(np.int64)
+    for _ in range(max_present - 1):  # step over the other constellations of the cell
+        pos += key_x[pos] != x
+    return pos
+
+
+@functools.cache
+def _margin_index() -> _MarginIndex:
+    """Candidate boundary segments per (index cell, constellation), built in two levels.
+
+    Notes
+    -----
+    1. For an index cell with centre c and angular radius r (the largest distance from c
+       to a corner, which bounds the distance to every point of the cell), and a
+       constellation X present in it, let D = min over the candidates of d(c, s). Any point p
+       of the cell in X has its nearest boundary point on X's own boundary, at distance at
+       most D + r; a segment can be that near to p only if d(c, s) <= D + 2r (triangle
+       inequality). Those segments (plus _INDEX_SLACK_RAD for the rounding check) are
+       kept.
+    2. Level 1 (_INDEX_PARENT_CELL_DEG cells) starts from all of X's segments; level 2
+       (_INDEX_CELL_DEG cells, which the queries use) starts from the level-1 list of the
+       parent cell, which contains every segment that can be nearest anywhere in it.
+    """
+    table = boundary_table()
+    segs = _segments()
+    ncon = len(table.abbreviations)
     # segments of each constellation
     seg_ids = np.arange(segs.kind.size)
     owner = np.concatenate([segs.left, segs.right])
@@ -810,68 +848,178 @@ def _margin_index() -> _MarginIndex:
     own_start = np.searchsorted(owner, np.arange(ncon), side="left")
     own_count = np.searchsorted(owner, np.arange(ncon), side="right") - own_start
 
-    counts = own_count[cx]
-    pair_cell = np.repeat(np.arange(cx.size), counts)
-    within = np.arange(pair_cell.size) - np.repeat(np.cumsum(counts) - counts, counts)
-    pair_seg = owned[own_start[cx][pair_cell] + within]
-    centre = _unit_vectors(cra * DEG_PER_RAD, cdec * DEG_PER_RAD)
-    dist = _segment_distance(centre[pair_cell], cra[pair_cell], cdec[pair_cell], pair_seg, segs)
-    starts = np.cumsum(counts) - counts
-    nearest = np.minimum.reduceat(dist, starts)
-    keep = dist <= (nearest + 2.0 * radius)[pair_cell] + _INDEX_SLACK_RAD
-    flat = pair_seg[keep].astype(np.int32)
-    new_count = np.bincount(pair_cell[keep], minlength=cx.size)
-    new_start = np.cumsum(new_count) - new_count
+    step1 = _INDEX_PARENT_CELL_DEG
+    cj1, ci1, cx1, n_ra1, n_dec1 = _presence(step1)
+    start1, count1, flat1 = _filter_candidates(
+        cj1, ci1, step1, own_start[cx1], own_count[cx1], owned
+    )
+    cell1 = cj1 * n_ra1 + ci1
+    first1 = np.searchsorted(cell1, np.arange(n_dec1 * n_ra1), side="left")
+    keyx1 = np.concatenate([cx1, [-1]])
+    max1 = int(np.max(np.bincount(cell1)))
+
+    step = _INDEX_CELL_DEG
+    ratio = int(round(step1 / step))
+    cj, ci, cx, n_ra, n_dec = _presence(step)
+    parent = _find_entries(first1, keyx1, max1, (cj // ratio) * n_ra1 + ci // ratio, cx)
+    if not np.array_equal(keyx1[parent], cx):
+        raise RuntimeError("margin index: a cell's constellation is missing from its parent")
+    start, count, flat = _filter_candidates(cj, ci, step, start1[parent], count1[parent], flat1)
+    cell_id = cj * n_ra + ci
+    cell_first = np.searchsorted(cell_id, np.arange(n_dec * n_ra), side="left").astype(np.int32)
+    max_present = int(np.max(np.bincount(cell_id)))
     key_x = np.concatenate([cx, [-1]]).astype(np.int16)  # sentinel after the last entry
-    for a in (cell_first, key_x, new_start, new_count, flat):
+    start = start.astype(np.int32)
+    count = count.astype(np.int16)
+    for a in (cell_first, key_x, start, count, flat):
         a.setflags(write=False)
-    return _MarginIndex(cell_first, key_x, max_present, new_start, new_count, flat, n_ra, n_dec)
+    return _MarginIndex(cell_first, key_x, max_present, start, count, flat, n_ra, n_dec)
 
 
-def _margins(p, ra_deg, dec_deg, index):
+@functools.cache
+def _segment_attributes() -> tuple:
+    """Per-segment rows for the fast distance measure (see _one_minus_cos_distance).
+
+    Rows: is constant-RA, cos c, sin c, cos lo, sin lo, cos hi, sin hi, where c is the
+    arc's fixed coordinate (Dec, or RA) and lo, hi the ends of its running coordinate.
+    """
+    segs = _segments()
+    if np.any((segs.kind == 0) & (segs.hi - segs.lo >= math.pi)):
+        raise RuntimeError("a constant-Dec arc spans 12 hours or more")  # Note 1 below
+    rows = (
+        segs.kind == 1,
+        segs.cos_c,
+        segs.sin_c,
+        np.cos(segs.lo),
+        np.sin(segs.lo),
+        np.cos(segs.hi),
+        np.sin(segs.hi),
+    )
+    for r in rows:
+        r.setflags(write=False)
+    return rows
+
+
+def _one_minus_cos_distance(x, y, z, rho, attr):
+    """1 - cos(distance) from points to segments, pairwise (cheap, branch-free).
+
+    Parameters
+    ----------
+    x, y, z, rho : ndarray, shape (M,)
+        Unit-vector components of the points and rho = cos(dec), B1875.0 frame.
+    attr : sequence of 7 ndarray, shape (M,)
+        The rows of :func:`_segment_attributes` for the segment paired with each point.
+
+    Notes
+    -----
+    1. Constant-Dec arc (dec c, RA lo..hi, less than 12 h long): the point's RA is on the
+       arc iff sin(ra - lo) >= 0 and sin(hi - ra) >= 0; then cos d = cos(dec - c) =
+       rho cos c + z sin c; otherwise the nearer end: cos d = cos c (x cos e + y sin e)
+       + z sin c.
+    2. Constant-RA arc (RA c, Dec lo..hi): with q = x cos c + y sin c, sin d =
+       |y cos c - x sin c| on the arc, i.e. iff q > 0 and lo <= atan2(z, q) <= hi;
+       otherwise the nearer end: cos d = q cos e + z sin e.
+    3. Monotonic in the distance, so it selects the nearest segment; its absolute rounding
+       is about 1e-16 (distances good to about 1e-8 rad at worst), so small margins are
+       recomputed with :func:`_segment_distance`.
+    """
+    is_v, cc, sc, cl, sl, ch, sh = attr
+    q = x * cc + y * sc
+    w = y * cc - x * sc
+    # constant Dec (is_v False): cc, sc are cos/sin of the Dec; lo/hi are RAs
+    inside_h = (y * cl - x * sl >= 0.0) & (x * sh - y * ch >= 0.0)
+    meas_h = 1.0 - (rho * cc + z * sc)
+    end_h = 1.0 - (cc * np.maximum(x * cl + y * sl, x * ch + y * sh) + z * sc)
+    # constant RA (is_v True): cc, sc are cos/sin of the RA; lo/hi are Decs
+    inside_v = (q > 0.0) & (z * cl - q * sl >= 0.0) & (q * sh - z * ch >= 0.0)
+    a2 = w * w
+    meas_v = a2 / (1.0 + np.sqrt(np.maximum(1.0 - a2, 0.0)))
+    end_v = 1.0 - np.maximum(q * cl + z * sl, q * ch + z * sh)
+    return (
+        np.where(
+            is_v,
+            np.where(inside_v, meas_v, end_v),
+            np.where(inside_h, meas_h, end_h),
+        ),
+        is_v,
+    )
+
+
+#: Margins below this (rad, about 20 arcsec) are recomputed with the exact formulae.
+_EXACT_BELOW_RAD = 1e-4
+
+
+def _margins(xyz, ra_deg, dec_deg, index):
     """Distance (arcsec) to the nearest boundary of each point's own constellation.
 
-    Parameters are 1-D: unit vectors p (N, 3) and degrees in the B1875.0 frame, and the
-    constellation index of each point. Returns (margin_arcsec, other_side_index,
+    Parameters are 1-D: unit-vector components (x, y, z) and degrees in the B1875.0
+    frame, and the constellation index of each point. Returns (margin_arcsec, other_side_index,
     rounding_ambiguous).
+
+    Notes
+    -----
+    1. Candidate segments come from :func:`_margin_index`; points are ordered by their
+       number of candidates so that the k-th candidate of all points that have one is
+       handled in one vector pass. The nearest is selected with
+       :func:`_one_minus_cos_distance`; small margins are then recomputed exactly with
+       :func:`_segment_distance`.
     """
     mi = _margin_index()
     segs = _segments()
+    attr = _segment_attributes()
     n = ra_deg.size
     ci = np.clip((ra_deg * (1.0 / _INDEX_CELL_DEG)).astype(np.int64), 0, mi.n_ra - 1)
     cj = (dec_deg + 90.0) * (1.0 / _INDEX_CELL_DEG)
     cj = np.clip(cj.astype(np.int64), 0, mi.n_dec - 1)
     cell = cj * mi.n_ra + ci
-    pos = mi.cell_first[cell]
-    for _ in range(mi.max_present - 1):  # step over the other constellations of the cell
-        pos += mi.key_x[pos] != index
+    pos = _find_entries(mi.cell_first, mi.key_x, mi.max_present, cell, index)
     if not np.array_equal(mi.key_x[pos], index):  # cannot happen for a consistent grid
         raise RuntimeError("margin index has no entry for a looked-up cell")
     counts = mi.count[pos]
-    starts = np.cumsum(counts) - counts
-    pair_pt = np.repeat(np.arange(n), counts)
-    pair_seg = mi.flat[np.arange(pair_pt.size) + np.repeat(mi.start[pos] - starts, counts)]
-    ra = ra_deg * RAD_PER_DEG
-    dec = dec_deg * RAD_PER_DEG
-    dist = _segment_distance(p[pair_pt], ra[pair_pt], dec[pair_pt], pair_seg, segs)
-    nearest = np.minimum.reduceat(dist, starts)
-    first = np.flatnonzero(dist == nearest[pair_pt])[::-1]
-    chosen = np.empty(n, dtype=np.int64)
-    chosen[pair_pt[first]] = pair_seg[first]  # last write wins: the first minimum
-    other = np.where(segs.left[chosen] == index, segs.right[chosen], segs.left[chosen])
+    order = np.argsort(-counts, kind="stable")
+    counts_sorted = counts[order]
+    start = mi.start[pos][order]
+    x, y, z = xyz[0][order], xyz[1][order], xyz[2][order]
+    rho = np.sqrt(np.maximum(1.0 - z * z, 0.0))
+    ra = ra_deg[order] * RAD_PER_DEG
+    # table-rounding tolerances as 1 - cos(tol): Dec arcs fixed, RA arcs scale with cos dec
+    tol_h = 1.0 - math.cos(TABLE_DEC_HALF_UNIT_ARCSEC / ARCSEC_PER_RAD)
+    tol_v_eq = TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR / ARCSEC_PER_RAD
 
-    close = np.flatnonzero(dist * ARCSEC_PER_RAD <= TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR)
+    best = np.full(n, np.inf)
+    best_seg = np.zeros(n, dtype=np.int64)
     ambiguous = np.zeros(n, dtype=bool)
-    if close.size:
-        kind = segs.kind[pair_seg[close]]
-        pts = pair_pt[close]
-        tol = np.where(
-            kind == 0,
-            TABLE_DEC_HALF_UNIT_ARCSEC,
-            TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR * np.cos(dec[pts]),
+    tol_v = 0.5 * (tol_v_eq * rho) ** 2
+    n_with = np.searchsorted(-counts_sorted, -np.arange(1, int(counts.max()) + 1), side="right")
+    for k, m in enumerate(n_with):
+        seg = mi.flat[start[:m] + k]
+        meas, is_v = _one_minus_cos_distance(
+            x[:m], y[:m], z[:m], rho[:m], [row[seg] for row in attr]
         )
-        ambiguous[pts[dist[close] * ARCSEC_PER_RAD <= tol]] = True
-    return nearest * ARCSEC_PER_RAD, other.astype(np.int16), ambiguous
+        better = meas < best[:m]
+        best[:m] = np.where(better, meas, best[:m])
+        best_seg[:m] = np.where(better, seg, best_seg[:m])
+        ambiguous[:m] |= meas <= np.where(is_v, tol_v[:m], tol_h)
+
+    # 1 - cos d = b  =>  d = 2 asin(sqrt(b / 2))
+    margin = 2.0 * np.arcsin(np.minimum(np.sqrt(0.5 * np.maximum(best, 0.0)), 1.0))
+    small = np.flatnonzero(margin < _EXACT_BELOW_RAD)
+    if small.size:
+        margin[small] = _segment_distance(
+            np.column_stack([x[small], y[small], z[small]]),
+            ra[small],
+            np.arcsin(np.clip(z[small], -1.0, 1.0)),
+            best_seg[small],
+            segs,
+        )
+    out_margin = np.empty(n)
+    out_margin[order] = margin * ARCSEC_PER_RAD
+    chosen = np.empty(n, dtype=np.int64)
+    chosen[order] = best_seg
+    out_amb = np.empty(n, dtype=bool)
+    out_amb[order] = ambiguous
+    other = np.where(segs.left[chosen] == index, segs.right[chosen], segs.left[chosen])
+    return out_margin, other.astype(np.int16), out_amb
 
 
 # ---------------------------------------------------------------------------------------
@@ -889,25 +1037,40 @@ class ConstellationLookup:
         Constellation index (into ``boundary_table().abbreviations``) by the requested
         reduction.
     index_fk4, index_fk5 : ndarray of int16
-        The answers of the two reductions.
-    ra_b1875_deg, dec_b1875_deg : ndarray
-        Position at equinox B1875.0 by the requested reduction, degrees.
+        The answers of the FK4 and FK5 reductions.
     margin_arcsec : ndarray or None
         Distance to the nearest boundary arc, arcsec (None if not requested).
     other_side_index : ndarray of int16 or None
         Constellation across that nearest arc.
     flags : ndarray of uint16
         :class:`ConstellationFlag` bits.
+    b1875_components : tuple of 3 ndarray
+        Unit-vector components at equinox B1875.0 by the requested reduction;
+        ``b1875_xyz`` stacks them, ``ra_b1875_deg`` and ``dec_b1875_deg`` give degrees.
     """
 
     index: np.ndarray
     index_fk4: np.ndarray
     index_fk5: np.ndarray
-    ra_b1875_deg: np.ndarray
-    dec_b1875_deg: np.ndarray
     margin_arcsec: np.ndarray | None
     other_side_index: np.ndarray | None
     flags: np.ndarray
+    b1875_components: tuple
+
+    @functools.cached_property
+    def b1875_xyz(self) -> np.ndarray:
+        """Unit vector at equinox B1875.0 by the requested reduction, shape (..., 3)."""
+        return np.stack(self.b1875_components, axis=-1)
+
+    @functools.cached_property
+    def ra_b1875_deg(self) -> np.ndarray:
+        """Right ascension at equinox B1875.0, degrees in [0, 360)."""
+        return _angles_deg(self.b1875_xyz)[0]
+
+    @functools.cached_property
+    def dec_b1875_deg(self) -> np.ndarray:
+        """Declination at equinox B1875.0, degrees."""
+        return _angles_deg(self.b1875_xyz)[1]
 
     @property
     def abbreviation(self) -> np.ndarray:
@@ -978,38 +1141,97 @@ def locate(
         np.asarray(extra_flags, dtype=np.int64),
     )
     shape = ra_b.shape
-    return _locate_vectors(
-        _unit_vectors(ra_b.ravel(), dec_b.ravel()),
-        shape,
-        reduction,
-        with_margin,
-        near_b.ravel(),
-        extra_b.ravel(),
-    )
+    ra = ra_b.ravel() * RAD_PER_DEG
+    dec = dec_b.ravel() * RAD_PER_DEG
+    cd = np.cos(dec)
+    xyz = (cd * np.cos(ra), cd * np.sin(ra), np.sin(dec))
+    return _locate_components(xyz, shape, reduction, with_margin, near_b.ravel(), extra_b.ravel())
+
+
+#: Largest separation between the FK4 and FK5 reductions at B1875.0 allowed for when
+#: deciding which positions need both (measured 0.52 arcsec; 2 arcsec kept), radians.
+_REDUCTION_SEPARATION_BOUND_RAD = 2.0 / ARCSEC_PER_RAD
+
+
+def _rotate_components(xyz, reduction):
+    """B1875.0 unit-vector components (X, Y, Z) of ICRS components, for a reduction."""
+    x, y, z = xyz
+    m = _reduction_rotation(reduction)
+    out = [m[k, 0] * x + m[k, 1] * y + m[k, 2] * z for k in range(3)]
+    if reduction == "fk4":
+        e = _b1875_e_terms()
+        out = [out[k] + e[k] for k in range(3)]
+        inv = 1.0 / np.sqrt(out[0] * out[0] + out[1] * out[1] + out[2] * out[2])
+        out = [c * inv for c in out]
+    return out
+
+
+def _lookup_components(xyz_b1875):
+    """Grid lookup of B1875.0 components; also the distance to the nearest grid line."""
+    x, y, z = xyz_b1875
+    table = boundary_table()
+    ra_lut, z_lut = _grid_tables()
+    ra_h = np.arctan2(y, x) * (12.0 / math.pi)
+    ra_h += np.where(ra_h < 0.0, 24.0, 0.0)
+    i = _edge_index(ra_h, ra_lut)
+    j = _edge_index(z, z_lut)
+    return table.cell_index[j, i], ra_h, i, j
+
+
+def _near_grid_line(xyz_b1875, ra_h, i, j, bound_rad):
+    """True where a position is within ``bound_rad`` of a line of the cell grid."""
+    table = boundary_table()
+    z = xyz_b1875[2]
+    d_ra_h = np.minimum(ra_h - table.ra_edges_h[i], table.ra_edges_h[i + 1] - ra_h)
+    zs = _grid_tables()[1][3]  # sin of the Dec edges (padded)
+    d_z = np.minimum(z - zs[j], zs[j + 1] - z)
+    rho = np.sqrt(np.maximum(1.0 - z * z, 0.0))  # cos(dec)
+    return (d_ra_h * (math.pi / 12.0) * rho < bound_rad) | (d_z < bound_rad)
 
 
 def _locate_vectors(vec, shape, reduction, with_margin, near_arcsec, extra_flags, compare=True):
-    """:func:`locate` on ICRS unit vectors of shape (N, 3); results reshaped to ``shape``.
+    """:func:`locate` on ICRS unit vectors of shape (N, 3); results reshaped to ``shape``."""
+    vec = np.asarray(vec, dtype=float)
+    xyz = (vec[:, 0].copy(), vec[:, 1].copy(), vec[:, 2].copy())
+    return _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_flags, compare)
 
-    With ``compare`` False only the requested reduction is computed (``index_fk4`` and
-    ``index_fk5`` then repeat ``index``, and REDUCTIONS_DISAGREE is never set).
+
+def _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_flags, compare=True):
+    """:func:`locate` on ICRS unit-vector components (x, y, z), each of shape (N,).
+
+    Notes
+    -----
+    1. The requested reduction is computed for every position. The FK4 and FK5
+       reductions differ by less than 0.6 arcsec, so they can give different answers only
+       within that distance of a line of the cell grid; the other reductions are computed
+       only for positions within _REDUCTION_SEPARATION_BOUND_RAD of a grid line.
+    2. With ``compare`` False only the requested reduction is computed (``index_fk4`` and
+       ``index_fk5`` then repeat ``index``, and REDUCTIONS_DISAGREE is never set).
     """
-    results = {}
-    wanted = (reduction, "fk4", "fk5") if compare else (reduction,)
-    for red in dict.fromkeys(wanted):
-        b = icrs_to_b1875(vec, red)
-        ra_h = _ra_hours(b)
-        results[red] = (b, ra_h, _grid_lookup_vectors(b, ra_h))
-    b, ra_h, index = results[reduction]
-    ra1875 = ra_h * 15.0
-    dec1875 = np.arctan2(b[..., 2], np.hypot(b[..., 0], b[..., 1])) * DEG_PER_RAD
-    idx4 = results.get("fk4", results[reduction])[2]
-    idx5 = results.get("fk5", results[reduction])[2]
-    flags = np.asarray(extra_flags, dtype=np.int64) | np.where(
-        idx4 != idx5, int(ConstellationFlag.REDUCTIONS_DISAGREE), 0
-    )
+    b = _rotate_components(xyz, reduction)
+    index, ra_h, i, j = _lookup_components(b)
+    idx4 = index
+    idx5 = index
+    if compare:
+        near_line = np.flatnonzero(_near_grid_line(b, ra_h, i, j, _REDUCTION_SEPARATION_BOUND_RAD))
+        sub = tuple(c[near_line] for c in xyz)
+        others = {}
+        for red in ("fk4", "fk5"):
+            if red != reduction:
+                others[red] = _lookup_components(_rotate_components(sub, red))[0]
+        if "fk4" in others:
+            idx4 = index.copy()
+            idx4[near_line] = others["fk4"]
+        if "fk5" in others:
+            idx5 = index.copy()
+            idx5[near_line] = others["fk5"]
+    flags = np.asarray(extra_flags, dtype=np.int64)
+    if compare:
+        flags = flags | np.where(idx4 != idx5, int(ConstellationFlag.REDUCTIONS_DISAGREE), 0)
     margin = other = None
     if with_margin:
+        ra1875 = ra_h * 15.0
+        dec1875 = np.arctan2(b[2], np.hypot(b[0], b[1])) * DEG_PER_RAD
         margin, other, ambiguous = _margins(b, ra1875, dec1875, index)
         near = (margin <= near_arcsec) | ambiguous
         flags = flags | np.where(near, int(ConstellationFlag.NEAR_BOUNDARY), 0)
@@ -1020,11 +1242,10 @@ def _locate_vectors(vec, shape, reduction, with_margin, near_arcsec, extra_flags
         index=index.reshape(shape),
         index_fk4=idx4.reshape(shape),
         index_fk5=idx5.reshape(shape),
-        ra_b1875_deg=ra1875.reshape(shape),
-        dec_b1875_deg=dec1875.reshape(shape),
         margin_arcsec=margin,
         other_side_index=other,
         flags=flags.astype(np.uint16).reshape(shape),
+        b1875_components=tuple(c.reshape(shape) for c in b),
     )
 
 
