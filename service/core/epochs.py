@@ -36,6 +36,7 @@ import erfa
 import numpy as np
 
 from .constants import DAY_S, JD_J2000, JULIAN_YEAR_DAYS, MJD_ZERO_JD
+from .offline import leap_second_table
 
 #: Range of Julian epochs the service accepts anywhere, years. Generous enough for
 #: boundary-crossing searches of +-100,000 years around any catalogue epoch; beyond it the
@@ -149,6 +150,7 @@ def julian_epoch_to_besselian_epoch(jyear):
 
 def _to_tdb_jd(jd1, jd2, scale: str):
     """Two-part JD on ``scale`` to two-part JD on TDB (arrays; warnings collected)."""
+    leap_second_table()
     scale = scale.upper()
     notes = 0
     with warnings.catch_warnings(record=True) as caught:
@@ -170,6 +172,7 @@ def _to_tdb_jd(jd1, jd2, scale: str):
 
 
 def _from_tdb_to_utc_jd(jd1, jd2):
+    leap_second_table()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
@@ -251,6 +254,7 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
 
 
 def _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min: int = 0) -> tuple[float, int]:
+    leap_second_table()
     notes = 0
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -374,13 +378,6 @@ def label_epochs(jyear) -> EpochLabels:
     return EpochLabels(jyear, d1 + d2, iso, notes)
 
 
-_LEAP_LAST_YEAR: int | None = None
-
-
 def _leap_table_last_year() -> int:
-    """Last calendar year covered by ERFA's leap-second table (plus its 5-year grace)."""
-    global _LEAP_LAST_YEAR
-    if _LEAP_LAST_YEAR is None:
-        table = erfa.leap_seconds.get()
-        _LEAP_LAST_YEAR = int(table[-1]["year"]) + 1
-    return _LEAP_LAST_YEAR
+    """Last calendar year fully covered by the packaged leap-second table (its expiry)."""
+    return int(leap_second_table().expires.datetime.year) - 1
