@@ -16,6 +16,7 @@ from werkzeug.exceptions import HTTPException
 from .. import __version__
 from ..config import Settings
 from . import errors
+from .common import ProblemSchema, epoch_field_to_openapi
 from .jsonio import OrjsonProvider
 from .tables import table_field_to_openapi
 
@@ -38,6 +39,8 @@ safety rules decide whether a telescope may point somewhere.
 
 class SkydriftApi(flask_smorest.Api):
     """flask-smorest Api whose errors are RFC 9457 problem details."""
+
+    ERROR_SCHEMA = ProblemSchema
 
     def handle_http_exception(self, error):
         return errors.handle_http_exception(error)
@@ -76,6 +79,7 @@ def create_app(config: dict | None = None) -> Flask:
 
     api = SkydriftApi(app)
     api.ma_plugin.converter.add_attribute_function(table_field_to_openapi)
+    api.ma_plugin.converter.add_attribute_function(epoch_field_to_openapi)
     app.extensions["skydrift_api"] = api
     app.extensions["skydrift_ready_checks"] = {}
     app.register_error_handler(HTTPException, errors.handle_http_exception)

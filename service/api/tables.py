@@ -22,6 +22,7 @@ from dataclasses import dataclass, field
 import marshmallow as ma
 import numpy as np
 from flask import current_app
+from flask_smorest import abort
 
 #: At most this many individual field errors are listed in one problem response.
 MAX_LISTED_ERRORS = 50
@@ -214,7 +215,17 @@ class StarTableField(ma.fields.Field):
             raise ma.ValidationError("at least one star is required")
         limit = self._max_rows()
         if limit is not None and n > limit:
-            raise BatchTooLarge(n, limit)
+            # 413 rather than 422: the request is well formed but larger than allowed.
+            abort(
+                413,
+                errors=[
+                    {
+                        "field": self.name or "stars",
+                        "message": f"{n} stars in one request; the limit is {limit} "
+                        "(setting SKYDRIFT_MAX_STARS)",
+                    }
+                ],
+            )
 
     def _from_records(self, records: list) -> StarTable:
         self._limit(len(records))
@@ -286,17 +297,6 @@ class StarTableField(ma.fields.Field):
 
     def _unknown_text(self) -> str:
         return "unknown field; accepted fields: " + ", ".join(s.name for s in self.specs)
-
-
-class BatchTooLarge(ma.ValidationError):
-    """More stars than the configured limit (answered with 413)."""
-
-    def __init__(self, n: int, limit: int):
-        super().__init__(
-            f"{n} stars in one request; the limit is {limit} (setting SKYDRIFT_MAX_STARS)"
-        )
-        self.n = n
-        self.limit = limit
 
 
 def table_field_to_openapi(self, field, **kwargs) -> dict:
