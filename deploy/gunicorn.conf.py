@@ -15,6 +15,9 @@ workers = int(os.environ.get("SKYDRIFT_WORKERS", multiprocessing.cpu_count()))
 #: Synchronous workers: each request is CPU-bound, so threads would only share one core.
 worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "sync")
 
+#: Threads per worker (only used by the gthread worker class).
+threads = int(os.environ.get("SKYDRIFT_THREADS", 1))
+
 #: Seconds a worker may spend on one request before it is restarted (a million-star batch
 #: takes a few seconds; the default leaves a wide margin).
 timeout = int(os.environ.get("SKYDRIFT_TIMEOUT_S", 120))

@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import functools
+
 import flask_smorest
 import marshmallow as ma
+import numpy as np
 from flask import request
 from flask_smorest import abort
 
@@ -88,8 +91,20 @@ class EpochOutSchema(ma.Schema):
 
 
 def epochs_out(jyears) -> list[dict]:
-    """Julian epochs (TDB) -> list of EpochOut dicts."""
-    labels = core_epochs.label_epochs(jyears)
+    """Julian epochs (TDB) -> list of EpochOut dicts (few epochs are served from a cache)."""
+    values = tuple(float(x) for x in np.atleast_1d(jyears))
+    if len(values) <= 8:
+        return [dict(d, notes=list(d["notes"])) for d in _epochs_out_cached(values)]
+    return _epochs_out(values)
+
+
+@functools.lru_cache(maxsize=4096)
+def _epochs_out_cached(values: tuple) -> list[dict]:
+    return _epochs_out(values)
+
+
+def _epochs_out(values) -> list[dict]:
+    labels = core_epochs.label_epochs(np.asarray(values, dtype=float))
     notes = flag_names(labels.notes, core_epochs.TimeNote)
     return [
         {

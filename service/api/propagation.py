@@ -257,6 +257,9 @@ def _covariance(table, n):
     Returns (cov or None, has_cov mask, incomplete mask, assumed_zero mask, bad-PSD idx).
     """
     cols = table.columns
+    if not table.given.intersection(ERROR_FIELDS):
+        none = np.zeros(n, dtype=bool)
+        return None, none, none, none, np.array([], dtype=int)
     errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
     astro = errs[:, :5]
     complete = np.all(np.isfinite(astro), axis=-1)
@@ -310,7 +313,7 @@ def _num_or_none(x):
 
 
 @blp.route("/propagation", methods=["POST"])
-@blp.arguments(PropagationRequestSchema, example=load_example("propagation_request.json"))
+@blp.arguments(PropagationRequestSchema(), example=load_example("propagation_request.json"))
 @blp.response(200, PropagationResponseSchema)
 def propagate(args):
     """Move stars to other epochs.

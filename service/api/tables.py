@@ -290,7 +290,8 @@ class StarTableField(ma.fields.Field):
                 ids = _id_column(values, errors)
                 continue
             arr = _number_column(values, spec, errors)
-            _check_range(arr, spec, errors)
+            if spec.lo is not None or spec.hi is not None:
+                _check_range(arr, spec, errors)
             columns[spec.name] = arr
         errors.raise_if_any()
         return StarTable(columns, ids, n, errors.form, given)

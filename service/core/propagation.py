@@ -617,13 +617,20 @@ def propagate(
         )
     ]
     shape = np.broadcast_shapes(*(x.shape for x in args))
+    step = propagate_standard if model == "standard" else propagate_light_time
+    if int(np.prod(shape)) <= block_size:  # one block: no copies needed
+        ast, flags = step(*args)
+        ast = Astrometry(*(np.broadcast_to(f, shape) for f in _fields(ast)))
+        cov_out = None
+        if covariance is not None:
+            cov_out = propagate_covariance(standard_jacobian(*args), covariance)
+        return PropagationResult(ast, np.broadcast_to(flags, shape), cov_out)
     flat = [np.broadcast_to(x, shape).reshape(-1) for x in args]
     n = flat[0].shape[0]
     cov_flat = None
     if covariance is not None:
         cov_flat = np.broadcast_to(np.asarray(covariance, dtype=float), shape + (6, 6))
         cov_flat = cov_flat.reshape(-1, 6, 6)
-    step = propagate_standard if model == "standard" else propagate_light_time
     outs = [np.empty(n) for _ in range(6)]
     flags = np.empty(n, dtype=np.int64)
     cov_out = np.empty((n, 6, 6)) if cov_flat is not None else None
