@@ -68,7 +68,7 @@ from service.core.constants import (
 BOUNDARY_TABLE_FILE = "constellation_boundaries_roman1987.dat"
 BOUNDARY_TABLE_SHA256 = "daf9e2b39ec57446d862a445276ae2ea50490ee455540972906098f5f9187957"
 NAMES_FILE = "constellation_names_iau.dat"
-NAMES_SHA256 = "dc56f34b61c17c77f1b34bcf7b121db179026313bbf4c7b288c73599309af525"
+NAMES_SHA256 = "2fba80ded424cd3e915bb281aa89436bac6d3c7c4ebddacc1c067d9366d0e66a"
 
 #: Besselian epoch of the boundary equinox, B1875.0 (Delporte 1930).
 BOUNDARY_BESSELIAN_EPOCH = 1875.0
