@@ -514,6 +514,7 @@ def _uniform_lut(edges):
     nbin = int(math.ceil((edges[-1] - edges[0]) / width)) + 1
     starts = edges[0] + width * np.arange(nbin)
     first = np.clip(np.searchsorted(edges, starts, side="right") - 1, 0, edges.size - 2)
+    first = first.astype(np.intp)
     padded = np.concatenate([edges, [np.inf]])
     for arr in (first, padded):
         arr.setflags(write=False)
@@ -532,11 +533,11 @@ def _grid_tables():
 def _edge_index(values, lut):
     """``searchsorted(edges, values, side="right") - 1``, clipped, by uniform bins."""
     origin, inv_width, first, padded, last = lut
-    b = ((values - origin) * inv_width).astype(np.int64)
+    b = ((values - origin) * inv_width).astype(np.intp)
     np.clip(b, 0, first.size - 1, out=b)
     idx = first[b]
     idx += values >= padded[idx + 1]  # bins are narrower than edge gaps: one step at most
-    np.clip(idx, 0, last, out=idx)
+    np.minimum(idx, last, out=idx)
     return idx
 
 
@@ -900,15 +901,15 @@ def _segment_attributes() -> tuple:
     return rows
 
 
-def _one_minus_cos_distance(x, y, z, rho, attr):
-    """1 - cos(distance) from points to segments, pairwise (cheap, branch-free).
+def _one_minus_cos_distance(x, y, z, rho, seg):
+    """1 - cos(distance) from points to segments, pairwise (cheap).
 
     Parameters
     ----------
     x, y, z, rho : ndarray, shape (M,)
         Unit-vector components of the points and rho = cos(dec), B1875.0 frame.
-    attr : sequence of 7 ndarray, shape (M,)
-        The rows of :func:`_segment_attributes` for the segment paired with each point.
+    seg : ndarray of int, shape (M,)
+        The segment paired with each point.
 
     Notes
     -----
@@ -923,103 +924,142 @@ def _one_minus_cos_distance(x, y, z, rho, attr):
        is about 1e-16 (distances good to about 1e-8 rad at worst), so small margins are
        recomputed with :func:`_segment_distance`.
     """
-    is_v, cc, sc, cl, sl, ch, sh = attr
+    is_v, cc, sc, cl, sl, ch, sh = (row[seg] for row in _segment_attributes())
     q = x * cc + y * sc
     w = y * cc - x * sc
     # constant Dec (is_v False): cc, sc are cos/sin of the Dec; lo/hi are RAs
     inside_h = (y * cl - x * sl >= 0.0) & (x * sh - y * ch >= 0.0)
-    meas_h = 1.0 - (rho * cc + z * sc)
-    end_h = 1.0 - (cc * np.maximum(x * cl + y * sl, x * ch + y * sh) + z * sc)
+    meas_h = 1.0 - (
+        np.where(inside_h, rho, np.maximum(x * cl + y * sl, x * ch + y * sh)) * cc + z * sc
+    )
     # constant RA (is_v True): cc, sc are cos/sin of the RA; lo/hi are Decs
     inside_v = (q > 0.0) & (z * cl - q * sl >= 0.0) & (q * sh - z * ch >= 0.0)
     a2 = w * w
-    meas_v = a2 / (1.0 + np.sqrt(np.maximum(1.0 - a2, 0.0)))
-    end_v = 1.0 - np.maximum(q * cl + z * sl, q * ch + z * sh)
-    return (
-        np.where(
-            is_v,
-            np.where(inside_v, meas_v, end_v),
-            np.where(inside_h, meas_h, end_h),
-        ),
-        is_v,
+    meas_v = np.where(
+        inside_v,
+        a2 / (1.0 + np.sqrt(np.maximum(1.0 - a2, 0.0))),
+        1.0 - np.maximum(q * cl + z * sl, q * ch + z * sh),
     )
+    return np.where(is_v, meas_v, meas_h)
 
 
 #: Margins below this (rad, about 20 arcsec) are recomputed with the exact formulae.
 _EXACT_BELOW_RAD = 1e-4
 
 
-def _margins(xyz, ra_deg, dec_deg, index):
+@functools.cache
+def _index_z_lut():
+    """Look-up table from z = sin(dec) to the Dec band of the margin index."""
+    n_dec = int(round(180.0 / _INDEX_CELL_DEG))
+    lines = np.sin((_INDEX_CELL_DEG * np.arange(n_dec + 1) - 90.0) * RAD_PER_DEG)
+    lines[0], lines[-1] = -1.0, 1.0
+    return _uniform_lut(lines)
+
+
+def _margins(xyz, ra_h, index):
     """Distance (arcsec) to the nearest boundary of each point's own constellation.
 
-    Parameters are 1-D: unit-vector components (x, y, z) and degrees in the B1875.0
-    frame, and the constellation index of each point. Returns (margin_arcsec, other_side_index,
-    rounding_ambiguous).
+    Parameters
+    ----------
+    xyz : ndarray, shape (3, N)
+        Unit vectors (rows x, y, z) in the B1875.0 frame.
+    ra_h : ndarray, shape (N,)
+        Their right ascensions, hours in [0, 24].
+    index : ndarray of int, shape (N,)
+        Their constellations.
+
+    Returns
+    -------
+    margin_arcsec, other_side_index, rounding_ambiguous : ndarray, shape (N,)
 
     Notes
     -----
-    1. Candidate segments come from :func:`_margin_index`; points are ordered by their
-       number of candidates so that the k-th candidate of all points that have one is
-       handled in one vector pass. The nearest is selected with
-       :func:`_one_minus_cos_distance`; small margins are then recomputed exactly with
-       :func:`_segment_distance`.
+    1. Candidate segments come from :func:`_margin_index`. The first candidate of every
+       point is measured in one vector pass; points with more candidates are ordered by
+       their number so that the k-th candidate of all points that have one is again one
+       pass. The nearest is selected with :func:`_one_minus_cos_distance`; margins below
+       _EXACT_BELOW_RAD are then recomputed exactly with :func:`_segment_distance`, and
+       the table-rounding check is made there (a point more than 2.7 arcsec from its
+       nearest boundary cannot be within the table's rounding of any).
     """
     mi = _margin_index()
     segs = _segments()
-    attr = _segment_attributes()
-    n = ra_deg.size
-    ci = np.clip((ra_deg * (1.0 / _INDEX_CELL_DEG)).astype(np.int64), 0, mi.n_ra - 1)
-    cj = (dec_deg + 90.0) * (1.0 / _INDEX_CELL_DEG)
-    cj = np.clip(cj.astype(np.int64), 0, mi.n_dec - 1)
+    n = ra_h.size
+    ci = np.minimum((ra_h * (15.0 / _INDEX_CELL_DEG)).astype(np.intp), mi.n_ra - 1)
+    cj = _edge_index(xyz[2], _index_z_lut())
     cell = cj * mi.n_ra + ci
-    pos = _find_entries(mi.cell_first, mi.key_x, mi.max_present, cell, index)
+    pos = mi.cell_first[cell].astype(np.intp)
+    other_x = np.flatnonzero(mi.key_x[pos] != index)
+    if other_x.size:  # cells where several constellations meet: step to the right entry
+        pos[other_x] = _find_entries(
+            mi.cell_first, mi.key_x, mi.max_present, cell[other_x], index[other_x]
+        )
     if not np.array_equal(mi.key_x[pos], index):  # cannot happen for a consistent grid
         raise RuntimeError("margin index has no entry for a looked-up cell")
     counts = mi.count[pos]
-    order = np.argsort(-counts, kind="stable")
-    counts_sorted = counts[order]
-    start = mi.start[pos][order]
-    x, y, z = xyz[0][order], xyz[1][order], xyz[2][order]
-    rho = np.sqrt(np.maximum(1.0 - z * z, 0.0))
-    ra = ra_deg[order] * RAD_PER_DEG
-    # table-rounding tolerances as 1 - cos(tol): Dec arcs fixed, RA arcs scale with cos dec
-    tol_h = 1.0 - math.cos(TABLE_DEC_HALF_UNIT_ARCSEC / ARCSEC_PER_RAD)
-    tol_v_eq = TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR / ARCSEC_PER_RAD
-
-    best = np.full(n, np.inf)
-    best_seg = np.zeros(n, dtype=np.int64)
-    ambiguous = np.zeros(n, dtype=bool)
-    tol_v = 0.5 * (tol_v_eq * rho) ** 2
-    n_with = np.searchsorted(-counts_sorted, -np.arange(1, int(counts.max()) + 1), side="right")
-    for k, m in enumerate(n_with):
-        seg = mi.flat[start[:m] + k]
-        meas, is_v = _one_minus_cos_distance(
-            x[:m], y[:m], z[:m], rho[:m], [row[seg] for row in attr]
+    start_all = mi.start[pos]
+    x0, y0, z0 = xyz[0], xyz[1], xyz[2]
+    rho0 = np.sqrt(np.maximum(1.0 - z0 * z0, 0.0))
+    # first candidate of every point, in input order
+    best_seg = mi.flat[start_all].astype(np.intp)
+    best = _one_minus_cos_distance(x0, y0, z0, rho0, best_seg)
+    # further candidates: points ordered by their number of candidates (radix sort on 8
+    # bits, most first) so that candidate k of all points that have one is a prefix
+    multi = np.flatnonzero(counts > 1)
+    if multi.size:
+        sub_order = np.argsort(
+            (255 - np.minimum(counts[multi], 255)).astype(np.uint8), kind="stable"
         )
-        better = meas < best[:m]
-        best[:m] = np.where(better, meas, best[:m])
-        best_seg[:m] = np.where(better, seg, best_seg[:m])
-        ambiguous[:m] |= meas <= np.where(is_v, tol_v[:m], tol_h)
+        pts = multi[sub_order]
+        cnt = counts[pts]
+        st = start_all[pts]
+        x, y, z, rho = x0[pts], y0[pts], z0[pts], rho0[pts]
+        b_sub, s_sub = best[pts], best_seg[pts]
+        n_with = np.searchsorted(-cnt, -np.arange(2, int(cnt[0]) + 1), side="right")
+        for k, m in enumerate(n_with, start=1):
+            seg = mi.flat[st[:m] + k]
+            meas = _one_minus_cos_distance(x[:m], y[:m], z[:m], rho[:m], seg)
+            better = meas < b_sub[:m]
+            b_sub[:m] = np.where(better, meas, b_sub[:m])
+            s_sub[:m] = np.where(better, seg, s_sub[:m])
+        best[pts] = b_sub
+        best_seg[pts] = s_sub
+    x, y, z, rho = x0, y0, z0, rho0
+    counts_sorted, start = counts, start_all
 
     # 1 - cos d = b  =>  d = 2 asin(sqrt(b / 2))
     margin = 2.0 * np.arcsin(np.minimum(np.sqrt(0.5 * np.maximum(best, 0.0)), 1.0))
     small = np.flatnonzero(margin < _EXACT_BELOW_RAD)
+    ambiguous = np.zeros(n, dtype=bool)
     if small.size:
-        margin[small] = _segment_distance(
-            np.column_stack([x[small], y[small], z[small]]),
-            ra[small],
-            np.arcsin(np.clip(z[small], -1.0, 1.0)),
-            best_seg[small],
-            segs,
-        )
-    out_margin = np.empty(n)
-    out_margin[order] = margin * ARCSEC_PER_RAD
-    chosen = np.empty(n, dtype=np.int64)
-    chosen[order] = best_seg
-    out_amb = np.empty(n, dtype=bool)
-    out_amb[order] = ambiguous
+        p_small = np.column_stack([x[small], y[small], z[small]])
+        ra_small = np.arctan2(y[small], x[small])
+        dec_small = np.arcsin(np.clip(z[small], -1.0, 1.0))
+        margin[small] = _segment_distance(p_small, ra_small, dec_small, best_seg[small], segs)
+        # table rounding: any candidate (not only the nearest) within its tolerance
+        close = small[margin[small] * ARCSEC_PER_RAD <= TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR]
+        if close.size:
+            cnt = counts_sorted[close]
+            owner = np.repeat(np.arange(close.size), cnt)
+            offs = np.arange(owner.size) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+            seg = mi.flat[np.repeat(start[close], cnt) + offs]
+            pts = close[owner]
+            dist = _segment_distance(
+                np.column_stack([x[pts], y[pts], z[pts]]),
+                np.arctan2(y[pts], x[pts]),
+                np.arcsin(np.clip(z[pts], -1.0, 1.0)),
+                seg,
+                segs,
+            )
+            tol = np.where(
+                segs.kind[seg] == 0,
+                TABLE_DEC_HALF_UNIT_ARCSEC,
+                TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR * rho[pts],
+            )
+            ambiguous[pts[dist * ARCSEC_PER_RAD <= tol]] = True
+    chosen = best_seg
     other = np.where(segs.left[chosen] == index, segs.right[chosen], segs.left[chosen])
-    return out_margin, other.astype(np.int16), out_amb
+    return margin * ARCSEC_PER_RAD, other.astype(np.int16), ambiguous
 
 
 # ---------------------------------------------------------------------------------------
@@ -1141,11 +1181,34 @@ def locate(
         np.asarray(extra_flags, dtype=np.int64),
     )
     shape = ra_b.shape
-    ra = ra_b.ravel() * RAD_PER_DEG
-    dec = dec_b.ravel() * RAD_PER_DEG
-    cd = np.cos(dec)
-    xyz = (cd * np.cos(ra), cd * np.sin(ra), np.sin(dec))
-    return _locate_components(xyz, shape, reduction, with_margin, near_b.ravel(), extra_b.ravel())
+    for name, arr in (("ra_deg", ra_b), ("dec_deg", dec_b)):
+        if not np.all(np.isfinite(arr)):
+            raise ValueError(f"{name}: must be finite")
+    vec = _unit_vectors_rows(ra_b.ravel() * RAD_PER_DEG, dec_b.ravel() * RAD_PER_DEG)
+    return _locate_components(vec, shape, reduction, with_margin, near_b.ravel(), extra_b.ravel())
+
+
+def _cos_sin(angle_rad):
+    """cos and sin from one tangent of the half angle (t = tan(a/2)).
+
+    cos a = (1 - t^2) / (1 + t^2), sin a = 2 t / (1 + t^2); absolute errors of a few 1e-16,
+    and several times faster than two separate calls on large arrays.
+    """
+    t = np.tan(0.5 * angle_rad)
+    t2 = t * t
+    r = 1.0 / (1.0 + t2)
+    return (1.0 - t2) * r, 2.0 * t * r
+
+
+def _unit_vectors_rows(ra_rad, dec_rad):
+    """Unit vectors as rows (3, N) from RA and Dec in radians (1-D)."""
+    out = np.empty((3, ra_rad.size))
+    ca, sa = _cos_sin(ra_rad)
+    cd, sd = _cos_sin(dec_rad)
+    np.multiply(cd, ca, out=out[0])
+    np.multiply(cd, sa, out=out[1])
+    out[2] = sd
+    return out
 
 
 #: Largest separation between the FK4 and FK5 reductions at B1875.0 allowed for when
@@ -1154,20 +1217,16 @@ _REDUCTION_SEPARATION_BOUND_RAD = 2.0 / ARCSEC_PER_RAD
 
 
 def _rotate_components(xyz, reduction):
-    """B1875.0 unit-vector components (X, Y, Z) of ICRS components, for a reduction."""
-    x, y, z = xyz
-    m = _reduction_rotation(reduction)
-    out = [m[k, 0] * x + m[k, 1] * y + m[k, 2] * z for k in range(3)]
+    """B1875.0 unit vectors, rows (3, N), of ICRS unit vectors given as rows (3, N)."""
+    out = _reduction_rotation(reduction) @ xyz
     if reduction == "fk4":
-        e = _b1875_e_terms()
-        out = [out[k] + e[k] for k in range(3)]
-        inv = 1.0 / np.sqrt(out[0] * out[0] + out[1] * out[1] + out[2] * out[2])
-        out = [c * inv for c in out]
+        out += _b1875_e_terms()[:, None]
+        out *= 1.0 / np.sqrt(out[0] * out[0] + out[1] * out[1] + out[2] * out[2])
     return out
 
 
 def _lookup_components(xyz_b1875):
-    """Grid lookup of B1875.0 components; also the distance to the nearest grid line."""
+    """Grid lookup of B1875.0 unit vectors (rows); also RA (hours) and the band indices."""
     x, y, z = xyz_b1875
     table = boundary_table()
     ra_lut, z_lut = _grid_tables()
@@ -1175,29 +1234,36 @@ def _lookup_components(xyz_b1875):
     ra_h += np.where(ra_h < 0.0, 24.0, 0.0)
     i = _edge_index(ra_h, ra_lut)
     j = _edge_index(z, z_lut)
-    return table.cell_index[j, i], ra_h, i, j
+    return _flat_cells()[j * (table.ra_edges_h.size - 1) + i], ra_h, i, j
+
+
+@functools.cache
+def _flat_cells():
+    cells = np.ascontiguousarray(boundary_table().cell_index.ravel())
+    cells.setflags(write=False)
+    return cells
 
 
 def _near_grid_line(xyz_b1875, ra_h, i, j, bound_rad):
     """True where a position is within ``bound_rad`` of a line of the cell grid."""
     table = boundary_table()
     z = xyz_b1875[2]
-    d_ra_h = np.minimum(ra_h - table.ra_edges_h[i], table.ra_edges_h[i + 1] - ra_h)
+    e = table.ra_edges_h
+    d_ra = np.minimum(ra_h - e[i], e[i + 1] - ra_h) * (math.pi / 12.0)
     zs = _grid_tables()[1][3]  # sin of the Dec edges (padded)
     d_z = np.minimum(z - zs[j], zs[j + 1] - z)
-    rho = np.sqrt(np.maximum(1.0 - z * z, 0.0))  # cos(dec)
-    return (d_ra_h * (math.pi / 12.0) * rho < bound_rad) | (d_z < bound_rad)
+    # angular distance to an hour circle ~ dRA cos(dec); compare squares (cos^2 = 1 - z^2)
+    return (d_ra * d_ra * (1.0 - z * z) < bound_rad * bound_rad) | (d_z < bound_rad)
 
 
 def _locate_vectors(vec, shape, reduction, with_margin, near_arcsec, extra_flags, compare=True):
     """:func:`locate` on ICRS unit vectors of shape (N, 3); results reshaped to ``shape``."""
-    vec = np.asarray(vec, dtype=float)
-    xyz = (vec[:, 0].copy(), vec[:, 1].copy(), vec[:, 2].copy())
+    xyz = np.ascontiguousarray(np.asarray(vec, dtype=float).T)
     return _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_flags, compare)
 
 
 def _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_flags, compare=True):
-    """:func:`locate` on ICRS unit-vector components (x, y, z), each of shape (N,).
+    """:func:`locate` on ICRS unit vectors given as rows, shape (3, N).
 
     Notes
     -----
@@ -1214,7 +1280,7 @@ def _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_fl
     idx5 = index
     if compare:
         near_line = np.flatnonzero(_near_grid_line(b, ra_h, i, j, _REDUCTION_SEPARATION_BOUND_RAD))
-        sub = tuple(c[near_line] for c in xyz)
+        sub = xyz[:, near_line]
         others = {}
         for red in ("fk4", "fk5"):
             if red != reduction:
@@ -1230,9 +1296,7 @@ def _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_fl
         flags = flags | np.where(idx4 != idx5, int(ConstellationFlag.REDUCTIONS_DISAGREE), 0)
     margin = other = None
     if with_margin:
-        ra1875 = ra_h * 15.0
-        dec1875 = np.arctan2(b[2], np.hypot(b[0], b[1])) * DEG_PER_RAD
-        margin, other, ambiguous = _margins(b, ra1875, dec1875, index)
+        margin, other, ambiguous = _margins(b, ra_h, index)
         near = (margin <= near_arcsec) | ambiguous
         flags = flags | np.where(near, int(ConstellationFlag.NEAR_BOUNDARY), 0)
         flags = flags | np.where(ambiguous, int(ConstellationFlag.TABLE_ROUNDING_AMBIGUOUS), 0)
