@@ -778,7 +778,8 @@ def _presence(step):
     ci = np.clip((rr.ravel() / step).astype(np.int64), 0, n_ra - 1)
     cj = np.clip(((dd.ravel() + 90.0) / step).astype(np.int64), 0, n_dec - 1)
     ncon = len(table.abbreviations)
-    key = np.unique((cj * n_ra + ci) * ncon + x)
+    key = np.sort((cj * n_ra + ci) * ncon + x)
+    key = key[np.concatenate([[True], key[1:] != key[:-1]])]
     cell = key // ncon
     return cell // n_ra, cell % n_ra, key % ncon, n_ra, n_dec
 
@@ -798,14 +799,16 @@ def _cell_geometry(cj, ci, step):
 
 def _filter_candidates(cj, ci, step, src_start, src_count, src_flat):
     """Keep, per entry, the source segments that can be nearest (Note 1 of _margin_index)."""
-    segs = _segments()
     cra, cdec, radius = _cell_geometry(cj, ci, step)
     entry = np.repeat(np.arange(cj.size), src_count)
     starts = np.cumsum(src_count) - src_count
     within = np.arange(entry.size) - np.repeat(starts, src_count)
     pair_seg = src_flat[np.repeat(src_start, src_count) + within]
-    centre = _unit_vectors(cra * DEG_PER_RAD, cdec * DEG_PER_RAD)
-    dist = _segment_distance(centre[entry], cra[entry], cdec[entry], pair_seg, segs)
+    c = _unit_vectors_rows(cra, cdec)
+    rho = np.cos(cdec)
+    meas = _one_minus_cos_distance(c[0][entry], c[1][entry], c[2][entry], rho[entry], pair_seg)
+    # distance from 1 - cos d (good to ~1e-8 rad, far inside the 3-arcsec slack)
+    dist = 2.0 * np.arcsin(np.minimum(np.sqrt(0.5 * np.maximum(meas, 0.0)), 1.0))
     nearest = np.minimum.reduceat(dist, starts)
     keep = dist <= (nearest + 2.0 * radius)[entry] + _INDEX_SLACK_RAD
     flat = pair_seg[keep].astype(np.int32)
