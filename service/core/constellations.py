@@ -57,6 +57,7 @@ from service.core.constants import (
     RAD_PER_DEG,
     TROPICAL_YEAR_DAYS_LIESKE1979,
 )
+from service.core.propagation import propagate_standard
 
 # ---------------------------------------------------------------------------------------
 # Constants specific to this module (unit and source beside each)
@@ -1426,8 +1427,9 @@ def locate_moving(
 
     Notes
     -----
-    1. Straight-line space motion (Hipparcos Vol. 1, section 1.5.5); see
-       :func:`_space_motion` for the treatment of missing values.
+    1. Straight-line space motion (Hipparcos Vol. 1, section 1.5.5) by
+       :func:`service.core.propagation.propagate_standard`; the flags follow
+       :func:`_space_motion` (same model, used by the crossing search).
     """
     arrays = np.broadcast_arrays(
         *(
@@ -1447,9 +1449,13 @@ def locate_moving(
     )
     shape = arrays[0].shape
     flat = [a.ravel() for a in arrays]
-    r0, v, flags = _space_motion(*flat[:6])
-    vec = _direction_at(r0, v, flat[7] - flat[6])
-    return _locate_vectors(vec, shape, reduction, with_margin, flat[8], flags)
+    _r0, _v, flags = _space_motion(*flat[:6])
+    pma, pmd = (np.where(np.isfinite(a), a, 0.0) for a in flat[3:5])
+    moved, _flags = propagate_standard(
+        flat[0], flat[1], flat[2], pma, pmd, flat[5], flat[6], flat[7]
+    )
+    vec = _unit_vectors_rows(moved.ra_deg * RAD_PER_DEG, moved.dec_deg * RAD_PER_DEG)
+    return _locate_components(vec, shape, reduction, with_margin, flat[8], flags)
 
 
 # ---------------------------------------------------------------------------------------

@@ -425,6 +425,23 @@ def test_straight_line_motion_matches_erfa_starpm():
     assert sep.max() < 0.02
 
 
+def test_crossing_motion_model_equals_the_propagation_core():
+    # the crossing search's own vectors against service.core.propagation (same model)
+    from service.core.propagation import propagate_standard
+
+    rng = np.random.default_rng(16)
+    n = 100
+    ra, dec = _random_sphere(n, seed=17)
+    plx = np.where(rng.uniform(size=n) < 0.2, np.nan, rng.uniform(1, 300, n))
+    pma, pmd = rng.normal(0, 800, (2, n))
+    rv = np.where(rng.uniform(size=n) < 0.2, np.nan, rng.normal(0, 50, n))
+    r0, v, _ = C._space_motion(ra, dec, plx, pma, pmd, rv)
+    for dt in (-30_000.0, 250.0, 90_000.0):
+        mine = C._angles_deg(C._direction_at(r0, v, np.full(n, dt)))
+        theirs, _ = propagate_standard(ra, dec, plx, pma, pmd, rv, 2016.0, 2016.0 + dt)
+        assert _gc_arcsec(*mine, theirs.ra_deg, theirs.dec_deg).max() < 1e-6
+
+
 def test_unknown_parallax_and_rv_are_flagged_not_zeroed():
     r0, v, flags = C._space_motion(
         [10.0, 10.0, 10.0],
