@@ -491,9 +491,9 @@ def _prepare(
 def space_velocity(
     ra_deg,
     dec_deg,
+    parallax_mas,
     pm_ra_cosdec_mas_yr,
     pm_dec_mas_yr,
-    parallax_mas=None,
     radial_velocity_km_s=None,
     *,
     distance_pc=None,
@@ -520,12 +520,12 @@ def space_velocity(
     ----------
     ra_deg, dec_deg : array_like
         ICRS right ascension and declination, degrees.
+    parallax_mas : array_like or None
+        Parallax, mas. NaN or None means unknown; zero or negative is flagged (Note 3).
     pm_ra_cosdec_mas_yr : array_like
         Proper motion in RA *including* the cos(Dec) factor, mas/yr (Note 1).
     pm_dec_mas_yr : array_like
         Proper motion in Dec, mas/yr.
-    parallax_mas : array_like, optional
-        Parallax, mas. NaN or omitted means unknown; zero or negative is flagged (Note 3).
     radial_velocity_km_s : array_like, optional
         Barycentric radial velocity, km/s, positive receding. NaN/omitted means unknown.
     distance_pc : array_like, optional
@@ -589,9 +589,11 @@ def space_velocity(
        components (v_ra, v_dec, v_rad) from the Jacobian of ``A mu / parallax`` and ``G``
        the rotation from the local triad to U, V, W. The speed errors use the gradient of
        the norm, undefined at zero speed. Monte Carlo: draws of (parallax, mu, v_rad) from
-       the Gaussian; draws with non-positive parallax (or distance) are discarded; the
-       covariance is the sample covariance of the kept draws and the intervals their
-       15.87th and 84.13th percentiles.
+       the Gaussian; draws with non-positive parallax (or distance) are discarded. The
+       intervals are the 15.87th and 84.13th percentiles of the kept draws, the errors half
+       their width (robust: small parallax draws give a heavy tail that makes the sample
+       standard deviation meaningless), the correlations the sample correlations, and the
+       covariance ``rho_ij sigma_i sigma_j``.
     7. Secular quantities of the straight-line model (Note 8 of ERFA pmsafe discusses its
        limits): d(mu_ra*)/dt = -2 mu_r mu_ra* + tan(dec) mu_ra* mu_dec,
        d(mu_dec)/dt = -2 mu_r mu_dec - tan(dec) mu_ra*^2, d|mu|/dt = -2 mu_r |mu|,
@@ -692,9 +694,9 @@ def space_velocity(
 def galactic_velocity(
     ra_deg,
     dec_deg,
+    parallax_mas,
     pm_ra_cosdec_mas_yr,
     pm_dec_mas_yr,
-    parallax_mas=None,
     radial_velocity_km_s=None,
     *,
     distance_pc=None,
@@ -1059,10 +1061,19 @@ def _monte_carlo(flat, index, out, draws, rng):
         hi_q = _sample_quantile(srt, n_valid[:, None], PERCENTILE_PLUS_ONE_SIGMA)
 
         bad = ~ok | (n_valid < 2)
-        packed = scov[:, [0, 0, 0, 1, 1, 2], [0, 1, 2, 1, 2, 2]]
+        # Robust errors: half the -1/+1 sigma percentile width (Note 6); correlations from
+        # the sample; covariance = rho_ij sigma_i sigma_j.
+        sigma = 0.5 * (hi_q - lo_q)  # (m, 5): U, V, W, v_t, speed
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sd_sample = np.sqrt(np.diagonal(scov, axis1=1, axis2=2))
+            rho = scov / (sd_sample[:, :, None] * sd_sample[:, None, :])
+        i_idx = np.array([0, 0, 0, 1, 1, 2])
+        j_idx = np.array([0, 1, 2, 1, 2, 2])
+        packed = rho[:, i_idx, j_idx] * sigma[:, i_idx] * sigma[:, j_idx]
+        packed[:, [0, 3, 5]] = sigma[:, :3] ** 2
         interval = np.stack([lo_q[:, :3], hi_q[:, :3]], axis=-1)
-        vt_err = np.sqrt(scov[:, 3, 3])
-        sp_err = np.sqrt(scov[:, 4, 4])
+        vt_err = sigma[:, 3]
+        sp_err = sigma[:, 4]
         vt_err[bad] = np.nan
         blank = bad | rv_missing
         for arr in (packed, interval, sp_err):
