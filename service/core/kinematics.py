@@ -148,22 +148,22 @@ class KinematicsFlag(enum.IntFlag):
     """Per-star flags of the kinematics core: what was missing, assumed or replaced."""
 
     #: Neither a usable parallax nor a distance: distance-dependent outputs are null.
-    NO_DISTANCE = 1
+    PARALLAX_MISSING = 1
     #: Parallax is zero or negative: no distance from it; velocities are null.
-    NON_POSITIVE_PARALLAX = 2
+    PARALLAX_NOT_POSITIVE = 2
     #: Parallax signal-to-noise below the threshold: 1/parallax is a biased distance and
     #: linear uncertainties are unreliable (use the Monte Carlo option or a better distance).
-    LOW_PARALLAX_SNR = 4
+    PARALLAX_LOW_SNR = 4
     #: No radial velocity: radial and total velocity, U, V, W, the line-of-sight angle and
     #: secular quantities are null; the transverse velocity is still given.
-    NO_RADIAL_VELOCITY = 8
+    RADIAL_VELOCITY_MISSING = 8
     #: An explicit distance was used instead of the parallax.
     DISTANCE_GIVEN = 16
     #: Some input uncertainty is missing: the uncertainties that depend on it are null.
-    NO_UNCERTAINTIES = 32
+    UNCERTAINTIES_MISSING = 32
     #: Total proper motion above about 10.4 arcsec/yr: larger than any known star's;
     #: probably a unit mistake.
-    IMPLAUSIBLE_PROPER_MOTION = 64
+    PROPER_MOTION_IMPLAUSIBLE = 64
     #: Uncertainties come from Monte Carlo draws instead of linear propagation.
     MONTE_CARLO_UNCERTAINTIES = 128
 
@@ -551,10 +551,10 @@ def space_velocity(
         Sun's velocity relative to the LSR (U, V, W), km/s; default Schoenrich, Binney &
         Dehnen (2010).
     low_snr_threshold : float
-        Parallax signal-to-noise below which stars are flagged ``LOW_PARALLAX_SNR``.
+        Parallax signal-to-noise below which stars are flagged ``PARALLAX_LOW_SNR``.
     uncertainty_method : {"linear", "monte_carlo", "auto"}
         Linear propagation for all stars, Monte Carlo for all, or Monte Carlo only for the
-        stars flagged ``LOW_PARALLAX_SNR`` (Note 6).
+        stars flagged ``PARALLAX_LOW_SNR`` (Note 6).
     monte_carlo_draws : int
         Draws per star for the Monte Carlo method.
     seed : int or numpy.random.Generator, optional
@@ -642,7 +642,7 @@ def space_velocity(
         if uncertainty_method == "monte_carlo":
             chosen = ~np.isnan(out["distance_pc"])
         else:
-            chosen = (out["flags"] & KinematicsFlag.LOW_PARALLAX_SNR).astype(bool) & ~np.isnan(
+            chosen = (out["flags"] & KinematicsFlag.PARALLAX_LOW_SNR).astype(bool) & ~np.isnan(
                 out["distance_pc"]
             )
         index = np.flatnonzero(chosen)
@@ -855,15 +855,16 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     given = np.isfinite(dist)
     plx_known = np.isfinite(plx)
     positive = plx > 0.0
-    flags = (plx_known & ~positive) * np.uint32(KinematicsFlag.NON_POSITIVE_PARALLAX)
-    flags |= ~plx_known * np.uint32(KinematicsFlag.NO_DISTANCE)
+    flags = (plx_known & ~positive) * np.uint32(KinematicsFlag.PARALLAX_NOT_POSITIVE)
+    flags |= ~plx_known * np.uint32(KinematicsFlag.PARALLAX_MISSING)
     with np.errstate(divide="ignore", invalid="ignore"):
         plx_eq = np.where(positive, plx, np.nan)
         snr = plx / sig_p
         sig_plx_eq = sig_p
         if given.any():
             flags &= ~(
-                given * np.uint32(KinematicsFlag.NON_POSITIVE_PARALLAX | KinematicsFlag.NO_DISTANCE)
+                given
+                * np.uint32(KinematicsFlag.PARALLAX_NOT_POSITIVE | KinematicsFlag.PARALLAX_MISSING)
             )
             flags |= given * np.uint32(KinematicsFlag.DISTANCE_GIVEN)
             plx_eq = np.where(given, 1000.0 / dist, plx_eq)
@@ -871,7 +872,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
             sig_plx_eq = np.where(given, 1000.0 * sig_dist / (dist * dist), sig_p)
             rho_pa = np.where(given, 0.0, rho_pa)
             rho_pd = np.where(given, 0.0, rho_pd)
-    flags |= (positive & (snr < low_snr_threshold)) * np.uint32(KinematicsFlag.LOW_PARALLAX_SNR)
+    flags |= (positive & (snr < low_snr_threshold)) * np.uint32(KinematicsFlag.PARALLAX_LOW_SNR)
 
     inv_plx = 1.0 / plx_eq
     distance = 1000.0 * inv_plx
@@ -880,10 +881,10 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     # --- decomposition -------------------------------------------------------------------
     pm_total = np.sqrt(pmra * pmra + pmdec * pmdec)
     flags |= (pm_total > IMPLAUSIBLE_PROPER_MOTION_MAS_YR) * np.uint32(
-        KinematicsFlag.IMPLAUSIBLE_PROPER_MOTION
+        KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE
     )
     rv_missing = np.isnan(rv)
-    flags |= rv_missing * np.uint32(KinematicsFlag.NO_RADIAL_VELOCITY)
+    flags |= rv_missing * np.uint32(KinematicsFlag.RADIAL_VELOCITY_MISSING)
     va = k * pmra
     vd = k * pmdec
     vt = k * pm_total
@@ -920,7 +921,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     s_ad = a * (b * c_pp - k_c_pd) - b * k_c_pa + kk * (rho_ad * sig_a * sig_d)
     s_rr = sig_rv * sig_rv
     missing_err = np.isnan(s_aa + s_dd + s_ad) | (np.isnan(s_rr) & ~rv_missing)
-    flags |= (missing_err & np.isfinite(distance)) * np.uint32(KinematicsFlag.NO_UNCERTAINTIES)
+    flags |= (missing_err & np.isfinite(distance)) * np.uint32(KinematicsFlag.UNCERTAINTIES_MISSING)
     # Rotation by Dec of the (north, radial) block.
     s_pe = -sd * s_ad
     s_pz = cd * s_ad
@@ -1154,9 +1155,9 @@ def observables_from_velocity(
     given = np.isfinite(dist)
     flags[given] |= np.uint32(KinematicsFlag.DISTANCE_GIVEN)
     flags[~given & np.isfinite(plx) & (plx <= 0.0)] |= np.uint32(
-        KinematicsFlag.NON_POSITIVE_PARALLAX
+        KinematicsFlag.PARALLAX_NOT_POSITIVE
     )
-    flags[~given & ~np.isfinite(plx)] |= np.uint32(KinematicsFlag.NO_DISTANCE)
+    flags[~given & ~np.isfinite(plx)] |= np.uint32(KinematicsFlag.PARALLAX_MISSING)
     with np.errstate(divide="ignore", invalid="ignore"):
         plx_eq = np.where(given, 1000.0 / dist, np.where(plx > 0.0, plx, np.nan))
     g_p, g_q, g_r, _, _ = _galactic_triad(ra, dec)
