@@ -851,14 +851,19 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
      sig_dist, epoch) = args  # fmt: skip
 
     # --- distance: explicit distance where finite, else parallax (Notes 3, 4) ----------
-    # Flags are built arithmetically (mask * bit): much faster than masked assignment.
+    # Flags are built arithmetically (mask * bit), and only where some star needs them:
+    # much faster than masked assignment.
+    n = sl.stop - sl.start
     given = np.isfinite(dist)
-    plx_known = np.isfinite(plx)
     positive = plx > 0.0
-    flags = (plx_known & ~positive) * np.uint32(KinematicsFlag.PARALLAX_NOT_POSITIVE)
-    flags |= ~plx_known * np.uint32(KinematicsFlag.PARALLAX_MISSING)
+    flags = np.zeros(n, dtype=np.uint32)
+    plx_eq = plx
     with np.errstate(divide="ignore", invalid="ignore"):
-        plx_eq = np.where(positive, plx, np.nan)
+        if not positive.all():
+            plx_known = np.isfinite(plx)
+            flags |= (plx_known & ~positive) * np.uint32(KinematicsFlag.PARALLAX_NOT_POSITIVE)
+            flags |= ~plx_known * np.uint32(KinematicsFlag.PARALLAX_MISSING)
+            plx_eq = np.where(positive, plx, np.nan)
         snr = plx / sig_p
         sig_plx_eq = sig_p
         if given.any():
@@ -872,7 +877,9 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
             sig_plx_eq = np.where(given, 1000.0 * sig_dist / (dist * dist), sig_p)
             rho_pa = np.where(given, 0.0, rho_pa)
             rho_pd = np.where(given, 0.0, rho_pd)
-    flags |= (positive & (snr < low_snr_threshold)) * np.uint32(KinematicsFlag.PARALLAX_LOW_SNR)
+    low = positive & (snr < low_snr_threshold)
+    if low.any():
+        flags |= low * np.uint32(KinematicsFlag.PARALLAX_LOW_SNR)
 
     inv_plx = 1.0 / plx_eq
     distance = 1000.0 * inv_plx
@@ -880,17 +887,14 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
 
     # --- decomposition -------------------------------------------------------------------
     pm_total = np.sqrt(pmra * pmra + pmdec * pmdec)
-    flags |= (pm_total > IMPLAUSIBLE_PROPER_MOTION_MAS_YR) * np.uint32(
-        KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE
-    )
+    implausible = pm_total > IMPLAUSIBLE_PROPER_MOTION_MAS_YR
+    if implausible.any():
+        flags |= implausible * np.uint32(KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE)
     rv_missing = np.isnan(rv)
-    flags |= rv_missing * np.uint32(KinematicsFlag.RADIAL_VELOCITY_MISSING)
+    if rv_missing.any():
+        flags |= rv_missing * np.uint32(KinematicsFlag.RADIAL_VELOCITY_MISSING)
     va = k * pmra
     vd = k * pmdec
-    vt = k * pm_total
-    vt2 = vt * vt
-    speed2 = vt2 + rv * rv
-    speed = np.sqrt(speed2)
 
     # --- velocity vector: local triad -> ICRS -> U, V, W ---------------------------------
     sa, ca = sin_cos_deg(ra)
@@ -899,7 +903,6 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     v_e = cd * rv - sd * vd
     v_z = sd * rv + cd * vd
     # Rotation by RA: (east, e) -> (x, y).
-    n = sl.stop - sl.start
     v_icrs = np.empty((n, 3))
     v_icrs[:, 0] = ca * v_e - sa * va
     v_icrs[:, 1] = sa * v_e + ca * va
@@ -921,7 +924,10 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     s_ad = a * (b * c_pp - k_c_pd) - b * k_c_pa + kk * (rho_ad * sig_a * sig_d)
     s_rr = sig_rv * sig_rv
     missing_err = np.isnan(s_aa + s_dd + s_ad) | (np.isnan(s_rr) & ~rv_missing)
-    flags |= (missing_err & np.isfinite(distance)) * np.uint32(KinematicsFlag.UNCERTAINTIES_MISSING)
+    if missing_err.any():
+        flags |= (missing_err & np.isfinite(distance)) * np.uint32(
+            KinematicsFlag.UNCERTAINTIES_MISSING
+        )
     # Rotation by Dec of the (north, radial) block.
     s_pe = -sd * s_ad
     s_pz = cd * s_ad
@@ -946,6 +952,10 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     if not full:
         out["flags"][sl] = flags
         return
+    vt = k * pm_total
+    vt2 = vt * vt
+    speed2 = vt2 + rv * rv
+    speed = np.sqrt(speed2)
     with np.errstate(divide="ignore", invalid="ignore"):
         vt_var = va * (va * s_aa + 2.0 * vd * s_ad) + vd * vd * s_dd
         out["transverse_velocity_error_km_s"][sl] = np.sqrt(vt_var) / vt
