@@ -23,6 +23,15 @@ U points towards the Galactic centre (l = 0, b = 0), V in the direction of Galac
 (l = 90 deg, b = 0), W towards the north Galactic pole (b = +90 deg): a right-handed triad.
 U, V, W are heliocentric (velocity relative to the Sun) unless relative to the local standard
 of rest (LSR) is asked for; then the Sun's motion relative to the LSR is added.
+
+Agreement with other implementations
+------------------------------------
+The galactic axes are those of the Hipparcos Catalogue; ERFA ``icrs2g`` uses the same
+definition (agreement 3e-16). astropy's ``Galactic`` frame is defined from the FK4 B1950
+pole through FK5 and differs from it by a rotation of about 1.2e-7 rad (matrix elements
+differ by up to 9.7e-8, about 20 mas): U, V, W agree with astropy to about 1.2e-7 of the
+speed (4e-4 km/s at 3000 km/s), far below any measurement error, and speeds agree to
+rounding. The seven XHIP stars used in astropy's own tests agree to their published 0.1 km/s.
 """
 
 from __future__ import annotations
@@ -123,13 +132,13 @@ def galactic_rotation_matrix(
     1. ``M = R3(-l_node) R1(90 deg - dec_pole) R3(90 deg + ra_pole)`` with SOFA's frame
        rotation convention (eraRz, eraRx). The default angles are the Hipparcos ones and
        the result is the transpose of the matrix ``A_G`` printed in the Hipparcos Catalogue
-       Vol. 1, eq. 1.5.11 (printed to 10 decimals, about 20 micro-arcsec).
+       Vol. 1, section 1.5.3 (printed to 10 decimals, about 20 micro-arcsec).
     2. ERFA ``icrs2g`` uses the same definition.
 
     References
     ----------
     ESA 1997, The Hipparcos and Tycho Catalogues, ESA SP-1200, Vol. 1, section 1.5.3,
-    eqs. 1.5.9-1.5.11.
+    (the three angles and the matrix A_G).
     """
     return (
         _rotation_z(-node_longitude_deg * RAD_PER_DEG)
@@ -594,8 +603,8 @@ def space_velocity(
        their width (robust: small parallax draws give a heavy tail that makes the sample
        standard deviation meaningless), the correlations the sample correlations, and the
        covariance ``rho_ij sigma_i sigma_j``.
-    7. Secular quantities of the straight-line model (Note 8 of ERFA pmsafe discusses its
-       limits): d(mu_ra*)/dt = -2 mu_r mu_ra* + tan(dec) mu_ra* mu_dec,
+    7. Secular quantities of the straight-line model (uniform motion in a straight line,
+       as in ERFA pmsafe Note 5): d(mu_ra*)/dt = -2 mu_r mu_ra* + tan(dec) mu_ra* mu_dec,
        d(mu_dec)/dt = -2 mu_r mu_dec - tan(dec) mu_ra*^2, d|mu|/dt = -2 mu_r |mu|,
        d(v_rad)/dt = v_t^2 / d, with mu_r = v_rad / d the radial proper motion. Closest
        approach: t = -d v_rad / |v|^2, minimum distance d v_t / |v|, speed |v|.
@@ -604,7 +613,7 @@ def space_velocity(
 
     References
     ----------
-    Johnson, D.R.H. & Soderblom, D.R. 1987, AJ 93, 864, equations 1 and the matrix T.
+    Johnson, D.R.H. & Soderblom, D.R. 1987, AJ 93, 864 (the matrices T, A and B = T A).
     ESA 1997, The Hipparcos and Tycho Catalogues, ESA SP-1200, Vol. 1, section 1.5.3 (galactic
     matrix), section 1.2.8 (perspective acceleration), section 1.5.5 (rigorous propagation).
     Schoenrich, R., Binney, J. & Dehnen, W. 2010, MNRAS 403, 1829 (solar motion).
@@ -962,7 +971,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
         out["total_velocity_error_km_s"][sl] = np.sqrt(vt_var + rv * rv * s_rr) / speed
 
     # --- secular quantities (Note 7) -----------------------------------------------------
-    # Radial proper motion mu_r = v_rad / d, per year (Hipparcos Vol. 1 eq. 1.2.21 gives it
+    # Radial proper motion mu_r = v_rad / d, per year (Hipparcos Vol. 1 section 1.2.8 gives it
     # in mas/yr as v_rad * parallax / A).
     mu_r_per_yr = rv / (k * MAS_PER_RAD)
     tan_dec_per_rad = sd / (cd * MAS_PER_RAD)

@@ -711,3 +711,48 @@ def test_closest_approach_against_erfa_propagated_parallax(star):
     # straight-line model does not); the minimum distance differs by less than 1e-3.
     assert abs(grid[i] - t0) < 2e-3 * abs(t0) + (grid[1] - grid[0])  # yr
     assert abs(1.0 / px[i] - r.closest_approach_distance_pc) < 1e-3 * (1000.0 / plx)  # pc
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    ra=st.floats(0.0, 360.0, **finite),
+    dec=st.floats(-90.0, 90.0, **finite),
+    plx=st.floats(0.01, 1000.0, **finite),
+    pmra=st.floats(-5000.0, 5000.0, **finite),
+    pmdec=st.floats(-5000.0, 5000.0, **finite),
+    rv=st.floats(-1000.0, 1000.0, **finite),
+)
+def test_speed_is_frame_invariant(ra, dec, plx, pmra, pmdec, rv):
+    # Invariant: a rotation keeps the length of the velocity, |(U, V, W)| = |v|, and the
+    # transverse and radial parts are orthogonal: v^2 = v_t^2 + v_r^2.
+    r = space_velocity(ra, dec, plx, pmra, pmdec, rv)
+    speed = float(np.linalg.norm(r.uvw_km_s))
+    assert abs(speed - float(r.total_velocity_km_s)) <= 1e-12 * max(speed, 1.0)  # km/s
+    vt = np.hypot(r.transverse_velocity_ra_km_s, r.transverse_velocity_dec_km_s)
+    assert abs(vt - r.transverse_velocity_km_s) <= 1e-12 * max(float(vt), 1.0)  # km/s
+
+
+@settings(max_examples=100, deadline=None)
+@given(
+    ra=st.floats(0.0, 360.0, **finite),
+    dec=st.floats(-89.0, 89.0, **finite),
+    plx=st.floats(0.1, 100.0, **finite),
+)
+def test_zero_motion_gives_zero_velocity(ra, dec, plx):
+    # Limit: no proper motion and no radial velocity is no space velocity, and no
+    # perspective acceleration.
+    r = space_velocity(ra, dec, plx, 0.0, 0.0, 0.0)
+    assert np.abs(r.uvw_km_s).max() == 0.0
+    assert r.radial_velocity_rate_km_s_yr == 0.0
+    assert r.pm_total_rate_mas_yr2 == 0.0
+
+
+def test_galactic_velocity_lsr_and_properties():
+    r = galactic_velocity(10.0, 20.0, 5.0, 30.0, -40.0, 12.0, relative_to_lsr=True,
+                          parallax_error_mas=0.2, pm_ra_cosdec_error_mas_yr=0.1,
+                          pm_dec_error_mas_yr=0.1, radial_velocity_error_km_s=1.0)  # fmt: skip
+    assert np.abs(r.uvw_lsr_km_s - r.uvw_km_s - V_SUN_LSR_SCHOENRICH2010_KM_S).max() < 1e-12
+    cov = r.uvw_covariance_km2_s2
+    assert np.allclose(cov, cov.T, rtol=0, atol=0)
+    assert np.all(np.linalg.eigvalsh(cov) > 0)
+    assert np.abs(r.uvw_error_km_s - np.sqrt(np.diag(cov))).max() < 1e-15
