@@ -144,6 +144,22 @@ def run_astropy_with_uncertainties(s: dict[str, np.ndarray]):
     return centre, cov
 
 
+def single_star_times(repeat: int = 200) -> tuple[float, float]:
+    """Seconds per call for one star: the core (everything) and astropy (values only)."""
+    one = {k: v[:1] for k, v in make_stars(1).items()}
+    run_core_full(one)
+    t0 = time.perf_counter()
+    for _ in range(repeat):
+        run_core_full(one)
+    t_core = (time.perf_counter() - t0) / repeat
+    run_astropy_values(one)
+    t0 = time.perf_counter()
+    for _ in range(max(repeat // 10, 1)):
+        run_astropy_values(one)
+    t_astropy = (time.perf_counter() - t0) / max(repeat // 10, 1)
+    return t_core, t_astropy
+
+
 def best_time(fn, arg, repeat: int) -> tuple[float, object]:
     best, result = float("inf"), None
     for _ in range(repeat):
@@ -179,6 +195,9 @@ def main(argv: list[str] | None = None) -> dict[str, float]:
           f"{t_unc / t_full:6.1f}x")  # fmt: skip
     print(f"ratio, astropy values only / galactic_velocity (with uncertainties): "
           f"{t_values / t_uvw:6.1f}x")  # fmt: skip
+    t1_core, t1_astropy = single_star_times()
+    print(f"one star: core space_velocity {t1_core * 1e6:7.0f} us, astropy values only "
+          f"{t1_astropy * 1e6:7.0f} us, ratio {t1_astropy / t1_core:5.1f}x")  # fmt: skip
     print(f"max |UVW core - astropy|: {du:.2e} km/s (galactic definitions differ by ~1e-7)")
     print(f"max relative |error core - astropy finite differences|: {derr:.1e}")
     return {
@@ -188,6 +207,8 @@ def main(argv: list[str] | None = None) -> dict[str, float]:
         "astropy_values_s": t_values,
         "ratio_same_job": t_unc / t_uvw,
         "ratio_values_only": t_values / t_uvw,
+        "one_star_core_s": t1_core,
+        "one_star_astropy_s": t1_astropy,
     }
 
 

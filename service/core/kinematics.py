@@ -1104,7 +1104,8 @@ def _monte_carlo(flat, index, out, draws, rng):
         out["uvw_monte_carlo_interval"][idx] = interval
         out["transverse_velocity_error_km_s"][idx] = vt_err
         out["total_velocity_error_km_s"][idx] = sp_err
-        out["flags"][idx] |= np.uint32(KinematicsFlag.MONTE_CARLO_UNCERTAINTIES)
+        done = idx[~bad]
+        out["flags"][done] |= np.uint32(KinematicsFlag.MONTE_CARLO_UNCERTAINTIES)
 
 
 # ---------------------------------------------------------------------------------------

@@ -756,3 +756,11 @@ def test_galactic_velocity_lsr_and_properties():
     assert np.allclose(cov, cov.T, rtol=0, atol=0)
     assert np.all(np.linalg.eigvalsh(cov) > 0)
     assert np.abs(r.uvw_error_km_s - np.sqrt(np.diag(cov))).max() < 1e-15
+
+
+def test_monte_carlo_without_errors_gives_nulls_not_a_claim():
+    r = space_velocity(10.0, 20.0, 5.0, 30.0, -40.0, 12.0, uncertainty_method="monte_carlo",
+                       monte_carlo_draws=500, seed=1)  # fmt: skip
+    assert np.isnan(r.uvw_error_km_s).all()
+    assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING
+    assert not r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES
