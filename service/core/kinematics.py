@@ -607,7 +607,9 @@ def space_velocity(
        as in ERFA pmsafe Note 5): d(mu_ra*)/dt = -2 mu_r mu_ra* + tan(dec) mu_ra* mu_dec,
        d(mu_dec)/dt = -2 mu_r mu_dec - tan(dec) mu_ra*^2, d|mu|/dt = -2 mu_r |mu|,
        d(v_rad)/dt = v_t^2 / d, with mu_r = v_rad / d the radial proper motion. Closest
-       approach: t = -d v_rad / |v|^2, minimum distance d v_t / |v|, speed |v|.
+       approach: t = -d v_rad / |v|^2, minimum distance d v_t / |v|, speed |v|. At a
+       celestial pole the component rates are undefined (NaN or infinite); the total rate
+       is not.
     8. The light-time (Roemer) correction between apparent and true motions (a factor
        1 - v_rad/c, below 1e-3) is not applied.
 
@@ -974,10 +976,12 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     # Radial proper motion mu_r = v_rad / d, per year (Hipparcos Vol. 1 section 1.2.8 gives it
     # in mas/yr as v_rad * parallax / A).
     mu_r_per_yr = rv / (k * MAS_PER_RAD)
-    tan_dec_per_rad = sd / (cd * MAS_PER_RAD)
     minus_two_mu_r = -2.0 * mu_r_per_yr
-    out["pm_ra_cosdec_rate_mas_yr2"][sl] = pmra * (minus_two_mu_r + tan_dec_per_rad * pmdec)
-    out["pm_dec_rate_mas_yr2"][sl] = minus_two_mu_r * pmdec - tan_dec_per_rad * pmra * pmra
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # At a celestial pole (cos dec = 0) the component rates are undefined: NaN/inf.
+        tan_dec_per_rad = sd / (cd * MAS_PER_RAD)
+        out["pm_ra_cosdec_rate_mas_yr2"][sl] = pmra * (minus_two_mu_r + tan_dec_per_rad * pmdec)
+        out["pm_dec_rate_mas_yr2"][sl] = minus_two_mu_r * pmdec - tan_dec_per_rad * pmra * pmra
     out["pm_total_rate_mas_yr2"][sl] = minus_two_mu_r * pm_total
     d_km = distance * PC_KM
     out["radial_velocity_rate_km_s_yr"][sl] = vt2 * (JULIAN_YEAR_S / d_km)
