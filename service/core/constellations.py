@@ -317,8 +317,8 @@ def _unit_vectors(ra_deg, dec_deg):
 def _angles_deg(vec):
     x, y, z = vec[..., 0], vec[..., 1], vec[..., 2]
     ra = np.arctan2(y, x) * DEG_PER_RAD
-    ra += np.where(ra < 0.0, 360.0, 0.0)
-    ra[ra >= 360.0] = 0.0
+    ra = ra + np.where(ra < 0.0, 360.0, 0.0)
+    ra = np.where(ra >= 360.0, 0.0, ra)
     dec = np.arctan2(z, np.hypot(x, y)) * DEG_PER_RAD
     return ra, dec
 
@@ -534,12 +534,10 @@ def _grid_tables():
 def _edge_index(values, lut):
     """``searchsorted(edges, values, side="right") - 1``, clipped, by uniform bins."""
     origin, inv_width, first, padded, last = lut
-    b = ((values - origin) * inv_width).astype(np.intp)
-    np.clip(b, 0, first.size - 1, out=b)
+    b = np.clip(((values - origin) * inv_width).astype(np.intp), 0, first.size - 1)
     idx = first[b]
     idx += values >= padded[idx + 1]  # bins are narrower than edge gaps: one step at most
-    np.minimum(idx, last, out=idx)
-    return idx
+    return np.minimum(idx, last)
 
 
 def _ra_hours(vec):

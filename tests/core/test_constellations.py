@@ -383,6 +383,28 @@ def test_table_rounding_is_flagged():
     assert list((res.flags & Flag.TABLE_ROUNDING_AMBIGUOUS) != 0) == [True, False]
 
 
+@settings(max_examples=60, deadline=None)
+@given(
+    st.floats(0.0, 360.0, exclude_max=True),
+    st.floats(-89.0, 89.0),
+    st.floats(0.0, 2 * math.pi),
+    st.floats(0.0, 0.99),
+)
+def test_moving_less_than_the_margin_keeps_the_constellation(ra, dec, angle, fraction):
+    # Invariant of the margin: a displacement shorter than it cannot reach a boundary.
+    res = C.locate(ra, dec)
+    step_deg = fraction * float(res.margin_arcsec) / 3600.0
+    p = C._unit_vectors(float(res.ra_b1875_deg), float(res.dec_b1875_deg))
+    east = np.array(
+        [-math.sin(math.radians(res.ra_b1875_deg)), math.cos(math.radians(res.ra_b1875_deg)), 0.0]
+    )
+    north = np.cross(p, east)
+    t = math.radians(step_deg)
+    q = math.cos(t) * p + math.sin(t) * (math.cos(angle) * east + math.sin(angle) * north)
+    moved = C._grid_lookup(*C._angles_deg(q))
+    assert int(moved) == int(res.index)
+
+
 def test_near_boundary_threshold():
     ra, dec = _random_sphere(50_000, seed=10)
     res = C.locate(ra, dec, near_boundary_arcsec=60.0)
