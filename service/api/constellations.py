@@ -392,24 +392,40 @@ def _locate(args, with_margin: bool):
     return table, res, flags, epoch
 
 
+def _names_per_star(flags) -> list[list[str]]:
+    """Flag names per star; stars with the same mask share one list (fast for 10**6)."""
+    uniq, inverse = np.unique(np.asarray(flags), return_inverse=True)
+    per_mask = flag_names(uniq, core.ConstellationFlag)
+    return [per_mask[k] for k in inverse.ravel().tolist()]
+
+
+def _flag_meanings(flags) -> dict:
+    present = int(np.bitwise_or.reduce(np.asarray(flags, dtype=np.int64).ravel(), initial=0))
+    used = {n for names in flag_names([present], core.ConstellationFlag) for n in names}
+    return {k: v for k, v in FLAG_MEANINGS.items() if k in used}
+
+
+def _lookup_strings(values, index):
+    return np.asarray(values, dtype=object)[np.asarray(index)].tolist()
+
+
 def _membership_body(args, with_margin: bool):
     table, res, flags, epoch = _locate(args, with_margin)
-    abbr = np.asarray(core.boundary_table().abbreviations)
-    names_all = np.asarray(core.boundary_table().names)
-    names = flag_names(flags, core.ConstellationFlag)
+    abbr = core.boundary_table().abbreviations
+    names = _names_per_star(flags)
     n = table.size
     cols = {
         "id": table.ids,
-        "constellation": abbr[res.index].tolist(),
-        "name": names_all[res.index].tolist(),
-        "constellation_fk4": abbr[res.index_fk4].tolist(),
-        "constellation_fk5": abbr[res.index_fk5].tolist(),
-        "reductions_disagree": (res.index_fk4 != res.index_fk5).tolist(),
+        "constellation": _lookup_strings(abbr, res.index),
+        "name": _lookup_strings(core.boundary_table().names, res.index),
+        "constellation_fk4": _lookup_strings(abbr, res.index_fk4),
+        "constellation_fk5": _lookup_strings(abbr, res.index_fk5),
+        "reductions_disagree": res.index_fk4 != res.index_fk5,
     }
     if with_margin:
         cols["margin_arcsec"] = res.margin_arcsec
-        cols["across"] = abbr[res.other_side_index].tolist()
-        cols["near_boundary"] = ((flags & int(core.ConstellationFlag.NEAR_BOUNDARY)) != 0).tolist()
+        cols["across"] = _lookup_strings(abbr, res.other_side_index)
+        cols["near_boundary"] = (flags & int(core.ConstellationFlag.NEAR_BOUNDARY)) != 0
     cols["ra_b1875_deg"] = res.ra_b1875_deg
     cols["dec_b1875_deg"] = res.dec_b1875_deg
     cols["flags"] = names
@@ -420,7 +436,7 @@ def _membership_body(args, with_margin: bool):
         "star_count": n,
         "layout": layout,
         "units": UNITS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "flag_meanings": _flag_meanings(flags),
     }
     if layout == "columns":
         body["columns"] = cols
@@ -552,7 +568,7 @@ def crossings(args):
         reduction=args["reduction"],
     )
     abbr = core.boundary_table().abbreviations
-    names = flag_names(res.flags, core.ConstellationFlag)
+    names = _names_per_star(res.flags)
     epochs = epochs_out(res.epoch_jyear) if res.epoch_jyear.size else []
     per_star: list[list[dict]] = [[] for _ in range(table.size)]
     for k in range(res.star.size):
@@ -583,7 +599,7 @@ def crossings(args):
         "end": ends[2],
         "epoch_precision_days": core.CROSSING_EPOCH_TOLERANCE_YR * 365.25,
         "star_count": table.size,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "flag_meanings": _flag_meanings(res.flags),
         "stars": stars,
     }
     return current_app.json.response(body)

@@ -1105,14 +1105,18 @@ class ConstellationLookup:
         return np.stack(self.b1875_components, axis=-1)
 
     @functools.cached_property
+    def _b1875_angles(self) -> tuple:
+        return _angles_deg(self.b1875_xyz)
+
+    @property
     def ra_b1875_deg(self) -> np.ndarray:
         """Right ascension at equinox B1875.0, degrees in [0, 360)."""
-        return _angles_deg(self.b1875_xyz)[0]
+        return self._b1875_angles[0]
 
-    @functools.cached_property
+    @property
     def dec_b1875_deg(self) -> np.ndarray:
         """Declination at equinox B1875.0, degrees."""
-        return _angles_deg(self.b1875_xyz)[1]
+        return self._b1875_angles[1]
 
     @property
     def abbreviation(self) -> np.ndarray:
