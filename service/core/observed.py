@@ -1216,6 +1216,7 @@ def observed_places(
     atmosphere: Atmosphere | None = None,
     *,
     eop: EarthOrientation | None = None,
+    eop_values: tuple | None = None,
     horizon_limit_deg: float = DEFAULT_HORIZON_LIMIT_DEG,
     sun_avoidance_deg: float = DEFAULT_SUN_AVOIDANCE_DEG,
     geocentric: bool = True,
@@ -1245,6 +1246,9 @@ def observed_places(
         standard atmosphere, pressure 0 turns refraction off.
     eop : EarthOrientation, optional
         Earth-orientation tables; default :func:`earth_orientation`.
+    eop_values : tuple (ut1_utc_s, pm_x_arcsec, pm_y_arcsec), optional
+        Values to use instead of the tables (e.g. from the facility's own service); they are
+        reported with status ``MEASURED_RAPID`` and table name ``given``.
     horizon_limit_deg : float
         Altitude below which the target is flagged BELOW_HORIZON_LIMIT, degrees.
     sun_avoidance_deg : float
@@ -1289,6 +1293,21 @@ def observed_places(
     phi = site.latitude_deg * RAD_PER_DEG
     refr = refraction_settings(site, atmosphere)
     eo_vals = earth_orientation_at(jd1, jd2, eop)
+    if eop_values is not None:
+        dut, pmx, pmy = (np.broadcast_to(np.asarray(x, dtype=float), jd1.shape) for x in eop_values)
+        eo_vals = EarthOrientationValues(
+            ut1_utc_s=dut,
+            pm_x_arcsec=pmx,
+            pm_y_arcsec=pmy,
+            status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
+            table=np.full(jd1.shape, "given"),
+            ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
+            pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
+            pointing_error_arcsec=np.full(
+                jd1.shape, ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC
+            ),
+            accuracy_class=np.full(jd1.shape, "milliarcsecond"),
+        )
     xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
     yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
     astrom, eo = _quiet_erfa(
