@@ -73,10 +73,10 @@ DEFAULT_SUN_AVOIDANCE_DEG = 30.0
 #: Default horizon limit for the target's observed altitude, degrees (geometric horizon).
 DEFAULT_HORIZON_LIMIT_DEG = 0.0
 
-#: Supported span of observation instants, Julian epochs (UTC is defined from 1960; the IAU
-#: 2006/2000A precession-nutation is intended for a few centuries around J2000.0).
+#: Supported span of observation instants, Julian epochs: UTC is defined from 1960, and the
+#: Earth ephemeris of SOFA epv00 (used by apco13) is valid 1900-2100 AD.
 SUPPORTED_EPOCH_MIN = 1960.0
-SUPPORTED_EPOCH_MAX = 2200.0
+SUPPORTED_EPOCH_MAX = 2100.0
 
 #: Supported wavelength ranges for refraction, micrometres: optical/IR 0.3-2.0 (SOFA refco
 #: model tested 0.4-2 um, Note 2 of refco) and radio 100 um - 1 m (refco radio case).
