@@ -33,7 +33,7 @@ bench: venv
 	$(BIN)/python -m benchmarks.run
 
 demo: venv
-	$(BIN)/python -m shared.demo.run
+	$(BIN)/python shared/demo/run.py
 
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .hypothesis

@@ -1,6 +1,33 @@
 """Shared test fixtures."""
 
-import os
+import json
+import pathlib
 
-# Never touch the network from tests: astropy must use its packaged tables only.
-os.environ.setdefault("SKYDRIFT_TESTING", "1")
+import pytest
+
+ROOT = pathlib.Path(__file__).resolve().parents[1]
+DEMO = ROOT / "shared" / "demo"
+
+
+@pytest.fixture(scope="session")
+def settings():
+    from service.config import Settings
+
+    return Settings(max_stars=1000, max_body_bytes=2_000_000, max_results=5000, max_epochs=100)
+
+
+@pytest.fixture(scope="session")
+def app(settings):
+    from service.api import create_app
+
+    return create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True})
+
+
+@pytest.fixture()
+def client(app):
+    return app.test_client()
+
+
+@pytest.fixture(scope="session")
+def demo_catalogue():
+    return json.loads((DEMO / "catalogue.json").read_text())

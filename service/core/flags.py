@@ -28,8 +28,10 @@ def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[list[str]]:
         One list of flag names per star (empty where no bit is set).
     """
     mask = np.atleast_1d(np.asarray(mask, dtype=np.int64))
-    members = [(m.name.lower(), int(m.value)) for m in flag_type]
     out: list[list[str]] = [[] for _ in range(mask.shape[0])]
+    if not mask.any():
+        return out
+    members = [(m.name.lower(), int(m.value)) for m in flag_type]
     for name, bit in members:
         for i in np.flatnonzero(mask & bit):
             out[i].append(name)

@@ -1,0 +1,207 @@
+"""HTTP throughput and large-batch cost, as ratios measured in one run.
+
+1. One star per request under the project's gunicorn configuration, load from wrk (a
+   separate process) on loopback: POST /v1/propagation against a bare constant endpoint in
+   the same application, and against a naive astropy SkyCoord endpoint.
+2. 1,000,000 stars in one columnar JSON request: end-to-end time against the core's compute
+   time for the same stars, and the peak memory of the worker.
+
+Run: .venv/bin/python -m benchmarks.run http   (needs `wrk`, from Debian's packages)
+"""
+
+from __future__ import annotations
+
+import os
+import pathlib
+import re
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+
+import numpy as np
+import orjson
+import requests
+
+ROOT = pathlib.Path(__file__).resolve().parents[1]
+STAR = {
+    "id": "KRC 0017",
+    "ra_deg": 55.52754788,
+    "dec_deg": 19.626362948,
+    "parallax_mas": 161.3,
+    "pm_ra_cosdec_mas_yr": -2871.2,
+    "pm_dec_mas_yr": 2602.5,
+    "radial_velocity_km_s": -41.7,
+}
+ONE_STAR = {"stars": [STAR], "catalogue_epoch": 2016.0, "target_epochs": [2026.92]}
+DURATION_S = int(os.environ.get("SKYDRIFT_BENCH_SECONDS", "8"))
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def start(workers: int | None = None):
+    port = _free_port()
+    env = dict(os.environ, SKYDRIFT_BIND=f"127.0.0.1:{port}", SKYDRIFT_ACCESS_LOG="/dev/null")
+    if workers:
+        env["SKYDRIFT_WORKERS"] = str(workers)
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "gunicorn",
+            "-c",
+            str(ROOT / "deploy" / "gunicorn.conf.py"),
+            "benchmarks.http_app:app",
+        ],
+        cwd=ROOT,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    url = f"http://127.0.0.1:{port}"
+    for _ in range(200):
+        try:
+            if requests.get(url + "/ready", timeout=1).ok:
+                return url, proc
+        except requests.ConnectionError:
+            time.sleep(0.1)
+    proc.kill()
+    raise RuntimeError("service did not start")
+
+
+def stop(proc):
+    proc.send_signal(signal.SIGTERM)
+    proc.wait(timeout=60)
+
+
+def wrk_rps(url: str, path: str, body: dict, connections: int = 8) -> float:
+    lua = tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False)
+    payload = orjson.dumps(body).decode().replace("\\", "\\\\").replace('"', '\\"')
+    lua.write(
+        'wrk.method = "POST"\n'
+        'wrk.headers["Content-Type"] = "application/json"\n'
+        f'wrk.body = "{payload}"\n'
+    )
+    lua.close()
+    out = subprocess.run(
+        ["wrk", "-t1", f"-c{connections}", f"-d{DURATION_S}s", "-s", lua.name, url + path],
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout
+    os.unlink(lua.name)
+    errors = re.search(r"Non-2xx or 3xx responses: (\d+)", out)
+    if errors:
+        raise RuntimeError(f"{path}: {errors.group(1)} failed responses")
+    return float(re.search(r"Requests/sec:\s+([\d.]+)", out).group(1))
+
+
+def worker_peak_rss_mb(master_pid: int) -> float:
+    peak = 0.0
+    for child in pathlib.Path("/proc").iterdir():
+        if not child.name.isdigit():
+            continue
+        try:
+            status = (child / "status").read_text()
+        except OSError:
+            continue
+        if f"PPid:\t{master_pid}\n" in status:
+            m = re.search(r"VmHWM:\s+(\d+) kB", status)
+            if m:
+                peak = max(peak, int(m.group(1)) / 1024)
+    return peak
+
+
+def one_star_rates() -> dict:
+    url, proc = start()
+    try:
+        for path in ("/bench/constant", "/v1/propagation", "/bench/naive"):
+            requests.post(url + path, json=ONE_STAR, timeout=10).raise_for_status()
+        rates = {
+            "constant": wrk_rps(url, "/bench/constant", ONE_STAR),
+            "propagation": wrk_rps(url, "/v1/propagation", ONE_STAR),
+            "naive": wrk_rps(url, "/bench/naive", ONE_STAR),
+        }
+    finally:
+        stop(proc)
+    return rates
+
+
+def million_star_batch(n: int = 1_000_000) -> dict:
+    from service.core.propagation import propagate
+
+    rng = np.random.default_rng(7)
+    cols = {
+        "ra_deg": rng.uniform(0, 360, n),
+        "dec_deg": np.degrees(np.arcsin(rng.uniform(-1, 1, n))),
+        "parallax_mas": rng.uniform(0.1, 50, n),
+        "pm_ra_cosdec_mas_yr": rng.normal(0, 30, n),
+        "pm_dec_mas_yr": rng.normal(0, 30, n),
+        "radial_velocity_km_s": rng.normal(0, 40, n),
+    }
+    t0 = time.perf_counter()
+    propagate(*(cols[k][:, None] for k in cols), 2016.0, np.array([2026.92]))
+    core_s = time.perf_counter() - t0
+    body = orjson.dumps(
+        {
+            "stars": cols,
+            "catalogue_epoch": 2016.0,
+            "target_epochs": [2026.92],
+            "layout": "columns",
+        },
+        option=orjson.OPT_SERIALIZE_NUMPY,
+    )
+    url, proc = start(workers=1)
+    try:
+        t0 = time.perf_counter()
+        r = requests.post(
+            url + "/v1/propagation",
+            data=body,
+            headers={"Content-Type": "application/json"},
+            timeout=600,
+        )
+        r.raise_for_status()
+        answer = orjson.loads(r.content)
+        http_s = time.perf_counter() - t0
+        assert answer["star_count"] == n
+        peak = worker_peak_rss_mb(proc.pid)
+    finally:
+        stop(proc)
+    return {"core_s": core_s, "http_s": http_s, "body_mb": len(body) / 1e6, "peak_mb": peak}
+
+
+def main() -> None:
+    if not shutil.which("wrk"):
+        print("bench_http: wrk not found (apt-get install wrk); skipped")
+        return
+    rates = one_star_rates()
+    print("HTTP, one star per request, gunicorn (deploy/gunicorn.conf.py), wrk -t1 -c8:")
+    for k, v in rates.items():
+        print(f"  {k:12s} {v:9.0f} requests/s")
+    print(
+        f"  propagation / constant endpoint: {rates['propagation'] / rates['constant']:.2f}"
+        "  (target >= 0.60)"
+    )
+    print(
+        f"  propagation / naive astropy endpoint: {rates['propagation'] / rates['naive']:.1f}x"
+        "  (target >= 5x)"
+    )
+    big = million_star_batch()
+    print("HTTP, 1,000,000 stars in one columnar JSON request (one worker):")
+    print(
+        f"  body {big['body_mb']:.0f} MB, end to end {big['http_s']:.2f} s, "
+        f"core alone {big['core_s']:.2f} s"
+    )
+    print(f"  end-to-end / core: {big['http_s'] / big['core_s']:.1f}x  (target <= 8x)")
+    print(f"  peak worker memory: {big['peak_mb']:.0f} MB  (target < 2048 MB)")
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,106 @@
+"""Application factory: ``create_app(config=None)`` builds the Flask app.
+
+Tests call it with a test configuration; gunicorn serves ``service.wsgi:app``.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+import uuid
+
+import flask_smorest
+from flask import Flask, g, request
+from werkzeug.exceptions import HTTPException
+
+from .. import __version__
+from ..config import Settings
+from . import errors
+from .common import ProblemSchema, epoch_field_to_openapi
+from .jsonio import OrjsonProvider
+from .tables import table_field_to_openapi
+
+API_DESCRIPTION = """\
+Skydrift moves stellar astrometry between epochs, frames and places; finds the IAU
+constellation of a position at an epoch, its distance from the boundary and future crossings;
+and turns astrometry into velocities.
+
+Units are fixed and appear in field names: degrees on the sky, mas for parallax, mas/yr for
+proper motion (the RA component includes cos(dec)), km/s for velocities, pc for distances.
+Epochs are Julian epochs on the TDB scale unless written otherwise ("J2016.0", "B1950.0",
+"JD2451545.0", "MJD51544.5", ISO 8601 UTC, "now"). A null value means unknown, never zero.
+
+Errors are RFC 9457 problem details (application/problem+json) listing each offending field.
+
+Safety: figures about the Sun and the horizon are advisory. The facility's own interlocks and
+safety rules decide whether a telescope may point somewhere.
+"""
+
+
+class SkydriftApi(flask_smorest.Api):
+    """flask-smorest Api whose errors are RFC 9457 problem details."""
+
+    ERROR_SCHEMA = ProblemSchema
+
+    def handle_http_exception(self, error):
+        return errors.handle_http_exception(error)
+
+
+def create_app(config: dict | None = None) -> Flask:
+    """Build the application.
+
+    Parameters
+    ----------
+    config : dict, optional
+        Flask configuration overrides. ``SKYDRIFT_SETTINGS`` may hold a
+        :class:`~service.config.Settings`; otherwise settings are read from the environment
+        (and a bad setting stops the start with a message naming the variable).
+    """
+    app = Flask("skydrift")
+    app.json = OrjsonProvider(app)
+    settings = (config or {}).get("SKYDRIFT_SETTINGS") or Settings.from_env()
+    app.config.update(
+        SKYDRIFT_SETTINGS=settings,
+        MAX_CONTENT_LENGTH=settings.max_body_bytes,
+        API_TITLE="Skydrift",
+        API_VERSION=__version__,
+        OPENAPI_VERSION="3.1.0",
+        OPENAPI_URL_PREFIX=None,
+        API_SPEC_OPTIONS={
+            "info": {
+                "description": API_DESCRIPTION,
+                "license": {"name": "MIT", "identifier": "MIT"},
+            },
+            "servers": [{"url": "/", "description": "this service"}],
+        },
+    )
+    app.config.update(config or {})
+    logging.getLogger("skydrift").setLevel(settings.log_level)
+
+    api = SkydriftApi(app)
+    api.ma_plugin.converter.add_attribute_function(table_field_to_openapi)
+    api.ma_plugin.converter.add_attribute_function(epoch_field_to_openapi)
+    app.extensions["skydrift_api"] = api
+    app.extensions["skydrift_ready_checks"] = {}
+    app.register_error_handler(HTTPException, errors.handle_http_exception)
+    app.register_error_handler(Exception, errors.handle_unexpected)
+
+    @app.before_request
+    def _start():
+        g.start = time.perf_counter()
+        given = request.headers.get("X-Request-ID", "")
+        g.request_id = given if 0 < len(given) <= 128 and given.isprintable() else uuid.uuid4().hex
+
+    @app.after_request
+    def _finish(resp):
+        resp.headers["X-Request-ID"] = g.get("request_id", "")
+        resp.headers.setdefault("X-Content-Type-Options", "nosniff")
+        resp.headers.setdefault("Cache-Control", "no-store")
+        return resp
+
+    from . import docs, health, propagation
+
+    health.register(app, api)
+    propagation.register(app, api)
+    docs.register(app, api)
+    return app

@@ -1,0 +1,133 @@
+"""Pieces shared by every blueprint: the blueprint class, epoch fields, common schemas."""
+
+from __future__ import annotations
+
+import functools
+
+import flask_smorest
+import marshmallow as ma
+import numpy as np
+from flask import request
+from flask_smorest import abort
+
+from ..core import epochs as core_epochs
+from ..core.flags import flag_names
+from .jsonio import BodyParser
+
+JSON_MIMETYPES = ("application/json",)
+
+
+class Blueprint(flask_smorest.Blueprint):
+    """flask-smorest Blueprint that reads bodies with orjson and insists on JSON for POST."""
+
+    ARGUMENTS_PARSER = BodyParser()
+
+    def __init__(self, *args, accept_mimetypes=JSON_MIMETYPES, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.accept_mimetypes = tuple(accept_mimetypes)
+
+        @self.before_request
+        def _require_json():
+            if request.method in ("POST", "PUT", "PATCH"):
+                mimetype = request.mimetype or ""
+                if not (mimetype in self.accept_mimetypes or mimetype.endswith("+json")):
+                    abort(
+                        415,
+                        message=(
+                            f"Content-Type {mimetype or '(none)'} is not accepted here; "
+                            f"send {' or '.join(self.accept_mimetypes)}"
+                        ),
+                    )
+
+
+EPOCH_DESCRIPTION = (
+    "An epoch: a Julian epoch as a number or 'J2016.0' (TDB), a Besselian epoch 'B1950.0', "
+    "a Julian date 'JD2451545.0' or modified Julian date 'MJD51544.5' (TDB unless a scale "
+    "follows, e.g. 'JD2460000.5 UTC'), an ISO 8601 UTC time '2026-12-02T03:04:05Z', or 'now'."
+)
+
+
+class EpochField(ma.fields.Field):
+    """An epoch in any accepted form; deserialises to a Julian epoch (TDB), years."""
+
+    def __init__(self, **kwargs):
+        kwargs.setdefault("metadata", {})
+        kwargs["metadata"].setdefault("description", EPOCH_DESCRIPTION)
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value, attr, data, **kwargs) -> float:
+        try:
+            jyear, _notes = core_epochs.parse_epoch_with_notes(value)
+        except core_epochs.EpochError as exc:
+            raise ma.ValidationError(str(exc)) from None
+        return jyear
+
+
+def epoch_field_to_openapi(self, field, **kwargs) -> dict:
+    """apispec attribute function: an epoch is a string or a number."""
+    if isinstance(field, EpochField):
+        return {"type": ["string", "number"]}
+    return {}
+
+
+class EpochOutSchema(ma.Schema):
+    julian_epoch_tdb = ma.fields.Float(
+        metadata={"description": "Julian epoch on the TDB scale, years."}
+    )
+    jd_tdb = ma.fields.Float(metadata={"description": "Julian date on the TDB scale, days."})
+    iso_utc = ma.fields.String(
+        allow_none=True,
+        metadata={
+            "description": "ISO 8601 UTC, millisecond precision; null outside years 1 to 9999."
+        },
+    )
+    notes = ma.fields.List(
+        ma.fields.String(),
+        metadata={
+            "description": "utc_approximate: leap seconds unknown for that date (before 1960 "
+            "or beyond the leap-second table); no_calendar_date: outside years 1 to 9999."
+        },
+    )
+
+
+def epochs_out(jyears) -> list[dict]:
+    """Julian epochs (TDB) -> list of EpochOut dicts (few epochs are served from a cache)."""
+    values = tuple(float(x) for x in np.atleast_1d(jyears))
+    if len(values) <= 8:
+        return [dict(d, notes=list(d["notes"])) for d in _epochs_out_cached(values)]
+    return _epochs_out(values)
+
+
+@functools.lru_cache(maxsize=4096)
+def _epochs_out_cached(values: tuple) -> list[dict]:
+    return _epochs_out(values)
+
+
+def _epochs_out(values) -> list[dict]:
+    labels = core_epochs.label_epochs(np.asarray(values, dtype=float))
+    notes = flag_names(labels.notes, core_epochs.TimeNote)
+    return [
+        {
+            "julian_epoch_tdb": float(labels.julian_epoch_tdb[i]),
+            "jd_tdb": float(labels.jd_tdb[i]),
+            "iso_utc": labels.iso_utc[i],
+            "notes": notes[i],
+        }
+        for i in range(labels.julian_epoch_tdb.size)
+    ]
+
+
+class FieldErrorSchema(ma.Schema):
+    field = ma.fields.String(metadata={"description": "Path of the offending value."})
+    message = ma.fields.String()
+
+
+class ProblemSchema(ma.Schema):
+    """RFC 9457 problem details."""
+
+    type = ma.fields.String(metadata={"description": "Problem type URI (about:blank)."})
+    title = ma.fields.String()
+    status = ma.fields.Integer()
+    detail = ma.fields.String()
+    errors = ma.fields.List(ma.fields.Nested(FieldErrorSchema))
+    request_id = ma.fields.String()

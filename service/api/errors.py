@@ -1,0 +1,118 @@
+"""RFC 9457 problem details for every error, with the offending field paths.
+
+Every error response is ``application/problem+json``::
+
+    {"type": "about:blank", "title": "Unprocessable Content", "status": 422,
+     "detail": "The request has 1 invalid field.",
+     "errors": [{"field": "stars[3].dec_deg", "message": "must be between -90 and 90"}]}
+
+No stack trace ever reaches a client; unexpected failures are logged with the request id.
+"""
+
+from __future__ import annotations
+
+import logging
+
+from flask import Response, g
+from werkzeug.exceptions import HTTPException, InternalServerError
+
+from .jsonio import dumps
+
+log = logging.getLogger("skydrift.errors")
+
+PROBLEM_MIMETYPE = "application/problem+json"
+
+
+def problem_response(
+    status: int,
+    title: str,
+    detail: str | None = None,
+    errors: list[dict] | None = None,
+    headers: dict | None = None,
+    **extra,
+) -> Response:
+    """Build an RFC 9457 problem+json response."""
+    body = {"type": "about:blank", "title": title, "status": status}
+    if detail:
+        body["detail"] = detail
+    if errors:
+        body["errors"] = errors
+    body.update(extra)
+    request_id = getattr(g, "request_id", None)
+    if request_id:
+        body["request_id"] = request_id
+    resp = Response(dumps(body), status=status, mimetype=PROBLEM_MIMETYPE)
+    for k, v in (headers or {}).items():
+        resp.headers[k] = v
+    return resp
+
+
+def flatten_messages(messages, prefix: str = "") -> list[dict]:
+    """Flatten marshmallow/webargs nested messages into [{"field", "message"}].
+
+    Keys that start with "[" (list indices) are appended without a dot, so paths read
+    ``stars[3].dec_deg``. The webargs location key ("json") is dropped.
+    """
+    out: list[dict] = []
+    if isinstance(messages, dict):
+        for key, value in messages.items():
+            key = str(key)
+            if not prefix and key in ("json", "query", "form", "files", "headers", "view_args"):
+                out.extend(flatten_messages(value, ""))
+                continue
+            if key == "_schema":
+                path = prefix or "(body)"
+            elif key.startswith("[") or not prefix:
+                path = f"{prefix}{key}"
+            else:
+                path = f"{prefix}.{key}"
+            if key.isdigit() and prefix:
+                path = f"{prefix}[{key}]"
+            out.extend(flatten_messages(value, path))
+    elif isinstance(messages, list | tuple):
+        if all(isinstance(m, str) for m in messages):
+            for m in messages:
+                out.append({"field": prefix or "(body)", "message": m})
+        else:
+            for m in messages:
+                out.extend(flatten_messages(m, prefix))
+    else:
+        out.append({"field": prefix or "(body)", "message": str(messages)})
+    return out
+
+
+def handle_http_exception(error: HTTPException) -> Response:
+    """Shape every HTTPException (including flask-smorest/webargs aborts) as problem+json."""
+    data = getattr(error, "data", None) or {}
+    errors = None
+    if "errors" in data:
+        errors = data["errors"] if isinstance(data["errors"], list) else None
+        if errors is None:
+            errors = flatten_messages(data["errors"])
+    elif "messages" in data:
+        errors = flatten_messages(data["messages"])
+    if errors and error.code == 400 and any("Invalid JSON" in e["message"] for e in errors):
+        errors = None
+        detail = "The request body is not valid JSON."
+    elif errors:
+        n = len(errors)
+        detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
+    else:
+        detail = data.get("message") or error.description
+    headers = dict(data.get("headers") or {})
+    if error.code == 405 and hasattr(error, "valid_methods") and error.valid_methods:
+        headers["Allow"] = ", ".join(error.valid_methods)
+    return problem_response(
+        error.code or 500, error.name, detail, errors, headers, **data.get("extra", {})
+    )
+
+
+def handle_unexpected(error: Exception) -> Response:
+    """Log an unexpected failure and answer a bare 500 problem (no trace to the client)."""
+    if isinstance(error, HTTPException):
+        return handle_http_exception(error)
+    log.exception("unhandled error", extra={"request_id": getattr(g, "request_id", None)})
+    ise = InternalServerError()
+    return problem_response(
+        500, ise.name, "An internal error occurred; it has been logged with the request id."
+    )

@@ -1,0 +1,45 @@
+"""JSON in and out with orjson: fast, numpy-aware, NaN written as null (unknown)."""
+
+from __future__ import annotations
+
+import json
+
+import orjson
+from flask.json.provider import JSONProvider
+from webargs import core as webargs_core
+from webargs.flaskparser import FlaskParser
+
+DUMP_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+
+
+def dumps(obj) -> bytes:
+    """Serialise to JSON bytes; numpy arrays natively, NaN and infinities as null."""
+    return orjson.dumps(obj, option=DUMP_OPTIONS)
+
+
+class OrjsonProvider(JSONProvider):
+    """Flask JSON provider backed by orjson."""
+
+    def dumps(self, obj, **kwargs):
+        return dumps(obj).decode()
+
+    def loads(self, s, **kwargs):
+        return orjson.loads(s)
+
+    def response(self, *args, **kwargs):
+        obj = self._prepare_response_obj(args, kwargs)
+        return self._app.response_class(dumps(obj), mimetype="application/json")
+
+
+class BodyParser(FlaskParser):
+    """webargs parser that reads JSON bodies with orjson (about 5x faster than json)."""
+
+    def _raw_load_json(self, req):
+        if not webargs_core.is_json(req.mimetype):
+            return webargs_core.missing
+        data = req.get_data(cache=True)
+        try:
+            return orjson.loads(data)
+        except orjson.JSONDecodeError as exc:
+            # webargs turns json.JSONDecodeError into a 400 through our error handler.
+            raise json.JSONDecodeError(str(exc), exc.doc or "", exc.pos or 0) from None

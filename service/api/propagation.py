@@ -1,0 +1,482 @@
+"""POST /v1/propagation: astrometry and uncertainties moved to other epochs."""
+
+from __future__ import annotations
+
+import itertools
+
+import marshmallow as ma
+import numpy as np
+from flask import current_app
+from flask_smorest import abort
+
+from ..core import propagation as core
+from ..core.constants import C_KM_S
+from ..core.flags import flag_names
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .examples import load_example
+from .tables import StarTableField
+
+blp = Blueprint(
+    "propagation",
+    __name__,
+    url_prefix="/v1",
+    description="Move stellar astrometry and its uncertainties from a catalogue epoch to "
+    "other epochs.",
+)
+
+#: Parameter names in covariance order, as they appear in field names.
+PARAMS = ("ra", "dec", "parallax", "pm_ra", "pm_dec", "radial_velocity")
+VALUE_FIELDS = (
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
+ERROR_FIELDS = (
+    "ra_error_mas",
+    "dec_error_mas",
+    "parallax_error_mas",
+    "pm_ra_cosdec_error_mas_yr",
+    "pm_dec_error_mas_yr",
+    "radial_velocity_error_km_s",
+)
+CORRELATION_PAIRS = tuple(itertools.combinations(range(6), 2))
+CORRELATION_FIELDS = tuple(f"correlation_{PARAMS[i]}_{PARAMS[j]}" for i, j in CORRELATION_PAIRS)
+
+UNITS = {
+    "ra_deg": "deg",
+    "dec_deg": "deg",
+    "parallax_mas": "mas",
+    "pm_ra_cosdec_mas_yr": "mas/yr (includes cos(dec))",
+    "pm_dec_mas_yr": "mas/yr",
+    "radial_velocity_km_s": "km/s",
+    "ra_error_mas": "mas (error of ra*cos(dec))",
+    "dec_error_mas": "mas",
+    "parallax_error_mas": "mas",
+    "pm_ra_cosdec_error_mas_yr": "mas/yr",
+    "pm_dec_error_mas_yr": "mas/yr",
+    "radial_velocity_error_km_s": "km/s",
+    "correlation_*": "dimensionless, -1 to 1",
+    "epochs": "Julian epoch (TDB), years",
+}
+
+
+def _num(description, *, required=False, lo=None, hi=None, **range_kw):
+    validators = []
+    if lo is not None or hi is not None:
+        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
+    return ma.fields.Float(
+        required=required,
+        allow_none=not required,
+        validate=validators,
+        metadata={"description": description},
+    )
+
+
+_STAR_FIELDS = {
+    "id": ma.fields.Raw(
+        allow_none=True,
+        metadata={"description": "Your identifier for the star (string or integer), echoed."},
+    ),
+    "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
+    "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
+    "parallax_mas": _num(
+        "Parallax, mas. Null if unknown; zero or negative values are accepted and flagged."
+    ),
+    "pm_ra_cosdec_mas_yr": _num(
+        "Proper motion in right ascension times cos(dec), mas/yr.", required=True
+    ),
+    "pm_dec_mas_yr": _num("Proper motion in declination, mas/yr.", required=True),
+    "radial_velocity_km_s": _num(
+        "Radial velocity, km/s, positive receding. Null if unknown.",
+        lo=-C_KM_S,
+        hi=C_KM_S,
+        min_inclusive=False,
+        max_inclusive=False,
+    ),
+    "ra_error_mas": _num("Standard error of ra*cos(dec), mas.", lo=0.0),
+    "dec_error_mas": _num("Standard error of dec, mas.", lo=0.0),
+    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0),
+    "pm_ra_cosdec_error_mas_yr": _num("Standard error of pm_ra_cosdec, mas/yr.", lo=0.0),
+    "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0),
+    "radial_velocity_error_km_s": _num("Standard error of the radial velocity, km/s.", lo=0.0),
+}
+for _i, _j in CORRELATION_PAIRS:
+    _STAR_FIELDS[f"correlation_{PARAMS[_i]}_{PARAMS[_j]}"] = _num(
+        f"Correlation coefficient of the errors of {PARAMS[_i]} and {PARAMS[_j]}. Null or "
+        "absent: not given (taken as 0, and flagged when standard errors are given).",
+        lo=-1.0,
+        hi=1.0,
+    )
+
+#: One star's astrometry at the catalogue epoch, with optional uncertainties.
+StarAstrometrySchema = ma.Schema.from_dict(_STAR_FIELDS, name="StarAstrometrySchema")
+
+
+class EpochRangeSchema(ma.Schema):
+    start = EpochField(required=True)
+    stop = EpochField(required=True)
+    count = ma.fields.Integer(
+        required=True,
+        validate=ma.validate.Range(min=1),
+        metadata={"description": "Number of epochs, start and stop included."},
+    )
+
+
+class PropagationRequestSchema(ma.Schema):
+    stars = StarTableField(
+        StarAstrometrySchema,
+        required=True,
+        metadata={"description": "The stars: a list of records, or an object of columns."},
+    )
+    catalogue_epoch = EpochField(
+        required=True, metadata={"description": "Epoch of the given astrometry."}
+    )
+    target_epochs = ma.fields.List(
+        EpochField(),
+        validate=ma.validate.Length(min=1),
+        metadata={"description": "Epochs to move the stars to (give this or target_range)."},
+    )
+    target_range = ma.fields.Nested(
+        EpochRangeSchema,
+        metadata={"description": "Evenly spaced target epochs (give this or target_epochs)."},
+    )
+    model = ma.fields.String(
+        load_default="standard",
+        validate=ma.validate.OneOf(core.MODELS),
+        metadata={
+            "description": "standard: straight-line motion in the rigorous Hipparcos "
+            "formulation (ESA 1997 Vol. 1 sec. 1.5.5), perspective acceleration included. "
+            "light_time: the same motion with the light-time correction of the IAU SOFA "
+            "routine pmsafe."
+        },
+    )
+    layout = ma.fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.OneOf(("records", "columns")),
+        metadata={
+            "description": "Response layout: one record per star, or columns. Default: "
+            "the layout of the request's stars."
+        },
+    )
+
+    @ma.validates_schema
+    def _one_target(self, data, **kwargs):
+        has_list = data.get("target_epochs") is not None
+        has_range = data.get("target_range") is not None
+        if has_list == has_range:
+            raise ma.ValidationError(
+                "give exactly one of target_epochs or target_range", "target_epochs"
+            )
+
+
+class AtEpochSchema(ma.Schema):
+    ra_deg = ma.fields.Float()
+    dec_deg = ma.fields.Float()
+    parallax_mas = ma.fields.Float(allow_none=True)
+    pm_ra_cosdec_mas_yr = ma.fields.Float()
+    pm_dec_mas_yr = ma.fields.Float()
+    radial_velocity_km_s = ma.fields.Float(allow_none=True)
+    uncertainties = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.Float(allow_none=True),
+        allow_none=True,
+        metadata={
+            "description": "Standard errors (ra_error_mas ... radial_velocity_error_km_s) and "
+            "correlation coefficients (correlation_ra_dec ...) at this epoch; null when the "
+            "star came without the five astrometric standard errors."
+        },
+    )
+
+
+class StarResultSchema(ma.Schema):
+    index = ma.fields.Integer(metadata={"description": "Position of the star in the request."})
+    id = ma.fields.Raw(allow_none=True)
+    flags = ma.fields.List(ma.fields.String())
+    at_epochs = ma.fields.List(ma.fields.Nested(AtEpochSchema))
+
+
+class WarningSchema(ma.Schema):
+    index = ma.fields.Integer()
+    id = ma.fields.Raw(allow_none=True)
+    message = ma.fields.String()
+
+
+class PropagationResponseSchema(ma.Schema):
+    model = ma.fields.String()
+    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
+    epochs = ma.fields.List(ma.fields.Nested(EpochOutSchema))
+    star_count = ma.fields.Integer()
+    layout = ma.fields.String()
+    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    warnings = ma.fields.List(ma.fields.Nested(WarningSchema))
+    stars = ma.fields.List(
+        ma.fields.Nested(StarResultSchema),
+        metadata={"description": "layout=records: one entry per star."},
+    )
+    columns = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.Raw(),
+        metadata={
+            "description": "layout=columns: id and flags (one entry per star), and for each "
+            "quantity an array with one row per target epoch and one value per star."
+        },
+    )
+
+
+FLAG_MEANINGS = {
+    "parallax_missing": "No parallax: distance unknown, radial velocity not applied, "
+    "parallax out unknown.",
+    "parallax_not_positive": "Parallax zero or negative: no distance; radial velocity not "
+    "applied; parallax out is the formal value.",
+    "radial_velocity_missing": "No radial velocity: taken as zero for the motion (no "
+    "perspective acceleration); radial velocity out unknown.",
+    "proper_motion_implausible": "Total proper motion above 10.4 arcsec/yr, more than any "
+    "known star: probably a unit mistake.",
+    "space_velocity_implausible": "Implied space velocity above half the speed of light: "
+    "inconsistent inputs.",
+    "at_pole": "At a celestial pole: right ascension undefined.",
+    "distance_replaced": "Light-time model: distance replaced by a minimum value (SOFA pmsafe).",
+    "not_converged": "Light-time model: iteration did not converge.",
+    "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "
+    "through unchanged.",
+    "uncertainties_incomplete": "Some but not all five astrometric standard errors given: "
+    "no uncertainties computed.",
+    "correlations_assumed_zero": "Standard errors given without correlations: correlations "
+    "taken as zero.",
+}
+
+
+def _covariance(table, n):
+    """Build the (N, 6, 6) covariance from standard errors and correlations.
+
+    Returns (cov or None, has_cov mask, incomplete mask, assumed_zero mask, bad-PSD idx).
+    """
+    cols = table.columns
+    if not table.given.intersection(ERROR_FIELDS):
+        none = np.zeros(n, dtype=bool)
+        return None, none, none, none, np.array([], dtype=int)
+    errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
+    astro = errs[:, :5]
+    complete = np.all(np.isfinite(astro), axis=-1)
+    some = np.any(np.isfinite(astro), axis=-1)
+    incomplete = some & ~complete
+    if not complete.any():
+        return None, complete, incomplete, np.zeros(n, bool), np.array([], int)
+    corr = np.zeros((n, 6, 6))
+    corr[:, range(6), range(6)] = 1.0
+    given_any = np.zeros(n, dtype=bool)
+    for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
+        c = cols[name]
+        known = np.isfinite(c)
+        given_any |= known & (j < 5)
+        corr[:, i, j] = corr[:, j, i] = np.where(known, c, 0.0)
+    rv_known = np.isfinite(errs[:, 5]) & np.isfinite(cols["radial_velocity_km_s"])
+    sig = np.where(np.isfinite(errs), errs, 0.0)
+    cov = corr * sig[:, :, None] * sig[:, None, :]
+    cov[~rv_known, 5, :] = np.nan
+    cov[~rv_known, :, 5] = np.nan
+    # The correlation matrix must be positive semi-definite (tolerance for rounding).
+    check = np.flatnonzero(complete & given_any)
+    bad = np.array([], dtype=int)
+    if check.size:
+        sub = corr[check]
+        sub[~rv_known[check], 5, :] = 0.0
+        sub[~rv_known[check], :, 5] = 0.0
+        sub[~rv_known[check], 5, 5] = 1.0
+        low = np.linalg.eigvalsh(sub)[:, 0]
+        bad = check[low < -1e-9]
+    assumed_zero = complete & ~given_any
+    return cov, complete, incomplete, assumed_zero, bad
+
+
+def _uncertainty_dict(cov_block):
+    """(M, 6, 6) covariances for one star -> list of dicts of errors and correlations."""
+    out = []
+    for c in cov_block:
+        sig = np.sqrt(np.clip(np.diagonal(c), 0.0, None))
+        d = {ERROR_FIELDS[k]: _num_or_none(sig[k]) for k in range(6)}
+        for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
+            denom = sig[i] * sig[j]
+            d[name] = _num_or_none(c[i, j] / denom) if denom > 0 else None
+        out.append(d)
+    return out
+
+
+def _num_or_none(x):
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+@blp.route("/propagation", methods=["POST"])
+@blp.arguments(PropagationRequestSchema(), example=load_example("propagation_request.json"))
+@blp.response(200, PropagationResponseSchema)
+def propagate(args):
+    """Move stars to other epochs.
+
+    Takes each star's astrometry (position, parallax, proper motion, radial velocity) at the
+    catalogue epoch, optionally with standard errors and correlations, and returns all six
+    parameters at every target epoch, with propagated uncertainties (full covariance through
+    the analytic Jacobian of the straight-line model) and per-star flags saying what was
+    assumed. One star or a million: the same endpoint, the same numbers.
+    """
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    table = args["stars"]
+    n = table.size
+    if args.get("target_range") is not None:
+        rng = args["target_range"]
+        if rng["count"] > settings.max_epochs:
+            abort(
+                422,
+                errors=[
+                    {
+                        "field": "target_range.count",
+                        "message": f"at most {settings.max_epochs} epochs per request",
+                    }
+                ],
+            )
+        targets = np.linspace(rng["start"], rng["stop"], rng["count"])
+    else:
+        targets = np.asarray(args["target_epochs"], dtype=float)
+        if targets.size > settings.max_epochs:
+            abort(
+                422,
+                errors=[
+                    {
+                        "field": "target_epochs",
+                        "message": f"at most {settings.max_epochs} epochs per request",
+                    }
+                ],
+            )
+    m = targets.size
+    if n * m > settings.max_results:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "stars",
+                    "message": f"{n} stars x {m} epochs = {n * m} results; the limit is "
+                    f"{settings.max_results} (setting SKYDRIFT_MAX_RESULTS)",
+                }
+            ],
+        )
+    cov, has_cov, incomplete, assumed_zero, bad_psd = _covariance(table, n)
+    if bad_psd.size:
+        abort(
+            422,
+            errors=[
+                {
+                    "field": table.path(int(i), "correlation_*"),
+                    "message": "the correlations do not form a positive semi-definite "
+                    "matrix (they cannot all hold at once)",
+                }
+                for i in bad_psd[:50]
+            ],
+        )
+    c = table.columns
+    result = core.propagate(
+        c["ra_deg"][:, None],
+        c["dec_deg"][:, None],
+        c["parallax_mas"][:, None],
+        c["pm_ra_cosdec_mas_yr"][:, None],
+        c["pm_dec_mas_yr"][:, None],
+        c["radial_velocity_km_s"][:, None],
+        args["catalogue_epoch"],
+        targets[None, :],
+        model=args["model"],
+        covariance=None if cov is None else cov[:, None, :, :],
+    )
+    masks = np.bitwise_or.reduce(result.flags, axis=1)
+    names = flag_names(masks, core.PropagationFlag)
+    for i in np.flatnonzero(incomplete):
+        names[i].append("uncertainties_incomplete")
+    for i in np.flatnonzero(assumed_zero):
+        names[i].append("correlations_assumed_zero")
+    warnings = _warnings(masks, table)
+    layout = args["layout"] or table.form
+    body = {
+        "model": args["model"],
+        "catalogue_epoch": epochs_out([args["catalogue_epoch"]])[0],
+        "epochs": epochs_out(targets),
+        "star_count": n,
+        "layout": layout,
+        "units": UNITS,
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "warnings": warnings,
+    }
+    ast = result.astrometry
+    values = [getattr(ast, f) for f in VALUE_FIELDS]
+    if layout == "columns":
+        cols = {"id": table.ids, "flags": names}
+        for name, arr in zip(VALUE_FIELDS, values, strict=True):
+            cols[name] = np.ascontiguousarray(arr.T)
+        if result.covariance is not None:
+            cv = result.covariance
+            cv = np.where(has_cov[:, None, None, None], cv, np.nan)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                sig = np.sqrt(np.clip(np.diagonal(cv, axis1=-2, axis2=-1), 0.0, None))
+                for k, name in enumerate(ERROR_FIELDS):
+                    cols[name] = np.ascontiguousarray(sig[..., k].T)
+                for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
+                    cols[name] = np.ascontiguousarray(
+                        (cv[..., i, j] / (sig[..., i] * sig[..., j])).T
+                    )
+        body["columns"] = cols
+    else:
+        stars = []
+        ids = table.ids
+        for i in range(n):
+            at = [
+                {
+                    name: _num_or_none(arr[i, k])
+                    for name, arr in zip(VALUE_FIELDS, values, strict=True)
+                }
+                for k in range(m)
+            ]
+            if result.covariance is not None and has_cov[i]:
+                for entry, unc in zip(at, _uncertainty_dict(result.covariance[i]), strict=True):
+                    entry["uncertainties"] = unc
+            else:
+                for entry in at:
+                    entry["uncertainties"] = None
+            stars.append(
+                {
+                    "index": i,
+                    "id": None if ids is None else ids[i],
+                    "flags": names[i],
+                    "at_epochs": at,
+                }
+            )
+        body["stars"] = stars
+    return current_app.json.response(body)
+
+
+def _warnings(masks, table) -> list[dict]:
+    out = []
+    F = core.PropagationFlag
+    texts = {
+        F.PROPER_MOTION_IMPLAUSIBLE: "total proper motion exceeds 10.4 arcsec/yr, more than "
+        "any known star: check the unit (mas/yr) and that the RA component includes cos(dec)",
+        F.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and radial velocity imply a "
+        "space velocity above half the speed of light: check the parallax and its unit (mas)",
+        F.NOT_CONVERGED: "light-time iteration did not converge",
+    }
+    for flag, text in texts.items():
+        for i in np.flatnonzero(masks & int(flag))[:1000]:
+            out.append(
+                {
+                    "index": int(i),
+                    "id": None if table.ids is None else table.ids[i],
+                    "message": text,
+                }
+            )
+    return out
+
+
+def register(app, api):
+    api.spec.components.schema("StarAstrometry", schema=StarAstrometrySchema)
+    api.register_blueprint(blp)

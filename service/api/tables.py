@@ -1,0 +1,329 @@
+"""Tables of stars in request bodies: a list of records or an object of columns.
+
+A batch endpoint takes its stars either as a list of records (convenient)::
+
+    "stars": [{"id": "KV-0001", "ra_deg": 12.5, "dec_deg": -3.25, ...}, ...]
+
+or as columns, one array per field (fast; the form bulk clients should use)::
+
+    "stars": {"id": ["KV-0001", ...], "ra_deg": [12.5, ...], "dec_deg": [-3.25, ...]}
+
+:class:`StarTableField` is a marshmallow field that turns either form into numpy arrays and
+validates them with numpy, not element by element. Its column set, units, ranges and
+descriptions come from an ordinary marshmallow schema of one record, which is also what the
+OpenAPI document shows. ``null`` (or an absent optional key) means unknown and becomes NaN;
+it never becomes zero.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import marshmallow as ma
+import numpy as np
+from flask import current_app
+from flask_smorest import abort
+
+#: At most this many individual field errors are listed in one problem response.
+MAX_LISTED_ERRORS = 50
+
+_NUMBER_TYPES = (float, int)
+_ID_TYPES = (str, int)
+_MAX_ID_LENGTH = 64
+
+
+@dataclass
+class ColumnSpec:
+    """What one column accepts, read from a marshmallow field of the record schema."""
+
+    name: str
+    kind: str  # "number" or "id"
+    required: bool
+    allow_none: bool
+    lo: float | None = None
+    hi: float | None = None
+    lo_inclusive: bool = True
+    hi_inclusive: bool = True
+
+    @classmethod
+    def from_field(cls, name: str, fld: ma.fields.Field) -> ColumnSpec:
+        kind = "number" if isinstance(fld, ma.fields.Number) else "id"
+        spec = cls(name, kind, bool(fld.required), bool(fld.allow_none))
+        for v in fld.validators:
+            if isinstance(v, ma.validate.Range):
+                spec.lo, spec.hi = v.min, v.max
+                spec.lo_inclusive, spec.hi_inclusive = v.min_inclusive, v.max_inclusive
+        return spec
+
+    def range_text(self) -> str:
+        if self.lo is not None and self.hi is not None:
+            if self.lo_inclusive and self.hi_inclusive:
+                return f"must be between {self.lo:g} and {self.hi:g}"
+            lo = ">=" if self.lo_inclusive else ">"
+            hi = "<=" if self.hi_inclusive else "<"
+            return f"must be {lo} {self.lo:g} and {hi} {self.hi:g}"
+        if self.lo is not None:
+            return f"must be {'>=' if self.lo_inclusive else '>'} {self.lo:g}"
+        return f"must be {'<=' if self.hi_inclusive else '<'} {self.hi:g}"
+
+
+@dataclass
+class StarTable:
+    """Validated stars as numpy columns.
+
+    Attributes
+    ----------
+    columns : dict of str -> ndarray
+        Float columns (NaN = unknown) for every numeric field of the record schema.
+    ids : list or None
+        The ``id`` column as given (strings or integers), or None if absent.
+    size : int
+        Number of stars.
+    form : {"records", "columns"}
+        Which form the client used; paths in error messages follow it.
+    given : set of str
+        Columns the client supplied (even if some values are null).
+    """
+
+    columns: dict
+    ids: list | None
+    size: int
+    form: str
+    given: set = field(default_factory=set)
+
+    def path(self, index: int, name: str, field_name: str = "stars") -> str:
+        """Path of one value for error messages: stars[3].dec_deg or stars.dec_deg[3]."""
+        if self.form == "records":
+            return f"{field_name}[{index}].{name}"
+        return f"{field_name}.{name}[{index}]"
+
+
+class TableErrors:
+    """Collects per-value errors, keeping at most MAX_LISTED_ERRORS (counting the rest)."""
+
+    def __init__(self, form: str):
+        self.form = form
+        self.items: dict[str, list[str]] = {}
+        self.more = 0
+
+    def add(self, key: str, message: str) -> None:
+        if len(self.items) >= MAX_LISTED_ERRORS and key not in self.items:
+            self.more += 1
+            return
+        self.items.setdefault(key, []).append(message)
+
+    def add_indices(self, indices, name: str, message: str) -> None:
+        indices = np.asarray(indices)
+        for i in indices[: MAX_LISTED_ERRORS + 1]:
+            self.add(self.key(int(i), name), message)
+        self.more += max(0, indices.size - (MAX_LISTED_ERRORS + 1))
+
+    def key(self, index: int, name: str) -> str:
+        return f"[{index}].{name}" if self.form == "records" else f"{name}[{index}]"
+
+    def raise_if_any(self) -> None:
+        if self.items:
+            messages = dict(self.items)
+            if self.more:
+                messages["(more)"] = [f"{self.more} further invalid values not listed"]
+            raise ma.ValidationError(messages)
+
+
+def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.ndarray:
+    """List of JSON values -> float array, with type and null checks (Note: bool is no number)."""
+    types = set(map(type, values))
+    if types <= {float, int}:
+        try:
+            return np.asarray(values, dtype=float)
+        except OverflowError:
+            pass
+    bad = [i for i, v in enumerate(values) if type(v) not in _NUMBER_TYPES and v is not None]
+    if bad:
+        errors.add_indices(bad, spec.name, "must be a number (in the unit of the field name)")
+    if None in values and not spec.allow_none:
+        nulls = [i for i, v in enumerate(values) if v is None]
+        errors.add_indices(nulls, spec.name, "is required and may not be null")
+    if bad:
+        return np.full(len(values), np.nan)
+    try:
+        return np.array(values, dtype=float)
+    except OverflowError:
+        big = [i for i, v in enumerate(values) if type(v) is int and abs(v) > 1e300]
+        errors.add_indices(big, spec.name, "number out of range")
+        return np.full(len(values), np.nan)
+
+
+def _check_range(arr: np.ndarray, spec: ColumnSpec, errors: TableErrors) -> None:
+    with np.errstate(invalid="ignore"):
+        bad = np.zeros(arr.shape, dtype=bool)
+        if spec.lo is not None:
+            bad |= (arr < spec.lo) if spec.lo_inclusive else (arr <= spec.lo)
+        if spec.hi is not None:
+            bad |= (arr > spec.hi) if spec.hi_inclusive else (arr >= spec.hi)
+    idx = np.flatnonzero(bad)
+    if idx.size:
+        errors.add_indices(idx, spec.name, spec.range_text())
+
+
+def _id_column(values: list, errors: TableErrors) -> list:
+    types = set(map(type, values))
+    if not types <= {str, int, type(None)}:
+        bad = [i for i, v in enumerate(values) if not (type(v) in _ID_TYPES or v is None)]
+        errors.add_indices(bad, "id", "must be a string or an integer")
+    elif str in types:
+        long_ = [i for i, v in enumerate(values) if type(v) is str and len(v) > _MAX_ID_LENGTH]
+        if long_:
+            errors.add_indices(long_, "id", f"at most {_MAX_ID_LENGTH} characters")
+    return values
+
+
+class StarTableField(ma.fields.Field):
+    """Marshmallow field for a table of stars (records or columns), validated with numpy.
+
+    Parameters
+    ----------
+    record_schema : type[marshmallow.Schema]
+        Schema of one record: its fields define the columns (Float with Range validators,
+        ``required``, ``allow_none``) and their documentation. An ``id`` field, if present,
+        is an optional client identifier echoed back.
+    """
+
+    def __init__(self, record_schema: type[ma.Schema], **kwargs):
+        super().__init__(**kwargs)
+        self.record_schema = record_schema
+        schema = record_schema()
+        self.specs = [ColumnSpec.from_field(n, f) for n, f in schema.fields.items()]
+        self.names = {s.name for s in self.specs}
+
+    def _max_rows(self) -> int | None:
+        try:
+            return current_app.config["SKYDRIFT_SETTINGS"].max_stars
+        except (RuntimeError, KeyError):
+            return None
+
+    def _deserialize(self, value, attr, data, **kwargs) -> StarTable:
+        if isinstance(value, list):
+            return self._from_records(value)
+        if isinstance(value, dict):
+            return self._from_columns(value)
+        raise ma.ValidationError(
+            "must be a list of star records or an object of equal-length columns"
+        )
+
+    def _limit(self, n: int) -> None:
+        if n == 0:
+            raise ma.ValidationError("at least one star is required")
+        limit = self._max_rows()
+        if limit is not None and n > limit:
+            # 413 rather than 422: the request is well formed but larger than allowed.
+            abort(
+                413,
+                errors=[
+                    {
+                        "field": self.name or "stars",
+                        "message": f"{n} stars in one request; the limit is {limit} "
+                        "(setting SKYDRIFT_MAX_STARS)",
+                    }
+                ],
+            )
+
+    def _from_records(self, records: list) -> StarTable:
+        self._limit(len(records))
+        errors = TableErrors("records")
+        not_obj = [i for i, r in enumerate(records) if type(r) is not dict]
+        if not_obj:
+            for i in not_obj[:MAX_LISTED_ERRORS]:
+                errors.add(f"[{i}]", "must be an object (a star record)")
+            errors.raise_if_any()
+        keys = set().union(*records) if records else set()
+        unknown = keys - self.names
+        if unknown:
+            for name in sorted(unknown)[:MAX_LISTED_ERRORS]:
+                first = next(i for i, r in enumerate(records) if name in r)
+                errors.add(f"[{first}].{name}", self._unknown_text())
+            errors.raise_if_any()
+        columns = {}
+        for spec in self.specs:
+            if spec.name not in keys:
+                columns[spec.name] = None
+                continue
+            columns[spec.name] = [r.get(spec.name) for r in records]
+        return self._finish(columns, len(records), errors, keys)
+
+    def _from_columns(self, cols: dict) -> StarTable:
+        errors = TableErrors("columns")
+        unknown = set(cols) - self.names
+        if unknown:
+            raise ma.ValidationError({name: [self._unknown_text()] for name in sorted(unknown)})
+        lengths = {}
+        for name, col in cols.items():
+            if not isinstance(col, list):
+                raise ma.ValidationError({name: ["must be an array (one value per star)"]})
+            lengths[name] = len(col)
+        if not lengths:
+            raise ma.ValidationError("at least one star is required")
+        sizes = set(lengths.values())
+        if len(sizes) > 1:
+            detail = ", ".join(f"{k}: {v}" for k, v in sorted(lengths.items()))
+            raise ma.ValidationError(
+                {"(columns)": [f"all columns must have the same length; got {detail}"]}
+            )
+        n = sizes.pop()
+        self._limit(n)
+        return self._finish(dict(cols), n, errors, set(cols))
+
+    def _finish(self, raw: dict, n: int, errors: TableErrors, given: set) -> StarTable:
+        columns: dict = {}
+        ids = None
+        for spec in self.specs:
+            values = raw.get(spec.name)
+            if values is None:
+                if spec.required:
+                    errors.add(
+                        "[0]." + spec.name if errors.form == "records" else spec.name,
+                        "is required",
+                    )
+                if spec.kind == "number":
+                    columns[spec.name] = np.full(n, np.nan)
+                continue
+            if spec.kind == "id":
+                ids = _id_column(values, errors)
+                continue
+            arr = _number_column(values, spec, errors)
+            if spec.lo is not None or spec.hi is not None:
+                _check_range(arr, spec, errors)
+            columns[spec.name] = arr
+        errors.raise_if_any()
+        return StarTable(columns, ids, n, errors.form, given)
+
+    def _unknown_text(self) -> str:
+        return "unknown field; accepted fields: " + ", ".join(s.name for s in self.specs)
+
+
+def table_field_to_openapi(self, field, **kwargs) -> dict:
+    """apispec attribute function: document a StarTableField as records or columns."""
+    if not isinstance(field, StarTableField):
+        return {}
+    schema_name = field.record_schema.__name__.removesuffix("Schema")
+    ref = {"$ref": f"#/components/schemas/{schema_name}"}
+    record_props = self.schema2jsonschema(field.record_schema)
+    columns = {}
+    for name, prop in record_props.get("properties", {}).items():
+        item = {k: v for k, v in prop.items() if k not in ("description", "example")}
+        columns[name] = {
+            "type": "array",
+            "items": item,
+            "description": prop.get("description", ""),
+        }
+    return {
+        "oneOf": [
+            {"type": "array", "items": ref, "minItems": 1, "title": "records"},
+            {
+                "type": "object",
+                "title": "columns",
+                "properties": columns,
+                "additionalProperties": False,
+                "description": "One array per field, all of the same length.",
+            },
+        ]
+    }

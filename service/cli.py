@@ -1,0 +1,67 @@
+"""The ``skydrift`` command: serve the API, write the OpenAPI document."""
+
+from __future__ import annotations
+
+import argparse
+import os
+import pathlib
+import sys
+
+DEFAULT_BIND = "127.0.0.1:8000"
+
+
+def _serve(args) -> int:
+    here = pathlib.Path(__file__).resolve().parents[1]
+    conf = here / "deploy" / "gunicorn.conf.py"
+    argv = ["gunicorn", "service.wsgi:app"]
+    if conf.is_file():
+        argv[1:1] = ["--config", str(conf)]
+    if args.bind:
+        argv[1:1] = ["--bind", args.bind]
+    os.execvp(argv[0], argv)  # replaces this process; gunicorn handles signals
+    return 0  # pragma: no cover
+
+
+def _openapi(args) -> int:
+    import orjson
+
+    from .api import create_app
+    from .api.docs import openapi_document
+    from .config import Settings
+
+    app = create_app({"SKYDRIFT_SETTINGS": Settings()})
+    doc = openapi_document(app)
+    text = orjson.dumps(doc, option=orjson.OPT_INDENT_2 | orjson.OPT_SORT_KEYS).decode() + "\n"
+    if args.output in (None, "-"):
+        sys.stdout.write(text)
+    else:
+        pathlib.Path(args.output).write_text(text)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="skydrift",
+        description="Skydrift: stellar epoch transformation service and tools.",
+    )
+    sub = parser.add_subparsers(dest="command", required=True)
+    serve = sub.add_parser("serve", help="run the HTTP service under gunicorn")
+    serve.add_argument(
+        "--bind",
+        default=os.environ.get("SKYDRIFT_BIND"),
+        help=f"address:port to listen on (default {DEFAULT_BIND}, or SKYDRIFT_BIND)",
+    )
+    serve.set_defaults(func=_serve)
+    openapi = sub.add_parser("openapi", help="write the OpenAPI 3.1 document")
+    openapi.add_argument("--output", "-o", help="file to write (default: standard output)")
+    openapi.set_defaults(func=_openapi)
+    return parser
+
+
+def main(argv=None) -> int:
+    args = build_parser().parse_args(argv)
+    return args.func(args)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,383 @@
+"""Epochs: parse the ways users write a moment in time, and convert between them.
+
+Accepted forms (case-insensitive, surrounding blanks ignored):
+
+========================  ==================================================================
+``"J2016.0"``, ``2016.0``  Julian epoch, TDB (a bare number is a Julian epoch)
+``"B1950.0"``              Besselian epoch (Lieske 1979), TDB
+``"JD2451545.0"``          Julian date, TDB unless a scale follows: ``"JD2460000.5 UTC"``
+``"MJD51544.5"``           modified Julian date, TDB unless a scale follows (TDB, TT, TAI, UTC)
+``"2026-12-02T03:04:05Z"`` ISO 8601 calendar date and time, UTC (a zone offset is applied;
+                           no offset means UTC; a date alone means 0h UTC)
+``"now"``                  the current time of the system clock, UTC
+========================  ==================================================================
+
+Every parsed epoch is returned as a Julian epoch on the TDB scale, the convention of
+astrometric catalogues (Julian epochs count Julian years of 365.25 days of TDB/TT from
+J2000.0 = JD 2451545.0 TT; the TT-TDB difference, below 2 ms, is applied where a scale
+conversion makes it meaningful).
+
+References
+----------
+IAU 1976 System of Astronomical Constants; Lieske, J.H. 1979, A&A 73, 282 (Besselian epoch);
+IAU SOFA/ERFA routines epj, epj2jd, epb, epb2jd, dtf2d, d2dtf, utctai, taiutc, taitt, tttai,
+dtdb (Explanatory Supplement to the Astronomical Almanac, 3rd ed., 2013, ch. 3).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import enum
+import re
+import warnings
+from dataclasses import dataclass
+
+import erfa
+import numpy as np
+
+from .constants import DAY_S, JD_J2000, JULIAN_YEAR_DAYS, MJD_ZERO_JD
+from .offline import leap_second_table
+
+#: Range of Julian epochs the service accepts anywhere, years. Generous enough for
+#: boundary-crossing searches of +-100,000 years around any catalogue epoch; beyond it the
+#: linear space-motion model is meaningless.
+EPOCH_MIN_JYEAR = -200_000.0
+EPOCH_MAX_JYEAR = 202_000.0
+
+#: Calendar years for which an ISO 8601 UTC rendering is given. Outside this range (and
+#: before 1960, where UTC is not defined with today's meaning) times are still exact on
+#: TDB, but the UTC rendering is flagged as approximate or omitted.
+ISO_MIN_YEAR = 1
+ISO_MAX_YEAR = 9999
+
+
+class EpochError(ValueError):
+    """An epoch that cannot be understood; the message says why and how to write it."""
+
+
+class TimeNote(enum.IntFlag):
+    """What the UTC rendering of an epoch could not know exactly."""
+
+    #: UTC before 1960 or beyond the leap-second table: leap seconds unknown (erfa
+    #: "dubious year"); the UTC figure is approximate at the level of seconds to minutes.
+    UTC_APPROXIMATE = 1
+    #: Outside calendar years 1..9999: no ISO rendering.
+    NO_CALENDAR_DATE = 2
+
+
+_SCALES = ("TDB", "TT", "TAI", "UTC")
+
+_PREFIXED = re.compile(
+    r"^(?P<kind>J|B|JD|MJD)\s*(?P<num>[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?)"
+    r"(\s+(?P<scale>[A-Za-z]+))?$",
+    re.IGNORECASE,
+)
+_ISO = re.compile(
+    r"^(?P<y>[+-]?\d{4,6})-(?P<mo>\d{2})-(?P<d>\d{2})"
+    r"(?:[T ](?P<h>\d{2}):(?P<mi>\d{2})(?::(?P<s>\d{2}(?:\.\d+)?))?)?"
+    r"(?P<tz>Z|[+-]\d{2}:?\d{2})?$",
+    re.IGNORECASE,
+)
+
+
+def julian_epoch_to_jd(jyear):
+    """Julian epoch to a two-part Julian date on the same time scale.
+
+    Parameters
+    ----------
+    jyear : array_like
+        Julian epoch, years (e.g. 2016.0).
+
+    Returns
+    -------
+    jd1, jd2 : ndarray
+        Two-part Julian date (jd1 = 2400000.5 exactly; the split keeps precision), days.
+
+    Notes
+    -----
+    1. JD = 2451545.0 + (jyear - 2000) x 365.25 (IAU 1976; SOFA/ERFA epj2jd).
+    """
+    jyear = np.asarray(jyear, dtype=float)
+    jd1 = np.full_like(jyear, MJD_ZERO_JD)
+    jd2 = (JD_J2000 - MJD_ZERO_JD) + (jyear - 2000.0) * JULIAN_YEAR_DAYS
+    return jd1, jd2
+
+
+def jd_to_julian_epoch(jd1, jd2):
+    """Two-part Julian date to Julian epoch on the same time scale (SOFA/ERFA epj).
+
+    Parameters
+    ----------
+    jd1, jd2 : array_like
+        Two-part Julian date, days.
+
+    Returns
+    -------
+    ndarray
+        Julian epoch, years.
+    """
+    jd1 = np.asarray(jd1, dtype=float)
+    jd2 = np.asarray(jd2, dtype=float)
+    return 2000.0 + ((jd1 - JD_J2000) + jd2) / JULIAN_YEAR_DAYS
+
+
+def besselian_epoch_to_julian_epoch(byear):
+    """Besselian epoch to Julian epoch (both on one time scale; ERFA epb2jd then epj).
+
+    Parameters
+    ----------
+    byear : array_like
+        Besselian epoch, years (e.g. 1950.0).
+
+    Returns
+    -------
+    ndarray
+        Julian epoch, years.
+
+    Notes
+    -----
+    1. JD = 2415020.31352 + (byear - 1900) x 365.242198781 (Lieske 1979).
+    """
+    d1, d2 = erfa.epb2jd(np.asarray(byear, dtype=float))
+    return jd_to_julian_epoch(d1, d2)
+
+
+def julian_epoch_to_besselian_epoch(jyear):
+    """Julian epoch to Besselian epoch (ERFA epj2jd then epb)."""
+    d1, d2 = julian_epoch_to_jd(jyear)
+    return erfa.epb(d1, d2)
+
+
+def _to_tdb_jd(jd1, jd2, scale: str):
+    """Two-part JD on ``scale`` to two-part JD on TDB (arrays; warnings collected)."""
+    leap_second_table()
+    scale = scale.upper()
+    notes = 0
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        if scale == "UTC":
+            jd1, jd2 = erfa.utctai(jd1, jd2)
+            scale = "TAI"
+        if scale == "TAI":
+            jd1, jd2 = erfa.taitt(jd1, jd2)
+            scale = "TT"
+        if scale == "TT":
+            # TDB - TT at the geocentre (Fairhead & Bretagnon 1990 series in ERFA dtdb);
+            # below 2 ms, UT1 approximated by TT for the argument (effect ~1e-12 s).
+            dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
+            jd2 = jd2 + dt / DAY_S
+    if any(issubclass(w.category, erfa.ErfaWarning) for w in caught):
+        notes |= TimeNote.UTC_APPROXIMATE
+    return jd1, jd2, notes
+
+
+def _from_tdb_to_utc_jd(jd1, jd2):
+    leap_second_table()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
+        t1, t2 = jd1, jd2 - dt / DAY_S
+        a1, a2 = erfa.tttai(t1, t2)
+        u1, u2 = erfa.taiutc(a1, a2)
+    dubious = any(issubclass(w.category, erfa.ErfaWarning) for w in caught)
+    return u1, u2, dubious
+
+
+def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
+    """Parse one epoch; return (Julian epoch TDB, TimeNote bits)."""
+    if isinstance(value, bool):
+        raise EpochError("an epoch must be a number or a string, not a boolean")
+    if isinstance(value, int | float | np.floating | np.integer):
+        jyear = float(value)
+        if not np.isfinite(jyear):
+            raise EpochError("an epoch must be finite")
+        return jyear, 0
+    if not isinstance(value, str):
+        raise EpochError("an epoch must be a number (Julian epoch) or a string")
+    text = value.strip()
+    if not text:
+        raise EpochError("empty epoch")
+    if len(text) > 64:
+        raise EpochError("epoch string too long (at most 64 characters)")
+    if text.lower() == "now":
+        moment = now or _dt.datetime.now(_dt.UTC)
+        return _calendar_utc_to_jyear(
+            moment.year,
+            moment.month,
+            moment.day,
+            moment.hour,
+            moment.minute,
+            moment.second + moment.microsecond * 1e-6,
+        )
+    try:
+        return float(text), 0
+    except ValueError:
+        pass
+    m = _PREFIXED.match(text)
+    if m:
+        kind = m.group("kind").upper()
+        num = float(m.group("num"))
+        if not np.isfinite(num):
+            raise EpochError("an epoch must be finite")
+        scale = (m.group("scale") or "TDB").upper()
+        if scale not in _SCALES:
+            raise EpochError(f"unknown time scale {m.group('scale')!r}: use one of {_SCALES}")
+        if kind in ("J", "B") and m.group("scale"):
+            raise EpochError("Julian and Besselian epochs take no time scale (they are TDB)")
+        if kind == "J":
+            return num, 0
+        if kind == "B":
+            return float(besselian_epoch_to_julian_epoch(num)), 0
+        jd1, jd2 = (MJD_ZERO_JD, num) if kind == "MJD" else (num, 0.0)
+        if scale == "TDB":
+            return float(jd_to_julian_epoch(jd1, jd2)), 0
+        t1, t2, notes = _to_tdb_jd(np.float64(jd1), np.float64(jd2), scale)
+        return float(jd_to_julian_epoch(t1, t2)), int(notes)
+    m = _ISO.match(text)
+    if m:
+        y, mo, d = int(m.group("y")), int(m.group("mo")), int(m.group("d"))
+        h = int(m.group("h") or 0)
+        mi = int(m.group("mi") or 0)
+        s = float(m.group("s") or 0.0)
+        tz = m.group("tz")
+        offset_min = 0
+        if tz and tz.upper() != "Z":
+            sign = -1 if tz[0] == "-" else 1
+            digits = tz[1:].replace(":", "")
+            offset_min = sign * (int(digits[:2]) * 60 + int(digits[2:]))
+        return _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min)
+    raise EpochError(
+        f"cannot read epoch {value!r}: write a Julian epoch (2016.0 or 'J2016.0'), "
+        "'B1950.0', 'JD2451545.0', 'MJD51544.5', an ISO 8601 UTC time "
+        "('2026-12-02T03:04:05Z') or 'now'"
+    )
+
+
+def _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min: int = 0) -> tuple[float, int]:
+    leap_second_table()
+    notes = 0
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            u1, u2 = erfa.dtf2d("UTC", y, mo, d, h, mi, s)
+        except erfa.ErfaError as exc:
+            raise EpochError(f"invalid calendar date or time: {exc}") from None
+    if any(issubclass(w.category, erfa.ErfaWarning) for w in caught):
+        notes |= TimeNote.UTC_APPROXIMATE
+    u2 = u2 - offset_min / 1440.0
+    t1, t2, more = _to_tdb_jd(u1, u2, "UTC")
+    return float(jd_to_julian_epoch(t1, t2)), int(notes | more)
+
+
+def parse_epoch(value, *, now: _dt.datetime | None = None) -> float:
+    """Parse one epoch in any accepted form to a Julian epoch (TDB).
+
+    Parameters
+    ----------
+    value : str or float
+        The epoch as the user wrote it (see the module documentation).
+    now : datetime, optional
+        The moment meant by "now" (default: the system clock, UTC). Tests pass a fixed time.
+
+    Returns
+    -------
+    float
+        Julian epoch, TDB, years.
+
+    Raises
+    ------
+    EpochError
+        If the value cannot be read or lies outside the supported range
+        (EPOCH_MIN_JYEAR..EPOCH_MAX_JYEAR).
+    """
+    jyear, _ = parse_epoch_with_notes(value, now=now)
+    return jyear
+
+
+def parse_epoch_with_notes(value, *, now: _dt.datetime | None = None) -> tuple[float, int]:
+    """As :func:`parse_epoch`, also returning :class:`TimeNote` bits about the input."""
+    jyear, notes = _parse_one(value, now)
+    if not (EPOCH_MIN_JYEAR <= jyear <= EPOCH_MAX_JYEAR):
+        raise EpochError(
+            f"epoch {jyear:g} is outside the supported range "
+            f"{EPOCH_MIN_JYEAR:g} to {EPOCH_MAX_JYEAR:g} (Julian years)"
+        )
+    return jyear, notes
+
+
+def epoch_range(start: float, stop: float, count: int) -> np.ndarray:
+    """Evenly spaced Julian epochs from ``start`` to ``stop`` inclusive (``count`` >= 1)."""
+    if count < 1:
+        raise EpochError("count must be at least 1")
+    return np.linspace(start, stop, count)
+
+
+@dataclass(frozen=True)
+class EpochLabels:
+    """Human-readable forms of Julian epochs (TDB).
+
+    Attributes
+    ----------
+    julian_epoch_tdb : ndarray
+        Julian epoch, TDB, years (the input).
+    jd_tdb : ndarray
+        Julian date, TDB, days.
+    iso_utc : list of str or None
+        ISO 8601 UTC with millisecond precision, or None outside calendar years 1..9999.
+    notes : ndarray of int
+        :class:`TimeNote` bits per epoch.
+    """
+
+    julian_epoch_tdb: np.ndarray
+    jd_tdb: np.ndarray
+    iso_utc: list
+    notes: np.ndarray
+
+
+def label_epochs(jyear) -> EpochLabels:
+    """Render Julian epochs (TDB) as Julian dates and ISO 8601 UTC strings.
+
+    Parameters
+    ----------
+    jyear : array_like, shape (M,)
+        Julian epochs, TDB, years.
+
+    Returns
+    -------
+    EpochLabels
+
+    Notes
+    -----
+    1. TDB -> TT with ERFA dtdb at the geocentre, TT -> TAI -> UTC with ERFA tttai and
+       taiutc (leap seconds from ERFA's built-in table); ERFA d2dtf gives the calendar form.
+    2. Before 1960 and after the end of the leap-second table, UTC is flagged approximate.
+    """
+    jyear = np.atleast_1d(np.asarray(jyear, dtype=float))
+    d1, d2 = julian_epoch_to_jd(jyear)
+    notes = np.zeros(jyear.shape, dtype=np.int64)
+    iso: list = [None] * jyear.size
+    approx_year = jyear.copy()
+    inside = (approx_year > ISO_MIN_YEAR + 0.01) & (approx_year < ISO_MAX_YEAR + 0.99)
+    notes[~inside] |= int(TimeNote.NO_CALENDAR_DATE)
+    idx = np.flatnonzero(inside)
+    if idx.size:
+        u1, u2, _ = _from_tdb_to_utc_jd(d1[idx], d2[idx])
+        with warnings.catch_warnings(record=True):
+            warnings.simplefilter("always")
+            iy, im, iday, ihmsf = erfa.d2dtf("UTC", 3, u1, u2)
+        hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
+        year_int = np.asarray(iy)
+        dubious = (year_int < 1960) | (year_int > _leap_table_last_year())
+        for k, i in enumerate(idx):
+            h, mi, s, ms = (int(x) for x in hmsf[k])
+            iso[i] = (
+                f"{int(iy[k]):04d}-{int(im[k]):02d}-{int(iday[k]):02d}T{h:02d}:{mi:02d}:{s:02d}.{ms:03d}Z"
+            )
+            if dubious[k]:
+                notes[i] |= int(TimeNote.UTC_APPROXIMATE)
+    return EpochLabels(jyear, d1 + d2, iso, notes)
+
+
+def _leap_table_last_year() -> int:
+    """Last calendar year fully covered by the packaged leap-second table (its expiry)."""
+    return int(leap_second_table().expires.datetime.year) - 1

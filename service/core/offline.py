@@ -1,0 +1,34 @@
+"""Keep astropy offline: packaged tables only, never a download.
+
+Importing this module configures astropy once for the whole process: no automatic IERS or
+leap-second downloads, and no complaints about the age of the packaged tables (their
+provenance and whether values are measured or predicted are reported per answer instead).
+"""
+
+from __future__ import annotations
+
+import functools
+
+from astropy.utils import data as _astropy_data
+from astropy.utils import iers as _iers
+
+_iers.conf.auto_download = False
+_iers.conf.auto_max_age = None
+_iers.conf.iers_degraded_accuracy = "warn"
+_astropy_data.conf.allow_internet = False
+
+
+@functools.lru_cache(maxsize=1)
+def leap_second_table():
+    """The leap-second table from the packaged files, installed into ERFA once.
+
+    Returns
+    -------
+    astropy.utils.iers.LeapSeconds
+        The table (its ``expires`` attribute says until when it is known to be complete).
+    """
+    table = _iers.LeapSeconds.auto_open()
+    import erfa
+
+    erfa.leap_seconds.update(table)
+    return table

@@ -1,0 +1,142 @@
+"""Health, readiness, the OpenAPI document, the reference page, errors, configuration."""
+
+import ast
+import json
+import pathlib
+
+import pytest
+
+from service.config import ConfigError, Settings
+
+ROOT = pathlib.Path(__file__).resolve().parents[2]
+
+
+def test_health(client):
+    r = client.get("/health")
+    assert r.status_code == 200
+    assert r.json["status"] == "ok"
+    assert r.headers["X-Request-ID"]
+
+
+def test_request_id_echoed(client):
+    r = client.get("/health", headers={"X-Request-ID": "abc-123"})
+    assert r.headers["X-Request-ID"] == "abc-123"
+
+
+def test_ready_lists_checks(client):
+    r = client.get("/ready")
+    assert r.status_code == 200
+    assert r.json["status"] == "ready"
+    assert r.json["checks"]["configuration"]["ok"] is True
+
+
+def test_ready_degraded_when_a_check_fails(settings):
+    from service.api import create_app
+
+    app = create_app({"SKYDRIFT_SETTINGS": settings})
+    app.extensions["skydrift_ready_checks"]["broken table"] = lambda: (False, "missing")
+    r = app.test_client().get("/ready")
+    assert r.status_code == 503
+    assert r.json["status"] == "degraded"
+    assert r.json["checks"]["broken table"] == {"ok": False, "detail": "missing"}
+
+
+def test_openapi_document_is_3_1_and_describes_every_field(client):
+    doc = client.get("/openapi.json").json
+    assert doc["openapi"].startswith("3.1")
+    star = doc["components"]["schemas"]["StarAstrometry"]
+    for name, prop in star["properties"].items():
+        assert prop.get("description"), f"{name} lacks a description"
+
+
+def test_committed_openapi_matches_generator():
+    """openapi/openapi.json is generated (make openapi) and must be kept in sync."""
+    from service.api import create_app
+    from service.api.docs import openapi_document
+
+    committed = json.loads((ROOT / "openapi" / "openapi.json").read_text())
+    generated = json.loads(
+        json.dumps(openapi_document(create_app({"SKYDRIFT_SETTINGS": Settings()})))
+    )
+    assert committed == generated, "run `make openapi` and commit openapi/openapi.json"
+
+
+def test_every_post_endpoint_has_an_example(client):
+    doc = client.get("/openapi.json").json
+    for path, ops in doc["paths"].items():
+        if "post" in ops:
+            content = ops["post"]["requestBody"]["content"]["application/json"]
+            assert "example" in content or "examples" in content, path
+
+
+def test_reference_page_is_self_contained(client):
+    r = client.get("/docs")
+    assert r.status_code == 200
+    assert r.mimetype == "text/html"
+    text = r.get_data(as_text=True)
+    assert "/v1/propagation" in text
+    assert "http://" not in text and "https://" not in text  # no CDN or remote assets
+    assert "<script" not in text
+
+
+def test_unknown_path_is_problem_json(client):
+    r = client.get("/no/such/thing")
+    assert r.status_code == 404
+    assert r.mimetype == "application/problem+json"
+    assert r.json["status"] == 404
+
+
+def test_wrong_method_is_problem_json(client):
+    r = client.get("/v1/propagation")
+    assert r.status_code == 405
+    assert r.mimetype == "application/problem+json"
+
+
+def test_unexpected_error_gives_bare_500_without_trace(settings):
+    from service.api import create_app
+
+    app = create_app({"SKYDRIFT_SETTINGS": settings})
+
+    @app.route("/boom")
+    def boom():
+        raise RuntimeError("secret internals")
+
+    r = app.test_client().get("/boom")
+    assert r.status_code == 500
+    assert r.mimetype == "application/problem+json"
+    assert "secret" not in r.get_data(as_text=True)
+    assert "Traceback" not in r.get_data(as_text=True)
+
+
+@pytest.mark.parametrize(
+    ("env", "needle"),
+    [
+        ({"SKYDRIFT_MAX_STARS": "many"}, "SKYDRIFT_MAX_STARS"),
+        ({"SKYDRIFT_MAX_STARS": "0"}, "SKYDRIFT_MAX_STARS"),
+        ({"SKYDRIFT_LOG_LEVEL": "LOUD"}, "SKYDRIFT_LOG_LEVEL"),
+        ({"SKYDRIFT_SITES_FILE": "/nonexistent/sites.json"}, "SKYDRIFT_SITES_FILE"),
+    ],
+)
+def test_bad_settings_stop_the_start_naming_the_variable(env, needle):
+    with pytest.raises(ConfigError, match=needle):
+        Settings.from_env(env)
+
+
+def test_defaults_need_no_environment():
+    s = Settings.from_env({})
+    assert s.max_stars == 1_000_000
+    assert s.sun_avoidance_deg == 30.0
+
+
+def test_core_imports_no_web_framework():
+    """service/core is pure computation: no flask, marshmallow, webargs or werkzeug."""
+    banned = {"flask", "flask_smorest", "marshmallow", "webargs", "werkzeug", "apispec"}
+    for path in (ROOT / "service" / "core").glob("*.py"):
+        tree = ast.parse(path.read_text())
+        for node in ast.walk(tree):
+            names = []
+            if isinstance(node, ast.Import):
+                names = [a.name.split(".")[0] for a in node.names]
+            elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+                names = [node.module.split(".")[0]]
+            assert not banned.intersection(names), f"{path.name} imports {names}"

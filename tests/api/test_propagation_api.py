@@ -1,0 +1,294 @@
+"""POST /v1/propagation: results, layouts, flags, and one test per kind of bad input."""
+
+import json
+
+import numpy as np
+import pytest
+
+from service.core import propagation as core
+
+URL = "/v1/propagation"
+STAR = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 100.0, "pm_dec_mas_yr": -50.0}
+BASE = {"catalogue_epoch": "J2016.0", "target_epochs": ["J2026.0"]}
+
+
+def post(client, body, **kw):
+    return client.post(URL, json=body, **kw)
+
+
+def assert_problem(r, status, field=None):
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    body = r.json
+    assert body["status"] == status
+    if field is not None:
+        fields = [e["field"] for e in body.get("errors", [])]
+        assert field in fields, fields
+    return body
+
+
+def columns_of(stars, names):
+    return {n: [s.get(n) for s in stars] for n in names}
+
+
+# ---------------------------------------------------------------- results
+
+
+def test_demo_catalogue_matches_core(client, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    r = post(client, dict(BASE, stars=stars, target_epochs=["J2016.0", "J2116.0"]))
+    assert r.status_code == 200
+    body = r.json
+    assert body["star_count"] == len(stars)
+    assert [e["julian_epoch_tdb"] for e in body["epochs"]] == [2016.0, 2116.0]
+
+    def col(name):
+        return np.array([np.nan if s.get(name) is None else s[name] for s in stars], float)
+
+    ref, _ = core.propagate_standard(
+        col("ra_deg"),
+        col("dec_deg"),
+        col("parallax_mas"),
+        col("pm_ra_cosdec_mas_yr"),
+        col("pm_dec_mas_yr"),
+        col("radial_velocity_km_s"),
+        2016.0,
+        2116.0,
+    )
+    got = np.array([s["at_epochs"][1]["ra_deg"] for s in body["stars"]])
+    np.testing.assert_array_equal(got, ref.ra_deg)
+    # At the catalogue epoch itself nothing moves (limit: zero elapsed time).
+    for s, star in zip(body["stars"], stars, strict=True):
+        assert s["id"] == star["id"]
+        assert s["at_epochs"][0]["dec_deg"] == pytest.approx(star["dec_deg"], abs=1e-12)
+
+
+def test_records_and_columns_give_identical_numbers(client, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    names = sorted({k for s in stars for k in s})
+    rec = post(client, dict(BASE, stars=stars)).json
+    colr = post(client, dict(BASE, stars=columns_of(stars, names))).json
+    assert colr["layout"] == "columns"
+    for i, s in enumerate(rec["stars"]):
+        for name in ("ra_deg", "dec_deg", "parallax_mas", "radial_velocity_km_s"):
+            assert s["at_epochs"][0][name] == colr["columns"][name][0][i]
+        unc = s["at_epochs"][0]["uncertainties"]
+        if unc is not None:
+            assert unc["ra_error_mas"] == pytest.approx(
+                colr["columns"]["ra_error_mas"][0][i], rel=1e-12
+            )
+        assert s["flags"] == colr["columns"]["flags"][i]
+
+
+def test_missing_parallax_and_rv_are_null_and_flagged_not_zero(client, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    body = post(client, dict(BASE, stars=stars)).json
+    no_plx = body["stars"][10]
+    assert "parallax_missing" in no_plx["flags"]
+    assert no_plx["at_epochs"][0]["parallax_mas"] is None
+    no_rv = body["stars"][4]
+    assert "radial_velocity_missing" in no_rv["flags"]
+    assert no_rv["at_epochs"][0]["radial_velocity_km_s"] is None
+    neg = body["stars"][13]
+    assert "parallax_not_positive" in neg["flags"]
+    assert "parallax_not_positive" in body["flag_meanings"]
+
+
+def test_uncertainties_grow_with_time(client, demo_catalogue):
+    star = demo_catalogue["stars"][0]
+    body = post(client, dict(BASE, stars=[star], target_epochs=[2016.0, 2116.0])).json
+    u0, u1 = (e["uncertainties"] for e in body["stars"][0]["at_epochs"])
+    assert u0["ra_error_mas"] == pytest.approx(star["ra_error_mas"], rel=1e-9)
+    # 100 yr x pm error dominates: sigma grows to about 100 * 0.0589 mas (linear model).
+    assert u1["ra_error_mas"] > 5 * u0["ra_error_mas"]
+
+
+def test_star_without_errors_has_null_uncertainties(client):
+    body = post(client, dict(BASE, stars=[STAR])).json
+    assert body["stars"][0]["at_epochs"][0]["uncertainties"] is None
+
+
+def test_incomplete_errors_flagged(client):
+    star = dict(STAR, ra_error_mas=0.1)
+    body = post(client, dict(BASE, stars=[star])).json
+    assert "uncertainties_incomplete" in body["stars"][0]["flags"]
+
+
+def test_target_range(client):
+    body = post(
+        client,
+        {
+            "stars": [STAR],
+            "catalogue_epoch": 2016.0,
+            "target_range": {"start": "J2000", "stop": "J2100", "count": 5},
+        },
+    ).json
+    assert [e["julian_epoch_tdb"] for e in body["epochs"]] == [2000, 2025, 2050, 2075, 2100]
+
+
+def test_light_time_model_selectable(client):
+    star = dict(STAR, parallax_mas=100.0, radial_velocity_km_s=30.0)
+    a = post(client, dict(BASE, stars=[star], model="standard")).json
+    b = post(client, dict(BASE, stars=[star], model="light_time")).json
+    assert b["model"] == "light_time"
+    da = a["stars"][0]["at_epochs"][0]["dec_deg"] - b["stars"][0]["at_epochs"][0]["dec_deg"]
+    assert 0 < abs(da) * 3.6e6 < 1.0  # light time differs by well under 1 mas here
+
+
+def test_implausible_proper_motion_warns_but_answers(client):
+    star = dict(STAR, pm_ra_cosdec_mas_yr=20000.0)
+    body = post(client, dict(BASE, stars=[star])).json
+    assert "proper_motion_implausible" in body["stars"][0]["flags"]
+    assert "unit" in body["warnings"][0]["message"]
+
+
+def test_epochs_answered_as_julian_and_iso(client):
+    body = post(client, dict(BASE, stars=[STAR], target_epochs=["2026-12-02T22:00:00Z"])).json
+    e = body["epochs"][0]
+    assert e["iso_utc"] == "2026-12-02T22:00:00.000Z"
+    assert 2026.9 < e["julian_epoch_tdb"] < 2027.0
+
+
+# ---------------------------------------------------------------- bad input, one per case
+
+
+def test_malformed_json(client):
+    r = client.post(URL, data='{"stars": [', content_type="application/json")
+    assert_problem(r, 400)
+
+
+def test_wrong_content_type(client):
+    r = client.post(URL, data=json.dumps(dict(BASE, stars=[STAR])), content_type="text/plain")
+    assert_problem(r, 415)
+
+
+def test_missing_required_field(client):
+    star = {k: v for k, v in STAR.items() if k != "dec_deg"}
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].dec_deg")
+
+
+def test_missing_catalogue_epoch(client):
+    assert_problem(post(client, {"stars": [STAR], "target_epochs": [2020]}), 422, "catalogue_epoch")
+
+
+def test_missing_targets(client):
+    assert_problem(post(client, {"stars": [STAR], "catalogue_epoch": 2016}), 422, "target_epochs")
+
+
+def test_string_where_number_belongs(client):
+    star = dict(STAR, ra_deg="10.0")
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].ra_deg")
+
+
+def test_boolean_is_not_a_number(client):
+    star = dict(STAR, parallax_mas=True)
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parallax_mas")
+
+
+def test_nan_literal_is_not_json(client):
+    text = json.dumps(dict(BASE, stars=[STAR])).replace("100.0", "NaN")
+    assert_problem(client.post(URL, data=text, content_type="application/json"), 400)
+
+
+def test_infinity_is_rejected(client):
+    text = json.dumps(dict(BASE, stars=[STAR])).replace("100.0", "1e999")
+    assert_problem(client.post(URL, data=text, content_type="application/json"), 400)
+
+
+def test_nan_string_is_rejected(client):
+    star = dict(STAR, pm_dec_mas_yr="NaN")
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].pm_dec_mas_yr")
+
+
+def test_required_value_null(client):
+    star = dict(STAR, pm_dec_mas_yr=None)
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].pm_dec_mas_yr")
+
+
+def test_dec_out_of_range(client):
+    star = dict(STAR, dec_deg=91.0)
+    body = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].dec_deg")
+    assert "between -90 and 90" in body["errors"][0]["message"]
+
+
+def test_dec_out_of_range_in_columns_names_index(client):
+    cols = {k: [v, v] for k, v in STAR.items()}
+    cols["dec_deg"] = [5.0, -90.5]
+    assert_problem(post(client, dict(BASE, stars=cols)), 422, "stars.dec_deg[1]")
+
+
+def test_negative_uncertainty(client):
+    star = dict(STAR, parallax_error_mas=-0.1)
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parallax_error_mas")
+
+
+def test_correlation_out_of_range(client):
+    star = dict(STAR, correlation_ra_dec=1.2)
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].correlation_ra_dec")
+
+
+def test_covariance_not_positive_semidefinite(client):
+    star = dict(
+        STAR,
+        ra_error_mas=1,
+        dec_error_mas=1,
+        parallax_error_mas=1,
+        pm_ra_cosdec_error_mas_yr=1,
+        pm_dec_error_mas_yr=1,
+        correlation_ra_dec=0.9,
+        correlation_ra_parallax=0.9,
+        correlation_dec_parallax=-0.9,
+    )
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].correlation_*")
+
+
+def test_unparseable_epoch(client):
+    r = post(client, dict(BASE, stars=[STAR], target_epochs=["J2020", "yesterday"]))
+    assert_problem(r, 422, "target_epochs[1]")
+
+
+def test_epoch_outside_supported_range(client):
+    assert_problem(
+        post(client, dict(BASE, stars=[STAR], catalogue_epoch=1e7)), 422, "catalogue_epoch"
+    )
+
+
+def test_columns_of_unequal_length(client):
+    cols = {k: [v, v] for k, v in STAR.items()}
+    cols["ra_deg"] = [1.0]
+    assert_problem(post(client, dict(BASE, stars=cols)), 422, "stars.(columns)")
+
+
+def test_empty_batch(client):
+    assert_problem(post(client, dict(BASE, stars=[])), 422, "stars")
+
+
+def test_unknown_field_is_named(client):
+    star = dict(STAR, parralax_mas=3.0)
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
+
+
+def test_batch_over_the_configured_limit(client, settings):
+    cols = {k: [v] * (settings.max_stars + 1) for k, v in STAR.items()}
+    assert_problem(post(client, dict(BASE, stars=cols)), 413, "stars")
+
+
+def test_results_over_the_configured_limit(client, settings):
+    cols = {k: [v] * 100 for k, v in STAR.items()}
+    body = dict(BASE, stars=cols, target_range={"start": 2000, "stop": 2100, "count": 99})
+    del body["target_epochs"]
+    assert_problem(post(client, body), 413, "stars")
+
+
+def test_body_over_the_configured_size(client, settings):
+    padding = "x" * (settings.max_body_bytes + 10)
+    r = client.post(URL, data=padding, content_type="application/json")
+    assert_problem(r, 413)
+
+
+def test_record_that_is_not_an_object(client):
+    assert_problem(post(client, dict(BASE, stars=[STAR, 5])), 422, "stars[1]")
+
+
+def test_invalid_model(client):
+    assert_problem(post(client, dict(BASE, stars=[STAR], model="warp")), 422, "model")
