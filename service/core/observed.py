@@ -226,10 +226,11 @@ class EarthOrientationTable:
 
 
 def _configure_astropy_offline():
+    """astropy.utils.iers, configured never to download (service.core.offline)."""
     from astropy.utils import iers
 
-    iers.conf.auto_download = False
-    iers.conf.auto_max_age = None
+    from service.core import offline  # noqa: F401  (configures astropy on import)
+
     return iers
 
 
@@ -317,16 +318,17 @@ def earth_orientation(path: str | None = None) -> EarthOrientation:
        and only the named or packaged files are read. The packaged IERS-B (EOP C04) table
        answers dates before the start of the finals2000A table.
     2. ERFA's leap-second table is replaced by the one packaged with astropy-iers-data
-       (``Leap_Second.dat``), so that UTC->TAI is right up to that file's expiry date.
+       (``service.core.offline.leap_second_table``), so that UTC->TAI is right up to that
+       file's expiry date.
     """
     iers = _configure_astropy_offline()
     if path is None:
         path = os.environ.get(EOP_PATH_ENV) or iers.IERS_A_FILE
     primary = _read_finals2000a(path)
     fallback = _read_iers_b(iers.IERS_B_FILE)
-    leap = iers.LeapSeconds.open(iers.IERS_LEAP_SECOND_FILE)
-    erfa.leap_seconds.update(leap)
-    expires = leap.expires
+    from service.core.offline import leap_second_table
+
+    expires = leap_second_table().expires
     expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
     return EarthOrientation(primary, fallback, expiry_mjd)
 
@@ -1098,6 +1100,34 @@ def _check_instants(utc_jd1, utc_jd2):
             f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
         )
     return np.broadcast_arrays(jd1, jd2)
+
+
+def utc_from_julian_epoch_tdb(jyear):
+    """UTC two-part quasi Julian date of Julian epochs on the TDB scale.
+
+    Parameters
+    ----------
+    jyear : array_like
+        Julian epochs (TDB), years.
+
+    Returns
+    -------
+    utc_jd1, utc_jd2 : ndarray
+        UTC (SOFA quasi-JD convention), days.
+
+    Notes
+    -----
+    1. TDB -> TT with the Fairhead & Bretagnon series of SOFA ``dtdb`` at the geocentre
+       (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch resolves about
+       15 microseconds, i.e. 0.2 mas of Earth rotation.
+    """
+    d1, d2 = erfa.epj2jd(np.asarray(jyear, dtype=float))
+    with warnings.catch_warnings():
+        # "dubious year" beyond the leap-second table: reported by the caller's flags.
+        warnings.simplefilter("ignore", erfa.ErfaWarning)
+        dt = erfa.dtdb(d1, d2, np.mod(d2, 1.0), 0.0, 0.0, 0.0)
+        a1, a2 = erfa.tttai(d1, d2 - dt / 86400.0)
+        return erfa.taiutc(a1, a2)
 
 
 def _quiet_erfa(func, *args):
