@@ -98,9 +98,11 @@ def create_app(config: dict | None = None) -> Flask:
         resp.headers.setdefault("Cache-Control", "no-store")
         return resp
 
-    from . import docs, health, propagation
+    from . import docs, frames, health, observed, propagation
 
     health.register(app, api)
     propagation.register(app, api)
+    frames.register(app, api)
+    observed.register(app, api)
     docs.register(app, api)
     return app
