@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import enum
 import functools
+import math
 import os
 import warnings
 from dataclasses import dataclass, field
@@ -160,6 +161,16 @@ class ObservedFlag(enum.IntFlag):
     LEAP_SECONDS_EXTRAPOLATED = 512
     #: Target below the geometric horizon: airmass undefined (NaN).
     AIRMASS_UNDEFINED = 1024
+
+
+# Plain-int copies of the flag bits for the inner loops (enum attribute access is slow).
+_F_MISSING_PARALLAX = int(ObservedFlag.MISSING_PARALLAX)
+_F_NON_POSITIVE_PARALLAX = int(ObservedFlag.NON_POSITIVE_PARALLAX)
+_F_MISSING_RADIAL_VELOCITY = int(ObservedFlag.MISSING_RADIAL_VELOCITY)
+_F_MISSING_PROPER_MOTION = int(ObservedFlag.MISSING_PROPER_MOTION)
+_F_BELOW_HORIZON_LIMIT = int(ObservedFlag.BELOW_HORIZON_LIMIT)
+_F_WITHIN_SUN_AVOIDANCE = int(ObservedFlag.WITHIN_SUN_AVOIDANCE)
+_F_AIRMASS_UNDEFINED = int(ObservedFlag.AIRMASS_UNDEFINED)
 
 
 class EarthOrientationStatus(enum.IntEnum):
@@ -445,36 +456,26 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     px = np.where(inside, px, 0.0)
     py = np.where(inside, py, 0.0)
     days_ahead = np.maximum(mjd_full - eop.primary.last_measured_mjd, 0.0)
-    ut1_sigma = np.select(
-        [
-            status == EarthOrientationStatus.MEASURED_FINAL,
-            status == EarthOrientationStatus.MEASURED_RAPID,
-            status == EarthOrientationStatus.PREDICTED,
-        ],
-        [
-            UT1_SIGMA_FINAL_S,
-            UT1_SIGMA_RAPID_S,
-            np.maximum(
-                BULLETIN_A_UT1_COEFF_S * days_ahead**BULLETIN_A_UT1_POWER, UT1_SIGMA_RAPID_S
-            ),
-        ],
-        UT1_SIGMA_UNAVAILABLE_S,
+    # Fixed sigmas by status (final, rapid, predicted placeholder, unavailable), then the
+    # Bulletin A growth for predicted values.
+    status = np.asarray(status, dtype=np.int64)
+    ut1_fixed = np.array([UT1_SIGMA_FINAL_S, UT1_SIGMA_RAPID_S, 0.0, UT1_SIGMA_UNAVAILABLE_S])
+    pole_fixed = np.array(
+        [POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_RAPID_ARCSEC, 0.0, POLE_SIGMA_UNAVAILABLE_ARCSEC]
     )
-    pole_sigma = np.select(
-        [
-            status == EarthOrientationStatus.MEASURED_FINAL,
-            status == EarthOrientationStatus.MEASURED_RAPID,
-            status == EarthOrientationStatus.PREDICTED,
-        ],
-        [
-            POLE_SIGMA_FINAL_ARCSEC,
+    predicted = status == EarthOrientationStatus.PREDICTED
+    ut1_sigma = np.where(
+        predicted,
+        np.maximum(BULLETIN_A_UT1_COEFF_S * days_ahead**BULLETIN_A_UT1_POWER, UT1_SIGMA_RAPID_S),
+        ut1_fixed[status],
+    )
+    pole_sigma = np.where(
+        predicted,
+        np.maximum(
+            BULLETIN_A_POLE_COEFF_ARCSEC * days_ahead**BULLETIN_A_POLE_POWER,
             POLE_SIGMA_RAPID_ARCSEC,
-            np.maximum(
-                BULLETIN_A_POLE_COEFF_ARCSEC * days_ahead**BULLETIN_A_POLE_POWER,
-                POLE_SIGMA_RAPID_ARCSEC,
-            ),
-        ],
-        POLE_SIGMA_UNAVAILABLE_ARCSEC,
+        ),
+        pole_fixed[status],
     )
     err = ARCSEC_PER_UT1_SECOND * ut1_sigma + pole_sigma
     lo, hi = ACCURACY_CLASS_BOUNDS_ARCSEC
@@ -784,8 +785,8 @@ def refraction_settings(site: Site, atmosphere: Atmosphere | None) -> Refraction
         t, t_src = float(atm.temperature_c), "given"
     rh = DEFAULT_RELATIVE_HUMIDITY if atm.relative_humidity is None else atm.relative_humidity
     wl = DEFAULT_WAVELENGTH_UM if atm.wavelength_um is None else atm.wavelength_um
-    refa, refb = erfa.refco(p, t, rh, wl)
-    return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, float(refa), float(refb))
+    refa, refb = _refco_cached(p, t, float(rh), float(wl))
+    return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -803,17 +804,23 @@ def _sincos(x, reduce=True):
     numpy's float64 tan is vectorised (SIMD) while sin and cos are not on common builds;
     with t = tan(x/4), |x| <= pi after reduction: s2 = 2t/(1+t^2), c2 = (1-t^2)/(1+t^2) are
     sin and cos of x/2, and sin x = 2 s2 c2, cos x = (c2 - s2)(c2 + s2). Agreement with
-    np.sin/np.cos is within 1e-15 (checked in tests). ``reduce=False`` skips the reduction
-    to [-pi, pi] for arguments known to lie there (declinations).
+    np.sin/np.cos is within 2e-15 (checked in tests). ``reduce=False`` skips the reduction
+    to [-pi, pi] for arguments known to lie there (declinations); ``reduce="shift"`` is for
+    arguments in [0, 2 pi] (right ascensions): x - pi, with both signs flipped.
     """
-    if reduce:
+    shifted = reduce == "shift"
+    if shifted:
+        x = x - np.pi
+    elif reduce:
         x = x - TWO_PI * np.round(x * (1.0 / TWO_PI))
     t = np.tan(0.25 * x)
     t2 = t * t
     d = 1.0 / (1.0 + t2)
-    s2 = (2.0 * d) * t
-    c2 = (1.0 - t2) * d
-    return (2.0 * s2) * c2, (c2 - s2) * (c2 + s2)
+    sh = (2.0 * d) * t  # sin(x/2)
+    ch = (1.0 - t2) * d  # cos(x/2)
+    if shifted:  # sin(x + pi) = -sin x, cos(x + pi) = -cos x
+        return (-2.0 * sh) * ch, (sh - ch) * (sh + ch)
+    return (2.0 * sh) * ch, (ch - sh) * (ch + sh)
 
 
 def _nan0(a):
@@ -832,7 +839,9 @@ def _star_vectors(ra_deg, dec_deg, parallax_mas, pmra, pmdec, rv, dt_yr, eb_au):
     p + dt' w - parallax(rad) * eb with dt' = dt + (p.eb)/c (SOFA pmpx, Note 3 of
     :func:`observed_places`).
     """
-    sr, cr = _sincos(np.asarray(ra_deg, dtype=float) * RAD_PER_DEG)
+    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
+    in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI if ra.ndim else 0.0 <= ra <= TWO_PI
+    sr, cr = _sincos(ra, reduce="shift" if in_range else True)
     sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
     x = cd * cr
     y = cd * sr
@@ -902,6 +911,8 @@ def _observing_matrix(astrom):
     Product A W R3(eral) BPN: CIO-based bias-precession-nutation, Earth rotation angle with
     longitude, polar motion, then hour angle/declination to azimuth/elevation (SOFA atioq).
     """
+    if np.ndim(astrom["eral"]) == 0:
+        return _observing_matrix_scalar(astrom)
     eral = astrom["eral"]
     ce, se = np.cos(eral), np.sin(eral)
     o, z = np.ones_like(eral), np.zeros_like(eral)
@@ -922,6 +933,19 @@ def _observing_matrix(astrom):
     a = np.stack(
         [np.stack([sp, z, -cp], -1), np.stack([z, o, z], -1), np.stack([cp, z, sp], -1)], -2
     )
+    return a @ w @ r3 @ astrom["bpn"]
+
+
+def _observing_matrix_scalar(astrom):
+    """:func:`_observing_matrix` for one instant, with Python floats (less overhead)."""
+    e = float(astrom["eral"])
+    ce, se = math.cos(e), math.sin(e)
+    xp, yp = float(astrom["xpl"]), float(astrom["ypl"])
+    sx, cx, sy, cy = math.sin(xp), math.cos(xp), math.sin(yp), math.cos(yp)
+    sp, cp = float(astrom["sphi"]), float(astrom["cphi"])
+    r3 = np.array([[ce, se, 0.0], [-se, ce, 0.0], [0.0, 0.0, 1.0]])
+    w = np.array([[cx, 0.0, sx], [sx * sy, cy, -cx * sy], [-sx * cy, sy, cx * cy]])
+    a = np.array([[sp, 0.0, -cp], [0.0, 1.0, 0.0], [cp, 0.0, sp]])
     return a @ w @ r3 @ astrom["bpn"]
 
 
@@ -1068,13 +1092,13 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits):
     horizon_limit, avoidance = limits
     alt = 90.0 - zd
     flags = _any_bits(
-        (np.isnan(px), ObservedFlag.MISSING_PARALLAX),
-        (px <= 0.0, ObservedFlag.NON_POSITIVE_PARALLAX),
-        (np.isnan(rv), ObservedFlag.MISSING_RADIAL_VELOCITY),
-        (np.isnan(pmra) | np.isnan(pmdec), ObservedFlag.MISSING_PROPER_MOTION),
-        (alt < horizon_limit, ObservedFlag.BELOW_HORIZON_LIMIT),
-        (sep < avoidance, ObservedFlag.WITHIN_SUN_AVOIDANCE),
-        (zaet < 0.0, ObservedFlag.AIRMASS_UNDEFINED),
+        (np.isnan(px), _F_MISSING_PARALLAX),
+        (px <= 0.0, _F_NON_POSITIVE_PARALLAX),
+        (np.isnan(rv), _F_MISSING_RADIAL_VELOCITY),
+        (np.isnan(pmra) | np.isnan(pmdec), _F_MISSING_PROPER_MOTION),
+        (alt < horizon_limit, _F_BELOW_HORIZON_LIMIT),
+        (sep < avoidance, _F_WITHIN_SUN_AVOIDANCE),
+        (zaet < 0.0, _F_AIRMASS_UNDEFINED),
     )
     return az, zd, alt, ha, dec, ra, pa, airmass, dl * _ARCSEC_PER_RAD, sep, flags
 
@@ -1139,6 +1163,111 @@ def _quiet_erfa(func, *args):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", erfa.ErfaWarning)
         return func(*args)
+
+
+# ---------------------------------------------------------------------------------------------
+# Star-independent quantities: apco13 with the precession-nutation interpolated from a cache
+# ---------------------------------------------------------------------------------------------
+
+#: Spacing of the cached precession-nutation nodes, days (15 minutes of TT).
+CIP_NODE_STEP_DAYS = 1.0 / 96.0
+
+
+@functools.lru_cache(maxsize=4096)
+def _cip_node(k: int):
+    """CIP X, Y, CIO locator s and equation of the origins at node k (TT = k * step, JD).
+
+    IAU 2006/2000A as SOFA ``apco13`` computes them: ``pnm06a``, ``bpn2xy``, ``s06``,
+    ``eors``.
+    """
+    d1 = k * CIP_NODE_STEP_DAYS
+    d1i = np.floor(d1)
+    d2 = d1 - d1i
+    r = erfa.pnm06a(d1i, d2)
+    x, y = erfa.bpn2xy(r)
+    s = erfa.s06(d1i, d2, x, y)
+    return float(x), float(y), float(s), float(erfa.eors(r, s))
+
+
+def _cip_interpolated(tt1, tt2):
+    """X, Y, s, eo at TT instants by 3-point (quadratic) interpolation between cached nodes.
+
+    Notes
+    -----
+    1. The shortest periods in IAU 2000A nutation are a few days (largest short-period
+       terms ~0.2 arcsec at 13.66 d); with 15-minute nodes the quadratic interpolation error
+       is below 1e-8 arcsec, far below the 1e-12 rad to which the SOFA atco13 test values are
+       reproduced (checked in tests).
+    """
+    tt1 = np.asarray(tt1, dtype=float)
+    tt2 = np.asarray(tt2, dtype=float)
+    base = np.floor(tt1 / CIP_NODE_STEP_DAYS)
+    frac = (tt1 - base * CIP_NODE_STEP_DAYS + tt2) / CIP_NODE_STEP_DAYS
+    shift = np.floor(frac)
+    k0 = (base + shift).astype(np.int64)
+    u = frac - shift  # in [0, 1): between node k0 and k0 + 1
+    flat_k = k0.reshape(-1)
+    flat_u = u.reshape(-1)
+    out = np.empty((flat_k.size, 4))
+    for i, (k, t) in enumerate(zip(flat_k.tolist(), flat_u.tolist(), strict=True)):
+        a = np.array(_cip_node(k - 1))
+        b = np.array(_cip_node(k))
+        c = np.array(_cip_node(k + 1))
+        # Lagrange through t = -1, 0, 1.
+        out[i] = b + 0.5 * t * (c - a) + 0.5 * t * t * (c - 2.0 * b + a)
+    out = out.reshape(k0.shape + (4,))
+    return out[..., 0], out[..., 1], out[..., 2], out[..., 3]
+
+
+@functools.lru_cache(maxsize=256)
+def _refco_cached(p, t, rh, wl):
+    refa, refb = erfa.refco(p, t, rh, wl)
+    return float(refa), float(refb)
+
+
+def star_independent(jd1, jd2, dut1, xp, yp, site: Site, refr: RefractionSettings):
+    """SOFA ``apco13``, with the precession-nutation taken from :func:`_cip_interpolated`.
+
+    Parameters
+    ----------
+    jd1, jd2 : array_like
+        UTC, two-part quasi JD.
+    dut1 : array_like
+        UT1-UTC, seconds.
+    xp, yp : array_like
+        Polar motion, radians.
+    site : Site
+    refr : RefractionSettings
+
+    Returns
+    -------
+    astrom : ERFA ASTROM structured array
+    eo : ndarray
+        Equation of the origins, radians.
+    tt1, tt2 : ndarray
+        TT, two-part JD.
+    ebpv, ehp : ndarray
+        Earth barycentric position/velocity and heliocentric position (SOFA ``epv00``).
+
+    Notes
+    -----
+    1. The sequence is that of ``apco13``: UTC -> TAI -> TT and UT1, ``epv00``, CIP X, Y and
+       s, ``era00``, ``sp00``, refraction constants from ``refco``, then ``apco``.
+    """
+    tai1, tai2 = _quiet_erfa(erfa.utctai, jd1, jd2)
+    tt1, tt2 = erfa.taitt(tai1, tai2)
+    u1, u2 = _quiet_erfa(erfa.utcut1, jd1, jd2, dut1)
+    ehpv, ebpv = erfa.epv00(tt1, tt2)
+    x, y, s, eo = _cip_interpolated(tt1, tt2)
+    theta = erfa.era00(u1, u2)
+    sp = erfa.sp00(tt1, tt2)
+    refa, refb = (refr.refa_rad, refr.refb_rad)
+    astrom = erfa.apco(
+        tt1, tt2, ebpv, ehpv["p"], x, y, s, theta,
+        site.longitude_deg * RAD_PER_DEG, site.latitude_deg * RAD_PER_DEG, site.height_m,
+        xp, yp, sp, refa, refb,
+    )  # fmt: skip
+    return astrom, eo, tt1, tt2, ebpv, ehpv["p"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1220,14 +1349,17 @@ class ObservedPlaces:
 
 
 def _bits(mask, flag):
-    return np.where(mask, np.uint32(flag), np.uint32(0))
+    return np.where(mask, np.uint32(int(flag)), np.uint32(0))
 
 
 def _any_bits(*pairs):
     """OR of flag bits where each condition holds; conditions that never hold cost little."""
     out = np.uint32(0)
     for mask, flag in pairs:
-        if np.any(mask):
+        if np.ndim(mask) == 0:
+            if mask:
+                out = out | np.uint32(flag)
+        elif mask.any():
             out = out | np.where(mask, np.uint32(flag), np.uint32(0))
     return out
 
@@ -1319,8 +1451,6 @@ def observed_places(
     """
     eop = eop or earth_orientation()
     jd1, jd2 = _check_instants(utc_jd1, utc_jd2)
-    elong = site.longitude_deg * RAD_PER_DEG
-    phi = site.latitude_deg * RAD_PER_DEG
     refr = refraction_settings(site, atmosphere)
     eo_vals = earth_orientation_at(jd1, jd2, eop)
     if eop_values is not None:
@@ -1340,23 +1470,9 @@ def observed_places(
         )
     xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
     yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
-    astrom, eo = _quiet_erfa(
-        erfa.apco13,
-        jd1,
-        jd2,
-        eo_vals.ut1_utc_s,
-        elong,
-        phi,
-        site.height_m,
-        xp,
-        yp,
-        refr.pressure_hpa,
-        refr.temperature_c,
-        refr.relative_humidity,
-        refr.wavelength_um,
+    astrom, eo, tt1, tt2, ebpv, ehp = star_independent(
+        jd1, jd2, eo_vals.ut1_utc_s, xp, yp, site, refr
     )
-    tai1, tai2 = _quiet_erfa(erfa.utctai, jd1, jd2)
-    tt1, tt2 = erfa.taitt(tai1, tai2)
     epoch_tt = erfa.epj(tt1, tt2)
     mjd_utc = (jd1 - 2400000.5) + jd2
     ins = _instant_quantities(astrom)
@@ -1403,7 +1519,7 @@ def observed_places(
 
     a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
     if geocentric:
-        geo = _geocentric_astrom(tt1, tt2, astrom)
+        geo = _geocentric_astrom(tt1, tt2, astrom, ebpv, ehp)
         if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
             full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
             gout = [np.empty(shape) for _ in range(5)]
@@ -1436,13 +1552,12 @@ def observed_places(
     )
 
 
-def _geocentric_astrom(tt1, tt2, astrom_obs):
+def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     """Star-independent quantities for a geocentric observer (SOFA ``apci``)."""
     bpn = astrom_obs["bpn"]
     x, y = bpn[..., 2, 0], bpn[..., 2, 1]
-    s = erfa.s06(tt1, tt2, x, y)
-    ehpv, ebpv = erfa.epv00(tt1, tt2)
-    geo = erfa.apci(tt1, tt2, ebpv, ehpv["p"], x, y, s)
+    _, _, s, _ = _cip_interpolated(tt1, tt2)
+    geo = erfa.apci(tt1, tt2, ebpv, ehp, x, y, s)
     return {
         "eb": [geo["eb"][..., i] for i in range(3)],
         "eh": [geo["eh"][..., i] for i in range(3)],
