@@ -1123,6 +1123,8 @@ def _check_instants(utc_jd1, utc_jd2):
             "instants",
             f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
         )
+    if jd1.shape == jd2.shape:
+        return jd1, jd2
     return np.broadcast_arrays(jd1, jd2)
 
 
@@ -1348,6 +1350,11 @@ class ObservedPlaces:
     provenance: dict = field(default_factory=dict)
 
 
+def _shaped(x, shape):
+    """``x`` as an array of ``shape`` (a broadcast view only when needed)."""
+    return x if np.shape(x) == shape else np.broadcast_to(x, shape)
+
+
 def _bits(mask, flag):
     return np.where(mask, np.uint32(int(flag)), np.uint32(0))
 
@@ -1498,7 +1505,7 @@ def observed_places(
             for o, r in zip(out, res, strict=True):
                 o[sl] = r
     else:
-        out = [np.broadcast_to(r, shape) for r in _chain(*stars[:6], dt, ins, limits)]
+        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits)]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
     sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
@@ -1515,7 +1522,7 @@ def observed_places(
         | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
     )
     if np.any(instant_flags):
-        res["flags"] = np.broadcast_to(res["flags"] | instant_flags, shape).astype(np.uint32)
+        res["flags"] = _shaped(res["flags"] | instant_flags, shape).astype(np.uint32)
 
     a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
     if geocentric:
@@ -1534,14 +1541,14 @@ def observed_places(
             a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(*stars[:6], dt, geo, eo)
 
     return ObservedPlaces(
-        astrometric_ra_deg=np.broadcast_to(a_ra, shape),
-        astrometric_dec_deg=np.broadcast_to(a_dec, shape),
-        apparent_ra_deg=np.broadcast_to(app_ra, shape),
-        apparent_dec_deg=np.broadcast_to(app_dec, shape),
-        apparent_ra_cio_deg=np.broadcast_to(app_ra_cio, shape),
+        astrometric_ra_deg=_shaped(a_ra, shape),
+        astrometric_dec_deg=_shaped(a_dec, shape),
+        apparent_ra_deg=_shaped(app_ra, shape),
+        apparent_dec_deg=_shaped(app_dec, shape),
+        apparent_ra_cio_deg=_shaped(app_ra_cio, shape),
         **res,
-        sun_altitude_deg=np.broadcast_to(sun_alt_deg, shape),
-        sun_azimuth_deg=np.broadcast_to(ins.sun_az * DEG_PER_RAD, shape),
+        sun_altitude_deg=_shaped(sun_alt_deg, shape),
+        sun_azimuth_deg=_shaped(ins.sun_az * DEG_PER_RAD, shape),
         epoch_tt_jyear=np.asarray(epoch_tt),
         eop=eo_vals,
         refraction=refr,
