@@ -7,8 +7,8 @@ Two models are offered:
     Hipparcos Catalogue (ESA 1997, Vol. 1, section 1.5.5): scaled quantities, with the radial
     proper motion ``mu_r = v_r * parallax / A`` (A = 1 au per Julian year in km/s), which
     stays finite when the parallax is zero. All six parameters are propagated, perspective
-    acceleration included. Epochs are barycentric coordinate times (TDB Julian epochs); no
-    light-time correction (as in the catalogue's own definition of astrometric parameters).
+    acceleration included. Epochs are Julian epochs on the TDB scale; no light-time
+    correction (as in the catalogue's own definition of astrometric parameters).
 ``light_time``
     The same straight-line motion, but with the light-time correction of the IAU SOFA
     routines starpm/pmsafe (called through pyerfa), which relate the times at which light
@@ -347,8 +347,8 @@ def propagate_standard(
        tau the epoch difference), f = 1/|s|, the model is u = f s, parallax = parallax0 f,
        mu = f (v - u (u.v)), mu_r = f (u.v): ESA 1997 Vol. 1 eqs. 1.5.12-1.5.19 written in
        vector form.
-    4. The vectors are taken on the local triad (p0, q0, r0) of the catalogue position
-       (ESA 1997 Vol. 1 eq. 1.2.15), where r0 = (0, 0, 1), v = (mu_a*, mu_d, mu_r) and
+    4. The vectors are taken on the normal triad (p0, q0, r0) of the catalogue position
+       (as in ESA 1997 Vol. 1 section 1.5.5), where r0 = (0, 0, 1), v = (mu_a*, mu_d, mu_r) and
        s = (tau mu_a*, tau mu_d, 1 + tau mu_r); the celestial pole is (0, cos d0, sin d0).
        On the rotated basis (cos a0, sin a0, 0), p0, pole the position is
        (X, tau mu_a*, Z) with X = cos d0 s_r - sin d0 s_q and Z = cos d0 s_q + sin d0 s_r,
