@@ -755,7 +755,7 @@ def propagate(
     ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
     shape = np.broadcast_shapes(*(x.shape for x in args), tau.shape)
-    flat = [np.broadcast_to(x, shape).reshape(-1) for x in (*args, tau)]
+    flat = [_flatten(x, shape) for x in (*args, tau)]
     n = flat[0].shape[0]
     cov_flat = None
     if covariance is not None:
@@ -763,8 +763,7 @@ def propagate(
         cov_flat = cov_flat.reshape(-1, 6, 6)
     if model == "light_time":
         e_from, e_to = (
-            np.broadcast_to(np.asarray(e, dtype=float), shape).reshape(-1)
-            for e in (epoch_from_jyear, epoch_to_jyear)
+            _flatten(np.asarray(e, dtype=float), shape) for e in (epoch_from_jyear, epoch_to_jyear)
         )
     outs = [np.empty(n) for _ in range(6)]
     flags = np.empty(n, dtype=np.int64)
@@ -796,6 +795,13 @@ def propagate(
     if cov_out is not None:
         cov_out = cov_out.reshape(shape + (6, 6))
     return PropagationResult(ast, flags.reshape(shape), cov_out)
+
+
+def _flatten(x, shape):
+    """``x`` broadcast to ``shape`` and raveled (a view where possible)."""
+    if x.shape == shape:
+        return x.reshape(-1)
+    return np.broadcast_to(x, shape).reshape(-1)
 
 
 def _fields(ast: Astrometry):
