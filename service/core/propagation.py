@@ -405,58 +405,64 @@ def _jacobian_entries(loc: _Local, plx_mas, rv, usable, g, out):
     kd = pa * t1  # coefficient of d alpha1* in d mu_d1 (with minus sign)
     mfft = -f * f * tau  # (df/f) per unit of s.e / tau
     # Column 0 (alpha*): a rotation about the pole; only alpha* changes (Note 3).
-    out[0, 0] = f / (cd * hinv)
+    out[0, 0, ...] = f / (cd * hinv)
     # Column 1 (delta): ds = (0, sz, -sy), dv = (0, mu_r, -mu_d), s.ds = 0.
     j01 = fh * sx * Z
-    out[0, 1] = j01
+    out[0, 1, ...] = j01
     j11 = loc.X * hinv
-    out[1, 1] = j11
-    out[3, 1] = fh * sx * loc.VZ + kp * j01
-    out[4, 1] = ffh * (s2 * loc.VX - Z * (sy * mur - sz * loc.mud)) - kd * j01 - mur1 * j11
-    # Responses to a unit change of the velocity along e = p0, q0, r0 (ds = tau e):
-    # f p1.e, f q1.e, s.e.
-    resp = []
-    for pe, qe, se in (
-        (loc.X, -Z * sx, sx),
-        (sd * sx, s2 * cd - Z * sy, sy),
-        (-cd * sx, s2 * sd - Z * sz, sz),
+    out[1, 1, ...] = j11
+    out[3, 1, ...] = fh * sx * loc.VZ + kp * j01
+    out[4, 1, ...] = ffh * (s2 * loc.VX - Z * (sy * mur - sz * loc.mud)) - kd * j01 - mur1 * j11
+    # Responses to a unit change of the velocity along e = p0, q0, r0 (ds = tau e), from
+    # f p1.e, f q1.e and s.e. Those along p0, q0 are columns 3, 4 (mu_a*, mu_d) and are
+    # written in place; the one along r0 is scaled into columns 2 and 5 below.
+    z_resp = [np.empty_like(f) for _ in range(4)]
+    col3, col4 = ([out[i, col, ...] for i in (0, 1, 3, 4)] for col in (3, 4))
+    dffs = []
+    for dst, pe, qe, se in (
+        (col3, loc.X, -Z * sx, sx),
+        (col4, sd * sx, s2 * cd - Z * sy, sy),
+        (z_resp, -cd * sx, s2 * sd - Z * sz, sz),
     ):
         a = fh * pe
         b = ffh * qe
         dff = mfft * se  # df/f
-        j0 = tau * a
-        j1 = tau * b
-        resp.append((j0, j1, dff * pa + a + kp * j0, dff * pd + b - kd * j0 - mur1 * j1, dff))
+        j0 = np.multiply(tau, a, out=dst[0])
+        j1 = np.multiply(tau, b, out=dst[1])
+        j3 = np.multiply(dff, pa, out=dst[2])
+        j3 += a
+        j3 += kp * j0
+        j4 = np.multiply(dff, pd, out=dst[3])
+        j4 += b
+        j4 -= kd * j0
+        j4 -= mur1 * j1
+        dffs.append(dff)
     plx_f = plx_mas * _RAD_PER_MAS * f  # parallax in rad, as the motions
     # Usable radial proper motion: A/plx and g are finite; elsewhere row 5 is the identity.
     f_row5 = np.where(usable, f * _RAD_PER_MAS, 0.0)  # row 5 per mas instead of per rad
     a_over_plx = np.where(usable, AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD / plx_mas, 0.0)
     g = np.where(usable, g, 0.0)
     two_a_tau = 2.0 * a_over_plx * tau
-    # Columns 3, 4 (mu_a*, mu_d): dv = e_x, e_y; dg = 2 (A/plx) tau mu.
-    for col, (j0, j1, j3, j4, dff), mu in ((3, resp[0], loc.mua), (4, resp[1], loc.mud)):
-        out[0, col] = j0
-        out[1, col] = j1
-        out[3, col] = j3
-        out[4, col] = j4
-        out[2, col] = plx_f * dff
-        out[5, col] = f_row5 * (dff * g + two_a_tau * mu)
+    # Columns 3, 4, rows 2 and 5: dg = 2 (A/plx) tau mu.
+    for col, dff, mu in ((3, dffs[0], loc.mua), (4, dffs[1], loc.mud)):
+        np.multiply(plx_f, dff, out=out[2, col, ...])
+        np.multiply(f_row5, dff * g + two_a_tau * mu, out=out[5, col, ...])
     # Columns 2, 5 (parallax, v_r): dv = e_z d mu_r, d mu_r = (v_r/A) d plx + (plx/A) d v_r
     # (column 5 in mas per km/s: plx in mas).
-    j0, j1, j3, j4, dff = resp[2]
+    dff = dffs[2]
     c_plx = np.where(usable, rv * (1.0 / AU_PER_JULIAN_YEAR_KM_S), 0.0)
     c_rv = np.where(usable, plx_mas * (1.0 / AU_PER_JULIAN_YEAR_KM_S), 0.0)
     for col, c in ((2, c_plx), (5, c_rv)):
-        out[0, col] = j0 * c
-        out[1, col] = j1 * c
-        out[3, col] = j3 * c
-        out[4, col] = j4 * c
+        for row, resp in zip((0, 1, 3, 4), z_resp, strict=True):
+            np.multiply(resp, c, out=out[row, col, ...])
     plx_f_dff = plx_f * dff
-    out[2, 2] = f + plx_f_dff * c_plx
-    out[2, 5] = plx_f_dff * c_rv
+    np.add(f, plx_f_dff * c_plx, out=out[2, 2, ...])
+    np.multiply(plx_f_dff, c_rv, out=out[2, 5, ...])
     dg_plx = rv * tau * c_plx - a_over_plx / plx_mas * loc.tpm2 * MAS_PER_RAD
-    out[5, 2] = f_row5 * (dff * c_plx * g + dg_plx)
-    out[5, 5] = np.where(usable, f * (dff * (c_rv * _RAD_PER_MAS) * g + 1.0 + 2.0 * tau * mur), 1.0)
+    np.multiply(f_row5, dff * c_plx * g + dg_plx, out=out[5, 2, ...])
+    out[5, 5, ...] = np.where(
+        usable, f * (dff * (c_rv * _RAD_PER_MAS) * g + 1.0 + 2.0 * tau * mur), 1.0
+    )
 
 
 #: Order of parameters in Jacobians and covariances (units mas, mas, mas, mas/yr, mas/yr,
