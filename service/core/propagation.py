@@ -277,7 +277,11 @@ def _wrap_360(angle_deg):
 
 
 def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
-    """Standard model: (Astrometry, flags, _Local, usable) for broadcast-compatible arrays."""
+    """Standard model for broadcast-compatible arrays.
+
+    Returns (Astrometry, flags, _Local, usable, g): ``usable`` marks stars whose radial
+    proper motion is used; ``g`` (km/s) is v_r1 / f there (Note 4 of propagate_standard).
+    """
     flags = input_flags(plx, pma, pmd, rv)
     mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
     loc = _advance_local(dec_deg * RAD_PER_DEG, pma, pmd, mur_mas, tau)
@@ -458,7 +462,9 @@ def _jacobian_entries(loc: _Local, plx_mas, rv, usable, g, out):
     plx_f_dff = plx_f * dff
     np.add(f, plx_f_dff * c_plx, out=out[2, 2, ...])
     np.multiply(plx_f_dff, c_rv, out=out[2, 5, ...])
-    dg_plx = rv * tau * c_plx - a_over_plx / plx_mas * loc.tpm2 * MAS_PER_RAD
+    # dg/dplx = v_r tau v_r/A - (A/plx^2) tau mu^2, with A/plx^2 = (A/plx)^2 / A (finite,
+    # zero, where the parallax is not usable).
+    dg_plx = rv * tau * c_plx - a_over_plx * a_over_plx * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * loc.tpm2
     np.multiply(f_row5, dff * c_plx * g + dg_plx, out=out[5, 2, ...])
     out[5, 5, ...] = np.where(
         usable, f * (dff * (c_rv * _RAD_PER_MAS) * g + 1.0 + 2.0 * tau * mur), 1.0

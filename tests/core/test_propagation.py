@@ -480,6 +480,25 @@ def test_propagated_covariance_matches_finite_difference_jacobian():
     assert np.all(np.abs(res.covariance - ref) <= 1e-6 * scale)
 
 
+def test_blocked_covariance_equals_jacobian_sandwich():
+    """propagate(covariance=...) and propagate_covariance(standard_jacobian(...)) agree,
+    including the NaN rows and columns of unknown parameters."""
+    rng = np.random.default_rng(12)
+    ra, dec, plx, pma, pmd, rv, tau = random_stars(rng, 300)
+    plx[::7] = np.nan
+    plx[3::11] = -0.5
+    rv[::5] = np.nan
+    g = rng.normal(size=(300, 6, 6)) * np.array([0.1, 0.1, 0.1, 0.1, 0.1, 2.0])[:, None]
+    cov = g @ np.swapaxes(g, -1, -2)
+    fused = propagate(ra, dec, plx, pma, pmd, rv, 2016.0, 2016.0 + tau, covariance=cov)
+    jac = standard_jacobian(ra, dec, plx, pma, pmd, rv, 2016.0, 2016.0 + tau)
+    sandwich = propagate_covariance(jac, cov)
+    np.testing.assert_array_equal(np.isnan(fused.covariance), np.isnan(sandwich))
+    scale = np.sqrt(np.abs(np.einsum("...ii->...i", np.nan_to_num(sandwich))))
+    tol = 1e-12 * scale[..., :, None] * scale[..., None, :]
+    assert np.all(np.abs(np.nan_to_num(fused.covariance - sandwich)) <= tol)
+
+
 def tangent_offsets_mas(ra_deg, dec_deg, ra0_deg, dec0_deg):
     """Offsets (alpha*, delta) in mas of directions from a reference, from unit vectors."""
     u0 = unit_vector(ra0_deg, dec0_deg)
