@@ -9,10 +9,12 @@ from flask import current_app
 from flask_smorest import abort
 
 from ..core import constellations as core
+from ..core import frames as core_frames
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
+from .frames import FrameSpecSchema, frame_from_spec
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -86,8 +88,20 @@ def _star_fields(motion_required: bool) -> dict:
             allow_none=True,
             metadata={"description": "Your identifier for the star (string or integer), echoed."},
         ),
-        "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
-        "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
+        "ra_deg": _num(
+            "Right ascension (longitude for galactic or ecliptic) in the request's frame "
+            "(default ICRS), degrees.",
+            required=True,
+            lo=0.0,
+            hi=360.0,
+        ),
+        "dec_deg": _num(
+            "Declination (latitude for galactic or ecliptic) in the request's frame "
+            "(default ICRS), degrees.",
+            required=True,
+            lo=-90.0,
+            hi=90.0,
+        ),
         "parallax_mas": _num(
             "Parallax, mas. Null if unknown (the motion is then applied as direction only); "
             "zero or negative values are accepted and flagged."
@@ -121,7 +135,16 @@ class LookupRequestSchema(ma.Schema):
     stars = StarTableField(
         ConstellationStarSchema,
         required=True,
-        metadata={"description": "Positions (ICRS): a list of records, or an object of columns."},
+        metadata={"description": "Positions: a list of records, or an object of columns."},
+    )
+    frame = ma.fields.Nested(
+        FrameSpecSchema,
+        load_default=lambda: {"name": "icrs"},
+        metadata={
+            "description": "Frame of the given positions and motions (default ICRS). Other "
+            "frames are converted to ICRS at catalogue_epoch (or epoch, or J2000.0 if "
+            "neither is given) before the lookup."
+        },
     )
     catalogue_epoch = EpochField(
         load_default=None,
@@ -358,6 +381,16 @@ def _locate(args, with_margin: bool):
     if epoch is None:
         epoch = cat_epoch
     moving = np.isfinite(pma) | np.isfinite(pmd)
+    frame = frame_from_spec(args["frame"], "frame")
+    if frame.name != "icrs":
+        at = cat_epoch if cat_epoch is not None else (epoch if epoch is not None else 2000.0)
+        icrs = core_frames.convert(
+            ra, dec, plx, pma, pmd, rv, at, frame, core_frames.make_frame("icrs")
+        )
+        ra, dec = icrs.ra_deg, icrs.dec_deg
+        pma = np.where(moving, icrs.pm_ra_cosdec_mas_yr, np.nan)
+        pmd = np.where(moving, icrs.pm_dec_mas_yr, np.nan)
+        rv = icrs.radial_velocity_km_s
     if epoch is not None and cat_epoch is not None and epoch != cat_epoch and np.any(moving):
         res = core.locate_moving(
             ra,
