@@ -6,8 +6,9 @@ module loads that table once, turns it into an exact rectilinear cell grid on th
 sphere, and answers, for arrays of positions:
 
 * which constellation contains each position, after reduction to equinox B1875.0 in one of
-  two ways (:data:`REDUCTIONS`): the FK4 system at equinox B1875.0 (default, the system the
-  boundaries were drawn in) or IAU 1976 (FK5) precession to B1875.0;
+  the ways of :data:`REDUCTIONS`: the FK4 system at equinox B1875.0 (default, the system the
+  boundaries were drawn in), or FK5 precessed to B1875.0 (IAU 2006 precession, as
+  general-purpose libraries do, or the IAU 1976 precession of the FK5 system itself);
 * the angular distance to the nearest boundary arc and the constellation on its far side;
 * every epoch at which a star in straight-line space motion crosses a boundary;
 * the outline of a constellation as a densified polygon in a chosen frame, as GeoJSON.
@@ -24,7 +25,9 @@ References
    rotation, with the correction for FK4 being a rotating system.
 4. Mignard, F. & Froeschle, M. 2000, A&A 354, 732 (via ERFA ``fk5hip``): FK5 to ICRS
    (Hipparcos) orientation.
-5. Lieske, J. H. et al. 1977, A&A 58, 1 (via ERFA ``pmat76``): IAU 1976 precession.
+5. Lieske, J. H. et al. 1977, A&A 58, 1 (via ERFA ``pmat76``): IAU 1976 precession;
+   Capitaine, N. et al. 2003, A&A 412, 567 and Hilton, J. L. et al. 2006, Celest. Mech.
+   Dyn. Astron. 94, 351 (via ERFA ``bp06``): IAU 2006 precession.
 6. Seidelmann, P. K. (ed.) 1992, Explanatory Supplement to the Astronomical Almanac,
    section 3.531 (E-terms of aberration; FK4 precession with Newcomb's angles).
 7. ESA 1997, The Hipparcos and Tycho Catalogues, Vol. 1, section 1.5.5: straight-line

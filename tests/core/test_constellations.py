@@ -520,6 +520,7 @@ def test_crossings_confirmed_and_none_missed_by_a_100x_finer_sweep():
     epoch, start, end, step = 2016.0, -8000.0, 12000.0, 200.0
     res = C.boundary_crossings(ra, dec, plx, pma, pmd, rv, epoch, start, end, max_step_yr=step)
     assert res.count.sum() >= 10  # the stars do cross boundaries
+    assert not np.any(res.flags & Flag.SEARCH_INCOMPLETE)
     r0, v, _ = C._space_motion(ra, dec, plx, pma, pmd, rv)
     eps = CROSSING_EPOCH_TOL_DAY / 365.25
     for k in range(n):
@@ -589,6 +590,21 @@ def test_crossing_window_checks():
     with pytest.raises(ValueError, match="max_step_yr"):
         C.check_crossing_window(2000.0, -98_000.0, 98_000.0, 0.01)
     assert C.check_crossing_window(2000.0, 1900.0, 2100.0, None) == 2.0
+
+
+def test_search_that_runs_out_of_steps_says_so():
+    # A star 0.5 arcsec from a constant-RA boundary moving nearly along it: the safe steps
+    # stay short (thousands over a century); with a tiny step budget the search must flag
+    # itself incomplete.
+    segs = C._segments()
+    v = np.flatnonzero((segs.kind == 1) & (np.abs(segs.lo) < 1.0) & (np.abs(segs.hi) < 1.0))
+    s = v[np.argmax(segs.hi[v] - segs.lo[v])]  # the longest constant-RA arc off the poles
+    ra_b = segs.c[s] * DEG_PER_RAD + 0.5 / 3600.0
+    dec_b = (segs.lo[s] + 0.1 * (segs.hi[s] - segs.lo[s])) * DEG_PER_RAD
+    ra, dec = _b1875_to_icrs_deg(np.array([ra_b]), np.array([dec_b]))
+    args = (ra, dec, np.nan, 0.0, 1000.0, np.nan, 2000.0, 2000.0, 2100.0)
+    res = C.boundary_crossings(*args, max_iterations=50)
+    assert res.flags[0] & Flag.SEARCH_INCOMPLETE
 
 
 def test_star_without_motion_never_crosses():
