@@ -696,7 +696,19 @@ def outlines(args):
     return _geojson(core.outline_collection(**_outline_options(args)))
 
 
+def _table_ready():
+    table = core.boundary_table()  # checksums verified when loaded
+    return True, (
+        f"Roman (1987) boundary table, {table.ra_low_h.size} rows, "
+        f"{len(table.abbreviations)} constellations, checksums verified"
+    )
+
+
 def register(app, api):
+    # The table is read (and its checksum verified) and the indexes built once, at start,
+    # so that no request pays for them.
+    core.warm_up()
+    app.extensions["skydrift_ready_checks"]["constellation_boundaries"] = _table_ready
     api.spec.components.schema("ConstellationStar", schema=ConstellationStarSchema)
     api.spec.components.schema("MovingStar", schema=MovingStarSchema)
     api.register_blueprint(blp)

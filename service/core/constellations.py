@@ -284,6 +284,17 @@ def boundary_table() -> BoundaryTable:
     )
 
 
+def warm_up() -> None:
+    """Load the table and build every cached index now (about a second, once a process)."""
+    boundary_table()
+    _grid_tables()
+    _flat_cells()
+    _segments()
+    _segment_attributes()
+    _margin_index()
+    _index_z_lut()
+
+
 def constellation_index(abbreviation: str) -> int:
     """Index of a constellation from its IAU abbreviation (case-insensitive).
 

@@ -38,6 +38,12 @@ def test_list_of_88(client):
     assert ori["name"] == "Orion"
 
 
+def test_ready_reports_the_boundary_table(client):
+    r = client.get("/ready")
+    check = r.json["checks"]["constellation_boundaries"]
+    assert check["ok"] is True and "357 rows" in check["detail"]
+
+
 def test_lookup_matches_core_in_both_layouts(client, demo_catalogue):
     stars = [{k: s.get(k) for k in ("id", "ra_deg", "dec_deg")} for s in demo_catalogue["stars"]]
     r = client.post(f"{BASE}/lookup", json={"stars": stars})
