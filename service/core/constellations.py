@@ -293,6 +293,7 @@ def warm_up() -> None:
     _segment_attributes()
     _margin_index()
     _index_z_lut()
+    _quick_lut()
 
 
 def constellation_index(abbreviation: str) -> int:
@@ -1264,6 +1265,69 @@ def _flat_cells():
     return cells
 
 
+@dataclasses.dataclass(frozen=True)
+class _QuickLut:
+    value: np.ndarray  # constellation of each quick cell, or -1 (flat, z band major)
+    n_ra: int
+    n_z: int
+    ra_bins_per_hour: float
+    z_bins_per_unit: float
+
+
+#: Quick look-up cells: 0.25 degree of RA by 1/1024 in z = sin(dec) (equal area).
+_QUICK_RA_BINS = 1440
+_QUICK_Z_BINS = 2048
+
+
+@functools.cache
+def _quick_lut() -> _QuickLut:
+    """A coarse (RA, sin dec) table answering most positions with one memory read.
+
+    Notes
+    -----
+    1. A quick cell gets a constellation only if it and its eight neighbours each lie
+       inside that one constellation (found on the union of the quick grid and the table
+       grid, as in :func:`_presence`); otherwise -1, and the position takes the exact path.
+       Since every quick cell is wider than _REDUCTION_SEPARATION_BOUND_RAD except within
+       0.2 degree of the poles (excluded: those cells are -1), a position in a valued cell
+       is farther than that from every boundary, so all reductions agree there.
+    """
+    table = boundary_table()
+    n_ra, n_z = _QUICK_RA_BINS, _QUICK_Z_BINS
+    ra_lines = 24.0 * np.arange(n_ra + 1) / n_ra
+    z_lines = np.clip(-1.0 + 2.0 * np.arange(n_z + 1) / n_z, -1.0, 1.0)
+    dec_lines = np.degrees(np.arcsin(z_lines))
+    ra_e = np.unique(np.concatenate([table.ra_edges_h, ra_lines]))
+    dec_e = np.unique(np.concatenate([table.dec_edges_deg, dec_lines]))
+    ra_mid = 0.5 * (ra_e[1:] + ra_e[:-1])
+    dec_mid = 0.5 * (dec_e[1:] + dec_e[:-1])
+    x = _grid_lookup(ra_mid[None, :] * 15.0, dec_mid[:, None]).astype(np.int16)
+    qi = np.minimum((ra_mid * (n_ra / 24.0)).astype(np.intp), n_ra - 1)
+    qj = np.minimum(((np.sin(np.radians(dec_mid)) + 1.0) * (n_z / 2.0)).astype(np.intp), n_z - 1)
+    lo = np.full((n_z, n_ra), np.iinfo(np.int16).max, dtype=np.int16)
+    hi = np.full((n_z, n_ra), -1, dtype=np.int16)
+    jj = np.broadcast_to(qj[:, None], x.shape)
+    ii = np.broadcast_to(qi[None, :], x.shape)
+    np.minimum.at(lo, (jj.ravel(), ii.ravel()), x.ravel())
+    np.maximum.at(hi, (jj.ravel(), ii.ravel()), x.ravel())
+    value = np.where(lo == hi, lo, -1).astype(np.int16)
+    ok = value >= 0
+    for dj in (-1, 0, 1):
+        for di in (-1, 0, 1):
+            if dj == 0 and di == 0:
+                continue
+            shifted = np.roll(np.roll(value, di, axis=1), dj, axis=0)
+            ok &= shifted == value
+    # rows next to the poles: no neighbours across the pole, and cells narrower than the
+    # bound near it
+    pole_rows = np.abs(dec_lines[:-1] + dec_lines[1:]) / 2.0 > 89.8
+    ok[0, :] = ok[-1, :] = False
+    ok[pole_rows, :] = False
+    value = np.where(ok, value, -1).astype(np.int16).ravel()
+    value.setflags(write=False)
+    return _QuickLut(value, n_ra, n_z, n_ra / 24.0, n_z / 2.0)
+
+
 def _near_grid_line(xyz_b1875, ra_h, i, j, bound_rad):
     """True where a position is within ``bound_rad`` of a line of the cell grid."""
     table = boundary_table()
@@ -1287,30 +1351,45 @@ def _locate_components(xyz, shape, reduction, with_margin, near_arcsec, extra_fl
 
     Notes
     -----
-    1. The requested reduction is computed for every position. The FK4 and FK5
-       reductions differ by less than 0.6 arcsec, so they can give different answers only
-       within that distance of a line of the cell grid; the other reductions are computed
-       only for positions within _REDUCTION_SEPARATION_BOUND_RAD of a grid line.
+    1. The requested reduction is computed for every position, and most positions are
+       answered from :func:`_quick_lut`, a coarse table whose cells (with their neighbours)
+       lie inside one constellation. The FK4 and FK5 reductions differ by less than 0.6
+       arcsec, so they can give different answers only within that distance of a line of
+       the cell grid; the other reductions are computed only for positions within
+       _REDUCTION_SEPARATION_BOUND_RAD of a grid line (all outside the quick cells).
     2. With ``compare`` False only the requested reduction is computed (``index_fk4`` and
        ``index_fk5`` then repeat ``index``, and REDUCTIONS_DISAGREE is never set).
     """
     b = _rotate_components(xyz, reduction)
-    index, ra_h, i, j = _lookup_components(b)
+    x, y, z = b
+    # RA in hours, [0, 24]; y + 0.0 turns -0.0 into +0.0 so that RA 0 never reads as 24
+    ra_h = np.arctan2(-(y + 0.0), -x) * (12.0 / math.pi) + 12.0
+    quick = _quick_lut()
+    qi = np.minimum((ra_h * quick.ra_bins_per_hour).astype(np.intp), quick.n_ra - 1)
+    qj = np.minimum(((z + 1.0) * quick.z_bins_per_unit).astype(np.intp), quick.n_z - 1)
+    index = quick.value[qj * quick.n_ra + qi]
+    slow = np.flatnonzero(index < 0)
     idx4 = index
     idx5 = index
-    if compare:
-        near_line = np.flatnonzero(_near_grid_line(b, ra_h, i, j, _REDUCTION_SEPARATION_BOUND_RAD))
-        sub = xyz[:, near_line]
-        others = {}
-        for red in ("fk4", "fk5"):
-            if red != reduction:
-                others[red] = _lookup_components(_rotate_components(sub, red))[0]
-        if "fk4" in others:
-            idx4 = index.copy()
-            idx4[near_line] = others["fk4"]
-        if "fk5" in others:
-            idx5 = index.copy()
-            idx5[near_line] = others["fk5"]
+    if slow.size:
+        bs = b[:, slow]
+        i = _edge_index(ra_h[slow], _grid_tables()[0])
+        j = _edge_index(bs[2], _grid_tables()[1])
+        index[slow] = _flat_cells()[j * (boundary_table().ra_edges_h.size - 1) + i]
+        if compare:
+            near = _near_grid_line(bs, ra_h[slow], i, j, _REDUCTION_SEPARATION_BOUND_RAD)
+            near_line = slow[near]
+            sub = xyz[:, near_line]
+            for red in ("fk4", "fk5"):
+                if red == reduction:
+                    continue
+                other_idx = _lookup_components(_rotate_components(sub, red))[0]
+                full = index.copy()
+                full[near_line] = other_idx
+                if red == "fk4":
+                    idx4 = full
+                else:
+                    idx5 = full
     flags = np.asarray(extra_flags, dtype=np.int64)
     if compare:
         flags = flags | np.where(idx4 != idx5, int(ConstellationFlag.REDUCTIONS_DISAGREE), 0)
