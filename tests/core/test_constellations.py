@@ -131,6 +131,23 @@ def test_grid_equals_reading_down_the_table():
         np.testing.assert_array_equal(C._grid_lookup(r, d), _scan(r, d))
 
 
+def test_quick_table_agrees_with_the_exact_path():
+    # Positions answered from the coarse quick table against Roman's procedure on their own
+    # B1875 coordinates: random points, and points 1 mas to 1 arcmin from grid nodes (where
+    # the exact path must take over).
+    ra, dec = _random_sphere(100_000, seed=21)
+    t = C.boundary_table()
+    rng = np.random.default_rng(22)
+    node_ra = rng.choice(t.ra_edges_h[:-1] * 15.0, 20_000)
+    node_dec = rng.choice(t.dec_edges_deg[1:-1], 20_000)
+    off = rng.uniform(-60.0, 60.0, (2, 20_000)) / 3600.0 * 10.0 ** rng.uniform(-4.8, 0, 20_000)
+    ra_n, dec_n = _b1875_to_icrs_deg(np.mod(node_ra + off[0], 360.0), node_dec + off[1])
+    for r, d in ((ra, dec), (ra_n, dec_n)):
+        res = C.locate(r, d, with_margin=False)
+        np.testing.assert_array_equal(res.index, _scan(res.ra_b1875_deg, res.dec_b1875_deg))
+    assert (C._quick_lut().value >= 0).mean() > 0.9  # most of the sky takes the quick path
+
+
 # ------------------------------------------------------------------------------ lookup
 
 
