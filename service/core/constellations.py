@@ -902,8 +902,8 @@ def _segment_attributes() -> tuple:
     arc's fixed coordinate (Dec, or RA) and lo, hi the ends of its running coordinate.
     """
     segs = _segments()
-    if np.any((segs.kind == 0) & (segs.hi - segs.lo >= math.pi)):
-        raise RuntimeError("a constant-Dec arc spans 12 hours or more")  # Note 1 below
+    if np.any(segs.hi - segs.lo >= math.pi):  # Notes 1-2 of _one_minus_cos_distance
+        raise RuntimeError("a boundary arc spans 180 degrees or more")
     rows = (
         segs.kind == 1,
         segs.cos_c,
@@ -935,8 +935,9 @@ def _one_minus_cos_distance(x, y, z, rho, seg):
        rho cos c + z sin c; otherwise the nearer end: cos d = cos c (x cos e + y sin e)
        + z sin c.
     2. Constant-RA arc (RA c, Dec lo..hi): with q = x cos c + y sin c, sin d =
-       |y cos c - x sin c| on the arc, i.e. iff q > 0 and lo <= atan2(z, q) <= hi;
-       otherwise the nearer end: cos d = q cos e + z sin e.
+       |y cos c - x sin c| on the arc, i.e. iff lo <= atan2(z, q) <= hi, which for an arc
+       shorter than 180 degrees is sin(phi - lo) >= 0 and sin(hi - phi) >= 0 (and implies
+       q > 0); otherwise the nearer end: cos d = q cos e + z sin e.
     3. Monotonic in the distance, so it selects the nearest segment; its absolute rounding
        is about 1e-16 (distances good to about 1e-8 rad at worst), so small margins are
        recomputed with :func:`_segment_distance`.
@@ -950,7 +951,8 @@ def _one_minus_cos_distance(x, y, z, rho, seg):
         np.where(inside_h, rho, np.maximum(x * cl + y * sl, x * ch + y * sh)) * cc + z * sc
     )
     # constant RA (is_v True): cc, sc are cos/sin of the RA; lo/hi are Decs
-    inside_v = (q > 0.0) & (z * cl - q * sl >= 0.0) & (q * sh - z * ch >= 0.0)
+    # (q > 0 is implied by the two tests for arcs shorter than 180 degrees)
+    inside_v = (z * cl - q * sl >= 0.0) & (q * sh - z * ch >= 0.0)
     a2 = w * w
     meas_v = np.where(
         inside_v,
@@ -958,6 +960,40 @@ def _one_minus_cos_distance(x, y, z, rho, seg):
         1.0 - np.maximum(q * cl + z * sl, q * ch + z * sh),
     )
     return np.where(is_v, meas_v, meas_h)
+
+
+def _one_minus_cos_distance_split(x, y, z, rho, seg):
+    """As :func:`_one_minus_cos_distance`, evaluating only each segment's own formula.
+
+    Faster when most pairs are to be computed (the gathers of the split cost less than
+    the formula of the other kind).
+    """
+    is_v_all, cc_all, sc_all, cl_all, sl_all, ch_all, sh_all = _segment_attributes()
+    out = np.empty(seg.shape)
+    kind_v = is_v_all[seg]
+    h = np.flatnonzero(~kind_v)
+    if h.size:
+        s_, xh, yh = seg[h], x[h], y[h]
+        cl, sl, ch, sh = cl_all[s_], sl_all[s_], ch_all[s_], sh_all[s_]
+        inside = (yh * cl - xh * sl >= 0.0) & (xh * sh - yh * ch >= 0.0)
+        radial = np.where(inside, rho[h], np.maximum(xh * cl + yh * sl, xh * ch + yh * sh))
+        out[h] = 1.0 - (radial * cc_all[s_] + z[h] * sc_all[s_])
+    v = np.flatnonzero(kind_v)
+    if v.size:
+        s_, xv, yv, zv = seg[v], x[v], y[v], z[v]
+        cc, sc = cc_all[s_], sc_all[s_]
+        cl, sl, ch, sh = cl_all[s_], sl_all[s_], ch_all[s_], sh_all[s_]
+        q = xv * cc + yv * sc
+        w = yv * cc - xv * sc
+        # q > 0 is implied for arcs shorter than 180 degrees (Note 2 of the unsplit form)
+        inside = (zv * cl - q * sl >= 0.0) & (q * sh - zv * ch >= 0.0)
+        a2 = w * w
+        out[v] = np.where(
+            inside,
+            a2 / (1.0 + np.sqrt(np.maximum(1.0 - a2, 0.0))),
+            1.0 - np.maximum(q * cl + zv * sl, q * ch + zv * sh),
+        )
+    return out
 
 
 #: Margins below this (rad, about 20 arcsec) are recomputed with the exact formulae.
@@ -1041,7 +1077,7 @@ def _margins_block(xyz, ra_h, index):
     rho0 = np.sqrt(np.maximum(1.0 - z0 * z0, 0.0))
     # first candidate of every point, in input order
     best_seg = mi.flat[start_all].astype(np.intp)
-    best = _one_minus_cos_distance(x0, y0, z0, rho0, best_seg)
+    best = _one_minus_cos_distance_split(x0, y0, z0, rho0, best_seg)
     # further candidates: points ordered by their number of candidates (radix sort on 8
     # bits, most first) so that candidate k of all points that have one is a prefix
     multi = np.flatnonzero(counts > 1)
