@@ -1235,7 +1235,9 @@ def locate(
     -----
     1. The answer is exactly Roman's (1987) procedure on the published table: the table is
        turned into a grid whose cells each lie in one constellation (see
-       :func:`boundary_table`), and a position is found by two binary searches.
+       :func:`boundary_table`); most positions are answered from a coarse table of cells
+       lying well inside one constellation (:func:`_quick_lut`), the rest by locating the
+       grid cell with two uniform-bin searches.
     2. Positions are directions in ICRS at the epoch wanted; space motion is applied
        beforehand (:func:`locate_moving`). The boundaries are fixed on the sky: the
        reduction does not depend on the epoch.
