@@ -35,18 +35,21 @@ bind = os.environ.get("SKYDRIFT_BIND", "127.0.0.1:8000")
 #: numpy; in a container the CPU limit counts, not the host's CPUs).
 workers = int(os.environ.get("SKYDRIFT_WORKERS") or _cpu_count())
 
-#: Synchronous workers, chosen by measurement (README, "Choosing the worker class"): on
-#: one-star requests sync and gthread were level, and under the CPU-bound batch load threads
-#: only share a worker's core (the GIL) while a timer signal can enforce
-#: SKYDRIFT_REQUEST_TIMEOUT_S only in a sync worker.
-worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "sync")
+#: Threaded workers, chosen by measurement (README, "Choosing the worker class"; run
+#: `python -m benchmarks.bench_http workers`): with keep-alive clients, gthread with 2
+#: threads answered 1.2-2x the requests/s of sync workers, for one star and for 1,000-star
+#: batches alike (the parsing and JSON work of one request overlaps the network wait of
+#: another; numpy releases the GIL). Two threads, not more: each thread may hold a large
+#: batch in memory, so threads x workers bounds the peak memory of a pod.
+worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "gthread")
 
-#: Threads per worker (only used by the gthread worker class).
-threads = int(os.environ.get("SKYDRIFT_THREADS", 1))
+#: Threads per worker (gthread only).
+threads = int(os.environ.get("SKYDRIFT_THREADS", 2))
 
-#: Seconds a worker may be silent on one request before gunicorn kills and replaces it (the
-#: hard limit; a million-star batch takes a few seconds). At least 10 s above
-#: SKYDRIFT_REQUEST_TIMEOUT_S so the application's own 503 answer comes first.
+#: Seconds a worker may go without a heartbeat before gunicorn kills and replaces it (a hung
+#: process; a sync worker also stops answering during one long request). A slow request in
+#: a threaded worker is bounded by SKYDRIFT_REQUEST_TIMEOUT_S (service/api/access.py)
+#: instead. Kept at least 10 s above it so the application's own 503 answer comes first.
 _soft_s = float(os.environ.get("SKYDRIFT_REQUEST_TIMEOUT_S") or 0)
 timeout = max(int(os.environ.get("SKYDRIFT_TIMEOUT_S", 120)), math.ceil(_soft_s) + 10)
 
@@ -56,7 +59,7 @@ timeout = max(int(os.environ.get("SKYDRIFT_TIMEOUT_S", 120)), math.ceil(_soft_s)
 #: (deploy/k8s: terminationGracePeriodSeconds 75; compose: stop_grace_period 75s).
 graceful_timeout = int(os.environ.get("SKYDRIFT_GRACEFUL_TIMEOUT_S", 60))
 
-#: Seconds to keep an idle client connection open (gthread only; sync closes after each).
+#: Seconds to keep an idle client connection open (gthread; sync closes after each request).
 keepalive = int(os.environ.get("SKYDRIFT_KEEPALIVE_S", 5))
 
 #: Restart each worker after this many requests, plus a random 0..jitter so that the

@@ -4,12 +4,14 @@
 
 1. Waits for ``/ready`` to answer 200.
 2. Exercises every operation listed in ``/openapi.json`` once, with the example the document
-   gives (so operations added later are covered without editing this file); each must answer
-   2xx, echo X-Request-ID and carry the security headers.
+   gives (so operations added later are covered without editing this file), and ``/docs``;
+   each must answer 2xx, echo X-Request-ID and carry the security headers.
 3. Reads ``/metrics`` and checks every exercised operation was counted.
 4. With ``--term-pid`` / ``--term-container``: sends a batch large enough to take a while,
    delivers SIGTERM to the server while that request is in flight, and checks the request
    still completes correctly (graceful shutdown).
+5. With ``--check-log FILE`` (alone): the server's log is JSON and shows the slow batch
+   answered 200 after the SIGTERM was handled.
 
 Standard library only, so it runs on any machine with Python 3.11+. SMOKE_TOKEN, if set, is
 sent as a bearer token. Exits non-zero on the first failure.
@@ -32,8 +34,9 @@ import urllib.parse
 import urllib.request
 
 HTTP_METHODS = ("get", "post", "put", "patch", "delete")
-#: Stars in the slow batch (one epoch): a few hundred thousand take a second or more.
-SLOW_BATCH_STARS = int(os.environ.get("SMOKE_SLOW_BATCH_STARS", "300000"))
+#: Stars in the slow batch (one epoch): the server needs a good fraction of a second for
+#: them after the last byte arrives, and SIGTERM is sent the moment the last byte is sent.
+SLOW_BATCH_STARS = int(os.environ.get("SMOKE_SLOW_BATCH_STARS", "150000"))
 
 
 class SmokeFailure(Exception):
@@ -65,10 +68,29 @@ def call(base: str, method: str, path: str, body=None, request_id: str | None = 
         return exc.code, {k.lower(): v for k, v in exc.headers.items()}, exc.read()
 
 
-def wait_ready(base: str, seconds: float = 60.0) -> None:
+def server_gone(pid: int | None) -> bool:
+    """True if the local server process has exited (gone, or a zombie not yet reaped)."""
+    if not pid:
+        return False
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] in ("Z", "X")
+    except OSError:
+        try:
+            os.kill(pid, 0)
+        except ProcessLookupError:
+            return True
+        except OSError:
+            return False
+        return False
+
+
+def wait_ready(base: str, pid: int | None = None) -> None:
+    seconds = float(os.environ.get("SMOKE_READY_S", "90"))
     deadline = time.monotonic() + seconds
     last = "no answer"
     while time.monotonic() < deadline:
+        check(not server_gone(pid), "the server exited before it was ready")
         try:
             status, _, body = call(base, "get", "/ready")
             if status == 200:
@@ -166,6 +188,9 @@ def exercise_every_operation(base: str) -> list[tuple[str, str]]:
         print(f"ok   {method.upper():5s} {path} -> {status} ({took_ms:.0f} ms)")
         done.append((method.upper(), template))
     check(len(done) >= 3, f"only {len(done)} operations in /openapi.json")
+    status, headers, _ = call(base, "get", "/docs")
+    check(status == 200 and headers.get("content-type", "").startswith("text/html"), "/docs")
+    print("ok   GET   /docs (reference page)")
     return done
 
 
@@ -204,7 +229,6 @@ def slow_batch_body(n: int) -> bytes:
         "stars": cols,
         "catalogue_epoch": "J2016.0",
         "target_epochs": ["J2030.0"],
-        "model": "light_time",
         "layout": "columns",
     }
     return json.dumps(body).encode()
@@ -250,16 +274,43 @@ def sigterm_during_slow_batch(base: str, pid: int | None, container: str | None)
     )
 
 
+def check_log(path: str) -> None:
+    """The server's log: JSON lines; the slow batch answered 200 after the SIGTERM arrived."""
+    term_at = batch_at = None
+    for line in open(path, encoding="utf-8", errors="replace"):
+        line = line.strip()
+        if not line.startswith("{"):
+            continue
+        entry = json.loads(line)
+        if "Handling signal: term" in entry.get("message", "") and term_at is None:
+            term_at = entry["time"]
+        if entry.get("type") == "access" and entry.get("request_id") == "smoke-slow-batch":
+            check(entry["status"] == 200, f"slow batch logged with status {entry['status']}")
+            batch_at = entry["time"]
+    check(term_at is not None, "the log does not show the SIGTERM")
+    check(batch_at is not None, "no JSON access line with the slow batch's request id")
+    check(batch_at >= term_at, f"the batch finished ({batch_at}) before SIGTERM ({term_at})")
+    print(f"ok   log is JSON; SIGTERM at {term_at}, slow batch answered 200 at {batch_at}")
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("url")
+    parser.add_argument("url", nargs="?")
+    parser.add_argument("--check-log", help="check the server's log file, then stop")
     parser.add_argument("--term-pid", type=int)
     parser.add_argument("--term-container")
     parser.add_argument("--wait-only", action="store_true", help="only wait for readiness")
     args = parser.parse_args(argv)
+    if args.check_log:
+        try:
+            check_log(args.check_log)
+        except (SmokeFailure, OSError, ValueError, KeyError) as exc:
+            print(f"FAIL {type(exc).__name__}: {exc}", file=sys.stderr)
+            return 1
+        return 0
     base = args.url.rstrip("/")
     try:
-        wait_ready(base)
+        wait_ready(base, args.term_pid)
         if args.wait_only:
             return 0
         done = exercise_every_operation(base)

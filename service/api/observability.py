@@ -220,9 +220,32 @@ class JsonFormatter(logging.Formatter):
 # --- wiring ---------------------------------------------------------------------------------
 
 
+def _eop_ready_check(path: str, source: str):
+    def check():
+        mjd = last_measured_mjd(path)
+        if mjd is None:
+            return False, f"{source}: no measured values readable in {os.path.basename(path)}"
+        day = datetime.date(1858, 11, 17) + datetime.timedelta(days=int(mjd))  # MJD 0
+        return True, f"{source}: measured values up to {day.isoformat()}"
+
+    return check
+
+
 def register(app) -> None:
-    """Count every request and serve ``/metrics``. Call early in create_app."""
+    """Count every request and serve ``/metrics``. Call early in create_app.
+
+    Also puts SKYDRIFT_EOP_FILE, when set, in use as astropy's Earth-orientation table, and
+    adds a readiness check naming the table and its last measured day.
+    """
     _metrics()  # made in the gunicorn master when preloaded, before the workers fork
+    settings = app.config["SKYDRIFT_SETTINGS"]
+    if getattr(settings, "eop_file", ""):
+        from ..core.offline import use_earth_orientation_file
+
+        use_earth_orientation_file(settings.eop_file)
+    with app.app_context():
+        path, source = eop_table()
+    app.extensions["skydrift_ready_checks"]["earth_orientation"] = _eop_ready_check(path, source)
     access_log = logging.getLogger("skydrift.request")
 
     @app.after_request

@@ -1,0 +1,114 @@
+"""/metrics under gunicorn with two workers: figures add up across the worker processes.
+
+Parsed with prometheus-client's text parser (the reference reader of the format).
+"""
+
+import concurrent.futures
+import os
+import pathlib
+import signal
+import socket
+import subprocess
+import sys
+import time
+
+import pytest
+import requests
+from prometheus_client.parser import text_string_to_metric_families
+
+ROOT = pathlib.Path(__file__).resolve().parents[2]
+pytestmark = pytest.mark.server
+
+N_STARS = 500
+BODY = {
+    "catalogue_epoch": "J2016.0",
+    "target_epochs": ["J2026.0"],
+    "layout": "columns",
+    "stars": {
+        "ra_deg": [(7.3 * i) % 360 for i in range(N_STARS)],
+        "dec_deg": [((3.1 * i) % 170) - 85 for i in range(N_STARS)],
+        "pm_ra_cosdec_mas_yr": [float(i % 50) for i in range(N_STARS)],
+        "pm_dec_mas_yr": [float(-(i % 30)) for i in range(N_STARS)],
+    },
+}
+
+
+def _free_port():
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@pytest.fixture(scope="module")
+def two_workers(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("metrics")
+    port = _free_port()
+    env = dict(
+        os.environ,
+        SKYDRIFT_BIND=f"127.0.0.1:{port}",
+        SKYDRIFT_WORKERS="2",
+        SKYDRIFT_ACCESS_LOG="/dev/null",
+        PROMETHEUS_MULTIPROC_DIR=str(folder),
+        PYTHONPATH=str(ROOT),
+    )
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "gunicorn", "-c", "deploy/gunicorn.conf.py", "service.wsgi:app"],
+        cwd=ROOT,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    url = f"http://127.0.0.1:{port}"
+    for _ in range(300):
+        try:
+            if requests.get(url + "/ready", timeout=1).status_code == 200:
+                break
+        except requests.ConnectionError:
+            time.sleep(0.1)
+    else:
+        proc.kill()
+        pytest.fail("gunicorn did not become ready")
+    yield url, folder
+    proc.send_signal(signal.SIGTERM)
+    proc.wait(timeout=60)
+
+
+def scrape(url):
+    r = requests.get(url + "/metrics", timeout=10)
+    assert r.status_code == 200
+    out = {}
+    for family in text_string_to_metric_families(r.text):
+        for s in family.samples:
+            out[(s.name, frozenset(s.labels.items()))] = s.value
+    return out
+
+
+def pids_with_request_counts(folder):
+    return {p.stem.split("_")[-1] for p in pathlib.Path(folder).glob("counter_*.db")}
+
+
+def test_metrics_add_up_across_two_workers(two_workers):
+    url, folder = two_workers
+    sent = 0
+    with concurrent.futures.ThreadPoolExecutor(8) as pool:
+        # Concurrent requests on separate connections until both workers have served some.
+        for _ in range(10):
+            codes = list(
+                pool.map(
+                    lambda _: requests.post(url + "/v1/propagation", json=BODY, timeout=60),
+                    range(16),
+                )
+            )
+            assert all(r.status_code == 200 for r in codes)
+            sent += len(codes)
+            if len(pids_with_request_counts(folder)) >= 2:
+                break
+    assert len(pids_with_request_counts(folder)) >= 2, "one worker served everything"
+    key = frozenset({"endpoint": "/v1/propagation", "method": "POST", "status": "200"}.items())
+    stars_key = frozenset({"endpoint": "/v1/propagation"}.items())
+    # Whichever worker answers the scrape, the totals are those of the whole service.
+    for _ in range(6):
+        samples = scrape(url)
+        assert samples[("skydrift_http_requests_total", key)] == sent
+        assert samples[("skydrift_http_request_duration_seconds_count", key)] == sent
+        assert samples[("skydrift_stars_processed_total", stars_key)] == sent * N_STARS
