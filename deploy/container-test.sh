@@ -101,6 +101,8 @@ log "building $IMAGE from deploy/Dockerfile"
 docker build --network=host --build-arg "BASE_IMAGE=$BASE_IMAGE" -f deploy/Dockerfile \
     -t "$IMAGE" . >"$WORK/build.log" 2>&1 || { tail -40 "$WORK/build.log" >&2; exit 1; }
 find "$ROOT/deploy/certs" -name '*.crt' -delete
+size=$(docker image inspect -f '{{.Size}}' "$IMAGE")
+log "image $IMAGE: $((size / 1000000)) MB"
 
 # 4. Run it as a cluster would (read-only root, writable /tmp only, no capabilities) and smoke.
 log "running $IMAGE on 127.0.0.1:$PORT"

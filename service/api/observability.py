@@ -59,11 +59,10 @@ LATENCY_BUCKETS_S = (
     120.0,
 )
 
-#: Paths that are not counted as API traffic for the request metrics' endpoint label.
+#: The endpoint label of requests that matched no route (keeps the label set bounded).
 UNMATCHED = "(unmatched)"
 
-#: MJD of 2000-01-01T00:00 UTC minus the Unix epoch, days (MJD 51544 = 2000-01-01;
-#: Unix epoch 1970-01-01 = MJD 40587, IAU/IERS convention MJD = JD - 2400000.5).
+#: MJD of the Unix epoch 1970-01-01T00:00 UTC, days (JD 2440587.5; MJD = JD - 2400000.5).
 MJD_UNIX_EPOCH = 40587.0
 
 
@@ -100,7 +99,7 @@ def _metrics():
 
 def multiprocess_dir() -> str | None:
     """The prometheus-client multiprocess folder in use, or None (single process)."""
-    path = os.environ.get("PROMETHEUS_MULTIPROC_DIR") or os.environ.get("prometheus_multiproc_dir")
+    path = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
     return path if path and os.path.isdir(path) else None
 
 
@@ -171,7 +170,14 @@ class _EopAgeCollector:
 
 def metrics_view():
     """``GET /metrics``: the Prometheus text exposition of the whole service."""
-    from prometheus_client import CONTENT_TYPE_LATEST, REGISTRY, CollectorRegistry, generate_latest
+    from prometheus_client import (
+        CONTENT_TYPE_LATEST,
+        GC_COLLECTOR,
+        PLATFORM_COLLECTOR,
+        PROCESS_COLLECTOR,
+        CollectorRegistry,
+        generate_latest,
+    )
     from prometheus_client import multiprocess as prom_mp
 
     folder = _metrics()["folder"]
@@ -182,8 +188,8 @@ def metrics_view():
         registry = CollectorRegistry()
         for name in ("requests", "latency", "stars", "invalid"):
             registry.register(_metrics()[name])
-        # Also the process/platform collectors of the default registry when single-process.
-        for collector in list(REGISTRY._collector_to_names):
+        # One process: its own process, platform and garbage-collector figures too.
+        for collector in (PROCESS_COLLECTOR, PLATFORM_COLLECTOR, GC_COLLECTOR):
             registry.register(collector)
     registry.register(_EopAgeCollector(*eop_table()))
     return Response(generate_latest(registry), mimetype=CONTENT_TYPE_LATEST.split(";")[0])

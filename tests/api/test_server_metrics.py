@@ -112,3 +112,29 @@ def test_metrics_add_up_across_two_workers(two_workers):
         assert samples[("skydrift_http_requests_total", key)] == sent
         assert samples[("skydrift_http_request_duration_seconds_count", key)] == sent
         assert samples[("skydrift_stars_processed_total", stars_key)] == sent * N_STARS
+
+
+def test_oversized_body_answered_413_over_the_wire_without_sending_it(two_workers):
+    """Only the headers are sent (Content-Length 1 GB over the limit): gunicorn and the app
+    answer 413 at once, without waiting for a body that never comes."""
+    url, _ = two_workers
+    host, port = url.removeprefix("http://").split(":")
+    head = (
+        "POST /v1/propagation HTTP/1.1\r\n"
+        f"Host: {host}\r\n"
+        "Content-Type: application/json\r\n"
+        f"Content-Length: {(1 << 30) + 268_435_456}\r\n"
+        "X-Request-ID: too-large\r\n\r\n"
+    )
+    with socket.create_connection((host, int(port)), timeout=10) as sock:
+        sock.sendall(head.encode())
+        answer = b""
+        while b"\r\n\r\n" not in answer or not answer.rstrip().endswith(b"}"):
+            chunk = sock.recv(65536)
+            if not chunk:
+                break
+            answer += chunk
+    status_line, _, rest = answer.partition(b"\r\n")
+    assert status_line.split()[1] == b"413", answer[:500]
+    assert b"application/problem+json" in rest
+    assert b'"request_id":"too-large"' in rest
