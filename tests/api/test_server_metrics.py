@@ -1,6 +1,6 @@
-"""/metrics under gunicorn with two workers: figures add up across the worker processes.
+"""The service under gunicorn with two workers: figures and counts shared by the workers.
 
-Parsed with prometheus-client's text parser (the reference reader of the format).
+/metrics is parsed with prometheus-client's text parser (the reference reader of the format).
 """
 
 import concurrent.futures
@@ -39,17 +39,15 @@ def _free_port():
         return s.getsockname()[1]
 
 
-@pytest.fixture(scope="module")
-def two_workers(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("metrics")
+def start_server(**extra_env):
     port = _free_port()
     env = dict(
         os.environ,
         SKYDRIFT_BIND=f"127.0.0.1:{port}",
         SKYDRIFT_WORKERS="2",
         SKYDRIFT_ACCESS_LOG="/dev/null",
-        PROMETHEUS_MULTIPROC_DIR=str(folder),
         PYTHONPATH=str(ROOT),
+        **extra_env,
     )
     proc = subprocess.Popen(
         [sys.executable, "-m", "gunicorn", "-c", "deploy/gunicorn.conf.py", "service.wsgi:app"],
@@ -68,9 +66,20 @@ def two_workers(tmp_path_factory):
     else:
         proc.kill()
         pytest.fail("gunicorn did not become ready")
-    yield url, folder
+    return url, proc
+
+
+def stop_server(proc):
     proc.send_signal(signal.SIGTERM)
     proc.wait(timeout=60)
+
+
+@pytest.fixture(scope="module")
+def two_workers(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("metrics")
+    url, proc = start_server(PROMETHEUS_MULTIPROC_DIR=str(folder))
+    yield url, folder
+    stop_server(proc)
 
 
 def scrape(url):
@@ -138,3 +147,20 @@ def test_oversized_body_answered_413_over_the_wire_without_sending_it(two_worker
     assert status_line.split()[1] == b"413", answer[:500]
     assert b"application/problem+json" in rest
     assert b'"request_id":"too-large"' in rest
+
+
+def test_fail_first_n_counted_across_workers():
+    """SKYDRIFT_TEST_FAIL_FIRST_N=3 (test only): exactly 3 of 12 concurrent requests, on
+    separate connections served by either worker, answer 503 with Retry-After."""
+    url, proc = start_server(SKYDRIFT_TEST_FAIL_FIRST_N="3", SKYDRIFT_TEST_FAIL_RETRY_AFTER_S="2")
+    try:
+        with concurrent.futures.ThreadPoolExecutor(6) as pool:
+            answers = list(
+                pool.map(lambda _: requests.get(url + "/openapi.json", timeout=30), range(12))
+            )
+    finally:
+        stop_server(proc)
+    failed = [r for r in answers if r.status_code == 503]
+    assert len(failed) == 3
+    assert all(r.headers["Retry-After"] == "2" for r in failed)
+    assert sum(r.status_code == 200 for r in answers) == 9
