@@ -12,8 +12,11 @@ the request body is read, in this order, each rejection an RFC 9457 problem:
 4. Per-client rate limit (SKYDRIFT_RATE_LIMIT, flask-limiter): 429 with Retry-After.
 5. Test only (SKYDRIFT_TEST_FAIL_FIRST_N): 503 with Retry-After for the first N requests.
 
+Then, while the request runs: past SKYDRIFT_REQUEST_TIMEOUT_S it is abandoned with 503.
+
 Liveness and readiness (``/health``, ``/ready``) are never authenticated, limited or failed
-on purpose: orchestrators probe them. Every response carries the security headers of
+on purpose: orchestrators probe them; ``/metrics`` needs the token (when tokens are set) but
+is neither limited nor failed on purpose. Every response carries the security headers of
 :data:`SECURITY_HEADERS`.
 """
 
@@ -264,10 +267,11 @@ def register(app) -> None:
     @app.after_request
     def _headers(resp):
         origin = request.headers.get("Origin")
-        if origins and origin and _origin_allowed(origin, origins):
-            resp.headers["Access-Control-Allow-Origin"] = "*" if "*" in origins else origin
-            resp.headers["Access-Control-Expose-Headers"] = CORS_EXPOSE_HEADERS
-            resp.vary.add("Origin")
+        if origins:
+            resp.vary.add("Origin")  # answers differ by origin: caches must keep them apart
+            if origin and _origin_allowed(origin, origins):
+                resp.headers["Access-Control-Allow-Origin"] = "*" if "*" in origins else origin
+                resp.headers["Access-Control-Expose-Headers"] = CORS_EXPOSE_HEADERS
         for name, value in SECURITY_HEADERS.items():
             resp.headers.setdefault(name, value)
         return resp
