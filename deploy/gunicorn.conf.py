@@ -6,6 +6,7 @@ The container runs exactly this (deploy/Dockerfile), and so do `make serve`, dep
 and the server tests.
 """
 
+import atexit
 import math
 import os
 import shutil
@@ -106,6 +107,15 @@ _metrics_dir_owned = not os.environ.get("PROMETHEUS_MULTIPROC_DIR")
 if _metrics_dir_owned:
     os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="skydrift-metrics-")
 os.makedirs(os.environ["PROMETHEUS_MULTIPROC_DIR"], exist_ok=True)
+_master_pid = os.getpid()
+
+
+@atexit.register
+def _remove_metrics_dir():
+    # Also when the start fails before on_exit could run; only in the master, never in a
+    # worker (they share the folder).
+    if _metrics_dir_owned and os.getpid() == _master_pid:
+        shutil.rmtree(os.environ["PROMETHEUS_MULTIPROC_DIR"], ignore_errors=True)
 
 
 def on_starting(server):
@@ -125,5 +135,4 @@ def child_exit(server, worker):
 
 def on_exit(server):
     """Remove the metrics folder this configuration created."""
-    if _metrics_dir_owned:
-        shutil.rmtree(os.environ["PROMETHEUS_MULTIPROC_DIR"], ignore_errors=True)
+    _remove_metrics_dir()
