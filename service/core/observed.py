@@ -2,11 +2,11 @@
 
 From catalogue astrometry (ICRS at a catalogue epoch) to where a telescope must point at a
 site and instant, following the IAU 2006/2000A models as the SOFA routines implement them:
-``apco13`` prepares the star-independent quantities (Earth position and velocity, precession
--nutation, Earth rotation, polar motion, refraction constants) and the per-star chain of
-``atciq`` (space motion and parallax, light deflection by the Sun, aberration, to CIRS) and
-``atioq`` (CIRS to hour angle, azimuth and refracted altitude) is carried out here in numpy
-for many stars at once (Note 1 of :func:`observed_places`).
+the star-independent quantities of ``apco13`` (Earth position and velocity, precession
+-nutation, Earth rotation, polar motion, refraction constants; :func:`star_independent`)
+and the per-star chain of ``atciq`` (space motion and parallax, light deflection by the Sun,
+aberration, to CIRS) and ``atioq`` (CIRS to hour angle, azimuth and refracted altitude),
+carried out here in numpy for many stars at once (Note 1 of :func:`observed_places`).
 
 Earth orientation (UT1-UTC and polar motion) comes from the IERS tables packaged with
 astropy-iers-data, read with ``astropy.utils.iers`` with downloads switched off, loaded once
@@ -1433,10 +1433,12 @@ def observed_places(
 
     Notes
     -----
-    1. The star-independent quantities come from SOFA ``apco13`` (IAU 2006/2000A precession
-       -nutation, Earth ephemeris ``epv00``, ERA, polar motion, refraction constants
-       ``refco``), computed once per instant. The per-star chain is SOFA ``atciq`` (with
-       ``pmpx``, ``ldsun``, ``ab``) and ``atioq``, written in numpy: the CIRS to azimuth
+    1. The star-independent quantities are those of SOFA ``apco13`` (IAU 2006/2000A
+       precession-nutation, Earth ephemeris ``epv00``, ERA, polar motion, refraction
+       constants ``refco``), computed once per instant by :func:`star_independent`, with the
+       precession-nutation interpolated from cached 15-minute nodes. The per-star chain is
+       SOFA ``atciq`` (with ``pmpx``, ``ldsun``, ``ab``) and ``atioq``, written in numpy: the
+       CIRS to azimuth
        rotations are combined into one matrix per instant. Tests check the result against
        ``erfa.atco13`` and astropy's AltAz.
     2. The geocentric places use SOFA ``apci`` with the same precession-nutation and the
