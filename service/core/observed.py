@@ -989,6 +989,13 @@ class _Instant:
     dlim: np.ndarray = None
     k2_const: np.ndarray = None
     inv_1_bm1: np.ndarray = None
+    # One-instant matrix form (None for arrays of instants).
+    a5: np.ndarray = None
+    c5: np.ndarray = None
+    eb_row: np.ndarray = None
+    eb2: float = None
+    meh_col: np.ndarray = None
+    mv_col: np.ndarray = None
 
 
 def _instant_quantities(astrom) -> _Instant:
@@ -1011,7 +1018,24 @@ def _instant_quantities(astrom) -> _Instant:
         m_eh=_rot(m, eh), m_v=_rot(m, v), ehv=eh[0] * v[0] + eh[1] * v[1] + eh[2] * v[2],
         srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em, dlim=1e-6 / np.maximum(em * em, 1.0),
         k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em, inv_1_bm1=1.0 / (1.0 + bm1),
+        **_one_instant_matrices(m, eb, eh, v),
     )  # fmt: skip
+
+
+def _one_instant_matrices(m, eb, eh, v):
+    """Matrices for :func:`_apparent_aet_one_instant` (only for a single instant)."""
+    if np.ndim(m) != 2:
+        return {}
+    eb, eh, v = (np.array([float(c) for c in x]) for x in (eb, eh, v))
+    a5 = np.vstack([eh, v, m])
+    return {
+        "a5": a5,
+        "c5": a5 @ eb,
+        "eb_row": eb,
+        "eb2": float(eb @ eb),
+        "meh_col": (m @ eh)[:, None],
+        "mv_col": (m @ v)[:, None],
+    }
 
 
 def _apparent_aet(q, ins: _Instant):
@@ -1041,6 +1065,64 @@ def _apparent_aet(q, ins: _Instant):
     return [p0 * n, p1 * n, p2 * n]
 
 
+def _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant):
+    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
+
+    The same formulae, arranged so that the linear parts are matrix products: with p the
+    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
+    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product, and
+    |u|^2 is formed without a further pass over the vectors where there is no motion.
+    """
+    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
+    in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
+    sr, cr = _sincos(ra, reduce="shift" if in_range else True)
+    sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
+    n = sr.shape[0]
+    p = np.empty((3, n))
+    np.multiply(cd, cr, out=p[0])
+    np.multiply(cd, sr, out=p[1])
+    p[2] = sd
+    pxr = np.fmax(px, 0.0) * (1.0 / MAS_PER_RAD)
+    mu_a = _nan0(pmra)
+    mu_d = _nan0(pmdec)
+    zeta = _nan0(rv)
+    moving = not (
+        np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0.0
+    )
+    if moving:
+        mu_a = mu_a * (1.0 / MAS_PER_RAD)
+        mu_d = mu_d * (1.0 / MAS_PER_RAD)
+        zeta = zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr
+        pe = ins.eb_row @ p
+        dt = dt + pe * LIGHT_TIME_AU_YR
+        a = dt * mu_a
+        b = dt * mu_d
+        c = 1.0 + dt * zeta
+        bz = b * sd
+        p[0] = c * p[0] - a * sr - bz * cr
+        p[1] = c * p[1] + a * cr - bz * sr
+        p[2] = c * p[2] + b * cd
+    q = ins.a5 @ p  # rows: p.eh, p.v, M p
+    q -= ins.c5[:, None] * pxr
+    if moving:
+        uu = np.einsum("ij,ij->j", p, p) - pxr * (2.0 * (ins.eb_row @ p) - pxr * ins.eb2)
+    else:
+        uu = 1.0 - pxr * (2.0 * (ins.eb_row @ p) - pxr * ins.eb2)
+    inv = 1.0 / np.sqrt(uu)
+    qe = q[0] * inv
+    qv = q[1] * inv
+    w = ins.srs_over_em / np.maximum(qe + 1.0, ins.dlim)
+    g = 1.0 - w * qe
+    pdv = g * qv + w * ins.ehv
+    k1 = ins.bm1 - ins.srs_over_em * pdv
+    k2 = ins.k2_const + pdv * ins.inv_1_bm1
+    r = q[2:] * (k1 * g * inv)
+    r += ins.meh_col * (k1 * w)
+    r += ins.mv_col * k2
+    r *= 1.0 / np.sqrt(np.einsum("ij,ij->j", r, r))
+    return r[0], r[1], r[2]
+
+
 #: Outputs of the per-star chain, in order, with their dtypes.
 _CHAIN_FIELDS = (
     ("azimuth_deg", float),
@@ -1057,10 +1139,17 @@ _CHAIN_FIELDS = (
 )
 
 
-def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits):
-    """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits."""
-    q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
-    aet = _apparent_aet(q, ins)
+def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True):
+    """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits.
+
+    ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
+    angle (returned as NaN).
+    """
+    if ins.a5 is not None and np.ndim(ra_deg) == 1:
+        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins)
+    else:
+        q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
+        aet = _apparent_aet(q, ins)
     xaet, yaet, zaet = aet
     # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
     az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
@@ -1070,19 +1159,22 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits):
         az = az - 360.0
     f, zaeo, r0, dl = _refract(aet, ins.refa, ins.refb)
     zd = np.arctan2(np.abs(f) * r0, zaeo) * DEG_PER_RAD
-    xaeo = xaet * f
-    yaeo = yaet * f
-    sp, cp = ins.sphi, ins.cphi
-    v0 = sp * xaeo + cp * zaeo
-    v2 = sp * zaeo - cp * xaeo
-    h2 = v0 * v0 + yaeo * yaeo
-    ha = np.arctan2(-yaeo, v0) * DEG_PER_RAD
-    dec = np.arctan2(v2, np.sqrt(h2)) * DEG_PER_RAD
-    ra = ins.eral * DEG_PER_RAD - ha
-    ra = ra - 360.0 * np.floor(ra * (1.0 / 360.0))
-    # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
-    # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
-    pa = np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0) * DEG_PER_RAD
+    if detail:
+        xaeo = xaet * f
+        yaeo = yaet * f
+        sp, cp = ins.sphi, ins.cphi
+        v0 = sp * xaeo + cp * zaeo
+        v2 = sp * zaeo - cp * xaeo
+        h2 = v0 * v0 + yaeo * yaeo
+        ha = np.arctan2(-yaeo, v0) * DEG_PER_RAD
+        dec = np.arctan2(v2, np.sqrt(h2)) * DEG_PER_RAD
+        ra = ins.eral * DEG_PER_RAD - ha
+        ra = ra - 360.0 * np.floor(ra * (1.0 / 360.0))
+        # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
+        # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
+        pa = np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0) * DEG_PER_RAD
+    else:
+        ha = dec = ra = pa = np.nan
     airmass = airmass_young1994(zaet)
     # Sun separation from the chord between the unrefracted unit vectors: 2 asin(|a-b|/2),
     # |a-b|^2 = 2 - 2 a.b (precision about 1e-8 rad near zero separation, ample here).
@@ -1389,6 +1481,7 @@ def observed_places(
     horizon_limit_deg: float = DEFAULT_HORIZON_LIMIT_DEG,
     sun_avoidance_deg: float = DEFAULT_SUN_AVOIDANCE_DEG,
     geocentric: bool = True,
+    hour_angle: bool = True,
 ) -> ObservedPlaces:
     """Astrometric, apparent and observed places of stars at a site and instants.
 
@@ -1426,6 +1519,9 @@ def observed_places(
     geocentric : bool
         Also compute the geocentric astrometric and apparent places (default True); False
         fills them with NaN and saves their cost.
+    hour_angle : bool
+        Also compute the observed hour angle, declination, RA and the parallactic angle
+        (default True); False fills them with NaN and saves their cost.
 
     Returns
     -------
@@ -1499,15 +1595,17 @@ def observed_places(
     limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
     if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
         # Many stars, one instant: run the chain block by block (cache-sized temporaries).
-        full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
+        # Scalars stay scalars (cheaper, and the no-motion case is recognised).
+        full = [a if a.ndim == 0 else np.broadcast_to(a, shape) for a in stars[:6]]
+        full.append(dt if np.ndim(dt) == 0 else np.broadcast_to(dt, shape))
         out = [np.empty(shape, dtype=dt_) for _, dt_ in _CHAIN_FIELDS]
         for i in range(0, shape[0], CHAIN_BLOCK):
             sl = slice(i, i + CHAIN_BLOCK)
-            res = _chain(*(a[sl] for a in full), ins, limits)
+            res = _chain(*(a if np.ndim(a) == 0 else a[sl] for a in full), ins, limits, hour_angle)
             for o, r in zip(out, res, strict=True):
                 o[sl] = r
     else:
-        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits)]
+        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits, hour_angle)]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
     sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
