@@ -662,7 +662,12 @@ def airmass_young1994(cos_true_zenith):
     den = ((c + 0.149864) * c + 0.0102963) * c + 0.000303978
     with np.errstate(invalid="ignore", divide="ignore"):
         x = num / den
-    return np.where(c >= 0.0, x, np.nan)
+    below = c < 0.0
+    if np.ndim(x) == 0:
+        return np.nan if below else x
+    if below.any():
+        x[below] = np.nan
+    return x
 
 
 @dataclass(frozen=True)
@@ -1070,8 +1075,7 @@ def _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _In
 
     The same formulae, arranged so that the linear parts are matrix products: with p the
     catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
-    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product, and
-    |u|^2 is formed without a further pass over the vectors where there is no motion.
+    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
     """
     ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
     in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
@@ -1102,12 +1106,9 @@ def _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _In
         p[0] = c * p[0] - a * sr - bz * cr
         p[1] = c * p[1] + a * cr - bz * sr
         p[2] = c * p[2] + b * cd
-    q = ins.a5 @ p  # rows: p.eh, p.v, M p
-    q -= ins.c5[:, None] * pxr
-    if moving:
-        uu = np.einsum("ij,ij->j", p, p) - pxr * (2.0 * (ins.eb_row @ p) - pxr * ins.eb2)
-    else:
-        uu = 1.0 - pxr * (2.0 * (ins.eb_row @ p) - pxr * ins.eb2)
+    p -= ins.eb_row[:, None] * pxr  # u = p + dt' w - parallax eb (unnormalised)
+    q = ins.a5 @ p  # rows: u.eh, u.v, M u
+    uu = np.einsum("ij,ij->j", p, p)
     inv = 1.0 / np.sqrt(uu)
     qe = q[0] * inv
     qv = q[1] * inv
@@ -1139,26 +1140,37 @@ _CHAIN_FIELDS = (
 )
 
 
-def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True):
+def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None):
     """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits.
 
     ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
-    angle (returned as NaN).
+    angle (returned as NaN). ``out``, a list of arrays in :data:`_CHAIN_FIELDS` order, lets
+    the results be written in place (the caller copies any result that is not its array).
     """
+
+    def dst(k):
+        return None if out is None else out[k]
+
     if ins.a5 is not None and np.ndim(ra_deg) == 1:
         aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins)
     else:
         q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
         aet = _apparent_aet(q, ins)
     xaet, yaet, zaet = aet
+    vector = np.ndim(xaet) > 0
     # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
-    az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
-    if np.ndim(az):
+    if vector:
+        az = np.arctan2(-yaet, xaet, out=dst(0))
+        az *= DEG_PER_RAD
+        az += 180.0
         np.subtract(az, 360.0, out=az, where=az >= 360.0)
-    elif az >= 360.0:
-        az = az - 360.0
+    else:
+        az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
+        az = az - 360.0 if az >= 360.0 else az
     f, zaeo, r0, dl = _refract(aet, ins.refa, ins.refb)
-    zd = np.arctan2(np.abs(f) * r0, zaeo) * DEG_PER_RAD
+    zd = np.arctan2(np.abs(f) * r0, zaeo, out=dst(1) if vector else None)
+    zd *= DEG_PER_RAD
+    alt = np.subtract(90.0, zd, out=dst(2) if vector else None)
     if detail:
         xaeo = xaet * f
         yaeo = yaet * f
@@ -1166,13 +1178,17 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         v0 = sp * xaeo + cp * zaeo
         v2 = sp * zaeo - cp * xaeo
         h2 = v0 * v0 + yaeo * yaeo
-        ha = np.arctan2(-yaeo, v0) * DEG_PER_RAD
-        dec = np.arctan2(v2, np.sqrt(h2)) * DEG_PER_RAD
-        ra = ins.eral * DEG_PER_RAD - ha
-        ra = ra - 360.0 * np.floor(ra * (1.0 / 360.0))
+        ha = np.multiply(np.arctan2(-yaeo, v0), DEG_PER_RAD, out=dst(3) if vector else None)
+        dec = np.multiply(np.arctan2(v2, np.sqrt(h2)), DEG_PER_RAD, out=dst(4) if vector else None)
+        ra = np.subtract(ins.eral * DEG_PER_RAD, ha, out=dst(5) if vector else None)
+        ra -= 360.0 * np.floor(ra * (1.0 / 360.0))
         # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
         # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
-        pa = np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0) * DEG_PER_RAD
+        pa = np.multiply(
+            np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0),
+            DEG_PER_RAD,
+            out=dst(6) if vector else None,
+        )
     else:
         ha = dec = ra = pa = np.nan
     airmass = airmass_young1994(zaet)
@@ -1180,9 +1196,13 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
     # |a-b|^2 = 2 - 2 a.b (precision about 1e-8 rad near zero separation, ample here).
     s = ins.sun_aet
     half_chord2 = 0.5 - 0.5 * (xaet * s[0] + yaet * s[1] + zaet * s[2])
-    sep = np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))) * (2.0 * DEG_PER_RAD)
+    sep = np.multiply(
+        np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))),
+        2.0 * DEG_PER_RAD,
+        out=dst(9) if vector else None,
+    )
+    refraction = np.multiply(dl, _ARCSEC_PER_RAD, out=dst(8) if vector else None)
     horizon_limit, avoidance = limits
-    alt = 90.0 - zd
     flags = _any_bits(
         (np.isnan(px), _F_MISSING_PARALLAX),
         (px <= 0.0, _F_NON_POSITIVE_PARALLAX),
@@ -1192,7 +1212,7 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         (sep < avoidance, _F_WITHIN_SUN_AVOIDANCE),
         (zaet < 0.0, _F_AIRMASS_UNDEFINED),
     )
-    return az, zd, alt, ha, dec, ra, pa, airmass, dl * _ARCSEC_PER_RAD, sep, flags
+    return az, zd, alt, ha, dec, ra, pa, airmass, refraction, sep, flags
 
 
 #: Stars per block when many stars share one instant: keeps the temporaries in cache.
@@ -1601,9 +1621,13 @@ def observed_places(
         out = [np.empty(shape, dtype=dt_) for _, dt_ in _CHAIN_FIELDS]
         for i in range(0, shape[0], CHAIN_BLOCK):
             sl = slice(i, i + CHAIN_BLOCK)
-            res = _chain(*(a if np.ndim(a) == 0 else a[sl] for a in full), ins, limits, hour_angle)
-            for o, r in zip(out, res, strict=True):
-                o[sl] = r
+            views = [o[sl] for o in out]
+            res = _chain(
+                *(a if np.ndim(a) == 0 else a[sl] for a in full), ins, limits, hour_angle, views
+            )
+            for v, r in zip(views, res, strict=True):
+                if r is not v:
+                    v[...] = r
     else:
         out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits, hour_angle)]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
