@@ -36,7 +36,7 @@ def _best(func, repeats):
     return best
 
 
-def main(n: int = 100_000, repeats: int = 7) -> dict:
+def main(n: int = 100_000, repeats: int = 15) -> dict:
     from astropy import units as u
     from astropy.coordinates import AltAz, EarthLocation, SkyCoord
     from astropy.time import Time

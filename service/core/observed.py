@@ -23,6 +23,7 @@ import enum
 import functools
 import math
 import os
+import types
 import warnings
 from dataclasses import dataclass, field
 
@@ -1070,7 +1071,9 @@ def _apparent_aet(q, ins: _Instant):
     return [p0 * n, p1 * n, p2 * n]
 
 
-def _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant):
+def _apparent_aet_one_instant(
+    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False
+):
     """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
 
     The same formulae, arranged so that the linear parts are matrix products: with p the
@@ -1121,6 +1124,8 @@ def _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _In
     r += ins.meh_col * (k1 * w)
     r += ins.mv_col * k2
     r *= 1.0 / np.sqrt(np.einsum("ij,ij->j", r, r))
+    if with_direction:  # also the unnormalised astrometric direction u
+        return (r[0], r[1], r[2]), p
     return r[0], r[1], r[2]
 
 
@@ -1689,7 +1694,7 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     x, y = bpn[..., 2, 0], bpn[..., 2, 1]
     _, _, s, _ = _cip_interpolated(tt1, tt2)
     geo = erfa.apci(tt1, tt2, ebpv, ehp, x, y, s)
-    return {
+    out = {
         "eb": [geo["eb"][..., i] for i in range(3)],
         "eh": [geo["eh"][..., i] for i in range(3)],
         "v": [geo["v"][..., i] for i in range(3)],
@@ -1697,10 +1702,35 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
         "bm1": geo["bm1"],
         "bpn": bpn,
     }
+    if np.ndim(bpn) == 2:
+        em, bm1 = float(geo["em"]), float(geo["bm1"])
+        eh = np.array([float(c) for c in out["eh"]])
+        v = np.array([float(c) for c in out["v"]])
+        out["fast"] = types.SimpleNamespace(
+            bm1=bm1,
+            ehv=float(eh @ v),
+            srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em,
+            dlim=1e-6 / max(em * em, 1.0),
+            k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em,
+            inv_1_bm1=1.0 / (1.0 + bm1),
+            **_one_instant_matrices(bpn, out["eb"], out["eh"], out["v"]),
+        )
+    return out
 
 
 def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo):
     """Geocentric astrometric (SOFA atccq) and apparent (atciq with apci) places, degrees."""
+    if "fast" in geo and np.ndim(ra_deg) == 1:
+        pi, u = _apparent_aet_one_instant(
+            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True
+        )
+        a_ra = np.mod(np.arctan2(u[1], u[0]), TWO_PI) * DEG_PER_RAD
+        a_dec = np.arctan2(u[2], np.sqrt(u[0] * u[0] + u[1] * u[1])) * DEG_PER_RAD
+        ri = np.arctan2(pi[1], pi[0])
+        di = np.arctan2(pi[2], np.sqrt(pi[0] * pi[0] + pi[1] * pi[1]))
+        ra_cio = np.mod(ri, TWO_PI) * DEG_PER_RAD
+        ra_eq = np.mod(ri - eo, TWO_PI) * DEG_PER_RAD
+        return a_ra, a_dec, ra_eq, di * DEG_PER_RAD, ra_cio
     q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["eb"])
     a_ra = np.mod(np.arctan2(q[1], q[0]), TWO_PI) * DEG_PER_RAD
     a_dec = np.arctan2(q[2], np.sqrt(q[0] * q[0] + q[1] * q[1])) * DEG_PER_RAD

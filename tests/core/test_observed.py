@@ -514,7 +514,16 @@ def test_vector_path_equals_scalar_path_with_motion():
     for i in range(n):
         one = O.observed_places(ra[i], dec[i], px[i], pmra[i], pmdec[i], rv[i], 1991.25,
                                 2460600.5, 0.3, site)  # fmt: skip
-        for name in ("azimuth_deg", "altitude_deg", "hour_angle_deg", "parallactic_angle_deg"):
+        for name in (
+            "azimuth_deg",
+            "altitude_deg",
+            "hour_angle_deg",
+            "parallactic_angle_deg",
+            "astrometric_ra_deg",
+            "astrometric_dec_deg",
+            "apparent_ra_deg",
+            "apparent_dec_deg",
+        ):
             assert abs(getattr(vec, name)[i] - getattr(one, name)) < 1e-11, name
         assert vec.flags[i] == one.flags
 
