@@ -1559,9 +1559,8 @@ def observed_places(
        constants ``refco``), computed once per instant by :func:`star_independent`, with the
        precession-nutation interpolated from cached 15-minute nodes. The per-star chain is
        SOFA ``atciq`` (with ``pmpx``, ``ldsun``, ``ab``) and ``atioq``, written in numpy: the
-       CIRS to azimuth
-       rotations are combined into one matrix per instant. Tests check the result against
-       ``erfa.atco13`` and astropy's AltAz.
+       CIRS to azimuth rotations are combined into one matrix per instant. Tests check the
+       result against the SOFA atco13 test values, ``erfa.apco13`` and astropy's AltAz.
     2. The geocentric places use SOFA ``apci`` with the same precession-nutation and the
        Earth's barycentric position and velocity from ``epv00``; the equinox-based apparent
        RA is the CIRS RA minus the equation of the origins.
