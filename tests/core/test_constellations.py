@@ -707,6 +707,32 @@ def test_outline_of_one_constellation():
         C.outline("Xyz")
 
 
+def test_outline_cut_at_the_antimeridian():
+    # Virgo straddles RA 12h (longitude +-180): RFC 7946 section 3.1.9 cuts it in two, each
+    # piece meeting the cut line exactly and together covering Virgo's area.
+    vir = C.outline("Vir")
+    assert vir["geometry"]["type"] == "MultiPolygon"
+    pieces = [np.asarray(p[0]) for p in vir["geometry"]["coordinates"]]
+    assert len(pieces) == 2
+    assert {float(np.max(np.abs(p[:, 0]))) for p in pieces} == {180.0}
+    east = [p for p in pieces if p[:, 0].max() == 180.0 and p[:, 0].min() > 0]
+    west = [p for p in pieces if p[:, 0].min() == -180.0 and p[:, 0].max() < 0]
+    assert len(east) == 1 and len(west) == 1
+    area = sum(_ring_area_sr(p) for p in pieces)
+    exact = C.boundary_table().area_sr[C.constellation_index("Vir")]
+    assert abs(area - exact) <= AREA_EACH_REL_TOL * exact
+
+
+def test_outline_over_a_pole():
+    # Octans contains the south celestial pole: its outline is closed along latitude -90.
+    octans = C.outline("Oct")
+    rings = [np.asarray(p[0]) for p in _polygons(octans)]
+    assert min(r[:, 1].min() for r in rings) == -90.0
+    area = sum(_ring_area_sr(r) for r in rings)
+    exact = C.boundary_table().area_sr[C.constellation_index("Oct")]
+    assert abs(area - exact) <= AREA_EACH_REL_TOL * exact
+
+
 def test_constellation_list():
     lst = C.constellation_list()
     assert len(lst) == 88
