@@ -294,6 +294,7 @@ def warm_up() -> None:
     _margin_index()
     _index_z_lut()
     _quick_lut()
+    _segment_side_sum()
 
 
 def constellation_index(abbreviation: str) -> int:
@@ -1063,7 +1064,7 @@ def _margins_block(xyz, ra_h, index):
     ci = np.minimum((ra_h * (15.0 / _INDEX_CELL_DEG)).astype(np.intp), mi.n_ra - 1)
     cj = _edge_index(xyz[2], _index_z_lut())
     cell = cj * mi.n_ra + ci
-    pos = mi.cell_first[cell].astype(np.intp)
+    pos = mi.cell_first[cell]
     other_x = np.flatnonzero(mi.key_x[pos] != index)
     if other_x.size:  # cells where several constellations meet: step to the right entry
         pos[other_x] = _find_entries(
@@ -1076,7 +1077,7 @@ def _margins_block(xyz, ra_h, index):
     x0, y0, z0 = xyz[0], xyz[1], xyz[2]
     rho0 = np.sqrt(np.maximum(1.0 - z0 * z0, 0.0))
     # first candidate of every point, in input order
-    best_seg = mi.flat[start_all].astype(np.intp)
+    best_seg = mi.flat[start_all]
     best = _one_minus_cos_distance_split(x0, y0, z0, rho0, best_seg)
     # further candidates: points ordered by their number of candidates (radix sort on 8
     # bits, most first) so that candidate k of all points that have one is a prefix
@@ -1132,9 +1133,17 @@ def _margins_block(xyz, ra_h, index):
                 TABLE_RA_HALF_UNIT_ARCSEC_AT_EQUATOR * rho[pts],
             )
             ambiguous[pts[dist * ARCSEC_PER_RAD <= tol]] = True
-    chosen = best_seg
-    other = np.where(segs.left[chosen] == index, segs.right[chosen], segs.left[chosen])
-    return margin * ARCSEC_PER_RAD, other.astype(np.int16), ambiguous
+    # the constellation across: of the segment's two sides, the one that is not the point's
+    other = (_segment_side_sum()[best_seg] - index).astype(np.int16)
+    return margin * ARCSEC_PER_RAD, other, ambiguous
+
+
+@functools.cache
+def _segment_side_sum() -> np.ndarray:
+    segs = _segments()
+    total = segs.left.astype(np.int32) + segs.right.astype(np.int32)
+    total.setflags(write=False)
+    return total
 
 
 # ---------------------------------------------------------------------------------------
