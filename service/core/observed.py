@@ -1488,6 +1488,122 @@ def _any_bits(*pairs):
     return out
 
 
+class _InstantState:
+    """Everything about one instant (or array of instants) that no star depends on.
+
+    For a single instant it is cached
+    (:func:`_instant_state_cached`), so its arrays are read-only.
+    """
+
+    def __init__(self, jd1, jd2, site: Site, refr: RefractionSettings, eop, eop_values):
+        eo_vals = earth_orientation_at(jd1, jd2, eop)
+        if eop_values is not None:
+            dut, pmx, pmy = (
+                np.broadcast_to(np.asarray(x, dtype=float), jd1.shape) for x in eop_values
+            )
+            eo_vals = EarthOrientationValues(
+                ut1_utc_s=dut,
+                pm_x_arcsec=pmx,
+                pm_y_arcsec=pmy,
+                status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
+                table=np.full(jd1.shape, "given"),
+                ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
+                pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
+                pointing_error_arcsec=np.full(
+                    jd1.shape,
+                    ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC,
+                ),
+                accuracy_class=np.full(jd1.shape, "milliarcsecond"),
+            )
+        xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
+        yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
+        astrom, eo, tt1, tt2, ebpv, ehp = star_independent(
+            jd1, jd2, eo_vals.ut1_utc_s, xp, yp, site, refr
+        )
+        self.eo_vals = eo_vals
+        self.astrom, self.eo, self.tt1, self.tt2, self.ebpv, self.ehp = (
+            astrom, eo, tt1, tt2, ebpv, ehp,
+        )  # fmt: skip
+        self.epoch_tt = np.asarray(erfa.epj(tt1, tt2))
+        mjd_utc = (jd1 - 2400000.5) + jd2
+        self.ins = ins = _instant_quantities(astrom)
+        self.sun_alt_deg = sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
+        status = eo_vals.status
+        instant_flags = (
+            _bits(sun_alt_deg > 0.0, ObservedFlag.SUN_ABOVE_HORIZON)
+            | _bits(
+                status == EarthOrientationStatus.PREDICTED,
+                ObservedFlag.EARTH_ORIENTATION_PREDICTED,
+            )
+            | _bits(
+                status == EarthOrientationStatus.UNAVAILABLE,
+                ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
+            )
+            | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
+        )
+        self.instant_flags = instant_flags if np.any(instant_flags) else None
+        self._geo = None
+
+    def geocentric(self):
+        """Star-independent quantities for the geocentric places (computed once)."""
+        if self._geo is None:
+            self._geo = _geocentric_astrom(self.tt1, self.tt2, self.astrom, self.ebpv, self.ehp)
+        return self._geo
+
+
+class _ByIdentity:
+    """Hashable wrapper comparing its object by identity (for cache keys)."""
+
+    __slots__ = ("obj",)
+
+    def __init__(self, obj):
+        self.obj = obj
+
+    def __hash__(self):
+        return id(self.obj)
+
+    def __eq__(self, other):
+        return isinstance(other, _ByIdentity) and other.obj is self.obj
+
+
+def _float_key(x) -> str:
+    """Exact cache key of a float: its hexadecimal form (keeps -0.0 apart from 0.0)."""
+    return float(x).hex()
+
+
+def _site_key(site: Site) -> tuple:
+    """Cache key of a site: the exact coordinates it is used for, and the site."""
+    return (
+        _float_key(site.latitude_deg),
+        _float_key(site.longitude_deg),
+        _float_key(site.height_m),
+        site,
+    )
+
+
+def _refr_key(refr: RefractionSettings) -> tuple:
+    """Cache key of refraction settings: the exact constants used, and the settings."""
+    return (_float_key(refr.refa_rad), _float_key(refr.refb_rad), refr)
+
+
+#: Instants (with site, atmosphere and Earth-orientation tables) whose star-independent
+#: quantities are kept: one-star requests for the same instant then skip that work.
+INSTANT_CACHE_SIZE = 256
+
+
+@functools.lru_cache(maxsize=INSTANT_CACHE_SIZE)
+def _instant_state_cached(jd1_key, jd2_key, site_key, refr_key, eop_key) -> _InstantState:
+    """The :class:`_InstantState` of one instant, cached on the exact values (Note 6 of
+    :func:`observed_places`); the cached arrays are made read-only."""
+    jd1 = np.asarray(float.fromhex(jd1_key))
+    jd2 = np.asarray(float.fromhex(jd2_key))
+    st = _InstantState(jd1, jd2, site_key[3], refr_key[2], eop_key.obj, None)
+    for a in (*vars(st.eo_vals).values(), st.epoch_tt):
+        if isinstance(a, np.ndarray):
+            a.setflags(write=False)
+    return st
+
+
 def observed_places(
     ra_deg,
     dec_deg,
@@ -1572,6 +1688,12 @@ def observed_places(
        facility's own interlocks and safety rules decide.
     5. Refraction uses the A tan z + B tan^3 z model with the near-horizon guards of SOFA
        ``atioq``; below about 5 degrees altitude its error grows (refco Note 2).
+    6. For a single instant the star-independent quantities (Note 1, with the Earth
+       orientation and the Sun's place) are cached, keyed on the exact UTC date, site
+       coordinates, refraction constants and tables (``INSTANT_CACHE_SIZE`` entries), so
+       that repeated requests for one instant, one star at a time, compute them once. Keys
+       are exact (no rounding), so results are the same with and without the cache; the
+       cached arrays returned (``eop``, ``epoch_tt_jyear``) are read-only.
 
     References
     ----------
@@ -1581,30 +1703,13 @@ def observed_places(
     eop = eop or earth_orientation()
     jd1, jd2 = _check_instants(utc_jd1, utc_jd2)
     refr = refraction_settings(site, atmosphere)
-    eo_vals = earth_orientation_at(jd1, jd2, eop)
-    if eop_values is not None:
-        dut, pmx, pmy = (np.broadcast_to(np.asarray(x, dtype=float), jd1.shape) for x in eop_values)
-        eo_vals = EarthOrientationValues(
-            ut1_utc_s=dut,
-            pm_x_arcsec=pmx,
-            pm_y_arcsec=pmy,
-            status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
-            table=np.full(jd1.shape, "given"),
-            ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
-            pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
-            pointing_error_arcsec=np.full(
-                jd1.shape, ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC
-            ),
-            accuracy_class=np.full(jd1.shape, "milliarcsecond"),
+    if jd1.ndim == 0 and eop_values is None:
+        st = _instant_state_cached(
+            _float_key(jd1), _float_key(jd2), _site_key(site), _refr_key(refr), _ByIdentity(eop)
         )
-    xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
-    yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
-    astrom, eo, tt1, tt2, ebpv, ehp = star_independent(
-        jd1, jd2, eo_vals.ut1_utc_s, xp, yp, site, refr
-    )
-    epoch_tt = erfa.epj(tt1, tt2)
-    mjd_utc = (jd1 - 2400000.5) + jd2
-    ins = _instant_quantities(astrom)
+    else:
+        st = _InstantState(jd1, jd2, site, refr, eop, eop_values)
+    eo_vals, ins = st.eo_vals, st.ins
 
     stars = [
         np.asarray(a, dtype=float)
@@ -1615,7 +1720,7 @@ def observed_places(
     ]  # fmt: skip
     star_shape = np.broadcast_shapes(*(a.shape for a in stars))
     shape = np.broadcast_shapes(star_shape, jd1.shape)
-    dt = epoch_tt - stars[6]
+    dt = st.epoch_tt - stars[6]
     limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
     if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
         # Many stars, one instant: run the chain block by block (cache-sized temporaries).
@@ -1636,25 +1741,13 @@ def observed_places(
         out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits, hour_angle)]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
-    sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
-    status = eo_vals.status
-    instant_flags = (
-        _bits(sun_alt_deg > 0.0, ObservedFlag.SUN_ABOVE_HORIZON)
-        | _bits(
-            status == EarthOrientationStatus.PREDICTED, ObservedFlag.EARTH_ORIENTATION_PREDICTED
-        )
-        | _bits(
-            status == EarthOrientationStatus.UNAVAILABLE,
-            ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
-        )
-        | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
-    )
-    if np.any(instant_flags):
+    sun_alt_deg, instant_flags = st.sun_alt_deg, st.instant_flags
+    if instant_flags is not None:
         res["flags"] = _shaped(res["flags"] | instant_flags, shape).astype(np.uint32)
 
     a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
     if geocentric:
-        geo = _geocentric_astrom(tt1, tt2, astrom, ebpv, ehp)
+        geo, eo = st.geocentric(), st.eo
         if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
             full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
             gout = [np.empty(shape) for _ in range(5)]
@@ -1677,7 +1770,7 @@ def observed_places(
         **res,
         sun_altitude_deg=_shaped(sun_alt_deg, shape),
         sun_azimuth_deg=_shaped(ins.sun_az * DEG_PER_RAD, shape),
-        epoch_tt_jyear=np.asarray(epoch_tt),
+        epoch_tt_jyear=st.epoch_tt,
         eop=eo_vals,
         refraction=refr,
         site=site,
