@@ -776,9 +776,27 @@ def refraction_settings(site: Site, atmosphere: Atmosphere | None) -> Refraction
     1. Missing pressure: US Standard Atmosphere 1976 at the site height
        (:func:`standard_atmosphere`); missing temperature likewise; pressure 0 switches
        refraction off.
+    2. Results are cached per exact site height and atmosphere.
     """
     atm = atmosphere or Atmosphere()
-    p_std, t_std = standard_atmosphere(site.height_m)
+    return _refraction_settings_cached(
+        _float_key(site.height_m),
+        *(
+            None if v is None else _float_key(v)
+            for v in (atm.pressure_hpa, atm.temperature_c, atm.relative_humidity, atm.wavelength_um)
+        ),
+    )
+
+
+@functools.lru_cache(maxsize=256)
+def _refraction_settings_cached(height_key, *atm_keys) -> RefractionSettings:
+    height_m = float.fromhex(height_key)
+    atm = Atmosphere(*(None if k is None else float.fromhex(k) for k in atm_keys))
+    return _refraction_settings(height_m, atm)
+
+
+def _refraction_settings(height_m: float, atm: Atmosphere) -> RefractionSettings:
+    p_std, t_std = standard_atmosphere(height_m)
     if atm.pressure_hpa is None:
         mode, p = "standard_atmosphere_pressure", float(p_std)
     elif atm.pressure_hpa == 0.0:
@@ -1264,7 +1282,21 @@ def utc_from_julian_epoch_tdb(jyear):
        (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch resolves about
        15 microseconds, i.e. 0.2 mas of Earth rotation.
     """
-    d1, d2 = erfa.epj2jd(np.asarray(jyear, dtype=float))
+    jyear = np.asarray(jyear, dtype=float)
+    if jyear.size == 1:  # one instant: cached (an exact function of the epoch)
+        u1, u2 = _utc_from_julian_epoch_tdb_cached(_float_key(jyear.reshape(-1)[0]))
+        return np.full(jyear.shape, u1), np.full(jyear.shape, u2)
+    return _utc_from_julian_epoch_tdb(jyear)
+
+
+@functools.lru_cache(maxsize=4096)
+def _utc_from_julian_epoch_tdb_cached(jyear_key: str) -> tuple[float, float]:
+    u1, u2 = _utc_from_julian_epoch_tdb(np.asarray(float.fromhex(jyear_key)))
+    return float(u1), float(u2)
+
+
+def _utc_from_julian_epoch_tdb(jyear):
+    d1, d2 = erfa.epj2jd(jyear)
     with warnings.catch_warnings():
         # "dubious year" beyond the leap-second table: reported by the caller's flags.
         warnings.simplefilter("ignore", erfa.ErfaWarning)
