@@ -11,9 +11,10 @@ that load from other processes on a shared machine falls on all alike:
 - ``POST /v1/observed``: one star, one instant, a site and an atmosphere.
 
 It prints milliseconds per request (median of the rounds, wall clock and CPU time of this
-process, ``time.process_time``, and the best round's CPU time) and the ratio of the health cost to each endpoint's cost,
-which is the fraction of the health request rate that endpoint can reach (the HTTP
-benchmarks, ``bench_http`` and ``bench_observed_http``, measure the same under gunicorn).
+process, ``time.process_time``, and the best round's CPU time) and the ratio of the health
+cost to each endpoint's cost, which is the fraction of the health request rate that
+endpoint can reach (the HTTP benchmarks, ``bench_http`` and ``bench_observed_http``,
+measure the same under gunicorn).
 
 Run: ``PYTHONPATH=. python -m benchmarks.bench_one_star [rounds] [requests per round]``.
 """
