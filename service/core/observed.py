@@ -852,7 +852,7 @@ def _nan0(a):
     if np.ndim(a) == 0:
         return 0.0 if np.isnan(a) else float(a)
     nan = np.isnan(a)
-    return np.where(nan, 0.0, a) if nan.any() else a
+    return np.where(nan, 0.0, a) if (nan.item() if nan.size == 1 else nan.any()) else a
 
 
 def _star_vectors(ra_deg, dec_deg, parallax_mas, pmra, pmdec, rv, dt_yr, eb_au):
@@ -1099,7 +1099,10 @@ def _apparent_aet_one_instant(
     (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
     """
     ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
-    in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
+    if ra.size == 1:
+        in_range = 0.0 <= ra.item() <= TWO_PI
+    else:
+        in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
     sr, cr = _sincos(ra, reduce="shift" if in_range else True)
     sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
     n = sr.shape[0]
@@ -1250,6 +1253,17 @@ CHAIN_BLOCK = 8192
 def _check_instants(utc_jd1, utc_jd2):
     jd1 = np.asarray(utc_jd1, dtype=float)
     jd2 = np.asarray(utc_jd2, dtype=float)
+    if jd1.ndim == jd2.ndim == 0:  # one instant: the same tests on Python floats
+        d1, d2 = jd1.item(), jd2.item()
+        if not (math.isfinite(d1) and math.isfinite(d2)):
+            raise ObservedInputError("instants", "must be finite dates")
+        ep = 2000.0 + ((d1 - 2451545.0) + d2) / 365.25
+        if not SUPPORTED_EPOCH_MIN <= ep < SUPPORTED_EPOCH_MAX:
+            raise ObservedInputError(
+                "instants",
+                f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
+            )
+        return jd1, jd2
     if not (np.all(np.isfinite(jd1)) and np.all(np.isfinite(jd2))):
         raise ObservedInputError("instants", "must be finite dates")
     ep = 2000.0 + ((jd1 - 2451545.0) + jd2) / 365.25
@@ -1515,7 +1529,7 @@ def _any_bits(*pairs):
         if np.ndim(mask) == 0:
             if mask:
                 out = out | np.uint32(flag)
-        elif mask.any():
+        elif mask.item() if mask.size == 1 else mask.any():
             out = out | np.where(mask, np.uint32(flag), np.uint32(0))
     return out
 
