@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import math
 
 import marshmallow as ma
 import numpy as np
@@ -310,7 +311,7 @@ def _uncertainty_dict(cov_block):
 
 def _num_or_none(x):
     x = float(x)
-    return x if np.isfinite(x) else None
+    return x if math.isfinite(x) else None
 
 
 @blp.route("/propagation", methods=["POST"])

@@ -170,6 +170,14 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
 
 
 def _check_range(arr: np.ndarray, spec: ColumnSpec, errors: TableErrors) -> None:
+    if arr.size == 1:  # one star: the same comparisons on a Python float (NaN passes)
+        v = arr.item()
+        lo, hi = spec.lo, spec.hi
+        if (lo is not None and (v < lo if spec.lo_inclusive else v <= lo)) or (
+            hi is not None and (v > hi if spec.hi_inclusive else v >= hi)
+        ):
+            errors.add_indices(np.array([0]), spec.name, spec.range_text())
+        return
     with np.errstate(invalid="ignore"):
         bad = np.zeros(arr.shape, dtype=bool)
         if spec.lo is not None:

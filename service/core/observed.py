@@ -1515,7 +1515,11 @@ class ObservedPlaces:
 
 def _shaped(x, shape):
     """``x`` as an array of ``shape`` (a broadcast view only when needed)."""
-    return x if np.shape(x) == shape else np.broadcast_to(x, shape)
+    if np.shape(x) == shape:
+        return x
+    if type(x) is not np.ndarray and math.prod(shape) == 1:
+        return np.reshape(x, shape)  # one scalar: a new one-element array (cheaper)
+    return np.broadcast_to(x, shape)
 
 
 def _bits(mask, flag):
