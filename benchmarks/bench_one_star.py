@@ -8,7 +8,9 @@ that load from other processes on a shared machine falls on all alike:
 - ``GET /health``: the baseline, the cost of the stack (Flask, flask-smorest, the request
   hooks for metrics and access control, JSON) for a constant answer;
 - ``POST /v1/propagation``: one star, one target epoch;
-- ``POST /v1/observed``: one star, one instant, a site and an atmosphere.
+- ``POST /v1/observed``: one star, one instant, a site and an atmosphere;
+- the same with a new instant (one second later) in every request, so that nothing
+  computed per instant can be reused from an earlier request.
 
 It prints milliseconds per request (median of the rounds, wall clock and CPU time of this
 process, ``time.process_time``, and the best round's CPU time) and the ratio of the health
@@ -65,7 +67,26 @@ def _requests(client):
     def observed():
         return client.post("/v1/observed", data=obs, headers=headers)
 
-    return {"health": health, "propagation": propagation, "observed": observed}
+    seconds = iter(range(10**9))
+
+    def observed_new_instant():
+        # A different instant (one second later) every request: nothing cached per instant.
+        k = next(seconds)
+        body = dict(
+            OBSERVED,
+            instants=[
+                f"2026-12-0{1 + k // 86400 % 9}T"
+                f"{k // 3600 % 24:02d}:{k // 60 % 60:02d}:{k % 60:02d}Z"
+            ],
+        )
+        return client.post("/v1/observed", data=orjson.dumps(body), headers=headers)
+
+    return {
+        "health": health,
+        "propagation": propagation,
+        "observed": observed,
+        "observed_new_instant": observed_new_instant,
+    }
 
 
 def measure(rounds: int = 15, per_round: int = 200) -> dict:
@@ -112,7 +133,7 @@ def main(argv: list[str] | None = None) -> dict:
     )
     for k, v in res.items():
         print(
-            f"  {k:12s} {v['wall_ms']:7.3f} ms wall ({base['wall_ms'] / v['wall_ms']:.2f} of "
+            f"  {k:20s} {v['wall_ms']:7.3f} ms wall ({base['wall_ms'] / v['wall_ms']:.2f} of "
             f"health)  {v['cpu_ms']:7.3f} ms CPU ({base['cpu_ms'] / v['cpu_ms']:.2f})  "
             f"best {v['best_cpu_ms']:7.3f} ms CPU ({base['best_cpu_ms'] / v['best_cpu_ms']:.2f})"
         )
