@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 
 import erfa
 import numpy as np
+from erfa import ufunc as erfa_ufunc
 
 from service.core.constants import ARCSEC_PER_RAD as _ARCSEC_PER_RAD
 from service.core.constants import (
@@ -1330,6 +1331,12 @@ def _quiet_erfa(func, *args):
         return func(*args)
 
 
+def _raise_erfa_errors(status, name: str) -> None:
+    """Raise ``erfa.ErfaError`` where an ERFA status is negative, as pyerfa's wrappers do."""
+    if (status < 0) if np.ndim(status) == 0 else np.any(status < 0):
+        raise erfa.ErfaError(f'ERFA function "{name}" returned an error status')
+
+
 # ---------------------------------------------------------------------------------------------
 # Star-independent quantities: apco13 with the precession-nutation interpolated from a cache
 # ---------------------------------------------------------------------------------------------
@@ -1419,15 +1426,20 @@ def star_independent(jd1, jd2, dut1, xp, yp, site: Site, refr: RefractionSetting
     1. The sequence is that of ``apco13``: UTC -> TAI -> TT and UT1, ``epv00``, CIP X, Y and
        s, ``era00``, ``sp00``, refraction constants from ``refco``, then ``apco``.
     """
-    tai1, tai2 = _quiet_erfa(erfa.utctai, jd1, jd2)
-    tt1, tt2 = erfa.taitt(tai1, tai2)
-    u1, u2 = _quiet_erfa(erfa.utcut1, jd1, jd2, dut1)
-    ehpv, ebpv = erfa.epv00(tt1, tt2)
+    # The ERFA ufuncs themselves (pyerfa's wrappers call the same ufuncs, then turn the
+    # status codes into exceptions and warnings): errors are raised as pyerfa would; the
+    # warnings (dubious year, epv00 outside 1900-2100) are reported by flags instead.
+    tai1, tai2, st_tai = erfa_ufunc.utctai(jd1, jd2)
+    tt1, tt2, _ = erfa_ufunc.taitt(tai1, tai2)
+    u1, u2, st_ut1 = erfa_ufunc.utcut1(jd1, jd2, dut1)
+    ehpv, ebpv, _ = erfa_ufunc.epv00(tt1, tt2)
+    _raise_erfa_errors(st_tai, "utctai")
+    _raise_erfa_errors(st_ut1, "utcut1")
     x, y, s, eo = _cip_interpolated(tt1, tt2)
-    theta = erfa.era00(u1, u2)
-    sp = erfa.sp00(tt1, tt2)
+    theta = erfa_ufunc.era00(u1, u2)
+    sp = erfa_ufunc.sp00(tt1, tt2)
     refa, refb = (refr.refa_rad, refr.refb_rad)
-    astrom = erfa.apco(
+    astrom = erfa_ufunc.apco(
         tt1, tt2, ebpv, ehpv["p"], x, y, s, theta,
         site.longitude_deg * RAD_PER_DEG, site.latitude_deg * RAD_PER_DEG, site.height_m,
         xp, yp, sp, refa, refb,
@@ -1574,7 +1586,7 @@ class _InstantState:
         self.astrom, self.eo, self.tt1, self.tt2, self.ebpv, self.ehp = (
             astrom, eo, tt1, tt2, ebpv, ehp,
         )  # fmt: skip
-        self.epoch_tt = np.asarray(erfa.epj(tt1, tt2))
+        self.epoch_tt = np.asarray(erfa_ufunc.epj(tt1, tt2))
         mjd_utc = (jd1 - 2400000.5) + jd2
         self.ins = ins = _instant_quantities(astrom)
         self.sun_alt_deg = sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
@@ -1835,7 +1847,7 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     bpn = astrom_obs["bpn"]
     x, y = bpn[..., 2, 0], bpn[..., 2, 1]
     _, _, s, _ = _cip_interpolated(tt1, tt2)
-    geo = erfa.apci(tt1, tt2, ebpv, ehp, x, y, s)
+    geo = erfa_ufunc.apci(tt1, tt2, ebpv, ehp, x, y, s)
     out = {
         "eb": [geo["eb"][..., i] for i in range(3)],
         "eh": [geo["eh"][..., i] for i in range(3)],
