@@ -1090,15 +1090,8 @@ def _apparent_aet(q, ins: _Instant):
     return [p0 * n, p1 * n, p2 * n]
 
 
-def _apparent_aet_one_instant(
-    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False
-):
-    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
-
-    The same formulae, arranged so that the linear parts are matrix products: with p the
-    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
-    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
-    """
+def _star_terms(ra_deg, dec_deg, px, pmra, pmdec, rv):
+    """The star-only part of :func:`_apparent_aet_one_instant` (shared by its two uses)."""
     ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
     if ra.size == 1:
         in_range = 0.0 <= ra.item() <= TWO_PI
@@ -1106,11 +1099,6 @@ def _apparent_aet_one_instant(
         in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
     sr, cr = _sincos(ra, reduce="shift" if in_range else True)
     sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
-    n = sr.shape[0]
-    p = np.empty((3, n))
-    np.multiply(cd, cr, out=p[0])
-    np.multiply(cd, sr, out=p[1])
-    p[2] = sd
     pxr = np.fmax(px, 0.0) * (1.0 / MAS_PER_RAD)
     mu_a = _nan0(pmra)
     mu_d = _nan0(pmdec)
@@ -1122,6 +1110,28 @@ def _apparent_aet_one_instant(
         mu_a = mu_a * (1.0 / MAS_PER_RAD)
         mu_d = mu_d * (1.0 / MAS_PER_RAD)
         zeta = zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr
+    return sr, cr, sd, cd, pxr, mu_a, mu_d, zeta, moving
+
+
+def _apparent_aet_one_instant(
+    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False, terms=None
+):
+    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
+
+    The same formulae, arranged so that the linear parts are matrix products: with p the
+    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
+    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
+    ``terms``: :func:`_star_terms` of the same star arguments, if already computed.
+    """
+    if terms is None:
+        terms = _star_terms(ra_deg, dec_deg, px, pmra, pmdec, rv)
+    sr, cr, sd, cd, pxr, mu_a, mu_d, zeta, moving = terms
+    n = sr.shape[0]
+    p = np.empty((3, n))
+    np.multiply(cd, cr, out=p[0])
+    np.multiply(cd, sr, out=p[1])
+    p[2] = sd
+    if moving:
         pe = ins.eb_row @ p
         dt = dt + pe * LIGHT_TIME_AU_YR
         a = dt * mu_a
@@ -1167,7 +1177,10 @@ _CHAIN_FIELDS = (
 )
 
 
-def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None):
+def _chain(
+    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None,
+    terms=None,
+):  # fmt: skip
     """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits.
 
     ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
@@ -1179,7 +1192,7 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         return None if out is None else out[k]
 
     if ins.a5 is not None and np.ndim(ra_deg) == 1:
-        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins)
+        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins, terms=terms)
     else:
         q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
         aet = _apparent_aet(q, ins)
@@ -1784,6 +1797,7 @@ def observed_places(
     shape = np.broadcast_shapes(star_shape, jd1.shape)
     dt = st.epoch_tt - stars[6]
     limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
+    terms = None
     if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
         # Many stars, one instant: run the chain block by block (cache-sized temporaries).
         # Scalars stay scalars (cheaper, and the no-motion case is recognised).
@@ -1800,7 +1814,11 @@ def observed_places(
                 if r is not v:
                     v[...] = r
     else:
-        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits, hour_angle)]
+        # One instant: the star-only terms are shared by the observed and geocentric places.
+        one = jd1.ndim == 0 and stars[0].ndim == 1 and ins.a5 is not None
+        terms = _star_terms(*stars[:6]) if one else None
+        chain = _chain(*stars[:6], dt, ins, limits, hour_angle, terms=terms)
+        out = [_shaped(r, shape) for r in chain]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
     sun_alt_deg, instant_flags = st.sun_alt_deg, st.instant_flags
@@ -1821,7 +1839,9 @@ def observed_places(
                     o[sl] = r
             a_ra, a_dec, app_ra, app_dec, app_ra_cio = gout
         else:
-            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(*stars[:6], dt, geo, eo)
+            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(
+                *stars[:6], dt, geo, eo, terms=terms
+            )
 
     return ObservedPlaces(
         astrometric_ra_deg=_shaped(a_ra, shape),
@@ -1872,12 +1892,13 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     return out
 
 
-def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo):
+def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo, terms=None):
     """Geocentric astrometric (SOFA atccq) and apparent (atciq with apci) places, degrees."""
     if "fast" in geo and np.ndim(ra_deg) == 1:
         pi, u = _apparent_aet_one_instant(
-            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True
-        )
+            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True,
+            terms=terms,
+        )  # fmt: skip
         a_ra = np.mod(np.arctan2(u[1], u[0]), TWO_PI) * DEG_PER_RAD
         a_dec = np.arctan2(u[2], np.sqrt(u[0] * u[0] + u[1] * u[1])) * DEG_PER_RAD
         ri = np.arctan2(pi[1], pi[0])
