@@ -1186,6 +1186,8 @@ def _chain(
     ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
     angle (returned as NaN). ``out``, a list of arrays in :data:`_CHAIN_FIELDS` order, lets
     the results be written in place (the caller copies any result that is not its array).
+    ``terms``, :func:`_star_terms` of the star arguments, saves recomputing them when one
+    instant's observed and geocentric places are both wanted.
     """
 
     def dst(k):
