@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 
+import marshmallow as ma
 import orjson
 from flask.json.provider import JSONProvider
 from webargs import core as webargs_core
@@ -32,7 +33,17 @@ class OrjsonProvider(JSONProvider):
 
 
 class BodyParser(FlaskParser):
-    """webargs parser that reads JSON bodies with orjson (about 5x faster than json)."""
+    """webargs parser that reads JSON bodies with orjson (about 5x faster than json).
+
+    Unknown query parameters are refused (422 naming them), as unknown body fields are: a
+    misspelt option must not silently fall back to its default.
+    """
+
+    DEFAULT_UNKNOWN_BY_LOCATION = {
+        **FlaskParser.DEFAULT_UNKNOWN_BY_LOCATION,
+        "query": ma.RAISE,
+        "querystring": ma.RAISE,
+    }
 
     def _raw_load_json(self, req):
         if not webargs_core.is_json(req.mimetype):

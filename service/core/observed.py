@@ -553,7 +553,7 @@ def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
     ----------
     spec : str, Site or mapping
         A site name, a :class:`Site`, or a mapping with ``latitude_deg``, ``longitude_deg``
-        and optional ``height_m`` (or ``name`` alone).
+        and ``height_m`` (all required), or ``name`` alone.
     sites : mapping of str to mapping, optional
         The operator-configured site list: name -> {latitude_deg, longitude_deg, height_m}.
 
@@ -580,13 +580,15 @@ def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
             prefix=prefix,
         )
     if isinstance(spec, dict):
-        for key in ("latitude_deg", "longitude_deg"):
-            if key not in spec:
+        # The height is required: it sets the pressure (hence refraction) when none is
+        # given, and a silent sea-level default would overestimate refraction at altitude.
+        for key in ("latitude_deg", "longitude_deg", "height_m"):
+            if key not in spec or spec[key] is None:
                 raise ObservedInputError(f"{prefix}.{key}", "is required")
         return make_site(
             spec["latitude_deg"],
             spec["longitude_deg"],
-            spec.get("height_m", 0.0),
+            spec["height_m"],
             name=spec.get("name"),
             prefix=prefix,
         )

@@ -396,8 +396,10 @@ def test_site_by_name_and_inline():
     sites = {"demo": {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 300.0}}
     s = O.resolve_site("demo", sites)
     assert (s.latitude_deg, s.longitude_deg, s.height_m, s.name) == (10.0, 20.0, 300.0, "demo")
-    s2 = O.resolve_site({"latitude_deg": -5, "longitude_deg": 100}, sites)
-    assert s2.height_m == 0.0
+    s2 = O.resolve_site({"latitude_deg": -5, "longitude_deg": 100, "height_m": 12.5}, sites)
+    assert (s2.latitude_deg, s2.longitude_deg, s2.height_m) == (-5, 100, 12.5)
+    with pytest.raises(O.ObservedInputError, match="height_m"):
+        O.resolve_site({"latitude_deg": -5, "longitude_deg": 100}, sites)
 
 
 @pytest.mark.parametrize(
