@@ -60,10 +60,10 @@ PLACE_FIELDS = {
 }
 
 FLAG_MEANINGS = {
-    "missing_parallax": "No parallax: no parallax shift applied.",
-    "non_positive_parallax": "Parallax zero or negative: no parallax shift applied.",
-    "missing_radial_velocity": "No radial velocity: taken as zero.",
-    "missing_proper_motion": "No proper motion: taken as zero.",
+    "parallax_missing": "No parallax: no parallax shift applied.",
+    "parallax_not_positive": "Parallax zero or negative: no parallax shift applied.",
+    "radial_velocity_missing": "No radial velocity: taken as zero.",
+    "proper_motion_missing": "No proper motion: taken as zero.",
     "below_horizon_limit": "Target below the horizon limit (advisory).",
     "within_sun_avoidance": "Target closer to the Sun than the avoidance angle (advisory).",
     "sun_above_horizon": "The Sun is above the horizon at the site.",

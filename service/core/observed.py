@@ -142,13 +142,13 @@ class ObservedFlag(enum.IntFlag):
     """Per-star, per-instant flags of an observed-place computation."""
 
     #: Parallax missing: star treated as infinitely distant (no parallax shift).
-    MISSING_PARALLAX = 1
+    PARALLAX_MISSING = 1
     #: Parallax zero or negative: treated as infinitely distant.
-    NON_POSITIVE_PARALLAX = 2
+    PARALLAX_NOT_POSITIVE = 2
     #: Radial velocity missing: taken as zero (no perspective acceleration).
-    MISSING_RADIAL_VELOCITY = 4
+    RADIAL_VELOCITY_MISSING = 4
     #: Proper motion missing: taken as zero.
-    MISSING_PROPER_MOTION = 8
+    PROPER_MOTION_MISSING = 8
     #: Target's observed altitude below the configured horizon limit (advisory).
     BELOW_HORIZON_LIMIT = 16
     #: Target closer to the Sun than the configured avoidance angle (advisory).
@@ -166,10 +166,10 @@ class ObservedFlag(enum.IntFlag):
 
 
 # Plain-int copies of the flag bits for the inner loops (enum attribute access is slow).
-_F_MISSING_PARALLAX = int(ObservedFlag.MISSING_PARALLAX)
-_F_NON_POSITIVE_PARALLAX = int(ObservedFlag.NON_POSITIVE_PARALLAX)
-_F_MISSING_RADIAL_VELOCITY = int(ObservedFlag.MISSING_RADIAL_VELOCITY)
-_F_MISSING_PROPER_MOTION = int(ObservedFlag.MISSING_PROPER_MOTION)
+_F_MISSING_PARALLAX = int(ObservedFlag.PARALLAX_MISSING)
+_F_NON_POSITIVE_PARALLAX = int(ObservedFlag.PARALLAX_NOT_POSITIVE)
+_F_MISSING_RADIAL_VELOCITY = int(ObservedFlag.RADIAL_VELOCITY_MISSING)
+_F_MISSING_PROPER_MOTION = int(ObservedFlag.PROPER_MOTION_MISSING)
 _F_BELOW_HORIZON_LIMIT = int(ObservedFlag.BELOW_HORIZON_LIMIT)
 _F_WITHIN_SUN_AVOIDANCE = int(ObservedFlag.WITHIN_SUN_AVOIDANCE)
 _F_AIRMASS_UNDEFINED = int(ObservedFlag.AIRMASS_UNDEFINED)

@@ -130,7 +130,7 @@ def test_inline_site_pressure_zero_and_fk4_input(client, observed_example):
     r = client.post(OBS, json=fk4)
     assert r.status_code == 200
     assert r.json["input_frame"] == "FK4 B1950.0"
-    assert "missing_parallax" in r.json["stars"][0]["at_instants"][0]["flags"]
+    assert "parallax_missing" in r.json["stars"][0]["at_instants"][0]["flags"]
 
 
 def test_frames_example_fk4_to_icrs_at_other_epochs(client, frames_example):
