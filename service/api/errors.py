@@ -22,6 +22,10 @@ log = logging.getLogger("skydrift.errors")
 
 PROBLEM_MIMETYPE = "application/problem+json"
 
+#: At most this many field errors are listed in one problem response (the rest are counted),
+#: so a body with a million bad values gets a small answer.
+MAX_LISTED_ERRORS = 100
+
 
 def problem_response(
     status: int,
@@ -99,6 +103,11 @@ def handle_http_exception(error: HTTPException) -> Response:
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
     else:
         detail = data.get("message") or error.description
+    if errors and len(errors) > MAX_LISTED_ERRORS:
+        more = len(errors) - MAX_LISTED_ERRORS
+        errors = errors[:MAX_LISTED_ERRORS] + [
+            {"field": "(more)", "message": f"{more} further invalid values not listed"}
+        ]
     headers = dict(data.get("headers") or {})
     if error.code == 405 and hasattr(error, "valid_methods") and error.valid_methods:
         headers["Allow"] = ", ".join(error.valid_methods)

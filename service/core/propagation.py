@@ -35,6 +35,7 @@ IAU SOFA / ERFA routines starpm, pmsafe (pyerfa).
 from __future__ import annotations
 
 import enum
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -560,6 +561,18 @@ def propagate_light_time(
 BLOCK_SIZE = 8192
 
 
+def _overflow_to_infinity(func):
+    """Run ``func`` with overflow to infinity, and inf * 0 to NaN, silent (Note 3)."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        with np.errstate(over="ignore", invalid="ignore"):
+            return func(*args, **kwargs)
+
+    return wrapper
+
+
+@_overflow_to_infinity
 def propagate(
     ra_deg,
     dec_deg,
@@ -600,6 +613,11 @@ def propagate(
        relative for any star), negligible for uncertainties.
     2. The work is done in blocks of ``block_size`` stars so that temporaries stay in the
        CPU cache; results do not depend on the block size.
+    3. A positive parallax within a few orders of magnitude of the smallest double (for
+       example 1e-300 mas) overflows the implied transverse velocity and some Jacobian terms
+       to infinity (and infinity times zero to NaN in the covariance). That is allowed to
+       happen silently: the star is flagged SPACE_VELOCITY_IMPLAUSIBLE, and the affected
+       outputs are infinite or NaN (unknown).
     """
     if model not in MODELS:
         raise ValueError(f"unknown model {model!r}; choose one of {MODELS}")
