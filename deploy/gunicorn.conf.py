@@ -13,7 +13,10 @@ bind = os.environ.get("SKYDRIFT_BIND", "127.0.0.1:8000")
 workers = int(os.environ.get("SKYDRIFT_WORKERS", multiprocessing.cpu_count()))
 
 #: Synchronous workers: each request is CPU-bound, so threads would only share one core.
-worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "sync")
+#: The project's sync worker adds limits on how slowly a client may send its request
+#: (SKYDRIFT_CLIENT_IDLE_TIMEOUT_S, default 10; SKYDRIFT_REQUEST_READ_TIMEOUT_S, default 60),
+#: so slow clients cannot hold a worker until `timeout` (see service/workers.py).
+worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "service.workers.ReadDeadlineSyncWorker")
 
 #: Threads per worker (only used by the gthread worker class).
 threads = int(os.environ.get("SKYDRIFT_THREADS", 1))

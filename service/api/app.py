@@ -11,7 +11,7 @@ import uuid
 
 import flask_smorest
 from flask import Flask, g, request
-from werkzeug.exceptions import HTTPException
+from werkzeug.exceptions import ClientDisconnected, HTTPException
 
 from .. import __version__
 from ..config import Settings
@@ -94,6 +94,8 @@ def create_app(config: dict | None = None) -> Flask:
     app.extensions["skydrift_ready_checks"] = {}
     app.register_error_handler(HTTPException, errors.handle_http_exception)
     app.register_error_handler(Exception, errors.handle_unexpected)
+    app.register_error_handler(TimeoutError, errors.handle_client_timeout)
+    app.register_error_handler(ClientDisconnected, errors.handle_client_timeout)
 
     @app.before_request
     def _start():

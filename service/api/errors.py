@@ -125,3 +125,21 @@ def handle_unexpected(error: Exception) -> Response:
     return problem_response(
         500, ise.name, "An internal error occurred; it has been logged with the request id."
     )
+
+
+def handle_client_timeout(error: Exception) -> Response:
+    """The client stopped sending its body in time (service.workers): 408, never a 500.
+
+    Werkzeug reports a failed body read as ClientDisconnected (a 400) with the socket's
+    error as its context; a timeout there is answered 408 as well.
+    """
+    cause = error if isinstance(error, TimeoutError) else error.__context__
+    if not isinstance(cause, TimeoutError):
+        return handle_http_exception(error)
+    log.info("client timed out sending the request: %s", cause)
+    return problem_response(
+        408,
+        "Request Timeout",
+        "The request body did not arrive in time; send it without pauses.",
+        headers={"Connection": "close"},
+    )
