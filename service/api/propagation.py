@@ -14,7 +14,7 @@ from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
-from .tables import StarTableField
+from .tables import MAX_ABS_MAS, StarTableField
 
 blp = Blueprint(
     "propagation",
@@ -62,12 +62,6 @@ UNITS = {
     "epochs": "Julian epoch (TDB), years",
 }
 
-
-#: Largest magnitude accepted for parallaxes, proper motions and their standard errors, in
-#: mas and mas/yr. Far beyond any star (a parallax of 1e10 mas is a distance of 0.02 au; a
-#: proper motion of 1e10 mas/yr is 2,800 deg/yr), it keeps every product in the model and its
-#: covariance finite, so no input overflows into a meaningless answer.
-MAX_ABS_MAS = 1e10
 
 #: Largest standard error accepted for the radial velocity, km/s (the speed of light).
 MAX_RV_ERROR_KM_S = C_KM_S
@@ -140,6 +134,7 @@ class EpochRangeSchema(ma.Schema):
     start = EpochField(required=True)
     stop = EpochField(required=True)
     count = ma.fields.Integer(
+        strict=True,  # 2.5 is refused, not truncated to 2
         required=True,
         validate=ma.validate.Range(min=1),
         metadata={"description": "Number of epochs, start and stop included."},

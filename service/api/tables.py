@@ -24,6 +24,16 @@ import numpy as np
 from flask import current_app
 from flask_smorest import abort
 
+#: Largest magnitude accepted for parallaxes, proper motions and their standard errors, in
+#: mas and mas/yr. Far beyond any star (a parallax of 1e10 mas is a distance of 0.02 au; a
+#: proper motion of 1e10 mas/yr is 2,800 deg/yr), it keeps every product in the models and
+#: their covariances finite, so no input overflows into a meaningless answer.
+MAX_ABS_MAS = 1e10
+
+#: Largest distance (and distance error) accepted, pc: 1e10 pc, about the radius of the
+#: observable universe (common practice), with the same purpose.
+MAX_DISTANCE_PC = 1e10
+
 #: At most this many individual field errors are listed in one problem response.
 MAX_LISTED_ERRORS = 50
 

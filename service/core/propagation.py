@@ -35,7 +35,6 @@ IAU SOFA / ERFA routines starpm, pmsafe (pyerfa).
 from __future__ import annotations
 
 import enum
-import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -50,6 +49,7 @@ from .constants import (
     RAD_PER_DEG,
 )
 from .epochs import julian_epoch_to_jd
+from .floating import overflow_to_infinity
 
 MODELS = ("standard", "light_time")
 
@@ -683,18 +683,7 @@ def propagate_light_time(
 BLOCK_SIZE = 4096
 
 
-def _overflow_to_infinity(func):
-    """Run ``func`` with overflow to infinity, and inf * 0 to NaN, silent (Note 4)."""
-
-    @functools.wraps(func)
-    def wrapper(*args, **kwargs):
-        with np.errstate(over="ignore", invalid="ignore"):
-            return func(*args, **kwargs)
-
-    return wrapper
-
-
-@_overflow_to_infinity
+@overflow_to_infinity  # Note 4
 def propagate(
     ra_deg,
     dec_deg,
