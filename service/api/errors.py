@@ -26,6 +26,9 @@ PROBLEM_MIMETYPE = "application/problem+json"
 #: so a body with a million bad values gets a small answer.
 MAX_LISTED_ERRORS = 100
 
+#: Field paths and messages are cut to this many characters.
+MAX_ECHOED_CHARS = 300
+
 
 def problem_response(
     status: int,
@@ -85,6 +88,10 @@ def flatten_messages(messages, prefix: str = "") -> list[dict]:
     return out
 
 
+def _clip(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 def handle_http_exception(error: HTTPException) -> Response:
     """Shape every HTTPException (including flask-smorest/webargs aborts) as problem+json."""
     data = getattr(error, "data", None) or {}
@@ -107,6 +114,12 @@ def handle_http_exception(error: HTTPException) -> Response:
         more = len(errors) - MAX_LISTED_ERRORS
         errors = errors[:MAX_LISTED_ERRORS] + [
             {"field": "(more)", "message": f"{more} further invalid values not listed"}
+        ]
+    if errors:
+        # A client's own text (an unknown 10 MB key) is never echoed at length.
+        errors = [
+            {"field": _clip(str(e.get("field", ""))), "message": _clip(str(e.get("message", "")))}
+            for e in errors
         ]
     headers = dict(data.get("headers") or {})
     if error.code == 405 and hasattr(error, "valid_methods") and error.valid_methods:
