@@ -36,6 +36,7 @@ from service.core.constants import (
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
+from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
 # Constants of this module
@@ -1371,6 +1372,7 @@ def _any_bits(*pairs):
     return out
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def observed_places(
     ra_deg,
     dec_deg,

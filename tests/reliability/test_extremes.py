@@ -121,8 +121,21 @@ def test_there_are_table_operations_to_check():
 
 
 @pytest.mark.parametrize(("path", "example", "table", "override"), _cases())
-@pytest.mark.parametrize("form", ["records", "columns"])
-def test_edge_values_give_documented_answers(client, path, example, table, override, form):
+def test_edge_values_give_documented_answers(client, path, example, table, override):
+    """Records form for every case; the columns form is read by the same code (tables.py)
+    once the values are arrays, and is checked with every column at once below."""
+    _check(client, path, example, table, override, "records")
+
+
+@pytest.mark.parametrize(
+    ("path", "example", "table", "override"),
+    [c for c in _cases() if c.id.rsplit(":", 1)[1].startswith("all-")],
+)
+def test_edge_values_in_columns_form(client, path, example, table, override):
+    _check(client, path, example, table, override, "columns")
+
+
+def _check(client, path, example, table, override, form):
     stars = [dict(star, **override) for star in example[table]]
     if form == "columns":
         keys = sorted(set().union(*stars))
