@@ -1,13 +1,16 @@
-"""gunicorn worker that gives each client a deadline to send its request.
+"""gunicorn workers that give each client a deadline to send its request.
 
-gunicorn's sync worker reads a request with a blocking socket and no timeout. A client that
-sends its headers or body slowly ("slow loris") holds the worker until the master's worker
-``timeout`` (120 s here) kills and replaces it; a handful of such clients stop the service.
-:class:`ReadDeadlineSyncWorker` is the sync worker with two limits on reading a request:
+gunicorn's workers read a request with a blocking socket and no timeout. A client that sends
+its headers or body slowly ("slow loris") holds a sync worker until the master's worker
+``timeout`` (120 s here) kills and replaces it, and holds a gthread thread for ever (the
+master only watches the worker's main loop, which keeps running); a handful of such clients
+stop the service. :class:`ReadDeadlineThreadWorker` (gthread, the deploy default) and
+:class:`ReadDeadlineSyncWorker` (sync) add two limits on reading each request:
 
 - ``SKYDRIFT_CLIENT_IDLE_TIMEOUT_S`` (default 10): longest wait for the next bytes;
 - ``SKYDRIFT_REQUEST_READ_TIMEOUT_S`` (default 60): longest time to receive the whole request,
-  headers and body, counted from the connection being accepted.
+  headers and body, counted from the connection being accepted or, on a kept-alive
+  connection, from the moment a thread takes up its next request.
 
 A client that misses either is answered 408 (when the application was already reading the
 body; ``errors.handle_client_timeout``) or disconnected (while still sending headers), the
@@ -18,11 +21,13 @@ these limits are never reached.
 
 from __future__ import annotations
 
+import errno
 import os
 import time
 
 from gunicorn import util
 from gunicorn.http.errors import NoMoreData
+from gunicorn.workers.gthread import TConn, ThreadWorker
 from gunicorn.workers.sync import SyncWorker
 
 
@@ -62,6 +67,10 @@ class _ReadDeadlineSocket:
         self._total_s = total_s
         self._send_s = send_s
         self._deadline = time.monotonic() + total_s
+
+    def restart_deadline(self) -> None:
+        """A new request starts (kept-alive connection): the total limit counts from now."""
+        self._deadline = time.monotonic() + self._total_s
 
     def recv(self, size, *flags):
         left = self._deadline - time.monotonic()
@@ -118,3 +127,33 @@ class ReadDeadlineSyncWorker(SyncWorker):
             client, self.client_idle_s, self.request_read_s, send_s, self.log
         )
         self.handle(listener, wrapped, addr)
+
+
+class ReadDeadlineThreadWorker(ThreadWorker):
+    """gunicorn's gthread worker with per-request read limits (module docstring)."""
+
+    def init_process(self):
+        self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
+        self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        super().init_process()
+
+    def accept(self, listener):
+        # ThreadWorker.accept, with the client socket wrapped.
+        try:
+            client_sock, client_addr = listener.accept()
+            self.nr_conns += 1
+            client_sock.setblocking(True)
+            send_s = float(self.cfg.timeout or 120)
+            wrapped = _ReadDeadlineSocket(
+                client_sock, self.client_idle_s, self.request_read_s, send_s, self.log
+            )
+            conn = TConn(self.cfg, wrapped, client_addr, listener.getsockname())
+            self.enqueue_req(conn)
+        except OSError as e:
+            if e.errno not in (errno.EAGAIN, errno.ECONNABORTED, errno.EWOULDBLOCK):
+                raise
+
+    def handle(self, conn):
+        if isinstance(conn.sock, _ReadDeadlineSocket):
+            conn.sock.restart_deadline()
+        return super().handle(conn)
