@@ -157,3 +157,13 @@ class ReadDeadlineThreadWorker(ThreadWorker):
         if isinstance(conn.sock, _ReadDeadlineSocket):
             conn.sock.restart_deadline()
         return super().handle(conn)
+
+    def set_accept_enabled(self, enabled):
+        super().set_accept_enabled(enabled)
+        if not enabled and not self.alive:
+            # Shutting down (SIGTERM): drop this process's copies of the listening sockets
+            # now, not after the in-flight requests. Once the master has closed its own (it
+            # does so first), new connections are refused at once instead of waiting in the
+            # backlog for a worker that will never accept them.
+            for listener in self.sockets:
+                listener.close()
