@@ -7,6 +7,7 @@ failure belongs to exactly one request.
 
 from __future__ import annotations
 
+import http.client
 import json
 import os
 import shutil
@@ -17,6 +18,7 @@ import sys
 import threading
 import time
 
+import orjson
 import pytest
 import requests
 
@@ -129,21 +131,35 @@ def test_sigterm_finishes_in_flight_requests_then_refuses_connections():
         "target_epochs": [2026.0],
         "layout": "columns",
     }
+    payload = orjson.dumps(big)
     srv = Server(workers=2).start()
     try:
         results: list = []
+        sent = [threading.Event() for _ in range(2)]
 
-        def slow_request():
+        def slow_request(done_sending: threading.Event):
+            conn = http.client.HTTPConnection("127.0.0.1", srv.port, timeout=120)
             try:
-                r = requests.post(srv.url + "/v1/propagation", json=big, timeout=120)
-                results.append((r.status_code, r.json()["star_count"]))
-            except requests.RequestException as exc:
+                conn.request(
+                    "POST",
+                    "/v1/propagation",
+                    body=payload,
+                    headers={"Content-Type": "application/json"},
+                )
+                done_sending.set()  # the whole body is with the server: in flight
+                r = conn.getresponse()
+                results.append((r.status, orjson.loads(r.read())["star_count"]))
+            except OSError as exc:
+                done_sending.set()
                 results.append(type(exc).__name__)
+            finally:
+                conn.close()
 
-        threads = [threading.Thread(target=slow_request) for _ in range(2)]
+        threads = [threading.Thread(target=slow_request, args=(e,)) for e in sent]
         for t in threads:
             t.start()
-        time.sleep(0.5)  # both requests sent and being worked on
+        for e in sent:
+            assert e.wait(timeout=60)
         stopped_at = time.monotonic()
         srv.proc.send_signal(signal.SIGTERM)
         refused_after = None
