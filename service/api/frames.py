@@ -124,7 +124,7 @@ class EquinoxField(ma.fields.Field):
 
 def equinox_field_to_openapi(self, field, **kwargs) -> dict:
     if isinstance(field, EquinoxField):
-        return {"type": ["string", "number"]}
+        return {"type": ["string", "number", "null"] if field.allow_none else ["string", "number"]}
     return {}
 
 

@@ -49,8 +49,12 @@ class BodyParser(FlaskParser):
         if not webargs_core.is_json(req.mimetype):
             return webargs_core.missing
         data = req.get_data(cache=True)
+        if not data:
+            return webargs_core.missing  # no body: each required field is reported missing
         try:
             return orjson.loads(data)
         except orjson.JSONDecodeError as exc:
-            # webargs turns json.JSONDecodeError into a 400 through our error handler.
-            raise json.JSONDecodeError(str(exc), exc.doc or "", exc.pos or 0) from None
+            # webargs turns json.JSONDecodeError into a 400 through our error handler, but
+            # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
+            # are not UTF-8, so it is never passed on empty.
+            raise json.JSONDecodeError(str(exc), exc.doc or "(body)", exc.pos or 0) from None

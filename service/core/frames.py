@@ -41,6 +41,7 @@ from service.core.constants import (
     RAD_PER_DEG,
     TROPICAL_YEAR_DAYS_LIESKE1979,
 )
+from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
 # Constants of this module (unit and source beside each)
@@ -640,6 +641,7 @@ def _from_icrs(s: _State, frame: Frame, epoch) -> _State:
     return _fk4_b1950_to_equinox(s, frame.equinox)
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def convert(
     ra_deg,
     dec_deg,

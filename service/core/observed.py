@@ -38,6 +38,7 @@ from service.core.constants import (
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
+from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
 # Constants of this module
@@ -344,6 +345,33 @@ def earth_orientation(path: str | None = None) -> EarthOrientation:
     expires = leap_second_table().expires
     expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
     return EarthOrientation(primary, fallback, expiry_mjd)
+
+
+def no_earth_orientation() -> EarthOrientation:
+    """Placeholder tables with no usable node, for a service whose tables cannot be read.
+
+    Every instant falls outside them, so UT1-UTC and polar motion are taken as zero and each
+    answer carries EarthOrientationStatus.UNAVAILABLE (see :func:`earth_orientation_at`).
+    """
+    node = np.array([-1.0e9, -1.0e9 + 1.0])  # MJD: long before any instant asked for
+    table = EarthOrientationTable(
+        name="none (Earth-orientation tables could not be read)",
+        path="",
+        mjd=node,
+        ut1_utc_s=np.zeros(2),
+        pm_x_arcsec=np.zeros(2),
+        pm_y_arcsec=np.zeros(2),
+        status=np.full(2, int(EarthOrientationStatus.UNAVAILABLE)),
+        last_measured_mjd=float(node[0]),
+    )
+    try:
+        from service.core.offline import leap_second_table
+
+        expires = leap_second_table().expires
+        expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
+    except Exception:  # the leap-second file may be what is broken
+        expiry_mjd = float("inf")
+    return EarthOrientation(table, None, expiry_mjd)
 
 
 def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
@@ -1683,6 +1711,7 @@ def _instant_state_cached(jd1_key, jd2_key, site_key, refr_key, eop_key) -> _Ins
     return st
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def observed_places(
     ra_deg,
     dec_deg,
