@@ -1,0 +1,617 @@
+"""Python client for the Skydrift HTTP API. Needs only ``requests``.
+
+>>> from service.client import Client
+>>> with Client("http://127.0.0.1:8000") as sky:                      # doctest: +SKIP
+...     answer = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=["now"])
+
+What it does for you:
+
+* one ``requests.Session`` per client, so connections are reused;
+* a timeout on every request (connect, read), seconds;
+* retries with exponential backoff on 429, 502, 503 and 504 answers and on failed
+  connections, waiting as long as a ``Retry-After`` header asks (capped); every endpoint is
+  a pure computation, so repeating a request is safe;
+* large inputs split into requests of ``batch_size`` stars, the answers joined in order (star
+  ``index`` values count from the start of your input, as if sent at once);
+* errors raised as :class:`SkydriftError` with the problem details (status, title, detail
+  and the list of offending fields).
+
+Stars may be a list of records (dicts) or a dict of columns (lists or anything with
+``tolist()``, such as numpy arrays); NaN or None means unknown. Answers are the service's
+JSON, as Python dicts.
+
+This module imports nothing heavy (no numpy, Flask or astropy), so it can be copied into
+any script that has ``requests``.
+"""
+
+from __future__ import annotations
+
+import csv
+import email.utils
+import io
+import json
+import math
+import random
+import re
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import requests
+
+__all__ = ["Client", "FieldError", "SkydriftError", "DEFAULT_URL"]
+
+DEFAULT_URL = "http://127.0.0.1:8000"
+
+#: Answers worth repeating: rate limited, overloaded or briefly unavailable upstream.
+RETRY_STATUSES = (429, 502, 503, 504)
+
+Stars = Sequence[Mapping[str, Any]] | Mapping[str, Sequence[Any]]
+Epoch = str | float
+Progress = Callable[[int], None]
+
+
+@dataclass(frozen=True)
+class FieldError:
+    """One offending value: its path (``stars[3].dec_deg`` or ``line 7: dec_deg``)."""
+
+    field: str
+    message: str
+
+    def __str__(self) -> str:
+        return f"{self.field}: {self.message}"
+
+
+@dataclass
+class SkydriftError(Exception):
+    """An error answer (RFC 9457 problem details) or a service that could not be reached.
+
+    Attributes
+    ----------
+    status : int or None
+        HTTP status; None when no answer came (connection failed).
+    title, detail : str
+        The problem's title and detail.
+    errors : list of FieldError
+        The offending fields, if the service listed them.
+    request_id : str or None
+        The service's request id, to quote when asking about a failure.
+    retry_after_s : float or None
+        For 429/503 answers after the last retry: how long the service asked to wait.
+    """
+
+    status: int | None
+    title: str
+    detail: str = ""
+    errors: list[FieldError] = field(default_factory=list)
+    request_id: str | None = None
+    retry_after_s: float | None = None
+
+    def __post_init__(self):
+        super().__init__(str(self))
+
+    def __str__(self) -> str:
+        head = f"{self.status} {self.title}" if self.status else self.title
+        text = f"{head}: {self.detail}" if self.detail else head
+        if self.errors:
+            text += "\n" + "\n".join(f"  {e}" for e in self.errors)
+        return text
+
+    @classmethod
+    def from_response(cls, resp: requests.Response) -> SkydriftError:
+        """Build from an error answer (problem+json, or whatever else came back)."""
+        try:
+            body = resp.json()
+        except ValueError:
+            body = None
+        if not isinstance(body, dict):
+            return cls(
+                resp.status_code,
+                resp.reason or "Error",
+                resp.text[:500].strip(),
+                request_id=resp.headers.get("X-Request-ID"),
+                retry_after_s=_retry_after_s(resp),
+            )
+        errors = [
+            FieldError(str(e.get("field", "")), str(e.get("message", "")))
+            for e in body.get("errors") or []
+            if isinstance(e, dict)
+        ]
+        return cls(
+            int(body.get("status") or resp.status_code),
+            str(body.get("title") or resp.reason or "Error"),
+            str(body.get("detail") or ""),
+            errors,
+            body.get("request_id") or resp.headers.get("X-Request-ID"),
+            _retry_after_s(resp),
+        )
+
+
+def _retry_after_s(resp: requests.Response) -> float | None:
+    """The Retry-After header in seconds (delay-seconds or an HTTP date), or None."""
+    value = resp.headers.get("Retry-After")
+    if not value:
+        return None
+    value = value.strip()
+    if value.isdigit():
+        return float(value)
+    try:
+        when = email.utils.parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    if when is None:
+        return None
+    return max(0.0, when.timestamp() - time.time())
+
+
+def _clean(value):
+    """NaN and infinities -> None (unknown), tuples -> lists, arrays -> lists."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if hasattr(value, "tolist"):
+        return _clean(value.tolist())
+    if isinstance(value, list | tuple):
+        return [_clean(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    return value
+
+
+def _count(stars: Stars) -> int:
+    if isinstance(stars, Mapping):
+        lengths = {len(v) for v in stars.values()}
+        if len(lengths) > 1:
+            raise ValueError("all columns must have the same length")
+        return lengths.pop() if lengths else 0
+    return len(stars)
+
+
+def _slice(stars: Stars, start: int, stop: int):
+    if isinstance(stars, Mapping):
+        return {k: _clean(v[start:stop]) for k, v in stars.items()}
+    return [_clean(dict(s)) for s in stars[start:stop]]
+
+
+def _offset_indices(items: list, offset: int) -> list:
+    if not offset:
+        return items
+    return [dict(x, index=x["index"] + offset) if "index" in x else x for x in items]
+
+
+def merge_answers(parts: list[dict], offsets: list[int]) -> dict:
+    """Join the answers of consecutive batches into one, as if sent in one request.
+
+    Lists of per-star objects (those with an ``index``) are concatenated with their indices
+    shifted; ``columns`` are concatenated star-wise (per-epoch rows side by side);
+    ``*_count`` numbers are summed; other objects are merged; anything else is taken from
+    the first batch (epochs, units, model: the same in every batch).
+    """
+    out = dict(parts[0])
+    out = {k: (list(v) if isinstance(v, list) else v) for k, v in out.items()}
+    for part, offset in zip(parts[1:], offsets[1:], strict=True):
+        for key, value in part.items():
+            mine = out.get(key)
+            if isinstance(value, list) and isinstance(mine, list):
+                if all(isinstance(x, dict) and "index" in x for x in value + mine):
+                    out[key] = mine + _offset_indices(value, offset)
+            elif key == "columns" and isinstance(value, dict) and isinstance(mine, dict):
+                out[key] = _join_columns(mine, value, offset, part.get("star_count"))
+            elif key.endswith("_count") and isinstance(value, int) and isinstance(mine, int):
+                out[key] = mine + value
+            elif isinstance(value, dict) and isinstance(mine, dict):
+                out[key] = {**mine, **value}
+            elif key not in out:
+                out[key] = value
+    return out
+
+
+def _join_columns(mine: dict, value: dict, n_mine: int, n_value: int | None) -> dict:
+    """Columns of two consecutive batches, star-wise; a column one batch lacks (e.g. no
+    star of it had uncertainties) is filled with nulls of that batch's shape."""
+
+    def epochs_of(cols):
+        return next(
+            (len(v) for k, v in cols.items() if k != "flags" and v and isinstance(v[0], list)),
+            None,
+        )
+
+    if n_value is None:
+        n_value = next((len(v) for k, v in value.items() if k in ("id", "flags") and v), 0)
+    m = epochs_of(mine) or epochs_of(value) or 0
+    cols = {}
+    for name in list(mine) + [n for n in value if n not in mine]:
+        a, b = mine.get(name), value.get(name)
+        two_d = name != "flags" and any(x and isinstance(x[0], list) for x in (a, b) if x)
+        if a is None:
+            a = [[None] * n_mine for _ in range(m)] if two_d else [None] * n_mine
+        if b is None:
+            b = [[None] * n_value for _ in range(m)] if two_d else [None] * n_value
+        cols[name] = [ra + rb for ra, rb in zip(a, b, strict=True)] if two_d else a + b
+    return cols
+
+
+_LINE = re.compile(r"^line (\d+)(.*)$")
+
+
+class Client:
+    """A Skydrift API client.
+
+    Parameters
+    ----------
+    base_url : str
+        Where the service listens, e.g. ``http://127.0.0.1:8000``.
+    timeout : float or (float, float)
+        Seconds to wait for a connection and for an answer (one number: both).
+    retries : int
+        How many times to repeat a request after a retryable answer or failed connection.
+    backoff_s : float
+        First wait between attempts, seconds; doubled each time (with jitter), at most
+        ``max_backoff_s``. A ``Retry-After`` header replaces it (at most
+        ``max_retry_after_s``).
+    batch_size : int
+        Most stars sent in one request; larger inputs are split and the answers joined.
+    headers : dict, optional
+        Extra headers for every request (e.g. ``Authorization``).
+    session : requests.Session, optional
+        A session to use (default: a new one, closed by :meth:`close`).
+    sleep : callable, optional
+        Function used to wait (tests pass a recorder).
+    """
+
+    def __init__(
+        self,
+        base_url: str = DEFAULT_URL,
+        *,
+        timeout: float | tuple[float, float] = (5.0, 300.0),
+        retries: int = 5,
+        backoff_s: float = 0.5,
+        max_backoff_s: float = 30.0,
+        max_retry_after_s: float = 120.0,
+        batch_size: int = 100_000,
+        headers: Mapping[str, str] | None = None,
+        session: requests.Session | None = None,
+        sleep: Callable[[float], None] = time.sleep,
+    ):
+        if batch_size < 1:
+            raise ValueError("batch_size must be at least 1")
+        self.base_url = base_url.rstrip("/")
+        self.timeout = timeout
+        self.retries = int(retries)
+        self.backoff_s = float(backoff_s)
+        self.max_backoff_s = float(max_backoff_s)
+        self.max_retry_after_s = float(max_retry_after_s)
+        self.batch_size = int(batch_size)
+        self._own_session = session is None
+        self.session = session or requests.Session()
+        self.session.headers.update({"User-Agent": "skydrift-client"})
+        self.session.headers.update(dict(headers or {}))
+        self._sleep = sleep
+
+    # ------------------------------------------------------------ plumbing
+
+    def close(self) -> None:
+        """Close the connections (only if the client made its own session)."""
+        if self._own_session:
+            self.session.close()
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def _wait_s(self, attempt: int, resp: requests.Response | None) -> float:
+        if resp is not None:
+            asked = _retry_after_s(resp)
+            if asked is not None:
+                return min(asked, self.max_retry_after_s)
+        base = min(self.max_backoff_s, self.backoff_s * 2.0**attempt)
+        return base * random.uniform(0.5, 1.0)
+
+    def request(self, method: str, path: str, **kwargs) -> requests.Response:
+        """Send one request with timeout and retries; raise SkydriftError unless 2xx."""
+        url = self.base_url + path
+        kwargs.setdefault("timeout", self.timeout)
+        for attempt in range(self.retries + 1):
+            try:
+                resp = self.session.request(method, url, **kwargs)
+            except requests.ConnectionError as exc:
+                if attempt == self.retries:
+                    raise SkydriftError(None, "Service unreachable", f"{url}: {exc}") from exc
+                self._sleep(self._wait_s(attempt, None))
+                continue
+            except requests.Timeout as exc:
+                # The service is computing; repeating would only add load.
+                raise SkydriftError(None, "Timed out", f"{url}: {exc}") from exc
+            if resp.status_code in RETRY_STATUSES and attempt < self.retries:
+                self._sleep(self._wait_s(attempt, resp))
+                continue
+            if resp.status_code >= 400:
+                raise SkydriftError.from_response(resp)
+            return resp
+        raise AssertionError("unreachable")  # pragma: no cover
+
+    def get(self, path: str, **params) -> dict:
+        """GET a JSON answer."""
+        return self.request("GET", path, params=params or None).json()
+
+    def post(self, path: str, body: Mapping[str, Any]) -> dict:
+        """POST a JSON body (NaN sent as null) and return the JSON answer."""
+        data = json.dumps(_clean(dict(body)), allow_nan=False)
+        resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
+        return resp.json()
+
+    def post_batched(
+        self,
+        path: str,
+        body: Mapping[str, Any],
+        *,
+        table: str = "stars",
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST a body whose ``table`` member is split into batches; join the answers."""
+        stars = body[table]
+        n = _count(stars)
+        parts, offsets = [], []
+        for start in range(0, max(n, 1), self.batch_size):
+            stop = min(n, start + self.batch_size)
+            part = dict(body)
+            part[table] = _slice(stars, start, stop)
+            parts.append(self.post(path, part))
+            offsets.append(start)
+            if progress is not None:
+                progress(stop - start)
+        return merge_answers(parts, offsets)
+
+    def post_csv(
+        self,
+        path: str,
+        csv_text: str,
+        params: Mapping[str, Any] | None = None,
+        *,
+        progress: Progress | None = None,
+    ) -> str:
+        """POST a CSV star table (options as query parameters); return the CSV answer.
+
+        The table is sent in batches of ``batch_size`` rows; the answers are joined with the
+        ``index`` column counted from the first star, and line numbers in errors refer to
+        ``csv_text`` itself.
+        """
+        header, rows, lines = _read_csv(csv_text)
+        query = _query(params or {})
+        pieces: list[tuple[list[str], list[list[str]]]] = []
+        for start in range(0, max(len(rows), 1), self.batch_size):
+            chunk = rows[start : start + self.batch_size]
+            buf = io.StringIO()
+            writer = csv.writer(buf, lineterminator="\n")
+            writer.writerow(header)
+            chunk_lines = [lines[0]]  # header
+            writer.writerows(chunk)
+            chunk_lines.extend(lines[1 + start : 1 + start + len(chunk)])
+            try:
+                resp = self.request(
+                    "POST",
+                    path,
+                    params=query,
+                    data=buf.getvalue().encode(),
+                    headers={"Content-Type": "text/csv", "Accept": "text/csv"},
+                )
+            except SkydriftError as exc:
+                exc.errors = [_relocate(e, chunk_lines) for e in exc.errors]
+                raise
+            out_header, out_rows, _ = _read_csv(resp.content.decode("utf-8-sig"))
+            if "index" in out_header and start:
+                k = out_header.index("index")
+                for r in out_rows:
+                    r[k] = str(int(r[k]) + start)
+            pieces.append((out_header, out_rows))
+            if progress is not None:
+                progress(len(chunk))
+        return _join_csv(pieces)
+
+    # ------------------------------------------------------------ endpoints
+
+    def health(self) -> dict:
+        """GET /health: the process is alive."""
+        return self.get("/health")
+
+    def ready(self) -> dict:
+        """GET /ready: tables loaded and settings valid (raises SkydriftError on 503)."""
+        return self.get("/ready")
+
+    def openapi(self) -> dict:
+        """GET /openapi.json: the API description."""
+        return self.get("/openapi.json")
+
+    def propagate(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        target_epochs: Iterable[Epoch] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | None = None,
+        model: str = "standard",
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/propagation: move stars to other epochs.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            ``ra_deg``, ``dec_deg`` (deg), ``pm_ra_cosdec_mas_yr``, ``pm_dec_mas_yr``
+            (mas/yr), optional ``parallax_mas`` (mas), ``radial_velocity_km_s`` (km/s),
+            standard errors and correlations, ``id``.
+        catalogue_epoch : str or float
+            Epoch of the given astrometry ("J2016.0"; a number is a Julian epoch, TDB).
+        target_epochs : list of str or float, optional
+            Epochs to move to. Give this or ``target_range``.
+        target_range : (start, stop, count), optional
+            Evenly spaced epochs, both ends included.
+        model : {"standard", "light_time"}
+        layout : {"records", "columns"}, optional
+            Answer layout; default: the layout of ``stars``.
+        progress : callable, optional
+            Called with the number of stars done after each batch.
+        """
+        body = _targets(
+            {"stars": stars, "catalogue_epoch": catalogue_epoch, "model": model},
+            target_epochs,
+            target_range,
+        )
+        if layout is not None:
+            body["layout"] = layout
+        return self.post_batched("/v1/propagation", body, progress=progress)
+
+    def propagate_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        target_epochs: Iterable[Epoch] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | None = None,
+        model: str = "standard",
+        progress: Progress | None = None,
+    ) -> str:
+        """POST /v1/propagation with a CSV table; the CSV answer (one row per star, epoch)."""
+        params = _targets(
+            {"catalogue_epoch": catalogue_epoch, "model": model}, target_epochs, target_range
+        )
+        return self.post_csv("/v1/propagation", csv_text, params, progress=progress)
+
+    def chart_track(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        start: Epoch,
+        stop: Epoch,
+        ticks: int = 6,
+        image_format: str = "svg",
+        boundaries: bool = True,
+        title: str | None = None,
+    ) -> bytes:
+        """POST /v1/charts/track: the tracks of a few stars across the sky, as SVG or PNG."""
+        body = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "start": start,
+            "stop": stop,
+            "ticks": ticks,
+            "format": image_format,
+            "boundaries": boundaries,
+        }
+        if title is not None:
+            body["title"] = title
+        return self._image("/v1/charts/track", body)
+
+    def chart_field(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        epochs: tuple[Epoch, Epoch],
+        arrow_years: float | None = None,
+        image_format: str = "svg",
+        title: str | None = None,
+    ) -> bytes:
+        """POST /v1/charts/field: a star field at two epochs side by side, motion arrows."""
+        body = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "epochs": list(epochs),
+            "format": image_format,
+        }
+        if arrow_years is not None:
+            body["arrow_years"] = arrow_years
+        if title is not None:
+            body["title"] = title
+        return self._image("/v1/charts/field", body)
+
+    def _image(self, path: str, body: dict) -> bytes:
+        data = json.dumps(_clean(body), allow_nan=False)
+        resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
+        return resp.content
+
+
+def _targets(body: dict, target_epochs, target_range) -> dict:
+    if (target_epochs is None) == (target_range is None):
+        raise ValueError("give exactly one of target_epochs or target_range")
+    if target_epochs is not None:
+        epochs = [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
+        body["target_epochs"] = list(epochs)
+    else:
+        start, stop, count = target_range
+        body["target_range"] = {"start": start, "stop": stop, "count": int(count)}
+    return body
+
+
+def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:
+    """Request options as query parameters: lists repeated, objects with dotted names."""
+    out: list[tuple[str, str]] = []
+    for key, value in params.items():
+        if value is None:
+            continue
+        if isinstance(value, Mapping):
+            out.extend((f"{key}.{k}", str(v)) for k, v in value.items())
+        elif isinstance(value, list | tuple):
+            out.extend((key, str(v)) for v in value)
+        elif isinstance(value, bool):
+            out.append((key, "true" if value else "false"))
+        else:
+            out.append((key, str(value)))
+    return out
+
+
+def _read_csv(text: str) -> tuple[list[str], list[list[str]], list[int]]:
+    """CSV text -> (header, data rows, line numbers of [header, rows...]); blank lines out."""
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header: list[str] | None = None
+    rows: list[list[str]] = []
+    lines: list[int] = []
+    last = 0
+    for row in reader:
+        start, last = last + 1, reader.line_num
+        if not row or (len(row) == 1 and not row[0].strip()):
+            continue
+        if header is None:
+            header = row
+        else:
+            rows.append(row)
+        lines.append(start)
+    if header is None:
+        raise ValueError("the CSV text has no header row")
+    return header, rows, lines
+
+
+def _relocate(error: FieldError, chunk_lines: list[int]) -> FieldError:
+    """'line 3: dec_deg' in a batch -> the same cell's line in the caller's text."""
+    m = _LINE.match(error.field)
+    if not m:
+        return error
+    k = int(m.group(1)) - 1  # the batch is written one row per line, header first
+    if 0 <= k < len(chunk_lines):
+        return FieldError(f"line {chunk_lines[k]}{m.group(2)}", error.message)
+    return error
+
+
+def _join_csv(pieces: list[tuple[list[str], list[list[str]]]]) -> str:
+    """Join CSV answers whose headers may differ (a column only some batches have)."""
+    header: list[str] = list(pieces[0][0])
+    for h, _ in pieces[1:]:
+        for pos, name in enumerate(h):
+            if name not in header:
+                before = h[pos - 1] if pos else None
+                at = header.index(before) + 1 if before in header else len(header)
+                header.insert(at, name)
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\r\n")
+    writer.writerow(header)
+    for h, rows in pieces:
+        if h == header:
+            writer.writerows(rows)
+            continue
+        where = [h.index(name) if name in h else None for name in header]
+        writer.writerows([[r[k] if k is not None else "" for k in where] for r in rows])
+    return buf.getvalue()
