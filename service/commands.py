@@ -79,7 +79,7 @@ def _progress(total: int, args, what: str):
         return None, None
     from tqdm import tqdm
 
-    bar = tqdm(total=total, unit=" stars", desc=what, file=sys.stderr, leave=False)
+    bar = tqdm(total=total, unit=" stars", desc=what, file=sys.stderr)
     return bar, bar.update
 
 
