@@ -480,6 +480,123 @@ class Client:
         )
         return self.post_csv("/v1/propagation", csv_text, params, progress=progress)
 
+    def velocity(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        relative_to_lsr: bool = False,
+        solar_motion_km_s: tuple[float, float, float] | None = None,
+        uncertainty_method: str = "linear",
+        monte_carlo_draws: int | None = None,
+        seed: int | None = None,
+        low_snr_threshold: float | None = None,
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/velocity: transverse, radial, total velocity, U V W, closest approach.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            Astrometry (degrees, mas, mas/yr, km/s) with optional standard errors and
+            correlations, or ``distance_pc`` in place of the parallax.
+        catalogue_epoch : str or float, optional
+            Dates the closest approach.
+        relative_to_lsr : bool
+            Also give U, V, W relative to the local standard of rest.
+        solar_motion_km_s : (U, V, W), optional
+            Sun's motion relative to the LSR, km/s (default: the service's).
+        uncertainty_method : {"linear", "monte_carlo", "auto"}
+        monte_carlo_draws, seed, low_snr_threshold : optional
+            As in the API. With ``seed`` and several batches, each batch draws from the
+            same seed, so answers depend on ``batch_size``.
+        """
+        body = self._velocity_options(
+            catalogue_epoch,
+            relative_to_lsr,
+            solar_motion_km_s,
+            uncertainty_method,
+            monte_carlo_draws,
+            seed,
+            low_snr_threshold,
+        )
+        body["stars"] = stars
+        if layout is not None:
+            body["layout"] = layout
+        return self.post_batched("/v1/velocity", body, progress=progress)
+
+    def velocity_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        relative_to_lsr: bool = False,
+        solar_motion_km_s: tuple[float, float, float] | None = None,
+        uncertainty_method: str = "linear",
+        monte_carlo_draws: int | None = None,
+        seed: int | None = None,
+        low_snr_threshold: float | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """POST /v1/velocity with a CSV table; the CSV answer (one row per star)."""
+        params = self._velocity_options(
+            catalogue_epoch,
+            relative_to_lsr,
+            solar_motion_km_s,
+            uncertainty_method,
+            monte_carlo_draws,
+            seed,
+            low_snr_threshold,
+        )
+        return self.post_csv("/v1/velocity", csv_text, params, progress=progress)
+
+    @staticmethod
+    def _velocity_options(
+        catalogue_epoch,
+        relative_to_lsr,
+        solar_motion_km_s,
+        uncertainty_method,
+        monte_carlo_draws,
+        seed,
+        low_snr_threshold,
+    ) -> dict:
+        body: dict = {"relative_to_lsr": bool(relative_to_lsr)}
+        body["uncertainty_method"] = uncertainty_method
+        optional = {
+            "catalogue_epoch": catalogue_epoch,
+            "monte_carlo_draws": monte_carlo_draws,
+            "seed": seed,
+            "low_snr_threshold": low_snr_threshold,
+        }
+        body.update({k: v for k, v in optional.items() if v is not None})
+        if solar_motion_km_s is not None:
+            u, v, w = solar_motion_km_s
+            body["solar_motion"] = {"u_km_s": u, "v_km_s": v, "w_km_s": w}
+        return body
+
+    def velocity_observables(
+        self,
+        stars: Stars,
+        *,
+        relative_to_lsr: bool = False,
+        solar_motion_km_s: tuple[float, float, float] | None = None,
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/velocity/observables: proper motion and radial velocity from U V W.
+
+        ``stars``: ``ra_deg``, ``dec_deg``, ``u_km_s``, ``v_km_s``, ``w_km_s`` and
+        ``parallax_mas`` or ``distance_pc``.
+        """
+        body: dict = {"stars": stars, "relative_to_lsr": bool(relative_to_lsr)}
+        if solar_motion_km_s is not None:
+            u, v, w = solar_motion_km_s
+            body["solar_motion"] = {"u_km_s": u, "v_km_s": v, "w_km_s": w}
+        if layout is not None:
+            body["layout"] = layout
+        return self.post_batched("/v1/velocity/observables", body, progress=progress)
+
     def chart_track(
         self,
         stars: Stars,

@@ -153,6 +153,29 @@ def cmd_propagate(args) -> int:
     return 0
 
 
+@_run
+def cmd_velocities(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "velocities")
+    with make_client(args) as client:
+        try:
+            text = client.velocity_csv(
+                cat.csv_text,
+                catalogue_epoch=_epoch_of(args, cat),
+                relative_to_lsr=args.lsr or args.solar_motion is not None,
+                solar_motion_km_s=tuple(args.solar_motion) if args.solar_motion else None,
+                uncertainty_method=args.uncertainties,
+                monte_carlo_draws=args.draws,
+                seed=args.seed,
+                progress=update,
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
 def _select(cat: Catalogue, ids: list[str] | None) -> str:
     """The catalogue's CSV restricted to the given ids (all rows if none given)."""
     if not ids:
@@ -318,6 +341,46 @@ def add_commands(sub) -> None:
     p.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(p)
     p.set_defaults(func=cmd_propagate)
+
+    v = sub.add_parser(
+        "velocities",
+        help="velocities of a catalogue's stars: transverse, radial, U V W (CSV out)",
+        description="Compute for every star of a catalogue the transverse, radial and total "
+        "velocity, galactic U, V, W (heliocentric, and relative to the local standard of "
+        "rest with --lsr) with standard errors and correlations, perspective acceleration "
+        "and closest approach to the Sun, and write CSV: one row per star with index, id, "
+        "the quantities under their API names (units in the names; intervals as two "
+        "numbers separated by ';') and flags (';'-separated). A star may give distance_pc "
+        "instead of parallax_mas.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(v)
+    v.add_argument(
+        "--lsr",
+        action="store_true",
+        help="also give U, V, W relative to the local standard of rest",
+    )
+    v.add_argument(
+        "--solar-motion",
+        nargs=3,
+        type=float,
+        metavar=("U", "V", "W"),
+        help="Sun's motion relative to the LSR, km/s (implies --lsr; default: the service's, "
+        "Schoenrich, Binney & Dehnen 2010)",
+    )
+    v.add_argument(
+        "--uncertainties",
+        choices=("linear", "monte_carlo", "auto"),
+        default="linear",
+        help="linear propagation, Monte Carlo draws, or draws only where the parallax is "
+        "noisy (default linear)",
+    )
+    v.add_argument("--draws", type=int, help="Monte Carlo draws per star")
+    v.add_argument("--seed", type=int, help="seed of the Monte Carlo draws")
+    v.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(v)
+    v.set_defaults(func=cmd_velocities)
 
     chart = sub.add_parser(
         "chart",

@@ -145,7 +145,9 @@ _IMAGE_RESPONSES = {
 
 
 @blp.route("/track", methods=["POST"])
-@blp.arguments(TrackChartRequestSchema(), example=load_example("chart_track_request.json"))
+@blp.arguments(
+    TrackChartRequestSchema(), example=load_example("chart_track_request.json"), csv_answer=False
+)
 @blp.doc(**_IMAGE_RESPONSES)
 def track(args):
     """Chart the tracks of stars across the sky.
@@ -191,7 +193,9 @@ def track(args):
 
 
 @blp.route("/field", methods=["POST"])
-@blp.arguments(FieldChartRequestSchema(), example=load_example("chart_field_request.json"))
+@blp.arguments(
+    FieldChartRequestSchema(), example=load_example("chart_field_request.json"), csv_answer=False
+)
 @blp.doc(**_IMAGE_RESPONSES)
 def field(args):
     """Chart a star field at two epochs side by side, with motion arrows.

@@ -63,8 +63,12 @@ class Blueprint(flask_smorest.Blueprint):
                     resp.headers["Content-Type"] = "text/csv; charset=utf-8; header=present"
             return resp
 
-    def arguments(self, schema, *args, **kwargs):
-        """As flask-smorest's, and marks star-table endpoints for CSV in and out."""
+    def arguments(self, schema, *args, csv_answer: bool = True, **kwargs):
+        """As flask-smorest's, and marks star-table endpoints for CSV in and out.
+
+        ``csv_answer=False`` for endpoints whose answer is not a table (images): they take
+        CSV bodies but do not document a CSV answer.
+        """
         decorator = super().arguments(schema, *args, **kwargs)
         instance = schema() if isinstance(schema, type) else schema
         table = csvio.table_field_name(instance)
@@ -73,7 +77,7 @@ class Blueprint(flask_smorest.Blueprint):
 
         def mark(func):
             wrapped = decorator(func)
-            wrapped = self.doc(**_csv_doc(instance, table))(wrapped)
+            wrapped = self.doc(**_csv_doc(instance, table, csv_answer))(wrapped)
             wrapped._skydrift_csv = (table, None)
             return wrapped
 
@@ -104,7 +108,7 @@ def _table_endpoint():
     return mark[0], getattr(view, "_skydrift_nested", set())
 
 
-def _csv_doc(schema, table: str) -> dict:
+def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
     """OpenAPI additions for a CSV-capable endpoint: CSV body, query options, CSV answer."""
     params = []
     for name, fld in schema.fields.items():
@@ -123,7 +127,7 @@ def _csv_doc(schema, table: str) -> dict:
                 "(name.member=value) or JSON.",
             }
         )
-    return {
+    doc = {
         "parameters": params,
         "requestBody": {
             "content": {
@@ -149,6 +153,9 @@ def _csv_doc(schema, table: str) -> dict:
             }
         },
     }
+    if not csv_answer:
+        del doc["responses"]
+    return doc
 
 
 EPOCH_DESCRIPTION = (

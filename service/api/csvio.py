@@ -16,8 +16,9 @@ Response (``Accept: text/csv``)
     of the star in the request, from 0), ``id``, ``epoch_julian_tdb`` and ``epoch_iso_utc``
     (when the answer has epochs), then the endpoint's per-star and per-epoch quantities under
     their JSON names (units in the names; nested objects such as ``uncertainties`` give one
-    column per member and none when null for every star), and last the lists (``flags``),
-    written as names separated by ``;``. Null is an empty cell; numbers are written with
+    column per member and none when null for every star), and last the lists of names
+    (``flags``), separated by ``;``. A short vector per star (an interval) is one cell, its
+    numbers separated by ``;``. Null is an empty cell; numbers are written with
     the shortest representation that reads back to the same double, so a CSV answer holds
     exactly the numbers of the JSON answer. Errors stay ``application/problem+json``.
 """
@@ -201,7 +202,9 @@ def _cell(value) -> str:
     if isinstance(value, float):
         return repr(value)
     if isinstance(value, list):
-        return LIST_SEPARATOR.join(_cell(v) for v in value)
+        if value and all(v is None for v in value):
+            return ""  # an unknown vector is one empty cell
+        return LIST_SEPARATOR.join(_cell(v) for v in value)  # names, or a short vector
     if isinstance(value, dict):
         return orjson.dumps(value).decode()
     return str(value)
@@ -228,8 +231,8 @@ def _flatten_record(rec: dict, nested_names: set) -> tuple[dict, list | None, li
         elif value is None and key in nested_names:
             continue
         else:
-            if isinstance(value, list):
-                lists.append(key)
+            if isinstance(value, list) and all(isinstance(v, str) for v in value):
+                lists.append(key)  # names (flags): last columns
             out[key] = value
     return out, per_epoch, lists
 
@@ -254,18 +257,32 @@ def _rows_from_columns(body: dict):
     cols = body["columns"]
     epochs = body.get("epochs")
     n = next((len(v) for k, v in cols.items() if k in ("flags", "id") and v is not None), None)
+    if n is None:
+        n = body.get("star_count")
+    m = len(epochs) if isinstance(epochs, list) else None
     per_star, per_epoch = {}, {}
     for key, value in cols.items():
         if value is None:
             continue
-        if value and isinstance(value[0], list) and key != "flags":
+        # An array with one row per epoch and one value per star; anything else (a value
+        # or a short list per star) belongs to the star.
+        if (
+            m is not None
+            and key != "flags"
+            and len(value) == m
+            and all(isinstance(v, list) and (n is None or len(v) == n) for v in value)
+        ):
             per_epoch[key] = value
             n = len(value[0]) if n is None else n
         else:
             per_star[key] = value
     n = n or 0
     m = len(next(iter(per_epoch.values()))) if per_epoch else 0
-    lists = ["flags"] if "flags" in per_star else []
+    lists = [
+        k
+        for k, v in per_star.items()
+        if all(isinstance(x, list) and all(isinstance(y, str) for y in x) for x in v)
+    ]
     for i in range(n):
         base = {"index": i}
         base.update({k: v[i] for k, v in per_star.items()})

@@ -232,3 +232,66 @@ def test_openapi_describes_csv(client):
     assert "text/csv" in op["requestBody"]["content"]
     assert "text/csv" in op["responses"]["200"]["content"]
     assert {p["name"] for p in op["parameters"]} >= {"catalogue_epoch", "target_epochs"}
+
+
+# ------------------------------------------------- every star-table endpoint, generically
+
+
+def _table_endpoints(client):
+    """(path, example body) of every POST endpoint that takes CSV, from the OpenAPI document."""
+    doc = client.get("/openapi.json").json
+    out = []
+    for path, item in sorted(doc["paths"].items()):
+        op = item.get("post")
+        if not op or "text/csv" not in op.get("requestBody", {}).get("content", {}):
+            continue
+        example = op["requestBody"]["content"]["application/json"].get("example")
+        if example and "text/csv" in op["responses"]["200"]["content"]:
+            out.append((path, example))
+    return out
+
+
+def _example_as_csv(example):
+    """An example JSON body -> (CSV text, query string) carrying the same request."""
+    from urllib.parse import urlencode
+
+    stars = example["stars"]
+    if isinstance(stars, dict):
+        stars = [dict(zip(stars, row, strict=True)) for row in zip(*stars.values(), strict=True)]
+    names = list(dict.fromkeys(k for s in stars for k in s))
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(names)
+    for s in stars:
+        w.writerow(["" if s.get(k) is None else s[k] for k in names])
+    query = []
+    for key, value in example.items():
+        if key == "stars" or value is None:
+            continue
+        if isinstance(value, dict):
+            query.extend((f"{key}.{k}", str(v)) for k, v in value.items())
+        elif isinstance(value, list):
+            query.extend((key, str(v)) for v in value)
+        elif isinstance(value, bool):
+            query.append((key, "true" if value else "false"))
+        else:
+            query.append((key, str(value)))
+    return buf.getvalue(), "?" + urlencode(query)
+
+
+def test_every_table_endpoint_takes_and_gives_csv(client):
+    endpoints = _table_endpoints(client)
+    assert "/v1/propagation" in [p for p, _ in endpoints]
+    for path, example in endpoints:
+        example = dict(example, layout="records") if "layout" in example else example
+        body, query = _example_as_csv(example)
+        reference = client.post(path, json=example)
+        assert reference.status_code == 200, (path, reference.json)
+        r = client.post(path + query, data=body, content_type="text/csv")
+        assert r.status_code == 200, (path, r.json)
+        assert r.json == reference.json, path
+        out = client.post(path, json=example, headers={"Accept": "text/csv"})
+        assert out.mimetype == "text/csv", path
+        rows = rows_of(out.get_data(as_text=True))
+        assert {int(row["index"]) for row in rows} == set(range(len(reference.json["stars"])))
+        assert [row["id"] for row in rows][:1] == [str(reference.json["stars"][0]["id"])]

@@ -43,7 +43,8 @@ COMMANDS = [path for path, _ in subcommand_parsers(build_parser())]
 
 
 def test_every_command_is_listed():
-    assert {("propagate",), ("chart", "track"), ("chart", "field")} <= set(COMMANDS)
+    expected = {("propagate",), ("velocities",), ("chart", "track"), ("chart", "field")}
+    assert expected <= set(COMMANDS)
 
 
 @pytest.mark.parametrize("path", COMMANDS, ids=[" ".join(p) for p in COMMANDS])
@@ -105,6 +106,16 @@ def test_stdin_and_progress_when_asked(local_run):
     shown = skydrift(*args, "--progress", "--batch-size", "10", stdin=text)
     assert shown.stdout == local_run.stdout
     assert b"30/30" in shown.stderr
+
+
+def test_velocities_local_and_remote_identical(live_service):
+    args = ["velocities", CATALOGUE, "--lsr"]
+    local = skydrift(*args)
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "7")
+    assert local.stdout == remote.stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert len(rows) == 30
+    assert rows[0]["u_lsr_km_s"] != ""
 
 
 def test_bad_row_named_by_line_exit_1(tmp_path):

@@ -146,6 +146,37 @@ def test_not_found_and_bad_epoch(sky):
     assert [e.field for e in info.value.errors] == ["catalogue_epoch"]
 
 
+def test_velocity_methods(live_service, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    with Client(live_service, batch_size=8) as sky:
+        a = sky.velocity(stars, catalogue_epoch="J2016.0", relative_to_lsr=True)
+        direct = sky.post(
+            "/v1/velocity",
+            {"stars": stars, "catalogue_epoch": "J2016.0", "relative_to_lsr": True},
+        )
+        assert a == direct  # four batches joined as if sent at once
+        text = sky.velocity_csv((DEMO / "catalogue.csv").read_text(), relative_to_lsr=True)
+        assert len(text.splitlines()) == 1 + len(stars)
+        s = a["stars"][0]
+        back = sky.velocity_observables(
+            [
+                {
+                    "id": s["id"],
+                    "ra_deg": stars[0]["ra_deg"],
+                    "dec_deg": stars[0]["dec_deg"],
+                    "u_km_s": s["u_km_s"],
+                    "v_km_s": s["v_km_s"],
+                    "w_km_s": s["w_km_s"],
+                    "parallax_mas": stars[0]["parallax_mas"],
+                }
+            ]
+        )
+    # The inverse returns the proper motion that went in (round trip through the service).
+    assert back["stars"][0]["pm_ra_cosdec_mas_yr"] == pytest.approx(
+        stars[0]["pm_ra_cosdec_mas_yr"], abs=1e-6
+    )
+
+
 def test_unreachable_service_after_retries():
     waits = []
     c = Client(f"http://127.0.0.1:{free_port()}", retries=2, sleep=waits.append)
