@@ -666,7 +666,7 @@ def render_field(
                 },
                 zorder=2,
             )
-            arrow.set_gid(f"arrow-{k}-{i}")
+            arrow.arrow_patch.set_gid(f"arrow-{k}-{i}")
         stars = ax.scatter(
             x[known], y[known], s=size[known], color=colour, edgecolors="none", zorder=3
         )
