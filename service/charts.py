@@ -702,7 +702,7 @@ def render_field(
     fig.text(
         0.5,
         0.01,
-        f"arrows: motion over the next {chart.arrow_years:g} years (straight-line model); "
+        f"arrows: motion over the next {chart.arrow_years:,.6g} years (straight-line model); "
         "marker size grows with parallax; open circles: parallax unknown or not positive; "
         "right ascension increases to the left",
         ha="center",
