@@ -44,6 +44,9 @@ __all__ = ["Client", "FieldError", "SkydriftError", "DEFAULT_URL"]
 
 DEFAULT_URL = "http://127.0.0.1:8000"
 
+#: Most stars per boundary-crossing request (the search costs far more per star).
+CROSSING_BATCH_SIZE = 500
+
 #: Answers worth repeating: rate limited, overloaded or briefly unavailable upstream.
 RETRY_STATUSES = (429, 502, 503, 504)
 
@@ -349,13 +352,15 @@ class Client:
         *,
         table: str = "stars",
         progress: Progress | None = None,
+        batch_size: int | None = None,
     ) -> dict:
         """POST a body whose ``table`` member is split into batches; join the answers."""
         stars = body[table]
         n = _count(stars)
+        size = batch_size or self.batch_size
         parts, offsets = [], []
-        for start in range(0, max(n, 1), self.batch_size):
-            stop = min(n, start + self.batch_size)
+        for start in range(0, max(n, 1), size):
+            stop = min(n, start + size)
             part = dict(body)
             part[table] = _slice(stars, start, stop)
             parts.append(self.post(path, part))
@@ -371,6 +376,7 @@ class Client:
         params: Mapping[str, Any] | None = None,
         *,
         progress: Progress | None = None,
+        batch_size: int | None = None,
     ) -> str:
         """POST a CSV star table (options as query parameters); return the CSV answer.
 
@@ -381,8 +387,9 @@ class Client:
         header, rows, lines = _read_csv(csv_text)
         query = _query(params or {})
         pieces: list[tuple[list[str], list[list[str]]]] = []
-        for start in range(0, max(len(rows), 1), self.batch_size):
-            chunk = rows[start : start + self.batch_size]
+        size = batch_size or self.batch_size
+        for start in range(0, max(len(rows), 1), size):
+            chunk = rows[start : start + size]
             buf = io.StringIO()
             writer = csv.writer(buf, lineterminator="\n")
             writer.writerow(header)
@@ -597,6 +604,151 @@ class Client:
             body["layout"] = layout
         return self.post_batched("/v1/velocity/observables", body, progress=progress)
 
+    def constellations(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        epoch: Epoch | None = None,
+        margins: bool = False,
+        near_boundary_arcsec: float | None = None,
+        reduction: str | None = None,
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/constellations/lookup (or /margins): the IAU constellation of each star.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            ``ra_deg``, ``dec_deg`` (ICRS, deg); with ``pm_ra_cosdec_mas_yr``,
+            ``pm_dec_mas_yr`` (and optionally ``parallax_mas``, ``radial_velocity_km_s``)
+            the stars are first moved from ``catalogue_epoch`` to ``epoch``.
+        margins : bool
+            Also the distance to the nearest boundary (arcsec) and the constellation across.
+        near_boundary_arcsec : float, optional
+            Margin under which a star is flagged near_boundary (with ``margins``).
+        reduction : {"fk4", "fk5", "fk5_iau1976"}, optional
+            Reduction to the boundaries' equinox B1875.0 (service default: fk4).
+        """
+        body = self._constellation_options(catalogue_epoch, epoch, near_boundary_arcsec, reduction)
+        body["stars"] = stars
+        if layout is not None:
+            body["layout"] = layout
+        path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
+        return self.post_batched(path, body, progress=progress)
+
+    def constellations_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        epoch: Epoch | None = None,
+        margins: bool = False,
+        near_boundary_arcsec: float | None = None,
+        reduction: str | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """The constellations of a CSV table of stars, as CSV (one row per star)."""
+        params = self._constellation_options(
+            catalogue_epoch, epoch, near_boundary_arcsec, reduction
+        )
+        path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
+        return self.post_csv(path, csv_text, params, progress=progress)
+
+    @staticmethod
+    def _constellation_options(catalogue_epoch, epoch, near_boundary_arcsec, reduction) -> dict:
+        options = {
+            "catalogue_epoch": catalogue_epoch,
+            "epoch": epoch,
+            "near_boundary_arcsec": near_boundary_arcsec,
+            "reduction": reduction,
+        }
+        return {k: v for k, v in options.items() if v is not None}
+
+    def constellation_crossings(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        start: Epoch,
+        end: Epoch,
+        max_step_yr: float | None = None,
+        reduction: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/constellations/crossings: every boundary crossing in a time window.
+
+        The search costs far more per star than the other endpoints, so stars are sent in
+        batches of at most ``CROSSING_BATCH_SIZE``.
+        """
+        body = {"catalogue_epoch": catalogue_epoch, "start": start, "end": end}
+        body.update(
+            {
+                k: v
+                for k, v in (("max_step_yr", max_step_yr), ("reduction", reduction))
+                if v is not None
+            }
+        )
+        body["stars"] = stars
+        return self.post_batched(
+            "/v1/constellations/crossings",
+            body,
+            progress=progress,
+            batch_size=min(self.batch_size, CROSSING_BATCH_SIZE),
+        )
+
+    def constellation_crossings_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        start: Epoch,
+        end: Epoch,
+        max_step_yr: float | None = None,
+        reduction: str | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """Boundary crossings of a CSV table of stars, as CSV (one row per crossing)."""
+        params = {"catalogue_epoch": catalogue_epoch, "start": start, "end": end}
+        params.update({"max_step_yr": max_step_yr, "reduction": reduction})
+        return self.post_csv(
+            "/v1/constellations/crossings",
+            csv_text,
+            params,
+            progress=progress,
+            batch_size=min(self.batch_size, CROSSING_BATCH_SIZE),
+        )
+
+    def constellation_list(self) -> dict:
+        """GET /v1/constellations: the 88 IAU constellations, names and areas."""
+        return self.get("/v1/constellations")
+
+    def constellation_outline(
+        self,
+        abbreviation: str,
+        *,
+        frame: str | None = None,
+        equinox: Epoch | None = None,
+        reduction: str | None = None,
+        tolerance_arcsec: float | None = None,
+    ) -> dict:
+        """GET /v1/constellations/<abbreviation>/outline: the outline as a GeoJSON Feature."""
+        params = _outline_params(frame, equinox, reduction, tolerance_arcsec)
+        return self.get(f"/v1/constellations/{abbreviation}/outline", **params)
+
+    def constellation_outlines(
+        self,
+        *,
+        frame: str | None = None,
+        equinox: Epoch | None = None,
+        reduction: str | None = None,
+        tolerance_arcsec: float | None = None,
+    ) -> dict:
+        """GET /v1/constellations/outlines: all 88 outlines, a GeoJSON FeatureCollection."""
+        params = _outline_params(frame, equinox, reduction, tolerance_arcsec)
+        return self.get("/v1/constellations/outlines", **params)
+
     def chart_track(
         self,
         stars: Stars,
@@ -650,6 +802,16 @@ class Client:
         data = json.dumps(_clean(body), allow_nan=False)
         resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
         return resp.content
+
+
+def _outline_params(frame, equinox, reduction, tolerance_arcsec) -> dict:
+    params = {
+        "frame": frame,
+        "equinox": equinox,
+        "reduction": reduction,
+        "tolerance_arcsec": tolerance_arcsec,
+    }
+    return {k: v for k, v in params.items() if v is not None}
 
 
 def _targets(body: dict, target_epochs, target_range) -> dict:

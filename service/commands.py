@@ -176,6 +176,50 @@ def cmd_velocities(args) -> int:
     return 0
 
 
+@_run
+def cmd_constellations(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "constellations")
+    with make_client(args) as client:
+        try:
+            text = client.constellations_csv(
+                cat.csv_text,
+                catalogue_epoch=_epoch_of(args, cat),
+                epoch=args.epoch,
+                margins=args.margins,
+                near_boundary_arcsec=args.near_boundary_arcsec,
+                reduction=args.reduction,
+                progress=update,
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
+@_run
+def cmd_crossings(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "crossings")
+    with make_client(args) as client:
+        try:
+            text = client.constellation_crossings_csv(
+                cat.csv_text,
+                catalogue_epoch=_epoch_of(args, cat),
+                start=args.start,
+                end=args.end,
+                max_step_yr=args.max_step_yr,
+                reduction=args.reduction,
+                progress=update,
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
 def _select(cat: Catalogue, ids: list[str] | None) -> str:
     """The catalogue's CSV restricted to the given ids (all rows if none given)."""
     if not ids:
@@ -381,6 +425,73 @@ def add_commands(sub) -> None:
     v.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(v)
     v.set_defaults(func=cmd_velocities)
+
+    k = sub.add_parser(
+        "constellations",
+        help="IAU constellation of each star, with margins to the boundary (CSV out)",
+        description="Find the IAU constellation of every star of a catalogue at an epoch "
+        "(stars with a proper motion are first moved there) and, with --margins, its "
+        "distance to the nearest boundary and the constellation across it. Writes CSV: one "
+        "row per star with index, id, epoch_julian_tdb and epoch_iso_utc, the "
+        "constellation (IAU abbreviation) and name, the answers of both reductions, "
+        "margin_arcsec and across (with --margins), the position at B1875.0, and flags.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(k)
+    k.add_argument(
+        "--epoch",
+        metavar="EPOCH",
+        help="epoch of the membership (default: the catalogue epoch)",
+    )
+    k.add_argument(
+        "--margins",
+        action="store_true",
+        help="also the distance to the nearest boundary, arcsec, and the constellation across",
+    )
+    k.add_argument(
+        "--near-boundary-arcsec",
+        type=float,
+        metavar="ARCSEC",
+        help="flag stars closer than this to a boundary (with --margins; default 1)",
+    )
+    k.add_argument(
+        "--reduction",
+        choices=("fk4", "fk5", "fk5_iau1976"),
+        help="reduction to the boundaries' equinox B1875.0 (default fk4)",
+    )
+    k.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(k)
+    k.set_defaults(func=cmd_constellations)
+
+    x = sub.add_parser(
+        "crossings",
+        help="boundary crossings of moving stars in a time window (CSV out)",
+        description="Find every IAU constellation boundary crossing of the stars of a "
+        "catalogue between START and END (straight-line space motion). Writes CSV: one row "
+        "per crossing (a star without any gets one row) with index, id, the constellations "
+        "at the start and end of the window, epoch_julian_tdb and epoch_iso_utc of the "
+        "crossing, from_constellation, to_constellation, and flags.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(x)
+    x.add_argument("--start", required=True, metavar="EPOCH", help="start of the window")
+    x.add_argument("--end", required=True, metavar="EPOCH", help="end of the window")
+    x.add_argument(
+        "--max-step-yr",
+        type=float,
+        metavar="YEARS",
+        help="largest search step, years (default: window / 100; no crossing is ever stepped over)",
+    )
+    x.add_argument(
+        "--reduction",
+        choices=("fk4", "fk5", "fk5_iau1976"),
+        help="reduction to the boundaries' equinox B1875.0 (default fk4)",
+    )
+    x.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(x)
+    x.set_defaults(func=cmd_crossings)
 
     chart = sub.add_parser(
         "chart",

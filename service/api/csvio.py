@@ -12,9 +12,11 @@ Request (``Content-Type: text/csv``)
     (the header is line 1): ``line 7: dec_deg`` / ``must be between -90 and 90``.
 
 Response (``Accept: text/csv``)
-    One row per star and epoch, the header row first. Columns, in order: ``index`` (position
+    One row per star and epoch (or per star and event, such as a boundary crossing; a star
+    without any gets one row), the header row first. Columns, in order: ``index`` (position
     of the star in the request, from 0), ``id``, ``epoch_julian_tdb`` and ``epoch_iso_utc``
-    (when the answer has epochs), then the endpoint's per-star and per-epoch quantities under
+    (when the answer has epochs; any other epoch object ``x`` gives ``x_julian_tdb`` and
+    ``x_iso_utc``), then the endpoint's per-star and per-epoch quantities under
     their JSON names (units in the names; nested objects such as ``uncertainties`` give one
     column per member and none when null for every star), and last the lists of names
     (``flags``), separated by ``;``. A short vector per star (an interval) is one cell, its
@@ -211,20 +213,42 @@ def _cell(value) -> str:
 
 
 def _epoch_columns(epochs, k) -> dict:
-    if epochs is not None and k < len(epochs) and isinstance(epochs[k], dict):
-        e = epochs[k]
-        return {"epoch_julian_tdb": e.get("julian_epoch_tdb"), "epoch_iso_utc": e.get("iso_utc")}
-    return {"epoch_index": k}
+    if epochs is not None and k < len(epochs) and _is_epoch(epochs[k]):
+        return _epoch_cells("epoch", epochs[k])
+    return {}
 
 
-def _flatten_record(rec: dict, nested_names: set) -> tuple[dict, list | None, list]:
-    """One star record -> (scalar cells, per-epoch list or None, list-valued keys)."""
+def _is_epoch(value) -> bool:
+    return isinstance(value, dict) and "julian_epoch_tdb" in value
+
+
+def _epoch_cells(key: str, value: dict) -> dict:
+    """An epoch object -> <key>_julian_tdb and <key>_iso_utc cells."""
+    return {
+        f"{key}_julian_tdb": value.get("julian_epoch_tdb"),
+        f"{key}_iso_utc": value.get("iso_utc"),
+    }
+
+
+def _flatten_record(
+    rec: dict, nested_names: set, object_lists: set = frozenset()
+) -> tuple[dict, list | None, list]:
+    """One star record -> (scalar cells, per-epoch list or None, list-valued keys).
+
+    A list of objects (per epoch, or per event such as a boundary crossing) gives one row
+    per object; an empty one gives the star one row without them. An epoch object gives
+    ``<key>_julian_tdb`` and ``<key>_iso_utc``; other objects give one cell per member.
+    """
     out: dict = {}
     per_epoch = None
     lists = []
     for key, value in rec.items():
         if isinstance(value, list) and value and all(isinstance(v, dict) for v in value):
             per_epoch = value
+        elif isinstance(value, list) and not value and key in object_lists:
+            continue
+        elif _is_epoch(value):
+            out.update(_epoch_cells(key, value))
         elif isinstance(value, dict):
             for inner, v in value.items():
                 out[inner if inner not in rec else f"{key}.{inner}"] = v
@@ -239,18 +263,31 @@ def _flatten_record(rec: dict, nested_names: set) -> tuple[dict, list | None, li
 
 def _rows_from_records(body: dict, nested_names: set):
     epochs = body.get("epochs")
+    common = _epoch_cells("epoch", body["epoch"]) if _is_epoch(body.get("epoch")) else {}
+    object_lists = {
+        k
+        for rec in body["stars"]
+        for k, v in rec.items()
+        if isinstance(v, list) and v and all(isinstance(x, dict) for x in v)
+    }
     for rec in body["stars"]:
-        base, per_epoch, lists = _flatten_record(rec, nested_names)
+        base, per_epoch, lists = _flatten_record(rec, nested_names, object_lists)
         if per_epoch is None:
-            yield base, lists
+            yield {**_lead(base), **common, **base}, lists
             continue
         for k, entry in enumerate(per_epoch):
             row = {key: base[key] for key in ("index", "id") if key in base}
-            row.update(_epoch_columns(epochs, k))
+            if isinstance(epochs, list) and len(epochs) == len(per_epoch):
+                row.update(_epoch_columns(epochs, k))
+            row.update(common)
             flat, _, more = _flatten_record(entry, nested_names)
             row.update(flat)
             row.update({key: v for key, v in base.items() if key not in row})
             yield row, lists + more
+
+
+def _lead(base: dict) -> dict:
+    return {k: base[k] for k in ("index", "id") if k in base}
 
 
 def _rows_from_columns(body: dict):
@@ -283,11 +320,12 @@ def _rows_from_columns(body: dict):
         for k, v in per_star.items()
         if all(isinstance(x, list) and all(isinstance(y, str) for y in x) for x in v)
     ]
+    common = _epoch_cells("epoch", body["epoch"]) if _is_epoch(body.get("epoch")) else {}
     for i in range(n):
         base = {"index": i}
         base.update({k: v[i] for k, v in per_star.items()})
         if not per_epoch:
-            yield base, lists
+            yield {**_lead(base), **common, **base}, lists
             continue
         for k in range(m):
             row = {"index": i, "id": base.get("id")}
