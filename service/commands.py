@@ -15,6 +15,7 @@ import csv
 import io
 import json
 import pathlib
+import re
 import sys
 
 from .client import Client, SkydriftError, _read_csv, _relocate
@@ -138,13 +139,17 @@ def cmd_propagate(args) -> int:
     bar, update = _progress(cat.rows, args, "propagating")
     with make_client(args) as client:
         try:
-            text = client.propagate_csv(
+            text = _tolerant(
+                args,
                 cat.csv_text,
-                catalogue_epoch=_epoch_of(args, cat),
-                target_epochs=args.epoch or None,
-                target_range=tuple(args.range) if args.range else None,
-                model=args.model,
-                progress=update,
+                lambda body: client.propagate_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    target_epochs=args.epoch or None,
+                    target_range=tuple(args.range) if args.range else None,
+                    model=args.model,
+                    progress=update,
+                ),
             )
         finally:
             if bar is not None:
@@ -159,15 +164,19 @@ def cmd_velocities(args) -> int:
     bar, update = _progress(cat.rows, args, "velocities")
     with make_client(args) as client:
         try:
-            text = client.velocity_csv(
+            text = _tolerant(
+                args,
                 cat.csv_text,
-                catalogue_epoch=_epoch_of(args, cat),
-                relative_to_lsr=args.lsr or args.solar_motion is not None,
-                solar_motion_km_s=tuple(args.solar_motion) if args.solar_motion else None,
-                uncertainty_method=args.uncertainties,
-                monte_carlo_draws=args.draws,
-                seed=args.seed,
-                progress=update,
+                lambda body: client.velocity_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    relative_to_lsr=args.lsr or args.solar_motion is not None,
+                    solar_motion_km_s=tuple(args.solar_motion) if args.solar_motion else None,
+                    uncertainty_method=args.uncertainties,
+                    monte_carlo_draws=args.draws,
+                    seed=args.seed,
+                    progress=update,
+                ),
             )
         finally:
             if bar is not None:
@@ -182,14 +191,18 @@ def cmd_constellations(args) -> int:
     bar, update = _progress(cat.rows, args, "constellations")
     with make_client(args) as client:
         try:
-            text = client.constellations_csv(
+            text = _tolerant(
+                args,
                 cat.csv_text,
-                catalogue_epoch=_epoch_of(args, cat),
-                epoch=args.epoch,
-                margins=args.margins,
-                near_boundary_arcsec=args.near_boundary_arcsec,
-                reduction=args.reduction,
-                progress=update,
+                lambda body: client.constellations_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    epoch=args.epoch,
+                    margins=args.margins,
+                    near_boundary_arcsec=args.near_boundary_arcsec,
+                    reduction=args.reduction,
+                    progress=update,
+                ),
             )
         finally:
             if bar is not None:
@@ -204,20 +217,59 @@ def cmd_crossings(args) -> int:
     bar, update = _progress(cat.rows, args, "crossings")
     with make_client(args) as client:
         try:
-            text = client.constellation_crossings_csv(
+            text = _tolerant(
+                args,
                 cat.csv_text,
-                catalogue_epoch=_epoch_of(args, cat),
-                start=args.start,
-                end=args.end,
-                max_step_yr=args.max_step_yr,
-                reduction=args.reduction,
-                progress=update,
+                lambda body: client.constellation_crossings_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    start=args.start,
+                    end=args.end,
+                    max_step_yr=args.max_step_yr,
+                    reduction=args.reduction,
+                    progress=update,
+                ),
             )
         finally:
             if bar is not None:
                 bar.close()
     _write_text(text, args.output)
     return 0
+
+
+def _unknown_columns(exc: SkydriftError) -> list[str]:
+    """Header columns an endpoint refused as unknown, if that was the only complaint."""
+    names = []
+    for e in exc.errors:
+        m = re.match(r"^line \d+: (.+)$", e.field)
+        if not (m and e.message.startswith("unknown field")):
+            return []
+        names.append(m.group(1))
+    return names
+
+
+def _drop_columns(csv_text: str, names: list[str]) -> str:
+    header, rows, _lines = _read_csv(csv_text)
+    keep = [k for k, h in enumerate(header) if h not in names]
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow([header[k] for k in keep])
+    writer.writerows([r[k] for k in keep] for r in rows)
+    return buf.getvalue()
+
+
+def _tolerant(args, csv_text: str, call):
+    """Run ``call(csv_text)``; with --drop-unknown-columns, drop the columns the endpoint
+    does not take (saying which on standard error) and run it again."""
+    try:
+        return call(csv_text)
+    except SkydriftError as exc:
+        unknown = _unknown_columns(exc) if args.drop_unknown_columns else []
+        if not unknown:
+            raise
+    if not args.quiet:
+        print(f"skydrift: columns not used by this command: {', '.join(unknown)}", file=sys.stderr)
+    return call(_drop_columns(csv_text, unknown))
 
 
 def _select(cat: Catalogue, ids: list[str] | None) -> str:
@@ -278,7 +330,11 @@ def cmd_chart_track(args) -> int:
         "title": args.title,
     }
     with make_client(args) as client:
-        data = _post_image(client, "/v1/charts/track", _select(cat, args.star), params)
+        data = _tolerant(
+            args,
+            _select(cat, args.star),
+            lambda body: _post_image(client, "/v1/charts/track", body, params),
+        )
     _write_bytes(data, args.output)
     return 0
 
@@ -294,7 +350,11 @@ def cmd_chart_field(args) -> int:
         "title": args.title,
     }
     with make_client(args) as client:
-        data = _post_image(client, "/v1/charts/field", cat.csv_text, params)
+        data = _tolerant(
+            args,
+            cat.csv_text,
+            lambda body: _post_image(client, "/v1/charts/field", body, params),
+        )
     _write_bytes(data, args.output)
     return 0
 
@@ -339,6 +399,13 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
 
 def _catalogue_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("catalogue", help=CATALOGUE_HELP)
+    p.add_argument(
+        "--drop-unknown-columns",
+        action="store_true",
+        help="leave out catalogue columns this command does not take (named on standard "
+        "error) instead of stopping; without it an unknown column is an error, so that a "
+        "misspelt column name is never ignored",
+    )
     p.add_argument(
         "--catalogue-epoch",
         metavar="EPOCH",

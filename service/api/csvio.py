@@ -245,7 +245,7 @@ def _flatten_record(
     for key, value in rec.items():
         if isinstance(value, list) and value and all(isinstance(v, dict) for v in value):
             per_epoch = value
-        elif isinstance(value, list) and not value and key in object_lists:
+        elif isinstance(value, list) and not value and (key in object_lists or key in nested_names):
             continue
         elif _is_epoch(value):
             out.update(_epoch_cells(key, value))
@@ -372,7 +372,8 @@ def body_to_csv(body: dict, nested_names: set | None = None) -> str:
 
 
 def nested_field_names(schema) -> set:
-    """Names of object-valued (Dict or single Nested) fields anywhere in a response schema."""
+    """Names of object-valued fields (Dict, Nested, lists of Nested) anywhere in a response
+    schema: a null or empty value of these gives no column."""
     import marshmallow as ma
 
     names: set = set()
@@ -385,10 +386,8 @@ def nested_field_names(schema) -> set:
         for name, fld in s.fields.items():
             inner = fld.inner if isinstance(fld, ma.fields.List) else fld
             if isinstance(inner, ma.fields.Nested):
-                target = inner.schema
-                if not inner.many and fld is inner:
-                    names.add(name)
-                walk(target)
+                names.add(name)
+                walk(inner.schema)
             elif isinstance(fld, ma.fields.Dict):
                 names.add(name)
 
