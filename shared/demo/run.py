@@ -143,26 +143,47 @@ def _num(x, fmt="{:.3f}") -> str:
     return "-" if x is None else fmt.format(x)
 
 
+ASTROMETRY = (
+    "id",
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
+
+
 def constellations(sky: Client, catalogue: dict, paths: dict) -> None:
     heading("Constellations tonight, margins to the boundary, and a future crossing")
-    if not any(p.startswith("/v1/constellations") for p in paths):
+    if "/v1/constellations/margins" not in paths:
         print("(this service has no constellation endpoints yet; skipped)")
         return
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in catalogue["stars"]]
     answer = sky.constellations(
-        catalogue["stars"], catalogue_epoch=catalogue["catalogue_epoch"], epoch=TONIGHT
+        stars, catalogue_epoch=catalogue["catalogue_epoch"], epoch=TONIGHT, margins=True
     )
+    head = f"{'star':9} {'in':4} {'margin_deg':>10} {'across':6}  flags"
+    print(head)
+    print("-" * len(head))
     for res in answer["stars"]:
+        margin = res.get("margin_arcsec")
         print(
-            f"{res['id']:9} {res.get('abbreviation', '?'):4} "
-            f"margin {_num(res.get('margin_arcsec'), '{:.0f}'):>8} arcsec  "
-            f"{', '.join(res.get('flags', []))}"
+            f"{res['id']:9} {res['constellation']:4} "
+            f"{_num(None if margin is None else margin / 3600.0, '{:.3f}'):>10} "
+            f"{res.get('across') or '-':6}  {', '.join(res.get('flags', []))}"
         )
-    star = next(s for s in catalogue["stars"] if s["id"] == CROSSING_STAR)
-    crossing = sky.constellation_crossings(
-        [star], catalogue_epoch=catalogue["catalogue_epoch"], start="J2016.0", stop="J12016.0"
+    star = next(s for s in stars if s["id"] == CROSSING_STAR)
+    found = sky.constellation_crossings(
+        [star], catalogue_epoch=catalogue["catalogue_epoch"], start="J2016.0", end="J12016.0"
     )
-    for c in crossing.get("crossings", []):
-        print(f"\n{CROSSING_STAR} crosses a boundary: {json.dumps(c)}")
+    for res in found["stars"]:
+        for c in res["crossings"]:
+            e = c["epoch"]
+            print(
+                f"\n{CROSSING_STAR} crosses from {c['from_constellation']} into "
+                f"{c['to_constellation']} at J{e['julian_epoch_tdb']:.1f} ({e['iso_utc']})"
+            )
 
 
 def velocities(sky: Client, catalogue: dict, paths: dict) -> None:

@@ -43,7 +43,8 @@ COMMANDS = [path for path, _ in subcommand_parsers(build_parser())]
 
 
 def test_every_command_is_listed():
-    expected = {("propagate",), ("velocities",), ("chart", "track"), ("chart", "field")}
+    expected = {("propagate",), ("velocities",), ("constellations",), ("crossings",),
+                ("chart", "track"), ("chart", "field")}  # fmt: skip
     assert expected <= set(COMMANDS)
 
 
@@ -116,6 +117,38 @@ def test_velocities_local_and_remote_identical(live_service):
     rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
     assert len(rows) == 30
     assert rows[0]["u_lsr_km_s"] != ""
+
+
+def test_constellations_local_and_remote_identical(live_service):
+    args = ["constellations", CATALOGUE, "--epoch", "J2026.0", "--margins"]
+    strict = skydrift(*args, check=False)
+    assert strict.returncode == 1  # the demo CSV has error columns this command does not take
+    assert "line 1: ra_error_mas: unknown field" in strict.stderr.decode()
+    args.append("--drop-unknown-columns")
+    local = skydrift(*args)
+    assert b"ra_error_mas" in local.stderr  # the columns left out are named
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "7", "--quiet")
+    assert local.stdout == remote.stdout
+    assert remote.stderr == b""
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert [r["constellation"] for r in rows][16] == "Tau"
+
+
+def test_crossings_one_row_per_crossing(live_service, tmp_path):
+    json_cat = str(DEMO / "catalogue.json")
+    args = ["crossings", json_cat, "--start", "J2016", "--end", "J8016",
+            "--drop-unknown-columns", "-q"]  # fmt: skip
+    local = skydrift(*args)
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "5")
+    assert local.stdout == remote.stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    crossing = [r for r in rows if r["from_constellation"]]
+    assert [(r["id"], r["from_constellation"], r["to_constellation"]) for r in crossing][:1] == [
+        ("KRC 0017", "Tau", "Ari")
+    ]
+    # One row per star, a star with one crossing in the window included (no star has two).
+    assert len(rows) == 30
+    assert [r["id"] for r in crossing] == ["KRC 0017", "KRC 0018"]
 
 
 def test_bad_row_named_by_line_exit_1(tmp_path):

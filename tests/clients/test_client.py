@@ -177,6 +177,37 @@ def test_velocity_methods(live_service, demo_catalogue):
     )
 
 
+ASTROMETRY = ("id", "ra_deg", "dec_deg", "parallax_mas", "pm_ra_cosdec_mas_yr",
+              "pm_dec_mas_yr", "radial_velocity_km_s")  # fmt: skip
+
+
+def test_constellation_methods(live_service, demo_catalogue):
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
+    with Client(live_service, batch_size=8) as sky:
+        whole = sky.post(
+            "/v1/constellations/margins",
+            {"stars": stars, "catalogue_epoch": "J2016.0", "epoch": "J2026.0"},
+        )
+        batched = sky.constellations(
+            stars, catalogue_epoch="J2016.0", epoch="J2026.0", margins=True
+        )
+        assert batched == whole
+        plain = sky.constellations(stars, catalogue_epoch="J2016.0", epoch="J2026.0")
+        assert [s["constellation"] for s in plain["stars"]] == [
+            s["constellation"] for s in whole["stars"]
+        ]
+        found = sky.constellation_crossings(
+            stars[16:18], catalogue_epoch="J2016.0", start="J2016.0", end="J8016.0"
+        )
+        first = found["stars"][0]["crossings"][0]
+        assert (first["from_constellation"], first["to_constellation"]) == ("Tau", "Ari")
+        assert found["stars"][1]["index"] == 1
+        assert len(sky.constellation_list()["constellations"]) == 88
+        outline = sky.constellation_outline("Ari")
+        assert outline["properties"]["abbreviation"] == "Ari"
+        assert len(sky.constellation_outlines(tolerance_arcsec=10.0)["features"]) == 88
+
+
 def test_unreachable_service_after_retries():
     waits = []
     c = Client(f"http://127.0.0.1:{free_port()}", retries=2, sleep=waits.append)
