@@ -749,6 +749,81 @@ class Client:
         params = _outline_params(frame, equinox, reduction, tolerance_arcsec)
         return self.get("/v1/constellations/outlines", **params)
 
+    def frames(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        from_frame: str | Mapping[str, Any],
+        to_frame: str | Mapping[str, Any] = "icrs",
+        target_epochs: Iterable[Epoch] | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/frames: position, motion, parallax, radial velocity in another frame.
+
+        Frames are a name ("icrs", "fk5", "fk4", "galactic", "ecliptic") or an object
+        ``{"name": "fk4", "equinox": "B1950.0"}``. With ``target_epochs`` the stars are also
+        moved (straight-line model) to those epochs.
+        """
+        body: dict = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "from_frame": _frame(from_frame),
+            "to_frame": _frame(to_frame),
+        }
+        if target_epochs is not None:
+            epochs = (
+                [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
+            )
+            body["target_epochs"] = list(epochs)
+        return self.post_batched("/v1/frames", body, progress=progress)
+
+    def observed(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        instants: Iterable[Epoch] | Epoch,
+        site: str | Mapping[str, float],
+        frame: str | Mapping[str, Any] | None = None,
+        atmosphere: Mapping[str, float | None] | None = None,
+        horizon_limit_deg: float | None = None,
+        sun_avoidance_deg: float | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/observed: observed places at a site, with advisory Sun/horizon figures.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            Astrometry at ``catalogue_epoch`` (in ``frame``, default ICRS).
+        instants : epoch or list of epochs
+            Instants of observation (ISO 8601 UTC or any epoch form).
+        site : str or dict
+            A configured site name (the demo's "kestrel-ridge") or ``{"latitude_deg",
+            "longitude_deg", "height_m"}``.
+        atmosphere : dict, optional
+            ``pressure_hpa``, ``temperature_c``, ``relative_humidity``, ``wavelength_um``.
+        horizon_limit_deg, sun_avoidance_deg : float, optional
+            Limits for the advisory flags, degrees. The figures are advisory: the facility's
+            own interlocks and safety rules decide where a telescope may point.
+        """
+        when = [instants] if isinstance(instants, str | float | int) else list(instants)
+        body: dict = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "instants": when,
+            "site": site,
+        }
+        optional = {
+            "frame": None if frame is None else _frame(frame),
+            "atmosphere": atmosphere,
+            "horizon_limit_deg": horizon_limit_deg,
+            "sun_avoidance_deg": sun_avoidance_deg,
+        }
+        body.update({k: v for k, v in optional.items() if v is not None})
+        return self.post_batched("/v1/observed", body, progress=progress)
+
     def chart_track(
         self,
         stars: Stars,
@@ -802,6 +877,10 @@ class Client:
         data = json.dumps(_clean(body), allow_nan=False)
         resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
         return resp.content
+
+
+def _frame(frame) -> dict:
+    return {"name": frame} if isinstance(frame, str) else dict(frame)
 
 
 def _outline_params(frame, equinox, reduction, tolerance_arcsec) -> dict:

@@ -261,8 +261,24 @@ def _flatten_record(
     return out, per_epoch, lists
 
 
-def _rows_from_records(body: dict, nested_names: set):
+def _answer_epochs(body: dict) -> list | None:
+    """The answer's epochs, in order: an ``epochs`` list, or a list of objects each with an
+    ``epoch`` (such as the instants of an observed-place answer)."""
     epochs = body.get("epochs")
+    if isinstance(epochs, list) and all(_is_epoch(e) for e in epochs):
+        return epochs
+    for value in body.values():
+        if (
+            isinstance(value, list)
+            and value
+            and all(isinstance(v, dict) and _is_epoch(v.get("epoch")) for v in value)
+        ):
+            return [v["epoch"] for v in value]
+    return None
+
+
+def _rows_from_records(body: dict, nested_names: set):
+    epochs = _answer_epochs(body)
     common = _epoch_cells("epoch", body["epoch"]) if _is_epoch(body.get("epoch")) else {}
     object_lists = {
         k
@@ -292,7 +308,7 @@ def _lead(base: dict) -> dict:
 
 def _rows_from_columns(body: dict):
     cols = body["columns"]
-    epochs = body.get("epochs")
+    epochs = _answer_epochs(body)
     n = next((len(v) for k, v in cols.items() if k in ("flags", "id") and v is not None), None)
     if n is None:
         n = body.get("star_count")

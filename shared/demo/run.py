@@ -83,6 +83,17 @@ def start_service() -> tuple[str, subprocess.Popen | None]:
     raise SystemExit("the service did not become ready")
 
 
+ASTROMETRY = (
+    "id",
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
+
+
 def heading(text: str) -> None:
     print(f"\n== {text}\n")
 
@@ -119,39 +130,30 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
     if "/v1/observed" not in paths:
         print("(this service has no observed-place endpoint yet; skipped)")
         return
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in catalogue["stars"]]
     answer = sky.observed(
-        catalogue["stars"],
-        catalogue_epoch=catalogue["catalogue_epoch"],
-        epoch=TONIGHT,
-        site=SITE,
+        stars, catalogue_epoch=catalogue["catalogue_epoch"], instants=[TONIGHT], site=SITE
     )
-    print(
-        "Safety figures are advisory: the observatory's own interlocks and rules decide "
-        "where the telescope may point.\n"
+    print(answer.get("advisory", ""))
+    sun = answer["instants"][0].get("sun") or {}
+    print(f"Sun altitude {_num(sun.get('altitude_deg'), '{:.1f}')} deg\n")
+    head = (
+        f"{'star':9} {'azimuth_deg':>11} {'altitude_deg':>12} {'airmass':>8} "
+        f"{'sun_sep_deg':>11}  flags"
     )
-    head = f"{'star':9} {'azimuth_deg':>11} {'altitude_deg':>12} {'sun_sep_deg':>11}  flags"
     print(head)
     print("-" * len(head))
     for res in answer["stars"]:
+        at = res["at_instants"][0]
         print(
-            f"{res['id']:9} {_num(res.get('azimuth_deg')):>11} {_num(res.get('altitude_deg')):>12} "
-            f"{_num(res.get('sun_separation_deg')):>11}  {', '.join(res.get('flags', []))}"
+            f"{res['id']:9} {_num(at.get('azimuth_deg')):>11} {_num(at.get('altitude_deg')):>12} "
+            f"{_num(at.get('airmass')):>8} {_num(at.get('sun_separation_deg'), '{:.1f}'):>11}  "
+            f"{', '.join(at.get('flags', []))}"
         )
 
 
 def _num(x, fmt="{:.3f}") -> str:
     return "-" if x is None else fmt.format(x)
-
-
-ASTROMETRY = (
-    "id",
-    "ra_deg",
-    "dec_deg",
-    "parallax_mas",
-    "pm_ra_cosdec_mas_yr",
-    "pm_dec_mas_yr",
-    "radial_velocity_km_s",
-)
 
 
 def constellations(sky: Client, catalogue: dict, paths: dict) -> None:

@@ -208,6 +208,36 @@ def test_constellation_methods(live_service, demo_catalogue):
         assert len(sky.constellation_outlines(tolerance_arcsec=10.0)["features"]) == 88
 
 
+def test_frames_and_observed_methods(live_service, demo_catalogue):
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
+    with Client(live_service, batch_size=10) as sky:
+        # ICRS -> galactic -> ICRS returns the input (round trip through the service).
+        gal = sky.frames(
+            stars[:3], catalogue_epoch="J2016.0", from_frame="icrs", to_frame="galactic"
+        )
+        back_in = [
+            dict(s, **{k: a[k] for k in ("ra_deg", "dec_deg")})
+            for s, a in zip(stars[:3], (x["at_epochs"][0] for x in gal["stars"]), strict=True)
+        ]
+        # (pm and parallax of the galactic answer are carried too)
+        for s, x in zip(back_in, gal["stars"], strict=True):
+            s.update({k: x["at_epochs"][0][k] for k in ("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr")})
+        back = sky.frames(
+            back_in, catalogue_epoch="J2016.0", from_frame={"name": "galactic"}, to_frame="icrs"
+        )
+        for s, x in zip(stars[:3], back["stars"], strict=True):
+            assert x["at_epochs"][0]["dec_deg"] == pytest.approx(s["dec_deg"], abs=1e-9)  # deg
+        body = {"stars": stars, "catalogue_epoch": "J2016.0",
+                "instants": ["2026-12-02T22:00:00Z"], "site": "kestrel-ridge"}  # fmt: skip
+        whole = sky.post("/v1/observed", body)
+        batched = sky.observed(
+            stars, catalogue_epoch="J2016.0", instants="2026-12-02T22:00:00Z",
+            site="kestrel-ridge",
+        )  # fmt: skip
+    assert batched == whole  # three batches joined as if sent at once
+    assert "advisory" in batched["advisory"].lower()
+
+
 def test_unreachable_service_after_retries():
     waits = []
     c = Client(f"http://127.0.0.1:{free_port()}", retries=2, sleep=waits.append)
