@@ -254,8 +254,10 @@ class Client:
         ``max_retry_after_s``).
     batch_size : int
         Most stars sent in one request; larger inputs are split and the answers joined.
+    token : str, optional
+        Bearer token for a service that requires one (sent as ``Authorization: Bearer``).
     headers : dict, optional
-        Extra headers for every request (e.g. ``Authorization``).
+        Extra headers for every request.
     session : requests.Session, optional
         A session to use (default: a new one, closed by :meth:`close`).
     sleep : callable, optional
@@ -272,6 +274,7 @@ class Client:
         max_backoff_s: float = 30.0,
         max_retry_after_s: float = 120.0,
         batch_size: int = 100_000,
+        token: str | None = None,
         headers: Mapping[str, str] | None = None,
         session: requests.Session | None = None,
         sleep: Callable[[float], None] = time.sleep,
@@ -288,6 +291,8 @@ class Client:
         self._own_session = session is None
         self.session = session or requests.Session()
         self.session.headers.update({"User-Agent": "skydrift-client"})
+        if token:
+            self.session.headers["Authorization"] = f"Bearer {token}"
         self.session.headers.update(dict(headers or {}))
         self._sleep = sleep
 

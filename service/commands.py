@@ -14,6 +14,7 @@ import argparse
 import csv
 import io
 import json
+import os
 import pathlib
 import re
 import sys
@@ -33,7 +34,8 @@ CATALOGUE_HELP = (
 EPILOG = """\
 Epochs: 2016.0 or J2016.0 (Julian epoch, TDB), B1950.0, JD2451545.0, MJD51544.5,
 2026-12-02T22:00:00Z (UTC), now. Without --url the work is done in this process; with
---url it is sent to that service. The output is the same either way.
+--url it is sent to that service (with the bearer token in SKYDRIFT_TOKEN, if the service
+requires one). The output is the same either way.
 Exit status: 0 done, 1 the service refused the input or failed (details on standard error),
 2 bad command line.
 """
@@ -91,7 +93,7 @@ def make_client(args) -> Client:
         "retries": args.retries,
     }
     if args.url:
-        return Client(args.url, **options)
+        return Client(args.url, token=os.environ.get("SKYDRIFT_TOKEN") or None, **options)
     from .local import local_client
 
     return local_client(**options)
