@@ -917,7 +917,7 @@ def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:
         if value is None:
             continue
         if isinstance(value, Mapping):
-            out.extend((f"{key}.{k}", str(v)) for k, v in value.items())
+            out.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
         elif isinstance(value, list | tuple):
             out.extend((key, str(v)) for v in value)
         elif isinstance(value, bool):

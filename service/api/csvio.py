@@ -8,8 +8,9 @@ Request (``Content-Type: text/csv``)
     request fields travel as query parameters: lists repeated or comma-separated
     (``target_epochs=J2026.0,J2100.0``), nested objects with dotted names
     (``target_range.start=J2000&target_range.stop=J2100&target_range.count=11``), any other
-    value as text or as JSON. A bad cell is reported with its line number in the file
-    (the header is line 1): ``line 7: dec_deg`` / ``must be between -90 and 90``.
+    value as text or as JSON; an empty value is null. A bad cell is reported with its line
+    number in the file (the header is line 1): ``line 7: dec_deg`` / ``must be between -90
+    and 90``.
 
 Response (``Accept: text/csv``)
     One row per star and epoch (or per star and event, such as a boundary crossing; a star
@@ -150,7 +151,7 @@ def _option_values(schema, req_args, exclude: str) -> dict:
         if rest and isinstance(fld, ma.fields.Nested):
             nested = data.setdefault(base, {})
             if isinstance(nested, dict):
-                nested[rest] = req_args.get(key)
+                nested[rest] = _json_or_text(req_args.get(key))
             continue
         if isinstance(fld, ma.fields.List):
             items = []
@@ -166,7 +167,10 @@ def _option_values(schema, req_args, exclude: str) -> dict:
 
 
 def _json_or_text(value: str):
+    """A query value: JSON if it looks like an object or list, null if empty, else text."""
     stripped = value.strip()
+    if not stripped:
+        return None
     if stripped[:1] in ("{", "["):
         try:
             return json.loads(stripped)

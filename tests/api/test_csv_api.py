@@ -269,7 +269,8 @@ def _example_as_csv(example):
         if key == "stars" or value is None:
             continue
         if isinstance(value, dict):
-            query.extend((f"{key}.{k}", str(v)) for k, v in value.items())
+            # An empty value is null.
+            query.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
         elif isinstance(value, list):
             query.extend((key, str(v)) for v in value)
         elif isinstance(value, bool):
