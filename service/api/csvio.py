@@ -4,8 +4,9 @@ Request (``Content-Type: text/csv``)
     The body is the star table: a header row of column names, which are the field names of
     the endpoint's record schema and carry their units (``ra_deg``, ``parallax_mas``, ...),
     then one star per line. An empty cell is null (unknown, never zero). Blank lines are
-    skipped. The body must be UTF-8 (a byte-order mark is allowed). The endpoint's other
-    request fields travel as query parameters: lists repeated or comma-separated
+    skipped. The body must be UTF-8 (a byte-order mark is allowed). A JSON answer to a CSV
+    body comes in the columns layout unless the request says ``layout=records``. The
+    endpoint's other request fields travel as query parameters: lists repeated or comma-separated
     (``target_epochs=J2026.0,J2100.0``), nested objects with dotted names
     (``target_range.start=J2000&target_range.stop=J2100&target_range.count=11``), any other
     value as text or as JSON; an empty value is null. A bad cell is reported with its line
@@ -222,6 +223,14 @@ def _epoch_columns(epochs, k) -> dict:
     return {}
 
 
+def _column_cells(values) -> list[str]:
+    """Cells of a whole column; a column of numbers and nulls takes the fast path."""
+    kinds = set(map(type, values))
+    if kinds <= {float, type(None)}:
+        return ["" if v is None else repr(v) for v in values]
+    return [_cell(v) for v in values]
+
+
 def _is_epoch(value) -> bool:
     return isinstance(value, dict) and "julian_epoch_tdb" in value
 
@@ -310,7 +319,9 @@ def _lead(base: dict) -> dict:
     return {k: base[k] for k in ("index", "id") if k in base}
 
 
-def _rows_from_columns(body: dict):
+def _columns_table(body: dict) -> tuple[list[str], list[list[str]]]:
+    """A ``columns`` answer -> (header, one list of cells per column), column-wise (fast:
+    no object per row). Rows run star by star, epochs within a star."""
     cols = body["columns"]
     epochs = _answer_epochs(body)
     n = next((len(v) for k, v in cols.items() if k in ("flags", "id") and v is not None), None)
@@ -334,25 +345,41 @@ def _rows_from_columns(body: dict):
         else:
             per_star[key] = value
     n = n or 0
-    m = len(next(iter(per_epoch.values()))) if per_epoch else 0
-    lists = [
+    reps = m if per_epoch else 1
+    lists = [  # lists of names (flags): judged on the first stars
         k
         for k, v in per_star.items()
-        if all(isinstance(x, list) and all(isinstance(y, str) for y in x) for x in v)
+        if all(isinstance(x, list) and all(isinstance(y, str) for y in x) for x in v[:100])
     ]
-    common = _epoch_cells("epoch", body["epoch"]) if _is_epoch(body.get("epoch")) else {}
-    for i in range(n):
-        base = {"index": i}
-        base.update({k: v[i] for k, v in per_star.items()})
-        if not per_epoch:
-            yield {**_lead(base), **common, **base}, lists
+    out: dict[str, list[str]] = {"index": _repeat([str(i) for i in range(n)], reps)}
+    if "id" in per_star:
+        out["id"] = _repeat(_column_cells(per_star["id"]), reps)
+    if per_epoch:
+        out["epoch_julian_tdb"] = [_cell(e.get("julian_epoch_tdb")) for e in epochs] * n
+        out["epoch_iso_utc"] = [_cell(e.get("iso_utc")) for e in epochs] * n
+    elif _is_epoch(body.get("epoch")):
+        for name, value in _epoch_cells("epoch", body["epoch"]).items():
+            out[name] = [_cell(value)] * n
+    for key, value in cols.items():
+        if key in out or key in lists or value is None:
             continue
-        for k in range(m):
-            row = {"index": i, "id": base.get("id")}
-            row.update(_epoch_columns(epochs, k))
-            row.update({key: v[k][i] for key, v in per_epoch.items()})
-            row.update({key: v for key, v in base.items() if key not in row})
-            yield row, lists
+        if key in per_epoch:
+            flat = [v for row in zip(*value, strict=True) for v in row]
+            out[key] = _column_cells(flat)
+        else:
+            out[key] = _repeat(_column_cells(value), reps)
+    for key in lists:
+        out[key] = _repeat(_column_cells(per_star[key]), reps)
+    lead = [k for k in LEADING_COLUMNS if k in out]
+    header = lead + [k for k in out if k not in lead]
+    return header, [out[k] for k in header]
+
+
+def _repeat(cells: list, times: int) -> list:
+    """Each cell ``times`` times in a row (a star's value on each of its epoch rows)."""
+    if times == 1:
+        return cells
+    return [c for c in cells for _ in range(times)]
 
 
 def body_to_csv(body: dict, nested_names: set | None = None) -> str:
@@ -366,10 +393,15 @@ def body_to_csv(body: dict, nested_names: set | None = None) -> str:
         Keys whose values are objects (possibly null); null ones give no column.
     """
     nested_names = set(nested_names or ())
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\r\n")
+    if not isinstance(body.get("stars"), list) and isinstance(body.get("columns"), dict):
+        header, columns = _columns_table(body)
+        writer.writerow(header)
+        writer.writerows(zip(*columns, strict=True))
+        return buf.getvalue()
     if isinstance(body.get("stars"), list):
         rows = list(_rows_from_records(body, nested_names))
-    elif isinstance(body.get("columns"), dict):
-        rows = list(_rows_from_columns(body))
     else:
         rows = [(body, [])]
     order: dict = {}
@@ -383,8 +415,6 @@ def body_to_csv(body: dict, nested_names: set | None = None) -> str:
     tail = [k for k in list_keys if k in order]
     middle = [k for k in order if k not in lead and k not in list_keys]
     header = lead + middle + tail
-    buf = io.StringIO()
-    writer = csv.writer(buf, lineterminator="\r\n")
     writer.writerow(header)
     for row, _ in rows:
         writer.writerow([_cell(row.get(k)) for k in header])

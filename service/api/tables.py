@@ -342,7 +342,9 @@ class StarTableField(ma.fields.Field):
 
     def _from_csv(self, table) -> StarTable:
         """A CSV body (text cells, empty = null); errors name the line of the file."""
-        errors = TableErrors("records", table.lines, table.header_line)
+        # A CSV table answers in the columns layout unless asked otherwise (it is the fast
+        # one, and CSV answers are the same from either); errors name file lines.
+        errors = TableErrors("columns", table.lines, table.header_line)
         unknown = [h for h in table.header if h not in self.names]
         for name in unknown[:MAX_LISTED_ERRORS]:
             errors.add(errors.header_key(name), self._unknown_text())
