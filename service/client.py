@@ -161,6 +161,25 @@ def _clean(value):
     return value
 
 
+def _default(value):
+    """JSON for array-likes (numpy arrays and scalars): their ``tolist()``."""
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    raise TypeError(f"{type(value).__name__} cannot be sent as JSON")
+
+
+def _dumps(body) -> str:
+    """JSON text of a request body; NaN and infinities are sent as null (unknown).
+
+    The common case (no NaN) is encoded directly; only a body that holds a NaN is walked
+    to replace it.
+    """
+    try:
+        return json.dumps(body, allow_nan=False, default=_default)
+    except ValueError:
+        return json.dumps(_clean(body), allow_nan=False, default=_default)
+
+
 def _count(stars: Stars) -> int:
     if isinstance(stars, Mapping):
         lengths = {len(v) for v in stars.values()}
@@ -172,8 +191,8 @@ def _count(stars: Stars) -> int:
 
 def _slice(stars: Stars, start: int, stop: int):
     if isinstance(stars, Mapping):
-        return {k: _clean(v[start:stop]) for k, v in stars.items()}
-    return [_clean(dict(s)) for s in stars[start:stop]]
+        return {k: v[start:stop] for k, v in stars.items()}
+    return list(stars[start:stop])
 
 
 def _offset_indices(items: list, offset: int) -> list:
@@ -346,7 +365,7 @@ class Client:
 
     def post(self, path: str, body: Mapping[str, Any]) -> dict:
         """POST a JSON body (NaN sent as null) and return the JSON answer."""
-        data = json.dumps(_clean(dict(body)), allow_nan=False)
+        data = _dumps(dict(body))
         resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
         return resp.json()
 
@@ -879,7 +898,7 @@ class Client:
         return self._image("/v1/charts/field", body)
 
     def _image(self, path: str, body: dict) -> bytes:
-        data = json.dumps(_clean(body), allow_nan=False)
+        data = _dumps(body)
         resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
         return resp.content
 
