@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import io
 import math
+import threading
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -60,6 +61,7 @@ PROBE_GRID = 60
 #: PNG resolution, dots per inch.
 PNG_DPI = 150
 IMAGE_FORMATS = ("svg", "png")
+_SAVE_LOCK = threading.Lock()
 #: Motion arrows shorter than this are not drawn (the head would hide the star), radians.
 MIN_ARROW_RAD = math.radians(0.4)
 MIME_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
@@ -359,7 +361,9 @@ def _save(fig, image_format: str) -> bytes:
         raise ValueError(f"image format must be one of {IMAGE_FORMATS}")
     buf = io.BytesIO()
     rc = {"svg.fonttype": "none", "svg.hashsalt": "skydrift", "svg.id": "skydrift-chart"}
-    with matplotlib.rc_context(rc):
+    # rc_context changes matplotlib's global settings: one chart at a time is written, so
+    # threads of one worker cannot see each other's settings.
+    with _SAVE_LOCK, matplotlib.rc_context(rc):
         if image_format == "svg":
             fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "Skydrift"})
         else:
