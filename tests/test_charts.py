@@ -112,6 +112,28 @@ def test_boundaries_and_crossings(track_chart, track_svg, picked):
     for c in track_chart.crossings:
         # A crossing point lies on a boundary (Roman 1987 table; 1 arcsec).
         assert cons.locate(c.ra_deg, c.dec_deg).margin_arcsec < 1.0
+        # ... and on the drawn outlines of both constellations: some drawn segment passes
+        # within 1 arcsec of it (outlines are densified to 0.05 arcsec by the core).
+        for abbr in (c.from_abbreviation, c.to_abbreviation):
+            (outline,) = [b for b in track_chart.boundaries if b.abbreviation == abbr]
+            assert _distance_to_polylines_arcsec(c.ra_deg, c.dec_deg, outline.polylines) < 1.0
+
+
+def _distance_to_polylines_arcsec(ra, dec, polylines):
+    """Smallest distance from a point to line segments, in a tangent plane (small angles)."""
+    best = np.inf
+    cosd = np.cos(np.radians(dec))
+    for line in polylines:
+        x = ((line[:, 0] - ra + 180.0) % 360.0 - 180.0) * cosd
+        y = line[:, 1] - dec
+        ax, ay, bx, by = x[:-1], y[:-1], x[1:], y[1:]
+        dx, dy = bx - ax, by - ay
+        with np.errstate(invalid="ignore", divide="ignore"):
+            t = np.clip(-(ax * dx + ay * dy) / (dx * dx + dy * dy), 0.0, 1.0)
+        t = np.nan_to_num(t)
+        d = np.hypot(ax + t * dx, ay + t * dy)
+        best = min(best, float(d.min()) * 3600.0)
+    return best
 
 
 def test_without_boundaries(picked):
