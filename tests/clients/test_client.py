@@ -271,6 +271,36 @@ def test_merge_answers_fills_columns_a_batch_lacks():
 # ------------------------------------------------------------------ retries
 
 
+def test_retries_against_the_real_server():
+    """The service's test-only setting answers 503 with Retry-After to the first requests."""
+    import dataclasses
+
+    from service.config import Settings
+    from tests.clients.conftest import start_service, stop_service
+
+    if "test_fail_first_n" not in {f.name for f in dataclasses.fields(Settings)}:
+        pytest.skip("this service has no test-only failure setting")
+    url, proc = start_service(
+        {"SKYDRIFT_TEST_FAIL_FIRST_N": "3", "SKYDRIFT_TEST_FAIL_RETRY_AFTER_S": "1"}
+    )
+    star = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    try:
+        waits = []
+        with Client(url, retries=1, sleep=waits.append) as sky:
+            with pytest.raises(SkydriftError) as info:  # failures 1 and 2: retries run out
+                sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert info.value.status == 503
+        assert info.value.retry_after_s == 1.0
+        assert waits == [1.0]
+        waits.clear()
+        with Client(url, sleep=waits.append) as sky:  # failure 3, then the answer
+            answer = sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert answer["star_count"] == 1
+        assert waits == [1.0]
+    finally:
+        stop_service(proc)
+
+
 class ScriptedServer:
     """A loopback HTTP server answering from a script: (status, headers, body) per request."""
 
