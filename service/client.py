@@ -387,7 +387,11 @@ class Client:
             stop = min(n, start + size)
             part = dict(body)
             part[table] = _slice(stars, start, stop)
-            parts.append(self.post(path, part))
+            try:
+                parts.append(self.post(path, part))
+            except SkydriftError as exc:
+                exc.errors = [_shift_index(e, table, start) for e in exc.errors]
+                raise
             offsets.append(start)
             if progress is not None:
                 progress(stop - start)
@@ -965,6 +969,18 @@ def _read_csv(text: str) -> tuple[list[str], list[list[str]], list[int]]:
     if header is None:
         raise ValueError("the CSV text has no header row")
     return header, rows, lines
+
+
+def _shift_index(error: FieldError, table: str, offset: int) -> FieldError:
+    """'stars[3].dec_deg' or 'stars.dec_deg[3]' in a batch -> the index in the whole input."""
+    if not offset:
+        return error
+    pattern = re.compile(rf"^({re.escape(table)}(?:\.[A-Za-z0-9_*]+)?)\[(\d+)\]")
+    m = pattern.match(error.field)
+    if not m:
+        return error
+    field = f"{m.group(1)}[{int(m.group(2)) + offset}]" + error.field[m.end() :]
+    return FieldError(field, error.message)
 
 
 def _relocate(error: FieldError, chunk_lines: list[int]) -> FieldError:

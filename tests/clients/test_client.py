@@ -123,6 +123,19 @@ def test_csv_error_lines_refer_to_the_callers_text(live_service):
     assert info.value.errors == [FieldError("line 23: dec_deg", "must be between -90 and 90")]
 
 
+@pytest.mark.parametrize("layout", ["records", "columns"])
+def test_batched_errors_name_the_index_in_the_whole_input(live_service, demo_catalogue, layout):
+    stars = [dict(s) for s in demo_catalogue["stars"]]
+    stars[23]["dec_deg"] = 91.0
+    if layout == "columns":
+        stars = columns_of(stars)
+    with Client(live_service, batch_size=10) as sky:
+        with pytest.raises(SkydriftError) as info:
+            sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+    expected = "stars[23].dec_deg" if layout == "records" else "stars.dec_deg[23]"
+    assert [e.field for e in info.value.errors] == [expected]
+
+
 def test_problem_details_become_the_exception(sky):
     bad = [{"ra_deg": 10.0, "dec_deg": 95.0, "pm_ra_cosdec_mas_yr": 0, "pm_dec_mas_yr": 0}]
     with pytest.raises(SkydriftError) as info:
