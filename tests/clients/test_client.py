@@ -281,6 +281,24 @@ def test_merge_answers_fills_columns_a_batch_lacks():
     assert merged["columns"] == {"id": ["a", "b", "c"], "x": [[1, 2, 3]], "err": [[0.1, 0.2, None]]}
 
 
+def test_bearer_token_against_the_real_server():
+    from tests.clients.conftest import start_service, stop_service
+
+    token = "kestrel-ridge-test-token-0001"  # test value, 16+ characters as the service asks
+    url, proc = start_service({"SKYDRIFT_AUTH_TOKENS": token})
+    star = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    try:
+        with Client(url, retries=0) as sky:
+            with pytest.raises(SkydriftError) as info:
+                sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert info.value.status == 401
+        with Client(url, token=token) as sky:
+            answer = sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert answer["star_count"] == 1
+    finally:
+        stop_service(proc)
+
+
 # ------------------------------------------------------------------ retries
 
 
