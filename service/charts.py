@@ -56,6 +56,10 @@ TRACK_SAMPLES = 401
 #: Margin around the tracks, as a fraction of their extent, and at least this, degrees.
 VIEW_MARGIN_FRACTION = 0.25
 VIEW_MARGIN_MIN_DEG = 0.5
+#: Epoch labels closer than this fraction of the chart's span to the previous one are left
+#: out (the dot stays); constellation labels need this fraction of the span around them.
+TICK_LABEL_SPACING_FRACTION = 0.05
+LABEL_MIN_ROOM_FRACTION = 0.025
 #: Grid of probe points used to find the constellations present in the view.
 PROBE_GRID = 60
 #: PNG resolution, dots per inch.
@@ -286,7 +290,9 @@ def sky_tracks(
                 polylines.extend(_split_ring(np.asarray(ring, dtype=float)))
         outlines.append(Boundary(abbr[int(x_)], polylines))
         best = np.argmax(np.where(probe == x_, label_score, -np.inf))
-        labels_out.append((abbr[int(x_)], float(gx.flat[best] % 360.0), float(gd.flat[best])))
+        if label_score.flat[best] >= LABEL_MIN_ROOM_FRACTION * (view[3] - view[2]):
+            # Only constellations with room for their abbreviation in view are labelled.
+            labels_out.append((abbr[int(x_)], float(gx.flat[best] % 360.0), float(gd.flat[best])))
     found = cons.boundary_crossings(
         astro["ra_deg"],
         astro["dec_deg"],
@@ -452,6 +458,7 @@ def render_tracks(
             clip_on=True,
         ).set_gid(f"label-{abbr}")
     cosd = max(0.2, math.cos(math.radians(0.5 * (dec_lo + dec_hi))))
+    span = max((ra_hi - ra_lo) * cosd, dec_hi - dec_lo)
     for k, t in enumerate(chart.tracks):
         colour = TRACK_COLOURS[k % len(TRACK_COLOURS)]
         x = centre + np.unwrap(_wrap180(t.ra_deg - centre), period=360.0)
@@ -472,7 +479,12 @@ def render_tracks(
         ticks.set_gid(f"ticks-{k}")
         step = float(np.diff(t.tick_epochs_jyear).mean()) if t.tick_epochs_jyear.size > 1 else 1
         offsets = _side_offsets(ax, x, t.dec_deg, tx, t.tick_dec_deg, chart.view, cosd)
+        last = None
         for e, xx, yy, off in zip(t.tick_epochs_jyear, tx, t.tick_dec_deg, offsets, strict=True):
+            here = np.array([float(xx) * cosd, float(yy)])
+            if last is not None and np.hypot(*(here - last)) < TICK_LABEL_SPACING_FRACTION * span:
+                continue  # too close to the last labelled epoch to be read
+            last = here
             ax.annotate(
                 _epoch_text(float(e), step),
                 (float(xx), float(yy)),
@@ -534,9 +546,9 @@ def render_tracks(
     first, last = chart.tracks[0].epochs_jyear[[0, -1]]
     heading = title or f"Sky tracks, J{first:.1f} to J{last:.1f} (TDB)"
     ax.set_title(heading, color=TEXT_COLOUR, fontsize=12, loc="left")
-    note = "dots: epochs as labelled; thin lines: IAU constellation boundaries"
+    note = "dots: evenly spaced epochs, labelled where room; lines: IAU constellation boundaries"
     if not chart.boundaries_available:
-        note = "dots: epochs as labelled"
+        note = "dots: evenly spaced epochs, labelled where room"
     ax.text(
         0.99,
         0.01,
