@@ -559,6 +559,7 @@ def render_tracks(
         color=MUTED_TEXT_COLOUR,
         fontsize=7,
         zorder=7,
+        bbox={"facecolor": PANEL_COLOUR, "edgecolor": "none", "alpha": 0.9, "pad": 2},
     )
     legend = ax.legend(
         loc="best",
