@@ -175,15 +175,16 @@ def constellations(sky: Client, catalogue: dict, paths: dict) -> None:
             f"{_num(None if margin is None else margin / 3600.0, '{:.3f}'):>10} "
             f"{res.get('across') or '-':6}  {', '.join(res.get('flags', []))}"
         )
-    star = next(s for s in stars if s["id"] == CROSSING_STAR)
+    # Every boundary crossing in the next 5,000 years (KRC 0017 leaves Taurus for Aries).
     found = sky.constellation_crossings(
-        [star], catalogue_epoch=catalogue["catalogue_epoch"], start="J2016.0", end="J12016.0"
+        stars, catalogue_epoch=catalogue["catalogue_epoch"], start=TONIGHT, end="J7026.0"
     )
+    print()
     for res in found["stars"]:
         for c in res["crossings"]:
             e = c["epoch"]
             print(
-                f"\n{CROSSING_STAR} crosses from {c['from_constellation']} into "
+                f"{res['id']} crosses from {c['from_constellation']} into "
                 f"{c['to_constellation']} at J{e['julian_epoch_tdb']:.1f} ({e['iso_utc']})"
             )
 
