@@ -8,9 +8,9 @@ gunicorn on a free loopback port (or uses SKYDRIFT_URL if set) and, through
 1. moves the catalogue to tonight (2026-12-02 22:00 UTC) and prints the places;
 2. gives the observed places at the observatory with the safety flags (when the service
    has the observed-place endpoint);
-3. gives each star's constellation with its margin to the boundary, and the boundary
-   crossing of KRC 0017, which leaves Taurus for Aries in about 3600 years (when the service
-   has the constellation endpoints);
+3. gives each star's constellation tonight with its margin to the boundary, and every
+   boundary crossing in the next 5,000 years: KRC 0017 leaves Taurus for Aries in about
+   3,600 years (when the service has the constellation endpoints);
 4. gives the stars' velocities (U, V, W relative to the local standard of rest);
 5. writes the charts: the track of KRC 0017 across the boundary, and the whole catalogue at
    J2016.0 and J12016.0 side by side (SVG and PNG, in build/demo/ or SKYDRIFT_DEMO_OUT).
