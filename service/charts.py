@@ -637,6 +637,8 @@ def render_field(
     size_in: tuple = (13.0, 4.6),
 ) -> bytes:
     """Draw a :class:`FieldChart`: two all-sky panels side by side with motion arrows."""
+    from matplotlib import patheffects
+
     fig = _figure(*size_in)
     axes = [fig.add_subplot(1, 2, k + 1, projection="hammer") for k in range(2)]
     plx = chart.parallax_mas
@@ -700,19 +702,28 @@ def render_field(
             )
             faint.set_gid(f"stars-no-parallax-{k}")
         for i in sorted(fastest):
+            # The label sits behind the star, opposite its arrow.
+            dx, dy = xe[i] - x[i], ye[i] - y[i]
+            norm = math.hypot(dx, dy) or 1.0
+            off = (-9.0 * dx / norm, -9.0 * dy / norm)
             ax.annotate(
                 chart.labels[i],
                 (x[i], y[i]),
-                xytext=(5, 5),
+                xytext=off,
                 textcoords="offset points",
+                ha="right" if off[0] < 0 else "left",
+                va="top" if off[1] < 0 else "bottom",
                 color=TEXT_COLOUR,
                 fontsize=7,
                 zorder=4,
+                path_effects=[patheffects.withStroke(linewidth=2.5, foreground=PANEL_COLOUR)],
             )
         ticks = np.radians(np.arange(-150, 181, 30))
         ax.set_xticks(ticks)
         ax.set_xticklabels([f"{(-t) % 360:.0f}\u00b0" for t in np.degrees(ticks)])
         ax.tick_params(axis="x", labelsize=6, colors=MUTED_TEXT_COLOUR)
+        for label in ax.get_xticklabels():
+            label.set_alpha(0.6)  # right ascension marks stay behind the stars' labels
         ax.set_title(f"J{chart.epochs_jyear[k]:.1f}", color=colour, fontsize=12, fontweight="bold")
     heading = title or "Star field at two epochs"
     fig.suptitle(heading, color=TEXT_COLOUR, fontsize=13)
