@@ -852,6 +852,30 @@ class Client:
         body.update({k: v for k, v in optional.items() if v is not None})
         return self.post_batched("/v1/observed", body, progress=progress)
 
+    def observed_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        instants: Iterable[Epoch] | Epoch,
+        site: str | Mapping[str, float],
+        horizon_limit_deg: float | None = None,
+        sun_avoidance_deg: float | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """Observed places of a CSV table of stars, as CSV (one row per star and instant).
+
+        ``site`` is a configured name or ``{"latitude_deg", "longitude_deg", "height_m"}``.
+        The Sun and horizon figures and flags are advisory.
+        """
+        when = [instants] if isinstance(instants, str | float | int) else list(instants)
+        params: dict = {"catalogue_epoch": catalogue_epoch, "instants": when}
+        params["site"] = site if isinstance(site, str) else json.dumps(dict(site))
+        params.update(
+            {"horizon_limit_deg": horizon_limit_deg, "sun_avoidance_deg": sun_avoidance_deg}
+        )
+        return self.post_csv("/v1/observed", csv_text, params, progress=progress)
+
     def chart_track(
         self,
         stars: Stars,

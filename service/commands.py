@@ -274,6 +274,44 @@ def _tolerant(args, csv_text: str, call):
     return call(_drop_columns(csv_text, unknown))
 
 
+@_run
+def cmd_observed(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    site = args.site
+    if args.position is not None:
+        lat, lon, height = args.position
+        site = {"latitude_deg": lat, "longitude_deg": lon, "height_m": height}
+    if site is None:
+        raise ValueError("give --site NAME or --position LAT LON HEIGHT")
+    bar, update = _progress(cat.rows, args, "observed places")
+    with make_client(args) as client:
+        try:
+            text = _tolerant(
+                args,
+                cat.csv_text,
+                lambda body: client.observed_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    instants=args.at,
+                    site=site,
+                    horizon_limit_deg=args.horizon_limit_deg,
+                    sun_avoidance_deg=args.sun_avoidance_deg,
+                    progress=update,
+                ),
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    if not args.quiet:
+        print(
+            "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
+            "and safety rules decide where a telescope may point.",
+            file=sys.stderr,
+        )
+    _write_text(text, args.output)
+    return 0
+
+
 def _select(cat: Catalogue, ids: list[str] | None) -> str:
     """The catalogue's CSV restricted to the given ids (all rows if none given)."""
     if not ids:
@@ -561,6 +599,56 @@ def add_commands(sub) -> None:
     x.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(x)
     x.set_defaults(func=cmd_crossings)
+
+    o = sub.add_parser(
+        "observed",
+        help="observed places of a catalogue's stars at a site (CSV out; safety advisory)",
+        description="Compute the observed place of every star of a catalogue at a site and "
+        "one or more instants: azimuth, altitude, zenith distance, hour angle, observed "
+        "right ascension and declination, parallactic angle, airmass, refraction, the "
+        "separation from the Sun, and the astrometric and apparent places. Writes CSV: one "
+        "row per star and instant with index, id, epoch_julian_tdb and epoch_iso_utc of the "
+        "instant, the quantities under their API names, and flags (';'-separated; they "
+        "include below_horizon_limit and within_sun_avoidance). The Sun and horizon figures "
+        "are ADVISORY: the facility's own interlocks and safety rules decide where a "
+        "telescope may point.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(o)
+    o.add_argument(
+        "--at",
+        action="append",
+        required=True,
+        metavar="INSTANT",
+        help="instant of observation (ISO 8601 UTC or any epoch form); repeat for several",
+    )
+    place = o.add_mutually_exclusive_group(required=True)
+    place.add_argument(
+        "--site", help="a site configured in the service (the demo's: kestrel-ridge)"
+    )
+    place.add_argument(
+        "--position",
+        nargs=3,
+        type=float,
+        metavar=("LAT", "LON", "HEIGHT"),
+        help="geodetic latitude and east longitude in degrees, height in metres (WGS84)",
+    )
+    o.add_argument(
+        "--horizon-limit-deg",
+        type=float,
+        metavar="DEG",
+        help="altitude below which a star is flagged (default: the site's, else the service's)",
+    )
+    o.add_argument(
+        "--sun-avoidance-deg",
+        type=float,
+        metavar="DEG",
+        help="Sun separation below which a star is flagged (default: the service's setting)",
+    )
+    o.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(o)
+    o.set_defaults(func=cmd_observed)
 
     chart = sub.add_parser(
         "chart",

@@ -44,7 +44,7 @@ COMMANDS = [path for path, _ in subcommand_parsers(build_parser())]
 
 def test_every_command_is_listed():
     expected = {("propagate",), ("velocities",), ("constellations",), ("crossings",),
-                ("chart", "track"), ("chart", "field")}  # fmt: skip
+                ("observed",), ("chart", "track"), ("chart", "field")}  # fmt: skip
     assert expected <= set(COMMANDS)
 
 
@@ -149,6 +149,22 @@ def test_crossings_one_row_per_crossing(live_service, tmp_path):
     # One row per star, a star with one crossing in the window included (no star has two).
     assert len(rows) == 30
     assert [r["id"] for r in crossing] == ["KRC 0017", "KRC 0018"]
+
+
+def test_observed_local_and_remote_identical(live_service):
+    args = ["observed", CATALOGUE, "--at", "2026-12-02T22:00:00Z", "--site", "kestrel-ridge",
+            "--drop-unknown-columns"]  # fmt: skip
+    local = skydrift(*args)
+    assert b"advisory" in local.stderr  # the safety figures are said to be advisory
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "8")
+    assert local.stdout == remote.stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert len(rows) == 30
+    assert rows[0]["epoch_iso_utc"] == "2026-12-02T22:00:00.000Z"
+    # Stars below the horizon are flagged, as the altitude says (site limit 15 degrees).
+    for r in rows:
+        flagged = "below_horizon_limit" in r["flags"].split(";")
+        assert flagged == (float(r["altitude_deg"]) < 15.0)
 
 
 def test_bad_row_named_by_line_exit_1(tmp_path):
