@@ -4,7 +4,8 @@ Request (``Content-Type: text/csv``)
     The body is the star table: a header row of column names, which are the field names of
     the endpoint's record schema and carry their units (``ra_deg``, ``parallax_mas``, ...),
     then one star per line. An empty cell is null (unknown, never zero). Blank lines are
-    skipped. The body must be UTF-8 (a byte-order mark is allowed). A JSON answer to a CSV
+    skipped. Identifiers read from CSV are text. The body must be UTF-8 (a byte-order mark
+    is allowed). A JSON answer to a CSV
     body comes in the columns layout unless the request says ``layout=records``. The
     endpoint's other request fields travel as query parameters: lists repeated or comma-separated
     (``target_epochs=J2026.0,J2100.0``), nested objects with dotted names
