@@ -14,7 +14,7 @@ from flask_smorest import abort
 
 from ..core import propagation as core
 from ..core.constants import C_KM_S
-from ..core.flags import flag_names
+from ..core.flags import flag_names, present_flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
 from .observability import count_stars
@@ -397,11 +397,14 @@ def propagate(args):
     count_stars("/v1/propagation", n)
     masks = np.bitwise_or.reduce(result.flags, axis=1)
     names = flag_names(masks, core.PropagationFlag)
+    present = present_flag_names(masks, core.PropagationFlag)
     if has_cov.any() or incomplete.any():  # both masks are all False without errors
         for i in np.flatnonzero(incomplete):
-            names[i].append("uncertainties_incomplete")
+            names[i] = (*names[i], "uncertainties_incomplete")
+            present.add("uncertainties_incomplete")
         for i in np.flatnonzero(assumed_zero):
-            names[i].append("correlations_assumed_zero")
+            names[i] = (*names[i], "correlations_assumed_zero")
+            present.add("correlations_assumed_zero")
     warnings = _warnings(masks, table)
     layout = args["layout"] or table.form
     body = {
@@ -411,7 +414,7 @@ def propagate(args):
         "star_count": n,
         "layout": layout,
         "units": UNITS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in present},
         "warnings": warnings,
     }
     ast = result.astrometry

@@ -422,7 +422,7 @@ def _flag_lists(mask) -> tuple[list[list[str]], set[str]]:
     uniq, inverse = np.unique(np.asarray(mask, dtype=np.int64), return_inverse=True)
     lists = []
     for m in uniq.tolist():
-        names = flag_names([m & ~_CORRELATIONS_ASSUMED_ZERO_BIT], core.KinematicsFlag)[0]
+        names = list(flag_names([m & ~_CORRELATIONS_ASSUMED_ZERO_BIT], core.KinematicsFlag)[0])
         if m & _CORRELATIONS_ASSUMED_ZERO_BIT:
             names.append("correlations_assumed_zero")
         lists.append(names)
