@@ -1,4 +1,5 @@
-"""The ``skydrift`` command: serve the API, write the OpenAPI document."""
+"""The ``skydrift`` command: serve the API, write the OpenAPI document, and the batch and
+chart commands on catalogue files (see :mod:`service.commands`)."""
 
 from __future__ import annotations
 
@@ -55,6 +56,9 @@ def build_parser() -> argparse.ArgumentParser:
     openapi = sub.add_parser("openapi", help="write the OpenAPI 3.1 document")
     openapi.add_argument("--output", "-o", help="file to write (default: standard output)")
     openapi.set_defaults(func=_openapi)
+    from .commands import add_commands
+
+    add_commands(sub)
     return parser
 
 

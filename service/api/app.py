@@ -128,7 +128,7 @@ def create_app(config: dict | None = None) -> Flask:
     observability.register(app)
     access.register(app)
 
-    from . import constellations, docs, frames, health, observed, propagation, velocity
+    from . import charts, constellations, docs, frames, health, observed, propagation, velocity
 
     health.register(app, api)
     propagation.register(app, api)
@@ -136,5 +136,6 @@ def create_app(config: dict | None = None) -> Flask:
     velocity.register(app, api)
     frames.register(app, api)
     observed.register(app, api)
+    charts.register(app, api)
     docs.register(app, api)
     return app

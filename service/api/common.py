@@ -7,18 +7,25 @@ import functools
 import flask_smorest
 import marshmallow as ma
 import numpy as np
-from flask import request
+import orjson
+from flask import current_app, request
 from flask_smorest import abort
 
 from ..core import epochs as core_epochs
 from ..core.flags import flag_names
+from . import csvio
 from .jsonio import BodyParser
 
 JSON_MIMETYPES = ("application/json",)
 
 
 class Blueprint(flask_smorest.Blueprint):
-    """flask-smorest Blueprint that reads bodies with orjson and insists on JSON for POST."""
+    """flask-smorest Blueprint that reads bodies with orjson and insists on JSON for POST.
+
+    Endpoints whose request schema holds a star table (:class:`~.tables.StarTableField`)
+    also take a ``text/csv`` body and answer ``text/csv`` on request (``Accept: text/csv``);
+    see :mod:`.csvio`. Nothing needs to be done per endpoint.
+    """
 
     ARGUMENTS_PARSER = BodyParser()
 
@@ -30,14 +37,125 @@ class Blueprint(flask_smorest.Blueprint):
         def _require_json():
             if request.method in ("POST", "PUT", "PATCH"):
                 mimetype = request.mimetype or ""
-                if not (mimetype in self.accept_mimetypes or mimetype.endswith("+json")):
+                accepted = self.accept_mimetypes
+                if _table_endpoint() is not None:
+                    accepted = (*accepted, csvio.CSV_MIMETYPE)
+                if not (mimetype in accepted or mimetype.endswith("+json")):
                     abort(
                         415,
                         message=(
                             f"Content-Type {mimetype or '(none)'} is not accepted here; "
-                            f"send {' or '.join(self.accept_mimetypes)}"
+                            f"send {' or '.join(accepted)}"
                         ),
                     )
+
+        @self.after_request
+        def _csv_answer(resp):
+            if _table_endpoint() is None:
+                return resp
+            resp.vary.add("Accept")
+            if resp.status_code == 200 and resp.mimetype == "application/json":
+                if csvio.wants_csv():
+                    body = orjson.loads(resp.get_data())
+                    nested = _table_endpoint()[1]
+                    resp.set_data(csvio.body_to_csv(body, nested).encode())
+                    resp.mimetype = csvio.CSV_MIMETYPE
+                    resp.headers["Content-Type"] = "text/csv; charset=utf-8; header=present"
+            return resp
+
+    def arguments(self, schema, *args, csv_answer: bool = True, **kwargs):
+        """As flask-smorest's, and marks star-table endpoints for CSV in and out.
+
+        ``csv_answer=False`` for endpoints whose answer is not a table (images): they take
+        CSV bodies but do not document a CSV answer.
+        """
+        decorator = super().arguments(schema, *args, **kwargs)
+        instance = schema() if isinstance(schema, type) else schema
+        table = csvio.table_field_name(instance)
+        if table is None:
+            return decorator
+
+        def mark(func):
+            wrapped = decorator(func)
+            wrapped = self.doc(**_csv_doc(instance, table, csv_answer))(wrapped)
+            wrapped._skydrift_csv = (table, None)
+            return wrapped
+
+        return mark
+
+    def response(self, status_code, schema=None, *args, **kwargs):
+        """As flask-smorest's, and remembers which answer members are objects (for CSV)."""
+        decorator = super().response(status_code, schema, *args, **kwargs)
+        if schema is None:
+            return decorator
+        instance = schema() if isinstance(schema, type) else schema
+        nested = csvio.nested_field_names(instance)
+
+        def mark(func):
+            wrapped = decorator(func)
+            wrapped._skydrift_nested = nested
+            return wrapped
+
+        return mark
+
+
+def _table_endpoint():
+    """(table field name, nested answer members) of the current endpoint, or None."""
+    view = current_app.view_functions.get(request.endpoint or "")
+    mark = getattr(view, "_skydrift_csv", None)
+    if mark is None:
+        return None
+    return mark[0], getattr(view, "_skydrift_nested", set())
+
+
+def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
+    """OpenAPI additions for a CSV-capable endpoint: CSV body, query options, CSV answer."""
+    params = []
+    for name, fld in schema.fields.items():
+        if name == table or fld.dump_only:
+            continue
+        description = fld.metadata.get("description", "")
+        params.append(
+            {
+                "name": name,
+                "in": "query",
+                "required": False,
+                "schema": {"type": "string"},
+                "description": "With a text/csv body only (a JSON body carries it inside): "
+                + description
+                + " Lists: repeated or comma-separated; objects: dotted names "
+                "(name.member=value) or JSON.",
+            }
+        )
+    doc = {
+        "parameters": params,
+        "requestBody": {
+            "content": {
+                csvio.CSV_MIMETYPE: {
+                    "schema": {"type": "string"},
+                    "description": "The star table as CSV: header row of field names "
+                    f"(the members of one '{table}' record, units in the names), one star "
+                    "per line, empty cell = null. Other fields as query parameters.",
+                }
+            }
+        },
+        "responses": {
+            200: {
+                "content": {
+                    csvio.CSV_MIMETYPE: {
+                        "schema": {"type": "string"},
+                        "description": "With Accept: text/csv. One row per star and epoch: "
+                        + ", ".join(csvio.LEADING_COLUMNS)
+                        + ", the quantities under their JSON names, flags (';'-separated) "
+                        "last; empty cell = null.",
+                    }
+                }
+            }
+        },
+    }
+    if not csv_answer:
+        del doc["responses"]
+    return doc
 
 
 class StrictFloat(ma.fields.Float):

@@ -119,9 +119,13 @@ class StarTable:
     size: int
     form: str
     given: set = field(default_factory=set)
+    lines: list | None = None
 
     def path(self, index: int, name: str, field_name: str = "stars") -> str:
-        """Path of one value for error messages: stars[3].dec_deg or stars.dec_deg[3]."""
+        """Path of one value for error messages: stars[3].dec_deg, stars.dec_deg[3], or
+        for a CSV body ``line 7: dec_deg`` (line in the file; the header is line 1)."""
+        if self.lines is not None:
+            return f"line {self.lines[index]}: {name}"
         if self.form == "records":
             return f"{field_name}[{index}].{name}"
         return f"{field_name}.{name}[{index}]"
@@ -145,8 +149,10 @@ class _Columns(dict):
 class TableErrors:
     """Collects per-value errors, keeping at most MAX_LISTED_ERRORS (counting the rest)."""
 
-    def __init__(self, form: str):
+    def __init__(self, form: str, lines: list | None = None, header_line: int = 1):
         self.form = form
+        self.lines = lines
+        self.header_line = header_line
         self.items: dict[str, list[str]] = {}
         self.more = 0
 
@@ -163,9 +169,28 @@ class TableErrors:
         self.more += max(0, indices.size - (MAX_LISTED_ERRORS + 1))
 
     def key(self, index: int, name: str) -> str:
+        if self.lines is not None:
+            return f"line {self.lines[index]}: {name}"
         return f"[{index}].{name}" if self.form == "records" else f"{name}[{index}]"
 
+    def header_key(self, name: str) -> str:
+        """Key of an error about a whole column (absent, unknown)."""
+        if self.lines is not None:
+            return f"line {self.header_line}: {name}"
+        return "[0]." + name if self.form == "records" else name
+
     def raise_if_any(self) -> None:
+        if self.items and self.lines is not None:
+            # CSV bodies: the paths are file lines, not members of the request object, so
+            # they are reported as they are rather than under the table field's name.
+            errors = [
+                {"field": k, "message": m}
+                for k, ms in sorted(self.items.items(), key=_line_of)
+                for m in ms
+            ]
+            if self.more:
+                errors.append({"field": "(more)", "message": f"{self.more} further invalid values"})
+            abort(422, errors=errors)
         if self.items:
             messages = dict(self.items)
             if self.more:
@@ -195,6 +220,45 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
         big = [i for i, v in enumerate(values) if type(v) is int and abs(v) > 1e300]
         errors.add_indices(big, spec.name, "number out of range")
         return np.full(len(values), np.nan)
+
+
+def _line_of(item) -> int:
+    """Sort key of a CSV error: its line number."""
+    head = item[0].partition(":")[0]
+    return int(head[5:]) if head.startswith("line ") and head[5:].isdigit() else 0
+
+
+def _csv_number_column(cells: list, spec: ColumnSpec, errors: TableErrors) -> np.ndarray:
+    """CSV cells -> float array: empty = null (NaN); text that is no finite number is an
+    error (so 'nan' or 'inf' written in a cell is refused, not taken as unknown)."""
+    empty = np.fromiter((c == "" for c in cells), dtype=bool, count=len(cells))
+    filled = ["nan" if e else c for e, c in zip(empty, cells, strict=True)]
+    not_number = np.zeros(len(cells), dtype=bool)
+    try:
+        arr = np.asarray(filled, dtype=float)
+    except (ValueError, OverflowError):
+        arr = np.full(len(cells), np.nan)
+        for i, c in enumerate(filled):
+            try:
+                arr[i] = float(c)
+            except ValueError:
+                not_number[i] = True
+        errors.add_indices(
+            np.flatnonzero(not_number),
+            spec.name,
+            "must be a number (in the unit of the column name)",
+        )
+    not_finite = ~empty & ~not_number & ~np.isfinite(arr)
+    if not_finite.any():
+        errors.add_indices(
+            np.flatnonzero(not_finite),
+            spec.name,
+            "must be a finite number; leave the cell empty for unknown",
+        )
+        arr[not_finite] = np.nan
+    if empty.any() and not spec.allow_none:
+        errors.add_indices(np.flatnonzero(empty), spec.name, "is required; the cell is empty")
+    return arr
 
 
 def _check_range(arr: np.ndarray, spec: ColumnSpec, errors: TableErrors) -> None:
@@ -273,6 +337,10 @@ class StarTableField(ma.fields.Field):
             return None
 
     def _deserialize(self, value, attr, data, **kwargs) -> StarTable:
+        from .csvio import CsvTable
+
+        if isinstance(value, CsvTable):
+            return self._from_csv(value)
         if isinstance(value, list):
             return self._from_records(value)
         if isinstance(value, dict):
@@ -343,27 +411,50 @@ class StarTableField(ma.fields.Field):
         self._limit(n)
         return self._finish(dict(cols), n, errors, set(cols))
 
-    def _finish(self, raw: dict, n: int, errors: TableErrors, given: set) -> StarTable:
+    def _from_csv(self, table) -> StarTable:
+        """A CSV body (text cells, empty = null); errors name the line of the file."""
+        # A CSV table answers in the columns layout unless asked otherwise (it is the fast
+        # one, and CSV answers are the same from either); errors name file lines.
+        errors = TableErrors("columns", table.lines, table.header_line)
+        unknown = [h for h in table.header if h not in self.names]
+        for name in unknown[:MAX_LISTED_ERRORS]:
+            errors.add(errors.header_key(name), self._unknown_text())
+        errors.raise_if_any()
+        if table.size == 0:
+            errors.add(f"line {table.header_line + 1}", "at least one star is required")
+            errors.raise_if_any()
+        self._limit(table.size)
+        raw = {}
+        for spec in self.specs:
+            cells = table.columns.get(spec.name)
+            if cells is None:
+                continue
+            if spec.kind == "id":
+                raw[spec.name] = [c if c != "" else None for c in cells]
+            else:
+                raw[spec.name] = _csv_number_column(cells, spec, errors)
+        return self._finish(raw, table.size, errors, set(table.header), lines=table.lines)
+
+    def _finish(
+        self, raw: dict, n: int, errors: TableErrors, given: set, lines: list | None = None
+    ) -> StarTable:
         columns = _Columns(n, self.numeric_names)
         ids = None
         for spec in self.specs:
             values = raw.get(spec.name)
             if values is None:
                 if spec.required:
-                    errors.add(
-                        "[0]." + spec.name if errors.form == "records" else spec.name,
-                        "is required",
-                    )
+                    errors.add(errors.header_key(spec.name), "is required")
                 continue
             if spec.kind == "id":
                 ids = _id_column(values, errors)
                 continue
-            arr = _number_column(values, spec, errors)
+            arr = values if isinstance(values, np.ndarray) else _number_column(values, spec, errors)
             if spec.lo is not None or spec.hi is not None:
                 _check_range(arr, spec, errors)
             columns[spec.name] = arr
         errors.raise_if_any()
-        return StarTable(columns, ids, n, errors.form, given)
+        return StarTable(columns, ids, n, errors.form, given, lines)
 
     def _unknown_text(self) -> str:
         return "unknown field; accepted fields: " + ", ".join(s.name for s in self.specs)

@@ -320,7 +320,7 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     ra1 = _wrap_360(ra_deg + np.arctan2(loc.sx, loc.X) * DEG_PER_RAD)
     dec1 = np.arctan2(loc.Z, loc.H) * DEG_PER_RAD
     plx1 = plx * loc.f
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4).
         g = (AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD) / plx * loc.tpm2 + rv * loc.sz
     rv1 = np.where(usable, loc.f * g, rv)

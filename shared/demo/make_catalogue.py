@@ -73,3 +73,13 @@ catalogue = {
 out = pathlib.Path(__file__).with_name("catalogue.json")
 out.write_text(json.dumps(catalogue, indent=1) + "\n")
 print(f"wrote {out} with {len(stars)} stars")
+
+# The same catalogue as CSV (header = field names with units; empty cell = unknown), the
+# form the command line and the CSV endpoints read.
+names = list(dict.fromkeys(k for s in stars for k in s))
+lines = [",".join(names)]
+for s in stars:
+    lines.append(",".join("" if s.get(k) is None else str(s[k]) for k in names))
+csv_out = pathlib.Path(__file__).with_name("catalogue.csv")
+csv_out.write_text("\n".join(lines) + "\n")
+print(f"wrote {csv_out}")

@@ -314,7 +314,7 @@ def test_inverse_missing_velocity_component(client):
 
 
 def test_inverse_wrong_content_type(client):
-    r = client.post(INVERSE_URL, data=json.dumps({"stars": [UVW_STAR]}), content_type="text/csv")
+    r = client.post(INVERSE_URL, data=json.dumps({"stars": [UVW_STAR]}), content_type="text/plain")
     assert_problem(r, 415)
 
 

@@ -1,0 +1,234 @@
+"""POST /v1/charts/track and /v1/charts/field: charts of stellar motion, SVG or PNG."""
+
+from __future__ import annotations
+
+import marshmallow as ma
+from flask import Response, request
+from flask_smorest import abort
+
+from .common import Blueprint, EpochField
+from .examples import load_example
+from .propagation import StarAstrometrySchema
+from .tables import StarTableField
+
+blp = Blueprint(
+    "charts",
+    __name__,
+    url_prefix="/v1/charts",
+    description="Charts of stellar motion as SVG (default) or PNG images.",
+)
+
+#: Most stars in one star-field chart.
+MAX_FIELD_STARS = 5000
+
+_FORMAT_DESCRIPTION = (
+    "Image format: svg (default) or png. Without it, an Accept header asking for image/png "
+    "gets PNG."
+)
+
+
+def _format_field():
+    return ma.fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.OneOf(("svg", "png")),
+        metadata={"description": _FORMAT_DESCRIPTION},
+    )
+
+
+def _title_field():
+    return ma.fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.Length(max=120),
+        metadata={"description": "Chart title (default: a description of the chart)."},
+    )
+
+
+class TrackChartRequestSchema(ma.Schema):
+    stars = StarTableField(
+        StarAstrometrySchema,
+        required=True,
+        metadata={"description": "The stars (1 to 12), records or columns; ids label them."},
+    )
+    catalogue_epoch = EpochField(
+        required=True, metadata={"description": "Epoch of the given astrometry."}
+    )
+    start = EpochField(required=True, metadata={"description": "First epoch of the tracks."})
+    stop = EpochField(required=True, metadata={"description": "Last epoch of the tracks."})
+    ticks = ma.fields.Integer(
+        load_default=6,
+        validate=ma.validate.Range(min=2, max=50),
+        metadata={"description": "Epochs marked on each track, evenly spaced, ends included."},
+    )
+    boundaries = ma.fields.Boolean(
+        load_default=True,
+        metadata={
+            "description": "Draw the IAU constellation boundaries in view, their "
+            "abbreviations, and mark where a track crosses a boundary."
+        },
+    )
+    format = _format_field()
+    title = _title_field()
+
+
+class FieldChartRequestSchema(ma.Schema):
+    stars = StarTableField(
+        StarAstrometrySchema,
+        required=True,
+        metadata={"description": f"The stars (at most {MAX_FIELD_STARS}), records or columns."},
+    )
+    catalogue_epoch = EpochField(
+        required=True, metadata={"description": "Epoch of the given astrometry."}
+    )
+    epochs = ma.fields.List(
+        EpochField(),
+        required=True,
+        validate=ma.validate.Length(equal=2),
+        metadata={"description": "The two epochs shown side by side."},
+    )
+    arrow_years = ma.fields.Float(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.Range(min=0.0, min_inclusive=False, max=200_000.0),
+        metadata={
+            "description": "Span of the motion arrows, Julian years (default: the interval "
+            "between the two epochs)."
+        },
+    )
+    format = _format_field()
+    title = _title_field()
+
+
+def _image_format(args) -> str:
+    if args.get("format"):
+        return args["format"]
+    best = request.accept_mimetypes.best_match(["image/svg+xml", "image/png"])
+    return "png" if best == "image/png" else "svg"
+
+
+def _columns(table):
+    c = table.columns
+    return (
+        c["ra_deg"],
+        c["dec_deg"],
+        c["parallax_mas"],
+        c["pm_ra_cosdec_mas_yr"],
+        c["pm_dec_mas_yr"],
+        c["radial_velocity_km_s"],
+    )
+
+
+def _labels(table) -> list[str]:
+    if table.ids is None:
+        return [f"star {k}" for k in range(table.size)]
+    return [f"star {k}" if v is None else str(v) for k, v in enumerate(table.ids)]
+
+
+def _image(data: bytes, image_format: str) -> Response:
+    from .. import charts
+
+    return Response(data, mimetype=charts.MIME_TYPES[image_format])
+
+
+_IMAGE_RESPONSES = {
+    "responses": {
+        200: {
+            "description": "The chart.",
+            "content": {
+                "image/svg+xml": {"schema": {"type": "string"}},
+                "image/png": {"schema": {"type": "string", "contentMediaType": "image/png"}},
+            },
+        }
+    }
+}
+
+
+@blp.route("/track", methods=["POST"])
+@blp.arguments(
+    TrackChartRequestSchema(), example=load_example("chart_track_request.json"), csv_answer=False
+)
+@blp.doc(**_IMAGE_RESPONSES)
+def track(args):
+    """Chart the tracks of stars across the sky.
+
+    Draws the path of each star (straight-line space motion) from `start` to `stop`, with
+    dots at evenly spaced epochs, the nearby IAU constellation boundaries with their
+    abbreviations, and the points where a track crosses a boundary (diamonds, labelled
+    with the two constellations and the epoch). In the SVG every track is one path in a
+    group `track-<index>`; boundaries are groups `boundary-<ABBR>`, crossings
+    `crossing-<k>`.
+    """
+    from .. import charts
+
+    table = args["stars"]
+    if table.size > charts.MAX_TRACKS:
+        abort(
+            422,
+            errors=[
+                {
+                    "field": "stars",
+                    "message": f"at most {charts.MAX_TRACKS} stars per track chart",
+                }
+            ],
+        )
+    if args["stop"] <= args["start"]:
+        abort(422, errors=[{"field": "stop", "message": "must be later than start"}])
+    if args["stop"] - args["start"] > 200_000.0:
+        abort(422, errors=[{"field": "stop", "message": "at most 200,000 years after start"}])
+    chart = charts.sky_tracks(
+        *_columns(table),
+        catalogue_epoch_jyear=args["catalogue_epoch"],
+        start_jyear=args["start"],
+        stop_jyear=args["stop"],
+        ticks=args["ticks"],
+        labels=_labels(table),
+        boundaries=args["boundaries"],
+    )
+    image_format = _image_format(args)
+    return _image(
+        charts.render_tracks(chart, title=args["title"], image_format=image_format),
+        image_format,
+    )
+
+
+@blp.route("/field", methods=["POST"])
+@blp.arguments(
+    FieldChartRequestSchema(), example=load_example("chart_field_request.json"), csv_answer=False
+)
+@blp.doc(**_IMAGE_RESPONSES)
+def field(args):
+    """Chart a star field at two epochs side by side, with motion arrows.
+
+    Two all-sky panels (Hammer equal-area projection, right ascension increasing to the
+    left): the stars at the first and at the second epoch, each with an arrow to where it
+    will be `arrow_years` later (default: the interval between the epochs). Marker size
+    grows with parallax; stars without a positive parallax are drawn open.
+    """
+    from .. import charts
+
+    table = args["stars"]
+    if table.size > MAX_FIELD_STARS:
+        abort(
+            422,
+            errors=[{"field": "stars", "message": f"at most {MAX_FIELD_STARS} stars per field"}],
+        )
+    e1, e2 = args["epochs"]
+    if args["arrow_years"] is None and e1 == e2:
+        abort(422, errors=[{"field": "epochs", "message": "the two epochs must differ"}])
+    chart = charts.star_field(
+        *_columns(table),
+        catalogue_epoch_jyear=args["catalogue_epoch"],
+        epochs_jyear=(e1, e2),
+        arrow_years=args["arrow_years"],
+        labels=_labels(table),
+    )
+    image_format = _image_format(args)
+    return _image(
+        charts.render_field(chart, title=args["title"], image_format=image_format),
+        image_format,
+    )
+
+
+def register(app, api):
+    api.register_blueprint(blp)

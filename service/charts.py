@@ -1,0 +1,741 @@
+"""Charts of stellar motion, as SVG or PNG: sky tracks and two-epoch star fields.
+
+Two charts, each in two steps: a computation with the core that returns plain arrays
+(:func:`sky_tracks`, :func:`star_field`) and a rendering of those arrays with matplotlib
+(:func:`render_tracks`, :func:`render_field`), object-oriented and on the Agg/SVG canvases
+only (no pyplot, no global state, safe in threads).
+
+Sky tracks
+    The path of one or a few stars across the sky over a span of epochs (straight-line
+    space motion, Hipparcos formulation), with tick marks at evenly spaced epochs, the
+    nearby IAU constellation boundaries with their abbreviations, and the points where a
+    track crosses a boundary. Plotted in right ascension and declination, degrees, right
+    ascension increasing to the left (the sky as seen from inside), with the declination
+    axis scaled by 1/cos(dec) at the centre so that small regions keep their shape.
+Star field
+    A set of stars on the whole sky (Hammer equal-area projection, right ascension
+    increasing to the left) at two epochs side by side, each star with an arrow to where it
+    will be after ``arrow_years`` (by default the interval between the two epochs, so the
+    arrows of the first panel end at the places of the second).
+
+In the SVG output every track is one ``<path>`` inside a group with ``id="track-<k>"``
+(k = position of the star in the request), boundaries are groups ``id="boundary-<ABBR>"``
+and crossing marks ``id="crossing-<k>"``, so the drawing can be styled or checked.
+Boundaries are drawn when the constellation module of the core is installed.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import threading
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .core import propagation as core_propagation
+
+#: Colours and marks (our own design): a night-blue page, warm tracks, pale boundaries.
+PAGE_COLOUR = "#0e1a2b"
+PANEL_COLOUR = "#122238"
+GRID_COLOUR = "#2b4160"
+TEXT_COLOUR = "#dfe7f2"
+MUTED_TEXT_COLOUR = "#8da3bf"
+BOUNDARY_COLOUR = "#6f8db3"
+TRACK_COLOURS = ("#f4a259", "#f25c54", "#7bd389", "#c49bff", "#5bc0eb", "#ffe066")
+TICK_COLOUR = "#ffffff"
+CROSSING_COLOUR = "#ffe066"
+FIELD_FIRST_COLOUR = "#f4a259"
+FIELD_SECOND_COLOUR = "#5bc0eb"
+ARROW_COLOUR = "#dfe7f2"
+
+#: Most stars drawn as tracks in one chart (legibility).
+MAX_TRACKS = 12
+#: Points along each track (the straight-line motion is smooth; this is plenty).
+TRACK_SAMPLES = 401
+#: Margin around the tracks, as a fraction of their extent, and at least this, degrees.
+VIEW_MARGIN_FRACTION = 0.25
+VIEW_MARGIN_MIN_DEG = 0.5
+#: Epoch labels closer than this fraction of the chart's span to the previous one are left
+#: out (the dot stays); constellation labels need this fraction of the span around them.
+TICK_LABEL_SPACING_FRACTION = 0.05
+LABEL_MIN_ROOM_FRACTION = 0.025
+#: Grid of probe points used to find the constellations present in the view.
+PROBE_GRID = 60
+#: PNG resolution, dots per inch.
+PNG_DPI = 150
+IMAGE_FORMATS = ("svg", "png")
+_SAVE_LOCK = threading.Lock()
+#: Motion arrows shorter than this are not drawn (the head would hide the star), radians.
+MIN_ARROW_RAD = math.radians(0.4)
+MIME_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
+
+
+@dataclass(frozen=True)
+class StarTrack:
+    """One star's path: positions at ``epochs_jyear`` and at the tick epochs (degrees)."""
+
+    label: str
+    epochs_jyear: np.ndarray
+    ra_deg: np.ndarray
+    dec_deg: np.ndarray
+    tick_epochs_jyear: np.ndarray
+    tick_ra_deg: np.ndarray
+    tick_dec_deg: np.ndarray
+
+
+@dataclass(frozen=True)
+class Crossing:
+    """A track crossing a constellation boundary: which star, when (Julian epoch, TDB),
+    where (ICRS, degrees) and between which constellations (IAU abbreviations)."""
+
+    star: int
+    epoch_jyear: float
+    ra_deg: float
+    dec_deg: float
+    from_abbreviation: str
+    to_abbreviation: str
+
+
+@dataclass(frozen=True)
+class Boundary:
+    """The outline of one constellation as polylines (ICRS degrees, -180..180 longitude)."""
+
+    abbreviation: str
+    polylines: list
+
+
+@dataclass(frozen=True)
+class TrackChart:
+    """Everything a sky-track chart shows (see :func:`sky_tracks`)."""
+
+    tracks: list
+    crossings: list = field(default_factory=list)
+    boundaries: list = field(default_factory=list)
+    labels: list = field(default_factory=list)  # (abbreviation, ra_deg, dec_deg)
+    centre_ra_deg: float = 0.0
+    view: tuple = (0.0, 1.0, 0.0, 1.0)  # ra_lo, ra_hi (unwrapped), dec_lo, dec_hi
+    boundaries_available: bool = False
+
+
+@dataclass(frozen=True)
+class FieldChart:
+    """Positions of stars at two epochs and the ends of their motion arrows (degrees)."""
+
+    labels: list
+    epochs_jyear: tuple
+    ra_deg: np.ndarray  # (2, N)
+    dec_deg: np.ndarray  # (2, N)
+    arrow_ra_deg: np.ndarray  # (2, N): where each star is arrow_years later
+    arrow_dec_deg: np.ndarray
+    parallax_mas: np.ndarray  # (N,)
+    arrow_years: float
+
+
+def _constellations():
+    """The core's constellation module, or None if this installation lacks it."""
+    try:
+        from .core import constellations
+    except ImportError:
+        return None
+    return constellations
+
+
+def _wrap180(x):
+    return (np.asarray(x, dtype=float) + 180.0) % 360.0 - 180.0
+
+
+def _circular_mean_deg(ra_deg) -> float:
+    a = np.radians(np.asarray(ra_deg, dtype=float))
+    return float(np.degrees(np.arctan2(np.sin(a).mean(), np.cos(a).mean())) % 360.0)
+
+
+def _positions(astrometry: dict, catalogue_epoch: float, epochs):
+    """ICRS (ra, dec) in degrees of N stars at M epochs: arrays (N, M)."""
+    a = {k: np.asarray(v, dtype=float)[:, None] for k, v in astrometry.items()}
+    result, _flags = core_propagation.propagate_standard(
+        a["ra_deg"],
+        a["dec_deg"],
+        a["parallax_mas"],
+        a["pm_ra_cosdec_mas_yr"],
+        a["pm_dec_mas_yr"],
+        a["radial_velocity_km_s"],
+        catalogue_epoch,
+        np.asarray(epochs, dtype=float)[None, :],
+    )
+    return result.ra_deg, result.dec_deg
+
+
+def _astrometry(ra_deg, dec_deg, parallax_mas, pm_ra, pm_dec, rv) -> dict:
+    n = np.asarray(ra_deg).size
+
+    def col(x):
+        if x is None:
+            return np.full(n, np.nan)
+        return np.broadcast_to(np.asarray(x, dtype=float), (n,)).copy()
+
+    return {
+        "ra_deg": col(ra_deg),
+        "dec_deg": col(dec_deg),
+        "parallax_mas": col(parallax_mas),
+        "pm_ra_cosdec_mas_yr": col(pm_ra),
+        "pm_dec_mas_yr": col(pm_dec),
+        "radial_velocity_km_s": col(rv),
+    }
+
+
+def sky_tracks(
+    ra_deg,
+    dec_deg,
+    parallax_mas,
+    pm_ra_cosdec_mas_yr,
+    pm_dec_mas_yr,
+    radial_velocity_km_s,
+    *,
+    catalogue_epoch_jyear: float,
+    start_jyear: float,
+    stop_jyear: float,
+    ticks: int = 6,
+    labels=None,
+    boundaries: bool = True,
+) -> TrackChart:
+    """Compute the tracks of stars over a span of epochs, with boundaries and crossings.
+
+    Parameters
+    ----------
+    ra_deg, dec_deg : array_like, shape (N,)
+        ICRS position at the catalogue epoch, degrees.
+    parallax_mas : array_like, shape (N,)
+        Parallax, mas (NaN = unknown: the track is then the proper motion alone).
+    pm_ra_cosdec_mas_yr, pm_dec_mas_yr : array_like, shape (N,)
+        Proper motion, mas/yr (the RA component includes cos(dec)).
+    radial_velocity_km_s : array_like, shape (N,)
+        Radial velocity, km/s (NaN = unknown, taken as zero for the motion).
+    catalogue_epoch_jyear, start_jyear, stop_jyear : float
+        Julian epochs (TDB) of the astrometry and of the two ends of the track.
+    ticks : int
+        Number of evenly spaced epochs marked on each track, both ends included (>= 2).
+    labels : sequence of str, optional
+        Star labels (default: "star 0", "star 1", ...).
+    boundaries : bool
+        Find the constellation boundaries in the view and the crossings (needs the core's
+        constellation module; silently skipped without it, see ``boundaries_available``).
+
+    Returns
+    -------
+    TrackChart
+
+    Notes
+    -----
+    1. Positions come from the standard straight-line model (Hipparcos Catalogue Vol. 1,
+       section 1.5.5) through :func:`service.core.propagation.propagate_standard`.
+    2. Crossings come from the constellation module's crossing search over the same span
+       (Roman 1987 boundaries at B1875.0, FK4 reduction).
+    """
+    astro = _astrometry(
+        ra_deg, dec_deg, parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s
+    )
+    n = astro["ra_deg"].size
+    if not 1 <= n <= MAX_TRACKS:
+        raise ValueError(f"between 1 and {MAX_TRACKS} stars can be drawn as tracks, not {n}")
+    if not (math.isfinite(start_jyear) and math.isfinite(stop_jyear)) or stop_jyear <= start_jyear:
+        raise ValueError("stop must be later than start")
+    if ticks < 2:
+        raise ValueError("ticks must be at least 2")
+    labels = list(labels) if labels is not None else [f"star {k}" for k in range(n)]
+    epochs = np.linspace(start_jyear, stop_jyear, TRACK_SAMPLES)
+    tick_epochs = np.linspace(start_jyear, stop_jyear, ticks)
+    ra, dec = _positions(astro, catalogue_epoch_jyear, epochs)
+    tra, tdec = _positions(astro, catalogue_epoch_jyear, tick_epochs)
+    tracks = [
+        StarTrack(str(labels[k]), epochs, ra[k], dec[k], tick_epochs, tra[k], tdec[k])
+        for k in range(n)
+    ]
+    centre = _circular_mean_deg(ra.ravel())
+    x = centre + _wrap180(ra - centre)
+    ra_lo, ra_hi = float(x.min()), float(x.max())
+    dec_lo, dec_hi = float(dec.min()), float(dec.max())
+    cosd = max(0.2, math.cos(math.radians(0.5 * (dec_lo + dec_hi))))
+    half = 0.5 * max((ra_hi - ra_lo) * cosd, dec_hi - dec_lo)
+    pad = max(VIEW_MARGIN_MIN_DEG, VIEW_MARGIN_FRACTION * 2 * half)
+    half += pad
+    mid_x, mid_d = 0.5 * (ra_lo + ra_hi), 0.5 * (dec_lo + dec_hi)
+    d_lo, d_hi = max(-90.0, mid_d - half), min(90.0, mid_d + half)
+    view = (mid_x - half / cosd, mid_x + half / cosd, d_lo, d_hi)
+
+    cons = _constellations() if boundaries else None
+    if cons is None:
+        return TrackChart(tracks, centre_ra_deg=centre, view=view)
+    table = cons.boundary_table()
+    abbr = list(table.abbreviations)
+    # Constellations present in the view: probe a grid of points.
+    gx, gd = np.meshgrid(
+        np.linspace(view[0], view[1], PROBE_GRID), np.linspace(view[2], view[3], PROBE_GRID)
+    )
+    found_here = cons.locate(gx % 360.0, gd, with_margin=True)
+    probe = found_here.index
+    present = np.unique(probe)
+    label_score = _label_scores(gx, gd, found_here.margin_arcsec / 3600.0, x, dec, view)
+    outlines = []
+    labels_out = []
+    for x_ in present:
+        feature = cons.outline(int(x_))
+        geometry = feature["geometry"]
+        polys = (
+            [geometry["coordinates"]] if geometry["type"] == "Polygon" else geometry["coordinates"]
+        )
+        polylines = []
+        for poly in polys:
+            for ring in poly:
+                polylines.extend(_split_ring(np.asarray(ring, dtype=float)))
+        outlines.append(Boundary(abbr[int(x_)], polylines))
+        best = np.argmax(np.where(probe == x_, label_score, -np.inf))
+        if label_score.flat[best] >= LABEL_MIN_ROOM_FRACTION * (view[3] - view[2]):
+            # Only constellations with room for their abbreviation in view are labelled.
+            labels_out.append((abbr[int(x_)], float(gx.flat[best] % 360.0), float(gd.flat[best])))
+    found = cons.boundary_crossings(
+        astro["ra_deg"],
+        astro["dec_deg"],
+        astro["parallax_mas"],
+        astro["pm_ra_cosdec_mas_yr"],
+        astro["pm_dec_mas_yr"],
+        astro["radial_velocity_km_s"],
+        catalogue_epoch_jyear,
+        start_jyear,
+        stop_jyear,
+    )
+    crossings = []
+    if found.star.size:
+        for j in range(found.star.size):
+            s = int(found.star[j])
+            one = {k: v[s : s + 1] for k, v in astro.items()}
+            pra, pdec = _positions(one, catalogue_epoch_jyear, [float(found.epoch_jyear[j])])
+            crossings.append(
+                Crossing(
+                    s,
+                    float(found.epoch_jyear[j]),
+                    float(pra[0, 0]),
+                    float(pdec[0, 0]),
+                    abbr[int(found.from_index[j])],
+                    abbr[int(found.to_index[j])],
+                )
+            )
+    return TrackChart(tracks, crossings, outlines, labels_out, centre, view, True)
+
+
+def _label_scores(gx, gd, margin_deg, track_x, track_dec, view):
+    """Where a constellation's label reads best: far from its boundary, from the tracks
+    and from the chart's edges (all in degrees on the sky, roughly)."""
+    cosd = max(0.2, math.cos(math.radians(0.5 * (view[2] + view[3]))))
+    tx = track_x.ravel()[::8]
+    td = track_dec.ravel()[::8]
+    d_track = np.min(np.hypot((gx[..., None] - tx) * cosd, gd[..., None] - td), axis=-1)
+    d_edge = np.minimum.reduce(
+        [(gx - view[0]) * cosd, (view[1] - gx) * cosd, gd - view[2], view[3] - gd]
+    )
+    return np.minimum.reduce([margin_deg, d_track, 1.5 * d_edge])
+
+
+def _split_ring(ring: np.ndarray) -> list:
+    """A GeoJSON ring -> polylines without the artificial edges along the antimeridian."""
+    lon = ring[:, 0]
+    on_cut = np.isclose(np.abs(lon), 180.0, atol=1e-9)
+    artificial = on_cut[:-1] & on_cut[1:]
+    pieces, start = [], 0
+    for k in np.flatnonzero(artificial):
+        if k + 1 - start >= 2:
+            pieces.append(ring[start : k + 1])
+        start = k + 1
+    if len(ring) - start >= 2:
+        pieces.append(ring[start:])
+    return pieces
+
+
+# ------------------------------------------------------------------ rendering
+
+
+def _figure(width_in: float, height_in: float):
+    from matplotlib.figure import Figure
+
+    return Figure(figsize=(width_in, height_in), facecolor=PAGE_COLOUR, layout="constrained")
+
+
+def _save(fig, image_format: str) -> bytes:
+    import matplotlib
+
+    if image_format not in IMAGE_FORMATS:
+        raise ValueError(f"image format must be one of {IMAGE_FORMATS}")
+    buf = io.BytesIO()
+    rc = {"svg.fonttype": "none", "svg.hashsalt": "skydrift", "svg.id": "skydrift-chart"}
+    # rc_context changes matplotlib's global settings: one chart at a time is written, so
+    # threads of one worker cannot see each other's settings.
+    with _SAVE_LOCK, matplotlib.rc_context(rc):
+        if image_format == "svg":
+            fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "Skydrift"})
+        else:
+            fig.savefig(buf, format="png", dpi=PNG_DPI, metadata={"Software": "Skydrift"})
+    return buf.getvalue()
+
+
+def _style_axes(ax) -> None:
+    ax.set_facecolor(PANEL_COLOUR)
+    ax.tick_params(colors=MUTED_TEXT_COLOUR, labelsize=8)
+    for spine in ax.spines.values():
+        spine.set_color(GRID_COLOUR)
+    ax.grid(True, color=GRID_COLOUR, linewidth=0.6, linestyle=":")
+
+
+def _side_offsets(ax, x, y, tx, ty, view, cosd) -> list:
+    """Label offsets (points) beside each tick, on the right-hand side of the motion as
+    seen on the chart (right ascension to the left), so labels do not sit on the track."""
+    span = max((view[1] - view[0]) * cosd, view[3] - view[2]) or 1.0
+    out = []
+    for xx, yy in zip(tx, ty, strict=True):
+        k = int(np.argmin(np.hypot((x - xx) * cosd, y - yy)))
+        k0, k1 = max(k - 1, 0), min(k + 1, x.size - 1)
+        dx = -(x[k1] - x[k0]) * cosd  # screen x grows to the right, RA to the left
+        dy = y[k1] - y[k0]
+        norm = math.hypot(dx, dy)
+        if norm < 1e-12 * span:
+            out.append((6.0, 4.0))
+            continue
+        out.append((8.0 * dy / norm, -8.0 * dx / norm))
+    return out
+
+
+def _epoch_text(epoch: float, step: float) -> str:
+    decimals = 0 if step >= 5 else 1 if step >= 0.5 else 2
+    return f"{epoch:.{decimals}f}"
+
+
+def render_tracks(
+    chart: TrackChart,
+    *,
+    title: str | None = None,
+    image_format: str = "svg",
+    size_in: tuple = (8.0, 7.0),
+) -> bytes:
+    """Draw a :class:`TrackChart`; returns the SVG or PNG bytes."""
+    from matplotlib.collections import LineCollection
+    from matplotlib.ticker import FuncFormatter
+
+    fig = _figure(*size_in)
+    ax = fig.add_subplot()
+    _style_axes(ax)
+    centre = chart.centre_ra_deg
+    ra_lo, ra_hi, dec_lo, dec_hi = chart.view
+
+    def x_of(ra):
+        return centre + _wrap180(np.asarray(ra) - centre)
+
+    for b in chart.boundaries:
+        segs = []
+        for line in b.polylines:
+            x = x_of(line[:, 0])
+            y = line[:, 1]
+            # Split where the unwrapped longitude jumps (an outline far from the view).
+            jumps = np.flatnonzero(np.abs(np.diff(x)) > 180.0)
+            for piece_x, piece_y in zip(
+                np.split(x, jumps + 1), np.split(y, jumps + 1), strict=True
+            ):
+                if piece_x.size >= 2:
+                    segs.append(np.column_stack([piece_x, piece_y]))
+        lc = LineCollection(segs, colors=BOUNDARY_COLOUR, linewidths=0.8, alpha=0.8, zorder=1)
+        lc.set_gid(f"boundary-{b.abbreviation}")
+        ax.add_collection(lc)
+    for abbr, ra, dec in chart.labels:
+        ax.text(
+            float(x_of(ra)),
+            dec,
+            abbr.upper(),
+            color=MUTED_TEXT_COLOUR,
+            fontsize=11,
+            fontweight="bold",
+            alpha=0.55,
+            ha="center",
+            va="center",
+            zorder=1,
+            clip_on=True,
+        ).set_gid(f"label-{abbr}")
+    cosd = max(0.2, math.cos(math.radians(0.5 * (dec_lo + dec_hi))))
+    span = max((ra_hi - ra_lo) * cosd, dec_hi - dec_lo)
+    for k, t in enumerate(chart.tracks):
+        colour = TRACK_COLOURS[k % len(TRACK_COLOURS)]
+        x = centre + np.unwrap(_wrap180(t.ra_deg - centre), period=360.0)
+        (line,) = ax.plot(x, t.dec_deg, color=colour, linewidth=2.0, zorder=3, label=t.label)
+        line.set_gid(f"track-{k}")
+        tx = x_of(t.tick_ra_deg)
+        ticks = ax.plot(
+            tx,
+            t.tick_dec_deg,
+            linestyle="none",
+            marker="o",
+            markersize=4.5,
+            markerfacecolor=TICK_COLOUR,
+            markeredgecolor=colour,
+            markeredgewidth=1.2,
+            zorder=4,
+        )[0]
+        ticks.set_gid(f"ticks-{k}")
+        step = float(np.diff(t.tick_epochs_jyear).mean()) if t.tick_epochs_jyear.size > 1 else 1
+        offsets = _side_offsets(ax, x, t.dec_deg, tx, t.tick_dec_deg, chart.view, cosd)
+        last = None
+        for e, xx, yy, off in zip(t.tick_epochs_jyear, tx, t.tick_dec_deg, offsets, strict=True):
+            here = np.array([float(xx) * cosd, float(yy)])
+            if last is not None and np.hypot(*(here - last)) < TICK_LABEL_SPACING_FRACTION * span:
+                continue  # too close to the last labelled epoch to be read
+            last = here
+            ax.annotate(
+                _epoch_text(float(e), step),
+                (float(xx), float(yy)),
+                xytext=off,
+                textcoords="offset points",
+                color=TEXT_COLOUR,
+                fontsize=7,
+                ha="left" if off[0] >= 0 else "right",
+                va="center",
+                zorder=5,
+            )
+        ax.annotate(
+            t.label,
+            (float(tx[0]), float(t.tick_dec_deg[0])),
+            xytext=(-6, -12),
+            textcoords="offset points",
+            color=colour,
+            fontsize=9,
+            fontweight="bold",
+            ha="right",
+            zorder=5,
+        )
+    for j, c in enumerate(chart.crossings):
+        t = chart.tracks[c.star]
+        x = centre + np.unwrap(_wrap180(t.ra_deg - centre), period=360.0)
+        (off,) = _side_offsets(ax, x, t.dec_deg, [x_of(c.ra_deg)], [c.dec_deg], chart.view, cosd)
+        off = (-1.5 * off[0], -1.5 * off[1])  # the side away from the epoch labels
+        mark = ax.plot(
+            [float(x_of(c.ra_deg))],
+            [c.dec_deg],
+            linestyle="none",
+            marker="D",
+            markersize=9,
+            markerfacecolor="none",
+            markeredgecolor=CROSSING_COLOUR,
+            markeredgewidth=1.8,
+            zorder=6,
+            label="boundary crossing" if j == 0 else None,
+        )[0]
+        mark.set_gid(f"crossing-{j}")
+        ax.annotate(
+            f"{c.from_abbreviation} \u2192 {c.to_abbreviation}  {c.epoch_jyear:.1f}",
+            (float(x_of(c.ra_deg)), c.dec_deg),
+            xytext=off,
+            textcoords="offset points",
+            ha="left" if off[0] >= 0 else "right",
+            va="center",
+            color=CROSSING_COLOUR,
+            fontsize=8,
+            zorder=6,
+        )
+    ax.set_xlim(ra_hi, ra_lo)  # right ascension increases to the left
+    ax.set_ylim(dec_lo, dec_hi)
+    ax.set_aspect(1.0 / cosd)
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v % 360.0:g}\u00b0"))
+    ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _p: f"{v:g}\u00b0"))
+    ax.set_xlabel("right ascension (ICRS), deg", color=MUTED_TEXT_COLOUR, fontsize=9)
+    ax.set_ylabel("declination (ICRS), deg", color=MUTED_TEXT_COLOUR, fontsize=9)
+    first, last = chart.tracks[0].epochs_jyear[[0, -1]]
+    heading = title or f"Sky tracks, J{first:.1f} to J{last:.1f} (TDB)"
+    ax.set_title(heading, color=TEXT_COLOUR, fontsize=12, loc="left")
+    note = "dots: evenly spaced epochs, labelled where room; lines: IAU constellation boundaries"
+    if not chart.boundaries_available:
+        note = "dots: evenly spaced epochs, labelled where room"
+    ax.text(
+        0.99,
+        0.01,
+        note,
+        transform=ax.transAxes,
+        ha="right",
+        va="bottom",
+        color=MUTED_TEXT_COLOUR,
+        fontsize=7,
+        zorder=7,
+        bbox={"facecolor": PANEL_COLOUR, "edgecolor": "none", "alpha": 0.9, "pad": 2},
+    )
+    legend = ax.legend(
+        loc="best",
+        fontsize=8,
+        facecolor=PAGE_COLOUR,
+        edgecolor=GRID_COLOUR,
+        labelcolor=TEXT_COLOUR,
+    )
+    legend.set_gid("legend")
+    return _save(fig, image_format)
+
+
+def star_field(
+    ra_deg,
+    dec_deg,
+    parallax_mas,
+    pm_ra_cosdec_mas_yr,
+    pm_dec_mas_yr,
+    radial_velocity_km_s,
+    *,
+    catalogue_epoch_jyear: float,
+    epochs_jyear: tuple,
+    arrow_years: float | None = None,
+    labels=None,
+) -> FieldChart:
+    """Positions of stars at two epochs, and where each will be ``arrow_years`` later.
+
+    Parameters
+    ----------
+    ra_deg ... radial_velocity_km_s : array_like, shape (N,)
+        Astrometry at the catalogue epoch (units as in :func:`sky_tracks`).
+    catalogue_epoch_jyear : float
+        Julian epoch (TDB) of the astrometry.
+    epochs_jyear : (float, float)
+        The two epochs shown, Julian epochs (TDB).
+    arrow_years : float, optional
+        Time span of the motion arrows, Julian years (default: the interval between the two
+        epochs, so the arrows of the first panel end at the places of the second).
+    labels : sequence of str, optional
+        Star labels.
+    """
+    astro = _astrometry(
+        ra_deg, dec_deg, parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s
+    )
+    n = astro["ra_deg"].size
+    e1, e2 = (float(e) for e in epochs_jyear)
+    span = float(arrow_years) if arrow_years is not None else abs(e2 - e1)
+    if not math.isfinite(span) or span <= 0:
+        raise ValueError("arrow_years must be positive (or the two epochs must differ)")
+    ra, dec = _positions(astro, catalogue_epoch_jyear, [e1, e2, e1 + span, e2 + span])
+    labels = list(labels) if labels is not None else [f"star {k}" for k in range(n)]
+    return FieldChart(
+        labels,
+        (e1, e2),
+        ra[:, :2].T.copy(),
+        dec[:, :2].T.copy(),
+        ra[:, 2:].T.copy(),
+        dec[:, 2:].T.copy(),
+        astro["parallax_mas"],
+        span,
+    )
+
+
+def _hammer_x(ra_deg):
+    """Right ascension -> Hammer-axes longitude, radians, increasing to the left."""
+    return -np.radians(_wrap180(ra_deg))
+
+
+def render_field(
+    chart: FieldChart,
+    *,
+    title: str | None = None,
+    image_format: str = "svg",
+    label_fastest: int = 3,
+    size_in: tuple = (13.0, 4.6),
+) -> bytes:
+    """Draw a :class:`FieldChart`: two all-sky panels side by side with motion arrows."""
+    from matplotlib import patheffects
+
+    fig = _figure(*size_in)
+    axes = [fig.add_subplot(1, 2, k + 1, projection="hammer") for k in range(2)]
+    plx = chart.parallax_mas
+    with np.errstate(invalid="ignore", divide="ignore"):
+        size = np.where(plx > 0, np.clip(6.0 + 22.0 * np.log10(np.abs(plx) / 2.0), 5, 60), 8)
+    known = plx > 0
+    # Angular displacement over the arrow span, degrees (for picking the fastest stars).
+    moved = np.degrees(
+        np.arccos(
+            np.clip(
+                np.sin(np.radians(chart.dec_deg[0])) * np.sin(np.radians(chart.arrow_dec_deg[0]))
+                + np.cos(np.radians(chart.dec_deg[0]))
+                * np.cos(np.radians(chart.arrow_dec_deg[0]))
+                * np.cos(np.radians(chart.arrow_ra_deg[0] - chart.ra_deg[0])),
+                -1.0,
+                1.0,
+            )
+        )
+    )
+    fastest = set(np.argsort(-moved)[:label_fastest].tolist())
+    for k, ax in enumerate(axes):
+        _style_axes(ax)
+        colour = FIELD_FIRST_COLOUR if k == 0 else FIELD_SECOND_COLOUR
+        x = _hammer_x(chart.ra_deg[k])
+        y = np.radians(chart.dec_deg[k])
+        xe = _hammer_x(chart.arrow_ra_deg[k])
+        ye = np.radians(chart.arrow_dec_deg[k])
+        for i in range(x.size):
+            if abs(xe[i] - x[i]) > math.pi:  # the arrow would cross the chart's edge
+                continue
+            if np.hypot((xe[i] - x[i]) * math.cos(y[i]), ye[i] - y[i]) < MIN_ARROW_RAD:
+                continue
+            arrow = ax.annotate(
+                "",
+                xy=(xe[i], ye[i]),
+                xytext=(x[i], y[i]),
+                arrowprops={
+                    "arrowstyle": "-|>",
+                    "color": ARROW_COLOUR,
+                    "lw": 0.9,
+                    "shrinkA": 0,
+                    "shrinkB": 0,
+                    "mutation_scale": 7,
+                },
+                zorder=2,
+            )
+            arrow.arrow_patch.set_gid(f"arrow-{k}-{i}")
+        stars = ax.scatter(
+            x[known], y[known], s=size[known], color=colour, edgecolors="none", zorder=3
+        )
+        stars.set_gid(f"stars-{k}")
+        if (~known).any():
+            faint = ax.scatter(
+                x[~known],
+                y[~known],
+                s=size[~known],
+                facecolors="none",
+                edgecolors=colour,
+                linewidths=0.8,
+                zorder=3,
+            )
+            faint.set_gid(f"stars-no-parallax-{k}")
+        for i in sorted(fastest):
+            # The label sits behind the star, opposite its arrow.
+            dx, dy = xe[i] - x[i], ye[i] - y[i]
+            norm = math.hypot(dx, dy) or 1.0
+            off = (-9.0 * dx / norm, -9.0 * dy / norm)
+            ax.annotate(
+                chart.labels[i],
+                (x[i], y[i]),
+                xytext=off,
+                textcoords="offset points",
+                ha="right" if off[0] < 0 else "left",
+                va="top" if off[1] < 0 else "bottom",
+                color=TEXT_COLOUR,
+                fontsize=7,
+                zorder=4,
+                path_effects=[patheffects.withStroke(linewidth=2.5, foreground=PANEL_COLOUR)],
+            )
+        ticks = np.radians(np.arange(-150, 181, 30))
+        ax.set_xticks(ticks)
+        ax.set_xticklabels([f"{(-t) % 360:.0f}\u00b0" for t in np.degrees(ticks)])
+        ax.tick_params(axis="x", labelsize=6, colors=MUTED_TEXT_COLOUR)
+        for label in ax.get_xticklabels():
+            label.set_alpha(0.6)  # right ascension marks stay behind the stars' labels
+        ax.set_title(f"J{chart.epochs_jyear[k]:.1f}", color=colour, fontsize=12, fontweight="bold")
+    heading = title or "Star field at two epochs"
+    fig.suptitle(heading, color=TEXT_COLOUR, fontsize=13)
+    fig.text(
+        0.5,
+        0.01,
+        f"arrows: motion over the next {chart.arrow_years:,.6g} years (straight-line model); "
+        "marker size grows with parallax; open circles: parallax unknown or not positive; "
+        "right ascension increases to the left",
+        ha="center",
+        va="bottom",
+        color=MUTED_TEXT_COLOUR,
+        fontsize=7,
+    )
+    return _save(fig, image_format)

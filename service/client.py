@@ -1,0 +1,1039 @@
+"""Python client for the Skydrift HTTP API. Needs only ``requests``.
+
+>>> from service.client import Client
+>>> with Client("http://127.0.0.1:8000") as sky:                      # doctest: +SKIP
+...     answer = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=["now"])
+
+What it does for you:
+
+* one ``requests.Session`` per client, so connections are reused;
+* a timeout on every request (connect, read), seconds;
+* retries with exponential backoff on 429, 502, 503 and 504 answers and on failed
+  connections, waiting as long as a ``Retry-After`` header asks (capped); every endpoint is
+  a pure computation, so repeating a request is safe;
+* large inputs split into requests of ``batch_size`` stars, the answers joined in order (star
+  ``index`` values count from the start of your input, as if sent at once);
+* errors raised as :class:`SkydriftError` with the problem details (status, title, detail
+  and the list of offending fields).
+
+Stars may be a list of records (dicts) or a dict of columns (lists or anything with
+``tolist()``, such as numpy arrays); NaN or None means unknown. Answers are the service's
+JSON, as Python dicts.
+
+This module imports nothing heavy (no numpy, Flask or astropy), so it can be copied into
+any script that has ``requests``.
+"""
+
+from __future__ import annotations
+
+import csv
+import email.utils
+import io
+import json
+import math
+import random
+import re
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import requests
+
+__all__ = ["Client", "FieldError", "SkydriftError", "DEFAULT_URL"]
+
+DEFAULT_URL = "http://127.0.0.1:8000"
+
+#: Most stars per boundary-crossing request (the search costs far more per star).
+CROSSING_BATCH_SIZE = 500
+
+#: Answers worth repeating: rate limited, overloaded or briefly unavailable upstream.
+RETRY_STATUSES = (429, 502, 503, 504)
+
+Stars = Sequence[Mapping[str, Any]] | Mapping[str, Sequence[Any]]
+Epoch = str | float
+Progress = Callable[[int], None]
+
+
+@dataclass(frozen=True)
+class FieldError:
+    """One offending value: its path (``stars[3].dec_deg`` or ``line 7: dec_deg``)."""
+
+    field: str
+    message: str
+
+    def __str__(self) -> str:
+        return f"{self.field}: {self.message}"
+
+
+@dataclass
+class SkydriftError(Exception):
+    """An error answer (RFC 9457 problem details) or a service that could not be reached.
+
+    Attributes
+    ----------
+    status : int or None
+        HTTP status; None when no answer came (connection failed).
+    title, detail : str
+        The problem's title and detail.
+    errors : list of FieldError
+        The offending fields, if the service listed them.
+    request_id : str or None
+        The service's request id, to quote when asking about a failure.
+    retry_after_s : float or None
+        For 429/503 answers after the last retry: how long the service asked to wait.
+    """
+
+    status: int | None
+    title: str
+    detail: str = ""
+    errors: list[FieldError] = field(default_factory=list)
+    request_id: str | None = None
+    retry_after_s: float | None = None
+
+    def __post_init__(self):
+        super().__init__(str(self))
+
+    def __str__(self) -> str:
+        head = f"{self.status} {self.title}" if self.status else self.title
+        text = f"{head}: {self.detail}" if self.detail else head
+        if self.errors:
+            text += "\n" + "\n".join(f"  {e}" for e in self.errors)
+        return text
+
+    @classmethod
+    def from_response(cls, resp: requests.Response) -> SkydriftError:
+        """Build from an error answer (problem+json, or whatever else came back)."""
+        try:
+            body = resp.json()
+        except ValueError:
+            body = None
+        if not isinstance(body, dict):
+            return cls(
+                resp.status_code,
+                resp.reason or "Error",
+                resp.text[:500].strip(),
+                request_id=resp.headers.get("X-Request-ID"),
+                retry_after_s=_retry_after_s(resp),
+            )
+        errors = [
+            FieldError(str(e.get("field", "")), str(e.get("message", "")))
+            for e in body.get("errors") or []
+            if isinstance(e, dict)
+        ]
+        return cls(
+            int(body.get("status") or resp.status_code),
+            str(body.get("title") or resp.reason or "Error"),
+            str(body.get("detail") or ""),
+            errors,
+            body.get("request_id") or resp.headers.get("X-Request-ID"),
+            _retry_after_s(resp),
+        )
+
+
+def _retry_after_s(resp: requests.Response) -> float | None:
+    """The Retry-After header in seconds (delay-seconds or an HTTP date), or None."""
+    value = resp.headers.get("Retry-After")
+    if not value:
+        return None
+    value = value.strip()
+    if value.isdigit():
+        return float(value)
+    try:
+        when = email.utils.parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    if when is None:
+        return None
+    return max(0.0, when.timestamp() - time.time())
+
+
+def _clean(value):
+    """NaN and infinities -> None (unknown), tuples -> lists, arrays -> lists."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if hasattr(value, "tolist"):
+        return _clean(value.tolist())
+    if isinstance(value, list | tuple):
+        return [_clean(v) for v in value]
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    return value
+
+
+def _default(value):
+    """JSON for array-likes (numpy arrays and scalars): their ``tolist()``."""
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    raise TypeError(f"{type(value).__name__} cannot be sent as JSON")
+
+
+def _dumps(body) -> str:
+    """JSON text of a request body; NaN and infinities are sent as null (unknown).
+
+    The common case (no NaN) is encoded directly; only a body that holds a NaN is walked
+    to replace it.
+    """
+    try:
+        return json.dumps(body, allow_nan=False, default=_default)
+    except ValueError:
+        return json.dumps(_clean(body), allow_nan=False, default=_default)
+
+
+def _count(stars: Stars) -> int:
+    if isinstance(stars, Mapping):
+        lengths = {len(v) for v in stars.values()}
+        if len(lengths) > 1:
+            raise ValueError("all columns must have the same length")
+        return lengths.pop() if lengths else 0
+    return len(stars)
+
+
+def _slice(stars: Stars, start: int, stop: int):
+    if isinstance(stars, Mapping):
+        return {k: v[start:stop] for k, v in stars.items()}
+    return list(stars[start:stop])
+
+
+def _offset_indices(items: list, offset: int) -> list:
+    if not offset:
+        return items
+    return [dict(x, index=x["index"] + offset) if "index" in x else x for x in items]
+
+
+def merge_answers(parts: list[dict], offsets: list[int]) -> dict:
+    """Join the answers of consecutive batches into one, as if sent in one request.
+
+    Lists of per-star objects (those with an ``index``) are concatenated with their indices
+    shifted; ``columns`` are concatenated star-wise (per-epoch rows side by side);
+    ``*_count`` numbers are summed; other objects are merged; anything else is taken from
+    the first batch (epochs, units, model: the same in every batch).
+    """
+    out = dict(parts[0])
+    out = {k: (list(v) if isinstance(v, list) else v) for k, v in out.items()}
+    for part, offset in zip(parts[1:], offsets[1:], strict=True):
+        for key, value in part.items():
+            mine = out.get(key)
+            if isinstance(value, list) and isinstance(mine, list):
+                if all(isinstance(x, dict) and "index" in x for x in value + mine):
+                    out[key] = mine + _offset_indices(value, offset)
+            elif key == "columns" and isinstance(value, dict) and isinstance(mine, dict):
+                out[key] = _join_columns(mine, value, offset, part.get("star_count"))
+            elif key.endswith("_count") and isinstance(value, int) and isinstance(mine, int):
+                out[key] = mine + value
+            elif isinstance(value, dict) and isinstance(mine, dict):
+                out[key] = {**mine, **value}
+            elif key not in out:
+                out[key] = value
+    return out
+
+
+def _join_columns(mine: dict, value: dict, n_mine: int, n_value: int | None) -> dict:
+    """Columns of two consecutive batches, star-wise; a column one batch lacks (e.g. no
+    star of it had uncertainties) is filled with nulls of that batch's shape."""
+
+    def epochs_of(cols):
+        return next(
+            (len(v) for k, v in cols.items() if k != "flags" and v and isinstance(v[0], list)),
+            None,
+        )
+
+    if n_value is None:
+        n_value = next((len(v) for k, v in value.items() if k in ("id", "flags") and v), 0)
+    m = epochs_of(mine) or epochs_of(value) or 0
+    cols = {}
+    for name in list(mine) + [n for n in value if n not in mine]:
+        a, b = mine.get(name), value.get(name)
+        two_d = name != "flags" and any(x and isinstance(x[0], list) for x in (a, b) if x)
+        if a is None:
+            a = [[None] * n_mine for _ in range(m)] if two_d else [None] * n_mine
+        if b is None:
+            b = [[None] * n_value for _ in range(m)] if two_d else [None] * n_value
+        cols[name] = [ra + rb for ra, rb in zip(a, b, strict=True)] if two_d else a + b
+    return cols
+
+
+_LINE = re.compile(r"^line (\d+)(.*)$")
+
+
+class Client:
+    """A Skydrift API client.
+
+    Parameters
+    ----------
+    base_url : str
+        Where the service listens, e.g. ``http://127.0.0.1:8000``.
+    timeout : float or (float, float)
+        Seconds to wait for a connection and for an answer (one number: both).
+    retries : int
+        How many times to repeat a request after a retryable answer or failed connection.
+    backoff_s : float
+        First wait between attempts, seconds; doubled each time (with jitter), at most
+        ``max_backoff_s``. A ``Retry-After`` header replaces it (at most
+        ``max_retry_after_s``).
+    batch_size : int
+        Most stars sent in one request; larger inputs are split and the answers joined.
+    token : str, optional
+        Bearer token for a service that requires one (sent as ``Authorization: Bearer``).
+    headers : dict, optional
+        Extra headers for every request.
+    session : requests.Session, optional
+        A session to use (default: a new one, closed by :meth:`close`).
+    sleep : callable, optional
+        Function used to wait (tests pass a recorder).
+    """
+
+    def __init__(
+        self,
+        base_url: str = DEFAULT_URL,
+        *,
+        timeout: float | tuple[float, float] = (5.0, 300.0),
+        retries: int = 5,
+        backoff_s: float = 0.5,
+        max_backoff_s: float = 30.0,
+        max_retry_after_s: float = 120.0,
+        batch_size: int = 100_000,
+        token: str | None = None,
+        headers: Mapping[str, str] | None = None,
+        session: requests.Session | None = None,
+        sleep: Callable[[float], None] = time.sleep,
+    ):
+        if batch_size < 1:
+            raise ValueError("batch_size must be at least 1")
+        self.base_url = base_url.rstrip("/")
+        self.timeout = timeout
+        self.retries = int(retries)
+        self.backoff_s = float(backoff_s)
+        self.max_backoff_s = float(max_backoff_s)
+        self.max_retry_after_s = float(max_retry_after_s)
+        self.batch_size = int(batch_size)
+        self._own_session = session is None
+        self.session = session or requests.Session()
+        self.session.headers.update({"User-Agent": "skydrift-client"})
+        if token:
+            self.session.headers["Authorization"] = f"Bearer {token}"
+        self.session.headers.update(dict(headers or {}))
+        self._sleep = sleep
+
+    # ------------------------------------------------------------ plumbing
+
+    def close(self) -> None:
+        """Close the connections (only if the client made its own session)."""
+        if self._own_session:
+            self.session.close()
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def _wait_s(self, attempt: int, resp: requests.Response | None) -> float:
+        if resp is not None:
+            asked = _retry_after_s(resp)
+            if asked is not None:
+                return min(asked, self.max_retry_after_s)
+        base = min(self.max_backoff_s, self.backoff_s * 2.0**attempt)
+        return base * random.uniform(0.5, 1.0)
+
+    def request(self, method: str, path: str, **kwargs) -> requests.Response:
+        """Send one request with timeout and retries; raise SkydriftError unless 2xx."""
+        url = self.base_url + path
+        kwargs.setdefault("timeout", self.timeout)
+        for attempt in range(self.retries + 1):
+            try:
+                resp = self.session.request(method, url, **kwargs)
+            except requests.ConnectionError as exc:
+                if attempt == self.retries:
+                    raise SkydriftError(None, "Service unreachable", f"{url}: {exc}") from exc
+                self._sleep(self._wait_s(attempt, None))
+                continue
+            except requests.Timeout as exc:
+                # The service is computing; repeating would only add load.
+                raise SkydriftError(None, "Timed out", f"{url}: {exc}") from exc
+            if resp.status_code in RETRY_STATUSES and attempt < self.retries:
+                self._sleep(self._wait_s(attempt, resp))
+                continue
+            if resp.status_code >= 400:
+                raise SkydriftError.from_response(resp)
+            return resp
+        raise AssertionError("unreachable")  # pragma: no cover
+
+    def get(self, path: str, **params) -> dict:
+        """GET a JSON answer."""
+        return self.request("GET", path, params=params or None).json()
+
+    def post(self, path: str, body: Mapping[str, Any]) -> dict:
+        """POST a JSON body (NaN sent as null) and return the JSON answer."""
+        data = _dumps(dict(body))
+        resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
+        return resp.json()
+
+    def post_batched(
+        self,
+        path: str,
+        body: Mapping[str, Any],
+        *,
+        table: str = "stars",
+        progress: Progress | None = None,
+        batch_size: int | None = None,
+    ) -> dict:
+        """POST a body whose ``table`` member is split into batches; join the answers."""
+        stars = body[table]
+        n = _count(stars)
+        size = batch_size or self.batch_size
+        parts, offsets = [], []
+        for start in range(0, max(n, 1), size):
+            stop = min(n, start + size)
+            part = dict(body)
+            part[table] = _slice(stars, start, stop)
+            try:
+                parts.append(self.post(path, part))
+            except SkydriftError as exc:
+                exc.errors = [_shift_index(e, table, start) for e in exc.errors]
+                raise
+            offsets.append(start)
+            if progress is not None:
+                progress(stop - start)
+        return merge_answers(parts, offsets)
+
+    def post_csv(
+        self,
+        path: str,
+        csv_text: str,
+        params: Mapping[str, Any] | None = None,
+        *,
+        progress: Progress | None = None,
+        batch_size: int | None = None,
+    ) -> str:
+        """POST a CSV star table (options as query parameters); return the CSV answer.
+
+        The table is sent in batches of ``batch_size`` rows; the answers are joined with the
+        ``index`` column counted from the first star, and line numbers in errors refer to
+        ``csv_text`` itself.
+        """
+        header, rows, lines = _read_csv(csv_text)
+        query = _query(params or {})
+        pieces: list[tuple[list[str], list[list[str]]]] = []
+        size = batch_size or self.batch_size
+        for start in range(0, max(len(rows), 1), size):
+            chunk = rows[start : start + size]
+            buf = io.StringIO()
+            writer = csv.writer(buf, lineterminator="\n")
+            writer.writerow(header)
+            chunk_lines = [lines[0]]  # header
+            writer.writerows(chunk)
+            chunk_lines.extend(lines[1 + start : 1 + start + len(chunk)])
+            try:
+                resp = self.request(
+                    "POST",
+                    path,
+                    params=query,
+                    data=buf.getvalue().encode(),
+                    headers={"Content-Type": "text/csv", "Accept": "text/csv"},
+                )
+            except SkydriftError as exc:
+                exc.errors = [_relocate(e, chunk_lines) for e in exc.errors]
+                raise
+            out_header, out_rows, _ = _read_csv(resp.content.decode("utf-8-sig"))
+            if "index" in out_header and start:
+                k = out_header.index("index")
+                for r in out_rows:
+                    r[k] = str(int(r[k]) + start)
+            pieces.append((out_header, out_rows))
+            if progress is not None:
+                progress(len(chunk))
+        return _join_csv(pieces)
+
+    # ------------------------------------------------------------ endpoints
+
+    def health(self) -> dict:
+        """GET /health: the process is alive."""
+        return self.get("/health")
+
+    def ready(self) -> dict:
+        """GET /ready: tables loaded and settings valid (raises SkydriftError on 503)."""
+        return self.get("/ready")
+
+    def openapi(self) -> dict:
+        """GET /openapi.json: the API description."""
+        return self.get("/openapi.json")
+
+    def propagate(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        target_epochs: Iterable[Epoch] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | None = None,
+        model: str = "standard",
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/propagation: move stars to other epochs.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            ``ra_deg``, ``dec_deg`` (deg), ``pm_ra_cosdec_mas_yr``, ``pm_dec_mas_yr``
+            (mas/yr), optional ``parallax_mas`` (mas), ``radial_velocity_km_s`` (km/s),
+            standard errors and correlations, ``id``.
+        catalogue_epoch : str or float
+            Epoch of the given astrometry ("J2016.0"; a number is a Julian epoch, TDB).
+        target_epochs : list of str or float, optional
+            Epochs to move to. Give this or ``target_range``.
+        target_range : (start, stop, count), optional
+            Evenly spaced epochs, both ends included.
+        model : {"standard", "light_time"}
+        layout : {"records", "columns"}, optional
+            Answer layout; default: the layout of ``stars``.
+        progress : callable, optional
+            Called with the number of stars done after each batch.
+        """
+        body = _targets(
+            {"stars": stars, "catalogue_epoch": catalogue_epoch, "model": model},
+            target_epochs,
+            target_range,
+        )
+        if layout is not None:
+            body["layout"] = layout
+        return self.post_batched("/v1/propagation", body, progress=progress)
+
+    def propagate_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        target_epochs: Iterable[Epoch] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | None = None,
+        model: str = "standard",
+        progress: Progress | None = None,
+    ) -> str:
+        """POST /v1/propagation with a CSV table; the CSV answer (one row per star, epoch)."""
+        params = _targets(
+            {"catalogue_epoch": catalogue_epoch, "model": model}, target_epochs, target_range
+        )
+        return self.post_csv("/v1/propagation", csv_text, params, progress=progress)
+
+    def velocity(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        relative_to_lsr: bool = False,
+        solar_motion_km_s: tuple[float, float, float] | None = None,
+        uncertainty_method: str = "linear",
+        monte_carlo_draws: int | None = None,
+        seed: int | None = None,
+        low_snr_threshold: float | None = None,
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/velocity: transverse, radial, total velocity, U V W, closest approach.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            Astrometry (degrees, mas, mas/yr, km/s) with optional standard errors and
+            correlations, or ``distance_pc`` in place of the parallax.
+        catalogue_epoch : str or float, optional
+            Dates the closest approach.
+        relative_to_lsr : bool
+            Also give U, V, W relative to the local standard of rest.
+        solar_motion_km_s : (U, V, W), optional
+            Sun's motion relative to the LSR, km/s (default: the service's).
+        uncertainty_method : {"linear", "monte_carlo", "auto"}
+        monte_carlo_draws, seed, low_snr_threshold : optional
+            As in the API. With ``seed`` and several batches, each batch draws from the
+            same seed, so answers depend on ``batch_size``.
+        """
+        body = self._velocity_options(
+            catalogue_epoch,
+            relative_to_lsr,
+            solar_motion_km_s,
+            uncertainty_method,
+            monte_carlo_draws,
+            seed,
+            low_snr_threshold,
+        )
+        body["stars"] = stars
+        if layout is not None:
+            body["layout"] = layout
+        return self.post_batched("/v1/velocity", body, progress=progress)
+
+    def velocity_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        relative_to_lsr: bool = False,
+        solar_motion_km_s: tuple[float, float, float] | None = None,
+        uncertainty_method: str = "linear",
+        monte_carlo_draws: int | None = None,
+        seed: int | None = None,
+        low_snr_threshold: float | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """POST /v1/velocity with a CSV table; the CSV answer (one row per star)."""
+        params = self._velocity_options(
+            catalogue_epoch,
+            relative_to_lsr,
+            solar_motion_km_s,
+            uncertainty_method,
+            monte_carlo_draws,
+            seed,
+            low_snr_threshold,
+        )
+        return self.post_csv("/v1/velocity", csv_text, params, progress=progress)
+
+    @staticmethod
+    def _velocity_options(
+        catalogue_epoch,
+        relative_to_lsr,
+        solar_motion_km_s,
+        uncertainty_method,
+        monte_carlo_draws,
+        seed,
+        low_snr_threshold,
+    ) -> dict:
+        body: dict = {"relative_to_lsr": bool(relative_to_lsr)}
+        body["uncertainty_method"] = uncertainty_method
+        optional = {
+            "catalogue_epoch": catalogue_epoch,
+            "monte_carlo_draws": monte_carlo_draws,
+            "seed": seed,
+            "low_snr_threshold": low_snr_threshold,
+        }
+        body.update({k: v for k, v in optional.items() if v is not None})
+        if solar_motion_km_s is not None:
+            u, v, w = solar_motion_km_s
+            body["solar_motion"] = {"u_km_s": u, "v_km_s": v, "w_km_s": w}
+        return body
+
+    def velocity_observables(
+        self,
+        stars: Stars,
+        *,
+        relative_to_lsr: bool = False,
+        solar_motion_km_s: tuple[float, float, float] | None = None,
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/velocity/observables: proper motion and radial velocity from U V W.
+
+        ``stars``: ``ra_deg``, ``dec_deg``, ``u_km_s``, ``v_km_s``, ``w_km_s`` and
+        ``parallax_mas`` or ``distance_pc``.
+        """
+        body: dict = {"stars": stars, "relative_to_lsr": bool(relative_to_lsr)}
+        if solar_motion_km_s is not None:
+            u, v, w = solar_motion_km_s
+            body["solar_motion"] = {"u_km_s": u, "v_km_s": v, "w_km_s": w}
+        if layout is not None:
+            body["layout"] = layout
+        return self.post_batched("/v1/velocity/observables", body, progress=progress)
+
+    def constellations(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        epoch: Epoch | None = None,
+        margins: bool = False,
+        near_boundary_arcsec: float | None = None,
+        reduction: str | None = None,
+        layout: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/constellations/lookup (or /margins): the IAU constellation of each star.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            ``ra_deg``, ``dec_deg`` (ICRS, deg); with ``pm_ra_cosdec_mas_yr``,
+            ``pm_dec_mas_yr`` (and optionally ``parallax_mas``, ``radial_velocity_km_s``)
+            the stars are first moved from ``catalogue_epoch`` to ``epoch``.
+        margins : bool
+            Also the distance to the nearest boundary (arcsec) and the constellation across.
+        near_boundary_arcsec : float, optional
+            Margin under which a star is flagged near_boundary (with ``margins``).
+        reduction : {"fk4", "fk5", "fk5_iau1976"}, optional
+            Reduction to the boundaries' equinox B1875.0 (service default: fk4).
+        """
+        body = self._constellation_options(catalogue_epoch, epoch, near_boundary_arcsec, reduction)
+        body["stars"] = stars
+        if layout is not None:
+            body["layout"] = layout
+        path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
+        return self.post_batched(path, body, progress=progress)
+
+    def constellations_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch | None = None,
+        epoch: Epoch | None = None,
+        margins: bool = False,
+        near_boundary_arcsec: float | None = None,
+        reduction: str | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """The constellations of a CSV table of stars, as CSV (one row per star)."""
+        params = self._constellation_options(
+            catalogue_epoch, epoch, near_boundary_arcsec, reduction
+        )
+        path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
+        return self.post_csv(path, csv_text, params, progress=progress)
+
+    @staticmethod
+    def _constellation_options(catalogue_epoch, epoch, near_boundary_arcsec, reduction) -> dict:
+        options = {
+            "catalogue_epoch": catalogue_epoch,
+            "epoch": epoch,
+            "near_boundary_arcsec": near_boundary_arcsec,
+            "reduction": reduction,
+        }
+        return {k: v for k, v in options.items() if v is not None}
+
+    def constellation_crossings(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        start: Epoch,
+        end: Epoch,
+        max_step_yr: float | None = None,
+        reduction: str | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/constellations/crossings: every boundary crossing in a time window.
+
+        The search costs far more per star than the other endpoints, so stars are sent in
+        batches of at most ``CROSSING_BATCH_SIZE``.
+        """
+        body = {"catalogue_epoch": catalogue_epoch, "start": start, "end": end}
+        body.update(
+            {
+                k: v
+                for k, v in (("max_step_yr", max_step_yr), ("reduction", reduction))
+                if v is not None
+            }
+        )
+        body["stars"] = stars
+        return self.post_batched(
+            "/v1/constellations/crossings",
+            body,
+            progress=progress,
+            batch_size=min(self.batch_size, CROSSING_BATCH_SIZE),
+        )
+
+    def constellation_crossings_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        start: Epoch,
+        end: Epoch,
+        max_step_yr: float | None = None,
+        reduction: str | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """Boundary crossings of a CSV table of stars, as CSV (one row per crossing)."""
+        params = {"catalogue_epoch": catalogue_epoch, "start": start, "end": end}
+        params.update({"max_step_yr": max_step_yr, "reduction": reduction})
+        return self.post_csv(
+            "/v1/constellations/crossings",
+            csv_text,
+            params,
+            progress=progress,
+            batch_size=min(self.batch_size, CROSSING_BATCH_SIZE),
+        )
+
+    def constellation_list(self) -> dict:
+        """GET /v1/constellations: the 88 IAU constellations, names and areas."""
+        return self.get("/v1/constellations")
+
+    def constellation_outline(
+        self,
+        abbreviation: str,
+        *,
+        frame: str | None = None,
+        equinox: Epoch | None = None,
+        reduction: str | None = None,
+        tolerance_arcsec: float | None = None,
+    ) -> dict:
+        """GET /v1/constellations/<abbreviation>/outline: the outline as a GeoJSON Feature."""
+        params = _outline_params(frame, equinox, reduction, tolerance_arcsec)
+        return self.get(f"/v1/constellations/{abbreviation}/outline", **params)
+
+    def constellation_outlines(
+        self,
+        *,
+        frame: str | None = None,
+        equinox: Epoch | None = None,
+        reduction: str | None = None,
+        tolerance_arcsec: float | None = None,
+    ) -> dict:
+        """GET /v1/constellations/outlines: all 88 outlines, a GeoJSON FeatureCollection."""
+        params = _outline_params(frame, equinox, reduction, tolerance_arcsec)
+        return self.get("/v1/constellations/outlines", **params)
+
+    def frames(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        from_frame: str | Mapping[str, Any],
+        to_frame: str | Mapping[str, Any] = "icrs",
+        target_epochs: Iterable[Epoch] | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/frames: position, motion, parallax, radial velocity in another frame.
+
+        Frames are a name ("icrs", "fk5", "fk4", "galactic", "ecliptic") or an object
+        ``{"name": "fk4", "equinox": "B1950.0"}``. With ``target_epochs`` the stars are also
+        moved (straight-line model) to those epochs.
+        """
+        body: dict = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "from_frame": _frame(from_frame),
+            "to_frame": _frame(to_frame),
+        }
+        if target_epochs is not None:
+            epochs = (
+                [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
+            )
+            body["target_epochs"] = list(epochs)
+        return self.post_batched("/v1/frames", body, progress=progress)
+
+    def observed(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        instants: Iterable[Epoch] | Epoch,
+        site: str | Mapping[str, float],
+        frame: str | Mapping[str, Any] | None = None,
+        atmosphere: Mapping[str, float | None] | None = None,
+        horizon_limit_deg: float | None = None,
+        sun_avoidance_deg: float | None = None,
+        progress: Progress | None = None,
+    ) -> dict:
+        """POST /v1/observed: observed places at a site, with advisory Sun/horizon figures.
+
+        Parameters
+        ----------
+        stars : list of dict or dict of columns
+            Astrometry at ``catalogue_epoch`` (in ``frame``, default ICRS).
+        instants : epoch or list of epochs
+            Instants of observation (ISO 8601 UTC or any epoch form).
+        site : str or dict
+            A configured site name (the demo's "kestrel-ridge") or ``{"latitude_deg",
+            "longitude_deg", "height_m"}``.
+        atmosphere : dict, optional
+            ``pressure_hpa``, ``temperature_c``, ``relative_humidity``, ``wavelength_um``.
+        horizon_limit_deg, sun_avoidance_deg : float, optional
+            Limits for the advisory flags, degrees. The figures are advisory: the facility's
+            own interlocks and safety rules decide where a telescope may point.
+        """
+        when = [instants] if isinstance(instants, str | float | int) else list(instants)
+        body: dict = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "instants": when,
+            "site": site,
+        }
+        optional = {
+            "frame": None if frame is None else _frame(frame),
+            "atmosphere": atmosphere,
+            "horizon_limit_deg": horizon_limit_deg,
+            "sun_avoidance_deg": sun_avoidance_deg,
+        }
+        body.update({k: v for k, v in optional.items() if v is not None})
+        return self.post_batched("/v1/observed", body, progress=progress)
+
+    def observed_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        instants: Iterable[Epoch] | Epoch,
+        site: str | Mapping[str, float],
+        horizon_limit_deg: float | None = None,
+        sun_avoidance_deg: float | None = None,
+        progress: Progress | None = None,
+    ) -> str:
+        """Observed places of a CSV table of stars, as CSV (one row per star and instant).
+
+        ``site`` is a configured name or ``{"latitude_deg", "longitude_deg", "height_m"}``.
+        The Sun and horizon figures and flags are advisory.
+        """
+        when = [instants] if isinstance(instants, str | float | int) else list(instants)
+        params: dict = {"catalogue_epoch": catalogue_epoch, "instants": when}
+        params["site"] = site if isinstance(site, str) else json.dumps(dict(site))
+        params.update(
+            {"horizon_limit_deg": horizon_limit_deg, "sun_avoidance_deg": sun_avoidance_deg}
+        )
+        return self.post_csv("/v1/observed", csv_text, params, progress=progress)
+
+    def chart_track(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        start: Epoch,
+        stop: Epoch,
+        ticks: int = 6,
+        image_format: str = "svg",
+        boundaries: bool = True,
+        title: str | None = None,
+    ) -> bytes:
+        """POST /v1/charts/track: the tracks of a few stars across the sky, as SVG or PNG."""
+        body = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "start": start,
+            "stop": stop,
+            "ticks": ticks,
+            "format": image_format,
+            "boundaries": boundaries,
+        }
+        if title is not None:
+            body["title"] = title
+        return self._image("/v1/charts/track", body)
+
+    def chart_field(
+        self,
+        stars: Stars,
+        *,
+        catalogue_epoch: Epoch,
+        epochs: tuple[Epoch, Epoch],
+        arrow_years: float | None = None,
+        image_format: str = "svg",
+        title: str | None = None,
+    ) -> bytes:
+        """POST /v1/charts/field: a star field at two epochs side by side, motion arrows."""
+        body = {
+            "stars": stars,
+            "catalogue_epoch": catalogue_epoch,
+            "epochs": list(epochs),
+            "format": image_format,
+        }
+        if arrow_years is not None:
+            body["arrow_years"] = arrow_years
+        if title is not None:
+            body["title"] = title
+        return self._image("/v1/charts/field", body)
+
+    def _image(self, path: str, body: dict) -> bytes:
+        data = _dumps(body)
+        resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
+        return resp.content
+
+
+def _frame(frame) -> dict:
+    return {"name": frame} if isinstance(frame, str) else dict(frame)
+
+
+def _outline_params(frame, equinox, reduction, tolerance_arcsec) -> dict:
+    params = {
+        "frame": frame,
+        "equinox": equinox,
+        "reduction": reduction,
+        "tolerance_arcsec": tolerance_arcsec,
+    }
+    return {k: v for k, v in params.items() if v is not None}
+
+
+def _targets(body: dict, target_epochs, target_range) -> dict:
+    if (target_epochs is None) == (target_range is None):
+        raise ValueError("give exactly one of target_epochs or target_range")
+    if target_epochs is not None:
+        epochs = [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
+        body["target_epochs"] = list(epochs)
+    else:
+        start, stop, count = target_range
+        body["target_range"] = {"start": start, "stop": stop, "count": int(count)}
+    return body
+
+
+def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:
+    """Request options as query parameters: lists repeated, objects with dotted names."""
+    out: list[tuple[str, str]] = []
+    for key, value in params.items():
+        if value is None:
+            continue
+        if isinstance(value, Mapping):
+            out.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
+        elif isinstance(value, list | tuple):
+            out.extend((key, str(v)) for v in value)
+        elif isinstance(value, bool):
+            out.append((key, "true" if value else "false"))
+        else:
+            out.append((key, str(value)))
+    return out
+
+
+def _read_csv(text: str) -> tuple[list[str], list[list[str]], list[int]]:
+    """CSV text -> (header, data rows, line numbers of [header, rows...]); blank lines out."""
+    reader = csv.reader(io.StringIO(text, newline=""))
+    header: list[str] | None = None
+    rows: list[list[str]] = []
+    lines: list[int] = []
+    last = 0
+    for row in reader:
+        start, last = last + 1, reader.line_num
+        if not row or (len(row) == 1 and not row[0].strip()):
+            continue
+        if header is None:
+            header = row
+        else:
+            rows.append(row)
+        lines.append(start)
+    if header is None:
+        raise ValueError("the CSV text has no header row")
+    return header, rows, lines
+
+
+def _shift_index(error: FieldError, table: str, offset: int) -> FieldError:
+    """'stars[3].dec_deg' or 'stars.dec_deg[3]' in a batch -> the index in the whole input."""
+    if not offset:
+        return error
+    pattern = re.compile(rf"^({re.escape(table)}(?:\.[A-Za-z0-9_*]+)?)\[(\d+)\]")
+    m = pattern.match(error.field)
+    if not m:
+        return error
+    field = f"{m.group(1)}[{int(m.group(2)) + offset}]" + error.field[m.end() :]
+    return FieldError(field, error.message)
+
+
+def _relocate(error: FieldError, chunk_lines: list[int]) -> FieldError:
+    """'line 3: dec_deg' in a batch -> the same cell's line in the caller's text."""
+    m = _LINE.match(error.field)
+    if not m:
+        return error
+    k = int(m.group(1)) - 1  # the batch is written one row per line, header first
+    if 0 <= k < len(chunk_lines):
+        return FieldError(f"line {chunk_lines[k]}{m.group(2)}", error.message)
+    return error
+
+
+def _join_csv(pieces: list[tuple[list[str], list[list[str]]]]) -> str:
+    """Join CSV answers whose headers may differ (a column only some batches have)."""
+    header: list[str] = list(pieces[0][0])
+    for h, _ in pieces[1:]:
+        for pos, name in enumerate(h):
+            if name not in header:
+                before = h[pos - 1] if pos else None
+                at = header.index(before) + 1 if before in header else len(header)
+                header.insert(at, name)
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\r\n")
+    writer.writerow(header)
+    for h, rows in pieces:
+        if h == header:
+            writer.writerows(rows)
+            continue
+        where = [h.index(name) if name in h else None for name in header]
+        writer.writerows([[r[k] if k is not None else "" for k in where] for r in rows])
+    return buf.getvalue()

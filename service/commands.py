@@ -1,0 +1,719 @@
+"""Batch commands of ``skydrift``: catalogue files in, results out, locally or via a service.
+
+Every command reads a catalogue (CSV with a header row of field names, units in the names:
+``id,ra_deg,dec_deg,parallax_mas,pm_ra_cosdec_mas_yr,pm_dec_mas_yr,radial_velocity_km_s``,
+empty cell = unknown; or a JSON file with a ``stars`` list) and either computes in this
+process (default) or sends the work to a running service (``--url``). Both ways run the same
+request pipeline, so the output is identical. Work is sent in batches (``--batch-size``);
+a progress bar is shown on a terminal and nothing when standard error is not one.
+"""
+
+from __future__ import annotations
+
+import argparse
+import csv
+import io
+import json
+import os
+import pathlib
+import re
+import sys
+
+from .client import Client, SkydriftError, _read_csv, _relocate
+
+DEFAULT_CATALOGUE_EPOCH = "J2016.0"
+DEFAULT_BATCH_SIZE = 10_000
+
+CATALOGUE_HELP = (
+    "catalogue file: CSV with a header row of field names (id, ra_deg, dec_deg, "
+    "parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s, optional "
+    "standard errors *_error_* and correlations correlation_*; empty cell = unknown), or "
+    "JSON with a 'stars' list; '-' reads CSV from standard input"
+)
+
+EPILOG = """\
+Epochs: 2016.0 or J2016.0 (Julian epoch, TDB), B1950.0, JD2451545.0, MJD51544.5,
+2026-12-02T22:00:00Z (UTC), now. Without --url the work is done in this process; with
+--url it is sent to that service (with the bearer token in SKYDRIFT_TOKEN, if the service
+requires one). The output is the same either way.
+Exit status: 0 done, 1 the service refused the input or failed (details on standard error),
+2 bad command line.
+"""
+
+
+class Catalogue:
+    """A catalogue read from a file: CSV text, and the catalogue epoch if the file says."""
+
+    def __init__(self, csv_text: str, catalogue_epoch: str | None, rows: int):
+        self.csv_text = csv_text
+        self.catalogue_epoch = catalogue_epoch
+        self.rows = rows
+
+
+def read_catalogue(path: str) -> Catalogue:
+    """Read a CSV or JSON catalogue ('-' = CSV on standard input)."""
+    if path == "-":
+        text = sys.stdin.read()
+    else:
+        text = pathlib.Path(path).read_text(encoding="utf-8-sig")
+    if path.lower().endswith(".json"):
+        data = json.loads(text)
+        stars = data["stars"] if isinstance(data, dict) else data
+        names: dict = {}
+        for s in stars:
+            for k in s:
+                names.setdefault(k, None)
+        buf = io.StringIO()
+        writer = csv.writer(buf, lineterminator="\n")
+        writer.writerow(list(names))
+        for s in stars:
+            writer.writerow(["" if s.get(k) is None else s[k] for k in names])
+        epoch = data.get("catalogue_epoch") if isinstance(data, dict) else None
+        return Catalogue(buf.getvalue(), epoch, len(stars))
+    _header, rows, _lines = _read_csv(text)
+    return Catalogue(text, None, len(rows))
+
+
+def _progress(total: int, args, what: str):
+    """A tqdm progress bar on a terminal (or when asked); None when quiet or piped."""
+    if args.quiet:
+        return None, None
+    if not (args.progress or sys.stderr.isatty()):
+        return None, None
+    from tqdm import tqdm
+
+    bar = tqdm(total=total, unit=" stars", desc=what, file=sys.stderr)
+    return bar, bar.update
+
+
+def make_client(args) -> Client:
+    options = {
+        "batch_size": args.batch_size,
+        "timeout": (5.0, args.timeout),
+        "retries": args.retries,
+    }
+    if args.url:
+        return Client(args.url, token=os.environ.get("SKYDRIFT_TOKEN") or None, **options)
+    from .local import local_client
+
+    return local_client(**options)
+
+
+def _write_text(text: str, output: str | None) -> None:
+    if output in (None, "-"):
+        sys.stdout.write(text)
+        sys.stdout.flush()
+    else:
+        pathlib.Path(output).write_text(text, encoding="utf-8", newline="")
+
+
+def _write_bytes(data: bytes, output: str | None) -> None:
+    if output in (None, "-"):
+        sys.stdout.buffer.write(data)
+        sys.stdout.flush()
+    else:
+        pathlib.Path(output).write_bytes(data)
+
+
+def _epoch_of(args, cat: Catalogue) -> str:
+    return args.catalogue_epoch or cat.catalogue_epoch or DEFAULT_CATALOGUE_EPOCH
+
+
+def _run(func):
+    """Turn service errors into a message on standard error and exit status 1."""
+
+    def wrapper(args) -> int:
+        try:
+            return func(args)
+        except SkydriftError as exc:
+            print(f"skydrift: {exc}", file=sys.stderr)
+            return 1
+        except (OSError, ValueError) as exc:
+            print(f"skydrift: {exc}", file=sys.stderr)
+            return 1
+
+    return wrapper
+
+
+@_run
+def cmd_propagate(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "propagating")
+    with make_client(args) as client:
+        try:
+            text = _tolerant(
+                args,
+                cat.csv_text,
+                lambda body: client.propagate_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    target_epochs=args.epoch or None,
+                    target_range=tuple(args.range) if args.range else None,
+                    model=args.model,
+                    progress=update,
+                ),
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
+@_run
+def cmd_velocities(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "velocities")
+    with make_client(args) as client:
+        try:
+            text = _tolerant(
+                args,
+                cat.csv_text,
+                lambda body: client.velocity_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    relative_to_lsr=args.lsr or args.solar_motion is not None,
+                    solar_motion_km_s=tuple(args.solar_motion) if args.solar_motion else None,
+                    uncertainty_method=args.uncertainties,
+                    monte_carlo_draws=args.draws,
+                    seed=args.seed,
+                    progress=update,
+                ),
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
+@_run
+def cmd_constellations(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "constellations")
+    with make_client(args) as client:
+        try:
+            text = _tolerant(
+                args,
+                cat.csv_text,
+                lambda body: client.constellations_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    epoch=args.epoch,
+                    margins=args.margins,
+                    near_boundary_arcsec=args.near_boundary_arcsec,
+                    reduction=args.reduction,
+                    progress=update,
+                ),
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
+@_run
+def cmd_crossings(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    bar, update = _progress(cat.rows, args, "crossings")
+    with make_client(args) as client:
+        try:
+            text = _tolerant(
+                args,
+                cat.csv_text,
+                lambda body: client.constellation_crossings_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    start=args.start,
+                    end=args.end,
+                    max_step_yr=args.max_step_yr,
+                    reduction=args.reduction,
+                    progress=update,
+                ),
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    _write_text(text, args.output)
+    return 0
+
+
+def _unknown_columns(exc: SkydriftError) -> list[str]:
+    """Header columns an endpoint refused as unknown, if that was the only complaint."""
+    names = []
+    for e in exc.errors:
+        m = re.match(r"^line \d+: (.+)$", e.field)
+        if not (m and e.message.startswith("unknown field")):
+            return []
+        names.append(m.group(1))
+    return names
+
+
+def _drop_columns(csv_text: str, names: list[str]) -> str:
+    header, rows, _lines = _read_csv(csv_text)
+    keep = [k for k, h in enumerate(header) if h not in names]
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow([header[k] for k in keep])
+    writer.writerows([r[k] for k in keep] for r in rows)
+    return buf.getvalue()
+
+
+def _tolerant(args, csv_text: str, call):
+    """Run ``call(csv_text)``; with --drop-unknown-columns, drop the columns the endpoint
+    does not take (saying which on standard error) and run it again."""
+    try:
+        return call(csv_text)
+    except SkydriftError as exc:
+        unknown = _unknown_columns(exc) if args.drop_unknown_columns else []
+        if not unknown:
+            raise
+    if not args.quiet:
+        print(f"skydrift: columns not used by this command: {', '.join(unknown)}", file=sys.stderr)
+    return call(_drop_columns(csv_text, unknown))
+
+
+@_run
+def cmd_observed(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    site = args.site
+    if args.position is not None:
+        lat, lon, height = args.position
+        site = {"latitude_deg": lat, "longitude_deg": lon, "height_m": height}
+    if site is None:
+        raise ValueError("give --site NAME or --position LAT LON HEIGHT")
+    bar, update = _progress(cat.rows, args, "observed places")
+    with make_client(args) as client:
+        try:
+            text = _tolerant(
+                args,
+                cat.csv_text,
+                lambda body: client.observed_csv(
+                    body,
+                    catalogue_epoch=_epoch_of(args, cat),
+                    instants=args.at,
+                    site=site,
+                    horizon_limit_deg=args.horizon_limit_deg,
+                    sun_avoidance_deg=args.sun_avoidance_deg,
+                    progress=update,
+                ),
+            )
+        finally:
+            if bar is not None:
+                bar.close()
+    if not args.quiet:
+        print(
+            "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
+            "and safety rules decide where a telescope may point.",
+            file=sys.stderr,
+        )
+    _write_text(text, args.output)
+    return 0
+
+
+def _select(cat: Catalogue, ids: list[str] | None) -> str:
+    """The catalogue's CSV restricted to the given ids (all rows if none given)."""
+    if not ids:
+        return cat.csv_text
+    header, rows, _lines = _read_csv(cat.csv_text)
+    if "id" not in header:
+        raise ValueError("--star needs an 'id' column in the catalogue")
+    k = header.index("id")
+    by_id = {r[k]: r for r in rows}
+    missing = [i for i in ids if i not in by_id]
+    if missing:
+        raise ValueError(f"not in the catalogue: {', '.join(missing)}")
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(header)
+    writer.writerows(by_id[i] for i in ids)
+    return buf.getvalue()
+
+
+def _image_format(args) -> str:
+    if args.format:
+        return args.format
+    if args.output and args.output.lower().endswith(".png"):
+        return "png"
+    return "svg"
+
+
+def _post_image(client: Client, path: str, csv_text: str, params: dict) -> bytes:
+    from .client import _query
+
+    _h, _r, lines = _read_csv(csv_text)
+    try:
+        resp = client.request(
+            "POST",
+            path,
+            params=_query(params),
+            data=csv_text.encode(),
+            headers={"Content-Type": "text/csv"},
+        )
+    except SkydriftError as exc:
+        exc.errors = [_relocate(e, lines) for e in exc.errors]
+        raise
+    return resp.content
+
+
+@_run
+def cmd_chart_track(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    params = {
+        "catalogue_epoch": _epoch_of(args, cat),
+        "start": args.start,
+        "stop": args.stop,
+        "ticks": args.ticks,
+        "boundaries": not args.no_boundaries,
+        "format": _image_format(args),
+        "title": args.title,
+    }
+    with make_client(args) as client:
+        data = _tolerant(
+            args,
+            _select(cat, args.star),
+            lambda body: _post_image(client, "/v1/charts/track", body, params),
+        )
+    _write_bytes(data, args.output)
+    return 0
+
+
+@_run
+def cmd_chart_field(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    params = {
+        "catalogue_epoch": _epoch_of(args, cat),
+        "epochs": list(args.epochs),
+        "arrow_years": args.arrow_years,
+        "format": _image_format(args),
+        "title": args.title,
+    }
+    with make_client(args) as client:
+        data = _tolerant(
+            args,
+            cat.csv_text,
+            lambda body: _post_image(client, "/v1/charts/field", body, params),
+        )
+    _write_bytes(data, args.output)
+    return 0
+
+
+def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
+    g = p.add_argument_group("where the work is done")
+    g.add_argument(
+        "--url",
+        help="send the work to the Skydrift service at this address "
+        "(e.g. http://127.0.0.1:8000); default: compute in this process",
+    )
+    g.add_argument(
+        "--timeout",
+        type=float,
+        default=300.0,
+        metavar="SECONDS",
+        help="longest wait for one answer, seconds (default 300)",
+    )
+    g.add_argument(
+        "--retries",
+        type=int,
+        default=5,
+        help="repeats after a busy (429/503) answer or failed connection (default 5)",
+    )
+    if batch:
+        g.add_argument(
+            "--batch-size",
+            type=int,
+            default=DEFAULT_BATCH_SIZE,
+            metavar="N",
+            help=f"stars per request (default {DEFAULT_BATCH_SIZE})",
+        )
+        g.add_argument(
+            "--progress",
+            action="store_true",
+            help="show a progress bar even when standard error is not a terminal",
+        )
+        g.add_argument("--quiet", "-q", action="store_true", help="never show a progress bar")
+    else:
+        p.set_defaults(batch_size=DEFAULT_BATCH_SIZE, progress=False, quiet=True)
+
+
+def _catalogue_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("catalogue", help=CATALOGUE_HELP)
+    p.add_argument(
+        "--drop-unknown-columns",
+        action="store_true",
+        help="leave out catalogue columns this command does not take (named on standard "
+        "error) instead of stopping; without it an unknown column is an error, so that a "
+        "misspelt column name is never ignored",
+    )
+    p.add_argument(
+        "--catalogue-epoch",
+        metavar="EPOCH",
+        help="epoch of the catalogue's astrometry (default: the JSON file's "
+        f"catalogue_epoch, else {DEFAULT_CATALOGUE_EPOCH})",
+    )
+
+
+def add_commands(sub) -> None:
+    """Add the batch and chart commands to the ``skydrift`` sub-command parser."""
+    fmt = argparse.RawDescriptionHelpFormatter
+    p = sub.add_parser(
+        "propagate",
+        help="move a catalogue's stars to other epochs (CSV out)",
+        description="Move every star of a catalogue to one or more epochs (straight-line "
+        "space motion, uncertainties propagated when given) and write CSV: one row per "
+        "star and epoch with index, id, epoch_julian_tdb, epoch_iso_utc, ra_deg, dec_deg, "
+        "parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s, "
+        "standard errors and correlations (when given), and flags (';'-separated).",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(p)
+    targets = p.add_mutually_exclusive_group(required=True)
+    targets.add_argument(
+        "--epoch",
+        action="append",
+        metavar="EPOCH",
+        help="target epoch; repeat for several (e.g. --epoch now --epoch J2100.0)",
+    )
+    targets.add_argument(
+        "--range",
+        nargs=3,
+        metavar=("START", "STOP", "COUNT"),
+        help="COUNT evenly spaced target epochs from START to STOP, both included",
+    )
+    p.add_argument(
+        "--model",
+        choices=("standard", "light_time"),
+        default="standard",
+        help="standard: Hipparcos straight-line model; light_time: with the light-time "
+        "correction of SOFA pmsafe (default standard)",
+    )
+    p.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(p)
+    p.set_defaults(func=cmd_propagate)
+
+    v = sub.add_parser(
+        "velocities",
+        help="velocities of a catalogue's stars: transverse, radial, U V W (CSV out)",
+        description="Compute for every star of a catalogue the transverse, radial and total "
+        "velocity, galactic U, V, W (heliocentric, and relative to the local standard of "
+        "rest with --lsr) with standard errors and correlations, perspective acceleration "
+        "and closest approach to the Sun, and write CSV: one row per star with index, id, "
+        "the quantities under their API names (units in the names; intervals as two "
+        "numbers separated by ';') and flags (';'-separated). A star may give distance_pc "
+        "instead of parallax_mas.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(v)
+    v.add_argument(
+        "--lsr",
+        action="store_true",
+        help="also give U, V, W relative to the local standard of rest",
+    )
+    v.add_argument(
+        "--solar-motion",
+        nargs=3,
+        type=float,
+        metavar=("U", "V", "W"),
+        help="Sun's motion relative to the LSR, km/s (implies --lsr; default: the service's, "
+        "Schoenrich, Binney & Dehnen 2010)",
+    )
+    v.add_argument(
+        "--uncertainties",
+        choices=("linear", "monte_carlo", "auto"),
+        default="linear",
+        help="linear propagation, Monte Carlo draws, or draws only where the parallax is "
+        "noisy (default linear)",
+    )
+    v.add_argument("--draws", type=int, help="Monte Carlo draws per star")
+    v.add_argument("--seed", type=int, help="seed of the Monte Carlo draws")
+    v.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(v)
+    v.set_defaults(func=cmd_velocities)
+
+    k = sub.add_parser(
+        "constellations",
+        help="IAU constellation of each star, with margins to the boundary (CSV out)",
+        description="Find the IAU constellation of every star of a catalogue at an epoch "
+        "(stars with a proper motion are first moved there) and, with --margins, its "
+        "distance to the nearest boundary and the constellation across it. Writes CSV: one "
+        "row per star with index, id, epoch_julian_tdb and epoch_iso_utc, the "
+        "constellation (IAU abbreviation) and name, the answers of both reductions, "
+        "margin_arcsec and across (with --margins), the position at B1875.0, and flags.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(k)
+    k.add_argument(
+        "--epoch",
+        metavar="EPOCH",
+        help="epoch of the membership (default: the catalogue epoch)",
+    )
+    k.add_argument(
+        "--margins",
+        action="store_true",
+        help="also the distance to the nearest boundary, arcsec, and the constellation across",
+    )
+    k.add_argument(
+        "--near-boundary-arcsec",
+        type=float,
+        metavar="ARCSEC",
+        help="flag stars closer than this to a boundary (with --margins; default 1)",
+    )
+    k.add_argument(
+        "--reduction",
+        choices=("fk4", "fk5", "fk5_iau1976"),
+        help="reduction to the boundaries' equinox B1875.0 (default fk4)",
+    )
+    k.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(k)
+    k.set_defaults(func=cmd_constellations)
+
+    x = sub.add_parser(
+        "crossings",
+        help="boundary crossings of moving stars in a time window (CSV out)",
+        description="Find every IAU constellation boundary crossing of the stars of a "
+        "catalogue between START and END (straight-line space motion). Writes CSV: one row "
+        "per crossing (a star without any gets one row) with index, id, the constellations "
+        "at the start and end of the window, epoch_julian_tdb and epoch_iso_utc of the "
+        "crossing, from_constellation, to_constellation, and flags.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(x)
+    x.add_argument("--start", required=True, metavar="EPOCH", help="start of the window")
+    x.add_argument("--end", required=True, metavar="EPOCH", help="end of the window")
+    x.add_argument(
+        "--max-step-yr",
+        type=float,
+        metavar="YEARS",
+        help="largest search step, years (default: window / 100; no crossing is ever stepped over)",
+    )
+    x.add_argument(
+        "--reduction",
+        choices=("fk4", "fk5", "fk5_iau1976"),
+        help="reduction to the boundaries' equinox B1875.0 (default fk4)",
+    )
+    x.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(x)
+    x.set_defaults(func=cmd_crossings)
+
+    o = sub.add_parser(
+        "observed",
+        help="observed places of a catalogue's stars at a site (CSV out; safety advisory)",
+        description="Compute the observed place of every star of a catalogue at a site and "
+        "one or more instants: azimuth, altitude, zenith distance, hour angle, observed "
+        "right ascension and declination, parallactic angle, airmass, refraction, the "
+        "separation from the Sun, and the astrometric and apparent places. Writes CSV: one "
+        "row per star and instant with index, id, epoch_julian_tdb and epoch_iso_utc of the "
+        "instant, the quantities under their API names, and flags (';'-separated; they "
+        "include below_horizon_limit and within_sun_avoidance). The Sun and horizon figures "
+        "are ADVISORY: the facility's own interlocks and safety rules decide where a "
+        "telescope may point.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(o)
+    o.add_argument(
+        "--at",
+        action="append",
+        required=True,
+        metavar="INSTANT",
+        help="instant of observation (ISO 8601 UTC or any epoch form); repeat for several",
+    )
+    place = o.add_mutually_exclusive_group(required=True)
+    place.add_argument(
+        "--site", help="a site configured in the service (the demo's: kestrel-ridge)"
+    )
+    place.add_argument(
+        "--position",
+        nargs=3,
+        type=float,
+        metavar=("LAT", "LON", "HEIGHT"),
+        help="geodetic latitude and east longitude in degrees, height in metres (WGS84)",
+    )
+    o.add_argument(
+        "--horizon-limit-deg",
+        type=float,
+        metavar="DEG",
+        help="altitude below which a star is flagged (default: the site's, else the service's)",
+    )
+    o.add_argument(
+        "--sun-avoidance-deg",
+        type=float,
+        metavar="DEG",
+        help="Sun separation below which a star is flagged (default: the service's setting)",
+    )
+    o.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(o)
+    o.set_defaults(func=cmd_observed)
+
+    chart = sub.add_parser(
+        "chart",
+        help="draw charts of stellar motion (SVG or PNG)",
+        description="Draw charts of stellar motion as SVG (default) or PNG.",
+    )
+    charts = chart.add_subparsers(dest="chart", required=True, metavar="CHART")
+    t = charts.add_parser(
+        "track",
+        help="tracks of a few stars across the sky, with constellation boundaries",
+        description="Draw the track of one or more stars of a catalogue across the sky "
+        "from START to STOP, with dots at evenly spaced epochs, the nearby IAU "
+        "constellation boundaries and the points where a track crosses one.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(t)
+    t.add_argument(
+        "--star",
+        action="append",
+        metavar="ID",
+        help="id of a star to draw; repeat for several (default: every star, at most 12)",
+    )
+    t.add_argument("--start", required=True, metavar="EPOCH", help="first epoch of the tracks")
+    t.add_argument("--stop", required=True, metavar="EPOCH", help="last epoch of the tracks")
+    t.add_argument("--ticks", type=int, default=6, help="epochs marked on each track (default 6)")
+    t.add_argument(
+        "--no-boundaries", action="store_true", help="leave out constellation boundaries"
+    )
+    _image_options(t)
+    _connection_options(t, batch=False)
+    t.set_defaults(func=cmd_chart_track)
+
+    f = charts.add_parser(
+        "field",
+        help="a catalogue's stars at two epochs side by side, with motion arrows",
+        description="Draw every star of a catalogue on the whole sky at two epochs side "
+        "by side, each with an arrow to where it will be ARROW_YEARS later.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(f)
+    f.add_argument(
+        "--epochs",
+        nargs=2,
+        required=True,
+        metavar=("FIRST", "SECOND"),
+        help="the two epochs shown",
+    )
+    f.add_argument(
+        "--arrow-years",
+        type=float,
+        help="span of the motion arrows, years (default: the interval between the epochs)",
+    )
+    _image_options(f)
+    _connection_options(f, batch=False)
+    f.set_defaults(func=cmd_chart_field)
+
+
+def _image_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--output",
+        "-o",
+        metavar="FILE",
+        help="image file to write; a .png name gives PNG (default: SVG on stdout)",
+    )
+    p.add_argument("--format", choices=("svg", "png"), help="image format (overrides the name)")
+    p.add_argument("--title", help="chart title")

@@ -1,0 +1,104 @@
+"""POST /v1/charts/track and /v1/charts/field: images, formats, and bad input."""
+
+import json
+import xml.etree.ElementTree as ET
+
+import pytest
+
+from tests.conftest import DEMO
+
+SVG = "{http://www.w3.org/2000/svg}"
+
+
+def example(name):
+    return json.loads((DEMO / "examples" / name).read_text())
+
+
+@pytest.fixture(scope="module")
+def track_body():
+    return example("chart_track_request.json")
+
+
+def test_track_svg(client, track_body):
+    r = client.post("/v1/charts/track", json=track_body)
+    assert r.status_code == 200
+    assert r.mimetype == "image/svg+xml"
+    root = ET.fromstring(r.data)
+    ids = [g.get("id") for g in root.iter(f"{SVG}g")]
+    assert ids.count("track-0") == 1
+    assert "KRC 0017" in r.get_data(as_text=True)  # the star's id labels its track
+
+
+def test_track_png_by_field_or_accept(client, track_body):
+    body = dict(track_body, format="png", stop="J3016.0", boundaries=False)
+    r = client.post("/v1/charts/track", json=body)
+    assert r.mimetype == "image/png"
+    assert r.data.startswith(b"\x89PNG")
+    del body["format"]
+    r = client.post("/v1/charts/track", json=body, headers={"Accept": "image/png"})
+    assert r.mimetype == "image/png"
+
+
+def test_track_from_a_csv_body(client):
+    body = (
+        "id,ra_deg,dec_deg,parallax_mas,pm_ra_cosdec_mas_yr,pm_dec_mas_yr,radial_velocity_km_s\n"
+        "KRC 0017,55.52754788,19.626362948,161.3,-2871.2,2602.5,-41.7\n"
+    )
+    r = client.post(
+        "/v1/charts/track?catalogue_epoch=J2016&start=J2016&stop=J2516&boundaries=false",
+        data=body,
+        content_type="text/csv",
+    )
+    assert r.status_code == 200
+    assert r.mimetype == "image/svg+xml"
+
+
+@pytest.mark.parametrize(
+    ("change", "field"),
+    [
+        ({"stop": "J2000.0"}, "stop"),
+        ({"ticks": 1}, "ticks"),
+        ({"format": "gif"}, "format"),
+        (
+            {
+                "stars": [
+                    {
+                        "ra_deg": 1.0,
+                        "dec_deg": 1.0,
+                        "pm_ra_cosdec_mas_yr": 1.0,
+                        "pm_dec_mas_yr": 1.0,
+                    }
+                ]
+                * 13
+            },
+            "stars",
+        ),
+    ],
+    ids=["stop-before-start", "one-tick", "unknown-format", "too-many-stars"],
+)
+def test_track_bad_input(client, track_body, change, field):
+    r = client.post("/v1/charts/track", json=dict(track_body, **change))
+    assert r.status_code == 422
+    assert r.mimetype == "application/problem+json"
+    assert field in [e["field"] for e in r.json["errors"]]
+
+
+def test_field_chart(client, demo_catalogue):
+    body = {
+        "stars": demo_catalogue["stars"],
+        "catalogue_epoch": "J2016.0",
+        "epochs": ["J2016.0", "J12016.0"],
+        "title": "Kestrel Ridge Catalogue (fictional)",
+    }
+    r = client.post("/v1/charts/field", json=body)
+    assert r.mimetype == "image/svg+xml"
+    assert "Kestrel Ridge Catalogue (fictional)" in r.get_data(as_text=True)
+    r = client.post("/v1/charts/field", json=dict(body, epochs=["J2016.0", "J2016.0"]))
+    assert r.status_code == 422
+
+
+def test_openapi_shows_images_not_csv(client):
+    op = client.get("/openapi.json").json["paths"]["/v1/charts/track"]["post"]
+    content = op["responses"]["200"]["content"]
+    assert set(content) == {"image/svg+xml", "image/png"}
+    assert "text/csv" in op["requestBody"]["content"]

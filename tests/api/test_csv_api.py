@@ -1,0 +1,307 @@
+"""CSV in (text/csv bodies) and out (Accept: text/csv) on the star-table endpoints."""
+
+import csv
+import io
+
+import pytest
+
+from tests.conftest import DEMO
+
+URL = "/v1/propagation"
+QUERY = "?catalogue_epoch=J2016.0&target_epochs=J2026.0,J2100.0"
+HEADER = "id,ra_deg,dec_deg,parallax_mas,pm_ra_cosdec_mas_yr,pm_dec_mas_yr,radial_velocity_km_s"
+
+
+@pytest.fixture(scope="module")
+def demo_csv():
+    return (DEMO / "catalogue.csv").read_text()
+
+
+def post_csv(client, body, query=QUERY, accept="application/json"):
+    return client.post(
+        URL + query,
+        data=body.encode() if isinstance(body, str) else body,
+        content_type="text/csv",
+        headers={"Accept": accept},
+    )
+
+
+def rows_of(text):
+    return list(csv.DictReader(io.StringIO(text)))
+
+
+def problem_fields(r, status=422):
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    return [(e["field"], e["message"]) for e in r.json.get("errors", [])]
+
+
+def test_demo_csv_file_is_the_json_catalogue(demo_csv, demo_catalogue):
+    # The committed CSV must hold exactly the numbers of the JSON catalogue.
+    rows = rows_of(demo_csv)
+    assert len(rows) == len(demo_catalogue["stars"])
+    for row, star in zip(rows, demo_catalogue["stars"], strict=True):
+        for k, v in row.items():
+            expected = star.get(k)
+            if expected is None:
+                assert v == ""
+            elif k == "id":
+                assert v == expected
+            else:
+                assert float(v) == expected
+
+
+def test_csv_round_trip_equals_json_answer(client, demo_csv, demo_catalogue):
+    """Demo catalogue through CSV in and CSV out holds exactly the JSON endpoint's numbers."""
+    body = {
+        "stars": demo_catalogue["stars"],
+        "catalogue_epoch": "J2016.0",
+        "target_epochs": ["J2026.0", "J2100.0"],
+    }
+    js = client.post(URL, json=body).json
+    r = post_csv(client, demo_csv, accept="text/csv")
+    assert r.status_code == 200
+    assert r.mimetype == "text/csv"
+    assert "Accept" in r.headers["Vary"]
+    rows = rows_of(r.get_data(as_text=True))
+    assert len(rows) == len(js["stars"]) * len(js["epochs"])
+    k = 0
+    for star in js["stars"]:
+        for epoch, at in zip(js["epochs"], star["at_epochs"], strict=True):
+            row = rows[k]
+            k += 1
+            assert int(row["index"]) == star["index"]
+            assert row["id"] == star["id"]
+            assert float(row["epoch_julian_tdb"]) == epoch["julian_epoch_tdb"]
+            assert row["epoch_iso_utc"] == epoch["iso_utc"]
+            assert (row["flags"].split(";") if row["flags"] else []) == star["flags"]
+            values = dict(at)
+            unc = values.pop("uncertainties")
+            values.update(unc or {})
+            for name, value in values.items():
+                if value is None:
+                    assert row.get(name, "") == "", name
+                else:
+                    assert float(row[name]) == value, name  # exact: shortest repr
+    assert k == len(rows)
+
+
+def test_csv_body_gives_the_same_json_as_a_json_body(client, demo_csv, demo_catalogue):
+    body = {
+        "stars": demo_catalogue["stars"],
+        "catalogue_epoch": "J2016.0",
+        "target_epochs": ["J2026.0", "J2100.0"],
+    }
+    # A CSV body answers in the columns layout by default; the numbers are the same.
+    as_columns = post_csv(client, demo_csv).json
+    assert as_columns["layout"] == "columns"
+    assert as_columns == client.post(URL, json=dict(body, layout="columns")).json
+    assert (
+        post_csv(client, demo_csv, QUERY + "&layout=records").json
+        == client.post(URL, json=body).json
+    )
+
+
+def test_columns_layout_gives_the_same_csv(client, demo_csv):
+    rec = post_csv(client, demo_csv, accept="text/csv").get_data(as_text=True)
+    col = post_csv(client, demo_csv, QUERY + "&layout=columns", accept="text/csv")
+    assert col.get_data(as_text=True) == rec
+
+
+def test_csv_answer_to_a_json_body(client):
+    body = {
+        "stars": [
+            {
+                "id": 7,
+                "ra_deg": 1.0,
+                "dec_deg": 2.0,
+                "pm_ra_cosdec_mas_yr": 0.0,
+                "pm_dec_mas_yr": 0.0,
+            }
+        ],
+        "catalogue_epoch": "J2016.0",
+        "target_epochs": ["J2016.0"],
+    }
+    r = client.post(URL, json=body, headers={"Accept": "text/csv"})
+    rows = rows_of(r.get_data(as_text=True))
+    assert rows[0]["id"] == "7"
+    assert float(rows[0]["ra_deg"]) == pytest.approx(1.0, abs=1e-12)  # no elapsed time
+    # No star has uncertainties: no uncertainty columns at all; unknowns are empty cells.
+    assert "ra_error_mas" not in rows[0]
+    assert rows[0]["parallax_mas"] == ""
+    assert rows[0]["flags"] == "parallax_missing;radial_velocity_missing"
+
+
+def test_json_stays_the_default(client, demo_csv):
+    assert post_csv(client, demo_csv, accept="*/*").mimetype == "application/json"
+
+
+def test_bad_cell_reported_with_its_line(client):
+    lines = [HEADER] + [f"S{k},{10 + k},5,,1,1," for k in range(8)]
+    lines[6] = "S5,15,95,,1,1,"  # line 7 of the file (the header is line 1)
+    r = post_csv(client, "\n".join(lines) + "\n")
+    assert problem_fields(r) == [("line 7: dec_deg", "must be between -90 and 90")]
+
+
+def test_line_numbers_count_blank_lines_and_errors_come_in_file_order(client):
+    body = "\n".join([HEADER, "A,10,5,,1,1,", "", "B,x,5,,1,1,", "C,10,-91,,1,1,9e9"]) + "\n"
+    fields = problem_fields(post_csv(client, body))
+    assert fields[0] == ("line 4: ra_deg", "must be a number (in the unit of the column name)")
+    assert ("line 5: dec_deg", "must be between -90 and 90") in fields
+    assert [f for f, _ in fields] == sorted(
+        (f for f, _ in fields), key=lambda f: int(f.split(":")[0][5:])
+    )
+    assert any(f == "line 5: radial_velocity_km_s" for f, _ in fields)
+
+
+@pytest.mark.parametrize(
+    ("body", "expected"),
+    [
+        (HEADER + ",colour\nA,10,5,,1,1,,red\n", "line 1: colour"),
+        ("id,ra_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\nA,10,1,1\n", "line 1: dec_deg"),
+        (HEADER + "\nA,10,5,,1,1\n", "line 2"),
+        ("id,ra_deg,ra_deg\nA,1,2\n", "line 1: ra_deg"),
+        (HEADER + "\nA,10,5,,1,,\n", "line 2: pm_dec_mas_yr"),
+        (HEADER + "\nA,10,5,nan,1,1,\n", "line 2: parallax_mas"),
+        (HEADER + "\nA,10,5,inf,1,1,\n", "line 2: parallax_mas"),
+        (HEADER + "\n", "line 2"),
+        ("", "line 1"),
+    ],
+    ids=[
+        "unknown-column",
+        "missing-required-column",
+        "short-row",
+        "column-twice",
+        "empty-required-cell",
+        "nan-is-not-unknown",
+        "infinity",
+        "no-rows",
+        "empty-body",
+    ],
+)
+def test_structural_problems_name_the_line(client, body, expected):
+    fields = [f for f, _ in problem_fields(post_csv(client, body))]
+    assert expected in fields
+
+
+def test_not_utf8_is_400(client):
+    r = post_csv(client, (HEADER + "\nA\xe9,10,5,,1,1,\n").encode("latin-1"))
+    assert r.status_code == 400
+    assert r.mimetype == "application/problem+json"
+
+
+def test_byte_order_mark_and_crlf_accepted(client):
+    body = ("\ufeff" + HEADER + "\r\nA,10,5,,1,1,\r\n").encode("utf-8")
+    assert post_csv(client, body).status_code == 200
+
+
+def test_options_as_query_parameters(client):
+    body = HEADER + "\nA,10,5,100,1000,-500,20\n"
+    ranged = post_csv(
+        client,
+        body,
+        "?catalogue_epoch=J2016.0&target_range.start=J2016.0&target_range.stop=J2116.0"
+        "&target_range.count=3&model=light_time",
+    ).json
+    assert ranged["model"] == "light_time"
+    assert [e["julian_epoch_tdb"] for e in ranged["epochs"]] == [2016.0, 2066.0, 2116.0]
+    repeated = post_csv(
+        client, body, "?catalogue_epoch=J2016.0&target_epochs=J2016.0&target_epochs=J2116.0"
+    ).json
+    assert len(repeated["epochs"]) == 2
+    as_json = post_csv(
+        client, body, '?catalogue_epoch=J2016.0&target_epochs=["J2016.0","J2116.0"]'
+    ).json
+    assert as_json == repeated
+
+
+def test_unknown_or_missing_option(client):
+    body = HEADER + "\nA,10,5,,1,1,\n"
+    fields = [f for f, _ in problem_fields(post_csv(client, body, QUERY + "&colour=red"))]
+    assert "colour" in fields
+    fields = [f for f, _ in problem_fields(post_csv(client, body, "?target_epochs=J2020"))]
+    assert "catalogue_epoch" in fields
+
+
+def test_errors_stay_problem_json_when_csv_is_asked_for(client):
+    r = post_csv(client, HEADER + "\nA,10,95,,1,1,\n", accept="text/csv")
+    assert r.mimetype == "application/problem+json"
+
+
+def test_other_media_types_still_refused(client):
+    r = client.post(URL, data="a=b", content_type="application/x-www-form-urlencoded")
+    assert r.status_code == 415
+    assert "text/csv" in r.json["detail"]
+
+
+def test_openapi_describes_csv(client):
+    op = client.get("/openapi.json").json["paths"]["/v1/propagation"]["post"]
+    assert "text/csv" in op["requestBody"]["content"]
+    assert "text/csv" in op["responses"]["200"]["content"]
+    assert {p["name"] for p in op["parameters"]} >= {"catalogue_epoch", "target_epochs"}
+
+
+# ------------------------------------------------- every star-table endpoint, generically
+
+
+def _table_endpoints(client):
+    """(path, example body) of every POST endpoint that takes CSV, from the OpenAPI document."""
+    doc = client.get("/openapi.json").json
+    out = []
+    for path, item in sorted(doc["paths"].items()):
+        op = item.get("post")
+        if not op or "text/csv" not in op.get("requestBody", {}).get("content", {}):
+            continue
+        example = op["requestBody"]["content"]["application/json"].get("example")
+        if example and "text/csv" in op["responses"]["200"]["content"]:
+            out.append((path, example))
+    return out
+
+
+def _example_as_csv(example):
+    """An example JSON body -> (CSV text, query string) carrying the same request."""
+    from urllib.parse import urlencode
+
+    stars = example["stars"]
+    if isinstance(stars, dict):
+        stars = [dict(zip(stars, row, strict=True)) for row in zip(*stars.values(), strict=True)]
+    names = list(dict.fromkeys(k for s in stars for k in s))
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(names)
+    for s in stars:
+        w.writerow(["" if s.get(k) is None else s[k] for k in names])
+    query = []
+    for key, value in example.items():
+        if key == "stars" or value is None:
+            continue
+        if isinstance(value, dict):
+            # An empty value is null.
+            query.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
+        elif isinstance(value, list):
+            query.extend((key, str(v)) for v in value)
+        elif isinstance(value, bool):
+            query.append((key, "true" if value else "false"))
+        else:
+            query.append((key, str(value)))
+    return buf.getvalue(), "?" + urlencode(query)
+
+
+def test_every_table_endpoint_takes_and_gives_csv(client):
+    endpoints = _table_endpoints(client)
+    assert "/v1/propagation" in [p for p, _ in endpoints]
+    for path, example in endpoints:
+        example = dict(example, layout="records") if "layout" in example else example
+        body, query = _example_as_csv(example)
+        reference = client.post(path, json=example)
+        assert reference.status_code == 200, (path, reference.json)
+        if "layout" in reference.json:
+            query += "&layout=" + reference.json["layout"]
+        r = client.post(path + query, data=body, content_type="text/csv")
+        assert r.status_code == 200, (path, r.json)
+        assert r.json == reference.json, path
+        out = client.post(path, json=example, headers={"Accept": "text/csv"})
+        assert out.mimetype == "text/csv", path
+        rows = rows_of(out.get_data(as_text=True))
+        assert {int(row["index"]) for row in rows} == set(range(len(reference.json["stars"])))
+        assert [row["id"] for row in rows][:1] == [str(reference.json["stars"][0]["id"])]

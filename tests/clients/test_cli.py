@@ -1,0 +1,253 @@
+"""The `skydrift` command in a subprocess: help, local and remote modes, progress, errors."""
+
+import argparse
+import csv
+import io
+import os
+import subprocess
+import sys
+
+import pytest
+
+from service.cli import build_parser
+from tests.conftest import DEMO, ROOT
+
+CATALOGUE = str(DEMO / "catalogue.csv")
+
+
+def skydrift(*args, stdin=None, check=True):
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    out = subprocess.run(
+        [sys.executable, "-m", "service.cli", *args],
+        input=stdin,
+        capture_output=True,
+        env=env,
+        cwd=ROOT,
+        timeout=120,
+    )
+    if check and out.returncode != 0:
+        raise AssertionError(out.stderr.decode())
+    return out
+
+
+def subcommand_parsers(parser, prefix=()):
+    """Every (command path, parser) below the top-level parser."""
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for name, sub in action.choices.items():
+                yield (*prefix, name), sub
+                yield from subcommand_parsers(sub, (*prefix, name))
+
+
+COMMANDS = [path for path, _ in subcommand_parsers(build_parser())]
+
+
+def test_every_command_is_listed():
+    expected = {("propagate",), ("velocities",), ("constellations",), ("crossings",),
+                ("observed",), ("chart", "track"), ("chart", "field")}  # fmt: skip
+    assert expected <= set(COMMANDS)
+
+
+@pytest.mark.parametrize("path", COMMANDS, ids=[" ".join(p) for p in COMMANDS])
+def test_help_is_complete(path):
+    """--help of every command exits 0 and shows every option and argument it accepts."""
+    parser = dict(subcommand_parsers(build_parser()))[path]
+    out = skydrift(*path, "--help")
+    text = out.stdout.decode()
+    assert text.startswith(f"usage: skydrift {' '.join(path)}")
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for name in action.choices:
+                assert name in text
+            continue
+        names = action.option_strings or [action.metavar or action.dest]
+        for name in names:
+            assert name in text, f"{name} missing from {' '.join(path)} --help"
+        if action.help is not argparse.SUPPRESS and not isinstance(action, argparse._HelpAction):
+            assert action.help, f"{names} of {' '.join(path)} has no help text"
+
+
+def test_top_level_help_lists_commands():
+    text = skydrift("--help").stdout.decode()
+    for name in ("serve", "openapi", "propagate", "chart"):
+        assert name in text
+
+
+PROPAGATE = ["propagate", CATALOGUE, "--epoch", "J2026.0", "--epoch", "J2100.0"]
+
+
+@pytest.fixture(scope="module")
+def local_run():
+    """The demo catalogue propagated in this process (the reference for the other runs)."""
+    return skydrift(*PROPAGATE)
+
+
+def test_propagate_local_output_and_quiet_when_piped(local_run):
+    rows = list(csv.DictReader(io.StringIO(local_run.stdout.decode())))
+    assert len(rows) == 60  # 30 stars x 2 epochs
+    assert [r["id"] for r in rows[:3]] == ["KRC 0001", "KRC 0001", "KRC 0002"]
+    assert local_run.stderr == b""  # no progress bar when standard error is a pipe
+
+
+def test_propagate_local_and_remote_identical(local_run, live_service):
+    remote = skydrift(*PROPAGATE, "--url", live_service, "--batch-size", "4")
+    assert remote.stdout == local_run.stdout
+
+
+def test_json_catalogue_and_output_file(local_run, tmp_path):
+    out = tmp_path / "moved.csv"
+    json_cat = str(DEMO / "catalogue.json")
+    skydrift("propagate", json_cat, "--epoch", "J2026.0", "--epoch", "J2100.0", "-o", str(out))
+    assert out.read_bytes() == local_run.stdout
+
+
+def test_stdin_and_progress_when_asked(local_run):
+    text = (DEMO / "catalogue.csv").read_bytes()
+    args = ["propagate", "-", "--epoch", "J2026.0", "--epoch", "J2100.0"]
+    shown = skydrift(*args, "--progress", "--batch-size", "10", stdin=text)
+    assert shown.stdout == local_run.stdout
+    assert b"30/30" in shown.stderr
+
+
+def test_velocities_local_and_remote_identical(live_service):
+    args = ["velocities", CATALOGUE, "--lsr"]
+    local = skydrift(*args)
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "7")
+    assert local.stdout == remote.stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert len(rows) == 30
+    assert rows[0]["u_lsr_km_s"] != ""
+
+
+def test_constellations_local_and_remote_identical(live_service):
+    args = ["constellations", CATALOGUE, "--epoch", "J2026.0", "--margins"]
+    strict = skydrift(*args, check=False)
+    assert strict.returncode == 1  # the demo CSV has error columns this command does not take
+    assert "line 1: ra_error_mas: unknown field" in strict.stderr.decode()
+    args.append("--drop-unknown-columns")
+    local = skydrift(*args)
+    assert b"ra_error_mas" in local.stderr  # the columns left out are named
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "7", "--quiet")
+    assert local.stdout == remote.stdout
+    assert remote.stderr == b""
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert [r["constellation"] for r in rows][16] == "Tau"
+
+
+def test_crossings_one_row_per_crossing(live_service, tmp_path):
+    json_cat = str(DEMO / "catalogue.json")
+    args = ["crossings", json_cat, "--start", "J2016", "--end", "J8016",
+            "--drop-unknown-columns", "-q"]  # fmt: skip
+    local = skydrift(*args)
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "5")
+    assert local.stdout == remote.stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    crossing = [r for r in rows if r["from_constellation"]]
+    assert [(r["id"], r["from_constellation"], r["to_constellation"]) for r in crossing][:1] == [
+        ("KRC 0017", "Tau", "Ari")
+    ]
+    # One row per star, a star with one crossing in the window included (no star has two).
+    assert len(rows) == 30
+    assert [r["id"] for r in crossing] == ["KRC 0017", "KRC 0018"]
+
+
+def test_observed_local_and_remote_identical(live_service):
+    args = ["observed", CATALOGUE, "--at", "2026-12-02T22:00:00Z", "--site", "kestrel-ridge",
+            "--drop-unknown-columns"]  # fmt: skip
+    local = skydrift(*args)
+    assert b"advisory" in local.stderr  # the safety figures are said to be advisory
+    remote = skydrift(*args, "--url", live_service, "--batch-size", "8")
+    assert local.stdout == remote.stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert len(rows) == 30
+    assert rows[0]["epoch_iso_utc"] == "2026-12-02T22:00:00.000Z"
+    # Stars below the horizon are flagged, as the altitude says (site limit 15 degrees).
+    for r in rows:
+        flagged = "below_horizon_limit" in r["flags"].split(";")
+        assert flagged == (float(r["altitude_deg"]) < 15.0)
+
+
+def test_bad_row_named_by_line_exit_1(tmp_path):
+    lines = (DEMO / "catalogue.csv").read_text().splitlines()
+    cells = lines[6].split(",")
+    cells[2] = "95"
+    lines[6] = ",".join(cells)
+    bad = tmp_path / "bad.csv"
+    bad.write_text("\n".join(lines) + "\n")
+    out = skydrift("propagate", str(bad), "--epoch", "J2030", "--batch-size", "4", check=False)
+    assert out.returncode == 1
+    assert "line 7: dec_deg: must be between -90 and 90" in out.stderr.decode()
+    assert out.stdout == b""
+
+
+def test_bad_command_line_exit_2():
+    assert skydrift("propagate", CATALOGUE, check=False).returncode == 2
+
+
+def test_unreachable_url_exit_1():
+    out = skydrift(
+        "propagate",
+        CATALOGUE,
+        "--epoch",
+        "now",
+        "--url",
+        "http://127.0.0.1:9",
+        "--retries",
+        "0",
+        check=False,
+    )
+    assert out.returncode == 1
+    assert "unreachable" in out.stderr.decode()
+
+
+def test_chart_track_local_and_remote_identical(live_service, tmp_path):
+    args = [
+        "chart",
+        "track",
+        CATALOGUE,
+        "--star",
+        "KRC 0017",
+        "--start",
+        "J2016",
+        "--stop",
+        "J3016",
+    ]
+    local = skydrift(*args)
+    assert local.stdout.startswith(b"<?xml")
+    remote = tmp_path / "track.svg"
+    skydrift(*args, "--url", live_service, "-o", str(remote))
+    assert remote.read_bytes() == local.stdout
+
+
+def test_chart_unknown_star():
+    out = skydrift(
+        "chart",
+        "track",
+        CATALOGUE,
+        "--star",
+        "KRC 9999",
+        "--start",
+        "J2016",
+        "--stop",
+        "J3016",
+        check=False,
+    )
+    assert out.returncode == 1
+    assert "KRC 9999" in out.stderr.decode()
+
+
+def test_chart_field_png(tmp_path):
+    out = tmp_path / "field.png"
+    skydrift(
+        "chart",
+        "field",
+        str(DEMO / "catalogue.json"),
+        "--epochs",
+        "J2016",
+        "J12016",
+        "-o",
+        str(out),
+        "--title",
+        "Kestrel Ridge Catalogue",
+    )
+    assert out.read_bytes().startswith(b"\x89PNG")

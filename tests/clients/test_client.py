@@ -1,0 +1,439 @@
+"""The Python client against the real service (gunicorn on loopback) and a scripted server."""
+
+import email.utils
+import json
+import subprocess
+import sys
+import threading
+import time
+import xml.etree.ElementTree as ET
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+
+import pytest
+
+from service.client import Client, FieldError, SkydriftError, merge_answers
+from tests.clients.conftest import free_port
+from tests.conftest import DEMO, ROOT
+
+EPOCHS = ["J2026.0", "J2100.0"]
+
+
+@pytest.fixture()
+def sky(live_service):
+    with Client(live_service, timeout=(5, 60)) as c:
+        yield c
+
+
+def columns_of(stars):
+    names = list(dict.fromkeys(k for s in stars for k in s))
+    return {n: [s.get(n) for s in stars] for n in names}
+
+
+def test_import_needs_requests_only():
+    code = (
+        "import sys, service.client\n"
+        "heavy = [m for m in ('numpy', 'flask', 'astropy', 'marshmallow', 'erfa', "
+        "'matplotlib', 'orjson') if m in sys.modules]\n"
+        "print(','.join(heavy))"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, check=True
+    )
+    assert out.stdout.strip() == ""
+
+
+def test_health_ready_openapi(sky):
+    assert sky.health()["status"] == "ok"
+    assert sky.ready()["status"] == "ready"
+    assert "/v1/propagation" in sky.openapi()["paths"]
+
+
+def test_propagate_records_equals_direct_post(sky, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    got = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+    direct = sky.post(
+        "/v1/propagation",
+        {"stars": stars, "catalogue_epoch": "J2016.0", "target_epochs": EPOCHS},
+    )
+    assert got == direct
+    assert got["star_count"] == len(stars)
+
+
+@pytest.mark.parametrize("layout", ["records", "columns"])
+def test_batches_joined_as_if_sent_at_once(live_service, demo_catalogue, layout):
+    stars = demo_catalogue["stars"]
+    if layout == "columns":
+        stars = columns_of(stars)
+    whole = Client(live_service, batch_size=1000)
+    done = []
+    parts = Client(live_service, batch_size=7)
+    a = whole.propagate(stars, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+    b = parts.propagate(
+        stars, catalogue_epoch="J2016.0", target_epochs=EPOCHS, progress=done.append
+    )
+    assert done == [7, 7, 7, 7, 2]  # 30 stars in batches of 7
+    assert b == a
+
+
+def test_range_and_single_epoch_forms(sky):
+    star = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    a = sky.propagate([star], catalogue_epoch=2016.0, target_range=("J2016", "J2116", 3))
+    assert [e["julian_epoch_tdb"] for e in a["epochs"]] == [2016.0, 2066.0, 2116.0]
+    b = sky.propagate([star], catalogue_epoch=2016.0, target_epochs="J2116")
+    assert b["epochs"][0]["julian_epoch_tdb"] == 2116.0
+    with pytest.raises(ValueError):
+        sky.propagate([star], catalogue_epoch=2016.0)
+
+
+def test_nan_is_sent_as_unknown(sky):
+    star = {
+        "ra_deg": 10.0,
+        "dec_deg": 5.0,
+        "parallax_mas": float("nan"),
+        "pm_ra_cosdec_mas_yr": 1.0,
+        "pm_dec_mas_yr": 1.0,
+    }
+    a = sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+    assert "parallax_missing" in a["stars"][0]["flags"]
+
+
+def test_propagate_csv_batched_equals_whole(live_service):
+    text = (DEMO / "catalogue.csv").read_text()
+    whole = Client(live_service).propagate_csv(
+        text, catalogue_epoch="J2016.0", target_epochs=EPOCHS
+    )
+    parts = Client(live_service, batch_size=4).propagate_csv(
+        text, catalogue_epoch="J2016.0", target_epochs=EPOCHS
+    )
+    assert parts == whole
+    assert whole.splitlines()[0].startswith("index,id,epoch_julian_tdb,epoch_iso_utc,ra_deg")
+    assert len(whole.splitlines()) == 1 + 30 * 2
+
+
+def test_csv_error_lines_refer_to_the_callers_text(live_service):
+    lines = (DEMO / "catalogue.csv").read_text().splitlines()
+    cells = lines[22].split(",")
+    cells[2] = "-97.5"  # dec_deg of the star on line 23
+    lines[22] = ",".join(cells)
+    with pytest.raises(SkydriftError) as info:
+        Client(live_service, batch_size=5).propagate_csv(
+            "\n".join(lines), catalogue_epoch="J2016.0", target_epochs=EPOCHS
+        )
+    assert info.value.status == 422
+    assert info.value.errors == [FieldError("line 23: dec_deg", "must be between -90 and 90")]
+
+
+@pytest.mark.parametrize("layout", ["records", "columns"])
+def test_batched_errors_name_the_index_in_the_whole_input(live_service, demo_catalogue, layout):
+    stars = [dict(s) for s in demo_catalogue["stars"]]
+    stars[23]["dec_deg"] = 91.0
+    if layout == "columns":
+        stars = columns_of(stars)
+    with Client(live_service, batch_size=10) as sky:
+        with pytest.raises(SkydriftError) as info:
+            sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+    expected = "stars[23].dec_deg" if layout == "records" else "stars.dec_deg[23]"
+    assert [e.field for e in info.value.errors] == [expected]
+
+
+def test_problem_details_become_the_exception(sky):
+    bad = [{"ra_deg": 10.0, "dec_deg": 95.0, "pm_ra_cosdec_mas_yr": 0, "pm_dec_mas_yr": 0}]
+    with pytest.raises(SkydriftError) as info:
+        sky.propagate(bad, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+    err = info.value
+    assert err.status == 422
+    assert err.title == "Unprocessable Entity"
+    assert err.detail == "The request has 1 invalid field."
+    assert err.errors == [FieldError("stars[0].dec_deg", "must be between -90 and 90")]
+    assert err.request_id
+    assert "stars[0].dec_deg: must be between -90 and 90" in str(err)
+
+
+def test_not_found_and_bad_epoch(sky):
+    with pytest.raises(SkydriftError) as info:
+        sky.get("/v1/no-such-thing")
+    assert info.value.status == 404
+    star = {"ra_deg": 1.0, "dec_deg": 1.0, "pm_ra_cosdec_mas_yr": 0, "pm_dec_mas_yr": 0}
+    with pytest.raises(SkydriftError) as info:
+        sky.propagate([star], catalogue_epoch="yesterday-ish", target_epochs=EPOCHS)
+    assert [e.field for e in info.value.errors] == ["catalogue_epoch"]
+
+
+def test_velocity_methods(live_service, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    with Client(live_service, batch_size=8) as sky:
+        a = sky.velocity(stars, catalogue_epoch="J2016.0", relative_to_lsr=True)
+        direct = sky.post(
+            "/v1/velocity",
+            {"stars": stars, "catalogue_epoch": "J2016.0", "relative_to_lsr": True},
+        )
+        assert a == direct  # four batches joined as if sent at once
+        text = sky.velocity_csv((DEMO / "catalogue.csv").read_text(), relative_to_lsr=True)
+        assert len(text.splitlines()) == 1 + len(stars)
+        s = a["stars"][0]
+        back = sky.velocity_observables(
+            [
+                {
+                    "id": s["id"],
+                    "ra_deg": stars[0]["ra_deg"],
+                    "dec_deg": stars[0]["dec_deg"],
+                    "u_km_s": s["u_km_s"],
+                    "v_km_s": s["v_km_s"],
+                    "w_km_s": s["w_km_s"],
+                    "parallax_mas": stars[0]["parallax_mas"],
+                }
+            ]
+        )
+    # The inverse returns the proper motion that went in (round trip through the service).
+    assert back["stars"][0]["pm_ra_cosdec_mas_yr"] == pytest.approx(
+        stars[0]["pm_ra_cosdec_mas_yr"], abs=1e-6
+    )
+
+
+ASTROMETRY = ("id", "ra_deg", "dec_deg", "parallax_mas", "pm_ra_cosdec_mas_yr",
+              "pm_dec_mas_yr", "radial_velocity_km_s")  # fmt: skip
+
+
+def test_constellation_methods(live_service, demo_catalogue):
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
+    with Client(live_service, batch_size=8) as sky:
+        whole = sky.post(
+            "/v1/constellations/margins",
+            {"stars": stars, "catalogue_epoch": "J2016.0", "epoch": "J2026.0"},
+        )
+        batched = sky.constellations(
+            stars, catalogue_epoch="J2016.0", epoch="J2026.0", margins=True
+        )
+        assert batched == whole
+        plain = sky.constellations(stars, catalogue_epoch="J2016.0", epoch="J2026.0")
+        assert [s["constellation"] for s in plain["stars"]] == [
+            s["constellation"] for s in whole["stars"]
+        ]
+        found = sky.constellation_crossings(
+            stars[16:18], catalogue_epoch="J2016.0", start="J2016.0", end="J8016.0"
+        )
+        first = found["stars"][0]["crossings"][0]
+        assert (first["from_constellation"], first["to_constellation"]) == ("Tau", "Ari")
+        assert found["stars"][1]["index"] == 1
+        assert len(sky.constellation_list()["constellations"]) == 88
+        outline = sky.constellation_outline("Ari")
+        assert outline["properties"]["abbreviation"] == "Ari"
+        assert len(sky.constellation_outlines(tolerance_arcsec=10.0)["features"]) == 88
+
+
+def test_frames_and_observed_methods(live_service, demo_catalogue):
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
+    with Client(live_service, batch_size=10) as sky:
+        # ICRS -> galactic -> ICRS returns the input (round trip through the service).
+        gal = sky.frames(
+            stars[:3], catalogue_epoch="J2016.0", from_frame="icrs", to_frame="galactic"
+        )
+        back_in = [
+            dict(s, **{k: a[k] for k in ("ra_deg", "dec_deg")})
+            for s, a in zip(stars[:3], (x["at_epochs"][0] for x in gal["stars"]), strict=True)
+        ]
+        # (pm and parallax of the galactic answer are carried too)
+        for s, x in zip(back_in, gal["stars"], strict=True):
+            s.update({k: x["at_epochs"][0][k] for k in ("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr")})
+        back = sky.frames(
+            back_in, catalogue_epoch="J2016.0", from_frame={"name": "galactic"}, to_frame="icrs"
+        )
+        for s, x in zip(stars[:3], back["stars"], strict=True):
+            assert x["at_epochs"][0]["dec_deg"] == pytest.approx(s["dec_deg"], abs=1e-9)  # deg
+        body = {"stars": stars, "catalogue_epoch": "J2016.0",
+                "instants": ["2026-12-02T22:00:00Z"], "site": "kestrel-ridge"}  # fmt: skip
+        whole = sky.post("/v1/observed", body)
+        batched = sky.observed(
+            stars, catalogue_epoch="J2016.0", instants="2026-12-02T22:00:00Z",
+            site="kestrel-ridge",
+        )  # fmt: skip
+    assert batched == whole  # three batches joined as if sent at once
+    assert "advisory" in batched["advisory"].lower()
+
+
+def test_unreachable_service_after_retries():
+    waits = []
+    c = Client(f"http://127.0.0.1:{free_port()}", retries=2, sleep=waits.append)
+    with pytest.raises(SkydriftError) as info:
+        c.health()
+    assert info.value.status is None
+    assert len(waits) == 2
+    assert 0.25 <= waits[0] <= 0.5 and 0.5 <= waits[1] <= 1.0  # backoff 0.5 s doubled
+
+
+def test_chart_methods_return_images(sky, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    svg = sky.chart_track(stars[16:18], catalogue_epoch="J2016.0", start="J2016.0", stop="J3016.0")
+    root = ET.fromstring(svg)
+    ids = [g.get("id") for g in root.iter("{http://www.w3.org/2000/svg}g")]
+    assert "track-0" in ids and "track-1" in ids
+    png = sky.chart_field(
+        stars, catalogue_epoch="J2016.0", epochs=("J2016.0", "J12016.0"), image_format="png"
+    )
+    assert png.startswith(b"\x89PNG\r\n\x1a\n")
+
+
+def test_merge_answers_fills_columns_a_batch_lacks():
+    a = {"star_count": 2, "columns": {"id": ["a", "b"], "x": [[1, 2]], "err": [[0.1, 0.2]]}}
+    b = {"star_count": 1, "columns": {"id": ["c"], "x": [[3]]}}
+    merged = merge_answers([a, b], [0, 2])
+    assert merged["star_count"] == 3
+    assert merged["columns"] == {"id": ["a", "b", "c"], "x": [[1, 2, 3]], "err": [[0.1, 0.2, None]]}
+
+
+def test_bearer_token_against_the_real_server():
+    from tests.clients.conftest import start_service, stop_service
+
+    token = "kestrel-ridge-test-token-0001"  # test value, 16+ characters as the service asks
+    url, proc = start_service({"SKYDRIFT_AUTH_TOKENS": token})
+    star = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    try:
+        with Client(url, retries=0) as sky:
+            with pytest.raises(SkydriftError) as info:
+                sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert info.value.status == 401
+        with Client(url, token=token) as sky:
+            answer = sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert answer["star_count"] == 1
+    finally:
+        stop_service(proc)
+
+
+# ------------------------------------------------------------------ retries
+
+
+def test_retries_against_the_real_server():
+    """The service's test-only setting answers 503 with Retry-After to the first requests."""
+    import dataclasses
+
+    from service.config import Settings
+    from tests.clients.conftest import start_service, stop_service
+
+    if "test_fail_first_n" not in {f.name for f in dataclasses.fields(Settings)}:
+        pytest.skip("this service has no test-only failure setting")
+    url, proc = start_service(
+        {"SKYDRIFT_TEST_FAIL_FIRST_N": "3", "SKYDRIFT_TEST_FAIL_RETRY_AFTER_S": "1"}
+    )
+    star = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    try:
+        waits = []
+        with Client(url, retries=1, sleep=waits.append) as sky:
+            with pytest.raises(SkydriftError) as info:  # failures 1 and 2: retries run out
+                sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert info.value.status == 503
+        assert info.value.retry_after_s == 1.0
+        assert waits == [1.0]
+        waits.clear()
+        with Client(url, sleep=waits.append) as sky:  # failure 3, then the answer
+            answer = sky.propagate([star], catalogue_epoch=2016.0, target_epochs=[2020.0])
+        assert answer["star_count"] == 1
+        assert waits == [1.0]
+    finally:
+        stop_service(proc)
+
+
+class ScriptedServer:
+    """A loopback HTTP server answering from a script: (status, headers, body) per request."""
+
+    def __init__(self, script):
+        self.script = list(script)
+        self.seen = []
+        outer = self
+
+        class Handler(BaseHTTPRequestHandler):
+            def _answer(self):
+                length = int(self.headers.get("Content-Length") or 0)
+                outer.seen.append((self.command, self.path, self.rfile.read(length)))
+                status, headers, body = outer.script.pop(0) if outer.script else (500, {}, b"")
+                self.send_response(status)
+                for k, v in headers.items():
+                    self.send_header(k, v)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+            do_GET = do_POST = _answer
+
+            def log_message(self, *args):
+                pass
+
+        self.httpd = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self.url = f"http://127.0.0.1:{self.httpd.server_address[1]}"
+        self.thread = threading.Thread(target=self.httpd.serve_forever, daemon=True)
+
+    def __enter__(self):
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self.httpd.shutdown()
+        self.httpd.server_close()
+
+
+OK = (200, {"Content-Type": "application/json"}, json.dumps({"status": "ok"}).encode())
+BUSY = (
+    503,
+    {"Content-Type": "application/problem+json", "Retry-After": "2"},
+    json.dumps({"type": "about:blank", "title": "Service Unavailable", "status": 503}).encode(),
+)
+
+
+def test_retries_honour_retry_after_seconds():
+    waits = []
+    with ScriptedServer([BUSY, BUSY, OK]) as srv:
+        assert Client(srv.url, sleep=waits.append).health() == {"status": "ok"}
+    assert waits == [2.0, 2.0]
+    assert len(srv.seen) == 3
+
+
+def test_retries_honour_retry_after_http_date_and_429():
+    when = email.utils.formatdate(time.time() + 30, usegmt=True)
+    limited = (429, {"Retry-After": when}, b"slow down")
+    waits = []
+    with ScriptedServer([limited, OK]) as srv:
+        Client(srv.url, sleep=waits.append).health()
+    assert 25.0 <= waits[0] <= 31.0
+
+
+def test_retry_after_is_capped_and_backoff_used_without_it():
+    waits = []
+    long_wait = (503, {"Retry-After": "3600"}, b"")
+    plain = (502, {}, b"")
+    with ScriptedServer([long_wait, plain, OK]) as srv:
+        Client(srv.url, sleep=waits.append, max_retry_after_s=10.0, backoff_s=1.0).health()
+    assert waits[0] == 10.0
+    assert 1.0 <= waits[1] <= 2.0  # second attempt: 1 s doubled, with jitter in [0.5, 1]
+
+
+def test_post_bodies_are_resent_on_retry():
+    waits = []
+    with ScriptedServer([BUSY, OK]) as srv:
+        Client(srv.url, sleep=waits.append).post("/v1/x", {"a": 1})
+    assert srv.seen[0][2] == srv.seen[1][2] == b'{"a": 1}'
+
+
+def test_retries_exhausted_raise_with_retry_after():
+    waits = []
+    with ScriptedServer([BUSY] * 3) as srv:
+        with pytest.raises(SkydriftError) as info:
+            Client(srv.url, retries=2, sleep=waits.append).health()
+    assert info.value.status == 503
+    assert info.value.retry_after_s == 2.0
+    assert waits == [2.0, 2.0]
+
+
+def test_non_json_error_still_an_exception():
+    with ScriptedServer([(502, {"Content-Type": "text/html"}, b"<h1>bad gateway</h1>")]) as srv:
+        with pytest.raises(SkydriftError) as info:
+            Client(srv.url, retries=0).health()
+    assert info.value.status == 502
+    assert "bad gateway" in info.value.detail
+
+
+def test_connection_reused(live_service):
+    c = Client(live_service)
+    for _ in range(3):
+        c.health()
+    pool = c.session.get_adapter(live_service).poolmanager
+    (key,) = pool.pools.keys()
+    assert pool.pools[key].num_connections == 1

@@ -1,0 +1,27 @@
+"""`make demo`: the invented scenario end to end through the client, against the live service."""
+
+import os
+import subprocess
+import sys
+
+from tests.conftest import DEMO, ROOT
+
+
+def test_demo_scenario_end_to_end(live_service, tmp_path):
+    env = dict(os.environ, SKYDRIFT_URL=live_service, SKYDRIFT_DEMO_OUT=str(tmp_path))
+    out = subprocess.run(
+        [sys.executable, str(DEMO / "run.py")],
+        cwd=ROOT,
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=300,
+    )
+    assert out.returncode == 0, out.stderr
+    text = out.stdout
+    for heading in ("Observed places", "Constellations tonight", "Velocities", "Charts in"):
+        assert heading in text
+    assert "advisory" in text.lower()  # the safety figures are said to be advisory
+    assert "KRC 0017 crosses from Tau into Ari" in text
+    for name in ("field.svg", "field.png", "track_krc_0017.svg", "track_krc_0017.png"):
+        assert (tmp_path / name).stat().st_size > 1000
