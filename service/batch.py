@@ -60,6 +60,7 @@ import pathlib
 import platform
 import sys
 import time
+import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 
@@ -557,7 +558,7 @@ def row_checks(plan: BatchPlan, inputs: dict) -> np.ndarray:
         nan = np.isnan(x)
         if f.required:
             flags[nan] |= np.uint32(RowFlag.REQUIRED_VALUE_MISSING)
-        bad = ~nan & ~((x >= f.low) & (x <= f.high))
+        bad = ~nan & ~(np.isfinite(x) & (x >= f.low) & (x <= f.high))
         flags[bad] |= np.uint32(RowFlag.VALUE_OUT_OF_RANGE)
     return flags
 
@@ -924,12 +925,13 @@ def run_batch(
                 "workers": len(client.scheduler_info(n_workers=-1)["workers"]),
                 "threads": int(sum(client.nthreads().values())),
             }
-            futures = client.compute([write, counts])
-            if progress:
-                with contextlib.redirect_stdout(sys.stderr):
-                    dist_progress(futures)
-                    sys.stderr.write("\n")
-            _, count_frame = client.gather(futures)
+            with _known_upstream_warnings():  # for workers in this process
+                futures = client.compute([write, counts])
+                if progress:
+                    with contextlib.redirect_stdout(sys.stderr):
+                        dist_progress(futures)
+                        sys.stderr.write("\n")
+                _, count_frame = client.gather(futures)
             worker_versions = client.run(_versions)
             execution["worker_versions"] = _distinct(worker_versions.values())
         else:
@@ -938,7 +940,7 @@ def run_batch(
             cfg = {"scheduler": local}
             if local != "synchronous":
                 cfg["num_workers"] = n_workers
-            with dask.config.set(cfg), _progress_bar(progress):
+            with dask.config.set(cfg), _progress_bar(progress), _known_upstream_warnings():
                 _, count_frame = dask.compute(write, counts)
     finally:
         if own_client is not None:
@@ -958,6 +960,18 @@ def run_batch(
     metadata["parameters"] = _parameter_record(plan, given_epochs or {})
     (dest / METADATA_FILE).write_text(json.dumps(metadata, indent=2, sort_keys=False) + "\n")
     return RunSummary(str(dest), rows, flag_counts, wall, metadata)
+
+
+@contextlib.contextmanager
+def _known_upstream_warnings():
+    """Silence warnings from the libraries' own code that say nothing about the run."""
+    with warnings.catch_warnings():
+        # dask's Parquet reader calls DataFrame.reset_index(inplace=True), deprecated in
+        # pandas 3.1 (a FutureWarning subclass); harmless, and nothing a user can change.
+        warnings.filterwarnings(
+            "ignore", message="The inplace keyword in DataFrame.reset_index", category=Warning
+        )
+        yield
 
 
 def _distinct(records) -> list:
