@@ -98,9 +98,10 @@ def create_app(config: dict | None = None) -> Flask:
         resp.headers.setdefault("Cache-Control", "no-store")
         return resp
 
-    from . import docs, health, propagation
+    from . import docs, health, propagation, velocity
 
     health.register(app, api)
     propagation.register(app, api)
+    velocity.register(app, api)
     docs.register(app, api)
     return app

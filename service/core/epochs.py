@@ -34,6 +34,7 @@ from dataclasses import dataclass
 
 import erfa
 import numpy as np
+from erfa import ufunc as erfa_ufunc
 
 from .constants import DAY_S, JD_J2000, JULIAN_YEAR_DAYS, MJD_ZERO_JD
 from .offline import leap_second_table
@@ -172,15 +173,21 @@ def _to_tdb_jd(jd1, jd2, scale: str):
 
 
 def _from_tdb_to_utc_jd(jd1, jd2):
-    leap_second_table()
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
-        t1, t2 = jd1, jd2 - dt / DAY_S
-        a1, a2 = erfa.tttai(t1, t2)
-        u1, u2 = erfa.taiutc(a1, a2)
-    dubious = any(issubclass(w.category, erfa.ErfaWarning) for w in caught)
-    return u1, u2, dubious
+    """Two-part JD on TDB to two-part JD on UTC, with ERFA's per-element dubious status.
+
+    The status is ERFA dat's: before 1960 (no UTC as defined today) or more than five
+    years after the release of the ERFA leap-second table ("dubious year").
+    """
+    table = leap_second_table()
+    dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
+    t1, t2 = jd1, jd2 - dt / DAY_S
+    a1, a2 = erfa.tttai(t1, t2)
+    # The ufunc form returns the status per element instead of one warning for all.
+    u1, u2, status = erfa_ufunc.taiutc(a1, a2)
+    # Beyond the expiry of the packaged leap-second table a leap second may have been
+    # added that the table does not know: the UTC rendering is then approximate too.
+    beyond = (u1 - MJD_ZERO_JD) + u2 > table.expires.mjd
+    return u1, u2, (np.asarray(status) == 1) | beyond
 
 
 def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
@@ -350,7 +357,10 @@ def label_epochs(jyear) -> EpochLabels:
     -----
     1. TDB -> TT with ERFA dtdb at the geocentre, TT -> TAI -> UTC with ERFA tttai and
        taiutc (leap seconds from ERFA's built-in table); ERFA d2dtf gives the calendar form.
-    2. Before 1960 and after the end of the leap-second table, UTC is flagged approximate.
+    2. Where ERFA reports a dubious year (before 1960, or more than five years after the
+       release of its leap-second table: ERFA dat, Note 1), or the date lies beyond the
+       expiry of the packaged leap-second table (astropy-iers-data), UTC is flagged
+       approximate.
     """
     jyear = np.atleast_1d(np.asarray(jyear, dtype=float))
     d1, d2 = julian_epoch_to_jd(jyear)
@@ -361,13 +371,11 @@ def label_epochs(jyear) -> EpochLabels:
     notes[~inside] |= int(TimeNote.NO_CALENDAR_DATE)
     idx = np.flatnonzero(inside)
     if idx.size:
-        u1, u2, _ = _from_tdb_to_utc_jd(d1[idx], d2[idx])
+        u1, u2, dubious = _from_tdb_to_utc_jd(d1[idx], d2[idx])
         with warnings.catch_warnings(record=True):
             warnings.simplefilter("always")
             iy, im, iday, ihmsf = erfa.d2dtf("UTC", 3, u1, u2)
         hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
-        year_int = np.asarray(iy)
-        dubious = (year_int < 1960) | (year_int > _leap_table_last_year())
         for k, i in enumerate(idx):
             h, mi, s, ms = (int(x) for x in hmsf[k])
             iso[i] = (
@@ -376,8 +384,3 @@ def label_epochs(jyear) -> EpochLabels:
             if dubious[k]:
                 notes[i] |= int(TimeNote.UTC_APPROXIMATE)
     return EpochLabels(jyear, d1 + d2, iso, notes)
-
-
-def _leap_table_last_year() -> int:
-    """Last calendar year fully covered by the packaged leap-second table (its expiry)."""
-    return int(leap_second_table().expires.datetime.year) - 1

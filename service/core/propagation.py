@@ -43,18 +43,23 @@ from erfa import ufunc as erfa_ufunc
 from .constants import (
     AU_PER_JULIAN_YEAR_KM_S,
     C_KM_S,
+    DEG_PER_RAD,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
 from .epochs import julian_epoch_to_jd
 
-#: The models offered; the first is the default.
 MODELS = ("standard", "light_time")
 
 #: Space velocity above which an input is implausible: half the speed of light, the
 #: threshold SOFA/ERFA starpm uses to cap the speed ("excessive speed", status 2), km/s.
 IMPLAUSIBLE_SPACE_VELOCITY_KM_S = 0.5 * C_KM_S
+
+#: Distance from a celestial pole below which a position counts as at the pole, radians
+#: (1e-12 rad = 0.2 microarcsecond; a declination of exactly +-90 degrees in double
+#: precision is ~6e-17 rad from the pole, so it is caught).
+AT_POLE_RAD = 1e-12
 
 
 class PropagationFlag(enum.IntFlag):
@@ -75,7 +80,8 @@ class PropagationFlag(enum.IntFlag):
     #: Space velocity implied by parallax, proper motion and radial velocity above half the
     #: speed of light: the inputs are inconsistent (light-time model caps it, as SOFA does).
     SPACE_VELOCITY_IMPLAUSIBLE = 16
-    #: Position at a celestial pole: right ascension and its motion are undefined there.
+    #: Position at a celestial pole (within AT_POLE_RAD of it): right ascension and the
+    #: orientation of the proper-motion components are undefined there.
     AT_POLE = 32
     #: Light-time model: the parallax was too small for the motion and SOFA replaced the
     #: distance by a minimum value (pmsafe status 1).
@@ -132,6 +138,15 @@ class PropagationResult:
     covariance: np.ndarray | None
 
 
+#: One mas (or mas/yr) in radians (rad/yr).
+_RAD_PER_MAS = 1.0 / MAS_PER_RAD
+
+#: Squared thresholds for :func:`input_flags` (squares avoid square roots per star).
+_PM_LIMIT_SQ = IMPLAUSIBLE_PROPER_MOTION_MAS_YR**2
+_A_SQ = AU_PER_JULIAN_YEAR_KM_S**2
+_V_LIMIT_SQ = IMPLAUSIBLE_SPACE_VELOCITY_KM_S**2
+
+
 def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s):
     """Flags that depend on the inputs only (missing, non-positive, implausible).
 
@@ -144,6 +159,13 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     -------
     ndarray of int64
         :class:`PropagationFlag` bits.
+
+    Notes
+    -----
+    1. The thresholds are compared as squares: total proper motion mu^2 = mu_a*^2 + mu_d^2
+       against IMPLAUSIBLE_PROPER_MOTION_MAS_YR^2; the space velocity, where the parallax
+       is positive, as A^2 mu^2 + v_r^2 plx^2 > v_max^2 plx^2 (v_t = A mu / plx; an unknown
+       radial velocity counts as zero here).
     """
     plx = np.asarray(parallax_mas, dtype=float)
     rv = np.asarray(radial_velocity_km_s, dtype=float)
@@ -151,43 +173,125 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     pmd = np.asarray(pm_dec_mas_yr, dtype=float)
     shape = np.broadcast_shapes(plx.shape, rv.shape, pma.shape, pmd.shape)
     flags = np.zeros(shape, dtype=np.int64)
+    F = PropagationFlag
     plx_missing = np.isnan(plx)
-    with np.errstate(invalid="ignore"):
-        plx_nonpos = plx <= 0
-        rv_missing = np.isnan(rv)
-        pm_total = np.hypot(pma, pmd)
-        flags |= np.where(plx_missing, int(PropagationFlag.PARALLAX_MISSING), 0)
-        flags |= np.where(plx_nonpos, int(PropagationFlag.PARALLAX_NOT_POSITIVE), 0)
-        flags |= np.where(rv_missing, int(PropagationFlag.RADIAL_VELOCITY_MISSING), 0)
-        flags |= np.where(
-            pm_total > IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
-            int(PropagationFlag.PROPER_MOTION_IMPLAUSIBLE),
-            0,
-        )
-        flags |= np.where(
-            ~rv_missing & (plx_missing | plx_nonpos),
-            int(PropagationFlag.RADIAL_VELOCITY_UNCHANGED),
-            0,
-        )
-        # Space velocity from parallax (only where a distance exists).
-        good = plx > 0
-        vt = np.where(good, AU_PER_JULIAN_YEAR_KM_S * pm_total / np.where(good, plx, 1.0), 0.0)
-        v = np.hypot(vt, np.where(rv_missing, 0.0, rv))
-        flags |= np.where(
-            v > IMPLAUSIBLE_SPACE_VELOCITY_KM_S,
-            int(PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE),
-            0,
-        )
+    rv_missing = np.isnan(rv)
+    plx_positive = plx > 0  # False for NaN
+    pm_sq = pma * pma + pmd * pmd
+    plx_sq = plx * plx
+    vt_sq_plx_sq = _A_SQ * pm_sq  # v_t^2 plx^2
+    limit = _V_LIMIT_SQ * plx_sq
+    # NaN radial velocity makes the second comparison False; the first then decides.
+    too_fast = (vt_sq_plx_sq > limit) | (vt_sq_plx_sq + rv * rv * plx_sq > limit)
+    for mask, bit in (
+        (plx_missing, F.PARALLAX_MISSING),
+        (~(plx_positive | plx_missing), F.PARALLAX_NOT_POSITIVE),
+        (rv_missing, F.RADIAL_VELOCITY_MISSING),
+        (pm_sq > _PM_LIMIT_SQ, F.PROPER_MOTION_IMPLAUSIBLE),
+        (~(rv_missing | plx_positive), F.RADIAL_VELOCITY_UNCHANGED),
+        (too_fast & plx_positive, F.SPACE_VELOCITY_IMPLAUSIBLE),
+    ):
+        np.bitwise_or(flags, int(bit), out=flags, where=mask)
     return flags
+
+
+@dataclass
+class _Local:
+    """The standard model evaluated in the local triad of the catalogue position.
+
+    Internal; all angles in radians, motions in rad/yr. See :func:`propagate_standard`,
+    Notes 3-4, for the definitions.
+    """
+
+    sd: np.ndarray  # sin(dec0)
+    cd: np.ndarray  # cos(dec0)
+    mua: np.ndarray  # mu_a* (rad/yr)
+    mud: np.ndarray  # mu_d (rad/yr)
+    mur: np.ndarray  # mu_r (rad/yr), zero where not usable
+    tau: np.ndarray  # epoch difference (yr)
+    sx: np.ndarray  # s on p0
+    sy: np.ndarray  # s on q0
+    sz: np.ndarray  # s on r0
+    X: np.ndarray  # s on the horizontal unit vector towards alpha0 (cos a0, sin a0, 0)
+    Z: np.ndarray  # s on the celestial pole
+    H: np.ndarray  # |s| cos(dec1) = hypot(X, sx)
+    hinv: np.ndarray  # 1/H (0 at a pole)
+    s2: np.ndarray  # |s|^2
+    f: np.ndarray  # 1/|s|
+    VX: np.ndarray  # v on (cos a0, sin a0, 0); v on p0 is mua
+    VZ: np.ndarray  # v on the pole
+    pa: np.ndarray  # mu_a* at the target (rad/yr)
+    pd: np.ndarray  # mu_d at the target (rad/yr)
+    tpm2: np.ndarray  # tau (mu_a*^2 + mu_d^2) (rad^2/yr)
+    sv: np.ndarray  # s . v = tpm2 + sz mu_r (rad/yr)
+    mur1: np.ndarray  # mu_r at the target (rad/yr)
+
+
+def _advance_local(dec_rad, pma_mas, pmd_mas, mur_mas, tau) -> _Local:
+    """Evaluate the straight-line model in the local triad (see propagate_standard)."""
+    sd = np.sin(dec_rad)
+    cd = np.cos(dec_rad)
+    mua = pma_mas * _RAD_PER_MAS
+    mud = pmd_mas * _RAD_PER_MAS
+    mur = mur_mas * _RAD_PER_MAS
+    sx = tau * mua
+    sy = tau * mud
+    sz = 1.0 + tau * mur
+    X = cd * sz - sd * sy
+    Z = cd * sy + sd * sz
+    h2 = X * X + sx * sx
+    s2 = h2 + Z * Z
+    H = np.sqrt(h2)
+    f = 1.0 / np.sqrt(s2)
+    with np.errstate(divide="ignore"):
+        hinv = 1.0 / H
+    if not np.all(H > 0.0):  # at a pole: no RA frame; components set to zero (flag AT_POLE)
+        hinv = np.where(H > 0.0, hinv, 0.0)
+    VX = cd * mur - sd * mud
+    VZ = cd * mud + sd * mur
+    pa = f * (X * mua - sx * VX) * hinv
+    pd = f * f * (VZ * h2 - Z * (X * VX + sx * mua)) * hinv
+    tpm2 = tau * (mua * mua + mud * mud)
+    sv = tpm2 + sz * mur
+    mur1 = f * f * sv
+    return _Local(
+        sd, cd, mua, mud, mur, tau, sx, sy, sz, X, Z, H, hinv, s2, f, VX, VZ, pa, pd, tpm2, sv,
+        mur1,
+    )  # fmt: skip
 
 
 def _radial_proper_motion_mas_yr(parallax_mas, radial_velocity_km_s):
     """mu_r = v_r * parallax / A where both are known and the parallax positive, else 0."""
     plx = np.asarray(parallax_mas, dtype=float)
     rv = np.asarray(radial_velocity_km_s, dtype=float)
-    with np.errstate(invalid="ignore"):
-        usable = (plx > 0) & np.isfinite(rv)
-    return np.where(usable, rv * plx / AU_PER_JULIAN_YEAR_KM_S, 0.0), usable
+    usable = (plx > 0) & np.isfinite(rv)
+    return np.where(usable, rv * plx * (1.0 / AU_PER_JULIAN_YEAR_KM_S), 0.0), usable
+
+
+def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
+    """Standard model: (Astrometry, flags, _Local, usable) for broadcast-compatible arrays."""
+    flags = input_flags(plx, pma, pmd, rv)
+    mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
+    loc = _advance_local(dec_deg * RAD_PER_DEG, pma, pmd, mur_mas, tau)
+    ra1 = np.mod(ra_deg + np.arctan2(loc.sx, loc.X) * DEG_PER_RAD, 360.0)
+    dec1 = np.arctan2(loc.Z, loc.H) * DEG_PER_RAD
+    plx1 = plx * loc.f
+    with np.errstate(divide="ignore", invalid="ignore"):
+        # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4).
+        g = (AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD) / plx * loc.tpm2 + rv * loc.sz
+    rv1 = np.where(usable, loc.f * g, rv)
+    at_pole = loc.H * loc.f < AT_POLE_RAD
+    if np.any(at_pole):
+        flags = flags | np.where(at_pole, int(PropagationFlag.AT_POLE), 0)
+    ast = Astrometry(
+        ra_deg=ra1,
+        dec_deg=dec1,
+        parallax_mas=plx1,
+        pm_ra_cosdec_mas_yr=loc.pa * MAS_PER_RAD,
+        pm_dec_mas_yr=loc.pd * MAS_PER_RAD,
+        radial_velocity_km_s=rv1,
+    )
+    return ast, flags, loc, usable, g
 
 
 def propagate_standard(
@@ -235,104 +339,128 @@ def propagate_standard(
        tau the epoch difference), f = 1/|s|, the model is u = f s, parallax = parallax0 f,
        mu = f (v - u (u.v)), mu_r = f (u.v): ESA 1997 Vol. 1 eqs. 1.5.12-1.5.19 written in
        vector form.
+    4. The vectors are taken on the local triad (p0, q0, r0) of the catalogue position
+       (ESA 1997 Vol. 1 eq. 1.2.15), where r0 = (0, 0, 1), v = (mu_a*, mu_d, mu_r) and
+       s = (tau mu_a*, tau mu_d, 1 + tau mu_r); the celestial pole is (0, cos d0, sin d0).
+       On the rotated basis (cos a0, sin a0, 0), p0, pole the position is
+       (X, tau mu_a*, Z) with X = cos d0 s_r - sin d0 s_q and Z = cos d0 s_q + sin d0 s_r,
+       so alpha = alpha0 + atan2(tau mu_a*, X) and delta = atan2(Z, hypot(X, tau mu_a*)):
+       only the declination needs a sine and cosine. The radial velocity out is
+       v_r f (1 + tau mu_r) + f (A / parallax0) tau (mu_a*^2 + mu_d^2), free of the
+       cancellation of mu_r / parallax for small parallaxes.
     """
-    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
-    dec = np.asarray(dec_deg, dtype=float) * RAD_PER_DEG
-    plx = np.asarray(parallax_mas, dtype=float)
-    pma = np.asarray(pm_ra_cosdec_mas_yr, dtype=float)
-    pmd = np.asarray(pm_dec_mas_yr, dtype=float)
-    rv = np.asarray(radial_velocity_km_s, dtype=float)
+    args = [
+        np.asarray(x, dtype=float)
+        for x in (
+            ra_deg,
+            dec_deg,
+            parallax_mas,
+            pm_ra_cosdec_mas_yr,
+            pm_dec_mas_yr,
+            radial_velocity_km_s,
+        )
+    ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
-
-    flags = input_flags(plx, pma, pmd, rv)
-    mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
-    state = _State.from_inputs(ra, dec, pma, pmd, mur_mas)
-    out = state.advance(tau)
-
-    plx_out = plx * out.f
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rv_moved = out.mur * MAS_PER_RAD * AU_PER_JULIAN_YEAR_KM_S / plx_out
-    rv_out = np.where(usable, rv_moved, rv)
-    at_pole = out.h == 0.0
-    flags = flags | np.where(at_pole, int(PropagationFlag.AT_POLE), 0)
-    ast = Astrometry(
-        ra_deg=out.ra_deg,
-        dec_deg=out.dec_deg,
-        parallax_mas=plx_out,
-        pm_ra_cosdec_mas_yr=out.pma * MAS_PER_RAD,
-        pm_dec_mas_yr=out.pmd * MAS_PER_RAD,
-        radial_velocity_km_s=rv_out,
-    )
+    *args, tau = np.broadcast_arrays(*args, tau)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ast, flags, _, _, _ = _standard_outputs(*args, tau)
     return ast, flags
 
 
-@dataclass
-class _Advanced:
-    """Quantities of the standard model at the target epoch (radians, rad/yr)."""
-
-    ux: np.ndarray
-    uy: np.ndarray
-    uz: np.ndarray
-    h: np.ndarray
-    f: np.ndarray
-    ur: np.ndarray
-    mux: np.ndarray
-    muy: np.ndarray
-    muz: np.ndarray
-    mur: np.ndarray
-    pma: np.ndarray
-    pmd: np.ndarray
-    ra_deg: np.ndarray
-    dec_deg: np.ndarray
+#: Positions (i, j) of the entries of the standard model's Jacobian that are not zero by
+#: construction (standard_jacobian, Note 3); all others are exactly zero.
+JACOBIAN_NONZERO = (
+    ((0, 0), (0, 1), (0, 2), (0, 3), (0, 4), (0, 5))
+    + ((1, 1), (1, 2), (1, 3), (1, 4), (1, 5))
+    + ((2, 2), (2, 3), (2, 4), (2, 5))
+    + ((3, 1), (3, 2), (3, 3), (3, 4), (3, 5))
+    + ((4, 1), (4, 2), (4, 3), (4, 4), (4, 5))
+    + ((5, 2), (5, 3), (5, 4), (5, 5))
+)
 
 
-@dataclass
-class _State:
-    """Unit vector r0 and scaled space velocity v = r0 mu_r + mu0 (rad/yr) at the start."""
+def _jacobian_entries(loc: _Local, plx_mas, rv, usable, g, out):
+    """Write the nonzero entries of the standard model's Jacobian into ``out[i, j]``.
 
-    sa: np.ndarray
-    ca: np.ndarray
-    sd: np.ndarray
-    cd: np.ndarray
-    pma: np.ndarray  # rad/yr
-    pmd: np.ndarray  # rad/yr
-    mur: np.ndarray  # rad/yr
-    vx: np.ndarray
-    vy: np.ndarray
-    vz: np.ndarray
+    ``out`` has shape (6, 6) + the stars' shape, entry-major; the entries listed in
+    JACOBIAN_NONZERO are written (units of :func:`standard_jacobian`), the others are left
+    as they are (the caller keeps them zero). Rows/columns of unknown parameters are not
+    masked here.
+    """
+    f, hinv, tau, Z = loc.f, loc.hinv, loc.tau, loc.Z
+    sd, cd, sx, sy, sz, s2 = loc.sd, loc.cd, loc.sx, loc.sy, loc.sz, loc.s2
+    pa, pd, mur, mur1 = loc.pa, loc.pd, loc.mur, loc.mur1
+    fh = f * hinv
+    ffh = f * fh
+    t1 = Z * hinv  # tan(dec1)
+    kp = pd * t1 - mur1  # coefficient of d alpha1* in d mu_a*1
+    kd = pa * t1  # coefficient of d alpha1* in d mu_d1 (with minus sign)
+    mfft = -f * f * tau  # (df/f) per unit of s.e / tau
+    # Column 0 (alpha*): a rotation about the pole; only alpha* changes (Note 3).
+    out[0, 0] = f / (cd * hinv)
+    # Column 1 (delta): ds = (0, sz, -sy), dv = (0, mu_r, -mu_d), s.ds = 0.
+    j01 = fh * sx * Z
+    out[0, 1] = j01
+    j11 = loc.X * hinv
+    out[1, 1] = j11
+    out[3, 1] = fh * sx * loc.VZ + kp * j01
+    out[4, 1] = ffh * (s2 * loc.VX - Z * (sy * mur - sz * loc.mud)) - kd * j01 - mur1 * j11
+    # Responses to a unit change of the velocity along e = p0, q0, r0 (ds = tau e):
+    # f p1.e, f q1.e, s.e.
+    resp = []
+    for pe, qe, se in (
+        (loc.X, -Z * sx, sx),
+        (sd * sx, s2 * cd - Z * sy, sy),
+        (-cd * sx, s2 * sd - Z * sz, sz),
+    ):
+        a = fh * pe
+        b = ffh * qe
+        dff = mfft * se  # df/f
+        j0 = tau * a
+        j1 = tau * b
+        resp.append((j0, j1, dff * pa + a + kp * j0, dff * pd + b - kd * j0 - mur1 * j1, dff))
+    plx_f = plx_mas * _RAD_PER_MAS * f  # parallax in rad, as the motions
+    # Usable radial proper motion: A/plx and g are finite; elsewhere row 5 is the identity.
+    f_row5 = np.where(usable, f * _RAD_PER_MAS, 0.0)  # row 5 per mas instead of per rad
+    a_over_plx = np.where(usable, AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD / plx_mas, 0.0)
+    g = np.where(usable, g, 0.0)
+    two_a_tau = 2.0 * a_over_plx * tau
+    # Columns 3, 4 (mu_a*, mu_d): dv = e_x, e_y; dg = 2 (A/plx) tau mu.
+    for col, (j0, j1, j3, j4, dff), mu in ((3, resp[0], loc.mua), (4, resp[1], loc.mud)):
+        out[0, col] = j0
+        out[1, col] = j1
+        out[3, col] = j3
+        out[4, col] = j4
+        out[2, col] = plx_f * dff
+        out[5, col] = f_row5 * (dff * g + two_a_tau * mu)
+    # Columns 2, 5 (parallax, v_r): dv = e_z d mu_r, d mu_r = (v_r/A) d plx + (plx/A) d v_r
+    # (column 5 in mas per km/s: plx in mas).
+    j0, j1, j3, j4, dff = resp[2]
+    c_plx = np.where(usable, rv * (1.0 / AU_PER_JULIAN_YEAR_KM_S), 0.0)
+    c_rv = np.where(usable, plx_mas * (1.0 / AU_PER_JULIAN_YEAR_KM_S), 0.0)
+    for col, c in ((2, c_plx), (5, c_rv)):
+        out[0, col] = j0 * c
+        out[1, col] = j1 * c
+        out[3, col] = j3 * c
+        out[4, col] = j4 * c
+    plx_f_dff = plx_f * dff
+    out[2, 2] = f + plx_f_dff * c_plx
+    out[2, 5] = plx_f_dff * c_rv
+    dg_plx = rv * tau * c_plx - a_over_plx / plx_mas * loc.tpm2 * MAS_PER_RAD
+    out[5, 2] = f_row5 * (dff * c_plx * g + dg_plx)
+    out[5, 5] = np.where(usable, f * (dff * (c_rv * _RAD_PER_MAS) * g + 1.0 + 2.0 * tau * mur), 1.0)
 
-    @classmethod
-    def from_inputs(cls, ra_rad, dec_rad, pma_mas, pmd_mas, mur_mas):
-        sa, ca = np.sin(ra_rad), np.cos(ra_rad)
-        sd, cd = np.sin(dec_rad), np.cos(dec_rad)
-        pma = pma_mas / MAS_PER_RAD
-        pmd = pmd_mas / MAS_PER_RAD
-        mur = mur_mas / MAS_PER_RAD
-        # v = r0 mu_r + p mu_a* + q mu_d with p = (-sa, ca, 0), q = (-sd ca, -sd sa, cd).
-        vx = cd * ca * mur - sa * pma - sd * ca * pmd
-        vy = cd * sa * mur + ca * pma - sd * sa * pmd
-        vz = sd * mur + cd * pmd
-        return cls(sa, ca, sd, cd, pma, pmd, mur, vx, vy, vz)
 
-    def advance(self, tau) -> _Advanced:
-        sx = self.cd * self.ca + self.vx * tau
-        sy = self.cd * self.sa + self.vy * tau
-        sz = self.sd + self.vz * tau
-        f = 1.0 / np.sqrt(sx * sx + sy * sy + sz * sz)
-        ux, uy, uz = sx * f, sy * f, sz * f
-        ur = ux * self.vx + uy * self.vy + uz * self.vz
-        mux = f * (self.vx - ux * ur)
-        muy = f * (self.vy - uy * ur)
-        muz = f * (self.vz - uz * ur)
-        h = np.hypot(ux, uy)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            hinv = np.where(h > 0, 1.0 / h, 0.0)
-        pma = (ux * muy - uy * mux) * hinv
-        pmd = muz * h - uz * (ux * mux + uy * muy) * hinv
-        ra = np.arctan2(uy, ux)
-        ra_deg = np.mod(np.degrees(ra), 360.0)
-        dec_deg = np.degrees(np.arctan2(uz, h))
-        return _Advanced(ux, uy, uz, h, f, ur, mux, muy, muz, f * ur, pma, pmd, ra_deg, dec_deg)
+#: Order of parameters in Jacobians and covariances (units mas, mas, mas, mas/yr, mas/yr,
+#: km/s); documentation only.
+COVARIANCE_ORDER = (
+    "ra_cosdec_mas",
+    "dec_mas",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
 
 
 def standard_jacobian(
@@ -362,100 +490,52 @@ def standard_jacobian(
     -----
     1. Position offsets are local tangent-plane offsets (Delta alpha* = Delta alpha cos dec),
        the convention of the Hipparcos and Gaia catalogues.
-    2. The derivatives are obtained by differentiating the vector form of the model
-       (Note 3 of :func:`propagate_standard`) in forward mode, using dp/dalpha* =
-       -r + q tan(dec), dq/dalpha* = -p tan(dec), dr/dalpha* = p, dq/ddec = -r, dr/ddec = q.
-       They are equivalent to the element-by-element expressions of ESA 1997 Vol. 1
-       section 1.5.5 (Table 1.5.3 and eqs. 1.5.20-1.5.21) and are tested against finite
-       differences.
-    3. Where the radial velocity is unknown (or the parallax not positive) the radial
+    2. The derivatives are those of the vector form of the model (Note 3 of
+       :func:`propagate_standard`) taken on the local triad (p0, q0, r0) of the catalogue
+       position, using dp/dalpha* = -r + q tan(dec), dq/dalpha* = -p tan(dec),
+       dr/dalpha* = p, dq/ddec = -r, dr/ddec = q, and the same relations at the target
+       for (p1, q1): d mu_a*1 = f p1.dv + (df/f) mu_a*1 + (mu_d1 tan(dec1) - mu_r1) d alpha1*,
+       d mu_d1 = f q1.dv + (df/f) mu_d1 - mu_a*1 tan(dec1) d alpha1* - mu_r1 d delta1,
+       with d alpha1* = f p1.ds, d delta1 = f q1.ds and df = -f^3 s.ds. They are equivalent
+       to the element-by-element expressions of ESA 1997 Vol. 1 section 1.5.5 (Table 1.5.3
+       and eqs. 1.5.20-1.5.21) and are tested against finite differences.
+    3. Known zeros are used, not computed: a change of alpha0 rotates the whole motion about
+       the pole, so column 0 is (cos dec1 / cos dec0, 0, 0, 0, 0, 0); a change of position
+       leaves |s| unchanged (s.ds = 0), so the parallax and radial-velocity rows do not
+       depend on position; d delta1/d alpha0* = 0.
+    4. Where the radial velocity is unknown (or the parallax not positive) the radial
        proper motion is held at zero and has no variance; the radial-velocity row and column
        are then NaN (unknown) or the identity (passed through unchanged, flag
-       RADIAL_VELOCITY_UNCHANGED).
+       RADIAL_VELOCITY_UNCHANGED). Where the parallax is unknown its row and column are NaN.
     """
-    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
-    dec = np.asarray(dec_deg, dtype=float) * RAD_PER_DEG
-    plx = np.asarray(parallax_mas, dtype=float)
-    pma_mas = np.asarray(pm_ra_cosdec_mas_yr, dtype=float)
-    pmd_mas = np.asarray(pm_dec_mas_yr, dtype=float)
-    rv = np.asarray(radial_velocity_km_s, dtype=float)
+    args = [
+        np.asarray(x, dtype=float)
+        for x in (
+            ra_deg,
+            dec_deg,
+            parallax_mas,
+            pm_ra_cosdec_mas_yr,
+            pm_dec_mas_yr,
+            radial_velocity_km_s,
+        )
+    ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
-    shape = np.broadcast_shapes(
-        ra.shape, dec.shape, plx.shape, pma_mas.shape, pmd_mas.shape, rv.shape, tau.shape
-    )
-    ra, dec, plx, pma_mas, pmd_mas, rv, tau = (
-        np.broadcast_to(x, shape)[..., None] for x in (ra, dec, plx, pma_mas, pmd_mas, rv, tau)
-    )
-    mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
-    st = _State.from_inputs(ra, dec, pma_mas, pmd_mas, mur_mas)
-    out = st.advance(tau)
-    k = 1.0 / MAS_PER_RAD  # one mas (or mas/yr) in rad (rad/yr)
-    a = AU_PER_JULIAN_YEAR_KM_S
-    sa, ca, sd, cd = st.sa, st.ca, st.sd, st.cd
-    with np.errstate(invalid="ignore", divide="ignore"):
-        td = sd / cd
-    p = (-sa, ca, np.zeros_like(sa))
-    q = (-sd * ca, -sd * sa, cd)
-    r = (cd * ca, cd * sa, sd)
-    one = np.ones(shape + (1,))
-    zero = np.zeros(shape + (1,))
-    # Tangent directions j = 0..5, stacked on the last axis (length 6).
-    sel = [np.zeros(6) for _ in range(6)]
-    for j in range(6):
-        sel[j][j] = 1.0
-    d_alpha = sel[0] * k
-    d_delta = sel[1] * k
-    d_plx0 = sel[2] * one
-    d_pma = sel[3] * k
-    d_pmd = sel[4] * k
-    d_rv = sel[5] * one
-    # d r0 = p d_alpha* + q d_delta
-    dr0 = [p[i] * d_alpha + q[i] * d_delta for i in range(3)]
-    # d mu0 = [tan(d)(q mu_a* - p mu_d) - r mu_a*] d_alpha* - r mu_d d_delta + p dmu_a* + q dmu_d
-    coef_a = [td * (q[i] * st.pma - p[i] * st.pmd) - r[i] * st.pma for i in range(3)]
-    dm = [
-        coef_a[i] * d_alpha - r[i] * st.pmd * d_delta + p[i] * d_pma + q[i] * d_pmd
-        for i in range(3)
-    ]
-    # d mu_r (rad/yr): mu_r = rv * plx / A
-    dmur = np.where(usable, (rv * d_plx0 + plx * d_rv) / a * k, 0.0 * zero)
-    dv = [r[i] * dmur + st.mur * dr0[i] + dm[i] for i in range(3)]
-    v = (st.vx, st.vy, st.vz)
-    u = (out.ux, out.uy, out.uz)
-    ds = [dr0[i] + tau * dv[i] for i in range(3)]
-    u_ds = u[0] * ds[0] + u[1] * ds[1] + u[2] * ds[2]
-    df = -out.f * out.f * u_ds
-    du = [out.f * (ds[i] - u[i] * u_ds) for i in range(3)]
-    dur = sum(du[i] * v[i] + u[i] * dv[i] for i in range(3))
-    mu = (out.mux, out.muy, out.muz)
-    dmu = [
-        df * (v[i] - u[i] * out.ur) + out.f * (dv[i] - du[i] * out.ur - u[i] * dur)
-        for i in range(3)
-    ]
-    dmur1 = df * out.ur + out.f * dur
-    plx1 = plx * out.f
-    dplx1 = d_plx0 * out.f + plx * df
-    # Frame at the target: p1 = (-uy, ux, 0)/h, q1 = (-uz ux/h, -uz uy/h, h).
-    with np.errstate(invalid="ignore", divide="ignore"):
-        hinv = 1.0 / out.h
-        td1 = out.uz * hinv
-    p1 = (-out.uy * hinv, out.ux * hinv, zero)
-    q1 = (-out.uz * out.ux * hinv, -out.uz * out.uy * hinv, out.h)
-    da1 = sum(p1[i] * du[i] for i in range(3))
-    dd1 = sum(q1[i] * du[i] for i in range(3))
-    pma1 = sum(p1[i] * mu[i] for i in range(3))
-    pmd1 = sum(q1[i] * mu[i] for i in range(3))
-    dpma1 = sum(p1[i] * dmu[i] for i in range(3)) + pmd1 * td1 * da1
-    dpmd1 = sum(q1[i] * dmu[i] for i in range(3)) - pma1 * td1 * da1
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rv1 = out.mur * MAS_PER_RAD * a / plx1
-        drv1 = a / plx1 * dmur1 * MAS_PER_RAD - rv1 / plx1 * dplx1
-    drv1 = np.where(usable, drv1, np.where(np.isfinite(rv), d_rv, np.nan))
-    rows = [da1 / k, dd1 / k, dplx1, dpma1 / k, dpmd1 / k, drv1]
-    jac = np.stack([np.broadcast_to(rw, shape + (6,)) for rw in rows], axis=-2)
-    # Unknown radial velocity: its column is meaningless (no variance enters) -> NaN.
-    rv_unknown = ~np.isfinite(rv[..., 0])
-    jac[..., :, 5] = np.where(rv_unknown[..., None], np.nan, jac[..., :, 5])
+    shape = np.broadcast_shapes(*(x.shape for x in args), tau.shape)
+    ra, dec, plx, pma, pmd, rv = (np.broadcast_to(x, shape) for x in args)
+    tau = np.broadcast_to(tau, shape)
+    entry_major = np.zeros((6, 6) + shape)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        _, _, loc, usable, g = _standard_outputs(ra, dec, plx, pma, pmd, rv, tau)
+        _jacobian_entries(loc, plx, rv, usable, g, entry_major)
+    jac = np.moveaxis(entry_major, (0, 1), (-2, -1)).copy()
+    rv_unknown = np.isnan(rv)
+    plx_unknown = np.isnan(plx)
+    if rv_unknown.any():
+        jac[..., 5, :] = np.where(rv_unknown[..., None], np.nan, jac[..., 5, :])
+        jac[..., :, 5] = np.where(rv_unknown[..., None], np.nan, jac[..., :, 5])
+    if plx_unknown.any():
+        jac[..., 2, :] = np.where(plx_unknown[..., None], np.nan, jac[..., 2, :])
+        jac[..., :, 2] = np.where(plx_unknown[..., None], np.nan, jac[..., :, 2])
     return jac
 
 
@@ -465,7 +545,8 @@ def propagate_covariance(jacobian, covariance):
     Parameters
     ----------
     jacobian : ndarray, shape (..., 6, 6)
-        From :func:`standard_jacobian` (NaN column 5 where the radial velocity is unknown).
+        From :func:`standard_jacobian` (NaN row and column 5 where the radial velocity is
+        unknown, NaN row and column 2 where the parallax is unknown).
     covariance : ndarray, shape (..., 6, 6)
         Covariance at the catalogue epoch in the same parameter order and units
         (NaN row and column 5 where the radial velocity is unknown).
@@ -473,19 +554,54 @@ def propagate_covariance(jacobian, covariance):
     Returns
     -------
     ndarray, shape (..., 6, 6)
-        Covariance at the target epoch; row and column 5 are NaN where the radial velocity
-        is unknown (the 5x5 block is then the 5-parameter result).
+        Covariance at the target epoch, exactly symmetric; row and column 5 (2) are NaN
+        where the radial velocity (parallax) is unknown (Note 1).
+
+    Notes
+    -----
+    1. Unknown parameters contribute nothing (their NaN entries count as zero), so the
+       remaining block is the propagation of the known parameters alone (the 5x5 result
+       when the radial velocity is unknown).
     """
     jac = np.asarray(jacobian, dtype=float)
     cov = np.asarray(covariance, dtype=float)
     rv_unknown = np.isnan(jac[..., 5, 5]) | np.isnan(cov[..., 5, 5])
+    plx_unknown = np.isnan(jac[..., 2, 2]) | np.isnan(cov[..., 2, 2])
     j0 = np.where(np.isnan(jac), 0.0, jac)
     c0 = np.where(np.isnan(cov), 0.0, cov)
     out = j0 @ c0 @ np.swapaxes(j0, -1, -2)
-    mask = rv_unknown[..., None]
-    out[..., 5, :] = np.where(mask, np.nan, out[..., 5, :])
-    out[..., :, 5] = np.where(mask, np.nan, out[..., :, 5])
+    out = 0.5 * (out + np.swapaxes(out, -1, -2))
+    for k, unknown in ((5, rv_unknown), (2, plx_unknown)):
+        mask = unknown[..., None]
+        out[..., k, :] = np.where(mask, np.nan, out[..., k, :])
+        out[..., :, k] = np.where(mask, np.nan, out[..., :, k])
     return out
+
+
+def _covariance_block(entry_major, cov_block, plx_unknown, rv_unknown, bufs, out):
+    """out = J C J^T for one block of B stars, exactly symmetric.
+
+    ``entry_major`` is the Jacobian as a (6, 6, B) array (from :func:`_jacobian_entries`);
+    ``bufs`` holds three (>= B, 6, 6) work arrays.
+    """
+    b = cov_block.shape[0]
+    jac, jac_t, tmp = (x[:b] for x in bufs)
+    np.copyto(jac, entry_major.transpose(2, 0, 1))
+    np.copyto(jac_t, entry_major.transpose(2, 1, 0))
+    nan_in = np.isnan(cov_block)
+    if nan_in.any():  # unknown entries count as zero (Note 3 of propagate)
+        cov_block = np.where(nan_in, 0.0, cov_block)
+    np.matmul(jac, cov_block, out=tmp)
+    np.matmul(tmp, jac_t, out=out)
+    out[:, _LOWER[0], _LOWER[1]] = out[:, _LOWER[1], _LOWER[0]]  # exactly symmetric
+    for k, unknown in ((5, rv_unknown), (2, plx_unknown)):
+        if unknown.any():
+            out[unknown, k, :] = np.nan
+            out[unknown, :, k] = np.nan
+
+
+#: Indices of the strict lower triangle of a 6x6 matrix.
+_LOWER = np.tril_indices(6, -1)
 
 
 def propagate_light_time(
@@ -557,7 +673,13 @@ def propagate_light_time(
 #: Number of stars processed together by :func:`propagate`. Blocks of this size keep numpy's
 #: temporaries in the CPU cache; measured on a 2-core machine, 8192 is near the optimum
 #: (benchmarks/bench_propagation.py), and much larger blocks are 3-8x slower per star.
-BLOCK_SIZE = 8192
+
+
+#: Number of stars processed together by :func:`propagate`. Blocks of this size keep numpy's
+#: temporaries in the CPU cache; measured on a 2-core machine with
+#: benchmarks/bench_propagation.py, 4096 to 8192 is near the optimum, and blocks of a
+#: million are several times slower per star.
+BLOCK_SIZE = 4096
 
 
 def propagate(
@@ -584,7 +706,8 @@ def propagate(
     model : {"standard", "light_time"}
         The motion model (module docstring).
     covariance : array_like, shape S + (6, 6) or broadcastable to it, optional
-        Covariance at the catalogue epoch, order and units as :func:`standard_jacobian`.
+        Covariance at the catalogue epoch, order and units as :func:`standard_jacobian`
+        (Note 3).
     block_size : int
         Stars per block (Note 2).
 
@@ -599,7 +722,15 @@ def propagate(
        the light-time correction changes the Jacobian by terms of order v/c (below 1e-3
        relative for any star), negligible for uncertainties.
     2. The work is done in blocks of ``block_size`` stars so that temporaries stay in the
-       CPU cache; results do not depend on the block size.
+       CPU cache; results do not depend on the block size. Within a block only the
+       nonzero entries of the Jacobian are computed, one array per entry (Note 3 of
+       :func:`standard_jacobian` lists the known zeros), and written into a reused
+       (B, 6, 6) array whose zeros never change; C' = J C J^T is then two stacked 6x6
+       matrix products.
+    3. NaN entries of the input covariance count as zero. The result is made exactly
+       symmetric (its upper triangle is mirrored); its row and column 5 are NaN where the
+       radial velocity (or its variance) is unknown, and row and column 2 where the
+       parallax (or its variance) is unknown.
     """
     if model not in MODELS:
         raise ValueError(f"unknown model {model!r}; choose one of {MODELS}")
@@ -612,37 +743,47 @@ def propagate(
             pm_ra_cosdec_mas_yr,
             pm_dec_mas_yr,
             radial_velocity_km_s,
-            epoch_from_jyear,
-            epoch_to_jyear,
         )
     ]
-    shape = np.broadcast_shapes(*(x.shape for x in args))
-    step = propagate_standard if model == "standard" else propagate_light_time
-    if int(np.prod(shape)) <= block_size:  # one block: no copies needed
-        ast, flags = step(*args)
-        ast = Astrometry(*(np.broadcast_to(f, shape) for f in _fields(ast)))
-        cov_out = None
-        if covariance is not None:
-            cov_out = propagate_covariance(standard_jacobian(*args), covariance)
-        return PropagationResult(ast, np.broadcast_to(flags, shape), cov_out)
-    flat = [np.broadcast_to(x, shape).reshape(-1) for x in args]
+    tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
+    shape = np.broadcast_shapes(*(x.shape for x in args), tau.shape)
+    flat = [np.broadcast_to(x, shape).reshape(-1) for x in (*args, tau)]
     n = flat[0].shape[0]
     cov_flat = None
     if covariance is not None:
         cov_flat = np.broadcast_to(np.asarray(covariance, dtype=float), shape + (6, 6))
         cov_flat = cov_flat.reshape(-1, 6, 6)
+    if model == "light_time":
+        e_from, e_to = (
+            np.broadcast_to(np.asarray(e, dtype=float), shape).reshape(-1)
+            for e in (epoch_from_jyear, epoch_to_jyear)
+        )
     outs = [np.empty(n) for _ in range(6)]
     flags = np.empty(n, dtype=np.int64)
-    cov_out = np.empty((n, 6, 6)) if cov_flat is not None else None
-    for start in range(0, n, max(int(block_size), 1)):
-        sl = slice(start, start + block_size)
-        part = [x[sl] for x in flat]
-        ast, fl = step(*part)
-        for dst, src in zip(outs, _fields(ast), strict=True):
-            dst[sl] = src
-        flags[sl] = fl
-        if cov_out is not None:
-            cov_out[sl] = propagate_covariance(standard_jacobian(*part), cov_flat[sl])
+    cov_out = None
+    if cov_flat is not None:
+        cov_out = np.empty((n, 6, 6))
+        bufs = np.empty((3, min(n, max(int(block_size), 1)), 6, 6))
+        entry_major = np.zeros((6, 6, bufs.shape[1]))
+    step = max(int(block_size), 1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for start in range(0, n, step):
+            sl = slice(start, start + step)
+            ra, dec, plx, pma, pmd, rv, tau_b = (x[sl] for x in flat)
+            if model == "standard" or cov_out is not None:
+                ast, fl, loc, usable, g = _standard_outputs(ra, dec, plx, pma, pmd, rv, tau_b)
+            if model == "light_time":
+                ast, fl = propagate_light_time(ra, dec, plx, pma, pmd, rv, e_from[sl], e_to[sl])
+            for dst, src in zip(outs, _fields(ast), strict=True):
+                dst[sl] = src
+            flags[sl] = fl
+            if cov_out is not None:
+                em = entry_major[:, :, : plx.shape[0]]
+                _jacobian_entries(loc, plx, rv, usable, g, em)
+                cb = cov_flat[sl]
+                rv_unknown = np.isnan(rv) | np.isnan(cb[:, 5, 5])
+                plx_unknown = np.isnan(plx) | np.isnan(cb[:, 2, 2])
+                _covariance_block(em, cb, plx_unknown, rv_unknown, bufs, cov_out[sl])
     ast = Astrometry(*(o.reshape(shape) for o in outs))
     if cov_out is not None:
         cov_out = cov_out.reshape(shape + (6, 6))

@@ -1,0 +1,721 @@
+"""POST /v1/velocity and POST /v1/velocity/observables: stellar space velocities.
+
+``/v1/velocity`` turns astrometry and radial velocity into velocities: transverse, radial
+and total, U V W (heliocentric and relative to the local standard of rest) with their
+uncertainties, perspective acceleration and closest approach to the Sun.
+``/v1/velocity/observables`` is the inverse: the proper motion and radial velocity a star
+with given U V W, place and distance must show.
+"""
+
+from __future__ import annotations
+
+import itertools
+
+import marshmallow as ma
+import numpy as np
+from flask import current_app
+from flask_smorest import abort
+
+from ..core import kinematics as core
+from ..core.constants import C_KM_S
+from ..core.flags import flag_names
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .examples import load_example
+from .tables import StarTableField
+
+blp = Blueprint(
+    "velocity",
+    __name__,
+    url_prefix="/v1",
+    description="Space velocities of stars: transverse, radial, total, galactic U V W with "
+    "uncertainties, perspective acceleration, closest approach; and the inverse.",
+)
+
+#: Most Monte Carlo samples (stars drawn x draws per star) in one request; beyond: 413.
+MAX_MONTE_CARLO_SAMPLES = 20_000_000
+
+UVW_CONVENTION = (
+    "U points towards the Galactic centre, V in the direction of Galactic rotation, W towards "
+    "the north Galactic pole (right-handed). Heliocentric: velocity relative to the Sun. "
+    "Galactic axes of the Hipparcos Catalogue (ESA 1997, Vol. 1, section 1.5.3), method of "
+    "Johnson & Soderblom (1987, AJ 93, 864) carried out in the ICRS. LSR: the Sun's motion "
+    "relative to the local standard of rest is added (default Schoenrich, Binney & Dehnen "
+    "2010: U, V, W = 11.1, 12.24, 7.25 km/s)."
+)
+
+# ---------------------------------------------------------------------------- the stars
+
+_PARAMS = ("ra", "dec", "parallax", "pm_ra", "pm_dec", "radial_velocity")
+_CORRELATION_FIELDS = tuple(
+    f"correlation_{_PARAMS[i]}_{_PARAMS[j]}" for i, j in itertools.combinations(range(6), 2)
+)
+#: Correlations that enter the velocities (the others are accepted and ignored).
+_USED_CORRELATIONS = (
+    "correlation_parallax_pm_ra",
+    "correlation_parallax_pm_dec",
+    "correlation_pm_ra_pm_dec",
+)
+
+
+def _num(description, *, required=False, lo=None, hi=None, **range_kw):
+    validators = []
+    if lo is not None or hi is not None:
+        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
+    return ma.fields.Float(
+        required=required,
+        allow_none=not required,
+        validate=validators,
+        metadata={"description": description},
+    )
+
+
+_POSITION_ERROR_NOTE = (
+    " Accepted so that catalogue records can be sent unchanged; position errors change the "
+    "velocities by less than 1e-8 of the speed and are not used."
+)
+
+_VELOCITY_STAR_FIELDS = {
+    "id": ma.fields.Raw(
+        allow_none=True,
+        metadata={"description": "Your identifier for the star (string or integer), echoed."},
+    ),
+    "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
+    "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
+    "parallax_mas": _num(
+        "Parallax, mas. Null if unknown; zero or negative values are accepted, flagged, and "
+        "give null velocities (no distance)."
+    ),
+    "distance_pc": _num(
+        "Distance, pc, when you have a better one than 1/parallax (e.g. a prior-based "
+        "estimate). Replaces the parallax where given. Must be positive.",
+        lo=0.0,
+        min_inclusive=False,
+    ),
+    "pm_ra_cosdec_mas_yr": _num(
+        "Proper motion in right ascension times cos(dec), mas/yr.", required=True
+    ),
+    "pm_dec_mas_yr": _num("Proper motion in declination, mas/yr.", required=True),
+    "radial_velocity_km_s": _num(
+        "Radial velocity, km/s, positive receding. Null if unknown (then U, V, W and the "
+        "total velocity are null; the transverse velocity is still given).",
+        lo=-C_KM_S,
+        hi=C_KM_S,
+        min_inclusive=False,
+        max_inclusive=False,
+    ),
+    "ra_error_mas": _num("Standard error of ra*cos(dec), mas." + _POSITION_ERROR_NOTE, lo=0.0),
+    "dec_error_mas": _num("Standard error of dec, mas." + _POSITION_ERROR_NOTE, lo=0.0),
+    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0),
+    "distance_error_pc": _num(
+        "Standard error of distance_pc, pc (uncorrelated with the proper motion).", lo=0.0
+    ),
+    "pm_ra_cosdec_error_mas_yr": _num("Standard error of pm_ra_cosdec, mas/yr.", lo=0.0),
+    "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0),
+    "radial_velocity_error_km_s": _num("Standard error of the radial velocity, km/s.", lo=0.0),
+}
+for _name in _CORRELATION_FIELDS:
+    _used = _name in _USED_CORRELATIONS
+    _VELOCITY_STAR_FIELDS[_name] = _num(
+        "Correlation coefficient of the errors named in the field. "
+        + (
+            "Null or absent: taken as 0 (flagged when standard errors are given)."
+            if _used
+            else "Accepted so that catalogue records can be sent unchanged; not used "
+            "(positions and radial velocity do not correlate with the velocity terms used)."
+        ),
+        lo=-1.0,
+        hi=1.0,
+    )
+
+#: One star's astrometry for the velocity endpoint.
+VelocityStarSchema = ma.Schema.from_dict(_VELOCITY_STAR_FIELDS, name="VelocityStarSchema")
+
+
+class SolarMotionSchema(ma.Schema):
+    u_km_s = ma.fields.Float(
+        required=True,
+        allow_nan=False,
+        metadata={"description": "Sun's velocity relative to the LSR towards the Galactic "
+                  "centre, km/s."},
+    )  # fmt: skip
+    v_km_s = ma.fields.Float(
+        required=True,
+        allow_nan=False,
+        metadata={"description": "Sun's velocity relative to the LSR in the direction of "
+                  "Galactic rotation, km/s."},
+    )  # fmt: skip
+    w_km_s = ma.fields.Float(
+        required=True,
+        allow_nan=False,
+        metadata={"description": "Sun's velocity relative to the LSR towards the north "
+                  "Galactic pole, km/s."},
+    )  # fmt: skip
+
+
+_SOLAR_MOTION_DESCRIPTION = (
+    "Sun's velocity relative to the local standard of rest. Default: Schoenrich, Binney & "
+    "Dehnen 2010 (MNRAS 403, 1829): U, V, W = 11.1, 12.24, 7.25 km/s."
+)
+
+
+class VelocityRequestSchema(ma.Schema):
+    stars = StarTableField(
+        VelocityStarSchema,
+        required=True,
+        metadata={"description": "The stars: a list of records, or an object of columns."},
+    )
+    catalogue_epoch = EpochField(
+        load_default=None,
+        allow_none=True,
+        metadata={
+            "description": "Epoch of the astrometry; only used to date the closest approach "
+            "(closest_approach_epoch_jyear is null without it). " + "Any accepted epoch form."
+        },
+    )
+    relative_to_lsr = ma.fields.Boolean(
+        load_default=False,
+        metadata={"description": "Also give U, V, W relative to the local standard of rest."},
+    )
+    solar_motion = ma.fields.Nested(
+        SolarMotionSchema, load_default=None, metadata={"description": _SOLAR_MOTION_DESCRIPTION}
+    )
+    uncertainty_method = ma.fields.String(
+        load_default="linear",
+        validate=ma.validate.OneOf(("linear", "monte_carlo", "auto")),
+        metadata={
+            "description": "linear: first-order propagation of the covariance (exact for "
+            "U, V, W as functions of the proper motion and radial velocity; poor where the "
+            "parallax signal-to-noise is low). monte_carlo: random draws for every star with "
+            "a distance. auto: draws only for stars flagged parallax_low_snr."
+        },
+    )
+    monte_carlo_draws = ma.fields.Integer(
+        load_default=core.MONTE_CARLO_DRAWS_DEFAULT,
+        validate=ma.validate.Range(min=100, max=1_000_000),
+        metadata={"description": "Draws per star for the Monte Carlo method."},
+    )
+    seed = ma.fields.Integer(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.Range(min=0, max=2**63 - 1),
+        metadata={"description": "Seed of the Monte Carlo draws, for reproducible answers."},
+    )
+    low_snr_threshold = ma.fields.Float(
+        load_default=core.LOW_PARALLAX_SNR_DEFAULT,
+        allow_nan=False,
+        validate=ma.validate.Range(min=0.0, max=1e6, min_inclusive=False),
+        metadata={
+            "description": "Parallax signal-to-noise below which a star is flagged "
+            "parallax_low_snr (1/parallax is then a biased distance). Default 5 (common "
+            "practice)."
+        },
+    )
+    layout = ma.fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.OneOf(("records", "columns")),
+        metadata={
+            "description": "Response layout: one record per star, or columns. Default: "
+            "the layout of the request's stars."
+        },
+    )
+
+
+# ---------------------------------------------------------------------------- responses
+
+#: Output quantities in order, with their units (the response's ``units`` object).
+VELOCITY_OUTPUTS = {
+    "distance_pc": "pc",
+    "parallax_snr": "dimensionless (parallax / parallax error)",
+    "pm_total_mas_yr": "mas/yr",
+    "pm_position_angle_deg": "deg, east of north, 0 to 360",
+    "transverse_velocity_km_s": "km/s",
+    "transverse_velocity_ra_km_s": "km/s (towards east)",
+    "transverse_velocity_dec_km_s": "km/s (towards north)",
+    "radial_velocity_km_s": "km/s (positive receding)",
+    "total_velocity_km_s": "km/s",
+    "velocity_line_of_sight_angle_deg": "deg, 0 receding along the line of sight, 180 approaching",
+    "u_km_s": "km/s (heliocentric, towards the Galactic centre)",
+    "v_km_s": "km/s (heliocentric, direction of Galactic rotation)",
+    "w_km_s": "km/s (heliocentric, towards the north Galactic pole)",
+    "u_lsr_km_s": "km/s (relative to the LSR)",
+    "v_lsr_km_s": "km/s (relative to the LSR)",
+    "w_lsr_km_s": "km/s (relative to the LSR)",
+    "u_error_km_s": "km/s",
+    "v_error_km_s": "km/s",
+    "w_error_km_s": "km/s",
+    "correlation_u_v": "dimensionless",
+    "correlation_u_w": "dimensionless",
+    "correlation_v_w": "dimensionless",
+    "u_interval_km_s": "km/s, [15.87th, 84.13th] percentile (-1 and +1 sigma)",
+    "v_interval_km_s": "km/s, [15.87th, 84.13th] percentile (-1 and +1 sigma)",
+    "w_interval_km_s": "km/s, [15.87th, 84.13th] percentile (-1 and +1 sigma)",
+    "transverse_velocity_error_km_s": "km/s",
+    "total_velocity_error_km_s": "km/s",
+    "pm_ra_cosdec_rate_mas_yr2": "mas/yr^2",
+    "pm_dec_rate_mas_yr2": "mas/yr^2",
+    "pm_total_rate_mas_yr2": "mas/yr^2",
+    "radial_velocity_rate_km_s_yr": "km/s per Julian year",
+    "closest_approach_time_yr": "Julian years from the catalogue epoch",
+    "closest_approach_epoch_jyear": "Julian epoch (TDB)",
+    "closest_approach_distance_pc": "pc",
+    "closest_approach_speed_km_s": "km/s",
+}
+
+_OUTPUT_DESCRIPTIONS = {
+    "distance_pc": "Distance used: distance_pc if given, else 1000/parallax.",
+    "parallax_snr": "Parallax signal-to-noise; null without a parallax error.",
+    "pm_total_mas_yr": "Total proper motion, mas/yr.",
+    "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north.",
+    "transverse_velocity_km_s": "Transverse velocity A*mu/parallax, km/s (A = 1 au per "
+    "Julian year = 4.740470463533348 km/s, IAU 2012 au).",
+    "transverse_velocity_ra_km_s": "Transverse velocity towards east, km/s.",
+    "transverse_velocity_dec_km_s": "Transverse velocity towards north, km/s.",
+    "radial_velocity_km_s": "Radial velocity (as given), km/s.",
+    "total_velocity_km_s": "Total space velocity relative to the Sun, km/s.",
+    "velocity_line_of_sight_angle_deg": "Angle between the space velocity and the outward "
+    "line of sight, degrees (0 receding, 90 transverse, 180 approaching).",
+    "u_km_s": "Heliocentric U, km/s.",
+    "v_km_s": "Heliocentric V, km/s.",
+    "w_km_s": "Heliocentric W, km/s.",
+    "u_lsr_km_s": "U relative to the LSR, km/s (only with relative_to_lsr).",
+    "v_lsr_km_s": "V relative to the LSR, km/s (only with relative_to_lsr).",
+    "w_lsr_km_s": "W relative to the LSR, km/s (only with relative_to_lsr).",
+    "u_error_km_s": "Standard error of U, km/s (also of U relative to the LSR).",
+    "v_error_km_s": "Standard error of V, km/s.",
+    "w_error_km_s": "Standard error of W, km/s.",
+    "correlation_u_v": "Correlation coefficient of the errors of U and V.",
+    "correlation_u_w": "Correlation coefficient of the errors of U and W.",
+    "correlation_v_w": "Correlation coefficient of the errors of V and W.",
+    "u_interval_km_s": "-1 and +1 sigma bounds of U, km/s: Monte Carlo percentiles, or U -/+ "
+    "its error for linear propagation.",
+    "v_interval_km_s": "-1 and +1 sigma bounds of V, km/s.",
+    "w_interval_km_s": "-1 and +1 sigma bounds of W, km/s.",
+    "transverse_velocity_error_km_s": "Standard error of the transverse velocity, km/s.",
+    "total_velocity_error_km_s": "Standard error of the total velocity, km/s.",
+    "pm_ra_cosdec_rate_mas_yr2": "Perspective acceleration: rate of change of pm_ra_cosdec, "
+    "mas/yr^2 (straight-line model).",
+    "pm_dec_rate_mas_yr2": "Rate of change of pm_dec, mas/yr^2.",
+    "pm_total_rate_mas_yr2": "Rate of change of the total proper motion, mas/yr^2.",
+    "radial_velocity_rate_km_s_yr": "Rate of change of the radial velocity, v_t^2/d, km/s per "
+    "Julian year.",
+    "closest_approach_time_yr": "Time of closest approach to the Sun from the catalogue "
+    "epoch (negative: in the past), Julian years (straight-line model).",
+    "closest_approach_epoch_jyear": "Epoch of closest approach, Julian epoch (TDB); null "
+    "without catalogue_epoch.",
+    "closest_approach_distance_pc": "Minimum distance from the Sun, pc.",
+    "closest_approach_speed_km_s": "Speed relative to the Sun at closest approach, km/s.",
+}
+
+FLAG_MEANINGS = {
+    "parallax_missing": "No parallax and no distance: velocities needing a distance are null.",
+    "parallax_not_positive": "Parallax zero or negative: no distance; velocities are null.",
+    "parallax_low_snr": "Parallax signal-to-noise below the threshold: 1/parallax is a biased "
+    "distance and linear uncertainties are unreliable; prefer uncertainty_method auto or a "
+    "better distance in distance_pc.",
+    "radial_velocity_missing": "No radial velocity: U, V, W, total velocity, line-of-sight "
+    "angle and secular quantities are null; transverse velocity given.",
+    "distance_given": "distance_pc used instead of the parallax.",
+    "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
+    "proper_motion_implausible": "Total proper motion above 10.4 arcsec/yr, more than any "
+    "known star: probably a unit mistake.",
+    "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
+    "correlations_assumed_zero": "Standard errors given without correlations: correlations "
+    "taken as zero.",
+}
+
+
+def _float_list(description):
+    return ma.fields.List(ma.fields.Float(allow_none=True), metadata={"description": description})
+
+
+_RESULT_FIELDS = {
+    "index": ma.fields.Integer(metadata={"description": "Position of the star in the request."}),
+    "id": ma.fields.Raw(allow_none=True, metadata={"description": "Your identifier, echoed."}),
+    "flags": ma.fields.List(
+        ma.fields.String(), metadata={"description": "What was missing or assumed."}
+    ),
+}
+for _name, _desc in _OUTPUT_DESCRIPTIONS.items():
+    if _name.endswith("_interval_km_s"):
+        _RESULT_FIELDS[_name] = _float_list(_desc)
+    else:
+        _RESULT_FIELDS[_name] = ma.fields.Float(allow_none=True, metadata={"description": _desc})
+VelocityResultSchema = ma.Schema.from_dict(_RESULT_FIELDS, name="VelocityResultSchema")
+
+
+class VelocityWarningSchema(ma.Schema):
+    index = ma.fields.Integer()
+    id = ma.fields.Raw(allow_none=True)
+    message = ma.fields.String()
+
+
+class VelocityResponseSchema(ma.Schema):
+    star_count = ma.fields.Integer()
+    layout = ma.fields.String()
+    uvw_convention = ma.fields.String(metadata={"description": UVW_CONVENTION})
+    solar_motion_km_s = ma.fields.List(
+        ma.fields.Float(),
+        allow_none=True,
+        metadata={"description": "U, V, W of the Sun relative to the LSR used; null unless "
+                  "relative_to_lsr."},
+    )  # fmt: skip
+    catalogue_epoch = ma.fields.Nested(EpochOutSchema, allow_none=True)
+    uncertainty_method = ma.fields.String()
+    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    warnings = ma.fields.List(ma.fields.Nested(VelocityWarningSchema))
+    stars = ma.fields.List(
+        ma.fields.Nested(VelocityResultSchema),
+        metadata={"description": "layout=records: one entry per star."},
+    )
+    columns = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.Raw(),
+        metadata={"description": "layout=columns: one array per quantity, one value per star."},
+    )
+
+
+# ---------------------------------------------------------------------------- helpers
+
+
+def _solar_motion(args):
+    sm = args.get("solar_motion")
+    if sm is None:
+        return core.V_SUN_LSR_SCHOENRICH2010_KM_S
+    return (sm["u_km_s"], sm["v_km_s"], sm["w_km_s"])
+
+
+def _check_correlations(table, n):
+    """422 naming the correlations that cannot hold together (not positive semi-definite)."""
+    c = table.columns
+    rho = [np.nan_to_num(c[name], nan=0.0) for name in _USED_CORRELATIONS]
+    given = np.zeros(n, dtype=bool)
+    for name in _USED_CORRELATIONS:
+        given |= np.isfinite(c[name])
+    idx = np.flatnonzero(given)
+    if not idx.size:
+        return
+    m = np.zeros((idx.size, 3, 3))
+    m[:, [0, 1, 2], [0, 1, 2]] = 1.0
+    m[:, 0, 1] = m[:, 1, 0] = rho[0][idx]
+    m[:, 0, 2] = m[:, 2, 0] = rho[1][idx]
+    m[:, 1, 2] = m[:, 2, 1] = rho[2][idx]
+    bad = idx[np.linalg.eigvalsh(m)[:, 0] < -1e-9]
+    if bad.size:
+        abort(
+            422,
+            errors=[
+                {
+                    "field": table.path(int(i), "correlation_*"),
+                    "message": "the correlations of parallax and proper motions do not form a "
+                    "positive semi-definite matrix (they cannot all hold at once)",
+                }
+                for i in bad[:50]
+            ],
+        )
+
+
+def _records(names, arrays, table, flags, n):
+    """Columns -> list of per-star dicts (NaN is written as null by the JSON layer)."""
+    lists = [a.tolist() for a in arrays]
+    ids = table.ids
+    out = []
+    for i in range(n):
+        rec = {"index": i, "id": None if ids is None else ids[i], "flags": flags[i]}
+        rec.update(zip(names, (col[i] for col in lists), strict=True))
+        out.append(rec)
+    return out
+
+
+def _warnings(mask, table):
+    out = []
+    text = (
+        "total proper motion exceeds 10.4 arcsec/yr, more than any known star: check the "
+        "unit (mas/yr) and that the RA component includes cos(dec)"
+    )
+    for i in np.flatnonzero(mask & int(core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE))[:1000]:
+        out.append(
+            {"index": int(i), "id": None if table.ids is None else table.ids[i], "message": text}
+        )
+    return out
+
+
+# ---------------------------------------------------------------------------- views
+
+
+@blp.route("/velocity", methods=["POST"])
+@blp.arguments(VelocityRequestSchema(), example=load_example("velocity_request.json"))
+@blp.response(200, VelocityResponseSchema)
+def velocity(args):
+    """Velocities of stars from their astrometry.
+
+    For each star: transverse velocity (and its east and north components), radial and total
+    velocity, position angle of the proper motion, angle between the space velocity and the
+    line of sight, galactic U, V, W (heliocentric, and relative to the local standard of rest
+    on request) with standard errors and correlations from the full parallax and
+    proper-motion covariance plus the radial-velocity error (linear propagation, or Monte
+    Carlo draws where the parallax is too noisy for it), perspective acceleration, and the
+    closest approach to the Sun. Stars without a usable distance or radial velocity get
+    null values and flags, never an error for the whole batch.
+    """
+    table = args["stars"]
+    n = table.size
+    method = args["uncertainty_method"]
+    draws = args["monte_carlo_draws"]
+    if method != "linear" and n * draws > MAX_MONTE_CARLO_SAMPLES:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "monte_carlo_draws",
+                    "message": f"{n} stars x {draws} draws exceeds the limit of "
+                    f"{MAX_MONTE_CARLO_SAMPLES} samples per request; use fewer draws, fewer "
+                    "stars, or uncertainty_method auto",
+                }
+            ],
+        )
+    _check_correlations(table, n)
+    c = table.columns
+    errs_given = np.isfinite(c["parallax_error_mas"]) | np.isfinite(c["distance_error_pc"])
+    errs_given |= np.isfinite(c["pm_ra_cosdec_error_mas_yr"])
+    corr_given = np.zeros(n, dtype=bool)
+    for name in _USED_CORRELATIONS:
+        corr_given |= np.isfinite(c[name])
+    sun = _solar_motion(args)
+    result = core.space_velocity(
+        c["ra_deg"],
+        c["dec_deg"],
+        c["parallax_mas"],
+        c["pm_ra_cosdec_mas_yr"],
+        c["pm_dec_mas_yr"],
+        c["radial_velocity_km_s"],
+        distance_pc=c["distance_pc"],
+        parallax_error_mas=c["parallax_error_mas"],
+        pm_ra_cosdec_error_mas_yr=c["pm_ra_cosdec_error_mas_yr"],
+        pm_dec_error_mas_yr=c["pm_dec_error_mas_yr"],
+        parallax_pm_ra_cosdec_corr=np.nan_to_num(c["correlation_parallax_pm_ra"], nan=0.0),
+        parallax_pm_dec_corr=np.nan_to_num(c["correlation_parallax_pm_dec"], nan=0.0),
+        pm_ra_cosdec_pm_dec_corr=np.nan_to_num(c["correlation_pm_ra_pm_dec"], nan=0.0),
+        radial_velocity_error_km_s=c["radial_velocity_error_km_s"],
+        distance_error_pc=c["distance_error_pc"],
+        epoch_jyear=np.nan if args["catalogue_epoch"] is None else args["catalogue_epoch"],
+        relative_to_lsr=args["relative_to_lsr"],
+        solar_motion_km_s=sun,
+        low_snr_threshold=args["low_snr_threshold"],
+        uncertainty_method=method,
+        monte_carlo_draws=draws,
+        seed=args["seed"],
+    )
+    names = flag_names(result.flags, core.KinematicsFlag)
+    for i in np.flatnonzero(errs_given & ~corr_given):
+        names[i].append("correlations_assumed_zero")
+
+    err = result.uvw_error_km_s
+    corr = result.uvw_correlation
+    interval = result.uvw_interval_km_s
+    columns = {
+        "distance_pc": result.distance_pc,
+        "parallax_snr": result.parallax_snr,
+        "pm_total_mas_yr": result.pm_total_mas_yr,
+        "pm_position_angle_deg": result.pm_position_angle_deg,
+        "transverse_velocity_km_s": result.transverse_velocity_km_s,
+        "transverse_velocity_ra_km_s": result.transverse_velocity_ra_km_s,
+        "transverse_velocity_dec_km_s": result.transverse_velocity_dec_km_s,
+        "radial_velocity_km_s": result.radial_velocity_km_s,
+        "total_velocity_km_s": result.total_velocity_km_s,
+        "velocity_line_of_sight_angle_deg": result.velocity_line_of_sight_angle_deg,
+        "u_km_s": result.uvw_km_s[:, 0],
+        "v_km_s": result.uvw_km_s[:, 1],
+        "w_km_s": result.uvw_km_s[:, 2],
+    }
+    if result.uvw_lsr_km_s is not None:
+        columns["u_lsr_km_s"] = result.uvw_lsr_km_s[:, 0]
+        columns["v_lsr_km_s"] = result.uvw_lsr_km_s[:, 1]
+        columns["w_lsr_km_s"] = result.uvw_lsr_km_s[:, 2]
+    columns.update(
+        u_error_km_s=err[:, 0],
+        v_error_km_s=err[:, 1],
+        w_error_km_s=err[:, 2],
+        correlation_u_v=corr[:, 0],
+        correlation_u_w=corr[:, 1],
+        correlation_v_w=corr[:, 2],
+        u_interval_km_s=interval[:, 0, :],
+        v_interval_km_s=interval[:, 1, :],
+        w_interval_km_s=interval[:, 2, :],
+        transverse_velocity_error_km_s=result.transverse_velocity_error_km_s,
+        total_velocity_error_km_s=result.total_velocity_error_km_s,
+        pm_ra_cosdec_rate_mas_yr2=result.pm_ra_cosdec_rate_mas_yr2,
+        pm_dec_rate_mas_yr2=result.pm_dec_rate_mas_yr2,
+        pm_total_rate_mas_yr2=result.pm_total_rate_mas_yr2,
+        radial_velocity_rate_km_s_yr=result.radial_velocity_rate_km_s_yr,
+        closest_approach_time_yr=result.closest_approach_time_yr,
+        closest_approach_epoch_jyear=result.closest_approach_epoch_jyear,
+        closest_approach_distance_pc=result.closest_approach_distance_pc,
+        closest_approach_speed_km_s=result.closest_approach_speed_km_s,
+    )
+    layout = args["layout"] or table.form
+    used = {f for x in names for f in x}
+    body = {
+        "star_count": n,
+        "layout": layout,
+        "uvw_convention": UVW_CONVENTION,
+        "solar_motion_km_s": list(sun) if args["relative_to_lsr"] else None,
+        "catalogue_epoch": None
+        if args["catalogue_epoch"] is None
+        else epochs_out([args["catalogue_epoch"]])[0],
+        "uncertainty_method": method,
+        "units": {k: v for k, v in VELOCITY_OUTPUTS.items() if k in columns},
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in used},
+        "warnings": _warnings(result.flags, table),
+    }
+    if layout == "columns":
+        contiguous = {k: np.ascontiguousarray(v) for k, v in columns.items()}
+        body["columns"] = {"id": table.ids, "flags": names, **contiguous}
+    else:
+        body["stars"] = _records(list(columns), list(columns.values()), table, names, n)
+    return current_app.json.response(body)
+
+
+# ---------------------------------------------------------------------------- inverse
+
+_OBSERVABLES_STAR_FIELDS = {
+    "id": _VELOCITY_STAR_FIELDS["id"],
+    "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
+    "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
+    "u_km_s": _num("U (towards the Galactic centre), km/s.", required=True),
+    "v_km_s": _num("V (direction of Galactic rotation), km/s.", required=True),
+    "w_km_s": _num("W (towards the north Galactic pole), km/s.", required=True),
+    "parallax_mas": _num(
+        "Parallax, mas. Null if unknown (then only the radial velocity is given); zero or "
+        "negative is flagged."
+    ),
+    "distance_pc": _num(
+        "Distance, pc; replaces the parallax where given. Must be positive.",
+        lo=0.0,
+        min_inclusive=False,
+    ),
+}
+ObservablesStarSchema = ma.Schema.from_dict(_OBSERVABLES_STAR_FIELDS, name="ObservablesStarSchema")
+
+
+class ObservablesRequestSchema(ma.Schema):
+    stars = StarTableField(
+        ObservablesStarSchema,
+        required=True,
+        metadata={"description": "The stars: a list of records, or an object of columns."},
+    )
+    relative_to_lsr = ma.fields.Boolean(
+        load_default=False,
+        metadata={
+            "description": "The given U, V, W are relative to the local standard of rest "
+            "(else heliocentric)."
+        },
+    )
+    solar_motion = ma.fields.Nested(
+        SolarMotionSchema, load_default=None, metadata={"description": _SOLAR_MOTION_DESCRIPTION}
+    )
+    layout = VelocityRequestSchema._declared_fields["layout"]
+
+
+OBSERVABLES_OUTPUTS = {
+    "distance_pc": "pc",
+    "pm_ra_cosdec_mas_yr": "mas/yr (includes cos(dec))",
+    "pm_dec_mas_yr": "mas/yr",
+    "radial_velocity_km_s": "km/s (positive receding)",
+}
+
+ObservablesResultSchema = ma.Schema.from_dict(
+    {
+        "index": _RESULT_FIELDS["index"],
+        "id": _RESULT_FIELDS["id"],
+        "flags": _RESULT_FIELDS["flags"],
+        "distance_pc": ma.fields.Float(allow_none=True, metadata={"description": "pc"}),
+        "pm_ra_cosdec_mas_yr": ma.fields.Float(
+            allow_none=True,
+            metadata={
+                "description": "Proper motion in RA times cos(dec) the star must show, "
+                "mas/yr; null without a distance."
+            },
+        ),  # fmt: skip
+        "pm_dec_mas_yr": ma.fields.Float(
+            allow_none=True,
+            metadata={"description": "Proper motion in Dec, mas/yr; null without a distance."},
+        ),
+        "radial_velocity_km_s": ma.fields.Float(
+            allow_none=True,
+            metadata={"description": "Radial velocity, km/s (needs no distance)."},
+        ),
+    },
+    name="ObservablesResultSchema",
+)
+
+
+class ObservablesResponseSchema(ma.Schema):
+    star_count = ma.fields.Integer()
+    layout = ma.fields.String()
+    uvw_convention = ma.fields.String(metadata={"description": UVW_CONVENTION})
+    solar_motion_km_s = VelocityResponseSchema._declared_fields["solar_motion_km_s"]
+    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    stars = ma.fields.List(ma.fields.Nested(ObservablesResultSchema))
+    columns = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.Raw())
+
+
+@blp.route("/velocity/observables", methods=["POST"])
+@blp.arguments(
+    ObservablesRequestSchema(), example=load_example("velocity_observables_request.json")
+)
+@blp.response(200, ObservablesResponseSchema)
+def observables(args):
+    """Proper motion and radial velocity implied by U, V, W.
+
+    The inverse of POST /v1/velocity: from galactic U, V, W (heliocentric or relative to the
+    local standard of rest), the position and the distance (or parallax), the proper motion
+    and radial velocity the star must show. Useful to predict the astrometry of members of a
+    moving group or to test a kinematic hypothesis. Without a distance only the radial
+    velocity is given.
+    """
+    table = args["stars"]
+    n = table.size
+    c = table.columns
+    sun = _solar_motion(args)
+    uvw = np.stack([c["u_km_s"], c["v_km_s"], c["w_km_s"]], axis=-1)
+    result = core.observables_from_velocity(
+        c["ra_deg"],
+        c["dec_deg"],
+        uvw,
+        c["parallax_mas"],
+        distance_pc=c["distance_pc"],
+        relative_to_lsr=args["relative_to_lsr"],
+        solar_motion_km_s=sun,
+    )
+    names = flag_names(result.flags, core.KinematicsFlag)
+    columns = {
+        "distance_pc": result.distance_pc,
+        "pm_ra_cosdec_mas_yr": result.pm_ra_cosdec_mas_yr,
+        "pm_dec_mas_yr": result.pm_dec_mas_yr,
+        "radial_velocity_km_s": result.radial_velocity_km_s,
+    }
+    layout = args["layout"] or table.form
+    used = {f for x in names for f in x}
+    body = {
+        "star_count": n,
+        "layout": layout,
+        "uvw_convention": UVW_CONVENTION,
+        "solar_motion_km_s": list(sun) if args["relative_to_lsr"] else None,
+        "units": OBSERVABLES_OUTPUTS,
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in used},
+    }
+    if layout == "columns":
+        contiguous = {k: np.ascontiguousarray(v) for k, v in columns.items()}
+        body["columns"] = {"id": table.ids, "flags": names, **contiguous}
+    else:
+        body["stars"] = _records(list(columns), list(columns.values()), table, names, n)
+    return current_app.json.response(body)
+
+
+def register(app, api):
+    api.spec.components.schema("VelocityStar", schema=VelocityStarSchema)
+    api.spec.components.schema("ObservablesStar", schema=ObservablesStarSchema)
+    api.register_blueprint(blp)

@@ -1,0 +1,318 @@
+"""POST /v1/velocity and /v1/velocity/observables: results, flags, one test per bad input."""
+
+import json
+
+import numpy as np
+import pytest
+
+from service.core import kinematics as core
+
+URL = "/v1/velocity"
+INVERSE_URL = "/v1/velocity/observables"
+STAR = {
+    "ra_deg": 10.0,
+    "dec_deg": 5.0,
+    "parallax_mas": 20.0,
+    "pm_ra_cosdec_mas_yr": 100.0,
+    "pm_dec_mas_yr": -50.0,
+    "radial_velocity_km_s": 12.0,
+}
+UVW_STAR = {"ra_deg": 10.0, "dec_deg": 5.0, "distance_pc": 80.0, "u_km_s": -10.0,
+            "v_km_s": -20.0, "w_km_s": 5.0}  # fmt: skip
+
+
+def post(client, body, url=URL):
+    return client.post(url, json=body)
+
+
+def assert_problem(r, status, field=None):
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    body = r.json
+    assert body["status"] == status
+    if field is not None:
+        fields = [e["field"] for e in body.get("errors", [])]
+        assert field in fields, fields
+    return body
+
+
+def col(stars, name):
+    return np.array([np.nan if s.get(name) is None else s[name] for s in stars], float)
+
+
+# ---------------------------------------------------------------- results
+
+
+def test_demo_catalogue_matches_core(client, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    r = post(client, {"stars": stars, "catalogue_epoch": "J2016.0"})
+    assert r.status_code == 200
+    body = r.json
+    assert body["star_count"] == len(stars)
+    assert "Galactic centre" in body["uvw_convention"]
+    ref = core.space_velocity(
+        col(stars, "ra_deg"),
+        col(stars, "dec_deg"),
+        col(stars, "parallax_mas"),
+        col(stars, "pm_ra_cosdec_mas_yr"),
+        col(stars, "pm_dec_mas_yr"),
+        col(stars, "radial_velocity_km_s"),
+        parallax_error_mas=col(stars, "parallax_error_mas"),
+        pm_ra_cosdec_error_mas_yr=col(stars, "pm_ra_cosdec_error_mas_yr"),
+        pm_dec_error_mas_yr=col(stars, "pm_dec_error_mas_yr"),
+        parallax_pm_ra_cosdec_corr=np.nan_to_num(col(stars, "correlation_parallax_pm_ra")),
+        radial_velocity_error_km_s=col(stars, "radial_velocity_error_km_s"),
+        epoch_jyear=2016.0,
+    )
+    got_u = np.array([np.nan if s["u_km_s"] is None else s["u_km_s"] for s in body["stars"]])
+    np.testing.assert_array_equal(got_u, ref.uvw_km_s[:, 0])
+    got_err = [s["w_error_km_s"] for s in body["stars"]]
+    want_err = [None if np.isnan(x) else x for x in ref.uvw_error_km_s[:, 2]]
+    assert got_err == want_err
+    got_epoch = [s["closest_approach_epoch_jyear"] for s in body["stars"]]
+    want_epoch = [None if np.isnan(x) else x for x in ref.closest_approach_epoch_jyear]
+    assert got_epoch == want_epoch
+    for s, star in zip(body["stars"], stars, strict=True):
+        assert s["id"] == star["id"]
+
+
+def test_records_and_columns_give_identical_numbers(client, demo_catalogue):
+    stars = demo_catalogue["stars"]
+    names = sorted({k for s in stars for k in s})
+    columns = {n: [s.get(n) for s in stars] for n in names}
+    rec = post(client, {"stars": stars}).json
+    colr = post(client, {"stars": columns}).json
+    assert colr["layout"] == "columns"
+    for i, s in enumerate(rec["stars"]):
+        for name in ("u_km_s", "v_error_km_s", "transverse_velocity_km_s", "u_interval_km_s"):
+            assert s[name] == colr["columns"][name][i]
+        assert s["flags"] == colr["columns"]["flags"][i]
+
+
+def test_missing_and_negative_parallax_give_nulls_and_flags(client):
+    stars = [STAR, dict(STAR, parallax_mas=None), dict(STAR, parallax_mas=-0.4),
+             dict(STAR, radial_velocity_km_s=None)]  # fmt: skip
+    body = post(client, {"stars": stars}).json
+    s = body["stars"]
+    assert s[0]["u_km_s"] is not None
+    assert "parallax_missing" in s[1]["flags"] and s[1]["u_km_s"] is None
+    assert "parallax_not_positive" in s[2]["flags"] and s[2]["transverse_velocity_km_s"] is None
+    assert "radial_velocity_missing" in s[3]["flags"] and s[3]["u_km_s"] is None
+    assert s[3]["transverse_velocity_km_s"] is not None
+    assert set(body["flag_meanings"]) >= {"parallax_missing", "parallax_not_positive"}
+
+
+def test_lsr_and_solar_motion_override(client):
+    body = post(client, {"stars": [STAR], "relative_to_lsr": True}).json
+    s = body["stars"][0]
+    # Schoenrich, Binney & Dehnen 2010: (11.1, 12.24, 7.25) km/s.
+    assert body["solar_motion_km_s"] == [11.1, 12.24, 7.25]
+    assert s["u_lsr_km_s"] - s["u_km_s"] == pytest.approx(11.1, abs=1e-12)
+    sun = {"u_km_s": 10.0, "v_km_s": 5.25, "w_km_s": 7.0}
+    s2 = post(client, {"stars": [STAR], "relative_to_lsr": True, "solar_motion": sun}).json
+    assert s2["stars"][0]["v_lsr_km_s"] - s2["stars"][0]["v_km_s"] == pytest.approx(5.25)
+    assert "u_lsr_km_s" not in post(client, {"stars": [STAR]}).json["stars"][0]
+
+
+def test_explicit_distance_is_used_and_flagged(client):
+    s = post(client, {"stars": [dict(STAR, parallax_mas=-1.0, distance_pc=50.0)]}).json
+    star = s["stars"][0]
+    assert star["distance_pc"] == 50.0
+    assert "distance_given" in star["flags"]
+    assert star["u_km_s"] is not None
+
+
+def test_uncertainties_and_correlation_flag(client):
+    star = dict(STAR, parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.1,
+                pm_dec_error_mas_yr=0.1, radial_velocity_error_km_s=1.0)  # fmt: skip
+    s = post(client, {"stars": [star]}).json["stars"][0]
+    assert s["u_error_km_s"] > 0
+    assert "correlations_assumed_zero" in s["flags"]
+    lo, hi = s["u_interval_km_s"]
+    assert lo == pytest.approx(s["u_km_s"] - s["u_error_km_s"], rel=1e-12)
+    s2 = post(client, {"stars": [STAR]}).json["stars"][0]
+    assert s2["u_error_km_s"] is None and "uncertainties_missing" in s2["flags"]
+
+
+def test_monte_carlo_auto_is_seeded_and_flagged(client):
+    stars = [dict(STAR, parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.1,
+                  pm_dec_error_mas_yr=0.1, radial_velocity_error_km_s=1.0)]  # fmt: skip
+    stars.append(dict(stars[0], parallax_mas=0.5, parallax_error_mas=0.2))  # SNR 2.5
+    body = {"stars": stars, "uncertainty_method": "auto", "monte_carlo_draws": 2000, "seed": 9}
+    a = post(client, body).json["stars"]
+    b = post(client, body).json["stars"]
+    assert a == b
+    assert "monte_carlo_uncertainties" not in a[0]["flags"]
+    assert {"parallax_low_snr", "monte_carlo_uncertainties"} <= set(a[1]["flags"])
+
+
+def test_implausible_proper_motion_warns_but_answers(client):
+    body = post(client, {"stars": [dict(STAR, pm_ra_cosdec_mas_yr=20000.0)]}).json
+    assert "proper_motion_implausible" in body["stars"][0]["flags"]
+    assert body["warnings"][0]["index"] == 0
+
+
+def test_inverse_round_trip_through_both_endpoints(client):
+    stars = [UVW_STAR, dict(UVW_STAR, ra_deg=250.0, dec_deg=-60.0, u_km_s=40.0)]
+    obs = post(client, {"stars": stars}, INVERSE_URL).json["stars"]
+    back_stars = [
+        {"ra_deg": s["ra_deg"], "dec_deg": s["dec_deg"], "distance_pc": s["distance_pc"],
+         "parallax_mas": None, "pm_ra_cosdec_mas_yr": o["pm_ra_cosdec_mas_yr"],
+         "pm_dec_mas_yr": o["pm_dec_mas_yr"], "radial_velocity_km_s": o["radial_velocity_km_s"]}
+        for s, o in zip(stars, obs, strict=True)
+    ]  # fmt: skip
+    back = post(client, {"stars": back_stars}).json["stars"]
+    for s, b in zip(stars, back, strict=True):
+        for k in ("u_km_s", "v_km_s", "w_km_s"):
+            assert b[k] == pytest.approx(s[k], rel=1e-9, abs=1e-9)  # relative 1e-9
+
+
+def test_inverse_lsr_and_without_distance(client):
+    star = {k: v for k, v in UVW_STAR.items() if k != "distance_pc"}
+    body = post(client, {"stars": [star], "relative_to_lsr": True}, INVERSE_URL).json
+    s = body["stars"][0]
+    assert s["pm_ra_cosdec_mas_yr"] is None and s["radial_velocity_km_s"] is not None
+    assert s["flags"] == ["parallax_missing"]
+    assert body["solar_motion_km_s"] == [11.1, 12.24, 7.25]
+
+
+def test_examples_answer(client):
+    from service.api.examples import load_example
+
+    assert post(client, load_example("velocity_request.json")).status_code == 200
+    r = post(client, load_example("velocity_observables_request.json"), INVERSE_URL)
+    assert r.status_code == 200
+
+
+# ---------------------------------------------------------------- bad input, one per case
+
+
+def test_negative_distance(client):
+    star = dict(STAR, distance_pc=-10.0)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].distance_pc")
+
+
+def test_zero_distance(client):
+    star = dict(STAR, distance_pc=0.0)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].distance_pc")
+
+
+def test_negative_distance_in_columns_names_index(client):
+    cols = {k: [v, v] for k, v in STAR.items()}
+    cols["distance_pc"] = [100.0, -1.0]
+    assert_problem(post(client, {"stars": cols}), 422, "stars.distance_pc[1]")
+
+
+def test_nan_string_is_rejected(client):
+    star = dict(STAR, parallax_mas="NaN")
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].parallax_mas")
+
+
+def test_nan_literal_is_not_json(client):
+    text = json.dumps({"stars": [STAR]}).replace("100.0", "NaN")
+    assert_problem(client.post(URL, data=text, content_type="application/json"), 400)
+
+
+def test_infinity_is_rejected(client):
+    text = json.dumps({"stars": [STAR]}).replace("100.0", "1e999")
+    assert_problem(client.post(URL, data=text, content_type="application/json"), 400)
+
+
+def test_missing_proper_motion(client):
+    star = {k: v for k, v in STAR.items() if k != "pm_dec_mas_yr"}
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].pm_dec_mas_yr")
+
+
+def test_dec_out_of_range(client):
+    assert_problem(post(client, {"stars": [dict(STAR, dec_deg=-91)]}), 422, "stars[0].dec_deg")
+
+
+def test_radial_velocity_faster_than_light(client):
+    star = dict(STAR, radial_velocity_km_s=3e5)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].radial_velocity_km_s")
+
+
+def test_negative_parallax_error(client):
+    star = dict(STAR, parallax_error_mas=-0.1)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].parallax_error_mas")
+
+
+def test_negative_distance_error(client):
+    star = dict(STAR, distance_pc=10.0, distance_error_pc=-1.0)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].distance_error_pc")
+
+
+def test_correlation_out_of_range(client):
+    star = dict(STAR, correlation_parallax_pm_dec=-1.5)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].correlation_parallax_pm_dec")
+
+
+def test_correlations_not_positive_semidefinite(client):
+    star = dict(STAR, correlation_parallax_pm_ra=0.9, correlation_parallax_pm_dec=0.9,
+                correlation_pm_ra_pm_dec=-0.9)  # fmt: skip
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].correlation_*")
+
+
+def test_unknown_uncertainty_method(client):
+    body = {"stars": [STAR], "uncertainty_method": "bootstrap"}
+    assert_problem(post(client, body), 422, "uncertainty_method")
+
+
+def test_monte_carlo_draws_out_of_range(client):
+    body = {"stars": [STAR], "uncertainty_method": "monte_carlo", "monte_carlo_draws": 5}
+    assert_problem(post(client, body), 422, "monte_carlo_draws")
+
+
+def test_monte_carlo_samples_over_the_limit(client):
+    cols = {k: [v] * 30 for k, v in STAR.items()}
+    body = {"stars": cols, "uncertainty_method": "monte_carlo", "monte_carlo_draws": 1_000_000}
+    assert_problem(post(client, body), 413, "monte_carlo_draws")
+
+
+def test_non_positive_snr_threshold(client):
+    assert_problem(post(client, {"stars": [STAR], "low_snr_threshold": 0}), 422,
+                   "low_snr_threshold")  # fmt: skip
+
+
+def test_solar_motion_incomplete(client):
+    body = {"stars": [STAR], "solar_motion": {"u_km_s": 1.0, "v_km_s": 2.0}}
+    assert_problem(post(client, body), 422, "solar_motion.w_km_s")
+
+
+def test_solar_motion_nan(client):
+    body = {"stars": [STAR], "solar_motion": {"u_km_s": "NaN", "v_km_s": 2.0, "w_km_s": 1.0}}
+    assert_problem(post(client, body), 422, "solar_motion.u_km_s")
+
+
+def test_unparseable_catalogue_epoch(client):
+    body = {"stars": [STAR], "catalogue_epoch": "the day after tomorrow"}
+    assert_problem(post(client, body), 422, "catalogue_epoch")
+
+
+def test_unknown_field_is_named(client):
+    star = dict(STAR, distance_kpc=3.0)
+    assert_problem(post(client, {"stars": [star]}), 422, "stars[0].distance_kpc")
+
+
+def test_empty_batch(client):
+    assert_problem(post(client, {"stars": []}), 422, "stars")
+
+
+def test_inverse_negative_distance(client):
+    star = dict(UVW_STAR, distance_pc=-80.0)
+    assert_problem(post(client, {"stars": [star]}, INVERSE_URL), 422, "stars[0].distance_pc")
+
+
+def test_inverse_nan_velocity(client):
+    star = dict(UVW_STAR, u_km_s="NaN")
+    assert_problem(post(client, {"stars": [star]}, INVERSE_URL), 422, "stars[0].u_km_s")
+
+
+def test_inverse_missing_velocity_component(client):
+    star = {k: v for k, v in UVW_STAR.items() if k != "w_km_s"}
+    assert_problem(post(client, {"stars": [star]}, INVERSE_URL), 422, "stars[0].w_km_s")
+
+
+def test_inverse_wrong_content_type(client):
+    r = client.post(INVERSE_URL, data=json.dumps({"stars": [UVW_STAR]}), content_type="text/csv")
+    assert_problem(r, 415)

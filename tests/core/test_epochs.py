@@ -1,0 +1,280 @@
+"""Checks of service.core.epochs against the IAU definitions, ERFA and astropy.
+
+Sources:
+- IAU definitions: J2000.0 = JD 2451545.0 TT (IAU 1976 / 2006); B1950.0 =
+  JD 2433282.4235 (Lieske 1979, A&A 73, 282; the value quoted to 4 decimals in the
+  Explanatory Supplement, 3rd ed., 2013, ch. 3); the Julian year is 365.25 days exactly;
+- the ERFA test suite, liberfa/erfa src/t_erfa_c.c: t_epb, t_epb2jd, t_epj, t_epj2jd;
+- pyerfa's epj, epj2jd, epb, epb2jd and astropy.time.Time, run inside the test.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import erfa
+import numpy as np
+import pytest
+from astropy.time import Time
+from astropy.utils import iers
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.core.epochs import (
+    EPOCH_MAX_JYEAR,
+    EPOCH_MIN_JYEAR,
+    EpochError,
+    EpochLabels,
+    TimeNote,
+    besselian_epoch_to_julian_epoch,
+    epoch_range,
+    jd_to_julian_epoch,
+    julian_epoch_to_besselian_epoch,
+    julian_epoch_to_jd,
+    label_epochs,
+    parse_epoch,
+    parse_epoch_with_notes,
+)
+
+iers.conf.auto_download = False  # offline: packaged tables only
+
+#: Tolerance on Julian epochs, years. A double near 2000 resolves 2.3e-13 yr (7 us); the
+#: conversions add a few roundings, so 1e-12 yr (32 microseconds) is the honest limit.
+JYEAR_TOL = 1e-12
+#: Tolerance on Julian dates, days (ERFA's own tolerance in t_epb2jd/t_epj2jd).
+JD_TOL_DAYS = 1e-9
+#: Tolerance on Besselian epochs, years (ERFA's tolerance in t_epb is 1e-12).
+BYEAR_TOL = 1e-12
+#: Time-scale conversions (UTC/TT/TDB) against astropy, seconds. Bounded by the double
+#: resolution of a Julian epoch (7 microseconds near 2000).
+SCALE_TOL_S = 5e-5
+YEAR_S = 365.25 * 86400.0
+
+
+# --- IAU definitions -------------------------------------------------------------------
+
+
+def test_j2000_is_jd_2451545_tt():
+    jd1, jd2 = julian_epoch_to_jd(2000.0)
+    assert jd1 + jd2 == 2451545.0  # IAU 1976 / 2006: J2000.0 = JD 2451545.0 TT
+    assert parse_epoch("J2000.0") == 2000.0
+    assert parse_epoch("JD2451545.0") == 2000.0
+    assert parse_epoch("MJD51544.5") == 2000.0  # MJD = JD - 2400000.5
+
+
+def test_julian_year_is_365_25_days():
+    for a, b in [(2000.0, 2001.0), (1991.25, 2016.0), (-4712.0, 2000.0)]:
+        d1a, d2a = julian_epoch_to_jd(a)
+        d1b, d2b = julian_epoch_to_jd(b)
+        days = (d1b - d1a) + (d2b - d2a)
+        assert days == pytest.approx((b - a) * 365.25, abs=JD_TOL_DAYS)  # IAU: 365.25 d
+
+
+def test_b1950_is_jd_2433282_4235():
+    jyear = besselian_epoch_to_julian_epoch(1950.0)
+    jd1, jd2 = julian_epoch_to_jd(jyear)
+    # B1950.0 = JD 2433282.4235 (Lieske 1979; quoted to 4 decimals: half a unit tolerance).
+    assert abs((jd1 - 2433282.4235) + jd2) <= 0.5e-4
+    assert parse_epoch("B1950.0") == pytest.approx(jyear, abs=0)
+    # B1900.0 = JD 2415020.31352 (Lieske 1979, the origin of the Besselian epoch).
+    jd1, jd2 = julian_epoch_to_jd(besselian_epoch_to_julian_epoch(1900.0))
+    assert abs((jd1 - 2415020.31352) + jd2) <= JD_TOL_DAYS
+
+
+# --- ERFA test suite values ------------------------------------------------------------
+
+
+def test_erfa_t_epj():
+    # t_erfa_c.c t_epj: eraEpj(2451545, -7392.5) = 1979.760438056125941 (tol 1e-12)
+    assert abs(jd_to_julian_epoch(2451545.0, -7392.5) - 1979.760438056125941) <= JYEAR_TOL
+
+
+def test_erfa_t_epj2jd():
+    # t_erfa_c.c t_epj2jd: 1996.8 -> djm0 = 2400000.5, djm = 50375.7 (tol 1e-9)
+    jd1, jd2 = julian_epoch_to_jd(1996.8)
+    assert abs(jd1 - 2400000.5) <= JD_TOL_DAYS
+    assert abs(jd2 - 50375.7) <= JD_TOL_DAYS
+
+
+def test_erfa_t_epb():
+    # t_erfa_c.c t_epb: eraEpb(2415019.8135, 30103.18648) = 1982.418424159278580 (tol 1e-12)
+    jyear = jd_to_julian_epoch(2415019.8135, 30103.18648)
+    assert abs(julian_epoch_to_besselian_epoch(jyear) - 1982.418424159278580) <= BYEAR_TOL
+
+
+def test_erfa_t_epb2jd():
+    # t_erfa_c.c t_epb2jd: 1957.3 -> djm0 = 2400000.5, djm = 35948.1915101513 (tol 1e-9)
+    jd1, jd2 = julian_epoch_to_jd(besselian_epoch_to_julian_epoch(1957.3))
+    assert abs((jd1 - 2400000.5) + (jd2 - 35948.1915101513)) <= JD_TOL_DAYS
+
+
+# --- pyerfa on random inputs -----------------------------------------------------------
+
+
+@settings(max_examples=200, deadline=None)
+@given(jyear=st.floats(-4000.0, 8000.0))
+def test_julian_epoch_matches_pyerfa(jyear):
+    d1, d2 = julian_epoch_to_jd(jyear)
+    e1, e2 = erfa.epj2jd(jyear)
+    assert abs((d1 - e1) + (d2 - e2)) <= JD_TOL_DAYS
+    assert abs(jd_to_julian_epoch(d1, d2) - erfa.epj(e1, e2)) <= JYEAR_TOL * 10
+    assert abs(jd_to_julian_epoch(d1, d2) - jyear) <= JYEAR_TOL * 10  # round trip
+
+
+@settings(max_examples=200, deadline=None)
+@given(byear=st.floats(-4000.0, 8000.0))
+def test_besselian_epoch_matches_pyerfa(byear):
+    d1, d2 = julian_epoch_to_jd(besselian_epoch_to_julian_epoch(byear))
+    e1, e2 = erfa.epb2jd(byear)
+    assert abs((d1 - e1) + (d2 - e2)) <= JD_TOL_DAYS
+    back = julian_epoch_to_besselian_epoch(besselian_epoch_to_julian_epoch(byear))
+    assert abs(back - byear) <= JYEAR_TOL * 10  # round trip
+
+
+def test_vectorised_conversions_keep_shape():
+    jy = np.linspace(1900.0, 2100.0, 12).reshape(3, 4)
+    d1, d2 = julian_epoch_to_jd(jy)
+    assert d1.shape == d2.shape == (3, 4)
+    np.testing.assert_allclose(jd_to_julian_epoch(d1, d2), jy, rtol=0, atol=JYEAR_TOL)
+    np.testing.assert_allclose(
+        julian_epoch_to_besselian_epoch(jy),
+        erfa.epb(*erfa.epj2jd(jy)),
+        rtol=0,
+        atol=BYEAR_TOL * 10,
+    )
+
+
+# --- parsing and time scales (checked against astropy.time) -----------------------------
+
+
+def astropy_jyear_tdb(value, fmt, scale):
+    return Time(value, format=fmt, scale=scale).tdb.jyear
+
+
+@pytest.mark.parametrize(
+    "text,fmt,value,scale",
+    [
+        ("JD2460000.5 UTC", "jd", 2460000.5, "utc"),
+        ("JD2460000.5 TT", "jd", 2460000.5, "tt"),
+        ("JD2451545.0 TAI", "jd", 2451545.0, "tai"),
+        ("MJD59000.25 UTC", "mjd", 59000.25, "utc"),
+        ("mjd 59000.25 tt", "mjd", 59000.25, "tt"),
+    ],
+)
+def test_scales_match_astropy(text, fmt, value, scale):
+    jyear, notes = parse_epoch_with_notes(text)
+    assert abs(jyear - astropy_jyear_tdb(value, fmt, scale)) * YEAR_S <= SCALE_TOL_S
+    assert notes == 0
+
+
+@pytest.mark.parametrize(
+    "text,iso",
+    [
+        ("2000-01-01T11:58:55.816Z", "2000-01-01T11:58:55.816"),  # J2000.0 TT, in UTC
+        ("2016-12-31T23:59:60Z", "2016-12-31T23:59:60"),  # a leap second
+        ("2026-12-02T03:04:05+02:00", "2026-12-02T01:04:05"),  # zone offset applied
+        ("2026-12-02", "2026-12-02T00:00:00"),  # date alone: 0h UTC
+        ("1999-06-15 12:30", "1999-06-15T12:30:00"),
+    ],
+)
+def test_iso_utc_matches_astropy(text, iso):
+    jyear, _ = parse_epoch_with_notes(text)
+    assert abs(jyear - astropy_jyear_tdb(iso, "isot", "utc")) * YEAR_S <= SCALE_TOL_S
+
+
+def test_bare_numbers_and_prefixes_are_julian_epochs():
+    assert parse_epoch(2016.0) == 2016.0
+    assert parse_epoch(np.float32(2016.5)) == 2016.5
+    assert parse_epoch("2016.0") == 2016.0
+    assert parse_epoch(" j2016.5 ") == 2016.5
+    assert parse_epoch(2016) == 2016.0
+
+
+def test_now_uses_given_clock():
+    moment = dt.datetime(2026, 12, 2, 3, 4, 5, tzinfo=dt.UTC)
+    jyear = parse_epoch("now", now=moment)
+    assert abs(jyear - astropy_jyear_tdb("2026-12-02T03:04:05", "isot", "utc")) * YEAR_S <= (
+        SCALE_TOL_S
+    )
+    # "now" without a clock is the system time: within a minute of astropy's now.
+    assert abs(parse_epoch("now") - Time.now().tdb.jyear) * YEAR_S < 60.0
+
+
+@pytest.mark.parametrize(
+    "bad",
+    [
+        "",
+        "   ",
+        "yesterday",
+        "J2000 TT",  # Julian epochs are TDB by definition: no scale
+        "JD2451545 GPS",  # unknown scale
+        "2026-13-01",  # month 13
+        "2026-02-30T00:00:00Z",
+        "x" * 100,
+        float("nan"),
+        float("inf"),
+        True,
+        None,
+        [2016.0],
+        EPOCH_MAX_JYEAR + 1.0,
+        EPOCH_MIN_JYEAR - 1.0,
+        "J1e9",
+    ],
+)
+def test_bad_epochs_raise_epoch_error(bad):
+    with pytest.raises(EpochError):
+        parse_epoch(bad)
+
+
+def test_epoch_error_is_a_value_error():
+    assert issubclass(EpochError, ValueError)
+
+
+def test_epoch_range():
+    np.testing.assert_array_equal(epoch_range(2000.0, 2010.0, 3), [2000.0, 2005.0, 2010.0])
+    np.testing.assert_array_equal(epoch_range(2016.0, 2016.0, 1), [2016.0])
+    with pytest.raises(EpochError):
+        epoch_range(2000.0, 2001.0, 0)
+
+
+# --- labels: Julian epoch -> JD and ISO UTC -------------------------------------------
+
+
+def test_labels_match_astropy_utc():
+    jy = np.array([1975.3, 2000.0, 2016.0, 2026.9171])
+    labels = label_epochs(jy)
+    assert isinstance(labels, EpochLabels)
+    np.testing.assert_array_equal(labels.julian_epoch_tdb, jy)
+    np.testing.assert_allclose(labels.jd_tdb, 2451545.0 + (jy - 2000.0) * 365.25, atol=1e-9)
+    for k, y in enumerate(jy):
+        expected = Time(y, format="jyear", scale="tdb").utc.isot  # millisecond precision
+        got = labels.iso_utc[k]
+        assert got.endswith("Z")
+        # Compare as times (rounding of the last millisecond may differ by one unit).
+        diff = (Time(got[:-1], format="isot", scale="utc") - Time(expected, scale="utc")).sec
+        assert abs(diff) <= 1.5e-3
+    assert np.all(labels.notes == 0)
+
+
+def test_labels_round_trip_through_parse():
+    jy = np.array([1980.5, 2016.0, 2030.25])
+    for y, iso in zip(jy, label_epochs(jy).iso_utc, strict=True):
+        # ISO at millisecond precision: the round trip is good to half a millisecond.
+        assert abs(parse_epoch(iso) - y) * YEAR_S <= 0.5e-3 + SCALE_TOL_S
+
+
+def test_labels_flag_approximate_and_missing_calendar():
+    labels = label_epochs([1900.0, 2016.0, 20000.0, -5000.0])
+    notes = labels.notes
+    assert notes[0] & TimeNote.UTC_APPROXIMATE  # before 1960: UTC not defined as today
+    assert notes[1] == 0
+    assert notes[2] & TimeNote.NO_CALENDAR_DATE and labels.iso_utc[2] is None
+    assert notes[3] & TimeNote.NO_CALENDAR_DATE and labels.iso_utc[3] is None
+    assert labels.iso_utc[0].startswith("1899-12-31") or labels.iso_utc[0].startswith("1900")
+
+
+def test_parse_flags_approximate_utc_before_1960():
+    _, notes = parse_epoch_with_notes("1900-01-01T00:00:00Z")
+    assert notes & TimeNote.UTC_APPROXIMATE
+    _, notes = parse_epoch_with_notes("2020-01-01T00:00:00Z")
+    assert notes == 0

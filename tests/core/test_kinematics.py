@@ -1,0 +1,766 @@
+"""Tests of service.core.kinematics against outside sources.
+
+Each expected value names its source beside it. Tolerances are one per quantity, in that
+quantity's unit.
+"""
+
+from __future__ import annotations
+
+import erfa
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.core import constants
+from service.core.flags import flag_names
+from service.core.kinematics import (
+    ICRS_TO_GALACTIC_HIPPARCOS,
+    V_SUN_LSR_SCHOENRICH2010_KM_S,
+    KinematicsFlag,
+    astrometric_covariance,
+    galactic_velocity,
+    observables_from_velocity,
+    sin_cos_deg,
+    space_velocity,
+)
+
+KM_S = "km/s"
+
+
+def _astropy_uvw(ra, dec, dist_pc, pmra, pmdec, rv, frame="galactic"):
+    """U, V, W from astropy's own frames (an independent implementation)."""
+    import astropy.units as u
+    from astropy.coordinates import Galactic, GalacticLSR, SkyCoord
+
+    c = SkyCoord(
+        ra=np.asarray(ra) * u.deg,
+        dec=np.asarray(dec) * u.deg,
+        distance=np.asarray(dist_pc) * u.pc,
+        pm_ra_cosdec=np.asarray(pmra) * u.mas / u.yr,
+        pm_dec=np.asarray(pmdec) * u.mas / u.yr,
+        radial_velocity=np.asarray(rv) * u.km / u.s,
+        frame="icrs",
+    )
+    target = Galactic() if frame == "galactic" else GalacticLSR()
+    v = c.transform_to(target).velocity
+    return np.stack(
+        [v.d_x.to_value(u.km / u.s), v.d_y.to_value(u.km / u.s), v.d_z.to_value(u.km / u.s)],
+        axis=-1,
+    )
+
+
+# ---------------------------------------------------------------------------------------
+# The transverse-velocity factor A
+# ---------------------------------------------------------------------------------------
+
+
+def test_transverse_velocity_factor_from_iau_2012_au():
+    # IAU 2012 Resolution B2: au = 149 597 870 700 m exactly; Julian year = 365.25 d of
+    # 86400 s. A = au / Julian year in km/s.
+    a_expected = 149_597_870_700.0 / 1000.0 / (365.25 * 86_400.0)
+    assert constants.AU_PER_JULIAN_YEAR_KM_S == pytest.approx(a_expected, rel=1e-15)
+    # Value quoted in the issue from the exact definition: 4.740470463533348 km/s.
+    assert constants.AU_PER_JULIAN_YEAR_KM_S == pytest.approx(4.740470463533348, abs=1e-15)
+    # Hipparcos Catalogue Vol. 1 (ESA 1997) quotes A = 4.74047 km/s (rounded, 6 digits).
+    assert abs(constants.AU_PER_JULIAN_YEAR_KM_S - 4.74047) < 5e-6
+
+
+def test_transverse_velocity_uses_exact_factor():
+    # 1 arcsec/yr at 1 arcsec parallax (1 pc) is 1 au/yr = A km/s by definition.
+    r = space_velocity(0.0, 0.0, 1000.0, 600.0, 800.0)
+    tol = 1e-12  # km/s
+    assert abs(r.transverse_velocity_km_s - 1000.0e-3 * constants.AU_PER_JULIAN_YEAR_KM_S) < tol
+    assert abs(r.transverse_velocity_ra_km_s - 0.6 * constants.AU_PER_JULIAN_YEAR_KM_S) < tol
+    assert abs(r.transverse_velocity_dec_km_s - 0.8 * constants.AU_PER_JULIAN_YEAR_KM_S) < tol
+    # The rounded Hipparcos value would be off by 4.6e-7 km/s here: far above tol.
+    assert abs(r.transverse_velocity_km_s - 4.74047) > 100 * tol
+
+
+# ---------------------------------------------------------------------------------------
+# The galactic rotation matrix
+# ---------------------------------------------------------------------------------------
+
+# Hipparcos Catalogue Vol. 1 (ESA 1997), section 1.5.3, eq. 1.5.11: the matrix A_G whose
+# columns are the galactic axes in the ICRS (r_gal = A_G' r_icrs), printed to 10 decimals.
+# Values recalled from memory; each equals the corresponding element of ERFA icrs2g's
+# 30-digit matrix (liberfa/erfa src/icrs2g.c) rounded to 10 decimals, which this test also
+# checks independently through erfa.icrs2g below.
+HIPPARCOS_A_G = np.array(
+    [
+        [-0.0548755604, +0.4941094279, -0.8676661490],
+        [-0.8734370902, -0.4448296300, -0.1980763734],
+        [-0.4838350155, +0.7469822445, +0.4559837762],
+    ]
+)
+
+
+def test_rotation_matrix_matches_hipparcos_published_values():
+    tol = 1e-10  # dimensionless; the published values are rounded to 5e-11
+    assert np.abs(ICRS_TO_GALACTIC_HIPPARCOS - HIPPARCOS_A_G.T).max() < tol
+
+
+def test_rotation_matrix_matches_erfa_icrs2g():
+    # Images of the ICRS basis vectors under erfa.icrs2g are the columns of the matrix.
+    ra = np.array([0.0, np.pi / 2, 0.0])
+    dec = np.array([0.0, 0.0, np.pi / 2])
+    lon, lat = erfa.icrs2g(ra, dec)
+    from_erfa = erfa.s2c(lon, lat).T
+    tol = 1e-10  # dimensionless
+    assert np.abs(ICRS_TO_GALACTIC_HIPPARCOS - from_erfa).max() < tol
+
+
+def test_rotation_matrix_is_a_rotation():
+    m = ICRS_TO_GALACTIC_HIPPARCOS
+    tol = 1e-15  # dimensionless
+    assert np.abs(m @ m.T - np.eye(3)).max() < tol
+    assert abs(np.linalg.det(m) - 1.0) < tol
+
+
+def test_positions_through_matrix_match_erfa_icrs2g():
+    rng = np.random.default_rng(11)
+    ra = rng.uniform(0.0, 2 * np.pi, 500)
+    dec = np.arcsin(rng.uniform(-1.0, 1.0, 500))
+    lon, lat = erfa.icrs2g(ra, dec)
+    ours = erfa.s2c(ra, dec) @ ICRS_TO_GALACTIC_HIPPARCOS.T
+    tol = 1e-14  # unit-vector components
+    assert np.abs(ours - erfa.s2c(lon, lat)).max() < tol
+
+
+# ---------------------------------------------------------------------------------------
+# U, V, W against published values (XHIP via astropy's tests)
+# ---------------------------------------------------------------------------------------
+
+# Seven Hipparcos stars from the Extended Hipparcos Compilation, XHIP (Anderson & Francis
+# 2012, AstL 38, 331; VizieR V/137A/XHIP), as used in astropy's own velocity test
+# astropy/coordinates/tests/test_frames_with_velocity.py::test_xhip_galactic. Columns:
+# HIP, RA (deg), Dec (deg), pmRA* (mas/yr), pmDE (mas/yr), distance (pc), RV (km/s),
+# U, V, W (km/s; U towards the Galactic centre). Published to 0.1 km/s.
+XHIP = [
+    (19, 0.05331690, +38.30408633, -3.17, -15.37, 247.12, 6.30, 7.3, 2.0, -17.9),
+    (20, 0.06295067, +23.52928427, 36.11, -22.48, 95.90, 37.80, -19.3, 16.1, -34.2),
+    (21, 0.06623581, +8.00723430, 61.48, -0.23, 183.68, -11.72, -45.2, -30.9, -1.3),
+    (24917, 80.09698238, -33.39874984, -4.30, 13.40, 107.38, 36.10, -22.4, -21.3, -19.9),
+    (59207, 182.13915108, +65.34963517, 18.17, 5.49, 56.00, 5.70, 1.5, 6.1, 4.4),
+    (87992, 269.60730667, +36.87462906, -89.58, 72.46, 129.60, -4.00, -39.5, -15.8, 56.7),
+    (115110, 349.72322473, -28.74087144, 48.86, -9.25, 116.87, 15.00, -16.8, -12.2, -23.6),
+]
+
+
+@pytest.mark.parametrize("row", XHIP, ids=[f"HIP{r[0]}" for r in XHIP])
+def test_uvw_matches_xhip(row):
+    _, ra, dec, pmra, pmdec, dist, rv, u, v, w = row
+    r = space_velocity(ra, dec, None, pmra, pmdec, rv, distance_pc=dist)
+    tol = 0.1  # km/s: the published values are rounded to 0.1 km/s (plus rounding of inputs)
+    assert np.abs(r.uvw_km_s - [u, v, w]).max() <= tol
+    assert r.flags == KinematicsFlag.DISTANCE_GIVEN | KinematicsFlag.UNCERTAINTIES_MISSING
+
+
+def test_uvw_matches_xhip_vectorised():
+    rows = np.array([r[1:] for r in XHIP])
+    ra, dec, pmra, pmdec, dist, rv = rows[:, :6].T
+    r = galactic_velocity(ra, dec, None, pmra, pmdec, rv, distance_pc=dist)
+    assert r.uvw_km_s.shape == (7, 3)
+    assert np.abs(r.uvw_km_s - rows[:, 6:]).max() <= 0.1  # km/s, as above
+
+
+# ---------------------------------------------------------------------------------------
+# U, V, W against astropy's Galactic frame
+# ---------------------------------------------------------------------------------------
+
+
+def _random_stars(n, seed):
+    rng = np.random.default_rng(seed)
+    return dict(
+        ra=rng.uniform(0.0, 360.0, n),
+        dec=np.degrees(np.arcsin(rng.uniform(-1.0, 1.0, n))),
+        dist=rng.uniform(5.0, 3000.0, n),
+        pmra=rng.normal(0.0, 100.0, n),
+        pmdec=rng.normal(0.0, 100.0, n),
+        rv=rng.normal(0.0, 100.0, n),
+    )
+
+
+def test_astropy_galactic_differs_from_hipparcos_matrix_by_about_1e_7():
+    import astropy.units as u
+    from astropy.coordinates import ICRS, CartesianRepresentation, Galactic
+
+    basis = ICRS(CartesianRepresentation(np.eye(3) * u.pc))
+    from_astropy = basis.transform_to(Galactic()).cartesian.xyz.to_value(u.pc)
+    diff = np.abs(from_astropy - ICRS_TO_GALACTIC_HIPPARCOS).max()
+    # Measured 9.7e-8 (about 20 mas): astropy defines Galactic from the FK4 B1950 pole and
+    # FK5 J2000, not from the Hipparcos angles. Bounded above to catch a real regression.
+    assert diff < 2e-7
+
+
+def test_uvw_matches_astropy_galactic_on_random_stars():
+    s = _random_stars(2000, seed=5)
+    r = space_velocity(
+        s["ra"], s["dec"], None, s["pmra"], s["pmdec"], s["rv"], distance_pc=s["dist"],
+    )  # fmt: skip
+    ref = _astropy_uvw(s["ra"], s["dec"], s["dist"], s["pmra"], s["pmdec"], s["rv"])
+    speed = np.linalg.norm(ref, axis=-1)
+    # The two galactic frames differ by a rotation of about 1.2e-7 rad (measured, see the
+    # test above), so the velocities agree to that fraction of the speed, not better.
+    tol_rel = 2e-7  # fraction of the speed
+    assert (np.linalg.norm(r.uvw_km_s - ref, axis=-1) <= tol_rel * speed + 1e-12).all()
+    # Speeds are frame-independent and agree to rounding.
+    assert np.abs(r.total_velocity_km_s - speed).max() < 1e-9  # km/s
+
+
+def test_lsr_matches_astropy_galactic_lsr():
+    s = _random_stars(300, seed=6)
+    r = space_velocity(
+        s["ra"], s["dec"], None, s["pmra"], s["pmdec"], s["rv"], distance_pc=s["dist"],
+        relative_to_lsr=True,
+    )  # fmt: skip
+    # astropy's GalacticLSR default v_bary is Schoenrich, Binney & Dehnen 2010:
+    # (11.1, 12.24, 7.25) km/s, the same as ours.
+    ref = _astropy_uvw(
+        s["ra"], s["dec"], s["dist"], s["pmra"], s["pmdec"], s["rv"], frame="lsr"
+    )  # fmt: skip
+    helio_speed = np.linalg.norm(r.uvw_km_s, axis=-1)
+    tol_rel = 2e-7  # fraction of the heliocentric speed (frame rotation, see above)
+    assert (np.linalg.norm(r.uvw_lsr_km_s - ref, axis=-1) <= tol_rel * helio_speed + 1e-9).all()
+
+
+def test_lsr_solar_motion_default_and_override():
+    # Schoenrich, Binney & Dehnen 2010, MNRAS 403, 1829: (U, V, W)_sun = (11.1, 12.24, 7.25).
+    assert V_SUN_LSR_SCHOENRICH2010_KM_S == (11.1, 12.24, 7.25)
+    args = (10.0, 20.0, 5.0, 30.0, -40.0, 12.0)
+    helio = space_velocity(*args).uvw_km_s
+    lsr = space_velocity(*args, relative_to_lsr=True, solar_motion_km_s=(10.0, 5.0, 7.0))
+    assert np.abs(lsr.uvw_lsr_km_s - (helio + [10.0, 5.0, 7.0])).max() < 1e-12  # km/s
+    assert space_velocity(*args).uvw_lsr_km_s is None
+
+
+def test_uvw_axes_conventions():
+    # A star at the Galactic centre receding at 10 km/s has U = +10 (towards the centre);
+    # a star at the north Galactic pole receding has W = +10. Galactic centre and pole in
+    # ICRS from erfa.g2icrs (the Hipparcos definition).
+    ra_gc, dec_gc = np.degrees(erfa.g2icrs(0.0, 0.0))
+    ra_np, dec_np = np.degrees(erfa.g2icrs(0.0, np.pi / 2))
+    ra_rot, dec_rot = np.degrees(erfa.g2icrs(np.pi / 2, 0.0))
+    r = space_velocity([ra_gc, ra_rot, ra_np], [dec_gc, dec_rot, dec_np], 10.0, 0.0, 0.0, 10.0)
+    tol = 1e-12  # km/s
+    assert np.abs(r.uvw_km_s - 10.0 * np.eye(3)).max() < tol
+
+
+# ---------------------------------------------------------------------------------------
+# Decomposition details
+# ---------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    "pmra, pmdec, expected_deg",
+    [(0.0, 10.0, 0.0), (10.0, 0.0, 90.0), (0.0, -10.0, 180.0), (-10.0, 0.0, 270.0),
+     (10.0, 10.0, 45.0)],
+)  # fmt: skip
+def test_position_angle_of_proper_motion(pmra, pmdec, expected_deg):
+    # Position angle measured from north through east (IAU convention, common practice).
+    r = space_velocity(150.0, -20.0, 10.0, pmra, pmdec, 0.0)
+    assert abs(r.pm_position_angle_deg - expected_deg) < 1e-12  # deg
+
+
+@pytest.mark.parametrize(
+    "pm, rv, expected_deg", [(0.0, 10.0, 0.0), (0.0, -10.0, 180.0), (10.0, 0.0, 90.0)]
+)
+def test_angle_between_velocity_and_line_of_sight(pm, rv, expected_deg):
+    r = space_velocity(150.0, -20.0, 10.0, pm, 0.0, rv)
+    assert abs(r.velocity_line_of_sight_angle_deg - expected_deg) < 1e-12  # deg
+
+
+def test_line_of_sight_angle_and_speed_from_components():
+    s = _random_stars(100, seed=8)
+    r = space_velocity(
+        s["ra"], s["dec"], None, s["pmra"], s["pmdec"], s["rv"], distance_pc=s["dist"],
+    )  # fmt: skip
+    # The space-velocity vector dotted with the outward unit vector gives the radial velocity.
+    u_out = erfa.s2c(np.radians(s["ra"]), np.radians(s["dec"])) @ ICRS_TO_GALACTIC_HIPPARCOS.T
+    cos_angle = np.sum(r.uvw_km_s * u_out, axis=-1) / r.total_velocity_km_s
+    tol = 1e-9  # deg
+    expected = np.degrees(np.arccos(np.clip(cos_angle, -1, 1)))
+    assert np.abs(r.velocity_line_of_sight_angle_deg - expected).max() < 1e-6  # deg
+    assert np.abs(np.sum(r.uvw_km_s * u_out, axis=-1) - s["rv"]).max() < tol * 1e3  # km/s
+
+
+# ---------------------------------------------------------------------------------------
+# Bad and missing input: flags and nulls, never a batch error
+# ---------------------------------------------------------------------------------------
+
+
+def test_non_positive_and_missing_parallax_give_flags_and_nulls():
+    plx = np.array([10.0, 0.0, -1.5, np.nan, 10.0])
+    rv = np.array([5.0, 5.0, 5.0, 5.0, np.nan])
+    r = space_velocity(45.0, 30.0, plx, 50.0, -20.0, rv)
+    names = flag_names(r.flags, KinematicsFlag)
+    # No errors were given: every star also says its uncertainties are null.
+    assert names[0] == ["uncertainties_missing"]
+    assert names[1] == ["parallax_not_positive"]
+    assert names[2] == ["parallax_not_positive"]
+    assert names[3] == ["parallax_missing"]
+    assert names[4] == ["radial_velocity_missing", "uncertainties_missing"]
+    assert np.isfinite(r.uvw_km_s[0]).all()
+    assert np.isnan(r.uvw_km_s[1:]).all()
+    assert np.isnan(r.transverse_velocity_km_s[1:4]).all()
+    # Without radial velocity the transverse velocity is still known.
+    assert np.isfinite(r.transverse_velocity_km_s[4])
+    assert np.isnan(r.total_velocity_km_s[4])
+    assert np.isnan(r.closest_approach_distance_pc[4])
+    # The position angle needs no distance.
+    assert np.isfinite(r.pm_position_angle_deg).all()
+    # Star 0 is unaffected by its neighbours.
+    alone = space_velocity(45.0, 30.0, 10.0, 50.0, -20.0, 5.0)
+    assert np.abs(r.uvw_km_s[0] - alone.uvw_km_s).max() < 1e-13  # km/s (last-bit rounding)
+
+
+def test_explicit_distance_replaces_parallax():
+    r_plx = space_velocity(45.0, 30.0, 4.0, 50.0, -20.0, 5.0)
+    r_dist = space_velocity(45.0, 30.0, -3.0, 50.0, -20.0, 5.0, distance_pc=250.0)
+    tol = 1e-12  # km/s
+    assert np.abs(r_plx.uvw_km_s - r_dist.uvw_km_s).max() < tol
+    assert flag_names(r_dist.flags, KinematicsFlag) == [["distance_given", "uncertainties_missing"]]
+
+
+def test_low_parallax_snr_flag_and_threshold():
+    plx = np.array([1.0, 1.0, 1.0])
+    err = np.array([0.1, 0.25, 0.5])  # SNR 10, 4, 2
+    r = space_velocity(0.0, 0.0, plx, 1.0, 1.0, 0.0, parallax_error_mas=err)
+    low = (r.flags & KinematicsFlag.PARALLAX_LOW_SNR).astype(bool)
+    assert low.tolist() == [False, True, True]  # default threshold 5 (common practice)
+    r3 = space_velocity(0.0, 0.0, plx, 1.0, 1.0, 0.0, parallax_error_mas=err, low_snr_threshold=3.0)
+    assert ((r3.flags & KinematicsFlag.PARALLAX_LOW_SNR) > 0).tolist() == [False, False, True]
+    assert np.abs(r.parallax_snr - [10.0, 4.0, 2.0]).max() < 1e-12
+
+
+def test_implausible_proper_motion_flag():
+    # About 10.4 arcsec/yr is the largest known stellar proper motion (common practice).
+    r = space_velocity(0.0, 0.0, 100.0, [9000.0, 12000.0], 0.0, 0.0)
+    assert ((r.flags & KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE) > 0).tolist() == [False, True]
+
+
+def test_missing_uncertainties_flag():
+    r = space_velocity(0.0, 0.0, 10.0, 1.0, 1.0, 3.0, parallax_error_mas=0.1)
+    assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING
+    assert np.isnan(r.uvw_error_km_s).all()
+    assert np.isfinite(r.uvw_km_s).all()
+
+
+# ---------------------------------------------------------------------------------------
+# Vectorisation rule
+# ---------------------------------------------------------------------------------------
+
+
+def test_scalar_in_scalar_out_and_broadcast_shapes():
+    r = space_velocity(10.0, 20.0, 5.0, 30.0, 40.0, 6.0)
+    assert r.transverse_velocity_km_s.shape == ()
+    assert r.uvw_km_s.shape == (3,)
+    assert r.uvw_covariance_km2_s2.shape == (3, 3)
+    ra = np.linspace(0.0, 350.0, 12).reshape(3, 4)
+    r2 = space_velocity(ra, 20.0, 5.0, 30.0, 40.0, [6.0, 7.0, 8.0, 9.0])
+    assert r2.uvw_km_s.shape == (3, 4, 3)
+    assert r2.flags.shape == (3, 4)
+    one = space_velocity(ra[1, 2], 20.0, 5.0, 30.0, 40.0, 8.0)
+    # Scalar and array arithmetic may round differently in the last bit.
+    assert np.abs(r2.uvw_km_s[1, 2] - one.uvw_km_s).max() < 1e-13  # km/s
+
+
+def test_non_contiguous_inputs():
+    s = _random_stars(40, seed=9)
+    full = space_velocity(s["ra"], s["dec"], 1000 / s["dist"], s["pmra"], s["pmdec"], s["rv"])
+    half = space_velocity(
+        s["ra"][::2], s["dec"][::2], (1000 / s["dist"])[::2], s["pmra"][::2],
+        s["pmdec"][::2], s["rv"][::2],
+    )  # fmt: skip
+    assert np.array_equal(full.uvw_km_s[::2], half.uvw_km_s)
+
+
+def test_blocks_do_not_change_results(monkeypatch):
+    import service.core.kinematics as kin
+
+    s = _random_stars(1000, seed=10)
+    args = (s["ra"], s["dec"], 1000 / s["dist"], s["pmra"], s["pmdec"], s["rv"])
+    kw = dict(parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.3,
+              radial_velocity_error_km_s=1.0)  # fmt: skip
+    whole = space_velocity(*args, **kw)
+    monkeypatch.setattr(kin, "_BLOCK", 37)
+    pieces = space_velocity(*args, **kw)
+    # Matrix products over blocks of other sizes may round differently in the last bit.
+    assert np.abs(whole.uvw_km_s - pieces.uvw_km_s).max() < 1e-11  # km/s
+    rel = np.abs(whole.uvw_covariance_packed_km2_s2 / pieces.uvw_covariance_packed_km2_s2 - 1)
+    assert rel.max() < 1e-12
+
+
+def test_galactic_velocity_equals_space_velocity():
+    s = _random_stars(200, seed=12)
+    args = (s["ra"], s["dec"], 1000 / s["dist"], s["pmra"], s["pmdec"], s["rv"])
+    kw = dict(parallax_error_mas=0.05, pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.3,
+              parallax_pm_dec_corr=0.2, radial_velocity_error_km_s=1.0)  # fmt: skip
+    a = space_velocity(*args, **kw)
+    b = galactic_velocity(*args, **kw)
+    assert np.array_equal(a.uvw_km_s, b.uvw_km_s)
+    assert np.array_equal(a.uvw_covariance_packed_km2_s2, b.uvw_covariance_packed_km2_s2)
+    assert np.array_equal(a.flags, b.flags)
+
+
+def test_sin_cos_deg_against_numpy():
+    x = np.concatenate([np.random.default_rng(3).uniform(-1000, 1000, 100_000),
+                        np.arange(-720.0, 721.0, 15.0)])  # fmt: skip
+    s, c = sin_cos_deg(x)
+    # Reference in extended precision (x87 long double where available).
+    xl = np.radians(x.astype(np.longdouble))
+    tol = 4.5e-16  # absolute: a few units in the last place
+    assert np.abs(s - np.sin(xl)).max() < tol
+    assert np.abs(c - np.cos(xl)).max() < tol
+    s90, c90 = sin_cos_deg(np.array([0.0, 90.0, 180.0, 270.0, -90.0]))
+    assert s90.tolist() == [0.0, 1.0, 0.0, -1.0, -1.0]
+    assert np.abs(c90).tolist() == [1.0, 0.0, 1.0, 0.0, 0.0]
+
+
+# ---------------------------------------------------------------------------------------
+# Uncertainties
+# ---------------------------------------------------------------------------------------
+
+
+def _draw_and_transform_with_astropy(star, cov5, sig_rv, n, seed):
+    """Direct simulation: draw the 5 astrometric parameters (positions included) and RV,
+    transform every draw with astropy. Returns (n, 3) U, V, W and (n,) v_t, speed."""
+    rng = np.random.default_rng(seed)
+    ra, dec, plx, pmra, pmdec, rv = star
+    x = rng.multivariate_normal(np.zeros(5), cov5, size=n)
+    cosd = np.cos(np.radians(dec))
+    ra_s = ra + x[:, 0] / 3.6e6 / cosd
+    dec_s = dec + x[:, 1] / 3.6e6
+    plx_s = plx + x[:, 2]
+    keep = plx_s > 0
+    rv_s = rv + sig_rv * rng.standard_normal(n)
+    pmra_s, pmdec_s = pmra + x[:, 3], pmdec + x[:, 4]
+    uvw = _astropy_uvw(
+        ra_s[keep], dec_s[keep], 1000 / plx_s[keep], pmra_s[keep], pmdec_s[keep], rv_s[keep]
+    )
+    a = constants.AU_PER_JULIAN_YEAR_KM_S
+    vt = a * np.hypot(pmra_s, pmdec_s)[keep] / plx_s[keep]
+    return uvw, vt, np.linalg.norm(uvw, axis=-1)
+
+
+def test_linear_covariance_matches_monte_carlo_at_high_snr():
+    # Parallax SNR 50, realistic correlations (including positions, which the core ignores:
+    # their effect is below 1e-8 of the speed, see Note 5).
+    star = (123.4, -35.6, 20.0, 150.0, -80.0, 40.0)
+    errors = (0.05, 0.04, 0.4, 0.3, 0.35)  # mas, mas, mas, mas/yr, mas/yr
+    rho = np.array([0.1, -0.2, 0.3, 0.05, 0.25, -0.1, 0.15, 0.4, -0.3, 0.2])
+    cov5 = astrometric_covariance(*errors, correlations=rho)
+    sig_rv = 2.0
+    r = space_velocity(*star, astrometric_covariance_mas=cov5, radial_velocity_error_km_s=sig_rv)
+    uvw_s, vt_s, sp_s = _draw_and_transform_with_astropy(star, cov5, sig_rv, 100_000, seed=1)
+    mc_cov = np.cov(uvw_s.T)
+    mc_err = np.sqrt(np.diag(mc_cov))
+    mc_corr = mc_cov / np.outer(mc_err, mc_err)
+    # Sampling error of a standard deviation from 1e5 draws is 0.22%; linearisation error
+    # at SNR 50 is of order (1/50)^2 = 0.04%. Tolerance 1.5% of each error.
+    tol_rel = 0.015
+    assert np.abs(r.uvw_error_km_s / mc_err - 1).max() < tol_rel
+    assert abs(r.transverse_velocity_error_km_s / vt_s.std() - 1) < tol_rel
+    assert abs(r.total_velocity_error_km_s / sp_s.std() - 1) < tol_rel
+    # Correlations: sampling error ~ (1 - rho^2)/sqrt(n) <= 0.003. Tolerance 0.01.
+    tol_corr = 0.01
+    iu = np.triu_indices(3, 1)
+    assert np.abs(r.uvw_correlation - mc_corr[iu]).max() < tol_corr
+    # The means agree with the values within the sampling error (0.5% of sigma * 4).
+    assert np.abs(uvw_s.mean(axis=0) - r.uvw_km_s).max() < 0.03 * mc_err.max()
+
+
+def test_covariance_matrix_and_error_inputs_agree():
+    errors = (0.05, 0.04, 0.4, 0.3, 0.35)
+    rho = np.zeros(10)
+    rho[7], rho[8], rho[9] = 0.4, -0.3, 0.2  # (plx, pmra), (plx, pmdec), (pmra, pmdec)
+    cov5 = astrometric_covariance(*errors, correlations=rho)
+    assert cov5[2, 3] == pytest.approx(0.4 * 0.4 * 0.3, rel=1e-15)
+    assert cov5[4, 3] == pytest.approx(0.2 * 0.3 * 0.35, rel=1e-15)
+    star = (123.4, -35.6, 20.0, 150.0, -80.0, 40.0)
+    a = space_velocity(*star, astrometric_covariance_mas=cov5, radial_velocity_error_km_s=2.0)
+    b = space_velocity(
+        *star, parallax_error_mas=0.4, pm_ra_cosdec_error_mas_yr=0.3, pm_dec_error_mas_yr=0.35,
+        parallax_pm_ra_cosdec_corr=0.4, parallax_pm_dec_corr=-0.3,
+        pm_ra_cosdec_pm_dec_corr=0.2, radial_velocity_error_km_s=2.0,
+    )  # fmt: skip
+    tol = 1e-12  # km^2/s^2
+    assert np.abs(a.uvw_covariance_km2_s2 - b.uvw_covariance_km2_s2).max() < tol
+
+
+def test_monte_carlo_option_matches_direct_simulation_at_low_snr():
+    # Parallax SNR 2.5: the distribution of U, V, W is skewed; linear errors are wrong.
+    star = (210.0, 15.0, 2.0, 25.0, -10.0, -30.0)
+    errors = (0.1, 0.1, 0.8, 0.2, 0.2)
+    cov5 = astrometric_covariance(*errors)
+    sig_rv = 3.0
+    r = space_velocity(
+        *star, astrometric_covariance_mas=cov5, radial_velocity_error_km_s=sig_rv,
+        uncertainty_method="monte_carlo", monte_carlo_draws=100_000, seed=42,
+    )  # fmt: skip
+    assert r.flags & KinematicsFlag.PARALLAX_LOW_SNR
+    assert r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES
+    uvw_s, vt_s, _ = _draw_and_transform_with_astropy(star, cov5, sig_rv, 100_000, seed=7)
+    lo, hi = np.percentile(uvw_s, [15.865525393145708, 84.13447460685429], axis=0)
+    width = hi - lo
+    # Two independent samples of 1e5 draws: percentile scatter is about 0.5% of the width.
+    tol = 0.03 * width  # km/s, per component
+    assert (np.abs(r.uvw_interval_km_s[:, 0] - lo) < tol).all()
+    assert (np.abs(r.uvw_interval_km_s[:, 1] - hi) < tol).all()
+    # Monte Carlo errors are half the 15.87-84.13 percentile width (robust to the heavy
+    # tail that small parallax draws create); compare with the same statistic.
+    vt_lo, vt_hi = np.percentile(vt_s, [15.865525393145708, 84.13447460685429])
+    assert abs(r.transverse_velocity_error_km_s / ((vt_hi - vt_lo) / 2) - 1) < 0.03
+    half_width = (hi - lo) / 2
+    assert np.abs(r.uvw_error_km_s / half_width - 1).max() < 0.03  # fraction
+    # The linear errors miss this: at least one component differs by more than 10%.
+    lin = space_velocity(*star, astrometric_covariance_mas=cov5, radial_velocity_error_km_s=3.0)
+    assert np.abs(lin.uvw_error_km_s / half_width - 1).max() > 0.1
+
+
+def test_monte_carlo_is_reproducible_and_auto_selects_low_snr():
+    kw = dict(parallax_error_mas=np.array([0.05, 0.5]), pm_ra_cosdec_error_mas_yr=0.1,
+              pm_dec_error_mas_yr=0.1, radial_velocity_error_km_s=1.0)  # fmt: skip
+    args = (10.0, 20.0, 1.0, 30.0, 40.0, 5.0)
+    a = space_velocity(*args, **kw, uncertainty_method="auto", monte_carlo_draws=2000, seed=3)
+    b = space_velocity(*args, **kw, uncertainty_method="auto", monte_carlo_draws=2000, seed=3)
+    assert np.array_equal(a.uvw_covariance_packed_km2_s2, b.uvw_covariance_packed_km2_s2)
+    mc = (a.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES) > 0
+    assert mc.tolist() == [False, True]  # SNR 20 linear, SNR 2 Monte Carlo
+    lin = space_velocity(*args, **kw)
+    assert np.array_equal(a.uvw_covariance_packed_km2_s2[0], lin.uvw_covariance_packed_km2_s2[0])
+
+
+# ---------------------------------------------------------------------------------------
+# Inverse transform
+# ---------------------------------------------------------------------------------------
+
+finite = dict(allow_nan=False, allow_infinity=False)
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    ra=st.floats(0.0, 360.0, **finite),
+    dec=st.floats(-89.9, 89.9, **finite),
+    u=st.floats(-500.0, 500.0, **finite),
+    v=st.floats(-500.0, 500.0, **finite),
+    w=st.floats(-500.0, 500.0, **finite),
+    dist=st.floats(1.0, 1e4, **finite),
+    lsr=st.booleans(),
+)
+def test_round_trip_velocity_observables_velocity(ra, dec, u, v, w, dist, lsr):
+    uvw = np.array([u, v, w])
+    obs = observables_from_velocity(ra, dec, uvw, distance_pc=dist, relative_to_lsr=lsr)
+    back = space_velocity(
+        ra, dec, None, obs.pm_ra_cosdec_mas_yr, obs.pm_dec_mas_yr,
+        obs.radial_velocity_km_s, distance_pc=dist, relative_to_lsr=lsr,
+    )  # fmt: skip
+    result = back.uvw_lsr_km_s if lsr else back.uvw_km_s
+    scale = max(np.linalg.norm(uvw), 1.0)
+    assert np.abs(result - uvw).max() <= 1e-9 * scale  # relative 1e-9
+
+
+def test_inverse_matches_astropy_for_radial_velocity_and_proper_motion():
+    s = _random_stars(50, seed=13)
+    fwd = _astropy_uvw(s["ra"], s["dec"], s["dist"], s["pmra"], s["pmdec"], s["rv"])
+    obs = observables_from_velocity(s["ra"], s["dec"], fwd, distance_pc=s["dist"])
+    # astropy's galactic frame is rotated ~1.2e-7 rad from ours: tolerance scales with speed.
+    speed = np.linalg.norm(fwd, axis=-1)
+    assert (np.abs(obs.radial_velocity_km_s - s["rv"]) < 2e-7 * speed).all()  # km/s
+    pm_tol = 2e-7 * speed / (constants.AU_PER_JULIAN_YEAR_KM_S * s["dist"] / 1000)  # mas/yr
+    assert (np.abs(obs.pm_ra_cosdec_mas_yr - s["pmra"]) < pm_tol).all()
+    assert (np.abs(obs.pm_dec_mas_yr - s["pmdec"]) < pm_tol).all()
+
+
+def test_inverse_flags_and_radial_velocity_without_distance():
+    obs = observables_from_velocity(10.0, 20.0, [[10.0, 0.0, 0.0]] * 3, [np.nan, -1.0, 5.0])
+    names = flag_names(obs.flags, KinematicsFlag)
+    assert names == [["parallax_missing"], ["parallax_not_positive"], []]
+    assert np.isnan(obs.pm_ra_cosdec_mas_yr[:2]).all()
+    assert np.isfinite(obs.radial_velocity_km_s).all()
+
+
+# ---------------------------------------------------------------------------------------
+# Secular quantities: perspective acceleration and closest approach
+# ---------------------------------------------------------------------------------------
+
+SIX_PARAMETER_STARS = [
+    # ra deg, dec deg, parallax mas, pm_ra* mas/yr, pm_dec mas/yr, rv km/s (invented stars)
+    (12.0, 55.0, 300.0, 2500.0, -1800.0, -110.0),
+    (200.0, -40.0, 80.0, -600.0, 900.0, 60.0),
+    (300.0, 5.0, 15.0, 40.0, -25.0, -300.0),
+    (75.0, 85.0, 120.0, -1000.0, 100.0, 20.0),
+]
+
+
+def _straight_line(star, t_yr):
+    """Hipparcos straight-line model (ESA 1997 Vol. 1 section 1.5.5) by direct vectors:
+    returns position in pc (3,) at times t_yr (...,)."""
+    ra, dec, plx, pmra, pmdec, rv = star
+    a = np.radians(ra)
+    d = np.radians(dec)
+    r = np.array([np.cos(d) * np.cos(a), np.cos(d) * np.sin(a), np.sin(d)])
+    p = np.array([-np.sin(a), np.cos(a), 0.0])
+    q = np.array([-np.sin(d) * np.cos(a), -np.sin(d) * np.sin(a), np.cos(d)])
+    dist = 1000.0 / plx
+    k = constants.AU_PER_JULIAN_YEAR_KM_S * dist / 1000.0  # km/s per mas/yr
+    v_km_s = p * k * pmra + q * k * pmdec + r * rv
+    v_pc_yr = v_km_s * constants.JULIAN_YEAR_S / constants.PC_KM
+    return dist * r + np.multiply.outer(t_yr, v_pc_yr)
+
+
+def _observables_from_position(x, v):
+    """Spherical observables from position (pc) and velocity (pc/yr) vectors."""
+    dist = np.linalg.norm(x)
+    r = x / dist
+    a = np.arctan2(x[1], x[0])
+    d = np.arcsin(r[2])
+    p = np.array([-np.sin(a), np.cos(a), 0.0])
+    q = np.array([-np.sin(d) * np.cos(a), -np.sin(d) * np.sin(a), np.cos(d)])
+    pmra = p @ v / dist * constants.MAS_PER_RAD
+    pmdec = q @ v / dist * constants.MAS_PER_RAD
+    rv = r @ v * constants.PC_KM / constants.JULIAN_YEAR_S
+    return pmra, pmdec, rv
+
+
+@pytest.mark.parametrize("star", SIX_PARAMETER_STARS)
+def test_perspective_acceleration_against_finite_differences(star):
+    r = space_velocity(*star)
+    v = _straight_line(star, 1.0) - _straight_line(star, 0.0)  # pc/yr (linear: exact)
+    h = 5.0  # yr; central differences, truncation error ~ h^2 * third derivative
+    plus = _observables_from_position(_straight_line(star, h), v)
+    minus = _observables_from_position(_straight_line(star, -h), v)
+    rate = [(a - b) / (2 * h) for a, b in zip(plus, minus, strict=True)]
+    scale_pm = max(abs(r.pm_ra_cosdec_rate_mas_yr2), abs(r.pm_dec_rate_mas_yr2))
+    tol_pm = 1e-5 * scale_pm + 1e-12  # mas/yr^2
+    assert abs(r.pm_ra_cosdec_rate_mas_yr2 - rate[0]) < tol_pm
+    assert abs(r.pm_dec_rate_mas_yr2 - rate[1]) < tol_pm
+    assert abs(r.radial_velocity_rate_km_s_yr - rate[2]) < 1e-5 * abs(rate[2])  # km/s/yr
+    # Rate of the total proper motion: d|mu|/dt.
+    tot = (np.hypot(*plus[:2]) - np.hypot(*minus[:2])) / (2 * h)
+    assert abs(r.pm_total_rate_mas_yr2 - tot) < tol_pm
+
+
+@pytest.mark.parametrize("star", SIX_PARAMETER_STARS)
+def test_perspective_acceleration_against_erfa_pmsafe(star):
+    # ERFA pmsafe (SOFA starpm) propagates the six parameters rigorously, including the
+    # light-time (Roemer) effect that our straight-line rates omit: agreement to ~v_rad/c.
+    ra, dec, plx, pmra, pmdec, rv = star
+    r = space_velocity(*star)
+    h = 5.0  # yr
+    out = []
+    for dt in (h, -h):
+        ra2, dec2, pr2, pd2, px2, rv2 = erfa.pmsafe(
+            np.radians(ra), np.radians(dec), np.radians(pmra / 3.6e6) / np.cos(np.radians(dec)),
+            np.radians(pmdec / 3.6e6), plx / 1000.0, rv, 2451545.0, 0.0, 2451545.0,
+            dt * 365.25,
+        )  # fmt: skip
+        out.append((pr2 * np.cos(dec2) * constants.MAS_PER_RAD, pd2 * constants.MAS_PER_RAD, rv2))
+    rates = [(a - b) / (2 * h) for a, b in zip(out[0], out[1], strict=True)]
+    tol_rel = 2e-3  # fraction: v_rad/c is up to 1e-3 here
+    scale_pm = max(abs(rates[0]), abs(rates[1]))
+    assert abs(r.pm_ra_cosdec_rate_mas_yr2 - rates[0]) < tol_rel * scale_pm
+    assert abs(r.pm_dec_rate_mas_yr2 - rates[1]) < tol_rel * scale_pm
+    assert abs(r.radial_velocity_rate_km_s_yr - rates[2]) < tol_rel * abs(rates[2])
+
+
+def test_radial_velocity_rate_is_vt_squared_over_distance():
+    r = space_velocity(0.0, 0.0, 100.0, 1000.0, 0.0, 0.0)  # 10 pc, v_t = 47.4 km/s
+    vt = constants.AU_PER_JULIAN_YEAR_KM_S * 10.0
+    expected = vt**2 / (10.0 * constants.PC_KM) * constants.JULIAN_YEAR_S  # km/s per yr
+    assert abs(r.radial_velocity_rate_km_s_yr - expected) < 1e-15
+
+
+@pytest.mark.parametrize("star", SIX_PARAMETER_STARS)
+def test_closest_approach_against_brute_force(star):
+    r = space_velocity(*star, epoch_jyear=2016.0)
+    t0 = float(r.closest_approach_time_yr)
+    # Brute force: distance on a wide grid, then successive refinement around the minimum.
+    span = max(abs(t0) * 3.0, 1e3)
+    lo, hi = -span, span
+    for _ in range(12):
+        t = np.linspace(lo, hi, 2001)
+        d = np.linalg.norm(_straight_line(star, t), axis=-1)
+        i = int(np.argmin(d))
+        lo, hi = t[max(i - 2, 0)], t[min(i + 2, t.size - 1)]
+    t_min = t[i]
+    d_min = d[i]
+    assert abs(t0 - t_min) < 1e-6 * max(abs(t_min), 1.0)  # yr
+    assert abs(r.closest_approach_distance_pc - d_min) < 1e-9 * (1000 / star[2])  # pc
+    assert abs(r.closest_approach_epoch_jyear - (2016.0 + t_min)) < 1e-6 * max(abs(t_min), 1)
+    speed = np.linalg.norm(
+        (_straight_line(star, 1.0) - _straight_line(star, 0.0)) * constants.PC_KM
+        / constants.JULIAN_YEAR_S
+    )  # fmt: skip
+    assert abs(r.closest_approach_speed_km_s - speed) < 1e-9 * speed  # km/s
+
+
+@pytest.mark.parametrize("star", SIX_PARAMETER_STARS[:3])
+def test_closest_approach_against_erfa_propagated_parallax(star):
+    # Brute-force maximum of the parallax propagated by erfa.pmsafe over a grid of epochs.
+    ra, dec, plx, pmra, pmdec, rv = star
+    r = space_velocity(*star)
+    t0 = float(r.closest_approach_time_yr)
+    grid = t0 + np.linspace(-0.05, 0.05, 4001) * max(abs(t0), 100.0)
+    px = erfa.pmsafe(
+        np.radians(ra), np.radians(dec), np.radians(pmra / 3.6e6) / np.cos(np.radians(dec)),
+        np.radians(pmdec / 3.6e6), plx / 1000.0, rv, 2451545.0, 0.0, 2451545.0, grid * 365.25,
+    )[4]  # fmt: skip
+    i = int(np.argmax(px))
+    # Light time shifts the epoch by about v_rad/c of the interval (erfa applies it, the
+    # straight-line model does not); the minimum distance differs by less than 1e-3.
+    assert abs(grid[i] - t0) < 2e-3 * abs(t0) + (grid[1] - grid[0])  # yr
+    assert abs(1.0 / px[i] - r.closest_approach_distance_pc) < 1e-3 * (1000.0 / plx)  # pc
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    ra=st.floats(0.0, 360.0, **finite),
+    dec=st.floats(-90.0, 90.0, **finite),
+    plx=st.floats(0.01, 1000.0, **finite),
+    pmra=st.floats(-5000.0, 5000.0, **finite),
+    pmdec=st.floats(-5000.0, 5000.0, **finite),
+    rv=st.floats(-1000.0, 1000.0, **finite),
+)
+def test_speed_is_frame_invariant(ra, dec, plx, pmra, pmdec, rv):
+    # Invariant: a rotation keeps the length of the velocity, |(U, V, W)| = |v|, and the
+    # transverse and radial parts are orthogonal: v^2 = v_t^2 + v_r^2.
+    r = space_velocity(ra, dec, plx, pmra, pmdec, rv)
+    speed = float(np.linalg.norm(r.uvw_km_s))
+    assert abs(speed - float(r.total_velocity_km_s)) <= 1e-12 * max(speed, 1.0)  # km/s
+    vt = np.hypot(r.transverse_velocity_ra_km_s, r.transverse_velocity_dec_km_s)
+    assert abs(vt - r.transverse_velocity_km_s) <= 1e-12 * max(float(vt), 1.0)  # km/s
+
+
+@settings(max_examples=100, deadline=None)
+@given(
+    ra=st.floats(0.0, 360.0, **finite),
+    dec=st.floats(-89.0, 89.0, **finite),
+    plx=st.floats(0.1, 100.0, **finite),
+)
+def test_zero_motion_gives_zero_velocity(ra, dec, plx):
+    # Limit: no proper motion and no radial velocity is no space velocity, and no
+    # perspective acceleration.
+    r = space_velocity(ra, dec, plx, 0.0, 0.0, 0.0)
+    assert np.abs(r.uvw_km_s).max() == 0.0
+    assert r.radial_velocity_rate_km_s_yr == 0.0
+    assert r.pm_total_rate_mas_yr2 == 0.0
+
+
+def test_galactic_velocity_lsr_and_properties():
+    r = galactic_velocity(10.0, 20.0, 5.0, 30.0, -40.0, 12.0, relative_to_lsr=True,
+                          parallax_error_mas=0.2, pm_ra_cosdec_error_mas_yr=0.1,
+                          pm_dec_error_mas_yr=0.1, radial_velocity_error_km_s=1.0)  # fmt: skip
+    assert np.abs(r.uvw_lsr_km_s - r.uvw_km_s - V_SUN_LSR_SCHOENRICH2010_KM_S).max() < 1e-12
+    cov = r.uvw_covariance_km2_s2
+    assert np.allclose(cov, cov.T, rtol=0, atol=0)
+    assert np.all(np.linalg.eigvalsh(cov) > 0)
+    assert np.abs(r.uvw_error_km_s - np.sqrt(np.diag(cov))).max() < 1e-15
+
+
+def test_monte_carlo_without_errors_gives_nulls_not_a_claim():
+    r = space_velocity(10.0, 20.0, 5.0, 30.0, -40.0, 12.0, uncertainty_method="monte_carlo",
+                       monte_carlo_draws=500, seed=1)  # fmt: skip
+    assert np.isnan(r.uvw_error_km_s).all()
+    assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING
+    assert not r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES
