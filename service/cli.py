@@ -55,7 +55,7 @@ def build_parser() -> argparse.ArgumentParser:
     openapi = sub.add_parser("openapi", help="write the OpenAPI 3.1 document")
     openapi.add_argument("--output", "-o", help="file to write (default: standard output)")
     openapi.set_defaults(func=_openapi)
-    from .batch import add_subcommands as add_batch_subcommands  # dask imported only on use
+    from .batch.cli import add_subcommands as add_batch_subcommands  # dask imported only on use
 
     add_batch_subcommands(sub)
     return parser

@@ -19,6 +19,7 @@ pq = pytest.importorskip("pyarrow.parquet")
 pytest.importorskip("dask.dataframe")
 
 from service import batch  # noqa: E402
+from service.batch import engine  # noqa: E402
 from service.core import propagation as core  # noqa: E402
 
 #: Rows of the large synthetic catalogue: 2 million (not more) with seven columns, to keep
@@ -283,7 +284,7 @@ def test_missing_required_column_fails_before_any_work(tmp_path, monkeypatch):
     def never(*args, **kwargs):  # pragma: no cover - failing the test is the point
         raise AssertionError("a partition was processed")
 
-    monkeypatch.setattr(batch, "process_partition", never)
+    monkeypatch.setattr(engine, "process_partition", never)
     with pytest.raises(batch.BatchInputError, match=r"'pmDE'.*pm_dec_mas_yr"):
         run(tmp_path / "cat.parquet", tmp_path / "out")
     assert not (tmp_path / "out").exists()

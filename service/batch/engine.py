@@ -1,59 +1,12 @@
-"""Whole-catalogue runs: the core applied partition by partition with Dask.
+"""The engine of batch runs: plans checked before any work, partitions, whole runs.
 
-A catalogue too large for one HTTP request (or one machine's memory) is processed as a
-dask.dataframe over Parquet (or CSV) files: each partition is read with only the columns a
-job needs, handed to the core's vectorised functions as numpy arrays, and written back as
-Parquet with the results and per-row flags. The same functions as the HTTP service, so the
-numbers are the same to the last bit; Dask only decides which partition runs where.
-
-Jobs
-----
-``propagate``
-    :func:`service.core.propagation.propagate` to one target epoch.
-
-Each job declares its input fields (canonical names with units, required or optional, valid
-ranges), its output columns and its flag enumerations; see :data:`JOBS` and
-``skydrift batch fields JOB``.
-
-Column mapping
---------------
-Inputs are found by canonical field name (``ra_deg``, ``pm_dec_mas_yr``, ...). A catalogue
-with other column names maps them, canonical name on the left::
-
-    --columns ra_deg=RA_ICRS,dec_deg=DE_ICRS,parallax_mas=Plx
-
-or with a JSON or TOML file of the same pairs (``--columns-file``; a TOML file may also put
-them under a ``[columns]`` table). Values must already be in the canonical units. Optional
-fields absent from the input are unknown for every row (the core's flags then say so); a
-required field absent, or any explicitly mapped column absent, stops the run before any work
-with a message naming the column.
-
-Per-row flags
--------------
-Every output row carries ``row_flags`` (:class:`RowFlag`: the row could not be computed at
-all, e.g. NaN in a required field; its results are then NaN and its job flags 0) and the
-job's own flag column (e.g. ``propagation_flags``, :class:`~service.core.propagation.
-PropagationFlag`). Flag columns are unsigned 32-bit bit masks; the metadata file lists every
-bit with its name and meaning, and :func:`flag_names` turns a column into lists of names.
-
-Metadata
---------
-Next to the Parquet parts, ``_skydrift_run.json`` records the job, the input and its column
-mapping, the epochs (as given, as Julian epoch TDB and ISO UTC), the model and frames, the
-flag meanings and counts, how the run was executed, and the versions of the service and of
-numpy, pyerfa (with its ERFA), astropy, astropy-iers-data, pandas, pyarrow and dask
-(on the workers too, for a cluster). Readers of the dataset skip files whose names begin
-with an underscore.
-
-Dask, pandas and pyarrow are the optional extra ``skydrift[batch]``; this module imports them
-only when a run starts, so the service itself does not need them.
+See the package documentation (:mod:`service.batch`) for what a run reads and writes.
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime as _dt
-import enum
 import importlib.metadata
 import json
 import pathlib
@@ -61,15 +14,14 @@ import platform
 import sys
 import time
 import warnings
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import __version__
-from .core import propagation as _propagation
-from .core.constants import C_KM_S
-from .core.epochs import EPOCH_MAX_JYEAR, EPOCH_MIN_JYEAR, label_epochs, parse_epoch
+from .. import __version__
+from .jobs import JOBS
+from .spec import FLAG_DTYPE, ROW_FLAG_MEANINGS, BatchInputError, BatchJob, RowFlag
 
 #: Name of the metadata file written beside the Parquet parts of the output.
 METADATA_FILE = "_skydrift_run.json"
@@ -89,9 +41,6 @@ RECORDED_DISTRIBUTIONS = (
     "distributed",
 )
 
-#: dtype of every flag column in the output (bit masks).
-FLAG_DTYPE = "uint32"
-
 INPUT_FORMATS = ("auto", "parquet", "csv")
 
 #: Default partition size when reading Parquet: Dask groups row groups up to this much
@@ -102,225 +51,6 @@ DEFAULT_PARQUET_BLOCKSIZE = "32MiB"
 LOCAL_SCHEDULERS = ("threads", "processes", "synchronous")
 
 _EXTRA_HINT = "the batch commands need the optional extra: pip install 'skydrift[batch]'"
-
-
-class BatchInputError(ValueError):
-    """The run cannot start: bad mapping, missing column, bad option. Says what to change."""
-
-
-class RowFlag(enum.IntFlag):
-    """Why a row of the input was not computed (column ``row_flags``)."""
-
-    #: A required field is NaN or null in this row: no result (NaN), job flags 0.
-    REQUIRED_VALUE_MISSING = 1
-    #: A field is infinite or outside its valid range (e.g. declination beyond +-90 deg):
-    #: no result (NaN), job flags 0.
-    VALUE_OUT_OF_RANGE = 2
-
-
-ROW_FLAG_MEANINGS = {
-    RowFlag.REQUIRED_VALUE_MISSING: "A required field is NaN or null: row not computed "
-    "(results NaN, job flags 0).",
-    RowFlag.VALUE_OUT_OF_RANGE: "A field is infinite or outside its valid range: row not "
-    "computed (results NaN, job flags 0).",
-}
-
-
-# ---------------------------------------------------------------------------------------
-# Job descriptions
-# ---------------------------------------------------------------------------------------
-
-
-@dataclass(frozen=True)
-class InputField:
-    """One input a job reads from a catalogue column.
-
-    Attributes
-    ----------
-    name : str
-        Canonical field name, unit included (``ra_deg``).
-    unit : str
-        Unit the column must be in.
-    description : str
-        What the field is.
-    required : bool
-        Required fields must be present as columns and finite in every computed row;
-        optional ones may be absent (unknown everywhere) or NaN (unknown in that row).
-    low, high : float
-        Valid closed range; values outside it, and infinities, flag the row
-        VALUE_OUT_OF_RANGE.
-    placeholder : float
-        Value handed to the core in rows that are not computed (keeps numpy quiet about
-        NaN or infinite arguments; those rows' results are discarded).
-    """
-
-    name: str
-    unit: str
-    description: str
-    required: bool
-    low: float = -np.inf
-    high: float = np.inf
-    placeholder: float = 0.0
-
-
-@dataclass(frozen=True)
-class OutputColumn:
-    """One result column: name, numpy dtype, unit and description."""
-
-    name: str
-    dtype: str
-    unit: str
-    description: str
-
-
-@dataclass(frozen=True)
-class BatchJob:
-    """A core computation packaged for partition-wise runs.
-
-    Attributes
-    ----------
-    name : str
-        Subcommand name.
-    summary : str
-        One line for the help text.
-    fields : tuple of InputField
-        Inputs, by canonical name.
-    outputs : tuple of OutputColumn
-        Result columns (flag columns included, dtype :data:`FLAG_DTYPE`).
-    flag_columns : mapping of str to (IntFlag type, meanings)
-        The job's flag columns: enumeration and {member: meaning}.
-    compute : callable
-        ``compute(inputs, params) -> {output name: ndarray}`` on one partition's arrays
-        (every input a float64 array of the partition's length, unknown = NaN).
-    frames : mapping
-        Reference frames of input and output, for the metadata.
-    """
-
-    name: str
-    summary: str
-    fields: tuple[InputField, ...]
-    outputs: tuple[OutputColumn, ...]
-    flag_columns: Mapping[str, tuple[type[enum.IntFlag], Mapping]]
-    compute: Callable[[dict, dict], dict]
-    frames: Mapping[str, str]
-
-    def field(self, name: str) -> InputField:
-        for f in self.fields:
-            if f.name == name:
-                return f
-        raise KeyError(name)
-
-
-_ASTROMETRY_FIELDS = (
-    InputField("ra_deg", "deg", "ICRS right ascension", True, 0.0, 360.0),
-    InputField("dec_deg", "deg", "ICRS declination", True, -90.0, 90.0),
-    InputField(
-        "parallax_mas",
-        "mas",
-        "parallax; NaN = unknown, zero or negative accepted and flagged",
-        False,
-        placeholder=np.nan,
-    ),
-    InputField(
-        "pm_ra_cosdec_mas_yr",
-        "mas/yr",
-        "proper motion in right ascension times cos(dec)",
-        True,
-    ),
-    InputField("pm_dec_mas_yr", "mas/yr", "proper motion in declination", True),
-    InputField(
-        "radial_velocity_km_s",
-        "km/s",
-        "radial velocity, positive receding; NaN = unknown",
-        False,
-        -C_KM_S,
-        C_KM_S,
-        placeholder=np.nan,
-    ),
-)
-
-_ASTROMETRY_OUTPUTS = (
-    ("ra_deg", "deg", "ICRS right ascension at the target epoch"),
-    ("dec_deg", "deg", "ICRS declination at the target epoch"),
-    ("parallax_mas", "mas", "parallax at the target epoch (NaN where unknown)"),
-    ("pm_ra_cosdec_mas_yr", "mas/yr", "proper motion in RA times cos(dec) at the target epoch"),
-    ("pm_dec_mas_yr", "mas/yr", "proper motion in declination at the target epoch"),
-    ("radial_velocity_km_s", "km/s", "radial velocity at the target epoch (NaN where unknown)"),
-)
-
-PROPAGATION_FLAG_MEANINGS = {
-    _propagation.PropagationFlag.PARALLAX_MISSING: "No parallax: distance unknown, radial "
-    "velocity not applied, parallax out unknown.",
-    _propagation.PropagationFlag.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no "
-    "distance; radial velocity not applied; parallax out is the formal value.",
-    _propagation.PropagationFlag.RADIAL_VELOCITY_MISSING: "No radial velocity: taken as zero "
-    "for the motion (no perspective acceleration); radial velocity out unknown.",
-    _propagation.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: "Total proper motion above 10.4 "
-    "arcsec/yr, more than any known star: probably a unit mistake.",
-    _propagation.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE: "Implied space velocity above "
-    "half the speed of light: inconsistent inputs.",
-    _propagation.PropagationFlag.AT_POLE: "At a celestial pole: right ascension undefined.",
-    _propagation.PropagationFlag.DISTANCE_REPLACED: "Light-time model: distance replaced by "
-    "a minimum value (SOFA pmsafe).",
-    _propagation.PropagationFlag.NOT_CONVERGED: "Light-time model: iteration did not converge.",
-    _propagation.PropagationFlag.RADIAL_VELOCITY_UNCHANGED: "Radial velocity given without a "
-    "usable parallax: passed through unchanged.",
-}
-
-#: Optional per-row catalogue epoch (for catalogues whose stars have their own epochs).
-CATALOGUE_EPOCH_FIELD = InputField(
-    "catalogue_epoch_jyear",
-    "Julian epoch (TDB), yr",
-    "per-row catalogue epoch; used only when mapped with --columns (otherwise the "
-    "--catalogue-epoch value holds for every row)",
-    False,
-    EPOCH_MIN_JYEAR,
-    EPOCH_MAX_JYEAR,
-    placeholder=2000.0,
-)
-
-
-def _compute_propagation(inputs: dict, params: dict) -> dict:
-    epoch_from = inputs.get("catalogue_epoch_jyear")
-    if epoch_from is None:
-        epoch_from = params["catalogue_epoch_jyear"]
-    result = _propagation.propagate(
-        inputs["ra_deg"],
-        inputs["dec_deg"],
-        inputs["parallax_mas"],
-        inputs["pm_ra_cosdec_mas_yr"],
-        inputs["pm_dec_mas_yr"],
-        inputs["radial_velocity_km_s"],
-        epoch_from,
-        params["target_epoch_jyear"],
-        model=params["model"],
-    )
-    ast = result.astrometry
-    out = {name: getattr(ast, name) for name, _, _ in _ASTROMETRY_OUTPUTS}
-    out["propagation_flags"] = result.flags
-    return out
-
-
-PROPAGATE = BatchJob(
-    name="propagate",
-    summary="move every star's astrometry to one target epoch",
-    fields=_ASTROMETRY_FIELDS + (CATALOGUE_EPOCH_FIELD,),
-    outputs=tuple(OutputColumn(n, "float64", u, d) for n, u, d in _ASTROMETRY_OUTPUTS)
-    + (
-        OutputColumn(
-            "propagation_flags", FLAG_DTYPE, "bit mask", "PropagationFlag bits (see metadata)"
-        ),
-    ),
-    flag_columns={
-        "propagation_flags": (_propagation.PropagationFlag, PROPAGATION_FLAG_MEANINGS),
-    },
-    compute=_compute_propagation,
-    frames={"input": "ICRS", "output": "ICRS"},
-)
-
-#: The jobs by subcommand name.
-JOBS: dict[str, BatchJob] = {PROPAGATE.name: PROPAGATE}
-
 
 # ---------------------------------------------------------------------------------------
 # Plans: what one run does, checked before any work
@@ -430,8 +160,9 @@ def make_plan(
     keep : sequence of str
         Input columns to copy to the output unchanged.
     params : dict
-        Job parameters; for ``propagate``: ``target_epoch_jyear``, ``model`` and (unless a
-        per-row epoch column is mapped) ``catalogue_epoch_jyear``.
+        Job parameters, completed and checked by the job (``propagate``:
+        ``target_epoch_jyear``, ``model`` and, unless a per-row epoch column is mapped,
+        ``catalogue_epoch_jyear``; ``velocity``: all optional).
     source : str
         How to name the input in messages.
 
@@ -448,8 +179,8 @@ def make_plan(
     Notes
     -----
     1. A field not in ``columns`` is looked up under its canonical name. Optional fields
-       found under neither are absent (unknown for every row); except the per-row catalogue
-       epoch, which is read only when mapped explicitly.
+       found under neither are absent (unknown for every row); fields marked
+       ``mapped_only`` (the per-row catalogue epoch) are read only when mapped explicitly.
     """
     if isinstance(job, str):
         try:
@@ -476,7 +207,7 @@ def make_plan(
     absent: list = []
     for f in job.fields:
         explicit = f.name in columns
-        if f is CATALOGUE_EPOCH_FIELD and not explicit:
+        if f.mapped_only and not explicit:
             continue
         src = columns.get(f.name, f.name)
         if src in input_columns:
@@ -498,33 +229,13 @@ def make_plan(
     for k in keep:
         if k not in input_columns:
             raise _missing(k, "asked to keep")
-    out_names = [c.name for c in job.outputs] + ["row_flags"]
-    clash = sorted(set(keep) & set(out_names))
+    clash = sorted(set(keep) & set(job.output_names))
     if clash:
         raise BatchInputError(
             f"kept column(s) {', '.join(clash)} would clash with result columns of the same "
             "name; keep them under another name in the input, or do not keep them"
         )
-    params = dict(params)
-    if job is PROPAGATE:
-        params.setdefault("model", "standard")
-        if params["model"] not in _propagation.MODELS:
-            raise BatchInputError(
-                f"unknown model {params['model']!r}; choose one of {_propagation.MODELS}"
-            )
-        if params.get("target_epoch_jyear") is None:
-            raise BatchInputError("a target epoch is needed (--target-epoch)")
-        per_row = "catalogue_epoch_jyear" in mapping
-        if per_row and params.get("catalogue_epoch_jyear") is not None:
-            raise BatchInputError(
-                "give the catalogue epoch either as one value (--catalogue-epoch) or as a "
-                "column (--columns catalogue_epoch_jyear=COLUMN), not both"
-            )
-        if not per_row and params.get("catalogue_epoch_jyear") is None:
-            raise BatchInputError(
-                "a catalogue epoch is needed: --catalogue-epoch (e.g. J2016.0) or a per-row "
-                "column (--columns catalogue_epoch_jyear=COLUMN)"
-            )
+    params = job.check_params(dict(params), mapping)
     return BatchPlan(job, mapping, tuple(absent), keep, params)
 
 
@@ -766,15 +477,6 @@ def _versions() -> dict:
     return out
 
 
-def _epoch_record(given, jyear) -> dict:
-    labels = label_epochs([jyear])
-    return {
-        "given": given,
-        "julian_epoch_tdb": float(jyear),
-        "iso_utc": labels.iso_utc[0],
-    }
-
-
 def flag_names(mask, column: str, job: BatchJob | str) -> list[list[str]]:
     """Names of the bits set in a flag column of a job's output, per row.
 
@@ -790,7 +492,7 @@ def flag_names(mask, column: str, job: BatchJob | str) -> list[list[str]]:
     -------
     list of list of str
     """
-    from .core.flags import flag_names as _names
+    from ..core.flags import flag_names as _names
 
     job = JOBS[job] if isinstance(job, str) else job
     flag_type = RowFlag if column == "row_flags" else job.flag_columns[column][0]
@@ -827,7 +529,7 @@ def run_batch(
     workers: int | None = None,
     overwrite: bool = False,
     progress: bool = False,
-    given_epochs: Mapping[str, object] | None = None,
+    given: Mapping[str, object] | None = None,
 ) -> RunSummary:
     """Run a job over a whole catalogue and write Parquet plus the metadata file.
 
@@ -861,9 +563,9 @@ def run_batch(
         Replace an existing output directory (otherwise a non-empty one stops the run).
     progress : bool
         Show a progress bar on standard error.
-    given_epochs : mapping, optional
-        The epochs as the user wrote them (``catalogue_epoch``, ``target_epoch``), recorded
-        in the metadata beside their Julian epochs.
+    given : mapping, optional
+        Parameters as the user wrote them (epoch strings: ``catalogue_epoch``,
+        ``target_epoch``), recorded in the metadata beside their Julian epochs.
 
     Returns
     -------
@@ -957,7 +659,7 @@ def run_batch(
         }
     wall = time.perf_counter() - t0
     metadata = _metadata(plan, facts, execution, started, wall, rows, flag_counts, dest)
-    metadata["parameters"] = _parameter_record(plan, given_epochs or {})
+    metadata["parameters"] = _parameter_record(plan, given or {})
     (dest / METADATA_FILE).write_text(json.dumps(metadata, indent=2, sort_keys=False) + "\n")
     return RunSummary(str(dest), rows, flag_counts, wall, metadata)
 
@@ -1003,27 +705,12 @@ def _progress_bar(show: bool):
 
 
 def _parameter_record(plan: BatchPlan, given: Mapping) -> dict:
-    params = dict(plan.params)
-    record: dict = {}
-    if plan.job is PROPAGATE:
-        record["model"] = params["model"]
-        if "catalogue_epoch_jyear" in plan.mapping:
-            record["catalogue_epoch"] = {
-                "column": plan.mapping["catalogue_epoch_jyear"],
-                "unit": CATALOGUE_EPOCH_FIELD.unit,
-            }
-        else:
-            record["catalogue_epoch"] = _epoch_record(
-                given.get("catalogue_epoch", params["catalogue_epoch_jyear"]),
-                params["catalogue_epoch_jyear"],
-            )
-        record["target_epoch"] = _epoch_record(
-            given.get("target_epoch", params["target_epoch_jyear"]),
-            params["target_epoch_jyear"],
-        )
+    job = plan.job
+    if job.describe_params is not None:
+        record = dict(job.describe_params(plan.params, plan.mapping, given))
     else:
-        record.update({k: v for k, v in params.items() if _jsonable(v)})
-    record["frames"] = dict(plan.job.frames)
+        record = {k: v for k, v in plan.params.items() if _jsonable(v)}
+    record["frames"] = dict(job.frames)
     return record
 
 
@@ -1070,6 +757,7 @@ def _metadata(plan, facts, execution, started, wall, rows, flag_counts, dest) ->
                 },
             },
         },
+        "data_tables": job.data_tables(),
         "flags": _flag_tables(job),
         "flag_counts": flag_counts,
         "execution": execution,
@@ -1080,150 +768,3 @@ def _metadata(plan, facts, execution, started, wall, rows, flag_counts, dest) ->
 def read_metadata(destination) -> dict:
     """The metadata of a finished run (the JSON file in its output directory)."""
     return json.loads((pathlib.Path(destination) / METADATA_FILE).read_text())
-
-
-# ---------------------------------------------------------------------------------------
-# Command line: ``skydrift batch JOB INPUT OUTPUT ...``
-# ---------------------------------------------------------------------------------------
-
-
-def add_subcommands(sub) -> None:
-    """Add the ``batch`` command and its job subcommands to the ``skydrift`` parser."""
-    batch = sub.add_parser(
-        "batch",
-        help="run a job over a whole catalogue (Parquet or CSV) with Dask",
-        description="Whole-catalogue runs on Dask: local by default, on a cluster with "
-        "--scheduler. Needs the optional extra skydrift[batch].",
-    )
-    jobs = batch.add_subparsers(dest="batch_job", required=True)
-    for job in JOBS.values():
-        p = jobs.add_parser(job.name, help=job.summary, description=job.summary)
-        p.add_argument("input", help="Parquet file, directory or glob, or CSV file(s)")
-        p.add_argument("output", help="output directory (Parquet parts and metadata)")
-        if job is PROPAGATE:
-            p.add_argument(
-                "--catalogue-epoch",
-                help="epoch of the input astrometry, e.g. J2016.0 (or map a per-row "
-                "column to catalogue_epoch_jyear)",
-            )
-            p.add_argument("--target-epoch", required=True, help="epoch to move the stars to")
-            p.add_argument(
-                "--model", default="standard", choices=_propagation.MODELS, help="motion model"
-            )
-        _common_options(p)
-        p.set_defaults(func=_cli_run, batch_job_spec=job)
-    fields = jobs.add_parser("fields", help="list a job's input fields and output columns")
-    fields.add_argument("job", choices=sorted(JOBS))
-    fields.set_defaults(func=_cli_fields)
-
-
-def _common_options(p) -> None:
-    p.add_argument(
-        "--columns",
-        help="column mapping, canonical=COLUMN pairs separated by commas "
-        "(e.g. ra_deg=RA_ICRS,dec_deg=DE_ICRS)",
-    )
-    p.add_argument("--columns-file", help="column mapping as a JSON or TOML file")
-    p.add_argument(
-        "--keep", default="", help="input columns to copy to the output (comma-separated)"
-    )
-    p.add_argument("--format", default="auto", choices=INPUT_FORMATS, help="input format")
-    p.add_argument("--blocksize", help="partition size for reading, e.g. 128MiB")
-    p.add_argument("--scheduler", help="address of a running Dask scheduler (default: run locally)")
-    p.add_argument(
-        "--local",
-        default="threads",
-        choices=LOCAL_SCHEDULERS,
-        help="local scheduler (default threads)",
-    )
-    p.add_argument("--workers", type=int, help="local workers (default: CPU count)")
-    p.add_argument("--overwrite", action="store_true", help="replace an existing output")
-    p.add_argument(
-        "--quiet", action="store_true", help="no progress bar (also off when not a terminal)"
-    )
-
-
-def _cli_fields(args) -> int:
-    job = JOBS[args.job]
-    print(f"{job.name}: {job.summary}")
-    print("input fields (map other column names with --columns NAME=COLUMN):")
-    for f in job.fields:
-        need = "required" if f.required else "optional"
-        print(f"  {f.name:24s} {need:8s} {f.unit:24s} {f.description}")
-    print("output columns:")
-    for c in job.outputs:
-        print(f"  {c.name:24s} {c.dtype:8s} {c.unit:24s} {c.description}")
-    print(f"  {'row_flags':24s} {FLAG_DTYPE:8s} {'bit mask':24s} RowFlag bits")
-    return 0
-
-
-def _cli_run(args) -> int:
-    job: BatchJob = args.batch_job_spec
-    try:
-        mapping = parse_column_mapping(args.columns, args.columns_file)
-        keep = [k.strip() for k in args.keep.split(",") if k.strip()]
-        params: dict = {}
-        given: dict = {}
-        if job is PROPAGATE:
-            from .core.epochs import EpochError
-
-            try:
-                if args.catalogue_epoch is not None:
-                    params["catalogue_epoch_jyear"] = parse_epoch(args.catalogue_epoch)
-                    given["catalogue_epoch"] = args.catalogue_epoch
-                params["target_epoch_jyear"] = parse_epoch(args.target_epoch)
-                given["target_epoch"] = args.target_epoch
-            except EpochError as exc:
-                raise BatchInputError(f"epoch: {exc}") from None
-            params["model"] = args.model
-        summary = run_batch(
-            job,
-            args.input,
-            args.output,
-            params=params,
-            columns=mapping,
-            keep=keep,
-            input_format=args.format,
-            blocksize=args.blocksize,
-            scheduler=args.scheduler,
-            local=args.local,
-            workers=args.workers,
-            overwrite=args.overwrite,
-            progress=not args.quiet and sys.stderr.isatty(),
-            given_epochs=given,
-        )
-    except BatchInputError as exc:
-        print(f"skydrift batch {job.name}: {exc}", file=sys.stderr)
-        return 2
-    notable = {
-        col: {k: v for k, v in counts.items() if v} for col, counts in summary.flag_counts.items()
-    }
-    print(
-        f"{summary.rows} rows -> {summary.destination} in {summary.wall_time_s:.1f} s "
-        f"(metadata: {METADATA_FILE})"
-    )
-    for col, counts in notable.items():
-        if counts:
-            text = ", ".join(f"{k} {v}" for k, v in counts.items())
-            print(f"  {col}: {text}")
-    return 0
-
-
-__all__ = [
-    "JOBS",
-    "METADATA_FILE",
-    "BatchInputError",
-    "BatchJob",
-    "BatchPlan",
-    "InputField",
-    "OutputColumn",
-    "RowFlag",
-    "RunSummary",
-    "build_output",
-    "flag_names",
-    "make_plan",
-    "parse_column_mapping",
-    "process_partition",
-    "read_metadata",
-    "run_batch",
-]
