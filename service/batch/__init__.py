@@ -28,6 +28,9 @@ fields absent from the input are unknown for every row (the core's flags then sa
 required field absent, or any explicitly mapped column absent, stops the run before any work
 with a message naming the column.
 
+Unknown values (NaN in the core's results) are written as Parquet nulls, which pandas and
+Dask read back as NaN.
+
 Per-row flags
 -------------
 Every output row carries ``row_flags`` (:class:`RowFlag`: the row could not be computed at
