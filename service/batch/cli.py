@@ -43,7 +43,7 @@ def _common_options(p) -> None:
     )
     p.add_argument("--format", default="auto", choices=INPUT_FORMATS, help="input format")
     p.add_argument(
-        "--blocksize", help="partition size for reading, e.g. 64MiB (default: 32MiB Parquet)"
+        "--blocksize", help="partition size for reading, e.g. 64MiB (default: 16MiB for Parquet)"
     )
     p.add_argument(
         "--scheduler",

@@ -43,11 +43,13 @@ RECORDED_DISTRIBUTIONS = (
 
 INPUT_FORMATS = ("auto", "parquet", "csv")
 
-#: Default partition size when reading Parquet: Dask groups row groups up to this much
-#: (uncompressed) data. The work per row is numeric, so partitions of a few hundred thousand
-#: rows keep every worker busy while a partition's arrays stay small (Dask's own default,
-#: 256 MiB, gives too few partitions for a few million rows).
-DEFAULT_PARQUET_BLOCKSIZE = "32MiB"
+#: Default partition size when reading Parquet (Dask's ``blocksize``): a file larger than
+#: twice this is split, its row groups gathered into partitions of up to this much
+#: uncompressed data (all of the file's columns counted); a smaller file is one partition.
+#: The work per row is numeric, so partitions of a few hundred thousand rows keep every
+#: worker busy while a partition's arrays stay small (Dask's own default, 256 MiB, gives
+#: too few partitions for a few million rows).
+DEFAULT_PARQUET_BLOCKSIZE = "16MiB"
 LOCAL_SCHEDULERS = ("threads", "processes", "synchronous")
 
 _EXTRA_HINT = "the batch commands need the optional extra: pip install 'skydrift[batch]'"
@@ -260,17 +262,37 @@ def _as_float(series) -> np.ndarray:
     return series.to_numpy(dtype=np.float64, na_value=np.nan)
 
 
+def _acceptable(x: np.ndarray, f) -> np.ndarray:
+    """True where a value can be computed with: in range, or NaN for an optional field."""
+    finite_bounds = np.isfinite(f.low) and np.isfinite(f.high)
+    with np.errstate(invalid="ignore"):
+        ok = (x >= f.low) & (x <= f.high) if finite_bounds else np.isfinite(x)
+    if not f.required:
+        ok |= np.isnan(x)
+    return ok
+
+
 def row_checks(plan: BatchPlan, inputs: dict) -> np.ndarray:
-    """:class:`RowFlag` bits per row from the input arrays of one partition."""
+    """:class:`RowFlag` bits per row from the input arrays of one partition.
+
+    Notes
+    -----
+    1. NaN in a required field: REQUIRED_VALUE_MISSING. Infinite, or outside the field's
+       valid range: VALUE_OUT_OF_RANGE. NaN in an optional field is "unknown", not bad.
+    2. One pass per field finds whether anything is wrong; the rows are classified only
+       when something is (rare in real catalogues).
+    """
     n = len(next(iter(inputs.values())))
     flags = np.zeros(n, dtype=np.uint32)
     for name, x in inputs.items():
         f = plan.job.field(name)
+        ok = _acceptable(x, f)
+        if ok.all():
+            continue
         nan = np.isnan(x)
         if f.required:
             flags[nan] |= np.uint32(RowFlag.REQUIRED_VALUE_MISSING)
-        bad = ~nan & ~(np.isfinite(x) & (x >= f.low) & (x <= f.high))
-        flags[bad] |= np.uint32(RowFlag.VALUE_OUT_OF_RANGE)
+        flags[~ok & ~nan] |= np.uint32(RowFlag.VALUE_OUT_OF_RANGE)
     return flags
 
 
@@ -322,7 +344,8 @@ def process_partition(frame, plan: BatchPlan):
             values = np.where(skipped, blank, values).astype(col.dtype, copy=False)
         data[col.name] = values
     data["row_flags"] = row_flags
-    return pd.DataFrame(data, index=frame.index)
+    # copy=False: one block per column, no copy into a consolidated 2-D block.
+    return pd.DataFrame(data, index=frame.index, copy=False)
 
 
 def output_meta(plan: BatchPlan, input_meta):
