@@ -98,10 +98,13 @@ def create_app(config: dict | None = None) -> Flask:
         resp.headers.setdefault("Cache-Control", "no-store")
         return resp
 
-    from . import docs, health, propagation, velocity
+    from . import constellations, docs, frames, health, observed, propagation, velocity
 
     health.register(app, api)
     propagation.register(app, api)
+    constellations.register(app, api)
     velocity.register(app, api)
+    frames.register(app, api)
+    observed.register(app, api)
     docs.register(app, api)
     return app

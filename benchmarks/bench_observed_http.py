@@ -1,0 +1,76 @@
+"""One star, observed place, one request: requests per second under gunicorn.
+
+POST /v1/observed against the bare constant endpoint of the same application and against a
+naive endpoint that uses astropy's AltAz transform per request, load from wrk on loopback.
+
+Run: ``PYTHONPATH=. python -m benchmarks.bench_observed_http`` (needs ``wrk``).
+"""
+
+from __future__ import annotations
+
+import requests
+
+from benchmarks import bench_http
+
+SITE = {"latitude_deg": 38.4127, "longitude_deg": -7.6543, "height_m": 1460.0}
+ATMOSPHERE = {"pressure_hpa": 850.0, "temperature_c": 6.0, "relative_humidity": 0.55,
+              "wavelength_um": 0.55}  # fmt: skip
+ONE_STAR = {
+    "stars": [bench_http.STAR],
+    "catalogue_epoch": 2016.0,
+    "instants": ["2026-12-02T22:30:00Z"],
+    "site": SITE,
+    "atmosphere": ATMOSPHERE,
+}
+
+
+def main() -> dict:
+    url, proc = _start()
+    try:
+        for path in ("/bench/constant", "/v1/observed", "/bench/naive_altaz"):
+            requests.post(url + path, json=ONE_STAR, timeout=30).raise_for_status()
+        rates = {
+            "constant": bench_http.wrk_rps(url, "/bench/constant", ONE_STAR),
+            "observed": bench_http.wrk_rps(url, "/v1/observed", ONE_STAR),
+            "naive_altaz": bench_http.wrk_rps(url, "/bench/naive_altaz", ONE_STAR),
+        }
+    finally:
+        bench_http.stop(proc)
+    print(f"constant endpoint      {rates['constant']:9.0f} requests/s")
+    print(f"POST /v1/observed      {rates['observed']:9.0f} requests/s")
+    print(f"naive astropy AltAz    {rates['naive_altaz']:9.0f} requests/s")
+    print(f"  observed / constant: {rates['observed'] / rates['constant']:.2f}")
+    print(f"  observed / naive:    {rates['observed'] / rates['naive_altaz']:.1f}x")
+    return rates
+
+
+def _start():
+    """gunicorn with the project's configuration, serving the app with the naive endpoint."""
+    import os
+    import subprocess
+    import sys
+    import time
+
+    port = bench_http._free_port()
+    env = dict(os.environ, SKYDRIFT_BIND=f"127.0.0.1:{port}", SKYDRIFT_ACCESS_LOG="/dev/null")
+    conf = str(bench_http.ROOT / "deploy" / "gunicorn.conf.py")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "gunicorn", "-c", conf, "benchmarks.observed_http_app:app"],
+        cwd=bench_http.ROOT,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    url = f"http://127.0.0.1:{port}"
+    for _ in range(300):
+        try:
+            if requests.get(url + "/ready", timeout=5).ok:
+                return url, proc
+        except requests.ConnectionError:
+            time.sleep(0.1)
+    proc.kill()
+    raise RuntimeError("service did not start")
+
+
+if __name__ == "__main__":
+    main()

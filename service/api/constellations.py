@@ -1,0 +1,653 @@
+"""/v1/constellations: IAU constellation membership, boundary distance, crossings, outlines."""
+
+from __future__ import annotations
+
+import erfa
+import marshmallow as ma
+import numpy as np
+from flask import current_app
+from flask_smorest import abort
+
+from ..core import constellations as core
+from ..core.constants import C_KM_S
+from ..core.flags import flag_names
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .examples import load_example
+from .tables import StarTableField
+
+blp = Blueprint(
+    "constellations",
+    __name__,
+    url_prefix="/v1/constellations",
+    description="Which IAU constellation a position lies in at an epoch, how far it is from "
+    "the boundary, when a moving star crosses one, and the constellations' outlines.",
+)
+
+#: Most stars in one crossing search (each star is followed through its whole window).
+MAX_CROSSING_STARS = 10_000
+
+LIST_HINT = "GET /v1/constellations lists the 88 IAU abbreviations and names"
+
+REDUCTION_DESCRIPTION = (
+    "Reduction of the position to the equinox B1875.0 of the boundaries. fk4 (default): the "
+    "FK4 system at equinox and epoch B1875.0, E-terms included, the system the boundaries "
+    "were drawn in. fk5: FK5 precessed with the IAU 2006 precession, as general-purpose "
+    "libraries do. fk5_iau1976: FK5 precessed with the IAU 1976 precession. They differ by "
+    "less than 0.6 arcsec; stars where fk4 and fk5 disagree are flagged reductions_disagree."
+)
+
+FLAG_MEANINGS = {
+    "near_boundary": "Within near_boundary_arcsec of a boundary, or within the table's "
+    "rounding of one.",
+    "table_rounding_ambiguous": "Within half a unit of the table's last digit of a boundary "
+    "(0.18 arcsec from a constant-Dec boundary, 2.7 arcsec x cos(dec) from a constant-RA one): "
+    "the published table cannot decide.",
+    "reductions_disagree": "The fk4 and fk5 reductions give different constellations.",
+    "parallax_unknown": "No usable parallax: the motion is applied as direction only (no "
+    "perspective effects; radial velocity not used).",
+    "nonpositive_parallax": "Parallax zero or negative: treated as unknown.",
+    "radial_velocity_unknown": "No radial velocity: taken as zero for the motion.",
+    "proper_motion_unknown": "No proper motion: the position was taken as fixed.",
+    "search_incomplete": "The crossing search reached its step limit before the end of the "
+    "window (a star grazing a boundary for a long time); crossings after the last one "
+    "listed may be missing.",
+}
+
+UNITS = {
+    "ra_deg": "deg",
+    "dec_deg": "deg",
+    "parallax_mas": "mas",
+    "pm_ra_cosdec_mas_yr": "mas/yr (includes cos(dec))",
+    "pm_dec_mas_yr": "mas/yr",
+    "radial_velocity_km_s": "km/s",
+    "margin_arcsec": "arcsec",
+    "ra_b1875_deg": "deg (equinox B1875.0, by the chosen reduction)",
+    "dec_b1875_deg": "deg (equinox B1875.0, by the chosen reduction)",
+    "epoch_jyear": "Julian epoch (TDB), years",
+}
+
+
+def _num(description, *, required=False, lo=None, hi=None, **range_kw):
+    validators = []
+    if lo is not None or hi is not None:
+        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
+    return ma.fields.Float(
+        required=required,
+        allow_none=not required,
+        validate=validators,
+        metadata={"description": description},
+    )
+
+
+def _star_fields(motion_required: bool) -> dict:
+    pm_text = "" if motion_required else " Null or absent: no motion applied."
+    return {
+        "id": ma.fields.Raw(
+            allow_none=True,
+            metadata={"description": "Your identifier for the star (string or integer), echoed."},
+        ),
+        "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
+        "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
+        "parallax_mas": _num(
+            "Parallax, mas. Null if unknown (the motion is then applied as direction only); "
+            "zero or negative values are accepted and flagged."
+        ),
+        "pm_ra_cosdec_mas_yr": _num(
+            "Proper motion in right ascension times cos(dec), mas/yr." + pm_text,
+            required=motion_required,
+        ),
+        "pm_dec_mas_yr": _num(
+            "Proper motion in declination, mas/yr." + pm_text, required=motion_required
+        ),
+        "radial_velocity_km_s": _num(
+            "Radial velocity, km/s, positive receding. Null if unknown (taken as zero).",
+            lo=-C_KM_S,
+            hi=C_KM_S,
+            min_inclusive=False,
+            max_inclusive=False,
+        ),
+    }
+
+
+#: One position, optionally with space motion, for a lookup.
+ConstellationStarSchema = ma.Schema.from_dict(
+    _star_fields(motion_required=False), name="ConstellationStarSchema"
+)
+#: One moving star for a crossing search.
+MovingStarSchema = ma.Schema.from_dict(_star_fields(motion_required=True), name="MovingStarSchema")
+
+
+class LookupRequestSchema(ma.Schema):
+    stars = StarTableField(
+        ConstellationStarSchema,
+        required=True,
+        metadata={"description": "Positions (ICRS): a list of records, or an object of columns."},
+    )
+    catalogue_epoch = EpochField(
+        load_default=None,
+        metadata={
+            "description": "Epoch of the given positions and motions. Needed when any star "
+            "has a proper motion and epoch differs from it."
+        },
+    )
+    epoch = EpochField(
+        load_default=None,
+        metadata={
+            "description": "Epoch at which membership is wanted: stars with a proper motion "
+            "are first moved to it (straight-line motion). Default: catalogue_epoch."
+        },
+    )
+    reduction = ma.fields.String(
+        load_default="fk4",
+        validate=ma.validate.OneOf(core.REDUCTIONS),
+        metadata={"description": REDUCTION_DESCRIPTION},
+    )
+    near_boundary_arcsec = ma.fields.Float(
+        load_default=core.DEFAULT_NEAR_BOUNDARY_ARCSEC,
+        validate=ma.validate.Range(min=0.0, max=36_000.0),
+        metadata={
+            "description": "Distance from a boundary, arcsec, within which a star is flagged "
+            "near_boundary (margins endpoint). Default 1."
+        },
+    )
+    layout = ma.fields.String(
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.OneOf(("records", "columns")),
+        metadata={
+            "description": "Response layout: one record per star, or columns. Default: the "
+            "layout of the request's stars."
+        },
+    )
+
+    @ma.validates_schema
+    def _epochs(self, data, **kwargs):
+        if data.get("epoch") is not None and data.get("catalogue_epoch") is None:
+            raise ma.ValidationError(
+                "give catalogue_epoch (the epoch of the positions) with epoch", "catalogue_epoch"
+            )
+
+
+class CrossingsRequestSchema(ma.Schema):
+    stars = StarTableField(
+        MovingStarSchema,
+        required=True,
+        metadata={
+            "description": "Stars with space motion (ICRS), as records or columns; at most "
+            f"{MAX_CROSSING_STARS} per request."
+        },
+    )
+    catalogue_epoch = EpochField(
+        required=True, metadata={"description": "Epoch of the given astrometry."}
+    )
+    start = EpochField(
+        required=True,
+        metadata={
+            "description": "Start of the time window (an epoch), at most 100,000 years from "
+            "catalogue_epoch."
+        },
+    )
+    end = EpochField(
+        required=True,
+        metadata={
+            "description": "End of the time window (an epoch), later than start and at most "
+            "100,000 years from catalogue_epoch."
+        },
+    )
+    max_step_yr = ma.fields.Float(
+        load_default=None,
+        allow_none=True,
+        metadata={
+            "description": "Largest step of the search, Julian years (default: window / 100). "
+            "At least one day; at most 10**6 steps per window. The search never steps over a "
+            "crossing whatever this is: each step is bounded by the star's distance from the "
+            "boundary and the fastest it can move."
+        },
+    )
+    reduction = ma.fields.String(
+        load_default="fk4",
+        validate=ma.validate.OneOf(core.REDUCTIONS),
+        metadata={"description": REDUCTION_DESCRIPTION},
+    )
+
+
+class OutlineQuerySchema(ma.Schema):
+    frame = ma.fields.String(
+        load_default="icrs",
+        validate=ma.validate.OneOf(core.OUTLINE_FRAMES),
+        metadata={
+            "description": "Frame of the coordinates: icrs (default); galactic; fk5 at "
+            "`equinox` (default J2000.0); fk4 at `equinox` (default B1950.0, E-terms "
+            "included); b1875 (the boundaries' own frame, by the reduction)."
+        },
+    )
+    equinox = EpochField(
+        load_default=None,
+        metadata={"description": "Equinox of an fk5 or fk4 frame (an epoch, e.g. J2050.0)."},
+    )
+    reduction = ma.fields.String(
+        load_default="fk4",
+        validate=ma.validate.OneOf(core.REDUCTIONS),
+        metadata={"description": REDUCTION_DESCRIPTION},
+    )
+    tolerance_arcsec = ma.fields.Float(
+        load_default=core.DEFAULT_OUTLINE_TOLERANCE_ARCSEC,
+        validate=ma.validate.Range(min=0.001, max=60.0),
+        metadata={
+            "description": "Largest distance, arcsec, between the true boundary in the frame "
+            "and the straight (lon, lat) lines joining the outline's vertices. Default 0.05."
+        },
+    )
+
+
+class ConstellationSchema(ma.Schema):
+    abbreviation = ma.fields.String(metadata={"description": "IAU abbreviation."})
+    name = ma.fields.String(metadata={"description": "IAU name."})
+    area_sr = ma.fields.Float(metadata={"description": "Solid angle, steradians."})
+    area_deg2 = ma.fields.Float(metadata={"description": "Solid angle, square degrees."})
+
+
+class ConstellationListSchema(ma.Schema):
+    count = ma.fields.Integer()
+    constellations = ma.fields.List(ma.fields.Nested(ConstellationSchema))
+
+
+class MembershipSchema(ma.Schema):
+    index = ma.fields.Integer(metadata={"description": "Position of the star in the request."})
+    id = ma.fields.Raw(allow_none=True)
+    constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
+    name = ma.fields.String(metadata={"description": "IAU name."})
+    constellation_fk4 = ma.fields.String(metadata={"description": "Answer of the fk4 reduction."})
+    constellation_fk5 = ma.fields.String(metadata={"description": "Answer of the fk5 reduction."})
+    reductions_disagree = ma.fields.Boolean()
+    margin_arcsec = ma.fields.Float(
+        metadata={"description": "Margins endpoint: distance to the nearest boundary, arcsec."}
+    )
+    across = ma.fields.String(
+        metadata={"description": "Margins endpoint: constellation across that boundary."}
+    )
+    near_boundary = ma.fields.Boolean(metadata={"description": "Margins endpoint."})
+    ra_b1875_deg = ma.fields.Float()
+    dec_b1875_deg = ma.fields.Float()
+    flags = ma.fields.List(ma.fields.String())
+
+
+class LookupResponseSchema(ma.Schema):
+    reduction = ma.fields.String()
+    epoch = ma.fields.Nested(EpochOutSchema, allow_none=True)
+    star_count = ma.fields.Integer()
+    layout = ma.fields.String()
+    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    stars = ma.fields.List(
+        ma.fields.Nested(MembershipSchema),
+        metadata={"description": "layout=records: one entry per star."},
+    )
+    columns = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.Raw(),
+        metadata={"description": "layout=columns: one array per field of the record form."},
+    )
+
+
+class CrossingSchema(ma.Schema):
+    epoch = ma.fields.Nested(EpochOutSchema)
+    from_constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
+    to_constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
+
+
+class StarCrossingsSchema(ma.Schema):
+    index = ma.fields.Integer()
+    id = ma.fields.Raw(allow_none=True)
+    constellation_at_start = ma.fields.String()
+    constellation_at_end = ma.fields.String()
+    crossings = ma.fields.List(ma.fields.Nested(CrossingSchema))
+    flags = ma.fields.List(ma.fields.String())
+
+
+class CrossingsResponseSchema(ma.Schema):
+    reduction = ma.fields.String()
+    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
+    start = ma.fields.Nested(EpochOutSchema)
+    end = ma.fields.Nested(EpochOutSchema)
+    epoch_precision_days = ma.fields.Float(
+        metadata={"description": "Crossing epochs are located to within this, days."}
+    )
+    star_count = ma.fields.Integer()
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    stars = ma.fields.List(ma.fields.Nested(StarCrossingsSchema))
+
+
+class GeoJsonFeatureSchema(ma.Schema):
+    type = ma.fields.String(metadata={"description": "Feature (RFC 7946)."})
+    geometry = ma.fields.Dict(
+        metadata={
+            "description": "Polygon, or MultiPolygon when the constellation has two parts "
+            "(Serpens) or is cut at the antimeridian; [longitude, latitude] in degrees, "
+            "longitude in -180..180, exterior rings counterclockwise (RFC 7946)."
+        }
+    )
+    properties = ma.fields.Dict()
+
+
+class GeoJsonCollectionSchema(ma.Schema):
+    type = ma.fields.String(metadata={"description": "FeatureCollection (RFC 7946)."})
+    features = ma.fields.List(ma.fields.Nested(GeoJsonFeatureSchema))
+
+
+# ------------------------------------------------------------------------------ helpers
+
+
+def _table_arrays(table):
+    c = table.columns
+    return (
+        c["ra_deg"],
+        c["dec_deg"],
+        c["parallax_mas"],
+        c["pm_ra_cosdec_mas_yr"],
+        c["pm_dec_mas_yr"],
+        c["radial_velocity_km_s"],
+    )
+
+
+def _locate(args, with_margin: bool):
+    table = args["stars"]
+    ra, dec, plx, pma, pmd, rv = _table_arrays(table)
+    cat_epoch = args.get("catalogue_epoch")
+    epoch = args.get("epoch")
+    if epoch is None:
+        epoch = cat_epoch
+    moving = np.isfinite(pma) | np.isfinite(pmd)
+    if epoch is not None and cat_epoch is not None and epoch != cat_epoch and np.any(moving):
+        res = core.locate_moving(
+            ra,
+            dec,
+            plx,
+            np.where(np.isfinite(pma), pma, np.where(moving, np.nan, 0.0)),
+            np.where(np.isfinite(pmd), pmd, np.where(moving, np.nan, 0.0)),
+            rv,
+            cat_epoch,
+            epoch,
+            reduction=args["reduction"],
+            with_margin=with_margin,
+            near_boundary_arcsec=args["near_boundary_arcsec"],
+        )
+        # only stars that moved carry the motion flags
+        motion_bits = (
+            core.ConstellationFlag.PARALLAX_UNKNOWN
+            | core.ConstellationFlag.NONPOSITIVE_PARALLAX
+            | core.ConstellationFlag.RADIAL_VELOCITY_UNKNOWN
+            | core.ConstellationFlag.PROPER_MOTION_UNKNOWN
+        )
+        flags = np.where(moving, res.flags, res.flags & ~np.uint16(motion_bits))
+    else:
+        res = core.locate(
+            ra,
+            dec,
+            reduction=args["reduction"],
+            with_margin=with_margin,
+            near_boundary_arcsec=args["near_boundary_arcsec"],
+        )
+        flags = res.flags
+    return table, res, flags, epoch
+
+
+def _membership_body(args, with_margin: bool):
+    table, res, flags, epoch = _locate(args, with_margin)
+    abbr = np.asarray(core.boundary_table().abbreviations)
+    names_all = np.asarray(core.boundary_table().names)
+    names = flag_names(flags, core.ConstellationFlag)
+    n = table.size
+    cols = {
+        "id": table.ids,
+        "constellation": abbr[res.index].tolist(),
+        "name": names_all[res.index].tolist(),
+        "constellation_fk4": abbr[res.index_fk4].tolist(),
+        "constellation_fk5": abbr[res.index_fk5].tolist(),
+        "reductions_disagree": (res.index_fk4 != res.index_fk5).tolist(),
+    }
+    if with_margin:
+        cols["margin_arcsec"] = res.margin_arcsec
+        cols["across"] = abbr[res.other_side_index].tolist()
+        cols["near_boundary"] = ((flags & int(core.ConstellationFlag.NEAR_BOUNDARY)) != 0).tolist()
+    cols["ra_b1875_deg"] = res.ra_b1875_deg
+    cols["dec_b1875_deg"] = res.dec_b1875_deg
+    cols["flags"] = names
+    layout = args["layout"] or table.form
+    body = {
+        "reduction": args["reduction"],
+        "epoch": None if epoch is None else epochs_out([epoch])[0],
+        "star_count": n,
+        "layout": layout,
+        "units": UNITS,
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+    }
+    if layout == "columns":
+        body["columns"] = cols
+    else:
+        lists = {k: (v.tolist() if isinstance(v, np.ndarray) else v) for k, v in cols.items()}
+        ids = lists.pop("id")
+        keys = list(lists)
+        body["stars"] = [
+            {"index": i, "id": None if ids is None else ids[i], **{k: lists[k][i] for k in keys}}
+            for i in range(n)
+        ]
+    return current_app.json.response(body)
+
+
+# ------------------------------------------------------------------------------ endpoints
+
+
+@blp.route("", methods=["GET"])
+@blp.response(200, ConstellationListSchema)
+def list_constellations():
+    """List the 88 IAU constellations.
+
+    Abbreviation, name and solid angle (from the boundary table at B1875.0) of each, in
+    alphabetical order of abbreviation. Use the abbreviations with the outline endpoint.
+    """
+    items = core.constellation_list()
+    return {"count": len(items), "constellations": items}
+
+
+@blp.route("/lookup", methods=["POST"])
+@blp.arguments(LookupRequestSchema(), example=load_example("constellations_lookup_request.json"))
+@blp.response(200, LookupResponseSchema)
+def lookup(args):
+    """Find the constellation of each position.
+
+    Positions are ICRS; stars with a proper motion are first moved from catalogue_epoch to
+    epoch (straight-line space motion). The position is reduced to the equinox B1875.0 of the
+    IAU boundaries (Delporte 1930; table of Roman 1987) by the chosen reduction, and the
+    answers of the fk4 and fk5 reductions are both reported. One position or a million: the
+    same endpoint.
+    """
+    return _membership_body(args, with_margin=False)
+
+
+@blp.route("/margins", methods=["POST"])
+@blp.arguments(LookupRequestSchema(), example=load_example("constellations_lookup_request.json"))
+@blp.response(200, LookupResponseSchema)
+def margins(args):
+    """Find the constellation of each position and its distance from the boundary.
+
+    As the lookup, plus the angular distance (arcsec, on the sphere) to the nearest boundary
+    arc, the constellation across it, and a near_boundary flag for stars within
+    near_boundary_arcsec of a boundary or within the table's rounding of one.
+    """
+    return _membership_body(args, with_margin=True)
+
+
+@blp.route("/crossings", methods=["POST"])
+@blp.arguments(
+    CrossingsRequestSchema(), example=load_example("constellations_crossings_request.json")
+)
+@blp.response(200, CrossingsResponseSchema)
+def crossings(args):
+    """Find every boundary crossing of moving stars within a time window.
+
+    Each star moves in a straight line (Hipparcos formulation) from its catalogue epoch. The
+    search steps through the window without ever stepping over a boundary: every step is
+    shorter than the star's distance from the nearest boundary divided by the fastest it can
+    move, so thin slivers of a constellation are not missed. Each crossing is located to
+    1e-4 day. The window may reach 100,000 years either side of the catalogue epoch.
+    """
+    table = args["stars"]
+    if table.size > MAX_CROSSING_STARS:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "stars",
+                    "message": f"{table.size} stars; a crossing search takes at most "
+                    f"{MAX_CROSSING_STARS} per request",
+                }
+            ],
+        )
+    cat, start, end = args["catalogue_epoch"], args["start"], args["end"]
+    if not end > start:
+        abort(422, errors=[{"field": "end", "message": "must be later than start"}])
+    for name, value in (("start", start), ("end", end)):
+        if abs(value - cat) > core.MAX_CROSSING_WINDOW_YR:
+            abort(
+                422,
+                errors=[
+                    {
+                        "field": name,
+                        "message": "must be within 100000 years of catalogue_epoch",
+                    }
+                ],
+            )
+    step = args.get("max_step_yr")
+    if step is not None:
+        if not np.isfinite(step) or step < core.MIN_CROSSING_STEP_YR:
+            abort(
+                422,
+                errors=[
+                    {"field": "max_step_yr", "message": "must be at least 1 day (0.0027379 yr)"}
+                ],
+            )
+        if (end - start) / step > 1e6:
+            abort(
+                422,
+                errors=[
+                    {
+                        "field": "max_step_yr",
+                        "message": "too small for the window: more than 10**6 steps",
+                    }
+                ],
+            )
+    ra, dec, plx, pma, pmd, rv = _table_arrays(table)
+    res = core.boundary_crossings(
+        ra,
+        dec,
+        plx,
+        pma,
+        pmd,
+        rv,
+        cat,
+        start,
+        end,
+        max_step_yr=step,
+        reduction=args["reduction"],
+    )
+    abbr = core.boundary_table().abbreviations
+    names = flag_names(res.flags, core.ConstellationFlag)
+    epochs = epochs_out(res.epoch_jyear) if res.epoch_jyear.size else []
+    per_star: list[list[dict]] = [[] for _ in range(table.size)]
+    for k in range(res.star.size):
+        per_star[int(res.star[k])].append(
+            {
+                "epoch": epochs[k],
+                "from_constellation": abbr[int(res.from_index[k])],
+                "to_constellation": abbr[int(res.to_index[k])],
+            }
+        )
+    ids = table.ids
+    stars = [
+        {
+            "index": i,
+            "id": None if ids is None else ids[i],
+            "constellation_at_start": abbr[int(res.start_index[i])],
+            "constellation_at_end": abbr[int(res.end_index[i])],
+            "crossings": per_star[i],
+            "flags": names[i],
+        }
+        for i in range(table.size)
+    ]
+    ends = epochs_out([cat, start, end])
+    body = {
+        "reduction": args["reduction"],
+        "catalogue_epoch": ends[0],
+        "start": ends[1],
+        "end": ends[2],
+        "epoch_precision_days": core.CROSSING_EPOCH_TOLERANCE_YR * 365.25,
+        "star_count": table.size,
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "stars": stars,
+    }
+    return current_app.json.response(body)
+
+
+def _outline_options(args):
+    frame, equinox = args["frame"], args.get("equinox")
+    if equinox is not None:
+        if frame == "fk4":  # the FK4 frame takes a Besselian equinox
+            equinox = float(erfa.epb(float(core.julian_epoch_to_jd(equinox)), 0.0))
+        elif frame not in ("fk5",):
+            abort(
+                422,
+                errors=[{"field": "equinox", "message": "only for frame fk5 or fk4"}],
+            )
+    return {
+        "frame": frame,
+        "equinox": equinox,
+        "reduction": args["reduction"],
+        "tolerance_arcsec": args["tolerance_arcsec"],
+    }
+
+
+def _geojson(body):
+    resp = current_app.json.response(body)
+    resp.mimetype = "application/geo+json"
+    return resp
+
+
+@blp.route("/<string:abbreviation>/outline", methods=["GET"])
+@blp.arguments(OutlineQuerySchema(), location="query")
+@blp.response(200, GeoJsonFeatureSchema, content_type="application/geo+json")
+def outline(args, abbreviation):
+    """Outline of one constellation as GeoJSON.
+
+    The boundary (arcs of constant RA and Dec at B1875.0) is sampled densely enough to stay
+    within tolerance_arcsec after transformation to the frame, and returned as an RFC 7946
+    Feature: longitudes in -180..180, cut at the antimeridian, closed over a pole it
+    contains, exterior rings counterclockwise. The abbreviation is case-insensitive.
+    """
+    try:
+        index = core.constellation_index(abbreviation)
+    except KeyError:
+        abort(
+            404,
+            message=f"no IAU constellation with abbreviation {abbreviation!r}; {LIST_HINT}",
+            errors=[{"field": "abbreviation", "message": f"unknown; {LIST_HINT}"}],
+        )
+    return _geojson(core.outline(index, **_outline_options(args)))
+
+
+@blp.route("/outlines", methods=["GET"])
+@blp.arguments(OutlineQuerySchema(), location="query")
+@blp.response(200, GeoJsonCollectionSchema, content_type="application/geo+json")
+def outlines(args):
+    """Outlines of all 88 constellations as one GeoJSON FeatureCollection.
+
+    Same options as the outline of one constellation. The outlines share their vertices
+    along common boundaries, so they tile the sphere without gaps or overlaps.
+    """
+    return _geojson(core.outline_collection(**_outline_options(args)))
+
+
+def register(app, api):
+    api.spec.components.schema("ConstellationStar", schema=ConstellationStarSchema)
+    api.spec.components.schema("MovingStar", schema=MovingStarSchema)
+    api.register_blueprint(blp)

@@ -1,0 +1,308 @@
+"""POST /v1/frames: astrometry with motion converted between celestial frames (and epochs)."""
+
+from __future__ import annotations
+
+import marshmallow as ma
+import numpy as np
+from flask import current_app
+from flask_smorest import abort
+
+from ..core import epochs as core_epochs
+from ..core import frames as core
+from ..core import propagation as core_prop
+from ..core.constants import C_KM_S
+from ..core.flags import flag_names
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .examples import load_example
+from .tables import StarTableField
+
+blp = Blueprint(
+    "frames",
+    __name__,
+    url_prefix="/v1",
+    description="Convert stellar astrometry with motion between ICRS, FK5, FK4 (B1950 and "
+    "other equinoxes, with E-terms), galactic and ecliptic frames, optionally to other epochs.",
+)
+
+VALUE_FIELDS = (
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
+
+UNITS = {
+    "ra_deg": "deg (longitude in the frame: RA, galactic l or ecliptic longitude)",
+    "dec_deg": "deg (latitude in the frame: Dec, galactic b or ecliptic latitude)",
+    "parallax_mas": "mas",
+    "pm_ra_cosdec_mas_yr": "mas per Julian year, along the longitude, includes cos(latitude)",
+    "pm_dec_mas_yr": "mas per Julian year, along the latitude",
+    "radial_velocity_km_s": "km/s",
+    "epochs": "Julian epoch (TDB), years",
+}
+
+
+def _num(description, *, required=False, lo=None, hi=None, **kw):
+    validators = (
+        [ma.validate.Range(min=lo, max=hi, **kw)] if lo is not None or hi is not None else []
+    )
+    return ma.fields.Float(
+        required=required,
+        allow_none=not required,
+        validate=validators,
+        metadata={"description": description},
+    )
+
+
+#: One star in the input frame.
+FrameStarSchema = ma.Schema.from_dict(
+    {
+        "id": ma.fields.Raw(
+            allow_none=True, metadata={"description": "Your identifier for the star, echoed."}
+        ),
+        "ra_deg": _num(
+            "Longitude in the input frame (RA, galactic l, ecliptic longitude), degrees.",
+            required=True,
+            lo=0.0,
+            hi=360.0,
+        ),
+        "dec_deg": _num(
+            "Latitude in the input frame (Dec, galactic b, ecliptic latitude), degrees.",
+            required=True,
+            lo=-90.0,
+            hi=90.0,
+        ),
+        "parallax_mas": _num("Parallax, mas. Null if unknown; <= 0 accepted and flagged."),
+        "pm_ra_cosdec_mas_yr": _num(
+            "Proper motion along the longitude times cos(latitude), mas per Julian year (also "
+            "for FK4: convert tropical-century catalogue values first).",
+            required=True,
+        ),
+        "pm_dec_mas_yr": _num(
+            "Proper motion along the latitude, mas per Julian year.", required=True
+        ),
+        "radial_velocity_km_s": _num(
+            "Radial velocity, km/s, positive receding. Null if unknown.", lo=-C_KM_S, hi=C_KM_S
+        ),
+    },
+    name="FrameStarSchema",
+)
+
+
+class EquinoxField(ma.fields.Field):
+    """An equinox: a year number, an epoch string ("B1950.0", "J2000.0") or "of_date"."""
+
+    def __init__(self, **kwargs):
+        kwargs.setdefault("metadata", {})
+        kwargs["metadata"].setdefault(
+            "description",
+            "Equinox. A number is a Besselian year for fk4 and a Julian year for fk5 and "
+            "ecliptic; strings like 'B1950.0' or 'J2000.0' are converted; 'of_date' (ecliptic "
+            "only) means the equinox of the epoch of the positions. Defaults: fk4 B1950.0, "
+            "fk5 and ecliptic J2000.0; none for icrs and galactic.",
+        )
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if isinstance(value, bool):
+            raise ma.ValidationError("must be a year or an epoch string")
+        if isinstance(value, int | float):
+            return ("number", float(value))
+        if isinstance(value, str):
+            text = value.strip()
+            if text.lower() == "of_date":
+                return ("of_date", None)
+            try:
+                jyear = core_epochs.parse_epoch(text)
+            except core_epochs.EpochError as exc:
+                raise ma.ValidationError(str(exc)) from None
+            return ("jyear", jyear)
+        raise ma.ValidationError("must be a year or an epoch string")
+
+
+def equinox_field_to_openapi(self, field, **kwargs) -> dict:
+    if isinstance(field, EquinoxField):
+        return {"type": ["string", "number"]}
+    return {}
+
+
+class FrameSpecSchema(ma.Schema):
+    name = ma.fields.String(
+        required=True,
+        validate=ma.validate.OneOf(core.FRAME_NAMES),
+        metadata={"description": "icrs, fk5, fk4, galactic or ecliptic."},
+    )
+    equinox = EquinoxField(load_default=None, allow_none=True)
+
+
+def frame_from_spec(spec: dict, field: str) -> core.Frame:
+    """FrameSpecSchema data -> core Frame (422 naming ``field`` on a bad combination)."""
+    name = spec["name"]
+    kind, value = spec.get("equinox") or (None, None)
+    try:
+        if kind is None:
+            return core.make_frame(name)
+        if kind == "of_date":
+            return core.make_frame(name, "of_date")
+        if name == "fk4":
+            bes = value if kind == "number" else core_epochs.julian_epoch_to_besselian_epoch(value)
+            return core.make_frame(name, round(float(bes), 9))
+        return core.make_frame(name, round(float(value), 9))
+    except ValueError as exc:
+        abort(422, errors=[{"field": f"{field}.equinox", "message": str(exc)}])
+
+
+class FramesRequestSchema(ma.Schema):
+    stars = StarTableField(
+        FrameStarSchema,
+        required=True,
+        metadata={"description": "The stars: a list of records, or an object of columns."},
+    )
+    catalogue_epoch = EpochField(
+        required=True,
+        metadata={"description": "Epoch at which the given positions hold (e.g. 'B1950.0')."},
+    )
+    from_frame = ma.fields.Nested(FrameSpecSchema, required=True)
+    to_frame = ma.fields.Nested(FrameSpecSchema, load_default=lambda: {"name": "icrs"})
+    target_epochs = ma.fields.List(
+        EpochField(),
+        validate=ma.validate.Length(min=1),
+        metadata={
+            "description": "Epochs for the output (optional; default the catalogue epoch). "
+            "The stars are converted to ICRS at the catalogue epoch, moved with the standard "
+            "straight-line model, and converted to the output frame at each target epoch."
+        },
+    )
+
+
+class FrameResultSchema(ma.Schema):
+    index = ma.fields.Integer()
+    id = ma.fields.Raw(allow_none=True)
+    flags = ma.fields.List(ma.fields.String())
+    at_epochs = ma.fields.List(ma.fields.Dict())
+
+
+class FramesResponseSchema(ma.Schema):
+    from_frame = ma.fields.String()
+    to_frame = ma.fields.String()
+    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
+    epochs = ma.fields.List(ma.fields.Nested(EpochOutSchema))
+    star_count = ma.fields.Integer()
+    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    methods = ma.fields.List(ma.fields.String())
+    stars = ma.fields.List(ma.fields.Nested(FrameResultSchema))
+
+
+FLAG_MEANINGS = {
+    "missing_parallax": "No parallax: treated as infinitely distant; parallax out unknown.",
+    "non_positive_parallax": "Parallax zero or negative: treated as infinitely distant.",
+    "missing_radial_velocity": "No radial velocity: zero for the geometry; out unknown.",
+    "missing_proper_motion": "No proper motion: taken as zero.",
+}
+
+METHODS = [
+    "FK4 B1950.0 <-> FK5 J2000.0: Standish (1982) / Aoki et al. (1983), IAU SOFA fk425 "
+    "(reverse: fk524 refined to invert fk425 exactly).",
+    "FK4 other equinoxes: E-terms removed, Newcomb precession (Kinoshita/Andoyer), E-terms "
+    "restored.",
+    "FK5 <-> ICRS: Hipparcos frame rotation and spin (SOFA fk52h/h2fk5, fk5hz).",
+    "FK5 other equinoxes: IAU 1976 precession. Ecliptic: IAU 2006 (SOFA ecm06). Galactic: "
+    "Hipparcos definition (SOFA icrs2g).",
+]
+
+
+def _o(x):
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+@blp.route("/frames", methods=["POST"])
+@blp.arguments(FramesRequestSchema(), example=load_example("frames_request.json"))
+@blp.response(200, FramesResponseSchema)
+def convert(args):
+    """Convert stars between frames, optionally to other epochs.
+
+    Position, proper motion, parallax and radial velocity are converted together. A legacy
+    FK4 B1950.0 catalogue entry comes out as ICRS at any epoch in one request: give
+    ``from_frame`` fk4, ``catalogue_epoch`` B1950.0 and the ``target_epochs`` wanted.
+    """
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    table = args["stars"]
+    n = table.size
+    src = frame_from_spec(args["from_frame"], "from_frame")
+    dst = frame_from_spec(args["to_frame"], "to_frame")
+    epoch0 = float(args["catalogue_epoch"])
+    targets = args.get("target_epochs")
+    targets = np.array([epoch0] if targets is None else targets, dtype=float)
+    if targets.size > settings.max_epochs or n * targets.size > settings.max_results:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "target_epochs",
+                    "message": f"{n} stars x {targets.size} epochs exceeds the limits "
+                    "(SKYDRIFT_MAX_EPOCHS, SKYDRIFT_MAX_RESULTS)",
+                }
+            ],
+        )
+    c = table.columns
+    vals = [c[f] for f in VALUE_FIELDS]
+    icrs = core.make_frame("icrs")
+    to_icrs = core.convert(*vals, epoch0, src, icrs)
+    flags = to_icrs.flags.astype(np.int64)
+    moved = core_prop.propagate(
+        to_icrs.ra_deg[:, None],
+        to_icrs.dec_deg[:, None],
+        to_icrs.parallax_mas[:, None],
+        to_icrs.pm_ra_cosdec_mas_yr[:, None],
+        to_icrs.pm_dec_mas_yr[:, None],
+        to_icrs.radial_velocity_km_s[:, None],
+        epoch0,
+        targets[None, :],
+    ).astrometry
+    out = core.convert(
+        moved.ra_deg,
+        moved.dec_deg,
+        moved.parallax_mas,
+        moved.pm_ra_cosdec_mas_yr,
+        moved.pm_dec_mas_yr,
+        moved.radial_velocity_km_s,
+        targets[None, :],
+        icrs,
+        dst,
+    )
+    names = flag_names(flags, core.FrameFlag)
+    values = [getattr(out, f) for f in VALUE_FIELDS]
+    ids = table.ids
+    stars = [
+        {
+            "index": i,
+            "id": None if ids is None else ids[i],
+            "flags": names[i],
+            "at_epochs": [
+                {f: _o(v[i, k]) for f, v in zip(VALUE_FIELDS, values, strict=True)}
+                for k in range(targets.size)
+            ],
+        }
+        for i in range(n)
+    ]
+    body = {
+        "from_frame": src.describe(),
+        "to_frame": dst.describe(),
+        "catalogue_epoch": epochs_out([epoch0])[0],
+        "epochs": epochs_out(targets),
+        "star_count": n,
+        "units": UNITS,
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "methods": METHODS,
+        "stars": stars,
+    }
+    return current_app.json.response(body)
+
+
+def register(app, api):
+    api.ma_plugin.converter.add_attribute_function(equinox_field_to_openapi)
+    api.register_blueprint(blp)

@@ -1,0 +1,470 @@
+"""POST /v1/observed: where the telescope must point, with Earth orientation and safety.
+
+The figures about the Sun and the horizon are advisory only: the facility's own interlocks
+and safety rules decide whether a telescope may point somewhere.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import pathlib
+
+import marshmallow as ma
+import numpy as np
+from flask import current_app
+from flask_smorest import abort
+
+from ..core import frames as core_frames
+from ..core import observed as core
+from ..core import propagation as core_prop
+from ..core.flags import flag_names
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .examples import DEMO_DIR, load_example
+from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
+from .tables import StarTableField
+
+ADVISORY = (
+    "Advisory only: the Sun altitude, Sun separation and horizon figures are for information. "
+    "The facility's own interlocks and safety rules decide whether the telescope may point "
+    "there."
+)
+
+blp = Blueprint(
+    "observed",
+    __name__,
+    url_prefix="/v1",
+    description="Astrometric, apparent and observed places of stars at a site and instants "
+    "(IAU 2006/2000A as in IAU SOFA), with Earth-orientation provenance and advisory safety "
+    "figures. " + ADVISORY,
+)
+
+#: Place quantities per star and instant, with units.
+PLACE_FIELDS = {
+    "azimuth_deg": "deg, north = 0, east = 90",
+    "altitude_deg": "deg, observed (refracted)",
+    "zenith_distance_deg": "deg, observed (refracted)",
+    "hour_angle_deg": "deg, observed, west positive, -180 to 180",
+    "observed_dec_deg": "deg, observed declination",
+    "observed_ra_cio_deg": "deg, observed right ascension referred to the CIO",
+    "parallactic_angle_deg": "deg (IAU SOFA hd2pa convention)",
+    "airmass": "dimensionless, Young (1994); null below the horizon",
+    "refraction_arcsec": "arcsec, unrefracted minus observed zenith distance",
+    "sun_separation_deg": "deg, target to the Sun's centre (advisory)",
+    "astrometric_ra_deg": "deg, geocentric astrometric place (ICRS)",
+    "astrometric_dec_deg": "deg, geocentric astrometric place (ICRS)",
+    "apparent_ra_deg": "deg, geocentric apparent, true equator and equinox of date",
+    "apparent_dec_deg": "deg, geocentric apparent declination of date",
+    "apparent_ra_cio_deg": "deg, geocentric apparent RA referred to the CIO (CIRS)",
+}
+
+FLAG_MEANINGS = {
+    "missing_parallax": "No parallax: no parallax shift applied.",
+    "non_positive_parallax": "Parallax zero or negative: no parallax shift applied.",
+    "missing_radial_velocity": "No radial velocity: taken as zero.",
+    "missing_proper_motion": "No proper motion: taken as zero.",
+    "below_horizon_limit": "Target below the horizon limit (advisory).",
+    "within_sun_avoidance": "Target closer to the Sun than the avoidance angle (advisory).",
+    "sun_above_horizon": "The Sun is above the horizon at the site.",
+    "earth_orientation_predicted": "UT1-UTC and polar motion are IERS predictions.",
+    "earth_orientation_unavailable": "Instant outside the Earth-orientation tables: UT1-UTC "
+    "and polar motion taken as zero (errors up to about 15 arcsec).",
+    "leap_seconds_extrapolated": "Instant beyond the leap-second table: TAI-UTC taken as its "
+    "last value.",
+    "airmass_undefined": "Target below the geometric horizon: no airmass.",
+}
+
+
+@functools.lru_cache(maxsize=4)
+def load_sites(path: str | None) -> dict:
+    """The operator's site list: {name: {latitude_deg, longitude_deg, height_m, ...}}.
+
+    ``path`` is the SKYDRIFT_SITES_FILE setting; empty means the demo scenario's list
+    (fictional observatory). A JSON object with a ``sites`` mapping, or the mapping itself.
+    """
+    file = pathlib.Path(path) if path else DEMO_DIR / "observatory.json"
+    try:
+        data = json.loads(file.read_text())
+    except (OSError, ValueError):
+        return {}
+    sites = data.get("sites", data) if isinstance(data, dict) else {}
+    return {k: v for k, v in sites.items() if isinstance(v, dict)}
+
+
+def _num(description, *, lo=None, hi=None, **kw):
+    validators = (
+        [ma.validate.Range(min=lo, max=hi, **kw)] if lo is not None or hi is not None else []
+    )
+    return ma.fields.Float(
+        load_default=None,
+        allow_none=True,
+        validate=validators,
+        metadata={"description": description},
+    )
+
+
+class SiteField(ma.fields.Field):
+    """A site: a configured name, or an object with latitude, longitude and height."""
+
+    def __init__(self, **kwargs):
+        kwargs.setdefault("metadata", {})
+        kwargs["metadata"].setdefault(
+            "description",
+            "Observing site: the name of a site in the operator's list (SKYDRIFT_SITES_FILE; "
+            "by default the demo scenario's fictional observatory 'kestrel-ridge'), or an "
+            "object {latitude_deg (geodetic, -90 to 90), longitude_deg (east positive), "
+            "height_m (above the WGS84 ellipsoid)}.",
+        )
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if isinstance(value, str):
+            return value
+        if isinstance(value, dict):
+            allowed = {"latitude_deg", "longitude_deg", "height_m", "name"}
+            unknown = set(value) - allowed
+            if unknown:
+                raise ma.ValidationError(
+                    {k: ["unknown field; accepted: " + ", ".join(sorted(allowed))] for k in unknown}
+                )
+            return value
+        raise ma.ValidationError("must be a site name or an object with latitude_deg etc.")
+
+
+def site_field_to_openapi(self, field, **kwargs) -> dict:
+    if isinstance(field, SiteField):
+        return {"type": ["string", "object"]}
+    return {}
+
+
+class AtmosphereSchema(ma.Schema):
+    pressure_hpa = _num(
+        "Air pressure at the site, hPa. Null or absent: estimated from the site height with "
+        "the US Standard Atmosphere 1976. 0 turns refraction off.",
+        lo=core.PRESSURE_RANGE_HPA[0],
+        hi=core.PRESSURE_RANGE_HPA[1],
+    )
+    temperature_c = _num(
+        "Air temperature, degrees Celsius. Null: standard atmosphere at the site height.",
+        lo=core.TEMPERATURE_RANGE_C[0],
+        hi=core.TEMPERATURE_RANGE_C[1],
+    )
+    relative_humidity = _num("Relative humidity, 0 to 1. Null: 0.5.", lo=0.0, hi=1.0)
+    wavelength_um = _num(
+        "Effective wavelength, micrometres: 0.3-2.0 (optical/infrared) or 100-1000000 "
+        "(radio). Null: 0.55.",
+        lo=core.WAVELENGTH_OPTICAL_UM[0],
+        hi=core.WAVELENGTH_RADIO_UM[1],
+    )
+
+    @ma.validates("wavelength_um")
+    def _wavelength_gap(self, value, **kwargs):
+        if (
+            value is not None
+            and core.WAVELENGTH_OPTICAL_UM[1] < value < core.WAVELENGTH_RADIO_UM[0]
+        ):
+            raise ma.ValidationError(
+                "must be 0.3-2.0 (optical/infrared) or 100-1000000 (radio) micrometres"
+            )
+
+
+class ObservedRequestSchema(ma.Schema):
+    stars = StarTableField(
+        FrameStarSchema,
+        required=True,
+        metadata={"description": "The stars (records or columns), astrometry at catalogue_epoch."},
+    )
+    catalogue_epoch = EpochField(
+        required=True, metadata={"description": "Epoch of the given astrometry."}
+    )
+    frame = ma.fields.Nested(
+        FrameSpecSchema,
+        load_default=lambda: {"name": "icrs"},
+        metadata={"description": "Frame of the given astrometry (default ICRS)."},
+    )
+    instants = ma.fields.List(
+        EpochField(),
+        required=True,
+        validate=ma.validate.Length(min=1),
+        metadata={
+            "description": "Instants of observation (ISO 8601 UTC such as "
+            "'2026-12-02T22:30:00Z', or any epoch form). Many stars at one instant, one star "
+            "at many instants (a track), or every star at every instant."
+        },
+    )
+    site = SiteField(required=True)
+    atmosphere = ma.fields.Nested(AtmosphereSchema, load_default=dict)
+    horizon_limit_deg = _num(
+        "Altitude below which a target is flagged, degrees (advisory). Default: the site's "
+        "own limit, else SKYDRIFT_HORIZON_LIMIT_DEG.",
+        lo=-90.0,
+        hi=90.0,
+    )
+    sun_avoidance_deg = _num(
+        "Sun separation below which a target is flagged, degrees (advisory). Default "
+        "SKYDRIFT_SUN_AVOIDANCE_DEG (30, a placeholder the operator must set).",
+        lo=0.0,
+        hi=180.0,
+    )
+
+
+class InstantOutSchema(ma.Schema):
+    epoch = ma.fields.Nested(EpochOutSchema)
+    utc_jd = ma.fields.List(ma.fields.Float(), metadata={"description": "UTC two-part JD."})
+    earth_orientation = ma.fields.Dict(
+        metadata={
+            "description": "table, status (measured, predicted or unavailable), source, "
+            "ut1_utc_s, pm_x_arcsec, pm_y_arcsec, accuracy_class, pointing_error_arcsec."
+        }
+    )
+    sun = ma.fields.Dict(metadata={"description": "altitude_deg and azimuth_deg (advisory)."})
+
+
+class ObservedResponseSchema(ma.Schema):
+    advisory = ma.fields.String()
+    site = ma.fields.Dict()
+    refraction = ma.fields.Dict()
+    limits = ma.fields.Dict()
+    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
+    input_frame = ma.fields.String()
+    instants = ma.fields.List(ma.fields.Nested(InstantOutSchema))
+    earth_orientation_tables = ma.fields.Dict()
+    star_count = ma.fields.Integer()
+    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    stars = ma.fields.List(
+        ma.fields.Dict(),
+        metadata={"description": "One entry per star: index, id, at_instants (one per instant)."},
+    )
+
+
+def _o(x):
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+def _core_error(exc: core.ObservedInputError):
+    abort(422, errors=[{"field": exc.field, "message": exc.message}])
+
+
+@blp.route("/observed", methods=["POST"])
+@blp.arguments(ObservedRequestSchema(), example=load_example("observed_request.json"))
+@blp.response(200, ObservedResponseSchema)
+def observed(args):
+    """Observed places at a site: azimuth, altitude, hour angle, parallactic angle, airmass.
+
+    The stars' catalogue astrometry is first moved to each instant (standard straight-line
+    model), then carried through the IAU 2006/2000A chain of the SOFA routines (light
+    deflection, aberration, precession-nutation, Earth rotation, polar motion, diurnal
+    aberration, refraction). Each instant states the Earth-orientation table used, whether
+    its values were measured, predicted or unavailable, and the accuracy class. The Sun
+    altitude, Sun separation and horizon flags are advisory: the facility's own interlocks and
+    safety rules decide.
+    """
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    table = args["stars"]
+    n = table.size
+    instants = np.asarray(args["instants"], dtype=float)
+    m = instants.size
+    if m > settings.max_epochs or n * m > settings.max_results:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "instants",
+                    "message": f"{n} stars x {m} instants exceeds the limits "
+                    "(SKYDRIFT_MAX_EPOCHS, SKYDRIFT_MAX_RESULTS)",
+                }
+            ],
+        )
+    bad = np.flatnonzero(
+        (instants < core.SUPPORTED_EPOCH_MIN) | (instants >= core.SUPPORTED_EPOCH_MAX)
+    )
+    if bad.size:
+        abort(
+            422,
+            errors=[
+                {
+                    "field": f"instants[{int(i)}]",
+                    "message": f"must lie between {core.SUPPORTED_EPOCH_MIN:.0f} and "
+                    f"{core.SUPPORTED_EPOCH_MAX:.0f} (supported span of the observed place)",
+                }
+                for i in bad[:50]
+            ],
+        )
+    sites = load_sites(settings.sites_file or None)
+    try:
+        site = core.resolve_site(args["site"], sites)
+        atm = core.make_atmosphere(**args["atmosphere"])
+    except core.ObservedInputError as exc:
+        _core_error(exc)
+    horizon = args.get("horizon_limit_deg")
+    if horizon is None:
+        own = sites.get(site.name or "", {}).get("horizon_limit_deg")
+        horizon = settings.horizon_limit_deg if own is None else float(own)
+    avoidance = args.get("sun_avoidance_deg")
+    if avoidance is None:
+        avoidance = settings.sun_avoidance_deg
+
+    epoch0 = float(args["catalogue_epoch"])
+    c = table.columns
+    vals = [
+        c[f]
+        for f in (
+            "ra_deg",
+            "dec_deg",
+            "parallax_mas",
+            "pm_ra_cosdec_mas_yr",
+            "pm_dec_mas_yr",
+            "radial_velocity_km_s",
+        )
+    ]
+    frame = frame_from_spec(args["frame"], "frame")
+    if frame.name != "icrs":
+        conv = core_frames.convert(*vals, epoch0, frame, core_frames.make_frame("icrs"))
+        vals = [
+            conv.ra_deg,
+            conv.dec_deg,
+            conv.parallax_mas,
+            conv.pm_ra_cosdec_mas_yr,
+            conv.pm_dec_mas_yr,
+            conv.radial_velocity_km_s,
+        ]
+    # Move the stars to each instant with the core propagation, then observe.
+    if m == 1:
+        moved = core_prop.propagate(*vals, epoch0, instants[0]).astrometry
+        star_args = [getattr(moved, f) for f in _AST]
+        epoch_arg = instants[0]
+    else:
+        moved = core_prop.propagate(
+            *(v[:, None] for v in vals), epoch0, instants[None, :]
+        ).astrometry
+        star_args = [getattr(moved, f) for f in _AST]
+        epoch_arg = instants[None, :]
+    # Missing motions stay missing for the flags (the propagation reports them as NaN too).
+    utc1, utc2 = core.utc_from_julian_epoch_tdb(instants)
+    eop = core.earth_orientation(settings.eop_file or None)
+    try:
+        res = core.observed_places(
+            *star_args,
+            epoch_arg,
+            utc1 if m > 1 else utc1[0],
+            utc2 if m > 1 else utc2[0],
+            site,
+            atm,
+            eop=eop,
+            horizon_limit_deg=horizon,
+            sun_avoidance_deg=avoidance,
+        )
+    except core.ObservedInputError as exc:
+        _core_error(exc)
+
+    def grid(a):
+        return np.broadcast_to(np.asarray(a), (n, m)) if m > 1 else np.asarray(a).reshape(n, 1)
+
+    cols = {name: grid(getattr(res, name)) for name in PLACE_FIELDS}
+    flag_grid = grid(res.flags)
+    names = flag_names(flag_grid.reshape(-1), core.ObservedFlag)
+    ids = table.ids
+    stars = []
+    for i in range(n):
+        at = []
+        for k in range(m):
+            entry = {name: _o(cols[name][i, k]) for name in PLACE_FIELDS}
+            entry["flags"] = names[i * m + k]
+            at.append(entry)
+        stars.append({"index": i, "id": None if ids is None else ids[i], "at_instants": at})
+
+    ev = res.eop
+    sun_alt = np.broadcast_to(np.asarray(res.sun_altitude_deg), (n, m) if m > 1 else (n,))
+    sun_az = np.broadcast_to(np.asarray(res.sun_azimuth_deg), (n, m) if m > 1 else (n,))
+    inst_out = []
+    labels = epochs_out(instants)
+    for k in range(m):
+
+        def pick(a, k=k):
+            a = np.asarray(a)
+            return a.reshape(-1)[k] if a.size > 1 else a.reshape(-1)[0]
+
+        status = core.EarthOrientationStatus(int(pick(ev.status)))
+        inst_out.append(
+            {
+                "epoch": labels[k],
+                "utc_jd": [float(utc1[k]), float(utc2[k])],
+                "earth_orientation": {
+                    "table": str(pick(ev.table)),
+                    "status": core.STATUS_WORDS[status],
+                    "source": status.name.lower(),
+                    "ut1_utc_s": float(pick(ev.ut1_utc_s)),
+                    "pm_x_arcsec": float(pick(ev.pm_x_arcsec)),
+                    "pm_y_arcsec": float(pick(ev.pm_y_arcsec)),
+                    "accuracy_class": str(pick(ev.accuracy_class)),
+                    "pointing_error_arcsec": float(pick(ev.pointing_error_arcsec)),
+                },
+                "sun": {
+                    "altitude_deg": float(sun_alt[0, k] if m > 1 else sun_alt[0]),
+                    "azimuth_deg": float(sun_az[0, k] if m > 1 else sun_az[0]),
+                },
+            }
+        )
+    all_names = {x for lst in names for x in lst}
+    r = res.refraction
+    body = {
+        "advisory": ADVISORY,
+        "site": {
+            "name": site.name,
+            "latitude_deg": site.latitude_deg,
+            "longitude_deg": site.longitude_deg,
+            "height_m": site.height_m,
+        },
+        "refraction": {
+            "mode": r.mode,
+            "pressure_hpa": r.pressure_hpa,
+            "temperature_c": r.temperature_c,
+            "temperature_source": r.temperature_source,
+            "relative_humidity": r.relative_humidity,
+            "wavelength_um": r.wavelength_um,
+            "model": "A tan z + B tan^3 z, IAU SOFA refco/atioq",
+        },
+        "limits": {
+            "horizon_limit_deg": float(horizon),
+            "sun_avoidance_deg": float(avoidance),
+            "note": "Advisory. The default Sun avoidance angle (30 deg) is a placeholder the "
+            "operator must set.",
+        },
+        "catalogue_epoch": epochs_out([epoch0])[0],
+        "input_frame": frame.describe(),
+        "instants": inst_out,
+        "earth_orientation_tables": res.provenance,
+        "star_count": n,
+        "units": PLACE_FIELDS,
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in all_names},
+        "stars": stars,
+    }
+    return current_app.json.response(body)
+
+
+_AST = (
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
+
+
+def _eop_ready():
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    eop = core.earth_orientation(settings.eop_file or None)
+    return True, f"{eop.primary.name}, measured to MJD {eop.primary.last_measured_mjd:.0f}"
+
+
+def register(app, api):
+    # Earth-orientation and leap-second tables are read once, at start (never downloaded).
+    settings = app.config["SKYDRIFT_SETTINGS"]
+    core.earth_orientation(settings.eop_file or None)
+    load_sites(settings.sites_file or None)
+    api.ma_plugin.converter.add_attribute_function(site_field_to_openapi)
+    app.extensions["skydrift_ready_checks"]["earth_orientation"] = _eop_ready
+    api.register_blueprint(blp)

@@ -1,0 +1,1589 @@
+"""Astrometric, apparent and observed places at a site, with Earth orientation and safety.
+
+From catalogue astrometry (ICRS at a catalogue epoch) to where a telescope must point at a
+site and instant, following the IAU 2006/2000A models as the SOFA routines implement them:
+``apco13`` prepares the star-independent quantities (Earth position and velocity, precession
+-nutation, Earth rotation, polar motion, refraction constants) and the per-star chain of
+``atciq`` (space motion and parallax, light deflection by the Sun, aberration, to CIRS) and
+``atioq`` (CIRS to hour angle, azimuth and refracted altitude) is carried out here in numpy
+for many stars at once (Note 1 of :func:`observed_places`).
+
+Earth orientation (UT1-UTC and polar motion) comes from the IERS tables packaged with
+astropy-iers-data, read with ``astropy.utils.iers`` with downloads switched off, loaded once
+and cached; an operator may point at a newer finals2000A file (:func:`earth_orientation`).
+
+Safety figures (Sun altitude, Sun-target separation, altitude against a horizon limit) are
+advisory only: the facility's own interlocks and safety rules decide whether a telescope may
+point somewhere.
+"""
+
+from __future__ import annotations
+
+import enum
+import functools
+import math
+import os
+import warnings
+from dataclasses import dataclass, field
+
+import erfa
+import numpy as np
+
+from service.core.constants import ARCSEC_PER_RAD as _ARCSEC_PER_RAD
+from service.core.constants import (
+    AU_PER_JULIAN_YEAR_KM_S,
+    DEG_PER_RAD,
+    MAS_PER_RAD,
+    RAD_PER_DEG,
+)
+
+# ---------------------------------------------------------------------------------------------
+# Constants of this module
+# ---------------------------------------------------------------------------------------------
+
+#: Schwarzschild radius of the Sun, au (2 G M_sun / c^2; SOFA ``ERFA_SRS``).
+SCHWARZSCHILD_RADIUS_SUN_AU = 1.97412574336e-8
+
+#: Light time for one au, Julian years (SOFA ERFA_AULT = au/c = 499.004783836 s).
+LIGHT_TIME_AU_YR = 149_597_870_700.0 / 299_792_458.0 / 86_400.0 / 365.25
+
+TWO_PI = 2.0 * np.pi
+
+#: SOFA ``atioq`` refraction guards: minimum cos(altitude) and sin(altitude) used in the
+#: tan z model (``CELMIN``, ``SELMIN`` of atioq), dimensionless.
+ATIOQ_CELMIN = 1e-6
+ATIOQ_SELMIN = 0.05
+
+#: US Standard Atmosphere 1976 (NOAA/NASA/USAF, 1976), troposphere layer (0-11 km
+#: geopotential): sea-level pressure (hPa), temperature (K), lapse rate (K per geopotential
+#: metre), g0 (m/s^2), molar mass of air (kg/mol), gas constant R* (J/(mol K)), and the Earth
+#: radius used for geopotential height (m). Equations 18 and 33a of the 1976 document.
+USSA1976_P0_HPA = 1013.25
+USSA1976_T0_K = 288.15
+USSA1976_LAPSE_K_PER_M = -0.0065
+USSA1976_G0_M_S2 = 9.80665
+USSA1976_M0_KG_MOL = 0.0289644
+USSA1976_RSTAR_J_MOL_K = 8.31432
+USSA1976_R0_M = 6_356_766.0
+USSA1976_TROPOPAUSE_M = 11_000.0
+
+#: Default Sun avoidance angle, degrees. A PLACEHOLDER: the operator must set the facility's
+#: own figure. Advisory only.
+DEFAULT_SUN_AVOIDANCE_DEG = 30.0
+
+#: Default horizon limit for the target's observed altitude, degrees (geometric horizon).
+DEFAULT_HORIZON_LIMIT_DEG = 0.0
+
+#: Supported span of observation instants, Julian epochs: UTC is defined from 1960, and the
+#: Earth ephemeris of SOFA epv00 (used by apco13) is valid 1900-2100 AD.
+SUPPORTED_EPOCH_MIN = 1960.0
+SUPPORTED_EPOCH_MAX = 2100.0
+
+#: Supported wavelength ranges for refraction, micrometres: optical/IR 0.3-2.0 (SOFA refco
+#: model tested 0.4-2 um, Note 2 of refco) and radio 100 um - 1 m (refco radio case).
+WAVELENGTH_OPTICAL_UM = (0.3, 2.0)
+WAVELENGTH_RADIO_UM = (100.0, 1.0e6)
+
+#: Accepted site height range, metres; pressure range, hPa; temperature range, deg C (SOFA
+#: refco clamps temperature to -150..200 C; we refuse values outside a plausible range).
+HEIGHT_RANGE_M = (-500.0, 10_000.0)
+PRESSURE_RANGE_HPA = (0.0, 1_200.0)
+TEMPERATURE_RANGE_C = (-100.0, 60.0)
+
+#: Default atmosphere when not given: relative humidity (0-1) and wavelength (um).
+DEFAULT_RELATIVE_HUMIDITY = 0.5
+DEFAULT_WAVELENGTH_UM = 0.55
+
+#: Uncertainty assumed for UT1-UTC, seconds, by source: final (IERS B / C04) and rapid
+#: (IERS A measured) values (common practice, order of magnitude); unavailable values are
+#: taken as zero and |UT1-UTC| < 0.9 s by the definition of UTC (ITU-R TF.460-6).
+UT1_SIGMA_FINAL_S = 2e-5
+UT1_SIGMA_RAPID_S = 1e-4
+UT1_SIGMA_UNAVAILABLE_S = 0.9
+
+#: IERS Bulletin A prediction accuracy, UT1-UTC: sigma = 0.00025 (days ahead)^0.75 s
+#: (formula printed in the Bulletin A header; from memory).
+BULLETIN_A_UT1_COEFF_S = 0.00025
+BULLETIN_A_UT1_POWER = 0.75
+
+#: Polar motion uncertainty, arcsec, by source (final, rapid: common practice; predicted:
+#: Bulletin A 0.00068 (days ahead)^0.80 arcsec, from memory; unavailable: taken as zero,
+#: the pole wanders within about 0.5 arcsec, common practice).
+POLE_SIGMA_FINAL_ARCSEC = 5e-5
+POLE_SIGMA_RAPID_ARCSEC = 1e-4
+BULLETIN_A_POLE_COEFF_ARCSEC = 0.00068
+BULLETIN_A_POLE_POWER = 0.80
+POLE_SIGMA_UNAVAILABLE_ARCSEC = 0.5
+
+#: Earth rotation, arcsec of sky per second of UT1 (360 deg in one sidereal day, ~15.04).
+ARCSEC_PER_UT1_SECOND = 15.04107
+
+#: Accuracy classes of the observed place implied by the Earth-orientation data, by the
+#: estimated pointing error (arcsec): below the first bound "milliarcsecond", below the
+#: second "sub_arcsecond", else "arcseconds".
+ACCURACY_CLASS_BOUNDS_ARCSEC = (0.01, 1.0)
+
+#: Environment variable with an operator-supplied finals2000A-format file.
+EOP_PATH_ENV = "SKYDRIFT_EOP_FILE"
+
+
+class ObservedInputError(ValueError):
+    """Invalid request-level input (site, atmosphere, instant); ``field`` names it."""
+
+    def __init__(self, field: str, message: str):
+        super().__init__(f"{field}: {message}")
+        self.field = field
+        self.message = message
+
+
+class ObservedFlag(enum.IntFlag):
+    """Per-star, per-instant flags of an observed-place computation."""
+
+    #: Parallax missing: star treated as infinitely distant (no parallax shift).
+    MISSING_PARALLAX = 1
+    #: Parallax zero or negative: treated as infinitely distant.
+    NON_POSITIVE_PARALLAX = 2
+    #: Radial velocity missing: taken as zero (no perspective acceleration).
+    MISSING_RADIAL_VELOCITY = 4
+    #: Proper motion missing: taken as zero.
+    MISSING_PROPER_MOTION = 8
+    #: Target's observed altitude below the configured horizon limit (advisory).
+    BELOW_HORIZON_LIMIT = 16
+    #: Target closer to the Sun than the configured avoidance angle (advisory).
+    WITHIN_SUN_AVOIDANCE = 32
+    #: Sun above the geometric horizon at the site (daytime).
+    SUN_ABOVE_HORIZON = 64
+    #: UT1-UTC / polar motion from IERS predictions, not measurements.
+    EARTH_ORIENTATION_PREDICTED = 128
+    #: Instant outside the Earth-orientation tables: UT1-UTC and polar motion taken as zero.
+    EARTH_ORIENTATION_UNAVAILABLE = 256
+    #: Instant beyond the leap-second table's validity: TAI-UTC taken as its last value.
+    LEAP_SECONDS_EXTRAPOLATED = 512
+    #: Target below the geometric horizon: airmass undefined (NaN).
+    AIRMASS_UNDEFINED = 1024
+
+
+# Plain-int copies of the flag bits for the inner loops (enum attribute access is slow).
+_F_MISSING_PARALLAX = int(ObservedFlag.MISSING_PARALLAX)
+_F_NON_POSITIVE_PARALLAX = int(ObservedFlag.NON_POSITIVE_PARALLAX)
+_F_MISSING_RADIAL_VELOCITY = int(ObservedFlag.MISSING_RADIAL_VELOCITY)
+_F_MISSING_PROPER_MOTION = int(ObservedFlag.MISSING_PROPER_MOTION)
+_F_BELOW_HORIZON_LIMIT = int(ObservedFlag.BELOW_HORIZON_LIMIT)
+_F_WITHIN_SUN_AVOIDANCE = int(ObservedFlag.WITHIN_SUN_AVOIDANCE)
+_F_AIRMASS_UNDEFINED = int(ObservedFlag.AIRMASS_UNDEFINED)
+
+
+class EarthOrientationStatus(enum.IntEnum):
+    """Source of the UT1-UTC and polar motion values of one instant."""
+
+    MEASURED_FINAL = 0  # IERS B / EOP C04 values (or B values inside finals2000A)
+    MEASURED_RAPID = 1  # IERS A (Bulletin A) measured values
+    PREDICTED = 2  # IERS A predictions
+    UNAVAILABLE = 3  # outside the tables: UT1-UTC and polar motion taken as zero
+
+
+#: Plain words for each status, as used in responses.
+STATUS_WORDS = {
+    EarthOrientationStatus.MEASURED_FINAL: "measured",
+    EarthOrientationStatus.MEASURED_RAPID: "measured",
+    EarthOrientationStatus.PREDICTED: "predicted",
+    EarthOrientationStatus.UNAVAILABLE: "unavailable",
+}
+
+
+# ---------------------------------------------------------------------------------------------
+# Earth orientation tables
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class EarthOrientationTable:
+    """UT1-UTC and polar motion on daily nodes, with the source of each node.
+
+    Attributes
+    ----------
+    name : str
+        Table description, e.g. ``IERS-A finals2000A.all``.
+    path : str
+        File the values were read from.
+    mjd : ndarray
+        Node dates, MJD (UTC).
+    ut1_utc_s : ndarray
+        UT1-UTC at the nodes, seconds.
+    pm_x_arcsec, pm_y_arcsec : ndarray
+        Polar motion at the nodes, arcsec.
+    status : ndarray of int
+        :class:`EarthOrientationStatus` per node (UT1-UTC source).
+    last_measured_mjd : float
+        Last node with a measured (not predicted) UT1-UTC value.
+    """
+
+    name: str
+    path: str
+    mjd: np.ndarray
+    ut1_utc_s: np.ndarray
+    pm_x_arcsec: np.ndarray
+    pm_y_arcsec: np.ndarray
+    status: np.ndarray
+    last_measured_mjd: float
+
+    @property
+    def first_mjd(self) -> float:
+        return float(self.mjd[0])
+
+    @property
+    def last_mjd(self) -> float:
+        return float(self.mjd[-1])
+
+
+def _configure_astropy_offline():
+    """astropy.utils.iers, configured never to download (service.core.offline)."""
+    from astropy.utils import iers
+
+    from service.core import offline  # noqa: F401  (configures astropy on import)
+
+    return iers
+
+
+def _read_finals2000a(path: str) -> EarthOrientationTable:
+    iers = _configure_astropy_offline()
+    t = iers.IERS_A.open(path)
+    flags = np.asarray(t["UT1Flag"]).astype(str)
+    status = np.where(
+        flags == "B",
+        EarthOrientationStatus.MEASURED_FINAL,
+        np.where(
+            flags == "I", EarthOrientationStatus.MEASURED_RAPID, EarthOrientationStatus.PREDICTED
+        ),
+    ).astype(int)
+    mjd = np.asarray(t["MJD"].value, dtype=float)
+    measured = status != EarthOrientationStatus.PREDICTED
+    return EarthOrientationTable(
+        name=f"IERS-A {os.path.basename(path)}",
+        path=path,
+        mjd=mjd,
+        ut1_utc_s=np.asarray(t["UT1_UTC"].to_value("s"), dtype=float),
+        pm_x_arcsec=np.asarray(t["PM_x"].to_value("arcsec"), dtype=float),
+        pm_y_arcsec=np.asarray(t["PM_y"].to_value("arcsec"), dtype=float),
+        status=status,
+        last_measured_mjd=float(mjd[measured][-1]) if measured.any() else float(mjd[0]),
+    )
+
+
+def _read_iers_b(path: str) -> EarthOrientationTable:
+    iers = _configure_astropy_offline()
+    t = iers.IERS_B.open(path)
+    mjd = np.asarray(t["MJD"].value, dtype=float)
+    return EarthOrientationTable(
+        name=f"IERS-B {os.path.basename(path)}",
+        path=path,
+        mjd=mjd,
+        ut1_utc_s=np.asarray(t["UT1_UTC"].to_value("s"), dtype=float),
+        pm_x_arcsec=np.asarray(t["PM_x"].to_value("arcsec"), dtype=float),
+        pm_y_arcsec=np.asarray(t["PM_y"].to_value("arcsec"), dtype=float),
+        status=np.full(mjd.shape, int(EarthOrientationStatus.MEASURED_FINAL)),
+        last_measured_mjd=float(mjd[-1]),
+    )
+
+
+@dataclass(frozen=True)
+class EarthOrientation:
+    """The tables in use: a primary finals2000A table and the IERS-B table before it."""
+
+    primary: EarthOrientationTable
+    fallback: EarthOrientationTable | None
+    leap_second_expiry_mjd: float
+
+    def describe(self) -> dict:
+        """Provenance for responses: table names, files, spans and leap-second expiry."""
+        out = {
+            "primary_table": self.primary.name,
+            "primary_span_mjd": [self.primary.first_mjd, self.primary.last_mjd],
+            "last_measured_mjd": self.primary.last_measured_mjd,
+            "leap_seconds_valid_until_mjd": self.leap_second_expiry_mjd,
+        }
+        if self.fallback is not None:
+            out["fallback_table"] = self.fallback.name
+            out["fallback_span_mjd"] = [self.fallback.first_mjd, self.fallback.last_mjd]
+        return out
+
+
+@functools.lru_cache(maxsize=4)
+def earth_orientation(path: str | None = None) -> EarthOrientation:
+    """Load the Earth-orientation and leap-second tables once (cached per path).
+
+    Parameters
+    ----------
+    path : str, optional
+        A finals2000A-format file (IERS Rapid Service/Prediction Centre) to use instead of
+        the one packaged with astropy-iers-data; default: the environment variable
+        ``SKYDRIFT_EOP_FILE`` if set, else the packaged file (Note 1).
+
+    Returns
+    -------
+    EarthOrientation
+
+    Notes
+    -----
+    1. Nothing is ever downloaded: ``astropy.utils.iers.conf.auto_download`` is switched off
+       and only the named or packaged files are read. The packaged IERS-B (EOP C04) table
+       answers dates before the start of the finals2000A table.
+    2. ERFA's leap-second table is replaced by the one packaged with astropy-iers-data
+       (``service.core.offline.leap_second_table``), so that UTC->TAI is right up to that
+       file's expiry date.
+    """
+    iers = _configure_astropy_offline()
+    if path is None:
+        path = os.environ.get(EOP_PATH_ENV) or iers.IERS_A_FILE
+    primary = _read_finals2000a(path)
+    fallback = _read_iers_b(iers.IERS_B_FILE)
+    from service.core.offline import leap_second_table
+
+    expires = leap_second_table().expires
+    expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
+    return EarthOrientation(primary, fallback, expiry_mjd)
+
+
+def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
+    """Linear interpolation between daily nodes, as ``astropy.utils.iers.IERS._interpolate``.
+
+    UT1-UTC steps at leap seconds are removed from the node difference by rounding it to
+    whole seconds, exactly as astropy does, so results agree with astropy's own lookup.
+    """
+    mjd = table.mjd
+    i = np.searchsorted(mjd, mjd_int, side="right")
+    i1 = np.clip(i, 1, len(mjd) - 1)
+    i0 = i1 - 1
+    frac = (mjd_int - mjd[i0] + day_fraction) / (mjd[i1] - mjd[i0])
+    out = []
+    for col, is_ut1 in (
+        (table.ut1_utc_s, True),
+        (table.pm_x_arcsec, False),
+        (table.pm_y_arcsec, False),
+    ):
+        d = col[i1] - col[i0]
+        if is_ut1:
+            d = d - np.round(d)
+        v = col[i0] + frac * d
+        v = np.where(i == 0, col[0], v)
+        v = np.where(i == len(mjd), col[-1], v)
+        out.append(v)
+    # Source: the node at or before the instant, the later one if it is predicted.
+    status = np.maximum(table.status[i0], table.status[i1])
+    inside = (i > 0) & (i < len(mjd))
+    return out[0], out[1], out[2], status, inside
+
+
+@dataclass(frozen=True)
+class EarthOrientationValues:
+    """UT1-UTC and polar motion at instants, with provenance.
+
+    Attributes
+    ----------
+    ut1_utc_s : ndarray
+        UT1-UTC, seconds (0 where unavailable).
+    pm_x_arcsec, pm_y_arcsec : ndarray
+        Polar motion, arcsec (0 where unavailable).
+    status : ndarray of int
+        :class:`EarthOrientationStatus` per instant.
+    table : ndarray of str
+        Name of the table each value came from ("none" where unavailable).
+    ut1_sigma_s, pole_sigma_arcsec : ndarray
+        Uncertainty assumed for the values (see module constants).
+    pointing_error_arcsec : ndarray
+        Resulting pointing uncertainty estimate, arcsec.
+    accuracy_class : ndarray of str
+        ``milliarcsecond``, ``sub_arcsecond`` or ``arcseconds``.
+    """
+
+    ut1_utc_s: np.ndarray
+    pm_x_arcsec: np.ndarray
+    pm_y_arcsec: np.ndarray
+    status: np.ndarray
+    table: np.ndarray
+    ut1_sigma_s: np.ndarray
+    pole_sigma_arcsec: np.ndarray
+    pointing_error_arcsec: np.ndarray
+    accuracy_class: np.ndarray
+
+
+def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
+    """UT1-UTC and polar motion at UTC instants, with source and accuracy class.
+
+    Parameters
+    ----------
+    utc_jd1, utc_jd2 : array_like
+        UTC as a two-part quasi Julian date (SOFA convention), days.
+    eop : EarthOrientation, optional
+        Tables; default :func:`earth_orientation`.
+
+    Returns
+    -------
+    EarthOrientationValues
+
+    Notes
+    -----
+    1. The primary (finals2000A) table is used inside its span, the IERS-B table before it;
+       outside both the values are taken as zero and the status is ``UNAVAILABLE``.
+    2. Predicted values carry the Bulletin A accuracy formula evaluated at the number of days
+       past the last measured node.
+    3. The pointing error estimate is 15.04 arcsec/s x sigma(UT1) + sigma(pole), a bound on
+       the effect at the equator; the class follows ``ACCURACY_CLASS_BOUNDS_ARCSEC``.
+    """
+    eop = eop or earth_orientation()
+    jd1 = np.asarray(utc_jd1, dtype=float)
+    jd2 = np.asarray(utc_jd2, dtype=float)
+    jd1, jd2 = np.broadcast_arrays(jd1, jd2)
+    # Split into integer MJD and day fraction, as astropy's mjd_utc does.
+    mjd_full = (jd1 - 2400000.5) + jd2
+    mjd_int = np.floor(mjd_full)
+    frac = ((jd1 - 2400000.5) - mjd_int) + jd2
+    dut, px, py, status, inside = _interp_table(eop.primary, mjd_int, frac)
+    table = np.where(inside, eop.primary.name, "none").astype(object)
+    if eop.fallback is not None:
+        use_b = ~inside & (mjd_full < eop.primary.first_mjd)
+        if np.any(use_b):
+            bd, bx, by, bs, binside = _interp_table(eop.fallback, mjd_int, frac)
+            take = use_b & binside
+            dut = np.where(take, bd, dut)
+            px = np.where(take, bx, px)
+            py = np.where(take, by, py)
+            status = np.where(take, bs, status)
+            inside = inside | take
+            table = np.where(take, eop.fallback.name, table)
+    status = np.where(inside, status, int(EarthOrientationStatus.UNAVAILABLE))
+    dut = np.where(inside, dut, 0.0)
+    px = np.where(inside, px, 0.0)
+    py = np.where(inside, py, 0.0)
+    days_ahead = np.maximum(mjd_full - eop.primary.last_measured_mjd, 0.0)
+    # Fixed sigmas by status (final, rapid, predicted placeholder, unavailable), then the
+    # Bulletin A growth for predicted values.
+    status = np.asarray(status, dtype=np.int64)
+    ut1_fixed = np.array([UT1_SIGMA_FINAL_S, UT1_SIGMA_RAPID_S, 0.0, UT1_SIGMA_UNAVAILABLE_S])
+    pole_fixed = np.array(
+        [POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_RAPID_ARCSEC, 0.0, POLE_SIGMA_UNAVAILABLE_ARCSEC]
+    )
+    predicted = status == EarthOrientationStatus.PREDICTED
+    ut1_sigma = np.where(
+        predicted,
+        np.maximum(BULLETIN_A_UT1_COEFF_S * days_ahead**BULLETIN_A_UT1_POWER, UT1_SIGMA_RAPID_S),
+        ut1_fixed[status],
+    )
+    pole_sigma = np.where(
+        predicted,
+        np.maximum(
+            BULLETIN_A_POLE_COEFF_ARCSEC * days_ahead**BULLETIN_A_POLE_POWER,
+            POLE_SIGMA_RAPID_ARCSEC,
+        ),
+        pole_fixed[status],
+    )
+    err = ARCSEC_PER_UT1_SECOND * ut1_sigma + pole_sigma
+    lo, hi = ACCURACY_CLASS_BOUNDS_ARCSEC
+    cls = np.where(err < lo, "milliarcsecond", np.where(err < hi, "sub_arcsecond", "arcseconds"))
+    return EarthOrientationValues(
+        ut1_utc_s=dut,
+        pm_x_arcsec=px,
+        pm_y_arcsec=py,
+        status=status.astype(int),
+        table=table.astype(str),
+        ut1_sigma_s=ut1_sigma,
+        pole_sigma_arcsec=pole_sigma,
+        pointing_error_arcsec=err,
+        accuracy_class=cls,
+    )
+
+
+# ---------------------------------------------------------------------------------------------
+# Site, atmosphere, standard atmosphere, airmass
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Site:
+    """An observing site on the WGS84 ellipsoid.
+
+    Attributes
+    ----------
+    latitude_deg : float
+        Geodetic latitude, degrees, north positive, in [-90, 90].
+    longitude_deg : float
+        Longitude, degrees, east positive (values in [-180, 360] accepted).
+    height_m : float
+        Height above the WGS84 ellipsoid, metres.
+    name : str or None
+        Name from the operator's site list, if it came from one.
+    """
+
+    latitude_deg: float
+    longitude_deg: float
+    height_m: float = 0.0
+    name: str | None = None
+
+
+def make_site(latitude_deg, longitude_deg, height_m=0.0, name=None, *, prefix="site") -> Site:
+    """Validate and build a :class:`Site` (raises :class:`ObservedInputError`)."""
+    values = {}
+    for key, val in (
+        ("latitude_deg", latitude_deg),
+        ("longitude_deg", longitude_deg),
+        ("height_m", height_m),
+    ):
+        try:
+            values[key] = float(val)
+        except (TypeError, ValueError):
+            raise ObservedInputError(f"{prefix}.{key}", "must be a number") from None
+        if not np.isfinite(values[key]):
+            raise ObservedInputError(f"{prefix}.{key}", "must be finite")
+    if not -90.0 <= values["latitude_deg"] <= 90.0:
+        raise ObservedInputError(f"{prefix}.latitude_deg", "must be between -90 and 90")
+    if not -180.0 <= values["longitude_deg"] <= 360.0:
+        raise ObservedInputError(f"{prefix}.longitude_deg", "must be between -180 and 360")
+    lo, hi = HEIGHT_RANGE_M
+    if not lo <= values["height_m"] <= hi:
+        raise ObservedInputError(f"{prefix}.height_m", f"must be between {lo:g} and {hi:g}")
+    return Site(values["latitude_deg"], values["longitude_deg"], values["height_m"], name)
+
+
+def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
+    """A site from a name in the operator's list, or from latitude/longitude/height.
+
+    Parameters
+    ----------
+    spec : str, Site or mapping
+        A site name, a :class:`Site`, or a mapping with ``latitude_deg``, ``longitude_deg``
+        and optional ``height_m`` (or ``name`` alone).
+    sites : mapping of str to mapping, optional
+        The operator-configured site list: name -> {latitude_deg, longitude_deg, height_m}.
+
+    Raises
+    ------
+    ObservedInputError
+        Unknown name or invalid coordinates (the field is named).
+    """
+    if isinstance(spec, Site):
+        return make_site(spec.latitude_deg, spec.longitude_deg, spec.height_m, spec.name)
+    if isinstance(spec, dict) and set(spec) <= {"name"} and "name" in spec:
+        spec = spec["name"]
+    if isinstance(spec, str):
+        sites = sites or {}
+        if spec not in sites:
+            known = ", ".join(sorted(sites)) or "none configured"
+            raise ObservedInputError(f"{prefix}.name", f"unknown site {spec!r} (known: {known})")
+        entry = sites[spec]
+        return make_site(
+            entry["latitude_deg"],
+            entry["longitude_deg"],
+            entry.get("height_m", 0.0),
+            name=spec,
+            prefix=prefix,
+        )
+    if isinstance(spec, dict):
+        for key in ("latitude_deg", "longitude_deg"):
+            if key not in spec:
+                raise ObservedInputError(f"{prefix}.{key}", "is required")
+        return make_site(
+            spec["latitude_deg"],
+            spec["longitude_deg"],
+            spec.get("height_m", 0.0),
+            name=spec.get("name"),
+            prefix=prefix,
+        )
+    raise ObservedInputError(prefix, "must be a site name or latitude/longitude/height")
+
+
+def standard_atmosphere(height_m):
+    """Pressure and temperature of the US Standard Atmosphere 1976 at a height.
+
+    Parameters
+    ----------
+    height_m : array_like
+        Geometric height above mean sea level, metres (Note 1).
+
+    Returns
+    -------
+    pressure_hpa : ndarray
+        Pressure, hPa.
+    temperature_c : ndarray
+        Temperature, degrees Celsius.
+
+    Notes
+    -----
+    1. Geometric height z becomes geopotential height H = r0 z / (r0 + z), r0 = 6356766 m
+       (eq. 18). In the troposphere (H < 11 km) T = T0 + L H and
+       P = P0 [T0 / (T0 + L H)]^(g0 M0 / (R* L)) (eq. 33a), with P0 = 1013.25 hPa,
+       T0 = 288.15 K, L = -0.0065 K/m, g0 = 9.80665 m/s^2, M0 = 0.0289644 kg/mol,
+       R* = 8.31432 J/(mol K); the exponent is 5.25588. Heights above 11 km are clipped
+       to 11 km (no observatory is that high).
+    2. The site height is taken above the ellipsoid; the difference from mean sea level
+       (the geoid, tens of metres) changes the pressure by a few hPa at most, which moves
+       refraction at 45 degrees altitude by well under 0.2 arcsec.
+
+    References
+    ----------
+    NOAA, NASA, USAF 1976, U.S. Standard Atmosphere, 1976, NOAA-S/T 76-1562, eqs. 18, 23, 33a.
+    """
+    z = np.minimum(np.asarray(height_m, dtype=float), USSA1976_TROPOPAUSE_M)
+    h = USSA1976_R0_M * z / (USSA1976_R0_M + z)
+    t = USSA1976_T0_K + USSA1976_LAPSE_K_PER_M * h
+    exponent = (
+        USSA1976_G0_M_S2 * USSA1976_M0_KG_MOL / (USSA1976_RSTAR_J_MOL_K * USSA1976_LAPSE_K_PER_M)
+    )
+    p = USSA1976_P0_HPA * (USSA1976_T0_K / t) ** exponent
+    return p, t - 273.15
+
+
+def airmass_young1994(cos_true_zenith):
+    """Relative airmass from the true (unrefracted) zenith distance, Young (1994).
+
+    Parameters
+    ----------
+    cos_true_zenith : array_like
+        Cosine of the topocentric zenith distance before refraction, dimensionless.
+
+    Returns
+    -------
+    ndarray
+        Airmass relative to the zenith (1 at the zenith, about 31.7 at the geometric
+        horizon); NaN below the geometric horizon (Note 2).
+
+    Notes
+    -----
+    1. X = (1.002432 c^2 + 0.148386 c + 0.0096467) /
+       (c^3 + 0.149864 c^2 + 0.0102963 c + 0.000303978), c = cos z_true; quoted maximum
+       error 0.0037 air masses at the horizon (coefficients from memory).
+    2. The formula is for a star above the horizon; below it the airmass is undefined.
+
+    References
+    ----------
+    Young, A.T. 1994, Applied Optics 33, 1108 ("Air mass and refraction").
+    """
+    c = np.asarray(cos_true_zenith, dtype=float)
+    num = (1.002432 * c + 0.148386) * c + 0.0096467
+    den = ((c + 0.149864) * c + 0.0102963) * c + 0.000303978
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = num / den
+    return np.where(c >= 0.0, x, np.nan)
+
+
+@dataclass(frozen=True)
+class Atmosphere:
+    """Conditions at the site used for refraction.
+
+    Attributes
+    ----------
+    pressure_hpa : float or None
+        Air pressure at the site, hPa; None = estimate from the site height with the standard
+        atmosphere; 0 = no refraction.
+    temperature_c : float or None
+        Air temperature, degrees Celsius; None = standard atmosphere at the site height.
+    relative_humidity : float or None
+        Relative humidity, 0-1; None = 0.5.
+    wavelength_um : float or None
+        Effective wavelength, micrometres; None = 0.55.
+    """
+
+    pressure_hpa: float | None = None
+    temperature_c: float | None = None
+    relative_humidity: float | None = None
+    wavelength_um: float | None = None
+
+
+def make_atmosphere(
+    pressure_hpa=None,
+    temperature_c=None,
+    relative_humidity=None,
+    wavelength_um=None,
+    *,
+    prefix="atmosphere",
+) -> Atmosphere:
+    """Validate and build an :class:`Atmosphere` (raises :class:`ObservedInputError`)."""
+
+    def num(key, val):
+        if val is None:
+            return None
+        try:
+            v = float(val)
+        except (TypeError, ValueError):
+            raise ObservedInputError(f"{prefix}.{key}", "must be a number") from None
+        if not np.isfinite(v):
+            raise ObservedInputError(f"{prefix}.{key}", "must be finite")
+        return v
+
+    p = num("pressure_hpa", pressure_hpa)
+    t = num("temperature_c", temperature_c)
+    rh = num("relative_humidity", relative_humidity)
+    wl = num("wavelength_um", wavelength_um)
+    if p is not None and not PRESSURE_RANGE_HPA[0] <= p <= PRESSURE_RANGE_HPA[1]:
+        raise ObservedInputError(
+            f"{prefix}.pressure_hpa",
+            f"must be between {PRESSURE_RANGE_HPA[0]:g} and {PRESSURE_RANGE_HPA[1]:g}",
+        )
+    if t is not None and not TEMPERATURE_RANGE_C[0] <= t <= TEMPERATURE_RANGE_C[1]:
+        raise ObservedInputError(
+            f"{prefix}.temperature_c",
+            f"must be between {TEMPERATURE_RANGE_C[0]:g} and {TEMPERATURE_RANGE_C[1]:g}",
+        )
+    if rh is not None and not 0.0 <= rh <= 1.0:
+        raise ObservedInputError(f"{prefix}.relative_humidity", "must be between 0 and 1")
+    if wl is not None and not (
+        WAVELENGTH_OPTICAL_UM[0] <= wl <= WAVELENGTH_OPTICAL_UM[1]
+        or WAVELENGTH_RADIO_UM[0] <= wl <= WAVELENGTH_RADIO_UM[1]
+    ):
+        raise ObservedInputError(
+            f"{prefix}.wavelength_um",
+            "must be 0.3-2.0 (optical/infrared) or 100-1000000 (radio) micrometres",
+        )
+    return Atmosphere(p, t, rh, wl)
+
+
+@dataclass(frozen=True)
+class RefractionSettings:
+    """The atmosphere actually used, and how it was obtained.
+
+    Attributes
+    ----------
+    mode : str
+        ``given_pressure``, ``standard_atmosphere_pressure`` or ``off`` (pressure zero).
+    pressure_hpa, temperature_c, relative_humidity, wavelength_um : float
+        Values passed to the refraction model (SOFA ``refco``).
+    temperature_source : str
+        ``given`` or ``standard_atmosphere``.
+    refa_rad, refb_rad : float
+        Refraction constants A and B of dZ = A tan Z + B tan^3 Z, radians.
+    """
+
+    mode: str
+    pressure_hpa: float
+    temperature_c: float
+    relative_humidity: float
+    wavelength_um: float
+    temperature_source: str
+    refa_rad: float
+    refb_rad: float
+
+
+def refraction_settings(site: Site, atmosphere: Atmosphere | None) -> RefractionSettings:
+    """Resolve missing atmosphere values (Note 1) and compute SOFA ``refco`` constants.
+
+    Notes
+    -----
+    1. Missing pressure: US Standard Atmosphere 1976 at the site height
+       (:func:`standard_atmosphere`); missing temperature likewise; pressure 0 switches
+       refraction off.
+    """
+    atm = atmosphere or Atmosphere()
+    p_std, t_std = standard_atmosphere(site.height_m)
+    if atm.pressure_hpa is None:
+        mode, p = "standard_atmosphere_pressure", float(p_std)
+    elif atm.pressure_hpa == 0.0:
+        mode, p = "off", 0.0
+    else:
+        mode, p = "given_pressure", float(atm.pressure_hpa)
+    if atm.temperature_c is None:
+        t, t_src = float(t_std), "standard_atmosphere"
+    else:
+        t, t_src = float(atm.temperature_c), "given"
+    rh = DEFAULT_RELATIVE_HUMIDITY if atm.relative_humidity is None else atm.relative_humidity
+    wl = DEFAULT_WAVELENGTH_UM if atm.wavelength_um is None else atm.wavelength_um
+    refa, refb = _refco_cached(p, t, float(rh), float(wl))
+    return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb)
+
+
+# ---------------------------------------------------------------------------------------------
+# The per-star chain (numpy form of SOFA pmpx, ldsun, ab, atioq)
+# ---------------------------------------------------------------------------------------------
+
+
+def _dot(a, b):
+    return a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
+
+
+def _sincos(x, reduce=True):
+    """Sine and cosine of angles in radians, from one tangent of the quarter angle.
+
+    numpy's float64 tan is vectorised (SIMD) while sin and cos are not on common builds;
+    with t = tan(x/4), |x| <= pi after reduction: s2 = 2t/(1+t^2), c2 = (1-t^2)/(1+t^2) are
+    sin and cos of x/2, and sin x = 2 s2 c2, cos x = (c2 - s2)(c2 + s2). Agreement with
+    np.sin/np.cos is within 2e-15 (checked in tests). ``reduce=False`` skips the reduction
+    to [-pi, pi] for arguments known to lie there (declinations); ``reduce="shift"`` is for
+    arguments in [0, 2 pi] (right ascensions): x - pi, with both signs flipped.
+    """
+    shifted = reduce == "shift"
+    if shifted:
+        x = x - np.pi
+    elif reduce:
+        x = x - TWO_PI * np.round(x * (1.0 / TWO_PI))
+    t = np.tan(0.25 * x)
+    t2 = t * t
+    d = 1.0 / (1.0 + t2)
+    sh = (2.0 * d) * t  # sin(x/2)
+    ch = (1.0 - t2) * d  # cos(x/2)
+    if shifted:  # sin(x + pi) = -sin x, cos(x + pi) = -cos x
+        return (-2.0 * sh) * ch, (sh - ch) * (sh + ch)
+    return (2.0 * sh) * ch, (ch - sh) * (ch + sh)
+
+
+def _nan0(a):
+    """NaN -> 0 (missing proper motion or radial velocity taken as zero, flagged elsewhere)."""
+    if np.ndim(a) == 0:
+        return 0.0 if np.isnan(a) else float(a)
+    nan = np.isnan(a)
+    return np.where(nan, 0.0, a) if nan.any() else a
+
+
+def _star_vectors(ra_deg, dec_deg, parallax_mas, pmra, pmdec, rv, dt_yr, eb_au):
+    """Direction from the observer, BCRS, after space motion and parallax (SOFA ``pmpx``).
+
+    The star at the catalogue epoch is the unit vector p with space motion w per unit
+    distance; its position relative to the observer, in units of its catalogue distance, is
+    p + dt' w - parallax(rad) * eb with dt' = dt + (p.eb)/c (SOFA pmpx, Note 3 of
+    :func:`observed_places`).
+    """
+    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
+    in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI if ra.ndim else 0.0 <= ra <= TWO_PI
+    sr, cr = _sincos(ra, reduce="shift" if in_range else True)
+    sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
+    x = cd * cr
+    y = cd * sr
+    z = sd
+    # fmax maps NaN (missing parallax) to 0 as well as non-positive values.
+    pxr = np.fmax(parallax_mas, 0.0) * (1.0 / MAS_PER_RAD)
+    mu_a = _nan0(pmra) * (1.0 / MAS_PER_RAD)
+    mu_d = _nan0(pmdec) * (1.0 / MAS_PER_RAD)
+    zeta = _nan0(rv) * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr
+    e0, e1, e2 = eb_au
+    if np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0.0:
+        # No space motion: only the parallax shift remains.
+        ux = x - pxr * e0
+        uy = y - pxr * e1
+        uz = z - pxr * e2
+    else:
+        # Light-time across the observer's offset from the barycentre (Roemer effect, pmpx).
+        dt_yr = dt_yr + (x * e0 + y * e1 + z * e2) * LIGHT_TIME_AU_YR
+        a = dt_yr * mu_a
+        b = dt_yr * mu_d
+        c = 1.0 + dt_yr * zeta
+        bz = b * sd
+        ux = c * x - a * sr - bz * cr - pxr * e0
+        uy = c * y + a * cr - bz * sr - pxr * e1
+        uz = c * z + b * cd - pxr * e2
+    n = 1.0 / np.sqrt(ux * ux + uy * uy + uz * uz)
+    return [ux * n, uy * n, uz * n]
+
+
+def _deflect_and_aberrate(q, eh, em, v, bm1, deflect=True):
+    """SOFA ``ldsun`` (light deflection by the Sun) then ``ab`` (aberration).
+
+    Returns the unit vector of the proper direction (SOFA ``ab`` output).
+    """
+    em = float(em) if np.ndim(em) == 0 else em
+    bm1 = float(bm1) if np.ndim(bm1) == 0 else bm1
+    if deflect:
+        dlim = 1e-6 / np.maximum(em * em, 1.0)
+        qe = q[0] * eh[0] + q[1] * eh[1] + q[2] * eh[2]
+        w = (SCHWARZSCHILD_RADIUS_SUN_AU / em) / np.maximum(qe + 1.0, dlim)
+        wqe = w * qe
+        # q + w (e - (q.e) q) = (1 - w q.e) q + w e
+        k = 1.0 - wqe
+        q = [k * q[0] + w * eh[0], k * q[1] + w * eh[1], k * q[2] + w * eh[2]]
+    pdv = q[0] * v[0] + q[1] * v[1] + q[2] * v[2]
+    w2 = SCHWARZSCHILD_RADIUS_SUN_AU / em
+    # p = bm1 q + w1 v + w2 (v - pdv q) = (bm1 - w2 pdv) q + (1 + pdv/(1+bm1) + w2) v
+    k1 = bm1 - w2 * pdv
+    k2 = (1.0 + w2) + pdv * (1.0 / (1.0 + bm1))
+    p0 = k1 * q[0] + k2 * v[0]
+    p1 = k1 * q[1] + k2 * v[1]
+    p2 = k1 * q[2] + k2 * v[2]
+    n = 1.0 / np.sqrt(p0 * p0 + p1 * p1 + p2 * p2)
+    return [p0 * n, p1 * n, p2 * n]
+
+
+def _rot(m, p):
+    if m.ndim == 2:
+        m = [[float(m[i, j]) for j in range(3)] for i in range(3)]
+        return [m[i][0] * p[0] + m[i][1] * p[1] + m[i][2] * p[2] for i in range(3)]
+    return [m[..., i, 0] * p[0] + m[..., i, 1] * p[1] + m[..., i, 2] * p[2] for i in range(3)]
+
+
+def _observing_matrix(astrom):
+    """BCRS (aberrated) direction -> Cartesian azimuth/elevation (S=0, E=90), as atioq.
+
+    Product A W R3(eral) BPN: CIO-based bias-precession-nutation, Earth rotation angle with
+    longitude, polar motion, then hour angle/declination to azimuth/elevation (SOFA atioq).
+    """
+    if np.ndim(astrom["eral"]) == 0:
+        return _observing_matrix_scalar(astrom)
+    eral = astrom["eral"]
+    ce, se = np.cos(eral), np.sin(eral)
+    o, z = np.ones_like(eral), np.zeros_like(eral)
+    r3 = np.stack(
+        [np.stack([ce, se, z], -1), np.stack([-se, ce, z], -1), np.stack([z, z, o], -1)], -2
+    )
+    sx, cx = np.sin(astrom["xpl"]), np.cos(astrom["xpl"])
+    sy, cy = np.sin(astrom["ypl"]), np.cos(astrom["ypl"])
+    w = np.stack(
+        [
+            np.stack([cx, z, sx], -1),
+            np.stack([sx * sy, cy, -cx * sy], -1),
+            np.stack([-sx * cy, sy, cx * cy], -1),
+        ],
+        -2,
+    )
+    sp, cp = astrom["sphi"], astrom["cphi"]
+    a = np.stack(
+        [np.stack([sp, z, -cp], -1), np.stack([z, o, z], -1), np.stack([cp, z, sp], -1)], -2
+    )
+    return a @ w @ r3 @ astrom["bpn"]
+
+
+def _observing_matrix_scalar(astrom):
+    """:func:`_observing_matrix` for one instant, with Python floats (less overhead)."""
+    e = float(astrom["eral"])
+    ce, se = math.cos(e), math.sin(e)
+    xp, yp = float(astrom["xpl"]), float(astrom["ypl"])
+    sx, cx, sy, cy = math.sin(xp), math.cos(xp), math.sin(yp), math.cos(yp)
+    sp, cp = float(astrom["sphi"]), float(astrom["cphi"])
+    r3 = np.array([[ce, se, 0.0], [-se, ce, 0.0], [0.0, 0.0, 1.0]])
+    w = np.array([[cx, 0.0, sx], [sx * sy, cy, -cx * sy], [-sx * cy, sy, cx * cy]])
+    a = np.array([[sp, 0.0, -cp], [0.0, 1.0, 0.0], [cp, 0.0, sp]])
+    return a @ w @ r3 @ astrom["bpn"]
+
+
+def _refract(aet, refa, refb):
+    """SOFA ``atioq`` refraction: unrefracted az/el vector -> observed vector and angle."""
+    xaet, yaet, zaet = aet
+    r0 = np.sqrt(xaet * xaet + yaet * yaet)
+    r = np.maximum(r0, ATIOQ_CELMIN)
+    zz = np.maximum(zaet, ATIOQ_SELMIN)
+    tz = r / zz
+    w = refb * tz * tz
+    dl = (refa + w) * tz / (1.0 + (refa + 3.0 * w) / (zz * zz))
+    cosdel = 1.0 - dl * dl * 0.5
+    f = cosdel - dl * zz / r
+    zaeo = cosdel * zaet + dl * r
+    return f, zaeo, r0, dl
+
+
+@dataclass
+class _Instant:
+    """Star-independent quantities of one or more instants (arrays of the instants' shape)."""
+
+    eb: list
+    eh: list
+    v: list
+    em: np.ndarray
+    bm1: np.ndarray
+    m: np.ndarray
+    sphi: np.ndarray
+    cphi: np.ndarray
+    refa: np.ndarray
+    refb: np.ndarray
+    eral: np.ndarray
+    sun_aet: list
+    sun_az: np.ndarray
+    sun_zd: np.ndarray
+    m_eh: list = None
+    m_v: list = None
+    ehv: np.ndarray = None
+    srs_over_em: np.ndarray = None
+    dlim: np.ndarray = None
+    k2_const: np.ndarray = None
+    inv_1_bm1: np.ndarray = None
+
+
+def _instant_quantities(astrom) -> _Instant:
+    eb = [astrom["eb"][..., i] for i in range(3)]
+    eh = [astrom["eh"][..., i] for i in range(3)]
+    v = [astrom["v"][..., i] for i in range(3)]
+    m = _observing_matrix(astrom)
+    # Sun: BCRS direction from the observer is -eh; aberration, no self-deflection.
+    sun = _deflect_and_aberrate(
+        [-eh[0], -eh[1], -eh[2]], eh, astrom["em"], v, astrom["bm1"], deflect=False
+    )
+    sun_aet = _rot(m, sun)
+    f, zaeo, r0, _ = _refract(sun_aet, astrom["refa"], astrom["refb"])
+    sun_az = np.mod(np.arctan2(sun_aet[1], -sun_aet[0]), TWO_PI)
+    sun_zd = np.arctan2(np.abs(f) * r0, zaeo)
+    em, bm1 = astrom["em"], astrom["bm1"]
+    return _Instant(
+        eb, eh, v, em, bm1, m, astrom["sphi"], astrom["cphi"],
+        astrom["refa"], astrom["refb"], astrom["eral"], sun_aet, sun_az, sun_zd,
+        m_eh=_rot(m, eh), m_v=_rot(m, v), ehv=eh[0] * v[0] + eh[1] * v[1] + eh[2] * v[2],
+        srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em, dlim=1e-6 / np.maximum(em * em, 1.0),
+        k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em, inv_1_bm1=1.0 / (1.0 + bm1),
+    )  # fmt: skip
+
+
+def _apparent_aet(q, ins: _Instant):
+    """Deflection (ldsun), aberration (ab) and the rotation to azimuth/elevation, fused.
+
+    With q the unit BCRS direction, SOFA ldsun gives q' = (1 - w q.e) q + w e and ab gives
+    p = k1 q' + k2 v (normalised); the rotation M to azimuth/elevation is linear, so
+    M p = k1 (1 - w q.e) (M q) + k1 w (M e) + k2 (M v), with M e and M v computed once per
+    instant. The result is the unit vector of the unrefracted topocentric direction.
+    """
+    eh, v, bm1 = ins.eh, ins.v, ins.bm1
+    qe = q[0] * eh[0] + q[1] * eh[1] + q[2] * eh[2]
+    qv = q[0] * v[0] + q[1] * v[1] + q[2] * v[2]
+    w = ins.srs_over_em / np.maximum(qe + 1.0, ins.dlim)
+    g = 1.0 - w * qe
+    pdv = g * qv + w * ins.ehv  # q'.v
+    k1 = bm1 - ins.srs_over_em * pdv
+    k2 = ins.k2_const + pdv * ins.inv_1_bm1
+    a = k1 * g
+    b = k1 * w
+    mq = _rot(ins.m, q)
+    me, mv = ins.m_eh, ins.m_v
+    p0 = a * mq[0] + b * me[0] + k2 * mv[0]
+    p1 = a * mq[1] + b * me[1] + k2 * mv[1]
+    p2 = a * mq[2] + b * me[2] + k2 * mv[2]
+    n = 1.0 / np.sqrt(p0 * p0 + p1 * p1 + p2 * p2)
+    return [p0 * n, p1 * n, p2 * n]
+
+
+#: Outputs of the per-star chain, in order, with their dtypes.
+_CHAIN_FIELDS = (
+    ("azimuth_deg", float),
+    ("zenith_distance_deg", float),
+    ("altitude_deg", float),
+    ("hour_angle_deg", float),
+    ("observed_dec_deg", float),
+    ("observed_ra_cio_deg", float),
+    ("parallactic_angle_deg", float),
+    ("airmass", float),
+    ("refraction_arcsec", float),
+    ("sun_separation_deg", float),
+    ("flags", np.uint32),
+)
+
+
+def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits):
+    """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits."""
+    q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
+    aet = _apparent_aet(q, ins)
+    xaet, yaet, zaet = aet
+    # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
+    az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
+    if np.ndim(az):
+        np.subtract(az, 360.0, out=az, where=az >= 360.0)
+    elif az >= 360.0:
+        az = az - 360.0
+    f, zaeo, r0, dl = _refract(aet, ins.refa, ins.refb)
+    zd = np.arctan2(np.abs(f) * r0, zaeo) * DEG_PER_RAD
+    xaeo = xaet * f
+    yaeo = yaet * f
+    sp, cp = ins.sphi, ins.cphi
+    v0 = sp * xaeo + cp * zaeo
+    v2 = sp * zaeo - cp * xaeo
+    h2 = v0 * v0 + yaeo * yaeo
+    ha = np.arctan2(-yaeo, v0) * DEG_PER_RAD
+    dec = np.arctan2(v2, np.sqrt(h2)) * DEG_PER_RAD
+    ra = ins.eral * DEG_PER_RAD - ha
+    ra = ra - 360.0 * np.floor(ra * (1.0 / 360.0))
+    # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
+    # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
+    pa = np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0) * DEG_PER_RAD
+    airmass = airmass_young1994(zaet)
+    # Sun separation from the chord between the unrefracted unit vectors: 2 asin(|a-b|/2),
+    # |a-b|^2 = 2 - 2 a.b (precision about 1e-8 rad near zero separation, ample here).
+    s = ins.sun_aet
+    half_chord2 = 0.5 - 0.5 * (xaet * s[0] + yaet * s[1] + zaet * s[2])
+    sep = np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))) * (2.0 * DEG_PER_RAD)
+    horizon_limit, avoidance = limits
+    alt = 90.0 - zd
+    flags = _any_bits(
+        (np.isnan(px), _F_MISSING_PARALLAX),
+        (px <= 0.0, _F_NON_POSITIVE_PARALLAX),
+        (np.isnan(rv), _F_MISSING_RADIAL_VELOCITY),
+        (np.isnan(pmra) | np.isnan(pmdec), _F_MISSING_PROPER_MOTION),
+        (alt < horizon_limit, _F_BELOW_HORIZON_LIMIT),
+        (sep < avoidance, _F_WITHIN_SUN_AVOIDANCE),
+        (zaet < 0.0, _F_AIRMASS_UNDEFINED),
+    )
+    return az, zd, alt, ha, dec, ra, pa, airmass, dl * _ARCSEC_PER_RAD, sep, flags
+
+
+#: Stars per block when many stars share one instant: keeps the temporaries in cache.
+CHAIN_BLOCK = 8192
+
+
+# ---------------------------------------------------------------------------------------------
+# Instants
+# ---------------------------------------------------------------------------------------------
+
+
+def _check_instants(utc_jd1, utc_jd2):
+    jd1 = np.asarray(utc_jd1, dtype=float)
+    jd2 = np.asarray(utc_jd2, dtype=float)
+    if not (np.all(np.isfinite(jd1)) and np.all(np.isfinite(jd2))):
+        raise ObservedInputError("instants", "must be finite dates")
+    ep = 2000.0 + ((jd1 - 2451545.0) + jd2) / 365.25
+    if np.any(ep < SUPPORTED_EPOCH_MIN) or np.any(ep >= SUPPORTED_EPOCH_MAX):
+        raise ObservedInputError(
+            "instants",
+            f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
+        )
+    if jd1.shape == jd2.shape:
+        return jd1, jd2
+    return np.broadcast_arrays(jd1, jd2)
+
+
+def utc_from_julian_epoch_tdb(jyear):
+    """UTC two-part quasi Julian date of Julian epochs on the TDB scale.
+
+    Parameters
+    ----------
+    jyear : array_like
+        Julian epochs (TDB), years.
+
+    Returns
+    -------
+    utc_jd1, utc_jd2 : ndarray
+        UTC (SOFA quasi-JD convention), days.
+
+    Notes
+    -----
+    1. TDB -> TT with the Fairhead & Bretagnon series of SOFA ``dtdb`` at the geocentre
+       (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch resolves about
+       15 microseconds, i.e. 0.2 mas of Earth rotation.
+    """
+    d1, d2 = erfa.epj2jd(np.asarray(jyear, dtype=float))
+    with warnings.catch_warnings():
+        # "dubious year" beyond the leap-second table: reported by the caller's flags.
+        warnings.simplefilter("ignore", erfa.ErfaWarning)
+        dt = erfa.dtdb(d1, d2, np.mod(d2, 1.0), 0.0, 0.0, 0.0)
+        a1, a2 = erfa.tttai(d1, d2 - dt / 86400.0)
+        return erfa.taiutc(a1, a2)
+
+
+def _quiet_erfa(func, *args):
+    """Call an ERFA function whose only possible warning here is "dubious year".
+
+    ERFA warns "dubious year" for UTC dates beyond its leap-second table; the condition is
+    reported per instant with the LEAP_SECONDS_EXTRAPOLATED flag instead.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", erfa.ErfaWarning)
+        return func(*args)
+
+
+# ---------------------------------------------------------------------------------------------
+# Star-independent quantities: apco13 with the precession-nutation interpolated from a cache
+# ---------------------------------------------------------------------------------------------
+
+#: Spacing of the cached precession-nutation nodes, days (15 minutes of TT).
+CIP_NODE_STEP_DAYS = 1.0 / 96.0
+
+
+@functools.lru_cache(maxsize=4096)
+def _cip_node(k: int):
+    """CIP X, Y, CIO locator s and equation of the origins at node k (TT = k * step, JD).
+
+    IAU 2006/2000A as SOFA ``apco13`` computes them: ``pnm06a``, ``bpn2xy``, ``s06``,
+    ``eors``.
+    """
+    d1 = k * CIP_NODE_STEP_DAYS
+    d1i = np.floor(d1)
+    d2 = d1 - d1i
+    r = erfa.pnm06a(d1i, d2)
+    x, y = erfa.bpn2xy(r)
+    s = erfa.s06(d1i, d2, x, y)
+    return float(x), float(y), float(s), float(erfa.eors(r, s))
+
+
+def _cip_interpolated(tt1, tt2):
+    """X, Y, s, eo at TT instants by 3-point (quadratic) interpolation between cached nodes.
+
+    Notes
+    -----
+    1. The shortest periods in IAU 2000A nutation are a few days (largest short-period
+       terms ~0.2 arcsec at 13.66 d); with 15-minute nodes the quadratic interpolation error
+       is below 1e-8 arcsec, far below the 1e-12 rad to which the SOFA atco13 test values are
+       reproduced (checked in tests).
+    """
+    tt1 = np.asarray(tt1, dtype=float)
+    tt2 = np.asarray(tt2, dtype=float)
+    base = np.floor(tt1 / CIP_NODE_STEP_DAYS)
+    frac = (tt1 - base * CIP_NODE_STEP_DAYS + tt2) / CIP_NODE_STEP_DAYS
+    shift = np.floor(frac)
+    k0 = (base + shift).astype(np.int64)
+    u = frac - shift  # in [0, 1): between node k0 and k0 + 1
+    flat_k = k0.reshape(-1)
+    flat_u = u.reshape(-1)
+    out = np.empty((flat_k.size, 4))
+    for i, (k, t) in enumerate(zip(flat_k.tolist(), flat_u.tolist(), strict=True)):
+        a = np.array(_cip_node(k - 1))
+        b = np.array(_cip_node(k))
+        c = np.array(_cip_node(k + 1))
+        # Lagrange through t = -1, 0, 1.
+        out[i] = b + 0.5 * t * (c - a) + 0.5 * t * t * (c - 2.0 * b + a)
+    out = out.reshape(k0.shape + (4,))
+    return out[..., 0], out[..., 1], out[..., 2], out[..., 3]
+
+
+@functools.lru_cache(maxsize=256)
+def _refco_cached(p, t, rh, wl):
+    refa, refb = erfa.refco(p, t, rh, wl)
+    return float(refa), float(refb)
+
+
+def star_independent(jd1, jd2, dut1, xp, yp, site: Site, refr: RefractionSettings):
+    """SOFA ``apco13``, with the precession-nutation taken from :func:`_cip_interpolated`.
+
+    Parameters
+    ----------
+    jd1, jd2 : array_like
+        UTC, two-part quasi JD.
+    dut1 : array_like
+        UT1-UTC, seconds.
+    xp, yp : array_like
+        Polar motion, radians.
+    site : Site
+    refr : RefractionSettings
+
+    Returns
+    -------
+    astrom : ERFA ASTROM structured array
+    eo : ndarray
+        Equation of the origins, radians.
+    tt1, tt2 : ndarray
+        TT, two-part JD.
+    ebpv, ehp : ndarray
+        Earth barycentric position/velocity and heliocentric position (SOFA ``epv00``).
+
+    Notes
+    -----
+    1. The sequence is that of ``apco13``: UTC -> TAI -> TT and UT1, ``epv00``, CIP X, Y and
+       s, ``era00``, ``sp00``, refraction constants from ``refco``, then ``apco``.
+    """
+    tai1, tai2 = _quiet_erfa(erfa.utctai, jd1, jd2)
+    tt1, tt2 = erfa.taitt(tai1, tai2)
+    u1, u2 = _quiet_erfa(erfa.utcut1, jd1, jd2, dut1)
+    ehpv, ebpv = erfa.epv00(tt1, tt2)
+    x, y, s, eo = _cip_interpolated(tt1, tt2)
+    theta = erfa.era00(u1, u2)
+    sp = erfa.sp00(tt1, tt2)
+    refa, refb = (refr.refa_rad, refr.refb_rad)
+    astrom = erfa.apco(
+        tt1, tt2, ebpv, ehpv["p"], x, y, s, theta,
+        site.longitude_deg * RAD_PER_DEG, site.latitude_deg * RAD_PER_DEG, site.height_m,
+        xp, yp, sp, refa, refb,
+    )  # fmt: skip
+    return astrom, eo, tt1, tt2, ebpv, ehpv["p"]
+
+
+# ---------------------------------------------------------------------------------------------
+# Result and main entry point
+# ---------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ObservedPlaces:
+    """Places of stars at a site and instants (arrays broadcast over stars and instants).
+
+    Angles in degrees unless named otherwise. Safety figures are advisory only: the
+    facility's own interlocks and safety rules decide.
+
+    Attributes
+    ----------
+    astrometric_ra_deg, astrometric_dec_deg : ndarray
+        Geocentric astrometric place (ICRS; space motion and parallax, no aberration).
+    apparent_ra_deg, apparent_dec_deg : ndarray
+        Geocentric apparent place, true equator and equinox of date (RA = CIRS RA - equation
+        of the origins).
+    apparent_ra_cio_deg : ndarray
+        Geocentric apparent RA referred to the CIO (CIRS).
+    azimuth_deg : ndarray
+        Observed azimuth, north = 0, east = 90, in [0, 360).
+    altitude_deg, zenith_distance_deg : ndarray
+        Observed (refracted) altitude and zenith distance.
+    hour_angle_deg, observed_dec_deg, observed_ra_cio_deg : ndarray
+        Observed hour angle (west positive, [-180, 180)), declination and CIO-based RA.
+    parallactic_angle_deg : ndarray
+        Parallactic angle of the observed place (SOFA hd2pa convention).
+    airmass : ndarray
+        Young (1994) airmass from the unrefracted zenith distance (NaN below the horizon).
+    refraction_arcsec : ndarray
+        Refraction applied (unrefracted minus observed zenith distance), arcsec.
+    sun_altitude_deg, sun_azimuth_deg : ndarray
+        Observed place of the Sun's centre (per instant, broadcast).
+    sun_separation_deg : ndarray
+        Angle between the target and the Sun, topocentric, degrees.
+    flags : ndarray of uint32
+        :class:`ObservedFlag` bits.
+    epoch_tt_jyear : ndarray
+        Instants as Julian epochs (TT), years (per instant).
+    eop : EarthOrientationValues
+        UT1-UTC and polar motion used, per instant, with source and accuracy class.
+    refraction : RefractionSettings
+    site : Site
+    horizon_limit_deg, sun_avoidance_deg : float
+        Limits used for the advisory flags.
+    provenance : dict
+        Tables used (names, spans, leap-second validity).
+    """
+
+    astrometric_ra_deg: np.ndarray
+    astrometric_dec_deg: np.ndarray
+    apparent_ra_deg: np.ndarray
+    apparent_dec_deg: np.ndarray
+    apparent_ra_cio_deg: np.ndarray
+    azimuth_deg: np.ndarray
+    altitude_deg: np.ndarray
+    zenith_distance_deg: np.ndarray
+    hour_angle_deg: np.ndarray
+    observed_dec_deg: np.ndarray
+    observed_ra_cio_deg: np.ndarray
+    parallactic_angle_deg: np.ndarray
+    airmass: np.ndarray
+    refraction_arcsec: np.ndarray
+    sun_altitude_deg: np.ndarray
+    sun_azimuth_deg: np.ndarray
+    sun_separation_deg: np.ndarray
+    flags: np.ndarray
+    epoch_tt_jyear: np.ndarray
+    eop: EarthOrientationValues
+    refraction: RefractionSettings
+    site: Site
+    horizon_limit_deg: float
+    sun_avoidance_deg: float
+    provenance: dict = field(default_factory=dict)
+
+
+def _shaped(x, shape):
+    """``x`` as an array of ``shape`` (a broadcast view only when needed)."""
+    return x if np.shape(x) == shape else np.broadcast_to(x, shape)
+
+
+def _bits(mask, flag):
+    return np.where(mask, np.uint32(int(flag)), np.uint32(0))
+
+
+def _any_bits(*pairs):
+    """OR of flag bits where each condition holds; conditions that never hold cost little."""
+    out = np.uint32(0)
+    for mask, flag in pairs:
+        if np.ndim(mask) == 0:
+            if mask:
+                out = out | np.uint32(flag)
+        elif mask.any():
+            out = out | np.where(mask, np.uint32(flag), np.uint32(0))
+    return out
+
+
+def observed_places(
+    ra_deg,
+    dec_deg,
+    parallax_mas,
+    pm_ra_cosdec_mas_yr,
+    pm_dec_mas_yr,
+    radial_velocity_km_s,
+    epoch_jyear,
+    utc_jd1,
+    utc_jd2,
+    site: Site,
+    atmosphere: Atmosphere | None = None,
+    *,
+    eop: EarthOrientation | None = None,
+    eop_values: tuple | None = None,
+    horizon_limit_deg: float = DEFAULT_HORIZON_LIMIT_DEG,
+    sun_avoidance_deg: float = DEFAULT_SUN_AVOIDANCE_DEG,
+    geocentric: bool = True,
+) -> ObservedPlaces:
+    """Astrometric, apparent and observed places of stars at a site and instants.
+
+    Parameters
+    ----------
+    ra_deg, dec_deg : array_like
+        ICRS position at the catalogue epoch, degrees.
+    parallax_mas : array_like
+        Parallax, mas; NaN, zero or negative = no parallax shift (flagged).
+    pm_ra_cosdec_mas_yr, pm_dec_mas_yr : array_like
+        Proper motion, mas per Julian year (RA component times cos dec); NaN = zero, flagged.
+    radial_velocity_km_s : array_like
+        Radial velocity, km/s; NaN = zero, flagged.
+    epoch_jyear : array_like
+        Catalogue epoch, Julian epoch (TDB), years.
+    utc_jd1, utc_jd2 : array_like
+        Instants of observation, UTC as a two-part quasi Julian date (SOFA convention).
+        Their shape broadcasts with the star arrays: many stars at one instant, one star at
+        many instants, or star-by-instant pairs (Note 4).
+    site : Site
+        Observing site (:func:`make_site`, :func:`resolve_site`).
+    atmosphere : Atmosphere, optional
+        Conditions for refraction (:func:`make_atmosphere`); missing pressure comes from the
+        standard atmosphere, pressure 0 turns refraction off.
+    eop : EarthOrientation, optional
+        Earth-orientation tables; default :func:`earth_orientation`.
+    eop_values : tuple (ut1_utc_s, pm_x_arcsec, pm_y_arcsec), optional
+        Values to use instead of the tables (e.g. from the facility's own service); they are
+        reported with status ``MEASURED_RAPID`` and table name ``given``.
+    horizon_limit_deg : float
+        Altitude below which the target is flagged BELOW_HORIZON_LIMIT, degrees.
+    sun_avoidance_deg : float
+        Sun-target separation below which the target is flagged WITHIN_SUN_AVOIDANCE,
+        degrees. The default of 30 is a placeholder the operator must set.
+    geocentric : bool
+        Also compute the geocentric astrometric and apparent places (default True); False
+        fills them with NaN and saves their cost.
+
+    Returns
+    -------
+    ObservedPlaces
+
+    Notes
+    -----
+    1. The star-independent quantities come from SOFA ``apco13`` (IAU 2006/2000A precession
+       -nutation, Earth ephemeris ``epv00``, ERA, polar motion, refraction constants
+       ``refco``), computed once per instant. The per-star chain is SOFA ``atciq`` (with
+       ``pmpx``, ``ldsun``, ``ab``) and ``atioq``, written in numpy: the CIRS to azimuth
+       rotations are combined into one matrix per instant. Tests check the result against
+       ``erfa.atco13`` and astropy's AltAz.
+    2. The geocentric places use SOFA ``apci`` with the same precession-nutation and the
+       Earth's barycentric position and velocity from ``epv00``; the equinox-based apparent
+       RA is the CIRS RA minus the equation of the origins.
+    3. Space motion from the catalogue epoch to the instant (TT, which differs from TDB by
+       under 2 ms) is uniform motion in Cartesian coordinates as in SOFA ``pmpx``, including
+       its light-time (Roemer) adjustment of the interval for the observer's offset from
+       the barycentre.
+    4. The safety figures (Sun altitude and separation, horizon limit) are ADVISORY: the
+       facility's own interlocks and safety rules decide.
+    5. Refraction uses the A tan z + B tan^3 z model with the near-horizon guards of SOFA
+       ``atioq``; below about 5 degrees altitude its error grows (refco Note 2).
+
+    References
+    ----------
+    IAU SOFA Board, SOFA Astrometry Tools (routines apco13, atciq, atioq, pmpx, ldsun, ab,
+    refco, hd2pa), 2023 release. Kaplan, G.H. 2005, USNO Circular 179, chapters 6-7.
+    """
+    eop = eop or earth_orientation()
+    jd1, jd2 = _check_instants(utc_jd1, utc_jd2)
+    refr = refraction_settings(site, atmosphere)
+    eo_vals = earth_orientation_at(jd1, jd2, eop)
+    if eop_values is not None:
+        dut, pmx, pmy = (np.broadcast_to(np.asarray(x, dtype=float), jd1.shape) for x in eop_values)
+        eo_vals = EarthOrientationValues(
+            ut1_utc_s=dut,
+            pm_x_arcsec=pmx,
+            pm_y_arcsec=pmy,
+            status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
+            table=np.full(jd1.shape, "given"),
+            ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
+            pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
+            pointing_error_arcsec=np.full(
+                jd1.shape, ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC
+            ),
+            accuracy_class=np.full(jd1.shape, "milliarcsecond"),
+        )
+    xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
+    yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
+    astrom, eo, tt1, tt2, ebpv, ehp = star_independent(
+        jd1, jd2, eo_vals.ut1_utc_s, xp, yp, site, refr
+    )
+    epoch_tt = erfa.epj(tt1, tt2)
+    mjd_utc = (jd1 - 2400000.5) + jd2
+    ins = _instant_quantities(astrom)
+
+    stars = [
+        np.asarray(a, dtype=float)
+        for a in (
+            ra_deg, dec_deg, parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr,
+            radial_velocity_km_s, epoch_jyear,
+        )
+    ]  # fmt: skip
+    star_shape = np.broadcast_shapes(*(a.shape for a in stars))
+    shape = np.broadcast_shapes(star_shape, jd1.shape)
+    dt = epoch_tt - stars[6]
+    limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
+    if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
+        # Many stars, one instant: run the chain block by block (cache-sized temporaries).
+        full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
+        out = [np.empty(shape, dtype=dt_) for _, dt_ in _CHAIN_FIELDS]
+        for i in range(0, shape[0], CHAIN_BLOCK):
+            sl = slice(i, i + CHAIN_BLOCK)
+            res = _chain(*(a[sl] for a in full), ins, limits)
+            for o, r in zip(out, res, strict=True):
+                o[sl] = r
+    else:
+        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits)]
+    res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
+
+    sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
+    status = eo_vals.status
+    instant_flags = (
+        _bits(sun_alt_deg > 0.0, ObservedFlag.SUN_ABOVE_HORIZON)
+        | _bits(
+            status == EarthOrientationStatus.PREDICTED, ObservedFlag.EARTH_ORIENTATION_PREDICTED
+        )
+        | _bits(
+            status == EarthOrientationStatus.UNAVAILABLE,
+            ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
+        )
+        | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
+    )
+    if np.any(instant_flags):
+        res["flags"] = _shaped(res["flags"] | instant_flags, shape).astype(np.uint32)
+
+    a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
+    if geocentric:
+        geo = _geocentric_astrom(tt1, tt2, astrom, ebpv, ehp)
+        if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
+            full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
+            gout = [np.empty(shape) for _ in range(5)]
+            for i in range(0, shape[0], CHAIN_BLOCK):
+                sl = slice(i, i + CHAIN_BLOCK)
+                for o, r in zip(
+                    gout, _geocentric_places(*(a[sl] for a in full), geo, eo), strict=True
+                ):
+                    o[sl] = r
+            a_ra, a_dec, app_ra, app_dec, app_ra_cio = gout
+        else:
+            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(*stars[:6], dt, geo, eo)
+
+    return ObservedPlaces(
+        astrometric_ra_deg=_shaped(a_ra, shape),
+        astrometric_dec_deg=_shaped(a_dec, shape),
+        apparent_ra_deg=_shaped(app_ra, shape),
+        apparent_dec_deg=_shaped(app_dec, shape),
+        apparent_ra_cio_deg=_shaped(app_ra_cio, shape),
+        **res,
+        sun_altitude_deg=_shaped(sun_alt_deg, shape),
+        sun_azimuth_deg=_shaped(ins.sun_az * DEG_PER_RAD, shape),
+        epoch_tt_jyear=np.asarray(epoch_tt),
+        eop=eo_vals,
+        refraction=refr,
+        site=site,
+        horizon_limit_deg=float(horizon_limit_deg),
+        sun_avoidance_deg=float(sun_avoidance_deg),
+        provenance=eop.describe(),
+    )
+
+
+def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
+    """Star-independent quantities for a geocentric observer (SOFA ``apci``)."""
+    bpn = astrom_obs["bpn"]
+    x, y = bpn[..., 2, 0], bpn[..., 2, 1]
+    _, _, s, _ = _cip_interpolated(tt1, tt2)
+    geo = erfa.apci(tt1, tt2, ebpv, ehp, x, y, s)
+    return {
+        "eb": [geo["eb"][..., i] for i in range(3)],
+        "eh": [geo["eh"][..., i] for i in range(3)],
+        "v": [geo["v"][..., i] for i in range(3)],
+        "em": geo["em"],
+        "bm1": geo["bm1"],
+        "bpn": bpn,
+    }
+
+
+def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo):
+    """Geocentric astrometric (SOFA atccq) and apparent (atciq with apci) places, degrees."""
+    q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["eb"])
+    a_ra = np.mod(np.arctan2(q[1], q[0]), TWO_PI) * DEG_PER_RAD
+    a_dec = np.arctan2(q[2], np.sqrt(q[0] * q[0] + q[1] * q[1])) * DEG_PER_RAD
+    ppr = _deflect_and_aberrate(q, geo["eh"], geo["em"], geo["v"], geo["bm1"])
+    pi = _rot(geo["bpn"], ppr)
+    ri = np.arctan2(pi[1], pi[0])
+    di = np.arctan2(pi[2], np.sqrt(pi[0] * pi[0] + pi[1] * pi[1]))
+    ra_cio = np.mod(ri, TWO_PI) * DEG_PER_RAD
+    ra_eq = np.mod(ri - eo, TWO_PI) * DEG_PER_RAD
+    return a_ra, a_dec, ra_eq, di * DEG_PER_RAD, ra_cio

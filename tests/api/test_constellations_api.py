@@ -1,0 +1,231 @@
+"""/v1/constellations: results against the core, layouts, and one test per bad input."""
+
+import json
+
+import numpy as np
+import pytest
+
+from service.core import constellations as core
+
+BASE = "/v1/constellations"
+STAR = {"ra_deg": 83.8, "dec_deg": -5.4}  # in Orion (checked against the core below)
+
+
+def assert_problem(r, status, field=None):
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    body = r.json
+    assert body["status"] == status
+    if field is not None:
+        fields = [e["field"] for e in body.get("errors", [])]
+        assert field in fields, fields
+    return body
+
+
+def col(stars, name):
+    return np.array([np.nan if s.get(name) is None else s[name] for s in stars], float)
+
+
+# ---------------------------------------------------------------- results
+
+
+def test_list_of_88(client):
+    r = client.get(BASE)
+    assert r.status_code == 200
+    body = r.json
+    assert body["count"] == 88 and len(body["constellations"]) == 88
+    ori = next(c for c in body["constellations"] if c["abbreviation"] == "Ori")
+    assert ori["name"] == "Orion"
+
+
+def test_lookup_matches_core_in_both_layouts(client, demo_catalogue):
+    stars = [{k: s.get(k) for k in ("id", "ra_deg", "dec_deg")} for s in demo_catalogue["stars"]]
+    r = client.post(f"{BASE}/lookup", json={"stars": stars})
+    assert r.status_code == 200
+    ref = core.locate(col(stars, "ra_deg"), col(stars, "dec_deg"), with_margin=False)
+    got = [s["constellation"] for s in r.json["stars"]]
+    assert got == list(ref.abbreviation)
+    assert [s["id"] for s in r.json["stars"]] == [s["id"] for s in stars]
+    columns = {k: [s[k] for s in stars] for k in ("id", "ra_deg", "dec_deg")}
+    rc = client.post(f"{BASE}/lookup", json={"stars": columns, "reduction": "fk5"})
+    assert rc.json["layout"] == "columns"
+    ref5 = core.locate(col(stars, "ra_deg"), col(stars, "dec_deg"), reduction="fk5")
+    assert rc.json["columns"]["constellation"] == list(ref5.abbreviation)
+    assert "margin_arcsec" not in rc.json["columns"]
+
+
+def test_lookup_moves_stars_to_the_epoch(client, demo_catalogue):
+    example = json.loads(
+        (
+            __import__("pathlib").Path(__file__).resolve().parents[2]
+            / "shared/demo/examples/constellations_lookup_request.json"
+        ).read_text()
+    )
+    r = client.post(f"{BASE}/margins", json=example)
+    assert r.status_code == 200
+    stars = example["stars"]
+    ref = core.locate_moving(
+        col(stars, "ra_deg"),
+        col(stars, "dec_deg"),
+        col(stars, "parallax_mas"),
+        col(stars, "pm_ra_cosdec_mas_yr"),
+        col(stars, "pm_dec_mas_yr"),
+        col(stars, "radial_velocity_km_s"),
+        2016.0,
+        2026.0,
+    )
+    body = r.json
+    assert body["epoch"]["julian_epoch_tdb"] == 2026.0
+    got = np.array([s["margin_arcsec"] for s in body["stars"]])
+    np.testing.assert_array_equal(got, ref.margin_arcsec)
+    assert [s["across"] for s in body["stars"]] == list(
+        np.asarray(core.boundary_table().abbreviations)[ref.other_side_index]
+    )
+
+
+def test_margins_flag_near_boundary(client):
+    r = client.post(f"{BASE}/margins", json={"stars": [STAR], "near_boundary_arcsec": 36_000.0})
+    s = r.json["stars"][0]
+    assert s["constellation"] == "Ori" and s["near_boundary"] is True
+    assert "near_boundary" in s["flags"] and "near_boundary" in r.json["flag_meanings"]
+    r = client.post(f"{BASE}/margins", json={"stars": [STAR]})
+    assert r.json["stars"][0]["near_boundary"] is False
+
+
+def test_crossings_match_core(client):
+    example = json.loads(
+        (
+            __import__("pathlib").Path(__file__).resolve().parents[2]
+            / "shared/demo/examples/constellations_crossings_request.json"
+        ).read_text()
+    )
+    r = client.post(f"{BASE}/crossings", json=example)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    stars = example["stars"]
+    ref = core.boundary_crossings(
+        col(stars, "ra_deg"),
+        col(stars, "dec_deg"),
+        col(stars, "parallax_mas"),
+        col(stars, "pm_ra_cosdec_mas_yr"),
+        col(stars, "pm_dec_mas_yr"),
+        col(stars, "radial_velocity_km_s"),
+        2016.0,
+        2016.0,
+        7016.0,
+    )
+    body = r.json
+    got = [c["epoch"]["julian_epoch_tdb"] for s in body["stars"] for c in s["crossings"]]
+    np.testing.assert_array_equal(got, ref.epoch_jyear)
+    assert sum(len(s["crossings"]) for s in body["stars"]) >= 1
+
+
+def test_outline_is_geojson(client):
+    r = client.get(f"{BASE}/ori/outline?frame=icrs")
+    assert r.status_code == 200
+    assert r.mimetype == "application/geo+json"
+    feature = r.json
+    assert feature["type"] == "Feature" and feature["geometry"]["type"] == "Polygon"
+    ring = np.asarray(feature["geometry"]["coordinates"][0])
+    assert np.all(np.abs(ring[:, 0]) <= 180) and np.array_equal(ring[0], ring[-1])
+    assert feature["properties"]["abbreviation"] == "Ori"
+    fk4 = client.get(f"{BASE}/Ori/outline?frame=fk4&equinox=B1950.0").json
+    assert fk4["properties"]["equinox"] == pytest.approx(1950.0, abs=1e-9)
+
+
+def test_all_outlines(client):
+    r = client.get(f"{BASE}/outlines?frame=galactic")
+    assert r.status_code == 200
+    assert len(r.json["features"]) == 88
+
+
+# ---------------------------------------------------------------- bad input
+
+
+def test_unknown_abbreviation_is_404_with_the_way_to_valid_ones(client):
+    body = assert_problem(client.get(f"{BASE}/Xyz/outline"), 404, "abbreviation")
+    assert "GET /v1/constellations" in json.dumps(body)
+
+
+def test_ra_out_of_range(client):
+    r = client.post(f"{BASE}/lookup", json={"stars": [{"ra_deg": 361.0, "dec_deg": 0.0}]})
+    assert_problem(r, 422, "stars[0].ra_deg")
+
+
+def test_dec_out_of_range(client):
+    r = client.post(f"{BASE}/margins", json={"stars": {"ra_deg": [1.0], "dec_deg": [-91.0]}})
+    assert_problem(r, 422, "stars.dec_deg[0]")
+
+
+def test_nan_position(client):
+    r = client.post(f"{BASE}/lookup", json={"stars": [{"ra_deg": "NaN", "dec_deg": 0.0}]})
+    assert_problem(r, 422, "stars[0].ra_deg")
+
+
+def test_null_position(client):
+    r = client.post(f"{BASE}/lookup", json={"stars": [{"ra_deg": None, "dec_deg": 0.0}]})
+    assert_problem(r, 422, "stars[0].ra_deg")
+
+
+def test_bad_reduction(client):
+    r = client.post(f"{BASE}/lookup", json={"stars": [STAR], "reduction": "fk6"})
+    assert_problem(r, 422, "reduction")
+
+
+def test_negative_near_boundary(client):
+    r = client.post(f"{BASE}/margins", json={"stars": [STAR], "near_boundary_arcsec": -1})
+    assert_problem(r, 422, "near_boundary_arcsec")
+
+
+def test_epoch_without_catalogue_epoch(client):
+    r = client.post(f"{BASE}/lookup", json={"stars": [STAR], "epoch": "J2030.0"})
+    assert_problem(r, 422, "catalogue_epoch")
+
+
+def test_bad_epoch_string(client):
+    r = client.post(
+        f"{BASE}/lookup", json={"stars": [STAR], "catalogue_epoch": "J2000", "epoch": "soon"}
+    )
+    assert_problem(r, 422, "epoch")
+
+
+MOVING = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 100.0, "pm_dec_mas_yr": 0.0}
+WINDOW = {"catalogue_epoch": "J2016.0", "start": "J2016.0", "end": "J3016.0"}
+
+
+def test_crossings_inverted_window(client):
+    body = dict(WINDOW, stars=[MOVING], start="J3000.0", end="J2000.0")
+    assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "end")
+
+
+def test_crossings_window_too_long(client):
+    body = dict(WINDOW, stars=[MOVING], end=200_000.0)
+    assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "end")
+    body = dict(WINDOW, stars=[MOVING], start=-99_000.0)
+    assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "start")
+
+
+def test_crossings_step_too_small(client):
+    body = dict(WINDOW, stars=[MOVING], max_step_yr=0.001)
+    assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "max_step_yr")
+
+
+def test_crossings_too_many_steps(client):
+    body = dict(WINDOW, stars=[MOVING], start=-90_000.0, end=90_000.0, max_step_yr=0.01)
+    assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "max_step_yr")
+
+
+def test_crossings_need_proper_motion(client):
+    body = dict(WINDOW, stars=[{"ra_deg": 10.0, "dec_deg": 5.0}])
+    assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "stars[0].pm_ra_cosdec_mas_yr")
+
+
+def test_outline_bad_frame(client):
+    assert_problem(client.get(f"{BASE}/Ori/outline?frame=ecliptic"), 422, "frame")
+
+
+def test_outline_equinox_for_icrs(client):
+    assert_problem(client.get(f"{BASE}/Ori/outline?equinox=J2050.0"), 422, "equinox")
+
+
+def test_outline_bad_tolerance(client):
+    assert_problem(client.get(f"{BASE}/Ori/outline?tolerance_arcsec=0"), 422, "tolerance_arcsec")

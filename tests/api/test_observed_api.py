@@ -1,0 +1,221 @@
+"""POST /v1/observed and POST /v1/frames: results against the core, and bad input."""
+
+import json
+import pathlib
+
+import numpy as np
+import pytest
+
+from service.core import frames as core_frames
+from service.core import observed as core
+from service.core import propagation as core_prop
+
+ROOT = pathlib.Path(__file__).resolve().parents[2]
+EXAMPLES = ROOT / "shared" / "demo" / "examples"
+OBS = "/v1/observed"
+FRAMES = "/v1/frames"
+
+
+@pytest.fixture(scope="module")
+def observed_example():
+    return json.loads((EXAMPLES / "observed_request.json").read_text())
+
+
+@pytest.fixture(scope="module")
+def frames_example():
+    return json.loads((EXAMPLES / "frames_request.json").read_text())
+
+
+def assert_problem(r, status, field):
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    fields = [e["field"] for e in r.json.get("errors", [])]
+    assert field in fields, fields
+
+
+# ---------------------------------------------------------------- results
+
+
+def test_demo_example_matches_core(client, observed_example):
+    r = client.post(OBS, json=observed_example)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    body = r.json
+    assert "interlocks" in body["advisory"] and "safety rules decide" in body["advisory"]
+    assert body["site"]["name"] == "kestrel-ridge"
+    assert body["limits"]["horizon_limit_deg"] == 15.0  # the demo site's own limit
+    assert body["refraction"]["mode"] == "standard_atmosphere_pressure"
+    inst = body["instants"][0]
+    assert inst["earth_orientation"]["status"] in ("measured", "predicted", "unavailable")
+    assert inst["earth_orientation"]["table"].startswith("IERS")
+    assert "accuracy_class" in inst["earth_orientation"]
+    # The same computation in the core: propagate, then observe.
+    stars = observed_example["stars"]
+    epoch = inst["epoch"]["julian_epoch_tdb"]
+
+    def col(name):
+        return np.array([np.nan if s.get(name) is None else s[name] for s in stars], float)
+
+    moved = core_prop.propagate(
+        col("ra_deg"),
+        col("dec_deg"),
+        col("parallax_mas"),
+        col("pm_ra_cosdec_mas_yr"),
+        col("pm_dec_mas_yr"),
+        col("radial_velocity_km_s"),
+        2016.0,
+        epoch,
+    ).astrometry
+    u1, u2 = core.utc_from_julian_epoch_tdb(epoch)
+    site = core.make_site(38.4127, -7.6543, 1460.0)
+    atm = core.make_atmosphere(None, 6.0, 0.55, 0.55)
+    ref = core.observed_places(
+        moved.ra_deg,
+        moved.dec_deg,
+        moved.parallax_mas,
+        moved.pm_ra_cosdec_mas_yr,
+        moved.pm_dec_mas_yr,
+        moved.radial_velocity_km_s,
+        epoch,
+        u1,
+        u2,
+        site,
+        atm,
+        horizon_limit_deg=15.0,
+    )
+    got_alt = [s["at_instants"][0]["altitude_deg"] for s in body["stars"]]
+    np.testing.assert_allclose(got_alt, ref.altitude_deg, rtol=0, atol=1e-12)
+    assert all(a > 15.0 for a in got_alt)  # the example's stars are up
+
+
+def test_track_of_one_star_over_many_instants(client, observed_example):
+    body = dict(
+        observed_example,
+        stars=observed_example["stars"][:1],
+        instants=[f"2026-12-02T{h:02d}:00:00Z" for h in range(18, 24)],
+    )
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200
+    at = r.json["stars"][0]["at_instants"]
+    assert len(at) == 6 and len(r.json["instants"]) == 6
+    alts = [a["altitude_deg"] for a in at]
+    assert len(set(alts)) == 6
+    # Each instant equals the single-instant answer.
+    one = client.post(OBS, json=dict(body, instants=[body["instants"][3]])).json
+    assert one["stars"][0]["at_instants"][0]["altitude_deg"] == pytest.approx(alts[3], abs=1e-9)
+
+
+def test_inline_site_pressure_zero_and_fk4_input(client, observed_example):
+    body = dict(
+        observed_example,
+        site={"latitude_deg": -24.6, "longitude_deg": -70.4, "height_m": 2600.0},
+        atmosphere={"pressure_hpa": 0.0},
+        horizon_limit_deg=30.0,
+        sun_avoidance_deg=45.0,
+    )
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200
+    assert r.json["refraction"]["mode"] == "off"
+    assert r.json["limits"] == {
+        "horizon_limit_deg": 30.0,
+        "sun_avoidance_deg": 45.0,
+        "note": r.json["limits"]["note"],
+    }
+    assert all(s["at_instants"][0]["refraction_arcsec"] == 0.0 for s in r.json["stars"])
+    fk4 = dict(
+        body,
+        frame={"name": "fk4"},
+        catalogue_epoch="B1950.0",
+        stars=[{"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 0, "pm_dec_mas_yr": 0}],
+    )
+    r = client.post(OBS, json=fk4)
+    assert r.status_code == 200
+    assert r.json["input_frame"] == "FK4 B1950.0"
+    assert "missing_parallax" in r.json["stars"][0]["at_instants"][0]["flags"]
+
+
+def test_frames_example_fk4_to_icrs_at_other_epochs(client, frames_example):
+    r = client.post(FRAMES, json=frames_example)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    body = r.json
+    assert body["from_frame"] == "FK4 B1950.0" and body["to_frame"] == "ICRS"
+    s = frames_example["stars"][0]
+    b1950 = core_frames.JEPOCH_B1950
+    ref = core_frames.convert(
+        s["ra_deg"], s["dec_deg"], s["parallax_mas"], s["pm_ra_cosdec_mas_yr"],
+        s["pm_dec_mas_yr"], s["radial_velocity_km_s"], b1950,
+        core_frames.make_frame("fk4"), core_frames.make_frame("icrs"),
+    )  # fmt: skip
+    moved = core_prop.propagate(
+        ref.ra_deg, ref.dec_deg, ref.parallax_mas, ref.pm_ra_cosdec_mas_yr, ref.pm_dec_mas_yr,
+        ref.radial_velocity_km_s, b1950, 2000.0,
+    ).astrometry  # fmt: skip
+    got = body["stars"][0]["at_epochs"][0]
+    assert got["ra_deg"] == pytest.approx(float(moved.ra_deg), abs=1e-12)
+    assert got["dec_deg"] == pytest.approx(float(moved.dec_deg), abs=1e-12)
+    assert len(body["stars"][0]["at_epochs"]) == 2
+
+
+def test_frames_galactic_output_and_equinox_forms(client):
+    body = {
+        "stars": {"ra_deg": [10.0], "dec_deg": [20.0], "pm_ra_cosdec_mas_yr": [1.0],
+                  "pm_dec_mas_yr": [2.0]},
+        "catalogue_epoch": 2016.0,
+        "from_frame": {"name": "fk5", "equinox": 1975.0},
+        "to_frame": {"name": "galactic"},
+    }  # fmt: skip
+    r = client.post(FRAMES, json=body)
+    assert r.status_code == 200
+    ref = core_frames.convert(10.0, 20.0, np.nan, 1.0, 2.0, np.nan, 2016.0,
+                              core_frames.make_frame("fk5", 1975.0),
+                              core_frames.make_frame("galactic"))  # fmt: skip
+    assert r.json["stars"][0]["at_epochs"][0]["ra_deg"] == pytest.approx(float(ref.ra_deg))
+    r2 = client.post(FRAMES, json=dict(body, from_frame={"name": "fk5", "equinox": "J1975.0"}))
+    assert r2.json["stars"][0]["at_epochs"][0]["ra_deg"] == pytest.approx(float(ref.ra_deg))
+
+
+# ---------------------------------------------------------------- bad input (one test each)
+
+
+def test_latitude_out_of_range_names_the_field(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, site={"latitude_deg": 91.0,
+                                                           "longitude_deg": 0.0}))  # fmt: skip
+    assert_problem(r, 422, "site.latitude_deg")
+
+
+def test_unknown_site_names_the_field(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
+    assert_problem(r, 422, "site.name")
+
+
+def test_humidity_out_of_range_names_the_field(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, atmosphere={"relative_humidity": 1.3}))
+    assert_problem(r, 422, "atmosphere.relative_humidity")
+
+
+def test_wavelength_out_of_range_names_the_field(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, atmosphere={"wavelength_um": 12.0}))
+    assert_problem(r, 422, "atmosphere.wavelength_um")
+    r = client.post(OBS, json=dict(observed_example, atmosphere={"wavelength_um": 0.1}))
+    assert_problem(r, 422, "atmosphere.wavelength_um")
+
+
+def test_date_far_outside_span_names_the_field(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, instants=["J2016.0", "J2450.0"]))
+    assert_problem(r, 422, "instants[1]")
+
+
+def test_unknown_frame_names_the_field(client, frames_example):
+    r = client.post(FRAMES, json=dict(frames_example, to_frame={"name": "supergalactic"}))
+    assert_problem(r, 422, "to_frame.name")
+
+
+def test_equinox_for_galactic_names_the_field(client, frames_example):
+    r = client.post(FRAMES, json=dict(frames_example, to_frame={"name": "galactic",
+                                                                "equinox": 2000.0}))  # fmt: skip
+    assert_problem(r, 422, "to_frame.equinox")
+
+
+def test_readiness_reports_earth_orientation(client):
+    r = client.get("/ready")
+    assert r.status_code == 200
+    assert r.json["checks"]["earth_orientation"]["ok"]

@@ -1,0 +1,644 @@
+"""Tests of service.core.constellations against outside references.
+
+Outside references used here:
+- the Roman (1987) table and the IAU names as distributed with astropy (package data files
+  read directly from astropy's installation);
+- the test positions of the Roman (1987) CDS VI/42 ReadMe (equinox 1950);
+- astropy's FK4(equinox=B1875) and FK5(equinox=B1875) transforms, astropy's
+  get_constellation, and pyerfa's starpm, all run inside the tests.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from importlib import resources
+
+import astropy.units as u
+import erfa
+import numpy as np
+import pytest
+from astropy.coordinates import FK4, FK5, ICRS, SkyCoord, get_constellation
+from astropy.time import Time
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.core import constellations as C
+from service.core.constants import ARCSEC_PER_RAD, DEG_PER_RAD, RAD_PER_DEG
+
+Flag = C.ConstellationFlag
+ABBR = np.asarray(C.boundary_table().abbreviations)
+
+#: Tolerances, one per quantity.
+POSITION_TOL_ARCSEC = 1e-6  # our B1875 position vs astropy's (same published formulae)
+MARGIN_TOL_ARCSEC = 0.01  # margin vs brute force (issue 3 requirement)
+AREA_TILING_TOL_SR = 1e-6  # total outline area vs 4 pi (issue 3 requirement)
+AREA_EACH_REL_TOL = 1e-5  # each outline's area vs the exact B1875 cell area, relative
+ROUND_TRIP_TOL_ARCSEC = 1e-6  # ICRS -> B1875 -> ICRS
+CROSSING_EPOCH_TOL_DAY = 1e-3  # lookups this far either side confirm a crossing
+
+
+def _random_sphere(n, seed):
+    rng = np.random.default_rng(seed)
+    ra = rng.uniform(0.0, 360.0, n)
+    dec = np.degrees(np.arcsin(rng.uniform(-1.0, 1.0, n)))
+    return ra, dec
+
+
+def _astropy_data(name):
+    return resources.files("astropy.coordinates").joinpath("data", name).read_text(encoding="utf-8")
+
+
+def _scan(ra_deg, dec_deg):
+    """Roman's own procedure (read down the table), independent of the grid."""
+    t = C.boundary_table()
+    return C._scan_table(
+        np.asarray(ra_deg) / 15.0, dec_deg, t.ra_low_h, t.ra_high_h, t.dec_low_deg, t.row_index
+    )
+
+
+def _gc_arcsec(ra1, dec1, ra2, dec2):
+    r = RAD_PER_DEG
+    return C._gc_distance(ra1 * r, dec1 * r, ra2 * r, dec2 * r) * ARCSEC_PER_RAD
+
+
+@pytest.fixture(scope="module")
+def random_icrs():
+    return _random_sphere(200_000, seed=20260101)
+
+
+# ------------------------------------------------------------------------------ table
+
+
+def test_package_table_equals_astropy_copy():
+    # Source: astropy's copy of Roman (1987) CDS VI/42 data.dat and of the IAU names.
+    theirs = [
+        line.split()
+        for line in _astropy_data("constellation_data_roman87.dat").splitlines()
+        if line.strip() and not line.startswith("#")
+    ]
+    t = C.boundary_table()
+    assert len(theirs) == len(t.ra_low_h) == 357
+    np.testing.assert_array_equal([float(r[0]) for r in theirs], t.ra_low_h)
+    np.testing.assert_array_equal([float(r[1]) for r in theirs], t.ra_high_h)
+    np.testing.assert_array_equal([float(r[2]) for r in theirs], t.dec_low_deg)
+    assert [r[3] for r in theirs] == list(ABBR[t.row_index])
+
+    names = {
+        line[:3]: line[4:].strip()
+        for line in _astropy_data("constellation_names.dat").splitlines()
+        if line.strip() and not line.startswith("#")
+    }
+    assert len(names) == 88  # IAU: 88 constellations
+    # IAU spellings where astropy's copy is misspelt (IAU list, from memory)
+    corrected = {"Cha": "Chamaeleon", "Oph": "Ophiuchus", "PsA": "Piscis Austrinus"}
+    assert {k: names[k] for k in corrected} != corrected
+    names.update(corrected)
+    assert dict(zip(t.abbreviations, t.names, strict=True)) == names
+    assert names["Boo"] == "Boötes"
+
+
+def test_checksum_mismatch_is_refused():
+    with pytest.raises(RuntimeError, match="checksum"):
+        C._read_package_text(C.BOUNDARY_TABLE_FILE, "0" * 64)
+
+
+def test_table_is_cached():
+    assert C.boundary_table() is C.boundary_table()
+
+
+def test_areas_tile_the_sphere():
+    # Exact: the cells partition the sphere (4 pi sr). Hya is the largest constellation and
+    # Cru the smallest (IAU; from memory), about 1303 and 68 square degrees (from memory).
+    area = C.boundary_table().area_sr
+    assert abs(area.sum() - 4 * math.pi) < AREA_TILING_TOL_SR
+    deg2 = area * DEG_PER_RAD**2
+    assert ABBR[np.argmax(area)] == "Hya" and abs(deg2.max() - 1303) < 1
+    assert ABBR[np.argmin(area)] == "Cru" and abs(deg2.min() - 68) < 1
+
+
+def test_grid_equals_reading_down_the_table():
+    # Roman's procedure itself (CDS VI/42 ReadMe) on random points and on every grid node,
+    # where the half-open conventions matter.
+    ra, dec = _random_sphere(100_000, seed=1)
+    np.testing.assert_array_equal(C._grid_lookup(ra, dec), _scan(ra, dec))
+    t = C.boundary_table()
+    node_ra, node_dec = np.meshgrid(t.ra_edges_h[:-1] * 15.0, t.dec_edges_deg[1:-1])
+    # the grid works on unit vectors: compare away from float round-off of the node values
+    for dra, ddec in [(1e-9, 1e-9), (-1e-9, 1e-9), (1e-9, -1e-9), (-1e-9, -1e-9)]:
+        r = np.mod(node_ra + dra, 360.0)
+        d = node_dec + ddec
+        np.testing.assert_array_equal(C._grid_lookup(r, d), _scan(r, d))
+
+
+# ------------------------------------------------------------------------------ lookup
+
+
+def test_roman1987_readme_test_positions():
+    # Roman (1987), CDS VI/42 ReadMe, test positions for equinox 1950 (as quoted in astropy's
+    # coordinates/tests/test_funcs.py "taken from the ReadMe for Roman 1987").
+    ra_h = [9, 23.5, 5.12, 9.4555, 12.8888, 15.6687, 19, 6.2222]
+    dec = [65, -20, 9.12, -19.9, 22, -12.1234, -40, -81.1234]
+    expected = ["UMa", "Aqr", "Ori", "Hya", "Com", "Lib", "CrA", "Men"]
+    icrs = FK4(np.array(ra_h) * u.hourangle, np.array(dec) * u.deg).transform_to(ICRS())
+    for reduction in C.REDUCTIONS:
+        res = C.locate(icrs.ra.deg, icrs.dec.deg, reduction=reduction)
+        assert list(res.abbreviation) == expected
+    # Boötes carries the one non-ASCII name (astropy's test of get_constellation)
+    assert C.locate(15 * 15.0, 30.0).name == "Boötes"
+
+
+def _astropy_b1875(ra, dec, frame):
+    with warnings.catch_warnings():
+        # ERFA warns "dubious year" for dates before 1960 (UTC undefined); harmless here.
+        warnings.simplefilter("ignore", erfa.ErfaWarning)
+        c = ICRS(ra * u.deg, dec * u.deg).transform_to(frame)
+    return c.ra.deg, c.dec.deg
+
+
+def test_fk4_reduction_matches_astropy(random_icrs):
+    # astropy FK4(equinox=B1875) (obstime defaults to the equinox), then the same table.
+    ra, dec = random_icrs
+    ra5, dec5 = _astropy_b1875(ra, dec, FK4(equinox=Time("B1875")))
+    res = C.locate(ra, dec, reduction="fk4")
+    assert _gc_arcsec(ra5, dec5, res.ra_b1875_deg, res.dec_b1875_deg).max() < POSITION_TOL_ARCSEC
+    np.testing.assert_array_equal(res.index, _scan(ra5, dec5))
+
+
+def test_fk5_reduction_matches_astropy_and_disagreements_are_flagged(random_icrs):
+    ra, dec = random_icrs
+    ra4, dec4 = _astropy_b1875(ra, dec, FK4(equinox=Time("B1875")))
+    ra5, dec5 = _astropy_b1875(ra, dec, FK5(equinox=Time("B1875")))
+    res = C.locate(ra, dec, reduction="fk5")
+    assert _gc_arcsec(ra5, dec5, res.ra_b1875_deg, res.dec_b1875_deg).max() < POSITION_TOL_ARCSEC
+    theirs5 = _scan(ra5, dec5)
+    np.testing.assert_array_equal(res.index, theirs5)
+    # every star where astropy's FK4 and FK5 reductions disagree carries the flag
+    differ = _scan(ra4, dec4) != theirs5
+    assert differ.sum() >= 1  # the check must be able to fail
+    assert np.all(res.flags[differ] & Flag.REDUCTIONS_DISAGREE)
+    assert np.array_equal((res.flags & Flag.REDUCTIONS_DISAGREE) != 0, differ)
+    # the systems differ by about 0.5 arcsec at B1875 (measured with astropy here)
+    sep = _gc_arcsec(ra4, dec4, ra5, dec5)
+    assert 0.4 < sep.max() < 0.6
+    assert np.all(res.margin_arcsec[differ] < sep.max())
+
+
+def test_fk5_iau1976_differs_from_iau2006_only_near_boundaries(random_icrs):
+    ra, dec = random_icrs
+    a = C.locate(ra, dec, reduction="fk5")
+    b = C.locate(ra, dec, reduction="fk5_iau1976")
+    # IAU 1976 vs IAU 2006 precession at B1875: 0.368 arcsec (ERFA pmat76 vs bp06, here)
+    jd = C.JD_B1875
+    r = erfa.pmat76(jd, 0.0) @ erfa.bp06(jd, 0.0)[1].T
+    angle = math.acos((np.trace(r) - 1) / 2) * ARCSEC_PER_RAD
+    sep = _gc_arcsec(a.ra_b1875_deg, a.dec_b1875_deg, b.ra_b1875_deg, b.dec_b1875_deg)
+    assert sep.max() <= angle * (1 + 1e-6)
+    differ = a.index != b.index
+    assert np.all(a.margin_arcsec[differ] <= angle)
+
+
+def test_disagreements_with_get_constellation_lie_near_boundaries(random_icrs):
+    # astropy's get_constellation reduces through a geocentric frame with annual aberration
+    # (about 20 arcsec); issue 3 requires every disagreement within 25 arcsec of a boundary.
+    ra, dec = random_icrs
+    theirs = get_constellation(SkyCoord(ra * u.deg, dec * u.deg), short_name=True)
+    res = C.locate(ra, dec, reduction="fk5")
+    differ = theirs != res.abbreviation
+    assert 0 < differ.sum() < 200
+    assert res.margin_arcsec[differ].max() < 25.0
+
+
+def test_shapes_scalars_and_broadcasting():
+    res = C.locate(10.0, 20.0)
+    assert res.index.shape == () and res.margin_arcsec.shape == ()
+    assert isinstance(str(res.abbreviation), str)
+    ra, dec = _random_sphere(12, seed=3)
+    grid = C.locate(ra.reshape(3, 4), dec.reshape(3, 4))
+    flat = C.locate(ra, dec)
+    assert grid.index.shape == (3, 4)
+    np.testing.assert_array_equal(grid.index.ravel(), flat.index)
+    np.testing.assert_array_equal(grid.margin_arcsec.ravel(), flat.margin_arcsec)
+    noncontig = C.locate(np.repeat(ra, 2)[::2], np.repeat(dec, 2)[::2])
+    np.testing.assert_array_equal(noncontig.index, flat.index)
+    # one margin threshold against many stars broadcasts
+    both = C.locate(ra[:, None], dec[:, None], near_boundary_arcsec=np.array([0.0, 1e9]))
+    assert both.flags.shape == (12, 2)
+    assert np.all(both.flags[:, 1] & Flag.NEAR_BOUNDARY)
+
+
+def test_bad_reduction_is_refused():
+    with pytest.raises(ValueError, match="reduction"):
+        C.locate(1.0, 2.0, reduction="fk6")
+
+
+@settings(max_examples=50, deadline=None)
+@given(
+    st.floats(0.0, 360.0, exclude_max=True),
+    st.floats(-90.0, 90.0),
+    st.sampled_from(C.REDUCTIONS),
+)
+def test_reduction_round_trip(ra, dec, reduction):
+    vec = C._unit_vectors(ra, dec)
+    back = C.b1875_to_icrs(C.icrs_to_b1875(vec, reduction), reduction)
+    # the published FK4 matrix (Murray 1989, 16 digits) is orthogonal to about 2e-12
+    assert np.linalg.norm(back - vec) * ARCSEC_PER_RAD < ROUND_TRIP_TOL_ARCSEC
+
+
+# ------------------------------------------------------------------------------ margins
+
+
+def _b1875_to_icrs_deg(ra, dec, reduction="fk4"):
+    return C._angles_deg(C.b1875_to_icrs(C._unit_vectors(ra, dec), reduction))
+
+
+def _dense_boundary_points(spacing_deg):
+    """Points along every boundary segment (not using the margin index)."""
+    segs = C._segments()
+    ras, decs, owner = [], [], []
+    for s in range(segs.kind.size):
+        lo, hi, c = segs.lo[s], segs.hi[s], segs.c[s]
+        if segs.kind[s] == 0:
+            length = (hi - lo) * math.cos(c) * DEG_PER_RAD
+            t = np.linspace(lo, hi, max(2, int(length / spacing_deg) + 2))
+            ras.append(t)
+            decs.append(np.full(t.size, c))
+        else:
+            t = np.linspace(lo, hi, max(2, int((hi - lo) * DEG_PER_RAD / spacing_deg) + 2))
+            ras.append(np.full(t.size, c))
+            decs.append(t)
+        owner.append(np.full(t.size, s))
+    return np.concatenate(ras), np.concatenate(decs), np.concatenate(owner)
+
+
+def _brute_force_margin(ra_deg, dec_deg):
+    """Distance (arcsec) from B1875 points to the densely sampled boundary, refined."""
+    segs = C._segments()
+    sra, sdec, sown = _dense_boundary_points(0.02)
+    out = np.empty(ra_deg.size)
+    for k in range(ra_deg.size):
+        r, d = ra_deg[k] * RAD_PER_DEG, dec_deg[k] * RAD_PER_DEG
+        dist = C._gc_distance(r, d, sra, sdec)
+        best = np.inf
+        for s in np.unique(sown[dist <= dist.min() + 0.05 * RAD_PER_DEG]):
+            lo, hi, c = segs.lo[s], segs.hi[s], segs.c[s]
+            # nearest coarse sample on this segment, then two finer samplings around it
+            on = sown == s
+            params = (sra if segs.kind[s] == 0 else sdec)[on]
+            centre = params[np.argmin(dist[on])]
+            half = 1.5 * abs(params[1] - params[0])  # one and a half coarse spacings
+            for npts in (2001, 4001):
+                t = np.clip(np.linspace(centre - half, centre + half, npts), lo, hi)
+                if segs.kind[s] == 0:
+                    dd = C._gc_distance(r, d, t, np.full(t.size, c))
+                else:
+                    dd = C._gc_distance(r, d, np.full(t.size, c), t)
+                centre = t[np.argmin(dd)]
+                half = 4 * (2 * half / (npts - 1))
+            best = min(best, dd.min())
+        out[k] = best * ARCSEC_PER_RAD
+    return out
+
+
+def test_margin_against_brute_force():
+    rng = np.random.default_rng(7)
+    ra, dec = _random_sphere(40, seed=8)
+    # and points a few arcsec to a few arcmin from random boundary points
+    bra, bdec, _ = _dense_boundary_points(0.5)
+    pick = rng.choice(bra.size, 40, replace=False)
+    offset = rng.uniform(0.05, 300.0, 40) / 3600.0
+    angle = rng.uniform(0, 2 * math.pi, 40)
+    nra = np.mod(bra[pick] * DEG_PER_RAD + offset * np.cos(angle) / np.cos(bdec[pick]), 360)
+    ndec = np.clip(bdec[pick] * DEG_PER_RAD + offset * np.sin(angle), -89.9, 89.9)
+    ra, dec = np.concatenate([ra, nra]), np.concatenate([dec, ndec])
+    icrs_ra, icrs_dec = _b1875_to_icrs_deg(ra, dec)
+    res = C.locate(icrs_ra, icrs_dec)
+    brute = _brute_force_margin(res.ra_b1875_deg, res.dec_b1875_deg)
+    np.testing.assert_allclose(res.margin_arcsec, brute, atol=MARGIN_TOL_ARCSEC, rtol=0)
+    assert res.margin_arcsec.min() < 1.0  # some points really are close
+
+
+def test_margin_index_keeps_the_nearest_segment():
+    # Exhaustive over each point's own constellation's segments (no index) on random points.
+    ra, dec = _random_sphere(20_000, seed=9)
+    res = C.locate(ra, dec)
+    segs = C._segments()
+    p = C._unit_vectors(res.ra_b1875_deg, res.dec_b1875_deg)
+    exhaustive = np.full(ra.size, np.inf)
+    for s in range(segs.kind.size):
+        mine = (segs.left[s] == res.index) | (segs.right[s] == res.index)
+        k = np.flatnonzero(mine)
+        d = C._segment_distance(
+            p[k],
+            res.ra_b1875_deg[k] * RAD_PER_DEG,
+            res.dec_b1875_deg[k] * RAD_PER_DEG,
+            np.full(k.size, s),
+            segs,
+        )
+        exhaustive[k] = np.minimum(exhaustive[k], d)
+    # equal up to float round-off of the degree/radian conversions (1e-6 arcsec)
+    np.testing.assert_allclose(res.margin_arcsec, exhaustive * ARCSEC_PER_RAD, rtol=0, atol=1e-6)
+    # the constellation across the nearest boundary is a neighbour: a point moved just
+    # past that boundary along the shortest way lands in it (checked on near points)
+    assert np.all(res.other_side_index != res.index)
+
+
+def test_other_side_is_the_neighbour():
+    # Points 0.5 arcsec north and south of a constant-Dec boundary: each names the other.
+    segs = C._segments()
+    s = np.flatnonzero((segs.kind == 0) & (np.abs(segs.c) < 1.0))[0]
+    ra_mid = 0.5 * (segs.lo[s] + segs.hi[s]) * DEG_PER_RAD
+    dec_b = segs.c[s] * DEG_PER_RAD
+    offs = np.array([-0.5, 0.5]) / 3600.0
+    ra, dec = _b1875_to_icrs_deg(np.full(2, ra_mid), dec_b + offs)
+    res = C.locate(ra, dec)
+    assert list(res.index) == [segs.left[s], segs.right[s]]
+    assert list(res.other_side_index) == [segs.right[s], segs.left[s]]
+    np.testing.assert_allclose(res.margin_arcsec, 0.5, atol=MARGIN_TOL_ARCSEC)
+
+
+def test_table_rounding_is_flagged():
+    # The table gives 86 deg 10 arcmin as 86.1667 (Roman 1987 data.dat, row "21.0 23.0
+    # 86.1667 UMi"): the true boundary lies 0.12 arcsec below the tabulated one.
+    t = C.boundary_table()
+    row = np.flatnonzero(t.dec_low_deg == 86.1667)[0]
+    ra_mid = 0.5 * (t.ra_low_h[row] + t.ra_high_h[row]) * 15.0
+    true_dec = 86.0 + 10.0 / 60.0
+    dec = np.array(
+        [true_dec + 0.5 * (86.1667 - true_dec), 86.1667 + 0.1 / 3600, 86.1667 + 1.0 / 3600]
+    )
+    ra, dec_icrs = _b1875_to_icrs_deg(np.full(3, ra_mid), dec)
+    res = C.locate(ra, dec_icrs, near_boundary_arcsec=0.0)
+    amb = (res.flags & Flag.TABLE_ROUNDING_AMBIGUOUS) != 0
+    near = (res.flags & Flag.NEAR_BOUNDARY) != 0
+    assert list(amb) == [True, True, False]
+    assert list(near) == [True, True, False]
+    # RA boundaries: rounded to 1e-4 h = 0.36 s of time; 6h14m30s appears as 6.2417 (Roman
+    # 1987 data.dat): 1 arcsec from a constant-RA boundary at Dec +3 is ambiguous.
+    segs = C._segments()
+    s = np.flatnonzero((segs.kind == 1) & (segs.lo < 0.0) & (segs.hi > 0.1))[0]
+    ra_b = segs.c[s] * DEG_PER_RAD + np.array([1.0, 5.0]) / 3600.0
+    ra, dec_icrs = _b1875_to_icrs_deg(ra_b, np.array([0.05, 0.05]) * DEG_PER_RAD)
+    res = C.locate(ra, dec_icrs, near_boundary_arcsec=0.0)
+    assert list((res.flags & Flag.TABLE_ROUNDING_AMBIGUOUS) != 0) == [True, False]
+
+
+def test_near_boundary_threshold():
+    ra, dec = _random_sphere(50_000, seed=10)
+    res = C.locate(ra, dec, near_boundary_arcsec=60.0)
+    near = (res.flags & Flag.NEAR_BOUNDARY) != 0
+    amb = (res.flags & Flag.TABLE_ROUNDING_AMBIGUOUS) != 0
+    np.testing.assert_array_equal(near, (res.margin_arcsec <= 60.0) | amb)
+    assert 0 < near.sum() < ra.size
+
+
+# ------------------------------------------------------------------------------ motion
+
+
+def test_straight_line_motion_matches_erfa_starpm():
+    # ERFA starpm (SOFA) uses the same straight-line model plus light time; over 100 yr the
+    # light-time term is below mu * dt * v_r / c (about 0.01 arcsec here).
+    rng = np.random.default_rng(11)
+    n = 200
+    ra, dec = _random_sphere(n, seed=12)
+    plx = rng.uniform(10, 300, n)
+    pma, pmd = rng.normal(0, 500, (2, n))
+    rv = rng.normal(0, 40, n)
+    r0, v, flags = C._space_motion(ra, dec, plx, pma, pmd, rv)
+    assert not np.any(flags)
+    vec = C._direction_at(r0, v, np.full(n, 100.0))
+    ra2, dec2 = C._angles_deg(vec)
+    pmr = pma / np.cos(np.radians(dec)) / 3.6e6 * RAD_PER_DEG  # dRA/dt, rad/yr
+    out = erfa.starpm(
+        np.radians(ra),
+        np.radians(dec),
+        pmr,
+        np.radians(pmd / 3.6e6),
+        plx / 1000.0,
+        rv,
+        2451545.0,
+        0.0,
+        2451545.0 + 36525.0,
+        0.0,
+    )
+    sep = _gc_arcsec(ra2, dec2, np.degrees(out[0]), np.degrees(out[1]))
+    assert sep.max() < 0.02
+
+
+def test_unknown_parallax_and_rv_are_flagged_not_zeroed():
+    r0, v, flags = C._space_motion(
+        [10.0, 10.0, 10.0],
+        [5.0, 5.0, 5.0],
+        [np.nan, -1.0, 5.0],
+        [100.0] * 3,
+        [0.0] * 3,
+        [20.0, 20.0, np.nan],
+    )
+    assert flags[0] & Flag.PARALLAX_UNKNOWN and not flags[0] & Flag.NONPOSITIVE_PARALLAX
+    assert flags[1] & Flag.PARALLAX_UNKNOWN and flags[1] & Flag.NONPOSITIVE_PARALLAX
+    assert flags[2] & Flag.RADIAL_VELOCITY_UNKNOWN and not flags[2] & Flag.PARALLAX_UNKNOWN
+    # without parallax the direction still moves by the proper motion: 100 mas/yr * 36 yr
+    d0 = C._direction_at(r0[:1], v[:1], np.array([0.0]))
+    d1 = C._direction_at(r0[:1], v[:1], np.array([36.0]))
+    moved = np.degrees(np.arctan2(np.linalg.norm(np.cross(d0, d1)), np.sum(d0 * d1))) * 3600
+    assert abs(moved - 3.6) < 1e-6
+
+
+def test_locate_moving_propagates_first():
+    # A star 100 arcsec north of a constant-Dec boundary moving south at 1 arcsec/yr
+    # crosses it after 100 years.
+    segs = C._segments()
+    s = np.flatnonzero((segs.kind == 0) & (np.abs(segs.c) < 0.5))[0]
+    ra_mid = 0.5 * (segs.lo[s] + segs.hi[s]) * DEG_PER_RAD
+    ra, dec = _b1875_to_icrs_deg(
+        np.array([ra_mid]), np.array([segs.c[s] * DEG_PER_RAD + 100 / 3600])
+    )
+    before = C.locate_moving(ra, dec, np.nan, 0.0, -1000.0, np.nan, 2000.0, 2090.0)
+    after = C.locate_moving(ra, dec, np.nan, 0.0, -1000.0, np.nan, 2000.0, 2110.0)
+    assert before.index[0] == segs.right[s] and after.index[0] == segs.left[s]
+    assert before.flags[0] & Flag.PARALLAX_UNKNOWN
+
+
+# ------------------------------------------------------------------------------ crossings
+
+
+def _sweep(r0, v, t_rel):
+    n = t_rel.size
+    vec = C._direction_at(np.repeat(r0[None], n, 0), np.repeat(v[None], n, 0), t_rel)
+    return C._locate_vectors(
+        vec, (n,), "fk4", False, np.zeros(n), np.zeros(n, np.int64), compare=False
+    ).index
+
+
+def test_crossings_confirmed_and_none_missed_by_a_100x_finer_sweep():
+    rng = np.random.default_rng(13)
+    n = 12
+    ra, dec = _random_sphere(n, seed=14)
+    plx = rng.uniform(20, 200, n)
+    pma, pmd = rng.normal(0, 3000, (2, n))
+    rv = rng.normal(0, 40, n)
+    plx[0] = np.nan  # direction-only motion
+    epoch, start, end, step = 2016.0, -8000.0, 12000.0, 200.0
+    res = C.boundary_crossings(ra, dec, plx, pma, pmd, rv, epoch, start, end, max_step_yr=step)
+    assert res.count.sum() >= 10  # the stars do cross boundaries
+    r0, v, _ = C._space_motion(ra, dec, plx, pma, pmd, rv)
+    eps = CROSSING_EPOCH_TOL_DAY / 365.25
+    for k in range(n):
+        mine = res.star == k
+        t = res.epoch_jyear[mine] - epoch
+        before = _sweep(r0[k], v[k], t - eps)
+        after = _sweep(r0[k], v[k], t + eps)
+        np.testing.assert_array_equal(before, res.from_index[mine])
+        np.testing.assert_array_equal(after, res.to_index[mine])
+        # a sweep with a step 100x finer than the search's largest step
+        fine = np.arange(start - epoch, end - epoch + 1e-9, step / 100.0)
+        idx = _sweep(r0[k], v[k], fine)
+        changes = np.flatnonzero(idx[1:] != idx[:-1])
+        for c in changes:
+            assert np.any((t >= fine[c]) & (t <= fine[c + 1])), (k, fine[c])
+        assert res.start_index[k] == idx[0] and res.end_index[k] == idx[-1]
+
+
+def test_thin_sliver_is_not_skipped():
+    # The narrowest RA band of the grid whose constellation differs from both neighbours:
+    # a star crossing it in much less than one search step must still be caught.
+    t = C.boundary_table()
+    cell = t.cell_index
+    width = np.diff(t.ra_edges_h) * 15.0
+    best = None
+    for j in range(cell.shape[0]):
+        dec_mid = 0.5 * (t.dec_edges_deg[j] + t.dec_edges_deg[j + 1])
+        if abs(dec_mid) > 60:
+            continue
+        for i in range(1, cell.shape[1] - 1):
+            if cell[j, i] != cell[j, i - 1] and cell[j, i] != cell[j, i + 1]:
+                if cell[j, i - 1] == cell[j, i + 1]:
+                    w = width[i] * math.cos(math.radians(dec_mid))
+                    if best is None or w < best[0]:
+                        best = (w, j, i, dec_mid)
+    w, j, i, dec_mid = best
+    sliver = cell[j, i]
+    ra_start = t.ra_edges_h[i] * 15.0 - 0.2
+    ra, dec = _b1875_to_icrs_deg(np.array([ra_start]), np.array([dec_mid]))
+    # 2 arcsec/yr eastward: the sliver (w deg wide) is crossed in w*1800 yr; step 20000 yr
+    res = C.boundary_crossings(
+        ra,
+        dec,
+        np.nan,
+        2000.0,
+        0.0,
+        np.nan,
+        2000.0,
+        2000.0,
+        2000.0 + 40_000.0,
+        max_step_yr=20_000.0,
+    )
+    assert sliver in set(res.to_index) and sliver in set(res.from_index)
+    # a plain sampler at that step would not see it (so the test can fail)
+    r0, v, _ = C._space_motion(ra, dec, np.nan, 2000.0, 0.0, np.nan)
+    coarse = _sweep(r0[0], v[0], np.array([0.0, 20_000.0, 40_000.0]))
+    assert sliver not in set(coarse)
+
+
+def test_crossing_window_checks():
+    with pytest.raises(ValueError, match="end_jyear"):
+        C.check_crossing_window(2000.0, 2100.0, 2050.0, None)
+    with pytest.raises(ValueError, match="start_jyear"):
+        C.check_crossing_window(2000.0, -99_000.0, 2050.0, None)
+    with pytest.raises(ValueError, match="max_step_yr"):
+        C.check_crossing_window(2000.0, 1990.0, 2050.0, 0.5 / 365.25)
+    with pytest.raises(ValueError, match="max_step_yr"):
+        C.check_crossing_window(2000.0, -98_000.0, 98_000.0, 0.01)
+    assert C.check_crossing_window(2000.0, 1900.0, 2100.0, None) == 2.0
+
+
+def test_star_without_motion_never_crosses():
+    res = C.boundary_crossings(10.0, 10.0, 5.0, 0.0, 0.0, 0.0, 2000.0, -98_000.0, 102_000.0)
+    assert res.count[0] == 0 and res.start_index[0] == res.end_index[0]
+
+
+# ------------------------------------------------------------------------------ outlines
+
+
+def _ring_area_sr(ring):
+    """Area of a (lon, lat) ring with straight Cartesian edges (RFC 7946), steradians."""
+    r = np.radians(np.asarray(ring))
+    lon, lat = r[:, 0], r[:, 1]
+    dl, p1, p2 = np.diff(lon), lat[:-1], lat[1:]
+    dp = p2 - p1
+    flat = np.abs(dp) < 1e-15
+    term = np.where(flat, dl * np.sin(p1), dl / np.where(flat, 1, dp) * (np.cos(p1) - np.cos(p2)))
+    return -np.sum(term)
+
+
+def _polygons(feature):
+    g = feature["geometry"]
+    return [g["coordinates"]] if g["type"] == "Polygon" else g["coordinates"]
+
+
+def _inside(ring, lon, lat):
+    """Even-odd ray casting in the (lon, lat) plane (GeoJSON edges are straight there)."""
+    r = np.asarray(ring)
+    x0, y0, x1, y1 = r[:-1, 0], r[:-1, 1], r[1:, 0], r[1:, 1]
+    cond = (y0[None] > lat[:, None]) != (y1[None] > lat[:, None])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        xc = x0[None] + (lat[:, None] - y0[None]) * (x1 - x0)[None] / (y1 - y0)[None]
+    return (np.sum(cond & (lon[:, None] < xc), axis=1) % 2) == 1
+
+
+@pytest.mark.parametrize("frame", ["icrs", "galactic", "fk4", "b1875"])
+def test_outlines_tile_the_sphere_and_contain_their_points(frame):
+    fc = C.outline_collection(frame=frame)
+    area = C.boundary_table().area_sr
+    total = 0.0
+    for k, feature in enumerate(fc["features"]):
+        a = 0.0
+        for poly in _polygons(feature):
+            ring = np.asarray(poly[0])
+            assert np.all(np.abs(ring[:, 0]) <= 180.0) and np.all(np.abs(ring[:, 1]) <= 90.0)
+            assert np.array_equal(ring[0], ring[-1])  # closed (RFC 7946 3.1.6)
+            ra_ = _ring_area_sr(ring)
+            assert ra_ > 0  # counterclockwise
+            a += ra_
+        assert abs(a - area[k]) <= AREA_EACH_REL_TOL * area[k]
+        total += a
+    assert abs(total - 4 * math.pi) < AREA_TILING_TOL_SR
+    if frame not in ("icrs", "b1875"):
+        return
+    # random points: exactly one polygon contains each, the lookup's own constellation (for
+    # "b1875" the outlines are in the B1875 frame: the boundary transformed back)
+    ra, dec = _random_sphere(1500, seed=15)
+    if frame == "icrs":
+        res = C.locate(ra, dec)
+    else:
+        res = C.locate(*_b1875_to_icrs_deg(ra, dec))
+    ok = res.margin_arcsec > 1.0
+    lon = np.where(ra > 180.0, ra - 360.0, ra)
+    hits = np.zeros((ra.size, 88), dtype=bool)
+    for k, feature in enumerate(fc["features"]):
+        for poly in _polygons(feature):
+            hits[:, k] |= _inside(poly[0], lon, dec)
+    assert np.all(hits[ok].sum(axis=1) == 1)
+    np.testing.assert_array_equal(np.argmax(hits[ok], axis=1), res.index[ok])
+
+
+def test_outline_of_one_constellation():
+    ser = C.outline("ser")
+    assert ser["geometry"]["type"] == "MultiPolygon"  # Serpens Caput and Cauda
+    assert ser["properties"]["name"] == "Serpens"
+    umi = C.outline("UMi", frame="icrs")
+    ring = np.asarray(_polygons(umi)[0][0])
+    assert ring[:, 1].max() == 90.0  # contains the north celestial pole, closed over it
+    fk5 = C.outline("Ori", frame="fk5", equinox=2050.0)
+    assert fk5["properties"]["equinox"] == 2050.0
+    with pytest.raises(KeyError):
+        C.outline("Xyz")
+
+
+def test_constellation_list():
+    lst = C.constellation_list()
+    assert len(lst) == 88
+    assert {"abbreviation": "Ori", "name": "Orion"}.items() <= lst[
+        [d["abbreviation"] for d in lst].index("Ori")
+    ].items()
+    assert abs(sum(d["area_deg2"] for d in lst) - 4 * math.pi * DEG_PER_RAD**2) < 1e-6

@@ -1,0 +1,395 @@
+"""Frames with motion: checks against the SOFA/ERFA test suite, pyerfa and astropy.
+
+Published values marked "ERFA t_erfa_c.c" are the expected values of the ERFA test suite
+(liberfa/erfa, src/t_erfa_c.c), which reproduces the SOFA validation values.
+"""
+
+import erfa
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from service.core import frames as F
+from service.core.constants import MAS_PER_RAD
+
+DEG = 180.0 / np.pi
+UAS_PER_DEG = 3.6e9
+TROP = F.JULIAN_TO_TROPICAL_YEAR
+
+ICRS = F.make_frame("icrs")
+FK5 = F.make_frame("fk5")
+FK4 = F.make_frame("fk4")
+GAL = F.make_frame("galactic")
+
+
+def _convert(ra_rad, dec_rad, dra_rad_yr, ddec_rad_yr, px_arcsec, rv, epoch, src, dst):
+    """SOFA-style arguments (rad, dRA/dt rad/yr, arcsec) through frames.convert."""
+    return F.convert(
+        ra_rad * DEG,
+        dec_rad * DEG,
+        px_arcsec * 1000.0,
+        dra_rad_yr * np.cos(dec_rad) * MAS_PER_RAD,
+        ddec_rad_yr * MAS_PER_RAD,
+        rv,
+        epoch,
+        src,
+        dst,
+    )
+
+
+def _sofa_out(c):
+    """frames result -> SOFA-style tuple (rad, dRA/dt rad/yr, arcsec, km/s)."""
+    d = c.dec_deg / DEG
+    return (
+        c.ra_deg / DEG,
+        d,
+        c.pm_ra_cosdec_mas_yr / MAS_PER_RAD / np.cos(d),
+        c.pm_dec_mas_yr / MAS_PER_RAD,
+        c.parallax_mas / 1000.0,
+        c.radial_velocity_km_s,
+    )
+
+
+# --- SOFA fk425 / fk524 ----------------------------------------------------------------------
+
+# ERFA t_erfa_c.c, t_fk425: inputs (B1950.0 FK4, motions in rad per tropical year).
+FK425_IN = (
+    0.07626899753879587532,
+    -1.137405378399605780,
+    0.1973749217849087460e-4,
+    0.5659714913272723189e-5,
+    0.134,
+    8.7,
+)
+# ERFA t_erfa_c.c, t_fk425: expected outputs (J2000.0 FK5, motions rad per Julian year).
+FK425_OUT = (
+    0.08757989933556446040,
+    -1.132279113042091895,
+    0.1953670614474396139e-4,
+    0.5637686678659640164e-5,
+    0.1339919950582767871,
+    8.736999669183529069,
+)
+# The test suite's tolerances for r, d, dr, dd, p, v (same units).
+FK425_TOL = (1e-14, 1e-12, 1e-17, 1e-18, 1e-13, 1e-12)
+
+
+def test_fk425_catalogue_matches_sofa_test_values():
+    r, d, dr, dd, p, v = FK425_IN
+    out = F.fk425_catalogue(r, d, dr / TROP, dd / TROP, p, v)
+    for got, want, tol in zip(out, FK425_OUT, FK425_TOL, strict=True):
+        assert got == pytest.approx(want, abs=tol)
+
+
+def test_fk4_to_icrs_pipeline_reproduces_fk425_test_values():
+    # FK4 B1950.0 at epoch B1950.0 -> ICRS at B1950.0 (frames.convert), carried to J2000.0 in
+    # ICRS, then back to FK5 with pyerfa h2fk5: must give the SOFA fk425 values. Tolerances:
+    # 1e-12 rad in position (0.2 microarcsec), 1e-12 rad/yr in proper motion, 1e-9 arcsec in
+    # parallax and 1e-5 km/s in radial velocity: our FK5<->ICRS step is the non-relativistic
+    # form of fk52h, while pyerfa's h2fk5 goes through starpv/pvstar, whose light-time terms
+    # move this star's radial velocity by 2.5e-6 km/s.
+    r, d, dr, dd, p, v = FK425_IN
+    c = _convert(r, d, dr / TROP, dd / TROP, p, v, F.JEPOCH_B1950, FK4, ICRS)
+    ra, dec, px, pmra, pmdec, rv, _ = F.propagate_uniform(
+        c.ra_deg,
+        c.dec_deg,
+        c.parallax_mas,
+        c.pm_ra_cosdec_mas_yr,
+        c.pm_dec_mas_yr,
+        c.radial_velocity_km_s,
+        F.JEPOCH_B1950,
+        2000.0,
+    )
+    dec_r = dec / DEG
+    got = erfa.h2fk5(
+        ra / DEG,
+        dec_r,
+        pmra / MAS_PER_RAD / np.cos(dec_r),
+        pmdec / MAS_PER_RAD,
+        px / 1000.0,
+        rv,
+    )
+    tols = (1e-12, 1e-12, 1e-12, 1e-12, 1e-9, 1e-5)
+    for g, want, tol in zip(got, FK425_OUT, tols, strict=True):
+        assert g == pytest.approx(want, abs=tol)
+
+
+def test_fk524_exact_inverse_near_sofa_test_values():
+    # ERFA t_erfa_c.c, t_fk524: inputs and expected outputs (FK4 motions per tropical year).
+    r2000, d2000, dr2000, dd2000, p2000, v2000 = (
+        0.8723503576487275595,
+        -0.7517076365138887672,
+        0.2019447755430472323e-4,
+        0.3541563940505160433e-5,
+        0.1559,
+        86.87,
+    )
+    want = (
+        0.8636359659799603487,
+        -0.7550281733160843059,
+        0.2023628192747172486e-4,
+        0.3624459754935334718e-5,
+        0.1560079963299390241,
+        86.79606353469163751,
+    )
+    got = list(F.fk524_exact_inverse(r2000, d2000, dr2000, dd2000, p2000, v2000))
+    got[2] *= TROP
+    got[3] *= TROP
+    # Our FK5->FK4 is refined to invert fk425 exactly; SOFA's fk524 matrix inverts it only
+    # to ~20 microarcsec (frames.fk524_exact_inverse Note 1). Tolerances: 1e-10 rad (21 uas)
+    # position, 1e-12 rad/yr motion, 1e-9 arcsec parallax, 1e-6 km/s radial velocity.
+    tols = (1e-10, 1e-10, 1e-12, 1e-12, 1e-9, 1e-6)
+    for g, w, tol in zip(got, want, tols, strict=True):
+        assert g == pytest.approx(w, abs=tol)
+    # And it is the exact inverse of fk425 (pyerfa run here): 1e-14 rad.
+    back = erfa.fk425(*(got[:2] + [got[2], got[3]] + got[4:]))
+    assert back[0] == pytest.approx(r2000, abs=1e-14)
+    assert back[1] == pytest.approx(d2000, abs=1e-14)
+
+
+# --- SOFA fk52h / h2fk5 / fk5hz / hfk5z -------------------------------------------------------
+
+
+def test_fk52h_matches_sofa_test_values():
+    # ERFA t_erfa_c.c, t_fk52h: input FK5 J2000.0 star and expected Hipparcos (ICRS) values.
+    c = _convert(1.76779433, -0.2917517103, -1.91851572e-7, -5.8468475e-6, 0.379210, -7.6,
+                 2000.0, FK5, ICRS)  # fmt: skip
+    want = (
+        1.767794226299947632,
+        -0.2917516070530391757,
+        -0.1961874125605721270e-6,
+        -0.58459905176693911e-5,
+        0.37921,
+        -7.6000000940000254,
+    )
+    # Position and parallax to the suite's 1e-14; motions to 1e-12 rad/yr and radial
+    # velocity to 1e-6 km/s: SOFA's fk52h goes through starpv/pvstar (light-time and
+    # relativistic terms, ~1e-13 rad/yr and 1e-7 km/s here), our rotation+spin does not.
+    tols = (1e-14, 1e-14, 1e-12, 1e-12, 1e-14, 1e-6)
+    for g, w, tol in zip(_sofa_out(c), want, tols, strict=True):
+        assert g == pytest.approx(w, abs=tol)
+
+
+def test_h2fk5_matches_sofa_test_values():
+    # ERFA t_erfa_c.c, t_h2fk5.
+    c = _convert(1.767794352, -0.2917512594, -2.76413026e-6, -5.92994449e-6, 0.379210, -7.6,
+                 2000.0, ICRS, FK5)  # fmt: skip
+    want = (
+        1.767794455700065506,
+        -0.2917513626469638890,
+        -0.27597945024511204e-5,
+        -0.59308014093262838e-5,
+        0.37921,
+        -7.6000001309071126,
+    )
+    tols = (1e-13, 1e-13, 1e-12, 1e-12, 1e-13, 1e-6)  # suite: 1e-13 rad; motions as above
+    for g, w, tol in zip(_sofa_out(c), want, tols, strict=True):
+        assert g == pytest.approx(w, abs=tol)
+
+
+def test_fk5_orientation_at_other_epochs_matches_fk5hz():
+    # ERFA t_erfa_c.c, t_fk5hz: FK5 position at TDB MJD 54479.0 -> Hipparcos, tolerance 1e-12.
+    epoch = 2000.0 + (2400000.5 + 54479.0 - 2451545.0) / 365.25
+    c = _convert(1.76779433, -0.2917517103, 0.0, 0.0, np.nan, np.nan, epoch, FK5, ICRS)
+    assert c.ra_deg / DEG == pytest.approx(1.767794191464423978, abs=1e-12)
+    assert c.dec_deg / DEG == pytest.approx(-0.2917516001679884419, abs=1e-12)
+
+
+def test_fictitious_fk5_motion_matches_hfk5z():
+    # ERFA t_erfa_c.c, t_hfk5z: ICRS star with zero motion at TDB MJD 54479.0 -> FK5 position
+    # and the apparent FK5 proper motion caused by the spin (dRA/dt, dDec/dt in rad/yr).
+    epoch = 2000.0 + (2400000.5 + 54479.0 - 2451545.0) / 365.25
+    c = _convert(1.767794352, -0.2917512594, 0.0, 0.0, np.nan, np.nan, epoch, ICRS, FK5)
+    r5, d5, dr5, dd5, _, _ = _sofa_out(c)
+    assert r5 == pytest.approx(1.767794490535581026, abs=1e-13)  # suite tolerance
+    assert d5 == pytest.approx(-0.2917513695320114258, abs=1e-14)  # suite tolerance
+    assert dr5 == pytest.approx(0.4335890983539243029e-8, abs=1e-18)  # suite: 1e-22
+    assert dd5 == pytest.approx(-0.8569648841237745902e-9, abs=1e-18)  # suite: 1e-23
+
+
+# --- Galactic and ecliptic --------------------------------------------------------------------
+
+
+def test_icrs_to_galactic_matches_sofa_test_values():
+    # ERFA t_erfa_c.c, t_icrs2g: (5.9338074302227188048671087, -1.1784870613579944551540570)
+    # -> l = 5.5850536063818546461558, b = -0.7853981633974483096157; tolerance 1e-14 rad.
+    c = F.convert(5.9338074302227188048671087 * DEG, -1.1784870613579944551540570 * DEG,
+                  np.nan, 0.0, 0.0, np.nan, 2000.0, ICRS, GAL)  # fmt: skip
+    assert c.ra_deg / DEG == pytest.approx(5.5850536063818546461558, abs=1e-14)
+    assert c.dec_deg / DEG == pytest.approx(-0.7853981633974483096157, abs=1e-14)
+
+
+@pytest.mark.parametrize("equinox", [2000.0, 1850.0, "of_date"])
+def test_ecliptic_positions_match_erfa_eqec06(equinox):
+    rng = np.random.default_rng(11)
+    ra = rng.uniform(0, 360, 200)
+    dec = np.degrees(np.arcsin(rng.uniform(-1, 1, 200)))
+    epoch = 2016.0
+    frame = F.make_frame("ecliptic", equinox)
+    c = F.convert(ra, dec, np.nan, 0.0, 0.0, np.nan, epoch, ICRS, frame)
+    date = epoch if equinox == "of_date" else equinox
+    lon, lat = erfa.eqec06(*erfa.epj2jd(date), ra / DEG, dec / DEG)  # pyerfa run here
+    dlon = (c.ra_deg - lon * DEG + 180.0) % 360.0 - 180.0
+    # 1 microarcsecond in each coordinate.
+    assert np.max(np.abs(dlon * np.cos(lat)) * UAS_PER_DEG) < 1.0
+    assert np.max(np.abs(c.dec_deg - lat * DEG) * UAS_PER_DEG) < 1.0
+
+
+def test_fk5_other_equinox_positions_match_iau1976_precession():
+    # FK5 J1975.0 = IAU 1976 precession of FK5 J2000.0 (pyerfa pmat76 run here); 1 uas.
+    rng = np.random.default_rng(5)
+    ra = rng.uniform(0, 360, 100)
+    dec = np.degrees(np.arcsin(rng.uniform(-1, 1, 100)))
+    c = F.convert(ra, dec, np.nan, 0.0, 0.0, np.nan, 2000.0, FK5, F.make_frame("fk5", 1975.0))
+    p = np.stack([np.cos(dec / DEG) * np.cos(ra / DEG), np.cos(dec / DEG) * np.sin(ra / DEG),
+                  np.sin(dec / DEG)], -1)  # fmt: skip
+    q = p @ erfa.pmat76(*erfa.epj2jd(1975.0)).T
+    ra2 = np.degrees(np.arctan2(q[:, 1], q[:, 0])) % 360.0
+    dra = (c.ra_deg - ra2 + 180.0) % 360.0 - 180.0
+    assert np.max(np.abs(dra * np.cos(c.dec_deg / DEG)) * UAS_PER_DEG) < 1.0
+
+
+# --- FK4 equinoxes and E-terms ----------------------------------------------------------------
+
+
+def test_e_terms_formula_close_to_sofa_vector_at_b1950():
+    # SOFA fk425 fixed vector (Seidelmann 1992, 3.591-2): the bare formula must agree to
+    # 1e-10 rad (0.02 mas); fk4_e_terms(1950) is anchored to it exactly.
+    bare = F._e_terms_formula(1950.0)
+    assert np.max(np.abs(bare - F.E_TERMS_B1950_SOFA_RAD)) < 1e-10
+    assert np.array_equal(F.fk4_e_terms(1950.0), F.E_TERMS_B1950_SOFA_RAD)
+
+
+def test_newcomb_precession_close_to_astropy():
+    # astropy's own Newcomb matrix (independent coefficients, Explanatory Supplement form);
+    # over 100 tropical years the two agree to 1 mas (coefficients differ in the 4th decimal).
+    from astropy.coordinates import FK4NoETerms
+    from astropy.time import Time
+
+    ours = F.newcomb_precession_matrix(1850.0, 1950.0)
+    theirs = FK4NoETerms._precession_matrix(Time("B1850"), Time("B1950"))
+    assert np.max(np.abs(ours - theirs)) * 206264.806 < 1e-3
+
+
+def test_fk4_equinox_change_positions_match_astropy():
+    # Positions only (astropy's FK4 frame is not a reference for motions, see issue): FK4
+    # B1900 -> FK4 B1950 at epoch B1950 for stars without motion; agreement 2 mas.
+    from astropy import units as u
+    from astropy.coordinates import FK4 as AFK4
+    from astropy.coordinates import SkyCoord
+    from astropy.time import Time
+
+    rng = np.random.default_rng(3)
+    ra = rng.uniform(0, 360, 50)
+    dec = np.degrees(np.arcsin(rng.uniform(-0.95, 0.95, 50)))
+    c = F.convert(ra, dec, np.nan, 0.0, 0.0, np.nan, F.JEPOCH_B1950,
+                  F.make_frame("fk4", 1900.0), FK4)  # fmt: skip
+    a = SkyCoord(ra * u.deg, dec * u.deg,
+                 frame=AFK4(equinox=Time("B1900"), obstime=Time("B1950")))  # fmt: skip
+    b = a.transform_to(AFK4(equinox=Time("B1950"), obstime=Time("B1950")))
+    dra = (c.ra_deg - b.ra.deg + 180.0) % 360.0 - 180.0
+    assert np.max(np.abs(dra * np.cos(np.radians(dec))) * 3.6e6) < 2.0
+    assert np.max(np.abs(c.dec_deg - b.dec.deg) * 3.6e6) < 2.0
+
+
+# --- Round trips (hypothesis) -----------------------------------------------------------------
+
+angles = st.tuples(
+    st.floats(0.0, 359.999),
+    st.floats(-89.9, 89.9),
+    st.floats(0.05, 800.0),
+    st.floats(-3000.0, 3000.0),
+    st.floats(-3000.0, 3000.0),
+    st.floats(-300.0, 300.0),
+    st.floats(1850.0, 2150.0),
+)
+
+
+@pytest.mark.parametrize(
+    "frame",
+    [
+        F.make_frame("fk4"),
+        F.make_frame("fk4", 1900.0),
+        GAL,
+        F.make_frame("fk5", 1975.0),
+        F.make_frame("ecliptic", "of_date"),
+    ],
+    ids=["fk4-b1950", "fk4-b1900", "galactic", "fk5-j1975", "ecliptic-of-date"],
+)
+@settings(max_examples=40, deadline=None)
+@given(star=angles)
+def test_round_trip_icrs_frame_icrs(frame, star):
+    ra, dec, px, pmra, pmdec, rv, epoch = star
+    a = F.convert(ra, dec, px, pmra, pmdec, rv, epoch, ICRS, frame)
+    b = F.convert(a.ra_deg, a.dec_deg, a.parallax_mas, a.pm_ra_cosdec_mas_yr, a.pm_dec_mas_yr,
+                  a.radial_velocity_km_s, epoch, frame, ICRS)  # fmt: skip
+    dra = (b.ra_deg - ra + 180.0) % 360.0 - 180.0
+    # 1 microarcsecond in position, 1 microarcsecond/yr in motion; parallax 1e-9 relative;
+    # radial velocity 1e-6 km/s.
+    assert abs(dra * np.cos(np.radians(dec))) * UAS_PER_DEG < 1.0
+    assert abs(b.dec_deg - dec) * UAS_PER_DEG < 1.0
+    assert abs(b.pm_ra_cosdec_mas_yr - pmra) * 1e3 < 1.0
+    assert abs(b.pm_dec_mas_yr - pmdec) * 1e3 < 1.0
+    assert b.parallax_mas == pytest.approx(px, rel=1e-9)
+    assert b.radial_velocity_km_s == pytest.approx(rv, abs=1e-6)
+
+
+def test_galactic_rotation_preserves_speed():
+    # Invariant: a rotation keeps total proper motion, parallax and radial velocity.
+    rng = np.random.default_rng(8)
+    n = 500
+    ra, dec = rng.uniform(0, 360, n), np.degrees(np.arcsin(rng.uniform(-1, 1, n)))
+    pmra, pmdec = rng.normal(0, 100, n), rng.normal(0, 100, n)
+    c = F.convert(ra, dec, 10.0, pmra, pmdec, 20.0, 2016.0, ICRS, GAL)
+    mu_in = np.hypot(pmra, pmdec)
+    mu_out = np.hypot(c.pm_ra_cosdec_mas_yr, c.pm_dec_mas_yr)
+    assert np.max(np.abs(mu_out - mu_in)) < 1e-9  # mas/yr
+    assert np.allclose(c.radial_velocity_km_s, 20.0, atol=1e-9)  # km/s
+
+
+# --- Missing values, flags, shapes ------------------------------------------------------------
+
+
+def test_missing_parallax_and_rv_pass_through_and_are_flagged():
+    c = F.convert([10.0, 20.0], [5.0, -5.0], [np.nan, -1.0], [1.0, np.nan], [2.0, 3.0],
+                  [np.nan, 4.0], F.JEPOCH_B1950, FK4, ICRS)  # fmt: skip
+    assert np.isnan(c.parallax_mas[0]) and c.parallax_mas[1] == -1.0
+    assert np.isnan(c.radial_velocity_km_s[0]) and c.radial_velocity_km_s[1] == 4.0
+    f = F.FrameFlag
+    assert c.flags[0] & f.MISSING_PARALLAX and c.flags[0] & f.MISSING_RADIAL_VELOCITY
+    assert c.flags[1] & f.NON_POSITIVE_PARALLAX and c.flags[1] & f.MISSING_PROPER_MOTION
+    assert np.all(np.isfinite(c.ra_deg)) and np.all(np.isfinite(c.pm_dec_mas_yr))
+
+
+def test_distant_fk4_object_gets_e_terms_motion():
+    # SOFA fk425 Note 2: objects at large distances show fictitious FK4 proper motions; an
+    # FK4 source with zero motion has a small (< 1 mas/yr) ICRS motion (order of the E-terms
+    # rate, 1.245e-3 arcsec per century, plus the FK4-FK5 equinox motion).
+    c = F.convert(30.0, 40.0, np.nan, 0.0, 0.0, np.nan, F.JEPOCH_B1950, FK4, ICRS)
+    mu = np.hypot(c.pm_ra_cosdec_mas_yr, c.pm_dec_mas_yr)
+    assert 0.0 < mu < 5.0
+
+
+def test_shapes_scalar_vector_matrix():
+    s = F.convert(10.0, 20.0, 5.0, 1.0, 2.0, 3.0, 2016.0, ICRS, GAL)
+    assert np.shape(s.ra_deg) == ()
+    v = F.convert(np.arange(4.0), 20.0, 5.0, 1.0, 2.0, 3.0, 2016.0, ICRS, GAL)
+    assert v.ra_deg.shape == (4,)
+    m = F.convert(np.arange(6.0).reshape(2, 3), 20.0, 5.0, 1.0, 2.0, 3.0,
+                  np.array([[2000.0], [2016.0]]), ICRS, FK4)  # fmt: skip
+    assert m.ra_deg.shape == (2, 3)
+    # Non-contiguous input gives the same answer as contiguous.
+    base = np.linspace(0, 300, 12)
+    nc = F.convert(base[::2], 10.0, 5.0, 1.0, 2.0, 3.0, 2016.0, ICRS, GAL)
+    cc = F.convert(np.ascontiguousarray(base[::2]), 10.0, 5.0, 1.0, 2.0, 3.0, 2016.0, ICRS, GAL)
+    assert np.array_equal(nc.ra_deg, cc.ra_deg)
+
+
+def test_make_frame_validation():
+    assert F.make_frame("FK4").equinox == 1950.0
+    assert F.make_frame("fk5").equinox == 2000.0
+    assert F.make_frame("ecliptic", "of_date").of_date
+    for bad in [("hcrs", None), ("icrs", 2000.0), ("fk5", "soon"), ("fk4", 5000.0)]:
+        with pytest.raises(ValueError):
+            F.make_frame(*bad)
