@@ -526,3 +526,82 @@ def test_velocity_job_equals_kinematics_core_bitwise(tmp_path):
         "correlation_parallax_pm_dec",
         "correlation_pm_ra_pm_dec",
     }
+
+
+def test_constellations_job_equals_constellation_core_bitwise(tmp_path):
+    from service.core import constellations
+
+    cat = synthetic_catalogue(200_000, seed=9)
+    # Proper motions are optional here (a star without them stays put, flagged): only the
+    # positions make a row bad.
+    ra, dec = cat["RA_ICRS"].to_numpy(), cat["DE_ICRS"].to_numpy()
+    with np.errstate(invalid="ignore"):
+        bad = np.isnan(ra) | (ra < 0) | (np.abs(dec) > 90)
+    assert np.count_nonzero(bad) == 30 and np.isnan(cat["pmDE"]).sum() == 10
+    write_parquet(cat, tmp_path / "cat.parquet", row_group_rows=40_000)
+    good = ~bad
+    abbreviations = np.asarray(constellations.boundary_table().abbreviations)
+    # Positions as given: only ra/dec are read.
+    fixed = batch.run_batch(
+        "constellations",
+        tmp_path / "cat.parquet",
+        tmp_path / "fixed",
+        columns=MAPPING,
+        keep=["source_id"],
+        params={},
+        blocksize="1MiB",
+    )
+    assert set(fixed.metadata["input"]["column_mapping"]) == {"ra_deg", "dec_deg"}
+    assert fixed.metadata["data_tables"]["constellation_boundaries"]["sha256"]
+    ref = constellations.locate(cat["RA_ICRS"].to_numpy()[good], cat["DE_ICRS"].to_numpy()[good])
+    out = read_output(tmp_path / "fixed")
+    assert np.array_equal(
+        out["constellation"].to_numpy()[good].astype(str), abbreviations[ref.index]
+    )
+    assert out["constellation"].isna()[bad].all()
+    assert_bitwise_equal(
+        out["boundary_margin_arcsec"].to_numpy()[good], ref.margin_arcsec, "margin"
+    )
+    assert_bitwise_equal(out["constellation_flags"].to_numpy()[good], ref.flags, "flags")
+    # Moved to another epoch first, with a per-row catalogue epoch.
+    moved = batch.run_batch(
+        "constellations",
+        tmp_path / "cat.parquet",
+        tmp_path / "moved",
+        columns=MAPPING,
+        keep=["source_id"],
+        params={"epoch_jyear": 12016.0, "catalogue_epoch_jyear": CATALOGUE_EPOCH},
+        blocksize="1MiB",
+    )
+    assert moved.metadata["parameters"]["epoch"]["julian_epoch_tdb"] == 12016.0
+    ref = constellations.locate_moving(
+        *(cat[MAPPING[name]].to_numpy()[good] for name in MAPPING),
+        CATALOGUE_EPOCH,
+        12016.0,
+    )
+    out = read_output(tmp_path / "moved")
+    assert np.array_equal(
+        out["constellation"].to_numpy()[good].astype(str), abbreviations[ref.index]
+    )
+    assert np.array_equal(
+        out["constellation_across"].to_numpy()[good].astype(str),
+        abbreviations[ref.other_side_index],
+    )
+    assert_bitwise_equal(
+        out["boundary_margin_arcsec"].to_numpy()[good], ref.margin_arcsec, "margin"
+    )
+    assert_bitwise_equal(out["constellation_flags"].to_numpy()[good], ref.flags, "flags")
+    assert out["constellation"].isna()[bad].all()
+    unknown_pm = np.isnan(cat["pmDE"].to_numpy())
+    names = batch.flag_names(
+        out["constellation_flags"][unknown_pm], "constellation_flags", "constellations"
+    )
+    assert all("proper_motion_unknown" in n for n in names)
+    # 10,000 years of motion moves some stars into other constellations.
+    assert (
+        np.count_nonzero(
+            out["constellation"].to_numpy().astype(str)
+            != read_output(tmp_path / "fixed")["constellation"].to_numpy().astype(str)
+        )
+        > 10
+    )

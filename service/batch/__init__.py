@@ -11,6 +11,11 @@ Jobs (:data:`JOBS`; ``skydrift batch fields JOB`` lists inputs and outputs)
 ----------------------------------------------------------------------------
 ``propagate``
     :func:`service.core.propagation.propagate` to one target epoch.
+``constellations``
+    :func:`service.core.constellations.locate` (positions as given) or
+    :func:`~service.core.constellations.locate_moving` (each star moved to ``--epoch``
+    first): the IAU constellation, the distance to the nearest boundary and the
+    constellation across it.
 ``velocity``
     :func:`service.core.kinematics.space_velocity`: transverse, radial and total velocity,
     U V W (heliocentric and LSR) with linear uncertainties, secular quantities.
@@ -67,7 +72,7 @@ from .engine import (
     read_metadata,
     run_batch,
 )
-from .jobs import JOBS, PROPAGATE, VELOCITY
+from .jobs import CONSTELLATIONS, JOBS, PROPAGATE, VELOCITY
 from .spec import (
     FLAG_DTYPE,
     BatchInputError,
@@ -78,6 +83,7 @@ from .spec import (
 )
 
 __all__ = [
+    "CONSTELLATIONS",
     "FLAG_DTYPE",
     "JOBS",
     "METADATA_FILE",

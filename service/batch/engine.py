@@ -238,6 +238,10 @@ def make_plan(
             "name; keep them under another name in the input, or do not keep them"
         )
     params = job.check_params(dict(params), mapping)
+    used = job.fields_used(params)
+    if used is not None:
+        mapping = {k: v for k, v in mapping.items() if k in used}
+        absent = [k for k in absent if k in used]
     return BatchPlan(job, mapping, tuple(absent), keep, params)
 
 
@@ -337,6 +341,12 @@ def process_partition(frame, plan: BatchPlan):
     results = plan.job.compute(inputs, plan.params) if n else {}
     data = {k: frame[k].to_numpy() for k in plan.keep}
     for col in plan.job.outputs:
+        if col.dtype == "category":
+            codes = np.asarray(results[col.name] if n else np.zeros(0), dtype=np.int16)
+            if any_skipped:
+                codes = np.where(skipped, -1, codes)
+            data[col.name] = pd.Categorical.from_codes(codes, categories=col.categories)
+            continue
         values = results[col.name] if n else np.zeros(0)
         values = np.asarray(values).astype(col.dtype, copy=False)
         if any_skipped:
@@ -354,7 +364,11 @@ def output_meta(plan: BatchPlan, input_meta):
 
     data = {k: input_meta[k].iloc[:0] for k in plan.keep}
     for col in plan.job.outputs:
-        data[col.name] = pd.Series(np.zeros(0, dtype=col.dtype))
+        if col.dtype == "category":
+            empty = pd.Categorical.from_codes(np.zeros(0, dtype=np.int16), col.categories)
+            data[col.name] = pd.Series(empty)
+        else:
+            data[col.name] = pd.Series(np.zeros(0, dtype=col.dtype))
     data["row_flags"] = pd.Series(np.zeros(0, dtype=FLAG_DTYPE))
     return pd.DataFrame(data, index=input_meta.index[:0])
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..core import constellations as _constellations
 from ..core import kinematics as _kinematics
 from ..core import propagation as _propagation
 from ..core.constants import C_KM_S
@@ -44,6 +45,13 @@ PM_RA = InputField(
     "pm_ra_cosdec_mas_yr", "mas/yr", "proper motion in right ascension times cos(dec)", True
 )
 PM_DEC = InputField("pm_dec_mas_yr", "mas/yr", "proper motion in declination", True)
+#: Proper motions where a star without them is taken as fixed (and flagged by the core).
+PM_RA_OPTIONAL = InputField(
+    PM_RA.name, PM_RA.unit, PM_RA.description + "; NaN = unknown", False, placeholder=np.nan
+)
+PM_DEC_OPTIONAL = InputField(
+    PM_DEC.name, PM_DEC.unit, PM_DEC.description + "; NaN = unknown", False, placeholder=np.nan
+)
 RADIAL_VELOCITY = InputField(
     "radial_velocity_km_s",
     "km/s",
@@ -407,5 +415,203 @@ VELOCITY = BatchJob(
     describe_params=_velocity_describe,
 )
 
+# ---------------------------------------------------------------------------------------
+# constellations
+# ---------------------------------------------------------------------------------------
+
+_CF = _constellations.ConstellationFlag
+CONSTELLATION_FLAG_MEANINGS = {
+    _CF.NEAR_BOUNDARY: "Within the near-boundary distance of a boundary, or within the "
+    "table's rounding of one.",
+    _CF.TABLE_ROUNDING_AMBIGUOUS: "Within half a unit of the table's last digit of a "
+    "boundary: the published table cannot decide.",
+    _CF.REDUCTIONS_DISAGREE: "The FK4 and FK5 reductions to B1875.0 give different constellations.",
+    _CF.PARALLAX_UNKNOWN: "No usable parallax: motion applied as direction only (no "
+    "perspective effects; radial velocity not used).",
+    _CF.NONPOSITIVE_PARALLAX: "Parallax zero or negative: treated as unknown.",
+    _CF.RADIAL_VELOCITY_UNKNOWN: "No radial velocity: taken as zero for the motion.",
+    _CF.PROPER_MOTION_UNKNOWN: "No proper motion: the position was taken as fixed.",
+    _CF.SEARCH_INCOMPLETE: "Crossing search stopped early (not used in batch runs).",
+}
+
+_MOTION_FIELDS = {
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+    CATALOGUE_EPOCH_FIELD.name,
+}
+
+
+def _abbreviations() -> tuple:
+    return tuple(_constellations.boundary_table().abbreviations)
+
+
+def _constellations_compute(inputs: dict, params: dict) -> dict:
+    common = {
+        "reduction": params["reduction"],
+        "with_margin": True,
+        "near_boundary_arcsec": params["near_boundary_arcsec"],
+    }
+    if params.get("epoch_jyear") is None:
+        result = _constellations.locate(inputs["ra_deg"], inputs["dec_deg"], **common)
+    else:
+        result = _constellations.locate_moving(
+            inputs["ra_deg"],
+            inputs["dec_deg"],
+            inputs["parallax_mas"],
+            inputs["pm_ra_cosdec_mas_yr"],
+            inputs["pm_dec_mas_yr"],
+            inputs["radial_velocity_km_s"],
+            catalogue_epoch_values(inputs, params),
+            params["epoch_jyear"],
+            **common,
+        )
+    return {
+        "constellation": result.index,
+        "boundary_margin_arcsec": result.margin_arcsec,
+        "constellation_across": result.other_side_index,
+        "constellation_flags": result.flags,
+    }
+
+
+def _constellations_options(parser) -> None:
+    parser.add_argument(
+        "--epoch",
+        help="epoch at which to look the stars up, e.g. J2030.0: each star is first moved "
+        "there with its space motion (straight-line model). Default: the positions as given",
+    )
+    _catalogue_epoch_option(parser, required=False)
+    parser.add_argument(
+        "--reduction",
+        default="fk4",
+        choices=("fk4", "fk5"),
+        help="reduction of ICRS positions to the boundaries' equinox B1875.0 (default fk4, "
+        "as the boundaries were drawn); the other is compared and disagreements flagged",
+    )
+    parser.add_argument(
+        "--near-boundary-arcsec",
+        type=float,
+        default=_constellations.DEFAULT_NEAR_BOUNDARY_ARCSEC,
+        help="distance to a boundary within which near_boundary is flagged, arcsec "
+        f"(default {_constellations.DEFAULT_NEAR_BOUNDARY_ARCSEC:g})",
+    )
+
+
+def _constellations_params(args) -> tuple[dict, dict]:
+    params = {
+        "epoch_jyear": parse_epoch_option(args.epoch, "--epoch"),
+        "catalogue_epoch_jyear": parse_epoch_option(args.catalogue_epoch, "--catalogue-epoch"),
+        "reduction": args.reduction,
+        "near_boundary_arcsec": args.near_boundary_arcsec,
+    }
+    return params, {"epoch": args.epoch, "catalogue_epoch": args.catalogue_epoch}
+
+
+def _constellations_check(params: dict, mapping) -> dict:
+    params = dict(params)
+    params.setdefault("epoch_jyear", None)
+    params.setdefault("catalogue_epoch_jyear", None)
+    params.setdefault("reduction", "fk4")
+    params.setdefault("near_boundary_arcsec", _constellations.DEFAULT_NEAR_BOUNDARY_ARCSEC)
+    if params["reduction"] not in ("fk4", "fk5"):
+        raise BatchInputError(f"unknown reduction {params['reduction']!r}; use fk4 or fk5")
+    near = params["near_boundary_arcsec"]
+    if not np.isfinite(near) or near < 0:
+        raise BatchInputError("--near-boundary-arcsec must be a non-negative number")
+    moving = params["epoch_jyear"] is not None
+    if moving:
+        check_catalogue_epoch(params, mapping, required=True)
+    elif params["catalogue_epoch_jyear"] is not None or CATALOGUE_EPOCH_FIELD.name in mapping:
+        raise BatchInputError(
+            "a catalogue epoch was given without --epoch: give the epoch of the lookup too, "
+            "or neither (positions as given)"
+        )
+    return params
+
+
+def _constellations_fields(params: dict):
+    if params.get("epoch_jyear") is None:
+        return {"ra_deg", "dec_deg"}
+    return None
+
+
+def _constellations_describe(params: dict, mapping, given) -> dict:
+    epoch = params.get("epoch_jyear")
+    return {
+        "epoch": None if epoch is None else epoch_record(given.get("epoch"), epoch),
+        "catalogue_epoch": catalogue_epoch_record(params, mapping, given),
+        "motion": "none (positions as given)"
+        if epoch is None
+        else "straight-line space motion (Hipparcos Vol. 1 sec. 1.5.5)",
+        "reduction": params["reduction"],
+        "near_boundary_arcsec": params["near_boundary_arcsec"],
+    }
+
+
+def _constellations_tables() -> dict:
+    return {
+        "constellation_boundaries": {
+            "file": _constellations.BOUNDARY_TABLE_FILE,
+            "sha256": _constellations.BOUNDARY_TABLE_SHA256,
+            "source": "Roman 1987, PASP 99, 695; CDS VI/42 (boundaries at equinox B1875.0)",
+        },
+        "constellation_names": {
+            "file": _constellations.NAMES_FILE,
+            "sha256": _constellations.NAMES_SHA256,
+            "source": "IAU constellation abbreviations and names",
+        },
+    }
+
+
+def _constellations_outputs() -> tuple[OutputColumn, ...]:
+    names = _abbreviations()
+    return (
+        OutputColumn(
+            "constellation",
+            "category",
+            "IAU abbreviation",
+            "constellation containing the position (at --epoch if given)",
+            names,
+        ),
+        OutputColumn(
+            "boundary_margin_arcsec",
+            "float64",
+            "arcsec",
+            "distance to the nearest constellation boundary",
+        ),
+        OutputColumn(
+            "constellation_across",
+            "category",
+            "IAU abbreviation",
+            "constellation on the other side of the nearest boundary",
+            names,
+        ),
+        OutputColumn(
+            "constellation_flags",
+            FLAG_DTYPE,
+            "bit mask",
+            "ConstellationFlag bits (see metadata)",
+        ),
+    )
+
+
+CONSTELLATIONS = BatchJob(
+    name="constellations",
+    summary="IAU constellation of every star, with the distance to the nearest boundary",
+    fields=(RA, DEC, PARALLAX, PM_RA_OPTIONAL, PM_DEC_OPTIONAL, RADIAL_VELOCITY)
+    + (CATALOGUE_EPOCH_FIELD,),
+    outputs=_constellations_outputs(),
+    flag_columns={"constellation_flags": (_CF, CONSTELLATION_FLAG_MEANINGS)},
+    compute=_constellations_compute,
+    frames={"input": "ICRS", "boundaries": "B1875.0 equinox (FK4 or FK5 reduction)"},
+    add_options=_constellations_options,
+    params_from_args=_constellations_params,
+    check_params=_constellations_check,
+    describe_params=_constellations_describe,
+    data_tables=_constellations_tables,
+    fields_used=_constellations_fields,
+)
+
 #: The jobs by subcommand name.
-JOBS: dict[str, BatchJob] = {job.name: job for job in (PROPAGATE, VELOCITY)}
+JOBS: dict[str, BatchJob] = {job.name: job for job in (PROPAGATE, CONSTELLATIONS, VELOCITY)}

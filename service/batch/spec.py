@@ -78,12 +78,18 @@ class InputField:
 
 @dataclass(frozen=True)
 class OutputColumn:
-    """One result column: name, numpy dtype, unit and description."""
+    """One result column: name, dtype, unit and description.
+
+    A column of dtype ``"category"`` holds names from a fixed list (``categories``): the
+    job computes integer codes (index into the list, -1 for none) and the output is a
+    pandas Categorical, written to Parquet as dictionary-encoded strings.
+    """
 
     name: str
     dtype: str
     unit: str
     description: str
+    categories: tuple | None = None
 
 
 def _no_options(parser) -> None:
@@ -100,6 +106,10 @@ def _same_params(params: dict, mapping: Mapping) -> dict:
 
 def _no_tables() -> dict:
     return {}
+
+
+def _all_fields(params: dict):
+    return None
 
 
 @dataclass(frozen=True)
@@ -136,6 +146,9 @@ class BatchJob:
         ``describe_params(params, mapping, given) -> dict`` for the metadata.
     data_tables : callable
         ``data_tables() -> dict``: the data tables the job depends on, for the metadata.
+    fields_used : callable
+        ``fields_used(params) -> set of names or None``: the fields a run with these
+        parameters needs (None: all); the others are not read.
     """
 
     name: str
@@ -150,6 +163,7 @@ class BatchJob:
     check_params: Callable = field(default=_same_params)
     describe_params: Callable = field(default=None)
     data_tables: Callable = field(default=_no_tables)
+    fields_used: Callable = field(default=_all_fields)
 
     def field(self, name: str) -> InputField:
         """The input field called ``name``."""
