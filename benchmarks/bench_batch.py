@@ -21,6 +21,7 @@ The target is 70 % per core used. The load average is printed: on a shared machi
 clock ratios above 1/(load share) are not reachable.
 
 Run: .venv/bin/python -m benchmarks.bench_batch [--rows 2000000] [--workers 2] [--repeats 3]
+(or ``python -m benchmarks.run batch``, with the defaults).
 """
 
 from __future__ import annotations
@@ -28,6 +29,7 @@ from __future__ import annotations
 import argparse
 import os
 import shutil
+import sys
 import tempfile
 import time
 
@@ -224,7 +226,7 @@ def main(argv=None) -> None:
     parser.add_argument("--workers", type=int, default=os.cpu_count() or 2)
     parser.add_argument("--repeats", type=int, default=3)
     parser.add_argument("--no-cluster", action="store_true", help="skip the LocalCluster run")
-    args = parser.parse_args(argv)
+    args = parser.parse_args([] if argv is None else argv)
     import pyarrow as pa
     import pyarrow.parquet as pq
 
@@ -291,4 +293,4 @@ def main(argv=None) -> None:
 
 
 if __name__ == "__main__":
-    main()
+    main(sys.argv[1:])

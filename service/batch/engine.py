@@ -618,9 +618,11 @@ def run_batch(
     t0 = time.perf_counter()
     if local not in LOCAL_SCHEDULERS:
         raise BatchInputError(f"unknown local scheduler {local!r}; use {LOCAL_SCHEDULERS}")
-    dest = pathlib.Path(destination)
-    if dest.exists() and not overwrite:
-        if not dest.is_dir() or any(dest.iterdir()):
+    _require_dask()
+    fs, dest_path = _filesystem(destination)
+    dest = str(destination)
+    if fs.exists(dest_path) and not overwrite:
+        if not fs.isdir(dest_path) or fs.ls(dest_path):
             raise BatchInputError(
                 f"output {dest} exists and is not empty; choose another or pass --overwrite"
             )
@@ -635,7 +637,7 @@ def run_batch(
 
     bits = _flag_bits(job)
     write = out.to_parquet(
-        str(dest),
+        dest,
         write_index=False,
         overwrite=overwrite,
         compute=False,
@@ -697,8 +699,9 @@ def run_batch(
     wall = time.perf_counter() - t0
     metadata = _metadata(plan, facts, execution, started, wall, rows, flag_counts, dest)
     metadata["parameters"] = _parameter_record(plan, given or {})
-    (dest / METADATA_FILE).write_text(json.dumps(metadata, indent=2, sort_keys=False) + "\n")
-    return RunSummary(str(dest), rows, flag_counts, wall, metadata)
+    with fs.open(_join(dest_path, METADATA_FILE), "w") as handle:
+        handle.write(json.dumps(metadata, indent=2) + "\n")
+    return RunSummary(dest, rows, flag_counts, wall, metadata)
 
 
 @contextlib.contextmanager
@@ -804,4 +807,17 @@ def _metadata(plan, facts, execution, started, wall, rows, flag_counts, dest) ->
 
 def read_metadata(destination) -> dict:
     """The metadata of a finished run (the JSON file in its output directory)."""
-    return json.loads((pathlib.Path(destination) / METADATA_FILE).read_text())
+    fs, path = _filesystem(destination)
+    with fs.open(_join(path, METADATA_FILE), "r") as handle:
+        return json.load(handle)
+
+
+def _filesystem(url):
+    """(fsspec filesystem, path) for a local path or a URL such as s3://bucket/dir."""
+    from fsspec.core import url_to_fs
+
+    return url_to_fs(str(url))
+
+
+def _join(path: str, name: str) -> str:
+    return path.rstrip("/") + "/" + name
