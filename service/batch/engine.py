@@ -276,6 +276,23 @@ def _acceptable(x: np.ndarray, f) -> np.ndarray:
     return ok
 
 
+def _all_acceptable(x: np.ndarray, f) -> bool:
+    """Whether every value is acceptable, from two reductions (no temporaries).
+
+    The minimum and maximum propagate NaN for required fields (so NaN fails the test) and
+    skip it for optional ones (fmin, fmax), where NaN means unknown.
+    """
+    if x.size == 0:
+        return True
+    if f.required:
+        lo, hi = np.minimum.reduce(x), np.maximum.reduce(x)
+    else:
+        lo, hi = np.fmin.reduce(x), np.fmax.reduce(x)
+        if np.isnan(lo):  # all unknown
+            return True
+    return bool(np.isfinite(lo) and np.isfinite(hi) and lo >= f.low and hi <= f.high)
+
+
 def row_checks(plan: BatchPlan, inputs: dict) -> np.ndarray:
     """:class:`RowFlag` bits per row from the input arrays of one partition.
 
@@ -283,16 +300,16 @@ def row_checks(plan: BatchPlan, inputs: dict) -> np.ndarray:
     -----
     1. NaN in a required field: REQUIRED_VALUE_MISSING. Infinite, or outside the field's
        valid range: VALUE_OUT_OF_RANGE. NaN in an optional field is "unknown", not bad.
-    2. One pass per field finds whether anything is wrong; the rows are classified only
-       when something is (rare in real catalogues).
+    2. Two reductions per field (minimum and maximum) find whether anything is wrong; the
+       rows are classified only when something is (rare in real catalogues).
     """
     n = len(next(iter(inputs.values())))
     flags = np.zeros(n, dtype=np.uint32)
     for name, x in inputs.items():
         f = plan.job.field(name)
-        ok = _acceptable(x, f)
-        if ok.all():
+        if _all_acceptable(x, f):
             continue
+        ok = _acceptable(x, f)
         nan = np.isnan(x)
         if f.required:
             flags[nan] |= np.uint32(RowFlag.REQUIRED_VALUE_MISSING)
@@ -484,6 +501,14 @@ def _count_flags(frame, bits: dict):
     for col, col_bits in bits.items():
         values = frame[col].to_numpy()
         present = int(np.bitwise_or.reduce(values)) if len(values) else 0
+        if present < 1 << 16:
+            # One pass: how many rows have each mask, then the bits of the masks seen.
+            per_mask = np.bincount(values, minlength=present + 1)
+            masks = np.flatnonzero(per_mask)
+            for bit in col_bits:
+                with_bit = masks[(masks >> bit) & 1 == 1]
+                counts[f"{col}:{bit}"] = int(per_mask[with_bit].sum())
+            continue
         for bit in col_bits:
             n = 0
             if present >> bit & 1:
