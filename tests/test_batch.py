@@ -9,6 +9,7 @@ canonical ones, so the column mapping is exercised on every run.
 from __future__ import annotations
 
 import json
+import pathlib
 
 import numpy as np
 import pytest
@@ -604,4 +605,50 @@ def test_constellations_job_equals_constellation_core_bitwise(tmp_path):
             != read_output(tmp_path / "fixed")["constellation"].to_numpy().astype(str)
         )
         > 10
+    )
+
+
+def test_row_checks_agree_with_the_field_definitions():
+    """The two-reduction fast path and the per-row path give the documented flags."""
+    rng = np.random.default_rng(12)
+    n = 5000
+    plan = batch.make_plan(
+        "propagate",
+        {name: "float64" for name in MAPPING},
+        params={"catalogue_epoch_jyear": 2016.0, "target_epoch_jyear": 2000.0},
+    )
+    specials = np.array([np.nan, np.inf, -np.inf, 95.0, -1.0, 361.0, 4e5])
+    inputs = {}
+    for name in MAPPING:
+        x = rng.uniform(0.0, 80.0, n)
+        pick = rng.random(n) < 0.02
+        x[pick] = rng.choice(specials, pick.sum())
+        inputs[name] = x
+    flags = batch.engine.row_checks(plan, inputs)
+    expected = np.zeros(n, dtype=np.uint32)
+    for name, x in inputs.items():
+        f = plan.job.field(name)
+        for i in range(n):
+            v = x[i]
+            if np.isnan(v):
+                expected[i] |= f.required * int(batch.RowFlag.REQUIRED_VALUE_MISSING)
+            elif not (np.isfinite(v) and f.low <= v <= f.high):
+                expected[i] |= int(batch.RowFlag.VALUE_OUT_OF_RANGE)
+    assert np.array_equal(flags, expected)
+    clean = {k: np.where(expected != 0, 1.0, v) for k, v in inputs.items()}
+    assert not batch.engine.row_checks(plan, clean).any()
+
+
+def test_building_the_command_line_does_not_import_dask():
+    """The service (skydrift serve) must not need the batch extra."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys; from service.cli import build_parser; build_parser(); "
+        "assert not [m for m in sys.modules if m.split('.')[0] in ('dask', 'pyarrow', "
+        "'distributed', 'pandas')], 'imported'"
+    )
+    subprocess.run(
+        [sys.executable, "-c", code], check=True, cwd=str(pathlib.Path(__file__).parents[1])
     )
