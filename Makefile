@@ -35,5 +35,19 @@ bench: venv
 demo: venv
 	$(BIN)/python shared/demo/run.py
 
+# Deployment: `make container-test` builds the image from deploy/Dockerfile and runs
+# deploy/smoke.sh against the running container (needs Docker, or root with Debian's dockerd
+# and debootstrap: see deploy/container-test.sh). `make test` never needs a container engine.
+.PHONY: container-test smoke lock
+
+container-test: venv
+	PYTHON=$(BIN)/python deploy/container-test.sh
+
+smoke: venv
+	PYTHON=$(BIN)/python deploy/smoke.sh
+
+lock: venv
+	$(BIN)/python deploy/lock.py
+
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .hypothesis

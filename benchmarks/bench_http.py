@@ -5,8 +5,12 @@
    the same application, and against a naive astropy SkyCoord endpoint.
 2. 1,000,000 stars in one columnar JSON request: end-to-end time against the core's compute
    time for the same stars, and the peak memory of the worker.
+3. gunicorn worker classes (the choice in deploy/gunicorn.conf.py): one-star requests and
+   mid-size batches (1,000 stars) under each class, same number of workers, as ratios to
+   the sync class.
 
 Run: .venv/bin/python -m benchmarks.run http   (needs `wrk`, from Debian's packages)
+     .venv/bin/python -m benchmarks.bench_http workers   (part 3 only)
 """
 
 from __future__ import annotations
@@ -46,11 +50,14 @@ def _free_port() -> int:
         return s.getsockname()[1]
 
 
-def start(workers: int | None = None):
+def start(workers: int | None = None, worker_class: str | None = None, threads: int = 1):
     port = _free_port()
     env = dict(os.environ, SKYDRIFT_BIND=f"127.0.0.1:{port}", SKYDRIFT_ACCESS_LOG="/dev/null")
     if workers:
         env["SKYDRIFT_WORKERS"] = str(workers)
+    if worker_class:
+        env["SKYDRIFT_WORKER_CLASS"] = worker_class
+        env["SKYDRIFT_THREADS"] = str(threads)
     proc = subprocess.Popen(
         [
             sys.executable,
@@ -177,9 +184,68 @@ def million_star_batch(n: int = 1_000_000) -> dict:
     return {"core_s": core_s, "http_s": http_s, "body_mb": len(body) / 1e6, "peak_mb": peak}
 
 
+#: Worker classes compared: (label, worker class, threads per worker).
+WORKER_CLASSES = (("sync", "sync", 1), ("gthread x2", "gthread", 2), ("gthread x4", "gthread", 4))
+
+
+def batch_body(n: int = 1000) -> dict:
+    rng = np.random.default_rng(11)
+    cols = {
+        "ra_deg": rng.uniform(0, 360, n).round(6).tolist(),
+        "dec_deg": rng.uniform(-80, 80, n).round(6).tolist(),
+        "parallax_mas": rng.uniform(0.5, 50, n).round(3).tolist(),
+        "pm_ra_cosdec_mas_yr": rng.normal(0, 30, n).round(3).tolist(),
+        "pm_dec_mas_yr": rng.normal(0, 30, n).round(3).tolist(),
+    }
+    return {"stars": cols, "catalogue_epoch": 2016.0, "target_epochs": [2026.92]}
+
+
+def worker_class_rates(workers: int = 2, rounds: int = 3) -> dict:
+    """Requests/s per worker class: one star, and 1,000-star batches, wrk -c8.
+
+    The classes are measured in alternating order over several rounds and the median is
+    kept, so that load from other processes on a shared machine falls on both alike.
+    """
+    batch = batch_body()
+    samples = {label: {"one_star": [], "batch_1000": []} for label, _, _ in WORKER_CLASSES}
+    for k in range(rounds):
+        order = WORKER_CLASSES if k % 2 == 0 else WORKER_CLASSES[::-1]
+        for label, cls, threads in order:
+            url, proc = start(workers=workers, worker_class=cls, threads=threads)
+            try:
+                for body in (ONE_STAR, batch):
+                    requests.post(url + "/v1/propagation", json=body, timeout=30).raise_for_status()
+                samples[label]["one_star"].append(wrk_rps(url, "/v1/propagation", ONE_STAR))
+                samples[label]["batch_1000"].append(wrk_rps(url, "/v1/propagation", batch))
+            finally:
+                stop(proc)
+    return {
+        label: {key: float(np.median(v)) for key, v in per.items()}
+        for label, per in samples.items()
+    }
+
+
+def print_worker_classes() -> None:
+    rates = worker_class_rates()
+    base = rates["sync"]
+    print(
+        "gunicorn worker classes, 2 workers, POST /v1/propagation, wrk -t1 -c8, "
+        "median of 3 alternating rounds:"
+    )
+    for label, r in rates.items():
+        print(
+            f"  {label:11s} one star {r['one_star']:7.0f} requests/s "
+            f"({r['one_star'] / base['one_star']:.2f} of sync); 1,000-star batches "
+            f"{r['batch_1000']:6.1f} requests/s ({r['batch_1000'] / base['batch_1000']:.2f})"
+        )
+
+
 def main() -> None:
     if not shutil.which("wrk"):
         print("bench_http: wrk not found (apt-get install wrk); skipped")
+        return
+    if sys.argv[1:] == ["workers"]:
+        print_worker_classes()
         return
     rates = one_star_rates()
     print("HTTP, one star per request, gunicorn (deploy/gunicorn.conf.py), wrk -t1 -c8:")
@@ -201,6 +267,7 @@ def main() -> None:
     )
     print(f"  end-to-end / core: {big['http_s'] / big['core_s']:.1f}x  (target <= 8x)")
     print(f"  peak worker memory: {big['peak_mb']:.0f} MB  (target < 2048 MB)")
+    print_worker_classes()
 
 
 if __name__ == "__main__":

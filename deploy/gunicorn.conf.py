@@ -1,48 +1,138 @@
 """gunicorn settings for Skydrift; every value can be overridden from the environment.
 
 gunicorn --config deploy/gunicorn.conf.py service.wsgi:app
+
+The container runs exactly this (deploy/Dockerfile), and so do `make serve`, deploy/smoke.sh
+and the server tests.
 """
 
-import multiprocessing
+import atexit
+import math
 import os
+import shutil
+import tempfile
 
-#: Address to listen on: SKYDRIFT_BIND (default loopback only; a container sets 0.0.0.0:8000).
+
+def _cpu_count() -> int:
+    """CPUs this process may use: affinity mask, and the cgroup v2 quota in a container."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except AttributeError:  # not on Linux
+        n = os.cpu_count() or 1
+    try:
+        with open("/sys/fs/cgroup/cpu.max") as fh:
+            quota, period = fh.read().split()[:2]
+        if quota != "max":
+            n = min(n, max(1, math.ceil(int(quota) / int(period))))
+    except (OSError, ValueError):
+        pass
+    return max(1, n)
+
+
+#: Address to listen on: SKYDRIFT_BIND (default loopback only; the image sets 0.0.0.0:8000).
 bind = os.environ.get("SKYDRIFT_BIND", "127.0.0.1:8000")
 
-#: Worker processes: SKYDRIFT_WORKERS, default one per CPU (the work is CPU-bound numpy).
-workers = int(os.environ.get("SKYDRIFT_WORKERS", multiprocessing.cpu_count()))
+#: Worker processes: SKYDRIFT_WORKERS, default one per usable CPU (the work is CPU-bound
+#: numpy; in a container the CPU limit counts, not the host's CPUs).
+workers = int(os.environ.get("SKYDRIFT_WORKERS") or _cpu_count())
 
-#: Synchronous workers: each request is CPU-bound, so threads would only share one core.
-worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "sync")
+#: Threaded workers, chosen by measurement (README, "Choosing the worker class"; run
+#: `python -m benchmarks.bench_http workers`): with keep-alive clients, gthread with 2
+#: threads answered 1.2-2x the requests/s of sync workers, for one star and for 1,000-star
+#: batches alike (the parsing and JSON work of one request overlaps the network wait of
+#: another; numpy releases the GIL). Two threads, not more: each thread may hold a large
+#: batch in memory, so threads x workers bounds the peak memory of a pod.
+worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "gthread")
 
-#: Threads per worker (only used by the gthread worker class).
-threads = int(os.environ.get("SKYDRIFT_THREADS", 1))
+#: Threads per worker (gthread only).
+threads = int(os.environ.get("SKYDRIFT_THREADS", 2))
 
-#: Seconds a worker may spend on one request before it is restarted (a million-star batch
-#: takes a few seconds; the default leaves a wide margin).
-timeout = int(os.environ.get("SKYDRIFT_TIMEOUT_S", 120))
+#: Seconds a worker may go without a heartbeat before gunicorn kills and replaces it (a hung
+#: process; a sync worker also stops answering during one long request). A slow request in
+#: a threaded worker is bounded by SKYDRIFT_REQUEST_TIMEOUT_S (service/api/access.py)
+#: instead. Kept at least 10 s above it so the application's own 503 answer comes first.
+_soft_s = float(os.environ.get("SKYDRIFT_REQUEST_TIMEOUT_S") or 0)
+timeout = max(int(os.environ.get("SKYDRIFT_TIMEOUT_S", 120)), math.ceil(_soft_s) + 10)
 
-#: Seconds to finish in-flight requests after SIGTERM before workers are stopped.
+#: Graceful shutdown: on SIGTERM (what Docker and Kubernetes send) the master stops
+#: accepting connections and each worker finishes its in-flight request, for at most this
+#: many seconds, before it is stopped. Keep the orchestrator's grace period above it
+#: (deploy/k8s: terminationGracePeriodSeconds 75; compose: stop_grace_period 75s).
 graceful_timeout = int(os.environ.get("SKYDRIFT_GRACEFUL_TIMEOUT_S", 60))
 
-#: Seconds to keep an idle client connection open.
+#: Seconds to keep an idle client connection open (gthread; sync closes after each request).
 keepalive = int(os.environ.get("SKYDRIFT_KEEPALIVE_S", 5))
 
-#: Restart workers after this many requests (plus jitter) to bound any slow growth.
+#: Restart each worker after this many requests, plus a random 0..jitter so that the
+#: workers do not all restart at once, to bound any slow growth of memory.
 max_requests = int(os.environ.get("SKYDRIFT_MAX_REQUESTS", 20000))
 max_requests_jitter = int(os.environ.get("SKYDRIFT_MAX_REQUESTS_JITTER", 2000))
 
-#: Load the application once in the master so tables are read once and shared.
+#: Load the application once in the master before forking, so the tables (leap seconds,
+#: Earth orientation, constellation boundaries) are read once and shared copy-on-write.
 preload_app = True
+
+#: Heartbeat files of the workers on a memory file system when there is one (a read-only
+#: root and a slow disk must not stall the heartbeat).
+worker_tmp_dir = os.environ.get("SKYDRIFT_WORKER_TMP_DIR") or (
+    "/dev/shm" if os.access("/dev/shm", os.W_OK) else None
+)
+
+#: No control socket (gunicorn 24+): signals are the interface orchestrators use, and a
+#: socket under $HOME would collide between instances and need a writable home.
+control_socket_disable = True
 
 #: Request line and header limits (defaults of gunicorn, stated for visibility).
 limit_request_line = 8190
 limit_request_fields = 100
 
+#: Address of trusted proxies whose X-Forwarded-* gunicorn believes (the application also
+#: has SKYDRIFT_FORWARDED_HOPS). Default: loopback only, gunicorn's default.
+forwarded_allow_ips = os.environ.get("SKYDRIFT_FORWARDED_ALLOW_IPS", "127.0.0.1,::1")
+
+#: Logs: one JSON object per line on standard output (access) and standard error (the
+#: rest), with the request id (service/gunicorn_log.py). SKYDRIFT_ACCESS_LOG=/dev/null or a
+#: file path to redirect the access log.
+logger_class = "service.gunicorn_log.JsonLogger"
 accesslog = os.environ.get("SKYDRIFT_ACCESS_LOG", "-")
 errorlog = "-"
 loglevel = os.environ.get("SKYDRIFT_LOG_LEVEL", "info").lower()
-access_log_format = (
-    '{"time":"%(t)s","remote":"%(h)s","request":"%(r)s","status":%(s)s,'
-    '"bytes":"%(B)s","duration_us":%(D)s,"request_id":"%({x-request-id}o)s"}'
-)
+
+# --- Prometheus metrics across workers ------------------------------------------------------
+# prometheus-client's multiprocess mode: each worker writes its figures to files in
+# PROMETHEUS_MULTIPROC_DIR and GET /metrics adds them up. The folder must be set before the
+# application (and prometheus_client) is imported, which is why it is set here. It lives under
+# the system temporary folder (/tmp, a tmpfs in the container) and is private to this master.
+_metrics_dir_owned = not os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+if _metrics_dir_owned:
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="skydrift-metrics-")
+os.makedirs(os.environ["PROMETHEUS_MULTIPROC_DIR"], exist_ok=True)
+_master_pid = os.getpid()
+
+
+@atexit.register
+def _remove_metrics_dir():
+    # Also when the start fails before on_exit could run; only in the master, never in a
+    # worker (they share the folder).
+    if _metrics_dir_owned and os.getpid() == _master_pid:
+        shutil.rmtree(os.environ["PROMETHEUS_MULTIPROC_DIR"], ignore_errors=True)
+
+
+def on_starting(server):
+    """Start with an empty metrics folder (figures of an earlier run must not be counted)."""
+    folder = os.environ["PROMETHEUS_MULTIPROC_DIR"]
+    for name in os.listdir(folder):
+        if name.endswith(".db"):
+            os.unlink(os.path.join(folder, name))
+
+
+def child_exit(server, worker):
+    """A worker ended (max-requests restart, crash, shutdown): mark it dead for metrics."""
+    from prometheus_client import multiprocess
+
+    multiprocess.mark_process_dead(worker.pid)
+
+
+def on_exit(server):
+    """Remove the metrics folder this configuration created."""
+    _remove_metrics_dir()

@@ -81,6 +81,39 @@ class Settings:
         Default 0.
     log_level : str
         SKYDRIFT_LOG_LEVEL: logging level name. Default INFO.
+
+    Access control and limits (all off or permissive by default; see README, Deployment):
+
+    auth_tokens : tuple of str
+        SKYDRIFT_AUTH_TOKENS (comma-separated) and SKYDRIFT_AUTH_TOKENS_FILE (one token per
+        line, ``#`` comments): bearer tokens accepted. Empty = no authentication. Each token
+        at least 16 characters. Never shown by the service.
+    cors_origins : tuple of str
+        SKYDRIFT_CORS_ORIGINS: comma-separated web origins (``https://sky.example.org``)
+        allowed to call the API from a browser, or ``*`` for any. Empty = no CORS headers.
+    rate_limit : str
+        SKYDRIFT_RATE_LIMIT: per-client request limit, e.g. ``120/minute`` or
+        ``10/second;1000/hour``. Empty = unlimited. A client is its bearer token when
+        authentication is on, otherwise its address.
+    rate_limit_storage : str
+        SKYDRIFT_RATE_LIMIT_STORAGE: where the counts live. Default ``memory://`` (per worker
+        process); a shared store (``redis://host:6379``, with its client installed) makes the
+        limit exact across workers and replicas.
+    forwarded_hops : int
+        SKYDRIFT_FORWARDED_HOPS: trusted reverse proxies in front of the service whose
+        X-Forwarded-For / X-Forwarded-Proto are believed (client address for rate limiting
+        and logs). Default 0.
+    request_timeout_s : float
+        SKYDRIFT_REQUEST_TIMEOUT_S: time after which a request is abandoned with a 503
+        problem, seconds. Default 0 = only the worker timeout of gunicorn
+        (SKYDRIFT_TIMEOUT_S, default 120) applies.
+    test_fail_first_n : int
+        SKYDRIFT_TEST_FAIL_FIRST_N: TEST ONLY, never in production. The first N API requests
+        (not /health, /ready, /metrics) are answered 503 with Retry-After, to test clients'
+        retry logic against the real server. Default 0 = off.
+    test_fail_retry_after_s : int
+        SKYDRIFT_TEST_FAIL_RETRY_AFTER_S: TEST ONLY, the Retry-After of those 503 answers,
+        seconds. Default 1.
     """
 
     max_body_bytes: int = 268_435_456
@@ -94,6 +127,15 @@ class Settings:
     sun_avoidance_deg: float = 30.0
     horizon_limit_deg: float = 0.0
     log_level: str = "INFO"
+    # Access control and limits.
+    auth_tokens: tuple = field(default=(), repr=False)
+    cors_origins: tuple = ()
+    rate_limit: str = ""
+    rate_limit_storage: str = "memory://"
+    forwarded_hops: int = 0
+    request_timeout_s: float = 0.0
+    test_fail_first_n: int = 0
+    test_fail_retry_after_s: int = 1
     extra: dict = field(default_factory=dict)
 
     @classmethod
@@ -115,6 +157,7 @@ class Settings:
             sun_avoidance_deg=_float(env, "SKYDRIFT_SUN_AVOIDANCE_DEG", 30.0, 0.0, 180.0),
             horizon_limit_deg=_float(env, "SKYDRIFT_HORIZON_LIMIT_DEG", 0.0, -90.0, 90.0),
             log_level=level,
+            **_access_settings(env),
         )
         for name in ("sites_file", "eop_file"):
             path = getattr(settings, name)
@@ -124,4 +167,87 @@ class Settings:
 
     def as_public_dict(self) -> dict:
         """The settings as shown by the readiness endpoint (no secrets are settings here)."""
-        return {f.name: getattr(self, f.name) for f in fields(self) if f.name != "extra"}
+        out = {
+            f.name: getattr(self, f.name)
+            for f in fields(self)
+            if f.name not in ("extra", "auth_tokens")
+        }
+        out["auth_enabled"] = bool(self.auth_tokens)
+        return out
+
+
+#: Shortest bearer token accepted (a random 128-bit token is 22 characters in base64).
+MIN_TOKEN_LENGTH = 16
+
+
+def _tokens(env) -> tuple:
+    """Bearer tokens from SKYDRIFT_AUTH_TOKENS and SKYDRIFT_AUTH_TOKENS_FILE."""
+    found = [t.strip() for t in _str(env, "SKYDRIFT_AUTH_TOKENS", "").split(",")]
+    source = {t: "SKYDRIFT_AUTH_TOKENS" for t in found}
+    path = _str(env, "SKYDRIFT_AUTH_TOKENS_FILE", "")
+    if path:
+        try:
+            with open(path, encoding="utf-8") as fh:
+                lines = fh.read().splitlines()
+        except OSError as exc:
+            raise ConfigError(f"SKYDRIFT_AUTH_TOKENS_FILE={path!r}: {exc.strerror}") from None
+        for line in lines:
+            token = line.split("#", 1)[0].strip()
+            found.append(token)
+            source.setdefault(token, "SKYDRIFT_AUTH_TOKENS_FILE")
+    tokens = []
+    for token in found:
+        if not token:
+            continue
+        if len(token) < MIN_TOKEN_LENGTH or not token.isprintable() or " " in token:
+            raise ConfigError(
+                f"{source[token]}: a token is shorter than {MIN_TOKEN_LENGTH} characters or "
+                "contains spaces or control characters"
+            )
+        if token not in tokens:
+            tokens.append(token)
+    return tuple(tokens)
+
+
+def _origins(env) -> tuple:
+    raw = _str(env, "SKYDRIFT_CORS_ORIGINS", "")
+    origins = tuple(o.strip().rstrip("/") for o in raw.split(",") if o.strip())
+    for origin in origins:
+        if origin != "*" and not (
+            origin.startswith(("http://", "https://")) and "/" not in origin.split("://", 1)[1]
+        ):
+            raise ConfigError(
+                f"SKYDRIFT_CORS_ORIGINS: {origin!r} is not an origin (scheme://host[:port], or *)"
+            )
+    return origins
+
+
+def _rate_limit(env) -> dict:
+    limit = _str(env, "SKYDRIFT_RATE_LIMIT", "").strip()
+    storage = _str(env, "SKYDRIFT_RATE_LIMIT_STORAGE", "memory://")
+    if limit:
+        from limits import parse_many
+
+        try:
+            parse_many(limit)
+        except ValueError:
+            raise ConfigError(
+                f"SKYDRIFT_RATE_LIMIT={limit!r}: expected e.g. '120/minute' or "
+                "'10/second;1000/hour'"
+            ) from None
+    if "://" not in storage:
+        raise ConfigError(f"SKYDRIFT_RATE_LIMIT_STORAGE={storage!r}: expected a URI")
+    return {"rate_limit": limit, "rate_limit_storage": storage}
+
+
+def _access_settings(env) -> dict:
+    """The access-control and limit settings (kept apart from the computation settings)."""
+    return {
+        "auth_tokens": _tokens(env),
+        "cors_origins": _origins(env),
+        **_rate_limit(env),
+        "forwarded_hops": _int(env, "SKYDRIFT_FORWARDED_HOPS", 0, 0, 10),
+        "request_timeout_s": _float(env, "SKYDRIFT_REQUEST_TIMEOUT_S", 0.0, 0.0, 86400.0),
+        "test_fail_first_n": _int(env, "SKYDRIFT_TEST_FAIL_FIRST_N", 0, 0, 1_000_000),
+        "test_fail_retry_after_s": _int(env, "SKYDRIFT_TEST_FAIL_RETRY_AFTER_S", 1, 0, 3600),
+    }

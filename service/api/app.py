@@ -98,6 +98,12 @@ def create_app(config: dict | None = None) -> Flask:
         resp.headers.setdefault("Cache-Control", "no-store")
         return resp
 
+    # Metrics, access control and limits (service/api/observability.py, access.py).
+    from . import access, observability
+
+    observability.register(app)
+    access.register(app)
+
     from . import constellations, docs, frames, health, observed, propagation, velocity
 
     health.register(app, api)

@@ -613,7 +613,21 @@ def _geojson(body):
     return resp
 
 
-@blp.route("/<string:abbreviation>/outline", methods=["GET"])
+@blp.route(
+    "/<string:abbreviation>/outline",
+    methods=["GET"],
+    parameters=[
+        {
+            "in": "path",
+            "name": "abbreviation",
+            "required": True,
+            "schema": {"type": "string", "minLength": 3, "maxLength": 3},
+            "example": "Tau",
+            "description": "IAU three-letter abbreviation, case-insensitive (GET "
+            "/v1/constellations lists them).",
+        }
+    ],
+)
 @blp.arguments(OutlineQuerySchema(), location="query")
 @blp.response(200, GeoJsonFeatureSchema, content_type="application/geo+json")
 def outline(args, abbreviation):

@@ -457,7 +457,10 @@ _AST = (
 def _eop_ready():
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     eop = core.earth_orientation(settings.eop_file or None)
-    return True, f"{eop.primary.name}, measured to MJD {eop.primary.last_measured_mjd:.0f}"
+    source = "SKYDRIFT_EOP_FILE" if settings.eop_file else "astropy-iers-data"
+    return True, (
+        f"{source}: {eop.primary.name}, measured to MJD {eop.primary.last_measured_mjd:.0f}"
+    )
 
 
 def register(app, api):

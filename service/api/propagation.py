@@ -14,6 +14,7 @@ from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
+from .observability import count_stars
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -390,6 +391,7 @@ def propagate(args):
         model=args["model"],
         covariance=None if cov is None else cov[:, None, :, :],
     )
+    count_stars("/v1/propagation", n)
     masks = np.bitwise_or.reduce(result.flags, axis=1)
     names = flag_names(masks, core.PropagationFlag)
     for i in np.flatnonzero(incomplete):

@@ -28,11 +28,10 @@ def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[list[str]]:
         One list of flag names per star (empty where no bit is set).
     """
     mask = np.atleast_1d(np.asarray(mask, dtype=np.int64))
-    out: list[list[str]] = [[] for _ in range(mask.shape[0])]
     if not mask.any():
-        return out
+        return [[] for _ in range(mask.shape[0])]
+    # Few distinct masks occur in practice: name each once, then copy per star.
+    unique, inverse = np.unique(mask, return_inverse=True)
     members = [(m.name.lower(), int(m.value)) for m in flag_type]
-    for name, bit in members:
-        for i in np.flatnonzero(mask & bit):
-            out[i].append(name)
-    return out
+    named = [[name for name, bit in members if int(u) & bit] for u in unique]
+    return [list(named[k]) for k in inverse.tolist()]

@@ -90,8 +90,9 @@ MONTE_CARLO_DRAWS_DEFAULT = 10_000
 #: in the processor cache, which is several times faster than whole-array passes.
 _BLOCK = 8_192
 
-#: Upper bound on stars x draws held in memory at once by the Monte Carlo path.
-_MONTE_CARLO_ELEMENTS = 2_000_000
+#: Upper bound on stars x draws held in memory at once by the Monte Carlo path (arrays of
+#: this size are reused from the heap instead of being mapped afresh each time).
+_MONTE_CARLO_ELEMENTS = 65_536
 
 
 def _rotation_z(angle_rad: float) -> np.ndarray:
@@ -1050,39 +1051,54 @@ def _monte_carlo(flat, index, out, draws, rng):
         # Square root of the (semi-definite) covariance through its eigen-decomposition.
         w, v = np.linalg.eigh(cov)
         root = v * np.sqrt(np.clip(w, 0.0, None))[:, None, :]
-        z = rng.standard_normal((m, draws, 4))
-        x = np.einsum("mij,mnj->mni", root, z[..., :3])
-        first = x0[:, None] + x[..., 0]
-        mu_a = pmra[idx][:, None] + x[..., 1]
-        mu_d = pmdec[idx][:, None] + x[..., 2]
+        # Draws component-major: each (m, draws) slice is contiguous.
+        z = rng.standard_normal((4, m, draws))
+        col = [root[:, i, :, None] for i in range(3)]  # (m, 3, 1) rows of the root
+        first = x0[:, None] + (col[0][:, 0] * z[0] + col[0][:, 1] * z[1] + col[0][:, 2] * z[2])
+        mu_a = pmra[idx][:, None] + (
+            col[1][:, 0] * z[0] + col[1][:, 1] * z[1] + col[1][:, 2] * z[2]
+        )
+        mu_d = pmdec[idx][:, None] + (
+            col[2][:, 0] * z[0] + col[2][:, 1] * z[1] + col[2][:, 2] * z[2]
+        )
         rv_missing = np.isnan(rv[idx])
         # Without a radial velocity only the transverse velocity has draws; a zero stands
         # in for v_rad and the U, V, W and speed results are blanked below.
-        v_r = np.where(rv_missing, 0.0, rv[idx])[:, None] + srv[:, None] * z[..., 3]
+        v_r = np.where(rv_missing, 0.0, rv[idx])[:, None] + srv[:, None] * z[3]
+        del z
         with np.errstate(divide="ignore", invalid="ignore"):
             k = np.where(
                 given[:, None],
-                AU_PER_JULIAN_YEAR_KM_S * first / 1000.0,
+                (AU_PER_JULIAN_YEAR_KM_S / 1000.0) * first,
                 AU_PER_JULIAN_YEAR_KM_S / first,
             )
-        k[first <= 0.0] = np.nan
+            k[first <= 0.0] = np.nan
         va = k * mu_a
         vd = k * mu_d
-        g_p, g_q, g_r, _, _ = _galactic_triad(ra[idx][:, None], dec[idx][:, None])
-        samples = np.stack(
-            [g_p[i] * va + g_q[i] * vd + g_r[i] * v_r for i in range(3)]
-            + [np.hypot(va, vd), np.sqrt(va * va + vd * vd + v_r * v_r)],
-            axis=1,
-        )  # (m, 5, draws): U, V, W, v_t, speed
         valid = np.isfinite(k)
         n_valid = valid.sum(axis=-1)
+        g_p, g_q, g_r, _, _ = _galactic_triad(ra[idx][:, None], dec[idx][:, None])
+        # U, V, W, v_t, speed per draw (NaN for discarded draws).
+        vt2 = va * va + vd * vd
+        samples = [g_p[i] * va + g_q[i] * vd + g_r[i] * v_r for i in range(3)]
+        samples.append(np.sqrt(vt2))
+        samples.append(np.sqrt(vt2 + v_r * v_r))
+        # Sample covariance of U, V, W about the linear values (well conditioned sums).
+        centre = out["uvw_km_s"][idx]
         with np.errstate(divide="ignore", invalid="ignore"):
-            mean = np.where(valid[:, None, :], samples, 0.0).sum(axis=-1) / n_valid[:, None]
-            dev = np.where(valid[:, None, :], samples - mean[..., None], 0.0)
-            scov = np.einsum("mia,mja->mij", dev, dev) / (n_valid - 1)[:, None, None]
-        srt = np.sort(samples, axis=-1)
-        lo_q = _sample_quantile(srt, n_valid[:, None], PERCENTILE_MINUS_ONE_SIGMA)
-        hi_q = _sample_quantile(srt, n_valid[:, None], PERCENTILE_PLUS_ONE_SIGMA)
+            dev = [np.where(valid, samples[i] - centre[:, i, None], 0.0) for i in range(3)]
+            mean = [d.sum(axis=-1) / n_valid for d in dev]
+            scov = np.empty((m, 3, 3))
+            for i in range(3):
+                for j in range(i, 3):
+                    c = np.einsum("mn,mn->m", dev[i], dev[j]) / n_valid - mean[i] * mean[j]
+                    scov[:, i, j] = scov[:, j, i] = c * (n_valid / (n_valid - 1))
+        lo_q = np.empty((m, 5))
+        hi_q = np.empty((m, 5))
+        for i, x in enumerate(samples):
+            x.sort(axis=-1)  # NaN (discarded draws) sort to the end
+            lo_q[:, i] = _sample_quantile(x, n_valid, PERCENTILE_MINUS_ONE_SIGMA)
+            hi_q[:, i] = _sample_quantile(x, n_valid, PERCENTILE_PLUS_ONE_SIGMA)
 
         bad = ~ok | (n_valid < 2)
         # Robust errors: half the -1/+1 sigma percentile width (Note 6); correlations from

@@ -2,11 +2,11 @@
 
 From catalogue astrometry (ICRS at a catalogue epoch) to where a telescope must point at a
 site and instant, following the IAU 2006/2000A models as the SOFA routines implement them:
-``apco13`` prepares the star-independent quantities (Earth position and velocity, precession
--nutation, Earth rotation, polar motion, refraction constants) and the per-star chain of
-``atciq`` (space motion and parallax, light deflection by the Sun, aberration, to CIRS) and
-``atioq`` (CIRS to hour angle, azimuth and refracted altitude) is carried out here in numpy
-for many stars at once (Note 1 of :func:`observed_places`).
+the star-independent quantities of ``apco13`` (Earth position and velocity, precession
+-nutation, Earth rotation, polar motion, refraction constants; :func:`star_independent`)
+and the per-star chain of ``atciq`` (space motion and parallax, light deflection by the Sun,
+aberration, to CIRS) and ``atioq`` (CIRS to hour angle, azimuth and refracted altitude),
+carried out here in numpy for many stars at once (Note 1 of :func:`observed_places`).
 
 Earth orientation (UT1-UTC and polar motion) comes from the IERS tables packaged with
 astropy-iers-data, read with ``astropy.utils.iers`` with downloads switched off, loaded once
@@ -23,6 +23,7 @@ import enum
 import functools
 import math
 import os
+import types
 import warnings
 from dataclasses import dataclass, field
 
@@ -662,7 +663,12 @@ def airmass_young1994(cos_true_zenith):
     den = ((c + 0.149864) * c + 0.0102963) * c + 0.000303978
     with np.errstate(invalid="ignore", divide="ignore"):
         x = num / den
-    return np.where(c >= 0.0, x, np.nan)
+    below = c < 0.0
+    if np.ndim(x) == 0:
+        return np.nan if below else x
+    if below.any():
+        x[below] = np.nan
+    return x
 
 
 @dataclass(frozen=True)
@@ -989,6 +995,13 @@ class _Instant:
     dlim: np.ndarray = None
     k2_const: np.ndarray = None
     inv_1_bm1: np.ndarray = None
+    # One-instant matrix form (None for arrays of instants).
+    a5: np.ndarray = None
+    c5: np.ndarray = None
+    eb_row: np.ndarray = None
+    eb2: float = None
+    meh_col: np.ndarray = None
+    mv_col: np.ndarray = None
 
 
 def _instant_quantities(astrom) -> _Instant:
@@ -1011,7 +1024,24 @@ def _instant_quantities(astrom) -> _Instant:
         m_eh=_rot(m, eh), m_v=_rot(m, v), ehv=eh[0] * v[0] + eh[1] * v[1] + eh[2] * v[2],
         srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em, dlim=1e-6 / np.maximum(em * em, 1.0),
         k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em, inv_1_bm1=1.0 / (1.0 + bm1),
+        **_one_instant_matrices(m, eb, eh, v),
     )  # fmt: skip
+
+
+def _one_instant_matrices(m, eb, eh, v):
+    """Matrices for :func:`_apparent_aet_one_instant` (only for a single instant)."""
+    if np.ndim(m) != 2:
+        return {}
+    eb, eh, v = (np.array([float(c) for c in x]) for x in (eb, eh, v))
+    a5 = np.vstack([eh, v, m])
+    return {
+        "a5": a5,
+        "c5": a5 @ eb,
+        "eb_row": eb,
+        "eb2": float(eb @ eb),
+        "meh_col": (m @ eh)[:, None],
+        "mv_col": (m @ v)[:, None],
+    }
 
 
 def _apparent_aet(q, ins: _Instant):
@@ -1041,6 +1071,64 @@ def _apparent_aet(q, ins: _Instant):
     return [p0 * n, p1 * n, p2 * n]
 
 
+def _apparent_aet_one_instant(
+    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False
+):
+    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
+
+    The same formulae, arranged so that the linear parts are matrix products: with p the
+    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
+    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
+    """
+    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
+    in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
+    sr, cr = _sincos(ra, reduce="shift" if in_range else True)
+    sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
+    n = sr.shape[0]
+    p = np.empty((3, n))
+    np.multiply(cd, cr, out=p[0])
+    np.multiply(cd, sr, out=p[1])
+    p[2] = sd
+    pxr = np.fmax(px, 0.0) * (1.0 / MAS_PER_RAD)
+    mu_a = _nan0(pmra)
+    mu_d = _nan0(pmdec)
+    zeta = _nan0(rv)
+    moving = not (
+        np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0.0
+    )
+    if moving:
+        mu_a = mu_a * (1.0 / MAS_PER_RAD)
+        mu_d = mu_d * (1.0 / MAS_PER_RAD)
+        zeta = zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr
+        pe = ins.eb_row @ p
+        dt = dt + pe * LIGHT_TIME_AU_YR
+        a = dt * mu_a
+        b = dt * mu_d
+        c = 1.0 + dt * zeta
+        bz = b * sd
+        p[0] = c * p[0] - a * sr - bz * cr
+        p[1] = c * p[1] + a * cr - bz * sr
+        p[2] = c * p[2] + b * cd
+    p -= ins.eb_row[:, None] * pxr  # u = p + dt' w - parallax eb (unnormalised)
+    q = ins.a5 @ p  # rows: u.eh, u.v, M u
+    uu = np.einsum("ij,ij->j", p, p)
+    inv = 1.0 / np.sqrt(uu)
+    qe = q[0] * inv
+    qv = q[1] * inv
+    w = ins.srs_over_em / np.maximum(qe + 1.0, ins.dlim)
+    g = 1.0 - w * qe
+    pdv = g * qv + w * ins.ehv
+    k1 = ins.bm1 - ins.srs_over_em * pdv
+    k2 = ins.k2_const + pdv * ins.inv_1_bm1
+    r = q[2:] * (k1 * g * inv)
+    r += ins.meh_col * (k1 * w)
+    r += ins.mv_col * k2
+    r *= 1.0 / np.sqrt(np.einsum("ij,ij->j", r, r))
+    if with_direction:  # also the unnormalised astrometric direction u
+        return (r[0], r[1], r[2]), p
+    return r[0], r[1], r[2]
+
+
 #: Outputs of the per-star chain, in order, with their dtypes.
 _CHAIN_FIELDS = (
     ("azimuth_deg", float),
@@ -1057,40 +1145,69 @@ _CHAIN_FIELDS = (
 )
 
 
-def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits):
-    """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits."""
-    q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
-    aet = _apparent_aet(q, ins)
+def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None):
+    """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits.
+
+    ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
+    angle (returned as NaN). ``out``, a list of arrays in :data:`_CHAIN_FIELDS` order, lets
+    the results be written in place (the caller copies any result that is not its array).
+    """
+
+    def dst(k):
+        return None if out is None else out[k]
+
+    if ins.a5 is not None and np.ndim(ra_deg) == 1:
+        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins)
+    else:
+        q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
+        aet = _apparent_aet(q, ins)
     xaet, yaet, zaet = aet
+    vector = np.ndim(xaet) > 0
     # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
-    az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
-    if np.ndim(az):
+    if vector:
+        az = np.arctan2(-yaet, xaet, out=dst(0))
+        az *= DEG_PER_RAD
+        az += 180.0
         np.subtract(az, 360.0, out=az, where=az >= 360.0)
-    elif az >= 360.0:
-        az = az - 360.0
+    else:
+        az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
+        az = az - 360.0 if az >= 360.0 else az
     f, zaeo, r0, dl = _refract(aet, ins.refa, ins.refb)
-    zd = np.arctan2(np.abs(f) * r0, zaeo) * DEG_PER_RAD
-    xaeo = xaet * f
-    yaeo = yaet * f
-    sp, cp = ins.sphi, ins.cphi
-    v0 = sp * xaeo + cp * zaeo
-    v2 = sp * zaeo - cp * xaeo
-    h2 = v0 * v0 + yaeo * yaeo
-    ha = np.arctan2(-yaeo, v0) * DEG_PER_RAD
-    dec = np.arctan2(v2, np.sqrt(h2)) * DEG_PER_RAD
-    ra = ins.eral * DEG_PER_RAD - ha
-    ra = ra - 360.0 * np.floor(ra * (1.0 / 360.0))
-    # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
-    # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
-    pa = np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0) * DEG_PER_RAD
+    zd = np.arctan2(np.abs(f) * r0, zaeo, out=dst(1) if vector else None)
+    zd *= DEG_PER_RAD
+    alt = np.subtract(90.0, zd, out=dst(2) if vector else None)
+    if detail:
+        xaeo = xaet * f
+        yaeo = yaet * f
+        sp, cp = ins.sphi, ins.cphi
+        v0 = sp * xaeo + cp * zaeo
+        v2 = sp * zaeo - cp * xaeo
+        h2 = v0 * v0 + yaeo * yaeo
+        ha = np.multiply(np.arctan2(-yaeo, v0), DEG_PER_RAD, out=dst(3) if vector else None)
+        dec = np.multiply(np.arctan2(v2, np.sqrt(h2)), DEG_PER_RAD, out=dst(4) if vector else None)
+        ra = np.subtract(ins.eral * DEG_PER_RAD, ha, out=dst(5) if vector else None)
+        ra -= 360.0 * np.floor(ra * (1.0 / 360.0))
+        # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
+        # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
+        pa = np.multiply(
+            np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0),
+            DEG_PER_RAD,
+            out=dst(6) if vector else None,
+        )
+    else:
+        ha = dec = ra = pa = np.nan
     airmass = airmass_young1994(zaet)
     # Sun separation from the chord between the unrefracted unit vectors: 2 asin(|a-b|/2),
     # |a-b|^2 = 2 - 2 a.b (precision about 1e-8 rad near zero separation, ample here).
     s = ins.sun_aet
     half_chord2 = 0.5 - 0.5 * (xaet * s[0] + yaet * s[1] + zaet * s[2])
-    sep = np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))) * (2.0 * DEG_PER_RAD)
+    sep = np.multiply(
+        np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))),
+        2.0 * DEG_PER_RAD,
+        out=dst(9) if vector else None,
+    )
+    refraction = np.multiply(dl, _ARCSEC_PER_RAD, out=dst(8) if vector else None)
     horizon_limit, avoidance = limits
-    alt = 90.0 - zd
     flags = _any_bits(
         (np.isnan(px), _F_MISSING_PARALLAX),
         (px <= 0.0, _F_NON_POSITIVE_PARALLAX),
@@ -1100,7 +1217,7 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits):
         (sep < avoidance, _F_WITHIN_SUN_AVOIDANCE),
         (zaet < 0.0, _F_AIRMASS_UNDEFINED),
     )
-    return az, zd, alt, ha, dec, ra, pa, airmass, dl * _ARCSEC_PER_RAD, sep, flags
+    return az, zd, alt, ha, dec, ra, pa, airmass, refraction, sep, flags
 
 
 #: Stars per block when many stars share one instant: keeps the temporaries in cache.
@@ -1389,6 +1506,7 @@ def observed_places(
     horizon_limit_deg: float = DEFAULT_HORIZON_LIMIT_DEG,
     sun_avoidance_deg: float = DEFAULT_SUN_AVOIDANCE_DEG,
     geocentric: bool = True,
+    hour_angle: bool = True,
 ) -> ObservedPlaces:
     """Astrometric, apparent and observed places of stars at a site and instants.
 
@@ -1426,6 +1544,9 @@ def observed_places(
     geocentric : bool
         Also compute the geocentric astrometric and apparent places (default True); False
         fills them with NaN and saves their cost.
+    hour_angle : bool
+        Also compute the observed hour angle, declination, RA and the parallactic angle
+        (default True); False fills them with NaN and saves their cost.
 
     Returns
     -------
@@ -1433,12 +1554,13 @@ def observed_places(
 
     Notes
     -----
-    1. The star-independent quantities come from SOFA ``apco13`` (IAU 2006/2000A precession
-       -nutation, Earth ephemeris ``epv00``, ERA, polar motion, refraction constants
-       ``refco``), computed once per instant. The per-star chain is SOFA ``atciq`` (with
-       ``pmpx``, ``ldsun``, ``ab``) and ``atioq``, written in numpy: the CIRS to azimuth
-       rotations are combined into one matrix per instant. Tests check the result against
-       ``erfa.atco13`` and astropy's AltAz.
+    1. The star-independent quantities are those of SOFA ``apco13`` (IAU 2006/2000A
+       precession-nutation, Earth ephemeris ``epv00``, ERA, polar motion, refraction
+       constants ``refco``), computed once per instant by :func:`star_independent`, with the
+       precession-nutation interpolated from cached 15-minute nodes. The per-star chain is
+       SOFA ``atciq`` (with ``pmpx``, ``ldsun``, ``ab``) and ``atioq``, written in numpy: the
+       CIRS to azimuth rotations are combined into one matrix per instant. Tests check the
+       result against the SOFA atco13 test values, ``erfa.apco13`` and astropy's AltAz.
     2. The geocentric places use SOFA ``apci`` with the same precession-nutation and the
        Earth's barycentric position and velocity from ``epv00``; the equinox-based apparent
        RA is the CIRS RA minus the equation of the origins.
@@ -1497,15 +1619,21 @@ def observed_places(
     limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
     if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
         # Many stars, one instant: run the chain block by block (cache-sized temporaries).
-        full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
+        # Scalars stay scalars (cheaper, and the no-motion case is recognised).
+        full = [a if a.ndim == 0 else np.broadcast_to(a, shape) for a in stars[:6]]
+        full.append(dt if np.ndim(dt) == 0 else np.broadcast_to(dt, shape))
         out = [np.empty(shape, dtype=dt_) for _, dt_ in _CHAIN_FIELDS]
         for i in range(0, shape[0], CHAIN_BLOCK):
             sl = slice(i, i + CHAIN_BLOCK)
-            res = _chain(*(a[sl] for a in full), ins, limits)
-            for o, r in zip(out, res, strict=True):
-                o[sl] = r
+            views = [o[sl] for o in out]
+            res = _chain(
+                *(a if np.ndim(a) == 0 else a[sl] for a in full), ins, limits, hour_angle, views
+            )
+            for v, r in zip(views, res, strict=True):
+                if r is not v:
+                    v[...] = r
     else:
-        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits)]
+        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits, hour_angle)]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
     sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
@@ -1565,7 +1693,7 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     x, y = bpn[..., 2, 0], bpn[..., 2, 1]
     _, _, s, _ = _cip_interpolated(tt1, tt2)
     geo = erfa.apci(tt1, tt2, ebpv, ehp, x, y, s)
-    return {
+    out = {
         "eb": [geo["eb"][..., i] for i in range(3)],
         "eh": [geo["eh"][..., i] for i in range(3)],
         "v": [geo["v"][..., i] for i in range(3)],
@@ -1573,10 +1701,35 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
         "bm1": geo["bm1"],
         "bpn": bpn,
     }
+    if np.ndim(bpn) == 2:
+        em, bm1 = float(geo["em"]), float(geo["bm1"])
+        eh = np.array([float(c) for c in out["eh"]])
+        v = np.array([float(c) for c in out["v"]])
+        out["fast"] = types.SimpleNamespace(
+            bm1=bm1,
+            ehv=float(eh @ v),
+            srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em,
+            dlim=1e-6 / max(em * em, 1.0),
+            k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em,
+            inv_1_bm1=1.0 / (1.0 + bm1),
+            **_one_instant_matrices(bpn, out["eb"], out["eh"], out["v"]),
+        )
+    return out
 
 
 def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo):
     """Geocentric astrometric (SOFA atccq) and apparent (atciq with apci) places, degrees."""
+    if "fast" in geo and np.ndim(ra_deg) == 1:
+        pi, u = _apparent_aet_one_instant(
+            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True
+        )
+        a_ra = np.mod(np.arctan2(u[1], u[0]), TWO_PI) * DEG_PER_RAD
+        a_dec = np.arctan2(u[2], np.sqrt(u[0] * u[0] + u[1] * u[1])) * DEG_PER_RAD
+        ri = np.arctan2(pi[1], pi[0])
+        di = np.arctan2(pi[2], np.sqrt(pi[0] * pi[0] + pi[1] * pi[1]))
+        ra_cio = np.mod(ri, TWO_PI) * DEG_PER_RAD
+        ra_eq = np.mod(ri - eo, TWO_PI) * DEG_PER_RAD
+        return a_ra, a_dec, ra_eq, di * DEG_PER_RAD, ra_cio
     q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["eb"])
     a_ra = np.mod(np.arctan2(q[1], q[0]), TWO_PI) * DEG_PER_RAD
     a_dec = np.arctan2(q[2], np.sqrt(q[0] * q[0] + q[1] * q[1])) * DEG_PER_RAD

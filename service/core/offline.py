@@ -32,3 +32,26 @@ def leap_second_table():
 
     erfa.leap_seconds.update(table)
     return table
+
+
+@functools.lru_cache(maxsize=4)
+def use_earth_orientation_file(path: str):
+    """Make an operator's IERS finals2000A file astropy's Earth-orientation table.
+
+    Called once at start when SKYDRIFT_EOP_FILE is set (a newer table than the packaged
+    one). Everything that asks astropy for UT1-UTC or polar motion then uses it.
+
+    Parameters
+    ----------
+    path : str
+        An IERS Bulletin A file in the finals2000A layout (as published by the IERS Rapid
+        Service/Prediction Centre).
+
+    Returns
+    -------
+    astropy.utils.iers.IERS_A
+        The table now in use.
+    """
+    table = _iers.IERS_A.open(path)
+    _iers.earth_orientation_table.set(table)
+    return table

@@ -219,3 +219,23 @@ def test_readiness_reports_earth_orientation(client):
     r = client.get("/ready")
     assert r.status_code == 200
     assert r.json["checks"]["earth_orientation"]["ok"]
+
+
+def test_app_starts_and_answers_with_network_refused(monkeypatch, settings, observed_example):
+    # Start-up reads the Earth-orientation, leap-second and site tables; none may download.
+    import socket
+
+    from service.api import create_app
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("network access attempted")
+
+    monkeypatch.setattr(socket, "socket", refuse)
+    monkeypatch.setattr(socket, "create_connection", refuse)
+    core.earth_orientation.cache_clear()
+    try:
+        app = create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True})
+        r = app.test_client().post(OBS, json=observed_example)
+        assert r.status_code == 200
+    finally:
+        core.earth_orientation.cache_clear()

@@ -316,3 +316,11 @@ def test_inverse_missing_velocity_component(client):
 def test_inverse_wrong_content_type(client):
     r = client.post(INVERSE_URL, data=json.dumps({"stars": [UVW_STAR]}), content_type="text/csv")
     assert_problem(r, 415)
+
+
+def test_openapi_describes_every_velocity_field(client):
+    doc = client.get("/openapi.json").json
+    assert {"/v1/velocity", "/v1/velocity/observables"} <= set(doc["paths"])
+    for schema in ("VelocityStar", "ObservablesStar"):
+        for name, prop in doc["components"]["schemas"][schema]["properties"].items():
+            assert prop.get("description"), f"{schema}.{name} lacks a description"

@@ -764,3 +764,24 @@ def test_monte_carlo_without_errors_gives_nulls_not_a_claim():
     assert np.isnan(r.uvw_error_km_s).all()
     assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING
     assert not r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES
+
+
+def test_distance_error_propagates_like_the_equivalent_parallax_error():
+    # Note 4: d +- sigma_d is, to first order, parallax 1000/d +- 1000 sigma_d / d^2.
+    kw = dict(pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.3,
+              radial_velocity_error_km_s=1.5)  # fmt: skip
+    by_distance = space_velocity(40.0, -10.0, None, 80.0, -25.0, 30.0, distance_pc=200.0,
+                                 distance_error_pc=8.0, **kw)  # fmt: skip
+    by_parallax = space_velocity(40.0, -10.0, 5.0, 80.0, -25.0, 30.0,
+                                 parallax_error_mas=1000.0 * 8.0 / 200.0**2, **kw)  # fmt: skip
+    tol = 1e-12  # km^2/s^2
+    assert np.abs(by_distance.uvw_covariance_km2_s2 - by_parallax.uvw_covariance_km2_s2).max() < tol
+    # Monte Carlo with distance draws: the transverse velocity is linear in the distance, so
+    # its spread is A mu sigma_d / 1000 (Gaussian draws, 1e5 of them: 1% tolerance).
+    mc = space_velocity(
+        40.0, -10.0, None, 80.0, -25.0, 30.0, distance_pc=200.0, distance_error_pc=8.0,
+        pm_ra_cosdec_error_mas_yr=0.0, pm_dec_error_mas_yr=0.0, radial_velocity_error_km_s=1.5,
+        uncertainty_method="monte_carlo", monte_carlo_draws=100_000, seed=5,
+    )  # fmt: skip
+    expected = constants.AU_PER_JULIAN_YEAR_KM_S * np.hypot(80.0, -25.0) * 8.0 / 1000.0
+    assert abs(mc.transverse_velocity_error_km_s / expected - 1) < 0.01

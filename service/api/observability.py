@@ -1,0 +1,266 @@
+"""Metrics (``GET /metrics``, Prometheus text format) and structured JSON logs.
+
+Metrics
+-------
+Under gunicorn every worker is its own process. With ``PROMETHEUS_MULTIPROC_DIR`` set (the
+gunicorn configuration does it, before the application is imported) prometheus-client keeps
+each worker's figures in files there and ``/metrics`` adds them up, so a scrape answered by
+any worker shows the whole service. Without it (tests, ``flask run``) the figures are those
+of the one process.
+
+- ``skydrift_http_requests_total{endpoint,method,status}``: requests answered; ``endpoint`` is
+  the route template (``/v1/propagation``), or ``(unmatched)`` for unknown paths.
+- ``skydrift_http_request_duration_seconds{endpoint,method,status}``: latency histogram.
+- ``skydrift_stars_processed_total{endpoint}``: stars computed (blueprints call
+  :func:`count_stars`).
+- ``skydrift_validation_failures_total{endpoint}``: requests rejected as bad input (400, 422).
+- ``skydrift_earth_orientation_table_age_days``: days since the last measured (not predicted)
+  day of the Earth-orientation table in use (``source`` label: packaged or the file of
+  SKYDRIFT_EOP_FILE). Computed at scrape time from a date read once.
+
+``/metrics`` is not part of the OpenAPI document: it is not JSON and belongs to operators.
+
+Logs
+----
+:class:`JsonFormatter` writes one JSON object per line with the request id of the request
+being served (``request_id``), so a client's X-Request-ID finds its log lines. Under gunicorn
+the logger class of service.gunicorn_log installs it for every logger and writes the access
+log as JSON too.
+"""
+
+from __future__ import annotations
+
+import datetime
+import functools
+import json
+import logging
+import os
+import re
+import time
+
+from flask import Response, current_app, g, request
+
+#: Latency buckets, seconds: one star takes about a millisecond, a million a few seconds.
+LATENCY_BUCKETS_S = (
+    0.001,
+    0.0025,
+    0.005,
+    0.01,
+    0.025,
+    0.05,
+    0.1,
+    0.25,
+    0.5,
+    1.0,
+    2.5,
+    5.0,
+    10.0,
+    30.0,
+    60.0,
+    120.0,
+)
+
+#: The endpoint label of requests that matched no route (keeps the label set bounded).
+UNMATCHED = "(unmatched)"
+
+#: MJD of the Unix epoch 1970-01-01T00:00 UTC, days (JD 2440587.5; MJD = JD - 2400000.5).
+MJD_UNIX_EPOCH = 40587.0
+
+
+@functools.lru_cache(maxsize=1)
+def _metrics():
+    """Create the metric objects once per process (after PROMETHEUS_MULTIPROC_DIR is set)."""
+    from prometheus_client import Counter, Histogram
+
+    labels = ("endpoint", "method", "status")
+    return {
+        # The mode is fixed when the metric objects are made: files in this folder, or memory.
+        "folder": multiprocess_dir(),
+        "requests": Counter(
+            "skydrift_http_requests", "HTTP requests answered.", labels, registry=None
+        ),
+        "latency": Histogram(
+            "skydrift_http_request_duration_seconds",
+            "Time to answer an HTTP request, seconds.",
+            labels,
+            buckets=LATENCY_BUCKETS_S,
+            registry=None,
+        ),
+        "stars": Counter(
+            "skydrift_stars_processed", "Stars computed.", ("endpoint",), registry=None
+        ),
+        "invalid": Counter(
+            "skydrift_validation_failures",
+            "Requests rejected as bad input (400 or 422).",
+            ("endpoint",),
+            registry=None,
+        ),
+    }
+
+
+def multiprocess_dir() -> str | None:
+    """The prometheus-client multiprocess folder in use, or None (single process)."""
+    path = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+    return path if path and os.path.isdir(path) else None
+
+
+_RULE_VARIABLE = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
+
+
+def _endpoint() -> str:
+    """The route template in OpenAPI form (``/v1/constellations/{abbreviation}/outline``)."""
+    rule = request.url_rule
+    return _RULE_VARIABLE.sub(r"{\1}", rule.rule) if rule is not None else UNMATCHED
+
+
+def count_stars(endpoint: str, n: int) -> None:
+    """Add ``n`` stars computed by ``endpoint`` (route template, e.g. ``/v1/propagation``)."""
+    if n > 0:
+        _metrics()["stars"].labels(endpoint).inc(n)
+
+
+# --- Earth-orientation table age -------------------------------------------------------
+
+
+@functools.lru_cache(maxsize=4)
+def last_measured_mjd(path: str) -> float | None:
+    """MJD of the last measured (not predicted) day in an IERS finals2000A file.
+
+    Reads columns 8-15 (MJD) and 17 (``I`` measured / ``P`` predicted flag of the polar
+    motion) of each line, as laid out in the IERS Rapid Service/Prediction Centre's
+    description of finals2000A (readme.finals2000A). None if the file cannot be read.
+    """
+    last = None
+    try:
+        with open(path, encoding="ascii", errors="replace") as fh:
+            for line in fh:
+                if len(line) > 16 and line[16] == "I":
+                    last = line[7:15]
+        return float(last) if last is not None else None
+    except (OSError, ValueError):
+        return None
+
+
+def eop_table() -> tuple[str, str]:
+    """(path, source label) of the Earth-orientation table the service uses."""
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    if getattr(settings, "eop_file", ""):
+        return settings.eop_file, "SKYDRIFT_EOP_FILE"
+    from astropy_iers_data import IERS_A_FILE
+
+    return IERS_A_FILE, "astropy-iers-data"
+
+
+class _EopAgeCollector:
+    """Custom collector: the table's age at scrape time (nothing stored in worker files)."""
+
+    def __init__(self, path: str, source: str):
+        self.path, self.source = path, source
+
+    def collect(self):
+        from prometheus_client.core import GaugeMetricFamily
+
+        family = GaugeMetricFamily(
+            "skydrift_earth_orientation_table_age_days",
+            "Days since the last measured (not predicted) day of the Earth-orientation "
+            "table in use.",
+            labels=["source"],
+        )
+        mjd = last_measured_mjd(self.path)
+        if mjd is not None:
+            now_mjd = time.time() / 86400.0 + MJD_UNIX_EPOCH
+            family.add_metric([self.source], now_mjd - mjd)
+        yield family
+
+
+def metrics_view():
+    """``GET /metrics``: the Prometheus text exposition of the whole service."""
+    from prometheus_client import (
+        CONTENT_TYPE_LATEST,
+        GC_COLLECTOR,
+        PLATFORM_COLLECTOR,
+        PROCESS_COLLECTOR,
+        CollectorRegistry,
+        generate_latest,
+    )
+    from prometheus_client import multiprocess as prom_mp
+
+    folder = _metrics()["folder"]
+    if folder:
+        registry = CollectorRegistry()
+        prom_mp.MultiProcessCollector(registry, path=folder)
+    else:
+        registry = CollectorRegistry()
+        for name in ("requests", "latency", "stars", "invalid"):
+            registry.register(_metrics()[name])
+        # One process: its own process, platform and garbage-collector figures too.
+        for collector in (PROCESS_COLLECTOR, PLATFORM_COLLECTOR, GC_COLLECTOR):
+            registry.register(collector)
+    registry.register(_EopAgeCollector(*eop_table()))
+    return Response(generate_latest(registry), mimetype=CONTENT_TYPE_LATEST.split(";")[0])
+
+
+# --- JSON logs ----------------------------------------------------------------------------
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per log record, with the request id when inside a request."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        entry = {
+            "time": datetime.datetime.fromtimestamp(record.created, datetime.UTC).isoformat(
+                timespec="milliseconds"
+            ),
+            "level": record.levelname,
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        request_id = getattr(record, "request_id", None)
+        if request_id is None:
+            try:
+                request_id = g.get("request_id")
+            except RuntimeError:  # outside an application context
+                request_id = None
+        if request_id:
+            entry["request_id"] = request_id
+        if record.exc_info:
+            entry["exception"] = self.formatException(record.exc_info)
+        return json.dumps(entry, ensure_ascii=False, default=str)
+
+
+# --- wiring ---------------------------------------------------------------------------------
+
+
+def register(app) -> None:
+    """Count every request and serve ``/metrics``. Call early in create_app.
+
+    Also puts SKYDRIFT_EOP_FILE, when set, in use as astropy's Earth-orientation table, and
+    adds a readiness check naming the table and its last measured day.
+    """
+    _metrics()  # made in the gunicorn master when preloaded, before the workers fork
+    settings = app.config["SKYDRIFT_SETTINGS"]
+    if getattr(settings, "eop_file", ""):
+        from ..core.offline import use_earth_orientation_file
+
+        use_earth_orientation_file(settings.eop_file)
+    # The Earth-orientation readiness check belongs to the observed-place blueprint, which
+    # reads the table it uses; here the table is only put in use and its age exported.
+    access_log = logging.getLogger("skydrift.request")
+
+    @app.after_request
+    def _observe(resp):
+        start = g.get("start")
+        if start is None:
+            return resp
+        endpoint = _endpoint()
+        labels = (endpoint, request.method, str(resp.status_code))
+        metrics = _metrics()
+        metrics["requests"].labels(*labels).inc()
+        metrics["latency"].labels(*labels).observe(time.perf_counter() - start)
+        if resp.status_code in (400, 422):
+            metrics["invalid"].labels(endpoint).inc()
+        if resp.status_code >= 500:
+            access_log.warning("answered %s %s %d", request.method, endpoint, resp.status_code)
+        return resp
+
+    app.add_url_rule("/metrics", "metrics", metrics_view, methods=["GET"])

@@ -1,0 +1,339 @@
+"""Access control and limits: one test per setting, and the defaults (all off/permissive).
+
+The expected statuses and headers follow the HTTP standards: RFC 9110 (401, 403, 413, 503,
+Retry-After), RFC 6750 section 3 (WWW-Authenticate: Bearer, error="invalid_token"), RFC 6585
+section 4 (429), the Fetch standard's CORS protocol (Access-Control-* headers, preflight),
+RFC 9457 (problem+json).
+"""
+
+import dataclasses
+import hmac
+import time
+
+import pytest
+
+from service.api import access, create_app
+from service.config import ConfigError, Settings
+
+PROPAGATION_BODY = {
+    "catalogue_epoch": "J2016.0",
+    "target_epochs": ["J2026.0"],
+    "stars": [{"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}],
+}
+TOKEN_A = "test-token-aaaaaaaaaaaaaaaa"
+TOKEN_B = "test-token-bbbbbbbbbbbbbbbb"
+
+
+def make_client(settings, **changes):
+    s = dataclasses.replace(settings, **changes)
+    return create_app({"SKYDRIFT_SETTINGS": s, "TESTING": True}).test_client()
+
+
+def assert_problem(r, status):
+    assert r.status_code == status, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    assert r.json["status"] == status
+    assert r.json["request_id"] == r.headers["X-Request-ID"]
+
+
+def bearer(token):
+    return {"Authorization": f"Bearer {token}"}
+
+
+# --- defaults ------------------------------------------------------------------------------
+
+
+def test_defaults_are_open(client):
+    r = client.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert r.status_code == 200
+    assert "Access-Control-Allow-Origin" not in r.headers
+    assert "X-RateLimit-Limit" not in r.headers
+    # A browser origin is neither rejected nor granted CORS when no allow-list is set.
+    r = client.get("/health", headers={"Origin": "https://elsewhere.example"})
+    assert r.status_code == 200
+    assert "Access-Control-Allow-Origin" not in r.headers
+
+
+def test_default_settings_switch_everything_off():
+    s = Settings.from_env({})
+    assert s.auth_tokens == () and s.cors_origins == () and s.rate_limit == ""
+    assert s.request_timeout_s == 0 and s.test_fail_first_n == 0 and s.forwarded_hops == 0
+
+
+@pytest.mark.parametrize(
+    "path, kwargs",
+    [
+        ("/health", {}),
+        ("/no/such/path", {}),  # 404 problem
+        ("/v1/propagation", {"json": {"stars": []}}),  # 422 problem
+        ("/docs", {}),
+        ("/metrics", {}),
+    ],
+)
+def test_security_headers_on_every_response(client, path, kwargs):
+    r = client.post(path, **kwargs) if kwargs else client.get(path)
+    for name, value in access.SECURITY_HEADERS.items():
+        assert r.headers.get(name) == value, (path, name)
+
+
+# --- bearer tokens -------------------------------------------------------------------------
+
+
+def test_token_required_when_configured(settings):
+    c = make_client(settings, auth_tokens=(TOKEN_A,))
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert_problem(r, 401)
+    assert r.headers["WWW-Authenticate"].startswith("Bearer")
+
+
+def test_wrong_token_rejected_with_invalid_token(settings):
+    c = make_client(settings, auth_tokens=(TOKEN_A,))
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY, headers=bearer(TOKEN_B))
+    assert_problem(r, 401)
+    assert 'error="invalid_token"' in r.headers["WWW-Authenticate"]
+    # A prefix of the token, or another scheme with the right token, is not accepted either.
+    assert c.get("/docs", headers=bearer(TOKEN_A[:-1])).status_code == 401
+    assert c.get("/docs", headers={"Authorization": f"Basic {TOKEN_A}"}).status_code == 401
+
+
+def test_right_token_accepted_and_every_token_checked(settings, monkeypatch):
+    calls = []
+    original = hmac.compare_digest
+
+    def spy(a, b):
+        calls.append((len(a), len(b)))
+        return original(a, b)
+
+    monkeypatch.setattr(access.hmac, "compare_digest", spy)
+    c = make_client(settings, auth_tokens=(TOKEN_A, TOKEN_B))
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY, headers=bearer(TOKEN_B))
+    assert r.status_code == 200
+    assert c.get("/openapi.json", headers=bearer(TOKEN_A)).status_code == 200
+    # Constant time: hmac.compare_digest against every configured token, every request.
+    assert len(calls) == 4
+
+
+def test_probes_open_and_metrics_closed_with_tokens(settings):
+    c = make_client(settings, auth_tokens=(TOKEN_A,))
+    assert c.get("/health").status_code == 200
+    assert c.get("/ready").status_code == 200
+    assert c.get("/metrics").status_code == 401
+    assert c.get("/metrics", headers=bearer(TOKEN_A)).status_code == 200
+
+
+def test_tokens_from_environment_and_file(tmp_path):
+    f = tmp_path / "tokens"
+    f.write_text(f"# operators\n{TOKEN_A}\n\n{TOKEN_B}  # pipeline\n")
+    s = Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
+    assert s.auth_tokens == (TOKEN_A, TOKEN_B)
+    s = Settings.from_env({"SKYDRIFT_AUTH_TOKENS": f" {TOKEN_A} ,{TOKEN_B}"})
+    assert s.auth_tokens == (TOKEN_A, TOKEN_B)
+    # Tokens are never shown (readiness, repr).
+    assert TOKEN_A not in repr(s) and TOKEN_A not in str(s.as_public_dict())
+    assert s.as_public_dict()["auth_enabled"] is True
+
+
+@pytest.mark.parametrize(
+    "env, needle",
+    [
+        ({"SKYDRIFT_AUTH_TOKENS": "short"}, "SKYDRIFT_AUTH_TOKENS"),
+        ({"SKYDRIFT_AUTH_TOKENS_FILE": "/nonexistent/tokens"}, "SKYDRIFT_AUTH_TOKENS_FILE"),
+        ({"SKYDRIFT_CORS_ORIGINS": "sky.example.org"}, "SKYDRIFT_CORS_ORIGINS"),
+        ({"SKYDRIFT_CORS_ORIGINS": "https://sky.example.org/app"}, "SKYDRIFT_CORS_ORIGINS"),
+        ({"SKYDRIFT_RATE_LIMIT": "lots"}, "SKYDRIFT_RATE_LIMIT"),
+        ({"SKYDRIFT_REQUEST_TIMEOUT_S": "-1"}, "SKYDRIFT_REQUEST_TIMEOUT_S"),
+        ({"SKYDRIFT_TEST_FAIL_FIRST_N": "x"}, "SKYDRIFT_TEST_FAIL_FIRST_N"),
+        ({"SKYDRIFT_FORWARDED_HOPS": "99"}, "SKYDRIFT_FORWARDED_HOPS"),
+    ],
+)
+def test_bad_access_settings_stop_the_start(env, needle):
+    with pytest.raises(ConfigError, match=needle):
+        Settings.from_env(env)
+
+
+# --- CORS ----------------------------------------------------------------------------------
+
+SKY_APP = "https://sky.example.org"
+
+
+def test_cors_headers_only_for_allowed_origins(settings):
+    c = make_client(settings, cors_origins=(SKY_APP,))
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY, headers={"Origin": SKY_APP})
+    assert r.status_code == 200
+    assert r.headers["Access-Control-Allow-Origin"] == SKY_APP
+    assert "Origin" in r.headers["Vary"]
+    assert "X-Request-ID" in r.headers["Access-Control-Expose-Headers"]
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY, headers={"Origin": "https://evil.example"})
+    assert_problem(r, 403)
+    assert "Access-Control-Allow-Origin" not in r.headers
+    # No Origin (servers, scripts): no CORS headers, no rejection.
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert r.status_code == 200 and "Access-Control-Allow-Origin" not in r.headers
+
+
+def test_cors_preflight(settings):
+    c = make_client(settings, cors_origins=(SKY_APP,), auth_tokens=(TOKEN_A,))
+    ask = {
+        "Access-Control-Request-Method": "POST",
+        "Access-Control-Request-Headers": "authorization, content-type",
+    }
+    # A preflight carries no credentials, so it must pass without the token.
+    r = c.options("/v1/propagation", headers={"Origin": SKY_APP, **ask})
+    assert r.status_code == 204
+    assert r.headers["Access-Control-Allow-Origin"] == SKY_APP
+    assert "POST" in r.headers["Access-Control-Allow-Methods"]
+    assert "Authorization" in r.headers["Access-Control-Allow-Headers"]
+    r = c.options("/v1/propagation", headers={"Origin": "https://evil.example", **ask})
+    assert_problem(r, 403)
+    assert "Access-Control-Allow-Origin" not in r.headers
+
+
+def test_cors_any_origin(settings):
+    c = make_client(settings, cors_origins=("*",))
+    r = c.get("/health", headers={"Origin": "https://anything.example"})
+    assert r.headers["Access-Control-Allow-Origin"] == "*"
+
+
+# --- rate limit ----------------------------------------------------------------------------
+
+
+def test_rate_limit_429_with_retry_after(settings):
+    c = make_client(settings, rate_limit="3/minute")
+    for _ in range(3):
+        r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+        assert r.status_code == 200
+        assert r.headers["X-RateLimit-Limit"] == "3"
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert_problem(r, 429)
+    retry_after = int(r.headers["Retry-After"])
+    assert 0 < retry_after <= 60
+    # Probes and metrics are never limited.
+    assert c.get("/health").status_code == 200
+    assert c.get("/ready").status_code == 200
+    assert c.get("/metrics").status_code == 200
+
+
+def test_rate_limit_is_per_client(settings):
+    c = make_client(settings, rate_limit="2/minute", auth_tokens=(TOKEN_A, TOKEN_B))
+    for _ in range(2):
+        assert c.get("/openapi.json", headers=bearer(TOKEN_A)).status_code == 200
+    assert c.get("/openapi.json", headers=bearer(TOKEN_A)).status_code == 429
+    assert c.get("/openapi.json", headers=bearer(TOKEN_B)).status_code == 200
+
+
+def test_rate_limit_per_address_behind_trusted_proxy(settings):
+    c = make_client(settings, rate_limit="1/minute", forwarded_hops=1)
+    one = {"X-Forwarded-For": "192.0.2.1"}
+    two = {"X-Forwarded-For": "192.0.2.2"}
+    assert c.get("/openapi.json", headers=one).status_code == 200
+    assert c.get("/openapi.json", headers=one).status_code == 429
+    assert c.get("/openapi.json", headers=two).status_code == 200
+
+
+# --- body size and batch size --------------------------------------------------------------
+
+
+class UnreadableBody:
+    """A request body of ``size`` bytes that fails the test if anything reads it."""
+
+    def __init__(self, size):
+        self.size, self.pos = size, 0
+
+    def tell(self):
+        return self.pos
+
+    def seek(self, offset, whence=0):
+        self.pos = self.size if whence == 2 else offset
+
+    def read(self, *args):
+        raise AssertionError("the body was read")
+
+    readline = readlines = read
+
+    def __iter__(self):
+        raise AssertionError("the body was read")
+
+
+def test_oversized_body_413_before_the_body_is_read(client, settings):
+    r = client.post(
+        "/v1/propagation",
+        input_stream=UnreadableBody(settings.max_body_bytes + 1),
+        content_type="application/json",
+    )
+    assert_problem(r, 413)
+    assert str(settings.max_body_bytes) in r.json["detail"]
+
+
+def test_oversized_invalid_json_is_413_not_400(client, settings):
+    # Parsing would answer 400 (not JSON); the size check comes first.
+    r = client.post(
+        "/v1/propagation",
+        data=b"{" * (settings.max_body_bytes + 1),
+        content_type="application/json",
+    )
+    assert_problem(r, 413)
+
+
+def test_batch_size_limit(client, settings):
+    stars = PROPAGATION_BODY["stars"] * (settings.max_stars + 1)
+    r = client.post("/v1/propagation", json=dict(PROPAGATION_BODY, stars=stars))
+    assert_problem(r, 413)
+
+
+# --- request time limit --------------------------------------------------------------------
+
+
+def _app_with_slow_route(settings, seconds):
+    app = create_app(
+        {"SKYDRIFT_SETTINGS": dataclasses.replace(settings, request_timeout_s=seconds)}
+    )
+
+    @app.get("/test-slow/<float:duration>")
+    def slow(duration):
+        end = time.monotonic() + duration
+        while time.monotonic() < end:
+            time.sleep(0.01)
+        return {"slept": duration}
+
+    return app.test_client()
+
+
+def test_request_time_limit(settings):
+    c = _app_with_slow_route(settings, 0.2)
+    started = time.monotonic()
+    r = c.get("/test-slow/5.0")
+    assert time.monotonic() - started < 2.0
+    assert_problem(r, 503)
+    assert "time limit" in r.json["detail"]
+    # A quick request is untouched, and no timer is left running after it.
+    assert c.get("/test-slow/0.05").status_code == 200
+    time.sleep(0.3)
+    assert c.get("/health").status_code == 200
+
+
+# --- test-only failures --------------------------------------------------------------------
+
+
+def test_fail_first_n_is_test_only_and_counts(settings):
+    c = make_client(settings, test_fail_first_n=2, test_fail_retry_after_s=3)
+    assert c.get("/health").status_code == 200  # probes are not failed on purpose
+    for _ in range(2):
+        r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+        assert_problem(r, 503)
+        assert r.headers["Retry-After"] == "3"
+        assert "SKYDRIFT_TEST_FAIL_FIRST_N" in r.json["detail"]
+    assert c.post("/v1/propagation", json=PROPAGATION_BODY).status_code == 200
+
+
+def test_request_time_limit_in_a_worker_thread(settings):
+    # Threaded gunicorn workers serve requests outside the main thread.
+    import threading
+
+    c = _app_with_slow_route(settings, 0.2)
+    out = {}
+    t = threading.Thread(target=lambda: out.update(r=c.get("/test-slow/5.0")))
+    started = time.monotonic()
+    t.start()
+    t.join(10)
+    assert time.monotonic() - started < 2.0
+    assert_problem(out["r"], 503)

@@ -1,0 +1,72 @@
+"""deploy/gunicorn.conf.py: settings from the environment, and the metrics hooks."""
+
+import pathlib
+import runpy
+
+import pytest
+
+ROOT = pathlib.Path(__file__).resolve().parents[2]
+CONF = str(ROOT / "deploy" / "gunicorn.conf.py")
+
+
+@pytest.fixture()
+def load(monkeypatch, tmp_path):
+    monkeypatch.setenv("PROMETHEUS_MULTIPROC_DIR", str(tmp_path))
+
+    def _load(**env):
+        for k, v in env.items():
+            monkeypatch.setenv(k, v)
+        return runpy.run_path(CONF)
+
+    return _load
+
+
+def test_defaults(load):
+    conf = load()
+    assert conf["bind"] == "127.0.0.1:8000"
+    assert conf["workers"] >= 1
+    assert conf["worker_class"] == "gthread" and conf["threads"] == 2
+    assert conf["preload_app"] is True
+    assert conf["max_requests"] > 0 and 0 < conf["max_requests_jitter"] < conf["max_requests"]
+    assert conf["graceful_timeout"] > 0
+    assert conf["logger_class"] == "service.gunicorn_log.JsonLogger"
+
+
+def test_environment_overrides(load):
+    conf = load(
+        SKYDRIFT_BIND="0.0.0.0:9000",
+        SKYDRIFT_WORKERS="3",
+        SKYDRIFT_WORKER_CLASS="sync",
+        SKYDRIFT_GRACEFUL_TIMEOUT_S="15",
+        SKYDRIFT_MAX_REQUESTS="100",
+        SKYDRIFT_MAX_REQUESTS_JITTER="10",
+    )
+    assert conf["bind"] == "0.0.0.0:9000" and conf["workers"] == 3
+    assert conf["worker_class"] == "sync" and conf["graceful_timeout"] == 15
+    assert (conf["max_requests"], conf["max_requests_jitter"]) == (100, 10)
+
+
+def test_worker_timeout_stays_above_the_request_time_limit(load):
+    conf = load(SKYDRIFT_REQUEST_TIMEOUT_S="300", SKYDRIFT_TIMEOUT_S="120")
+    assert conf["timeout"] >= 310
+
+
+def test_child_exit_marks_the_worker_dead_for_metrics(load, tmp_path):
+    conf = load()
+    # A worker's live gauge file is removed when it is marked dead (prometheus-client).
+    (tmp_path / "gauge_livesum_4242.db").write_bytes(b"")
+    (tmp_path / "counter_4242.db").write_bytes(b"")
+
+    class Worker:
+        pid = 4242
+
+    conf["child_exit"](None, Worker())
+    assert not (tmp_path / "gauge_livesum_4242.db").exists()
+    assert (tmp_path / "counter_4242.db").exists()  # counts of a dead worker still count
+
+
+def test_on_starting_clears_old_metrics(load, tmp_path):
+    conf = load()
+    (tmp_path / "counter_1.db").write_bytes(b"")
+    conf["on_starting"](None)
+    assert not list(tmp_path.glob("*.db"))
