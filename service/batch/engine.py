@@ -52,6 +52,9 @@ INPUT_FORMATS = ("auto", "parquet", "csv")
 DEFAULT_PARQUET_BLOCKSIZE = "16MiB"
 LOCAL_SCHEDULERS = ("threads", "processes", "synchronous")
 
+#: How long to wait for a Dask scheduler given by address before giving up, seconds.
+SCHEDULER_TIMEOUT_S = 30.0
+
 _EXTRA_HINT = "the batch commands need the optional extra: pip install 'skydrift[batch]'"
 
 # ---------------------------------------------------------------------------------------
@@ -680,7 +683,13 @@ def run_batch(
             from distributed import Client
         except ImportError:  # pragma: no cover
             raise BatchInputError(f"{_EXTRA_HINT} (dask.distributed)") from None
-        own_client = client = Client(scheduler)
+        try:
+            own_client = client = Client(scheduler, timeout=SCHEDULER_TIMEOUT_S)
+        except (OSError, TimeoutError) as exc:
+            raise BatchInputError(
+                f"cannot reach the Dask scheduler at {scheduler} within "
+                f"{SCHEDULER_TIMEOUT_S:g} s ({exc})"
+            ) from None
     try:
         if client is not None:
             from distributed import progress as dist_progress
