@@ -442,6 +442,16 @@ def test_column_mapping_parsing(tmp_path):
             columns={"right_ascension": "ra"},
             params={"catalogue_epoch_jyear": 2016.0, "target_epoch_jyear": 2000.0},
         )
+    # One mapping for every job of a catalogue: fields of other jobs are ignored.
+    shared = {**MAPPING, "parallax_error_mas": "e_Plx", "catalogue_epoch_jyear": "Epoch"}
+    schema = {col: "float64" for col in shared.values()}
+    plan = batch.make_plan("constellations", schema, columns=shared, params={})
+    assert plan.mapping == {"ra_deg": "RA_ICRS", "dec_deg": "DE_ICRS"}  # positions as given
+    plan = batch.make_plan(
+        "propagate", schema, columns=shared, params={"target_epoch_jyear": 2000.0}
+    )
+    assert "parallax_error_mas" not in plan.mapping
+    assert plan.mapping["catalogue_epoch_jyear"] == "Epoch"
     with pytest.raises(batch.BatchInputError, match="not numeric"):
         batch.make_plan(
             "propagate",

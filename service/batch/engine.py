@@ -183,7 +183,9 @@ def make_plan(
 
     Notes
     -----
-    1. A field not in ``columns`` is looked up under its canonical name. Optional fields
+    1. A field not in ``columns`` is looked up under its canonical name. Names in
+       ``columns`` that are fields of other jobs only are ignored (one mapping can serve
+       every job); names that no job knows are an error. Optional fields
        found under neither are absent (unknown for every row); fields marked
        ``mapped_only`` (the per-row catalogue epoch) are read only when mapped explicitly.
     """
@@ -194,12 +196,15 @@ def make_plan(
             raise BatchInputError(f"unknown job {job!r}; choose one of {sorted(JOBS)}") from None
     columns = dict(columns or {})
     names = {f.name for f in job.fields}
-    unknown = sorted(set(columns) - names)
+    every_job = {f.name for j in JOBS.values() for f in j.fields}
+    unknown = sorted(set(columns) - every_job)
     if unknown:
         raise BatchInputError(
             f"unknown field name(s) {', '.join(unknown)} in the column mapping; the fields of "
             f"'{job.name}' are: {', '.join(f.name for f in job.fields)}"
         )
+    # One mapping file may serve every job of a catalogue: fields of other jobs are ignored.
+    columns = {k: v for k, v in columns.items() if k in names}
     available = list(input_columns)
     shown = ", ".join(available[:40]) + (" ..." if len(available) > 40 else "")
 

@@ -522,9 +522,9 @@ def _constellations_check(params: dict, mapping) -> dict:
     moving = params["epoch_jyear"] is not None
     if moving:
         check_catalogue_epoch(params, mapping, required=True)
-    elif params["catalogue_epoch_jyear"] is not None or CATALOGUE_EPOCH_FIELD.name in mapping:
+    elif params["catalogue_epoch_jyear"] is not None:
         raise BatchInputError(
-            "a catalogue epoch was given without --epoch: give the epoch of the lookup too, "
+            "--catalogue-epoch was given without --epoch: give the epoch of the lookup too, "
             "or neither (positions as given)"
         )
     return params
