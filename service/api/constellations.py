@@ -9,10 +9,12 @@ from flask import current_app
 from flask_smorest import abort
 
 from ..core import constellations as core
+from ..core import frames as core_frames
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
+from .frames import FrameSpecSchema, frame_from_spec
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -86,8 +88,20 @@ def _star_fields(motion_required: bool) -> dict:
             allow_none=True,
             metadata={"description": "Your identifier for the star (string or integer), echoed."},
         ),
-        "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
-        "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
+        "ra_deg": _num(
+            "Right ascension (longitude for galactic or ecliptic) in the request's frame "
+            "(default ICRS), degrees.",
+            required=True,
+            lo=0.0,
+            hi=360.0,
+        ),
+        "dec_deg": _num(
+            "Declination (latitude for galactic or ecliptic) in the request's frame "
+            "(default ICRS), degrees.",
+            required=True,
+            lo=-90.0,
+            hi=90.0,
+        ),
         "parallax_mas": _num(
             "Parallax, mas. Null if unknown (the motion is then applied as direction only); "
             "zero or negative values are accepted and flagged."
@@ -121,7 +135,16 @@ class LookupRequestSchema(ma.Schema):
     stars = StarTableField(
         ConstellationStarSchema,
         required=True,
-        metadata={"description": "Positions (ICRS): a list of records, or an object of columns."},
+        metadata={"description": "Positions: a list of records, or an object of columns."},
+    )
+    frame = ma.fields.Nested(
+        FrameSpecSchema,
+        load_default=lambda: {"name": "icrs"},
+        metadata={
+            "description": "Frame of the given positions and motions (default ICRS). Other "
+            "frames are converted to ICRS at catalogue_epoch (or epoch, or J2000.0 if "
+            "neither is given) before the lookup."
+        },
     )
     catalogue_epoch = EpochField(
         load_default=None,
@@ -358,6 +381,16 @@ def _locate(args, with_margin: bool):
     if epoch is None:
         epoch = cat_epoch
     moving = np.isfinite(pma) | np.isfinite(pmd)
+    frame = frame_from_spec(args["frame"], "frame")
+    if frame.name != "icrs":
+        at = cat_epoch if cat_epoch is not None else (epoch if epoch is not None else 2000.0)
+        icrs = core_frames.convert(
+            ra, dec, plx, pma, pmd, rv, at, frame, core_frames.make_frame("icrs")
+        )
+        ra, dec = icrs.ra_deg, icrs.dec_deg
+        pma = np.where(moving, icrs.pm_ra_cosdec_mas_yr, np.nan)
+        pmd = np.where(moving, icrs.pm_dec_mas_yr, np.nan)
+        rv = icrs.radial_velocity_km_s
     if epoch is not None and cat_epoch is not None and epoch != cat_epoch and np.any(moving):
         res = core.locate_moving(
             ra,
@@ -392,24 +425,40 @@ def _locate(args, with_margin: bool):
     return table, res, flags, epoch
 
 
+def _names_per_star(flags) -> list[list[str]]:
+    """Flag names per star; stars with the same mask share one list (fast for 10**6)."""
+    uniq, inverse = np.unique(np.asarray(flags), return_inverse=True)
+    per_mask = flag_names(uniq, core.ConstellationFlag)
+    return [per_mask[k] for k in inverse.ravel().tolist()]
+
+
+def _flag_meanings(flags) -> dict:
+    present = int(np.bitwise_or.reduce(np.asarray(flags, dtype=np.int64).ravel(), initial=0))
+    used = {n for names in flag_names([present], core.ConstellationFlag) for n in names}
+    return {k: v for k, v in FLAG_MEANINGS.items() if k in used}
+
+
+def _lookup_strings(values, index):
+    return np.asarray(values, dtype=object)[np.asarray(index)].tolist()
+
+
 def _membership_body(args, with_margin: bool):
     table, res, flags, epoch = _locate(args, with_margin)
-    abbr = np.asarray(core.boundary_table().abbreviations)
-    names_all = np.asarray(core.boundary_table().names)
-    names = flag_names(flags, core.ConstellationFlag)
+    abbr = core.boundary_table().abbreviations
+    names = _names_per_star(flags)
     n = table.size
     cols = {
         "id": table.ids,
-        "constellation": abbr[res.index].tolist(),
-        "name": names_all[res.index].tolist(),
-        "constellation_fk4": abbr[res.index_fk4].tolist(),
-        "constellation_fk5": abbr[res.index_fk5].tolist(),
-        "reductions_disagree": (res.index_fk4 != res.index_fk5).tolist(),
+        "constellation": _lookup_strings(abbr, res.index),
+        "name": _lookup_strings(core.boundary_table().names, res.index),
+        "constellation_fk4": _lookup_strings(abbr, res.index_fk4),
+        "constellation_fk5": _lookup_strings(abbr, res.index_fk5),
+        "reductions_disagree": res.index_fk4 != res.index_fk5,
     }
     if with_margin:
         cols["margin_arcsec"] = res.margin_arcsec
-        cols["across"] = abbr[res.other_side_index].tolist()
-        cols["near_boundary"] = ((flags & int(core.ConstellationFlag.NEAR_BOUNDARY)) != 0).tolist()
+        cols["across"] = _lookup_strings(abbr, res.other_side_index)
+        cols["near_boundary"] = (flags & int(core.ConstellationFlag.NEAR_BOUNDARY)) != 0
     cols["ra_b1875_deg"] = res.ra_b1875_deg
     cols["dec_b1875_deg"] = res.dec_b1875_deg
     cols["flags"] = names
@@ -420,7 +469,7 @@ def _membership_body(args, with_margin: bool):
         "star_count": n,
         "layout": layout,
         "units": UNITS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "flag_meanings": _flag_meanings(flags),
     }
     if layout == "columns":
         body["columns"] = cols
@@ -552,7 +601,7 @@ def crossings(args):
         reduction=args["reduction"],
     )
     abbr = core.boundary_table().abbreviations
-    names = flag_names(res.flags, core.ConstellationFlag)
+    names = _names_per_star(res.flags)
     epochs = epochs_out(res.epoch_jyear) if res.epoch_jyear.size else []
     per_star: list[list[dict]] = [[] for _ in range(table.size)]
     for k in range(res.star.size):
@@ -583,7 +632,7 @@ def crossings(args):
         "end": ends[2],
         "epoch_precision_days": core.CROSSING_EPOCH_TOLERANCE_YR * 365.25,
         "star_count": table.size,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "flag_meanings": _flag_meanings(res.flags),
         "stars": stars,
     }
     return current_app.json.response(body)
@@ -661,7 +710,19 @@ def outlines(args):
     return _geojson(core.outline_collection(**_outline_options(args)))
 
 
+def _table_ready():
+    table = core.boundary_table()  # checksums verified when loaded
+    return True, (
+        f"Roman (1987) boundary table, {table.ra_low_h.size} rows, "
+        f"{len(table.abbreviations)} constellations, checksums verified"
+    )
+
+
 def register(app, api):
+    # The table is read (and its checksum verified) and the indexes built once, at start,
+    # so that no request pays for them.
+    core.warm_up()
+    app.extensions["skydrift_ready_checks"]["constellation_boundaries"] = _table_ready
     api.spec.components.schema("ConstellationStar", schema=ConstellationStarSchema)
     api.spec.components.schema("MovingStar", schema=MovingStarSchema)
     api.register_blueprint(blp)

@@ -25,6 +25,17 @@ HERE = pathlib.Path(__file__).resolve().parent
 ROOT = HERE.parents[1]
 
 
+CONSTELLATION_FIELDS = (
+    "id",
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+)
+
+
 def _free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -96,6 +107,29 @@ def main() -> int:
             )
         for w in answer["warnings"]:
             print(f"warning: {w['id']}: {w['message']}")
+
+        # Constellations now, distance from the boundary, and crossings in the next 5,000 yr.
+        body = {
+            "stars": catalogue["stars"],
+            "catalogue_epoch": catalogue["catalogue_epoch"],
+            "epoch": "now",
+        }
+        body["stars"] = [{k: s.get(k) for k in CONSTELLATION_FIELDS} for s in body["stars"]]
+        r = requests.post(url + "/v1/constellations/margins", json=body, timeout=30)
+        r.raise_for_status()
+        print(f"\n{'star':9} {'constellation':22} {'margin_arcsec':>13}  across")
+        for res in r.json()["stars"]:
+            print(f"{res['id']:9} {res['name']:22} {res['margin_arcsec']:13.1f}  {res['across']}")
+        body = dict(body, start="now", end=5000.0 + 2026.0)
+        body.pop("epoch")
+        r = requests.post(url + "/v1/constellations/crossings", json=body, timeout=60)
+        r.raise_for_status()
+        for res in r.json()["stars"]:
+            for c in res["crossings"]:
+                print(
+                    f"{res['id']} crosses from {c['from_constellation']} into "
+                    f"{c['to_constellation']} in J{c['epoch']['julian_epoch_tdb']:.2f}"
+                )
     finally:
         if proc is not None:
             proc.terminate()

@@ -38,6 +38,12 @@ def test_list_of_88(client):
     assert ori["name"] == "Orion"
 
 
+def test_ready_reports_the_boundary_table(client):
+    r = client.get("/ready")
+    check = r.json["checks"]["constellation_boundaries"]
+    assert check["ok"] is True and "357 rows" in check["detail"]
+
+
 def test_lookup_matches_core_in_both_layouts(client, demo_catalogue):
     stars = [{k: s.get(k) for k in ("id", "ra_deg", "dec_deg")} for s in demo_catalogue["stars"]]
     r = client.post(f"{BASE}/lookup", json={"stars": stars})
@@ -81,6 +87,42 @@ def test_lookup_moves_stars_to_the_epoch(client, demo_catalogue):
     assert [s["across"] for s in body["stars"]] == list(
         np.asarray(core.boundary_table().abbreviations)[ref.other_side_index]
     )
+
+
+def test_roman1987_readme_positions_given_in_fk4_b1950(client):
+    # Roman (1987), CDS VI/42 ReadMe test positions (equinox 1950), as quoted in astropy's
+    # coordinates/tests/test_funcs.py; given here in the FK4 B1950.0 frame.
+    ra_h = [9, 23.5, 5.12, 9.4555, 12.8888, 15.6687, 19, 6.2222]
+    dec = [65, -20, 9.12, -19.9, 22, -12.1234, -40, -81.1234]
+    expected = ["UMa", "Aqr", "Ori", "Hya", "Com", "Lib", "CrA", "Men"]
+    body = {
+        "stars": {"ra_deg": [15.0 * h for h in ra_h], "dec_deg": dec},
+        "frame": {"name": "fk4", "equinox": "B1950.0"},
+        "catalogue_epoch": "B1950.0",
+    }
+    r = client.post(f"{BASE}/lookup", json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["columns"]["constellation"] == expected
+
+
+def test_galactic_input_gives_the_icrs_answer(client):
+    import erfa
+
+    rng = np.random.default_rng(3)
+    ra = rng.uniform(0, 360, 200)
+    dec = np.degrees(np.arcsin(rng.uniform(-1, 1, 200)))
+    lon, lat = erfa.icrs2g(np.radians(ra), np.radians(dec))
+    gal = {"ra_deg": np.degrees(lon).tolist(), "dec_deg": np.degrees(lat).tolist()}
+    r = client.post(f"{BASE}/margins", json={"stars": gal, "frame": {"name": "galactic"}})
+    ref = core.locate(ra, dec)
+    ok = ref.margin_arcsec > 0.01  # frame round trip is exact to far better than this
+    got = np.array(r.json["columns"]["constellation"])
+    assert np.array_equal(got[ok], ref.abbreviation[ok])
+
+
+def test_bad_frame_for_lookup(client):
+    r = client.post(f"{BASE}/lookup", json={"stars": [STAR], "frame": {"name": "fk6"}})
+    assert_problem(r, 422, "frame.name")
 
 
 def test_margins_flag_near_boundary(client):

@@ -131,6 +131,23 @@ def test_grid_equals_reading_down_the_table():
         np.testing.assert_array_equal(C._grid_lookup(r, d), _scan(r, d))
 
 
+def test_quick_table_agrees_with_the_exact_path():
+    # Positions answered from the coarse quick table against Roman's procedure on their own
+    # B1875 coordinates: random points, and points 1 mas to 1 arcmin from grid nodes (where
+    # the exact path must take over).
+    ra, dec = _random_sphere(100_000, seed=21)
+    t = C.boundary_table()
+    rng = np.random.default_rng(22)
+    node_ra = rng.choice(t.ra_edges_h[:-1] * 15.0, 20_000)
+    node_dec = rng.choice(t.dec_edges_deg[1:-1], 20_000)
+    off = rng.uniform(-60.0, 60.0, (2, 20_000)) / 3600.0 * 10.0 ** rng.uniform(-4.8, 0, 20_000)
+    ra_n, dec_n = _b1875_to_icrs_deg(np.mod(node_ra + off[0], 360.0), node_dec + off[1])
+    for r, d in ((ra, dec), (ra_n, dec_n)):
+        res = C.locate(r, d, with_margin=False)
+        np.testing.assert_array_equal(res.index, _scan(res.ra_b1875_deg, res.dec_b1875_deg))
+    assert (C._quick_lut().value >= 0).mean() > 0.9  # most of the sky takes the quick path
+
+
 # ------------------------------------------------------------------------------ lookup
 
 
@@ -383,6 +400,28 @@ def test_table_rounding_is_flagged():
     assert list((res.flags & Flag.TABLE_ROUNDING_AMBIGUOUS) != 0) == [True, False]
 
 
+@settings(max_examples=60, deadline=None)
+@given(
+    st.floats(0.0, 360.0, exclude_max=True),
+    st.floats(-89.0, 89.0),
+    st.floats(0.0, 2 * math.pi),
+    st.floats(0.0, 0.99),
+)
+def test_moving_less_than_the_margin_keeps_the_constellation(ra, dec, angle, fraction):
+    # Invariant of the margin: a displacement shorter than it cannot reach a boundary.
+    res = C.locate(ra, dec)
+    step_deg = fraction * float(res.margin_arcsec) / 3600.0
+    p = C._unit_vectors(float(res.ra_b1875_deg), float(res.dec_b1875_deg))
+    east = np.array(
+        [-math.sin(math.radians(res.ra_b1875_deg)), math.cos(math.radians(res.ra_b1875_deg)), 0.0]
+    )
+    north = np.cross(p, east)
+    t = math.radians(step_deg)
+    q = math.cos(t) * p + math.sin(t) * (math.cos(angle) * east + math.sin(angle) * north)
+    moved = C._grid_lookup(*C._angles_deg(q))
+    assert int(moved) == int(res.index)
+
+
 def test_near_boundary_threshold():
     ra, dec = _random_sphere(50_000, seed=10)
     res = C.locate(ra, dec, near_boundary_arcsec=60.0)
@@ -423,6 +462,23 @@ def test_straight_line_motion_matches_erfa_starpm():
     )
     sep = _gc_arcsec(ra2, dec2, np.degrees(out[0]), np.degrees(out[1]))
     assert sep.max() < 0.02
+
+
+def test_crossing_motion_model_equals_the_propagation_core():
+    # the crossing search's own vectors against service.core.propagation (same model)
+    from service.core.propagation import propagate_standard
+
+    rng = np.random.default_rng(16)
+    n = 100
+    ra, dec = _random_sphere(n, seed=17)
+    plx = np.where(rng.uniform(size=n) < 0.2, np.nan, rng.uniform(1, 300, n))
+    pma, pmd = rng.normal(0, 800, (2, n))
+    rv = np.where(rng.uniform(size=n) < 0.2, np.nan, rng.normal(0, 50, n))
+    r0, v, _ = C._space_motion(ra, dec, plx, pma, pmd, rv)
+    for dt in (-30_000.0, 250.0, 90_000.0):
+        mine = C._angles_deg(C._direction_at(r0, v, np.full(n, dt)))
+        theirs, _ = propagate_standard(ra, dec, plx, pma, pmd, rv, 2016.0, 2016.0 + dt)
+        assert _gc_arcsec(*mine, theirs.ra_deg, theirs.dec_deg).max() < 1e-6
 
 
 def test_unknown_parallax_and_rv_are_flagged_not_zeroed():
@@ -481,6 +537,7 @@ def test_crossings_confirmed_and_none_missed_by_a_100x_finer_sweep():
     epoch, start, end, step = 2016.0, -8000.0, 12000.0, 200.0
     res = C.boundary_crossings(ra, dec, plx, pma, pmd, rv, epoch, start, end, max_step_yr=step)
     assert res.count.sum() >= 10  # the stars do cross boundaries
+    assert not np.any(res.flags & Flag.SEARCH_INCOMPLETE)
     r0, v, _ = C._space_motion(ra, dec, plx, pma, pmd, rv)
     eps = CROSSING_EPOCH_TOL_DAY / 365.25
     for k in range(n):
@@ -550,6 +607,21 @@ def test_crossing_window_checks():
     with pytest.raises(ValueError, match="max_step_yr"):
         C.check_crossing_window(2000.0, -98_000.0, 98_000.0, 0.01)
     assert C.check_crossing_window(2000.0, 1900.0, 2100.0, None) == 2.0
+
+
+def test_search_that_runs_out_of_steps_says_so():
+    # A star 0.5 arcsec from a constant-RA boundary moving nearly along it: the safe steps
+    # stay short (thousands over a century); with a tiny step budget the search must flag
+    # itself incomplete.
+    segs = C._segments()
+    v = np.flatnonzero((segs.kind == 1) & (np.abs(segs.lo) < 1.0) & (np.abs(segs.hi) < 1.0))
+    s = v[np.argmax(segs.hi[v] - segs.lo[v])]  # the longest constant-RA arc off the poles
+    ra_b = segs.c[s] * DEG_PER_RAD + 0.5 / 3600.0
+    dec_b = (segs.lo[s] + 0.1 * (segs.hi[s] - segs.lo[s])) * DEG_PER_RAD
+    ra, dec = _b1875_to_icrs_deg(np.array([ra_b]), np.array([dec_b]))
+    args = (ra, dec, np.nan, 0.0, 1000.0, np.nan, 2000.0, 2000.0, 2100.0)
+    res = C.boundary_crossings(*args, max_iterations=50)
+    assert res.flags[0] & Flag.SEARCH_INCOMPLETE
 
 
 def test_star_without_motion_never_crosses():
@@ -633,6 +705,32 @@ def test_outline_of_one_constellation():
     assert fk5["properties"]["equinox"] == 2050.0
     with pytest.raises(KeyError):
         C.outline("Xyz")
+
+
+def test_outline_cut_at_the_antimeridian():
+    # Virgo straddles RA 12h (longitude +-180): RFC 7946 section 3.1.9 cuts it in two, each
+    # piece meeting the cut line exactly and together covering Virgo's area.
+    vir = C.outline("Vir")
+    assert vir["geometry"]["type"] == "MultiPolygon"
+    pieces = [np.asarray(p[0]) for p in vir["geometry"]["coordinates"]]
+    assert len(pieces) == 2
+    assert {float(np.max(np.abs(p[:, 0]))) for p in pieces} == {180.0}
+    east = [p for p in pieces if p[:, 0].max() == 180.0 and p[:, 0].min() > 0]
+    west = [p for p in pieces if p[:, 0].min() == -180.0 and p[:, 0].max() < 0]
+    assert len(east) == 1 and len(west) == 1
+    area = sum(_ring_area_sr(p) for p in pieces)
+    exact = C.boundary_table().area_sr[C.constellation_index("Vir")]
+    assert abs(area - exact) <= AREA_EACH_REL_TOL * exact
+
+
+def test_outline_over_a_pole():
+    # Octans contains the south celestial pole: its outline is closed along latitude -90.
+    octans = C.outline("Oct")
+    rings = [np.asarray(p[0]) for p in _polygons(octans)]
+    assert min(r[:, 1].min() for r in rings) == -90.0
+    area = sum(_ring_area_sr(r) for r in rings)
+    exact = C.boundary_table().area_sr[C.constellation_index("Oct")]
+    assert abs(area - exact) <= AREA_EACH_REL_TOL * exact
 
 
 def test_constellation_list():
