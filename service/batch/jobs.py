@@ -71,12 +71,11 @@ def _float_outputs(rows) -> tuple[OutputColumn, ...]:
     return tuple(OutputColumn(name, "float64", unit, text) for name, unit, text in rows)
 
 
-def _catalogue_epoch_option(parser, *, required: bool) -> None:
-    need = "" if required else " (optional: only dates the closest approach)"
+def _catalogue_epoch_option(parser, note: str = "") -> None:
     parser.add_argument(
         "--catalogue-epoch",
         help="epoch of the input astrometry, e.g. J2016.0, for every row; or map a per-row "
-        f"column to catalogue_epoch_jyear{need}",
+        f"column to catalogue_epoch_jyear{note}",
     )
 
 
@@ -132,7 +131,7 @@ def _propagate_compute(inputs: dict, params: dict) -> dict:
 
 
 def _propagate_options(parser) -> None:
-    _catalogue_epoch_option(parser, required=True)
+    _catalogue_epoch_option(parser)
     parser.add_argument("--target-epoch", required=True, help="epoch to move the stars to")
     parser.add_argument(
         "--model",
@@ -337,7 +336,7 @@ def velocity_columns(result) -> dict:
 
 
 def _velocity_options(parser) -> None:
-    _catalogue_epoch_option(parser, required=False)
+    _catalogue_epoch_option(parser, " (optional: only dates the closest approach)")
     parser.add_argument(
         "--low-snr-threshold",
         type=float,
@@ -481,7 +480,7 @@ def _constellations_options(parser) -> None:
         help="epoch at which to look the stars up, e.g. J2030.0: each star is first moved "
         "there with its space motion (straight-line model). Default: the positions as given",
     )
-    _catalogue_epoch_option(parser, required=False)
+    _catalogue_epoch_option(parser, " (needed with --epoch)")
     parser.add_argument(
         "--reduction",
         default="fk4",
