@@ -57,10 +57,18 @@ class EpochField(ma.fields.Field):
 
     def _deserialize(self, value, attr, data, **kwargs) -> float:
         try:
+            if type(value) is str and value.strip().lower() != "now":
+                return _parse_epoch_text(value)  # the same text always gives the same epoch
             jyear, _notes = core_epochs.parse_epoch_with_notes(value)
         except core_epochs.EpochError as exc:
             raise ma.ValidationError(str(exc)) from None
         return jyear
+
+
+@functools.lru_cache(maxsize=4096)
+def _parse_epoch_text(text: str) -> float:
+    """Julian epoch (TDB) of an epoch string other than "now" (cached; errors are not)."""
+    return core_epochs.parse_epoch_with_notes(text)[0]
 
 
 def epoch_field_to_openapi(self, field, **kwargs) -> dict:

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import functools
 import json
+import math
 import pathlib
 
 import marshmallow as ma
@@ -240,7 +241,7 @@ class ObservedResponseSchema(ma.Schema):
 
 def _o(x):
     x = float(x)
-    return x if np.isfinite(x) else None
+    return x if math.isfinite(x) else None
 
 
 def _core_error(exc: core.ObservedInputError):

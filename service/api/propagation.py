@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import functools
 import itertools
+import math
+import operator
 
 import marshmallow as ma
 import numpy as np
@@ -310,7 +313,7 @@ def _uncertainty_dict(cov_block):
 
 def _num_or_none(x):
     x = float(x)
-    return x if np.isfinite(x) else None
+    return x if math.isfinite(x) else None
 
 
 @blp.route("/propagation", methods=["POST"])
@@ -394,10 +397,11 @@ def propagate(args):
     count_stars("/v1/propagation", n)
     masks = np.bitwise_or.reduce(result.flags, axis=1)
     names = flag_names(masks, core.PropagationFlag)
-    for i in np.flatnonzero(incomplete):
-        names[i].append("uncertainties_incomplete")
-    for i in np.flatnonzero(assumed_zero):
-        names[i].append("correlations_assumed_zero")
+    if has_cov.any() or incomplete.any():  # both masks are all False without errors
+        for i in np.flatnonzero(incomplete):
+            names[i].append("uncertainties_incomplete")
+        for i in np.flatnonzero(assumed_zero):
+            names[i].append("correlations_assumed_zero")
     warnings = _warnings(masks, table)
     layout = args["layout"] or table.form
     body = {
@@ -467,6 +471,8 @@ def _warnings(masks, table) -> list[dict]:
         "space velocity above half the speed of light: check the parallax and its unit (mas)",
         F.NOT_CONVERGED: "light-time iteration did not converge",
     }
+    if not (masks & int(functools.reduce(operator.or_, texts))).any():
+        return out
     for flag, text in texts.items():
         for i in np.flatnonzero(masks & int(flag))[:1000]:
             out.append(

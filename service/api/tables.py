@@ -74,7 +74,8 @@ class StarTable:
     Attributes
     ----------
     columns : dict of str -> ndarray
-        Float columns (NaN = unknown) for every numeric field of the record schema.
+        Float columns (NaN = unknown) for every numeric field of the record schema; a
+        column the client did not give is made, all NaN, when first read.
     ids : list or None
         The ``id`` column as given (strings or integers), or None if absent.
     size : int
@@ -96,6 +97,21 @@ class StarTable:
         if self.form == "records":
             return f"{field_name}[{index}].{name}"
         return f"{field_name}.{name}[{index}]"
+
+
+class _Columns(dict):
+    """Numeric columns by name; one the client did not give is made (all NaN) when read."""
+
+    def __init__(self, n: int, numeric_names: frozenset):
+        super().__init__()
+        self._n = n
+        self._numeric_names = numeric_names
+
+    def __missing__(self, name: str) -> np.ndarray:
+        if name not in self._numeric_names:
+            raise KeyError(name)
+        column = self[name] = np.full(self._n, np.nan)
+        return column
 
 
 class TableErrors:
@@ -154,6 +170,14 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
 
 
 def _check_range(arr: np.ndarray, spec: ColumnSpec, errors: TableErrors) -> None:
+    if arr.size == 1:  # one star: the same comparisons on a Python float (NaN passes)
+        v = arr.item()
+        lo, hi = spec.lo, spec.hi
+        if (lo is not None and (v < lo if spec.lo_inclusive else v <= lo)) or (
+            hi is not None and (v > hi if spec.hi_inclusive else v >= hi)
+        ):
+            errors.add_indices(np.array([0]), spec.name, spec.range_text())
+        return
     with np.errstate(invalid="ignore"):
         bad = np.zeros(arr.shape, dtype=bool)
         if spec.lo is not None:
@@ -194,6 +218,7 @@ class StarTableField(ma.fields.Field):
         schema = record_schema()
         self.specs = [ColumnSpec.from_field(n, f) for n, f in schema.fields.items()]
         self.names = {s.name for s in self.specs}
+        self.numeric_names = frozenset(s.name for s in self.specs if s.kind == "number")
 
     def _max_rows(self) -> int | None:
         try:
@@ -273,7 +298,7 @@ class StarTableField(ma.fields.Field):
         return self._finish(dict(cols), n, errors, set(cols))
 
     def _finish(self, raw: dict, n: int, errors: TableErrors, given: set) -> StarTable:
-        columns: dict = {}
+        columns = _Columns(n, self.numeric_names)
         ids = None
         for spec in self.specs:
             values = raw.get(spec.name)
@@ -283,8 +308,6 @@ class StarTableField(ma.fields.Field):
                         "[0]." + spec.name if errors.form == "records" else spec.name,
                         "is required",
                     )
-                if spec.kind == "number":
-                    columns[spec.name] = np.full(n, np.nan)
                 continue
             if spec.kind == "id":
                 ids = _id_column(values, errors)

@@ -8,6 +8,7 @@ responses. Flags report what was assumed or replaced, so that nothing is silent.
 from __future__ import annotations
 
 import enum
+import functools
 
 import numpy as np
 
@@ -30,8 +31,17 @@ def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[list[str]]:
     mask = np.atleast_1d(np.asarray(mask, dtype=np.int64))
     if not mask.any():
         return [[] for _ in range(mask.shape[0])]
+    members = _members(flag_type)
+    if mask.shape[0] == 1:
+        u = int(mask[0])
+        return [[name for name, bit in members if u & bit]]
     # Few distinct masks occur in practice: name each once, then copy per star.
     unique, inverse = np.unique(mask, return_inverse=True)
-    members = [(m.name.lower(), int(m.value)) for m in flag_type]
     named = [[name for name, bit in members if int(u) & bit] for u in unique]
     return [list(named[k]) for k in inverse.tolist()]
+
+
+@functools.lru_cache(maxsize=64)
+def _members(flag_type: type[enum.IntFlag]) -> tuple:
+    """(lower-case name, value) of each member, in declaration order."""
+    return tuple((m.name.lower(), int(m.value)) for m in flag_type)

@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 
 import erfa
 import numpy as np
+from erfa import ufunc as erfa_ufunc
 
 from service.core.constants import ARCSEC_PER_RAD as _ARCSEC_PER_RAD
 from service.core.constants import (
@@ -776,9 +777,27 @@ def refraction_settings(site: Site, atmosphere: Atmosphere | None) -> Refraction
     1. Missing pressure: US Standard Atmosphere 1976 at the site height
        (:func:`standard_atmosphere`); missing temperature likewise; pressure 0 switches
        refraction off.
+    2. Results are cached per exact site height and atmosphere.
     """
     atm = atmosphere or Atmosphere()
-    p_std, t_std = standard_atmosphere(site.height_m)
+    return _refraction_settings_cached(
+        _float_key(site.height_m),
+        *(
+            None if v is None else _float_key(v)
+            for v in (atm.pressure_hpa, atm.temperature_c, atm.relative_humidity, atm.wavelength_um)
+        ),
+    )
+
+
+@functools.lru_cache(maxsize=256)
+def _refraction_settings_cached(height_key, *atm_keys) -> RefractionSettings:
+    height_m = float.fromhex(height_key)
+    atm = Atmosphere(*(None if k is None else float.fromhex(k) for k in atm_keys))
+    return _refraction_settings(height_m, atm)
+
+
+def _refraction_settings(height_m: float, atm: Atmosphere) -> RefractionSettings:
+    p_std, t_std = standard_atmosphere(height_m)
     if atm.pressure_hpa is None:
         mode, p = "standard_atmosphere_pressure", float(p_std)
     elif atm.pressure_hpa == 0.0:
@@ -834,7 +853,7 @@ def _nan0(a):
     if np.ndim(a) == 0:
         return 0.0 if np.isnan(a) else float(a)
     nan = np.isnan(a)
-    return np.where(nan, 0.0, a) if nan.any() else a
+    return np.where(nan, 0.0, a) if (nan.item() if nan.size == 1 else nan.any()) else a
 
 
 def _star_vectors(ra_deg, dec_deg, parallax_mas, pmra, pmdec, rv, dt_yr, eb_au):
@@ -1071,24 +1090,15 @@ def _apparent_aet(q, ins: _Instant):
     return [p0 * n, p1 * n, p2 * n]
 
 
-def _apparent_aet_one_instant(
-    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False
-):
-    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
-
-    The same formulae, arranged so that the linear parts are matrix products: with p the
-    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
-    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
-    """
+def _star_terms(ra_deg, dec_deg, px, pmra, pmdec, rv):
+    """The star-only part of :func:`_apparent_aet_one_instant` (shared by its two uses)."""
     ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
-    in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
+    if ra.size == 1:
+        in_range = 0.0 <= ra.item() <= TWO_PI
+    else:
+        in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
     sr, cr = _sincos(ra, reduce="shift" if in_range else True)
     sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
-    n = sr.shape[0]
-    p = np.empty((3, n))
-    np.multiply(cd, cr, out=p[0])
-    np.multiply(cd, sr, out=p[1])
-    p[2] = sd
     pxr = np.fmax(px, 0.0) * (1.0 / MAS_PER_RAD)
     mu_a = _nan0(pmra)
     mu_d = _nan0(pmdec)
@@ -1100,6 +1110,28 @@ def _apparent_aet_one_instant(
         mu_a = mu_a * (1.0 / MAS_PER_RAD)
         mu_d = mu_d * (1.0 / MAS_PER_RAD)
         zeta = zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr
+    return sr, cr, sd, cd, pxr, mu_a, mu_d, zeta, moving
+
+
+def _apparent_aet_one_instant(
+    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False, terms=None
+):
+    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
+
+    The same formulae, arranged so that the linear parts are matrix products: with p the
+    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
+    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
+    ``terms``: :func:`_star_terms` of the same star arguments, if already computed.
+    """
+    if terms is None:
+        terms = _star_terms(ra_deg, dec_deg, px, pmra, pmdec, rv)
+    sr, cr, sd, cd, pxr, mu_a, mu_d, zeta, moving = terms
+    n = sr.shape[0]
+    p = np.empty((3, n))
+    np.multiply(cd, cr, out=p[0])
+    np.multiply(cd, sr, out=p[1])
+    p[2] = sd
+    if moving:
         pe = ins.eb_row @ p
         dt = dt + pe * LIGHT_TIME_AU_YR
         a = dt * mu_a
@@ -1145,19 +1177,24 @@ _CHAIN_FIELDS = (
 )
 
 
-def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None):
+def _chain(
+    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None,
+    terms=None,
+):  # fmt: skip
     """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits.
 
     ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
     angle (returned as NaN). ``out``, a list of arrays in :data:`_CHAIN_FIELDS` order, lets
     the results be written in place (the caller copies any result that is not its array).
+    ``terms``, :func:`_star_terms` of the star arguments, saves recomputing them when one
+    instant's observed and geocentric places are both wanted.
     """
 
     def dst(k):
         return None if out is None else out[k]
 
     if ins.a5 is not None and np.ndim(ra_deg) == 1:
-        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins)
+        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins, terms=terms)
     else:
         q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
         aet = _apparent_aet(q, ins)
@@ -1232,6 +1269,17 @@ CHAIN_BLOCK = 8192
 def _check_instants(utc_jd1, utc_jd2):
     jd1 = np.asarray(utc_jd1, dtype=float)
     jd2 = np.asarray(utc_jd2, dtype=float)
+    if jd1.ndim == jd2.ndim == 0:  # one instant: the same tests on Python floats
+        d1, d2 = jd1.item(), jd2.item()
+        if not (math.isfinite(d1) and math.isfinite(d2)):
+            raise ObservedInputError("instants", "must be finite dates")
+        ep = 2000.0 + ((d1 - 2451545.0) + d2) / 365.25
+        if not SUPPORTED_EPOCH_MIN <= ep < SUPPORTED_EPOCH_MAX:
+            raise ObservedInputError(
+                "instants",
+                f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
+            )
+        return jd1, jd2
     if not (np.all(np.isfinite(jd1)) and np.all(np.isfinite(jd2))):
         raise ObservedInputError("instants", "must be finite dates")
     ep = 2000.0 + ((jd1 - 2451545.0) + jd2) / 365.25
@@ -1264,7 +1312,21 @@ def utc_from_julian_epoch_tdb(jyear):
        (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch resolves about
        15 microseconds, i.e. 0.2 mas of Earth rotation.
     """
-    d1, d2 = erfa.epj2jd(np.asarray(jyear, dtype=float))
+    jyear = np.asarray(jyear, dtype=float)
+    if jyear.size == 1:  # one instant: cached (an exact function of the epoch)
+        u1, u2 = _utc_from_julian_epoch_tdb_cached(_float_key(jyear.reshape(-1)[0]))
+        return np.full(jyear.shape, u1), np.full(jyear.shape, u2)
+    return _utc_from_julian_epoch_tdb(jyear)
+
+
+@functools.lru_cache(maxsize=4096)
+def _utc_from_julian_epoch_tdb_cached(jyear_key: str) -> tuple[float, float]:
+    u1, u2 = _utc_from_julian_epoch_tdb(np.asarray(float.fromhex(jyear_key)))
+    return float(u1), float(u2)
+
+
+def _utc_from_julian_epoch_tdb(jyear):
+    d1, d2 = erfa.epj2jd(jyear)
     with warnings.catch_warnings():
         # "dubious year" beyond the leap-second table: reported by the caller's flags.
         warnings.simplefilter("ignore", erfa.ErfaWarning)
@@ -1282,6 +1344,12 @@ def _quiet_erfa(func, *args):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", erfa.ErfaWarning)
         return func(*args)
+
+
+def _raise_erfa_errors(status, name: str) -> None:
+    """Raise ``erfa.ErfaError`` where an ERFA status is negative, as pyerfa's wrappers do."""
+    if (status < 0) if np.ndim(status) == 0 else np.any(status < 0):
+        raise erfa.ErfaError(f'ERFA function "{name}" returned an error status')
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1373,15 +1441,20 @@ def star_independent(jd1, jd2, dut1, xp, yp, site: Site, refr: RefractionSetting
     1. The sequence is that of ``apco13``: UTC -> TAI -> TT and UT1, ``epv00``, CIP X, Y and
        s, ``era00``, ``sp00``, refraction constants from ``refco``, then ``apco``.
     """
-    tai1, tai2 = _quiet_erfa(erfa.utctai, jd1, jd2)
-    tt1, tt2 = erfa.taitt(tai1, tai2)
-    u1, u2 = _quiet_erfa(erfa.utcut1, jd1, jd2, dut1)
-    ehpv, ebpv = erfa.epv00(tt1, tt2)
+    # The ERFA ufuncs themselves (pyerfa's wrappers call the same ufuncs, then turn the
+    # status codes into exceptions and warnings): errors are raised as pyerfa would; the
+    # warnings (dubious year, epv00 outside 1900-2100) are reported by flags instead.
+    tai1, tai2, st_tai = erfa_ufunc.utctai(jd1, jd2)
+    tt1, tt2, _ = erfa_ufunc.taitt(tai1, tai2)
+    u1, u2, st_ut1 = erfa_ufunc.utcut1(jd1, jd2, dut1)
+    ehpv, ebpv, _ = erfa_ufunc.epv00(tt1, tt2)
+    _raise_erfa_errors(st_tai, "utctai")
+    _raise_erfa_errors(st_ut1, "utcut1")
     x, y, s, eo = _cip_interpolated(tt1, tt2)
-    theta = erfa.era00(u1, u2)
-    sp = erfa.sp00(tt1, tt2)
+    theta = erfa_ufunc.era00(u1, u2)
+    sp = erfa_ufunc.sp00(tt1, tt2)
     refa, refb = (refr.refa_rad, refr.refb_rad)
-    astrom = erfa.apco(
+    astrom = erfa_ufunc.apco(
         tt1, tt2, ebpv, ehpv["p"], x, y, s, theta,
         site.longitude_deg * RAD_PER_DEG, site.latitude_deg * RAD_PER_DEG, site.height_m,
         xp, yp, sp, refa, refb,
@@ -1469,7 +1542,11 @@ class ObservedPlaces:
 
 def _shaped(x, shape):
     """``x`` as an array of ``shape`` (a broadcast view only when needed)."""
-    return x if np.shape(x) == shape else np.broadcast_to(x, shape)
+    if np.shape(x) == shape:
+        return x
+    if type(x) is not np.ndarray and math.prod(shape) == 1:
+        return np.reshape(x, shape)  # one scalar: a new one-element array (cheaper)
+    return np.broadcast_to(x, shape)
 
 
 def _bits(mask, flag):
@@ -1483,9 +1560,125 @@ def _any_bits(*pairs):
         if np.ndim(mask) == 0:
             if mask:
                 out = out | np.uint32(flag)
-        elif mask.any():
+        elif mask.item() if mask.size == 1 else mask.any():
             out = out | np.where(mask, np.uint32(flag), np.uint32(0))
     return out
+
+
+class _InstantState:
+    """Everything about one instant (or array of instants) that no star depends on.
+
+    For a single instant it is cached
+    (:func:`_instant_state_cached`), so its arrays are read-only.
+    """
+
+    def __init__(self, jd1, jd2, site: Site, refr: RefractionSettings, eop, eop_values):
+        eo_vals = earth_orientation_at(jd1, jd2, eop)
+        if eop_values is not None:
+            dut, pmx, pmy = (
+                np.broadcast_to(np.asarray(x, dtype=float), jd1.shape) for x in eop_values
+            )
+            eo_vals = EarthOrientationValues(
+                ut1_utc_s=dut,
+                pm_x_arcsec=pmx,
+                pm_y_arcsec=pmy,
+                status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
+                table=np.full(jd1.shape, "given"),
+                ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
+                pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
+                pointing_error_arcsec=np.full(
+                    jd1.shape,
+                    ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC,
+                ),
+                accuracy_class=np.full(jd1.shape, "milliarcsecond"),
+            )
+        xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
+        yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
+        astrom, eo, tt1, tt2, ebpv, ehp = star_independent(
+            jd1, jd2, eo_vals.ut1_utc_s, xp, yp, site, refr
+        )
+        self.eo_vals = eo_vals
+        self.astrom, self.eo, self.tt1, self.tt2, self.ebpv, self.ehp = (
+            astrom, eo, tt1, tt2, ebpv, ehp,
+        )  # fmt: skip
+        self.epoch_tt = np.asarray(erfa_ufunc.epj(tt1, tt2))
+        mjd_utc = (jd1 - 2400000.5) + jd2
+        self.ins = ins = _instant_quantities(astrom)
+        self.sun_alt_deg = sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
+        status = eo_vals.status
+        instant_flags = (
+            _bits(sun_alt_deg > 0.0, ObservedFlag.SUN_ABOVE_HORIZON)
+            | _bits(
+                status == EarthOrientationStatus.PREDICTED,
+                ObservedFlag.EARTH_ORIENTATION_PREDICTED,
+            )
+            | _bits(
+                status == EarthOrientationStatus.UNAVAILABLE,
+                ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
+            )
+            | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
+        )
+        self.instant_flags = instant_flags if np.any(instant_flags) else None
+        self._geo = None
+
+    def geocentric(self):
+        """Star-independent quantities for the geocentric places (computed once)."""
+        if self._geo is None:
+            self._geo = _geocentric_astrom(self.tt1, self.tt2, self.astrom, self.ebpv, self.ehp)
+        return self._geo
+
+
+class _ByIdentity:
+    """Hashable wrapper comparing its object by identity (for cache keys)."""
+
+    __slots__ = ("obj",)
+
+    def __init__(self, obj):
+        self.obj = obj
+
+    def __hash__(self):
+        return id(self.obj)
+
+    def __eq__(self, other):
+        return isinstance(other, _ByIdentity) and other.obj is self.obj
+
+
+def _float_key(x) -> str:
+    """Exact cache key of a float: its hexadecimal form (keeps -0.0 apart from 0.0)."""
+    return float(x).hex()
+
+
+def _site_key(site: Site) -> tuple:
+    """Cache key of a site: the exact coordinates it is used for, and the site."""
+    return (
+        _float_key(site.latitude_deg),
+        _float_key(site.longitude_deg),
+        _float_key(site.height_m),
+        site,
+    )
+
+
+def _refr_key(refr: RefractionSettings) -> tuple:
+    """Cache key of refraction settings: the exact constants used, and the settings."""
+    return (_float_key(refr.refa_rad), _float_key(refr.refb_rad), refr)
+
+
+#: Instants (with site, atmosphere and Earth-orientation tables) whose star-independent
+#: quantities are kept: one-star requests for the same instant then skip that work.
+INSTANT_CACHE_SIZE = 256
+
+
+@functools.lru_cache(maxsize=INSTANT_CACHE_SIZE)
+def _instant_state_cached(jd1_key, jd2_key, site_key, refr_key, eop_key) -> _InstantState:
+    """The :class:`_InstantState` of one instant, cached on the exact values (Note 6 of
+    :func:`observed_places`); the cached arrays are made read-only."""
+    jd1 = np.asarray(float.fromhex(jd1_key))
+    jd2 = np.asarray(float.fromhex(jd2_key))
+    st = _InstantState(jd1, jd2, site_key[3], refr_key[2], eop_key.obj, None)
+    for a in (*vars(st.eo_vals).values(), st.epoch_tt):
+        if isinstance(a, np.ndarray):
+            a.setflags(write=False)
+    return st
 
 
 def observed_places(
@@ -1572,6 +1765,12 @@ def observed_places(
        facility's own interlocks and safety rules decide.
     5. Refraction uses the A tan z + B tan^3 z model with the near-horizon guards of SOFA
        ``atioq``; below about 5 degrees altitude its error grows (refco Note 2).
+    6. For a single instant the star-independent quantities (Note 1, with the Earth
+       orientation and the Sun's place) are cached, keyed on the exact UTC date, site
+       coordinates, refraction constants and tables (``INSTANT_CACHE_SIZE`` entries), so
+       that repeated requests for one instant, one star at a time, compute them once. Keys
+       are exact (no rounding), so results are the same with and without the cache; the
+       cached arrays returned (``eop``, ``epoch_tt_jyear``) are read-only.
 
     References
     ----------
@@ -1581,30 +1780,13 @@ def observed_places(
     eop = eop or earth_orientation()
     jd1, jd2 = _check_instants(utc_jd1, utc_jd2)
     refr = refraction_settings(site, atmosphere)
-    eo_vals = earth_orientation_at(jd1, jd2, eop)
-    if eop_values is not None:
-        dut, pmx, pmy = (np.broadcast_to(np.asarray(x, dtype=float), jd1.shape) for x in eop_values)
-        eo_vals = EarthOrientationValues(
-            ut1_utc_s=dut,
-            pm_x_arcsec=pmx,
-            pm_y_arcsec=pmy,
-            status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
-            table=np.full(jd1.shape, "given"),
-            ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
-            pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
-            pointing_error_arcsec=np.full(
-                jd1.shape, ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC
-            ),
-            accuracy_class=np.full(jd1.shape, "milliarcsecond"),
+    if jd1.ndim == 0 and eop_values is None:
+        st = _instant_state_cached(
+            _float_key(jd1), _float_key(jd2), _site_key(site), _refr_key(refr), _ByIdentity(eop)
         )
-    xp = eo_vals.pm_x_arcsec / _ARCSEC_PER_RAD
-    yp = eo_vals.pm_y_arcsec / _ARCSEC_PER_RAD
-    astrom, eo, tt1, tt2, ebpv, ehp = star_independent(
-        jd1, jd2, eo_vals.ut1_utc_s, xp, yp, site, refr
-    )
-    epoch_tt = erfa.epj(tt1, tt2)
-    mjd_utc = (jd1 - 2400000.5) + jd2
-    ins = _instant_quantities(astrom)
+    else:
+        st = _InstantState(jd1, jd2, site, refr, eop, eop_values)
+    eo_vals, ins = st.eo_vals, st.ins
 
     stars = [
         np.asarray(a, dtype=float)
@@ -1615,8 +1797,9 @@ def observed_places(
     ]  # fmt: skip
     star_shape = np.broadcast_shapes(*(a.shape for a in stars))
     shape = np.broadcast_shapes(star_shape, jd1.shape)
-    dt = epoch_tt - stars[6]
+    dt = st.epoch_tt - stars[6]
     limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
+    terms = None
     if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
         # Many stars, one instant: run the chain block by block (cache-sized temporaries).
         # Scalars stay scalars (cheaper, and the no-motion case is recognised).
@@ -1633,28 +1816,20 @@ def observed_places(
                 if r is not v:
                     v[...] = r
     else:
-        out = [_shaped(r, shape) for r in _chain(*stars[:6], dt, ins, limits, hour_angle)]
+        # One instant: the star-only terms are shared by the observed and geocentric places.
+        one = jd1.ndim == 0 and stars[0].ndim == 1 and ins.a5 is not None
+        terms = _star_terms(*stars[:6]) if one else None
+        chain = _chain(*stars[:6], dt, ins, limits, hour_angle, terms=terms)
+        out = [_shaped(r, shape) for r in chain]
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
-    sun_alt_deg = 90.0 - ins.sun_zd * DEG_PER_RAD
-    status = eo_vals.status
-    instant_flags = (
-        _bits(sun_alt_deg > 0.0, ObservedFlag.SUN_ABOVE_HORIZON)
-        | _bits(
-            status == EarthOrientationStatus.PREDICTED, ObservedFlag.EARTH_ORIENTATION_PREDICTED
-        )
-        | _bits(
-            status == EarthOrientationStatus.UNAVAILABLE,
-            ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
-        )
-        | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
-    )
-    if np.any(instant_flags):
+    sun_alt_deg, instant_flags = st.sun_alt_deg, st.instant_flags
+    if instant_flags is not None:
         res["flags"] = _shaped(res["flags"] | instant_flags, shape).astype(np.uint32)
 
     a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
     if geocentric:
-        geo = _geocentric_astrom(tt1, tt2, astrom, ebpv, ehp)
+        geo, eo = st.geocentric(), st.eo
         if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
             full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
             gout = [np.empty(shape) for _ in range(5)]
@@ -1666,7 +1841,9 @@ def observed_places(
                     o[sl] = r
             a_ra, a_dec, app_ra, app_dec, app_ra_cio = gout
         else:
-            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(*stars[:6], dt, geo, eo)
+            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(
+                *stars[:6], dt, geo, eo, terms=terms
+            )
 
     return ObservedPlaces(
         astrometric_ra_deg=_shaped(a_ra, shape),
@@ -1677,7 +1854,7 @@ def observed_places(
         **res,
         sun_altitude_deg=_shaped(sun_alt_deg, shape),
         sun_azimuth_deg=_shaped(ins.sun_az * DEG_PER_RAD, shape),
-        epoch_tt_jyear=np.asarray(epoch_tt),
+        epoch_tt_jyear=st.epoch_tt,
         eop=eo_vals,
         refraction=refr,
         site=site,
@@ -1692,7 +1869,7 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     bpn = astrom_obs["bpn"]
     x, y = bpn[..., 2, 0], bpn[..., 2, 1]
     _, _, s, _ = _cip_interpolated(tt1, tt2)
-    geo = erfa.apci(tt1, tt2, ebpv, ehp, x, y, s)
+    geo = erfa_ufunc.apci(tt1, tt2, ebpv, ehp, x, y, s)
     out = {
         "eb": [geo["eb"][..., i] for i in range(3)],
         "eh": [geo["eh"][..., i] for i in range(3)],
@@ -1717,12 +1894,13 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     return out
 
 
-def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo):
+def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo, terms=None):
     """Geocentric astrometric (SOFA atccq) and apparent (atciq with apci) places, degrees."""
     if "fast" in geo and np.ndim(ra_deg) == 1:
         pi, u = _apparent_aet_one_instant(
-            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True
-        )
+            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True,
+            terms=terms,
+        )  # fmt: skip
         a_ra = np.mod(np.arctan2(u[1], u[0]), TWO_PI) * DEG_PER_RAD
         a_dec = np.arctan2(u[2], np.sqrt(u[0] * u[0] + u[1] * u[1])) * DEG_PER_RAD
         ri = np.arctan2(pi[1], pi[0])

@@ -35,6 +35,7 @@ IAU SOFA / ERFA routines starpm, pmsafe (pyerfa).
 from __future__ import annotations
 
 import enum
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -172,6 +173,11 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     pma = np.asarray(pm_ra_cosdec_mas_yr, dtype=float)
     pmd = np.asarray(pm_dec_mas_yr, dtype=float)
     shape = np.broadcast_shapes(plx.shape, rv.shape, pma.shape, pmd.shape)
+    if plx.size == rv.size == pma.size == pmd.size == 1:
+        # One star: the same comparisons on Python floats (same IEEE arithmetic, less
+        # overhead than a dozen array operations).
+        bits = _input_flags_one(plx.item(), pma.item(), pmd.item(), rv.item())
+        return np.full(shape, bits, dtype=np.int64)
     F = PropagationFlag
     plx_missing = np.isnan(plx)
     rv_missing = np.isnan(rv)
@@ -195,6 +201,31 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
         flags |= np.left_shift(mask, int(bit).bit_length() - 1, dtype=np.uint16)
     flags = flags.astype(np.int64)
     return flags
+
+
+def _input_flags_one(plx: float, pma: float, pmd: float, rv: float) -> int:
+    """:func:`input_flags` of one star, as an int (the same tests, in the same order)."""
+    F = PropagationFlag
+    plx_missing = math.isnan(plx)
+    rv_missing = math.isnan(rv)
+    plx_positive = plx > 0
+    pm_sq = pma * pma + pmd * pmd
+    plx_sq = plx * plx
+    vt_sq_plx_sq = _A_SQ * pm_sq
+    limit = _V_LIMIT_SQ * plx_sq
+    too_fast = (vt_sq_plx_sq > limit) or (vt_sq_plx_sq + rv * rv * plx_sq > limit)
+    bits = 0
+    for cond, bit in (
+        (plx_missing, F.PARALLAX_MISSING),
+        (not (plx_positive or plx_missing), F.PARALLAX_NOT_POSITIVE),
+        (rv_missing, F.RADIAL_VELOCITY_MISSING),
+        (pm_sq > _PM_LIMIT_SQ, F.PROPER_MOTION_IMPLAUSIBLE),
+        (not (rv_missing or plx_positive), F.RADIAL_VELOCITY_UNCHANGED),
+        (too_fast and plx_positive, F.SPACE_VELOCITY_IMPLAUSIBLE),
+    ):
+        if cond:
+            bits |= int(bit)
+    return bits
 
 
 @dataclass
@@ -776,6 +807,13 @@ def propagate(
     if model == "light_time":
         e_from, e_to = (
             _flatten(np.asarray(e, dtype=float), shape) for e in (epoch_from_jyear, epoch_to_jyear)
+        )
+    if model == "standard" and cov_flat is None and 0 < n <= max(int(block_size), 1):
+        # One block, no covariance: the outputs are new arrays already (no copies needed).
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ast, fl, _, _, _ = _standard_outputs(*flat)
+        return PropagationResult(
+            Astrometry(*(o.reshape(shape) for o in _fields(ast))), fl.reshape(shape), None
         )
     outs = [np.empty(n) for _ in range(6)]
     flags = np.empty(n, dtype=np.int64)
