@@ -11,7 +11,7 @@ from ..core import epochs as core_epochs
 from ..core import frames as core
 from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
-from ..core.flags import flag_names
+from ..core.flags import flag_names, present_flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
 from .tables import StarTableField
@@ -124,7 +124,7 @@ class EquinoxField(ma.fields.Field):
 
 def equinox_field_to_openapi(self, field, **kwargs) -> dict:
     if isinstance(field, EquinoxField):
-        return {"type": ["string", "number"]}
+        return {"type": ["string", "number", "null"] if field.allow_none else ["string", "number"]}
     return {}
 
 
@@ -197,10 +197,10 @@ class FramesResponseSchema(ma.Schema):
 
 
 FLAG_MEANINGS = {
-    "missing_parallax": "No parallax: treated as infinitely distant; parallax out unknown.",
-    "non_positive_parallax": "Parallax zero or negative: treated as infinitely distant.",
-    "missing_radial_velocity": "No radial velocity: zero for the geometry; out unknown.",
-    "missing_proper_motion": "No proper motion: taken as zero.",
+    "parallax_missing": "No parallax: treated as infinitely distant; parallax out unknown.",
+    "parallax_not_positive": "Parallax zero or negative: treated as infinitely distant.",
+    "radial_velocity_missing": "No radial velocity: zero for the geometry; out unknown.",
+    "proper_motion_missing": "No proper motion: taken as zero.",
 }
 
 METHODS = [
@@ -275,6 +275,7 @@ def convert(args):
         dst,
     )
     names = flag_names(flags, core.FrameFlag)
+    present = present_flag_names(flags, core.FrameFlag)
     values = [getattr(out, f) for f in VALUE_FIELDS]
     ids = table.ids
     stars = [
@@ -296,7 +297,7 @@ def convert(args):
         "epochs": epochs_out(targets),
         "star_count": n,
         "units": UNITS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if any(k in x for x in names)},
+        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in present},
         "methods": METHODS,
         "stars": stars,
     }

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 
+import marshmallow as ma
 import orjson
 from flask.json.provider import JSONProvider
 from webargs import core as webargs_core
@@ -32,14 +33,28 @@ class OrjsonProvider(JSONProvider):
 
 
 class BodyParser(FlaskParser):
-    """webargs parser that reads JSON bodies with orjson (about 5x faster than json)."""
+    """webargs parser that reads JSON bodies with orjson (about 5x faster than json).
+
+    Unknown query parameters are refused (422 naming them), as unknown body fields are: a
+    misspelt option must not silently fall back to its default.
+    """
+
+    DEFAULT_UNKNOWN_BY_LOCATION = {
+        **FlaskParser.DEFAULT_UNKNOWN_BY_LOCATION,
+        "query": ma.RAISE,
+        "querystring": ma.RAISE,
+    }
 
     def _raw_load_json(self, req):
         if not webargs_core.is_json(req.mimetype):
             return webargs_core.missing
         data = req.get_data(cache=True)
+        if not data:
+            return webargs_core.missing  # no body: each required field is reported missing
         try:
             return orjson.loads(data)
         except orjson.JSONDecodeError as exc:
-            # webargs turns json.JSONDecodeError into a 400 through our error handler.
-            raise json.JSONDecodeError(str(exc), exc.doc or "", exc.pos or 0) from None
+            # webargs turns json.JSONDecodeError into a 400 through our error handler, but
+            # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
+            # are not UTF-8, so it is never passed on empty.
+            raise json.JSONDecodeError(str(exc), exc.doc or "(body)", exc.pos or 0) from None

@@ -13,7 +13,7 @@ import functools
 import numpy as np
 
 
-def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[list[str]]:
+def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[tuple[str, ...]]:
     """Names of the set bits of each mask, in declaration order.
 
     Parameters
@@ -25,20 +25,32 @@ def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[list[str]]:
 
     Returns
     -------
-    list of list of str
-        One list of flag names per star (empty where no bit is set).
+    list of tuple of str
+        One tuple of flag names per star (empty where no bit is set). Stars with the same
+        mask share one tuple (Note 1).
+
+    Notes
+    -----
+    1. A million stars carry only a handful of distinct masks; naming each distinct mask
+       once and sharing the (immutable) tuple avoids creating a million objects, which
+       costs seconds in Python's garbage collector.
     """
     mask = np.atleast_1d(np.asarray(mask, dtype=np.int64))
-    if not mask.any():
-        return [[] for _ in range(mask.shape[0])]
     members = _members(flag_type)
     if mask.shape[0] == 1:
         u = int(mask[0])
-        return [[name for name, bit in members if u & bit]]
-    # Few distinct masks occur in practice: name each once, then copy per star.
+        return [tuple(name for name, bit in members if u & bit)]
+    if not mask.any():
+        return [()] * mask.shape[0]
     unique, inverse = np.unique(mask, return_inverse=True)
-    named = [[name for name, bit in members if int(u) & bit] for u in unique]
-    return [list(named[k]) for k in inverse.tolist()]
+    named = [tuple(name for name, bit in members if int(u) & bit) for u in unique]
+    return [named[k] for k in inverse.ravel().tolist()]
+
+
+def present_flag_names(mask, flag_type: type[enum.IntFlag]) -> set[str]:
+    """The set of flag names set in any of the masks (for a response's list of meanings)."""
+    union = int(np.bitwise_or.reduce(np.atleast_1d(np.asarray(mask, dtype=np.int64)), axis=None))
+    return {name for name, bit in _members(flag_type) if union & bit}
 
 
 @functools.lru_cache(maxsize=64)
