@@ -547,7 +547,7 @@ def _versions() -> dict:
     return out
 
 
-def flag_names(mask, column: str, job: BatchJob | str) -> list[list[str]]:
+def flag_names(mask, column: str, job: BatchJob | str) -> list[tuple[str, ...]]:
     """Names of the bits set in a flag column of a job's output, per row.
 
     Parameters
@@ -560,7 +560,8 @@ def flag_names(mask, column: str, job: BatchJob | str) -> list[list[str]]:
 
     Returns
     -------
-    list of list of str
+    list of tuple of str
+        One tuple per row (as :func:`service.core.flags.flag_names`).
     """
     from ..core.flags import flag_names as _names
 

@@ -425,11 +425,11 @@ CONSTELLATION_FLAG_MEANINGS = {
     _CF.TABLE_ROUNDING_AMBIGUOUS: "Within half a unit of the table's last digit of a "
     "boundary: the published table cannot decide.",
     _CF.REDUCTIONS_DISAGREE: "The FK4 and FK5 reductions to B1875.0 give different constellations.",
-    _CF.PARALLAX_UNKNOWN: "No usable parallax: motion applied as direction only (no "
+    _CF.PARALLAX_MISSING: "No usable parallax: motion applied as direction only (no "
     "perspective effects; radial velocity not used).",
-    _CF.NONPOSITIVE_PARALLAX: "Parallax zero or negative: treated as unknown.",
-    _CF.RADIAL_VELOCITY_UNKNOWN: "No radial velocity: taken as zero for the motion.",
-    _CF.PROPER_MOTION_UNKNOWN: "No proper motion: the position was taken as fixed.",
+    _CF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: treated as unknown.",
+    _CF.RADIAL_VELOCITY_MISSING: "No radial velocity: taken as zero for the motion.",
+    _CF.PROPER_MOTION_MISSING: "No proper motion: the position was taken as fixed.",
     _CF.SEARCH_INCOMPLETE: "Crossing search stopped early (not used in batch runs).",
 }
 
