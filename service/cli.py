@@ -1,5 +1,6 @@
-"""The ``skydrift`` command: serve the API, write the OpenAPI document, and the batch and
-chart commands on catalogue files (see :mod:`service.commands`)."""
+"""The ``skydrift`` command: serve the API, write the OpenAPI document, the commands on
+catalogue files (see :mod:`service.commands`) and whole-catalogue batch runs on Dask
+(see :mod:`service.batch`)."""
 
 from __future__ import annotations
 
@@ -59,6 +60,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .commands import add_commands
 
     add_commands(sub)
+    from .batch.cli import add_subcommands as add_batch_subcommands  # dask imported only on use
+
+    add_batch_subcommands(sub)
     return parser
 
 

@@ -1,0 +1,667 @@
+"""Whole-catalogue runs on Dask (service/batch.py).
+
+The reference for every result here is the core itself: the batch path must give, for each
+row, exactly (bitwise) what one call of the core's function on the whole catalogue gives.
+The catalogue is synthetic (seeded), with catalogue-style column names that differ from the
+canonical ones, so the column mapping is exercised on every run.
+"""
+
+from __future__ import annotations
+
+import json
+import pathlib
+
+import numpy as np
+import pytest
+
+pd = pytest.importorskip("pandas")
+pa = pytest.importorskip("pyarrow")
+pq = pytest.importorskip("pyarrow.parquet")
+pytest.importorskip("dask.dataframe")
+
+from service import batch  # noqa: E402
+from service.batch import engine  # noqa: E402
+from service.core import propagation as core  # noqa: E402
+
+#: Rows of the large synthetic catalogue: 2 million (not more) with seven columns, to keep
+#: the module well under a minute of CPU on a 2-core machine.
+LARGE_ROWS = 2_000_000
+#: Rows per Parquet row group (and so per Dask partition with the default block size).
+ROW_GROUP_ROWS = 250_000
+
+CATALOGUE_EPOCH = 2016.0
+TARGET_EPOCH = 2031.5
+
+#: Canonical field -> column name in the synthetic catalogue.
+MAPPING = {
+    "ra_deg": "RA_ICRS",
+    "dec_deg": "DE_ICRS",
+    "parallax_mas": "Plx",
+    "pm_ra_cosdec_mas_yr": "pmRA",
+    "pm_dec_mas_yr": "pmDE",
+    "radial_velocity_km_s": "RV",
+}
+
+OUT_FLOATS = [c.name for c in batch.PROPAGATE.outputs if c.dtype == "float64"]
+
+
+def synthetic_catalogue(n: int, seed: int) -> pd.DataFrame:
+    """Stars spread uniformly on the sky with catalogue-like astrometry.
+
+    Parallaxes include non-positive values, 70 % of radial velocities are unknown, a few
+    proper motions are implausibly large (all common in real catalogues), and a handful of
+    rows are bad: NaN or out of range in a required field.
+    """
+    rng = np.random.default_rng(seed)
+    ra = rng.uniform(0.0, 360.0, n)
+    dec = np.degrees(np.arcsin(rng.uniform(-1.0, 1.0, n)))
+    plx = rng.exponential(2.0, n) - 0.2
+    plx[rng.random(n) < 0.05] = np.nan
+    pma = rng.normal(0.0, 30.0, n)
+    pmd = rng.normal(0.0, 30.0, n)
+    pma[rng.random(n) < 1e-4] = 20_000.0
+    rv = np.where(rng.random(n) < 0.7, np.nan, rng.normal(0.0, 40.0, n))
+    bad = rng.choice(n, size=40, replace=False)
+    ra[bad[:10]] = np.nan
+    pmd[bad[10:20]] = np.nan
+    dec[bad[20:30]] = 95.0
+    ra[bad[30:40]] = -1.0
+    return pd.DataFrame(
+        {
+            "source_id": np.arange(n, dtype=np.int64) * 7 + 3,
+            "RA_ICRS": ra,
+            "DE_ICRS": dec,
+            "Plx": plx,
+            "pmRA": pma,
+            "pmDE": pmd,
+            "RV": rv,
+        }
+    )
+
+
+def write_parquet(frame: pd.DataFrame, path, row_group_rows: int = ROW_GROUP_ROWS) -> None:
+    pq.write_table(
+        pa.Table.from_pandas(frame, preserve_index=False), path, row_group_size=row_group_rows
+    )
+
+
+def read_output(path) -> pd.DataFrame:
+    frame = pq.read_table(path).to_pandas()
+    return frame.sort_values("source_id", kind="stable").reset_index(drop=True)
+
+
+def run(source, dest, **kw):
+    kw.setdefault("columns", MAPPING)
+    kw.setdefault("keep", ["source_id"])
+    kw.setdefault(
+        "params", {"catalogue_epoch_jyear": CATALOGUE_EPOCH, "target_epoch_jyear": TARGET_EPOCH}
+    )
+    return batch.run_batch("propagate", source, dest, **kw)
+
+
+def bad_row_mask(cat: pd.DataFrame) -> np.ndarray:
+    """Rows the batch path must refuse, by the fields' documented ranges."""
+    ra, dec = cat["RA_ICRS"].to_numpy(), cat["DE_ICRS"].to_numpy()
+    with np.errstate(invalid="ignore"):
+        return (
+            np.isnan(ra)
+            | np.isnan(cat["pmDE"].to_numpy())
+            | (np.abs(dec) > 90.0)
+            | (ra < 0.0)
+            | (ra > 360.0)
+        )
+
+
+def assert_bitwise_equal(a, b, what):
+    a = np.ascontiguousarray(a)
+    b = np.ascontiguousarray(b)
+    assert a.dtype == b.dtype or (a.dtype.kind in "iu" and b.dtype.kind in "iu"), what
+    if a.dtype.kind == "f":
+        # Bit patterns, so that even the sign of zero must agree. NaN (unknown) is written
+        # to Parquet as null and read back as the one standard NaN, so for NaN only the
+        # position must agree (not the sign bit the arithmetic happened to leave).
+        nan_a, nan_b = np.isnan(a), np.isnan(b)
+        same = (a.view(np.uint64) == b.view(np.uint64)) | (nan_a & nan_b)
+    else:
+        same = a.astype(np.int64) == b.astype(np.int64)
+    assert same.all(), f"{what}: {np.count_nonzero(~same)} rows differ"
+
+
+@pytest.fixture(scope="module")
+def large(tmp_path_factory):
+    """The large catalogue on disk, and its output from a default (local) run."""
+    root = tmp_path_factory.mktemp("large")
+    cat = synthetic_catalogue(LARGE_ROWS, seed=20261202)
+    write_parquet(cat, root / "catalogue.parquet")
+    summary = run(root / "catalogue.parquet", root / "out")
+    return cat, root, summary
+
+
+@pytest.mark.slow
+def test_dask_equals_core_bitwise_on_two_million_rows(large):
+    cat, root, summary = large
+    out = read_output(root / "out")
+    assert len(out) == LARGE_ROWS == summary.rows
+    assert summary.metadata["input"]["partitions"] >= 2  # really partitioned
+    assert np.array_equal(out["source_id"].to_numpy(), cat["source_id"].to_numpy())
+    bad = bad_row_mask(cat)
+    good = ~bad
+    # The reference: one call of the core on the whole catalogue, as a user would make it.
+    with np.errstate(invalid="ignore"):
+        ref = core.propagate(
+            *(cat[MAPPING[name]].to_numpy() for name in MAPPING),
+            CATALOGUE_EPOCH,
+            TARGET_EPOCH,
+        )
+    for name in OUT_FLOATS:
+        assert_bitwise_equal(out[name].to_numpy()[good], getattr(ref.astrometry, name)[good], name)
+    assert_bitwise_equal(
+        out["propagation_flags"].to_numpy()[good], ref.flags[good], "propagation_flags"
+    )
+    assert out["propagation_flags"].dtype == np.uint32
+    # Every flag the core can raise on these inputs was raised somewhere (the comparison
+    # above is not vacuous for the flags).
+    seen = np.bitwise_or.reduce(out["propagation_flags"].to_numpy())
+    for flag in (
+        core.PropagationFlag.PARALLAX_MISSING,
+        core.PropagationFlag.PARALLAX_NOT_POSITIVE,
+        core.PropagationFlag.RADIAL_VELOCITY_MISSING,
+        core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE,
+        core.PropagationFlag.RADIAL_VELOCITY_UNCHANGED,
+    ):
+        assert seen & int(flag), flag
+    # The bad rows: flagged, not computed.
+    assert np.all(out["row_flags"].to_numpy()[bad] != 0)
+    assert np.all(out["row_flags"].to_numpy()[good] == 0)
+    assert np.all(np.isnan(out.loc[bad, OUT_FLOATS].to_numpy()))
+    assert np.all(out["propagation_flags"].to_numpy()[bad] == 0)
+    counts = summary.flag_counts
+    assert counts["row_flags"]["required_value_missing"] == 20
+    assert counts["row_flags"]["value_out_of_range"] == 20
+    n_rv_missing = np.count_nonzero(np.isnan(cat["RV"].to_numpy()[good]))
+    assert counts["propagation_flags"]["radial_velocity_missing"] == n_rv_missing
+
+
+@pytest.mark.slow
+def test_metadata_records_inputs_and_versions(large):
+    _, root, _ = large
+    meta = batch.read_metadata(root / "out")
+    assert meta["job"] == "propagate"
+    assert meta["parameters"]["model"] == "standard"
+    assert meta["parameters"]["catalogue_epoch"]["julian_epoch_tdb"] == CATALOGUE_EPOCH
+    assert meta["parameters"]["target_epoch"]["julian_epoch_tdb"] == TARGET_EPOCH
+    # J2031.5 is 31.5 x 365.25 = 11505.375 days after J2000.0 = 2000-01-01T12:00 TT (IAU
+    # 1976 definition of the Julian epoch): 2031-07-02T21:00 TDB. UTC is earlier by
+    # TT-UTC = 69.184 s (37 leap seconds + 32.184 s; IERS Bulletin C, no leap second
+    # announced since 2017) and by TDB-TT (below 2 ms): 2031-07-02T20:58:50.816 UTC.
+    assert meta["parameters"]["target_epoch"]["iso_utc"].startswith("2031-07-02T20:58:50.8")
+    assert meta["parameters"]["frames"] == {"input": "ICRS", "output": "ICRS"}
+    assert meta["input"]["column_mapping"] == MAPPING
+    assert set(meta["input"]["columns_read"]) == {"source_id", *MAPPING.values()}
+    for dist in ("numpy", "pyerfa", "astropy", "astropy-iers-data", "dask", "pyarrow"):
+        assert meta["versions"][dist], dist
+    assert meta["versions"]["skydrift"]
+    bits = meta["flags"]["propagation_flags"]
+    assert bits[str(int(core.PropagationFlag.AT_POLE))]["name"] == "at_pole"
+    assert meta["output"]["rows"] == LARGE_ROWS
+    assert meta["flag_counts"]["row_flags"]["value_out_of_range"] == 20
+
+
+def test_local_cluster_with_two_workers_matches_local_scheduler(tmp_path):
+    distributed = pytest.importorskip("distributed")
+    cat = synthetic_catalogue(300_000, seed=7)
+    write_parquet(cat, tmp_path / "cat.parquet", row_group_rows=50_000)
+    local = run(tmp_path / "cat.parquet", tmp_path / "local", blocksize="4MiB")
+    assert local.metadata["input"]["partitions"] >= 4
+    with (
+        distributed.LocalCluster(
+            n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None
+        ) as cluster,
+        distributed.Client(cluster) as client,
+    ):
+        remote = run(
+            tmp_path / "cat.parquet", tmp_path / "cluster", client=client, blocksize="4MiB"
+        )
+        assert remote.metadata["execution"]["workers"] == 2
+        # The scheduler address works as well as a client object.
+        by_address = run(
+            tmp_path / "cat.parquet",
+            tmp_path / "by_address",
+            scheduler=cluster.scheduler_address,
+            blocksize="4MiB",
+        )
+    a = read_output(tmp_path / "local")
+    for other in ("cluster", "by_address"):
+        b = read_output(tmp_path / other)
+        assert list(a.columns) == list(b.columns)
+        for name in a.columns:
+            assert_bitwise_equal(a[name].to_numpy(), b[name].to_numpy(), f"{other}: {name}")
+    assert remote.flag_counts == local.flag_counts == by_address.flag_counts
+    assert remote.metadata["execution"]["scheduler"] == "dask.distributed"
+    assert by_address.metadata["execution"]["worker_versions"]
+
+
+def test_bad_rows_and_missing_optional_columns_are_flagged_per_row(tmp_path):
+    frame = pd.DataFrame(
+        {
+            "source_id": [1, 2, 3, 4, 5, 6, 7],
+            "ra_deg": [10.0, np.nan, 10.0, 10.0, 400.0, 10.0, 10.0],
+            "dec_deg": [20.0, 20.0, -91.0, 20.0, 20.0, 20.0, 20.0],
+            "parallax_mas": [5.0, 5.0, 5.0, np.inf, 5.0, np.nan, -1.0],
+            "pm_ra_cosdec_mas_yr": [1.0, 1.0, 1.0, 1.0, 1.0, 1.0, np.nan],
+            "pm_dec_mas_yr": [1.0] * 7,
+        }
+    )  # no radial_velocity_km_s column at all
+    write_parquet(frame, tmp_path / "cat.parquet")
+    summary = batch.run_batch(
+        "propagate",
+        tmp_path / "cat.parquet",
+        tmp_path / "out",
+        params={"catalogue_epoch_jyear": 2016.0, "target_epoch_jyear": 2000.0},
+        keep=["source_id"],
+    )
+    out = read_output(tmp_path / "out")
+    names = [list(n) for n in batch.flag_names(out["row_flags"], "row_flags", "propagate")]
+    assert names == [
+        [],
+        ["required_value_missing"],
+        ["value_out_of_range"],
+        ["value_out_of_range"],
+        ["value_out_of_range"],
+        [],
+        ["required_value_missing"],
+    ]
+    prop = [
+        list(n)
+        for n in batch.flag_names(out["propagation_flags"], "propagation_flags", "propagate")
+    ]
+    # Absent radial velocity column: unknown for every computed row, and said so.
+    assert prop[0] == ["radial_velocity_missing"]
+    assert prop[5] == ["parallax_missing", "radial_velocity_missing"]
+    assert all(p == [] for p in (prop[1], prop[2], prop[3], prop[4], prop[6]))
+    assert np.isnan(out.loc[[1, 2, 3, 4, 6], OUT_FLOATS].to_numpy()).all()
+    assert np.isfinite(out.loc[0, OUT_FLOATS].to_numpy(dtype=float)[:5]).all()
+    assert summary.metadata["input"]["absent_optional_fields"] == ["radial_velocity_km_s"]
+
+
+def test_missing_required_column_fails_before_any_work(tmp_path, monkeypatch):
+    frame = synthetic_catalogue(1000, seed=1).drop(columns=["pmDE"])
+    write_parquet(frame, tmp_path / "cat.parquet")
+
+    def never(*args, **kwargs):  # pragma: no cover - failing the test is the point
+        raise AssertionError("a partition was processed")
+
+    monkeypatch.setattr(engine, "process_partition", never)
+    with pytest.raises(batch.BatchInputError, match=r"'pmDE'.*pm_dec_mas_yr"):
+        run(tmp_path / "cat.parquet", tmp_path / "out")
+    assert not (tmp_path / "out").exists()
+    # Unmapped and absent under its canonical name: the message names the canonical name.
+    with pytest.raises(batch.BatchInputError, match=r"'pm_dec_mas_yr'.*--columns"):
+        run(
+            tmp_path / "cat.parquet",
+            tmp_path / "out",
+            columns={k: v for k, v in MAPPING.items() if k != "pm_dec_mas_yr"},
+        )
+    # A mapped optional column that is not there is a mistake too, not "unknown".
+    write_parquet(synthetic_catalogue(1000, seed=1), tmp_path / "full.parquet")
+    with pytest.raises(batch.BatchInputError, match=r"'RVel'"):
+        run(
+            tmp_path / "full.parquet",
+            tmp_path / "out",
+            columns={**MAPPING, "radial_velocity_km_s": "RVel"},
+        )
+    assert not (tmp_path / "out").exists()
+
+
+def test_command_line_run_and_clear_failure(tmp_path, capsys):
+    from service.cli import main
+
+    cat = synthetic_catalogue(5000, seed=3)
+    cat.to_csv(tmp_path / "cat.csv", index=False)
+    write_parquet(cat, tmp_path / "cat.parquet")
+    mapping = ",".join(f"{k}={v}" for k, v in MAPPING.items())
+    common = ["--catalogue-epoch", "J2016.0", "--target-epoch", "J2031.5", "--quiet"]
+    assert (
+        main(
+            [
+                "batch",
+                "propagate",
+                str(tmp_path / "cat.csv"),
+                str(tmp_path / "from_csv"),
+                "--columns",
+                mapping,
+                "--keep",
+                "source_id",
+                *common,
+            ]
+        )
+        == 0
+    )
+    (tmp_path / "map.toml").write_text(
+        "[columns]\n" + "".join(f'{k} = "{v}"\n' for k, v in MAPPING.items())
+    )
+    assert (
+        main(
+            [
+                "batch",
+                "propagate",
+                str(tmp_path / "cat.parquet"),
+                str(tmp_path / "from_pq"),
+                "--columns-file",
+                str(tmp_path / "map.toml"),
+                "--keep",
+                "source_id",
+                *common,
+            ]
+        )
+        == 0
+    )
+    printed = capsys.readouterr().out
+    assert "5000 rows" in printed
+    a, b = read_output(tmp_path / "from_csv"), read_output(tmp_path / "from_pq")
+    for name in a.columns:
+        assert_bitwise_equal(a[name].to_numpy(), b[name].to_numpy(), name)
+    meta = json.loads((tmp_path / "from_pq" / batch.METADATA_FILE).read_text())
+    assert meta["parameters"]["target_epoch"]["given"] == "J2031.5"
+    # Missing column: exit status 2, a message naming the column, nothing written.
+    code = main(
+        [
+            "batch",
+            "propagate",
+            str(tmp_path / "cat.parquet"),
+            str(tmp_path / "nope"),
+            "--columns",
+            "ra_deg=RAdeg",
+            *common,
+        ]
+    )
+    assert code == 2
+    err = capsys.readouterr().err
+    assert "'RAdeg'" in err and "ra_deg" in err
+    assert not (tmp_path / "nope").exists()
+    # An existing output is not overwritten unless asked.
+    assert (
+        main(
+            [
+                "batch",
+                "propagate",
+                str(tmp_path / "cat.parquet"),
+                str(tmp_path / "from_pq"),
+                "--columns",
+                mapping,
+                *common,
+            ]
+        )
+        == 2
+    )
+    assert "--overwrite" in capsys.readouterr().err
+
+
+def test_per_row_catalogue_epoch_and_light_time_model(tmp_path):
+    cat = synthetic_catalogue(20_000, seed=11)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True)
+    cat["ref_epoch"] = np.where(np.arange(len(cat)) % 2 == 0, 2016.0, 1991.25)
+    write_parquet(cat, tmp_path / "cat.parquet")
+    run(
+        tmp_path / "cat.parquet",
+        tmp_path / "out",
+        columns={**MAPPING, "catalogue_epoch_jyear": "ref_epoch"},
+        params={"target_epoch_jyear": TARGET_EPOCH, "model": "light_time"},
+    )
+    out = read_output(tmp_path / "out")
+    ref = core.propagate(
+        *(cat[MAPPING[name]].to_numpy() for name in MAPPING),
+        cat["ref_epoch"].to_numpy(),
+        TARGET_EPOCH,
+        model="light_time",
+    )
+    for name in OUT_FLOATS:
+        assert_bitwise_equal(out[name].to_numpy(), getattr(ref.astrometry, name), name)
+    assert_bitwise_equal(out["propagation_flags"].to_numpy(), ref.flags, "flags")
+    meta = batch.read_metadata(tmp_path / "out")
+    assert meta["parameters"]["catalogue_epoch"] == {
+        "column": "ref_epoch",
+        "unit": "Julian epoch (TDB), yr",
+    }
+    assert meta["parameters"]["model"] == "light_time"
+
+
+def test_column_mapping_parsing(tmp_path):
+    assert batch.parse_column_mapping("ra_deg=RA, dec_deg = DE") == {
+        "ra_deg": "RA",
+        "dec_deg": "DE",
+    }
+    (tmp_path / "m.json").write_text(json.dumps({"ra_deg": "RA", "dec_deg": "DEC"}))
+    assert batch.parse_column_mapping("dec_deg=DE", str(tmp_path / "m.json")) == {
+        "ra_deg": "RA",
+        "dec_deg": "DE",
+    }
+    with pytest.raises(batch.BatchInputError, match="canonical_name=COLUMN"):
+        batch.parse_column_mapping("ra_deg")
+    with pytest.raises(batch.BatchInputError, match="unknown field name"):
+        batch.make_plan(
+            "propagate",
+            {"ra": "float64"},
+            columns={"right_ascension": "ra"},
+            params={"catalogue_epoch_jyear": 2016.0, "target_epoch_jyear": 2000.0},
+        )
+    # One mapping for every job of a catalogue: fields of other jobs are ignored.
+    shared = {**MAPPING, "parallax_error_mas": "e_Plx", "catalogue_epoch_jyear": "Epoch"}
+    schema = {col: "float64" for col in shared.values()}
+    plan = batch.make_plan("constellations", schema, columns=shared, params={})
+    assert plan.mapping == {"ra_deg": "RA_ICRS", "dec_deg": "DE_ICRS"}  # positions as given
+    plan = batch.make_plan(
+        "propagate", schema, columns=shared, params={"target_epoch_jyear": 2000.0}
+    )
+    assert "parallax_error_mas" not in plan.mapping
+    assert plan.mapping["catalogue_epoch_jyear"] == "Epoch"
+    with pytest.raises(batch.BatchInputError, match="not numeric"):
+        batch.make_plan(
+            "propagate",
+            {
+                "ra_deg": "object",
+                "dec_deg": "float64",
+                "pm_ra_cosdec_mas_yr": "float64",
+                "pm_dec_mas_yr": "float64",
+            },
+            params={"catalogue_epoch_jyear": 2016.0, "target_epoch_jyear": 2000.0},
+        )
+
+
+def test_velocity_job_equals_kinematics_core_bitwise(tmp_path):
+    from service.core import kinematics
+
+    cat = synthetic_catalogue(100_000, seed=5)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True)
+    rng = np.random.default_rng(6)
+    n = len(cat)
+    cat["e_Plx"] = rng.uniform(0.01, 0.5, n)
+    cat["e_pmRA"] = rng.uniform(0.01, 0.5, n)
+    cat["e_pmDE"] = rng.uniform(0.01, 0.5, n)
+    cat["e_RV"] = np.where(np.isnan(cat["RV"]), np.nan, rng.uniform(0.1, 3.0, n))
+    cat["plx_pmra_corr"] = rng.uniform(-0.5, 0.5, n)
+    cat.loc[::10, "plx_pmra_corr"] = np.nan  # not given: taken as 0, as the HTTP API does
+    write_parquet(cat, tmp_path / "cat.parquet", row_group_rows=20_000)
+    columns = {
+        **MAPPING,
+        "parallax_error_mas": "e_Plx",
+        "pm_ra_cosdec_error_mas_yr": "e_pmRA",
+        "pm_dec_error_mas_yr": "e_pmDE",
+        "radial_velocity_error_km_s": "e_RV",
+        "correlation_parallax_pm_ra": "plx_pmra_corr",
+    }
+    summary = batch.run_batch(
+        "velocity",
+        tmp_path / "cat.parquet",
+        tmp_path / "out",
+        columns=columns,
+        keep=["source_id"],
+        params={"catalogue_epoch_jyear": CATALOGUE_EPOCH},
+        blocksize="1MiB",
+    )
+    assert summary.metadata["input"]["partitions"] >= 4
+    out = read_output(tmp_path / "out")
+    nan = np.full(n, np.nan)
+    ref = kinematics.space_velocity(
+        *(cat[MAPPING[name]].to_numpy() for name in MAPPING),
+        distance_pc=nan,
+        parallax_error_mas=cat["e_Plx"].to_numpy(),
+        pm_ra_cosdec_error_mas_yr=cat["e_pmRA"].to_numpy(),
+        pm_dec_error_mas_yr=cat["e_pmDE"].to_numpy(),
+        parallax_pm_ra_cosdec_corr=np.nan_to_num(cat["plx_pmra_corr"].to_numpy(), nan=0.0),
+        parallax_pm_dec_corr=np.zeros(n),
+        pm_ra_cosdec_pm_dec_corr=np.zeros(n),
+        radial_velocity_error_km_s=cat["e_RV"].to_numpy(),
+        distance_error_pc=nan,
+        epoch_jyear=CATALOGUE_EPOCH,
+        relative_to_lsr=True,
+    )
+    expected = {
+        "distance_pc": ref.distance_pc,
+        "transverse_velocity_km_s": ref.transverse_velocity_km_s,
+        "total_velocity_km_s": ref.total_velocity_km_s,
+        "u_km_s": ref.uvw_km_s[:, 0],
+        "v_lsr_km_s": ref.uvw_lsr_km_s[:, 1],
+        "w_error_km_s": ref.uvw_error_km_s[:, 2],
+        "correlation_u_v": ref.uvw_correlation[:, 0],
+        "total_velocity_error_km_s": ref.total_velocity_error_km_s,
+        "closest_approach_epoch_jyear": ref.closest_approach_epoch_jyear,
+    }
+    for name, values in expected.items():
+        assert_bitwise_equal(out[name].to_numpy(), values, name)
+    assert_bitwise_equal(out["velocity_flags"].to_numpy(), ref.flags, "velocity_flags")
+    # Non-trivial: U V W known for the stars with radial velocity and positive parallax.
+    assert np.count_nonzero(np.isfinite(out["u_km_s"])) > n // 5
+    meta = batch.read_metadata(tmp_path / "out")
+    assert meta["parameters"]["solar_motion_km_s"] == [11.1, 12.24, 7.25]
+    assert set(meta["input"]["absent_optional_fields"]) == {
+        "distance_pc",
+        "distance_error_pc",
+        "correlation_parallax_pm_dec",
+        "correlation_pm_ra_pm_dec",
+    }
+
+
+def test_constellations_job_equals_constellation_core_bitwise(tmp_path):
+    from service.core import constellations
+
+    cat = synthetic_catalogue(200_000, seed=9)
+    # Proper motions are optional here (a star without them stays put, flagged): only the
+    # positions make a row bad.
+    ra, dec = cat["RA_ICRS"].to_numpy(), cat["DE_ICRS"].to_numpy()
+    with np.errstate(invalid="ignore"):
+        bad = np.isnan(ra) | (ra < 0) | (np.abs(dec) > 90)
+    assert np.count_nonzero(bad) == 30 and np.isnan(cat["pmDE"]).sum() == 10
+    write_parquet(cat, tmp_path / "cat.parquet", row_group_rows=40_000)
+    good = ~bad
+    abbreviations = np.asarray(constellations.boundary_table().abbreviations)
+    # Positions as given: only ra/dec are read.
+    fixed = batch.run_batch(
+        "constellations",
+        tmp_path / "cat.parquet",
+        tmp_path / "fixed",
+        columns=MAPPING,
+        keep=["source_id"],
+        params={},
+        blocksize="1MiB",
+    )
+    assert set(fixed.metadata["input"]["column_mapping"]) == {"ra_deg", "dec_deg"}
+    assert fixed.metadata["data_tables"]["constellation_boundaries"]["sha256"]
+    ref = constellations.locate(cat["RA_ICRS"].to_numpy()[good], cat["DE_ICRS"].to_numpy()[good])
+    out = read_output(tmp_path / "fixed")
+    assert np.array_equal(
+        out["constellation"].to_numpy()[good].astype(str), abbreviations[ref.index]
+    )
+    assert out["constellation"].isna()[bad].all()
+    assert_bitwise_equal(
+        out["boundary_margin_arcsec"].to_numpy()[good], ref.margin_arcsec, "margin"
+    )
+    assert_bitwise_equal(out["constellation_flags"].to_numpy()[good], ref.flags, "flags")
+    # Moved to another epoch first, with a per-row catalogue epoch.
+    moved = batch.run_batch(
+        "constellations",
+        tmp_path / "cat.parquet",
+        tmp_path / "moved",
+        columns=MAPPING,
+        keep=["source_id"],
+        params={"epoch_jyear": 12016.0, "catalogue_epoch_jyear": CATALOGUE_EPOCH},
+        blocksize="1MiB",
+    )
+    assert moved.metadata["parameters"]["epoch"]["julian_epoch_tdb"] == 12016.0
+    ref = constellations.locate_moving(
+        *(cat[MAPPING[name]].to_numpy()[good] for name in MAPPING),
+        CATALOGUE_EPOCH,
+        12016.0,
+    )
+    out = read_output(tmp_path / "moved")
+    assert np.array_equal(
+        out["constellation"].to_numpy()[good].astype(str), abbreviations[ref.index]
+    )
+    assert np.array_equal(
+        out["constellation_across"].to_numpy()[good].astype(str),
+        abbreviations[ref.other_side_index],
+    )
+    assert_bitwise_equal(
+        out["boundary_margin_arcsec"].to_numpy()[good], ref.margin_arcsec, "margin"
+    )
+    assert_bitwise_equal(out["constellation_flags"].to_numpy()[good], ref.flags, "flags")
+    assert out["constellation"].isna()[bad].all()
+    unknown_pm = np.isnan(cat["pmDE"].to_numpy())
+    names = batch.flag_names(
+        out["constellation_flags"][unknown_pm], "constellation_flags", "constellations"
+    )
+    assert all("proper_motion_missing" in n for n in names)
+    # 10,000 years of motion moves some stars into other constellations.
+    assert (
+        np.count_nonzero(
+            out["constellation"].to_numpy().astype(str)
+            != read_output(tmp_path / "fixed")["constellation"].to_numpy().astype(str)
+        )
+        > 10
+    )
+
+
+def test_row_checks_agree_with_the_field_definitions():
+    """The two-reduction fast path and the per-row path give the documented flags."""
+    rng = np.random.default_rng(12)
+    n = 5000
+    plan = batch.make_plan(
+        "propagate",
+        {name: "float64" for name in MAPPING},
+        params={"catalogue_epoch_jyear": 2016.0, "target_epoch_jyear": 2000.0},
+    )
+    specials = np.array([np.nan, np.inf, -np.inf, 95.0, -1.0, 361.0, 4e5])
+    inputs = {}
+    for name in MAPPING:
+        x = rng.uniform(0.0, 80.0, n)
+        pick = rng.random(n) < 0.02
+        x[pick] = rng.choice(specials, pick.sum())
+        inputs[name] = x
+    flags = batch.engine.row_checks(plan, inputs)
+    expected = np.zeros(n, dtype=np.uint32)
+    for name, x in inputs.items():
+        f = plan.job.field(name)
+        for i in range(n):
+            v = x[i]
+            if np.isnan(v):
+                expected[i] |= f.required * int(batch.RowFlag.REQUIRED_VALUE_MISSING)
+            elif not (np.isfinite(v) and f.low <= v <= f.high):
+                expected[i] |= int(batch.RowFlag.VALUE_OUT_OF_RANGE)
+    assert np.array_equal(flags, expected)
+    clean = {k: np.where(expected != 0, 1.0, v) for k, v in inputs.items()}
+    assert not batch.engine.row_checks(plan, clean).any()
+
+
+def test_building_the_command_line_does_not_import_dask():
+    """The service (skydrift serve) must not need the batch extra."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys; from service.cli import build_parser; build_parser(); "
+        "assert not [m for m in sys.modules if m.split('.')[0] in ('dask', 'pyarrow', "
+        "'distributed', 'pandas')], 'imported'"
+    )
+    subprocess.run(
+        [sys.executable, "-c", code], check=True, cwd=str(pathlib.Path(__file__).parents[1])
+    )
