@@ -42,7 +42,11 @@ workers = int(os.environ.get("SKYDRIFT_WORKERS") or _cpu_count())
 #: batches alike (the parsing and JSON work of one request overlaps the network wait of
 #: another; numpy releases the GIL). Two threads, not more: each thread may hold a large
 #: batch in memory, so threads x workers bounds the peak memory of a pod.
-worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "gthread")
+#: The project's subclass of gthread adds limits on how slowly a client may send a request
+#: (SKYDRIFT_CLIENT_IDLE_TIMEOUT_S, default 10; SKYDRIFT_REQUEST_READ_TIMEOUT_S, default 60),
+#: so slow clients cannot hold a thread (gthread threads are never reclaimed by `timeout`;
+#: see service/workers.py). SKYDRIFT_WORKER_CLASS=gthread gives the plain worker.
+worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "service.workers.ReadDeadlineThreadWorker")
 
 #: Threads per worker (gthread only).
 threads = int(os.environ.get("SKYDRIFT_THREADS", 2))

@@ -159,7 +159,9 @@ class Settings:
             log_level=level,
             **_access_settings(env),
         )
-        for name in ("sites_file", "eop_file"):
+        # SKYDRIFT_EOP_FILE is not checked here: unreadable Earth-orientation tables leave
+        # the service running, degraded (service/api/observed.py), rather than stopped.
+        for name in ("sites_file",):
             path = getattr(settings, name)
             if path and not os.path.isfile(path):
                 raise ConfigError(f"SKYDRIFT_{name.upper()}={path!r}: no such file")

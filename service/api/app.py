@@ -11,13 +11,14 @@ import uuid
 
 import flask_smorest
 from flask import Flask, g, request
-from werkzeug.exceptions import HTTPException
+from werkzeug.exceptions import ClientDisconnected, HTTPException
 
 from .. import __version__
 from ..config import Settings
 from . import errors
 from .common import ProblemSchema, epoch_field_to_openapi
 from .jsonio import OrjsonProvider
+from .openapi_errors import PROBLEM_MIMETYPE, ProblemResponsesPlugin
 from .tables import table_field_to_openapi
 
 API_DESCRIPTION = """\
@@ -44,6 +45,15 @@ class SkydriftApi(flask_smorest.Api):
 
     def handle_http_exception(self, error):
         return errors.handle_http_exception(error)
+
+    def _register_responses(self):
+        # Error responses are documented as problem+json, which is what errors.py sends.
+        default_type = self.DEFAULT_RESPONSE_CONTENT_TYPE
+        self.DEFAULT_RESPONSE_CONTENT_TYPE = PROBLEM_MIMETYPE
+        try:
+            super()._register_responses()
+        finally:
+            self.DEFAULT_RESPONSE_CONTENT_TYPE = default_type
 
 
 def create_app(config: dict | None = None) -> Flask:
@@ -77,19 +87,33 @@ def create_app(config: dict | None = None) -> Flask:
     app.config.update(config or {})
     logging.getLogger("skydrift").setLevel(settings.log_level)
 
-    api = SkydriftApi(app)
+    api = SkydriftApi(app, spec_kwargs={"extra_plugins": [ProblemResponsesPlugin()]})
     api.ma_plugin.converter.add_attribute_function(table_field_to_openapi)
     api.ma_plugin.converter.add_attribute_function(epoch_field_to_openapi)
     app.extensions["skydrift_api"] = api
     app.extensions["skydrift_ready_checks"] = {}
     app.register_error_handler(HTTPException, errors.handle_http_exception)
     app.register_error_handler(Exception, errors.handle_unexpected)
+    app.register_error_handler(TimeoutError, errors.handle_client_timeout)
+    app.register_error_handler(ClientDisconnected, errors.handle_client_timeout)
 
     @app.before_request
     def _start():
         g.start = time.perf_counter()
         given = request.headers.get("X-Request-ID", "")
         g.request_id = given if 0 < len(given) <= 128 and given.isprintable() else uuid.uuid4().hex
+
+    @app.before_request
+    def _refuse_encoded_bodies():
+        # Bodies are read as sent: a compressed body would be misread (or, decompressed,
+        # could be a bomb), so any Content-Encoding other than identity is refused.
+        encoding = request.headers.get("Content-Encoding", "").strip().lower()
+        if encoding not in ("", "identity"):
+            flask_smorest.abort(
+                415,
+                message=f"Content-Encoding {encoding[:40]!r} is not accepted; send the "
+                "body uncompressed",
+            )
 
     @app.after_request
     def _finish(resp):

@@ -158,6 +158,24 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
     return doc
 
 
+class StrictFloat(ma.fields.Float):
+    """A JSON number only: marshmallow's Float would also read the string "12.5"."""
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if not isinstance(value, int | float) or isinstance(value, bool):
+            raise self.make_error("invalid")
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
+class StrictBoolean(ma.fields.Boolean):
+    """JSON true or false only: marshmallow's Boolean would also read 0, 1, "yes", "off"."""
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if not isinstance(value, bool):  # not a set lookup: 0 == False and 1 == True
+            raise self.make_error("invalid")
+        return value
+
+
 EPOCH_DESCRIPTION = (
     "An epoch: a Julian epoch as a number or 'J2016.0' (TDB), a Besselian epoch 'B1950.0', "
     "a Julian date 'JD2451545.0' or modified Julian date 'MJD51544.5' (TDB unless a scale "
@@ -192,7 +210,7 @@ def _parse_epoch_text(text: str) -> float:
 def epoch_field_to_openapi(self, field, **kwargs) -> dict:
     """apispec attribute function: an epoch is a string or a number."""
     if isinstance(field, EpochField):
-        return {"type": ["string", "number"]}
+        return {"type": ["string", "number", "null"] if field.allow_none else ["string", "number"]}
     return {}
 
 

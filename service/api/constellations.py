@@ -45,11 +45,11 @@ FLAG_MEANINGS = {
     "(0.18 arcsec from a constant-Dec boundary, 2.7 arcsec x cos(dec) from a constant-RA one): "
     "the published table cannot decide.",
     "reductions_disagree": "The fk4 and fk5 reductions give different constellations.",
-    "parallax_unknown": "No usable parallax: the motion is applied as direction only (no "
+    "parallax_missing": "No usable parallax: the motion is applied as direction only (no "
     "perspective effects; radial velocity not used).",
-    "nonpositive_parallax": "Parallax zero or negative: treated as unknown.",
-    "radial_velocity_unknown": "No radial velocity: taken as zero for the motion.",
-    "proper_motion_unknown": "No proper motion: the position was taken as fixed.",
+    "parallax_not_positive": "Parallax zero or negative: treated as unknown.",
+    "radial_velocity_missing": "No radial velocity: taken as zero for the motion.",
+    "proper_motion_missing": "No proper motion: the position was taken as fixed.",
     "search_incomplete": "The crossing search reached its step limit before the end of the "
     "window (a star grazing a boundary for a long time); crossings after the last one "
     "listed may be missing.",
@@ -407,10 +407,10 @@ def _locate(args, with_margin: bool):
         )
         # only stars that moved carry the motion flags
         motion_bits = (
-            core.ConstellationFlag.PARALLAX_UNKNOWN
-            | core.ConstellationFlag.NONPOSITIVE_PARALLAX
-            | core.ConstellationFlag.RADIAL_VELOCITY_UNKNOWN
-            | core.ConstellationFlag.PROPER_MOTION_UNKNOWN
+            core.ConstellationFlag.PARALLAX_MISSING
+            | core.ConstellationFlag.PARALLAX_NOT_POSITIVE
+            | core.ConstellationFlag.RADIAL_VELOCITY_MISSING
+            | core.ConstellationFlag.PROPER_MOTION_MISSING
         )
         flags = np.where(moving, res.flags, res.flags & ~np.uint16(motion_bits))
     else:

@@ -22,6 +22,13 @@ log = logging.getLogger("skydrift.errors")
 
 PROBLEM_MIMETYPE = "application/problem+json"
 
+#: At most this many field errors are listed in one problem response (the rest are counted),
+#: so a body with a million bad values gets a small answer.
+MAX_LISTED_ERRORS = 100
+
+#: Field paths and messages are cut to this many characters.
+MAX_ECHOED_CHARS = 300
+
 
 def problem_response(
     status: int,
@@ -81,6 +88,10 @@ def flatten_messages(messages, prefix: str = "") -> list[dict]:
     return out
 
 
+def _clip(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 def handle_http_exception(error: HTTPException) -> Response:
     """Shape every HTTPException (including flask-smorest/webargs aborts) as problem+json."""
     data = getattr(error, "data", None) or {}
@@ -99,6 +110,17 @@ def handle_http_exception(error: HTTPException) -> Response:
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
     else:
         detail = data.get("message") or error.description
+    if errors and len(errors) > MAX_LISTED_ERRORS:
+        more = len(errors) - MAX_LISTED_ERRORS
+        errors = errors[:MAX_LISTED_ERRORS] + [
+            {"field": "(more)", "message": f"{more} further invalid values not listed"}
+        ]
+    if errors:
+        # A client's own text (an unknown 10 MB key) is never echoed at length.
+        errors = [
+            {"field": _clip(str(e.get("field", ""))), "message": _clip(str(e.get("message", "")))}
+            for e in errors
+        ]
     headers = dict(data.get("headers") or {})
     if error.code == 405 and hasattr(error, "valid_methods") and error.valid_methods:
         headers["Allow"] = ", ".join(error.valid_methods)
@@ -115,4 +137,22 @@ def handle_unexpected(error: Exception) -> Response:
     ise = InternalServerError()
     return problem_response(
         500, ise.name, "An internal error occurred; it has been logged with the request id."
+    )
+
+
+def handle_client_timeout(error: Exception) -> Response:
+    """The client stopped sending its body in time (service.workers): 408, never a 500.
+
+    Werkzeug reports a failed body read as ClientDisconnected (a 400) with the socket's
+    error as its context; a timeout there is answered 408 as well.
+    """
+    cause = error if isinstance(error, TimeoutError) else error.__context__
+    if not isinstance(cause, TimeoutError):
+        return handle_http_exception(error)
+    log.info("client timed out sending the request: %s", cause)
+    return problem_response(
+        408,
+        "Request Timeout",
+        "The request body did not arrive in time; send it without pauses.",
+        headers={"Connection": "close"},
     )

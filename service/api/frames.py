@@ -124,7 +124,7 @@ class EquinoxField(ma.fields.Field):
 
 def equinox_field_to_openapi(self, field, **kwargs) -> dict:
     if isinstance(field, EquinoxField):
-        return {"type": ["string", "number"]}
+        return {"type": ["string", "number", "null"] if field.allow_none else ["string", "number"]}
     return {}
 
 
@@ -197,10 +197,10 @@ class FramesResponseSchema(ma.Schema):
 
 
 FLAG_MEANINGS = {
-    "missing_parallax": "No parallax: treated as infinitely distant; parallax out unknown.",
-    "non_positive_parallax": "Parallax zero or negative: treated as infinitely distant.",
-    "missing_radial_velocity": "No radial velocity: zero for the geometry; out unknown.",
-    "missing_proper_motion": "No proper motion: taken as zero.",
+    "parallax_missing": "No parallax: treated as infinitely distant; parallax out unknown.",
+    "parallax_not_positive": "Parallax zero or negative: treated as infinitely distant.",
+    "radial_velocity_missing": "No radial velocity: zero for the geometry; out unknown.",
+    "proper_motion_missing": "No proper motion: taken as zero.",
 }
 
 METHODS = [

@@ -242,7 +242,13 @@ def register(app) -> None:
     if getattr(settings, "eop_file", ""):
         from ..core.offline import use_earth_orientation_file
 
-        use_earth_orientation_file(settings.eop_file)
+        try:
+            use_earth_orientation_file(settings.eop_file)
+        except Exception:  # missing or corrupt: observed.py serves degraded and says why
+            logging.getLogger("skydrift.observed").error(
+                "SKYDRIFT_EOP_FILE=%r cannot be read; astropy keeps its packaged table",
+                settings.eop_file,
+            )
     # The Earth-orientation readiness check belongs to the observed-place blueprint, which
     # reads the table it uses; here the table is only put in use and its age exported.
     access_log = logging.getLogger("skydrift.request")

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import functools
 import json
+import logging
 import math
 import pathlib
 
@@ -60,10 +61,10 @@ PLACE_FIELDS = {
 }
 
 FLAG_MEANINGS = {
-    "missing_parallax": "No parallax: no parallax shift applied.",
-    "non_positive_parallax": "Parallax zero or negative: no parallax shift applied.",
-    "missing_radial_velocity": "No radial velocity: taken as zero.",
-    "missing_proper_motion": "No proper motion: taken as zero.",
+    "parallax_missing": "No parallax: no parallax shift applied.",
+    "parallax_not_positive": "Parallax zero or negative: no parallax shift applied.",
+    "radial_velocity_missing": "No radial velocity: taken as zero.",
+    "proper_motion_missing": "No proper motion: taken as zero.",
     "below_horizon_limit": "Target below the horizon limit (advisory).",
     "within_sun_avoidance": "Target closer to the Sun than the avoidance angle (advisory).",
     "sun_above_horizon": "The Sun is above the horizon at the site.",
@@ -344,7 +345,7 @@ def observed(args):
         epoch_arg = instants[None, :]
     # Missing motions stay missing for the flags (the propagation reports them as NaN too).
     utc1, utc2 = core.utc_from_julian_epoch_tdb(instants)
-    eop = core.earth_orientation(settings.eop_file or None)
+    eop = _earth_orientation()
     try:
         res = core.observed_places(
             *star_args,
@@ -455,9 +456,35 @@ _AST = (
 )
 
 
+@functools.lru_cache(maxsize=4)
+def _load_tables(path: str | None):
+    """(tables, None), or (placeholder tables, reason) when they cannot be read.
+
+    A missing or corrupt table must not stop the service (propagation, constellations and
+    velocities do not need it): it starts degraded, /ready says so (503), and every
+    observed-place answer carries earth_orientation_unavailable.
+    """
+    try:
+        return core.earth_orientation(path), None
+    except Exception as exc:
+        source = path or "the packaged astropy-iers-data table"
+        reason = f"cannot read {source} ({type(exc).__name__}: {exc})"[:300]
+        logging.getLogger("skydrift.observed").error(
+            "Earth-orientation tables unusable, serving degraded: %s", reason
+        )
+        return core.no_earth_orientation(), reason
+
+
+def _earth_orientation():
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    return _load_tables(settings.eop_file or None)[0]
+
+
 def _eop_ready():
     settings = current_app.config["SKYDRIFT_SETTINGS"]
-    eop = core.earth_orientation(settings.eop_file or None)
+    eop, problem = _load_tables(settings.eop_file or None)
+    if problem:
+        return False, problem + "; UT1-UTC and polar motion taken as zero"
     source = "SKYDRIFT_EOP_FILE" if settings.eop_file else "astropy-iers-data"
     return True, (
         f"{source}: {eop.primary.name}, measured to MJD {eop.primary.last_measured_mjd:.0f}"
@@ -467,7 +494,7 @@ def _eop_ready():
 def register(app, api):
     # Earth-orientation and leap-second tables are read once, at start (never downloaded).
     settings = app.config["SKYDRIFT_SETTINGS"]
-    core.earth_orientation(settings.eop_file or None)
+    _load_tables(settings.eop_file or None)
     load_sites(settings.sites_file or None)
     api.ma_plugin.converter.add_attribute_function(site_field_to_openapi)
     app.extensions["skydrift_ready_checks"]["earth_orientation"] = _eop_ready

@@ -18,7 +18,7 @@ from ..core.flags import flag_names, present_flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
 from .examples import load_example
 from .observability import count_stars
-from .tables import StarTableField
+from .tables import MAX_ABS_MAS, StarTableField
 
 blp = Blueprint(
     "propagation",
@@ -67,6 +67,10 @@ UNITS = {
 }
 
 
+#: Largest standard error accepted for the radial velocity, km/s (the speed of light).
+MAX_RV_ERROR_KM_S = C_KM_S
+
+
 def _num(description, *, required=False, lo=None, hi=None, **range_kw):
     validators = []
     if lo is not None or hi is not None:
@@ -87,12 +91,19 @@ _STAR_FIELDS = {
     "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
     "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
     "parallax_mas": _num(
-        "Parallax, mas. Null if unknown; zero or negative values are accepted and flagged."
+        "Parallax, mas. Null if unknown; zero or negative values are accepted and flagged.",
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
     "pm_ra_cosdec_mas_yr": _num(
-        "Proper motion in right ascension times cos(dec), mas/yr.", required=True
+        "Proper motion in right ascension times cos(dec), mas/yr.",
+        required=True,
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
-    "pm_dec_mas_yr": _num("Proper motion in declination, mas/yr.", required=True),
+    "pm_dec_mas_yr": _num(
+        "Proper motion in declination, mas/yr.", required=True, lo=-MAX_ABS_MAS, hi=MAX_ABS_MAS
+    ),
     "radial_velocity_km_s": _num(
         "Radial velocity, km/s, positive receding. Null if unknown.",
         lo=-C_KM_S,
@@ -100,12 +111,16 @@ _STAR_FIELDS = {
         min_inclusive=False,
         max_inclusive=False,
     ),
-    "ra_error_mas": _num("Standard error of ra*cos(dec), mas.", lo=0.0),
-    "dec_error_mas": _num("Standard error of dec, mas.", lo=0.0),
-    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0),
-    "pm_ra_cosdec_error_mas_yr": _num("Standard error of pm_ra_cosdec, mas/yr.", lo=0.0),
-    "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0),
-    "radial_velocity_error_km_s": _num("Standard error of the radial velocity, km/s.", lo=0.0),
+    "ra_error_mas": _num("Standard error of ra*cos(dec), mas.", lo=0.0, hi=MAX_ABS_MAS),
+    "dec_error_mas": _num("Standard error of dec, mas.", lo=0.0, hi=MAX_ABS_MAS),
+    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0, hi=MAX_ABS_MAS),
+    "pm_ra_cosdec_error_mas_yr": _num(
+        "Standard error of pm_ra_cosdec, mas/yr.", lo=0.0, hi=MAX_ABS_MAS
+    ),
+    "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0, hi=MAX_ABS_MAS),
+    "radial_velocity_error_km_s": _num(
+        "Standard error of the radial velocity, km/s.", lo=0.0, hi=MAX_RV_ERROR_KM_S
+    ),
 }
 for _i, _j in CORRELATION_PAIRS:
     _STAR_FIELDS[f"correlation_{PARAMS[_i]}_{PARAMS[_j]}"] = _num(
@@ -123,6 +138,7 @@ class EpochRangeSchema(ma.Schema):
     start = EpochField(required=True)
     stop = EpochField(required=True)
     count = ma.fields.Integer(
+        strict=True,  # 2.5 is refused, not truncated to 2
         required=True,
         validate=ma.validate.Range(min=1),
         metadata={"description": "Number of epochs, start and stop included."},
@@ -166,6 +182,20 @@ class PropagationRequestSchema(ma.Schema):
             "the layout of the request's stars."
         },
     )
+
+    @ma.pre_load
+    def _bound_epoch_list(self, data, **kwargs):
+        # Counted before any epoch is parsed, so a list of a million epochs costs nothing.
+        epochs = data.get("target_epochs") if isinstance(data, dict) else None
+        limit = current_app.config["SKYDRIFT_SETTINGS"].max_epochs
+        if isinstance(epochs, list) and len(epochs) > limit:
+            abort(
+                422,
+                errors=[
+                    {"field": "target_epochs", "message": f"at most {limit} epochs per request"}
+                ],
+            )
+        return data
 
     @ma.validates_schema
     def _one_target(self, data, **kwargs):
@@ -306,7 +336,8 @@ def _uncertainty_dict(cov_block):
         d = {ERROR_FIELDS[k]: _num_or_none(sig[k]) for k in range(6)}
         for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
             denom = sig[i] * sig[j]
-            d[name] = _num_or_none(c[i, j] / denom) if denom > 0 else None
+            with np.errstate(invalid="ignore", over="ignore"):  # inf / inf: unknown
+                d[name] = _num_or_none(c[i, j] / denom) if denom > 0 else None
         out.append(d)
     return out
 

@@ -24,6 +24,23 @@ import numpy as np
 from flask import current_app
 from flask_smorest import abort
 
+#: Largest magnitude accepted for parallaxes, proper motions and their standard errors, in
+#: mas and mas/yr. Far beyond any star (a parallax of 1e10 mas is a distance of 0.02 au; a
+#: proper motion of 1e10 mas/yr is 2,800 deg/yr), it keeps every product in the models and
+#: their covariances finite, so no input overflows into a meaningless answer.
+MAX_ABS_MAS = 1e10
+
+#: Default bound on every numeric column of every star table, in the column's own unit,
+#: where the record schema gives none (or only one side): no quantity the service takes
+#: (deg, mas, mas/yr, km/s, pc, years) means anything for a star beyond 1e10, and the bound
+#: keeps squares and products finite. Added to the record schema itself, so the OpenAPI
+#: document shows it.
+DEFAULT_MAX_ABS_VALUE = 1e10
+
+#: Largest distance (and distance error) accepted, pc: 1e10 pc, about the radius of the
+#: observable universe (common practice), with the same purpose.
+MAX_DISTANCE_PC = 1e10
+
 #: At most this many individual field errors are listed in one problem response.
 MAX_LISTED_ERRORS = 50
 
@@ -49,10 +66,21 @@ class ColumnSpec:
     def from_field(cls, name: str, fld: ma.fields.Field) -> ColumnSpec:
         kind = "number" if isinstance(fld, ma.fields.Number) else "id"
         spec = cls(name, kind, bool(fld.required), bool(fld.allow_none))
-        for v in fld.validators:
-            if isinstance(v, ma.validate.Range):
-                spec.lo, spec.hi = v.min, v.max
-                spec.lo_inclusive, spec.hi_inclusive = v.min_inclusive, v.max_inclusive
+        for v in fld.validators:  # several Range validators: their intersection
+            if not isinstance(v, ma.validate.Range):
+                continue
+            if v.min is not None and (spec.lo is None or v.min >= spec.lo):
+                tighter = spec.lo is None or v.min > spec.lo
+                spec.lo_inclusive = (
+                    v.min_inclusive if tighter else spec.lo_inclusive and v.min_inclusive
+                )
+                spec.lo = v.min
+            if v.max is not None and (spec.hi is None or v.max <= spec.hi):
+                tighter = spec.hi is None or v.max < spec.hi
+                spec.hi_inclusive = (
+                    v.max_inclusive if tighter else spec.hi_inclusive and v.max_inclusive
+                )
+                spec.hi = v.max
         return spec
 
     def range_text(self) -> str:
@@ -265,6 +293,23 @@ def _id_column(values: list, errors: TableErrors) -> list:
     return values
 
 
+def _bound_numeric_fields(record_schema: type[ma.Schema]) -> None:
+    """Give every numeric field of a record schema both bounds (DEFAULT_MAX_ABS_VALUE)."""
+    for fld in record_schema._declared_fields.values():
+        if not isinstance(fld, ma.fields.Number):
+            continue
+        ranges = [v for v in fld.validators if isinstance(v, ma.validate.Range)]
+        has_lo = any(v.min is not None for v in ranges)
+        has_hi = any(v.max is not None for v in ranges)
+        if not (has_lo and has_hi):
+            fld.validators.append(
+                ma.validate.Range(
+                    min=None if has_lo else -DEFAULT_MAX_ABS_VALUE,
+                    max=None if has_hi else DEFAULT_MAX_ABS_VALUE,
+                )
+            )
+
+
 class StarTableField(ma.fields.Field):
     """Marshmallow field for a table of stars (records or columns), validated with numpy.
 
@@ -279,6 +324,7 @@ class StarTableField(ma.fields.Field):
     def __init__(self, record_schema: type[ma.Schema], **kwargs):
         super().__init__(**kwargs)
         self.record_schema = record_schema
+        _bound_numeric_fields(record_schema)
         schema = record_schema()
         self.specs = [ColumnSpec.from_field(n, f) for n, f in schema.fields.items()]
         self.names = {s.name for s in self.specs}
@@ -418,8 +464,9 @@ def table_field_to_openapi(self, field, **kwargs) -> dict:
     """apispec attribute function: document a StarTableField as records or columns."""
     if not isinstance(field, StarTableField):
         return {}
-    schema_name = field.record_schema.__name__.removesuffix("Schema")
-    ref = {"$ref": f"#/components/schemas/{schema_name}"}
+    # The record schema is registered as a component here if its blueprint did not register
+    # it already, so the reference always resolves.
+    ref = self.resolve_nested_schema(field.record_schema)
     record_props = self.schema2jsonschema(field.record_schema)
     columns = {}
     for name, prop in record_props.get("properties", {}).items():

@@ -19,9 +19,16 @@ from flask_smorest import abort
 from ..core import kinematics as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .common import (
+    Blueprint,
+    EpochField,
+    EpochOutSchema,
+    StrictBoolean,
+    StrictFloat,
+    epochs_out,
+)
 from .examples import load_example
-from .tables import StarTableField
+from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, StarTableField
 
 blp = Blueprint(
     "velocity",
@@ -83,18 +90,26 @@ _VELOCITY_STAR_FIELDS = {
     "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
     "parallax_mas": _num(
         "Parallax, mas. Null if unknown; zero or negative values are accepted, flagged, and "
-        "give null velocities (no distance)."
+        "give null velocities (no distance).",
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
     "distance_pc": _num(
         "Distance, pc, when you have a better one than 1/parallax (e.g. a prior-based "
         "estimate). Replaces the parallax where given. Must be positive.",
         lo=0.0,
+        hi=MAX_DISTANCE_PC,
         min_inclusive=False,
     ),
     "pm_ra_cosdec_mas_yr": _num(
-        "Proper motion in right ascension times cos(dec), mas/yr.", required=True
+        "Proper motion in right ascension times cos(dec), mas/yr.",
+        required=True,
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
-    "pm_dec_mas_yr": _num("Proper motion in declination, mas/yr.", required=True),
+    "pm_dec_mas_yr": _num(
+        "Proper motion in declination, mas/yr.", required=True, lo=-MAX_ABS_MAS, hi=MAX_ABS_MAS
+    ),
     "radial_velocity_km_s": _num(
         "Radial velocity, km/s, positive receding. Null if unknown (then U, V, W and the "
         "total velocity are null; the transverse velocity is still given).",
@@ -103,15 +118,25 @@ _VELOCITY_STAR_FIELDS = {
         min_inclusive=False,
         max_inclusive=False,
     ),
-    "ra_error_mas": _num("Standard error of ra*cos(dec), mas." + _POSITION_ERROR_NOTE, lo=0.0),
-    "dec_error_mas": _num("Standard error of dec, mas." + _POSITION_ERROR_NOTE, lo=0.0),
-    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0),
-    "distance_error_pc": _num(
-        "Standard error of distance_pc, pc (uncorrelated with the proper motion).", lo=0.0
+    "ra_error_mas": _num(
+        "Standard error of ra*cos(dec), mas." + _POSITION_ERROR_NOTE, lo=0.0, hi=MAX_ABS_MAS
     ),
-    "pm_ra_cosdec_error_mas_yr": _num("Standard error of pm_ra_cosdec, mas/yr.", lo=0.0),
-    "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0),
-    "radial_velocity_error_km_s": _num("Standard error of the radial velocity, km/s.", lo=0.0),
+    "dec_error_mas": _num(
+        "Standard error of dec, mas." + _POSITION_ERROR_NOTE, lo=0.0, hi=MAX_ABS_MAS
+    ),
+    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0, hi=MAX_ABS_MAS),
+    "distance_error_pc": _num(
+        "Standard error of distance_pc, pc (uncorrelated with the proper motion).",
+        lo=0.0,
+        hi=MAX_DISTANCE_PC,
+    ),
+    "pm_ra_cosdec_error_mas_yr": _num(
+        "Standard error of pm_ra_cosdec, mas/yr.", lo=0.0, hi=MAX_ABS_MAS
+    ),
+    "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0, hi=MAX_ABS_MAS),
+    "radial_velocity_error_km_s": _num(
+        "Standard error of the radial velocity, km/s.", lo=0.0, hi=C_KM_S
+    ),
 }
 for _name in _CORRELATION_FIELDS:
     _used = _name in _USED_CORRELATIONS
@@ -132,21 +157,24 @@ VelocityStarSchema = ma.Schema.from_dict(_VELOCITY_STAR_FIELDS, name="VelocitySt
 
 
 class SolarMotionSchema(ma.Schema):
-    u_km_s = ma.fields.Float(
+    u_km_s = StrictFloat(
         required=True,
         allow_nan=False,
+        validate=ma.validate.Range(min=-C_KM_S, max=C_KM_S),
         metadata={"description": "Sun's velocity relative to the LSR towards the Galactic "
                   "centre, km/s."},
     )  # fmt: skip
-    v_km_s = ma.fields.Float(
+    v_km_s = StrictFloat(
         required=True,
         allow_nan=False,
+        validate=ma.validate.Range(min=-C_KM_S, max=C_KM_S),
         metadata={"description": "Sun's velocity relative to the LSR in the direction of "
                   "Galactic rotation, km/s."},
     )  # fmt: skip
-    w_km_s = ma.fields.Float(
+    w_km_s = StrictFloat(
         required=True,
         allow_nan=False,
+        validate=ma.validate.Range(min=-C_KM_S, max=C_KM_S),
         metadata={"description": "Sun's velocity relative to the LSR towards the north "
                   "Galactic pole, km/s."},
     )  # fmt: skip
@@ -172,7 +200,7 @@ class VelocityRequestSchema(ma.Schema):
             "(closest_approach_epoch_jyear is null without it). " + "Any accepted epoch form."
         },
     )
-    relative_to_lsr = ma.fields.Boolean(
+    relative_to_lsr = StrictBoolean(
         load_default=False,
         metadata={"description": "Also give U, V, W relative to the local standard of rest."},
     )
@@ -190,17 +218,19 @@ class VelocityRequestSchema(ma.Schema):
         },
     )
     monte_carlo_draws = ma.fields.Integer(
+        strict=True,  # 2.5 is refused, not truncated to 2
         load_default=core.MONTE_CARLO_DRAWS_DEFAULT,
         validate=ma.validate.Range(min=100, max=1_000_000),
         metadata={"description": "Draws per star for the Monte Carlo method."},
     )
     seed = ma.fields.Integer(
+        strict=True,  # 2.5 is refused, not truncated to 2
         load_default=None,
         allow_none=True,
         validate=ma.validate.Range(min=0, max=2**63 - 1),
         metadata={"description": "Seed of the Monte Carlo draws, for reproducible answers."},
     )
-    low_snr_threshold = ma.fields.Float(
+    low_snr_threshold = StrictFloat(
         load_default=core.LOW_PARALLAX_SNR_DEFAULT,
         allow_nan=False,
         validate=ma.validate.Range(min=0.0, max=1e6, min_inclusive=False),
@@ -596,16 +626,23 @@ _OBSERVABLES_STAR_FIELDS = {
     "id": _VELOCITY_STAR_FIELDS["id"],
     "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
     "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
-    "u_km_s": _num("U (towards the Galactic centre), km/s.", required=True),
-    "v_km_s": _num("V (direction of Galactic rotation), km/s.", required=True),
-    "w_km_s": _num("W (towards the north Galactic pole), km/s.", required=True),
+    "u_km_s": _num("U (towards the Galactic centre), km/s.", required=True, lo=-C_KM_S, hi=C_KM_S),
+    "v_km_s": _num(
+        "V (direction of Galactic rotation), km/s.", required=True, lo=-C_KM_S, hi=C_KM_S
+    ),
+    "w_km_s": _num(
+        "W (towards the north Galactic pole), km/s.", required=True, lo=-C_KM_S, hi=C_KM_S
+    ),
     "parallax_mas": _num(
         "Parallax, mas. Null if unknown (then only the radial velocity is given); zero or "
-        "negative is flagged."
+        "negative is flagged.",
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
     "distance_pc": _num(
         "Distance, pc; replaces the parallax where given. Must be positive.",
         lo=0.0,
+        hi=MAX_DISTANCE_PC,
         min_inclusive=False,
     ),
 }
@@ -618,7 +655,7 @@ class ObservablesRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
-    relative_to_lsr = ma.fields.Boolean(
+    relative_to_lsr = StrictBoolean(
         load_default=False,
         metadata={
             "description": "The given U, V, W are relative to the local standard of rest "

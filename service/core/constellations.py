@@ -60,6 +60,7 @@ from service.core.constants import (
     RAD_PER_DEG,
     TROPICAL_YEAR_DAYS_LIESKE1979,
 )
+from service.core.floating import overflow_to_infinity
 from service.core.propagation import propagate_standard
 
 # ---------------------------------------------------------------------------------------
@@ -148,13 +149,13 @@ class ConstellationFlag(enum.IntFlag):
     #: The FK4 and the FK5 reductions to B1875.0 give different constellations.
     REDUCTIONS_DISAGREE = 4
     #: Parallax missing: motion propagated as direction only (no perspective effects).
-    PARALLAX_UNKNOWN = 8
+    PARALLAX_MISSING = 8
     #: Parallax zero or negative: treated as unknown.
-    NONPOSITIVE_PARALLAX = 16
+    PARALLAX_NOT_POSITIVE = 16
     #: Radial velocity missing: taken as zero for the propagation.
-    RADIAL_VELOCITY_UNKNOWN = 32
+    RADIAL_VELOCITY_MISSING = 32
     #: Proper motion missing: the position was taken as fixed.
-    PROPER_MOTION_UNKNOWN = 64
+    PROPER_MOTION_MISSING = 64
     #: Crossing search stopped at its iteration limit before the end of the window.
     SEARCH_INCOMPLETE = 128
 
@@ -1211,6 +1212,7 @@ class ConstellationLookup:
         return np.asarray(boundary_table().names)[self.index]
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def locate(
     ra_deg,
     dec_deg,
@@ -1556,13 +1558,16 @@ def _space_motion(
 
     Notes
     -----
-    1. With a positive parallax, r0 is in pc and v in pc/yr, v = d (mu_a p + mu_d q)
-       + v_r r (Hipparcos Vol. 1, section 1.5.5, eqs. 1.5.60-1.5.63 in vector form).
+    1. With a positive parallax the model is d r0 + (d (mu_a p + mu_d q) + v_r r) t
+       (Hipparcos Vol. 1, section 1.5.5, eqs. 1.5.60-1.5.63 in vector form), d in pc and
+       v_r in pc/yr. Only directions are used, so both vectors are divided by d: r0 = r
+       (unit) and v = mu_a p + mu_d q + (v_r / d) r (rad/yr). That is exact, and stays
+       finite for any parallax (1000 / parallax overflows for parallaxes near 1e-308 mas).
     2. Without a usable parallax the distance drops out only if the radial velocity is
-       ignored: r0 = r (unit), v = mu_a p + mu_d q (rad/yr); PARALLAX_UNKNOWN is set
-       (plus NONPOSITIVE_PARALLAX for zero or negative values).
+       ignored: r0 = r (unit), v = mu_a p + mu_d q (rad/yr); PARALLAX_MISSING is set
+       (plus PARALLAX_NOT_POSITIVE for zero or negative values).
     3. A missing radial velocity is taken as zero and flagged; a missing proper motion
-       component as zero and flagged PROPER_MOTION_UNKNOWN.
+       component as zero and flagged PROPER_MOTION_MISSING.
     """
     ra, dec, plx, pma, pmd, rv = (
         a.ravel()
@@ -1584,24 +1589,24 @@ def _space_motion(
     dec = dec * RAD_PER_DEG
     flags = np.zeros(ra.shape, dtype=np.int64)
     pm_missing = ~np.isfinite(pma) | ~np.isfinite(pmd)
-    flags |= np.where(pm_missing, int(ConstellationFlag.PROPER_MOTION_UNKNOWN), 0)
+    flags |= np.where(pm_missing, int(ConstellationFlag.PROPER_MOTION_MISSING), 0)
     pma = np.where(np.isfinite(pma), pma, 0.0) / MAS_PER_RAD
     pmd = np.where(np.isfinite(pmd), pmd, 0.0) / MAS_PER_RAD
     plx_ok = np.isfinite(plx) & (plx > 0.0)
-    flags |= np.where(plx_ok, 0, int(ConstellationFlag.PARALLAX_UNKNOWN))
+    flags |= np.where(plx_ok, 0, int(ConstellationFlag.PARALLAX_MISSING))
     flags |= np.where(
-        np.isfinite(plx) & (plx <= 0.0), int(ConstellationFlag.NONPOSITIVE_PARALLAX), 0
+        np.isfinite(plx) & (plx <= 0.0), int(ConstellationFlag.PARALLAX_NOT_POSITIVE), 0
     )
     rv_ok = np.isfinite(rv)
-    flags |= np.where(rv_ok, 0, int(ConstellationFlag.RADIAL_VELOCITY_UNKNOWN))
+    flags |= np.where(rv_ok, 0, int(ConstellationFlag.RADIAL_VELOCITY_MISSING))
     sa, ca, sd, cd = np.sin(ra), np.cos(ra), np.sin(dec), np.cos(dec)
     r = np.stack([cd * ca, cd * sa, sd], axis=-1)
     p = np.stack([-sa, ca, np.zeros_like(ra)], axis=-1)
     q = np.stack([-sd * ca, -sd * sa, cd], axis=-1)
-    dist_pc = np.where(plx_ok, 1000.0 / np.where(plx_ok, plx, 1.0), 1.0)
-    vr = np.where(plx_ok & rv_ok, rv, 0.0) * _PC_PER_YR_PER_KM_S
-    r0 = r * dist_pc[:, None]
-    v = (pma[:, None] * p + pmd[:, None] * q) * dist_pc[:, None] + vr[:, None] * r
+    # v_r / d in 1/yr, with 1 / d = parallax / 1000 (Note 1).
+    vr_over_d = np.where(plx_ok & rv_ok, rv * plx * 1e-3, 0.0) * _PC_PER_YR_PER_KM_S
+    r0 = r
+    v = pma[:, None] * p + pmd[:, None] * q + vr_over_d[:, None] * r
     return r0, v, flags
 
 
@@ -1610,6 +1615,7 @@ def _direction_at(r0, v, dt_yr):
     return w / np.linalg.norm(w, axis=-1, keepdims=True)
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def locate_moving(
     ra_deg,
     dec_deg,
@@ -1755,6 +1761,7 @@ def _angular_speed_bound(r0, v, t_from, t_to):
         return np.where(vv > 0.0, np.sqrt(vv) / wmin, 0.0)
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def boundary_crossings(
     ra_deg,
     dec_deg,

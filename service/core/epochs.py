@@ -73,6 +73,9 @@ _PREFIXED = re.compile(
     r"(\s+(?P<scale>[A-Za-z]+))?$",
     re.IGNORECASE,
 )
+#: A plain decimal number, ASCII digits only (Python's float() would also take "2016_0",
+#: "nan", "infinity" and other scripts' digits).
+_PLAIN_NUMBER = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$", re.ASCII)
 _ISO = re.compile(
     r"^(?P<y>[+-]?\d{4,6})-(?P<mo>\d{2})-(?P<d>\d{2})"
     r"(?:[T ](?P<h>\d{2}):(?P<mi>\d{2})(?::(?P<s>\d{2}(?:\.\d+)?))?)?"
@@ -206,6 +209,8 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
         raise EpochError("empty epoch")
     if len(text) > 64:
         raise EpochError("epoch string too long (at most 64 characters)")
+    if not text.isascii():
+        raise EpochError("an epoch is written in ASCII characters only")
     if text.lower() == "now":
         moment = now or _dt.datetime.now(_dt.UTC)
         return _calendar_utc_to_jyear(
@@ -216,10 +221,8 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
             moment.minute,
             moment.second + moment.microsecond * 1e-6,
         )
-    try:
+    if _PLAIN_NUMBER.match(text):
         return float(text), 0
-    except ValueError:
-        pass
     m = _PREFIXED.match(text)
     if m:
         kind = m.group("kind").upper()

@@ -41,6 +41,7 @@ from service.core.constants import (
     RAD_PER_DEG,
     TROPICAL_YEAR_DAYS_LIESKE1979,
 )
+from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
 # Constants of this module (unit and source beside each)
@@ -72,14 +73,14 @@ class FrameFlag(enum.IntFlag):
     """Per-star flags of a frame conversion (what was assumed or replaced)."""
 
     #: Parallax not given: star treated as infinitely distant; output parallax missing.
-    MISSING_PARALLAX = 1
+    PARALLAX_MISSING = 1
     #: Parallax zero or negative: treated as infinitely distant; output parallax as given.
-    NON_POSITIVE_PARALLAX = 2
+    PARALLAX_NOT_POSITIVE = 2
     #: Radial velocity not given: taken as zero for the geometry; output radial velocity
     #: missing.
-    MISSING_RADIAL_VELOCITY = 4
+    RADIAL_VELOCITY_MISSING = 4
     #: Proper motion not given: taken as zero.
-    MISSING_PROPER_MOTION = 8
+    PROPER_MOTION_MISSING = 8
 
 
 #: Frame names understood by :func:`make_frame`.
@@ -227,12 +228,12 @@ def _to_state(ra_deg, dec_deg, parallax_mas, pmra, pmdec, rv):
         np.asarray(rv, dtype=float),
     )
     flags = (
-        np.where(np.isnan(px), np.uint32(FrameFlag.MISSING_PARALLAX), np.uint32(0))
-        | np.where(px <= 0.0, np.uint32(FrameFlag.NON_POSITIVE_PARALLAX), np.uint32(0))
-        | np.where(np.isnan(rv), np.uint32(FrameFlag.MISSING_RADIAL_VELOCITY), np.uint32(0))
+        np.where(np.isnan(px), np.uint32(FrameFlag.PARALLAX_MISSING), np.uint32(0))
+        | np.where(px <= 0.0, np.uint32(FrameFlag.PARALLAX_NOT_POSITIVE), np.uint32(0))
+        | np.where(np.isnan(rv), np.uint32(FrameFlag.RADIAL_VELOCITY_MISSING), np.uint32(0))
         | np.where(
             np.isnan(pmra) | np.isnan(pmdec),
-            np.uint32(FrameFlag.MISSING_PROPER_MOTION),
+            np.uint32(FrameFlag.PROPER_MOTION_MISSING),
             np.uint32(0),
         )
     ).astype(np.uint32)
@@ -640,6 +641,7 @@ def _from_icrs(s: _State, frame: Frame, epoch) -> _State:
     return _fk4_b1950_to_equinox(s, frame.equinox)
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def convert(
     ra_deg,
     dec_deg,

@@ -51,6 +51,7 @@ from service.core.constants import (
     PC_KM,
     RAD_PER_DEG,
 )
+from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------
 # Constants specific to this module (unit and source beside each)
@@ -498,6 +499,7 @@ def _prepare(
     return shape, flat, n, sun
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def space_velocity(
     ra_deg,
     dec_deg,
@@ -1133,6 +1135,7 @@ def _monte_carlo(flat, index, out, draws, rng):
 # ---------------------------------------------------------------------------------------
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def observables_from_velocity(
     ra_deg,
     dec_deg,

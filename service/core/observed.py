@@ -38,6 +38,7 @@ from service.core.constants import (
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
+from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
 # Constants of this module
@@ -142,13 +143,13 @@ class ObservedFlag(enum.IntFlag):
     """Per-star, per-instant flags of an observed-place computation."""
 
     #: Parallax missing: star treated as infinitely distant (no parallax shift).
-    MISSING_PARALLAX = 1
+    PARALLAX_MISSING = 1
     #: Parallax zero or negative: treated as infinitely distant.
-    NON_POSITIVE_PARALLAX = 2
+    PARALLAX_NOT_POSITIVE = 2
     #: Radial velocity missing: taken as zero (no perspective acceleration).
-    MISSING_RADIAL_VELOCITY = 4
+    RADIAL_VELOCITY_MISSING = 4
     #: Proper motion missing: taken as zero.
-    MISSING_PROPER_MOTION = 8
+    PROPER_MOTION_MISSING = 8
     #: Target's observed altitude below the configured horizon limit (advisory).
     BELOW_HORIZON_LIMIT = 16
     #: Target closer to the Sun than the configured avoidance angle (advisory).
@@ -166,10 +167,10 @@ class ObservedFlag(enum.IntFlag):
 
 
 # Plain-int copies of the flag bits for the inner loops (enum attribute access is slow).
-_F_MISSING_PARALLAX = int(ObservedFlag.MISSING_PARALLAX)
-_F_NON_POSITIVE_PARALLAX = int(ObservedFlag.NON_POSITIVE_PARALLAX)
-_F_MISSING_RADIAL_VELOCITY = int(ObservedFlag.MISSING_RADIAL_VELOCITY)
-_F_MISSING_PROPER_MOTION = int(ObservedFlag.MISSING_PROPER_MOTION)
+_F_MISSING_PARALLAX = int(ObservedFlag.PARALLAX_MISSING)
+_F_NON_POSITIVE_PARALLAX = int(ObservedFlag.PARALLAX_NOT_POSITIVE)
+_F_MISSING_RADIAL_VELOCITY = int(ObservedFlag.RADIAL_VELOCITY_MISSING)
+_F_MISSING_PROPER_MOTION = int(ObservedFlag.PROPER_MOTION_MISSING)
 _F_BELOW_HORIZON_LIMIT = int(ObservedFlag.BELOW_HORIZON_LIMIT)
 _F_WITHIN_SUN_AVOIDANCE = int(ObservedFlag.WITHIN_SUN_AVOIDANCE)
 _F_AIRMASS_UNDEFINED = int(ObservedFlag.AIRMASS_UNDEFINED)
@@ -344,6 +345,33 @@ def earth_orientation(path: str | None = None) -> EarthOrientation:
     expires = leap_second_table().expires
     expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
     return EarthOrientation(primary, fallback, expiry_mjd)
+
+
+def no_earth_orientation() -> EarthOrientation:
+    """Placeholder tables with no usable node, for a service whose tables cannot be read.
+
+    Every instant falls outside them, so UT1-UTC and polar motion are taken as zero and each
+    answer carries EarthOrientationStatus.UNAVAILABLE (see :func:`earth_orientation_at`).
+    """
+    node = np.array([-1.0e9, -1.0e9 + 1.0])  # MJD: long before any instant asked for
+    table = EarthOrientationTable(
+        name="none (Earth-orientation tables could not be read)",
+        path="",
+        mjd=node,
+        ut1_utc_s=np.zeros(2),
+        pm_x_arcsec=np.zeros(2),
+        pm_y_arcsec=np.zeros(2),
+        status=np.full(2, int(EarthOrientationStatus.UNAVAILABLE)),
+        last_measured_mjd=float(node[0]),
+    )
+    try:
+        from service.core.offline import leap_second_table
+
+        expires = leap_second_table().expires
+        expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
+    except Exception:  # the leap-second file may be what is broken
+        expiry_mjd = float("inf")
+    return EarthOrientation(table, None, expiry_mjd)
 
 
 def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
@@ -553,7 +581,7 @@ def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
     ----------
     spec : str, Site or mapping
         A site name, a :class:`Site`, or a mapping with ``latitude_deg``, ``longitude_deg``
-        and optional ``height_m`` (or ``name`` alone).
+        and ``height_m`` (all required), or ``name`` alone.
     sites : mapping of str to mapping, optional
         The operator-configured site list: name -> {latitude_deg, longitude_deg, height_m}.
 
@@ -580,13 +608,15 @@ def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
             prefix=prefix,
         )
     if isinstance(spec, dict):
-        for key in ("latitude_deg", "longitude_deg"):
-            if key not in spec:
+        # The height is required: it sets the pressure (hence refraction) when none is
+        # given, and a silent sea-level default would overestimate refraction at altitude.
+        for key in ("latitude_deg", "longitude_deg", "height_m"):
+            if key not in spec or spec[key] is None:
                 raise ObservedInputError(f"{prefix}.{key}", "is required")
         return make_site(
             spec["latitude_deg"],
             spec["longitude_deg"],
-            spec.get("height_m", 0.0),
+            spec["height_m"],
             name=spec.get("name"),
             prefix=prefix,
         )
@@ -1681,6 +1711,7 @@ def _instant_state_cached(jd1_key, jd2_key, site_key, refr_key, eop_key) -> _Ins
     return st
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def observed_places(
     ra_deg,
     dec_deg,

@@ -50,6 +50,7 @@ from .constants import (
     RAD_PER_DEG,
 )
 from .epochs import julian_epoch_to_jd
+from .floating import overflow_to_infinity
 
 MODELS = ("standard", "light_time")
 
@@ -733,6 +734,7 @@ def propagate_light_time(
 BLOCK_SIZE = 8192
 
 
+@overflow_to_infinity  # Note 4
 def propagate(
     ra_deg,
     dec_deg,
@@ -782,6 +784,11 @@ def propagate(
        symmetric (its upper triangle is mirrored); its row and column 5 are NaN where the
        radial velocity (or its variance) is unknown, and row and column 2 where the
        parallax (or its variance) is unknown.
+    4. A positive parallax within a few orders of magnitude of the smallest double (for
+       example 1e-300 mas) overflows the implied transverse velocity and some Jacobian terms
+       to infinity (and infinity times zero to NaN in the covariance). That is allowed to
+       happen silently: the star is flagged SPACE_VELOCITY_IMPLAUSIBLE, and the affected
+       outputs are infinite or NaN (unknown).
     """
     if model not in MODELS:
         raise ValueError(f"unknown model {model!r}; choose one of {MODELS}")

@@ -130,7 +130,7 @@ def test_inline_site_pressure_zero_and_fk4_input(client, observed_example):
     r = client.post(OBS, json=fk4)
     assert r.status_code == 200
     assert r.json["input_frame"] == "FK4 B1950.0"
-    assert "missing_parallax" in r.json["stars"][0]["at_instants"][0]["flags"]
+    assert "parallax_missing" in r.json["stars"][0]["at_instants"][0]["flags"]
 
 
 def test_frames_example_fk4_to_icrs_at_other_epochs(client, frames_example):
@@ -177,9 +177,16 @@ def test_frames_galactic_output_and_equinox_forms(client):
 
 
 def test_latitude_out_of_range_names_the_field(client, observed_example):
-    r = client.post(OBS, json=dict(observed_example, site={"latitude_deg": 91.0,
-                                                           "longitude_deg": 0.0}))  # fmt: skip
+    site = {"latitude_deg": 91.0, "longitude_deg": 0.0, "height_m": 0.0}
+    r = client.post(OBS, json=dict(observed_example, site=site))
     assert_problem(r, 422, "site.latitude_deg")
+
+
+def test_missing_site_height_is_an_error_not_sea_level(client, observed_example):
+    # A silent 0 m would take sea-level pressure and overestimate refraction at altitude.
+    site = {"latitude_deg": 38.4, "longitude_deg": -7.65}
+    r = client.post(OBS, json=dict(observed_example, site=site))
+    assert_problem(r, 422, "site.height_m")
 
 
 def test_unknown_site_names_the_field(client, observed_example):

@@ -490,9 +490,9 @@ def test_unknown_parallax_and_rv_are_flagged_not_zeroed():
         [0.0] * 3,
         [20.0, 20.0, np.nan],
     )
-    assert flags[0] & Flag.PARALLAX_UNKNOWN and not flags[0] & Flag.NONPOSITIVE_PARALLAX
-    assert flags[1] & Flag.PARALLAX_UNKNOWN and flags[1] & Flag.NONPOSITIVE_PARALLAX
-    assert flags[2] & Flag.RADIAL_VELOCITY_UNKNOWN and not flags[2] & Flag.PARALLAX_UNKNOWN
+    assert flags[0] & Flag.PARALLAX_MISSING and not flags[0] & Flag.PARALLAX_NOT_POSITIVE
+    assert flags[1] & Flag.PARALLAX_MISSING and flags[1] & Flag.PARALLAX_NOT_POSITIVE
+    assert flags[2] & Flag.RADIAL_VELOCITY_MISSING and not flags[2] & Flag.PARALLAX_MISSING
     # without parallax the direction still moves by the proper motion: 100 mas/yr * 36 yr
     d0 = C._direction_at(r0[:1], v[:1], np.array([0.0]))
     d1 = C._direction_at(r0[:1], v[:1], np.array([36.0]))
@@ -512,7 +512,7 @@ def test_locate_moving_propagates_first():
     before = C.locate_moving(ra, dec, np.nan, 0.0, -1000.0, np.nan, 2000.0, 2090.0)
     after = C.locate_moving(ra, dec, np.nan, 0.0, -1000.0, np.nan, 2000.0, 2110.0)
     assert before.index[0] == segs.right[s] and after.index[0] == segs.left[s]
-    assert before.flags[0] & Flag.PARALLAX_UNKNOWN
+    assert before.flags[0] & Flag.PARALLAX_MISSING
 
 
 # ------------------------------------------------------------------------------ crossings

@@ -357,8 +357,8 @@ def test_missing_parallax_and_rv_pass_through_and_are_flagged():
     assert np.isnan(c.parallax_mas[0]) and c.parallax_mas[1] == -1.0
     assert np.isnan(c.radial_velocity_km_s[0]) and c.radial_velocity_km_s[1] == 4.0
     f = F.FrameFlag
-    assert c.flags[0] & f.MISSING_PARALLAX and c.flags[0] & f.MISSING_RADIAL_VELOCITY
-    assert c.flags[1] & f.NON_POSITIVE_PARALLAX and c.flags[1] & f.MISSING_PROPER_MOTION
+    assert c.flags[0] & f.PARALLAX_MISSING and c.flags[0] & f.RADIAL_VELOCITY_MISSING
+    assert c.flags[1] & f.PARALLAX_NOT_POSITIVE and c.flags[1] & f.PROPER_MOTION_MISSING
     assert np.all(np.isfinite(c.ra_deg)) and np.all(np.isfinite(c.pm_dec_mas_yr))
 
 

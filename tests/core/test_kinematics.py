@@ -295,11 +295,14 @@ def test_non_positive_and_missing_parallax_give_flags_and_nulls():
     r = space_velocity(45.0, 30.0, plx, 50.0, -20.0, rv)
     names = flag_names(r.flags, KinematicsFlag)
     # No errors were given: every star also says its uncertainties are null.
-    assert names[0] == ["uncertainties_missing"]
-    assert names[1] == ["parallax_not_positive"]
-    assert names[2] == ["parallax_not_positive"]
-    assert names[3] == ["parallax_missing"]
-    assert names[4] == ["radial_velocity_missing", "uncertainties_missing"]
+    assert names[0] == ("uncertainties_missing",)
+    assert names[1] == ("parallax_not_positive",)
+    assert names[2] == ("parallax_not_positive",)
+    assert names[3] == ("parallax_missing",)
+    assert names[4] == (
+        "radial_velocity_missing",
+        "uncertainties_missing",
+    )
     assert np.isfinite(r.uvw_km_s[0]).all()
     assert np.isnan(r.uvw_km_s[1:]).all()
     assert np.isnan(r.transverse_velocity_km_s[1:4]).all()
@@ -319,7 +322,7 @@ def test_explicit_distance_replaces_parallax():
     r_dist = space_velocity(45.0, 30.0, -3.0, 50.0, -20.0, 5.0, distance_pc=250.0)
     tol = 1e-12  # km/s
     assert np.abs(r_plx.uvw_km_s - r_dist.uvw_km_s).max() < tol
-    assert flag_names(r_dist.flags, KinematicsFlag) == [["distance_given", "uncertainties_missing"]]
+    assert flag_names(r_dist.flags, KinematicsFlag) == [("distance_given", "uncertainties_missing")]
 
 
 def test_low_parallax_snr_flag_and_threshold():
@@ -575,7 +578,7 @@ def test_inverse_matches_astropy_for_radial_velocity_and_proper_motion():
 def test_inverse_flags_and_radial_velocity_without_distance():
     obs = observables_from_velocity(10.0, 20.0, [[10.0, 0.0, 0.0]] * 3, [np.nan, -1.0, 5.0])
     names = flag_names(obs.flags, KinematicsFlag)
-    assert names == [["parallax_missing"], ["parallax_not_positive"], []]
+    assert names == [("parallax_missing",), ("parallax_not_positive",), ()]
     assert np.isnan(obs.pm_ra_cosdec_mas_yr[:2]).all()
     assert np.isfinite(obs.radial_velocity_km_s).all()
 

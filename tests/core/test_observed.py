@@ -396,8 +396,10 @@ def test_site_by_name_and_inline():
     sites = {"demo": {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 300.0}}
     s = O.resolve_site("demo", sites)
     assert (s.latitude_deg, s.longitude_deg, s.height_m, s.name) == (10.0, 20.0, 300.0, "demo")
-    s2 = O.resolve_site({"latitude_deg": -5, "longitude_deg": 100}, sites)
-    assert s2.height_m == 0.0
+    s2 = O.resolve_site({"latitude_deg": -5, "longitude_deg": 100, "height_m": 12.5}, sites)
+    assert (s2.latitude_deg, s2.longitude_deg, s2.height_m) == (-5, 100, 12.5)
+    with pytest.raises(O.ObservedInputError, match="height_m"):
+        O.resolve_site({"latitude_deg": -5, "longitude_deg": 100}, sites)
 
 
 @pytest.mark.parametrize(
@@ -476,9 +478,9 @@ def test_missing_values_flagged_not_zeroed_silently():
     res = O.observed_places([10.0, 20.0], [0.0, 5.0], [np.nan, -2.0], [np.nan, 1.0], 0.0,
                             [np.nan, 3.0], 2016.0, 2460600.5, 0.0, site)  # fmt: skip
     f = O.ObservedFlag
-    assert res.flags[0] & f.MISSING_PARALLAX and res.flags[0] & f.MISSING_PROPER_MOTION
-    assert res.flags[0] & f.MISSING_RADIAL_VELOCITY
-    assert res.flags[1] & f.NON_POSITIVE_PARALLAX and not res.flags[1] & f.MISSING_PARALLAX
+    assert res.flags[0] & f.PARALLAX_MISSING and res.flags[0] & f.PROPER_MOTION_MISSING
+    assert res.flags[0] & f.RADIAL_VELOCITY_MISSING
+    assert res.flags[1] & f.PARALLAX_NOT_POSITIVE and not res.flags[1] & f.PARALLAX_MISSING
 
 
 def test_star_independent_quantities_match_erfa_apco13():

@@ -25,7 +25,9 @@ def test_defaults(load):
     conf = load()
     assert conf["bind"] == "127.0.0.1:8000"
     assert conf["workers"] >= 1
-    assert conf["worker_class"] == "gthread" and conf["threads"] == 2
+    # gthread with per-request read limits (service/workers.py)
+    assert conf["worker_class"] == "service.workers.ReadDeadlineThreadWorker"
+    assert conf["threads"] == 2
     assert conf["preload_app"] is True
     assert conf["max_requests"] > 0 and 0 < conf["max_requests_jitter"] < conf["max_requests"]
     assert conf["graceful_timeout"] > 0

@@ -1,0 +1,169 @@
+"""gunicorn workers that give each client a deadline to send its request.
+
+gunicorn's workers read a request with a blocking socket and no timeout. A client that sends
+its headers or body slowly ("slow loris") holds a sync worker until the master's worker
+``timeout`` (120 s here) kills and replaces it, and holds a gthread thread for ever (the
+master only watches the worker's main loop, which keeps running); a handful of such clients
+stop the service. :class:`ReadDeadlineThreadWorker` (gthread, the deploy default) and
+:class:`ReadDeadlineSyncWorker` (sync) add two limits on reading each request:
+
+- ``SKYDRIFT_CLIENT_IDLE_TIMEOUT_S`` (default 10): longest wait for the next bytes;
+- ``SKYDRIFT_REQUEST_READ_TIMEOUT_S`` (default 60): longest time to receive the whole request,
+  headers and body, counted from the connection being accepted or, on a kept-alive
+  connection, from the moment a thread takes up its next request.
+
+A client that misses either is answered 408 (when the application was already reading the
+body; ``errors.handle_client_timeout``) or disconnected (while still sending headers), the
+event is logged on one line, and the worker is free at once. Sending
+the response is bounded by the worker ``timeout`` as before. Behind a buffering reverse proxy
+these limits are never reached.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import time
+
+from gunicorn import util
+from gunicorn.http.errors import NoMoreData
+from gunicorn.workers.gthread import TConn, ThreadWorker
+from gunicorn.workers.sync import SyncWorker
+
+
+class ClientTooSlow(NoMoreData, TimeoutError):
+    """The client did not send its request within the configured limits.
+
+    A NoMoreData for gunicorn (a client gone: no traceback in the log) and a TimeoutError
+    for the application (answered 408 if it was reading the body).
+    """
+
+    def __init__(self, message: str):
+        super().__init__(None)
+        self.message = message
+
+    def __str__(self):
+        return self.message
+
+
+def _seconds(name: str, default: float) -> float:
+    raw = os.environ.get(name, "")
+    try:
+        value = float(raw) if raw else default
+    except ValueError:
+        raise SystemExit(f"{name}={raw!r}: expected a number of seconds") from None
+    if not 0.1 <= value <= 3600:
+        raise SystemExit(f"{name}={value}: must be between 0.1 and 3600 seconds")
+    return value
+
+
+class _ReadDeadlineSocket:
+    """A client socket whose reads are bounded by an idle timeout and a total deadline."""
+
+    def __init__(self, sock, idle_s: float, total_s: float, send_s: float, log=None):
+        self._sock = sock
+        self._log = log
+        self._idle_s = idle_s
+        self._total_s = total_s
+        self._send_s = send_s
+        self._deadline = time.monotonic() + total_s
+
+    def restart_deadline(self) -> None:
+        """A new request starts (kept-alive connection): the total limit counts from now."""
+        self._deadline = time.monotonic() + self._total_s
+
+    def recv(self, size, *flags):
+        left = self._deadline - time.monotonic()
+        if left <= 0:
+            raise self._too_slow(f"request not received within {self._total_s:g} s")
+        wait = min(self._idle_s, left)
+        self._sock.settimeout(wait)
+        try:
+            return self._sock.recv(size, *flags)
+        except TimeoutError:
+            raise self._too_slow(f"no data from the client for {wait:.3g} s") from None
+
+    def _too_slow(self, message: str) -> ClientTooSlow:
+        if self._log is not None:
+            try:
+                peer = self._sock.getpeername()
+            except OSError:
+                peer = "?"
+            self._log.info("client %s too slow, disconnected: %s", peer, message)
+            self._log = None  # once per connection (the close drains with recv as well)
+        return ClientTooSlow(message)
+
+    def _sending(self):
+        self._sock.settimeout(self._send_s)
+        return self._sock
+
+    def send(self, data, *flags):
+        return self._sending().send(data, *flags)
+
+    def sendall(self, data, *flags):
+        return self._sending().sendall(data, *flags)
+
+    def sendfile(self, *args, **kwargs):
+        return self._sending().sendfile(*args, **kwargs)
+
+    def __getattr__(self, name):
+        return getattr(self._sock, name)
+
+
+class ReadDeadlineSyncWorker(SyncWorker):
+    """gunicorn's sync worker with per-client read limits (module docstring)."""
+
+    def init_process(self):
+        self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
+        self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        super().init_process()
+
+    def accept(self, listener):
+        client, addr = listener.accept()
+        client.setblocking(True)
+        util.close_on_exec(client)
+        send_s = float(self.cfg.timeout or 120)
+        wrapped = _ReadDeadlineSocket(
+            client, self.client_idle_s, self.request_read_s, send_s, self.log
+        )
+        self.handle(listener, wrapped, addr)
+
+
+class ReadDeadlineThreadWorker(ThreadWorker):
+    """gunicorn's gthread worker with per-request read limits (module docstring)."""
+
+    def init_process(self):
+        self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
+        self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        super().init_process()
+
+    def accept(self, listener):
+        # ThreadWorker.accept, with the client socket wrapped.
+        try:
+            client_sock, client_addr = listener.accept()
+            self.nr_conns += 1
+            client_sock.setblocking(True)
+            send_s = float(self.cfg.timeout or 120)
+            wrapped = _ReadDeadlineSocket(
+                client_sock, self.client_idle_s, self.request_read_s, send_s, self.log
+            )
+            conn = TConn(self.cfg, wrapped, client_addr, listener.getsockname())
+            self.enqueue_req(conn)
+        except OSError as e:
+            if e.errno not in (errno.EAGAIN, errno.ECONNABORTED, errno.EWOULDBLOCK):
+                raise
+
+    def handle(self, conn):
+        if isinstance(conn.sock, _ReadDeadlineSocket):
+            conn.sock.restart_deadline()
+        return super().handle(conn)
+
+    def set_accept_enabled(self, enabled):
+        super().set_accept_enabled(enabled)
+        if not enabled and not self.alive:
+            # Shutting down (SIGTERM): drop this process's copies of the listening sockets
+            # now, not after the in-flight requests. Once the master has closed its own (it
+            # does so first), new connections are refused at once instead of waiting in the
+            # backlog for a worker that will never accept them.
+            for listener in self.sockets:
+                listener.close()
