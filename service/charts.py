@@ -153,17 +153,22 @@ def _circular_mean_deg(ra_deg) -> float:
 def _positions(astrometry: dict, catalogue_epoch: float, epochs):
     """ICRS (ra, dec) in degrees of N stars at M epochs: arrays (N, M)."""
     a = {k: np.asarray(v, dtype=float)[:, None] for k, v in astrometry.items()}
-    result, _flags = core_propagation.propagate_standard(
-        a["ra_deg"],
-        a["dec_deg"],
-        a["parallax_mas"],
-        a["pm_ra_cosdec_mas_yr"],
-        a["pm_dec_mas_yr"],
-        a["radial_velocity_km_s"],
-        catalogue_epoch,
-        np.asarray(epochs, dtype=float)[None, :],
-    )
-    return result.ra_deg, result.dec_deg
+    # Extreme inputs (a parallax of 1e-300 mas) overflow to non-finite places; the callers
+    # leave those out of the drawing or refuse the chart.
+    with np.errstate(all="ignore"):
+        result, _flags = core_propagation.propagate_standard(
+            a["ra_deg"],
+            a["dec_deg"],
+            a["parallax_mas"],
+            a["pm_ra_cosdec_mas_yr"],
+            a["pm_dec_mas_yr"],
+            a["radial_velocity_km_s"],
+            catalogue_epoch,
+            np.asarray(epochs, dtype=float)[None, :],
+        )
+    ra, dec = result.ra_deg, result.dec_deg
+    bad = ~(np.isfinite(ra) & np.isfinite(dec))
+    return np.where(bad, np.nan, ra), np.where(bad, np.nan, dec)
 
 
 def _astrometry(ra_deg, dec_deg, parallax_mas, pm_ra, pm_dec, rv) -> dict:
@@ -247,14 +252,19 @@ def sky_tracks(
     tick_epochs = np.linspace(start_jyear, stop_jyear, ticks)
     ra, dec = _positions(astro, catalogue_epoch_jyear, epochs)
     tra, tdec = _positions(astro, catalogue_epoch_jyear, tick_epochs)
+    if not np.isfinite(ra).any(axis=1).all():
+        raise ValueError(
+            "the place of a star cannot be computed over this span: check its parallax and "
+            "proper motion"
+        )
     tracks = [
         StarTrack(str(labels[k]), epochs, ra[k], dec[k], tick_epochs, tra[k], tdec[k])
         for k in range(n)
     ]
-    centre = _circular_mean_deg(ra.ravel())
+    centre = _circular_mean_deg(ra[np.isfinite(ra)])
     x = centre + _wrap180(ra - centre)
-    ra_lo, ra_hi = float(x.min()), float(x.max())
-    dec_lo, dec_hi = float(dec.min()), float(dec.max())
+    ra_lo, ra_hi = float(np.nanmin(x)), float(np.nanmax(x))
+    dec_lo, dec_hi = float(np.nanmin(dec)), float(np.nanmax(dec))
     cosd = max(0.2, math.cos(math.radians(0.5 * (dec_lo + dec_hi))))
     half = 0.5 * max((ra_hi - ra_lo) * cosd, dec_hi - dec_lo)
     pad = max(VIEW_MARGIN_MIN_DEG, VIEW_MARGIN_FRACTION * 2 * half)
@@ -275,7 +285,10 @@ def sky_tracks(
     found_here = cons.locate(gx % 360.0, gd, with_margin=True)
     probe = found_here.index
     present = np.unique(probe)
-    label_score = _label_scores(gx, gd, found_here.margin_arcsec / 3600.0, x, dec, view)
+    finite = np.isfinite(x)
+    label_score = _label_scores(
+        gx, gd, found_here.margin_arcsec / 3600.0, x[finite], dec[finite], view
+    )
     outlines = []
     labels_out = []
     for x_ in present:
@@ -391,12 +404,15 @@ def _side_offsets(ax, x, y, tx, ty, view, cosd) -> list:
     span = max((view[1] - view[0]) * cosd, view[3] - view[2]) or 1.0
     out = []
     for xx, yy in zip(tx, ty, strict=True):
-        k = int(np.argmin(np.hypot((x - xx) * cosd, y - yy)))
+        if not (np.isfinite(xx) and np.isfinite(yy)):
+            out.append((6.0, 4.0))
+            continue
+        k = int(np.nanargmin(np.hypot((x - xx) * cosd, y - yy)))
         k0, k1 = max(k - 1, 0), min(k + 1, x.size - 1)
         dx = -(x[k1] - x[k0]) * cosd  # screen x grows to the right, RA to the left
         dy = y[k1] - y[k0]
         norm = math.hypot(dx, dy)
-        if norm < 1e-12 * span:
+        if not math.isfinite(norm) or norm < 1e-12 * span:
             out.append((6.0, 4.0))
             continue
         out.append((8.0 * dy / norm, -8.0 * dx / norm))
@@ -482,6 +498,8 @@ def render_tracks(
         last = None
         for e, xx, yy, off in zip(t.tick_epochs_jyear, tx, t.tick_dec_deg, offsets, strict=True):
             here = np.array([float(xx) * cosd, float(yy)])
+            if not np.isfinite(here).all():
+                continue
             if last is not None and np.hypot(*(here - last)) < TICK_LABEL_SPACING_FRACTION * span:
                 continue  # too close to the last labelled epoch to be read
             last = here
@@ -496,9 +514,16 @@ def render_tracks(
                 va="center",
                 zorder=5,
             )
+        first = (
+            int(np.flatnonzero(np.isfinite(tx) & np.isfinite(t.tick_dec_deg))[0])
+            if (np.isfinite(tx) & np.isfinite(t.tick_dec_deg)).any()
+            else None
+        )
+        if first is None:
+            continue
         ax.annotate(
             t.label,
-            (float(tx[0]), float(t.tick_dec_deg[0])),
+            (float(tx[first]), float(t.tick_dec_deg[first])),
             xytext=(-6, -12),
             textcoords="offset points",
             color=colour,
@@ -508,6 +533,8 @@ def render_tracks(
             zorder=5,
         )
     for j, c in enumerate(chart.crossings):
+        if not (math.isfinite(c.ra_deg) and math.isfinite(c.dec_deg)):
+            continue
         t = chart.tracks[c.star]
         x = centre + np.unwrap(_wrap180(t.ra_deg - centre), period=360.0)
         (off,) = _side_offsets(ax, x, t.dec_deg, [x_of(c.ra_deg)], [c.dec_deg], chart.view, cosd)
@@ -628,7 +655,18 @@ def _hammer_x(ra_deg):
     return -np.radians(_wrap180(ra_deg))
 
 
-def render_field(
+def render_field(chart: FieldChart, **kwargs) -> bytes:
+    """Draw a :class:`FieldChart`: two all-sky panels side by side with motion arrows.
+
+    Keywords: ``title``, ``image_format`` ("svg" or "png"), ``label_fastest`` (how many of
+    the fastest stars are labelled), ``size_in``. Stars whose place could not be computed
+    are left out.
+    """
+    with np.errstate(invalid="ignore"):
+        return _render_field(chart, **kwargs)
+
+
+def _render_field(
     chart: FieldChart,
     *,
     title: str | None = None,
@@ -667,6 +705,8 @@ def render_field(
         xe = _hammer_x(chart.arrow_ra_deg[k])
         ye = np.radians(chart.arrow_dec_deg[k])
         for i in range(x.size):
+            if not np.isfinite([x[i], y[i], xe[i], ye[i]]).all():
+                continue  # a place that could not be computed is not drawn
             if abs(xe[i] - x[i]) > math.pi:  # the arrow would cross the chart's edge
                 continue
             if np.hypot((xe[i] - x[i]) * math.cos(y[i]), ye[i] - y[i]) < MIN_ARROW_RAD:
@@ -702,6 +742,8 @@ def render_field(
             )
             faint.set_gid(f"stars-no-parallax-{k}")
         for i in sorted(fastest):
+            if not np.isfinite([x[i], y[i], xe[i], ye[i]]).all():
+                continue
             # The label sits behind the star, opposite its arrow.
             dx, dy = xe[i] - x[i], ye[i] - y[i]
             norm = math.hypot(dx, dy) or 1.0

@@ -176,15 +176,18 @@ def track(args):
         abort(422, errors=[{"field": "stop", "message": "must be later than start"}])
     if args["stop"] - args["start"] > 200_000.0:
         abort(422, errors=[{"field": "stop", "message": "at most 200,000 years after start"}])
-    chart = charts.sky_tracks(
-        *_columns(table),
-        catalogue_epoch_jyear=args["catalogue_epoch"],
-        start_jyear=args["start"],
-        stop_jyear=args["stop"],
-        ticks=args["ticks"],
-        labels=_labels(table),
-        boundaries=args["boundaries"],
-    )
+    try:
+        chart = charts.sky_tracks(
+            *_columns(table),
+            catalogue_epoch_jyear=args["catalogue_epoch"],
+            start_jyear=args["start"],
+            stop_jyear=args["stop"],
+            ticks=args["ticks"],
+            labels=_labels(table),
+            boundaries=args["boundaries"],
+        )
+    except ValueError as exc:
+        abort(422, errors=[{"field": "stars", "message": str(exc)}])
     image_format = _image_format(args)
     return _image(
         charts.render_tracks(chart, title=args["title"], image_format=image_format),

@@ -37,7 +37,8 @@ class BodyParser(FlaskParser):
 
     Unknown query parameters are refused (422 naming them), as unknown body fields are: a
     misspelt option must not silently fall back to its default. A ``text/csv`` body on a
-    star-table endpoint is read by :mod:`.csvio` instead.
+    star-table endpoint is read by :mod:`.csvio` instead (its options come from the query
+    string, checked by the endpoint's schema like body fields).
     """
 
     DEFAULT_UNKNOWN_BY_LOCATION = {

@@ -283,6 +283,11 @@ def test_a_million_nulls_as_the_whole_body(client, path):
 def test_wrong_content_types(client, path, content_type):
     example = DOC["paths"][path]["post"]["requestBody"]["content"]["application/json"]
     data = orjson.dumps(example["example"])
+    if content_type == "text/csv":
+        # Star-table endpoints read CSV (tests/api/test_csv_api.py): a JSON body sent as
+        # CSV cannot be read as CSV (its quotes), 400 as for a body that is not JSON.
+        assert_problem(post(client, data, path, content_type=content_type), 400)
+        return
     assert_problem(post(client, data, path, content_type=content_type), 415)
 
 
