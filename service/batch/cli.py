@@ -27,7 +27,12 @@ def add_subcommands(sub) -> None:
         _common_options(p)
         p.set_defaults(func=_run, batch_job_spec=job)
     fields = jobs.add_parser("fields", help="list a job's input fields and output columns")
-    fields.add_argument("job", choices=sorted(JOBS))
+    fields.add_argument(
+        "job",
+        choices=sorted(JOBS),
+        metavar="job",
+        help="the job whose fields to list: " + ", ".join(sorted(JOBS)),
+    )
     fields.set_defaults(func=_fields)
 
 
