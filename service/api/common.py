@@ -183,6 +183,23 @@ EPOCH_DESCRIPTION = (
 )
 
 
+def number_field(description, *, required=False, lo=None, hi=None, **range_kw):
+    """A float field of a record schema: described, bounded, null allowed unless required.
+
+    ``lo``/``hi`` become a ``validate.Range`` (``range_kw`` passes min_inclusive and
+    max_inclusive), which ``StarTableField`` also reads to validate whole columns with numpy.
+    """
+    validators = []
+    if lo is not None or hi is not None:
+        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
+    return ma.fields.Float(
+        required=required,
+        allow_none=not required,
+        validate=validators,
+        metadata={"description": description},
+    )
+
+
 class EpochField(ma.fields.Field):
     """An epoch in any accepted form; deserialises to a Julian epoch (TDB), years."""
 

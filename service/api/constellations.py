@@ -12,7 +12,7 @@ from ..core import constellations as core
 from ..core import frames as core_frames
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .tables import StarTableField
@@ -69,16 +69,7 @@ UNITS = {
 }
 
 
-def _num(description, *, required=False, lo=None, hi=None, **range_kw):
-    validators = []
-    if lo is not None or hi is not None:
-        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
-    return ma.fields.Float(
-        required=required,
-        allow_none=not required,
-        validate=validators,
-        metadata={"description": description},
-    )
+_num = number_field
 
 
 def _star_fields(motion_required: bool) -> dict:

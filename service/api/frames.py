@@ -12,7 +12,7 @@ from ..core import frames as core
 from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
 from .examples import load_example
 from .tables import StarTableField
 
@@ -44,16 +44,7 @@ UNITS = {
 }
 
 
-def _num(description, *, required=False, lo=None, hi=None, **kw):
-    validators = (
-        [ma.validate.Range(min=lo, max=hi, **kw)] if lo is not None or hi is not None else []
-    )
-    return ma.fields.Float(
-        required=required,
-        allow_none=not required,
-        validate=validators,
-        metadata={"description": description},
-    )
+_num = number_field
 
 
 #: One star in the input frame.

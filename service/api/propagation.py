@@ -15,7 +15,7 @@ from flask_smorest import abort
 from ..core import propagation as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
 from .examples import load_example
 from .observability import count_stars
 from .tables import MAX_ABS_MAS, StarTableField
@@ -71,16 +71,7 @@ UNITS = {
 MAX_RV_ERROR_KM_S = C_KM_S
 
 
-def _num(description, *, required=False, lo=None, hi=None, **range_kw):
-    validators = []
-    if lo is not None or hi is not None:
-        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
-    return ma.fields.Float(
-        required=required,
-        allow_none=not required,
-        validate=validators,
-        metadata={"description": description},
-    )
+_num = number_field
 
 
 _STAR_FIELDS = {

@@ -26,6 +26,7 @@ from .common import (
     StrictBoolean,
     StrictFloat,
     epochs_out,
+    number_field,
 )
 from .examples import load_example
 from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, StarTableField
@@ -64,16 +65,7 @@ _USED_CORRELATIONS = (
 )
 
 
-def _num(description, *, required=False, lo=None, hi=None, **range_kw):
-    validators = []
-    if lo is not None or hi is not None:
-        validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
-    return ma.fields.Float(
-        required=required,
-        allow_none=not required,
-        validate=validators,
-        metadata={"description": description},
-    )
+_num = number_field
 
 
 _POSITION_ERROR_NOTE = (
