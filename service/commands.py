@@ -135,27 +135,37 @@ def _run(func):
     return wrapper
 
 
-@_run
-def cmd_propagate(args) -> int:
-    cat = read_catalogue(args.catalogue)
-    bar, update = _progress(cat.rows, args, "propagating")
+def _table_command(args, cat, label: str, call) -> str:
+    """Send a catalogue through one CSV endpoint with a progress bar; the answer as CSV.
+
+    ``call(client, body, update)`` makes the request for one CSV body; batching, the
+    progress bar and --drop-unknown-columns (``_tolerant``) are the same for every command.
+    """
+    bar, update = _progress(cat.rows, args, label)
     with make_client(args) as client:
         try:
-            text = _tolerant(
-                args,
-                cat.csv_text,
-                lambda body: client.propagate_csv(
-                    body,
-                    catalogue_epoch=_epoch_of(args, cat),
-                    target_epochs=args.epoch or None,
-                    target_range=tuple(args.range) if args.range else None,
-                    model=args.model,
-                    progress=update,
-                ),
-            )
+            return _tolerant(args, cat.csv_text, lambda body: call(client, body, update))
         finally:
             if bar is not None:
                 bar.close()
+
+
+@_run
+def cmd_propagate(args) -> int:
+    cat = read_catalogue(args.catalogue)
+    text = _table_command(
+        args,
+        cat,
+        "propagating",
+        lambda client, body, update: client.propagate_csv(
+            body,
+            catalogue_epoch=_epoch_of(args, cat),
+            target_epochs=args.epoch or None,
+            target_range=tuple(args.range) if args.range else None,
+            model=args.model,
+            progress=update,
+        ),
+    )
     _write_text(text, args.output)
     return 0
 
@@ -163,26 +173,21 @@ def cmd_propagate(args) -> int:
 @_run
 def cmd_velocities(args) -> int:
     cat = read_catalogue(args.catalogue)
-    bar, update = _progress(cat.rows, args, "velocities")
-    with make_client(args) as client:
-        try:
-            text = _tolerant(
-                args,
-                cat.csv_text,
-                lambda body: client.velocity_csv(
-                    body,
-                    catalogue_epoch=_epoch_of(args, cat),
-                    relative_to_lsr=args.lsr or args.solar_motion is not None,
-                    solar_motion_km_s=tuple(args.solar_motion) if args.solar_motion else None,
-                    uncertainty_method=args.uncertainties,
-                    monte_carlo_draws=args.draws,
-                    seed=args.seed,
-                    progress=update,
-                ),
-            )
-        finally:
-            if bar is not None:
-                bar.close()
+    text = _table_command(
+        args,
+        cat,
+        "velocities",
+        lambda client, body, update: client.velocity_csv(
+            body,
+            catalogue_epoch=_epoch_of(args, cat),
+            relative_to_lsr=args.lsr or args.solar_motion is not None,
+            solar_motion_km_s=tuple(args.solar_motion) if args.solar_motion else None,
+            uncertainty_method=args.uncertainties,
+            monte_carlo_draws=args.draws,
+            seed=args.seed,
+            progress=update,
+        ),
+    )
     _write_text(text, args.output)
     return 0
 
@@ -190,25 +195,20 @@ def cmd_velocities(args) -> int:
 @_run
 def cmd_constellations(args) -> int:
     cat = read_catalogue(args.catalogue)
-    bar, update = _progress(cat.rows, args, "constellations")
-    with make_client(args) as client:
-        try:
-            text = _tolerant(
-                args,
-                cat.csv_text,
-                lambda body: client.constellations_csv(
-                    body,
-                    catalogue_epoch=_epoch_of(args, cat),
-                    epoch=args.epoch,
-                    margins=args.margins,
-                    near_boundary_arcsec=args.near_boundary_arcsec,
-                    reduction=args.reduction,
-                    progress=update,
-                ),
-            )
-        finally:
-            if bar is not None:
-                bar.close()
+    text = _table_command(
+        args,
+        cat,
+        "constellations",
+        lambda client, body, update: client.constellations_csv(
+            body,
+            catalogue_epoch=_epoch_of(args, cat),
+            epoch=args.epoch,
+            margins=args.margins,
+            near_boundary_arcsec=args.near_boundary_arcsec,
+            reduction=args.reduction,
+            progress=update,
+        ),
+    )
     _write_text(text, args.output)
     return 0
 
@@ -216,25 +216,20 @@ def cmd_constellations(args) -> int:
 @_run
 def cmd_crossings(args) -> int:
     cat = read_catalogue(args.catalogue)
-    bar, update = _progress(cat.rows, args, "crossings")
-    with make_client(args) as client:
-        try:
-            text = _tolerant(
-                args,
-                cat.csv_text,
-                lambda body: client.constellation_crossings_csv(
-                    body,
-                    catalogue_epoch=_epoch_of(args, cat),
-                    start=args.start,
-                    end=args.end,
-                    max_step_yr=args.max_step_yr,
-                    reduction=args.reduction,
-                    progress=update,
-                ),
-            )
-        finally:
-            if bar is not None:
-                bar.close()
+    text = _table_command(
+        args,
+        cat,
+        "crossings",
+        lambda client, body, update: client.constellation_crossings_csv(
+            body,
+            catalogue_epoch=_epoch_of(args, cat),
+            start=args.start,
+            end=args.end,
+            max_step_yr=args.max_step_yr,
+            reduction=args.reduction,
+            progress=update,
+        ),
+    )
     _write_text(text, args.output)
     return 0
 
@@ -283,25 +278,20 @@ def cmd_observed(args) -> int:
         site = {"latitude_deg": lat, "longitude_deg": lon, "height_m": height}
     if site is None:
         raise ValueError("give --site NAME or --position LAT LON HEIGHT")
-    bar, update = _progress(cat.rows, args, "observed places")
-    with make_client(args) as client:
-        try:
-            text = _tolerant(
-                args,
-                cat.csv_text,
-                lambda body: client.observed_csv(
-                    body,
-                    catalogue_epoch=_epoch_of(args, cat),
-                    instants=args.at,
-                    site=site,
-                    horizon_limit_deg=args.horizon_limit_deg,
-                    sun_avoidance_deg=args.sun_avoidance_deg,
-                    progress=update,
-                ),
-            )
-        finally:
-            if bar is not None:
-                bar.close()
+    text = _table_command(
+        args,
+        cat,
+        "observed places",
+        lambda client, body, update: client.observed_csv(
+            body,
+            catalogue_epoch=_epoch_of(args, cat),
+            instants=args.at,
+            site=site,
+            horizon_limit_deg=args.horizon_limit_deg,
+            sun_avoidance_deg=args.sun_avoidance_deg,
+            progress=update,
+        ),
+    )
     if not args.quiet:
         print(
             "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
