@@ -136,7 +136,6 @@ class Settings:
     request_timeout_s: float = 0.0
     test_fail_first_n: int = 0
     test_fail_retry_after_s: int = 1
-    extra: dict = field(default_factory=dict)
 
     @classmethod
     def from_env(cls, env=None) -> Settings:
@@ -169,11 +168,7 @@ class Settings:
 
     def as_public_dict(self) -> dict:
         """The settings as shown by the readiness endpoint (no secrets are settings here)."""
-        out = {
-            f.name: getattr(self, f.name)
-            for f in fields(self)
-            if f.name not in ("extra", "auth_tokens")
-        }
+        out = {f.name: getattr(self, f.name) for f in fields(self) if f.name != "auth_tokens"}
         out["auth_enabled"] = bool(self.auth_tokens)
         return out
 
