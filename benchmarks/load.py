@@ -16,6 +16,13 @@ hook) for a long time, sampling every worker's resident memory, and reports erro
 latencies and memory growth after warm-up. Worker recycling (max_requests) is turned off
 for the soak so that growth, if any, shows.
 
+Pools (``--pools``): ``split`` (default) serves the mix from two gunicorn masters with the
+project's configuration, as the README recommends where pointing latency matters: an
+interactive pool for pointing and lookups (one worker per CPU, at most 1,000 stars per
+request) and a bulk pool for batches (one worker, ``SKYDRIFT_WORKER_NICE=10``, so the kernel
+runs pointing requests first when both want the CPU). ``one`` serves everything from a
+single pool (the default deployment).
+
 Run (needs `wrk`, from Debian's packages)::
 
     .venv/bin/python -m benchmarks.load                      # capacity, 20 s
@@ -47,6 +54,12 @@ EXAMPLES = ROOT / "shared" / "demo" / "examples"
 
 #: Connections per request type in the mix (pointing requests dominate, as at a telescope).
 CONNECTIONS = {"pointing": 4, "lookup": 2, "batch": 1}
+
+#: Pools for ``--pools split``: name -> (request types served, environment of its master).
+SPLIT_POOLS = {
+    "interactive": (("pointing", "lookup"), {"SKYDRIFT_MAX_STARS": 1000}),
+    "bulk": (("batch",), {"SKYDRIFT_WORKERS": 1, "SKYDRIFT_WORKER_NICE": 10}),
+}
 BATCH_STARS = 10_000
 
 
@@ -173,8 +186,10 @@ end
 """
 
 
-def run_mix(url: str, seconds: float, pause_ms: dict[str, float] | None = None) -> dict:
-    """Run the three wrk processes at once for ``seconds``; return their results by type."""
+def run_mix(urls: dict[str, str], seconds: float, pause_ms: dict[str, float] | None = None) -> dict:
+    """Run the three wrk processes at once for ``seconds``; return their results by type.
+
+    ``urls``: the base URL serving each request type."""
     work = tempfile.mkdtemp(prefix="skydrift-load-")
     procs = {}
     try:
@@ -194,7 +209,7 @@ def run_mix(url: str, seconds: float, pause_ms: dict[str, float] | None = None) 
                     "60s",
                     "-s",
                     str(script),
-                    url + path,
+                    urls[kind] + path,
                 ],
                 stdout=subprocess.PIPE,
                 stderr=subprocess.STDOUT,
@@ -235,8 +250,9 @@ def print_mix(title: str, results: dict) -> None:
 # ------------------------------------------------------------------------------ modes
 
 
-def warm_up(url: str) -> None:
-    for path, body in bodies().values():
+def warm_up(urls: dict[str, str]) -> None:
+    for kind, (path, body) in bodies().items():
+        url = urls[kind]
         for _ in range(3):
             r = requests.post(
                 url + path, data=body, headers={"Content-Type": "application/json"}, timeout=120
@@ -244,7 +260,15 @@ def warm_up(url: str) -> None:
             r.raise_for_status()
 
 
-def soak(url: str, master_pid: int, seconds: float, fraction: float, cap: dict) -> dict:
+def all_worker_rss_mb(master_pids: list[int]) -> dict[int, float]:
+    """:func:`worker_rss_mb` of the workers of every master."""
+    out = {}
+    for pid in master_pids:
+        out.update(worker_rss_mb(pid))
+    return out
+
+
+def soak(urls: dict, master_pids: list, seconds: float, fraction: float, cap: dict) -> dict:
     """Run the mix at ``fraction`` of the measured capacity, sampling worker memory."""
     target = {kind: fraction * r["rps"] for kind, r in cap.items()}
     # Each connection sends a request, waits for the answer, then pauses: one request every
@@ -256,7 +280,7 @@ def soak(url: str, master_pid: int, seconds: float, fraction: float, cap: dict) 
         for kind in cap
     }
     for _ in range(2):
-        trial = run_mix(url, 10.0, pause_ms)
+        trial = run_mix(urls, 10.0, pause_ms)
         for kind, r in trial.items():
             interval_now = 1e3 * CONNECTIONS[kind] / max(r["rps"], 1e-3)
             interval_want = 1e3 * CONNECTIONS[kind] / target[kind]
@@ -269,9 +293,9 @@ def soak(url: str, master_pid: int, seconds: float, fraction: float, cap: dict) 
             sys.executable,
             "-c",
             "import json, sys; from benchmarks.load import run_mix; "
-            "print('@@MIX ' + json.dumps(run_mix(sys.argv[1], float(sys.argv[2]), "
+            "print('@@MIX ' + json.dumps(run_mix(json.loads(sys.argv[1]), float(sys.argv[2]), "
             "json.loads(sys.argv[3]))))",
-            url,
+            json.dumps(urls),
             str(seconds),
             json.dumps(pause_ms),
         ],
@@ -280,7 +304,7 @@ def soak(url: str, master_pid: int, seconds: float, fraction: float, cap: dict) 
         text=True,
     )
     while work.poll() is None:
-        samples.append((time.monotonic() - t0, worker_rss_mb(master_pid)))
+        samples.append((time.monotonic() - t0, all_worker_rss_mb(master_pids)))
         time.sleep(5.0)
     out = work.stdout.read()
     work.stdout.close()
@@ -314,25 +338,50 @@ def main(argv=None) -> int:
     parser.add_argument("--soak", type=float, default=0.0, help="soak length, seconds")
     parser.add_argument("--fraction", type=float, default=0.7, help="soak load / capacity")
     parser.add_argument("--json", help="write the figures to this file as JSON")
+    parser.add_argument(
+        "--pools",
+        choices=("split", "one"),
+        default="split",
+        help="split: pointing and lookups on an interactive pool, batches on a bulk pool at "
+        "lower CPU priority (default); one: everything on one pool",
+    )
     args = parser.parse_args(argv)
     if not shutil.which("wrk"):
         print("benchmarks.load: wrk not found (apt-get install wrk)")
         return 1
-    env = {"SKYDRIFT_MAX_REQUESTS": 0} if args.soak else {}
-    url, proc = start_server(**env)
-    report: dict = {}
+    base_env = {"SKYDRIFT_MAX_REQUESTS": 0} if args.soak else {}
+    pools = SPLIT_POOLS if args.pools == "split" else {"all": (tuple(CONNECTIONS), {})}
+    servers = {}
+    urls = {}
+    report: dict = {"pools": {}}
     try:
-        warm_up(url)
-        report["workers"] = len(worker_rss_mb(proc.pid))
-        cap = run_mix(url, args.seconds)
+        for name, (kinds, env) in pools.items():
+            url, proc = start_server(**base_env, **env)
+            servers[name] = proc
+            urls.update(dict.fromkeys(kinds, url))
+        warm_up(urls)
+        for name, (kinds, env) in pools.items():
+            report["pools"][name] = {
+                "serves": list(kinds),
+                "environment": env,
+                "workers": len(worker_rss_mb(servers[name].pid)),
+            }
+        pool_text = "; ".join(
+            f"{name}: {p['workers']} worker(s) for {', '.join(p['serves'])}"
+            + (f" ({', '.join(f'{k}={v}' for k, v in p['environment'].items())})"
+               if p["environment"] else "")
+            for name, p in report["pools"].items()
+        )  # fmt: skip
+        cap = run_mix(urls, args.seconds)
         report["capacity"] = cap
         print_mix(
-            f"Capacity: closed-loop mix for {args.seconds:g} s, {report['workers']} workers "
-            f"(deploy/gunicorn.conf.py), connections {CONNECTIONS}",
+            f"Capacity: closed-loop mix for {args.seconds:g} s, deploy/gunicorn.conf.py, "
+            f"connections {CONNECTIONS}; pools: {pool_text}",
             cap,
         )
         if args.soak:
-            s = soak(url, proc.pid, args.soak, args.fraction, cap)
+            pids = [p.pid for p in servers.values()]
+            s = soak(urls, pids, args.soak, args.fraction, cap)
             report["soak"] = s
             print_mix(
                 f"Soak: {args.soak:g} s at {args.fraction:.0%} of capacity "
@@ -354,7 +403,8 @@ def main(argv=None) -> int:
                 + (str(s["workers_replaced"]) if s["workers_replaced"] else "none")
             )
     finally:
-        stop_server(proc)
+        for proc in servers.values():
+            stop_server(proc)
     if args.json:
         pathlib.Path(args.json).write_text(json.dumps(report, indent=1, default=str))
     return 0

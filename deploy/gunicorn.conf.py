@@ -72,6 +72,15 @@ keepalive = int(os.environ.get("SKYDRIFT_KEEPALIVE_S", 5))
 max_requests = int(os.environ.get("SKYDRIFT_MAX_REQUESTS", 20000))
 max_requests_jitter = int(os.environ.get("SKYDRIFT_MAX_REQUESTS_JITTER", 2000))
 
+#: CPU priority of the workers: SKYDRIFT_WORKER_NICE, 0 (default, unchanged) to 19 (lowest).
+#: For a pool that serves bulk work on the same host as a pool serving single-star pointing
+#: requests: with the bulk workers at a higher nice value the kernel runs pointing requests
+#: first when both want the CPU (README, "Separate pools for pointing and bulk work").
+#: Raising the value needs no privilege; a value outside 0..19 stops the start.
+worker_nice = int(os.environ.get("SKYDRIFT_WORKER_NICE") or 0)
+if not 0 <= worker_nice <= 19:
+    raise ValueError(f"SKYDRIFT_WORKER_NICE must be between 0 and 19, not {worker_nice}")
+
 #: Load the application once in the master before forking, so the tables (leap seconds,
 #: Earth orientation, constellation boundaries) are read once and shared copy-on-write.
 preload_app = True
@@ -128,6 +137,13 @@ def on_starting(server):
     for name in os.listdir(folder):
         if name.endswith(".db"):
             os.unlink(os.path.join(folder, name))
+
+
+def post_fork(server, worker):
+    """In each new worker: lower its CPU priority when SKYDRIFT_WORKER_NICE asks for it."""
+    if worker_nice:
+        current = os.getpriority(os.PRIO_PROCESS, 0)
+        os.setpriority(os.PRIO_PROCESS, 0, max(current, worker_nice))  # never raises priority
 
 
 def child_exit(server, worker):

@@ -72,3 +72,28 @@ def test_on_starting_clears_old_metrics(load, tmp_path):
     (tmp_path / "counter_1.db").write_bytes(b"")
     conf["on_starting"](None)
     assert not list(tmp_path.glob("*.db"))
+
+
+def test_worker_nice_setting(load):
+    assert load()["worker_nice"] == 0
+    assert load(SKYDRIFT_WORKER_NICE="10")["worker_nice"] == 10
+    with pytest.raises(ValueError, match="SKYDRIFT_WORKER_NICE"):
+        load(SKYDRIFT_WORKER_NICE="25")
+
+
+def test_post_fork_lowers_the_worker_priority(load):
+    import os
+    import subprocess
+    import sys
+
+    # In a child process (the priority of this one must not change): the hook as gunicorn
+    # calls it after forking a worker, then the kernel's view of the child's niceness.
+    code = (
+        "import os, runpy; conf = runpy.run_path(os.environ['CONF']); "
+        "conf['post_fork'](None, None); print(os.getpriority(os.PRIO_PROCESS, 0))"
+    )
+    env = dict(os.environ, CONF=CONF, SKYDRIFT_WORKER_NICE="7")
+    out = subprocess.run(
+        [sys.executable, "-c", code], env=env, capture_output=True, text=True, check=True
+    )
+    assert int(out.stdout.strip()) == max(7, os.getpriority(os.PRIO_PROCESS, 0))
