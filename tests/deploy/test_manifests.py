@@ -147,3 +147,13 @@ def test_compose_runs_like_the_cluster():
     assert svc["cap_drop"] == ["ALL"]
     assert "no-new-privileges:true" in svc["security_opt"]
     assert not svc["user"].startswith("0")
+
+
+def test_compose_bulk_pool_is_optional_and_as_hardened():
+    services = yaml.safe_load((ROOT / "deploy" / "compose.yaml").read_text())["services"]
+    main, bulk = services["skydrift"], services["skydrift-bulk"]
+    assert "profiles" not in main and bulk["profiles"] == ["bulk-pool"]
+    assert bulk["image"] == main["image"]
+    assert bulk["environment"]["SKYDRIFT_WORKER_NICE"] == "10"
+    for key in ("read_only", "cap_drop", "security_opt", "user", "stop_grace_period"):
+        assert bulk[key] == main[key], key
