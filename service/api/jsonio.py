@@ -6,6 +6,7 @@ import json
 
 import marshmallow as ma
 import orjson
+from flask import g, has_request_context
 from flask.json.provider import JSONProvider
 from webargs import core as webargs_core
 from webargs.flaskparser import FlaskParser
@@ -28,7 +29,13 @@ class OrjsonProvider(JSONProvider):
         return orjson.loads(s)
 
     def response(self, *args, **kwargs):
+        """JSON response; or, when the request set ``g.skydrift_answer_writer`` (a client of
+        a star-table endpoint asking for another answer format, see common.Blueprint), the
+        response that writer makes of the answer object, without JSON in between."""
         obj = self._prepare_response_obj(args, kwargs)
+        writer = g.get("skydrift_answer_writer") if has_request_context() else None
+        if writer is not None and isinstance(obj, dict):
+            return writer(obj)
         return self._app.response_class(dumps(obj), mimetype="application/json")
 
 
@@ -38,7 +45,8 @@ class BodyParser(FlaskParser):
     Unknown query parameters are refused (422 naming them), as unknown body fields are: a
     misspelt option must not silently fall back to its default. A ``text/csv`` body on a
     star-table endpoint is read by :mod:`.csvio` instead (its options come from the query
-    string, checked by the endpoint's schema like body fields).
+    string, checked by the endpoint's schema like body fields); so is an Arrow IPC stream
+    body (``application/vnd.apache.arrow.stream``), by :mod:`.arrowio`.
     """
 
     DEFAULT_UNKNOWN_BY_LOCATION = {
@@ -48,11 +56,16 @@ class BodyParser(FlaskParser):
     }
 
     def load_json(self, req, schema):
-        """JSON body, or for a ``text/csv`` body the star table and query options."""
+        """JSON body, or for a ``text/csv`` or Arrow stream body the star table and query
+        options."""
         if req.mimetype == "text/csv":
             from .csvio import load_csv_request
 
             return load_csv_request(req, schema)
+        if req.mimetype == "application/vnd.apache.arrow.stream":
+            from .arrowio import load_arrow_request
+
+            return load_arrow_request(req, schema)
         return super().load_json(req, schema)
 
     def _raw_load_json(self, req):
