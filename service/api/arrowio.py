@@ -290,7 +290,7 @@ def _python_array(values: list) -> pa.Array:
         if all(isinstance(x, str) for v in values if v for x in v):
             return _names_column(values)
     try:
-        return pa.array(values)
+        return pa.array(values, from_pandas=True)  # NaN (also inside lists) -> null
     except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
         return pa.array([None if v is None else csvio._cell(v) for v in values], pa.string())
 
