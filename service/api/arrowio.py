@@ -376,7 +376,8 @@ def _columns_arrow(body: dict) -> dict:
         elif isinstance(value, np.ndarray):
             out[key] = _take(_numpy_array(value), star_rows)
         else:
-            arr = _python_array(value)
+            names = _names_column(value) if key == "flags" else None
+            arr = names if names is not None else _python_array(value)
             if isinstance(arr, pa.DictionaryArray):
                 names_last[key] = _take(arr, star_rows)
             else:

@@ -38,6 +38,8 @@ import orjson
 from flask import request
 from flask_smorest import abort
 
+from .jsonio import read_body
+
 CSV_MIMETYPE = "text/csv"
 
 #: Columns that lead every CSV answer when present, in this order.
@@ -213,7 +215,7 @@ def load_table_request(req, schema, parse_body) -> dict:
     if name is None:  # pragma: no cover - the blueprint accepts tables only for table endpoints
         abort(415, message=f"{req.mimetype} is not accepted here")
     data = _option_values(schema, req.args, name)
-    data[name] = parse_body(req.get_data(cache=True))
+    data[name] = parse_body(read_body(req))
     return data
 
 
