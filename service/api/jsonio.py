@@ -97,7 +97,7 @@ class BodyParser(FlaskParser):
     def _raw_load_json(self, req):
         if not webargs_core.is_json(req.mimetype):
             return webargs_core.missing
-        data = req.get_data(cache=True)
+        data = read_body(req)
         if not data:
             return webargs_core.missing  # no body: each required field is reported missing
         try:

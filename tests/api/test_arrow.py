@@ -469,3 +469,29 @@ def test_every_table_endpoint_takes_and_gives_arrow(client):
         assert table.num_rows == len(rows), path
         for got, want in zip(table.to_pylist(), rows, strict=True):
             assert {k: _as_cell(v) for k, v in got.items()} == want, path
+
+
+def test_body_read_in_one_call_keeps_werkzeugs_checks(app):
+    """jsonio.read_body: a body shorter than its Content-Length is a client gone; one longer
+    than the maximum is refused before it is read; the body is cached like get_data's."""
+    from flask import request
+    from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
+
+    from service.api.jsonio import read_body
+
+    def ctx(data: bytes, length: int):
+        environ = {"wsgi.input": io.BytesIO(data), "CONTENT_LENGTH": str(length)}
+        return app.test_request_context(
+            URL, method="POST", content_type=ARROW, environ_overrides=environ
+        )
+
+    with ctx(b"abc", 10):
+        with pytest.raises(ClientDisconnected):
+            read_body(request)
+    limit = app.config["MAX_CONTENT_LENGTH"]
+    with ctx(b"", limit + 1):
+        with pytest.raises(RequestEntityTooLarge):
+            read_body(request)
+    with ctx(b"abcdef", 6):
+        assert read_body(request) == b"abcdef"
+        assert request.get_data() == b"abcdef"  # cached
