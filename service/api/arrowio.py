@@ -86,6 +86,8 @@ class ArrowTable:
         Zero-copy for a float64 column in one chunk without nulls (the array is read-only).
         """
         col = self.table.column(spec.name)
+        if pa.types.is_null(col.type):  # a column of nulls only (pyarrow's type for [None])
+            col = col.cast(pa.float64())
         if not (pa.types.is_integer(col.type) or pa.types.is_floating(col.type)):
             errors.add(
                 errors.header_key(spec.name),
@@ -110,9 +112,16 @@ class ArrowTable:
         return arr
 
     def id_column(self, errors) -> list | None:
-        """The ``id`` column as a list of str or int (null = None), or None if mistyped."""
+        """The ``id`` column as a list of str or int (null = None), or None if mistyped.
+
+        Dictionary-encoded strings (as pandas categoricals give) are read as strings; a
+        column of nulls only is no identifiers at all.
+        """
         col = self.table.column("id")
         t = col.type
+        if pa.types.is_dictionary(t) or pa.types.is_null(t):
+            t = t.value_type if pa.types.is_dictionary(t) else pa.string()
+            col = col.cast(t)
         if not (
             pa.types.is_integer(t)
             or pa.types.is_string(t)

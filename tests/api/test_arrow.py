@@ -246,6 +246,24 @@ def test_nulls_give_the_flags_of_json_nulls(client):
     assert table.column("parallax_mas").to_pylist()[:2] == [None, None]
 
 
+def test_columns_of_nulls_and_dictionary_ids(client):
+    """pyarrow types a column of None alone as `null`: unknown values, as JSON nulls; ids
+    may come dictionary-encoded (pandas categoricals)."""
+    t = small_table(
+        id=pa.array(["A", "B", "A"]).dictionary_encode(),
+        parallax_mas=pa.array([None, None, None]),
+    )
+    assert t.schema.field("parallax_mas").type == pa.null()
+    r = post_arrow(client, stream_of(t))
+    assert r.status_code == 200, r.json
+    assert r.json["columns"]["id"] == ["A", "B", "A"]
+    assert all("parallax_missing" in f for f in r.json["columns"]["flags"])
+    required = small_table(ra_deg=pa.array([None, None, None]))
+    assert ("stars.ra_deg[0]", "is required and may not be null") in problem_fields(
+        post_arrow(client, stream_of(required))
+    )
+
+
 def test_integer_ids_stay_integers(client):
     t = small_table(id=pa.array([5, 6, 7], pa.int64()))
     r = post_arrow(client, stream_of(t), accept=ARROW)
