@@ -46,6 +46,7 @@ from flask_smorest import abort
 
 from . import csvio
 from .jsonio import dumps
+from .tables import _MAX_ID_LENGTH as MAX_ID_CHARS
 
 ARROW_MIMETYPE = "application/vnd.apache.arrow.stream"
 
@@ -119,8 +120,16 @@ class ArrowTable:
         """
         col = self.table.column("id")
         t = col.type
-        if pa.types.is_dictionary(t) or pa.types.is_null(t):
-            t = t.value_type if pa.types.is_dictionary(t) else pa.string()
+        if pa.types.is_dictionary(t):
+            # Lengths checked before decoding: one long value on every row would expand.
+            values = [v for c in col.chunks for v in c.dictionary.to_pylist()]
+            if any(isinstance(v, str | bytes) and len(v) > MAX_ID_CHARS for v in values):
+                errors.add(errors.header_key("id"), f"at most {MAX_ID_CHARS} characters")
+                return None
+            t = t.value_type
+            col = col.cast(t)
+        elif pa.types.is_null(t):
+            t = pa.string()
             col = col.cast(t)
         if not (
             pa.types.is_integer(t)
@@ -149,12 +158,34 @@ def _valid(col: pa.ChunkedArray) -> np.ndarray:
 
 
 def parse_arrow_body(data: bytes) -> ArrowTable:
-    """Read an Arrow IPC stream body; a body that is not one aborts with 400, repeated
-    column names with 422."""
+    """Read an Arrow IPC stream body.
+
+    A body that is not one aborts with 400; compressed record batches with 415 (Note 1);
+    repeated column names with 422.
+
+    Notes
+    -----
+    1. An uncompressed stream is read without copying: the table is no larger than the
+       body, which the body size limit bounds. LZ4 or ZSTD buffer compression would let a
+       small body expand to any size in memory (a decompression bomb), so it is refused
+       before anything is decoded, as compressed Content-Encodings are (app.py).
+    2. The table is validated in full (buffer sizes, offsets), so that a forged stream is a
+       400 rather than a read out of bounds.
+    """
+    buf = pa.py_buffer(data)
     try:
-        with pa.ipc.open_stream(pa.py_buffer(data)) as reader:
+        for message in pa.ipc.MessageReader.open_stream(buf):
+            header = _batch_header(message.metadata.to_pybytes())
+            if header is not None and header[1]:
+                abort(
+                    415,
+                    message="Compressed Arrow record batches (LZ4 or ZSTD buffers) are not "
+                    "accepted; send the stream uncompressed.",
+                )
+        with pa.ipc.open_stream(buf) as reader:
             table = reader.read_all()
-    except (pa.ArrowException, OSError, ValueError) as exc:
+        table.validate(full=True)
+    except (pa.ArrowException, OSError, ValueError, IndexError) as exc:
         text = str(exc).splitlines()[0][:200] if str(exc) else type(exc).__name__
         abort(400, message=f"The body is not an Arrow IPC stream ({text}).")
     seen: set = set()
@@ -171,6 +202,44 @@ def parse_arrow_body(data: bytes) -> ArrowTable:
             ],
         )
     return ArrowTable(table)
+
+
+def _batch_header(meta: bytes) -> tuple[int, bool] | None:
+    """(rows, compressed) of a record batch or dictionary batch IPC message, read from its
+    flatbuffer metadata without decoding the body; None for other messages.
+
+    The layout is Arrow's format/Message.fbs: Message {version, header_type, header,
+    bodyLength}; RecordBatch {length, nodes, buffers, compression}; DictionaryBatch {id,
+    data: RecordBatch, isDelta}. Header types: 2 DictionaryBatch, 3 RecordBatch.
+    """
+
+    def u16(pos):
+        return int.from_bytes(meta[pos : pos + 2], "little")
+
+    def u32(pos):
+        return int.from_bytes(meta[pos : pos + 4], "little")
+
+    def field(table, i):  # position of field i of a table, None if absent
+        vtable = table - int.from_bytes(meta[table : table + 4], "little", signed=True)
+        if 4 + 2 * i + 2 > u16(vtable):
+            return None
+        offset = u16(vtable + 4 + 2 * i)
+        return table + offset if offset else None
+
+    root = u32(0)
+    kind_at, header_at = field(root, 1), field(root, 2)
+    kind = meta[kind_at] if kind_at is not None else 0
+    if header_at is None or kind not in (2, 3):
+        return None
+    header = header_at + u32(header_at)
+    if kind == 2:
+        data_at = field(header, 1)
+        if data_at is None:
+            return None
+        header = data_at + u32(data_at)
+    length_at = field(header, 0)
+    rows = int.from_bytes(meta[length_at : length_at + 8], "little") if length_at else 0
+    return rows, field(header, 3) is not None
 
 
 def load_arrow_request(req, schema) -> dict:

@@ -513,3 +513,44 @@ def test_body_read_in_one_call_keeps_werkzeugs_checks(app):
     with ctx(b"abcdef", 6):
         assert read_body(request) == b"abcdef"
         assert request.get_data() == b"abcdef"  # cached
+
+
+@pytest.mark.parametrize("codec", ["zstd", "lz4"])
+def test_compressed_batches_are_refused_before_decoding(client, codec):
+    # LZ4/ZSTD buffers could expand a small body without bound (a decompression bomb).
+    t = small_table()
+    sink = pa.BufferOutputStream()
+    options = pa.ipc.IpcWriteOptions(compression=codec)
+    with pa.ipc.new_stream(sink, t.schema, options=options) as writer:
+        writer.write_table(t)
+    r = post_arrow(client, sink.getvalue().to_pybytes())
+    assert problem_fields(r, 415) == []
+    assert "uncompressed" in r.json["detail"]
+
+
+def test_forged_lengths_are_400(client):
+    """A record batch that claims more rows than its buffers hold is refused (validation),
+    never read out of bounds; so is a stream cut short."""
+    import struct
+
+    t = pa.table({k: [1.0] * 7 for k in ("ra_deg", "dec_deg")})
+    good = stream_of(t)
+    # Stream framing (Arrow IPC format): 0xFFFFFFFF, int32 metadata length, metadata
+    # (flatbuffer), body. The schema message has no body; the record batch comes next.
+    schema_len = struct.unpack_from("<i", good, 4)[0]
+    start = 8 + schema_len
+    meta_len = struct.unpack_from("<i", good, start + 4)[0]
+    meta = good[start + 8 : start + 8 + meta_len]
+    assert meta.count(struct.pack("<q", 7)) >= 3  # batch length and both field nodes
+    forged_meta = meta.replace(struct.pack("<q", 7), struct.pack("<q", 7000))
+    forged = good[: start + 8] + forged_meta + good[start + 8 + meta_len :]
+    for body in (forged, good[:-24] + good[-8:]):
+        r = post_arrow(client, body)
+        assert r.status_code == 400, r.get_data(as_text=True)[:300]
+        assert r.mimetype == "application/problem+json"
+
+
+def test_long_dictionary_ids_refused_before_decoding(client):
+    ids = pa.DictionaryArray.from_arrays(pa.array([0, 0, 0], pa.int32()), pa.array(["x" * 65]))
+    fields = problem_fields(post_arrow(client, stream_of(small_table(id=ids))))
+    assert fields == [("stars.id", "at most 64 characters")]
