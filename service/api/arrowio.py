@@ -14,8 +14,9 @@ Request (``Content-Type: application/vnd.apache.arrow.stream``)
     refused (422), never taken as unknown. ``id`` is a string or integer column. A column of
     any other type, an unknown or repeated column name, or a table without rows is refused
     (422, naming the column: ``stars.ra_deg`` / ``stars.ra_deg[7]``); a body that is not an
-    Arrow stream is a 400, compressed record batches a 415 (:func:`parse_arrow_body`). The endpoint's other request fields travel in the query string
-    exactly as with a CSV body (:mod:`.csvio`). An Arrow body answers JSON unless the client
+    Arrow stream is a 400, compressed record batches a 415 (:func:`parse_arrow_body`).
+    The endpoint's other request fields travel in the query string exactly as with a CSV
+    body (:mod:`.csvio`). An Arrow body answers JSON unless the client
     asks for Arrow (Accept), in the columns layout unless the query says ``layout=records``,
     as a CSV body does: the body says how the stars come in, Accept says how the answer
     should go out.

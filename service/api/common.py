@@ -55,6 +55,8 @@ class Blueprint(flask_smorest.Blueprint):
         def _arrow_answer():
             # The answer object goes to Arrow directly (jsonio.OrjsonProvider.response):
             # no JSON text is made and read back for a million stars.
+            if arrowio.ARROW_MIMETYPE not in request.headers.get("Accept", ""):
+                return  # the common case costs one header lookup (one-star requests)
             table = _table_endpoint(answer=True)
             if table is not None and arrowio.wants_arrow():
                 nested = table[1]
