@@ -8,12 +8,12 @@ import flask_smorest
 import marshmallow as ma
 import numpy as np
 import orjson
-from flask import current_app, request
+from flask import current_app, g, request
 from flask_smorest import abort
 
 from ..core import epochs as core_epochs
 from ..core.flags import flag_names
-from . import csvio
+from . import arrowio, csvio
 from .jsonio import BodyParser
 
 JSON_MIMETYPES = ("application/json",)
@@ -23,8 +23,10 @@ class Blueprint(flask_smorest.Blueprint):
     """flask-smorest Blueprint that reads bodies with orjson and insists on JSON for POST.
 
     Endpoints whose request schema holds a star table (:class:`~.tables.StarTableField`)
-    also take a ``text/csv`` body and answer ``text/csv`` on request (``Accept: text/csv``);
-    see :mod:`.csvio`. Nothing needs to be done per endpoint.
+    also take a ``text/csv`` body and answer ``text/csv`` on request (``Accept: text/csv``),
+    see :mod:`.csvio`; and the same with Apache Arrow IPC streams
+    (``application/vnd.apache.arrow.stream``), see :mod:`.arrowio`. Nothing needs to be done
+    per endpoint.
     """
 
     ARGUMENTS_PARSER = BodyParser()
@@ -39,7 +41,7 @@ class Blueprint(flask_smorest.Blueprint):
                 mimetype = request.mimetype or ""
                 accepted = self.accept_mimetypes
                 if _table_endpoint() is not None:
-                    accepted = (*accepted, csvio.CSV_MIMETYPE)
+                    accepted = (*accepted, csvio.CSV_MIMETYPE, arrowio.ARROW_MIMETYPE)
                 if not (mimetype in accepted or mimetype.endswith("+json")):
                     abort(
                         415,
@@ -48,6 +50,17 @@ class Blueprint(flask_smorest.Blueprint):
                             f"send {' or '.join(accepted)}"
                         ),
                     )
+
+        @self.before_request
+        def _arrow_answer():
+            # The answer object goes to Arrow directly (jsonio.OrjsonProvider.response):
+            # no JSON text is made and read back for a million stars.
+            if arrowio.ARROW_MIMETYPE not in request.headers.get("Accept", ""):
+                return  # the common case costs one header lookup (one-star requests)
+            table = _table_endpoint(answer=True)
+            if table is not None and arrowio.wants_arrow():
+                nested = table[1]
+                g.skydrift_answer_writer = lambda body: arrowio.arrow_response(body, nested)
 
         @self.after_request
         def _csv_answer(resp):
@@ -78,7 +91,7 @@ class Blueprint(flask_smorest.Blueprint):
         def mark(func):
             wrapped = decorator(func)
             wrapped = self.doc(**_csv_doc(instance, table, csv_answer))(wrapped)
-            wrapped._skydrift_csv = (table, None)
+            wrapped._skydrift_csv = (table, csv_answer)
             return wrapped
 
         return mark
@@ -99,11 +112,12 @@ class Blueprint(flask_smorest.Blueprint):
         return mark
 
 
-def _table_endpoint():
-    """(table field name, nested answer members) of the current endpoint, or None."""
+def _table_endpoint(answer: bool = False):
+    """(table field name, nested answer members) of the current endpoint, or None; with
+    ``answer=True`` None also for endpoints whose answer is not a table (images)."""
     view = current_app.view_functions.get(request.endpoint or "")
     mark = getattr(view, "_skydrift_csv", None)
-    if mark is None:
+    if mark is None or (answer and not mark[1]):
         return None
     return mark[0], getattr(view, "_skydrift_nested", set())
 
@@ -121,7 +135,8 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
                 "in": "query",
                 "required": False,
                 "schema": {"type": "string"},
-                "description": "With a text/csv body only (a JSON body carries it inside): "
+                "description": "With a text/csv or Arrow stream body only (a JSON body "
+                "carries it inside): "
                 + description
                 + " Lists: repeated or comma-separated; objects: dotted names "
                 "(name.member=value) or JSON.",
@@ -136,7 +151,14 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
                     "description": "The star table as CSV: header row of field names "
                     f"(the members of one '{table}' record, units in the names), one star "
                     "per line, empty cell = null. Other fields as query parameters.",
-                }
+                },
+                arrowio.ARROW_MIMETYPE: {
+                    "schema": {"type": "string", "contentMediaType": arrowio.ARROW_MIMETYPE},
+                    "description": "The star table as an Apache Arrow IPC stream: one column "
+                    f"per member of a '{table}' record under the same names (numbers: any "
+                    "integer or floating-point type; id: string or integer), Arrow null = "
+                    "unknown; NaN is refused. Other fields as query parameters.",
+                },
             }
         },
         "responses": {
@@ -148,7 +170,15 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
                         + ", ".join(csvio.LEADING_COLUMNS)
                         + ", the quantities under their JSON names, flags (';'-separated) "
                         "last; empty cell = null.",
-                    }
+                    },
+                    arrowio.ARROW_MIMETYPE: {
+                        "schema": {"type": "string", "contentMediaType": arrowio.ARROW_MIMETYPE},
+                        "description": "With Accept: application/vnd.apache.arrow.stream. "
+                        "An Arrow IPC stream with the rows and columns of the text/csv answer "
+                        "(flags: ';'-joined, dictionary-encoded), Arrow null = unknown; units "
+                        "in each field's metadata ('unit'), the answer's other members as "
+                        "JSON in the schema metadata key 'skydrift.answer'.",
+                    },
                 }
             }
         },

@@ -38,6 +38,8 @@ import orjson
 from flask import request
 from flask_smorest import abort
 
+from .jsonio import read_body
+
 CSV_MIMETYPE = "text/csv"
 
 #: Columns that lead every CSV answer when present, in this order.
@@ -203,11 +205,17 @@ def _json_or_text(value: str):
 
 def load_csv_request(req, schema) -> dict:
     """The request fields of a CSV request: the table from the body, options from the query."""
+    return load_table_request(req, schema, parse_csv_body)
+
+
+def load_table_request(req, schema, parse_body) -> dict:
+    """The request fields of a request whose body is only the star table (CSV, Arrow): the
+    table read from the body by ``parse_body(bytes)``, the other fields from the query."""
     name = table_field_name(schema)
-    if name is None:  # pragma: no cover - the blueprint accepts CSV only for table endpoints
-        abort(415, message="text/csv is not accepted here")
+    if name is None:  # pragma: no cover - the blueprint accepts tables only for table endpoints
+        abort(415, message=f"{req.mimetype} is not accepted here")
     data = _option_values(schema, req.args, name)
-    data[name] = parse_csv_body(req.get_data(cache=True))
+    data[name] = parse_body(read_body(req))
     return data
 
 
@@ -421,6 +429,16 @@ def body_to_csv(body: dict, nested_names: set | None = None) -> str:
         writer.writerow(header)
         writer.writerows(zip(*columns, strict=True))
         return buf.getvalue()
+    header, rows = record_rows(body, nested_names)
+    writer.writerow(header)
+    for row in rows:
+        writer.writerow([_cell(row.get(k)) for k in header])
+    return buf.getvalue()
+
+
+def record_rows(body: dict, nested_names: set) -> tuple[list[str], list[dict]]:
+    """A records answer (or one object) -> (header, rows as dicts): the rows and column
+    order of the CSV answer, values not yet written as text."""
     if isinstance(body.get("stars"), list):
         rows = list(_rows_from_records(body, nested_names))
     else:
@@ -435,11 +453,7 @@ def body_to_csv(body: dict, nested_names: set | None = None) -> str:
     lead = [k for k in LEADING_COLUMNS if k in order]
     tail = [k for k in list_keys if k in order]
     middle = [k for k in order if k not in lead and k not in list_keys]
-    header = lead + middle + tail
-    writer.writerow(header)
-    for row, _ in rows:
-        writer.writerow([_cell(row.get(k)) for k in header])
-    return buf.getvalue()
+    return lead + middle + tail, [row for row, _ in rows]
 
 
 def nested_field_names(schema) -> set:

@@ -55,8 +55,9 @@ versions of the service and of numpy, pyerfa (with its ERFA), astropy, astropy-i
 pandas, pyarrow and dask (on the workers too, on a cluster). Parquet readers skip files
 whose names begin with an underscore.
 
-Dask, pandas and pyarrow are the optional extra ``skydrift[batch]``; they are imported only
-when a run starts, so the HTTP service does not need them.
+Dask and pandas come with the optional extra ``skydrift[batch]`` (pyarrow, which it lists
+too, is also a dependency of the service); they are imported only when a run starts, so the
+HTTP service does not need them.
 """
 
 from .engine import (
