@@ -251,6 +251,8 @@ def load_arrow_request(req, schema) -> dict:
 
 def wants_arrow() -> bool:
     """True when the client prefers an Arrow stream to JSON and CSV in its Accept header."""
+    if "arrow" not in request.headers.get("Accept", "").lower():
+        return False  # the common case, without parsing the header
     accept = request.accept_mimetypes
     best = accept.best_match(["application/json", csvio.CSV_MIMETYPE, ARROW_MIMETYPE])
     return best == ARROW_MIMETYPE and accept[ARROW_MIMETYPE] > 0

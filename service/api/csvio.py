@@ -221,6 +221,8 @@ def load_table_request(req, schema, parse_body) -> dict:
 
 def wants_csv() -> bool:
     """True when the client prefers text/csv to JSON in its Accept header."""
+    if "csv" not in request.headers.get("Accept", "").lower():
+        return False  # the common case, without parsing the header
     best = request.accept_mimetypes.best_match(["application/json", CSV_MIMETYPE])
     return best == CSV_MIMETYPE and request.accept_mimetypes[CSV_MIMETYPE] > 0
 
