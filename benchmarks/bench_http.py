@@ -193,7 +193,37 @@ def _timed_post(url: str, data: bytes, headers: dict, decode) -> dict:
 
 
 def _decode_json(content: bytes) -> int:
-    return orjson.loads(content)["star_count"]
+    # As the project's Python client decodes a large answer (orjson, collector paused).
+    from service.client import _loads
+
+    return _loads(content)["star_count"]
+
+
+def json_codec_floor(cols: dict, json_body: bytes, answer: bytes) -> dict:
+    """Seconds of JSON text work alone in the JSON route: the server's parse of the body
+    (orjson), its writing of the answer (orjson, numpy columns) and the client's parse of
+    the answer (as :func:`_decode_json`). No HTTP, no validation, no astronomy: a lower
+    bound on that route's end-to-end time, measured in this process."""
+    t0 = time.perf_counter()
+    orjson.loads(json_body)
+    parse_s = time.perf_counter() - t0
+    answer_obj = orjson.loads(answer)
+    columns = answer_obj["columns"]
+    for name in cols:  # the answer's numbers as the server holds them: numpy columns
+        columns[name] = np.asarray(columns[name], dtype=float)
+    t0 = time.perf_counter()
+    orjson.dumps(answer_obj, option=orjson.OPT_SERIALIZE_NUMPY)
+    write_s = time.perf_counter() - t0
+    del answer_obj, columns
+    t0 = time.perf_counter()
+    _decode_json(answer)
+    decode_s = time.perf_counter() - t0
+    return {
+        "parse_s": parse_s,
+        "write_s": write_s,
+        "decode_s": decode_s,
+        "total_s": parse_s + write_s + decode_s,
+    }
 
 
 def _decode_arrow(content: bytes) -> int:
@@ -258,6 +288,19 @@ def million_star_batch(n: int = 1_000_000, repeats: int = 3) -> dict:
             stop(proc)
         figures["body_mb"] = len(body) / 1e6
         out[name] = figures
+    answer = requests.Session()  # one more JSON answer, for the codec floor
+    url, proc = start(workers=1)
+    try:
+        r = answer.post(
+            url + "/v1/propagation",
+            data=json_body,
+            headers={"Content-Type": "application/json"},
+            timeout=600,
+        )
+        r.raise_for_status()
+        out["json_floor"] = json_codec_floor(cols, json_body, r.content)
+    finally:
+        stop(proc)
     return out
 
 
@@ -278,6 +321,13 @@ def print_million_star_batch(big: dict) -> None:
             f"    end-to-end / core: {r['http_s'] / core:.1f}x  "
             f"(target <= 8x; Arrow: near 3x); peak worker memory {r['peak_mb']:.0f} MB  "
             "(target < 2048 MB)"
+        )
+    f = big.get("json_floor")
+    if f:
+        print(
+            f"  JSON text work alone (no HTTP, no checks, no astronomy): server parse "
+            f"{f['parse_s']:.2f} s + server write {f['write_s']:.2f} s + client decode "
+            f"{f['decode_s']:.2f} s = {f['total_s']:.2f} s = {f['total_s'] / core:.1f}x the core"
         )
 
 
