@@ -348,6 +348,14 @@ def _names_column(lists: list) -> pa.Array | None:
     n = len(lists)
     if n == 0:
         return pa.DictionaryArray.from_arrays(pa.array([], pa.int32()), pa.array([], pa.string()))
+    codes = getattr(lists, "codes", None)
+    if codes is not None and len(codes) == n:  # flag_names told which stars share a tuple
+        texts = [csvio.LIST_SEPARATOR.join(t) for t in lists.distinct]
+        distinct, remap = np.unique(np.array(texts, dtype=object), return_inverse=True)
+        return pa.DictionaryArray.from_arrays(
+            pa.array(remap.reshape(-1)[codes].astype(np.int32)),
+            pa.array(distinct.tolist(), pa.string()),
+        )
     keys = np.fromiter(map(id, lists), dtype=np.int64, count=n)
     encoded = pa.array(keys).dictionary_encode()
     indices = encoded.indices.to_numpy(zero_copy_only=False)

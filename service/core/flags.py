@@ -13,6 +13,45 @@ import functools
 import numpy as np
 
 
+class FlagNameList(list):
+    """The list :func:`flag_names` returns, which also knows which stars share a mask.
+
+    Attributes
+    ----------
+    codes : ndarray of int or None
+        Per star, the index of its tuple in ``distinct``; None once the list has been
+        changed in place (a caller added a name to some stars), so that it is never stale.
+    distinct : list of tuple of str
+        The distinct tuples of names.
+
+    Writers of columnar formats use ``codes`` to encode a million stars' flags without
+    looking at a million list entries; JSON writers see a plain list.
+    """
+
+    __slots__ = ("codes", "distinct")
+
+    def __init__(self, items, codes=None, distinct=()):
+        super().__init__(items)
+        self.codes = codes
+        self.distinct = list(distinct)
+
+
+def _invalidating(name):
+    method = getattr(list, name)
+
+    def changed(self, *args):
+        self.codes = None
+        return method(self, *args)
+
+    changed.__name__ = name
+    return changed
+
+
+for _name in ("__setitem__", "__delitem__", "__iadd__", "__imul__", "append", "extend",
+              "insert", "pop", "remove", "clear", "sort", "reverse"):  # fmt: skip
+    setattr(FlagNameList, _name, _invalidating(_name))
+
+
 def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[tuple[str, ...]]:
     """Names of the set bits of each mask, in declaration order.
 
@@ -25,7 +64,7 @@ def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[tuple[str, ...]]:
 
     Returns
     -------
-    list of tuple of str
+    FlagNameList (a list) of tuple of str
         One tuple of flag names per star (empty where no bit is set). Stars with the same
         mask share one tuple (Note 1).
 
@@ -41,10 +80,11 @@ def flag_names(mask, flag_type: type[enum.IntFlag]) -> list[tuple[str, ...]]:
         u = int(mask[0])
         return [tuple(name for name, bit in members if u & bit)]
     if not mask.any():
-        return [()] * mask.shape[0]
+        return FlagNameList([()] * mask.shape[0], np.zeros(mask.shape[0], np.intp), [()])
     unique, inverse = np.unique(mask, return_inverse=True)
     named = [tuple(name for name, bit in members if int(u) & bit) for u in unique]
-    return [named[k] for k in inverse.ravel().tolist()]
+    inverse = inverse.ravel()
+    return FlagNameList([named[k] for k in inverse.tolist()], inverse, named)
 
 
 def present_flag_names(mask, flag_type: type[enum.IntFlag]) -> set[str]:
