@@ -486,19 +486,24 @@ def propagate(args):
     return current_app.json.response(body)
 
 
+#: Per-star warnings: flag -> message.
+_WARNING_TEXTS = {
+    core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: "total proper motion exceeds 10.4 "
+    "arcsec/yr, more than any known star: check the unit (mas/yr) and that the RA component "
+    "includes cos(dec)",
+    core.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and radial "
+    "velocity imply a space velocity above half the speed of light: check the parallax and "
+    "its unit (mas)",
+    core.PropagationFlag.NOT_CONVERGED: "light-time iteration did not converge",
+}
+_WARNING_BITS = int(functools.reduce(operator.or_, _WARNING_TEXTS))
+
+
 def _warnings(masks, table) -> list[dict]:
     out = []
-    F = core.PropagationFlag
-    texts = {
-        F.PROPER_MOTION_IMPLAUSIBLE: "total proper motion exceeds 10.4 arcsec/yr, more than "
-        "any known star: check the unit (mas/yr) and that the RA component includes cos(dec)",
-        F.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and radial velocity imply a "
-        "space velocity above half the speed of light: check the parallax and its unit (mas)",
-        F.NOT_CONVERGED: "light-time iteration did not converge",
-    }
-    if not (masks & int(functools.reduce(operator.or_, texts))).any():
+    if not (masks & _WARNING_BITS).any():
         return out
-    for flag, text in texts.items():
+    for flag, text in _WARNING_TEXTS.items():
         for i in np.flatnonzero(masks & int(flag))[:1000]:
             out.append(
                 {

@@ -173,7 +173,8 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     rv = np.asarray(radial_velocity_km_s, dtype=float)
     pma = np.asarray(pm_ra_cosdec_mas_yr, dtype=float)
     pmd = np.asarray(pm_dec_mas_yr, dtype=float)
-    shape = np.broadcast_shapes(plx.shape, rv.shape, pma.shape, pmd.shape)
+    shapes = {plx.shape, rv.shape, pma.shape, pmd.shape}
+    shape = shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
     if plx.size == rv.size == pma.size == pmd.size == 1:
         # One star: the same comparisons on Python floats (same IEEE arithmetic, less
         # overhead than a dozen array operations).
@@ -279,7 +280,7 @@ def _advance_local(dec_rad, pma_mas, pmd_mas, mur_mas, tau) -> _Local:
     f = 1.0 / np.sqrt(s2)
     with np.errstate(divide="ignore"):
         hinv = 1.0 / H
-    if not np.all(H > 0.0):  # at a pole: no RA frame; components set to zero (flag AT_POLE)
+    if not (H > 0.0).all():  # at a pole: no RA frame; components set to zero (flag AT_POLE)
         hinv = np.where(H > 0.0, hinv, 0.0)
     VX = cd * mur - sd * mud
     VZ = cd * mud + sd * mur
@@ -325,7 +326,7 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
         g = (AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD) / plx * loc.tpm2 + rv * loc.sz
     rv1 = np.where(usable, loc.f * g, rv)
     at_pole = loc.H * loc.f < AT_POLE_RAD
-    if np.any(at_pole):
+    if at_pole.any():
         flags = flags | np.where(at_pole, int(PropagationFlag.AT_POLE), 0)
     ast = Astrometry(
         ra_deg=ra1,
@@ -572,7 +573,10 @@ def standard_jacobian(
         )
     ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
-    shape = np.broadcast_shapes(*(x.shape for x in args), tau.shape)
+    shapes = {x.shape for x in args}
+    shapes.add(tau.shape)
+    # One shape (the common case, and one star): no need to work out a broadcast.
+    shape = shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
     ra, dec, plx, pma, pmd, rv = (np.broadcast_to(x, shape) for x in args)
     tau = np.broadcast_to(tau, shape)
     entry_major = np.zeros((6, 6) + shape)
@@ -804,7 +808,10 @@ def propagate(
         )
     ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
-    shape = np.broadcast_shapes(*(x.shape for x in args), tau.shape)
+    shapes = {x.shape for x in args}
+    shapes.add(tau.shape)
+    # One shape (the common case, and one star): no need to work out a broadcast.
+    shape = shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
     flat = [_flatten(x, shape) for x in (*args, tau)]
     n = flat[0].shape[0]
     cov_flat = None
@@ -817,8 +824,8 @@ def propagate(
         )
     if model == "standard" and cov_flat is None and 0 < n <= max(int(block_size), 1):
         # One block, no covariance: the outputs are new arrays already (no copies needed).
-        with np.errstate(divide="ignore", invalid="ignore"):
-            ast, fl, _, _, _ = _standard_outputs(*flat)
+        # (Division by zero and NaN results are already silent here: Note 4.)
+        ast, fl, _, _, _ = _standard_outputs(*flat)
         return PropagationResult(
             Astrometry(*(o.reshape(shape) for o in _fields(ast))), fl.reshape(shape), None
         )
