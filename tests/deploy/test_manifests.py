@@ -60,7 +60,10 @@ def test_kustomization_lists_every_manifest():
 
 
 def test_yamllint_clean():
-    paths = [str(p) for p in K8S.glob("*.yaml")] + [str(ROOT / "deploy" / "compose.yaml")]
+    paths = [str(p) for p in K8S.glob("*.yaml")] + [
+        str(ROOT / "deploy" / "compose.yaml"),
+        str(ROOT / "deploy" / "k8s-bulk-pool" / "kustomization.yaml"),
+    ]
     r = subprocess.run(
         [sys.executable, "-m", "yamllint", "-s", "-c", str(ROOT / "deploy" / "yamllint.yaml")]
         + paths,
@@ -157,3 +160,32 @@ def test_compose_bulk_pool_is_optional_and_as_hardened():
     assert bulk["environment"]["SKYDRIFT_WORKER_NICE"] == "10"
     for key in ("read_only", "cap_drop", "security_opt", "user", "stop_grace_period"):
         assert bulk[key] == main[key], key
+
+
+def test_bulk_pool_overlay_renders_valid_and_apart_from_the_service():
+    import shutil
+
+    if shutil.which("kubectl") is None:
+        pytest.skip("kubectl (which renders kustomizations) is not installed")
+    out = subprocess.run(
+        ["kubectl", "kustomize", str(ROOT / "deploy" / "k8s-bulk-pool")],
+        capture_output=True,
+        text=True,
+        check=True,
+    ).stdout
+    bulk = {d["kind"]: d for d in yaml.safe_load_all(out) if d}
+    base = resources()
+    assert set(bulk) == set(base)
+    for doc in bulk.values():
+        kubernetes_validate.validate(doc, K8S_VERSION, strict=True)
+        assert doc["metadata"]["name"] == "skydrift-bulk"
+    # The pointing clients' Service must never select a bulk pod, and the other way round.
+    pod_labels = bulk["Deployment"]["spec"]["template"]["metadata"]["labels"]
+    base_selector = base["Service"]["spec"]["selector"]
+    assert not all(pod_labels.get(k) == v for k, v in base_selector.items())
+    assert bulk["Service"]["spec"]["selector"].items() <= pod_labels.items()
+    spec = bulk["Deployment"]["spec"]["template"]["spec"]
+    env = {e["name"]: e.get("value") for e in spec["containers"][0]["env"]}
+    assert env["SKYDRIFT_WORKER_NICE"] == "10"
+    assert spec["containers"][0]["envFrom"][0]["configMapRef"]["name"] == "skydrift-bulk"
+    assert bulk["HorizontalPodAutoscaler"]["spec"]["scaleTargetRef"]["name"] == "skydrift-bulk"
