@@ -451,3 +451,45 @@ def test_large_answers_decode_alike_with_the_collector_paused():
     assert client_module._loads(content) == body  # json (the reference) wrote it
     assert gc.isenabled()  # and the collector runs again afterwards
     assert client_module._loads(b'{"a": [1.5, null]}') == {"a": [1.5, None]}
+
+
+def test_arrow_round_trip_equals_the_json_answer(sky, demo_catalogue):
+    import pyarrow as pa
+
+    from service.client import arrow_answer_members
+
+    stars = demo_catalogue["stars"]
+    cols = columns_of(stars)
+    table = pa.table(cols)  # pyarrow types the columns (null = unknown)
+    got = sky.propagate_arrow(table, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+    js = sky.propagate(cols, catalogue_epoch="J2016.0", target_epochs=EPOCHS, layout="columns")
+    assert got.num_rows == len(stars) * len(EPOCHS)
+    rows = got.to_pylist()
+    for k, epoch in enumerate(EPOCHS):
+        for i, star in enumerate(stars):
+            row = rows[i * len(EPOCHS) + k]  # star by star, epochs within a star
+            assert (row["index"], row["id"]) == (i, star["id"])
+            for name in ("ra_deg", "dec_deg", "parallax_mas", "radial_velocity_km_s"):
+                assert row[name] == js["columns"][name][k][i], (name, epoch)  # exact doubles
+            assert row["flags"] == ";".join(js["columns"]["flags"][i])
+    members = arrow_answer_members(got)
+    assert members["units"]["ra_deg"] == "deg"
+    assert [e["julian_epoch_tdb"] for e in members["epochs"]] == [
+        e["julian_epoch_tdb"] for e in js["epochs"]
+    ]
+    # A dict of columns works too.
+    again = sky.post_arrow(
+        "/v1/propagation", cols, {"catalogue_epoch": "J2016.0", "target_epochs": EPOCHS}
+    )
+    assert again.equals(got)
+
+
+def test_arrow_errors_are_raised_with_the_field(sky):
+    with pytest.raises(SkydriftError) as err:
+        sky.propagate_arrow(
+            {"ra_deg": [10.0, float("nan")], "dec_deg": [1.0, 2.0]},
+            catalogue_epoch="J2016.0",
+            target_epochs=["J2020.0"],
+        )
+    assert err.value.status == 422
+    assert any(e.field == "stars.ra_deg[1]" for e in err.value.errors), err.value
