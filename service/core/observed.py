@@ -23,6 +23,7 @@ import enum
 import functools
 import math
 import os
+import sys
 import types
 import warnings
 from dataclasses import dataclass, field
@@ -1046,9 +1047,7 @@ class _Instant:
     inv_1_bm1: np.ndarray = None
     # One-instant matrix form (None for arrays of instants).
     a5: np.ndarray = None
-    c5: np.ndarray = None
     eb_row: np.ndarray = None
-    eb2: float = None
     meh_col: np.ndarray = None
     mv_col: np.ndarray = None
 
@@ -1078,16 +1077,14 @@ def _instant_quantities(astrom) -> _Instant:
 
 
 def _one_instant_matrices(m, eb, eh, v):
-    """Matrices for :func:`_apparent_aet_one_instant` (only for a single instant)."""
+    """Matrices for :func:`_observe_block` (only for a single instant)."""
     if np.ndim(m) != 2:
         return {}
     eb, eh, v = (np.array([float(c) for c in x]) for x in (eb, eh, v))
     a5 = np.vstack([eh, v, m])
     return {
         "a5": a5,
-        "c5": a5 @ eb,
         "eb_row": eb,
-        "eb2": float(eb @ eb),
         "meh_col": (m @ eh)[:, None],
         "mv_col": (m @ v)[:, None],
     }
@@ -1120,77 +1117,6 @@ def _apparent_aet(q, ins: _Instant):
     return [p0 * n, p1 * n, p2 * n]
 
 
-def _star_terms(ra_deg, dec_deg, px, pmra, pmdec, rv):
-    """The star-only part of :func:`_apparent_aet_one_instant` (shared by its two uses)."""
-    ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
-    if ra.size == 1:
-        in_range = 0.0 <= ra.item() <= TWO_PI
-    else:
-        in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
-    sr, cr = _sincos(ra, reduce="shift" if in_range else True)
-    sd, cd = _sincos(np.asarray(dec_deg, dtype=float) * RAD_PER_DEG, reduce=False)
-    pxr = np.fmax(px, 0.0) * (1.0 / MAS_PER_RAD)
-    mu_a = _nan0(pmra)
-    mu_d = _nan0(pmdec)
-    zeta = _nan0(rv)
-    moving = not (
-        np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0.0
-    )
-    if moving:
-        mu_a = mu_a * (1.0 / MAS_PER_RAD)
-        mu_d = mu_d * (1.0 / MAS_PER_RAD)
-        zeta = zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr
-    return sr, cr, sd, cd, pxr, mu_a, mu_d, zeta, moving
-
-
-def _apparent_aet_one_instant(
-    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, with_direction=False, terms=None
-):
-    """:func:`_star_vectors` + :func:`_apparent_aet` for one instant, with fewer passes.
-
-    The same formulae, arranged so that the linear parts are matrix products: with p the
-    catalogue direction and u = p + dt' w - parallax * eb the direction from the observer
-    (unnormalised), the products u.e, u.v and M u are rows of one (5, N) product.
-    ``terms``: :func:`_star_terms` of the same star arguments, if already computed.
-    """
-    if terms is None:
-        terms = _star_terms(ra_deg, dec_deg, px, pmra, pmdec, rv)
-    sr, cr, sd, cd, pxr, mu_a, mu_d, zeta, moving = terms
-    n = sr.shape[0]
-    p = np.empty((3, n))
-    np.multiply(cd, cr, out=p[0])
-    np.multiply(cd, sr, out=p[1])
-    p[2] = sd
-    if moving:
-        pe = ins.eb_row @ p
-        dt = dt + pe * LIGHT_TIME_AU_YR
-        a = dt * mu_a
-        b = dt * mu_d
-        c = 1.0 + dt * zeta
-        bz = b * sd
-        p[0] = c * p[0] - a * sr - bz * cr
-        p[1] = c * p[1] + a * cr - bz * sr
-        p[2] = c * p[2] + b * cd
-    p -= ins.eb_row[:, None] * pxr  # u = p + dt' w - parallax eb (unnormalised)
-    q = ins.a5 @ p  # rows: u.eh, u.v, M u
-    uu = np.einsum("ij,ij->j", p, p)
-    inv = 1.0 / np.sqrt(uu)
-    qe = q[0] * inv
-    qv = q[1] * inv
-    w = ins.srs_over_em / np.maximum(qe + 1.0, ins.dlim)
-    g = 1.0 - w * qe
-    pdv = g * qv + w * ins.ehv
-    k1 = ins.bm1 - ins.srs_over_em * pdv
-    k2 = ins.k2_const + pdv * ins.inv_1_bm1
-    r = q[2:] * (k1 * g * inv)
-    r += ins.meh_col * (k1 * w)
-    r += ins.mv_col * k2
-    r *= 1.0 / np.sqrt(np.einsum("ij,ij->j", r, r))
-    if with_direction:  # also the unnormalised astrometric direction u
-        return (r[0], r[1], r[2]), p
-    return r[0], r[1], r[2]
-
-
 #: Outputs of the per-star chain, in order, with their dtypes.
 _CHAIN_FIELDS = (
     ("azimuth_deg", float),
@@ -1207,27 +1133,19 @@ _CHAIN_FIELDS = (
 )
 
 
-def _chain(
-    ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None,
-    terms=None,
-):  # fmt: skip
+def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, detail=True, out=None):
     """Catalogue astrometry -> observed quantities (degrees) and per-star flag bits.
 
     ``detail=False`` skips the hour angle, observed declination and RA and the parallactic
     angle (returned as NaN). ``out``, a list of arrays in :data:`_CHAIN_FIELDS` order, lets
     the results be written in place (the caller copies any result that is not its array).
-    ``terms``, :func:`_star_terms` of the star arguments, saves recomputing them when one
-    instant's observed and geocentric places are both wanted.
     """
 
     def dst(k):
         return None if out is None else out[k]
 
-    if ins.a5 is not None and np.ndim(ra_deg) == 1:
-        aet = _apparent_aet_one_instant(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins, terms=terms)
-    else:
-        q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
-        aet = _apparent_aet(q, ins)
+    q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins.eb)
+    aet = _apparent_aet(q, ins)
     xaet, yaet, zaet = aet
     vector = np.ndim(xaet) > 0
     # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
@@ -1287,8 +1205,367 @@ def _chain(
     return az, zd, alt, ha, dec, ra, pa, airmass, refraction, sep, flags
 
 
-#: Stars per block when many stars share one instant: keeps the temporaries in cache.
+#: Stars per block when many stars share one instant: keeps the work arrays in cache.
 CHAIN_BLOCK = 8192
+
+#: Outputs of the chain that ``hour_angle=False`` leaves out (NaN).
+_DETAIL_FIELDS = frozenset(
+    ("hour_angle_deg", "observed_dec_deg", "observed_ra_cio_deg", "parallactic_angle_deg")
+)
+
+
+# ---------------------------------------------------------------------------------------------
+# Many stars (or one) at one instant: the same chain, written as in-place numpy operations
+# ---------------------------------------------------------------------------------------------
+
+#: Byte offset, within a uint32 flag word, of the byte holding bits 8-15 (native byte
+#: order): the airmass bit is set there through a uint8 view (no cast).
+_FLAG_BYTE1 = 1 if sys.byteorder == "little" else 2
+
+
+class _Scratch:
+    """Work arrays for :func:`_observe_block`, for blocks of ``n`` stars.
+
+    One is made per call of :func:`observed_places` (concurrent requests never share one)
+    and reused for every block of that call, so that the chain allocates nothing per block.
+    """
+
+    def __init__(self, n: int):
+        self.n = n
+        f = np.empty((46, n))
+        self.ang, self.t2, self.d, self.sh, self.sin, self.cos = (
+            f[i : i + 2] for i in range(0, 12, 2)
+        )
+        self.p0, self.p, self.r, self.t3 = (f[i : i + 3] for i in range(12, 24, 3))
+        self.q = f[24:29]
+        (
+            self.pxr, self.uu, self.w, self.g, self.pdv, self.k1, self.k2, self.tmp,
+            self.tmp2, self.a, self.b, self.c, self.bz, self.r0, self.rr, self.zz, self.f,
+        ) = f[29:46]  # fmt: skip
+        # Rows reused after the apparent direction is known (their first use is over).
+        (self.tz, self.wr, self.dl, self.cosdel, self.zaeo, self.xo, self.yo, self.v0,
+         self.v2, self.h2) = f[0:10]  # fmt: skip
+        self.mask = np.empty((4, n), dtype=bool)
+        self.u8 = np.empty((2, n), dtype=np.uint8)
+
+
+def _bit_index(flag: int) -> int:
+    """Position of a single-bit flag (16 -> 4)."""
+    return flag.bit_length() - 1
+
+
+def _angles_sincos(ra_deg, dec_deg, ws: _Scratch):
+    """Sines and cosines of RA and Dec (degrees) into ``ws.sin``, ``ws.cos`` (rows RA, Dec).
+
+    The arithmetic of :func:`_sincos` (tangent of the quarter angle), for both angles in one
+    pass: RA in [0, 360] is shifted by pi (both signs flipped afterwards), other RA values
+    are reduced to [-pi, pi]; declinations need no reduction.
+    """
+    a, t2, d, sh, s, c = ws.ang, ws.t2, ws.d, ws.sh, ws.sin, ws.cos
+    ra = a[0]
+    np.multiply(ra_deg, RAD_PER_DEG, out=ra)
+    np.multiply(dec_deg, RAD_PER_DEG, out=a[1])
+    if ws.n == 1:
+        in_range = 0.0 <= ra.item() <= TWO_PI
+    else:
+        in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
+    if in_range:
+        ra -= np.pi
+    else:
+        tmp = t2[0]
+        np.multiply(ra, 1.0 / TWO_PI, out=tmp)
+        np.round(tmp, out=tmp)
+        tmp *= TWO_PI
+        ra -= tmp
+    a *= 0.25
+    np.tan(a, out=a)  # t = tan(x / 4)
+    np.multiply(a, a, out=t2)
+    np.add(t2, 1.0, out=d)
+    np.divide(1.0, d, out=d)  # 1 / (1 + t^2)
+    np.multiply(d, 2.0, out=sh)
+    sh *= a  # sin(x / 2)
+    np.subtract(1.0, t2, out=t2)
+    t2 *= d  # cos(x / 2)
+    np.multiply(sh, 2.0, out=s)
+    s *= t2  # sin x = 2 sin(x/2) cos(x/2)
+    np.subtract(t2, sh, out=c)
+    sh += t2
+    c *= sh  # cos x = (cos(x/2) - sin(x/2)) (cos(x/2) + sin(x/2))
+    if in_range:  # sin(x + pi) = -sin x, cos(x + pi) = -cos x
+        np.negative(s[0], out=s[0])
+        np.negative(c[0], out=c[0])
+
+
+def _toward_star(motion, dt, ins, ws: _Scratch):
+    """Direction from the observer, unnormalised, into ``ws.p`` (SOFA ``pmpx``).
+
+    ``ws.p0`` holds the catalogue direction, ``ws.sin``/``ws.cos`` its angles and ``ws.pxr``
+    the parallax in radians; ``motion`` is (mu_a, mu_d, zeta) in radians per year and per
+    year, or None for a star without space motion. As :func:`_star_vectors`.
+    """
+    p0, p = ws.p0, ws.p
+    if motion is None:
+        np.copyto(p, p0)
+    else:
+        mu_a, mu_d, zeta = motion
+        (sr, sd), (cr, cd) = ws.sin, ws.cos
+        t = ws.tmp
+        np.matmul(ins.eb_row, p0, out=t)
+        t *= LIGHT_TIME_AU_YR
+        t += dt  # dt' = dt + (p.eb)/c: light time across the observer's offset (pmpx)
+        a, b, c, bz, tmp = ws.a, ws.b, ws.c, ws.bz, ws.tmp2
+        np.multiply(t, mu_a, out=a)
+        np.multiply(t, mu_d, out=b)
+        np.multiply(t, zeta, out=c)
+        c += 1.0
+        np.multiply(b, sd, out=bz)
+        np.multiply(c, p0[0], out=p[0])
+        p[0] -= np.multiply(a, sr, out=tmp)
+        p[0] -= np.multiply(bz, cr, out=tmp)
+        np.multiply(c, p0[1], out=p[1])
+        p[1] += np.multiply(a, cr, out=tmp)
+        p[1] -= np.multiply(bz, sr, out=tmp)
+        np.multiply(c, p0[2], out=p[2])
+        p[2] += np.multiply(b, cd, out=tmp)
+    p -= np.multiply(ins.eb_row[:, None], ws.pxr, out=ws.t3)  # - parallax eb
+
+
+def _apparent_into(ins, ws: _Scratch):
+    """Light deflection (ldsun), aberration (ab) and the rotation of ``ins.a5``, fused.
+
+    From the unnormalised direction u in ``ws.p``, the unit vector of the aberrated
+    direction rotated by the instant's matrix (azimuth/elevation frame for the observer,
+    the bias-precession-nutation for the geocentre) goes into ``ws.r``. The arithmetic of
+    :func:`_apparent_aet`: with q = u/|u|, q' = (1 - w q.e) q + w e (ldsun) and
+    p = k1 q' + k2 v (ab); M p = k1 (1 - w q.e) (M q) + k1 w (M e) + k2 (M v).
+    """
+    p, q, uu, r = ws.p, ws.q, ws.uu, ws.r
+    np.matmul(ins.a5, p, out=q)  # rows: u.eh, u.v, M u
+    np.multiply(p, p, out=ws.t3)
+    np.add.reduce(ws.t3, axis=0, out=uu)
+    np.sqrt(uu, out=uu)
+    inv = np.divide(1.0, uu, out=uu)
+    qe = np.multiply(q[0], inv, out=q[0])
+    qv = np.multiply(q[1], inv, out=q[1])
+    w, g, pdv, k1, k2, tmp = ws.w, ws.g, ws.pdv, ws.k1, ws.k2, ws.tmp
+    np.add(qe, 1.0, out=w)
+    np.maximum(w, ins.dlim, out=w)
+    np.divide(ins.srs_over_em, w, out=w)
+    np.multiply(w, qe, out=g)
+    np.subtract(1.0, g, out=g)
+    np.multiply(g, qv, out=pdv)
+    pdv += np.multiply(w, ins.ehv, out=tmp)
+    np.multiply(pdv, ins.srs_over_em, out=k1)
+    np.subtract(ins.bm1, k1, out=k1)
+    np.multiply(pdv, ins.inv_1_bm1, out=k2)
+    k2 += ins.k2_const
+    np.multiply(k1, g, out=tmp)
+    tmp *= inv
+    np.multiply(q[2:], tmp, out=r)
+    np.multiply(k1, w, out=tmp)
+    r += np.multiply(ins.meh_col, tmp, out=ws.t3)
+    r += np.multiply(ins.mv_col, k2, out=ws.t3)
+    np.multiply(r, r, out=ws.t3)
+    np.add.reduce(ws.t3, axis=0, out=tmp)
+    np.sqrt(tmp, out=tmp)
+    np.divide(1.0, tmp, out=tmp)
+    r *= tmp
+
+
+def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, geo=None,
+                   gout=None):  # fmt: skip
+    """:func:`_chain` (and :func:`_geocentric_places`) for 1-D star arrays at one instant.
+
+    The same formulae in the same order, as in-place numpy operations on the work arrays
+    ``ws``, writing into ``out`` (arrays in :data:`_CHAIN_FIELDS` order; with ``detail``
+    False the hour angle, observed declination and RA and parallactic angle are left alone)
+    and, with ``geo`` (the geocentric instant) given, the geocentric places into ``gout``
+    (astrometric RA, Dec, apparent RA, Dec, CIO-based RA). The star-only terms are computed
+    once for both observers. The number of numpy calls does not depend on the number of
+    stars, which keeps one star cheap, and nothing is allocated per star, which keeps many
+    stars fast.
+    """
+    ra_deg, dec_deg, px, pmra, pmdec, rv = stars
+    _angles_sincos(ra_deg, dec_deg, ws)
+    (sr, sd), (cr, cd) = ws.sin, ws.cos
+    p0 = ws.p0
+    np.multiply(cd, cr, out=p0[0])
+    np.multiply(cd, sr, out=p0[1])
+    np.copyto(p0[2], sd)
+    pxr = np.fmax(px, 0.0, out=ws.pxr)  # NaN (missing) and non-positive parallax: none
+    pxr *= 1.0 / MAS_PER_RAD
+    mu_a, mu_d, zeta = _nan0(pmra), _nan0(pmdec), _nan0(rv)
+    motion = None
+    if not (np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0):
+        motion = (
+            mu_a * (1.0 / MAS_PER_RAD),
+            mu_d * (1.0 / MAS_PER_RAD),
+            zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr,
+        )
+
+    if geo is not None:
+        _toward_star(motion, dt, geo, ws)
+        u = ws.p
+        a_ra, a_dec, app_ra, app_dec, ra_cio = gout
+        tmp = ws.tmp
+        np.arctan2(u[1], u[0], out=a_ra)
+        np.mod(a_ra, TWO_PI, out=a_ra)
+        a_ra *= DEG_PER_RAD
+        np.multiply(u[0], u[0], out=tmp)
+        tmp += np.multiply(u[1], u[1], out=ws.tmp2)
+        np.sqrt(tmp, out=tmp)
+        np.arctan2(u[2], tmp, out=a_dec)
+        a_dec *= DEG_PER_RAD
+        _apparent_into(geo, ws)
+        pi = ws.r
+        ri = np.arctan2(pi[1], pi[0], out=ws.tmp2)
+        np.multiply(pi[0], pi[0], out=tmp)
+        tmp += np.multiply(pi[1], pi[1], out=ws.k1)
+        np.sqrt(tmp, out=tmp)
+        np.arctan2(pi[2], tmp, out=app_dec)
+        app_dec *= DEG_PER_RAD
+        np.mod(ri, TWO_PI, out=ra_cio)
+        ra_cio *= DEG_PER_RAD
+        np.subtract(ri, geo.eo, out=app_ra)
+        np.mod(app_ra, TWO_PI, out=app_ra)
+        app_ra *= DEG_PER_RAD
+
+    _toward_star(motion, dt, ins, ws)
+    _apparent_into(ins, ws)
+    x, y, z = ws.r
+    tmp, tmp2 = ws.tmp, ws.tmp2
+    # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
+    az = np.arctan2(y, x, out=out[0])
+    az *= -DEG_PER_RAD  # atan2(-y, x) = -atan2(y, x)
+    az += 180.0
+    big = np.greater_equal(az, 360.0, out=ws.mask[0])
+    np.subtract(az, 360.0, out=az, where=big)
+
+    # Refraction as :func:`_refract`.
+    r0, r, zz, tz, wr, dl, cosdel, f, zaeo = (
+        ws.r0, ws.rr, ws.zz, ws.tz, ws.wr, ws.dl, ws.cosdel, ws.f, ws.zaeo,
+    )  # fmt: skip
+    np.multiply(x, x, out=r0)
+    r0 += np.multiply(y, y, out=tmp)
+    np.sqrt(r0, out=r0)
+    np.maximum(r0, ATIOQ_CELMIN, out=r)
+    np.maximum(z, ATIOQ_SELMIN, out=zz)
+    np.divide(r, zz, out=tz)
+    np.multiply(tz, ins.refb, out=wr)
+    wr *= tz
+    np.add(wr, ins.refa, out=dl)
+    dl *= tz
+    np.multiply(wr, 3.0, out=tmp)
+    tmp += ins.refa
+    tmp /= np.multiply(zz, zz, out=tmp2)
+    tmp += 1.0
+    dl /= tmp
+    np.multiply(dl, dl, out=cosdel)
+    cosdel *= 0.5
+    np.subtract(1.0, cosdel, out=cosdel)
+    np.multiply(dl, zz, out=f)
+    f /= r
+    np.subtract(cosdel, f, out=f)
+    np.multiply(cosdel, z, out=zaeo)
+    zaeo += np.multiply(dl, r, out=tmp)
+
+    np.absolute(f, out=tmp)
+    tmp *= r0
+    zd = np.arctan2(tmp, zaeo, out=out[1])
+    zd *= DEG_PER_RAD
+    alt = np.subtract(90.0, zd, out=out[2])
+    if detail:
+        sp, cp = ins.sphi, ins.cphi
+        xo, yo, v0, v2, h2 = ws.xo, ws.yo, ws.v0, ws.v2, ws.h2
+        np.multiply(x, f, out=xo)
+        np.multiply(y, f, out=yo)
+        np.multiply(xo, sp, out=v0)
+        v0 += np.multiply(zaeo, cp, out=tmp)
+        np.multiply(zaeo, sp, out=v2)
+        v2 -= np.multiply(xo, cp, out=tmp)
+        np.multiply(v0, v0, out=h2)
+        h2 += np.multiply(yo, yo, out=tmp)
+        ha = np.arctan2(yo, v0, out=out[3])
+        ha *= -DEG_PER_RAD  # atan2(-y, v0) = -atan2(y, v0)
+        np.sqrt(h2, out=tmp)
+        dec = np.arctan2(v2, tmp, out=out[4])
+        dec *= DEG_PER_RAD
+        ra = np.subtract(ins.eral * DEG_PER_RAD, ha, out=out[5])
+        np.multiply(ra, 1.0 / 360.0, out=tmp)
+        np.floor(tmp, out=tmp)
+        tmp *= 360.0
+        ra -= tmp
+        # Parallactic angle (SOFA hd2pa) from the same vector, as in :func:`_chain`.
+        np.multiply(yo, -cp, out=tmp)
+        np.multiply(h2, sp, out=tmp2)
+        tmp2 -= np.multiply(np.multiply(v2, cp, out=v2), v0, out=v2)
+        pa = np.arctan2(tmp, tmp2, out=out[6])
+        pa *= DEG_PER_RAD
+
+    # Airmass as :func:`airmass_young1994` (NaN below the geometric horizon).
+    airmass, den = out[7], tmp
+    np.multiply(z, 1.002432, out=airmass)
+    airmass += 0.148386
+    airmass *= z
+    airmass += 0.0096467
+    np.add(z, 0.149864, out=den)
+    den *= z
+    den += 0.0102963
+    den *= z
+    den += 0.000303978
+    airmass /= den
+    below = np.less(z, 0.0, out=ws.mask[1])
+    np.copyto(airmass, np.nan, where=below)
+
+    # Sun separation from the chord between the unrefracted unit vectors, as :func:`_chain`.
+    s = ins.sun_aet
+    hc = np.multiply(x, s[0], out=tmp)
+    hc += np.multiply(y, s[1], out=tmp2)
+    hc += np.multiply(z, s[2], out=tmp2)
+    hc *= 0.5
+    np.subtract(0.5, hc, out=hc)
+    np.maximum(hc, 0.0, out=hc)
+    np.sqrt(hc, out=hc)
+    sep = np.arcsin(hc, out=out[9])
+    sep *= 2.0 * DEG_PER_RAD
+    np.multiply(dl, _ARCSEC_PER_RAD, out=out[8])
+
+    # Flags: bits 0-7 gathered in a uint8 row, bit 10 written into the second byte.
+    horizon_limit, avoidance = limits
+    bits, tmp8 = ws.u8
+    np.left_shift(
+        np.less(alt, horizon_limit, out=ws.mask[2]).view(np.uint8),
+        _bit_index(_F_BELOW_HORIZON_LIMIT),
+        out=bits,
+    )
+    bits |= np.left_shift(
+        np.less(sep, avoidance, out=ws.mask[3]).view(np.uint8),
+        _bit_index(_F_WITHIN_SUN_AVOIDANCE),
+        out=tmp8,
+    )
+    scalar_bits = 0
+    for value, test, bit in (
+        (px, np.isnan, _bit_index(_F_MISSING_PARALLAX)),
+        (px, None, _bit_index(_F_NON_POSITIVE_PARALLAX)),  # None: the test value <= 0
+        (rv, np.isnan, _bit_index(_F_MISSING_RADIAL_VELOCITY)),
+        (pmra, np.isnan, _bit_index(_F_MISSING_PROPER_MOTION)),
+        (pmdec, np.isnan, _bit_index(_F_MISSING_PROPER_MOTION)),
+    ):
+        if np.ndim(value) == 0:
+            scalar_bits |= bool(value <= 0.0 if test is None else test(value)) << bit
+        else:
+            m = ws.mask[3]
+            if test is None:
+                np.less_equal(value, 0.0, out=m)
+            else:
+                test(value, out=m)
+            bits |= np.left_shift(m.view(np.uint8), bit, out=tmp8)
+    if scalar_bits:
+        bits |= scalar_bits
+    flags = out[10]
+    np.copyto(flags, bits)
+    byte1 = flags.view(np.uint8)[_FLAG_BYTE1::4]
+    np.left_shift(below.view(np.uint8), _bit_index(_F_AIRMASS_UNDEFINED) - 8, out=byte1)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -1655,6 +1932,8 @@ class _InstantState:
         """Star-independent quantities for the geocentric places (computed once)."""
         if self._geo is None:
             self._geo = _geocentric_astrom(self.tt1, self.tt2, self.astrom, self.ebpv, self.ehp)
+            if "fast" in self._geo:  # one instant: the equation of the origins goes with it
+                self._geo["fast"].eo = float(self.eo)
         return self._geo
 
 
@@ -1802,6 +2081,13 @@ def observed_places(
        that repeated requests for one instant, one star at a time, compute them once. Keys
        are exact (no rounding), so results are the same with and without the cache; the
        cached arrays returned (``eop``, ``epoch_tt_jyear``) are read-only.
+    7. Stars along one axis at one instant (one star included) go through
+       :func:`_observe_block`: the formulae of the general path in the same order, as
+       in-place numpy operations on work arrays reused block by block (``CHAIN_BLOCK``
+       stars), so that the number of numpy calls does not grow with the number of stars
+       and nothing is allocated per star; the star-only terms are shared by the observed
+       and geocentric places. Results agree with the general path to a few units in the
+       last place (tested).
 
     References
     ----------
@@ -1830,51 +2116,53 @@ def observed_places(
     shape = np.broadcast_shapes(star_shape, jd1.shape)
     dt = st.epoch_tt - stars[6]
     limits = (float(horizon_limit_deg), float(sun_avoidance_deg))
-    terms = None
-    if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
-        # Many stars, one instant: run the chain block by block (cache-sized temporaries).
-        # Scalars stay scalars (cheaper, and the no-motion case is recognised).
+    a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
+    if jd1.ndim == 0 and len(shape) == 1 and shape[0] > 0:
+        # Stars along one axis at one instant (one star included): in-place chain, block by
+        # block (Note 7); scalars stay scalars (cheaper, and the no-motion case is
+        # recognised).
+        n = shape[0]
         full = [a if a.ndim == 0 else np.broadcast_to(a, shape) for a in stars[:6]]
-        full.append(dt if np.ndim(dt) == 0 else np.broadcast_to(dt, shape))
-        out = [np.empty(shape, dtype=dt_) for _, dt_ in _CHAIN_FIELDS]
-        for i in range(0, shape[0], CHAIN_BLOCK):
+        full_dt = dt if np.ndim(dt) == 0 else np.broadcast_to(dt, shape)
+        out = [
+            np.empty(shape, dtype=dt_)
+            if hour_angle or name not in _DETAIL_FIELDS
+            else _shaped(np.nan, shape)
+            for name, dt_ in _CHAIN_FIELDS
+        ]
+        geo = gout = None
+        if geocentric:
+            geo = st.geocentric()["fast"]
+            gout = [np.empty(shape) for _ in range(5)]
+        ws = _Scratch(min(n, CHAIN_BLOCK))
+        for i in range(0, n, CHAIN_BLOCK):
             sl = slice(i, i + CHAIN_BLOCK)
-            views = [o[sl] for o in out]
-            res = _chain(
-                *(a if np.ndim(a) == 0 else a[sl] for a in full), ins, limits, hour_angle, views
-            )
-            for v, r in zip(views, res, strict=True):
-                if r is not v:
-                    v[...] = r
+            if n - i < ws.n:
+                ws = _Scratch(n - i)
+            _observe_block(
+                [a if a.ndim == 0 else a[sl] for a in full],
+                full_dt if np.ndim(full_dt) == 0 else full_dt[sl],
+                ins, limits, hour_angle, [o[sl] for o in out], ws, geo,
+                None if gout is None else [g[sl] for g in gout],
+            )  # fmt: skip
+        if geocentric:
+            a_ra, a_dec, app_ra, app_dec, app_ra_cio = gout
     else:
-        # One instant: the star-only terms are shared by the observed and geocentric places.
-        one = jd1.ndim == 0 and stars[0].ndim == 1 and ins.a5 is not None
-        terms = _star_terms(*stars[:6]) if one else None
-        chain = _chain(*stars[:6], dt, ins, limits, hour_angle, terms=terms)
+        chain = _chain(*stars[:6], dt, ins, limits, hour_angle)
         out = [_shaped(r, shape) for r in chain]
+        if geocentric:
+            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(
+                *stars[:6], dt, st.geocentric(), st.eo
+            )
     res = dict(zip((name for name, _ in _CHAIN_FIELDS), out, strict=True))
 
     sun_alt_deg, instant_flags = st.sun_alt_deg, st.instant_flags
     if instant_flags is not None:
-        res["flags"] = _shaped(res["flags"] | instant_flags, shape).astype(np.uint32)
-
-    a_ra = a_dec = app_ra = app_dec = app_ra_cio = np.nan
-    if geocentric:
-        geo, eo = st.geocentric(), st.eo
-        if jd1.ndim == 0 and len(shape) == 1 and shape[0] > CHAIN_BLOCK:
-            full = [np.broadcast_to(a, shape) for a in stars[:6]] + [np.broadcast_to(dt, shape)]
-            gout = [np.empty(shape) for _ in range(5)]
-            for i in range(0, shape[0], CHAIN_BLOCK):
-                sl = slice(i, i + CHAIN_BLOCK)
-                for o, r in zip(
-                    gout, _geocentric_places(*(a[sl] for a in full), geo, eo), strict=True
-                ):
-                    o[sl] = r
-            a_ra, a_dec, app_ra, app_dec, app_ra_cio = gout
+        flags = res["flags"]
+        if type(flags) is np.ndarray and flags.shape == shape and flags.flags.writeable:
+            flags |= instant_flags
         else:
-            a_ra, a_dec, app_ra, app_dec, app_ra_cio = _geocentric_places(
-                *stars[:6], dt, geo, eo, terms=terms
-            )
+            res["flags"] = _shaped(flags | instant_flags, shape).astype(np.uint32)
 
     return ObservedPlaces(
         astrometric_ra_deg=_shaped(a_ra, shape),
@@ -1925,20 +2213,8 @@ def _geocentric_astrom(tt1, tt2, astrom_obs, ebpv, ehp):
     return out
 
 
-def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo, terms=None):
+def _geocentric_places(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo, eo):
     """Geocentric astrometric (SOFA atccq) and apparent (atciq with apci) places, degrees."""
-    if "fast" in geo and np.ndim(ra_deg) == 1:
-        pi, u = _apparent_aet_one_instant(
-            ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["fast"], with_direction=True,
-            terms=terms,
-        )  # fmt: skip
-        a_ra = np.mod(np.arctan2(u[1], u[0]), TWO_PI) * DEG_PER_RAD
-        a_dec = np.arctan2(u[2], np.sqrt(u[0] * u[0] + u[1] * u[1])) * DEG_PER_RAD
-        ri = np.arctan2(pi[1], pi[0])
-        di = np.arctan2(pi[2], np.sqrt(pi[0] * pi[0] + pi[1] * pi[1]))
-        ra_cio = np.mod(ri, TWO_PI) * DEG_PER_RAD
-        ra_eq = np.mod(ri - eo, TWO_PI) * DEG_PER_RAD
-        return a_ra, a_dec, ra_eq, di * DEG_PER_RAD, ra_cio
     q = _star_vectors(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, geo["eb"])
     a_ra = np.mod(np.arctan2(q[1], q[0]), TWO_PI) * DEG_PER_RAD
     a_dec = np.arctan2(q[2], np.sqrt(q[0] * q[0] + q[1] * q[1])) * DEG_PER_RAD
