@@ -1046,10 +1046,10 @@ class _Instant:
     k2_const: np.ndarray = None
     inv_1_bm1: np.ndarray = None
     # One-instant matrix form (None for arrays of instants).
-    a5: np.ndarray = None
+    a2: np.ndarray = None
+    b5: np.ndarray = None
     eb_row: np.ndarray = None
-    meh_col: np.ndarray = None
-    mv_col: np.ndarray = None
+    eb_col: np.ndarray = None
 
 
 def _instant_quantities(astrom) -> _Instant:
@@ -1072,22 +1072,25 @@ def _instant_quantities(astrom) -> _Instant:
         m_eh=_rot(m, eh), m_v=_rot(m, v), ehv=eh[0] * v[0] + eh[1] * v[1] + eh[2] * v[2],
         srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em, dlim=1e-6 / np.maximum(em * em, 1.0),
         k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em, inv_1_bm1=1.0 / (1.0 + bm1),
-        **_one_instant_matrices(m, eb, eh, v),
+        **_one_instant_matrices(m, eb, eh, v, sun_aet),
     )  # fmt: skip
 
 
-def _one_instant_matrices(m, eb, eh, v):
-    """Matrices for :func:`_observe_block` (only for a single instant)."""
+def _one_instant_matrices(m, eb, eh, v, sun=None):
+    """Matrices for :func:`_apparent_into` (only for a single instant).
+
+    ``a2`` (2, 3): rows e and v, giving u.e and u.v; ``b5`` (3, 5): [M | M e | M v], so
+    that M (s u + t e + k v) = b5 @ (s u, t, k); with ``sun`` (the Sun's unit vector in the
+    frame of M) a fourth row sun.b5 gives the dot product with the Sun's direction as well.
+    """
     if np.ndim(m) != 2:
         return {}
     eb, eh, v = (np.array([float(c) for c in x]) for x in (eb, eh, v))
-    a5 = np.vstack([eh, v, m])
-    return {
-        "a5": a5,
-        "eb_row": eb,
-        "meh_col": (m @ eh)[:, None],
-        "mv_col": (m @ v)[:, None],
-    }
+    m = np.asarray(m, dtype=float)
+    b5 = np.hstack([m, (m @ eh)[:, None], (m @ v)[:, None]])
+    if sun is not None:
+        b5 = np.vstack([b5, np.array([float(c) for c in sun]) @ b5])
+    return {"a2": np.vstack([eh, v]), "b5": b5, "eb_row": eb, "eb_col": eb[:, None].copy()}
 
 
 def _apparent_aet(q, ins: _Instant):
@@ -1232,16 +1235,18 @@ class _Scratch:
 
     def __init__(self, n: int):
         self.n = n
-        f = np.empty((46, n))
+        f = np.empty((48, n))
         self.ang, self.t2, self.d, self.sh, self.sin, self.cos = (
             f[i : i + 2] for i in range(0, 12, 2)
         )
-        self.p0, self.p, self.r, self.t3 = (f[i : i + 3] for i in range(12, 24, 3))
-        self.q = f[24:29]
+        self.p0, self.p, self.t3 = f[12:15], f[15:18], f[18:21]
+        self.r = f[21:25]  # direction (3 rows) and its dot product with the Sun's
+        self.q = f[25:27]
+        self.x5 = f[27:32]
         (
-            self.pxr, self.uu, self.w, self.g, self.pdv, self.k1, self.k2, self.tmp,
-            self.tmp2, self.a, self.b, self.c, self.bz, self.r0, self.rr, self.zz, self.f,
-        ) = f[29:46]  # fmt: skip
+            self.pxr, self.uu, self.w, self.g, self.pdv, self.k1, self.tmp, self.tmp2,
+            self.a, self.b, self.c, self.bz, self.r0, self.rr, self.zz, self.f,
+        ) = f[32:48]  # fmt: skip
         # Rows reused after the apparent direction is known (their first use is over).
         (self.tz, self.wr, self.dl, self.cosdel, self.zaeo, self.xo, self.yo, self.v0,
          self.v2, self.h2) = f[0:10]  # fmt: skip
@@ -1257,14 +1262,14 @@ def _bit_index(flag: int) -> int:
 def _angles_sincos(ra_deg, dec_deg, ws: _Scratch):
     """Sines and cosines of RA and Dec (degrees) into ``ws.sin``, ``ws.cos`` (rows RA, Dec).
 
-    The arithmetic of :func:`_sincos` (tangent of the quarter angle), for both angles in one
-    pass: RA in [0, 360] is shifted by pi (both signs flipped afterwards), other RA values
-    are reduced to [-pi, pi]; declinations need no reduction.
+    RA: the arithmetic of :func:`_sincos` (tangent of the quarter angle); RA in [0, 360] is
+    shifted by pi (both signs flipped afterwards), other values are reduced to [-pi, pi].
+    Dec: the tangent of the half angle, t = tan(d/2) with |t| <= 1 for |d| <= 90 deg:
+    sin d = 2t / (1 + t^2), cos d = (1 - t^2) / (1 + t^2).
     """
-    a, t2, d, sh, s, c = ws.ang, ws.t2, ws.d, ws.sh, ws.sin, ws.cos
-    ra = a[0]
+    ra, t2, d, sh = ws.ang[0], ws.t2[0], ws.d[0], ws.sh[0]
+    (sr, sd), (cr, cd) = ws.sin, ws.cos
     np.multiply(ra_deg, RAD_PER_DEG, out=ra)
-    np.multiply(dec_deg, RAD_PER_DEG, out=a[1])
     if ws.n == 1:
         in_range = 0.0 <= ra.item() <= TWO_PI
     else:
@@ -1272,28 +1277,38 @@ def _angles_sincos(ra_deg, dec_deg, ws: _Scratch):
     if in_range:
         ra -= np.pi
     else:
-        tmp = t2[0]
-        np.multiply(ra, 1.0 / TWO_PI, out=tmp)
-        np.round(tmp, out=tmp)
-        tmp *= TWO_PI
-        ra -= tmp
-    a *= 0.25
-    np.tan(a, out=a)  # t = tan(x / 4)
-    np.multiply(a, a, out=t2)
+        np.multiply(ra, 1.0 / TWO_PI, out=t2)
+        np.round(t2, out=t2)
+        t2 *= TWO_PI
+        ra -= t2
+    ra *= 0.25
+    t = np.tan(ra, out=ra)  # tan(x / 4)
+    np.multiply(t, t, out=t2)
     np.add(t2, 1.0, out=d)
     np.divide(1.0, d, out=d)  # 1 / (1 + t^2)
     np.multiply(d, 2.0, out=sh)
-    sh *= a  # sin(x / 2)
+    sh *= t  # sin(x / 2)
     np.subtract(1.0, t2, out=t2)
-    t2 *= d  # cos(x / 2)
-    np.multiply(sh, 2.0, out=s)
-    s *= t2  # sin x = 2 sin(x/2) cos(x/2)
-    np.subtract(t2, sh, out=c)
-    sh += t2
-    c *= sh  # cos x = (cos(x/2) - sin(x/2)) (cos(x/2) + sin(x/2))
+    ch = np.multiply(t2, d, out=t2)  # cos(x / 2)
+    np.multiply(sh, 2.0, out=sr)
+    sr *= ch  # sin x = 2 sin(x/2) cos(x/2)
+    np.subtract(ch, sh, out=cr)
+    sh += ch
+    cr *= sh  # cos x = (cos(x/2) - sin(x/2)) (cos(x/2) + sin(x/2))
     if in_range:  # sin(x + pi) = -sin x, cos(x + pi) = -cos x
-        np.negative(s[0], out=s[0])
-        np.negative(c[0], out=c[0])
+        np.negative(sr, out=sr)
+        np.negative(cr, out=cr)
+
+    t, t2, d = ws.ang[1], ws.t2[1], ws.d[1]
+    np.multiply(dec_deg, 0.5 * RAD_PER_DEG, out=t)
+    np.tan(t, out=t)  # tan(d / 2)
+    np.multiply(t, t, out=t2)
+    np.add(t2, 1.0, out=d)
+    np.divide(1.0, d, out=d)
+    np.multiply(d, 2.0, out=sd)
+    sd *= t
+    np.subtract(1.0, t2, out=cd)
+    cd *= d
 
 
 def _toward_star(motion, dt, ins, ws: _Scratch):
@@ -1304,8 +1319,9 @@ def _toward_star(motion, dt, ins, ws: _Scratch):
     year, or None for a star without space motion. As :func:`_star_vectors`.
     """
     p0, p = ws.p0, ws.p
+    shift = np.multiply(ins.eb_col, ws.pxr, out=ws.t3)  # parallax eb
     if motion is None:
-        np.copyto(p, p0)
+        np.subtract(p0, shift, out=p)
     else:
         mu_a, mu_d, zeta = motion
         (sr, sd), (cr, cd) = ws.sin, ws.cos
@@ -1327,27 +1343,36 @@ def _toward_star(motion, dt, ins, ws: _Scratch):
         p[1] -= np.multiply(bz, sr, out=tmp)
         np.multiply(c, p0[2], out=p[2])
         p[2] += np.multiply(b, cd, out=tmp)
-    p -= np.multiply(ins.eb_row[:, None], ws.pxr, out=ws.t3)  # - parallax eb
+        p -= shift
 
 
-def _apparent_into(ins, ws: _Scratch):
-    """Light deflection (ldsun), aberration (ab) and the rotation of ``ins.a5``, fused.
+def _sum_squares(rows, out, tmp):
+    """Sum over the first axis of ``rows`` squared, into ``out`` (``tmp``: work rows)."""
+    if rows.shape[1] >= 64:
+        return np.einsum("ij,ij->j", rows, rows, out=out)
+    sq = np.multiply(rows, rows, out=tmp[: rows.shape[0]])
+    return np.add.reduce(sq, axis=0, out=out)
+
+
+def _apparent_into(ins, ws: _Scratch, with_sun=False):
+    """Light deflection (ldsun), aberration (ab) and the rotation of the instant, fused.
 
     From the unnormalised direction u in ``ws.p``, the unit vector of the aberrated
-    direction rotated by the instant's matrix (azimuth/elevation frame for the observer,
-    the bias-precession-nutation for the geocentre) goes into ``ws.r``. The arithmetic of
-    :func:`_apparent_aet`: with q = u/|u|, q' = (1 - w q.e) q + w e (ldsun) and
-    p = k1 q' + k2 v (ab); M p = k1 (1 - w q.e) (M q) + k1 w (M e) + k2 (M v).
+    direction rotated by the instant's matrix M (to the azimuth/elevation frame for the
+    observer, the bias-precession-nutation for the geocentre) goes into ``ws.r[:3]``, and
+    with ``with_sun`` its dot product with the Sun's direction into ``ws.r[3]``. The
+    arithmetic of :func:`_apparent_aet`: with q = u/|u|, q' = (1 - w q.e) q + w e (ldsun)
+    and p = k1 q' + k2 v (ab), M p = M (k1 (1 - w q.e) q + k1 w e + k2 v), one product of
+    the instant's ``b5`` with the stacked coefficients (:func:`_one_instant_matrices`).
     """
-    p, q, uu, r = ws.p, ws.q, ws.uu, ws.r
-    np.matmul(ins.a5, p, out=q)  # rows: u.eh, u.v, M u
-    np.multiply(p, p, out=ws.t3)
-    np.add.reduce(ws.t3, axis=0, out=uu)
-    np.sqrt(uu, out=uu)
-    inv = np.divide(1.0, uu, out=uu)
+    p, q, x = ws.p, ws.q, ws.x5
+    np.matmul(ins.a2, p, out=q)  # rows: u.eh, u.v
+    inv = _sum_squares(p, ws.uu, ws.t3)
+    np.sqrt(inv, out=inv)
+    np.divide(1.0, inv, out=inv)
     qe = np.multiply(q[0], inv, out=q[0])
     qv = np.multiply(q[1], inv, out=q[1])
-    w, g, pdv, k1, k2, tmp = ws.w, ws.g, ws.pdv, ws.k1, ws.k2, ws.tmp
+    w, g, pdv, k1, tmp = ws.w, ws.g, ws.pdv, ws.k1, ws.tmp
     np.add(qe, 1.0, out=w)
     np.maximum(w, ins.dlim, out=w)
     np.divide(ins.srs_over_em, w, out=w)
@@ -1357,19 +1382,18 @@ def _apparent_into(ins, ws: _Scratch):
     pdv += np.multiply(w, ins.ehv, out=tmp)
     np.multiply(pdv, ins.srs_over_em, out=k1)
     np.subtract(ins.bm1, k1, out=k1)
-    np.multiply(pdv, ins.inv_1_bm1, out=k2)
+    k2 = np.multiply(pdv, ins.inv_1_bm1, out=x[4])
     k2 += ins.k2_const
     np.multiply(k1, g, out=tmp)
     tmp *= inv
-    np.multiply(q[2:], tmp, out=r)
-    np.multiply(k1, w, out=tmp)
-    r += np.multiply(ins.meh_col, tmp, out=ws.t3)
-    r += np.multiply(ins.mv_col, k2, out=ws.t3)
-    np.multiply(r, r, out=ws.t3)
-    np.add.reduce(ws.t3, axis=0, out=tmp)
-    np.sqrt(tmp, out=tmp)
-    np.divide(1.0, tmp, out=tmp)
-    r *= tmp
+    np.multiply(p, tmp, out=x[:3])  # k1 (1 - w q.e) q
+    np.multiply(k1, w, out=x[3])
+    r = ws.r if with_sun else ws.r[:3]
+    np.matmul(ins.b5, x, out=r)
+    norm = _sum_squares(r[:3], tmp, ws.t3)
+    np.sqrt(norm, out=norm)
+    np.divide(1.0, norm, out=norm)
+    r *= norm
 
 
 def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, geo=None,
@@ -1431,8 +1455,8 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
         app_ra *= DEG_PER_RAD
 
     _toward_star(motion, dt, ins, ws)
-    _apparent_into(ins, ws)
-    x, y, z = ws.r
+    _apparent_into(ins, ws, with_sun=True)
+    x, y, z, sun_dot = ws.r
     tmp, tmp2 = ws.tmp, ws.tmp2
     # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
     az = np.arctan2(y, x, out=out[0])
@@ -1515,14 +1539,10 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     den += 0.000303978
     airmass /= den
     below = np.less(z, 0.0, out=ws.mask[1])
-    np.copyto(airmass, np.nan, where=below)
+    np.putmask(airmass, below, np.nan)
 
     # Sun separation from the chord between the unrefracted unit vectors, as :func:`_chain`.
-    s = ins.sun_aet
-    hc = np.multiply(x, s[0], out=tmp)
-    hc += np.multiply(y, s[1], out=tmp2)
-    hc += np.multiply(z, s[2], out=tmp2)
-    hc *= 0.5
+    hc = np.multiply(sun_dot, 0.5, out=tmp)
     np.subtract(0.5, hc, out=hc)
     np.maximum(hc, 0.0, out=hc)
     np.sqrt(hc, out=hc)
