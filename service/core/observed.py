@@ -24,6 +24,7 @@ import functools
 import math
 import os
 import sys
+import threading
 import types
 import warnings
 from dataclasses import dataclass, field
@@ -1254,6 +1255,21 @@ class _Scratch:
         self.u8 = np.empty((2, n), dtype=np.uint8)
 
 
+#: Work arrays for single stars, one set per thread (a request's thread uses them from start
+#: to end of one call; made once instead of on every one-star request).
+_ONE_STAR_SCRATCH = threading.local()
+
+
+def _scratch(n: int) -> _Scratch:
+    """Work arrays for a block of ``n`` stars: new ones, or this thread's for one star."""
+    if n != 1:
+        return _Scratch(n)
+    ws = getattr(_ONE_STAR_SCRATCH, "ws", None)
+    if ws is None:
+        ws = _ONE_STAR_SCRATCH.ws = _Scratch(1)
+    return ws
+
+
 def _bit_index(flag: int) -> int:
     """Position of a single-bit flag (16 -> 4)."""
     return flag.bit_length() - 1
@@ -2146,8 +2162,10 @@ def observed_places(
         # block (Note 7); scalars stay scalars (cheaper, and the no-motion case is
         # recognised).
         n = shape[0]
-        full = [a if a.ndim == 0 else np.broadcast_to(a, shape) for a in stars[:6]]
-        full_dt = dt if np.ndim(dt) == 0 else np.broadcast_to(dt, shape)
+        full = [
+            a if a.ndim == 0 or a.shape == shape else np.broadcast_to(a, shape) for a in stars[:6]
+        ]
+        full_dt = dt if np.ndim(dt) == 0 or dt.shape == shape else np.broadcast_to(dt, shape)
         out = [
             np.empty(shape, dtype=dt_)
             if hour_angle or name not in _DETAIL_FIELDS
@@ -2158,17 +2176,20 @@ def observed_places(
         if geocentric:
             geo = st.geocentric()["fast"]
             gout = [np.empty(shape) for _ in range(5)]
-        ws = _Scratch(min(n, CHAIN_BLOCK))
-        for i in range(0, n, CHAIN_BLOCK):
-            sl = slice(i, i + CHAIN_BLOCK)
-            if n - i < ws.n:
-                ws = _Scratch(n - i)
-            _observe_block(
-                [a if a.ndim == 0 else a[sl] for a in full],
-                full_dt if np.ndim(full_dt) == 0 else full_dt[sl],
-                ins, limits, hour_angle, [o[sl] for o in out], ws, geo,
-                None if gout is None else [g[sl] for g in gout],
-            )  # fmt: skip
+        if n <= CHAIN_BLOCK:  # one block: no slicing
+            _observe_block(full, full_dt, ins, limits, hour_angle, out, _scratch(n), geo, gout)
+        else:
+            ws = _Scratch(CHAIN_BLOCK)
+            for i in range(0, n, CHAIN_BLOCK):
+                sl = slice(i, i + CHAIN_BLOCK)
+                if n - i < ws.n:
+                    ws = _Scratch(n - i)
+                _observe_block(
+                    [a if a.ndim == 0 else a[sl] for a in full],
+                    full_dt if np.ndim(full_dt) == 0 else full_dt[sl],
+                    ins, limits, hour_angle, [o[sl] for o in out], ws, geo,
+                    None if gout is None else [g[sl] for g in gout],
+                )  # fmt: skip
         if geocentric:
             a_ra, a_dec, app_ra, app_dec, app_ra_cio = gout
     else:
