@@ -1244,10 +1244,11 @@ class _Scratch:
         self.r = f[21:25]  # direction (3 rows) and its dot product with the Sun's
         self.q = f[25:27]
         self.x5 = f[27:32]
+        self.motion = f[40:43]  # space motion per unit distance (3 rows)
         (
             self.pxr, self.uu, self.w, self.g, self.pdv, self.k1, self.tmp, self.tmp2,
-            self.a, self.b, self.c, self.bz, self.r0, self.rr, self.zz, self.f,
-        ) = f[32:48]  # fmt: skip
+        ) = f[32:40]  # fmt: skip
+        self.r0, self.rr, self.zz, self.f = f[44:48]
         # Rows reused after the apparent direction is known (their first use is over).
         (self.tz, self.wr, self.dl, self.cosdel, self.zaeo, self.xo, self.yo, self.v0,
          self.v2, self.h2) = f[0:10]  # fmt: skip
@@ -1327,39 +1328,44 @@ def _angles_sincos(ra_deg, dec_deg, ws: _Scratch):
     cd *= d
 
 
-def _toward_star(motion, dt, ins, ws: _Scratch):
+def _space_motion(mu_a, mu_d, zeta, ws: _Scratch):
+    """Space motion per unit distance w = mu_a* e_a + mu_d e_d + zeta p0, into ``ws.motion``.
+
+    ``ws.p0`` holds the catalogue direction p0 and ``ws.sin``/``ws.cos`` its angles; e_a =
+    (-sin a, cos a, 0) and e_d = (-sin d cos a, -sin d sin a, cos d) are the directions of
+    increasing RA and Dec; mu_a* (RA component times cos d) and mu_d in radians per year,
+    zeta = radial velocity x parallax / A in radians per year (SOFA ``pmpx``).
+    """
+    (sr, sd), (cr, cd) = ws.sin, ws.cos
+    w, tmp, md_sd = ws.motion, ws.tmp, ws.tmp2
+    np.multiply(ws.p0, zeta, out=w)
+    np.multiply(sd, mu_d, out=md_sd)
+    w[0] -= np.multiply(sr, mu_a, out=tmp)
+    w[0] -= np.multiply(md_sd, cr, out=tmp)
+    w[1] += np.multiply(cr, mu_a, out=tmp)
+    w[1] -= np.multiply(md_sd, sr, out=tmp)
+    w[2] += np.multiply(cd, mu_d, out=tmp)
+
+
+def _toward_star(moving, dt, ins, ws: _Scratch):
     """Direction from the observer, unnormalised, into ``ws.p`` (SOFA ``pmpx``).
 
-    ``ws.p0`` holds the catalogue direction, ``ws.sin``/``ws.cos`` its angles and ``ws.pxr``
-    the parallax in radians; ``motion`` is (mu_a, mu_d, zeta) in radians per year and per
-    year, or None for a star without space motion. As :func:`_star_vectors`.
+    u = p0 + dt' w - parallax eb, with ``ws.p0`` the catalogue direction, ``ws.motion`` its
+    space motion w (:func:`_space_motion`, used if ``moving``), ``ws.pxr`` the parallax in
+    radians and dt' = dt + (p0.eb)/c the interval with the light time across the
+    observer's offset from the barycentre. As :func:`_star_vectors`.
     """
     p0, p = ws.p0, ws.p
     shift = np.multiply(ins.eb_col, ws.pxr, out=ws.t3)  # parallax eb
-    if motion is None:
+    if not moving:
         np.subtract(p0, shift, out=p)
-    else:
-        mu_a, mu_d, zeta = motion
-        (sr, sd), (cr, cd) = ws.sin, ws.cos
-        t = ws.tmp
-        np.matmul(ins.eb_row, p0, out=t)
-        t *= LIGHT_TIME_AU_YR
-        t += dt  # dt' = dt + (p.eb)/c: light time across the observer's offset (pmpx)
-        a, b, c, bz, tmp = ws.a, ws.b, ws.c, ws.bz, ws.tmp2
-        np.multiply(t, mu_a, out=a)
-        np.multiply(t, mu_d, out=b)
-        np.multiply(t, zeta, out=c)
-        c += 1.0
-        np.multiply(b, sd, out=bz)
-        np.multiply(c, p0[0], out=p[0])
-        p[0] -= np.multiply(a, sr, out=tmp)
-        p[0] -= np.multiply(bz, cr, out=tmp)
-        np.multiply(c, p0[1], out=p[1])
-        p[1] += np.multiply(a, cr, out=tmp)
-        p[1] -= np.multiply(bz, sr, out=tmp)
-        np.multiply(c, p0[2], out=p[2])
-        p[2] += np.multiply(b, cd, out=tmp)
-        p -= shift
+        return
+    t = np.matmul(ins.eb_row, p0, out=ws.tmp)
+    t *= LIGHT_TIME_AU_YR
+    t += dt
+    np.multiply(ws.motion, t, out=p)
+    p += p0
+    p -= shift
 
 
 def _sum_squares(rows, out, tmp):
@@ -1435,12 +1441,15 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     pxr = np.fmax(px, 0.0, out=ws.pxr)  # NaN (missing) and non-positive parallax: none
     pxr *= 1.0 / MAS_PER_RAD
     mu_a, mu_d, zeta = _nan0(pmra), _nan0(pmdec), _nan0(rv)
-    motion = None
-    if not (np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0):
-        motion = (
+    motion = not (
+        np.ndim(mu_a) == np.ndim(mu_d) == np.ndim(zeta) == 0 and mu_a == mu_d == zeta == 0
+    )
+    if motion:
+        _space_motion(
             mu_a * (1.0 / MAS_PER_RAD),
             mu_d * (1.0 / MAS_PER_RAD),
             zeta * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * pxr,
+            ws,
         )
 
     if geo is not None:
