@@ -1279,42 +1279,44 @@ def _bit_index(flag: int) -> int:
 def _angles_sincos(ra_deg, dec_deg, ws: _Scratch):
     """Sines and cosines of RA and Dec (degrees) into ``ws.sin``, ``ws.cos`` (rows RA, Dec).
 
-    RA: the arithmetic of :func:`_sincos` (tangent of the quarter angle); RA in [0, 360] is
-    shifted by pi (both signs flipped afterwards), other values are reduced to [-pi, pi].
+    RA: from the tangent of the quarter angle as :func:`_sincos` (double-angle formulae
+    applied twice, in the combined form below); RA in [0, 360] is shifted by pi (both
+    signs flipped), other values are reduced to [-pi, pi].
     Dec: the tangent of the half angle, t = tan(d/2) with |t| <= 1 for |d| <= 90 deg:
     sin d = 2t / (1 + t^2), cos d = (1 - t^2) / (1 + t^2).
     """
-    ra, t2, d, sh = ws.ang[0], ws.t2[0], ws.d[0], ws.sh[0]
+    t, t2, d, t4 = ws.ang[0], ws.t2[0], ws.d[0], ws.sh[0]
     (sr, sd), (cr, cd) = ws.sin, ws.cos
-    np.multiply(ra_deg, RAD_PER_DEG, out=ra)
+    np.multiply(ra_deg, 0.25 * RAD_PER_DEG, out=t)  # a quarter of the RA, radians
     if ws.n == 1:
-        in_range = 0.0 <= ra.item() <= TWO_PI
+        in_range = 0.0 <= t.item() <= 0.25 * TWO_PI
     else:
-        in_range = ra.min() >= 0.0 and ra.max() <= TWO_PI
+        in_range = t.min() >= 0.0 and t.max() <= 0.25 * TWO_PI
     if in_range:
-        ra -= np.pi
+        t -= 0.25 * np.pi
     else:
-        np.multiply(ra, 1.0 / TWO_PI, out=t2)
+        np.multiply(t, 4.0 / TWO_PI, out=t2)
         np.round(t2, out=t2)
-        t2 *= TWO_PI
-        ra -= t2
-    ra *= 0.25
-    t = np.tan(ra, out=ra)  # tan(x / 4)
+        t2 *= 0.25 * TWO_PI
+        t -= t2
+    np.tan(t, out=t)  # t = tan(x / 4), |x| <= pi
     np.multiply(t, t, out=t2)
     np.add(t2, 1.0, out=d)
-    np.divide(1.0, d, out=d)  # 1 / (1 + t^2)
-    np.multiply(d, 2.0, out=sh)
-    sh *= t  # sin(x / 2)
-    np.subtract(1.0, t2, out=t2)
-    ch = np.multiply(t2, d, out=t2)  # cos(x / 2)
-    np.multiply(sh, 2.0, out=sr)
-    sr *= ch  # sin x = 2 sin(x/2) cos(x/2)
-    np.subtract(ch, sh, out=cr)
-    sh += ch
-    cr *= sh  # cos x = (cos(x/2) - sin(x/2)) (cos(x/2) + sin(x/2))
-    if in_range:  # sin(x + pi) = -sin x, cos(x + pi) = -cos x
-        np.negative(sr, out=sr)
-        np.negative(cr, out=cr)
+    np.divide(1.0, d, out=d)
+    np.multiply(d, d, out=d)  # 1 / (1 + t^2)^2
+    np.multiply(t2, 4.0, out=t4)
+    omt = np.subtract(1.0, t2, out=t2)  # 1 - t^2
+    # sin x = 4 t (1 - t^2) / (1 + t^2)^2, cos x = ((1 - t^2)^2 - 4 t^2) / (1 + t^2)^2;
+    # for x = RA - pi, sin RA = -sin x and cos RA = -cos x.
+    np.multiply(t, -4.0 if in_range else 4.0, out=sr)
+    sr *= omt
+    sr *= d
+    np.multiply(omt, omt, out=cr)
+    if in_range:
+        np.subtract(t4, cr, out=cr)
+    else:
+        cr -= t4
+    cr *= d
 
     t, t2, d = ws.ang[1], ws.t2[1], ws.d[1]
     np.multiply(dec_deg, 0.5 * RAD_PER_DEG, out=t)
