@@ -2177,16 +2177,17 @@ def observed_places(
             a if a.ndim == 0 or a.shape == shape else np.broadcast_to(a, shape) for a in stars[:6]
         ]
         full_dt = dt if np.ndim(dt) == 0 or dt.shape == shape else np.broadcast_to(dt, shape)
+        missing = np.broadcast_to(np.nan, shape)  # one read-only view for what is skipped
         out = [
-            np.empty(shape, dtype=dt_)
-            if hour_angle or name not in _DETAIL_FIELDS
-            else _shaped(np.nan, shape)
+            np.empty(shape, dtype=dt_) if hour_angle or name not in _DETAIL_FIELDS else missing
             for name, dt_ in _CHAIN_FIELDS
         ]
         geo = gout = None
         if geocentric:
             geo = st.geocentric()["fast"]
             gout = [np.empty(shape) for _ in range(5)]
+        else:
+            a_ra = a_dec = app_ra = app_dec = app_ra_cio = missing
         if n <= CHAIN_BLOCK:  # one block: no slicing
             _observe_block(full, full_dt, ins, limits, hour_angle, out, _scratch(n), geo, gout)
         else:
