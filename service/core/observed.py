@@ -1427,7 +1427,7 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
                    gout=None):  # fmt: skip
     """:func:`_chain` (and :func:`_geocentric_places`) for 1-D star arrays at one instant.
 
-    The same formulae in the same order, as in-place numpy operations on the work arrays
+    The same formulae, written as in-place numpy operations on the work arrays
     ``ws``, writing into ``out`` (arrays in :data:`_CHAIN_FIELDS` order; with ``detail``
     False the hour angle, observed declination and RA and parallactic angle are left alone)
     and, with ``geo`` (the geocentric instant) given, the geocentric places into ``gout``
@@ -2132,7 +2132,7 @@ def observed_places(
        are exact (no rounding), so results are the same with and without the cache; the
        cached arrays returned (``eop``, ``epoch_tt_jyear``) are read-only.
     7. Stars along one axis at one instant (one star included) go through
-       :func:`_observe_block`: the formulae of the general path in the same order, as
+       :func:`_observe_block`: the formulae of the general path, written as
        in-place numpy operations on work arrays reused block by block (``CHAIN_BLOCK``
        stars), so that the number of numpy calls does not grow with the number of stars
        and nothing is allocated per star; the star-only terms are shared by the observed
