@@ -240,8 +240,8 @@ class ObservedResponseSchema(ma.Schema):
     )
 
 
-def _o(x):
-    x = float(x)
+def _finite(x: float):
+    """A Python float, or None where it is not finite (JSON has no NaN)."""
     return x if math.isfinite(x) else None
 
 
@@ -364,7 +364,9 @@ def observed(args):
     def grid(a):
         return np.broadcast_to(np.asarray(a), (n, m)) if m > 1 else np.asarray(a).reshape(n, 1)
 
-    cols = {name: grid(getattr(res, name)) for name in PLACE_FIELDS}
+    # Each quantity as nested lists of Python floats (one tolist per column, not one numpy
+    # scalar per value).
+    cols = [(name, grid(getattr(res, name)).tolist()) for name in PLACE_FIELDS]
     flag_grid = grid(res.flags)
     names = flag_names(flag_grid.reshape(-1), core.ObservedFlag)
     ids = table.ids
@@ -372,7 +374,7 @@ def observed(args):
     for i in range(n):
         at = []
         for k in range(m):
-            entry = {name: _o(cols[name][i, k]) for name in PLACE_FIELDS}
+            entry = {name: _finite(col[i][k]) for name, col in cols}
             entry["flags"] = names[i * m + k]
             at.append(entry)
         stars.append({"index": i, "id": None if ids is None else ids[i], "at_instants": at})

@@ -538,3 +538,127 @@ def test_hour_angle_option_skips_only_those_outputs():
                              0.3, site, hour_angle=False)  # fmt: skip
     assert np.array_equal(full.altitude_deg, lean.altitude_deg)
     assert np.all(np.isnan(lean.hour_angle_deg)) and np.all(np.isnan(lean.parallactic_angle_deg))
+
+
+# --- One-instant block path (in-place chain) --------------------------------------------------
+
+
+def test_block_path_matches_sofa_atco13_and_atcc13():
+    # The SOFA star as a one-element array takes the in-place block path; ERFA t_erfa_c.c,
+    # t_atco13 (azimuth, zenith distance, hour angle, declination, RA; tol 1e-12 rad).
+    site = O.make_site(-1.2345856 * DEG, -0.527800806 * DEG, 2738.0)
+    atm = O.make_atmosphere(731.0, 12.8, 0.59, 0.55)
+    star = {k: np.array([v]) for k, v in _sofa_star().items()}
+    eop = (0.1550675, 2.47230737e-7 * 206264.80624709636, 1.82640464e-6 * 206264.80624709636)
+    res = _places(star, 2456384.5, 0.969254051, site, atm, eop_values=eop)
+    assert res.azimuth_deg.shape == (1,)
+    assert res.azimuth_deg[0] / DEG == pytest.approx(0.9251774485485515207e-1, abs=1e-12)
+    assert res.zenith_distance_deg[0] / DEG == pytest.approx(1.407661405256499357, abs=1e-12)
+    assert res.hour_angle_deg[0] / DEG == pytest.approx(-0.9265154431529724692e-1, abs=1e-12)
+    assert res.observed_dec_deg[0] / DEG == pytest.approx(0.1716626560072526200, abs=1e-12)
+    assert res.observed_ra_cio_deg[0] / DEG == pytest.approx(2.710260453504961012, abs=1e-12)
+    # ERFA t_erfa_c.c, t_atcc13 and t_atci13 (as test_geocentric_places_match_sofa_...).
+    jd1, jd2 = _utc_for_tt(2456165.5, 0.401182685)
+    res = _places(star, jd1, jd2, O.make_site(0.0, 0.0, 0.0), eop_values=(0.0, 0.0, 0.0))
+    assert res.astrometric_ra_deg[0] / DEG == pytest.approx(2.710126504531372384, abs=1e-12)
+    assert res.astrometric_dec_deg[0] / DEG == pytest.approx(0.1740632537628350152, abs=1e-12)
+    assert res.apparent_ra_cio_deg[0] / DEG == pytest.approx(2.710121572968696744, abs=1e-12)
+    assert res.apparent_dec_deg[0] / DEG == pytest.approx(0.1729371367219539137, abs=1e-12)
+
+
+def _random_catalogue(rng, n):
+    ra = rng.uniform(0.0, 360.0, n)
+    dec = np.degrees(np.arcsin(rng.uniform(-1.0, 1.0, n)))
+    px = rng.uniform(-1.0, 300.0, n)
+    pmra, pmdec, rv = rng.normal(0, 800, n), rng.normal(0, 800, n), rng.normal(0, 60, n)
+    px[::7], rv[::5], pmdec[::11] = np.nan, np.nan, np.nan
+    return ra, dec, px, pmra, pmdec, rv
+
+
+@pytest.mark.parametrize("moving", [True, False])
+def test_block_path_matches_erfa_atco13_on_random_stars(moving):
+    # pyerfa atco13 (run here, per star, with the same Earth orientation and atmosphere) on
+    # random stars: azimuth, zenith distance, hour angle, declination, CIO-based RA to
+    # 1e-12 rad, the SOFA test suite's tolerance for atco13 (measured about 2e-15 rad).
+    rng = np.random.default_rng(31)
+    n = 400
+    ra, dec, px, pmra, pmdec, rv = _random_catalogue(rng, n)
+    px = np.abs(np.nan_to_num(px, nan=3.0)) + 0.01
+    pmdec, rv = np.nan_to_num(pmdec), np.nan_to_num(rv)
+    if not moving:
+        pmra, pmdec, rv = 0.0, 0.0, 0.0
+    site = O.make_site(-29.25, -70.73, 2400.0)
+    atm = O.make_atmosphere(760.0, 10.0, 0.3, 0.65)
+    jd1, jd2, dut, xp_as, yp_as = 2460700.5, 0.2718, -0.05, 0.11, 0.32
+    # atco13's catalogue epoch is J2000.0; its proper motion in RA is dRA/dt (not times
+    # cos dec), rad/yr, and its parallax in arcsec.
+    res = O.observed_places(ra, dec, px, pmra, pmdec, rv, 2000.0, jd1, jd2, site, atm,
+                            eop_values=(dut, xp_as, yp_as))  # fmt: skip
+    dec_r = np.radians(dec)
+    theirs = O._quiet_erfa(
+        erfa.atco13,
+        np.radians(ra), dec_r,
+        np.asarray(pmra) / MAS_PER_RAD / np.cos(dec_r), np.asarray(pmdec) / MAS_PER_RAD,
+        px / 1000.0, rv, jd1, jd2, dut,
+        np.radians(site.longitude_deg), np.radians(site.latitude_deg), site.height_m,
+        xp_as / 206264.80624709636, yp_as / 206264.80624709636,
+        760.0, 10.0, 0.3, 0.65,
+    )  # fmt: skip
+    aob, zob, hob, dob, rob = theirs[:5]
+    tol = 1e-12  # rad
+    assert np.max(np.abs(np.angle(np.exp(1j * (np.radians(res.azimuth_deg) - aob))))) < tol
+    assert np.max(np.abs(np.radians(res.zenith_distance_deg) - zob)) < tol
+    assert np.max(np.abs(np.angle(np.exp(1j * (np.radians(res.hour_angle_deg) - hob))))) < tol
+    assert np.max(np.abs(np.radians(res.observed_dec_deg) - dob)) < tol
+    assert np.max(np.abs(np.angle(np.exp(1j * (np.radians(res.observed_ra_cio_deg) - rob))))) < tol
+
+
+@pytest.mark.parametrize("n", [1, 2, 37, O.CHAIN_BLOCK + 5])
+def test_block_path_equals_general_path(n):
+    # The in-place block path (stars along one axis, one instant) against the general
+    # component path (the same stars as a column against a one-element instant axis): every
+    # quantity to 1e-12 relative or 1 nanoarcsecond, flags identical. Where a quantity is
+    # ill-conditioned, rounding differences of the 1e-16 direction vectors are magnified:
+    # longitudes near their poles are compared as arcs on the sky (times the cosine of the
+    # latitude; the parallactic angle also times the sine of the zenith distance), and the
+    # Sun separation, whose chord form resolves its cosine, through that cosine (1e-15).
+    rng = np.random.default_rng(n)
+    ra, dec, px, pmra, pmdec, rv = _random_catalogue(rng, n)
+    ra[::3] -= 400.0  # RA outside [0, 360): the reduced form of the sines and cosines
+    site = O.make_site(52.1, 4.3, 15.0)
+    args = (ra, dec, px, pmra, pmdec, rv)
+    block = O.observed_places(*args, 1991.25, 2460800.5, 0.42, site)
+    general = O.observed_places(*(a[:, None] for a in args), 1991.25, 2460800.5,
+                                np.array([0.42]), site)  # fmt: skip
+    g = {name: getattr(general, name)[:, 0] for name in ("altitude_deg", "observed_dec_deg",
+         "zenith_distance_deg", "astrometric_dec_deg", "apparent_dec_deg")}  # fmt: skip
+    cos_lat = {
+        "azimuth_deg": np.cos(np.radians(g["altitude_deg"])),
+        "hour_angle_deg": np.cos(np.radians(g["observed_dec_deg"])),
+        "observed_ra_cio_deg": np.cos(np.radians(g["observed_dec_deg"])),
+        "parallactic_angle_deg": np.cos(np.radians(g["observed_dec_deg"]))
+        * np.sin(np.radians(g["zenith_distance_deg"])),
+        "astrometric_ra_deg": np.cos(np.radians(g["astrometric_dec_deg"])),
+        "apparent_ra_deg": np.cos(np.radians(g["apparent_dec_deg"])),
+        "apparent_ra_cio_deg": np.cos(np.radians(g["apparent_dec_deg"])),
+    }
+    for name in tuple(name for name, _ in O._CHAIN_FIELDS) + (
+        "astrometric_ra_deg", "astrometric_dec_deg", "apparent_ra_deg", "apparent_dec_deg",
+        "apparent_ra_cio_deg",
+    ):  # fmt: skip
+        ours, ref = getattr(block, name), getattr(general, name)[:, 0]
+        if name == "flags":
+            np.testing.assert_array_equal(ours, ref)
+            continue
+        np.testing.assert_array_equal(np.isnan(ours), np.isnan(ref))
+        ok = ~np.isnan(ref)
+        diff = np.abs(ours[ok] - ref[ok])
+        if name in ("azimuth_deg", "hour_angle_deg", "observed_ra_cio_deg") or "_ra_" in name:
+            diff = np.minimum(diff, 360.0 - diff)
+        if name in cos_lat:
+            diff = diff * cos_lat[name][ok]
+        if name == "sun_separation_deg":
+            cos_diff = np.abs(np.cos(np.radians(ours[ok])) - np.cos(np.radians(ref[ok])))
+            diff = np.where(cos_diff <= 1e-15, 0.0, diff)
+        one_nas = 1.0 / 3.6e12 if name.endswith("_deg") else 1e-9  # deg, arcsec
+        assert np.all((diff <= one_nas) | (diff <= 1e-12 * np.abs(ref[ok]))), name
