@@ -128,33 +128,42 @@ def worker_peak_rss_mb(master_pid: int) -> float:
     return peak
 
 
-def one_star_rates(rounds: int = 3) -> dict:
-    """Requests/s, one star per request, for the three endpoints of one server.
+#: Gunicorn workers for the one-star rates. One, so that the figure measures the cost of a
+#: request and not where wrk's keep-alive connections happen to land: with two workers, all
+#: eight connections were held by one worker in half of the trials (the other worker idle,
+#: throughput halved), which made single runs differ by 2x.
+ONE_STAR_WORKERS = 1
 
-    The endpoints are measured in turn, ``rounds`` times in alternating order, and each
-    rate is the median of its rounds, so that load from other processes on a shared machine
-    falls on all of them alike; the ratios are formed from the medians. ``rounds_raw`` keeps
-    every round's rates.
-    """
-    url, proc = start()
+
+def rates_in_rounds(url: str, paths: dict, body: dict, rounds: int) -> dict:
+    """Requests/s of each endpoint in ``paths`` (name -> path), measured in turn ``rounds``
+    times in alternating order; the median of each, and every round's figure under
+    ``rounds_raw``. Load from other processes on a shared machine falls on all alike."""
+    samples: dict = {name: [] for name in paths}
+    order = list(paths)
+    for k in range(rounds):
+        for name in order if k % 2 == 0 else order[::-1]:
+            samples[name].append(wrk_rps(url, paths[name], body))
+    rates = {name: float(np.median(v)) for name, v in samples.items()}
+    rates["rounds_raw"] = samples
+    return rates
+
+
+def one_star_rates(rounds: int = 5) -> dict:
+    """Requests/s, one star per request: the constant, propagation and naive endpoints of
+    one server with :data:`ONE_STAR_WORKERS` worker (:func:`rates_in_rounds`)."""
+    url, proc = start(workers=ONE_STAR_WORKERS)
     paths = {
         "constant": "/bench/constant",
         "propagation": "/v1/propagation",
         "naive": "/bench/naive",
     }
-    samples: dict = {name: [] for name in paths}
     try:
         for path in paths.values():
             requests.post(url + path, json=ONE_STAR, timeout=10).raise_for_status()
-        order = list(paths)
-        for k in range(rounds):
-            for name in order if k % 2 == 0 else order[::-1]:
-                samples[name].append(wrk_rps(url, paths[name], ONE_STAR))
+        return rates_in_rounds(url, paths, ONE_STAR, rounds)
     finally:
         stop(proc)
-    rates = {name: float(np.median(v)) for name, v in samples.items()}
-    rates["rounds_raw"] = samples
-    return rates
 
 
 ARROW_MIMETYPE = "application/vnd.apache.arrow.stream"
@@ -413,8 +422,8 @@ def main() -> None:
         return
     rates = one_star_rates()
     print(
-        "HTTP, one star per request, gunicorn (deploy/gunicorn.conf.py), wrk -t1 -c8, "
-        f"median of 3 alternating rounds of {DURATION_S} s; load average "
+        f"HTTP, one star per request, gunicorn (deploy/gunicorn.conf.py, {ONE_STAR_WORKERS} "
+        f"worker), wrk -t1 -c8, median of 5 alternating rounds of {DURATION_S} s; load average "
         f"{os.getloadavg()[0]:.2f}:"
     )
     for k in ("constant", "propagation", "naive"):

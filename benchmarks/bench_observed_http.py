@@ -5,10 +5,11 @@ naive endpoint that uses astropy's AltAz transform per request, load from wrk on
 
 Run: ``PYTHONPATH=. python -m benchmarks.bench_observed_http [rounds]`` (needs ``wrk``).
 
-The constant and observed endpoints are measured in ``rounds`` interleaved rounds (default
-3, the order reversed every other round) and each keeps its best round, so that load from
-other processes on a shared machine falls on both alike; the naive endpoint, far slower, is
-measured once.
+The constant and observed endpoints are measured in ``rounds`` alternating rounds (default
+5) and each keeps its median (``bench_http.rates_in_rounds``), so that load from other
+processes on a shared machine falls on both alike; the naive endpoint, far slower, is
+measured once. One gunicorn worker (``bench_http.ONE_STAR_WORKERS``: the figure measures the
+cost of a request, not where wrk's keep-alive connections land).
 """
 
 from __future__ import annotations
@@ -33,20 +34,24 @@ ONE_STAR = {
 
 def main(argv: list[str] | None = None) -> dict:
     argv = sys.argv[1:] if argv is None else argv
-    rounds = int(argv[0]) if argv and argv[0].isdigit() else 3
+    rounds = int(argv[0]) if argv and argv[0].isdigit() else 5
     url, proc = _start()
     try:
         for path in ("/bench/constant", "/v1/observed", "/bench/naive_altaz"):
             requests.post(url + path, json=ONE_STAR, timeout=30).raise_for_status()
         paths = {"constant": "/bench/constant", "observed": "/v1/observed"}
-        rates = dict.fromkeys(paths, 0.0)
-        for r in range(rounds):
-            for name in list(paths)[:: 1 if r % 2 == 0 else -1]:
-                rates[name] = max(rates[name], bench_http.wrk_rps(url, paths[name], ONE_STAR))
+        rates = bench_http.rates_in_rounds(url, paths, ONE_STAR, rounds)
         rates["naive_altaz"] = bench_http.wrk_rps(url, "/bench/naive_altaz", ONE_STAR)
     finally:
         bench_http.stop(proc)
-    print(f"best of {rounds} interleaved rounds of {bench_http.DURATION_S} s (naive: one)")
+    print(
+        f"one worker, median of {rounds} alternating rounds of {bench_http.DURATION_S} s "
+        f"(naive: one); rounds: "
+        + "; ".join(
+            f"{k} " + ", ".join(f"{v:.0f}" for v in rates["rounds_raw"][k])
+            for k in ("constant", "observed")
+        )
+    )
     print(f"constant endpoint      {rates['constant']:9.0f} requests/s")
     print(f"POST /v1/observed      {rates['observed']:9.0f} requests/s")
     print(f"naive astropy AltAz    {rates['naive_altaz']:9.0f} requests/s")
@@ -63,7 +68,12 @@ def _start():
     import time
 
     port = bench_http._free_port()
-    env = dict(os.environ, SKYDRIFT_BIND=f"127.0.0.1:{port}", SKYDRIFT_ACCESS_LOG="/dev/null")
+    env = dict(
+        os.environ,
+        SKYDRIFT_BIND=f"127.0.0.1:{port}",
+        SKYDRIFT_ACCESS_LOG="/dev/null",
+        SKYDRIFT_WORKERS=str(bench_http.ONE_STAR_WORKERS),
+    )
     conf = str(bench_http.ROOT / "deploy" / "gunicorn.conf.py")
     proc = subprocess.Popen(
         [sys.executable, "-m", "gunicorn", "-c", conf, "benchmarks.observed_http_app:app"],
