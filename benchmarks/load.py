@@ -11,10 +11,10 @@ per type, so each reports its own latency distribution):
 Load mode (default) runs the mix closed-loop (each connection sends its next request when
 the last is answered) and reports, per type, requests, errors, throughput and the 50th, 95th
 and 99th percentile latencies: the measured capacity. Soak mode first measures capacity,
-then runs the same mix at a fraction of it (each connection paces itself with wrk's delay()
-hook) for a long time, sampling every worker's resident memory, and reports errors,
-latencies and memory growth after warm-up. Worker recycling (max_requests) is turned off
-for the soak so that growth, if any, shows.
+then runs the same mix at a fraction of it (each request type on a fixed schedule, paced
+with wrk's delay() hook and LuaJIT's clock) for a long time, sampling every worker's
+resident memory, and reports errors, latencies and memory growth after warm-up. Worker
+recycling (max_requests) is turned off for the soak so that growth, if any, shows.
 
 Pools (``--pools``): ``split`` (default) serves the mix from two gunicorn masters with the
 project's configuration, as the README recommends where pointing latency matters: an
@@ -169,9 +169,32 @@ wrk.headers["Content-Type"] = "application/json"
 local f = io.open("{body}", "rb")
 wrk.body = f:read("*a")
 f:close()
-local pause_ms = {pause_ms}
+-- Pacing (soak): one request every interval_ms for this wrk process as a whole, on a
+-- schedule shared by its connections (each call books the next free slot; a schedule that
+-- has fallen behind restarts from now, so no burst follows a slow answer). 0: closed loop.
+local interval_ms = {interval_ms}
+local ffi = require("ffi")
+ffi.cdef[[
+typedef struct {{ long tv_sec; long tv_nsec; }} skydrift_timespec;
+int clock_gettime(int clk_id, skydrift_timespec *tp);
+]]
+local ts = ffi.new("skydrift_timespec")
+local function now_ms()
+  ffi.C.clock_gettime(1, ts)  -- CLOCK_MONOTONIC
+  return tonumber(ts.tv_sec) * 1000 + tonumber(ts.tv_nsec) / 1e6
+end
+local next_at = nil
 function delay()
-  return pause_ms
+  if interval_ms <= 0 then
+    return 0
+  end
+  local t = now_ms()
+  if next_at == nil or next_at < t then
+    next_at = t
+  end
+  local d = next_at - t
+  next_at = next_at + interval_ms
+  return d
 end
 function done(summary, latency, requests)
   local e = summary.errors
@@ -186,10 +209,13 @@ end
 """
 
 
-def run_mix(urls: dict[str, str], seconds: float, pause_ms: dict[str, float] | None = None) -> dict:
+def run_mix(
+    urls: dict[str, str], seconds: float, interval_ms: dict[str, float] | None = None
+) -> dict:
     """Run the three wrk processes at once for ``seconds``; return their results by type.
 
-    ``urls``: the base URL serving each request type."""
+    ``urls``: the base URL serving each request type. ``interval_ms``: per type, the time
+    between requests (paced on a schedule, see LUA); None: closed loop."""
     work = tempfile.mkdtemp(prefix="skydrift-load-")
     procs = {}
     try:
@@ -197,8 +223,8 @@ def run_mix(urls: dict[str, str], seconds: float, pause_ms: dict[str, float] | N
             body_file = pathlib.Path(work, f"{kind}.json")
             body_file.write_bytes(body)
             script = pathlib.Path(work, f"{kind}.lua")
-            pause = 0 if pause_ms is None else max(0, int(round(pause_ms[kind])))
-            script.write_text(LUA.format(body=body_file, pause_ms=pause))
+            interval = 0.0 if interval_ms is None else max(0.0, float(interval_ms[kind]))
+            script.write_text(LUA.format(body=body_file, interval_ms=repr(interval)))
             procs[kind] = subprocess.Popen(
                 [
                     "wrk",
@@ -271,20 +297,9 @@ def all_worker_rss_mb(master_pids: list[int]) -> dict[int, float]:
 def soak(urls: dict, master_pids: list, seconds: float, fraction: float, cap: dict) -> dict:
     """Run the mix at ``fraction`` of the measured capacity, sampling worker memory."""
     target = {kind: fraction * r["rps"] for kind, r in cap.items()}
-    # Each connection sends a request, waits for the answer, then pauses: one request every
-    # CONNECTIONS / target seconds. The pause is that interval less the request's own time,
-    # which is not known in advance at the lower load: start from the median at capacity and
-    # correct once from a short calibration run.
-    pause_ms = {
-        kind: max(0.0, 1e3 * CONNECTIONS[kind] / target[kind] - cap[kind]["p50_us"] / 1e3)
-        for kind in cap
-    }
-    for _ in range(2):
-        trial = run_mix(urls, 10.0, pause_ms)
-        for kind, r in trial.items():
-            interval_now = 1e3 * CONNECTIONS[kind] / max(r["rps"], 1e-3)
-            interval_want = 1e3 * CONNECTIONS[kind] / target[kind]
-            pause_ms[kind] = max(0.0, pause_ms[kind] + interval_want - interval_now)
+    # Each request type runs on a schedule of one request every 1 / target seconds (its
+    # connections share the schedule), whatever the other types do: no calibration needed.
+    interval_ms = {kind: 1e3 / target[kind] for kind in cap}
     warm_s = min(60.0, 0.1 * seconds)
     samples = []
     t0 = time.monotonic()
@@ -297,7 +312,7 @@ def soak(urls: dict, master_pids: list, seconds: float, fraction: float, cap: di
             "json.loads(sys.argv[3]))))",
             json.dumps(urls),
             str(seconds),
-            json.dumps(pause_ms),
+            json.dumps(interval_ms),
         ],
         cwd=ROOT,
         stdout=subprocess.PIPE,
@@ -321,7 +336,7 @@ def soak(urls: dict, master_pids: list, seconds: float, fraction: float, cap: di
     restarted = sorted(set(base) ^ set(end))
     return {
         "results": results,
-        "pause_ms": pause_ms,
+        "interval_ms": interval_ms,
         "fraction": fraction,
         "warm_up_s": warm_s,
         "rss_after_warm_up_mb": base,
@@ -385,8 +400,8 @@ def main(argv=None) -> int:
             report["soak"] = s
             print_mix(
                 f"Soak: {args.soak:g} s at {args.fraction:.0%} of capacity "
-                f"(pauses per connection, ms: "
-                + ", ".join(f"{k} {v:.0f}" for k, v in s["pause_ms"].items())
+                f"(one request every, ms: "
+                + ", ".join(f"{k} {v:.2f}" for k, v in s["interval_ms"].items())
                 + ")",
                 s["results"],
             )
