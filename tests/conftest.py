@@ -31,3 +31,27 @@ def client(app):
 @pytest.fixture(scope="session")
 def demo_catalogue():
     return json.loads((DEMO / "catalogue.json").read_text())
+
+
+def example_parts(example: dict) -> tuple[list[dict], str]:
+    """An example JSON request -> (its stars as records, the other fields as a query string
+    the way a CSV or Arrow body carries them: lists repeated, objects with dotted names,
+    null as an empty value)."""
+    from urllib.parse import urlencode
+
+    stars = example["stars"]
+    if isinstance(stars, dict):
+        stars = [dict(zip(stars, row, strict=True)) for row in zip(*stars.values(), strict=True)]
+    query = []
+    for key, value in example.items():
+        if key == "stars" or value is None:
+            continue
+        if isinstance(value, dict):
+            query.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
+        elif isinstance(value, list):
+            query.extend((key, str(v)) for v in value)
+        elif isinstance(value, bool):
+            query.append((key, "true" if value else "false"))
+        else:
+            query.append((key, str(value)))
+    return stars, "?" + urlencode(query)

@@ -12,6 +12,8 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
+from tests.conftest import example_parts
+
 ARROW = "application/vnd.apache.arrow.stream"
 URL = "/v1/propagation"
 QUERY = "?catalogue_epoch=J2016.0&target_epochs=J2026.0,J2100.0"
@@ -431,24 +433,8 @@ def _table_endpoints(client):
 
 def _example_as_arrow(example):
     """An example JSON body -> (Arrow stream, query string) carrying the same request."""
-    from urllib.parse import urlencode
-
-    stars = example["stars"]
-    if isinstance(stars, dict):
-        stars = [dict(zip(stars, row, strict=True)) for row in zip(*stars.values(), strict=True)]
-    query = []
-    for key, value in example.items():
-        if key == "stars" or value is None:
-            continue
-        if isinstance(value, dict):
-            query.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
-        elif isinstance(value, list):
-            query.extend((key, str(v)) for v in value)
-        elif isinstance(value, bool):
-            query.append((key, "true" if value else "false"))
-        else:
-            query.append((key, str(value)))
-    return stream_of(table_of(stars)), "?" + urlencode(query)
+    stars, query = example_parts(example)
+    return stream_of(table_of(stars)), query
 
 
 def _as_cell(value) -> str:

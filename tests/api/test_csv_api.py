@@ -5,7 +5,7 @@ import io
 
 import pytest
 
-from tests.conftest import DEMO
+from tests.conftest import DEMO, example_parts
 
 URL = "/v1/propagation"
 QUERY = "?catalogue_epoch=J2016.0&target_epochs=J2026.0,J2100.0"
@@ -260,31 +260,14 @@ def _table_endpoints(client):
 
 def _example_as_csv(example):
     """An example JSON body -> (CSV text, query string) carrying the same request."""
-    from urllib.parse import urlencode
-
-    stars = example["stars"]
-    if isinstance(stars, dict):
-        stars = [dict(zip(stars, row, strict=True)) for row in zip(*stars.values(), strict=True)]
+    stars, query = example_parts(example)
     names = list(dict.fromkeys(k for s in stars for k in s))
     buf = io.StringIO()
     w = csv.writer(buf)
     w.writerow(names)
     for s in stars:
         w.writerow(["" if s.get(k) is None else s[k] for k in names])
-    query = []
-    for key, value in example.items():
-        if key == "stars" or value is None:
-            continue
-        if isinstance(value, dict):
-            # An empty value is null.
-            query.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
-        elif isinstance(value, list):
-            query.extend((key, str(v)) for v in value)
-        elif isinstance(value, bool):
-            query.append((key, "true" if value else "false"))
-        else:
-            query.append((key, str(value)))
-    return buf.getvalue(), "?" + urlencode(query)
+    return buf.getvalue(), query
 
 
 def test_every_table_endpoint_takes_and_gives_csv(client):
