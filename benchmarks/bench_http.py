@@ -21,8 +21,6 @@ import os
 import pathlib
 import re
 import shutil
-import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -31,6 +29,8 @@ import time
 import numpy as np
 import orjson
 import requests
+
+from benchmarks import server
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 STAR = {
@@ -46,48 +46,18 @@ ONE_STAR = {"stars": [STAR], "catalogue_epoch": 2016.0, "target_epochs": [2026.9
 DURATION_S = int(os.environ.get("SKYDRIFT_BENCH_SECONDS", "8"))
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def start(workers: int | None = None, worker_class: str | None = None, threads: int = 1):
-    port = _free_port()
-    env = dict(os.environ, SKYDRIFT_BIND=f"127.0.0.1:{port}", SKYDRIFT_ACCESS_LOG="/dev/null")
+    """gunicorn (deploy/gunicorn.conf.py) serving the service plus the baseline endpoints."""
+    settings = {}
     if workers:
-        env["SKYDRIFT_WORKERS"] = str(workers)
+        settings["SKYDRIFT_WORKERS"] = workers
     if worker_class:
-        env["SKYDRIFT_WORKER_CLASS"] = worker_class
-        env["SKYDRIFT_THREADS"] = str(threads)
-    proc = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "gunicorn",
-            "-c",
-            str(ROOT / "deploy" / "gunicorn.conf.py"),
-            "benchmarks.http_app:app",
-        ],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    url = f"http://127.0.0.1:{port}"
-    for _ in range(200):
-        try:
-            if requests.get(url + "/ready", timeout=1).ok:
-                return url, proc
-        except requests.ConnectionError:
-            time.sleep(0.1)
-    proc.kill()
-    raise RuntimeError("service did not start")
+        settings["SKYDRIFT_WORKER_CLASS"] = worker_class
+        settings["SKYDRIFT_THREADS"] = threads
+    return server.start("benchmarks.http_app:app", wait_s=20.0, **settings)
 
 
-def stop(proc):
-    proc.send_signal(signal.SIGTERM)
-    proc.wait(timeout=60)
+stop = server.stop
 
 
 def wrk_rps(url: str, path: str, body: dict, connections: int = 8) -> float:

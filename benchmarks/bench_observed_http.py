@@ -18,7 +18,7 @@ import sys
 
 import requests
 
-from benchmarks import bench_http
+from benchmarks import bench_http, server
 
 SITE = {"latitude_deg": 38.4127, "longitude_deg": -7.6543, "height_m": 1460.0}
 ATMOSPHERE = {"pressure_hpa": 850.0, "temperature_c": 6.0, "relative_humidity": 0.55,
@@ -62,35 +62,11 @@ def main(argv: list[str] | None = None) -> dict:
 
 def _start():
     """gunicorn with the project's configuration, serving the app with the naive endpoint."""
-    import os
-    import subprocess
-    import sys
-    import time
-
-    port = bench_http._free_port()
-    env = dict(
-        os.environ,
-        SKYDRIFT_BIND=f"127.0.0.1:{port}",
-        SKYDRIFT_ACCESS_LOG="/dev/null",
-        SKYDRIFT_WORKERS=str(bench_http.ONE_STAR_WORKERS),
+    return server.start(
+        "benchmarks.observed_http_app:app",
+        wait_s=30.0,
+        SKYDRIFT_WORKERS=bench_http.ONE_STAR_WORKERS,
     )
-    conf = str(bench_http.ROOT / "deploy" / "gunicorn.conf.py")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "gunicorn", "-c", conf, "benchmarks.observed_http_app:app"],
-        cwd=bench_http.ROOT,
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    url = f"http://127.0.0.1:{port}"
-    for _ in range(300):
-        try:
-            if requests.get(url + "/ready", timeout=5).ok:
-                return url, proc
-        except requests.ConnectionError:
-            time.sleep(0.1)
-    proc.kill()
-    raise RuntimeError("service did not start")
 
 
 if __name__ == "__main__":

@@ -34,12 +34,9 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import pathlib
 import re
 import shutil
-import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -48,6 +45,8 @@ import time
 import numpy as np
 import orjson
 import requests
+
+from benchmarks import server
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "shared" / "demo" / "examples"
@@ -102,46 +101,12 @@ def bodies() -> dict[str, tuple[str, bytes]]:
 # ------------------------------------------------------------------------------ server
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def start_server(**env) -> tuple[str, subprocess.Popen]:
     """gunicorn -c deploy/gunicorn.conf.py service.wsgi:app on a free loopback port."""
-    port = _free_port()
-    full_env = dict(
-        os.environ,
-        SKYDRIFT_BIND=f"127.0.0.1:{port}",
-        SKYDRIFT_ACCESS_LOG="/dev/null",
-        **{k: str(v) for k, v in env.items()},
-    )
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "gunicorn", "-c", "deploy/gunicorn.conf.py", "service.wsgi:app"],
-        cwd=ROOT,
-        env=full_env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    url = f"http://127.0.0.1:{port}"
-    for _ in range(600):
-        try:
-            if requests.get(url + "/health", timeout=1).ok:
-                return url, proc
-        except requests.ConnectionError:
-            time.sleep(0.1)
-    proc.kill()
-    raise RuntimeError("service did not start")
+    return server.start(wait_s=60.0, **env)
 
 
-def stop_server(proc: subprocess.Popen) -> None:
-    proc.send_signal(signal.SIGTERM)
-    try:
-        proc.wait(timeout=90)
-    except subprocess.TimeoutExpired:
-        proc.kill()
-        proc.wait()
+stop_server = server.stop
 
 
 def worker_rss_mb(master_pid: int) -> dict[int, float]:
