@@ -1,54 +1,20 @@
 """The service as `make serve` runs it: gunicorn with deploy/gunicorn.conf.py, real sockets."""
 
-import os
-import pathlib
 import signal
-import socket
-import subprocess
-import sys
-import time
 
 import pytest
 import requests
 
-ROOT = pathlib.Path(__file__).resolve().parents[2]
+from tests.reliability.server import Server
+
 pytestmark = pytest.mark.server
-
-
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 @pytest.fixture(scope="module")
 def server():
-    port = _free_port()
-    env = dict(os.environ, SKYDRIFT_BIND=f"127.0.0.1:{port}", SKYDRIFT_WORKERS="2")
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "gunicorn", "-c", "deploy/gunicorn.conf.py", "service.wsgi:app"],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.STDOUT,
-    )
-    url = f"http://127.0.0.1:{port}"
-    for _ in range(300):
-        try:
-            if requests.get(url + "/ready", timeout=1).status_code == 200:
-                break
-        except requests.ConnectionError:
-            time.sleep(0.1)
-    else:
-        proc.kill()
-        output = proc.stdout.read().decode()[-2000:]
-        proc.stdout.close()
-        pytest.fail("gunicorn did not become ready: " + output)
-    yield url, proc
-    if proc.poll() is None:
-        proc.send_signal(signal.SIGTERM)
-        proc.wait(timeout=60)
-    proc.stdout.close()
+    srv = Server(workers=2).start()
+    yield srv.url, srv.proc
+    srv.stop()
 
 
 def test_served_with_no_settings(server):

@@ -4,19 +4,15 @@
 """
 
 import concurrent.futures
-import os
 import pathlib
-import signal
 import socket
-import subprocess
-import sys
-import time
 
 import pytest
 import requests
 from prometheus_client.parser import text_string_to_metric_families
 
-ROOT = pathlib.Path(__file__).resolve().parents[2]
+from tests.reliability.server import Server
+
 pytestmark = pytest.mark.server
 
 N_STARS = 500
@@ -33,53 +29,21 @@ BODY = {
 }
 
 
-def _free_port():
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
 def start_server(**extra_env):
-    port = _free_port()
-    env = dict(
-        os.environ,
-        SKYDRIFT_BIND=f"127.0.0.1:{port}",
-        SKYDRIFT_WORKERS="2",
-        SKYDRIFT_ACCESS_LOG="/dev/null",
-        PYTHONPATH=str(ROOT),
-        **extra_env,
-    )
-    proc = subprocess.Popen(
-        [sys.executable, "-m", "gunicorn", "-c", "deploy/gunicorn.conf.py", "service.wsgi:app"],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    url = f"http://127.0.0.1:{port}"
-    for _ in range(300):
-        try:
-            if requests.get(url + "/ready", timeout=1).status_code == 200:
-                break
-        except requests.ConnectionError:
-            time.sleep(0.1)
-    else:
-        proc.kill()
-        pytest.fail("gunicorn did not become ready")
-    return url, proc
+    srv = Server(workers=2, **extra_env).start()
+    return srv.url, srv
 
 
-def stop_server(proc):
-    proc.send_signal(signal.SIGTERM)
-    proc.wait(timeout=60)
+def stop_server(srv):
+    srv.stop()
 
 
 @pytest.fixture(scope="module")
 def two_workers(tmp_path_factory):
     folder = tmp_path_factory.mktemp("metrics")
-    url, proc = start_server(PROMETHEUS_MULTIPROC_DIR=str(folder))
+    url, srv = start_server(PROMETHEUS_MULTIPROC_DIR=str(folder))
     yield url, folder
-    stop_server(proc)
+    stop_server(srv)
 
 
 def scrape(url):
@@ -152,14 +116,14 @@ def test_oversized_body_answered_413_over_the_wire_without_sending_it(two_worker
 def test_fail_first_n_counted_across_workers():
     """SKYDRIFT_TEST_FAIL_FIRST_N=3 (test only): exactly 3 of 12 concurrent requests, on
     separate connections served by either worker, answer 503 with Retry-After."""
-    url, proc = start_server(SKYDRIFT_TEST_FAIL_FIRST_N="3", SKYDRIFT_TEST_FAIL_RETRY_AFTER_S="2")
+    url, srv = start_server(SKYDRIFT_TEST_FAIL_FIRST_N="3", SKYDRIFT_TEST_FAIL_RETRY_AFTER_S="2")
     try:
         with concurrent.futures.ThreadPoolExecutor(6) as pool:
             answers = list(
                 pool.map(lambda _: requests.get(url + "/openapi.json", timeout=30), range(12))
             )
     finally:
-        stop_server(proc)
+        stop_server(srv)
     failed = [r for r in answers if r.status_code == 503]
     assert len(failed) == 3
     assert all(r.headers["Retry-After"] == "2" for r in failed)
