@@ -12,8 +12,8 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 import pytest
 
 from service.client import Client, FieldError, SkydriftError, merge_answers
-from tests.clients.conftest import free_port
 from tests.conftest import DEMO, ROOT
+from tests.reliability.server import free_port
 
 EPOCHS = ["J2026.0", "J2100.0"]
 
