@@ -29,7 +29,6 @@ from __future__ import annotations
 import datetime as _dt
 import enum
 import re
-import warnings
 from dataclasses import dataclass
 
 import erfa
@@ -37,7 +36,7 @@ import numpy as np
 from erfa import ufunc as erfa_ufunc
 
 from .constants import DAY_S, JD_J2000, JULIAN_YEAR_DAYS, MJD_ZERO_JD
-from .offline import leap_second_table
+from .offline import leap_second_expiry_mjd, leap_second_table
 
 #: Range of Julian epochs the service accepts anywhere, years. Generous enough for
 #: boundary-crossing searches of +-100,000 years around any catalogue epoch; beyond it the
@@ -153,25 +152,36 @@ def julian_epoch_to_besselian_epoch(jyear):
 
 
 def _to_tdb_jd(jd1, jd2, scale: str):
-    """Two-part JD on ``scale`` to two-part JD on TDB (arrays; warnings collected)."""
+    """Two-part JD on ``scale`` to two-part JD on TDB (scalars or arrays).
+
+    Returns ``(jd1, jd2, notes)``: :class:`TimeNote` bits, UTC_APPROXIMATE where ERFA utctai
+    reports a dubious year. Raises :class:`EpochError` where UTC is undefined (ERFA utctai
+    status -1: a date that no calendar routine of ERFA accepts).
+
+    The ERFA ufuncs are called directly (status per element instead of Python warnings):
+    this runs for every epoch string a request carries.
+    """
     leap_second_table()
     scale = scale.upper()
     notes = 0
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        if scale == "UTC":
-            jd1, jd2 = erfa.utctai(jd1, jd2)
-            scale = "TAI"
-        if scale == "TAI":
-            jd1, jd2 = erfa.taitt(jd1, jd2)
-            scale = "TT"
-        if scale == "TT":
-            # TDB - TT at the geocentre (Fairhead & Bretagnon 1990 series in ERFA dtdb);
-            # below 2 ms, UT1 approximated by TT for the argument (effect ~1e-12 s).
-            dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
-            jd2 = jd2 + dt / DAY_S
-    if any(issubclass(w.category, erfa.ErfaWarning) for w in caught):
-        notes |= TimeNote.UTC_APPROXIMATE
+    if scale == "UTC":
+        jd1, jd2, status = erfa_ufunc.utctai(jd1, jd2)
+        if np.any(status < 0):
+            raise EpochError(
+                "UTC is not defined for that date (ERFA utctai: unacceptable date); give "
+                "dates that far from the present on the TT or TDB scale"
+            )
+        if np.any(status > 0):
+            notes |= TimeNote.UTC_APPROXIMATE
+        scale = "TAI"
+    if scale == "TAI":
+        jd1, jd2, _ = erfa_ufunc.taitt(jd1, jd2)  # always status 0
+        scale = "TT"
+    if scale == "TT":
+        # TDB - TT at the geocentre (Fairhead & Bretagnon 1990 series in ERFA dtdb);
+        # below 2 ms, UT1 approximated by TT for the argument (effect ~1e-12 s).
+        dt = erfa_ufunc.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
+        jd2 = jd2 + dt / DAY_S
     return jd1, jd2, notes
 
 
@@ -181,15 +191,15 @@ def _from_tdb_to_utc_jd(jd1, jd2):
     The status is ERFA dat's: before 1960 (no UTC as defined today) or more than five
     years after the release of the ERFA leap-second table ("dubious year").
     """
-    table = leap_second_table()
-    dt = erfa.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
+    leap_second_table()
+    dt = erfa_ufunc.dtdb(jd1, jd2, np.asarray(jd2) % 1.0, 0.0, 0.0, 0.0)
     t1, t2 = jd1, jd2 - dt / DAY_S
-    a1, a2 = erfa.tttai(t1, t2)
+    a1, a2, _ = erfa_ufunc.tttai(t1, t2)  # always status 0
     # The ufunc form returns the status per element instead of one warning for all.
     u1, u2, status = erfa_ufunc.taiutc(a1, a2)
     # Beyond the expiry of the packaged leap-second table a leap second may have been
     # added that the table does not know: the UTC rendering is then approximate too.
-    beyond = (u1 - MJD_ZERO_JD) + u2 > table.expires.mjd
+    beyond = (u1 - MJD_ZERO_JD) + u2 > leap_second_expiry_mjd()
     return u1, u2, (np.asarray(status) == 1) | beyond
 
 
@@ -239,6 +249,12 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
         if kind == "B":
             return float(besselian_epoch_to_julian_epoch(num)), 0
         jd1, jd2 = (MJD_ZERO_JD, num) if kind == "MJD" else (num, 0.0)
+        rough = 2000.0 + ((jd1 - JD_J2000) + jd2) / JULIAN_YEAR_DAYS
+        if not (EPOCH_MIN_JYEAR - 1.0 <= rough <= EPOCH_MAX_JYEAR + 1.0):
+            raise EpochError(
+                f"epoch {rough:g} is outside the supported range {EPOCH_MIN_JYEAR:g} to "
+                f"{EPOCH_MAX_JYEAR:g} (Julian years)"
+            )
         if scale == "TDB":
             return float(jd_to_julian_epoch(jd1, jd2)), 0
         t1, t2, notes = _to_tdb_jd(np.float64(jd1), np.float64(jd2), scale)
@@ -254,7 +270,15 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
         if tz and tz.upper() != "Z":
             sign = -1 if tz[0] == "-" else 1
             digits = tz[1:].replace(":", "")
-            offset_min = sign * (int(digits[:2]) * 60 + int(digits[2:]))
+            oh, om = int(digits[:2]), int(digits[2:])
+            if oh > 23 or om > 59:  # ISO 8601 / RFC 3339: offsets -23:59 to +23:59
+                raise EpochError(f"invalid UTC offset {tz!r}: at most 23 hours 59 minutes")
+            offset_min = sign * (oh * 60 + om)
+        if s >= 60.0 and not (s < 61.0 and h == 23 and mi == 59 and offset_min == 0):
+            raise EpochError(
+                f"invalid time: second {s:g}; seconds run 0 to 59.999..., and 60 only in "
+                "23:59:60 UTC at the end of a day with a leap second"
+            )
         return _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min)
     raise EpochError(
         f"cannot read epoch {value!r}: write a Julian epoch (2016.0 or 'J2016.0'), "
@@ -263,16 +287,30 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
     )
 
 
+#: ERFA dtf2d status codes below zero: what was wrong with the calendar date or time.
+_DTF2D_ERRORS = {
+    -1: "bad year",
+    -2: "bad month",
+    -3: "bad day of the month",
+    -4: "bad hour",
+    -5: "bad minute",
+    -6: "bad second",
+}
+
+
 def _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min: int = 0) -> tuple[float, int]:
     leap_second_table()
     notes = 0
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            u1, u2 = erfa.dtf2d("UTC", y, mo, d, h, mi, s)
-        except erfa.ErfaError as exc:
-            raise EpochError(f"invalid calendar date or time: {exc}") from None
-    if any(issubclass(w.category, erfa.ErfaWarning) for w in caught):
+    u1, u2, status = erfa_ufunc.dtf2d("UTC", y, mo, d, h, mi, s)
+    status = int(status)
+    if status < 0:
+        raise EpochError(f"invalid calendar date or time: {_DTF2D_ERRORS[status]}")
+    if status >= 2:  # ERFA dtf2d: "time is after end of day"
+        raise EpochError(
+            f"invalid time: second {s:g} lies after the end of that UTC day (second 60 "
+            "exists only at the end of a day with a leap second)"
+        )
+    if status == 1:  # dubious year: before 1960, or far beyond the leap-second table
         notes |= TimeNote.UTC_APPROXIMATE
     u2 = u2 - offset_min / 1440.0
     t1, t2, more = _to_tdb_jd(u1, u2, "UTC")
@@ -375,9 +413,8 @@ def label_epochs(jyear) -> EpochLabels:
     idx = np.flatnonzero(inside)
     if idx.size:
         u1, u2, dubious = _from_tdb_to_utc_jd(d1[idx], d2[idx])
-        with warnings.catch_warnings(record=True):
-            warnings.simplefilter("always")
-            iy, im, iday, ihmsf = erfa.d2dtf("UTC", 3, u1, u2)
+        # Status per element ignored: the dubious years are flagged above.
+        iy, im, iday, ihmsf, _ = erfa_ufunc.d2dtf("UTC", 3, u1, u2)
         hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
         for k, i in enumerate(idx):
             h, mi, s, ms = (int(x) for x in hmsf[k])

@@ -342,11 +342,9 @@ def earth_orientation(path: str | None = None) -> EarthOrientation:
         path = os.environ.get(EOP_PATH_ENV) or iers.IERS_A_FILE
     primary = _read_finals2000a(path)
     fallback = _read_iers_b(iers.IERS_B_FILE)
-    from service.core.offline import leap_second_table
+    from service.core.offline import leap_second_expiry_mjd
 
-    expires = leap_second_table().expires
-    expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
-    return EarthOrientation(primary, fallback, expiry_mjd)
+    return EarthOrientation(primary, fallback, leap_second_expiry_mjd())
 
 
 def no_earth_orientation() -> EarthOrientation:
@@ -367,10 +365,9 @@ def no_earth_orientation() -> EarthOrientation:
         last_measured_mjd=float(node[0]),
     )
     try:
-        from service.core.offline import leap_second_table
+        from service.core.offline import leap_second_expiry_mjd
 
-        expires = leap_second_table().expires
-        expiry_mjd = float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
+        expiry_mjd = leap_second_expiry_mjd()
     except Exception:  # the leap-second file may be what is broken
         expiry_mjd = float("inf")
     return EarthOrientation(table, None, expiry_mjd)
@@ -439,6 +436,10 @@ class EarthOrientationValues:
     accuracy_class: np.ndarray
 
 
+#: Accuracy classes by pointing error, below / between / above ACCURACY_CLASS_BOUNDS_ARCSEC.
+_ACCURACY_CLASSES = np.array(["milliarcsecond", "sub_arcsecond", "arcseconds"])
+
+
 def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     """UT1-UTC and polar motion at UTC instants, with source and accuracy class.
 
@@ -471,7 +472,11 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     mjd_int = np.floor(mjd_full)
     frac = ((jd1 - 2400000.5) - mjd_int) + jd2
     dut, px, py, status, inside = _interp_table(eop.primary, mjd_int, frac)
-    table = np.where(inside, eop.primary.name, "none").astype(object)
+    # Which table each value came from, as an index into the names (strings only at the end).
+    names = np.array(
+        [eop.primary.name, "none", eop.fallback.name if eop.fallback is not None else "none"]
+    )
+    table = np.where(inside, 0, 1)
     if eop.fallback is not None:
         use_b = ~inside & (mjd_full < eop.primary.first_mjd)
         if np.any(use_b):
@@ -482,7 +487,7 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
             py = np.where(take, by, py)
             status = np.where(take, bs, status)
             inside = inside | take
-            table = np.where(take, eop.fallback.name, table)
+            table = np.where(take, 2, table)
     status = np.where(inside, status, int(EarthOrientationStatus.UNAVAILABLE))
     dut = np.where(inside, dut, 0.0)
     px = np.where(inside, px, 0.0)
@@ -511,13 +516,13 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     )
     err = ARCSEC_PER_UT1_SECOND * ut1_sigma + pole_sigma
     lo, hi = ACCURACY_CLASS_BOUNDS_ARCSEC
-    cls = np.where(err < lo, "milliarcsecond", np.where(err < hi, "sub_arcsecond", "arcseconds"))
+    cls = _ACCURACY_CLASSES[2 - (err < lo).astype(np.intp) - (err < hi)]  # NaN: "arcseconds"
     return EarthOrientationValues(
         ut1_utc_s=dut,
         pm_x_arcsec=px,
         pm_y_arcsec=py,
         status=status.astype(int),
-        table=table.astype(str),
+        table=names[table],
         ut1_sigma_s=ut1_sigma,
         pole_sigma_arcsec=pole_sigma,
         pointing_error_arcsec=err,

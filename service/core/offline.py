@@ -34,6 +34,18 @@ def leap_second_table():
     return table
 
 
+@functools.lru_cache(maxsize=1)
+def leap_second_expiry_mjd() -> float:
+    """MJD (UTC) until which the installed leap-second table is known to be complete.
+
+    Read once from :func:`leap_second_table` (the table's ``expires`` is an astropy Time,
+    whose conversion to MJD costs tens of microseconds; epoch labelling asks per request).
+    Infinity when the table states no expiry.
+    """
+    expires = leap_second_table().expires
+    return float(expires.mjd) if hasattr(expires, "mjd") else float("inf")
+
+
 @functools.lru_cache(maxsize=4)
 def use_earth_orientation_file(path: str):
     """Make an operator's IERS finals2000A file astropy's Earth-orientation table.

@@ -247,6 +247,13 @@ def test_unparseable_epoch(client):
     assert_problem(r, 422, "target_epochs[1]")
 
 
+def test_epoch_on_utc_where_utc_is_undefined(client):
+    # ERFA utctai rejects the date; this was once an uncaught error (500).
+    r = post(client, dict(BASE, stars=[STAR], target_epochs=[2020.0, "MJD-3000000 UTC"]))
+    body = assert_problem(r, 422, "target_epochs[1]")
+    assert "UTC is not defined" in str(body)
+
+
 def test_epoch_outside_supported_range(client):
     assert_problem(
         post(client, dict(BASE, stars=[STAR], catalogue_epoch=1e7)), 422, "catalogue_epoch"

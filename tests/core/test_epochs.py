@@ -219,11 +219,88 @@ def test_now_uses_given_clock():
         EPOCH_MAX_JYEAR + 1.0,
         EPOCH_MIN_JYEAR - 1.0,
         "J1e9",
+        # UTC is undefined where ERFA utctai rejects the date (status -1): once an
+        # uncaught ErfaError (HTTP 500).
+        "MJD-3000000 UTC",
+        "JD-1000000 UTC",
     ],
 )
 def test_bad_epochs_raise_epoch_error(bad):
     with pytest.raises(EpochError):
         parse_epoch(bad)
+
+
+@pytest.mark.parametrize(
+    ("text", "reason"),
+    [
+        ("2026-02-30T00:00:00Z", "bad day of the month"),
+        ("2026-12-01T25:00:00Z", "bad hour"),
+        ("2026-12-01T23:61:00Z", "bad minute"),
+        # Seconds run 0 to 59.999..., 60 only at 23:59:60 UTC on a day ending with a leap
+        # second (ERFA dtf2d status +2, "time is after end of day", was once only a note).
+        ("2026-12-01T00:00:75Z", "second 75"),
+        ("2026-12-01T00:00:60Z", "second 60"),
+        ("2026-12-01T23:59:60Z", "after the end of that UTC day"),
+        ("2016-12-31T23:59:61Z", "second 61"),
+        ("2026-12-01T00:00:00-99:99", "invalid UTC offset"),
+        ("2026-12-01T00:00:00+24:00", "invalid UTC offset"),
+    ],
+)
+def test_invalid_calendar_dates_say_what_is_wrong(text, reason):
+    with pytest.raises(EpochError, match=reason):
+        parse_epoch(text)
+
+
+def test_leap_second_with_zero_offset_and_largest_offsets():
+    assert parse_epoch("2016-12-31T23:59:60.5+00:00") == parse_epoch("2016-12-31T23:59:60.5Z")
+    # 00:00 at +23:59 is 00:01 UTC of the previous day (astropy Time as the reference).
+    expected = Time("2026-11-30T00:01:00", scale="utc").tdb.jyear
+    assert parse_epoch("2026-12-01T00:00:00+23:59") == pytest.approx(expected, abs=1e-10)
+
+
+def test_same_dates_on_tt_are_accepted_where_utc_is_undefined():
+    # ERFA utctai rejects the date; on TT (no leap seconds involved) it is a plain date.
+    assert parse_epoch("JD-1000000 TT") == pytest.approx(
+        2000.0 + (-1000000.0 - 2451545.0) / 365.25, abs=1e-6
+    )
+
+
+_NUMBERS = st.one_of(
+    st.floats(allow_nan=False, allow_infinity=False).map(repr),
+    st.integers(-(10**12), 10**12).map(str),
+    st.builds(lambda m, e: f"{m}e{e}", st.integers(-999, 999), st.integers(-400, 400)),
+)
+_EPOCH_TEXTS = st.one_of(
+    st.builds(
+        lambda kind, num, scale: f"{kind}{num}{scale}",
+        st.sampled_from(["J", "B", "JD", "MJD", "jd ", "mjd"]),
+        _NUMBERS,
+        st.sampled_from(["", " UTC", " TAI", " TT", " TDB", " utc", " GPS"]),
+    ),
+    st.builds(
+        lambda y, mo, d, h, mi, sec, tz: f"{y:04d}-{mo:02d}-{d:02d}T{h:02d}:{mi:02d}:{sec}{tz}",
+        st.integers(0, 9999),
+        st.integers(0, 99),
+        st.integers(0, 99),
+        st.integers(0, 99),
+        st.integers(0, 99),
+        st.sampled_from(["00", "59", "59.999", "60", "60.5", "61", "99.9"]),
+        st.sampled_from(["Z", "", "+00:00", "-23:59", "+24:00", "+0530", "-99:99"]),
+    ),
+)
+
+
+@given(text=_EPOCH_TEXTS)
+@settings(max_examples=400, deadline=None)
+def test_any_epoch_text_parses_in_range_or_raises_epoch_error(text):
+    # Grammar-shaped strings with extreme numbers and out-of-range fields: the answer is an
+    # epoch in the supported range or an EpochError (a 422 at the API), never another error.
+    try:
+        jyear, notes = parse_epoch_with_notes(text)
+    except EpochError:
+        return
+    assert EPOCH_MIN_JYEAR <= jyear <= EPOCH_MAX_JYEAR
+    assert notes in (0, int(TimeNote.UTC_APPROXIMATE))
 
 
 def test_epoch_error_is_a_value_error():
