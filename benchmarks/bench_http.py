@@ -60,14 +60,41 @@ def start(workers: int | None = None, worker_class: str | None = None, threads: 
 stop = server.stop
 
 
+def _lua_string(text: str) -> str:
+    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+#: Placeholder for the instant in a request body whose instant changes with every request.
+NEW_INSTANT = "@INSTANT@"
+
+
 def wrk_rps(url: str, path: str, body: dict, connections: int = 8) -> float:
+    """Requests/s of wrk (one thread, ``connections`` keep-alive connections) POSTing ``body``.
+
+    Where the body holds the string :data:`NEW_INSTANT`, each request carries a new instant
+    instead, one second after the previous one ("2026-12-02T00:00:01Z", ...), as telescope
+    software asking for the current place would: nothing computed for an earlier instant
+    can be reused.
+    """
     lua = tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False)
-    payload = orjson.dumps(body).decode().replace("\\", "\\\\").replace('"', '\\"')
-    lua.write(
-        'wrk.method = "POST"\n'
-        'wrk.headers["Content-Type"] = "application/json"\n'
-        f'wrk.body = "{payload}"\n'
-    )
+    payload = orjson.dumps(body).decode()
+    script = 'wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n'
+    if NEW_INSTANT in payload:
+        head, tail = payload.split(NEW_INSTANT, 1)
+        script += (
+            f"local head, tail = {_lua_string(head)}, {_lua_string(tail)}\n"
+            "local k = 0\n"
+            "request = function()\n"
+            "  k = k + 1\n"
+            "  local s = k % 86400\n"
+            '  local t = string.format("2026-12-02T%02d:%02d:%02dZ", math.floor(s / 3600),\n'
+            "    math.floor(s / 60) % 60, s % 60)\n"
+            "  return wrk.format(nil, nil, nil, head .. t .. tail)\n"
+            "end\n"
+        )
+    else:
+        script += f"wrk.body = {_lua_string(payload)}\n"
+    lua.write(script)
     lua.close()
     out = subprocess.run(
         ["wrk", "-t1", f"-c{connections}", f"-d{DURATION_S}s", "-s", lua.name, url + path],
@@ -106,14 +133,16 @@ ONE_STAR_WORKERS = 1
 
 
 def rates_in_rounds(url: str, paths: dict, body: dict, rounds: int) -> dict:
-    """Requests/s of each endpoint in ``paths`` (name -> path), measured in turn ``rounds``
-    times in alternating order; the median of each, and every round's figure under
-    ``rounds_raw``. Load from other processes on a shared machine falls on all alike."""
+    """Requests/s of each endpoint in ``paths`` (name -> path, or (path, body) to send
+    another body), measured in turn ``rounds`` times in alternating order; the median of
+    each, and every round's figure under ``rounds_raw``. Load from other processes on a
+    shared machine falls on all alike."""
     samples: dict = {name: [] for name in paths}
     order = list(paths)
     for k in range(rounds):
         for name in order if k % 2 == 0 else order[::-1]:
-            samples[name].append(wrk_rps(url, paths[name], body))
+            path, one_body = paths[name] if isinstance(paths[name], tuple) else (paths[name], body)
+            samples[name].append(wrk_rps(url, path, one_body))
     rates = {name: float(np.median(v)) for name, v in samples.items()}
     rates["rounds_raw"] = samples
     return rates
