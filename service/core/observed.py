@@ -232,6 +232,13 @@ class EarthOrientationTable:
     status: np.ndarray
     last_measured_mjd: float
 
+    @functools.cached_property
+    def node_values(self) -> np.ndarray:
+        """(nodes, 3): UT1-UTC, pm_x, pm_y per node (one array, for interpolation)."""
+        out = np.stack([self.ut1_utc_s, self.pm_x_arcsec, self.pm_y_arcsec], axis=-1)
+        out.setflags(write=False)
+        return out
+
     @property
     def first_mjd(self) -> float:
         return float(self.mjd[0])
@@ -384,23 +391,21 @@ def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
     i1 = np.clip(i, 1, len(mjd) - 1)
     i0 = i1 - 1
     frac = (mjd_int - mjd[i0] + day_fraction) / (mjd[i1] - mjd[i0])
-    out = []
-    for col, is_ut1 in (
-        (table.ut1_utc_s, True),
-        (table.pm_x_arcsec, False),
-        (table.pm_y_arcsec, False),
-    ):
-        d = col[i1] - col[i0]
-        if is_ut1:
-            d = d - np.round(d)
-        v = col[i0] + frac * d
-        v = np.where(i == 0, col[0], v)
-        v = np.where(i == len(mjd), col[-1], v)
-        out.append(v)
+    # The three columns (UT1-UTC, pm_x, pm_y) at once, on the last axis.
+    vals = table.node_values
+    v0 = vals[i0]
+    d = vals[i1] - v0
+    d[..., 0] -= np.round(d[..., 0])  # UT1-UTC only: leap-second steps removed
+    v = v0 + frac[..., None] * d
+    before = i == 0
+    after = i == len(mjd)
+    if np.any(before) or np.any(after):
+        v = np.where(before[..., None], vals[0], v)
+        v = np.where(after[..., None], vals[-1], v)
     # Source: the node at or before the instant, the later one if it is predicted.
     status = np.maximum(table.status[i0], table.status[i1])
-    inside = (i > 0) & (i < len(mjd))
-    return out[0], out[1], out[2], status, inside
+    inside = ~(before | after)
+    return v[..., 0], v[..., 1], v[..., 2], status, inside
 
 
 @dataclass(frozen=True)
@@ -1688,13 +1693,14 @@ def _utc_from_julian_epoch_tdb_cached(jyear_key: str) -> tuple[float, float]:
 
 
 def _utc_from_julian_epoch_tdb(jyear):
-    d1, d2 = erfa.epj2jd(jyear)
-    with warnings.catch_warnings():
-        # "dubious year" beyond the leap-second table: reported by the caller's flags.
-        warnings.simplefilter("ignore", erfa.ErfaWarning)
-        dt = erfa.dtdb(d1, d2, np.mod(d2, 1.0), 0.0, 0.0, 0.0)
-        a1, a2 = erfa.tttai(d1, d2 - dt / 86400.0)
-        return erfa.taiutc(a1, a2)
+    # ERFA ufuncs directly: taiutc's "dubious year" status (beyond the leap-second table) is
+    # reported by the caller's flags; its error status cannot occur for the supported span
+    # of instants (checked by _check_instants).
+    d1, d2 = erfa_ufunc.epj2jd(jyear)
+    dt = erfa_ufunc.dtdb(d1, d2, np.mod(d2, 1.0), 0.0, 0.0, 0.0)
+    a1, a2, _ = erfa_ufunc.tttai(d1, d2 - dt / 86400.0)
+    u1, u2, _ = erfa_ufunc.taiutc(a1, a2)
+    return u1, u2
 
 
 def _quiet_erfa(func, *args):
@@ -1750,6 +1756,20 @@ def _cip_interpolated(tt1, tt2):
     """
     tt1 = np.asarray(tt1, dtype=float)
     tt2 = np.asarray(tt2, dtype=float)
+    if tt1.size == 1 and tt2.size == 1:
+        # One instant: the same operations on Python floats (IEEE doubles both ways, so the
+        # same numbers as the array form below), without a dozen one-element arrays.
+        t1, t2 = float(tt1.reshape(-1)[0]), float(tt2.reshape(-1)[0])
+        base = math.floor(t1 / CIP_NODE_STEP_DAYS)
+        frac = (t1 - base * CIP_NODE_STEP_DAYS + t2) / CIP_NODE_STEP_DAYS
+        shift = math.floor(frac)
+        k, t = int(base + shift), frac - shift
+        shape = np.broadcast_shapes(tt1.shape, tt2.shape)
+        vals = [
+            np.full(shape, b + 0.5 * t * (c - a) + 0.5 * t * t * (c - 2.0 * b + a))
+            for a, b, c in zip(_cip_node(k - 1), _cip_node(k), _cip_node(k + 1), strict=True)
+        ]
+        return tuple(vals)
     base = np.floor(tt1 / CIP_NODE_STEP_DAYS)
     frac = (tt1 - base * CIP_NODE_STEP_DAYS + tt2) / CIP_NODE_STEP_DAYS
     shift = np.floor(frac)
@@ -1912,6 +1932,8 @@ def _shaped(x, shape):
 
 
 def _bits(mask, flag):
+    if np.ndim(mask) == 0:  # one instant: no array needed
+        return np.uint32(int(flag)) if mask else np.uint32(0)
     return np.where(mask, np.uint32(int(flag)), np.uint32(0))
 
 
