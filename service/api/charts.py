@@ -6,7 +6,7 @@ import marshmallow as ma
 from flask import Response, request
 from flask_smorest import abort
 
-from .common import Blueprint, EpochField
+from .common import Blueprint, EpochField, StrictBoolean
 from .examples import load_example
 from .propagation import StarAstrometrySchema
 from .tables import StarTableField
@@ -61,7 +61,7 @@ class TrackChartRequestSchema(ma.Schema):
         validate=ma.validate.Range(min=2, max=50),
         metadata={"description": "Epochs marked on each track, evenly spaced, ends included."},
     )
-    boundaries = ma.fields.Boolean(
+    boundaries = StrictBoolean(
         load_default=True,
         metadata={
             "description": "Draw the IAU constellation boundaries in view, their "

@@ -73,8 +73,19 @@ def test_track_from_a_csv_body(client):
             },
             "stars",
         ),
+        # JSON true or false only (a plain marshmallow Boolean once took 0 as false; found
+        # by the longer schemathesis run).
+        ({"boundaries": 0}, "boundaries"),
+        ({"boundaries": "yes"}, "boundaries"),
     ],
-    ids=["stop-before-start", "one-tick", "unknown-format", "too-many-stars"],
+    ids=[
+        "stop-before-start",
+        "one-tick",
+        "unknown-format",
+        "too-many-stars",
+        "boundaries-number",
+        "boundaries-word",
+    ],
 )
 def test_track_bad_input(client, track_body, change, field):
     r = client.post("/v1/charts/track", json=dict(track_body, **change))
