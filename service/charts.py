@@ -478,7 +478,10 @@ def render_tracks(
     for k, t in enumerate(chart.tracks):
         colour = TRACK_COLOURS[k % len(TRACK_COLOURS)]
         x = centre + np.unwrap(_wrap180(t.ra_deg - centre), period=360.0)
-        (line,) = ax.plot(x, t.dec_deg, color=colour, linewidth=2.0, zorder=3, label=t.label)
+        # matplotlib leaves labels that start with "_" out of the legend: a zero-width space
+        # in front keeps such an id visible and unchanged to the reader.
+        legend_label = "\u200b" + t.label if t.label.startswith("_") else t.label
+        (line,) = ax.plot(x, t.dec_deg, color=colour, linewidth=2.0, zorder=3, label=legend_label)
         line.set_gid(f"track-{k}")
         tx = x_of(t.tick_ra_deg)
         ticks = ax.plot(
@@ -588,14 +591,15 @@ def render_tracks(
         zorder=7,
         bbox={"facecolor": PANEL_COLOUR, "edgecolor": "none", "alpha": 0.9, "pad": 2},
     )
-    legend = ax.legend(
-        loc="best",
-        fontsize=8,
-        facecolor=PAGE_COLOUR,
-        edgecolor=GRID_COLOUR,
-        labelcolor=TEXT_COLOUR,
-    )
-    legend.set_gid("legend")
+    if ax.get_legend_handles_labels()[0]:  # no legend (and no warning) when nothing is named
+        legend = ax.legend(
+            loc="best",
+            fontsize=8,
+            facecolor=PAGE_COLOUR,
+            edgecolor=GRID_COLOUR,
+            labelcolor=TEXT_COLOUR,
+        )
+        legend.set_gid("legend")
     return _save(fig, image_format)
 
 

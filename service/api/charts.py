@@ -122,7 +122,10 @@ def _columns(table):
 def _labels(table) -> list[str]:
     if table.ids is None:
         return [f"star {k}" for k in range(table.size)]
-    return [f"star {k}" if v is None else str(v) for k, v in enumerate(table.ids)]
+    # An empty id labels nothing: such stars are named by their index, as stars without one.
+    return [
+        f"star {k}" if v is None or not str(v).strip() else str(v) for k, v in enumerate(table.ids)
+    ]
 
 
 def _image(data: bytes, image_format: str) -> Response:
