@@ -6,7 +6,7 @@ import marshmallow as ma
 from flask import Response, request
 from flask_smorest import abort
 
-from .common import Blueprint, EpochField, StrictBoolean
+from .common import Blueprint, EpochField, StrictBoolean, StrictFloat
 from .examples import load_example
 from .propagation import StarAstrometrySchema
 from .tables import StarTableField
@@ -57,6 +57,7 @@ class TrackChartRequestSchema(ma.Schema):
     start = EpochField(required=True, metadata={"description": "First epoch of the tracks."})
     stop = EpochField(required=True, metadata={"description": "Last epoch of the tracks."})
     ticks = ma.fields.Integer(
+        strict=True,
         load_default=6,
         validate=ma.validate.Range(min=2, max=50),
         metadata={"description": "Epochs marked on each track, evenly spaced, ends included."},
@@ -87,7 +88,7 @@ class FieldChartRequestSchema(ma.Schema):
         validate=ma.validate.Length(equal=2),
         metadata={"description": "The two epochs shown side by side."},
     )
-    arrow_years = ma.fields.Float(
+    arrow_years = StrictFloat(
         load_default=None,
         allow_none=True,
         validate=ma.validate.Range(min=0.0, min_inclusive=False, max=200_000.0),

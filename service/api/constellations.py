@@ -12,7 +12,14 @@ from ..core import constellations as core
 from ..core import frames as core_frames
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
+from .common import (
+    Blueprint,
+    EpochField,
+    EpochOutSchema,
+    StrictFloat,
+    epochs_out,
+    number_field,
+)
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .tables import StarTableField
@@ -156,7 +163,7 @@ class LookupRequestSchema(ma.Schema):
         validate=ma.validate.OneOf(core.REDUCTIONS),
         metadata={"description": REDUCTION_DESCRIPTION},
     )
-    near_boundary_arcsec = ma.fields.Float(
+    near_boundary_arcsec = StrictFloat(
         load_default=core.DEFAULT_NEAR_BOUNDARY_ARCSEC,
         validate=ma.validate.Range(min=0.0, max=36_000.0),
         metadata={
@@ -208,7 +215,7 @@ class CrossingsRequestSchema(ma.Schema):
             "100,000 years from catalogue_epoch."
         },
     )
-    max_step_yr = ma.fields.Float(
+    max_step_yr = StrictFloat(
         load_default=None,
         allow_none=True,
         metadata={

@@ -33,6 +33,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import re
 
 import orjson
 from flask import request
@@ -180,14 +181,17 @@ def _typed(fld, value):
     text = value.strip()
     if isinstance(fld, ma.fields.Boolean) and text.lower() in ("true", "false"):
         return text.lower() == "true"
-    if isinstance(fld, ma.fields.Integer) and text.lstrip("+-").isdigit():
+    # ASCII decimal forms only: Python's int() and float() would also read "1_000", "nan",
+    # "infinity" and other scripts' digits, and str.isdigit() takes "¹", which int() refuses.
+    if isinstance(fld, ma.fields.Integer) and _INTEGER_TEXT.match(text):
         return int(text)
-    if isinstance(fld, ma.fields.Float):
-        try:
-            return float(text)
-        except ValueError:
-            return value
+    if isinstance(fld, ma.fields.Float) and _NUMBER_TEXT.match(text):
+        return float(text)
     return value
+
+
+_INTEGER_TEXT = re.compile(r"[+-]?[0-9]+\Z")
+_NUMBER_TEXT = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
 
 
 def _json_or_text(value: str):

@@ -21,7 +21,7 @@ from ..core import frames as core_frames
 from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out
+from .common import Blueprint, EpochField, EpochOutSchema, StrictFloat, epochs_out
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
 from .tables import StarTableField
@@ -97,7 +97,7 @@ def _num(description, *, lo=None, hi=None, **kw):
     validators = (
         [ma.validate.Range(min=lo, max=hi, **kw)] if lo is not None or hi is not None else []
     )
-    return ma.fields.Float(
+    return StrictFloat(
         load_default=None,
         allow_none=True,
         validate=validators,

@@ -95,6 +95,8 @@ def test_track_from_a_csv_body(client):
         # by the longer schemathesis run).
         ({"boundaries": 0}, "boundaries"),
         ({"boundaries": "yes"}, "boundaries"),
+        ({"ticks": "6"}, "ticks"),  # JSON numbers only
+        ({"ticks": 6.5}, "ticks"),
     ],
     ids=[
         "stop-before-start",
@@ -103,6 +105,8 @@ def test_track_from_a_csv_body(client):
         "too-many-stars",
         "boundaries-number",
         "boundaries-word",
+        "ticks-string",
+        "ticks-fraction",
     ],
 )
 def test_track_bad_input(client, track_body, change, field):

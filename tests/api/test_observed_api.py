@@ -246,3 +246,18 @@ def test_app_starts_and_answers_with_network_refused(monkeypatch, settings, obse
         assert r.status_code == 200
     finally:
         core.earth_orientation.cache_clear()
+
+
+@pytest.mark.parametrize(
+    ("change", "field"),
+    [
+        ({"atmosphere": {"pressure_hpa": "850"}}, "atmosphere.pressure_hpa"),
+        ({"atmosphere": {"temperature_c": True}}, "atmosphere.temperature_c"),
+        ({"horizon_limit_deg": "5"}, "horizon_limit_deg"),
+        ({"sun_avoidance_deg": "30"}, "sun_avoidance_deg"),
+    ],
+)
+def test_numbers_must_be_json_numbers(client, observed_example, change, field):
+    # marshmallow's Float would read the string "850" (and True as 1.0); a number written as
+    # a string usually means the client built its JSON by hand: say so instead of guessing.
+    assert_problem(client.post(OBS, json=dict(observed_example, **change)), 422, field)
