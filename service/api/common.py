@@ -191,6 +191,8 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
 class StrictFloat(ma.fields.Float):
     """A JSON number only: marshmallow's Float would also read the string "12.5"."""
 
+    default_error_messages = {"invalid": "must be a number (a JSON number, not a string)"}
+
     def _deserialize(self, value, attr, data, **kwargs):
         if not isinstance(value, int | float) or isinstance(value, bool):
             raise self.make_error("invalid")
@@ -199,6 +201,8 @@ class StrictFloat(ma.fields.Float):
 
 class StrictBoolean(ma.fields.Boolean):
     """JSON true or false only: marshmallow's Boolean would also read 0, 1, "yes", "off"."""
+
+    default_error_messages = {"invalid": "must be true or false"}
 
     def _deserialize(self, value, attr, data, **kwargs):
         if not isinstance(value, bool):  # not a set lookup: 0 == False and 1 == True
