@@ -12,8 +12,9 @@ time, as telescope software asking for the current place does). The constant end
 observed forms and the naive endpoint (a new instant in every request: astropy caches
 nothing per instant either way) are measured in ``rounds`` alternating rounds (default 5)
 and each keeps its median (``bench_http.rates_in_rounds``), so that load from other
-processes on a shared machine falls on all alike. One gunicorn worker (``bench_http.ONE_STAR_WORKERS``: the figure measures the
-cost of a request, not where wrk's keep-alive connections land).
+processes on a shared machine falls on all alike. One gunicorn worker
+(``bench_http.ONE_STAR_WORKERS``: the figure measures the cost of a request, not where
+wrk's keep-alive connections land).
 """
 
 from __future__ import annotations
