@@ -54,6 +54,25 @@ def problem_response(
     return resp
 
 
+#: marshmallow's stock messages in the project's wording (the field path comes first in
+#: every problem, so messages read as "<field> <message>").
+_STOCK_MESSAGES = {
+    "Missing data for required field.": "is required",
+    "Unknown field.": "is not a field of this request (check the spelling)",
+    "Field may not be null.": "may not be null",
+    "Not a valid integer.": "must be a whole number (a JSON integer)",
+    "Not a valid number.": "must be a number",
+    "Not a valid string.": "must be a string",
+    "Not a valid boolean.": "must be true or false",
+    "Not a valid list.": "must be a list",
+    "Invalid input type.": "must be an object",
+}
+
+
+def _worded(message: str) -> str:
+    return _STOCK_MESSAGES.get(message, message)
+
+
 def flatten_messages(messages, prefix: str = "") -> list[dict]:
     """Flatten marshmallow/webargs nested messages into [{"field", "message"}].
 
@@ -79,12 +98,12 @@ def flatten_messages(messages, prefix: str = "") -> list[dict]:
     elif isinstance(messages, list | tuple):
         if all(isinstance(m, str) for m in messages):
             for m in messages:
-                out.append({"field": prefix or "(body)", "message": m})
+                out.append({"field": prefix or "(body)", "message": _worded(m)})
         else:
             for m in messages:
                 out.extend(flatten_messages(m, prefix))
     else:
-        out.append({"field": prefix or "(body)", "message": str(messages)})
+        out.append({"field": prefix or "(body)", "message": _worded(str(messages))})
     return out
 
 

@@ -378,7 +378,7 @@ def test_options_from_the_query_string(client):
     assert r.status_code == 200, r.json
     assert len(r.json["epochs"]) == 3
     assert problem_fields(post_arrow(client, body, "?target_epochs=J2020")) == [
-        ("catalogue_epoch", "Missing data for required field.")
+        ("catalogue_epoch", "is required")
     ]
     assert ("model", "Must be one of: standard, light_time.") in problem_fields(
         post_arrow(client, body, QUERY + "&model=fast")
