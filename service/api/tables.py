@@ -46,7 +46,8 @@ MAX_LISTED_ERRORS = 50
 
 _NUMBER_TYPES = (float, int)
 _ID_TYPES = (str, int)
-_MAX_ID_LENGTH = 64
+#: Longest star identifier accepted, characters.
+MAX_ID_LENGTH = 64
 
 
 @dataclass
@@ -287,9 +288,9 @@ def _id_column(values: list, errors: TableErrors) -> list:
         bad = [i for i, v in enumerate(values) if not (type(v) in _ID_TYPES or v is None)]
         errors.add_indices(bad, "id", "must be a string or an integer")
     elif str in types:
-        long_ = [i for i, v in enumerate(values) if type(v) is str and len(v) > _MAX_ID_LENGTH]
+        long_ = [i for i, v in enumerate(values) if type(v) is str and len(v) > MAX_ID_LENGTH]
         if long_:
-            errors.add_indices(long_, "id", f"at most {_MAX_ID_LENGTH} characters")
+            errors.add_indices(long_, "id", f"at most {MAX_ID_LENGTH} characters")
     return values
 
 
