@@ -55,10 +55,10 @@ class Blueprint(flask_smorest.Blueprint):
         def _arrow_answer():
             # The answer object goes to Arrow directly (jsonio.OrjsonProvider.response):
             # no JSON text is made and read back for a million stars.
-            if arrowio.ARROW_MIMETYPE not in request.headers.get("Accept", ""):
+            if not arrowio.wants_arrow():
                 return  # the common case costs one header lookup (one-star requests)
             table = _table_endpoint(answer=True)
-            if table is not None and arrowio.wants_arrow():
+            if table is not None:
                 nested = table[1]
                 g.skydrift_answer_writer = lambda body: arrowio.arrow_response(body, nested)
 

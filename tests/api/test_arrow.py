@@ -397,6 +397,14 @@ def test_json_stays_the_default(client):
     assert post_arrow(client, body, accept=csv_first).mimetype == "text/csv"
 
 
+def test_media_type_in_accept_is_case_insensitive(client):
+    # RFC 9110: media type names are case-insensitive. An upper-case Accept once got JSON.
+    body = stream_of(small_table())
+    r = post_arrow(client, body, accept=ARROW.upper())
+    assert r.mimetype == ARROW
+    assert read_stream(r.data).num_rows == 2 * small_table().num_rows  # two epochs (QUERY)
+
+
 def test_charts_take_arrow_but_answer_images(client):
     q = "?catalogue_epoch=J2016.0&start=J2016.0&stop=J2116.0&format=svg"
     r = post_arrow(client, stream_of(small_table()), q, accept=ARROW, url="/v1/charts/track")
