@@ -173,8 +173,7 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     rv = np.asarray(radial_velocity_km_s, dtype=float)
     pma = np.asarray(pm_ra_cosdec_mas_yr, dtype=float)
     pmd = np.asarray(pm_dec_mas_yr, dtype=float)
-    shapes = {plx.shape, rv.shape, pma.shape, pmd.shape}
-    shape = shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
+    shape = _broadcast_shape(plx, rv, pma, pmd)
     if plx.size == rv.size == pma.size == pmd.size == 1:
         # One star: the same comparisons on Python floats (same IEEE arithmetic, less
         # overhead than a dozen array operations).
@@ -573,10 +572,7 @@ def standard_jacobian(
         )
     ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
-    shapes = {x.shape for x in args}
-    shapes.add(tau.shape)
-    # One shape (the common case, and one star): no need to work out a broadcast.
-    shape = shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
+    shape = _broadcast_shape(*args, tau)
     ra, dec, plx, pma, pmd, rv = (np.broadcast_to(x, shape) for x in args)
     tau = np.broadcast_to(tau, shape)
     entry_major = np.zeros((6, 6) + shape)
@@ -808,10 +804,7 @@ def propagate(
         )
     ]
     tau = np.asarray(epoch_to_jyear, dtype=float) - np.asarray(epoch_from_jyear, dtype=float)
-    shapes = {x.shape for x in args}
-    shapes.add(tau.shape)
-    # One shape (the common case, and one star): no need to work out a broadcast.
-    shape = shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
+    shape = _broadcast_shape(*args, tau)
     flat = [_flatten(x, shape) for x in (*args, tau)]
     n = flat[0].shape[0]
     cov_flat = None
@@ -859,6 +852,13 @@ def propagate(
     if cov_out is not None:
         cov_out = cov_out.reshape(shape + (6, 6))
     return PropagationResult(ast, flags.reshape(shape), cov_out)
+
+
+def _broadcast_shape(*arrays) -> tuple:
+    """The shape the arrays broadcast to; when they all have one shape (the common case,
+    one star included) it is taken as it is, without numpy's broadcasting machinery."""
+    shapes = {a.shape for a in arrays}
+    return shapes.pop() if len(shapes) == 1 else np.broadcast_shapes(*shapes)
 
 
 def _flatten(x, shape):
