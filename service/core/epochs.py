@@ -185,7 +185,7 @@ def _to_tdb_jd(jd1, jd2, scale: str):
     return jd1, jd2, notes
 
 
-def _from_tdb_to_utc_jd(jd1, jd2):
+def tdb_jd_to_utc_jd(jd1, jd2):
     """Two-part JD on TDB to two-part JD on UTC, with ERFA's per-element dubious status.
 
     The status is ERFA dat's: before 1960 (no UTC as defined today) or more than five
@@ -412,7 +412,7 @@ def label_epochs(jyear) -> EpochLabels:
     notes[~inside] |= int(TimeNote.NO_CALENDAR_DATE)
     idx = np.flatnonzero(inside)
     if idx.size:
-        u1, u2, dubious = _from_tdb_to_utc_jd(d1[idx], d2[idx])
+        u1, u2, dubious = tdb_jd_to_utc_jd(d1[idx], d2[idx])
         # Status per element ignored: the dubious years are flagged above.
         iy, im, iday, ihmsf, _ = erfa_ufunc.d2dtf("UTC", 3, u1, u2)
         hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)

@@ -40,6 +40,7 @@ from service.core.constants import (
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
+from service.core.epochs import tdb_jd_to_utc_jd
 from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
@@ -1693,13 +1694,9 @@ def _utc_from_julian_epoch_tdb_cached(jyear_key: str) -> tuple[float, float]:
 
 
 def _utc_from_julian_epoch_tdb(jyear):
-    # ERFA ufuncs directly: taiutc's "dubious year" status (beyond the leap-second table) is
-    # reported by the caller's flags; its error status cannot occur for the supported span
-    # of instants (checked by _check_instants).
-    d1, d2 = erfa_ufunc.epj2jd(jyear)
-    dt = erfa_ufunc.dtdb(d1, d2, np.mod(d2, 1.0), 0.0, 0.0, 0.0)
-    a1, a2, _ = erfa_ufunc.tttai(d1, d2 - dt / 86400.0)
-    u1, u2, _ = erfa_ufunc.taiutc(a1, a2)
+    # The "dubious year" status (beyond the leap-second table) is reported by the caller's
+    # flags (LEAP_SECONDS_EXTRAPOLATED).
+    u1, u2, _ = tdb_jd_to_utc_jd(*erfa_ufunc.epj2jd(jyear))
     return u1, u2
 
 
