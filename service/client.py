@@ -1050,12 +1050,16 @@ def _targets(body: dict, target_epochs, target_range) -> dict:
 #: Media type of Apache Arrow IPC streams.
 ARROW_MIMETYPE = "application/vnd.apache.arrow.stream"
 
+#: Schema metadata key of an Arrow answer holding its other members as JSON (the service's
+#: arrowio.ANSWER_METADATA_KEY; repeated here so that this module needs only requests).
+ARROW_ANSWER_KEY = b"skydrift.answer"
+
 
 def arrow_answer_members(table) -> dict:
     """The answer's members other than the table (units, flag meanings, epochs, warnings)
     from an Arrow answer's schema metadata."""
     meta = table.schema.metadata or {}
-    return json.loads(meta.get(b"skydrift.answer", b"{}"))
+    return json.loads(meta.get(ARROW_ANSWER_KEY, b"{}"))
 
 
 def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:

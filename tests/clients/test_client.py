@@ -493,3 +493,12 @@ def test_arrow_errors_are_raised_with_the_field(sky):
         )
     assert err.value.status == 422
     assert any(e.field == "stars.ra_deg[1]" for e in err.value.errors), err.value
+
+
+def test_client_arrow_names_are_the_services():
+    # The client repeats them so that it needs only requests; they must not drift apart.
+    from service import client
+    from service.api import arrowio
+
+    assert client.ARROW_MIMETYPE == arrowio.ARROW_MIMETYPE
+    assert client.ARROW_ANSWER_KEY == arrowio.ANSWER_METADATA_KEY
