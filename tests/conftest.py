@@ -33,6 +33,18 @@ def demo_catalogue():
     return json.loads((DEMO / "catalogue.json").read_text())
 
 
+#: The propagation options the CSV and Arrow tests send with the demo catalogue: as fields
+#: of a JSON body (DEMO_OPTIONS) and as the query string of a CSV or Arrow body (DEMO_QUERY).
+DEMO_OPTIONS = {"catalogue_epoch": "J2016.0", "target_epochs": ["J2026.0", "J2100.0"]}
+DEMO_QUERY = "?catalogue_epoch=J2016.0&target_epochs=J2026.0,J2100.0"
+
+
+@pytest.fixture
+def demo_request(demo_catalogue):
+    """The demo catalogue with DEMO_OPTIONS: a JSON body for POST /v1/propagation."""
+    return {"stars": demo_catalogue["stars"], **DEMO_OPTIONS}
+
+
 def example_parts(example: dict) -> tuple[list[dict], str]:
     """An example JSON request -> (its stars as records, the other fields as a query string
     the way a CSV or Arrow body carries them: lists repeated, objects with dotted names,

@@ -12,11 +12,11 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from tests.conftest import example_parts
+from tests.conftest import DEMO_OPTIONS, DEMO_QUERY, example_parts
 
 ARROW = "application/vnd.apache.arrow.stream"
 URL = "/v1/propagation"
-QUERY = "?catalogue_epoch=J2016.0&target_epochs=J2026.0,J2100.0"
+QUERY = DEMO_QUERY
 
 
 def stream_of(table: pa.Table | pa.RecordBatch, batches: int = 1) -> bytes:
@@ -96,12 +96,8 @@ def _check_propagation_rows(table: pa.Table, js: dict) -> None:
                 assert row.get(name) == value, name  # None (null) or the same double
 
 
-def test_propagation_with_uncertainties_equals_json(client, demo_stream, demo_catalogue):
-    body = {
-        "stars": demo_catalogue["stars"],
-        "catalogue_epoch": "J2016.0",
-        "target_epochs": ["J2026.0", "J2100.0"],
-    }
+def test_propagation_with_uncertainties_equals_json(client, demo_stream, demo_request):
+    body = demo_request
     js = client.post(URL, json=body).json
     assert any(s["at_epochs"][0]["uncertainties"] for s in js["stars"])  # the case is tested
     r = post_arrow(client, demo_stream, accept=ARROW)
@@ -187,12 +183,8 @@ def test_round_trip_through_pyarrow(client, demo_catalogue):
     assert table.schema.field("flags").type == pa.dictionary(pa.int32(), pa.string())
 
 
-def test_arrow_body_gives_the_same_json_as_a_json_body(client, demo_stream, demo_catalogue):
-    body = {
-        "stars": demo_catalogue["stars"],
-        "catalogue_epoch": "J2016.0",
-        "target_epochs": ["J2026.0", "J2100.0"],
-    }
+def test_arrow_body_gives_the_same_json_as_a_json_body(client, demo_stream, demo_request):
+    body = demo_request
     as_columns = post_arrow(client, demo_stream).json
     assert as_columns["layout"] == "columns"  # as for a CSV body
     assert as_columns == client.post(URL, json=dict(body, layout="columns")).json
@@ -228,7 +220,7 @@ def test_numeric_types_and_batches(client, demo_catalogue):
 
 
 def _q():
-    return {"catalogue_epoch": "J2016.0", "target_epochs": ["J2026.0", "J2100.0"]}
+    return dict(DEMO_OPTIONS)
 
 
 def test_nulls_give_the_flags_of_json_nulls(client):

@@ -5,10 +5,10 @@ import io
 
 import pytest
 
-from tests.conftest import DEMO, example_parts
+from tests.conftest import DEMO, DEMO_QUERY, example_parts
 
 URL = "/v1/propagation"
-QUERY = "?catalogue_epoch=J2016.0&target_epochs=J2026.0,J2100.0"
+QUERY = DEMO_QUERY
 HEADER = "id,ra_deg,dec_deg,parallax_mas,pm_ra_cosdec_mas_yr,pm_dec_mas_yr,radial_velocity_km_s"
 
 
@@ -51,13 +51,9 @@ def test_demo_csv_file_is_the_json_catalogue(demo_csv, demo_catalogue):
                 assert float(v) == expected
 
 
-def test_csv_round_trip_equals_json_answer(client, demo_csv, demo_catalogue):
+def test_csv_round_trip_equals_json_answer(client, demo_csv, demo_request):
     """Demo catalogue through CSV in and CSV out holds exactly the JSON endpoint's numbers."""
-    body = {
-        "stars": demo_catalogue["stars"],
-        "catalogue_epoch": "J2016.0",
-        "target_epochs": ["J2026.0", "J2100.0"],
-    }
+    body = demo_request
     js = client.post(URL, json=body).json
     r = post_csv(client, demo_csv, accept="text/csv")
     assert r.status_code == 200
@@ -86,12 +82,8 @@ def test_csv_round_trip_equals_json_answer(client, demo_csv, demo_catalogue):
     assert k == len(rows)
 
 
-def test_csv_body_gives_the_same_json_as_a_json_body(client, demo_csv, demo_catalogue):
-    body = {
-        "stars": demo_catalogue["stars"],
-        "catalogue_epoch": "J2016.0",
-        "target_epochs": ["J2026.0", "J2100.0"],
-    }
+def test_csv_body_gives_the_same_json_as_a_json_body(client, demo_csv, demo_request):
+    body = demo_request
     # A CSV body answers in the columns layout by default; the numbers are the same.
     as_columns = post_csv(client, demo_csv).json
     assert as_columns["layout"] == "columns"
