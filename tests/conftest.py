@@ -67,3 +67,29 @@ def example_parts(example: dict) -> tuple[list[dict], str]:
         else:
             query.append((key, str(value)))
     return stars, "?" + urlencode(query)
+
+
+def table_endpoint_cases(client, mimetype: str) -> list[tuple]:
+    """Every POST endpoint of the OpenAPI document that takes and answers ``mimetype`` (a
+    star-table format: CSV, Arrow) and has an example request, as
+    (path, example, its stars as records, its other fields as a query string, the JSON
+    answer to the example). Examples with a layout ask for records, and the query carries
+    the layout the JSON answer has, so that a table body gives the same answer."""
+    doc = client.get("/openapi.json").json
+    out = []
+    for path, item in sorted(doc["paths"].items()):
+        op = item.get("post")
+        if not op or mimetype not in op.get("requestBody", {}).get("content", {}):
+            continue
+        example = op["requestBody"]["content"]["application/json"].get("example")
+        if not example or mimetype not in op["responses"]["200"]["content"]:
+            continue
+        if "layout" in example:
+            example = dict(example, layout="records")
+        reference = client.post(path, json=example)
+        assert reference.status_code == 200, (path, reference.json)
+        stars, query = example_parts(example)
+        if "layout" in reference.json:
+            query += "&layout=" + reference.json["layout"]
+        out.append((path, example, stars, query, reference.json))
+    return out

@@ -12,7 +12,7 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from tests.conftest import DEMO_OPTIONS, DEMO_QUERY, example_parts
+from tests.conftest import DEMO_OPTIONS, DEMO_QUERY, table_endpoint_cases
 
 ARROW = "application/vnd.apache.arrow.stream"
 URL = "/v1/propagation"
@@ -418,25 +418,6 @@ def test_openapi_describes_arrow(client):
 # ------------------------------------------------- every star-table endpoint, generically
 
 
-def _table_endpoints(client):
-    doc = client.get("/openapi.json").json
-    out = []
-    for path, item in sorted(doc["paths"].items()):
-        op = item.get("post")
-        if not op or ARROW not in op.get("requestBody", {}).get("content", {}):
-            continue
-        example = op["requestBody"]["content"]["application/json"].get("example")
-        if example and ARROW in op["responses"]["200"]["content"]:
-            out.append((path, example))
-    return out
-
-
-def _example_as_arrow(example):
-    """An example JSON body -> (Arrow stream, query string) carrying the same request."""
-    stars, query = example_parts(example)
-    return stream_of(table_of(stars)), query
-
-
 def _as_cell(value) -> str:
     """An Arrow value written as the CSV answer writes the same JSON value."""
     if value is None:
@@ -451,18 +432,13 @@ def _as_cell(value) -> str:
 
 
 def test_every_table_endpoint_takes_and_gives_arrow(client):
-    endpoints = _table_endpoints(client)
-    assert {"/v1/propagation", "/v1/frames", "/v1/observed"} <= {p for p, _ in endpoints}
-    for path, example in endpoints:
-        example = dict(example, layout="records") if "layout" in example else example
-        body, query = _example_as_arrow(example)
-        reference = client.post(path, json=example)
-        assert reference.status_code == 200, (path, reference.json)
-        if "layout" in reference.json:
-            query += "&layout=" + reference.json["layout"]
+    cases = table_endpoint_cases(client, ARROW)
+    assert {"/v1/propagation", "/v1/frames", "/v1/observed"} <= {case[0] for case in cases}
+    for path, example, stars, query, reference in cases:
+        body = stream_of(table_of(stars))
         r = post_arrow(client, body, query, url=path)
         assert r.status_code == 200, (path, r.json)
-        assert r.json == reference.json, path
+        assert r.json == reference, path
         # Arrow out: the rows and columns of the CSV answer, cell for cell.
         out = post_arrow(client, body, query, accept=ARROW, url=path)
         assert out.mimetype == ARROW, path

@@ -5,7 +5,7 @@ import io
 
 import pytest
 
-from tests.conftest import DEMO, DEMO_QUERY, example_parts
+from tests.conftest import DEMO, DEMO_QUERY, table_endpoint_cases
 
 URL = "/v1/propagation"
 QUERY = DEMO_QUERY
@@ -270,47 +270,26 @@ def test_openapi_describes_csv(client):
 # ------------------------------------------------- every star-table endpoint, generically
 
 
-def _table_endpoints(client):
-    """(path, example body) of every POST endpoint that takes CSV, from the OpenAPI document."""
-    doc = client.get("/openapi.json").json
-    out = []
-    for path, item in sorted(doc["paths"].items()):
-        op = item.get("post")
-        if not op or "text/csv" not in op.get("requestBody", {}).get("content", {}):
-            continue
-        example = op["requestBody"]["content"]["application/json"].get("example")
-        if example and "text/csv" in op["responses"]["200"]["content"]:
-            out.append((path, example))
-    return out
-
-
-def _example_as_csv(example):
-    """An example JSON body -> (CSV text, query string) carrying the same request."""
-    stars, query = example_parts(example)
+def _csv_text(stars):
+    """Star records -> CSV text (header of every field given, empty cell = null)."""
     names = list(dict.fromkeys(k for s in stars for k in s))
     buf = io.StringIO()
     w = csv.writer(buf)
     w.writerow(names)
     for s in stars:
         w.writerow(["" if s.get(k) is None else s[k] for k in names])
-    return buf.getvalue(), query
+    return buf.getvalue()
 
 
 def test_every_table_endpoint_takes_and_gives_csv(client):
-    endpoints = _table_endpoints(client)
-    assert "/v1/propagation" in [p for p, _ in endpoints]
-    for path, example in endpoints:
-        example = dict(example, layout="records") if "layout" in example else example
-        body, query = _example_as_csv(example)
-        reference = client.post(path, json=example)
-        assert reference.status_code == 200, (path, reference.json)
-        if "layout" in reference.json:
-            query += "&layout=" + reference.json["layout"]
-        r = client.post(path + query, data=body, content_type="text/csv")
+    cases = table_endpoint_cases(client, "text/csv")
+    assert "/v1/propagation" in [case[0] for case in cases]
+    for path, example, stars, query, reference in cases:
+        r = client.post(path + query, data=_csv_text(stars), content_type="text/csv")
         assert r.status_code == 200, (path, r.json)
-        assert r.json == reference.json, path
+        assert r.json == reference, path
         out = client.post(path, json=example, headers={"Accept": "text/csv"})
         assert out.mimetype == "text/csv", path
         rows = rows_of(out.get_data(as_text=True))
-        assert {int(row["index"]) for row in rows} == set(range(len(reference.json["stars"])))
-        assert [row["id"] for row in rows][:1] == [str(reference.json["stars"][0]["id"])]
+        assert {int(row["index"]) for row in rows} == set(range(len(reference["stars"])))
+        assert [row["id"] for row in rows][:1] == [str(reference["stars"][0]["id"])]
