@@ -93,3 +93,24 @@ def table_endpoint_cases(client, mimetype: str) -> list[tuple]:
             query += "&layout=" + reference.json["layout"]
         out.append((path, example, stars, query, reference.json))
     return out
+
+
+def propagation_rows(answer: dict) -> list[dict]:
+    """The rows a table answer (CSV, Arrow) of POST /v1/propagation must hold for its JSON
+    records answer: one per star and epoch, star by star, with the star's index, id and
+    flags (a list), the epoch, the six parameters and their uncertainties (None: unknown)."""
+    rows = []
+    for star in answer["stars"]:
+        for epoch, at in zip(answer["epochs"], star["at_epochs"], strict=True):
+            row = {
+                "index": star["index"],
+                "id": star["id"],
+                "epoch_julian_tdb": epoch["julian_epoch_tdb"],
+                "epoch_iso_utc": epoch["iso_utc"],
+                "flags": star["flags"],
+            }
+            values = dict(at)
+            values.update(values.pop("uncertainties") or {})
+            row.update(values)
+            rows.append(row)
+    return rows
