@@ -110,19 +110,8 @@ def wrk_rps(url: str, path: str, body: dict, connections: int = 8) -> float:
 
 
 def worker_peak_rss_mb(master_pid: int) -> float:
-    peak = 0.0
-    for child in pathlib.Path("/proc").iterdir():
-        if not child.name.isdigit():
-            continue
-        try:
-            status = (child / "status").read_text()
-        except OSError:
-            continue
-        if f"PPid:\t{master_pid}\n" in status:
-            m = re.search(r"VmHWM:\s+(\d+) kB", status)
-            if m:
-                peak = max(peak, int(m.group(1)) / 1024)
-    return peak
+    """Largest peak resident memory (VmHWM) of the master's workers, MB."""
+    return max(server.worker_memory_mb(master_pid, "VmHWM").values(), default=0.0)
 
 
 #: Gunicorn workers for the one-star rates. One, so that the figure measures the cost of a

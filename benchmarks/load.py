@@ -101,29 +101,9 @@ def bodies() -> dict[str, tuple[str, bytes]]:
 # ------------------------------------------------------------------------------ server
 
 
-def start_server(**env) -> tuple[str, subprocess.Popen]:
-    """gunicorn -c deploy/gunicorn.conf.py service.wsgi:app on a free loopback port."""
-    return server.start(wait_s=60.0, **env)
-
-
-stop_server = server.stop
-
-
 def worker_rss_mb(master_pid: int) -> dict[int, float]:
     """Resident memory (VmRSS) of each worker process, MB."""
-    out = {}
-    for child in pathlib.Path("/proc").iterdir():
-        if not child.name.isdigit():
-            continue
-        try:
-            status = (child / "status").read_text()
-        except OSError:
-            continue
-        if f"PPid:\t{master_pid}\n" in status:
-            m = re.search(r"VmRSS:\s+(\d+) kB", status)
-            if m:
-                out[int(child.name)] = int(m.group(1)) / 1024
-    return out
+    return server.worker_memory_mb(master_pid, "VmRSS")
 
 
 # ------------------------------------------------------------------------------ wrk
@@ -336,7 +316,7 @@ def main(argv=None) -> int:
     report: dict = {"pools": {}}
     try:
         for name, (kinds, env) in pools.items():
-            url, proc = start_server(**base_env, **env)
+            url, proc = server.start(wait_s=60.0, **base_env, **env)
             servers[name] = proc
             urls.update(dict.fromkeys(kinds, url))
         warm_up(urls)
@@ -384,7 +364,7 @@ def main(argv=None) -> int:
             )
     finally:
         for proc in servers.values():
-            stop_server(proc)
+            server.stop(proc)
     if args.json:
         pathlib.Path(args.json).write_text(json.dumps(report, indent=1, default=str))
     return 0

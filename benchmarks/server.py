@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import os
 import pathlib
+import re
 import signal
 import socket
 import subprocess
@@ -63,3 +64,21 @@ def stop(proc: subprocess.Popen, timeout_s: float = 90.0) -> None:
     except subprocess.TimeoutExpired:
         proc.kill()
         proc.wait()
+
+
+def worker_memory_mb(master_pid: int, field: str = "VmRSS") -> dict[int, float]:
+    """A memory figure of each worker process of the gunicorn master ``master_pid``, MB, by
+    pid: ``VmRSS`` (resident now) or ``VmHWM`` (peak resident), from /proc (Linux)."""
+    out = {}
+    for child in pathlib.Path("/proc").iterdir():
+        if not child.name.isdigit():
+            continue
+        try:
+            status = (child / "status").read_text()
+        except OSError:
+            continue
+        if f"PPid:\t{master_pid}\n" in status:
+            m = re.search(rf"{field}:\s+(\d+) kB", status)
+            if m:
+                out[int(child.name)] = int(m.group(1)) / 1024
+    return out
