@@ -29,21 +29,12 @@ BODY = {
 }
 
 
-def start_server(**extra_env):
-    srv = Server(workers=2, **extra_env).start()
-    return srv.url, srv
-
-
-def stop_server(srv):
-    srv.stop()
-
-
 @pytest.fixture(scope="module")
 def two_workers(tmp_path_factory):
     folder = tmp_path_factory.mktemp("metrics")
-    url, srv = start_server(PROMETHEUS_MULTIPROC_DIR=str(folder))
-    yield url, folder
-    stop_server(srv)
+    srv = Server(workers=2, PROMETHEUS_MULTIPROC_DIR=str(folder)).start()
+    yield srv.url, folder
+    srv.stop()
 
 
 def scrape(url):
@@ -116,14 +107,15 @@ def test_oversized_body_answered_413_over_the_wire_without_sending_it(two_worker
 def test_fail_first_n_counted_across_workers():
     """SKYDRIFT_TEST_FAIL_FIRST_N=3 (test only): exactly 3 of 12 concurrent requests, on
     separate connections served by either worker, answer 503 with Retry-After."""
-    url, srv = start_server(SKYDRIFT_TEST_FAIL_FIRST_N="3", SKYDRIFT_TEST_FAIL_RETRY_AFTER_S="2")
+    srv = Server(workers=2, SKYDRIFT_TEST_FAIL_FIRST_N="3", SKYDRIFT_TEST_FAIL_RETRY_AFTER_S="2")
+    url = srv.start().url
     try:
         with concurrent.futures.ThreadPoolExecutor(6) as pool:
             answers = list(
                 pool.map(lambda _: requests.get(url + "/openapi.json", timeout=30), range(12))
             )
     finally:
-        stop_server(srv)
+        srv.stop()
     failed = [r for r in answers if r.status_code == 503]
     assert len(failed) == 3
     assert all(r.headers["Retry-After"] == "2" for r in failed)
