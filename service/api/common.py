@@ -191,7 +191,7 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
 class StrictFloat(ma.fields.Float):
     """A JSON number only: marshmallow's Float would also read the string "12.5"."""
 
-    default_error_messages = {"invalid": "must be a number (a JSON number, not a string)"}
+    default_error_messages = {"invalid": "must be a number (in a JSON body: not in quotes)"}
 
     def _deserialize(self, value, attr, data, **kwargs):
         if not isinstance(value, int | float) or isinstance(value, bool):

@@ -60,7 +60,7 @@ _STOCK_MESSAGES = {
     "Missing data for required field.": "is required",
     "Unknown field.": "is not a field of this request (check the spelling)",
     "Field may not be null.": "may not be null",
-    "Not a valid integer.": "must be a whole number (a JSON integer)",
+    "Not a valid integer.": "must be a whole number",
     "Not a valid number.": "must be a number",
     "Not a valid string.": "must be a string",
     "Not a valid boolean.": "must be true or false",
