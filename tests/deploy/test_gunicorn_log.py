@@ -1,0 +1,106 @@
+"""service/gunicorn_log.py: the JSON access line, checked against gunicorn's own atoms.
+
+The access line reads its fields directly instead of through ``Logger.atoms`` (which formats
+every header and environ entry); gunicorn's ``atoms`` on the same request is the reference.
+"""
+
+import datetime
+import json
+import logging
+import types
+
+import pytest
+from gunicorn.config import Config
+from gunicorn.glogging import Logger
+
+from service.gunicorn_log import JsonLogger
+
+
+class _Lines(logging.Handler):
+    def __init__(self):
+        super().__init__()
+        self.lines = []
+
+    def emit(self, record):
+        self.lines.append(record.getMessage())
+
+
+@pytest.fixture()
+def logger():
+    root = logging.getLogger()
+    handlers, level = list(root.handlers), root.level
+    try:
+        log = JsonLogger(Config())
+    finally:  # JsonLogger.setup joins the root logger to its error log: undo that here
+        root.handlers[:] = handlers
+        root.setLevel(level)
+    sink = _Lines()
+    log.access_log = logging.getLogger("skydrift.test.access")
+    log.access_log.handlers[:] = [sink]
+    log.access_log.propagate = False
+    log.access_log.setLevel(logging.INFO)
+    log._access_log_enabled = True  # as gunicorn computes it when an access log is set
+    log.lines = sink.lines
+    return log
+
+
+def _request(query="", request_ids=("abc-1",), user_agent="curl/8.5"):
+    resp = types.SimpleNamespace(
+        status="201 CREATED",
+        headers=[("Content-Type", "application/json")]
+        + [("X-Request-ID", rid) for rid in request_ids],
+        sent=1234,
+    )
+    req = types.SimpleNamespace(headers=[("HOST", "localhost"), ("USER-AGENT", user_agent)])
+    environ = {
+        "REMOTE_ADDR": "192.0.2.7",
+        "REQUEST_METHOD": "POST",
+        "RAW_URI": "/v1/propagation" + (f"?{query}" if query else ""),
+        "PATH_INFO": "/v1/propagation",
+        "QUERY_STRING": query,
+        "SERVER_PROTOCOL": "HTTP/1.1",
+        "HTTP_USER_AGENT": user_agent,
+    }
+    return resp, req, environ, datetime.timedelta(seconds=2, microseconds=345_678)
+
+
+@pytest.mark.parametrize(
+    "query, request_ids",
+    [("", ("abc-1",)), ("format=csv&x=é", ("first", "second")), ("", ())],
+    ids=["plain", "query-and-two-ids", "no-id"],
+)
+def test_access_line_has_the_fields_of_gunicorns_atoms(logger, query, request_ids):
+    resp, req, environ, took = _request(query, request_ids)
+    logger.access(resp, req, environ, took)
+    (line,) = logger.lines
+    entry = json.loads(line)
+    atoms = Logger.atoms(logger, resp, req, environ, took)  # gunicorn's reading: the reference
+    assert entry["type"] == "access"
+    assert entry["remote"] == atoms["h"] == "192.0.2.7"
+    assert entry["method"] == atoms["m"] == "POST"
+    assert entry["path"] == atoms["U"]
+    assert entry["query"] == (atoms["q"] or None)
+    assert entry["protocol"] == atoms["H"]
+    assert entry["status"] == int(atoms["s"]) == 201
+    assert entry["bytes"] == atoms["B"] == 1234
+    assert entry["duration_ms"] == round(atoms["D"] / 1000.0, 3) == 2345.678
+    assert entry["request_id"] == atoms.get("{x-request-id}o")
+    assert entry["user_agent"] == atoms["a"] == "curl/8.5"
+    when = datetime.datetime.fromisoformat(entry["time"])
+    assert abs(when - datetime.datetime.now(datetime.UTC)) < datetime.timedelta(minutes=1)
+
+
+def test_access_line_off_when_disabled(logger):
+    logger._access_log_enabled = False
+    logger.access(*_request())
+    assert logger.lines == []
+
+
+def test_access_line_failure_goes_to_the_error_log(logger, monkeypatch):
+    errors = []
+    monkeypatch.setattr(logger, "error", errors.append)
+    resp, req, environ, took = _request()
+    resp.status = "not-a-status"
+    logger.access(resp, req, environ, took)
+    assert logger.lines == []
+    assert "ValueError" in errors[0]
