@@ -56,6 +56,8 @@ SECURITY_HEADERS = {
     "Cache-Control": "no-store",
 }
 
+_SECURITY_HEADERS_BY_LOWER = tuple((k.lower(), (k, v)) for k, v in SECURITY_HEADERS.items())
+
 CORS_ALLOW_METHODS = "GET, POST, OPTIONS"
 CORS_ALLOW_HEADERS = "Authorization, Content-Type, X-Request-ID"
 CORS_EXPOSE_HEADERS = (
@@ -272,8 +274,10 @@ def register(app) -> None:
             if origin and _origin_allowed(origin, origins):
                 resp.headers["Access-Control-Allow-Origin"] = "*" if "*" in origins else origin
                 resp.headers["Access-Control-Expose-Headers"] = CORS_EXPOSE_HEADERS
-        for name, value in SECURITY_HEADERS.items():
-            resp.headers.setdefault(name, value)
+        # Each security header unless the view set its own: one pass over the headers
+        # (Headers.setdefault scans them once per name).
+        have = {name.lower() for name, _ in resp.headers.items()}
+        resp.headers.extend([kv for low, kv in _SECURITY_HEADERS_BY_LOWER if low not in have])
         return resp
 
     # Registered last, so among the application's after_request hooks it runs first.

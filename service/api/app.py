@@ -118,9 +118,7 @@ def create_app(config: dict | None = None) -> Flask:
     @app.after_request
     def _finish(resp):
         resp.headers["X-Request-ID"] = g.get("request_id", "")
-        resp.headers.setdefault("X-Content-Type-Options", "nosniff")
-        resp.headers.setdefault("Cache-Control", "no-store")
-        return resp
+        return resp  # the security headers: access.register
 
     # Metrics, access control and limits (service/api/observability.py, access.py).
     from . import access, observability

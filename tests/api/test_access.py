@@ -76,6 +76,21 @@ def test_security_headers_on_every_response(client, path, kwargs):
         assert r.headers.get(name) == value, (path, name)
 
 
+@pytest.mark.parametrize("spelling", ["Cache-Control", "cache-control", "CACHE-CONTROL"])
+def test_security_headers_keep_a_views_own_value_once(settings, spelling):
+    """A view that sets one of the security headers itself (header names are
+    case-insensitive, RFC 9110 section 5.1) keeps its value, not a second one."""
+    app = create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True})
+
+    @app.get("/own-cache-control")
+    def own():
+        return "cached", 200, {spelling: "max-age=60"}
+
+    r = app.test_client().get("/own-cache-control")
+    assert r.headers.getlist("Cache-Control") == ["max-age=60"]
+    assert r.headers.get("X-Frame-Options") == access.SECURITY_HEADERS["X-Frame-Options"]
+
+
 # --- bearer tokens -------------------------------------------------------------------------
 
 
