@@ -45,6 +45,28 @@ def _schema_rows(spec: dict, schema: dict, depth: int = 0) -> list[str]:
     return rows
 
 
+def _parameter_rows(params: list[dict]) -> list[str]:
+    """One table row per path or query parameter: name (* if required), where, type, meaning."""
+    rows = []
+    for prm in params:
+        schema = prm.get("schema", {})
+        typ = schema.get("type", "")
+        if isinstance(typ, list):
+            typ = " or ".join(typ)
+        extra = []
+        if "enum" in schema:
+            extra.append("one of " + ", ".join(str(v) for v in schema["enum"]))
+        if schema.get("default") is not None:
+            extra.append(f"default {schema['default']}")
+        desc = prm.get("description", "") + (f" ({'; '.join(extra)})" if extra else "")
+        rows.append(
+            f"<tr><td><code>{html.escape(prm.get('name', ''))}</code>"
+            f"{' *' if prm.get('required') else ''}</td><td>{html.escape(prm.get('in', ''))}"
+            f"</td><td>{html.escape(str(typ))}</td><td>{html.escape(desc)}</td></tr>"
+        )
+    return rows
+
+
 @blp.route("/docs")
 def reference_page():
     """Human-readable API reference rendered from the OpenAPI document."""
@@ -72,6 +94,12 @@ def reference_page():
                 f"</code></h2><p><b>{html.escape(op.get('summary', ''))}</b></p>"
                 f"<p>{html.escape(op.get('description', ''))}</p>"
             )
+            params = ops.get("parameters", []) + op.get("parameters", [])
+            if params:
+                parts.append("<h3>Parameters</h3><table><tr><th>name</th><th>in</th>")
+                parts.append("<th>type</th><th>meaning</th></tr>")
+                parts.extend(_parameter_rows(params))
+                parts.append("</table>")
             body = op.get("requestBody", {}).get("content", {}).get("application/json", {})
             if body:
                 parts.append("<h3>Request body</h3><table><tr><th>field</th><th>type</th>")

@@ -1,6 +1,7 @@
 """Health, readiness, the OpenAPI document, the reference page, errors, configuration."""
 
 import ast
+import html
 import json
 import pathlib
 
@@ -77,6 +78,26 @@ def test_reference_page_is_self_contained(client):
     assert "/v1/propagation" in text
     assert "http://" not in text and "https://" not in text  # no CDN or remote assets
     assert "<script" not in text
+
+
+def test_reference_page_lists_every_parameter(client):
+    """Every path and query parameter of the OpenAPI document appears on the reference page,
+    in the section of its operation, with its description."""
+    doc = client.get("/openapi.json").json
+    text = client.get("/docs").get_data(as_text=True)
+    sections = text.split("<h2>")
+    checked = 0
+    for path, ops in doc["paths"].items():
+        for method, op in ops.items():
+            if method not in ("get", "post"):
+                continue
+            head = f"{method.upper()}</span> <code>{html.escape(path)}</code></h2>"
+            (section,) = [s for s in sections if head in s]
+            for prm in ops.get("parameters", []) + op.get("parameters", []):
+                assert f"<code>{html.escape(prm['name'])}</code>" in section, (path, prm["name"])
+                assert html.escape(prm.get("description", "")) in section, (path, prm["name"])
+                checked += 1
+    assert checked >= 60  # the outline options, and the query options of CSV and Arrow bodies
 
 
 def test_unknown_path_is_problem_json(client):
