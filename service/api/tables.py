@@ -17,6 +17,7 @@ it never becomes zero.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import marshmallow as ma
@@ -45,6 +46,9 @@ MAX_DISTANCE_PC = 1e10
 MAX_LISTED_ERRORS = 50
 
 _NUMBER_TYPES = (float, int)
+
+NUMBER_MESSAGE = "must be a number (in the unit of the field name)"
+QUOTED_NUMBER_MESSAGE = "must be a number (in the unit of the field name), written without quotes"
 _ID_TYPES = (str, int)
 #: Longest star identifier accepted, characters.
 MAX_ID_LENGTH = 64
@@ -209,7 +213,13 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
             pass
     bad = [i for i, v in enumerate(values) if type(v) not in _NUMBER_TYPES and v is not None]
     if bad:
-        errors.add_indices(bad, spec.name, "must be a number (in the unit of the field name)")
+        # A number sent as a string ("19.6") is the common case: say what to change.
+        quoted = [i for i in bad if _finite_number_text(values[i])]
+        other = [i for i in bad if not _finite_number_text(values[i])]
+        if quoted:
+            errors.add_indices(quoted, spec.name, QUOTED_NUMBER_MESSAGE)
+        if other:
+            errors.add_indices(other, spec.name, NUMBER_MESSAGE)
     if None in values and not spec.allow_none:
         nulls = [i for i, v in enumerate(values) if v is None]
         errors.add_indices(nulls, spec.name, "is required and may not be null")
@@ -221,6 +231,16 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
         big = [i for i, v in enumerate(values) if type(v) is int and abs(v) > 1e300]
         errors.add_indices(big, spec.name, "number out of range")
         return np.full(len(values), np.nan)
+
+
+def _finite_number_text(value) -> bool:
+    """Whether ``value`` is a string holding a finite decimal number ("19.6", "-2e3")."""
+    if type(value) is not str or not value.isascii():
+        return False
+    try:
+        return math.isfinite(float(value))
+    except ValueError:
+        return False
 
 
 def _line_of(item) -> int:

@@ -177,12 +177,14 @@ def test_missing_targets(client):
 
 def test_string_where_number_belongs(client):
     star = dict(STAR, ra_deg="10.0")
-    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].ra_deg")
+    body = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].ra_deg")
+    assert body["errors"][0]["message"].endswith("written without quotes")
 
 
 def test_boolean_is_not_a_number(client):
     star = dict(STAR, parallax_mas=True)
-    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parallax_mas")
+    body = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parallax_mas")
+    assert body["errors"][0]["message"] == "must be a number (in the unit of the field name)"
 
 
 def test_nan_literal_is_not_json(client):
@@ -197,7 +199,9 @@ def test_infinity_is_rejected(client):
 
 def test_nan_string_is_rejected(client):
     star = dict(STAR, pm_dec_mas_yr="NaN")
-    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].pm_dec_mas_yr")
+    body = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].pm_dec_mas_yr")
+    # No advice to drop the quotes: a bare NaN is no JSON (RFC 8259 section 6).
+    assert body["errors"][0]["message"] == "must be a number (in the unit of the field name)"
 
 
 def test_required_value_null(client):
