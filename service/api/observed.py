@@ -124,11 +124,21 @@ class SiteField(ma.fields.Field):
             return value
         if isinstance(value, dict):
             allowed = {"latitude_deg", "longitude_deg", "height_m", "name"}
-            unknown = set(value) - allowed
-            if unknown:
-                raise ma.ValidationError(
-                    {k: ["unknown field; accepted: " + ", ".join(sorted(allowed))] for k in unknown}
-                )
+            errors = {
+                k: ["unknown field; accepted: " + ", ".join(sorted(allowed))]
+                for k in set(value) - allowed
+            }
+            # JSON numbers only, as every number of a request (StrictFloat): the core would
+            # read true as 1 and "38.4" as 38.4. Ranges: core.make_site, in the view.
+            for key in ("latitude_deg", "longitude_deg", "height_m"):
+                v = value.get(key)
+                if v is not None and (not isinstance(v, int | float) or isinstance(v, bool)):
+                    errors[key] = [StrictFloat.default_error_messages["invalid"]]
+            name = value.get("name")
+            if name is not None and not isinstance(name, str):
+                errors["name"] = ["must be a string (a label for the site)"]
+            if errors:
+                raise ma.ValidationError(errors)
             return value
         raise ma.ValidationError("must be a site name or an object with latitude_deg etc.")
 

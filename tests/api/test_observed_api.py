@@ -189,6 +189,30 @@ def test_missing_site_height_is_an_error_not_sea_level(client, observed_example)
     assert_problem(r, 422, "site.height_m")
 
 
+@pytest.mark.parametrize(
+    "key, value",
+    [("latitude_deg", True), ("latitude_deg", "38.4"), ("longitude_deg", "-7.65"),
+     ("height_m", False), ("height_m", [1460])],
+)  # fmt: skip
+def test_site_coordinate_must_be_a_json_number(client, observed_example, key, value):
+    """true is not latitude 1 and "38.4" is not 38.4 (the core alone would read them so)."""
+    site = {"latitude_deg": 38.4, "longitude_deg": -7.65, "height_m": 1460.0, key: value}
+    r = client.post(OBS, json=dict(observed_example, site=site))
+    assert_problem(r, 422, f"site.{key}")
+    assert r.json["errors"] == [
+        {"field": f"site.{key}", "message": "must be a number (in a JSON body: not in quotes)"}
+    ]
+
+
+def test_site_errors_reported_together_with_the_others(client, observed_example):
+    site = {"latitude_deg": "38.4", "longitude_deg": -7.65, "height_m": 1460.0, "name": 7}
+    r = client.post(
+        OBS, json=dict(observed_example, site=site, atmosphere={"relative_humidity": 1.3})
+    )
+    assert_problem(r, 422, "site.name")
+    assert {e["field"] for e in r.json["errors"]} == {"site.latitude_deg", "site.name", "atmosphere.relative_humidity"}
+
+
 def test_unknown_site_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
     assert_problem(r, 422, "site.name")
