@@ -210,7 +210,8 @@ def test_site_errors_reported_together_with_the_others(client, observed_example)
         OBS, json=dict(observed_example, site=site, atmosphere={"relative_humidity": 1.3})
     )
     assert_problem(r, 422, "site.name")
-    assert {e["field"] for e in r.json["errors"]} == {"site.latitude_deg", "site.name", "atmosphere.relative_humidity"}
+    fields = {e["field"] for e in r.json["errors"]}
+    assert fields == {"site.latitude_deg", "site.name", "atmosphere.relative_humidity"}
 
 
 def test_unknown_site_names_the_field(client, observed_example):
