@@ -39,7 +39,7 @@ import orjson
 from flask import request
 from flask_smorest import abort
 
-from .jsonio import read_body
+from .jsonio import read_body, refuse_repeated_options
 
 CSV_MIMETYPE = "text/csv"
 
@@ -218,6 +218,7 @@ def load_table_request(req, schema, parse_body) -> dict:
     name = table_field_name(schema)
     if name is None:  # pragma: no cover - the blueprint accepts tables only for table endpoints
         abort(415, message=f"{req.mimetype} is not accepted here")
+    refuse_repeated_options(schema, req.args)
     data = _option_values(schema, req.args, name)
     data[name] = parse_body(read_body(req))
     return data

@@ -94,6 +94,10 @@ class BodyParser(FlaskParser):
             return load_arrow_request(req, schema)
         return super().load_json(req, schema)
 
+    def load_querystring(self, req, schema):
+        refuse_repeated_options(schema, req.args)
+        return super().load_querystring(req, schema)
+
     def _raw_load_json(self, req):
         if not webargs_core.is_json(req.mimetype):
             return webargs_core.missing
@@ -107,3 +111,24 @@ class BodyParser(FlaskParser):
             # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
             # are not UTF-8, so it is never passed on empty.
             raise json.JSONDecodeError(str(exc), exc.doc or "(body)", exc.pos or 0) from None
+
+
+def refuse_repeated_options(schema, args) -> None:
+    """422 for a query parameter given more than once where one value belongs: which of
+    ``?tolerance_arcsec=1&tolerance_arcsec=2`` was meant is unknowable, and taking the first
+    would silently drop the other. List fields (and unknown names, refused by the schema)
+    are left alone; ``a.b`` names the member ``b`` of the nested field ``a``."""
+    from flask_smorest import abort
+
+    errors = []
+    for key in args:
+        if len(args.getlist(key)) < 2:
+            continue
+        fld = schema.fields.get(key.partition(".")[0])
+        if fld is None or isinstance(fld, ma.fields.List):
+            continue
+        errors.append(
+            {"field": key, "message": f"given {len(args.getlist(key))} times; give it once"}
+        )
+    if errors:
+        abort(422, errors=errors)

@@ -183,6 +183,22 @@ def test_all_outlines(client):
 # ---------------------------------------------------------------- bad input
 
 
+@pytest.mark.parametrize(
+    "url, field",
+    [
+        (
+            "/v1/constellations/ori/outline?tolerance_arcsec=1&tolerance_arcsec=2",
+            "tolerance_arcsec",
+        ),
+        ("/v1/constellations/outlines?frame=icrs&frame=galactic", "frame"),
+    ],
+)
+def test_outline_option_given_twice_is_refused(client, url, field):
+    r = client.get(url)
+    assert r.status_code == 422, r.get_data(as_text=True)
+    assert r.json["errors"] == [{"field": field, "message": "given 2 times; give it once"}]
+
+
 def test_unknown_abbreviation_is_404_with_the_way_to_valid_ones(client):
     body = assert_problem(client.get(f"{BASE}/Xyz/outline"), 404, "abbreviation")
     assert "GET /v1/constellations" in json.dumps(body)

@@ -210,6 +210,25 @@ def test_unknown_or_missing_option(client):
 
 
 @pytest.mark.parametrize(
+    "query, field",
+    [
+        ("?catalogue_epoch=J2016.0&catalogue_epoch=J2000.0&target_epochs=J2020", "catalogue_epoch"),
+        (QUERY + "&model=standard&model=light_time", "model"),
+        (
+            "?catalogue_epoch=J2016.0&target_range.start=J2016.0&target_range.stop=J2116.0"
+            "&target_range.count=3&target_range.count=4",
+            "target_range.count",
+        ),
+    ],
+)
+def test_option_given_twice_is_refused_not_one_dropped(client, query, field):
+    """Which of two values was meant is unknowable: 422 naming it (lists, such as
+    target_epochs, take repeats: test_options_as_query_parameters)."""
+    body = HEADER + "\nA,10,5,100,1000,-500,20\n"
+    assert problem_fields(post_csv(client, body, query)) == [(field, "given 2 times; give it once")]
+
+
+@pytest.mark.parametrize(
     ("url", "option", "text"),
     [
         # str.isdigit() takes the superscript one, which int() refuses: once a 500 (found by
