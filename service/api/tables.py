@@ -18,6 +18,7 @@ it never becomes zero.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 
 import marshmallow as ma
@@ -233,14 +234,18 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
         return np.full(len(values), np.nan)
 
 
+#: A number as JSON writes it (RFC 8259 section 6).
+_JSON_NUMBER_TEXT = re.compile(r"-?(0|[1-9][0-9]*)(\.[0-9]+)?([eE][+-]?[0-9]+)?\Z")
+
+
 def _finite_number_text(value) -> bool:
-    """Whether ``value`` is a string holding a finite decimal number ("19.6", "-2e3")."""
-    if type(value) is not str or not value.isascii():
-        return False
-    try:
-        return math.isfinite(float(value))
-    except ValueError:
-        return False
+    """Whether ``value`` is a string that, without its quotes, is a finite JSON number
+    ("19.6", "-2e3"; not "1_000", "+5" or "1e999")."""
+    return (
+        type(value) is str
+        and _JSON_NUMBER_TEXT.match(value) is not None
+        and math.isfinite(float(value))
+    )
 
 
 def _line_of(item) -> int:

@@ -175,10 +175,16 @@ def test_missing_targets(client):
     assert_problem(post(client, {"stars": [STAR], "catalogue_epoch": 2016}), 422, "target_epochs")
 
 
-def test_string_where_number_belongs(client):
-    star = dict(STAR, ra_deg="10.0")
+@pytest.mark.parametrize(
+    "text, hint",
+    [("10.0", True), ("-2e3", True), ("1_000", False), ("+5", False), ("1e999", False)],
+)
+def test_string_where_number_belongs(client, text, hint):
+    """The advice to drop the quotes only where that gives a JSON number (RFC 8259 section 6)
+    the service accepts."""
+    star = dict(STAR, ra_deg=text)
     body = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].ra_deg")
-    assert body["errors"][0]["message"].endswith("written without quotes")
+    assert body["errors"][0]["message"].endswith("written without quotes") is hint
 
 
 def test_boolean_is_not_a_number(client):
