@@ -8,6 +8,7 @@ import marshmallow as ma
 import orjson
 from flask import g, has_request_context
 from flask.json.provider import JSONProvider
+from flask_smorest import abort
 from webargs import core as webargs_core
 from webargs.flaskparser import FlaskParser
 from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
@@ -118,8 +119,6 @@ def refuse_repeated_options(schema, args) -> None:
     ``?tolerance_arcsec=1&tolerance_arcsec=2`` was meant is unknowable, and taking the first
     would silently drop the other. List fields (and unknown names, refused by the schema)
     are left alone; ``a.b`` names the member ``b`` of the nested field ``a``."""
-    from flask_smorest import abort
-
     errors = []
     for key in args:
         if len(args.getlist(key)) < 2:
