@@ -66,6 +66,7 @@ _STOCK_MESSAGES = {
     "Not a valid boolean.": "must be true or false",
     "Not a valid list.": "must be a list",
     "Invalid input type.": "must be an object",
+    "Shorter than minimum length 1.": "must have at least one entry",
 }
 
 

@@ -280,6 +280,13 @@ def test_empty_batch(client):
     assert_problem(post(client, dict(BASE, stars=[])), 422, "stars")
 
 
+def test_empty_target_list(client):
+    body = dict(BASE, stars=[STAR], target_epochs=[])
+    answer = assert_problem(post(client, body), 422, "target_epochs")
+    expected = {"field": "target_epochs", "message": "must have at least one entry"}
+    assert answer["errors"] == [expected]
+
+
 def test_unknown_field_is_named(client):
     star = dict(STAR, parralax_mas=3.0)
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
