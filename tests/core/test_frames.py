@@ -393,3 +393,5 @@ def test_make_frame_validation():
     for bad in [("hcrs", None), ("icrs", 2000.0), ("fk5", "soon"), ("fk4", 5000.0)]:
         with pytest.raises(ValueError):
             F.make_frame(*bad)
+    with pytest.raises(ValueError, match="'of_date' is for the ecliptic frame only, not fk5"):
+        F.make_frame("fk5", "of_date")
