@@ -104,6 +104,20 @@ def parse_csv_body(data: bytes) -> CsvTable:
             if header is None:
                 header = [h.strip() for h in row]
                 header_line = start
+                for sep, name in ((";", "semicolons"), ("\t", "tabs")):
+                    if len(header) == 1 and sep in header[0]:
+                        # A spreadsheet export with another separator: say so, rather than
+                        # calling the whole line one unknown column.
+                        _problem(
+                            422,
+                            errors=[
+                                {
+                                    "field": f"line {start}",
+                                    "message": f"the header is separated by {name}; "
+                                    "separate the columns with commas",
+                                }
+                            ],
+                        )
                 continue
             if len(row) != len(header):
                 if len(errors) < 50:

@@ -170,6 +170,15 @@ def test_structural_problems_name_the_line(client, body, expected):
     assert expected in fields
 
 
+@pytest.mark.parametrize(("sep", "name"), [(";", "semicolons"), ("\t", "tabs")])
+def test_other_separator_is_named(client, sep, name):
+    """A spreadsheet export with semicolons or tabs: the answer says what to change."""
+    body = HEADER.replace(",", sep) + "\n" + sep.join(["A", "10", "5", "", "1", "1", ""]) + "\n"
+    assert problem_fields(post_csv(client, body)) == [
+        ("line 1", f"the header is separated by {name}; separate the columns with commas")
+    ]
+
+
 def test_not_utf8_is_400(client):
     r = post_csv(client, (HEADER + "\nA\xe9,10,5,,1,1,\n").encode("latin-1"))
     assert r.status_code == 400
