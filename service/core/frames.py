@@ -147,10 +147,10 @@ def make_frame(name: str, equinox: float | str | None = None) -> Frame:
         if equinox is not None:
             raise ValueError(f"frame {key} takes no equinox")
         return Frame(key, None)
-    if key == "ecliptic" and isinstance(equinox, str) and equinox.lower() == "of_date":
-        return Frame(key, None)
     if isinstance(equinox, str) and equinox.strip().lower() == "of_date":
-        raise ValueError(f"equinox 'of_date' is for the ecliptic frame only, not {key}")
+        if key != "ecliptic":
+            raise ValueError(f"equinox 'of_date' is for the ecliptic frame only, not {key}")
+        return Frame(key, None)
     if equinox is None:
         equinox = 1950.0 if key == "fk4" else 2000.0
     try:

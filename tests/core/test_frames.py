@@ -390,6 +390,7 @@ def test_make_frame_validation():
     assert F.make_frame("FK4").equinox == 1950.0
     assert F.make_frame("fk5").equinox == 2000.0
     assert F.make_frame("ecliptic", "of_date").of_date
+    assert F.make_frame("ecliptic", " Of_Date ").of_date  # as the other equinox strings
     for bad in [("hcrs", None), ("icrs", 2000.0), ("fk5", "soon"), ("fk4", 5000.0)]:
         with pytest.raises(ValueError):
             F.make_frame(*bad)
