@@ -105,6 +105,10 @@ def _num(description, *, lo=None, hi=None, **kw):
     )
 
 
+#: Type check of a site coordinate (missing or null: core.resolve_site says "is required").
+_SITE_COORDINATE = StrictFloat(allow_none=True)
+
+
 class SiteField(ma.fields.Field):
     """A site: a configured name, or an object with latitude, longitude and height."""
 
@@ -128,12 +132,13 @@ class SiteField(ma.fields.Field):
                 k: ["unknown field; accepted: " + ", ".join(sorted(allowed))]
                 for k in set(value) - allowed
             }
-            # JSON numbers only, as every number of a request (StrictFloat): the core would
-            # read true as 1 and "38.4" as 38.4. Ranges: core.make_site, in the view.
+            # JSON numbers only, as every number of a request: the core would read true as 1
+            # and "38.4" as 38.4. Ranges: core.make_site, in the view.
             for key in ("latitude_deg", "longitude_deg", "height_m"):
-                v = value.get(key)
-                if v is not None and (not isinstance(v, int | float) or isinstance(v, bool)):
-                    errors[key] = [StrictFloat.default_error_messages["invalid"]]
+                try:
+                    _SITE_COORDINATE.deserialize(value.get(key), key, value)
+                except ma.ValidationError as exc:
+                    errors[key] = exc.messages
             name = value.get("name")
             if name is not None and not isinstance(name, str):
                 errors["name"] = ["must be a string (a label for the site)"]
