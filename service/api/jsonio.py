@@ -121,13 +121,9 @@ def refuse_repeated_options(schema, args) -> None:
     are left alone; ``a.b`` names the member ``b`` of the nested field ``a``."""
     errors = []
     for key in args:
-        if len(args.getlist(key)) < 2:
-            continue
+        times = len(args.getlist(key))
         fld = schema.fields.get(key.partition(".")[0])
-        if fld is None or isinstance(fld, ma.fields.List):
-            continue
-        errors.append(
-            {"field": key, "message": f"given {len(args.getlist(key))} times; give it once"}
-        )
+        if times > 1 and fld is not None and not isinstance(fld, ma.fields.List):
+            errors.append({"field": key, "message": f"given {times} times; give it once"})
     if errors:
         abort(422, errors=errors)

@@ -215,8 +215,9 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
     bad = [i for i, v in enumerate(values) if type(v) not in _NUMBER_TYPES and v is not None]
     if bad:
         # A number sent as a string ("19.6") is the common case: say what to change.
-        quoted = [i for i in bad if _finite_number_text(values[i])]
-        other = [i for i in bad if not _finite_number_text(values[i])]
+        quoted, other = [], []
+        for i in bad:
+            (quoted if _finite_number_text(values[i]) else other).append(i)
         if quoted:
             errors.add_indices(quoted, spec.name, QUOTED_NUMBER_MESSAGE)
         if other:
