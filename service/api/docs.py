@@ -22,6 +22,18 @@ def openapi_json():
     return Response(dumps(openapi_document()), mimetype="application/json")
 
 
+def _type_text(schema: dict) -> str:
+    """The type of a JSON schema as the page shows it: "string or number", a schema name."""
+    typ = schema.get("type", "")
+    if isinstance(typ, list):
+        typ = " or ".join(typ)
+    if "oneOf" in schema:
+        typ = " or ".join(p.get("title", p.get("type", "")) for p in schema["oneOf"])
+    if "$ref" in schema:
+        typ = schema["$ref"].rsplit("/", 1)[-1]
+    return str(typ)
+
+
 def _schema_rows(spec: dict, schema: dict, depth: int = 0) -> list[str]:
     if "$ref" in schema:
         name = schema["$ref"].rsplit("/", 1)[-1]
@@ -29,13 +41,7 @@ def _schema_rows(spec: dict, schema: dict, depth: int = 0) -> list[str]:
     rows = []
     required = set(schema.get("required", []))
     for name, prop in schema.get("properties", {}).items():
-        typ = prop.get("type", "")
-        if isinstance(typ, list):
-            typ = " or ".join(typ)
-        if "oneOf" in prop:
-            typ = " or ".join(p.get("title", p.get("type", "")) for p in prop["oneOf"])
-        if "$ref" in prop:
-            typ = prop["$ref"].rsplit("/", 1)[-1]
+        typ = _type_text(prop)
         desc = prop.get("description", "")
         rows.append(
             f"<tr><td style='padding-left:{depth * 1.5 + 0.3}em'><code>{html.escape(name)}"
@@ -50,9 +56,7 @@ def _parameter_rows(params: list[dict]) -> list[str]:
     rows = []
     for prm in params:
         schema = prm.get("schema", {})
-        typ = schema.get("type", "")
-        if isinstance(typ, list):
-            typ = " or ".join(typ)
+        typ = _type_text(schema)
         extra = []
         if "enum" in schema:
             extra.append("one of " + ", ".join(str(v) for v in schema["enum"]))
