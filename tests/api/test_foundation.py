@@ -180,7 +180,27 @@ def _lenient_fields(schema, path="", seen=None):
             out.append(where)
         elif isinstance(inner, ma.fields.Integer) and not inner.strict:
             out.append(where)
+        elif type(inner).__module__.startswith("service.") and type(inner) not in _CHECKED:
+            # A field of the project's own: its JSON types are its own business (SiteField
+            # once read true as latitude 1); add it to _CHECKED with a test that shows it.
+            out.append(f"{where} ({type(inner).__name__}: types not checked by a test)")
     return out
+
+
+def _checked_own_fields():
+    from service.api import common, frames, observed, tables
+
+    return {
+        common.StrictFloat,  # tested here: a plain Float is refused
+        common.StrictBoolean,
+        common.EpochField,  # test_propagation_api: an epoch of another JSON type
+        frames.EquinoxField,  # test_observed_api: an equinox of another JSON type
+        observed.SiteField,  # test_observed_api: site coordinates of another JSON type
+        tables.StarTableField,  # test_propagation_api: strings and booleans as numbers
+    }
+
+
+_CHECKED = _checked_own_fields()
 
 
 def test_request_options_take_json_numbers_and_booleans_only():

@@ -241,6 +241,13 @@ def test_unknown_frame_names_the_field(client, frames_example):
     assert_problem(r, 422, "to_frame.name")
 
 
+@pytest.mark.parametrize("equinox", [True, ["B1950.0"]])
+def test_equinox_of_another_json_type_names_the_field(client, frames_example, equinox):
+    frame = {"name": "fk4", "equinox": equinox}  # true is not the year 1
+    r = client.post(FRAMES, json=dict(frames_example, from_frame=frame))
+    assert_problem(r, 422, "from_frame.equinox")
+
+
 def test_equinox_for_galactic_names_the_field(client, frames_example):
     r = client.post(FRAMES, json=dict(frames_example, to_frame={"name": "galactic",
                                                                 "equinox": 2000.0}))  # fmt: skip

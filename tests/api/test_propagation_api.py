@@ -187,6 +187,12 @@ def test_string_where_number_belongs(client, text, hint):
     assert body["errors"][0]["message"].endswith("written without quotes") is hint
 
 
+@pytest.mark.parametrize("epoch", [True, [2016.0], {"year": 2016}])
+def test_epoch_of_another_json_type_names_the_field(client, epoch):
+    body = dict(BASE, stars=[STAR], catalogue_epoch=epoch)  # true is not the year 1
+    assert_problem(post(client, body), 422, "catalogue_epoch")
+
+
 def test_boolean_is_not_a_number(client):
     star = dict(STAR, parallax_mas=True)
     body = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parallax_mas")
