@@ -191,8 +191,8 @@ def _checked_own_fields():
     from service.api import common, frames, observed, tables
 
     return {
-        common.StrictFloat,  # tested here: a plain Float is refused
-        common.StrictBoolean,
+        common.StrictFloat,  # test_observed_api, test_charts_api: numbers in quotes
+        common.StrictBoolean,  # test_charts_api: 0 and "yes" as booleans
         common.EpochField,  # test_propagation_api: an epoch of another JSON type
         frames.EquinoxField,  # test_observed_api: an equinox of another JSON type
         observed.SiteField,  # test_observed_api: site coordinates of another JSON type
