@@ -117,8 +117,9 @@ def create_app(config: dict | None = None) -> Flask:
 
     @app.after_request
     def _finish(resp):
+        # The security headers are added by access.register.
         resp.headers["X-Request-ID"] = g.get("request_id", "")
-        return resp  # the security headers: access.register
+        return resp
 
     # Metrics, access control and limits (service/api/observability.py, access.py).
     from . import access, observability
