@@ -258,6 +258,26 @@ def _parse_epoch_text(text: str) -> float:
     return core_epochs.parse_epoch_with_notes(text)[0]
 
 
+class InstantField(EpochField):
+    """An instant of observation in any epoch form; deserialises to a
+    :class:`core.epochs.Instant`, which keeps the UTC date in full (a float Julian epoch
+    would round it by up to 3.6 microseconds, 0.05 mas of Earth rotation)."""
+
+    def _deserialize(self, value, attr, data, **kwargs) -> core_epochs.Instant:
+        try:
+            if type(value) is str and value.strip().lower() != "now":
+                return _parse_instant_text(value)
+            return core_epochs.parse_instant(value)
+        except core_epochs.EpochError as exc:
+            raise ma.ValidationError(str(exc)) from None
+
+
+@functools.lru_cache(maxsize=4096)
+def _parse_instant_text(text: str) -> core_epochs.Instant:
+    """:class:`core.epochs.Instant` of an epoch string other than "now" (cached)."""
+    return core_epochs.parse_instant(text)
+
+
 def epoch_field_to_openapi(self, field, **kwargs) -> dict:
     """apispec attribute function: an epoch is a string or a number."""
     if isinstance(field, EpochField):
@@ -298,8 +318,26 @@ def _epochs_out_cached(values: tuple) -> list[dict]:
     return _epochs_out(values)
 
 
-def _epochs_out(values) -> list[dict]:
-    labels = core_epochs.label_epochs(np.asarray(values, dtype=float))
+def instants_out(instants) -> list[dict]:
+    """:class:`core.epochs.Instant` list -> EpochOut dicts, the ISO UTC from the UTC dates."""
+    key = tuple((t.julian_epoch_tdb, t.utc_jd1, t.utc_jd2) for t in instants)
+    if len(key) <= 8:
+        return [dict(d, notes=list(d["notes"])) for d in _instants_out_cached(key)]
+    return _instants_out(key)
+
+
+@functools.lru_cache(maxsize=4096)
+def _instants_out_cached(key: tuple) -> list[dict]:
+    return _instants_out(key)
+
+
+def _instants_out(key) -> list[dict]:
+    jyear, u1, u2 = np.asarray(key, dtype=float).reshape(-1, 3).T
+    return _epochs_out(jyear, (u1, u2))
+
+
+def _epochs_out(values, utc_jd=None) -> list[dict]:
+    labels = core_epochs.label_epochs(np.asarray(values, dtype=float), utc_jd)
     notes = flag_names(labels.notes, core_epochs.TimeNote)
     return [
         {

@@ -21,7 +21,15 @@ from ..core import frames as core_frames
 from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, StrictFloat, epochs_out
+from .common import (
+    Blueprint,
+    EpochField,
+    EpochOutSchema,
+    InstantField,
+    StrictFloat,
+    epochs_out,
+    instants_out,
+)
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
 from .tables import StarTableField
@@ -200,13 +208,16 @@ class ObservedRequestSchema(ma.Schema):
         metadata={"description": "Frame of the given astrometry (default ICRS)."},
     )
     instants = ma.fields.List(
-        EpochField(),
+        InstantField(),
         required=True,
         validate=ma.validate.Length(min=1),
         metadata={
             "description": "Instants of observation (ISO 8601 UTC such as "
-            "'2026-12-02T22:30:00Z', or any epoch form). Many stars at one instant, one star "
-            "at many instants (a track), or every star at every instant."
+            "'2026-12-02T22:30:00.250Z', or any epoch form). Many stars at one instant, one "
+            "star at many instants (a track), or every star at every instant. A UTC instant "
+            "is used as written, to the microsecond and below (the Earth turns 15 arcsec a "
+            "second); a Julian epoch given as a number resolves 7 microseconds near the "
+            "present."
         },
     )
     site = SiteField(required=True)
@@ -281,7 +292,8 @@ def observed(args):
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     table = args["stars"]
     n = table.size
-    instants = np.asarray(args["instants"], dtype=float)
+    given = args["instants"]
+    instants = np.array([t.julian_epoch_tdb for t in given])  # for the space motion
     m = instants.size
     if m > settings.max_epochs or n * m > settings.max_results:
         abort(
@@ -359,7 +371,9 @@ def observed(args):
         star_args = [getattr(moved, f) for f in _AST]
         epoch_arg = instants[None, :]
     # Missing motions stay missing for the flags (the propagation reports them as NaN too).
-    utc1, utc2 = core.utc_from_julian_epoch_tdb(instants)
+    # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
+    utc1 = np.array([t.utc_jd1 for t in given])
+    utc2 = np.array([t.utc_jd2 for t in given])
     eop = _earth_orientation()
     try:
         res = core.observed_places(
@@ -398,7 +412,7 @@ def observed(args):
     sun_alt = np.broadcast_to(np.asarray(res.sun_altitude_deg), (n, m) if m > 1 else (n,))
     sun_az = np.broadcast_to(np.asarray(res.sun_azimuth_deg), (n, m) if m > 1 else (n,))
     inst_out = []
-    labels = epochs_out(instants)
+    labels = instants_out(given)
     for k in range(m):
 
         def pick(a, k=k):

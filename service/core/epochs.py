@@ -27,6 +27,7 @@ dtdb (Explanatory Supplement to the Astronomical Almanac, 3rd ed., 2013, ch. 3).
 from __future__ import annotations
 
 import datetime as _dt
+import decimal
 import enum
 import re
 from dataclasses import dataclass
@@ -197,21 +198,52 @@ def tdb_jd_to_utc_jd(jd1, jd2):
     a1, a2, _ = erfa_ufunc.tttai(t1, t2)  # always status 0
     # The ufunc form returns the status per element instead of one warning for all.
     u1, u2, status = erfa_ufunc.taiutc(a1, a2)
-    # Beyond the expiry of the packaged leap-second table a leap second may have been
-    # added that the table does not know: the UTC rendering is then approximate too.
+    return u1, u2, _utc_approximate(u1, u2, status)
+
+
+def _utc_approximate(u1, u2, status):
+    """Where a UTC date is approximate: ERFA's dubious-year status (1), or a date beyond the
+    expiry of the packaged leap-second table, which may miss a leap second added since."""
     beyond = (u1 - MJD_ZERO_JD) + u2 > leap_second_expiry_mjd()
-    return u1, u2, (np.asarray(status) == 1) | beyond
+    return (np.asarray(status) == 1) | beyond
+
+
+@dataclass(frozen=True)
+class _Reading:
+    """One epoch as read: its Julian epoch (TDB), notes, and, where the text gives a date on
+    a time scale, that date as a two-part JD in full (a float Julian epoch near the present
+    resolves only 2**-42 years, 7.2 microseconds)."""
+
+    jyear: float
+    notes: int
+    scale: str | None = None
+    jd1: float = 0.0
+    jd2: float = 0.0
+
+
+def _split_decimal(text: str) -> tuple[float, float]:
+    """A decimal number as (whole part, fraction), each a float, without losing the digits
+    a single float of the sum would drop (a JD near 2.46e6 resolves only 40 us)."""
+    d = decimal.Decimal(text)
+    whole = d.to_integral_value(rounding=decimal.ROUND_FLOOR)
+    return float(whole), float(d - whole)
 
 
 def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
     """Parse one epoch; return (Julian epoch TDB, TimeNote bits)."""
+    r = _read(value, now)
+    return r.jyear, r.notes
+
+
+def _read(value, now: _dt.datetime | None) -> _Reading:
+    """Parse one epoch (see :func:`parse_epoch`) into a :class:`_Reading`."""
     if isinstance(value, bool):
         raise EpochError("an epoch must be a number or a string, not a boolean")
     if isinstance(value, int | float | np.floating | np.integer):
         jyear = float(value)
         if not np.isfinite(jyear):
             raise EpochError("an epoch must be finite")
-        return jyear, 0
+        return _Reading(jyear, 0)
     if not isinstance(value, str):
         raise EpochError("an epoch must be a number (Julian epoch) or a string")
     text = value.strip()
@@ -223,7 +255,7 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
         raise EpochError("an epoch is written in ASCII characters only")
     if text.lower() == "now":
         moment = now or _dt.datetime.now(_dt.UTC)
-        return _calendar_utc_to_jyear(
+        return _read_calendar_utc(
             moment.year,
             moment.month,
             moment.day,
@@ -232,7 +264,7 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
             moment.second + moment.microsecond * 1e-6,
         )
     if _PLAIN_NUMBER.match(text):
-        return float(text), 0
+        return _Reading(float(text), 0)
     m = _PREFIXED.match(text)
     if m:
         kind = m.group("kind").upper()
@@ -245,9 +277,9 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
         if kind in ("J", "B") and m.group("scale"):
             raise EpochError("Julian and Besselian epochs take no time scale (they are TDB)")
         if kind == "J":
-            return num, 0
+            return _Reading(num, 0)
         if kind == "B":
-            return float(besselian_epoch_to_julian_epoch(num)), 0
+            return _Reading(float(besselian_epoch_to_julian_epoch(num)), 0)
         jd1, jd2 = (MJD_ZERO_JD, num) if kind == "MJD" else (num, 0.0)
         rough = 2000.0 + ((jd1 - JD_J2000) + jd2) / JULIAN_YEAR_DAYS
         if not (EPOCH_MIN_JYEAR - 1.0 <= rough <= EPOCH_MAX_JYEAR + 1.0):
@@ -255,10 +287,12 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
                 f"epoch {rough:g} is outside the supported range {EPOCH_MIN_JYEAR:g} to "
                 f"{EPOCH_MAX_JYEAR:g} (Julian years)"
             )
+        whole, part = _split_decimal(m.group("num"))
+        jd1, jd2 = (MJD_ZERO_JD + whole, part) if kind == "MJD" else (whole, part)
         if scale == "TDB":
-            return float(jd_to_julian_epoch(jd1, jd2)), 0
+            return _Reading(float(jd_to_julian_epoch(jd1, jd2)), 0, scale, jd1, jd2)
         t1, t2, notes = _to_tdb_jd(np.float64(jd1), np.float64(jd2), scale)
-        return float(jd_to_julian_epoch(t1, t2)), int(notes)
+        return _Reading(float(jd_to_julian_epoch(t1, t2)), int(notes), scale, jd1, jd2)
     m = _ISO.match(text)
     if m:
         y, mo, d = int(m.group("y")), int(m.group("mo")), int(m.group("d"))
@@ -279,7 +313,7 @@ def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
                 f"invalid time: second {s:g}; seconds run 0 to 59.999..., and 60 only in "
                 "23:59:60 UTC at the end of a day with a leap second"
             )
-        return _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min)
+        return _read_calendar_utc(y, mo, d, h, mi, s, offset_min)
     raise EpochError(
         f"cannot read epoch {value!r}: write a Julian epoch (2016.0 or 'J2016.0'), "
         "'B1950.0', 'JD2451545.0', 'MJD51544.5', an ISO 8601 UTC time "
@@ -298,7 +332,7 @@ _DTF2D_ERRORS = {
 }
 
 
-def _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min: int = 0) -> tuple[float, int]:
+def _read_calendar_utc(y, mo, d, h, mi, s, offset_min: int = 0) -> _Reading:
     leap_second_table()
     notes = 0
     u1, u2, status = erfa_ufunc.dtf2d("UTC", y, mo, d, h, mi, s)
@@ -314,7 +348,9 @@ def _calendar_utc_to_jyear(y, mo, d, h, mi, s, offset_min: int = 0) -> tuple[flo
         notes |= TimeNote.UTC_APPROXIMATE
     u2 = u2 - offset_min / 1440.0
     t1, t2, more = _to_tdb_jd(u1, u2, "UTC")
-    return float(jd_to_julian_epoch(t1, t2)), int(notes | more)
+    return _Reading(
+        float(jd_to_julian_epoch(t1, t2)), int(notes | more), "UTC", float(u1), float(u2)
+    )
 
 
 def parse_epoch(value, *, now: _dt.datetime | None = None) -> float:
@@ -345,12 +381,64 @@ def parse_epoch(value, *, now: _dt.datetime | None = None) -> float:
 def parse_epoch_with_notes(value, *, now: _dt.datetime | None = None) -> tuple[float, int]:
     """As :func:`parse_epoch`, also returning :class:`TimeNote` bits about the input."""
     jyear, notes = _parse_one(value, now)
+    _check_range(jyear)
+    return jyear, notes
+
+
+def _check_range(jyear: float) -> None:
     if not (EPOCH_MIN_JYEAR <= jyear <= EPOCH_MAX_JYEAR):
         raise EpochError(
             f"epoch {jyear:g} is outside the supported range "
             f"{EPOCH_MIN_JYEAR:g} to {EPOCH_MAX_JYEAR:g} (Julian years)"
         )
-    return jyear, notes
+
+
+@dataclass(frozen=True)
+class Instant:
+    """An epoch read as an instant of observation, with its UTC date in full.
+
+    Attributes
+    ----------
+    julian_epoch_tdb : float
+        Julian epoch, TDB, years (as :func:`parse_epoch` gives it).
+    utc_jd1, utc_jd2 : float
+        The same instant as a two-part UTC quasi Julian date (SOFA convention), days: as
+        written where the epoch is on the UTC scale (ISO 8601, "now", a JD or MJD followed
+        by UTC); converted from the two-part date where a JD or MJD is on another scale;
+        from the Julian epoch where only that was given.
+    notes : int
+        :class:`TimeNote` bits about the input.
+
+    Notes
+    -----
+    1. The Earth turns 15 arcseconds a second, so an instant must keep its digits: a float
+       Julian epoch near the present resolves 2**-42 years (7.2 microseconds), which is up to
+       0.05 mas of Earth rotation once rounded; the two-part UTC date keeps nanoseconds.
+    """
+
+    julian_epoch_tdb: float
+    utc_jd1: float
+    utc_jd2: float
+    notes: int
+
+
+def parse_instant(value, *, now: _dt.datetime | None = None) -> Instant:
+    """Parse one epoch as an instant of observation (:class:`Instant`).
+
+    Accepts every form of :func:`parse_epoch` and raises :class:`EpochError` as it does.
+    """
+    r = _read(value, now)
+    _check_range(r.jyear)
+    if r.scale == "UTC":
+        return Instant(r.jyear, r.jd1, r.jd2, r.notes)
+    if r.scale is None:
+        t1, t2 = erfa_ufunc.epj2jd(r.jyear)
+    elif r.scale == "TDB":
+        t1, t2 = r.jd1, r.jd2
+    else:
+        t1, t2, _ = _to_tdb_jd(np.float64(r.jd1), np.float64(r.jd2), r.scale)
+    u1, u2, _ = tdb_jd_to_utc_jd(t1, t2)
+    return Instant(r.jyear, float(u1), float(u2), r.notes)
 
 
 def epoch_range(start: float, stop: float, count: int) -> np.ndarray:
@@ -382,13 +470,16 @@ class EpochLabels:
     notes: np.ndarray
 
 
-def label_epochs(jyear) -> EpochLabels:
+def label_epochs(jyear, utc_jd=None) -> EpochLabels:
     """Render Julian epochs (TDB) as Julian dates and ISO 8601 UTC strings.
 
     Parameters
     ----------
     jyear : array_like, shape (M,)
         Julian epochs, TDB, years.
+    utc_jd : (array_like, array_like), optional
+        The same epochs as two-part UTC dates (:class:`Instant`); the ISO rendering is then
+        made from them rather than from the Julian epochs.
 
     Returns
     -------
@@ -412,9 +503,13 @@ def label_epochs(jyear) -> EpochLabels:
     notes[~inside] |= int(TimeNote.NO_CALENDAR_DATE)
     idx = np.flatnonzero(inside)
     if idx.size:
-        u1, u2, dubious = tdb_jd_to_utc_jd(d1[idx], d2[idx])
-        # Status per element ignored: the dubious years are flagged above.
-        iy, im, iday, ihmsf, _ = erfa_ufunc.d2dtf("UTC", 3, u1, u2)
+        if utc_jd is None:
+            u1, u2, dubious = tdb_jd_to_utc_jd(d1[idx], d2[idx])
+        else:
+            u1, u2 = (np.atleast_1d(np.asarray(p, dtype=float))[idx] for p in utc_jd)
+        iy, im, iday, ihmsf, status = erfa_ufunc.d2dtf("UTC", 3, u1, u2)
+        if utc_jd is not None:
+            dubious = _utc_approximate(u1, u2, status)
         hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
         for k, i in enumerate(idx):
             h, mi, s, ms = (int(x) for x in hmsf[k])

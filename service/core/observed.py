@@ -1677,8 +1677,10 @@ def utc_from_julian_epoch_tdb(jyear):
     Notes
     -----
     1. TDB -> TT with the Fairhead & Bretagnon series of SOFA ``dtdb`` at the geocentre
-       (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch resolves about
-       15 microseconds, i.e. 0.2 mas of Earth rotation.
+       (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch near the
+       present resolves 2**-42 years (7.2 microseconds; rounding up to 3.6 us, 0.05 mas of
+       Earth rotation): where the instant was written on the UTC scale, pass that date in
+       full instead (:func:`service.core.epochs.parse_instant`).
     """
     jyear = np.asarray(jyear, dtype=float)
     if jyear.size == 1:  # one instant: cached (an exact function of the epoch)

@@ -194,6 +194,7 @@ def _checked_own_fields():
         common.StrictFloat,  # test_observed_api, test_charts_api: numbers in quotes
         common.StrictBoolean,  # test_charts_api: 0 and "yes" as booleans
         common.EpochField,  # test_propagation_api: an epoch of another JSON type
+        common.InstantField,  # test_observed_api: an instant of another JSON type
         frames.EquinoxField,  # test_observed_api: an equinox of another JSON type
         observed.SiteField,  # test_observed_api: site coordinates of another JSON type
         tables.StarTableField,  # test_propagation_api: strings and booleans as numbers

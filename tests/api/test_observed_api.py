@@ -3,6 +3,7 @@
 import json
 import pathlib
 
+import erfa
 import numpy as np
 import pytest
 
@@ -65,7 +66,11 @@ def test_demo_example_matches_core(client, observed_example):
         2016.0,
         epoch,
     ).astrometry
-    u1, u2 = core.utc_from_julian_epoch_tdb(epoch)
+    # The instant as written, "2026-12-02T22:30:00Z", as a two-part UTC date (ERFA dtf2d):
+    # the Earth's rotation needs it in full, not rounded through a float Julian epoch.
+    assert observed_example["instants"] == ["2026-12-02T22:30:00Z"]
+    u1, u2 = erfa.dtf2d("UTC", 2026, 12, 2, 22, 30, 0.0)
+    assert inst["utc_jd"] == [u1, u2]
     site = core.make_site(38.4127, -7.6543, 1460.0)
     atm = core.make_atmosphere(None, 6.0, 0.55, 0.55)
     ref = core.observed_places(
@@ -85,6 +90,70 @@ def test_demo_example_matches_core(client, observed_example):
     got_alt = [s["at_instants"][0]["altitude_deg"] for s in body["stars"]]
     np.testing.assert_allclose(got_alt, ref.altitude_deg, rtol=0, atol=1e-12)
     assert all(a > 15.0 for a in got_alt)  # the example's stars are up
+
+
+#: Agreement with ERFA atco13 for the instant as written, radians: 1 microarcsecond.
+ATCO13_TOL_RAD = 1e-6 / 206264.80624709636
+
+
+@pytest.mark.parametrize(
+    "text, ymdhms",
+    [
+        ("2026-06-11T17:17:57.898065Z", (2026, 6, 11, 17, 17, 57.898065)),
+        ("2026-10-23T11:09:03.763075Z", (2026, 10, 23, 11, 9, 3.763075)),
+        ("2026-12-02T22:30:00Z", (2026, 12, 2, 22, 30, 0.0)),
+    ],
+)
+def test_instant_as_written_turns_the_earth_as_erfa_atco13(client, observed_example, text, ymdhms):
+    """The Earth turns 15 arcsec a second: a float Julian epoch (2**-42 yr, 7.2 us) rounded
+    these instants by up to 3.8 us, 57 uas of hour angle; the answer now keeps the UTC date."""
+    ra, dec = 123.456789, 21.0987654  # no motion, no parallax: only the instant matters
+    star = {"ra_deg": ra, "dec_deg": dec, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+    body = dict(
+        observed_example,
+        stars=[dict(star, radial_velocity_km_s=0.0)],
+        instants=[text],
+        site={"latitude_deg": 38.4127, "longitude_deg": -7.6543, "height_m": 1460.0},
+        atmosphere={"pressure_hpa": 0.0},
+    )
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    inst = r.json["instants"][0]
+    at = r.json["stars"][0]["at_instants"][0]
+    u1, u2 = erfa.dtf2d("UTC", *ymdhms)  # ERFA dtf2d, run here
+    assert inst["utc_jd"] == [u1, u2]
+    eo = inst["earth_orientation"]
+    arcsec = np.pi / 648000.0
+    # ERFA atco13 (run here) with the answer's own UT1-UTC and pole, refraction off.
+    aob, zob, hob, dob, rob, _ = erfa.atco13(
+        np.radians(ra), np.radians(dec), 0.0, 0.0, 0.0, 0.0, u1, u2, eo["ut1_utc_s"],
+        np.radians(-7.6543), np.radians(38.4127), 1460.0,
+        eo["pm_x_arcsec"] * arcsec, eo["pm_y_arcsec"] * arcsec, 0.0, 0.0, 0.0, 0.55,
+    )  # fmt: skip
+
+    def wrapped(a, b):
+        return abs((a - b + np.pi) % (2.0 * np.pi) - np.pi)
+
+    assert wrapped(np.radians(at["hour_angle_deg"]), hob) < ATCO13_TOL_RAD
+    assert wrapped(np.radians(at["azimuth_deg"]), aob) < ATCO13_TOL_RAD
+    assert abs(np.radians(90.0 - at["altitude_deg"]) - zob) < ATCO13_TOL_RAD
+    # The label is the UTC date as written, rendered by ERFA d2dtf to the millisecond.
+    y, mo, d, (h, mi, sec, ms) = erfa.d2dtf("UTC", 3, u1, u2)
+    assert (
+        inst["epoch"]["iso_utc"] == f"{y:04d}-{mo:02d}-{d:02d}T{h:02d}:{mi:02d}:{sec:02d}.{ms:03d}Z"
+    )
+
+
+def test_instant_of_a_utc_julian_date_keeps_its_digits(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, instants=["JD2461377.437499988 UTC"]))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["instants"][0]["utc_jd"] == [2461377.0, 0.437499988]
+
+
+@pytest.mark.parametrize("instant", [True, [2026.9], {"utc": "2026-12-02T22:30:00Z"}])
+def test_instant_of_another_json_type_names_the_field(client, observed_example, instant):
+    r = client.post(OBS, json=dict(observed_example, instants=["2026-12-02T22:30:00Z", instant]))
+    assert_problem(r, 422, "instants[1]")
 
 
 def test_track_of_one_star_over_many_instants(client, observed_example):

@@ -11,6 +11,7 @@ Sources:
 from __future__ import annotations
 
 import datetime as dt
+import warnings
 
 import erfa
 import numpy as np
@@ -25,6 +26,7 @@ from service.core.epochs import (
     EPOCH_MIN_JYEAR,
     EpochError,
     EpochLabels,
+    Instant,
     TimeNote,
     besselian_epoch_to_julian_epoch,
     epoch_range,
@@ -34,6 +36,7 @@ from service.core.epochs import (
     label_epochs,
     parse_epoch,
     parse_epoch_with_notes,
+    parse_instant,
 )
 
 iers.conf.auto_download = False  # offline: packaged tables only
@@ -360,3 +363,69 @@ def test_parse_flags_approximate_utc_before_1960():
     assert notes & TimeNote.UTC_APPROXIMATE
     _, notes = parse_epoch_with_notes("2020-01-01T00:00:00Z")
     assert notes == 0
+
+
+# --- instants: the UTC date in full ------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    "text, ymdhms",
+    [
+        ("2026-06-11T17:17:57.898065Z", (2026, 6, 11, 17, 17, 57.898065)),
+        ("2026-12-02T22:30:00Z", (2026, 12, 2, 22, 30, 0.0)),
+        ("2016-12-31T23:59:60.5Z", (2016, 12, 31, 23, 59, 60.5)),  # in a leap second
+    ],
+)
+def test_instant_keeps_the_iso_utc_date_as_erfa_dtf2d_reads_it(text, ymdhms):
+    got = parse_instant(text)
+    assert isinstance(got, Instant)
+    # ERFA dtf2d, run here: the two-part UTC date of the calendar date and time, exactly.
+    assert (got.utc_jd1, got.utc_jd2) == tuple(erfa.dtf2d("UTC", *ymdhms))
+    assert got.julian_epoch_tdb == parse_epoch(text)
+    assert got.notes == 0
+
+
+def test_instant_keeps_the_digits_of_a_utc_julian_date():
+    # A single double near JD 2.46e6 resolves 4.7e-10 day (40 us): the parts are kept apart.
+    got = parse_instant("JD2461377.437499988 UTC")
+    assert (got.utc_jd1, got.utc_jd2) == (2461377.0, 0.437499988)
+    got = parse_instant("MJD61376.937499988 UTC")
+    assert (got.utc_jd1, got.utc_jd2) == (2400000.5 + 61376.0, 0.937499988)
+    got = parse_instant("jd 2461377.5e0 utc")
+    assert (got.utc_jd1, got.utc_jd2) == (2461377.0, 0.5)
+
+
+def test_instant_on_other_scales_matches_erfa_and_astropy():
+    # JD on TT: ERFA tttai then taiutc on the same parts (run here), to 1 ns.
+    want = erfa.taiutc(*erfa.tttai(2461377.0, 0.437499988))
+    got = parse_instant("JD2461377.437499988 TT")
+    assert abs((got.utc_jd1 - want[0]) + (got.utc_jd2 - want[1])) * 86400.0 < 1e-9
+    # A Julian epoch (TDB): astropy Time's TDB -> UTC (geocentric TDB - TT), to 1 ns.
+    t = Time(2026.9171, format="jyear", scale="tdb").utc
+    got = parse_instant(2026.9171)
+    assert abs((got.utc_jd1 - t.jd1) + (got.utc_jd2 - t.jd2)) * 86400.0 < 1e-9
+    assert got.julian_epoch_tdb == 2026.9171
+
+
+def test_instant_refuses_what_parse_epoch_refuses():
+    for bad in (True, "2026-02-30T00:00:00Z", "JD9e9 UTC", "soon"):
+        with pytest.raises(EpochError):
+            parse_instant(bad)
+
+
+def test_labels_from_utc_dates_render_them_as_erfa_d2dtf_does():
+    texts = ["2026-06-11T17:17:57.8985Z", "2026-12-02T22:30:00Z", "2045-01-01T00:00:00Z"]
+    got = [parse_instant(t) for t in texts]
+    labels = label_epochs(
+        [t.julian_epoch_tdb for t in got],
+        ([t.utc_jd1 for t in got], [t.utc_jd2 for t in got]),
+    )
+    for t, iso in zip(got, labels.iso_utc, strict=True):
+        # ERFA d2dtf with 3 decimals (run here) on the same UTC date.
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", erfa.ErfaWarning)  # 2045: "dubious year"
+            y, mo, d, (h, mi, sec, ms) = erfa.d2dtf("UTC", 3, t.utc_jd1, t.utc_jd2)
+        assert iso == f"{y:04d}-{mo:02d}-{d:02d}T{h:02d}:{mi:02d}:{sec:02d}.{ms:03d}Z"
+    # 2045 lies beyond the packaged leap-second table: approximate, as for Julian epochs.
+    assert list(labels.notes) == [0, 0, TimeNote.UTC_APPROXIMATE]
+    assert labels.notes[2] == label_epochs([got[2].julian_epoch_tdb]).notes[0]
