@@ -12,6 +12,7 @@ No stack trace ever reaches a client; unexpected failures are logged with the re
 from __future__ import annotations
 
 import logging
+import re
 
 from flask import Response, g
 from werkzeug.exceptions import HTTPException, InternalServerError
@@ -70,8 +71,42 @@ _STOCK_MESSAGES = {
 }
 
 
+#: marshmallow's Range and OneOf messages ("Must be greater than or equal to -100.0 and less
+#: than or equal to 60.0.", "Must be one of: a, b."), reworded as the star-table columns
+#: word their bounds (tables.ColumnSpec.range_text).
+_RANGE_MESSAGE = re.compile(
+    r"Must be (?:(?P<lo_op>greater than(?: or equal to)?) (?P<lo>\S+?))?"
+    r"(?: and )?(?:(?P<hi_op>less than(?: or equal to)?) (?P<hi>\S+?))?\.",
+)
+_ONE_OF_MESSAGE = re.compile(r"Must be one of: (?P<choices>.*)\.")
+_OPERATORS = {
+    "greater than or equal to": ">=",
+    "greater than": ">",
+    "less than or equal to": "<=",
+    "less than": "<",
+}
+
+
+def _bound(text: str) -> str:
+    """A bound as marshmallow prints it, without a float's ".0" (1000000.0 -> 1000000)."""
+    return text[:-2] if text.endswith(".0") and text[:-2].lstrip("-").isdigit() else text
+
+
 def _worded(message: str) -> str:
-    return _STOCK_MESSAGES.get(message, message)
+    stock = _STOCK_MESSAGES.get(message)
+    if stock is not None:
+        return stock
+    m = _RANGE_MESSAGE.fullmatch(message)
+    if m and (m["lo"] or m["hi"]):
+        lo_op, hi_op = _OPERATORS.get(m["lo_op"]), _OPERATORS.get(m["hi_op"])
+        if lo_op == ">=" and hi_op == "<=":
+            return f"must be between {_bound(m['lo'])} and {_bound(m['hi'])}"
+        parts = [f"{op} {_bound(v)}" for op, v in ((lo_op, m["lo"]), (hi_op, m["hi"])) if v]
+        return "must be " + " and ".join(parts)
+    m = _ONE_OF_MESSAGE.fullmatch(message)
+    if m:
+        return f"must be one of: {m['choices']}"
+    return message
 
 
 def flatten_messages(messages, prefix: str = "") -> list[dict]:

@@ -363,7 +363,7 @@ def test_options_from_the_query_string(client):
     assert problem_fields(post_arrow(client, body, "?target_epochs=J2020")) == [
         ("catalogue_epoch", "is required")
     ]
-    assert ("model", "Must be one of: standard, light_time.") in problem_fields(
+    assert ("model", "must be one of: standard, light_time") in problem_fields(
         post_arrow(client, body, QUERY + "&model=fast")
     )
 

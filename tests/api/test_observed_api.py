@@ -293,6 +293,15 @@ def test_humidity_out_of_range_names_the_field(client, observed_example):
     assert_problem(r, 422, "atmosphere.relative_humidity")
 
 
+def test_temperature_bounds_worded_plainly(client, observed_example):
+    r = client.post(OBS, json=dict(observed_example, atmosphere={"temperature_c": -300}))
+    assert_problem(r, 422, "atmosphere.temperature_c")
+    # Not marshmallow's "Must be greater than or equal to -100.0 and less than or equal to ...".
+    assert r.json["errors"] == [
+        {"field": "atmosphere.temperature_c", "message": "must be between -100 and 60"}
+    ]
+
+
 def test_wavelength_out_of_range_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, atmosphere={"wavelength_um": 12.0}))
     assert_problem(r, 422, "atmosphere.wavelength_um")

@@ -293,6 +293,22 @@ def test_empty_target_list(client):
     assert answer["errors"] == [expected]
 
 
+def test_bounds_and_choices_worded_as_the_star_columns_word_them(client):
+    # marshmallow's "Must be greater than or equal to 1." and "Must be one of: ...", in the
+    # wording of the star-table columns ("must be between 0 and 360").
+    body = dict(BASE, stars=[STAR], target_range={"start": 2000, "stop": 2100, "count": 0})
+    del body["target_epochs"]
+    answer = assert_problem(post(client, body), 422, "target_range.count")
+    assert answer["errors"] == [{"field": "target_range.count", "message": "must be >= 1"}]
+    answer = assert_problem(post(client, dict(BASE, stars=[STAR], model="fast")), 422, "model")
+    assert answer["errors"] == [
+        {"field": "model", "message": "must be one of: standard, light_time"}
+    ]
+    star = dict(STAR, ra_deg=-1.0)
+    answer = assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].ra_deg")
+    assert answer["errors"][0]["message"] == "must be between 0 and 360"
+
+
 def test_unknown_field_is_named(client):
     star = dict(STAR, parralax_mas=3.0)
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
