@@ -306,34 +306,31 @@ class EpochOutSchema(ma.Schema):
 
 
 def epochs_out(jyears) -> list[dict]:
-    """Julian epochs (TDB) -> list of EpochOut dicts (few epochs are served from a cache)."""
-    values = tuple(float(x) for x in np.atleast_1d(jyears))
-    if len(values) <= 8:
-        return [dict(d, notes=list(d["notes"])) for d in _epochs_out_cached(values)]
-    return _epochs_out(values)
-
-
-@functools.lru_cache(maxsize=4096)
-def _epochs_out_cached(values: tuple) -> list[dict]:
-    return _epochs_out(values)
+    """Julian epochs (TDB) -> list of EpochOut dicts."""
+    return _labels_out(tuple((float(x),) for x in np.atleast_1d(jyears)))
 
 
 def instants_out(instants) -> list[dict]:
     """:class:`core.epochs.Instant` list -> EpochOut dicts, the ISO UTC from the UTC dates."""
-    key = tuple((t.julian_epoch_tdb, t.utc_jd1, t.utc_jd2) for t in instants)
-    if len(key) <= 8:
-        return [dict(d, notes=list(d["notes"])) for d in _instants_out_cached(key)]
-    return _instants_out(key)
+    return _labels_out(tuple((t.julian_epoch_tdb, t.utc_jd1, t.utc_jd2) for t in instants))
+
+
+def _labels_out(rows: tuple) -> list[dict]:
+    """Rows of (Julian epoch,) or (Julian epoch, UTC jd1, UTC jd2) -> EpochOut dicts (a few
+    rows are served from a cache)."""
+    if len(rows) <= 8:
+        return [dict(d, notes=list(d["notes"])) for d in _labels_out_cached(rows)]
+    return _labels(rows)
 
 
 @functools.lru_cache(maxsize=4096)
-def _instants_out_cached(key: tuple) -> list[dict]:
-    return _instants_out(key)
+def _labels_out_cached(rows: tuple) -> list[dict]:
+    return _labels(rows)
 
 
-def _instants_out(key) -> list[dict]:
-    jyear, u1, u2 = np.asarray(key, dtype=float).reshape(-1, 3).T
-    return _epochs_out(jyear, (u1, u2))
+def _labels(rows: tuple) -> list[dict]:
+    a = np.asarray(rows, dtype=float).reshape(len(rows), -1) if rows else np.empty((0, 1))
+    return _epochs_out(a[:, 0], (a[:, 1], a[:, 2]) if a.shape[1] == 3 else None)
 
 
 def _epochs_out(values, utc_jd=None) -> list[dict]:
