@@ -135,6 +135,16 @@ class EpochRangeSchema(ma.Schema):
         metadata={"description": "Number of epochs, start and stop included."},
     )
 
+    @ma.validates_schema
+    def _start_and_stop_included(self, data, **kwargs):
+        # numpy's linspace would answer the start alone, dropping the stop without a word.
+        if data["count"] == 1 and data["start"] != data["stop"]:
+            raise ma.ValidationError(
+                "must be at least 2 to include both start and stop (count 1 only where start "
+                "equals stop)",
+                "count",
+            )
+
 
 class PropagationRequestSchema(ma.Schema):
     stars = StarTableField(

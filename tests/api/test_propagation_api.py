@@ -309,6 +309,17 @@ def test_bounds_and_choices_worded_as_the_star_columns_word_them(client):
     assert answer["errors"][0]["message"] == "must be between 0 and 360"
 
 
+def test_range_of_one_epoch_must_not_drop_its_stop(client):
+    body = dict(BASE, stars=[STAR], target_range={"start": 2100, "stop": 2000, "count": 1})
+    del body["target_epochs"]
+    answer = assert_problem(post(client, body), 422, "target_range.count")
+    assert "both start and stop" in answer["errors"][0]["message"]
+    body["target_range"] = {"start": "J2100", "stop": 2100.0, "count": 1}
+    r = post(client, body)
+    assert r.status_code == 200, r.get_json()
+    assert [e["julian_epoch_tdb"] for e in r.get_json()["epochs"]] == [2100.0]
+
+
 def test_unknown_field_is_named(client):
     star = dict(STAR, parralax_mas=3.0)
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
