@@ -168,13 +168,20 @@ class AtmosphereSchema(ma.Schema):
         "the US Standard Atmosphere 1976. 0 turns refraction off.",
         lo=core.PRESSURE_RANGE_HPA[0],
         hi=core.PRESSURE_RANGE_HPA[1],
+        error="must be between {min:g} and {max:g} hPa (not pascals: 101325 Pa is 1013.25 hPa)",
     )
     temperature_c = _num(
         "Air temperature, degrees Celsius. Null: standard atmosphere at the site height.",
         lo=core.TEMPERATURE_RANGE_C[0],
         hi=core.TEMPERATURE_RANGE_C[1],
+        error="must be between {min:g} and {max:g} degrees Celsius (not kelvin: 280 K is 6.85 C)",
     )
-    relative_humidity = _num("Relative humidity, 0 to 1. Null: 0.5.", lo=0.0, hi=1.0)
+    relative_humidity = _num(
+        "Relative humidity, 0 to 1. Null: 0.5.",
+        lo=0.0,
+        hi=1.0,
+        error="must be between 0 and 1, a fraction (not a percentage: 55 % is 0.55)",
+    )
     wavelength_um = _num(
         "Effective wavelength, micrometres: 0.3-2.0 (optical/infrared) or 100-1000000 "
         "(radio). Null: 0.55.",

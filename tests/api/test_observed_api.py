@@ -293,13 +293,26 @@ def test_humidity_out_of_range_names_the_field(client, observed_example):
     assert_problem(r, 422, "atmosphere.relative_humidity")
 
 
-def test_temperature_bounds_worded_plainly(client, observed_example):
+def test_temperature_bounds_say_the_unit(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, atmosphere={"temperature_c": -300}))
     assert_problem(r, 422, "atmosphere.temperature_c")
     # Not marshmallow's "Must be greater than or equal to -100.0 and less than or equal to ...".
-    assert r.json["errors"] == [
-        {"field": "atmosphere.temperature_c", "message": "must be between -100 and 60"}
-    ]
+    message = r.json["errors"][0]["message"]
+    assert message.startswith("must be between -100 and 60 degrees Celsius (not kelvin")
+
+
+@pytest.mark.parametrize(
+    "key, value, hint",
+    [
+        ("relative_humidity", 55.0, "not a percentage"),  # 55 % meant as 55
+        ("pressure_hpa", 101325.0, "not pascals"),  # sea-level pressure in Pa
+        ("temperature_c", 280.0, "not kelvin"),  # 7 C in kelvin
+    ],
+)
+def test_atmosphere_in_another_unit_gets_a_hint(client, observed_example, key, value, hint):
+    r = client.post(OBS, json=dict(observed_example, atmosphere={key: value}))
+    assert_problem(r, 422, f"atmosphere.{key}")
+    assert hint in r.json["errors"][0]["message"]
 
 
 def test_wavelength_out_of_range_names_the_field(client, observed_example):
