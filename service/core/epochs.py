@@ -229,12 +229,6 @@ def _split_decimal(text: str) -> tuple[float, float]:
     return float(whole), float(d - whole)
 
 
-def _parse_one(value, now: _dt.datetime | None) -> tuple[float, int]:
-    """Parse one epoch; return (Julian epoch TDB, TimeNote bits)."""
-    r = _read(value, now)
-    return r.jyear, r.notes
-
-
 def _read(value, now: _dt.datetime | None) -> _Reading:
     """Parse one epoch (see :func:`parse_epoch`) into a :class:`_Reading`."""
     if isinstance(value, bool):
@@ -380,9 +374,9 @@ def parse_epoch(value, *, now: _dt.datetime | None = None) -> float:
 
 def parse_epoch_with_notes(value, *, now: _dt.datetime | None = None) -> tuple[float, int]:
     """As :func:`parse_epoch`, also returning :class:`TimeNote` bits about the input."""
-    jyear, notes = _parse_one(value, now)
-    _check_range(jyear)
-    return jyear, notes
+    r = _read(value, now)
+    _check_range(r.jyear)
+    return r.jyear, r.notes
 
 
 def _check_range(jyear: float) -> None:

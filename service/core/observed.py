@@ -40,7 +40,6 @@ from service.core.constants import (
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
-from service.core.epochs import tdb_jd_to_utc_jd
 from service.core.floating import overflow_to_infinity
 
 # ---------------------------------------------------------------------------------------------
@@ -1659,47 +1658,6 @@ def _check_instants(utc_jd1, utc_jd2):
     if jd1.shape == jd2.shape:
         return jd1, jd2
     return np.broadcast_arrays(jd1, jd2)
-
-
-def utc_from_julian_epoch_tdb(jyear):
-    """UTC two-part quasi Julian date of Julian epochs on the TDB scale.
-
-    Parameters
-    ----------
-    jyear : array_like
-        Julian epochs (TDB), years.
-
-    Returns
-    -------
-    utc_jd1, utc_jd2 : ndarray
-        UTC (SOFA quasi-JD convention), days.
-
-    Notes
-    -----
-    1. TDB -> TT with the Fairhead & Bretagnon series of SOFA ``dtdb`` at the geocentre
-       (below 2 ms), then SOFA ``tttai`` and ``taiutc``. A float Julian epoch near the
-       present resolves 2**-42 years (7.2 microseconds; rounding up to 3.6 us, 0.05 mas of
-       Earth rotation): where the instant was written on the UTC scale, pass that date in
-       full instead (:func:`service.core.epochs.parse_instant`).
-    """
-    jyear = np.asarray(jyear, dtype=float)
-    if jyear.size == 1:  # one instant: cached (an exact function of the epoch)
-        u1, u2 = _utc_from_julian_epoch_tdb_cached(_float_key(jyear.reshape(-1)[0]))
-        return np.full(jyear.shape, u1), np.full(jyear.shape, u2)
-    return _utc_from_julian_epoch_tdb(jyear)
-
-
-@functools.lru_cache(maxsize=4096)
-def _utc_from_julian_epoch_tdb_cached(jyear_key: str) -> tuple[float, float]:
-    u1, u2 = _utc_from_julian_epoch_tdb(np.asarray(float.fromhex(jyear_key)))
-    return float(u1), float(u2)
-
-
-def _utc_from_julian_epoch_tdb(jyear):
-    # The "dubious year" status (beyond the leap-second table) is reported by the caller's
-    # flags (LEAP_SECONDS_EXTRAPOLATED).
-    u1, u2, _ = tdb_jd_to_utc_jd(*erfa_ufunc.epj2jd(jyear))
-    return u1, u2
 
 
 def _quiet_erfa(func, *args):
