@@ -507,3 +507,37 @@ def test_long_dictionary_ids_refused_before_decoding(client):
     ids = pa.DictionaryArray.from_arrays(pa.array([0, 0, 0], pa.int32()), pa.array(["x" * 65]))
     fields = problem_fields(post_arrow(client, stream_of(small_table(id=ids))))
     assert fields == [("stars.id", "at most 64 characters")]
+
+
+def test_answer_arrives_whole_in_pieces(client, monkeypatch):
+    """The answer is sent in pieces of arrowio.ANSWER_PIECE_BYTES (1 MiB; 4 kB here, so that
+    a test-sized answer spans many): they join into one stream that pyarrow reads, of the
+    length the Content-Length header says, with the values of the JSON answer."""
+    from service.api import arrowio
+
+    monkeypatch.setattr(arrowio, "ANSWER_PIECE_BYTES", 4096)
+    n = 1000
+    rng = np.random.default_rng(11)
+    cols = {
+        "ra_deg": rng.uniform(0.0, 360.0, n),
+        "dec_deg": rng.uniform(-89.0, 89.0, n),
+        "parallax_mas": rng.uniform(0.5, 50.0, n),
+        "pm_ra_cosdec_mas_yr": rng.normal(0.0, 30.0, n),
+        "pm_dec_mas_yr": rng.normal(0.0, 30.0, n),
+    }
+    r = post_arrow(client, stream_of(pa.table(cols)), accept=ARROW)
+    assert r.status_code == 200 and r.mimetype == ARROW
+    assert r.is_streamed  # pieces, not one bytes copy of the whole stream
+    pieces = list(r.response)
+    assert len(pieces) > 10 and all(0 < len(p) <= 4096 for p in pieces)
+    data = b"".join(pieces)
+    assert int(r.headers["Content-Length"]) == len(data)
+    table = read_stream(data)
+    assert table.num_rows == 2 * n  # two target epochs
+    js = client.post(
+        URL, json={"stars": {k: v.tolist() for k, v in cols.items()}, **DEMO_OPTIONS}
+    ).json
+    assert js["layout"] == "columns"
+    # JSON columns are (epoch, star); Arrow rows go star by star, each star's epochs in turn.
+    expected = np.asarray(js["columns"]["ra_deg"]).T.reshape(-1)
+    assert table.column("ra_deg").to_pylist() == expected.tolist()
