@@ -188,6 +188,13 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
     return doc
 
 
+#: The warning for a radial velocity above 5,000 km/s (the propagation and velocity answers).
+RADIAL_VELOCITY_WARNING = (
+    "radial velocity exceeds 5,000 km/s in size, more than any star's measured radial "
+    "velocity: check the unit (km/s, not m/s)"
+)
+
+
 class StrictFloat(ma.fields.Float):
     """A JSON number only: marshmallow's Float would also read the string "12.5"."""
 

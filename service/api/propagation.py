@@ -15,7 +15,14 @@ from flask_smorest import abort
 from ..core import propagation as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
+from .common import (
+    RADIAL_VELOCITY_WARNING,
+    Blueprint,
+    EpochField,
+    EpochOutSchema,
+    epochs_out,
+    number_field,
+)
 from .examples import load_example
 from .observability import count_stars
 from .tables import MAX_ABS_MAS, StarTableField
@@ -279,6 +286,8 @@ FLAG_MEANINGS = {
     "not_converged": "Light-time model: iteration did not converge.",
     "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
+    "radial_velocity_implausible": "Radial velocity above 5,000 km/s in size, more than any "
+    "star's measured radial velocity: probably m/s given as km/s.",
     "uncertainties_incomplete": "Some but not all five astrometric standard errors given: "
     "no uncertainties computed.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
@@ -505,6 +514,7 @@ _WARNING_TEXTS = {
     "velocity imply a space velocity above half the speed of light: check the parallax and "
     "its unit (mas)",
     core.PropagationFlag.NOT_CONVERGED: "light-time iteration did not converge",
+    core.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
 }
 _WARNING_BITS = int(functools.reduce(operator.or_, _WARNING_TEXTS))
 

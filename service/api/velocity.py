@@ -20,6 +20,7 @@ from ..core import kinematics as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import (
+    RADIAL_VELOCITY_WARNING,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -341,6 +342,8 @@ FLAG_MEANINGS = {
     "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
     "proper_motion_implausible": "Total proper motion above 10.4 arcsec/yr, more than any "
     "known star: probably a unit mistake.",
+    "radial_velocity_implausible": "Radial velocity above 5,000 km/s in size, more than any "
+    "star's measured radial velocity: probably m/s given as km/s.",
     "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",
@@ -464,16 +467,26 @@ def _records(names, arrays, table, flags, n):
     return out
 
 
+#: Per-star warnings: flag -> message.
+_WARNING_TEXTS = {
+    core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE: "total proper motion exceeds 10.4 "
+    "arcsec/yr, more than any known star: check the unit (mas/yr) and that the RA component "
+    "includes cos(dec)",
+    core.KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
+}
+
+
 def _warnings(mask, table):
     out = []
-    text = (
-        "total proper motion exceeds 10.4 arcsec/yr, more than any known star: check the "
-        "unit (mas/yr) and that the RA component includes cos(dec)"
-    )
-    for i in np.flatnonzero(mask & int(core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE))[:1000]:
-        out.append(
-            {"index": int(i), "id": None if table.ids is None else table.ids[i], "message": text}
-        )
+    for flag, text in _WARNING_TEXTS.items():
+        for i in np.flatnonzero(mask & int(flag))[:1000]:
+            out.append(
+                {
+                    "index": int(i),
+                    "id": None if table.ids is None else table.ids[i],
+                    "message": text,
+                }
+            )
     return out
 
 

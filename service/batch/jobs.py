@@ -109,6 +109,8 @@ PROPAGATION_FLAG_MEANINGS = {
     _PF.NOT_CONVERGED: "Light-time model: iteration did not converge.",
     _PF.RADIAL_VELOCITY_UNCHANGED: "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
+    _PF.RADIAL_VELOCITY_IMPLAUSIBLE: "Radial velocity above 5,000 km/s in size, more than any "
+    "star's measured radial velocity: probably m/s given as km/s.",
 }
 
 
@@ -285,6 +287,8 @@ VELOCITY_FLAG_MEANINGS = {
     _KF.PROPER_MOTION_IMPLAUSIBLE: "Total proper motion above 10.4 arcsec/yr, more than any "
     "known star: probably a unit mistake.",
     _KF.MONTE_CARLO_UNCERTAINTIES: "Uncertainties from Monte Carlo draws (not used in batch runs).",
+    _KF.RADIAL_VELOCITY_IMPLAUSIBLE: "Radial velocity above 5,000 km/s in size, more than any "
+    "star's measured radial velocity: probably m/s given as km/s.",
 }
 
 _CORRELATIONS = (

@@ -56,3 +56,10 @@ RAD_PER_DEG = math.pi / 180.0
 #: stellar proper motion is about 10.4 arcsec/yr (common practice, from memory); a larger
 #: value usually means a unit mistake (e.g. arcsec given as mas, or RA motion without cos dec).
 IMPLAUSIBLE_PROPER_MOTION_MAS_YR = 10_400.0
+
+#: Radial velocity (in size) above which an input is implausible, km/s. No star's measured
+#: radial velocity comes near it (from memory: hypervelocity stars leave the Galaxy at about
+#: 1,000 km/s, and the stars closest to the black hole at the Galactic centre reach a few
+#: thousand km/s at pericentre); a larger value usually means m/s given as km/s (common
+#: practice as a unit check).
+IMPLAUSIBLE_RADIAL_VELOCITY_KM_S = 5_000.0

@@ -46,6 +46,7 @@ from service.core.constants import (
     AU_PER_JULIAN_YEAR_KM_S,
     DEG_PER_RAD,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
+    IMPLAUSIBLE_RADIAL_VELOCITY_KM_S,
     JULIAN_YEAR_S,
     MAS_PER_RAD,
     PC_KM,
@@ -177,6 +178,9 @@ class KinematicsFlag(enum.IntFlag):
     PROPER_MOTION_IMPLAUSIBLE = 64
     #: Uncertainties come from Monte Carlo draws instead of linear propagation.
     MONTE_CARLO_UNCERTAINTIES = 128
+    #: Radial velocity above 5,000 km/s in size (more than any star's measured radial
+    #: velocity): probably m/s given as km/s.
+    RADIAL_VELOCITY_IMPLAUSIBLE = 256
 
 
 @dataclass(frozen=True)
@@ -907,6 +911,9 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     rv_missing = np.isnan(rv)
     if rv_missing.any():
         flags |= rv_missing * np.uint32(KinematicsFlag.RADIAL_VELOCITY_MISSING)
+    rv_implausible = np.abs(rv) > IMPLAUSIBLE_RADIAL_VELOCITY_KM_S  # False for NaN
+    if rv_implausible.any():
+        flags |= rv_implausible * np.uint32(KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE)
     va = k * pmra
     vd = k * pmdec
 

@@ -46,6 +46,7 @@ from .constants import (
     C_KM_S,
     DEG_PER_RAD,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
+    IMPLAUSIBLE_RADIAL_VELOCITY_KM_S,
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
@@ -93,6 +94,9 @@ class PropagationFlag(enum.IntFlag):
     #: Radial velocity given but parallax missing or not positive: the radial velocity is
     #: passed through unchanged (no perspective change can be computed).
     RADIAL_VELOCITY_UNCHANGED = 256
+    #: Radial velocity above 5,000 km/s in size (more than any star's measured radial
+    #: velocity): probably m/s given as km/s. Computed as given.
+    RADIAL_VELOCITY_IMPLAUSIBLE = 512
 
 
 @dataclass(frozen=True)
@@ -167,7 +171,8 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     1. The thresholds are compared as squares: total proper motion mu^2 = mu_a*^2 + mu_d^2
        against IMPLAUSIBLE_PROPER_MOTION_MAS_YR^2; the space velocity, where the parallax
        is positive, as A^2 mu^2 + v_r^2 plx^2 > v_max^2 plx^2 (v_t = A mu / plx; an unknown
-       radial velocity counts as zero here).
+       radial velocity counts as zero here); the radial velocity in size against
+       IMPLAUSIBLE_RADIAL_VELOCITY_KM_S.
     """
     plx = np.asarray(parallax_mas, dtype=float)
     rv = np.asarray(radial_velocity_km_s, dtype=float)
@@ -198,6 +203,7 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
         (pm_sq > _PM_LIMIT_SQ, F.PROPER_MOTION_IMPLAUSIBLE),
         (~(rv_missing | plx_positive), F.RADIAL_VELOCITY_UNCHANGED),
         (too_fast & plx_positive, F.SPACE_VELOCITY_IMPLAUSIBLE),
+        (np.abs(rv) > IMPLAUSIBLE_RADIAL_VELOCITY_KM_S, F.RADIAL_VELOCITY_IMPLAUSIBLE),
     ):
         flags |= np.left_shift(mask, int(bit).bit_length() - 1, dtype=np.uint16)
     flags = flags.astype(np.int64)
@@ -223,6 +229,7 @@ def _input_flags_one(plx: float, pma: float, pmd: float, rv: float) -> int:
         (pm_sq > _PM_LIMIT_SQ, F.PROPER_MOTION_IMPLAUSIBLE),
         (not (rv_missing or plx_positive), F.RADIAL_VELOCITY_UNCHANGED),
         (too_fast and plx_positive, F.SPACE_VELOCITY_IMPLAUSIBLE),
+        (abs(rv) > IMPLAUSIBLE_RADIAL_VELOCITY_KM_S, F.RADIAL_VELOCITY_IMPLAUSIBLE),
     ):
         if cond:
             bits |= int(bit)

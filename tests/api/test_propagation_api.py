@@ -142,6 +142,17 @@ def test_implausible_proper_motion_warns_but_answers(client):
     assert "unit" in body["warnings"][0]["message"]
 
 
+def test_radial_velocity_in_metres_per_second_warns_but_answers(client):
+    good = dict(STAR, parallax_mas=100.0, radial_velocity_km_s=-41.7)
+    star = dict(good, radial_velocity_km_s=-41_700.0)  # -41.7 km/s written in m/s
+    body = post(client, dict(BASE, stars=[star, good])).json
+    assert body["stars"][0]["flags"] == ["radial_velocity_implausible"]
+    assert body["stars"][1]["flags"] == []
+    assert body["warnings"] == [{"index": 0, "id": None, "message": body["warnings"][0]["message"]}]
+    assert "km/s, not m/s" in body["warnings"][0]["message"]
+    assert "radial_velocity_implausible" in body["flag_meanings"]
+
+
 def test_epochs_answered_as_julian_and_iso(client):
     body = post(client, dict(BASE, stars=[STAR], target_epochs=["2026-12-02T22:00:00Z"])).json
     e = body["epochs"][0]

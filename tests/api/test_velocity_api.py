@@ -152,6 +152,13 @@ def test_implausible_proper_motion_warns_but_answers(client):
     assert body["warnings"][0]["index"] == 0
 
 
+def test_radial_velocity_in_metres_per_second_warns_but_answers(client):
+    body = post(client, {"stars": [dict(STAR, radial_velocity_km_s=41_700.0)]}).json
+    assert "radial_velocity_implausible" in body["stars"][0]["flags"]
+    assert "km/s, not m/s" in body["warnings"][0]["message"]
+    assert body["stars"][0]["u_km_s"] is not None  # computed as given
+
+
 def test_inverse_round_trip_through_both_endpoints(client):
     stars = [UVW_STAR, dict(UVW_STAR, ra_deg=250.0, dec_deg=-60.0, u_km_s=40.0)]
     obs = post(client, {"stars": stars}, INVERSE_URL).json["stars"]

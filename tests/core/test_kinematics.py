@@ -342,6 +342,13 @@ def test_implausible_proper_motion_flag():
     assert ((r.flags & KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE) > 0).tolist() == [False, True]
 
 
+def test_implausible_radial_velocity_flag():
+    # 5,000 km/s in size (core.constants: a unit check, m/s given as km/s; common practice).
+    r = space_velocity(0.0, 0.0, 100.0, 10.0, 0.0, [4_000.0, -41_700.0, np.nan])
+    got = ((r.flags & KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE) > 0).tolist()
+    assert got == [False, True, False]
+
+
 def test_missing_uncertainties_flag():
     r = space_velocity(0.0, 0.0, 10.0, 1.0, 1.0, 3.0, parallax_error_mas=0.1)
     assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING

@@ -675,6 +675,22 @@ def test_flags_implausible_proper_motion_and_velocity():
     assert propagate(0.0, 0.0, 1.0, 9_000.0, 5_000.0, 0.0, 2016.0, 2017.0).flags == 0
 
 
+def test_flag_implausible_radial_velocity_array_and_one_star_alike():
+    # 5,000 km/s in size: more than any star's measured radial velocity (the threshold's
+    # reasoning is in core.constants; common practice as a unit check, m/s given as km/s).
+    rv = np.array([5_000.0, 5_000.5, -41_700.0, -41.7, np.nan])
+    flags = input_flags(100.0, 10.0, 10.0, rv)
+    F = PropagationFlag
+    assert [bool(x & F.RADIAL_VELOCITY_IMPLAUSIBLE) for x in flags] == [
+        False, True, True, False, False,
+    ]  # fmt: skip
+    for v, bits in zip(rv, flags, strict=True):  # the one-star path gives the same bits
+        assert int(input_flags(100.0, 10.0, 10.0, v)) == int(bits)
+    res = propagate(10.0, 20.0, 100.0, 10.0, 10.0, -41_700.0, 2016.0, 2026.0)
+    assert res.flags & F.RADIAL_VELOCITY_IMPLAUSIBLE  # flagged, and computed as given
+    assert np.isfinite(res.astrometry.radial_velocity_km_s)
+
+
 def test_flag_at_pole():
     res = propagate(0.0, 90.0, 10.0, 0.0, 0.0, 10.0, 2016.0, 2020.0)
     assert res.flags & PropagationFlag.AT_POLE
