@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+import operator
 
 import flask_smorest
 import marshmallow as ma
@@ -188,11 +189,33 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
     return doc
 
 
-#: The warning for a radial velocity above 5,000 km/s (the propagation and velocity answers).
+#: Warnings of the propagation and velocity answers on implausible inputs.
+PROPER_MOTION_WARNING = (
+    "total proper motion exceeds 10.4 arcsec/yr, more than any known star: check the unit "
+    "(mas/yr) and that the RA component includes cos(dec)"
+)
 RADIAL_VELOCITY_WARNING = (
     "radial velocity exceeds 5,000 km/s in size, more than any star's measured radial "
     "velocity: check the unit (km/s, not m/s)"
 )
+
+
+def flag_warnings(masks, table, texts: dict) -> list[dict]:
+    """Per-star warnings ({index, id, message}) for the flags of ``texts`` (flag -> message)
+    set in ``masks`` (one int per star), at most 1,000 per flag."""
+    out = []
+    if not (masks & functools.reduce(operator.or_, map(int, texts))).any():
+        return out
+    for flag, text in texts.items():
+        for i in np.flatnonzero(masks & int(flag))[:1000]:
+            out.append(
+                {
+                    "index": int(i),
+                    "id": None if table.ids is None else table.ids[i],
+                    "message": text,
+                }
+            )
+    return out
 
 
 class StrictFloat(ma.fields.Float):

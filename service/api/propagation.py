@@ -2,10 +2,8 @@
 
 from __future__ import annotations
 
-import functools
 import itertools
 import math
-import operator
 
 import marshmallow as ma
 import numpy as np
@@ -16,11 +14,13 @@ from ..core import propagation as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
 from .common import (
+    PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
     Blueprint,
     EpochField,
     EpochOutSchema,
     epochs_out,
+    flag_warnings,
     number_field,
 )
 from .examples import load_example
@@ -446,7 +446,7 @@ def propagate(args):
         for i in np.flatnonzero(assumed_zero):
             names[i] = (*names[i], "correlations_assumed_zero")
             present.add("correlations_assumed_zero")
-    warnings = _warnings(masks, table)
+    warnings = flag_warnings(masks, table, _WARNING_TEXTS)
     layout = args["layout"] or table.form
     body = {
         "model": args["model"],
@@ -507,32 +507,13 @@ def propagate(args):
 
 #: Per-star warnings: flag -> message.
 _WARNING_TEXTS = {
-    core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: "total proper motion exceeds 10.4 "
-    "arcsec/yr, more than any known star: check the unit (mas/yr) and that the RA component "
-    "includes cos(dec)",
+    core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
     core.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and radial "
     "velocity imply a space velocity above half the speed of light: check the parallax and "
     "its unit (mas)",
     core.PropagationFlag.NOT_CONVERGED: "light-time iteration did not converge",
     core.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
 }
-_WARNING_BITS = int(functools.reduce(operator.or_, _WARNING_TEXTS))
-
-
-def _warnings(masks, table) -> list[dict]:
-    out = []
-    if not (masks & _WARNING_BITS).any():
-        return out
-    for flag, text in _WARNING_TEXTS.items():
-        for i in np.flatnonzero(masks & int(flag))[:1000]:
-            out.append(
-                {
-                    "index": int(i),
-                    "id": None if table.ids is None else table.ids[i],
-                    "message": text,
-                }
-            )
-    return out
 
 
 def register(app, api):

@@ -20,6 +20,7 @@ from ..core import kinematics as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import (
+    PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
     Blueprint,
     EpochField,
@@ -27,6 +28,7 @@ from .common import (
     StrictBoolean,
     StrictFloat,
     epochs_out,
+    flag_warnings,
     number_field,
 )
 from .examples import load_example
@@ -469,25 +471,9 @@ def _records(names, arrays, table, flags, n):
 
 #: Per-star warnings: flag -> message.
 _WARNING_TEXTS = {
-    core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE: "total proper motion exceeds 10.4 "
-    "arcsec/yr, more than any known star: check the unit (mas/yr) and that the RA component "
-    "includes cos(dec)",
+    core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
     core.KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
 }
-
-
-def _warnings(mask, table):
-    out = []
-    for flag, text in _WARNING_TEXTS.items():
-        for i in np.flatnonzero(mask & int(flag))[:1000]:
-            out.append(
-                {
-                    "index": int(i),
-                    "id": None if table.ids is None else table.ids[i],
-                    "message": text,
-                }
-            )
-    return out
 
 
 # ---------------------------------------------------------------------------- views
@@ -615,7 +601,7 @@ def velocity(args):
         "uncertainty_method": method,
         "units": {k: v for k, v in VELOCITY_OUTPUTS.items() if k in columns},
         "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in used},
-        "warnings": _warnings(result.flags, table),
+        "warnings": flag_warnings(result.flags, table, _WARNING_TEXTS),
     }
     if layout == "columns":
         contiguous = {k: np.ascontiguousarray(v) for k, v in columns.items()}
