@@ -13,6 +13,7 @@ from flask import current_app, g, request
 from flask_smorest import abort
 
 from ..core import epochs as core_epochs
+from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from . import arrowio, csvio
 from .jsonio import BodyParser
@@ -198,6 +199,23 @@ RADIAL_VELOCITY_WARNING = (
     "radial velocity exceeds 5,000 km/s in size, more than any star's measured radial "
     "velocity: check the unit (km/s, not m/s)"
 )
+
+
+#: Per-star warnings of the propagation (and observed) answers: PropagationFlag -> message.
+PROPAGATION_WARNINGS = {
+    core_prop.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
+    core_prop.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and "
+    "radial velocity imply a space velocity above half the speed of light: check the "
+    "parallax and its unit (mas)",
+    core_prop.PropagationFlag.NOT_CONVERGED: "light-time iteration did not converge",
+    core_prop.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
+}
+
+
+class WarningSchema(ma.Schema):
+    index = ma.fields.Integer()
+    id = ma.fields.Raw(allow_none=True)
+    message = ma.fields.String()
 
 
 def flag_warnings(masks, table, texts: dict) -> list[dict]:

@@ -22,16 +22,20 @@ from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from .common import (
+    PROPAGATION_WARNINGS,
     Blueprint,
     EpochField,
     EpochOutSchema,
     InstantField,
     StrictFloat,
+    WarningSchema,
     epochs_out,
+    flag_warnings,
     instants_out,
 )
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
+from .propagation import FLAG_MEANINGS as PROPAGATION_FLAG_MEANINGS
 from .tables import StarTableField
 
 ADVISORY = (
@@ -267,6 +271,14 @@ class ObservedResponseSchema(ma.Schema):
     star_count = ma.fields.Integer()
     units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    warnings = ma.fields.List(
+        ma.fields.Nested(WarningSchema),
+        metadata={
+            "description": "Stars whose inputs look like a unit mistake (proper motion above "
+            "10.4 arcsec/yr, radial velocity above 5,000 km/s) or are inconsistent; they are "
+            "computed as given."
+        },
+    )
     stars = ma.fields.List(
         ma.fields.Dict(),
         metadata={"description": "One entry per star: index, id, at_instants (one per instant)."},
@@ -368,15 +380,18 @@ def observed(args):
         ]
     # Move the stars to each instant with the core propagation, then observe.
     if m == 1:
-        moved = core_prop.propagate(*vals, epoch0, instants[0]).astrometry
-        star_args = [getattr(moved, f) for f in _AST]
+        propagated = core_prop.propagate(*vals, epoch0, instants[0])
         epoch_arg = instants[0]
     else:
-        moved = core_prop.propagate(
-            *(v[:, None] for v in vals), epoch0, instants[None, :]
-        ).astrometry
-        star_args = [getattr(moved, f) for f in _AST]
+        propagated = core_prop.propagate(*(v[:, None] for v in vals), epoch0, instants[None, :])
         epoch_arg = instants[None, :]
+    star_args = [getattr(propagated.astrometry, f) for f in _AST]
+    # Implausible inputs (proper motion, radial velocity, space velocity) are warned about as
+    # in the propagation answer; the flags depend on the inputs only, not on the instant.
+    input_masks = np.bitwise_or.reduce(np.asarray(propagated.flags).reshape(n, -1), axis=1)
+    warnings = flag_warnings(input_masks, table, PROPAGATION_WARNINGS)
+    # ... and named in each star's flags, so that CSV and Arrow answers carry them too.
+    input_names = flag_names(input_masks & _IMPLAUSIBLE_INPUTS, core_prop.PropagationFlag)
     # Missing motions stay missing for the flags (the propagation reports them as NaN too).
     # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
     utc1 = np.array([t.utc_jd1 for t in given])
@@ -411,7 +426,7 @@ def observed(args):
         at = []
         for k in range(m):
             entry = {name: _finite(col[i][k]) for name, col in cols}
-            entry["flags"] = names[i * m + k]
+            entry["flags"] = (*names[i * m + k], *input_names[i])
             at.append(entry)
         stars.append({"index": i, "id": None if ids is None else ids[i], "at_instants": at})
 
@@ -447,7 +462,7 @@ def observed(args):
                 },
             }
         )
-    all_names = {x for lst in names for x in lst}
+    all_names = {x for lst in (*names, *input_names) for x in lst}
     r = res.refraction
     body = {
         "advisory": ADVISORY,
@@ -478,11 +493,27 @@ def observed(args):
         "earth_orientation_tables": res.provenance,
         "star_count": n,
         "units": PLACE_FIELDS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in all_names},
+        "flag_meanings": {
+            k: v
+            for k, v in (*FLAG_MEANINGS.items(), *_INPUT_FLAG_MEANINGS.items())
+            if k in all_names
+        },
+        "warnings": warnings,
         "stars": stars,
     }
     return current_app.json.response(body)
 
+
+#: Propagation flags that an observed answer names per star (implausible inputs).
+_IMPLAUSIBLE_INPUTS = int(
+    core_prop.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
+    | core_prop.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
+    | core_prop.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
+)
+_INPUT_FLAG_MEANINGS = {
+    name: PROPAGATION_FLAG_MEANINGS[name]
+    for name in flag_names([_IMPLAUSIBLE_INPUTS], core_prop.PropagationFlag)[0]
+}
 
 _AST = (
     "ra_deg",

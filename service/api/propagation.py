@@ -14,11 +14,11 @@ from ..core import propagation as core
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
 from .common import (
-    PROPER_MOTION_WARNING,
-    RADIAL_VELOCITY_WARNING,
+    PROPAGATION_WARNINGS,
     Blueprint,
     EpochField,
     EpochOutSchema,
+    WarningSchema,
     epochs_out,
     flag_warnings,
     number_field,
@@ -241,12 +241,6 @@ class StarResultSchema(ma.Schema):
     at_epochs = ma.fields.List(ma.fields.Nested(AtEpochSchema))
 
 
-class WarningSchema(ma.Schema):
-    index = ma.fields.Integer()
-    id = ma.fields.Raw(allow_none=True)
-    message = ma.fields.String()
-
-
 class PropagationResponseSchema(ma.Schema):
     model = ma.fields.String()
     catalogue_epoch = ma.fields.Nested(EpochOutSchema)
@@ -446,7 +440,7 @@ def propagate(args):
         for i in np.flatnonzero(assumed_zero):
             names[i] = (*names[i], "correlations_assumed_zero")
             present.add("correlations_assumed_zero")
-    warnings = flag_warnings(masks, table, _WARNING_TEXTS)
+    warnings = flag_warnings(masks, table, PROPAGATION_WARNINGS)
     layout = args["layout"] or table.form
     body = {
         "model": args["model"],
@@ -503,17 +497,6 @@ def propagate(args):
             )
         body["stars"] = stars
     return current_app.json.response(body)
-
-
-#: Per-star warnings: flag -> message.
-_WARNING_TEXTS = {
-    core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
-    core.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and radial "
-    "velocity imply a space velocity above half the speed of light: check the parallax and "
-    "its unit (mas)",
-    core.PropagationFlag.NOT_CONVERGED: "light-time iteration did not converge",
-    core.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
-}
 
 
 def register(app, api):

@@ -156,6 +156,37 @@ def test_instant_of_another_json_type_names_the_field(client, observed_example, 
     assert_problem(r, 422, "instants[1]")
 
 
+def test_implausible_inputs_named_and_warned_about(client, observed_example):
+    """As in the propagation answer: a radial velocity in m/s (-41,700 for -41.7 km/s) and a
+    proper motion above 10.4 arcsec/yr are computed as given, flagged on every instant, and
+    warned about; the CSV answer carries the flags too."""
+    good = dict(observed_example["stars"][0])
+    fast_rv = dict(good, radial_velocity_km_s=-41_700.0)
+    fast_pm = dict(good, pm_ra_cosdec_mas_yr=30_000.0)
+    body = dict(
+        observed_example,
+        stars=[good, fast_rv, fast_pm],
+        instants=["2026-12-02T22:30:00Z", "2026-12-02T23:30:00Z"],
+    )
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    flags = [[set(a["flags"]) for a in s["at_instants"]] for s in r.json["stars"]]
+    implausible = {"radial_velocity_implausible", "proper_motion_implausible"}
+    assert [[f & implausible for f in star] for star in flags] == [
+        [set(), set()],
+        [{"radial_velocity_implausible"}] * 2,
+        [{"proper_motion_implausible"}] * 2,
+    ]
+    assert implausible <= set(r.json["flag_meanings"])
+    assert [(w["index"], "km/s, not m/s" in w["message"]) for w in r.json["warnings"]] == [
+        (2, False),
+        (1, True),
+    ]
+    assert r.json["stars"][1]["at_instants"][0]["altitude_deg"] is not None
+    text = client.post(OBS, json=body, headers={"Accept": "text/csv"}).get_data(as_text=True)
+    assert text.count("radial_velocity_implausible") == 2  # one row per instant
+
+
 def test_track_of_one_star_over_many_instants(client, observed_example):
     body = dict(
         observed_example,
