@@ -386,13 +386,13 @@ def observed(args):
         propagated = core_prop.propagate(*(v[:, None] for v in vals), epoch0, instants[None, :])
         epoch_arg = instants[None, :]
     star_args = [getattr(propagated.astrometry, f) for f in _AST]
+    # Missing motions stay missing for the flags (the propagation reports them as NaN too).
     # Implausible inputs (proper motion, radial velocity, space velocity) are warned about as
     # in the propagation answer; the flags depend on the inputs only, not on the instant.
     input_masks = np.bitwise_or.reduce(np.asarray(propagated.flags).reshape(n, -1), axis=1)
     warnings = flag_warnings(input_masks, table, PROPAGATION_WARNINGS)
     # ... and named in each star's flags, so that CSV and Arrow answers carry them too.
     input_names = flag_names(input_masks & _IMPLAUSIBLE_INPUTS, core_prop.PropagationFlag)
-    # Missing motions stay missing for the flags (the propagation reports them as NaN too).
     # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
     utc1 = np.array([t.utc_jd1 for t in given])
     utc2 = np.array([t.utc_jd2 for t in given])
