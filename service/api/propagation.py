@@ -12,7 +12,12 @@ from flask_smorest import abort
 
 from ..core import propagation as core
 from ..core.constants import C_KM_S
-from ..core.flags import flag_names, present_flag_names
+from ..core.flags import (
+    PROPER_MOTION_IMPLAUSIBLE_MEANING,
+    RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+    flag_names,
+    present_flag_names,
+)
 from .common import (
     PROPAGATION_WARNINGS,
     Blueprint,
@@ -271,8 +276,7 @@ FLAG_MEANINGS = {
     "applied; parallax out is the formal value.",
     "radial_velocity_missing": "No radial velocity: taken as zero for the motion (no "
     "perspective acceleration); radial velocity out unknown.",
-    "proper_motion_implausible": "Total proper motion above 10.4 arcsec/yr, more than any "
-    "known star: probably a unit mistake.",
+    "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
     "space_velocity_implausible": "Implied space velocity above half the speed of light: "
     "inconsistent inputs.",
     "at_pole": "At a celestial pole: right ascension undefined.",
@@ -280,8 +284,7 @@ FLAG_MEANINGS = {
     "not_converged": "Light-time model: iteration did not converge.",
     "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
-    "radial_velocity_implausible": "Radial velocity above 5,000 km/s in size, more than any "
-    "star's measured radial velocity: probably m/s given as km/s.",
+    "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     "uncertainties_incomplete": "Some but not all five astrometric standard errors given: "
     "no uncertainties computed.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "

@@ -18,7 +18,11 @@ from flask_smorest import abort
 
 from ..core import kinematics as core
 from ..core.constants import C_KM_S
-from ..core.flags import flag_names
+from ..core.flags import (
+    PROPER_MOTION_IMPLAUSIBLE_MEANING,
+    RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+    flag_names,
+)
 from .common import (
     PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
@@ -342,10 +346,8 @@ FLAG_MEANINGS = {
     "angle and secular quantities are null; transverse velocity given.",
     "distance_given": "distance_pc used instead of the parallax.",
     "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
-    "proper_motion_implausible": "Total proper motion above 10.4 arcsec/yr, more than any "
-    "known star: probably a unit mistake.",
-    "radial_velocity_implausible": "Radial velocity above 5,000 km/s in size, more than any "
-    "star's measured radial velocity: probably m/s given as km/s.",
+    "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
+    "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",

@@ -14,6 +14,7 @@ from ..core import constellations as _constellations
 from ..core import kinematics as _kinematics
 from ..core import propagation as _propagation
 from ..core.constants import C_KM_S
+from ..core.flags import PROPER_MOTION_IMPLAUSIBLE_MEANING, RADIAL_VELOCITY_IMPLAUSIBLE_MEANING
 from .spec import (
     CATALOGUE_EPOCH_FIELD,
     FLAG_DTYPE,
@@ -100,8 +101,7 @@ PROPAGATION_FLAG_MEANINGS = {
     "applied; parallax out is the formal value.",
     _PF.RADIAL_VELOCITY_MISSING: "No radial velocity: taken as zero for the motion (no "
     "perspective acceleration); radial velocity out unknown.",
-    _PF.PROPER_MOTION_IMPLAUSIBLE: "Total proper motion above 10.4 arcsec/yr, more than any "
-    "known star: probably a unit mistake.",
+    _PF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,
     _PF.SPACE_VELOCITY_IMPLAUSIBLE: "Implied space velocity above half the speed of light: "
     "inconsistent inputs.",
     _PF.AT_POLE: "At a celestial pole: right ascension undefined.",
@@ -109,8 +109,7 @@ PROPAGATION_FLAG_MEANINGS = {
     _PF.NOT_CONVERGED: "Light-time model: iteration did not converge.",
     _PF.RADIAL_VELOCITY_UNCHANGED: "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
-    _PF.RADIAL_VELOCITY_IMPLAUSIBLE: "Radial velocity above 5,000 km/s in size, more than any "
-    "star's measured radial velocity: probably m/s given as km/s.",
+    _PF.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
 }
 
 
@@ -284,11 +283,9 @@ VELOCITY_FLAG_MEANINGS = {
     "angle and secular quantities are NaN; transverse velocity given.",
     _KF.DISTANCE_GIVEN: "distance_pc used instead of the parallax.",
     _KF.UNCERTAINTIES_MISSING: "Some needed standard error not given: uncertainties NaN.",
-    _KF.PROPER_MOTION_IMPLAUSIBLE: "Total proper motion above 10.4 arcsec/yr, more than any "
-    "known star: probably a unit mistake.",
+    _KF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,
     _KF.MONTE_CARLO_UNCERTAINTIES: "Uncertainties from Monte Carlo draws (not used in batch runs).",
-    _KF.RADIAL_VELOCITY_IMPLAUSIBLE: "Radial velocity above 5,000 km/s in size, more than any "
-    "star's measured radial velocity: probably m/s given as km/s.",
+    _KF.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
 }
 
 _CORRELATIONS = (

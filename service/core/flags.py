@@ -12,6 +12,16 @@ import functools
 
 import numpy as np
 
+#: What the implausible-input flags of the propagation and velocity results mean (the
+#: answers' flag meanings and the batch jobs' metadata use these texts).
+PROPER_MOTION_IMPLAUSIBLE_MEANING = (
+    "Total proper motion above 10.4 arcsec/yr, more than any known star: probably a unit mistake."
+)
+RADIAL_VELOCITY_IMPLAUSIBLE_MEANING = (
+    "Radial velocity above 5,000 km/s in size, more than any star's measured radial "
+    "velocity: probably m/s given as km/s."
+)
+
 
 class FlagNameList(list):
     """The list :func:`flag_names` returns, which also knows which stars share a mask.
