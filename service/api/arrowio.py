@@ -160,8 +160,9 @@ def _valid(col: pa.ChunkedArray) -> np.ndarray:
 def parse_arrow_body(data: bytes) -> ArrowTable:
     """Read an Arrow IPC stream body.
 
-    A body that is not one aborts with 400; compressed record batches with 415 (Note 1);
-    repeated column names with 422.
+    A body that is not one aborts with 400, and so does one with anything after the end of
+    the stream (Note 3); compressed record batches with 415 (Note 1); repeated column names
+    with 422.
 
     Notes
     -----
@@ -171,16 +172,28 @@ def parse_arrow_body(data: bytes) -> ArrowTable:
        before anything is decoded, as compressed Content-Encodings are (app.py).
     2. The table is validated in full (buffer sizes, offsets), so that a forged stream is a
        400 rather than a read out of bounds.
+    3. A stream ends at its end-of-stream marker (or at the end of the body); pyarrow stops
+       reading there. Two streams sent one after the other (files joined end to end) would
+       otherwise be answered for the first stream's stars alone, without a word.
     """
     buf = pa.py_buffer(data)
     try:
-        for message in pa.ipc.MessageReader.open_stream(buf):
+        source = pa.BufferReader(buf)
+        for message in pa.ipc.MessageReader.open_stream(source):
             if _is_compressed_batch(message.metadata.to_pybytes()):
                 abort(
                     415,
                     message="Compressed Arrow record batches (LZ4 or ZSTD buffers) are not "
                     "accepted; send the stream uncompressed.",
                 )
+        end = source.tell()
+        if end < len(data):
+            abort(
+                400,
+                message=f"The body goes on after the end of its Arrow IPC stream (byte {end} "
+                f"of {len(data)}): send one stream (several streams one after another, or "
+                "other data after one, would lose stars).",
+            )
         with pa.ipc.open_stream(buf) as reader:
             table = reader.read_all()
         table.validate(full=True)

@@ -331,6 +331,23 @@ def test_not_an_arrow_stream_is_400(client, body):
     assert "Arrow IPC stream" in r.json["detail"]
 
 
+@pytest.mark.parametrize("tail", ["second_stream", "junk", "zero_bytes"])
+def test_data_after_the_end_of_the_stream_is_400(client, tail):
+    # Two streams joined end to end: pyarrow reads the first and stops at its end-of-stream
+    # marker, so the second stream's stars would be dropped without a word.
+    first = stream_of(small_table())
+    extras = {
+        "second_stream": stream_of(small_table(id=pa.array(["X", "Y", "Z"]))),
+        "junk": b"garbage",
+        "zero_bytes": bytes(64),
+    }
+    extra = extras[tail]
+    r = post_arrow(client, first + extra)
+    assert problem_fields(r, 400) == []
+    assert f"byte {len(first)} of {len(first) + len(extra)}" in r.json["detail"]
+    assert post_arrow(client, first).status_code == 200  # the first stream alone is read
+
+
 def test_arrow_file_format_is_not_a_stream(client):
     # The Arrow IPC *file* format (magic "ARROW1") is another media type; refused as 400.
     sink = pa.BufferOutputStream()
