@@ -80,7 +80,12 @@ _num = number_field
 
 
 def _star_fields(motion_required: bool) -> dict:
-    pm_text = "" if motion_required else " Null or absent: no motion applied."
+    pm_text = (
+        ""
+        if motion_required
+        else " Give both components or neither: with neither (null or absent) the position "
+        "is held fixed, flagged proper_motion_missing when another epoch is asked for."
+    )
     return {
         "id": ma.fields.Raw(
             allow_none=True,
@@ -378,7 +383,8 @@ def _locate(args, with_margin: bool):
     epoch = args.get("epoch")
     if epoch is None:
         epoch = cat_epoch
-    moving = np.isfinite(pma) | np.isfinite(pmd)
+    _refuse_half_proper_motions(table, pma, pmd)
+    moving = np.isfinite(pma) & np.isfinite(pmd)
     frame = frame_from_spec(args["frame"], "frame")
     if frame.name != "icrs":
         at = cat_epoch if cat_epoch is not None else (epoch if epoch is not None else 2000.0)
@@ -394,8 +400,8 @@ def _locate(args, with_margin: bool):
             ra,
             dec,
             plx,
-            np.where(np.isfinite(pma), pma, np.where(moving, np.nan, 0.0)),
-            np.where(np.isfinite(pmd), pmd, np.where(moving, np.nan, 0.0)),
+            np.where(moving, pma, 0.0),
+            np.where(moving, pmd, 0.0),
             rv,
             cat_epoch,
             epoch,
@@ -420,7 +426,41 @@ def _locate(args, with_margin: bool):
             near_boundary_arcsec=args["near_boundary_arcsec"],
         )
         flags = res.flags
+    if epoch is not None and epoch != cat_epoch:
+        # asked for another epoch: a star without proper motion stayed where it was
+        fixed = np.uint16(core.ConstellationFlag.PROPER_MOTION_MISSING)
+        flags = np.where(moving, flags, flags | fixed)
     return table, res, flags, epoch
+
+
+def _refuse_half_proper_motions(table, pma, pmd) -> None:
+    """422 for a star with one proper-motion component and not the other: taking the
+    missing one as zero would move the star along a direction the client never gave."""
+    half = np.flatnonzero(np.isfinite(pma) != np.isfinite(pmd))
+    if half.size == 0:
+        return
+    errors = []
+    for i in half[:MAX_HALF_MOTION_ERRORS].tolist():
+        given, missing = (
+            ("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr")
+            if np.isfinite(pma[i])
+            else ("pm_dec_mas_yr", "pm_ra_cosdec_mas_yr")
+        )
+        errors.append(
+            {
+                "field": table.path(i, missing),
+                "message": f"is missing while {given} is given: give both proper-motion "
+                "components, or neither for a fixed position",
+            }
+        )
+    if half.size > MAX_HALF_MOTION_ERRORS:
+        more = half.size - MAX_HALF_MOTION_ERRORS
+        errors.append({"field": "(more)", "message": f"{more} further stars like these"})
+    abort(422, errors=errors)
+
+
+#: Stars listed by name when proper motions are given by halves.
+MAX_HALF_MOTION_ERRORS = 50
 
 
 def _names_per_star(flags) -> list[list[str]]:

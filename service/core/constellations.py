@@ -1566,8 +1566,10 @@ def _space_motion(
     2. Without a usable parallax the distance drops out only if the radial velocity is
        ignored: r0 = r (unit), v = mu_a p + mu_d q (rad/yr); PARALLAX_MISSING is set
        (plus PARALLAX_NOT_POSITIVE for zero or negative values).
-    3. A missing radial velocity is taken as zero and flagged; a missing proper motion
-       component as zero and flagged PROPER_MOTION_MISSING.
+    3. A missing radial velocity is taken as zero and flagged. A star with either proper
+       motion component missing is held fixed (both components taken as zero) and flagged
+       PROPER_MOTION_MISSING: one component alone would move it along a direction nobody
+       gave. (The API refuses such stars instead; this is for batch runs on files.)
     """
     ra, dec, plx, pma, pmd, rv = (
         a.ravel()
@@ -1590,8 +1592,8 @@ def _space_motion(
     flags = np.zeros(ra.shape, dtype=np.int64)
     pm_missing = ~np.isfinite(pma) | ~np.isfinite(pmd)
     flags |= np.where(pm_missing, int(ConstellationFlag.PROPER_MOTION_MISSING), 0)
-    pma = np.where(np.isfinite(pma), pma, 0.0) / MAS_PER_RAD
-    pmd = np.where(np.isfinite(pmd), pmd, 0.0) / MAS_PER_RAD
+    pma = np.where(pm_missing, 0.0, pma) / MAS_PER_RAD
+    pmd = np.where(pm_missing, 0.0, pmd) / MAS_PER_RAD
     plx_ok = np.isfinite(plx) & (plx > 0.0)
     flags |= np.where(plx_ok, 0, int(ConstellationFlag.PARALLAX_MISSING))
     flags |= np.where(
@@ -1677,7 +1679,8 @@ def locate_moving(
     shape = arrays[0].shape
     flat = [a.ravel() for a in arrays]
     _r0, _v, flags = _space_motion(*flat[:6])
-    pma, pmd = (np.where(np.isfinite(a), a, 0.0) for a in flat[3:5])
+    fixed = ~np.isfinite(flat[3]) | ~np.isfinite(flat[4])  # held fixed (_space_motion)
+    pma, pmd = (np.where(fixed, 0.0, a) for a in flat[3:5])
     moved, _flags = propagate_standard(
         flat[0], flat[1], flat[2], pma, pmd, flat[5], flat[6], flat[7]
     )

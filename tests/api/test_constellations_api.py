@@ -287,3 +287,52 @@ def test_outline_equinox_for_icrs(client):
 
 def test_outline_bad_tolerance(client):
     assert_problem(client.get(f"{BASE}/Ori/outline?tolerance_arcsec=0"), 422, "tolerance_arcsec")
+
+
+# ---------------------------------------------------------------- proper motions by halves
+
+
+@pytest.mark.parametrize("frame", ["icrs", "galactic", "fk5"])
+@pytest.mark.parametrize(
+    ("given", "missing"),
+    [("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr"), ("pm_dec_mas_yr", "pm_ra_cosdec_mas_yr")],
+)
+def test_one_proper_motion_component_is_refused(client, frame, given, missing):
+    # Taken as zero, the missing component moved the star along a direction never given
+    # (here by 14 degrees over 1,000 years), while the flag said the position was fixed.
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "parallax_mas": 10.0, given: 50000.0,
+            missing: None, "radial_velocity_km_s": 12.0}  # fmt: skip
+    body = {
+        "stars": [STAR, star],
+        "catalogue_epoch": "J2016.0",
+        "epoch": "J3016.0",
+        "frame": {"name": frame},
+    }
+    for path in ("lookup", "margins"):
+        problem = assert_problem(client.post(f"{BASE}/{path}", json=body), 422)
+        assert [e["field"] for e in problem["errors"]] == [f"stars[1].{missing}"]
+        assert given in problem["errors"][0]["message"]
+
+
+def test_one_proper_motion_component_in_columns(client):
+    body = {
+        "stars": {"ra_deg": [10.0, 11.0], "dec_deg": [20.0, 21.0],
+                  "pm_ra_cosdec_mas_yr": [5.0, 6.0], "pm_dec_mas_yr": [1.0, None]},
+        "catalogue_epoch": "J2016.0",
+        "epoch": "J2100.0",
+    }  # fmt: skip
+    assert_problem(client.post(f"{BASE}/lookup", json=body), 422, "stars.pm_dec_mas_yr[1]")
+
+
+def test_star_without_motion_at_another_epoch_is_flagged_fixed(client):
+    moving = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 5.0, "pm_dec_mas_yr": 1.0}
+    body = {"catalogue_epoch": "J2016.0", "epoch": "J50000.0"}
+    for stars, flagged in (([STAR], [True]), ([STAR, moving], [True, False])):
+        r = client.post(f"{BASE}/lookup", json=dict(body, stars=stars))
+        assert r.status_code == 200, r.json
+        got = ["proper_motion_missing" in s["flags"] for s in r.json["stars"]]
+        assert got == flagged
+        assert "proper_motion_missing" in r.json["flag_meanings"]
+    # at the catalogue epoch itself nothing was asked to move: no flag
+    r = client.post(f"{BASE}/lookup", json={"stars": [STAR], "catalogue_epoch": "J2016.0"})
+    assert r.json["stars"][0]["flags"] == []

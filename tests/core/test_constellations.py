@@ -515,6 +515,24 @@ def test_locate_moving_propagates_first():
     assert before.flags[0] & Flag.PARALLAX_MISSING
 
 
+def test_locate_moving_holds_a_star_with_half_a_proper_motion_fixed():
+    # Same star: with one component unknown it stays where it was (as its flag says), not
+    # carried across the boundary by the other component alone.
+    segs = C._segments()
+    s = np.flatnonzero((segs.kind == 0) & (np.abs(segs.c) < 0.5))[0]
+    ra_mid = 0.5 * (segs.lo[s] + segs.hi[s]) * DEG_PER_RAD
+    ra, dec = _b1875_to_icrs_deg(
+        np.array([ra_mid]), np.array([segs.c[s] * DEG_PER_RAD + 100 / 3600])
+    )
+    fixed = C.locate(ra, dec)
+    for pma in (np.nan, 7.0):
+        res = C.locate_moving(ra, dec, 10.0, pma, np.where(np.isnan(pma), -1000.0, np.nan),
+                              20.0, 2000.0, 2110.0)  # fmt: skip
+        assert res.index[0] == fixed.index[0] == segs.right[s]
+        assert res.ra_b1875_deg[0] == fixed.ra_b1875_deg[0]
+        assert res.flags[0] & Flag.PROPER_MOTION_MISSING
+
+
 # ------------------------------------------------------------------------------ crossings
 
 
