@@ -509,27 +509,49 @@ def _fk4_b1950_to_equinox(s: _State, bepoch) -> _State:
 # ---------------------------------------------------------------------------------------------
 
 
+#: Parallax that stands in for an unknown or non-positive one in the SOFA catalogue routines,
+#: arcsec (Note 1 of :func:`_erfa_args`). Any positive value gives the same directions.
+STAND_IN_PARALLAX_ARCSEC = 1.0
+
+
 def _erfa_args(s: _State):
-    """State -> SOFA catalogue arguments (rad, rad/yr as dRA/dt, arcsec, km/s)."""
-    ra, dec, px, pmra, pmdec, rv = _from_state(s)
+    """State -> SOFA catalogue arguments (rad, rad/yr as dRA/dt, arcsec, km/s).
+
+    Notes
+    -----
+    1. The whole space motion is passed, its radial part included, whether or not the
+       radial velocity or the parallax was given: a missing radial velocity is zero at the
+       epoch of the catalogue, not at B1950.0 or J2000.0, and fk425/fk524 carry the state
+       from one of those epochs to the other. The radial velocity passed is the one the
+       state's radial motion implies (zeta A / parallax). A star without a usable parallax
+       gets :data:`STAND_IN_PARALLAX_ARCSEC`: with a zero parallax fk425 and fk524 drop the
+       radial part of the motion (their "px > TINY" branch), which then moves the star
+       along another line (0.07 mas at B1950.0 for a star of 2.9 arcsec/yr whose radial
+       velocity was missing, 3 mas at 10 arcsec/yr). With a positive one the directions and
+       motions come out independent of its value; the parallax reported stays the one given.
+    """
+    ra, dec, _px, pmra, pmdec, _rv = _from_state(s)
     r = ra * RAD_PER_DEG
     d = dec * RAD_PER_DEG
     dr = pmra / MAS_PER_RAD / np.cos(d)
     dd = pmdec / MAS_PER_RAD
-    pxa = np.where(s.distant, 0.0, np.nan_to_num(px) / 1000.0)
-    v = np.where(s.distant, 0.0, np.nan_to_num(rv))
+    pxa = np.where(s.distant, STAND_IN_PARALLAX_ARCSEC, s.px_mas / 1000.0)
+    zeta = np.sum(s.w * s.p, axis=-1)  # radial motion per unit distance, 1/yr
+    v = zeta * AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD / (pxa * 1000.0)
     return r, d, dr, dd, pxa, v
 
 
 def _from_erfa(r, d, dr, dd, pxa, v, template: _State) -> _State:
-    px = np.where(template.distant, template.px_mas, pxa * 1000.0)
-    rv = np.where(template.distant | np.isnan(template.rv_km_s), template.rv_km_s, v)
+    """SOFA catalogue values -> state: the geometry from all of them (Note 1 of
+    :func:`_erfa_args`); the parallax and radial velocity reported stay unknown where the
+    template's were."""
     s, _ = _to_state(
-        r / RAD_PER_DEG, d / RAD_PER_DEG, px, dr * np.cos(d) * MAS_PER_RAD, dd * MAS_PER_RAD, rv
-    )
+        r / RAD_PER_DEG, d / RAD_PER_DEG, pxa * 1000.0, dr * np.cos(d) * MAS_PER_RAD,
+        dd * MAS_PER_RAD, v,
+    )  # fmt: skip
     s.distant = template.distant
-    s.px_mas = px
-    s.rv_km_s = rv
+    s.px_mas = np.where(template.distant, template.px_mas, pxa * 1000.0)
+    s.rv_km_s = np.where(template.distant | np.isnan(template.rv_km_s), template.rv_km_s, v)
     return s
 
 
@@ -570,7 +592,7 @@ def fk524_exact_inverse(r, d, dr, dd, pxa, v):
     Notes
     -----
     1. SOFA's ``fk524`` uses the published inverse matrix, whose rounding makes
-       ``fk524(fk425(x))`` differ from x by up to about 20 microarcseconds in position
+       ``fk524(fk425(x))`` differ from x by up to about 30 microarcseconds in position
        (measured on random stars). Two fixed-point steps x <- x + g(y) - g(f(x)), with f =
        fk425 and g = fk524, remove this, so that FK4 -> ICRS -> FK4 round trips hold to
        well below a microarcsecond.

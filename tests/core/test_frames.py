@@ -115,6 +115,43 @@ def test_fk4_to_icrs_pipeline_reproduces_fk425_test_values():
         assert g == pytest.approx(want, abs=tol)
 
 
+@pytest.mark.parametrize(
+    ("px_mas", "rv_km_s"),
+    [(10.0, np.nan), (np.nan, 0.0), (np.nan, np.nan), (0.0, np.nan), (-1.0, 5.0)],
+    ids=["rv-missing", "px-missing", "both-missing", "px-zero", "px-negative"],
+)
+def test_fk4_star_with_unknown_rv_or_parallax_matches_fk425_with_zero(px_mas, rv_km_s):
+    # A missing radial velocity is zero radial motion, and a star without a usable parallax
+    # is infinitely distant: pyerfa fk425 (run here) with v = 0, and px = 0 where the
+    # parallax is unusable, is the reference. FK4 B1950.0 at epoch B1950.0 -> ICRS, carried
+    # to J2000.0, -> FK5: fk425's J2000.0 values. A star of 2.9 arcsec/yr, whose missing
+    # radial velocity used to be dropped at J2000.0 inside the conversion: 69 microarcsec
+    # off then. Tolerance 1 microarcsecond and 1 microarcsecond/yr (measured 0.02 and
+    # below: what remains is zero radial motion in ICRS at B1950.0, where the propagation
+    # starts, against zero in FK4, which moves by its fictitious motions).
+    ra, dec, pmra, pmdec = 73.40904639733576, 42.823965981696205, -1268.43493, 2563.26020
+    c = F.convert(ra, dec, px_mas, pmra, pmdec, rv_km_s, F.JEPOCH_B1950, FK4, ICRS)
+    moved = F.propagate_uniform(
+        c.ra_deg, c.dec_deg, c.parallax_mas, c.pm_ra_cosdec_mas_yr, c.pm_dec_mas_yr,
+        c.radial_velocity_km_s, F.JEPOCH_B1950, 2000.0,
+    )  # fmt: skip
+    fk5 = F.convert(*moved[:6], 2000.0, ICRS, FK5)
+    d = np.radians(dec)
+    px_arcsec = px_mas / 1000.0 if px_mas > 0 else 0.0
+    want = erfa.fk425(np.radians(ra), d, pmra / MAS_PER_RAD / np.cos(d) * TROP,
+                      pmdec / MAS_PER_RAD * TROP, px_arcsec, 0.0)  # fmt: skip
+    got = _sofa_out(fk5)
+    cos_d = np.cos(want[1])
+    assert abs((got[0] - want[0]) * cos_d) * MAS_PER_RAD * 1e3 < 1.0
+    assert abs(got[1] - want[1]) * MAS_PER_RAD * 1e3 < 1.0
+    assert abs((got[2] - want[2]) * cos_d) * MAS_PER_RAD * 1e3 < 1.0
+    assert abs(got[3] - want[3]) * MAS_PER_RAD * 1e3 < 1.0
+    # What is reported stays what was given: unknown stays unknown.
+    assert np.isnan(c.radial_velocity_km_s) == np.isnan(rv_km_s)
+    if not px_mas > 0:
+        assert np.array_equal(c.parallax_mas, px_mas, equal_nan=True)
+
+
 def test_fk524_exact_inverse_near_sofa_test_values():
     # ERFA t_erfa_c.c, t_fk524: inputs and expected outputs (FK4 motions per tropical year).
     r2000, d2000, dr2000, dd2000, p2000, v2000 = (
