@@ -1187,9 +1187,12 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         ra = np.subtract(ins.eral * DEG_PER_RAD, ha, out=dst(5) if vector else None)
         ra -= 360.0 * np.floor(ra * (1.0 / 360.0))
         # Parallactic angle (SOFA hd2pa) from the same vector: sin q cos d = cos(phi) sin h,
-        # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h.
+        # cos q cos d = sin(phi) cos^2 d - cos(phi) sin d cos d cos h, for a unit vector. The
+        # vector is not one where refraction is held at its limit (below about 3 degrees,
+        # SOFA atioq), so the first is scaled by its length L as the second is by L^2.
+        length = np.sqrt(h2 + v2 * v2)
         pa = np.multiply(
-            np.arctan2(-cp * yaeo, sp * h2 - cp * v2 * v0),
+            np.arctan2(-cp * yaeo * length, sp * h2 - cp * v2 * v0),
             DEG_PER_RAD,
             out=dst(6) if vector else None,
         )
@@ -1560,7 +1563,11 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
         tmp *= 360.0
         ra -= tmp
         # Parallactic angle (SOFA hd2pa) from the same vector, as in :func:`_chain`.
+        np.multiply(v2, v2, out=tmp2)
+        tmp2 += h2
+        np.sqrt(tmp2, out=tmp2)  # length of the vector
         np.multiply(yo, -cp, out=tmp)
+        tmp *= tmp2
         np.multiply(h2, sp, out=tmp2)
         tmp2 -= np.multiply(np.multiply(v2, cp, out=v2), v0, out=v2)
         pa = np.arctan2(tmp, tmp2, out=out[6])

@@ -82,6 +82,34 @@ def test_observed_place_matches_sofa_atco13():
     assert res.parallactic_angle_deg / DEG == pytest.approx(q, abs=1e-12)
 
 
+def test_parallactic_angle_is_hd2pa_of_the_observed_place_near_the_horizon():
+    # pyerfa hd2pa on the answer's own observed hour angle and declination, for stars from
+    # 10 degrees below to 10 above the horizon: below about 3 degrees SOFA atioq holds the
+    # refraction at its limit and its observed vector is no longer a unit vector, which
+    # used to turn the angle by up to 0.01 degree (0.05 degree below the horizon). Both
+    # paths: many stars at one instant, and one star at many instants. Tolerance 1e-9 deg.
+    site = O.make_site(45.0, 0.0, 0.0)
+    atm = O.make_atmosphere(1013.25, 10.0, 0.5, 0.55)
+    jd1, jd2 = erfa.dtf2d("UTC", 2020, 3, 20, 12, 0, 0.0)
+    eop = (0.1, 0.1, 0.3)
+    # Stars on the celestial equator: at this site and instant they span the horizon.
+    ra = np.linspace(0.0, 360.0, 1441)[:-1]
+    res = O.observed_places(ra, 0.0, np.nan, 0.0, 0.0, np.nan, 2020.0, jd1, jd2, site, atm,
+                            eop_values=eop)  # fmt: skip
+    near = np.abs(res.altitude_deg) < 10.0
+    assert near.sum() > 50 and (res.altitude_deg[near] < 2.0).sum() > 20
+    q = erfa.hd2pa(res.hour_angle_deg / DEG, res.observed_dec_deg / DEG, np.radians(45.0))
+    assert np.max(np.abs(res.parallactic_angle_deg - q * DEG)[near]) < 1e-9
+    # One star along a track of instants through its setting.
+    k = np.flatnonzero(near)[0]
+    minutes = np.arange(-60.0, 60.0, 2.0)
+    track = O.observed_places(ra[k], 0.0, np.nan, 0.0, 0.0, np.nan, 2020.0, jd1,
+                              jd2 + minutes / 1440.0, site, atm, eop_values=eop)  # fmt: skip
+    q = erfa.hd2pa(track.hour_angle_deg / DEG, track.observed_dec_deg / DEG, np.radians(45.0))
+    assert np.min(track.altitude_deg) < 2.0 < np.max(track.altitude_deg)
+    assert np.max(np.abs(track.parallactic_angle_deg - q * DEG)) < 1e-9
+
+
 def _utc_for_tt(tt1, tt2):
     tai1, tai2 = erfa.tttai(tt1, tt2)
     return erfa.taiutc(tai1, tai2)
