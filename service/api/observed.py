@@ -62,7 +62,7 @@ PLACE_FIELDS = {
     "observed_dec_deg": "deg, observed declination",
     "observed_ra_cio_deg": "deg, observed right ascension referred to the CIO",
     "parallactic_angle_deg": "deg (IAU SOFA hd2pa convention)",
-    "airmass": "dimensionless, Young (1994); null below the horizon",
+    "airmass": "dimensionless, Young (1994); null below the geometric (unrefracted) horizon",
     "refraction_arcsec": "arcsec, unrefracted minus observed zenith distance",
     "sun_separation_deg": "deg, target to the Sun's centre (advisory)",
     "astrometric_ra_deg": "deg, geocentric astrometric place (ICRS)",
@@ -86,6 +86,10 @@ FLAG_MEANINGS = {
     "leap_seconds_extrapolated": "Instant beyond the leap-second table: TAI-UTC taken as its "
     "last value.",
     "airmass_undefined": "Target below the geometric horizon: no airmass.",
+    "refraction_uncertain": "Observed altitude below 5 deg with refraction on: the "
+    "refraction model (SOFA atioq) is good to 30 arcsec at 5 deg and only to about 20 "
+    "arcmin at the horizon, and is held at its 2.9 deg value below that. Altitude, hour "
+    "angle and declination there are uncertain by as much.",
 }
 
 
@@ -169,7 +173,8 @@ def site_field_to_openapi(self, field, **kwargs) -> dict:
 class AtmosphereSchema(ma.Schema):
     pressure_hpa = _num(
         "Air pressure at the site, hPa. Null or absent: estimated from the site height with "
-        "the US Standard Atmosphere 1976. 0 turns refraction off.",
+        "the US Standard Atmosphere 1976 (the height taken as geopotential height, as that "
+        "standard defines it). 0 turns refraction off.",
         lo=core.PRESSURE_RANGE_HPA[0],
         hi=core.PRESSURE_RANGE_HPA[1],
         error="must be between {min:g} and {max:g} hPa (not pascals: 101325 Pa is 1013.25 hPa)",

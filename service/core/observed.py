@@ -166,6 +166,9 @@ class ObservedFlag(enum.IntFlag):
     LEAP_SECONDS_EXTRAPOLATED = 512
     #: Target below the geometric horizon: airmass undefined (NaN).
     AIRMASS_UNDEFINED = 1024
+    #: Refraction on and the observed altitude below REFRACTION_UNCERTAIN_BELOW_DEG, where
+    #: the refraction model is good only to arcminutes (SOFA atioq, Note 2).
+    REFRACTION_UNCERTAIN = 2048
 
 
 # Plain-int copies of the flag bits for the inner loops (enum attribute access is slow).
@@ -176,6 +179,15 @@ _F_MISSING_PROPER_MOTION = int(ObservedFlag.PROPER_MOTION_MISSING)
 _F_BELOW_HORIZON_LIMIT = int(ObservedFlag.BELOW_HORIZON_LIMIT)
 _F_WITHIN_SUN_AVOIDANCE = int(ObservedFlag.WITHIN_SUN_AVOIDANCE)
 _F_AIRMASS_UNDEFINED = int(ObservedFlag.AIRMASS_UNDEFINED)
+_F_REFRACTION_UNCERTAIN = int(ObservedFlag.REFRACTION_UNCERTAIN)
+
+#: Observed altitude (deg) below which refraction is flagged uncertain. SOFA atioq (Note 2)
+#: states the A tan z + B tan^3 z model good to 0.05 arcsec (optical) below 70 deg zenith
+#: distance, 30 arcsec at 85 deg and only 20 arcmin (optical) or 30 arcmin (radio) at the
+#: horizon; below about 2.9 deg altitude it holds the refraction at its value there
+#: (sin(altitude) floored at 0.05), some 18 arcmin short of Bennett's (1982) formula at
+#: 0.5 deg.
+REFRACTION_UNCERTAIN_BELOW_DEG = 5.0
 
 
 class EarthOrientationStatus(enum.IntEnum):
@@ -1218,6 +1230,7 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         (alt < horizon_limit, _F_BELOW_HORIZON_LIMIT),
         (sep < avoidance, _F_WITHIN_SUN_AVOIDANCE),
         (zaet < 0.0, _F_AIRMASS_UNDEFINED),
+        ((alt < REFRACTION_UNCERTAIN_BELOW_DEG) & (ins.refa != 0.0), _F_REFRACTION_UNCERTAIN),
     )
     return az, zd, alt, ha, dec, ra, pa, airmass, refraction, sep, flags
 
@@ -1597,7 +1610,7 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     sep *= 2.0 * DEG_PER_RAD
     np.multiply(dl, _ARCSEC_PER_RAD, out=out[8])
 
-    # Flags: bits 0-7 gathered in a uint8 row, bit 10 written into the second byte.
+    # Flags: bits 0-7 gathered in a uint8 row, bits 10 and 11 written into the second byte.
     horizon_limit, avoidance = limits
     bits, tmp8 = ws.u8
     np.left_shift(
@@ -1633,6 +1646,11 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     np.copyto(flags, bits)
     byte1 = flags.view(np.uint8)[_FLAG_BYTE1::4]
     np.left_shift(below.view(np.uint8), _bit_index(_F_AIRMASS_UNDEFINED) - 8, out=byte1)
+    if ins.refa != 0.0:
+        low = np.less(alt, REFRACTION_UNCERTAIN_BELOW_DEG, out=ws.mask[2])
+        byte1 |= np.left_shift(
+            low.view(np.uint8), _bit_index(_F_REFRACTION_UNCERTAIN) - 8, out=tmp8
+        )
 
 
 # ---------------------------------------------------------------------------------------------

@@ -207,6 +207,21 @@ def test_track_of_one_star_over_many_instants(client, observed_example):
     assert one["stars"][0]["at_instants"][0]["altitude_deg"] == pytest.approx(alts[3], abs=1e-9)
 
 
+def test_low_altitudes_flag_refraction_uncertain_with_its_meaning(client, observed_example):
+    # A demo star over a day: the instants where it is observed below 5 deg carry the flag
+    # (SOFA atioq Note 2: refraction good only to arcminutes near the horizon), no others.
+    instants = [f"2026-12-0{2 + m // 1440}T{m // 60 % 24:02d}:{m % 60:02d}:00Z"
+                for m in range(0, 1440, 20)]  # fmt: skip
+    body = dict(observed_example, stars=observed_example["stars"][:1], instants=instants)
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200
+    at = r.json["stars"][0]["at_instants"]
+    low = [a["altitude_deg"] < 5.0 for a in at]
+    assert any(low) and not all(low)
+    assert [("refraction_uncertain" in a["flags"]) for a in at] == low
+    assert "arcmin" in r.json["flag_meanings"]["refraction_uncertain"]
+
+
 def test_inline_site_pressure_zero_and_fk4_input(client, observed_example):
     body = dict(
         observed_example,

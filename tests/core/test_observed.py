@@ -110,6 +110,30 @@ def test_parallactic_angle_is_hd2pa_of_the_observed_place_near_the_horizon():
     assert np.max(np.abs(track.parallactic_angle_deg - q * DEG)) < 1e-9
 
 
+def test_refraction_flagged_uncertain_below_5_degrees_only_when_on():
+    # SOFA atioq Note 2: the refraction model is good to 30 arcsec at 85 deg zenith distance
+    # and only to about 20 arcmin at the horizon. Both paths (stars at one instant, one
+    # star at many instants); no flag when refraction is off (pressure 0).
+    site = O.make_site(45.0, 0.0, 0.0)
+    jd1, jd2 = erfa.dtf2d("UTC", 2020, 3, 20, 12, 0, 0.0)
+    ra = np.linspace(0.0, 360.0, 721)[:-1]
+    bit = int(O.ObservedFlag.REFRACTION_UNCERTAIN)
+    minutes = np.arange(-90.0, 90.0, 3.0)
+    for pressure, expect_any in ((1013.25, True), (0.0, False)):
+        atm = O.make_atmosphere(pressure, 10.0, 0.5, 0.55)
+        res = O.observed_places(ra, 0.0, np.nan, 0.0, 0.0, np.nan, 2020.0, jd1, jd2, site,
+                                atm, eop_values=(0.0, 0.0, 0.0))  # fmt: skip
+        low = res.altitude_deg < O.REFRACTION_UNCERTAIN_BELOW_DEG
+        assert np.array_equal((res.flags & bit) != 0, low & expect_any)
+        k = np.flatnonzero(np.abs(res.altitude_deg) < 3.0)[0]
+        track = O.observed_places(ra[k], 0.0, np.nan, 0.0, 0.0, np.nan, 2020.0, jd1,
+                                  jd2 + minutes / 1440.0, site, atm,
+                                  eop_values=(0.0, 0.0, 0.0))  # fmt: skip
+        low = track.altitude_deg < O.REFRACTION_UNCERTAIN_BELOW_DEG
+        assert low.any() and not low.all()
+        assert np.array_equal((track.flags & bit) != 0, low & expect_any)
+
+
 def _utc_for_tt(tt1, tt2):
     tai1, tai2 = erfa.tttai(tt1, tt2)
     return erfa.taiutc(tai1, tai2)
