@@ -239,12 +239,29 @@ def flag_warnings(masks, table, texts: dict) -> list[dict]:
 class StrictFloat(ma.fields.Float):
     """A JSON number only: marshmallow's Float would also read the string "12.5"."""
 
-    default_error_messages = {"invalid": "must be a number (in a JSON body: not in quotes)"}
+    default_error_messages = {
+        "invalid": "must be a number: in a JSON body without quotes, in a query string an "
+        "ASCII decimal such as 0.5 or 2e-3"
+    }
 
     def _deserialize(self, value, attr, data, **kwargs):
         if not isinstance(value, int | float) or isinstance(value, bool):
             raise self.make_error("invalid")
         return super()._deserialize(value, attr, data, **kwargs)
+
+
+class QueryFloat(ma.fields.Float):
+    """A number in a query string: an ASCII decimal ("0.5", "-2e3") only. marshmallow's
+    Float would also read "1_000", "nan", "infinity" and digits of other scripts."""
+
+    default_error_messages = {
+        "invalid": "must be a number written as an ASCII decimal, such as 0.5 or 2e-3"
+    }
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if not isinstance(value, str) or not csvio.NUMBER_TEXT.match(value.strip()):
+            raise self.make_error("invalid")
+        return super()._deserialize(value.strip(), attr, data, **kwargs)
 
 
 class StrictBoolean(ma.fields.Boolean):

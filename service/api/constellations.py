@@ -5,7 +5,7 @@ from __future__ import annotations
 import erfa
 import marshmallow as ma
 import numpy as np
-from flask import current_app
+from flask import current_app, request
 from flask_smorest import abort
 
 from ..core import constellations as core
@@ -16,6 +16,7 @@ from .common import (
     Blueprint,
     EpochField,
     EpochOutSchema,
+    QueryFloat,
     StrictFloat,
     epochs_out,
     number_field,
@@ -256,7 +257,7 @@ class OutlineQuerySchema(ma.Schema):
         validate=ma.validate.OneOf(core.REDUCTIONS),
         metadata={"description": REDUCTION_DESCRIPTION},
     )
-    tolerance_arcsec = ma.fields.Float(
+    tolerance_arcsec = QueryFloat(
         load_default=core.DEFAULT_OUTLINE_TOLERANCE_ARCSEC,
         validate=ma.validate.Range(min=0.001, max=60.0),
         metadata={
@@ -533,6 +534,14 @@ def list_constellations():
     Abbreviation, name and solid angle (from the boundary table at B1875.0) of each, in
     alphabetical order of abbreviation. Use the abbreviations with the outline endpoint.
     """
+    if request.args:  # no options here: a misspelt one must not pass unnoticed
+        abort(
+            422,
+            errors=[
+                {"field": key, "message": "is not a field of this request (it takes none)"}
+                for key in request.args
+            ],
+        )
     items = core.constellation_list()
     return {"count": len(items), "constellations": items}
 
@@ -686,6 +695,10 @@ def _outline_options(args):
                 422,
                 errors=[{"field": "equinox", "message": "only for frame fk5 or fk4"}],
             )
+        try:  # the range every frame with an equinox takes (core.frames.make_frame)
+            core_frames.make_frame(frame, equinox)
+        except ValueError as exc:
+            abort(422, errors=[{"field": "equinox", "message": str(exc).removeprefix("equinox ")}])
     return {
         "frame": frame,
         "equinox": equinox,

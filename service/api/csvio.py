@@ -165,8 +165,11 @@ def _option_values(schema, req_args, exclude: str) -> dict:
         base, _, rest = key.partition(".")
         fld = schema.fields.get(base)
         if base == exclude:
-            data[key] = req_args.get(key)  # reported as unknown by the schema
-            continue
+            abort(
+                422,
+                errors=[{"field": key, "message": "the body is the star table; give no "
+                         f"{exclude} in the query string"}],
+            )  # fmt: skip
         if rest and isinstance(fld, ma.fields.Nested):
             nested = data.setdefault(base, {})
             if isinstance(nested, dict):
@@ -199,13 +202,14 @@ def _typed(fld, value):
     # "infinity" and other scripts' digits, and str.isdigit() takes "¹", which int() refuses.
     if isinstance(fld, ma.fields.Integer) and _INTEGER_TEXT.match(text):
         return int(text)
-    if isinstance(fld, ma.fields.Float) and _NUMBER_TEXT.match(text):
+    if isinstance(fld, ma.fields.Float) and NUMBER_TEXT.match(text):
         return float(text)
     return value
 
 
 _INTEGER_TEXT = re.compile(r"[+-]?[0-9]+\Z")
-_NUMBER_TEXT = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
+#: A decimal number as query options and CSV cells write it (ASCII digits only).
+NUMBER_TEXT = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
 
 
 def _json_or_text(value: str):

@@ -68,6 +68,7 @@ _STOCK_MESSAGES = {
     "Not a valid list.": "must be a list",
     "Invalid input type.": "must be an object",
     "Shorter than minimum length 1.": "must have at least one entry",
+    "Special numeric values (nan or infinity) are not permitted.": "must be a finite number",
 }
 
 
@@ -79,6 +80,7 @@ _RANGE_MESSAGE = re.compile(
     r"(?: and )?(?:(?P<hi_op>less than(?: or equal to)?) (?P<hi>\S+?))?\.",
 )
 _ONE_OF_MESSAGE = re.compile(r"Must be one of: (?P<choices>.*)\.")
+_LENGTH_MESSAGE = re.compile(r"Length must be (?P<n>\d+)\.")
 _OPERATORS = {
     "greater than or equal to": ">=",
     "greater than": ">",
@@ -106,6 +108,9 @@ def _worded(message: str) -> str:
     m = _ONE_OF_MESSAGE.fullmatch(message)
     if m:
         return f"must be one of: {m['choices']}"
+    m = _LENGTH_MESSAGE.fullmatch(message)
+    if m:
+        return f"must have exactly {m['n']} entries"
     return message
 
 

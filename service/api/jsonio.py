@@ -123,6 +123,8 @@ class BodyParser(FlaskParser):
             from .arrowio import load_arrow_request
 
             return load_arrow_request(req, schema)
+        if req.args:
+            refuse_query_options(req.args)
         return super().load_json(req, schema)
 
     def load_querystring(self, req, schema):
@@ -142,6 +144,23 @@ class BodyParser(FlaskParser):
             # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
             # are not UTF-8, so it is never passed on empty.
             raise json.JSONDecodeError(str(exc), exc.doc or "(body)", exc.pos or 0) from None
+
+
+def refuse_query_options(args) -> None:
+    """422 naming each query parameter sent beside a JSON body: only CSV and Arrow bodies
+    take their options from the query string, so ``?model=light_time`` would otherwise be
+    ignored without a word and the default used."""
+    abort(
+        422,
+        errors=[
+            {
+                "field": key,
+                "message": "query options are read only with a text/csv or Arrow body; "
+                "with a JSON body give it in the body",
+            }
+            for key in args
+        ],
+    )
 
 
 def refuse_repeated_options(schema, args) -> None:

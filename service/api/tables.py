@@ -261,17 +261,32 @@ def _csv_number_column(cells: list, spec: ColumnSpec, errors: TableErrors) -> np
     empty = np.fromiter((c == "" for c in cells), dtype=bool, count=len(cells))
     filled = ["nan" if e else c for e, c in zip(empty, cells, strict=True)]
     not_number = np.zeros(len(cells), dtype=bool)
+    text = "".join(cells)
+    if not text.isascii() or "_" in text:
+        # float() would read "1_000" and other scripts' digits ("٣٥", "３"): refused.
+        odd = np.fromiter(
+            (not c.isascii() or "_" in c for c in cells), dtype=bool, count=len(cells)
+        )
+        errors.add_indices(
+            np.flatnonzero(odd),
+            spec.name,
+            "must be a number written with ASCII digits and no underscores",
+        )
+        not_number |= odd
+        filled = ["nan" if o else c for o, c in zip(odd, filled, strict=True)]
     try:
         arr = np.asarray(filled, dtype=float)
     except (ValueError, OverflowError):
         arr = np.full(len(cells), np.nan)
+        unreadable = np.zeros(len(cells), dtype=bool)
         for i, c in enumerate(filled):
             try:
                 arr[i] = float(c)
             except ValueError:
                 not_number[i] = True
+                unreadable[i] = True
         errors.add_indices(
-            np.flatnonzero(not_number),
+            np.flatnonzero(unreadable),
             spec.name,
             "must be a number (in the unit of the column name)",
         )

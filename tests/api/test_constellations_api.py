@@ -336,3 +336,8 @@ def test_star_without_motion_at_another_epoch_is_flagged_fixed(client):
     # at the catalogue epoch itself nothing was asked to move: no flag
     r = client.post(f"{BASE}/lookup", json={"stars": [STAR], "catalogue_epoch": "J2016.0"})
     assert r.json["stars"][0]["flags"] == []
+
+
+def test_list_takes_no_options(client):
+    assert_problem(client.get(f"{BASE}?layout=columns"), 422, "layout")
+    assert client.get(BASE).status_code == 200

@@ -129,6 +129,18 @@ def test_bad_cell_reported_with_its_line(client):
     assert problem_fields(r) == [("line 7: dec_deg", "must be between -90 and 90")]
 
 
+def test_cells_with_other_digits_or_underscores_are_refused(client):
+    # Python's float() reads "2_0" as 20, the Arabic-Indic "٣٥" as 35 and the full-width
+    # "３" as 3: a CSV cell must be written in ASCII digits, as JSON numbers are.
+    body = HEADER + "\nA,10,5,,1,1,\nB,\u0663\u0665,2_0,,\uff13,1,\nC,10,5,,1,1,\n"
+    message = "must be a number written with ASCII digits and no underscores"
+    assert problem_fields(post_csv(client, body)) == [
+        ("line 3: ra_deg", message),
+        ("line 3: dec_deg", message),
+        ("line 3: pm_ra_cosdec_mas_yr", message),
+    ]
+
+
 def test_line_numbers_count_blank_lines_and_errors_come_in_file_order(client):
     body = "\n".join([HEADER, "A,10,5,,1,1,", "", "B,x,5,,1,1,", "C,10,-91,,1,1,9e9"]) + "\n"
     fields = problem_fields(post_csv(client, body))
@@ -315,3 +327,24 @@ def test_every_table_endpoint_takes_and_gives_csv(client):
         rows = rows_of(out.get_data(as_text=True))
         assert {int(row["index"]) for row in rows} == set(range(len(reference["stars"])))
         assert [row["id"] for row in rows][:1] == [str(reference["stars"][0]["id"])]
+
+
+@pytest.mark.parametrize("text", ["%D9%A0.%D9%A0%D9%A0%D9%A1", "0.00_1", "nan", "%EF%BC%91"])
+def test_numeric_get_options_are_ascii_decimals(client, text):
+    r = client.get(f"/v1/constellations/Ori/outline?tolerance_arcsec={text}")
+    assert problem_fields(r) == [
+        ("tolerance_arcsec", "must be a number written as an ASCII decimal, such as 0.5 or 2e-3")
+    ]
+    assert client.get("/v1/constellations/Ori/outline?tolerance_arcsec=%200.5").status_code == 200
+
+
+@pytest.mark.parametrize("equinox", ["-5000", "1", "B3001"])
+def test_outline_equinox_within_the_range_frames_take(client, equinox):
+    r = client.get(f"/v1/constellations/Ori/outline?frame=fk4&equinox={equinox}")
+    assert problem_fields(r) == [("equinox", "must be between 1000 and 3000")]
+
+
+def test_star_table_in_the_query_beside_a_csv_body_is_refused(client):
+    body = HEADER + "\nA,10,5,,1,1,\n"
+    fields = problem_fields(post_csv(client, body, QUERY + "&stars=x"))
+    assert [f for f, _ in fields] == ["stars"]

@@ -318,7 +318,11 @@ def test_site_coordinate_must_be_a_json_number(client, observed_example, key, va
     r = client.post(OBS, json=dict(observed_example, site=site))
     assert_problem(r, 422, f"site.{key}")
     assert r.json["errors"] == [
-        {"field": f"site.{key}", "message": "must be a number (in a JSON body: not in quotes)"}
+        {
+            "field": f"site.{key}",
+            "message": "must be a number: in a JSON body without quotes, in a query string "
+            "an ASCII decimal such as 0.5 or 2e-3",
+        }
     ]
 
 

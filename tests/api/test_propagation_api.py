@@ -336,6 +336,25 @@ def test_unknown_field_is_named(client):
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
 
 
+@pytest.mark.parametrize(
+    ("url", "query"),
+    [
+        (URL, "model=light_time&bogus=1"),
+        ("/v1/velocity", "relative_to_lsr=true"),
+        ("/v1/observed", "site=nowhere"),
+        ("/v1/constellations/lookup", "reduction=fk5"),
+    ],
+)
+def test_query_options_beside_a_json_body_are_refused(client, url, query):
+    # Only CSV and Arrow bodies take options from the query string; beside a JSON body they
+    # were ignored, so ?model=light_time gave the standard model without a word.
+    r = client.post(f"{url}?{query}", json=dict(BASE, stars=[STAR]))
+    fields = [k.partition("=")[0] for k in query.split("&")]
+    answer = assert_problem(r, 422)
+    assert [e["field"] for e in answer["errors"]] == fields
+    assert "text/csv or Arrow body" in answer["errors"][0]["message"]
+
+
 def test_batch_over_the_configured_limit(client, settings):
     cols = {k: [v] * (settings.max_stars + 1) for k, v in STAR.items()}
     assert_problem(post(client, dict(BASE, stars=cols)), 413, "stars")
