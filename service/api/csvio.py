@@ -170,12 +170,19 @@ def _option_values(schema, req_args, exclude: str) -> dict:
                 errors=[{"field": key, "message": "the body is the star table; give no "
                          f"{exclude} in the query string"}],
             )  # fmt: skip
-        if rest and isinstance(fld, ma.fields.Nested):
+        members = (
+            fld.schema.fields
+            if isinstance(fld, ma.fields.Nested)
+            else getattr(fld, "member_fields", None)  # an object field of its own kind
+        )
+        if rest and members is not None:
             nested = data.setdefault(base, {})
-            if isinstance(nested, dict):
-                inner = fld.schema.fields.get(rest)
-                nested[rest] = _typed(inner, _json_or_text(req_args.get(key)))
+            if not isinstance(nested, dict):
+                _given_both_ways(base)
+            nested[rest] = _typed(members.get(rest), _json_or_text(req_args.get(key)))
             continue
+        if not rest and isinstance(data.get(base), dict):
+            _given_both_ways(base)
         if isinstance(fld, ma.fields.List):
             items = []
             for value in req_args.getlist(key):
@@ -187,6 +194,19 @@ def _option_values(schema, req_args, exclude: str) -> dict:
             continue
         data[key] = _typed(fld, _json_or_text(req_args.get(key)))
     return data
+
+
+def _given_both_ways(base: str) -> None:
+    abort(
+        422,
+        errors=[
+            {
+                "field": base,
+                "message": f"given both whole ({base}=...) and by members ({base}.<member>=...); "
+                "give one",
+            }
+        ],
+    )
 
 
 def _typed(fld, value):

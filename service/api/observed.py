@@ -128,6 +128,14 @@ _SITE_COORDINATE = StrictFloat(allow_none=True)
 class SiteField(ma.fields.Field):
     """A site: a configured name, or an object with latitude, longitude and height."""
 
+    #: The members of the object form, for query strings (``site.latitude_deg=...``).
+    member_fields = {
+        "latitude_deg": _SITE_COORDINATE,
+        "longitude_deg": _SITE_COORDINATE,
+        "height_m": _SITE_COORDINATE,
+        "name": ma.fields.String(),
+    }
+
     def __init__(self, **kwargs):
         kwargs.setdefault("metadata", {})
         kwargs["metadata"].setdefault(

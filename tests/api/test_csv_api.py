@@ -348,3 +348,19 @@ def test_star_table_in_the_query_beside_a_csv_body_is_refused(client):
     body = HEADER + "\nA,10,5,,1,1,\n"
     fields = problem_fields(post_csv(client, body, QUERY + "&stars=x"))
     assert [f for f, _ in fields] == ["stars"]
+
+
+def test_site_by_dotted_members_in_the_query(client):
+    # The OpenAPI document and this README describe objects in the query string by dotted
+    # names; the site (a name or an object) used to be refused that way.
+    body = (HEADER + "\nA,10,20,,1,1,\n").encode()
+    base = "/v1/observed?catalogue_epoch=J2016&instants=2026-12-02T22:30:00Z&"
+    dotted = "site.latitude_deg=38.4127&site.longitude_deg=-7.6543&site.height_m=1460"
+    r = client.post(base + dotted, data=body, content_type="text/csv")
+    assert r.status_code == 200, r.get_json()
+    named = client.post(base + "site=kestrel-ridge", data=body, content_type="text/csv")
+    a, b = r.json["stars"][0]["at_instants"][0], named.json["stars"][0]["at_instants"][0]
+    assert a["azimuth_deg"] == b["azimuth_deg"] and a["altitude_deg"] == b["altitude_deg"]
+    both = client.post(base + "site=kestrel-ridge&site.height_m=1", data=body,
+                       content_type="text/csv")  # fmt: skip
+    assert [f for f, _ in problem_fields(both)] == ["site"]
