@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import marshmallow as ma
 from flask import Response, request
 from flask_smorest import abort
@@ -36,11 +38,23 @@ def _format_field():
     )
 
 
+#: Control characters other than the line feed (which breaks a title into lines), and
+#: U+FFFE, U+FFFF: XML 1.0 cannot write most of them, so the SVG would be unreadable, and
+#: the fonts have no glyph for the others (tab, carriage return, DEL, C1 controls).
+_NOT_XML = re.compile("[\x00-\x09\x0b-\x1f\x7f-\x9f\ufffe\uffff]")
+_NOT_XML_MESSAGE = "must not contain control characters (they cannot be written in SVG)"
+
+
+def _drawable(text: str) -> None:
+    if _NOT_XML.search(text):
+        raise ma.ValidationError(_NOT_XML_MESSAGE)
+
+
 def _title_field():
     return ma.fields.String(
         load_default=None,
         allow_none=True,
-        validate=ma.validate.Length(max=120),
+        validate=[ma.validate.Length(max=120), _drawable],
         metadata={"description": "Chart title (default: a description of the chart)."},
     )
 
@@ -124,9 +138,14 @@ def _labels(table) -> list[str]:
     if table.ids is None:
         return [f"star {k}" for k in range(table.size)]
     # An empty id labels nothing: such stars are named by their index, as stars without one.
-    return [
+    labels = [
         f"star {k}" if v is None or not str(v).strip() else str(v) for k, v in enumerate(table.ids)
     ]
+    bad = [k for k, text in enumerate(labels) if _NOT_XML.search(text)]
+    if bad:
+        abort(422, errors=[{"field": table.path(k, "id"), "message": _NOT_XML_MESSAGE}
+                           for k in bad])  # fmt: skip
+    return labels
 
 
 def _image(data: bytes, image_format: str) -> Response:

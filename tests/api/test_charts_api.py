@@ -135,3 +135,22 @@ def test_openapi_shows_images_not_csv(client):
     content = op["responses"]["200"]["content"]
     assert set(content) == {"image/svg+xml", "image/png"}
     assert "text/csv" in op["requestBody"]["content"]
+
+
+@pytest.mark.parametrize("text", ["a\u0001b", "\u0000x", "\u001b[31mred", "a\tb", "a\x85b"])
+def test_control_characters_cannot_reach_the_svg(client, track_body, demo_catalogue, text):
+    # XML 1.0 has no way to write them: the SVG was answered 200 and no XML parser (nor
+    # browser) would read it. Refused by name; a line feed (a title on two lines) is fine.
+    message = "must not contain control characters (they cannot be written in SVG)"
+    r = client.post("/v1/charts/track", json=dict(track_body, title=text))
+    assert [(e["field"], e["message"]) for e in r.json["errors"]] == [("title", message)]
+    star = dict(track_body["stars"][0], id=text)
+    r = client.post("/v1/charts/track", json=dict(track_body, stars=[star]))
+    assert [(e["field"], e["message"]) for e in r.json["errors"]] == [("stars[0].id", message)]
+    field = {"stars": demo_catalogue["stars"][:3], "catalogue_epoch": "J2016.0",
+             "epochs": ["J2016.0", "J3016.0"]}  # fmt: skip
+    r = client.post("/v1/charts/field", json=dict(field, title=text))
+    assert r.status_code == 422 and r.json["errors"][0]["field"] == "title"
+    ok = client.post("/v1/charts/track", json=dict(track_body, title="two\nlines"))
+    assert ok.status_code == 200
+    ET.fromstring(ok.data)  # well-formed
