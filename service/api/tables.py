@@ -91,14 +91,15 @@ class ColumnSpec:
 
     def range_text(self) -> str:
         if self.lo is not None and self.hi is not None:
+            lo_text, hi_text = _bound_text(self.lo), _bound_text(self.hi)
             if self.lo_inclusive and self.hi_inclusive:
-                return f"must be between {self.lo:g} and {self.hi:g}"
+                return f"must be between {lo_text} and {hi_text}"
             lo = ">=" if self.lo_inclusive else ">"
             hi = "<=" if self.hi_inclusive else "<"
-            return f"must be {lo} {self.lo:g} and {hi} {self.hi:g}"
+            return f"must be {lo} {lo_text} and {hi} {hi_text}"
         if self.lo is not None:
-            return f"must be {'>=' if self.lo_inclusive else '>'} {self.lo:g}"
-        return f"must be {'<=' if self.hi_inclusive else '<'} {self.hi:g}"
+            return f"must be {'>=' if self.lo_inclusive else '>'} {_bound_text(self.lo)}"
+        return f"must be {'<=' if self.hi_inclusive else '<'} {_bound_text(self.hi)}"
 
 
 @dataclass
@@ -525,6 +526,28 @@ class StarTableField(ma.fields.Field):
 
     def _unknown_text(self) -> str:
         return "unknown field; accepted fields: " + ", ".join(s.name for s in self.specs)
+
+
+def range_bounds_to_openapi(self, field, ret=None, **kwargs) -> dict:
+    """apispec attribute function: an exclusive Range bound as JSON Schema's
+    exclusiveMinimum/exclusiveMaximum (apispec writes every bound as inclusive)."""
+    if ret is None or ("minimum" not in ret and "maximum" not in ret):
+        return {}
+    spec = ColumnSpec.from_field("", field)
+    out = {}
+    if spec.lo is not None and not spec.lo_inclusive and "minimum" in ret:
+        ret.pop("minimum")
+        out["exclusiveMinimum"] = spec.lo
+    if spec.hi is not None and not spec.hi_inclusive and "maximum" in ret:
+        ret.pop("maximum")
+        out["exclusiveMaximum"] = spec.hi
+    return out
+
+
+def _bound_text(value: float) -> str:
+    """A bound in the fewest digits that still give its value (299792.458, not 299792)."""
+    text = f"{value:g}"
+    return text if float(text) == value else repr(float(value))
 
 
 def table_field_to_openapi(self, field, **kwargs) -> dict:

@@ -379,3 +379,17 @@ def test_record_that_is_not_an_object(client):
 
 def test_invalid_model(client):
     assert_problem(post(client, dict(BASE, stars=[STAR], model="warp")), 422, "model")
+
+
+def test_exclusive_bounds_printed_in_full_and_marked_exclusive(client):
+    # The speed of light is excluded (c = 299792.458 km/s exactly, by the SI definition of
+    # the metre, CGPM 1983): the message used to round it to 299792 (while 299792.3 was
+    # accepted) and the OpenAPI document called it an inclusive maximum.
+    star = dict(STAR, radial_velocity_km_s=299792.458)
+    answer = assert_problem(post(client, dict(BASE, stars=[star])), 422)
+    assert answer["errors"] == [{"field": "stars[0].radial_velocity_km_s",
+                                 "message": "must be > -299792.458 and < 299792.458"}]  # fmt: skip
+    spec = client.get("/openapi.json").json["components"]["schemas"]
+    rv = spec["StarAstrometry"]["properties"]["radial_velocity_km_s"]
+    assert rv["exclusiveMaximum"] == 299792.458 and rv["exclusiveMinimum"] == -299792.458
+    assert "maximum" not in rv and "minimum" not in rv
