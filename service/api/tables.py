@@ -43,6 +43,11 @@ DEFAULT_MAX_ABS_VALUE = 1e10
 #: observable universe (common practice), with the same purpose.
 MAX_DISTANCE_PC = 1e10
 
+#: Smallest distance accepted, pc: 1e-7 pc (0.02 au), the distance of the largest parallax
+#: accepted (MAX_ABS_MAS). Nearer, 1000/distance overflows for the smallest doubles and
+#: the proper motions that follow are infinite.
+MIN_DISTANCE_PC = 1e-7
+
 #: At most this many individual field errors are listed in one problem response.
 MAX_LISTED_ERRORS = 50
 

@@ -36,7 +36,7 @@ from .common import (
     number_field,
 )
 from .examples import load_example
-from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, StarTableField
+from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC, StarTableField
 
 blp = Blueprint(
     "velocity",
@@ -95,10 +95,9 @@ _VELOCITY_STAR_FIELDS = {
     ),
     "distance_pc": _num(
         "Distance, pc, when you have a better one than 1/parallax (e.g. a prior-based "
-        "estimate). Replaces the parallax where given. Must be positive.",
-        lo=0.0,
+        "estimate). Replaces the parallax where given.",
+        lo=MIN_DISTANCE_PC,
         hi=MAX_DISTANCE_PC,
-        min_inclusive=False,
     ),
     "pm_ra_cosdec_mas_yr": _num(
         "Proper motion in right ascension times cos(dec), mas/yr.",
@@ -348,6 +347,8 @@ FLAG_MEANINGS = {
     "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+    "space_velocity_implausible": "Space velocity (U, V, W as given) above half the speed of "
+    "light: no star moves so fast; probably a unit mistake. Computed as given.",
     "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",
@@ -475,6 +476,12 @@ def _records(names, arrays, table, flags, n):
 _WARNING_TEXTS = {
     core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
     core.KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
+}
+
+#: Per-star warnings of the inverse (observables) answer.
+_OBSERVABLES_WARNING_TEXTS = {
+    core.KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE: "space velocity (U, V, W) exceeds half "
+    "the speed of light: check the unit (km/s)",
 }
 
 
@@ -633,10 +640,9 @@ _OBSERVABLES_STAR_FIELDS = {
         hi=MAX_ABS_MAS,
     ),
     "distance_pc": _num(
-        "Distance, pc; replaces the parallax where given. Must be positive.",
-        lo=0.0,
+        "Distance, pc; replaces the parallax where given.",
+        lo=MIN_DISTANCE_PC,
         hi=MAX_DISTANCE_PC,
-        min_inclusive=False,
     ),
 }
 ObservablesStarSchema = ma.Schema.from_dict(_OBSERVABLES_STAR_FIELDS, name="ObservablesStarSchema")
@@ -701,6 +707,7 @@ class ObservablesResponseSchema(ma.Schema):
     solar_motion_km_s = VelocityResponseSchema._declared_fields["solar_motion_km_s"]
     units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    warnings = ma.fields.List(ma.fields.Nested(VelocityWarningSchema))
     stars = ma.fields.List(ma.fields.Nested(ObservablesResultSchema))
     columns = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.Raw())
 
@@ -748,6 +755,7 @@ def observables(args):
         "solar_motion_km_s": list(sun) if args["relative_to_lsr"] else None,
         "units": OBSERVABLES_OUTPUTS,
         "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in used},
+        "warnings": flag_warnings(result.flags, table, _OBSERVABLES_WARNING_TEXTS),
     }
     if layout == "columns":
         contiguous = {k: np.ascontiguousarray(v) for k, v in columns.items()}

@@ -63,3 +63,7 @@ IMPLAUSIBLE_PROPER_MOTION_MAS_YR = 10_400.0
 #: thousand km/s at pericentre); a larger value usually means m/s given as km/s (common
 #: practice as a unit check).
 IMPLAUSIBLE_RADIAL_VELOCITY_KM_S = 5_000.0
+
+#: Space velocity above which an input is implausible: half the speed of light, the
+#: threshold SOFA/ERFA starpm uses to cap the speed ("excessive speed", status 2), km/s.
+IMPLAUSIBLE_SPACE_VELOCITY_KM_S = 0.5 * C_KM_S

@@ -47,6 +47,7 @@ from service.core.constants import (
     DEG_PER_RAD,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
     IMPLAUSIBLE_RADIAL_VELOCITY_KM_S,
+    IMPLAUSIBLE_SPACE_VELOCITY_KM_S,
     JULIAN_YEAR_S,
     MAS_PER_RAD,
     PC_KM,
@@ -181,6 +182,9 @@ class KinematicsFlag(enum.IntFlag):
     #: Radial velocity above 5,000 km/s in size (more than any star's measured radial
     #: velocity): probably m/s given as km/s.
     RADIAL_VELOCITY_IMPLAUSIBLE = 256
+    #: Space velocity (U, V, W as given) above half the speed of light, the limit the
+    #: propagation core uses: no star moves so fast; probably a unit mistake.
+    SPACE_VELOCITY_IMPLAUSIBLE = 512
 
 
 @dataclass(frozen=True)
@@ -1208,6 +1212,10 @@ def observables_from_velocity(
         KinematicsFlag.PARALLAX_NOT_POSITIVE
     )
     flags[~given & ~np.isfinite(plx)] |= np.uint32(KinematicsFlag.PARALLAX_MISSING)
+    speed2 = u * u + v * v + w * w
+    flags[speed2 > IMPLAUSIBLE_SPACE_VELOCITY_KM_S**2] |= np.uint32(
+        KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE
+    )
     with np.errstate(divide="ignore", invalid="ignore"):
         plx_eq = np.where(given, 1000.0 / dist, np.where(plx > 0.0, plx, np.nan))
     g_p, g_q, g_r, _, _ = _galactic_triad(ra, dec)
@@ -1219,6 +1227,6 @@ def observables_from_velocity(
         pm_ra_cosdec_mas_yr=va * inv_k,
         pm_dec_mas_yr=vd * inv_k,
         radial_velocity_km_s=vr,
-        distance_pc=1000.0 / plx_eq,
+        distance_pc=np.where(given, dist, 1000.0 / plx_eq),
         flags=flags,
     )

@@ -43,10 +43,10 @@ from erfa import ufunc as erfa_ufunc
 
 from .constants import (
     AU_PER_JULIAN_YEAR_KM_S,
-    C_KM_S,
     DEG_PER_RAD,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
     IMPLAUSIBLE_RADIAL_VELOCITY_KM_S,
+    IMPLAUSIBLE_SPACE_VELOCITY_KM_S,
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
@@ -54,10 +54,6 @@ from .epochs import julian_epoch_to_jd
 from .floating import overflow_to_infinity
 
 MODELS = ("standard", "light_time")
-
-#: Space velocity above which an input is implausible: half the speed of light, the
-#: threshold SOFA/ERFA starpm uses to cap the speed ("excessive speed", status 2), km/s.
-IMPLAUSIBLE_SPACE_VELOCITY_KM_S = 0.5 * C_KM_S
 
 #: Distance from a celestial pole below which a position counts as at the pole, radians
 #: (1e-12 rad = 0.2 microarcsecond; a declination of exactly +-90 degrees in double

@@ -1,6 +1,7 @@
 """POST /v1/velocity and /v1/velocity/observables: results, flags, one test per bad input."""
 
 import json
+import math
 
 import numpy as np
 import pytest
@@ -331,3 +332,32 @@ def test_openapi_describes_every_velocity_field(client):
     for schema in ("VelocityStar", "ObservablesStar"):
         for name, prop in doc["components"]["schemas"][schema]["properties"].items():
             assert prop.get("description"), f"{schema}.{name} lacks a description"
+
+
+def test_inverse_flags_and_warns_a_space_velocity_above_half_c(client):
+    # 1.5 c: the answer was given with no word. The limit is the propagation's (half the
+    # speed of light, the speed SOFA starpm caps at).
+    fast = dict(UVW_STAR, u_km_s=299792.458, v_km_s=200000.0, w_km_s=200000.0)
+    slow = dict(UVW_STAR, u_km_s=140000.0, v_km_s=0.0, w_km_s=0.0)  # 0.47 c
+    body = post(client, {"stars": [fast, slow, UVW_STAR]}, INVERSE_URL).json
+    assert ["space_velocity_implausible" in s["flags"] for s in body["stars"]] == [
+        True, False, False,
+    ]  # fmt: skip
+    assert [w["index"] for w in body["warnings"]] == [0]
+    assert "space_velocity_implausible" in body["flag_meanings"]
+
+
+@pytest.mark.parametrize("url", [URL, INVERSE_URL])
+def test_distance_below_the_smallest_accepted_is_refused(client, url):
+    # 5e-324 pc was echoed as 0.0 with null proper motions and no reason given (1000/d
+    # overflows); the smallest distance is that of the largest parallax accepted.
+    star = dict(STAR if url == URL else UVW_STAR, distance_pc=5e-324)
+    r = post(client, {"stars": [star]}, url)
+    answer = assert_problem(r, 422, "stars[0].distance_pc")
+    assert answer["errors"][0]["message"] == "must be between 1e-07 and 1e+10"
+
+
+def test_inverse_echoes_the_distance_given(client):
+    star = dict(UVW_STAR, distance_pc=1e-7)
+    got = post(client, {"stars": [star]}, INVERSE_URL).json["stars"][0]
+    assert got["distance_pc"] == 1e-7 and math.isfinite(got["pm_ra_cosdec_mas_yr"])
