@@ -347,8 +347,7 @@ def observed(args):
             errors=[
                 {
                     "field": f"instants[{int(i)}]",
-                    "message": f"must lie between {core.SUPPORTED_EPOCH_MIN:.0f} and "
-                    f"{core.SUPPORTED_EPOCH_MAX:.0f} (supported span of the observed place)",
+                    "message": core.SUPPORTED_SPAN_TEXT,
                 }
                 for i in bad[:50]
             ],

@@ -273,7 +273,8 @@ FLAG_MEANINGS = {
     "parallax_missing": "No parallax: distance unknown, radial velocity not applied, "
     "parallax out unknown.",
     "parallax_not_positive": "Parallax zero or negative: no distance; radial velocity not "
-    "applied; parallax out is the formal value.",
+    "applied; parallax out is the formal value (carried along by the standard model, as "
+    "given by the light_time model).",
     "radial_velocity_missing": "No radial velocity: taken as zero for the motion (no "
     "perspective acceleration); radial velocity out unknown.",
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,

@@ -98,7 +98,8 @@ PROPAGATION_FLAG_MEANINGS = {
     _PF.PARALLAX_MISSING: "No parallax: distance unknown, radial velocity not applied, "
     "parallax out unknown.",
     _PF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; radial velocity not "
-    "applied; parallax out is the formal value.",
+    "applied; parallax out is the formal value (carried along by the standard model, as "
+    "given by the light_time model).",
     _PF.RADIAL_VELOCITY_MISSING: "No radial velocity: taken as zero for the motion (no "
     "perspective acceleration); radial velocity out unknown.",
     _PF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,

@@ -83,6 +83,12 @@ DEFAULT_HORIZON_LIMIT_DEG = 0.0
 #: Earth ephemeris of SOFA epv00 (used by apco13) is valid 1900-2100 AD.
 SUPPORTED_EPOCH_MIN = 1960.0
 SUPPORTED_EPOCH_MAX = 2100.0
+#: The supported span in words (Julian epochs begin at noon: J1960.0 is 1960-01-01T12:00).
+SUPPORTED_SPAN_TEXT = (
+    f"must lie between J{SUPPORTED_EPOCH_MIN:.1f} and J{SUPPORTED_EPOCH_MAX:.1f} "
+    f"({SUPPORTED_EPOCH_MIN:.0f}-01-01T12:00 to {SUPPORTED_EPOCH_MAX:.0f}-01-01T12:00, the "
+    "end excluded)"
+)
 
 #: Supported wavelength ranges for refraction, micrometres: optical/IR 0.3-2.0 (SOFA refco
 #: model tested 0.4-2 um, Note 2 of refco) and radio 100 um - 1 m (refco radio case).
@@ -1669,7 +1675,7 @@ def _check_instants(utc_jd1, utc_jd2):
         if not SUPPORTED_EPOCH_MIN <= ep < SUPPORTED_EPOCH_MAX:
             raise ObservedInputError(
                 "instants",
-                f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
+                SUPPORTED_SPAN_TEXT,
             )
         return jd1, jd2
     if not (np.all(np.isfinite(jd1)) and np.all(np.isfinite(jd2))):
@@ -1678,7 +1684,7 @@ def _check_instants(utc_jd1, utc_jd2):
     if np.any(ep < SUPPORTED_EPOCH_MIN) or np.any(ep >= SUPPORTED_EPOCH_MAX):
         raise ObservedInputError(
             "instants",
-            f"must lie between {SUPPORTED_EPOCH_MIN:.0f} and {SUPPORTED_EPOCH_MAX:.0f}",
+            SUPPORTED_SPAN_TEXT,
         )
     if jd1.shape == jd2.shape:
         return jd1, jd2

@@ -68,7 +68,8 @@ class PropagationFlag(enum.IntFlag):
     #: proper motion taken as zero, no perspective acceleration); parallax out is unknown.
     PARALLAX_MISSING = 1
     #: Parallax zero or negative: no physical distance, radial proper motion taken as zero;
-    #: the parallax out is the formal value propagated, not a distance.
+    #: the parallax out is the formal value, not a distance (carried along by the standard
+    #: model; the light-time model returns it as given).
     PARALLAX_NOT_POSITIVE = 2
     #: Radial velocity not given: taken as zero for the motion (no perspective acceleration
     #: from it); the radial velocity out is unknown.
@@ -723,11 +724,6 @@ def propagate_light_time(
         radial_velocity_km_s=np.where(np.isfinite(rv), np.where(plx_ok, rv2, rv), np.nan),
     )
     return ast, flags
-
-
-#: Number of stars processed together by :func:`propagate`. Blocks of this size keep numpy's
-#: temporaries in the CPU cache; measured on a 2-core machine, 8192 is near the optimum
-#: (benchmarks/bench_propagation.py), and much larger blocks are 3-8x slower per star.
 
 
 #: Number of stars processed together by :func:`propagate`. Blocks of this size keep numpy's

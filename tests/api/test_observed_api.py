@@ -378,6 +378,17 @@ def test_wavelength_out_of_range_names_the_field(client, observed_example):
 def test_date_far_outside_span_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, instants=["J2016.0", "J2450.0"]))
     assert_problem(r, 422, "instants[1]")
+    # The span's ends are Julian epochs, which begin at noon: midnight of 1 January 1960
+    # is outside, and the message says so (it said "between 1960 and 2100").
+    edge = ["1960-01-01T00:00:00Z", "1960-01-01T12:00:00Z"]
+    r = client.post(OBS, json=dict(observed_example, instants=edge))
+    assert r.json["errors"] == [
+        {
+            "field": "instants[0]",
+            "message": "must lie between J1960.0 and J2100.0 (1960-01-01T12:00 to "
+            "2100-01-01T12:00, the end excluded)",
+        }
+    ]
 
 
 def test_unknown_frame_names_the_field(client, frames_example):

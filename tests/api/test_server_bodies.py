@@ -77,11 +77,11 @@ def test_chunked_body_over_the_limit_is_refused_not_cut(server, content_type):
     # 300 rows, about 7,700 bytes: before, the first 4,000 bytes (ending at a row) were
     # read as the whole table and answered 200 with the stars they held.
     url, _ = server
-    data = _csv_rows(300)
+    path, data = CSV_QUERY, _csv_rows(300)
     if content_type == "application/json":
-        data = orjson.dumps({"stars": [], "pad": "x" * 2 * LIMIT})
+        path, data = "/v1/propagation", orjson.dumps({"stars": [], "pad": "x" * 2 * LIMIT})
     r = requests.post(
-        url + CSV_QUERY, data=_chunks(data), headers={"Content-Type": content_type}, timeout=30
+        url + path, data=_chunks(data), headers={"Content-Type": content_type}, timeout=30
     )
     assert r.status_code == 413, r.text
     assert r.headers["Content-Type"].startswith("application/problem+json")
