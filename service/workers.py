@@ -17,11 +17,16 @@ body; ``errors.handle_client_timeout``) or disconnected (while still sending hea
 event is logged on one line, and the worker is free at once. Sending
 the response is bounded by the worker ``timeout`` as before. Behind a buffering reverse proxy
 these limits are never reached.
+
+Both workers also answer the requests gunicorn itself refuses (a malformed request line or
+header, a URL or header block over the limits) with an RFC 9457 problem, as the application
+answers every other error, instead of gunicorn's HTML page (:func:`write_problem_error`).
 """
 
 from __future__ import annotations
 
 import errno
+import json
 import os
 import time
 
@@ -110,12 +115,36 @@ class _ReadDeadlineSocket:
         return getattr(self._sock, name)
 
 
+def write_problem_error(sock, status_int, reason, mesg):
+    """gunicorn's error answer (a request it refused before the application saw it: a
+    malformed request line or header, a URL or header block over the limits) as an RFC 9457
+    problem, like every other error answer of the service, instead of gunicorn's HTML page.
+    Same signature and delivery as ``gunicorn.util.write_error``, which it replaces in the
+    worker processes (:func:`_answer_errors_as_problems`)."""
+    body = json.dumps(
+        {"type": "about:blank", "title": reason, "status": status_int, "detail": mesg or reason}
+    ).encode()
+    head = (
+        f"HTTP/1.1 {status_int} {reason}\r\nConnection: close\r\n"
+        f"Content-Type: application/problem+json\r\nContent-Length: {len(body)}\r\n\r\n"
+    )
+    util.write_nonblock(sock, head.encode("latin-1") + body)
+
+
+def _answer_errors_as_problems() -> None:
+    """In a worker process: gunicorn's own error answers become problems. gunicorn's worker
+    base class calls ``util.write_error`` by module attribute, so this is where it can be
+    swapped; the process is a worker of this service and nothing else."""
+    util.write_error = write_problem_error
+
+
 class ReadDeadlineSyncWorker(SyncWorker):
     """gunicorn's sync worker with per-client read limits (module docstring)."""
 
     def init_process(self):
         self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
         self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        _answer_errors_as_problems()
         super().init_process()
 
     def accept(self, listener):
@@ -135,6 +164,7 @@ class ReadDeadlineThreadWorker(ThreadWorker):
     def init_process(self):
         self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
         self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        _answer_errors_as_problems()
         super().init_process()
 
     def accept(self, listener):

@@ -128,3 +128,33 @@ def test_well_formed_chunks_over_a_raw_socket(server):
     chunked = b"%x\r\n%s\r\n0\r\n\r\n" % (len(body), body)
     status, answer = _raw_post(port, chunked)
     assert status == 200, answer
+
+
+def _raw(port: int, request: bytes) -> tuple[bytes, bytes]:
+    with socket.create_connection(("127.0.0.1", port), timeout=30) as s:
+        s.sendall(request)
+        answer = b""
+        while chunk := s.recv(65536):
+            answer += chunk
+    head, _, body = answer.partition(b"\r\n\r\n")
+    return head, body
+
+
+@pytest.mark.parametrize(
+    ("request_bytes", "status"),
+    [
+        (b"POST /v1/propagation HTTP/1.1\r\nHost: t\r\nContent-Length: abc\r\n\r\n", 400),
+        (b"POST /v1/propagation HTTP/1.1\r\nHost: t\r\nContent-Length: 5\r\n"
+         b"Content-Length: 6\r\n\r\nhello", 400),
+        (b"GET /health?" + b"x" * 10_000 + b" HTTP/1.1\r\nHost: t\r\n\r\n", 414),
+    ],
+    ids=["length-not-a-number", "two-lengths", "url-too-long"],
+)  # fmt: skip
+def test_requests_gunicorn_refuses_are_answered_as_problems(server, request_bytes, status):
+    # Refused before the application sees them; gunicorn answered these with an HTML page.
+    _, port = server
+    head, body = _raw(port, request_bytes)
+    assert head.split(b" ", 2)[1] == str(status).encode(), head
+    assert b"Content-Type: application/problem+json" in head
+    problem = orjson.loads(body)
+    assert problem["status"] == status and problem["title"] and problem["detail"]
