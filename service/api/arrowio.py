@@ -106,6 +106,7 @@ class ArrowTable:
                 errors.add_indices(
                     np.flatnonzero(bad), spec.name, "must be a finite number; use null for unknown"
                 )
+                arr = np.where(bad, np.nan, arr)  # reported once, not again by the range check
         if nulls and not spec.allow_none:
             errors.add_indices(
                 np.flatnonzero(~_valid(col)), spec.name, "is required and may not be null"

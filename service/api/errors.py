@@ -152,6 +152,11 @@ def _clip(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
+#: Titles where RFC 9110 renamed the status (werkzeug keeps the older name), so that one
+#: status has one title whichever part of the service answers it.
+_TITLES = {413: "Content Too Large"}
+
+
 def handle_http_exception(error: HTTPException) -> Response:
     """Shape every HTTPException (including flask-smorest/webargs aborts) as problem+json."""
     data = getattr(error, "data", None) or {}
@@ -185,7 +190,12 @@ def handle_http_exception(error: HTTPException) -> Response:
     if error.code == 405 and hasattr(error, "valid_methods") and error.valid_methods:
         headers["Allow"] = ", ".join(error.valid_methods)
     return problem_response(
-        error.code or 500, error.name, detail, errors, headers, **data.get("extra", {})
+        error.code or 500,
+        _TITLES.get(error.code, error.name),
+        detail,
+        errors,
+        headers,
+        **data.get("extra", {}),
     )
 
 
