@@ -454,9 +454,22 @@ class StarTableField(ma.fields.Field):
             raise ma.ValidationError("at least one star is required")
         sizes = set(lengths.values())
         if len(sizes) > 1:
-            detail = ", ".join(f"{k}: {v}" for k, v in sorted(lengths.items()))
+            # The length most columns share (ties: the first column's) is taken as meant;
+            # each column of another length is named.
+            counts = {size: list(lengths.values()).count(size) for size in sizes}
+            first = next(iter(lengths.values()))
+            usual = max(sizes, key=lambda size: (counts[size], size == first))
+            others = [k for k, v in lengths.items() if v == usual]
             raise ma.ValidationError(
-                {"(columns)": [f"all columns must have the same length; got {detail}"]}
+                {
+                    name: [
+                        f"has {size} value{'' if size == 1 else 's'} where {others[0]} has "
+                        f"{usual}: all columns must "
+                        "have the same length (one value per star)"
+                    ]
+                    for name, size in lengths.items()
+                    if size != usual
+                }
             )
         n = sizes.pop()
         self._limit(n)

@@ -288,9 +288,17 @@ def test_epoch_outside_supported_range(client):
 
 
 def test_columns_of_unequal_length(client):
+    # The column that differs from the others is named (the field was "stars.(columns)").
     cols = {k: [v, v] for k, v in STAR.items()}
     cols["ra_deg"] = [1.0]
-    assert_problem(post(client, dict(BASE, stars=cols)), 422, "stars.(columns)")
+    answer = assert_problem(post(client, dict(BASE, stars=cols)), 422)
+    assert answer["errors"] == [
+        {
+            "field": "stars.ra_deg",
+            "message": "has 1 value where dec_deg has 2: all columns must have the same "
+            "length (one value per star)",
+        }
+    ]
 
 
 def test_empty_batch(client):
