@@ -87,7 +87,11 @@ def parse_csv_body(data: bytes) -> CsvTable:
     try:
         text = data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
-        _problem(400, message=f"The CSV body is not UTF-8 text (byte {exc.start}).")
+        _problem(
+            400,
+            message=f"The CSV body is not UTF-8 text (byte {exc.start}); CSV is read as UTF-8 "
+            "only, whatever a charset parameter says.",
+        )
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     header = None
     header_line = 1
@@ -135,8 +139,15 @@ def parse_csv_body(data: bytes) -> CsvTable:
     if header is None:
         _problem(422, errors=[{"field": "line 1", "message": "no header row: the body is empty"}])
     seen = set()
-    for name in header:
-        if name in seen:
+    for k, name in enumerate(header, start=1):
+        if not name:
+            errors.append(
+                {
+                    "field": f"line {header_line}",
+                    "message": f"column {k} of the header has no name (a trailing comma?)",
+                }
+            )
+        elif name in seen:
             errors.append({"field": f"line {header_line}: {name}", "message": "column given twice"})
         seen.add(name)
     if errors:

@@ -195,6 +195,7 @@ def test_not_utf8_is_400(client):
     r = post_csv(client, (HEADER + "\nA\xe9,10,5,,1,1,\n").encode("latin-1"))
     assert r.status_code == 400
     assert r.mimetype == "application/problem+json"
+    assert f"byte {len(HEADER) + 2}" in r.json["detail"] and "UTF-8 only" in r.json["detail"]
 
 
 def test_byte_order_mark_and_crlf_accepted(client):
@@ -364,3 +365,13 @@ def test_site_by_dotted_members_in_the_query(client):
     both = client.post(base + "site=kestrel-ridge&site.height_m=1", data=body,
                        content_type="text/csv")  # fmt: skip
     assert [f for f, _ in problem_fields(both)] == ["site"]
+
+
+def test_header_column_without_a_name(client):
+    # A trailing comma made a nameless column, reported as "line 1: " with "column given
+    # twice" or "unknown field".
+    for header, k in ((HEADER + ",", 8), (HEADER + ",,", 8)):
+        body = header + "\nA,10,5,,1,1,,\n"
+        fields = problem_fields(post_csv(client, body))
+        assert ("line 1", f"column {k} of the header has no name (a trailing comma?)") in fields
+        assert all(f != "line 1: " for f, _ in fields)
