@@ -500,15 +500,22 @@ def test_unknown_parallax_and_rv_are_flagged_not_zeroed():
     assert abs(moved - 3.6) < 1e-6
 
 
-def test_locate_moving_propagates_first():
-    # A star 100 arcsec north of a constant-Dec boundary moving south at 1 arcsec/yr
-    # crosses it after 100 years.
+def _north_of_a_boundary(arcsec: float):
+    """(ICRS ra, dec, segment table, segment index) of a point ``arcsec`` north of the middle
+    of a constant-Dec boundary segment near the equator."""
     segs = C._segments()
     s = np.flatnonzero((segs.kind == 0) & (np.abs(segs.c) < 0.5))[0]
     ra_mid = 0.5 * (segs.lo[s] + segs.hi[s]) * DEG_PER_RAD
     ra, dec = _b1875_to_icrs_deg(
-        np.array([ra_mid]), np.array([segs.c[s] * DEG_PER_RAD + 100 / 3600])
+        np.array([ra_mid]), np.array([segs.c[s] * DEG_PER_RAD + arcsec / 3600])
     )
+    return ra, dec, segs, s
+
+
+def test_locate_moving_propagates_first():
+    # A star 100 arcsec north of a constant-Dec boundary moving south at 1 arcsec/yr
+    # crosses it after 100 years.
+    ra, dec, segs, s = _north_of_a_boundary(100.0)
     before = C.locate_moving(ra, dec, np.nan, 0.0, -1000.0, np.nan, 2000.0, 2090.0)
     after = C.locate_moving(ra, dec, np.nan, 0.0, -1000.0, np.nan, 2000.0, 2110.0)
     assert before.index[0] == segs.right[s] and after.index[0] == segs.left[s]
@@ -518,12 +525,7 @@ def test_locate_moving_propagates_first():
 def test_locate_moving_holds_a_star_with_half_a_proper_motion_fixed():
     # Same star: with one component unknown it stays where it was (as its flag says), not
     # carried across the boundary by the other component alone.
-    segs = C._segments()
-    s = np.flatnonzero((segs.kind == 0) & (np.abs(segs.c) < 0.5))[0]
-    ra_mid = 0.5 * (segs.lo[s] + segs.hi[s]) * DEG_PER_RAD
-    ra, dec = _b1875_to_icrs_deg(
-        np.array([ra_mid]), np.array([segs.c[s] * DEG_PER_RAD + 100 / 3600])
-    )
+    ra, dec, segs, s = _north_of_a_boundary(100.0)
     fixed = C.locate(ra, dec)
     for pma in (np.nan, 7.0):
         res = C.locate_moving(ra, dec, 10.0, pma, np.where(np.isnan(pma), -1000.0, np.nan),
