@@ -239,7 +239,7 @@ def _typed(fld, value):
 
 
 _INTEGER_TEXT = re.compile(r"[+-]?[0-9]+\Z")
-#: A decimal number as query options and CSV cells write it (ASCII digits only).
+#: A decimal number as a query option is written (ASCII digits only).
 NUMBER_TEXT = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
 
 

@@ -459,13 +459,12 @@ class StarTableField(ma.fields.Field):
             counts = {size: list(lengths.values()).count(size) for size in sizes}
             first = next(iter(lengths.values()))
             usual = max(sizes, key=lambda size: (counts[size], size == first))
-            others = [k for k, v in lengths.items() if v == usual]
+            reference = next(k for k, v in lengths.items() if v == usual)
             raise ma.ValidationError(
                 {
                     name: [
-                        f"has {size} value{'' if size == 1 else 's'} where {others[0]} has "
-                        f"{usual}: all columns must "
-                        "have the same length (one value per star)"
+                        f"has {size} value{'' if size == 1 else 's'} where {reference} has "
+                        f"{usual}: all columns must have the same length (one value per star)"
                     ]
                     for name, size in lengths.items()
                     if size != usual
