@@ -245,7 +245,16 @@ class ObservedRequestSchema(ma.Schema):
         },
     )
     site = SiteField(required=True)
-    atmosphere = ma.fields.Nested(AtmosphereSchema, load_default=dict)
+    atmosphere = ma.fields.Nested(
+        AtmosphereSchema,
+        load_default=dict,
+        allow_none=True,
+        metadata={
+            "description": "Air at the site for refraction. Null or absent: every member "
+            "at its default (pressure and temperature from the standard atmosphere at the "
+            "site height)."
+        },
+    )
     horizon_limit_deg = _num(
         "Altitude below which a target is flagged, degrees (advisory). Default: the site's "
         "own limit, else SKYDRIFT_HORIZON_LIMIT_DEG.",
@@ -355,7 +364,7 @@ def observed(args):
     sites = load_sites(settings.sites_file or None)
     try:
         site = core.resolve_site(args["site"], sites)
-        atm = core.make_atmosphere(**args["atmosphere"])
+        atm = core.make_atmosphere(**(args["atmosphere"] or {}))
     except core.ObservedInputError as exc:
         _core_error(exc)
     horizon = args.get("horizon_limit_deg")

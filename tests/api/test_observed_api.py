@@ -448,3 +448,13 @@ def test_numbers_must_be_json_numbers(client, observed_example, change, field):
     # marshmallow's Float would read the string "850" (and True as 1.0); a number written as
     # a string usually means the client built its JSON by hand: say so instead of guessing.
     assert_problem(client.post(OBS, json=dict(observed_example, **change)), 422, field)
+
+
+def test_atmosphere_null_is_every_default(client, observed_example):
+    # As the other optional objects take null; the standard atmosphere at the site height.
+    base = {k: v for k, v in observed_example.items() if k != "atmosphere"}
+    absent = client.post(OBS, json=base)
+    null = client.post(OBS, json=dict(base, atmosphere=None))
+    assert absent.status_code == null.status_code == 200, null.get_json()
+    assert null.json["refraction"] == absent.json["refraction"]
+    assert null.json["refraction"]["mode"] == "standard_atmosphere_pressure"
