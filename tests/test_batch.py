@@ -665,3 +665,18 @@ def test_building_the_command_line_does_not_import_dask():
     subprocess.run(
         [sys.executable, "-c", code], check=True, cwd=str(pathlib.Path(__file__).parents[1])
     )
+
+
+@pytest.mark.parametrize("where", ["same", "parent", "inside"])
+def test_output_overlapping_the_input_is_refused_before_anything_is_touched(tmp_path, where):
+    # With --overwrite, dask empties the output directory first: an output that was the
+    # input's own directory, or held it, deleted the catalogue (and anything beside it).
+    src_dir = tmp_path / "cat" / "in"
+    src_dir.mkdir(parents=True)
+    write_parquet(synthetic_catalogue(100, seed=3), src_dir / "part.parquet")
+    (src_dir / "notes.txt").write_text("keep me")
+    dest = {"same": src_dir, "parent": tmp_path / "cat", "inside": src_dir / "out"}[where]
+    with pytest.raises(batch.BatchInputError, match="overlaps the input"):
+        run(src_dir, dest, overwrite=True)
+    assert sorted(p.name for p in src_dir.iterdir()) == ["notes.txt", "part.parquet"]
+    run(src_dir, tmp_path / "elsewhere", overwrite=True)  # a separate output is fine

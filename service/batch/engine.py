@@ -9,8 +9,10 @@ import contextlib
 import datetime as _dt
 import importlib.metadata
 import json
+import os
 import pathlib
 import platform
+import re
 import sys
 import time
 import warnings
@@ -655,6 +657,7 @@ def run_batch(
     _require_dask()
     fs, dest_path = _filesystem(destination)
     dest = str(destination)
+    _refuse_overlap(source, fs, dest_path, dest)
     if fs.exists(dest_path) and not overwrite:
         if not fs.isdir(dest_path) or fs.ls(dest_path):
             raise BatchInputError(
@@ -850,6 +853,33 @@ def read_metadata(destination) -> dict:
     fs, path = _filesystem(destination)
     with fs.open(_join(path, METADATA_FILE), "r") as handle:
         return json.load(handle)
+
+
+def _refuse_overlap(source, dest_fs, dest_path: str, shown: str) -> None:
+    """BatchInputError when the output is the input, holds it, or lies inside it: writing
+    (and with --overwrite, first emptying) the output would destroy or change the input
+    before it is read. Checked on the same file system (local paths resolved), with glob
+    patterns cut at their first wildcard."""
+    from fsspec.implementations.local import LocalFileSystem
+
+    def norm(fs, path: str) -> str:
+        path = re.split(r"[*?[]", path, maxsplit=1)[0]
+        if isinstance(fs, LocalFileSystem):
+            path = os.path.realpath(path)
+        return path.rstrip("/")
+
+    dest = norm(dest_fs, dest_path)
+    for item in source if isinstance(source, list | tuple) else [source]:
+        fs, path = _filesystem(item)
+        if type(fs) is not type(dest_fs):
+            continue
+        src = norm(fs, path)
+        if src and (src == dest or src.startswith(dest + "/") or dest.startswith(src + "/")):
+            raise BatchInputError(
+                f"output {shown} overlaps the input {item} (the same place, or one inside "
+                "the other): writing it would change the input before it is read; choose "
+                "another output"
+            )
 
 
 def _filesystem(url):
