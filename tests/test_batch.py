@@ -680,3 +680,29 @@ def test_output_overlapping_the_input_is_refused_before_anything_is_touched(tmp_
         run(src_dir, dest, overwrite=True)
     assert sorted(p.name for p in src_dir.iterdir()) == ["notes.txt", "part.parquet"]
     run(src_dir, tmp_path / "elsewhere", overwrite=True)  # a separate output is fine
+
+
+@pytest.mark.parametrize("job", ["propagate", "constellations", "velocity"])
+def test_row_without_its_per_row_catalogue_epoch(tmp_path, job):
+    # A null epoch in a mapped per-row column: propagation answered the row with NaNs and no
+    # flag, the constellation job stopped with an IndexError. The stars are moved from that
+    # epoch, so the row is not computed and says why; velocities only date the closest
+    # approach with it, so they are still given there.
+    cat = synthetic_catalogue(200, seed=5)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True)
+    cat["ref_epoch"] = 2016.0
+    cat.loc[3, "ref_epoch"] = np.nan
+    write_parquet(cat, tmp_path / "cat.parquet")
+    params = {
+        "propagate": {"target_epoch_jyear": TARGET_EPOCH},
+        "constellations": {"epoch_jyear": TARGET_EPOCH},
+        "velocity": {},
+    }[job]
+    batch.run_batch(job, tmp_path / "cat.parquet", tmp_path / "out", params=params,
+                    columns={**MAPPING, "catalogue_epoch_jyear": "ref_epoch"},
+                    keep=["source_id"])  # fmt: skip
+    out = read_output(tmp_path / "out")
+    missing = (out["row_flags"].to_numpy() & int(batch.RowFlag.REQUIRED_VALUE_MISSING)) != 0
+    assert list(np.flatnonzero(missing)) == ([] if job == "velocity" else [3])
+    if job == "velocity":
+        assert np.isfinite(out.loc[3, "transverse_velocity_km_s"])

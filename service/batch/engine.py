@@ -23,7 +23,14 @@ import numpy as np
 
 from .. import __version__
 from .jobs import JOBS
-from .spec import FLAG_DTYPE, ROW_FLAG_MEANINGS, BatchInputError, BatchJob, RowFlag
+from .spec import (
+    CATALOGUE_EPOCH_FIELD,
+    FLAG_DTYPE,
+    ROW_FLAG_MEANINGS,
+    BatchInputError,
+    BatchJob,
+    RowFlag,
+)
 
 #: Name of the metadata file written beside the Parquet parts of the output.
 METADATA_FILE = "_skydrift_run.json"
@@ -286,7 +293,7 @@ def _acceptable(x: np.ndarray, f) -> np.ndarray:
     return ok
 
 
-def _all_acceptable(x: np.ndarray, f) -> bool:
+def _all_acceptable(x: np.ndarray, f, required: bool) -> bool:
     """Whether every value is acceptable, from two reductions (no temporaries).
 
     The minimum and maximum propagate NaN for required fields (so NaN fails the test) and
@@ -294,7 +301,7 @@ def _all_acceptable(x: np.ndarray, f) -> bool:
     """
     if x.size == 0:
         return True
-    if f.required:
+    if required:
         lo, hi = np.minimum.reduce(x), np.maximum.reduce(x)
     else:
         lo, hi = np.fmin.reduce(x), np.fmax.reduce(x)
@@ -309,7 +316,9 @@ def row_checks(plan: BatchPlan, inputs: dict) -> np.ndarray:
     Notes
     -----
     1. NaN in a required field: REQUIRED_VALUE_MISSING. Infinite, or outside the field's
-       valid range: VALUE_OUT_OF_RANGE. NaN in an optional field is "unknown", not bad.
+       valid range: VALUE_OUT_OF_RANGE. NaN in an optional field is "unknown", not bad,
+       except a per-row catalogue epoch the job moves the stars from (a row without it
+       cannot be computed; ``BatchJob.epoch_dates_motion``).
     2. Two reductions per field (minimum and maximum) find whether anything is wrong; the
        rows are classified only when something is (rare in real catalogues).
     """
@@ -317,11 +326,14 @@ def row_checks(plan: BatchPlan, inputs: dict) -> np.ndarray:
     flags = np.zeros(n, dtype=np.uint32)
     for name, x in inputs.items():
         f = plan.job.field(name)
-        if _all_acceptable(x, f):
+        required = f.required or (
+            name == CATALOGUE_EPOCH_FIELD.name and plan.job.epoch_dates_motion
+        )
+        if _all_acceptable(x, f, required):
             continue
         ok = _acceptable(x, f)
         nan = np.isnan(x)
-        if f.required:
+        if required:
             flags[nan] |= np.uint32(RowFlag.REQUIRED_VALUE_MISSING)
         flags[~ok & ~nan] |= np.uint32(RowFlag.VALUE_OUT_OF_RANGE)
     return flags

@@ -414,6 +414,7 @@ VELOCITY = BatchJob(
     params_from_args=_velocity_params,
     check_params=_velocity_check,
     describe_params=_velocity_describe,
+    epoch_dates_motion=False,  # the epoch only dates the closest approach
 )
 
 # ---------------------------------------------------------------------------------------

@@ -149,6 +149,10 @@ class BatchJob:
     fields_used : callable
         ``fields_used(params) -> set of names or None``: the fields a run with these
         parameters needs (None: all); the others are not read.
+    epoch_dates_motion : bool
+        Whether a row's catalogue epoch (when read from a column) is needed for its results:
+        True where the stars are moved from it (a row without one is then not computed,
+        REQUIRED_VALUE_MISSING); False where it only dates a result.
     """
 
     name: str
@@ -164,6 +168,7 @@ class BatchJob:
     describe_params: Callable = field(default=None)
     data_tables: Callable = field(default=_no_tables)
     fields_used: Callable = field(default=_all_fields)
+    epoch_dates_motion: bool = True
 
     def field(self, name: str) -> InputField:
         """The input field called ``name``."""
