@@ -175,6 +175,10 @@ def _default(value):
 _LARGE_ANSWER_BYTES = 1 << 20
 
 
+#: Media types of the service's JSON answers (GeoJSON outlines among them).
+JSON_ANSWERS = ("application/json", "application/geo+json")
+
+
 def _loads(content: bytes):
     """Decode a JSON answer.
 
@@ -369,8 +373,12 @@ class Client:
         base = min(self.max_backoff_s, self.backoff_s * 2.0**attempt)
         return base * random.uniform(0.5, 1.0)
 
-    def request(self, method: str, path: str, **kwargs) -> requests.Response:
-        """Send one request with timeout and retries; raise SkydriftError unless 2xx."""
+    def request(
+        self, method: str, path: str, *, expect: tuple[str, ...] = (), **kwargs
+    ) -> requests.Response:
+        """Send one request with timeout and retries; raise SkydriftError unless 2xx, or
+        when ``expect`` names media types (prefixes) and the answer is none of them (a
+        proxy's page or another service on that address must not pass for an answer)."""
         url = self.base_url + path
         kwargs.setdefault("timeout", self.timeout)
         for attempt in range(self.retries + 1):
@@ -389,17 +397,29 @@ class Client:
                 continue
             if resp.status_code >= 400:
                 raise SkydriftError.from_response(resp)
+            media = resp.headers.get("Content-Type", "").split(";")[0].strip().lower()
+            if expect and not media.startswith(expect):
+                raise SkydriftError(
+                    resp.status_code,
+                    "Unexpected answer",
+                    f"{url} answered {media or 'without a content type'}, not "
+                    f"{' or '.join(expect)}: is a Skydrift service at that address?",
+                )
             return resp
         raise AssertionError("unreachable")  # pragma: no cover
 
     def get(self, path: str, **params) -> dict:
         """GET a JSON answer."""
-        return _loads(self.request("GET", path, params=params or None).content)
+        resp = self.request("GET", path, params=params or None, expect=JSON_ANSWERS)
+        return _loads(resp.content)
 
     def post(self, path: str, body: Mapping[str, Any]) -> dict:
         """POST a JSON body (NaN sent as null) and return the JSON answer."""
         data = _dumps(dict(body))
-        resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
+        resp = self.request(
+            "POST", path, data=data, headers={"Content-Type": "application/json"},
+            expect=JSON_ANSWERS,
+        )  # fmt: skip
         return _loads(resp.content)
 
     def post_batched(
@@ -468,6 +488,7 @@ class Client:
             params=_query(params or {}),
             data=sink.getvalue().to_pybytes(),
             headers={"Content-Type": ARROW_MIMETYPE, "Accept": ARROW_MIMETYPE},
+            expect=(ARROW_MIMETYPE,),
         )
         with pa.ipc.open_stream(pa.py_buffer(resp.content)) as reader:
             return reader.read_all()
@@ -506,6 +527,7 @@ class Client:
                     params=query,
                     data=buf.getvalue().encode(),
                     headers={"Content-Type": "text/csv", "Accept": "text/csv"},
+                    expect=("text/csv",),
                 )
             except SkydriftError as exc:
                 exc.errors = [_relocate(e, chunk_lines) for e in exc.errors]
@@ -1017,7 +1039,10 @@ class Client:
 
     def _image(self, path: str, body: dict) -> bytes:
         data = _dumps(body)
-        resp = self.request("POST", path, data=data, headers={"Content-Type": "application/json"})
+        resp = self.request(
+            "POST", path, data=data, headers={"Content-Type": "application/json"},
+            expect=("image/",),
+        )  # fmt: skip
         return resp.content
 
 

@@ -340,6 +340,7 @@ def _post_image(client: Client, path: str, csv_text: str, params: dict) -> bytes
             params=_query(params),
             data=csv_text.encode(),
             headers={"Content-Type": "text/csv"},
+            expect=("image/",),
         )
     except SkydriftError as exc:
         exc.errors = [_relocate(e, lines) for e in exc.errors]

@@ -502,3 +502,18 @@ def test_client_arrow_names_are_the_services():
 
     assert client.ARROW_MIMETYPE == arrowio.ARROW_MIMETYPE
     assert client.ARROW_ANSWER_KEY == arrowio.ANSWER_METADATA_KEY
+
+
+def test_an_answer_of_another_kind_is_not_taken_for_one():
+    # A proxy's page or another service on the address answered 200 with HTML, and that
+    # HTML was written out as the CSV (or the chart) with exit status 0.
+    page = (200, {"Content-Type": "text/html"}, b"<html><body>Welcome</body></html>")
+    for call in (
+        lambda c: c.health(),
+        lambda c: c.post_csv("/v1/propagation", "id,ra_deg,dec_deg\nA,1,2\n", {}),
+        lambda c: c.chart_field([], catalogue_epoch="J2016", epochs=("J2016", "J2100")),
+    ):
+        with ScriptedServer([page]) as srv:
+            with pytest.raises(SkydriftError, match="text/html") as err:
+                call(Client(srv.url, retries=0))
+        assert err.value.title == "Unexpected answer"
