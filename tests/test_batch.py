@@ -706,3 +706,23 @@ def test_row_without_its_per_row_catalogue_epoch(tmp_path, job):
     assert list(np.flatnonzero(missing)) == ([] if job == "velocity" else [3])
     if job == "velocity":
         assert np.isfinite(out.loc[3, "transverse_velocity_km_s"])
+
+
+def test_command_line_failure_part_way_leaves_no_output_and_no_traceback(tmp_path, capsys):
+    # A cell that is no number far into a CSV (past the sample pandas types the columns
+    # from) stopped the run with a traceback and left Parquet parts that read back as a
+    # smaller catalogue.
+    from service.cli import main
+
+    cat = synthetic_catalogue(20_000, seed=4)
+    cat["Plx"] = cat["Plx"].astype(object)
+    cat.loc[19_990, "Plx"] = "abc"
+    cat.to_csv(tmp_path / "cat.csv", index=False)
+    mapping = ",".join(f"{k}={v}" for k, v in MAPPING.items())
+    args = ["batch", "propagate", str(tmp_path / "cat.csv"), str(tmp_path / "out"),
+            "--columns", mapping, "--catalogue-epoch", "J2016.0", "--target-epoch", "J2031.5",
+            "--quiet", "--blocksize", "100KB", "--local", "synchronous"]  # fmt: skip
+    assert main(args) == 1
+    err = capsys.readouterr().err
+    assert err.startswith("skydrift batch propagate: ValueError:") and "Traceback" not in err
+    assert not (tmp_path / "out").exists()

@@ -108,6 +108,12 @@ def _run(args) -> int:
     except BatchInputError as exc:
         print(f"skydrift batch {job.name}: {exc}", file=sys.stderr)
         return 2
+    except (OSError, ValueError) as exc:
+        # Found while reading the files or running (a cell that is no number past the
+        # sample pandas typed the columns from, an option dask refuses, a path that cannot
+        # be written): said in one line; no partial output is left (engine.run_batch).
+        print(f"skydrift batch {job.name}: {type(exc).__name__}: {exc}", file=sys.stderr)
+        return 1
     print(
         f"{summary.rows} rows -> {summary.destination} in {summary.wall_time_s:.1f} s "
         f"(metadata: {METADATA_FILE})"

@@ -738,6 +738,13 @@ def run_batch(
                 cfg["num_workers"] = n_workers
             with dask.config.set(cfg), _progress_bar(progress), _known_upstream_warnings():
                 _, count_frame = dask.compute(write, counts)
+    except BaseException:
+        # A run that stops part-way (a cell no number, a worker lost) leaves no output:
+        # Parquet parts without the metadata file would read back as a smaller catalogue.
+        with contextlib.suppress(OSError):
+            if fs.exists(dest_path):
+                fs.rm(dest_path, recursive=True)
+        raise
     finally:
         if own_client is not None:
             own_client.close()
