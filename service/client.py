@@ -41,6 +41,8 @@ from typing import Any
 
 import requests
 
+from .numbers import WHOLE_TEXT
+
 __all__ = ["Client", "FieldError", "SkydriftError", "DEFAULT_URL"]
 
 DEFAULT_URL = "http://127.0.0.1:8000"
@@ -177,6 +179,15 @@ _LARGE_ANSWER_BYTES = 1 << 20
 
 #: Media types of the service's JSON answers (GeoJSON outlines among them).
 JSON_ANSWERS = ("application/json", "application/geo+json")
+
+
+def _whole(value) -> int:
+    """A count given as a Python int or as text in ASCII digits ("11"; not "1_1")."""
+    if isinstance(value, int) and not isinstance(value, bool):
+        return value
+    if isinstance(value, str) and WHOLE_TEXT.match(value.strip()):
+        return int(value)
+    raise ValueError(f"target range count: {value!r} is not a whole number in ASCII digits")
 
 
 def _loads(content: bytes):
@@ -1068,7 +1079,7 @@ def _targets(body: dict, target_epochs, target_range) -> dict:
         body["target_epochs"] = list(epochs)
     else:
         start, stop, count = target_range
-        body["target_range"] = {"start": start, "stop": stop, "count": int(count)}
+        body["target_range"] = {"start": start, "stop": stop, "count": _whole(count)}
     return body
 
 

@@ -20,6 +20,7 @@ import re
 import sys
 
 from .client import Client, SkydriftError, _read_csv, _relocate
+from .numbers import decimal, whole
 
 DEFAULT_CATALOGUE_EPOCH = "J2016.0"
 DEFAULT_BATCH_SIZE = 10_000
@@ -399,21 +400,21 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
     )
     g.add_argument(
         "--timeout",
-        type=float,
+        type=decimal,
         default=300.0,
         metavar="SECONDS",
         help="longest wait for one answer, seconds (default 300)",
     )
     g.add_argument(
         "--retries",
-        type=int,
+        type=whole,
         default=5,
         help="repeats after a busy (429/503) answer or failed connection (default 5)",
     )
     if batch:
         g.add_argument(
             "--batch-size",
-            type=int,
+            type=whole,
             default=DEFAULT_BATCH_SIZE,
             metavar="N",
             help=f"stars per request (default {DEFAULT_BATCH_SIZE})",
@@ -506,7 +507,7 @@ def add_commands(sub) -> None:
     v.add_argument(
         "--solar-motion",
         nargs=3,
-        type=float,
+        type=decimal,
         metavar=("U", "V", "W"),
         help="Sun's motion relative to the LSR, km/s (implies --lsr; default: the service's, "
         "Schoenrich, Binney & Dehnen 2010)",
@@ -518,8 +519,8 @@ def add_commands(sub) -> None:
         help="linear propagation, Monte Carlo draws, or draws only where the parallax is "
         "noisy (default linear)",
     )
-    v.add_argument("--draws", type=int, help="Monte Carlo draws per star")
-    v.add_argument("--seed", type=int, help="seed of the Monte Carlo draws")
+    v.add_argument("--draws", type=whole, help="Monte Carlo draws per star")
+    v.add_argument("--seed", type=whole, help="seed of the Monte Carlo draws")
     v.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(v)
     v.set_defaults(func=cmd_velocities)
@@ -549,7 +550,7 @@ def add_commands(sub) -> None:
     )
     k.add_argument(
         "--near-boundary-arcsec",
-        type=float,
+        type=decimal,
         metavar="ARCSEC",
         help="flag stars closer than this to a boundary (with --margins; default 1)",
     )
@@ -578,7 +579,7 @@ def add_commands(sub) -> None:
     x.add_argument("--end", required=True, metavar="EPOCH", help="end of the window")
     x.add_argument(
         "--max-step-yr",
-        type=float,
+        type=decimal,
         metavar="YEARS",
         help="largest search step, years (default: window / 100; no crossing is ever stepped over)",
     )
@@ -621,19 +622,19 @@ def add_commands(sub) -> None:
     place.add_argument(
         "--position",
         nargs=3,
-        type=float,
+        type=decimal,
         metavar=("LAT", "LON", "HEIGHT"),
         help="geodetic latitude and east longitude in degrees, height in metres (WGS84)",
     )
     o.add_argument(
         "--horizon-limit-deg",
-        type=float,
+        type=decimal,
         metavar="DEG",
         help="altitude below which a star is flagged (default: the site's, else the service's)",
     )
     o.add_argument(
         "--sun-avoidance-deg",
-        type=float,
+        type=decimal,
         metavar="DEG",
         help="Sun separation below which a star is flagged (default: the service's setting)",
     )
@@ -665,7 +666,7 @@ def add_commands(sub) -> None:
     )
     t.add_argument("--start", required=True, metavar="EPOCH", help="first epoch of the tracks")
     t.add_argument("--stop", required=True, metavar="EPOCH", help="last epoch of the tracks")
-    t.add_argument("--ticks", type=int, default=6, help="epochs marked on each track (default 6)")
+    t.add_argument("--ticks", type=whole, default=6, help="epochs marked on each track (default 6)")
     t.add_argument(
         "--no-boundaries", action="store_true", help="leave out constellation boundaries"
     )
@@ -691,7 +692,7 @@ def add_commands(sub) -> None:
     )
     f.add_argument(
         "--arrow-years",
-        type=float,
+        type=decimal,
         help="span of the motion arrows, years (default: the interval between the epochs)",
     )
     _image_options(f)

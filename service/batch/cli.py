@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import sys
 
+from ..numbers import whole
 from .engine import INPUT_FORMATS, LOCAL_SCHEDULERS, METADATA_FILE
 from .jobs import JOBS
 from .spec import FLAG_DTYPE, BatchInputError, BatchJob
@@ -60,7 +61,7 @@ def _common_options(p) -> None:
         choices=LOCAL_SCHEDULERS,
         help="local scheduler (default threads)",
     )
-    p.add_argument("--workers", type=int, help="local workers (default: CPU count)")
+    p.add_argument("--workers", type=whole, help="local workers (default: CPU count)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output")
     p.add_argument(
         "--quiet", action="store_true", help="no progress bar (also off when not a terminal)"

@@ -15,6 +15,7 @@ from ..core import kinematics as _kinematics
 from ..core import propagation as _propagation
 from ..core.constants import C_KM_S
 from ..core.flags import PROPER_MOTION_IMPLAUSIBLE_MEANING, RADIAL_VELOCITY_IMPLAUSIBLE_MEANING
+from ..numbers import DECIMAL_TEXT, decimal
 from .spec import (
     CATALOGUE_EPOCH_FIELD,
     FLAG_DTYPE,
@@ -341,7 +342,7 @@ def _velocity_options(parser) -> None:
     _catalogue_epoch_option(parser, " (optional: only dates the closest approach)")
     parser.add_argument(
         "--low-snr-threshold",
-        type=float,
+        type=decimal,
         default=_kinematics.LOW_PARALLAX_SNR_DEFAULT,
         help="parallax signal-to-noise below which a star is flagged parallax_low_snr "
         f"(default {_kinematics.LOW_PARALLAX_SNR_DEFAULT:g})",
@@ -360,10 +361,8 @@ def _velocity_params(args) -> tuple[dict, dict]:
         "low_snr_threshold": args.low_snr_threshold,
     }
     if args.solar_motion is not None:
-        try:
-            sun = [float(x) for x in args.solar_motion.split(",")]
-        except ValueError:
-            sun = []
+        parts = [x.strip() for x in args.solar_motion.split(",")]
+        sun = [float(x) for x in parts] if all(DECIMAL_TEXT.match(x) for x in parts) else []
         if len(sun) != 3 or not all(np.isfinite(sun)):
             raise BatchInputError("--solar-motion: give three numbers U,V,W in km/s")
         params["solar_motion_km_s"] = sun
@@ -493,7 +492,7 @@ def _constellations_options(parser) -> None:
     )
     parser.add_argument(
         "--near-boundary-arcsec",
-        type=float,
+        type=decimal,
         default=_constellations.DEFAULT_NEAR_BOUNDARY_ARCSEC,
         help="distance to a boundary within which near_boundary is flagged, arcsec "
         f"(default {_constellations.DEFAULT_NEAR_BOUNDARY_ARCSEC:g})",

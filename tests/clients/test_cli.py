@@ -251,3 +251,33 @@ def test_chart_field_png(tmp_path):
         "Kestrel Ridge Catalogue",
     )
     assert out.read_bytes().startswith(b"\x89PNG")
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ("velocities", CATALOGUE, "--solar-motion", "1_0", "12", "7"),
+        ("observed", CATALOGUE, "--at", "2026-12-02T22:00:00Z", "--site", "kestrel-ridge",
+         "--sun-avoidance-deg", "1_5"),
+        ("batch", "velocity", CATALOGUE, "out", "--low-snr-threshold", "\u0661\u0660"),
+        ("batch", "propagate", CATALOGUE, "out", "--workers", "\uff12"),
+    ],
+    ids=["solar-motion", "sun-avoidance", "batch-threshold", "batch-workers"],
+)  # fmt: skip
+def test_numbers_on_the_command_line_are_ascii_decimals(args, tmp_path):
+    # float() and int() read "1_5" as 15 and other scripts' digits as numbers; a safety
+    # threshold given so was taken silently. Refused as the service refuses them.
+    out = skydrift(*(str(tmp_path / "out") if a == "out" else a for a in args), check=False)
+    assert out.returncode == 2
+    assert "not a number written with ASCII digits" in out.stderr.decode() or (
+        "not a whole number in ASCII digits" in out.stderr.decode()
+    )
+
+
+def test_range_count_in_ascii_digits(tmp_path):
+    out = skydrift("propagate", CATALOGUE, "--range", "J2016", "J2116", "1_1", check=False)
+    assert out.returncode == 1
+    assert "not a whole number in ASCII digits" in out.stderr.decode()
+    batch = skydrift("batch", "velocity", CATALOGUE, str(tmp_path / "out"), "--solar-motion",
+                     "1_0,2,3", check=False)  # fmt: skip
+    assert batch.returncode == 2 and "--solar-motion" in batch.stderr.decode()
