@@ -726,3 +726,22 @@ def test_command_line_failure_part_way_leaves_no_output_and_no_traceback(tmp_pat
     err = capsys.readouterr().err
     assert err.startswith("skydrift batch propagate: ValueError:") and "Traceback" not in err
     assert not (tmp_path / "out").exists()
+
+
+def test_batch_bounds_match_the_api_and_booleans_are_no_numbers(tmp_path):
+    # A parallax of 1e308 mas gave declination -45 and NaN motions without a flag; the API
+    # refuses anything beyond 1e10 mas (core.constants.MAX_ABS_MAS), so such rows are now
+    # not computed and flagged value_out_of_range. A true/false column read False as 0 mas.
+    cat = synthetic_catalogue(50, seed=6)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True)
+    cat.loc[2, "Plx"] = 1e308
+    cat.loc[4, "pmRA"] = -2e10
+    write_parquet(cat, tmp_path / "cat.parquet")
+    run(tmp_path / "cat.parquet", tmp_path / "out")
+    out = read_output(tmp_path / "out")
+    bad = (out["row_flags"].to_numpy() & int(batch.RowFlag.VALUE_OUT_OF_RANGE)) != 0
+    assert list(np.flatnonzero(bad)) == [2, 4]
+    cat["Plx"] = cat["Plx"] > 5.0
+    write_parquet(cat, tmp_path / "bool.parquet")
+    with pytest.raises(batch.BatchInputError, match="not numeric"):
+        run(tmp_path / "bool.parquet", tmp_path / "out2")

@@ -26,11 +26,8 @@ import numpy as np
 from flask import current_app
 from flask_smorest import abort
 
-#: Largest magnitude accepted for parallaxes, proper motions and their standard errors, in
-#: mas and mas/yr. Far beyond any star (a parallax of 1e10 mas is a distance of 0.02 au; a
-#: proper motion of 1e10 mas/yr is 2,800 deg/yr), it keeps every product in the models and
-#: their covariances finite, so no input overflows into a meaningless answer.
-MAX_ABS_MAS = 1e10
+# Bounds shared with the batch jobs (re-exported for the endpoint schemas).
+from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # noqa: F401
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
 #: where the record schema gives none (or only one side): no quantity the service takes
@@ -38,15 +35,6 @@ MAX_ABS_MAS = 1e10
 #: keeps squares and products finite. Added to the record schema itself, so the OpenAPI
 #: document shows it.
 DEFAULT_MAX_ABS_VALUE = 1e10
-
-#: Largest distance (and distance error) accepted, pc: 1e10 pc, about the radius of the
-#: observable universe (common practice), with the same purpose.
-MAX_DISTANCE_PC = 1e10
-
-#: Smallest distance accepted, pc: 1e-7 pc (0.02 au), the distance of the largest parallax
-#: accepted (MAX_ABS_MAS). Nearer, 1000/distance overflows for the smallest doubles and
-#: the proper motions that follow are infinite.
-MIN_DISTANCE_PC = 1e-7
 
 #: At most this many individual field errors are listed in one problem response.
 MAX_LISTED_ERRORS = 50

@@ -268,7 +268,7 @@ def _is_numeric(dtype) -> bool:
     except TypeError:
         # pandas extension dtypes (nullable Int64, Float64, pyarrow-backed numbers)
         kind = getattr(getattr(dtype, "numpy_dtype", None), "kind", "O")
-    return kind in "fiub"
+    return kind in "fiu"  # not "b": a column of true/false is no number (False is not 0 mas)
 
 
 # ---------------------------------------------------------------------------------------

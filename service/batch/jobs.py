@@ -13,7 +13,7 @@ import numpy as np
 from ..core import constellations as _constellations
 from ..core import kinematics as _kinematics
 from ..core import propagation as _propagation
-from ..core.constants import C_KM_S
+from ..core.constants import C_KM_S, MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC
 from ..core.flags import PROPER_MOTION_IMPLAUSIBLE_MEANING, RADIAL_VELOCITY_IMPLAUSIBLE_MEANING
 from ..numbers import DECIMAL_TEXT, decimal
 from .spec import (
@@ -36,24 +36,37 @@ from .spec import (
 
 RA = InputField("ra_deg", "deg", "ICRS right ascension", True, 0.0, 360.0)
 DEC = InputField("dec_deg", "deg", "ICRS declination", True, -90.0, 90.0)
+# Parallaxes, proper motions and distances are bounded as the API's star tables bound them
+# (core.constants): beyond, the models overflow into answers that mean nothing.
 PARALLAX = InputField(
     "parallax_mas",
     "mas",
     "parallax; NaN = unknown, zero or negative accepted and flagged",
     False,
+    -MAX_ABS_MAS,
+    MAX_ABS_MAS,
     placeholder=np.nan,
 )
 PM_RA = InputField(
-    "pm_ra_cosdec_mas_yr", "mas/yr", "proper motion in right ascension times cos(dec)", True
+    "pm_ra_cosdec_mas_yr",
+    "mas/yr",
+    "proper motion in right ascension times cos(dec)",
+    True,
+    -MAX_ABS_MAS,
+    MAX_ABS_MAS,
 )
-PM_DEC = InputField("pm_dec_mas_yr", "mas/yr", "proper motion in declination", True)
+PM_DEC = InputField(
+    "pm_dec_mas_yr", "mas/yr", "proper motion in declination", True, -MAX_ABS_MAS, MAX_ABS_MAS
+)
 #: Proper motions where a star without them is taken as fixed (and flagged by the core).
 PM_RA_OPTIONAL = InputField(
-    PM_RA.name, PM_RA.unit, PM_RA.description + "; NaN = unknown", False, placeholder=np.nan
-)
+    PM_RA.name, PM_RA.unit, PM_RA.description + "; NaN = unknown", False, PM_RA.low,
+    PM_RA.high, placeholder=np.nan,
+)  # fmt: skip
 PM_DEC_OPTIONAL = InputField(
-    PM_DEC.name, PM_DEC.unit, PM_DEC.description + "; NaN = unknown", False, placeholder=np.nan
-)
+    PM_DEC.name, PM_DEC.unit, PM_DEC.description + "; NaN = unknown", False, PM_DEC.low,
+    PM_DEC.high, placeholder=np.nan,
+)  # fmt: skip
 RADIAL_VELOCITY = InputField(
     "radial_velocity_km_s",
     "km/s",
@@ -204,14 +217,22 @@ _VELOCITY_INPUTS = (
     RA,
     DEC,
     PARALLAX,
-    _optional("distance_pc", "pc", "distance; where finite it replaces 1000/parallax", 0.0, np.inf),
+    _optional(
+        "distance_pc",
+        "pc",
+        "distance; where finite it replaces 1000/parallax",
+        MIN_DISTANCE_PC,
+        MAX_DISTANCE_PC,
+    ),  # fmt: skip
     PM_RA,
     PM_DEC,
     RADIAL_VELOCITY,
-    _optional("parallax_error_mas", "mas", "standard error of the parallax", 0.0),
-    _optional("distance_error_pc", "pc", "standard error of distance_pc", 0.0),
-    _optional("pm_ra_cosdec_error_mas_yr", "mas/yr", "standard error of pm_ra_cosdec", 0.0),
-    _optional("pm_dec_error_mas_yr", "mas/yr", "standard error of pm_dec", 0.0),
+    _optional("parallax_error_mas", "mas", "standard error of the parallax", 0.0, MAX_ABS_MAS),
+    _optional("distance_error_pc", "pc", "standard error of distance_pc", 0.0, MAX_DISTANCE_PC),
+    _optional(
+        "pm_ra_cosdec_error_mas_yr", "mas/yr", "standard error of pm_ra_cosdec", 0.0, MAX_ABS_MAS
+    ),
+    _optional("pm_dec_error_mas_yr", "mas/yr", "standard error of pm_dec", 0.0, MAX_ABS_MAS),
     _optional("radial_velocity_error_km_s", "km/s", "standard error of the radial velocity", 0.0),
     _optional(
         "correlation_parallax_pm_ra",

@@ -67,3 +67,20 @@ IMPLAUSIBLE_RADIAL_VELOCITY_KM_S = 5_000.0
 #: Space velocity above which an input is implausible: half the speed of light, the
 #: threshold SOFA/ERFA starpm uses to cap the speed ("excessive speed", status 2), km/s.
 IMPLAUSIBLE_SPACE_VELOCITY_KM_S = 0.5 * C_KM_S
+
+# --- Bounds on inputs (the API's star tables and the batch jobs) ------------------------
+
+#: Largest magnitude accepted for parallaxes, proper motions and their standard errors, in
+#: mas and mas/yr. Far beyond any star (a parallax of 1e10 mas is a distance of 0.02 au; a
+#: proper motion of 1e10 mas/yr is 2,800 deg/yr), it keeps every product in the models and
+#: their covariances finite, so no input overflows into a meaningless answer.
+MAX_ABS_MAS = 1e10
+
+#: Largest distance (and distance error) accepted, pc: 1e10 pc, about the radius of the
+#: observable universe (common practice), with the same purpose.
+MAX_DISTANCE_PC = 1e10
+
+#: Smallest distance accepted, pc: 1e-7 pc (0.02 au), the distance of the largest parallax
+#: accepted (MAX_ABS_MAS). Nearer, 1000/distance overflows for the smallest doubles and
+#: the proper motions that follow are infinite.
+MIN_DISTANCE_PC = 1e-7
