@@ -51,6 +51,14 @@ class Catalogue:
         self.rows = rows
 
 
+def _at_least_zero(text: str) -> int:
+    """argparse type: a whole number, 0 or more."""
+    value = whole(text)
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: must be 0 or more")
+    return value
+
+
 def read_catalogue(path: str) -> Catalogue:
     """Read a CSV or JSON catalogue ('-' = CSV on standard input)."""
     if path == "-":
@@ -58,8 +66,16 @@ def read_catalogue(path: str) -> Catalogue:
     else:
         text = pathlib.Path(path).read_text(encoding="utf-8-sig")
     if path.lower().endswith(".json"):
-        data = json.loads(text)
-        stars = data["stars"] if isinstance(data, dict) else data
+        try:
+            data = json.loads(text)
+        except ValueError as exc:
+            raise ValueError(f"{path}: not JSON ({exc})") from None
+        stars = data.get("stars") if isinstance(data, dict) else data
+        if not isinstance(stars, list) or not all(isinstance(s, dict) for s in stars):
+            raise ValueError(
+                f"{path}: a JSON catalogue is a list of star objects, or an object whose "
+                "'stars' member is one"
+            )
         names: dict = {}
         for s in stars:
             for k in s:
@@ -407,7 +423,7 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
     )
     g.add_argument(
         "--retries",
-        type=whole,
+        type=_at_least_zero,
         default=5,
         help="repeats after a busy (429/503) answer or failed connection (default 5)",
     )

@@ -281,3 +281,23 @@ def test_range_count_in_ascii_digits(tmp_path):
     batch = skydrift("batch", "velocity", CATALOGUE, str(tmp_path / "out"), "--solar-motion",
                      "1_0,2,3", check=False)  # fmt: skip
     assert batch.returncode == 2 and "--solar-motion" in batch.stderr.decode()
+
+
+@pytest.mark.parametrize(
+    ("content", "message"),
+    [("{}", "JSON catalogue is a list"), ('{"stars": 5}', "JSON catalogue is a list"),
+     ("[1, 2]", "JSON catalogue is a list"), ("{not json", "not JSON")],
+)  # fmt: skip
+def test_json_catalogue_of_the_wrong_shape_is_named(tmp_path, content, message):
+    # These ended in a KeyError or TypeError traceback.
+    path = tmp_path / "cat.json"
+    path.write_text(content)
+    out = skydrift("propagate", str(path), "--epoch", "J2100", check=False)
+    assert out.returncode == 1
+    err = out.stderr.decode()
+    assert message in err and str(path) in err and "Traceback" not in err
+
+
+def test_negative_retries_refused():
+    out = skydrift("propagate", CATALOGUE, "--epoch", "J2100", "--retries", "-1", check=False)
+    assert out.returncode == 2 and "must be 0 or more" in out.stderr.decode()
