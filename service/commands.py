@@ -281,8 +281,8 @@ def _tolerant(args, csv_text: str, call):
         unknown = _unknown_columns(exc) if args.drop_unknown_columns else []
         if not unknown:
             raise
-    if not args.quiet:
-        print(f"skydrift: columns not used by this command: {', '.join(unknown)}", file=sys.stderr)
+    # Said even with --quiet (which only stops the progress bar): data left out of a run.
+    print(f"skydrift: columns not used by this command: {', '.join(unknown)}", file=sys.stderr)
     return call(_drop_columns(csv_text, unknown))
 
 
@@ -309,12 +309,12 @@ def cmd_observed(args) -> int:
             progress=update,
         ),
     )
-    if not args.quiet:
-        print(
-            "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
-            "and safety rules decide where a telescope may point.",
-            file=sys.stderr,
-        )
+    # Always said, --quiet or not (it only stops the progress bar): a safety caution.
+    print(
+        "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
+        "and safety rules decide where a telescope may point.",
+        file=sys.stderr,
+    )
     _write_text(text, args.output)
     return 0
 

@@ -156,6 +156,8 @@ def test_observed_local_and_remote_identical(live_service):
             "--drop-unknown-columns"]  # fmt: skip
     local = skydrift(*args)
     assert b"advisory" in local.stderr  # the safety figures are said to be advisory
+    # ... with --quiet too, which only stops the progress bar (it hid the caution).
+    assert b"advisory" in skydrift(*args, "-q").stderr
     remote = skydrift(*args, "--url", live_service, "--batch-size", "8")
     assert local.stdout == remote.stdout
     rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
