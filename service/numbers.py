@@ -1,8 +1,9 @@
-"""Numbers written on the command line: ASCII decimals only.
+"""Numbers written as text (command-line and query options): ASCII decimals only.
 
-argparse's ``type=float`` and ``type=int`` are Python's ``float()`` and ``int()``, which
-also read "1_0" as 10 and other scripts' digits ("١٠") as numbers; the service refuses
-both (a JSON number, a query option, a CSV cell), so the commands do as well.
+Python's ``float()`` and ``int()`` (and so argparse's ``type=float``) also read "1_0" as 10
+and other scripts' digits ("١٠") as numbers. The service refuses both wherever a number
+comes as text: query options (api.csvio, api.common.QueryFloat) and command-line options
+(:func:`decimal`, :func:`whole`).
 """
 
 from __future__ import annotations

@@ -15,6 +15,7 @@ from flask_smorest import abort
 from ..core import epochs as core_epochs
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
+from ..numbers import DECIMAL_TEXT
 from . import arrowio, csvio
 from .jsonio import BodyParser
 
@@ -259,7 +260,7 @@ class QueryFloat(ma.fields.Float):
     }
 
     def _deserialize(self, value, attr, data, **kwargs):
-        if not isinstance(value, str) or not csvio.NUMBER_TEXT.match(value.strip()):
+        if not isinstance(value, str) or not DECIMAL_TEXT.match(value.strip()):
             raise self.make_error("invalid")
         return super()._deserialize(value.strip(), attr, data, **kwargs)
 

@@ -33,12 +33,12 @@ from __future__ import annotations
 import csv
 import io
 import json
-import re
 
 import orjson
 from flask import request
 from flask_smorest import abort
 
+from ..numbers import DECIMAL_TEXT, WHOLE_TEXT
 from .jsonio import read_body, refuse_repeated_options
 
 CSV_MIMETYPE = "text/csv"
@@ -231,16 +231,11 @@ def _typed(fld, value):
         return text.lower() == "true"
     # ASCII decimal forms only: Python's int() and float() would also read "1_000", "nan",
     # "infinity" and other scripts' digits, and str.isdigit() takes "¹", which int() refuses.
-    if isinstance(fld, ma.fields.Integer) and _INTEGER_TEXT.match(text):
+    if isinstance(fld, ma.fields.Integer) and WHOLE_TEXT.match(text):
         return int(text)
-    if isinstance(fld, ma.fields.Float) and NUMBER_TEXT.match(text):
+    if isinstance(fld, ma.fields.Float) and DECIMAL_TEXT.match(text):
         return float(text)
     return value
-
-
-_INTEGER_TEXT = re.compile(r"[+-]?[0-9]+\Z")
-#: A decimal number as a query option is written (ASCII digits only).
-NUMBER_TEXT = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
 
 
 def _json_or_text(value: str):
