@@ -213,11 +213,14 @@ def _decode_json(content: bytes) -> int:
 
 def json_codec_floor(cols: dict, json_body: bytes, answer: bytes) -> dict:
     """Seconds of JSON text work alone in the JSON route: the server's parse of the body
-    (orjson), its writing of the answer (orjson, numpy columns) and the client's parse of
-    the answer (as :func:`_decode_json`). No HTTP, no validation, no astronomy: a lower
-    bound on that route's end-to-end time, measured in this process."""
+    (as the service reads it: service/api/jsoncolumns.py), its writing of the answer
+    (orjson, numpy columns) and the client's parse of the answer (as :func:`_decode_json`).
+    No HTTP, no validation, no astronomy: a lower bound on that route's end-to-end time,
+    measured in this process."""
+    from service.api import jsoncolumns
+
     t0 = time.perf_counter()
-    orjson.loads(json_body)
+    jsoncolumns.loads(json_body, frozenset(cols))
     parse_s = time.perf_counter() - t0
     answer_obj = orjson.loads(answer)
     columns = answer_obj["columns"]

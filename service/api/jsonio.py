@@ -13,6 +13,8 @@ from webargs import core as webargs_core
 from webargs.flaskparser import FlaskParser
 from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
 
+from . import jsoncolumns
+
 try:  # gunicorn's errors for a malformed chunked body (gunicorn serves the application)
     from gunicorn.http.errors import ParseException as _ChunkErrors
 except ImportError:  # pragma: no cover - another WSGI server
@@ -125,6 +127,7 @@ class BodyParser(FlaskParser):
             return load_arrow_request(req, schema)
         if req.args:
             refuse_query_options(req.args)
+        g.star_number_columns = _star_number_columns(schema)
         return super().load_json(req, schema)
 
     def load_querystring(self, req, schema):
@@ -138,12 +141,21 @@ class BodyParser(FlaskParser):
         if not data:
             return webargs_core.missing  # no body: each required field is reported missing
         try:
-            return orjson.loads(data)
+            return jsoncolumns.loads(data, g.get("star_number_columns", frozenset()))
         except orjson.JSONDecodeError as exc:
             # webargs turns json.JSONDecodeError into a 400 through our error handler, but
             # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
             # are not UTF-8, so it is never passed on empty.
             raise json.JSONDecodeError(str(exc), exc.doc or "(body)", exc.pos or 0) from None
+
+
+def _star_number_columns(schema) -> frozenset:
+    """Names of the number columns of the schema's star table (``stars``), if it has one:
+    those a large body in the columns layout may give as arrays (:mod:`.jsoncolumns`)."""
+    from .tables import StarTableField
+
+    fld = schema.fields.get("stars")
+    return fld.numeric_names if isinstance(fld, StarTableField) else frozenset()
 
 
 def refuse_query_options(args) -> None:

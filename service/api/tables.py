@@ -435,7 +435,7 @@ class StarTableField(ma.fields.Field):
             raise ma.ValidationError({name: [self._unknown_text()] for name in sorted(unknown)})
         lengths = {}
         for name, col in cols.items():
-            if not isinstance(col, list):
+            if not isinstance(col, list | np.ndarray):  # arrays: see .jsoncolumns
                 raise ma.ValidationError({name: ["must be an array (one value per star)"]})
             lengths[name] = len(col)
         if not lengths:
