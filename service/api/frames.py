@@ -75,7 +75,11 @@ FrameStarSchema = ma.Schema.from_dict(
             "Proper motion along the latitude, mas per Julian year.", required=True
         ),
         "radial_velocity_km_s": _num(
-            "Radial velocity, km/s, positive receding. Null if unknown.", lo=-C_KM_S, hi=C_KM_S
+            "Radial velocity, km/s, positive receding. Null if unknown.",
+            lo=-C_KM_S,
+            hi=C_KM_S,
+            min_inclusive=False,
+            max_inclusive=False,
         ),
     },
     name="FrameStarSchema",

@@ -409,6 +409,16 @@ def test_equinox_for_galactic_names_the_field(client, frames_example):
     assert_problem(r, 422, "to_frame.equinox")
 
 
+@pytest.mark.parametrize("rv", [299792.458, -299792.458])
+def test_frames_radial_velocity_of_light_speed_refused(client, frames_example, rv):
+    # As on every other star table: the speed of light itself is excluded (c = 299792.458
+    # km/s exactly, SI definition of the metre, CGPM 1983); it was accepted here alone.
+    stars = [dict(frames_example["stars"][0], radial_velocity_km_s=rv)]
+    r = client.post(FRAMES, json=dict(frames_example, stars=stars))
+    assert_problem(r, 422, "stars[0].radial_velocity_km_s")
+    assert "< 299792.458" in str(r.json["errors"])
+
+
 def test_readiness_reports_earth_orientation(client):
     r = client.get("/ready")
     assert r.status_code == 200
