@@ -338,12 +338,22 @@ def _select(cat: Catalogue, ids: list[str] | None) -> str:
     return buf.getvalue()
 
 
+#: Image formats by the output file's suffix (a name without one is written as SVG).
+IMAGE_SUFFIXES = {".svg": "svg", ".png": "png", "": "svg"}
+
+
 def _image_format(args) -> str:
     if args.format:
         return args.format
-    if args.output and args.output.lower().endswith(".png"):
-        return "png"
-    return "svg"
+    if not args.output:
+        return "svg"
+    suffix = os.path.splitext(args.output)[1].lower()
+    if suffix not in IMAGE_SUFFIXES:
+        # An SVG written to chart.gif or chart.pdf would not open as what its name says.
+        raise ValueError(
+            f"{args.output}: charts are written as .svg or .png; name the file so, or give --format"
+        )
+    return IMAGE_SUFFIXES[suffix]
 
 
 def _post_image(client: Client, path: str, csv_text: str, params: dict) -> bytes:

@@ -240,6 +240,19 @@ def test_chart_unknown_star():
     assert "KRC 9999" in out.stderr.decode()
 
 
+@pytest.mark.parametrize("name", ["field.gif", "field.pdf", "field.svg.bak"])
+def test_chart_to_a_name_of_another_image_format_refused(tmp_path, name):
+    # It wrote SVG into field.gif, which no viewer opens as a GIF.
+    out = tmp_path / name
+    run = skydrift(
+        "chart", "field", str(DEMO / "catalogue.json"), "--epochs", "J2016", "J3016",
+        "-o", str(out), check=False,
+    )  # fmt: skip
+    assert run.returncode == 1
+    assert name in run.stderr.decode() and "--format" in run.stderr.decode()
+    assert not out.exists()
+
+
 def test_chart_field_png(tmp_path):
     out = tmp_path / "field.png"
     skydrift(
