@@ -390,6 +390,12 @@ def _save(fig, image_format: str) -> bytes:
     return buf.getvalue()
 
 
+def _plain(text: str) -> str:
+    """Text drawn as written: matplotlib reads text between two "$" as math markup (which
+    garbles "HD $5 to $6" and fails on "$^$"); an escaped dollar is drawn as a dollar."""
+    return text.replace("$", "\\$")
+
+
 def _style_axes(ax) -> None:
     ax.set_facecolor(PANEL_COLOUR)
     ax.tick_params(colors=MUTED_TEXT_COLOUR, labelsize=8)
@@ -480,7 +486,7 @@ def render_tracks(
         x = centre + np.unwrap(_wrap180(t.ra_deg - centre), period=360.0)
         # matplotlib leaves labels that start with "_" out of the legend: a zero-width space
         # in front keeps such an id visible and unchanged to the reader.
-        legend_label = "\u200b" + t.label if t.label.startswith("_") else t.label
+        legend_label = _plain("\u200b" + t.label if t.label.startswith("_") else t.label)
         (line,) = ax.plot(x, t.dec_deg, color=colour, linewidth=2.0, zorder=3, label=legend_label)
         line.set_gid(f"track-{k}")
         tx = x_of(t.tick_ra_deg)
@@ -525,7 +531,7 @@ def render_tracks(
         if first is None:
             continue
         ax.annotate(
-            t.label,
+            _plain(t.label),
             (float(tx[first]), float(t.tick_dec_deg[first])),
             xytext=(-6, -12),
             textcoords="offset points",
@@ -575,7 +581,7 @@ def render_tracks(
     ax.set_ylabel("declination (ICRS), deg", color=MUTED_TEXT_COLOUR, fontsize=9)
     first, last = chart.tracks[0].epochs_jyear[[0, -1]]
     heading = title or f"Sky tracks, J{first:.1f} to J{last:.1f} (TDB)"
-    ax.set_title(heading, color=TEXT_COLOUR, fontsize=12, loc="left")
+    ax.set_title(_plain(heading), color=TEXT_COLOUR, fontsize=12, loc="left")
     note = "dots: evenly spaced epochs, labelled where room; lines: IAU constellation boundaries"
     if not chart.boundaries_available:
         note = "dots: evenly spaced epochs, labelled where room"
@@ -753,7 +759,7 @@ def _render_field(
             norm = math.hypot(dx, dy) or 1.0
             off = (-9.0 * dx / norm, -9.0 * dy / norm)
             ax.annotate(
-                chart.labels[i],
+                _plain(chart.labels[i]),
                 (x[i], y[i]),
                 xytext=off,
                 textcoords="offset points",
@@ -772,7 +778,7 @@ def _render_field(
             label.set_alpha(0.6)  # right ascension marks stay behind the stars' labels
         ax.set_title(f"J{chart.epochs_jyear[k]:.1f}", color=colour, fontsize=12, fontweight="bold")
     heading = title or "Star field at two epochs"
-    fig.suptitle(heading, color=TEXT_COLOUR, fontsize=13)
+    fig.suptitle(_plain(heading), color=TEXT_COLOUR, fontsize=13)
     fig.text(
         0.5,
         0.01,

@@ -130,6 +130,26 @@ def test_field_chart(client, demo_catalogue):
     assert r.status_code == 422
 
 
+MATH_LIKE = ["$^$", "$\\undefinedmacro$", "HIP 1$2$3", "a\\$b", "$$"]
+
+
+@pytest.mark.parametrize("path", ["/v1/charts/track", "/v1/charts/field"])
+def test_ids_and_titles_with_dollars_are_drawn_as_written(client, demo_catalogue, path):
+    # matplotlib reads text between two "$" as math markup: "$^$" as an id or "$$" as a
+    # title was a 500, and "HD $5 to $6 star" was drawn "HD 5to6 star".
+    stars = [dict(demo_catalogue["stars"][k], id=text) for k, text in enumerate(MATH_LIKE)]
+    epochs = {"start": "J2016.0", "stop": "J3016.0"} if "track" in path else {
+        "epochs": ["J2016.0", "J12016.0"]}  # fmt: skip
+    for title in ("HD $5 to $6 star", "$$"):
+        body = {"stars": stars, "catalogue_epoch": "J2016.0", "title": title, **epochs}
+        r = client.post(path, json=body)
+        assert r.status_code == 200, r.get_data(as_text=True)
+        drawn = [t.text for t in ET.fromstring(r.data).iter(f"{SVG}text")]
+        assert title in drawn
+        if "track" in path:  # every track is labelled (the field chart labels the fastest)
+            assert set(MATH_LIKE) <= set(drawn)
+
+
 def test_openapi_shows_images_not_csv(client):
     op = client.get("/openapi.json").json["paths"]["/v1/charts/track"]["post"]
     content = op["responses"]["200"]["content"]
