@@ -259,7 +259,9 @@ class OutlineQuerySchema(ma.Schema):
     )
     tolerance_arcsec = QueryFloat(
         load_default=core.DEFAULT_OUTLINE_TOLERANCE_ARCSEC,
-        validate=ma.validate.Range(min=0.001, max=60.0),
+        validate=ma.validate.Range(
+            min=core.MIN_OUTLINE_TOLERANCE_ARCSEC, max=core.MAX_OUTLINE_TOLERANCE_ARCSEC
+        ),
         metadata={
             "description": "Largest distance, arcsec, between the true boundary in the frame "
             "and the straight (lon, lat) lines joining the outline's vertices. Default 0.05."

@@ -1944,6 +1944,9 @@ OUTLINE_INITIAL_SPACING_DEG = 0.25
 #: Default largest distance (arcsec) between the true transformed boundary and the
 #: straight line between consecutive outline vertices in (longitude, latitude).
 DEFAULT_OUTLINE_TOLERANCE_ARCSEC = 0.05
+#: The range of outline tolerances accepted, arcsec.
+MIN_OUTLINE_TOLERANCE_ARCSEC = 0.001
+MAX_OUTLINE_TOLERANCE_ARCSEC = 60.0
 #: Limit on halvings of an outline edge (2**-20 of 0.25 degrees is below 1 mas).
 _OUTLINE_MAX_HALVINGS = 20
 
@@ -2161,6 +2164,75 @@ def _split_vertical(poly, cut_x):
     return result
 
 
+def _open_over_pole(lonu, lat, closing: float, winding: int) -> np.ndarray:
+    """The planar polygon of a ring winding once around a pole (Note 1 of _ring_pieces).
+
+    ``lonu`` are the unwrapped longitudes of the ring's vertices and ``closing`` that of
+    its first vertex after one turn (``lonu[0] + 360 * winding``). Returns (M, 2) vertices
+    from the chosen antimeridian crossing (x = X) once around to the same point (x = X +
+    360 * winding), then to the pole and back along the pole's latitude line.
+    """
+    x = np.append(lonu, closing)  # the ring once around, its first vertex repeated
+    y = np.append(lat, lat[0])
+    x0, x1, y0, y1 = x[:-1], x[1:], y[:-1], y[1:]
+    # antimeridians X = 180 + 360 k met by each edge [x0, x1) (x0 <= X < x1 or x1 < X <= x0)
+    lo, hi = np.minimum(x0, x1), np.maximum(x0, x1)
+    best = None
+    for k in range(
+        int(math.floor((x.min() - 180.0) / 360.0)), int(math.ceil((x.max() - 180.0) / 360.0)) + 1
+    ):
+        cut = 180.0 + 360.0 * k
+        hit = np.flatnonzero((lo <= cut) & (cut <= hi) & (x0 != x1))
+        if hit.size == 0:
+            continue
+        yc = y0[hit] + (cut - x0[hit]) / (x1[hit] - x0[hit]) * (y1[hit] - y0[hit])
+        j = int(np.argmax(yc) if winding > 0 else np.argmin(yc))
+        if best is None or (yc[j] > best[2] if winding > 0 else yc[j] < best[2]):
+            best = (int(hit[j]), cut, float(yc[j]))
+    edge, cut, yc = best
+    turn = 360.0 * winding
+    n = lonu.size
+    # from the crossing on edge (edge, edge + 1) along the ring back to the same crossing
+    after = np.arange(edge + 1, edge + 1 + n) % n
+    xs = lonu[after] + np.where(after <= edge, turn, 0.0)
+    pole = 90.0 if winding > 0 else -90.0
+    xs = np.concatenate([[cut], xs, [cut + turn, cut + turn, cut]])
+    ys = np.concatenate([[yc], lat[after], [yc, pole, pole]])
+    return np.column_stack([xs, ys])
+
+
+#: Vertices this close to an antimeridian (degrees; 3.6 microarcseconds) are taken as on it.
+CUT_SNAP_DEG = 1e-9
+
+
+def _straighten_cut_runs(x, y):
+    """A piece's ring with each run of consecutive vertices on the cut line (x = -180 or
+    180) reduced to the run's first and last vertex.
+
+    Where a boundary lies on the antimeridian itself (hour circle 12h in the B1875 frame),
+    the pieces of :func:`_split_vertical` go along the cut line and back (a spike of no
+    width, which GeoJSON readers reject as a self-intersection); along a line the ring can
+    only go from where it meets the line to where it leaves it.
+    """
+    on = np.abs(x) == 180.0
+    if not on.any() or on.all():
+        return x, y
+    start = int(np.argmin(on))  # begin off the line, so that no run wraps around the end
+    x, y, on = np.roll(x, -start), np.roll(y, -start), np.roll(on, -start)
+    keep = ~on
+    i, n = 0, x.size
+    while i < n:
+        if not on[i]:
+            i += 1
+            continue
+        j = i
+        while j + 1 < n and on[j + 1] and x[j + 1] == x[i]:
+            j += 1
+        keep[i] = keep[j] = True
+        i = j + 1
+    return x[keep], y[keep]
+
+
 def _ring_pieces(lon, lat):
     """GeoJSON rings (lists of [lon, lat], lon in -180..180) for one closed outline ring.
 
@@ -2168,9 +2240,12 @@ def _ring_pieces(lon, lat):
     -----
     1. Longitudes are unwrapped along the ring. A ring that winds once around a pole of
        the frame (its region contains that pole: the north pole if it winds eastward, the
-       region being on the left) is opened at its vertex nearest that pole and closed
-       along that vertex's meridian and the pole's latitude line, so that the planar
-       polygon stays simple (RFC 7946 section 3.1.9).
+       region being on the left) is opened where it crosses the antimeridian nearest that
+       pole and closed along the antimeridian and the pole's latitude line: one polygon
+       from -180 to 180 whose edges at -180 and 180 are the two sides of the cut. (Opened
+       on another meridian, the cut at 180 would make two polygons sharing that meridian
+       as an edge, which the Simple Features rules GeoJSON readers apply do not allow.)
+       Nearest the pole, the closing line up to the pole cannot cross the ring.
     2. The planar polygon is then cut along lon = 180 + 360 k and each piece shifted into
        -180..180 (RFC 7946 section 3.1.9, antimeridian cutting).
     3. Exterior rings are counterclockwise (RFC 7946 section 3.1.6, right-hand rule).
@@ -2179,18 +2254,14 @@ def _ring_pieces(lon, lat):
     closing = lonu[-1] + _wrap180(lon[0] - lon[-1])
     winding = int(round((closing - lonu[0]) / 360.0))
     if winding != 0:
-        # start at the vertex nearest the pole, so that the closing lines along its
-        # meridian (up to the pole) cannot cross the ring
-        start = int(np.argmax(lat) if winding > 0 else np.argmin(lat))
-        lon, lat = np.roll(lon, -start), np.roll(lat, -start)
-        lonu = lon[0] + np.concatenate([[0.0], np.cumsum(_wrap180(np.diff(lon)))])
-        closing = lonu[-1] + _wrap180(lon[0] - lon[-1])
-    xs, ys = list(lonu), list(lat)
-    if winding != 0:
-        pole = 90.0 if winding > 0 else -90.0
-        xs += [closing, closing, lonu[0]]
-        ys += [lat[0], pole, pole]
-    poly = np.column_stack([xs, ys])
+        poly = _open_over_pole(lonu, np.asarray(lat, dtype=float), closing, winding)
+    else:
+        poly = np.column_stack([lonu, lat])
+    # Vertices within CUT_SNAP_DEG of an antimeridian are put on it: a boundary lying on
+    # it (12h in frames at equinox B1875.0) arrives a few 1e-11 degree either side.
+    near = np.round((poly[:, 0] - 180.0) / 360.0) * 360.0 + 180.0
+    snap = np.abs(poly[:, 0] - near) <= CUT_SNAP_DEG
+    poly[snap, 0] = near[snap]
     lo, hi = poly[:, 0].min(), poly[:, 0].max()
     pieces = [poly]
     k0 = int(math.floor((lo - 180.0) / 360.0))
@@ -2209,7 +2280,7 @@ def _ring_pieces(lon, lat):
     for piece in pieces:
         shift = 360.0 * math.floor((0.5 * (piece[:, 0].min() + piece[:, 0].max()) + 180.0) / 360.0)
         x = np.clip(piece[:, 0] - shift, -180.0, 180.0)
-        y = piece[:, 1]
+        x, y = _straighten_cut_runs(x, piece[:, 1])
         keep = np.ones(x.size, dtype=bool)
         keep[1:] = (np.diff(x) != 0.0) | (np.diff(y) != 0.0)
         x, y = x[keep], y[keep]
@@ -2315,6 +2386,12 @@ def _default_equinox(frame, equinox):
 
 def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
     """GeoJSON polygon coordinate lists (list of rings, each list of [lon, lat]) per index."""
+    if not MIN_OUTLINE_TOLERANCE_ARCSEC <= tolerance_arcsec <= MAX_OUTLINE_TOLERANCE_ARCSEC:
+        # Below the minimum the arcs are cut ever finer (at 0, until memory runs out).
+        raise ValueError(
+            f"tolerance_arcsec must be from {MIN_OUTLINE_TOLERANCE_ARCSEC} to "
+            f"{MAX_OUTLINE_TOLERANCE_ARCSEC}, not {tolerance_arcsec}"
+        )
     if frame == "b1875":
 
         def project(vec):

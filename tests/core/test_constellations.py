@@ -714,6 +714,48 @@ def test_outlines_tile_the_sphere_and_contain_their_points(frame):
     np.testing.assert_array_equal(np.argmax(hits[ok], axis=1), res.index[ok])
 
 
+@pytest.mark.parametrize(
+    ("frame", "equinox", "reduction", "tolerance"),
+    [
+        ("icrs", None, "fk4", C.DEFAULT_OUTLINE_TOLERANCE_ARCSEC),
+        ("icrs", None, "fk5", 60.0),
+        ("galactic", None, "fk4", C.DEFAULT_OUTLINE_TOLERANCE_ARCSEC),
+        ("b1875", None, "fk4", C.DEFAULT_OUTLINE_TOLERANCE_ARCSEC),
+        ("fk4", 1875.0, "fk4", C.DEFAULT_OUTLINE_TOLERANCE_ARCSEC),
+        ("fk4", 1950.0, "fk4", 60.0),
+        ("fk5", 1875.0, "fk4", C.DEFAULT_OUTLINE_TOLERANCE_ARCSEC),
+    ],
+)
+def test_outlines_are_valid_simple_features(frame, equinox, reduction, tolerance):
+    # GeoJSON readers (shapely/GEOS here, as PostGIS and others) apply the OGC Simple
+    # Features rules: the parts of a MultiPolygon may not share an edge, a ring may not
+    # touch itself. Outlines over a pole were two polygons sharing the meridian from the
+    # pole to the outline (UMi, Oct; Com, Scl in galactic); in frames at equinox B1875.0
+    # Ursa Major, whose boundary lies on 12h, had a spike of no width along it.
+    import shapely
+    from shapely.geometry import shape
+
+    fc = C.outline_collection(
+        frame=frame, equinox=equinox, reduction=reduction, tolerance_arcsec=tolerance
+    )
+    invalid = {
+        f["properties"]["abbreviation"]: shapely.is_valid_reason(shape(f["geometry"]))
+        for f in fc["features"]
+        if not shapely.is_valid(shape(f["geometry"]))
+    }
+    assert invalid == {}
+    by_name = {f["properties"]["abbreviation"]: f for f in fc["features"]}
+    for cap in ("UMi", "Oct") if frame != "galactic" else ("Com", "Scl"):
+        assert by_name[cap]["geometry"]["type"] == "Polygon"  # one piece, closed over the pole
+
+
+@pytest.mark.parametrize("tolerance", [0.0, -1.0, 1e-6, 61.0, math.nan])
+def test_outline_tolerance_outside_its_range_refused(tolerance):
+    # At 0 the arcs were cut ever finer until the process ran out of memory.
+    with pytest.raises(ValueError, match="tolerance_arcsec"):
+        C.outline("Ori", tolerance_arcsec=tolerance)
+
+
 def test_outline_of_one_constellation():
     ser = C.outline("ser")
     assert ser["geometry"]["type"] == "MultiPolygon"  # Serpens Caput and Cauda
