@@ -353,10 +353,19 @@ class GeoJsonFeatureSchema(ma.Schema):
         metadata={
             "description": "Polygon, or MultiPolygon when the constellation has two parts "
             "(Serpens) or is cut at the antimeridian; [longitude, latitude] in degrees, "
-            "longitude in -180..180, exterior rings counterclockwise (RFC 7946)."
+            "longitude in -180..180 (the frame's longitude, RA for the equatorial frames, "
+            "less 360 above 180), exterior rings counterclockwise (RFC 7946). A "
+            "constellation containing a pole is one polygon opened on the antimeridian and "
+            "closed along latitude 90 or -90."
         }
     )
-    properties = ma.fields.Dict()
+    properties = ma.fields.Dict(
+        metadata={
+            "description": "abbreviation, name, frame, reduction, area_sr, area_deg2; "
+            "equinox: a Besselian year for fk4 and b1875, a Julian year for fk5 (null for "
+            "icrs and galactic)."
+        }
+    )
 
 
 class GeoJsonCollectionSchema(ma.Schema):
@@ -534,7 +543,7 @@ def list_constellations():
     """List the 88 IAU constellations.
 
     Abbreviation, name and solid angle (from the boundary table at B1875.0) of each, in
-    alphabetical order of abbreviation. Use the abbreviations with the outline endpoint.
+    alphabetical order of name. Use the abbreviations with the outline endpoint.
     """
     if request.args:  # no options here: a misspelt one must not pass unnoticed
         abort(
@@ -737,8 +746,9 @@ def outline(args, abbreviation):
 
     The boundary (arcs of constant RA and Dec at B1875.0) is sampled densely enough to stay
     within tolerance_arcsec after transformation to the frame, and returned as an RFC 7946
-    Feature: longitudes in -180..180, cut at the antimeridian, closed over a pole it
-    contains, exterior rings counterclockwise. The abbreviation is case-insensitive.
+    Feature: longitudes in -180..180 (RA, less 360 above 180, for the equatorial frames),
+    cut at the antimeridian, closed over a pole it contains, exterior rings
+    counterclockwise. The abbreviation is case-insensitive.
     """
     try:
         index = core.constellation_index(abbreviation)

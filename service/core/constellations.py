@@ -172,7 +172,7 @@ class BoundaryTable:
     Attributes
     ----------
     abbreviations, names : tuple of str, length 88
-        IAU abbreviations and names, alphabetical by abbreviation as in the names file.
+        IAU abbreviations and names, alphabetical by name as in the names file.
     ra_low_h, ra_high_h, dec_low_deg : ndarray, shape (357,)
         The table rows: RA range (hours, equinox B1875.0) and lower declination (degrees).
     row_index : ndarray of int, shape (357,)
