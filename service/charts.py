@@ -714,17 +714,26 @@ def _render_field(
         y = np.radians(chart.dec_deg[k])
         xe = _hammer_x(chart.arrow_ra_deg[k])
         ye = np.radians(chart.arrow_dec_deg[k])
+        step = (xe - x + math.pi) % (2.0 * math.pi) - math.pi  # the short way round
         for i in range(x.size):
             if not np.isfinite([x[i], y[i], xe[i], ye[i]]).all():
                 continue  # a place that could not be computed is not drawn
-            if abs(xe[i] - x[i]) > math.pi:  # the arrow would cross the chart's edge
+            if np.hypot(step[i] * math.cos(y[i]), ye[i] - y[i]) < MIN_ARROW_RAD:
                 continue
-            if np.hypot((xe[i] - x[i]) * math.cos(y[i]), ye[i] - y[i]) < MIN_ARROW_RAD:
-                continue
+            tail = (x[i], y[i])
+            if abs(x[i] + step[i]) > math.pi:
+                # Over the chart's edge (RA 180): to the edge, and on from the other edge.
+                edge = math.copysign(math.pi, step[i])
+                y_edge = y[i] + (edge - x[i]) / step[i] * (ye[i] - y[i])
+                (line,) = ax.plot(
+                    [x[i], edge], [y[i], y_edge], color=ARROW_COLOUR, lw=0.9, zorder=2
+                )
+                line.set_gid(f"arrow-tail-{k}-{i}")
+                tail = (-edge, y_edge)
             arrow = ax.annotate(
                 "",
                 xy=(xe[i], ye[i]),
-                xytext=(x[i], y[i]),
+                xytext=tail,
                 arrowprops={
                     "arrowstyle": "-|>",
                     "color": ARROW_COLOUR,
@@ -755,7 +764,7 @@ def _render_field(
             if not np.isfinite([x[i], y[i], xe[i], ye[i]]).all():
                 continue
             # The label sits behind the star, opposite its arrow.
-            dx, dy = xe[i] - x[i], ye[i] - y[i]
+            dx, dy = step[i], ye[i] - y[i]
             norm = math.hypot(dx, dy) or 1.0
             off = (-9.0 * dx / norm, -9.0 * dy / norm)
             ax.annotate(
@@ -782,7 +791,8 @@ def _render_field(
     fig.text(
         0.5,
         0.01,
-        f"arrows: motion over the next {chart.arrow_years:,.6g} years (straight-line model); "
+        f"arrows: motion over the next {chart.arrow_years:,.6g} years (straight-line model; "
+        "one running over the edge goes on from the other edge); "
         "marker size grows with parallax; open circles: parallax unknown or not positive; "
         "right ascension increases to the left",
         ha="center",

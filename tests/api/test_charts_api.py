@@ -150,6 +150,24 @@ def test_ids_and_titles_with_dollars_are_drawn_as_written(client, demo_catalogue
             assert set(MATH_LIKE) <= set(drawn)
 
 
+def test_field_arrow_running_over_the_edge_is_drawn(client):
+    # A star near RA 12h moving east: its arrow runs over the chart's edge (RA 180), and it
+    # was left out, so that the star looked still. Now it is drawn up to the edge.
+    def star(i, ra, pm):
+        zero = {"dec_deg": 0.0, "pm_dec_mas_yr": 0.0, "radial_velocity_km_s": 0.0}
+        return {"id": i, "ra_deg": ra, "parallax_mas": 10.0, "pm_ra_cosdec_mas_yr": pm, **zero}
+
+    body = {
+        "catalogue_epoch": "J2000",
+        "epochs": ["J2000", "J3000"],
+        "stars": [star("west", 179.9, -10000.0), star("east", 179.9, 10000.0)],
+    }
+    r = client.post("/v1/charts/field", json=body)
+    assert r.status_code == 200
+    gids = {g.get("id") for g in ET.fromstring(r.data).iter(f"{SVG}g")}
+    assert {"arrow-0-0", "arrow-0-1", "arrow-1-0", "arrow-1-1"} <= gids
+
+
 def test_openapi_shows_images_not_csv(client):
     op = client.get("/openapi.json").json["paths"]["/v1/charts/track"]["post"]
     content = op["responses"]["200"]["content"]
