@@ -13,7 +13,11 @@ with row groups of 125,000 rows):
    the batch layer, and the threads' parallel efficiency);
 4. Dask, end to end: ``run_batch`` Parquet -> Parquet, local threaded scheduler, N workers;
 5. Dask, end to end on a ``dask.distributed`` LocalCluster of N worker processes with one
-   thread each (the path a cluster takes).
+   thread each (the path a cluster takes);
+6. with ``--csv``: the same catalogue as one CSV file, ``run_batch`` CSV -> Parquet on the
+   local threaded scheduler, against its own baseline: pandas ``read_csv`` of the needed
+   columns, the core and pyarrow's writer in one process, no Dask (CSV parsing dominates
+   both; the figure that shows what the checks on CSV text cost).
 
 For each Dask figure: the ratio (throughput / N) / baseline throughput, "per core used",
 by wall clock; and the same by CPU time (rows per CPU-second of all the processes doing the
@@ -24,7 +28,7 @@ weighs on small catalogues only. The load average is printed: on a shared machin
 clock ratios above 1/(load share) are not reachable.
 
 Run: .venv/bin/python -m benchmarks.bench_batch [--rows 4000000] [--workers 2] [--repeats 5]
-(or ``python -m benchmarks.run batch``, with the defaults).
+[--no-cluster] [--csv] (or ``python -m benchmarks.run batch``, with the defaults).
 """
 
 from __future__ import annotations
@@ -111,18 +115,33 @@ def bench_core(frame):
     return once
 
 
-def bench_file_pipeline(path, out_dir):
-    """Single process, no Dask: read columns, core, write Parquet (same encoding choices)."""
+def bench_file_pipeline(path, out_dir, csv=False):
+    """Single process, no Dask: read columns, core, write Parquet (same encoding choices).
+
+    ``csv``: read a CSV file with pandas (float64 for the star columns) instead of Parquet.
+    """
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     from service.core.propagation import propagate
 
+    def read(path):
+        if not csv:
+            return pq.read_table(path, columns=["source_id", *MAPPING.values()])
+        import pandas as pd
+
+        frame = pd.read_csv(
+            path,
+            usecols=["source_id", *MAPPING.values()],
+            dtype={c: "float64" for c in MAPPING.values()},
+        )
+        return pa.Table.from_pandas(frame, preserve_index=False)
+
     def once():
         shutil.rmtree(out_dir, ignore_errors=True)
         os.makedirs(out_dir)
         with Clock() as c:
-            table = pq.read_table(path, columns=["source_id", *MAPPING.values()])
+            table = read(path)
             cols = [table.column(MAPPING[k]).to_numpy() for k in MAPPING]
             res = propagate(*cols, CATALOGUE_EPOCH, TARGET_EPOCH)
             ast = res.astrometry
@@ -241,6 +260,9 @@ def main(argv=None) -> None:
     parser.add_argument("--workers", type=int, default=os.cpu_count() or 2)
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--no-cluster", action="store_true", help="skip the LocalCluster run")
+    parser.add_argument(
+        "--csv", action="store_true", help="also CSV -> Parquet (the catalogue as one CSV file)"
+    )
     args = parser.parse_args([] if argv is None else argv)
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -255,6 +277,9 @@ def main(argv=None) -> None:
             source,
             row_group_size=ROW_GROUP_ROWS,
         )
+        csv_source = os.path.join(tmp, "catalogue.csv")
+        if args.csv:
+            frame.to_csv(csv_source, index=False)
         # Warm-up: imports and first-call costs out of the measurements.
         _run(source, os.path.join(tmp, "warm"), local="threads", workers=workers)
         load = os.getloadavg()
@@ -269,6 +294,13 @@ def main(argv=None) -> None:
                 "compute": bench_dask_compute_only(frame, workers),
                 "dask": bench_dask_end_to_end(source, os.path.join(tmp, "out"), workers),
             }
+            if args.csv:
+                measures["csv_pipe"] = bench_file_pipeline(
+                    csv_source, os.path.join(tmp, "csv_pipe"), csv=True
+                )
+                measures["csv"] = bench_dask_end_to_end(
+                    csv_source, os.path.join(tmp, "csv_out"), workers
+                )
             if not args.no_cluster:
                 measures["cluster"] = bench_local_cluster(
                     stack, source, os.path.join(tmp, "cl"), workers
@@ -288,6 +320,14 @@ def main(argv=None) -> None:
             "dask": ("dask threads, Parquet->Parquet", pipe),
             "cluster": ("LocalCluster processes, Parquet->Parquet", pipe),
         }
+        if args.csv:
+            csv_pipe = got["csv_pipe"]
+            print(
+                f"{'baseline: CSV read+core+write, one process':44s} "
+                f"{n / csv_pipe[0] / 1e6:6.2f} M rows/s "
+                f"(CPU {n / csv_pipe[1] / 1e6:.2f} M rows per CPU-s)"
+            )
+            labels["csv"] = ("dask threads, CSV->Parquet", csv_pipe)
         for key, (name, base) in labels.items():
             if key not in got:
                 continue
