@@ -8,8 +8,12 @@ canonical ones, so the column mapping is exercised on every run.
 
 from __future__ import annotations
 
+import csv
+import io
 import json
 import pathlib
+import random
+import re
 
 import numpy as np
 import pytest
@@ -724,7 +728,10 @@ def test_command_line_failure_part_way_leaves_no_output_and_no_traceback(tmp_pat
             "--quiet", "--blocksize", "100KB", "--local", "synchronous"]  # fmt: skip
     assert main(args) == 1
     err = capsys.readouterr().err
-    assert err.startswith("skydrift batch propagate: ValueError:") and "Traceback" not in err
+    assert err.startswith("skydrift batch propagate: ") and "Traceback" not in err
+    assert err.count("\n") == 1  # one line, naming the file, the line and the column
+    where = "cat.csv: line 19992: column 'Plx' (for parallax_mas, in mas)"
+    assert f"{where}: 'abc' is not a number" in err
     assert not (tmp_path / "out").exists()
 
 
@@ -745,3 +752,275 @@ def test_batch_bounds_match_the_api_and_booleans_are_no_numbers(tmp_path):
     write_parquet(cat, tmp_path / "bool.parquet")
     with pytest.raises(batch.BatchInputError, match="not numeric"):
         run(tmp_path / "bool.parquet", tmp_path / "out2")
+
+
+# ---------------------------------------------------------------------------------------
+# CSV input: read by the same rule as the API and the per-file commands (api.csvio)
+# ---------------------------------------------------------------------------------------
+
+#: Rows of the CSV catalogues below: with 100 kB blocks, about ten partitions, so a row far
+#: into the file is read only when the run works (the first rows are read when it opens).
+CSV_ROWS = 5000
+FAR_LINE = CSV_ROWS - 100  # a line in one of the last partitions
+
+
+def csv_catalogue(tmp_path, edits=(), *, layout="every-column", name="cat.csv"):
+    """The synthetic catalogue (good rows only) as CSV, with lines replaced.
+
+    ``edits``: (line number in the file, header = 1; function of the line's text -> new
+    text). ``layout``: "every-column" (every column is read), "some-columns" (a text column
+    no job reads), "quoted" (a kept text column, quoted: its cells hold commas) or
+    "quoted-unused" (the same, not read).
+    """
+    cat = synthetic_catalogue(CSV_ROWS, seed=8)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True)
+    if layout == "some-columns":
+        cat["note"] = "n"
+    elif layout.startswith("quoted"):
+        cat["name"] = [f"Star {i}, the {i % 7}th" for i in range(len(cat))]
+    lines = cat.to_csv(index=False, lineterminator="\n").splitlines()
+    for number, edit in edits:
+        lines[number - 1] = edit(lines[number - 1])
+    path = tmp_path / name
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+CSV_LAYOUTS = ["every-column", "some-columns", "quoted", "quoted-unused"]
+
+
+def header_cells(layout: str) -> int:
+    return 7 if layout == "every-column" else 8
+
+
+def run_layout(path, dest, layout: str, **kw):
+    keep = ["source_id", "name"] if layout == "quoted" else ["source_id"]
+    return run_csv(path, dest, keep=keep, **kw)
+
+
+def run_csv(path, dest, **kw):
+    kw.setdefault("blocksize", "100KB")
+    return run(path, dest, local="synchronous", **kw)
+
+
+def refused(line: int):
+    """The error a refused row raises: before any work in the first rows, else part-way."""
+    return batch.BatchInputError if line < 10 else batch.BatchDataError
+
+
+def drop_cells(k: int):
+    """An edit: the line without its last ``k`` cells (quoted cells kept whole)."""
+
+    def edit(text):
+        buf = io.StringIO()
+        csv.writer(buf, lineterminator="").writerow(next(csv.reader([text]))[:-k])
+        return buf.getvalue()
+
+    return edit
+
+
+def set_cell(column: int, value: str):
+    def edit(text):
+        cells = text.split(",")
+        cells[column] = value
+        return ",".join(cells)
+
+    return edit
+
+
+@pytest.mark.parametrize("layout", CSV_LAYOUTS)
+@pytest.mark.parametrize("line", [3, FAR_LINE], ids=["first-rows", "far"])
+def test_csv_row_with_missing_trailing_cells_is_refused(tmp_path, line, layout):
+    # pandas filled the missing cells with NaN: the row was computed (or flagged) as if
+    # its parallax and motions were unknown. The API refuses the row by its line.
+    path = csv_catalogue(tmp_path, [(line, drop_cells(2))], layout=layout)
+    n = header_cells(layout)
+    with pytest.raises(refused(line), match=rf"cat\.csv: line {line}: row has {n - 2} cells; "
+                       rf"the header has {n}$"):  # fmt: skip
+        run_layout(path, tmp_path / "out", layout)
+    assert not (tmp_path / "out").exists()
+
+
+def test_csv_refusal_on_the_command_line_is_one_line_and_leaves_nothing(tmp_path, capsys):
+    from service.cli import main
+
+    path = csv_catalogue(tmp_path, [(FAR_LINE, drop_cells(1))])
+    mapping = ",".join(f"{k}={v}" for k, v in MAPPING.items())
+    args = ["batch", "propagate", str(path), str(tmp_path / "out"), "--columns", mapping,
+            "--catalogue-epoch", "J2016.0", "--target-epoch", "J2031.5", "--quiet",
+            "--blocksize", "100KB"]  # fmt: skip
+    assert main(args) == 1
+    err = capsys.readouterr().err
+    assert err == (
+        f"skydrift batch propagate: {path}: line {FAR_LINE}: row has 6 cells; the header has 7\n"
+    )
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize(
+    "mix",
+    ["one-more", "many-more", "more-and-fewer", "trailing-comma-and-fewer"],
+)
+@pytest.mark.parametrize("layout", CSV_LAYOUTS)
+def test_csv_row_with_more_cells_than_the_header_is_refused(tmp_path, mix, layout):
+    # Reading only some columns, pandas ignored the extra cells (and, reading all, took the
+    # first row's extra cell for an index). A row with one cell too many and another with
+    # one too few leave the count of commas of the block unchanged: still refused.
+    far = FAR_LINE
+    edits = {
+        "one-more": [(far, lambda t: t + ",1.5")],
+        "many-more": [(2, lambda t: t + ",1,2,3")],
+        "more-and-fewer": [(far - 20, drop_cells(1)), (far, lambda t: t + ",7")],
+        "trailing-comma-and-fewer": [(far - 20, lambda t: t + ","), (far, drop_cells(1))],
+    }[mix]
+    path = csv_catalogue(tmp_path, edits, layout=layout)
+    first = edits[0][0]
+    n = header_cells(layout)
+    cells = {"one-more": n + 1, "many-more": n + 3, "more-and-fewer": n - 1,
+             "trailing-comma-and-fewer": n + 1}[mix]  # fmt: skip
+    with pytest.raises(refused(first), match=rf"line {first}: row has {cells} cells; "
+                       rf"the header has {n}$"):  # fmt: skip
+        run_layout(path, tmp_path / "out", layout)
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("word", ["nan", "NaN", "-nan", "NA", "N/A", "null", "NULL", "None"])
+def test_csv_cells_read_as_unknown_only_when_empty(tmp_path, word):
+    # pandas' default na_values read these as unknown; the API takes an empty cell as
+    # unknown and refuses every other text that is no number (api.tables, csv cells).
+    path = csv_catalogue(tmp_path, [(FAR_LINE, set_cell(3, word))])  # Plx, optional
+    with pytest.raises(batch.BatchDataError, match=rf"line {FAR_LINE}: column 'Plx' \(for "
+                       rf"parallax_mas, in mas\): '{re.escape(word)}' is not a number; leave "
+                       "the cell empty for an unknown value$"):  # fmt: skip
+        run_csv(path, tmp_path / "out")
+    # In the first rows (which give the columns their types) it is found before any work.
+    path = csv_catalogue(tmp_path, [(4, set_cell(1, word))], name="first.csv")  # RA_ICRS
+    with pytest.raises(batch.BatchInputError, match=rf"first\.csv: line 4: column 'RA_ICRS' \("
+                       rf"for ra_deg, in deg\): '{re.escape(word)}' is not a number"):  # fmt: skip
+        run_csv(path, tmp_path / "out")
+    # An empty cell is still unknown: the row is computed without a parallax.
+    path = csv_catalogue(tmp_path, [(FAR_LINE, set_cell(3, ""))], name="empty.csv")
+    run_csv(path, tmp_path / "out")
+    out = read_output(tmp_path / "out")
+    assert np.isnan(out["parallax_mas"].iloc[FAR_LINE - 2])
+    names = batch.flag_names(out["propagation_flags"].iloc[[FAR_LINE - 2]], "propagation_flags",
+                             "propagate")  # fmt: skip
+    assert "parallax_missing" in names[0]
+
+
+def test_csv_duplicated_column_name_is_refused(tmp_path, monkeypatch):
+    # pandas renamed the second to "RA_ICRS.1" and the run read the first only.
+    path = csv_catalogue(tmp_path, [(1, lambda t: t.replace("Plx", "RA_ICRS"))])
+
+    def never(*args, **kwargs):  # pragma: no cover - failing the test is the point
+        raise AssertionError("a partition was processed")
+
+    with monkeypatch.context() as m:
+        m.setattr(engine, "process_partition", never)
+        with pytest.raises(batch.BatchInputError, match=r"cat\.csv: line 1: column 'RA_ICRS' "
+                           "is given twice in the header$"):  # fmt: skip
+            run_csv(path, tmp_path / "out", columns={**MAPPING, "parallax_mas": "RA_ICRS"})
+    # In a later file of the input (each file has its own header): refused when read.
+    (tmp_path / "parts").mkdir()
+    csv_catalogue(tmp_path / "parts", name="a.csv")
+    csv_catalogue(tmp_path / "parts", [(1, lambda t: t.replace("pmDE", "pmRA"))], name="b.csv")
+    with pytest.raises(batch.BatchDataError, match=r"b\.csv: line 1: column 'pmRA' is given "
+                       "twice in the header$"):  # fmt: skip
+        run_csv(str(tmp_path / "parts" / "*.csv"), tmp_path / "out")
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("text", ["1_0.5", "\u0661\u0662", "\uff13", "12\u0665"])
+def test_csv_numbers_in_other_digits_or_with_underscores_are_refused(tmp_path, text):
+    # The API refuses them (numbers.DECIMAL_TEXT); pandas refused them too, but in a dask
+    # message about dtypes without file, line or column.
+    path = csv_catalogue(tmp_path, [(FAR_LINE, set_cell(4, text))])  # pmRA
+    with pytest.raises(batch.BatchDataError, match=rf"cat\.csv: line {FAR_LINE}: column 'pmRA' "
+                       rf"\(for pm_ra_cosdec_mas_yr, in mas/yr\): '{text}' is not a number "
+                       "written with ASCII digits and no underscores$"):  # fmt: skip
+        run_csv(path, tmp_path / "out")
+
+
+def test_csv_text_the_rule_accepts_reads_as_before(tmp_path):
+    # The checks on CSV text must not refuse what is fine: Windows and old Mac line ends,
+    # quoted cells (with commas), blank lines, blanks around numbers (a cell of blanks only
+    # is refused, as pandas refused it before), a column not read.
+    # Each gives bitwise the output of the same catalogue from Parquet.
+    cat = synthetic_catalogue(CSV_ROWS, seed=9)
+    write_parquet(cat, tmp_path / "cat.parquet")
+    run(tmp_path / "cat.parquet", tmp_path / "from_parquet")
+    expected = read_output(tmp_path / "from_parquet")
+    text = cat.to_csv(index=False, lineterminator="\n")
+    lines = text.splitlines()
+    quoted = [f'"{h}"' for h in lines[0].split(",")]
+    variants = {
+        "crlf.csv": "\r\n".join(lines) + "\r\n",
+        "cr.csv": "\r".join(lines[:200]) + "\r",  # dask needs a newline past 256 kB
+        "quoted.csv": "\n".join([",".join(quoted + ['"note"'])]
+                                + [f'{ln},"a, ""b"""' for ln in lines[1:]]) + "\n",
+        "blank-lines.csv": "\n".join(lines[:100] + ["", "  "] + lines[100:]) + "\n\n",
+        "blanks-around.csv": "\n".join(lines[:1] + [",".join(f" {c}\t" if c else c for c in
+                                                              ln.split(",")) for ln in lines[1:]]),
+        "unused-column.csv": "\n".join([lines[0] + ",note"] + [ln + ",x" for ln in lines[1:]]),
+    }  # fmt: skip
+    for name, content in variants.items():
+        (tmp_path / name).write_bytes(content.encode())
+        # dask cuts files into blocks at newlines only: old Mac line ends give one block.
+        blocksize = None if name == "cr.csv" else "100KB"
+        run_csv(tmp_path / name, tmp_path / f"from_{name}", blocksize=blocksize)
+        got = read_output(tmp_path / f"from_{name}")
+        assert list(got.columns) == list(expected.columns), name
+        assert len(got) == (199 if name == "cr.csv" else len(expected)), name
+        for column in expected.columns:
+            assert_bitwise_equal(got[column].to_numpy(), expected[column].to_numpy()[: len(got)],
+                                 f"{name}: {column}")  # fmt: skip
+
+
+def test_csv_cell_counts_agree_with_the_csv_module():
+    """The fast checks of cells per row (a count of commas, numpy passes over the bytes,
+    quoted cells left out) refuse a block exactly when Python's csv module finds a row with
+    another number of cells than the header: random blocks with quoted cells holding
+    commas, quotes and newlines, CRLF line ends, blank lines, every column read or not."""
+    from service.batch.csvinput import NA_OPTIONS, CsvRowError, read_block
+
+    rng = random.Random(20261202)
+    texts = ["a", "", "b c", "x, y", 'q "z"', "line\nbreak", "w,", ",", '""']
+    refusals = 0
+    for _ in range(400):
+        n = rng.randint(2, 6)
+        header = [f"c{i}" for i in range(n)]
+        text_column = rng.randrange(n)
+        buf = io.StringIO()
+        writer = csv.writer(buf, lineterminator="\n",
+                            quoting=rng.choice([csv.QUOTE_MINIMAL, csv.QUOTE_ALL]))  # fmt: skip
+        writer.writerow(header)
+        for _ in range(rng.randint(1, 30)):
+            row = [rng.choice(texts) if k == text_column else rng.choice(["", "1.5", " 7 "])
+                   for k in range(n)]  # fmt: skip
+            u = rng.random()
+            if u < 0.02:
+                row = row[: rng.randint(1, n - 1)]
+            elif u < 0.04:
+                row += ["", "9"][: rng.randint(1, 2)]
+            writer.writerow(row)
+            if rng.random() < 0.05:
+                buf.write(rng.choice(["\n", "  \n"]))
+        text = buf.getvalue()
+        if rng.random() < 0.3:
+            text = text.replace("\n", "\r\n")
+        wrong = any(
+            len(r) != n
+            for r in csv.reader(io.StringIO(text, newline=""))
+            if r and not (len(r) == 1 and not r[0].strip(" \t"))
+        )
+        numbers = [h for k, h in enumerate(header) if k != text_column]
+        usecols = header if rng.random() < 0.5 else numbers
+        try:
+            read_block(io.BytesIO(text.encode()), usecols=usecols,
+                       dtype=dict.fromkeys(numbers, "float64"), **NA_OPTIONS)  # fmt: skip
+        except CsvRowError as exc:
+            assert wrong and "cells; the header has" in exc.message, text
+            refusals += 1
+        else:
+            assert not wrong, text
+    assert 100 < refusals < 300  # both kinds of blocks were tried

@@ -36,6 +36,14 @@ with a message naming the column.
 Unknown values (NaN in the core's results) are written as Parquet nulls, which pandas and
 Dask read back as NaN.
 
+CSV input
+---------
+Read by the rule of every other CSV the service reads (:mod:`.csvinput`): unique column
+names, as many cells per row as the header, only an empty cell unknown ("nan", "NA", "null"
+are refused), numbers in ASCII digits. A refused row or cell stops the run with one line
+naming the file, the line and the column (:class:`BatchDataError` part-way,
+:class:`BatchInputError` in the first rows, read before any work); no output is left.
+
 Per-row flags
 -------------
 Every output row carries ``row_flags`` (:class:`RowFlag`: the row could not be computed at
@@ -76,6 +84,7 @@ from .engine import (
 from .jobs import CONSTELLATIONS, JOBS, PROPAGATE, VELOCITY
 from .spec import (
     FLAG_DTYPE,
+    BatchDataError,
     BatchInputError,
     BatchJob,
     InputField,
@@ -90,6 +99,7 @@ __all__ = [
     "METADATA_FILE",
     "PROPAGATE",
     "VELOCITY",
+    "BatchDataError",
     "BatchInputError",
     "BatchJob",
     "BatchPlan",

@@ -7,7 +7,7 @@ import sys
 from ..numbers import whole
 from .engine import INPUT_FORMATS, LOCAL_SCHEDULERS, METADATA_FILE
 from .jobs import JOBS
-from .spec import FLAG_DTYPE, BatchInputError, BatchJob
+from .spec import FLAG_DTYPE, BatchDataError, BatchInputError, BatchJob
 
 
 def add_subcommands(sub) -> None:
@@ -109,10 +109,13 @@ def _run(args) -> int:
     except BatchInputError as exc:
         print(f"skydrift batch {job.name}: {exc}", file=sys.stderr)
         return 2
+    except BatchDataError as exc:
+        # A CSV row or cell refused part-way, with its file and line: no output is left.
+        print(f"skydrift batch {job.name}: {exc}", file=sys.stderr)
+        return 1
     except (OSError, ValueError) as exc:
-        # Found while reading the files or running (a cell that is no number past the
-        # sample pandas typed the columns from, an option dask refuses, a path that cannot
-        # be written): said in one line; no partial output is left (engine.run_batch).
+        # Found while reading the files or running (an option dask refuses, a path that
+        # cannot be written): said in one line; no partial output is left (engine.run_batch).
         print(f"skydrift batch {job.name}: {type(exc).__name__}: {exc}", file=sys.stderr)
         return 1
     print(

@@ -27,6 +27,7 @@ from .spec import (
     CATALOGUE_EPOCH_FIELD,
     FLAG_DTYPE,
     ROW_FLAG_MEANINGS,
+    BatchDataError,
     BatchInputError,
     BatchJob,
     RowFlag,
@@ -65,6 +66,16 @@ LOCAL_SCHEDULERS = ("threads", "processes", "synchronous")
 SCHEDULER_TIMEOUT_S = 30.0
 
 _EXTRA_HINT = "the batch commands need the optional extra: pip install 'skydrift[batch]'"
+
+
+class ColumnNotNumeric(BatchInputError):
+    """A column mapped to a numeric field has another type in the input's schema."""
+
+    def __init__(self, message: str, column: str, field):
+        super().__init__(message)
+        self.column = column
+        self.field = field
+
 
 # ---------------------------------------------------------------------------------------
 # Plans: what one run does, checked before any work
@@ -232,9 +243,11 @@ def make_plan(
         if src in input_columns:
             dtype = input_columns[src]
             if not _is_numeric(dtype):
-                raise BatchInputError(
+                raise ColumnNotNumeric(
                     f"column {src!r} (for {f.name}, in {f.unit}) in {source} is not numeric "
-                    f"(dtype {dtype})"
+                    f"(dtype {dtype})",
+                    src,
+                    f,
                 )
             mapping[f.name] = src
         elif f.required:
@@ -260,6 +273,25 @@ def make_plan(
         mapping = {k: v for k, v in mapping.items() if k in used}
         absent = [k for k in absent if k in used]
     return BatchPlan(job, mapping, tuple(absent), keep, params)
+
+
+def _is_numeric_numpy(dtype) -> bool:
+    """A numpy integer or float dtype (not a pandas extension dtype)."""
+    return isinstance(dtype, np.dtype) and dtype.kind in "fiu"
+
+
+def _refuse_text_cell(source, exc: ColumnNotNumeric) -> None:
+    """BatchInputError naming the first cell of a CSV column that is not a number (the
+    first rows gave the column its type), with its file and line, if one is found."""
+    from .csvinput import head_problem
+
+    found = head_problem(source, exc.column)
+    if found is not None:
+        path, line, problem, column = found
+        if column is not None:
+            f = exc.field
+            problem = f"column {column!r} (for {f.name}, in {f.unit}): {problem}"
+        raise BatchInputError(f"{path}: line {line}: {problem}") from None
 
 
 def _is_numeric(dtype) -> bool:
@@ -454,11 +486,21 @@ def open_input(source, input_format: str = "auto", *, blocksize=None):
         if fmt == "parquet":
             frame = dd.read_parquet(source, blocksize=blocksize or DEFAULT_PARQUET_BLOCKSIZE)
         else:
-            kw = {} if blocksize is None else {"blocksize": blocksize}
-            frame = dd.read_csv(source, **kw)
+            frame = _open_csv(source, blocksize=blocksize)
     except (FileNotFoundError, OSError) as exc:
         raise BatchInputError(f"cannot open {source}: {exc}") from None
     return frame, fmt
+
+
+def _open_csv(source, **kwargs):
+    """CSV input read by the service's rule (:mod:`.csvinput`); a row refused in the first
+    rows (read here, for the columns and their types) stops the run before any work."""
+    from . import csvinput
+
+    try:
+        return csvinput.read_csv(source, **kwargs)
+    except csvinput.CsvRowError as exc:
+        raise BatchInputError(csvinput.describe(source, exc)) from None
 
 
 def build_output(source, plan_args: dict, *, input_format="auto", blocksize=None):
@@ -482,16 +524,21 @@ def build_output(source, plan_args: dict, *, input_format="auto", blocksize=None
     """
     frame, fmt = open_input(source, input_format, blocksize=blocksize)
     schema = dict(frame.dtypes.items())
-    plan = make_plan(input_columns=schema, source=str(source), **plan_args)
+    try:
+        plan = make_plan(input_columns=schema, source=str(source), **plan_args)
+    except ColumnNotNumeric as exc:
+        if fmt == "csv":
+            _refuse_text_cell(source, exc)
+        raise
     if fmt == "parquet":
         frame = frame[plan.columns_read]
     else:
-        # Re-open reading only the needed columns, numbers as float64.
-        import dask.dataframe as dd
-
-        kw = {} if blocksize is None else {"blocksize": blocksize}
-        dtypes = {src: "float64" for src in plan.mapping.values()}
-        frame = dd.read_csv(source, usecols=plan.columns_read, dtype=dtypes, **kw)
+        # Re-open reading only the needed columns, numbers as float64; kept columns of
+        # numbers with the type their first rows gave them (a later cell that does not fit
+        # is then refused with its line, not in a dask message about types).
+        dtypes = {k: schema[k] for k in plan.keep if _is_numeric_numpy(schema[k])}
+        dtypes.update({src: "float64" for src in plan.mapping.values()})
+        frame = _open_csv(source, blocksize=blocksize, usecols=plan.columns_read, dtype=dtypes)
         frame = frame[plan.columns_read]
     meta = output_meta(plan, frame._meta)
     out = frame.map_partitions(process_partition, plan, meta=meta)
@@ -738,12 +785,16 @@ def run_batch(
                 cfg["num_workers"] = n_workers
             with dask.config.set(cfg), _progress_bar(progress), _known_upstream_warnings():
                 _, count_frame = dask.compute(write, counts)
-    except BaseException:
+    except BaseException as exc:
         # A run that stops part-way (a cell no number, a worker lost) leaves no output:
         # Parquet parts without the metadata file would read back as a smaller catalogue.
         with contextlib.suppress(OSError):
             if fs.exists(dest_path):
                 fs.rm(dest_path, recursive=True)
+        from .csvinput import CsvRowError, describe
+
+        if isinstance(exc, CsvRowError):
+            raise BatchDataError(describe(source, exc, _column_note(plan))) from None
         raise
     finally:
         if own_client is not None:
@@ -764,6 +815,19 @@ def run_batch(
     with fs.open(_join(dest_path, METADATA_FILE), "w") as handle:
         handle.write(json.dumps(metadata, indent=2) + "\n")
     return RunSummary(dest, rows, flag_counts, wall, metadata)
+
+
+def _column_note(plan: BatchPlan):
+    """column -> " (for field, in unit)" or " (kept)", for messages about an input cell."""
+    fields = {src: plan.job.field(name) for name, src in plan.mapping.items()}
+
+    def note(column: str) -> str:
+        f = fields.get(column)
+        if f is not None:
+            return f" (for {f.name}, in {f.unit})"
+        return " (kept)" if column in plan.keep else ""
+
+    return note
 
 
 @contextlib.contextmanager

@@ -22,6 +22,11 @@ class BatchInputError(ValueError):
     """The run cannot start: bad mapping, missing column, bad option. Says what to change."""
 
 
+class BatchDataError(ValueError):
+    """The run stopped part-way at input it refuses (a CSV row or cell); names the file and
+    line where it could. Nothing is left of the output."""
+
+
 class RowFlag(enum.IntFlag):
     """Why a row of the input was not computed (column ``row_flags``)."""
 
