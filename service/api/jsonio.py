@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextvars
 import json
 
 import marshmallow as ma
@@ -21,6 +22,9 @@ except ImportError:  # pragma: no cover - another WSGI server
     _ChunkErrors = ()
 
 DUMP_OPTIONS = orjson.OPT_SERIALIZE_NUMPY | orjson.OPT_NON_STR_KEYS
+
+#: The schema of the JSON body being read, in this thread (BodyParser.load_json).
+_BODY_SCHEMA: contextvars.ContextVar = contextvars.ContextVar("body_schema", default=None)
 
 
 def dumps(obj) -> bytes:
@@ -127,7 +131,7 @@ class BodyParser(FlaskParser):
             return load_arrow_request(req, schema)
         if req.args:
             refuse_query_options(req.args)
-        g.star_number_columns = _star_number_columns(schema)
+        _BODY_SCHEMA.set(schema)  # for a large body's number columns (_raw_load_json)
         return super().load_json(req, schema)
 
     def load_querystring(self, req, schema):
@@ -141,7 +145,9 @@ class BodyParser(FlaskParser):
         if not data:
             return webargs_core.missing  # no body: each required field is reported missing
         try:
-            return jsoncolumns.loads(data, g.get("star_number_columns", frozenset()))
+            if len(data) >= jsoncolumns.FROM_BYTES:
+                return jsoncolumns.loads(data, _star_number_columns(_BODY_SCHEMA.get()))
+            return orjson.loads(data)
         except orjson.JSONDecodeError as exc:
             # webargs turns json.JSONDecodeError into a 400 through our error handler, but
             # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
@@ -154,7 +160,7 @@ def _star_number_columns(schema) -> frozenset:
     those a large body in the columns layout may give as arrays (:mod:`.jsoncolumns`)."""
     from .tables import StarTableField
 
-    fld = schema.fields.get("stars")
+    fld = schema.fields.get("stars") if schema is not None else None
     return fld.numeric_names if isinstance(fld, StarTableField) else frozenset()
 
 
