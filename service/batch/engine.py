@@ -244,8 +244,7 @@ def make_plan(
             dtype = input_columns[src]
             if not _is_numeric(dtype):
                 raise ColumnNotNumeric(
-                    f"column {src!r} (for {f.name}, in {f.unit}) in {source} is not numeric "
-                    f"(dtype {dtype})",
+                    f"column {src!r}{_field_note(f)} in {source} is not numeric (dtype {dtype})",
                     src,
                     f,
                 )
@@ -290,7 +289,7 @@ def _refuse_text_cell(source, exc: ColumnNotNumeric) -> None:
         path, line, problem, column = found
         if column is not None:
             f = exc.field
-            problem = f"column {column!r} (for {f.name}, in {f.unit}): {problem}"
+            problem = f"column {column!r}{_field_note(f)}: {problem}"
         raise BatchInputError(f"{path}: line {line}: {problem}") from None
 
 
@@ -824,10 +823,15 @@ def _column_note(plan: BatchPlan):
     def note(column: str) -> str:
         f = fields.get(column)
         if f is not None:
-            return f" (for {f.name}, in {f.unit})"
+            return _field_note(f)
         return " (kept)" if column in plan.keep else ""
 
     return note
+
+
+def _field_note(f) -> str:
+    """ " (for field, in unit)": what an input column is read as, in messages about it."""
+    return f" (for {f.name}, in {f.unit})"
 
 
 @contextlib.contextmanager
