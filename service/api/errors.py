@@ -170,6 +170,8 @@ def handle_http_exception(error: HTTPException) -> Response:
     if errors and error.code == 400 and any("Invalid JSON" in e["message"] for e in errors):
         errors = None
         detail = "The request body is not valid JSON."
+        if data.get("where"):  # line, column and reason (jsonio.BodyParser)
+            detail = f"The request body is not valid JSON: {_clip(data['where'])}."
     elif errors:
         n = len(errors)
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."

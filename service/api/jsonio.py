@@ -12,6 +12,7 @@ from flask.json.provider import JSONProvider
 from flask_smorest import abort
 from webargs import core as webargs_core
 from webargs.flaskparser import FlaskParser
+from webargs.flaskparser import abort as webargs_abort
 from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
 
 from . import jsoncolumns
@@ -152,7 +153,50 @@ class BodyParser(FlaskParser):
             # webargs turns json.JSONDecodeError into a 400 through our error handler, but
             # takes an empty `doc` to mean "no body": orjson leaves it empty for bytes that
             # are not UTF-8, so it is never passed on empty.
-            raise json.JSONDecodeError(str(exc), exc.doc or "(body)", exc.pos or 0) from None
+            raise json.JSONDecodeError(
+                _decode_problem(exc), exc.doc or "(body)", exc.pos or 0
+            ) from None
+
+    def _handle_invalid_json_error(self, error, req, *args, **kwargs):
+        """400 that says where the body stops being JSON (line and column) and why."""
+        webargs_abort(
+            400, exc=error, messages={"json": ["Invalid JSON body."]}, where=_where(error)
+        )
+
+
+#: Words some writers put in JSON for numbers it cannot hold (Python's json, JavaScript).
+_NOT_JSON_NUMBERS = ("NaN", "Infinity", "-Infinity", "nan", "inf", "-inf")
+
+#: orjson's message for text that is not UTF-8 (it names surrogates whatever the bytes are).
+_NOT_UTF8 = "str is not valid UTF-8"
+
+
+def _decode_problem(exc: orjson.JSONDecodeError) -> str:
+    """orjson's reason for refusing a body, with a hint where the usual mistake shows."""
+    if exc.msg.startswith(_NOT_UTF8):
+        return "the body is not UTF-8 text (JSON must be UTF-8)"
+    doc, pos = exc.doc or "", exc.pos or 0
+    # orjson stops on the first character it cannot read: a sign's "I" for "-Infinity".
+    start = pos - 1 if pos and doc[pos - 1 : pos] == "-" else pos
+    if any(doc.startswith(word, start) for word in _NOT_JSON_NUMBERS):
+        return (
+            "NaN and infinities are not numbers in JSON; send null for an unknown value "
+            f"({exc.msg})"
+        )
+    if exc.msg.startswith("number is infinity"):
+        return "a number beyond the largest double (about 1.8e308)"
+    return exc.msg
+
+
+def _where(error) -> str | None:
+    """'line L, column C: reason' of a JSON decoding error (the reason alone for text that
+    is not UTF-8, where orjson gives no place)."""
+    msg = getattr(error, "msg", None)
+    if msg is None:  # a UnicodeDecodeError from webargs itself
+        return "the body is not UTF-8 text (JSON must be UTF-8)"
+    if msg.startswith("the body is not UTF-8"):
+        return msg
+    return f"line {error.lineno}, column {error.colno}: {msg}"
 
 
 def _star_number_columns(schema) -> frozenset:

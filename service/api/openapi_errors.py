@@ -20,7 +20,10 @@ PROBLEM_MIMETYPE = "application/problem+json"
 
 #: Responses every operation with a request body can give: status -> (component, text).
 BODY_ERRORS = {
-    "400": ("ProblemInvalidJson", "The request body is not valid JSON."),
+    "400": (
+        "ProblemInvalidJson",
+        "The request body is not valid JSON; the detail says where (line and column) and why.",
+    ),
     "413": (
         "ProblemTooLarge",
         "The body, or the number of stars, epochs or results it asks for, exceeds the "

@@ -168,6 +168,54 @@ def test_malformed_json(client):
     assert_problem(r, 400)
 
 
+# Where a body stops being JSON, by line and column (1-based, as orjson and Python's json
+# count them), and why. RFC 8259 section 6: "Numeric values that cannot be represented in
+# the grammar below (such as Infinity and NaN) are not permitted", and JSON text is UTF-8
+# (section 8.1).
+@pytest.mark.parametrize(
+    ("body", "place", "reason", "as_stdlib"),
+    [
+        (b'{"stars": [', "line 1, column 12", "unexpected end of data", True),
+        # orjson names the comma, Python's json the bracket after it (column 14).
+        (b'{"catalogue_epoch": 2016.0,\n "stars": [1,]}', "line 2, column 13", "comma", False),
+        (b'{"stars": [{"ra_deg": NaN}]}', "line 1, column 23", "send null for an unknown", False),
+        (b'{"stars": [{"ra_deg": -Infinity}]}', "line 1, column 24", "not numbers in JSON", False),
+        (b'{"stars": [{"ra_deg": 1e400}]}', "line 1, column 23", "largest double", False),
+        (b'{"a": 1}\n{"b": 2}', "line 2, column 1", "after document", True),
+    ],
+)
+def test_malformed_json_says_where_and_why(client, body, place, reason, as_stdlib):
+    r = client.post(URL, data=body, content_type="application/json")
+    problem = assert_problem(r, 400)
+    assert problem["detail"].startswith("The request body is not valid JSON: ")
+    assert f"{place}: " in problem["detail"] and reason in problem["detail"]
+    # Python's json module (the standard library) puts the problem at the same place (it
+    # reads NaN, infinities and 1e400 as an extension to JSON).
+    if as_stdlib:
+        with pytest.raises(json.JSONDecodeError) as err:
+            json.loads(body)
+        assert place == f"line {err.value.lineno}, column {err.value.colno}"
+
+
+def test_body_not_utf8_is_said_so(client):
+    r = client.post(URL, data=b'{"stars": "\xff"}', content_type="application/json")
+    problem = assert_problem(r, 400)
+    assert "not UTF-8" in problem["detail"]
+
+
+def test_malformed_large_json_says_where(client):
+    """A body of 1 MiB and more is read by simdjson first; a refused one by orjson, which
+    names the place."""
+    cols = ", ".join(f'"{f}": [{", ".join(["1.5"] * 120_000)}]' for f in ("ra_deg", "dec_deg"))
+    body = '{"catalogue_epoch": 2016.0, "target_epochs": [2020.0],\n "stars": {' + cols + ",]}}"
+    assert len(body) > 1 << 20
+    r = client.post(URL, data=body.encode(), content_type="application/json")
+    problem = assert_problem(r, 400)
+    assert (
+        f"line 2, column {len(body.splitlines()[1]) - 2}: unexpected character" in problem["detail"]
+    )
+
+
 def test_wrong_content_type(client):
     r = client.post(URL, data=json.dumps(dict(BASE, stars=[STAR])), content_type="text/plain")
     assert_problem(r, 415)
