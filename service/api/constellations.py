@@ -688,7 +688,7 @@ def crossings(args):
         "catalogue_epoch": ends[0],
         "start": ends[1],
         "end": ends[2],
-        "epoch_precision_days": core.CROSSING_EPOCH_TOLERANCE_YR * 365.25,
+        "epoch_precision_days": core.CROSSING_EPOCH_TOLERANCE_DAYS,
         "star_count": table.size,
         "flag_meanings": _flag_meanings(res.flags),
         "stars": stars,

@@ -97,8 +97,9 @@ DEFAULT_NEAR_BOUNDARY_ARCSEC = 1.0
 MAX_CROSSING_WINDOW_YR = 100_000.0
 #: Smallest sampling step accepted for a crossing search, Julian years (one day).
 MIN_CROSSING_STEP_YR = 1.0 / JULIAN_YEAR_DAYS
-#: Precision to which crossing epochs are located, Julian years (1e-4 day).
-CROSSING_EPOCH_TOLERANCE_YR = 1e-4 / JULIAN_YEAR_DAYS
+#: Precision to which crossing epochs are located, days, and in Julian years.
+CROSSING_EPOCH_TOLERANCE_DAYS = 1e-4
+CROSSING_EPOCH_TOLERANCE_YR = CROSSING_EPOCH_TOLERANCE_DAYS / JULIAN_YEAR_DAYS
 #: Shortest step taken when a star sits on a boundary (1e-3 day): two crossings closer in
 #: time than this may be reported as one or none (Note 4 of :func:`boundary_crossings`).
 CROSSING_MIN_STEP_YR = 1e-3 / JULIAN_YEAR_DAYS

@@ -159,6 +159,9 @@ def test_crossings_match_core(client):
     got = [c["epoch"]["julian_epoch_tdb"] for s in body["stars"] for c in s["crossings"]]
     np.testing.assert_array_equal(got, ref.epoch_jyear)
     assert sum(len(s["crossings"]) for s in body["stars"]) >= 1
+    # The precision the answer states is the documented 1e-4 day as written (it was
+    # 0.00010000000000000002, a round trip through years).
+    assert body["epoch_precision_days"] == 1e-4
 
 
 def test_outline_is_geojson(client):
