@@ -124,6 +124,12 @@ def equinox_field_to_openapi(self, field, **kwargs) -> dict:
 
 
 class FrameSpecSchema(ma.Schema):
+    # A frame given by its name alone ("galactic") is the usual slip: show the form.
+    error_messages = {
+        "type": 'must be an object such as {"name": "galactic"} or '
+        '{"name": "fk5", "equinox": "J2000.0"}'
+    }
+
     name = ma.fields.String(
         required=True,
         validate=ma.validate.OneOf(core.FRAME_NAMES),

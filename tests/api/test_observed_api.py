@@ -396,6 +396,13 @@ def test_unknown_frame_names_the_field(client, frames_example):
     assert_problem(r, 422, "to_frame.name")
 
 
+def test_frame_given_as_a_name_alone_shows_the_form(client, frames_example):
+    r = client.post(FRAMES, json=dict(frames_example, to_frame="galactic"))
+    assert_problem(r, 422, "to_frame")
+    (error,) = r.json["errors"]
+    assert error["message"].startswith('must be an object such as {"name": "galactic"}')
+
+
 @pytest.mark.parametrize("equinox", [True, ["B1950.0"]])
 def test_equinox_of_another_json_type_names_the_field(client, frames_example, equinox):
     frame = {"name": "fk4", "equinox": equinox}  # true is not the year 1
