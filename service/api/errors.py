@@ -14,10 +14,12 @@ from __future__ import annotations
 import logging
 import re
 
+import marshmallow as ma
 from flask import Response, g
 from werkzeug.exceptions import HTTPException, InternalServerError
 
 from .jsonio import dumps
+from .spelling import closest_name
 
 log = logging.getLogger("skydrift.errors")
 
@@ -114,6 +116,45 @@ def _worded(message: str) -> str:
     return message
 
 
+_LOCATIONS = ("json", "query", "form", "files", "headers", "view_args")
+_UNKNOWN = ["Unknown field."]
+
+
+def with_likely_names(messages, schema):
+    """marshmallow's "Unknown field." for a name, with the accepted name it most likely
+    stands for ("target_epoch": did you mean "target_epochs"?), found in ``schema`` (the
+    request's, as webargs passes it) and its nested schemas; other messages unchanged."""
+    if not isinstance(messages, dict) or not isinstance(schema, ma.Schema):
+        return messages
+    fields = schema.fields
+    out = {}
+    for key, value in messages.items():
+        if key in _LOCATIONS and schema is not None and isinstance(value, dict):
+            out[key] = with_likely_names(value, schema)
+        elif value == _UNKNOWN and isinstance(key, str):
+            accepted = [f.data_key or name for name, f in fields.items() if not f.dump_only]
+            likely = closest_name(key, accepted)
+            out[key] = value if likely is None else [_unknown_field_text(likely)]
+        else:
+            out[key] = _in_nested(fields.get(key), value)
+    return out
+
+
+def _unknown_field_text(likely: str) -> str:
+    return f'is not a field of this request (did you mean "{likely}"?)'
+
+
+def _in_nested(field, value):
+    if isinstance(field, ma.fields.Nested) and isinstance(field.schema, ma.Schema):
+        if field.many and isinstance(value, dict):
+            return {i: with_likely_names(v, field.schema) for i, v in value.items()}
+        return with_likely_names(value, field.schema)
+    inner = getattr(field, "inner", None)  # List(Nested(...))
+    if isinstance(inner, ma.fields.Nested) and isinstance(value, dict):
+        return {i: _in_nested(inner, v) for i, v in value.items()}
+    return value
+
+
 def flatten_messages(messages, prefix: str = "") -> list[dict]:
     """Flatten marshmallow/webargs nested messages into [{"field", "message"}].
 
@@ -166,7 +207,7 @@ def handle_http_exception(error: HTTPException) -> Response:
         if errors is None:
             errors = flatten_messages(data["errors"])
     elif "messages" in data:
-        errors = flatten_messages(data["messages"])
+        errors = flatten_messages(with_likely_names(data["messages"], data.get("schema")))
     if errors and error.code == 400 and any("Invalid JSON" in e["message"] for e in errors):
         errors = None
         detail = "The request body is not valid JSON."

@@ -36,6 +36,7 @@ from .common import (
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
 from .propagation import FLAG_MEANINGS as PROPAGATION_FLAG_MEANINGS
+from .spelling import unknown_name_text
 from .tables import StarTableField
 
 ADVISORY = (
@@ -153,7 +154,7 @@ class SiteField(ma.fields.Field):
         if isinstance(value, dict):
             allowed = {"latitude_deg", "longitude_deg", "height_m", "name"}
             errors = {
-                k: ["unknown field; accepted: " + ", ".join(sorted(allowed))]
+                k: [unknown_name_text(k, allowed, "accepted: " + ", ".join(sorted(allowed)))]
                 for k in set(value) - allowed
             }
             # JSON numbers only, as every number of a request: the core would read true as 1

@@ -26,8 +26,10 @@ import numpy as np
 from flask import current_app
 from flask_smorest import abort
 
-# Bounds shared with the batch jobs (re-exported for the endpoint schemas).
 from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # noqa: F401
+
+# Bounds shared with the batch jobs (re-exported for the endpoint schemas).
+from .spelling import unknown_name_text
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
 #: where the record schema gives none (or only one side): no quantity the service takes
@@ -418,7 +420,7 @@ class StarTableField(ma.fields.Field):
         if unknown:
             for name in sorted(unknown)[:MAX_LISTED_ERRORS]:
                 first = next(i for i, r in enumerate(records) if name in r)
-                errors.add(f"[{first}].{name}", self._unknown_text())
+                errors.add(f"[{first}].{name}", self._unknown_text(name))
             errors.raise_if_any()
         columns = {}
         for spec in self.specs:
@@ -432,7 +434,7 @@ class StarTableField(ma.fields.Field):
         errors = TableErrors("columns")
         unknown = set(cols) - self.names
         if unknown:
-            raise ma.ValidationError({name: [self._unknown_text()] for name in sorted(unknown)})
+            raise ma.ValidationError({name: [self._unknown_text(name)] for name in sorted(unknown)})
         lengths = {}
         for name, col in cols.items():
             if not isinstance(col, list | np.ndarray):  # arrays: see .jsoncolumns
@@ -469,7 +471,7 @@ class StarTableField(ma.fields.Field):
         errors = TableErrors("columns", table.lines, table.header_line)
         unknown = [h for h in table.header if h not in self.names]
         for name in unknown[:MAX_LISTED_ERRORS]:
-            errors.add(errors.header_key(name), self._unknown_text())
+            errors.add(errors.header_key(name), self._unknown_text(name))
         errors.raise_if_any()
         if table.size == 0:
             errors.add(f"line {table.header_line + 1}", "at least one star is required")
@@ -491,7 +493,7 @@ class StarTableField(ma.fields.Field):
         as for the columns form, which it answers in unless asked otherwise."""
         errors = TableErrors("columns")
         for name in [h for h in table.names if h not in self.names][:MAX_LISTED_ERRORS]:
-            errors.add(errors.header_key(name), self._unknown_text())
+            errors.add(errors.header_key(name), self._unknown_text(name))
         errors.raise_if_any()
         if table.size == 0:
             raise ma.ValidationError("at least one star is required")
@@ -529,8 +531,9 @@ class StarTableField(ma.fields.Field):
         errors.raise_if_any()
         return StarTable(columns, ids, n, errors.form, given, lines)
 
-    def _unknown_text(self) -> str:
-        return "unknown field; accepted fields: " + ", ".join(s.name for s in self.specs)
+    def _unknown_text(self, name) -> str:
+        names = [s.name for s in self.specs]
+        return unknown_name_text(name, names, "accepted fields: " + ", ".join(names))
 
 
 def range_bounds_to_openapi(self, field, ret=None, **kwargs) -> dict:

@@ -1,0 +1,132 @@
+"""An unknown name in a request is answered with the accepted name it most likely stands for.
+
+Field names carry their unit, so the usual slips are the bare quantity ("ra", "parallax")
+and typing errors ("target_epoch"); the suggestion must never name a field of another
+quantity (pm_ra_mas_yr is not pm_dec_mas_yr) and is left out where two fit alike.
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from service.api.app import create_app
+from service.api.spelling import closest_name
+
+STAR_FIELDS = [
+    "id",
+    "ra_deg",
+    "dec_deg",
+    "parallax_mas",
+    "pm_ra_cosdec_mas_yr",
+    "pm_dec_mas_yr",
+    "radial_velocity_km_s",
+    "ra_error_mas",
+    "dec_error_mas",
+    "parallax_error_mas",
+    "pm_ra_cosdec_error_mas_yr",
+    "pm_dec_error_mas_yr",
+    "radial_velocity_error_km_s",
+    "correlation_ra_dec",
+]
+REQUEST_FIELDS = ["stars", "catalogue_epoch", "target_epochs", "target_range", "model", "layout"]
+
+
+@pytest.mark.parametrize(
+    ("given", "likely"),
+    [
+        ("ra", "ra_deg"),
+        ("dec", "dec_deg"),
+        ("parallax", "parallax_mas"),
+        ("pm_ra", "pm_ra_cosdec_mas_yr"),
+        ("pm_ra_mas_yr", "pm_ra_cosdec_mas_yr"),  # not pm_dec_mas_yr, though closer in letters
+        ("pm_dec", "pm_dec_mas_yr"),
+        ("radial_velocity", "radial_velocity_km_s"),
+        ("ra_err", "ra_error_mas"),
+        ("paralax_mas", "parallax_mas"),  # a typing error: difflib
+        ("RA_DEG", "ra_deg"),
+        ("ra_deg", None),  # accepted as it is
+        ("mas", None),  # a unit alone is no field's start
+        ("pmra", None),
+        ("rv", None),
+        ("", None),
+    ],
+)
+def test_closest_star_field(given, likely):
+    assert closest_name(given, STAR_FIELDS) == likely
+
+
+def test_two_alike_get_no_suggestion():
+    assert closest_name("target_epoch", REQUEST_FIELDS) == "target_epochs"
+    assert closest_name("epoch", REQUEST_FIELDS) is None  # catalogue_epoch or target_epochs
+
+
+@pytest.fixture(scope="module")
+def client():
+    return create_app().test_client()
+
+
+STAR = {"ra_deg": 10.0, "dec_deg": 41.0, "pm_ra_cosdec_mas_yr": 30.0, "pm_dec_mas_yr": -20.0}
+
+
+def messages(r) -> dict:
+    assert r.status_code == 422, r.get_data(as_text=True)
+    assert r.mimetype == "application/problem+json"
+    return {e["field"]: e["message"] for e in r.json["errors"]}
+
+
+def test_star_record_field(client):
+    star = {k: v for k, v in STAR.items() if k != "ra_deg"} | {"ra": 10.0}
+    body = {"stars": [star], "catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"]}
+    got = messages(client.post("/v1/propagation", json=body))
+    assert got["stars[0].ra"].startswith('unknown field (did you mean "ra_deg"?); accepted')
+
+
+def test_star_column_and_csv_header(client):
+    cols = {k: [v] for k, v in STAR.items()} | {"parallax": [3.0]}
+    body = {"stars": cols, "catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"]}
+    got = messages(client.post("/v1/propagation", json=body))
+    assert got["stars.parallax"].startswith('unknown field (did you mean "parallax_mas"?)')
+    csv = "ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec,parallax_mas\n10,41,30,-20,3\n"
+    r = client.post(
+        "/v1/propagation?catalogue_epoch=J2016.0&target_epochs=J2020.0",
+        data=csv,
+        content_type="text/csv",
+    )
+    got = messages(r)
+    assert got["line 1: pm_dec"].startswith('unknown field (did you mean "pm_dec_mas_yr"?)')
+
+
+def test_request_and_nested_fields(client):
+    body = {
+        "stars": [STAR],
+        "catalogue_epoch": "J2016.0",
+        "target_range": {"start": 2016.0, "stopp": 2030.0, "count": 3},
+    }
+    got = messages(client.post("/v1/propagation", json=body))
+    assert got["target_range.stopp"] == 'is not a field of this request (did you mean "stop"?)'
+    body = {"stars": [STAR], "catalogue_epoch": "J2016.0", "target_epoch": "J2020.0"}
+    got = messages(client.post("/v1/propagation", json=body))
+    assert got["target_epoch"] == 'is not a field of this request (did you mean "target_epochs"?)'
+    body = {
+        "stars": [STAR],
+        "catalogue_epoch": "J2016.0",
+        "instants": ["2026-12-03T00:00:00Z"],
+        "site": {"latitude": 38.4, "longitude_deg": -7.6},
+        "atmosphere": {"pressure": 850.0},
+    }
+    got = messages(client.post("/v1/observed", json=body))
+    assert got["site.latitude"].startswith('unknown field (did you mean "latitude_deg"?)')
+    assert got["atmosphere.pressure"] == (
+        'is not a field of this request (did you mean "pressure_hpa"?)'
+    )
+
+
+def test_query_option(client):
+    got = messages(client.get("/v1/constellations/outlines?fram=icrs"))
+    assert got["fram"] == 'is not a field of this request (did you mean "frame"?)'
+
+
+def test_no_likely_name_keeps_the_plain_words(client):
+    body = {"stars": [STAR], "catalogue_epoch": "J2016.0", "target_epochs": [2020.0], "zz": 1}
+    got = messages(client.post("/v1/propagation", json=body))
+    assert got["zz"] == "is not a field of this request (check the spelling)"
