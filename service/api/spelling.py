@@ -2,7 +2,9 @@
 
 Field names here carry their unit ("ra_deg", "parallax_mas", "pressure_hpa"), so the usual
 slip is the bare quantity ("ra", "parallax") or a typing error ("target_epoch",
-"paralax_mas"). Problems that refuse an unknown name add the likely one.
+"paralax_mas"), and catalogue files often come with the short column names common in
+astrometric catalogues ("pmra", "pmdec", "ra_dec_corr"). Problems that refuse an unknown name
+add the likely one; the name is never taken in its place (its unit would be a guess).
 """
 
 from __future__ import annotations
@@ -12,22 +14,54 @@ import difflib
 #: Least similarity (difflib's ratio, 0 to 1) for a typing error to be suggested.
 SIMILARITY_CUTOFF = 0.75
 
+#: Short words of catalogue column names (common practice), as the words of ours.
+WORD_ALIASES = {
+    "pmra": "pm_ra",
+    "pmdec": "pm_dec",
+    "plx": "parallax",
+    "rv": "radial_velocity",
+    "vrad": "radial_velocity",
+    "elevation": "height",
+}
 
-def _covers(given: list[str], name: list[str]) -> bool:
-    """Each word of ``given`` begins a word of ``name``, in order ("pm_ra" in
-    "pm_ra_cosdec_mas_yr", "ra_err" in "ra_error_mas")."""
-    words = iter(name)
-    return all(any(w.startswith(g) for w in words) for g in given)
+#: Words of field names that give a unit (or, for cosdec, how a quantity is measured).
+UNIT_WORDS = frozenset({"deg", "mas", "yr", "km", "s", "m", "hpa", "c", "um", "pc", "cosdec"})
+
+#: Whole names that stand for another name of the same role.
+NAME_ALIASES = {"stop": ("end",), "end": ("stop",)}
+
+
+def _our_words(key: str) -> list[str]:
+    """The words of ``key`` with catalogue short forms written as ours: "pmra_error" ->
+    pm, ra, error; "ra_dec_corr" -> correlation, ra, dec."""
+    words = [w for w in key.split("_") if w]
+    if len(words) >= 3 and words[-1] == "corr":
+        words = ["correlation", *words[:-1]]
+    return "_".join(WORD_ALIASES.get(w, w) for w in words).split("_")
+
+
+def _added_words(given: list[str], name: list[str]) -> list[str] | None:
+    """The words of ``name`` left over when each word of ``given`` begins one of them, in
+    order ("pm_ra" in "pm_ra_cosdec_mas_yr": cosdec, mas, yr; "ra_err" in "ra_error_mas":
+    mas), or None where ``given`` does not fit."""
+    added, k = [], 0
+    for word in name:
+        if k < len(given) and word.startswith(given[k]):
+            k += 1
+        else:
+            added.append(word)
+    return added if k == len(given) else None
 
 
 def closest_name(given: str, accepted) -> str | None:
     """The accepted name ``given`` most likely stands for, or None.
 
-    Matching ignores case. First, accepted names that contain the words of ``given`` (split
-    at "_") as the starts of their own words, in order: "ra" -> "ra_deg", "pm_ra_mas_yr" ->
-    "pm_ra_cosdec_mas_yr" (a single word only at the start: "mas" gets none); of several,
-    one that starts as ``given`` does and adds the fewest words, if only one does. Otherwise
-    the most similar name by difflib, if similar enough (a typing error: "paralax_mas").
+    Matching ignores case. A whole-name alias ("stop" for "end") first; then, with
+    catalogue short forms written as ours ("pmra" -> "pm_ra"), the shortest accepted name
+    that holds the words of ``given`` (split at "_") as the starts of its own words, in
+    order, and adds only units: "ra" -> "ra_deg", "pm_ra_mas_yr" -> "pm_ra_cosdec_mas_yr",
+    "ra_err" -> "ra_error_mas" (nothing for "pm" or "mas"). Otherwise the most similar name
+    by difflib, if similar enough (a typing error: "paralax_mas").
     """
     if not isinstance(given, str) or not given:
         return None
@@ -35,19 +69,22 @@ def closest_name(given: str, accepted) -> str | None:
     key = given.lower()
     if key in names:
         return names[key] if names[key] != given else None
-    words = [w for w in key.split("_") if w]
-    ranked = sorted(
-        (not name.split("_")[0].startswith(words[0]), len(name.split("_")) - len(words), name)
-        for name in names
-        if words
-        and _covers(words, name.split("_"))
-        and (len(words) > 1 or name.startswith(words[0]))  # "mas" is no field's start
-    )
-    if ranked:
-        best = ranked[0]
-        if len(ranked) == 1 or ranked[1][:2] != best[:2]:
-            return names[best[2]]
-        return None
+    for alias in NAME_ALIASES.get(key, ()):
+        if alias in names:
+            return names[alias]
+    words = _our_words(key)
+    if "_".join(words) in names:
+        return names["_".join(words)]
+    # A name that is the given words with only units added: "ra" -> "ra_deg" (not
+    # "ra_error_mas", nor, for "pm", any one proper-motion component).
+    fits = []
+    for name in names:
+        added = _added_words(words, name.split("_"))
+        if added is not None and UNIT_WORDS.issuperset(added):
+            fits.append((len(name), name))
+    fits.sort()
+    if fits:
+        return names[fits[0][1]]
     close = difflib.get_close_matches(key, list(names), n=1, cutoff=SIMILARITY_CUTOFF)
     return names[close[0]] if close else None
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 import pytest
 
 from service.api.app import create_app
+from service.api.propagation import StarAstrometrySchema as PropagationStar
 from service.api.spelling import closest_name
 
 STAR_FIELDS = [
@@ -46,8 +47,9 @@ REQUEST_FIELDS = ["stars", "catalogue_epoch", "target_epochs", "target_range", "
         ("RA_DEG", "ra_deg"),
         ("ra_deg", None),  # accepted as it is
         ("mas", None),  # a unit alone is no field's start
-        ("pmra", None),
-        ("rv", None),
+        ("pmra", "pm_ra_cosdec_mas_yr"),  # catalogue short forms (common practice)
+        ("rv", "radial_velocity_km_s"),
+        ("pm", None),
         ("", None),
     ],
 )
@@ -55,9 +57,31 @@ def test_closest_star_field(given, likely):
     assert closest_name(given, STAR_FIELDS) == likely
 
 
+# Column names of the Gaia DR3 gaia_source table (Gaia data release documentation, chapter
+# "Datamodel description"; the names from memory), which catalogue files often carry.
+@pytest.mark.parametrize(
+    ("given", "likely"),
+    [
+        ("pmra", "pm_ra_cosdec_mas_yr"),
+        ("pmdec", "pm_dec_mas_yr"),
+        ("parallax_error", "parallax_error_mas"),
+        ("pmra_error", "pm_ra_cosdec_error_mas_yr"),
+        ("radial_velocity_error", "radial_velocity_error_km_s"),
+        ("ra_dec_corr", "correlation_ra_dec"),
+        ("parallax_pmra_corr", "correlation_parallax_pm_ra"),
+        ("pmra_pmdec_corr", "correlation_pm_ra_pm_dec"),
+        ("source_id", None),
+        ("phot_g_mean_mag", None),
+    ],
+)
+def test_catalogue_column_names(given, likely):
+    fields = [n for n in PropagationStar().fields]
+    assert closest_name(given, fields) == likely
+
+
 def test_two_alike_get_no_suggestion():
     assert closest_name("target_epoch", REQUEST_FIELDS) == "target_epochs"
-    assert closest_name("epoch", REQUEST_FIELDS) is None  # catalogue_epoch or target_epochs
+    assert closest_name("epoch", REQUEST_FIELDS) is None  # catalogue_epoch or target_epochs?
 
 
 @pytest.fixture(scope="module")
@@ -119,6 +143,16 @@ def test_request_and_nested_fields(client):
     assert got["atmosphere.pressure"] == (
         'is not a field of this request (did you mean "pressure_hpa"?)'
     )
+
+
+def test_window_end_and_stop(client):
+    # The crossing search's window ends at "end", a track chart's span at "stop".
+    body = {"stars": [STAR], "catalogue_epoch": "J2016.0", "start": "J2016.0", "stop": "J2100.0"}
+    got = messages(client.post("/v1/constellations/crossings", json=body))
+    assert got["stop"] == 'is not a field of this request (did you mean "end"?)'
+    body = {"stars": [STAR], "catalogue_epoch": "J2016.0", "start": "J2016.0", "end": "J2100.0"}
+    got = messages(client.post("/v1/charts/track", json=body))
+    assert got["end"] == 'is not a field of this request (did you mean "stop"?)'
 
 
 def test_query_option(client):
