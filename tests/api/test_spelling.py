@@ -13,22 +13,8 @@ from service.api.app import create_app
 from service.api.propagation import StarAstrometrySchema as PropagationStar
 from service.api.spelling import closest_name
 
-STAR_FIELDS = [
-    "id",
-    "ra_deg",
-    "dec_deg",
-    "parallax_mas",
-    "pm_ra_cosdec_mas_yr",
-    "pm_dec_mas_yr",
-    "radial_velocity_km_s",
-    "ra_error_mas",
-    "dec_error_mas",
-    "parallax_error_mas",
-    "pm_ra_cosdec_error_mas_yr",
-    "pm_dec_error_mas_yr",
-    "radial_velocity_error_km_s",
-    "correlation_ra_dec",
-]
+#: The star fields of POST /v1/propagation (id, ra_deg, ..., the 15 correlations).
+STAR_FIELDS = list(PropagationStar().fields)
 REQUEST_FIELDS = ["stars", "catalogue_epoch", "target_epochs", "target_range", "model", "layout"]
 
 
@@ -75,8 +61,7 @@ def test_closest_star_field(given, likely):
     ],
 )
 def test_catalogue_column_names(given, likely):
-    fields = [n for n in PropagationStar().fields]
-    assert closest_name(given, fields) == likely
+    assert closest_name(given, STAR_FIELDS) == likely
 
 
 def test_two_alike_get_no_suggestion():
