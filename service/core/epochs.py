@@ -338,9 +338,21 @@ def _read_calendar_utc(y, mo, d, h, mi, s, offset_min: int = 0) -> _Reading:
             f"invalid time: second {s:g} lies after the end of that UTC day (second 60 "
             "exists only at the end of a day with a leap second)"
         )
+    if offset_min:
+        # Local time less the offset, as a UTC date and time of day. Not the local date's
+        # quasi-JD less offset/1440: a UTC day with a leap second has 86,401 SI seconds in
+        # its quasi-JD day (ERFA dtf2d, utctai), so that would miss by up to a second where
+        # the local or the UTC date is such a day. Seconds are below 60 here (60 is taken
+        # with a zero offset only).
+        days, minute = divmod(h * 60 + mi - offset_min, 1440)
+        d0, d1, _ = erfa_ufunc.cal2jd(y, mo, d)
+        y, mo, d, _, _ = erfa_ufunc.jd2cal(d0, d1 + days)
+        u1, u2, status = erfa_ufunc.dtf2d("UTC", y, mo, d, minute // 60, minute % 60, s)
+        status = int(status)
+        if status < 0:
+            raise EpochError(f"invalid calendar date or time: {_DTF2D_ERRORS[status]}")
     if status == 1:  # dubious year: before 1960, or far beyond the leap-second table
         notes |= TimeNote.UTC_APPROXIMATE
-    u2 = u2 - offset_min / 1440.0
     t1, t2, more = _to_tdb_jd(u1, u2, "UTC")
     return _Reading(
         float(jd_to_julian_epoch(t1, t2)), int(notes | more), "UTC", float(u1), float(u2)

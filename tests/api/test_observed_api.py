@@ -105,6 +105,11 @@ ATCO13_TOL_RAD = 1e-12
         ("2026-06-11T17:17:57.898065Z", (2026, 6, 11, 17, 17, 57.898065)),
         ("2026-10-23T11:09:03.763075Z", (2026, 10, 23, 11, 9, 3.763075)),
         ("2026-12-02T22:30:00Z", (2026, 12, 2, 22, 30, 0.0)),
+        # A zone offset across a day with a leap second: the UTC date and time of day, not
+        # the local quasi-JD less 1/24 day an hour (once 0.98 s late, 14.7 arcsec of hour
+        # angle, here).
+        ("2017-01-01T00:30:00+01:00", (2016, 12, 31, 23, 30, 0.0)),
+        ("2016-12-31T23:30:00-01:00", (2017, 1, 1, 0, 30, 0.0)),
     ],
 )
 def test_instant_as_written_turns_the_earth_as_erfa_atco13(client, observed_example, text, ymdhms):

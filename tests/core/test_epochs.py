@@ -176,6 +176,12 @@ def test_scales_match_astropy(text, fmt, value, scale):
         ("2000-01-01T11:58:55.816Z", "2000-01-01T11:58:55.816"),  # J2000.0 TT, in UTC
         ("2016-12-31T23:59:60Z", "2016-12-31T23:59:60"),  # a leap second
         ("2026-12-02T03:04:05+02:00", "2026-12-02T01:04:05"),  # zone offset applied
+        # Offsets across a day with a leap second (86,401 s): once off by up to 1 s, the
+        # offset having been taken from the local date's quasi-JD as 1/24 day an hour.
+        ("2017-01-01T00:30:00+01:00", "2016-12-31T23:30:00"),
+        ("2016-12-31T23:30:00-01:00", "2017-01-01T00:30:00"),
+        ("2016-12-31T13:00:00+01:00", "2016-12-31T12:00:00"),
+        ("2017-01-01T00:59:59.5+01:00", "2016-12-31T23:59:59.5"),
         ("2026-12-02", "2026-12-02T00:00:00"),  # date alone: 0h UTC
         ("1999-06-15 12:30", "1999-06-15T12:30:00"),
     ],
