@@ -257,8 +257,9 @@ class ObservedRequestSchema(ma.Schema):
         },
     )
     horizon_limit_deg = _num(
-        "Altitude below which a target is flagged, degrees (advisory). Default: the site's "
-        "own limit, else SKYDRIFT_HORIZON_LIMIT_DEG.",
+        "Altitude below which a target is flagged, degrees (advisory). Default: the own "
+        "limit of a site given by name from the operator's list, else "
+        "SKYDRIFT_HORIZON_LIMIT_DEG.",
         lo=-90.0,
         hi=90.0,
     )
@@ -370,7 +371,11 @@ def observed(args):
         _core_error(exc)
     horizon = args.get("horizon_limit_deg")
     if horizon is None:
-        own = sites.get(site.name or "", {}).get("horizon_limit_deg")
+        # The list's own limit belongs to its site: not to an inline site that carries the
+        # same name as a label, at other coordinates.
+        spec = args["site"]
+        by_name = isinstance(spec, str) or (isinstance(spec, dict) and set(spec) == {"name"})
+        own = sites.get(site.name, {}).get("horizon_limit_deg") if by_name else None
         horizon = settings.horizon_limit_deg if own is None else float(own)
     avoidance = args.get("sun_avoidance_deg")
     if avoidance is None:

@@ -341,6 +341,22 @@ def test_site_errors_reported_together_with_the_others(client, observed_example)
     assert fields == {"site.latitude_deg", "site.name", "atmosphere.relative_humidity"}
 
 
+def test_site_list_horizon_limit_only_for_the_listed_site(client, observed_example, settings):
+    # The demo site list (shared/demo/observatory.json) gives kestrel-ridge a limit of 15
+    # deg. An inline site elsewhere that only borrows the name as a label once took it too.
+    listed = json.loads((ROOT / "shared" / "demo" / "observatory.json").read_text())
+    own = listed["sites"]["kestrel-ridge"]["horizon_limit_deg"]
+    assert own != settings.horizon_limit_deg
+    for site in ("kestrel-ridge", {"name": "kestrel-ridge"}):
+        r = client.post(OBS, json=dict(observed_example, site=site))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        assert r.json["limits"]["horizon_limit_deg"] == own
+    inline = {"latitude_deg": 0.0, "longitude_deg": 0.0, "height_m": 0.0, "name": "kestrel-ridge"}
+    r = client.post(OBS, json=dict(observed_example, site=inline))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["limits"]["horizon_limit_deg"] == settings.horizon_limit_deg
+
+
 def test_unknown_site_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
     assert_problem(r, 422, "site.name")
