@@ -80,7 +80,8 @@ FLAG_MEANINGS = {
     "proper_motion_missing": "No proper motion: taken as zero.",
     "below_horizon_limit": "Target below the horizon limit (advisory).",
     "within_sun_avoidance": "Target closer to the Sun than the avoidance angle (advisory).",
-    "sun_above_horizon": "The Sun is above the horizon at the site.",
+    "sun_above_horizon": "The Sun's centre is above the horizon at the site (observed, "
+    "refracted altitude above 0; the upper limb is up a few minutes before and after).",
     "earth_orientation_predicted": "UT1-UTC and polar motion are IERS predictions.",
     "earth_orientation_unavailable": "Instant outside the Earth-orientation tables: UT1-UTC "
     "and polar motion taken as zero (errors up to about 15 arcsec).",

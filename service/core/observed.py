@@ -162,7 +162,8 @@ class ObservedFlag(enum.IntFlag):
     BELOW_HORIZON_LIMIT = 16
     #: Target closer to the Sun than the configured avoidance angle (advisory).
     WITHIN_SUN_AVOIDANCE = 32
-    #: Sun above the geometric horizon at the site (daytime).
+    #: The Sun's centre above the horizon at the site: its observed (refracted) altitude
+    #: above 0 (its upper limb is up a few minutes before and after).
     SUN_ABOVE_HORIZON = 64
     #: UT1-UTC / polar motion from IERS predictions, not measurements.
     EARTH_ORIENTATION_PREDICTED = 128
