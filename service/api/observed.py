@@ -350,8 +350,13 @@ def observed(args):
                 }
             ],
         )
+    # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
+    utc1 = np.array([t.utc_jd1 for t in given])
+    utc2 = np.array([t.utc_jd2 for t in given])
+    # The span on the UTC dates, as core.observed_places checks it (there without an index).
+    utc_epochs = 2000.0 + ((utc1 - 2451545.0) + utc2) / 365.25
     bad = np.flatnonzero(
-        (instants < core.SUPPORTED_EPOCH_MIN) | (instants >= core.SUPPORTED_EPOCH_MAX)
+        (utc_epochs < core.SUPPORTED_EPOCH_MIN) | (utc_epochs >= core.SUPPORTED_EPOCH_MAX)
     )
     if bad.size:
         abort(
@@ -421,9 +426,6 @@ def observed(args):
     warnings = flag_warnings(input_masks, table, PROPAGATION_WARNINGS)
     # ... and named in each star's flags, so that CSV and Arrow answers carry them too.
     input_names = flag_names(input_masks & _IMPLAUSIBLE_INPUTS, core_prop.PropagationFlag)
-    # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
-    utc1 = np.array([t.utc_jd1 for t in given])
-    utc2 = np.array([t.utc_jd2 for t in given])
     eop = _earth_orientation()
     try:
         res = core.observed_places(

@@ -79,15 +79,15 @@ DEFAULT_SUN_AVOIDANCE_DEG = 30.0
 #: Default horizon limit for the target's observed altitude, degrees (geometric horizon).
 DEFAULT_HORIZON_LIMIT_DEG = 0.0
 
-#: Supported span of observation instants, Julian epochs: UTC is defined from 1960, and the
-#: Earth ephemeris of SOFA epv00 (used by apco13) is valid 1900-2100 AD.
+#: Supported span of observation instants, Julian epochs of the UTC date (2000 + (UTC JD -
+#: 2451545) / 365.25): UTC is defined from 1960, and the Earth ephemeris of SOFA epv00 (used
+#: by apco13) is valid 1900-2100 AD.
 SUPPORTED_EPOCH_MIN = 1960.0
 SUPPORTED_EPOCH_MAX = 2100.0
-#: The supported span in words (Julian epochs begin at noon: J1960.0 is 1960-01-01T12:00).
+#: The supported span in words (Julian epochs begin at noon: 1960.0 is 1960-01-01T12:00).
 SUPPORTED_SPAN_TEXT = (
-    f"must lie between J{SUPPORTED_EPOCH_MIN:.1f} and J{SUPPORTED_EPOCH_MAX:.1f} "
-    f"({SUPPORTED_EPOCH_MIN:.0f}-01-01T12:00 to {SUPPORTED_EPOCH_MAX:.0f}-01-01T12:00, the "
-    "end excluded)"
+    f"must lie between {SUPPORTED_EPOCH_MIN:.0f}-01-01T12:00 and "
+    f"{SUPPORTED_EPOCH_MAX:.0f}-01-01T12:00 UTC, the end excluded"
 )
 
 #: Supported wavelength ranges for refraction, micrometres: optical/IR 0.3-2.0 (SOFA refco

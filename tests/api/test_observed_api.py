@@ -399,17 +399,16 @@ def test_wavelength_out_of_range_names_the_field(client, observed_example):
 def test_date_far_outside_span_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, instants=["J2016.0", "J2450.0"]))
     assert_problem(r, 422, "instants[1]")
-    # The span's ends are Julian epochs, which begin at noon: midnight of 1 January 1960
-    # is outside, and the message says so (it said "between 1960 and 2100").
-    edge = ["1960-01-01T00:00:00Z", "1960-01-01T12:00:00Z"]
+    # The span's ends are Julian epochs of the UTC date, which begin at noon: midnight of 1
+    # January 1960 is outside, and the message says so (it said "between 1960 and 2100").
+    # J1960.0 and 11:59:59 UTC lie within the span on TDB (TT - UTC was 33.6 s then: ERFA
+    # dat) but before it on UTC: they were refused without their index.
+    span = "must lie between 1960-01-01T12:00 and 2100-01-01T12:00 UTC, the end excluded"
+    edge = ["1960-01-01T00:00:00Z", "1960-01-01T12:00:00Z", "J1960.0", "1960-01-01T11:59:59Z"]
     r = client.post(OBS, json=dict(observed_example, instants=edge))
-    assert r.json["errors"] == [
-        {
-            "field": "instants[0]",
-            "message": "must lie between J1960.0 and J2100.0 (1960-01-01T12:00 to "
-            "2100-01-01T12:00, the end excluded)",
-        }
-    ]
+    assert r.json["errors"] == [{"field": f"instants[{i}]", "message": span} for i in (0, 2, 3)]
+    r = client.post(OBS, json=dict(observed_example, instants=["2100-01-01T11:59:59.999Z"]))
+    assert r.status_code == 200, r.get_data(as_text=True)
 
 
 def test_unknown_frame_names_the_field(client, frames_example):
