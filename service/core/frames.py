@@ -83,6 +83,13 @@ class FrameFlag(enum.IntFlag):
     PROPER_MOTION_MISSING = 8
 
 
+def _year_text(year: float) -> str:
+    """An equinox in a label with the digits it has (to 1e-9 yr, as the API rounds it):
+    1950.0, 1949.999786 (B1950.0 as a Julian year); not rounded to 0.1 year (36 days)."""
+    text = f"{year:.9f}".rstrip("0")
+    return text + "0" if text.endswith(".") else text
+
+
 #: Frame names understood by :func:`make_frame`.
 FRAME_NAMES = ("icrs", "fk5", "fk4", "galactic", "ecliptic")
 
@@ -111,11 +118,11 @@ class Frame:
     def describe(self) -> str:
         """Short human-readable label, e.g. ``FK4 B1950.0``."""
         if self.name == "fk4":
-            return f"FK4 B{self.equinox:.1f}"
+            return f"FK4 B{_year_text(self.equinox)}"
         if self.name == "fk5":
-            return f"FK5 J{self.equinox:.1f}"
+            return f"FK5 J{_year_text(self.equinox)}"
         if self.name == "ecliptic":
-            return "ecliptic of date" if self.of_date else f"ecliptic J{self.equinox:.1f}"
+            return "ecliptic of date" if self.of_date else f"ecliptic J{_year_text(self.equinox)}"
         return self.name.upper() if self.name == "icrs" else self.name
 
 

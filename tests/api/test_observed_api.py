@@ -296,6 +296,33 @@ def test_frames_galactic_output_and_equinox_forms(client):
     assert r2.json["stars"][0]["at_epochs"][0]["ra_deg"] == pytest.approx(float(ref.ra_deg))
 
 
+@pytest.mark.parametrize(
+    "name, equinox, label",
+    [
+        # B1950.0 as a Julian year: pyerfa epb2jd then epj, run here (1949.99979...).
+        # To 1e-9 yr, as the API rounds an equinox, without trailing zeros.
+        ("fk5", "B1950.0", f"FK5 J{float(erfa.epj(*erfa.epb2jd(1950.0))):.9f}".rstrip("0")),
+        ("fk4", "J2000.0", f"FK4 B{float(erfa.epb(*erfa.epj2jd(2000.0))):.9f}".rstrip("0")),
+        ("fk5", 1975.26, "FK5 J1975.26"),
+        ("fk4", 1950, "FK4 B1950.0"),
+        ("ecliptic", None, "ecliptic J2000.0"),
+    ],
+)
+def test_frame_labels_give_the_equinox_used(client, name, equinox, label):
+    # The label once rounded the equinox to 0.1 year (36 days: "FK5 J1975.3" for J1975.26,
+    # 2 arcsec of precession; "FK5 J1950.0" for B1950.0).
+    body = {
+        "stars": [{"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0,
+                   "pm_dec_mas_yr": 2.0}],
+        "catalogue_epoch": 2016.0,
+        "from_frame": {"name": "icrs"},
+        "to_frame": {"name": name, "equinox": equinox},
+    }  # fmt: skip
+    r = client.post(FRAMES, json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["to_frame"] == label
+
+
 # ---------------------------------------------------------------- bad input (one test each)
 
 
