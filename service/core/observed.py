@@ -240,6 +240,9 @@ class EarthOrientationTable:
         :class:`EarthOrientationStatus` per node (UT1-UTC source).
     last_measured_mjd : float
         Last node with a measured (not predicted) UT1-UTC value.
+    ut1_sigma_s, pole_sigma_arcsec : ndarray or None
+        The table's own uncertainty of UT1-UTC and of the pole (the two components' errors
+        in quadrature) at the nodes, seconds and arcsec; None where the table gives none.
     """
 
     name: str
@@ -250,6 +253,8 @@ class EarthOrientationTable:
     pm_y_arcsec: np.ndarray
     status: np.ndarray
     last_measured_mjd: float
+    ut1_sigma_s: np.ndarray | None = None
+    pole_sigma_arcsec: np.ndarray | None = None
 
     @functools.cached_property
     def node_values(self) -> np.ndarray:
@@ -298,6 +303,11 @@ def _read_finals2000a(path: str) -> EarthOrientationTable:
         pm_y_arcsec=np.asarray(t["PM_y"].to_value("arcsec"), dtype=float),
         status=status,
         last_measured_mjd=float(mjd[measured][-1]) if measured.any() else float(mjd[0]),
+        ut1_sigma_s=np.asarray(t["e_UT1_UTC_A"].to_value("s"), dtype=float),
+        pole_sigma_arcsec=np.hypot(
+            np.asarray(t["e_PM_x_A"].to_value("arcsec"), dtype=float),
+            np.asarray(t["e_PM_y_A"].to_value("arcsec"), dtype=float),
+        ),
     )
 
 
@@ -314,6 +324,11 @@ def _read_iers_b(path: str) -> EarthOrientationTable:
         pm_y_arcsec=np.asarray(t["PM_y"].to_value("arcsec"), dtype=float),
         status=np.full(mjd.shape, int(EarthOrientationStatus.MEASURED_FINAL)),
         last_measured_mjd=float(mjd[-1]),
+        ut1_sigma_s=np.asarray(t["e_UT1_UTC"].to_value("s"), dtype=float),
+        pole_sigma_arcsec=np.hypot(
+            np.asarray(t["e_PM_x"].to_value("arcsec"), dtype=float),
+            np.asarray(t["e_PM_y"].to_value("arcsec"), dtype=float),
+        ),
     )
 
 
@@ -427,6 +442,19 @@ def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
     return v[..., 0], v[..., 1], v[..., 2], status, inside
 
 
+def _table_sigmas(table: EarthOrientationTable, mjd_int):
+    """The table's own uncertainties (UT1-UTC s, pole arcsec) at instants: the larger of the
+    two nodes around each (0 where the table gives none, NaN counted as none)."""
+    if table.ut1_sigma_s is None or table.pole_sigma_arcsec is None:
+        zero = np.zeros(np.shape(mjd_int))
+        return zero, zero
+    i1 = np.clip(np.searchsorted(table.mjd, mjd_int, side="right"), 1, len(table.mjd) - 1)
+    i0 = i1 - 1
+    ut1 = np.fmax(table.ut1_sigma_s[i0], table.ut1_sigma_s[i1])
+    pole = np.fmax(table.pole_sigma_arcsec[i0], table.pole_sigma_arcsec[i1])
+    return np.nan_to_num(ut1, nan=0.0), np.nan_to_num(pole, nan=0.0)
+
+
 @dataclass(frozen=True)
 class EarthOrientationValues:
     """UT1-UTC and polar motion at instants, with provenance.
@@ -484,7 +512,11 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
        outside both the values are taken as zero and the status is ``UNAVAILABLE``.
     2. Predicted values carry the Bulletin A accuracy formula evaluated at the number of days
        past the last measured node.
-    3. The pointing error estimate is 15.04 arcsec/s x sigma(UT1) + sigma(pole), a bound on
+    3. Inside a table, the uncertainties are at least the table's own (columns e_UT1_UTC and
+       e_PM_x, e_PM_y of IERS-B; their Bulletin A counterparts in finals2000A): some
+       milliseconds of UT1 and tens of mas of pole in the 1960s and 1970s, far above the
+       fixed values by source.
+    4. The pointing error estimate is 15.04 arcsec/s x sigma(UT1) + sigma(pole), a bound on
        the effect at the equator; the class follows ``ACCURACY_CLASS_BOUNDS_ARCSEC``.
     """
     eop = eop or earth_orientation()
@@ -496,6 +528,7 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     mjd_int = np.floor(mjd_full)
     frac = ((jd1 - 2400000.5) - mjd_int) + jd2
     dut, px, py, status, inside = _interp_table(eop.primary, mjd_int, frac)
+    tab_ut1, tab_pole = _table_sigmas(eop.primary, mjd_int)
     # Which table each value came from, as an index into the names (strings only at the end).
     names = np.array(
         [eop.primary.name, "none", eop.fallback.name if eop.fallback is not None else "none"]
@@ -510,6 +543,9 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
             px = np.where(take, bx, px)
             py = np.where(take, by, py)
             status = np.where(take, bs, status)
+            b_ut1, b_pole = _table_sigmas(eop.fallback, mjd_int)
+            tab_ut1 = np.where(take, b_ut1, tab_ut1)
+            tab_pole = np.where(take, b_pole, tab_pole)
             inside = inside | take
             table = np.where(take, 2, table)
     status = np.where(inside, status, int(EarthOrientationStatus.UNAVAILABLE))
@@ -538,6 +574,9 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
         ),
         pole_fixed[status],
     )
+    # At least the table's own uncertainties where its values are used (Note 3).
+    ut1_sigma = np.where(inside, np.fmax(ut1_sigma, tab_ut1), ut1_sigma)
+    pole_sigma = np.where(inside, np.fmax(pole_sigma, tab_pole), pole_sigma)
     err = ARCSEC_PER_UT1_SECOND * ut1_sigma + pole_sigma
     lo, hi = ACCURACY_CLASS_BOUNDS_ARCSEC
     cls = _ACCURACY_CLASSES[2 - (err < lo).astype(np.intp) - (err < hi)]  # NaN: "arcseconds"

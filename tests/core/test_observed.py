@@ -359,6 +359,31 @@ def test_eop_status_measured_predicted_unavailable_and_fallback():
     assert got.pointing_error_arcsec[1] > got.pointing_error_arcsec[0]
 
 
+def test_pointing_error_at_least_the_tables_own_uncertainties():
+    # The IERS tables give each day's uncertainty (IERS-B eopc04: e_UT1_UTC, e_PM_x, e_PM_y;
+    # finals2000A: the same with _A), read here with astropy. In the 1960s they are 2 ms of
+    # UT1 and 30 mas of pole: the answer once said 0.35 mas and "milliarcsecond" there.
+    from astropy.utils import iers
+
+    eop = O.earth_orientation()
+    earth_turn_arcsec_per_s = 1296000.0 / 86164.0905  # 360 deg per sidereal day (~15.04)
+    checks = [
+        (iers.IERS_B.open(eop.fallback.path), "", 37700.0),  # 1962, IERS-B
+        (iers.IERS_B.open(eop.fallback.path), "", 40000.0),  # 1968, IERS-B
+        (iers.IERS_A.open(eop.primary.path), "_A", 42000.0),  # 1973, finals2000A
+    ]
+    for table, suffix, mjd in checks:
+        row = table[np.searchsorted(table["MJD"].value, mjd)]
+        assert row["MJD"].value == mjd
+        ut1_s = row["e_UT1_UTC" + suffix].to_value("s")
+        pole = np.hypot(row["e_PM_x" + suffix].to_value("arcsec"),
+                        row["e_PM_y" + suffix].to_value("arcsec"))  # fmt: skip
+        floor = earth_turn_arcsec_per_s * ut1_s + pole
+        got = O.earth_orientation_at(2400000.5, mjd, eop)
+        assert got.pointing_error_arcsec >= floor * (1.0 - 1e-9)
+        assert floor > 0.01 and got.accuracy_class == "sub_arcsecond"
+
+
 def test_dates_outside_tables_still_answer_with_flags():
     site = O.make_site(40.0, -3.0, 800.0)
     star = dict(_sofa_star(), epoch_jyear=2016.0)
