@@ -1058,8 +1058,12 @@ def _monte_carlo(flat, index, out, draws, rng):
         cov[:, 0, 1] = cov[:, 1, 0] = r_pa * s0 * sa_
         cov[:, 0, 2] = cov[:, 2, 0] = r_pd * s0 * sd_
         cov[:, 1, 2] = cov[:, 2, 1] = rho_ad[idx] * sa_ * sd_
+        # A radial velocity given without its error leaves U, V, W and the speed without
+        # errors (blanked below), not the transverse velocity: draw it with no spread.
         srv = np.where(np.isnan(rv[idx]), 0.0, sig_rv[idx])
-        ok = np.isfinite(cov).all(axis=(1, 2)) & np.isfinite(srv)
+        rv_error_missing = ~np.isfinite(srv)
+        srv = np.where(rv_error_missing, 0.0, srv)
+        ok = np.isfinite(cov).all(axis=(1, 2))
         cov[~ok] = 0.0
         # Square root of the (semi-definite) covariance through its eigen-decomposition.
         w, v = np.linalg.eigh(cov)
@@ -1128,7 +1132,7 @@ def _monte_carlo(flat, index, out, draws, rng):
         vt_err = sigma[:, 3]
         sp_err = sigma[:, 4]
         vt_err[bad] = np.nan
-        blank = bad | rv_missing
+        blank = bad | rv_missing | rv_error_missing
         for arr in (packed, interval, sp_err):
             arr[blank] = np.nan
         out["uvw_covariance_packed"][idx] = packed

@@ -541,6 +541,28 @@ def test_monte_carlo_is_reproducible_and_auto_selects_low_snr():
     assert np.array_equal(a.uvw_covariance_packed_km2_s2[0], lin.uvw_covariance_packed_km2_s2[0])
 
 
+def test_monte_carlo_keeps_transverse_error_when_radial_velocity_error_is_missing():
+    # A radial velocity without its error leaves U, V, W without errors, not the transverse
+    # velocity (which does not depend on it): the draws used to discard the whole star, so
+    # auto gave a null transverse-velocity error where linear gave one.
+    star = (210.0, 15.0, 2.0, 25.0, -10.0, -30.0)
+    errors = (0.1, 0.1, 0.8, 0.2, 0.2)
+    cov5 = astrometric_covariance(*errors)
+    r = space_velocity(
+        *star, astrometric_covariance_mas=cov5, uncertainty_method="auto",
+        monte_carlo_draws=100_000, seed=42,
+    )  # fmt: skip
+    assert r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES
+    assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING
+    assert np.isnan(r.uvw_error_km_s).all() and np.isnan(r.uvw_interval_km_s).all()
+    assert np.isnan(r.total_velocity_error_km_s)
+    # Direct simulation transformed by astropy (v_t needs no radial velocity error).
+    _, vt_s, _ = _draw_and_transform_with_astropy(star, cov5, 0.0, 100_000, seed=7)
+    vt_lo, vt_hi = np.percentile(vt_s, [15.865525393145708, 84.13447460685429])
+    # Two independent samples of 1e5 draws: the half-width scatters by about 0.5%.
+    assert abs(r.transverse_velocity_error_km_s / ((vt_hi - vt_lo) / 2) - 1) < 0.03  # fraction
+
+
 # ---------------------------------------------------------------------------------------
 # Inverse transform
 # ---------------------------------------------------------------------------------------
