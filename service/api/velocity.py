@@ -347,8 +347,10 @@ FLAG_MEANINGS = {
     "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
-    "space_velocity_implausible": "Space velocity (U, V, W as given) above half the speed of "
-    "light: no star moves so fast; probably a unit mistake. Computed as given.",
+    "space_velocity_implausible": "Space velocity above half the speed of light (from the "
+    "parallax or distance, proper motion and radial velocity; in the inverse, U, V, W as "
+    "given): no star moves so fast; probably a unit mistake or an unusable parallax. "
+    "Computed as given.",
     "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",
@@ -476,6 +478,9 @@ def _records(names, arrays, table, flags, n):
 _WARNING_TEXTS = {
     core.KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
     core.KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
+    core.KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax (or distance), proper motion "
+    "and radial velocity imply a space velocity above half the speed of light: check the "
+    "parallax and its unit (mas), or the distance (pc)",
 }
 
 #: Per-star warnings of the inverse (observables) answer.

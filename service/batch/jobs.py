@@ -309,6 +309,9 @@ VELOCITY_FLAG_MEANINGS = {
     _KF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,
     _KF.MONTE_CARLO_UNCERTAINTIES: "Uncertainties from Monte Carlo draws (not used in batch runs).",
     _KF.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+    _KF.SPACE_VELOCITY_IMPLAUSIBLE: "Space velocity from the parallax or distance, proper "
+    "motion and radial velocity above half the speed of light: probably a unit mistake or "
+    "an unusable parallax. Computed as given.",
 }
 
 _CORRELATIONS = (

@@ -182,8 +182,10 @@ class KinematicsFlag(enum.IntFlag):
     #: Radial velocity above 5,000 km/s in size (more than any star's measured radial
     #: velocity): probably m/s given as km/s.
     RADIAL_VELOCITY_IMPLAUSIBLE = 256
-    #: Space velocity (U, V, W as given) above half the speed of light, the limit the
-    #: propagation core uses: no star moves so fast; probably a unit mistake.
+    #: Space velocity above half the speed of light, the limit the propagation core uses:
+    #: no star moves so fast; probably a unit mistake or an unusable parallax. Forward: the
+    #: speed from the distance, proper motion and radial velocity (the transverse speed
+    #: without a radial velocity); inverse: U, V, W as given.
     SPACE_VELOCITY_IMPLAUSIBLE = 512
 
 
@@ -920,6 +922,12 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
         flags |= rv_implausible * np.uint32(KinematicsFlag.RADIAL_VELOCITY_IMPLAUSIBLE)
     va = k * pmra
     vd = k * pmdec
+    # Speed above half the speed of light (the propagation's limit for the same astrometry):
+    # a tiny parallax or a unit mistake. Without a radial velocity, the transverse speed.
+    vt2 = va * va + vd * vd
+    too_fast = np.fmax(vt2, vt2 + rv * rv) > IMPLAUSIBLE_SPACE_VELOCITY_KM_S**2
+    if too_fast.any():
+        flags |= too_fast * np.uint32(KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE)
 
     # --- velocity vector: local triad -> ICRS -> U, V, W ---------------------------------
     sa, ca = sin_cos_deg(ra)

@@ -361,3 +361,40 @@ def test_inverse_echoes_the_distance_given(client):
     star = dict(UVW_STAR, distance_pc=1e-7)
     got = post(client, {"stars": [star]}, INVERSE_URL).json["stars"][0]
     assert got["distance_pc"] == 1e-7 and math.isfinite(got["pm_ra_cosdec_mas_yr"])
+
+
+def test_forward_flags_and_warns_a_space_velocity_above_half_c(client):
+    # A parallax of 0.005 mas with 316 mas/yr of proper motion is a speed of 3e5 km/s: the
+    # answer gave it with no word (the inverse and the propagation flag such speeds).
+    # Reference: pyerfa starpv's "excessive speed" status (above half the speed of light,
+    # SOFA's limit), run on each star with rv 0 for the star without one.
+    import warnings
+
+    import erfa
+
+    stars = [
+        dict(STAR, parallax_mas=0.005, pm_ra_cosdec_mas_yr=300.0, pm_dec_mas_yr=100.0),
+        dict(STAR, parallax_mas=0.02, pm_ra_cosdec_mas_yr=300.0, pm_dec_mas_yr=100.0),
+        dict(STAR, parallax_mas=0.005, pm_ra_cosdec_mas_yr=300.0, pm_dec_mas_yr=100.0,
+             radial_velocity_km_s=None),
+        STAR,
+    ]  # fmt: skip
+    expected = []
+    for s in stars:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            erfa.starpv(
+                math.radians(s["ra_deg"]),
+                math.radians(s["dec_deg"]),
+                math.radians(s["pm_ra_cosdec_mas_yr"] / 3.6e6)
+                / math.cos(math.radians(s["dec_deg"])),
+                math.radians(s["pm_dec_mas_yr"] / 3.6e6),
+                s["parallax_mas"] / 1000.0,
+                s["radial_velocity_km_s"] or 0.0,
+            )
+        expected.append(any("excessive speed" in str(w.message) for w in caught))
+    assert expected == [True, False, True, False]
+    body = post(client, {"stars": stars}).json
+    assert ["space_velocity_implausible" in s["flags"] for s in body["stars"]] == expected
+    assert [w["index"] for w in body["warnings"]] == [0, 2]
+    assert "space_velocity_implausible" in body["flag_meanings"]
