@@ -342,7 +342,8 @@ FLAG_MEANINGS = {
     "distance and linear uncertainties are unreliable; prefer uncertainty_method auto or a "
     "better distance in distance_pc.",
     "radial_velocity_missing": "No radial velocity: U, V, W, total velocity, line-of-sight "
-    "angle and secular quantities are null; transverse velocity given.",
+    "angle, proper-motion rates and closest approach are null; transverse velocity and "
+    "radial-velocity rate (v_t^2/d) given.",
     "distance_given": "distance_pc used instead of the parallax.",
     "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,

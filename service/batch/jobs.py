@@ -303,7 +303,8 @@ VELOCITY_FLAG_MEANINGS = {
     _KF.PARALLAX_LOW_SNR: "Parallax signal-to-noise below the threshold: 1/parallax is a "
     "biased distance and linear uncertainties are unreliable.",
     _KF.RADIAL_VELOCITY_MISSING: "No radial velocity: U, V, W, total velocity, line-of-sight "
-    "angle and secular quantities are NaN; transverse velocity given.",
+    "angle, proper-motion rates and closest approach are NaN; transverse velocity and "
+    "radial-velocity rate (v_t^2/d) given.",
     _KF.DISTANCE_GIVEN: "distance_pc used instead of the parallax.",
     _KF.UNCERTAINTIES_MISSING: "Some needed standard error not given: uncertainties NaN.",
     _KF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,

@@ -167,8 +167,9 @@ class KinematicsFlag(enum.IntFlag):
     #: Parallax signal-to-noise below the threshold: 1/parallax is a biased distance and
     #: linear uncertainties are unreliable (use the Monte Carlo option or a better distance).
     PARALLAX_LOW_SNR = 4
-    #: No radial velocity: radial and total velocity, U, V, W, the line-of-sight angle and
-    #: secular quantities are null; the transverse velocity is still given.
+    #: No radial velocity: radial and total velocity, U, V, W, the line-of-sight angle,
+    #: proper-motion rates and closest approach are null; the transverse velocity and the
+    #: radial-velocity rate (v_t^2 / d, which needs none) are still given.
     RADIAL_VELOCITY_MISSING = 8
     #: An explicit distance was used instead of the parallax.
     DISTANCE_GIVEN = 16

@@ -398,3 +398,18 @@ def test_forward_flags_and_warns_a_space_velocity_above_half_c(client):
     assert ["space_velocity_implausible" in s["flags"] for s in body["stars"]] == expected
     assert [w["index"] for w in body["warnings"]] == [0, 2]
     assert "space_velocity_implausible" in body["flag_meanings"]
+
+
+def test_radial_velocity_missing_meaning_says_what_is_null(client):
+    # The meaning said every secular quantity is null without a radial velocity, but the
+    # radial-velocity rate v_t^2/d (Hipparcos Vol. 1 section 1.2.8) needs none and is given.
+    body = post(client, {"stars": [dict(STAR, radial_velocity_km_s=None)]}).json
+    got = body["stars"][0]
+    a = 149_597_870.7 / (365.25 * 86400.0)  # km/s per au/yr (IAU 2012 Resolution B2 au)
+    vt = a * math.hypot(100.0, -50.0) / 20.0  # km/s, A mu / parallax
+    d_km = 50.0 * 3.0856775814913673e13  # 1000/20 pc in km (IAU 2012 au, pc = 648000/pi au)
+    expected = vt * vt / d_km * 365.25 * 86400.0  # km/s per Julian year
+    assert abs(got["radial_velocity_rate_km_s_yr"] - expected) < 1e-15  # km/s/yr
+    assert got["pm_total_rate_mas_yr2"] is None and got["closest_approach_time_yr"] is None
+    meaning = body["flag_meanings"]["radial_velocity_missing"]
+    assert "secular quantities are null" not in meaning and "radial-velocity rate" in meaning
