@@ -219,7 +219,11 @@ class VelocityRequestSchema(ma.Schema):
         strict=True,  # 2.5 is refused, not truncated to 2
         load_default=core.MONTE_CARLO_DRAWS_DEFAULT,
         validate=ma.validate.Range(min=100, max=1_000_000),
-        metadata={"description": "Draws per star for the Monte Carlo method."},
+        metadata={
+            "description": "Draws per star for the Monte Carlo method. At most "
+            f"{MAX_MONTE_CARLO_SAMPLES:,} samples (stars drawn x draws) per request; more is "
+            "refused with 413."
+        },
     )
     seed = ma.fields.Integer(
         strict=True,  # 2.5 is refused, not truncated to 2
@@ -419,6 +423,19 @@ def _solar_motion(args):
     return (sm["u_km_s"], sm["v_km_s"], sm["w_km_s"])
 
 
+def _stars_drawn(c, method, low_snr_threshold):
+    """Number of stars the core's Monte Carlo path will draw (space_velocity Note 6):
+    every star with a distance, or for auto only those flagged parallax_low_snr (a positive
+    parallax below the signal-to-noise threshold, and no distance given)."""
+    given = np.isfinite(c["distance_pc"])
+    plx = c["parallax_mas"]
+    if method == "monte_carlo":
+        return int(np.count_nonzero(given | (plx > 0.0)))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        low = (plx > 0.0) & (plx / c["parallax_error_mas"] < low_snr_threshold)
+    return int(np.count_nonzero(low & ~given))
+
+
 def _check_correlations(table, n):
     """422 naming the correlations that cannot hold together (not positive semi-definite).
 
@@ -513,20 +530,21 @@ def velocity(args):
     n = table.size
     method = args["uncertainty_method"]
     draws = args["monte_carlo_draws"]
-    if method != "linear" and n * draws > MAX_MONTE_CARLO_SAMPLES:
+    c = table.columns
+    drawn = _stars_drawn(c, method, args["low_snr_threshold"]) if method != "linear" else 0
+    if drawn * draws > MAX_MONTE_CARLO_SAMPLES:
         abort(
             413,
             errors=[
                 {
                     "field": "monte_carlo_draws",
-                    "message": f"{n} stars x {draws} draws exceeds the limit of "
-                    f"{MAX_MONTE_CARLO_SAMPLES} samples per request; use fewer draws, fewer "
-                    "stars, or uncertainty_method auto",
+                    "message": f"{drawn} stars drawn x {draws} draws exceeds the limit of "
+                    f"{MAX_MONTE_CARLO_SAMPLES} samples per request; use fewer draws or fewer "
+                    "stars" + (", or uncertainty_method auto" if method == "monte_carlo" else ""),
                 }
             ],
         )
     _check_correlations(table, n)
-    c = table.columns
     errs_given = np.isfinite(c["parallax_error_mas"]) | np.isfinite(c["distance_error_pc"])
     errs_given |= np.isfinite(c["pm_ra_cosdec_error_mas_yr"])
     corr_given = np.zeros(n, dtype=bool)

@@ -277,6 +277,26 @@ def test_monte_carlo_samples_over_the_limit(client):
     assert_problem(post(client, body), 413, "monte_carlo_draws")
 
 
+def test_auto_counts_only_the_stars_it_draws_against_the_sample_limit(client):
+    # auto counted every star against the limit on samples, even stars with a precise
+    # parallax that it never draws (with the default 10,000 draws any request of more than
+    # 2,000 stars was refused), and advised to use auto. Only the stars it draws (flagged
+    # parallax_low_snr) count now.
+    n, draws = 900, 50_000  # 4.5e7 samples if every star were drawn
+    errors = {"parallax_error_mas": 0.1, "pm_ra_cosdec_error_mas_yr": 0.1,
+              "pm_dec_error_mas_yr": 0.1, "radial_velocity_error_km_s": 1.0}  # fmt: skip
+    cols = {k: [v] * n for k, v in {**STAR, **errors}.items()}  # parallax SNR 200
+    cols["parallax_error_mas"][7] = 10.0  # SNR 2: the one star drawn
+    options = {"uncertainty_method": "auto", "monte_carlo_draws": draws}
+    body = post(client, {"stars": cols, **options}).json
+    drawn = ["monte_carlo_uncertainties" in f for f in body["columns"]["flags"]]
+    assert drawn.count(True) == 1 and drawn[7]
+    cols["parallax_error_mas"] = [10.0] * n  # every star drawn
+    r = post(client, {"stars": cols, **options})
+    message = assert_problem(r, 413, "monte_carlo_draws")["errors"][0]["message"]
+    assert "900 stars drawn" in message and "uncertainty_method auto" not in message
+
+
 def test_non_positive_snr_threshold(client):
     assert_problem(post(client, {"stars": [STAR], "low_snr_threshold": 0}), 422,
                    "low_snr_threshold")  # fmt: skip
