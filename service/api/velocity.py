@@ -298,7 +298,8 @@ _OUTPUT_DESCRIPTIONS = {
     "distance_pc": "Distance used: distance_pc if given, else 1000/parallax.",
     "parallax_snr": "Parallax signal-to-noise; null without a parallax error.",
     "pm_total_mas_yr": "Total proper motion, mas/yr.",
-    "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north.",
+    "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north; "
+    "null without proper motion.",
     "transverse_velocity_km_s": "Transverse velocity A*mu/parallax, km/s (A = 1 au per "
     "Julian year = 4.740470463533348 km/s, IAU 2012 au).",
     "transverse_velocity_ra_km_s": "Transverse velocity towards east, km/s.",
@@ -306,7 +307,8 @@ _OUTPUT_DESCRIPTIONS = {
     "radial_velocity_km_s": "Radial velocity (as given), km/s.",
     "total_velocity_km_s": "Total space velocity relative to the Sun, km/s.",
     "velocity_line_of_sight_angle_deg": "Angle between the space velocity and the outward "
-    "line of sight, degrees (0 receding, 90 transverse, 180 approaching).",
+    "line of sight, degrees (0 receding, 90 transverse, 180 approaching); null for a star "
+    "at rest relative to the Sun.",
     "u_km_s": "Heliocentric U, km/s.",
     "v_km_s": "Heliocentric V, km/s.",
     "w_km_s": "Heliocentric W, km/s.",

@@ -201,7 +201,8 @@ class SpaceVelocity:
     distance_pc: np.ndarray
     #: Parallax signal-to-noise (parallax / parallax error); NaN if unknown. Shape S.
     parallax_snr: np.ndarray
-    #: Position angle of the proper motion, degrees east of north in [0, 360). Shape S.
+    #: Position angle of the proper motion, degrees east of north in [0, 360); NaN
+    #: without proper motion (no direction). Shape S.
     pm_position_angle_deg: np.ndarray
     #: Total proper motion, mas/yr. Shape S.
     pm_total_mas_yr: np.ndarray
@@ -216,7 +217,8 @@ class SpaceVelocity:
     #: Total space velocity (speed) relative to the Sun, km/s. Shape S.
     total_velocity_km_s: np.ndarray
     #: Angle between the space velocity and the outward line of sight, degrees in
-    #: [0, 180]: 0 moving straight away, 90 purely transverse, 180 straight towards us.
+    #: [0, 180]: 0 moving straight away, 90 purely transverse, 180 straight towards us;
+    #: NaN for a star at rest relative to the Sun.
     velocity_line_of_sight_angle_deg: np.ndarray
     #: Heliocentric U, V, W, km/s. Shape S + (3,).
     uvw_km_s: np.ndarray
@@ -1019,14 +1021,17 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     out["parallax_snr"][sl] = snr
     pa = np.arctan2(pmra, pmdec) * DEG_PER_RAD
     pa += (pa < 0.0) * 360.0
-    out["pm_position_angle_deg"][sl] = pa
+    # No motion has no direction: arctan2(+-0, +-0) would say 0 or 180 by the zeros' signs.
+    out["pm_position_angle_deg"][sl] = np.where(pm_total == 0.0, np.nan, pa)
     out["pm_total_mas_yr"][sl] = pm_total
     out["transverse_velocity_km_s"][sl] = vt
     out["transverse_velocity_ra_km_s"][sl] = va
     out["transverse_velocity_dec_km_s"][sl] = vd
     out["radial_velocity_km_s"][sl] = rv
     out["total_velocity_km_s"][sl] = speed
-    out["velocity_line_of_sight_angle_deg"][sl] = np.arctan2(vt, rv) * DEG_PER_RAD
+    out["velocity_line_of_sight_angle_deg"][sl] = np.where(
+        speed == 0.0, np.nan, np.arctan2(vt, rv) * DEG_PER_RAD
+    )
     out["flags"][sl] = flags
 
 

@@ -270,6 +270,21 @@ def test_angle_between_velocity_and_line_of_sight(pm, rv, expected_deg):
     assert abs(r.velocity_line_of_sight_angle_deg - expected_deg) < 1e-12  # deg
 
 
+@pytest.mark.parametrize("zero", [0.0, -0.0])
+def test_angles_of_no_motion_are_null(zero):
+    # A direction needs a motion: arctan2 of two zeros gave 0 deg (or 180 deg when a zero
+    # was written -0.0) for the position angle of a star without proper motion, and
+    # "receding" (or "approaching") for a star at rest. Reference: an angle of a null vector
+    # is undefined (common practice); the moving stars keep theirs.
+    r = space_velocity(150.0, -20.0, 10.0, [zero, zero, 0.0], [zero, zero, 10.0],
+                       [zero, 5.0, 0.0])  # fmt: skip
+    assert np.isnan(r.pm_position_angle_deg[:2]).all()
+    assert np.isnan(r.velocity_line_of_sight_angle_deg[0])
+    assert abs(r.velocity_line_of_sight_angle_deg[1] - 0.0) < 1e-12  # deg, straight away
+    assert abs(r.pm_position_angle_deg[2] - 0.0) < 1e-12  # deg, due north
+    assert abs(r.velocity_line_of_sight_angle_deg[2] - 90.0) < 1e-12  # deg, transverse
+
+
 def test_line_of_sight_angle_and_speed_from_components():
     s = _random_stars(100, seed=8)
     r = space_velocity(
