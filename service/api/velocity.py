@@ -141,7 +141,9 @@ for _name in _CORRELATION_FIELDS:
     _VELOCITY_STAR_FIELDS[_name] = _num(
         "Correlation coefficient of the errors named in the field. "
         + (
-            "Null or absent: taken as 0 (flagged when standard errors are given)."
+            "Null or absent: taken as 0. A star with standard errors but none of "
+            "correlation_parallax_pm_ra, correlation_parallax_pm_dec and "
+            "correlation_pm_ra_pm_dec is flagged correlations_assumed_zero."
             if _used
             else "Accepted so that catalogue records can be sent unchanged; not used "
             "(positions and radial velocity do not correlate with the velocity terms used)."
@@ -296,7 +298,8 @@ VELOCITY_OUTPUTS = {
 
 _OUTPUT_DESCRIPTIONS = {
     "distance_pc": "Distance used: distance_pc if given, else 1000/parallax.",
-    "parallax_snr": "Parallax signal-to-noise; null without a parallax error.",
+    "parallax_snr": "Parallax signal-to-noise; null without a parallax error, or where "
+    "distance_pc replaces the parallax.",
     "pm_total_mas_yr": "Total proper motion, mas/yr.",
     "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north; "
     "null without proper motion.",
