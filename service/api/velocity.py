@@ -436,7 +436,7 @@ def _stars_drawn(c, method, low_snr_threshold):
     plx = c["parallax_mas"]
     if method == "monte_carlo":
         return int(np.count_nonzero(given | (plx > 0.0)))
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # edge values
         low = (plx > 0.0) & (plx / c["parallax_error_mas"] < low_snr_threshold)
     return int(np.count_nonzero(low & ~given))
 
