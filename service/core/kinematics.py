@@ -718,6 +718,7 @@ def space_velocity(
     )
 
 
+@overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
 def galactic_velocity(
     ra_deg,
     dec_deg,

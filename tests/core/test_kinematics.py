@@ -428,6 +428,20 @@ def test_galactic_velocity_equals_space_velocity():
     assert np.array_equal(a.flags, b.flags)
 
 
+def test_galactic_velocity_at_edge_values_equals_space_velocity():
+    # The lean entry point lacked the edge-value policy of space_velocity (core.floating):
+    # a parallax of 1e-300 mas with 1e10 mas/yr raised an overflow RuntimeWarning (an error
+    # here) instead of giving the infinite values space_velocity gives, flagged.
+    args = (10.0, 20.0, [1e-300, 5e-324, 1e10], [1e10, 3.0, -1e10], [1e10, 1.0, 0.0], 1e5)
+    a = space_velocity(*args, parallax_error_mas=1e10, pm_ra_cosdec_error_mas_yr=1e10,
+                       pm_dec_error_mas_yr=1e10, radial_velocity_error_km_s=1.0)  # fmt: skip
+    b = galactic_velocity(*args, parallax_error_mas=1e10, pm_ra_cosdec_error_mas_yr=1e10,
+                          pm_dec_error_mas_yr=1e10, radial_velocity_error_km_s=1.0)  # fmt: skip
+    assert np.array_equal(a.uvw_km_s, b.uvw_km_s, equal_nan=True)
+    assert np.array_equal(a.flags, b.flags)
+    assert (b.flags[:2] & KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE).all()
+
+
 def test_sin_cos_deg_against_numpy():
     x = np.concatenate([np.random.default_rng(3).uniform(-1000, 1000, 100_000),
                         np.arange(-720.0, 721.0, 15.0)])  # fmt: skip
