@@ -664,7 +664,8 @@ class Client:
         relative_to_lsr : bool
             Also give U, V, W relative to the local standard of rest.
         solar_motion_km_s : (U, V, W), optional
-            Sun's motion relative to the LSR, km/s (default: the service's).
+            Sun's motion relative to the LSR, km/s (default: the service's); only with
+            ``relative_to_lsr``.
         uncertainty_method : {"linear", "monte_carlo", "auto"}
         monte_carlo_draws, seed, low_snr_threshold : optional
             As in the API. With ``seed`` and several batches, each batch draws from the

@@ -181,8 +181,9 @@ class SolarMotionSchema(ma.Schema):
 
 
 _SOLAR_MOTION_DESCRIPTION = (
-    "Sun's velocity relative to the local standard of rest. Default: Schoenrich, Binney & "
-    "Dehnen 2010 (MNRAS 403, 1829): U, V, W = 11.1, 12.24, 7.25 km/s."
+    "Sun's velocity relative to the local standard of rest; only with relative_to_lsr true. "
+    "Default: Schoenrich, Binney & Dehnen 2010 (MNRAS 403, 1829): U, V, W = 11.1, 12.24, "
+    "7.25 km/s."
 )
 
 
@@ -425,6 +426,17 @@ def _solar_motion(args):
     sm = args.get("solar_motion")
     if sm is None:
         return core.V_SUN_LSR_SCHOENRICH2010_KM_S
+    if not args["relative_to_lsr"]:
+        # Ignored, it would leave U, V, W meant relative to the LSR taken as heliocentric.
+        abort(
+            422,
+            errors=[
+                {
+                    "field": "solar_motion",
+                    "message": "is used only with relative_to_lsr true; give both, or neither",
+                }
+            ],
+        )
     return (sm["u_km_s"], sm["v_km_s"], sm["w_km_s"])
 
 

@@ -307,6 +307,19 @@ def test_solar_motion_incomplete(client):
     assert_problem(post(client, body), 422, "solar_motion.w_km_s")
 
 
+@pytest.mark.parametrize("url", [URL, INVERSE_URL])
+def test_solar_motion_without_relative_to_lsr_is_refused(client, url):
+    # It was ignored: U, V, W sent to the inverse as relative to the LSR with their solar
+    # motion, but without relative_to_lsr, were taken as heliocentric, and the proper
+    # motions answered were off by the Sun's motion (about 17 km/s) without a word.
+    sun = {"u_km_s": 10.0, "v_km_s": 11.0, "w_km_s": 7.0}
+    star = STAR if url == URL else UVW_STAR
+    body = assert_problem(post(client, {"stars": [star], "solar_motion": sun}, url), 422)
+    assert [e["field"] for e in body["errors"]] == ["solar_motion"]
+    both = {"stars": [star], "solar_motion": sun, "relative_to_lsr": True}
+    assert post(client, both, url).json["solar_motion_km_s"] == [10.0, 11.0, 7.0]
+
+
 def test_solar_motion_nan(client):
     body = {"stars": [STAR], "solar_motion": {"u_km_s": "NaN", "v_km_s": 2.0, "w_km_s": 1.0}}
     assert_problem(post(client, body), 422, "solar_motion.u_km_s")
