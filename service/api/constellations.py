@@ -60,7 +60,7 @@ FLAG_MEANINGS = {
     "proper_motion_missing": "No proper motion: the position was taken as fixed.",
     "search_incomplete": "The crossing search reached its step limit before the end of the "
     "window (a star grazing a boundary for a long time); crossings after the last one "
-    "listed may be missing.",
+    "listed may be missing (constellation_at_end is still that at the window's end).",
 }
 
 UNITS = {

@@ -1820,6 +1820,9 @@ def boundary_crossings(
        within 1e-3 day) can be reported as one crossing (or none, if the star returns).
     5. Over 100,000 years the straight-line model is itself only a model: Galactic
        orbits curve. The answer is that of the model.
+    6. A star that runs out of steps (SEARCH_INCOMPLETE) still gets its constellation at
+       the end of the window in ``end_index`` (one lookup there); its crossings after the
+       last one listed are missing.
     """
     if reduction not in REDUCTIONS:
         raise ValueError(f"reduction must be one of {REDUCTIONS}, not {reduction!r}")
@@ -1912,6 +1915,9 @@ def boundary_crossings(
         prev_t[sel] = ts
         t[sel] = np.where(h >= t_end - ts, t_end, ts + h)
     flags = flags | np.where(active, int(ConstellationFlag.SEARCH_INCOMPLETE), 0)
+    unfinished = np.flatnonzero(active)
+    if unfinished.size:  # Note 6: the window's end, not where the search stopped
+        current[unfinished], _ = lookup(unfinished, np.full(unfinished.size, t_end), False)
 
     if found_star:
         star = np.concatenate(found_star)

@@ -644,6 +644,30 @@ def test_search_that_runs_out_of_steps_says_so():
     assert res.flags[0] & Flag.SEARCH_INCOMPLETE
 
 
+def test_incomplete_search_still_gives_the_constellation_at_the_window_end():
+    # A fast star stopped after 3 steps of a 100,000-year window: constellation_at_end must
+    # be where the star is at the window's end, not where the search stopped. Reference: the
+    # straight-line direction without parallax (tangent-plane motion, Hipparcos Vol. 1,
+    # section 1.5.5) written here, astropy FK4(equinox=B1875), Roman's read-down lookup.
+    ra, dec, pma, pmd, years = 40.0, 20.0, 3000.0, -1500.0, 100_000.0
+    res = C.boundary_crossings(
+        ra, dec, np.nan, pma, pmd, np.nan, 2000.0, 2000.0, 2000.0 + years, max_iterations=3
+    )
+    assert res.flags[0] & Flag.SEARCH_INCOMPLETE
+    a, d = math.radians(ra), math.radians(dec)
+    r = np.array([math.cos(d) * math.cos(a), math.cos(d) * math.sin(a), math.sin(d)])
+    east = np.array([-math.sin(a), math.cos(a), 0.0])
+    north = np.array([-math.sin(d) * math.cos(a), -math.sin(d) * math.sin(a), math.cos(d)])
+    w = r + (pma * east + pmd * north) / (3.6e6 * DEG_PER_RAD) * years
+    end = SkyCoord(*w, representation_type="cartesian", frame=ICRS())
+    end.representation_type = "unitspherical"
+    ra5, dec5 = _astropy_b1875(end.ra.deg, end.dec.deg, FK4(equinox=Time("B1875")))
+    expected = _scan(ra5, dec5)
+    stopped_in = res.to_index[-1] if res.count[0] else res.start_index[0]
+    assert expected != stopped_in  # the star moves on after the search stops
+    assert res.end_index[0] == expected
+
+
 def test_star_without_motion_never_crosses():
     res = C.boundary_crossings(10.0, 10.0, 5.0, 0.0, 0.0, 0.0, 2000.0, -98_000.0, 102_000.0)
     assert res.count[0] == 0 and res.start_index[0] == res.end_index[0]
