@@ -1751,18 +1751,21 @@ def _angular_speed_bound(r0, v, t_from, t_to):
 
     Notes
     -----
-    1. The direction of w(t) = r0 + v t turns at |v_perp| / |w| <= |v| / min |w|; the
-       minimum of |w| over the interval is at the closest approach t* = -(r0.v)/|v|^2,
-       clamped to the interval.
+    1. The direction of w(t) = r0 + v t turns at |w x w'| / |w|^2 = |r0 x v| / |w|^2
+       (exactly); the minimum of |w| over the interval is at the closest approach
+       t* = -(r0.v)/|v|^2, clamped to the interval. (The looser |v| / |w| counts the
+       radial part of v too, and grows like 1 / (t* - t) long before a star that
+       approaches the Sun turns at all.)
     """
     vv = np.einsum("ij,ij->i", v, v)
     with np.errstate(invalid="ignore", divide="ignore"):
         t_star = np.where(vv > 0.0, -np.einsum("ij,ij->i", r0, v) / vv, t_from)
     t_star = np.clip(t_star, t_from, t_to)
     w = r0 + v * t_star[:, None]
-    wmin = np.linalg.norm(w, axis=1)
+    ww = np.einsum("ij,ij->i", w, w)
+    turn = np.linalg.norm(np.cross(r0, v), axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(vv > 0.0, np.sqrt(vv) / wmin, 0.0)
+        return np.where(vv > 0.0, turn / ww, 0.0)
 
 
 @overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)
@@ -1811,7 +1814,11 @@ def boundary_crossings(
        :func:`locate`) inside its constellation; over the next interval its direction in
        the B1875.0 frame turns at most at omega (:func:`_angular_speed_bound`, enlarged by
        FK4_DISTORTION_ALLOWANCE for the E-terms), so a step of m / omega cannot reach any
-       boundary. No sliver of a constellation, however thin, can be stepped over.
+       boundary. No sliver of a constellation, however thin, can be stepped over. The bound
+       is taken over trial intervals of the largest step, a tenth of it, and so on, and
+       the longest safe step kept: a star that passes close to the Sun later in the
+       interval (its direction then sweeps fast) does not hold the steps before the
+       passage to the speed of the passage.
     2. When a star is closer to a boundary than it moves in CROSSING_MIN_STEP_YR (1e-3
        day), the search steps by that amount and checks the constellation after the step.
     3. Every change of constellation between two steps is located by bisection to
@@ -1908,9 +1915,32 @@ def boundary_crossings(
             continue
         ts = t[sel]
         span = np.minimum(step, t_end - ts)
+        reach = 0.999 * (margin / ARCSEC_PER_RAD)
+        # Note 1: the longest safe step among trial lengths span, span/10, ...: the speed
+        # bound over a shorter trial leaves out a fast passage later in the span.
         omega = _angular_speed_bound(r0[sel], v[sel], ts, ts + span) * allowance
         with np.errstate(divide="ignore"):
-            safe = np.where(omega > 0.0, 0.999 * (margin / ARCSEC_PER_RAD) / omega, np.inf)
+            safe = np.where(omega > 0.0, reach / omega, np.inf)
+        # No trial can allow more than the speed at ts allows (ceiling); try shorter ones
+        # only where that would more than double the step.
+        trial = span / 10.0
+        todo = np.flatnonzero(safe < trial)
+        ceiling = np.full(sel.size, np.inf)
+        if todo.size:
+            k = sel[todo]
+            with np.errstate(divide="ignore"):
+                speed_now = _angular_speed_bound(r0[k], v[k], ts[todo], ts[todo]) * allowance
+                ceiling[todo] = reach[todo] / speed_now
+            todo = todo[ceiling[todo] > 2.0 * safe[todo]]
+        while todo.size:
+            k = sel[todo]
+            omega = _angular_speed_bound(r0[k], v[k], ts[todo], ts[todo] + trial[todo])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ok = np.where(omega > 0.0, reach[todo] / (omega * allowance), np.inf)
+            safe[todo] = np.maximum(safe[todo], np.minimum(ok, trial[todo]))
+            trial[todo] = trial[todo] / 10.0
+            keep = (safe[todo] < trial[todo]) & (ceiling[todo] > 2.0 * safe[todo])
+            todo = todo[keep & (trial[todo] > CROSSING_MIN_STEP_YR)]
         h = np.minimum(np.maximum(safe, CROSSING_MIN_STEP_YR), span)
         prev_t[sel] = ts
         t[sel] = np.where(h >= t_end - ts, t_end, ts + h)

@@ -644,6 +644,47 @@ def test_search_that_runs_out_of_steps_says_so():
     assert res.flags[0] & Flag.SEARCH_INCOMPLETE
 
 
+def _straight_line_b1875(ra, dec, plx, pma, pmd, rv, years):
+    """Constellation along a straight-line space motion (Hipparcos Vol. 1, section 1.5.5)
+    written here with astropy's units, reduced by astropy FK4(equinox=B1875), looked up by
+    Roman's read-down procedure."""
+    a, d = math.radians(ra), math.radians(dec)
+    r = np.array([math.cos(d) * math.cos(a), math.cos(d) * math.sin(a), math.sin(d)])
+    east = np.array([-math.sin(a), math.cos(a), 0.0])
+    north = np.array([-math.sin(d) * math.cos(a), -math.sin(d) * math.sin(a), math.cos(d)])
+    dist_pc = (plx * u.mas).to_value(u.pc, equivalencies=u.parallax())
+    tangential = (pma * east + pmd * north) * (1 * u.mas).to_value(u.rad) * dist_pc  # pc/yr
+    radial = (rv * u.km / u.s).to_value(u.pc / u.yr) * r  # Julian year
+    w = dist_pc * r + (tangential + radial) * np.asarray(years)[:, None]
+    c = SkyCoord(*w.T, representation_type="cartesian", frame=ICRS())
+    c.representation_type = "unitspherical"
+    return _scan(*_astropy_b1875(c.ra.deg, c.dec.deg, FK4(equinox=Time("B1875"))))
+
+
+def test_star_passing_close_to_the_sun_is_followed_through_the_passage():
+    # 2 pc away, approaching at 500 km/s with a small proper motion: the straight line
+    # passes 1e-4 pc from the Sun after 3,900 years, where the direction sweeps across half
+    # the sky within a few years. The steps before the passage must not be held to that
+    # speed (the search then ran out of steps before reaching it).
+    star = (200.0, 30.0, 500.0, 10.0, -5.0, -500.0)
+    res = C.boundary_crossings(*star, 2000.0, 2000.0, 12_000.0)
+    assert not res.flags[0] & Flag.SEARCH_INCOMPLETE
+    assert res.count[0] >= 5  # across half the sky
+    # each crossing confirmed by the reference 1e-3 day either side
+    t = res.epoch_jyear - 2000.0
+    eps = CROSSING_EPOCH_TOL_DAY / 365.25
+    np.testing.assert_array_equal(_straight_line_b1875(*star, t - eps), res.from_index)
+    np.testing.assert_array_equal(_straight_line_b1875(*star, t + eps), res.to_index)
+    # none missed: every change of a reference sweep (1e-3 yr steps through the passage)
+    # lies between crossings listed
+    sweep = np.concatenate([np.linspace(0.0, 10_000.0, 2001), np.arange(3900.0, 3920.0, 1e-3)])
+    sweep.sort()
+    idx = _straight_line_b1875(*star, sweep)
+    assert idx[0] == res.start_index[0] and idx[-1] == res.end_index[0]
+    for c in np.flatnonzero(idx[1:] != idx[:-1]):
+        assert np.any((t >= sweep[c]) & (t <= sweep[c + 1])), sweep[c]
+
+
 def test_incomplete_search_still_gives_the_constellation_at_the_window_end():
     # A fast star stopped after 3 steps of a 100,000-year window: constellation_at_end must
     # be where the star is at the window's end, not where the search stopped. Reference: the
