@@ -170,11 +170,13 @@ class LookupRequestSchema(ma.Schema):
         metadata={"description": REDUCTION_DESCRIPTION},
     )
     near_boundary_arcsec = StrictFloat(
-        load_default=core.DEFAULT_NEAR_BOUNDARY_ARCSEC,
+        load_default=None,
+        allow_none=True,
         validate=ma.validate.Range(min=0.0, max=36_000.0),
         metadata={
             "description": "Distance from a boundary, arcsec, within which a star is flagged "
-            "near_boundary (margins endpoint). Default 1."
+            "near_boundary (margins endpoint). Default (absent or null): the service's "
+            "setting SKYDRIFT_NEAR_BOUNDARY_ARCSEC, 1 unless its operator chose another."
         },
     )
     layout = ma.fields.String(
@@ -396,6 +398,9 @@ def _locate(args, with_margin: bool):
     if epoch is None:
         epoch = cat_epoch
     _refuse_half_proper_motions(table, pma, pmd)
+    if args["near_boundary_arcsec"] is None:  # the operator's default
+        near = current_app.config["SKYDRIFT_SETTINGS"].near_boundary_arcsec
+        args = {**args, "near_boundary_arcsec": near}
     moving = np.isfinite(pma) & np.isfinite(pmd)
     frame = frame_from_spec(args["frame"], "frame")
     if frame.name != "icrs":

@@ -134,6 +134,23 @@ def test_margins_flag_near_boundary(client):
     assert r.json["stars"][0]["near_boundary"] is False
 
 
+def test_margins_default_is_the_operators_setting():
+    # SKYDRIFT_NEAR_BOUNDARY_ARCSEC (README, Configuration) sets the default distance; a
+    # request's own near_boundary_arcsec still wins.
+    from service.api.app import create_app
+    from service.config import Settings
+
+    app = create_app({"SKYDRIFT_SETTINGS": Settings(near_boundary_arcsec=3600.0), "TESTING": True})
+    client = app.test_client()
+    star = {"ra_deg": 89.0, "dec_deg": -5.4}  # 123 arcsec from the Ori-Mon boundary
+    s = client.post(f"{BASE}/margins", json={"stars": [star]}).json["stars"][0]
+    ref = core.locate(star["ra_deg"], star["dec_deg"], with_margin=True)
+    assert 1.0 < float(ref.margin_arcsec) < 3600.0  # near only by the operator's setting
+    assert s["near_boundary"] is True and "near_boundary" in s["flags"]
+    body = {"stars": [star], "near_boundary_arcsec": 1.0}
+    assert client.post(f"{BASE}/margins", json=body).json["stars"][0]["near_boundary"] is False
+
+
 def test_crossings_match_core(client):
     example = json.loads(
         (
