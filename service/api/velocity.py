@@ -236,13 +236,15 @@ class VelocityRequestSchema(ma.Schema):
         metadata={"description": "Seed of the Monte Carlo draws, for reproducible answers."},
     )
     low_snr_threshold = StrictFloat(
-        load_default=core.LOW_PARALLAX_SNR_DEFAULT,
+        load_default=None,
+        allow_none=True,
         allow_nan=False,
         validate=ma.validate.Range(min=0.0, max=1e6, min_inclusive=False),
         metadata={
             "description": "Parallax signal-to-noise below which a star is flagged "
-            "parallax_low_snr (1/parallax is then a biased distance). Default 5 (common "
-            "practice)."
+            "parallax_low_snr (1/parallax is then a biased distance). Default (absent or "
+            "null): the service's setting SKYDRIFT_LOW_PARALLAX_SNR, 5 (common practice) "
+            "unless its operator chose another."
         },
     )
     layout = ma.fields.String(
@@ -405,6 +407,9 @@ class VelocityResponseSchema(ma.Schema):
     )  # fmt: skip
     catalogue_epoch = ma.fields.Nested(EpochOutSchema, allow_none=True)
     uncertainty_method = ma.fields.String()
+    low_snr_threshold = ma.fields.Float(
+        metadata={"description": "Parallax signal-to-noise threshold used for parallax_low_snr."}
+    )
     units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     warnings = ma.fields.List(ma.fields.Nested(VelocityWarningSchema))
@@ -548,6 +553,9 @@ def velocity(args):
     method = args["uncertainty_method"]
     draws = args["monte_carlo_draws"]
     c = table.columns
+    if args["low_snr_threshold"] is None:  # the operator's default
+        low_snr = current_app.config["SKYDRIFT_SETTINGS"].low_parallax_snr
+        args = {**args, "low_snr_threshold": low_snr}
     drawn = _stars_drawn(c, method, args["low_snr_threshold"]) if method != "linear" else 0
     if drawn * draws > MAX_MONTE_CARLO_SAMPLES:
         abort(
@@ -649,6 +657,7 @@ def velocity(args):
         if args["catalogue_epoch"] is None
         else epochs_out([args["catalogue_epoch"]])[0],
         "uncertainty_method": method,
+        "low_snr_threshold": args["low_snr_threshold"],
         "units": {k: v for k, v in VELOCITY_OUTPUTS.items() if k in columns},
         "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in used},
         "warnings": flag_warnings(result.flags, table, _WARNING_TEXTS),

@@ -297,6 +297,24 @@ def test_auto_counts_only_the_stars_it_draws_against_the_sample_limit(client):
     assert "900 stars drawn" in message and "uncertainty_method auto" not in message
 
 
+def test_low_snr_default_is_the_operators_setting():
+    # SKYDRIFT_LOW_PARALLAX_SNR (README, Configuration) sets the default threshold; a
+    # request's own low_snr_threshold still wins, and the answer says which was used.
+    from service.api.app import create_app
+    from service.config import Settings
+
+    app = create_app({"SKYDRIFT_SETTINGS": Settings(low_parallax_snr=20.0), "TESTING": True})
+    client = app.test_client()
+    star = dict(STAR, parallax_mas=10.0, parallax_error_mas=1.0)  # signal-to-noise 10
+    r = post(client, {"stars": [star]})
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["low_snr_threshold"] == 20.0
+    assert "parallax_low_snr" in r.json["stars"][0]["flags"]
+    r = post(client, {"stars": [star], "low_snr_threshold": 5.0})
+    assert r.json["low_snr_threshold"] == 5.0
+    assert "parallax_low_snr" not in r.json["stars"][0]["flags"]
+
+
 def test_non_positive_snr_threshold(client):
     assert_problem(post(client, {"stars": [STAR], "low_snr_threshold": 0}), 422,
                    "low_snr_threshold")  # fmt: skip
