@@ -129,7 +129,7 @@ def with_likely_names(messages, schema):
     fields = schema.fields
     out = {}
     for key, value in messages.items():
-        if key in _LOCATIONS and schema is not None and isinstance(value, dict):
+        if key in _LOCATIONS and isinstance(value, dict):
             out[key] = with_likely_names(value, schema)
         elif value == _UNKNOWN and isinstance(key, str):
             accepted = [f.data_key or name for name, f in fields.items() if not f.dump_only]
