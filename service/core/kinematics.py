@@ -1022,6 +1022,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     out["parallax_snr"][sl] = snr
     pa = np.arctan2(pmra, pmdec) * DEG_PER_RAD
     pa += (pa < 0.0) * 360.0
+    pa = np.where(pa >= 360.0, 0.0, pa)  # -1e-17 + 360 rounds to 360: the range is [0, 360)
     # No motion has no direction: arctan2(+-0, +-0) would say 0 or 180 by the zeros' signs.
     out["pm_position_angle_deg"][sl] = np.where(pm_total == 0.0, np.nan, pa)
     out["pm_total_mas_yr"][sl] = pm_total

@@ -262,6 +262,16 @@ def test_position_angle_of_proper_motion(pmra, pmdec, expected_deg):
     assert abs(r.pm_position_angle_deg - expected_deg) < 1e-12  # deg
 
 
+def test_position_angle_just_west_of_north_stays_below_360():
+    # A motion a hair west of north: -1e-17 deg + 360 rounds to 360.0, outside the
+    # documented [0, 360); the angle is then 0 (within 1e-14 deg of the true 360 - 6e-17).
+    r = space_velocity(150.0, -20.0, 10.0, [-1e-15, -1.0], [1000.0, 1000.0], 0.0)
+    assert (0.0 <= r.pm_position_angle_deg).all() and (r.pm_position_angle_deg < 360.0).all()
+    assert r.pm_position_angle_deg[0] == 0.0
+    expected = 360.0 + np.degrees(np.arctan2(-1.0, 1000.0))  # deg, from the components
+    assert abs(r.pm_position_angle_deg[1] - expected) < 1e-12  # deg
+
+
 @pytest.mark.parametrize(
     "pm, rv, expected_deg", [(0.0, 10.0, 0.0), (0.0, -10.0, 180.0), (10.0, 0.0, 90.0)]
 )
