@@ -29,12 +29,24 @@ def _cpu_count() -> int:
     return max(1, n)
 
 
+def _whole(name: str, default: int, lo: int, hi: int) -> int:
+    """A whole-number setting; a bad value stops the start with one line naming it."""
+    raw = os.environ.get(name) or ""
+    try:
+        value = int(raw) if raw else default
+    except ValueError:
+        raise SystemExit(f"{name}={raw!r}: expected a whole number") from None
+    if not lo <= value <= hi:
+        raise SystemExit(f"{name}={value}: must be between {lo} and {hi}")
+    return value
+
+
 #: Address to listen on: SKYDRIFT_BIND (default loopback only; the image sets 0.0.0.0:8000).
 bind = os.environ.get("SKYDRIFT_BIND", "127.0.0.1:8000")
 
 #: Worker processes: SKYDRIFT_WORKERS, default one per usable CPU (the work is CPU-bound
 #: numpy; in a container the CPU limit counts, not the host's CPUs).
-workers = int(os.environ.get("SKYDRIFT_WORKERS") or _cpu_count())
+workers = _whole("SKYDRIFT_WORKERS", _cpu_count(), 1, 1024)
 
 #: Threaded workers, chosen by measurement (README, "Choosing the worker class"; run
 #: `python -m benchmarks.bench_http workers`): with keep-alive clients, gthread with 2
@@ -49,37 +61,42 @@ workers = int(os.environ.get("SKYDRIFT_WORKERS") or _cpu_count())
 worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "service.workers.ReadDeadlineThreadWorker")
 
 #: Threads per worker (gthread only).
-threads = int(os.environ.get("SKYDRIFT_THREADS", 2))
+threads = _whole("SKYDRIFT_THREADS", 2, 1, 1024)
 
 #: Seconds a worker may go without a heartbeat before gunicorn kills and replaces it (a hung
 #: process; a sync worker also stops answering during one long request). A slow request in
 #: a threaded worker is bounded by SKYDRIFT_REQUEST_TIMEOUT_S (service/api/access.py)
 #: instead. Kept at least 10 s above it so the application's own 503 answer comes first.
-_soft_s = float(os.environ.get("SKYDRIFT_REQUEST_TIMEOUT_S") or 0)
-timeout = max(int(os.environ.get("SKYDRIFT_TIMEOUT_S", 120)), math.ceil(_soft_s) + 10)
+#: (SKYDRIFT_REQUEST_TIMEOUT_S itself is checked by service/config.py, which names a bad
+#: value when the application loads; here such a value counts as 0.)
+try:
+    _soft_s = float(os.environ.get("SKYDRIFT_REQUEST_TIMEOUT_S") or 0)
+except ValueError:
+    _soft_s = 0.0
+if not 0.0 <= _soft_s <= 86400.0:  # also NaN
+    _soft_s = 0.0
+timeout = max(_whole("SKYDRIFT_TIMEOUT_S", 120, 1, 86400), math.ceil(_soft_s) + 10)
 
 #: Graceful shutdown: on SIGTERM (what Docker and Kubernetes send) the master stops
 #: accepting connections and each worker finishes its in-flight request, for at most this
 #: many seconds, before it is stopped. Keep the orchestrator's grace period above it
 #: (deploy/k8s: terminationGracePeriodSeconds 75; compose: stop_grace_period 75s).
-graceful_timeout = int(os.environ.get("SKYDRIFT_GRACEFUL_TIMEOUT_S", 60))
+graceful_timeout = _whole("SKYDRIFT_GRACEFUL_TIMEOUT_S", 60, 0, 86400)
 
 #: Seconds to keep an idle client connection open (gthread; sync closes after each request).
-keepalive = int(os.environ.get("SKYDRIFT_KEEPALIVE_S", 5))
+keepalive = _whole("SKYDRIFT_KEEPALIVE_S", 5, 0, 3600)
 
 #: Restart each worker after this many requests, plus a random 0..jitter so that the
 #: workers do not all restart at once, to bound any slow growth of memory.
-max_requests = int(os.environ.get("SKYDRIFT_MAX_REQUESTS", 20000))
-max_requests_jitter = int(os.environ.get("SKYDRIFT_MAX_REQUESTS_JITTER", 2000))
+max_requests = _whole("SKYDRIFT_MAX_REQUESTS", 20000, 0, 1_000_000_000)
+max_requests_jitter = _whole("SKYDRIFT_MAX_REQUESTS_JITTER", 2000, 0, 1_000_000_000)
 
 #: CPU priority of the workers: SKYDRIFT_WORKER_NICE, 0 (default, unchanged) to 19 (lowest).
 #: For a pool that serves bulk work on the same host as a pool serving single-star pointing
 #: requests: with the bulk workers at a higher nice value the kernel runs pointing requests
 #: first when both want the CPU (README, "Separate pools for pointing and bulk work").
 #: Raising the value needs no privilege; a value outside 0..19 stops the start.
-worker_nice = int(os.environ.get("SKYDRIFT_WORKER_NICE") or 0)
-if not 0 <= worker_nice <= 19:
-    raise ValueError(f"SKYDRIFT_WORKER_NICE must be between 0 and 19, not {worker_nice}")
+worker_nice = _whole("SKYDRIFT_WORKER_NICE", 0, 0, 19)
 
 #: Load the application once in the master before forking, so the tables (leap seconds,
 #: Earth orientation, constellation boundaries) are read once and shared copy-on-write.

@@ -77,8 +77,50 @@ def test_on_starting_clears_old_metrics(load, tmp_path):
 def test_worker_nice_setting(load):
     assert load()["worker_nice"] == 0
     assert load(SKYDRIFT_WORKER_NICE="10")["worker_nice"] == 10
-    with pytest.raises(ValueError, match="SKYDRIFT_WORKER_NICE"):
+    with pytest.raises(SystemExit, match="SKYDRIFT_WORKER_NICE"):
         load(SKYDRIFT_WORKER_NICE="25")
+
+
+@pytest.mark.parametrize(
+    ("name", "value"),
+    [
+        ("SKYDRIFT_WORKERS", "abc"),
+        ("SKYDRIFT_WORKERS", "0"),  # gunicorn would start with no worker and answer nothing
+        ("SKYDRIFT_THREADS", "0"),  # every gthread worker would fail to boot, over and over
+        ("SKYDRIFT_TIMEOUT_S", "two minutes"),
+        ("SKYDRIFT_GRACEFUL_TIMEOUT_S", "-1"),
+        ("SKYDRIFT_KEEPALIVE_S", "abc"),
+        ("SKYDRIFT_MAX_REQUESTS", "1e4"),
+        ("SKYDRIFT_MAX_REQUESTS_JITTER", "-5"),
+    ],
+)
+def test_bad_process_settings_stop_the_start_with_one_line_naming_them(load, name, value):
+    # SystemExit with a message: gunicorn lets it through its "Failed to read config file"
+    # traceback, so the operator sees this one line and exit status 1.
+    with pytest.raises(SystemExit, match=name) as info:
+        load(**{name: value})
+    assert "\n" not in str(info.value)
+
+
+def test_bad_application_setting_under_gunicorn_is_one_line(tmp_path):
+    import os
+    import subprocess
+    import sys
+
+    # What gunicorn does with preload_app: import service.wsgi in the master.
+    env = dict(os.environ, SKYDRIFT_MAX_STARS="many", PYTHONPATH=str(ROOT))
+    out = subprocess.run(
+        [sys.executable, "-c", "import service.wsgi"],
+        env=env,
+        capture_output=True,
+        text=True,
+        cwd=tmp_path,
+    )
+    assert out.returncode == 1
+    assert "Traceback" not in out.stderr
+    assert out.stderr.strip().splitlines() == [
+        "skydrift: bad setting: SKYDRIFT_MAX_STARS='many': expected a whole number"
+    ]
 
 
 def test_post_fork_lowers_the_worker_priority(load):
