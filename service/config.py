@@ -69,7 +69,8 @@ class Settings:
         as a biased distance. Default 5.
     sites_file : str
         SKYDRIFT_SITES_FILE: JSON file of named observing sites; empty = the packaged demo
-        site list.
+        site list. Its content is checked when the application is made
+        (service/api/observed.py, ``load_sites``): a bad file stops the start.
     eop_file : str
         SKYDRIFT_EOP_FILE: an IERS finals2000A file newer than the packaged one; empty = the
         table packaged with astropy-iers-data.

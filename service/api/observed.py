@@ -17,6 +17,7 @@ import numpy as np
 from flask import current_app
 from flask_smorest import abort
 
+from ..config import ConfigError
 from ..core import frames as core_frames
 from ..core import observed as core
 from ..core import propagation as core_prop
@@ -101,14 +102,70 @@ def load_sites(path: str | None) -> dict:
 
     ``path`` is the SKYDRIFT_SITES_FILE setting; empty means the demo scenario's list
     (fictional observatory). A JSON object with a ``sites`` mapping, or the mapping itself.
+    Each site needs ``latitude_deg``, ``longitude_deg`` and ``height_m`` (as an inline site
+    does) and may have ``horizon_limit_deg`` and ``name``. Read at start: a file that cannot
+    be read, is not JSON, repeats a name or has an invalid site raises
+    :class:`~service.config.ConfigError` naming the setting, so the service does not start.
     """
-    file = pathlib.Path(path) if path else DEMO_DIR / "observatory.json"
+    if not path:
+        file = DEMO_DIR / "observatory.json"
+        if not file.is_file():
+            return {}
+        where = f"the demo site list {file.name}"
+    else:
+        file = pathlib.Path(path)
+        where = f"SKYDRIFT_SITES_FILE={path!r}"
     try:
-        data = json.loads(file.read_text())
-    except (OSError, ValueError):
-        return {}
-    sites = data.get("sites", data) if isinstance(data, dict) else {}
-    return {k: v for k, v in sites.items() if isinstance(v, dict)}
+        text = file.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{where}: cannot be read ({exc})") from None
+
+    def unique_keys(pairs):
+        seen = {}
+        for key, value in pairs:
+            if key in seen:
+                raise ConfigError(f"{where}: the name {key!r} appears twice")
+            seen[key] = value
+        return seen
+
+    try:
+        data = json.loads(text, object_pairs_hook=unique_keys)
+    except ValueError as exc:
+        if isinstance(exc, ConfigError):
+            raise
+        raise ConfigError(f"{where}: not JSON ({exc})") from None
+    sites = data.get("sites", data) if isinstance(data, dict) else None
+    if not isinstance(sites, dict):
+        raise ConfigError(f"{where}: expected a JSON object of sites by name")
+    for name, entry in sites.items():
+        if not isinstance(entry, dict):
+            raise ConfigError(f"{where}: site {name!r} is not an object")
+        missing = [k for k in ("latitude_deg", "longitude_deg", "height_m") if k not in entry]
+        if missing:
+            raise ConfigError(f"{where}: site {name!r} has no {', '.join(missing)}")
+        values = [entry[k] for k in ("latitude_deg", "longitude_deg", "height_m")]
+        try:
+            if any(isinstance(v, bool) or not isinstance(v, int | float) for v in values):
+                raise core.ObservedInputError(
+                    "", "latitude_deg, longitude_deg and height_m must be numbers"
+                )
+            core.make_site(*values, prefix="")
+        except core.ObservedInputError as exc:
+            field = exc.field.lstrip(".")
+            raise ConfigError(
+                f"{where}: site {name!r}: {field + ' ' if field else ''}{exc.message}"
+            ) from None
+        horizon = entry.get("horizon_limit_deg")
+        if horizon is not None and (
+            isinstance(horizon, bool)
+            or not isinstance(horizon, int | float)
+            or not -90.0 <= horizon <= 90.0
+        ):
+            raise ConfigError(
+                f"{where}: site {name!r}: horizon_limit_deg must be a number of degrees "
+                "between -90 and 90"
+            )
+    return sites
 
 
 def _num(description, *, lo=None, hi=None, **kw):

@@ -384,6 +384,60 @@ def test_site_list_horizon_limit_only_for_the_listed_site(client, observed_examp
     assert r.json["limits"]["horizon_limit_deg"] == settings.horizon_limit_deg
 
 
+_GOOD_SITE = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 100.0}
+
+
+@pytest.mark.parametrize(
+    ("text", "needle"),
+    [
+        ("sites = { a = 1 }", "not JSON"),
+        (json.dumps({"sites": {"x": dict(_GOOD_SITE, latitude_deg=200.0)}}), "latitude_deg"),
+        (json.dumps({"sites": {"x": {"longitude_deg": 0.0, "height_m": 0.0}}}), "no latitude"),
+        (json.dumps({"sites": {"x": {"latitude_deg": 1.0, "longitude_deg": 2.0}}}), "height_m"),
+        (json.dumps({"x": dict(_GOOD_SITE, latitude_deg="10")}), "must be numbers"),
+        (json.dumps({"sites": {"x": dict(_GOOD_SITE, horizon_limit_deg="low")}}), "horizon"),
+        (json.dumps({"sites": {"x": 5}}), "not an object"),
+        (json.dumps([_GOOD_SITE]), "object of sites"),
+        # Two sites with one name: JSON parsers keep the last one without a word.
+        (
+            '{"sites": {"x": {"latitude_deg": 10, "longitude_deg": 0, "height_m": 0}, '
+            '"x": {"latitude_deg": 20, "longitude_deg": 0, "height_m": 0}}}',
+            "'x' appears twice",
+        ),
+    ],
+)
+def test_a_bad_sites_file_stops_the_start_naming_the_setting(tmp_path, text, needle):
+    # These once started: a file that was not JSON or was not a mapping became an empty
+    # list ("unknown site ... none configured" blamed on the client, /ready 200), a missing
+    # coordinate or a bad horizon limit answered each request 500, a bad latitude answered
+    # 422 naming the client's field site.latitude_deg, and a repeated name kept the last.
+    from service.api import create_app
+    from service.api.observed import load_sites
+    from service.config import ConfigError, Settings
+
+    path = tmp_path / "sites.json"
+    path.write_text(text)
+    settings = Settings.from_env({"SKYDRIFT_SITES_FILE": str(path)})
+    load_sites.cache_clear()
+    with pytest.raises(ConfigError, match="SKYDRIFT_SITES_FILE") as info:
+        create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True})
+    assert needle in str(info.value)
+
+
+def test_a_good_sites_file_is_used(tmp_path, observed_example):
+    from service.api import create_app
+    from service.config import Settings
+
+    path = tmp_path / "sites.json"
+    path.write_text(json.dumps({"east-hill": dict(_GOOD_SITE, horizon_limit_deg=12.5)}))
+    settings = Settings.from_env({"SKYDRIFT_SITES_FILE": str(path)})
+    c = create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True}).test_client()
+    r = c.post(OBS, json=dict(observed_example, site="east-hill"))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["limits"]["horizon_limit_deg"] == 12.5
+    assert r.json["site"]["latitude_deg"] == 10.0
+
+
 def test_unknown_site_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
     assert_problem(r, 422, "site.name")
