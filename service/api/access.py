@@ -299,6 +299,23 @@ def _install_rate_limit(app, settings) -> None:
     def client_key() -> str:
         return g.get("client") or ("addr:" + (request.remote_addr or "unknown"))
 
+    # flask-limiter puts a Retry-After (the seconds to the end of the window, up to an hour
+    # or a day) on every response, and raises any Retry-After of the answer's own to it: a
+    # 503 of the request time limit or of SKYDRIFT_TEST_FAIL_FIRST_N would tell a client
+    # that honours it to wait out the rate-limit window. Only a 429 keeps the limiter's; any
+    # other answer keeps its own, or none. after_request hooks run in reverse order of
+    # registration: this one (registered before the limiter's) runs after it, and
+    # _own_retry_after (registered after) runs before it.
+    @app.after_request
+    def _restore_retry_after(resp):
+        if resp.status_code != 429 and "skydrift_retry_after" in g:
+            own = g.pop("skydrift_retry_after")
+            if own is None:
+                resp.headers.pop("Retry-After", None)
+            else:
+                resp.headers["Retry-After"] = own
+        return resp
+
     limiter = Limiter(
         client_key,
         app=app,
@@ -312,6 +329,11 @@ def _install_rate_limit(app, settings) -> None:
         key_prefix="skydrift",
     )
     app.extensions["skydrift_limiter"] = limiter
+
+    @app.after_request
+    def _own_retry_after(resp):
+        g.skydrift_retry_after = resp.headers.get("Retry-After")
+        return resp
 
 
 def client_id() -> str:

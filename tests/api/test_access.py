@@ -228,6 +228,27 @@ def test_rate_limit_429_with_retry_after(settings):
     assert c.get("/metrics").status_code == 200
 
 
+def test_rate_limit_retry_after_only_on_429(settings):
+    # RFC 9110 section 10.2.3: Retry-After says how long to wait before the next request.
+    # The limiter put its window's end (here up to 3600 s) on every answer and raised a
+    # 503's own Retry-After to it, so a client honouring it waited out the hour.
+    c = make_client(settings, rate_limit="2/hour", test_fail_first_n=1, test_fail_retry_after_s=1)
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert_problem(r, 503)
+    assert r.headers.getlist("Retry-After") == ["1"]  # SKYDRIFT_TEST_FAIL_RETRY_AFTER_S
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert r.status_code == 200 and "Retry-After" not in r.headers
+    assert r.headers["X-RateLimit-Remaining"] == "0"
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY)
+    assert_problem(r, 429)
+    assert 3500 < int(r.headers["Retry-After"]) <= 3600
+    # The request time limit's 503 carries no Retry-After of the limiter's either.
+    slow = _app_with_slow_route(dataclasses.replace(settings, rate_limit="5/hour"), 0.2)
+    r = slow.get("/test-slow/5.0")
+    assert_problem(r, 503)
+    assert "Retry-After" not in r.headers
+
+
 def test_rate_limit_is_per_client(settings):
     c = make_client(settings, rate_limit="2/minute", auth_tokens=(TOKEN_A, TOKEN_B))
     for _ in range(2):
