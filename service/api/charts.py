@@ -10,6 +10,7 @@ from flask_smorest import abort
 
 from .common import Blueprint, EpochField, StrictBoolean, StrictFloat
 from .examples import load_example
+from .observability import count_stars
 from .propagation import StarAstrometrySchema
 from .tables import StarTableField
 
@@ -212,6 +213,7 @@ def track(args):
     except ValueError as exc:
         abort(422, errors=[{"field": "stars", "message": str(exc)}])
     image_format = _image_format(args)
+    count_stars("/v1/charts/track", table.size)
     return _image(
         charts.render_tracks(chart, title=args["title"], image_format=image_format),
         image_format,
@@ -250,6 +252,7 @@ def field(args):
         labels=_labels(table),
     )
     image_format = _image_format(args)
+    count_stars("/v1/charts/field", table.size)
     return _image(
         charts.render_field(chart, title=args["title"], image_format=image_format),
         image_format,

@@ -23,6 +23,7 @@ from .common import (
 )
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
+from .observability import count_stars
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -536,6 +537,7 @@ def _membership_body(args, with_margin: bool):
             {"index": i, "id": None if ids is None else ids[i], **{k: lists[k][i] for k in keys}}
             for i in range(n)
         ]
+    count_stars("/v1/constellations/margins" if with_margin else "/v1/constellations/lookup", n)
     return current_app.json.response(body)
 
 
@@ -698,6 +700,7 @@ def crossings(args):
         "flag_meanings": _flag_meanings(res.flags),
         "stars": stars,
     }
+    count_stars("/v1/constellations/crossings", table.size)
     return current_app.json.response(body)
 
 

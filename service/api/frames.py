@@ -14,6 +14,7 @@ from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
 from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
 from .examples import load_example
+from .observability import count_stars
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -302,6 +303,7 @@ def convert(args):
         "methods": METHODS,
         "stars": stars,
     }
+    count_stars("/v1/frames", n)
     return current_app.json.response(body)
 
 

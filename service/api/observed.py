@@ -36,6 +36,7 @@ from .common import (
 )
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
+from .observability import count_stars
 from .propagation import FLAG_MEANINGS as PROPAGATION_FLAG_MEANINGS
 from .spelling import unknown_name_text
 from .tables import StarTableField
@@ -588,6 +589,7 @@ def observed(args):
         "warnings": warnings,
         "stars": stars,
     }
+    count_stars("/v1/observed", n)
     return current_app.json.response(body)
 
 

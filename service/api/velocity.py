@@ -36,6 +36,7 @@ from .common import (
     number_field,
 )
 from .examples import load_example
+from .observability import count_stars
 from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC, StarTableField
 
 blp = Blueprint(
@@ -667,6 +668,7 @@ def velocity(args):
         body["columns"] = {"id": table.ids, "flags": names, **contiguous}
     else:
         body["stars"] = _records(list(columns), list(columns.values()), table, names, n)
+    count_stars("/v1/velocity", n)
     return current_app.json.response(body)
 
 
@@ -812,6 +814,7 @@ def observables(args):
         body["columns"] = {"id": table.ids, "flags": names, **contiguous}
     else:
         body["stars"] = _records(list(columns), list(columns.values()), table, names, n)
+    count_stars("/v1/velocity/observables", n)
     return current_app.json.response(body)
 
 

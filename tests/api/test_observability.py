@@ -78,6 +78,41 @@ def test_stars_processed_and_validation_failures(client):
     assert value(after, invalid, **ep) - value(before, invalid, **ep) == pytest.approx(1)
 
 
+_STAR_ENDPOINTS = [
+    ("/v1/propagation", "propagation_request.json"),
+    ("/v1/observed", "observed_request.json"),
+    ("/v1/frames", "frames_request.json"),
+    ("/v1/velocity", "velocity_request.json"),
+    ("/v1/velocity/observables", "velocity_observables_request.json"),
+    ("/v1/constellations/lookup", "constellations_lookup_request.json"),
+    ("/v1/constellations/margins", "constellations_lookup_request.json"),
+    ("/v1/constellations/crossings", "constellations_crossings_request.json"),
+    ("/v1/charts/track", "chart_track_request.json"),
+    ("/v1/charts/field", "chart_field_request.json"),
+]
+
+
+@pytest.mark.parametrize(("endpoint", "example"), _STAR_ENDPOINTS)
+def test_stars_processed_counted_for_every_endpoint_that_takes_stars(client, endpoint, example):
+    # README, Observability: skydrift_stars_processed_total by endpoint. Only
+    # /v1/propagation was counted; the count is the number of stars sent, read from the
+    # request here, not from the service.
+    import pathlib
+
+    path = pathlib.Path(__file__).resolve().parents[2] / "shared" / "demo" / "examples"
+    body = json.loads((path / example).read_text())
+    stars = body["stars"]
+    sent = len(stars) if isinstance(stars, list) else len(next(iter(stars.values())))
+    before = scrape(client)
+    r = client.post(endpoint, json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    after = scrape(client)
+    name = "skydrift_stars_processed_total"
+    assert value(after, name, endpoint=endpoint) - value(
+        before, name, endpoint=endpoint
+    ) == pytest.approx(sent, abs=0)
+
+
 def test_count_stars_helper(client):
     before = scrape(client)
     with create_app(
