@@ -35,6 +35,7 @@ from flask import Response, g, request
 from werkzeug.exceptions import ServiceUnavailable
 from werkzeug.middleware.proxy_fix import ProxyFix
 
+from ..config import ConfigError
 from .errors import problem_response
 
 log = logging.getLogger("skydrift.access")
@@ -316,18 +317,25 @@ def _install_rate_limit(app, settings) -> None:
                 resp.headers["Retry-After"] = own
         return resp
 
-    limiter = Limiter(
-        client_key,
-        app=app,
-        application_limits=[settings.rate_limit],
-        application_limits_exempt_when=lambda: (
-            request.path in OPERATOR_PATHS or request.method == "OPTIONS"
-        ),
-        storage_uri=settings.rate_limit_storage,
-        headers_enabled=True,
-        strategy="fixed-window",
-        key_prefix="skydrift",
-    )
+    from limits.errors import ConfigurationError
+
+    try:
+        limiter = Limiter(
+            client_key,
+            app=app,
+            application_limits=[settings.rate_limit],
+            application_limits_exempt_when=lambda: (
+                request.path in OPERATOR_PATHS or request.method == "OPTIONS"
+            ),
+            storage_uri=settings.rate_limit_storage,
+            headers_enabled=True,
+            strategy="fixed-window",
+            key_prefix="skydrift",
+        )
+    except ConfigurationError as exc:  # unknown scheme, or its client not installed
+        raise ConfigError(
+            f"SKYDRIFT_RATE_LIMIT_STORAGE={settings.rate_limit_storage!r}: {exc}"
+        ) from None
     app.extensions["skydrift_limiter"] = limiter
 
     @app.after_request

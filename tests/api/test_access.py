@@ -166,6 +166,15 @@ def test_bad_access_settings_stop_the_start(env, needle):
         Settings.from_env(env)
 
 
+@pytest.mark.parametrize("storage", ["foo://x", "nosuchstore://127.0.0.1:1"])
+def test_unusable_rate_limit_store_stops_the_start_naming_the_setting(settings, storage):
+    # The limits library refuses an unknown scheme (or one whose client is not installed)
+    # when the limiter is made; that came out as a traceback naming no setting.
+    s = dataclasses.replace(settings, rate_limit="10/second", rate_limit_storage=storage)
+    with pytest.raises(ConfigError, match="SKYDRIFT_RATE_LIMIT_STORAGE"):
+        create_app({"SKYDRIFT_SETTINGS": s, "TESTING": True})
+
+
 # --- CORS ----------------------------------------------------------------------------------
 
 SKY_APP = "https://sky.example.org"
