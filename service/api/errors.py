@@ -15,8 +15,8 @@ import logging
 import re
 
 import marshmallow as ma
-from flask import Response, g
-from werkzeug.exceptions import HTTPException, InternalServerError
+from flask import Response, current_app, g
+from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntityTooLarge
 
 from .jsonio import dumps
 from .spelling import closest_name
@@ -218,6 +218,14 @@ def handle_http_exception(error: HTTPException) -> Response:
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
     else:
         detail = data.get("message") or error.description
+    if isinstance(error, RequestEntityTooLarge) and not data:
+        # A body without a declared length (chunked) that grew past the limit while read:
+        # werkzeug's words name no limit and no setting.
+        limit = current_app.config["SKYDRIFT_SETTINGS"].max_body_bytes
+        detail = (
+            f"The request body exceeds the limit of {limit} bytes "
+            "(setting SKYDRIFT_MAX_BODY_BYTES)."
+        )
     if errors and len(errors) > MAX_LISTED_ERRORS:
         more = len(errors) - MAX_LISTED_ERRORS
         errors = errors[:MAX_LISTED_ERRORS] + [

@@ -309,6 +309,25 @@ def test_oversized_body_413_before_the_body_is_read(client, settings):
     assert str(settings.max_body_bytes) in r.json["detail"]
 
 
+def test_oversized_chunked_body_413_names_the_setting(client, settings):
+    # No declared length (Transfer-Encoding: chunked, RFC 9112 section 7.1): the limit
+    # bites while the body is read. The answer named no limit and no setting
+    # (werkzeug's "The data value transmitted exceeds the capacity limit.").
+    import io
+
+    body = b"[" + b" " * (settings.max_body_bytes + 10) + b"]"
+    r = client.post(
+        "/v1/propagation",
+        input_stream=io.BytesIO(body),
+        content_type="application/json",
+        headers={"Transfer-Encoding": "chunked"},
+        environ_overrides={"wsgi.input_terminated": True},
+    )
+    assert_problem(r, 413)
+    assert "SKYDRIFT_MAX_BODY_BYTES" in r.json["detail"]
+    assert str(settings.max_body_bytes) in r.json["detail"]
+
+
 def test_oversized_invalid_json_is_413_not_400(client, settings):
     # Parsing would answer 400 (not JSON); the size check comes first.
     r = client.post(
