@@ -288,8 +288,8 @@ FLAG_MEANINGS = {
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     "uncertainties_incomplete": "Some but not all five astrometric standard errors given: "
     "no uncertainties computed.",
-    "correlations_assumed_zero": "Standard errors given without correlations: correlations "
-    "taken as zero.",
+    "correlations_assumed_zero": "Standard errors given without any correlation among the "
+    "five astrometric parameters: those correlations taken as zero.",
 }
 
 
@@ -311,11 +311,15 @@ def _covariance(table, n):
         return None, complete, incomplete, np.zeros(n, bool), np.array([], int)
     corr = np.zeros((n, 6, 6))
     corr[:, range(6), range(6)] = 1.0
-    given_any = np.zeros(n, dtype=bool)
+    given_any = np.zeros(n, dtype=bool)  # a correlation among the five astrometric ones
+    given_rv = np.zeros(n, dtype=bool)  # one with the radial velocity
     for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
         c = cols[name]
         known = np.isfinite(c)
-        given_any |= known & (j < 5)
+        if j < 5:
+            given_any |= known
+        else:
+            given_rv |= known
         corr[:, i, j] = corr[:, j, i] = np.where(known, c, 0.0)
     rv_known = np.isfinite(errs[:, 5]) & np.isfinite(cols["radial_velocity_km_s"])
     sig = np.where(np.isfinite(errs), errs, 0.0)
@@ -323,7 +327,9 @@ def _covariance(table, n):
     cov[~rv_known, 5, :] = np.nan
     cov[~rv_known, :, 5] = np.nan
     # The correlation matrix must be positive semi-definite (tolerance for rounding).
-    check = np.flatnonzero(complete & given_any)
+    # Correlations with the radial velocity alone can be impossible too (ra-rv 0.9 and
+    # dec-rv -0.9 with ra-dec taken as 0), so they are checked as well.
+    check = np.flatnonzero(complete & (given_any | (given_rv & rv_known)))
     bad = np.array([], dtype=int)
     if check.size:
         sub = corr[check]

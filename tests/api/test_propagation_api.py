@@ -317,6 +317,38 @@ def test_covariance_not_positive_semidefinite(client):
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].correlation_*")
 
 
+def test_correlations_with_the_radial_velocity_alone_are_checked(client):
+    # ra-rv 0.9 and dec-rv -0.9 with ra-dec 0 (not given): the correlation matrix has the
+    # eigenvalue 1 - 0.9 sqrt(2) < 0 (numpy eigvalsh below), so no covariance can hold them;
+    # they were accepted, and an impossible covariance answered, when no correlation among
+    # the five astrometric parameters came with them.
+    star = dict(
+        STAR,
+        parallax_mas=5.0,
+        radial_velocity_km_s=30.0,
+        ra_error_mas=0.1,
+        dec_error_mas=0.1,
+        parallax_error_mas=0.2,
+        pm_ra_cosdec_error_mas_yr=0.1,
+        pm_dec_error_mas_yr=0.1,
+        radial_velocity_error_km_s=1.0,
+        correlation_ra_radial_velocity=0.9,
+        correlation_dec_radial_velocity=-0.9,
+    )
+    corr = np.eye(6)
+    corr[0, 5] = corr[5, 0] = 0.9
+    corr[1, 5] = corr[5, 1] = -0.9
+    assert np.linalg.eigvalsh(corr)[0] < -0.2  # the reference: not positive semi-definite
+    assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].correlation_*")
+    # One such correlation alone is possible: answered, and the flag says that the
+    # astrometric correlations (none given) were taken as zero.
+    del star["correlation_dec_radial_velocity"]
+    r = post(client, dict(BASE, stars=[star]))
+    assert r.status_code == 200, r.json
+    assert r.json["stars"][0]["flags"] == ["correlations_assumed_zero"]
+    assert "astrometric" in r.json["flag_meanings"]["correlations_assumed_zero"]
+
+
 def test_unparseable_epoch(client):
     r = post(client, dict(BASE, stars=[STAR], target_epochs=["J2020", "yesterday"]))
     assert_problem(r, 422, "target_epochs[1]")
