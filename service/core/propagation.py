@@ -690,7 +690,8 @@ def propagate_light_time(
        flag DISTANCE_REPLACED); the parallax and radial velocity out are reported as unknown
        where they were unknown in.
     3. pmsafe status bits map to flags: 1 -> DISTANCE_REPLACED, 2 ->
-       SPACE_VELOCITY_IMPLAUSIBLE, 4 -> NOT_CONVERGED.
+       SPACE_VELOCITY_IMPLAUSIBLE, 4 -> NOT_CONVERGED. AT_POLE is set where the position
+       out is within AT_POLE_RAD of a pole, as in the standard model.
     """
     ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
     dec = np.asarray(dec_deg, dtype=float) * RAD_PER_DEG
@@ -715,6 +716,8 @@ def propagate_light_time(
     flags = flags | np.where(status & 1, int(PropagationFlag.DISTANCE_REPLACED), 0)
     flags = flags | np.where(status & 2, int(PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE), 0)
     flags = flags | np.where(status & 4, int(PropagationFlag.NOT_CONVERGED), 0)
+    # At a pole as the standard model judges it (cos(dec) = |s| cos(dec1) / |s| there).
+    flags = flags | np.where(np.cos(dec2) < AT_POLE_RAD, int(PropagationFlag.AT_POLE), 0)
     ast = Astrometry(
         ra_deg=np.mod(np.degrees(ra2), 360.0),
         dec_deg=np.degrees(dec2),

@@ -28,6 +28,8 @@ from hypothesis import strategies as st
 
 from service.core.constants import AU_PER_JULIAN_YEAR_KM_S, MAS_PER_RAD
 from service.core.propagation import (
+    AT_POLE_RAD,
+    MODELS,
     PropagationFlag,
     input_flags,
     propagate,
@@ -695,6 +697,25 @@ def test_flag_at_pole():
     res = propagate(0.0, 90.0, 10.0, 0.0, 0.0, 10.0, 2016.0, 2020.0)
     assert res.flags & PropagationFlag.AT_POLE
     assert res.astrometry.dec_deg == 90.0
+
+
+@pytest.mark.parametrize("with_covariance", [False, True])
+def test_flag_at_pole_alike_in_both_models(with_covariance):
+    # The light-time model did not flag a star at a pole at all. Reference: pyerfa pmsafe
+    # puts these at the pole (cos(dec) out below AT_POLE_RAD; the last one 1 degree from it).
+    dec = np.array([90.0, -90.0, 90.0, 89.0])
+    pmd = np.array([0.0, 0.0, 1e-9, 0.0])
+    ra2, dec2, *_ = erfa.pmsafe(
+        0.0, np.radians(dec), 0.0, pmd / MAS_PER_RAD, 0.01, 10.0, *erfa.epj2jd(2016.0),
+        *erfa.epj2jd(2020.0),
+    )  # fmt: skip
+    expected = np.cos(dec2) < AT_POLE_RAD
+    assert expected.tolist() == [True, True, True, False]
+    cov = np.diag([0.1, 0.1, 0.1, 0.1, 0.1, 1.0]) if with_covariance else None
+    for model in MODELS:
+        res = propagate(0.0, dec, 10.0, 0.0, pmd, 10.0, 2016.0, 2020.0, model=model, covariance=cov)
+        got = (res.flags & PropagationFlag.AT_POLE) != 0
+        assert got.tolist() == expected.tolist(), model
 
 
 def test_empty_batch_and_unknown_everything_do_not_fail():
