@@ -116,7 +116,11 @@ _STAR_FIELDS = {
     ),
     "ra_error_mas": _num("Standard error of ra*cos(dec), mas.", lo=0.0, hi=MAX_ABS_MAS),
     "dec_error_mas": _num("Standard error of dec, mas.", lo=0.0, hi=MAX_ABS_MAS),
-    "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0, hi=MAX_ABS_MAS),
+    "parallax_error_mas": _num(
+        "Standard error of the parallax, mas (not needed where the parallax is null).",
+        lo=0.0,
+        hi=MAX_ABS_MAS,
+    ),
     "pm_ra_cosdec_error_mas_yr": _num(
         "Standard error of pm_ra_cosdec, mas/yr.", lo=0.0, hi=MAX_ABS_MAS
     ),
@@ -234,7 +238,8 @@ class AtEpochSchema(ma.Schema):
         metadata={
             "description": "Standard errors (ra_error_mas ... radial_velocity_error_km_s) and "
             "correlation coefficients (correlation_ra_dec ...) at this epoch; null when the "
-            "star came without the five astrometric standard errors."
+            "star came without the standard errors of its position, proper motion and (where "
+            "its parallax is given) parallax."
         },
     )
 
@@ -286,8 +291,8 @@ FLAG_MEANINGS = {
     "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
-    "uncertainties_incomplete": "Some but not all five astrometric standard errors given: "
-    "no uncertainties computed.",
+    "uncertainties_incomplete": "Some but not all of the standard errors of position, proper "
+    "motion and (where the parallax is given) parallax given: no uncertainties computed.",
     "correlations_assumed_zero": "Standard errors given without any correlation among the "
     "five astrometric parameters: those correlations taken as zero.",
 }
@@ -303,9 +308,13 @@ def _covariance(table, n):
         none = np.zeros(n, dtype=bool)
         return None, none, none, none, np.array([], dtype=int)
     errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
-    astro = errs[:, :5]
-    complete = np.all(np.isfinite(astro), axis=-1)
-    some = np.any(np.isfinite(astro), axis=-1)
+    given = np.isfinite(errs[:, :5])
+    some = np.any(given, axis=-1)
+    # Without a parallax, its standard error is not needed: the motion does not depend on
+    # the parallax then, and the parallax out is unknown with its error.
+    needed = given.copy()
+    needed[:, 2] |= np.isnan(cols["parallax_mas"])
+    complete = some & np.all(needed, axis=-1)
     incomplete = some & ~complete
     if not complete.any():
         return None, complete, incomplete, np.zeros(n, bool), np.array([], int)

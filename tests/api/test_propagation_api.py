@@ -1,6 +1,7 @@
 """POST /v1/propagation: results, layouts, flags, and one test per kind of bad input."""
 
 import json
+import math
 
 import numpy as np
 import pytest
@@ -112,6 +113,42 @@ def test_incomplete_errors_flagged(client):
     star = dict(STAR, ra_error_mas=0.1)
     body = post(client, dict(BASE, stars=[star])).json
     assert "uncertainties_incomplete" in body["stars"][0]["flags"]
+
+
+def test_star_without_parallax_needs_no_parallax_error(client):
+    # A catalogue without parallaxes (position and proper-motion errors only) got no
+    # uncertainties at all ("uncertainties_incomplete"). Without a parallax the motion does
+    # not depend on it, so the four errors determine the answer. Reference: the linear
+    # growth of a straight line's position error, sigma(t)^2 = sigma0^2 + t^2 sigma_mu^2
+    # (ESA 1997 Vol. 1 sec. 1.5.5 without perspective terms; the terms it leaves out, of
+    # order t mu tan(dec), are 5e-6 relative here: 100 yr at 0.11 arcsec/yr, dec 5 deg).
+    errs = dict(
+        ra_error_mas=0.3,
+        dec_error_mas=0.2,
+        pm_ra_cosdec_error_mas_yr=0.05,
+        pm_dec_error_mas_yr=0.07,
+    )
+    star = dict(STAR, **errs)
+    body = post(client, dict(BASE, target_epochs=["J2116.0"], stars=[star])).json
+    s = body["stars"][0]
+    assert "uncertainties_incomplete" not in s["flags"]
+    assert "parallax_missing" in s["flags"]
+    u = s["at_epochs"][0]["uncertainties"]
+    assert u["parallax_error_mas"] is None and u["correlation_ra_parallax"] is None
+    rel = 1e-4  # relative, standard errors
+    assert u["ra_error_mas"] == pytest.approx(math.hypot(0.3, 100 * 0.05), rel=rel)
+    assert u["dec_error_mas"] == pytest.approx(math.hypot(0.2, 100 * 0.07), rel=rel)
+    assert u["pm_ra_cosdec_error_mas_yr"] == pytest.approx(0.05, rel=rel)
+    assert u["pm_dec_error_mas_yr"] == pytest.approx(0.07, rel=rel)
+    # The same as before when a parallax error was sent beside the missing parallax.
+    with_px = post(
+        client, dict(BASE, target_epochs=["J2116.0"], stars=[dict(star, parallax_error_mas=1.0)])
+    )
+    assert with_px.json["stars"][0]["at_epochs"][0]["uncertainties"] == u
+    # A star with a parallax still needs its error.
+    body = post(client, dict(BASE, stars=[dict(star, parallax_mas=5.0)])).json
+    assert "uncertainties_incomplete" in body["stars"][0]["flags"]
+    assert body["stars"][0]["at_epochs"][0]["uncertainties"] is None
 
 
 def test_target_range(client):
