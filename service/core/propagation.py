@@ -688,7 +688,10 @@ def propagate_light_time(
     2. A missing or non-positive parallax, or a missing radial velocity, is passed to pmsafe
        as zero (its documented convention: the distance is then replaced by a minimum value,
        flag DISTANCE_REPLACED); the parallax and radial velocity out are reported as unknown
-       where they were unknown in.
+       where they were unknown in. A radial velocity without a usable parallax is passed as
+       zero too: at the replaced distance it would move the star by a made-up amount
+       (arcseconds in thousands of years); it is returned unchanged (flag
+       RADIAL_VELOCITY_UNCHANGED), as in the standard model.
     3. pmsafe status bits map to flags: 1 -> DISTANCE_REPLACED, 2 ->
        SPACE_VELOCITY_IMPLAUSIBLE, 4 -> NOT_CONVERGED. AT_POLE is set where the position
        out is within AT_POLE_RAD of a pole, as in the standard model.
@@ -704,7 +707,7 @@ def propagate_light_time(
         plx_ok = plx > 0
         pmr = pma / MAS_PER_RAD / np.cos(dec)
     px_arcsec = np.where(plx_ok, plx / 1000.0, 0.0)
-    rv_in = np.where(np.isfinite(rv), rv, 0.0)
+    rv_in = np.where(np.isfinite(rv) & plx_ok, rv, 0.0)  # Note 2
     e1a, e1b = julian_epoch_to_jd(epoch_from_jyear)
     e2a, e2b = julian_epoch_to_jd(epoch_to_jyear)
     # The ufunc form returns pmsafe's status per element (the wrapper turns it into a

@@ -663,6 +663,26 @@ def test_flags_light_time_model_reports_unknowns():
     assert res.astrometry.parallax_mas[2] == -2.0
 
 
+@pytest.mark.parametrize("plx", [np.nan, -1.0, 0.0])
+def test_light_time_radial_velocity_without_distance_does_not_move_the_star(plx):
+    # pmsafe applied a given radial velocity at the minimum distance it puts in place of a
+    # missing or non-positive parallax: 300 km/s moved the star by 8 arcsec in 10,000 yr,
+    # although the flags say the radial velocity is not applied. Reference: pyerfa pmsafe
+    # with the radial velocity zero (the star then moves as without one).
+    ra, dec, pma, pmd = 10.0, 20.0, 500.0, 300.0
+    res = propagate(ra, dec, plx, pma, pmd, 300.0, 2016.0, 12016.0, model="light_time")
+    # (the ufunc form: pmsafe's status 1, distance replaced, as a value, not a warning)
+    ra2, dec2, *_ = erfa.ufunc.pmsafe(
+        np.radians(ra), np.radians(dec), pma / MAS_PER_RAD / np.cos(np.radians(dec)),
+        pmd / MAS_PER_RAD, 0.0, 0.0, *erfa.epj2jd(2016.0), *erfa.epj2jd(12016.0),
+    )  # fmt: skip
+    a = res.astrometry
+    sep = separation_uas(a.ra_deg, a.dec_deg, np.degrees(ra2), np.degrees(dec2))
+    assert sep < POSITION_TOL_UAS
+    assert a.radial_velocity_km_s == 300.0  # passed through unchanged, and flagged so
+    assert res.flags & PropagationFlag.RADIAL_VELOCITY_UNCHANGED
+
+
 def test_flags_implausible_proper_motion_and_velocity():
     # 10.4 arcsec/yr threshold (common practice; see constants).
     pma = np.array([10_300.0, 10_500.0, 0.0, 100.0])
