@@ -424,9 +424,14 @@ def _python_array(values: list) -> pa.Array:
 
 
 def _ids_array(ids: list) -> pa.Array:
-    """Identifiers as given: int64 if all integers, else text (a mix gives text)."""
+    """Identifiers as given: int64 if all integers, uint64 if all integers and some above
+    int64 (an Arrow uint64 id column), else text (a mix gives text)."""
     try:
         return pa.array(ids)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
+        pass
+    try:
+        return pa.array(ids, pa.uint64())
     except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
         return pa.array([None if v is None else str(v) for v in ids], pa.string())
 
@@ -504,4 +509,7 @@ def _records_arrow(body: dict, nested_names: set) -> dict:
     """A records answer (or a single object) -> Arrow columns, through the CSV answer's rows
     (the same rows and column order)."""
     header, rows = csvio.record_rows(body, nested_names)
-    return {key: _python_array([row.get(key) for row in rows]) for key in header}
+    return {
+        key: (_ids_array if key == "id" else _python_array)([row.get(key) for row in rows])
+        for key in header
+    }

@@ -256,6 +256,22 @@ def test_integer_ids_stay_integers(client):
     assert post_arrow(client, stream_of(t)).json["columns"]["id"] == [5, 6, 7]
 
 
+def test_unsigned_64_bit_ids_stay_integers(client):
+    # Ids above 2**63 - 1 (an Arrow uint64 column) came back as text in the Arrow answer,
+    # so the answer no longer joined with the table sent. Reference: pyarrow's own uint64.
+    ids = pa.array([2**64 - 1, 0, None], pa.uint64())
+    r = post_arrow(client, stream_of(small_table(id=ids)), accept=ARROW)
+    col = read_stream(r.data).column("id")
+    assert col.type == pa.uint64()
+    assert col.to_pylist() == [2**64 - 1, 2**64 - 1, 0, 0, None, None]
+    assert (
+        post_arrow(client, stream_of(small_table(id=ids))).json["columns"]["id"] == ids.to_pylist()
+    )
+    records = QUERY + "&layout=records"  # the records answer is turned into Arrow apart
+    r = post_arrow(client, stream_of(small_table(id=ids)), query=records, accept=ARROW)
+    assert read_stream(r.data).column("id").type == pa.uint64()
+
+
 # ------------------------------------------------------------------ bad bodies
 
 
