@@ -323,7 +323,15 @@ def _id_column(values: list, errors: TableErrors) -> list:
     types = set(map(type, values))
     if not types <= {str, int, type(None)}:
         bad = [i for i, v in enumerate(values) if not (type(v) in _ID_TYPES or v is None)]
-        errors.add_indices(bad, "id", "must be a string or an integer")
+        # The JSON reader gives an integer beyond 64 bits as a float: not what was written.
+        big = [i for i in bad if type(values[i]) is float and abs(values[i]) >= 2.0**63]
+        errors.add_indices(
+            big,
+            "id",
+            "an integer id must lie within 64 bits (-2**63 to 2**64 - 1): send "
+            "larger ones as strings",
+        )
+        errors.add_indices(sorted(set(bad) - set(big)), "id", "must be a string or an integer")
     elif str in types:
         long_ = [i for i, v in enumerate(values) if type(v) is str and len(v) > MAX_ID_LENGTH]
         if long_:

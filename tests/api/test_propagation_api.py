@@ -501,6 +501,24 @@ def test_body_over_the_configured_size(client, settings):
     assert_problem(r, 413)
 
 
+def test_integer_id_beyond_64_bits_is_named_as_such(client):
+    # It was refused as "must be a string or an integer", though it is an integer. The
+    # limits are those of orjson, the JSON reader (it reads larger integers as floats).
+    import orjson
+
+    assert type(orjson.loads("18446744073709551615")) is int
+    assert type(orjson.loads("18446744073709551616")) is float
+    for big in (2**64, -(2**63) - 1):
+        text = json.dumps(dict(BASE, stars=[dict(STAR, id=big)]))
+        r = client.post(URL, data=text, content_type="application/json")
+        body = assert_problem(r, 422, "stars[0].id")
+        assert "64 bits" in body["errors"][0]["message"]
+    for fine in (2**64 - 1, -(2**63)):
+        text = json.dumps(dict(BASE, stars=[dict(STAR, id=fine)]))
+        r = client.post(URL, data=text, content_type="application/json")
+        assert r.status_code == 200 and r.json["stars"][0]["id"] == fine
+
+
 def test_record_that_is_not_an_object(client):
     assert_problem(post(client, dict(BASE, stars=[STAR, 5])), 422, "stars[1]")
 
