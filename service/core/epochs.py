@@ -308,11 +308,20 @@ def _read(value, now: _dt.datetime | None) -> _Reading:
                 "23:59:60 UTC at the end of a day with a leap second"
             )
         return _read_calendar_utc(y, mo, d, h, mi, s, offset_min)
+    if _ISO.match(_PLUS_AS_SPACE.sub(r"+\1", text)):
+        raise EpochError(
+            f"cannot read epoch {value!r}: a space stands where the '+' of a UTC offset "
+            "belongs; in a URL query string '+' reads as a space, write it as %2B"
+        )
     raise EpochError(
         f"cannot read epoch {value!r}: write a Julian epoch (2016.0 or 'J2016.0'), "
         "'B1950.0', 'JD2451545.0', 'MJD51544.5', an ISO 8601 UTC time "
         "('2026-12-02T03:04:05Z') or 'now'"
     )
+
+
+#: A UTC offset whose '+' became a space (a URL query string decodes '+' as a space).
+_PLUS_AS_SPACE = re.compile(r" (\d{2}:?\d{2})$")
 
 
 #: ERFA dtf2d status codes below zero: what was wrong with the calendar date or time.

@@ -375,3 +375,19 @@ def test_header_column_without_a_name(client):
         fields = problem_fields(post_csv(client, body))
         assert ("line 1", f"column {k} of the header has no name (a trailing comma?)") in fields
         assert all(f != "line 1: " for f, _ in fields)
+
+
+def test_offset_plus_decoded_as_space_is_explained(client):
+    # '+' in a URL query string is a space (application/x-www-form-urlencoded, WHATWG URL
+    # standard): a '+05:30' offset arrives as ' 05:30'. The answer said only that the epoch
+    # could not be read.
+    from urllib.parse import parse_qs
+
+    assert parse_qs("t=2026-12-02T22:00:00+05:30")["t"] == ["2026-12-02T22:00:00 05:30"]
+    body = "ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\n10,20,1,1\n"
+    url = "/v1/propagation?catalogue_epoch=J2016.0&target_epochs="
+    r = client.post(url + "2026-12-02T22:00:00+05:30", data=body, content_type="text/csv")
+    assert r.status_code == 422
+    assert "%2B" in r.json["errors"][0]["message"]
+    r = client.post(url + "2026-12-02T22:00:00%2B05:30", data=body, content_type="text/csv")
+    assert r.status_code == 200
