@@ -307,8 +307,11 @@ class EpochField(ma.fields.Field):
     parse = staticmethod(core_epochs.parse_epoch)
 
     def __init__(self, **kwargs):
-        kwargs.setdefault("metadata", {})
-        kwargs["metadata"].setdefault("description", EPOCH_DESCRIPTION)
+        metadata = dict(kwargs.get("metadata") or {})
+        # What the field means, then how an epoch is written (and that Julian epochs are TDB).
+        own = metadata.get("description")
+        metadata["description"] = f"{own} {EPOCH_DESCRIPTION}" if own else EPOCH_DESCRIPTION
+        kwargs["metadata"] = metadata
         super().__init__(**kwargs)
 
     def _deserialize(self, value, attr, data, **kwargs):

@@ -539,3 +539,19 @@ def test_exclusive_bounds_printed_in_full_and_marked_exclusive(client):
     rv = spec["StarAstrometry"]["properties"]["radial_velocity_km_s"]
     assert rv["exclusiveMaximum"] == 299792.458 and rv["exclusiveMinimum"] == -299792.458
     assert "maximum" not in rv and "minimum" not in rv
+
+
+def test_every_epoch_in_the_api_description_says_how_to_write_it(client):
+    # catalogue_epoch said only "Epoch of the given astrometry.": not which forms are read,
+    # nor that a Julian epoch is TDB. Every epoch field of every schema now says both.
+    spec = client.get("/openapi.json").json
+    seen = 0
+    for schema in spec["components"]["schemas"].values():
+        for name, prop in schema.get("properties", {}).items():
+            if prop.get("type") in (["string", "number"], ["string", "number", "null"]):
+                seen += 1
+                assert "'J2016.0' (TDB)" in prop.get("description", ""), name
+                assert "'MJD51544.5'" in prop["description"], name
+    props = spec["components"]["schemas"]["PropagationRequest"]["properties"]
+    assert props["catalogue_epoch"]["description"].startswith("Epoch of the given astrometry.")
+    assert seen >= 10
