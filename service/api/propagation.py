@@ -285,7 +285,10 @@ FLAG_MEANINGS = {
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
     "space_velocity_implausible": "Implied space velocity above half the speed of light: "
     "inconsistent inputs.",
-    "at_pole": "At a celestial pole: right ascension undefined.",
+    "at_pole": "At a celestial pole at the catalogue epoch or a target epoch: right "
+    "ascension, and the directions of the proper-motion components, undefined there. From "
+    "a catalogue position at a pole those directions are taken from the right ascension "
+    "given, and the uncertainties have no meaning.",
     "distance_replaced": "Light-time model: distance replaced by a minimum value (SOFA pmsafe).",
     "not_converged": "Light-time model: iteration did not converge.",
     "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "

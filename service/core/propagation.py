@@ -80,8 +80,12 @@ class PropagationFlag(enum.IntFlag):
     #: Space velocity implied by parallax, proper motion and radial velocity above half the
     #: speed of light: the inputs are inconsistent (light-time model caps it, as SOFA does).
     SPACE_VELOCITY_IMPLAUSIBLE = 16
-    #: Position at a celestial pole (within AT_POLE_RAD of it): right ascension and the
-    #: orientation of the proper-motion components are undefined there.
+    #: Position at a celestial pole (within AT_POLE_RAD of it) at the catalogue epoch or the
+    #: target epoch: right ascension and the orientation of the proper-motion components
+    #: are undefined there. From a catalogue position at a pole the directions of the
+    #: proper motion are taken from the right ascension given (as the limit along that
+    #: meridian), and uncertainties have no meaning (a change of ra*cos(dec) there turns
+    #: the motion about the pole).
     AT_POLE = 32
     #: Light-time model: the parallax was too small for the motion and SOFA replaced the
     #: distance by a minimum value (pmsafe status 1).
@@ -328,7 +332,7 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
         # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4).
         g = (AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD) / plx * loc.tpm2 + rv * loc.sz
     rv1 = np.where(usable, loc.f * g, rv)
-    at_pole = loc.H * loc.f < AT_POLE_RAD
+    at_pole = (loc.H * loc.f < AT_POLE_RAD) | (loc.cd < AT_POLE_RAD)  # target, catalogue
     if at_pole.any():
         flags = flags | np.where(at_pole, int(PropagationFlag.AT_POLE), 0)
     ast = Astrometry(
@@ -694,7 +698,7 @@ def propagate_light_time(
        RADIAL_VELOCITY_UNCHANGED), as in the standard model.
     3. pmsafe status bits map to flags: 1 -> DISTANCE_REPLACED, 2 ->
        SPACE_VELOCITY_IMPLAUSIBLE, 4 -> NOT_CONVERGED. AT_POLE is set where the position
-       out is within AT_POLE_RAD of a pole, as in the standard model.
+       in or out is within AT_POLE_RAD of a pole, as in the standard model.
     """
     ra = np.asarray(ra_deg, dtype=float) * RAD_PER_DEG
     dec = np.asarray(dec_deg, dtype=float) * RAD_PER_DEG
@@ -720,7 +724,8 @@ def propagate_light_time(
     flags = flags | np.where(status & 2, int(PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE), 0)
     flags = flags | np.where(status & 4, int(PropagationFlag.NOT_CONVERGED), 0)
     # At a pole as the standard model judges it (cos(dec) = |s| cos(dec1) / |s| there).
-    flags = flags | np.where(np.cos(dec2) < AT_POLE_RAD, int(PropagationFlag.AT_POLE), 0)
+    at_pole = (np.cos(dec2) < AT_POLE_RAD) | (np.cos(dec) < AT_POLE_RAD)
+    flags = flags | np.where(at_pole, int(PropagationFlag.AT_POLE), 0)
     ast = Astrometry(
         ra_deg=np.mod(np.degrees(ra2), 360.0),
         dec_deg=np.degrees(dec2),

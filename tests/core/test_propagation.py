@@ -13,6 +13,8 @@ Sources:
 
 from __future__ import annotations
 
+import math
+
 import astropy.units as u
 import erfa
 import numpy as np
@@ -717,6 +719,28 @@ def test_flag_at_pole():
     res = propagate(0.0, 90.0, 10.0, 0.0, 0.0, 10.0, 2016.0, 2020.0)
     assert res.flags & PropagationFlag.AT_POLE
     assert res.astrometry.dec_deg == 90.0
+
+
+@pytest.mark.parametrize("model", MODELS)
+def test_flag_at_pole_from_the_catalogue_position(model):
+    # A star catalogued at a pole and moved away from it was not flagged, though the
+    # directions of its proper motion come from a right ascension that means nothing there
+    # and its propagated uncertainty in ra*cos(dec) after one year was 8.9e8 mas (about 250
+    # degrees), where a 0.1 mas position error and a motion of 112 mas/yr bound any
+    # sensible figure by about 112 mas (the star's whole motion).
+    cov = np.diag([0.01, 0.01, 0.04, 0.01, 0.01, np.nan])
+    res = propagate(
+        30.0, 90.0, 10.0, 100.0, 50.0, np.nan, 2016.0, 2017.0, model=model, covariance=cov
+    )
+    sep_mas = separation_uas(res.astrometry.ra_deg, res.astrometry.dec_deg, 0.0, 90.0) / 1e3
+    assert sep_mas == pytest.approx(math.hypot(100.0, 50.0), rel=1e-6)  # moved off the pole
+    assert np.sqrt(res.covariance[0, 0]) > 1e6  # the figure the flag warns of
+    assert res.flags & PropagationFlag.AT_POLE
+    # One microarcsecond from the pole: no flag (AT_POLE_RAD is 0.2 microarcsecond).
+    near = propagate(
+        30.0, 90.0 - 1e-6 / 3600.0, 10.0, 100.0, 50.0, np.nan, 2016.0, 2017.0, model=model
+    )
+    assert not near.flags & PropagationFlag.AT_POLE
 
 
 @pytest.mark.parametrize("with_covariance", [False, True])
