@@ -289,7 +289,9 @@ FLAG_MEANINGS = {
     "ascension, and the directions of the proper-motion components, undefined there. From "
     "a catalogue position at a pole those directions are taken from the right ascension "
     "given, and the uncertainties have no meaning.",
-    "distance_replaced": "Light-time model: distance replaced by a minimum value (SOFA pmsafe).",
+    "distance_replaced": "Light-time model: distance replaced by a minimum value (SOFA "
+    "pmsafe); where the parallax given was positive, the parallax and radial velocity out "
+    "follow from that distance, not from the parallax given.",
     "not_converged": "Light-time model: iteration did not converge.",
     "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "
     "through unchanged.",

@@ -555,3 +555,27 @@ def test_every_epoch_in_the_api_description_says_how_to_write_it(client):
     props = spec["components"]["schemas"]["PropagationRequest"]["properties"]
     assert props["catalogue_epoch"]["description"].startswith("Epoch of the given astrometry.")
     assert seen >= 10
+
+
+def test_distance_replaced_says_what_it_does_to_the_parallax(client):
+    # 1e-6 mas with 0.58 arcsec/yr: pmsafe puts a minimum distance in place of the parallax
+    # (pyerfa pmsafe, status 1, is the reference for the values), and the parallax out is
+    # that distance's, 0.92 mas; the flag's meaning said only "distance replaced".
+    import erfa
+
+    from service.core.constants import MAS_PER_RAD
+
+    star = dict(STAR, parallax_mas=1e-6, pm_ra_cosdec_mas_yr=500.0, pm_dec_mas_yr=300.0)
+    body = post(client, dict(BASE, model="light_time", target_epochs=["J2116.0"], stars=[star]))
+    s = body.json["stars"][0]
+    cosd = math.cos(math.radians(star["dec_deg"]))
+    *_, px, _, status = erfa.ufunc.pmsafe(
+        math.radians(star["ra_deg"]), math.radians(star["dec_deg"]),
+        500.0 / MAS_PER_RAD / cosd, 300.0 / MAS_PER_RAD, 1e-9, 0.0,
+        *erfa.epj2jd(2016.0), *erfa.epj2jd(2116.0),
+    )  # fmt: skip
+    assert status == 1
+    assert s["at_epochs"][0]["parallax_mas"] == pytest.approx(px * 1000.0, rel=1e-9)
+    assert "distance_replaced" in s["flags"]
+    meaning = body.json["flag_meanings"]["distance_replaced"]
+    assert "parallax and radial velocity out follow from that distance" in meaning
