@@ -668,7 +668,7 @@ def test_flags_light_time_model_reports_unknowns():
 @pytest.mark.parametrize("plx", [np.nan, -1.0, 0.0])
 def test_light_time_radial_velocity_without_distance_does_not_move_the_star(plx):
     # pmsafe applied a given radial velocity at the minimum distance it puts in place of a
-    # missing or non-positive parallax: 300 km/s moved the star by 8 arcsec in 10,000 yr,
+    # missing or non-positive parallax: 300 km/s moved the star by 16 arcsec in 10,000 yr,
     # although the flags say the radial velocity is not applied. Reference: pyerfa pmsafe
     # with the radial velocity zero (the star then moves as without one).
     ra, dec, pma, pmd = 10.0, 20.0, 500.0, 300.0
