@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import functools
 import operator
+import re
 
 import flask_smorest
 import marshmallow as ma
@@ -277,7 +278,8 @@ class StrictBoolean(ma.fields.Boolean):
 
 
 EPOCH_DESCRIPTION = (
-    "An epoch: a Julian epoch as a number or 'J2016.0' (TDB), a Besselian epoch 'B1950.0', "
+    "An epoch: a Julian epoch as a number below 10000 or 'J2016.0' (TDB), a Besselian "
+    "epoch 'B1950.0', "
     "a Julian date 'JD2451545.0' or modified Julian date 'MJD51544.5' (TDB unless a scale "
     "follows, e.g. 'JD2460000.5 UTC'), an ISO 8601 UTC time '2026-12-02T03:04:05Z', or 'now'."
 )
@@ -315,12 +317,39 @@ class EpochField(ma.fields.Field):
         super().__init__(**kwargs)
 
     def _deserialize(self, value, attr, data, **kwargs):
+        _refuse_bare_date(value)
         try:
             if type(value) is str and value.strip().lower() != "now":
                 return _parse_text(self.parse, value)  # the same text, the same epoch
             return self.parse(value)
         except core_epochs.EpochError as exc:
             raise ma.ValidationError(str(exc)) from None
+
+
+#: A bare number from here up is refused as a year: it is far more likely a modified or
+#: plain Julian date sent without its prefix (MJD 51544.5 read as the year 51544.5 would
+#: move a star by 50,000 years of its motion without a word).
+BARE_EPOCH_LIMIT = 10_000.0
+
+_PLAIN_NUMBER = re.compile(r"^\s*[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?\s*$", re.ASCII)
+
+
+def _refuse_bare_date(value) -> None:
+    """422 for a bare number (JSON number or plain number text) of BARE_EPOCH_LIMIT or
+    more, saying how to write the year or the date it may be."""
+    if type(value) in (int, float):
+        number = float(value)
+    elif type(value) is str and _PLAIN_NUMBER.match(value):
+        number = float(value)
+    else:
+        return
+    if number >= BARE_EPOCH_LIMIT:
+        shown = value.strip() if isinstance(value, str) else repr(value)
+        raise ma.ValidationError(
+            f"a bare number is read as a Julian epoch (a year), and {shown} is beyond the "
+            f"year 9999: write 'J{shown}' for that year, or 'MJD{shown}' or 'JD{shown}' "
+            "for a date"
+        )
 
 
 @functools.lru_cache(maxsize=8192)

@@ -234,6 +234,27 @@ def test_malformed_json_says_where_and_why(client, body, place, reason, as_stdli
         assert place == f"line {err.value.lineno}, column {err.value.colno}"
 
 
+@pytest.mark.parametrize("epoch", [57388.5, "57388.5", 2451545, 10000.0])
+def test_bare_number_that_looks_like_a_date_is_refused(client, epoch):
+    # MJD 57388.5 (2016-01-01, IAU MJD = JD - 2400000.5) sent without its prefix would be
+    # read as the year 57388.5 and move the star by 55,000 years of its motion.
+    body = dict(BASE, stars=[STAR], target_epochs=[epoch])
+    problem = assert_problem(post(client, body), 422, "target_epochs[0]")
+    (error,) = problem["errors"]
+    assert f"'MJD{str(epoch).strip()}'" in error["message"]
+    assert f"'J{str(epoch).strip()}'" in error["message"]
+
+
+def test_bare_numbers_below_ten_thousand_and_prefixed_ones_still_read(client):
+    for epoch, expected in [(9999.5, 9999.5), (-50000.0, -50000.0), ("J57388.5", 57388.5)]:
+        r = post(client, dict(BASE, stars=[STAR], target_epochs=[epoch]))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        assert r.json["epochs"][0]["julian_epoch_tdb"] == expected  # years, as written
+    # MJD 57388.5 is JD 2457389.0, 2016-01-01T12:00 TDB: J2016.0 (IAU definitions).
+    r = post(client, dict(BASE, stars=[STAR], target_epochs=["MJD57388.5"]))
+    assert r.json["epochs"][0]["julian_epoch_tdb"] == pytest.approx(2016.0, abs=1e-12)
+
+
 def test_body_not_utf8_is_said_so(client):
     r = client.post(URL, data=b'{"stars": "\xff"}', content_type="application/json")
     problem = assert_problem(r, 400)
