@@ -541,7 +541,7 @@ class Client:
                     expect=("text/csv",),
                 )
             except SkydriftError as exc:
-                exc.errors = [_relocate(e, chunk_lines) for e in exc.errors]
+                exc.errors = relocate_lines(exc.errors, buf.getvalue(), chunk_lines)
                 raise
             out_header, out_rows, _ = _read_csv(resp.content.decode("utf-8-sig"))
             if "index" in out_header and start:
@@ -1149,15 +1149,24 @@ def _shift_index(error: FieldError, table: str, offset: int) -> FieldError:
     return FieldError(field, error.message)
 
 
-def _relocate(error: FieldError, chunk_lines: list[int]) -> FieldError:
-    """'line 3: dec_deg' in a batch -> the same cell's line in the caller's text."""
-    m = _LINE.match(error.field)
-    if not m:
-        return error
-    k = int(m.group(1)) - 1  # the batch is written one row per line, header first
-    if 0 <= k < len(chunk_lines):
-        return FieldError(f"line {chunk_lines[k]}{m.group(2)}", error.message)
-    return error
+def relocate_lines(errors: list[FieldError], sent: str, lines: list[int]) -> list[FieldError]:
+    """'line 3: dec_deg' in CSV text sent in place of the caller's -> the same row's line in
+    the caller's text.
+
+    ``sent`` holds rows of the caller's text (some left out, blank lines dropped, cells
+    rewritten); ``lines`` is the caller's line of its header and of each row, in order. The
+    service names a row by the line it starts on, and a quoted cell may span lines, so the
+    rows of ``sent`` are found by reading it (only when there is an error to place).
+    """
+    if not any(_LINE.match(e.field) for e in errors):
+        return errors
+    where = dict(zip(_read_csv(sent)[2], lines, strict=False))
+    out = []
+    for e in errors:
+        m = _LINE.match(e.field)
+        line = where.get(int(m.group(1))) if m else None
+        out.append(e if line is None else FieldError(f"line {line}{m.group(2)}", e.message))
+    return out
 
 
 def _join_csv(pieces: list[tuple[list[str], list[list[str]]]]) -> str:

@@ -19,7 +19,7 @@ import pathlib
 import re
 import sys
 
-from .client import Client, SkydriftError, _read_csv, _relocate
+from .client import Client, SkydriftError, _read_csv, relocate_lines
 from .numbers import decimal, whole
 
 DEFAULT_CATALOGUE_EPOCH = "J2016.0"
@@ -262,28 +262,46 @@ def _unknown_columns(exc: SkydriftError) -> list[str]:
     return names
 
 
-def _drop_columns(csv_text: str, names: list[str]) -> str:
-    header, rows, _lines = _read_csv(csv_text)
+def _drop_columns(csv_text: str, names: list[str]) -> tuple[str, list[int]]:
+    """The CSV text without the named columns, and the line of its header and each row in
+    ``csv_text`` (blank lines are left out, so lines of the new text differ)."""
+    header, rows, lines = _read_csv(csv_text)
     keep = [k for k, h in enumerate(header) if h not in names]
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow([header[k] for k in keep])
     writer.writerows([r[k] for k in keep] for r in rows)
-    return buf.getvalue()
+    return buf.getvalue(), lines
 
 
-def _tolerant(args, csv_text: str, call):
-    """Run ``call(csv_text)``; with --drop-unknown-columns, drop the columns the endpoint
-    does not take (saying which on standard error) and run it again."""
+def _in_file(call, text: str, lines: list[int] | None):
+    """``call(text)``, with the lines of errors in ``text`` made the lines of the file that
+    ``text`` was made from (``lines``: the file's line of its header and each row of
+    ``text``; None: ``text`` is the file's own)."""
     try:
-        return call(csv_text)
+        return call(text)
+    except SkydriftError as exc:
+        if lines is not None:
+            exc.errors = relocate_lines(exc.errors, text, lines)
+        raise
+
+
+def _tolerant(args, csv_text: str, call, lines: list[int] | None = None):
+    """Run ``call(csv_text)``; with --drop-unknown-columns, drop the columns the endpoint
+    does not take (saying which on standard error) and run it again. Errors name the lines
+    of the catalogue file (``lines``, as for :func:`_in_file`)."""
+    try:
+        return _in_file(call, csv_text, lines)
     except SkydriftError as exc:
         unknown = _unknown_columns(exc) if args.drop_unknown_columns else []
         if not unknown:
             raise
     # Said even with --quiet (which only stops the progress bar): data left out of a run.
     print(f"skydrift: columns not used by this command: {', '.join(unknown)}", file=sys.stderr)
-    return call(_drop_columns(csv_text, unknown))
+    kept, kept_lines = _drop_columns(csv_text, unknown)
+    if lines is not None:
+        kept_lines = [lines[k] for k in range(len(kept_lines))]
+    return _in_file(call, kept, kept_lines)
 
 
 @_run
@@ -319,23 +337,24 @@ def cmd_observed(args) -> int:
     return 0
 
 
-def _select(cat: Catalogue, ids: list[str] | None) -> str:
-    """The catalogue's CSV restricted to the given ids (all rows if none given)."""
+def _select(cat: Catalogue, ids: list[str] | None) -> tuple[str, list[int] | None]:
+    """The catalogue's CSV restricted to the given ids (all rows if none given), and the
+    catalogue's line of its header and each row kept (None: the catalogue's own text)."""
     if not ids:
-        return cat.csv_text
-    header, rows, _lines = _read_csv(cat.csv_text)
+        return cat.csv_text, None
+    header, rows, lines = _read_csv(cat.csv_text)
     if "id" not in header:
         raise ValueError("--star needs an 'id' column in the catalogue")
     k = header.index("id")
-    by_id = {r[k]: r for r in rows}
+    by_id = {r[k]: n for n, r in enumerate(rows)}
     missing = [i for i in ids if i not in by_id]
     if missing:
         raise ValueError(f"not in the catalogue: {', '.join(missing)}")
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(header)
-    writer.writerows(by_id[i] for i in ids)
-    return buf.getvalue()
+    writer.writerows(rows[by_id[i]] for i in ids)
+    return buf.getvalue(), [lines[0]] + [lines[1 + by_id[i]] for i in ids]
 
 
 #: Image formats by the output file's suffix (a name without one is written as SVG).
@@ -359,19 +378,14 @@ def _image_format(args) -> str:
 def _post_image(client: Client, path: str, csv_text: str, params: dict) -> bytes:
     from .client import _query
 
-    _h, _r, lines = _read_csv(csv_text)
-    try:
-        resp = client.request(
-            "POST",
-            path,
-            params=_query(params),
-            data=csv_text.encode(),
-            headers={"Content-Type": "text/csv"},
-            expect=("image/",),
-        )
-    except SkydriftError as exc:
-        exc.errors = [_relocate(e, lines) for e in exc.errors]
-        raise
+    resp = client.request(
+        "POST",
+        path,
+        params=_query(params),
+        data=csv_text.encode(),
+        headers={"Content-Type": "text/csv"},
+        expect=("image/",),
+    )
     return resp.content
 
 
@@ -388,10 +402,12 @@ def cmd_chart_track(args) -> int:
         "title": args.title,
     }
     with make_client(args) as client:
+        text, lines = _select(cat, args.star)
         data = _tolerant(
             args,
-            _select(cat, args.star),
+            text,
             lambda body: _post_image(client, "/v1/charts/track", body, params),
+            lines,
         )
     _write_bytes(data, args.output)
     return 0

@@ -318,3 +318,35 @@ def test_json_catalogue_of_the_wrong_shape_is_named(tmp_path, content, message):
 def test_negative_retries_refused():
     out = skydrift("propagate", CATALOGUE, "--epoch", "J2100", "--retries", "-1", check=False)
     assert out.returncode == 2 and "must be 0 or more" in out.stderr.decode()
+
+
+def _catalogue_with_bad_row(tmp_path):
+    """The demo catalogue with a blank line after line 2 and dec_deg 95 for KRC 0024,
+    which is then on line 26 of the file (a test below checks it by reading the file)."""
+    lines = (DEMO / "catalogue.csv").read_text().splitlines()
+    cells = lines[24].split(",")
+    cells[2] = "95"
+    lines[24] = ",".join(cells)
+    lines.insert(2, "")
+    bad = tmp_path / "bad.csv"
+    bad.write_text("\n".join(lines) + "\n")
+    assert bad.read_text().splitlines()[25].startswith("KRC 0024,")
+    return bad
+
+
+@pytest.mark.parametrize(
+    ("command", "options"),
+    [
+        # the rows rewritten without the columns the command does not take (and the blank
+        # line): the error said line 25
+        (("constellations",), ("--drop-unknown-columns",)),
+        # the rows of the stars asked for, rewritten: the error said line 2
+        (("chart", "track"), ("--star", "KRC 0024", "--start", "J2016", "--stop", "J2100")),
+    ],
+    ids=["drop-unknown-columns", "star"],
+)
+def test_bad_row_named_by_its_line_in_the_file_after_a_rewrite(tmp_path, command, options):
+    bad = _catalogue_with_bad_row(tmp_path)
+    out = skydrift(*command, str(bad), *options, check=False)
+    assert out.returncode == 1
+    assert "line 26: dec_deg: must be between -90 and 90" in out.stderr.decode()

@@ -517,3 +517,22 @@ def test_an_answer_of_another_kind_is_not_taken_for_one():
             with pytest.raises(SkydriftError, match="text/html") as err:
                 call(Client(srv.url, retries=0))
         assert err.value.title == "Unexpected answer"
+
+
+def test_csv_error_line_after_a_cell_over_two_lines():
+    # A quoted id holding a line break makes its row two lines long: the bad row below
+    # starts on line 9 of the text (header 1, rows 2-4, the two-line row 5-6, rows 7-8,
+    # the bad row 9; checked by reading the text), which is also what the service says
+    # when sent the text as it is. The client said line 10 (it took its rewritten batch
+    # as one row per line).
+    from service.local import local_client
+
+    rows = [r.split(",") for r in (DEMO / "catalogue.csv").read_text().splitlines()[:11]]
+    rows[4][0] = '"KRC\n0004"'
+    rows[7][2] = "95"  # dec_deg
+    text = "\n".join(",".join(r) for r in rows) + "\n"
+    assert text.splitlines()[8].startswith("KRC 0007,")
+    for batch_size in (100, 3):
+        with local_client(batch_size=batch_size) as sky, pytest.raises(SkydriftError) as info:
+            sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
+        assert info.value.errors == [FieldError("line 9: dec_deg", "must be between -90 and 90")]
