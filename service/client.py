@@ -395,9 +395,16 @@ class Client:
         for attempt in range(self.retries + 1):
             try:
                 resp = self.session.request(method, url, **kwargs)
-            except requests.ConnectionError as exc:
+            except (requests.ConnectionError, requests.exceptions.ChunkedEncodingError) as exc:
+                # ChunkedEncodingError: the connection was cut in the middle of the answer
+                # (requests reads the body after the headers), a failed connection too.
                 if attempt == self.retries:
-                    raise SkydriftError(None, "Service unreachable", f"{url}: {exc}") from exc
+                    title = (
+                        "Service unreachable"
+                        if isinstance(exc, requests.ConnectionError)
+                        else "Answer cut off"
+                    )
+                    raise SkydriftError(None, title, f"{url}: {exc}") from exc
                 self._sleep(self._wait_s(attempt, None))
                 continue
             except requests.Timeout as exc:

@@ -536,3 +536,35 @@ def test_csv_error_line_after_a_cell_over_two_lines():
         with local_client(batch_size=batch_size) as sky, pytest.raises(SkydriftError) as info:
             sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=EPOCHS)
         assert info.value.errors == [FieldError("line 9: dec_deg", "must be between -90 and 90")]
+
+
+def test_an_answer_cut_off_is_a_failed_connection():
+    # The body ends after 6 of the 1000 bytes its Content-Length announces (a worker killed
+    # while sending): requests raises ChunkedEncodingError, which the client let through
+    # instead of retrying it as a failed connection and raising SkydriftError.
+    import socket
+
+    listener = socket.create_server(("127.0.0.1", 0))
+    head = b"HTTP/1.1 200 OK\r\nContent-Type: application/json\r\n"
+    cut = head + b'Content-Length: 1000\r\n\r\n{"ok":'
+    whole = head + b'Content-Length: 11\r\n\r\n{"ok":true}'
+    answers = [cut, whole, cut]
+
+    def serve():
+        while answers:
+            conn, _ = listener.accept()
+            conn.recv(65536)
+            conn.sendall(answers.pop(0))
+            conn.close()
+
+    threading.Thread(target=serve, daemon=True).start()
+    url = f"http://127.0.0.1:{listener.getsockname()[1]}"
+    waits = []
+    try:
+        assert Client(url, sleep=waits.append).health() == {"ok": True}
+        assert len(waits) == 1
+        with pytest.raises(SkydriftError) as info:
+            Client(url, retries=0).health()
+        assert info.value.status is None and info.value.title == "Answer cut off"
+    finally:
+        listener.close()
