@@ -59,6 +59,22 @@ def _at_least_zero(text: str) -> int:
     return value
 
 
+def _at_least_one(text: str) -> int:
+    """argparse type: a whole number, 1 or more."""
+    value = whole(text)
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"{text!r}: must be 1 or more")
+    return value
+
+
+def _above_zero(text: str) -> float:
+    """argparse type: a decimal number above 0."""
+    value = decimal(text)
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: must be above 0")
+    return value
+
+
 def read_catalogue(path: str) -> Catalogue:
     """Read a CSV or JSON catalogue ('-' = CSV on standard input)."""
     if path == "-":
@@ -442,7 +458,7 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
     )
     g.add_argument(
         "--timeout",
-        type=decimal,
+        type=_above_zero,
         default=300.0,
         metavar="SECONDS",
         help="longest wait for one answer, seconds (default 300)",
@@ -456,7 +472,7 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
     if batch:
         g.add_argument(
             "--batch-size",
-            type=whole,
+            type=_at_least_one,
             default=DEFAULT_BATCH_SIZE,
             metavar="N",
             help=f"stars per request (default {DEFAULT_BATCH_SIZE})",

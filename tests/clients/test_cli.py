@@ -350,3 +350,17 @@ def test_bad_row_named_by_its_line_in_the_file_after_a_rewrite(tmp_path, command
     out = skydrift(*command, str(bad), *options, check=False)
     assert out.returncode == 1
     assert "line 26: dec_deg: must be between -90 and 90" in out.stderr.decode()
+
+
+@pytest.mark.parametrize(
+    ("option", "value", "message"),
+    [("--batch-size", "0", "must be 1 or more"), ("--timeout", "0", "must be above 0"),
+     ("--timeout", "-1", "must be above 0")],
+)  # fmt: skip
+def test_bad_connection_option_values_are_a_bad_command_line(option, value, message):
+    # --timeout 0 was taken and ignored in this process, and refused only with --url (exit
+    # 1, a message of requests naming no option); --batch-size 0 ended with exit 1 naming
+    # "batch_size". The help says: exit status 2, bad command line.
+    out = skydrift("propagate", CATALOGUE, "--epoch", "J2100", option, value, check=False)
+    assert out.returncode == 2
+    assert option in out.stderr.decode() and message in out.stderr.decode()
