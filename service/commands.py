@@ -467,7 +467,8 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
         "--retries",
         type=_at_least_zero,
         default=5,
-        help="repeats after a busy (429/503) answer or failed connection (default 5)",
+        help="repeats after a busy or failed answer (429/502/503/504) or failed connection "
+        "(default 5)",
     )
     if batch:
         g.add_argument(
@@ -610,7 +611,8 @@ def add_commands(sub) -> None:
         "--near-boundary-arcsec",
         type=decimal,
         metavar="ARCSEC",
-        help="flag stars closer than this to a boundary (with --margins; default 1)",
+        help="flag stars closer than this to a boundary (with --margins; default: the "
+        "service's setting SKYDRIFT_NEAR_BOUNDARY_ARCSEC, 1 unless its operator chose another)",
     )
     k.add_argument(
         "--reduction",
