@@ -288,7 +288,7 @@ def test_crossings_step_too_small(client):
 
 
 def test_crossings_too_many_steps(client):
-    body = dict(WINDOW, stars=[MOVING], start=-90_000.0, end=90_000.0, max_step_yr=0.01)
+    body = dict(WINDOW, stars=[MOVING], start=-90_000.0, end="J90000.0", max_step_yr=0.01)
     assert_problem(client.post(f"{BASE}/crossings", json=body), 422, "max_step_yr")
 
 
