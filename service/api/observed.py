@@ -442,8 +442,17 @@ def observed(args):
         own = sites.get(site.name, {}).get("horizon_limit_deg") if by_name else None
         horizon = settings.horizon_limit_deg if own is None else float(own)
     avoidance = args.get("sun_avoidance_deg")
-    if avoidance is None:
+    if avoidance is not None:
+        limits_note = "Advisory. Sun avoidance angle as given in the request."
+    else:
         avoidance = settings.sun_avoidance_deg
+        limits_note = "Advisory. Sun avoidance angle from the service's setting " + (
+            "SKYDRIFT_SUN_AVOIDANCE_DEG."
+            if avoidance != core.DEFAULT_SUN_AVOIDANCE_DEG
+            else f"SKYDRIFT_SUN_AVOIDANCE_DEG, at its built-in default of "
+            f"{core.DEFAULT_SUN_AVOIDANCE_DEG:g} deg: a placeholder the operator must set to "
+            "the facility's own value."
+        )
 
     epoch0 = float(args["catalogue_epoch"])
     c = table.columns
@@ -572,8 +581,7 @@ def observed(args):
         "limits": {
             "horizon_limit_deg": float(horizon),
             "sun_avoidance_deg": float(avoidance),
-            "note": "Advisory. The default Sun avoidance angle (30 deg) is a placeholder the "
-            "operator must set.",
+            "note": limits_note,
         },
         "catalogue_epoch": epochs_out([epoch0])[0],
         "input_frame": frame.describe(),

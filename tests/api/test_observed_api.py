@@ -384,6 +384,24 @@ def test_site_list_horizon_limit_only_for_the_listed_site(client, observed_examp
     assert r.json["limits"]["horizon_limit_deg"] == settings.horizon_limit_deg
 
 
+def test_limits_note_says_where_the_sun_avoidance_angle_came_from(client, observed_example):
+    # The built-in 30 deg is a placeholder (DESIGN: the facility's rules decide); an answer
+    # must not call an angle the operator or the request chose a placeholder.
+    from service.api.app import create_app
+    from service.config import Settings
+
+    body = {k: v for k, v in observed_example.items() if k != "sun_avoidance_deg"}
+    note = client.post(OBS, json=body).json["limits"]["note"]
+    assert "built-in default of 30 deg: a placeholder" in note
+    note = client.post(OBS, json=dict(body, sun_avoidance_deg=45.0)).json["limits"]["note"]
+    assert "as given in the request" in note and "placeholder" not in note
+    app = create_app({"SKYDRIFT_SETTINGS": Settings(sun_avoidance_deg=40.0), "TESTING": True})
+    answer = app.test_client().post(OBS, json=body).json
+    assert answer["limits"]["sun_avoidance_deg"] == 40.0
+    assert "placeholder" not in answer["limits"]["note"]
+    assert "SKYDRIFT_SUN_AVOIDANCE_DEG" in answer["limits"]["note"]
+
+
 _GOOD_SITE = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 100.0}
 
 
