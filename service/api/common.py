@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import functools
 import operator
-import re
 
 import flask_smorest
 import marshmallow as ma
@@ -331,15 +330,13 @@ class EpochField(ma.fields.Field):
 #: move a star by 50,000 years of its motion without a word).
 BARE_EPOCH_LIMIT = 10_000.0
 
-_PLAIN_NUMBER = re.compile(r"^\s*[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?\s*$", re.ASCII)
-
 
 def _refuse_bare_date(value) -> None:
     """422 for a bare number (JSON number or plain number text) of BARE_EPOCH_LIMIT or
     more, saying how to write the year or the date it may be."""
     if type(value) in (int, float):
         number = float(value)
-    elif type(value) is str and _PLAIN_NUMBER.match(value):
+    elif type(value) is str and core_epochs.PLAIN_NUMBER.match(value.strip()):
         number = float(value)
     else:
         return

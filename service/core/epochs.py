@@ -75,7 +75,7 @@ _PREFIXED = re.compile(
 )
 #: A plain decimal number, ASCII digits only (Python's float() would also take "2016_0",
 #: "nan", "infinity" and other scripts' digits).
-_PLAIN_NUMBER = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$", re.ASCII)
+PLAIN_NUMBER = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$", re.ASCII)
 _ISO = re.compile(
     r"^(?P<y>[+-]?\d{4,6})-(?P<mo>\d{2})-(?P<d>\d{2})"
     r"(?:[T ](?P<h>\d{2}):(?P<mi>\d{2})(?::(?P<s>\d{2}(?:\.\d+)?))?)?"
@@ -257,7 +257,7 @@ def _read(value, now: _dt.datetime | None) -> _Reading:
             moment.minute,
             moment.second + moment.microsecond * 1e-6,
         )
-    if _PLAIN_NUMBER.match(text):
+    if PLAIN_NUMBER.match(text):
         return _Reading(float(text), 0)
     m = _PREFIXED.match(text)
     if m:
