@@ -126,7 +126,12 @@ _STAR_FIELDS = {
     ),
     "pm_dec_error_mas_yr": _num("Standard error of pm_dec, mas/yr.", lo=0.0, hi=MAX_ABS_MAS),
     "radial_velocity_error_km_s": _num(
-        "Standard error of the radial velocity, km/s.", lo=0.0, hi=MAX_RV_ERROR_KM_S
+        "Standard error of the radial velocity, km/s. Left out while the radial velocity, a "
+        "positive parallax and the other standard errors are given: the radial velocity is "
+        "taken as exact in the uncertainties, and the star is flagged "
+        "radial_velocity_error_missing.",
+        lo=0.0,
+        hi=MAX_RV_ERROR_KM_S,
     ),
 }
 for _i, _j in CORRELATION_PAIRS:
@@ -300,18 +305,24 @@ FLAG_MEANINGS = {
     "motion and (where the parallax is given) parallax given: no uncertainties computed.",
     "correlations_assumed_zero": "Standard errors given without any correlation among the "
     "five astrometric parameters: those correlations taken as zero.",
+    "radial_velocity_error_missing": "Radial velocity given (with a positive parallax) but "
+    "not its standard error: the radial velocity is taken as exact in the uncertainties, so "
+    "they leave out the spread of the perspective acceleration it drives (over long spans "
+    "often the largest part of the position error), and the radial velocity out has no "
+    "error.",
 }
 
 
 def _covariance(table, n):
     """Build the (N, 6, 6) covariance from standard errors and correlations.
 
-    Returns (cov or None, has_cov mask, incomplete mask, assumed_zero mask, bad-PSD idx).
+    Returns (cov or None, has_cov mask, incomplete mask, assumed_zero mask, bad-PSD idx,
+    rv_error_missing mask).
     """
     cols = table.columns
     if not table.given.intersection(ERROR_FIELDS):
         none = np.zeros(n, dtype=bool)
-        return None, none, none, none, np.array([], dtype=int)
+        return None, none, none, none, np.array([], dtype=int), none
     errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
     given = np.isfinite(errs[:, :5])
     some = np.any(given, axis=-1)
@@ -322,7 +333,8 @@ def _covariance(table, n):
     complete = some & np.all(needed, axis=-1)
     incomplete = some & ~complete
     if not complete.any():
-        return None, complete, incomplete, np.zeros(n, bool), np.array([], int)
+        none = np.zeros(n, dtype=bool)
+        return None, complete, incomplete, none, np.array([], int), none
     corr = np.zeros((n, 6, 6))
     corr[:, range(6), range(6)] = 1.0
     given_any = np.zeros(n, dtype=bool)  # a correlation among the five astrometric ones
@@ -353,7 +365,12 @@ def _covariance(table, n):
         low = np.linalg.eigvalsh(sub)[:, 0]
         bad = check[low < -1e-9]
     assumed_zero = complete & ~given_any
-    return cov, complete, incomplete, assumed_zero, bad
+    # The radial velocity acts on the motion only with a positive parallax (zeta = v_r * plx
+    # / A); then an unknown error of it is not a zero error.
+    with np.errstate(invalid="ignore"):
+        rv_acts = np.isfinite(cols["radial_velocity_km_s"]) & (cols["parallax_mas"] > 0.0)
+    rv_error_missing = complete & rv_acts & ~np.isfinite(errs[:, 5])
+    return cov, complete, incomplete, assumed_zero, bad, rv_error_missing
 
 
 def _uncertainty_dict(cov_block):
@@ -427,7 +444,7 @@ def propagate(args):
                 }
             ],
         )
-    cov, has_cov, incomplete, assumed_zero, bad_psd = _covariance(table, n)
+    cov, has_cov, incomplete, assumed_zero, bad_psd, rv_error_missing = _covariance(table, n)
     if bad_psd.size:
         abort(
             422,
@@ -464,6 +481,9 @@ def propagate(args):
         for i in np.flatnonzero(assumed_zero):
             names[i] = (*names[i], "correlations_assumed_zero")
             present.add("correlations_assumed_zero")
+        for i in np.flatnonzero(rv_error_missing):
+            names[i] = (*names[i], "radial_velocity_error_missing")
+            present.add("radial_velocity_error_missing")
     warnings = flag_warnings(masks, table, PROPAGATION_WARNINGS)
     layout = args["layout"] or table.form
     body = {

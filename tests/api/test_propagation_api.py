@@ -600,3 +600,78 @@ def test_distance_replaced_says_what_it_does_to_the_parallax(client):
     assert "distance_replaced" in s["flags"]
     meaning = body.json["flag_meanings"]["distance_replaced"]
     assert "parallax and radial velocity out follow from that distance" in meaning
+
+
+def test_radial_velocity_without_its_error_is_flagged(client):
+    """A radial velocity given without its standard error is taken as exact in the
+    uncertainties: flagged radial_velocity_error_missing, not silently a zero error.
+
+    Outside reference for the part left out: astropy's SkyCoord.apply_space_motion (which
+    calls erfa pmsafe) moved with the radial velocity 0.01 km/s either side; the position
+    error it implies for a 1 km/s error must be what giving that error adds (in quadrature,
+    no correlations given) to the answered ra*cos(dec) and dec errors, to 1e-3 relative
+    (the light-time model of pmsafe and the standard model differ at the v/c level).
+    """
+    import astropy.units as u
+    from astropy.coordinates import SkyCoord
+    from astropy.time import Time
+
+    star = dict(
+        ra_deg=40.0,
+        dec_deg=-25.0,
+        parallax_mas=100.0,
+        pm_ra_cosdec_mas_yr=1200.0,
+        pm_dec_mas_yr=-800.0,
+        radial_velocity_km_s=-50.0,
+        ra_error_mas=0.05,
+        dec_error_mas=0.05,
+        parallax_error_mas=0.05,
+        pm_ra_cosdec_error_mas_yr=0.05,
+        pm_dec_error_mas_yr=0.05,
+    )
+    body = {"catalogue_epoch": "J2016.0", "target_epochs": ["J4016.0"]}
+    without = post(client, dict(body, stars=[star]))
+    assert without.status_code == 200, without.json
+    assert without.json["stars"][0]["flags"] == [
+        "correlations_assumed_zero",
+        "radial_velocity_error_missing",
+    ]
+    assert "taken as exact" in without.json["flag_meanings"]["radial_velocity_error_missing"]
+    given = post(client, dict(body, stars=[dict(star, radial_velocity_error_km_s=1.0)]))
+    assert given.status_code == 200, given.json
+    assert given.json["stars"][0]["flags"] == ["correlations_assumed_zero"]
+    assert "radial_velocity_error_missing" not in given.json["flag_meanings"]
+    # No radial velocity, or no parallax for it to act through: nothing left out.
+    for other in (
+        {k: v for k, v in star.items() if k != "radial_velocity_km_s"},
+        {k: v for k, v in star.items() if k not in ("parallax_mas", "parallax_error_mas")},
+    ):
+        r = post(client, dict(body, stars=[other]))
+        assert r.status_code == 200, r.json
+        assert "radial_velocity_error_missing" not in r.json["stars"][0]["flags"]
+
+    def place(rv):
+        c = SkyCoord(
+            ra=star["ra_deg"] * u.deg,
+            dec=star["dec_deg"] * u.deg,
+            distance=(1000.0 / star["parallax_mas"]) * u.pc,
+            pm_ra_cosdec=star["pm_ra_cosdec_mas_yr"] * u.mas / u.yr,
+            pm_dec=star["pm_dec_mas_yr"] * u.mas / u.yr,
+            radial_velocity=rv * u.km / u.s,
+            obstime=Time(2016.0, format="jyear", scale="tdb"),
+        ).apply_space_motion(new_obstime=Time(4016.0, format="jyear", scale="tdb"))
+        return c.ra.deg, c.dec.deg
+
+    step = 0.01  # km/s
+    (ra_hi, dec_hi), (ra_lo, dec_lo) = place(-50.0 + step), place(-50.0 - step)
+    dec_out = math.radians(given.json["stars"][0]["at_epochs"][0]["dec_deg"])
+    from_rv = {
+        "ra_error_mas": abs(ra_hi - ra_lo) * math.cos(dec_out) * 3.6e6 / (2 * step),
+        "dec_error_mas": abs(dec_hi - dec_lo) * 3.6e6 / (2 * step),
+    }
+    u_with = given.json["stars"][0]["at_epochs"][0]["uncertainties"]
+    u_without = without.json["stars"][0]["at_epochs"][0]["uncertainties"]
+    for name, reference in from_rv.items():
+        added = math.sqrt(u_with[name] ** 2 - u_without[name] ** 2)
+        assert added == pytest.approx(reference, rel=1e-3), name
+        assert added > 2 * u_without[name]  # here the part left out is most of the error
