@@ -446,19 +446,6 @@ def _solar_motion(args):
     return (sm["u_km_s"], sm["v_km_s"], sm["w_km_s"])
 
 
-def _stars_drawn(c, method, low_snr_threshold):
-    """Number of stars the core's Monte Carlo path will draw (space_velocity Note 6):
-    every star with a distance, or for auto only those flagged parallax_low_snr (a positive
-    parallax below the signal-to-noise threshold, and no distance given)."""
-    given = np.isfinite(c["distance_pc"])
-    plx = c["parallax_mas"]
-    if method == "monte_carlo":
-        return int(np.count_nonzero(given | (plx > 0.0)))
-    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # edge values
-        low = (plx > 0.0) & (plx / c["parallax_error_mas"] < low_snr_threshold)
-    return int(np.count_nonzero(low & ~given))
-
-
 def _check_correlations(table, n):
     """422 naming the correlations that cannot hold together (not positive semi-definite).
 
@@ -557,7 +544,17 @@ def velocity(args):
     if args["low_snr_threshold"] is None:  # the operator's default
         low_snr = current_app.config["SKYDRIFT_SETTINGS"].low_parallax_snr
         args = {**args, "low_snr_threshold": low_snr}
-    drawn = _stars_drawn(c, method, args["low_snr_threshold"]) if method != "linear" else 0
+    drawn = int(
+        np.count_nonzero(
+            core.monte_carlo_stars(
+                c["parallax_mas"],
+                c["parallax_error_mas"],
+                c["distance_pc"],
+                method,
+                args["low_snr_threshold"],
+            )
+        )
+    )
     if drawn * draws > MAX_MONTE_CARLO_SAMPLES:
         abort(
             413,

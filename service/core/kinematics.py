@@ -666,13 +666,10 @@ def space_velocity(
         _velocity_block([a[sl] if a.ndim else a for a in flat], low_snr_threshold, out, sl)
 
     if uncertainty_method != "linear" and n:
-        if uncertainty_method == "monte_carlo":
-            chosen = ~np.isnan(out["distance_pc"])
-        else:
-            chosen = (out["flags"] & KinematicsFlag.PARALLAX_LOW_SNR).astype(bool) & ~np.isnan(
-                out["distance_pc"]
-            )
-        index = np.flatnonzero(chosen)
+        plx, dist, sig_p = (np.broadcast_to(flat[k], (n,)) for k in (4, 6, 7))
+        index = np.flatnonzero(
+            monte_carlo_stars(plx, sig_p, dist, uncertainty_method, low_snr_threshold)
+        )
         if index.size:
             rng = np.random.default_rng(seed)
             _monte_carlo(flat, index, out, int(monte_carlo_draws), rng)
@@ -716,6 +713,30 @@ def space_velocity(
         closest_approach_speed_km_s=shaped("closest_approach_speed_km_s"),
         flags=shaped("flags"),
     )
+
+
+def monte_carlo_stars(
+    parallax_mas, parallax_error_mas, distance_pc, uncertainty_method, low_snr_threshold
+):
+    """Which stars :func:`space_velocity` draws for (Note 6), as a boolean array.
+
+    ``monte_carlo``: every star with a distance (one given, or a positive parallax). ``auto``:
+    the stars flagged ``PARALLAX_LOW_SNR`` (a positive parallax below ``low_snr_threshold``
+    in signal-to-noise, and no distance given). ``linear``: none. The one rule for the core
+    and for callers that must size a request before running it.
+    """
+    plx = np.asarray(parallax_mas, dtype=float)
+    given = np.isfinite(np.asarray(distance_pc, dtype=float))
+    if uncertainty_method == "linear":
+        return np.zeros(np.broadcast(plx, given).shape, dtype=bool)
+    positive = plx > 0.0
+    if uncertainty_method == "monte_carlo":
+        return given | positive
+    if uncertainty_method != "auto":
+        raise ValueError(f"unknown uncertainty_method {uncertainty_method!r}")
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # edge values
+        low = positive & (plx / np.asarray(parallax_error_mas, dtype=float) < low_snr_threshold)
+    return low & ~given
 
 
 @overflow_to_infinity  # edge inputs overflow to inf / NaN, flagged (core.floating)

@@ -20,6 +20,7 @@ from service.core.kinematics import (
     KinematicsFlag,
     astrometric_covariance,
     galactic_velocity,
+    monte_carlo_stars,
     observables_from_velocity,
     sin_cos_deg,
     space_velocity,
@@ -578,6 +579,34 @@ def test_monte_carlo_is_reproducible_and_auto_selects_low_snr():
     assert mc.tolist() == [False, True]  # SNR 20 linear, SNR 2 Monte Carlo
     lin = space_velocity(*args, **kw)
     assert np.array_equal(a.uvw_covariance_packed_km2_s2[0], lin.uvw_covariance_packed_km2_s2[0])
+
+
+def test_monte_carlo_stars_is_the_selection_space_velocity_draws_for():
+    """The one selection rule (used by the API to size a request before running it) is the
+    set of stars space_velocity draws for, for each method: a high signal-to-noise
+    parallax, a low one, a negative and a missing one, a distance given beside a noisy
+    parallax, and a noisy parallax exactly at the threshold (5, not below it)."""
+    plx = np.array([10.0, 0.5, -1.0, np.nan, 0.3, 0.5])
+    sig_p = np.array([0.1, 0.4, 0.5, 0.5, 0.4, 0.1])
+    dist = np.array([np.nan, np.nan, np.nan, np.nan, 500.0, np.nan])
+    kw = dict(parallax_error_mas=sig_p, pm_ra_cosdec_error_mas_yr=0.1, pm_dec_error_mas_yr=0.1,
+              radial_velocity_error_km_s=1.0, distance_pc=dist, distance_error_pc=20.0)  # fmt: skip
+    expected = {
+        "linear": [False] * 6,
+        "monte_carlo": [True, True, False, False, True, True],
+        "auto": [False, True, False, False, False, False],
+    }
+    for method, want in expected.items():
+        chosen = monte_carlo_stars(plx, sig_p, dist, method, 5.0)
+        assert chosen.tolist() == want, method
+        r = space_velocity(
+            10.0, 20.0, plx, 30.0, 40.0, 5.0, **kw, uncertainty_method=method,
+            monte_carlo_draws=500, seed=1, low_snr_threshold=5.0,
+        )  # fmt: skip
+        drawn = (r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES) > 0
+        assert drawn.tolist() == want, method
+    with pytest.raises(ValueError, match="uncertainty_method"):
+        monte_carlo_stars(plx, sig_p, dist, "bootstrap", 5.0)
 
 
 def test_monte_carlo_keeps_transverse_error_when_radial_velocity_error_is_missing():
