@@ -218,6 +218,7 @@ def cmd_velocities(args) -> int:
             uncertainty_method=args.uncertainties,
             monte_carlo_draws=args.draws,
             seed=args.seed,
+            low_snr_threshold=args.low_snr_threshold,
             progress=update,
         ),
     )
@@ -580,6 +581,14 @@ def add_commands(sub) -> None:
     )
     v.add_argument("--draws", type=whole, help="Monte Carlo draws per star")
     v.add_argument("--seed", type=whole, help="seed of the Monte Carlo draws")
+    v.add_argument(
+        "--low-snr-threshold",
+        type=_above_zero,
+        metavar="SNR",
+        help="parallax signal-to-noise below which a star is flagged parallax_low_snr (and "
+        "drawn for with --uncertainties auto); default: the service's setting "
+        "SKYDRIFT_LOW_PARALLAX_SNR, 5 unless its operator chose another",
+    )
     v.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(v)
     v.set_defaults(func=cmd_velocities)

@@ -364,3 +364,25 @@ def test_bad_connection_option_values_are_a_bad_command_line(option, value, mess
     out = skydrift("propagate", CATALOGUE, "--epoch", "J2100", option, value, check=False)
     assert out.returncode == 2
     assert option in out.stderr.decode() and message in out.stderr.decode()
+
+
+def test_velocities_low_snr_threshold_option():
+    """--low-snr-threshold is the request's low_snr_threshold: with a threshold above every
+    demo star's parallax signal-to-noise (from the catalogue's own columns), every star with
+    a positive parallax is flagged parallax_low_snr; with the default, only those below 5."""
+    with open(CATALOGUE, newline="") as fh:
+        cat = list(csv.DictReader(fh))
+    snr = [
+        float(r["parallax_mas"]) / float(r["parallax_error_mas"])
+        if r.get("parallax_mas") and r.get("parallax_error_mas") and float(r["parallax_mas"]) > 0
+        else None
+        for r in cat
+    ]
+    for extra, limit in (([], 5.0), (["--low-snr-threshold", "1e5"], 1e5)):
+        out = skydrift("velocities", CATALOGUE, *extra)
+        rows = list(csv.DictReader(io.StringIO(out.stdout.decode())))
+        flagged = ["parallax_low_snr" in r["flags"].split(";") for r in rows]
+        assert flagged == [s is not None and s < limit for s in snr], extra
+    assert any(s is not None and s >= 5.0 for s in snr)  # the two runs differ
+    bad = skydrift("velocities", CATALOGUE, "--low-snr-threshold", "0", check=False)
+    assert bad.returncode == 2 and b"--low-snr-threshold" in bad.stderr
