@@ -87,8 +87,10 @@ class Settings:
 
     auth_tokens : tuple of str
         SKYDRIFT_AUTH_TOKENS (comma-separated) and SKYDRIFT_AUTH_TOKENS_FILE (one token per
-        line, ``#`` comments): bearer tokens accepted. Empty = no authentication. Each token
-        at least 16 characters. Never shown by the service.
+        line; a comment is a line of its own starting with ``#``, and a ``#`` anywhere else
+        stops the start): bearer tokens accepted. Unset = no authentication; set but holding
+        no token stops the start. Each token at least 16 characters. Never shown by the
+        service.
     cors_origins : tuple of str
         SKYDRIFT_CORS_ORIGINS: comma-separated web origins (``https://sky.example.org``)
         allowed to call the API from a browser, or ``*`` for any. Empty = no CORS headers.
@@ -179,27 +181,53 @@ MIN_TOKEN_LENGTH = 16
 
 
 def _tokens(env) -> tuple:
-    """Bearer tokens from SKYDRIFT_AUTH_TOKENS and SKYDRIFT_AUTH_TOKENS_FILE."""
-    found = [t.strip() for t in _str(env, "SKYDRIFT_AUTH_TOKENS", "").split(",")]
-    source = {t: "SKYDRIFT_AUTH_TOKENS" for t in found}
+    """Bearer tokens from SKYDRIFT_AUTH_TOKENS and SKYDRIFT_AUTH_TOKENS_FILE.
+
+    The file holds one token per line; blank lines and lines whose first non-blank character
+    is ``#`` are ignored. A ``#`` anywhere else stops the start: a trailing comment would
+    otherwise be cut off a token containing ``#``, leaving its first part as the token.
+    A byte order mark at the start of the file is ignored. A setting that is given but
+    holds no token stops the start too, rather than leaving the service open.
+    """
+    found = []  # (token, where it came from, for messages that never show the token)
+    raw = _str(env, "SKYDRIFT_AUTH_TOKENS", "")
+    for number, token in enumerate(raw.split(","), 1):
+        found.append((token.strip(), f"SKYDRIFT_AUTH_TOKENS (token {number})"))
+    if raw and not any(token for token, _ in found):
+        raise ConfigError("SKYDRIFT_AUTH_TOKENS is set but holds no token")
     path = _str(env, "SKYDRIFT_AUTH_TOKENS_FILE", "")
     if path:
         try:
-            with open(path, encoding="utf-8") as fh:
+            with open(path, encoding="utf-8-sig") as fh:
                 lines = fh.read().splitlines()
-        except OSError as exc:
-            raise ConfigError(f"SKYDRIFT_AUTH_TOKENS_FILE={path!r}: {exc.strerror}") from None
-        for line in lines:
-            token = line.split("#", 1)[0].strip()
-            found.append(token)
-            source.setdefault(token, "SKYDRIFT_AUTH_TOKENS_FILE")
+        except (OSError, UnicodeDecodeError) as exc:
+            reason = getattr(exc, "strerror", None) or "not UTF-8 text"
+            raise ConfigError(f"SKYDRIFT_AUTH_TOKENS_FILE={path!r}: {reason}") from None
+        in_file = 0
+        for number, line in enumerate(lines, 1):
+            token = line.strip()
+            if not token or token.startswith("#"):
+                continue
+            where = f"SKYDRIFT_AUTH_TOKENS_FILE={path!r} line {number}"
+            if "#" in token:
+                raise ConfigError(
+                    f"{where}: '#' inside a line; a comment needs a line of its own and a "
+                    "token may not contain '#'"
+                )
+            found.append((token, where))
+            in_file += 1
+        if not in_file:
+            raise ConfigError(
+                f"SKYDRIFT_AUTH_TOKENS_FILE={path!r}: no token in the file (only blank lines "
+                "or comments); unset the setting to run without authentication"
+            )
     tokens = []
-    for token in found:
+    for token, where in found:
         if not token:
             continue
         if len(token) < MIN_TOKEN_LENGTH or not token.isprintable() or " " in token:
             raise ConfigError(
-                f"{source[token]}: a token is shorter than {MIN_TOKEN_LENGTH} characters or "
+                f"{where}: a token is shorter than {MIN_TOKEN_LENGTH} characters or "
                 "contains spaces or control characters"
             )
         if token not in tokens:

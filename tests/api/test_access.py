@@ -138,7 +138,7 @@ def test_probes_open_and_metrics_closed_with_tokens(settings):
 
 def test_tokens_from_environment_and_file(tmp_path):
     f = tmp_path / "tokens"
-    f.write_text(f"# operators\n{TOKEN_A}\n\n{TOKEN_B}  # pipeline\n")
+    f.write_text(f"# operators\n{TOKEN_A}\n\n  # pipeline\n{TOKEN_B}  \n")
     s = Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
     assert s.auth_tokens == (TOKEN_A, TOKEN_B)
     s = Settings.from_env({"SKYDRIFT_AUTH_TOKENS": f" {TOKEN_A} ,{TOKEN_B}"})
@@ -146,6 +146,49 @@ def test_tokens_from_environment_and_file(tmp_path):
     # Tokens are never shown (readiness, repr).
     assert TOKEN_A not in repr(s) and TOKEN_A not in str(s.as_public_dict())
     assert s.as_public_dict()["auth_enabled"] is True
+
+
+def test_tokens_file_refuses_a_hash_inside_a_line(tmp_path):
+    # A '#' after a token started a comment, so the token "s3cret-pipeline-token#part2"
+    # was cut to "s3cret-pipeline-token", and that shorter string was then accepted.
+    # Now a comment needs a line of its own and the start stops, naming the file and line.
+    f = tmp_path / "tokens"
+    f.write_text(f"# operators\n{TOKEN_A}\ns3cret-pipeline-token#part2\n")
+    with pytest.raises(ConfigError, match=r"tokens' line 3: '#' inside a line") as caught:
+        Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
+    assert "s3cret" not in str(caught.value)  # the token is never shown
+    f.write_text(f"{TOKEN_A}  # pipeline\n")  # a trailing comment: refused the same way
+    with pytest.raises(ConfigError, match="line 1"):
+        Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
+
+
+def test_tokens_file_with_no_token_stops_the_start(tmp_path):
+    # An empty file (a Secret mounted before it was filled, say) left authentication off
+    # without a word: every request was served to anyone.
+    f = tmp_path / "tokens"
+    for text in ["", "\n\n", "# to be filled\n"]:
+        f.write_text(text)
+        with pytest.raises(ConfigError, match="no token in the file"):
+            Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
+    with pytest.raises(ConfigError, match="holds no token"):
+        Settings.from_env({"SKYDRIFT_AUTH_TOKENS": " , "})
+
+
+def test_tokens_file_byte_order_mark_and_line_ends(tmp_path):
+    # A UTF-8 byte order mark (U+FEFF, written by some editors) is not part of the first
+    # token; it was kept, and the start failed with a message about control characters.
+    f = tmp_path / "tokens"
+    f.write_bytes(b"\xef\xbb\xbf" + f"{TOKEN_A}\r\n{TOKEN_B}\r\n".encode())
+    assert Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)}).auth_tokens == (
+        TOKEN_A,
+        TOKEN_B,
+    )
+    f.write_bytes(b"\xff" + TOKEN_A.encode())  # not UTF-8: named, no traceback
+    with pytest.raises(ConfigError, match="not UTF-8"):
+        Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
+    f.write_text(f"{TOKEN_A}\nshort-token\n")  # a bad token: its line is named
+    with pytest.raises(ConfigError, match="line 2: a token is shorter"):
+        Settings.from_env({"SKYDRIFT_AUTH_TOKENS_FILE": str(f)})
 
 
 @pytest.mark.parametrize(
