@@ -46,6 +46,11 @@ def _str(env, name, default):
     return default if raw is None or raw == "" else raw
 
 
+#: Failed authentications allowed per client address (when tokens are set) before that
+#: address is answered 429 until the window ends.
+DEFAULT_AUTH_FAILURE_LIMIT = "10/minute"
+
+
 @dataclass(frozen=True)
 class Settings:
     """All settings, with their environment variable names and defaults.
@@ -102,6 +107,11 @@ class Settings:
         SKYDRIFT_RATE_LIMIT_STORAGE: where the counts live. Default ``memory://`` (per worker
         process); a shared store (``redis://host:6379``, with its client installed) makes the
         limit exact across workers and replicas.
+    auth_failure_limit : str
+        SKYDRIFT_AUTH_FAILURE_LIMIT: failed authentications (401 answers) allowed per client
+        address, when tokens are set, e.g. ``10/minute``; past it, every request from that
+        address that needs a token is answered 429 until the window ends. Default
+        ``10/minute``; ``off`` = no limit. Counted in SKYDRIFT_RATE_LIMIT_STORAGE.
     forwarded_hops : int
         SKYDRIFT_FORWARDED_HOPS: trusted reverse proxies in front of the service whose
         X-Forwarded-For / X-Forwarded-Proto are believed (client address for rate limiting
@@ -135,6 +145,7 @@ class Settings:
     cors_origins: tuple = ()
     rate_limit: str = ""
     rate_limit_storage: str = "memory://"
+    auth_failure_limit: str = DEFAULT_AUTH_FAILURE_LIMIT
     forwarded_hops: int = 0
     request_timeout_s: float = 0.0
     test_fail_first_n: int = 0
@@ -248,22 +259,37 @@ def _origins(env) -> tuple:
     return origins
 
 
-def _rate_limit(env) -> dict:
-    limit = _str(env, "SKYDRIFT_RATE_LIMIT", "").strip()
-    storage = _str(env, "SKYDRIFT_RATE_LIMIT_STORAGE", "memory://")
+def _limit_string(env, name, default) -> str:
+    """A rate-limit string (``120/minute``, ``10/second;1000/hour``), or "" for none."""
+    limit = _str(env, name, default).strip()
+    if limit.lower() == "off":
+        return ""
     if limit:
         from limits import parse_many
 
         try:
-            parse_many(limit)
+            parsed = parse_many(limit)
         except ValueError:
             raise ConfigError(
-                f"SKYDRIFT_RATE_LIMIT={limit!r}: expected e.g. '120/minute' or "
-                "'10/second;1000/hour'"
+                f"{name}={limit!r}: expected e.g. '120/minute' or '10/second;1000/hour'"
             ) from None
+        if any(item.amount < 1 for item in parsed):
+            # "0/minute" would refuse every request of every client, forever.
+            raise ConfigError(f"{name}={limit!r}: each limit must allow at least 1 request")
+    return limit
+
+
+def _rate_limit(env) -> dict:
+    storage = _str(env, "SKYDRIFT_RATE_LIMIT_STORAGE", "memory://")
     if "://" not in storage:
         raise ConfigError(f"SKYDRIFT_RATE_LIMIT_STORAGE={storage!r}: expected a URI")
-    return {"rate_limit": limit, "rate_limit_storage": storage}
+    return {
+        "rate_limit": _limit_string(env, "SKYDRIFT_RATE_LIMIT", ""),
+        "rate_limit_storage": storage,
+        "auth_failure_limit": _limit_string(
+            env, "SKYDRIFT_AUTH_FAILURE_LIMIT", DEFAULT_AUTH_FAILURE_LIMIT
+        ),
+    }
 
 
 def _access_settings(env) -> dict:

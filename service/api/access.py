@@ -7,7 +7,9 @@ the request body is read, in this order, each rejection an RFC 9457 problem:
 1. CORS preflight (OPTIONS with Origin): answered here, 204 for an allowed origin, 403
    otherwise. A request from a browser origin outside the allow-list: 403.
 2. Bearer token (SKYDRIFT_AUTH_TOKENS[_FILE]): 401 with ``WWW-Authenticate: Bearer`` when
-   missing or not accepted (RFC 6750 section 3). Compared in constant time.
+   missing or not accepted (RFC 6750 section 3). Compared in constant time. Each 401 counts
+   against the client address (SKYDRIFT_AUTH_FAILURE_LIMIT); an address past that limit is
+   answered 429 with Retry-After, without its token being looked at, until the window ends.
 3. Declared body size above SKYDRIFT_MAX_BODY_BYTES: 413, without reading the body.
 4. Per-client rate limit (SKYDRIFT_RATE_LIMIT, flask-limiter): 429 with Retry-After.
 5. Test only (SKYDRIFT_TEST_FAIL_FIRST_N): 503 with Retry-After for the first N requests.
@@ -26,6 +28,7 @@ import ctypes
 import hashlib
 import hmac
 import logging
+import math
 import multiprocessing
 import os
 import threading
@@ -100,6 +103,51 @@ def _check_token(digests) -> Response | None:
         return _unauthorized("The bearer token is not accepted.", True)
     g.client = "token:" + digest.hex()[:16]
     return None
+
+
+class _FailureLimit:
+    """Failed authentications per client address (SKYDRIFT_AUTH_FAILURE_LIMIT).
+
+    Kept in the rate-limit store (SKYDRIFT_RATE_LIMIT_STORAGE), fixed windows. Only 401
+    answers count, by address: a client with a wrong token cannot use up another client's
+    allowance, except one sharing its address (hence SKYDRIFT_FORWARDED_HOPS behind proxies).
+    """
+
+    NAMESPACE = "skydrift-auth-failures"
+
+    def __init__(self, limit: str, storage_uri: str):
+        from limits import parse_many, storage, strategies
+        from limits.errors import ConfigurationError
+
+        self.items = parse_many(limit)
+        try:
+            store = storage.storage_from_string(storage_uri)
+        except ConfigurationError as exc:
+            raise ConfigError(f"SKYDRIFT_RATE_LIMIT_STORAGE={storage_uri!r}: {exc}") from None
+        self.limiter = strategies.FixedWindowRateLimiter(store)
+
+    def wait_s(self, key: str) -> int:
+        """Whole seconds until ``key`` may try again; 0 if it may now."""
+        wait = 0
+        for item in self.items:
+            if not self.limiter.test(item, self.NAMESPACE, key):
+                stats = self.limiter.get_window_stats(item, self.NAMESPACE, key)
+                wait = max(wait, 1, math.ceil(stats.reset_time - time.time()))
+        return wait
+
+    def hit(self, key: str) -> None:
+        for item in self.items:
+            self.limiter.hit(item, self.NAMESPACE, key)
+
+
+def _too_many_failures(wait_s: int) -> Response:
+    return problem_response(
+        429,
+        "Too Many Requests",
+        f"Too many failed authentications from this address; try again in {wait_s} s "
+        "(setting SKYDRIFT_AUTH_FAILURE_LIMIT).",
+        headers={"Retry-After": str(wait_s)},
+    )
 
 
 def _unauthorized(detail: str, invalid: bool = False) -> Response:
@@ -211,6 +259,9 @@ def register(app) -> None:
     timeout_s = settings.request_timeout_s
     fail_first = settings.test_fail_first_n
     fail_counter = multiprocessing.Value("q", 0) if fail_first > 0 else None
+    failures = None
+    if digests and settings.auth_failure_limit:
+        failures = _FailureLimit(settings.auth_failure_limit, settings.rate_limit_storage)
     if fail_first > 0:
         log.warning("SKYDRIFT_TEST_FAIL_FIRST_N=%d: test-only failures are switched on", fail_first)
     if settings.forwarded_hops:
@@ -231,8 +282,14 @@ def register(app) -> None:
                     f"Origin {origin} is not allowed (setting SKYDRIFT_CORS_ORIGINS).",
                 )
         if digests and request.path not in PROBE_PATHS:
+            # Keyed by address (g.client is still "addr:..." here), never by the token given.
+            wait_s = failures.wait_s(g.client) if failures is not None else 0
+            if wait_s:
+                return _too_many_failures(wait_s)
             rejection = _check_token(digests)
             if rejection is not None:
+                if failures is not None:
+                    failures.hit(g.client)
                 return rejection
         length = request.content_length
         if length is not None and length > max_body:

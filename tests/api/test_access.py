@@ -199,6 +199,10 @@ def test_tokens_file_byte_order_mark_and_line_ends(tmp_path):
         ({"SKYDRIFT_CORS_ORIGINS": "sky.example.org"}, "SKYDRIFT_CORS_ORIGINS"),
         ({"SKYDRIFT_CORS_ORIGINS": "https://sky.example.org/app"}, "SKYDRIFT_CORS_ORIGINS"),
         ({"SKYDRIFT_RATE_LIMIT": "lots"}, "SKYDRIFT_RATE_LIMIT"),
+        # A zero amount refused every request of every client, forever.
+        ({"SKYDRIFT_RATE_LIMIT": "0/minute"}, "SKYDRIFT_RATE_LIMIT"),
+        ({"SKYDRIFT_AUTH_FAILURE_LIMIT": "0/minute"}, "SKYDRIFT_AUTH_FAILURE_LIMIT"),
+        ({"SKYDRIFT_AUTH_FAILURE_LIMIT": "often"}, "SKYDRIFT_AUTH_FAILURE_LIMIT"),
         ({"SKYDRIFT_REQUEST_TIMEOUT_S": "-1"}, "SKYDRIFT_REQUEST_TIMEOUT_S"),
         ({"SKYDRIFT_TEST_FAIL_FIRST_N": "x"}, "SKYDRIFT_TEST_FAIL_FIRST_N"),
         ({"SKYDRIFT_FORWARDED_HOPS": "99"}, "SKYDRIFT_FORWARDED_HOPS"),
@@ -316,6 +320,67 @@ def test_rate_limit_per_address_behind_trusted_proxy(settings):
     assert c.get("/openapi.json", headers=one).status_code == 200
     assert c.get("/openapi.json", headers=one).status_code == 429
     assert c.get("/openapi.json", headers=two).status_code == 200
+
+
+# --- failed authentications ---------------------------------------------------------------
+
+
+def test_failed_authentications_limited_per_address(settings):
+    # Wrong or missing tokens were never limited (the rate limit runs after the token
+    # check), so a client could guess tokens at full speed. Past the limit, an address is
+    # answered 429 with Retry-After (RFC 6585 section 4) without its token being looked
+    # at, so the answer tells a guesser nothing; other addresses keep their own count.
+    c = make_client(
+        settings, auth_tokens=(TOKEN_A,), auth_failure_limit="3/minute", forwarded_hops=1
+    )
+    guesser = {"X-Forwarded-For": "192.0.2.1"}
+    other = {"X-Forwarded-For": "192.0.2.2"}
+    for _ in range(5):  # successes do not count
+        assert c.get("/openapi.json", headers={**guesser, **bearer(TOKEN_A)}).status_code == 200
+    for i in range(3):
+        guess = {} if i == 0 else bearer(f"guess-{i:016d}")  # a missing token counts too
+        assert c.get("/openapi.json", headers={**guesser, **guess}).status_code == 401
+    for headers in [bearer("guess-again-0000000000"), bearer(TOKEN_A)]:
+        r = c.get("/openapi.json", headers={**guesser, **headers})
+        assert_problem(r, 429)
+        assert 0 < int(r.headers["Retry-After"]) <= 60
+        assert "SKYDRIFT_AUTH_FAILURE_LIMIT" in r.json["detail"]
+    # Another address is not locked out, and has a count of its own.
+    assert c.get("/openapi.json", headers={**other, **bearer(TOKEN_A)}).status_code == 200
+    assert c.get("/openapi.json", headers={**other, **bearer(TOKEN_B)}).status_code == 401
+    # Probes stay open to the locked-out address.
+    assert c.get("/health", headers=guesser).status_code == 200
+
+
+def test_failed_authentication_limit_beside_the_rate_limit_and_off(settings):
+    c = make_client(
+        settings, auth_tokens=(TOKEN_A,), auth_failure_limit="2/minute", rate_limit="5/hour"
+    )
+    for _ in range(2):
+        assert c.get("/openapi.json", headers=bearer(TOKEN_B)).status_code == 401
+    r = c.get("/openapi.json", headers=bearer(TOKEN_B))
+    assert_problem(r, 429)
+    assert r.headers.getlist("Retry-After") and int(r.headers["Retry-After"]) <= 60
+    # A preflight carries no token and is not a failure.
+    c = make_client(
+        settings, auth_tokens=(TOKEN_A,), auth_failure_limit="1/minute", cors_origins=(SKY_APP,)
+    )
+    ask = {"Origin": SKY_APP, "Access-Control-Request-Method": "POST"}
+    for _ in range(3):
+        assert c.options("/v1/propagation", headers=ask).status_code == 204
+    assert c.get("/openapi.json", headers=bearer(TOKEN_A)).status_code == 200
+    # "off": no limit on failures.
+    s = Settings.from_env({"SKYDRIFT_AUTH_FAILURE_LIMIT": "off"})
+    assert s.auth_failure_limit == ""
+    c = make_client(settings, auth_tokens=(TOKEN_A,), auth_failure_limit="")
+    assert {c.get("/docs", headers=bearer(TOKEN_B)).status_code for _ in range(30)} == {401}
+
+
+def test_failed_authentication_limit_defaults_and_store(settings):
+    assert Settings.from_env({}).auth_failure_limit == "10/minute"
+    s = dataclasses.replace(settings, auth_tokens=(TOKEN_A,), rate_limit_storage="foo://x")
+    with pytest.raises(ConfigError, match="SKYDRIFT_RATE_LIMIT_STORAGE"):
+        create_app({"SKYDRIFT_SETTINGS": s, "TESTING": True})
 
 
 # --- body size and batch size --------------------------------------------------------------
