@@ -15,12 +15,14 @@ DEFAULT_BIND = "127.0.0.1:8000"
 def _serve(args) -> int:
     here = pathlib.Path(__file__).resolve().parents[1]
     conf = here / "deploy" / "gunicorn.conf.py"
-    argv = ["gunicorn", "service.wsgi:app"]
+    # gunicorn of this interpreter's environment, not the first one on PATH: the command is
+    # often run as .venv/bin/skydrift without the environment activated.
+    argv = [sys.executable, "-m", "gunicorn", "service.wsgi:app"]
     if conf.is_file():
-        argv[1:1] = ["--config", str(conf)]
+        argv[3:3] = ["--config", str(conf)]
     if args.bind:
-        argv[1:1] = ["--bind", args.bind]
-    os.execvp(argv[0], argv)  # replaces this process; gunicorn handles signals
+        argv[3:3] = ["--bind", args.bind]
+    os.execv(argv[0], argv)  # replaces this process; gunicorn handles signals
     return 0  # pragma: no cover
 
 

@@ -386,3 +386,21 @@ def test_velocities_low_snr_threshold_option():
     assert any(s is not None and s >= 5.0 for s in snr)  # the two runs differ
     bad = skydrift("velocities", CATALOGUE, "--low-snr-threshold", "0", check=False)
     assert bad.returncode == 2 and b"--low-snr-threshold" in bad.stderr
+
+
+def test_serve_runs_the_gunicorn_of_its_own_environment(monkeypatch):
+    # `.venv/bin/skydrift serve` without the environment activated: gunicorn is not on PATH,
+    # so the command must not look it up there (it stopped with FileNotFoundError).
+    from service import cli
+
+    calls = []
+    monkeypatch.setenv("PATH", "")
+    monkeypatch.setattr(os, "execv", lambda path, argv: calls.append((path, argv)), raising=False)
+    monkeypatch.setattr(os, "execvp", lambda path, argv: calls.append((path, argv)))
+    cli.main(["serve", "--bind", "127.0.0.1:0"])
+    ((path, argv),) = calls
+    assert path == sys.executable
+    assert argv[:3] == [sys.executable, "-m", "gunicorn"]
+    assert argv[-1] == "service.wsgi:app"
+    assert argv[argv.index("--bind") + 1] == "127.0.0.1:0"
+    assert argv[argv.index("--config") + 1] == str(ROOT / "deploy" / "gunicorn.conf.py")
