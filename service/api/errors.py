@@ -2,7 +2,7 @@
 
 Every error response is ``application/problem+json``::
 
-    {"type": "about:blank", "title": "Unprocessable Content", "status": 422,
+    {"type": "about:blank", "title": "Unprocessable Entity", "status": 422,
      "detail": "The request has 1 invalid field.",
      "errors": [{"field": "stars[3].dec_deg", "message": "must be between -90 and 90"}]}
 
@@ -189,6 +189,22 @@ def flatten_messages(messages, prefix: str = "") -> list[dict]:
     return out
 
 
+#: The count in a "(more)" entry of a list cut short ("450 further invalid values ...").
+_FURTHER = re.compile(r"(\d+) further ")
+
+
+def _invalid_count(errors: list[dict]) -> int:
+    """Offending fields in a list of errors, counting those a "(more)" entry stands for."""
+    n = 0
+    for e in errors:
+        further = _FURTHER.match(str(e.get("message", "")))
+        if str(e.get("field", "")).endswith("(more)") and further:
+            n += int(further.group(1))
+        else:
+            n += 1
+    return n
+
+
 def _clip(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
@@ -214,7 +230,7 @@ def handle_http_exception(error: HTTPException) -> Response:
         if data.get("where"):  # line, column and reason (jsonio.BodyParser)
             detail = f"The request body is not valid JSON: {_clip(data['where'])}."
     elif errors:
-        n = len(errors)
+        n = _invalid_count(errors)
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
     else:
         detail = data.get("message") or error.description

@@ -222,3 +222,20 @@ def test_request_options_take_json_numbers_and_booleans_only():
                     found[name] = _lenient_fields(cls())
     assert len(found) >= 9, sorted(found)  # every endpoint's request schema was seen
     assert not {k: v for k, v in found.items() if v}
+
+
+@pytest.mark.parametrize("layout", ["records", "columns"])
+def test_problem_detail_counts_the_invalid_values_not_listed(client, layout):
+    # 60 declinations out of range (the bound is the IAU definition of declination, +-90
+    # deg): 50 are listed and the rest summed up in one "(more)" entry; the detail must
+    # count all 60, not the 51 entries of the list.
+    star = {"ra_deg": 1.0, "dec_deg": 95.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+    stars = [star] * 60
+    if layout == "columns":
+        stars = {k: [v] * 60 for k, v in star.items()}
+    body = {"catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"], "stars": stars}
+    problem = client.post("/v1/propagation", json=body).get_json()
+    assert problem["status"] == 422
+    assert problem["errors"][-1]["field"].endswith("(more)")
+    assert problem["errors"][-1]["message"].startswith("10 further invalid values")
+    assert problem["detail"] == "The request has 60 invalid fields."
