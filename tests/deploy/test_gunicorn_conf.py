@@ -92,6 +92,11 @@ def test_worker_nice_setting(load):
         ("SKYDRIFT_KEEPALIVE_S", "abc"),
         ("SKYDRIFT_MAX_REQUESTS", "1e4"),
         ("SKYDRIFT_MAX_REQUESTS_JITTER", "-5"),
+        # read by each worker (service/workers.py): every worker exited as it booted, over
+        # and over, while the server kept listening and answered nothing
+        ("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", "abc"),
+        ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "0"),
+        ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "nan"),
     ],
 )
 def test_bad_process_settings_stop_the_start_with_one_line_naming_them(load, name, value):
