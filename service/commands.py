@@ -93,9 +93,15 @@ def read_catalogue(path: str) -> Catalogue:
                 "'stars' member is one"
             )
         names: dict = {}
-        for s in stars:
-            for k in s:
+        for i, s in enumerate(stars):
+            for k, v in s.items():
                 names.setdefault(k, None)
+                # The API's rule for JSON: numbers are JSON numbers. Written into the CSV
+                # sent on, "12.5" would read as a number and true as a bad cell.
+                kinds = (str, int) if k == "id" else (int, float)
+                if not (v is None or (isinstance(v, kinds) and not isinstance(v, bool))):
+                    what = "a string or an integer" if k == "id" else "a number without quotes"
+                    raise ValueError(f"{path}: stars[{i}].{k}: must be {what}, or null")
         buf = io.StringIO()
         writer = csv.writer(buf, lineterminator="\n")
         writer.writerow(list(names))

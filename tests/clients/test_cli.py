@@ -3,7 +3,9 @@
 import argparse
 import csv
 import io
+import json
 import os
+import re
 import subprocess
 import sys
 
@@ -404,3 +406,25 @@ def test_serve_runs_the_gunicorn_of_its_own_environment(monkeypatch):
     assert argv[-1] == "service.wsgi:app"
     assert argv[argv.index("--bind") + 1] == "127.0.0.1:0"
     assert argv[argv.index("--config") + 1] == str(ROOT / "deploy" / "gunicorn.conf.py")
+
+
+@pytest.mark.parametrize(
+    ("star", "message"),
+    [({"ra_deg": "12.5"}, "stars[0].ra_deg: must be a number without quotes"),
+     ({"pm_dec_mas_yr": True}, "stars[0].pm_dec_mas_yr: must be a number without quotes"),
+     ({"parallax_mas": [1.0]}, "stars[0].parallax_mas: must be a number without quotes"),
+     ({"id": 7.5}, "stars[0].id: must be a string or an integer")],
+)  # fmt: skip
+def test_json_catalogue_takes_json_numbers_only(tmp_path, star, message):
+    # The API refuses "12.5" and true for a number (README, Reliability); a JSON catalogue
+    # was written into CSV for the request, where "12.5" read as the number 12.5.
+    from service.commands import read_catalogue
+
+    base = {"id": "a", "ra_deg": 1.0, "dec_deg": 2.0, "pm_ra_cosdec_mas_yr": 0.0,
+            "pm_dec_mas_yr": 0.0, "parallax_mas": None}  # fmt: skip
+    path = tmp_path / "cat.json"
+    path.write_text(json.dumps({"stars": [dict(base, **star)]}))
+    with pytest.raises(ValueError, match=re.escape(f"{path}: {message}")):
+        read_catalogue(str(path))
+    path.write_text(json.dumps({"stars": [base, dict(base, id=7)]}))  # null, integer id: fine
+    assert read_catalogue(str(path)).rows == 2
