@@ -61,21 +61,12 @@ workers = _whole("SKYDRIFT_WORKERS", _cpu_count(), 1, 1024)
 worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "service.workers.ReadDeadlineThreadWorker")
 
 
-def _seconds(name: str, default: float) -> float:
-    """A time setting read by the workers (service/workers.py, same rule), checked here too:
-    a bad value must stop the start, not make every worker exit as it boots, over and over."""
-    raw = os.environ.get(name) or ""
-    try:
-        value = float(raw) if raw else default
-    except ValueError:
-        raise SystemExit(f"{name}={raw!r}: expected a number of seconds") from None
-    if not 0.1 <= value <= 3600:  # also NaN
-        raise SystemExit(f"{name}={value}: must be between 0.1 and 3600 seconds")
-    return value
+# The workers read these two (service/workers.py); checked here too, by the same function: a
+# bad value must stop the start, not make every worker exit as it boots, over and over.
+from service.workers import seconds_setting  # noqa: E402
 
-
-_seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
-_seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+seconds_setting("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
+seconds_setting("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
 
 #: Threads per worker (gthread only).
 threads = _whole("SKYDRIFT_THREADS", 2, 1, 1024)

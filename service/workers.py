@@ -51,7 +51,9 @@ class ClientTooSlow(NoMoreData, TimeoutError):
         return self.message
 
 
-def _seconds(name: str, default: float) -> float:
+def seconds_setting(name: str, default: float) -> float:
+    """A time setting of the workers, seconds; a bad value stops with one line naming it
+    (also read by deploy/gunicorn.conf.py, so that it stops the start, not each worker)."""
     raw = os.environ.get(name, "")
     try:
         value = float(raw) if raw else default
@@ -142,8 +144,8 @@ class ReadDeadlineSyncWorker(SyncWorker):
     """gunicorn's sync worker with per-client read limits (module docstring)."""
 
     def init_process(self):
-        self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
-        self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        self.client_idle_s = seconds_setting("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
+        self.request_read_s = seconds_setting("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
         _answer_errors_as_problems()
         super().init_process()
 
@@ -162,8 +164,8 @@ class ReadDeadlineThreadWorker(ThreadWorker):
     """gunicorn's gthread worker with per-request read limits (module docstring)."""
 
     def init_process(self):
-        self.client_idle_s = _seconds("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
-        self.request_read_s = _seconds("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
+        self.client_idle_s = seconds_setting("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", 10.0)
+        self.request_read_s = seconds_setting("SKYDRIFT_REQUEST_READ_TIMEOUT_S", 60.0)
         _answer_errors_as_problems()
         super().init_process()
 
