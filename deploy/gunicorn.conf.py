@@ -115,6 +115,10 @@ preload_app = True
 worker_tmp_dir = os.environ.get("SKYDRIFT_WORKER_TMP_DIR") or (
     "/dev/shm" if os.access("/dev/shm", os.W_OK) else None
 )
+if os.environ.get("SKYDRIFT_WORKER_TMP_DIR") and not (
+    os.path.isdir(worker_tmp_dir) and os.access(worker_tmp_dir, os.W_OK | os.X_OK)
+):  # gunicorn would stop with a traceback as the first worker boots
+    raise SystemExit(f"SKYDRIFT_WORKER_TMP_DIR={worker_tmp_dir!r}: not a writable folder")
 
 #: No control socket (gunicorn 24+): signals are the interface orchestrators use, and a
 #: socket under $HOME would collide between instances and need a writable home.

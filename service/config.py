@@ -157,7 +157,9 @@ class Settings:
         env = os.environ if env is None else env
         level = _str(env, "SKYDRIFT_LOG_LEVEL", "INFO").upper()
         if level not in ("DEBUG", "INFO", "WARNING", "ERROR", "CRITICAL"):
-            raise ConfigError(f"SKYDRIFT_LOG_LEVEL={level!r}: use DEBUG, INFO, WARNING or ERROR")
+            raise ConfigError(
+                f"SKYDRIFT_LOG_LEVEL={level!r}: use DEBUG, INFO, WARNING, ERROR or CRITICAL"
+            )
         settings = cls(
             max_body_bytes=_int(env, "SKYDRIFT_MAX_BODY_BYTES", 268_435_456, 1024, 4 << 30),
             max_stars=_int(env, "SKYDRIFT_MAX_STARS", 1_000_000, 1, 100_000_000),

@@ -135,6 +135,7 @@ def test_unexpected_error_gives_bare_500_without_trace(settings):
         ({"SKYDRIFT_MAX_STARS": "many"}, "SKYDRIFT_MAX_STARS"),
         ({"SKYDRIFT_MAX_STARS": "0"}, "SKYDRIFT_MAX_STARS"),
         ({"SKYDRIFT_LOG_LEVEL": "LOUD"}, "SKYDRIFT_LOG_LEVEL"),
+        ({"SKYDRIFT_LOG_LEVEL": "LOUD"}, "ERROR or CRITICAL"),  # every accepted name listed
         ({"SKYDRIFT_SITES_FILE": "/nonexistent/sites.json"}, "SKYDRIFT_SITES_FILE"),
     ],
 )

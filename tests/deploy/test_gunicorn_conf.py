@@ -97,6 +97,9 @@ def test_worker_nice_setting(load):
         ("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", "abc"),
         ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "0"),
         ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "nan"),
+        # gunicorn stopped with a traceback as the first worker booted
+        ("SKYDRIFT_WORKER_TMP_DIR", "/no/such/folder"),
+        ("SKYDRIFT_WORKER_TMP_DIR", str(ROOT / "README.md")),
     ],
 )
 def test_bad_process_settings_stop_the_start_with_one_line_naming_them(load, name, value):
