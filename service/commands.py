@@ -11,6 +11,7 @@ a progress bar is shown on a terminal and nothing when standard error is not one
 from __future__ import annotations
 
 import argparse
+import contextlib
 import csv
 import io
 import json
@@ -43,12 +44,54 @@ Exit status: 0 done, 1 the service refused the input or failed (details on stand
 
 
 class Catalogue:
-    """A catalogue read from a file: CSV text, and the catalogue epoch if the file says."""
+    """A catalogue read from a file: CSV text, and the catalogue epoch if the file says.
+    ``from_json``: the CSV text was made from a JSON file's stars (one row per star, in
+    order), so errors name ``stars[i].field`` rather than lines of that text."""
 
-    def __init__(self, csv_text: str, catalogue_epoch: str | None, rows: int):
+    def __init__(
+        self, csv_text: str, catalogue_epoch: str | None, rows: int, from_json: bool = False
+    ):
         self.csv_text = csv_text
         self.catalogue_epoch = catalogue_epoch
         self.rows = rows
+        self.from_json = from_json
+
+
+_CSV_LINE_FIELD = re.compile(r"^line (\d+): (.+)$")
+
+
+def json_star_fields(errors: list, csv_text: str) -> list:
+    """'line 3: dec_deg' in CSV text made from a JSON catalogue -> 'stars[1].dec_deg' (the
+    header line, naming a member: 'stars[*].name'), and an empty cell called what it was in
+    the JSON file (null or absent)."""
+    if not any(_CSV_LINE_FIELD.match(e.field) for e in errors):
+        return errors
+    lines = _read_csv(csv_text)[2]
+    star_of_line = {line: f"stars[{k}]" for k, line in enumerate(lines[1:])}
+    star_of_line[lines[0]] = "stars[*]"  # the header: a member name some star uses
+    out = []
+    for e in errors:
+        m = _CSV_LINE_FIELD.match(e.field)
+        star = star_of_line.get(int(m.group(1))) if m else None
+        if star is None:
+            out.append(e)
+            continue
+        message = e.message.replace("the cell is empty", "it is null or absent")
+        out.append(type(e)(f"{star}.{m.group(2)}", message))
+    return out
+
+
+@contextlib.contextmanager
+def _errors_named_for(cat: Catalogue):
+    """Errors about the CSV text of ``cat`` (lines of that text, as the service and the
+    line relocation give them) named as the user's file names them: unchanged for a CSV
+    file, ``stars[i].field`` for a JSON one."""
+    try:
+        yield
+    except SkydriftError as exc:
+        if cat.from_json:
+            exc.errors = json_star_fields(exc.errors, cat.csv_text)
+        raise
 
 
 def _at_least_zero(text: str) -> int:
@@ -108,7 +151,7 @@ def read_catalogue(path: str) -> Catalogue:
         for s in stars:
             writer.writerow(["" if s.get(k) is None else s[k] for k in names])
         epoch = data.get("catalogue_epoch") if isinstance(data, dict) else None
-        return Catalogue(buf.getvalue(), epoch, len(stars))
+        return Catalogue(buf.getvalue(), epoch, len(stars), from_json=True)
     _header, rows, _lines = _read_csv(text)
     return Catalogue(text, None, len(rows))
 
@@ -183,7 +226,8 @@ def _table_command(args, cat, label: str, call) -> str:
     bar, update = _progress(cat.rows, args, label)
     with make_client(args) as client:
         try:
-            return _tolerant(args, cat.csv_text, lambda body: call(client, body, update))
+            with _errors_named_for(cat):
+                return _tolerant(args, cat.csv_text, lambda body: call(client, body, update))
         finally:
             if bar is not None:
                 bar.close()
@@ -424,7 +468,7 @@ def cmd_chart_track(args) -> int:
         "format": _image_format(args),
         "title": args.title,
     }
-    with make_client(args) as client:
+    with make_client(args) as client, _errors_named_for(cat):
         text, lines = _select(cat, args.star)
         data = _tolerant(
             args,
@@ -446,7 +490,7 @@ def cmd_chart_field(args) -> int:
         "format": _image_format(args),
         "title": args.title,
     }
-    with make_client(args) as client:
+    with make_client(args) as client, _errors_named_for(cat):
         data = _tolerant(
             args,
             cat.csv_text,

@@ -428,3 +428,43 @@ def test_json_catalogue_takes_json_numbers_only(tmp_path, star, message):
         read_catalogue(str(path))
     path.write_text(json.dumps({"stars": [base, dict(base, id=7)]}))  # null, integer id: fine
     assert read_catalogue(str(path)).rows == 2
+
+
+def test_json_catalogue_errors_name_the_stars_of_the_json_file(tmp_path):
+    """A JSON catalogue is sent on as CSV; its errors must name the JSON file's stars and
+    members (stars[1].dec_deg), not lines of that CSV. Reference: the service's own answer
+    to the same stars posted as JSON records."""
+    from service.api.app import create_app
+
+    stars = [
+        {"id": "A1", "ra_deg": 10.0, "dec_deg": 20.0, "parallax_mas": 5.0,
+         "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0},
+        {"id": "A2", "ra_deg": 10.0, "dec_deg": 120.0, "parallax_mas": 5.0,
+         "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0},
+        {"id": "A3", "ra_deg": 10.0, "dec_deg": None, "parallax_mas": 5.0,
+         "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0},
+    ]  # fmt: skip
+    path = tmp_path / "cat.json"
+    path.write_text(json.dumps({"catalogue_epoch": "J2016.0", "stars": stars}))
+    api = (
+        create_app()
+        .test_client()
+        .post(
+            "/v1/propagation",
+            json={"catalogue_epoch": "J2016.0", "target_epochs": ["J2030.0"], "stars": stars},
+        )
+    )
+    assert api.status_code == 422
+    expected = sorted(e["field"] for e in api.json["errors"])
+    assert expected == ["stars[1].dec_deg", "stars[2].dec_deg"]
+    out = skydrift("propagate", str(path), "--epoch", "J2030.0", check=False)
+    assert out.returncode == 1
+    named = sorted(re.findall(r"^  (stars\[\d+\]\.\w+):", out.stderr.decode(), re.M))
+    assert named == expected
+    assert b"line " not in out.stderr and b"cell" not in out.stderr
+    # A member no endpoint takes is named as a member of the stars.
+    path.write_text(json.dumps([dict(stars[0], ra_err=1.0)]))
+    out = skydrift("propagate", str(path), "--epoch", "J2030.0", "--catalogue-epoch", "J2016",
+                   check=False)  # fmt: skip
+    assert out.returncode == 1
+    assert b"stars[*].ra_err: unknown field" in out.stderr
