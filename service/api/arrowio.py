@@ -417,10 +417,29 @@ def _python_array(values: list) -> pa.Array:
         names = _names_column(values)
         if names is not None:
             return names
+        vectors = _vector_rows(values)
+        if vectors is not None:
+            return _short_vectors(vectors)
     try:
         return pa.array(values, from_pandas=True)  # NaN (also inside lists) -> null
     except (pa.ArrowInvalid, pa.ArrowTypeError, OverflowError):
         return pa.array([None if v is None else csvio._cell(v) for v in values], pa.string())
+
+
+def _vector_rows(values: list) -> np.ndarray | None:
+    """Short vectors of numbers (an interval per star), all of one length K, as an (N, K)
+    float array (null: NaN), so that the records layout gives the fixed-size lists the
+    columns layout gives; None for anything else."""
+    sizes = {len(v) for v in values if v is not None}
+    if len(sizes) != 1 or 0 in sizes:
+        return None
+    if not all(type(x) in (float, int) or x is None for v in values if v is not None for x in v):
+        return None
+    (k,) = sizes
+    return np.array(
+        [[np.nan] * k if v is None else [np.nan if x is None else x for x in v] for v in values],
+        dtype=float,
+    )
 
 
 def _ids_array(ids: list) -> pa.Array:
@@ -509,7 +528,14 @@ def _records_arrow(body: dict, nested_names: set) -> dict:
     """A records answer (or a single object) -> Arrow columns, through the CSV answer's rows
     (the same rows and column order)."""
     header, rows = csvio.record_rows(body, nested_names)
-    return {
-        key: (_ids_array if key == "id" else _python_array)([row.get(key) for row in rows])
-        for key in header
-    }
+    out = {}
+    for key in header:
+        values = [row.get(key) for row in rows]
+        if key == "id":
+            out[key] = _ids_array(values)
+        elif key.endswith("_iso_utc") and all(v is None or type(v) is str for v in values):
+            # repeated on many rows: dictionary-encoded, as in the columns layout
+            out[key] = pa.array(values, pa.string()).dictionary_encode()
+        else:
+            out[key] = _python_array(values)
+    return out

@@ -139,6 +139,37 @@ def test_other_endpoints_equal_json(client, path, example, extra):
     assert meta == {k: v for k, v in js.json.items() if k != "columns"}
 
 
+@pytest.mark.parametrize(
+    "path, example",
+    [
+        ("/v1/propagation", "propagation_request.json"),
+        ("/v1/velocity", "velocity_request.json"),
+        ("/v1/constellations/lookup", "constellations_lookup_request.json"),
+    ],
+)
+def test_records_and_columns_layouts_give_one_arrow_schema(client, path, example):
+    """The layout of the JSON answer must not change the Arrow answer: the same column
+    types (pyarrow's Schema.equals: epoch_iso_utc dictionary-encoded, an interval a
+    fixed-size list) and the same values, as the module text promises for both."""
+    from service.api.examples import load_example
+
+    tables = {}
+    for layout in ("records", "columns"):
+        body = dict(load_example(example), layout=layout)
+        r = client.post(path, json=body, headers={"Accept": ARROW})
+        assert r.status_code == 200, r.get_data(as_text=True)
+        tables[layout] = read_stream(r.data)
+    records, columns = tables["records"], tables["columns"]
+    assert records.schema.equals(columns.schema, check_metadata=False), (
+        records.schema,
+        columns.schema,
+    )
+    assert records.to_pylist() == columns.to_pylist()
+    for name in records.column_names:
+        if name.endswith("_iso_utc"):
+            assert pa.types.is_dictionary(records.schema.field(name).type)
+
+
 def test_round_trip_through_pyarrow(client, demo_catalogue):
     """Written by pyarrow, propagated over no time, read by pyarrow: the input comes back.
 
