@@ -4,7 +4,8 @@ Request (``Content-Type: text/csv``)
     The body is the star table: a header row of column names, which are the field names of
     the endpoint's record schema and carry their units (``ra_deg``, ``parallax_mas``, ...),
     then one star per line. An empty cell is null (unknown, never zero). Blank lines are
-    skipped. Identifiers read from CSV are text. The body must be UTF-8 (a byte-order mark
+    skipped. Identifiers read from CSV are text, kept as written (blanks too); blanks around
+    a number are ignored. The body must be UTF-8 (a byte-order mark
     is allowed). A JSON answer to a CSV
     body comes in the columns layout unless the request says ``layout=records``. The
     endpoint's other request fields travel as query parameters: lists repeated or comma-separated
@@ -58,7 +59,8 @@ class CsvTable:
     header : list of str
         Column names as given.
     columns : dict of str -> list of str
-        The cells of each column, one per data row (stripped of surrounding blanks).
+        The cells of each column, one per data row, as written (the table check strips the
+        blanks around numbers; an identifier is text and keeps them).
     lines : list of int
         Line number in the body of each data row (header = line 1).
     header_line : int
@@ -153,7 +155,7 @@ def parse_csv_body(data: bytes) -> CsvTable:
     if errors:
         _problem(422, errors=errors)
     cells = list(zip(*rows, strict=True)) if rows else [() for _ in header]
-    columns = {name: [c.strip() for c in col] for name, col in zip(header, cells, strict=True)}
+    columns = {name: list(col) for name, col in zip(header, cells, strict=True)}
     return CsvTable(header, columns, lines, header_line)
 
 

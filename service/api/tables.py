@@ -491,8 +491,11 @@ class StarTableField(ma.fields.Field):
             if cells is None:
                 continue
             if spec.kind == "id":
+                # Text as written (as Python's csv module and a JSON string give it): only
+                # an empty cell is no identifier.
                 raw[spec.name] = [c if c != "" else None for c in cells]
             else:
+                cells = [c.strip() for c in cells]  # "1, 2.5": blanks around a number
                 raw[spec.name] = _csv_number_column(cells, spec, errors)
         return self._finish(raw, table.size, errors, set(table.header), lines=table.lines)
 

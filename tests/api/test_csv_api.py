@@ -5,7 +5,7 @@ import io
 
 import pytest
 
-from tests.conftest import DEMO, DEMO_QUERY, propagation_rows, table_endpoint_cases
+from tests.conftest import DEMO, DEMO_OPTIONS, DEMO_QUERY, propagation_rows, table_endpoint_cases
 
 URL = "/v1/propagation"
 QUERY = DEMO_QUERY
@@ -116,6 +116,29 @@ def test_csv_answer_to_a_json_body(client):
     assert "ra_error_mas" not in rows[0]
     assert rows[0]["parallax_mas"] == ""
     assert rows[0]["flags"] == "parallax_missing;radial_velocity_missing"
+
+
+def test_ids_keep_their_blanks_numbers_lose_theirs(client):
+    """An identifier is text: Python's csv module reads the cell '"  HX 12 "' as "  HX 12 ",
+    and the JSON body with that id answers it unchanged, so a CSV body must too (the
+    service's own CSV answer writes it so). Blanks around a number are no part of it."""
+    ids = ["  HX 12 ", "HX 12", " 7"]
+    body = HEADER + "\n" + "".join(
+        f'"{i}", {10 + k} ,5,,1, 1,\n' for k, i in enumerate(ids)
+    )  # fmt: skip
+    assert [row[0] for row in csv.reader(io.StringIO(body))][1:] == ids  # the reference
+    r = post_csv(client, body, accept="text/csv")
+    assert r.status_code == 200, r.get_data(as_text=True)
+    rows = rows_of(r.get_data(as_text=True))
+    assert [row["id"] for row in rows[::2]] == ids
+    assert [float(row["pm_dec_mas_yr"]) for row in rows[::2]] == pytest.approx([1.0] * 3, abs=1e-6)
+    stars = [
+        {"id": i, "ra_deg": 10.0 + k, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0,
+         "pm_dec_mas_yr": 1.0}
+        for k, i in enumerate(ids)
+    ]  # fmt: skip
+    js = client.post(URL, json={"stars": stars, **DEMO_OPTIONS, "layout": "columns"}).json
+    assert post_csv(client, body).json["columns"]["id"] == js["columns"]["id"] == ids
 
 
 def test_json_stays_the_default(client, demo_csv):
