@@ -1024,3 +1024,33 @@ def test_csv_cell_counts_agree_with_the_csv_module():
         else:
             assert not wrong, text
     assert 100 < refusals < 300  # both kinds of blocks were tried
+
+
+@pytest.mark.parametrize("tail", ["\n", "", "\r\n\r\n", "\n  \n"])
+def test_csv_header_without_rows_is_a_catalogue_without_stars(tmp_path, tail):
+    """A header and no rows holds no stars, as a Parquet file without rows does: both give
+    an output of no rows with the same columns and types (pyarrow's Schema.equals), not a
+    refusal saying that a column 'is not numeric (dtype string)' (pandas types a column
+    without cells as text)."""
+    cat = synthetic_catalogue(100, seed=8).iloc[:0]
+    write_parquet(cat, tmp_path / "empty.parquet")
+    path = tmp_path / "empty.csv"
+    path.write_bytes(b"\xef\xbb\xbf" + ",".join(cat.columns).encode() + tail.encode())
+    # The reference: Python's csv module reads the header and no row with a cell.
+    rows = list(csv.reader(io.StringIO(path.read_text("utf-8-sig"), newline="")))
+    assert [r for r in rows if "".join(r).strip()] == [list(cat.columns)]
+    from_parquet = run(tmp_path / "empty.parquet", tmp_path / "out_parquet", local="synchronous")
+    from_csv = run_csv(path, tmp_path / "out_csv")
+    assert from_parquet.rows == from_csv.rows == 0
+    # (The kept source_id aside: text with no cell to say it holds whole numbers.)
+    schemas = [
+        pq.read_table(tmp_path / out).drop_columns(["source_id"]).schema.remove_metadata()
+        for out in ("out_parquet", "out_csv")
+    ]
+    assert schemas[0].equals(schemas[1])
+    # A header-only first file of several: the rows of the others are read as numbers.
+    (tmp_path / "parts").mkdir()
+    (tmp_path / "parts" / "a.csv").write_bytes(path.read_bytes())
+    csv_catalogue(tmp_path / "parts", name="b.csv")
+    summary = run_csv(str(tmp_path / "parts" / "*.csv"), tmp_path / "out_parts")
+    assert summary.rows == len(pd.read_csv(tmp_path / "parts" / "b.csv"))

@@ -452,6 +452,23 @@ def _line_number(stream, line: bytes) -> int | None:
         buf = buf[cut:]
 
 
+def first_file_has_no_rows(source) -> bool:
+    """Whether the input's first file holds a header and nothing after it but blank lines:
+    the columns' types read from it (text, for a column without cells) say nothing."""
+    try:
+        files = input_files(source)
+        if not files:
+            return False
+        with files[0] as stream:
+            data = stream.read(HEAD_BYTES + 1)
+    except (OSError, ValueError):
+        return False
+    if len(data) > HEAD_BYTES:
+        return False
+    end = _header_end(data)
+    return end >= len(data) or not data[end + 1 :].strip(b" \t\r\n")
+
+
 def head_problem(source, column: str):
     """The first problem in the first rows of the input's first file, ``column`` read as
     numbers: (file, line number, what is wrong, the column or None for a whole row), or

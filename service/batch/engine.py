@@ -523,8 +523,17 @@ def build_output(source, plan_args: dict, *, input_format="auto", blocksize=None
     """
     frame, fmt = open_input(source, input_format, blocksize=blocksize)
     schema = dict(frame.dtypes.items())
+    types = schema
+    if fmt == "csv" and not all(_is_numeric(t) for t in schema.values()):
+        from .csvinput import first_file_has_no_rows
+
+        if first_file_has_no_rows(source):
+            # A header without rows types every column as text: taken as numbers (the
+            # re-open below reads them as float64, refusing any cell that is not), as a
+            # Parquet file without rows has its columns' types.
+            types = {k: np.dtype("float64") for k in schema}
     try:
-        plan = make_plan(input_columns=schema, source=str(source), **plan_args)
+        plan = make_plan(input_columns=types, source=str(source), **plan_args)
     except ColumnNotNumeric as exc:
         if fmt == "csv":
             _refuse_text_cell(source, exc)
