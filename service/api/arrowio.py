@@ -53,6 +53,9 @@ ARROW_MIMETYPE = "application/vnd.apache.arrow.stream"
 #: Schema metadata key holding the answer's members other than the table, as JSON text.
 ANSWER_METADATA_KEY = b"skydrift.answer"
 
+#: First bytes of the Arrow IPC *file* format (Feather version 2), another media type.
+ARROW_FILE_MAGIC = b"ARROW1"
+
 #: Unit of the epoch column, in its field metadata.
 EPOCH_UNIT = "Julian epoch (TDB), years"
 
@@ -177,6 +180,13 @@ def parse_arrow_body(data: bytes) -> ArrowTable:
        reading there. Two streams sent one after the other (files joined end to end) would
        otherwise be answered for the first stream's stars alone, without a word.
     """
+    if data[:6] == ARROW_FILE_MAGIC:
+        abort(
+            400,
+            message="The body is an Arrow IPC file (a Feather or .arrow file, which starts "
+            "with ARROW1), not an Arrow IPC stream: send the stream format (pyarrow: "
+            "pyarrow.ipc.new_stream).",
+        )
     buf = pa.py_buffer(data)
     try:
         source = pa.BufferReader(buf)
