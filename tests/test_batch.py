@@ -1054,3 +1054,23 @@ def test_csv_header_without_rows_is_a_catalogue_without_stars(tmp_path, tail):
     csv_catalogue(tmp_path / "parts", name="b.csv")
     summary = run_csv(str(tmp_path / "parts" / "*.csv"), tmp_path / "out_parts")
     assert summary.rows == len(pd.read_csv(tmp_path / "parts" / "b.csv"))
+
+
+def test_csv_kept_column_without_cells_in_its_first_rows_is_copied(tmp_path):
+    """A kept identifier column whose first ten stars (the rows dask types the columns from)
+    have no name was typed float64 for want of cells, and the first name after them ('HX
+    12') stopped the run as 'not a number'. The kept cells must come out as Python's csv
+    module reads them (an empty cell unknown)."""
+    cat = synthetic_catalogue(100, seed=8)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True).iloc[:40]
+    cat["name"] = ["" if i < 12 or i % 3 else f"HX {i}" for i in range(len(cat))]
+    path = tmp_path / "cat.csv"
+    cat.to_csv(path, index=False, lineterminator="\n")
+    with open(path, newline="") as f:
+        expected = [row["name"] or None for row in csv.DictReader(f)]  # the reference
+    assert expected[:12] == [None] * 12 and "HX 12" in expected
+    summary = run_csv(path, tmp_path / "out", keep=["source_id", "name"])
+    assert summary.rows == len(cat)
+    out = read_output(tmp_path / "out")
+    got = [None if v is None or v != v else v for v in out["name"]]  # NaN or None: unknown
+    assert got == expected

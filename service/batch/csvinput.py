@@ -469,6 +469,41 @@ def first_file_has_no_rows(source) -> bool:
     return end >= len(data) or not data[end + 1 :].strip(b" \t\r\n")
 
 
+#: Data rows from which dask types the columns (``dask.dataframe.read_csv``'s sample_rows).
+SAMPLE_ROWS = 10
+
+
+def columns_without_cells(source, columns) -> set:
+    """Those of ``columns`` whose every cell is empty in the first SAMPLE_ROWS rows of the
+    input's first file: the float64 type they get from those rows says nothing of the
+    cells that follow (an identifier column whose first stars have none)."""
+    try:
+        files = input_files(source)
+        if not files or not columns:
+            return set()
+        with files[0] as stream:
+            data = stream.read(HEAD_BYTES)
+    except (OSError, ValueError):
+        return set()
+    text = data.decode("utf-8", "surrogateescape").removeprefix("\ufeff")
+    reader = csv.reader(io.StringIO(text, newline=""))
+    try:
+        header = next(reader, [])
+        where = {name: k for k, name in enumerate(header) if name in columns}
+        filled: set = set()
+        rows = 0
+        for row in reader:
+            if not row or (len(row) == 1 and not row[0].strip(" \t")):
+                continue  # blank lines: skipped, as pandas skips them
+            filled.update(name for name, k in where.items() if k < len(row) and row[k])
+            rows += 1
+            if rows == SAMPLE_ROWS:
+                break
+    except csv.Error:
+        return set()
+    return set(where) - filled
+
+
 def head_problem(source, column: str):
     """The first problem in the first rows of the input's first file, ``column`` read as
     numbers: (file, line number, what is wrong, the column or None for a whole row), or

@@ -544,7 +544,12 @@ def build_output(source, plan_args: dict, *, input_format="auto", blocksize=None
         # Re-open reading only the needed columns, numbers as float64; kept columns of
         # numbers with the type their first rows gave them (a later cell that does not fit
         # is then refused with its line, not in a dask message about types).
+        from .csvinput import columns_without_cells
+
         dtypes = {k: schema[k] for k in plan.keep if _is_numeric_numpy(schema[k])}
+        # A kept column without a cell in those rows is float64 only for want of cells: it
+        # is copied as text (the identifiers of the later stars), not refused as no number.
+        dtypes.update(dict.fromkeys(columns_without_cells(source, set(dtypes)), object))
         dtypes.update({src: "float64" for src in plan.mapping.values()})
         frame = _open_csv(source, blocksize=blocksize, usecols=plan.columns_read, dtype=dtypes)
         frame = frame[plan.columns_read]
