@@ -16,7 +16,8 @@ of the one process.
 - ``skydrift_validation_failures_total{endpoint}``: requests rejected as bad input (400, 422).
 - ``skydrift_earth_orientation_table_age_days``: days since the last measured (not predicted)
   day of the Earth-orientation table in use (``source`` label: packaged or the file of
-  SKYDRIFT_EOP_FILE). Computed at scrape time from a date read once.
+  SKYDRIFT_EOP_FILE). Computed at scrape time from a date read once; no sample when no
+  table is usable (an unreadable file; /ready then says why).
 
 ``/metrics`` is not part of the OpenAPI document: it is not JSON and belongs to operators.
 
@@ -122,40 +123,14 @@ def count_stars(endpoint: str, n: int) -> None:
 # --- Earth-orientation table age -------------------------------------------------------
 
 
-@functools.lru_cache(maxsize=4)
-def last_measured_mjd(path: str) -> float | None:
-    """MJD of the last measured (not predicted) day in an IERS finals2000A file.
-
-    Reads columns 8-15 (MJD) and 17 (``I`` measured / ``P`` predicted flag of the polar
-    motion) of each line, as laid out in the IERS Rapid Service/Prediction Centre's
-    description of finals2000A (readme.finals2000A). None if the file cannot be read.
-    """
-    last = None
-    try:
-        with open(path, encoding="ascii", errors="replace") as fh:
-            for line in fh:
-                if len(line) > 16 and line[16] == "I":
-                    last = line[7:15]
-        return float(last) if last is not None else None
-    except (OSError, ValueError):
-        return None
-
-
-def eop_table() -> tuple[str, str]:
-    """(path, source label) of the Earth-orientation table the service uses."""
-    settings = current_app.config["SKYDRIFT_SETTINGS"]
-    if getattr(settings, "eop_file", ""):
-        return settings.eop_file, "SKYDRIFT_EOP_FILE"
-    from astropy_iers_data import IERS_A_FILE
-
-    return IERS_A_FILE, "astropy-iers-data"
-
-
 class _EopAgeCollector:
-    """Custom collector: the table's age at scrape time (nothing stored in worker files)."""
+    """Custom collector: the age of the Earth-orientation table in use, at scrape time
+    (nothing stored in worker files). ``in_use`` is what the observed-place blueprint
+    reads: (source label, MJD of the last measured day), or None when no table is usable,
+    and then there is no sample (an age of a table not in use would mislead an alert)."""
 
-    def __init__(self, path: str, source: str):
-        self.path, self.source = path, source
+    def __init__(self, in_use):
+        self.in_use = in_use
 
     def collect(self):
         from prometheus_client.core import GaugeMetricFamily
@@ -163,13 +138,13 @@ class _EopAgeCollector:
         family = GaugeMetricFamily(
             "skydrift_earth_orientation_table_age_days",
             "Days since the last measured (not predicted) day of the Earth-orientation "
-            "table in use.",
+            "table in use; no sample when no table is usable (see /ready).",
             labels=["source"],
         )
-        mjd = last_measured_mjd(self.path)
-        if mjd is not None:
+        if self.in_use is not None:
+            source, mjd = self.in_use
             now_mjd = time.time() / 86400.0 + MJD_UNIX_EPOCH
-            family.add_metric([self.source], now_mjd - mjd)
+            family.add_metric([source], now_mjd - mjd)
         yield family
 
 
@@ -196,7 +171,8 @@ def metrics_view():
         # One process: its own process, platform and garbage-collector figures too.
         for collector in (PROCESS_COLLECTOR, PLATFORM_COLLECTOR, GC_COLLECTOR):
             registry.register(collector)
-    registry.register(_EopAgeCollector(*eop_table()))
+    in_use = current_app.extensions.get("skydrift_eop_in_use")
+    registry.register(_EopAgeCollector(in_use() if in_use is not None else None))
     return Response(generate_latest(registry), mimetype=CONTENT_TYPE_LATEST.split(";")[0])
 
 

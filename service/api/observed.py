@@ -657,6 +657,17 @@ def _eop_ready():
     )
 
 
+def _eop_in_use():
+    """(source label, MJD of the last measured day) of the Earth-orientation table the
+    observed places use; None when none is usable (for the age on /metrics)."""
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    eop, problem = _load_tables(settings.eop_file or None)
+    if problem:
+        return None
+    source = "SKYDRIFT_EOP_FILE" if settings.eop_file else "astropy-iers-data"
+    return source, eop.primary.last_measured_mjd
+
+
 def register(app, api):
     # Earth-orientation and leap-second tables are read once, at start (never downloaded).
     settings = app.config["SKYDRIFT_SETTINGS"]
@@ -664,4 +675,5 @@ def register(app, api):
     load_sites(settings.sites_file or None)
     api.ma_plugin.converter.add_attribute_function(site_field_to_openapi)
     app.extensions["skydrift_ready_checks"]["earth_orientation"] = _eop_ready
+    app.extensions["skydrift_eop_in_use"] = _eop_in_use
     api.register_blueprint(blp)

@@ -181,6 +181,35 @@ def test_operator_eop_file_is_used_and_its_age_reported(tmp_path, settings):
         iers.earth_orientation_table.set(before)
 
 
+def test_unusable_eop_file_gives_no_table_age(tmp_path, settings):
+    """A truncated SKYDRIFT_EOP_FILE (the packaged finals2000A.all cut in the middle of a
+    line) leaves no usable table: /ready says so, and /metrics must not report an age read
+    from the measured lines before the cut (a table not in use)."""
+    import dataclasses
+
+    from astropy.utils import iers
+    from astropy_iers_data import IERS_A_FILE
+
+    with open(IERS_A_FILE) as fh:
+        text = fh.read()
+    path = tmp_path / "finals2000A.all"
+    path.write_text(text[: len(text) // 2 + 40])
+    before = iers.earth_orientation_table.get()
+    try:
+        s = dataclasses.replace(settings, eop_file=str(path))
+        c = create_app({"SKYDRIFT_SETTINGS": s}).test_client()
+        assert not c.get("/ready").json["checks"]["earth_orientation"]["ok"]
+        body = c.get("/metrics").get_data(as_text=True)
+        assert "# TYPE skydrift_earth_orientation_table_age_days gauge" in body
+        assert not [
+            line
+            for line in body.splitlines()
+            if line.startswith("skydrift_earth_orientation_table_age_days")
+        ]
+    finally:
+        iers.earth_orientation_table.set(before)
+
+
 def test_metrics_not_in_the_openapi_document(client):
     assert "/metrics" not in client.get("/openapi.json").json["paths"]
 
