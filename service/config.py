@@ -8,7 +8,7 @@ request.
 from __future__ import annotations
 
 import os
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 
 
 class ConfigError(ValueError):
@@ -181,12 +181,6 @@ class Settings:
             if path and not os.path.isfile(path):
                 raise ConfigError(f"SKYDRIFT_{name.upper()}={path!r}: no such file")
         return settings
-
-    def as_public_dict(self) -> dict:
-        """The settings as shown by the readiness endpoint (no secrets are settings here)."""
-        out = {f.name: getattr(self, f.name) for f in fields(self) if f.name != "auth_tokens"}
-        out["auth_enabled"] = bool(self.auth_tokens)
-        return out
 
 
 #: Shortest bearer token accepted (a random 128-bit token is 22 characters in base64).
