@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as _dt
 import functools
 import operator
 
@@ -9,7 +10,7 @@ import flask_smorest
 import marshmallow as ma
 import numpy as np
 import orjson
-from flask import current_app, g, request
+from flask import current_app, g, has_request_context, request
 from flask_smorest import abort
 
 from ..core import epochs as core_epochs
@@ -280,7 +281,8 @@ EPOCH_DESCRIPTION = (
     "An epoch: a Julian epoch as a number below 10000 or 'J2016.0' (TDB), a Besselian "
     "epoch 'B1950.0', "
     "a Julian date 'JD2451545.0' or modified Julian date 'MJD51544.5' (TDB unless a scale "
-    "follows, e.g. 'JD2460000.5 UTC'), an ISO 8601 UTC time '2026-12-02T03:04:05Z', or 'now'."
+    "follows, e.g. 'JD2460000.5 UTC'), an ISO 8601 UTC time '2026-12-02T03:04:05Z', or "
+    "'now' (one instant for the whole request)."
 )
 
 
@@ -320,6 +322,8 @@ class EpochField(ma.fields.Field):
         try:
             if type(value) is str and value.strip().lower() != "now":
                 return _parse_text(self.parse, value)  # the same text, the same epoch
+            if type(value) is str:
+                return self.parse(value, now=request_now())
             return self.parse(value)
         except core_epochs.EpochError as exc:
             raise ma.ValidationError(str(exc)) from None
@@ -347,6 +351,18 @@ def _refuse_bare_date(value) -> None:
             f"year 9999: write 'J{shown}' for that year, or 'MJD{shown}' or 'JD{shown}' "
             "for a date"
         )
+
+
+def request_now() -> _dt.datetime:
+    """The moment "now" means in the current request: the system clock (UTC) read once per
+    request, so every "now" of one request is the same instant (a catalogue epoch and a
+    target epoch both "now" move the stars by nothing; a range from "now" to "now" has
+    one epoch). Outside a request, the clock."""
+    if not has_request_context():
+        return _dt.datetime.now(_dt.UTC)
+    if "skydrift_now" not in g:
+        g.skydrift_now = _dt.datetime.now(_dt.UTC)
+    return g.skydrift_now
 
 
 @functools.lru_cache(maxsize=8192)

@@ -12,7 +12,14 @@ from ..core import frames as core
 from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
-from .common import Blueprint, EpochField, EpochOutSchema, epochs_out, number_field
+from .common import (
+    Blueprint,
+    EpochField,
+    EpochOutSchema,
+    epochs_out,
+    number_field,
+    request_now,
+)
 from .examples import load_example
 from .observability import count_stars
 from .tables import StarTableField
@@ -111,7 +118,7 @@ class EquinoxField(ma.fields.Field):
             if text.lower() == "of_date":
                 return ("of_date", None)
             try:
-                jyear = core_epochs.parse_epoch(text)
+                jyear = core_epochs.parse_epoch(text, now=request_now())
             except core_epochs.EpochError as exc:
                 raise ma.ValidationError(str(exc)) from None
             return ("jyear", jyear)

@@ -477,6 +477,51 @@ def test_range_of_one_epoch_must_not_drop_its_stop(client):
     assert [e["julian_epoch_tdb"] for e in r.get_json()["epochs"]] == [2100.0]
 
 
+@pytest.fixture
+def ticking_clock(monkeypatch):
+    """A system clock that moves on by one second at every reading (a slow request)."""
+    import datetime
+    import types
+
+    from service.api import common
+    from service.core import epochs
+
+    readings = iter(range(1_000))
+
+    class Ticking(datetime.datetime):
+        @classmethod
+        def now(cls, tz=None):
+            return datetime.datetime(2026, 12, 2, 22, 0, 0, tzinfo=tz) + datetime.timedelta(
+                seconds=next(readings)
+            )
+
+    clock = types.SimpleNamespace(datetime=Ticking, UTC=datetime.UTC)
+    monkeypatch.setattr(epochs, "_dt", clock)
+    monkeypatch.setattr(common, "_dt", clock, raising=False)
+
+
+def test_every_now_of_one_request_is_one_instant(client, ticking_clock):
+    # "now" is one moment: read per field, a range from "now" to "now" with count 1 was
+    # refused as dropping its stop, and a catalogue epoch "now" moved the stars to a
+    # target epoch "now" by the time between two clock readings.
+    body = dict(BASE, stars=[STAR], catalogue_epoch="now")
+    body["target_range"] = {"start": "now", "stop": " NOW ", "count": 1}
+    del body["target_epochs"]
+    r = post(client, body)
+    assert r.status_code == 200, r.get_json()
+    answer = r.get_json()
+    assert answer["epochs"] == [answer["catalogue_epoch"]]
+    body = dict(BASE, stars=[STAR], catalogue_epoch="now", target_epochs=["now", "Now"])
+    answer = post(client, body).get_json()
+    assert answer["epochs"] == [answer["catalogue_epoch"]] * 2
+    # moved by nothing: the input as given (identity at zero time, exact)
+    at = answer["stars"][0]["at_epochs"]
+    assert [(e["ra_deg"], e["dec_deg"]) for e in at] == [(STAR["ra_deg"], STAR["dec_deg"])] * 2
+    # the clock is read again for the next request
+    later = post(client, body).get_json()["catalogue_epoch"]["julian_epoch_tdb"]
+    assert later > answer["catalogue_epoch"]["julian_epoch_tdb"]
+
+
 def test_unknown_field_is_named(client):
     star = dict(STAR, parralax_mas=3.0)
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
