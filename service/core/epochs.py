@@ -508,13 +508,21 @@ def label_epochs(jyear, utc_jd=None) -> EpochLabels:
        release of its leap-second table: ERFA dat, Note 1), or the date lies beyond the
        expiry of the packaged leap-second table (astropy-iers-data), UTC is flagged
        approximate.
+    3. ISO 8601 writes years 0000 to 9999 in four digits and others only in an expanded
+       form agreed between the parties; a date whose calendar year (proleptic Gregorian,
+       after rounding to the millisecond) lies outside 1 to 9999 gets no ISO rendering and
+       is flagged NO_CALENDAR_DATE (ISO 8601-1:2019, calendar dates: four-digit years,
+       expanded years by mutual agreement; from memory).
     """
     jyear = np.atleast_1d(np.asarray(jyear, dtype=float))
     d1, d2 = julian_epoch_to_jd(jyear)
     notes = np.zeros(jyear.shape, dtype=np.int64)
     iso: list = [None] * jyear.size
-    approx_year = jyear.copy()
-    inside = (approx_year > ISO_MIN_YEAR + 0.01) & (approx_year < ISO_MAX_YEAR + 0.99)
+    # A first cut on the Julian epoch, wide enough for every date of calendar years 1 to
+    # 9999 (the Julian epoch runs ahead of the Gregorian year by up to 0.04 years before
+    # year 1 and behind it by up to 0.06 years after 9999); the calendar year of each date
+    # decides below (Note 3).
+    inside = (jyear > ISO_MIN_YEAR - 0.5) & (jyear < ISO_MAX_YEAR + 1.5)
     notes[~inside] |= int(TimeNote.NO_CALENDAR_DATE)
     idx = np.flatnonzero(inside)
     if idx.size:
@@ -527,6 +535,9 @@ def label_epochs(jyear, utc_jd=None) -> EpochLabels:
             dubious = _utc_approximate(u1, u2, status)
         hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
         for k, i in enumerate(idx):
+            if not ISO_MIN_YEAR <= int(iy[k]) <= ISO_MAX_YEAR:
+                notes[i] |= int(TimeNote.NO_CALENDAR_DATE)
+                continue
             h, mi, s, ms = (int(x) for x in hmsf[k])
             iso[i] = (
                 f"{int(iy[k]):04d}-{int(im[k]):02d}-{int(iday[k]):02d}T{h:02d}:{mi:02d}:{s:02d}.{ms:03d}Z"

@@ -435,3 +435,39 @@ def test_labels_from_utc_dates_render_them_as_erfa_d2dtf_does():
     # 2045 lies beyond the packaged leap-second table: approximate, as for Julian epochs.
     assert list(labels.notes) == [0, 0, TimeNote.UTC_APPROXIMATE]
     assert labels.notes[2] == label_epochs([got[2].julian_epoch_tdb]).notes[0]
+
+
+@pytest.mark.parametrize(
+    "jyear, iso",
+    [
+        (1.0, None),  # 0000-12-17 (proleptic Gregorian, ERFA d2dtf): year 0
+        (1.02, None),  # 0000-12-24: year 0, though past the Julian epoch 1.01
+        (1.05, "0001-01-04T00:17:27.815Z"),
+        (9999.5, "9999-08-31T20:58:50.815Z"),
+        (9999.9, None),  # 10000-01-24: five digits, no longer ISO 8601's basic year
+        (10000.5, None),
+    ],
+)
+def test_iso_text_only_for_calendar_years_1_to_9999(jyear, iso):
+    # The dates: astropy Time(jyear, format="jyear", scale="tdb").utc (run here) agrees to
+    # the millisecond where it renders them; the answer described "null outside years 1 to
+    # 9999" but wrote "0000-12-24T..." and "10000-01-24T...".
+    labels = label_epochs([jyear])
+    assert labels.iso_utc[0] == iso
+    assert bool(labels.notes[0] & TimeNote.NO_CALENDAR_DATE) == (iso is None)
+    if iso is not None:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", erfa.ErfaWarning)  # dubious year
+            want = Time(jyear, format="jyear", scale="tdb").utc
+            ymd, hms = iso[:-1].split("T")
+            h, mi, sec = hms.split(":")
+            got = erfa.dtf2d("UTC", *map(int, ymd.split("-")), int(h), int(mi), float(sec))
+        assert abs((got[0] - want.jd1) + (got[1] - want.jd2)) * 86400.0 <= 0.5e-3
+
+
+def test_iso_rounding_into_year_10000_gives_no_text():
+    # 9999-12-31T23:59:59.9996 rounds to the millisecond into the year 10000.
+    t = parse_instant("9999-12-31T23:59:59.9996Z")
+    labels = label_epochs([t.julian_epoch_tdb], ([t.utc_jd1], [t.utc_jd2]))
+    assert labels.iso_utc == [None]
+    assert labels.notes[0] & TimeNote.NO_CALENDAR_DATE
