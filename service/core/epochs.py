@@ -155,8 +155,9 @@ def julian_epoch_to_besselian_epoch(jyear):
 def _to_tdb_jd(jd1, jd2, scale: str):
     """Two-part JD on ``scale`` to two-part JD on TDB (scalars or arrays).
 
-    Returns ``(jd1, jd2, notes)``: :class:`TimeNote` bits, UTC_APPROXIMATE where ERFA utctai
-    reports a dubious year. Raises :class:`EpochError` where UTC is undefined (ERFA utctai
+    Returns ``(jd1, jd2, notes)``: :class:`TimeNote` bits, UTC_APPROXIMATE where a UTC date is
+    approximate (ERFA utctai's dubious year, before 1960, beyond the leap-second table).
+    Raises :class:`EpochError` where UTC is undefined (ERFA utctai
     status -1: a date that no calendar routine of ERFA accepts).
 
     The ERFA ufuncs are called directly (status per element instead of Python warnings):
@@ -166,13 +167,14 @@ def _to_tdb_jd(jd1, jd2, scale: str):
     scale = scale.upper()
     notes = 0
     if scale == "UTC":
+        u1, u2 = jd1, jd2
         jd1, jd2, status = erfa_ufunc.utctai(jd1, jd2)
         if np.any(status < 0):
             raise EpochError(
                 "UTC is not defined for that date (ERFA utctai: unacceptable date); give "
                 "dates that far from the present on the TT or TDB scale"
             )
-        if np.any(status > 0):
+        if np.any(_utc_approximate(u1, u2, status)):
             notes |= TimeNote.UTC_APPROXIMATE
         scale = "TAI"
     if scale == "TAI":
@@ -201,11 +203,19 @@ def tdb_jd_to_utc_jd(jd1, jd2):
     return u1, u2, _utc_approximate(u1, u2, status)
 
 
+#: 1960 January 1, 0h UTC as an MJD: the first entry of ERFA's TAI-UTC table (ERFA dat);
+#: UTC as defined today does not reach before it.
+UTC_START_MJD = 36934.0
+
+
 def _utc_approximate(u1, u2, status):
-    """Where a UTC date is approximate: ERFA's dubious-year status (1), or a date beyond the
-    expiry of the packaged leap-second table, which may miss a leap second added since."""
-    beyond = (u1 - MJD_ZERO_JD) + u2 > leap_second_expiry_mjd()
-    return (np.asarray(status) == 1) | beyond
+    """Where a UTC date is approximate: ERFA's dubious-year status (1), a date before 1960
+    (ERFA reports status 0 for 31 December 1959, a day it stretches by the 0.94 s step of
+    TAI-UTC to its first table entry), or a date beyond the expiry of the packaged
+    leap-second table, which may miss a leap second added since."""
+    mjd = (u1 - MJD_ZERO_JD) + u2
+    outside = (mjd < UTC_START_MJD) | (mjd > leap_second_expiry_mjd())
+    return (np.asarray(status) == 1) | outside
 
 
 @dataclass(frozen=True)
@@ -505,9 +515,9 @@ def label_epochs(jyear, utc_jd=None) -> EpochLabels:
     1. TDB -> TT with ERFA dtdb at the geocentre, TT -> TAI -> UTC with ERFA tttai and
        taiutc (leap seconds from ERFA's built-in table); ERFA d2dtf gives the calendar form.
     2. Where ERFA reports a dubious year (before 1960, or more than five years after the
-       release of its leap-second table: ERFA dat, Note 1), or the date lies beyond the
-       expiry of the packaged leap-second table (astropy-iers-data), UTC is flagged
-       approximate.
+       release of its leap-second table: ERFA dat, Note 1), the date lies before 1960 (ERFA
+       passes 31 December 1959), or beyond the expiry of the packaged leap-second table
+       (astropy-iers-data), UTC is flagged approximate.
     3. ISO 8601 writes years 0000 to 9999 in four digits and others only in an expanded
        form agreed between the parties; a date whose calendar year (proleptic Gregorian,
        after rounding to the millisecond) lies outside 1 to 9999 gets no ISO rendering and

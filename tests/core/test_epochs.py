@@ -437,6 +437,26 @@ def test_labels_from_utc_dates_render_them_as_erfa_d2dtf_does():
     assert labels.notes[2] == label_epochs([got[2].julian_epoch_tdb]).notes[0]
 
 
+def test_utc_of_31_december_1959_is_flagged_approximate():
+    # UTC as defined today begins on 1960 January 1 (the first entry of ERFA dat's TAI-UTC
+    # table); ERFA dat, run here, calls 1959-12-31 a dubious year ...
+    assert erfa.ufunc.dat(1959, 12, 31, 0.5)[1] == 1
+    # ... but ERFA dtf2d and taiutc pass that day with status 0, stretched by the 0.94 s step
+    # to TAI-UTC on 1960 January 1: astropy (run here) renders JD 2436934.0 UTC, read back
+    # from TDB, as 12:00:00.472. The service flagged neither the reading nor the label.
+    assert Time(2436934.0, format="jd", scale="utc").tdb.utc.isot == "1959-12-31T12:00:00.472"
+    for text in ("1959-12-31T12:00:00Z", "JD2436934.0 UTC", "1960-01-01T05:30:00+06:00"):
+        _, notes = parse_epoch_with_notes(text)
+        assert notes & TimeNote.UTC_APPROXIMATE, text
+        t = parse_instant(text)
+        labels = label_epochs([t.julian_epoch_tdb], ([t.utc_jd1], [t.utc_jd2]))
+        assert labels.notes[0] & TimeNote.UTC_APPROXIMATE, text
+        assert label_epochs([t.julian_epoch_tdb]).notes[0] & TimeNote.UTC_APPROXIMATE, text
+    # the first day of the table is not approximate
+    assert parse_epoch_with_notes("1960-01-01T00:00:00Z")[1] == 0
+    assert label_epochs([parse_epoch("1960-01-01T00:00:01Z")]).notes[0] == 0
+
+
 @pytest.mark.parametrize(
     "jyear, iso",
     [
