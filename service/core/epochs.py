@@ -303,6 +303,11 @@ def _read(value, now: _dt.datetime | None) -> _Reading:
         h = int(m.group("h") or 0)
         mi = int(m.group("mi") or 0)
         s = float(m.group("s") or 0.0)
+        whole_s = int((m.group("s") or "0")[:2])
+        if s >= whole_s + 1:
+            # Many fraction digits (RFC 3339 5.6: any number) round up to the next whole
+            # second as one double ("59.99999999999999999" -> 60.0): keep the second written.
+            s = float(np.nextafter(whole_s + 1.0, 0.0))
         tz = m.group("tz")
         offset_min = 0
         if tz and tz.upper() != "Z":

@@ -491,3 +491,24 @@ def test_iso_rounding_into_year_10000_gives_no_text():
     labels = label_epochs([t.julian_epoch_tdb], ([t.utc_jd1], [t.utc_jd2]))
     assert labels.iso_utc == [None]
     assert labels.notes[0] & TimeNote.NO_CALENDAR_DATE
+
+
+@pytest.mark.parametrize(
+    "text, next_second",
+    [
+        ("2026-01-01T12:00:59.99999999999999999Z", (2026, 1, 1, 12, 1, 0.0)),
+        ("2016-12-31T23:59:60.99999999999999999Z", (2017, 1, 1, 0, 0, 0.0)),  # leap second
+        ("2026-01-01T18:29:59.999999999999999999999+05:30", (2026, 1, 1, 13, 0, 0.0)),
+    ],
+)
+def test_many_fraction_digits_keep_their_second(text, next_second):
+    # RFC 3339, 5.6: time-secfrac = "." 1*DIGIT, any number of digits. As one double,
+    # "59.99999999999999999" is 60.0, and the second was refused as 60 (or 61); it is the
+    # instant 1e-17 s before the next second: ERFA dtf2d of that second (run here), to 1 ns.
+    got = parse_instant(text)
+    want = erfa.dtf2d("UTC", *next_second)
+    assert abs((got.utc_jd1 - want[0]) + (got.utc_jd2 - want[1])) * 86400.0 < 1e-9
+    assert abs(parse_epoch(text) - got.julian_epoch_tdb) == 0.0
+    for bad in ("2026-01-01T12:00:60Z", "2016-12-31T23:59:61Z", "2026-01-01T12:00:60.0Z"):
+        with pytest.raises(EpochError, match="second"):
+            parse_epoch(bad)
