@@ -388,9 +388,18 @@ def epoch_field_to_openapi(self, field, **kwargs) -> dict:
 
 class EpochOutSchema(ma.Schema):
     julian_epoch_tdb = ma.fields.Float(
-        metadata={"description": "Julian epoch on the TDB scale, years."}
+        metadata={
+            "description": "Julian epoch on the TDB scale, years. One double: it resolves "
+            "2**-42 years (7.2 microseconds) near the present."
+        }
     )
-    jd_tdb = ma.fields.Float(metadata={"description": "Julian date on the TDB scale, days."})
+    jd_tdb = ma.fields.Float(
+        metadata={
+            "description": "Julian date on the TDB scale, days. One double: it resolves "
+            "2**-31 days (40 microseconds) near the present, coarser than "
+            "julian_epoch_tdb; read the epoch back from julian_epoch_tdb."
+        }
+    )
     iso_utc = ma.fields.String(
         allow_none=True,
         metadata={

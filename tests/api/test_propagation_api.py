@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 
 from service.core import propagation as core
+from service.core.epochs import parse_epoch
 
 URL = "/v1/propagation"
 STAR = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 100.0, "pm_dec_mas_yr": -50.0}
@@ -720,3 +721,26 @@ def test_radial_velocity_without_its_error_is_flagged(client):
         added = math.sqrt(u_with[name] ** 2 - u_without[name] ** 2)
         assert added == pytest.approx(reference, rel=1e-3), name
         assert added > 2 * u_without[name]  # here the part left out is most of the error
+
+
+def test_answered_epoch_resolutions_are_stated(client):
+    # Read back as 'JD...', the answered jd_tdb misses by up to its last place, 2**-31 day
+    # (40 us: half of it rounding to the double near JD 2.46e6, IEEE 754, half the
+    # shortest decimal text of that double); julian_epoch_tdb is the epoch as computed, to
+    # 2**-43 years (3.6 us). The answer's description said neither.
+    targets = [f"2026-06-11T17:17:{s:09.6f}Z" for s in np.linspace(0.0, 59.0, 40)]
+    body = dict(BASE, stars=[STAR], target_epochs=targets)
+    epochs = post(client, body).get_json()["epochs"]
+    year_s = 365.25 * 86400.0
+    worst_jd = worst_jyear = 0.0
+    for text, e in zip(targets, epochs, strict=True):
+        exact = parse_epoch(text)
+        assert abs(e["julian_epoch_tdb"] - exact) * year_s <= 2.0**-43 * year_s
+        back = parse_epoch(f"JD{e['jd_tdb']!r}")
+        worst_jd = max(worst_jd, abs(back - exact) * year_s)
+        worst_jyear = max(worst_jyear, abs(parse_epoch(repr(e["julian_epoch_tdb"])) - exact))
+    assert 2.0**-33 * 86400.0 < worst_jd <= 2.0**-31 * 86400.0 + 2.0**-43 * year_s
+    assert worst_jyear == 0.0
+    doc = client.get("/openapi.json").get_json()["components"]["schemas"]["EpochOut"]
+    assert "40 microseconds" in doc["properties"]["jd_tdb"]["description"]
+    assert "7.2 microseconds" in doc["properties"]["julian_epoch_tdb"]["description"]
