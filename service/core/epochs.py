@@ -478,6 +478,46 @@ def epoch_range(start: float, stop: float, count: int) -> np.ndarray:
     return np.linspace(start, stop, count)
 
 
+#: 1972 January 2, 0h UTC as a JD: no day from here on ends with a step of TAI-UTC other
+#: than a whole leap second (ERFA dat's table).
+_LAST_SMALL_STEP_END_JD = 2441318.5
+
+
+def _render_small_steps(u1, u2, iy, im, iday, hmsf) -> None:
+    """Correct, in place, ERFA d2dtf's calendar form (3 decimals) of UTC dates on the days
+    that end with a step of TAI-UTC smaller than half a second (1961 to 1971: -0.05 s to
+    +0.107758 s).
+
+    ERFA dtf2d and utctai give such a day its 86,400 s plus the step, but d2dtf scales the
+    fraction of a day by the step only where it exceeds 0.5 s (a leap second), so it renders
+    UTC 12:00:00 on 1971 December 31 as 11:59:59.946 and 23:59:60.05 as 23:59:59.942.
+    Here the time of day is the fraction of the day's own length, and the last tenth of a
+    second of a day with a positive step is 23:59:60.xxx, as ERFA writes a leap second.
+    """
+    early = np.flatnonzero(u1 + u2 < _LAST_SMALL_STEP_END_JD)
+    if not early.size:
+        return
+    a1, a2 = u1[early], u2[early]
+    y0, m0, d0, fd, _ = erfa_ufunc.jd2cal(a1, a2)
+    dat0, _ = erfa_ufunc.dat(y0, m0, d0, 0.0)
+    dat12, _ = erfa_ufunc.dat(y0, m0, d0, 0.5)
+    y1, m1, d1, _, _ = erfa_ufunc.jd2cal(a1 + 1.5, a2 - fd)
+    dat24, _ = erfa_ufunc.dat(y1, m1, d1, 0.0)
+    step = dat24 - (2.0 * dat12 - dat0)  # as ERFA d2dtf separates it, seconds
+    for j in np.flatnonzero((step != 0.0) & (np.abs(step) <= 0.5)):
+        k = early[j]
+        ms = int(np.floor(fd[j] * (DAY_S + step[j]) * 1000.0 + 0.5))
+        if ms < 86_400_000:
+            hmsf[k] = (ms // 3_600_000, ms // 60_000 % 60, ms // 1000 % 60, ms % 1000)
+            iy[k], im[k], iday[k] = y0[j], m0[j], d0[j]
+        elif ms < 86_400_000 + int(np.floor(step[j] * 1000.0 + 0.5)):
+            hmsf[k] = (23, 59, 60, ms - 86_400_000)
+            iy[k], im[k], iday[k] = y0[j], m0[j], d0[j]
+        else:
+            hmsf[k] = (0, 0, 0, 0)
+            iy[k], im[k], iday[k] = y1[j], m1[j], d1[j]
+
+
 @dataclass(frozen=True)
 class EpochLabels:
     """Human-readable forms of Julian epochs (TDB).
@@ -548,7 +588,9 @@ def label_epochs(jyear, utc_jd=None) -> EpochLabels:
         iy, im, iday, ihmsf, status = erfa_ufunc.d2dtf("UTC", 3, u1, u2)
         if utc_jd is not None:
             dubious = _utc_approximate(u1, u2, status)
-        hmsf = np.asarray(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
+        hmsf = np.array(ihmsf.view((np.int32, 4)) if ihmsf.dtype.names else ihmsf)
+        iy, im, iday = np.array(iy), np.array(im), np.array(iday)
+        _render_small_steps(u1, u2, iy, im, iday, hmsf)
         for k, i in enumerate(idx):
             if not ISO_MIN_YEAR <= int(iy[k]) <= ISO_MAX_YEAR:
                 notes[i] |= int(TimeNote.NO_CALENDAR_DATE)

@@ -512,3 +512,40 @@ def test_many_fraction_digits_keep_their_second(text, next_second):
     for bad in ("2026-01-01T12:00:60Z", "2016-12-31T23:59:61Z", "2026-01-01T12:00:60.0Z"):
         with pytest.raises(EpochError, match="second"):
             parse_epoch(bad)
+
+
+@pytest.mark.parametrize(
+    "text",
+    [
+        "1971-12-31T12:00:00.000Z",  # the day ends with a +0.107758 s step of TAI-UTC
+        "1971-12-31T23:59:59.000Z",
+        "1971-12-31T23:59:60.050Z",  # inside that step: 23:59:60.0 to 60.107758
+        "1963-10-31T23:59:60.050Z",  # +0.1 s step
+        "1968-01-31T12:00:00.000Z",  # -0.1 s step
+        "1968-01-31T23:59:59.899Z",
+        "1971-12-31T00:00:00.000Z",
+        "1972-01-01T00:00:00.000Z",
+    ],
+)
+def test_iso_text_on_days_with_a_small_step_of_tai_utc(text):
+    # Such days last 86,400 s plus the step (ERFA dtf2d, utctai); ERFA d2dtf renders them as
+    # 86,400 s days (it scales only for steps above 0.5 s), and wrote 12:00:00 on 1971
+    # December 31 as 11:59:59.946 (astropy's Time(...).isot, run on ERFA, does the same).
+    t = parse_instant(text)
+    for labels in (
+        label_epochs([t.julian_epoch_tdb], ([t.utc_jd1], [t.utc_jd2])),
+        label_epochs([t.julian_epoch_tdb]),
+    ):
+        assert labels.iso_utc == [text]
+        assert labels.notes[0] == 0
+
+
+def test_utc_of_1971_december_31_against_the_published_tai_utc():
+    # USNO tai-utc.dat (from memory): from 1968 Feb 1, TAI-UTC = 4.2131700 s +
+    # (MJD - 39126) x 0.002592 s; from 1972 Jan 1, 10.0 s. At 12:00 UTC on 1971 Dec 31
+    # (MJD 41316.5) TAI is therefore 12:00:09.890946, to 1 us.
+    t = parse_instant("1971-12-31T12:00:00Z")
+    tai = erfa.utctai(t.utc_jd1, t.utc_jd2)
+    tai_s = ((tai[0] - 2441316.5) + tai[1]) * 86400.0
+    assert abs(tai_s - (43200.0 + 4.21317 + (41316.5 - 39126.0) * 0.002592)) < 1e-6
+    assert label_epochs([t.julian_epoch_tdb]).iso_utc == ["1971-12-31T12:00:00.000Z"]
