@@ -549,3 +549,29 @@ def test_utc_of_1971_december_31_against_the_published_tai_utc():
     tai_s = ((tai[0] - 2441316.5) + tai[1]) * 86400.0
     assert abs(tai_s - (43200.0 + 4.21317 + (41316.5 - 39126.0) * 0.002592)) < 1e-6
     assert label_epochs([t.julian_epoch_tdb]).iso_utc == ["1971-12-31T12:00:00.000Z"]
+
+
+def test_iso_text_round_trips_on_every_day_of_1960_to_1972():
+    # Every day from 1960 January 1 to 1972 February 4 (ERFA dat's rubber-second era and
+    # the first month after it), at one random millisecond and at 23:59:59.950: read as
+    # ISO UTC and answered again (from the UTC date and through the Julian epoch, TDB), the
+    # text comes back unchanged. The old rendering failed on 11 of those days.
+    rng = np.random.default_rng(1960)
+    texts = []
+    for mjd in range(36934, 41352):
+        y, m, d, _ = erfa.jd2cal(2400000.5, mjd)
+        for ms in (int(rng.integers(0, 86_400_000)), 86_399_950):
+            h, mi, s, f = ms // 3_600_000, ms // 60_000 % 60, ms // 1000 % 60, ms % 1000
+            texts.append(f"{y:04d}-{m:02d}-{d:02d}T{h:02d}:{mi:02d}:{s:02d}.{f:03d}Z")
+    instants = []
+    for text in texts:
+        try:
+            instants.append((text, parse_instant(text)))
+        except EpochError:  # 23:59:59.950 on a day shortened by 0.05 or 0.1 s
+            assert text.endswith("T23:59:59.950Z")
+    assert len(instants) >= len(texts) - 4
+    jyear = np.array([t.julian_epoch_tdb for _, t in instants])
+    utc = ([t.utc_jd1 for _, t in instants], [t.utc_jd2 for _, t in instants])
+    want = [text for text, _ in instants]
+    assert label_epochs(jyear, utc).iso_utc == want
+    assert label_epochs(jyear).iso_utc == want
