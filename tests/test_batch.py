@@ -1074,3 +1074,19 @@ def test_csv_kept_column_without_cells_in_its_first_rows_is_copied(tmp_path):
     out = read_output(tmp_path / "out")
     got = [None if v is None or v != v else v for v in out["name"]]  # NaN or None: unknown
     assert got == expected
+
+
+def test_now_is_one_instant_in_a_run():
+    """Every epoch option given as "now" in one run is the same instant (as in one API
+    request), so that --catalogue-epoch now --target-epoch now moves the stars by nothing;
+    and it is the clock's reading (astropy Time.now() as the reference, to 60 s)."""
+    import time
+
+    from astropy.time import Time
+
+    from service.batch.spec import parse_epoch_option
+
+    first = parse_epoch_option("now", "--catalogue-epoch")
+    time.sleep(0.01)  # more than the 7.2 us a Julian epoch resolves
+    assert parse_epoch_option(" NOW ", "--target-epoch") == first
+    assert abs(first - Time.now().tdb.jyear) < 60 / (365.25 * 86400)

@@ -6,7 +6,9 @@ loaded without the optional extra.
 
 from __future__ import annotations
 
+import datetime as _dt
 import enum
+import functools
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
@@ -205,11 +207,21 @@ CATALOGUE_EPOCH_FIELD = InputField(
 )
 
 
+@functools.cache
+def run_now() -> _dt.datetime:
+    """What "now" means in a batch run: the clock read once, at the first "now" of the run,
+    so that every option given as "now" is the same instant (as in one API request)."""
+    return _dt.datetime.now(_dt.UTC)
+
+
 def parse_epoch_option(text: str | None, option: str) -> float | None:
-    """An epoch option as a Julian epoch (TDB), or None if not given."""
+    """An epoch option as a Julian epoch (TDB), or None if not given ("now": the run's one
+    instant, :func:`run_now`)."""
     if text is None:
         return None
     try:
+        if text.strip().lower() == "now":
+            return parse_epoch(text, now=run_now())
         return parse_epoch(text)
     except EpochError as exc:
         raise BatchInputError(f"{option}: {exc}") from None
