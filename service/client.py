@@ -12,7 +12,9 @@ What it does for you:
   connections, waiting as long as a ``Retry-After`` header asks (capped); every endpoint is
   a pure computation, so repeating a request is safe;
 * large inputs split into requests of ``batch_size`` stars, the answers joined in order (star
-  ``index`` values count from the start of your input, as if sent at once);
+  ``index`` values count from the start of your input, as if sent at once; an epoch given as
+  "now" is then read once from this machine's clock, so that every request means one
+  instant);
 * errors raised as :class:`SkydriftError` with the problem details (status, title, detail
   and the list of offending fields).
 
@@ -453,6 +455,8 @@ class Client:
         stars = body[table]
         n = _count(stars)
         size = batch_size or self.batch_size
+        if n > size:  # several requests: one "now" for all (this machine's clock)
+            body = pin_now(body, _now_text())
         parts, offsets = [], []
         for start in range(0, max(n, 1), size):
             stop = min(n, start + size)
@@ -527,9 +531,11 @@ class Client:
         ``csv_text`` itself.
         """
         header, rows, lines = _read_csv(csv_text)
+        size = batch_size or self.batch_size
+        if len(rows) > size:  # several requests: one "now" for all (this machine's clock)
+            params = pin_now(params or {}, _now_text())
         query = _query(params or {})
         pieces: list[tuple[list[str], list[list[str]]]] = []
-        size = batch_size or self.batch_size
         for start in range(0, max(len(rows), 1), size):
             chunk = rows[start : start + size]
             buf = io.StringIO()
@@ -1104,6 +1110,43 @@ def arrow_answer_members(table) -> dict:
     from an Arrow answer's schema metadata."""
     meta = table.schema.metadata or {}
     return json.loads(meta.get(ARROW_ANSWER_KEY, b"{}"))
+
+
+#: Request fields whose values are epochs (or lists of them), and the objects that hold
+#: such fields (a range, a frame with its equinox): where "now" may appear.
+_EPOCH_KEYS = frozenset(
+    {"catalogue_epoch", "target_epochs", "instants", "epochs", "epoch", "start", "stop", "end",
+     "equinox"}
+)  # fmt: skip
+_EPOCH_HOLDERS = frozenset({"target_range", "frame", "from_frame", "to_frame"})
+
+
+def _is_now(value) -> bool:
+    return isinstance(value, str) and value.strip().lower() == "now"
+
+
+def pin_now(fields: Mapping[str, Any], now: str) -> dict:
+    """The request fields with every epoch given as "now" replaced by ``now`` (ISO UTC
+    text): a call sent as several requests must mean one instant by "now", not one per
+    request (each request's "now" is its own clock reading)."""
+    out = {}
+    for key, value in fields.items():
+        if key in _EPOCH_KEYS:
+            if _is_now(value):
+                value = now
+            elif isinstance(value, list | tuple):
+                value = [now if _is_now(v) else v for v in value]
+        elif key in _EPOCH_HOLDERS and isinstance(value, Mapping):
+            value = pin_now(value, now)
+        out[key] = value
+    return out
+
+
+def _now_text() -> str:
+    """This machine's clock, UTC, as ISO 8601 text to the microsecond."""
+    import datetime as dt
+
+    return dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
 def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:

@@ -1,6 +1,8 @@
 """The Python client against the real service (gunicorn on loopback) and a scripted server."""
 
+import csv
 import email.utils
+import io
 import json
 import subprocess
 import sys
@@ -108,6 +110,25 @@ def test_propagate_csv_batched_equals_whole(live_service):
     assert parts == whole
     assert whole.splitlines()[0].startswith("index,id,epoch_julian_tdb,epoch_iso_utc,ra_deg")
     assert len(whole.splitlines()) == 1 + 30 * 2
+
+
+def test_now_is_one_instant_across_batches(live_service, demo_catalogue):
+    """A call sent as several requests means one instant by "now": each request's "now" was
+    its own clock reading, so 30 stars in batches of 7 were moved to five epochs a few ms
+    apart, and the joined JSON answer named the first batch's epoch for all of them. The
+    reference for every star: the same star sent alone to the epoch the answer names."""
+    text = (DEMO / "catalogue.csv").read_text()
+    sky = Client(live_service, batch_size=7)
+    out = sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=["now", "J2100"])
+    rows = list(csv.DictReader(io.StringIO(out)))
+    assert len({r["epoch_julian_tdb"] for r in rows}) == 2  # "now" and J2100
+    stars = demo_catalogue["stars"]
+    answer = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs="now")
+    (epoch,) = answer["epochs"]
+    alone = Client(live_service).propagate(
+        stars[-1:], catalogue_epoch="J2016.0", target_epochs=[epoch["julian_epoch_tdb"]]
+    )
+    assert answer["stars"][-1]["at_epochs"] == alone["stars"][0]["at_epochs"]
 
 
 def test_csv_error_lines_refer_to_the_callers_text(live_service):
