@@ -151,17 +151,23 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
         "requestBody": {
             "content": {
                 csvio.CSV_MIMETYPE: {
-                    "schema": {"type": "string"},
-                    "description": "The star table as CSV: header row of field names "
-                    f"(the members of one '{table}' record, units in the names), one star "
-                    "per line, empty cell = null. Other fields as query parameters.",
+                    "schema": {
+                        "type": "string",
+                        "description": "The star table as CSV: header row of field names "
+                        f"(the members of one '{table}' record, units in the names), one "
+                        "star per line, empty cell = null. Other fields as query parameters.",
+                    },
                 },
                 arrowio.ARROW_MIMETYPE: {
-                    "schema": {"type": "string", "contentMediaType": arrowio.ARROW_MIMETYPE},
-                    "description": "The star table as an Apache Arrow IPC stream: one column "
-                    f"per member of a '{table}' record under the same names (numbers: any "
-                    "integer or floating-point type; id: string or integer), Arrow null = "
-                    "unknown; NaN is refused. Other fields as query parameters.",
+                    "schema": {
+                        "type": "string",
+                        "contentMediaType": arrowio.ARROW_MIMETYPE,
+                        "description": "The star table as an Apache Arrow IPC stream: one "
+                        f"column per member of a '{table}' record under the same names "
+                        "(numbers: any integer or floating-point type; id: string or "
+                        "integer), Arrow null = unknown; NaN is refused. Other fields as "
+                        "query parameters.",
+                    },
                 },
             }
         },
@@ -169,19 +175,26 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
             200: {
                 "content": {
                     csvio.CSV_MIMETYPE: {
-                        "schema": {"type": "string"},
-                        "description": "With Accept: text/csv. One row per star and epoch: "
-                        + ", ".join(csvio.LEADING_COLUMNS)
-                        + ", the quantities under their JSON names, flags (';'-separated) "
-                        "last; empty cell = null.",
+                        "schema": {
+                            "type": "string",
+                            "description": "With Accept: text/csv. One row per star and "
+                            "epoch: "
+                            + ", ".join(csvio.LEADING_COLUMNS)
+                            + ", the quantities under their JSON names, flags (';'-separated) "
+                            "last; empty cell = null.",
+                        },
                     },
                     arrowio.ARROW_MIMETYPE: {
-                        "schema": {"type": "string", "contentMediaType": arrowio.ARROW_MIMETYPE},
-                        "description": "With Accept: application/vnd.apache.arrow.stream. "
-                        "An Arrow IPC stream with the rows and columns of the text/csv answer "
-                        "(flags: ';'-joined, dictionary-encoded), Arrow null = unknown; units "
-                        "in each field's metadata ('unit'), the answer's other members as "
-                        "JSON in the schema metadata key 'skydrift.answer'.",
+                        "schema": {
+                            "type": "string",
+                            "contentMediaType": arrowio.ARROW_MIMETYPE,
+                            "description": "With Accept: application/vnd.apache.arrow.stream. "
+                            "An Arrow IPC stream with the rows and columns of the text/csv "
+                            "answer (flags: ';'-joined, dictionary-encoded), Arrow null = "
+                            "unknown; units in each field's metadata ('unit'), the answer's "
+                            "other members as JSON in the schema metadata key "
+                            "'skydrift.answer'.",
+                        },
                     },
                 }
             }
