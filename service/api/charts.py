@@ -169,6 +169,7 @@ _IMAGE_RESPONSES = {
 
 
 @blp.route("/track", methods=["POST"])
+@blp.doc(operationId="chartTracks")
 @blp.arguments(
     TrackChartRequestSchema(), example=load_example("chart_track_request.json"), csv_answer=False
 )
@@ -221,6 +222,7 @@ def track(args):
 
 
 @blp.route("/field", methods=["POST"])
+@blp.doc(operationId="chartStarField")
 @blp.arguments(
     FieldChartRequestSchema(), example=load_example("chart_field_request.json"), csv_answer=False
 )

@@ -545,6 +545,7 @@ def _membership_body(args, with_margin: bool):
 
 
 @blp.route("", methods=["GET"])
+@blp.doc(operationId="listConstellations")
 @blp.response(200, ConstellationListSchema)
 def list_constellations():
     """List the 88 IAU constellations.
@@ -565,6 +566,7 @@ def list_constellations():
 
 
 @blp.route("/lookup", methods=["POST"])
+@blp.doc(operationId="lookUpConstellations")
 @blp.arguments(LookupRequestSchema(), example=load_example("constellations_lookup_request.json"))
 @blp.response(200, LookupResponseSchema)
 def lookup(args):
@@ -580,6 +582,7 @@ def lookup(args):
 
 
 @blp.route("/margins", methods=["POST"])
+@blp.doc(operationId="findConstellationMargins")
 @blp.arguments(LookupRequestSchema(), example=load_example("constellations_lookup_request.json"))
 @blp.response(200, LookupResponseSchema)
 def margins(args):
@@ -593,6 +596,7 @@ def margins(args):
 
 
 @blp.route("/crossings", methods=["POST"])
+@blp.doc(operationId="findBoundaryCrossings")
 @blp.arguments(
     CrossingsRequestSchema(), example=load_example("constellations_crossings_request.json")
 )
@@ -747,6 +751,7 @@ def _geojson(body):
         }
     ],
 )
+@blp.doc(operationId="getConstellationOutline")
 @blp.arguments(OutlineQuerySchema(), location="query")
 @blp.response(200, GeoJsonFeatureSchema, content_type="application/geo+json")
 def outline(args, abbreviation):
@@ -770,6 +775,7 @@ def outline(args, abbreviation):
 
 
 @blp.route("/outlines", methods=["GET"])
+@blp.doc(operationId="getConstellationOutlines")
 @blp.arguments(OutlineQuerySchema(), location="query")
 @blp.response(200, GeoJsonCollectionSchema, content_type="application/geo+json")
 def outlines(args):

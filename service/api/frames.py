@@ -229,6 +229,7 @@ def _o(x):
 
 
 @blp.route("/frames", methods=["POST"])
+@blp.doc(operationId="convertFrames")
 @blp.arguments(FramesRequestSchema(), example=load_example("frames_request.json"))
 @blp.response(200, FramesResponseSchema)
 def convert(args):

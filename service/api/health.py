@@ -27,6 +27,7 @@ class ReadySchema(ma.Schema):
 
 
 @blp.route("/health")
+@blp.doc(operationId="getHealth")
 @blp.response(200, HealthSchema)
 def health():
     """Process alive.
@@ -37,6 +38,7 @@ def health():
 
 
 @blp.route("/ready")
+@blp.doc(operationId="getReadiness")
 @blp.response(200, ReadySchema)
 @blp.alt_response(503, schema=ReadySchema, description="A table or setting is not usable.")
 def ready():

@@ -378,6 +378,7 @@ def _core_error(exc: core.ObservedInputError):
 
 
 @blp.route("/observed", methods=["POST"])
+@blp.doc(operationId="computeObservedPlaces")
 @blp.arguments(ObservedRequestSchema(), example=load_example("observed_request.json"))
 @blp.response(200, ObservedResponseSchema)
 def observed(args):

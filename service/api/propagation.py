@@ -393,6 +393,7 @@ def _num_or_none(x):
 
 
 @blp.route("/propagation", methods=["POST"])
+@blp.doc(operationId="propagateStars")
 @blp.arguments(PropagationRequestSchema(), example=load_example("propagation_request.json"))
 @blp.response(200, PropagationResponseSchema)
 def propagate(args):

@@ -522,6 +522,7 @@ _OBSERVABLES_WARNING_TEXTS = {
 
 
 @blp.route("/velocity", methods=["POST"])
+@blp.doc(operationId="computeVelocities")
 @blp.arguments(VelocityRequestSchema(), example=load_example("velocity_request.json"))
 @blp.response(200, VelocityResponseSchema)
 def velocity(args):
@@ -762,6 +763,7 @@ class ObservablesResponseSchema(ma.Schema):
 
 
 @blp.route("/velocity/observables", methods=["POST"])
+@blp.doc(operationId="computeObservablesFromUvw")
 @blp.arguments(
     ObservablesRequestSchema(), example=load_example("velocity_observables_request.json")
 )

@@ -43,3 +43,19 @@ def test_every_schema_is_valid_json_schema_2020_12(doc):
     meta = jsonschema.Draft202012Validator(jsonschema.Draft202012Validator.META_SCHEMA)
     for name, schema in doc["components"]["schemas"].items():
         assert list(meta.iter_errors(schema)) == [], name
+
+
+def test_operations_have_unique_ids_tags_and_summaries(doc):
+    """Code generators name client methods after operationId (OpenAPI 3.1 section 4.8.10:
+    unique among all operations); without one each invents a name from the path."""
+    ids, summaries = [], []
+    tags = {t["name"] for t in doc["tags"]}
+    for path, method, op in _operations(doc):
+        assert op.get("operationId"), (method, path)
+        assert op["operationId"].isidentifier(), op["operationId"]
+        assert op.get("summary"), (method, path)
+        assert len(op.get("tags", [])) == 1 and op["tags"][0] in tags, (method, path)
+        ids.append(op["operationId"])
+        summaries.append(op["summary"])
+    assert len(ids) == len(set(ids)) == 15
+    assert len(summaries) == len(set(summaries))
