@@ -316,5 +316,6 @@ def convert(args):
 
 
 def register(app, api):
-    api.ma_plugin.converter.add_attribute_function(equinox_field_to_openapi)
+    # equinox_field_to_openapi is added in create_app, before any blueprint: the
+    # constellations blueprint, registered earlier, documents FrameSpec first.
     api.register_blueprint(blp)

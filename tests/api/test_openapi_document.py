@@ -59,3 +59,10 @@ def test_operations_have_unique_ids_tags_and_summaries(doc):
         summaries.append(op["summary"])
     assert len(ids) == len(set(ids)) == 15
     assert len(summaries) == len(set(summaries))
+
+
+def test_frame_equinox_has_its_type(doc):
+    """FrameSpec.equinox (frames, constellation lookups, observed places) takes a year or
+    an epoch string, or null; documented without a type, generators make it 'any'."""
+    equinox = doc["components"]["schemas"]["FrameSpec"]["properties"]["equinox"]
+    assert equinox["type"] == ["string", "number", "null"]
