@@ -20,7 +20,7 @@ from .common import ProblemSchema, epoch_field_to_openapi
 from .frames import equinox_field_to_openapi
 from .jsonio import OrjsonProvider
 from .openapi_errors import PROBLEM_MIMETYPE, ProblemResponsesPlugin
-from .tables import range_bounds_to_openapi, table_field_to_openapi
+from .tables import id_field_to_openapi, range_bounds_to_openapi, table_field_to_openapi
 
 API_DESCRIPTION = """\
 Skydrift moves stellar astrometry between epochs, frames and places; finds the IAU
@@ -93,6 +93,7 @@ def create_app(config: dict | None = None) -> Flask:
     api.ma_plugin.converter.add_attribute_function(epoch_field_to_openapi)
     api.ma_plugin.converter.add_attribute_function(range_bounds_to_openapi)
     api.ma_plugin.converter.add_attribute_function(equinox_field_to_openapi)
+    api.ma_plugin.converter.add_attribute_function(id_field_to_openapi)
     app.extensions["skydrift_api"] = api
     app.extensions["skydrift_ready_checks"] = {}
     app.register_error_handler(HTTPException, errors.handle_http_exception)

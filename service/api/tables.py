@@ -547,6 +547,14 @@ class StarTableField(ma.fields.Field):
         return unknown_name_text(name, names, "accepted fields: " + ", ".join(names))
 
 
+def id_field_to_openapi(self, field, **kwargs) -> dict:
+    """apispec attribute function: a star's ``id`` (a Raw field, in records, columns and
+    answers) is a string of at most MAX_ID_LENGTH characters, an integer, or null."""
+    if type(field) is ma.fields.Raw and field.name == "id":
+        return {"type": ["string", "integer", "null"], "maxLength": MAX_ID_LENGTH}
+    return {}
+
+
 def range_bounds_to_openapi(self, field, ret=None, **kwargs) -> dict:
     """apispec attribute function: an exclusive Range bound as JSON Schema's
     exclusiveMinimum/exclusiveMaximum (apispec writes every bound as inclusive)."""

@@ -66,3 +66,28 @@ def test_frame_equinox_has_its_type(doc):
     an epoch string, or null; documented without a type, generators make it 'any'."""
     equinox = doc["components"]["schemas"]["FrameSpec"]["properties"]["equinox"]
     assert equinox["type"] == ["string", "number", "null"]
+
+
+def test_star_ids_are_typed_in_requests_and_answers(doc):
+    """A star's id is a string (at most 64 characters), an integer or null, as the tables'
+    check takes it; documented as any value, generators type it as an untyped object."""
+    seen = 0
+    for name, schema in doc["components"]["schemas"].items():
+        prop = schema.get("properties", {}).get("id")
+        if prop is None:
+            continue
+        assert prop["type"] == ["string", "integer", "null"], name
+        assert prop["maxLength"] == 64, name
+        seen += 1
+    assert seen >= 14  # every record schema and every per-star answer
+
+
+def test_star_id_types_documented_are_those_accepted(client):
+    lookup = "/v1/constellations/lookup"
+    for good in ("KRC 0001", 7, None, "x" * 64):
+        r = client.post(lookup, json={"stars": [{"id": good, "ra_deg": 1.0, "dec_deg": 2.0}]})
+        assert r.status_code == 200, good
+        assert r.json["stars"][0]["id"] == good
+    for bad in (1.5, True, {"a": 1}, [1], "x" * 65):
+        r = client.post(lookup, json={"stars": [{"id": bad, "ra_deg": 1.0, "dec_deg": 2.0}]})
+        assert r.status_code == 422, bad
