@@ -91,3 +91,95 @@ def test_star_id_types_documented_are_those_accepted(client):
     for bad in (1.5, True, {"a": 1}, [1], "x" * 65):
         r = client.post(lookup, json={"stars": [{"id": bad, "ra_deg": 1.0, "dec_deg": 2.0}]})
         assert r.status_code == 422, bad
+
+
+def _sample_request(doc, path, method, op):
+    """(url, json body) of an operation's documented example; path parameters filled."""
+    url = path.replace("{abbreviation}", "Ori")
+    if method == "post":
+        return url, op["requestBody"]["content"]["application/json"]["example"]
+    return url, None
+
+
+def _access_clients():
+    """status -> a test client whose settings make every (non-probe) request get it."""
+    import dataclasses
+
+    from service.api import create_app
+    from service.config import Settings
+
+    def client(**changes):
+        settings = dataclasses.replace(Settings(), **changes)
+        return create_app({"SKYDRIFT_SETTINGS": settings}).test_client()
+
+    return {
+        401: (client(auth_tokens=("a-token-of-thirty-two-characters",), auth_failure_limit=""), {}),
+        403: (client(cors_origins=("https://ok.example",)), {"Origin": "https://x.example"}),
+        503: (client(test_fail_first_n=1000), {}),
+    }
+
+
+def _assert_documented_problem(doc, op, resp, where):
+    documented = op["responses"].get(str(resp.status_code))
+    assert documented is not None, (where, resp.status_code)
+    while "$ref" in documented:
+        documented = doc["components"]["responses"][documented["$ref"].rsplit("/", 1)[-1]]
+    assert resp.mimetype == "application/problem+json", where
+    schema = documented["content"]["application/problem+json"]["schema"]
+    assert schema == {"$ref": "#/components/schemas/Problem"}, where
+    # The document's components travel with the reference, so nested references resolve.
+    root = {"$ref": "#/components/schemas/Problem", "components": doc["components"]}
+    jsonschema.validate(resp.json, root, jsonschema.Draft202012Validator)
+
+
+def test_access_refusals_are_documented_where_they_occur(doc):
+    """401 (tokens set, none sent), 403 (origin outside the allow-list), 429 (rate limit) and
+    503 (the time limit's status, here from the test-only failure setting), each sent to
+    every operation, are documented there as problem+json (RFC 9457)."""
+    import dataclasses
+
+    from service.api import create_app
+    from service.config import Settings
+
+    clients = _access_clients()
+    for path, method, op in _operations(doc):
+        url, body = _sample_request(doc, path, method, op)
+        for status, (client, headers) in clients.items():
+            resp = client.open(url, method=method.upper(), json=body, headers=headers)
+            if path in ("/health", "/ready") and status != 403:
+                assert resp.status_code in (200, 503), (path, status)  # never refused
+                continue
+            assert resp.status_code == status, (path, status)
+            _assert_documented_problem(doc, op, resp, (method, path))
+        if path in ("/health", "/ready"):
+            continue
+        settings = dataclasses.replace(Settings(), rate_limit="1/minute")
+        limited = create_app({"SKYDRIFT_SETTINGS": settings}).test_client()
+        limited.open(url, method=method.upper(), json=body)
+        resp = limited.open(url, method=method.upper(), json=body)
+        assert resp.status_code == 429, path
+        _assert_documented_problem(doc, op, resp, (method, path))
+
+
+def test_not_found_and_invalid_options_are_documented(doc, client):
+    """404 for an unknown constellation; 422 for an unknown query option of a GET."""
+    op = doc["paths"]["/v1/constellations/{abbreviation}/outline"]["get"]
+    resp = client.get("/v1/constellations/XYZ/outline")
+    assert resp.status_code == 404
+    _assert_documented_problem(doc, op, resp, "outline")
+    for path, method, op in _operations(doc):
+        if method != "get" or path in ("/health", "/ready"):
+            continue
+        url, _ = _sample_request(doc, path, method, op)
+        resp = client.get(url + "?no_such_option=1")
+        assert resp.status_code == 422, path
+        _assert_documented_problem(doc, op, resp, path)
+
+
+def test_probes_and_operations_declare_their_security(doc):
+    """The bearer scheme is declared (RFC 6750) and optional on the operations, since the
+    operator decides; the probes never take a token."""
+    assert doc["components"]["securitySchemes"]["bearerToken"]["scheme"] == "bearer"
+    for path, _, op in _operations(doc):
+        expected = [] if path in ("/health", "/ready") else [{"bearerToken": []}, {}]
+        assert op["security"] == expected, path
