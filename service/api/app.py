@@ -67,7 +67,9 @@ def create_app(config: dict | None = None) -> Flask:
         :class:`~service.config.Settings`; otherwise settings are read from the environment
         (and a bad setting stops the start with a message naming the variable).
     """
-    app = Flask("skydrift")
+    # No static folder: the reference page needs no assets, and Flask's default would serve
+    # any file under ./static of the working directory (the import name is no package).
+    app = Flask("skydrift", static_folder=None)
     app.json = OrjsonProvider(app)
     settings = (config or {}).get("SKYDRIFT_SETTINGS") or Settings.from_env()
     app.config.update(

@@ -80,6 +80,21 @@ def test_reference_page_is_self_contained(client):
     assert "<script" not in text
 
 
+def test_no_files_served_from_the_working_directory(tmp_path, monkeypatch, settings):
+    """The reference page needs no static assets; a ./static folder where the service is
+    started (its working directory) must not be served, nor any /static/ route exist."""
+    from service.api import create_app
+
+    (tmp_path / "static").mkdir()
+    (tmp_path / "static" / "notes.txt").write_text("not for clients")
+    monkeypatch.chdir(tmp_path)
+    app = create_app({"SKYDRIFT_SETTINGS": settings})
+    assert not [r.rule for r in app.url_map.iter_rules() if r.rule.startswith("/static")]
+    r = app.test_client().get("/static/notes.txt")
+    assert r.status_code == 404
+    assert r.mimetype == "application/problem+json"
+
+
 def test_reference_page_lists_every_parameter(client):
     """Every path and query parameter of the OpenAPI document appears on the reference page,
     in the section of its operation, with its description."""
