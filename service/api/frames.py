@@ -186,11 +186,24 @@ class FramesRequestSchema(ma.Schema):
     )
 
 
+#: The astrometry of one star at one target epoch in the output frame (null: unknown).
+FrameAtEpochSchema = ma.Schema.from_dict(
+    {
+        name: ma.fields.Float(allow_none=True, metadata={"description": f"{UNITS[name]}."})
+        for name in VALUE_FIELDS
+    },
+    name="FrameAtEpochSchema",
+)
+
+
 class FrameResultSchema(ma.Schema):
     index = ma.fields.Integer()
     id = ma.fields.Raw(allow_none=True)
     flags = ma.fields.List(ma.fields.String())
-    at_epochs = ma.fields.List(ma.fields.Dict())
+    at_epochs = ma.fields.List(
+        ma.fields.Nested(FrameAtEpochSchema),
+        metadata={"description": "One entry per target epoch, in the order of epochs."},
+    )
 
 
 class FramesResponseSchema(ma.Schema):

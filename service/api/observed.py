@@ -342,6 +342,30 @@ class InstantOutSchema(ma.Schema):
     sun = ma.fields.Dict(metadata={"description": "altitude_deg and azimuth_deg (advisory)."})
 
 
+#: The place of one star at one instant (null: not finite, e.g. airmass below the horizon).
+ObservedPlaceSchema = ma.Schema.from_dict(
+    {
+        **{
+            name: ma.fields.Float(allow_none=True, metadata={"description": f"{unit}."})
+            for name, unit in PLACE_FIELDS.items()
+        },
+        "flags": ma.fields.List(
+            ma.fields.String(), metadata={"description": "Names from flag_meanings."}
+        ),
+    },
+    name="ObservedPlaceSchema",
+)
+
+
+class ObservedStarSchema(ma.Schema):
+    index = ma.fields.Integer()
+    id = ma.fields.Raw(allow_none=True)
+    at_instants = ma.fields.List(
+        ma.fields.Nested(ObservedPlaceSchema),
+        metadata={"description": "One entry per instant, in the order of instants."},
+    )
+
+
 class ObservedResponseSchema(ma.Schema):
     advisory = ma.fields.String()
     site = ma.fields.Dict()
@@ -363,7 +387,7 @@ class ObservedResponseSchema(ma.Schema):
         },
     )
     stars = ma.fields.List(
-        ma.fields.Dict(),
+        ma.fields.Nested(ObservedStarSchema),
         metadata={"description": "One entry per star: index, id, at_instants (one per instant)."},
     )
 

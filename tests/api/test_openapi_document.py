@@ -183,3 +183,55 @@ def test_probes_and_operations_declare_their_security(doc):
     for path, _, op in _operations(doc):
         expected = [] if path in ("/health", "/ready") else [{"bearerToken": []}, {}]
         assert op["security"] == expected, path
+
+
+def _resolve(doc, schema):
+    while "$ref" in schema:
+        schema = doc["components"]["schemas"][schema["$ref"].rsplit("/", 1)[-1]]
+    return schema
+
+
+def _untyped_members(doc, value, schema, path):
+    """Paths in ``value`` whose schema leaves them untyped: an object without declared
+    properties (or typed additional ones), or a schema without a type."""
+    schema = _resolve(doc, schema)
+    for key in ("oneOf", "anyOf"):
+        if key in schema:
+            for alt in schema[key]:
+                if jsonschema.Draft202012Validator(
+                    {**alt, "components": doc["components"]}
+                ).is_valid(value):
+                    return _untyped_members(doc, value, alt, path)
+    if not any(k in schema for k in ("type", "oneOf", "anyOf", "enum")):
+        return [path]
+    if isinstance(value, dict):
+        props = schema.get("properties")
+        extra = schema.get("additionalProperties")
+        if props is None and not (isinstance(extra, dict) and extra):
+            return [path]
+        out = []
+        for key, member in value.items():
+            sub = (props or {}).get(key, extra)
+            out += _untyped_members(doc, member, sub, f"{path}.{key}")
+        return out
+    if isinstance(value, list):
+        return [p for v in value[:3] for p in _untyped_members(doc, v, schema["items"], path)]
+    return []
+
+
+def test_every_star_result_member_is_documented(doc, client):
+    """Each POST operation's example answer (records layout), validated against the
+    documented 200 schema, and every member of its per-star results declared with a type:
+    a client generated from the document gets typed fields, not an untyped map. (Observed
+    places and frame conversions were documented as objects of anything.)"""
+    for path, method, op in _operations(doc):
+        content = op["responses"]["200"]["content"]
+        if method != "post" or "application/json" not in content:
+            continue
+        url, body = _sample_request(doc, path, method, op)
+        resp = client.post(url, json=body)
+        assert resp.status_code == 200, path
+        schema = {**content["application/json"]["schema"], "components": doc["components"]}
+        jsonschema.validate(resp.json, schema, jsonschema.Draft202012Validator)
+        stars_schema = _resolve(doc, content["application/json"]["schema"])["properties"]
+        assert _untyped_members(doc, resp.json["stars"], stars_schema["stars"], path) == []
