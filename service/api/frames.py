@@ -173,8 +173,16 @@ class FramesRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "Epoch at which the given positions hold (e.g. 'B1950.0')."},
     )
-    from_frame = ma.fields.Nested(FrameSpecSchema, required=True)
-    to_frame = ma.fields.Nested(FrameSpecSchema, load_default=lambda: {"name": "icrs"})
+    from_frame = ma.fields.Nested(
+        FrameSpecSchema,
+        required=True,
+        metadata={"description": "Frame of the given positions and motions."},
+    )
+    to_frame = ma.fields.Nested(
+        FrameSpecSchema,
+        load_default=lambda: {"name": "icrs"},
+        metadata={"description": "Frame of the answer (default ICRS)."},
+    )
     target_epochs = ma.fields.List(
         EpochField(),
         validate=ma.validate.Length(min=1),

@@ -235,3 +235,21 @@ def test_every_star_result_member_is_documented(doc, client):
         jsonschema.validate(resp.json, schema, jsonschema.Draft202012Validator)
         stars_schema = _resolve(doc, content["application/json"]["schema"])["properties"]
         assert _untyped_members(doc, resp.json["stars"], stars_schema["stars"], path) == []
+
+
+def test_frames_request_states_its_frames_and_the_default(doc, client):
+    """to_frame may be left out; the document must say what is used then (ICRS, as the
+    answer's to_frame shows)."""
+    props = doc["components"]["schemas"]["FramesRequest"]["properties"]
+    assert props["from_frame"]["description"]
+    assert "default ICRS" in props["to_frame"]["description"]
+    body = {
+        "stars": [
+            {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+        ],
+        "catalogue_epoch": "J2000.0",
+        "from_frame": {"name": "galactic"},
+    }
+    resp = client.post("/v1/frames", json=body)
+    assert resp.status_code == 200
+    assert resp.json["to_frame"] == "ICRS"
