@@ -330,16 +330,63 @@ class ObservedRequestSchema(ma.Schema):
     )
 
 
+def _out(field_class, description, **kwargs):
+    return field_class(metadata={"description": description}, **kwargs)
+
+
+class EarthOrientationOutSchema(ma.Schema):
+    table = _out(ma.fields.String, "Earth orientation table used ('none' when unavailable).")
+    status = _out(ma.fields.String, "measured, predicted or unavailable.")
+    source = _out(ma.fields.String, "Finer kind of the values (e.g. measured_final).")
+    ut1_utc_s = _out(ma.fields.Float, "UT1 - UTC used, seconds (0 where unavailable).")
+    pm_x_arcsec = _out(ma.fields.Float, "Polar motion x used, arcsec (0 where unavailable).")
+    pm_y_arcsec = _out(ma.fields.Float, "Polar motion y used, arcsec (0 where unavailable).")
+    accuracy_class = _out(ma.fields.String, "milliarcsecond, sub_arcsecond or arcseconds.")
+    pointing_error_arcsec = _out(
+        ma.fields.Float, "Pointing uncertainty these values imply, arcsec (estimate)."
+    )
+
+
+class SunOutSchema(ma.Schema):
+    altitude_deg = _out(ma.fields.Float, "Altitude of the Sun, degrees (advisory).")
+    azimuth_deg = _out(ma.fields.Float, "Azimuth of the Sun, degrees, north = 0, east = 90.")
+
+
+class SiteOutSchema(ma.Schema):
+    name = _out(
+        ma.fields.String,
+        "Name in the operator's list; null for a site given by coordinates.",
+        allow_none=True,
+    )
+    latitude_deg = _out(ma.fields.Float, "Geodetic latitude, degrees, north positive.")
+    longitude_deg = _out(ma.fields.Float, "Longitude, degrees, east positive.")
+    height_m = _out(ma.fields.Float, "Height above the WGS84 ellipsoid, metres.")
+
+
+class RefractionOutSchema(ma.Schema):
+    mode = _out(
+        ma.fields.String,
+        "How the pressure was found (e.g. given_pressure, standard_atmosphere_pressure), or off.",
+    )
+    pressure_hpa = _out(ma.fields.Float, "Air pressure used, hPa (0: refraction off).")
+    temperature_c = _out(ma.fields.Float, "Air temperature used, degrees Celsius.")
+    temperature_source = _out(ma.fields.String, "given or standard_atmosphere.")
+    relative_humidity = _out(ma.fields.Float, "Relative humidity used, 0 to 1.")
+    wavelength_um = _out(ma.fields.Float, "Effective wavelength used, micrometres.")
+    model = _out(ma.fields.String, "Refraction model.")
+
+
+class LimitsOutSchema(ma.Schema):
+    horizon_limit_deg = _out(ma.fields.Float, "Altitude limit applied, degrees (advisory).")
+    sun_avoidance_deg = _out(ma.fields.Float, "Sun avoidance angle applied, degrees (advisory).")
+    note = _out(ma.fields.String, "Where the limits came from.")
+
+
 class InstantOutSchema(ma.Schema):
     epoch = ma.fields.Nested(EpochOutSchema)
     utc_jd = ma.fields.List(ma.fields.Float(), metadata={"description": "UTC two-part JD."})
-    earth_orientation = ma.fields.Dict(
-        metadata={
-            "description": "table, status (measured, predicted or unavailable), source, "
-            "ut1_utc_s, pm_x_arcsec, pm_y_arcsec, accuracy_class, pointing_error_arcsec."
-        }
-    )
-    sun = ma.fields.Dict(metadata={"description": "altitude_deg and azimuth_deg (advisory)."})
+    earth_orientation = ma.fields.Nested(EarthOrientationOutSchema)
+    sun = ma.fields.Nested(SunOutSchema)
 
 
 #: The place of one star at one instant (null: not finite, e.g. airmass below the horizon).
@@ -368,9 +415,9 @@ class ObservedStarSchema(ma.Schema):
 
 class ObservedResponseSchema(ma.Schema):
     advisory = ma.fields.String()
-    site = ma.fields.Dict()
-    refraction = ma.fields.Dict()
-    limits = ma.fields.Dict()
+    site = ma.fields.Nested(SiteOutSchema)
+    refraction = ma.fields.Nested(RefractionOutSchema)
+    limits = ma.fields.Nested(LimitsOutSchema)
     catalogue_epoch = ma.fields.Nested(EpochOutSchema)
     input_frame = ma.fields.String()
     instants = ma.fields.List(ma.fields.Nested(InstantOutSchema))

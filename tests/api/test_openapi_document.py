@@ -253,3 +253,19 @@ def test_frames_request_states_its_frames_and_the_default(doc, client):
     resp = client.post("/v1/frames", json=body)
     assert resp.status_code == 200
     assert resp.json["to_frame"] == "ICRS"
+
+
+def test_observed_answer_is_typed_throughout(doc, client):
+    """Site, refraction, limits, and per instant the Earth orientation values and the Sun
+    were objects of anything; a site given by coordinates has a null name."""
+    op = doc["paths"]["/v1/observed"]["post"]
+    schema = op["responses"]["200"]["content"]["application/json"]["schema"]
+    _, body = _sample_request(doc, "/v1/observed", "post", op)
+    site = {"latitude_deg": -30.0, "longitude_deg": -70.0, "height_m": 2000.0}
+    for changes in ({}, {"site": site, "atmosphere": {"pressure_hpa": 0.0}}):
+        resp = client.post("/v1/observed", json={**body, **changes})
+        assert resp.status_code == 200
+        root = {**schema, "components": doc["components"]}
+        jsonschema.validate(resp.json, root, jsonschema.Draft202012Validator)
+        untyped = _untyped_members(doc, resp.json, schema, "$")
+        assert untyped == ["$.earth_orientation_tables"]  # table provenance: free form
