@@ -178,9 +178,10 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
                         "schema": {
                             "type": "string",
                             "description": "With Accept: text/csv. One row per star and "
-                            "epoch: "
-                            + ", ".join(csvio.LEADING_COLUMNS)
-                            + ", the quantities under their JSON names, flags (';'-separated) "
+                            "epoch (or per star and event, such as a boundary crossing; a "
+                            "star without any gets one row): index, id, then "
+                            "epoch_julian_tdb and epoch_iso_utc when the answer has epochs, "
+                            "the quantities under their JSON names, flags (';'-separated) "
                             "last; empty cell = null.",
                         },
                     },

@@ -269,3 +269,21 @@ def test_observed_answer_is_typed_throughout(doc, client):
         jsonschema.validate(resp.json, root, jsonschema.Draft202012Validator)
         untyped = _untyped_members(doc, resp.json, schema, "$")
         assert untyped == ["$.earth_orientation_tables"]  # table provenance: free form
+
+
+def test_csv_answer_description_matches_the_header(doc, client):
+    """The documented leading CSV columns are those of each answer: the epoch columns only
+    where the answer has epochs (velocity answers have none)."""
+    for path, method, op in _operations(doc):
+        content = op["responses"]["200"]["content"]
+        if "text/csv" not in content:
+            continue
+        text = content["text/csv"]["schema"]["description"]
+        url, body = _sample_request(doc, path, method, op)
+        header = client.post(url, json=body, headers={"Accept": "text/csv"}).text.split("\n")[0]
+        columns = header.strip().split(",")
+        assert columns[:2] == ["index", "id"] and columns[-1] == "flags", path
+        if "epoch_julian_tdb" not in columns:
+            # Said conditionally, never as the columns of every answer.
+            assert "epoch_julian_tdb, epoch_iso_utc, the" not in text, path
+            assert "when the answer has epochs" in text, path
