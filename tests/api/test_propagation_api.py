@@ -613,8 +613,10 @@ def test_every_epoch_in_the_api_description_says_how_to_write_it(client):
     # nor that a Julian epoch is TDB. Every epoch field of every schema now says both.
     spec = client.get("/openapi.json").json
     seen = 0
-    for schema in spec["components"]["schemas"].values():
+    for schema_name, schema in spec["components"]["schemas"].items():
         for name, prop in schema.get("properties", {}).items():
+            if (schema_name, name) == ("FrameSpec", "equinox"):
+                continue  # not an epoch: a number is a Besselian year for fk4 (its own text)
             if prop.get("type") in (["string", "number"], ["string", "number", "null"]):
                 seen += 1
                 assert "'J2016.0' (TDB)" in prop.get("description", ""), name
