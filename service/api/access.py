@@ -39,7 +39,7 @@ from werkzeug.exceptions import ServiceUnavailable
 from werkzeug.middleware.proxy_fix import ProxyFix
 
 from ..config import ConfigError
-from .errors import problem_response
+from .errors import clip_echo, problem_response
 
 log = logging.getLogger("skydrift.access")
 
@@ -93,8 +93,10 @@ def _check_token(digests) -> Response | None:
     scheme, _, given = header.partition(" ")
     if not header:
         return _unauthorized("A bearer token is required (Authorization: Bearer <token>).")
-    if scheme.lower() != "bearer" or not given.strip():
+    if scheme.lower() != "bearer":
         return _unauthorized("Use the Bearer scheme: Authorization: Bearer <token>.", True)
+    if not given.strip():
+        return _unauthorized("The bearer token is empty (Authorization: Bearer <token>).", True)
     digest = hashlib.sha256(given.strip().encode()).digest()
     match = False
     for known in digests:  # no early exit: every token is compared
@@ -172,7 +174,9 @@ def _preflight(origins) -> Response:
     origin = request.headers["Origin"]
     if not _origin_allowed(origin, origins):
         return problem_response(
-            403, "Forbidden", f"Origin {origin} is not allowed (setting SKYDRIFT_CORS_ORIGINS)."
+            403,
+            "Forbidden",
+            f"Origin {clip_echo(origin)} is not allowed (setting SKYDRIFT_CORS_ORIGINS).",
         )
     resp = Response(status=204)
     resp.headers["Access-Control-Allow-Methods"] = CORS_ALLOW_METHODS
@@ -279,7 +283,7 @@ def register(app) -> None:
                 return problem_response(
                     403,
                     "Forbidden",
-                    f"Origin {origin} is not allowed (setting SKYDRIFT_CORS_ORIGINS).",
+                    f"Origin {clip_echo(origin)} is not allowed (setting SKYDRIFT_CORS_ORIGINS).",
                 )
         if digests and request.path not in PROBE_PATHS:
             # Keyed by address (g.client is still "addr:..." here), never by the token given.

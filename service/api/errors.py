@@ -205,7 +205,8 @@ def _invalid_count(errors: list[dict]) -> int:
     return n
 
 
-def _clip(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
+def clip_echo(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
+    """Text from the request echoed in an answer, cut to ``limit`` characters."""
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
@@ -228,7 +229,7 @@ def handle_http_exception(error: HTTPException) -> Response:
         errors = None
         detail = "The request body is not valid JSON."
         if data.get("where"):  # line, column and reason (jsonio.BodyParser)
-            detail = f"The request body is not valid JSON: {_clip(data['where'])}."
+            detail = f"The request body is not valid JSON: {clip_echo(data['where'])}."
     elif errors:
         n = _invalid_count(errors)
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
@@ -250,7 +251,10 @@ def handle_http_exception(error: HTTPException) -> Response:
     if errors:
         # A client's own text (an unknown 10 MB key) is never echoed at length.
         errors = [
-            {"field": _clip(str(e.get("field", ""))), "message": _clip(str(e.get("message", "")))}
+            {
+                "field": clip_echo(str(e.get("field", ""))),
+                "message": clip_echo(str(e.get("message", ""))),
+            }
             for e in errors
         ]
     headers = dict(data.get("headers") or {})

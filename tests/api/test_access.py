@@ -259,6 +259,23 @@ def test_cors_preflight(settings):
     assert "Access-Control-Allow-Origin" not in r.headers
 
 
+def test_refused_origin_is_echoed_clipped_and_empty_token_named(settings):
+    """The 403 names the Origin it refused, cut to the 300 characters every echo of request
+    text is cut to (errors.MAX_ECHOED_CHARS); an empty bearer token is called empty."""
+    c = make_client(settings, cors_origins=(SKY_APP,), auth_tokens=(TOKEN_A,))
+    long_origin = "https://" + "x" * 5000 + ".example"
+    for r in (
+        c.post("/v1/propagation", json=PROPAGATION_BODY, headers={"Origin": long_origin}),
+        c.options("/v1/propagation", headers={"Origin": long_origin,
+                                              "Access-Control-Request-Method": "POST"}),
+    ):  # fmt: skip
+        assert_problem(r, 403)
+        assert "https://xxx" in r.json["detail"] and len(r.json["detail"]) < 400
+    r = c.post("/v1/propagation", json=PROPAGATION_BODY, headers={"Authorization": "Bearer   "})
+    assert_problem(r, 401)
+    assert "empty" in r.json["detail"]
+
+
 def test_cors_any_origin(settings):
     c = make_client(settings, cors_origins=("*",))
     r = c.get("/health", headers={"Origin": "https://anything.example"})
