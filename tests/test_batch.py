@@ -908,6 +908,16 @@ def test_csv_cells_read_as_unknown_only_when_empty(tmp_path, word):
     assert "parallax_missing" in names[0]
 
 
+def test_csv_header_name_missing_is_refused(tmp_path):
+    """A header with an empty name (a trailing comma) is refused with the API's wording
+    (service.api.csvio); pandas named it "Unnamed: 7" and the run went on."""
+    path = csv_catalogue(tmp_path, [(1, lambda t: t + ",")])
+    with pytest.raises(batch.BatchInputError, match=r"cat\.csv: line 1: column \d+ of the "
+                       r"header has no name \(a trailing comma\?\)$"):  # fmt: skip
+        run_csv(path, tmp_path / "out")
+    assert not (tmp_path / "out").exists()
+
+
 def test_csv_duplicated_column_name_is_refused(tmp_path, monkeypatch):
     # pandas renamed the second to "RA_ICRS.1" and the run read the first only.
     path = csv_catalogue(tmp_path, [(1, lambda t: t.replace("Plx", "RA_ICRS"))])

@@ -17,7 +17,8 @@ all of that while pandas does the parsing, at little cost:
 1. Only an empty cell is unknown (``keep_default_na=False, na_values=[""]``): "nan" and the
    other words are then text in a column read as float64, which pandas refuses to convert.
    Underscores ("1_000") and other scripts' digits are refused by pandas' own parser.
-2. The header's names are checked for duplicates (each block starts with a header line).
+2. The header's names are checked for duplicates and empty names (each block starts with a
+   header line).
 3. Cells per row. pandas pads a short row with empty cells, so the missing ones cannot be
    told from empty ones after parsing; the text is checked instead. When every column of
    the file is read, pandas itself refuses a row with more cells than the header (except
@@ -124,8 +125,13 @@ def read_block(source, **kwargs):
     header_end = _header_end(data)
     names = _header_names(data[:header_end])
     seen: set = set()
-    for name in names:
-        if name and name in seen:
+    for k, name in enumerate(names, start=1):
+        if not name:  # as the API refuses it (pandas would name it "Unnamed: k")
+            raise CsvRowError(
+                f"column {k} of the header has no name (a trailing comma?)",
+                data[:header_end].rstrip(b"\r"),
+            )
+        if name in seen:
             raise CsvRowError(
                 f"column {name!r} is given twice in the header",
                 data[:header_end].rstrip(b"\r"),
