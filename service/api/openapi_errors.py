@@ -22,6 +22,8 @@ from __future__ import annotations
 
 from apispec import BasePlugin
 
+from .access import PROBE_PATHS  # never behind a token, a rate limit or the time limit
+
 PROBLEM_MIMETYPE = "application/problem+json"
 
 #: Responses every operation with a request body can give: status -> (component, text).
@@ -76,8 +78,6 @@ OTHER_ERRORS = {
     "422": ("ProblemInvalidField", BODY_ERRORS["422"][1]),
 }
 
-#: Paths orchestrators probe: never behind a token, a rate limit or the time limit.
-PROBE_PATHS = frozenset({"/health", "/ready"})
 
 #: The security scheme of the bearer tokens (RFC 6750), declared in components.
 BEARER_SCHEME = {
