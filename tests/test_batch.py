@@ -1086,6 +1086,35 @@ def test_csv_kept_column_without_cells_in_its_first_rows_is_copied(tmp_path):
     assert got == expected
 
 
+def test_csv_kept_whole_number_column_with_empty_cells_later_is_copied(tmp_path):
+    """A kept identifier column of whole numbers (typed int64 from its first ten rows) with
+    an empty cell further on stopped the run part-way ("the cell is empty, where the first
+    rows of the file have whole numbers"). The kept values must come out as Python's csv
+    module reads them, an empty cell unknown, whole numbers exact (ids above 2**53 too);
+    a cell that is no whole number still stops the run naming its line."""
+    cat = synthetic_catalogue(100, seed=8)
+    cat = cat[~bad_row_mask(cat)].reset_index(drop=True).iloc[:40]
+    ids = [str(2**60 + 7 * i) if i < 12 or i % 4 else "" for i in range(len(cat))]
+    cat["source_id"] = ids
+    path = tmp_path / "cat.csv"
+    cat.to_csv(path, index=False, lineterminator="\n")
+    with open(path, newline="") as f:
+        expected = [
+            int(row["source_id"]) if row["source_id"] else None for row in csv.DictReader(f)
+        ]  # fmt: skip  (the reference)
+    assert expected[12] is None and expected[13] == 2**60 + 91
+    summary = run_csv(path, tmp_path / "out", keep=["source_id"])
+    assert summary.rows == len(cat)
+    out = pd.read_parquet(tmp_path / "out", dtype_backend="numpy_nullable")
+    got = [None if v is pd.NA else int(v) for v in out["source_id"]]
+    assert got == expected
+    # Not a whole number: refused with its line (the header is line 1).
+    cat["source_id"] = [*ids[:20], "12.5", *ids[21:]]
+    cat.to_csv(path, index=False, lineterminator="\n")
+    with pytest.raises(batch.BatchDataError, match=r"line 22: .*'12\.5' is not a whole number"):
+        run_csv(path, tmp_path / "out2", keep=["source_id"])
+
+
 def test_now_is_one_instant_in_a_run():
     """Every epoch option given as "now" in one run is the same instant (as in one API
     request), so that --catalogue-epoch now --target-epoch now moves the stars by nothing;

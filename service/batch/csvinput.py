@@ -154,8 +154,9 @@ def read_block(source, **kwargs):
         kwargs["usecols"] = usecols
     try:
         frame = pd.read_csv(io.BytesIO(data), **kwargs)
-    except ValueError:
-        # A cell pandas cannot convert, or (every column read) a row that is too long.
+    except (ValueError, TypeError):
+        # A cell pandas cannot convert (TypeError for "12.5" in a nullable integer column),
+        # or (every column read) a row that is too long.
         _raise_first_problem(data, rules)
         raise
     if every_column and not head:
@@ -188,12 +189,15 @@ def _header_names(line: bytes) -> list[str]:
 
 
 def _cell_rules(dtypes) -> dict:
-    """Column -> "number" or "whole" for the columns pandas is told to read as numbers."""
+    """Column -> "number", "whole" or "whole_or_empty" (pandas' nullable integers, for
+    kept columns) for the columns pandas is told to read as numbers."""
     rules: dict = {}
     for name, dtype in dtypes.items() if isinstance(dtypes, dict) else ():
         try:
             kind = np.dtype(dtype).kind
-        except TypeError:  # a pandas extension dtype (text): no rule
+        except TypeError:  # a pandas extension dtype: nullable integers, else text (no rule)
+            if getattr(getattr(dtype, "numpy_dtype", None), "kind", "") in ("i", "u"):
+                rules[name] = "whole_or_empty"
             continue
         if kind == "f":
             rules[name] = "number"
@@ -358,10 +362,12 @@ def _has_surrogates(text: str) -> bool:
 def cell_problem(cell: str, kind: str) -> str | None:
     """What is wrong with one cell of a number column (None if nothing)."""
     text = cell.strip(" \t")  # pandas reads a number with blanks around it
-    if kind == "whole":
+    if kind in ("whole", "whole_or_empty"):
         # pandas reads a whole-number column's "5.0" or "5e0" as 5.
         if WHOLE_TEXT.match(text) or (DECIMAL_TEXT.match(text) and float(text).is_integer()):
             return None
+        if not cell and kind == "whole_or_empty":
+            return None  # a kept column's unknown value (a star without that identifier)
         if not cell:
             return "the cell is empty, where the first rows of the file have whole numbers"
         return f"{cell!r} is not a whole number (the first rows of the file have whole numbers)"

@@ -274,6 +274,25 @@ def make_plan(
     return BatchPlan(job, mapping, tuple(absent), keep, params)
 
 
+def _nullable(dtype):
+    """The type a kept column is read with: whole numbers as pandas' nullable integers, so
+    that a star without that identifier further on (an empty cell) is copied as unknown
+    rather than stopping the run; other types as they are."""
+    import pandas as pd
+
+    if dtype.kind in "iu":
+        return pd.api.types.pandas_dtype(dtype.name.capitalize().replace("Uint", "UInt"))
+    return dtype
+
+
+def _nullable_int(dtype) -> bool:
+    """pandas' nullable integers (Int64, UInt64, ...): what :func:`_nullable` reads whole
+    numbers of kept columns as."""
+    return not isinstance(dtype, np.dtype) and getattr(
+        getattr(dtype, "numpy_dtype", None), "kind", ""
+    ) in ("i", "u")
+
+
 def _is_numeric_numpy(dtype) -> bool:
     """A numpy integer or float dtype (not a pandas extension dtype)."""
     return isinstance(dtype, np.dtype) and dtype.kind in "fiu"
@@ -409,7 +428,10 @@ def process_partition(frame, plan: BatchPlan):
             for name, x in inputs.items()
         }
     results = plan.job.compute(inputs, plan.params) if n else {}
-    data = {k: frame[k].to_numpy() for k in plan.keep}
+    # Kept columns as they are: numpy arrays, or pandas' nullable integers as such (their
+    # to_numpy() would give objects, and the writer floats that round large ids).
+    data = {k: frame[k].array if _nullable_int(frame[k].dtype) else frame[k].to_numpy()
+            for k in plan.keep}  # fmt: skip
     for col in plan.job.outputs:
         if col.dtype == "category":
             codes = np.asarray(results[col.name] if n else np.zeros(0), dtype=np.int16)
@@ -546,7 +568,7 @@ def build_output(source, plan_args: dict, *, input_format="auto", blocksize=None
         # is then refused with its line, not in a dask message about types).
         from .csvinput import columns_without_cells
 
-        dtypes = {k: schema[k] for k in plan.keep if _is_numeric_numpy(schema[k])}
+        dtypes = {k: _nullable(schema[k]) for k in plan.keep if _is_numeric_numpy(schema[k])}
         # A kept column without a cell in those rows is float64 only for want of cells: it
         # is copied as text (the identifiers of the later stars), not refused as no number.
         dtypes.update(dict.fromkeys(columns_without_cells(source, set(dtypes)), object))
