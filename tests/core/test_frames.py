@@ -185,6 +185,35 @@ def test_fk524_exact_inverse_near_sofa_test_values():
     assert back[1] == pytest.approx(d2000, abs=1e-14)
 
 
+@pytest.mark.parametrize("off_arcsec", [0.0, 1e-4, 0.01])
+def test_fk524_exact_inverse_keeps_the_motion_at_the_fk4_pole(off_arcsec):
+    # A star at (or within 0.1 mas of) the FK4 B1950.0 pole, 1.7 arcsec/yr: pyerfa fk425 takes
+    # it to FK5 J2000.0, and our FK5 -> FK4 must give it back, proper motion included. The
+    # refinement added its corrections to RA and dRA/dt, which near the pole put the motion on
+    # the axes of another RA (1.5 arcsec/yr off at the pole itself, 2 mas/yr at 0.1 mas).
+    # Reference: pyerfa fk425 (SOFA). Tolerances: 1 microarcsec position, 5 microarcsec/yr
+    # motion at the pole itself (SOFA's dRA/dt interface is singular there; 2.3 measured),
+    # 1 microarcsec/yr within 0.1 mas of it.
+    r, d = 0.7, np.pi / 2 - off_arcsec / 3600.0 / DEG
+    mu_a, mu_d = 1500.0 / MAS_PER_RAD, -800.0 / MAS_PER_RAD  # rad/yr, mu_a with cos(dec)
+    with np.errstate(divide="ignore"):
+        x = (r, d, mu_a / np.cos(d), mu_d, 0.05, 20.0)
+    y = F.fk425_catalogue(*x)
+    back = F.fk524_exact_inverse(*y)
+
+    def vectors(r, d, dr, dd):
+        p, e_ra, e_dec = F._tangent_basis(r, d)
+        return p, dr * np.cos(d) * e_ra + dd * e_dec
+
+    p0, w0 = vectors(*x[:4])
+    p1, w1 = vectors(*back[:4])
+    assert np.linalg.norm(p1 - p0) * MAS_PER_RAD * 1e3 < 1.0
+    tol_uas_yr = 5.0 if off_arcsec == 0.0 else 1.0
+    assert np.linalg.norm(w1 - w0) * MAS_PER_RAD * 1e3 < tol_uas_yr
+    assert back[4] == pytest.approx(0.05, abs=1e-12)  # arcsec
+    assert back[5] == pytest.approx(20.0, abs=1e-9)  # km/s
+
+
 # --- SOFA fk52h / h2fk5 / fk5hz / hfk5z -------------------------------------------------------
 
 
