@@ -22,6 +22,7 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
+from .propagation import FLAG_MEANINGS as PROPAGATION_FLAG_MEANINGS
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -233,6 +234,17 @@ FLAG_MEANINGS = {
     "proper_motion_missing": "No proper motion: taken as zero.",
 }
 
+#: Propagation flags that a frames answer names per star (implausible inputs).
+_IMPLAUSIBLE_INPUTS = int(
+    core_prop.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
+    | core_prop.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
+    | core_prop.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
+)
+_INPUT_FLAG_MEANINGS = {
+    name: PROPAGATION_FLAG_MEANINGS[name]
+    for name in flag_names([_IMPLAUSIBLE_INPUTS], core_prop.PropagationFlag)[0]
+}
+
 METHODS = [
     "FK4 B1950.0 <-> FK5 J2000.0: Standish (1982) / Aoki et al. (1983), IAU SOFA fk425 "
     "(reverse: fk524 refined to invert fk425 exactly).",
@@ -284,7 +296,7 @@ def convert(args):
     icrs = core.make_frame("icrs")
     to_icrs = core.convert(*vals, epoch0, src, icrs)
     flags = to_icrs.flags.astype(np.int64)
-    moved = core_prop.propagate(
+    propagated = core_prop.propagate(
         to_icrs.ra_deg[:, None],
         to_icrs.dec_deg[:, None],
         to_icrs.parallax_mas[:, None],
@@ -293,7 +305,12 @@ def convert(args):
         to_icrs.radial_velocity_km_s[:, None],
         epoch0,
         targets[None, :],
-    ).astrometry
+    )
+    moved = propagated.astrometry
+    # Implausible inputs (proper motion, radial velocity, space velocity) are named in each
+    # star's flags, as in the propagation and observed answers.
+    input_masks = np.bitwise_or.reduce(np.asarray(propagated.flags).reshape(n, -1), axis=1)
+    input_names = flag_names(input_masks & _IMPLAUSIBLE_INPUTS, core_prop.PropagationFlag)
     out = core.convert(
         moved.ra_deg,
         moved.dec_deg,
@@ -307,13 +324,14 @@ def convert(args):
     )
     names = flag_names(flags, core.FrameFlag)
     present = present_flag_names(flags, core.FrameFlag)
+    present |= {x for lst in input_names for x in lst}
     values = [getattr(out, f) for f in VALUE_FIELDS]
     ids = table.ids
     stars = [
         {
             "index": i,
             "id": None if ids is None else ids[i],
-            "flags": names[i],
+            "flags": [*names[i], *input_names[i]],
             "at_epochs": [
                 {f: _o(v[i, k]) for f, v in zip(VALUE_FIELDS, values, strict=True)}
                 for k in range(targets.size)
@@ -328,7 +346,9 @@ def convert(args):
         "epochs": epochs_out(targets),
         "star_count": n,
         "units": UNITS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in present},
+        "flag_meanings": {
+            k: v for k, v in {**FLAG_MEANINGS, **_INPUT_FLAG_MEANINGS}.items() if k in present
+        },
         "methods": METHODS,
         "stars": stars,
     }

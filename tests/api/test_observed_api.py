@@ -545,6 +545,31 @@ def test_frames_radial_velocity_of_light_speed_refused(client, frames_example, r
     assert "< 299792.458" in str(r.json["errors"])
 
 
+def test_frames_implausible_inputs_named_in_the_flags(client, frames_example):
+    """As in the propagation and observed answers: a radial velocity in m/s (-41,700 for
+    -41.7 km/s, above the 5,000 km/s bound of PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE)
+    and a proper motion above 10.4 arcsec/yr are converted as given and named in the star's
+    flags, with their meanings; the frames answer said nothing of them."""
+    good = dict(frames_example["stars"][0])
+    fast_rv = dict(good, radial_velocity_km_s=-41_700.0)
+    fast_pm = dict(good, pm_ra_cosdec_mas_yr=30_000.0)
+    r = client.post(FRAMES, json=dict(frames_example, stars=[good, fast_rv, fast_pm]))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    implausible = {"radial_velocity_implausible", "proper_motion_implausible"}
+    assert [set(s["flags"]) & implausible for s in r.json["stars"]] == [
+        set(),
+        {"radial_velocity_implausible"},
+        {"proper_motion_implausible"},
+    ]
+    assert implausible <= set(r.json["flag_meanings"])
+    assert r.json["stars"][1]["at_epochs"][0]["ra_deg"] is not None
+    text = client.post(
+        FRAMES, json=dict(frames_example, stars=[good, fast_rv]), headers={"Accept": "text/csv"}
+    ).get_data(as_text=True)
+    n_epochs = len(frames_example.get("target_epochs", [0]))
+    assert text.count("radial_velocity_implausible") == n_epochs  # one row per epoch
+
+
 def test_readiness_reports_earth_orientation(client):
     r = client.get("/ready")
     assert r.status_code == 200
