@@ -177,7 +177,8 @@ class FrameConversion:
     ----------
     ra_deg, dec_deg : ndarray
         Longitude-like and latitude-like angle in the target frame, degrees (right ascension
-        and declination; galactic l, b; ecliptic longitude and latitude).
+        and declination; galactic l, b; ecliptic longitude and latitude); longitude in
+        [0, 360).
     parallax_mas : ndarray
         Parallax, mas (NaN where not known).
     pm_ra_cosdec_mas_yr, pm_dec_mas_yr : ndarray
@@ -267,7 +268,9 @@ def _from_state(s: _State):
     with np.errstate(divide="ignore", invalid="ignore"):
         rv_geom = zeta * AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD / s.px_mas
     rv = np.where(s.distant | np.isnan(s.rv_km_s), s.rv_km_s, rv_geom)
-    return np.mod(ra, 2 * np.pi) / RAD_PER_DEG, dec / RAD_PER_DEG, s.px_mas, pmra, pmdec, rv
+    ra_deg = np.mod(ra / RAD_PER_DEG, 360.0)
+    ra_deg = np.where(ra_deg >= 360.0, ra_deg - 360.0, ra_deg)  # -1e-15 -> 360 - 1e-15 -> 360
+    return ra_deg, dec / RAD_PER_DEG, s.px_mas, pmra, pmdec, rv
 
 
 def _rotate(s: _State, m) -> _State:

@@ -286,6 +286,19 @@ def test_icrs_to_galactic_matches_sofa_test_values():
     assert c.dec_deg / DEG == pytest.approx(-0.7853981633974483096157, abs=1e-14)
 
 
+@pytest.mark.parametrize("b_deg", [0.0, 30.0, -45.0, 60.0])
+def test_longitude_zero_comes_out_as_zero_not_360(b_deg):
+    # Galactic l = 0 to ICRS and back: pyerfa icrs2g gives l in [0, 2 pi) (SOFA anp), here
+    # 0 within 1e-9 deg; the longitude came out as 360.0 (np.mod of -1e-16 rad rounds to
+    # 2 pi). Range checked exactly: [0, 360).
+    icrs = F.convert(0.0, b_deg, np.nan, 0.0, 0.0, np.nan, 2000.0, GAL, ICRS)
+    back = F.convert(icrs.ra_deg, icrs.dec_deg, np.nan, 0.0, 0.0, np.nan, 2000.0, ICRS, GAL)
+    want_l = erfa.icrs2g(icrs.ra_deg / DEG, icrs.dec_deg / DEG)[0] * DEG
+    assert 0.0 <= back.ra_deg < 360.0
+    assert min(want_l, 360.0 - want_l) < 1e-9
+    assert back.ra_deg < 1e-9
+
+
 @pytest.mark.parametrize("equinox", [2000.0, 1850.0, "of_date"])
 def test_ecliptic_positions_match_erfa_eqec06(equinox):
     rng = np.random.default_rng(11)
