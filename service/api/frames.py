@@ -253,6 +253,10 @@ METHODS = [
     "FK5 <-> ICRS: Hipparcos frame rotation and spin (SOFA fk52h/h2fk5, fk5hz).",
     "FK5 other equinoxes: IAU 1976 precession. Ecliptic: IAU 2006 (SOFA ecm06). Galactic: "
     "Hipparcos definition (SOFA icrs2g).",
+    "A frame of another equinox, and the ecliptic of date (the equinox of each epoch), is "
+    "held fixed: its proper motions contain no rate of precession of its axes.",
+    "FK4 positions at an epoch other than B1950.0 are moved to epoch B1950.0 in FK4 with "
+    "uniform space motion before fk425 (which needs epoch and equinox B1950.0).",
 ]
 
 

@@ -619,3 +619,31 @@ def test_atmosphere_null_is_every_default(client, observed_example):
     assert absent.status_code == null.status_code == 200, null.get_json()
     assert null.json["refraction"] == absent.json["refraction"]
     assert null.json["refraction"]["mode"] == "standard_atmosphere_pressure"
+
+
+def test_frames_ecliptic_of_date_is_a_fixed_frame_as_stated(client):
+    """The answer states that the ecliptic of date is held fixed (no precession rate in its
+    proper motions): its motion at J2100.0 is the ICRS motion vector turned by pyerfa ecm06
+    of J2100.0 (IAU 2006), to 1e-6 mas/yr. Longitude motion with a precession rate would
+    differ by about 50 arcsec/yr."""
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 100.0, "pm_dec_mas_yr": -50.0}
+    body = {
+        "stars": [star],
+        "catalogue_epoch": "J2100.0",
+        "from_frame": {"name": "icrs"},
+        "to_frame": {"name": "ecliptic", "equinox": "of_date"},
+    }
+    r = client.post(FRAMES, json=body)
+    assert r.status_code == 200
+    assert any("held fixed" in m and "ecliptic of date" in m for m in r.json["methods"])
+    got = r.json["stars"][0]["at_epochs"][0]
+    ra, dec = np.radians(10.0), np.radians(20.0)
+    e_ra = np.array([-np.sin(ra), np.cos(ra), 0.0])
+    e_dec = np.array([-np.sin(dec) * np.cos(ra), -np.sin(dec) * np.sin(ra), np.cos(dec)])
+    m = erfa.ecm06(*erfa.epj2jd(2100.0))
+    w = m @ (100.0 * e_ra - 50.0 * e_dec)  # mas/yr
+    lon, lat = np.radians(got["ra_deg"]), np.radians(got["dec_deg"])
+    e_lon = np.array([-np.sin(lon), np.cos(lon), 0.0])
+    e_lat = np.array([-np.sin(lat) * np.cos(lon), -np.sin(lat) * np.sin(lon), np.cos(lat)])
+    assert got["pm_ra_cosdec_mas_yr"] == pytest.approx(w @ e_lon, abs=1e-6)
+    assert got["pm_dec_mas_yr"] == pytest.approx(w @ e_lat, abs=1e-6)
