@@ -22,7 +22,8 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .propagation import FLAG_MEANINGS as PROPAGATION_FLAG_MEANINGS
+from .propagation import IMPLAUSIBLE_INPUT_FLAGS as _IMPLAUSIBLE_INPUTS
+from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -234,16 +235,6 @@ FLAG_MEANINGS = {
     "proper_motion_missing": "No proper motion: taken as zero.",
 }
 
-#: Propagation flags that a frames answer names per star (implausible inputs).
-_IMPLAUSIBLE_INPUTS = int(
-    core_prop.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
-    | core_prop.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
-    | core_prop.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
-)
-_INPUT_FLAG_MEANINGS = {
-    name: PROPAGATION_FLAG_MEANINGS[name]
-    for name in flag_names([_IMPLAUSIBLE_INPUTS], core_prop.PropagationFlag)[0]
-}
 
 METHODS = [
     "FK4 B1950.0 <-> FK5 J2000.0: Standish (1982) / Aoki et al. (1983), IAU SOFA fk425 "

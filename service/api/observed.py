@@ -37,7 +37,8 @@ from .common import (
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
 from .observability import count_stars
-from .propagation import FLAG_MEANINGS as PROPAGATION_FLAG_MEANINGS
+from .propagation import IMPLAUSIBLE_INPUT_FLAGS as _IMPLAUSIBLE_INPUTS
+from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .spelling import unknown_name_text
 from .tables import StarTableField
 
@@ -672,17 +673,6 @@ def observed(args):
     count_stars("/v1/observed", n)
     return current_app.json.response(body)
 
-
-#: Propagation flags that an observed answer names per star (implausible inputs).
-_IMPLAUSIBLE_INPUTS = int(
-    core_prop.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
-    | core_prop.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
-    | core_prop.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
-)
-_INPUT_FLAG_MEANINGS = {
-    name: PROPAGATION_FLAG_MEANINGS[name]
-    for name in flag_names([_IMPLAUSIBLE_INPUTS], core_prop.PropagationFlag)[0]
-}
 
 _AST = (
     "ra_deg",

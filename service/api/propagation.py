@@ -312,6 +312,18 @@ FLAG_MEANINGS = {
     "error.",
 }
 
+#: Propagation flags about implausible inputs, which answers of other endpoints that move
+#: stars (frames, observed places) name per star, with their meanings.
+IMPLAUSIBLE_INPUT_FLAGS = int(
+    core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
+    | core.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
+    | core.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
+)
+IMPLAUSIBLE_INPUT_MEANINGS = {
+    name: FLAG_MEANINGS[name]
+    for name in flag_names([IMPLAUSIBLE_INPUT_FLAGS], core.PropagationFlag)[0]
+}
+
 
 def _covariance(table, n):
     """Build the (N, 6, 6) covariance from standard errors and correlations.
