@@ -22,8 +22,8 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .propagation import IMPLAUSIBLE_INPUT_FLAGS as _IMPLAUSIBLE_INPUTS
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
+from .propagation import input_flags
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -304,8 +304,7 @@ def convert(args):
     moved = propagated.astrometry
     # Implausible inputs (proper motion, radial velocity, space velocity) are named in each
     # star's flags, as in the propagation and observed answers.
-    input_masks = np.bitwise_or.reduce(np.asarray(propagated.flags).reshape(n, -1), axis=1)
-    input_names = flag_names(input_masks & _IMPLAUSIBLE_INPUTS, core_prop.PropagationFlag)
+    _, input_names = input_flags(propagated.flags, n)
     out = core.convert(
         moved.ra_deg,
         moved.dec_deg,

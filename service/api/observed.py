@@ -37,8 +37,8 @@ from .common import (
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
 from .observability import count_stars
-from .propagation import IMPLAUSIBLE_INPUT_FLAGS as _IMPLAUSIBLE_INPUTS
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
+from .propagation import input_flags
 from .spelling import unknown_name_text
 from .tables import StarTableField
 
@@ -562,10 +562,9 @@ def observed(args):
     # Missing motions stay missing for the flags (the propagation reports them as NaN too).
     # Implausible inputs (proper motion, radial velocity, space velocity) are warned about as
     # in the propagation answer; the flags depend on the inputs only, not on the instant.
-    input_masks = np.bitwise_or.reduce(np.asarray(propagated.flags).reshape(n, -1), axis=1)
+    # They are also named in each star's flags, so that CSV and Arrow answers carry them.
+    input_masks, input_names = input_flags(propagated.flags, n)
     warnings = flag_warnings(input_masks, table, PROPAGATION_WARNINGS)
-    # ... and named in each star's flags, so that CSV and Arrow answers carry them too.
-    input_names = flag_names(input_masks & _IMPLAUSIBLE_INPUTS, core_prop.PropagationFlag)
     eop = _earth_orientation()
     try:
         res = core.observed_places(

@@ -325,6 +325,13 @@ IMPLAUSIBLE_INPUT_MEANINGS = {
 }
 
 
+def input_flags(propagation_flags, n: int):
+    """Per star, the propagation flags of all its epochs or instants together (they depend
+    on the inputs), and the names of the implausible-input ones among them."""
+    masks = np.bitwise_or.reduce(np.asarray(propagation_flags).reshape(n, -1), axis=1)
+    return masks, flag_names(masks & IMPLAUSIBLE_INPUT_FLAGS, core.PropagationFlag)
+
+
 def _covariance(table, n):
     """Build the (N, 6, 6) covariance from standard errors and correlations.
 
