@@ -21,6 +21,7 @@ from .common import (
     epochs_out,
     number_field,
 )
+from .errors import MORE_FIELD, further
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .observability import count_stars
@@ -473,7 +474,7 @@ def _refuse_half_proper_motions(table, pma, pmd) -> None:
         )
     if half.size > MAX_HALF_MOTION_ERRORS:
         more = half.size - MAX_HALF_MOTION_ERRORS
-        errors.append({"field": "(more)", "message": f"{more} further stars like these"})
+        errors.append({"field": MORE_FIELD, "message": further(more, "stars like these")})
     abort(422, errors=errors)
 
 

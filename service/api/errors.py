@@ -189,7 +189,16 @@ def flatten_messages(messages, prefix: str = "") -> list[dict]:
     return out
 
 
-#: The count in a "(more)" entry of a list cut short ("450 further invalid values ...").
+#: Field of the entry that stands for the errors a list cut short leaves out.
+MORE_FIELD = "(more)"
+
+
+def further(count: int, what: str = "invalid values not listed") -> str:
+    """Message of a MORE_FIELD entry: "450 further invalid values not listed"."""
+    return f"{count} further {what}"
+
+
+#: The count in a MORE_FIELD entry's message (written by :func:`further`).
 _FURTHER = re.compile(r"(\d+) further ")
 
 
@@ -197,9 +206,9 @@ def _invalid_count(errors: list[dict]) -> int:
     """Offending fields in a list of errors, counting those a "(more)" entry stands for."""
     n = 0
     for e in errors:
-        further = _FURTHER.match(str(e.get("message", "")))
-        if str(e.get("field", "")).endswith("(more)") and further:
-            n += int(further.group(1))
+        left_out = _FURTHER.match(str(e.get("message", "")))
+        if str(e.get("field", "")).endswith(MORE_FIELD) and left_out:
+            n += int(left_out.group(1))
         else:
             n += 1
     return n
@@ -245,9 +254,7 @@ def handle_http_exception(error: HTTPException) -> Response:
         )
     if errors and len(errors) > MAX_LISTED_ERRORS:
         more = len(errors) - MAX_LISTED_ERRORS
-        errors = errors[:MAX_LISTED_ERRORS] + [
-            {"field": "(more)", "message": f"{more} further invalid values not listed"}
-        ]
+        errors = errors[:MAX_LISTED_ERRORS] + [{"field": MORE_FIELD, "message": further(more)}]
     if errors:
         # A client's own text (an unknown 10 MB key) is never echoed at length.
         errors = [

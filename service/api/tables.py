@@ -29,6 +29,7 @@ from flask_smorest import abort
 from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # noqa: F401
 
 # Bounds shared with the batch jobs (re-exported for the endpoint schemas).
+from .errors import MORE_FIELD, further
 from .spelling import unknown_name_text
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
@@ -191,12 +192,14 @@ class TableErrors:
                 for m in ms
             ]
             if self.more:
-                errors.append({"field": "(more)", "message": f"{self.more} further invalid values"})
+                errors.append(
+                    {"field": MORE_FIELD, "message": further(self.more, "invalid values")}
+                )
             abort(422, errors=errors)
         if self.items:
             messages = dict(self.items)
             if self.more:
-                messages["(more)"] = [f"{self.more} further invalid values not listed"]
+                messages[MORE_FIELD] = [further(self.more)]
             raise ma.ValidationError(messages)
 
 
