@@ -57,6 +57,7 @@ class Catalogue:
         self.from_json = from_json
 
 
+#: An error's field that names a CSV line and column ("line 7: dec_deg").
 _CSV_LINE_FIELD = re.compile(r"^line (\d+): (.+)$")
 
 
@@ -322,10 +323,10 @@ def _unknown_columns(exc: SkydriftError) -> list[str]:
     """Header columns an endpoint refused as unknown, if that was the only complaint."""
     names = []
     for e in exc.errors:
-        m = re.match(r"^line \d+: (.+)$", e.field)
+        m = _CSV_LINE_FIELD.match(e.field)
         if not (m and e.message.startswith("unknown field")):
             return []
-        names.append(m.group(1))
+        names.append(m.group(2))
     return names
 
 
