@@ -209,8 +209,9 @@ CATALOGUE_EPOCH_FIELD = InputField(
 
 @functools.cache
 def run_now() -> _dt.datetime:
-    """What "now" means in a batch run: the clock read once, at the first "now" of the run,
-    so that every option given as "now" is the same instant (as in one API request)."""
+    """What "now" means in a batch run: the clock read once, as the run reads its first
+    epoch option, so that every option given as "now" is the same instant (as in one API
+    request)."""
     return _dt.datetime.now(_dt.UTC)
 
 
@@ -220,9 +221,7 @@ def parse_epoch_option(text: str | None, option: str) -> float | None:
     if text is None:
         return None
     try:
-        if text.strip().lower() == "now":
-            return parse_epoch(text, now=run_now())
-        return parse_epoch(text)
+        return parse_epoch(text, now=run_now())
     except EpochError as exc:
         raise BatchInputError(f"{option}: {exc}") from None
 
