@@ -188,6 +188,13 @@ def _header_names(line: bytes) -> list[str]:
     return next(csv.reader([text.rstrip("\r")]), [])
 
 
+def is_nullable_int(dtype) -> bool:
+    """pandas' nullable integers (Int64, UInt64, ...), as kept whole-number columns are read."""
+    return not isinstance(dtype, np.dtype) and getattr(
+        getattr(dtype, "numpy_dtype", None), "kind", ""
+    ) in ("i", "u")
+
+
 def _cell_rules(dtypes) -> dict:
     """Column -> "number", "whole" or "whole_or_empty" (pandas' nullable integers, for
     kept columns) for the columns pandas is told to read as numbers."""
@@ -196,7 +203,7 @@ def _cell_rules(dtypes) -> dict:
         try:
             kind = np.dtype(dtype).kind
         except TypeError:  # a pandas extension dtype: nullable integers, else text (no rule)
-            if getattr(getattr(dtype, "numpy_dtype", None), "kind", "") in ("i", "u"):
+            if is_nullable_int(dtype):
                 rules[name] = "whole_or_empty"
             continue
         if kind == "f":
@@ -464,19 +471,26 @@ def _line_number(stream, line: bytes) -> int | None:
         buf = buf[cut:]
 
 
-def first_file_has_no_rows(source) -> bool:
-    """Whether the input's first file holds a header and nothing after it but blank lines:
-    the columns' types read from it (text, for a column without cells) say nothing."""
+def _first_file_head(source, size: int = HEAD_BYTES):
+    """(first file of the input, its first ``size`` bytes), or None if there is none or it
+    cannot be read (the run itself then says why)."""
     try:
         files = input_files(source)
         if not files:
-            return False
+            return None
         with files[0] as stream:
-            data = stream.read(HEAD_BYTES + 1)
+            return files[0], stream.read(size)
     except (OSError, ValueError):
+        return None
+
+
+def first_file_has_no_rows(source) -> bool:
+    """Whether the input's first file holds a header and nothing after it but blank lines:
+    the columns' types read from it (text, for a column without cells) say nothing."""
+    head = _first_file_head(source, HEAD_BYTES + 1)
+    if head is None or len(head[1]) > HEAD_BYTES:
         return False
-    if len(data) > HEAD_BYTES:
-        return False
+    data = head[1]
     end = _header_end(data)
     return end >= len(data) or not data[end + 1 :].strip(b" \t\r\n")
 
@@ -489,15 +503,10 @@ def columns_without_cells(source, columns) -> set:
     """Those of ``columns`` whose every cell is empty in the first SAMPLE_ROWS rows of the
     input's first file: the float64 type they get from those rows says nothing of the
     cells that follow (an identifier column whose first stars have none)."""
-    try:
-        files = input_files(source)
-        if not files or not columns:
-            return set()
-        with files[0] as stream:
-            data = stream.read(HEAD_BYTES)
-    except (OSError, ValueError):
+    head = _first_file_head(source) if columns else None
+    if head is None:
         return set()
-    text = data.decode("utf-8", "surrogateescape").removeprefix("\ufeff")
+    text = head[1].decode("utf-8", "surrogateescape").removeprefix("\ufeff")
     reader = csv.reader(io.StringIO(text, newline=""))
     try:
         header = next(reader, [])
@@ -520,17 +529,13 @@ def head_problem(source, column: str):
     """The first problem in the first rows of the input's first file, ``column`` read as
     numbers: (file, line number, what is wrong, the column or None for a whole row), or
     None."""
-    try:
-        files = input_files(source)
-        if not files:
-            return None
-        with files[0] as stream:
-            data = stream.read(HEAD_BYTES)
-    except (OSError, ValueError):
+    head = _first_file_head(source)
+    if head is None:
         return None
+    first, data = head
     data = data[: data.rfind(b"\n") + 1] or data
     found = first_problem(data, {column: "number"})
     if found is None:
         return None
     start, _, message, where = found
-    return _path_shown(source, files[0]), start + 1, message, where
+    return _path_shown(source, first), start + 1, message, where

@@ -22,6 +22,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .. import __version__
+from .csvinput import is_nullable_int
 from .jobs import JOBS
 from .spec import (
     CATALOGUE_EPOCH_FIELD,
@@ -285,14 +286,6 @@ def _nullable(dtype):
     return dtype
 
 
-def _nullable_int(dtype) -> bool:
-    """pandas' nullable integers (Int64, UInt64, ...): what :func:`_nullable` reads whole
-    numbers of kept columns as."""
-    return not isinstance(dtype, np.dtype) and getattr(
-        getattr(dtype, "numpy_dtype", None), "kind", ""
-    ) in ("i", "u")
-
-
 def _is_numeric_numpy(dtype) -> bool:
     """A numpy integer or float dtype (not a pandas extension dtype)."""
     return isinstance(dtype, np.dtype) and dtype.kind in "fiu"
@@ -430,7 +423,7 @@ def process_partition(frame, plan: BatchPlan):
     results = plan.job.compute(inputs, plan.params) if n else {}
     # Kept columns as they are: numpy arrays, or pandas' nullable integers as such (their
     # to_numpy() would give objects, and the writer floats that round large ids).
-    data = {k: frame[k].array if _nullable_int(frame[k].dtype) else frame[k].to_numpy()
+    data = {k: frame[k].array if is_nullable_int(frame[k].dtype) else frame[k].to_numpy()
             for k in plan.keep}  # fmt: skip
     for col in plan.job.outputs:
         if col.dtype == "category":
