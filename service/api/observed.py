@@ -707,12 +707,17 @@ def _earth_orientation():
     return _load_tables(settings.eop_file or None)[0]
 
 
-def _eop_ready():
+def _eop_state():
+    """(tables, problem or None, source label) of the Earth-orientation tables in use."""
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     eop, problem = _load_tables(settings.eop_file or None)
+    return eop, problem, "SKYDRIFT_EOP_FILE" if settings.eop_file else "astropy-iers-data"
+
+
+def _eop_ready():
+    eop, problem, source = _eop_state()
     if problem:
         return False, problem + "; UT1-UTC and polar motion taken as zero"
-    source = "SKYDRIFT_EOP_FILE" if settings.eop_file else "astropy-iers-data"
     return True, (
         f"{source}: {eop.primary.name}, measured to MJD {eop.primary.last_measured_mjd:.0f}"
     )
@@ -721,12 +726,8 @@ def _eop_ready():
 def _eop_in_use():
     """(source label, MJD of the last measured day) of the Earth-orientation table the
     observed places use; None when none is usable (for the age on /metrics)."""
-    settings = current_app.config["SKYDRIFT_SETTINGS"]
-    eop, problem = _load_tables(settings.eop_file or None)
-    if problem:
-        return None
-    source = "SKYDRIFT_EOP_FILE" if settings.eop_file else "astropy-iers-data"
-    return source, eop.primary.last_measured_mjd
+    eop, problem, source = _eop_state()
+    return None if problem else (source, eop.primary.last_measured_mjd)
 
 
 def register(app, api):
