@@ -666,6 +666,7 @@ def space_velocity(
         _velocity_block([a[sl] if a.ndim else a for a in flat], low_snr_threshold, out, sl)
 
     if uncertainty_method != "linear" and n:
+        # parallax, distance and parallax error, in _prepare's order (_velocity_block)
         plx, dist, sig_p = (np.broadcast_to(flat[k], (n,)) for k in (4, 6, 7))
         index = np.flatnonzero(
             monte_carlo_stars(plx, sig_p, dist, uncertainty_method, low_snr_threshold)
