@@ -115,20 +115,32 @@ def test_propagate_csv_batched_equals_whole(live_service):
 def test_now_is_one_instant_across_batches(live_service, demo_catalogue):
     """A call sent as several requests means one instant by "now": each request's "now" was
     its own clock reading, so 30 stars in batches of 7 were moved to five epochs a few ms
-    apart, and the joined JSON answer named the first batch's epoch for all of them. The
-    reference for every star: the same star sent alone to the epoch the answer names."""
+    apart, and the joined JSON answer named the first batch's epoch for all of them. CSV:
+    the answer's epoch column; JSON (whose answer has no epoch per star): the requests
+    sent, which must all carry one pinned instant, not "now"."""
     text = (DEMO / "catalogue.csv").read_text()
     sky = Client(live_service, batch_size=7)
     out = sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=["now", "J2100"])
     rows = list(csv.DictReader(io.StringIO(out)))
     assert len({r["epoch_julian_tdb"] for r in rows}) == 2  # "now" and J2100
-    stars = demo_catalogue["stars"]
-    answer = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs="now")
-    (epoch,) = answer["epochs"]
-    alone = Client(live_service).propagate(
-        stars[-1:], catalogue_epoch="J2016.0", target_epochs=[epoch["julian_epoch_tdb"]]
-    )
-    assert answer["stars"][-1]["at_epochs"] == alone["stars"][0]["at_epochs"]
+    sent = []
+    post = sky.post
+
+    def recording_post(path, body, *args, **kwargs):
+        sent.append(tuple(body["target_epochs"]))
+        return post(path, body, *args, **kwargs)
+
+    sky.post = recording_post
+    answer = sky.propagate(demo_catalogue["stars"], catalogue_epoch="J2016.0",
+                           target_epochs="now")  # fmt: skip
+    assert len(sent) == 5 and len(set(sent)) == 1 and sent[0][0] != "now"
+    # The answer's epoch is the instant pinned (ISO text to the microsecond), as the answer
+    # writes it: rounded to the millisecond.
+    import datetime as dt
+
+    pinned = dt.datetime.fromisoformat(sent[0][0])
+    answered = dt.datetime.fromisoformat(answer["epochs"][0]["iso_utc"])
+    assert abs((answered - pinned).total_seconds()) <= 0.0005
 
 
 def test_csv_error_lines_refer_to_the_callers_text(live_service):
