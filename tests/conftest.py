@@ -20,7 +20,11 @@ def settings():
 def app(settings):
     from service.api import create_app
 
-    return create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True})
+    from .answer_check import CheckedClient
+
+    app = create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True})
+    app.test_client_class = CheckedClient  # every answer checked against the OpenAPI document
+    return app
 
 
 @pytest.fixture()

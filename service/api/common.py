@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import copy
 import datetime as _dt
 import functools
 import operator
@@ -228,6 +229,32 @@ PROPAGATION_WARNINGS = {
 }
 
 
+def always_present(schema=None, *, unless: tuple[str, ...] = ()):
+    """Declare every member of an answer schema present in every answer, as ``required``
+    in the OpenAPI document (a generated client then types them as always there; null is
+    allowed where the field allows none). The members an answer may leave out are named in
+    ``unless``. A class decorator, or a call on a schema class (``Schema.from_dict``).
+
+    The fields are copied before they are marked: a field object shared with a request
+    schema must stay optional there.
+    """
+
+    def mark(cls):
+        fields = cls._declared_fields
+        unknown = set(unless) - set(fields)
+        if unknown:
+            raise ValueError(f"{cls.__name__} has no member(s) {sorted(unknown)}")
+        for name, field in list(fields.items()):
+            if name not in unless:
+                field = copy.copy(field)
+                field.required = True
+                fields[name] = field
+        return cls
+
+    return mark if schema is None else mark(schema)
+
+
+@always_present
 class WarningSchema(ma.Schema):
     index = ma.fields.Integer()
     id = ma.fields.Raw(allow_none=True)
@@ -400,6 +427,7 @@ def epoch_field_to_openapi(self, field, **kwargs) -> dict:
     return {}
 
 
+@always_present
 class EpochOutSchema(ma.Schema):
     julian_epoch_tdb = ma.fields.Float(
         metadata={
@@ -471,11 +499,13 @@ def _epochs_out(values, utc_jd=None) -> list[dict]:
     ]
 
 
+@always_present
 class FieldErrorSchema(ma.Schema):
     field = ma.fields.String(metadata={"description": "Path of the offending value."})
     message = ma.fields.String()
 
 
+@always_present(unless=("detail", "errors", "request_id"))
 class ProblemSchema(ma.Schema):
     """RFC 9457 problem details."""
 

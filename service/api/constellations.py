@@ -18,6 +18,7 @@ from .common import (
     EpochOutSchema,
     QueryFloat,
     StrictFloat,
+    always_present,
     epochs_out,
     number_field,
 )
@@ -273,6 +274,7 @@ class OutlineQuerySchema(ma.Schema):
     )
 
 
+@always_present
 class ConstellationSchema(ma.Schema):
     abbreviation = ma.fields.String(metadata={"description": "IAU abbreviation."})
     name = ma.fields.String(metadata={"description": "IAU name."})
@@ -280,11 +282,13 @@ class ConstellationSchema(ma.Schema):
     area_deg2 = ma.fields.Float(metadata={"description": "Solid angle, square degrees."})
 
 
+@always_present
 class ConstellationListSchema(ma.Schema):
     count = ma.fields.Integer()
     constellations = ma.fields.List(ma.fields.Nested(ConstellationSchema))
 
 
+@always_present(unless=("margin_arcsec", "across", "near_boundary"))
 class MembershipSchema(ma.Schema):
     index = ma.fields.Integer(metadata={"description": "Position of the star in the request."})
     id = ma.fields.Raw(allow_none=True)
@@ -305,6 +309,7 @@ class MembershipSchema(ma.Schema):
     flags = ma.fields.List(ma.fields.String())
 
 
+@always_present(unless=("stars", "columns"))
 class LookupResponseSchema(ma.Schema):
     reduction = ma.fields.String()
     epoch = ma.fields.Nested(EpochOutSchema, allow_none=True)
@@ -323,12 +328,14 @@ class LookupResponseSchema(ma.Schema):
     )
 
 
+@always_present
 class CrossingSchema(ma.Schema):
     epoch = ma.fields.Nested(EpochOutSchema)
     from_constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
     to_constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
 
 
+@always_present
 class StarCrossingsSchema(ma.Schema):
     index = ma.fields.Integer()
     id = ma.fields.Raw(allow_none=True)
@@ -338,6 +345,7 @@ class StarCrossingsSchema(ma.Schema):
     flags = ma.fields.List(ma.fields.String())
 
 
+@always_present
 class CrossingsResponseSchema(ma.Schema):
     reduction = ma.fields.String()
     catalogue_epoch = ma.fields.Nested(EpochOutSchema)
@@ -351,6 +359,7 @@ class CrossingsResponseSchema(ma.Schema):
     stars = ma.fields.List(ma.fields.Nested(StarCrossingsSchema))
 
 
+@always_present
 class GeoJsonFeatureSchema(ma.Schema):
     type = ma.fields.String(metadata={"description": "Feature (RFC 7946)."})
     geometry = ma.fields.Dict(
@@ -372,6 +381,7 @@ class GeoJsonFeatureSchema(ma.Schema):
     )
 
 
+@always_present
 class GeoJsonCollectionSchema(ma.Schema):
     type = ma.fields.String(metadata={"description": "FeatureCollection (RFC 7946)."})
     features = ma.fields.List(ma.fields.Nested(GeoJsonFeatureSchema))

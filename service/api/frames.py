@@ -16,6 +16,7 @@ from .common import (
     Blueprint,
     EpochField,
     EpochOutSchema,
+    always_present,
     epochs_out,
     number_field,
     request_now,
@@ -197,15 +198,18 @@ class FramesRequestSchema(ma.Schema):
 
 
 #: The astrometry of one star at one target epoch in the output frame (null: unknown).
-FrameAtEpochSchema = ma.Schema.from_dict(
-    {
-        name: ma.fields.Float(allow_none=True, metadata={"description": f"{UNITS[name]}."})
-        for name in VALUE_FIELDS
-    },
-    name="FrameAtEpochSchema",
+FrameAtEpochSchema = always_present(
+    ma.Schema.from_dict(
+        {
+            name: ma.fields.Float(allow_none=True, metadata={"description": f"{UNITS[name]}."})
+            for name in VALUE_FIELDS
+        },
+        name="FrameAtEpochSchema",
+    )
 )
 
 
+@always_present
 class FrameResultSchema(ma.Schema):
     index = ma.fields.Integer()
     id = ma.fields.Raw(allow_none=True)
@@ -216,6 +220,7 @@ class FrameResultSchema(ma.Schema):
     )
 
 
+@always_present
 class FramesResponseSchema(ma.Schema):
     from_frame = ma.fields.String()
     to_frame = ma.fields.String()

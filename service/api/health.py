@@ -6,21 +6,24 @@ import marshmallow as ma
 from flask import current_app
 
 from .. import __version__
-from .common import Blueprint
+from .common import Blueprint, always_present
 
 blp = Blueprint("health", __name__, description="Liveness and readiness of the service.")
 
 
+@always_present
 class HealthSchema(ma.Schema):
     status = ma.fields.String(metadata={"description": "Always 'ok' while the process runs."})
     version = ma.fields.String()
 
 
+@always_present
 class CheckSchema(ma.Schema):
     ok = ma.fields.Boolean()
     detail = ma.fields.String()
 
 
+@always_present
 class ReadySchema(ma.Schema):
     status = ma.fields.String(metadata={"description": "'ready' or 'degraded'."})
     checks = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.Nested(CheckSchema))

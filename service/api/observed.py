@@ -30,6 +30,7 @@ from .common import (
     InstantField,
     StrictFloat,
     WarningSchema,
+    always_present,
     epochs_out,
     flag_warnings,
     instants_out,
@@ -335,6 +336,7 @@ def _out(field_class, description, **kwargs):
     return field_class(metadata={"description": description}, **kwargs)
 
 
+@always_present
 class EarthOrientationOutSchema(ma.Schema):
     table = _out(ma.fields.String, "Earth orientation table used ('none' when unavailable).")
     status = _out(ma.fields.String, "measured, predicted or unavailable.")
@@ -348,11 +350,13 @@ class EarthOrientationOutSchema(ma.Schema):
     )
 
 
+@always_present
 class SunOutSchema(ma.Schema):
     altitude_deg = _out(ma.fields.Float, "Altitude of the Sun, degrees (advisory).")
     azimuth_deg = _out(ma.fields.Float, "Azimuth of the Sun, degrees, north = 0, east = 90.")
 
 
+@always_present
 class SiteOutSchema(ma.Schema):
     name = _out(
         ma.fields.String,
@@ -364,6 +368,7 @@ class SiteOutSchema(ma.Schema):
     height_m = _out(ma.fields.Float, "Height above the WGS84 ellipsoid, metres.")
 
 
+@always_present
 class RefractionOutSchema(ma.Schema):
     mode = _out(
         ma.fields.String,
@@ -377,12 +382,14 @@ class RefractionOutSchema(ma.Schema):
     model = _out(ma.fields.String, "Refraction model.")
 
 
+@always_present
 class LimitsOutSchema(ma.Schema):
     horizon_limit_deg = _out(ma.fields.Float, "Altitude limit applied, degrees (advisory).")
     sun_avoidance_deg = _out(ma.fields.Float, "Sun avoidance angle applied, degrees (advisory).")
     note = _out(ma.fields.String, "Where the limits came from.")
 
 
+@always_present
 class InstantOutSchema(ma.Schema):
     epoch = ma.fields.Nested(EpochOutSchema)
     utc_jd = ma.fields.List(ma.fields.Float(), metadata={"description": "UTC two-part JD."})
@@ -391,20 +398,23 @@ class InstantOutSchema(ma.Schema):
 
 
 #: The place of one star at one instant (null: not finite, e.g. airmass below the horizon).
-ObservedPlaceSchema = ma.Schema.from_dict(
-    {
-        **{
-            name: ma.fields.Float(allow_none=True, metadata={"description": f"{unit}."})
-            for name, unit in PLACE_FIELDS.items()
+ObservedPlaceSchema = always_present(
+    ma.Schema.from_dict(
+        {
+            **{
+                name: ma.fields.Float(allow_none=True, metadata={"description": f"{unit}."})
+                for name, unit in PLACE_FIELDS.items()
+            },
+            "flags": ma.fields.List(
+                ma.fields.String(), metadata={"description": "Names from flag_meanings."}
+            ),
         },
-        "flags": ma.fields.List(
-            ma.fields.String(), metadata={"description": "Names from flag_meanings."}
-        ),
-    },
-    name="ObservedPlaceSchema",
+        name="ObservedPlaceSchema",
+    )
 )
 
 
+@always_present
 class ObservedStarSchema(ma.Schema):
     index = ma.fields.Integer()
     id = ma.fields.Raw(allow_none=True)
@@ -414,6 +424,7 @@ class ObservedStarSchema(ma.Schema):
     )
 
 
+@always_present
 class ObservedResponseSchema(ma.Schema):
     advisory = ma.fields.String()
     site = ma.fields.Nested(SiteOutSchema)

@@ -24,6 +24,7 @@ from .common import (
     EpochField,
     EpochOutSchema,
     WarningSchema,
+    always_present,
     epochs_out,
     flag_warnings,
     number_field,
@@ -229,6 +230,7 @@ class PropagationRequestSchema(ma.Schema):
             )
 
 
+@always_present
 class AtEpochSchema(ma.Schema):
     ra_deg = ma.fields.Float()
     dec_deg = ma.fields.Float()
@@ -249,6 +251,7 @@ class AtEpochSchema(ma.Schema):
     )
 
 
+@always_present
 class StarResultSchema(ma.Schema):
     index = ma.fields.Integer(metadata={"description": "Position of the star in the request."})
     id = ma.fields.Raw(allow_none=True)
@@ -256,6 +259,7 @@ class StarResultSchema(ma.Schema):
     at_epochs = ma.fields.List(ma.fields.Nested(AtEpochSchema))
 
 
+@always_present(unless=("stars", "columns"))
 class PropagationResponseSchema(ma.Schema):
     model = ma.fields.String()
     catalogue_epoch = ma.fields.Nested(EpochOutSchema)

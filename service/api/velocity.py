@@ -31,6 +31,7 @@ from .common import (
     EpochOutSchema,
     StrictBoolean,
     StrictFloat,
+    always_present,
     epochs_out,
     flag_warnings,
     number_field,
@@ -387,15 +388,20 @@ for _name, _desc in _OUTPUT_DESCRIPTIONS.items():
         _RESULT_FIELDS[_name] = _float_list(_desc)
     else:
         _RESULT_FIELDS[_name] = ma.fields.Float(allow_none=True, metadata={"description": _desc})
-VelocityResultSchema = ma.Schema.from_dict(_RESULT_FIELDS, name="VelocityResultSchema")
+VelocityResultSchema = always_present(
+    ma.Schema.from_dict(_RESULT_FIELDS, name="VelocityResultSchema"),
+    unless=("u_lsr_km_s", "v_lsr_km_s", "w_lsr_km_s"),  # only with relative_to_lsr
+)
 
 
+@always_present
 class VelocityWarningSchema(ma.Schema):
     index = ma.fields.Integer()
     id = ma.fields.Raw(allow_none=True)
     message = ma.fields.String()
 
 
+@always_present(unless=("stars", "columns"))
 class VelocityResponseSchema(ma.Schema):
     star_count = ma.fields.Integer()
     layout = ma.fields.String()
@@ -724,32 +730,35 @@ OBSERVABLES_OUTPUTS = {
     "radial_velocity_km_s": "km/s (positive receding)",
 }
 
-ObservablesResultSchema = ma.Schema.from_dict(
-    {
-        "index": _RESULT_FIELDS["index"],
-        "id": _RESULT_FIELDS["id"],
-        "flags": _RESULT_FIELDS["flags"],
-        "distance_pc": ma.fields.Float(allow_none=True, metadata={"description": "pc"}),
-        "pm_ra_cosdec_mas_yr": ma.fields.Float(
-            allow_none=True,
-            metadata={
-                "description": "Proper motion in RA times cos(dec) the star must show, "
-                "mas/yr; null without a distance."
-            },
-        ),  # fmt: skip
-        "pm_dec_mas_yr": ma.fields.Float(
-            allow_none=True,
-            metadata={"description": "Proper motion in Dec, mas/yr; null without a distance."},
-        ),
-        "radial_velocity_km_s": ma.fields.Float(
-            allow_none=True,
-            metadata={"description": "Radial velocity, km/s (needs no distance)."},
-        ),
-    },
-    name="ObservablesResultSchema",
+ObservablesResultSchema = always_present(
+    ma.Schema.from_dict(
+        {
+            "index": _RESULT_FIELDS["index"],
+            "id": _RESULT_FIELDS["id"],
+            "flags": _RESULT_FIELDS["flags"],
+            "distance_pc": ma.fields.Float(allow_none=True, metadata={"description": "pc"}),
+            "pm_ra_cosdec_mas_yr": ma.fields.Float(
+                allow_none=True,
+                metadata={
+                    "description": "Proper motion in RA times cos(dec) the star must show, "
+                    "mas/yr; null without a distance."
+                },
+            ),  # fmt: skip
+            "pm_dec_mas_yr": ma.fields.Float(
+                allow_none=True,
+                metadata={"description": "Proper motion in Dec, mas/yr; null without a distance."},
+            ),
+            "radial_velocity_km_s": ma.fields.Float(
+                allow_none=True,
+                metadata={"description": "Radial velocity, km/s (needs no distance)."},
+            ),
+        },
+        name="ObservablesResultSchema",
+    )
 )
 
 
+@always_present(unless=("stars", "columns"))
 class ObservablesResponseSchema(ma.Schema):
     star_count = ma.fields.Integer()
     layout = ma.fields.String()
