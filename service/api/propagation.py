@@ -305,6 +305,11 @@ FLAG_MEANINGS = {
     "radial_velocity_unchanged": "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+    "uncertainties_nonlinear": "At some target epoch the propagated standard error of the "
+    "star's position vector exceeds 0.2 of its distance from the Sun (position error above "
+    "0.2 rad, or distance known to worse than 20%), as near a close passage of the Sun: the "
+    "linear propagation of the uncertainties no longer describes their spread (it can be "
+    "wrong by orders of magnitude there). Use Monte Carlo draws of the catalogue values.",
     "uncertainties_incomplete": "Some but not all of the standard errors of position, proper "
     "motion and (where the parallax is given) parallax given: no uncertainties computed.",
     "correlations_assumed_zero": "Standard errors given without any correlation among the "
@@ -496,6 +501,9 @@ def propagate(args):
     )
     count_stars("/v1/propagation", n)
     masks = np.bitwise_or.reduce(result.flags, axis=1)
+    if cov is not None:  # judged on the covariance of stars that get uncertainties only
+        nonlinear = int(core.PropagationFlag.UNCERTAINTIES_NONLINEAR)
+        masks = np.where(has_cov, masks, masks & ~nonlinear)
     names = flag_names(masks, core.PropagationFlag)
     present = present_flag_names(masks, core.PropagationFlag)
     if has_cov.any() or incomplete.any():  # both masks are all False without errors

@@ -125,6 +125,9 @@ PROPAGATION_FLAG_MEANINGS = {
     _PF.RADIAL_VELOCITY_UNCHANGED: "Radial velocity given without a usable parallax: passed "
     "through unchanged.",
     _PF.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+    _PF.UNCERTAINTIES_NONLINEAR: "Uncertainties propagated: their linear propagation fails "
+    "(position error above 0.2 of the distance); not set by this job, which propagates no "
+    "uncertainties.",
 }
 
 

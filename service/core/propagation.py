@@ -98,6 +98,13 @@ class PropagationFlag(enum.IntFlag):
     #: Radial velocity above 5,000 km/s in size (more than any star's measured radial
     #: velocity): probably m/s given as km/s. Computed as given.
     RADIAL_VELOCITY_IMPLAUSIBLE = 512
+    #: Uncertainties propagated (covariance given): at the target epoch the standard error
+    #: of the star's position vector exceeds NONLINEAR_RELATIVE_ERROR of its distance from
+    #: the Sun (across the line of sight: the position error in radians; along it: the
+    #: relative error of the distance), as near a close passage of the Sun. The linear
+    #: propagation through the Jacobian is then not a valid description of the spread
+    #: (it can be wrong by orders of magnitude); use Monte Carlo draws of the inputs.
+    UNCERTAINTIES_NONLINEAR = 1024
 
 
 @dataclass(frozen=True)
@@ -147,6 +154,13 @@ class PropagationResult:
 
 #: One mas (or mas/yr) in radians (rad/yr).
 _RAD_PER_MAS = 1.0 / MAS_PER_RAD
+
+#: Relative error of the propagated position vector (its standard error over the star's
+#: distance from the Sun) above which linear propagation of the uncertainties is flagged
+#: UNCERTAINTIES_NONLINEAR: 0.2, the relative error of a parallax at signal-to-noise 5,
+#: below which 1/parallax and linear error propagation are taken to fail (common practice;
+#: kinematics.LOW_PARALLAX_SNR_DEFAULT).
+NONLINEAR_RELATIVE_ERROR = 0.2
 
 #: Squared thresholds for :func:`input_flags` (squares avoid square roots per star).
 _PM_LIMIT_SQ = IMPLAUSIBLE_PROPER_MOTION_MAS_YR**2
@@ -858,10 +872,42 @@ def propagate(
                 rv_unknown = np.isnan(rv) | np.isnan(cb[:, 5, 5])
                 plx_unknown = np.isnan(plx) | np.isnan(cb[:, 2, 2])
                 _covariance_block(em, cb, plx_unknown, rv_unknown, bufs, cov_out[sl])
+                nonlinear = _nonlinear(em, cb, plx, ast.parallax_mas, cov_out[sl])
+                flags[sl] |= np.where(nonlinear, int(PropagationFlag.UNCERTAINTIES_NONLINEAR), 0)
     ast = Astrometry(*(o.reshape(shape) for o in outs))
     if cov_out is not None:
         cov_out = cov_out.reshape(shape + (6, 6))
     return PropagationResult(ast, flags.reshape(shape), cov_out)
+
+
+def _nonlinear(entry_major, cov_block, plx0, plx1, cov_out):
+    """Where linear propagation of the covariance fails (flag UNCERTAINTIES_NONLINEAR).
+
+    Notes
+    -----
+    1. With s the position vector in units of the catalogue distance (Note 3 of
+       :func:`propagate_standard`), the model is linear in s, and its Jacobian is a valid
+       description of the spread only while the error of s is small against |s|. Across the
+       line of sight that ratio is the position error in radians; along it, the relative
+       error of |s| = 1/f, from d ln f = d plx1 / plx1 - d plx0 / plx0 (plx1 = plx0 f), so
+       var(ln f) = g C g^T with g_j = J[2, j] / plx1 - delta_2j / plx0. Without a positive
+       parallax, |s| follows from the proper motion alone and only the position error is
+       used.
+    2. Either ratio above NONLINEAR_RELATIVE_ERROR flags the star at that epoch.
+    """
+    b = cov_block.shape[0]
+    var_pos = cov_out[:, 0, 0] + cov_out[:, 1, 1]  # mas^2
+    nonlinear = var_pos > (NONLINEAR_RELATIVE_ERROR * MAS_PER_RAD) ** 2
+    usable = (plx0 > 0.0) & np.isfinite(plx1) & (plx1 > 0.0)
+    if usable.any():
+        c = np.where(np.isnan(cov_block), 0.0, cov_block)[:, 2:, 2:]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            g = entry_major[2, 2:, :b].T / plx1[:, None]
+            g[:, 0] -= 1.0 / plx0
+        g = np.where(usable[:, None] & np.isfinite(g), g, 0.0)
+        var_lnf = np.einsum("bi,bij,bj->b", g, c, g)
+        nonlinear |= var_lnf > NONLINEAR_RELATIVE_ERROR**2
+    return nonlinear
 
 
 def _broadcast_shape(*arrays) -> tuple:

@@ -746,3 +746,36 @@ def test_answered_epoch_resolutions_are_stated(client):
     doc = client.get("/openapi.json").get_json()["components"]["schemas"]["EpochOut"]
     assert "40 microseconds" in doc["properties"]["jd_tdb"]["description"]
     assert "7.2 microseconds" in doc["properties"]["julian_epoch_tdb"]["description"]
+
+
+def test_uncertainties_nonlinear_named_near_a_close_passage(client):
+    """An invented star passing 10 au from the Sun 9777.9 years on (1 pc, -100 km/s, 1 mas/yr):
+    at J11793.9 the linear uncertainties are flagged (the core test compares them with
+    draws moved by astropy's Cartesian straight line: off by a factor of 20 there); at
+    J3016.0 they are not. A star whose errors are incomplete gets no uncertainties, so it
+    is not flagged either."""
+    star = dict(
+        ra_deg=100.0,
+        dec_deg=10.0,
+        parallax_mas=1000.0,
+        pm_ra_cosdec_mas_yr=0.6,
+        pm_dec_mas_yr=0.8,
+        radial_velocity_km_s=-100.0,
+        ra_error_mas=0.1,
+        dec_error_mas=0.1,
+        parallax_error_mas=0.1,
+        pm_ra_cosdec_error_mas_yr=0.1,
+        pm_dec_error_mas_yr=0.1,
+        radial_velocity_error_km_s=1.0,
+    )
+    incomplete = {k: v for k, v in star.items() if k != "pm_dec_error_mas_yr"}
+    body = {"catalogue_epoch": "J2016.0", "stars": [star, incomplete]}
+    near = post(client, dict(body, target_epochs=["J3016.0", "J11793.9"]))
+    assert near.status_code == 200, near.json
+    assert "uncertainties_nonlinear" in near.json["stars"][0]["flags"]
+    assert "Monte Carlo" in near.json["flag_meanings"]["uncertainties_nonlinear"]
+    assert "uncertainties_nonlinear" not in near.json["stars"][1]["flags"]
+    far = post(client, dict(body, target_epochs=["J3016.0"]))
+    assert far.status_code == 200, far.json
+    assert "uncertainties_nonlinear" not in far.json["stars"][0]["flags"]
+    assert "uncertainties_nonlinear" not in far.json["flag_meanings"]
