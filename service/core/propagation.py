@@ -872,7 +872,8 @@ def propagate(
                 rv_unknown = np.isnan(rv) | np.isnan(cb[:, 5, 5])
                 plx_unknown = np.isnan(plx) | np.isnan(cb[:, 2, 2])
                 _covariance_block(em, cb, plx_unknown, rv_unknown, bufs, cov_out[sl])
-                nonlinear = _nonlinear(em, cb, plx, ast.parallax_mas, cov_out[sl])
+                # The standard model's parallax: the Jacobian's (Note 1 holds for both).
+                nonlinear = _nonlinear(em, cb, plx, plx * loc.f, cov_out[sl])
                 flags[sl] |= np.where(nonlinear, int(PropagationFlag.UNCERTAINTIES_NONLINEAR), 0)
     ast = Astrometry(*(o.reshape(shape) for o in outs))
     if cov_out is not None:
