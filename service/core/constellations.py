@@ -2467,7 +2467,11 @@ def outline_collection(
     reduction: str = "fk4",
     tolerance_arcsec: float = DEFAULT_OUTLINE_TOLERANCE_ARCSEC,
 ) -> dict:
-    """Outlines of all 88 constellations as a GeoJSON FeatureCollection (see outline)."""
+    """Outlines of all 88 constellations as a GeoJSON FeatureCollection (see outline).
+
+    Each Feature is the one :func:`outline` gives for that constellation, properties
+    included (the solid angle too).
+    """
     table = boundary_table()
     indices = list(range(len(table.abbreviations)))
     polygons = _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec)
@@ -2488,6 +2492,8 @@ def outline_collection(
                     "frame": frame,
                     "equinox": _default_equinox(frame, equinox),
                     "reduction": reduction,
+                    "area_sr": float(table.area_sr[x]),
+                    "area_deg2": float(table.area_sr[x] * DEG_PER_RAD**2),
                 },
             }
         )

@@ -200,6 +200,19 @@ def test_all_outlines(client):
     assert len(r.json["features"]) == 88
 
 
+def test_collection_features_carry_the_same_properties_as_single_outlines(client):
+    # The Feature schema both endpoints document lists area_sr and area_deg2 among the
+    # properties; the collection's features used to leave them out.
+    features = client.get(f"{BASE}/outlines?frame=fk4&equinox=B1950.0").json["features"]
+    for feature in features:
+        abbr = feature["properties"]["abbreviation"]
+        one = client.get(f"{BASE}/{abbr}/outline?frame=fk4&equinox=B1950.0").json
+        assert feature["properties"] == one["properties"]
+    # The 88 solid angles add up to the whole sphere, 4 pi sr (geometry), to 1e-12 sr.
+    total = sum(f["properties"]["area_sr"] for f in features)
+    assert total == pytest.approx(4.0 * np.pi, abs=1e-12)
+
+
 # ---------------------------------------------------------------- bad input
 
 
