@@ -7,7 +7,9 @@ request.
 
 from __future__ import annotations
 
+import ipaddress
 import os
+import re
 from dataclasses import dataclass, field
 
 
@@ -242,17 +244,53 @@ def _tokens(env) -> tuple:
     return tuple(tokens)
 
 
+#: host[:port] of an origin: a bracketed IPv6 address or a name without ':', then a port.
+_ORIGIN_HOST_PORT = re.compile(r"(\[[0-9A-Fa-f:.]+\]|[^:\[\]/?#@\\\s]+)(?::([0-9]{1,5}))?")
+_DEFAULT_PORTS = {"http": 80, "https": 443}
+
+
+def _origin(text: str) -> str | None:
+    """``text`` as a browser writes it in the Origin header, or None if it is no origin.
+
+    Browsers send the ASCII serialisation of an origin (HTML standard, "origin"; RFC 6454
+    section 6.2): scheme and host in lower case, the port left out when it is the scheme's
+    default. The allow-list is compared with that text, so it is written the same way here;
+    written otherwise (``https://Sky.Example.org``, ``https://sky.example.org:443``) it
+    would never match and every browser request would be refused.
+    """
+    scheme, sep, rest = text.partition("://")
+    scheme = scheme.lower()
+    if not sep or scheme not in _DEFAULT_PORTS or not rest.isascii():
+        return None  # a non-ASCII host reaches the header in its punycode form
+    match = _ORIGIN_HOST_PORT.fullmatch(rest)
+    if match is None:
+        return None
+    host, port = match.group(1).lower(), match.group(2)
+    if host.startswith("["):  # browsers write IPv6 addresses compressed: [::1]
+        try:
+            host = f"[{ipaddress.IPv6Address(host[1:-1]).compressed}]"
+        except ValueError:
+            return None
+    if port is not None:
+        number = int(port)
+        if number > 65535:
+            return None
+        port = None if number == _DEFAULT_PORTS[scheme] else str(number)
+    return f"{scheme}://{host}" + (f":{port}" if port else "")
+
+
 def _origins(env) -> tuple:
     raw = _str(env, "SKYDRIFT_CORS_ORIGINS", "")
-    origins = tuple(o.strip().rstrip("/") for o in raw.split(",") if o.strip())
-    for origin in origins:
-        if origin != "*" and not (
-            origin.startswith(("http://", "https://")) and "/" not in origin.split("://", 1)[1]
-        ):
+    origins = []
+    for given in (o.strip().rstrip("/") for o in raw.split(",") if o.strip()):
+        origin = given if given == "*" else _origin(given)
+        if origin is None:
             raise ConfigError(
-                f"SKYDRIFT_CORS_ORIGINS: {origin!r} is not an origin (scheme://host[:port], or *)"
+                f"SKYDRIFT_CORS_ORIGINS: {given!r} is not an origin (scheme://host[:port], or "
+                "*; a host with non-ASCII letters in its punycode form, xn--...)"
             )
-    return origins
+        origins.append(origin)
+    return tuple(origins)
 
 
 def _limit_string(env, name, default) -> str:

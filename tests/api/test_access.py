@@ -276,6 +276,38 @@ def test_refused_origin_is_echoed_clipped_and_empty_token_named(settings):
     assert "empty" in r.json["detail"]
 
 
+@pytest.mark.parametrize(
+    "written, sent",
+    [
+        # Browsers send the ASCII serialisation of an origin (HTML standard, "origin";
+        # RFC 6454 section 6.2): scheme and host in lower case, no default port, IPv6
+        # compressed. An allow-list entry written otherwise used to match no browser.
+        ("HTTPS://Sky.Example.org", SKY_APP),
+        ("https://sky.example.org:443/", SKY_APP),
+        ("http://localhost:80", "http://localhost"),
+        ("http://[0:0:0:0:0:0:0:1]:5173", "http://[::1]:5173"),
+    ],
+)
+def test_cors_origins_compared_as_browsers_write_them(settings, written, sent):
+    s = Settings.from_env({"SKYDRIFT_CORS_ORIGINS": written})
+    assert s.cors_origins == (sent,)
+    c = make_client(settings, cors_origins=s.cors_origins)
+    r = c.get("/v1/constellations", headers={"Origin": sent})
+    assert r.status_code == 200 and r.headers["Access-Control-Allow-Origin"] == sent
+
+
+@pytest.mark.parametrize(
+    "written",
+    ["https://sky.example.org?x=1", "https://user@sky.example.org", "https://bücher.example",
+     "https://sky.example.org:65536", "ftp://sky.example.org"],
+)  # fmt: skip
+def test_cors_origins_no_browser_can_send_stop_the_start(written):
+    # A query, user info or a non-ASCII host (browsers send its punycode form) can never
+    # be in an Origin header: such an entry would refuse every browser without a word.
+    with pytest.raises(ConfigError, match="SKYDRIFT_CORS_ORIGINS"):
+        Settings.from_env({"SKYDRIFT_CORS_ORIGINS": written})
+
+
 def test_cors_any_origin(settings):
     c = make_client(settings, cors_origins=("*",))
     r = c.get("/health", headers={"Origin": "https://anything.example"})
