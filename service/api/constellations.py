@@ -729,6 +729,10 @@ def _outline_options(args):
                 422,
                 errors=[{"field": "equinox", "message": "only for frame fk5 or fk4"}],
             )
+        # To 1e-9 year (0.03 s), as /v1/frames takes an equinox: the round trip through a
+        # Julian date leaves B1875.0 as 1874.9999999999998 (echoed so) and B1000.0, the
+        # range's end, as 999.9999999999999 (refused).
+        equinox = round(equinox, 9)
         try:  # the range every frame with an equinox takes (core.frames.make_frame)
             core_frames.make_frame(frame, equinox)
         except ValueError as exc:

@@ -200,6 +200,16 @@ def test_all_outlines(client):
     assert len(r.json["features"]) == 88
 
 
+@pytest.mark.parametrize("equinox", ["B1875.0", "B1000.0", "B3000.0"])
+def test_besselian_outline_equinox_is_the_year_written(client, equinox):
+    # 'B1875.0' is the Besselian year 1875.0 by definition (Lieske 1979), and 1000 to 3000
+    # is the range the frames take (the 422 says so); the round trip through a Julian date
+    # echoed 1874.9999999999998 and refused B1000.0 as below 1000.
+    r = client.get(f"{BASE}/Ori/outline?frame=fk4&equinox={equinox}")
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert r.json["properties"]["equinox"] == float(equinox[1:])
+
+
 def test_collection_features_carry_the_same_properties_as_single_outlines(client):
     # The Feature schema both endpoints document lists area_sr and area_deg2 among the
     # properties; the collection's features used to leave them out.
