@@ -583,8 +583,8 @@ def list_constellations():
 def lookup(args):
     """Find the constellation of each position.
 
-    Positions are ICRS; stars with a proper motion are first moved from catalogue_epoch to
-    epoch (straight-line space motion). The position is reduced to the equinox B1875.0 of the
+    Positions are ICRS unless `frame` names another (converted to ICRS first); stars with a
+    proper motion are first moved from catalogue_epoch to epoch (straight-line space motion). The position is reduced to the equinox B1875.0 of the
     IAU boundaries (Delporte 1930; table of Roman 1987) by the chosen reduction, and the
     answers of the fk4 and fk5 reductions are both reported. One position or a million: the
     same endpoint.
