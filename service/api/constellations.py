@@ -177,9 +177,10 @@ class LookupRequestSchema(ma.Schema):
         allow_none=True,
         validate=ma.validate.Range(min=0.0, max=36_000.0),
         metadata={
-            "description": "Distance from a boundary, arcsec, within which a star is flagged "
-            "near_boundary (margins endpoint). Default (absent or null): the service's "
-            "setting SKYDRIFT_NEAR_BOUNDARY_ARCSEC, 1 unless its operator chose another."
+            "description": "Margins endpoint only (the lookup refuses it): distance from a "
+            "boundary, arcsec, within which a star is flagged near_boundary. Default (absent "
+            "or null): the service's setting SKYDRIFT_NEAR_BOUNDARY_ARCSEC, 1 unless its "
+            "operator chose another."
         },
     )
     layout = ma.fields.String(
@@ -584,11 +585,24 @@ def lookup(args):
     """Find the constellation of each position.
 
     Positions are ICRS unless `frame` names another (converted to ICRS first); stars with a
-    proper motion are first moved from catalogue_epoch to epoch (straight-line space motion). The position is reduced to the equinox B1875.0 of the
-    IAU boundaries (Delporte 1930; table of Roman 1987) by the chosen reduction, and the
-    answers of the fk4 and fk5 reductions are both reported. One position or a million: the
-    same endpoint.
+    proper motion are first moved from catalogue_epoch to epoch (straight-line space
+    motion). The position is reduced to the equinox B1875.0 of the IAU boundaries (Delporte
+    1930; table of Roman 1987) by the chosen reduction, and the answers of the fk4 and fk5
+    reductions are both reported. One position or a million: the same endpoint.
     """
+    if args["near_boundary_arcsec"] is not None:
+        # The lookup measures no distance to a boundary and so flags none: the option would
+        # be read and do nothing, and a star near a boundary would come back unflagged.
+        abort(
+            422,
+            errors=[
+                {
+                    "field": "near_boundary_arcsec",
+                    "message": "is an option of /v1/constellations/margins (the lookup "
+                    "measures no distance to the boundary)",
+                }
+            ],
+        )
     return _membership_body(args, with_margin=False)
 
 

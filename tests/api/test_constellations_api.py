@@ -134,6 +134,19 @@ def test_margins_flag_near_boundary(client):
     assert r.json["stars"][0]["near_boundary"] is False
 
 
+def test_lookup_refuses_the_margins_option(client):
+    # The star lies 123 arcsec from the Ori-Mon boundary (the core's margin, checked here):
+    # the lookup took near_boundary_arcsec=36000, did nothing with it and flagged nothing.
+    star = {"ra_deg": 89.0, "dec_deg": -5.4}
+    margin = float(core.locate(star["ra_deg"], star["dec_deg"], with_margin=True).margin_arcsec)
+    assert 1.0 < margin < 36_000.0
+    body = {"stars": [star], "near_boundary_arcsec": 36_000.0}
+    assert_problem(client.post(f"{BASE}/lookup", json=body), 422, "near_boundary_arcsec")
+    assert client.post(f"{BASE}/margins", json=body).json["stars"][0]["near_boundary"] is True
+    body["near_boundary_arcsec"] = None  # null is absent: accepted
+    assert client.post(f"{BASE}/lookup", json=body).status_code == 200
+
+
 def test_margins_default_is_the_operators_setting():
     # SKYDRIFT_NEAR_BOUNDARY_ARCSEC (README, Configuration) sets the default distance; a
     # request's own near_boundary_arcsec still wins.
