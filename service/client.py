@@ -996,18 +996,25 @@ class Client:
         catalogue_epoch: Epoch,
         instants: Iterable[Epoch] | Epoch,
         site: str | Mapping[str, float],
+        frame: str | Mapping[str, Any] | None = None,
+        atmosphere: Mapping[str, float | None] | None = None,
         horizon_limit_deg: float | None = None,
         sun_avoidance_deg: float | None = None,
         progress: Progress | None = None,
     ) -> str:
         """Observed places of a CSV table of stars, as CSV (one row per star and instant).
 
-        ``site`` is a configured name or ``{"latitude_deg", "longitude_deg", "height_m"}``.
-        The Sun and horizon figures and flags are advisory.
+        ``site`` is a configured name or ``{"latitude_deg", "longitude_deg", "height_m"}``;
+        ``frame`` and ``atmosphere`` as for :meth:`observed` (default ICRS and the
+        service's atmosphere). The Sun and horizon figures and flags are advisory.
         """
         when = [instants] if isinstance(instants, str | float | int) else list(instants)
         params: dict = {"catalogue_epoch": catalogue_epoch, "instants": when}
         params["site"] = site if isinstance(site, str) else json.dumps(dict(site))
+        if frame is not None:
+            params["frame"] = {k: v for k, v in _frame(frame).items() if v is not None}
+        if atmosphere:
+            params["atmosphere"] = {k: v for k, v in atmosphere.items() if v is not None}
         params.update(
             {"horizon_limit_deg": horizon_limit_deg, "sun_avoidance_deg": sun_avoidance_deg}
         )

@@ -49,12 +49,40 @@ class Catalogue:
     order), so errors name ``stars[i].field`` rather than lines of that text."""
 
     def __init__(
-        self, csv_text: str, catalogue_epoch: str | None, rows: int, from_json: bool = False
+        self,
+        csv_text: str,
+        catalogue_epoch: str | None,
+        rows: int,
+        from_json: bool = False,
+        frame: dict | None = None,
     ):
         self.csv_text = csv_text
         self.catalogue_epoch = catalogue_epoch
         self.rows = rows
         self.from_json = from_json
+        #: The frame a JSON file states (``{"name": ..., "equinox": ...}``); None: not said.
+        self.frame = frame
+
+
+def frame_spec(value, where: str) -> dict:
+    """A frame as a catalogue file or --frame writes it ("FK4", "fk5 J2000.0", or an object
+    {"name", "equinox"}) -> the API's frame object (lower-case name)."""
+    if isinstance(value, str) and 1 <= len(value.split()) <= 2:
+        name, *equinox = value.split()
+        spec = {"name": name.lower()}
+        if equinox:
+            spec["equinox"] = equinox[0]
+        return spec
+    if isinstance(value, dict) and isinstance(value.get("name"), str):
+        return {**value, "name": value["name"].lower()}
+    form = "" if where.startswith("--") else ' or an object {"name": ..., "equinox": ...}'
+    raise ValueError(
+        f"{where}: a frame is a name with an optional equinox ('FK4', 'fk5 J2000.0'){form}"
+    )
+
+
+def _is_icrs(frame: dict | None) -> bool:
+    return frame is None or frame.get("name") == "icrs"
 
 
 #: An error's field that names a CSV line and column ("line 7: dec_deg").
@@ -119,8 +147,13 @@ def _above_zero(text: str) -> float:
     return value
 
 
-def read_catalogue(path: str) -> Catalogue:
-    """Read a CSV or JSON catalogue ('-' = CSV on standard input)."""
+def read_catalogue(path: str, *, any_frame: bool = False) -> Catalogue:
+    """Read a CSV or JSON catalogue ('-' = CSV on standard input).
+
+    A JSON catalogue may say its ``frame`` (the demo's says "ICRS"). Only a command that
+    converts frames (``any_frame``) takes another: the others compute in ICRS, and FK4
+    B1950.0 astrometry taken as ICRS is some 0.6 degrees off.
+    """
     if path == "-":
         text = sys.stdin.read()
     else:
@@ -152,7 +185,16 @@ def read_catalogue(path: str) -> Catalogue:
         for s in stars:
             writer.writerow(["" if s.get(k) is None else s[k] for k in names])
         epoch = data.get("catalogue_epoch") if isinstance(data, dict) else None
-        return Catalogue(buf.getvalue(), epoch, len(stars), from_json=True)
+        frame = None
+        if isinstance(data, dict) and data.get("frame") is not None:
+            frame = frame_spec(data["frame"], f"{path}: frame")
+            if not (any_frame or _is_icrs(frame)):
+                raise ValueError(
+                    f"{path}: the catalogue's frame is {data['frame']!r}; this command takes "
+                    "ICRS astrometry (convert it first with the frames endpoint; skydrift "
+                    "observed takes any frame)"
+                )
+        return Catalogue(buf.getvalue(), epoch, len(stars), from_json=True, frame=frame)
     _header, rows, _lines = _read_csv(text)
     return Catalogue(text, None, len(rows))
 
@@ -374,7 +416,20 @@ def _tolerant(args, csv_text: str, call, lines: list[int] | None = None):
 
 @_run
 def cmd_observed(args) -> int:
-    cat = read_catalogue(args.catalogue)
+    cat = read_catalogue(args.catalogue, any_frame=True)
+    frame = cat.frame
+    if args.frame is not None:
+        frame = frame_spec(args.frame, "--frame")
+    if args.equinox is not None:
+        if frame is None:
+            raise ValueError("--equinox needs --frame (or a catalogue that states its frame)")
+        frame = {**frame, "equinox": args.equinox}
+    atmosphere = {
+        "pressure_hpa": args.pressure_hpa,
+        "temperature_c": args.temperature_c,
+        "relative_humidity": args.relative_humidity,
+        "wavelength_um": args.wavelength_um,
+    }
     site = args.site
     if args.position is not None:
         lat, lon, height = args.position
@@ -390,6 +445,8 @@ def cmd_observed(args) -> int:
             catalogue_epoch=_epoch_of(args, cat),
             instants=args.at,
             site=site,
+            frame=frame,
+            atmosphere=atmosphere,
             horizon_limit_deg=args.horizon_limit_deg,
             sun_avoidance_deg=args.sun_avoidance_deg,
             progress=update,
@@ -745,6 +802,46 @@ def add_commands(sub) -> None:
         type=decimal,
         metavar=("LAT", "LON", "HEIGHT"),
         help="geodetic latitude and east longitude in degrees, height in metres (WGS84)",
+    )
+    o.add_argument(
+        "--frame",
+        metavar="FRAME",
+        help="frame of the catalogue's astrometry: icrs, fk5, fk4, galactic or ecliptic "
+        "(default: the JSON catalogue's 'frame', else icrs); a B1950.0 catalogue is "
+        "--frame fk4 --catalogue-epoch B1950.0",
+    )
+    o.add_argument(
+        "--equinox",
+        metavar="EQUINOX",
+        help="equinox of --frame (default: B1950.0 for fk4, J2000.0 for fk5 and ecliptic)",
+    )
+    air = o.add_argument_group(
+        "air at the site, for refraction (default: the service's; see the API's atmosphere)"
+    )
+    air.add_argument(
+        "--pressure-hpa",
+        type=decimal,
+        metavar="HPA",
+        help="air pressure, hPa (default: US Standard Atmosphere 1976 at the site height; "
+        "0 turns refraction off)",
+    )
+    air.add_argument(
+        "--temperature-c",
+        type=decimal,
+        metavar="C",
+        help="air temperature, degrees Celsius (default: standard atmosphere at the site height)",
+    )
+    air.add_argument(
+        "--relative-humidity",
+        type=decimal,
+        metavar="FRACTION",
+        help="relative humidity, 0 to 1 (default 0.5)",
+    )
+    air.add_argument(
+        "--wavelength-um",
+        type=decimal,
+        metavar="UM",
+        help="effective wavelength, micrometres: 0.3-2.0 or radio 100-1000000 (default 0.55)",
     )
     o.add_argument(
         "--horizon-limit-deg",

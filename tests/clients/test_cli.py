@@ -173,6 +173,87 @@ def test_observed_local_and_remote_identical(live_service):
         assert flagged == (float(r["altitude_deg"]) < 15.0)
 
 
+#: A slow FK4 B1950.0 star (invented), its motion small enough that SOFA's linear motion in
+#: atco13 (pmpx) and the service's straight-line model agree to nanoarcseconds over 77 years.
+FK4_STAR = {
+    "id": "F1",
+    "ra_deg": 201.5,
+    "dec_deg": -11.2,
+    "parallax_mas": 12.5,
+    "pm_ra_cosdec_mas_yr": -42.0,
+    "pm_dec_mas_yr": 31.0,
+    "radial_velocity_km_s": 0.0,
+}
+
+
+def test_observed_fk4_catalogue_with_the_air_at_the_site_matches_erfa(tmp_path):
+    """A B1950.0 catalogue is observed as FK4 with the air given on the command line. The
+    command had neither --frame nor the atmosphere: FK4 positions went in as ICRS (0.6 deg
+    off for this star) and refraction always took the standard atmosphere at 0.55 um."""
+    import erfa
+    import numpy as np
+    from astropy.utils import iers
+
+    from service.core.observed import earth_orientation
+
+    cat = tmp_path / "fk4.csv"
+    cat.write_text(",".join(FK4_STAR) + "\n" + ",".join(str(v) for v in FK4_STAR.values()))
+    lat, lon, h = -24.6, -70.4, 2600.0
+    out = skydrift("observed", str(cat), "--frame", "fk4", "--catalogue-epoch", "B1950.0",
+                   "--at", "2026-06-11T03:00:00Z", "--position", str(lat), str(lon), str(h),
+                   "--pressure-hpa", "700", "--temperature-c", "-10", "--relative-humidity",
+                   "0.2", "--wavelength-um", "1.6")  # fmt: skip
+    row = next(csv.DictReader(io.StringIO(out.stdout.decode())))
+    # pyerfa run here: fk425 (FK4 B1950.0 -> FK5 J2000.0, motions per tropical year), fk52h
+    # (FK5 -> ICRS), then atco13 with UT1-UTC and the pole read by astropy from the same
+    # IERS table and the same air.
+    trop = 365.242198781 / 365.25
+    ra, dec = np.radians(FK4_STAR["ra_deg"]), np.radians(FK4_STAR["dec_deg"])
+    fk5 = erfa.fk425(ra, dec, np.radians(-42.0 / 3.6e6) / np.cos(dec) * trop,
+                     np.radians(31.0 / 3.6e6) * trop, 0.0125, 0.0)  # fmt: skip
+    icrs = erfa.fk52h(*fk5)
+    table = iers.IERS_A.open(earth_orientation().primary.path)
+    u1, u2 = erfa.dtf2d("UTC", 2026, 6, 11, 3, 0, 0.0)
+    dut1 = table.ut1_utc(u1, u2).to_value("s")
+    xp, yp = (v.to_value("rad") for v in table.pm_xy(u1, u2))
+    aob, zob, hob, *_ = erfa.atco13(*icrs, u1, u2, dut1, np.radians(lon), np.radians(lat), h,
+                                    xp, yp, 700.0, -10.0, 0.2, 1.6)  # fmt: skip
+    mas = 3.6e6  # per degree
+    alt = float(row["altitude_deg"])
+    assert alt > 30.0  # well up: the refraction model is good to 0.05 arcsec here
+    # Tolerance 0.01 mas in each angle (measured 1e-7 mas); without the frame, 2,000,000 mas.
+    assert abs(alt - (90.0 - np.degrees(zob))) * mas < 0.01
+    assert (
+        abs((float(row["azimuth_deg"]) - np.degrees(aob) + 180) % 360 - 180)
+        * np.cos(np.radians(alt))
+        * mas
+        < 0.01
+    )
+    assert abs((float(row["hour_angle_deg"]) - np.degrees(hob) + 180) % 360 - 180) * mas < 0.01
+
+
+def test_json_catalogue_frame_is_used_or_refused(tmp_path):
+    """A JSON catalogue states its frame as the demo's does ("frame": "ICRS"); the frame was
+    ignored, so an FK4 file went in as ICRS. observed uses it; the ICRS-only commands refuse
+    it rather than compute on FK4 positions as if they were ICRS."""
+    doc = {"catalogue_epoch": "B1950.0", "frame": "FK4", "stars": [FK4_STAR]}
+    js = tmp_path / "fk4.json"
+    js.write_text(json.dumps(doc))
+    cat = tmp_path / "fk4.csv"
+    cat.write_text(",".join(FK4_STAR) + "\n" + ",".join(str(v) for v in FK4_STAR.values()))
+    at = ["--at", "2026-06-11T03:00:00Z", "--site", "kestrel-ridge"]
+    from_file = skydrift("observed", str(js), *at).stdout
+    given = skydrift("observed", str(cat), "--frame", "fk4", "--catalogue-epoch", "B1950.0", *at)
+    assert from_file == given.stdout
+    as_icrs = skydrift("observed", str(js), *at, "--frame", "icrs").stdout  # --frame decides
+    assert as_icrs != from_file
+    out = skydrift("propagate", str(js), "--epoch", "J2000", check=False)
+    assert out.returncode == 1 and out.stdout == b""
+    assert "frame is 'FK4'" in out.stderr.decode() and "ICRS" in out.stderr.decode()
+    # The demo catalogue says "ICRS": still taken by every command.
+    assert skydrift("propagate", str(DEMO / "catalogue.json"), "--epoch", "J2000").returncode == 0
+
+
 def test_bad_row_named_by_line_exit_1(tmp_path):
     lines = (DEMO / "catalogue.csv").read_text().splitlines()
     cells = lines[6].split(",")
