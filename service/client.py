@@ -792,10 +792,12 @@ class Client:
         margins : bool
             Also the distance to the nearest boundary (arcsec) and the constellation across.
         near_boundary_arcsec : float, optional
-            Margin under which a star is flagged near_boundary (with ``margins``).
+            Margin under which a star is flagged near_boundary (only with ``margins``:
+            the lookup measures no distance to a boundary; ValueError otherwise).
         reduction : {"fk4", "fk5", "fk5_iau1976"}, optional
             Reduction to the boundaries' equinox B1875.0 (service default: fk4).
         """
+        _margins_option(margins, near_boundary_arcsec)
         body = self._constellation_options(catalogue_epoch, epoch, near_boundary_arcsec, reduction)
         body["stars"] = stars
         if layout is not None:
@@ -815,6 +817,7 @@ class Client:
         progress: Progress | None = None,
     ) -> str:
         """The constellations of a CSV table of stars, as CSV (one row per star)."""
+        _margins_option(margins, near_boundary_arcsec)
         params = self._constellation_options(
             catalogue_epoch, epoch, near_boundary_arcsec, reduction
         )
@@ -1245,3 +1248,13 @@ def _join_csv(pieces: list[tuple[list[str], list[list[str]]]]) -> str:
         where = [h.index(name) if name in h else None for name in header]
         writer.writerows([[r[k] if k is not None else "" for k in where] for r in rows])
     return buf.getvalue()
+
+
+def _margins_option(margins: bool, near_boundary_arcsec: float | None) -> None:
+    """near_boundary_arcsec belongs to the margins endpoint (the service refuses it on the
+    lookup, which measures no distance to a boundary): say so before sending anything."""
+    if near_boundary_arcsec is not None and not margins:
+        raise ValueError(
+            "near_boundary_arcsec is an option of the margins (margins=True; on the command "
+            "line --margins): the lookup measures no distance to a boundary"
+        )

@@ -138,6 +138,18 @@ def test_constellations_local_and_remote_identical(live_service):
     assert [r["constellation"] for r in rows][16] == "Tau"
 
 
+def test_near_boundary_margin_needs_margins():
+    """The lookup measures no distance to a boundary, and the service refuses the option
+    there: the command says so before sending, naming the option that makes it apply."""
+    args = ["constellations", CATALOGUE, "--near-boundary-arcsec", "5", "--drop-unknown-columns"]
+    refused = skydrift(*args, check=False)
+    assert refused.returncode == 1
+    assert "--margins" in refused.stderr.decode()
+    assert refused.stdout == b""
+    rows = list(csv.DictReader(io.StringIO(skydrift(*args, "--margins").stdout.decode())))
+    assert len(rows) == 30 and all(r["margin_arcsec"] for r in rows)
+
+
 def test_crossings_one_row_per_crossing(live_service, tmp_path):
     json_cat = str(DEMO / "catalogue.json")
     args = ["crossings", json_cat, "--start", "J2016", "--end", "J8016",
