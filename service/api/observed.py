@@ -352,7 +352,11 @@ class EarthOrientationOutSchema(ma.Schema):
 
 @always_present
 class SunOutSchema(ma.Schema):
-    altitude_deg = _out(ma.fields.Float, "Altitude of the Sun, degrees (advisory).")
+    altitude_deg = _out(
+        ma.fields.Float,
+        "Observed altitude of the Sun's centre, degrees, refracted as the targets are (not "
+        "when refraction is off) (advisory).",
+    )
     azimuth_deg = _out(ma.fields.Float, "Azimuth of the Sun, degrees, north = 0, east = 90.")
 
 
@@ -386,7 +390,9 @@ class RefractionOutSchema(ma.Schema):
 class LimitsOutSchema(ma.Schema):
     horizon_limit_deg = _out(ma.fields.Float, "Altitude limit applied, degrees (advisory).")
     sun_avoidance_deg = _out(ma.fields.Float, "Sun avoidance angle applied, degrees (advisory).")
-    note = _out(ma.fields.String, "Where the limits came from.")
+    note = _out(
+        ma.fields.String, "Where the limits came from: the request, the site list or a setting."
+    )
 
 
 @always_present
@@ -518,22 +524,29 @@ def observed(args):
     except core.ObservedInputError as exc:
         _core_error(exc)
     horizon = args.get("horizon_limit_deg")
-    if horizon is None:
+    if horizon is not None:
+        horizon_note = "Horizon limit as given in the request."
+    else:
         # The list's own limit belongs to its site: not to an inline site that carries the
         # same name as a label, at other coordinates.
         spec = args["site"]
         by_name = isinstance(spec, str) or (isinstance(spec, dict) and set(spec) == {"name"})
         own = sites.get(site.name, {}).get("horizon_limit_deg") if by_name else None
-        horizon = settings.horizon_limit_deg if own is None else float(own)
+        if own is None:
+            horizon = settings.horizon_limit_deg
+            horizon_note = "Horizon limit from the service's setting SKYDRIFT_HORIZON_LIMIT_DEG."
+        else:
+            horizon = float(own)
+            horizon_note = f"Horizon limit from the site list's entry for {site.name!r}."
     avoidance = args.get("sun_avoidance_deg")
     if avoidance is not None:
-        limits_note = "Advisory. Sun avoidance angle as given in the request."
+        limits_note = f"Advisory. {horizon_note} Sun avoidance angle as given in the request."
     else:
         avoidance = settings.sun_avoidance_deg
-        limits_note = "Advisory. Sun avoidance angle from the service's setting " + (
-            "SKYDRIFT_SUN_AVOIDANCE_DEG."
+        limits_note = f"Advisory. {horizon_note} Sun avoidance angle from the service's " + (
+            "setting SKYDRIFT_SUN_AVOIDANCE_DEG."
             if avoidance != core.DEFAULT_SUN_AVOIDANCE_DEG
-            else f"SKYDRIFT_SUN_AVOIDANCE_DEG, at its built-in default of "
+            else f"setting SKYDRIFT_SUN_AVOIDANCE_DEG, at its built-in default of "
             f"{core.DEFAULT_SUN_AVOIDANCE_DEG:g} deg: a placeholder the operator must set to "
             "the facility's own value."
         )

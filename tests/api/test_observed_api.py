@@ -402,6 +402,26 @@ def test_limits_note_says_where_the_sun_avoidance_angle_came_from(client, observ
     assert "SKYDRIFT_SUN_AVOIDANCE_DEG" in answer["limits"]["note"]
 
 
+def test_limits_note_says_where_the_horizon_limit_came_from(client, observed_example):
+    """The request, the site list's own limit, or the service's setting: the note names the
+    one applied (it named the source of the Sun avoidance angle only)."""
+    body = {k: v for k, v in observed_example.items() if k != "horizon_limit_deg"}
+    inline = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 100.0}
+    cases = [
+        (dict(body, horizon_limit_deg=12.5), "Horizon limit as given in the request."),
+        (dict(body, site=inline), "Horizon limit from the service's setting"),
+    ]
+    for request, words in cases:
+        note = client.post(OBS, json=request).json["limits"]["note"]
+        assert note.startswith("Advisory. ") and words in note, note
+    from service.api.observed import load_sites
+
+    named = [k for k, v in load_sites(None).items() if v.get("horizon_limit_deg") is not None]
+    assert named, "the demo site list has a site with its own horizon limit"
+    answer = client.post(OBS, json=dict(body, site=named[0])).json["limits"]
+    assert f"site list's entry for {named[0]!r}" in answer["note"]
+
+
 _GOOD_SITE = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 100.0}
 
 
