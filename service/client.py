@@ -778,6 +778,7 @@ class Client:
         margins: bool = False,
         near_boundary_arcsec: float | None = None,
         reduction: str | None = None,
+        frame: str | Mapping[str, Any] | None = None,
         layout: str | None = None,
         progress: Progress | None = None,
     ) -> dict:
@@ -796,9 +797,14 @@ class Client:
             the lookup measures no distance to a boundary; ValueError otherwise).
         reduction : {"fk4", "fk5", "fk5_iau1976"}, optional
             Reduction to the boundaries' equinox B1875.0 (service default: fk4).
+        frame : str or dict, optional
+            Frame of the stars' astrometry, as for :meth:`observed` (``"fk4"``, or
+            ``{"name": "fk5", "equinox": "J1975.0"}``); default ICRS.
         """
         _margins_option(margins, near_boundary_arcsec)
         body = self._constellation_options(catalogue_epoch, epoch, near_boundary_arcsec, reduction)
+        if frame is not None:
+            body["frame"] = _frame(frame)
         body["stars"] = stars
         if layout is not None:
             body["layout"] = layout
@@ -814,13 +820,17 @@ class Client:
         margins: bool = False,
         near_boundary_arcsec: float | None = None,
         reduction: str | None = None,
+        frame: str | Mapping[str, Any] | None = None,
         progress: Progress | None = None,
     ) -> str:
-        """The constellations of a CSV table of stars, as CSV (one row per star)."""
+        """The constellations of a CSV table of stars, as CSV (one row per star); the
+        options as for :meth:`constellations`."""
         _margins_option(margins, near_boundary_arcsec)
         params = self._constellation_options(
             catalogue_epoch, epoch, near_boundary_arcsec, reduction
         )
+        if frame is not None:
+            params["frame"] = {k: v for k, v in _frame(frame).items() if v is not None}
         path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
         return self.post_csv(path, csv_text, params, progress=progress)
 

@@ -254,6 +254,33 @@ def test_constellation_methods(live_service, demo_catalogue):
         assert len(sky.constellation_outlines(tolerance_arcsec=10.0)["features"]) == 88
 
 
+def test_constellation_methods_take_the_stars_frame(live_service, demo_catalogue):
+    """Positions in galactic coordinates (from astropy's ICRS -> Galactic transform, not the
+    project's) with frame="galactic" fall in the constellations of the ICRS positions, in
+    JSON and in CSV; without the frame they would be read as ICRS."""
+    from astropy.coordinates import SkyCoord
+
+    icrs = [{"id": s["id"], "ra_deg": s["ra_deg"], "dec_deg": s["dec_deg"]}
+            for s in demo_catalogue["stars"]]  # fmt: skip
+    gal = SkyCoord(
+        [s["ra_deg"] for s in icrs], [s["dec_deg"] for s in icrs], unit="deg", frame="icrs"
+    ).galactic
+    in_gal = [
+        {"id": s["id"], "ra_deg": float(lon), "dec_deg": float(lat)}
+        for s, lon, lat in zip(icrs, gal.l.deg, gal.b.deg, strict=True)
+    ]
+    with Client(live_service, batch_size=8) as sky:
+        want = [s["constellation"] for s in sky.constellations(icrs)["stars"]]
+        got = sky.constellations(in_gal, frame="galactic")["stars"]
+        assert [s["constellation"] for s in got] == want
+        assert [s["constellation"] for s in sky.constellations(in_gal)["stars"]] != want
+        text = "id,ra_deg,dec_deg\n" + "".join(
+            f"{s['id']},{s['ra_deg']!r},{s['dec_deg']!r}\n" for s in in_gal
+        )
+        rows = list(csv.DictReader(io.StringIO(sky.constellations_csv(text, frame="galactic"))))
+        assert [r["constellation"] for r in rows] == want
+
+
 def test_frames_and_observed_methods(live_service, demo_catalogue):
     stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
     with Client(live_service, batch_size=10) as sky:
