@@ -9,6 +9,7 @@ from flask import current_app, request
 from flask_smorest import abort
 
 from ..core import constellations as core
+from ..core import epochs as core_epochs
 from ..core import frames as core_frames
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
@@ -244,6 +245,25 @@ class CrossingsRequestSchema(ma.Schema):
     )
 
 
+class OutlineEquinoxField(EpochField):
+    """The equinox of an outline's fk5 or fk4 frame, read as /v1/frames reads one: an epoch
+    text as written ('B1950.0', 'J2050.0'); a bare number a Besselian year for fk4 and a
+    Julian year for fk5. -> ("number", year) or ("jyear", Julian epoch)."""
+
+    def __init__(self, **kwargs):
+        super().__init__(**kwargs)
+        self.metadata["description"] = (
+            "Equinox of an fk5 or fk4 frame: an epoch such as 'B1950.0' or 'J2050.0', or a "
+            "number, a Besselian year for fk4 and a Julian year for fk5 (as in /v1/frames)."
+        )
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        jyear = super()._deserialize(value, attr, data, **kwargs)
+        if isinstance(value, str) and core_epochs.PLAIN_NUMBER.match(value.strip()):
+            return ("number", float(value))
+        return ("jyear", jyear)
+
+
 class OutlineQuerySchema(ma.Schema):
     frame = ma.fields.String(
         load_default="icrs",
@@ -254,10 +274,7 @@ class OutlineQuerySchema(ma.Schema):
             "included); b1875 (the boundaries' own frame, by the reduction)."
         },
     )
-    equinox = EpochField(
-        load_default=None,
-        metadata={"description": "Equinox of an fk5 or fk4 frame (an epoch, e.g. J2050.0)."},
-    )
+    equinox = OutlineEquinoxField(load_default=None)
     reduction = ma.fields.String(
         load_default="fk4",
         validate=ma.validate.OneOf(core.REDUCTIONS),
@@ -734,11 +751,11 @@ def crossings(args):
 
 
 def _outline_options(args):
-    frame, equinox = args["frame"], args.get("equinox")
+    frame, (kind, equinox) = args["frame"], args.get("equinox") or (None, None)
     if equinox is not None:
-        if frame == "fk4":  # the FK4 frame takes a Besselian equinox
+        if frame == "fk4" and kind == "jyear":  # the FK4 frame takes a Besselian equinox
             equinox = float(erfa.epb(float(core.julian_epoch_to_jd(equinox)), 0.0))
-        elif frame not in ("fk5",):
+        elif frame not in ("fk4", "fk5"):
             abort(
                 422,
                 errors=[{"field": "equinox", "message": "only for frame fk5 or fk4"}],

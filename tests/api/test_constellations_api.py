@@ -223,6 +223,35 @@ def test_besselian_outline_equinox_is_the_year_written(client, equinox):
     assert r.json["properties"]["equinox"] == float(equinox[1:])
 
 
+@pytest.mark.parametrize(
+    ("frame", "number", "epoch"), [("fk4", "1950", "B1950.0"), ("fk5", "2050.5", "J2050.5")]
+)
+def test_bare_number_outline_equinox_is_read_as_the_frames_read_it(client, frame, number, epoch):
+    # A bare-number equinox is a Besselian year for FK4 and a Julian year for FK5, the
+    # convention of each system (Lieske 1979) and the one /v1/frames applies to the same
+    # number. The outline query read every number as a Julian epoch, so fk4 1950 was the
+    # Besselian year 1950.00021 (0.01 arcsec of precession off the frames endpoint's).
+    by_number = client.get(f"{BASE}/Ori/outline?frame={frame}&equinox={number}")
+    by_epoch = client.get(f"{BASE}/Ori/outline?frame={frame}&equinox={epoch}")
+    assert by_number.status_code == 200, by_number.get_data(as_text=True)
+    assert by_number.json["properties"]["equinox"] == float(number)
+    assert by_number.json == by_epoch.json
+    star = {"ra_deg": 83.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+    answers = [
+        client.post(
+            "/v1/frames",
+            json={
+                "stars": [star],
+                "catalogue_epoch": "J2000.0",
+                "from_frame": {"name": "icrs"},
+                "to_frame": {"name": frame, "equinox": equinox},
+            },
+        ).json["stars"][0]["at_epochs"][0]
+        for equinox in (float(number), epoch)
+    ]
+    assert answers[0] == answers[1]
+
+
 def test_collection_features_carry_the_same_properties_as_single_outlines(client):
     # The Feature schema both endpoints document lists area_sr and area_deg2 among the
     # properties; the collection's features used to leave them out.
