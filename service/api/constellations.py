@@ -570,12 +570,34 @@ def _membership_body(args, with_margin: bool):
     return current_app.json.response(body)
 
 
+#: How long browsers and caches may keep the constellation list and outlines, seconds: they
+#: depend on the request and the boundary table of this version only, the same for every
+#: caller, and a page drawing the sky fetches them on every load (1.4 MB for all outlines).
+STATIC_MAX_AGE_S = 86_400
+
+#: The 304 of a conditional GET, as documented beside each answer that carries an ETag.
+NOT_MODIFIED = "Not modified: the If-None-Match header names this answer's ETag (RFC 9110)."
+
+
+def _cacheable(resp):
+    """Let browsers and caches keep a GET answer (Cache-Control, and a strong ETag, a hash
+    of the body) and answer a conditional request naming that ETag with 304 (RFC 9110
+    sections 8.8.3 and 13.1.2). With bearer tokens set it is for the caller's own cache
+    only (private): a shared cache must not hand it to a caller without a token."""
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    scope = "private" if settings.auth_tokens else "public"
+    resp.headers["Cache-Control"] = f"{scope}, max-age={STATIC_MAX_AGE_S}"
+    resp.add_etag()
+    return resp.make_conditional(request)
+
+
 # ------------------------------------------------------------------------------ endpoints
 
 
 @blp.route("", methods=["GET"])
 @blp.doc(operationId="listConstellations")
 @blp.response(200, ConstellationListSchema)
+@blp.alt_response(304, description=NOT_MODIFIED)
 def list_constellations():
     """List the 88 IAU constellations.
 
@@ -591,7 +613,7 @@ def list_constellations():
             ],
         )
     items = core.constellation_list()
-    return {"count": len(items), "constellations": items}
+    return _cacheable(current_app.json.response({"count": len(items), "constellations": items}))
 
 
 @blp.route("/lookup", methods=["POST"])
@@ -779,7 +801,7 @@ def _outline_options(args):
 def _geojson(body):
     resp = current_app.json.response(body)
     resp.mimetype = "application/geo+json"
-    return resp
+    return _cacheable(resp)
 
 
 @blp.route(
@@ -800,6 +822,7 @@ def _geojson(body):
 @blp.doc(operationId="getConstellationOutline")
 @blp.arguments(OutlineQuerySchema(), location="query")
 @blp.response(200, GeoJsonFeatureSchema, content_type="application/geo+json")
+@blp.alt_response(304, description=NOT_MODIFIED)
 def outline(args, abbreviation):
     """Outline of one constellation as GeoJSON.
 
@@ -824,6 +847,7 @@ def outline(args, abbreviation):
 @blp.doc(operationId="getConstellationOutlines")
 @blp.arguments(OutlineQuerySchema(), location="query")
 @blp.response(200, GeoJsonCollectionSchema, content_type="application/geo+json")
+@blp.alt_response(304, description=NOT_MODIFIED)
 def outlines(args):
     """Outlines of all 88 constellations as one GeoJSON FeatureCollection.
 

@@ -558,3 +558,45 @@ def test_request_time_limit_in_a_worker_thread(settings):
     t.join(10)
     assert time.monotonic() - started < 2.0
     assert_problem(out["r"], 503)
+
+
+STATIC_GETS = (
+    "/v1/constellations",
+    "/v1/constellations/Ori/outline?frame=galactic",
+    "/v1/constellations/outlines?tolerance_arcsec=30",
+)
+
+
+@pytest.mark.parametrize("path", STATIC_GETS)
+def test_static_answers_may_be_cached_and_revalidated(client, path):
+    # RFC 9110 section 13.1.2: a GET whose If-None-Match names the current ETag is answered
+    # 304 without a body; RFC 9111 section 5.2.2: max-age lets caches reuse the answer.
+    first = client.get(path)
+    assert first.status_code == 200
+    tag = first.headers["ETag"]
+    assert tag.startswith('"') and tag.endswith('"')  # a strong ETag
+    assert first.headers["Cache-Control"] == "public, max-age=86400"
+    again = client.get(path, headers={"If-None-Match": tag})
+    assert again.status_code == 304 and again.data == b""
+    assert again.headers["ETag"] == tag
+    other = client.get(path, headers={"If-None-Match": '"something-else"'})
+    assert other.status_code == 200 and other.data == first.data
+
+
+def test_cached_answers_differ_by_request_and_stay_private_behind_tokens(client, settings):
+    a = client.get("/v1/constellations/Ori/outline").headers["ETag"]
+    b = client.get("/v1/constellations/Ori/outline?frame=galactic").headers["ETag"]
+    assert a != b
+    # Behind tokens a shared cache must not serve the answer to a caller without one
+    # (RFC 9111 section 3.5): private only.
+    c = make_client(settings, auth_tokens=(TOKEN_A,))
+    r = c.get("/v1/constellations", headers={"Authorization": f"Bearer {TOKEN_A}"})
+    assert r.headers["Cache-Control"] == "private, max-age=86400"
+    assert c.get("/v1/constellations").status_code == 401
+    # Everything else, errors included, is still not stored.
+    assert client.get("/v1/constellations/Xyz/outline").headers["Cache-Control"] == "no-store"
+    lookup = client.post(
+        "/v1/constellations/lookup", json={"stars": [{"ra_deg": 83.0, "dec_deg": 5.0}]}
+    )
+    assert lookup.status_code == 200 and lookup.headers["Cache-Control"] == "no-store"
+    assert "ETag" not in lookup.headers
