@@ -343,8 +343,12 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     dec1 = np.arctan2(loc.Z, loc.H) * DEG_PER_RAD
     plx1 = plx * loc.f
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4).
-        g = (AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD) / plx * loc.tpm2 + rv * loc.sz
+        # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4). The first
+        # term is zero where tau mu^2 is (no motion across the sky, or the catalogue epoch
+        # itself), also when A/plx overflows for a parallax below about 1e-299 mas: inf * 0
+        # would make the radial velocity given unknown, without a flag.
+        transverse = (AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD) / plx * loc.tpm2
+        g = np.where(loc.tpm2 == 0.0, 0.0, transverse) + rv * loc.sz
     rv1 = np.where(usable, loc.f * g, rv)
     at_pole = (loc.H * loc.f < AT_POLE_RAD) | (loc.cd < AT_POLE_RAD)  # target, catalogue
     if at_pole.any():

@@ -779,3 +779,30 @@ def test_uncertainties_nonlinear_named_near_a_close_passage(client):
     assert far.status_code == 200, far.json
     assert "uncertainties_nonlinear" not in far.json["stars"][0]["flags"]
     assert "uncertainties_nonlinear" not in far.json["flag_meanings"]
+
+
+@pytest.mark.parametrize("parallax_mas", [1e-300, 2.2e-311, 5e-324])
+@pytest.mark.parametrize(
+    ("pm_mas_yr", "target"),
+    [(0.0, "J2026.0"), (100.0, "J2016.0")],
+    ids=["no-proper-motion", "catalogue-epoch"],
+)
+def test_radial_velocity_kept_for_tiny_parallax_without_motion_across_the_sky(
+    client, parallax_mas, pm_mas_yr, target
+):
+    # A positive parallax below about 1e-299 mas (accepted: the bound is 1e10 in size)
+    # made A / parallax overflow, and with tau * mu^2 = 0 (no proper motion, or the
+    # catalogue epoch itself) inf * 0 turned the radial velocity given into null, flagged
+    # with nothing. Pure radial motion keeps its radial velocity (ESA 1997 Vol. 1
+    # eq. 1.5.19 with mu = 0; pyerfa starpm gives 4.999999999999997 km/s for this star
+    # with zero proper motion and a parallax of 1e-303 arcsec, run by hand).
+    star = dict(
+        STAR,
+        parallax_mas=parallax_mas,
+        pm_ra_cosdec_mas_yr=pm_mas_yr,
+        pm_dec_mas_yr=0.0,
+        radial_velocity_km_s=5.0,
+    )
+    body = post(client, dict(BASE, stars=[star], target_epochs=[target])).json
+    out = body["stars"][0]["at_epochs"][0]
+    assert out["radial_velocity_km_s"] == pytest.approx(5.0, abs=1e-9)  # km/s
