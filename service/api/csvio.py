@@ -350,8 +350,10 @@ def _flatten_record(
         elif value is None and key in nested_names:
             continue
         else:
-            if isinstance(value, list) and all(isinstance(v, str) for v in value):
-                lists.append(key)  # names (flags): last columns
+            # Names (flags): last columns. The Arrow answer is made from the answer object
+            # itself, where the flag names of a star are a tuple, not a JSON list.
+            if isinstance(value, list | tuple) and all(isinstance(v, str) for v in value):
+                lists.append(key)
             out[key] = value
     return out, per_epoch, lists
 
