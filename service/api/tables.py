@@ -425,6 +425,7 @@ class StarTableField(ma.fields.Field):
         if not_obj:
             for i in not_obj[:MAX_LISTED_ERRORS]:
                 errors.add(f"[{i}]", "must be an object (a star record)")
+            errors.more += len(not_obj[MAX_LISTED_ERRORS:])  # counted, not listed
             errors.raise_if_any()
         keys = set().union(*records) if records else set()
         unknown = keys - self.names
@@ -432,6 +433,7 @@ class StarTableField(ma.fields.Field):
             for name in sorted(unknown)[:MAX_LISTED_ERRORS]:
                 first = next(i for i, r in enumerate(records) if name in r)
                 errors.add(f"[{first}].{name}", self._unknown_text(name))
+            errors.more += max(0, len(unknown) - MAX_LISTED_ERRORS)
             errors.raise_if_any()
         columns = {}
         for spec in self.specs:
@@ -483,6 +485,7 @@ class StarTableField(ma.fields.Field):
         unknown = [h for h in table.header if h not in self.names]
         for name in unknown[:MAX_LISTED_ERRORS]:
             errors.add(errors.header_key(name), self._unknown_text(name))
+        errors.more += len(unknown[MAX_LISTED_ERRORS:])
         errors.raise_if_any()
         if table.size == 0:
             errors.add(f"line {table.header_line + 1}", "at least one star is required")
@@ -506,8 +509,10 @@ class StarTableField(ma.fields.Field):
         """An Arrow IPC body (typed columns, null = unknown); errors name stars.<column>[<row>]
         as for the columns form, which it answers in unless asked otherwise."""
         errors = TableErrors("columns")
-        for name in [h for h in table.names if h not in self.names][:MAX_LISTED_ERRORS]:
+        unknown = [h for h in table.names if h not in self.names]
+        for name in unknown[:MAX_LISTED_ERRORS]:
             errors.add(errors.header_key(name), self._unknown_text(name))
+        errors.more += len(unknown[MAX_LISTED_ERRORS:])
         errors.raise_if_any()
         if table.size == 0:
             raise ma.ValidationError("at least one star is required")

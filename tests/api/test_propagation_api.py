@@ -528,6 +528,42 @@ def test_unknown_field_is_named(client):
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].parralax_mas")
 
 
+@pytest.mark.parametrize("form", ["records", "not_records", "csv", "arrow"])
+def test_every_unknown_column_is_counted(client, form):
+    """A catalogue with 300 columns the endpoint does not take (or 300 records that are not
+    objects): 50 are named, and the rest are counted, in the detail and in a "(more)"
+    entry, in every body form (as the columns form did). The unknown names were cut to 50
+    before counting, so the answer said "50 invalid fields" and gave no sign of the other
+    250 (count: the 300 names sent)."""
+    import io
+
+    import pyarrow as pa
+
+    extra = {f"x{i}": 0.0 for i in range(300)}
+    query = "?catalogue_epoch=J2016.0&target_epochs=J2026.0"
+    if form == "records":
+        r = post(client, dict(BASE, stars=[dict(STAR, **extra)]))
+    elif form == "not_records":
+        r = post(client, dict(BASE, stars=[1.0] * 300))
+    elif form == "csv":
+        names = [*STAR, *extra]
+        text = ",".join(names) + "\n" + ",".join(["1"] * len(names)) + "\n"
+        r = client.post(URL + query, data=text, content_type="text/csv")
+    else:
+        sink = io.BytesIO()
+        table = pa.table({k: [v] for k, v in {**STAR, **extra}.items()})
+        with pa.ipc.new_stream(sink, table.schema) as writer:
+            writer.write_table(table)
+        r = client.post(
+            URL + query, data=sink.getvalue(), content_type="application/vnd.apache.arrow.stream"
+        )
+    answer = assert_problem(r, 422)
+    assert answer["detail"] == "The request has 300 invalid fields."
+    assert len(answer["errors"]) == 51
+    assert answer["errors"][-1]["field"].endswith("(more)")
+    assert answer["errors"][-1]["message"].startswith("250 further")
+
+
 @pytest.mark.parametrize(
     ("url", "query"),
     [
