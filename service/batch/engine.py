@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
+import functools
 import importlib.metadata
 import json
 import os
@@ -673,6 +674,14 @@ def _flag_table(flag_type, meanings) -> dict:
     }
 
 
+def _part_name(width: int, i: int) -> str:
+    """File name of output part ``i``, numbered to ``width`` digits: Parquet readers that
+    take a directory (pyarrow's datasets, pandas) read its files in the order of their
+    names, and dask's own names (part.0, part.1, part.10, ..., part.2) would give them the
+    rows out of the input's order from the eleventh part on."""
+    return f"part.{i:0{width}d}.parquet"
+
+
 def run_batch(
     job: BatchJob | str,
     source,
@@ -765,6 +774,7 @@ def run_batch(
         write_index=False,
         overwrite=overwrite,
         compute=False,
+        name_function=functools.partial(_part_name, len(str(max(out.npartitions - 1, 0)))),
         # Dictionary encoding pays for the flag columns (few distinct values) but costs
         # more than it saves on columns of measured values, which are nearly all distinct.
         use_dictionary=list(bits),
