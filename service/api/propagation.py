@@ -535,8 +535,10 @@ def propagate(args):
         for name, arr in zip(VALUE_FIELDS, values, strict=True):
             cols[name] = np.ascontiguousarray(arr.T)
         if result.covariance is not None:
+            # Masked in place: a copy would hold another (N, M, 6, 6) array (576 MB for
+            # 2,000,000 results) while the answer is written.
             cv = result.covariance
-            cv = np.where(has_cov[:, None, None, None], cv, np.nan)
+            cv[~has_cov] = np.nan
             with np.errstate(invalid="ignore", divide="ignore"):
                 sig = np.sqrt(np.clip(np.diagonal(cv, axis1=-2, axis2=-1), 0.0, None))
                 for k, name in enumerate(ERROR_FIELDS):
