@@ -421,6 +421,10 @@ def _python_array(values: list) -> pa.Array:
     """A column of JSON values (numbers, text, booleans, null, short lists) -> Arrow; a
     column Arrow cannot type as one (mixed text and numbers) becomes text, as in CSV."""
     kinds = set(map(type, values))
+    if kinds == {type(None)}:
+        # Unknown for every row (a catalogue without any radial velocity): float64 nulls,
+        # as a quantity of the columns layout gives, not the names of an empty list.
+        return _float_array(np.full(len(values), np.nan))
     if kinds <= {float, int, type(None)} and float in kinds:
         return _float_array([np.nan if v is None else v for v in values])
     if kinds and kinds <= {list, tuple, type(None)}:

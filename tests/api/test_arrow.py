@@ -197,6 +197,28 @@ def test_flags_last_when_the_first_star_has_no_uncertainties(client):
     assert table.column_names == header
 
 
+@pytest.mark.parametrize("layout", ["records", "columns"])
+def test_a_quantity_unknown_for_every_star_is_float64_nulls(client, layout):
+    """No star with a radial velocity (common in catalogues): the Arrow answer's
+    radial_velocity_km_s is float64 with nulls, as the README says of unknown values and as
+    the columns layout of a numeric column gives. From the records layout a column of nulls
+    only was taken for lists of names and came as a dictionary of empty strings."""
+    star = {"ra_deg": 10.0, "dec_deg": -5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
+    body = {
+        "catalogue_epoch": "J2016.0",
+        "target_epochs": ["J2030.0"],
+        "stars": [star, dict(star, parallax_mas=5.0)],
+        "layout": layout,
+    }
+    out = client.post(URL, json=body, headers={"Accept": ARROW})
+    assert out.status_code == 200, out.get_data(as_text=True)
+    table = read_stream(out.data)
+    for name in ("radial_velocity_km_s", "parallax_mas"):
+        assert table.schema.field(name).type == pa.float64(), name
+    assert table.column("radial_velocity_km_s").to_pylist() == [None, None]
+    assert table.column("parallax_mas").to_pylist()[0] is None
+
+
 def test_round_trip_through_pyarrow(client, demo_catalogue):
     """Written by pyarrow, propagated over no time, read by pyarrow: the input comes back.
 
