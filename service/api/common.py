@@ -261,14 +261,24 @@ class WarningSchema(ma.Schema):
     message = ma.fields.String()
 
 
+#: Most warnings of one kind in one answer (every star carries its flags all the same).
+MAX_WARNINGS_PER_KIND = 1000
+
+#: What answers say of their ``warnings`` list about that limit (OpenAPI descriptions).
+WARNINGS_LIMIT_TEXT = (
+    f"At most {MAX_WARNINGS_PER_KIND:,} of one kind per request (the flags name every star; a "
+    "client that splits a catalogue into several requests gets up to that many per request)."
+)
+
+
 def flag_warnings(masks, table, texts: dict) -> list[dict]:
     """Per-star warnings ({index, id, message}) for the flags of ``texts`` (flag -> message)
-    set in ``masks`` (one int per star), at most 1,000 per flag."""
+    set in ``masks`` (one int per star), at most MAX_WARNINGS_PER_KIND per flag."""
     out = []
     if not (masks & functools.reduce(operator.or_, map(int, texts))).any():
         return out
     for flag, text in texts.items():
-        for i in np.flatnonzero(masks & int(flag))[:1000]:
+        for i in np.flatnonzero(masks & int(flag))[:MAX_WARNINGS_PER_KIND]:
             out.append(
                 {
                     "index": int(i),

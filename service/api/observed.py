@@ -24,6 +24,7 @@ from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from .common import (
     PROPAGATION_WARNINGS,
+    WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -448,7 +449,7 @@ class ObservedResponseSchema(ma.Schema):
         metadata={
             "description": "Stars whose inputs look like a unit mistake (proper motion above "
             "10.4 arcsec/yr, radial velocity above 5,000 km/s) or are inconsistent; they are "
-            "computed as given."
+            "computed as given. " + WARNINGS_LIMIT_TEXT
         },
     )
     stars = ma.fields.List(

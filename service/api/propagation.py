@@ -20,6 +20,7 @@ from ..core.flags import (
 )
 from .common import (
     PROPAGATION_WARNINGS,
+    WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -268,7 +269,13 @@ class PropagationResponseSchema(ma.Schema):
     layout = ma.fields.String()
     units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    warnings = ma.fields.List(ma.fields.Nested(WarningSchema))
+    warnings = ma.fields.List(
+        ma.fields.Nested(WarningSchema),
+        metadata={
+            "description": "Stars whose inputs look like a unit mistake or are inconsistent "
+            "(computed as given). " + WARNINGS_LIMIT_TEXT
+        },
+    )
     stars = ma.fields.List(
         ma.fields.Nested(StarResultSchema),
         metadata={"description": "layout=records: one entry per star."},

@@ -26,6 +26,7 @@ from ..core.flags import (
 from .common import (
     PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
+    WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -419,7 +420,10 @@ class VelocityResponseSchema(ma.Schema):
     )
     units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    warnings = ma.fields.List(ma.fields.Nested(VelocityWarningSchema))
+    warnings = ma.fields.List(
+        ma.fields.Nested(VelocityWarningSchema),
+        metadata={"description": "Per-star warnings. " + WARNINGS_LIMIT_TEXT},
+    )
     stars = ma.fields.List(
         ma.fields.Nested(VelocityResultSchema),
         metadata={"description": "layout=records: one entry per star."},
@@ -766,7 +770,10 @@ class ObservablesResponseSchema(ma.Schema):
     solar_motion_km_s = VelocityResponseSchema._declared_fields["solar_motion_km_s"]
     units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
     flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    warnings = ma.fields.List(ma.fields.Nested(VelocityWarningSchema))
+    warnings = ma.fields.List(
+        ma.fields.Nested(VelocityWarningSchema),
+        metadata={"description": "Per-star warnings. " + WARNINGS_LIMIT_TEXT},
+    )
     stars = ma.fields.List(ma.fields.Nested(ObservablesResultSchema))
     columns = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.Raw())
 

@@ -842,3 +842,20 @@ def test_radial_velocity_kept_for_tiny_parallax_without_motion_across_the_sky(
     body = post(client, dict(BASE, stars=[star], target_epochs=[target])).json
     out = body["stars"][0]["at_epochs"][0]
     assert out["radial_velocity_km_s"] == pytest.approx(5.0, abs=1e-9)  # km/s
+
+
+def test_warnings_limit_is_documented_and_flags_name_every_star(client, monkeypatch):
+    """The warnings list stops at a limit per kind (1,000), which the answer's description
+    now states (it was silent, and a client splitting a catalogue got more warnings than
+    one request would give); the flags still name every star. Limit lowered to 2 here so
+    that 3 stars show it (the settings of these tests allow 1,000 stars per request)."""
+    from service.api import common
+
+    doc = client.get("/openapi.json").json
+    answer_schema = doc["components"]["schemas"]["PropagationResponse"]
+    assert "At most 1,000 of one kind" in answer_schema["properties"]["warnings"]["description"]
+    monkeypatch.setattr(common, "MAX_WARNINGS_PER_KIND", 2)
+    fast = dict(STAR, pm_ra_cosdec_mas_yr=20_000.0)  # 20 arcsec/yr: implausible
+    answer = post(client, dict(BASE, stars=[fast] * 3)).json
+    assert [w["index"] for w in answer["warnings"]] == [0, 1]
+    assert all("proper_motion_implausible" in s["flags"] for s in answer["stars"])
