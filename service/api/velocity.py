@@ -353,6 +353,9 @@ _OUTPUT_DESCRIPTIONS = {
 FLAG_MEANINGS = {
     "parallax_missing": "No parallax and no distance: velocities needing a distance are null.",
     "parallax_not_positive": "Parallax zero or negative: no distance; velocities are null.",
+    "parallax_too_small": "Parallax positive but too small for a distance (1000/parallax "
+    "overflows, below about 5.6e-306 mas): velocities needing a distance (in the inverse, "
+    "the distance) are null.",
     "parallax_low_snr": "Parallax signal-to-noise below the threshold: 1/parallax is a biased "
     "distance and linear uncertainties are unreliable; prefer uncertainty_method auto or a "
     "better distance in distance_pc.",

@@ -303,6 +303,8 @@ _KF = _kinematics.KinematicsFlag
 VELOCITY_FLAG_MEANINGS = {
     _KF.PARALLAX_MISSING: "No parallax and no distance: velocities needing a distance are NaN.",
     _KF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; velocities are NaN.",
+    _KF.PARALLAX_TOO_SMALL: "Parallax positive but too small for a distance (1000/parallax "
+    "overflows, below about 5.6e-306 mas): velocities needing a distance are NaN.",
     _KF.PARALLAX_LOW_SNR: "Parallax signal-to-noise below the threshold: 1/parallax is a "
     "biased distance and linear uncertainties are unreliable.",
     _KF.RADIAL_VELOCITY_MISSING: "No radial velocity: U, V, W, total velocity, line-of-sight "

@@ -188,6 +188,10 @@ class KinematicsFlag(enum.IntFlag):
     #: speed from the distance, proper motion and radial velocity (the transverse speed
     #: without a radial velocity); inverse: U, V, W as given.
     SPACE_VELOCITY_IMPLAUSIBLE = 512
+    #: Parallax positive but too small for a distance: 1000 / parallax overflows a double
+    #: (below about 5.6e-306 mas), so distance-dependent outputs are null (in the inverse,
+    #: the distance; the proper motions, proportional to the parallax, are given).
+    PARALLAX_TOO_SMALL = 1024
 
 
 @dataclass(frozen=True)
@@ -933,6 +937,13 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
 
     inv_plx = 1.0 / plx_eq
     distance = 1000.0 * inv_plx
+    # A positive parallax below about 5.6e-306 mas gives no distance (1000 / parallax
+    # overflows); inf * 0 would null the velocities of a star without proper motion unsaid.
+    overflow = np.isinf(distance)
+    if overflow.any():
+        flags |= overflow * np.uint32(KinematicsFlag.PARALLAX_TOO_SMALL)
+        inv_plx = np.where(overflow, np.nan, inv_plx)
+        distance = np.where(overflow, np.nan, distance)
     k = AU_PER_JULIAN_YEAR_KM_S * inv_plx  # km/s per mas/yr
 
     # --- decomposition -------------------------------------------------------------------
@@ -1258,8 +1269,10 @@ def observables_from_velocity(
     flags[speed2 > IMPLAUSIBLE_SPACE_VELOCITY_KM_S**2] |= np.uint32(
         KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE
     )
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         plx_eq = np.where(given, 1000.0 / dist, np.where(plx > 0.0, plx, np.nan))
+        overflow = ~given & np.isinf(1000.0 / plx_eq)  # a parallax below about 5.6e-306 mas
+    flags[overflow] |= np.uint32(KinematicsFlag.PARALLAX_TOO_SMALL)  # proper motions kept
     g_p, g_q, g_r, _, _ = _galactic_triad(ra, dec)
     va = g_p[0] * u + g_p[1] * v + g_p[2] * w
     vd = g_q[0] * u + g_q[1] * v + g_q[2] * w

@@ -464,3 +464,32 @@ def test_radial_velocity_missing_meaning_says_what_is_null(client):
     assert got["pm_total_rate_mas_yr2"] is None and got["closest_approach_time_yr"] is None
     meaning = body["flag_meanings"]["radial_velocity_missing"]
     assert "secular quantities are null" not in meaning and "radial-velocity rate" in meaning
+
+
+@pytest.mark.parametrize("parallax", [2.2e-311, 1e-307, 5e-324])
+def test_parallax_too_small_for_a_distance_is_flagged(client, parallax):
+    """1000/parallax overflows below about 5.6e-306 mas: the distance-dependent outputs are
+    null, and the star says why (the forward answer had no flag for a star without proper
+    motion: inf * 0 made its velocities unknown unsaid). The inverse keeps the proper
+    motions, which are proportional to the parallax: mu = v_t parallax / A (Johnson &
+    Soderblom 1987, eq. 1, A = 4.740470446 km/s per au/yr), checked by scaling the answer
+    for a parallax of 1 mas."""
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "parallax_mas": parallax, "pm_ra_cosdec_mas_yr": 0.0,
+            "pm_dec_mas_yr": 0.0, "radial_velocity_km_s": 0.0}  # fmt: skip
+    got = client.post(URL, json={"stars": [star]}).json["stars"][0]
+    assert "parallax_too_small" in got["flags"]
+    assert got["distance_pc"] is None and got["u_km_s"] is None
+    assert got["radial_velocity_km_s"] == 0.0  # needs no distance
+    space = {"ra_deg": 10.0, "dec_deg": 20.0, "u_km_s": 10.0, "v_km_s": 5.0, "w_km_s": 1.0}
+    tiny, one = (
+        client.post(f"{URL}/observables", json={"stars": [dict(space, parallax_mas=p)]}).json[
+            "stars"
+        ][0]
+        for p in (parallax, 1.0)
+    )
+    assert tiny["flags"] == ["parallax_too_small"] and tiny["distance_pc"] is None
+    assert one["flags"] == [] and one["distance_pc"] == pytest.approx(1000.0, rel=1e-15)
+    for name in ("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr"):
+        # subnormal parallaxes carry fewer digits: 5e-324 is the smallest double itself
+        assert tiny[name] == pytest.approx(one[name] * parallax, rel=1e-9, abs=1e-323)
+    assert tiny["radial_velocity_km_s"] == one["radial_velocity_km_s"]
