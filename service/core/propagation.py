@@ -905,14 +905,25 @@ def _nonlinear(entry_major, cov_block, plx0, plx1, cov_out):
     nonlinear = var_pos > (NONLINEAR_RELATIVE_ERROR * MAS_PER_RAD) ** 2
     usable = (plx0 > 0.0) & np.isfinite(plx1) & (plx1 > 0.0)
     if usable.any():
-        c = np.where(np.isnan(cov_block), 0.0, cov_block)[:, 2:, 2:]
         with np.errstate(divide="ignore", invalid="ignore"):
-            g = entry_major[2, 2:, :b].T / plx1[:, None]
-            g[:, 0] -= 1.0 / plx0
-        g = np.where(usable[:, None] & np.isfinite(g), g, 0.0)
-        var_lnf = np.einsum("bi,bij,bj->b", g, c, g)
+            g = entry_major[2, 2:, :b] / plx1  # (4, b): parallax, proper motions, v_r
+            g[0] -= 1.0 / plx0
+        g = np.where(usable & np.isfinite(g), g, 0.0)
+        # g C g^T over the symmetric 4x4 block, element by element on (b,) rows: some
+        # three times quicker than an einsum over (b, 4, 4) (NaN: an unknown term, 0).
+        c = cov_block[:, 2:, 2:].transpose(1, 2, 0)
+        var_lnf = np.zeros(b)
+        for i in range(4):
+            row = _nan_as_zero(c[i, i]) * g[i]
+            for j in range(i + 1, 4):
+                row += 2.0 * _nan_as_zero(c[i, j]) * g[j]
+            var_lnf += row * g[i]
         nonlinear |= var_lnf > NONLINEAR_RELATIVE_ERROR**2
     return nonlinear
+
+
+def _nan_as_zero(x):
+    return np.where(np.isnan(x), 0.0, x)
 
 
 def _broadcast_shape(*arrays) -> tuple:
