@@ -5,7 +5,7 @@ from __future__ import annotations
 import erfa
 import marshmallow as ma
 import numpy as np
-from flask import current_app, request
+from flask import current_app, g, request
 from flask_smorest import abort
 
 from ..core import constellations as core
@@ -583,7 +583,10 @@ def _cacheable(resp):
     """Let browsers and caches keep a GET answer (Cache-Control, and a strong ETag, a hash
     of the body) and answer a conditional request naming that ETag with 304 (RFC 9110
     sections 8.8.3 and 13.1.2). With bearer tokens set it is for the caller's own cache
-    only (private): a shared cache must not hand it to a caller without a token."""
+    only (private): a shared cache must not hand it to a caller without a token. An answer
+    that read the clock ("now") is not cached: the equinox of now moves 0.14 arcsec a day."""
+    if "skydrift_now" in g:  # an answer for "now" (equinox=now) changes with the clock
+        return resp
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     scope = "private" if settings.auth_tokens else "public"
     resp.headers["Cache-Control"] = f"{scope}, max-age={STATIC_MAX_AGE_S}"

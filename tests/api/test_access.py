@@ -593,6 +593,11 @@ def test_cached_answers_differ_by_request_and_stay_private_behind_tokens(client,
     r = c.get("/v1/constellations", headers={"Authorization": f"Bearer {TOKEN_A}"})
     assert r.headers["Cache-Control"] == "private, max-age=86400"
     assert c.get("/v1/constellations").status_code == 401
+    # An outline for the equinox of now moves with the clock (0.14 arcsec a day of
+    # precession): not stored.
+    now = client.get("/v1/constellations/Ori/outline?frame=fk5&equinox=now")
+    assert now.status_code == 200 and now.headers["Cache-Control"] == "no-store"
+    assert "ETag" not in now.headers
     # Everything else, errors included, is still not stored.
     assert client.get("/v1/constellations/Xyz/outline").headers["Cache-Control"] == "no-store"
     lookup = client.post(
