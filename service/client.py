@@ -14,7 +14,10 @@ What it does for you:
 * large inputs split into requests of ``batch_size`` stars, the answers joined in order (star
   ``index`` values count from the start of your input, as if sent at once; an epoch given as
   "now" is then read once from this machine's clock, so that every request means one
-  instant);
+  instant); a batch the service refuses for too many results (stars x epochs or instants
+  above its setting SKYDRIFT_MAX_RESULTS, default 2,000,000: a 413 naming it) is sent again
+  as two halves, and the rest of the call in batches of that size, so that ``batch_size``
+  need not be matched to the number of epochs;
 * errors raised as :class:`SkydriftError` with the problem details (status, title, detail
   and the list of offending fields).
 
@@ -183,6 +186,22 @@ _LARGE_ANSWER_BYTES = 1 << 20
 JSON_ANSWERS = ("application/json", "application/geo+json")
 
 
+#: The service setting that limits stars x epochs (or instants) per request.
+RESULTS_LIMIT_SETTING = "SKYDRIFT_MAX_RESULTS"
+
+
+def _over_results_limit(exc: SkydriftError) -> bool:
+    """True for a 413 that names SKYDRIFT_MAX_RESULTS: the request asked for more stars x
+    epochs (or instants) than the service computes at once, which fewer stars cure.
+
+    The service does not state this limit before it is hit (it may differ between the pods
+    behind one address), so the client learns it from the refusal: the batch is sent again
+    as two halves, in order, and the rest of the call uses the smaller size. A 413 for
+    anything else (body size, star count, epoch count) is raised as it is.
+    """
+    return exc.status == 413 and any(RESULTS_LIMIT_SETTING in e.message for e in exc.errors)
+
+
 def _whole(value) -> int:
     """A count given as a Python int or as text in ASCII digits ("11"; not "1_1")."""
     if isinstance(value, int) and not isinstance(value, bool):
@@ -323,6 +342,8 @@ class Client:
         ``max_retry_after_s``).
     batch_size : int
         Most stars sent in one request; larger inputs are split and the answers joined.
+        Fewer when the service refuses a batch for its stars x epochs (SKYDRIFT_MAX_RESULTS):
+        the batch is halved until it is accepted (one wasted request per halving).
     token : str, optional
         Bearer token for a service that requires one (sent as ``Authorization: Bearer``).
     headers : dict, optional
@@ -451,25 +472,38 @@ class Client:
         progress: Progress | None = None,
         batch_size: int | None = None,
     ) -> dict:
-        """POST a body whose ``table`` member is split into batches; join the answers."""
+        """POST a body whose ``table`` member is split into batches; join the answers.
+
+        A batch refused for too many stars x epochs (413 naming SKYDRIFT_MAX_RESULTS) is
+        sent again as two halves, and the rest of the call goes in batches of that size
+        (:func:`_fewer_stars`).
+        """
         stars = body[table]
         n = _count(stars)
         size = batch_size or self.batch_size
-        if n > size:  # several requests: one "now" for all (this machine's clock)
+        several = n > size
+        if several:  # several requests: one "now" for all (this machine's clock)
             body = pin_now(body, _now_text())
         parts, offsets = [], []
-        for start in range(0, max(n, 1), size):
+        start = 0
+        while start < n or not parts:
             stop = min(n, start + size)
             part = dict(body)
             part[table] = _slice(stars, start, stop)
             try:
                 parts.append(self.post(path, part))
             except SkydriftError as exc:
+                if _over_results_limit(exc) and stop - start > 1:
+                    if not several:  # one request was to be sent; now several: one "now"
+                        body, several = pin_now(body, _now_text()), True
+                    size = (stop - start + 1) // 2
+                    continue
                 exc.errors = [_shift_index(e, table, start) for e in exc.errors]
                 raise
             offsets.append(start)
             if progress is not None:
                 progress(stop - start)
+            start = stop
         return merge_answers(parts, offsets)
 
     def post_arrow(self, path: str, table, params: Mapping[str, Any] | None = None):
@@ -526,17 +560,20 @@ class Client:
     ) -> str:
         """POST a CSV star table (options as query parameters); return the CSV answer.
 
-        The table is sent in batches of ``batch_size`` rows; the answers are joined with the
+        The table is sent in batches of ``batch_size`` rows (fewer after a 413 naming
+        SKYDRIFT_MAX_RESULTS, as in :meth:`post_batched`); the answers are joined with the
         ``index`` column counted from the first star, and line numbers in errors refer to
         ``csv_text`` itself.
         """
         header, rows, lines = _read_csv(csv_text)
         size = batch_size or self.batch_size
-        if len(rows) > size:  # several requests: one "now" for all (this machine's clock)
+        several = len(rows) > size
+        if several:  # several requests: one "now" for all (this machine's clock)
             params = pin_now(params or {}, _now_text())
         query = _query(params or {})
         pieces: list[tuple[list[str], list[list[str]]]] = []
-        for start in range(0, max(len(rows), 1), size):
+        start = 0
+        while start < len(rows) or not pieces:
             chunk = rows[start : start + size]
             buf = io.StringIO()
             writer = csv.writer(buf, lineterminator="\n")
@@ -554,6 +591,12 @@ class Client:
                     expect=("text/csv",),
                 )
             except SkydriftError as exc:
+                if _over_results_limit(exc) and len(chunk) > 1:
+                    if not several:  # one request was to be sent; now several: one "now"
+                        params, several = pin_now(params or {}, _now_text()), True
+                        query = _query(params)
+                    size = (len(chunk) + 1) // 2
+                    continue
                 exc.errors = relocate_lines(exc.errors, buf.getvalue(), chunk_lines)
                 raise
             out_header, out_rows, _ = _read_csv(resp.content.decode("utf-8-sig"))
@@ -564,6 +607,7 @@ class Client:
             pieces.append((out_header, out_rows))
             if progress is not None:
                 progress(len(chunk))
+            start += len(chunk)
         return _join_csv(pieces)
 
     # ------------------------------------------------------------ endpoints

@@ -280,14 +280,27 @@ def convert(args):
     epoch0 = float(args["catalogue_epoch"])
     targets = args.get("target_epochs")
     targets = np.array([epoch0] if targets is None else targets, dtype=float)
-    if targets.size > settings.max_epochs or n * targets.size > settings.max_results:
+    # Each check names only the setting exceeded: fewer stars per request cure the second
+    # (the Python client halves its batches on it), never the first.
+    if targets.size > settings.max_epochs:
         abort(
             413,
             errors=[
                 {
                     "field": "target_epochs",
-                    "message": f"{n} stars x {targets.size} epochs exceeds the limits "
-                    "(SKYDRIFT_MAX_EPOCHS, SKYDRIFT_MAX_RESULTS)",
+                    "message": f"{targets.size} epochs; the limit is {settings.max_epochs} "
+                    "(setting SKYDRIFT_MAX_EPOCHS)",
+                }
+            ],
+        )
+    if n * targets.size > settings.max_results:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "target_epochs",
+                    "message": f"{n} stars x {targets.size} epochs = {n * targets.size} "
+                    f"results; the limit is {settings.max_results} (setting SKYDRIFT_MAX_RESULTS)",
                 }
             ],
         )

@@ -488,14 +488,27 @@ def observed(args):
     given = args["instants"]
     instants = np.array([t.julian_epoch_tdb for t in given])  # for the space motion
     m = instants.size
-    if m > settings.max_epochs or n * m > settings.max_results:
+    # Each check names only the setting exceeded: fewer stars per request cure the second
+    # (the Python client halves its batches on it), never the first.
+    if m > settings.max_epochs:
         abort(
             413,
             errors=[
                 {
                     "field": "instants",
-                    "message": f"{n} stars x {m} instants exceeds the limits "
-                    "(SKYDRIFT_MAX_EPOCHS, SKYDRIFT_MAX_RESULTS)",
+                    "message": f"{m} instants; the limit is {settings.max_epochs} "
+                    "(setting SKYDRIFT_MAX_EPOCHS)",
+                }
+            ],
+        )
+    if n * m > settings.max_results:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": "instants",
+                    "message": f"{n} stars x {m} instants = {n * m} results; the limit is "
+                    f"{settings.max_results} (setting SKYDRIFT_MAX_RESULTS)",
                 }
             ],
         )

@@ -628,3 +628,79 @@ def test_an_answer_cut_off_is_a_failed_connection():
         assert info.value.status is None and info.value.title == "Answer cut off"
     finally:
         listener.close()
+
+
+#: Stars x epochs per request of the service started by small_results_limit (setting
+#: SKYDRIFT_MAX_RESULTS): the 30 demo stars at 21 epochs (630 results) exceed it, 4 stars
+#: (84) do not.
+SMALL_RESULTS_LIMIT = 100
+MANY_EPOCHS = [f"J{2016 + 5 * k}.0" for k in range(21)]
+
+
+@pytest.fixture(scope="module")
+def small_results_limit():
+    from tests.clients.conftest import start_service, stop_service
+
+    url, proc = start_service({"SKYDRIFT_MAX_RESULTS": str(SMALL_RESULTS_LIMIT)})
+    yield url
+    stop_service(proc)
+
+
+def test_batches_shrink_to_the_services_results_limit(small_results_limit, demo_catalogue):
+    """More stars x epochs than SKYDRIFT_MAX_RESULTS in one batch: every batch was refused
+    (413), whatever the epochs, with the default 100,000 stars per batch. The client halves
+    the batch until it fits; the answers equal those of batches small enough from the
+    start (4 stars x 21 epochs = 84 results), stars in order, none lost."""
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
+    small = Client(small_results_limit, batch_size=4)
+    with Client(small_results_limit) as sky, pytest.raises(SkydriftError) as refused:
+        sky.post("/v1/propagation",
+                 {"stars": stars, "catalogue_epoch": "J2016.0", "target_epochs": MANY_EPOCHS})  # fmt: skip
+    assert refused.value.status == 413
+    with Client(small_results_limit) as sky:
+        done = []
+        got = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=MANY_EPOCHS,
+                            progress=done.append)  # fmt: skip
+        assert got == small.propagate(stars, catalogue_epoch="J2016.0", target_epochs=MANY_EPOCHS)
+        assert [s["index"] for s in got["stars"]] == list(range(30)) and sum(done) == 30
+        text = (DEMO / "catalogue.csv").read_text()
+        csv_got = sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=MANY_EPOCHS)
+        assert csv_got == small.propagate_csv(
+            text, catalogue_epoch="J2016.0", target_epochs=MANY_EPOCHS
+        )
+        frames = sky.frames(stars, catalogue_epoch="J2016.0", from_frame="icrs",
+                            to_frame="galactic", target_epochs=MANY_EPOCHS)  # fmt: skip
+        assert frames == small.frames(stars, catalogue_epoch="J2016.0", from_frame="icrs",
+                                      to_frame="galactic", target_epochs=MANY_EPOCHS)  # fmt: skip
+        instants = [f"2026-12-02T{h:02d}:00:00Z" for h in range(21)]
+        buf = io.StringIO()
+        writer = csv.DictWriter(buf, ASTROMETRY)
+        writer.writeheader()
+        writer.writerows(stars)
+        text = buf.getvalue()  # the columns the observed place takes
+        observed = sky.observed_csv(text, catalogue_epoch="J2016.0", instants=instants,
+                                    site="kestrel-ridge")  # fmt: skip
+        assert observed == small.observed_csv(text, catalogue_epoch="J2016.0",
+                                              instants=instants, site="kestrel-ridge")  # fmt: skip
+        # "now", sent once and refused, then in several batches: still one instant.
+        out = sky.propagate_csv(
+            text, catalogue_epoch="J2016.0", target_epochs=["now", *MANY_EPOCHS[1:]]
+        )
+        rows = list(csv.DictReader(io.StringIO(out)))
+        assert len(rows) == 30 * 21 and len({r["epoch_iso_utc"] for r in rows}) == 21
+        assert [int(r["index"]) for r in rows] == sorted(int(r["index"]) for r in rows)
+
+
+def test_an_epoch_limit_is_not_taken_for_a_results_limit(small_results_limit):
+    """More epochs than SKYDRIFT_MAX_EPOCHS: no batch of stars can cure it, so it is raised
+    at once, not after halving the batch down to one star."""
+    star = {"ra_deg": 10.0, "dec_deg": 5.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    sent = []
+    with Client(small_results_limit) as sky:
+        post = sky.post
+        sky.post = lambda path, body: sent.append(path) or post(path, body)
+        with pytest.raises(SkydriftError) as info:
+            sky.observed([star] * 4, catalogue_epoch="J2016.0", site="kestrel-ridge",
+                         instants=["2026-12-02T22:00:00Z"] * 10_001)  # fmt: skip
+    assert info.value.status == 413 and "SKYDRIFT_MAX_EPOCHS" in str(info.value)
+    assert "SKYDRIFT_MAX_RESULTS" not in str(info.value) and len(sent) == 1
