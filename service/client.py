@@ -40,6 +40,7 @@ import math
 import random
 import re
 import time
+import urllib.parse
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -54,6 +55,12 @@ DEFAULT_URL = "http://127.0.0.1:8000"
 
 #: Most stars per boundary-crossing request (the search costs far more per star).
 CROSSING_BATCH_SIZE = 500
+
+#: Longest request line (method, path and query string, protocol), bytes, that the service
+#: reads: gunicorn's limit_request_line, 8190 by default and in deploy/gunicorn.conf.py
+#: (beyond it gunicorn answers 414 without reaching the service). CSV and Arrow bodies
+#: carry their options, epochs among them, in the query string.
+MAX_REQUEST_LINE_BYTES = 8190
 
 #: Answers worth repeating: rate limited, overloaded or briefly unavailable upstream.
 RETRY_STATUSES = (429, 502, 503, 504)
@@ -352,6 +359,11 @@ class Client:
         A session to use (default: a new one, closed by :meth:`close`).
     sleep : callable, optional
         Function used to wait (tests pass a recorder).
+    max_request_line_bytes : int or None
+        Longest request line the service reads (default :data:`MAX_REQUEST_LINE_BYTES`,
+        gunicorn's); None: no limit (the in-process client of ``service.local``). A CSV or
+        Arrow request whose options (epochs, instants) would not fit raises ValueError
+        before anything is sent.
     """
 
     def __init__(
@@ -368,6 +380,7 @@ class Client:
         headers: Mapping[str, str] | None = None,
         session: requests.Session | None = None,
         sleep: Callable[[float], None] = time.sleep,
+        max_request_line_bytes: int | None = MAX_REQUEST_LINE_BYTES,
     ):
         if batch_size < 1:
             raise ValueError("batch_size must be at least 1")
@@ -385,6 +398,7 @@ class Client:
             self.session.headers["Authorization"] = f"Bearer {token}"
         self.session.headers.update(dict(headers or {}))
         self._sleep = sleep
+        self.max_request_line_bytes = max_request_line_bytes
 
     # ------------------------------------------------------------ plumbing
 
@@ -506,6 +520,26 @@ class Client:
             start = stop
         return merge_answers(parts, offsets)
 
+    def _query_that_fits(self, path: str, params: Mapping[str, Any]) -> str:
+        """The options as a query string (:func:`_query`); ValueError if the request line
+        would be longer than the service reads (``max_request_line_bytes``)."""
+        query = _query(params)
+        limit = self.max_request_line_bytes
+        if limit is None:
+            return query
+        url = requests.Request("POST", self.base_url + path, params=query).prepare().path_url
+        line_bytes = len(f"POST {url} HTTP/1.1".encode())
+        if line_bytes <= limit:
+            return query
+        lists = ", ".join(f"{len(v)} {k}" for k, v in params.items() if isinstance(v, list | tuple))
+        raise ValueError(
+            f"the options of a CSV or Arrow request travel in its query string, and these "
+            f"({lists or 'as given'}) make a request line of {line_bytes} bytes; the service "
+            f"reads at most {limit}: send fewer epochs per call, or send the stars as JSON "
+            "(propagate, frames, observed), whose epochs travel in the body; evenly spaced "
+            "target epochs also go as target_range"
+        )
+
     def post_arrow(self, path: str, table, params: Mapping[str, Any] | None = None):
         """POST a star table as an Apache Arrow IPC stream; return the Arrow answer.
 
@@ -538,10 +572,11 @@ class Client:
         sink = pa.BufferOutputStream()
         with pa.ipc.new_stream(sink, table.schema) as writer:
             writer.write_table(table)
+        query = self._query_that_fits(path, params or {})
         resp = self.request(
             "POST",
             path,
-            params=_query(params or {}),
+            params=query,
             data=sink.getvalue().to_pybytes(),
             headers={"Content-Type": ARROW_MIMETYPE, "Accept": ARROW_MIMETYPE},
             expect=(ARROW_MIMETYPE,),
@@ -570,7 +605,7 @@ class Client:
         several = len(rows) > size
         if several:  # several requests: one "now" for all (this machine's clock)
             params = pin_now(params or {}, _now_text())
-        query = _query(params or {})
+        query = self._query_that_fits(path, params or {})
         pieces: list[tuple[list[str], list[list[str]]]] = []
         start = 0
         while start < len(rows) or not pieces:
@@ -594,7 +629,7 @@ class Client:
                 if _over_results_limit(exc) and len(chunk) > 1:
                     if not several:  # one request was to be sent; now several: one "now"
                         params, several = pin_now(params or {}, _now_text()), True
-                        query = _query(params)
+                        query = self._query_that_fits(path, params)
                     size = (len(chunk) + 1) // 2
                     continue
                 exc.errors = relocate_lines(exc.errors, buf.getvalue(), chunk_lines)
@@ -1213,8 +1248,15 @@ def _now_text() -> str:
     return dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:
-    """Request options as query parameters: lists repeated, objects with dotted names."""
+def _query(params: Mapping[str, Any]) -> str:
+    """Request options as a query string: lists comma-separated, objects with dotted names.
+
+    The service reads a list given once comma-separated as it reads the key repeated (no
+    epoch it accepts holds a comma). Comma-separated, with commas and colons left as they
+    are (RFC 3986 allows both in a query), a list of epochs takes less than half the bytes
+    of the key repeated per epoch: the request line is limited
+    (:data:`MAX_REQUEST_LINE_BYTES`).
+    """
     out: list[tuple[str, str]] = []
     for key, value in params.items():
         if value is None:
@@ -1222,12 +1264,13 @@ def _query(params: Mapping[str, Any]) -> list[tuple[str, str]]:
         if isinstance(value, Mapping):
             out.extend((f"{key}.{k}", "" if v is None else str(v)) for k, v in value.items())
         elif isinstance(value, list | tuple):
-            out.extend((key, str(v)) for v in value)
+            if value:  # an empty list: the option not given, as before
+                out.append((key, ",".join(str(v) for v in value)))
         elif isinstance(value, bool):
             out.append((key, "true" if value else "false"))
         else:
             out.append((key, str(value)))
-    return out
+    return urllib.parse.urlencode(out, safe=",:")
 
 
 def _read_csv(text: str) -> tuple[list[str], list[list[str]], list[int]]:

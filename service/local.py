@@ -61,4 +61,5 @@ def local_client(app=None, **kwargs) -> Client:
         app = create_app()
     session = requests.Session()
     session.mount(LOCAL_URL, InProcessAdapter(app))
+    kwargs.setdefault("max_request_line_bytes", None)  # no request line in this process
     return Client(LOCAL_URL, session=session, **kwargs)

@@ -704,3 +704,35 @@ def test_an_epoch_limit_is_not_taken_for_a_results_limit(small_results_limit):
                          instants=["2026-12-02T22:00:00Z"] * 10_001)  # fmt: skip
     assert info.value.status == 413 and "SKYDRIFT_MAX_EPOCHS" in str(info.value)
     assert "SKYDRIFT_MAX_RESULTS" not in str(info.value) and len(sent) == 1
+
+
+def test_csv_epochs_fit_the_request_line_comma_separated(sky, live_service):
+    """CSV and Arrow bodies carry their epochs in the query string, which gunicorn reads up
+    to 8190 bytes (limit_request_line, deploy/gunicorn.conf.py). The key repeated per epoch
+    ("&target_epochs=J2026.01") spent 24 bytes an epoch: 600 epochs made a 14,000-byte line,
+    refused by gunicorn (414) before reaching the service. Comma-separated, as the service
+    reads lists (README, CSV), they take 9 bytes each and fit; more than fit raise
+    ValueError before anything is sent, saying what to do instead."""
+    text = "id,ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\nA,10,5,100,-50\n"
+    epochs = [f"J{2016 + k / 100:.2f}" for k in range(600)]
+    repeated = "&".join(f"target_epochs={e}" for e in epochs)
+    assert len(f"POST /v1/propagation?catalogue_epoch=J2016.0&{repeated} HTTP/1.1") > 8190
+    out = sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=epochs)
+    rows = list(csv.DictReader(io.StringIO(out)))
+    star = {"ra_deg": 10, "dec_deg": 5, "pm_ra_cosdec_mas_yr": 100, "pm_dec_mas_yr": -50}
+    as_json = sky.propagate([star], catalogue_epoch="J2016.0", target_epochs=epochs)
+    assert [float(r["epoch_julian_tdb"]) for r in rows] == [
+        e["julian_epoch_tdb"] for e in as_json["epochs"]
+    ]
+    assert [float(r["dec_deg"]) for r in rows] == [
+        x["dec_deg"] for x in as_json["stars"][0]["at_epochs"]
+    ]
+    too_many = [f"J{2016 + k / 1000:.3f}" for k in range(1000)]
+    with pytest.raises(ValueError, match="1000 target_epochs.*8190.*target_range"):
+        sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=too_many)
+    # In this process (the command line without --url) there is no request line to limit.
+    from service.local import local_client
+
+    with local_client() as here:
+        out = here.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=too_many)
+    assert len(out.splitlines()) == 1 + 1000
