@@ -654,8 +654,8 @@ def test_batches_shrink_to_the_services_results_limit(small_results_limit, demo_
     stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
     small = Client(small_results_limit, batch_size=4)
     with Client(small_results_limit) as sky, pytest.raises(SkydriftError) as refused:
-        sky.post("/v1/propagation",
-                 {"stars": stars, "catalogue_epoch": "J2016.0", "target_epochs": MANY_EPOCHS})  # fmt: skip
+        body = {"stars": stars, "catalogue_epoch": "J2016.0", "target_epochs": MANY_EPOCHS}
+        sky.post("/v1/propagation", body)
     assert refused.value.status == 413
     with Client(small_results_limit) as sky:
         done = []
