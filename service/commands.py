@@ -20,7 +20,7 @@ import pathlib
 import re
 import sys
 
-from .client import Client, SkydriftError, _read_csv, relocate_lines
+from .client import Client, SkydriftError, _now_text, _read_csv, pin_now, relocate_lines
 from .numbers import decimal, whole
 
 DEFAULT_CATALOGUE_EPOCH = "J2016.0"
@@ -260,14 +260,15 @@ def _run(func):
     return wrapper
 
 
-def _table_command(args, cat, label: str, call) -> str:
+def _table_command(args, cat, label: str, call, client: Client | None = None) -> str:
     """Send a catalogue through one CSV endpoint with a progress bar; the answer as CSV.
 
     ``call(client, body, update)`` makes the request for one CSV body; batching, the
     progress bar and --drop-unknown-columns (``_tolerant``) are the same for every command.
+    ``client``: one to use (and leave open); default: one made for this call.
     """
     bar, update = _progress(cat.rows, args, label)
-    with make_client(args) as client:
+    with contextlib.nullcontext(client) if client else make_client(args) as client:
         try:
             with _errors_named_for(cat):
                 return _tolerant(args, cat.csv_text, lambda body: call(client, body, update))
@@ -436,22 +437,42 @@ def cmd_observed(args) -> int:
         site = {"latitude_deg": lat, "longitude_deg": lon, "height_m": height}
     if site is None:
         raise ValueError("give --site NAME or --position LAT LON HEIGHT")
-    text = _table_command(
-        args,
-        cat,
-        "observed places",
-        lambda client, body, update: client.observed_csv(
-            body,
-            catalogue_epoch=_epoch_of(args, cat),
-            instants=args.at,
-            site=site,
-            frame=frame,
-            atmosphere=atmosphere,
-            horizon_limit_deg=args.horizon_limit_deg,
-            sun_avoidance_deg=args.sun_avoidance_deg,
-            progress=update,
-        ),
+    # "now" read once, so that the places and the conditions said below mean one instant.
+    when = pin_now(
+        {"catalogue_epoch": _epoch_of(args, cat), "instants": args.at, "frame": frame},
+        _now_text(),
     )
+    with make_client(args) as client:
+        text = _table_command(
+            args,
+            cat,
+            "observed places",
+            lambda client, body, update: client.observed_csv(
+                body,
+                catalogue_epoch=when["catalogue_epoch"],
+                instants=when["instants"],
+                site=site,
+                frame=when["frame"],
+                atmosphere=atmosphere,
+                horizon_limit_deg=args.horizon_limit_deg,
+                sun_avoidance_deg=args.sun_avoidance_deg,
+                progress=update,
+            ),
+            client,
+        )
+        # The CSV has per-row refraction and flags only; the refraction settings and the
+        # Earth orientation used are in the JSON answer, the same for every star: asked
+        # for one motionless star. Said, like the caution, --quiet or not.
+        conditions = client.observed(
+            [CONDITIONS_STAR],
+            catalogue_epoch=when["catalogue_epoch"],
+            instants=when["instants"],
+            site=site,
+            frame=when["frame"],
+            atmosphere=atmosphere,
+        )
+    for line in observing_conditions(conditions):
+        print(f"skydrift: {line}", file=sys.stderr)
     # Always said, --quiet or not (it only stops the progress bar): a safety caution.
     print(
         "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
@@ -460,6 +481,45 @@ def cmd_observed(args) -> int:
     )
     _write_text(text, args.output)
     return 0
+
+
+#: A motionless star at the origin of the frame: what `observed` asks the JSON answer for
+#: to state the conditions (refraction, Earth orientation), which depend on no star.
+CONDITIONS_STAR = {"ra_deg": 0.0, "dec_deg": 0.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+
+
+def observing_conditions(answer: dict) -> list[str]:
+    """Two plain lines from an observed-place JSON answer: the refraction settings used,
+    and the Earth orientation (table, measured/predicted/unavailable, UT1-UTC) per
+    instant, grouped."""
+    r = answer["refraction"]
+    if r["mode"] == "off":
+        air = "refraction off (pressure 0 hPa)"
+    else:
+        air = (
+            f"refraction on ({r['mode']}): pressure {r['pressure_hpa']:.1f} hPa, temperature "
+            f"{r['temperature_c']:.1f} C ({r['temperature_source']}), relative humidity "
+            f"{r['relative_humidity']:.2f}, wavelength {r['wavelength_um']:g} um"
+        )
+    groups: dict[tuple[str, str], list[dict]] = {}
+    for instant in answer["instants"]:
+        eo = instant["earth_orientation"]
+        groups.setdefault((eo["status"], eo["table"]), []).append(eo)
+    parts = []
+    for (status, table), eos in groups.items():
+        count = f"{len(eos)} instant" + ("s" if len(eos) > 1 else "")
+        if status == "unavailable":
+            worst = max(eo["pointing_error_arcsec"] for eo in eos)
+            parts.append(
+                f"unavailable at {count} (UT1-UTC and polar motion taken as 0, pointing "
+                f"error up to {worst:.0f} arcsec)"
+            )
+            continue
+        low = min(eo["ut1_utc_s"] for eo in eos)
+        high = max(eo["ut1_utc_s"] for eo in eos)
+        ut1 = f"{low:.4f} s" if f"{low:.4f}" == f"{high:.4f}" else f"{low:.4f} to {high:.4f} s"
+        parts.append(f"{status} at {count} ({table}, UT1-UTC {ut1})")
+    return [air, "Earth orientation: " + "; ".join(parts)]
 
 
 def _select(cat: Catalogue, ids: list[str] | None) -> tuple[str, list[int] | None]:
@@ -778,7 +838,10 @@ def add_commands(sub) -> None:
         "separation from the Sun, and the astrometric and apparent places. Writes CSV: one "
         "row per star and instant with index, id, epoch_julian_tdb and epoch_iso_utc of the "
         "instant, the quantities under their API names, and flags (';'-separated; they "
-        "include below_horizon_limit and within_sun_avoidance). The Sun and horizon figures "
+        "include below_horizon_limit and within_sun_avoidance). Standard error says, even "
+        "with --quiet, the refraction settings used (mode, pressure, temperature, relative "
+        "humidity, wavelength) and the Earth orientation (table; measured, predicted or "
+        "unavailable; UT1-UTC) at the instants. The Sun and horizon figures "
         "are ADVISORY: the facility's own interlocks and safety rules decide where a "
         "telescope may point.",
         epilog=EPILOG,

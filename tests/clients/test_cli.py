@@ -185,6 +185,62 @@ def test_observed_local_and_remote_identical(live_service):
         assert flagged == (float(r["altitude_deg"]) < 15.0)
 
 
+def test_observed_states_the_refraction_and_earth_orientation_used(live_service, demo_catalogue):
+    """The CSV has per-row refraction and flags only: which air and which Earth-orientation
+    values were used (measured, predicted or unavailable; UT1-UTC) was nowhere in the output
+    of `observed`. Two lines on standard error say it (--quiet too, like the caution), not
+    in the CSV; checked against the service's JSON answer to the same request."""
+    from service.client import Client
+
+    # 2025-01-01: IERS values measured; 2026-12-02: predicted; 2040: beyond the tables.
+    at = ["2025-01-01T00:00:00Z", "2025-01-02T00:00:00Z", "2026-12-02T22:00:00Z",
+          "2040-01-01T00:00:00Z"]  # fmt: skip
+    args = ["observed", CATALOGUE, "--site", "kestrel-ridge", "--drop-unknown-columns", "-q",
+            "--pressure-hpa", "751.3", "--temperature-c", "-3.5", "--wavelength-um", "0.7",
+            "--url", live_service]  # fmt: skip
+    for t in at:
+        args += ["--at", t]
+    out = skydrift(*args)
+    taken = ("id", "ra_deg", "dec_deg", "parallax_mas", "pm_ra_cosdec_mas_yr", "pm_dec_mas_yr",
+             "radial_velocity_km_s")  # fmt: skip
+    stars = [{k: s.get(k) for k in taken} for s in demo_catalogue["stars"]]
+    with Client(live_service) as sky:
+        answer = sky.observed(stars, catalogue_epoch="J2016.0", instants=at, site="kestrel-ridge",
+                              atmosphere={"pressure_hpa": 751.3, "temperature_c": -3.5,
+                                          "wavelength_um": 0.7})  # fmt: skip
+    lines = out.stderr.decode().splitlines()
+    air = next(x for x in lines if x.startswith("skydrift: refraction"))
+    r = answer["refraction"]
+    m = re.fullmatch(
+        r"skydrift: refraction on \((\w+)\): pressure ([\d.]+) hPa, temperature ([-\d.]+) C "
+        r"\((\w+)\), relative humidity ([\d.]+), wavelength ([\d.]+) um",
+        air,
+    )
+    assert m, air
+    assert m[1] == r["mode"] == "given_pressure" and m[4] == r["temperature_source"]
+    assert float(m[2]) == pytest.approx(r["pressure_hpa"], abs=0.05)  # hPa, as printed
+    assert float(m[3]) == pytest.approx(r["temperature_c"], abs=0.05)  # deg C
+    assert float(m[5]) == pytest.approx(r["relative_humidity"], abs=0.005)
+    assert float(m[6]) == pytest.approx(r["wavelength_um"], abs=1e-9)  # um
+    earth = next(x for x in lines if x.startswith("skydrift: Earth orientation: "))
+    groups = earth.removeprefix("skydrift: Earth orientation: ").split("; ")
+    eo = [i["earth_orientation"] for i in answer["instants"]]
+    assert [x["status"] for x in eo] == ["measured", "measured", "predicted", "unavailable"]
+    m = re.fullmatch(r"measured at 2 instants \((.+), UT1-UTC ([-\d.]+) to ([-\d.]+) s\)",
+                     groups[0])  # fmt: skip
+    assert m and m[1] == eo[0]["table"] == eo[1]["table"], earth
+    low, high = sorted(x["ut1_utc_s"] for x in eo[:2])
+    assert float(m[2]) == pytest.approx(low, abs=5e-5)  # s, as printed
+    assert float(m[3]) == pytest.approx(high, abs=5e-5)  # s
+    m = re.fullmatch(r"predicted at 1 instant \((.+), UT1-UTC ([-\d.]+) s\)", groups[1])
+    assert m and m[1] == eo[2]["table"], earth
+    assert float(m[2]) == pytest.approx(eo[2]["ut1_utc_s"], abs=5e-5)  # s
+    assert len(groups) == 3
+    assert groups[2].startswith("unavailable at 1 instant (UT1-UTC and polar motion taken as 0")
+    assert b"Earth orientation" not in out.stdout and b"hPa" not in out.stdout
+    assert len(out.stdout.decode().splitlines()) == 1 + 30 * 4
+
+
 #: A slow FK4 B1950.0 star (invented), its motion small enough that SOFA's linear motion in
 #: atco13 (pmpx) and the service's straight-line model agree to nanoarcseconds over 77 years.
 FK4_STAR = {
