@@ -564,6 +564,9 @@ class Client:
         -----
         1. Sent in one request (no batching): Arrow is for bulk work, and the service's
            star limit (SKYDRIFT_MAX_STARS, default 1,000,000) applies. Needs pyarrow.
+        2. ``params`` travel in the query string, lists comma-separated; ValueError before
+           sending if they would make the request line longer than the service reads
+           (``max_request_line_bytes``; about 810 epochs written like "J2026.123").
         """
         import pyarrow as pa
 
