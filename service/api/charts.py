@@ -81,7 +81,8 @@ class TrackChartRequestSchema(ma.Schema):
         load_default=True,
         metadata={
             "description": "Draw the IAU constellation boundaries in view, their "
-            "abbreviations, and mark where a track crosses a boundary."
+            "abbreviations, and mark where a track crosses a boundary (start and stop "
+            "then within 100,000 years of catalogue_epoch)."
         },
     )
     format = _format_field()
@@ -201,6 +202,19 @@ def track(args):
         abort(422, errors=[{"field": "stop", "message": "must be later than start"}])
     if args["stop"] - args["start"] > 200_000.0:
         abort(422, errors=[{"field": "stop", "message": "at most 200,000 years after start"}])
+    cons = charts._constellations() if args["boundaries"] else None
+    if cons is not None:
+        # The crossing search has a narrower window than the tracks: say so on the field
+        # at fault, in the request's own terms (it reached the caller as an error on
+        # "stars" naming an internal argument).
+        for name in ("start", "stop"):
+            if abs(args[name] - args["catalogue_epoch"]) > cons.MAX_CROSSING_WINDOW_YR:
+                message = (
+                    f"must be within {cons.MAX_CROSSING_WINDOW_YR:,.0f} years of "
+                    "catalogue_epoch when boundaries are drawn (set boundaries to false "
+                    "for a longer track)"
+                )
+                abort(422, errors=[{"field": name, "message": message}])
     try:
         chart = charts.sky_tracks(
             *_columns(table),

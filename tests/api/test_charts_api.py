@@ -116,6 +116,26 @@ def test_track_bad_input(client, track_body, change, field):
     assert field in [e["field"] for e in r.json["errors"]]
 
 
+@pytest.mark.parametrize(
+    ("span", "field"),
+    [({"start": "J-98000", "stop": "J102000"}, "start"), ({"stop": "J150000"}, "stop")],
+    ids=["start", "stop"],
+)
+def test_track_beyond_the_crossing_search_window(client, track_body, span, field):
+    # Tracks may span 200,000 years, the crossing search 100,000 years either side of the
+    # catalogue epoch: past that the refusal came as an error on "stars" naming the core's
+    # argument ("end_jyear: must be within ..."). It names the request's field now, and
+    # the same track without boundaries is drawn.
+    r = client.post("/v1/charts/track", json=dict(track_body, **span))
+    assert r.status_code == 422
+    (error,) = r.json["errors"]
+    assert error["field"] == field
+    assert "catalogue_epoch" in error["message"] and "_jyear" not in error["message"]
+    r = client.post("/v1/charts/track", json=dict(track_body, boundaries=False, **span))
+    assert r.status_code == 200
+    assert r.mimetype == "image/svg+xml"
+
+
 def test_field_chart(client, demo_catalogue):
     body = {
         "stars": demo_catalogue["stars"],
