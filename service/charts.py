@@ -425,6 +425,13 @@ def _side_offsets(ax, x, y, tx, ty, view, cosd) -> list:
     return out
 
 
+def _epoch_title(epoch: float) -> str:
+    """A Julian epoch as a heading names it: to 0.001 year (about 9 hours), trailing zeros
+    dropped but one decimal kept ("2016.0", "1991.25"; one decimal made J1991.25 "1991.2")."""
+    text = f"{epoch:.3f}".rstrip("0")
+    return text + "0" if text.endswith(".") else text
+
+
 def _epoch_text(epoch: float, step: float) -> str:
     decimals = 0 if step >= 5 else 1 if step >= 0.5 else 2
     return f"{epoch:.{decimals}f}"
@@ -580,7 +587,7 @@ def render_tracks(
     ax.set_xlabel("right ascension (ICRS), deg", color=MUTED_TEXT_COLOUR, fontsize=9)
     ax.set_ylabel("declination (ICRS), deg", color=MUTED_TEXT_COLOUR, fontsize=9)
     first, last = chart.tracks[0].epochs_jyear[[0, -1]]
-    heading = title or f"Sky tracks, J{first:.1f} to J{last:.1f} (TDB)"
+    heading = title or f"Sky tracks, J{_epoch_title(first)} to J{_epoch_title(last)} (TDB)"
     ax.set_title(_plain(heading), color=TEXT_COLOUR, fontsize=12, loc="left")
     note = "dots: evenly spaced epochs, labelled where room; lines: IAU constellation boundaries"
     if not chart.boundaries_available:
@@ -785,7 +792,9 @@ def _render_field(
         ax.tick_params(axis="x", labelsize=6, colors=MUTED_TEXT_COLOUR)
         for label in ax.get_xticklabels():
             label.set_alpha(0.6)  # right ascension marks stay behind the stars' labels
-        ax.set_title(f"J{chart.epochs_jyear[k]:.1f}", color=colour, fontsize=12, fontweight="bold")
+        ax.set_title(
+            f"J{_epoch_title(chart.epochs_jyear[k])}", color=colour, fontsize=12, fontweight="bold"
+        )
     heading = title or "Star field at two epochs"
     fig.suptitle(_plain(heading), color=TEXT_COLOUR, fontsize=13)
     fig.text(

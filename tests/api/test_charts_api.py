@@ -150,6 +150,21 @@ def test_field_chart(client, demo_catalogue):
     assert r.status_code == 422
 
 
+def test_headings_name_the_epochs_as_given(client, track_body):
+    # J1991.25 is the Hipparcos catalogue epoch (ESA 1997, The Hipparcos and Tycho
+    # Catalogues, Vol. 1, section 1.2.3): headings wrote every epoch to one decimal,
+    # "J1991.2", an epoch no catalogue uses. Headings now keep up to 0.001 year.
+    star = track_body["stars"][0]
+    common = {"stars": [star], "catalogue_epoch": "J2016.0", "boundaries": False}
+    r = client.post("/v1/charts/track", json=dict(common, start="J1991.25", stop="J2016.0"))
+    drawn = [t.text for t in ET.fromstring(r.data).iter(f"{SVG}text")]
+    assert "Sky tracks, J1991.25 to J2016.0 (TDB)" in drawn
+    common.pop("boundaries")
+    r = client.post("/v1/charts/field", json=dict(common, epochs=["J1991.25", "J2016.0"]))
+    drawn = [t.text for t in ET.fromstring(r.data).iter(f"{SVG}text")]
+    assert "J1991.25" in drawn and "J2016.0" in drawn
+
+
 MATH_LIKE = ["$^$", "$\\undefinedmacro$", "HIP 1$2$3", "a\\$b", "$$"]
 
 
