@@ -22,6 +22,10 @@ In the SVG output every track is one ``<path>`` inside a group with ``id="track-
 (k = position of the star in the request), boundaries are groups ``id="boundary-<ABBR>"``
 and crossing marks ``id="crossing-<k>"``, so the drawing can be styled or checked.
 Boundaries are drawn when the constellation module of the core is installed.
+
+A star without a radial velocity, or without a positive parallax for it to act through, moves
+without radial motion (no perspective acceleration); the track's legend entry and the field
+chart's note say so.
 """
 
 from __future__ import annotations
@@ -82,6 +86,8 @@ class StarTrack:
     tick_epochs_jyear: np.ndarray
     tick_ra_deg: np.ndarray
     tick_dec_deg: np.ndarray
+    #: What the track assumes for lack of data ("" if nothing; see :func:`_assumed`).
+    assumed: str = ""
 
 
 @dataclass(frozen=True)
@@ -130,6 +136,8 @@ class FieldChart:
     arrow_dec_deg: np.ndarray
     parallax_mas: np.ndarray  # (N,)
     arrow_years: float
+    #: Stars whose motion leaves out the radial motion for lack of data (see _assumed).
+    without_radial_motion: int = 0
 
 
 def _constellations():
@@ -169,6 +177,18 @@ def _positions(astrometry: dict, catalogue_epoch: float, epochs):
     ra, dec = result.ra_deg, result.dec_deg
     bad = ~(np.isfinite(ra) & np.isfinite(dec))
     return np.where(bad, np.nan, ra), np.where(bad, np.nan, dec)
+
+
+def _assumed(parallax_mas: float, radial_velocity_km_s: float) -> str:
+    """What a drawn motion assumes for lack of data: without a radial velocity, or
+    without a positive parallax for it to act through, the radial motion is left out
+    (no perspective acceleration), which over thousands of years moves a nearby star by
+    degrees; the chart says so rather than draw the track as if it were known."""
+    if not parallax_mas > 0:
+        return "no positive parallax: radial motion left out"
+    if not math.isfinite(radial_velocity_km_s):
+        return "radial velocity unknown: taken as 0"
+    return ""
 
 
 def _astrometry(ra_deg, dec_deg, parallax_mas, pm_ra, pm_dec, rv) -> dict:
@@ -258,7 +278,16 @@ def sky_tracks(
             "proper motion"
         )
     tracks = [
-        StarTrack(str(labels[k]), epochs, ra[k], dec[k], tick_epochs, tra[k], tdec[k])
+        StarTrack(
+            str(labels[k]),
+            epochs,
+            ra[k],
+            dec[k],
+            tick_epochs,
+            tra[k],
+            tdec[k],
+            _assumed(astro["parallax_mas"][k], astro["radial_velocity_km_s"][k]),
+        )
         for k in range(n)
     ]
     centre = _circular_mean_deg(ra[np.isfinite(ra)])
@@ -494,6 +523,8 @@ def render_tracks(
         # matplotlib leaves labels that start with "_" out of the legend: a zero-width space
         # in front keeps such an id visible and unchanged to the reader.
         legend_label = _plain("\u200b" + t.label if t.label.startswith("_") else t.label)
+        if t.assumed:
+            legend_label += f" ({t.assumed})"
         (line,) = ax.plot(x, t.dec_deg, color=colour, linewidth=2.0, zorder=3, label=legend_label)
         line.set_gid(f"track-{k}")
         tx = x_of(t.tick_ra_deg)
@@ -664,6 +695,10 @@ def star_field(
         dec[:, 2:].T.copy(),
         astro["parallax_mas"],
         span,
+        sum(
+            bool(_assumed(p, v))
+            for p, v in zip(astro["parallax_mas"], astro["radial_velocity_km_s"], strict=True)
+        ),
     )
 
 
@@ -797,13 +832,20 @@ def _render_field(
         )
     heading = title or "Star field at two epochs"
     fig.suptitle(_plain(heading), color=TEXT_COLOUR, fontsize=13)
+    radial = ""
+    if chart.without_radial_motion:
+        n = chart.without_radial_motion
+        radial = (
+            f"; {n:,} {'star has' if n == 1 else 'stars have'} no radial velocity or no "
+            "positive parallax: radial motion left out"
+        )
     fig.text(
         0.5,
         0.01,
         f"arrows: motion over the next {chart.arrow_years:,.6g} years (straight-line model; "
         "one running over the edge goes on from the other edge); "
         "marker size grows with parallax; open circles: parallax unknown or not positive; "
-        "right ascension increases to the left",
+        f"right ascension increases to the left{radial}",
         ha="center",
         va="bottom",
         color=MUTED_TEXT_COLOUR,

@@ -165,6 +165,38 @@ def test_headings_name_the_epochs_as_given(client, track_body):
     assert "J1991.25" in drawn and "J2016.0" in drawn
 
 
+def _legend_and_end(svg):
+    root = ET.fromstring(svg)
+    (legend,) = [g for g in root.iter(f"{SVG}g") if g.get("id") == "legend"]
+    return " ".join(t.text for t in legend.iter(f"{SVG}text"))
+
+
+@pytest.mark.parametrize(
+    ("drop", "said"),
+    [
+        ("radial_velocity_km_s", "KRC 0017 (radial velocity unknown: taken as 0)"),
+        ("parallax_mas", "KRC 0017 (no positive parallax: radial motion left out)"),
+    ],
+)
+def test_track_says_what_it_assumes_for_missing_data(client, track_body, drop, said):
+    # A star without a radial velocity (or a parallax for it to act through) is drawn
+    # without radial motion. For KRC 0017 over 2016-8016 that moves the end by 0.27 deg
+    # (astropy SkyCoord.apply_space_motion with the demo's -41.7 km/s against 0 km/s, both
+    # at 6.2 pc: 0.27 deg, measured when the test was written); the chart drew it with no
+    # word. The legend now says what was assumed.
+    star = {k: v for k, v in track_body["stars"][0].items() if k != drop}
+    r = client.post("/v1/charts/track", json=dict(track_body, stars=[star]))
+    assert r.status_code == 200
+    assert said in _legend_and_end(r.data)
+    r = client.post("/v1/charts/track", json=track_body)
+    assert "(" not in _legend_and_end(r.data)  # all known: nothing assumed
+    body = {"stars": [star, track_body["stars"][0]], "catalogue_epoch": "J2016.0",
+            "epochs": ["J2016.0", "J12016.0"]}  # fmt: skip
+    r = client.post("/v1/charts/field", json=body)
+    drawn = " ".join(t.text or "" for t in ET.fromstring(r.data).iter(f"{SVG}text"))
+    assert "1 star has no radial velocity or no positive parallax" in drawn
+
+
 MATH_LIKE = ["$^$", "$\\undefinedmacro$", "HIP 1$2$3", "a\\$b", "$$"]
 
 
