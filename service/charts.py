@@ -832,6 +832,7 @@ def _render_field(
         )
     heading = title or "Star field at two epochs"
     fig.suptitle(_plain(heading), color=TEXT_COLOUR, fontsize=13)
+    years = f"{chart.arrow_years:,.6g} year" + ("" if chart.arrow_years == 1 else "s")
     radial = ""
     if chart.without_radial_motion:
         n = chart.without_radial_motion
@@ -842,7 +843,7 @@ def _render_field(
     fig.text(
         0.5,
         0.01,
-        f"arrows: motion over the next {chart.arrow_years:,.6g} years (straight-line model; "
+        f"arrows: motion over the next {years} (straight-line model; "
         "one running over the edge goes on from the other edge); "
         "marker size grows with parallax; open circles: parallax unknown or not positive; "
         f"right ascension increases to the left{radial}",

@@ -148,6 +148,9 @@ def test_field_chart(client, demo_catalogue):
     assert "Kestrel Ridge Catalogue (fictional)" in r.get_data(as_text=True)
     r = client.post("/v1/charts/field", json=dict(body, epochs=["J2016.0", "J2016.0"]))
     assert r.status_code == 422
+    # The note under the panels once read "motion over the next 1 years".
+    r = client.post("/v1/charts/field", json=dict(body, arrow_years=1.0))
+    assert "motion over the next 1 year (" in r.get_data(as_text=True)
 
 
 def test_headings_name_the_epochs_as_given(client, track_body):
