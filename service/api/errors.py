@@ -239,6 +239,8 @@ def handle_http_exception(error: HTTPException) -> Response:
         detail = "The request body is not valid JSON."
         if data.get("where"):  # line, column and reason (jsonio.BodyParser)
             detail = f"The request body is not valid JSON: {clip_echo(data['where'])}."
+    elif errors and error.code == 413:  # nothing invalid: more than the service takes
+        detail = "The request is over a limit of the service (errors name it and its setting)."
     elif errors:
         n = _invalid_count(errors)
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."

@@ -589,6 +589,9 @@ def test_batch_over_the_configured_limit(client, settings):
     # One title for 413 whichever check answers it (RFC 9110's name; the body-size check
     # already used it, this one said "Request Entity Too Large").
     assert answer["title"] == "Content Too Large"
+    # Nothing in it is invalid: the detail said "The request has 1 invalid field."
+    assert answer["detail"].startswith("The request is over a limit of the service")
+    assert "SKYDRIFT_MAX_STARS" in answer["errors"][0]["message"]
 
 
 def test_results_over_the_configured_limit(client, settings):
