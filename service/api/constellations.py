@@ -258,7 +258,13 @@ class OutlineEquinoxField(EpochField):
         )
 
     def _deserialize(self, value, attr, data, **kwargs):
-        jyear = super()._deserialize(value, attr, data, **kwargs)
+        try:
+            jyear = super()._deserialize(value, attr, data, **kwargs)
+        except ma.ValidationError as exc:  # the epoch forms, and what a number means here
+            raise ma.ValidationError(
+                f"{exc.messages[0]} (as an equinox, a bare number is a Besselian year for "
+                "fk4 and a Julian year for fk5)"
+            ) from None
         if isinstance(value, str) and core_epochs.PLAIN_NUMBER.match(value.strip()):
             return ("number", float(value))
         return ("jyear", jyear)

@@ -252,6 +252,16 @@ def test_bare_number_outline_equinox_is_read_as_the_frames_read_it(client, frame
     assert answers[0] == answers[1]
 
 
+def test_bad_outline_equinox_says_what_a_number_means_there(client):
+    # The epoch message lists "2016.0" as a Julian epoch; as an FK4 equinox the same number
+    # is a Besselian year, and the message says so.
+    r = client.get(f"{BASE}/Ori/outline?frame=fk4&equinox=banana")
+    problem = assert_problem(r, 422, "equinox")
+    message = problem["errors"][0]["message"]
+    assert "cannot read epoch 'banana'" in message
+    assert "a bare number is a Besselian year for fk4 and a Julian year for fk5" in message
+
+
 def test_collection_features_carry_the_same_properties_as_single_outlines(client):
     # The Feature schema both endpoints document lists area_sr and area_deg2 among the
     # properties; the collection's features used to leave them out.
