@@ -300,6 +300,8 @@ VELOCITY_OUTPUTS = {
     "closest_approach_epoch_jyear": "Julian epoch (TDB)",
     "closest_approach_distance_pc": "pc",
     "closest_approach_speed_km_s": "km/s",
+    "closest_approach_pm_mas_yr": "mas/yr",
+    "closest_approach_parallax_mas": "mas",
 }
 
 _OUTPUT_DESCRIPTIONS = {
@@ -348,6 +350,10 @@ _OUTPUT_DESCRIPTIONS = {
     "without catalogue_epoch.",
     "closest_approach_distance_pc": "Minimum distance from the Sun, pc.",
     "closest_approach_speed_km_s": "Speed relative to the Sun at closest approach, km/s.",
+    "closest_approach_pm_mas_yr": "Total proper motion at closest approach, mas/yr: the "
+    "largest the star shows (straight-line model); null for a star without transverse motion.",
+    "closest_approach_parallax_mas": "Parallax at closest approach (1000 / minimum distance), "
+    "mas: the largest; null for a star without transverse motion.",
 }
 
 FLAG_MEANINGS = {
@@ -658,6 +664,8 @@ def velocity(args):
         closest_approach_epoch_jyear=result.closest_approach_epoch_jyear,
         closest_approach_distance_pc=result.closest_approach_distance_pc,
         closest_approach_speed_km_s=result.closest_approach_speed_km_s,
+        closest_approach_pm_mas_yr=result.closest_approach_pm_mas_yr,
+        closest_approach_parallax_mas=result.closest_approach_parallax_mas,
     )
     layout = args["layout"] or table.form
     body = {

@@ -297,6 +297,8 @@ _VELOCITIES = (
     ("closest_approach_epoch_jyear", "Julian epoch (TDB)", "epoch of closest approach"),
     ("closest_approach_distance_pc", "pc", "minimum distance from the Sun"),
     ("closest_approach_speed_km_s", "km/s", "speed relative to the Sun at closest approach"),
+    ("closest_approach_pm_mas_yr", "mas/yr", "total proper motion at closest approach"),
+    ("closest_approach_parallax_mas", "mas", "parallax at closest approach"),
 )
 
 _KF = _kinematics.KinematicsFlag

@@ -256,6 +256,12 @@ class SpaceVelocity:
     closest_approach_distance_pc: np.ndarray
     #: Speed relative to the Sun at closest approach, km/s. Shape S.
     closest_approach_speed_km_s: np.ndarray
+    #: Total proper motion at closest approach, mas/yr: the largest the star shows on its
+    #: straight line (mu = v_t / d peaks there, where the whole speed is transverse and d
+    #: least). NaN for a star moving straight toward or away from the Sun. Shape S.
+    closest_approach_pm_mas_yr: np.ndarray
+    #: Parallax at closest approach (1000 / minimum distance), mas: the largest. Shape S.
+    closest_approach_parallax_mas: np.ndarray
     #: Per-star :class:`KinematicsFlag` bit masks. Shape S, uint32.
     flags: np.ndarray
 
@@ -716,6 +722,8 @@ def space_velocity(
         closest_approach_epoch_jyear=shaped("closest_approach_epoch_jyear"),
         closest_approach_distance_pc=shaped("closest_approach_distance_pc"),
         closest_approach_speed_km_s=shaped("closest_approach_speed_km_s"),
+        closest_approach_pm_mas_yr=shaped("closest_approach_pm_mas_yr"),
+        closest_approach_parallax_mas=shaped("closest_approach_parallax_mas"),
         flags=shaped("flags"),
     )
 
@@ -837,6 +845,8 @@ _SCALAR_OUTPUTS = (
     "closest_approach_epoch_jyear",
     "closest_approach_distance_pc",
     "closest_approach_speed_km_s",
+    "closest_approach_pm_mas_yr",
+    "closest_approach_parallax_mas",
 )
 
 #: Index pairs (i, j), i <= j, of the six distinct elements of a symmetric 3x3 matrix, in
@@ -1047,6 +1057,12 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     with np.errstate(divide="ignore", invalid="ignore"):
         t_yr = (-d_km / JULIAN_YEAR_S) * rv / speed2
         out["closest_approach_distance_pc"][sl] = distance * vt / speed
+        # At closest approach d = d0 v_t / v and the whole speed v is transverse, so the
+        # proper motion v / (k d) = mu0 (v / v_t)^2 and the parallax plx0 v / v_t. A star
+        # without transverse motion passes through the Sun: both undefined (NaN).
+        ratio = np.where(vt > 0.0, speed / vt, np.nan)
+        out["closest_approach_pm_mas_yr"][sl] = pm_total * ratio * ratio
+        out["closest_approach_parallax_mas"][sl] = 1000.0 / distance * ratio
     out["closest_approach_time_yr"][sl] = t_yr
     out["closest_approach_epoch_jyear"][sl] = epoch + t_yr
     out["closest_approach_speed_km_s"][sl] = speed

@@ -816,6 +816,64 @@ def test_closest_approach_against_erfa_propagated_parallax(star):
     assert abs(1.0 / px[i] - r.closest_approach_distance_pc) < 1e-3 * (1000.0 / plx)  # pc
 
 
+@pytest.mark.parametrize("star", SIX_PARAMETER_STARS)
+def test_proper_motion_and_parallax_at_closest_approach_against_astropy(star):
+    # astropy's SkyCoord.apply_space_motion (ERFA pmsafe) carries the star to the epoch of
+    # closest approach; its total proper motion and parallax there are the largest on the
+    # line. pmsafe includes light time, which scales the apparent motion by about 1 + v_r/c:
+    # a difference of first order in v_r/c (up to 1e-3 here), hence the tolerance.
+    import astropy.units as u
+    from astropy.coordinates import Distance, SkyCoord
+    from astropy.time import Time
+
+    ra, dec, plx, pmra, pmdec, rv = star
+    r = space_velocity(*star, epoch_jyear=2016.0)
+    c = SkyCoord(ra=ra * u.deg, dec=dec * u.deg, distance=Distance(parallax=plx * u.mas),
+                 pm_ra_cosdec=pmra * u.mas / u.yr, pm_dec=pmdec * u.mas / u.yr,
+                 radial_velocity=rv * u.km / u.s,
+                 obstime=Time(2016.0, format="jyear", scale="tdb"))  # fmt: skip
+    at = c.apply_space_motion(
+        new_obstime=Time(float(r.closest_approach_epoch_jyear), format="jyear", scale="tdb")
+    )
+    pm = np.hypot(at.pm_ra_cosdec.to_value(u.mas / u.yr), at.pm_dec.to_value(u.mas / u.yr))
+    tol = 1e-6 + 2.0 * abs(rv) / constants.C_KM_S  # relative
+    assert abs(r.closest_approach_pm_mas_yr - pm) < tol * pm  # mas/yr
+    parallax = 1000.0 / at.distance.to_value(u.pc)
+    assert abs(r.closest_approach_parallax_mas - parallax) < tol * parallax  # mas
+
+
+@pytest.mark.parametrize("star", SIX_PARAMETER_STARS)
+def test_peak_proper_motion_and_parallax_against_brute_force(star):
+    # The largest angular rate |r x v| / |r|^2 and parallax 1 / |r| on the straight line
+    # (direct vectors, _straight_line), found on successively finer grids of time.
+    r = space_velocity(*star, epoch_jyear=2016.0)
+    t0 = float(r.closest_approach_time_yr)
+    v = _straight_line(star, 1.0) - _straight_line(star, 0.0)  # pc per yr
+
+    def rate(t):
+        p = _straight_line(star, t)
+        cross = np.linalg.norm(np.cross(p, v), axis=-1)
+        return cross / np.einsum("...i,...i", p, p) * constants.MAS_PER_RAD  # mas/yr
+
+    span = max(abs(t0) * 3.0, 1e3)
+    lo, hi = -span, span
+    for _ in range(12):
+        t = np.linspace(lo, hi, 2001)
+        mu = rate(t)
+        i = int(np.argmax(mu))
+        lo, hi = t[max(i - 2, 0)], t[min(i + 2, t.size - 1)]
+    assert abs(r.closest_approach_pm_mas_yr - mu[i]) < 1e-9 * mu[i]  # mas/yr
+    nearest = np.linalg.norm(_straight_line(star, t[i]))  # pc
+    assert abs(r.closest_approach_parallax_mas - 1000.0 / nearest) < 1e-9 * 1000.0 / nearest
+    assert r.closest_approach_pm_mas_yr > np.hypot(star[3], star[4])  # larger than now
+
+
+def test_nothing_peaks_for_a_star_without_transverse_motion():
+    r = space_velocity(10.0, 20.0, 50.0, 0.0, 0.0, 20.0, epoch_jyear=2016.0)
+    assert r.closest_approach_distance_pc == 0.0  # it passed through the Sun's position
+    assert np.isnan(r.closest_approach_pm_mas_yr) and np.isnan(r.closest_approach_parallax_mas)
+
+
 @settings(max_examples=200, deadline=None)
 @given(
     ra=st.floats(0.0, 360.0, **finite),
