@@ -404,6 +404,24 @@ def _refuse_bare_date(value) -> None:
         )
 
 
+def check_result_count(n: int, m: int, field: str, per: str = "epochs") -> None:
+    """413 naming SKYDRIFT_MAX_RESULTS when ``n`` stars x ``m`` epochs (or instants) are
+    more results than the service computes in one request: fewer stars per request cure it
+    (the Python client halves its batches on this setting's name)."""
+    limit = current_app.config["SKYDRIFT_SETTINGS"].max_results
+    if n * m > limit:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": field,
+                    "message": f"{n} stars x {m} {per} = {n * m} results; the limit is "
+                    f"{limit} (setting SKYDRIFT_MAX_RESULTS)",
+                }
+            ],
+        )
+
+
 def request_now() -> _dt.datetime:
     """The moment "now" means in the current request: the system clock (UTC) read once per
     request, so every "now" of one request is the same instant (a catalogue epoch and a

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import erfa
 import marshmallow as ma
 import numpy as np
 from flask import current_app, g, request
@@ -785,7 +784,7 @@ def _outline_options(args):
     frame, (kind, equinox) = args["frame"], args.get("equinox") or (None, None)
     if equinox is not None:
         if frame == "fk4" and kind == "jyear":  # the FK4 frame takes a Besselian equinox
-            equinox = float(erfa.epb(float(core.julian_epoch_to_jd(equinox)), 0.0))
+            equinox = float(core_epochs.julian_epoch_to_besselian_epoch(equinox))
         elif frame not in ("fk4", "fk5"):
             abort(
                 422,

@@ -17,6 +17,7 @@ from .common import (
     EpochField,
     EpochOutSchema,
     always_present,
+    check_result_count,
     epochs_out,
     number_field,
     request_now,
@@ -293,17 +294,7 @@ def convert(args):
                 }
             ],
         )
-    if n * targets.size > settings.max_results:
-        abort(
-            413,
-            errors=[
-                {
-                    "field": "target_epochs",
-                    "message": f"{n} stars x {targets.size} epochs = {n * targets.size} "
-                    f"results; the limit is {settings.max_results} (setting SKYDRIFT_MAX_RESULTS)",
-                }
-            ],
-        )
+    check_result_count(n, targets.size, "target_epochs")
     c = table.columns
     vals = [c[f] for f in VALUE_FIELDS]
     icrs = core.make_frame("icrs")

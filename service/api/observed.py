@@ -32,6 +32,7 @@ from .common import (
     StrictFloat,
     WarningSchema,
     always_present,
+    check_result_count,
     epochs_out,
     flag_warnings,
     instants_out,
@@ -501,17 +502,7 @@ def observed(args):
                 }
             ],
         )
-    if n * m > settings.max_results:
-        abort(
-            413,
-            errors=[
-                {
-                    "field": "instants",
-                    "message": f"{n} stars x {m} instants = {n * m} results; the limit is "
-                    f"{settings.max_results} (setting SKYDRIFT_MAX_RESULTS)",
-                }
-            ],
-        )
+    check_result_count(n, m, "instants", per="instants")
     # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
     utc1 = np.array([t.utc_jd1 for t in given])
     utc2 = np.array([t.utc_jd2 for t in given])

@@ -26,6 +26,7 @@ from .common import (
     EpochOutSchema,
     WarningSchema,
     always_present,
+    check_result_count,
     epochs_out,
     flag_warnings,
     number_field,
@@ -469,17 +470,7 @@ def propagate(args):
                 ],
             )
     m = targets.size
-    if n * m > settings.max_results:
-        abort(
-            413,
-            errors=[
-                {
-                    "field": "stars",
-                    "message": f"{n} stars x {m} epochs = {n * m} results; the limit is "
-                    f"{settings.max_results} (setting SKYDRIFT_MAX_RESULTS)",
-                }
-            ],
-        )
+    check_result_count(n, m, "stars")
     cov, has_cov, incomplete, assumed_zero, bad_psd, rv_error_missing = _covariance(table, n)
     if bad_psd.size:
         abort(
