@@ -668,7 +668,7 @@ class Client:
         *,
         catalogue_epoch: Epoch,
         target_epochs: Iterable[Epoch] | None = None,
-        target_range: tuple[Epoch, Epoch, int] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
         model: str = "standard",
         layout: str | None = None,
         progress: Progress | None = None,
@@ -685,7 +685,7 @@ class Client:
             Epoch of the given astrometry ("J2016.0"; a number is a Julian epoch, TDB).
         target_epochs : list of str or float, optional
             Epochs to move to. Give this or ``target_range``.
-        target_range : (start, stop, count), optional
+        target_range : (start, stop, count) or dict of those, optional
             Evenly spaced epochs, both ends included.
         model : {"standard", "light_time"}
         layout : {"records", "columns"}, optional
@@ -708,7 +708,7 @@ class Client:
         *,
         catalogue_epoch: Epoch,
         target_epochs: Iterable[Epoch] | None = None,
-        target_range: tuple[Epoch, Epoch, int] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
         model: str = "standard",
         progress: Progress | None = None,
     ) -> str:
@@ -724,7 +724,7 @@ class Client:
         *,
         catalogue_epoch: Epoch,
         target_epochs: Iterable[Epoch] | None = None,
-        target_range: tuple[Epoch, Epoch, int] | None = None,
+        target_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
         model: str = "standard",
     ):
         """POST /v1/propagation with an Arrow table (:meth:`post_arrow`); the Arrow answer."""
@@ -1194,6 +1194,14 @@ def _targets(body: dict, target_epochs, target_range) -> dict:
         epochs = [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
         body["target_epochs"] = list(epochs)
     else:
+        if isinstance(target_range, Mapping):  # the API's own form
+            extra = set(target_range) - {"start", "stop", "count"}
+            if extra or len(target_range) != 3:
+                raise ValueError(
+                    "target_range: give start, stop and count (as (start, stop, count) or "
+                    f"a dict of those three), not {sorted(target_range)}"
+                )
+            target_range = (target_range["start"], target_range["stop"], target_range["count"])
         start, stop, count = target_range
         body["target_range"] = {"start": start, "stop": stop, "count": _whole(count)}
     return body

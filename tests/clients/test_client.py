@@ -83,6 +83,11 @@ def test_range_and_single_epoch_forms(sky):
     assert [e["julian_epoch_tdb"] for e in a["epochs"]] == [2016.0, 2066.0, 2116.0]
     b = sky.propagate([star], catalogue_epoch=2016.0, target_epochs="J2116")
     assert b["epochs"][0]["julian_epoch_tdb"] == 2116.0
+    # The API's own form of a range: the same answer (its keys were unpacked as the tuple).
+    same = {"start": "J2016", "stop": "J2116", "count": 3}
+    assert sky.propagate([star], catalogue_epoch=2016.0, target_range=same)["epochs"] == a["epochs"]
+    with pytest.raises(ValueError, match="give start, stop and count"):
+        sky.propagate([star], catalogue_epoch=2016.0, target_range={"start": 1, "stop": 2})
     with pytest.raises(ValueError):
         sky.propagate([star], catalogue_epoch=2016.0)
 
