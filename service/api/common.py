@@ -404,6 +404,33 @@ def _refuse_bare_date(value) -> None:
         )
 
 
+def check_epoch_count(m: int, field: str, per: str = "epochs") -> None:
+    """413 naming SKYDRIFT_MAX_EPOCHS when a request asks for more than that many target
+    epochs (or instants): well formed but larger than the service takes, as too many stars
+    are (fewer stars cannot cure it, so the Python client does not halve its batch)."""
+    limit = current_app.config["SKYDRIFT_SETTINGS"].max_epochs
+    if m > limit:
+        abort(
+            413,
+            errors=[
+                {
+                    "field": field,
+                    "message": f"{m} {per}; the limit is {limit} (setting SKYDRIFT_MAX_EPOCHS)",
+                }
+            ],
+        )
+
+
+def bound_epoch_list(data, field: str, per: str = "epochs"):
+    """For a schema's ``pre_load``: an epoch list in ``data[field]`` is counted against
+    SKYDRIFT_MAX_EPOCHS before any of its epochs is parsed, so a list of a million costs
+    almost nothing to refuse. Returns ``data`` unchanged."""
+    value = data.get(field) if isinstance(data, dict) else None
+    if isinstance(value, list):
+        check_epoch_count(len(value), field, per)
+    return data
+
+
 def check_result_count(n: int, m: int, field: str, per: str = "epochs") -> None:
     """413 naming SKYDRIFT_MAX_RESULTS when ``n`` stars x ``m`` epochs (or instants) are
     more results than the service computes in one request: fewer stars per request cure it

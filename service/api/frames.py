@@ -17,6 +17,8 @@ from .common import (
     EpochField,
     EpochOutSchema,
     always_present,
+    bound_epoch_list,
+    check_epoch_count,
     check_result_count,
     epochs_out,
     number_field,
@@ -197,6 +199,10 @@ class FramesRequestSchema(ma.Schema):
         },
     )
 
+    @ma.pre_load
+    def _bound_epoch_list(self, data, **kwargs):
+        return bound_epoch_list(data, "target_epochs")
+
 
 #: The astrometry of one star at one target epoch in the output frame (null: unknown).
 FrameAtEpochSchema = always_present(
@@ -273,7 +279,6 @@ def convert(args):
     FK4 B1950.0 catalogue entry comes out as ICRS at any epoch in one request: give
     ``from_frame`` fk4, ``catalogue_epoch`` B1950.0 and the ``target_epochs`` wanted.
     """
-    settings = current_app.config["SKYDRIFT_SETTINGS"]
     table = args["stars"]
     n = table.size
     src = frame_from_spec(args["from_frame"], "from_frame")
@@ -283,17 +288,7 @@ def convert(args):
     targets = np.array([epoch0] if targets is None else targets, dtype=float)
     # Each check names only the setting exceeded: fewer stars per request cure the second
     # (the Python client halves its batches on it), never the first.
-    if targets.size > settings.max_epochs:
-        abort(
-            413,
-            errors=[
-                {
-                    "field": "target_epochs",
-                    "message": f"{targets.size} epochs; the limit is {settings.max_epochs} "
-                    "(setting SKYDRIFT_MAX_EPOCHS)",
-                }
-            ],
-        )
+    check_epoch_count(targets.size, "target_epochs")
     check_result_count(n, targets.size, "target_epochs")
     c = table.columns
     vals = [c[f] for f in VALUE_FIELDS]

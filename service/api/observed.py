@@ -32,6 +32,8 @@ from .common import (
     StrictFloat,
     WarningSchema,
     always_present,
+    bound_epoch_list,
+    check_epoch_count,
     check_result_count,
     epochs_out,
     flag_warnings,
@@ -333,6 +335,10 @@ class ObservedRequestSchema(ma.Schema):
         hi=180.0,
     )
 
+    @ma.pre_load
+    def _bound_instant_list(self, data, **kwargs):
+        return bound_epoch_list(data, "instants", per="instants")
+
 
 def _out(field_class, description, **kwargs):
     return field_class(metadata={"description": description}, **kwargs)
@@ -491,17 +497,7 @@ def observed(args):
     m = instants.size
     # Each check names only the setting exceeded: fewer stars per request cure the second
     # (the Python client halves its batches on it), never the first.
-    if m > settings.max_epochs:
-        abort(
-            413,
-            errors=[
-                {
-                    "field": "instants",
-                    "message": f"{m} instants; the limit is {settings.max_epochs} "
-                    "(setting SKYDRIFT_MAX_EPOCHS)",
-                }
-            ],
-        )
+    check_epoch_count(m, "instants", per="instants")
     check_result_count(n, m, "instants", per="instants")
     # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
     utc1 = np.array([t.utc_jd1 for t in given])

@@ -26,6 +26,8 @@ from .common import (
     EpochOutSchema,
     WarningSchema,
     always_present,
+    bound_epoch_list,
+    check_epoch_count,
     check_result_count,
     epochs_out,
     flag_warnings,
@@ -210,17 +212,7 @@ class PropagationRequestSchema(ma.Schema):
 
     @ma.pre_load
     def _bound_epoch_list(self, data, **kwargs):
-        # Counted before any epoch is parsed, so a list of a million epochs costs nothing.
-        epochs = data.get("target_epochs") if isinstance(data, dict) else None
-        limit = current_app.config["SKYDRIFT_SETTINGS"].max_epochs
-        if isinstance(epochs, list) and len(epochs) > limit:
-            abort(
-                422,
-                errors=[
-                    {"field": "target_epochs", "message": f"at most {limit} epochs per request"}
-                ],
-            )
-        return data
+        return bound_epoch_list(data, "target_epochs")
 
     @ma.validates_schema
     def _one_target(self, data, **kwargs):
@@ -441,34 +433,15 @@ def propagate(args):
     the analytic Jacobian of the straight-line model) and per-star flags saying what was
     assumed. One star or a million: the same endpoint, the same numbers.
     """
-    settings = current_app.config["SKYDRIFT_SETTINGS"]
     table = args["stars"]
     n = table.size
     if args.get("target_range") is not None:
         rng = args["target_range"]
-        if rng["count"] > settings.max_epochs:
-            abort(
-                422,
-                errors=[
-                    {
-                        "field": "target_range.count",
-                        "message": f"at most {settings.max_epochs} epochs per request",
-                    }
-                ],
-            )
+        check_epoch_count(rng["count"], "target_range.count")
         targets = np.linspace(rng["start"], rng["stop"], rng["count"])
     else:
         targets = np.asarray(args["target_epochs"], dtype=float)
-        if targets.size > settings.max_epochs:
-            abort(
-                422,
-                errors=[
-                    {
-                        "field": "target_epochs",
-                        "message": f"at most {settings.max_epochs} epochs per request",
-                    }
-                ],
-            )
+        check_epoch_count(targets.size, "target_epochs")
     m = targets.size
     check_result_count(n, m, "stars")
     cov, has_cov, incomplete, assumed_zero, bad_psd, rv_error_missing = _covariance(table, n)

@@ -251,10 +251,32 @@ def test_a_million_null_columns(client):
     assert problem["errors"][-1]["field"].endswith("(more)")
 
 
-def test_a_million_null_epochs(client):
-    """Refused on the count before any epoch is read."""
-    problem = assert_problem(post(client, body(target_epochs=[None] * MILLION)), 422)
-    assert fields(problem) == ["target_epochs"]
+@pytest.mark.parametrize(
+    "path, extra, key",
+    [
+        ("/v1/propagation", {}, "target_epochs"),
+        ("/v1/frames", {"from_frame": {"name": "icrs"}}, "target_epochs"),
+        ("/v1/observed", {"site": "kestrel-ridge"}, "instants"),
+    ],
+)
+def test_a_million_null_epochs(client, path, extra, key):
+    """Refused on the count before any epoch is read, as a limit of the service (413, as
+    too many stars are) naming the field and the setting, on every operation that takes a
+    list of epochs or instants."""
+    sent = {k: v for k, v in body(**extra).items() if k != "target_epochs"}
+    sent[key] = [None] * MILLION
+    problem = assert_problem(post(client, sent, path), 413)
+    assert fields(problem) == [key]
+    assert "SKYDRIFT_MAX_EPOCHS" in problem["errors"][0]["message"]
+
+
+def test_an_epoch_range_over_the_limit(client):
+    """A start/stop/count range counts as its count of epochs."""
+    rng = {"start": 2000.0, "stop": 2100.0, "count": 10_000_000}
+    sent = {k: v for k, v in body(target_range=rng).items() if k != "target_epochs"}
+    problem = assert_problem(post(client, sent), 413)
+    assert fields(problem) == ["target_range.count"]
+    assert "SKYDRIFT_MAX_EPOCHS" in problem["errors"][0]["message"]
 
 
 @pytest.mark.parametrize("path", POST_PATHS)
