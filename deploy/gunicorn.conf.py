@@ -41,8 +41,55 @@ def _whole(name: str, default: int, lo: int, hi: int) -> int:
     return value
 
 
+def _checked(name: str, value: str, check) -> str:
+    """``value`` if gunicorn's own ``check`` takes it; otherwise stop with one line naming
+    the setting (gunicorn would stop with a traceback, or a message naming no setting)."""
+    try:
+        check(value)
+    except Exception as exc:  # whatever gunicorn raises: one line
+        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise SystemExit(f"{name}={value!r}: {reason}") from None
+    return value
+
+
+def _check_address(value: str) -> None:
+    from gunicorn.util import parse_address
+
+    address = parse_address(value)
+    if isinstance(address, tuple) and not 0 <= address[1] <= 65535:
+        raise ValueError("the port must be between 0 and 65535")
+
+
+def _check_worker_class(value: str) -> None:
+    from gunicorn.util import load_class
+
+    try:
+        load_class(value)
+    except Exception:  # gunicorn's message is a whole traceback
+        raise ValueError(
+            "not a gunicorn worker class that can be loaded (gthread, sync, or module.Class)"
+        ) from None
+
+
+def _check_addresses(value: str) -> None:
+    from gunicorn.config import validate_string_to_addr_list
+
+    validate_string_to_addr_list(value)
+
+
+def _check_log_file(value: str) -> None:
+    if value != "-":
+        try:
+            with open(value, "a"):  # what gunicorn does next; it would name no setting
+                pass
+        except OSError as exc:
+            raise ValueError(f"cannot write to it ({exc.strerror})") from None
+
+
 #: Address to listen on: SKYDRIFT_BIND (default loopback only; the image sets 0.0.0.0:8000).
-bind = os.environ.get("SKYDRIFT_BIND", "127.0.0.1:8000")
+bind = _checked(
+    "SKYDRIFT_BIND", os.environ.get("SKYDRIFT_BIND") or "127.0.0.1:8000", _check_address
+)
 
 #: Worker processes: SKYDRIFT_WORKERS, default one per usable CPU (the work is CPU-bound
 #: numpy; in a container the CPU limit counts, not the host's CPUs).
@@ -58,7 +105,11 @@ workers = _whole("SKYDRIFT_WORKERS", _cpu_count(), 1, 1024)
 #: (SKYDRIFT_CLIENT_IDLE_TIMEOUT_S, default 10; SKYDRIFT_REQUEST_READ_TIMEOUT_S, default 60),
 #: so slow clients cannot hold a thread (gthread threads are never reclaimed by `timeout`;
 #: see service/workers.py). SKYDRIFT_WORKER_CLASS=gthread gives the plain worker.
-worker_class = os.environ.get("SKYDRIFT_WORKER_CLASS", "service.workers.ReadDeadlineThreadWorker")
+worker_class = _checked(
+    "SKYDRIFT_WORKER_CLASS",
+    os.environ.get("SKYDRIFT_WORKER_CLASS") or "service.workers.ReadDeadlineThreadWorker",
+    _check_worker_class,
+)
 
 
 # The workers read these two (service/workers.py); checked here too, by the same function: a
@@ -130,13 +181,19 @@ limit_request_fields = 100
 
 #: Address of trusted proxies whose X-Forwarded-* gunicorn believes (the application also
 #: has SKYDRIFT_FORWARDED_HOPS). Default: loopback only, gunicorn's default.
-forwarded_allow_ips = os.environ.get("SKYDRIFT_FORWARDED_ALLOW_IPS", "127.0.0.1,::1")
+forwarded_allow_ips = _checked(
+    "SKYDRIFT_FORWARDED_ALLOW_IPS",
+    os.environ.get("SKYDRIFT_FORWARDED_ALLOW_IPS") or "127.0.0.1,::1",
+    _check_addresses,
+)
 
 #: Logs: one JSON object per line on standard output (access) and standard error (the
 #: rest), with the request id (service/gunicorn_log.py). SKYDRIFT_ACCESS_LOG=/dev/null or a
 #: file path to redirect the access log.
 logger_class = "service.gunicorn_log.JsonLogger"
-accesslog = os.environ.get("SKYDRIFT_ACCESS_LOG", "-")
+accesslog = _checked(
+    "SKYDRIFT_ACCESS_LOG", os.environ.get("SKYDRIFT_ACCESS_LOG") or "-", _check_log_file
+)
 errorlog = "-"
 loglevel = os.environ.get("SKYDRIFT_LOG_LEVEL", "info").lower()
 
@@ -146,9 +203,19 @@ loglevel = os.environ.get("SKYDRIFT_LOG_LEVEL", "info").lower()
 # application (and prometheus_client) is imported, which is why it is set here. It lives under
 # the system temporary folder (/tmp, a tmpfs in the container) and is private to this master.
 _metrics_dir_owned = not os.environ.get("PROMETHEUS_MULTIPROC_DIR")
-if _metrics_dir_owned:
-    os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="skydrift-metrics-")
-os.makedirs(os.environ["PROMETHEUS_MULTIPROC_DIR"], exist_ok=True)
+try:
+    if _metrics_dir_owned:
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = tempfile.mkdtemp(prefix="skydrift-metrics-")
+    os.makedirs(os.environ["PROMETHEUS_MULTIPROC_DIR"], exist_ok=True)
+    if not os.access(os.environ["PROMETHEUS_MULTIPROC_DIR"], os.W_OK | os.X_OK):
+        raise PermissionError("not writable")
+except OSError as exc:  # e.g. a read-only root with no tmpfs on /tmp: one line, no traceback
+    _where = os.environ.get("PROMETHEUS_MULTIPROC_DIR") or "(unset: a new folder under /tmp)"
+    raise SystemExit(
+        f"PROMETHEUS_MULTIPROC_DIR={_where}: cannot make a writable metrics folder "
+        f"({getattr(exc, 'strerror', None) or exc}); give the service a writable /tmp (a tmpfs "
+        "in a container) or set PROMETHEUS_MULTIPROC_DIR to a writable folder"
+    ) from None
 _master_pid = os.getpid()
 
 

@@ -100,6 +100,14 @@ def test_worker_nice_setting(load):
         # gunicorn stopped with a traceback as the first worker booted
         ("SKYDRIFT_WORKER_TMP_DIR", "/no/such/folder"),
         ("SKYDRIFT_WORKER_TMP_DIR", str(ROOT / "README.md")),
+        # gunicorn stopped with a traceback (a port out of range, an unknown worker class)
+        # or with a message naming no setting (a bad port, proxy address or log file)
+        ("SKYDRIFT_BIND", "127.0.0.1:99999"),
+        ("SKYDRIFT_BIND", "127.0.0.1:http"),
+        ("SKYDRIFT_WORKER_CLASS", "gthraed"),
+        ("SKYDRIFT_WORKER_CLASS", "service.workers.NoSuchWorker"),
+        ("SKYDRIFT_FORWARDED_ALLOW_IPS", "10.0.0.0/8,proxy.example.org"),
+        ("SKYDRIFT_ACCESS_LOG", "/no/such/folder/access.log"),
     ],
 )
 def test_bad_process_settings_stop_the_start_with_one_line_naming_them(load, name, value):
@@ -108,6 +116,32 @@ def test_bad_process_settings_stop_the_start_with_one_line_naming_them(load, nam
     with pytest.raises(SystemExit, match=name) as info:
         load(**{name: value})
     assert "\n" not in str(info.value)
+
+
+@pytest.mark.parametrize("where", ["file", "missing"])
+def test_unusable_metrics_folder_stops_the_start_with_one_line(monkeypatch, tmp_path, where):
+    # A file where the folder should be, or a folder that cannot be made (here under a file;
+    # in a container, a read-only root with no tmpfs on /tmp): it was a traceback.
+    (tmp_path / "a_file").write_text("")
+    folder = tmp_path / "a_file" / ("" if where == "file" else "metrics")
+    monkeypatch.setenv("PROMETHEUS_MULTIPROC_DIR", str(folder))
+    with pytest.raises(SystemExit, match="PROMETHEUS_MULTIPROC_DIR") as info:
+        runpy.run_path(CONF)
+    assert "\n" not in str(info.value)
+
+
+def test_good_process_settings_are_kept(load, tmp_path):
+    conf = load(
+        SKYDRIFT_BIND="[::1]:8080",
+        SKYDRIFT_WORKER_CLASS="service.workers.ReadDeadlineSyncWorker",
+        SKYDRIFT_FORWARDED_ALLOW_IPS="10.0.0.0/8, 127.0.0.1",
+        SKYDRIFT_ACCESS_LOG=str(tmp_path / "access.log"),
+    )
+    assert conf["bind"] == "[::1]:8080"
+    assert conf["worker_class"] == "service.workers.ReadDeadlineSyncWorker"
+    assert conf["forwarded_allow_ips"] == "10.0.0.0/8, 127.0.0.1"
+    assert conf["accesslog"] == str(tmp_path / "access.log")
+    assert load(SKYDRIFT_BIND="unix:/tmp/skydrift.sock")["bind"] == "unix:/tmp/skydrift.sock"
 
 
 def test_bad_application_setting_under_gunicorn_is_one_line(tmp_path):
