@@ -189,3 +189,32 @@ def test_bulk_pool_overlay_renders_valid_and_apart_from_the_service():
     assert env["SKYDRIFT_WORKER_NICE"] == "10"
     assert spec["containers"][0]["envFrom"][0]["configMapRef"]["name"] == "skydrift-bulk"
     assert bulk["HorizontalPodAutoscaler"]["spec"]["scaleTargetRef"]["name"] == "skydrift-bulk"
+
+
+def test_bulk_pool_keeps_its_batch_limit_when_the_interactive_pool_lowers_it(tmp_path):
+    import shutil
+
+    if shutil.which("kubectl") is None:
+        pytest.skip("kubectl (which renders kustomizations) is not installed")
+    # What the overlay and the README advise for the interactive pool: SKYDRIFT_MAX_STARS
+    # "1000" in deploy/k8s/configmap.yaml. The bulk overlay copies that ConfigMap, so the
+    # bulk pool refused every batch over 1,000 stars too.
+    shutil.copytree(K8S, tmp_path / "k8s")
+    shutil.copytree(ROOT / "deploy" / "k8s-bulk-pool", tmp_path / "k8s-bulk-pool")
+    configmap = tmp_path / "k8s" / "configmap.yaml"
+    configmap.write_text(
+        configmap.read_text().replace('SKYDRIFT_MAX_STARS: "1000000"', 'SKYDRIFT_MAX_STARS: "1000"')
+    )
+
+    def rendered(folder):
+        out = subprocess.run(
+            ["kubectl", "kustomize", str(tmp_path / folder)],
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout
+        return next(d for d in yaml.safe_load_all(out) if d and d["kind"] == "ConfigMap")
+
+    assert rendered("k8s")["data"]["SKYDRIFT_MAX_STARS"] == "1000"
+    # The default limit (service/config.py, Settings.max_stars).
+    assert rendered("k8s-bulk-pool")["data"]["SKYDRIFT_MAX_STARS"] == "1000000"
