@@ -243,10 +243,11 @@ def post_fork(server, worker):
 
 
 def child_exit(server, worker):
-    """A worker ended (max-requests restart, crash, shutdown): mark it dead for metrics."""
-    from prometheus_client import multiprocess
+    """A worker ended (max-requests restart, crash, shutdown): mark it dead for metrics, its
+    counts added into one file per kind so that the folder does not grow with every restart."""
+    from service.api.observability import fold_dead_worker
 
-    multiprocess.mark_process_dead(worker.pid)
+    fold_dead_worker(worker.pid)
 
 
 def on_exit(server):

@@ -31,7 +31,9 @@ log as JSON too.
 
 from __future__ import annotations
 
+import contextlib
 import datetime
+import fcntl
 import functools
 import json
 import logging
@@ -105,6 +107,54 @@ def multiprocess_dir() -> str | None:
     return path if path and os.path.isdir(path) else None
 
 
+#: Kinds of prometheus-client files whose figures outlive their worker (a dead worker's
+#: counts still count); live gauges are removed with the worker instead.
+_SUMMED_KINDS = ("counter", "histogram")
+
+
+@contextlib.contextmanager
+def _folder_lock(folder: str, exclusive: bool):
+    """Readers (``/metrics``) share it; folding a dead worker's files takes it alone, so a
+    scrape never sees a worker's figures twice or not at all, nor a file vanish mid-read."""
+    with open(os.path.join(folder, "folding.lock"), "a+") as fh:
+        fcntl.flock(fh, fcntl.LOCK_EX if exclusive else fcntl.LOCK_SH)
+        yield
+
+
+def fold_dead_worker(pid: int, folder: str | None = None) -> None:
+    """Mark worker ``pid`` dead for the metrics, adding its counts into one file per kind.
+
+    prometheus-client keeps the counter and histogram files of every dead worker, so that
+    its counts still count. Workers are restarted every SKYDRIFT_MAX_REQUESTS requests, so
+    those files (about 30 kB a worker) added up without end in a /tmp of 64 MiB (the
+    container's tmpfs), which then filled, and /metrics read more files at every scrape.
+    Here they are added into ``<kind>_deadworkers.db`` (the collector sums every file of
+    a kind) and removed; live gauge files are removed as prometheus-client does.
+    """
+    from prometheus_client import multiprocess
+    from prometheus_client.mmap_dict import MmapedDict
+
+    folder = folder or multiprocess_dir()
+    if not folder:
+        return
+    multiprocess.mark_process_dead(pid, folder)
+    with _folder_lock(folder, exclusive=True):
+        for kind in _SUMMED_KINDS:
+            path = os.path.join(folder, f"{kind}_{pid}.db")
+            if not os.path.exists(path):
+                continue
+            if os.path.getsize(path) == 0:  # made but never sized: holds no figure
+                os.unlink(path)
+                continue
+            total = MmapedDict(os.path.join(folder, f"{kind}_deadworkers.db"))
+            try:
+                for key, value, _, _ in MmapedDict.read_all_values_from_file(path):
+                    total.write_value(key, total.read_value(key)[0] + value, 0.0)
+            finally:
+                total.close()
+            os.unlink(path)
+
+
 _RULE_VARIABLE = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
 
 
@@ -173,7 +223,9 @@ def metrics_view():
             registry.register(collector)
     in_use = current_app.extensions.get("skydrift_eop_in_use")
     registry.register(_EopAgeCollector(in_use() if in_use is not None else None))
-    return Response(generate_latest(registry), mimetype=CONTENT_TYPE_LATEST.split(";")[0])
+    with _folder_lock(folder, exclusive=False) if folder else contextlib.nullcontext():
+        text = generate_latest(registry)
+    return Response(text, mimetype=CONTENT_TYPE_LATEST.split(";")[0])
 
 
 # --- JSON logs ----------------------------------------------------------------------------

@@ -120,3 +120,40 @@ def test_fail_first_n_counted_across_workers():
     assert len(failed) == 3
     assert all(r.headers["Retry-After"] == "2" for r in failed)
     assert sum(r.status_code == 200 for r in answers) == 9
+
+
+def test_restarted_workers_leave_one_file_per_kind_and_their_counts(tmp_path):
+    # Workers restarted every 3 requests. prometheus-client keeps each dead worker's counter
+    # and histogram files (about 30 kB each here): one pair per restart without end, in a
+    # /tmp of 64 MiB in the container. Their counts are now added into one file per kind.
+    srv = Server(
+        workers=2,
+        PROMETHEUS_MULTIPROC_DIR=str(tmp_path),
+        SKYDRIFT_MAX_REQUESTS="3",
+        SKYDRIFT_MAX_REQUESTS_JITTER="0",
+    ).start()
+    try:
+        sent = 0
+        for _ in range(30):
+            assert requests.post(srv.url + "/v1/propagation", json=BODY, timeout=60).ok
+            sent += 1
+        key = frozenset({"endpoint": "/v1/propagation", "method": "POST", "status": "200"}.items())
+        # Every restart so far is folded once the master has reaped it; the scrapes are
+        # requests too and restart workers, so the count is read with that in mind.
+        samples = scrape(srv.url)
+        assert samples[("skydrift_http_requests_total", key)] == sent
+        assert (
+            samples[
+                (
+                    "skydrift_stars_processed_total",
+                    frozenset({"endpoint": "/v1/propagation"}.items()),
+                )
+            ]
+            == sent * N_STARS
+        )
+        counters = sorted(p.name for p in tmp_path.glob("counter_*.db"))
+        # At most the two live workers, a worker being replaced, and the folded total.
+        assert len(counters) <= 4, counters
+        assert "counter_deadworkers.db" in counters
+    finally:
+        srv.stop()

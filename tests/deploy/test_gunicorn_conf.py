@@ -54,17 +54,46 @@ def test_worker_timeout_stays_above_the_request_time_limit(load):
 
 
 def test_child_exit_marks_the_worker_dead_for_metrics(load, tmp_path):
+    from prometheus_client import CollectorRegistry, generate_latest, multiprocess
+    from prometheus_client.mmap_dict import MmapedDict, mmap_key
+
     conf = load()
-    # A worker's live gauge file is removed when it is marked dead (prometheus-client).
-    (tmp_path / "gauge_livesum_4242.db").write_bytes(b"")
-    (tmp_path / "counter_4242.db").write_bytes(b"")
+    key = mmap_key("skydrift_http_requests", "skydrift_http_requests_total", ["e"], ["/x"], "h")
+
+    def counter_file(pid, value):
+        d = MmapedDict(str(tmp_path / f"counter_{pid}.db"))
+        d.write_value(key, value, 0.0)
+        d.close()
+
+    def total():
+        registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(registry, path=str(tmp_path))
+        line = next(
+            ln for ln in generate_latest(registry).decode().splitlines() if ln.startswith("sky")
+        )
+        return float(line.split()[-1])
 
     class Worker:
         pid = 4242
 
+    # A live gauge file of the worker is removed (prometheus-client's mark_process_dead);
+    # its counts still count, now added into one file with those of other dead workers.
+    counter_file(4242, 5.0)
+    counter_file(7, 2.0)  # a live worker
+    (tmp_path / "gauge_livesum_4242.db").write_bytes(b"")
     conf["child_exit"](None, Worker())
     assert not (tmp_path / "gauge_livesum_4242.db").exists()
-    assert (tmp_path / "counter_4242.db").exists()  # counts of a dead worker still count
+    assert not (tmp_path / "counter_4242.db").exists()
+    assert total() == 7.0
+    for pid in (4243, 4244):  # two more restarts: still one file for the dead
+        counter_file(pid, 1.0)
+        Worker.pid = pid
+        conf["child_exit"](None, Worker())
+    assert sorted(p.name for p in tmp_path.glob("counter_*.db")) == [
+        "counter_7.db",
+        "counter_deadworkers.db",
+    ]
+    assert total() == 9.0
 
 
 def test_on_starting_clears_old_metrics(load, tmp_path):
