@@ -1077,7 +1077,9 @@ def _margins_block(xyz, ra_h, index):
     counts = mi.count[pos]
     start_all = mi.start[pos]
     x0, y0, z0 = xyz[0], xyz[1], xyz[2]
-    rho0 = np.sqrt(np.maximum(1.0 - z0 * z0, 0.0))
+    # cos(dec) from x and y, not sqrt(1 - z^2): near a pole 1 - z^2 cancels and would put
+    # up to 0.004 arcsec into the margin (about sqrt(eps) rad, within 1e-8 rad of a pole)
+    rho0 = np.sqrt(x0 * x0 + y0 * y0)
     # first candidate of every point, in input order
     best_seg = mi.flat[start_all]
     best = _one_minus_cos_distance_split(x0, y0, z0, rho0, best_seg)

@@ -867,3 +867,21 @@ def test_constellation_list():
         [d["abbreviation"] for d in lst].index("Ori")
     ].items()
     assert abs(sum(d["area_deg2"] for d in lst) - 4 * math.pi * DEG_PER_RAD**2) < 1e-6
+
+
+def test_margin_next_to_the_b1875_poles():
+    # Roman (1987) data.dat, rows "0.0000 24.0000 88.0000 UMi" and "3.5000 7.6667 -85.0000
+    # Men" above "0.0000 24.0000 -90.0000 Oct": the nearest boundary of a point next to the
+    # north pole is the parallel +88 deg, next to the south pole the parallel -85 deg, so the
+    # margin is the difference in declination, exactly, for RA 3.5h to 7.6667h (analytic
+    # reference).
+    gap_deg = np.array([1e-9, 1e-8, 1e-7, 3e-7, 1e-6, 1e-5, 1e-4])
+    dec_b = np.concatenate([90.0 - gap_deg, -90.0 + gap_deg])
+    ra_b = np.full(dec_b.size, 75.0)  # 5h, inside the RA range of the Men row
+    ra, dec = _b1875_to_icrs_deg(ra_b, dec_b, reduction="fk5")
+    res = C.locate(ra, dec, reduction="fk5")
+    # the reference from the declination the lookup itself reached (round trip ~1e-11 deg)
+    nearest = np.where(dec_b > 0.0, 88.0, -85.0)
+    expected = np.abs(res.dec_b1875_deg - nearest) * 3600.0
+    np.testing.assert_allclose(res.margin_arcsec, expected, rtol=0, atol=1e-6)
+    assert list(ABBR[res.index]) == ["UMi"] * gap_deg.size + ["Oct"] * gap_deg.size
