@@ -852,7 +852,9 @@ class RefractionSettings:
     mode : str
         ``given_pressure``, ``standard_atmosphere_pressure`` or ``off`` (pressure zero).
     pressure_hpa, temperature_c, relative_humidity, wavelength_um : float
-        Values passed to the refraction model (SOFA ``refco``).
+        Values passed to the refraction model (SOFA ``refco``); a radio wavelength (100 um
+        and above) reaches refco as 1e6 um, inside its radio case, whose formula does not
+        depend on the wavelength.
     temperature_source : str
         ``given`` or ``standard_atmosphere``.
     refa_rad, refb_rad : float
@@ -910,7 +912,11 @@ def _refraction_settings(height_m: float, atm: Atmosphere) -> RefractionSettings
         t, t_src = float(atm.temperature_c), "given"
     rh = DEFAULT_RELATIVE_HUMIDITY if atm.relative_humidity is None else atm.relative_humidity
     wl = DEFAULT_WAVELENGTH_UM if atm.wavelength_um is None else atm.wavelength_um
-    refa, refb = _refco_cached(p, t, float(rh), float(wl))
+    # SOFA refco takes its optical formula up to and including 100 um (optic = wl <= 100),
+    # but the radio range here begins at 100 um; the radio formula does not depend on the
+    # wavelength, so every radio wavelength goes to refco as the range's upper end.
+    wl_refco = WAVELENGTH_RADIO_UM[1] if wl >= WAVELENGTH_RADIO_UM[0] else wl
+    refa, refb = _refco_cached(p, t, float(rh), float(wl_refco))
     return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb)
 
 

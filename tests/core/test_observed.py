@@ -261,6 +261,24 @@ def test_refraction_constants_match_refco_published_table():
         assert got == pytest.approx(want, abs=0.01)
 
 
+def test_radio_range_starts_at_100_um_with_the_radio_formula():
+    # The service's radio range is 100 um - 1 m; SOFA/ERFA refco (Note 2; source: optic =
+    # wl <= 100) takes the optical formula at 100 um itself, its radio formula (wavelength-
+    # independent) above it. 100 um must give pyerfa refco's radio constants (here at 1 cm),
+    # which in warm humid air differ from the optical ones by 36 arcsec at 45 deg. Tolerance
+    # 1e-12 relative.
+    site = O.make_site(20.0, 0.0, 0.0)
+    want = erfa.refco(1013.25, 30.0, 1.0, 1.0e4)
+    for wl in (100.0, 1.0e6):
+        s = O.refraction_settings(site, O.make_atmosphere(1013.25, 30.0, 1.0, wl))
+        assert s.wavelength_um == wl
+        assert s.refa_rad == pytest.approx(want[0], rel=1e-12)
+        assert s.refb_rad == pytest.approx(want[1], rel=1e-12)
+    # The optical end of the range is still the optical formula (pyerfa refco at 2 um).
+    s = O.refraction_settings(site, O.make_atmosphere(1013.25, 30.0, 1.0, 2.0))
+    assert s.refa_rad == pytest.approx(erfa.refco(1013.25, 30.0, 1.0, 2.0)[0], rel=1e-12)
+
+
 # --- Atmosphere -------------------------------------------------------------------------------
 
 
