@@ -483,11 +483,11 @@ def observed(args):
 
     The stars' catalogue astrometry is first moved to each instant (standard straight-line
     model), then carried through the IAU 2006/2000A chain of the SOFA routines (light
-    deflection, aberration, precession-nutation, Earth rotation, polar motion, diurnal
-    aberration, refraction). Each instant states the Earth-orientation table used, whether
-    its values were measured, predicted or unavailable, and the accuracy class. The Sun
-    altitude, Sun separation and horizon flags are advisory: the facility's own interlocks and
-    safety rules decide.
+    deflection by the Sun, not by the planets; aberration, precession-nutation, Earth
+    rotation, polar motion, diurnal aberration, refraction). Each instant states the
+    Earth-orientation table used, whether its values were measured, predicted or unavailable,
+    and the accuracy class. The Sun altitude, Sun separation and horizon flags are advisory:
+    the facility's own interlocks and safety rules decide.
     """
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     table = args["stars"]
