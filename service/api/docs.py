@@ -34,6 +34,18 @@ def _type_text(schema: dict) -> str:
     return str(typ)
 
 
+def _resolve(spec: dict, obj):
+    """``obj`` itself, or the component its ``$ref`` names (the shared error responses are
+    referenced, not repeated, in the document)."""
+    ref = obj.get("$ref", "") if isinstance(obj, dict) else ""
+    if not ref.startswith("#/"):
+        return obj
+    node = spec
+    for key in ref[2:].split("/"):
+        node = node.get(key, {}) if isinstance(node, dict) else {}
+    return node
+
+
 def _schema_rows(spec: dict, schema: dict, depth: int = 0) -> list[str]:
     if "$ref" in schema:
         name = schema["$ref"].rsplit("/", 1)[-1]
@@ -119,6 +131,7 @@ def reference_page():
             responses = op.get("responses", {})
             parts.append("<h3>Responses</h3><ul>")
             for code, resp in responses.items():
+                resp = _resolve(spec, resp)
                 parts.append(
                     f"<li><code>{code}</code> {html.escape(resp.get('description', ''))}</li>"
                 )
