@@ -30,18 +30,22 @@ PROBLEM_MIMETYPE = "application/problem+json"
 BODY_ERRORS = {
     "400": (
         "ProblemInvalidJson",
-        "The request body is not valid JSON; the detail says where (line and column) and why.",
+        "The body cannot be read as its Content-Type says: not valid JSON (the detail says "
+        "where, line and column, and why), CSV that is not UTF-8 text, or not an Arrow IPC "
+        "stream.",
     ),
     "413": (
         "ProblemTooLarge",
         "The body, or the number of stars, epochs or results it asks for, exceeds the "
         "configured limits (settings SKYDRIFT_MAX_BODY_BYTES, SKYDRIFT_MAX_STARS, "
-        "SKYDRIFT_MAX_RESULTS).",
+        "SKYDRIFT_MAX_EPOCHS, SKYDRIFT_MAX_RESULTS) or a limit of the operation itself "
+        "(stars of a crossing search, Monte Carlo samples); errors names the field.",
     ),
     "415": (
         "ProblemUnsupportedMediaType",
-        "The body is not JSON (send Content-Type: application/json), or is compressed "
-        "(Content-Encoding is not accepted).",
+        "The Content-Type is not one this operation takes (application/json; text/csv and "
+        "application/vnd.apache.arrow.stream where its request body lists them), or the body "
+        "is compressed (Content-Encoding is not accepted).",
     ),
     "422": ("ProblemInvalidField", "One or more fields are invalid; each is listed."),
 }

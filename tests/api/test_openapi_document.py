@@ -287,3 +287,48 @@ def test_csv_answer_description_matches_the_header(doc, client):
             # Said conditionally, never as the columns of every answer.
             assert "epoch_julian_tdb, epoch_iso_utc, the" not in text, path
             assert "when the answer has epochs" in text, path
+
+
+def _described(doc, op, status):
+    resp = op["responses"][status]
+    if "$ref" in resp:
+        resp = doc["components"]["responses"][resp["$ref"].rsplit("/", 1)[-1]]
+    return resp["description"]
+
+
+def test_error_descriptions_cover_the_answers_the_service_gives(doc, client):
+    """What the document says a 400, 413 and 415 mean covers what the service answers: every
+    body operation takes CSV and Arrow bodies besides JSON (the 415 text said "send
+    Content-Type: application/json"), reads them with a 400 when they cannot be read (the 400
+    text spoke of JSON only), and /v1/frames and /v1/observed answer too many epochs with a
+    413 naming SKYDRIFT_MAX_EPOCHS (the 413 text named the other three limits only)."""
+    posts = [(path, op) for path, method, op in _operations(doc) if method == "post"]
+    assert len(posts) == 10
+    for path, op in posts:
+        text = _described(doc, op, "415")
+        for mimetype in op["requestBody"]["content"]:
+            assert mimetype in text, (path, mimetype)
+
+    url = "/v1/propagation?catalogue_epoch=J2016.0&target_epochs=J2030.0"
+    csv = "id,ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\nA\xe9,1,2,3,4\n"
+    r = client.post(url, data=csv.encode("latin-1"), content_type="text/csv")
+    assert r.status_code == 400 and "UTF-8" in r.json["detail"]
+    r = client.post(url, data=b"not arrow", content_type="application/vnd.apache.arrow.stream")
+    assert r.status_code == 400 and "Arrow" in r.json["detail"]
+    op = doc["paths"]["/v1/propagation"]["post"]
+    assert "CSV" in _described(doc, op, "400") and "Arrow" in _described(doc, op, "400")
+
+    star = {"ra_deg": 1.0, "dec_deg": 2.0, "pm_ra_cosdec_mas_yr": 3.0, "pm_dec_mas_yr": 4.0}
+    limit = client.application.config["SKYDRIFT_SETTINGS"].max_epochs
+    r = client.post(
+        "/v1/frames",
+        json={
+            "stars": [star],
+            "catalogue_epoch": 2016.0,
+            "from_frame": {"name": "icrs"},
+            "to_frame": {"name": "galactic"},
+            "target_epochs": [2016.0] * (limit + 1),
+        },
+    )
+    assert r.status_code == 413 and "SKYDRIFT_MAX_EPOCHS" in r.json["errors"][0]["message"]
+    assert "SKYDRIFT_MAX_EPOCHS" in _described(doc, doc["paths"]["/v1/frames"]["post"], "413")
