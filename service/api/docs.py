@@ -27,8 +27,9 @@ def _type_text(schema: dict) -> str:
     typ = schema.get("type", "")
     if isinstance(typ, list):
         typ = " or ".join(typ)
-    if "oneOf" in schema:
-        typ = " or ".join(p.get("title", p.get("type", "")) for p in schema["oneOf"])
+    for key in ("oneOf", "anyOf"):  # anyOf: a nested schema or null ("Atmosphere or null")
+        if key in schema:
+            typ = " or ".join(p.get("title") or _type_text(p) for p in schema[key])
     if "$ref" in schema:
         typ = schema["$ref"].rsplit("/", 1)[-1]
     return str(typ)
