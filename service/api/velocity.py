@@ -67,11 +67,17 @@ _PARAMS = ("ra", "dec", "parallax", "pm_ra", "pm_dec", "radial_velocity")
 _CORRELATION_FIELDS = tuple(
     f"correlation_{_PARAMS[i]}_{_PARAMS[j]}" for i, j in itertools.combinations(range(6), 2)
 )
-#: Correlations that enter the velocities (the others are accepted and ignored).
+#: Correlations among the astrometric parameters that enter the velocities.
 _USED_CORRELATIONS = (
     "correlation_parallax_pm_ra",
     "correlation_parallax_pm_dec",
     "correlation_pm_ra_pm_dec",
+)
+#: Correlations of the radial velocity that enter them (those with the position do not).
+_RV_CORRELATIONS = (
+    "correlation_parallax_radial_velocity",
+    "correlation_pm_ra_radial_velocity",
+    "correlation_pm_dec_radial_velocity",
 )
 
 
@@ -79,8 +85,8 @@ _num = number_field
 
 
 _POSITION_ERROR_NOTE = (
-    " Accepted so that catalogue records can be sent unchanged; position errors change the "
-    "velocities by less than 1e-8 of the speed and are not used."
+    " Accepted so that catalogue records can be sent unchanged; not used: position errors "
+    "change the velocities by about their size in radians (5e-9 of the speed per mas)."
 )
 
 _VELOCITY_STAR_FIELDS = {
@@ -140,16 +146,19 @@ _VELOCITY_STAR_FIELDS = {
     ),
 }
 for _name in _CORRELATION_FIELDS:
-    _used = _name in _USED_CORRELATIONS
     _VELOCITY_STAR_FIELDS[_name] = _num(
         "Correlation coefficient of the errors named in the field. "
         + (
             "Null or absent: taken as 0. A star with standard errors but none of "
             "correlation_parallax_pm_ra, correlation_parallax_pm_dec and "
             "correlation_pm_ra_pm_dec is flagged correlations_assumed_zero."
-            if _used
+            if _name in _USED_CORRELATIONS
+            else "Null or absent: taken as 0 (a covariance propagated to another epoch has "
+            "these, through the perspective acceleration)."
+            if _name in _RV_CORRELATIONS
             else "Accepted so that catalogue records can be sent unchanged; not used "
-            "(positions and radial velocity do not correlate with the velocity terms used)."
+            "(position errors change the velocities by about their size in radians, 5e-9 "
+            "of the speed per mas)."
         ),
         lo=-1.0,
         hi=1.0,
@@ -470,20 +479,34 @@ def _check_correlations(table, n):
 
     A 3x3 correlation matrix with coefficients in [-1, 1] is positive semi-definite exactly
     when its determinant is not negative (all its other principal minors, 1 and 1 - r^2,
-    are then non-negative already): a closed form, fast for a million stars.
+    are then non-negative already): a closed form, fast for a million stars. Stars with
+    correlations of the radial velocity have the 4x4 matrix checked by its eigenvalues.
     """
     c = table.columns
     r12, r13, r23 = (np.nan_to_num(c[name], nan=0.0) for name in _USED_CORRELATIONS)
     det = 1.0 + 2.0 * r12 * r13 * r23 - r12 * r12 - r13 * r13 - r23 * r23
-    bad = np.flatnonzero(det < -1e-12)
+    bad_mask = det < -1e-12
+    r14, r24, r34 = (np.nan_to_num(c[name], nan=0.0) for name in _RV_CORRELATIONS)
+    with_rv = np.flatnonzero((r14 != 0.0) | (r24 != 0.0) | (r34 != 0.0))
+    if with_rv.size:
+        corr = np.broadcast_to(np.eye(4), (with_rv.size, 4, 4)).copy()
+        for (i, j), r in zip(
+            ((0, 1), (0, 2), (1, 2), (0, 3), (1, 3), (2, 3)),
+            (r12, r13, r23, r14, r24, r34),
+            strict=True,
+        ):
+            corr[:, i, j] = corr[:, j, i] = r[with_rv]
+        bad_mask[with_rv] |= np.linalg.eigvalsh(corr)[:, 0] < -1e-9
+    bad = np.flatnonzero(bad_mask)
     if bad.size:
         abort(
             422,
             errors=[
                 {
                     "field": table.path(int(i), "correlation_*"),
-                    "message": "the correlations of parallax and proper motions do not form a "
-                    "positive semi-definite matrix (they cannot all hold at once)",
+                    "message": "the correlations of parallax, proper motions and radial "
+                    "velocity do not form a positive semi-definite matrix (they cannot all "
+                    "hold at once)",
                 }
                 for i in bad[:50]
             ],
@@ -551,10 +574,10 @@ def velocity(args):
     velocity, position angle of the proper motion, angle between the space velocity and the
     line of sight, galactic U, V, W (heliocentric, and relative to the local standard of rest
     on request) with standard errors and correlations from the full parallax and
-    proper-motion covariance plus the radial-velocity error (linear propagation, or Monte
-    Carlo draws where the parallax is too noisy for it), perspective acceleration, and the
-    closest approach to the Sun. Stars without a usable distance or radial velocity get
-    null values and flags, never an error for the whole batch.
+    proper-motion covariance plus the radial-velocity error and its correlations (linear
+    propagation, or Monte Carlo draws where the parallax is too noisy for it), perspective
+    acceleration, and the closest approach to the Sun. Stars without a usable distance or
+    radial velocity get null values and flags, never an error for the whole batch.
     """
     table = args["stars"]
     n = table.size
@@ -609,6 +632,13 @@ def velocity(args):
         parallax_pm_dec_corr=np.nan_to_num(c["correlation_parallax_pm_dec"], nan=0.0),
         pm_ra_cosdec_pm_dec_corr=np.nan_to_num(c["correlation_pm_ra_pm_dec"], nan=0.0),
         radial_velocity_error_km_s=c["radial_velocity_error_km_s"],
+        parallax_radial_velocity_corr=np.nan_to_num(
+            c["correlation_parallax_radial_velocity"], nan=0.0
+        ),
+        pm_ra_cosdec_radial_velocity_corr=np.nan_to_num(
+            c["correlation_pm_ra_radial_velocity"], nan=0.0
+        ),
+        pm_dec_radial_velocity_corr=np.nan_to_num(c["correlation_pm_dec_radial_velocity"], nan=0.0),
         distance_error_pc=c["distance_error_pc"],
         epoch_jyear=np.nan if args["catalogue_epoch"] is None else args["catalogue_epoch"],
         relative_to_lsr=args["relative_to_lsr"],

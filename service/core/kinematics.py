@@ -468,8 +468,13 @@ def _prepare(
     distance_error_pc,
     epoch_jyear,
     solar_motion_km_s,
+    radial_velocity_corr=(None, None, None),
 ):
-    """Broadcast and flatten the inputs of :func:`space_velocity`."""
+    """Broadcast and flatten the inputs of :func:`space_velocity`.
+
+    ``radial_velocity_corr`` holds the correlations of the radial velocity with the parallax
+    and the two proper motions (None: 0); they come last in the flattened list.
+    """
     if astrometric_covariance_mas is not None:
         cov = np.asarray(astrometric_covariance_mas, dtype=np.float64)
         if cov.shape[-2:] != (5, 5):
@@ -510,6 +515,7 @@ def _prepare(
         _optional(radial_velocity_error_km_s),
         _optional(distance_error_pc),
         _optional(epoch_jyear),
+        *(_optional(r, 0.0) for r in radial_velocity_corr),
     )
     shape = arrays[0].shape
     n = arrays[0].size
@@ -540,6 +546,9 @@ def space_velocity(
     pm_ra_cosdec_pm_dec_corr=None,
     astrometric_covariance_mas=None,
     radial_velocity_error_km_s=None,
+    parallax_radial_velocity_corr=None,
+    pm_ra_cosdec_radial_velocity_corr=None,
+    pm_dec_radial_velocity_corr=None,
     distance_error_pc=None,
     epoch_jyear=None,
     relative_to_lsr=False,
@@ -574,9 +583,15 @@ def space_velocity(
         pm_dec), mas and mas/yr (see :func:`astrometric_covariance`). When given it
         replaces the error and correlation arguments above (Note 5).
     radial_velocity_error_km_s : array_like, optional
-        Standard error of the radial velocity, km/s (uncorrelated with the astrometry).
+        Standard error of the radial velocity, km/s.
+    parallax_radial_velocity_corr, pm_ra_cosdec_radial_velocity_corr,
+    pm_dec_radial_velocity_corr : array_like, optional
+        Correlation coefficients of the radial velocity with the parallax and the proper
+        motions (default 0; a covariance propagated to another epoch has them, through the
+        perspective acceleration).
     distance_error_pc : array_like, optional
-        Standard error of an explicit distance, pc (uncorrelated with the astrometry).
+        Standard error of an explicit distance, pc (uncorrelated with the proper motions
+        and the radial velocity).
     epoch_jyear : array_like, optional
         Catalogue epoch, Julian epoch (TDB), e.g. 2016.0; only used to date the closest
         approach.
@@ -619,9 +634,11 @@ def space_velocity(
     5. Position errors are ignored: they only rotate the local triad, by
        ``sigma_pos / 1 rad`` (about 5e-9 for 1 mas), so their effect on the velocities is
        below 1e-8 of the speed. Only the (parallax, pm_ra_cosdec, pm_dec) block of the
-       covariance is used.
+       covariance is used, with the radial velocity's error and its correlations with
+       those three.
     6. Linear propagation: ``C_uvw = G S G^T`` with ``S`` the covariance of the local
-       components (v_ra, v_dec, v_rad) from the Jacobian of ``A mu / parallax`` and ``G``
+       components (v_ra, v_dec, v_rad) from the Jacobian of ``(A mu / parallax, v_rad)``
+       with respect to (parallax, mu_ra*, mu_dec, v_rad), and ``G``
        the rotation from the local triad to U, V, W. The speed errors use the gradient of
        the norm, undefined at zero speed. Monte Carlo: draws of (parallax, mu, v_rad) from
        the Gaussian; draws with non-positive parallax (or distance) are discarded. The
@@ -668,6 +685,11 @@ def space_velocity(
         distance_error_pc,
         epoch_jyear,
         solar_motion_km_s,
+        (
+            parallax_radial_velocity_corr,
+            pm_ra_cosdec_radial_velocity_corr,
+            pm_dec_radial_velocity_corr,
+        ),
     )
 
     out = _allocate(n)
@@ -770,6 +792,9 @@ def galactic_velocity(
     pm_ra_cosdec_pm_dec_corr=None,
     astrometric_covariance_mas=None,
     radial_velocity_error_km_s=None,
+    parallax_radial_velocity_corr=None,
+    pm_ra_cosdec_radial_velocity_corr=None,
+    pm_dec_radial_velocity_corr=None,
     distance_error_pc=None,
     relative_to_lsr=False,
     solar_motion_km_s=V_SUN_LSR_SCHOENRICH2010_KM_S,
@@ -809,6 +834,11 @@ def galactic_velocity(
         distance_error_pc,
         None,
         solar_motion_km_s,
+        (
+            parallax_radial_velocity_corr,
+            pm_ra_cosdec_radial_velocity_corr,
+            pm_dec_radial_velocity_corr,
+        ),
     )
     out = _allocate(n, full=False)
     for start in range(0, n, _BLOCK):
@@ -912,7 +942,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     ``full=False`` computes only U, V, W, their covariance and the flags.
     """
     (ra, dec, pmra, pmdec, plx, rv, dist, sig_p, sig_a, sig_d, rho_pa, rho_pd, rho_ad, sig_rv,
-     sig_dist, epoch) = args  # fmt: skip
+     sig_dist, epoch, rho_pr, rho_ar, rho_dr) = args  # fmt: skip
 
     # --- distance: explicit distance where finite, else parallax (Notes 3, 4) ----------
     # Flags are built arithmetically (mask * bit), and only where some star needs them:
@@ -941,6 +971,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
             sig_plx_eq = np.where(given, 1000.0 * sig_dist / (dist * dist), sig_p)
             rho_pa = np.where(given, 0.0, rho_pa)
             rho_pd = np.where(given, 0.0, rho_pd)
+            rho_pr = np.where(given, 0.0, rho_pr)
     low = positive & (snr < low_snr_threshold)
     if low.any():
         flags |= low * np.uint32(KinematicsFlag.PARALLAX_LOW_SNR)
@@ -1003,6 +1034,13 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     s_dd = b * (b * c_pp - 2.0 * k_c_pd) + kk * (sig_d * sig_d)
     s_ad = a * (b * c_pp - k_c_pd) - b * k_c_pa + kk * (rho_ad * sig_a * sig_d)
     s_rr = sig_rv * sig_rv
+    # Correlations of the radial velocity with the parallax and proper motions (zero unless
+    # given: the terms are then skipped).
+    rv_corr = bool(np.any(rho_pr) or np.any(rho_ar) or np.any(rho_dr))
+    if rv_corr:
+        c_pr = rho_pr * sig_plx_eq * sig_rv
+        s_ar = k * (rho_ar * sig_a * sig_rv) - a * c_pr
+        s_dr = k * (rho_dr * sig_d * sig_rv) - b * c_pr
     missing_err = np.isnan(s_aa + s_dd + s_ad) | (np.isnan(s_rr) & ~rv_missing)
     if missing_err.any():
         flags |= (missing_err & np.isfinite(distance)) * np.uint32(
@@ -1016,6 +1054,13 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     s_ee = sd2 * s_dd + cd2 * s_rr
     s_ez = sd * cd * (s_rr - s_dd)
     s_zz = cd2 * s_dd + sd2 * s_rr
+    if rv_corr:
+        s_pe = s_pe + cd * s_ar
+        s_pz = s_pz + sd * s_ar
+        two_sc_dr = 2.0 * sd * cd * s_dr
+        s_ee = s_ee - two_sc_dr
+        s_ez = s_ez + (cd2 - sd2) * s_dr
+        s_zz = s_zz + two_sc_dr
     # Rotation by RA of the (east, e) block.
     sa2 = sa * sa
     ca2 = ca * ca
@@ -1039,7 +1084,10 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     with np.errstate(divide="ignore", invalid="ignore"):
         vt_var = va * (va * s_aa + 2.0 * vd * s_ad) + vd * vd * s_dd
         out["transverse_velocity_error_km_s"][sl] = np.sqrt(vt_var) / vt
-        out["total_velocity_error_km_s"][sl] = np.sqrt(vt_var + rv * rv * s_rr) / speed
+        sp_var = vt_var + rv * rv * s_rr
+        if rv_corr:
+            sp_var = sp_var + 2.0 * rv * (va * s_ar + vd * s_dr)
+        out["total_velocity_error_km_s"][sl] = np.sqrt(sp_var) / speed
 
     # --- secular quantities (Note 7) -----------------------------------------------------
     # Radial proper motion mu_r = v_rad / d, per year (Hipparcos Vol. 1 section 1.2.8 gives it
@@ -1104,7 +1152,7 @@ def _monte_carlo(flat, index, out, draws, rng):
     """Monte Carlo uncertainties for the stars ``index`` (Note 6 of space_velocity)."""
     flat = [np.broadcast_to(a, (out["flags"].size,)) for a in flat]
     (ra, dec, pmra, pmdec, plx, rv, dist, sig_p, sig_a, sig_d, rho_pa, rho_pd, rho_ad, sig_rv,
-     sig_dist, _epoch) = flat  # fmt: skip
+     sig_dist, _epoch, rho_pr, rho_ar, rho_dr) = flat  # fmt: skip
     per_chunk = max(1, _MONTE_CARLO_ELEMENTS // max(draws, 1))
     for start in range(0, index.size, per_chunk):
         idx = index[start : start + per_chunk]
@@ -1115,19 +1163,25 @@ def _monte_carlo(flat, index, out, draws, rng):
         s0 = np.where(given, sig_dist[idx], sig_p[idx])
         r_pa = np.where(given, 0.0, rho_pa[idx])
         r_pd = np.where(given, 0.0, rho_pd[idx])
+        r_pr = np.where(given, 0.0, rho_pr[idx])
         sa_, sd_ = sig_a[idx], sig_d[idx]
-        cov = np.empty((m, 3, 3))
-        cov[:, 0, 0] = s0 * s0
-        cov[:, 1, 1] = sa_ * sa_
-        cov[:, 2, 2] = sd_ * sd_
-        cov[:, 0, 1] = cov[:, 1, 0] = r_pa * s0 * sa_
-        cov[:, 0, 2] = cov[:, 2, 0] = r_pd * s0 * sd_
-        cov[:, 1, 2] = cov[:, 2, 1] = rho_ad[idx] * sa_ * sd_
         # A radial velocity given without its error leaves U, V, W and the speed without
         # errors (blanked below), not the transverse velocity: draw it with no spread.
         srv = np.where(np.isnan(rv[idx]), 0.0, sig_rv[idx])
         rv_error_missing = ~np.isfinite(srv)
         srv = np.where(rv_error_missing, 0.0, srv)
+        # (first variable, mu_a*, mu_d, v_rad); the radial velocity's correlations as given.
+        cov = np.empty((m, 4, 4))
+        cov[:, 0, 0] = s0 * s0
+        cov[:, 1, 1] = sa_ * sa_
+        cov[:, 2, 2] = sd_ * sd_
+        cov[:, 3, 3] = srv * srv
+        cov[:, 0, 1] = cov[:, 1, 0] = r_pa * s0 * sa_
+        cov[:, 0, 2] = cov[:, 2, 0] = r_pd * s0 * sd_
+        cov[:, 1, 2] = cov[:, 2, 1] = rho_ad[idx] * sa_ * sd_
+        cov[:, 0, 3] = cov[:, 3, 0] = r_pr * s0 * srv
+        cov[:, 1, 3] = cov[:, 3, 1] = rho_ar[idx] * sa_ * srv
+        cov[:, 2, 3] = cov[:, 3, 2] = rho_dr[idx] * sd_ * srv
         ok = np.isfinite(cov).all(axis=(1, 2))
         cov[~ok] = 0.0
         # Square root of the (semi-definite) covariance through its eigen-decomposition.
@@ -1135,19 +1189,16 @@ def _monte_carlo(flat, index, out, draws, rng):
         root = v * np.sqrt(np.clip(w, 0.0, None))[:, None, :]
         # Draws component-major: each (m, draws) slice is contiguous.
         z = rng.standard_normal((4, m, draws))
-        col = [root[:, i, :, None] for i in range(3)]  # (m, 3, 1) rows of the root
-        first = x0[:, None] + (col[0][:, 0] * z[0] + col[0][:, 1] * z[1] + col[0][:, 2] * z[2])
-        mu_a = pmra[idx][:, None] + (
-            col[1][:, 0] * z[0] + col[1][:, 1] * z[1] + col[1][:, 2] * z[2]
-        )
-        mu_d = pmdec[idx][:, None] + (
-            col[2][:, 0] * z[0] + col[2][:, 1] * z[1] + col[2][:, 2] * z[2]
-        )
+        col = [root[:, i, :, None] for i in range(4)]  # (m, 4, 1) rows of the root
+        drawn = [sum(c[:, j] * z[j] for j in range(4)) for c in col]
+        first = x0[:, None] + drawn[0]
+        mu_a = pmra[idx][:, None] + drawn[1]
+        mu_d = pmdec[idx][:, None] + drawn[2]
         rv_missing = np.isnan(rv[idx])
         # Without a radial velocity only the transverse velocity has draws; a zero stands
         # in for v_rad and the U, V, W and speed results are blanked below.
-        v_r = np.where(rv_missing, 0.0, rv[idx])[:, None] + srv[:, None] * z[3]
-        del z
+        v_r = np.where(rv_missing, 0.0, rv[idx])[:, None] + drawn[3]
+        del z, drawn
         with np.errstate(divide="ignore", invalid="ignore"):
             k = np.where(
                 given[:, None],

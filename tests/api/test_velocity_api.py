@@ -135,6 +135,34 @@ def test_uncertainties_and_correlation_flag(client):
     assert s2["u_error_km_s"] is None and "uncertainties_missing" in s2["flags"]
 
 
+def test_radial_velocity_correlations_are_used_and_checked(client):
+    # correlation_parallax_radial_velocity and the proper-motion ones were accepted and
+    # ignored; the answer must equal the core's with them (itself checked against astropy
+    # draws in tests/core/test_kinematics.py) and differ from the answer without them.
+    star = dict(STAR, parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.2,
+                pm_dec_error_mas_yr=0.15, radial_velocity_error_km_s=0.8,
+                correlation_parallax_radial_velocity=0.8,
+                correlation_pm_ra_radial_velocity=0.5)  # fmt: skip
+    s = post(client, {"stars": [star]}).json["stars"][0]
+    ref = core.space_velocity(
+        *(star[k] for k in ("ra_deg", "dec_deg", "parallax_mas", "pm_ra_cosdec_mas_yr",
+                            "pm_dec_mas_yr", "radial_velocity_km_s")),
+        parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.15,
+        radial_velocity_error_km_s=0.8, parallax_radial_velocity_corr=0.8,
+        pm_ra_cosdec_radial_velocity_corr=0.5,
+    )  # fmt: skip
+    tol = 1e-12  # km/s
+    assert abs(s["u_error_km_s"] - ref.uvw_error_km_s[0]) < tol
+    assert abs(s["total_velocity_error_km_s"] - ref.total_velocity_error_km_s) < tol
+    without = {k: v for k, v in star.items() if not k.endswith("radial_velocity")}
+    s0 = post(client, {"stars": [without]}).json["stars"][0]
+    assert abs(s0["u_error_km_s"] - s["u_error_km_s"]) > 0.01  # km/s
+    # Impossible together: parallax-pm_ra 0.9 but the two with the radial velocity opposed.
+    bad = dict(star, correlation_parallax_pm_ra=0.9, correlation_parallax_radial_velocity=0.9,
+               correlation_pm_ra_radial_velocity=-0.9)  # fmt: skip
+    assert_problem(post(client, {"stars": [bad]}), 422, "stars[0].correlation_*")
+
+
 def test_monte_carlo_auto_is_seeded_and_flagged(client):
     stars = [dict(STAR, parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.1,
                   pm_dec_error_mas_yr=0.1, radial_velocity_error_km_s=1.0)]  # fmt: skip
