@@ -1034,6 +1034,8 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     s_dd = b * (b * c_pp - 2.0 * k_c_pd) + kk * (sig_d * sig_d)
     s_ad = a * (b * c_pp - k_c_pd) - b * k_c_pa + kk * (rho_ad * sig_a * sig_d)
     s_rr = sig_rv * sig_rv
+    if rv_missing.any():  # no U, V, W: no errors of them either (an error given alone)
+        s_rr = np.where(rv_missing, np.nan, s_rr)
     # Correlations of the radial velocity with the parallax and proper motions (zero unless
     # given: the terms are then skipped).
     rv_corr = bool(np.any(rho_pr) or np.any(rho_ar) or np.any(rho_dr))

@@ -634,6 +634,28 @@ def test_monte_carlo_keeps_transverse_error_when_radial_velocity_error_is_missin
     assert abs(r.transverse_velocity_error_km_s / ((vt_hi - vt_lo) / 2) - 1) < 0.03  # fraction
 
 
+@pytest.mark.parametrize("method", ["linear", "monte_carlo"])
+def test_no_uvw_errors_without_a_radial_velocity_even_with_its_error(method):
+    # U, V, W are unknown without a radial velocity; an error given for the missing radial
+    # velocity used to give them standard errors and correlations anyway on the linear
+    # path (the Monte Carlo path blanked them). Errors of unknown values are unknown too
+    # (DEVELOPERS.md: unknown is NaN); the transverse velocity keeps its error.
+    r = space_velocity(
+        250.1, 36.4, 40.0, -150.0, 220.0, np.nan, parallax_error_mas=0.1,
+        pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.15,
+        radial_velocity_error_km_s=0.8, uncertainty_method=method, seed=1,
+    )  # fmt: skip
+    assert np.isnan(r.uvw_km_s).all()
+    assert np.isnan(r.uvw_covariance_km2_s2).all()
+    assert np.isnan(r.uvw_interval_km_s).all()
+    assert r.transverse_velocity_error_km_s > 0.0
+    g = galactic_velocity(
+        250.1, 36.4, 40.0, -150.0, 220.0, np.nan, parallax_error_mas=0.1,
+        pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.15, radial_velocity_error_km_s=0.8,
+    )  # fmt: skip
+    assert np.isnan(g.uvw_covariance_km2_s2).all()
+
+
 def test_radial_velocity_correlations_enter_the_uncertainties():
     # A covariance propagated to another epoch correlates the radial velocity with the
     # parallax and proper motions (perspective acceleration); those terms used to be left
