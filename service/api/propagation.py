@@ -142,7 +142,9 @@ _STAR_FIELDS = {
 for _i, _j in CORRELATION_PAIRS:
     _STAR_FIELDS[f"correlation_{PARAMS[_i]}_{PARAMS[_j]}"] = _num(
         f"Correlation coefficient of the errors of {PARAMS[_i]} and {PARAMS[_j]}. Null or "
-        "absent: not given (taken as 0, and flagged when standard errors are given).",
+        "absent: taken as 0. A star with standard errors but none of the ten correlations "
+        "among ra, dec, parallax, pm_ra and pm_dec is flagged correlations_assumed_zero; "
+        "with some of them given, the others are taken as 0 without a flag.",
         lo=-1.0,
         hi=1.0,
     )

@@ -408,6 +408,18 @@ def test_correlations_with_the_radial_velocity_alone_are_checked(client):
     assert "astrometric" in r.json["flag_meanings"]["correlations_assumed_zero"]
 
 
+def test_correlation_description_says_when_missing_ones_are_flagged(client):
+    # The field description said a correlation left out is "flagged when standard errors
+    # are given"; the flag is set only where none of the ten astrometric ones is given.
+    star = dict(STAR, ra_error_mas=0.1, dec_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.1,
+                pm_dec_error_mas_yr=0.1, correlation_ra_dec=0.3)  # fmt: skip
+    r = post(client, dict(BASE, stars=[star]))
+    assert "correlations_assumed_zero" not in r.json["stars"][0]["flags"]
+    doc = client.get("/openapi.json").json
+    text = doc["components"]["schemas"]["StarAstrometry"]["properties"]["correlation_ra_pm_ra"]
+    assert "without a flag" in text["description"]
+
+
 def test_unparseable_epoch(client):
     r = post(client, dict(BASE, stars=[STAR], target_epochs=["J2020", "yesterday"]))
     assert_problem(r, 422, "target_epochs[1]")
