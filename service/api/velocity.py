@@ -133,7 +133,8 @@ _VELOCITY_STAR_FIELDS = {
     ),
     "parallax_error_mas": _num("Standard error of the parallax, mas.", lo=0.0, hi=MAX_ABS_MAS),
     "distance_error_pc": _num(
-        "Standard error of distance_pc, pc (uncorrelated with the proper motion).",
+        "Standard error of distance_pc, pc (taken as uncorrelated with the proper motions and "
+        "the radial velocity: the parallax correlations do not apply to it).",
         lo=0.0,
         hi=MAX_DISTANCE_PC,
     ),

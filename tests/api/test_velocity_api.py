@@ -157,6 +157,12 @@ def test_radial_velocity_correlations_are_used_and_checked(client):
     without = {k: v for k, v in star.items() if not k.endswith("radial_velocity")}
     s0 = post(client, {"stars": [without]}).json["stars"][0]
     assert abs(s0["u_error_km_s"] - s["u_error_km_s"]) > 0.01  # km/s
+    # A distance given in place of the parallax has none of the parallax's correlations.
+    dist = dict(star, distance_pc=50.0, distance_error_pc=0.25)
+    d1 = post(client, {"stars": [dist]}).json["stars"][0]
+    dist["correlation_parallax_radial_velocity"] = 0.0
+    d0 = post(client, {"stars": [dist]}).json["stars"][0]
+    assert d1["u_error_km_s"] == d0["u_error_km_s"]
     # Impossible together: parallax-pm_ra 0.9 but the two with the radial velocity opposed.
     bad = dict(star, correlation_parallax_pm_ra=0.9, correlation_parallax_radial_velocity=0.9,
                correlation_pm_ra_radial_velocity=-0.9)  # fmt: skip
