@@ -506,6 +506,10 @@ def test_velocity_job_equals_kinematics_core_bitwise(tmp_path):
     cat["e_RV"] = np.where(np.isnan(cat["RV"]), np.nan, rng.uniform(0.1, 3.0, n))
     cat["plx_pmra_corr"] = rng.uniform(-0.5, 0.5, n)
     cat.loc[::10, "plx_pmra_corr"] = np.nan  # not given: taken as 0, as the HTTP API does
+    # Correlated with the radial velocity (as a covariance propagated to another epoch is):
+    # these columns used to be no field of the job, so a catalogue's values were left out.
+    cat["plx_rv_corr"] = rng.uniform(-0.5, 0.5, n)
+    cat.loc[:49_999, "plx_rv_corr"] = np.nan  # whole partitions without, as the API's blocks
     write_parquet(cat, tmp_path / "cat.parquet", row_group_rows=20_000)
     columns = {
         **MAPPING,
@@ -514,6 +518,7 @@ def test_velocity_job_equals_kinematics_core_bitwise(tmp_path):
         "pm_dec_error_mas_yr": "e_pmDE",
         "radial_velocity_error_km_s": "e_RV",
         "correlation_parallax_pm_ra": "plx_pmra_corr",
+        "correlation_parallax_radial_velocity": "plx_rv_corr",
     }
     summary = batch.run_batch(
         "velocity",
@@ -537,6 +542,7 @@ def test_velocity_job_equals_kinematics_core_bitwise(tmp_path):
         parallax_pm_dec_corr=np.zeros(n),
         pm_ra_cosdec_pm_dec_corr=np.zeros(n),
         radial_velocity_error_km_s=cat["e_RV"].to_numpy(),
+        parallax_radial_velocity_corr=np.nan_to_num(cat["plx_rv_corr"].to_numpy(), nan=0.0),
         distance_error_pc=nan,
         epoch_jyear=CATALOGUE_EPOCH,
         relative_to_lsr=True,
@@ -564,6 +570,8 @@ def test_velocity_job_equals_kinematics_core_bitwise(tmp_path):
         "distance_error_pc",
         "correlation_parallax_pm_dec",
         "correlation_pm_ra_pm_dec",
+        "correlation_pm_ra_radial_velocity",
+        "correlation_pm_dec_radial_velocity",
     }
 
 

@@ -258,6 +258,16 @@ _VELOCITY_INPUTS = (
         -1.0,
         1.0,
     ),
+    *(
+        _optional(
+            f"correlation_{name}_radial_velocity",
+            "1",
+            f"correlation of the {name} and radial velocity errors (NaN or absent: 0)",
+            -1.0,
+            1.0,
+        )
+        for name in ("parallax", "pm_ra", "pm_dec")
+    ),
     CATALOGUE_EPOCH_FIELD,
 )
 
@@ -326,6 +336,9 @@ _CORRELATIONS = (
     "correlation_parallax_pm_ra",
     "correlation_parallax_pm_dec",
     "correlation_pm_ra_pm_dec",
+    "correlation_parallax_radial_velocity",
+    "correlation_pm_ra_radial_velocity",
+    "correlation_pm_dec_radial_velocity",
 )
 
 
@@ -346,6 +359,9 @@ def _velocity_compute(inputs: dict, params: dict) -> dict:
         parallax_pm_dec_corr=corr["correlation_parallax_pm_dec"],
         pm_ra_cosdec_pm_dec_corr=corr["correlation_pm_ra_pm_dec"],
         radial_velocity_error_km_s=inputs["radial_velocity_error_km_s"],
+        parallax_radial_velocity_corr=corr["correlation_parallax_radial_velocity"],
+        pm_ra_cosdec_radial_velocity_corr=corr["correlation_pm_ra_radial_velocity"],
+        pm_dec_radial_velocity_corr=corr["correlation_pm_dec_radial_velocity"],
         distance_error_pc=inputs["distance_error_pc"],
         epoch_jyear=catalogue_epoch_values(inputs, params),
         relative_to_lsr=True,
