@@ -89,6 +89,16 @@ def test_probes_on_the_service_endpoints():
     assert {"/health", "/ready", "/metrics"} <= rules
 
 
+def test_liveness_outlasts_the_worker_timeout():
+    """A pod busy with batches answers /health late (it waits for a worker thread); the
+    kubelet must not kill it for that before gunicorn's own worker timeout would have
+    acted on a stuck worker, or queued batches are lost with it."""
+    probe = container()["livenessProbe"]
+    window = probe["periodSeconds"] * (probe["failureThreshold"] - 1) + probe["timeoutSeconds"]
+    timeout_s = int(resources()["ConfigMap"]["data"]["SKYDRIFT_TIMEOUT_S"])
+    assert window > timeout_s
+
+
 def test_resources_and_security_context():
     c = container()
     assert {"cpu", "memory"} <= set(c["resources"]["requests"])
