@@ -681,6 +681,10 @@ def crossings(args):
     shorter than the star's distance from the nearest boundary divided by the fastest it can
     move, so thin slivers of a constellation are not missed. Each crossing is located to
     1e-4 day. The window may reach 100,000 years either side of the catalogue epoch.
+
+    The motion is the standard model of /v1/propagation, without light time: for a star a
+    few parsecs away a crossing tens of thousands of years out can come years earlier or
+    later than by a model with light time (SOFA starpm, astropy's apply_space_motion).
     """
     table = args["stars"]
     if table.size > MAX_CROSSING_STARS:
