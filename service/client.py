@@ -14,10 +14,11 @@ What it does for you:
 * large inputs split into requests of ``batch_size`` stars, the answers joined in order (star
   ``index`` values count from the start of your input, as if sent at once; an epoch given as
   "now" is then read once from this machine's clock, so that every request means one
-  instant); a batch the service refuses for too many results (stars x epochs or instants
-  above its setting SKYDRIFT_MAX_RESULTS, default 2,000,000: a 413 naming it) is sent again
-  as two halves, and the rest of the call in batches of that size, so that ``batch_size``
-  need not be matched to the number of epochs;
+  instant); a batch the service refuses for a limit that fewer stars cure (a 413 naming
+  SKYDRIFT_MAX_STARS, SKYDRIFT_MAX_RESULTS for stars x epochs or instants, default
+  2,000,000, or SKYDRIFT_MAX_BODY_BYTES) is sent again in smaller batches (the star limit
+  it names, or halves), and the rest of the call in batches of that size, so that
+  ``batch_size`` need not be matched to the service's limits or the number of epochs;
 * errors raised as :class:`SkydriftError` with the problem details (status, title, detail
   and the list of offending fields).
 
@@ -195,18 +196,37 @@ JSON_ANSWERS = ("application/json", "application/geo+json")
 
 #: The service setting that limits stars x epochs (or instants) per request.
 RESULTS_LIMIT_SETTING = "SKYDRIFT_MAX_RESULTS"
+#: The service setting that limits the stars of one request.
+STARS_LIMIT_SETTING = "SKYDRIFT_MAX_STARS"
+#: The service setting that limits the size of a request body.
+BODY_LIMIT_SETTING = "SKYDRIFT_MAX_BODY_BYTES"
 
 
-def _over_results_limit(exc: SkydriftError) -> bool:
-    """True for a 413 that names SKYDRIFT_MAX_RESULTS: the request asked for more stars x
-    epochs (or instants) than the service computes at once, which fewer stars cure.
+def _smaller_batch(exc: SkydriftError, sent: int) -> int | None:
+    """The batch size to try next after ``exc`` refused a batch of ``sent`` stars, or None
+    when fewer stars cannot cure the refusal (it is then raised as it is).
 
-    The service does not state this limit before it is hit (it may differ between the pods
-    behind one address), so the client learns it from the refusal: the batch is sent again
-    as two halves, in order, and the rest of the call uses the smaller size. A 413 for
-    anything else (body size, star count, epoch count) is raised as it is.
+    Three limits of the service are cured by fewer stars per request, and it does not state
+    them in advance (they may differ between the pods behind one address), so the client
+    learns them from the refusal (413): too many stars (SKYDRIFT_MAX_STARS; the message
+    gives the limit, which becomes the batch size), too many stars x epochs or instants
+    (SKYDRIFT_MAX_RESULTS) or too large a body (SKYDRIFT_MAX_BODY_BYTES; both halve the
+    batch). The rest of the call uses the smaller size. Anything else, such as too many
+    epochs (SKYDRIFT_MAX_EPOCHS), is raised: no number of stars cures it.
     """
-    return exc.status == 413 and any(RESULTS_LIMIT_SETTING in e.message for e in exc.errors)
+    if exc.status != 413 or sent <= 1:
+        return None
+    for e in exc.errors:
+        if STARS_LIMIT_SETTING in e.message:
+            limit = re.search(r"the limit is (\d+)", e.message)
+            if limit and 1 <= int(limit.group(1)) < sent:
+                return int(limit.group(1))
+            return (sent + 1) // 2
+        if RESULTS_LIMIT_SETTING in e.message:
+            return (sent + 1) // 2
+    if BODY_LIMIT_SETTING in (exc.detail or ""):
+        return (sent + 1) // 2
+    return None
 
 
 def _whole(value) -> int:
@@ -349,8 +369,10 @@ class Client:
         ``max_retry_after_s``).
     batch_size : int
         Most stars sent in one request; larger inputs are split and the answers joined.
-        Fewer when the service refuses a batch for its stars x epochs (SKYDRIFT_MAX_RESULTS):
-        the batch is halved until it is accepted (one wasted request per halving).
+        Fewer when the service refuses a batch for a limit that fewer stars cure: its star
+        limit (SKYDRIFT_MAX_STARS, taken as the batch size), its stars x epochs
+        (SKYDRIFT_MAX_RESULTS) or its body size (SKYDRIFT_MAX_BODY_BYTES), which halve the
+        batch until it is accepted (one wasted request per step).
     token : str, optional
         Bearer token for a service that requires one (sent as ``Authorization: Bearer``).
     headers : dict, optional
@@ -488,9 +510,9 @@ class Client:
     ) -> dict:
         """POST a body whose ``table`` member is split into batches; join the answers.
 
-        A batch refused for too many stars x epochs (413 naming SKYDRIFT_MAX_RESULTS) is
-        sent again as two halves, and the rest of the call goes in batches of that size
-        (:func:`_fewer_stars`).
+        A batch refused for a limit that fewer stars cure (413 naming SKYDRIFT_MAX_STARS,
+        SKYDRIFT_MAX_RESULTS or SKYDRIFT_MAX_BODY_BYTES) is sent again in smaller batches,
+        and the rest of the call goes in batches of that size (:func:`_smaller_batch`).
         """
         stars = body[table]
         n = _count(stars)
@@ -507,10 +529,11 @@ class Client:
             try:
                 parts.append(self.post(path, part))
             except SkydriftError as exc:
-                if _over_results_limit(exc) and stop - start > 1:
+                smaller = _smaller_batch(exc, stop - start)
+                if smaller is not None:
                     if not several:  # one request was to be sent; now several: one "now"
                         body, several = pin_now(body, _now_text()), True
-                    size = (stop - start + 1) // 2
+                    size = smaller
                     continue
                 exc.errors = [_shift_index(e, table, start) for e in exc.errors]
                 raise
@@ -598,8 +621,8 @@ class Client:
     ) -> str:
         """POST a CSV star table (options as query parameters); return the CSV answer.
 
-        The table is sent in batches of ``batch_size`` rows (fewer after a 413 naming
-        SKYDRIFT_MAX_RESULTS, as in :meth:`post_batched`); the answers are joined with the
+        The table is sent in batches of ``batch_size`` rows (fewer after a 413 that fewer
+        stars cure, as in :meth:`post_batched`); the answers are joined with the
         ``index`` column counted from the first star, and line numbers in errors refer to
         ``csv_text`` itself.
         """
@@ -629,11 +652,12 @@ class Client:
                     expect=("text/csv",),
                 )
             except SkydriftError as exc:
-                if _over_results_limit(exc) and len(chunk) > 1:
+                smaller = _smaller_batch(exc, len(chunk))
+                if smaller is not None:
                     if not several:  # one request was to be sent; now several: one "now"
                         params, several = pin_now(params or {}, _now_text()), True
                         query = self._query_that_fits(path, params)
-                    size = (len(chunk) + 1) // 2
+                    size = smaller
                     continue
                 exc.errors = relocate_lines(exc.errors, buf.getvalue(), chunk_lines)
                 raise

@@ -696,6 +696,40 @@ def test_batches_shrink_to_the_services_results_limit(small_results_limit, demo_
         assert [int(r["index"]) for r in rows] == sorted(int(r["index"]) for r in rows)
 
 
+@pytest.fixture(scope="module")
+def small_star_and_body_limits():
+    from tests.clients.conftest import start_service, stop_service
+
+    url, proc = start_service({"SKYDRIFT_MAX_STARS": "7", "SKYDRIFT_MAX_BODY_BYTES": "2000"})
+    yield url
+    stop_service(proc)
+
+
+def test_batches_shrink_to_the_services_star_and_body_limits(
+    small_star_and_body_limits, demo_catalogue
+):
+    """A pool that takes 7 stars and 2,000 bytes per request (an interactive pool's limits
+    are set low on purpose): the 30 demo stars in one batch were refused (413 naming
+    SKYDRIFT_MAX_BODY_BYTES, then SKYDRIFT_MAX_STARS) and the call failed. The client halves
+    the batch on the body size and takes the star limit the refusal names as its size; the
+    answers equal those of 7-star batches from the start, stars in order, none lost."""
+    url = small_star_and_body_limits
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]]
+    small = Client(url, batch_size=7)
+    expected = small.propagate(stars, catalogue_epoch="J2016.0", target_epochs=["J2026.0"])
+    with Client(url) as sky:
+        sizes, post = [], sky.post
+        sky.post = lambda path, body: sizes.append(len(body["stars"])) or post(path, body)
+        got = sky.propagate(stars, catalogue_epoch="J2016.0", target_epochs=["J2026.0"])
+        assert got == expected
+        assert [s["index"] for s in got["stars"]] == list(range(30))
+        assert sizes[0] == 30 and sizes[-5:] == [7, 7, 7, 7, 2]
+        text = (DEMO / "catalogue.csv").read_text()
+        assert sky.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=["J2026.0"]) == (
+            small.propagate_csv(text, catalogue_epoch="J2016.0", target_epochs=["J2026.0"])
+        )
+
+
 def test_an_epoch_limit_is_not_taken_for_a_results_limit(small_results_limit):
     """More epochs than SKYDRIFT_MAX_EPOCHS: no batch of stars can cure it, so it is raised
     at once, not after halving the batch down to one star."""
