@@ -75,7 +75,9 @@ class TrackChartRequestSchema(ma.Schema):
         strict=True,
         load_default=6,
         validate=ma.validate.Range(min=2, max=50),
-        metadata={"description": "Epochs marked on each track, evenly spaced, ends included."},
+        metadata={
+            "description": "Number of epochs marked on each track, evenly spaced, ends included."
+        },
     )
     boundaries = StrictBoolean(
         load_default=True,

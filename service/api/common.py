@@ -254,11 +254,50 @@ def always_present(schema=None, *, unless: tuple[str, ...] = ()):
     return mark if schema is None else mark(schema)
 
 
+#: The ``index`` of a per-star answer or warning.
+INDEX_DESCRIPTION = "Position of the star in the request, counted from 0."
+
+#: The ``id`` of a per-star answer or warning.
+ID_DESCRIPTION = "Your identifier for the star, echoed; null where the star has none."
+
+#: The answers' ``star_count``.
+STAR_COUNT_DESCRIPTION = "Number of stars in the request (and in the answer)."
+
+#: The answers' ``layout``.
+LAYOUT_DESCRIPTION = (
+    "records (the answer's stars, one object per star) or columns (the answer's columns, "
+    "one array per quantity): the request's layout option, else the layout of its stars."
+)
+
+#: The answers' ``units``.
+UNITS_DESCRIPTION = (
+    "Unit of each quantity of the answer, by member name (a name ending in * covers every "
+    "name it begins)."
+)
+
+#: The answers' ``flag_meanings``.
+FLAG_MEANINGS_DESCRIPTION = (
+    "Meaning of each flag that some star of this answer carries, by flag name (flags no "
+    "star carries are left out)."
+)
+
+#: Each star's ``flags``.
+FLAGS_DESCRIPTION = (
+    "Names of what was missing, assumed or replaced for this star (meanings in "
+    "flag_meanings); empty when nothing was."
+)
+
+
 @always_present
 class WarningSchema(ma.Schema):
-    index = ma.fields.Integer()
-    id = ma.fields.Raw(allow_none=True)
-    message = ma.fields.String()
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    message = ma.fields.String(
+        metadata={
+            "description": "What looks wrong with the star, in words (and what to check, "
+            "for a likely unit mistake)."
+        }
+    )
 
 
 #: Most warnings of one kind in one answer (every star carries its flags all the same).
@@ -557,7 +596,7 @@ def _epochs_out(values, utc_jd=None) -> list[dict]:
 @always_present
 class FieldErrorSchema(ma.Schema):
     field = ma.fields.String(metadata={"description": "Path of the offending value."})
-    message = ma.fields.String()
+    message = ma.fields.String(metadata={"description": "What is wrong with it."})
 
 
 @always_present(unless=("detail", "errors", "request_id"))
@@ -565,8 +604,24 @@ class ProblemSchema(ma.Schema):
     """RFC 9457 problem details."""
 
     type = ma.fields.String(metadata={"description": "Problem type URI (about:blank)."})
-    title = ma.fields.String()
-    status = ma.fields.Integer()
-    detail = ma.fields.String()
-    errors = ma.fields.List(ma.fields.Nested(FieldErrorSchema))
-    request_id = ma.fields.String()
+    title = ma.fields.String(
+        metadata={"description": "Short summary: the HTTP reason phrase of the status (RFC 9110)."}
+    )
+    status = ma.fields.Integer(metadata={"description": "HTTP status code of the answer."})
+    detail = ma.fields.String(
+        metadata={"description": "What went wrong in this request; absent when the title says it."}
+    )
+    errors = ma.fields.List(
+        ma.fields.Nested(FieldErrorSchema),
+        metadata={
+            "description": "The offending values, one entry each; a long list is cut short "
+            "(to at most 100 entries, and a last one with field '(more)' where the rest are "
+            "counted). Absent when the problem is not with particular fields."
+        },
+    )
+    request_id = ma.fields.String(
+        metadata={
+            "description": "Identifier of the request in the service's logs: the "
+            "X-Request-ID header sent, or one made up for it."
+        }
+    )

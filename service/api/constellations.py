@@ -13,6 +13,13 @@ from ..core import frames as core_frames
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import (
+    FLAG_MEANINGS_DESCRIPTION,
+    FLAGS_DESCRIPTION,
+    ID_DESCRIPTION,
+    INDEX_DESCRIPTION,
+    LAYOUT_DESCRIPTION,
+    STAR_COUNT_DESCRIPTION,
+    UNITS_DESCRIPTION,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -307,39 +314,80 @@ class ConstellationSchema(ma.Schema):
 
 @always_present
 class ConstellationListSchema(ma.Schema):
-    count = ma.fields.Integer()
-    constellations = ma.fields.List(ma.fields.Nested(ConstellationSchema))
+    count = ma.fields.Integer(metadata={"description": "Number of constellations (88)."})
+    constellations = ma.fields.List(
+        ma.fields.Nested(ConstellationSchema),
+        metadata={"description": "One entry per constellation, in alphabetical order of name."},
+    )
 
 
 @always_present(unless=("margin_arcsec", "across", "near_boundary"))
 class MembershipSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": "Position of the star in the request."})
-    id = ma.fields.Raw(allow_none=True)
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
     constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
     name = ma.fields.String(metadata={"description": "IAU name."})
     constellation_fk4 = ma.fields.String(metadata={"description": "Answer of the fk4 reduction."})
     constellation_fk5 = ma.fields.String(metadata={"description": "Answer of the fk5 reduction."})
-    reductions_disagree = ma.fields.Boolean()
+    reductions_disagree = ma.fields.Boolean(
+        metadata={
+            "description": "True where the fk4 and fk5 reductions give different "
+            "constellations (the star is then flagged reductions_disagree)."
+        }
+    )
     margin_arcsec = ma.fields.Float(
         metadata={"description": "Margins endpoint: distance to the nearest boundary, arcsec."}
     )
     across = ma.fields.String(
         metadata={"description": "Margins endpoint: constellation across that boundary."}
     )
-    near_boundary = ma.fields.Boolean(metadata={"description": "Margins endpoint."})
-    ra_b1875_deg = ma.fields.Float()
-    dec_b1875_deg = ma.fields.Float()
-    flags = ma.fields.List(ma.fields.String())
+    near_boundary = ma.fields.Boolean(
+        metadata={
+            "description": "Margins endpoint: true where the star is flagged near_boundary "
+            "(within near_boundary_arcsec of a boundary, or within the table's rounding of "
+            "one)."
+        }
+    )
+    ra_b1875_deg = ma.fields.Float(
+        metadata={
+            "description": "Right ascension of the position located (at epoch), reduced to "
+            "the equinox B1875.0 of the boundaries by the chosen reduction, degrees."
+        }
+    )
+    dec_b1875_deg = ma.fields.Float(
+        metadata={
+            "description": "Declination of the position located (at epoch), reduced to the "
+            "equinox B1875.0 of the boundaries by the chosen reduction, degrees."
+        }
+    )
+    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
 
 
 @always_present(unless=("stars", "columns"))
 class LookupResponseSchema(ma.Schema):
-    reduction = ma.fields.String()
-    epoch = ma.fields.Nested(EpochOutSchema, allow_none=True)
-    star_count = ma.fields.Integer()
-    layout = ma.fields.String()
-    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    reduction = ma.fields.String(
+        metadata={"description": "The reduction to B1875.0 used: fk4, fk5 or fk5_iau1976."}
+    )
+    epoch = ma.fields.Nested(
+        EpochOutSchema,
+        allow_none=True,
+        metadata={
+            "description": "Epoch of the positions located: epoch, else catalogue_epoch; "
+            "null when the request gave neither (the positions as given)."
+        },
+    )
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
+    units = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
     stars = ma.fields.List(
         ma.fields.Nested(MembershipSchema),
         metadata={"description": "layout=records: one entry per star."},
@@ -353,33 +401,61 @@ class LookupResponseSchema(ma.Schema):
 
 @always_present
 class CrossingSchema(ma.Schema):
-    epoch = ma.fields.Nested(EpochOutSchema)
+    epoch = ma.fields.Nested(
+        EpochOutSchema,
+        metadata={"description": "When the star crosses the boundary (to epoch_precision_days)."},
+    )
     from_constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
     to_constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
 
 
 @always_present
 class StarCrossingsSchema(ma.Schema):
-    index = ma.fields.Integer()
-    id = ma.fields.Raw(allow_none=True)
-    constellation_at_start = ma.fields.String()
-    constellation_at_end = ma.fields.String()
-    crossings = ma.fields.List(ma.fields.Nested(CrossingSchema))
-    flags = ma.fields.List(ma.fields.String())
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    constellation_at_start = ma.fields.String(
+        metadata={"description": "IAU abbreviation of the constellation at start."}
+    )
+    constellation_at_end = ma.fields.String(
+        metadata={"description": "IAU abbreviation of the constellation at end."}
+    )
+    crossings = ma.fields.List(
+        ma.fields.Nested(CrossingSchema),
+        metadata={
+            "description": "Each boundary crossing within the window, in time order; empty "
+            "when the star stays in one constellation."
+        },
+    )
+    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
 
 
 @always_present
 class CrossingsResponseSchema(ma.Schema):
-    reduction = ma.fields.String()
-    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
-    start = ma.fields.Nested(EpochOutSchema)
-    end = ma.fields.Nested(EpochOutSchema)
+    reduction = ma.fields.String(
+        metadata={"description": "The reduction to B1875.0 used: fk4, fk5 or fk5_iau1976."}
+    )
+    catalogue_epoch = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "Epoch of the given astrometry."}
+    )
+    start = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "Start of the time window searched."}
+    )
+    end = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "End of the time window searched."}
+    )
     epoch_precision_days = ma.fields.Float(
         metadata={"description": "Crossing epochs are located to within this, days."}
     )
-    star_count = ma.fields.Integer()
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    stars = ma.fields.List(ma.fields.Nested(StarCrossingsSchema))
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
+    stars = ma.fields.List(
+        ma.fields.Nested(StarCrossingsSchema),
+        metadata={"description": "One entry per star, in the order of the request."},
+    )
 
 
 @always_present
@@ -407,7 +483,10 @@ class GeoJsonFeatureSchema(ma.Schema):
 @always_present
 class GeoJsonCollectionSchema(ma.Schema):
     type = ma.fields.String(metadata={"description": "FeatureCollection (RFC 7946)."})
-    features = ma.fields.List(ma.fields.Nested(GeoJsonFeatureSchema))
+    features = ma.fields.List(
+        ma.fields.Nested(GeoJsonFeatureSchema),
+        metadata={"description": "One Feature per constellation (88)."},
+    )
 
 
 # ------------------------------------------------------------------------------ helpers

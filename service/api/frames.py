@@ -13,6 +13,12 @@ from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
 from .common import (
+    FLAG_MEANINGS_DESCRIPTION,
+    FLAGS_DESCRIPTION,
+    ID_DESCRIPTION,
+    INDEX_DESCRIPTION,
+    STAR_COUNT_DESCRIPTION,
+    UNITS_DESCRIPTION,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -204,12 +210,28 @@ class FramesRequestSchema(ma.Schema):
         return bound_epoch_list(data, "target_epochs")
 
 
+#: What each quantity of an answer is, and when it is null (the units are those of UNITS).
+_AT_EPOCH_MEANINGS = {
+    "ra_deg": ("Longitude at this epoch in the output frame", ""),
+    "dec_deg": ("Latitude at this epoch in the output frame", ""),
+    "parallax_mas": ("Parallax at this epoch", " Null where the star came without one."),
+    "pm_ra_cosdec_mas_yr": ("Proper motion at this epoch in the output frame", ""),
+    "pm_dec_mas_yr": ("Proper motion at this epoch in the output frame", ""),
+    "radial_velocity_km_s": (
+        "Radial velocity at this epoch, positive receding",
+        " Null where the star came without one.",
+    ),
+}
+
 #: The astrometry of one star at one target epoch in the output frame (null: unknown).
 FrameAtEpochSchema = always_present(
     ma.Schema.from_dict(
         {
-            name: ma.fields.Float(allow_none=True, metadata={"description": f"{UNITS[name]}."})
-            for name in VALUE_FIELDS
+            name: ma.fields.Float(
+                allow_none=True,
+                metadata={"description": f"{meaning}, {UNITS[name]}.{null}"},
+            )
+            for name, (meaning, null) in _AT_EPOCH_MEANINGS.items()
         },
         name="FrameAtEpochSchema",
     )
@@ -218,9 +240,9 @@ FrameAtEpochSchema = always_present(
 
 @always_present
 class FrameResultSchema(ma.Schema):
-    index = ma.fields.Integer()
-    id = ma.fields.Raw(allow_none=True)
-    flags = ma.fields.List(ma.fields.String())
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
     at_epochs = ma.fields.List(
         ma.fields.Nested(FrameAtEpochSchema),
         metadata={"description": "One entry per target epoch, in the order of epochs."},
@@ -229,15 +251,45 @@ class FrameResultSchema(ma.Schema):
 
 @always_present
 class FramesResponseSchema(ma.Schema):
-    from_frame = ma.fields.String()
-    to_frame = ma.fields.String()
-    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
-    epochs = ma.fields.List(ma.fields.Nested(EpochOutSchema))
-    star_count = ma.fields.Integer()
-    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    methods = ma.fields.List(ma.fields.String())
-    stars = ma.fields.List(ma.fields.Nested(FrameResultSchema))
+    from_frame = ma.fields.String(
+        metadata={
+            "description": "The input frame, with its equinox where it has one: e.g. 'FK4 B1950.0'."
+        }
+    )
+    to_frame = ma.fields.String(
+        metadata={
+            "description": "The output frame, with its equinox where it has one: e.g. 'ICRS'."
+        }
+    )
+    catalogue_epoch = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "Epoch of the given positions."}
+    )
+    epochs = ma.fields.List(
+        ma.fields.Nested(EpochOutSchema),
+        metadata={
+            "description": "Epochs of the output, in order: target_epochs, else the "
+            "catalogue epoch alone."
+        },
+    )
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    units = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
+    methods = ma.fields.List(
+        ma.fields.String(),
+        metadata={"description": "How the conversions are made, with their sources."},
+    )
+    stars = ma.fields.List(
+        ma.fields.Nested(FrameResultSchema),
+        metadata={"description": "One entry per star, in the order of the request."},
+    )
 
 
 FLAG_MEANINGS = {

@@ -14,19 +14,28 @@ blp = Blueprint("health", __name__, description="Liveness and readiness of the s
 @always_present
 class HealthSchema(ma.Schema):
     status = ma.fields.String(metadata={"description": "Always 'ok' while the process runs."})
-    version = ma.fields.String()
+    version = ma.fields.String(metadata={"description": "Version of the service."})
 
 
 @always_present
 class CheckSchema(ma.Schema):
-    ok = ma.fields.Boolean()
-    detail = ma.fields.String()
+    ok = ma.fields.Boolean(metadata={"description": "True where this part is usable."})
+    detail = ma.fields.String(
+        metadata={"description": "What was checked and found (the table in use, or the fault)."}
+    )
 
 
 @always_present
 class ReadySchema(ma.Schema):
     status = ma.fields.String(metadata={"description": "'ready' or 'degraded'."})
-    checks = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.Nested(CheckSchema))
+    checks = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.Nested(CheckSchema),
+        metadata={
+            "description": "One check per part, by name (configuration, "
+            "constellation_boundaries, earth_orientation)."
+        },
+    )
 
 
 @blp.route("/health")

@@ -23,7 +23,12 @@ from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from .common import (
+    FLAG_MEANINGS_DESCRIPTION,
+    ID_DESCRIPTION,
+    INDEX_DESCRIPTION,
     PROPAGATION_WARNINGS,
+    STAR_COUNT_DESCRIPTION,
+    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -260,7 +265,7 @@ class AtmosphereSchema(ma.Schema):
         error="must be between {min:g} and {max:g} degrees Celsius (not kelvin: 280 K is 6.85 C)",
     )
     relative_humidity = _num(
-        "Relative humidity, 0 to 1. Null: 0.5.",
+        "Relative humidity, a dimensionless fraction, 0 to 1. Null: 0.5.",
         lo=0.0,
         hi=1.0,
         error="must be between 0 and 1, a fraction (not a percentage: 55 % is 0.55)",
@@ -389,7 +394,9 @@ class RefractionOutSchema(ma.Schema):
     pressure_hpa = _out(ma.fields.Float, "Air pressure used, hPa (0: refraction off).")
     temperature_c = _out(ma.fields.Float, "Air temperature used, degrees Celsius.")
     temperature_source = _out(ma.fields.String, "given or standard_atmosphere.")
-    relative_humidity = _out(ma.fields.Float, "Relative humidity used, 0 to 1.")
+    relative_humidity = _out(
+        ma.fields.Float, "Relative humidity used, a dimensionless fraction, 0 to 1."
+    )
     wavelength_um = _out(ma.fields.Float, "Effective wavelength used, micrometres.")
     model = _out(ma.fields.String, "Refraction model.")
 
@@ -405,10 +412,25 @@ class LimitsOutSchema(ma.Schema):
 
 @always_present
 class InstantOutSchema(ma.Schema):
-    epoch = ma.fields.Nested(EpochOutSchema)
-    utc_jd = ma.fields.List(ma.fields.Float(), metadata={"description": "UTC two-part JD."})
-    earth_orientation = ma.fields.Nested(EarthOrientationOutSchema)
-    sun = ma.fields.Nested(SunOutSchema)
+    epoch = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "The instant, as an epoch (TDB) and in UTC."}
+    )
+    utc_jd = ma.fields.List(
+        ma.fields.Float(),
+        metadata={
+            "description": "The instant in UTC as a two-part Julian date, days: their sum "
+            "is the date (two parts keep the precision one double would lose)."
+        },
+    )
+    earth_orientation = ma.fields.Nested(
+        EarthOrientationOutSchema,
+        metadata={
+            "description": "UT1-UTC and polar motion used at this instant, and their source."
+        },
+    )
+    sun = ma.fields.Nested(
+        SunOutSchema, metadata={"description": "The Sun seen from the site at this instant."}
+    )
 
 
 #: The place of one star at one instant (null: not finite, e.g. airmass below the horizon).
@@ -430,8 +452,8 @@ ObservedPlaceSchema = always_present(
 
 @always_present
 class ObservedStarSchema(ma.Schema):
-    index = ma.fields.Integer()
-    id = ma.fields.Raw(allow_none=True)
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
     at_instants = ma.fields.List(
         ma.fields.Nested(ObservedPlaceSchema),
         metadata={"description": "One entry per instant, in the order of instants."},
@@ -440,17 +462,47 @@ class ObservedStarSchema(ma.Schema):
 
 @always_present
 class ObservedResponseSchema(ma.Schema):
-    advisory = ma.fields.String()
-    site = ma.fields.Nested(SiteOutSchema)
-    refraction = ma.fields.Nested(RefractionOutSchema)
-    limits = ma.fields.Nested(LimitsOutSchema)
-    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
-    input_frame = ma.fields.String()
-    instants = ma.fields.List(ma.fields.Nested(InstantOutSchema))
-    earth_orientation_tables = ma.fields.Dict()
-    star_count = ma.fields.Integer()
-    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    advisory = ma.fields.String(
+        metadata={"description": "What the safety figures are for: information only."}
+    )
+    site = ma.fields.Nested(SiteOutSchema, metadata={"description": "The site used."})
+    refraction = ma.fields.Nested(
+        RefractionOutSchema, metadata={"description": "The air and the refraction model used."}
+    )
+    limits = ma.fields.Nested(
+        LimitsOutSchema,
+        metadata={"description": "The horizon limit and Sun avoidance angle applied (advisory)."},
+    )
+    catalogue_epoch = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "Epoch of the given astrometry."}
+    )
+    input_frame = ma.fields.String(
+        metadata={"description": "Frame of the given astrometry with its equinox, e.g. 'ICRS'."}
+    )
+    instants = ma.fields.List(
+        ma.fields.Nested(InstantOutSchema),
+        metadata={"description": "One entry per instant, in the order of the request."},
+    )
+    earth_orientation_tables = ma.fields.Dict(
+        metadata={
+            "description": "The Earth-orientation and leap-second tables in use: "
+            "primary_table (name), primary_span_mjd (its first and last day, MJD), "
+            "last_measured_mjd (its last measured, not predicted, day), "
+            "leap_seconds_valid_until_mjd; fallback_table and fallback_span_mjd where a "
+            "second table covers instants before the first."
+        }
+    )
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    units = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
     warnings = ma.fields.List(
         ma.fields.Nested(WarningSchema),
         metadata={

@@ -19,7 +19,14 @@ from ..core.flags import (
     present_flag_names,
 )
 from .common import (
+    FLAG_MEANINGS_DESCRIPTION,
+    FLAGS_DESCRIPTION,
+    ID_DESCRIPTION,
+    INDEX_DESCRIPTION,
+    LAYOUT_DESCRIPTION,
     PROPAGATION_WARNINGS,
+    STAR_COUNT_DESCRIPTION,
+    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -141,7 +148,8 @@ _STAR_FIELDS = {
 }
 for _i, _j in CORRELATION_PAIRS:
     _STAR_FIELDS[f"correlation_{PARAMS[_i]}_{PARAMS[_j]}"] = _num(
-        f"Correlation coefficient of the errors of {PARAMS[_i]} and {PARAMS[_j]}. Null or "
+        f"Correlation coefficient of the errors of {PARAMS[_i]} and {PARAMS[_j]}, "
+        f"{UNITS['correlation_*']}. Null or "
         "absent: taken as 0. A star with standard errors but none of the ten correlations "
         "among ra, dec, parallax, pm_ra and pm_dec is flagged correlations_assumed_zero; "
         "with some of them given, the others are taken as 0 without a flag.",
@@ -154,8 +162,8 @@ StarAstrometrySchema = ma.Schema.from_dict(_STAR_FIELDS, name="StarAstrometrySch
 
 
 class EpochRangeSchema(ma.Schema):
-    start = EpochField(required=True)
-    stop = EpochField(required=True)
+    start = EpochField(required=True, metadata={"description": "First target epoch."})
+    stop = EpochField(required=True, metadata={"description": "Last target epoch."})
     count = ma.fields.Integer(
         strict=True,  # 2.5 is refused, not truncated to 2
         required=True,
@@ -228,12 +236,34 @@ class PropagationRequestSchema(ma.Schema):
 
 @always_present
 class AtEpochSchema(ma.Schema):
-    ra_deg = ma.fields.Float()
-    dec_deg = ma.fields.Float()
-    parallax_mas = ma.fields.Float(allow_none=True)
-    pm_ra_cosdec_mas_yr = ma.fields.Float()
-    pm_dec_mas_yr = ma.fields.Float()
-    radial_velocity_km_s = ma.fields.Float(allow_none=True)
+    ra_deg = ma.fields.Float(
+        metadata={"description": "ICRS right ascension at this epoch, degrees."}
+    )
+    dec_deg = ma.fields.Float(metadata={"description": "ICRS declination at this epoch, degrees."})
+    parallax_mas = ma.fields.Float(
+        allow_none=True,
+        metadata={
+            "description": "Parallax at this epoch, mas (a zero or negative parallax given: "
+            "the formal value, flagged parallax_not_positive); null where the star came "
+            "without one."
+        },
+    )
+    pm_ra_cosdec_mas_yr = ma.fields.Float(
+        metadata={
+            "description": "Proper motion in right ascension times cos(dec) at this epoch, mas/yr."
+        }
+    )
+    pm_dec_mas_yr = ma.fields.Float(
+        metadata={"description": "Proper motion in declination at this epoch, mas/yr."}
+    )
+    radial_velocity_km_s = ma.fields.Float(
+        allow_none=True,
+        metadata={
+            "description": "Radial velocity at this epoch, km/s, positive receding; null "
+            "where the star came without one. Without a usable parallax it is the one given, "
+            "unchanged (flagged radial_velocity_unchanged)."
+        },
+    )
     uncertainties = ma.fields.Dict(
         keys=ma.fields.String(),
         values=ma.fields.Float(allow_none=True),
@@ -249,21 +279,42 @@ class AtEpochSchema(ma.Schema):
 
 @always_present
 class StarResultSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": "Position of the star in the request."})
-    id = ma.fields.Raw(allow_none=True)
-    flags = ma.fields.List(ma.fields.String())
-    at_epochs = ma.fields.List(ma.fields.Nested(AtEpochSchema))
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
+    at_epochs = ma.fields.List(
+        ma.fields.Nested(AtEpochSchema),
+        metadata={"description": "One entry per target epoch, in the order of epochs."},
+    )
 
 
 @always_present(unless=("stars", "columns"))
 class PropagationResponseSchema(ma.Schema):
-    model = ma.fields.String()
-    catalogue_epoch = ma.fields.Nested(EpochOutSchema)
-    epochs = ma.fields.List(ma.fields.Nested(EpochOutSchema))
-    star_count = ma.fields.Integer()
-    layout = ma.fields.String()
-    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    model = ma.fields.String(
+        metadata={"description": "The model of the motion used: standard or light_time."}
+    )
+    catalogue_epoch = ma.fields.Nested(
+        EpochOutSchema, metadata={"description": "Epoch of the given astrometry."}
+    )
+    epochs = ma.fields.List(
+        ma.fields.Nested(EpochOutSchema),
+        metadata={
+            "description": "The target epochs, in order: target_epochs as given, or the "
+            "epochs of target_range."
+        },
+    )
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
+    units = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
     warnings = ma.fields.List(
         ma.fields.Nested(WarningSchema),
         metadata={

@@ -24,8 +24,14 @@ from ..core.flags import (
     flag_names,
 )
 from .common import (
+    FLAG_MEANINGS_DESCRIPTION,
+    ID_DESCRIPTION,
+    INDEX_DESCRIPTION,
+    LAYOUT_DESCRIPTION,
     PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
+    STAR_COUNT_DESCRIPTION,
+    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -148,7 +154,7 @@ _VELOCITY_STAR_FIELDS = {
 }
 for _name in _CORRELATION_FIELDS:
     _VELOCITY_STAR_FIELDS[_name] = _num(
-        "Correlation coefficient of the errors named in the field. "
+        "Correlation coefficient of the errors named in the field, dimensionless, -1 to 1. "
         + (
             "Null or absent: taken as 0. A star with standard errors but none of "
             "correlation_parallax_pm_ra, correlation_parallax_pm_dec and "
@@ -236,7 +242,7 @@ class VelocityRequestSchema(ma.Schema):
         load_default=core.MONTE_CARLO_DRAWS_DEFAULT,
         validate=ma.validate.Range(min=100, max=1_000_000),
         metadata={
-            "description": "Draws per star for the Monte Carlo method. At most "
+            "description": "Number of draws per star for the Monte Carlo method. At most "
             f"{MAX_MONTE_CARLO_SAMPLES:,} samples (stars drawn x draws) per request; more is "
             "refused with 413."
         },
@@ -246,7 +252,11 @@ class VelocityRequestSchema(ma.Schema):
         load_default=None,
         allow_none=True,
         validate=ma.validate.Range(min=0, max=2**63 - 1),
-        metadata={"description": "Seed of the Monte Carlo draws, for reproducible answers."},
+        metadata={
+            "description": "Seed of the Monte Carlo draws, a whole number (dimensionless): "
+            "the same seed and request give the same answer. Null or absent: a fresh seed "
+            "each request."
+        },
     )
     low_snr_threshold = StrictFloat(
         load_default=None,
@@ -254,7 +264,8 @@ class VelocityRequestSchema(ma.Schema):
         allow_nan=False,
         validate=ma.validate.Range(min=0.0, max=1e6, min_inclusive=False),
         metadata={
-            "description": "Parallax signal-to-noise below which a star is flagged "
+            "description": "Parallax signal-to-noise (parallax / its standard error, "
+            "dimensionless) below which a star is flagged "
             "parallax_low_snr (1/parallax is then a biased distance). Default (absent or "
             "null): the service's setting SKYDRIFT_LOW_PARALLAX_SNR, 5 (common practice) "
             "unless its operator chose another."
@@ -316,7 +327,8 @@ VELOCITY_OUTPUTS = {
 
 _OUTPUT_DESCRIPTIONS = {
     "distance_pc": "Distance used: distance_pc if given, else 1000/parallax.",
-    "parallax_snr": "Parallax signal-to-noise; null without a parallax error, or where "
+    "parallax_snr": "Parallax signal-to-noise, parallax / its standard error "
+    "(dimensionless); null without a parallax error, or where "
     "distance_pc replaces the parallax.",
     "pm_total_mas_yr": "Total proper motion, mas/yr.",
     "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north; "
@@ -339,9 +351,9 @@ _OUTPUT_DESCRIPTIONS = {
     "u_error_km_s": "Standard error of U, km/s (also of U relative to the LSR).",
     "v_error_km_s": "Standard error of V, km/s.",
     "w_error_km_s": "Standard error of W, km/s.",
-    "correlation_u_v": "Correlation coefficient of the errors of U and V.",
-    "correlation_u_w": "Correlation coefficient of the errors of U and W.",
-    "correlation_v_w": "Correlation coefficient of the errors of V and W.",
+    "correlation_u_v": "Correlation coefficient of the errors of U and V, dimensionless.",
+    "correlation_u_w": "Correlation coefficient of the errors of U and W, dimensionless.",
+    "correlation_v_w": "Correlation coefficient of the errors of V and W, dimensionless.",
     "u_interval_km_s": "-1 and +1 sigma bounds of U, km/s: Monte Carlo percentiles, or U -/+ "
     "its error for linear propagation.",
     "v_interval_km_s": "-1 and +1 sigma bounds of V, km/s.",
@@ -397,7 +409,7 @@ def _float_list(description):
 
 
 _RESULT_FIELDS = {
-    "index": ma.fields.Integer(metadata={"description": "Position of the star in the request."}),
+    "index": ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION}),
     "id": ma.fields.Raw(allow_none=True, metadata={"description": "Your identifier, echoed."}),
     "flags": ma.fields.List(
         ma.fields.String(), metadata={"description": "What was missing or assumed."}
@@ -416,15 +428,20 @@ VelocityResultSchema = always_present(
 
 @always_present
 class VelocityWarningSchema(ma.Schema):
-    index = ma.fields.Integer()
-    id = ma.fields.Raw(allow_none=True)
-    message = ma.fields.String()
+    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    message = ma.fields.String(
+        metadata={
+            "description": "What looks wrong with the star, in words, and what to check; "
+            "the star is computed as given."
+        }
+    )
 
 
 @always_present(unless=("stars", "columns"))
 class VelocityResponseSchema(ma.Schema):
-    star_count = ma.fields.Integer()
-    layout = ma.fields.String()
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
     uvw_convention = ma.fields.String(metadata={"description": UVW_CONVENTION})
     solar_motion_km_s = ma.fields.List(
         ma.fields.Float(),
@@ -432,13 +449,30 @@ class VelocityResponseSchema(ma.Schema):
         metadata={"description": "U, V, W of the Sun relative to the LSR used; null unless "
                   "relative_to_lsr."},
     )  # fmt: skip
-    catalogue_epoch = ma.fields.Nested(EpochOutSchema, allow_none=True)
-    uncertainty_method = ma.fields.String()
-    low_snr_threshold = ma.fields.Float(
-        metadata={"description": "Parallax signal-to-noise threshold used for parallax_low_snr."}
+    catalogue_epoch = ma.fields.Nested(
+        EpochOutSchema,
+        allow_none=True,
+        metadata={"description": "Epoch of the astrometry; null when the request gave none."},
     )
-    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    uncertainty_method = ma.fields.String(
+        metadata={"description": "The uncertainty method used: linear, monte_carlo or auto."}
+    )
+    low_snr_threshold = ma.fields.Float(
+        metadata={
+            "description": "Parallax signal-to-noise threshold used for parallax_low_snr "
+            "(dimensionless)."
+        }
+    )
+    units = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
     warnings = ma.fields.List(
         ma.fields.Nested(VelocityWarningSchema),
         metadata={"description": "Per-star warnings. " + WARNINGS_LIMIT_TEXT},
@@ -782,7 +816,13 @@ ObservablesResultSchema = always_present(
             "index": _RESULT_FIELDS["index"],
             "id": _RESULT_FIELDS["id"],
             "flags": _RESULT_FIELDS["flags"],
-            "distance_pc": ma.fields.Float(allow_none=True, metadata={"description": "pc"}),
+            "distance_pc": ma.fields.Float(
+                allow_none=True,
+                metadata={
+                    "description": "Distance used, pc: distance_pc if given, else "
+                    "1000/parallax; null without either (or with a parallax not positive)."
+                },
+            ),
             "pm_ra_cosdec_mas_yr": ma.fields.Float(
                 allow_none=True,
                 metadata={
@@ -806,18 +846,36 @@ ObservablesResultSchema = always_present(
 
 @always_present(unless=("stars", "columns"))
 class ObservablesResponseSchema(ma.Schema):
-    star_count = ma.fields.Integer()
-    layout = ma.fields.String()
+    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
     uvw_convention = ma.fields.String(metadata={"description": UVW_CONVENTION})
     solar_motion_km_s = VelocityResponseSchema._declared_fields["solar_motion_km_s"]
-    units = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
-    flag_meanings = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.String())
+    units = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+    flag_meanings = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
     warnings = ma.fields.List(
         ma.fields.Nested(VelocityWarningSchema),
         metadata={"description": "Per-star warnings. " + WARNINGS_LIMIT_TEXT},
     )
-    stars = ma.fields.List(ma.fields.Nested(ObservablesResultSchema))
-    columns = ma.fields.Dict(keys=ma.fields.String(), values=ma.fields.Raw())
+    stars = ma.fields.List(
+        ma.fields.Nested(ObservablesResultSchema),
+        metadata={"description": "layout=records: one entry per star."},
+    )
+    columns = ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.Raw(),
+        metadata={
+            "description": "layout=columns: id and flags, and one array per quantity, one "
+            "value per star."
+        },
+    )
 
 
 @blp.route("/velocity/observables", methods=["POST"])
