@@ -216,9 +216,15 @@ RADIAL_VELOCITY_WARNING = (
     "radial velocity exceeds 5,000 km/s in size, more than any star's measured radial "
     "velocity: check the unit (km/s, not m/s)"
 )
+PARALLAX_WARNING = (
+    "parallax exceeds 1,000 mas (nearer than 1 pc), more than any known star's (the largest "
+    "is about 768 mas): probably microarcseconds given as milliarcseconds; check the unit "
+    "(mas)"
+)
 
 
-#: Per-star warnings of the propagation (and observed) answers: PropagationFlag -> message.
+#: Per-star warnings of the propagation (and observed, constellations) answers:
+#: PropagationFlag -> message.
 PROPAGATION_WARNINGS = {
     core_prop.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_WARNING,
     core_prop.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax, proper motion and "
@@ -226,6 +232,7 @@ PROPAGATION_WARNINGS = {
     "parallax and its unit (mas)",
     core_prop.PropagationFlag.NOT_CONVERGED: "light-time iteration did not converge",
     core_prop.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_WARNING,
+    core_prop.PropagationFlag.PARALLAX_IMPLAUSIBLE: PARALLAX_WARNING,
 }
 
 

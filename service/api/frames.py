@@ -85,7 +85,10 @@ FrameStarSchema = ma.Schema.from_dict(
             lo=-90.0,
             hi=90.0,
         ),
-        "parallax_mas": _num("Parallax, mas. Null if unknown; <= 0 accepted and flagged."),
+        "parallax_mas": _num(
+            "Parallax, mas. Null if unknown; <= 0 accepted and flagged, and so is a value above "
+            "1,000 mas (parallax_implausible: nearer than any known star)."
+        ),
         "pm_ra_cosdec_mas_yr": _num(
             "Proper motion along the longitude times cos(latitude), mas per Julian year (also "
             "for FK4: convert tropical-century catalogue values first).",
@@ -358,8 +361,8 @@ def convert(args):
         targets[None, :],
     )
     moved = propagated.astrometry
-    # Implausible inputs (proper motion, radial velocity, space velocity) are named in each
-    # star's flags, as in the propagation and observed answers.
+    # Implausible inputs (parallax, proper motion, radial velocity, space velocity) are named
+    # in each star's flags, as in the propagation and observed answers.
     _, input_names = input_flags(propagated.flags, n)
     out = core.convert(
         moved.ra_deg,

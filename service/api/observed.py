@@ -507,8 +507,8 @@ class ObservedResponseSchema(ma.Schema):
         ma.fields.Nested(WarningSchema),
         metadata={
             "description": "Stars whose inputs look like a unit mistake (proper motion above "
-            "10.4 arcsec/yr, radial velocity above 5,000 km/s) or are inconsistent; they are "
-            "computed as given. " + WARNINGS_LIMIT_TEXT
+            "10.4 arcsec/yr, radial velocity above 5,000 km/s, parallax above 1,000 mas) or are "
+            "inconsistent; they are computed as given. " + WARNINGS_LIMIT_TEXT
         },
     )
     stars = ma.fields.List(
@@ -637,8 +637,9 @@ def observed(args):
         epoch_arg = instants[None, :]
     star_args = [getattr(propagated.astrometry, f) for f in _AST]
     # Missing motions stay missing for the flags (the propagation reports them as NaN too).
-    # Implausible inputs (proper motion, radial velocity, space velocity) are warned about as
-    # in the propagation answer; the flags depend on the inputs only, not on the instant.
+    # Implausible inputs (parallax, proper motion, radial velocity, space velocity) are warned
+    # about as in the propagation answer; the flags depend on the inputs only, not on the
+    # instant.
     # They are also named in each star's flags, so that CSV and Arrow answers carry them.
     input_masks, input_names = input_flags(propagated.flags, n)
     warnings = flag_warnings(input_masks, table, PROPAGATION_WARNINGS)

@@ -13,6 +13,7 @@ from flask_smorest import abort
 from ..core import propagation as core
 from ..core.constants import C_KM_S
 from ..core.flags import (
+    PARALLAX_IMPLAUSIBLE_MEANING,
     PROPER_MOTION_IMPLAUSIBLE_MEANING,
     RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     flag_names,
@@ -106,7 +107,8 @@ _STAR_FIELDS = {
     "ra_deg": _num("ICRS right ascension, degrees.", required=True, lo=0.0, hi=360.0),
     "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
     "parallax_mas": _num(
-        "Parallax, mas. Null if unknown; zero or negative values are accepted and flagged.",
+        "Parallax, mas. Null if unknown; zero or negative values are accepted and flagged, "
+        "and so are values above 1,000 mas (parallax_implausible: nearer than any known star).",
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
@@ -363,6 +365,7 @@ FLAG_MEANINGS = {
     "0.2 rad, or distance known to worse than 20%), as near a close passage of the Sun: the "
     "linear propagation of the uncertainties no longer describes their spread (it can be "
     "wrong by orders of magnitude there). Use Monte Carlo draws of the catalogue values.",
+    "parallax_implausible": PARALLAX_IMPLAUSIBLE_MEANING,
     "uncertainties_incomplete": "Some but not all of the standard errors of position, proper "
     "motion and (where the parallax is given) parallax given: no uncertainties computed.",
     "correlations_assumed_zero": "Standard errors given without any correlation among the "
@@ -375,12 +378,8 @@ FLAG_MEANINGS = {
 }
 
 #: Propagation flags about implausible inputs, which answers of other endpoints that move
-#: stars (frames, observed places) name per star, with their meanings.
-IMPLAUSIBLE_INPUT_FLAGS = int(
-    core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
-    | core.PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
-    | core.PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
-)
+#: stars (frames, observed places, constellations) name per star, with their meanings.
+IMPLAUSIBLE_INPUT_FLAGS = int(core.IMPLAUSIBLE_INPUT_FLAGS)
 IMPLAUSIBLE_INPUT_MEANINGS = {
     name: FLAG_MEANINGS[name]
     for name in flag_names([IMPLAUSIBLE_INPUT_FLAGS], core.PropagationFlag)[0]

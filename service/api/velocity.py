@@ -19,6 +19,7 @@ from flask_smorest import abort
 from ..core import kinematics as core
 from ..core.constants import C_KM_S
 from ..core.flags import (
+    PARALLAX_IMPLAUSIBLE_MEANING,
     PROPER_MOTION_IMPLAUSIBLE_MEANING,
     RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     flag_names,
@@ -28,6 +29,7 @@ from .common import (
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
     LAYOUT_DESCRIPTION,
+    PARALLAX_WARNING,
     PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
     STAR_COUNT_DESCRIPTION,
@@ -104,7 +106,8 @@ _VELOCITY_STAR_FIELDS = {
     "dec_deg": _num("ICRS declination, degrees.", required=True, lo=-90.0, hi=90.0),
     "parallax_mas": _num(
         "Parallax, mas. Null if unknown; zero or negative values are accepted, flagged, and "
-        "give null velocities (no distance).",
+        "give null velocities (no distance); values above 1,000 mas (nearer than any known "
+        "star) are computed as given and flagged parallax_implausible.",
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
@@ -398,6 +401,8 @@ FLAG_MEANINGS = {
     "parallax or distance, proper motion and radial velocity; in the inverse, U, V, W as "
     "given): no star moves so fast; probably a unit mistake or an unusable parallax. "
     "Computed as given.",
+    "parallax_implausible": PARALLAX_IMPLAUSIBLE_MEANING + " Computed as given; not set "
+    "where distance_pc replaces the parallax.",
     "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",
@@ -586,12 +591,14 @@ _WARNING_TEXTS = {
     core.KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE: "parallax (or distance), proper motion "
     "and radial velocity imply a space velocity above half the speed of light: check the "
     "parallax and its unit (mas), or the distance (pc)",
+    core.KinematicsFlag.PARALLAX_IMPLAUSIBLE: PARALLAX_WARNING,
 }
 
 #: Per-star warnings of the inverse (observables) answer.
 _OBSERVABLES_WARNING_TEXTS = {
     core.KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE: "space velocity (U, V, W) exceeds half "
     "the speed of light: check the unit (km/s)",
+    core.KinematicsFlag.PARALLAX_IMPLAUSIBLE: PARALLAX_WARNING,
 }
 
 
@@ -771,7 +778,8 @@ _OBSERVABLES_STAR_FIELDS = {
     ),
     "parallax_mas": _num(
         "Parallax, mas. Null if unknown (then only the radial velocity is given); zero or "
-        "negative is flagged.",
+        "negative is flagged, and so is a value above 1,000 mas (parallax_implausible: nearer "
+        "than any known star).",
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),

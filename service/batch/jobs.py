@@ -14,7 +14,11 @@ from ..core import constellations as _constellations
 from ..core import kinematics as _kinematics
 from ..core import propagation as _propagation
 from ..core.constants import C_KM_S, MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC
-from ..core.flags import PROPER_MOTION_IMPLAUSIBLE_MEANING, RADIAL_VELOCITY_IMPLAUSIBLE_MEANING
+from ..core.flags import (
+    PARALLAX_IMPLAUSIBLE_MEANING,
+    PROPER_MOTION_IMPLAUSIBLE_MEANING,
+    RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
+)
 from ..numbers import DECIMAL_TEXT, decimal
 from .spec import (
     CATALOGUE_EPOCH_FIELD,
@@ -128,6 +132,7 @@ PROPAGATION_FLAG_MEANINGS = {
     _PF.UNCERTAINTIES_NONLINEAR: "Uncertainties propagated: their linear propagation fails "
     "(position error above 0.2 of the distance); not set by this job, which propagates no "
     "uncertainties.",
+    _PF.PARALLAX_IMPLAUSIBLE: PARALLAX_IMPLAUSIBLE_MEANING + " Computed as given.",
 }
 
 
@@ -330,6 +335,8 @@ VELOCITY_FLAG_MEANINGS = {
     _KF.SPACE_VELOCITY_IMPLAUSIBLE: "Space velocity from the parallax or distance, proper "
     "motion and radial velocity above half the speed of light: probably a unit mistake or "
     "an unusable parallax. Computed as given.",
+    _KF.PARALLAX_IMPLAUSIBLE: PARALLAX_IMPLAUSIBLE_MEANING + " Computed as given; not set "
+    "where distance_pc replaces the parallax.",
 }
 
 _CORRELATIONS = (

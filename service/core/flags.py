@@ -17,6 +17,10 @@ import numpy as np
 PROPER_MOTION_IMPLAUSIBLE_MEANING = (
     "Total proper motion above 10.4 arcsec/yr, more than any known star: probably a unit mistake."
 )
+PARALLAX_IMPLAUSIBLE_MEANING = (
+    "Parallax above 1,000 mas (nearer than 1 pc), more than any known star's (the largest "
+    "is about 768 mas): probably microarcseconds given as milliarcseconds."
+)
 RADIAL_VELOCITY_IMPLAUSIBLE_MEANING = (
     "Radial velocity above 5,000 km/s in size, more than any star's measured radial "
     "velocity: probably m/s given as km/s."

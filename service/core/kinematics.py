@@ -45,6 +45,7 @@ import numpy as np
 from service.core.constants import (
     AU_PER_JULIAN_YEAR_KM_S,
     DEG_PER_RAD,
+    IMPLAUSIBLE_PARALLAX_MAS,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
     IMPLAUSIBLE_RADIAL_VELOCITY_KM_S,
     IMPLAUSIBLE_SPACE_VELOCITY_KM_S,
@@ -192,6 +193,10 @@ class KinematicsFlag(enum.IntFlag):
     #: (below about 5.6e-306 mas), so distance-dependent outputs are null (in the inverse,
     #: the distance; the proper motions, proportional to the parallax, are given).
     PARALLAX_TOO_SMALL = 1024
+    #: Parallax used (no distance given in its place) above 1,000 mas, nearer than 1 pc
+    #: (IMPLAUSIBLE_PARALLAX_MAS), more than any known star's (the largest is about
+    #: 768 mas): probably microarcseconds given as milliarcseconds. Computed as given.
+    PARALLAX_IMPLAUSIBLE = 2048
 
 
 @dataclass(frozen=True)
@@ -975,6 +980,10 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     low = positive & (snr < low_snr_threshold)
     if low.any():
         flags |= low * np.uint32(KinematicsFlag.PARALLAX_LOW_SNR)
+    # The parallax as given, where no distance replaces it (False for NaN).
+    plx_implausible = (plx > IMPLAUSIBLE_PARALLAX_MAS) & ~given
+    if plx_implausible.any():
+        flags |= plx_implausible * np.uint32(KinematicsFlag.PARALLAX_IMPLAUSIBLE)
 
     inv_plx = 1.0 / plx_eq
     distance = 1000.0 * inv_plx
@@ -1334,6 +1343,9 @@ def observables_from_velocity(
         KinematicsFlag.PARALLAX_NOT_POSITIVE
     )
     flags[~given & ~np.isfinite(plx)] |= np.uint32(KinematicsFlag.PARALLAX_MISSING)
+    flags[~given & (plx > IMPLAUSIBLE_PARALLAX_MAS)] |= np.uint32(
+        KinematicsFlag.PARALLAX_IMPLAUSIBLE
+    )
     speed2 = u * u + v * v + w * w
     flags[speed2 > IMPLAUSIBLE_SPACE_VELOCITY_KM_S**2] |= np.uint32(
         KinematicsFlag.SPACE_VELOCITY_IMPLAUSIBLE

@@ -44,6 +44,7 @@ from erfa import ufunc as erfa_ufunc
 from .constants import (
     AU_PER_JULIAN_YEAR_KM_S,
     DEG_PER_RAD,
+    IMPLAUSIBLE_PARALLAX_MAS,
     IMPLAUSIBLE_PROPER_MOTION_MAS_YR,
     IMPLAUSIBLE_RADIAL_VELOCITY_KM_S,
     IMPLAUSIBLE_SPACE_VELOCITY_KM_S,
@@ -105,6 +106,20 @@ class PropagationFlag(enum.IntFlag):
     #: propagation through the Jacobian is then not a valid description of the spread
     #: (it can be wrong by orders of magnitude); use Monte Carlo draws of the inputs.
     UNCERTAINTIES_NONLINEAR = 1024
+    #: Parallax above 1,000 mas (nearer than 1 pc; IMPLAUSIBLE_PARALLAX_MAS), more than any
+    #: known star's (the largest is about 768 mas): probably microarcseconds given as
+    #: milliarcseconds. Computed as given.
+    PARALLAX_IMPLAUSIBLE = 2048
+
+
+#: The flags about implausible inputs (unit mistakes, inconsistent values): the answers of
+#: every endpoint that moves stars name these per star and warn about them.
+IMPLAUSIBLE_INPUT_FLAGS = (
+    PropagationFlag.PROPER_MOTION_IMPLAUSIBLE
+    | PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE
+    | PropagationFlag.SPACE_VELOCITY_IMPLAUSIBLE
+    | PropagationFlag.PARALLAX_IMPLAUSIBLE
+)
 
 
 @dataclass(frozen=True)
@@ -187,7 +202,7 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
        against IMPLAUSIBLE_PROPER_MOTION_MAS_YR^2; the space velocity, where the parallax
        is positive, as A^2 mu^2 + v_r^2 plx^2 > v_max^2 plx^2 (v_t = A mu / plx; an unknown
        radial velocity counts as zero here); the radial velocity in size against
-       IMPLAUSIBLE_RADIAL_VELOCITY_KM_S.
+       IMPLAUSIBLE_RADIAL_VELOCITY_KM_S; the parallax against IMPLAUSIBLE_PARALLAX_MAS.
     """
     plx = np.asarray(parallax_mas, dtype=float)
     rv = np.asarray(radial_velocity_km_s, dtype=float)
@@ -219,6 +234,7 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
         (~(rv_missing | plx_positive), F.RADIAL_VELOCITY_UNCHANGED),
         (too_fast & plx_positive, F.SPACE_VELOCITY_IMPLAUSIBLE),
         (np.abs(rv) > IMPLAUSIBLE_RADIAL_VELOCITY_KM_S, F.RADIAL_VELOCITY_IMPLAUSIBLE),
+        (plx > IMPLAUSIBLE_PARALLAX_MAS, F.PARALLAX_IMPLAUSIBLE),  # False for NaN
     ):
         flags |= np.left_shift(mask, int(bit).bit_length() - 1, dtype=np.uint16)
     flags = flags.astype(np.int64)
@@ -245,6 +261,7 @@ def _input_flags_one(plx: float, pma: float, pmd: float, rv: float) -> int:
         (not (rv_missing or plx_positive), F.RADIAL_VELOCITY_UNCHANGED),
         (too_fast and plx_positive, F.SPACE_VELOCITY_IMPLAUSIBLE),
         (abs(rv) > IMPLAUSIBLE_RADIAL_VELOCITY_KM_S, F.RADIAL_VELOCITY_IMPLAUSIBLE),
+        (plx > IMPLAUSIBLE_PARALLAX_MAS, F.PARALLAX_IMPLAUSIBLE),
     ):
         if cond:
             bits |= int(bit)

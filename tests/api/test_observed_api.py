@@ -165,31 +165,41 @@ def test_instant_of_another_json_type_names_the_field(client, observed_example, 
 
 
 def test_implausible_inputs_named_and_warned_about(client, observed_example):
-    """As in the propagation answer: a radial velocity in m/s (-41,700 for -41.7 km/s) and a
-    proper motion above 10.4 arcsec/yr are computed as given, flagged on every instant, and
-    warned about; the CSV answer carries the flags too."""
+    """As in the propagation answer: a radial velocity in m/s (-41,700 for -41.7 km/s), a
+    proper motion above 10.4 arcsec/yr and a parallax above 1,000 mas (161,300 for 161.3
+    mas, microarcseconds given as mas; bound: common practice, core.constants) are computed
+    as given, flagged on every instant, and warned about; the CSV answer carries the flags
+    too."""
     good = dict(observed_example["stars"][0])
     fast_rv = dict(good, radial_velocity_km_s=-41_700.0)
     fast_pm = dict(good, pm_ra_cosdec_mas_yr=30_000.0)
+    near = dict(good, parallax_mas=good["parallax_mas"] * 1000.0)
     body = dict(
         observed_example,
-        stars=[good, fast_rv, fast_pm],
+        stars=[good, fast_rv, fast_pm, near],
         instants=["2026-12-02T22:30:00Z", "2026-12-02T23:30:00Z"],
     )
     r = client.post(OBS, json=body)
     assert r.status_code == 200, r.get_data(as_text=True)
     flags = [[set(a["flags"]) for a in s["at_instants"]] for s in r.json["stars"]]
-    implausible = {"radial_velocity_implausible", "proper_motion_implausible"}
+    implausible = {
+        "radial_velocity_implausible",
+        "proper_motion_implausible",
+        "parallax_implausible",
+    }
     assert [[f & implausible for f in star] for star in flags] == [
         [set(), set()],
         [{"radial_velocity_implausible"}] * 2,
         [{"proper_motion_implausible"}] * 2,
+        [{"parallax_implausible"}] * 2,
     ]
     assert implausible <= set(r.json["flag_meanings"])
     assert [(w["index"], "km/s, not m/s" in w["message"]) for w in r.json["warnings"]] == [
         (2, False),
         (1, True),
+        (3, False),
     ]
+    assert "microarcseconds given as milliarcseconds" in r.json["warnings"][2]["message"]
     assert r.json["stars"][1]["at_instants"][0]["altitude_deg"] is not None
     text = client.post(OBS, json=body, headers={"Accept": "text/csv"}).get_data(as_text=True)
     assert text.count("radial_velocity_implausible") == 2  # one row per instant
@@ -569,17 +579,25 @@ def test_frames_implausible_inputs_named_in_the_flags(client, frames_example):
     """As in the propagation and observed answers: a radial velocity in m/s (-41,700 for
     -41.7 km/s, above the 5,000 km/s bound of PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE)
     and a proper motion above 10.4 arcsec/yr are converted as given and named in the star's
-    flags, with their meanings; the frames answer said nothing of them."""
+    flags, with their meanings; the frames answer said nothing of them. So is a parallax
+    above 1,000 mas (the star's own times 1000: microarcseconds given as mas; bound: common
+    practice, core.constants)."""
     good = dict(frames_example["stars"][0])
     fast_rv = dict(good, radial_velocity_km_s=-41_700.0)
     fast_pm = dict(good, pm_ra_cosdec_mas_yr=30_000.0)
-    r = client.post(FRAMES, json=dict(frames_example, stars=[good, fast_rv, fast_pm]))
+    near = dict(good, parallax_mas=good["parallax_mas"] * 1000.0)
+    r = client.post(FRAMES, json=dict(frames_example, stars=[good, fast_rv, fast_pm, near]))
     assert r.status_code == 200, r.get_data(as_text=True)
-    implausible = {"radial_velocity_implausible", "proper_motion_implausible"}
+    implausible = {
+        "radial_velocity_implausible",
+        "proper_motion_implausible",
+        "parallax_implausible",
+    }
     assert [set(s["flags"]) & implausible for s in r.json["stars"]] == [
         set(),
         {"radial_velocity_implausible"},
         {"proper_motion_implausible"},
+        {"parallax_implausible"},
     ]
     assert implausible <= set(r.json["flag_meanings"])
     assert r.json["stars"][1]["at_epochs"][0]["ra_deg"] is not None

@@ -191,6 +191,24 @@ def test_radial_velocity_in_metres_per_second_warns_but_answers(client):
     assert "radial_velocity_implausible" in body["flag_meanings"]
 
 
+def test_parallax_in_microarcseconds_warns_but_answers(client):
+    # 1,000 mas, nearer than 1 pc, is the bound (common practice; core.constants): the
+    # largest known parallax, Proxima Centauri's 768.07 mas (Gaia DR3, from memory), passes
+    # unflagged; 768,070 is it in microarcseconds given as mas.
+    good = dict(STAR, parallax_mas=768.07, radial_velocity_km_s=20.0)
+    star = dict(good, parallax_mas=768_070.0)
+    body = post(client, dict(BASE, stars=[star, good])).json
+    assert body["stars"][0]["flags"] == ["parallax_implausible"]
+    assert body["stars"][1]["flags"] == []
+    assert body["warnings"] == [{"index": 0, "id": None, "message": body["warnings"][0]["message"]}]
+    assert "microarcseconds given as milliarcseconds" in body["warnings"][0]["message"]
+    assert "parallax_implausible" in body["flag_meanings"]
+    assert body["stars"][0]["at_epochs"][0]["parallax_mas"] is not None  # computed as given
+    columns = {k: [star[k], good[k]] for k in star}
+    body = post(client, dict(BASE, stars=columns)).json
+    assert body["columns"]["flags"] == [["parallax_implausible"], []]
+
+
 def test_epochs_answered_as_julian_and_iso(client):
     body = post(client, dict(BASE, stars=[STAR], target_epochs=["2026-12-02T22:00:00Z"])).json
     e = body["epochs"][0]

@@ -194,6 +194,29 @@ def test_radial_velocity_in_metres_per_second_warns_but_answers(client):
     assert body["stars"][0]["u_km_s"] is not None  # computed as given
 
 
+def test_parallax_in_microarcseconds_warns_but_answers(client):
+    # 1,000 mas, nearer than 1 pc (common practice; core.constants): Proxima Centauri's
+    # 768.07 mas (Gaia DR3, from memory), the largest known parallax, passes unflagged;
+    # 768,070 is it in microarcseconds. A distance given in its place is used instead.
+    stars = [
+        dict(STAR, parallax_mas=768.07),
+        dict(STAR, parallax_mas=768_070.0),
+        dict(STAR, parallax_mas=768_070.0, distance_pc=1.3),
+    ]
+    body = post(client, {"stars": stars}).json
+    assert ["parallax_implausible" in s["flags"] for s in body["stars"]] == [False, True, False]
+    assert [w["index"] for w in body["warnings"]] == [1]
+    assert "microarcseconds given as milliarcseconds" in body["warnings"][0]["message"]
+    assert "parallax_implausible" in body["flag_meanings"]
+    assert body["stars"][1]["u_km_s"] is not None  # computed as given
+    # The inverse takes a parallax too: its proper motions scale with it.
+    inverse = [dict(UVW_STAR, distance_pc=None, parallax_mas=p) for p in (768.07, 768_070.0)]
+    body = post(client, {"stars": inverse}, INVERSE_URL).json
+    assert ["parallax_implausible" in s["flags"] for s in body["stars"]] == [False, True]
+    assert [w["index"] for w in body["warnings"]] == [1]
+    assert "parallax_implausible" in body["flag_meanings"]
+
+
 def test_inverse_round_trip_through_both_endpoints(client):
     stars = [UVW_STAR, dict(UVW_STAR, ra_deg=250.0, dec_deg=-60.0, u_km_s=40.0)]
     obs = post(client, {"stars": stars}, INVERSE_URL).json["stars"]

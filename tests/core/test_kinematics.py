@@ -375,6 +375,21 @@ def test_implausible_radial_velocity_flag():
     assert got == [False, True, False]
 
 
+def test_implausible_parallax_flag():
+    # 1,000 mas, nearer than 1 pc (common practice; core.constants): Proxima Centauri's
+    # 768.07 mas (Gaia DR3, from memory), the largest known, is not flagged; 768,070 (that
+    # value in microarcseconds) is, unless a distance replaces the parallax.
+    plx = [768.07, 768_070.0, 768_070.0, np.nan]
+    r = space_velocity(0.0, 0.0, plx, 10.0, 0.0, 20.0, distance_pc=[np.nan, np.nan, 1.3, 1.3])
+    got = ((r.flags & KinematicsFlag.PARALLAX_IMPLAUSIBLE) > 0).tolist()
+    assert got == [False, True, False, False]
+    assert np.isfinite(r.transverse_velocity_km_s[1])  # computed as given
+    # The inverse takes a parallax too.
+    obs = observables_from_velocity(0.0, 0.0, [10.0, 0.0, 0.0], [768.07, 768_070.0])
+    got = ((obs.flags & KinematicsFlag.PARALLAX_IMPLAUSIBLE) > 0).tolist()
+    assert got == [False, True]
+
+
 def test_missing_uncertainties_flag():
     r = space_velocity(0.0, 0.0, 10.0, 1.0, 1.0, 3.0, parallax_error_mas=0.1)
     assert r.flags & KinematicsFlag.UNCERTAINTIES_MISSING

@@ -766,6 +766,28 @@ def test_flag_implausible_radial_velocity_array_and_one_star_alike():
     assert np.isfinite(res.astrometry.radial_velocity_km_s)
 
 
+def test_flag_implausible_parallax_array_and_one_star_alike():
+    # 1,000 mas (nearer than 1 pc) is a round bound above every known star (common
+    # practice; core.constants): the largest known parallax, Proxima Centauri's, is 768.07
+    # mas (Gaia DR3, from memory) and must pass unflagged; 768,070 is that value in
+    # microarcseconds given as mas.
+    plx = np.array([768.07, 1_000.0, 1_000.5, 768_070.0, np.nan, -768_070.0])
+    flags = input_flags(plx, 10.0, 10.0, 20.0)
+    F = PropagationFlag
+    assert [bool(x & F.PARALLAX_IMPLAUSIBLE) for x in flags] == [
+        False, False, True, True, False, False,
+    ]  # fmt: skip
+    for p, bits in zip(plx, flags, strict=True):  # the one-star path gives the same bits
+        assert int(input_flags(p, 10.0, 10.0, 20.0)) == int(bits)
+    assert not flags[3] & ~F.PARALLAX_IMPLAUSIBLE  # no other flag for it
+    for model in ("standard", "light_time"):  # flagged, and computed as given
+        res = propagate(10.0, 20.0, 768_070.0, 10.0, 10.0, 20.0, 2016.0, 2026.0, model=model)
+        assert res.flags & F.PARALLAX_IMPLAUSIBLE, model
+        assert np.isfinite(res.astrometry.parallax_mas), model
+        ok = propagate(10.0, 20.0, 768.07, 10.0, 10.0, 20.0, 2016.0, 2026.0, model=model)
+        assert ok.flags == 0, model
+
+
 def test_flag_at_pole():
     res = propagate(0.0, 90.0, 10.0, 0.0, 0.0, 10.0, 2016.0, 2020.0)
     assert res.flags & PropagationFlag.AT_POLE
