@@ -638,6 +638,12 @@ def test_constellations_job_equals_constellation_core_bitwise(tmp_path):
         out["boundary_margin_arcsec"].to_numpy()[good], ref.margin_arcsec, "margin"
     )
     assert_bitwise_equal(out["constellation_flags"].to_numpy()[good], ref.flags, "flags")
+    # Implausible inputs: the propagation's bits of them, for every good row.
+    implausible = core.input_flags(
+        *(cat[MAPPING[name]].to_numpy()[good] for name in list(MAPPING)[2:])
+    ) & int(core.IMPLAUSIBLE_INPUT_FLAGS)
+    assert_bitwise_equal(out["implausible_input_flags"].to_numpy()[good], implausible, "inputs")
+    assert np.count_nonzero(implausible & int(core.PropagationFlag.PROPER_MOTION_IMPLAUSIBLE))
     assert out["constellation"].isna()[bad].all()
     unknown_pm = np.isnan(cat["pmDE"].to_numpy())
     names = batch.flag_names(
@@ -652,6 +658,74 @@ def test_constellations_job_equals_constellation_core_bitwise(tmp_path):
         )
         > 10
     )
+
+
+def test_implausible_inputs_flagged_by_every_job(tmp_path):
+    """A parallax above 1,000 mas (768,070: Proxima Centauri's 768.07 mas in Gaia DR3, from
+    memory, given in microarcseconds; bound: common practice, core.constants) is flagged
+    parallax_implausible by the propagate and velocity jobs, 768.07 itself is not, and the
+    constellations job names implausible inputs (as the API's constellation answers do) in
+    its implausible_input_flags column, with the propagation's bits, when it moves stars."""
+    from service.core import kinematics
+
+    cat = pd.DataFrame(
+        {
+            "source_id": np.arange(4, dtype=np.int64),
+            "RA_ICRS": [217.4] * 4,
+            "DE_ICRS": [-62.7] * 4,
+            "Plx": [768.07, 768_070.0, 20.0, 20.0],
+            "pmRA": [100.0, 100.0, 100.0, 30_000.0],
+            "pmDE": [50.0] * 4,
+            "RV": [20.0, 20.0, -41_700.0, 20.0],
+        }
+    )
+    write_parquet(cat, tmp_path / "cat.parquet")
+    columns = [cat[MAPPING[name]].to_numpy() for name in MAPPING]
+    F = core.PropagationFlag
+    KF = kinematics.KinematicsFlag
+    runs = {}
+    for job, params in (
+        ("propagate", {"catalogue_epoch_jyear": CATALOGUE_EPOCH, "target_epoch_jyear": 2100.0}),
+        ("velocity", {}),
+        ("constellations", {"epoch_jyear": 2100.0, "catalogue_epoch_jyear": CATALOGUE_EPOCH}),
+        ("constellations", {}),
+    ):
+        dest = tmp_path / f"{job}-{len(params)}"
+        summary = batch.run_batch(job, tmp_path / "cat.parquet", dest, columns=MAPPING,
+                                  keep=["source_id"], params=params)  # fmt: skip
+        runs[job, len(params)] = (read_output(dest), summary)
+    out, summary = runs["propagate", 2]
+    ref = core.propagate(*columns, CATALOGUE_EPOCH, 2100.0)
+    assert_bitwise_equal(out["propagation_flags"].to_numpy(), ref.flags, "propagation_flags")
+    assert [bool(x & F.PARALLAX_IMPLAUSIBLE) for x in ref.flags] == [False, True, False, False]
+    assert summary.flag_counts["propagation_flags"]["parallax_implausible"] == 1
+    bit = summary.metadata["flags"]["propagation_flags"][str(int(F.PARALLAX_IMPLAUSIBLE))]
+    assert bit["name"] == "parallax_implausible" and "microarcseconds" in bit["meaning"]
+    out, summary = runs["velocity", 0]
+    got = (out["velocity_flags"].to_numpy() & int(KF.PARALLAX_IMPLAUSIBLE)) != 0
+    assert got.tolist() == [False, True, False, False]
+    assert summary.flag_counts["velocity_flags"]["parallax_implausible"] == 1
+    out, summary = runs["constellations", 2]
+    expected = core.input_flags(*columns[2:]) & int(core.IMPLAUSIBLE_INPUT_FLAGS)
+    assert_bitwise_equal(out["implausible_input_flags"].to_numpy(), expected, "implausible")
+    names = batch.flag_names(out["implausible_input_flags"], "implausible_input_flags",
+                             "constellations")  # fmt: skip
+    assert [list(n) for n in names] == [
+        [], ["parallax_implausible"], ["radial_velocity_implausible"],
+        ["proper_motion_implausible"],
+    ]  # fmt: skip
+    assert summary.flag_counts["implausible_input_flags"] == {
+        "proper_motion_implausible": 1,
+        "space_velocity_implausible": 0,
+        "radial_velocity_implausible": 1,
+        "parallax_implausible": 1,
+    }
+    table = summary.metadata["flags"]["implausible_input_flags"]
+    assert table[str(int(F.PARALLAX_IMPLAUSIBLE))]["name"] == "parallax_implausible"
+    assert all(entry["meaning"] for entry in table.values())
+    # Without --epoch only the positions are read: nothing to flag.
+    out, summary = runs["constellations", 0]
+    assert not out["implausible_input_flags"].to_numpy().any()
 
 
 def test_row_checks_agree_with_the_field_definitions():

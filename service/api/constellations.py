@@ -10,6 +10,7 @@ from flask_smorest import abort
 from ..core import constellations as core
 from ..core import epochs as core_epochs
 from ..core import frames as core_frames
+from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names
 from .common import (
@@ -18,21 +19,27 @@ from .common import (
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
     LAYOUT_DESCRIPTION,
+    PROPAGATION_WARNINGS,
     STAR_COUNT_DESCRIPTION,
     UNITS_DESCRIPTION,
+    WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
     EpochOutSchema,
     QueryFloat,
     StrictFloat,
+    WarningSchema,
     always_present,
     epochs_out,
+    flag_warnings,
     number_field,
 )
 from .errors import MORE_FIELD, further
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .observability import count_stars
+from .propagation import IMPLAUSIBLE_INPUT_FLAGS
+from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .tables import StarTableField
 
 blp = Blueprint(
@@ -71,6 +78,8 @@ FLAG_MEANINGS = {
     "search_incomplete": "The crossing search reached its step limit before the end of the "
     "window (a star grazing a boundary for a long time); crossings after the last one "
     "listed may be missing (constellation_at_end is still that at the window's end).",
+    # Implausible inputs: the propagation's flags, names and meanings.
+    **_INPUT_FLAG_MEANINGS,
 }
 
 UNITS = {
@@ -118,7 +127,8 @@ def _star_fields(motion_required: bool) -> dict:
         ),
         "parallax_mas": _num(
             "Parallax, mas. Null if unknown (the motion is then applied as direction only); "
-            "zero or negative values are accepted and flagged."
+            "zero or negative values are accepted and flagged, and so are values above 1,000 "
+            "mas (parallax_implausible: nearer than any known star)."
         ),
         "pm_ra_cosdec_mas_yr": _num(
             "Proper motion in right ascension times cos(dec), mas/yr." + pm_text,
@@ -363,6 +373,15 @@ class MembershipSchema(ma.Schema):
     flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
 
 
+#: What the answers say of their warnings (the propagation's, on the same inputs).
+WARNINGS_DESCRIPTION = (
+    "Stars whose inputs look like a unit mistake (proper motion above 10.4 arcsec/yr, radial "
+    "velocity above 5,000 km/s, parallax above 1,000 mas) or are inconsistent (space velocity "
+    "above half the speed of light), whether or not they are moved; they are computed as "
+    "given. " + WARNINGS_LIMIT_TEXT
+)
+
+
 @always_present(unless=("stars", "columns"))
 class LookupResponseSchema(ma.Schema):
     reduction = ma.fields.String(
@@ -387,6 +406,9 @@ class LookupResponseSchema(ma.Schema):
         keys=ma.fields.String(),
         values=ma.fields.String(),
         metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
+    warnings = ma.fields.List(
+        ma.fields.Nested(WarningSchema), metadata={"description": WARNINGS_DESCRIPTION}
     )
     stars = ma.fields.List(
         ma.fields.Nested(MembershipSchema),
@@ -452,6 +474,9 @@ class CrossingsResponseSchema(ma.Schema):
         values=ma.fields.String(),
         metadata={"description": FLAG_MEANINGS_DESCRIPTION},
     )
+    warnings = ma.fields.List(
+        ma.fields.Nested(WarningSchema), metadata={"description": WARNINGS_DESCRIPTION}
+    )
     stars = ma.fields.List(
         ma.fields.Nested(StarCrossingsSchema),
         metadata={"description": "One entry per star, in the order of the request."},
@@ -512,6 +537,7 @@ def _locate(args, with_margin: bool):
     if epoch is None:
         epoch = cat_epoch
     _refuse_half_proper_motions(table, pma, pmd)
+    implausible = _implausible_inputs(plx, pma, pmd, rv)
     if args["near_boundary_arcsec"] is None:  # the operator's default
         near = current_app.config["SKYDRIFT_SETTINGS"].near_boundary_arcsec
         args = {**args, "near_boundary_arcsec": near}
@@ -561,7 +587,14 @@ def _locate(args, with_margin: bool):
         # asked for another epoch: a star without proper motion stayed where it was
         fixed = np.uint16(core.ConstellationFlag.PROPER_MOTION_MISSING)
         flags = np.where(moving, flags, flags | fixed)
-    return table, res, flags, epoch
+    return table, res, flags, implausible, epoch
+
+
+def _implausible_inputs(plx, pma, pmd, rv):
+    """Per star, the propagation's implausible-input flags (PropagationFlag bits) of the
+    inputs as given: a star is flagged whether or not it is moved, as the propagation, frames
+    and observed answers flag it (NaN, an unknown value, raises none)."""
+    return core_prop.input_flags(plx, pma, pmd, rv) & IMPLAUSIBLE_INPUT_FLAGS
 
 
 def _refuse_half_proper_motions(table, pma, pmd) -> None:
@@ -594,16 +627,32 @@ def _refuse_half_proper_motions(table, pma, pmd) -> None:
 MAX_HALF_MOTION_ERRORS = 50
 
 
-def _names_per_star(flags) -> list[list[str]]:
-    """Flag names per star; stars with the same mask share one list (fast for 10**6)."""
-    uniq, inverse = np.unique(np.asarray(flags), return_inverse=True)
-    per_mask = flag_names(uniq, core.ConstellationFlag)
+#: The implausible-input (PropagationFlag) bits of a star are kept above this shift in the
+#: one mask per star that names its flags (ConstellationFlag bits below it).
+_INPUT_SHIFT = 32
+
+
+def _names_per_star(flags, implausible) -> list[list[str]]:
+    """Flag names per star: the ConstellationFlag names, then the names of the implausible
+    inputs (PropagationFlag bits); stars with the same masks share one list (fast for 10**6)."""
+    key = np.asarray(flags, dtype=np.int64) | (
+        np.asarray(implausible, dtype=np.int64) << _INPUT_SHIFT
+    )
+    uniq, inverse = np.unique(key, return_inverse=True)
+    own = flag_names(uniq & ((1 << _INPUT_SHIFT) - 1), core.ConstellationFlag)
+    inputs = flag_names(uniq >> _INPUT_SHIFT, core_prop.PropagationFlag)
+    per_mask = [(*a, *b) for a, b in zip(own, inputs, strict=True)]
     return [per_mask[k] for k in inverse.ravel().tolist()]
 
 
-def _flag_meanings(flags) -> dict:
-    present = int(np.bitwise_or.reduce(np.asarray(flags, dtype=np.int64).ravel(), initial=0))
-    used = {n for names in flag_names([present], core.ConstellationFlag) for n in names}
+def _flag_meanings(flags, implausible) -> dict:
+    used = set()
+    for mask, flag_type in (
+        (flags, core.ConstellationFlag),
+        (implausible, core_prop.PropagationFlag),
+    ):
+        present = int(np.bitwise_or.reduce(np.asarray(mask, dtype=np.int64).ravel(), initial=0))
+        used.update(n for names in flag_names([present], flag_type) for n in names)
     return {k: v for k, v in FLAG_MEANINGS.items() if k in used}
 
 
@@ -612,9 +661,9 @@ def _lookup_strings(values, index):
 
 
 def _membership_body(args, with_margin: bool):
-    table, res, flags, epoch = _locate(args, with_margin)
+    table, res, flags, implausible, epoch = _locate(args, with_margin)
     abbr = core.boundary_table().abbreviations
-    names = _names_per_star(flags)
+    names = _names_per_star(flags, implausible)
     n = table.size
     cols = {
         "id": table.ids,
@@ -638,7 +687,8 @@ def _membership_body(args, with_margin: bool):
         "star_count": n,
         "layout": layout,
         "units": UNITS,
-        "flag_meanings": _flag_meanings(flags),
+        "flag_meanings": _flag_meanings(flags, implausible),
+        "warnings": flag_warnings(implausible, table, PROPAGATION_WARNINGS),
     }
     if layout == "columns":
         body["columns"] = cols
@@ -824,8 +874,9 @@ def crossings(args):
         max_step_yr=step,
         reduction=args["reduction"],
     )
+    implausible = _implausible_inputs(plx, pma, pmd, rv)
     abbr = core.boundary_table().abbreviations
-    names = _names_per_star(res.flags)
+    names = _names_per_star(res.flags, implausible)
     epochs = epochs_out(res.epoch_jyear) if res.epoch_jyear.size else []
     per_star: list[list[dict]] = [[] for _ in range(table.size)]
     for k in range(res.star.size):
@@ -856,7 +907,8 @@ def crossings(args):
         "end": ends[2],
         "epoch_precision_days": core.CROSSING_EPOCH_TOLERANCE_DAYS,
         "star_count": table.size,
-        "flag_meanings": _flag_meanings(res.flags),
+        "flag_meanings": _flag_meanings(res.flags, implausible),
+        "warnings": flag_warnings(implausible, table, PROPAGATION_WARNINGS),
         "stars": stars,
     }
     count_stars("/v1/constellations/crossings", table.size)

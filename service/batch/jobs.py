@@ -8,6 +8,8 @@ do not depend on how the catalogue is partitioned (every core function is elemen
 
 from __future__ import annotations
 
+import enum
+
 import numpy as np
 
 from ..core import constellations as _constellations
@@ -490,6 +492,16 @@ CONSTELLATION_FLAG_MEANINGS = {
     _CF.SEARCH_INCOMPLETE: "Crossing search stopped early (not used in batch runs).",
 }
 
+#: The propagation's implausible-input flags alone, with the same names and bit values, for
+#: the constellations job's column of them (the API's constellation answers name them too).
+ImplausibleInputFlag = enum.IntFlag(
+    "ImplausibleInputFlag",
+    [(m.name, int(m)) for m in _PF if m & _propagation.IMPLAUSIBLE_INPUT_FLAGS],
+)
+IMPLAUSIBLE_INPUT_FLAG_MEANINGS = {
+    m: PROPAGATION_FLAG_MEANINGS[_PF[m.name]] for m in ImplausibleInputFlag
+}
+
 _MOTION_FIELDS = {
     "parallax_mas",
     "pm_ra_cosdec_mas_yr",
@@ -523,11 +535,21 @@ def _constellations_compute(inputs: dict, params: dict) -> dict:
             params["epoch_jyear"],
             **common,
         )
+    if params.get("epoch_jyear") is None:  # the motion columns are not read
+        implausible = np.zeros(np.shape(result.flags), dtype=np.uint32)
+    else:
+        implausible = _propagation.input_flags(
+            inputs["parallax_mas"],
+            inputs["pm_ra_cosdec_mas_yr"],
+            inputs["pm_dec_mas_yr"],
+            inputs["radial_velocity_km_s"],
+        ) & int(_propagation.IMPLAUSIBLE_INPUT_FLAGS)
     return {
         "constellation": result.index,
         "boundary_margin_arcsec": result.margin_arcsec,
         "constellation_across": result.other_side_index,
         "constellation_flags": result.flags,
+        "implausible_input_flags": implausible,
     }
 
 
@@ -649,6 +671,13 @@ def _constellations_outputs() -> tuple[OutputColumn, ...]:
             "bit mask",
             "ConstellationFlag bits (see metadata)",
         ),
+        OutputColumn(
+            "implausible_input_flags",
+            FLAG_DTYPE,
+            "bit mask",
+            "implausible parallax, proper motion, radial velocity or space velocity, with "
+            "--epoch (the motion is read only then): the propagation's bits (see metadata)",
+        ),
     )
 
 
@@ -658,7 +687,10 @@ CONSTELLATIONS = BatchJob(
     fields=(RA, DEC, PARALLAX, PM_RA_OPTIONAL, PM_DEC_OPTIONAL, RADIAL_VELOCITY)
     + (CATALOGUE_EPOCH_FIELD,),
     outputs=_constellations_outputs(),
-    flag_columns={"constellation_flags": (_CF, CONSTELLATION_FLAG_MEANINGS)},
+    flag_columns={
+        "constellation_flags": (_CF, CONSTELLATION_FLAG_MEANINGS),
+        "implausible_input_flags": (ImplausibleInputFlag, IMPLAUSIBLE_INPUT_FLAG_MEANINGS),
+    },
     compute=_constellations_compute,
     frames={"input": "ICRS", "boundaries": "B1875.0 equinox (FK4 or FK5 reduction)"},
     add_options=_constellations_options,

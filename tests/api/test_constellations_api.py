@@ -436,3 +436,64 @@ def test_star_without_motion_at_another_epoch_is_flagged_fixed(client):
 def test_list_takes_no_options(client):
     assert_problem(client.get(f"{BASE}?layout=columns"), 422, "layout")
     assert client.get(BASE).status_code == 200
+
+
+def test_implausible_inputs_named_and_warned_about(client):
+    """As in the propagation, frames and observed answers: a parallax above 1,000 mas (bound:
+    common practice, core.constants; 768,070 is 768.07 mas, Proxima Centauri's parallax in
+    Gaia DR3 (from memory), given in microarcseconds), a proper motion above 10.4 arcsec/yr,
+    a radial velocity in m/s (-41,700 for -41.7 km/s) and a space velocity above half the
+    speed of light (100 mas/yr at 1 Mpc) are computed as given, named in the star's flags
+    with the propagation's names and meanings, and warned about; the lookups said nothing
+    of them. 768.07 mas itself, the largest known parallax, is not flagged."""
+    from service.api.propagation import FLAG_MEANINGS as PROPAGATION_MEANINGS
+
+    good = {"ra_deg": 217.4, "dec_deg": -62.7, "parallax_mas": 768.07, "pm_ra_cosdec_mas_yr": 100.0,
+            "pm_dec_mas_yr": 50.0, "radial_velocity_km_s": 20.0}  # fmt: skip
+    stars = [
+        good,
+        dict(good, parallax_mas=768_070.0),
+        dict(good, pm_ra_cosdec_mas_yr=30_000.0),
+        dict(good, radial_velocity_km_s=-41_700.0),
+        dict(good, parallax_mas=0.001),
+    ]
+    expected = [
+        set(),
+        {"parallax_implausible"},
+        {"proper_motion_implausible"},
+        {"radial_velocity_implausible"},
+        {"space_velocity_implausible"},
+    ]
+    names = set().union(*expected)
+    moved = {"catalogue_epoch": "J2016.0", "epoch": "J2100.0"}
+    for url, extra in (("lookup", moved), ("lookup", {}), ("margins", moved)):
+        r = client.post(f"{BASE}/{url}", json=dict(extra, stars=stars))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        body = r.json
+        assert [set(s["flags"]) & names for s in body["stars"]] == expected, (url, extra)
+        assert {k: body["flag_meanings"][k] for k in names} == {
+            k: PROPAGATION_MEANINGS[k] for k in names
+        }
+        assert sorted(w["index"] for w in body["warnings"]) == [1, 2, 3, 4]
+        by_index = {w["index"]: w["message"] for w in body["warnings"]}
+        assert "microarcseconds given as milliarcseconds" in by_index[1]
+        assert "km/s, not m/s" in by_index[3]
+        assert body["stars"][0]["constellation"] == body["stars"][1]["constellation"]
+    # The constellation's own flags come first, then the inputs' (as in frames).
+    fixed = {"ra_deg": 217.4, "dec_deg": -62.7, "parallax_mas": 768_070.0}
+    body = client.post(f"{BASE}/lookup", json=dict(moved, stars=[fixed])).json
+    assert body["stars"][0]["flags"] == ["proper_motion_missing", "parallax_implausible"]
+    columns = {k: [s[k] for s in stars] for k in good}
+    body = client.post(f"{BASE}/lookup", json=dict(moved, stars=columns)).json
+    assert [set(f) & names for f in body["columns"]["flags"]] == expected
+    text = client.post(
+        f"{BASE}/lookup", json=dict(moved, stars=stars), headers={"Accept": "text/csv"}
+    ).get_data(as_text=True)
+    assert text.count("parallax_implausible") == 1
+    # The crossing search, over the same stars.
+    body = {"catalogue_epoch": "J2016.0", "start": "J2016.0", "end": "J2116.0", "stars": stars}
+    r = client.post(f"{BASE}/crossings", json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert [set(s["flags"]) & names for s in r.json["stars"]] == expected
+    assert names <= set(r.json["flag_meanings"])
+    assert sorted(w["index"] for w in r.json["warnings"]) == [1, 2, 3, 4]

@@ -617,3 +617,30 @@ def test_json_catalogue_errors_name_the_stars_of_the_json_file(tmp_path):
                    check=False)  # fmt: skip
     assert out.returncode == 1
     assert b"stars[*].ra_err: unknown field" in out.stderr
+
+
+def test_implausible_parallax_named_in_every_command_output(tmp_path):
+    """A parallax above 1,000 mas (768,070: Proxima Centauri's 768.07 mas in Gaia DR3, from
+    memory, given in microarcseconds; bound: common practice, core.constants) is named
+    parallax_implausible in the flags of every command's CSV, and in the flag counts a
+    batch run prints; 768.07 mas itself is not."""
+    cat = tmp_path / "near.csv"
+    cat.write_text(
+        "id,ra_deg,dec_deg,parallax_mas,pm_ra_cosdec_mas_yr,pm_dec_mas_yr,radial_velocity_km_s\n"
+        "a,217.4,-62.7,768.07,100.0,50.0,20.0\n"
+        "b,217.4,-62.7,768070.0,100.0,50.0,20.0\n"
+    )
+    for args in (
+        ["propagate", str(cat), "--epoch", "J2026.0"],
+        ["velocities", str(cat)],
+        ["constellations", str(cat), "--epoch", "J2026.0"],
+        ["crossings", str(cat), "--start", "J2016", "--end", "J2116"],
+    ):
+        if args[0] != "velocities":
+            args += ["--catalogue-epoch", "J2016.0"]
+        rows = list(csv.DictReader(io.StringIO(skydrift(*args).stdout.decode())))
+        flagged = {r["id"]: "parallax_implausible" in r["flags"].split(";") for r in rows}
+        assert flagged == {"a": False, "b": True}, args
+    out = skydrift("batch", "constellations", str(cat), str(tmp_path / "out"), "--epoch",
+                   "J2100.0", "--catalogue-epoch", "J2016.0", "--quiet")  # fmt: skip
+    assert "implausible_input_flags: parallax_implausible 1" in out.stdout.decode()
