@@ -65,9 +65,9 @@ IMPLAUSIBLE_PROPER_MOTION_MAS_YR = 10_400.0
 IMPLAUSIBLE_RADIAL_VELOCITY_KM_S = 5_000.0
 
 #: Parallax above which an input is implausible, mas: a distance under 1 pc. The largest
-#: known stellar parallax is Proxima Centauri's, about 768 mas (Gaia DR3 768.07 mas, from
-#: memory; Gaia DR2 gave 768.50 mas); 1,000 mas, nearer than 1 pc, is a round bound above
-#: every known star (common practice). A larger value usually means microarcseconds given
+#: known stellar parallax is about 768 mas (from memory; the tests name the star and the
+#: catalogue); 1,000 mas, nearer than 1 pc, is a round bound above every known star
+#: (common practice). A larger value usually means microarcseconds given
 #: as milliarcseconds (the annual parallax of a place observed is then 1,000 times too large).
 IMPLAUSIBLE_PARALLAX_MAS = 1_000.0
 
