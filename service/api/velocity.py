@@ -404,6 +404,9 @@ FLAG_MEANINGS = {
     "parallax_implausible": PARALLAX_IMPLAUSIBLE_MEANING + " Computed as given; not set "
     "where distance_pc replaces the parallax.",
     "monte_carlo_uncertainties": "Uncertainties from Monte Carlo draws.",
+    "correlations_inconsistent": "The correlations given cannot all hold at once (not "
+    "positive semi-definite): uncertainties are null. Refused by this API; set in batch "
+    "runs.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",
 }
@@ -515,28 +518,12 @@ def _solar_motion(args):
 
 
 def _check_correlations(table, n):
-    """422 naming the correlations that cannot hold together (not positive semi-definite).
-
-    A 3x3 correlation matrix with coefficients in [-1, 1] is positive semi-definite exactly
-    when its determinant is not negative (all its other principal minors, 1 and 1 - r^2,
-    are then non-negative already): a closed form, fast for a million stars. Stars with
-    correlations of the radial velocity have the 4x4 matrix checked by its eigenvalues.
-    """
+    """422 naming the stars whose correlations cannot hold together (not positive
+    semi-definite; core.correlations_inconsistent, which flags them in batch runs)."""
     c = table.columns
-    r12, r13, r23 = (np.nan_to_num(c[name], nan=0.0) for name in _USED_CORRELATIONS)
-    det = 1.0 + 2.0 * r12 * r13 * r23 - r12 * r12 - r13 * r13 - r23 * r23
-    bad_mask = det < -1e-12
-    r14, r24, r34 = (np.nan_to_num(c[name], nan=0.0) for name in _RV_CORRELATIONS)
-    with_rv = np.flatnonzero((r14 != 0.0) | (r24 != 0.0) | (r34 != 0.0))
-    if with_rv.size:
-        corr = np.broadcast_to(np.eye(4), (with_rv.size, 4, 4)).copy()
-        for (i, j), r in zip(
-            ((0, 1), (0, 2), (1, 2), (0, 3), (1, 3), (2, 3)),
-            (r12, r13, r23, r14, r24, r34),
-            strict=True,
-        ):
-            corr[:, i, j] = corr[:, j, i] = r[with_rv]
-        bad_mask[with_rv] |= np.linalg.eigvalsh(corr)[:, 0] < -1e-9
+    bad_mask = core.correlations_inconsistent(
+        *(c[name] for name in (*_USED_CORRELATIONS, *_RV_CORRELATIONS))
+    )
     bad = np.flatnonzero(bad_mask)
     if bad.size:
         abort(

@@ -339,6 +339,8 @@ VELOCITY_FLAG_MEANINGS = {
     "an unusable parallax. Computed as given.",
     _KF.PARALLAX_IMPLAUSIBLE: PARALLAX_IMPLAUSIBLE_MEANING + " Computed as given; not set "
     "where distance_pc replaces the parallax.",
+    _KF.CORRELATIONS_INCONSISTENT: "The correlations given cannot all hold at once (their "
+    "matrix is not positive semi-definite): uncertainties NaN.",
 }
 
 _CORRELATIONS = (

@@ -197,6 +197,11 @@ class KinematicsFlag(enum.IntFlag):
     #: (IMPLAUSIBLE_PARALLAX_MAS), more than any known star's (the largest is about
     #: 768 mas): probably microarcseconds given as milliarcseconds. Computed as given.
     PARALLAX_IMPLAUSIBLE = 2048
+    #: The correlations given among the parallax (or distance), the proper motions and the
+    #: radial velocity cannot all hold at once (their matrix is not positive
+    #: semi-definite): the uncertainties are null (correlations_inconsistent). The API
+    #: refuses such input; the batch jobs flag the row.
+    CORRELATIONS_INCONSISTENT = 4096
 
 
 @dataclass(frozen=True)
@@ -755,6 +760,35 @@ def space_velocity(
     )
 
 
+def correlations_inconsistent(r_pa, r_pd, r_ad, r_pr=0.0, r_ar=0.0, r_dr=0.0) -> np.ndarray:
+    """True where correlation coefficients of (parallax, mu_ra*, mu_dec, v_rad), each in
+    [-1, 1] (NaN read as 0), cannot hold together: their matrix is not positive
+    semi-definite.
+
+    A 3x3 correlation matrix is positive semi-definite exactly when its determinant is not
+    negative (its other principal minors, 1 and 1 - r^2, are then non-negative already): a
+    closed form, fast for a million stars. Stars with correlations of the radial velocity
+    have the 4x4 matrix checked by its eigenvalues. Tolerances: -1e-12 on the determinant,
+    -1e-9 on the smallest eigenvalue (rounding of coefficients given to 1e-16).
+    """
+    r12, r13, r23, r14, r24, r34 = (
+        np.nan_to_num(np.asarray(r, dtype=float), nan=0.0)
+        for r in (r_pa, r_pd, r_ad, r_pr, r_ar, r_dr)
+    )
+    r12, r13, r23, r14, r24, r34 = np.broadcast_arrays(r12, r13, r23, r14, r24, r34)
+    det = 1.0 + 2.0 * r12 * r13 * r23 - r12 * r12 - r13 * r13 - r23 * r23
+    bad = np.array(det < -1e-12)
+    with_rv = np.flatnonzero((r14 != 0.0) | (r24 != 0.0) | (r34 != 0.0))
+    if with_rv.size:
+        corr = np.broadcast_to(np.eye(4), (with_rv.size, 4, 4)).copy()
+        pairs = ((0, 1), (0, 2), (1, 2), (0, 3), (1, 3), (2, 3))
+        for (i, j), r in zip(pairs, (r12, r13, r23, r14, r24, r34), strict=True):
+            corr[:, i, j] = corr[:, j, i] = r.ravel()[with_rv]
+        flat = bad.reshape(-1)
+        flat[with_rv] |= np.linalg.eigvalsh(corr)[:, 0] < -1e-9
+    return bad
+
+
 def monte_carlo_stars(
     parallax_mas, parallax_error_mas, distance_pc, uncertainty_method, low_snr_threshold
 ):
@@ -1057,6 +1091,17 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
         flags |= (missing_err & np.isfinite(distance)) * np.uint32(
             KinematicsFlag.UNCERTAINTIES_MISSING
         )
+    # Correlations that cannot hold together give no uncertainties (the API refuses them;
+    # a batch row is flagged). Checked only where some correlation is given.
+    if rv_corr or np.any(rho_pa) or np.any(rho_pd) or np.any(rho_ad):
+        inconsistent = correlations_inconsistent(rho_pa, rho_pd, rho_ad, rho_pr, rho_ar, rho_dr)
+        if inconsistent.any():
+            flags |= inconsistent * np.uint32(KinematicsFlag.CORRELATIONS_INCONSISTENT)
+            s_aa, s_dd, s_ad, s_rr = (
+                np.where(inconsistent, np.nan, x) for x in (s_aa, s_dd, s_ad, s_rr)
+            )
+            if rv_corr:
+                s_ar, s_dr = (np.where(inconsistent, np.nan, x) for x in (s_ar, s_dr))
     # Rotation by Dec of the (north, radial) block.
     s_pe = -sd * s_ad
     s_pz = cd * s_ad
@@ -1194,6 +1239,7 @@ def _monte_carlo(flat, index, out, draws, rng):
         cov[:, 1, 3] = cov[:, 3, 1] = rho_ar[idx] * sa_ * srv
         cov[:, 2, 3] = cov[:, 3, 2] = rho_dr[idx] * sd_ * srv
         ok = np.isfinite(cov).all(axis=(1, 2))
+        ok &= ~correlations_inconsistent(r_pa, r_pd, rho_ad[idx], r_pr, rho_ar[idx], rho_dr[idx])
         cov[~ok] = 0.0
         # Square root of the (semi-definite) covariance through its eigen-decomposition.
         w, v = np.linalg.eigh(cov)

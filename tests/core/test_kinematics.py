@@ -19,6 +19,7 @@ from service.core.kinematics import (
     V_SUN_LSR_SCHOENRICH2010_KM_S,
     KinematicsFlag,
     astrometric_covariance,
+    correlations_inconsistent,
     galactic_velocity,
     monte_carlo_stars,
     observables_from_velocity,
@@ -708,6 +709,65 @@ def test_radial_velocity_correlations_enter_the_uncertainties():
     # Without the radial-velocity terms the U error is off by more than 10%.
     kw0 = {k: v for k, v in kw.items() if "radial_velocity_corr" not in k}
     assert abs(space_velocity(*star, **kw0).uvw_error_km_s[0] / ref_err[0] - 1) > 0.1
+
+
+def test_inconsistent_correlations_found_as_numpy_finds_them():
+    """The closed-form 3x3 test and the 4x4 eigenvalue test agree with numpy's eigenvalues
+    of the whole correlation matrix (reference: numpy.linalg.eigvalsh, smallest eigenvalue
+    below zero) on random coefficients in [-1, 1]; matrices within 1e-6 of singular are
+    left out, where rounding decides."""
+    rng = np.random.default_rng(21)
+    n = 20_000
+    r = rng.uniform(-1.0, 1.0, (6, n))
+    r[3:, : n // 2] = 0.0  # half without radial-velocity correlations: the 3x3 path
+    corr = np.broadcast_to(np.eye(4), (n, 4, 4)).copy()
+    for k, (i, j) in enumerate(((0, 1), (0, 2), (1, 2), (0, 3), (1, 3), (2, 3))):
+        corr[:, i, j] = corr[:, j, i] = r[k]
+    smallest = np.linalg.eigvalsh(corr)[:, 0]
+    clear = np.abs(smallest) > 1e-6
+    got = correlations_inconsistent(*r)
+    assert np.array_equal(got[clear], (smallest < 0)[clear])
+    assert 0.2 < got[: n // 2].mean() < 0.8 and 0.2 < got[n // 2 :].mean() < 0.9  # both kinds
+
+
+def test_inconsistent_correlations_flag_the_star_and_null_its_uncertainties():
+    """Batch runs pass correlations unchecked (the API refuses them): a star whose
+    correlations cannot hold together got uncertainties from a covariance that is not one,
+    without a word. It is flagged and its uncertainties are null; its velocities and the
+    other stars are unchanged. (0.9, 0.9, -0.9 has determinant -2.89: numpy's smallest
+    eigenvalue of that matrix is negative.)"""
+    star = (250.1, 36.4, 40.0, -150.0, 220.0, -30.0)
+    errs = dict(
+        parallax_error_mas=0.1, pm_ra_cosdec_error_mas_yr=0.2, pm_dec_error_mas_yr=0.15,
+        radial_velocity_error_km_s=0.8,
+    )  # fmt: skip
+    good = dict(parallax_pm_ra_cosdec_corr=0.2, parallax_pm_dec_corr=0.1,
+                pm_ra_cosdec_pm_dec_corr=-0.1)  # fmt: skip
+    bad = dict(parallax_pm_ra_cosdec_corr=0.9, parallax_pm_dec_corr=0.9,
+               pm_ra_cosdec_pm_dec_corr=-0.9)  # fmt: skip
+    pair = {k: np.array([good[k], bad[k]]) for k in good}
+    arrays = [np.array([x, x]) for x in star]
+    for method in ("linear", "monte_carlo"):
+        both = space_velocity(*arrays, **errs, **pair, uncertainty_method=method, seed=1)
+        alone = space_velocity(*star, **errs, **good, uncertainty_method=method, seed=1)
+        names = flag_names(both.flags, KinematicsFlag)
+        assert "correlations_inconsistent" in names[1]
+        assert "correlations_inconsistent" not in names[0]
+        assert np.isnan(both.uvw_error_km_s[1]).all()
+        assert np.isnan(both.total_velocity_error_km_s[1])
+        assert np.isnan(both.transverse_velocity_error_km_s[1])
+        # (last digits depend on the array shape: 1e-12 km/s)
+        assert np.abs(both.uvw_km_s[1] - alone.uvw_km_s).max() < 1e-12  # km/s
+        if method == "linear":
+            assert np.abs(both.uvw_error_km_s[0] - alone.uvw_error_km_s).max() < 1e-12  # km/s
+    # With a radial-velocity correlation the 4x4 matrix decides: 0.9 with the parallax and
+    # -0.9 with mu_a*, while parallax and mu_a* correlate at 0.9, cannot hold.
+    rv_bad = space_velocity(
+        *star, **errs, parallax_pm_ra_cosdec_corr=0.9, parallax_radial_velocity_corr=0.9,
+        pm_ra_cosdec_radial_velocity_corr=-0.9,
+    )  # fmt: skip
+    assert "correlations_inconsistent" in flag_names(rv_bad.flags, KinematicsFlag)[0]
+    assert np.isnan(rv_bad.uvw_error_km_s).all()
 
 
 def test_radial_velocity_correlations_are_those_of_a_full_covariance():
