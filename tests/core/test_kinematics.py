@@ -728,6 +728,17 @@ def test_inconsistent_correlations_found_as_numpy_finds_them():
     got = correlations_inconsistent(*r)
     assert np.array_equal(got[clear], (smallest < 0)[clear])
     assert 0.2 < got[: n // 2].mean() < 0.8 and 0.2 < got[n // 2 :].mean() < 0.9  # both kinds
+    # The core skips the test where every coefficient is within 1/2 (3x3) or 1/3 (4x4) in
+    # size (Gershgorin's circle theorem): numpy finds no negative eigenvalue there either,
+    # at the corners of that box included.
+    for size, bound in ((3, 0.5), (4, 1.0 / 3.0)):
+        k = size * (size - 1) // 2
+        corners = np.array(np.meshgrid(*[[-bound, bound]] * k)).reshape(k, -1).T
+        inside = np.vstack([corners, rng.uniform(-bound, bound, (5000, k))])
+        m = np.broadcast_to(np.eye(size), (len(inside), size, size)).copy()
+        for c, (i, j) in enumerate(zip(*np.triu_indices(size, 1), strict=True)):
+            m[:, i, j] = m[:, j, i] = inside[:, c]
+        assert np.linalg.eigvalsh(m)[:, 0].min() > -1e-12
 
 
 def test_inconsistent_correlations_flag_the_star_and_null_its_uncertainties():
