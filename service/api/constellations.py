@@ -12,7 +12,7 @@ from ..core import epochs as core_epochs
 from ..core import frames as core_frames
 from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
-from ..core.flags import flag_names
+from ..core.flags import FlagNameList, flag_names
 from .common import (
     FLAG_MEANINGS_DESCRIPTION,
     FLAGS_DESCRIPTION,
@@ -642,7 +642,9 @@ def _names_per_star(flags, implausible) -> list[list[str]]:
     own = flag_names(uniq & ((1 << _INPUT_SHIFT) - 1), core.ConstellationFlag)
     inputs = flag_names(uniq >> _INPUT_SHIFT, core_prop.PropagationFlag)
     per_mask = [(*a, *b) for a, b in zip(own, inputs, strict=True)]
-    return [per_mask[k] for k in inverse.ravel().tolist()]
+    inverse = inverse.ravel()
+    # A FlagNameList, as flag_names returns: the CSV and Arrow writers encode its codes.
+    return FlagNameList([per_mask[k] for k in inverse.tolist()], inverse, per_mask)
 
 
 def _flag_meanings(flags, implausible) -> dict:
