@@ -288,6 +288,35 @@ FLAG_MEANINGS_DESCRIPTION = (
     "star carries are left out)."
 )
 
+
+def units_field() -> ma.fields.Dict:
+    """An answer's ``units`` member."""
+    return ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": UNITS_DESCRIPTION},
+    )
+
+
+def flag_meanings_field() -> ma.fields.Dict:
+    """An answer's ``flag_meanings`` member."""
+    return ma.fields.Dict(
+        keys=ma.fields.String(),
+        values=ma.fields.String(),
+        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
+    )
+
+
+def star_count_field() -> ma.fields.Integer:
+    """An answer's ``star_count`` member."""
+    return ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
+
+
+def layout_field() -> ma.fields.String:
+    """An answer's ``layout`` member."""
+    return ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
+
+
 #: Each star's ``flags``.
 FLAGS_DESCRIPTION = (
     "Names of what was missing, assumed or replaced for this star (meanings in "

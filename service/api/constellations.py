@@ -14,14 +14,10 @@ from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import FlagNameList, flag_names
 from .common import (
-    FLAG_MEANINGS_DESCRIPTION,
     FLAGS_DESCRIPTION,
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
-    LAYOUT_DESCRIPTION,
     PROPAGATION_WARNINGS,
-    STAR_COUNT_DESCRIPTION,
-    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -31,8 +27,12 @@ from .common import (
     WarningSchema,
     always_present,
     epochs_out,
+    flag_meanings_field,
     flag_warnings,
+    layout_field,
     number_field,
+    star_count_field,
+    units_field,
 )
 from .errors import MORE_FIELD, further
 from .examples import load_example
@@ -395,18 +395,10 @@ class LookupResponseSchema(ma.Schema):
             "null when the request gave neither (the positions as given)."
         },
     )
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
-    units = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": UNITS_DESCRIPTION},
-    )
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    star_count = star_count_field()
+    layout = layout_field()
+    units = units_field()
+    flag_meanings = flag_meanings_field()
     warnings = ma.fields.List(
         ma.fields.Nested(WarningSchema), metadata={"description": WARNINGS_DESCRIPTION}
     )
@@ -468,12 +460,8 @@ class CrossingsResponseSchema(ma.Schema):
     epoch_precision_days = ma.fields.Float(
         metadata={"description": "Crossing epochs are located to within this, days."}
     )
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    star_count = star_count_field()
+    flag_meanings = flag_meanings_field()
     warnings = ma.fields.List(
         ma.fields.Nested(WarningSchema), metadata={"description": WARNINGS_DESCRIPTION}
     )

@@ -13,12 +13,9 @@ from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
 from .common import (
-    FLAG_MEANINGS_DESCRIPTION,
     FLAGS_DESCRIPTION,
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
-    STAR_COUNT_DESCRIPTION,
-    UNITS_DESCRIPTION,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -27,8 +24,11 @@ from .common import (
     check_epoch_count,
     check_result_count,
     epochs_out,
+    flag_meanings_field,
     number_field,
     request_now,
+    star_count_field,
+    units_field,
 )
 from .examples import load_example
 from .observability import count_stars
@@ -274,17 +274,9 @@ class FramesResponseSchema(ma.Schema):
             "catalogue epoch alone."
         },
     )
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    units = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": UNITS_DESCRIPTION},
-    )
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    star_count = star_count_field()
+    units = units_field()
+    flag_meanings = flag_meanings_field()
     methods = ma.fields.List(
         ma.fields.String(),
         metadata={"description": "How the conversions are made, with their sources."},

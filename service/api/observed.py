@@ -23,12 +23,9 @@ from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from .common import (
-    FLAG_MEANINGS_DESCRIPTION,
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
     PROPAGATION_WARNINGS,
-    STAR_COUNT_DESCRIPTION,
-    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -41,8 +38,11 @@ from .common import (
     check_epoch_count,
     check_result_count,
     epochs_out,
+    flag_meanings_field,
     flag_warnings,
     instants_out,
+    star_count_field,
+    units_field,
 )
 from .examples import DEMO_DIR, load_example
 from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
@@ -492,17 +492,9 @@ class ObservedResponseSchema(ma.Schema):
             "second table covers instants before the first."
         }
     )
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    units = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": UNITS_DESCRIPTION},
-    )
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    star_count = star_count_field()
+    units = units_field()
+    flag_meanings = flag_meanings_field()
     warnings = ma.fields.List(
         ma.fields.Nested(WarningSchema),
         metadata={

@@ -20,14 +20,10 @@ from ..core.flags import (
     present_flag_names,
 )
 from .common import (
-    FLAG_MEANINGS_DESCRIPTION,
     FLAGS_DESCRIPTION,
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
-    LAYOUT_DESCRIPTION,
     PROPAGATION_WARNINGS,
-    STAR_COUNT_DESCRIPTION,
-    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -38,8 +34,12 @@ from .common import (
     check_epoch_count,
     check_result_count,
     epochs_out,
+    flag_meanings_field,
     flag_warnings,
+    layout_field,
     number_field,
+    star_count_field,
+    units_field,
 )
 from .examples import load_example
 from .observability import count_stars
@@ -305,18 +305,10 @@ class PropagationResponseSchema(ma.Schema):
             "epochs of target_range."
         },
     )
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
-    units = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": UNITS_DESCRIPTION},
-    )
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    star_count = star_count_field()
+    layout = layout_field()
+    units = units_field()
+    flag_meanings = flag_meanings_field()
     warnings = ma.fields.List(
         ma.fields.Nested(WarningSchema),
         metadata={

@@ -25,15 +25,11 @@ from ..core.flags import (
     flag_names,
 )
 from .common import (
-    FLAG_MEANINGS_DESCRIPTION,
     ID_DESCRIPTION,
     INDEX_DESCRIPTION,
-    LAYOUT_DESCRIPTION,
     PARALLAX_WARNING,
     PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
-    STAR_COUNT_DESCRIPTION,
-    UNITS_DESCRIPTION,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
@@ -42,8 +38,12 @@ from .common import (
     StrictFloat,
     always_present,
     epochs_out,
+    flag_meanings_field,
     flag_warnings,
+    layout_field,
     number_field,
+    star_count_field,
+    units_field,
 )
 from .examples import load_example
 from .observability import count_stars
@@ -448,8 +448,8 @@ class VelocityWarningSchema(ma.Schema):
 
 @always_present(unless=("stars", "columns"))
 class VelocityResponseSchema(ma.Schema):
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
+    star_count = star_count_field()
+    layout = layout_field()
     uvw_convention = ma.fields.String(metadata={"description": UVW_CONVENTION})
     solar_motion_km_s = ma.fields.List(
         ma.fields.Float(),
@@ -471,16 +471,8 @@ class VelocityResponseSchema(ma.Schema):
             "(dimensionless)."
         }
     )
-    units = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": UNITS_DESCRIPTION},
-    )
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    units = units_field()
+    flag_meanings = flag_meanings_field()
     warnings = ma.fields.List(
         ma.fields.Nested(VelocityWarningSchema),
         metadata={"description": "Per-star warnings. " + WARNINGS_LIMIT_TEXT},
@@ -841,20 +833,12 @@ ObservablesResultSchema = always_present(
 
 @always_present(unless=("stars", "columns"))
 class ObservablesResponseSchema(ma.Schema):
-    star_count = ma.fields.Integer(metadata={"description": STAR_COUNT_DESCRIPTION})
-    layout = ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
+    star_count = star_count_field()
+    layout = layout_field()
     uvw_convention = ma.fields.String(metadata={"description": UVW_CONVENTION})
     solar_motion_km_s = VelocityResponseSchema._declared_fields["solar_motion_km_s"]
-    units = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": UNITS_DESCRIPTION},
-    )
-    flag_meanings = ma.fields.Dict(
-        keys=ma.fields.String(),
-        values=ma.fields.String(),
-        metadata={"description": FLAG_MEANINGS_DESCRIPTION},
-    )
+    units = units_field()
+    flag_meanings = flag_meanings_field()
     warnings = ma.fields.List(
         ma.fields.Nested(VelocityWarningSchema),
         metadata={"description": "Per-star warnings. " + WARNINGS_LIMIT_TEXT},

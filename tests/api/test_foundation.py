@@ -96,23 +96,29 @@ def test_no_files_served_from_the_working_directory(tmp_path, monkeypatch, setti
     assert r.mimetype == "application/problem+json"
 
 
-def test_reference_page_lists_every_parameter(client):
-    """Every path and query parameter of the OpenAPI document appears on the reference page,
-    in the section of its operation, with its description."""
+def _operation_sections(client):
+    """(document, path, path item, operation, its section of the reference page) for every
+    GET and POST operation of the OpenAPI document."""
     doc = client.get("/openapi.json").json
-    text = client.get("/docs").get_data(as_text=True)
-    sections = text.split("<h2>")
-    checked = 0
+    sections = client.get("/docs").get_data(as_text=True).split("<h2>")
     for path, ops in doc["paths"].items():
         for method, op in ops.items():
             if method not in ("get", "post"):
                 continue
             head = f"{method.upper()}</span> <code>{html.escape(path)}</code></h2>"
             (section,) = [s for s in sections if head in s]
-            for prm in ops.get("parameters", []) + op.get("parameters", []):
-                assert f"<code>{html.escape(prm['name'])}</code>" in section, (path, prm["name"])
-                assert html.escape(prm.get("description", "")) in section, (path, prm["name"])
-                checked += 1
+            yield doc, path, ops, op, section
+
+
+def test_reference_page_lists_every_parameter(client):
+    """Every path and query parameter of the OpenAPI document appears on the reference page,
+    in the section of its operation, with its description."""
+    checked = 0
+    for _, path, ops, op, section in _operation_sections(client):
+        for prm in ops.get("parameters", []) + op.get("parameters", []):
+            assert f"<code>{html.escape(prm['name'])}</code>" in section, (path, prm["name"])
+            assert html.escape(prm.get("description", "")) in section, (path, prm["name"])
+            checked += 1
     assert checked >= 60  # the outline options, and the query options of CSV and Arrow bodies
 
 
@@ -120,23 +126,15 @@ def test_reference_page_describes_every_response(client):
     """Every response of every operation appears on the reference page with the description
     the OpenAPI document gives it, also where the document refers to a shared component
     (the error responses: 400, 401, 403, 413, 415, 422, 429, 503 were listed as bare codes)."""
-    doc = client.get("/openapi.json").json
-    text = client.get("/docs").get_data(as_text=True)
-    sections = text.split("<h2>")
     checked = 0
-    for path, ops in doc["paths"].items():
-        for method, op in ops.items():
-            if method not in ("get", "post"):
-                continue
-            head = f"{method.upper()}</span> <code>{html.escape(path)}</code></h2>"
-            (section,) = [s for s in sections if head in s]
-            for code, resp in op["responses"].items():
-                if "$ref" in resp:
-                    resp = doc["components"]["responses"][resp["$ref"].rsplit("/", 1)[-1]]
-                assert resp["description"], (path, code)
-                line = f"<li><code>{code}</code> {html.escape(resp['description'])}</li>"
-                assert line in section, (path, code)
-                checked += 1
+    for doc, path, _, op, section in _operation_sections(client):
+        for code, resp in op["responses"].items():
+            if "$ref" in resp:
+                resp = doc["components"]["responses"][resp["$ref"].rsplit("/", 1)[-1]]
+            assert resp["description"], (path, code)
+            line = f"<li><code>{code}</code> {html.escape(resp['description'])}</li>"
+            assert line in section, (path, code)
+            checked += 1
     assert checked >= 100  # 15 operations, most with eight or more responses
 
 
