@@ -2040,12 +2040,19 @@ class _InstantState:
         self._geo = None
 
     def geocentric(self):
-        """Star-independent quantities for the geocentric places (computed once)."""
-        if self._geo is None:
-            self._geo = _geocentric_astrom(self.tt1, self.tt2, self.astrom, self.ebpv, self.ehp)
-            if "fast" in self._geo:  # one instant: the equation of the origins goes with it
-                self._geo["fast"].eo = float(self.eo)
-        return self._geo
+        """Star-independent quantities for the geocentric places (computed once).
+
+        A cached state is shared by the threads of a worker: it is stored only once
+        complete, so another thread never sees it without its equation of the origins (two
+        threads may both compute it the first time; they get the same numbers).
+        """
+        geo = self._geo
+        if geo is None:
+            geo = _geocentric_astrom(self.tt1, self.tt2, self.astrom, self.ebpv, self.ehp)
+            if "fast" in geo:  # one instant: the equation of the origins goes with it
+                geo["fast"].eo = float(self.eo)
+            self._geo = geo
+        return geo
 
 
 class _ByIdentity:

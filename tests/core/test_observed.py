@@ -757,3 +757,42 @@ def test_block_path_equals_general_path(n):
             diff = np.where(cos_diff <= 1e-15, 0.0, diff)
         one_nas = 1.0 / 3.6e12 if name.endswith("_deg") else 1e-9  # deg, arcsec
         assert np.all((diff <= one_nas) | (diff <= 1e-12 * np.abs(ref[ok]))), name
+
+
+def test_cached_instant_state_never_hands_out_geocentric_quantities_half_made():
+    # A one-instant state is cached and shared by a worker's threads. Thread A computes the
+    # geocentric quantities; a thread B asking while A is still finishing them must get
+    # them complete, with the equation of the origins (before: stored first and completed
+    # after, so B got them without it, an AttributeError and a 500 under gunicorn threads).
+    # Reference: ERFA t_erfa_c.c t_atci13, eo -0.002900618712657375647 rad, tol 1e-12 rad.
+    import threading
+
+    jd1, jd2 = _utc_for_tt(2456165.5, 0.401182685)
+    refr = O._refraction_settings(0.0, O.Atmosphere(0.0, None, None, None))
+    st = O._InstantState(
+        np.asarray(jd1), np.asarray(jd2), O.make_site(0.0, 0.0, 0.0), refr,
+        O.earth_orientation(), (0.0, 0.0, 0.0),
+    )  # fmt: skip
+    inside, release = threading.Event(), threading.Event()
+
+    class SlowEo:  # the first reading of the equation of the origins waits for thread B
+        calls = 0
+
+        def __float__(self):
+            SlowEo.calls += 1
+            if SlowEo.calls == 1:
+                inside.set()
+                release.wait(10.0)
+            return float(eo)
+
+    eo, st.eo = st.eo, SlowEo()
+    got = {}
+    a = threading.Thread(target=lambda: got.setdefault("a", st.geocentric()))
+    a.start()
+    assert inside.wait(10.0)
+    got["b"] = st.geocentric()
+    eo_b = getattr(got["b"]["fast"], "eo", None)  # as thread B would use it, now
+    release.set()
+    a.join(10.0)
+    assert eo_b == pytest.approx(-0.002900618712657375647, abs=1e-12)
+    assert got["a"]["fast"].eo == pytest.approx(-0.002900618712657375647, abs=1e-12)
