@@ -396,6 +396,22 @@ def _split_ring(ring: np.ndarray) -> list:
 # ------------------------------------------------------------------ rendering
 
 
+def load_renderer() -> None:
+    """Import what drawing and saving a chart needs (the service calls it at start).
+
+    Imported by the first chart request instead, matplotlib took about 0.4 s of it; a
+    request time limit (SKYDRIFT_REQUEST_TIMEOUT_S) reached during the import left
+    matplotlib half imported, and every later chart of that worker process failed with a
+    500 ("module 'matplotlib' has no attribute ...") until the process was restarted.
+    """
+    import matplotlib.backends.backend_agg  # noqa: F401  (PNG)
+    import matplotlib.backends.backend_svg  # noqa: F401  (SVG)
+    from matplotlib import collections, figure, patheffects, ticker  # noqa: F401
+    from PIL import Image
+
+    Image.preinit()  # the image plugins saving a PNG loads on first use
+
+
 def _figure(width_in: float, height_in: float):
     from matplotlib.figure import Figure
 

@@ -278,4 +278,9 @@ def field(args):
 
 
 def register(app, api):
+    from .. import charts
+
+    # matplotlib is imported now, not by the first chart request, where a request time limit
+    # could interrupt the import (service.charts.load_renderer).
+    charts.load_renderer()
     api.register_blueprint(blp)

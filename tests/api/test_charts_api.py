@@ -262,3 +262,36 @@ def test_control_characters_cannot_reach_the_svg(client, track_body, demo_catalo
     ok = client.post("/v1/charts/track", json=dict(track_body, title="two\nlines"))
     assert ok.status_code == 200
     ET.fromstring(ok.data)  # well-formed
+
+
+def test_a_chart_past_the_time_limit_does_not_break_later_charts():
+    # The first chart request of a process imported matplotlib (about 0.4 s). Past
+    # SKYDRIFT_REQUEST_TIMEOUT_S during that import twice (a retry), matplotlib stayed half
+    # imported and every later chart of the process was a 500 ("module 'matplotlib' has no
+    # attribute 'get_data_path'"), with no limit too. A fresh interpreter: an application
+    # with a 0.05 s limit answers the chart 503 twice (README: past the limit, 503); then
+    # one without a limit must draw it: 200, SVG.
+    import subprocess
+    import sys
+
+    from tests.conftest import ROOT
+
+    code = (
+        "import json, sys\n"
+        "from service.api import create_app\n"
+        "from service.config import Settings\n"
+        f"body = json.loads(open({str(DEMO / 'examples' / 'chart_track_request.json')!r}).read())\n"
+        "statuses = []\n"
+        "for limit in (0.05, 0.05, 0.0):\n"
+        "    app = create_app({'SKYDRIFT_SETTINGS': Settings(request_timeout_s=limit)})\n"
+        "    r = app.test_client().post('/v1/charts/track', json=body)\n"
+        "    statuses.append((r.status_code, r.mimetype))\n"
+        "print(json.dumps(statuses))\n"
+    )
+    out = subprocess.run(
+        [sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=300
+    )
+    assert out.returncode == 0, out.stderr[-2000:]
+    statuses = json.loads(out.stdout.strip().splitlines()[-1])
+    assert [s[0] for s in statuses[:2]] == [503, 503]
+    assert statuses[2] == [200, "image/svg+xml"]
