@@ -400,7 +400,7 @@ def load_renderer() -> None:
     """Import what drawing and saving a chart needs (the service calls it at start).
 
     Imported by the first chart request instead, matplotlib took about 0.4 s of it; a
-    request time limit (SKYDRIFT_REQUEST_TIMEOUT_S) reached during the import left
+    request time limit (SKYDRIFT_REQUEST_TIMEOUT_S) reached during the import twice left
     matplotlib half imported, and every later chart of that worker process failed with a
     500 ("module 'matplotlib' has no attribute ...") until the process was restarted.
     """

@@ -230,6 +230,11 @@ class _Watchdog:
             with self.lock:
                 self.fired.discard(ident)
 
+    def fired_here(self) -> bool:
+        """Whether this thread's request ran past its deadline (until it is disarmed)."""
+        with self.lock:
+            return threading.get_ident() in self.fired
+
     def _run(self) -> None:
         while True:
             time.sleep(self.TICK_S)
@@ -249,6 +254,17 @@ def _set_async_exc(ident: int, exc_type) -> None:
 
 
 _watchdog = _Watchdog()
+
+
+def time_limit_passed() -> bool:
+    """Whether the request being served ran past SKYDRIFT_REQUEST_TIMEOUT_S.
+
+    The exception is raised wherever the request's thread next runs Python code; inside an
+    extension's callback (matplotlib's path conversion, for one) the extension may replace
+    it with its own error (ValueError: Invalid affine transformation matrix), which must
+    still be answered as the time limit, 503, not as an unexpected 500.
+    """
+    return _watchdog.fired_here()
 
 
 # --- wiring ---------------------------------------------------------------------------------

@@ -283,6 +283,11 @@ def handle_unexpected(error: Exception) -> Response:
     """Log an unexpected failure and answer a bare 500 problem (no trace to the client)."""
     if isinstance(error, HTTPException):
         return handle_http_exception(error)
+    from .access import RequestTimeLimit, time_limit_passed
+
+    if time_limit_passed():  # the time limit's exception, turned into another by a library
+        log.info("request past its time limit ended with %s: %s", type(error).__name__, error)
+        return handle_http_exception(RequestTimeLimit())
     log.exception("unhandled error", extra={"request_id": getattr(g, "request_id", None)})
     ise = InternalServerError()
     return problem_response(

@@ -605,3 +605,28 @@ def test_cached_answers_differ_by_request_and_stay_private_behind_tokens(client,
     )
     assert lookup.status_code == 200 and lookup.headers["Cache-Control"] == "no-store"
     assert "ETag" not in lookup.headers
+
+
+def test_request_time_limit_turned_into_another_error_by_a_library_is_still_503(settings):
+    # The time limit's exception arrives wherever the thread next runs Python code; inside
+    # an extension's callback the extension may report its own error instead (seen under
+    # load: matplotlib's "ValueError: Invalid affine transformation matrix" for a chart past
+    # the limit). README: past the limit a request is answered 503, not 500.
+    from service.api.access import RequestTimeLimit
+
+    app = create_app({"SKYDRIFT_SETTINGS": dataclasses.replace(settings, request_timeout_s=0.2)})
+
+    @app.get("/test-slow-extension")
+    def slow_extension():
+        try:
+            end = time.monotonic() + 5.0
+            while time.monotonic() < end:
+                time.sleep(0.01)
+        except RequestTimeLimit:  # what an extension converting the error does
+            raise ValueError("Invalid affine transformation matrix") from None
+        return {"slept": 5.0}
+
+    r = app.test_client().get("/test-slow-extension")
+    assert_problem(r, 503)
+    assert "time limit" in r.json["detail"]
+    assert app.test_client().get("/health").status_code == 200
