@@ -199,6 +199,8 @@ class _Watchdog:
     """
 
     TICK_S = 0.05
+    #: Seconds between two raisings in a request that is still running (one was dropped).
+    REFIRE_S = 1.0
 
     def __init__(self):
         self.lock = threading.Lock()
@@ -222,7 +224,8 @@ class _Watchdog:
         ident = threading.get_ident()
         try:
             with self.lock:
-                if self.deadlines.pop(ident, None) is None and ident in self.fired:
+                self.deadlines.pop(ident, None)
+                if ident in self.fired:
                     # Fired as the request finished, perhaps not yet raised: withdraw it.
                     _set_async_exc(ident, None)
                 self.fired.discard(ident)
@@ -242,7 +245,10 @@ class _Watchdog:
             with self.lock:
                 for ident, deadline in list(self.deadlines.items()):
                     if now >= deadline:
-                        del self.deadlines[ident]
+                        # Raised again every REFIRE_S until the request ends: Python prints
+                        # and drops an exception raised in a weakref callback or a __del__
+                        # (matplotlib's charts run many), and the request would run on.
+                        self.deadlines[ident] = now + self.REFIRE_S
                         self.fired.add(ident)
                         _set_async_exc(ident, RequestTimeLimit)
 
