@@ -317,6 +317,16 @@ def layout_field() -> ma.fields.String:
     return ma.fields.String(metadata={"description": LAYOUT_DESCRIPTION})
 
 
+def index_field() -> ma.fields.Integer:
+    """A per-star answer's (or warning's) ``index`` member."""
+    return ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
+
+
+def id_field() -> ma.fields.Raw:
+    """A per-star answer's (or warning's) ``id`` member, echoed from the request."""
+    return ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+
+
 #: Each star's ``flags``.
 FLAGS_DESCRIPTION = (
     "Names of what was missing, assumed or replaced for this star (meanings in "
@@ -324,10 +334,15 @@ FLAGS_DESCRIPTION = (
 )
 
 
+def flags_field() -> ma.fields.List:
+    """A per-star answer's ``flags`` member."""
+    return ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
+
+
 @always_present
 class WarningSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    index = index_field()
+    id = id_field()
     message = ma.fields.String(
         metadata={
             "description": "What looks wrong with the star, in words (and what to check, "

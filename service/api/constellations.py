@@ -14,9 +14,6 @@ from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import FlagNameList, flag_names
 from .common import (
-    FLAGS_DESCRIPTION,
-    ID_DESCRIPTION,
-    INDEX_DESCRIPTION,
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
@@ -29,6 +26,9 @@ from .common import (
     epochs_out,
     flag_meanings_field,
     flag_warnings,
+    flags_field,
+    id_field,
+    index_field,
     layout_field,
     number_field,
     star_count_field,
@@ -333,8 +333,8 @@ class ConstellationListSchema(ma.Schema):
 
 @always_present(unless=("margin_arcsec", "across", "near_boundary"))
 class MembershipSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    index = index_field()
+    id = id_field()
     constellation = ma.fields.String(metadata={"description": "IAU abbreviation."})
     name = ma.fields.String(metadata={"description": "IAU name."})
     constellation_fk4 = ma.fields.String(metadata={"description": "Answer of the fk4 reduction."})
@@ -370,7 +370,7 @@ class MembershipSchema(ma.Schema):
             "equinox B1875.0 of the boundaries by the chosen reduction, degrees."
         }
     )
-    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
+    flags = flags_field()
 
 
 #: What the answers say of their warnings (the propagation's, on the same inputs).
@@ -425,8 +425,8 @@ class CrossingSchema(ma.Schema):
 
 @always_present
 class StarCrossingsSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    index = index_field()
+    id = id_field()
     constellation_at_start = ma.fields.String(
         metadata={"description": "IAU abbreviation of the constellation at start."}
     )
@@ -440,7 +440,7 @@ class StarCrossingsSchema(ma.Schema):
             "when the star stays in one constellation."
         },
     )
-    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
+    flags = flags_field()
 
 
 @always_present

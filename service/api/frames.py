@@ -13,9 +13,6 @@ from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
 from .common import (
-    FLAGS_DESCRIPTION,
-    ID_DESCRIPTION,
-    INDEX_DESCRIPTION,
     Blueprint,
     EpochField,
     EpochOutSchema,
@@ -25,6 +22,9 @@ from .common import (
     check_result_count,
     epochs_out,
     flag_meanings_field,
+    flags_field,
+    id_field,
+    index_field,
     number_field,
     request_now,
     star_count_field,
@@ -243,9 +243,9 @@ FrameAtEpochSchema = always_present(
 
 @always_present
 class FrameResultSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
-    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
+    index = index_field()
+    id = id_field()
+    flags = flags_field()
     at_epochs = ma.fields.List(
         ma.fields.Nested(FrameAtEpochSchema),
         metadata={"description": "One entry per target epoch, in the order of epochs."},

@@ -23,8 +23,6 @@ from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from .common import (
-    ID_DESCRIPTION,
-    INDEX_DESCRIPTION,
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
@@ -40,6 +38,8 @@ from .common import (
     epochs_out,
     flag_meanings_field,
     flag_warnings,
+    id_field,
+    index_field,
     instants_out,
     star_count_field,
     units_field,
@@ -452,8 +452,8 @@ ObservedPlaceSchema = always_present(
 
 @always_present
 class ObservedStarSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    index = index_field()
+    id = id_field()
     at_instants = ma.fields.List(
         ma.fields.Nested(ObservedPlaceSchema),
         metadata={"description": "One entry per instant, in the order of instants."},

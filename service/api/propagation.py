@@ -20,9 +20,6 @@ from ..core.flags import (
     present_flag_names,
 )
 from .common import (
-    FLAGS_DESCRIPTION,
-    ID_DESCRIPTION,
-    INDEX_DESCRIPTION,
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
@@ -36,6 +33,9 @@ from .common import (
     epochs_out,
     flag_meanings_field,
     flag_warnings,
+    flags_field,
+    id_field,
+    index_field,
     layout_field,
     number_field,
     star_count_field,
@@ -281,9 +281,9 @@ class AtEpochSchema(ma.Schema):
 
 @always_present
 class StarResultSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
-    flags = ma.fields.List(ma.fields.String(), metadata={"description": FLAGS_DESCRIPTION})
+    index = index_field()
+    id = id_field()
+    flags = flags_field()
     at_epochs = ma.fields.List(
         ma.fields.Nested(AtEpochSchema),
         metadata={"description": "One entry per target epoch, in the order of epochs."},

@@ -25,8 +25,6 @@ from ..core.flags import (
     flag_names,
 )
 from .common import (
-    ID_DESCRIPTION,
-    INDEX_DESCRIPTION,
     PARALLAX_WARNING,
     PROPER_MOTION_WARNING,
     RADIAL_VELOCITY_WARNING,
@@ -40,6 +38,9 @@ from .common import (
     epochs_out,
     flag_meanings_field,
     flag_warnings,
+    flags_field,
+    id_field,
+    index_field,
     layout_field,
     number_field,
     star_count_field,
@@ -417,11 +418,9 @@ def _float_list(description):
 
 
 _RESULT_FIELDS = {
-    "index": ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION}),
-    "id": ma.fields.Raw(allow_none=True, metadata={"description": "Your identifier, echoed."}),
-    "flags": ma.fields.List(
-        ma.fields.String(), metadata={"description": "What was missing or assumed."}
-    ),
+    "index": index_field(),
+    "id": id_field(),
+    "flags": flags_field(),
 }
 for _name, _desc in _OUTPUT_DESCRIPTIONS.items():
     if _name.endswith("_interval_km_s"):
@@ -436,8 +435,8 @@ VelocityResultSchema = always_present(
 
 @always_present
 class VelocityWarningSchema(ma.Schema):
-    index = ma.fields.Integer(metadata={"description": INDEX_DESCRIPTION})
-    id = ma.fields.Raw(allow_none=True, metadata={"description": ID_DESCRIPTION})
+    index = index_field()
+    id = id_field()
     message = ma.fields.String(
         metadata={
             "description": "What looks wrong with the star, in words, and what to check; "
