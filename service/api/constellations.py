@@ -38,7 +38,6 @@ from .errors import MORE_FIELD, further
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .observability import count_stars
-from .propagation import IMPLAUSIBLE_INPUT_FLAGS
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .tables import StarTableField
 
@@ -525,7 +524,7 @@ def _locate(args, with_margin: bool):
     if epoch is None:
         epoch = cat_epoch
     _refuse_half_proper_motions(table, pma, pmd)
-    implausible = _implausible_inputs(plx, pma, pmd, rv)
+    implausible = core_prop.implausible_input_flags(plx, pma, pmd, rv)
     if args["near_boundary_arcsec"] is None:  # the operator's default
         near = current_app.config["SKYDRIFT_SETTINGS"].near_boundary_arcsec
         args = {**args, "near_boundary_arcsec": near}
@@ -576,13 +575,6 @@ def _locate(args, with_margin: bool):
         fixed = np.uint16(core.ConstellationFlag.PROPER_MOTION_MISSING)
         flags = np.where(moving, flags, flags | fixed)
     return table, res, flags, implausible, epoch
-
-
-def _implausible_inputs(plx, pma, pmd, rv):
-    """Per star, the propagation's implausible-input flags (PropagationFlag bits) of the
-    inputs as given: a star is flagged whether or not it is moved, as the propagation, frames
-    and observed answers flag it (NaN, an unknown value, raises none)."""
-    return core_prop.input_flags(plx, pma, pmd, rv) & IMPLAUSIBLE_INPUT_FLAGS
 
 
 def _refuse_half_proper_motions(table, pma, pmd) -> None:
@@ -864,7 +856,7 @@ def crossings(args):
         max_step_yr=step,
         reduction=args["reduction"],
     )
-    implausible = _implausible_inputs(plx, pma, pmd, rv)
+    implausible = core_prop.implausible_input_flags(plx, pma, pmd, rv)
     abbr = core.boundary_table().abbreviations
     names = _names_per_star(res.flags, implausible)
     epochs = epochs_out(res.epoch_jyear) if res.epoch_jyear.size else []

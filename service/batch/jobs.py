@@ -540,12 +540,12 @@ def _constellations_compute(inputs: dict, params: dict) -> dict:
     if params.get("epoch_jyear") is None:  # the motion columns are not read
         implausible = np.zeros(np.shape(result.flags), dtype=np.uint32)
     else:
-        implausible = _propagation.input_flags(
+        implausible = _propagation.implausible_input_flags(
             inputs["parallax_mas"],
             inputs["pm_ra_cosdec_mas_yr"],
             inputs["pm_dec_mas_yr"],
             inputs["radial_velocity_km_s"],
-        ) & int(_propagation.IMPLAUSIBLE_INPUT_FLAGS)
+        )
     return {
         "constellation": result.index,
         "boundary_margin_arcsec": result.margin_arcsec,

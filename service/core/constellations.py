@@ -1078,7 +1078,7 @@ def _margins_block(xyz, ra_h, index):
     start_all = mi.start[pos]
     x0, y0, z0 = xyz[0], xyz[1], xyz[2]
     # cos(dec) from x and y, not sqrt(1 - z^2): near a pole 1 - z^2 cancels and would put
-    # up to 0.004 arcsec into the margin (about sqrt(eps) rad, within 1e-8 rad of a pole)
+    # up to 0.005 arcsec into the margin (about sqrt(eps) rad, within 1e-8 rad of a pole)
     rho0 = np.sqrt(x0 * x0 + y0 * y0)
     # first candidate of every point, in input order
     best_seg = mi.flat[start_all]

@@ -241,6 +241,14 @@ def input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocit
     return flags
 
 
+def implausible_input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s):
+    """The implausible-input bits alone (IMPLAUSIBLE_INPUT_FLAGS) of :func:`input_flags`: what
+    an endpoint or job that may not move the stars (constellation lookups) names per star,
+    judged on the inputs as given (NaN, an unknown value, raises none)."""
+    flags = input_flags(parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr, radial_velocity_km_s)
+    return flags & int(IMPLAUSIBLE_INPUT_FLAGS)
+
+
 def _input_flags_one(plx: float, pma: float, pmd: float, rv: float) -> int:
     """:func:`input_flags` of one star, as an int (the same tests, in the same order)."""
     F = PropagationFlag
