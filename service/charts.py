@@ -397,7 +397,8 @@ def _split_ring(ring: np.ndarray) -> list:
 
 
 def load_renderer() -> None:
-    """Import what drawing and saving a chart needs (the service calls it at start).
+    """Import what drawing and saving a chart needs (the service calls it at start when a
+    request time limit is set).
 
     Imported by the first chart request instead, matplotlib took about 0.4 s of it; a
     request time limit (SKYDRIFT_REQUEST_TIMEOUT_S) reached during the import twice left
