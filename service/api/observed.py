@@ -265,7 +265,10 @@ class AtmosphereSchema(ma.Schema):
         error="must be between {min:g} and {max:g} degrees Celsius (not kelvin: 280 K is 6.85 C)",
     )
     relative_humidity = _num(
-        "Relative humidity, a dimensionless fraction, 0 to 1. Null: 0.5.",
+        "Relative humidity, a dimensionless fraction, 0 to 1. Null: 0.5. Above 0 only "
+        "where water would not boil: the saturation vapour pressure at the temperature (SOFA "
+        "refco's formula: about 201 hPa at 60 C, 23 hPa at 20 C, 6.1 hPa at 0 C) must be "
+        "below the pressure, or the request is refused (422) as air that cannot exist.",
         lo=0.0,
         hi=1.0,
         error="must be between 0 and 1, a fraction (not a percentage: 55 % is 0.55)",

@@ -880,6 +880,11 @@ def refraction_settings(site: Site, atmosphere: Atmosphere | None) -> Refraction
        (:func:`standard_atmosphere`); missing temperature likewise; pressure 0 switches
        refraction off.
     2. Results are cached per exact site height and atmosphere.
+    3. Air that cannot exist is refused with :class:`ObservedInputError` on
+       ``atmosphere.relative_humidity``: a humidity above 0 where the saturation vapour
+       pressure of water at the temperature is not below the pressure, so that refco's
+       water-vapour pressure is not below the total pressure
+       (:func:`refco_saturation_pressure_hpa`, Note 2).
     """
     atm = atmosphere or Atmosphere()
     return _refraction_settings_cached(
@@ -916,8 +921,78 @@ def _refraction_settings(height_m: float, atm: Atmosphere) -> RefractionSettings
     # but the radio range here begins at 100 um; the radio formula does not depend on the
     # wavelength, so every radio wavelength goes to refco as the range's upper end.
     wl_refco = WAVELENGTH_RADIO_UM[1] if wl >= WAVELENGTH_RADIO_UM[0] else wl
+    ps = refco_saturation_pressure_hpa(p, t) if p > 0.0 else 0.0
+    if rh > 0.0 and ps >= p > 0.0:
+        raise ObservedInputError("atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm))
     refa, refb = _refco_cached(p, t, float(rh), float(wl_refco))
+    if not (math.isfinite(refa) and math.isfinite(refb)):  # dry air exactly at ps = p: 0/0
+        raise ObservedInputError("atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm))
     return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb)
+
+
+def refco_saturation_pressure_hpa(pressure_hpa, temperature_c):
+    """Saturation vapour pressure of water over a flat surface, as SOFA ``refco`` has it.
+
+    Parameters
+    ----------
+    pressure_hpa : float
+        Total air pressure, hPa (within refco's safe range 0-10000, which it would clamp).
+    temperature_c : float
+        Air temperature, degrees Celsius (within refco's safe range -150 to 200).
+
+    Returns
+    -------
+    float
+        Saturation vapour pressure ps, hPa.
+
+    Notes
+    -----
+    1. ps = 10^((0.7859 + 0.03477 t) / (1 + 0.00412 t)) (1 + p (4.5e-6 + 6e-10 t^2)),
+       t in deg C, p in hPa (Gill 1982, eqs. A4.5-A4.7, as written in refco).
+    2. refco turns the relative humidity r into the water-vapour pressure
+       pw = r ps / (1 - (1 - r) ps / p) (Crane 1976, eq. 2.5.5). For r > 0, pw lies in
+       (0, p) exactly when ps < p; where ps >= p (water would boil: at 60 C below about 201
+       hPa, at 20 C below 23.4 hPa, at 0 C below 6.1 hPa) pw is at or above the total
+       pressure, infinite or negative, and so are the refraction constants built on it
+       (an optical refraction of -1.35 arcsec at 45 deg for 60 C, 1 hPa, r = 1). Dry air
+       (r = 0) has pw = 0 at any pressure. Realistic air (-40 to +50 C, 500-1100 hPa)
+       has ps below 125 hPa, far from the limit.
+
+    References
+    ----------
+    IAU SOFA Board, SOFA routine refco (source and its Note 5), 2023 release.
+    Gill, A.E. 1982, Atmosphere-Ocean Dynamics, Academic Press, eqs. A4.5-A4.7.
+    Crane, R.K. 1976, in Methods of Experimental Physics 12B, Academic Press, eq. 2.5.5.
+    """
+    t = float(temperature_c)
+    # refco's coefficients (Gill 1982): log10 of ps over water in hPa, and the enhancement
+    # factor of moist air at total pressure p, hPa^-1 and hPa^-1 K^-2.
+    return 10.0 ** ((0.7859 + 0.03477 * t) / (1.0 + 0.00412 * t)) * (
+        1.0 + float(pressure_hpa) * (4.5e-6 + 6e-10 * t * t)
+    )
+
+
+def _no_such_air(p, t, t_src, atm: Atmosphere) -> str:
+    """Why refco's water-vapour pressure is impossible here, in one sentence (for 422).
+
+    The pressure is a given one: the standard atmosphere's (265 hPa and above up to the
+    highest accepted site) is above the saturation pressure at any accepted temperature.
+    """
+    rh = DEFAULT_RELATIVE_HUMIDITY if atm.relative_humidity is None else atm.relative_humidity
+    ps = refco_saturation_pressure_hpa(p, t)
+    d = 1.0 - (1.0 - rh) * ps / p
+    if d > 0.0:
+        pw = f"{rh * ps / d:.4g} hPa"
+    else:  # refco divides by d: zero (0/0 for dry air) or negative
+        pw = "negative" if d < 0.0 else ("undefined" if rh == 0.0 else "infinite")
+    std = " (standard atmosphere)"
+    return (
+        f"relative humidity {rh:g}{' (default)' if atm.relative_humidity is None else ''} "
+        f"at {t:.4g} C{std if t_src != 'given' else ''} and {p:.4g} hPa: SOFA refco's "
+        f"water-vapour pressure, {pw} "
+        f"(saturation {ps:.4g} hPa), is not below the total pressure; no such air (water "
+        "boils). Give pressure in hPa, a lower temperature or humidity 0 (dry air)"
+    )
 
 
 # ---------------------------------------------------------------------------------------------

@@ -496,6 +496,21 @@ def test_humidity_out_of_range_names_the_field(client, observed_example):
     assert_problem(r, 422, "atmosphere.relative_humidity")
 
 
+def test_air_that_cannot_exist_names_the_humidity(client, observed_example):
+    # 60 C, humidity 1, 1 hPa: water vapour of 201 hPa (SOFA refco's saturation formula) in
+    # 1 hPa of air; pyerfa refco gives an optical A of -6.5e-6 rad, a negative refraction.
+    bad = {"pressure_hpa": 1.0, "temperature_c": 60.0, "relative_humidity": 1.0}
+    r = client.post(OBS, json=dict(observed_example, atmosphere=bad))
+    assert_problem(r, 422, "atmosphere.relative_humidity")
+    message = r.json["errors"][0]["message"]
+    assert "water-vapour pressure, 200.8 hPa" in message
+    assert "not below the total pressure" in message
+    # Pressure 0 (refraction off) and dry air stay accepted in the same heat.
+    for ok in ({**bad, "pressure_hpa": 0.0}, {**bad, "relative_humidity": 0.0}):
+        r = client.post(OBS, json=dict(observed_example, atmosphere=ok))
+        assert r.status_code == 200, r.json
+
+
 def test_temperature_bounds_say_the_unit(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, atmosphere={"temperature_c": -300}))
     assert_problem(r, 422, "atmosphere.temperature_c")

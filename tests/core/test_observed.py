@@ -279,6 +279,97 @@ def test_radio_range_starts_at_100_um_with_the_radio_formula():
     assert s.refa_rad == pytest.approx(erfa.refco(1013.25, 30.0, 1.0, 2.0)[0], rel=1e-12)
 
 
+def _refco_vapour_pressure_hpa(p, t, wl, refa):
+    """The water-vapour pressure behind pyerfa refco's optical constant A, hPa.
+
+    SOFA refco source (optical case): A = gamma (1 - beta), beta = 4.4474e-6 T,
+    gamma T = (77.53484e-6 + (4.39108e-7 + 3.666e-9 / wl^2) / wl^2) p - 11.2684e-6 pw, with
+    T = t + 273.15 K; solved here for pw, so that refco's own output says which vapour
+    pressure it assumed.
+    """
+    tk = t + 273.15
+    gamma = refa / (1.0 - 4.4474e-6 * tk)
+    dry = 77.53484e-6 + (4.39108e-7 + 3.666e-9 / wl**2) / wl**2
+    return (dry * p - gamma * tk) / 11.2684e-6
+
+
+def test_realistic_air_is_accepted_with_refco_constants():
+    # -40 to +50 C, 500-1100 hPa (a high site at 600 hPa included), humidity 0-1, optical
+    # and radio: every one accepted, with pyerfa refco's constants (tolerance 1e-12
+    # relative), and the vapour pressure behind refco's optical A within [0, p) (tolerance
+    # 1e-6 hPa, the rounding of the inversion).
+    site = O.make_site(20.0, 0.0, 2400.0)
+    for t in np.arange(-40.0, 50.1, 10.0):
+        for p in (500.0, 600.0, 700.0, 800.0, 900.0, 1013.25, 1100.0):
+            for rh in (0.0, 0.25, 0.5, 0.75, 1.0):
+                for wl in (0.55, 1.0e4):
+                    s = O.refraction_settings(site, O.make_atmosphere(p, t, rh, wl))
+                    want = erfa.refco(p, t, rh, wl)
+                    assert s.refa_rad == pytest.approx(want[0], rel=1e-12)
+                    assert s.refb_rad == pytest.approx(want[1], rel=1e-12)
+                pw = _refco_vapour_pressure_hpa(p, t, 0.55, erfa.refco(p, t, rh, 0.55)[0])
+                assert -1e-6 < pw < p
+
+
+def test_standard_atmosphere_pressure_is_never_refused():
+    # Pressure from the standard atmosphere (265 hPa at the highest accepted site, 10 km)
+    # stays above the saturation pressure at the hottest accepted air, 60 C (refco: 201.5
+    # hPa there), whatever the humidity; the refco constants as pyerfa gives them.
+    for height in (-500.0, 0.0, 5000.0, 10_000.0):
+        site = O.make_site(20.0, 0.0, height)
+        for t in (None, -100.0, 60.0):
+            s = O.refraction_settings(site, O.make_atmosphere(None, t, 1.0))
+            want = erfa.refco(s.pressure_hpa, s.temperature_c, 1.0, 0.55)
+            assert (s.refa_rad, s.refb_rad) == pytest.approx(want, rel=1e-12)
+            assert s.refa_rad > 0.0
+
+
+@pytest.mark.parametrize(
+    "p, t, rh",
+    [
+        (1.0, 60.0, 1.0),  # vapour 201 hPa in 1 hPa of air: refraction -1.35 arcsec at 45 deg
+        (150.0, 60.0, 0.5),  # refco's vapour pressure 305 hPa
+        (201.0, 60.0, 1.0),  # just below the boiling pressure at 60 C, 201.10 hPa
+        (100.0, 60.0, 0.01),  # refco divides by a negative number
+        (5.0, 15.0, 0.5),
+        (0.5, 0.0, 1.0),
+        (0.01, -40.0, 0.2),
+    ],
+)
+def test_air_that_cannot_exist_is_refused(p, t, rh):
+    # SOFA refco source: pw = r ps / (1 - (1 - r) ps / p); where the saturation pressure ps
+    # is not below p, the vapour pressure behind pyerfa refco's own optical constant is at
+    # or above the total pressure, or negative, or refco's constant is not finite. Refused.
+    refa = erfa.refco(p, t, rh, 0.55)[0]
+    pw = _refco_vapour_pressure_hpa(p, t, 0.55, refa)
+    assert not np.isfinite(refa) or pw >= p or pw < 0.0
+    site = O.make_site(20.0, 0.0, 0.0)
+    with pytest.raises(O.ObservedInputError) as exc:
+        O.refraction_settings(site, O.make_atmosphere(p, t, rh))
+    assert exc.value.field == "atmosphere.relative_humidity"
+    assert "not below the total pressure" in exc.value.message
+
+
+def test_boiling_limit_and_the_accepted_edges():
+    site = O.make_site(20.0, 0.0, 0.0)
+    # refco's example in 60 C air: optical A from pyerfa is -6.546e-6 rad (-1.35 arcsec).
+    assert erfa.refco(1.0, 60.0, 1.0, 0.55)[0] == pytest.approx(-6.546e-6, abs=1e-9)
+    # Just above the boiling pressure at 60 C (201.10 hPa): accepted, as pyerfa refco.
+    s = O.refraction_settings(site, O.make_atmosphere(201.2, 60.0, 1.0))
+    assert s.refa_rad == pytest.approx(erfa.refco(201.2, 60.0, 1.0, 0.55)[0], rel=1e-12)
+    # Dry air can be thin and hot: refco's vapour pressure is 0, its constants are used.
+    s = O.refraction_settings(site, O.make_atmosphere(1.0, 60.0, 0.0))
+    assert (s.refa_rad, s.refb_rad) == pytest.approx(erfa.refco(1.0, 60.0, 0.0, 0.55), rel=1e-12)
+    # Pressure 0 turns refraction off, whatever the air.
+    s = O.refraction_settings(site, O.make_atmosphere(0.0, 60.0, 1.0))
+    assert (s.mode, s.refa_rad, s.refb_rad) == ("off", 0.0, 0.0)
+    # A default temperature counts: 5 hPa at sea level is 15 C air, ps 17 hPa. Refused, and
+    # the message says where the temperature and humidity came from.
+    with pytest.raises(O.ObservedInputError) as exc:
+        O.refraction_settings(site, O.make_atmosphere(5.0))
+    assert "0.5 (default) at 15 C (standard atmosphere) and 5 hPa" in exc.value.message
+
+
 # --- Atmosphere -------------------------------------------------------------------------------
 
 
