@@ -31,11 +31,13 @@ def _cpu_count() -> int:
 
 def _whole(name: str, default: int, lo: int, hi: int) -> int:
     """A whole-number setting; a bad value stops the start with one line naming it."""
+    from service.numbers import setting_number
+
     raw = os.environ.get(name) or ""
-    try:
-        value = int(raw) if raw else default
-    except ValueError:
-        raise SystemExit(f"{name}={raw!r}: expected a whole number") from None
+    # int() would also read "1_000" and other scripts' digits; no setting here is negative.
+    value = setting_number(raw, whole=True, signed=False) if raw else default
+    if value is None:
+        raise SystemExit(f"{name}={raw!r}: expected a whole number in ASCII digits, without a sign")
     if not lo <= value <= hi:
         raise SystemExit(f"{name}={value}: must be between {lo} and {hi}")
     return value

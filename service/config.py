@@ -12,19 +12,25 @@ import os
 import re
 from dataclasses import dataclass, field
 
+from .numbers import setting_number
+
 
 class ConfigError(ValueError):
     """A setting that cannot be used; the message names the environment variable."""
+
+
+def _written(lo) -> str:
+    """How a number setting is written, for its error message."""
+    return " in ASCII digits" + ("" if lo < 0 else ", without a sign")
 
 
 def _int(env, name, default, lo, hi):
     raw = env.get(name)
     if raw is None or raw == "":
         return default
-    try:
-        value = int(raw)
-    except ValueError:
-        raise ConfigError(f"{name}={raw!r}: expected a whole number") from None
+    value = setting_number(raw, whole=True, signed=lo < 0)
+    if value is None:  # int() would also read "1_000" and other scripts' digits
+        raise ConfigError(f"{name}={raw!r}: expected a whole number{_written(lo)}")
     if not lo <= value <= hi:
         raise ConfigError(f"{name}={value}: must be between {lo} and {hi}")
     return value
@@ -34,10 +40,9 @@ def _float(env, name, default, lo, hi):
     raw = env.get(name)
     if raw is None or raw == "":
         return default
-    try:
-        value = float(raw)
-    except ValueError:
-        raise ConfigError(f"{name}={raw!r}: expected a number") from None
+    value = setting_number(raw, whole=False, signed=lo < 0)
+    if value is None:  # float() would also read "1_0", "nan", "inf" and other scripts' digits
+        raise ConfigError(f"{name}={raw!r}: expected a number{_written(lo)}")
     if not lo <= value <= hi:
         raise ConfigError(f"{name}={value}: must be between {lo} and {hi}")
     return value

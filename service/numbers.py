@@ -1,9 +1,10 @@
-"""Numbers written as text (command-line and query options): ASCII decimals only.
+"""Numbers written as text (command-line and query options, settings): ASCII decimals only.
 
 Python's ``float()`` and ``int()`` (and so argparse's ``type=float``) also read "1_0" as 10
 and other scripts' digits ("١٠") as numbers. The service refuses both wherever a number
-comes as text: query options (api.csvio, api.common.QueryFloat) and command-line options
-(:func:`decimal`, :func:`whole`).
+comes as text: query options (api.csvio, api.common.QueryFloat), command-line options
+(:func:`decimal`, :func:`whole`) and the settings read from the environment
+(:func:`setting_number`).
 """
 
 from __future__ import annotations
@@ -15,6 +16,23 @@ import re
 DECIMAL_TEXT = re.compile(r"[+-]?([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
 #: A whole number: optional sign and ASCII digits.
 WHOLE_TEXT = re.compile(r"[+-]?[0-9]+\Z")
+#: The same two without a sign, for settings that cannot be negative.
+UNSIGNED_DECIMAL_TEXT = re.compile(r"([0-9]+(\.[0-9]*)?|\.[0-9]+)([eE][+-]?[0-9]+)?\Z")
+UNSIGNED_WHOLE_TEXT = re.compile(r"[0-9]+\Z")
+
+
+def setting_number(text: str, *, whole: bool, signed: bool) -> int | float | None:
+    """A number setting as written in the environment, or None if it is not written as an
+    ASCII decimal (a whole number if ``whole``; a sign only if ``signed``): "1_000", "١٠",
+    "nan", "inf" and "0x10" are typing mistakes to be refused, not numbers."""
+    text = text.strip()
+    if whole:
+        pattern = WHOLE_TEXT if signed else UNSIGNED_WHOLE_TEXT
+    else:
+        pattern = DECIMAL_TEXT if signed else UNSIGNED_DECIMAL_TEXT
+    if not pattern.match(text):
+        return None
+    return int(text) if whole else float(text)
 
 
 def decimal(text: str) -> float:

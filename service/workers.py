@@ -35,6 +35,8 @@ from gunicorn.http.errors import NoMoreData
 from gunicorn.workers.gthread import TConn, ThreadWorker
 from gunicorn.workers.sync import SyncWorker
 
+from .numbers import setting_number
+
 
 class ClientTooSlow(NoMoreData, TimeoutError):
     """The client did not send its request within the configured limits.
@@ -55,10 +57,10 @@ def seconds_setting(name: str, default: float) -> float:
     """A time setting of the workers, seconds; a bad value stops with one line naming it
     (also read by deploy/gunicorn.conf.py, so that it stops the start, not each worker)."""
     raw = os.environ.get(name, "")
-    try:
-        value = float(raw) if raw else default
-    except ValueError:
-        raise SystemExit(f"{name}={raw!r}: expected a number of seconds") from None
+    # float() would also read "1_0", "nan", "inf" and other scripts' digits.
+    value = setting_number(raw, whole=False, signed=False) if raw else default
+    if value is None:
+        raise SystemExit(f"{name}={raw!r}: expected a number of seconds in ASCII digits")
     if not 0.1 <= value <= 3600:
         raise SystemExit(f"{name}={value}: must be between 0.1 and 3600 seconds")
     return value

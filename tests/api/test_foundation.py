@@ -175,11 +175,37 @@ def test_unexpected_error_gives_bare_500_without_trace(settings):
         ({"SKYDRIFT_LOG_LEVEL": "LOUD"}, "SKYDRIFT_LOG_LEVEL"),
         ({"SKYDRIFT_LOG_LEVEL": "LOUD"}, "ERROR or CRITICAL"),  # every accepted name listed
         ({"SKYDRIFT_SITES_FILE": "/nonexistent/sites.json"}, "SKYDRIFT_SITES_FILE"),
+        # int() and float() read these; an operator's typing mistake is not a number
+        ({"SKYDRIFT_MAX_STARS": "1_000"}, "SKYDRIFT_MAX_STARS"),
+        ({"SKYDRIFT_MAX_EPOCHS": "\u0661\u0660"}, "SKYDRIFT_MAX_EPOCHS"),  # Arabic-Indic 10
+        ({"SKYDRIFT_FORWARDED_HOPS": "+1"}, "SKYDRIFT_FORWARDED_HOPS"),  # never negative
+        ({"SKYDRIFT_TEST_FAIL_FIRST_N": "0x10"}, "SKYDRIFT_TEST_FAIL_FIRST_N"),
+        ({"SKYDRIFT_SUN_AVOIDANCE_DEG": "3_0"}, "SKYDRIFT_SUN_AVOIDANCE_DEG"),
+        ({"SKYDRIFT_REQUEST_TIMEOUT_S": "\uff11\uff10"}, "SKYDRIFT_REQUEST_TIMEOUT_S"),  # fullwidth
+        ({"SKYDRIFT_NEAR_BOUNDARY_ARCSEC": "nan"}, "SKYDRIFT_NEAR_BOUNDARY_ARCSEC"),
+        ({"SKYDRIFT_LOW_PARALLAX_SNR": "infinity"}, "SKYDRIFT_LOW_PARALLAX_SNR"),
+        ({"SKYDRIFT_LOW_PARALLAX_SNR": "+5"}, "SKYDRIFT_LOW_PARALLAX_SNR"),
+        ({"SKYDRIFT_HORIZON_LIMIT_DEG": "-1_0"}, "SKYDRIFT_HORIZON_LIMIT_DEG"),
     ],
 )
 def test_bad_settings_stop_the_start_naming_the_variable(env, needle):
-    with pytest.raises(ConfigError, match=needle):
+    with pytest.raises(ConfigError, match=needle) as info:
         Settings.from_env(env)
+    assert "\n" not in str(info.value)
+
+
+def test_number_settings_written_in_ascii_decimals_are_kept():
+    s = Settings.from_env(
+        {
+            "SKYDRIFT_MAX_STARS": " 1000 ",  # spaces around, as int() took them
+            "SKYDRIFT_HORIZON_LIMIT_DEG": "-5.5",  # below the horizon: a sign makes sense
+            "SKYDRIFT_SUN_AVOIDANCE_DEG": "45",
+            "SKYDRIFT_NEAR_BOUNDARY_ARCSEC": "2e-1",
+            "SKYDRIFT_REQUEST_TIMEOUT_S": ".5",
+        }
+    )
+    assert s.max_stars == 1000 and s.horizon_limit_deg == -5.5
+    assert (s.sun_avoidance_deg, s.near_boundary_arcsec, s.request_timeout_s) == (45, 0.2, 0.5)
 
 
 def test_defaults_need_no_environment():

@@ -126,6 +126,15 @@ def test_worker_nice_setting(load):
         ("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", "abc"),
         ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "0"),
         ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "nan"),
+        # int() and float() read these; an operator's typing mistake is not a number
+        ("SKYDRIFT_WORKERS", "1_6"),
+        ("SKYDRIFT_THREADS", "\u0664"),  # Arabic-Indic 4
+        ("SKYDRIFT_TIMEOUT_S", "+120"),  # no setting here is negative: no sign
+        ("SKYDRIFT_MAX_REQUESTS", "20_000"),
+        ("SKYDRIFT_WORKER_NICE", "\uff11\uff10"),  # fullwidth 10
+        ("SKYDRIFT_CLIENT_IDLE_TIMEOUT_S", "1_0"),
+        ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "\u0666\u0660"),  # Arabic-Indic 60
+        ("SKYDRIFT_REQUEST_READ_TIMEOUT_S", "+60"),
         # gunicorn stopped with a traceback as the first worker booted
         ("SKYDRIFT_WORKER_TMP_DIR", "/no/such/folder"),
         ("SKYDRIFT_WORKER_TMP_DIR", str(ROOT / "README.md")),
@@ -171,6 +180,7 @@ def test_good_process_settings_are_kept(load, tmp_path):
     assert conf["forwarded_allow_ips"] == "10.0.0.0/8, 127.0.0.1"
     assert conf["accesslog"] == str(tmp_path / "access.log")
     assert load(SKYDRIFT_BIND="unix:/tmp/skydrift.sock")["bind"] == "unix:/tmp/skydrift.sock"
+    assert load(SKYDRIFT_WORKERS=" 3 ", SKYDRIFT_CLIENT_IDLE_TIMEOUT_S="2.5e1")["workers"] == 3
 
 
 def test_bad_application_setting_under_gunicorn_is_one_line(tmp_path):
@@ -190,7 +200,8 @@ def test_bad_application_setting_under_gunicorn_is_one_line(tmp_path):
     assert out.returncode == 1
     assert "Traceback" not in out.stderr
     assert out.stderr.strip().splitlines() == [
-        "skydrift: bad setting: SKYDRIFT_MAX_STARS='many': expected a whole number"
+        "skydrift: bad setting: SKYDRIFT_MAX_STARS='many': expected a whole number in ASCII "
+        "digits, without a sign"
     ]
 
 
