@@ -10,6 +10,7 @@ from __future__ import annotations
 import ipaddress
 import os
 import re
+import urllib.parse
 from dataclasses import dataclass, field
 
 from .numbers import setting_number
@@ -113,7 +114,8 @@ class Settings:
     rate_limit_storage : str
         SKYDRIFT_RATE_LIMIT_STORAGE: where the counts live. Default ``memory://`` (per worker
         process); a shared store (``redis://host:6379``, with its client installed) makes the
-        limit exact across workers and replicas.
+        limit exact across workers and replicas. Its scheme is checked at start even when no
+        limit uses the store; the store is reached only when one does.
     auth_failure_limit : str
         SKYDRIFT_AUTH_FAILURE_LIMIT: failed authentications (401 answers) allowed per client
         address, when tokens are set, e.g. ``10/minute``; past it, every request from that
@@ -322,6 +324,19 @@ def _rate_limit(env) -> dict:
     storage = _str(env, "SKYDRIFT_RATE_LIMIT_STORAGE", "memory://")
     if "://" not in storage:
         raise ConfigError(f"SKYDRIFT_RATE_LIMIT_STORAGE={storage!r}: expected a URI")
+    # Its scheme is checked here, whether or not a limit uses the store yet (the store
+    # itself is made, and its client library looked for, only when one does; no network
+    # here). The async+ schemes are for asyncio applications: the limiter of this one
+    # stopped the start with a bare AssertionError on them.
+    from limits.storage import SCHEMES
+
+    scheme = urllib.parse.urlparse(storage).scheme  # as the limits library reads it
+    if scheme not in SCHEMES or scheme.startswith("async+"):
+        known = ", ".join(sorted(s for s in SCHEMES if not s.startswith("async+")))
+        raise ConfigError(
+            f"SKYDRIFT_RATE_LIMIT_STORAGE={storage!r}: not a store the rate limiter knows "
+            f"(the scheme is one of {known})"
+        )
     return {
         "rate_limit": _limit_string(env, "SKYDRIFT_RATE_LIMIT", ""),
         "rate_limit_storage": storage,

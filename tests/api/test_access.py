@@ -213,6 +213,28 @@ def test_bad_access_settings_stop_the_start(env, needle):
         Settings.from_env(env)
 
 
+@pytest.mark.parametrize("storage", ["reddis://h:6379", "async+memory://"])
+def test_unknown_rate_limit_store_stops_the_start_even_with_no_limit(storage):
+    # Not checked until a limit used the store: an operator who set the store first and the
+    # limit later learnt of the mistake only then. The async+ schemes stopped the start
+    # with a bare AssertionError once a limit used them.
+    env = {"SKYDRIFT_RATE_LIMIT_STORAGE": storage, "SKYDRIFT_AUTH_FAILURE_LIMIT": "off"}
+    with pytest.raises(ConfigError, match="SKYDRIFT_RATE_LIMIT_STORAGE") as info:
+        Settings.from_env(env)
+    assert "\n" not in str(info.value) and "memory, " in str(info.value)  # the schemes named
+    env["SKYDRIFT_RATE_LIMIT"] = "10/second"
+    with pytest.raises(ConfigError, match="SKYDRIFT_RATE_LIMIT_STORAGE"):
+        Settings.from_env(env)
+
+
+def test_shared_rate_limit_stores_are_accepted_without_a_connection():
+    # Only the address is read at start: no connection, and no client library needed
+    # until a limit uses the store (then access.py names a missing one).
+    for storage in ("redis://cache.example.org:6379/0", "redis+unix:///run/redis.sock"):
+        env = {"SKYDRIFT_RATE_LIMIT_STORAGE": storage}
+        assert Settings.from_env(env).rate_limit_storage == storage
+
+
 @pytest.mark.parametrize("storage", ["foo://x", "nosuchstore://127.0.0.1:1"])
 def test_unusable_rate_limit_store_stops_the_start_naming_the_setting(settings, storage):
     # The limits library refuses an unknown scheme (or one whose client is not installed)
