@@ -15,7 +15,7 @@ import traceback
 
 from gunicorn.glogging import Logger
 
-from .api.observability import JsonFormatter
+from .api.observability import JsonFormatter, log_unraisable
 
 
 class JsonLogger(Logger):
@@ -34,6 +34,9 @@ class JsonLogger(Logger):
             handler._skydrift_json = True
             root.addHandler(handler)
         root.setLevel(self.loglevel)
+        # Exceptions Python drops (the request time limit's, raised in a __del__) as JSON
+        # lines too; set in the master, inherited by every worker it forks.
+        sys.unraisablehook = log_unraisable
 
     def access(self, resp, req, environ, request_time):
         """One JSON line per request: the fields of gunicorn's atoms ``h m U q H s B D a``

@@ -39,6 +39,7 @@ import json
 import logging
 import os
 import re
+import sys
 import time
 
 from flask import Response, current_app, g, request
@@ -254,6 +255,40 @@ class JsonFormatter(logging.Formatter):
         if record.exc_info:
             entry["exception"] = self.formatException(record.exc_info)
         return json.dumps(entry, ensure_ascii=False, default=str)
+
+
+def log_unraisable(unraisable) -> None:
+    """``sys.unraisablehook``: an exception Python drops (one raised in a ``__del__`` or a
+    weakref callback, such as the request time limit's RequestTimeLimit arriving there) as
+    one JSON log line, not Python's "Exception ignored in" block on standard error.
+
+    The line keeps what that block says: the object, the exception's type and message (the
+    message of the line) and its traceback (``exception``). Installed by the gunicorn logger
+    (service.gunicorn_log), in the master before the workers fork.
+    """
+    try:
+        try:
+            where = repr(unraisable.object) if unraisable.object is not None else None
+        except Exception:
+            where = "<object repr() failed>"
+        heading = unraisable.err_msg or "Exception ignored in"
+        exc_type, exc = unraisable.exc_type, unraisable.exc_value
+        what = exc_type.__qualname__
+        if exc_type.__module__ not in ("builtins", "__main__"):  # named as Python names it
+            what = f"{exc_type.__module__}.{what}"
+        text = str(exc) if exc is not None else ""
+        what += f": {text}" if text else ""
+        logging.getLogger("skydrift.unraisable").warning(
+            "%s%s: %s",
+            heading,
+            f": {where}" if where is not None else "",
+            what,
+            exc_info=(exc_type, exc, unraisable.exc_traceback)
+            if unraisable.exc_traceback is not None
+            else None,
+        )
+    except Exception:  # never lose it: Python's own block, as before
+        sys.__unraisablehook__(unraisable)
 
 
 # --- wiring ---------------------------------------------------------------------------------

@@ -7,6 +7,7 @@ every header and environ entry); gunicorn's ``atoms`` on the same request is the
 import datetime
 import json
 import logging
+import sys
 import types
 
 import pytest
@@ -28,12 +29,13 @@ class _Lines(logging.Handler):
 @pytest.fixture()
 def logger():
     root = logging.getLogger()
-    handlers, level = list(root.handlers), root.level
+    handlers, level, hook = list(root.handlers), root.level, sys.unraisablehook
     try:
         log = JsonLogger(Config())
     finally:  # JsonLogger.setup joins the root logger to its error log: undo that here
         root.handlers[:] = handlers
         root.setLevel(level)
+        sys.unraisablehook = hook
     sink = _Lines()
     log.access_log = logging.getLogger("skydrift.test.access")
     log.access_log.handlers[:] = [sink]
@@ -104,3 +106,52 @@ def test_access_line_failure_goes_to_the_error_log(logger, monkeypatch):
     logger.access(resp, req, environ, took)
     assert logger.lines == []
     assert "ValueError" in errors[0]
+
+
+def test_exception_python_drops_is_one_json_line(capsys, monkeypatch):
+    # Python prints an exception raised in a __del__ or a weakref callback as an "Exception
+    # ignored in" block on standard error, outside the JSON log (seen with the request time
+    # limit's exception under load). The logger gunicorn sets up now logs it as one line.
+    from service.api.access import RequestTimeLimit
+
+    root = logging.getLogger()
+    handlers, level = list(root.handlers), root.level
+    monkeypatch.setattr(sys, "unraisablehook", sys.unraisablehook)  # put back afterwards
+    try:
+        JsonLogger(Config())  # its JSON handler writes to the standard error of this test
+
+        class Chart:
+            def __del__(self):
+                raise RequestTimeLimit()
+
+        capsys.readouterr()
+        chart = Chart()
+        del chart  # CPython runs __del__ here and passes the exception to the hook
+        err = capsys.readouterr().err
+    finally:
+        root.handlers[:] = handlers
+        root.setLevel(level)
+    assert err.startswith("{") and len(err.splitlines()) == 1  # not Python's own block
+    line = json.loads(err)
+    assert line["level"] == "WARNING" and line["logger"] == "skydrift.unraisable"
+    # the object, the exception's type and message, as Python's block says them
+    assert line["message"].startswith("Exception ignored in: <function ")
+    assert "Chart.__del__" in line["message"]
+    assert "service.api.access.RequestTimeLimit: 503 Service Unavailable: " in line["message"]
+    assert "time limit" in line["message"]
+    assert "raise RequestTimeLimit()" in line["exception"]  # the traceback, inside the line
+
+
+def test_dropped_exception_with_an_unprintable_object_is_still_logged(caplog):
+    from service.api.observability import log_unraisable
+
+    class Unprintable:
+        def __repr__(self):
+            raise RuntimeError("no repr")
+
+    args = types.SimpleNamespace(
+        exc_type=KeyError, exc_value=None, exc_traceback=None, err_msg=None, object=Unprintable()
+    )
+    with caplog.at_level(logging.WARNING, logger="skydrift.unraisable"):
+        log_unraisable(args)
+    assert caplog.messages == ["Exception ignored in: <object repr() failed>: KeyError"]
