@@ -39,7 +39,11 @@ def _openapi(args) -> int:
     if args.output in (None, "-"):
         sys.stdout.write(text)
     else:
-        pathlib.Path(args.output).write_text(text)
+        try:
+            pathlib.Path(args.output).write_text(text)
+        except OSError as exc:  # a failure, not a bad command line: 1, in one line
+            print(f"skydrift: {args.output}: {exc.strerror or exc}", file=sys.stderr)
+            return 1
     return 0
 
 

@@ -38,9 +38,16 @@ Epochs: 2016.0 or J2016.0 (Julian epoch, TDB), B1950.0, JD2451545.0, MJD51544.5,
 2026-12-02T22:00:00Z (UTC), now. Without --url the work is done in this process; with
 --url it is sent to that service (with the bearer token in SKYDRIFT_TOKEN, if the service
 requires one). The output is the same either way.
-Exit status: 0 done, 1 the service refused the input or failed (details on standard error),
-2 bad command line.
+Exit status: 0 done; 1 the catalogue's content was refused, or the work failed (a service
+that cannot be reached, an output that cannot be written; details on standard error); 2 bad
+command line: an option or a value refused (by this command or by the service), or a
+catalogue file that cannot be opened.
 """
+
+
+class UsageError(ValueError):
+    """A bad command line that argparse cannot see (a --frame, options that go together, a
+    catalogue file that cannot be opened): exit status 2 with one line, as argparse's own."""
 
 
 class Catalogue:
@@ -139,6 +146,21 @@ def _at_least_one(text: str) -> int:
     return value
 
 
+def _service_url(text: str) -> str:
+    """argparse type: an http:// or https:// address, as requests will read it."""
+    import requests
+
+    try:
+        requests.PreparedRequest().prepare_url(text, None)  # parsing only, no connection
+    except requests.RequestException as exc:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an address ({exc})") from None
+    if not text.lower().startswith(("http://", "https://")):
+        raise argparse.ArgumentTypeError(
+            f"{text!r}: the service's address starts with http:// or https://"
+        )
+    return text
+
+
 def _above_zero(text: str) -> float:
     """argparse type: a decimal number above 0."""
     value = decimal(text)
@@ -157,7 +179,10 @@ def read_catalogue(path: str, *, any_frame: bool = False) -> Catalogue:
     if path == "-":
         text = sys.stdin.read()
     else:
-        text = pathlib.Path(path).read_text(encoding="utf-8-sig")
+        try:
+            text = pathlib.Path(path).read_text(encoding="utf-8-sig")
+        except OSError as exc:  # as argparse says of a file it cannot open: exit status 2
+            raise UsageError(f"{path}: cannot open the catalogue ({exc.strerror or exc})") from None
     if path.lower().endswith(".json"):
         try:
             data = json.loads(text)
@@ -244,13 +269,45 @@ def _epoch_of(args, cat: Catalogue) -> str:
     return args.catalogue_epoch or cat.catalogue_epoch or DEFAULT_CATALOGUE_EPOCH
 
 
+#: Request fields a catalogue file may set too (its catalogue_epoch and frame): an error in
+#: one is the command line's only when one of these options was given.
+_FIELDS_ALSO_FROM_THE_FILE = {
+    "catalogue_epoch": ("catalogue_epoch",),
+    "frame": ("frame", "equinox"),
+}
+
+
+def _refused_options(exc: SkydriftError, args) -> str | None:
+    """The service's refusal of values given on the command line (an epoch it cannot read,
+    an unknown site, a count out of range), as one line; None when the answer is anything
+    else: about the catalogue's rows ("line 7: dec_deg", "stars[3].ra_deg"), or no refusal."""
+    if exc.status != 422 or not exc.errors:
+        return None
+    for e in exc.errors:
+        base = re.split(r"[.\[]", e.field, maxsplit=1)[0]
+        if not base.isidentifier() or base == "stars":
+            return None  # a row, cell or header line of the catalogue ("line 7"), "(more)"
+        options = _FIELDS_ALSO_FROM_THE_FILE.get(base)
+        if options and all(getattr(args, o, None) is None for o in options):
+            return None
+    return "; ".join(f"{e.field}: {e.message}" for e in exc.errors)
+
+
 def _run(func):
-    """Turn service errors into a message on standard error and exit status 1."""
+    """Turn errors into one message on standard error: exit status 2 for a bad command line
+    (argparse's own is 2 as well), 1 for refused catalogue content or a failure."""
 
     def wrapper(args) -> int:
         try:
             return func(args)
+        except UsageError as exc:
+            print(f"skydrift: bad command line: {exc}", file=sys.stderr)
+            return 2
         except SkydriftError as exc:
+            options = _refused_options(exc, args)
+            if options is not None:
+                print(f"skydrift: bad command line: {options}", file=sys.stderr)
+                return 2
             print(f"skydrift: {exc}", file=sys.stderr)
             return 1
         except (OSError, ValueError) as exc:
@@ -279,6 +336,11 @@ def _table_command(args, cat, label: str, call, client: Client | None = None) ->
 
 @_run
 def cmd_propagate(args) -> int:
+    if args.range:
+        try:
+            whole(args.range[2])
+        except argparse.ArgumentTypeError as exc:
+            raise UsageError(f"--range COUNT: {exc}") from None
     cat = read_catalogue(args.catalogue)
     text = _table_command(
         args,
@@ -322,6 +384,11 @@ def cmd_velocities(args) -> int:
 
 @_run
 def cmd_constellations(args) -> int:
+    if args.near_boundary_arcsec is not None and not args.margins:
+        raise UsageError(
+            "--near-boundary-arcsec is an option of --margins: the lookup measures no "
+            "distance to a boundary"
+        )
     cat = read_catalogue(args.catalogue)
     text = _table_command(
         args,
@@ -420,10 +487,13 @@ def cmd_observed(args) -> int:
     cat = read_catalogue(args.catalogue, any_frame=True)
     frame = cat.frame
     if args.frame is not None:
-        frame = frame_spec(args.frame, "--frame")
+        try:
+            frame = frame_spec(args.frame, "--frame")
+        except ValueError as exc:
+            raise UsageError(str(exc)) from None
     if args.equinox is not None:
         if frame is None:
-            raise ValueError("--equinox needs --frame (or a catalogue that states its frame)")
+            raise UsageError("--equinox needs --frame (or a catalogue that states its frame)")
         frame = {**frame, "equinox": args.equinox}
     atmosphere = {
         "pressure_hpa": args.pressure_hpa,
@@ -554,7 +624,7 @@ def _image_format(args) -> str:
     suffix = os.path.splitext(args.output)[1].lower()
     if suffix not in IMAGE_SUFFIXES:
         # An SVG written to chart.gif or chart.pdf would not open as what its name says.
-        raise ValueError(
+        raise UsageError(
             f"{args.output}: charts are written as .svg or .png; name the file so, or give --format"
         )
     return IMAGE_SUFFIXES[suffix]
@@ -622,6 +692,7 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
     g = p.add_argument_group("where the work is done")
     g.add_argument(
         "--url",
+        type=_service_url,
         help="send the work to the Skydrift service at this address "
         "(e.g. http://127.0.0.1:8000); default: compute in this process",
     )

@@ -136,13 +136,22 @@ def parse_column_mapping(text: str | None = None, path: str | None = None) -> di
     mapping: dict = {}
     if path:
         p = pathlib.Path(path)
-        raw = p.read_text()
-        if p.suffix.lower() == ".toml":
-            import tomllib
+        kind = "TOML" if p.suffix.lower() == ".toml" else "JSON"
+        # A mapping file that cannot be read is a bad command line (exit 2), as an input
+        # that cannot be opened is: it was exit 1 with the bare error of open() or json.
+        try:
+            raw = p.read_text()
+        except OSError as exc:
+            raise BatchInputError(f"--columns-file {path}: {exc.strerror or exc}") from None
+        try:
+            if kind == "TOML":
+                import tomllib
 
-            data = tomllib.loads(raw)
-        else:
-            data = json.loads(raw)
+                data = tomllib.loads(raw)
+            else:
+                data = json.loads(raw)
+        except ValueError as exc:  # tomllib.TOMLDecodeError and JSONDecodeError included
+            raise BatchInputError(f"--columns-file {path}: not {kind} ({exc})") from None
         if isinstance(data, dict) and isinstance(data.get("columns"), dict):
             data = data["columns"]
         if not isinstance(data, dict) or not all(

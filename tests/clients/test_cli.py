@@ -143,7 +143,7 @@ def test_near_boundary_margin_needs_margins():
     there: the command says so before sending, naming the option that makes it apply."""
     args = ["constellations", CATALOGUE, "--near-boundary-arcsec", "5", "--drop-unknown-columns"]
     refused = skydrift(*args, check=False)
-    assert refused.returncode == 1
+    assert refused.returncode == 2  # a bad command line
     assert "--margins" in refused.stderr.decode()
     assert refused.stdout == b""
     rows = list(csv.DictReader(io.StringIO(skydrift(*args, "--margins").stdout.decode())))
@@ -339,6 +339,89 @@ def test_bad_command_line_exit_2():
     assert skydrift("propagate", CATALOGUE, check=False).returncode == 2
 
 
+def _in_process(capsys, *args):
+    """Exit status and standard error of the command run in this process."""
+    from service.cli import main
+
+    try:
+        status = main(list(args))
+    except SystemExit as exc:  # argparse's own errors
+        status = exc.code
+    return status, capsys.readouterr().err
+
+
+AT_SITE = ("--at", "2026-12-02T22:00:00Z", "--site", "kestrel-ridge")
+JSON_CATALOGUE = str(DEMO / "catalogue.json")
+
+
+@pytest.mark.parametrize(
+    ("args", "named"),
+    [
+        # refused by this command (it was exit 1, as a failure)
+        (("observed", JSON_CATALOGUE, *AT_SITE, "--frame", "fk5 J2000 extra"), "--frame"),
+        (("observed", CATALOGUE, *AT_SITE, "--equinox", "J2000"), "--equinox needs --frame"),
+        (("propagate", "no-such-catalogue.csv", "--epoch", "J2000"), "no-such-catalogue.csv"),
+        # refused by the service (here in process; it was exit 1, as a refused catalogue)
+        (("propagate", CATALOGUE, "--epoch", "J20x6"), "target_epochs[0]: cannot read epoch"),
+        (("propagate", CATALOGUE, "--epoch", "J2030", "--catalogue-epoch", "J20l6"),
+         "catalogue_epoch: cannot read epoch 'J20l6'"),
+        (("observed", JSON_CATALOGUE, "--at", "yesterday", "--site", "kestrel-ridge",
+          "--drop-unknown-columns"), "instants[0]: cannot read epoch"),
+        (("observed", JSON_CATALOGUE, "--at", "2026-12-02T22:00:00Z", "--site", "nowhere",
+          "--drop-unknown-columns"), "site.name: unknown site 'nowhere'"),
+        (("observed", JSON_CATALOGUE, *AT_SITE, "--frame", "fk9", "--drop-unknown-columns"),
+         "frame.name"),
+        (("velocities", CATALOGUE, "--uncertainties", "monte_carlo", "--draws", "-5"),
+         "monte_carlo_draws"),
+        (("chart", "field", JSON_CATALOGUE, "--epochs", "J2016", "zz"), "epochs[1]"),
+        # requests refused it at the first request (exit 1, naming no option); now argparse
+        (("propagate", CATALOGUE, "--epoch", "J2030", "--url", "localhost:8000"), "--url"),
+    ],
+)  # fmt: skip
+def test_bad_values_on_the_command_line_exit_2_in_one_line(capsys, args, named):
+    # The help: "2 bad command line"; argparse's own errors are 2. These were 1, the status
+    # of a refused catalogue or a failed service, so a script could not tell them apart.
+    status, err = _in_process(capsys, *args)
+    assert status == 2
+    lines = [ln for ln in err.splitlines() if "columns not used" not in ln]
+    assert named in lines[-1]
+    assert len(lines) == 1 or lines[0].startswith("usage: ")  # argparse's usage, then one line
+
+
+def test_catalogue_files_own_values_refused_are_still_exit_1(capsys, tmp_path):
+    # The catalogue_epoch and frame a JSON catalogue states are its content, not options.
+    star = {"ra_deg": 1.0, "dec_deg": 2.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+    epoch = tmp_path / "epoch.json"
+    epoch.write_text(json.dumps({"catalogue_epoch": "J20l6", "stars": [star]}))
+    status, err = _in_process(capsys, "propagate", str(epoch), "--epoch", "J2030")
+    assert status == 1 and "catalogue_epoch: cannot read epoch" in err
+    frame = tmp_path / "frame.json"
+    frame.write_text(json.dumps({"frame": "fk9", "stars": [star]}))
+    status, err = _in_process(capsys, "observed", str(frame), *AT_SITE)
+    assert status == 1 and "frame.name" in err
+    # ...and --frame decides over the file's frame
+    status, _ = _in_process(capsys, "observed", str(frame), *AT_SITE, "--frame", "fk4")
+    assert status == 0
+
+
+def test_openapi_to_a_file_that_cannot_be_written_is_one_line(capsys, tmp_path):
+    # It ended in a FileNotFoundError traceback.
+    status, err = _in_process(capsys, "openapi", "-o", str(tmp_path / "no" / "openapi.json"))
+    assert status == 1 and err.count("\n") == 1 and "No such file or directory" in err
+
+
+@pytest.mark.parametrize("content", [None, "{not json"])
+def test_batch_column_mapping_file_unreadable_is_a_bad_command_line(capsys, tmp_path, content):
+    # Exit 1 with open()'s or json's bare error; an input that cannot be opened is 2.
+    mapping = tmp_path / "columns.json"
+    if content is not None:
+        mapping.write_text(content)
+    args = ("batch", "propagate", CATALOGUE, str(tmp_path / "out"), "--target-epoch", "J2030",
+            "--columns-file", str(mapping))  # fmt: skip
+    status, err = _in_process(capsys, *args)
+    assert status == 2 and "--columns-file" in err and err.count("\n") == 1
+
+
 def test_unreachable_url_exit_1():
     out = skydrift(
         "propagate",
@@ -399,7 +482,7 @@ def test_chart_to_a_name_of_another_image_format_refused(tmp_path, name):
         "chart", "field", str(DEMO / "catalogue.json"), "--epochs", "J2016", "J3016",
         "-o", str(out), check=False,
     )  # fmt: skip
-    assert run.returncode == 1
+    assert run.returncode == 2  # a bad command line
     assert name in run.stderr.decode() and "--format" in run.stderr.decode()
     assert not out.exists()
 
@@ -444,7 +527,7 @@ def test_numbers_on_the_command_line_are_ascii_decimals(args, tmp_path):
 
 def test_range_count_in_ascii_digits(tmp_path):
     out = skydrift("propagate", CATALOGUE, "--range", "J2016", "J2116", "1_1", check=False)
-    assert out.returncode == 1
+    assert out.returncode == 2  # a bad command line, as a malformed number of another option
     assert "not a whole number in ASCII digits" in out.stderr.decode()
     batch = skydrift("batch", "velocity", CATALOGUE, str(tmp_path / "out"), "--solar-motion",
                      "1_0,2,3", check=False)  # fmt: skip
