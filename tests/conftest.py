@@ -3,7 +3,14 @@
 import json
 import pathlib
 
+import prometheus_client.values  # noqa: F401  (see below)
 import pytest
+
+# prometheus-client picks its value class (memory, or files in PROMETHEUS_MULTIPROC_DIR) when
+# it is first imported. Some tests set that variable for a while (the gunicorn settings, the
+# manifests); had prometheus-client first been imported then, every later in-process test
+# would write its metrics to a folder no longer named and fail. Imported here, before any
+# test runs, it keeps the in-process mode, whatever order the tests run in.
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 DEMO = ROOT / "shared" / "demo"
