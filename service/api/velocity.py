@@ -332,11 +332,12 @@ VELOCITY_OUTPUTS = {
 _OUTPUT_DESCRIPTIONS = {
     "distance_pc": "Distance used: distance_pc if given, else 1000/parallax.",
     "parallax_snr": "Parallax signal-to-noise, parallax / its standard error "
-    "(dimensionless); null without a parallax error, or where "
-    "distance_pc replaces the parallax.",
+    "(dimensionless); null without a parallax error, where "
+    "distance_pc replaces the parallax, or where the parallax error is zero "
+    "(parallax_error_zero).",
     "pm_total_mas_yr": "Total proper motion, mas/yr.",
     "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north; "
-    "null without proper motion.",
+    "null without proper motion (proper_motion_zero).",
     "transverse_velocity_km_s": "Transverse velocity A*mu/parallax, km/s (A = 1 au per "
     "Julian year = 4.740470463533348 km/s, IAU 2012 au).",
     "transverse_velocity_ra_km_s": "Transverse velocity towards east, km/s.",
@@ -362,7 +363,8 @@ _OUTPUT_DESCRIPTIONS = {
     "its error for linear propagation.",
     "v_interval_km_s": "-1 and +1 sigma bounds of V, km/s.",
     "w_interval_km_s": "-1 and +1 sigma bounds of W, km/s.",
-    "transverse_velocity_error_km_s": "Standard error of the transverse velocity, km/s.",
+    "transverse_velocity_error_km_s": "Standard error of the transverse velocity, km/s; "
+    "null with linear uncertainties where the proper motion is zero (proper_motion_zero).",
     "total_velocity_error_km_s": "Standard error of the total velocity, km/s.",
     "pm_ra_cosdec_rate_mas_yr2": "Perspective acceleration: rate of change of pm_ra_cosdec, "
     "mas/yr^2 (straight-line model).",
@@ -410,6 +412,18 @@ FLAG_MEANINGS = {
     "runs.",
     "correlations_assumed_zero": "Standard errors given without correlations: correlations "
     "taken as zero.",
+    "proper_motion_zero": "Total proper motion exactly zero: no direction of motion, so "
+    "pm_position_angle_deg, closest_approach_pm_mas_yr and closest_approach_parallax_mas are "
+    "null. With linear uncertainties transverse_velocity_error_km_s is null: the derivative "
+    "of the total proper motion is undefined at zero (the linear error's limit depends on "
+    "the direction from which the motion approaches zero); uncertainty_method monte_carlo "
+    "gives one. With a radial velocity of exactly zero too (at rest relative to the Sun) "
+    "velocity_line_of_sight_angle_deg, closest_approach_time_yr, "
+    "closest_approach_distance_pc and, with linear uncertainties, total_velocity_error_km_s "
+    "are null as well.",
+    "parallax_error_zero": "Parallax error given as zero: parallax_snr is infinite "
+    "(undefined for a zero parallax) and is null; not set where distance_pc replaces the "
+    "parallax.",
 }
 
 

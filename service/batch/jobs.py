@@ -280,7 +280,7 @@ _VELOCITY_INPUTS = (
 
 _VELOCITIES = (
     ("distance_pc", "pc", "distance used: distance_pc if given, else 1000/parallax"),
-    ("parallax_snr", "1", "parallax / parallax error (NaN without an error)"),
+    ("parallax_snr", "1", "parallax / parallax error (NaN without an error or with a zero one)"),
     ("pm_total_mas_yr", "mas/yr", "total proper motion"),
     ("pm_position_angle_deg", "deg", "position angle of the proper motion, east of north"),
     ("transverse_velocity_km_s", "km/s", "transverse velocity A mu / parallax"),
@@ -341,6 +341,16 @@ VELOCITY_FLAG_MEANINGS = {
     "where distance_pc replaces the parallax.",
     _KF.CORRELATIONS_INCONSISTENT: "The correlations given cannot all hold at once (their "
     "matrix is not positive semi-definite): uncertainties NaN.",
+    _KF.PROPER_MOTION_ZERO: "Total proper motion exactly zero: no direction of motion, so "
+    "pm_position_angle_deg, closest_approach_pm_mas_yr and closest_approach_parallax_mas are "
+    "NaN, and so is transverse_velocity_error_km_s (the derivative of the total proper motion "
+    "is undefined at zero: the linear error's limit depends on the direction from which the "
+    "motion approaches zero). With a radial velocity of exactly zero too (at rest relative "
+    "to the Sun) velocity_line_of_sight_angle_deg, total_velocity_error_km_s, "
+    "closest_approach_time_yr and closest_approach_distance_pc are NaN as well.",
+    _KF.PARALLAX_ERROR_ZERO: "Parallax error given as zero: parallax_snr is infinite "
+    "(undefined for a zero parallax) and is NaN; not set where distance_pc replaces the "
+    "parallax.",
 }
 
 _CORRELATIONS = (

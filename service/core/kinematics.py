@@ -202,6 +202,17 @@ class KinematicsFlag(enum.IntFlag):
     #: semi-definite): the uncertainties are null (correlations_inconsistent). The API
     #: refuses such input; the batch jobs flag the row.
     CORRELATIONS_INCONSISTENT = 4096
+    #: Total proper motion exactly zero: no direction of motion, so the position angle is
+    #: null, and so are the closest-approach proper motion and parallax (no transverse
+    #: motion). The linear transverse-velocity error is null: the derivative of |mu| is
+    #: undefined at mu = 0 (the linear error's limit there depends on the direction from
+    #: which mu approaches zero); Monte Carlo gives one. With a radial velocity of exactly
+    #: zero too the star is at rest relative to the Sun: the line-of-sight angle, the linear
+    #: total-velocity error and the closest-approach time and distance are null as well.
+    PROPER_MOTION_ZERO = 8192
+    #: Parallax error given as zero (no distance given in its place): the parallax
+    #: signal-to-noise is infinite (undefined for a zero parallax) and is null.
+    PARALLAX_ERROR_ZERO = 16384
 
 
 @dataclass(frozen=True)
@@ -213,7 +224,8 @@ class SpaceVelocity:
 
     #: Distance used, pc (1000 / parallax, or the explicit distance). Shape S.
     distance_pc: np.ndarray
-    #: Parallax signal-to-noise (parallax / parallax error); NaN if unknown. Shape S.
+    #: Parallax signal-to-noise (parallax / parallax error); NaN if unknown or if the
+    #: parallax error is zero (flag PARALLAX_ERROR_ZERO). Shape S.
     parallax_snr: np.ndarray
     #: Position angle of the proper motion, degrees east of north in [0, 360); NaN
     #: without proper motion (no direction). Shape S.
@@ -246,7 +258,8 @@ class SpaceVelocity:
     #: Monte Carlo draws, km/s; NaN for stars with linear uncertainties, None when no star
     #: used Monte Carlo. Shape S + (3, 2). See :attr:`uvw_interval_km_s`.
     uvw_monte_carlo_interval_km_s: np.ndarray | None
-    #: Standard error of the transverse velocity, km/s. Shape S.
+    #: Standard error of the transverse velocity, km/s; NaN (linear) where the proper
+    #: motion is zero (flag PROPER_MOTION_ZERO). Shape S.
     transverse_velocity_error_km_s: np.ndarray
     #: Standard error of the total velocity, km/s. Shape S.
     total_velocity_error_km_s: np.ndarray
@@ -1008,6 +1021,11 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
             flags |= ~plx_known * np.uint32(KinematicsFlag.PARALLAX_MISSING)
             plx_eq = np.where(positive, plx, np.nan)
         snr = plx / sig_p
+        # A zero parallax error: signal-to-noise infinite or 0/0, null and flagged.
+        err_zero = (sig_p == 0.0) & np.isfinite(plx) & ~given
+        if err_zero.any():
+            flags |= err_zero * np.uint32(KinematicsFlag.PARALLAX_ERROR_ZERO)
+            snr = np.where(sig_p == 0.0, np.nan, snr)
         sig_plx_eq = sig_p
         if given.any():
             flags &= ~(
@@ -1042,6 +1060,9 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
 
     # --- decomposition -------------------------------------------------------------------
     pm_total = np.sqrt(pmra * pmra + pmdec * pmdec)
+    pm_zero = pm_total == 0.0
+    if pm_zero.any():
+        flags |= pm_zero * np.uint32(KinematicsFlag.PROPER_MOTION_ZERO)
     implausible = pm_total > IMPLAUSIBLE_PROPER_MOTION_MAS_YR
     if implausible.any():
         flags |= implausible * np.uint32(KinematicsFlag.PROPER_MOTION_IMPLAUSIBLE)

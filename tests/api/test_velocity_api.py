@@ -550,3 +550,31 @@ def test_parallax_too_small_for_a_distance_is_flagged(client, parallax):
         # subnormal parallaxes carry fewer digits: 5e-324 is the smallest double itself
         assert tiny[name] == pytest.approx(one[name] * parallax, rel=1e-9, abs=1e-323)
     assert tiny["radial_velocity_km_s"] == one["radial_velocity_km_s"]
+
+
+def test_zero_proper_motion_and_zero_parallax_error_nulls_are_flagged(client):
+    # Every null of an answer has a flag that says why: a star without proper motion has no
+    # position angle and no linear transverse-velocity error (the derivative of |mu| is
+    # undefined at zero); a zero parallax error makes parallax / error infinite, which JSON
+    # cannot carry. Both were null with no flag. References: tests/core/test_kinematics.py
+    # (direct simulations of 200,000 draws).
+    errs = {"parallax_error_mas": 0.1, "pm_ra_cosdec_error_mas_yr": 0.2,
+            "pm_dec_error_mas_yr": 0.3, "radial_velocity_error_km_s": 1.0}  # fmt: skip
+    stars = [{**STAR, **errs}, {**STAR, **errs, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0},
+             {**STAR, **errs, "parallax_error_mas": 0.0}]  # fmt: skip
+    for layout in ("records", "columns"):
+        body = post(client, {"stars": stars, "layout": layout}).json
+        if layout == "records":
+            s = body["stars"]
+        else:
+            c = body["columns"]
+            s = [{k: v[i] for k, v in c.items() if v is not None} for i in range(3)]
+        assert "proper_motion_zero" not in s[0]["flags"] and s[0]["parallax_snr"] == 200.0
+        assert "proper_motion_zero" in s[1]["flags"]
+        assert s[1]["transverse_velocity_error_km_s"] is None
+        assert s[1]["pm_position_angle_deg"] is None
+        assert "parallax_error_zero" in s[2]["flags"] and s[2]["parallax_snr"] is None
+        assert s[2]["transverse_velocity_error_km_s"] is not None
+        meanings = body["flag_meanings"]
+        assert "derivative" in meanings["proper_motion_zero"]
+        assert "infinite" in meanings["parallax_error_zero"]

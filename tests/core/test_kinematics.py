@@ -297,6 +297,89 @@ def test_angles_of_no_motion_are_null(zero):
     assert abs(r.velocity_line_of_sight_angle_deg[2] - 90.0) < 1e-12  # deg, transverse
 
 
+def test_zero_proper_motion_nulls_the_linear_transverse_error_under_a_flag():
+    # The linear transverse-velocity error of a star moving along unit direction u is
+    # A/parallax * sqrt(u^T S_mu u) however slow it moves (the parallax term shrinks with
+    # |mu|): k sigma_a moving east, k sigma_d moving north. At mu = 0 there is no direction,
+    # the two limits differ (here by a factor 2.5), and the linear error has no value:
+    # it is null, and the star flagged proper_motion_zero (it used to be null unflagged).
+    # Reference: a direct simulation of 200,000 draws (numpy) at 1000 sigma along each axis,
+    # where the linear error holds.
+    a = constants.AU_PER_JULIAN_YEAR_KM_S
+    plx, sig_a, sig_d = 20.0, 0.2, 0.5  # mas, mas/yr, mas/yr
+    k = a / plx  # km/s per mas/yr
+    kw = dict(parallax_error_mas=1e-6, pm_ra_cosdec_error_mas_yr=sig_a,
+              pm_dec_error_mas_yr=sig_d, radial_velocity_error_km_s=1.0)  # fmt: skip
+    pmra = np.array([0.0, 1e-9, 0.0, 1000 * sig_a, 0.0])
+    pmdec = np.array([0.0, 0.0, 1e-9, 0.0, 1000 * sig_d])
+    r = space_velocity(210.0, 15.0, plx, pmra, pmdec, 30.0, **kw)
+    zero = (r.flags & KinematicsFlag.PROPER_MOTION_ZERO) > 0
+    assert zero.tolist() == [True, False, False, False, False]
+    assert np.isnan(r.transverse_velocity_error_km_s[0])
+    assert np.isnan(r.pm_position_angle_deg[0])
+    assert "proper_motion_zero" in flag_names(r.flags, KinematicsFlag)[0]
+    vt_err = r.transverse_velocity_error_km_s
+    assert abs(vt_err[1] - k * sig_a) < 1e-9  # km/s, the limit moving east
+    assert abs(vt_err[2] - k * sig_d) < 1e-9  # km/s, the limit moving north
+    rng = np.random.default_rng(17)
+    n = 200_000
+    for i in (3, 4):
+        mu_a = pmra[i] + sig_a * rng.standard_normal(n)
+        mu_d = pmdec[i] + sig_d * rng.standard_normal(n)
+        vt = a * np.hypot(mu_a, mu_d) / (plx + 1e-6 * rng.standard_normal(n))
+        # Sampling error of a standard deviation from 2e5 draws: 0.16%. Tolerance 1%.
+        assert abs(vt_err[i] / vt.std() - 1) < 0.01  # fraction
+    assert abs(vt_err[1] - vt_err[3]) < 1e-6 and abs(vt_err[2] - vt_err[4]) < 1e-6  # km/s
+
+
+def test_zero_proper_motion_monte_carlo_gives_the_spread_of_the_transverse_velocity():
+    # The Monte Carlo option gives a transverse-velocity error at mu = 0 (the flag meaning
+    # says so): half the width between the 15.87th and 84.13th percentiles of A|mu|/parallax.
+    # Reference: a direct simulation of 200,000 draws (numpy); for equal proper-motion errors
+    # and an exact parallax |mu| follows a Rayleigh law, whose percentiles are
+    # sigma sqrt(-2 ln(1 - p)) (closed form), half-width 0.6654 sigma.
+    a = constants.AU_PER_JULIAN_YEAR_KM_S
+    plx, sig_p, sig_mu = 20.0, 0.5, 0.3  # mas, mas, mas/yr
+    r = space_velocity(
+        210.0, 15.0, plx, 0.0, 0.0, 30.0, parallax_error_mas=sig_p,
+        pm_ra_cosdec_error_mas_yr=sig_mu, pm_dec_error_mas_yr=sig_mu,
+        radial_velocity_error_km_s=1.0, uncertainty_method="monte_carlo",
+        monte_carlo_draws=100_000, seed=5,
+    )  # fmt: skip
+    assert r.flags & KinematicsFlag.PROPER_MOTION_ZERO
+    assert r.flags & KinematicsFlag.MONTE_CARLO_UNCERTAINTIES
+    rng = np.random.default_rng(23)
+    n = 200_000
+    p = rng.normal(plx, sig_p, n)
+    vt = a * np.hypot(rng.normal(0, sig_mu, n), rng.normal(0, sig_mu, n)) / p
+    lo, hi = np.percentile(vt[p > 0], [15.865525393145708, 84.13447460685429])
+    # Two independent samples (1e5 and 2e5 draws): the half-width scatters by about 0.5%.
+    assert abs(r.transverse_velocity_error_km_s / ((hi - lo) / 2) - 1) < 0.03  # fraction
+    q = np.sqrt(-2 * np.log1p(-np.array([0.15865525393145708, 0.8413447460685429])))
+    rayleigh = a * sig_mu / plx * (q[1] - q[0]) / 2  # km/s, the parallax spread aside
+    assert abs(r.transverse_velocity_error_km_s / rayleigh - 1) < 0.03  # fraction (2.5% plx)
+
+
+def test_zero_parallax_error_nulls_the_signal_to_noise_under_a_flag():
+    # parallax / 0 is infinite (0/0 undefined), which JSON cannot carry: it was null with no
+    # flag. Reference: the signal-to-noise is parallax / error by definition (Bailer-Jones
+    # 2015, PASP 127, 994, section 5); numpy gives inf, -inf and nan for these divisions.
+    plx = np.array([10.0, 0.0, -1.0, 10.0, 10.0])
+    sig_p = np.array([0.0, 0.0, 0.0, 0.5, 0.0])
+    dist = np.array([np.nan, np.nan, np.nan, np.nan, 100.0])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        assert not np.isfinite(plx[:3] / sig_p[:3]).any()
+    r = space_velocity(10.0, 20.0, plx, 30.0, 40.0, 5.0, parallax_error_mas=sig_p,
+                       distance_pc=dist, distance_error_pc=1.0)  # fmt: skip
+    flagged = (r.flags & KinematicsFlag.PARALLAX_ERROR_ZERO) > 0
+    assert flagged.tolist() == [True, True, True, False, False]
+    assert np.isnan(r.parallax_snr[[0, 1, 2, 4]]).all()
+    assert abs(r.parallax_snr[3] - 20.0) < 1e-12  # 10 / 0.5
+    assert r.flags[4] & KinematicsFlag.DISTANCE_GIVEN  # its null explained by that flag
+    assert not r.flags[0] & KinematicsFlag.PARALLAX_LOW_SNR  # an exact parallax is not noisy
+    assert r.distance_pc[0] == 100.0  # the velocities themselves are unaffected
+
+
 def test_line_of_sight_angle_and_speed_from_components():
     s = _random_stars(100, seed=8)
     r = space_velocity(
