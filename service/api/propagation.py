@@ -274,7 +274,10 @@ class AtEpochSchema(ma.Schema):
             "description": "Standard errors (ra_error_mas ... radial_velocity_error_km_s) and "
             "correlation coefficients (correlation_ra_dec ...) at this epoch; null when the "
             "star came without the standard errors of its position, proper motion and (where "
-            "its parallax is given) parallax."
+            "its parallax is given) parallax. Members null where a pole leaves them "
+            "without meaning (at_pole): ra_error_mas and correlation_ra_* for a star that "
+            "moves off a catalogue position at a pole, the proper-motion errors and their "
+            "correlations for one that moves onto a pole."
         },
     )
 
@@ -342,9 +345,13 @@ FLAG_MEANINGS = {
     "space_velocity_implausible": "Implied space velocity above half the speed of light: "
     "inconsistent inputs.",
     "at_pole": "At a celestial pole at the catalogue epoch or a target epoch: right "
-    "ascension, and the directions of the proper-motion components, undefined there. From "
-    "a catalogue position at a pole those directions are taken from the right ascension "
-    "given, and the uncertainties have no meaning.",
+    "ascension, and the directions of the proper-motion components, undefined there; they "
+    "are taken from the right ascension given (or computed). For a star that moves off a "
+    "catalogue position at a pole, ra_error_mas and the correlation_ra_* are null at the "
+    "target epochs (a change of ra*cos(dec) there turns the whole motion about the pole); "
+    "for a star that moves onto a pole, the proper-motion errors and their correlations "
+    "are null at that epoch. The other uncertainties stand (at the catalogue epoch, those "
+    "given).",
     "distance_replaced": "Light-time model: distance replaced by a minimum value (SOFA "
     "pmsafe); where the parallax given was positive, the parallax and radial velocity out "
     "follow from that distance, not from the parallax given.",

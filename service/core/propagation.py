@@ -85,8 +85,9 @@ class PropagationFlag(enum.IntFlag):
     #: target epoch: right ascension and the orientation of the proper-motion components
     #: are undefined there. From a catalogue position at a pole the directions of the
     #: proper motion are taken from the right ascension given (as the limit along that
-    #: meridian), and uncertainties have no meaning (a change of ra*cos(dec) there turns
-    #: the motion about the pole).
+    #: meridian). Covariance entries a pole leaves without meaning are NaN (Note 5 of
+    #: propagate): ra*cos(dec) from a catalogue position at a pole (a change of it there
+    #: turns the motion about the pole), the proper motions at a target at a pole.
     AT_POLE = 32
     #: Light-time model: the parallax was too small for the motion and SOFA replaced the
     #: distance by a minimum value (pmsafe status 1).
@@ -842,6 +843,13 @@ def propagate(
        to infinity (and infinity times zero to NaN in the covariance). That is allowed to
        happen silently: the star is flagged SPACE_VELOCITY_IMPLAUSIBLE, and the affected
        outputs are infinite or NaN (unknown).
+    5. At a pole (flag AT_POLE) the local triad, and with it the meaning of ra*cos(dec) and
+       of the proper-motion components, is fixed only by the right ascension given or
+       computed: a change of position there turns it through any angle. For a star that
+       moves across the sky from a catalogue position at a pole, row and column 0 (the
+       error of ra*cos(dec) and its correlations) of the covariance are NaN; for a star
+       that moves onto a pole at the target, rows and columns 3 and 4 (the proper motions).
+       Linear propagation would give them as about 1e16 times the input errors.
     """
     if model not in MODELS:
         raise ValueError(f"unknown model {model!r}; choose one of {MODELS}")
@@ -901,6 +909,7 @@ def propagate(
                 rv_unknown = np.isnan(rv) | np.isnan(cb[:, 5, 5])
                 plx_unknown = np.isnan(plx) | np.isnan(cb[:, 2, 2])
                 _covariance_block(em, cb, plx_unknown, rv_unknown, bufs, cov_out[sl])
+                _null_at_pole(loc, cov_out[sl])
                 # The standard model's parallax: the Jacobian's (Note 1 holds for both).
                 nonlinear = _nonlinear(em, cb, plx, plx * loc.f, cov_out[sl])
                 flags[sl] |= np.where(nonlinear, int(PropagationFlag.UNCERTAINTIES_NONLINEAR), 0)
@@ -908,6 +917,32 @@ def propagate(
     if cov_out is not None:
         cov_out = cov_out.reshape(shape + (6, 6))
     return PropagationResult(ast, flags.reshape(shape), cov_out)
+
+
+def _null_at_pole(loc: _Local, cov_out):
+    """Blank (NaN) the covariance rows and columns that a pole leaves without meaning (Note 5
+    of propagate).
+
+    A star that moves across the sky from a catalogue position at a pole: the right
+    ascension row and column (the model's response to a change of ra*cos(dec) is a rotation
+    about the pole by that change over cos(dec0), about 1e16 times the change). A star that
+    moves onto a pole at the target: the proper-motion rows and columns (their response to
+    a change of position carries tan(dec1), as large). A star that does not move keeps its
+    covariance (the catalogue epoch itself: the values given).
+    """
+    moved = (loc.sx != 0.0) | (loc.sy != 0.0)
+    rows = []
+    ra_void = moved & (loc.cd < AT_POLE_RAD)
+    if ra_void.any():
+        rows.append((ra_void, (0,)))
+    pm_void = moved & (loc.H * loc.f < AT_POLE_RAD)
+    if pm_void.any():
+        rows.append((pm_void, (3, 4)))
+    for void, ks in rows:
+        void = np.broadcast_to(void, cov_out.shape[:1])
+        for k in ks:
+            cov_out[void, k, :] = np.nan
+            cov_out[void, :, k] = np.nan
 
 
 def _nonlinear(entry_major, cov_block, plx0, plx1, cov_out):
@@ -926,7 +961,8 @@ def _nonlinear(entry_major, cov_block, plx0, plx1, cov_out):
     2. Either ratio above NONLINEAR_RELATIVE_ERROR flags the star at that epoch.
     """
     b = cov_block.shape[0]
-    var_pos = cov_out[:, 0, 0] + cov_out[:, 1, 1]  # mas^2
+    # mas^2; an unknown variance (NaN: at a pole, Note 5 of propagate) counts as zero
+    var_pos = _nan_as_zero(cov_out[:, 0, 0]) + _nan_as_zero(cov_out[:, 1, 1])
     nonlinear = var_pos > (NONLINEAR_RELATIVE_ERROR * MAS_PER_RAD) ** 2
     usable = (plx0 > 0.0) & np.isfinite(plx1) & (plx1 > 0.0)
     if usable.any():

@@ -892,3 +892,57 @@ def test_warnings_limit_is_documented_and_flags_name_every_star(client, monkeypa
     answer = post(client, dict(BASE, stars=[fast] * 3)).json
     assert [w["index"] for w in answer["warnings"]] == [0, 1]
     assert all("proper_motion_implausible" in s["flags"] for s in answer["stars"])
+
+
+def test_errors_a_pole_leaves_without_meaning_are_null_in_every_layout(client):
+    # A star catalogued exactly at dec +-90 deg and moving off the pole was answered with
+    # ra_error_mas of 5.8e11 mas (linear propagation: the error given over cos(dec) = 6e-17),
+    # correlations to match, and uncertainties_nonlinear. Those members are null now under
+    # at_pole, alike in records, columns, CSV and Arrow; the rest stand. Reference for the
+    # rest: 100,000 draws moved by astropy (tests/core/test_propagation.py).
+    import csv
+    import io
+
+    import pyarrow as pa
+
+    from tests.conftest import propagation_rows
+
+    errs = {"ra_error_mas": 0.05, "dec_error_mas": 0.048, "parallax_error_mas": 0.064,
+            "pm_ra_cosdec_error_mas_yr": 0.059, "pm_dec_error_mas_yr": 0.054,
+            "radial_velocity_error_km_s": 0.52, "correlation_ra_pm_ra": 0.014,
+            "correlation_dec_pm_dec": -0.143}  # fmt: skip
+    star = dict(STAR, **errs, parallax_mas=19.75, radial_velocity_km_s=6.15)
+    stars = [dict(star, id=f"P{k}", dec_deg=dec) for k, dec in enumerate((90.0, -90.0, 89.0))]
+    body = dict(BASE, stars=stars, target_epochs=["J2016.0", "J2100.0"])
+    r = post(client, body)
+    assert r.status_code == 200
+    text = r.get_data(as_text=True)
+    assert "NaN" not in text and "Infinity" not in text
+    js = r.json
+    assert "at_pole" in js["flag_meanings"] and "ra_error_mas" in js["flag_meanings"]["at_pole"]
+    for s in js["stars"][:2]:
+        assert s["flags"] == ["at_pole"]  # no uncertainties_nonlinear from a void figure
+        given, moved = (at["uncertainties"] for at in s["at_epochs"])
+        assert given["ra_error_mas"] == 0.05 and given["correlation_ra_pm_ra"] == 0.014
+        void = [k for k, v in moved.items() if v is None]
+        assert sorted(void) == sorted(k for k in moved if k.startswith(("ra_", "correlation_ra_")))
+        assert all(abs(v) < 1e3 for v in moved.values() if v is not None)
+    assert all(v is not None for v in js["stars"][2]["at_epochs"][1]["uncertainties"].values())
+    expected = propagation_rows(js)
+    cols = post(client, dict(body, layout="columns")).json["columns"]
+    for i, s in enumerate(js["stars"]):
+        for k, at in enumerate(s["at_epochs"]):
+            for name, value in at["uncertainties"].items():
+                assert cols[name][k][i] == value, name
+    as_csv = client.post(URL, json=body, headers={"Accept": "text/csv"})
+    rows = list(csv.DictReader(io.StringIO(as_csv.get_data(as_text=True))))
+    arrow = "application/vnd.apache.arrow.stream"
+    as_arrow = client.post(URL, json=body, headers={"Accept": arrow})
+    with pa.ipc.open_stream(pa.py_buffer(as_arrow.data)) as reader:
+        arrow_rows = reader.read_all().to_pylist()
+    assert len(rows) == len(arrow_rows) == len(expected) == 6
+    for row, arrow_row, want in zip(rows, arrow_rows, expected, strict=True):
+        for name in js["stars"][0]["at_epochs"][0]["uncertainties"]:
+            value = want[name]
+            assert arrow_row[name] == value, name  # None (null) or the same double
+            assert row[name] == "" if value is None else float(row[name]) == value, name

@@ -807,13 +807,110 @@ def test_flag_at_pole_from_the_catalogue_position(model):
     )
     sep_mas = separation_uas(res.astrometry.ra_deg, res.astrometry.dec_deg, 0.0, 90.0) / 1e3
     assert sep_mas == pytest.approx(math.hypot(100.0, 50.0), rel=1e-6)  # moved off the pole
-    assert np.sqrt(res.covariance[0, 0]) > 1e6  # the figure the flag warns of
+    assert np.isnan(res.covariance[0, 0])  # null (it was that figure), flagged
     assert res.flags & PropagationFlag.AT_POLE
     # One microarcsecond from the pole: no flag (AT_POLE_RAD is 0.2 microarcsecond).
     near = propagate(
         30.0, 90.0 - 1e-6 / 3600.0, 10.0, 100.0, 50.0, np.nan, 2016.0, 2017.0, model=model
     )
     assert not near.flags & PropagationFlag.AT_POLE
+
+
+def _pole_draws(star, cov, n, seed):
+    """Draws of a star catalogued exactly at a pole, moved with astropy_straight_line.
+
+    Right ascension is not drawn: at the pole a change of it turns the whole motion about
+    the pole, which changes the right ascension out and nothing else (Note 3 of
+    standard_jacobian). A declination offset eps goes along q0 (towards ra + 180 deg for
+    eps > 0 at the north pole, where the star keeps its proper motion in the triad carried
+    along: its components in that point's own triad change sign); the model's derivative
+    is that of this rigid turn about p0. Returns the (n, 6) sample at the target.
+    """
+    rng = np.random.default_rng(seed)
+    d = rng.multivariate_normal(np.zeros(6), cov, size=n)
+    ra0, dec0 = star[0], star[1]
+    eps_deg = np.degrees(d[:, 1] / MAS_PER_RAD) * np.sign(dec0)  # towards the equator < 0
+    over = eps_deg > 0.0
+    ra = np.where(over, ra0 + 180.0, ra0) % 360.0
+    dec = np.sign(dec0) * (90.0 - np.abs(eps_deg))
+    sign = np.where(over, -1.0, 1.0)
+    return ra, dec, star[2] + d[:, 2], sign * (star[3] + d[:, 3]), sign * (star[4] + d[:, 4]), \
+        star[5] + d[:, 5]  # fmt: skip
+
+
+@pytest.mark.parametrize("pole", [90.0, -90.0])
+def test_covariance_from_a_catalogue_position_at_a_pole(pole):
+    # A star catalogued exactly at a pole and moving off it: the linear error of ra*cos(dec)
+    # at the target was cos(dec1)/cos(dec0) (about 1e16 for dec0 = +-90 deg) times the error
+    # given, 5.8e11 mas and more, with correlations to match; they are null now (NaN) under
+    # AT_POLE, and no longer set UNCERTAINTIES_NONLINEAR. Reference for every other entry:
+    # 100,000 draws moved by astropy (_pole_draws), 5 standard errors of each sample
+    # covariance element (normal theory), as test_propagated_covariance_matches_monte_carlo.
+    n = 100_000
+    star = np.array([30.0, pole, 10.0, 100.0, 50.0, 20.0])
+    sig = np.array([0.1, 0.1, 0.2, 0.1, 0.1, 1.0])
+    corr = np.eye(6)
+    corr[1, 4] = corr[4, 1] = -0.3  # (dec, pm_dec)
+    corr[2, 3] = corr[3, 2] = 0.2  # (parallax, pm_ra)
+    corr[0, 3] = corr[3, 0] = 0.1  # (ra, pm_ra)
+    cov = corr * np.outer(sig, sig)
+    tau = 50.0
+    res = propagate(*star, 2016.0, 2016.0 + np.array([0.0, tau]), covariance=cov)
+    assert (res.flags & PropagationFlag.AT_POLE).all()
+    assert not (res.flags & PropagationFlag.UNCERTAINTIES_NONLINEAR).any()
+    # At the catalogue epoch the covariance is the one given (to rounding: terms over
+    # cos(dec0), 6e-17 at the pole, leave 2e-9 in the (dec, pm_dec) block).
+    assert np.abs(res.covariance[0] - cov).max() < 1e-8  # mas^2, mas^2/yr, mas^2/yr^2
+    an = res.covariance[1]
+    assert np.isnan(an[0]).all() and np.isnan(an[:, 0]).all()
+    keep = [1, 2, 3, 4, 5]
+    assert np.isfinite(an[np.ix_(keep, keep)]).all()
+    ra, dec, *rest = _pole_draws(star, cov, n, seed=12)
+    ref = astropy_straight_line(ra, dec, *rest, tau)
+    a1 = res.astrometry
+    _, dd = tangent_offsets_mas(ref["ra_deg"], ref["dec_deg"], a1.ra_deg[1], a1.dec_deg[1])
+    sample = np.column_stack(
+        [dd, ref["parallax_mas"], ref["pm_ra_cosdec_mas_yr"], ref["pm_dec_mas_yr"],
+         ref["radial_velocity_km_s"]]
+    )  # fmt: skip
+    mc = np.cov(sample, rowvar=False)
+    an = an[np.ix_(keep, keep)]
+    se = np.sqrt((np.outer(np.diag(an), np.diag(an)) + an**2) / n)
+    assert np.all(np.abs(mc - an) <= 5 * se), (mc - an) / se
+
+
+def test_covariance_of_a_star_moving_onto_a_pole():
+    # A star that reaches a pole at the target: its proper-motion components there refer to
+    # a right ascension that a change of position of 0.2 microarcsecond turns through any
+    # angle; their linear errors were tan(dec1) times the position error, 1e11 mas/yr
+    # here. Null now (NaN) under AT_POLE; the position errors stay. Reference: 100,000 draws
+    # moved by astropy (astropy_straight_line): the proper motion's direction at the target
+    # scatters through every angle, so its components spread by the size of the motion.
+    n = 100_000
+    dec0, mud = 89.999, 3600.0  # deg, mas/yr straight north
+    tau = 1.0 / np.tan(np.radians(dec0)) / (mud / MAS_PER_RAD)  # years to the pole
+    star = np.array([0.0, dec0, 20.0, 0.0, mud, np.nan])  # no radial velocity: mu_r = 0
+    sig = np.array([0.05, 0.05, 0.06, 0.06, 0.05, 1.0])
+    cov = np.diag(sig**2)
+    res = propagate(*star, 2016.0, 2016.0 + tau, covariance=cov)
+    assert res.flags & PropagationFlag.AT_POLE
+    c = res.covariance
+    assert np.isnan(c[[3, 4]]).all() and np.isnan(c[:, [3, 4]]).all()
+    keep = [0, 1, 2]
+    assert np.isfinite(c[np.ix_(keep, keep)]).all()
+    rng = np.random.default_rng(13)
+    d = rng.normal(size=(n, 6)) * sig
+    ra = star[0] + np.degrees(d[:, 0] / MAS_PER_RAD) / np.cos(np.radians(dec0))
+    dec = dec0 + np.degrees(d[:, 1] / MAS_PER_RAD)
+    ref = astropy_straight_line(ra, dec, *(star[2:5] + d[:, 2:5]).T, 0.0, tau)
+    assert ref["pm_ra_cosdec_mas_yr"].std() > 0.3 * mud  # mas/yr: no standard error
+    a1 = res.astrometry
+    da, dd = tangent_offsets_mas(ref["ra_deg"], ref["dec_deg"], a1.ra_deg, a1.dec_deg)
+    sample = np.column_stack([da, dd, ref["parallax_mas"]])
+    mc = np.cov(sample, rowvar=False)
+    an = c[np.ix_(keep, keep)]
+    se = np.sqrt((np.outer(np.diag(an), np.diag(an)) + an**2) / n)
+    assert np.all(np.abs(mc - an) <= 5 * se), (mc - an) / se
 
 
 @pytest.mark.parametrize("with_covariance", [False, True])
