@@ -367,8 +367,9 @@ _OUTPUT_DESCRIPTIONS = {
     "null with linear uncertainties where the proper motion is zero (proper_motion_zero).",
     "total_velocity_error_km_s": "Standard error of the total velocity, km/s.",
     "pm_ra_cosdec_rate_mas_yr2": "Perspective acceleration: rate of change of pm_ra_cosdec, "
-    "mas/yr^2 (straight-line model).",
-    "pm_dec_rate_mas_yr2": "Rate of change of pm_dec, mas/yr^2.",
+    "mas/yr^2 (straight-line model); null at a celestial pole (at_pole).",
+    "pm_dec_rate_mas_yr2": "Rate of change of pm_dec, mas/yr^2; null at a celestial pole "
+    "(at_pole).",
     "pm_total_rate_mas_yr2": "Rate of change of the total proper motion, mas/yr^2.",
     "radial_velocity_rate_km_s_yr": "Rate of change of the radial velocity, v_t^2/d, km/s per "
     "Julian year.",
@@ -421,6 +422,11 @@ FLAG_MEANINGS = {
     "velocity_line_of_sight_angle_deg, closest_approach_time_yr, "
     "closest_approach_distance_pc and, with linear uncertainties, total_velocity_error_km_s "
     "are null as well.",
+    "at_pole": "At a celestial pole (within 1e-12 rad): east and north, and with them "
+    "the proper-motion components and transverse_velocity_ra_km_s and "
+    "transverse_velocity_dec_km_s, are those of the right ascension given; "
+    "pm_ra_cosdec_rate_mas_yr2 and pm_dec_rate_mas_yr2 carry tan(dec), infinite there, and "
+    "are null (pm_total_rate_mas_yr2 is given).",
     "parallax_error_zero": "Parallax error given as zero: parallax_snr is infinite "
     "(undefined for a zero parallax) and is null; not set where distance_pc replaces the "
     "parallax.",

@@ -55,6 +55,7 @@ from service.core.constants import (
     RAD_PER_DEG,
 )
 from service.core.floating import overflow_to_infinity
+from service.core.propagation import AT_POLE_RAD
 
 # ---------------------------------------------------------------------------------------
 # Constants specific to this module (unit and source beside each)
@@ -213,6 +214,12 @@ class KinematicsFlag(enum.IntFlag):
     #: Parallax error given as zero (no distance given in its place): the parallax
     #: signal-to-noise is infinite (undefined for a zero parallax) and is null.
     PARALLAX_ERROR_ZERO = 16384
+    #: Position at a celestial pole (within AT_POLE_RAD of it): the directions east and
+    #: north, and with them the proper-motion components and the transverse velocity's
+    #: east and north parts, are those of the right ascension given (the limit along that
+    #: meridian); the rates of the proper-motion components carry tan(dec), infinite
+    #: there, and are null (the rate of the total proper motion is given).
+    AT_POLE = 32768
 
 
 @dataclass(frozen=True)
@@ -674,8 +681,8 @@ def space_velocity(
        d(mu_dec)/dt = -2 mu_r mu_dec - tan(dec) mu_ra*^2, d|mu|/dt = -2 mu_r |mu|,
        d(v_rad)/dt = v_t^2 / d, with mu_r = v_rad / d the radial proper motion. Closest
        approach: t = -d v_rad / |v|^2, minimum distance d v_t / |v|, speed |v|. At a
-       celestial pole the component rates are undefined (NaN or infinite); the total rate
-       is not.
+       celestial pole (flag AT_POLE) the component rates are undefined (NaN); the total
+       rate is not.
     8. The light-time (Roemer) correction between apparent and true motions (a factor
        1 - v_rad/c, below 1e-3) is not applied.
 
@@ -1084,6 +1091,9 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     # --- velocity vector: local triad -> ICRS -> U, V, W ---------------------------------
     sa, ca = sin_cos_deg(ra)
     sd, cd = sin_cos_deg(dec)
+    at_pole = cd < AT_POLE_RAD
+    if at_pole.any():
+        flags |= at_pole * np.uint32(KinematicsFlag.AT_POLE)
     # Rotation by Dec: (north, radial) -> (equatorial-plane direction e, pole z).
     v_e = cd * rv - sd * vd
     v_z = sd * rv + cd * vd
@@ -1182,8 +1192,8 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     mu_r_per_yr = rv / (k * MAS_PER_RAD)
     minus_two_mu_r = -2.0 * mu_r_per_yr
     with np.errstate(divide="ignore", invalid="ignore"):
-        # At a celestial pole (cos dec = 0) the component rates are undefined: NaN/inf.
-        tan_dec_per_rad = sd / (cd * MAS_PER_RAD)
+        # At a celestial pole the component rates are undefined: null (flag AT_POLE).
+        tan_dec_per_rad = np.where(at_pole, np.nan, sd / (cd * MAS_PER_RAD))
         out["pm_ra_cosdec_rate_mas_yr2"][sl] = pmra * (minus_two_mu_r + tan_dec_per_rad * pmdec)
         out["pm_dec_rate_mas_yr2"][sl] = minus_two_mu_r * pmdec - tan_dec_per_rad * pmra * pmra
     out["pm_total_rate_mas_yr2"][sl] = minus_two_mu_r * pm_total

@@ -578,3 +578,15 @@ def test_zero_proper_motion_and_zero_parallax_error_nulls_are_flagged(client):
         meanings = body["flag_meanings"]
         assert "derivative" in meanings["proper_motion_zero"]
         assert "infinite" in meanings["parallax_error_zero"]
+
+
+def test_component_rates_at_a_pole_are_null_and_flagged(client):
+    # tan(dec) is infinite at a pole: the component rates were null with no flag.
+    # Reference: tests/core/test_kinematics.py (ERFA pmsafe for the total rate kept).
+    body = post(client, {"stars": [dict(STAR, dec_deg=90.0), STAR]}).json
+    pole, other = body["stars"]
+    assert "at_pole" in pole["flags"] and "at_pole" not in other["flags"]
+    assert pole["pm_ra_cosdec_rate_mas_yr2"] is None and pole["pm_dec_rate_mas_yr2"] is None
+    assert pole["pm_total_rate_mas_yr2"] is not None
+    assert other["pm_ra_cosdec_rate_mas_yr2"] is not None
+    assert "tan(dec)" in body["flag_meanings"]["at_pole"]

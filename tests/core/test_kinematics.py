@@ -1030,6 +1030,33 @@ def test_perspective_acceleration_against_erfa_pmsafe(star):
     assert abs(r.radial_velocity_rate_km_s_yr - rates[2]) < tol_rel * abs(rates[2])
 
 
+@pytest.mark.parametrize("dec", [90.0, -90.0])
+def test_at_a_pole_component_rates_are_null_and_flagged(dec):
+    # The rates of the proper-motion components carry tan(dec), infinite at a pole: they
+    # were null with no flag. Now flagged at_pole; the rate of the total proper motion stays.
+    # Reference: ERFA pmsafe (SOFA starpm) at +-5 yr, d|mu|/dt by central differences,
+    # agreement to ~v_rad/c (light time) as in test_perspective_acceleration_against_erfa_pmsafe.
+    star = (45.0, dec, 50.0, -355.0, 89.5, 40.0)
+    r = space_velocity(*star)
+    assert r.flags & KinematicsFlag.AT_POLE
+    assert np.isnan(r.pm_ra_cosdec_rate_mas_yr2) and np.isnan(r.pm_dec_rate_mas_yr2)
+    ra, _, plx, pmra, pmdec, rv = star
+    h = 5.0  # yr
+    tot = []
+    for dt in (h, -h):
+        _, dec2, pr2, pd2, _, _ = erfa.pmsafe(
+            np.radians(ra), np.radians(dec), np.radians(pmra / 3.6e6) / np.cos(np.radians(dec)),
+            np.radians(pmdec / 3.6e6), plx / 1000.0, rv, 2451545.0, 0.0, 2451545.0,
+            dt * 365.25,
+        )  # fmt: skip
+        tot.append(np.hypot(pr2 * np.cos(dec2), pd2) * constants.MAS_PER_RAD)
+    rate = (tot[0] - tot[1]) / (2 * h)
+    assert abs(r.pm_total_rate_mas_yr2 - rate) < 2e-3 * abs(rate)  # mas/yr^2
+    near = space_velocity(45.0, 89.0 * np.sign(dec), *star[2:])
+    assert not near.flags & KinematicsFlag.AT_POLE
+    assert np.isfinite(near.pm_ra_cosdec_rate_mas_yr2)
+
+
 def test_radial_velocity_rate_is_vt_squared_over_distance():
     r = space_velocity(0.0, 0.0, 100.0, 1000.0, 0.0, 0.0)  # 10 pc, v_t = 47.4 km/s
     vt = constants.AU_PER_JULIAN_YEAR_KM_S * 10.0
