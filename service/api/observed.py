@@ -105,6 +105,9 @@ FLAG_MEANINGS = {
     "refraction model (SOFA atioq) is good to 30 arcsec at 5 deg and only to about 20 "
     "arcmin at the horizon, and is held at its 2.9 deg value below that. Altitude, hour "
     "angle and declination there are uncertain by as much.",
+    "pressure_implausible": "The pressure given is outside 0.83-1.15 times the standard "
+    "atmosphere's at the site height, where no weather goes (probably a unit mistake; the "
+    "warning says which): refraction was computed with it as given, wrong in proportion.",
 }
 
 
@@ -253,7 +256,11 @@ class AtmosphereSchema(ma.Schema):
     pressure_hpa = _num(
         "Air pressure at the site, hPa. Null or absent: estimated from the site height with "
         "the US Standard Atmosphere 1976 (the height taken as geopotential height, as that "
-        "standard defines it). 0 turns refraction off.",
+        "standard defines it). 0 turns refraction off. A pressure outside 0.83-1.15 times "
+        "the standard atmosphere's at the site height (no weather goes there: sea-level "
+        "records are 870 and 1084 hPa) is used as given but flagged pressure_implausible "
+        "and warned about, naming the likely unit (kPa, atm, inHg, mmHg): refraction is "
+        "proportional to the pressure.",
         lo=core.PRESSURE_RANGE_HPA[0],
         hi=core.PRESSURE_RANGE_HPA[1],
         error="must be between {min:g} and {max:g} hPa (not pascals: 101325 Pa is 1013.25 hPa)",
@@ -503,7 +510,8 @@ class ObservedResponseSchema(ma.Schema):
         metadata={
             "description": "Stars whose inputs look like a unit mistake (proper motion above "
             "10.4 arcsec/yr, radial velocity above 5,000 km/s, parallax above 1,000 mas) or are "
-            "inconsistent; they are computed as given. " + WARNINGS_LIMIT_TEXT
+            "inconsistent, and every star of a request whose pressure does "
+            "(pressure_implausible); they are computed as given. " + WARNINGS_LIMIT_TEXT
         },
     )
     stars = ma.fields.List(
@@ -706,6 +714,9 @@ def observed(args):
         )
     all_names = {x for lst in (*names, *input_names) for x in lst}
     r = res.refraction
+    if r.pressure_warning is not None:  # the request's pressure: every star flagged alike
+        bit = core.ObservedFlag.PRESSURE_IMPLAUSIBLE
+        warnings += flag_warnings(np.full(n, int(bit)), table, {bit: r.pressure_warning})
     body = {
         "advisory": ADVISORY,
         "site": {

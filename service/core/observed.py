@@ -101,6 +101,24 @@ HEIGHT_RANGE_M = (-500.0, 10_000.0)
 PRESSURE_RANGE_HPA = (0.0, 1_200.0)
 TEMPERATURE_RANGE_C = (-100.0, 60.0)
 
+#: Pressure a site's real air can have, as fractions of the US Standard Atmosphere 1976
+#: pressure at its height; a given pressure outside is flagged PRESSURE_IMPLAUSIBLE (not
+#: refused). The recorded sea-level extremes are 870 hPa (Typhoon Tip, 1979) and 1083.8 hPa
+#: (Agata, 1968; 1089.1 hPa reduced from 846.5 hPa at 1,725 m, Tosontsengel, 2004), WMO
+#: Archive of Weather and Climate Extremes (from memory, checked against a copy of its
+#: pages): 0.859 to 1.075 of 1013.25 hPa. Mountain air stays within that spread of the
+#: standard pressure: Tosontsengel's 846.5 hPa is 1.03 of it, the 337 hPa measured on the
+#: summit of Everest 1.07 (West et al. 1983, J. Appl. Physiol. 54, 1188; from memory). The
+#: band leaves room on each side: its lower end lies between the lowest real air (0.859)
+#: and the highest air given in mmHg as if hPa (1089.1 / 1.333224 / 1013.25 = 0.806).
+PRESSURE_PLAUSIBLE_FRACTION = (0.83, 1.15)
+
+#: Units a pressure given as hPa may really be in, hPa per unit: kilopascal (SI), standard
+#: atmosphere (exact by definition), conventional inch and millimetre of mercury (NIST
+#: SP 811, 2008 edition, Appendix B.8: 3.386389e3 Pa and 1.333224e2 Pa). Pascals need no
+#: entry: any real pressure in Pa exceeds PRESSURE_RANGE_HPA and is refused with a hint.
+PRESSURE_UNITS_HPA = {"kPa": 10.0, "atm": 1013.25, "inHg": 33.8639, "mmHg": 1.333224}
+
 #: Default atmosphere when not given: relative humidity (0-1) and wavelength (um).
 DEFAULT_RELATIVE_HUMIDITY = 0.5
 DEFAULT_WAVELENGTH_UM = 0.55
@@ -176,6 +194,9 @@ class ObservedFlag(enum.IntFlag):
     #: Refraction on and the observed altitude below REFRACTION_UNCERTAIN_BELOW_DEG, where
     #: the refraction model is good only to arcminutes (SOFA atioq, Note 2).
     REFRACTION_UNCERTAIN = 2048
+    #: Given pressure outside PRESSURE_PLAUSIBLE_FRACTION of the standard atmosphere's at
+    #: the site height (probably a unit mistake); used as given (:func:`pressure_warning`).
+    PRESSURE_IMPLAUSIBLE = 4096
 
 
 # Plain-int copies of the flag bits for the inner loops (enum attribute access is slow).
@@ -859,6 +880,9 @@ class RefractionSettings:
         ``given`` or ``standard_atmosphere``.
     refa_rad, refb_rad : float
         Refraction constants A and B of dZ = A tan Z + B tan^3 Z, radians.
+    pressure_warning : str or None
+        Why a given pressure looks wrong for the site height (:func:`pressure_warning`);
+        None when it does not, or the pressure is not given.
     """
 
     mode: str
@@ -869,6 +893,7 @@ class RefractionSettings:
     temperature_source: str
     refa_rad: float
     refb_rad: float
+    pressure_warning: str | None = None
 
 
 def refraction_settings(site: Site, atmosphere: Atmosphere | None) -> RefractionSettings:
@@ -927,7 +952,62 @@ def _refraction_settings(height_m: float, atm: Atmosphere) -> RefractionSettings
     refa, refb = _refco_cached(p, t, float(rh), float(wl_refco))
     if not (math.isfinite(refa) and math.isfinite(refb)):  # dry air exactly at ps = p: 0/0
         raise ObservedInputError("atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm))
-    return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb)
+    warning = pressure_warning(p, height_m) if mode == "given_pressure" else None
+    return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb, warning)
+
+
+def pressure_warning(pressure_hpa, height_m):
+    """Why a given air pressure looks wrong for the site height, in one sentence, or None.
+
+    Parameters
+    ----------
+    pressure_hpa : float
+        Air pressure given for the site, hPa (above 0).
+    height_m : float
+        Site height, metres.
+
+    Returns
+    -------
+    str or None
+        None when the pressure lies within PRESSURE_PLAUSIBLE_FRACTION of the US Standard
+        Atmosphere 1976 pressure at the height (Note 1); otherwise a sentence giving both
+        pressures and the likely mistake (Note 2).
+
+    Notes
+    -----
+    1. Real air at a site stays within 0.859 to 1.075 of the standard pressure at its
+       height (the recorded sea-level extremes; see PRESSURE_PLAUSIBLE_FRACTION); the band
+       0.83-1.15 adds room, so weather never leaves it. Refraction is proportional to the
+       pressure (about 5 arcmin at 10 degrees altitude at sea level), so a unit mistake
+       misplaces a target low in the sky by arcminutes. A pressure chamber or a deliberate
+       test may mean it all the same: it is used as given, and only flagged.
+    2. The likely mistake is the unit of PRESSURE_UNITS_HPA in which the value falls
+       within the band (kPa, atm, inHg, mmHg: their bands do not overlap), else, for a
+       value too high that falls within the band of the sea-level pressure, a weather
+       report's pressure reduced to sea level given for a high site.
+    """
+    p = float(pressure_hpa)
+    std = float(standard_atmosphere(height_m)[0])
+    lo, hi = PRESSURE_PLAUSIBLE_FRACTION
+    if lo * std <= p <= hi * std:
+        return None
+    likely = [
+        f"probably in {unit} ({p:g} {unit} is {p * hpa:.1f} hPa)"
+        for unit, hpa in PRESSURE_UNITS_HPA.items()
+        if lo * std <= p * hpa <= hi * std
+    ]
+    if not likely and p > hi * std and lo * USSA1976_P0_HPA <= p <= hi * USSA1976_P0_HPA:
+        likely = [
+            "probably a pressure reduced to sea level (as weather reports give it), "
+            "not the pressure at the site"
+        ]
+    hint = likely[0] if likely else "check its unit (hPa) and the site height"
+    return (
+        f"pressure {p:g} hPa is far from any weather at a site {float(height_m):g} m high "
+        f"(standard atmosphere there {std:.6g} hPa; no weather leaves {lo * std:.0f}-"
+        f"{hi * std:.0f} hPa): {hint}. Refraction is computed with the pressure as given, "
+        f"{p / std:.3g} times the standard atmosphere's"
+    )
 
 
 def refco_saturation_pressure_hpa(pressure_hpa, temperature_c):
@@ -2110,6 +2190,7 @@ class _InstantState:
                 ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
             )
             | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
+            | _bits(refr.pressure_warning is not None, ObservedFlag.PRESSURE_IMPLAUSIBLE)
         )
         self.instant_flags = instant_flags if np.any(instant_flags) else None
         self._geo = None

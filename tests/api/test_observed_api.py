@@ -533,6 +533,55 @@ def test_atmosphere_in_another_unit_gets_a_hint(client, observed_example, key, v
     assert hint in r.json["errors"][0]["message"]
 
 
+@pytest.mark.parametrize(
+    "height_m, pressure_hpa, unit",
+    [
+        (0.0, 101.3, "kPa"),  # sea-level air in kPa
+        (0.0, 29.92, "inHg"),
+        (2500.0, 560.0, "mmHg"),  # 747 hPa, the standard atmosphere at 2,500 m, in mmHg
+        (2500.0, 0.737, "atm"),
+    ],
+)
+def test_pressure_in_another_unit_is_flagged_and_warned_not_refused(
+    client, observed_example, height_m, pressure_hpa, unit
+):
+    # Unit factors: NIST SP 811 Appendix B.8; standard pressure: US Standard Atmosphere 1976
+    # (core.standard_atmosphere). Computed as given (a pressure chamber may mean it), every
+    # place flagged, one warning per star giving both pressures and the likely unit. Dry
+    # air: humid air at about 1 hPa (atm) is refused, as water would boil there.
+    site = {"latitude_deg": 20.0, "longitude_deg": 0.0, "height_m": height_m}
+    atm = {"pressure_hpa": pressure_hpa, "temperature_c": 5.0, "relative_humidity": 0.0}
+    r = client.post(OBS, json=dict(observed_example, site=site, atmosphere=atm))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    body = r.json
+    assert (body["refraction"]["mode"], body["refraction"]["pressure_hpa"]) == (
+        "given_pressure",
+        pressure_hpa,
+    )
+    for star in body["stars"]:
+        assert all("pressure_implausible" in a["flags"] for a in star["at_instants"])
+    assert "unit mistake" in body["flag_meanings"]["pressure_implausible"]
+    std = core.standard_atmosphere(height_m)[0]
+    messages = [w["message"] for w in body["warnings"] if "far from any weather" in w["message"]]
+    assert len(messages) == len(body["stars"])
+    assert f"pressure {pressure_hpa:g} hPa" in messages[0]
+    assert f"standard atmosphere there {std:.6g} hPa" in messages[0]
+    assert f"probably in {unit}" in messages[0]
+
+
+def test_real_pressure_zero_or_missing_is_not_flagged(client, observed_example):
+    site = {"latitude_deg": 20.0, "longitude_deg": 0.0, "height_m": 2500.0}
+    # 700 hPa at 2,500 m (standard 746.9 hPa, 0.94 of it: ordinary weather), 0 (refraction
+    # off) and no pressure (standard atmosphere): no flag, no warning.
+    for atm in ({"pressure_hpa": 700.0}, {"pressure_hpa": 0.0}, {}):
+        r = client.post(OBS, json=dict(observed_example, site=site, atmosphere=atm))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        flags = {f for s in r.json["stars"] for a in s["at_instants"] for f in a["flags"]}
+        assert "pressure_implausible" not in flags
+        assert "pressure_implausible" not in r.json["flag_meanings"]
+        assert not any("far from any weather" in w["message"] for w in r.json["warnings"])
+
+
 def test_wavelength_out_of_range_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, atmosphere={"wavelength_um": 12.0}))
     assert_problem(r, 422, "atmosphere.wavelength_um")

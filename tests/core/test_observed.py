@@ -410,6 +410,114 @@ def test_pressure_zero_turns_refraction_off_and_missing_uses_standard_atmosphere
     assert off.zenith_distance_deg > given_.zenith_distance_deg
 
 
+def test_standard_atmosphere_table_values():
+    # U.S. Standard Atmosphere 1976 (NOAA-S/T 76-1562), Table I by geometric altitude:
+    # 1013.25 hPa at 0 m (definition), 795.01 hPa at 2,000 m, 540.48 hPa at 5,000 m (table
+    # values from memory); tolerance 0.1 hPa.
+    for height, want in ((0.0, 1013.25), (2000.0, 795.01), (5000.0, 540.48)):
+        assert O.standard_atmosphere(height)[0] == pytest.approx(want, abs=0.1)
+
+
+def test_pressure_unit_factors():
+    # NIST SP 811 (2008), Appendix B.8: 1 atm = 101325 Pa (exact), 1 inHg (conventional) =
+    # 3.386389e3 Pa, 1 mmHg (conventional) = 1.333224e2 Pa; 1 kPa = 10 hPa (SI). Tolerance
+    # 1e-6 relative (the digits NIST gives). astropy.units' torr (1/760 atm by definition)
+    # checks atm (to 1e-12) and mmHg (to 5e-7 relative: NIST's seven digits, and the
+    # conventional mmHg exceeds the torr by 1.4e-7).
+    from astropy import units as u
+
+    units = O.PRESSURE_UNITS_HPA
+    assert units["atm"] == 1013.25
+    assert units["kPa"] == 10.0
+    assert units["inHg"] == pytest.approx(33.86389, rel=1e-6)
+    assert units["mmHg"] == pytest.approx(1.333224, rel=1e-6)
+    torr_hpa = (1 * u.Torr).to_value(u.hPa)
+    assert units["atm"] == pytest.approx(760.0 * torr_hpa, rel=1e-12)
+    assert units["mmHg"] == pytest.approx(torr_hpa, rel=5e-7)
+
+
+#: Sea-level pressure records, hPa (WMO Archive of Weather and Climate Extremes; from memory,
+#: checked against a copy of its pages): lowest 870 (Typhoon Tip, 1979); highest 1083.8
+#: below 750 m (Agata, 1968) and 1089.1 reduced from a station above 750 m (Tosontsengel,
+#: 2004), the larger taken.
+RECORD_LOW_HPA, RECORD_HIGH_HPA = 870.0, 1089.1
+
+#: Site heights, metres: every height the API accepts (-500 to 10,000 m), the Dead Sea
+#: shore (-400 m), high observatories (2,500-5,500 m) included.
+HEIGHTS_M = np.concatenate([np.arange(-500.0, 10_001.0, 250.0), [-400.0, 2635.0, 5050.0]])
+
+
+def test_real_weather_is_never_flagged_at_any_height():
+    # The recorded sea-level extremes, scaled to each height by the standard atmosphere
+    # (US Standard Atmosphere 1976), and nine pressures between: no warning, anywhere.
+    for h in HEIGHTS_M:
+        std = O.standard_atmosphere(h)[0]
+        for sea_level in np.linspace(RECORD_LOW_HPA, RECORD_HIGH_HPA, 11):
+            assert O.pressure_warning(sea_level * std / 1013.25, h) is None, (h, sea_level)
+    # Measured mountain air (from memory): 337 hPa on the summit of Everest, 8,848 m (West
+    # et al. 1983, J. Appl. Physiol. 54, 1188); 846.5 hPa station pressure at Tosontsengel,
+    # 1,725 m, on the record day (WMO archive).
+    assert O.pressure_warning(337.0, 8848.0) is None
+    assert O.pressure_warning(846.5, 1725.0) is None
+
+
+@pytest.mark.parametrize("unit", ["kPa", "atm", "inHg", "mmHg"])
+@pytest.mark.parametrize("height", [0.0, 2500.0])
+def test_each_unit_mistake_is_flagged_and_named(unit, height):
+    # The air of the records and the standard air at the site, written in another unit and
+    # given as hPa: always flagged, naming the unit (NIST SP 811 factors, as above).
+    std = O.standard_atmosphere(height)[0]
+    for sea_level in (RECORD_LOW_HPA, 1013.25, RECORD_HIGH_HPA):
+        true_hpa = sea_level * std / 1013.25
+        given = true_hpa / O.PRESSURE_UNITS_HPA[unit]
+        message = O.pressure_warning(given, height)
+        assert message is not None, (unit, height, sea_level)
+        assert f"probably in {unit} ({given:g} {unit} is {true_hpa:.1f} hPa)" in message
+        assert f"{given:g} hPa" in message and f"standard atmosphere there {std:.6g}" in message
+
+
+def test_pressure_warning_other_mistakes_and_no_warning_cases():
+    # Sea-level pressure of a weather report given for a 2,500 m site (standard 746.9 hPa):
+    # flagged as such.
+    message = O.pressure_warning(1013.0, 2500.0)
+    assert "reduced to sea level" in message and "1.36 times" in message
+    # 760 given at 2,500 m is within 2 % of the standard pressure there, as real air is:
+    # not flagged (and refraction changes by the same 2 %).
+    assert O.pressure_warning(760.0, 2500.0) is None
+    # No unit fits 50 hPa at sea level: flagged, with a plain hint.
+    assert "check its unit (hPa) and the site height" in O.pressure_warning(50.0, 0.0)
+    # Pascals never reach the check: any real pressure in Pa is refused as out of range.
+    with pytest.raises(O.ObservedInputError):
+        O.make_atmosphere(RECORD_LOW_HPA * 100.0 * 265.0 / 1013.25)
+    # Pressure 0 (refraction off) and a missing pressure: no warning, at any height.
+    for h in (0.0, 2500.0, 10_000.0):
+        site = O.make_site(20.0, 0.0, h)
+        for p in (0.0, None):
+            assert O.refraction_settings(site, O.make_atmosphere(p)).pressure_warning is None
+
+
+def test_implausible_pressure_is_used_as_given_and_flagged_on_every_place():
+    # kPa given as hPa at sea level: refraction computed with 101.3 hPa as pyerfa refco
+    # gives it (not refused, not replaced; tolerance 1e-12 relative), and every place of
+    # the request flagged, at one instant and at several.
+    site = O.make_site(-30.0, -70.0, 0.0)
+    atm = O.make_atmosphere(101.3, 10.0, 0.5, 0.55)
+    star = dict(_sofa_star(), epoch_jyear=2024.5)
+    bit = O.ObservedFlag.PRESSURE_IMPLAUSIBLE
+    one = _places(star, 2460500.5, 0.1, site, atm)
+    assert one.refraction.mode == "given_pressure" and one.refraction.pressure_hpa == 101.3
+    assert one.refraction.refa_rad == pytest.approx(
+        erfa.refco(101.3, 10.0, 0.5, 0.55)[0], rel=1e-12
+    )
+    assert "probably in kPa" in one.refraction.pressure_warning
+    assert one.flags & bit
+    many = _places(star, 2460500.5, np.array([0.1, 0.2, 0.3]), site, atm)
+    assert np.all(many.flags & bit)
+    fine = _places(star, 2460500.5, np.array([0.1, 0.2]), site, O.make_atmosphere(1013.0))
+    assert not np.any(fine.flags & bit)
+    assert not _places(star, 2460500.5, 0.1, site, O.make_atmosphere(1013.0)).flags & bit
+
+
 # --- Airmass ----------------------------------------------------------------------------------
 
 
