@@ -91,7 +91,8 @@ FrameStarSchema = ma.Schema.from_dict(
         ),
         "pm_ra_cosdec_mas_yr": _num(
             "Proper motion along the longitude times cos(latitude), mas per Julian year (also "
-            "for FK4: convert tropical-century catalogue values first).",
+            "for FK4: convert tropical-century catalogue values first). At a pole (dec_deg "
+            "+-90) east and north are those of the ra_deg given (flag at_pole).",
             required=True,
         ),
         "pm_dec_mas_yr": _num(
@@ -218,8 +219,14 @@ _AT_EPOCH_MEANINGS = {
     "ra_deg": ("Longitude at this epoch in the output frame", ""),
     "dec_deg": ("Latitude at this epoch in the output frame", ""),
     "parallax_mas": ("Parallax at this epoch", " Null where the star came without one."),
-    "pm_ra_cosdec_mas_yr": ("Proper motion at this epoch in the output frame", ""),
-    "pm_dec_mas_yr": ("Proper motion at this epoch in the output frame", ""),
+    "pm_ra_cosdec_mas_yr": (
+        "Proper motion at this epoch in the output frame",
+        " At a pole (at_pole) along the east of the longitude answered.",
+    ),
+    "pm_dec_mas_yr": (
+        "Proper motion at this epoch in the output frame",
+        " At a pole (at_pole) along the north of the longitude answered.",
+    ),
     "radial_velocity_km_s": (
         "Radial velocity at this epoch, positive receding",
         " Null where the star came without one.",
@@ -292,6 +299,11 @@ FLAG_MEANINGS = {
     "parallax_not_positive": "Parallax zero or negative: treated as infinitely distant.",
     "radial_velocity_missing": "No radial velocity: zero for the geometry; out unknown.",
     "proper_motion_missing": "No proper motion: taken as zero.",
+    "at_pole": "At a pole (within 1e-12 rad) of the input frame as given, or of the output "
+    "frame at some epoch (a star at the galactic pole given in ICRS lands on one): the "
+    "longitude is a convention there, and east and north, along which the proper-motion "
+    "components lie, are those of the longitude given (input) or answered (output; set by "
+    "rounding at the pole itself). The total proper motion does not depend on it.",
 }
 
 
@@ -341,7 +353,10 @@ def convert(args):
     vals = [c[f] for f in VALUE_FIELDS]
     icrs = core.make_frame("icrs")
     to_icrs = core.convert(*vals, epoch0, src, icrs)
-    flags = to_icrs.flags.astype(np.int64)
+    # at_pole: a pole of the input frame as given, or of the output frame at some epoch (the
+    # ICRS between them is a step of the computation, made in Cartesian form).
+    pole = np.uint32(core.FrameFlag.AT_POLE)
+    flags = ((to_icrs.flags & ~pole) | core.pole_flags(c["dec_deg"])).astype(np.int64)
     propagated = core_prop.propagate(
         to_icrs.ra_deg[:, None],
         to_icrs.dec_deg[:, None],
@@ -367,6 +382,7 @@ def convert(args):
         icrs,
         dst,
     )
+    flags |= np.bitwise_or.reduce(core.pole_flags(out.dec_deg), axis=1)
     names = flag_names(flags, core.FrameFlag)
     present = present_flag_names(flags, core.FrameFlag)
     present |= {x for lst in input_names for x in lst}

@@ -42,6 +42,7 @@ from service.core.constants import (
     TROPICAL_YEAR_DAYS_LIESKE1979,
 )
 from service.core.floating import overflow_to_infinity
+from service.core.propagation import AT_POLE_RAD
 
 # ---------------------------------------------------------------------------------------------
 # Constants of this module (unit and source beside each)
@@ -81,6 +82,11 @@ class FrameFlag(enum.IntFlag):
     RADIAL_VELOCITY_MISSING = 4
     #: Proper motion not given: taken as zero.
     PROPER_MOTION_MISSING = 8
+    #: Position within AT_POLE_RAD of a pole of the input frame (as given) or of the output
+    #: frame (as converted): the longitude is a convention there, and the proper-motion
+    #: components are along the east and north of the longitude given (input) or computed
+    #: (output, set by rounding at the pole itself). Note 6 of :func:`convert`.
+    AT_POLE = 16
 
 
 def _year_text(year: float) -> str:
@@ -214,6 +220,13 @@ class _State:
     px_mas: np.ndarray  # parallax as given (NaN missing)
     rv_km_s: np.ndarray  # radial velocity as given (NaN missing)
     distant: np.ndarray  # bool: no usable parallax (missing, non-positive or tiny)
+
+
+def pole_flags(lat_deg) -> np.ndarray:
+    """:class:`FrameFlag` AT_POLE where a latitude (degrees) is within AT_POLE_RAD of a pole,
+    else 0 (uint32, the shape of ``lat_deg``)."""
+    near = np.cos(np.asarray(lat_deg, dtype=float) * RAD_PER_DEG) < AT_POLE_RAD
+    return np.where(near, np.uint32(FrameFlag.AT_POLE), np.uint32(0))
 
 
 def _tangent_basis(ra, dec):
@@ -751,6 +764,11 @@ def convert(
        back to the requested epoch in ICRS.
     5. Conversions with FK4 include the fictitious proper motion of distant objects caused by
        the E-terms (SOFA ``fk425`` Note 2).
+    6. At a pole of either frame (within AT_POLE_RAD, flag AT_POLE) east and north, and with
+       them the proper-motion components, follow the longitude: the one given at a pole of
+       ``from_frame`` (the limit along that meridian), the one computed at a pole of
+       ``to_frame`` (where rounding sets it). The motion itself is converted in Cartesian
+       form, without the singularity.
 
     References
     ----------
@@ -773,6 +791,7 @@ def convert(
             state = _to_icrs(state, from_frame, epoch)
             state = _from_icrs(state, to_frame, epoch)
     ra, dec, px, pmra, pmdec, rv = _from_state(state)
+    flags = flags | pole_flags(dec_deg) | pole_flags(dec)
     return FrameConversion(
         ra_deg=ra,
         dec_deg=dec,

@@ -639,6 +639,42 @@ def test_frames_radial_velocity_of_light_speed_refused(client, frames_example, r
     assert "< 299792.458" in str(r.json["errors"])
 
 
+def test_frames_star_at_a_pole_of_either_frame_is_flagged(client):
+    """At a pole of the input frame as given, or of the output frame, east and north (the
+    axes of the proper-motion components) follow the longitude given or answered: the
+    frames answer did that with no flag. The ICRS between the two (a star of the galactic
+    frame at the ICRS pole) is a step of the computation and not flagged. Values against
+    astropy and pyerfa: tests/core/test_frames.py (poles)."""
+    # ICRS place of the galactic pole (Hipparcos matrix, as SOFA icrs2g uses), and galactic
+    # place of the ICRS pole (pyerfa icrs2g).
+    ngp = erfa.c2s(core_frames.ICRS_TO_GALACTIC[2])
+    ngp_ra, ngp_dec = float(np.degrees(ngp[0])) % 360.0, float(np.degrees(ngp[1]))
+    ncp_l, ncp_b = (float(np.degrees(x)) for x in erfa.icrs2g(0.0, np.pi / 2))
+    star = {"pm_ra_cosdec_mas_yr": 100.0, "pm_dec_mas_yr": -50.0}
+    cases = [  # (frames, position, at_pole)
+        ("icrs", "galactic", 45.0, 90.0, True),  # input pole
+        ("icrs", "galactic", 45.0, 90.0 - 1e-9, False),
+        ("galactic", "icrs", 30.0, -90.0, True),
+        ("icrs", "galactic", ngp_ra, ngp_dec, True),  # lands on the output pole
+        ("icrs", "icrs", ngp_ra, ngp_dec, False),
+        ("galactic", "galactic", ncp_l, ncp_b, False),  # at the ICRS pole between
+    ]
+    for src, dst, ra, dec, flagged in cases:
+        body = {
+            "stars": [dict(star, ra_deg=ra, dec_deg=dec)],
+            "catalogue_epoch": "J2016.0",
+            "target_epochs": ["J2016.0", "J2116.0"],
+            "from_frame": {"name": src},
+            "to_frame": {"name": dst},
+        }
+        r = client.post(FRAMES, json=body)
+        assert r.status_code == 200, r.get_data(as_text=True)
+        assert ("at_pole" in r.json["stars"][0]["flags"]) is flagged, (src, dst, ra, dec)
+        assert ("at_pole" in r.json["flag_meanings"]) is flagged
+        if flagged:
+            assert "longitude given" in r.json["flag_meanings"]["at_pole"]
+
+
 def test_frames_implausible_inputs_named_in_the_flags(client, frames_example):
     """As in the propagation and observed answers: a radial velocity in m/s (-41,700 for
     -41.7 km/s, above the 5,000 km/s bound of PropagationFlag.RADIAL_VELOCITY_IMPLAUSIBLE)

@@ -427,6 +427,78 @@ def test_galactic_rotation_preserves_speed():
     assert np.allclose(c.radial_velocity_km_s, 20.0, atol=1e-9)  # km/s
 
 
+# --- Poles ------------------------------------------------------------------------------------
+
+
+def _astropy_galactic(ra_deg, dec_deg, pmra, pmdec):
+    from astropy import units as u
+    from astropy.coordinates import SkyCoord
+
+    g = SkyCoord(ra=ra_deg * u.deg, dec=dec_deg * u.deg, pm_ra_cosdec=pmra * u.mas / u.yr,
+                 pm_dec=pmdec * u.mas / u.yr, frame="icrs").galactic  # fmt: skip
+    return g.pm_l_cosb.to_value(u.mas / u.yr), g.pm_b.to_value(u.mas / u.yr)
+
+
+def _astropy_icrs(l_deg, b_deg, pml, pmb):
+    from astropy import units as u
+    from astropy.coordinates import SkyCoord
+
+    i = SkyCoord(l=l_deg * u.deg, b=b_deg * u.deg, pm_l_cosb=pml * u.mas / u.yr,
+                 pm_b=pmb * u.mas / u.yr, frame="galactic").icrs  # fmt: skip
+    return i.pm_ra_cosdec.to_value(u.mas / u.yr), i.pm_dec.to_value(u.mas / u.yr)
+
+
+# astropy's galactic frame is tied to FK5 (Blaauw et al. 1960 angles, 1e-7 rad from the
+# Hipparcos definition SOFA icrs2g uses): proper-motion components differ by up to |mu| x
+# 1e-7, 1e-5 mas/yr for 100 mas/yr (4e-6 measured). Positions are checked with pyerfa.
+PM_TOL_ASTROPY_MAS_YR = 1e-4
+
+
+@pytest.mark.parametrize("dec", [90.0, -90.0])
+@pytest.mark.parametrize("ra", [45.0, 135.0])
+def test_star_at_an_input_pole_is_flagged_and_its_motion_follows_the_ra_given(ra, dec):
+    # At the ICRS pole the proper-motion components are along the east and north of the RA
+    # given; the conversion did that with no flag. Reference: astropy's ICRS -> galactic of
+    # the same star 1e-9 deg off the pole on the meridian of that RA (components within
+    # PM_TOL_ASTROPY_MAS_YR); pyerfa icrs2g for the position (1 microarcsecond).
+    pmra, pmdec = 100.0, -50.0
+    c = F.convert(ra, dec, np.nan, pmra, pmdec, np.nan, 2016.0, ICRS, GAL)
+    assert c.flags & F.FrameFlag.AT_POLE
+    off = dec - np.sign(dec) * 1e-9
+    want = _astropy_galactic(ra, off, pmra, pmdec)
+    assert abs(c.pm_ra_cosdec_mas_yr - want[0]) < PM_TOL_ASTROPY_MAS_YR
+    assert abs(c.pm_dec_mas_yr - want[1]) < PM_TOL_ASTROPY_MAS_YR
+    el, eb = erfa.icrs2g(ra / DEG, dec / DEG)
+    assert abs(c.ra_deg - el * DEG) * UAS_PER_DEG < 1.0
+    assert abs(c.dec_deg - eb * DEG) * UAS_PER_DEG < 1.0
+    # Another RA at the same pole turns the components (90 deg here): the RA given decides.
+    other = F.convert(ra + 90.0, dec, np.nan, pmra, pmdec, np.nan, 2016.0, ICRS, GAL)
+    assert abs(other.pm_ra_cosdec_mas_yr - c.pm_ra_cosdec_mas_yr) > 10.0  # mas/yr
+    near = F.convert(ra, off, np.nan, pmra, pmdec, np.nan, 2016.0, ICRS, GAL)
+    assert not near.flags & F.FrameFlag.AT_POLE
+    assert abs(near.pm_dec_mas_yr - c.pm_dec_mas_yr) < 1e-6  # mas/yr: the limit along it
+
+
+@pytest.mark.parametrize("sign", [1.0, -1.0])
+def test_star_landing_on_the_output_pole_is_flagged(sign):
+    # A star at the galactic pole given in ICRS (its ICRS direction: the third row of the
+    # Hipparcos ICRS -> galactic matrix, as in SOFA icrs2g) lands on the output frame's
+    # pole, where the longitude answered is set by rounding; the components are along its
+    # east and north. Reference: astropy's galactic -> ICRS of (l answered, b 1e-9 deg off
+    # the pole) with the components answered gives back the ICRS motion given.
+    ra, dec = (np.asarray(x) * DEG for x in erfa.c2s(sign * F.ICRS_TO_GALACTIC[2]))
+    pmra, pmdec = 100.0, -50.0
+    c = F.convert(ra, dec, np.nan, pmra, pmdec, np.nan, 2016.0, ICRS, GAL)
+    assert c.flags & F.FrameFlag.AT_POLE
+    assert abs(abs(c.dec_deg) - 90.0) * UAS_PER_DEG < 1.0
+    back = _astropy_icrs(c.ra_deg, sign * (90.0 - 1e-9), c.pm_ra_cosdec_mas_yr, c.pm_dec_mas_yr)
+    assert abs(back[0] - pmra) < PM_TOL_ASTROPY_MAS_YR
+    assert abs(back[1] - pmdec) < PM_TOL_ASTROPY_MAS_YR
+    # Not at a pole of ICRS itself: the same star to ICRS is not flagged.
+    same = F.convert(ra, dec, np.nan, pmra, pmdec, np.nan, 2016.0, ICRS, ICRS)
+    assert not same.flags & F.FrameFlag.AT_POLE
+
+
 # --- Missing values, flags, shapes ------------------------------------------------------------
 
 
