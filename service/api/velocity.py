@@ -433,6 +433,15 @@ FLAG_MEANINGS = {
 }
 
 
+#: The inverse answer's meanings: at a pole it gives proper-motion components, no rates.
+OBSERVABLES_FLAG_MEANINGS = {
+    **FLAG_MEANINGS,
+    "at_pole": "At a celestial pole (within 1e-12 rad): east and north, and with them "
+    "pm_ra_cosdec_mas_yr and pm_dec_mas_yr, are those of the right ascension given (the "
+    "limit along that meridian); the total proper motion does not depend on it.",
+}
+
+
 def _float_list(description):
     return ma.fields.List(ma.fields.Float(allow_none=True), metadata={"description": description})
 
@@ -833,12 +842,16 @@ ObservablesResultSchema = always_present(
                 allow_none=True,
                 metadata={
                     "description": "Proper motion in RA times cos(dec) the star must show, "
-                    "mas/yr; null without a distance."
+                    "mas/yr; null without a distance. At a celestial pole (at_pole) along the "
+                    "east of the ra_deg given."
                 },
             ),  # fmt: skip
             "pm_dec_mas_yr": ma.fields.Float(
                 allow_none=True,
-                metadata={"description": "Proper motion in Dec, mas/yr; null without a distance."},
+                metadata={
+                    "description": "Proper motion in Dec, mas/yr; null without a distance. At a "
+                    "celestial pole (at_pole) along the north of the ra_deg given."
+                },
             ),
             "radial_velocity_km_s": ma.fields.Float(
                 allow_none=True,
@@ -919,7 +932,7 @@ def observables(args):
         "uvw_convention": UVW_CONVENTION,
         "solar_motion_km_s": list(sun) if args["relative_to_lsr"] else None,
         "units": OBSERVABLES_OUTPUTS,
-        "flag_meanings": {k: v for k, v in FLAG_MEANINGS.items() if k in used},
+        "flag_meanings": {k: v for k, v in OBSERVABLES_FLAG_MEANINGS.items() if k in used},
         "warnings": flag_warnings(result.flags, table, _OBSERVABLES_WARNING_TEXTS),
     }
     if layout == "columns":

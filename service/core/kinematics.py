@@ -1403,6 +1403,9 @@ def observables_from_velocity(
     1. Exact inverse of :func:`space_velocity`: ``v = M^T (U, V, W)`` in the ICRS, then
        ``v_ra = p.v``, ``v_dec = q.v``, ``v_rad = r.v`` and ``mu = v_t / (A / parallax)``.
     2. The radial velocity needs no distance and is always given.
+    3. At a celestial pole (within AT_POLE_RAD, flag AT_POLE) east and north, and with them
+       the proper-motion components, are those of the right ascension given (the limit
+       along that meridian), as in :func:`space_velocity`.
 
     References
     ----------
@@ -1441,7 +1444,8 @@ def observables_from_velocity(
         plx_eq = np.where(given, 1000.0 / dist, np.where(plx > 0.0, plx, np.nan))
         overflow = ~given & np.isinf(1000.0 / plx_eq)  # a parallax below about 5.6e-306 mas
     flags[overflow] |= np.uint32(KinematicsFlag.PARALLAX_TOO_SMALL)  # proper motions kept
-    g_p, g_q, g_r, _, _ = _galactic_triad(ra, dec)
+    g_p, g_q, g_r, _, cd = _galactic_triad(ra, dec)
+    flags[cd < AT_POLE_RAD] |= np.uint32(KinematicsFlag.AT_POLE)
     va = g_p[0] * u + g_p[1] * v + g_p[2] * w
     vd = g_q[0] * u + g_q[1] * v + g_q[2] * w
     vr = g_r[0] * u + g_r[1] * v + g_r[2] * w

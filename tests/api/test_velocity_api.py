@@ -590,3 +590,14 @@ def test_component_rates_at_a_pole_are_null_and_flagged(client):
     assert pole["pm_total_rate_mas_yr2"] is not None
     assert other["pm_ra_cosdec_rate_mas_yr2"] is not None
     assert "tan(dec)" in body["flag_meanings"]["at_pole"]
+
+
+def test_inverse_at_a_pole_is_flagged(client):
+    # The inverse took east and north from the RA given at a pole with no flag. Values
+    # against astropy: tests/core/test_kinematics.py (inverse at a pole).
+    space = {"ra_deg": 45.0, "u_km_s": 10.0, "v_km_s": -20.0, "w_km_s": 5.0, "distance_pc": 50.0}
+    stars = [dict(space, dec_deg=90.0), dict(space, dec_deg=-90.0), dict(space, dec_deg=89.0)]
+    body = post(client, {"stars": stars}, INVERSE_URL).json
+    assert ["at_pole" in s["flags"] for s in body["stars"]] == [True, True, False]
+    meaning = body["flag_meanings"]["at_pole"]
+    assert "right ascension given" in meaning and "rate" not in meaning

@@ -938,6 +938,31 @@ def test_inverse_matches_astropy_for_radial_velocity_and_proper_motion():
     assert (np.abs(obs.pm_dec_mas_yr - s["pmdec"]) < pm_tol).all()
 
 
+@pytest.mark.parametrize("dec", [90.0, -90.0])
+def test_inverse_at_a_pole_is_flagged_and_its_components_follow_the_ra_given(dec):
+    # At a pole the inverse gave the proper-motion components along the east and north of
+    # the RA given, with no flag. Reference: astropy's U, V, W of the star 1e-9 deg off the
+    # pole on the meridian of that RA, fed back in at the pole itself, give back its proper
+    # motion and radial velocity (tolerances as in the astropy test above: the galactic
+    # frames differ by ~1.2e-7 rad).
+    ra, dist, pmra, pmdec, rv = 45.0, 50.0, 100.0, -50.0, 20.0
+    off = dec - np.sign(dec) * 1e-9
+    uvw = _astropy_uvw(ra, off, dist, pmra, pmdec, rv)
+    obs = observables_from_velocity(ra, dec, uvw, distance_pc=dist)
+    assert obs.flags & KinematicsFlag.AT_POLE
+    speed = np.linalg.norm(uvw)
+    pm_tol = 2e-7 * speed / (constants.AU_PER_JULIAN_YEAR_KM_S * dist / 1000)  # mas/yr
+    assert abs(obs.pm_ra_cosdec_mas_yr - pmra) < pm_tol
+    assert abs(obs.pm_dec_mas_yr - pmdec) < pm_tol
+    assert abs(obs.radial_velocity_km_s - rv) < 2e-7 * speed  # km/s
+    # Another RA at the same pole turns the components: the RA given decides.
+    other = observables_from_velocity(ra + 90.0, dec, uvw, distance_pc=dist)
+    assert abs(other.pm_ra_cosdec_mas_yr - pmra) > 10.0  # mas/yr
+    near = observables_from_velocity(ra, off, uvw, distance_pc=dist)
+    assert not near.flags & KinematicsFlag.AT_POLE
+    assert abs(near.pm_dec_mas_yr - pmdec) < pm_tol
+
+
 def test_inverse_flags_and_radial_velocity_without_distance():
     obs = observables_from_velocity(10.0, 20.0, [[10.0, 0.0, 0.0]] * 3, [np.nan, -1.0, 5.0])
     names = flag_names(obs.flags, KinematicsFlag)
