@@ -332,9 +332,9 @@ VELOCITY_OUTPUTS = {
 _OUTPUT_DESCRIPTIONS = {
     "distance_pc": "Distance used: distance_pc if given, else 1000/parallax.",
     "parallax_snr": "Parallax signal-to-noise, parallax / its standard error "
-    "(dimensionless); null without a parallax error, where "
-    "distance_pc replaces the parallax, or where the parallax error is zero "
-    "(parallax_error_zero).",
+    "(dimensionless); null without a parallax error (uncertainties_missing, or with "
+    "parallax_not_positive or parallax_too_small), where distance_pc replaces the parallax "
+    "(distance_given), or where the parallax error is zero (parallax_error_zero).",
     "pm_total_mas_yr": "Total proper motion, mas/yr.",
     "pm_position_angle_deg": "Position angle of the proper motion, degrees east of north; "
     "null without proper motion (proper_motion_zero).",
@@ -387,18 +387,21 @@ _OUTPUT_DESCRIPTIONS = {
 
 FLAG_MEANINGS = {
     "parallax_missing": "No parallax and no distance: velocities needing a distance are null.",
-    "parallax_not_positive": "Parallax zero or negative: no distance; velocities are null.",
+    "parallax_not_positive": "Parallax zero or negative: no distance; velocities are null. "
+    "parallax_snr is given where a parallax error is, null without one.",
     "parallax_too_small": "Parallax positive but too small for a distance (1000/parallax "
     "overflows, below about 5.6e-306 mas): velocities needing a distance (in the inverse, "
-    "the distance) are null.",
+    "the distance) are null. parallax_snr is given where a parallax error is, null without "
+    "one.",
     "parallax_low_snr": "Parallax signal-to-noise below the threshold: 1/parallax is a biased "
     "distance and linear uncertainties are unreliable; prefer uncertainty_method auto or a "
     "better distance in distance_pc.",
     "radial_velocity_missing": "No radial velocity: U, V, W, total velocity, line-of-sight "
     "angle, proper-motion rates and closest approach are null; transverse velocity and "
     "radial-velocity rate (v_t^2/d) given.",
-    "distance_given": "distance_pc used instead of the parallax.",
-    "uncertainties_missing": "Some needed standard error not given: uncertainties are null.",
+    "distance_given": "distance_pc used instead of the parallax; parallax_snr is null.",
+    "uncertainties_missing": "Some needed standard error not given: uncertainties are null "
+    "(and parallax_snr, without a parallax error).",
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     "space_velocity_implausible": "Space velocity above half the speed of light (from the "

@@ -321,16 +321,19 @@ _VELOCITIES = (
 _KF = _kinematics.KinematicsFlag
 VELOCITY_FLAG_MEANINGS = {
     _KF.PARALLAX_MISSING: "No parallax and no distance: velocities needing a distance are NaN.",
-    _KF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; velocities are NaN.",
+    _KF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; velocities are NaN. "
+    "parallax_snr is given where a parallax error is, NaN without one.",
     _KF.PARALLAX_TOO_SMALL: "Parallax positive but too small for a distance (1000/parallax "
-    "overflows, below about 5.6e-306 mas): velocities needing a distance are NaN.",
+    "overflows, below about 5.6e-306 mas): velocities needing a distance are NaN. "
+    "parallax_snr is given where a parallax error is, NaN without one.",
     _KF.PARALLAX_LOW_SNR: "Parallax signal-to-noise below the threshold: 1/parallax is a "
     "biased distance and linear uncertainties are unreliable.",
     _KF.RADIAL_VELOCITY_MISSING: "No radial velocity: U, V, W, total velocity, line-of-sight "
     "angle, proper-motion rates and closest approach are NaN; transverse velocity and "
     "radial-velocity rate (v_t^2/d) given.",
-    _KF.DISTANCE_GIVEN: "distance_pc used instead of the parallax.",
-    _KF.UNCERTAINTIES_MISSING: "Some needed standard error not given: uncertainties NaN.",
+    _KF.DISTANCE_GIVEN: "distance_pc used instead of the parallax; parallax_snr is NaN.",
+    _KF.UNCERTAINTIES_MISSING: "Some needed standard error not given: uncertainties NaN (and "
+    "parallax_snr, without a parallax error).",
     _KF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,
     _KF.MONTE_CARLO_UNCERTAINTIES: "Uncertainties from Monte Carlo draws (not used in batch runs).",
     _KF.RADIAL_VELOCITY_IMPLAUSIBLE: RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,

@@ -164,7 +164,8 @@ class KinematicsFlag(enum.IntFlag):
 
     #: Neither a usable parallax nor a distance: distance-dependent outputs are null.
     PARALLAX_MISSING = 1
-    #: Parallax is zero or negative: no distance from it; velocities are null.
+    #: Parallax is zero or negative: no distance from it; velocities are null. The parallax
+    #: signal-to-noise is given where a parallax error is, null without one.
     PARALLAX_NOT_POSITIVE = 2
     #: Parallax signal-to-noise below the threshold: 1/parallax is a biased distance and
     #: linear uncertainties are unreliable (use the Monte Carlo option or a better distance).
@@ -173,9 +174,10 @@ class KinematicsFlag(enum.IntFlag):
     #: proper-motion rates and closest approach are null; the transverse velocity and the
     #: radial-velocity rate (v_t^2 / d, which needs none) are still given.
     RADIAL_VELOCITY_MISSING = 8
-    #: An explicit distance was used instead of the parallax.
+    #: An explicit distance was used instead of the parallax (no parallax signal-to-noise).
     DISTANCE_GIVEN = 16
-    #: Some input uncertainty is missing: the uncertainties that depend on it are null.
+    #: Some input uncertainty is missing: the uncertainties that depend on it are null (and
+    #: the parallax signal-to-noise, without a parallax error).
     UNCERTAINTIES_MISSING = 32
     #: Total proper motion above about 10.4 arcsec/yr: larger than any known star's;
     #: probably a unit mistake.
@@ -192,7 +194,8 @@ class KinematicsFlag(enum.IntFlag):
     SPACE_VELOCITY_IMPLAUSIBLE = 512
     #: Parallax positive but too small for a distance: 1000 / parallax overflows a double
     #: (below about 5.6e-306 mas), so distance-dependent outputs are null (in the inverse,
-    #: the distance; the proper motions, proportional to the parallax, are given).
+    #: the distance; the proper motions, proportional to the parallax, are given). The
+    #: parallax signal-to-noise is given where a parallax error is, null without one.
     PARALLAX_TOO_SMALL = 1024
     #: Parallax used (no distance given in its place) above 1,000 mas, nearer than 1 pc
     #: (IMPLAUSIBLE_PARALLAX_MAS), more than any known star's (the largest is about

@@ -601,3 +601,30 @@ def test_inverse_at_a_pole_is_flagged(client):
     assert ["at_pole" in s["flags"] for s in body["stars"]] == [True, True, False]
     meaning = body["flag_meanings"]["at_pole"]
     assert "right ascension given" in meaning and "rate" not in meaning
+
+
+def test_every_null_parallax_snr_is_explained_by_a_flag(client):
+    # A non-positive parallax without its error got a null parallax_snr under
+    # parallax_not_positive alone, whose meaning spoke only of velocities (with an error the
+    # ratio is given, -2/0.5 here). Every null must be named by a flag whose meaning says
+    # so. Reference: the ratio parallax / parallax error, computed here.
+    base = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 50.0, "pm_dec_mas_yr": -30.0}
+    rows = [
+        {"parallax_mas": -2.0},
+        {"parallax_mas": 0.0},
+        {"parallax_mas": 1e-307},  # parallax_too_small
+        {"parallax_mas": 5.0},
+        {"parallax_mas": 5.0, "distance_pc": 100.0},
+        {"parallax_mas": -2.0, "parallax_error_mas": 0.0},
+        {"parallax_mas": -2.0, "parallax_error_mas": 0.5},
+        {"parallax_mas": 1e-307, "parallax_error_mas": 0.5},
+    ]
+    body = post(client, {"stars": [dict(base, **r) for r in rows]}).json
+    for row, star in zip(rows, body["stars"], strict=True):
+        if star["parallax_snr"] is None:
+            said = [f for f in star["flags"] if "parallax_snr" in body["flag_meanings"][f]]
+            assert said, (row, star["flags"])
+        else:
+            want = row["parallax_mas"] / row["parallax_error_mas"]
+            assert star["parallax_snr"] == pytest.approx(want, rel=1e-15, abs=0.0)
+    assert [s["parallax_snr"] is None for s in body["stars"]] == [True] * 6 + [False] * 2
