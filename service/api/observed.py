@@ -217,7 +217,9 @@ class SiteField(ma.fields.Field):
             "Observing site: the name of a site in the operator's list (SKYDRIFT_SITES_FILE; "
             "by default the demo scenario's fictional observatory 'kestrel-ridge'), or an "
             "object {latitude_deg (geodetic, -90 to 90), longitude_deg (east positive), "
-            "height_m (above the WGS84 ellipsoid)}.",
+            "height_m (above the WGS84 ellipsoid)}. At latitude +-90 azimuth and hour angle "
+            "are counted from the meridian of longitude_deg and the parallactic angle is 0 "
+            "(+90) or 180 (-90).",
         )
         super().__init__(**kwargs)
 

@@ -639,6 +639,20 @@ def test_frames_radial_velocity_of_light_speed_refused(client, frames_example, r
     assert "< 299792.458" in str(r.json["errors"])
 
 
+@pytest.mark.parametrize("lat", [90.0, -90.0])
+def test_site_at_a_pole_answers_every_angle(client, observed_example, lat):
+    # A site at latitude +-90 (its conventions, against pyerfa atco13 and hd2pa, in
+    # tests/core/test_observed.py) and a star at the celestial pole: all angles given.
+    stars = [*observed_example["stars"], dict(observed_example["stars"][0], dec_deg=lat)]
+    site = {"latitude_deg": lat, "longitude_deg": 20.0, "height_m": 100.0}
+    r = client.post(OBS, json=dict(observed_example, stars=stars, site=site))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    for star in r.json["stars"]:
+        for place in star["at_instants"]:
+            for name in ("azimuth_deg", "hour_angle_deg", "parallactic_angle_deg"):
+                assert place[name] is not None, (star["index"], name)
+
+
 def test_frames_star_at_a_pole_of_either_frame_is_flagged(client):
     """At a pole of the input frame as given, or of the output frame, east and north (the
     axes of the proper-motion components) follow the longitude given or answered: the

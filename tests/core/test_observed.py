@@ -179,6 +179,42 @@ def astropy_with_our_table():
         yield
 
 
+@pytest.mark.parametrize("lat", [90.0, -90.0])
+def test_site_at_a_pole_matches_sofa_and_its_documented_conventions(lat):
+    # At a site at latitude +-90 the zenith is the celestial pole: azimuth and hour angle
+    # are counted from the meridian of the longitude given (the limit of a site on that
+    # meridian), the parallactic angle is 0 or 180 deg for every star (README, Observed
+    # place). Reference: pyerfa atco13 with phi = +-pi/2 (to 1e-9 deg) and with the site
+    # 1e-9 deg off the pole on that meridian (the limit: 1e-8 deg); pyerfa hd2pa.
+    eop = (0.1, 0.1, 0.3)  # UT1-UTC s, polar motion x, y arcsec
+    jd1, jd2 = erfa.dtf2d("UTC", 2020, 3, 20, 12, 0, 0.0)
+    ra, dec = np.array([200.0, 10.0, 123.0]), np.array([10.0, 60.0, -30.0])
+    res = O.observed_places(ra, dec, np.nan, 0.0, 0.0, np.nan, 2020.0, jd1, jd2,
+                            O.make_site(lat, 20.0, 100.0),
+                            O.make_atmosphere(700.0, 0.0, 0.3, 0.55), eop_values=eop)  # fmt: skip
+    for name in ("azimuth_deg", "zenith_distance_deg", "hour_angle_deg", "parallactic_angle_deg"):
+        assert np.isfinite(getattr(res, name)).all()
+
+    def wrap(x):
+        return (x + 180.0) % 360.0 - 180.0
+
+    xp, yp = eop[1] / 206264.80624709636, eop[2] / 206264.80624709636
+    for phi, tol in ((lat, 1e-9), (lat - np.sign(lat) * 1e-9, 1e-8)):
+        aob, zob, hob, dob = erfa.atco13(ra / DEG, dec / DEG, 0.0, 0.0, 0.0, 0.0, jd1, jd2,
+                                         eop[0], 20.0 / DEG, phi / DEG, 100.0, xp, yp, 700.0,
+                                         0.0, 0.3, 0.55)[:4]  # fmt: skip
+        assert np.abs(wrap(res.azimuth_deg - aob * DEG)).max() < tol  # deg
+        assert np.abs(res.zenith_distance_deg - zob * DEG).max() < tol  # deg
+        assert np.abs(wrap(res.hour_angle_deg - hob * DEG)).max() < tol  # deg
+        q = erfa.hd2pa(hob, dob, phi / DEG) * DEG
+        assert np.abs(wrap(res.parallactic_angle_deg - q)).max() < tol  # deg
+    # The conventions as documented: azimuth = hour angle + 180 (north) or -hour angle
+    # (south); parallactic angle 0 (north) or 180 (south). 1e-9 deg.
+    want_az = res.hour_angle_deg + 180.0 if lat > 0 else -res.hour_angle_deg
+    assert np.abs(wrap(res.azimuth_deg - want_az)).max() < 1e-9
+    assert np.abs(wrap(res.parallactic_angle_deg - (0.0 if lat > 0 else 180.0))).max() < 1e-9
+
+
 def test_observed_and_apparent_match_astropy(astropy_with_our_table):
     from astropy import units as u
     from astropy.coordinates import CIRS, TETE, AltAz, EarthLocation, SkyCoord
