@@ -101,6 +101,9 @@ FLAG_MEANINGS = {
     "leap_seconds_extrapolated": "Instant beyond the leap-second table: TAI-UTC taken as its "
     "last value.",
     "airmass_undefined": "Target below the geometric horizon: no airmass.",
+    "at_pole": "At a pole of the input frame as given (within 1e-12 rad): the proper "
+    "motion is taken along the east and north of the longitude given there (the limit "
+    "along that meridian), which sets the direction in which the star moves.",
     "refraction_uncertain": "Observed altitude below 5 deg with refraction on: the "
     "refraction model (SOFA atioq) is good to 30 arcsec at 5 deg and only to about 20 "
     "arcmin at the horizon, and is held at its 2.9 deg value below that. Altitude, hour "
@@ -648,6 +651,13 @@ def observed(args):
     # They are also named in each star's flags, so that CSV and Arrow answers carry them.
     input_masks, input_names = input_flags(propagated.flags, n)
     warnings = flag_warnings(input_masks, table, PROPAGATION_WARNINGS)
+    # A star at a pole of the input frame as given moves along the east and north of the
+    # longitude given (its motion's direction is a convention there): at_pole.
+    at_pole = core_frames.pole_flags(c["dec_deg"]) != 0
+    if at_pole.any():
+        input_names = [
+            (*x, "at_pole") if p else x for x, p in zip(input_names, at_pole, strict=True)
+        ]
     eop = _earth_orientation()
     try:
         res = core.observed_places(

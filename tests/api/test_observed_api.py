@@ -653,6 +653,43 @@ def test_site_at_a_pole_answers_every_angle(client, observed_example, lat):
                 assert place[name] is not None, (star["index"], name)
 
 
+def test_star_at_a_pole_of_the_input_frame_is_flagged_and_moves_along_the_ra_given(client):
+    """A star given at the ICRS pole moves along the east and north of the RA given: the
+    observed answer did that with no flag (the propagation answer flags it at_pole).
+    Reference: ERFA atco13 (run here, refraction off, the answer's own UT1-UTC and pole) of
+    the star 1e-9 deg off the pole on that meridian, catalogue epoch J2000.0 as atco13
+    takes it; 0.05 mas (measured 0.004: the models differ by light time and second order)."""
+    star = {"ra_deg": 45.0, "dec_deg": 90.0, "pm_ra_cosdec_mas_yr": 2000.0,
+            "pm_dec_mas_yr": -1000.0}  # fmt: skip
+    site = {"latitude_deg": 38.4127, "longitude_deg": -7.6543, "height_m": 1460.0}
+    stars = [star, dict(star, ra_deg=135.0), dict(star, dec_deg=89.0)]
+    body = {"stars": stars, "catalogue_epoch": "J2000.0", "instants": ["2026-12-02T22:30:00Z"],
+            "site": site, "atmosphere": {"pressure_hpa": 0.0}}  # fmt: skip
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    got = [s["at_instants"][0] for s in r.json["stars"]]
+    assert ["at_pole" in g["flags"] for g in got] == [True, True, False]
+    assert "longitude given" in r.json["flag_meanings"]["at_pole"]
+    eo = r.json["instants"][0]["earth_orientation"]
+    u1, u2 = r.json["instants"][0]["utc_jd"]
+    arcsec = np.pi / 648000.0
+    mas_per_rad = 648000000.0 / np.pi
+    for g, ra in zip(got[:2], (45.0, 135.0), strict=True):
+        dc = np.radians(90.0 - 1e-9)
+        aob, zob = erfa.atco13(
+            np.radians(ra), dc, 2000.0 / mas_per_rad / np.cos(dc), -1000.0 / mas_per_rad,
+            0.0, 0.0, u1, u2, eo["ut1_utc_s"], np.radians(-7.6543), np.radians(38.4127),
+            1460.0, eo["pm_x_arcsec"] * arcsec, eo["pm_y_arcsec"] * arcsec, 0.0, 0.0, 0.0,
+            0.55,
+        )[:2]  # fmt: skip
+        zd = np.radians(g["zenith_distance_deg"])
+        daz = (np.radians(g["azimuth_deg"]) - aob + np.pi) % (2 * np.pi) - np.pi
+        assert abs(daz) * np.sin(zd) * mas_per_rad < 0.05
+        assert abs(zd - zob) * mas_per_rad < 0.05
+    # The two RAs at the pole move the star in different directions (27 yr x 2.2 arcsec/yr).
+    assert abs(got[0]["azimuth_deg"] - got[1]["azimuth_deg"]) * 3600.0 > 10.0
+
+
 def test_frames_star_at_a_pole_of_either_frame_is_flagged(client):
     """At a pole of the input frame as given, or of the output frame, east and north (the
     axes of the proper-motion components) follow the longitude given or answered: the
