@@ -1032,20 +1032,27 @@ def test_perspective_acceleration_against_finite_differences(star):
     assert abs(r.pm_total_rate_mas_yr2 - tot) < tol_pm
 
 
+def _pmsafe_after(star, dt_yr):
+    """ERFA pmsafe (SOFA starpm) of a star (deg, mas, mas/yr, km/s) from J2000.0 to dt_yr
+    later: its ra, dec, pm_ra (not times cos dec) and pm_dec in radians and rad/yr, parallax
+    in arcsec and radial velocity in km/s."""
+    ra, dec, plx, pmra, pmdec, rv = star
+    return erfa.pmsafe(
+        np.radians(ra), np.radians(dec), np.radians(pmra / 3.6e6) / np.cos(np.radians(dec)),
+        np.radians(pmdec / 3.6e6), plx / 1000.0, rv, 2451545.0, 0.0, 2451545.0,
+        dt_yr * 365.25,
+    )  # fmt: skip
+
+
 @pytest.mark.parametrize("star", SIX_PARAMETER_STARS)
 def test_perspective_acceleration_against_erfa_pmsafe(star):
     # ERFA pmsafe (SOFA starpm) propagates the six parameters rigorously, including the
     # light-time (Roemer) effect that our straight-line rates omit: agreement to ~v_rad/c.
-    ra, dec, plx, pmra, pmdec, rv = star
     r = space_velocity(*star)
     h = 5.0  # yr
     out = []
     for dt in (h, -h):
-        ra2, dec2, pr2, pd2, px2, rv2 = erfa.pmsafe(
-            np.radians(ra), np.radians(dec), np.radians(pmra / 3.6e6) / np.cos(np.radians(dec)),
-            np.radians(pmdec / 3.6e6), plx / 1000.0, rv, 2451545.0, 0.0, 2451545.0,
-            dt * 365.25,
-        )  # fmt: skip
+        _, dec2, pr2, pd2, _, rv2 = _pmsafe_after(star, dt)
         out.append((pr2 * np.cos(dec2) * constants.MAS_PER_RAD, pd2 * constants.MAS_PER_RAD, rv2))
     rates = [(a - b) / (2 * h) for a, b in zip(out[0], out[1], strict=True)]
     tol_rel = 2e-3  # fraction: v_rad/c is up to 1e-3 here
@@ -1065,15 +1072,10 @@ def test_at_a_pole_component_rates_are_null_and_flagged(dec):
     r = space_velocity(*star)
     assert r.flags & KinematicsFlag.AT_POLE
     assert np.isnan(r.pm_ra_cosdec_rate_mas_yr2) and np.isnan(r.pm_dec_rate_mas_yr2)
-    ra, _, plx, pmra, pmdec, rv = star
     h = 5.0  # yr
     tot = []
     for dt in (h, -h):
-        _, dec2, pr2, pd2, _, _ = erfa.pmsafe(
-            np.radians(ra), np.radians(dec), np.radians(pmra / 3.6e6) / np.cos(np.radians(dec)),
-            np.radians(pmdec / 3.6e6), plx / 1000.0, rv, 2451545.0, 0.0, 2451545.0,
-            dt * 365.25,
-        )  # fmt: skip
+        _, dec2, pr2, pd2, _, _ = _pmsafe_after(star, dt)
         tot.append(np.hypot(pr2 * np.cos(dec2), pd2) * constants.MAS_PER_RAD)
     rate = (tot[0] - tot[1]) / (2 * h)
     assert abs(r.pm_total_rate_mas_yr2 - rate) < 2e-3 * abs(rate)  # mas/yr^2
