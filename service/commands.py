@@ -543,6 +543,11 @@ def cmd_observed(args) -> int:
         )
     for line in observing_conditions(conditions):
         print(f"skydrift: {line}", file=sys.stderr)
+    # The motionless star asked for the conditions draws no warning of its own: any it gets
+    # is about the request, such as a pressure far from any weather at the site (a unit
+    # mistake that misplaces low targets by arcminutes). The CSV rows carry only its flag.
+    for w in conditions.get("warnings") or ():
+        print(f"skydrift: warning: {w['message']}", file=sys.stderr)
     # Always said, --quiet or not (it only stops the progress bar): a safety caution.
     print(
         "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "
@@ -912,7 +917,8 @@ def add_commands(sub) -> None:
         "include below_horizon_limit and within_sun_avoidance). Standard error says, even "
         "with --quiet, the refraction settings used (mode, pressure, temperature, relative "
         "humidity, wavelength) and the Earth orientation (table; measured, predicted or "
-        "unavailable; UT1-UTC) at the instants. The Sun and horizon figures "
+        "unavailable; UT1-UTC) at the instants, and any warning about the request (a "
+        "pressure far from any weather at the site). The Sun and horizon figures "
         "are ADVISORY: the facility's own interlocks and safety rules decide where a "
         "telescope may point.",
         epilog=EPILOG,

@@ -388,6 +388,27 @@ def test_bad_values_on_the_command_line_exit_2_in_one_line(capsys, args, named):
     assert len(lines) == 1 or lines[0].startswith("usage: ")  # argparse's usage, then one line
 
 
+def test_observed_says_a_pressure_far_from_any_weather(capsys, tmp_path):
+    # The CSV carries the flag pressure_implausible in every row, but the warning naming the
+    # likely unit was in the JSON answer only. 101.3 at sea level is 1013.25 hPa in kPa
+    # (1 kPa = 10 hPa, SI); the US Standard Atmosphere 1976 gives 1013.25 hPa at 0 m.
+    out = tmp_path / "places.csv"
+
+    def observed(pressure_hpa):
+        return _in_process(capsys, "observed", CATALOGUE, "--at", "2026-12-02T22:00:00Z",
+                           "--position", "30", "0", "0", "--pressure-hpa", pressure_hpa,
+                           "--drop-unknown-columns", "-q", "-o", str(out))  # fmt: skip
+
+    status, err = observed("101.3")
+    assert status == 0
+    said = [ln for ln in err.splitlines() if ln.startswith("skydrift: warning: ")]
+    assert len(said) == 1 and "probably in kPa (101.3 kPa is 1013.0 hPa)" in said[0], err
+    assert "pressure_implausible" in out.read_text().splitlines()[1]
+    status, err = observed("1013")  # ordinary air: nothing to say
+    assert status == 0 and "warning" not in err, err
+    assert "pressure_implausible" not in out.read_text()
+
+
 def test_catalogue_files_own_values_refused_are_still_exit_1(capsys, tmp_path):
     # The catalogue_epoch and frame a JSON catalogue states are its content, not options.
     star = {"ra_deg": 1.0, "dec_deg": 2.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
