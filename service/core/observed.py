@@ -948,10 +948,14 @@ def _refraction_settings(height_m: float, atm: Atmosphere) -> RefractionSettings
     wl_refco = WAVELENGTH_RADIO_UM[1] if wl >= WAVELENGTH_RADIO_UM[0] else wl
     ps = refco_saturation_pressure_hpa(p, t) if p > 0.0 else 0.0
     if rh > 0.0 and ps >= p > 0.0:
-        raise ObservedInputError("atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm))
+        raise ObservedInputError(
+            "atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm, height_m)
+        )
     refa, refb = _refco_cached(p, t, float(rh), float(wl_refco))
     if not (math.isfinite(refa) and math.isfinite(refb)):  # dry air exactly at ps = p: 0/0
-        raise ObservedInputError("atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm))
+        raise ObservedInputError(
+            "atmosphere.relative_humidity", _no_such_air(p, t, t_src, atm, height_m)
+        )
     warning = pressure_warning(p, height_m) if mode == "given_pressure" else None
     return RefractionSettings(mode, p, t, float(rh), float(wl), t_src, refa, refb, warning)
 
@@ -991,23 +995,28 @@ def pressure_warning(pressure_hpa, height_m):
     lo, hi = PRESSURE_PLAUSIBLE_FRACTION
     if lo * std <= p <= hi * std:
         return None
-    likely = [
-        f"probably in {unit} ({p:g} {unit} is {p * hpa:.1f} hPa)"
-        for unit, hpa in PRESSURE_UNITS_HPA.items()
-        if lo * std <= p * hpa <= hi * std
-    ]
-    if not likely and p > hi * std and lo * USSA1976_P0_HPA <= p <= hi * USSA1976_P0_HPA:
-        likely = [
-            "probably a pressure reduced to sea level (as weather reports give it), "
-            "not the pressure at the site"
-        ]
-    hint = likely[0] if likely else "check its unit (hPa) and the site height"
+    hint = _likely_pressure_mistake(p, std) or "check its unit (hPa) and the site height"
     return (
         f"pressure {p:g} hPa is far from any weather at a site {float(height_m):g} m high "
         f"(standard atmosphere there {std:.6g} hPa; no weather leaves {lo * std:.0f}-"
         f"{hi * std:.0f} hPa): {hint}. Refraction is computed with the pressure as given, "
         f"{p / std:.3g} times the standard atmosphere's"
     )
+
+
+def _likely_pressure_mistake(p: float, std: float) -> str | None:
+    """The likely mistake behind a pressure p (hPa) outside the band about the standard
+    pressure std (hPa) at the site, in words (Note 2 of :func:`pressure_warning`), or None."""
+    lo, hi = PRESSURE_PLAUSIBLE_FRACTION
+    for unit, hpa in PRESSURE_UNITS_HPA.items():
+        if lo * std <= p * hpa <= hi * std:
+            return f"probably in {unit} ({p:g} {unit} is {p * hpa:.1f} hPa)"
+    if p > hi * std and lo * USSA1976_P0_HPA <= p <= hi * USSA1976_P0_HPA:
+        return (
+            "probably a pressure reduced to sea level (as weather reports give it), "
+            "not the pressure at the site"
+        )
+    return None
 
 
 def refco_saturation_pressure_hpa(pressure_hpa, temperature_c):
@@ -1052,7 +1061,7 @@ def refco_saturation_pressure_hpa(pressure_hpa, temperature_c):
     )
 
 
-def _no_such_air(p, t, t_src, atm: Atmosphere) -> str:
+def _no_such_air(p, t, t_src, atm: Atmosphere, height_m: float) -> str:
     """Why refco's water-vapour pressure is impossible here, in one sentence (for 422).
 
     The pressure is a given one: the standard atmosphere's (265 hPa and above up to the
@@ -1066,12 +1075,20 @@ def _no_such_air(p, t, t_src, atm: Atmosphere) -> str:
     else:  # refco divides by d: zero (0/0 for dry air) or negative
         pw = "negative" if d < 0.0 else ("undefined" if rh == 0.0 else "infinite")
     std = " (standard atmosphere)"
+    # A pressure in another unit (1.0 atm given as hPa) is a likely cause: named where the
+    # value fits one at the site height, as in pressure_warning.
+    mistake = _likely_pressure_mistake(p, float(standard_atmosphere(height_m)[0]))
+    fix = (
+        f"The pressure is {mistake}: give it in hPa"
+        if mistake is not None and mistake.startswith("probably in ")
+        else "Give pressure in hPa, a lower temperature or humidity 0 (dry air)"
+    )
     return (
         f"relative humidity {rh:g}{' (default)' if atm.relative_humidity is None else ''} "
         f"at {t:.4g} C{std if t_src != 'given' else ''} and {p:.4g} hPa: SOFA refco's "
         f"water-vapour pressure, {pw} "
         f"(saturation {ps:.4g} hPa), is not below the total pressure; no such air (water "
-        "boils). Give pressure in hPa, a lower temperature or humidity 0 (dry air)"
+        f"boils). {fix}"
     )
 
 

@@ -511,6 +511,25 @@ def test_air_that_cannot_exist_names_the_humidity(client, observed_example):
         assert r.status_code == 200, r.json
 
 
+def test_air_that_cannot_exist_from_a_pressure_in_atm_names_the_unit(client, observed_example):
+    # 1.0 given for one standard atmosphere at a sea-level site, with the default humidity:
+    # water would boil, so it is refused, and the likely mistake is named as the pressure
+    # warning names it (1 atm = 1013.25 hPa exactly, by definition; NIST SP 811 B.8).
+    site = {"latitude_deg": 30.0, "longitude_deg": 0.0, "height_m": 0.0}
+    r = client.post(OBS, json=dict(observed_example, site=site, atmosphere={"pressure_hpa": 1.0}))
+    assert_problem(r, 422, "atmosphere.relative_humidity")
+    message = r.json["errors"][0]["message"]
+    assert message.endswith("The pressure is probably in atm (1 atm is 1013.2 hPa): give it in hPa")
+    # 5 hPa at 2,000 m fits no unit (5 kPa is 50 hPa; the US Standard Atmosphere 1976 gives
+    # 795 hPa there): the general advice stays.
+    site = {**site, "height_m": 2000.0}
+    r = client.post(OBS, json=dict(observed_example, site=site, atmosphere={"pressure_hpa": 5.0}))
+    assert_problem(r, 422, "atmosphere.relative_humidity")
+    assert r.json["errors"][0]["message"].endswith(
+        "Give pressure in hPa, a lower temperature or humidity 0 (dry air)"
+    )
+
+
 def test_temperature_bounds_say_the_unit(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, atmosphere={"temperature_c": -300}))
     assert_problem(r, 422, "atmosphere.temperature_c")
