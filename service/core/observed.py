@@ -998,9 +998,9 @@ def pressure_warning(pressure_hpa, height_m):
     hint = _likely_pressure_mistake(p, std) or "check its unit (hPa) and the site height"
     return (
         f"pressure {p:g} hPa is far from any weather at a site {float(height_m):g} m high "
-        f"(standard atmosphere there {std:.6g} hPa; no weather leaves {lo * std:.0f}-"
-        f"{hi * std:.0f} hPa): {hint}. Refraction is computed with the pressure as given, "
-        f"{p / std:.3g} times the standard atmosphere's"
+        f"(standard atmosphere there {std:.6g} hPa; real weather there stays within "
+        f"{lo * std:.0f}-{hi * std:.0f} hPa): {hint}. Refraction is computed with the "
+        f"pressure as given, {p / std:.3g} times the standard atmosphere's"
     )
 
 
