@@ -12,6 +12,7 @@ from ..core import frames as core
 from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
 from ..core.flags import flag_names, present_flag_names
+from ..core.propagation import AT_POLE_RAD
 from .common import (
     Blueprint,
     EpochField,
@@ -299,7 +300,8 @@ FLAG_MEANINGS = {
     "parallax_not_positive": "Parallax zero or negative: treated as infinitely distant.",
     "radial_velocity_missing": "No radial velocity: zero for the geometry; out unknown.",
     "proper_motion_missing": "No proper motion: taken as zero.",
-    "at_pole": "At a pole (within 1e-12 rad) of the input frame as given, or of the output "
+    "at_pole": f"At a pole (within {AT_POLE_RAD:g} rad) "
+    "of the input frame as given, or of the output "
     "frame at some epoch (a star at the galactic pole given in ICRS lands on one): the "
     "longitude is a convention there, and east and north, along which the proper-motion "
     "components lie, are those of the longitude given (input) or answered (output; set by "

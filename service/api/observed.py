@@ -22,6 +22,7 @@ from ..core import frames as core_frames
 from ..core import observed as core
 from ..core import propagation as core_prop
 from ..core.flags import flag_names
+from ..core.propagation import AT_POLE_RAD
 from .common import (
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
@@ -101,7 +102,7 @@ FLAG_MEANINGS = {
     "leap_seconds_extrapolated": "Instant beyond the leap-second table: TAI-UTC taken as its "
     "last value.",
     "airmass_undefined": "Target below the geometric horizon: no airmass.",
-    "at_pole": "At a pole of the input frame as given (within 1e-12 rad): the proper "
+    "at_pole": f"At a pole of the input frame as given (within {AT_POLE_RAD:g} rad): the proper "
     "motion is taken along the east and north of the longitude given there (the limit "
     "along that meridian), which sets the direction in which the star moves.",
     "refraction_uncertain": "Observed altitude below 5 deg with refraction on: the "

@@ -24,6 +24,7 @@ from ..core.flags import (
     RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     flag_names,
 )
+from ..core.propagation import AT_POLE_RAD
 from .common import (
     PARALLAX_WARNING,
     PROPER_MOTION_WARNING,
@@ -425,7 +426,7 @@ FLAG_MEANINGS = {
     "velocity_line_of_sight_angle_deg, closest_approach_time_yr, "
     "closest_approach_distance_pc and, with linear uncertainties, total_velocity_error_km_s "
     "are null as well.",
-    "at_pole": "At a celestial pole (within 1e-12 rad): east and north, and with them "
+    "at_pole": f"At a celestial pole (within {AT_POLE_RAD:g} rad): east and north, and with them "
     "the proper-motion components and transverse_velocity_ra_km_s and "
     "transverse_velocity_dec_km_s, are those of the right ascension given; "
     "pm_ra_cosdec_rate_mas_yr2 and pm_dec_rate_mas_yr2 carry tan(dec), infinite there, and "
@@ -439,7 +440,7 @@ FLAG_MEANINGS = {
 #: The inverse answer's meanings: at a pole it gives proper-motion components, no rates.
 OBSERVABLES_FLAG_MEANINGS = {
     **FLAG_MEANINGS,
-    "at_pole": "At a celestial pole (within 1e-12 rad): east and north, and with them "
+    "at_pole": f"At a celestial pole (within {AT_POLE_RAD:g} rad): east and north, and with them "
     "pm_ra_cosdec_mas_yr and pm_dec_mas_yr, are those of the right ascension given (the "
     "limit along that meridian); the total proper motion does not depend on it.",
 }

@@ -21,6 +21,7 @@ from ..core.flags import (
     PROPER_MOTION_IMPLAUSIBLE_MEANING,
     RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
 )
+from ..core.propagation import AT_POLE_RAD
 from ..numbers import DECIMAL_TEXT, decimal
 from .spec import (
     CATALOGUE_EPOCH_FIELD,
@@ -351,7 +352,8 @@ VELOCITY_FLAG_MEANINGS = {
     "motion approaches zero). With a radial velocity of exactly zero too (at rest relative "
     "to the Sun) velocity_line_of_sight_angle_deg, total_velocity_error_km_s, "
     "closest_approach_time_yr and closest_approach_distance_pc are NaN as well.",
-    _KF.AT_POLE: "At a celestial pole (within 1e-12 rad): east and north, and with them the "
+    _KF.AT_POLE: f"At a celestial pole (within {AT_POLE_RAD:g} rad): "
+    "east and north, and with them the "
     "proper-motion components and the transverse velocity's east and north parts, are those "
     "of the right ascension given; pm_ra_cosdec_rate_mas_yr2 and pm_dec_rate_mas_yr2 carry "
     "tan(dec), infinite there, and are NaN (pm_total_rate_mas_yr2 is given).",
