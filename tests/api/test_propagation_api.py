@@ -180,15 +180,21 @@ def test_implausible_proper_motion_warns_but_answers(client):
     assert "unit" in body["warnings"][0]["message"]
 
 
+def _flagged_first_of_two(body, flag, says):
+    """The first of two stars flagged ``flag`` alone and warned about once (the warning
+    saying ``says``), the second neither; the flag's meaning given."""
+    assert body["stars"][0]["flags"] == [flag]
+    assert body["stars"][1]["flags"] == []
+    assert body["warnings"] == [{"index": 0, "id": None, "message": body["warnings"][0]["message"]}]
+    assert says in body["warnings"][0]["message"]
+    assert flag in body["flag_meanings"]
+
+
 def test_radial_velocity_in_metres_per_second_warns_but_answers(client):
     good = dict(STAR, parallax_mas=100.0, radial_velocity_km_s=-41.7)
     star = dict(good, radial_velocity_km_s=-41_700.0)  # -41.7 km/s written in m/s
-    body = post(client, dict(BASE, stars=[star, good])).json
-    assert body["stars"][0]["flags"] == ["radial_velocity_implausible"]
-    assert body["stars"][1]["flags"] == []
-    assert body["warnings"] == [{"index": 0, "id": None, "message": body["warnings"][0]["message"]}]
-    assert "km/s, not m/s" in body["warnings"][0]["message"]
-    assert "radial_velocity_implausible" in body["flag_meanings"]
+    _flagged_first_of_two(post(client, dict(BASE, stars=[star, good])).json,
+                          "radial_velocity_implausible", "km/s, not m/s")  # fmt: skip
 
 
 def test_parallax_in_microarcseconds_warns_but_answers(client):
@@ -198,11 +204,7 @@ def test_parallax_in_microarcseconds_warns_but_answers(client):
     good = dict(STAR, parallax_mas=768.07, radial_velocity_km_s=20.0)
     star = dict(good, parallax_mas=768_070.0)
     body = post(client, dict(BASE, stars=[star, good])).json
-    assert body["stars"][0]["flags"] == ["parallax_implausible"]
-    assert body["stars"][1]["flags"] == []
-    assert body["warnings"] == [{"index": 0, "id": None, "message": body["warnings"][0]["message"]}]
-    assert "microarcseconds given as milliarcseconds" in body["warnings"][0]["message"]
-    assert "parallax_implausible" in body["flag_meanings"]
+    _flagged_first_of_two(body, "parallax_implausible", "microarcseconds given as milliarcseconds")
     assert body["stars"][0]["at_epochs"][0]["parallax_mas"] is not None  # computed as given
     columns = {k: [star[k], good[k]] for k in star}
     body = post(client, dict(BASE, stars=columns)).json
