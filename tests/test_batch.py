@@ -1232,3 +1232,45 @@ def test_now_is_one_instant_in_a_run():
     time.sleep(0.01)  # more than the 7.2 us a Julian epoch resolves
     assert parse_epoch_option(" NOW ", "--target-epoch") == first
     assert abs(first - Time.now().tdb.jyear) < 60 / (365.25 * 86400)
+
+
+def test_constellations_job_flags_a_star_moved_off_a_pole(tmp_path):
+    """As the API's constellation answers and the propagate job (PropagationFlag.AT_POLE):
+    a star given at a pole and moved with --epoch moves along the east and north of the RA
+    given, and its constellation_flags carry at_pole, with the meaning the API gives; 1e-6
+    deg off the pole (cos(dec) 1.7e-8, above AT_POLE_RAD) it is not, nor without --epoch.
+    The constellations reached (RA 45: Cepheus; RA 135: Ursa Minor) are astropy
+    get_constellation's of the star moved by pyerfa starpm from 1e-9 deg off the pole on
+    that meridian (tests/api/test_constellations_api.py)."""
+    from service.core import constellations
+    from service.core.flags import CONSTELLATION_AT_POLE_MEANING
+
+    cat = pd.DataFrame(
+        {
+            "source_id": np.arange(3, dtype=np.int64),
+            "RA_ICRS": [45.0, 135.0, 45.0],
+            "DE_ICRS": [90.0, 90.0, 90.0 - 1e-6],
+            "Plx": [100.0] * 3,
+            "pmRA": [8000.0] * 3,
+            "pmDE": [-4000.0] * 3,
+            "RV": [0.0] * 3,
+        }
+    )
+    write_parquet(cat, tmp_path / "cat.parquet")
+    bit = int(constellations.ConstellationFlag.AT_POLE)
+    for params, flagged in (
+        ({"epoch_jyear": 3000.0, "catalogue_epoch_jyear": 2000.0}, [True, True, False]),
+        ({}, [False, False, False]),
+    ):
+        dest = tmp_path / f"out-{len(params)}"
+        summary = batch.run_batch("constellations", tmp_path / "cat.parquet", dest,
+                                  columns=MAPPING, keep=["source_id"], params=params)  # fmt: skip
+        out = read_output(dest)
+        got = (out["constellation_flags"].to_numpy() & bit) != 0
+        assert got.tolist() == flagged, params
+        assert summary.flag_counts["constellation_flags"]["at_pole"] == sum(flagged)
+        entry = summary.metadata["flags"]["constellation_flags"][str(bit)]
+        assert entry["name"] == "at_pole"
+        assert entry["meaning"].startswith(CONSTELLATION_AT_POLE_MEANING)
+        if params:
+            assert out["constellation"].astype(str).tolist() == ["Cep", "UMi", "Cep"]

@@ -17,6 +17,7 @@ from ..core import kinematics as _kinematics
 from ..core import propagation as _propagation
 from ..core.constants import C_KM_S, MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC
 from ..core.flags import (
+    CONSTELLATION_AT_POLE_MEANING,
     PARALLAX_IMPLAUSIBLE_MEANING,
     PROPER_MOTION_IMPLAUSIBLE_MEANING,
     RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
@@ -511,6 +512,8 @@ CONSTELLATION_FLAG_MEANINGS = {
     _CF.RADIAL_VELOCITY_MISSING: "No radial velocity: taken as zero for the motion.",
     _CF.PROPER_MOTION_MISSING: "No proper motion: the position was taken as fixed.",
     _CF.SEARCH_INCOMPLETE: "Crossing search stopped early (not used in batch runs).",
+    _CF.AT_POLE: CONSTELLATION_AT_POLE_MEANING + " Set with --epoch (the motion is read only "
+    "then).",
 }
 
 #: The propagation's implausible-input flags alone, with the same names and bit values, for

@@ -61,7 +61,7 @@ from service.core.constants import (
     TROPICAL_YEAR_DAYS_LIESKE1979,
 )
 from service.core.floating import overflow_to_infinity
-from service.core.propagation import propagate_standard
+from service.core.propagation import AT_POLE_RAD, propagate_standard
 
 # ---------------------------------------------------------------------------------------
 # Constants specific to this module (unit and source beside each)
@@ -159,6 +159,10 @@ class ConstellationFlag(enum.IntFlag):
     PROPER_MOTION_MISSING = 64
     #: Crossing search stopped at its iteration limit before the end of the window.
     SEARCH_INCOMPLETE = 128
+    #: Position given within AT_POLE_RAD (service.core.propagation) of a celestial pole and
+    #: moved by a proper motion: the components lie along the east and north of the RA
+    #: given, which sets the direction of the motion (and so the constellation reached).
+    AT_POLE = 256
 
 
 # ---------------------------------------------------------------------------------------
@@ -1573,6 +1577,10 @@ def _space_motion(
        motion component missing is held fixed (both components taken as zero) and flagged
        PROPER_MOTION_MISSING: one component alone would move it along a direction nobody
        gave. (The API refuses such stars instead; this is for batch runs on files.)
+    4. A position within AT_POLE_RAD of a pole (cos(dec) below it) with a proper motion
+       given is flagged AT_POLE: p and q there are the east and north of the RA given (the
+       limit along that meridian), a convention that sets the direction of the motion. Two
+       RAs 90 deg apart with the same components move the star in directions 90 deg apart.
     """
     ra, dec, plx, pma, pmd, rv = (
         a.ravel()
@@ -1605,6 +1613,8 @@ def _space_motion(
     rv_ok = np.isfinite(rv)
     flags |= np.where(rv_ok, 0, int(ConstellationFlag.RADIAL_VELOCITY_MISSING))
     sa, ca, sd, cd = np.sin(ra), np.cos(ra), np.sin(dec), np.cos(dec)
+    # Note 4: at a pole the direction of the motion is that of the RA given.
+    flags |= np.where((cd < AT_POLE_RAD) & ~pm_missing, int(ConstellationFlag.AT_POLE), 0)
     r = np.stack([cd * ca, cd * sa, sd], axis=-1)
     p = np.stack([-sa, ca, np.zeros_like(ra)], axis=-1)
     q = np.stack([-sd * ca, -sd * sa, cd], axis=-1)

@@ -12,6 +12,8 @@ import functools
 
 import numpy as np
 
+from .propagation import AT_POLE_RAD
+
 #: What the implausible-input flags of the propagation and velocity results mean (the
 #: answers' flag meanings and the batch jobs' metadata use these texts).
 PROPER_MOTION_IMPLAUSIBLE_MEANING = (
@@ -24,6 +26,17 @@ PARALLAX_IMPLAUSIBLE_MEANING = (
 RADIAL_VELOCITY_IMPLAUSIBLE_MEANING = (
     "Radial velocity above 5,000 km/s in size, more than any star's measured radial "
     "velocity: probably m/s given as km/s."
+)
+
+#: What the at_pole flag of the constellation answers means (ConstellationFlag.AT_POLE; the
+#: lookup, margins and crossing answers and the constellations batch job use this text).
+CONSTELLATION_AT_POLE_MEANING = (
+    f"Given within {AT_POLE_RAD:g} rad of a pole of the frame of the positions and moved by "
+    "its proper motion: the proper motion is taken along the east and north of the "
+    "longitude given there (the limit along that meridian), which sets the direction in "
+    "which the star moves, and with it the constellation it reaches and when it crosses a "
+    "boundary (the same components given with right ascensions 90 deg apart move it in "
+    "directions 90 deg apart)."
 )
 
 

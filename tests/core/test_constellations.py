@@ -535,6 +535,48 @@ def test_locate_moving_holds_a_star_with_half_a_proper_motion_fixed():
         assert res.flags[0] & Flag.PROPER_MOTION_MISSING
 
 
+def test_star_moved_off_a_pole_is_flagged_at_pole_as_the_propagation_flags_it():
+    """A star given within AT_POLE_RAD of a pole with a proper motion moves along the east
+    and north of the RA given (a convention there): locate_moving and boundary_crossings
+    flag it AT_POLE, where the propagation core flags the same star AT_POLE (its flag by the
+    same threshold, cos(dec) < 1e-12). Not flagged: 1e-6 deg off the pole (cos(dec) =
+    1.7e-8), nor a star at the pole whose proper motion is unknown (held fixed)."""
+    from service.core.propagation import PropagationFlag, propagate_standard
+
+    ra = np.array([45.0, 135.0, 45.0, 45.0, 45.0])
+    dec = np.array([90.0, -90.0, 90.0 - 1e-6, -90.0 + 1e-6, 90.0])
+    pma = np.array([8000.0, 8000.0, 8000.0, 8000.0, np.nan])
+    pmd = np.array([-4000.0, -4000.0, -4000.0, -4000.0, np.nan])
+    expected = [True, True, False, False, False]
+    res = C.locate_moving(ra, dec, np.nan, pma, pmd, np.nan, 2000.0, 3000.0)
+    assert [bool(f & Flag.AT_POLE) for f in res.flags] == expected
+    theirs = propagate_standard(ra[:4], dec[:4], np.nan, pma[:4], pmd[:4], np.nan, 2000.0, 3000.0)[
+        1
+    ]
+    assert [bool(f & PropagationFlag.AT_POLE) for f in theirs] == expected[:4]
+    crossings = C.boundary_crossings(ra, dec, np.nan, pma, pmd, np.nan, 2000.0, 2000.0, 3000.0)
+    assert [bool(f & Flag.AT_POLE) for f in crossings.flags] == expected
+
+
+def test_star_moved_onto_a_pole_is_not_flagged_at_pole():
+    """A star that lands on a pole at the epoch is located there as the pole itself (the
+    lookup works on the direction vector; its answer holds no right ascension or motion of
+    that epoch), so nothing in it is a convention: no AT_POLE, though the propagation flags
+    the landing. Moving north at tan(2 deg)/1000 rad/yr from 2 deg off the pole, the
+    straight-line model reaches it after 1000 years (atan(mu t) = 2 deg). Reference: astropy
+    get_constellation of the pole itself (Ursa Minor)."""
+    from service.core.propagation import PropagationFlag, propagate_standard
+
+    pmd = math.tan(math.radians(2.0)) / 1000.0 * ARCSEC_PER_RAD * 1000.0  # mas/yr
+    moved, flags = propagate_standard(30.0, 88.0, np.nan, 0.0, pmd, np.nan, 2000.0, 3000.0)
+    assert 90.0 - float(moved.dec_deg) < 1e-12 * DEG_PER_RAD  # within AT_POLE_RAD
+    assert int(flags) & PropagationFlag.AT_POLE
+    pole = str(get_constellation(SkyCoord(0.0 * u.deg, 90.0 * u.deg), short_name=True))
+    res = C.locate_moving(30.0, 88.0, np.nan, 0.0, pmd, np.nan, 2000.0, 3000.0)
+    assert str(res.abbreviation) == pole == "UMi"
+    assert not int(res.flags) & Flag.AT_POLE
+
+
 # ------------------------------------------------------------------------------ crossings
 
 
