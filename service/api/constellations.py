@@ -12,7 +12,7 @@ from ..core import epochs as core_epochs
 from ..core import frames as core_frames
 from ..core import propagation as core_prop
 from ..core.constants import C_KM_S
-from ..core.flags import FlagNameList, flag_names
+from ..core.flags import CONSTELLATION_AT_POLE_MEANING, FlagNameList, flag_names
 from .common import (
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
@@ -77,6 +77,7 @@ FLAG_MEANINGS = {
     "search_incomplete": "The crossing search reached its step limit before the end of the "
     "window (a star grazing a boundary for a long time); crossings after the last one "
     "listed may be missing (constellation_at_end is still that at the window's end).",
+    "at_pole": CONSTELLATION_AT_POLE_MEANING,
     # Implausible inputs: the propagation's flags, names and meanings.
     **_INPUT_FLAG_MEANINGS,
 }
@@ -130,7 +131,8 @@ def _star_fields(motion_required: bool) -> dict:
             "mas (parallax_implausible: nearer than any known star)."
         ),
         "pm_ra_cosdec_mas_yr": _num(
-            "Proper motion in right ascension times cos(dec), mas/yr." + pm_text,
+            "Proper motion in right ascension times cos(dec), mas/yr. At a pole (dec_deg "
+            "+-90) east and north are those of the ra_deg given (flag at_pole)." + pm_text,
             required=motion_required,
         ),
         "pm_dec_mas_yr": _num(
@@ -529,6 +531,9 @@ def _locate(args, with_margin: bool):
         near = current_app.config["SKYDRIFT_SETTINGS"].near_boundary_arcsec
         args = {**args, "near_boundary_arcsec": near}
     moving = np.isfinite(pma) & np.isfinite(pmd)
+    # at_pole: a pole of the request's frame as given (the ICRS the core moves the star in
+    # is a step of the computation, as in the frames answer).
+    at_pole = core_frames.pole_flags(dec) != 0
     frame = frame_from_spec(args["frame"], "frame")
     if frame.name != "icrs":
         at = cat_epoch if cat_epoch is not None else (epoch if epoch is not None else 2000.0)
@@ -561,6 +566,8 @@ def _locate(args, with_margin: bool):
             | core.ConstellationFlag.PROPER_MOTION_MISSING
         )
         flags = np.where(moving, res.flags, res.flags & ~np.uint16(motion_bits))
+        pole = np.uint16(core.ConstellationFlag.AT_POLE)  # as given, not the core's ICRS
+        flags = np.where(moving & at_pole, flags | pole, flags & ~pole)
     else:
         res = core.locate(
             ra,

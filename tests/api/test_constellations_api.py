@@ -497,3 +497,171 @@ def test_implausible_inputs_named_and_warned_about(client):
     assert [set(s["flags"]) & names for s in r.json["stars"]] == expected
     assert names <= set(r.json["flag_meanings"])
     assert sorted(w["index"] for w in r.json["warnings"]) == [1, 2, 3, 4]
+
+
+# ---------------------------------------------------------------- stars at a pole
+
+#: A star given at a pole moves along the east and north of the RA given (a convention
+#: there): 8000 and -4000 mas/yr (8.9 arcsec/yr, below the 10.4 arcsec/yr of
+#: proper_motion_implausible) at 10 pc, moved from J2000.0 to J3000.0 (2.5 deg).
+POLE_MOTION = {"pm_ra_cosdec_mas_yr": 8000.0, "pm_dec_mas_yr": -4000.0, "parallax_mas": 100.0,
+               "radial_velocity_km_s": 0.0}  # fmt: skip
+POLE_STARS = [  # (ra_deg, dec_deg, at_pole)
+    (45.0, 90.0, True),
+    (135.0, 90.0, True),  # the same components, another meridian: 90 deg another way
+    (135.0, -90.0, True),
+    (45.0, 90.0 - 1e-6, False),  # 1.7e-8 rad off the pole, above AT_POLE_RAD (1e-12 rad)
+]
+
+
+def _moved_from_the_meridian(ra, dec, motion, years):
+    """Reference: pyerfa starpm moves the star from 1e-9 deg off the pole on the meridian
+    ra (the limit the RA given stands for) with the same components, over `years`; astropy's
+    get_constellation names the constellation there. Returns (abbreviation, ICRS ra, dec)."""
+    import astropy.units as u
+    import erfa
+    from astropy.coordinates import SkyCoord, get_constellation
+
+    mas_per_rad = 648_000_000.0 / np.pi
+    if abs(dec) == 90.0:
+        dec = dec - np.sign(dec) * 1e-9
+    d = np.radians(dec)
+    ra2, dec2 = erfa.starpm(
+        np.radians(ra), d, motion["pm_ra_cosdec_mas_yr"] / mas_per_rad / np.cos(d),
+        motion["pm_dec_mas_yr"] / mas_per_rad, motion["parallax_mas"] / 1000.0,
+        motion["radial_velocity_km_s"], 2451545.0, 0.0, 2451545.0 + years * 365.25, 0.0,
+    )[:2]  # fmt: skip
+    where = SkyCoord(np.degrees(ra2) * u.deg, np.degrees(dec2) * u.deg)
+    return str(get_constellation(where, short_name=True)), where
+
+
+def test_star_moved_off_a_pole_is_flagged_at_pole_with_the_ra_given(client):
+    """A moving star given at a celestial pole moves along the east and north of the RA
+    given: RA 45 and 135 at dec 90 with the same components reach Cepheus and stay in Ursa
+    Minor. The lookup and margins answered that with no flag (the propagation, frames,
+    observed and velocity answers flag it at_pole). Reference: astropy get_constellation of
+    the star moved by pyerfa starpm from 1e-9 deg off the pole on that meridian (each star
+    more than 60 arcsec from a boundary, beyond the 25 arcsec by which astropy's reduction
+    through a geocentric frame can differ)."""
+    from service.core.propagation import AT_POLE_RAD
+
+    stars = [dict(POLE_MOTION, ra_deg=ra, dec_deg=dec) for ra, dec, _ in POLE_STARS]
+    flagged = [p for _, _, p in POLE_STARS]
+    expected = [_moved_from_the_meridian(ra, dec, POLE_MOTION, 1000.0)[0]
+                for ra, dec, _ in POLE_STARS]  # fmt: skip
+    assert expected[:2] == ["Cep", "UMi"]  # the meridian decides
+    moved = {"catalogue_epoch": "J2000.0", "epoch": "J3000.0"}
+    for url in ("lookup", "margins"):
+        r = client.post(f"{BASE}/{url}", json=dict(moved, stars=stars))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        body = r.json
+        assert [s["constellation"] for s in body["stars"]] == expected, url
+        assert ["at_pole" in s["flags"] for s in body["stars"]] == flagged, url
+        assert f"within {AT_POLE_RAD:g} rad" in body["flag_meanings"]["at_pole"]
+        assert "longitude given" in body["flag_meanings"]["at_pole"]
+        meanings = body["flag_meanings"]
+    margins = client.post(f"{BASE}/margins", json=dict(moved, stars=stars)).json["stars"]
+    assert min(s["margin_arcsec"] for s in margins) > 60.0
+    # One text, shared with the constellations batch job.
+    from service.core.flags import CONSTELLATION_AT_POLE_MEANING
+
+    assert meanings["at_pole"] == CONSTELLATION_AT_POLE_MEANING
+    # Columns, CSV and Arrow carry the flag where the other flags are.
+    columns = {k: [s[k] for s in stars] for k in stars[0]}
+    body = client.post(f"{BASE}/lookup", json=dict(moved, stars=columns)).json
+    assert ["at_pole" in f for f in body["columns"]["flags"]] == flagged
+    assert "at_pole" in body["flag_meanings"]
+    text = client.post(
+        f"{BASE}/margins", json=dict(moved, stars=stars), headers={"Accept": "text/csv"}
+    ).get_data(as_text=True)
+    rows = text.strip().splitlines()[1:]
+    assert ["at_pole" in row for row in rows] == flagged
+    import pyarrow as pa
+
+    arrow = client.post(
+        f"{BASE}/lookup",
+        json=dict(moved, stars=stars),
+        headers={"Accept": "application/vnd.apache.arrow.stream"},
+    )
+    assert arrow.status_code == 200
+    table = pa.ipc.open_stream(arrow.data).read_all()
+    assert ["at_pole" in str(f) for f in table.column("flags").to_pylist()] == flagged
+
+
+def test_star_at_a_pole_not_moved_or_without_motion_is_not_flagged_at_pole(client):
+    """Where the star is not moved (no epoch, or no proper motion) the RA given at the pole
+    decides nothing: the pole is one point (Ursa Minor, Octans: astropy get_constellation of
+    the pole itself) and no at_pole flag is given."""
+    import astropy.units as u
+    from astropy.coordinates import SkyCoord, get_constellation
+
+    poles = SkyCoord([0.0, 0.0] * u.deg, [90.0, -90.0] * u.deg)
+    expected = [str(x) for x in get_constellation(poles, short_name=True)]
+    assert expected == ["UMi", "Oct"]
+    moving = [dict(POLE_MOTION, ra_deg=45.0, dec_deg=d) for d in (90.0, -90.0)]
+    fixed = [{"ra_deg": 45.0, "dec_deg": d} for d in (90.0, -90.0)]
+    for stars, extra in (
+        (moving, {"catalogue_epoch": "J2000.0"}),  # at the catalogue epoch
+        (moving, {}),
+        (fixed, {"catalogue_epoch": "J2000.0", "epoch": "J3000.0"}),
+    ):
+        r = client.post(f"{BASE}/margins", json=dict(extra, stars=stars))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        assert [s["constellation"] for s in r.json["stars"]] == expected
+        assert not any("at_pole" in s["flags"] for s in r.json["stars"]), extra
+        assert "at_pole" not in r.json["flag_meanings"]
+
+
+def test_star_at_a_pole_of_the_lookups_frame_is_flagged_as_given(client):
+    """As in the frames answer: at a pole of the request's frame as given (the galactic
+    pole) the proper motion lies along the east and north of the longitude given, so the
+    star is flagged at_pole; a star of the galactic frame at the ICRS pole (pyerfa icrs2g
+    of the pole) is not, the ICRS being a step of the computation. The frames answer of the
+    same stars flags the same ones."""
+    import erfa
+
+    ncp_l, ncp_b = (float(np.degrees(x)) for x in erfa.icrs2g(0.0, np.pi / 2))
+    motion = {"pm_ra_cosdec_mas_yr": 8000.0, "pm_dec_mas_yr": -4000.0}
+    stars = [dict(motion, ra_deg=30.0, dec_deg=90.0), dict(motion, ra_deg=30.0, dec_deg=-90.0),
+             dict(motion, ra_deg=ncp_l, dec_deg=ncp_b)]  # fmt: skip
+    frame = {"name": "galactic"}
+    body = {"stars": stars, "frame": frame, "catalogue_epoch": "J2000.0", "epoch": "J3000.0"}
+    r = client.post(f"{BASE}/lookup", json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    assert ["at_pole" in s["flags"] for s in r.json["stars"]] == [True, True, False]
+    frames = client.post(
+        "/v1/frames",
+        json={
+            "stars": stars,
+            "from_frame": frame,
+            "to_frame": frame,
+            "catalogue_epoch": "J2000.0",
+        },  # fmt: skip
+    )
+    assert frames.status_code == 200, frames.get_data(as_text=True)
+    assert ["at_pole" in s["flags"] for s in frames.json["stars"]] == [True, True, False]
+
+
+def test_crossings_of_a_star_moved_off_a_pole_are_flagged_at_pole(client):
+    """The crossing search of a star given at a pole follows the meridian of the RA given:
+    RA 45 and 135 at dec 90 cross different boundaries at different epochs, and the answer
+    said nothing of it. Reference: between consecutive crossings (and at the window's ends)
+    the constellation named is astropy get_constellation's of the star moved by pyerfa
+    starpm from 1e-9 deg off the pole on that meridian."""
+    stars = [dict(POLE_MOTION, ra_deg=ra, dec_deg=dec) for ra, dec, _ in POLE_STARS]
+    body = {"stars": stars, "catalogue_epoch": "J2000.0", "start": "J2000.0", "end": "J5000.0"}
+    r = client.post(f"{BASE}/crossings", json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    got = r.json["stars"]
+    assert ["at_pole" in s["flags"] for s in got] == [p for _, _, p in POLE_STARS]
+    assert "longitude given" in r.json["flag_meanings"]["at_pole"]
+    sequences = []
+    for (ra, dec, _), s in zip(POLE_STARS, got, strict=True):
+        epochs = [2000.0] + [c["epoch"]["julian_epoch_tdb"] for c in s["crossings"]] + [5000.0]
+        names = [s["constellation_at_start"]] + [c["to_constellation"] for c in s["crossings"]]
+        assert names[-1] == s["constellation_at_end"]
+        for k, name in enumerate(names):
+            middle = 0.5 * (epochs[k] + epochs[k + 1])
+            assert _moved_from_the_meridian(ra, dec, POLE_MOTION, middle - 2000.0)[0] == name
+        sequences.append(names)
+    assert sequences[0] != sequences[1]  # the RA given decides the path
