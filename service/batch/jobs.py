@@ -127,7 +127,9 @@ PROPAGATION_FLAG_MEANINGS = {
     _PF.PROPER_MOTION_IMPLAUSIBLE: PROPER_MOTION_IMPLAUSIBLE_MEANING,
     _PF.SPACE_VELOCITY_IMPLAUSIBLE: "Implied space velocity above half the speed of light: "
     "inconsistent inputs.",
-    _PF.AT_POLE: "At a celestial pole: right ascension undefined.",
+    _PF.AT_POLE: f"At a celestial pole (within {AT_POLE_RAD:g} rad) at the catalogue epoch or "
+    "the target epoch: right ascension, and the directions of the proper-motion components, "
+    "are undefined there and taken from the right ascension given (or computed).",
     _PF.DISTANCE_REPLACED: "Light-time model: distance replaced by a minimum value (SOFA pmsafe).",
     _PF.NOT_CONVERGED: "Light-time model: iteration did not converge.",
     _PF.RADIAL_VELOCITY_UNCHANGED: "Radial velocity given without a usable parallax: passed "
