@@ -26,7 +26,6 @@ Vectorisation: all array arguments broadcast; scalar in gives scalar-shaped out.
 from __future__ import annotations
 
 import enum
-import warnings
 from dataclasses import dataclass
 
 import erfa
@@ -784,12 +783,12 @@ def convert(
     )
     epoch = np.broadcast_to(epoch, state.p.shape[:-1])
     if from_frame != to_frame:
-        with warnings.catch_warnings():
-            # ERFA warns "dubious year" for dates far from the present in date-to-JD helpers;
-            # the frame rotations here do not depend on UTC, so the warning does not apply.
-            warnings.simplefilter("ignore", erfa.ErfaWarning)
-            state = _to_icrs(state, from_frame, epoch)
-            state = _from_icrs(state, to_frame, epoch)
+        # No warnings filter here: none of the ERFA routines on this path (epj2jd, epb2jd,
+        # pmat76, ecm06, obl80, fk425, fk524, fk5hip, rv2m, icrs2g) has a status that pyerfa
+        # turns into a warning ("dubious year" comes from the UTC routines only), and
+        # warnings.catch_warnings() changes process-wide state, unsafe under threaded workers.
+        state = _to_icrs(state, from_frame, epoch)
+        state = _from_icrs(state, to_frame, epoch)
     ra, dec, px, pmra, pmdec, rv = _from_state(state)
     flags = flags | pole_flags(dec_deg) | pole_flags(dec)
     return FrameConversion(

@@ -547,3 +547,51 @@ def test_make_frame_validation():
             F.make_frame(*bad)
     with pytest.raises(ValueError, match="'of_date' is for the ecliptic frame only, not fk5"):
         F.make_frame("fk5", "of_date")
+
+
+def test_convert_leaves_the_warnings_filters_alone_across_threads(monkeypatch):
+    # warnings.catch_warnings() saves and restores the process-wide filter list; entered from
+    # several threads at once (gunicorn's threaded workers) it can restore a list another
+    # thread changed and leave an "ignore ErfaWarning" filter behind. convert() must not
+    # touch the filters at all, and must not need to: no ERFA routine it calls can warn,
+    # even at epochs millennia from the present (pyerfa: none of them returns a status).
+    import threading
+    import warnings
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("convert() changed the process-wide warnings filters")
+
+    rng = np.random.default_rng(31)
+    n = 50
+    args = (rng.uniform(0, 360, n), rng.uniform(-89, 89, n), rng.uniform(-5, 50, n),
+            rng.normal(0, 300, n), rng.normal(0, 300, n), rng.normal(0, 40, n),
+            rng.uniform(-4000.0, 8000.0, n))  # fmt: skip
+    sources = (ICRS, FK5, FK4, F.make_frame("fk4", 2900.0), F.make_frame("fk5", 1001.0),
+               F.make_frame("ecliptic", "of_date"))  # fmt: skip
+    targets = (ICRS, GAL, F.make_frame("fk4", 1234.0), F.make_frame("ecliptic"))
+    pairs = [(a, b) for a in sources for b in targets]
+    expected = [F.convert(*args, a, b) for a, b in pairs]
+    before = list(warnings.filters)
+    monkeypatch.setattr(warnings, "catch_warnings", refuse)
+    monkeypatch.setattr(warnings, "simplefilter", refuse)
+    monkeypatch.setattr(warnings, "filterwarnings", refuse)
+    results, errors = {}, []
+
+    def work(k):
+        try:
+            for _ in range(3):
+                results[k] = [F.convert(*args, a, b) for a, b in pairs]
+        except Exception as exc:  # noqa: BLE001 - reported by the assertion below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(k,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert not errors, errors[0]
+    assert list(warnings.filters) == before
+    for got in results.values():  # the same bits as one thread computed them
+        for g, e in zip(got, expected, strict=True):
+            for name in ("ra_deg", "dec_deg", "pm_ra_cosdec_mas_yr", "pm_dec_mas_yr", "flags"):
+                assert np.array_equal(getattr(g, name), getattr(e, name)), name
