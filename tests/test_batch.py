@@ -1274,3 +1274,36 @@ def test_constellations_job_flags_a_star_moved_off_a_pole(tmp_path):
         assert entry["meaning"].startswith(CONSTELLATION_AT_POLE_MEANING)
         if params:
             assert out["constellation"].astype(str).tolist() == ["Cep", "UMi", "Cep"]
+
+
+def test_known_upstream_warning_filter_is_added_once_and_nothing_else_changes():
+    # The batch run's one filter (pandas 3.1 deprecates reset_index(inplace=True), which
+    # dask's Parquet code calls) goes in for good, first, once however many runs in however
+    # many threads add it; the rest of the process-wide list is left as it was.
+    import threading
+    import warnings
+
+    before = list(warnings.filters)
+    threads = [threading.Thread(target=engine._silence_known_upstream_warnings) for _ in range(8)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    after = list(warnings.filters)
+    mine = [f for f in after if f not in before]
+    assert len(mine) <= 1 and after[0][0] == "ignore"
+    assert after[0][1].pattern == "The inplace keyword in DataFrame.reset_index"
+    assert after[0][3].pattern == "dask"
+    assert [f for f in after if f is not after[0]] == [f for f in before if f != after[0]]
+    with warnings.catch_warnings(record=True) as seen:  # the test's own scope, one thread
+        warnings.simplefilter("always")
+        warnings.filterwarnings(**engine.KNOWN_UPSTREAM_WARNING_FILTER)
+        warnings.warn_explicit(
+            "The inplace keyword in DataFrame.reset_index is deprecated", FutureWarning,
+            "arrow.py", 619, module="dask.dataframe.io.parquet.arrow",
+        )  # fmt: skip
+        warnings.warn_explicit(
+            "The inplace keyword in DataFrame.reset_index is deprecated", FutureWarning,
+            "mine.py", 1, module="someone_else",
+        )  # fmt: skip
+    assert [str(w.message)[:11] for w in seen] == ["The inplace"]  # only the other caller's

@@ -15,6 +15,7 @@ import pathlib
 import platform
 import re
 import sys
+import threading
 import time
 import warnings
 from collections.abc import Mapping, Sequence
@@ -805,6 +806,7 @@ def run_batch(
                 f"cannot reach the Dask scheduler at {scheduler} within "
                 f"{SCHEDULER_TIMEOUT_S:g} s ({exc})"
             ) from None
+    _silence_known_upstream_warnings()  # for the scheduler's workers in this process
     try:
         if client is not None:
             from distributed import progress as dist_progress
@@ -815,13 +817,12 @@ def run_batch(
                 "workers": len(client.scheduler_info(n_workers=-1)["workers"]),
                 "threads": int(sum(client.nthreads().values())),
             }
-            with _known_upstream_warnings():  # for workers in this process
-                futures = client.compute([write, counts])
-                if progress:
-                    with contextlib.redirect_stdout(sys.stderr):
-                        dist_progress(futures)
-                        sys.stderr.write("\n")
-                _, count_frame = client.gather(futures)
+            futures = client.compute([write, counts])
+            if progress:
+                with contextlib.redirect_stdout(sys.stderr):
+                    dist_progress(futures)
+                    sys.stderr.write("\n")
+            _, count_frame = client.gather(futures)
             worker_versions = client.run(_versions)
             execution["worker_versions"] = _distinct(worker_versions.values())
         else:
@@ -830,7 +831,7 @@ def run_batch(
             cfg = {"scheduler": local}
             if local != "synchronous":
                 cfg["num_workers"] = n_workers
-            with dask.config.set(cfg), _progress_bar(progress), _known_upstream_warnings():
+            with dask.config.set(cfg), _progress_bar(progress):
                 _, count_frame = dask.compute(write, counts)
     except BaseException as exc:
         # A run that stops part-way (a cell no number, a worker lost) leaves no output:
@@ -882,16 +883,32 @@ def _field_note(f) -> str:
     return f" (for {f.name}, in {f.unit})"
 
 
-@contextlib.contextmanager
-def _known_upstream_warnings():
-    """Silence warnings from the libraries' own code that say nothing about the run."""
-    with warnings.catch_warnings():
-        # dask's Parquet reader calls DataFrame.reset_index(inplace=True), deprecated in
-        # pandas 3.1 (a FutureWarning subclass); harmless, and nothing a user can change.
-        warnings.filterwarnings(
-            "ignore", message="The inplace keyword in DataFrame.reset_index", category=Warning
-        )
-        yield
+#: The warning filter a batch run adds to the process, as ``warnings.filterwarnings``
+#: arguments: dask's Parquet reader and writer call DataFrame.reset_index(inplace=True),
+#: deprecated in pandas 3.1 (Pandas4Warning, a FutureWarning subclass); harmless, and nothing
+#: a user can change. Narrow: that one message, raised from dask's own modules.
+KNOWN_UPSTREAM_WARNING_FILTER = {
+    "action": "ignore",
+    "message": "The inplace keyword in DataFrame.reset_index",
+    "category": Warning,
+    "module": "dask",
+}
+
+_FILTER_LOCK = threading.Lock()
+
+
+def _silence_known_upstream_warnings() -> None:
+    """Put :data:`KNOWN_UPSTREAM_WARNING_FILTER` first in the process's warnings filters.
+
+    The filter stays after the run, once in the list however many runs add it (as
+    ``warnings.filterwarnings`` replaces an equal entry). It is not scoped with
+    ``warnings.catch_warnings()``: that saves the process-wide filter list on entry and puts
+    it back on exit, so runs in two threads of one process could put back each other's
+    lists (leaving filters behind or dropping them); and the warnings are raised in the
+    scheduler's worker threads, which only the process-wide list reaches.
+    """
+    with _FILTER_LOCK:
+        warnings.filterwarnings(**KNOWN_UPSTREAM_WARNING_FILTER)
 
 
 def _distinct(records) -> list:

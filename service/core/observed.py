@@ -26,7 +26,6 @@ import os
 import sys
 import threading
 import types
-import warnings
 from dataclasses import dataclass, field
 
 import erfa
@@ -1907,17 +1906,6 @@ def _check_instants(utc_jd1, utc_jd2):
     if jd1.shape == jd2.shape:
         return jd1, jd2
     return np.broadcast_arrays(jd1, jd2)
-
-
-def _quiet_erfa(func, *args):
-    """Call an ERFA function whose only possible warning here is "dubious year".
-
-    ERFA warns "dubious year" for UTC dates beyond its leap-second table; the condition is
-    reported per instant with the LEAP_SECONDS_EXTRAPOLATED flag instead.
-    """
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", erfa.ErfaWarning)
-        return func(*args)
 
 
 def _raise_erfa_errors(status, name: str) -> None:

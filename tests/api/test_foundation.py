@@ -228,6 +228,19 @@ def test_core_imports_no_web_framework():
             assert not banned.intersection(names), f"{path.name} imports {names}"
 
 
+def test_service_never_scopes_warnings_with_catch_warnings():
+    """warnings.catch_warnings() saves the process-wide filter list and puts it back on exit
+    (Python 3.11-3.13): entered from two threads of a threaded worker at once it can put back
+    a list the other thread changed and leave a filter behind for every later request. The
+    service reports ERFA's conditions with flags (calling the ufuncs, which return status
+    codes) and installs its one upstream filter for good (batch.engine)."""
+    for path in sorted((ROOT / "service").rglob("*.py")):
+        tree = ast.parse(path.read_text())
+        for node in ast.walk(tree):
+            name = getattr(node, "attr", None) or getattr(node, "id", None)
+            assert name != "catch_warnings", f"{path.relative_to(ROOT)}:{node.lineno}"
+
+
 def _lenient_fields(schema, path="", seen=None):
     """Fields of a request schema that would read a JSON string as a number or boolean."""
     import marshmallow as ma
