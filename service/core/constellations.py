@@ -441,21 +441,28 @@ def _icrs_to_fk5_j2000() -> np.ndarray:
     return np.ascontiguousarray(r5h.T)
 
 
-@functools.cache
+#: Rotation matrices kept per process and per kind of rotation (FK5 IAU 1976, FK5 IAU 2006,
+#: FK4), the least recently used dropped first. Bounded: an outline's equinox is the
+#: client's choice ("now" is a new one every request), so an unbounded cache would grow for
+#: the worker's whole life. A miss costs one precession matrix, microseconds.
+ROTATION_CACHE_SIZE = 256
+
+
+@functools.lru_cache(maxsize=ROTATION_CACHE_SIZE)
 def _fk5_rotation(julian_equinox: float) -> np.ndarray:
     """ICRS -> FK5 at a Julian equinox: frame tie, then IAU 1976 precession from J2000."""
     jd = float(julian_epoch_to_jd(julian_equinox))
     return erfa.pmat76(jd, 0.0) @ _icrs_to_fk5_j2000()
 
 
-@functools.cache
+@functools.lru_cache(maxsize=ROTATION_CACHE_SIZE)
 def _fk5_rotation_iau2006(julian_equinox: float) -> np.ndarray:
     """ICRS -> FK5 J2000 frame tie, then IAU 2006 precession (ERFA ``bp06``) to an equinox."""
     jd = float(julian_epoch_to_jd(julian_equinox))
     return erfa.bp06(jd, 0.0)[1] @ _icrs_to_fk5_j2000()
 
 
-@functools.cache
+@functools.lru_cache(maxsize=ROTATION_CACHE_SIZE)
 def _fk4_rotation(besselian_equinox: float, besselian_epoch: float) -> np.ndarray:
     """ICRS -> FK4 (no E-terms) at a Besselian equinox, FK4 realised at an epoch."""
     jyear = float(erfa.epj(float(besselian_epoch_to_jd(besselian_epoch)), 0.0))

@@ -927,3 +927,29 @@ def test_margin_next_to_the_b1875_poles():
     expected = np.abs(res.dec_b1875_deg - nearest) * 3600.0
     np.testing.assert_allclose(res.margin_arcsec, expected, rtol=0, atol=1e-6)
     assert list(ABBR[res.index]) == ["UMi"] * gap_deg.size + ["Oct"] * gap_deg.size
+
+
+def test_rotation_caches_stay_bounded_over_many_equinoxes():
+    # Outlines take the client's equinox (and "now", a new one every request): the rotation
+    # caches must not grow with every equinox asked for over a worker's life. After more
+    # distinct equinoxes than the bound, each cache holds at most ROTATION_CACHE_SIZE
+    # matrices, and a rotation computed again after eviction is bit-identical to the first.
+    bound = C.ROTATION_CACHE_SIZE
+    first_fk5 = C._fk5_rotation(1987.25).copy()
+    first_fk4 = C._fk4_rotation(1987.25, 1987.25).copy()
+    ra, dec = np.array([10.0, 200.0]), np.array([-30.0, 60.0])
+    vec = C._unit_vectors(ra, dec)
+    first_lonlat = C._frame_from_icrs("fk5", 1987.25)(vec)
+    for k in range(bound + 300):
+        eq = 1500.0 + 0.37 * k
+        C._frame_from_icrs("fk5", eq)
+        C._frame_from_icrs("fk4", eq)
+        C._fk5_rotation_iau2006(eq)
+    for cached in (C._fk5_rotation, C._fk5_rotation_iau2006, C._fk4_rotation):
+        assert cached.cache_info().maxsize == bound
+        assert cached.cache_info().currsize <= bound
+    # 1987.25 was evicted; computed again, the same bits (pyerfa pmat76 underneath).
+    assert np.array_equal(C._fk5_rotation(1987.25), first_fk5)
+    assert np.array_equal(C._fk4_rotation(1987.25, 1987.25), first_fk4)
+    again = C._frame_from_icrs("fk5", 1987.25)(vec)
+    assert all(np.array_equal(a, b) for a, b in zip(again, first_lonlat, strict=True))
