@@ -191,7 +191,9 @@ class ObservedFlag(enum.IntFlag):
     #: Target below the geometric horizon: airmass undefined (NaN).
     AIRMASS_UNDEFINED = 1024
     #: Refraction on and the observed altitude below REFRACTION_UNCERTAIN_BELOW_DEG, where
-    #: the refraction model is good only to arcminutes (SOFA atioq, Note 2).
+    #: the refraction model is good only to arcminutes (SOFA atioq, Note 2); below the
+    #: horizon, where no refraction is seen, the model still raises the place by up to its
+    #: value held at 2.9 deg altitude (:func:`_refraction_where_held`).
     REFRACTION_UNCERTAIN = 2048
     #: Given pressure outside PRESSURE_PLAUSIBLE_FRACTION of the standard atmosphere's at
     #: the site height (probably a unit mistake); used as given (:func:`pressure_warning`).
@@ -1266,6 +1268,19 @@ def _refract(aet, refa, refb):
     return f, zaeo, r0, dl
 
 
+def _refraction_where_held(refraction_arcsec, x, y, z, zd_deg):
+    """Where atioq holds its model (z below ATIOQ_SELMIN: altitude below about 2.9 deg, and
+    below the horizon), put the change of zenith distance it makes in place of the model's
+    angle: there the two differ (by 0.3 arcsec just above the horizon, by half 45 deg below
+    it), and the answer's refraction is unrefracted minus observed zenith distance."""
+    shape = refraction_arcsec.shape
+    held = np.broadcast_to(np.less(z, ATIOQ_SELMIN), shape)
+    if held.any():
+        xh, yh, zh, zdh = (np.broadcast_to(a, shape)[held] for a in (x, y, z, zd_deg))
+        zd0 = np.arctan2(np.sqrt(xh * xh + yh * yh), zh) * DEG_PER_RAD
+        refraction_arcsec[held] = (zd0 - zdh) * 3600.0
+
+
 @dataclass
 class _Instant:
     """Star-independent quantities of one or more instants (arrays of the instants' shape)."""
@@ -1444,6 +1459,10 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         out=dst(9) if vector else None,
     )
     refraction = np.multiply(dl, _ARCSEC_PER_RAD, out=dst(8) if vector else None)
+    if vector:
+        _refraction_where_held(refraction, xaet, yaet, zaet, zd)
+    elif zaet < ATIOQ_SELMIN:
+        refraction = (math.atan2(math.hypot(xaet, yaet), zaet) * DEG_PER_RAD - zd) * 3600.0
     horizon_limit, avoidance = limits
     flags = _any_bits(
         (np.isnan(px), _F_MISSING_PARALLAX),
@@ -1832,6 +1851,7 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     sep = np.arcsin(hc, out=out[9])
     sep *= 2.0 * DEG_PER_RAD
     np.multiply(dl, _ARCSEC_PER_RAD, out=out[8])
+    _refraction_where_held(out[8], x, y, z, zd)
 
     # Flags: bits 0-7 gathered in a uint8 row, bits 10 and 11 written into the second byte.
     horizon_limit, avoidance = limits

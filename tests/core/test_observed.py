@@ -1042,3 +1042,54 @@ def test_cached_instant_state_never_hands_out_geocentric_quantities_half_made():
     a.join(10.0)
     assert eo_b == pytest.approx(-0.002900618712657375647, abs=1e-12)
     assert got["a"]["fast"].eo == pytest.approx(-0.002900618712657375647, abs=1e-12)
+
+
+def test_refraction_where_the_model_is_held_is_the_change_it_makes():
+    # SOFA atioq holds its model below about 2.9 deg altitude (sin(altitude) floored at
+    # 0.05) and still applies it below the horizon, where no refraction is seen. Our
+    # refraction_arcsec (unrefracted minus observed zenith distance) equals pyerfa's: the
+    # zenith distances of atco13 without and with air, run here, to 1e-3 arcsec. (It gave the
+    # model's angle, which is not the change there: 615 arcsec for 285 at 45 deg below.)
+    # Below the horizon the place is raised by the value held at the horizon (about 11
+    # arcmin at sea level), less the deeper the target; refraction_uncertain flags all of it.
+    site = O.make_site(45.0, 0.0, 0.0)
+    jd1, jd2 = erfa.dtf2d("UTC", 2020, 3, 20, 12, 0, 0.0)
+    ra = np.linspace(0.0, 360.0, 73)[:-1]
+    atm = O.make_atmosphere(1013.25, 10.0, 0.5, 0.55)
+    zd = {}
+    for p in (1013.25, 0.0):
+        out = _erfa_without_dubious_year(
+            erfa.atco13, np.radians(ra), 0.0, 0.0, 0.0, 0.0, 0.0, jd1, jd2, 0.0,
+            0.0, np.radians(45.0), 0.0, 0.0, 0.0, p, 10.0, 0.5, 0.55,
+        )  # fmt: skip
+        zd[p] = out[1]
+    theirs = (zd[0.0] - zd[1013.25]) * 206264.80624709636  # arcsec
+    res = O.observed_places(ra, 0.0, np.nan, 0.0, 0.0, np.nan, 2000.0, jd1, jd2, site, atm,
+                            eop_values=(0.0, 0.0, 0.0))  # fmt: skip
+    assert np.max(np.abs(res.refraction_arcsec - theirs)) < 1e-3
+    for k in range(ra.size):  # one star: the scalar path
+        one = O.observed_places(ra[k], 0.0, np.nan, 0.0, 0.0, np.nan, 2000.0, jd1, jd2, site,
+                                atm, eop_values=(0.0, 0.0, 0.0))  # fmt: skip
+        assert abs(one.refraction_arcsec - theirs[k]) < 1e-3
+    hours = np.arange(0.0, 24.0, 0.5)  # one star at many instants: the third path
+    eop = (0.0, 0.0, 0.0)
+    track = O.observed_places(ra[0], 0.0, np.nan, 0.0, 0.0, np.nan, 2000.0, jd1,
+                              jd2 + hours / 24.0, site, atm, eop_values=eop)  # fmt: skip
+    zd_t = [
+        _erfa_without_dubious_year(
+            erfa.atco13, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, jd1, jd2 + hours / 24.0, 0.0,
+            0.0, np.radians(45.0), 0.0, 0.0, 0.0, p, 10.0, 0.5, 0.55,
+        )[1]
+        for p in (0.0, 1013.25)
+    ]  # fmt: skip
+    assert np.min(track.altitude_deg) < -30.0
+    assert np.max(np.abs(track.refraction_arcsec - (zd_t[0] - zd_t[1]) * 206264.80624709636)) < 1e-3
+    held = theirs[np.argmin(np.abs(res.altitude_deg - 1.0))]  # at 1 deg altitude
+    assert 10.5 * 60 < held < 11.5 * 60
+    below = np.flatnonzero(res.altitude_deg < 0.0)
+    below = below[np.argsort(res.altitude_deg[below])]
+    assert below.size > 20 and res.altitude_deg[below[0]] < -44.0
+    r = res.refraction_arcsec[below]
+    assert np.all(r > 0.0) and np.all(r < held + 1.0) and np.all(np.diff(r) >= 0.0)
+    assert r[0] < 0.45 * held  # 45 deg below the horizon
+    assert np.all(res.flags[below] & int(O.ObservedFlag.REFRACTION_UNCERTAIN))
