@@ -105,10 +105,13 @@ FLAG_MEANINGS = {
     "at_pole": f"At a pole of the input frame as given (within {AT_POLE_RAD:g} rad): the proper "
     "motion is taken along the east and north of the longitude given there (the limit "
     "along that meridian), which sets the direction in which the star moves.",
-    "refraction_uncertain": "Observed altitude below 5 deg with refraction on: the "
-    "refraction model (SOFA atioq) is good to 30 arcsec at 5 deg and only to about 20 "
-    "arcmin at the horizon, and is held at its 2.9 deg value below that. Altitude, hour "
-    "angle and declination there are uncertain by as much.",
+    "refraction_uncertain": "Observed altitude below 5 deg with refraction on. Above the "
+    "horizon the refraction model (SOFA atioq) is good to 30 arcsec at 5 deg and only to "
+    "about 20 arcmin at the horizon, and is held at its 2.9 deg value below that (about 11 "
+    "arcmin at sea level). Below the horizon, where no refraction is seen, the model still "
+    "raises the place: by about that held value near the horizon, less the deeper the "
+    "target (refraction_arcsec gives it). Altitude, hour angle and declination are "
+    "uncertain by as much, and below the horizon offset by it.",
     "pressure_implausible": "The pressure given is outside 0.83-1.15 times the standard "
     "atmosphere's at the site height, where no weather goes (probably a unit mistake; the "
     "warning says which): refraction was computed with it as given, wrong in proportion.",
