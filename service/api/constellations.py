@@ -69,9 +69,10 @@ FLAG_MEANINGS = {
     "(0.18 arcsec from a constant-Dec boundary, 2.7 arcsec x cos(dec) from a constant-RA one): "
     "the published table cannot decide.",
     "reductions_disagree": "The fk4 and fk5 reductions give different constellations.",
-    "parallax_missing": "No usable parallax: the motion is applied as direction only (no "
+    "parallax_missing": "No parallax: the motion is applied as direction only (no "
     "perspective effects; radial velocity not used).",
-    "parallax_not_positive": "Parallax zero or negative: treated as unknown.",
+    "parallax_not_positive": "Parallax zero or negative: no distance; the motion is applied "
+    "as direction only, as without a parallax (radial velocity not used).",
     "radial_velocity_missing": "No radial velocity: taken as zero for the motion.",
     "proper_motion_missing": "No proper motion: the position was taken as fixed.",
     "search_incomplete": "The crossing search reached its step limit before the end of the "

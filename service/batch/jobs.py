@@ -508,9 +508,10 @@ CONSTELLATION_FLAG_MEANINGS = {
     _CF.TABLE_ROUNDING_AMBIGUOUS: "Within half a unit of the table's last digit of a "
     "boundary: the published table cannot decide.",
     _CF.REDUCTIONS_DISAGREE: "The FK4 and FK5 reductions to B1875.0 give different constellations.",
-    _CF.PARALLAX_MISSING: "No usable parallax: motion applied as direction only (no "
+    _CF.PARALLAX_MISSING: "No parallax: motion applied as direction only (no "
     "perspective effects; radial velocity not used).",
-    _CF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: treated as unknown.",
+    _CF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; motion applied as "
+    "direction only, as without a parallax (radial velocity not used).",
     _CF.RADIAL_VELOCITY_MISSING: "No radial velocity: taken as zero for the motion.",
     _CF.PROPER_MOTION_MISSING: "No proper motion: the position was taken as fixed.",
     _CF.SEARCH_INCOMPLETE: "Crossing search stopped early (not used in batch runs).",

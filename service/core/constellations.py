@@ -149,9 +149,11 @@ class ConstellationFlag(enum.IntFlag):
     TABLE_ROUNDING_AMBIGUOUS = 2
     #: The FK4 and the FK5 reductions to B1875.0 give different constellations.
     REDUCTIONS_DISAGREE = 4
-    #: Parallax missing: motion propagated as direction only (no perspective effects).
+    #: Parallax missing: motion propagated as direction only (no perspective effects, radial
+    #: velocity not used).
     PARALLAX_MISSING = 8
-    #: Parallax zero or negative: treated as unknown.
+    #: Parallax zero or negative: no distance; motion propagated as without a parallax.
+    #: Not also PARALLAX_MISSING, as in the propagation and velocity answers.
     PARALLAX_NOT_POSITIVE = 16
     #: Radial velocity missing: taken as zero for the propagation.
     RADIAL_VELOCITY_MISSING = 32
@@ -1578,8 +1580,9 @@ def _space_motion(
        (unit) and v = mu_a p + mu_d q + (v_r / d) r (rad/yr). That is exact, and stays
        finite for any parallax (1000 / parallax overflows for parallaxes near 1e-308 mas).
     2. Without a usable parallax the distance drops out only if the radial velocity is
-       ignored: r0 = r (unit), v = mu_a p + mu_d q (rad/yr); PARALLAX_MISSING is set
-       (plus PARALLAX_NOT_POSITIVE for zero or negative values).
+       ignored: r0 = r (unit), v = mu_a p + mu_d q (rad/yr); PARALLAX_MISSING is set where
+       the parallax is not known, PARALLAX_NOT_POSITIVE (alone) where it is zero or
+       negative.
     3. A missing radial velocity is taken as zero and flagged. A star with either proper
        motion component missing is held fixed (both components taken as zero) and flagged
        PROPER_MOTION_MISSING: one component alone would move it along a direction nobody
@@ -1613,7 +1616,7 @@ def _space_motion(
     pma = np.where(pm_missing, 0.0, pma) / MAS_PER_RAD
     pmd = np.where(pm_missing, 0.0, pmd) / MAS_PER_RAD
     plx_ok = np.isfinite(plx) & (plx > 0.0)
-    flags |= np.where(plx_ok, 0, int(ConstellationFlag.PARALLAX_MISSING))
+    flags |= np.where(np.isfinite(plx), 0, int(ConstellationFlag.PARALLAX_MISSING))
     flags |= np.where(
         np.isfinite(plx) & (plx <= 0.0), int(ConstellationFlag.PARALLAX_NOT_POSITIVE), 0
     )

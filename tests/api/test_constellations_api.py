@@ -665,3 +665,28 @@ def test_crossings_of_a_star_moved_off_a_pole_are_flagged_at_pole(client):
             assert _moved_from_the_meridian(ra, dec, POLE_MOTION, middle - 2000.0)[0] == name
         sequences.append(names)
     assert sequences[0] != sequences[1]  # the RA given decides the path
+
+
+def test_parallax_flags_agree_with_propagation_and_velocity(client):
+    # One condition, one flag, the same in every answer: a missing parallax is
+    # parallax_missing, a zero or negative one parallax_not_positive (not both).
+    base = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 50.0, "pm_dec_mas_yr": -20.0,
+            "radial_velocity_km_s": 20.0}  # fmt: skip
+    stars = [dict(base, parallax_mas=p) for p in (0.0, -1.5)] + [base]
+    names = ("parallax_missing", "parallax_not_positive")
+
+    def picked(star_flags):
+        return [sorted(n for n in names if n in f) for f in star_flags]
+
+    r = client.post(f"{BASE}/lookup", json={"stars": stars, "catalogue_epoch": "J2016.0",
+                                            "epoch": "J2100.0"})  # fmt: skip
+    assert r.status_code == 200, r.json
+    mine = picked([s["flags"] for s in r.json["stars"]])
+    assert mine == [["parallax_not_positive"], ["parallax_not_positive"], ["parallax_missing"]]
+    p = client.post("/v1/propagation", json={"stars": stars, "catalogue_epoch": "J2016.0",
+                                             "target_epochs": ["J2100.0"]})  # fmt: skip
+    assert p.status_code == 200, p.json
+    assert picked([s["flags"] for s in p.json["stars"]]) == mine
+    v = client.post("/v1/velocity", json={"stars": stars})
+    assert v.status_code == 200, v.json
+    assert picked([s["flags"] for s in v.json["stars"]]) == mine
