@@ -160,6 +160,7 @@ def test_sigterm_finishes_in_flight_requests_then_refuses_connections():
             t.start()
         for e in sent:
             assert e.wait(timeout=60)
+        workers_at_stop = srv.worker_pids()
         stopped_at = time.monotonic()
         srv.proc.send_signal(signal.SIGTERM)
         refused_after = None
@@ -180,8 +181,11 @@ def test_sigterm_finishes_in_flight_requests_then_refuses_connections():
     assert results == [(200, 200_000), (200, 200_000)]
     # Refused while the in-flight requests were still running, not only once they ended
     # (service.workers.ReadDeadlineThreadWorker drops the listening sockets at once).
-    assert refused_after is not None and refused_after < 5.0
-    assert code == 0
+    # On failure, say which workers there were and what gunicorn logged (seen once, on a
+    # machine loaded by other test runs, and not since: new connections accepted for 30 s).
+    why = f"workers at SIGTERM {workers_at_stop}; gunicorn log (end):\n{srv.output()[-4000:]}"
+    assert refused_after is not None and refused_after < 5.0, why
+    assert code == 0, why
 
 
 # ------------------------------------------------------------------ Earth orientation
