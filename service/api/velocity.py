@@ -437,9 +437,22 @@ FLAG_MEANINGS = {
 }
 
 
-#: The inverse answer's meanings: at a pole it gives proper-motion components, no rates.
+#: The inverse answer's meanings, for the flags it raises (core.observables_from_velocity):
+#: its answer has the distance, the proper motions and the radial velocity, no velocities
+#: computed from a distance and no parallax_snr, so the forward texts do not fit it.
 OBSERVABLES_FLAG_MEANINGS = {
-    **FLAG_MEANINGS,
+    "parallax_missing": "No parallax and no distance: distance_pc, pm_ra_cosdec_mas_yr and "
+    "pm_dec_mas_yr are null (they need a distance); radial_velocity_km_s needs none and is "
+    "given.",
+    "parallax_not_positive": "Parallax zero or negative: no distance; distance_pc, "
+    "pm_ra_cosdec_mas_yr and pm_dec_mas_yr are null; radial_velocity_km_s is given.",
+    "parallax_too_small": "Parallax positive but too small for a distance (1000/parallax "
+    "overflows, below about 5.6e-306 mas): distance_pc is null; pm_ra_cosdec_mas_yr and "
+    "pm_dec_mas_yr, proportional to the parallax, are given.",
+    "distance_given": "distance_pc used instead of the parallax.",
+    "space_velocity_implausible": "U, V, W as given make a speed above half the speed of "
+    "light: no star moves so fast; probably a unit mistake (km/s). Computed as given.",
+    "parallax_implausible": FLAG_MEANINGS["parallax_implausible"],
     "at_pole": f"At a celestial pole (within {AT_POLE_RAD:g} rad): east and north, and with them "
     "pm_ra_cosdec_mas_yr and pm_dec_mas_yr, are those of the right ascension given (the "
     "limit along that meridian); the total proper motion does not depend on it.",

@@ -2,6 +2,7 @@
 
 import json
 import math
+import re
 
 import numpy as np
 import pytest
@@ -628,3 +629,40 @@ def test_every_null_parallax_snr_is_explained_by_a_flag(client):
             want = row["parallax_mas"] / row["parallax_error_mas"]
             assert star["parallax_snr"] == pytest.approx(want, rel=1e-15, abs=0.0)
     assert [s["parallax_snr"] is None for s in body["stars"]] == [True] * 6 + [False] * 2
+
+
+def test_inverse_flag_meanings_speak_of_the_inverse_answer(client):
+    # The inverse answer took the forward answer's meanings: a missing or non-positive
+    # parallax said "velocities are null" (the velocities are the input; the proper motions
+    # are what is null) and parallax_snr, which this answer has not, was named in four of
+    # them. Every flag the inverse raises must have a meaning that names only members of
+    # its own request and answer, and each null must be named by a flag of its star.
+    # Reference: the nulls of the answer itself.
+    space = {"ra_deg": 10.0, "dec_deg": 20.0, "u_km_s": 10.0, "v_km_s": 5.0, "w_km_s": 1.0}
+    rows = [
+        {},  # parallax_missing
+        {"parallax_mas": -2.0},  # parallax_not_positive
+        {"parallax_mas": 1e-307},  # parallax_too_small
+        {"parallax_mas": 5.0, "distance_pc": 100.0},  # distance_given
+        {"parallax_mas": 2000.0},  # parallax_implausible
+        {"parallax_mas": 5.0, "u_km_s": 2e5},  # space_velocity_implausible
+        {"parallax_mas": 5.0, "dec_deg": 90.0},  # at_pole
+    ]
+    body = post(client, {"stars": [dict(space, **r) for r in rows]}, INVERSE_URL).json
+    raised = {f for s in body["stars"] for f in s["flags"]}
+    assert raised == {"parallax_missing", "parallax_not_positive", "parallax_too_small",
+                      "distance_given", "parallax_implausible", "space_velocity_implausible",
+                      "at_pole"}  # fmt: skip
+    meanings = body["flag_meanings"]
+    assert set(meanings) == raised
+    members = set(body["units"]) | set(body["stars"][0]) | set(UVW_STAR) | {"parallax_mas"}
+    for flag, text in meanings.items():
+        named = set(re.findall(r"\b[a-z]+(?:_[a-z0-9]+)+\b", text)) - set(meanings)
+        assert named <= members, (flag, named - members)
+    for row, star in zip(rows, body["stars"], strict=True):
+        for name in ("distance_pc", "pm_ra_cosdec_mas_yr", "pm_dec_mas_yr"):
+            if star[name] is None:
+                said = [f for f in star["flags"] if name in meanings[f]]
+                assert said, (row, name, star["flags"])
+    assert "velocities" not in meanings["parallax_missing"]
+    assert "velocities" not in meanings["parallax_not_positive"]
