@@ -424,8 +424,8 @@ FLAG_MEANINGS = {
     "the direction from which the motion approaches zero); uncertainty_method monte_carlo "
     "gives one. With a radial velocity of exactly zero too (at rest relative to the Sun) "
     "velocity_line_of_sight_angle_deg, closest_approach_time_yr, "
-    "closest_approach_distance_pc and, with linear uncertainties, total_velocity_error_km_s "
-    "are null as well.",
+    "closest_approach_epoch_jyear, closest_approach_distance_pc and, with linear "
+    "uncertainties, total_velocity_error_km_s are null as well.",
     "at_pole": f"At a celestial pole (within {AT_POLE_RAD:g} rad): east and north, and with them "
     "the proper-motion components and transverse_velocity_ra_km_s and "
     "transverse_velocity_dec_km_s, are those of the right ascension given; "

@@ -354,7 +354,8 @@ VELOCITY_FLAG_MEANINGS = {
     "is undefined at zero: the linear error's limit depends on the direction from which the "
     "motion approaches zero). With a radial velocity of exactly zero too (at rest relative "
     "to the Sun) velocity_line_of_sight_angle_deg, total_velocity_error_km_s, "
-    "closest_approach_time_yr and closest_approach_distance_pc are NaN as well.",
+    "closest_approach_time_yr, closest_approach_epoch_jyear and closest_approach_distance_pc "
+    "are NaN as well.",
     _KF.AT_POLE: f"At a celestial pole (within {AT_POLE_RAD:g} rad): "
     "east and north, and with them the "
     "proper-motion components and the transverse velocity's east and north parts, are those "

@@ -212,7 +212,8 @@ class KinematicsFlag(enum.IntFlag):
     #: undefined at mu = 0 (the linear error's limit there depends on the direction from
     #: which mu approaches zero); Monte Carlo gives one. With a radial velocity of exactly
     #: zero too the star is at rest relative to the Sun: the line-of-sight angle, the linear
-    #: total-velocity error and the closest-approach time and distance are null as well.
+    #: total-velocity error and the closest-approach time, epoch and distance are null as
+    #: well.
     PROPER_MOTION_ZERO = 8192
     #: Parallax error given as zero (no distance given in its place): the parallax
     #: signal-to-noise is infinite (undefined for a zero parallax) and is null.

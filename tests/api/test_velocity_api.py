@@ -666,3 +666,24 @@ def test_inverse_flag_meanings_speak_of_the_inverse_answer(client):
                 assert said, (row, name, star["flags"])
     assert "velocities" not in meanings["parallax_missing"]
     assert "velocities" not in meanings["parallax_not_positive"]
+
+
+def test_every_null_of_a_star_at_rest_is_named_by_a_flag(client):
+    # A star at rest relative to the Sun (no proper motion, radial velocity 0) has no time
+    # of closest approach, so with a catalogue epoch its closest_approach_epoch_jyear is
+    # null too; proper_motion_zero named the time and the distance but not the epoch.
+    # Reference: the answer's own nulls, each of which a flag of the star must name (the
+    # position angle, closest-approach proper motion and parallax, the line-of-sight angle,
+    # the linear transverse and total velocity errors, and the closest-approach time,
+    # distance and epoch).
+    errs = {"parallax_error_mas": 0.3, "pm_ra_cosdec_error_mas_yr": 0.1,
+            "pm_dec_error_mas_yr": 0.1, "radial_velocity_error_km_s": 1.0}  # fmt: skip
+    rest = dict(STAR, **errs, pm_ra_cosdec_mas_yr=0.0, pm_dec_mas_yr=0.0, radial_velocity_km_s=0.0)
+    body = post(client, {"stars": [rest], "catalogue_epoch": "J2016.0"}).json
+    star = body["stars"][0]
+    assert star["flags"] == ["proper_motion_zero", "correlations_assumed_zero"]
+    nulls = [k for k, v in star.items() if v is None and k != "id"]
+    assert "closest_approach_epoch_jyear" in nulls and "closest_approach_time_yr" in nulls
+    for name in nulls:
+        said = [f for f in star["flags"] if name in body["flag_meanings"][f]]
+        assert said, name
