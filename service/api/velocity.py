@@ -386,14 +386,23 @@ _OUTPUT_DESCRIPTIONS = {
     "mas: the largest; null for a star without transverse motion.",
 }
 
+#: What a star without a distance is answered with (flags parallax_missing,
+#: parallax_not_positive, parallax_too_small).
+_NO_DISTANCE_NULLS = (
+    "the distance and every quantity that needs it are null: the transverse, total and U, V, "
+    "W velocities and their errors, the line-of-sight angle, the proper-motion and "
+    "radial-velocity rates and the closest approach; the total proper motion, its position "
+    "angle and the radial velocity are given."
+)
+
 FLAG_MEANINGS = {
-    "parallax_missing": "No parallax and no distance: velocities needing a distance are null.",
-    "parallax_not_positive": "Parallax zero or negative: no distance; velocities are null. "
-    "parallax_snr is given where a parallax error is, null without one.",
+    "parallax_missing": "No parallax and no distance: " + _NO_DISTANCE_NULLS,
+    "parallax_not_positive": "Parallax zero or negative: no distance; "
+    + _NO_DISTANCE_NULLS
+    + " parallax_snr is given where a parallax error is, null without one.",
     "parallax_too_small": "Parallax positive but too small for a distance (1000/parallax "
-    "overflows, below about 5.6e-306 mas): velocities needing a distance (in the inverse, "
-    "the distance) are null. parallax_snr is given where a parallax error is, null without "
-    "one.",
+    "overflows, below about 5.6e-306 mas): " + _NO_DISTANCE_NULLS + " parallax_snr is given "
+    "where a parallax error is, null without one.",
     "parallax_low_snr": "Parallax signal-to-noise below the threshold: 1/parallax is a biased "
     "distance and linear uncertainties are unreliable; prefer uncertainty_method auto or a "
     "better distance in distance_pc.",

@@ -323,13 +323,21 @@ _VELOCITIES = (
 )
 
 _KF = _kinematics.KinematicsFlag
+#: What a star without a distance is given (as the API's velocity answer says it).
+_NO_DISTANCE_NANS = (
+    "the distance and every quantity that needs it are NaN: the transverse, total and U, V, "
+    "W velocities and their errors, the line-of-sight angle, the proper-motion and "
+    "radial-velocity rates and the closest approach; the total proper motion, its position "
+    "angle and the radial velocity are given."
+)
 VELOCITY_FLAG_MEANINGS = {
-    _KF.PARALLAX_MISSING: "No parallax and no distance: velocities needing a distance are NaN.",
-    _KF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; velocities are NaN. "
-    "parallax_snr is given where a parallax error is, NaN without one.",
+    _KF.PARALLAX_MISSING: "No parallax and no distance: " + _NO_DISTANCE_NANS,
+    _KF.PARALLAX_NOT_POSITIVE: "Parallax zero or negative: no distance; "
+    + _NO_DISTANCE_NANS
+    + " parallax_snr is given where a parallax error is, NaN without one.",
     _KF.PARALLAX_TOO_SMALL: "Parallax positive but too small for a distance (1000/parallax "
-    "overflows, below about 5.6e-306 mas): velocities needing a distance are NaN. "
-    "parallax_snr is given where a parallax error is, NaN without one.",
+    "overflows, below about 5.6e-306 mas): " + _NO_DISTANCE_NANS + " parallax_snr is given "
+    "where a parallax error is, NaN without one.",
     _KF.PARALLAX_LOW_SNR: "Parallax signal-to-noise below the threshold: 1/parallax is a "
     "biased distance and linear uncertainties are unreliable.",
     _KF.RADIAL_VELOCITY_MISSING: "No radial velocity: U, V, W, total velocity, line-of-sight "

@@ -687,3 +687,25 @@ def test_every_null_of_a_star_at_rest_is_named_by_a_flag(client):
     for name in nulls:
         said = [f for f in star["flags"] if name in body["flag_meanings"][f]]
         assert said, name
+
+
+@pytest.mark.parametrize(
+    ("parallax", "flag"),
+    [(None, "parallax_missing"), (-1.0, "parallax_not_positive"), (1e-307, "parallax_too_small")],
+)
+def test_a_star_without_a_distance_has_its_nulls_named(client, parallax, flag):
+    # Without a distance the rates (proper motions, radial velocity) and the whole closest
+    # approach are null too; the meanings spoke of "velocities" only, and said nothing of
+    # what is still given. Reference: the answer's own nulls and values.
+    star = dict(STAR, parallax_mas=parallax)
+    body = post(client, {"stars": [star], "catalogue_epoch": "J2016.0"}).json
+    got = body["stars"][0]
+    assert flag in got["flags"]
+    for name in ("pm_total_rate_mas_yr2", "radial_velocity_rate_km_s_yr",
+                 "closest_approach_time_yr", "closest_approach_speed_km_s"):  # fmt: skip
+        assert got[name] is None
+    for name in ("pm_total_mas_yr", "pm_position_angle_deg", "radial_velocity_km_s"):
+        assert got[name] is not None
+    meaning = body["flag_meanings"][flag]
+    assert "rates" in meaning and "closest approach" in meaning
+    assert "radial velocity are given" in meaning
