@@ -367,10 +367,14 @@ _OUTPUT_DESCRIPTIONS = {
     "transverse_velocity_error_km_s": "Standard error of the transverse velocity, km/s; "
     "null with linear uncertainties where the proper motion is zero (proper_motion_zero).",
     "total_velocity_error_km_s": "Standard error of the total velocity, km/s.",
-    "pm_ra_cosdec_rate_mas_yr2": "Perspective acceleration: rate of change of pm_ra_cosdec, "
-    "mas/yr^2 (straight-line model); null at a celestial pole (at_pole).",
-    "pm_dec_rate_mas_yr2": "Rate of change of pm_dec, mas/yr^2; null at a celestial pole "
-    "(at_pole).",
+    "pm_ra_cosdec_rate_mas_yr2": "Rate of change of pm_ra_cosdec at the catalogue epoch, "
+    "mas/yr^2 (straight-line model, as POST /v1/propagation moves the star): the perspective "
+    "acceleration -2 mu_r pm_ra_cosdec plus tan(dec) pm_ra_cosdec pm_dec from the turning "
+    "of the east and north directions along the path (mu_r = radial velocity / distance; "
+    "in these products every rate in radians per year); null at a celestial pole (at_pole).",
+    "pm_dec_rate_mas_yr2": "Rate of change of pm_dec at the catalogue epoch, mas/yr^2: the "
+    "perspective acceleration -2 mu_r pm_dec minus tan(dec) pm_ra_cosdec^2 from the turning "
+    "of the east and north directions; null at a celestial pole (at_pole).",
     "pm_total_rate_mas_yr2": "Rate of change of the total proper motion, mas/yr^2.",
     "radial_velocity_rate_km_s_yr": "Rate of change of the radial velocity, v_t^2/d, km/s per "
     "Julian year.",

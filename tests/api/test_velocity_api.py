@@ -709,3 +709,42 @@ def test_a_star_without_a_distance_has_its_nulls_named(client, parallax, flag):
     meaning = body["flag_meanings"][flag]
     assert "rates" in meaning and "closest approach" in meaning
     assert "radial velocity are given" in meaning
+
+
+def test_rates_are_derivatives_of_the_propagation_answer(client):
+    # The rates answered are the derivatives at the catalogue epoch of what POST
+    # /v1/propagation answers (Hipparcos Catalogue, ESA 1997, Vol. 1, section 1.5.5
+    # straight-line model): central differences over -+0.5 yr. At radial velocity 0 there is
+    # no perspective acceleration (-2 mu_r mu, Hipparcos Vol. 1 section 1.2.8), yet the
+    # component rates are not zero: the tan(dec) terms of the turning east and north
+    # directions. The description called pm_ra_cosdec_rate_mas_yr2 the perspective
+    # acceleration. Tolerances: 1e-9 mas/yr^2 for the proper-motion rates (the differences'
+    # truncation error is about 1e-12 here), 1e-12 km/s/yr for the radial-velocity rate.
+    stars = [dict(STAR, dec_deg=60.0, pm_ra_cosdec_mas_yr=900.0, pm_dec_mas_yr=-700.0,
+                  parallax_mas=150.0, radial_velocity_km_s=rv) for rv in (0.0, -80.0)]  # fmt: skip
+    got = post(client, {"stars": stars, "catalogue_epoch": "J2016.0"}).json["stars"]
+    h = 0.5  # yr
+    prop = client.post(
+        "/v1/propagation",
+        json={"stars": stars, "catalogue_epoch": "J2016.0",
+              "target_epochs": [2016.0 - h, 2016.0 + h]},
+    ).json["stars"]  # fmt: skip
+    for g, p in zip(got, prop, strict=True):
+        before, after = p["at_epochs"]
+
+        def rate(name, after=after, before=before):
+            return (after[name] - before[name]) / (2.0 * h)
+
+        def total(x):
+            return math.hypot(x["pm_ra_cosdec_mas_yr"], x["pm_dec_mas_yr"])
+
+        assert abs(g["pm_ra_cosdec_rate_mas_yr2"] - rate("pm_ra_cosdec_mas_yr")) < 1e-9
+        assert abs(g["pm_dec_rate_mas_yr2"] - rate("pm_dec_mas_yr")) < 1e-9
+        assert abs(g["pm_total_rate_mas_yr2"] - (total(after) - total(before)) / (2 * h)) < 1e-9
+        assert abs(g["radial_velocity_rate_km_s_yr"] - rate("radial_velocity_km_s")) < 1e-12
+    assert abs(got[0]["pm_ra_cosdec_rate_mas_yr2"]) > 1e-6  # the tan(dec) term alone
+    assert abs(got[0]["pm_total_rate_mas_yr2"]) < 1e-15  # no perspective acceleration
+    fields = client.get("/openapi.json").json["components"]["schemas"]["VelocityResult"]
+    for name in ("pm_ra_cosdec_rate_mas_yr2", "pm_dec_rate_mas_yr2"):
+        text = fields["properties"][name]["description"]
+        assert "tan(dec)" in text and "perspective acceleration" in text
