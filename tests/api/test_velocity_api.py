@@ -529,9 +529,9 @@ def test_parallax_too_small_for_a_distance_is_flagged(client, parallax):
     """1000/parallax overflows below about 5.6e-306 mas: the distance-dependent outputs are
     null, and the star says why (the forward answer had no flag for a star without proper
     motion: inf * 0 made its velocities unknown unsaid). The inverse keeps the proper
-    motions, which are proportional to the parallax: mu = v_t parallax / A (Johnson &
-    Soderblom 1987, eq. 1, A = 4.740470446 km/s per au/yr), checked by scaling the answer
-    for a parallax of 1 mas."""
+    motions, which are proportional to the parallax: mu = v_t parallax / A (A = 1 au per
+    Julian year, 4.7404705 km/s from the IAU 2012 Resolution B2 au), checked by scaling the
+    answer for a parallax of 1 mas."""
     star = {"ra_deg": 10.0, "dec_deg": 20.0, "parallax_mas": parallax, "pm_ra_cosdec_mas_yr": 0.0,
             "pm_dec_mas_yr": 0.0, "radial_velocity_km_s": 0.0}  # fmt: skip
     got = client.post(URL, json={"stars": [star]}).json["stars"][0]
