@@ -1194,7 +1194,9 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     # Radial proper motion mu_r = v_rad / d, per year (Hipparcos Vol. 1 section 1.2.8 gives it
     # in mas/yr as v_rad * parallax / A).
     mu_r_per_yr = rv / (k * MAS_PER_RAD)
-    minus_two_mu_r = -2.0 * mu_r_per_yr
+    # -2 mu_r, and 0 rather than -0.0 where v_r = 0 (+ 0.0 turns -0.0 into 0): the rates
+    # and the closest-approach time below are then 0, not -0.0 ("just past" to a reader).
+    minus_two_mu_r = -2.0 * mu_r_per_yr + 0.0
     with np.errstate(divide="ignore", invalid="ignore"):
         # At a celestial pole the component rates are undefined: null (flag AT_POLE).
         tan_dec_per_rad = np.where(at_pole, np.nan, sd / (cd * MAS_PER_RAD))
@@ -1204,7 +1206,7 @@ def _velocity_block(args, low_snr_threshold, out, sl, full=True):
     d_km = distance * PC_KM
     out["radial_velocity_rate_km_s_yr"][sl] = vt2 * (JULIAN_YEAR_S / d_km)
     with np.errstate(divide="ignore", invalid="ignore"):
-        t_yr = (-d_km / JULIAN_YEAR_S) * rv / speed2
+        t_yr = (d_km / JULIAN_YEAR_S) * (-rv + 0.0) / speed2
         out["closest_approach_distance_pc"][sl] = distance * vt / speed
         # At closest approach d = d0 v_t / v and the whole speed v is transverse, so the
         # proper motion v / (k d) = mu0 (v / v_t)^2 and the parallax plx0 v / v_t. A star

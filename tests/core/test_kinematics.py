@@ -1263,3 +1263,20 @@ def test_distance_error_propagates_like_the_equivalent_parallax_error():
     )  # fmt: skip
     expected = constants.AU_PER_JULIAN_YEAR_KM_S * np.hypot(80.0, -25.0) * 8.0 / 1000.0
     assert abs(mc.transverse_velocity_error_km_s / expected - 1) < 0.01
+
+
+def test_no_negative_zero_for_a_star_without_radial_motion():
+    # A radial velocity of exactly 0 makes the radial proper motion 0: the closest approach
+    # is now (t = -d v_r / v^2, Note 7), the total proper motion does not change, and on the
+    # equator with no motion in dec the dec rate is 0 (tan 0 = 0): 0, not -0.0 (which a
+    # reader takes for "just past").
+    r = space_velocity(30.0, 0.0, 100.0, 50.0, 0.0, 0.0, epoch_jyear=2016.0)
+    for name in (
+        "closest_approach_time_yr",
+        "pm_total_rate_mas_yr2",
+        "pm_dec_rate_mas_yr2",
+        "pm_ra_cosdec_rate_mas_yr2",
+    ):
+        value = float(np.asarray(getattr(r, name)).ravel()[0])
+        assert value == 0.0 and np.copysign(1.0, value) == 1.0, (name, value)
+    assert float(np.asarray(r.closest_approach_epoch_jyear).ravel()[0]) == 2016.0
