@@ -79,7 +79,8 @@ PLACE_FIELDS = {
     "parallactic_angle_deg": "deg (IAU SOFA hd2pa convention)",
     "airmass": "dimensionless, Young (1994); null below the geometric (unrefracted) horizon",
     "refraction_arcsec": "arcsec, unrefracted minus observed zenith distance",
-    "sun_separation_deg": "deg, target to the Sun's centre (advisory)",
+    "sun_separation_deg": "deg, between the observed (refracted) places of the target and "
+    "the Sun's centre, as their altitudes and azimuths give it (advisory)",
     "astrometric_ra_deg": "deg, geocentric astrometric place (ICRS)",
     "astrometric_dec_deg": "deg, geocentric astrometric place (ICRS)",
     "apparent_ra_deg": "deg, geocentric apparent, true equator and equinox of date",

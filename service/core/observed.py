@@ -1296,7 +1296,7 @@ class _Instant:
     refa: np.ndarray
     refb: np.ndarray
     eral: np.ndarray
-    sun_aet: list
+    sun_obs: list
     sun_az: np.ndarray
     sun_zd: np.ndarray
     m_eh: list = None
@@ -1326,23 +1326,38 @@ def _instant_quantities(astrom) -> _Instant:
     f, zaeo, r0, _ = _refract(sun_aet, astrom["refa"], astrom["refb"])
     sun_az = np.mod(np.arctan2(sun_aet[1], -sun_aet[0]), TWO_PI)
     sun_zd = np.arctan2(np.abs(f) * r0, zaeo)
+    # The Sun's observed (refracted) unit vector, as the targets' (:func:`_observed_unit`).
+    sun_obs = _observed_unit(sun_aet, f, zaeo, r0)
     em, bm1 = astrom["em"], astrom["bm1"]
     return _Instant(
         eb, eh, v, em, bm1, m, astrom["sphi"], astrom["cphi"],
-        astrom["refa"], astrom["refb"], astrom["eral"], sun_aet, sun_az, sun_zd,
+        astrom["refa"], astrom["refb"], astrom["eral"], sun_obs, sun_az, sun_zd,
         m_eh=_rot(m, eh), m_v=_rot(m, v), ehv=eh[0] * v[0] + eh[1] * v[1] + eh[2] * v[2],
         srs_over_em=SCHWARZSCHILD_RADIUS_SUN_AU / em, dlim=1e-6 / np.maximum(em * em, 1.0),
         k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em, inv_1_bm1=1.0 / (1.0 + bm1),
-        **_one_instant_matrices(m, eb, eh, v, sun_aet),
+        **_one_instant_matrices(m, eb, eh, v, [sun_obs[0], sun_obs[1], 0.0]),
     )  # fmt: skip
+
+
+def _observed_unit(aet, f, zaeo, r0):
+    """The observed (refracted) unit vector from SOFA atioq's quantities (:func:`_refract`).
+
+    atioq's observed vector is (f x, f y, zaeo) for the unrefracted unit vector (x, y, z);
+    it is not of unit length where the model is held (below about 2.9 deg altitude). With
+    |f|, as the zenith distance is taken, the azimuth is the unrefracted one.
+    """
+    af = np.abs(f)
+    inv = 1.0 / np.hypot(af * r0, zaeo)
+    return [aet[0] * af * inv, aet[1] * af * inv, zaeo * inv]
 
 
 def _one_instant_matrices(m, eb, eh, v, sun=None):
     """Matrices for :func:`_apparent_into` (only for a single instant).
 
     ``a2`` (2, 3): rows e and v, giving u.e and u.v; ``b5`` (3, 5): [M | M e | M v], so
-    that M (s u + t e + k v) = b5 @ (s u, t, k); with ``sun`` (the Sun's unit vector in the
-    frame of M) a fourth row sun.b5 gives the dot product with the Sun's direction as well.
+    that M (s u + t e + k v) = b5 @ (s u, t, k); with ``sun`` (a vector in the frame of M:
+    the horizontal part of the Sun's observed unit vector) a fourth row sun.b5 gives the
+    dot product with it as well.
     """
     if np.ndim(m) != 2:
         return {}
@@ -1449,10 +1464,12 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
     else:
         ha = dec = ra = pa = np.nan
     airmass = airmass_young1994(zaet)
-    # Sun separation from the chord between the unrefracted unit vectors: 2 asin(|a-b|/2),
-    # |a-b|^2 = 2 - 2 a.b (precision about 1e-8 rad near zero separation, ample here).
-    s = ins.sun_aet
-    half_chord2 = 0.5 - 0.5 * (xaet * s[0] + yaet * s[1] + zaet * s[2])
+    # Sun separation between the observed (refracted) places of the target and the Sun,
+    # from the chord between their unit vectors: 2 asin(|a-b|/2), |a-b|^2 = 2 - 2 a.b
+    # (precision about 1e-8 rad near zero separation, ample here).
+    s = ins.sun_obs
+    o = _observed_unit(aet, f, zaeo, r0)
+    half_chord2 = 0.5 - 0.5 * (o[0] * s[0] + o[1] * s[1] + o[2] * s[2])
     sep = np.multiply(
         np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))),
         2.0 * DEG_PER_RAD,
@@ -1655,7 +1672,8 @@ def _apparent_into(ins, ws: _Scratch, with_sun=False):
     From the unnormalised direction u in ``ws.p``, the unit vector of the aberrated
     direction rotated by the instant's matrix M (to the azimuth/elevation frame for the
     observer, the bias-precession-nutation for the geocentre) goes into ``ws.r[:3]``, and
-    with ``with_sun`` its dot product with the Sun's direction into ``ws.r[3]``. The
+    with ``with_sun`` its dot product with the instant's Sun vector (the horizontal part of
+    the Sun's observed unit vector, :func:`_one_instant_matrices`) into ``ws.r[3]``. The
     arithmetic of :func:`_apparent_aet`: with q = u/|u|, q' = (1 - w q.e) q + w e (ldsun)
     and p = k1 q' + k2 v (ab), M p = M (k1 (1 - w q.e) q + k1 w e + k2 v), one product of
     the instant's ``b5`` with the stacked coefficients (:func:`_one_instant_matrices`).
@@ -1843,8 +1861,19 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     below = np.less(z, 0.0, out=ws.mask[1])
     np.putmask(airmass, below, np.nan)
 
-    # Sun separation from the chord between the unrefracted unit vectors, as :func:`_chain`.
-    hc = np.multiply(sun_dot, 0.5, out=tmp)
+    # Sun separation between the observed places, as :func:`_chain`: the observed unit
+    # vector is (|f| x, |f| y, zaeo) / L, L = hypot(|f| r0, zaeo); ``sun_dot`` holds
+    # x sx + y sy for the Sun's observed unit vector s (the row of ``b5``).
+    af, length = ws.w, ws.g
+    np.absolute(f, out=af)
+    np.multiply(af, r0, out=length)
+    length *= length
+    length += np.multiply(zaeo, zaeo, out=tmp)
+    np.sqrt(length, out=length)
+    np.multiply(af, sun_dot, out=tmp)
+    tmp += np.multiply(zaeo, ins.sun_obs[2], out=tmp2)
+    tmp /= length  # the dot product of the observed unit vectors
+    hc = np.multiply(tmp, 0.5, out=tmp)
     np.subtract(0.5, hc, out=hc)
     np.maximum(hc, 0.0, out=hc)
     np.sqrt(hc, out=hc)
@@ -2094,7 +2123,9 @@ class ObservedPlaces:
     sun_altitude_deg, sun_azimuth_deg : ndarray
         Observed place of the Sun's centre (per instant, broadcast).
     sun_separation_deg : ndarray
-        Angle between the target and the Sun, topocentric, degrees.
+        Angle between the observed (refracted) places of the target and the Sun's centre,
+        topocentric, degrees: the telescope points at the one, sunlight arrives from the
+        other (with refraction off, the unrefracted places).
     flags : ndarray of uint32
         :class:`ObservedFlag` bits.
     epoch_tt_jyear : ndarray

@@ -1093,3 +1093,61 @@ def test_refraction_where_the_model_is_held_is_the_change_it_makes():
     assert np.all(r > 0.0) and np.all(r < held + 1.0) and np.all(np.diff(r) >= 0.0)
     assert r[0] < 0.45 * held  # 45 deg below the horizon
     assert np.all(res.flags[below] & int(O.ObservedFlag.REFRACTION_UNCERTAIN))
+
+
+def test_sun_separation_is_between_the_observed_places_as_astropy(astropy_with_our_table):
+    # The telescope points at the target's observed place and sunlight arrives from the
+    # Sun's observed place, both refracted: the answer gives both places refracted, and its
+    # Sun separation is the angle between them. Reference: astropy get_sun and the targets
+    # in AltAz with the same air and Earth-orientation table, run here (refracted by SOFA
+    # refco/atioq as ours); the targets are put at observed places around the Sun with
+    # pyerfa atoc13. Tolerance 0.01 arcsec (measured 0.00006). It was the angle between
+    # the unrefracted places: 30.135 deg for a target 30.000 deg above the setting Sun, not
+    # flagged within a 30 deg avoidance angle.
+    from astropy import units as u
+    from astropy.coordinates import AltAz, EarthLocation, SkyCoord, get_sun
+    from astropy.time import Time
+
+    lat, lon, h = 38.4127, -7.6543, 1460.0
+    site = O.make_site(lat, lon, h)
+    atm = O.make_atmosphere(850.0, 5.0, 0.5, 0.55)
+    jd1, jd2 = erfa.dtf2d("UTC", 2026, 3, 20, 18, 36, 0.0)
+    eop = O.earth_orientation_at(jd1, jd2)
+    dut, xp, yp = (float(a) for a in (eop.ut1_utc_s, eop.pm_x_arcsec, eop.pm_y_arcsec))
+    sun0 = O.observed_places(0.0, 0.0, np.nan, 0.0, 0.0, np.nan, 2026.0, jd1, jd2, site, atm)
+    sun_alt, sun_az = float(sun0.sun_altitude_deg), float(sun0.sun_azimuth_deg)
+    assert 0.0 < sun_alt < 1.0  # the Sun setting, raised about half a degree by the air
+    # Observed places: 29.9 deg straight above the Sun, then around it, one below the horizon.
+    d_alt = np.array([29.9, 20.0, 0.5, -3.0, 10.0, 45.0])
+    d_az = np.array([0.0, 10.0, 30.0, 30.0, -25.0, 120.0])
+    rc, dc = erfa.atoc13(
+        "A", np.radians(sun_az + d_az), np.radians(90.0 - sun_alt - d_alt), jd1, jd2, dut,
+        np.radians(lon), np.radians(lat), h, xp / 206264.80624709636, yp / 206264.80624709636,
+        850.0, 5.0, 0.5, 0.55,
+    )  # fmt: skip
+    ra, dec = np.degrees(rc), np.degrees(dc)
+    t = Time(jd1, jd2, format="jd", scale="utc")
+    frame = AltAz(obstime=t, location=EarthLocation.from_geodetic(lon * u.deg, lat * u.deg,
+                  h * u.m), pressure=850 * u.hPa, temperature=5 * u.deg_C,
+                  relative_humidity=0.5, obswl=0.55 * u.micron)  # fmt: skip
+    sun = get_sun(t).transform_to(frame)
+    theirs = SkyCoord(ra * u.deg, dec * u.deg).transform_to(frame).separation(sun).deg
+    arcsec = 3600.0
+    many = O.observed_places(ra, dec, np.nan, 0.0, 0.0, np.nan, 2026.0, jd1, jd2, site, atm,
+                             sun_avoidance_deg=30.0)  # fmt: skip
+    assert np.max(np.abs(many.sun_separation_deg - theirs)) * arcsec < 0.01
+    for k in range(ra.size):  # one star: the scalar path; one star at two instants: the third
+        one = O.observed_places(ra[k], dec[k], np.nan, 0.0, 0.0, np.nan, 2026.0, jd1, jd2,
+                                site, atm)  # fmt: skip
+        assert abs(float(one.sun_separation_deg) - theirs[k]) * arcsec < 0.01
+        two = O.observed_places(ra[k], dec[k], np.nan, 0.0, 0.0, np.nan, 2026.0, jd1,
+                                np.array([jd2, jd2]), site, atm)  # fmt: skip
+        assert np.max(np.abs(two.sun_separation_deg - theirs[k])) * arcsec < 0.01
+    # The separation of the places given: from the answer's own altitudes and azimuths.
+    alt, az = np.radians(many.altitude_deg), np.radians(many.azimuth_deg)
+    sa, sz = np.radians(sun_alt), np.radians(sun_az)
+    cos_sep = np.sin(alt) * np.sin(sa) + np.cos(alt) * np.cos(sa) * np.cos(az - sz)
+    assert np.max(np.abs(many.sun_separation_deg - np.degrees(np.arccos(cos_sep)))) < 1e-6
+    # 29.9 deg from the Sun as seen: within a 30 deg avoidance angle.
+    assert abs(many.sun_separation_deg[0] - 29.9) * arcsec < 0.01
+    assert many.flags[0] & O.ObservedFlag.WITHIN_SUN_AVOIDANCE
