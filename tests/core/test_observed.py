@@ -1151,3 +1151,38 @@ def test_sun_separation_is_between_the_observed_places_as_astropy(astropy_with_o
     # 29.9 deg from the Sun as seen: within a 30 deg avoidance angle.
     assert abs(many.sun_separation_deg[0] - 29.9) * arcsec < 0.01
     assert many.flags[0] & O.ObservedFlag.WITHIN_SUN_AVOIDANCE
+
+
+def test_refraction_is_the_change_of_zenith_distance_above_the_held_model_too():
+    # refraction_arcsec is unrefracted minus observed zenith distance. Above about 2.9 deg,
+    # where SOFA atioq does not hold its model, the place is turned by atan2(dl, cos(dl))
+    # with cos(dl) taken as 1 - dl^2/2 (atioq), not by the model's angle dl: the two differ
+    # by about dl^3/6, 1.2 mas at 3.2 deg altitude at sea level (1.7 mas for radio), more
+    # than the 1e-3 arcsec of the test where the model is held. Reference: pyerfa atco13
+    # without and with air, run here; tolerance 1e-5 arcsec (measured 1e-10).
+    site = O.make_site(0.0, 0.0, 0.0)
+    jd1, jd2 = erfa.dtf2d("UTC", 2020, 3, 20, 12, 0, 0.0)
+    eop = (0.0, 0.0, 0.0)
+    ra = np.linspace(0.0, 360.0, 1441)[:-1]  # every 0.25 deg: altitudes 0-90 at the equator
+    for wl in (0.55, 1000.0):
+        atm = O.make_atmosphere(1013.25, 10.0, 0.5, wl)
+        zd = {}
+        for p in (1013.25, 0.0):
+            zd[p] = _erfa_without_dubious_year(
+                erfa.atco13, np.radians(ra), 0.0, 0.0, 0.0, 0.0, 0.0, jd1, jd2, 0.0,
+                0.0, 0.0, 0.0, 0.0, 0.0, p, 10.0, 0.5, wl,
+            )[1]  # fmt: skip
+        theirs = (zd[0.0] - zd[1013.25]) * 206264.80624709636  # arcsec
+        res = O.observed_places(ra, 0.0, np.nan, 0.0, 0.0, np.nan, 2000.0, jd1, jd2, site,
+                                atm, eop_values=eop)  # fmt: skip
+        up = res.altitude_deg > 2.9
+        assert np.any(up & (res.altitude_deg < 4.0))
+        assert np.max(np.abs(res.refraction_arcsec - theirs)) < 1e-5
+        for k in np.flatnonzero(up & (res.altitude_deg < 6.0)):  # one star: the scalar path
+            one = O.observed_places(ra[k], 0.0, np.nan, 0.0, 0.0, np.nan, 2000.0, jd1, jd2,
+                                    site, atm, eop_values=eop)  # fmt: skip
+            assert abs(float(one.refraction_arcsec) - theirs[k]) < 1e-5
+        track = O.observed_places(ra[0], 0.0, np.nan, 0.0, 0.0, np.nan, 2000.0, jd1,
+                                  jd2 + np.array([0.0, 0.1, 0.2]), site, atm,
+                                  eop_values=eop)  # fmt: skip
+        assert np.isfinite(track.refraction_arcsec).all()
