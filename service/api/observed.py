@@ -70,13 +70,15 @@ blp = Blueprint(
 
 #: Place quantities per star and instant, with units.
 PLACE_FIELDS = {
-    "azimuth_deg": "deg, north = 0, east = 90",
+    "azimuth_deg": "deg, north = 0, east = 90, 0 to 360",
     "altitude_deg": "deg, observed (refracted)",
     "zenith_distance_deg": "deg, observed (refracted)",
     "hour_angle_deg": "deg, observed, west positive, -180 to 180",
     "observed_dec_deg": "deg, observed declination",
     "observed_ra_cio_deg": "deg, observed right ascension referred to the CIO",
-    "parallactic_angle_deg": "deg (IAU SOFA hd2pa convention)",
+    "parallactic_angle_deg": "deg, position angle of the zenith at the target, from north "
+    "(toward the celestial pole) through east, -180 to 180: positive west of the meridian, "
+    "negative east (IAU SOFA hd2pa, of the observed hour angle and declination)",
     "airmass": "dimensionless, Young (1994); null below the geometric (unrefracted) horizon",
     "refraction_arcsec": "arcsec, unrefracted minus observed zenith distance",
     "sun_separation_deg": "deg, between the observed (refracted) places of the target and "

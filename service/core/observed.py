@@ -2134,7 +2134,9 @@ class ObservedPlaces:
     hour_angle_deg, observed_dec_deg, observed_ra_cio_deg : ndarray
         Observed hour angle (west positive, [-180, 180)), declination and CIO-based RA.
     parallactic_angle_deg : ndarray
-        Parallactic angle of the observed place (SOFA hd2pa convention).
+        Parallactic angle of the observed place (SOFA hd2pa): the position angle of the
+        zenith at the target, from north through east, in [-180, 180]; positive west of
+        the meridian.
     airmass : ndarray
         Young (1994) airmass from the unrefracted zenith distance (NaN below the horizon).
     refraction_arcsec : ndarray

@@ -860,3 +860,58 @@ def test_frames_ecliptic_of_date_is_a_fixed_frame_as_stated(client):
     e_lat = np.array([-np.sin(lat) * np.cos(lon), -np.sin(lat) * np.sin(lon), np.cos(lat)])
     assert got["pm_ra_cosdec_mas_yr"] == pytest.approx(w @ e_lon, abs=1e-6)
     assert got["pm_dec_mas_yr"] == pytest.approx(w @ e_lat, abs=1e-6)
+
+
+def test_angle_conventions_are_stated_and_the_numbers_follow_them(client, observed_example):
+    # What a telescope controller reads from the units: azimuth from north through east,
+    # hour angle west positive, parallactic angle the position angle of the zenith at the
+    # target from north through east (positive west of the meridian). References, run here:
+    # pyerfa atco13 (azimuth, hour angle; refraction off, the answer's own Earth
+    # orientation) and pyerfa pas, the position angle of the zenith (hour angle 0,
+    # declination = latitude) seen from the answer's hour angle and declination; 1e-9 deg.
+    ra = np.array([10.0, 100.0, 190.0, 280.0])
+    lat, lon, h = -33.5, 179.99, 700.0
+    stars = [
+        {"ra_deg": a, "dec_deg": d, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
+        for a in ra
+        for d in (-80.0, -30.0, 20.0)
+    ]
+    body = dict(
+        observed_example,
+        stars=stars,
+        catalogue_epoch="J2000.0",
+        instants=["2026-01-01T00:00:00Z"],
+        site={"latitude_deg": lat, "longitude_deg": lon, "height_m": h},
+        atmosphere={"pressure_hpa": 0.0},
+    )
+    r = client.post(OBS, json=body)
+    assert r.status_code == 200, r.get_data(as_text=True)
+    units = r.json["units"]
+    assert "north = 0, east = 90" in units["azimuth_deg"]
+    assert "west positive" in units["hour_angle_deg"]
+    pa_text = units["parallactic_angle_deg"]
+    assert "zenith" in pa_text and "north" in pa_text and "through east" in pa_text
+    assert "positive west of the meridian" in pa_text
+    eo = r.json["instants"][0]["earth_orientation"]
+    u1, u2 = erfa.dtf2d("UTC", 2026, 1, 1, 0, 0, 0.0)
+    arcsec = np.pi / 648000.0
+    signs = set()
+    for s, star in zip(stars, r.json["stars"], strict=True):
+        at = star["at_instants"][0]
+        aob, _, hob, dob, _, _ = erfa.atco13(
+            np.radians(s["ra_deg"]), np.radians(s["dec_deg"]), 0.0, 0.0, 0.0, 0.0, u1, u2,
+            eo["ut1_utc_s"], np.radians(lon), np.radians(lat), h, eo["pm_x_arcsec"] * arcsec,
+            eo["pm_y_arcsec"] * arcsec, 0.0, 0.0, 0.0, 0.55,
+        )  # fmt: skip
+        ha, dec = np.radians(at["hour_angle_deg"]), np.radians(at["observed_dec_deg"])
+        zenith_pa = np.degrees(erfa.pas(-ha, dec, 0.0, np.radians(lat)))
+        for ours, theirs in (
+            (at["azimuth_deg"], np.degrees(aob)),
+            (at["hour_angle_deg"], np.degrees(hob)),
+            (at["parallactic_angle_deg"], zenith_pa),
+        ):
+            assert abs((ours - theirs + 180.0) % 360.0 - 180.0) < 1e-9
+        assert -180.0 <= at["parallactic_angle_deg"] <= 180.0
+        assert 0.0 <= at["azimuth_deg"] < 360.0 and -180.0 <= at["hour_angle_deg"] <= 180.0
+        signs.add((np.sign(at["hour_angle_deg"]), np.sign(at["parallactic_angle_deg"])))
+    assert signs == {(1.0, 1.0), (-1.0, -1.0)}  # west: positive; east: negative
