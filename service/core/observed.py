@@ -193,7 +193,7 @@ class ObservedFlag(enum.IntFlag):
     #: Refraction on and the observed altitude below REFRACTION_UNCERTAIN_BELOW_DEG, where
     #: the refraction model is good only to arcminutes (SOFA atioq, Note 2); below the
     #: horizon, where no refraction is seen, the model still raises the place by up to its
-    #: value held at 2.9 deg altitude (:func:`_refraction_where_held`).
+    #: value held at 2.9 deg altitude (:func:`_refraction_change`).
     REFRACTION_UNCERTAIN = 2048
     #: Given pressure outside PRESSURE_PLAUSIBLE_FRACTION of the standard atmosphere's at
     #: the site height (probably a unit mistake); used as given (:func:`pressure_warning`).
@@ -1268,17 +1268,22 @@ def _refract(aet, refa, refb):
     return f, zaeo, r0, dl
 
 
-def _refraction_where_held(refraction_arcsec, x, y, z, zd_deg):
-    """Where atioq holds its model (z below ATIOQ_SELMIN: altitude below about 2.9 deg, and
-    below the horizon), put the change of zenith distance it makes in place of the model's
-    angle: there the two differ (by 0.3 arcsec just above the horizon, by half 45 deg below
-    it), and the answer's refraction is unrefracted minus observed zenith distance."""
-    shape = refraction_arcsec.shape
-    held = np.broadcast_to(np.less(z, ATIOQ_SELMIN), shape)
-    if held.any():
-        xh, yh, zh, zdh = (np.broadcast_to(a, shape)[held] for a in (x, y, z, zd_deg))
-        zd0 = np.arctan2(np.sqrt(xh * xh + yh * yh), zh) * DEG_PER_RAD
-        refraction_arcsec[held] = (zd0 - zdh) * 3600.0
+def _refraction_change(r0, z, f, zaeo):
+    """Refraction as the answers give it, unrefracted minus observed zenith distance, rad.
+
+    From its sine. The unrefracted unit vector has sin zd0 = r0 and cos zd0 = z; SOFA atioq's
+    observed direction is (|f| r0, zaeo) / L in the same vertical plane, L = hypot(|f| r0,
+    zaeo) (:func:`_refract`). So sin(zd0 - zd) = r0 (zaeo - z |f|) / L = s, and
+    asin s = s (1 + s^2/6 + 3 s^4/40) to within 5 s^7/112: below 2e-16 rad for the largest
+    refraction the accepted air gives (about 0.0085 rad, 1200 hPa at -100 C). It holds where
+    atioq keeps its model at the 2.9 deg value (lower, and below the horizon, where the
+    observed vector is not of unit length and the change is not the model's angle) as
+    everywhere else, and needs no trigonometric function.
+    """
+    af = np.abs(f)
+    sin_change = r0 * (zaeo - z * af) / np.hypot(af * r0, zaeo)
+    s2 = sin_change * sin_change
+    return sin_change * (1.0 + s2 * (1.0 / 6.0 + s2 * (3.0 / 40.0)))
 
 
 @dataclass
@@ -1337,19 +1342,6 @@ def _instant_quantities(astrom) -> _Instant:
         k2_const=1.0 + SCHWARZSCHILD_RADIUS_SUN_AU / em, inv_1_bm1=1.0 / (1.0 + bm1),
         **_one_instant_matrices(m, eb, eh, v, [sun_obs[0], sun_obs[1], 0.0]),
     )  # fmt: skip
-
-
-def _refraction_turn(dl):
-    """The angle, radians, by which SOFA atioq turns a place for its model angle ``dl``.
-
-    Where atioq does not hold its model it rotates the unrefracted unit vector by
-    (cos, sin) = (1 - dl^2/2, dl), scaled: by atan2(dl, 1 - dl^2/2) = dl + dl^3/6 - dl^5/20
-    + ..., the change of zenith distance. dl (1 + dl^2/6) is that to within dl^5/20: 2e-14
-    rad at 2.9 deg altitude in standard air at sea level (dl 0.0032 rad), 2e-12 rad (0.4
-    microarcsecond) in the densest air accepted (1200 hPa, -100 C: dl 0.0084 rad). The
-    dl^3/6 term is 1.2 mas at 3.2 deg altitude at sea level, which dl alone left out.
-    """
-    return dl * (1.0 + dl * dl * (1.0 / 6.0))
 
 
 def _observed_unit(aet, f, zaeo, r0):
@@ -1449,7 +1441,7 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
     else:
         az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
         az = az - 360.0 if az >= 360.0 else az
-    f, zaeo, r0, dl = _refract(aet, ins.refa, ins.refb)
+    f, zaeo, r0, _ = _refract(aet, ins.refa, ins.refb)
     zd = np.arctan2(np.abs(f) * r0, zaeo, out=dst(1) if vector else None)
     zd *= DEG_PER_RAD
     alt = np.subtract(90.0, zd, out=dst(2) if vector else None)
@@ -1488,13 +1480,10 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         2.0 * DEG_PER_RAD,
         out=dst(9) if vector else None,
     )
-    # The change of zenith distance (:func:`_refraction_turn`); where atioq holds its model,
-    # replaced below.
-    refraction = np.multiply(_refraction_turn(dl), _ARCSEC_PER_RAD, out=dst(8) if vector else None)
-    if vector:
-        _refraction_where_held(refraction, xaet, yaet, zaet, zd)
-    elif zaet < ATIOQ_SELMIN:
-        refraction = (math.atan2(math.hypot(xaet, yaet), zaet) * DEG_PER_RAD - zd) * 3600.0
+    # The change of zenith distance (:func:`_refraction_change`).
+    refraction = np.multiply(
+        _refraction_change(r0, zaet, f, zaeo), _ARCSEC_PER_RAD, out=dst(8) if vector else None
+    )
     horizon_limit, avoidance = limits
     flags = _any_bits(
         (np.isnan(px), _F_MISSING_PARALLAX),
@@ -1894,12 +1883,19 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     np.sqrt(hc, out=hc)
     sep = np.arcsin(hc, out=out[9])
     sep *= 2.0 * DEG_PER_RAD
-    # The change of zenith distance, dl (1 + dl^2/6) (:func:`_refraction_turn`).
-    refraction = np.multiply(dl, dl, out=out[8])
-    refraction *= _ARCSEC_PER_RAD / 6.0
-    refraction += _ARCSEC_PER_RAD
-    refraction *= dl
-    _refraction_where_held(out[8], x, y, z, zd)
+    # The change of zenith distance, as :func:`_refraction_change`: s = r0 (zaeo - z |f|) / L
+    # (``af`` |f| and ``length`` L from above), asin s = s (1 + s^2/6 + 3 s^4/40).
+    refraction = np.multiply(z, af, out=out[8])
+    np.subtract(zaeo, refraction, out=refraction)
+    refraction *= r0
+    refraction /= length
+    s2 = np.multiply(refraction, refraction, out=tmp)
+    np.multiply(s2, 3.0 / 40.0, out=tmp2)
+    tmp2 += 1.0 / 6.0
+    tmp2 *= s2
+    tmp2 += 1.0
+    refraction *= tmp2
+    refraction *= _ARCSEC_PER_RAD
 
     # Flags: bits 0-7 gathered in a uint8 row, bits 10 and 11 written into the second byte.
     horizon_limit, avoidance = limits
@@ -2142,7 +2138,7 @@ class ObservedPlaces:
     refraction_arcsec : ndarray
         Refraction applied (unrefracted minus observed zenith distance), arcsec: SOFA
         atioq turns the place by atan2(dl, 1 - dl^2/2) for its model angle dl, and by less
-        where it holds the model (:func:`_refraction_where_held`).
+        where it holds the model (:func:`_refraction_change`).
     sun_altitude_deg, sun_azimuth_deg : ndarray
         Observed place of the Sun's centre (per instant, broadcast).
     sun_separation_deg : ndarray
