@@ -21,3 +21,15 @@ def test_filter_selects_by_topic():
 def test_unmatched_filter_is_an_error(capsys):
     assert run.main(["no-such-topic"]) == 1
     assert "no benchmark matches" in capsys.readouterr().err
+
+
+def test_machine_line_names_the_vector_routines():
+    # numpy's record of the processor's features (numpy.show_runtime() prints the same):
+    # whether AVX-512 is there decides much of the ratios against ERFA.
+    import numpy as np
+    from numpy._core._multiarray_umath import __cpu_features__ as features
+
+    line = run.machine_line()
+    assert line.startswith("machine: ") and f"numpy {np.__version__}" in line
+    if "AVX512F" in features:
+        assert f"AVX512F {'yes' if features['AVX512F'] else 'no'}" in line
