@@ -1268,7 +1268,7 @@ def _refract(aet, refa, refb):
     return f, zaeo, r0, dl
 
 
-def _refraction_change(r0, z, f, zaeo):
+def _refraction_change(r0, z, af, zaeo, inv_length):
     """Refraction as the answers give it, unrefracted minus observed zenith distance, rad.
 
     From its sine. The unrefracted unit vector has sin zd0 = r0 and cos zd0 = z; SOFA atioq's
@@ -1278,10 +1278,10 @@ def _refraction_change(r0, z, f, zaeo):
     refraction the accepted air gives (about 0.0085 rad, 1200 hPa at -100 C). It holds where
     atioq keeps its model at the 2.9 deg value (lower, and below the horizon, where the
     observed vector is not of unit length and the change is not the model's angle) as
-    everywhere else, and needs no trigonometric function.
+    everywhere else, and needs no trigonometric function. ``af`` (|f|) and ``inv_length``
+    (1/L) are those of :func:`_observed_scale`.
     """
-    af = np.abs(f)
-    sin_change = r0 * (zaeo - z * af) / np.hypot(af * r0, zaeo)
+    sin_change = r0 * (zaeo - z * af) * inv_length
     s2 = sin_change * sin_change
     return sin_change * (1.0 + s2 * (1.0 / 6.0 + s2 * (3.0 / 40.0)))
 
@@ -1330,9 +1330,10 @@ def _instant_quantities(astrom) -> _Instant:
     sun_aet = _rot(m, sun)
     f, zaeo, r0, _ = _refract(sun_aet, astrom["refa"], astrom["refb"])
     sun_az = np.mod(np.arctan2(sun_aet[1], -sun_aet[0]), TWO_PI)
-    sun_zd = np.arctan2(np.abs(f) * r0, zaeo)
+    af, inv_length = _observed_scale(f, zaeo, r0)
+    sun_zd = np.arctan2(af * r0, zaeo)
     # The Sun's observed (refracted) unit vector, as the targets' (:func:`_observed_unit`).
-    sun_obs = _observed_unit(sun_aet, f, zaeo, r0)
+    sun_obs = _observed_unit(sun_aet, af, zaeo, inv_length)
     em, bm1 = astrom["em"], astrom["bm1"]
     return _Instant(
         eb, eh, v, em, bm1, m, astrom["sphi"], astrom["cphi"],
@@ -1344,16 +1345,21 @@ def _instant_quantities(astrom) -> _Instant:
     )  # fmt: skip
 
 
-def _observed_unit(aet, f, zaeo, r0):
-    """The observed (refracted) unit vector from SOFA atioq's quantities (:func:`_refract`).
+def _observed_scale(f, zaeo, r0):
+    """|f| and 1/L, L = hypot(|f| r0, zaeo): the length of SOFA atioq's observed vector.
 
-    atioq's observed vector is (f x, f y, zaeo) for the unrefracted unit vector (x, y, z);
-    it is not of unit length where the model is held (below about 2.9 deg altitude). With
-    |f|, as the zenith distance is taken, the azimuth is the unrefracted one.
+    atioq's observed vector is (f x, f y, zaeo) for the unrefracted unit vector (x, y, z)
+    (:func:`_refract`); it is not of unit length where the model is held (below about 2.9
+    deg altitude). With |f|, as the zenith distance is taken, the azimuth is the
+    unrefracted one.
     """
     af = np.abs(f)
-    inv = 1.0 / np.hypot(af * r0, zaeo)
-    return [aet[0] * af * inv, aet[1] * af * inv, zaeo * inv]
+    return af, 1.0 / np.hypot(af * r0, zaeo)
+
+
+def _observed_unit(aet, af, zaeo, inv_length):
+    """The observed (refracted) unit vector, from :func:`_observed_scale`'s |f| and 1/L."""
+    return [aet[0] * af * inv_length, aet[1] * af * inv_length, zaeo * inv_length]
 
 
 def _one_instant_matrices(m, eb, eh, v, sun=None):
@@ -1442,7 +1448,8 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
         az = np.arctan2(-yaet, xaet) * DEG_PER_RAD + 180.0
         az = az - 360.0 if az >= 360.0 else az
     f, zaeo, r0, _ = _refract(aet, ins.refa, ins.refb)
-    zd = np.arctan2(np.abs(f) * r0, zaeo, out=dst(1) if vector else None)
+    af, inv_length = _observed_scale(f, zaeo, r0)
+    zd = np.arctan2(af * r0, zaeo, out=dst(1) if vector else None)
     zd *= DEG_PER_RAD
     alt = np.subtract(90.0, zd, out=dst(2) if vector else None)
     if detail:
@@ -1473,7 +1480,7 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
     # from the chord between their unit vectors: 2 asin(|a-b|/2), |a-b|^2 = 2 - 2 a.b
     # (precision about 1e-8 rad near zero separation, ample here).
     s = ins.sun_obs
-    o = _observed_unit(aet, f, zaeo, r0)
+    o = _observed_unit(aet, af, zaeo, inv_length)
     half_chord2 = 0.5 - 0.5 * (o[0] * s[0] + o[1] * s[1] + o[2] * s[2])
     sep = np.multiply(
         np.arcsin(np.sqrt(np.maximum(half_chord2, 0.0))),
@@ -1482,7 +1489,9 @@ def _chain(ra_deg, dec_deg, px, pmra, pmdec, rv, dt, ins: _Instant, limits, deta
     )
     # The change of zenith distance (:func:`_refraction_change`).
     refraction = np.multiply(
-        _refraction_change(r0, zaet, f, zaeo), _ARCSEC_PER_RAD, out=dst(8) if vector else None
+        _refraction_change(r0, zaet, af, zaeo, inv_length),
+        _ARCSEC_PER_RAD,
+        out=dst(8) if vector else None,
     )
     horizon_limit, avoidance = limits
     flags = _any_bits(
