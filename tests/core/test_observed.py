@@ -1209,3 +1209,23 @@ def test_atan2_by_quotient_equals_numpy_arctan2(n):
     assert np.max(np.abs(out - ref)) <= 4.5e-16
     zero = ref == 0.0
     np.testing.assert_array_equal(np.signbit(out[zero]), np.signbit(ref[zero]))
+
+
+@pytest.mark.parametrize("n", [O.ATAN2_BY_QUOTIENT_MIN - 1, O.ATAN2_BY_QUOTIENT_MIN, 5000])
+def test_wrap_two_pi_equals_numpy_mod(n):
+    # The block path's reduction of longitudes (radians, between -2 pi and 4 pi: arctan2's
+    # range less the equation of the origins) against numpy's mod itself, value for value:
+    # -0.0 becomes +0.0, -tiny becomes 2 pi (its nearest double), 2 pi becomes 0; the
+    # negative subnormals whose quotient by 2 pi underflows give 0 from ATAN2_BY_QUOTIENT_MIN
+    # values on (np.mod: 2 pi, the same direction).
+    rng = np.random.default_rng(n)
+    a = rng.uniform(-2.0 * np.pi, 4.0 * np.pi, n)
+    edges = [0.0, -0.0, -1e-20, 1e-300, -np.pi, np.pi, 2.0 * np.pi, -2.0 * np.pi,
+             np.nextafter(2.0 * np.pi, 0.0), np.nextafter(0.0, -1.0)]  # fmt: skip
+    a[: len(edges)] = edges
+    ref = np.mod(a, 2.0 * np.pi)
+    ours = O._wrap_two_pi(a.copy(), np.empty(n))
+    if n >= O.ATAN2_BY_QUOTIENT_MIN:
+        ref[len(edges) - 1] = 0.0  # -5e-324
+    np.testing.assert_array_equal(ours, ref)
+    np.testing.assert_array_equal(np.signbit(ours), np.signbit(ref))
