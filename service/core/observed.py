@@ -32,6 +32,7 @@ import erfa
 import numpy as np
 from erfa import ufunc as erfa_ufunc
 
+from service.core.angles import atan2_into, latitude_into, wrap_two_pi
 from service.core.constants import ARCSEC_PER_RAD as _ARCSEC_PER_RAD
 from service.core.constants import (
     AU_PER_JULIAN_YEAR_KM_S,
@@ -1671,58 +1672,6 @@ def _toward_star(moving, dt, ins, ws: _Scratch):
     p -= shift
 
 
-#: Blocks of at least this many stars take the arctangent of two arguments as that of their
-#: quotient plus the quadrant (:func:`_atan2_into`); below it numpy's arctan2 is cheaper, the
-#: quadrant's five extra numpy calls costing more than the arctangent saves. Crossover
-#: measured near 1,500 values (numpy 2.4, AMD EPYC without AVX-512).
-ATAN2_BY_QUOTIENT_MIN = 2048
-
-
-def _atan2_into(y, x, out, tmp):
-    """atan2(y, x), radians, into ``out`` (which must not share memory with ``y``, ``x``).
-
-    For :data:`ATAN2_BY_QUOTIENT_MIN` values or more: arctan(y / x), plus pi with the sign
-    of y where x is negative or -0.0. numpy's one-argument arctangent costs about half its
-    arctan2 where neither has a SIMD loop (x86-64 without AVX-512: 10 against 21 ns per
-    value, numpy 2.4), the quadrant five passes of well under 1 ns each. The result equals
-    arctan2 to within two units in the last place of pi (4.4e-16 rad, 1e-10 arcsec), signed
-    zeros of y included; where x is zero (+0.0 or -0.0) it is arctan2's own value, so that
-    0/0 gives arctan2's 0 or pi and not NaN. ``tmp``: a work array of the same shape.
-    """
-    if out.shape[-1] < ATAN2_BY_QUOTIENT_MIN:
-        return np.arctan2(y, x, out=out)
-    np.divide(y, x, out=out)
-    np.arctan(out, out=out)
-    np.copysign(0.5, x, out=tmp)
-    np.subtract(0.5, tmp, out=tmp)  # 1 where x < 0 or x is -0.0, else 0
-    np.copysign(tmp, y, out=tmp)
-    tmp *= np.pi
-    out += tmp
-    if not x.all():
-        np.arctan2(y, x, out=out, where=np.equal(x, 0.0))
-    return out
-
-
-def _wrap_two_pi(a, tmp):
-    """``a`` modulo 2 pi, in place, as ``np.mod(a, 2 pi)``: into [0, 2 pi], -0.0 to +0.0.
-
-    For :data:`ATAN2_BY_QUOTIENT_MIN` values or more as a - 2 pi floor(a / 2 pi), four
-    passes of under 1 ns each where numpy's mod (an fmod with sign corrections) takes 11 ns
-    per value (x86-64, numpy 2.4); the same values as np.mod for the angles of the block path
-    (tested), except for negative subnormals (above -3e-323), which give 0 where np.mod
-    gives 2 pi. ``tmp``: a work array of the same shape.
-    """
-    if a.shape[-1] < ATAN2_BY_QUOTIENT_MIN:
-        return np.mod(a, TWO_PI, out=a)
-    np.divide(a, TWO_PI, out=tmp)
-    np.floor(tmp, out=tmp)
-    tmp *= TWO_PI
-    a -= tmp  # -0.0 - (-0.0) = +0.0, as np.mod
-    # The few negative subnormals whose quotient underflows to -0.0 (floor 0) stay negative:
-    # 0 for them (np.mod gives 2 pi, the same direction).
-    return np.fmax(a, 0.0, out=a)
-
-
 def _sum_squares(rows, out, tmp):
     """Sum over the first axis of ``rows`` squared, into ``out`` (``tmp``: work rows)."""
     if rows.shape[1] >= 64:
@@ -1813,31 +1762,28 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
         u = ws.p
         a_ra, a_dec, app_ra, app_dec, ra_cio = gout
         tmp, work = ws.tmp, ws.pdv
-        # Longitudes by _atan2_into and _wrap_two_pi, latitudes as the arctangent of the
-        # quotient (positive denominator), as the observed place below.
-        _atan2_into(u[1], u[0], a_ra, work)
-        _wrap_two_pi(a_ra, work)
+        # Arctangents and reductions modulo 2 pi in the forms of core.angles, as below.
+        atan2_into(u[1], u[0], a_ra, work)
+        wrap_two_pi(a_ra, work)
         a_ra *= DEG_PER_RAD
         np.multiply(u[0], u[0], out=tmp)
         tmp += np.multiply(u[1], u[1], out=ws.tmp2)
         np.sqrt(tmp, out=tmp)
-        np.divide(u[2], tmp, out=a_dec)
-        np.arctan(a_dec, out=a_dec)
+        latitude_into(u[2], tmp, a_dec)
         a_dec *= DEG_PER_RAD
         _apparent_into(geo, ws)
         pi = ws.r
-        ri = _atan2_into(pi[1], pi[0], ws.tmp2, work)
+        ri = atan2_into(pi[1], pi[0], ws.tmp2, work)
         np.multiply(pi[0], pi[0], out=tmp)
         tmp += np.multiply(pi[1], pi[1], out=ws.k1)
         np.sqrt(tmp, out=tmp)
-        np.divide(pi[2], tmp, out=app_dec)
-        np.arctan(app_dec, out=app_dec)
+        latitude_into(pi[2], tmp, app_dec)
         app_dec *= DEG_PER_RAD
         np.copyto(ra_cio, ri)
-        _wrap_two_pi(ra_cio, work)
+        wrap_two_pi(ra_cio, work)
         ra_cio *= DEG_PER_RAD
         np.subtract(ri, geo.eo, out=app_ra)
-        _wrap_two_pi(app_ra, work)
+        wrap_two_pi(app_ra, work)
         app_ra *= DEG_PER_RAD
 
     _toward_star(motion, dt, ins, ws)
@@ -1845,7 +1791,7 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     x, y, z, sun_dot = ws.r
     tmp, tmp2 = ws.tmp, ws.tmp2
     # atan2(-y, x) + pi is the azimuth atan2(y, -x) of atioq mapped into [0, 2pi].
-    az = _atan2_into(y, x, out[0], ws.pdv)
+    az = atan2_into(y, x, out[0], ws.pdv)
     az *= -DEG_PER_RAD  # atan2(-y, x) = -atan2(y, x)
     az += 180.0
     big = np.greater_equal(az, 360.0, out=ws.mask[0])
@@ -1879,12 +1825,11 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
     np.multiply(cosdel, z, out=zaeo)
     zaeo += np.multiply(dl, r, out=tmp)
 
-    # The altitude atan2(zaeo, |f| r0) as the arctangent of the quotient (|f| r0 >= 0; +inf
-    # at the zenith gives 90 deg): half the cost of arctan2 without AVX-512 (_atan2_into).
+    # The altitude atan2(zaeo, |f| r0), |f| r0 >= 0, by core.angles (for large blocks the
+    # arctangent of the quotient, half the cost of arctan2 without AVX-512).
     np.absolute(f, out=tmp)
     tmp *= r0
-    alt = np.divide(zaeo, tmp, out=out[2])
-    np.arctan(alt, out=alt)
+    alt = latitude_into(zaeo, tmp, out[2])
     alt *= DEG_PER_RAD
     np.subtract(90.0, alt, out=out[1])
     if detail:
@@ -1898,11 +1843,10 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
         v2 -= np.multiply(xo, cp, out=tmp)
         np.multiply(v0, v0, out=h2)
         h2 += np.multiply(yo, yo, out=tmp)
-        ha = _atan2_into(yo, v0, out[3], ws.pdv)
+        ha = atan2_into(yo, v0, out[3], ws.pdv)
         ha *= -DEG_PER_RAD  # atan2(-y, v0) = -atan2(y, v0)
         np.sqrt(h2, out=tmp)
-        dec = np.divide(v2, tmp, out=out[4])  # atan2(v2, sqrt(h2)), as the altitude above
-        np.arctan(dec, out=dec)
+        dec = latitude_into(v2, tmp, out[4])  # atan2(v2, sqrt(h2)), as the altitude above
         dec *= DEG_PER_RAD
         ra = np.subtract(ins.eral * DEG_PER_RAD, ha, out=out[5])
         np.multiply(ra, 1.0 / 360.0, out=tmp)
@@ -1917,7 +1861,7 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
         tmp *= tmp2
         np.multiply(h2, sp, out=tmp2)
         tmp2 -= np.multiply(np.multiply(v2, cp, out=v2), v0, out=v2)
-        pa = _atan2_into(tmp, tmp2, out[6], ws.pdv)
+        pa = atan2_into(tmp, tmp2, out[6], ws.pdv)
         pa *= DEG_PER_RAD
 
     # Airmass as :func:`airmass_young1994` (NaN below the geometric horizon).

@@ -41,6 +41,7 @@ from dataclasses import dataclass
 import numpy as np
 from erfa import ufunc as erfa_ufunc
 
+from . import angles
 from .constants import (
     AU_PER_JULIAN_YEAR_KM_S,
     DEG_PER_RAD,
@@ -365,8 +366,9 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     flags = input_flags(plx, pma, pmd, rv)
     mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
     loc = _advance_local(dec_deg * RAD_PER_DEG, pma, pmd, mur_mas, tau)
-    ra1 = _wrap_360(ra_deg + np.arctan2(loc.sx, loc.X) * DEG_PER_RAD)
-    dec1 = np.arctan2(loc.Z, loc.H) * DEG_PER_RAD
+    # Arctangents in the forms of core.angles (for many stars, half numpy's arctan2 cost).
+    ra1 = _wrap_360(ra_deg + angles.atan2(loc.sx, loc.X) * DEG_PER_RAD)
+    dec1 = angles.latitude(loc.Z, loc.H) * DEG_PER_RAD
     plx1 = plx * loc.f
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4). The first
