@@ -51,10 +51,10 @@ def atan2_into(y, x, out, tmp):
 
 def atan2(y, x):
     """atan2(y, x), radians, as a new array (:func:`atan2_into`)."""
+    if max(getattr(y, "size", 1), getattr(x, "size", 1)) < ATAN2_BY_QUOTIENT_MIN:
+        return np.arctan2(y, x)  # few values (one star: no conversions, one numpy call)
     y, x = np.asarray(y, dtype=float), np.asarray(x, dtype=float)
     shape = np.broadcast_shapes(y.shape, x.shape)
-    if math.prod(shape) < ATAN2_BY_QUOTIENT_MIN:
-        return np.arctan2(y, x)
     return atan2_into(y, x, np.empty(shape), np.empty(shape))
 
 
@@ -78,11 +78,10 @@ def latitude_into(z, h, out):
 
 def latitude(z, h):
     """atan2(z, h) for h >= 0, as a new array (:func:`latitude_into`)."""
-    z, h = np.asarray(z, dtype=float), np.asarray(h, dtype=float)
-    shape = np.broadcast_shapes(z.shape, h.shape)
-    if math.prod(shape) < ATAN2_BY_QUOTIENT_MIN:
+    if max(getattr(z, "size", 1), getattr(h, "size", 1)) < ATAN2_BY_QUOTIENT_MIN:
         return np.arctan2(z, h)
-    return latitude_into(z, h, np.empty(shape))
+    z, h = np.asarray(z, dtype=float), np.asarray(h, dtype=float)
+    return latitude_into(z, h, np.empty(np.broadcast_shapes(z.shape, h.shape)))
 
 
 def wrap_two_pi(a, tmp):
