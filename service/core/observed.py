@@ -130,19 +130,31 @@ UT1_SIGMA_FINAL_S = 2e-5
 UT1_SIGMA_RAPID_S = 1e-4
 UT1_SIGMA_UNAVAILABLE_S = 0.9
 
-#: IERS Bulletin A prediction accuracy, UT1-UTC: sigma = 0.00025 (days ahead)^0.75 s
-#: (formula printed in the Bulletin A header; from memory).
+#: IERS Bulletin A prediction accuracy, printed in every issue under "PREDICTIONS": "The
+#: accuracy may be estimated from the expressions: S x,y = 0.00068 (MJD-MJD0)**0.80
+#: S t = 0.00025 (MJD-MJD0)**0.75", MJD0 the issue's last day of combined (measured) values;
+#: S x,y in arcsec holds for each pole coordinate, x and y alike, S t in seconds for UT1-UTC
+#: (IERS Bulletin A Vol. XXVI No. 036, 5 September 2013, MJD0 = 56540; the same expressions
+#: in the 2023 and 2024 issues, MJD0 = 60180 and 60411). The issues tabulate them: polar
+#: coordinates 0.004, 0.007, 0.010, 0.013 arcsec and UT1-UTC 0.0014, 0.0024, 0.0032, 0.0040 s
+#: at 10, 20, 30, 40 days.
 BULLETIN_A_UT1_COEFF_S = 0.00025
 BULLETIN_A_UT1_POWER = 0.75
+BULLETIN_A_POLE_COEFF_ARCSEC = 0.00068  # per coordinate (x or y), not the pole position
+BULLETIN_A_POLE_POWER = 0.80
 
-#: Polar motion uncertainty, arcsec, by source (final, rapid: common practice; predicted:
-#: Bulletin A 0.00068 (days ahead)^0.80 arcsec, from memory; unavailable: taken as zero,
-#: the pole wanders within about 0.5 arcsec, common practice).
+#: Polar motion uncertainty, arcsec, per coordinate (x or y), by source: final (IERS B / C04;
+#: common practice, order of magnitude) and rapid (IERS A measured; Bulletin A prints
+#: 0.00009 to 0.00010 arcsec in its x and y error columns). The pole position error is the
+#: two coordinates' errors in quadrature (:func:`pole_position_sigma_arcsec`).
 POLE_SIGMA_FINAL_ARCSEC = 5e-5
 POLE_SIGMA_RAPID_ARCSEC = 1e-4
-BULLETIN_A_POLE_COEFF_ARCSEC = 0.00068
-BULLETIN_A_POLE_POWER = 0.80
-POLE_SIGMA_UNAVAILABLE_ARCSEC = 0.5
+
+#: Pole position error bound, arcsec, where no table answers and the pole is taken as zero:
+#: the largest distance of the pole from the reference origin in the IERS C04 series packaged
+#: here, 1962 onwards, is 0.600 arcsec (x = 0.066, y = 0.596 arcsec on MJD 50235, 1996;
+#: eopc04.1962-now of astropy-iers-data).
+POLE_SIGMA_UNAVAILABLE_ARCSEC = 0.6
 
 #: Earth rotation, arcsec of sky per second of UT1 (360 deg in one sidereal day, ~15.04).
 ARCSEC_PER_UT1_SECOND = 15.04107
@@ -493,7 +505,8 @@ class EarthOrientationValues:
     table : ndarray of str
         Name of the table each value came from ("none" where unavailable).
     ut1_sigma_s, pole_sigma_arcsec : ndarray
-        Uncertainty assumed for the values (see module constants).
+        Uncertainty assumed for UT1-UTC (seconds) and for the pole position (arcsec, the two
+        coordinates' errors in quadrature), see :func:`earth_orientation_at`.
     pointing_error_arcsec : ndarray
         Resulting pointing uncertainty estimate, arcsec.
     accuracy_class : ndarray of str
@@ -510,6 +523,57 @@ class EarthOrientationValues:
     pointing_error_arcsec: np.ndarray
     accuracy_class: np.ndarray
 
+
+def bulletin_a_prediction_sigmas(days_ahead):
+    """Accuracy of IERS Bulletin A predictions, by the expressions each issue prints.
+
+    Parameters
+    ----------
+    days_ahead : array_like
+        Days from the issue's last day of measured values (MJD0) to the predicted day, >= 0.
+
+    Returns
+    -------
+    ut1_sigma_s : ndarray
+        S t = 0.00025 (MJD - MJD0)^0.75, uncertainty of UT1-UTC, seconds.
+    pole_sigma_xy_arcsec : ndarray
+        S x,y = 0.00068 (MJD - MJD0)^0.80, uncertainty of each pole coordinate (x, and
+        likewise y), arcsec; the pole position error is :func:`pole_position_sigma_arcsec`
+        of the two, sqrt(2) times this.
+
+    References
+    ----------
+    IERS Bulletin A, section "PREDICTIONS" (e.g. Vol. XXVI No. 036, 5 September 2013):
+    "The accuracy may be estimated from the expressions: S x,y = 0.00068 (MJD-56540)**0.80
+    S t = 0.00025 (MJD-56540)**0.75".
+    """
+    d = np.asarray(days_ahead, dtype=float)
+    return (
+        BULLETIN_A_UT1_COEFF_S * d**BULLETIN_A_UT1_POWER,
+        BULLETIN_A_POLE_COEFF_ARCSEC * d**BULLETIN_A_POLE_POWER,
+    )
+
+
+def pole_position_sigma_arcsec(sigma_x_arcsec, sigma_y_arcsec):
+    """Uncertainty of the pole position from those of its two coordinates, arcsec.
+
+    Notes
+    -----
+    1. An error (dx, dy) in the pole coordinates tilts the terrestrial frame by the small
+       angle |(dx, dy)| = sqrt(dx^2 + dy^2) about an axis in the equator plane; a direction on
+       the sky moves by that angle times the sine of its distance from the tilt axis, at most
+       the angle itself. With independent errors of standard deviations sigma_x, sigma_y the
+       rms tilt is sqrt(sigma_x^2 + sigma_y^2): sqrt(2) sigma for equal ones, as the Bulletin
+       A prediction accuracy S x,y (one figure for each coordinate).
+    """
+    return np.hypot(sigma_x_arcsec, sigma_y_arcsec)
+
+
+#: Pole position error of rapid (measured) values, arcsec (both coordinates, Note 4 of
+#: :func:`earth_orientation_at`).
+_POLE_SIGMA_RAPID_POSITION_ARCSEC = float(
+    np.hypot(POLE_SIGMA_RAPID_ARCSEC, POLE_SIGMA_RAPID_ARCSEC)
+)
 
 #: Accuracy classes by pointing error, below / between / above ACCURACY_CLASS_BOUNDS_ARCSEC.
 _ACCURACY_CLASSES = np.array(["milliarcsecond", "sub_arcsecond", "arcseconds"])
@@ -533,14 +597,25 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     -----
     1. The primary (finals2000A) table is used inside its span, the IERS-B table before it;
        outside both the values are taken as zero and the status is ``UNAVAILABLE``.
-    2. Predicted values carry the Bulletin A accuracy formula evaluated at the number of days
-       past the last measured node.
+    2. Predicted values carry the Bulletin A accuracy expressions
+       (:func:`bulletin_a_prediction_sigmas`) evaluated at the number of days past the last
+       measured node: S t for UT1-UTC, S x,y for each pole coordinate.
     3. Inside a table, the uncertainties are at least the table's own (columns e_UT1_UTC and
-       e_PM_x, e_PM_y of IERS-B; their Bulletin A counterparts in finals2000A): some
-       milliseconds of UT1 and tens of mas of pole in the 1960s and 1970s, far above the
-       fixed values by source.
-    4. The pointing error estimate is 15.04 arcsec/s x sigma(UT1) + sigma(pole), a bound on
-       the effect at the equator; the class follows ``ACCURACY_CLASS_BOUNDS_ARCSEC``.
+       e_PM_x, e_PM_y of IERS-B; their Bulletin A counterparts in finals2000A), and on the
+       days the IERS-B (C04) table also covers, at least its own too: for those days the
+       finals2000A values in use are its Bulletin B columns (astropy takes them where
+       present), whose errors are the C04 ones, not the Bulletin A columns'. That is some
+       milliseconds of UT1 and tens of mas of pole in the 1960s and 1970s (C04: 1.9 ms and
+       15 mas per coordinate up to 1979, where finals2000A's Bulletin A columns say 0.2 to
+       0.6 ms), far above the fixed values by source.
+    4. ``pole_sigma_arcsec`` is the error of the pole position, the two coordinates' errors
+       in quadrature (:func:`pole_position_sigma_arcsec`); where no table answers, the pole is
+       taken as zero and its error is the largest pole distance on record (0.6 arcsec).
+    5. The pointing error estimate is 15.04 arcsec/s x sigma(UT1) + sigma(pole position): an
+       error in UT1 turns the sky about the pole axis (a star at declination d moves by
+       15.04 arcsec/s x dUT1 x cos d), a pole error tilts it about an axis in the equator;
+       the displacement of any direction is at most the sum of the two angles. The class
+       follows ``ACCURACY_CLASS_BOUNDS_ARCSEC``.
     """
     eop = eop or earth_orientation()
     jd1 = np.asarray(utc_jd1, dtype=float)
@@ -571,31 +646,34 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
             tab_pole = np.where(take, b_pole, tab_pole)
             inside = inside | take
             table = np.where(take, 2, table)
+        # Days of the primary table that IERS-B covers too: at least IERS-B's errors (Note 3).
+        both = (table == 0) & (mjd_full >= eop.fallback.first_mjd)
+        both &= mjd_full <= eop.fallback.last_mjd
+        if np.any(both):
+            b_ut1, b_pole = _table_sigmas(eop.fallback, mjd_int)
+            tab_ut1 = np.where(both, np.fmax(tab_ut1, b_ut1), tab_ut1)
+            tab_pole = np.where(both, np.fmax(tab_pole, b_pole), tab_pole)
     status = np.where(inside, status, int(EarthOrientationStatus.UNAVAILABLE))
     dut = np.where(inside, dut, 0.0)
     px = np.where(inside, px, 0.0)
     py = np.where(inside, py, 0.0)
     days_ahead = np.maximum(mjd_full - eop.primary.last_measured_mjd, 0.0)
     # Fixed sigmas by status (final, rapid, predicted placeholder, unavailable), then the
-    # Bulletin A growth for predicted values.
+    # Bulletin A growth for predicted values; pole errors as position errors (Note 4).
     status = np.asarray(status, dtype=np.int64)
     ut1_fixed = np.array([UT1_SIGMA_FINAL_S, UT1_SIGMA_RAPID_S, 0.0, UT1_SIGMA_UNAVAILABLE_S])
-    pole_fixed = np.array(
-        [POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_RAPID_ARCSEC, 0.0, POLE_SIGMA_UNAVAILABLE_ARCSEC]
-    )
+    pole_fixed = np.array([
+        pole_position_sigma_arcsec(POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_FINAL_ARCSEC),
+        pole_position_sigma_arcsec(POLE_SIGMA_RAPID_ARCSEC, POLE_SIGMA_RAPID_ARCSEC),
+        0.0,
+        POLE_SIGMA_UNAVAILABLE_ARCSEC,
+    ])  # fmt: skip
     predicted = status == EarthOrientationStatus.PREDICTED
-    ut1_sigma = np.where(
-        predicted,
-        np.maximum(BULLETIN_A_UT1_COEFF_S * days_ahead**BULLETIN_A_UT1_POWER, UT1_SIGMA_RAPID_S),
-        ut1_fixed[status],
-    )
+    pred_ut1, pred_pole_xy = bulletin_a_prediction_sigmas(days_ahead)
+    ut1_sigma = np.where(predicted, np.maximum(pred_ut1, UT1_SIGMA_RAPID_S), ut1_fixed[status])
+    pred_pole_xy = np.maximum(pred_pole_xy, POLE_SIGMA_RAPID_ARCSEC)
     pole_sigma = np.where(
-        predicted,
-        np.maximum(
-            BULLETIN_A_POLE_COEFF_ARCSEC * days_ahead**BULLETIN_A_POLE_POWER,
-            POLE_SIGMA_RAPID_ARCSEC,
-        ),
-        pole_fixed[status],
+        predicted, pole_position_sigma_arcsec(pred_pole_xy, pred_pole_xy), pole_fixed[status]
     )
     # At least the table's own uncertainties where its values are used (Note 3).
     ut1_sigma = np.where(inside, np.fmax(ut1_sigma, tab_ut1), ut1_sigma)
@@ -774,13 +852,20 @@ def airmass_young1994(cos_true_zenith):
     Notes
     -----
     1. X = (1.002432 c^2 + 0.148386 c + 0.0096467) /
-       (c^3 + 0.149864 c^2 + 0.0102963 c + 0.000303978), c = cos z_true; quoted maximum
-       error 0.0037 air masses at the horizon (coefficients from memory).
+       (c^3 + 0.149864 c^2 + 0.0102963 c + 0.000303978), c = cos z_true. The coefficients
+       were checked against a published implementation citing Young (1994), pvlib-python's
+       ``pvlib.atmosphere.get_relative_airmass`` (model ``young1994``, "requires true
+       zenith"), and agree to 0.07 % up to z = 80 deg and 0.6 % at the horizon with the
+       Kasten & Young (1989) formula for their airmass table, taken at the apparent zenith
+       distance (tests). Quoted maximum error 0.0037 air masses at the horizon (from memory,
+       not checked).
     2. The formula is for a star above the horizon; below it the airmass is undefined.
 
     References
     ----------
-    Young, A.T. 1994, Applied Optics 33, 1108 ("Air mass and refraction").
+    Young, A.T. 1994, Applied Optics 33, 1108-1110 ("Air mass and refraction").
+    Kasten, F., Young, A.T. 1989, Applied Optics 28, 4735 ("Revised optical air mass tables
+    and approximation formula").
     """
     c = np.asarray(cos_true_zenith, dtype=float)
     num = (1.002432 * c + 0.148386) * c + 0.0096467
@@ -2247,10 +2332,10 @@ class _InstantState:
                 status=np.full(jd1.shape, int(EarthOrientationStatus.MEASURED_RAPID)),
                 table=np.full(jd1.shape, "given"),
                 ut1_sigma_s=np.full(jd1.shape, UT1_SIGMA_RAPID_S),
-                pole_sigma_arcsec=np.full(jd1.shape, POLE_SIGMA_RAPID_ARCSEC),
+                pole_sigma_arcsec=np.full(jd1.shape, _POLE_SIGMA_RAPID_POSITION_ARCSEC),
                 pointing_error_arcsec=np.full(
                     jd1.shape,
-                    ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + POLE_SIGMA_RAPID_ARCSEC,
+                    ARCSEC_PER_UT1_SECOND * UT1_SIGMA_RAPID_S + _POLE_SIGMA_RAPID_POSITION_ARCSEC,
                 ),
                 accuracy_class=np.full(jd1.shape, "milliarcsecond"),
             )

@@ -566,6 +566,40 @@ def test_airmass_young1994_limits():
     assert np.isnan(O.airmass_young1994(-0.1))
 
 
+def test_airmass_young1994_coefficients_as_published():
+    # Young 1994, Applied Optics 33, 1108, in terms of the true zenith distance z, as
+    # published in pvlib-python's pvlib.atmosphere.get_relative_airmass (model "young1994",
+    # reference "A. T. Young, AIR-MASS AND REFRACTION, Applied Optics, vol. 33, pp.
+    # 1108-1110, Feb 1994"), written out here in powers of cos z; tolerance 1e-12 relative.
+    z = np.radians(np.array([0.0, 30.0, 45.0, 60.0, 75.0, 80.0, 85.0, 88.0, 90.0]))
+    c = np.cos(z)
+    published = (1.002432 * c**2 + 0.148386 * c + 0.0096467) / (
+        c**3 + 0.149864 * c**2 + 0.0102963 * c + 0.000303978
+    )
+    np.testing.assert_allclose(O.airmass_young1994(c), published, rtol=1e-12, atol=0.0)
+
+
+def test_airmass_young1994_agrees_with_kasten_young_1989():
+    # An independent airmass model: Kasten & Young 1989, Applied Optics 28, 4735, eq. 3, the
+    # fit to their revised airmass table, X = 1 / (cos za + 0.50572 (96.07995 - za)^-1.6364)
+    # in the apparent (refracted) zenith distance za in degrees (coefficients as printed in
+    # pvlib-python's pvlib.atmosphere.get_relative_airmass, model "kastenyoung1989"). The
+    # apparent zenith distance of a true one by Bennett's refraction, R = cot(h + 7.31 /
+    # (h + 4.4)) arcmin at apparent altitude h in degrees (Bennett 1982, J. Navigation 35,
+    # 255; from memory; it only needs to be right to an arcminute here). Tolerance, relative:
+    # 0.15 % up to z = 80 deg (measured 0.07 %), 0.7 % at 85 to 90 deg (measured 0.6 %).
+    zt = np.array([0.0, 20.0, 40.0, 60.0, 70.0, 75.0, 80.0, 85.0, 88.0, 90.0])
+    za = zt.copy()
+    for _ in range(6):  # fixed point: za = zt - R(90 - za)
+        h = 90.0 - za
+        za = zt - 1.0 / np.tan(np.radians(h + 7.31 / (h + 4.4))) / 60.0
+    ky = 1.0 / (np.cos(np.radians(za)) + 0.50572 * (96.07995 - za) ** -1.6364)
+    got = O.airmass_young1994(np.cos(np.radians(zt)))
+    ratio = got / ky - 1.0
+    assert np.max(np.abs(ratio[zt <= 80.0])) < 0.0015
+    assert np.max(np.abs(ratio)) < 0.007
+
+
 def test_airmass_close_to_secant_at_moderate_zenith_distance():
     # Plane-parallel sec z is within 0.5 % of the true airmass for z <= 60 deg (common
     # practice); the formula must also grow monotonically towards the horizon.
@@ -636,6 +670,77 @@ def test_pointing_error_at_least_the_tables_own_uncertainties():
         got = O.earth_orientation_at(2400000.5, mjd, eop)
         assert got.pointing_error_arcsec >= floor * (1.0 - 1e-9)
         assert floor > 0.01 and got.accuracy_class == "sub_arcsecond"
+
+
+def test_bulletin_a_prediction_accuracy_as_published():
+    # IERS Bulletin A, section PREDICTIONS (Vol. XXVI No. 036, 5 September 2013; the same in
+    # the 2023 and 2024 issues): "S x,y = 0.00068 (MJD-MJD0)**0.80  S t = 0.00025
+    # (MJD-MJD0)**0.75", tabulated as "Estimated accuracies are: Predictions 10 d 20 d 30 d
+    # 40 d / Polar coord's 0.004 0.007 0.010 0.013 / UT1-UTC 0.0014 0.0024 0.0032 0.0040".
+    # Tolerances: half the last printed digit (0.0005 arcsec, 0.00005 s).
+    days = np.array([10.0, 20.0, 30.0, 40.0])
+    ut1_s, pole_xy = O.bulletin_a_prediction_sigmas(days)
+    np.testing.assert_allclose(pole_xy, [0.004, 0.007, 0.010, 0.013], atol=0.0005)  # arcsec
+    np.testing.assert_allclose(ut1_s, [0.0014, 0.0024, 0.0032, 0.0040], atol=0.00005)  # s
+
+
+def test_predicted_pole_error_is_the_position_error_of_both_coordinates():
+    # Bulletin A's "Polar coord's" accuracy (0.004, 0.007, 0.010, 0.013 arcsec at 10, 20, 30,
+    # 40 days; issue as above) holds for x and for y each; the pole position error is the
+    # two in quadrature, sqrt(2) times it (the answer once gave the one-coordinate figure).
+    # Tolerance: sqrt(2) x half the printed digit, 0.0007 arcsec; UT1-UTC as printed, 0.00005 s.
+    # The table's own errors are a floor (for UT1-UTC they exceed S t from about 30 days on).
+    eop = O.earth_orientation()
+    days = np.array([10.0, 20.0, 30.0, 40.0])
+    got = O.earth_orientation_at(2400000.5, eop.primary.last_measured_mjd + days, eop)
+    assert np.all(got.status == O.EarthOrientationStatus.PREDICTED)
+    pole_xy = np.array([0.004, 0.007, 0.010, 0.013])  # arcsec, Bulletin A
+    ut1_s = np.array([0.0014, 0.0024, 0.0032, 0.0040])  # s, Bulletin A
+    assert np.all(got.pole_sigma_arcsec >= np.sqrt(2.0) * pole_xy - 0.0007)  # arcsec
+    assert np.all(got.pole_sigma_arcsec[:2] <= np.sqrt(2.0) * pole_xy[:2] + 0.0007)  # arcsec
+    assert np.all(got.ut1_sigma_s >= ut1_s - 0.00005)  # s
+    earth_turn_arcsec_per_s = 1296000.0 / 86164.0905  # 360 deg per sidereal day (~15.04)
+    np.testing.assert_allclose(
+        got.pointing_error_arcsec,
+        earth_turn_arcsec_per_s * got.ut1_sigma_s + got.pole_sigma_arcsec,
+        rtol=1e-5,
+    )  # arcsec
+
+
+def test_pointing_error_in_the_1970s_at_least_the_iers_b_uncertainties():
+    # finals2000A's values for 1973-1979 are its Bulletin B columns (astropy takes them where
+    # present), whose errors are those of IERS-B (eopc04: e_UT1_UTC 1.9 ms, e_PM_x, e_PM_y
+    # 15 mas up to 1979), not its Bulletin A columns' (0.2 to 0.6 ms): the answer once said
+    # 0.034 arcsec in 1973 where IERS-B's own errors imply 0.050 arcsec.
+    from astropy.utils import iers
+
+    eop = O.earth_orientation()
+    table = iers.IERS_B.open(eop.fallback.path)
+    earth_turn_arcsec_per_s = 1296000.0 / 86164.0905  # 360 deg per sidereal day (~15.04)
+    for mjd in (42000.0, 43000.0, 44000.0):  # 1973, 1976, 1978
+        row = table[np.searchsorted(table["MJD"].value, mjd)]
+        assert row["MJD"].value == mjd
+        floor = earth_turn_arcsec_per_s * row["e_UT1_UTC"].to_value("s") + np.hypot(
+            row["e_PM_x"].to_value("arcsec"), row["e_PM_y"].to_value("arcsec")
+        )
+        got = O.earth_orientation_at(2400000.5, mjd, eop)
+        assert got.table.startswith("IERS-A")
+        assert got.pointing_error_arcsec >= floor * (1.0 - 1e-9)  # arcsec
+
+
+def test_unavailable_pole_error_covers_the_largest_pole_distance_on_record():
+    # Outside the tables the pole is taken as zero; the largest distance of the pole from
+    # the origin in IERS-B (eopc04 1962 onwards, read with astropy) is 0.600 arcsec (1996):
+    # the answer once assumed 0.5 arcsec.
+    from astropy.utils import iers
+
+    eop = O.earth_orientation()
+    table = iers.IERS_B.open(eop.fallback.path)
+    largest = np.max(np.hypot(table["PM_x"].to_value("arcsec"), table["PM_y"].to_value("arcsec")))
+    got = O.earth_orientation_at(2400000.5, 80000.0, eop)  # 2078, beyond every table
+    assert got.status == O.EarthOrientationStatus.UNAVAILABLE
+    assert got.pole_sigma_arcsec >= largest  # arcsec
+    assert got.pointing_error_arcsec >= 15.04 * 0.9 + largest  # |UT1-UTC| < 0.9 s, arcsec
 
 
 def test_dates_outside_tables_still_answer_with_flags():
