@@ -7,6 +7,12 @@ The forms here give the same values to within two units in the last place of pi 
 arctangents) or exactly (the reduction), with the signed zeros and 0/0 of numpy's own
 functions, and take numpy's own functions for arrays smaller than
 :data:`ATAN2_BY_QUOTIENT_MIN`, where the extra numpy calls cost more than they save.
+
+A value's last bits therefore depend on the size of the array it is computed in. The
+observed place takes these forms (its results already depend on the block size in the last
+bits); the propagation does not, because whole-catalogue runs in chunks must equal one call
+on the whole catalogue bit for bit. Taking the forms for every size instead costs a
+one-star propagation about 40 microseconds (a third more), measured.
 """
 
 from __future__ import annotations
@@ -49,15 +55,6 @@ def atan2_into(y, x, out, tmp):
     return out
 
 
-def atan2(y, x):
-    """atan2(y, x), radians, as a new array (:func:`atan2_into`)."""
-    if max(getattr(y, "size", 1), getattr(x, "size", 1)) < ATAN2_BY_QUOTIENT_MIN:
-        return np.arctan2(y, x)  # few values (one star: no conversions, one numpy call)
-    y, x = np.asarray(y, dtype=float), np.asarray(x, dtype=float)
-    shape = np.broadcast_shapes(y.shape, x.shape)
-    return atan2_into(y, x, np.empty(shape), np.empty(shape))
-
-
 def latitude_into(z, h, out):
     """atan2(z, h) for h >= 0 (a latitude from its sine and cosine parts), into ``out``.
 
@@ -74,14 +71,6 @@ def latitude_into(z, h, out):
     if not np.all(h):
         np.arctan2(z, h, out=out, where=np.equal(h, 0.0))
     return out
-
-
-def latitude(z, h):
-    """atan2(z, h) for h >= 0, as a new array (:func:`latitude_into`)."""
-    if max(getattr(z, "size", 1), getattr(h, "size", 1)) < ATAN2_BY_QUOTIENT_MIN:
-        return np.arctan2(z, h)
-    z, h = np.asarray(z, dtype=float), np.asarray(h, dtype=float)
-    return latitude_into(z, h, np.empty(np.broadcast_shapes(z.shape, h.shape)))
 
 
 def wrap_two_pi(a, tmp):

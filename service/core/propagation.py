@@ -41,7 +41,6 @@ from dataclasses import dataclass
 import numpy as np
 from erfa import ufunc as erfa_ufunc
 
-from . import angles
 from .constants import (
     AU_PER_JULIAN_YEAR_KM_S,
     DEG_PER_RAD,
@@ -366,9 +365,12 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     flags = input_flags(plx, pma, pmd, rv)
     mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
     loc = _advance_local(dec_deg * RAD_PER_DEG, pma, pmd, mur_mas, tau)
-    # Arctangents in the forms of core.angles (for many stars, half numpy's arctan2 cost).
-    ra1 = _wrap_360(ra_deg + angles.atan2(loc.sx, loc.X) * DEG_PER_RAD)
-    dec1 = angles.latitude(loc.Z, loc.H) * DEG_PER_RAD
+    # numpy's arctan2, not the cheaper forms of core.angles: those differ from it in the last
+    # bits and are taken only for large arrays, so that a star's result would depend on how
+    # many stars share its call, and whole-catalogue runs in chunks must equal one call bit
+    # for bit (tests/test_batch.py).
+    ra1 = _wrap_360(ra_deg + np.arctan2(loc.sx, loc.X) * DEG_PER_RAD)
+    dec1 = np.arctan2(loc.Z, loc.H) * DEG_PER_RAD
     plx1 = plx * loc.f
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         # v_r1 = f g with g = (A/plx) tau mu^2 + v_r (1 + tau mu_r) (Note 4). The first
