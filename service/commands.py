@@ -530,9 +530,10 @@ def cmd_observed(args) -> int:
             ),
             client,
         )
-        # The CSV has per-row refraction and flags only; the refraction settings and the
-        # Earth orientation used are in the JSON answer, the same for every star: asked
-        # for one motionless star. Said, like the caution, --quiet or not.
+        # The CSV rows carry the refraction, the flags, the Sun and the Earth orientation of
+        # their instant; the refraction settings are in the JSON answer only, the same for
+        # every star: asked for one motionless star, with the Earth orientation summed up.
+        # Said, like the caution, --quiet or not.
         conditions = client.observed(
             [CONDITIONS_STAR],
             catalogue_epoch=when["catalogue_epoch"],
@@ -913,7 +914,9 @@ def add_commands(sub) -> None:
         "right ascension and declination, parallactic angle, airmass, refraction, the "
         "separation from the Sun, and the astrometric and apparent places. Writes CSV: one "
         "row per star and instant with index, id, epoch_julian_tdb and epoch_iso_utc of the "
-        "instant, the quantities under their API names, and flags (';'-separated; they "
+        "instant, the quantities under their API names, the instant's utc_jd, Earth "
+        "orientation (earth_orientation_*) and Sun altitude and azimuth (sun_altitude_deg, "
+        "sun_azimuth_deg), and flags (';'-separated; they "
         "include below_horizon_limit and within_sun_avoidance). Standard error says, even "
         "with --quiet, the refraction settings used (mode, pressure, temperature, relative "
         "humidity, wavelength) and the Earth orientation (table; measured, predicted or "

@@ -26,9 +26,12 @@ Response (``Accept: application/vnd.apache.arrow.stream``)
     event), with the rows and columns of the CSV answer, in its order: ``index`` (int64),
     ``id`` (string or int64), ``epoch_julian_tdb`` (float64) and ``epoch_iso_utc``, the
     quantities under their JSON names (float64, bool or string; a short vector per star,
-    such as an interval, is a fixed-size list of float64), and ``flags`` last: the star's
-    flag names joined by ``;`` (empty: none). Strings repeated on many rows
-    (``epoch_iso_utc``, ``flags``) are dictionary-encoded. An unknown value (JSON null) is
+    such as an interval, or the ``utc_jd`` of an observed place's instant, is a fixed-size
+    list of float64), the figures of each row's instant as in the CSV answer
+    (``sun_altitude_deg``, ``earth_orientation_ut1_utc_s``, ...), and ``flags`` last: the
+    star's flag names joined by ``;`` (empty: none). Strings repeated on many rows
+    (``epoch_iso_utc``, ``flags``, an instant's text such as ``earth_orientation_status``)
+    are dictionary-encoded. An unknown value (JSON null) is
     an Arrow null. Each quantity with a unit carries it in its field metadata (``unit``);
     the answer's other members (units, flag meanings, epochs, warnings, ...) are the JSON
     text of the schema metadata key ``skydrift.answer``. Errors stay
@@ -328,9 +331,10 @@ def body_to_arrow(body: dict, nested_names: set | None = None) -> pa.Table:
     else:
         columns = _records_arrow(body, set(nested_names or ()))
     units = body.get("units") if isinstance(body.get("units"), dict) else {}
+    members = csvio.instant_column_names(body)  # an instant's column -> its member name
     fields = []
     for name, arr in columns.items():
-        unit = EPOCH_UNIT if name == "epoch_julian_tdb" else _unit(units, name)
+        unit = EPOCH_UNIT if name == "epoch_julian_tdb" else _unit(units, members.get(name, name))
         fields.append(pa.field(name, arr.type, metadata=None if unit is None else {"unit": unit}))
     rest = {k: v for k, v in body.items() if k not in ("stars", "columns")}
     schema = pa.schema(fields, metadata={ANSWER_METADATA_KEY: dumps(rest)})
@@ -542,12 +546,15 @@ def _records_arrow(body: dict, nested_names: set) -> dict:
     """A records answer (or a single object) -> Arrow columns, through the CSV answer's rows
     (the same rows and column order)."""
     header, rows = csvio.record_rows(body, nested_names)
+    per_instant = csvio.instant_column_names(body)
     out = {}
     for key in header:
         values = [row.get(key) for row in rows]
         if key == "id":
             out[key] = _ids_array(values)
-        elif key.endswith("_iso_utc") and all(v is None or type(v) is str for v in values):
+        elif (key.endswith("_iso_utc") or key in per_instant) and all(
+            v is None or type(v) is str for v in values
+        ):
             # repeated on many rows: dictionary-encoded, as in the columns layout
             out[key] = pa.array(values, pa.string()).dictionary_encode()
         else:

@@ -182,8 +182,14 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
                             "epoch (or per star and event, such as a boundary crossing; a "
                             "star without any gets one row): index, id, then "
                             "epoch_julian_tdb and epoch_iso_utc when the answer has epochs, "
-                            "the quantities under their JSON names, flags (';'-separated) "
-                            "last; empty cell = null.",
+                            "the quantities under their JSON names, then the figures of the "
+                            "row's instant where the answer lists instants (observed places: "
+                            "utc_jd, the two-part UTC Julian date as two ';'-separated "
+                            "numbers, exact where epoch_iso_utc stops at the millisecond; "
+                            "earth_orientation_<member> and sun_<member>, such as "
+                            "earth_orientation_ut1_utc_s, earth_orientation_status and "
+                            "sun_altitude_deg), flags (';'-separated) last; empty cell = "
+                            "null.",
                         },
                     },
                     arrowio.ARROW_MIMETYPE: {

@@ -22,11 +22,20 @@ Response (``Accept: text/csv``)
     (when the answer has epochs; any other epoch object ``x`` gives ``x_julian_tdb`` and
     ``x_iso_utc``), then the endpoint's per-star and per-epoch quantities under
     their JSON names (units in the names; nested objects such as ``uncertainties`` give one
-    column per member and none when null for every star), and last the lists of names
-    (``flags``), separated by ``;``. A short vector per star (an interval) is one cell, its
-    numbers separated by ``;``. Null is an empty cell; numbers are written with
-    the shortest representation that reads back to the same double, so a CSV answer holds
-    exactly the numbers of the JSON answer. Errors stay ``application/problem+json``.
+    column per member and none when null for every star), then what the answer says of each
+    row's instant where it lists instants with their own figures (observed places:
+    ``utc_jd``, the UTC date as two numbers in one cell, which keeps the instant to the
+    precision of the JSON answer where ``epoch_iso_utc`` stops at the millisecond; an object
+    ``o`` of the instant gives ``o_<member>``: ``earth_orientation_table``,
+    ``earth_orientation_status``, ``earth_orientation_source``,
+    ``earth_orientation_ut1_utc_s``, ``earth_orientation_pm_x_arcsec``,
+    ``earth_orientation_pm_y_arcsec``, ``earth_orientation_accuracy_class``,
+    ``earth_orientation_pointing_error_arcsec``, ``sun_altitude_deg``, ``sun_azimuth_deg``),
+    and last the lists of names (``flags``), separated by ``;``. A short vector per star (an
+    interval) is one cell, its numbers separated by ``;``. Null is an empty cell; numbers
+    are written with the shortest representation that reads back to the same double, so a
+    CSV answer holds exactly the numbers of the JSON answer. Errors stay
+    ``application/problem+json``.
 """
 
 from __future__ import annotations
@@ -364,18 +373,61 @@ def _answer_epochs(body: dict) -> list | None:
     epochs = body.get("epochs")
     if isinstance(epochs, list) and all(_is_epoch(e) for e in epochs):
         return epochs
+    instants = _answer_instants(body)
+    return None if instants is None else [v["epoch"] for v in instants]
+
+
+def _answer_instants(body: dict) -> list | None:
+    """The answer's list of objects each with an ``epoch`` (the instants of an observed-place
+    answer, with what belongs to each instant), or None."""
     for value in body.values():
         if (
             isinstance(value, list)
             and value
             and all(isinstance(v, dict) and _is_epoch(v.get("epoch")) for v in value)
         ):
-            return [v["epoch"] for v in value]
+            return value
     return None
+
+
+def instant_column_names(body: dict) -> dict:
+    """The columns an answer's instant objects give (:func:`_instant_cells`): column name ->
+    name of the member it holds (``sun_altitude_deg`` -> ``altitude_deg``)."""
+    names: dict = {}
+    for instant in _answer_instants(body) or ():
+        for key, value in instant.items():
+            if key == "epoch":
+                continue
+            if isinstance(value, dict):
+                names.update({f"{key}_{inner}": inner for inner in value})
+            else:
+                names[key] = key
+    return names
+
+
+def _instant_cells(instant: dict) -> dict:
+    """The members of an instant object other than its epoch -> cells of each of its rows:
+    an object ``o`` gives ``o_<member>`` (``sun_altitude_deg``,
+    ``earth_orientation_ut1_utc_s``), any other value keeps its name (``utc_jd``, a short
+    vector: one cell)."""
+    out: dict = {}
+    for key, value in instant.items():
+        if key == "epoch":
+            continue
+        if isinstance(value, dict):
+            for inner, v in value.items():
+                out[f"{key}_{inner}"] = v
+        else:
+            out[key] = value
+    return out
 
 
 def _rows_from_records(body: dict, nested_names: set):
     epochs = _answer_epochs(body)
+    instants = _answer_instants(body)
+    # What the answer says of each instant itself (the UTC date in full, the Sun, the Earth
+    # orientation), made once and put on each of its rows: a CSV row stands alone.
+    per_instant = None if instants is None else [_instant_cells(v) for v in instants]
     common = _epoch_cells("epoch", body["epoch"]) if _is_epoch(body.get("epoch")) else {}
     object_lists = {
         k
@@ -396,6 +448,12 @@ def _rows_from_records(body: dict, nested_names: set):
             flat, _, more = _flatten_record(entry, nested_names)
             row.update(flat)
             row.update({key: v for key, v in base.items() if key not in row})
+            if per_instant is not None and len(per_instant) == len(per_epoch):
+                cells = per_instant[k]
+                if cells.keys().isdisjoint(row):
+                    row.update(cells)
+                else:  # a name the star's row has already (none today)
+                    row.update({(f"instant_{c}" if c in row else c): v for c, v in cells.items()})
             yield row, lists + more
 
 

@@ -90,6 +90,18 @@ PLACE_FIELDS = {
     "apparent_ra_cio_deg": "deg, geocentric apparent RA referred to the CIO (CIRS)",
 }
 
+#: Units of the numbers each instant has besides its epoch (instants[].utc_jd,
+#: instants[].earth_orientation; the Sun's altitude and azimuth share the places' units):
+#: in the answer's units, so that an Arrow answer's columns of them carry their units too.
+INSTANT_UNITS = {
+    "utc_jd": "days, UTC as a two-part Julian date (the sum is the date)",
+    "ut1_utc_s": "s, UT1 - UTC",
+    "pm_x_arcsec": "arcsec, polar motion x",
+    "pm_y_arcsec": "arcsec, polar motion y",
+    "pointing_error_arcsec": "arcsec, pointing uncertainty the Earth orientation implies "
+    "(estimate)",
+}
+
 FLAG_MEANINGS = {
     "parallax_missing": "No parallax: no parallax shift applied.",
     "parallax_not_positive": "Parallax zero or negative: no parallax shift applied.",
@@ -553,8 +565,10 @@ def observed(args):
     deflection by the Sun, not by the planets; aberration, precession-nutation, Earth
     rotation, polar motion, diurnal aberration, refraction). Each instant states the
     Earth-orientation table used, whether its values were measured, predicted or unavailable,
-    and the accuracy class. The Sun altitude, Sun separation and horizon flags are advisory:
-    the facility's own interlocks and safety rules decide.
+    and the accuracy class. A CSV or Arrow answer carries these figures of each instant on
+    each of its rows (utc_jd, earth_orientation_<member>, sun_altitude_deg, sun_azimuth_deg).
+    The Sun altitude, Sun separation and horizon flags are advisory: the facility's own
+    interlocks and safety rules decide.
     """
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     table = args["stars"]
@@ -763,7 +777,7 @@ def observed(args):
         "instants": inst_out,
         "earth_orientation_tables": res.provenance,
         "star_count": n,
-        "units": PLACE_FIELDS,
+        "units": {**PLACE_FIELDS, **INSTANT_UNITS},
         "flag_meanings": {
             k: v
             for k, v in (*FLAG_MEANINGS.items(), *_INPUT_FLAG_MEANINGS.items())

@@ -659,3 +659,45 @@ def test_answer_arrives_whole_in_pieces(client, monkeypatch):
     # JSON columns are (epoch, star); Arrow rows go star by star, each star's epochs in turn.
     expected = np.asarray(js["columns"]["ra_deg"]).T.reshape(-1)
     assert table.column("ra_deg").to_pylist() == expected.tolist()
+
+
+def test_observed_arrow_rows_carry_each_instants_sun_and_earth_orientation(client):
+    """As the CSV answer (tests/api/test_csv_api.py): each Arrow row of an observed-place
+    answer holds the JSON answer's figures of its instant, bit for bit: the two-part UTC
+    date (a two-element list), the Sun's altitude and azimuth, the Earth orientation and
+    its status and table (dictionary-encoded text, repeated on many rows)."""
+    from tests.api.test_csv_api import INSTANT_COLUMNS, OBSERVED_INSTANTS
+    from tests.conftest import DEMO
+
+    request = json.loads((DEMO / "examples" / "observed_request.json").read_text())
+    request["instants"] = OBSERVED_INSTANTS
+    js = client.post("/v1/observed", json=request).json
+    r = client.post("/v1/observed", json=request, headers={"Accept": ARROW})
+    assert r.status_code == 200 and r.mimetype == ARROW
+    table = read_stream(r.data)
+    stars, instants = js["stars"], js["instants"]
+    assert table.num_rows == len(stars) * len(instants)
+    assert table.schema.field("utc_jd").type == pa.list_(pa.float64(), 2)
+    assert table.schema.field("sun_altitude_deg").type == pa.float64()
+    assert table.schema.field("earth_orientation_status").type == pa.dictionary(
+        pa.int32(), pa.string()
+    )
+    # Units in the field metadata, from the JSON answer's units of the member held.
+    for column, member in (
+        ("utc_jd", "utc_jd"),
+        ("earth_orientation_ut1_utc_s", "ut1_utc_s"),
+        ("earth_orientation_pm_x_arcsec", "pm_x_arcsec"),
+        ("earth_orientation_pm_y_arcsec", "pm_y_arcsec"),
+        ("sun_altitude_deg", "altitude_deg"),
+    ):
+        assert table.schema.field(column).metadata[b"unit"].decode() == js["units"][member]
+    assert js["units"]["ut1_utc_s"].startswith("s,")
+    rows = table.to_pylist()
+    for i, star in enumerate(stars):
+        for k, inst in enumerate(instants):
+            row = rows[i * len(instants) + k]
+            assert (row["index"], row["id"]) == (i, star["id"])
+            for column, (obj, member) in INSTANT_COLUMNS.items():
+                assert row[column] == inst[obj][member], (i, k, column)
+            assert row["utc_jd"] == inst["utc_jd"]
+            assert row["altitude_deg"] == star["at_instants"][k]["altitude_deg"]

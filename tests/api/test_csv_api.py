@@ -414,3 +414,117 @@ def test_offset_plus_decoded_as_space_is_explained(client):
     assert "%2B" in r.json["errors"][0]["message"]
     r = client.post(url + "2026-12-02T22:00:00%2B05:30", data=body, content_type="text/csv")
     assert r.status_code == 200
+
+
+# ------------------------------------------------------------------ observed: per instant
+
+#: Instants of the observed-place checks: measured (2020), predicted (2026) and unavailable
+#: (2045) Earth orientation; the Sun below and above the horizon; two instants 0.43 ms apart
+#: that the millisecond label (epoch_iso_utc) writes alike.
+OBSERVED_INSTANTS = [
+    "2020-06-01T03:00:00Z",
+    "2026-12-02T22:30:00.0000267Z",
+    "2026-12-02T22:30:00.0004567Z",
+    "2045-01-01T12:00:00Z",
+    "2026-12-03T12:00:00Z",
+]
+
+#: The per-instant members of the JSON answer and the CSV/Arrow columns that carry them.
+INSTANT_COLUMNS = {
+    "earth_orientation_table": ("earth_orientation", "table"),
+    "earth_orientation_status": ("earth_orientation", "status"),
+    "earth_orientation_source": ("earth_orientation", "source"),
+    "earth_orientation_ut1_utc_s": ("earth_orientation", "ut1_utc_s"),
+    "earth_orientation_pm_x_arcsec": ("earth_orientation", "pm_x_arcsec"),
+    "earth_orientation_pm_y_arcsec": ("earth_orientation", "pm_y_arcsec"),
+    "earth_orientation_accuracy_class": ("earth_orientation", "accuracy_class"),
+    "earth_orientation_pointing_error_arcsec": ("earth_orientation", "pointing_error_arcsec"),
+    "sun_altitude_deg": ("sun", "altitude_deg"),
+    "sun_azimuth_deg": ("sun", "azimuth_deg"),
+}
+
+
+@pytest.fixture(scope="module")
+def observed_request():
+    import json
+
+    body = json.loads((DEMO / "examples" / "observed_request.json").read_text())
+    return dict(body, instants=OBSERVED_INSTANTS)
+
+
+def test_observed_csv_rows_carry_each_instants_sun_and_earth_orientation(client, observed_request):
+    """Each CSV row of an observed-place answer holds what the JSON answer says of its
+    instant: the Sun's altitude and azimuth (advisory safety figures), UT1-UTC, polar motion
+    and their status and table, and the UTC date in full; the same numbers, bit for bit.
+    The CSV answer used to leave all of them out (the JSON one only had them)."""
+    js = client.post("/v1/observed", json=observed_request).json
+    r = client.post("/v1/observed", json=observed_request, headers={"Accept": "text/csv"})
+    assert r.status_code == 200 and r.mimetype == "text/csv"
+    rows = rows_of(r.get_data(as_text=True))
+    stars, instants = js["stars"], js["instants"]
+    assert len(stars) == 3 and len(instants) == 5
+    assert len(rows) == len(stars) * len(instants)  # star by star, instants within a star
+    header = list(rows[0])
+    assert header[-1] == "flags"
+    assert {"utc_jd", *INSTANT_COLUMNS} <= set(header)
+    statuses = {inst["earth_orientation"]["status"] for inst in instants}
+    assert statuses == {"measured", "predicted", "unavailable"}
+    assert {inst["sun"]["altitude_deg"] > 0 for inst in instants} == {True, False}
+    for i, star in enumerate(stars):
+        for k, inst in enumerate(instants):
+            row = rows[i * len(instants) + k]
+            assert (row["index"], row["id"]) == (str(i), star["id"])
+            for column, (obj, member) in INSTANT_COLUMNS.items():
+                want = inst[obj][member]
+                got = float(row[column]) if isinstance(want, float) else row[column]
+                assert got == want, (i, k, column)
+            assert [float(x) for x in row["utc_jd"].split(";")] == inst["utc_jd"]
+            # The star's own place stays under its name beside the Sun's.
+            place = star["at_instants"][k]
+            assert float(row["altitude_deg"]) == place["altitude_deg"]
+            assert float(row["sun_separation_deg"]) == place["sun_separation_deg"]
+
+
+def test_observed_csv_instant_keeps_the_precision_of_the_json_answer(client, observed_request):
+    """Two instants 0.43 ms apart have the same millisecond label (epoch_iso_utc); the CSV
+    row tells them apart, as the JSON answer does, by the two-part UTC Julian date."""
+    import erfa
+
+    r = client.post("/v1/observed", json=observed_request, headers={"Accept": "text/csv"})
+    rows = rows_of(r.get_data(as_text=True))[1:3]  # the first star at the 2026 instants
+    assert rows[0]["epoch_iso_utc"] == rows[1]["epoch_iso_utc"] == "2026-12-02T22:30:00.000Z"
+    dates = [tuple(float(x) for x in row["utc_jd"].split(";")) for row in rows]
+    assert dates[0] != dates[1]
+    # pyerfa dtf2d: the calendar date and time of day in UTC -> two-part Julian date.
+    for (d1, d2), seconds in zip(dates, (0.0000267, 0.0004567), strict=True):
+        w1, w2 = erfa.dtf2d("UTC", 2026, 12, 2, 22, 30, seconds)
+        assert d1 == w1
+        tol_day = 1e-15  # day (86 ps): one unit in the last place of the day fraction
+        assert abs(d2 - w2) <= tol_day
+    tol_s = 1e-9  # s: the difference of the two dates, 0.43 ms, read back from the CSV
+    assert abs((dates[1][1] - dates[0][1]) * 86400.0 - 0.00043) < tol_s
+
+
+def test_instant_cells_do_not_overwrite_a_star_column():
+    """A member of an instant object named as a column of the star's rows keeps both: the
+    instant's under ``instant_<name>`` (none of today's answers has such a name)."""
+    from service.api import csvio
+
+    epoch = {"julian_epoch_tdb": 2026.0, "iso_utc": "2026-01-01T00:00:00.000Z"}
+    body = {
+        "instants": [{"epoch": epoch, "airmass": 9.0, "sun": {"altitude_deg": -5.0}}],
+        "stars": [{"index": 0, "id": "A", "at_instants": [{"airmass": 1.5, "flags": []}]}],
+    }
+    rows = rows_of(csvio.body_to_csv(body, {"at_instants", "instants", "sun"}))
+    assert rows == [
+        {
+            "index": "0",
+            "id": "A",
+            "epoch_julian_tdb": "2026.0",
+            "epoch_iso_utc": "2026-01-01T00:00:00.000Z",
+            "airmass": "1.5",
+            "instant_airmass": "9.0",
+            "sun_altitude_deg": "-5.0",
+            "flags": "",
+        }
+    ]
