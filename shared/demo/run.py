@@ -135,6 +135,12 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
         stars, catalogue_epoch=catalogue["catalogue_epoch"], instants=[TONIGHT], site=SITE
     )
     print(answer.get("advisory", ""))
+    limits = answer.get("limits") or {}
+    print(
+        f"Flags below: horizon limit {_num(limits.get('horizon_limit_deg'), '{:.1f}')} deg, "
+        f"Sun avoidance {_num(limits.get('sun_avoidance_deg'), '{:.1f}')} deg. "
+        f"{limits.get('note', '')}"
+    )
     sun = answer["instants"][0].get("sun") or {}
     print(f"Sun altitude {_num(sun.get('altitude_deg'), '{:.1f}')} deg\n")
     head = (

@@ -22,6 +22,11 @@ def test_demo_scenario_end_to_end(live_service, tmp_path):
     for heading in ("Observed places", "Constellations tonight", "Velocities", "Charts in"):
         assert heading in text
     assert "advisory" in text.lower()  # the safety figures are said to be advisory
+    # The limits behind below_horizon_limit and within_sun_avoidance are shown beside the
+    # flags: the demo site's horizon limit (shared/demo/observatory.json, 15 deg) and the
+    # built-in Sun-avoidance placeholder (SKYDRIFT_SUN_AVOIDANCE_DEG default, 30 deg).
+    assert "horizon limit 15.0 deg" in text
+    assert "Sun avoidance 30.0 deg" in text
     assert "KRC 0017 crosses from Tau into Ari" in text
     for name in ("field.svg", "field.png", "track_krc_0017.svg", "track_krc_0017.png"):
         assert (tmp_path / name).stat().st_size > 1000
