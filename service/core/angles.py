@@ -3,7 +3,7 @@
 numpy computes ``arctan2`` and ``mod`` one value at a time on processors where it has no SIMD
 loop for them (x86-64 without AVX-512: 21 ns and 11 ns per value, against 10 ns for the
 one-argument ``arctan`` and under 1 ns for a product or a floor; numpy 2.4 on an AMD EPYC).
-The forms here give the same values to within two units in the last place of pi (the
+The forms here give the same values to within one unit in the last place of pi (the
 arctangents) or exactly (the reduction), with the signed zeros and 0/0 of numpy's own
 functions, and take numpy's own functions for arrays smaller than
 :data:`ATAN2_BY_QUOTIENT_MIN`, where the extra numpy calls cost more than they save.
@@ -35,7 +35,7 @@ def atan2_into(y, x, out, tmp):
 
     ``y`` and ``x`` broadcast to ``out``'s shape and must not share memory with ``out`` or
     ``tmp``. For :data:`ATAN2_BY_QUOTIENT_MIN` values or more: arctan(y / x), plus pi with
-    the sign of y where x is negative or -0.0. The result equals arctan2 to within two units
+    the sign of y where x is negative or -0.0. The result equals arctan2 to within one unit
     in the last place of pi (4.4e-16 rad, 1e-10 arcsec), signed zeros of y included; where x
     is zero (+0.0 or -0.0) it is arctan2's own value, so that 0/0 gives arctan2's 0 or pi
     and not NaN.
@@ -60,8 +60,8 @@ def latitude_into(z, h, out):
 
     The arctangent of the quotient for :data:`ATAN2_BY_QUOTIENT_MIN` values or more (h = 0
     gives +-inf and so +-pi/2, as arctan2; where h is zero arctan2's own value, so that 0/0
-    gives 0 and not NaN); the same values as arctan2 to within two units in the last place
-    of pi/2. ``z`` and ``h`` must not share memory with ``out``.
+    gives 0 and not NaN); the same values as arctan2 to within one unit in the last place
+    of pi/2 (2.2e-16 rad). ``z`` and ``h`` must not share memory with ``out``.
     """
     if out.size < ATAN2_BY_QUOTIENT_MIN:
         return np.arctan2(z, h, out=out)
