@@ -390,36 +390,34 @@ def _answer_instants(body: dict) -> list | None:
     return None
 
 
-def instant_column_names(body: dict) -> dict:
-    """The columns an answer's instant objects give (:func:`_instant_cells`): column name ->
-    name of the member it holds (``sun_altitude_deg`` -> ``altitude_deg``)."""
-    names: dict = {}
-    for instant in _answer_instants(body) or ():
-        for key, value in instant.items():
-            if key == "epoch":
-                continue
-            if isinstance(value, dict):
-                names.update({f"{key}_{inner}": inner for inner in value})
-            else:
-                names[key] = key
-    return names
-
-
-def _instant_cells(instant: dict) -> dict:
-    """The members of an instant object other than its epoch -> cells of each of its rows:
-    an object ``o`` gives ``o_<member>`` (``sun_altitude_deg``,
+def _instant_members(instant: dict):
+    """(column, member name, value) for the members of an instant object other than its
+    epoch: an object ``o`` gives ``o_<member>`` (``sun_altitude_deg``,
     ``earth_orientation_ut1_utc_s``), any other value keeps its name (``utc_jd``, a short
     vector: one cell)."""
-    out: dict = {}
     for key, value in instant.items():
         if key == "epoch":
             continue
         if isinstance(value, dict):
             for inner, v in value.items():
-                out[f"{key}_{inner}"] = v
+                yield f"{key}_{inner}", inner, v
         else:
-            out[key] = value
-    return out
+            yield key, key, value
+
+
+def instant_column_names(body: dict) -> dict:
+    """The columns an answer's instant objects give: column name -> name of the member it
+    holds (``sun_altitude_deg`` -> ``altitude_deg``)."""
+    return {
+        column: member
+        for instant in _answer_instants(body) or ()
+        for column, member, _ in _instant_members(instant)
+    }
+
+
+def _instant_cells(instant: dict) -> dict:
+    """The cells an instant object gives each of its rows: column -> value."""
+    return {column: value for column, _, value in _instant_members(instant)}
 
 
 def _rows_from_records(body: dict, nested_names: set):

@@ -572,7 +572,7 @@ def pole_position_sigma_arcsec(sigma_x_arcsec, sigma_y_arcsec):
 #: Pole position error of rapid (measured) values, arcsec (both coordinates, Note 4 of
 #: :func:`earth_orientation_at`).
 _POLE_SIGMA_RAPID_POSITION_ARCSEC = float(
-    np.hypot(POLE_SIGMA_RAPID_ARCSEC, POLE_SIGMA_RAPID_ARCSEC)
+    pole_position_sigma_arcsec(POLE_SIGMA_RAPID_ARCSEC, POLE_SIGMA_RAPID_ARCSEC)
 )
 
 #: Accuracy classes by pointing error, below / between / above ACCURACY_CLASS_BOUNDS_ARCSEC.
@@ -664,7 +664,7 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     ut1_fixed = np.array([UT1_SIGMA_FINAL_S, UT1_SIGMA_RAPID_S, 0.0, UT1_SIGMA_UNAVAILABLE_S])
     pole_fixed = np.array([
         pole_position_sigma_arcsec(POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_FINAL_ARCSEC),
-        pole_position_sigma_arcsec(POLE_SIGMA_RAPID_ARCSEC, POLE_SIGMA_RAPID_ARCSEC),
+        _POLE_SIGMA_RAPID_POSITION_ARCSEC,
         0.0,
         POLE_SIGMA_UNAVAILABLE_ARCSEC,
     ])  # fmt: skip
