@@ -217,8 +217,21 @@ def _num(description, *, lo=None, hi=None, **kw):
     )
 
 
-#: Type check of a site coordinate (missing or null: core.resolve_site says "is required").
+#: Type check of a site coordinate (missing or null: SiteField says "is required").
 _SITE_COORDINATE = StrictFloat(allow_none=True)
+
+
+def _site_list() -> dict:
+    """The operator's site list of the application serving this request."""
+    return load_sites(current_app.config["SKYDRIFT_SETTINGS"].sites_file or None)
+
+
+def _check_site_name(name: str) -> None:
+    """Refuse a site name that is not in the operator's list, as core.resolve_site words it."""
+    try:
+        core.resolve_site(name, _site_list())
+    except core.ObservedInputError as exc:
+        raise ma.ValidationError({"name": [exc.message]}) from None
 
 
 class SiteField(ma.fields.Field):
@@ -247,6 +260,7 @@ class SiteField(ma.fields.Field):
 
     def _deserialize(self, value, attr, data, **kwargs):
         if isinstance(value, str):
+            _check_site_name(value)
             return value
         if isinstance(value, dict):
             allowed = {"latitude_deg", "longitude_deg", "height_m", "name"}
@@ -255,7 +269,7 @@ class SiteField(ma.fields.Field):
                 for k in set(value) - allowed
             }
             # JSON numbers only, as every number of a request: the core would read true as 1
-            # and "38.4" as 38.4. Ranges: core.make_site, in the view.
+            # and "38.4" as 38.4.
             for key in ("latitude_deg", "longitude_deg", "height_m"):
                 try:
                     _SITE_COORDINATE.deserialize(value.get(key), key, value)
@@ -264,6 +278,23 @@ class SiteField(ma.fields.Field):
             name = value.get("name")
             if name is not None and not isinstance(name, str):
                 errors["name"] = ["must be a string (a label for the site)"]
+            if errors:
+                raise ma.ValidationError(errors)
+            if set(value) == {"name"}:  # a name in the site list, as the string form
+                _check_site_name(name)
+                return value
+            # Then every member's own problem at once, as core.resolve_site and
+            # core.make_site name them one at a time (the view builds the site with them).
+            # The height is required: a silent sea-level default would overestimate
+            # refraction at altitude.
+            coords = [value.get(k) for k in ("latitude_deg", "longitude_deg", "height_m")]
+            errors = {
+                k: ["is required"]
+                for k, v in zip(("latitude_deg", "longitude_deg", "height_m"), coords, strict=True)
+                if v is None
+            }
+            problems = core.site_problems(*(0.0 if v is None else v for v in coords))
+            errors.update({k: [m] for k, m in problems.items() if k not in errors})
             if errors:
                 raise ma.ValidationError(errors)
             return value
@@ -377,6 +408,34 @@ class ObservedRequestSchema(ma.Schema):
     @ma.pre_load
     def _bound_instant_list(self, data, **kwargs):
         return bound_epoch_list(data, "instants", per="instants")
+
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _checks_across_members(self, data, **kwargs):
+        """The checks beyond each member's own, run even where other members failed, so
+        that one answer names every invalid field: each instant within the supported span
+        (on its UTC date, as core.observed_places checks it), and air that can exist at the
+        site (core.refraction_settings: its pressure may come from the site's height)."""
+        errors = {}
+        bad = [
+            k
+            for k, t in enumerate(data.get("instants") or ())
+            if not core.SUPPORTED_EPOCH_MIN
+            <= 2000.0 + ((t.utc_jd1 - 2451545.0) + t.utc_jd2) / 365.25
+            < core.SUPPORTED_EPOCH_MAX
+        ]
+        if bad:
+            errors["instants"] = {k: [core.SUPPORTED_SPAN_TEXT] for k in bad[:50]}
+        if "site" in data and "atmosphere" in data:  # both valid on their own
+            try:
+                core.refraction_settings(
+                    core.resolve_site(data["site"], _site_list()),
+                    core.make_atmosphere(**(data["atmosphere"] or {})),
+                )
+            except core.ObservedInputError as exc:
+                member, _, key = exc.field.partition(".")
+                errors[member] = {key: [exc.message]} if key else [exc.message]
+        if errors:
+            raise ma.ValidationError(errors)
 
 
 def _out(field_class, description, **kwargs):
@@ -583,23 +642,10 @@ def observed(args):
     # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
     utc1 = np.array([t.utc_jd1 for t in given])
     utc2 = np.array([t.utc_jd2 for t in given])
-    # The span on the UTC dates, as core.observed_places checks it (there without an index).
-    utc_epochs = 2000.0 + ((utc1 - 2451545.0) + utc2) / 365.25
-    bad = np.flatnonzero(
-        (utc_epochs < core.SUPPORTED_EPOCH_MIN) | (utc_epochs >= core.SUPPORTED_EPOCH_MAX)
-    )
-    if bad.size:
-        abort(
-            422,
-            errors=[
-                {
-                    "field": f"instants[{int(i)}]",
-                    "message": core.SUPPORTED_SPAN_TEXT,
-                }
-                for i in bad[:50]
-            ],
-        )
-    sites = load_sites(settings.sites_file or None)
+    # The site, the atmosphere and the instants' span were checked by the schema
+    # (SiteField, _checks_across_members); the core checks them again, and any difference
+    # between the two is still answered 422 naming the field (_core_error).
+    sites = _site_list()
     try:
         site = core.resolve_site(args["site"], sites)
         atm = core.make_atmosphere(**(args["atmosphere"] or {}))

@@ -721,28 +721,39 @@ class Site:
     name: str | None = None
 
 
-def make_site(latitude_deg, longitude_deg, height_m=0.0, name=None, *, prefix="site") -> Site:
-    """Validate and build a :class:`Site` (raises :class:`ObservedInputError`)."""
-    values = {}
-    for key, val in (
-        ("latitude_deg", latitude_deg),
-        ("longitude_deg", longitude_deg),
-        ("height_m", height_m),
+def site_problems(latitude_deg, longitude_deg, height_m) -> dict[str, str]:
+    """Every invalid coordinate of a site: {member name: message}, empty when all are valid.
+
+    The checks of :func:`make_site`, all of them at once, so that an answer can name every
+    invalid member together.
+    """
+    problems = {}
+    lo, hi = HEIGHT_RANGE_M
+    for key, val, low, high, text in (
+        ("latitude_deg", latitude_deg, -90.0, 90.0, "must be between -90 and 90"),
+        ("longitude_deg", longitude_deg, -180.0, 360.0, "must be between -180 and 360"),
+        ("height_m", height_m, lo, hi, f"must be between {lo:g} and {hi:g}"),
     ):
         try:
-            values[key] = float(val)
+            v = float(val)
         except (TypeError, ValueError):
-            raise ObservedInputError(f"{prefix}.{key}", "must be a number") from None
-        if not np.isfinite(values[key]):
-            raise ObservedInputError(f"{prefix}.{key}", "must be finite")
-    if not -90.0 <= values["latitude_deg"] <= 90.0:
-        raise ObservedInputError(f"{prefix}.latitude_deg", "must be between -90 and 90")
-    if not -180.0 <= values["longitude_deg"] <= 360.0:
-        raise ObservedInputError(f"{prefix}.longitude_deg", "must be between -180 and 360")
-    lo, hi = HEIGHT_RANGE_M
-    if not lo <= values["height_m"] <= hi:
-        raise ObservedInputError(f"{prefix}.height_m", f"must be between {lo:g} and {hi:g}")
-    return Site(values["latitude_deg"], values["longitude_deg"], values["height_m"], name)
+            problems[key] = "must be a number"
+            continue
+        if not np.isfinite(v):
+            problems[key] = "must be finite"
+        elif not low <= v <= high:
+            problems[key] = text
+    return problems
+
+
+def make_site(latitude_deg, longitude_deg, height_m=0.0, name=None, *, prefix="site") -> Site:
+    """Validate and build a :class:`Site` (raises :class:`ObservedInputError` naming the
+    first invalid member; :func:`site_problems` gives them all)."""
+    problems = site_problems(latitude_deg, longitude_deg, height_m)
+    if problems:
+        key, message = next(iter(problems.items()))
+        raise ObservedInputError(f"{prefix}.{key}", message)
+    return Site(float(latitude_deg), float(longitude_deg), float(height_m), name)
 
 
 def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:

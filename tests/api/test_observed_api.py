@@ -491,6 +491,39 @@ def test_a_good_sites_file_is_used(tmp_path, observed_example):
     assert r.json["site"]["latitude_deg"] == 10.0
 
 
+#: A star whose right ascension is refused by the schema (0 to 360): the first round of checks.
+_BAD_STAR = {"ra_deg": 400.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
+
+
+@pytest.mark.parametrize(
+    "change, fields",
+    [
+        ({"site": {"latitude_deg": 95.0, "longitude_deg": 0.0, "height_m": 100.0}},
+         {"site.latitude_deg"}),
+        ({"site": {"latitude_deg": 95.0, "longitude_deg": 0.0}},
+         {"site.latitude_deg", "site.height_m"}),
+        ({"site": {"latitude_deg": 38.0, "longitude_deg": 400.0, "height_m": -900.0}},
+         {"site.longitude_deg", "site.height_m"}),
+        ({"site": "no-such-observatory"}, {"site.name"}),
+        ({"site": {"name": "no-such-observatory"}}, {"site.name"}),
+        ({"instants": ["2026-12-01T00:00:00Z", "J2450.0"]}, {"instants[1]"}),
+        ({"atmosphere": {"pressure_hpa": 1.0, "temperature_c": 60.0, "relative_humidity": 1.0}},
+         {"atmosphere.relative_humidity"}),
+    ],
+)  # fmt: skip
+def test_every_invalid_field_is_named_in_one_answer(client, observed_example, change, fields):
+    """A request-wide problem (site, span of the instants, air that cannot exist) is named in
+    the same answer as the schema's own errors, not only once those are mended."""
+    body = dict(observed_example, stars=[_BAD_STAR], **change)
+    r = client.post(OBS, json=body)
+    assert_problem(r, 422, "stars[0].ra_deg")
+    assert {e["field"] for e in r.json["errors"]} == {"stars[0].ra_deg", *fields}
+    # The same problem alone gives the same message as in the combined answer.
+    alone = client.post(OBS, json=dict(observed_example, **change))
+    assert alone.status_code == 422
+    assert [e for e in r.json["errors"] if e["field"] != "stars[0].ra_deg"] == alone.json["errors"]
+
+
 def test_unknown_site_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
     assert_problem(r, 422, "site.name")
