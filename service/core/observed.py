@@ -298,6 +298,19 @@ class EarthOrientationTable:
         out.setflags(write=False)
         return out
 
+    @functools.cached_property
+    def interval_sigmas(self) -> np.ndarray | None:
+        """(nodes, 2): for the interval between nodes i - 1 and i, the larger of the two
+        nodes' UT1-UTC and pole uncertainties, 0 where the table gives none (NaN counted
+        as none); row 0 is unused. None where the table has no uncertainties."""
+        if self.ut1_sigma_s is None or self.pole_sigma_arcsec is None:
+            return None
+        out = np.zeros((len(self.mjd), 2))
+        for col, sig in enumerate((self.ut1_sigma_s, self.pole_sigma_arcsec)):
+            out[1:, col] = np.nan_to_num(np.fmax(sig[:-1], sig[1:]), nan=0.0)
+        out.setflags(write=False)
+        return out
+
     @property
     def first_mjd(self) -> float:
         return float(self.mjd[0])
@@ -374,6 +387,13 @@ class EarthOrientation:
     primary: EarthOrientationTable
     fallback: EarthOrientationTable | None
     leap_second_expiry_mjd: float
+
+    @functools.cached_property
+    def table_names(self) -> np.ndarray:
+        """Names by the index :func:`earth_orientation_at` keeps: primary, none, fallback."""
+        return np.array(
+            [self.primary.name, "none", self.fallback.name if self.fallback is not None else "none"]
+        )
 
     def describe(self) -> dict:
         """Provenance for responses: table names, files, spans and leap-second expiry."""
@@ -457,37 +477,36 @@ def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
     """
     mjd = table.mjd
     i = np.searchsorted(mjd, mjd_int, side="right")
-    i1 = np.clip(i, 1, len(mjd) - 1)
+    i1 = np.minimum(np.maximum(i, 1), len(mjd) - 1)  # np.clip, without its overhead
     i0 = i1 - 1
     frac = (mjd_int - mjd[i0] + day_fraction) / (mjd[i1] - mjd[i0])
     # The three columns (UT1-UTC, pm_x, pm_y) at once, on the last axis.
     vals = table.node_values
     v0 = vals[i0]
     d = vals[i1] - v0
-    d[..., 0] -= np.round(d[..., 0])  # UT1-UTC only: leap-second steps removed
+    d[..., 0] -= np.rint(d[..., 0])  # UT1-UTC only: leap-second steps removed (np.round)
     v = v0 + frac[..., None] * d
     before = i == 0
     after = i == len(mjd)
-    if np.any(before) or np.any(after):
+    if before.any() or after.any():
         v = np.where(before[..., None], vals[0], v)
         v = np.where(after[..., None], vals[-1], v)
     # Source: the node at or before the instant, the later one if it is predicted.
     status = np.maximum(table.status[i0], table.status[i1])
     inside = ~(before | after)
-    return v[..., 0], v[..., 1], v[..., 2], status, inside
+    return v[..., 0], v[..., 1], v[..., 2], status, inside, i1
 
 
-def _table_sigmas(table: EarthOrientationTable, mjd_int):
+def _table_sigmas(table: EarthOrientationTable, i1):
     """The table's own uncertainties (UT1-UTC s, pole arcsec) at instants: the larger of the
-    two nodes around each (0 where the table gives none, NaN counted as none)."""
-    if table.ut1_sigma_s is None or table.pole_sigma_arcsec is None:
-        zero = np.zeros(np.shape(mjd_int))
+    two nodes around each (0 where the table gives none, NaN counted as none); ``i1`` the
+    later node of each instant's interval, as :func:`_interp_table` returns it."""
+    sig = table.interval_sigmas
+    if sig is None:
+        zero = np.zeros(np.shape(i1))
         return zero, zero
-    i1 = np.clip(np.searchsorted(table.mjd, mjd_int, side="right"), 1, len(table.mjd) - 1)
-    i0 = i1 - 1
-    ut1 = np.fmax(table.ut1_sigma_s[i0], table.ut1_sigma_s[i1])
-    pole = np.fmax(table.pole_sigma_arcsec[i0], table.pole_sigma_arcsec[i1])
-    return np.nan_to_num(ut1, nan=0.0), np.nan_to_num(pole, nan=0.0)
+    both = sig[i1]
+    return both[..., 0], both[..., 1]
 
 
 @dataclass(frozen=True)
@@ -575,6 +594,26 @@ _POLE_SIGMA_RAPID_POSITION_ARCSEC = float(
     pole_position_sigma_arcsec(POLE_SIGMA_RAPID_ARCSEC, POLE_SIGMA_RAPID_ARCSEC)
 )
 
+#: Fixed uncertainties by EarthOrientationStatus (final, rapid, predicted: Bulletin A growth
+#: instead, unavailable): UT1-UTC in seconds, pole position in arcsec (Note 4 of
+#: :func:`earth_orientation_at`).
+_UT1_SIGMA_BY_STATUS = np.array(
+    [UT1_SIGMA_FINAL_S, UT1_SIGMA_RAPID_S, 0.0, UT1_SIGMA_UNAVAILABLE_S]
+)
+_POLE_SIGMA_BY_STATUS = np.array([
+    pole_position_sigma_arcsec(POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_FINAL_ARCSEC),
+    _POLE_SIGMA_RAPID_POSITION_ARCSEC,
+    0.0,
+    POLE_SIGMA_UNAVAILABLE_ARCSEC,
+])  # fmt: skip
+for _a in (_UT1_SIGMA_BY_STATUS, _POLE_SIGMA_BY_STATUS):
+    _a.setflags(write=False)
+
+#: EarthOrientationStatus.PREDICTED and UNAVAILABLE as plain ints (numpy compares an array
+#: with an enum member by a slow path).
+_PREDICTED = int(EarthOrientationStatus.PREDICTED)
+_UNAVAILABLE = int(EarthOrientationStatus.UNAVAILABLE)
+
 #: Accuracy classes by pointing error, below / between / above ACCURACY_CLASS_BOUNDS_ARCSEC.
 _ACCURACY_CLASSES = np.array(["milliarcsecond", "sub_arcsecond", "arcseconds"])
 
@@ -620,28 +659,27 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     eop = eop or earth_orientation()
     jd1 = np.asarray(utc_jd1, dtype=float)
     jd2 = np.asarray(utc_jd2, dtype=float)
-    jd1, jd2 = np.broadcast_arrays(jd1, jd2)
+    if jd1.shape != jd2.shape:
+        jd1, jd2 = np.broadcast_arrays(jd1, jd2)
     # Split into integer MJD and day fraction, as astropy's mjd_utc does.
     mjd_full = (jd1 - 2400000.5) + jd2
     mjd_int = np.floor(mjd_full)
     frac = ((jd1 - 2400000.5) - mjd_int) + jd2
-    dut, px, py, status, inside = _interp_table(eop.primary, mjd_int, frac)
-    tab_ut1, tab_pole = _table_sigmas(eop.primary, mjd_int)
+    dut, px, py, status, inside, i1 = _interp_table(eop.primary, mjd_int, frac)
+    tab_ut1, tab_pole = _table_sigmas(eop.primary, i1)
     # Which table each value came from, as an index into the names (strings only at the end).
-    names = np.array(
-        [eop.primary.name, "none", eop.fallback.name if eop.fallback is not None else "none"]
-    )
+    names = eop.table_names
     table = np.where(inside, 0, 1)
     if eop.fallback is not None:
         use_b = ~inside & (mjd_full < eop.primary.first_mjd)
-        if np.any(use_b):
-            bd, bx, by, bs, binside = _interp_table(eop.fallback, mjd_int, frac)
+        if use_b.any():
+            bd, bx, by, bs, binside, b_i1 = _interp_table(eop.fallback, mjd_int, frac)
             take = use_b & binside
             dut = np.where(take, bd, dut)
             px = np.where(take, bx, px)
             py = np.where(take, by, py)
             status = np.where(take, bs, status)
-            b_ut1, b_pole = _table_sigmas(eop.fallback, mjd_int)
+            b_ut1, b_pole = _table_sigmas(eop.fallback, b_i1)
             tab_ut1 = np.where(take, b_ut1, tab_ut1)
             tab_pole = np.where(take, b_pole, tab_pole)
             inside = inside | take
@@ -649,11 +687,13 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
         # Days of the primary table that IERS-B covers too: at least IERS-B's errors (Note 3).
         both = (table == 0) & (mjd_full >= eop.fallback.first_mjd)
         both &= mjd_full <= eop.fallback.last_mjd
-        if np.any(both):
-            b_ut1, b_pole = _table_sigmas(eop.fallback, mjd_int)
+        if both.any():
+            b_i1 = np.searchsorted(eop.fallback.mjd, mjd_int, side="right")
+            b_i1 = np.minimum(np.maximum(b_i1, 1), len(eop.fallback.mjd) - 1)
+            b_ut1, b_pole = _table_sigmas(eop.fallback, b_i1)
             tab_ut1 = np.where(both, np.fmax(tab_ut1, b_ut1), tab_ut1)
             tab_pole = np.where(both, np.fmax(tab_pole, b_pole), tab_pole)
-    status = np.where(inside, status, int(EarthOrientationStatus.UNAVAILABLE))
+    status = np.where(inside, status, _UNAVAILABLE)
     dut = np.where(inside, dut, 0.0)
     px = np.where(inside, px, 0.0)
     py = np.where(inside, py, 0.0)
@@ -661,14 +701,8 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     # Fixed sigmas by status (final, rapid, predicted placeholder, unavailable), then the
     # Bulletin A growth for predicted values; pole errors as position errors (Note 4).
     status = np.asarray(status, dtype=np.int64)
-    ut1_fixed = np.array([UT1_SIGMA_FINAL_S, UT1_SIGMA_RAPID_S, 0.0, UT1_SIGMA_UNAVAILABLE_S])
-    pole_fixed = np.array([
-        pole_position_sigma_arcsec(POLE_SIGMA_FINAL_ARCSEC, POLE_SIGMA_FINAL_ARCSEC),
-        _POLE_SIGMA_RAPID_POSITION_ARCSEC,
-        0.0,
-        POLE_SIGMA_UNAVAILABLE_ARCSEC,
-    ])  # fmt: skip
-    predicted = status == EarthOrientationStatus.PREDICTED
+    ut1_fixed, pole_fixed = _UT1_SIGMA_BY_STATUS, _POLE_SIGMA_BY_STATUS
+    predicted = status == _PREDICTED
     pred_ut1, pred_pole_xy = bulletin_a_prediction_sigmas(days_ahead)
     ut1_sigma = np.where(predicted, np.maximum(pred_ut1, UT1_SIGMA_RAPID_S), ut1_fixed[status])
     pred_pole_xy = np.maximum(pred_pole_xy, POLE_SIGMA_RAPID_ARCSEC)
@@ -1469,12 +1503,18 @@ def _one_instant_matrices(m, eb, eh, v, sun=None):
     """
     if np.ndim(m) != 2:
         return {}
-    eb, eh, v = (np.array([float(c) for c in x]) for x in (eb, eh, v))
+    a2 = np.array([[float(c) for c in eh], [float(c) for c in v]])
+    eh, v = a2
+    eb = np.array([float(c) for c in eb])
     m = np.asarray(m, dtype=float)
-    b5 = np.hstack([m, (m @ eh)[:, None], (m @ v)[:, None]])
+    # [M | M e | M v], with the Sun's row below it: filled in place (no stacking).
+    b5 = np.empty((3 if sun is None else 4, 5))
+    b5[:3, :3] = m
+    np.matmul(m, eh, out=b5[:3, 3])
+    np.matmul(m, v, out=b5[:3, 4])
     if sun is not None:
-        b5 = np.vstack([b5, np.array([float(c) for c in sun]) @ b5])
-    return {"a2": np.vstack([eh, v]), "b5": b5, "eb_row": eb, "eb_col": eb[:, None].copy()}
+        np.matmul(np.array([float(c) for c in sun]), b5[:3], out=b5[3])
+    return {"a2": a2, "b5": b5, "eb_row": eb, "eb_col": eb[:, None].copy()}
 
 
 def _apparent_aet(q, ins: _Instant):
@@ -2366,18 +2406,12 @@ class _InstantState:
         status = eo_vals.status
         instant_flags = (
             _bits(sun_alt_deg > 0.0, ObservedFlag.SUN_ABOVE_HORIZON)
-            | _bits(
-                status == EarthOrientationStatus.PREDICTED,
-                ObservedFlag.EARTH_ORIENTATION_PREDICTED,
-            )
-            | _bits(
-                status == EarthOrientationStatus.UNAVAILABLE,
-                ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE,
-            )
+            | _bits(status == _PREDICTED, ObservedFlag.EARTH_ORIENTATION_PREDICTED)
+            | _bits(status == _UNAVAILABLE, ObservedFlag.EARTH_ORIENTATION_UNAVAILABLE)
             | _bits(mjd_utc > eop.leap_second_expiry_mjd, ObservedFlag.LEAP_SECONDS_EXTRAPOLATED)
             | _bits(refr.pressure_warning is not None, ObservedFlag.PRESSURE_IMPLAUSIBLE)
         )
-        self.instant_flags = instant_flags if np.any(instant_flags) else None
+        self.instant_flags = instant_flags if instant_flags.any() else None
         self._geo = None
 
     def geocentric(self):
