@@ -353,6 +353,15 @@ class AtmosphereSchema(ma.Schema):
             )
 
 
+def _within_supported_span(instant) -> None:
+    """An instant within the span of the observed place, on its UTC date, as
+    core.observed_places checks it (a validator of each item: its index is its own, even
+    where other items of the list were refused)."""
+    epoch = 2000.0 + ((instant.utc_jd1 - 2451545.0) + instant.utc_jd2) / 365.25
+    if not core.SUPPORTED_EPOCH_MIN <= epoch < core.SUPPORTED_EPOCH_MAX:
+        raise ma.ValidationError(core.SUPPORTED_SPAN_TEXT)
+
+
 class ObservedRequestSchema(ma.Schema):
     stars = StarTableField(
         FrameStarSchema,
@@ -368,7 +377,7 @@ class ObservedRequestSchema(ma.Schema):
         metadata={"description": "Frame of the given astrometry (default ICRS)."},
     )
     instants = ma.fields.List(
-        InstantField(),
+        InstantField(validate=_within_supported_span),
         required=True,
         validate=ma.validate.Length(min=1),
         metadata={
@@ -411,20 +420,10 @@ class ObservedRequestSchema(ma.Schema):
 
     @ma.validates_schema(skip_on_field_errors=False)
     def _checks_across_members(self, data, **kwargs):
-        """The checks beyond each member's own, run even where other members failed, so
-        that one answer names every invalid field: each instant within the supported span
-        (on its UTC date, as core.observed_places checks it), and air that can exist at the
-        site (core.refraction_settings: its pressure may come from the site's height)."""
+        """The check that needs two members, run even where other members failed, so that
+        one answer names every invalid field: air that can exist at the site
+        (core.refraction_settings: its pressure may come from the site's height)."""
         errors = {}
-        bad = [
-            k
-            for k, t in enumerate(data.get("instants") or ())
-            if not core.SUPPORTED_EPOCH_MIN
-            <= 2000.0 + ((t.utc_jd1 - 2451545.0) + t.utc_jd2) / 365.25
-            < core.SUPPORTED_EPOCH_MAX
-        ]
-        if bad:
-            errors["instants"] = {k: [core.SUPPORTED_SPAN_TEXT] for k in bad[:50]}
         if "site" in data and "atmosphere" in data:  # both valid on their own
             try:
                 core.refraction_settings(
@@ -643,8 +642,9 @@ def observed(args):
     utc1 = np.array([t.utc_jd1 for t in given])
     utc2 = np.array([t.utc_jd2 for t in given])
     # The site, the atmosphere and the instants' span were checked by the schema
-    # (SiteField, _checks_across_members); the core checks them again, and any difference
-    # between the two is still answered 422 naming the field (_core_error).
+    # (SiteField, _within_supported_span, _checks_across_members); the core checks them
+    # again, and any difference between the two is still answered 422 naming the field
+    # (_core_error).
     sites = _site_list()
     try:
         site = core.resolve_site(args["site"], sites)

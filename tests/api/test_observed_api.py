@@ -524,6 +524,17 @@ def test_every_invalid_field_is_named_in_one_answer(client, observed_example, ch
     assert [e for e in r.json["errors"] if e["field"] != "stars[0].ra_deg"] == alone.json["errors"]
 
 
+def test_span_of_an_instant_named_by_its_own_index_beside_an_unreadable_one(
+    client, observed_example
+):
+    """An instant outside the span is named at its own index even where an earlier item of
+    the list could not be read (marshmallow keeps only the items that loaded)."""
+    r = client.post(OBS, json=dict(observed_example, instants=["yesterday", "J2450.0"]))
+    assert r.status_code == 422
+    errors = [(e["field"], e["message"][:14]) for e in r.json["errors"]]
+    assert errors == [("instants[0]", "cannot read ep"), ("instants[1]", "must lie betwe")]
+
+
 def test_unknown_site_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
     assert_problem(r, 422, "site.name")
