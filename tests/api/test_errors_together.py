@@ -7,6 +7,11 @@ be in the same 422 problem, under the paths and in the words each has alone: a c
 that fixes the first must not meet the second only in the next round.
 """
 
+import io
+
+import pyarrow as pa
+import pytest
+
 #: A star refused for its own sake: right ascension out of range.
 BAD_STAR = {"ra_deg": 400.0, "dec_deg": 10.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
 #: A star valid on its own.
@@ -108,6 +113,131 @@ def test_propagation_correlation_out_of_range_is_not_judged_again(client):
     assert set(errors_of(r)) == {"stars[0].correlation_ra_dec"}
 
 
+# ------------------------------------------------------------------ /v1/frames
+
+
+@pytest.mark.parametrize(
+    ("frames", "field", "message"),
+    [
+        ({"from_frame": {"name": "galactic", "equinox": 2000}}, "from_frame.equinox",
+         "frame galactic takes no equinox"),
+        ({"from_frame": {"name": "fk5", "equinox": "of_date"}}, "from_frame.equinox",
+         "equinox 'of_date' is for the ecliptic frame only"),
+        ({"from_frame": {"name": "icrs"}, "to_frame": {"name": "fk4", "equinox": 50}},
+         "to_frame.equinox", "equinox must be between 1000 and 3000"),
+    ],
+)  # fmt: skip
+def test_frames_equinox_with_a_bad_star(client, frames, field, message):
+    r = client.post("/v1/frames", json={"stars": [BAD_STAR], "catalogue_epoch": 2016.0, **frames})
+    assert_names(r, ("stars[0].ra_deg", "must be between 0 and 360"), (field, message))
+
+
+# ------------------------------------------------------------------ /v1/constellations
+
+
+@pytest.mark.parametrize("endpoint", ["lookup", "margins"])
+def test_half_proper_motion_with_a_bad_star(client, endpoint):
+    r = client.post(f"/v1/constellations/{endpoint}", json={"stars": [BAD_STAR, HALF_MOTION_STAR]})
+    assert_names(
+        r,
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("stars[1].pm_dec_mas_yr", "is missing while pm_ra_cosdec_mas_yr is given"),
+    )
+
+
+def test_half_proper_motion_and_bad_position_of_one_star(client):
+    star = {**HALF_MOTION_STAR, "dec_deg": 95.0}
+    r = client.post("/v1/constellations/lookup", json={"stars": {k: [v] for k, v in star.items()}})
+    assert_names(
+        r,
+        ("stars.dec_deg[0]", "must be between -90 and 90"),
+        ("stars.pm_dec_mas_yr[0]", "is missing while pm_ra_cosdec_mas_yr is given"),
+    )
+
+
+def test_proper_motion_out_of_range_is_not_called_missing(client):
+    # pm_dec given but refused for its own sake: not "missing while pm_ra is given".
+    star = {**STAR, "pm_dec_mas_yr": 1e11}
+    r = client.post("/v1/constellations/lookup", json={"stars": [star]})
+    assert set(errors_of(r)) == {"stars[0].pm_dec_mas_yr"}
+    assert len(r.json["errors"]) == 1
+
+
+def test_lookup_near_boundary_with_a_bad_star(client):
+    r = client.post(
+        "/v1/constellations/lookup", json={"stars": [BAD_STAR], "near_boundary_arcsec": 5.0}
+    )
+    assert_names(
+        r,
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("near_boundary_arcsec", "is an option of /v1/constellations/margins"),
+    )
+
+
+def test_lookup_epoch_without_catalogue_epoch_with_a_bad_star(client):
+    r = client.post("/v1/constellations/lookup", json={"stars": [BAD_STAR], "epoch": 2000.0})
+    assert_names(
+        r,
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("catalogue_epoch", "give catalogue_epoch (the epoch of the positions) with epoch"),
+    )
+
+
+def test_lookup_bad_catalogue_epoch_is_not_called_missing(client):
+    r = client.post(
+        "/v1/constellations/lookup",
+        json={"stars": [STAR], "epoch": 2000.0, "catalogue_epoch": "soon"},
+    )
+    errors = errors_of(r)
+    assert list(errors) == ["catalogue_epoch"] and len(errors["catalogue_epoch"]) == 1
+    assert errors["catalogue_epoch"][0].startswith("cannot read epoch")
+
+
+def test_lookup_frame_equinox_with_a_bad_star(client):
+    r = client.post(
+        "/v1/constellations/lookup",
+        json={"stars": [BAD_STAR], "frame": {"name": "galactic", "equinox": 2000}},
+    )
+    assert_names(
+        r,
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("frame.equinox", "frame galactic takes no equinox"),
+    )
+
+
+@pytest.mark.parametrize(
+    ("window", "field", "message"),
+    [
+        ({"start": 2100.0, "end": 2050.0}, "end", "must be later than start"),
+        ({"start": 2100.0, "end": "J150000.0"}, "end",
+         "must be within 100000 years of catalogue_epoch"),
+        ({"start": 2000.0, "end": 2050.0, "max_step_yr": 1e-4}, "max_step_yr",
+         "must be at least 1 day"),
+        ({"start": "J-90000.0", "end": "J90000.0", "max_step_yr": 0.003}, "max_step_yr",
+         "too small for the window: more than 10**6 steps"),
+    ],
+)  # fmt: skip
+def test_crossings_window_with_a_bad_star(client, window, field, message):
+    r = client.post(
+        "/v1/constellations/crossings",
+        json={"stars": [BAD_STAR], "catalogue_epoch": 2000.0, **window},
+    )
+    assert_names(r, ("stars[0].ra_deg", "must be between 0 and 360"), (field, message))
+
+
+@pytest.mark.parametrize(
+    ("path", "query", "message"),
+    [
+        ("/v1/constellations/Tau/outline", "frame=galactic&equinox=2000",
+         "only for frame fk5 or fk4"),
+        ("/v1/constellations/outlines", "frame=fk5&equinox=900", "must be between 1000 and 3000"),
+    ],
+)  # fmt: skip
+def test_outline_equinox_with_a_bad_tolerance(client, path, query, message):
+    r = client.get(f"{path}?{query}&tolerance_arcsec=-1")
+    assert_names(r, ("tolerance_arcsec", "must be between 0.001 and 60"), ("equinox", message))
+
+
 # ------------------------------------------------------------------ /v1/velocity
 
 
@@ -158,4 +288,41 @@ def test_csv_bad_cells_with_a_bad_option(client):
         ("line 2: ra_deg", "must be between 0 and 360"),
         ("line 3: pm_dec_mas_yr", "is required; the cell is empty"),
         ("model", "must be one of: standard, light_time"),
+    )
+
+
+def test_csv_half_proper_motion_with_a_bad_option(client):
+    r = client.post(
+        "/v1/constellations/lookup?near_boundary_arcsec=3", data=CSV_BODY, content_type="text/csv"
+    )
+    assert_names(
+        r,
+        ("line 2: ra_deg", "must be between 0 and 360"),
+        ("line 3: pm_dec_mas_yr", "is missing while pm_ra_cosdec_mas_yr is given"),
+        ("near_boundary_arcsec", "is an option of /v1/constellations/margins"),
+    )
+
+
+def test_arrow_half_proper_motion_with_a_bad_option(client):
+    table = pa.table(
+        {
+            "ra_deg": [400.0, 40.0],
+            "dec_deg": [10.0, 10.0],
+            "pm_ra_cosdec_mas_yr": [1.0, 1.0],
+            "pm_dec_mas_yr": [1.0, None],
+        }
+    )
+    sink = io.BytesIO()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    r = client.post(
+        "/v1/constellations/lookup?near_boundary_arcsec=3",
+        data=sink.getvalue(),
+        content_type="application/vnd.apache.arrow.stream",
+    )
+    assert_names(
+        r,
+        ("stars.ra_deg[0]", "must be between 0 and 360"),
+        ("stars.pm_dec_mas_yr[1]", "is missing while pm_ra_cosdec_mas_yr is given"),
+        ("near_boundary_arcsec", "is an option of /v1/constellations/margins"),
     )
