@@ -272,6 +272,54 @@ def test_observables_solar_motion_without_lsr_with_a_bad_star(client):
     )
 
 
+# ------------------------------------------------------------------ /v1/charts
+
+
+@pytest.mark.parametrize(
+    ("span", "field", "message"),
+    [
+        ({"start": 2100.0, "stop": 2050.0}, "stop", "must be later than start"),
+        ({"start": "J-190000.0", "stop": "J15000.0", "boundaries": False}, "stop",
+         "at most 200,000 years after start"),
+        ({"start": 2000.0, "stop": "J150000.0"}, "stop", "must be within 100,000 years"),
+    ],
+)  # fmt: skip
+def test_track_span_with_a_bad_star(client, span, field, message):
+    r = client.post(
+        "/v1/charts/track", json={"stars": [BAD_STAR], "catalogue_epoch": 2000.0, **span}
+    )
+    assert_names(r, ("stars[0].ra_deg", "must be between 0 and 360"), (field, message))
+
+
+@pytest.mark.parametrize(
+    ("path", "options"),
+    [
+        ("/v1/charts/track", {"start": 2000.0, "stop": 2100.0}),
+        ("/v1/charts/field", {"epochs": [2000.0, 2100.0]}),
+    ],
+)
+def test_chart_id_not_drawable_with_a_bad_star(client, path, options):
+    stars = [BAD_STAR, {**STAR, "id": "KV\x01"}]
+    r = client.post(path, json={"stars": stars, "catalogue_epoch": 2000.0, **options})
+    assert_names(
+        r,
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("stars[1].id", "must not contain control characters"),
+    )
+
+
+def test_field_chart_same_epochs_with_a_bad_star(client):
+    r = client.post(
+        "/v1/charts/field",
+        json={"stars": [BAD_STAR], "catalogue_epoch": 2000.0, "epochs": [2000.0, 2000.0]},
+    )
+    assert_names(
+        r,
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("epochs", "the two epochs must differ"),
+    )
+
+
 # ------------------------------------------------------------------ CSV and Arrow bodies
 
 CSV_BODY = "ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\n400,10,1,1\n40,10,1,\n"
