@@ -166,10 +166,14 @@ class FieldChartRequestSchema(ma.Schema):
     format = _format_field()
     title = _title_field()
 
-    @ma.validates_schema(skip_on_field_errors=False)
-    def _epochs_differ(self, data, **kwargs):
+    @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
+    def _epochs_differ(self, data, original, **kwargs):
+        # A list with an epoch refused comes with the others only (marshmallow keeps the
+        # valid items): judged only when both were read.
         epochs = data.get("epochs")
-        if "arrow_years" in data and data["arrow_years"] is None and epochs:
+        sent = original.get("epochs") if isinstance(original, dict) else None
+        both = isinstance(sent, list) and len(sent) == 2 and len(epochs or ()) == 2
+        if both and "arrow_years" in data and data["arrow_years"] is None:
             if epochs[0] == epochs[1]:
                 raise ma.ValidationError("the two epochs must differ", "epochs")
 

@@ -374,3 +374,17 @@ def test_arrow_half_proper_motion_with_a_bad_option(client):
         ("stars.pm_dec_mas_yr[1]", "is missing while pm_ra_cosdec_mas_yr is given"),
         ("near_boundary_arcsec", "is an option of /v1/constellations/margins"),
     )
+
+
+@pytest.mark.parametrize(
+    ("epochs", "field"), [([2000.0, "zz"], "epochs[1]"), ([2000.0, "zz", 2000.0], "epochs[1]")]
+)
+def test_field_chart_epochs_judged_only_when_read(client, epochs, field):
+    # marshmallow keeps the epochs read of a list with one refused: they are not compared
+    # (a list of one would fail the comparison, one of two left of three would call them
+    # equal).
+    r = client.post(
+        "/v1/charts/field", json={"stars": [STAR], "catalogue_epoch": 2000.0, "epochs": epochs}
+    )
+    errors = errors_of(r)
+    assert field in errors and "epochs" not in errors, errors
