@@ -178,20 +178,25 @@ def _correlation_matrices(cols, rows):
     """(K, 6, 6) correlation matrices of the stars ``rows`` (absent correlations 0), and
     which of them give a correlation among the five astrometric parameters, and which one
     with the radial velocity."""
-    k = rows.size
-    corr = np.zeros((k, 6, 6))
-    corr[:, range(6), range(6)] = 1.0
-    given_any = np.zeros(k, dtype=bool)  # a correlation among the five astrometric ones
-    given_rv = np.zeros(k, dtype=bool)  # one with the radial velocity
-    for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
-        c = cols[name][rows]
-        known = np.isfinite(c)
-        if j < 5:
-            given_any |= known
-        else:
-            given_rv |= known
-        corr[:, i, j] = corr[:, j, i] = np.where(known, c, 0.0)
-    return corr, given_any, given_rv
+    given = np.stack([cols[name] for name in CORRELATION_FIELDS], axis=-1)[rows]  # (K, 15)
+    known = np.isfinite(given)
+    values = np.where(known, given, 0.0)
+    corr = np.zeros((rows.size, 36))  # one row-major 6 x 6 matrix per star
+    corr[:, _DIAGONAL] = 1.0
+    corr[:, _UPPER] = values
+    corr[:, _LOWER] = values
+    given_any = known[:, _WITH_RV == 0].any(axis=-1)  # among the five astrometric ones
+    given_rv = known[:, _WITH_RV == 1].any(axis=-1)  # with the radial velocity
+    return corr.reshape(-1, 6, 6), given_any, given_rv
+
+
+#: Places of the correlations of CORRELATION_FIELDS in a row-major 6 x 6 matrix (above
+#: and below the diagonal), of its diagonal, and which correlations are with the radial
+#: velocity (parameter 5).
+_UPPER = np.array([6 * i + j for i, j in CORRELATION_PAIRS])
+_LOWER = np.array([6 * j + i for i, j in CORRELATION_PAIRS])
+_DIAGONAL = np.arange(6) * 7
+_WITH_RV = np.array([int(j == 5) for _, j in CORRELATION_PAIRS])
 
 
 def _rv_known(cols, errs):
@@ -219,18 +224,23 @@ def _impossible_correlations(table, usable):
     cols = table.columns
     errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
     _, complete = _complete(cols, errs)
-    rows = np.flatnonzero(complete & usable)
-    if rows.size == 0:
-        return []
+    rows = np.flatnonzero(usable)
     corr, given_any, given_rv = _correlation_matrices(cols, rows)
+    if rows.size == table.size:  # all usable: the view's covariance is made from these
+        table.derived[_CORRELATIONS_KEY] = (corr, given_any)
     rv_known = _rv_known(cols, errs)[rows]
-    check = given_any | (given_rv & rv_known)
-    corr, rv_known, rows = corr[check], rv_known[check], rows[check]
-    corr[~rv_known, 5, :] = 0.0
-    corr[~rv_known, :, 5] = 0.0
-    corr[~rv_known, 5, 5] = 1.0
-    low = np.linalg.eigvalsh(corr)[:, 0] if rows.size else np.empty(0)
+    check = complete[rows] & (given_any | (given_rv & rv_known))
+    sub, rv_known, rows = corr[check], rv_known[check], rows[check]  # a copy: changed here
+    sub[~rv_known, 5, :] = 0.0
+    sub[~rv_known, :, 5] = 0.0
+    sub[~rv_known, 5, 5] = 1.0
+    low = np.linalg.eigvalsh(sub)[:, 0] if rows.size else np.empty(0)
     return [(rows[low < -1e-9], "correlation_*", NOT_POSITIVE_SEMIDEFINITE)]
+
+
+#: Key of the correlation matrices of every star, (N, 6, 6), and the mask of those that
+#: give a correlation among the five astrometric parameters, in StarTable.derived.
+_CORRELATIONS_KEY = "propagation.correlations"
 
 
 #: The checks of each star's values together, run with the star table's own.
@@ -490,7 +500,10 @@ def _covariance(table, n):
     incomplete = some & ~complete
     if not complete.any():
         return None, complete, incomplete, none, none
-    corr, given_any, _ = _correlation_matrices(cols, np.arange(n))
+    shared = table.derived.get(_CORRELATIONS_KEY)  # made by _impossible_correlations
+    if shared is None:
+        shared = _correlation_matrices(cols, np.arange(n))[:2]
+    corr, given_any = shared
     rv_known = _rv_known(cols, errs)
     sig = np.where(np.isfinite(errs), errs, 0.0)
     cov = corr * sig[:, :, None] * sig[:, None, :]

@@ -116,6 +116,11 @@ class StarTable:
         Which form the client used; paths in error messages follow it.
     given : set of str
         Columns the client supplied (even if some values are null).
+    lines : list of int or None
+        For a CSV body, the file line of each star.
+    derived : dict
+        What the table's checks (RowCheck) computed that the view uses as well, by a key
+        of the check's own, so that it is not computed twice.
     """
 
     columns: dict
@@ -124,6 +129,7 @@ class StarTable:
     form: str
     given: set = field(default_factory=set)
     lines: list | None = None
+    derived: dict = field(default_factory=dict)
 
     def path(self, index: int, name: str, field_name: str = "stars") -> str:
         """Path of one value for error messages: stars[3].dec_deg, stars.dec_deg[3], or
