@@ -430,13 +430,14 @@ def cmd_crossings(args) -> int:
 
 
 def _unknown_columns(exc: SkydriftError) -> list[str]:
-    """Header columns an endpoint refused as unknown, if that was the only complaint."""
+    """Header columns an endpoint refused as unknown. The answer names the other invalid
+    fields of the request too; they come back alone when the run is made again without
+    these columns."""
     names = []
     for e in exc.errors:
         m = _CSV_LINE_FIELD.match(e.field)
-        if not (m and e.message.startswith("unknown field")):
-            return []
-        names.append(m.group(2))
+        if m and e.message.startswith("unknown field"):
+            names.append(m.group(2))
     return names
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import re
 
 import marshmallow as ma
+import numpy as np
 from flask import Response, request
 from flask_smorest import abort
 
@@ -12,7 +13,7 @@ from .common import Blueprint, EpochField, StrictBoolean, StrictFloat
 from .examples import load_example
 from .observability import count_stars
 from .propagation import StarAstrometrySchema
-from .tables import StarTableField
+from .tables import RowCheck, StarTableField
 
 blp = Blueprint(
     "charts",
@@ -51,6 +52,23 @@ def _drawable(text: str) -> None:
         raise ma.ValidationError(_NOT_XML_MESSAGE)
 
 
+def _drawable_ids(table, usable):
+    """RowCheck of a chart's star table: the ids that label the stars must be drawable (an
+    empty one labels nothing: such stars are named by their index, as stars without one)."""
+    if table.ids is None:
+        return []
+    bad = [
+        k
+        for k, v in enumerate(table.ids)
+        if usable[k] and v is not None and str(v).strip() and _NOT_XML.search(str(v))
+    ]
+    return [(np.asarray(bad, dtype=np.int64), "id", _NOT_XML_MESSAGE)]
+
+
+#: The checks of each star's values together in a chart, run with the star table's own.
+_STAR_CHECKS = (RowCheck(("id",), _drawable_ids),)
+
+
 def _title_field():
     return ma.fields.String(
         load_default=None,
@@ -63,6 +81,7 @@ def _title_field():
 class TrackChartRequestSchema(ma.Schema):
     stars = StarTableField(
         StarAstrometrySchema,
+        checks=_STAR_CHECKS,
         required=True,
         metadata={"description": "The stars (1 to 12), records or columns; ids label them."},
     )
@@ -90,10 +109,39 @@ class TrackChartRequestSchema(ma.Schema):
     format = _format_field()
     title = _title_field()
 
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _span(self, data, **kwargs):
+        from .. import charts
+
+        start, stop = data.get("start"), data.get("stop")
+        if start is not None and stop is not None:
+            if stop <= start:
+                raise ma.ValidationError("must be later than start", "stop")
+            if stop - start > 200_000.0:
+                raise ma.ValidationError("at most 200,000 years after start", "stop")
+        cat = data.get("catalogue_epoch")
+        cons = charts._constellations() if data.get("boundaries") else None
+        if cons is None or cat is None:
+            return
+        # The crossing search has a narrower window than the tracks: say so on the field
+        # at fault, in the request's own terms (it reached the caller as an error on
+        # "stars" naming an internal argument).
+        errors = {}
+        for name in ("start", "stop"):
+            if data.get(name) is not None and abs(data[name] - cat) > cons.MAX_CROSSING_WINDOW_YR:
+                errors[name] = [
+                    f"must be within {cons.MAX_CROSSING_WINDOW_YR:,.0f} years of "
+                    "catalogue_epoch when boundaries are drawn (set boundaries to false "
+                    "for a longer track)"
+                ]
+        if errors:
+            raise ma.ValidationError(errors)
+
 
 class FieldChartRequestSchema(ma.Schema):
     stars = StarTableField(
         StarAstrometrySchema,
+        checks=_STAR_CHECKS,
         required=True,
         metadata={"description": f"The stars (at most {MAX_FIELD_STARS}), records or columns."},
     )
@@ -117,6 +165,17 @@ class FieldChartRequestSchema(ma.Schema):
     )
     format = _format_field()
     title = _title_field()
+
+    @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
+    def _epochs_differ(self, data, original, **kwargs):
+        # A list with an epoch refused comes with the others only (marshmallow keeps the
+        # valid items): judged only when both were read.
+        epochs = data.get("epochs")
+        sent = original.get("epochs") if isinstance(original, dict) else None
+        both = isinstance(sent, list) and len(sent) == 2 and len(epochs or ()) == 2
+        if both and "arrow_years" in data and data["arrow_years"] is None:
+            if epochs[0] == epochs[1]:
+                raise ma.ValidationError("the two epochs must differ", "epochs")
 
 
 def _image_format(args) -> str:
@@ -142,14 +201,10 @@ def _labels(table) -> list[str]:
     if table.ids is None:
         return [f"star {k}" for k in range(table.size)]
     # An empty id labels nothing: such stars are named by their index, as stars without one.
-    labels = [
+    # Ids that cannot be drawn are refused by the star table (_drawable_ids).
+    return [
         f"star {k}" if v is None or not str(v).strip() else str(v) for k, v in enumerate(table.ids)
     ]
-    bad = [k for k, text in enumerate(labels) if _NOT_XML.search(text)]
-    if bad:
-        abort(422, errors=[{"field": table.path(k, "id"), "message": _NOT_XML_MESSAGE}
-                           for k in bad])  # fmt: skip
-    return labels
 
 
 def _image(data: bytes, image_format: str) -> Response:
@@ -200,23 +255,8 @@ def track(args):
                 }
             ],
         )
-    if args["stop"] <= args["start"]:
-        abort(422, errors=[{"field": "stop", "message": "must be later than start"}])
-    if args["stop"] - args["start"] > 200_000.0:
-        abort(422, errors=[{"field": "stop", "message": "at most 200,000 years after start"}])
-    cons = charts._constellations() if args["boundaries"] else None
-    if cons is not None:
-        # The crossing search has a narrower window than the tracks: say so on the field
-        # at fault, in the request's own terms (it reached the caller as an error on
-        # "stars" naming an internal argument).
-        for name in ("start", "stop"):
-            if abs(args[name] - args["catalogue_epoch"]) > cons.MAX_CROSSING_WINDOW_YR:
-                message = (
-                    f"must be within {cons.MAX_CROSSING_WINDOW_YR:,.0f} years of "
-                    "catalogue_epoch when boundaries are drawn (set boundaries to false "
-                    "for a longer track)"
-                )
-                abort(422, errors=[{"field": name, "message": message}])
+    # The span (stop after start, and within the crossing search's window when boundaries
+    # are drawn) is checked by the request schema (TrackChartRequestSchema).
     try:
         chart = charts.sky_tracks(
             *_columns(table),
@@ -259,9 +299,7 @@ def field(args):
             422,
             errors=[{"field": "stars", "message": f"at most {MAX_FIELD_STARS} stars per field"}],
         )
-    e1, e2 = args["epochs"]
-    if args["arrow_years"] is None and e1 == e2:
-        abort(422, errors=[{"field": "epochs", "message": "the two epochs must differ"}])
+    e1, e2 = args["epochs"]  # different, or arrow_years given (FieldChartRequestSchema)
     chart = charts.star_field(
         *_columns(table),
         catalogue_epoch_jyear=args["catalogue_epoch"],

@@ -34,12 +34,11 @@ from .common import (
     star_count_field,
     units_field,
 )
-from .errors import MORE_FIELD, further
 from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
-from .tables import StarTableField
+from .tables import RowCheck, StarTableField
 
 blp = Blueprint(
     "constellations",
@@ -149,6 +148,28 @@ def _star_fields(motion_required: bool) -> dict:
     }
 
 
+def _half_proper_motions(table, usable):
+    """RowCheck of a lookup's star table: a star with one proper-motion component and not
+    the other is refused (taking the missing one as zero would move the star along a
+    direction the client never gave)."""
+    pma = np.isfinite(table.columns["pm_ra_cosdec_mas_yr"])
+    pmd = np.isfinite(table.columns["pm_dec_mas_yr"])
+    found = []
+    for given, missing, rows in (
+        ("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr", pma & ~pmd & usable),
+        ("pm_dec_mas_yr", "pm_ra_cosdec_mas_yr", pmd & ~pma & usable),
+    ):
+        message = (
+            f"is missing while {given} is given: give both proper-motion components, or "
+            "neither for a fixed position"
+        )
+        found.append((np.flatnonzero(rows), missing, message))
+    return found
+
+
+#: The checks of each star's values together in a lookup, run with the star table's own.
+_LOOKUP_STAR_CHECKS = (RowCheck(("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr"), _half_proper_motions),)
+
 #: One position, optionally with space motion, for a lookup.
 ConstellationStarSchema = ma.Schema.from_dict(
     _star_fields(motion_required=False), name="ConstellationStarSchema"
@@ -160,6 +181,7 @@ MovingStarSchema = ma.Schema.from_dict(_star_fields(motion_required=True), name=
 class LookupRequestSchema(ma.Schema):
     stars = StarTableField(
         ConstellationStarSchema,
+        checks=_LOOKUP_STAR_CHECKS,
         required=True,
         metadata={"description": "Positions: a list of records, or an object of columns."},
     )
@@ -212,11 +234,31 @@ class LookupRequestSchema(ma.Schema):
         },
     )
 
-    @ma.validates_schema
-    def _epochs(self, data, **kwargs):
-        if data.get("epoch") is not None and data.get("catalogue_epoch") is None:
+    def __init__(self, *args, near_boundary: bool = True, **kwargs):
+        """``near_boundary=False``: the lookup's schema, which refuses near_boundary_arcsec
+        (the margins endpoint takes it)."""
+        super().__init__(*args, **kwargs)
+        self.near_boundary = near_boundary
+
+    @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
+    def _epochs(self, data, original, **kwargs):
+        # A catalogue_epoch given but refused for its own sake is not called missing.
+        given = isinstance(original, dict) and original.get("catalogue_epoch") is not None
+        if data.get("epoch") is not None and not given:
             raise ma.ValidationError(
                 "give catalogue_epoch (the epoch of the positions) with epoch", "catalogue_epoch"
+            )
+
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _near_boundary(self, data, **kwargs):
+        if not self.near_boundary and data.get("near_boundary_arcsec") is not None:
+            # The lookup measures no distance to a boundary and so flags none: the option
+            # would be read and do nothing, and a star near a boundary would come back
+            # unflagged.
+            raise ma.ValidationError(
+                "is an option of /v1/constellations/margins (the lookup measures no "
+                "distance to the boundary)",
+                "near_boundary_arcsec",
             )
 
 
@@ -261,6 +303,27 @@ class CrossingsRequestSchema(ma.Schema):
         validate=ma.validate.OneOf(core.REDUCTIONS),
         metadata={"description": REDUCTION_DESCRIPTION},
     )
+
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _window(self, data, **kwargs):
+        cat, start, end = (data.get(k) for k in ("catalogue_epoch", "start", "end"))
+        errors: dict[str, list[str]] = {}
+        ordered = start is not None and end is not None and end > start
+        if start is not None and end is not None and not ordered:
+            errors["end"] = ["must be later than start"]
+        for name, value in (("start", start), ("end", end)):
+            if cat is not None and value is not None:
+                if abs(value - cat) > core.MAX_CROSSING_WINDOW_YR:
+                    message = "must be within 100000 years of catalogue_epoch"
+                    errors.setdefault(name, []).append(message)
+        step = data.get("max_step_yr")
+        if step is not None:
+            if not np.isfinite(step) or step < core.MIN_CROSSING_STEP_YR:
+                errors["max_step_yr"] = ["must be at least 1 day (0.0027379 yr)"]
+            elif ordered and (end - start) / step > 1e6:
+                errors["max_step_yr"] = ["too small for the window: more than 10**6 steps"]
+        if errors:
+            raise ma.ValidationError(errors)
 
 
 class OutlineEquinoxField(EpochField):
@@ -314,6 +377,42 @@ class OutlineQuerySchema(ma.Schema):
             "and the straight (lon, lat) lines joining the outline's vertices. Default 0.05."
         },
     )
+
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _frame_takes_equinox(self, data, **kwargs):
+        if "frame" in data and data.get("equinox") is not None:
+            try:
+                _outline_equinox(data["frame"], data["equinox"])
+            except ValueError as exc:
+                raise ma.ValidationError(str(exc), "equinox") from None
+
+    @ma.post_load
+    def _equinox_year(self, data, **kwargs):
+        """The equinox as the core takes it: a Besselian year for fk4, a Julian year for
+        fk5, None for the frame's default."""
+        return {**data, "equinox": _outline_equinox(data["frame"], data.get("equinox"))}
+
+
+def _outline_equinox(frame: str, equinox) -> float | None:
+    """An outline's frame and OutlineEquinoxField value -> its equinox, a Besselian year
+    for fk4 and a Julian year for fk5 (None: none given); ValueError (its message for the
+    field) for a frame that takes none, or one outside the range taken."""
+    kind, value = equinox or (None, None)
+    if value is None:
+        return None
+    if frame == "fk4" and kind == "jyear":  # the FK4 frame takes a Besselian equinox
+        value = float(core_epochs.julian_epoch_to_besselian_epoch(value))
+    elif frame not in ("fk4", "fk5"):
+        raise ValueError("only for frame fk5 or fk4")
+    # To 1e-9 year (0.03 s), as /v1/frames takes an equinox: the round trip through a
+    # Julian date leaves B1875.0 as 1874.9999999999998 (echoed so) and B1000.0, the range's
+    # end, as 999.9999999999999 (refused).
+    value = round(value, 9)
+    try:  # the range every frame with an equinox takes (core.frames.make_frame)
+        core_frames.make_frame(frame, value)
+    except ValueError as exc:
+        raise ValueError(str(exc).removeprefix("equinox ")) from None
+    return value
 
 
 @always_present
@@ -526,7 +625,6 @@ def _locate(args, with_margin: bool):
     epoch = args.get("epoch")
     if epoch is None:
         epoch = cat_epoch
-    _refuse_half_proper_motions(table, pma, pmd)
     implausible = core_prop.implausible_input_flags(plx, pma, pmd, rv)
     if args["near_boundary_arcsec"] is None:  # the operator's default
         near = current_app.config["SKYDRIFT_SETTINGS"].near_boundary_arcsec
@@ -535,7 +633,7 @@ def _locate(args, with_margin: bool):
     # at_pole: a pole of the request's frame as given (the ICRS the core moves the star in
     # is a step of the computation, as in the frames answer).
     at_pole = core_frames.pole_flags(dec) != 0
-    frame = frame_from_spec(args["frame"], "frame")
+    frame = frame_from_spec(args["frame"])
     if frame.name != "icrs":
         at = cat_epoch if cat_epoch is not None else (epoch if epoch is not None else 2000.0)
         icrs = core_frames.convert(
@@ -583,36 +681,6 @@ def _locate(args, with_margin: bool):
         fixed = np.uint16(core.ConstellationFlag.PROPER_MOTION_MISSING)
         flags = np.where(moving, flags, flags | fixed)
     return table, res, flags, implausible, epoch
-
-
-def _refuse_half_proper_motions(table, pma, pmd) -> None:
-    """422 for a star with one proper-motion component and not the other: taking the
-    missing one as zero would move the star along a direction the client never gave."""
-    half = np.flatnonzero(np.isfinite(pma) != np.isfinite(pmd))
-    if half.size == 0:
-        return
-    errors = []
-    for i in half[:MAX_HALF_MOTION_ERRORS].tolist():
-        given, missing = (
-            ("pm_ra_cosdec_mas_yr", "pm_dec_mas_yr")
-            if np.isfinite(pma[i])
-            else ("pm_dec_mas_yr", "pm_ra_cosdec_mas_yr")
-        )
-        errors.append(
-            {
-                "field": table.path(i, missing),
-                "message": f"is missing while {given} is given: give both proper-motion "
-                "components, or neither for a fixed position",
-            }
-        )
-    if half.size > MAX_HALF_MOTION_ERRORS:
-        more = half.size - MAX_HALF_MOTION_ERRORS
-        errors.append({"field": MORE_FIELD, "message": further(more, "stars like these")})
-    abort(422, errors=errors)
-
-
-#: Stars listed by name when proper motions are given by halves.
-MAX_HALF_MOTION_ERRORS = 50
 
 
 #: The implausible-input (PropagationFlag) bits of a star are kept above this shift in the
@@ -745,7 +813,10 @@ def list_constellations():
 
 @blp.route("/lookup", methods=["POST"])
 @blp.doc(operationId="lookUpConstellations")
-@blp.arguments(LookupRequestSchema(), example=load_example("constellations_lookup_request.json"))
+@blp.arguments(
+    LookupRequestSchema(near_boundary=False),
+    example=load_example("constellations_lookup_request.json"),
+)
 @blp.response(200, LookupResponseSchema)
 def lookup(args):
     """Find the constellation of each position.
@@ -756,19 +827,6 @@ def lookup(args):
     1930; table of Roman 1987) by the chosen reduction, and the answers of the fk4 and fk5
     reductions are both reported. One position or a million: the same endpoint.
     """
-    if args["near_boundary_arcsec"] is not None:
-        # The lookup measures no distance to a boundary and so flags none: the option would
-        # be read and do nothing, and a star near a boundary would come back unflagged.
-        abort(
-            422,
-            errors=[
-                {
-                    "field": "near_boundary_arcsec",
-                    "message": "is an option of /v1/constellations/margins (the lookup "
-                    "measures no distance to the boundary)",
-                }
-            ],
-        )
     return _membership_body(args, with_margin=False)
 
 
@@ -817,39 +875,9 @@ def crossings(args):
                 }
             ],
         )
+    # The window and the step are checked by the request schema (CrossingsRequestSchema).
     cat, start, end = args["catalogue_epoch"], args["start"], args["end"]
-    if not end > start:
-        abort(422, errors=[{"field": "end", "message": "must be later than start"}])
-    for name, value in (("start", start), ("end", end)):
-        if abs(value - cat) > core.MAX_CROSSING_WINDOW_YR:
-            abort(
-                422,
-                errors=[
-                    {
-                        "field": name,
-                        "message": "must be within 100000 years of catalogue_epoch",
-                    }
-                ],
-            )
     step = args.get("max_step_yr")
-    if step is not None:
-        if not np.isfinite(step) or step < core.MIN_CROSSING_STEP_YR:
-            abort(
-                422,
-                errors=[
-                    {"field": "max_step_yr", "message": "must be at least 1 day (0.0027379 yr)"}
-                ],
-            )
-        if (end - start) / step > 1e6:
-            abort(
-                422,
-                errors=[
-                    {
-                        "field": "max_step_yr",
-                        "message": "too small for the window: more than 10**6 steps",
-                    }
-                ],
-            )
     ra, dec, plx, pma, pmd, rv = _table_arrays(table)
     res = core.boundary_crossings(
         ra,
@@ -905,32 +933,6 @@ def crossings(args):
     return current_app.json.response(body)
 
 
-def _outline_options(args):
-    frame, (kind, equinox) = args["frame"], args.get("equinox") or (None, None)
-    if equinox is not None:
-        if frame == "fk4" and kind == "jyear":  # the FK4 frame takes a Besselian equinox
-            equinox = float(core_epochs.julian_epoch_to_besselian_epoch(equinox))
-        elif frame not in ("fk4", "fk5"):
-            abort(
-                422,
-                errors=[{"field": "equinox", "message": "only for frame fk5 or fk4"}],
-            )
-        # To 1e-9 year (0.03 s), as /v1/frames takes an equinox: the round trip through a
-        # Julian date leaves B1875.0 as 1874.9999999999998 (echoed so) and B1000.0, the
-        # range's end, as 999.9999999999999 (refused).
-        equinox = round(equinox, 9)
-        try:  # the range every frame with an equinox takes (core.frames.make_frame)
-            core_frames.make_frame(frame, equinox)
-        except ValueError as exc:
-            abort(422, errors=[{"field": "equinox", "message": str(exc).removeprefix("equinox ")}])
-    return {
-        "frame": frame,
-        "equinox": equinox,
-        "reduction": args["reduction"],
-        "tolerance_arcsec": args["tolerance_arcsec"],
-    }
-
-
 def _geojson(body):
     resp = current_app.json.response(body)
     resp.mimetype = "application/geo+json"
@@ -973,7 +975,7 @@ def outline(args, abbreviation):
             message=f"no IAU constellation with abbreviation {abbreviation!r}; {LIST_HINT}",
             errors=[{"field": "abbreviation", "message": f"unknown; {LIST_HINT}"}],
         )
-    return _geojson(core.outline(index, **_outline_options(args)))
+    return _geojson(core.outline(index, **args))
 
 
 @blp.route("/outlines", methods=["GET"])
@@ -987,7 +989,7 @@ def outlines(args):
     Same options as the outline of one constellation. The outlines share their vertices
     along common boundaries, so they tile the sphere without gaps or overlaps.
     """
-    return _geojson(core.outline_collection(**_outline_options(args)))
+    return _geojson(core.outline_collection(**args))
 
 
 def _table_ready():

@@ -155,6 +155,14 @@ def _in_nested(field, value):
     return value
 
 
+class WholePath(str):
+    """A key of nested error messages that is a whole field path of its own, listed as it
+    is rather than under the field that holds it: the file lines of a CSV body's star table
+    ("line 7: dec_deg"), whose errors marshmallow files under the table field."""
+
+    __slots__ = ()
+
+
 def flatten_messages(messages, prefix: str = "") -> list[dict]:
     """Flatten marshmallow/webargs nested messages into [{"field", "message"}].
 
@@ -164,6 +172,9 @@ def flatten_messages(messages, prefix: str = "") -> list[dict]:
     out: list[dict] = []
     if isinstance(messages, dict):
         for key, value in messages.items():
+            if isinstance(key, WholePath):
+                out.extend(flatten_messages(value, str(key)))
+                continue
             key = str(key)
             if not prefix and key in ("json", "query", "form", "files", "headers", "view_args"):
                 out.extend(flatten_messages(value, ""))

@@ -5,7 +5,6 @@ from __future__ import annotations
 import marshmallow as ma
 import numpy as np
 from flask import current_app
-from flask_smorest import abort
 
 from ..core import epochs as core_epochs
 from ..core import frames as core
@@ -162,22 +161,34 @@ class FrameSpecSchema(ma.Schema):
     )
     equinox = EquinoxField(load_default=None, allow_none=True)
 
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _makes_a_frame(self, data, **kwargs):
+        if "name" not in data or "equinox" not in data:  # refused already, for its own sake
+            return
+        try:
+            _make_frame(data["name"], data["equinox"])
+        except ValueError as exc:
+            raise ma.ValidationError(str(exc), "equinox") from None
 
-def frame_from_spec(spec: dict, field: str) -> core.Frame:
-    """FrameSpecSchema data -> core Frame (422 naming ``field`` on a bad combination)."""
-    name = spec["name"]
-    kind, value = spec.get("equinox") or (None, None)
-    try:
-        if kind is None:
-            return core.make_frame(name)
-        if kind == "of_date":
-            return core.make_frame(name, "of_date")
-        if name == "fk4":
-            bes = value if kind == "number" else core_epochs.julian_epoch_to_besselian_epoch(value)
-            return core.make_frame(name, round(float(bes), 9))
-        return core.make_frame(name, round(float(value), 9))
-    except ValueError as exc:
-        abort(422, errors=[{"field": f"{field}.equinox", "message": str(exc)}])
+
+def _make_frame(name: str, equinox) -> core.Frame:
+    """A frame name and an EquinoxField value -> core Frame (ValueError on a bad
+    combination: an equinox for a frame without one, or outside the range taken)."""
+    kind, value = equinox or (None, None)
+    if kind is None:
+        return core.make_frame(name)
+    if kind == "of_date":
+        return core.make_frame(name, "of_date")
+    if name == "fk4":
+        bes = value if kind == "number" else core_epochs.julian_epoch_to_besselian_epoch(value)
+        return core.make_frame(name, round(float(bes), 9))
+    return core.make_frame(name, round(float(value), 9))
+
+
+def frame_from_spec(spec: dict, field: str | None = None) -> core.Frame:
+    """FrameSpecSchema data -> core Frame (the schema has checked that they make one, and
+    named the field of a bad combination: ``field`` is no longer needed, and ignored)."""
+    return _make_frame(spec["name"], spec.get("equinox"))
 
 
 class FramesRequestSchema(ma.Schema):
@@ -342,8 +353,8 @@ def convert(args):
     """
     table = args["stars"]
     n = table.size
-    src = frame_from_spec(args["from_frame"], "from_frame")
-    dst = frame_from_spec(args["to_frame"], "to_frame")
+    src = frame_from_spec(args["from_frame"])
+    dst = frame_from_spec(args["to_frame"])
     epoch0 = float(args["catalogue_epoch"])
     targets = args.get("target_epochs")
     targets = np.array([epoch0] if targets is None else targets, dtype=float)

@@ -8,7 +8,6 @@ import math
 import marshmallow as ma
 import numpy as np
 from flask import current_app
-from flask_smorest import abort
 
 from ..core import propagation as core
 from ..core.constants import C_KM_S
@@ -43,7 +42,7 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .tables import MAX_ABS_MAS, StarTableField
+from .tables import MAX_ABS_MAS, RowCheck, StarTableField
 
 blp = Blueprint(
     "propagation",
@@ -163,6 +162,96 @@ for _i, _j in CORRELATION_PAIRS:
 StarAstrometrySchema = ma.Schema.from_dict(_STAR_FIELDS, name="StarAstrometrySchema")
 
 
+def _complete(cols, errs):
+    """Masks of the stars with some standard errors, and of those with all they need (of
+    the errors ``errs``, (N, 6) in ERROR_FIELDS order)."""
+    given = np.isfinite(errs[:, :5])
+    some = np.any(given, axis=-1)
+    # Without a parallax, its standard error is not needed: the motion does not depend on
+    # the parallax then, and the parallax out is unknown with its error.
+    needed = given.copy()
+    needed[:, 2] |= np.isnan(cols["parallax_mas"])
+    return some, some & np.all(needed, axis=-1)
+
+
+def _correlation_matrices(cols, rows):
+    """(K, 6, 6) correlation matrices of the stars ``rows`` (absent correlations 0), and
+    which of them give a correlation among the five astrometric parameters, and which one
+    with the radial velocity."""
+    given = np.stack([cols[name] for name in CORRELATION_FIELDS], axis=-1)[rows]  # (K, 15)
+    known = np.isfinite(given)
+    values = np.where(known, given, 0.0)
+    corr = np.zeros((rows.size, 36))  # one row-major 6 x 6 matrix per star
+    corr[:, _DIAGONAL] = 1.0
+    corr[:, _UPPER] = values
+    corr[:, _LOWER] = values
+    given_any = known[:, _WITH_RV == 0].any(axis=-1)  # among the five astrometric ones
+    given_rv = known[:, _WITH_RV == 1].any(axis=-1)  # with the radial velocity
+    return corr.reshape(-1, 6, 6), given_any, given_rv
+
+
+#: Places of the correlations of CORRELATION_FIELDS in a row-major 6 x 6 matrix (above
+#: and below the diagonal), of its diagonal, and which correlations are with the radial
+#: velocity (parameter 5).
+_UPPER = np.array([6 * i + j for i, j in CORRELATION_PAIRS])
+_LOWER = np.array([6 * j + i for i, j in CORRELATION_PAIRS])
+_DIAGONAL = np.arange(6) * 7
+_WITH_RV = np.array([int(j == 5) for _, j in CORRELATION_PAIRS])
+
+
+def _rv_known(cols, errs):
+    return np.isfinite(errs[:, 5]) & np.isfinite(cols["radial_velocity_km_s"])
+
+
+#: Message on a star whose correlations cannot all hold at once.
+NOT_POSITIVE_SEMIDEFINITE = (
+    "the correlations do not form a positive semi-definite matrix (they cannot all hold at once)"
+)
+
+
+def _impossible_correlations(table, usable):
+    """RowCheck of the star table: the stars whose correlations cannot all hold at once.
+
+    The correlation matrix of a star that gets uncertainties must be positive semi-definite
+    (within 1e-9 for rounding). Correlations with the radial velocity alone can be
+    impossible too (ra-rv 0.9 and dec-rv -0.9 with ra-dec taken as 0), so they are checked
+    as well where the radial velocity and its error are given.
+    """
+    if not (
+        table.given.intersection(ERROR_FIELDS) and table.given.intersection(CORRELATION_FIELDS)
+    ):
+        return []
+    cols = table.columns
+    errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
+    _, complete = _complete(cols, errs)
+    rows = np.flatnonzero(usable)
+    corr, given_any, given_rv = _correlation_matrices(cols, rows)
+    if rows.size == table.size:  # all usable: the view's covariance is made from these
+        table.derived[_CORRELATIONS_KEY] = (corr, given_any)
+    rv_known = _rv_known(cols, errs)[rows]
+    check = complete[rows] & (given_any | (given_rv & rv_known))
+    sub, rv_known, rows = corr[check], rv_known[check], rows[check]  # a copy: changed here
+    sub[~rv_known, 5, :] = 0.0
+    sub[~rv_known, :, 5] = 0.0
+    sub[~rv_known, 5, 5] = 1.0
+    low = np.linalg.eigvalsh(sub)[:, 0] if rows.size else np.empty(0)
+    return [(rows[low < -1e-9], "correlation_*", NOT_POSITIVE_SEMIDEFINITE)]
+
+
+#: Key of the correlation matrices of every star, (N, 6, 6), and the mask of those that
+#: give a correlation among the five astrometric parameters, in StarTable.derived.
+_CORRELATIONS_KEY = "propagation.correlations"
+
+
+#: The checks of each star's values together, run with the star table's own.
+STAR_CHECKS = (
+    RowCheck(
+        (*ERROR_FIELDS, *CORRELATION_FIELDS, "parallax_mas", "radial_velocity_km_s"),
+        _impossible_correlations,
+    ),
+)
+
+
 class EpochRangeSchema(ma.Schema):
     start = EpochField(required=True, metadata={"description": "First target epoch."})
     stop = EpochField(required=True, metadata={"description": "Last target epoch."})
@@ -187,6 +276,7 @@ class EpochRangeSchema(ma.Schema):
 class PropagationRequestSchema(ma.Schema):
     stars = StarTableField(
         StarAstrometrySchema,
+        checks=STAR_CHECKS,
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
@@ -226,10 +316,12 @@ class PropagationRequestSchema(ma.Schema):
     def _bound_epoch_list(self, data, **kwargs):
         return bound_epoch_list(data, "target_epochs")
 
-    @ma.validates_schema
-    def _one_target(self, data, **kwargs):
-        has_list = data.get("target_epochs") is not None
-        has_range = data.get("target_range") is not None
+    @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
+    def _one_target(self, data, original, **kwargs):
+        # Judged on what was sent: a target list refused for its own sake is still given.
+        sent = original if isinstance(original, dict) else {}
+        has_list = sent.get("target_epochs") is not None
+        has_range = sent.get("target_range") is not None
         if has_list == has_range:
             raise ma.ValidationError(
                 "give exactly one of target_epochs or target_range", "target_epochs"
@@ -393,63 +485,37 @@ def input_flags(propagation_flags, n: int):
 
 
 def _covariance(table, n):
-    """Build the (N, 6, 6) covariance from standard errors and correlations.
+    """Build the (N, 6, 6) covariance from standard errors and correlations (the star
+    table has checked that the correlations can hold: _impossible_correlations).
 
-    Returns (cov or None, has_cov mask, incomplete mask, assumed_zero mask, bad-PSD idx,
+    Returns (cov or None, has_cov mask, incomplete mask, assumed_zero mask,
     rv_error_missing mask).
     """
     cols = table.columns
+    none = np.zeros(n, dtype=bool)
     if not table.given.intersection(ERROR_FIELDS):
-        none = np.zeros(n, dtype=bool)
-        return None, none, none, none, np.array([], dtype=int), none
+        return None, none, none, none, none
     errs = np.stack([cols[name] for name in ERROR_FIELDS], axis=-1)  # (N, 6)
-    given = np.isfinite(errs[:, :5])
-    some = np.any(given, axis=-1)
-    # Without a parallax, its standard error is not needed: the motion does not depend on
-    # the parallax then, and the parallax out is unknown with its error.
-    needed = given.copy()
-    needed[:, 2] |= np.isnan(cols["parallax_mas"])
-    complete = some & np.all(needed, axis=-1)
+    some, complete = _complete(cols, errs)
     incomplete = some & ~complete
     if not complete.any():
-        none = np.zeros(n, dtype=bool)
-        return None, complete, incomplete, none, np.array([], int), none
-    corr = np.zeros((n, 6, 6))
-    corr[:, range(6), range(6)] = 1.0
-    given_any = np.zeros(n, dtype=bool)  # a correlation among the five astrometric ones
-    given_rv = np.zeros(n, dtype=bool)  # one with the radial velocity
-    for (i, j), name in zip(CORRELATION_PAIRS, CORRELATION_FIELDS, strict=True):
-        c = cols[name]
-        known = np.isfinite(c)
-        if j < 5:
-            given_any |= known
-        else:
-            given_rv |= known
-        corr[:, i, j] = corr[:, j, i] = np.where(known, c, 0.0)
-    rv_known = np.isfinite(errs[:, 5]) & np.isfinite(cols["radial_velocity_km_s"])
+        return None, complete, incomplete, none, none
+    shared = table.derived.get(_CORRELATIONS_KEY)  # made by _impossible_correlations
+    if shared is None:
+        shared = _correlation_matrices(cols, np.arange(n))[:2]
+    corr, given_any = shared
+    rv_known = _rv_known(cols, errs)
     sig = np.where(np.isfinite(errs), errs, 0.0)
     cov = corr * sig[:, :, None] * sig[:, None, :]
     cov[~rv_known, 5, :] = np.nan
     cov[~rv_known, :, 5] = np.nan
-    # The correlation matrix must be positive semi-definite (tolerance for rounding).
-    # Correlations with the radial velocity alone can be impossible too (ra-rv 0.9 and
-    # dec-rv -0.9 with ra-dec taken as 0), so they are checked as well.
-    check = np.flatnonzero(complete & (given_any | (given_rv & rv_known)))
-    bad = np.array([], dtype=int)
-    if check.size:
-        sub = corr[check]
-        sub[~rv_known[check], 5, :] = 0.0
-        sub[~rv_known[check], :, 5] = 0.0
-        sub[~rv_known[check], 5, 5] = 1.0
-        low = np.linalg.eigvalsh(sub)[:, 0]
-        bad = check[low < -1e-9]
     assumed_zero = complete & ~given_any
     # The radial velocity acts on the motion only with a positive parallax (zeta = v_r * plx
     # / A); then an unknown error of it is not a zero error.
     with np.errstate(invalid="ignore"):
         rv_acts = np.isfinite(cols["radial_velocity_km_s"]) & (cols["parallax_mas"] > 0.0)
     rv_error_missing = complete & rv_acts & ~np.isfinite(errs[:, 5])
-    return cov, complete, incomplete, assumed_zero, bad, rv_error_missing
+    return cov, complete, incomplete, assumed_zero, rv_error_missing
 
 
 def _uncertainty_dict(cov_block):
@@ -495,19 +561,7 @@ def propagate(args):
         check_epoch_count(targets.size, "target_epochs")
     m = targets.size
     check_result_count(n, m, "stars")
-    cov, has_cov, incomplete, assumed_zero, bad_psd, rv_error_missing = _covariance(table, n)
-    if bad_psd.size:
-        abort(
-            422,
-            errors=[
-                {
-                    "field": table.path(int(i), "correlation_*"),
-                    "message": "the correlations do not form a positive semi-definite "
-                    "matrix (they cannot all hold at once)",
-                }
-                for i in bad_psd[:50]
-            ],
-        )
+    cov, has_cov, incomplete, assumed_zero, rv_error_missing = _covariance(table, n)
     c = table.columns
     result = core.propagate(
         c["ra_deg"][:, None],

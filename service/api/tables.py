@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import re
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 
 import marshmallow as ma
@@ -29,7 +30,7 @@ from flask_smorest import abort
 from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # noqa: F401
 
 # Bounds shared with the batch jobs (re-exported for the endpoint schemas).
-from .errors import MORE_FIELD, further
+from .errors import MORE_FIELD, WholePath, further
 from .spelling import unknown_name_text
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
@@ -115,6 +116,11 @@ class StarTable:
         Which form the client used; paths in error messages follow it.
     given : set of str
         Columns the client supplied (even if some values are null).
+    lines : list of int or None
+        For a CSV body, the file line of each star.
+    derived : dict
+        What the table's checks (RowCheck) computed that the view uses as well, by a key
+        of the check's own, so that it is not computed twice.
     """
 
     columns: dict
@@ -123,6 +129,7 @@ class StarTable:
     form: str
     given: set = field(default_factory=set)
     lines: list | None = None
+    derived: dict = field(default_factory=dict)
 
     def path(self, index: int, name: str, field_name: str = "stars") -> str:
         """Path of one value for error messages: stars[3].dec_deg, stars.dec_deg[3], or
@@ -158,6 +165,9 @@ class TableErrors:
         self.header_line = header_line
         self.items: dict[str, list[str]] = {}
         self.more = 0
+        #: Column name -> arrays of the indices of its values found invalid (all of them,
+        #: listed or not): the stars a RowCheck reading that column leaves alone.
+        self.invalid: dict[str, list[np.ndarray]] = {}
 
     def add(self, key: str, message: str) -> None:
         if len(self.items) >= MAX_LISTED_ERRORS and key not in self.items:
@@ -166,7 +176,8 @@ class TableErrors:
         self.items.setdefault(key, []).append(message)
 
     def add_indices(self, indices, name: str, message: str) -> None:
-        indices = np.asarray(indices)
+        indices = np.asarray(indices, dtype=np.int64)
+        self.invalid.setdefault(name, []).append(indices)
         for i in indices[: MAX_LISTED_ERRORS + 1]:
             self.add(self.key(int(i), name), message)
         self.more += max(0, indices.size - (MAX_LISTED_ERRORS + 1))
@@ -185,17 +196,12 @@ class TableErrors:
     def raise_if_any(self) -> None:
         if self.items and self.lines is not None:
             # CSV bodies: the paths are file lines, not members of the request object, so
-            # they are reported as they are rather than under the table field's name.
-            errors = [
-                {"field": k, "message": m}
-                for k, ms in sorted(self.items.items(), key=_line_of)
-                for m in ms
-            ]
+            # they are reported as they are rather than under the table field's name (and
+            # with the errors of the other fields, the query options).
+            messages = {WholePath(k): ms for k, ms in sorted(self.items.items(), key=_line_of)}
             if self.more:
-                errors.append(
-                    {"field": MORE_FIELD, "message": further(self.more, "invalid values")}
-                )
-            abort(422, errors=errors)
+                messages[WholePath(MORE_FIELD)] = [further(self.more, "invalid values")]
+            raise ma.ValidationError(messages)
         if self.items:
             messages = dict(self.items)
             if self.more:
@@ -359,6 +365,24 @@ def _bound_numeric_fields(record_schema: type[ma.Schema]) -> None:
             )
 
 
+@dataclass(frozen=True)
+class RowCheck:
+    """A check of each star's values taken together (correlations that cannot all hold,
+    one proper-motion component without the other), run by a StarTableField with its own
+    checks of each value, so that one answer names every invalid value.
+
+    ``find(table, usable)`` gets the table (:class:`StarTable`) and a mask of the stars
+    whose values in ``reads`` all passed their own checks (a value refused for its own
+    sake is not judged again with the others); it returns (indices, column name, message)
+    for the stars it refuses, the indices among the usable ones. A column of ``reads``
+    refused as a whole (absent where required, or holding values that are no numbers)
+    leaves the check out.
+    """
+
+    reads: tuple[str, ...]
+    find: Callable[[StarTable, np.ndarray], Iterable[tuple[np.ndarray, str, str]]]
+
+
 class StarTableField(ma.fields.Field):
     """Marshmallow field for a table of stars (records or columns), validated with numpy.
 
@@ -368,11 +392,15 @@ class StarTableField(ma.fields.Field):
         Schema of one record: its fields define the columns (Float with Range validators,
         ``required``, ``allow_none``) and their documentation. An ``id`` field, if present,
         is an optional client identifier echoed back.
+    checks : sequence of RowCheck
+        Checks of each star's values together, run after the checks of each value (their
+        errors are listed with those).
     """
 
-    def __init__(self, record_schema: type[ma.Schema], **kwargs):
+    def __init__(self, record_schema: type[ma.Schema], checks: tuple[RowCheck, ...] = (), **kwargs):
         super().__init__(**kwargs)
         self.record_schema = record_schema
+        self.checks = tuple(checks)
         _bound_numeric_fields(record_schema)
         schema = record_schema()
         self.specs = [ColumnSpec.from_field(n, f) for n, f in schema.fields.items()]
@@ -534,21 +562,35 @@ class StarTableField(ma.fields.Field):
     ) -> StarTable:
         columns = _Columns(n, self.numeric_names)
         ids = None
+        lost = set()  # columns refused as a whole: absent where required, or not numbers
         for spec in self.specs:
             values = raw.get(spec.name)
             if values is None:
                 if spec.required:
                     errors.add(errors.header_key(spec.name), "is required")
+                    lost.add(spec.name)
                 continue
             if spec.kind == "id":
                 ids = _id_column(values, errors)
                 continue
             arr = values if isinstance(values, np.ndarray) else _number_column(values, spec, errors)
+            if spec.name in errors.invalid:  # some values no numbers: the column may be NaN
+                lost.add(spec.name)
             if spec.lo is not None or spec.hi is not None:
                 _check_range(arr, spec, errors)
             columns[spec.name] = arr
+        table = StarTable(columns, ids, n, errors.form, given, lines)
+        for check in self.checks:
+            if lost.intersection(check.reads):
+                continue
+            usable = np.ones(n, dtype=bool)
+            for name in check.reads:
+                for indices in errors.invalid.get(name, ()):
+                    usable[indices] = False
+            for indices, name, message in check.find(table, usable):
+                errors.add_indices(indices, name, message)
         errors.raise_if_any()
-        return StarTable(columns, ids, n, errors.form, given, lines)
+        return table
 
     def _unknown_text(self, name) -> str:
         names = [s.name for s in self.specs]

@@ -49,7 +49,7 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC, StarTableField
+from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC, RowCheck, StarTableField
 
 blp = Blueprint(
     "velocity",
@@ -180,6 +180,39 @@ for _name in _CORRELATION_FIELDS:
 VelocityStarSchema = ma.Schema.from_dict(_VELOCITY_STAR_FIELDS, name="VelocityStarSchema")
 
 
+#: Message on a star whose correlations cannot all hold at once.
+_NOT_POSITIVE_SEMIDEFINITE = (
+    "the correlations of parallax, proper motions and radial velocity do not form a "
+    "positive semi-definite matrix (they cannot all hold at once)"
+)
+
+
+def _impossible_correlations(table, usable):
+    """RowCheck of the star table: the stars whose correlations cannot hold together (not
+    positive semi-definite; core.correlations_inconsistent, which flags them in batch
+    runs)."""
+    names = (*_USED_CORRELATIONS, *_RV_CORRELATIONS)
+    if not table.given.intersection(names):
+        return []
+    rows = np.flatnonzero(usable)
+    c = table.columns
+    bad = core.correlations_inconsistent(*(c[name][rows] for name in names))
+    return [(rows[bad], "correlation_*", _NOT_POSITIVE_SEMIDEFINITE)]
+
+
+#: The checks of each star's values together, run with the star table's own.
+_STAR_CHECKS = (RowCheck((*_USED_CORRELATIONS, *_RV_CORRELATIONS), _impossible_correlations),)
+
+
+def _solar_motion_needs_lsr(data) -> None:
+    """A request schema's check: solar_motion only with relative_to_lsr true (ignored, it
+    would leave U, V, W meant relative to the LSR taken as heliocentric)."""
+    if data.get("solar_motion") is not None and data.get("relative_to_lsr") is False:
+        raise ma.ValidationError(
+            "is used only with relative_to_lsr true; give both, or neither", "solar_motion"
+        )
+
+
 class SolarMotionSchema(ma.Schema):
     u_km_s = StrictFloat(
         required=True,
@@ -214,6 +247,7 @@ _SOLAR_MOTION_DESCRIPTION = (
 class VelocityRequestSchema(ma.Schema):
     stars = StarTableField(
         VelocityStarSchema,
+        checks=_STAR_CHECKS,
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
@@ -285,6 +319,10 @@ class VelocityRequestSchema(ma.Schema):
             "the layout of the request's stars."
         },
     )
+
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _solar_motion_with_lsr(self, data, **kwargs):
+        _solar_motion_needs_lsr(data)
 
 
 # ---------------------------------------------------------------------------- responses
@@ -550,44 +588,12 @@ class VelocityResponseSchema(ma.Schema):
 
 
 def _solar_motion(args):
+    """The Sun's motion relative to the LSR: solar_motion (the request schema allows it
+    only with relative_to_lsr), else Schoenrich, Binney & Dehnen 2010."""
     sm = args.get("solar_motion")
     if sm is None:
         return core.V_SUN_LSR_SCHOENRICH2010_KM_S
-    if not args["relative_to_lsr"]:
-        # Ignored, it would leave U, V, W meant relative to the LSR taken as heliocentric.
-        abort(
-            422,
-            errors=[
-                {
-                    "field": "solar_motion",
-                    "message": "is used only with relative_to_lsr true; give both, or neither",
-                }
-            ],
-        )
     return (sm["u_km_s"], sm["v_km_s"], sm["w_km_s"])
-
-
-def _check_correlations(table, n):
-    """422 naming the stars whose correlations cannot hold together (not positive
-    semi-definite; core.correlations_inconsistent, which flags them in batch runs)."""
-    c = table.columns
-    bad_mask = core.correlations_inconsistent(
-        *(c[name] for name in (*_USED_CORRELATIONS, *_RV_CORRELATIONS))
-    )
-    bad = np.flatnonzero(bad_mask)
-    if bad.size:
-        abort(
-            422,
-            errors=[
-                {
-                    "field": table.path(int(i), "correlation_*"),
-                    "message": "the correlations of parallax, proper motions and radial "
-                    "velocity do not form a positive semi-definite matrix (they cannot all "
-                    "hold at once)",
-                }
-                for i in bad[:50]
-            ],
-        )
 
 
 #: Flag of the API layer only, in a bit above those of the core.
@@ -689,7 +695,6 @@ def velocity(args):
                 }
             ],
         )
-    _check_correlations(table, n)
     errs_given = np.isfinite(c["parallax_error_mas"]) | np.isfinite(c["distance_error_pc"])
     errs_given |= np.isfinite(c["pm_ra_cosdec_error_mas_yr"])
     corr_given = np.zeros(n, dtype=bool)
@@ -846,6 +851,10 @@ class ObservablesRequestSchema(ma.Schema):
         SolarMotionSchema, load_default=None, metadata={"description": _SOLAR_MOTION_DESCRIPTION}
     )
     layout = VelocityRequestSchema._declared_fields["layout"]
+
+    @ma.validates_schema(skip_on_field_errors=False)
+    def _solar_motion_with_lsr(self, data, **kwargs):
+        _solar_motion_needs_lsr(data)
 
 
 OBSERVABLES_OUTPUTS = {
