@@ -185,9 +185,9 @@ def _make_frame(name: str, equinox) -> core.Frame:
     return core.make_frame(name, round(float(value), 9))
 
 
-def frame_from_spec(spec: dict, field: str | None = None) -> core.Frame:
+def frame_from_spec(spec: dict) -> core.Frame:
     """FrameSpecSchema data -> core Frame (the schema has checked that they make one, and
-    named the field of a bad combination: ``field`` is no longer needed, and ignored)."""
+    named the field of a bad combination)."""
     return _make_frame(spec["name"], spec.get("equinox"))
 
 

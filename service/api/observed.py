@@ -692,7 +692,7 @@ def observed(args):
             "radial_velocity_km_s",
         )
     ]
-    frame = frame_from_spec(args["frame"], "frame")
+    frame = frame_from_spec(args["frame"])
     if frame.name != "icrs":
         conv = core_frames.convert(*vals, epoch0, frame, core_frames.make_frame("icrs"))
         vals = [
