@@ -33,9 +33,9 @@ NAME_ALIASES = {"stop": ("end",), "end": ("stop",)}
 
 def _our_words(key: str) -> list[str]:
     """The words of ``key`` with catalogue short forms written as ours: "pmra_error" ->
-    pm, ra, error; "ra_dec_corr" -> correlation, ra, dec."""
+    pm, ra, error; "ra_dec_corr" and "ra_dec_correlation" -> correlation, ra, dec."""
     words = [w for w in key.split("_") if w]
-    if len(words) >= 3 and words[-1] == "corr":
+    if len(words) >= 3 and words[-1] in ("corr", "correlation"):
         words = ["correlation", *words[:-1]]
     return "_".join(WORD_ALIASES.get(w, w) for w in words).split("_")
 

@@ -56,6 +56,8 @@ def test_closest_star_field(given, likely):
         ("ra_dec_corr", "correlation_ra_dec"),
         ("parallax_pmra_corr", "correlation_parallax_pm_ra"),
         ("pmra_pmdec_corr", "correlation_pm_ra_pm_dec"),
+        ("ra_dec_correlation", "correlation_ra_dec"),
+        ("dec_parallax_correlation", "correlation_dec_parallax"),
         ("source_id", None),
         ("phot_g_mean_mag", None),
     ],
