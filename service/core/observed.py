@@ -469,6 +469,14 @@ def no_earth_orientation() -> EarthOrientation:
     return EarthOrientation(table, None, expiry_mjd)
 
 
+def _interval(table: EarthOrientationTable, mjd_int):
+    """(i, i1): the count of the table's nodes at or before each day (``searchsorted``),
+    and the later node of the interval each day falls in (the first or last interval
+    outside the table)."""
+    i = np.searchsorted(table.mjd, mjd_int, side="right")
+    return i, np.minimum(np.maximum(i, 1), len(table.mjd) - 1)  # np.clip, without its overhead
+
+
 def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
     """Linear interpolation between daily nodes, as ``astropy.utils.iers.IERS._interpolate``.
 
@@ -476,8 +484,7 @@ def _interp_table(table: EarthOrientationTable, mjd_int, day_fraction):
     whole seconds, exactly as astropy does, so results agree with astropy's own lookup.
     """
     mjd = table.mjd
-    i = np.searchsorted(mjd, mjd_int, side="right")
-    i1 = np.minimum(np.maximum(i, 1), len(mjd) - 1)  # np.clip, without its overhead
+    i, i1 = _interval(table, mjd_int)
     i0 = i1 - 1
     frac = (mjd_int - mjd[i0] + day_fraction) / (mjd[i1] - mjd[i0])
     # The three columns (UT1-UTC, pm_x, pm_y) at once, on the last axis.
@@ -688,9 +695,7 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
         both = (table == 0) & (mjd_full >= eop.fallback.first_mjd)
         both &= mjd_full <= eop.fallback.last_mjd
         if both.any():
-            b_i1 = np.searchsorted(eop.fallback.mjd, mjd_int, side="right")
-            b_i1 = np.minimum(np.maximum(b_i1, 1), len(eop.fallback.mjd) - 1)
-            b_ut1, b_pole = _table_sigmas(eop.fallback, b_i1)
+            b_ut1, b_pole = _table_sigmas(eop.fallback, _interval(eop.fallback, mjd_int)[1])
             tab_ut1 = np.where(both, np.fmax(tab_ut1, b_ut1), tab_ut1)
             tab_pole = np.where(both, np.fmax(tab_pole, b_pole), tab_pole)
     status = np.where(inside, status, _UNAVAILABLE)
@@ -701,13 +706,16 @@ def earth_orientation_at(utc_jd1, utc_jd2, eop: EarthOrientation | None = None):
     # Fixed sigmas by status (final, rapid, predicted placeholder, unavailable), then the
     # Bulletin A growth for predicted values; pole errors as position errors (Note 4).
     status = np.asarray(status, dtype=np.int64)
-    ut1_fixed, pole_fixed = _UT1_SIGMA_BY_STATUS, _POLE_SIGMA_BY_STATUS
     predicted = status == _PREDICTED
     pred_ut1, pred_pole_xy = bulletin_a_prediction_sigmas(days_ahead)
-    ut1_sigma = np.where(predicted, np.maximum(pred_ut1, UT1_SIGMA_RAPID_S), ut1_fixed[status])
+    ut1_sigma = np.where(
+        predicted, np.maximum(pred_ut1, UT1_SIGMA_RAPID_S), _UT1_SIGMA_BY_STATUS[status]
+    )
     pred_pole_xy = np.maximum(pred_pole_xy, POLE_SIGMA_RAPID_ARCSEC)
     pole_sigma = np.where(
-        predicted, pole_position_sigma_arcsec(pred_pole_xy, pred_pole_xy), pole_fixed[status]
+        predicted,
+        pole_position_sigma_arcsec(pred_pole_xy, pred_pole_xy),
+        _POLE_SIGMA_BY_STATUS[status],
     )
     # At least the table's own uncertainties where its values are used (Note 3).
     ut1_sigma = np.where(inside, np.fmax(ut1_sigma, tab_ut1), ut1_sigma)
