@@ -31,7 +31,7 @@ from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # no
 
 # Bounds shared with the batch jobs (re-exported for the endpoint schemas).
 from .errors import MORE_FIELD, WholePath, further
-from .spelling import unknown_name_text
+from .spelling import closest_name, unknown_name_text
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
 #: where the record schema gives none (or only one side): no quantity the service takes
@@ -462,7 +462,6 @@ class StarTableField(ma.fields.Field):
                 first = next(i for i, r in enumerate(records) if name in r)
                 errors.add(f"[{first}].{name}", self._unknown_text(name))
             errors.more += max(0, len(unknown) - MAX_LISTED_ERRORS)
-            errors.raise_if_any()
         columns = {}
         for spec in self.specs:
             if spec.name not in keys:
@@ -473,16 +472,20 @@ class StarTableField(ma.fields.Field):
 
     def _from_columns(self, cols: dict) -> StarTable:
         errors = TableErrors("columns")
-        unknown = set(cols) - self.names
-        if unknown:
-            raise ma.ValidationError({name: [self._unknown_text(name)] for name in sorted(unknown)})
+        unknown = sorted(set(cols) - self.names)
+        for name in unknown[:MAX_LISTED_ERRORS]:
+            errors.add(errors.header_key(name), self._unknown_text(name))
+        errors.more += len(unknown[MAX_LISTED_ERRORS:])
+        # The shape of the columns taken (an unknown one is only named): with an error
+        # here no value is read, and the unknown names come in the same answer.
         lengths = {}
         for name, col in cols.items():
+            if name not in self.names:
+                continue
             if not isinstance(col, list | np.ndarray):  # arrays: see .jsoncolumns
-                raise ma.ValidationError({name: ["must be an array (one value per star)"]})
+                errors.add(errors.header_key(name), "must be an array (one value per star)")
+                continue
             lengths[name] = len(col)
-        if not lengths:
-            raise ma.ValidationError("at least one star is required")
         sizes = set(lengths.values())
         if len(sizes) > 1:
             # The length most columns share (ties: the first column's) is taken as meant;
@@ -491,19 +494,21 @@ class StarTableField(ma.fields.Field):
             first = next(iter(lengths.values()))
             usual = max(sizes, key=lambda size: (counts[size], size == first))
             reference = next(k for k, v in lengths.items() if v == usual)
-            raise ma.ValidationError(
-                {
-                    name: [
+            for name, size in lengths.items():
+                if size != usual:
+                    errors.add(
+                        errors.header_key(name),
                         f"has {size} value{'' if size == 1 else 's'} where {reference} has "
-                        f"{usual}: all columns must have the same length (one value per star)"
-                    ]
-                    for name, size in lengths.items()
-                    if size != usual
-                }
-            )
+                        f"{usual}: all columns must have the same length (one value per star)",
+                    )
+        if len(lengths) < len(cols) - len(unknown) or len(sizes) > 1:
+            errors.raise_if_any()
+        if not lengths or 0 in sizes:
+            errors.raise_if_any()
+            raise ma.ValidationError("at least one star is required")
         n = sizes.pop()
         self._limit(n)
-        return self._finish(dict(cols), n, errors, set(cols))
+        return self._finish(cols, n, errors, set(cols))
 
     def _from_csv(self, table) -> StarTable:
         """A CSV body (text cells, empty = null); errors name the line of the file."""
@@ -514,7 +519,6 @@ class StarTableField(ma.fields.Field):
         for name in unknown[:MAX_LISTED_ERRORS]:
             errors.add(errors.header_key(name), self._unknown_text(name))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
-        errors.raise_if_any()
         if table.size == 0:
             errors.add(f"line {table.header_line + 1}", "at least one star is required")
             errors.raise_if_any()
@@ -541,8 +545,8 @@ class StarTableField(ma.fields.Field):
         for name in unknown[:MAX_LISTED_ERRORS]:
             errors.add(errors.header_key(name), self._unknown_text(name))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
-        errors.raise_if_any()
         if table.size == 0:
+            errors.raise_if_any()
             raise ma.ValidationError("at least one star is required")
         self._limit(table.size)
         raw = {}
@@ -562,11 +566,16 @@ class StarTableField(ma.fields.Field):
     ) -> StarTable:
         columns = _Columns(n, self.numeric_names)
         ids = None
-        lost = set()  # columns refused as a whole: absent where required, or not numbers
+        # Columns an unknown name given probably stands for ("ra" for "ra_deg"), absent:
+        # its error says so, a "required" of the same column would only repeat it, and no
+        # check of several values reads them (the client meant to give them).
+        meant = {closest_name(name, self.names) for name in given - self.names} - {None}
+        lost = meant - given  # columns refused as a whole: absent, meant or not numbers
+        given = given & self.names
         for spec in self.specs:
             values = raw.get(spec.name)
             if values is None:
-                if spec.required:
+                if spec.required and spec.name not in lost:
                     errors.add(errors.header_key(spec.name), "is required")
                     lost.add(spec.name)
                 continue

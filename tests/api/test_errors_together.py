@@ -388,3 +388,114 @@ def test_field_chart_epochs_judged_only_when_read(client, epochs, field):
     )
     errors = errors_of(r)
     assert field in errors and "epochs" not in errors, errors
+
+
+# ------------------------------------------------------------------ unknown star fields
+
+
+def _arrow_bytes(columns: dict) -> bytes:
+    table = pa.table(columns)
+    sink = io.BytesIO()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return sink.getvalue()
+
+
+def test_unknown_star_field_with_bad_values_in_every_form(client):
+    # An unknown field is named beside the values refused in the same table: its name and
+    # a value out of range in one answer, records, columns, CSV and Arrow alike.
+    query = "/v1/propagation?catalogue_epoch=2016&target_epochs=2020"
+    records = [{**BAD_STAR, "colour": 1.2}, {**STAR, "dec_deg": -95.0}]
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": records, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    errors = assert_names(
+        r,
+        ("stars[0].colour", "unknown field"),
+        ("stars[0].ra_deg", "must be between 0 and 360"),
+        ("stars[1].dec_deg", "must be between -90 and 90"),
+    )
+    assert len(errors) == 3, errors
+    columns = {k: [v, v] for k, v in STAR.items()} | {"dec_deg": [10.0, 95.0], "colour": [1, 2]}
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": columns, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    assert_names(
+        r, ("stars.colour", "unknown field"), ("stars.dec_deg[1]", "must be between -90 and 90")
+    )
+    csv = "ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr,colour\n400,10,1,1,0.5\n"
+    r = client.post(query, data=csv, content_type="text/csv")
+    assert_names(
+        r, ("line 1: colour", "unknown field"), ("line 2: ra_deg", "must be between 0 and 360")
+    )
+    arrow = _arrow_bytes({**{k: [v] for k, v in BAD_STAR.items()}, "colour": [0.5]})
+    r = client.post(query, data=arrow, content_type="application/vnd.apache.arrow.stream")
+    assert_names(
+        r, ("stars.colour", "unknown field"), ("stars.ra_deg[0]", "must be between 0 and 360")
+    )
+
+
+def test_misspelled_required_field_is_named_once(client):
+    # "ra" is taken to stand for ra_deg (the message says so): ra_deg is not also called
+    # required, and the other values are still judged.
+    star = {"ra": 40.0, "dec_deg": 95.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    errors = assert_names(
+        r,
+        ("stars[0].ra", 'unknown field (did you mean "ra_deg"?)'),
+        ("stars[0].dec_deg", "must be between -90 and 90"),
+    )
+    assert set(errors) == {"stars[0].ra", "stars[0].dec_deg"}, errors
+    # Another required field that no given name stands for is still called required.
+    star = {"ra": 40.0, "dec_deg": 10.0, "pm_ra_cosdec_mas_yr": 1.0}
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    errors = assert_names(r, ("stars[0].pm_dec_mas_yr", "is required"))
+    assert "stars[0].ra_deg" not in errors, errors
+
+
+def test_misspelled_correlation_is_not_judged_without_it(client):
+    # With correlation_dec_parallax misspelled, the two correlations left would be judged
+    # as a matrix [[1, .9, -.9], [.9, 1, 0], [-.9, 0, 1]] (determinant 1 - 2 (.81) < 0)
+    # that the client never meant: only the name is refused.
+    star = {k: v for k, v in PSD_STAR.items() if k != "correlation_dec_parallax"}
+    star["correlation_dec_parallx"] = 0.9
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    errors = assert_names(
+        r, ("stars[0].correlation_dec_parallx", 'unknown field (did you mean "correlation_dec')
+    )
+    assert len(errors) == 1, errors
+    # Without the misspelled one, the two left are judged (and refused) as given.
+    star = {k: v for k, v in PSD_STAR.items() if k != "correlation_dec_parallax"}
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    assert_names(r, ("stars[0].correlation_*", "the correlations do not form"))
+
+
+def test_columns_of_unequal_length_with_an_unknown_column(client):
+    # The shape of the table and an unknown column in one answer; the unknown column's own
+    # length is not judged.
+    columns = {"ra_deg": [40.0, 41.0], "dec_deg": [10.0], "pm_ra_cosdec_mas_yr": [1.0, 1.0],
+               "pm_dec_mas_yr": [1.0, 1.0], "colour": [1.0, 2.0, 3.0]}  # fmt: skip
+    r = client.post(
+        "/v1/propagation",
+        json={"stars": columns, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+    errors = assert_names(
+        r,
+        ("stars.colour", "unknown field"),
+        ("stars.dec_deg", "has 1 value where ra_deg has 2"),
+    )
+    assert set(errors) == {"stars.colour", "stars.dec_deg"}, errors
