@@ -113,27 +113,27 @@ class TrackChartRequestSchema(ma.Schema):
     def _span(self, data, **kwargs):
         from .. import charts
 
+        errors = {}
         start, stop = data.get("start"), data.get("stop")
         if start is not None and stop is not None:
             if stop <= start:
-                raise ma.ValidationError("must be later than start", "stop")
-            if stop - start > 200_000.0:
-                raise ma.ValidationError("at most 200,000 years after start", "stop")
+                errors["stop"] = ["must be later than start"]
+            elif stop - start > 200_000.0:
+                errors["stop"] = ["at most 200,000 years after start"]
         cat = data.get("catalogue_epoch")
         cons = charts._constellations() if data.get("boundaries") else None
-        if cons is None or cat is None:
-            return
-        # The crossing search has a narrower window than the tracks: say so on the field
-        # at fault, in the request's own terms (it reached the caller as an error on
-        # "stars" naming an internal argument).
-        errors = {}
-        for name in ("start", "stop"):
-            if data.get(name) is not None and abs(data[name] - cat) > cons.MAX_CROSSING_WINDOW_YR:
-                errors[name] = [
-                    f"must be within {cons.MAX_CROSSING_WINDOW_YR:,.0f} years of "
-                    "catalogue_epoch when boundaries are drawn (set boundaries to false "
-                    "for a longer track)"
-                ]
+        if cons is not None and cat is not None:
+            # The crossing search has a narrower window than the tracks: say so on the
+            # field at fault, in the request's own terms (it reached the caller as an
+            # error on "stars" naming an internal argument).
+            for name in ("start", "stop"):
+                value = data.get(name)
+                if value is not None and abs(value - cat) > cons.MAX_CROSSING_WINDOW_YR:
+                    errors.setdefault(name, []).append(
+                        f"must be within {cons.MAX_CROSSING_WINDOW_YR:,.0f} years of "
+                        "catalogue_epoch when boundaries are drawn (set boundaries to false "
+                        "for a longer track)"
+                    )
         if errors:
             raise ma.ValidationError(errors)
 

@@ -291,6 +291,20 @@ def test_track_span_with_a_bad_star(client, span, field, message):
     assert_names(r, ("stars[0].ra_deg", "must be between 0 and 360"), (field, message))
 
 
+def test_track_span_reversed_and_outside_the_crossing_window(client):
+    # A reversed span does not hide that its start is too far from the catalogue epoch for
+    # the boundaries' crossing search (nor the other way round).
+    r = client.post(
+        "/v1/charts/track",
+        json={"stars": [STAR], "catalogue_epoch": 2000.0, "start": "J150000.0", "stop": 2100.0},
+    )
+    assert_names(
+        r,
+        ("stop", "must be later than start"),
+        ("start", "must be within 100,000 years of catalogue_epoch"),
+    )
+
+
 @pytest.mark.parametrize(
     ("path", "options"),
     [
