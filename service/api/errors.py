@@ -29,8 +29,13 @@ PROBLEM_MIMETYPE = "application/problem+json"
 #: so a body with a million bad values gets a small answer.
 MAX_LISTED_ERRORS = 100
 
-#: Field paths and messages are cut to this many characters.
+#: Field paths are cut to this many characters (they may hold a client's own text).
 MAX_ECHOED_CHARS = 300
+
+#: Messages are cut to this many characters: they quote a client's text only in short
+#: pieces, and the longest of the service's own, an unknown star field's with the accepted
+#: fields of the table (given once per table), is about 750.
+MAX_MESSAGE_CHARS = 1000
 
 
 def problem_response(
@@ -273,7 +278,7 @@ def handle_http_exception(error: HTTPException) -> Response:
         errors = [
             {
                 "field": clip_echo(str(e.get("field", ""))),
-                "message": clip_echo(str(e.get("message", ""))),
+                "message": clip_echo(str(e.get("message", "")), MAX_MESSAGE_CHARS),
             }
             for e in errors
         ]

@@ -458,9 +458,9 @@ class StarTableField(ma.fields.Field):
         keys = set().union(*records) if records else set()
         unknown = keys - self.names
         if unknown:
-            for name in sorted(unknown)[:MAX_LISTED_ERRORS]:
+            for k, name in enumerate(sorted(unknown)[:MAX_LISTED_ERRORS]):
                 first = next(i for i, r in enumerate(records) if name in r)
-                errors.add(f"[{first}].{name}", self._unknown_text(name))
+                errors.add(f"[{first}].{name}", self._unknown_text(name, listed=k == 0))
             errors.more += max(0, len(unknown) - MAX_LISTED_ERRORS)
         columns = {}
         for spec in self.specs:
@@ -473,8 +473,8 @@ class StarTableField(ma.fields.Field):
     def _from_columns(self, cols: dict) -> StarTable:
         errors = TableErrors("columns")
         unknown = sorted(set(cols) - self.names)
-        for name in unknown[:MAX_LISTED_ERRORS]:
-            errors.add(errors.header_key(name), self._unknown_text(name))
+        for k, name in enumerate(unknown[:MAX_LISTED_ERRORS]):
+            errors.add(errors.header_key(name), self._unknown_text(name, listed=k == 0))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
         # The shape of the columns taken (an unknown one is only named): with an error
         # here no value is read, and the unknown names come in the same answer.
@@ -516,8 +516,8 @@ class StarTableField(ma.fields.Field):
         # one, and CSV answers are the same from either); errors name file lines.
         errors = TableErrors("columns", table.lines, table.header_line)
         unknown = [h for h in table.header if h not in self.names]
-        for name in unknown[:MAX_LISTED_ERRORS]:
-            errors.add(errors.header_key(name), self._unknown_text(name))
+        for k, name in enumerate(unknown[:MAX_LISTED_ERRORS]):
+            errors.add(errors.header_key(name), self._unknown_text(name, listed=k == 0))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
         if table.size == 0:
             errors.add(f"line {table.header_line + 1}", "at least one star is required")
@@ -542,8 +542,8 @@ class StarTableField(ma.fields.Field):
         as for the columns form, which it answers in unless asked otherwise."""
         errors = TableErrors("columns")
         unknown = [h for h in table.names if h not in self.names]
-        for name in unknown[:MAX_LISTED_ERRORS]:
-            errors.add(errors.header_key(name), self._unknown_text(name))
+        for k, name in enumerate(unknown[:MAX_LISTED_ERRORS]):
+            errors.add(errors.header_key(name), self._unknown_text(name, listed=k == 0))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
         if table.size == 0:
             errors.raise_if_any()
@@ -601,9 +601,13 @@ class StarTableField(ma.fields.Field):
         errors.raise_if_any()
         return table
 
-    def _unknown_text(self, name) -> str:
+    def _unknown_text(self, name, listed: bool) -> str:
+        """The message of an unknown column: the name it likely stands for, and with
+        ``listed`` (the first unknown column of a table: a catalogue file may bring a
+        hundred) every accepted name."""
         names = [s.name for s in self.specs]
-        return unknown_name_text(name, names, "accepted fields: " + ", ".join(names))
+        listing = "accepted fields: " + ", ".join(names) if listed else None
+        return unknown_name_text(name, names, listing)
 
 
 def id_field_to_openapi(self, field, **kwargs) -> dict:

@@ -7,6 +7,9 @@ quantity (pm_ra_mas_yr is not pm_dec_mas_yr) and is left out where two fit alike
 
 from __future__ import annotations
 
+import json
+import pathlib
+
 import pytest
 
 from service.api.app import create_app
@@ -151,3 +154,43 @@ def test_no_likely_name_keeps_the_plain_words(client):
     body = {"stars": [STAR], "catalogue_epoch": "J2016.0", "target_epochs": [2020.0], "zz": 1}
     got = messages(client.post("/v1/propagation", json=body))
     assert got["zz"] == "is not a field of this request (check the spelling)"
+
+
+def _star_record_names(schema: str) -> list[str]:
+    """The fields of a star record, as the committed OpenAPI document lists them."""
+    doc = json.loads((pathlib.Path(__file__).parents[2] / "openapi" / "openapi.json").read_text())
+    return list(doc["components"]["schemas"][schema]["properties"])
+
+
+@pytest.mark.parametrize(
+    ("path", "schema", "body"),
+    [
+        ("/v1/propagation", "StarAstrometry",
+         {"catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"]}),
+        ("/v1/velocity", "VelocityStar", {}),
+    ],
+)  # fmt: skip
+def test_accepted_fields_listed_whole_and_once(client, path, schema, body):
+    # The longest tables (28 and 30 fields with their errors and correlations): the list
+    # is not cut short, and with several unknown columns (a catalogue file brings many) it
+    # is given with the first only.
+    star = STAR | {"colour": 1.0, "zz_extra": 2.0, "paralax_mas": 3.0}
+    got = messages(client.post(path, json={"stars": [star], **body}))
+    first = got["stars[0].colour"]
+    assert first.startswith("unknown field; accepted fields: ")
+    listed = first.removeprefix("unknown field; accepted fields: ").split(", ")
+    assert sorted(listed) == sorted(_star_record_names(schema))  # the document sorts them
+    assert got["stars[0].paralax_mas"] == 'unknown field (did you mean "parallax_mas"?)'
+    assert got["stars[0].zz_extra"] == "unknown field"
+
+
+def test_many_unknown_columns_give_a_small_answer(client):
+    # 150 unknown columns: the first 50 named (the table's own cap), the rest counted.
+    cols = {k: [v] for k, v in STAR.items()} | {f"extra_{k:03d}": [1.0] for k in range(150)}
+    body = {"stars": cols, "catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"]}
+    r = client.post("/v1/propagation", json=body)
+    got = messages(r)
+    assert sum(m.startswith("unknown field") for m in got.values()) == 50
+    assert sum("accepted fields" in m for m in got.values()) == 1
+    assert got["stars.(more)"] == "100 further invalid values not listed"
+    assert len(r.get_data()) < 16_000

@@ -24,7 +24,8 @@ DOC = json.loads((ROOT / "openapi" / "openapi.json").read_text())
 POST_PATHS = sorted(p for p, ops in DOC["paths"].items() if "post" in ops)
 
 #: The largest problem+json answer accepted for any hostile input, bytes: 100 listed errors
-#: of a few hundred characters each (errors.MAX_LISTED_ERRORS, MAX_ECHOED_CHARS).
+#: of a few hundred characters each (errors.MAX_LISTED_ERRORS, MAX_ECHOED_CHARS; the
+#: service's own longest message, the accepted fields of a star table, comes once per table).
 MAX_PROBLEM_BYTES = 64_000
 
 STAR = {
