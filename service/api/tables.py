@@ -479,11 +479,13 @@ class StarTableField(ma.fields.Field):
         # The shape of the columns taken (an unknown one is only named): with an error
         # here no value is read, and the unknown names come in the same answer.
         lengths = {}
+        misshapen = False
         for name, col in cols.items():
             if name not in self.names:
                 continue
             if not isinstance(col, list | np.ndarray):  # arrays: see .jsoncolumns
                 errors.add(errors.header_key(name), "must be an array (one value per star)")
+                misshapen = True
                 continue
             lengths[name] = len(col)
         sizes = set(lengths.values())
@@ -494,6 +496,7 @@ class StarTableField(ma.fields.Field):
             first = next(iter(lengths.values()))
             usual = max(sizes, key=lambda size: (counts[size], size == first))
             reference = next(k for k, v in lengths.items() if v == usual)
+            misshapen = True
             for name, size in lengths.items():
                 if size != usual:
                     errors.add(
@@ -501,7 +504,7 @@ class StarTableField(ma.fields.Field):
                         f"has {size} value{'' if size == 1 else 's'} where {reference} has "
                         f"{usual}: all columns must have the same length (one value per star)",
                     )
-        if len(lengths) < len(cols) - len(unknown) or len(sizes) > 1:
+        if misshapen:
             errors.raise_if_any()
         if not lengths or 0 in sizes:
             errors.raise_if_any()
