@@ -407,6 +407,14 @@ def test_field_chart_epochs_judged_only_when_read(client, epochs, field):
 # ------------------------------------------------------------------ unknown star fields
 
 
+def _propagate(client, stars):
+    """POST /v1/propagation of ``stars`` (records or columns) from J2016.0 to J2020.0."""
+    return client.post(
+        "/v1/propagation",
+        json={"stars": stars, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
+    )
+
+
 def _arrow_bytes(columns: dict) -> bytes:
     table = pa.table(columns)
     sink = io.BytesIO()
@@ -420,10 +428,7 @@ def test_unknown_star_field_with_bad_values_in_every_form(client):
     # a value out of range in one answer, records, columns, CSV and Arrow alike.
     query = "/v1/propagation?catalogue_epoch=2016&target_epochs=2020"
     records = [{**BAD_STAR, "colour": 1.2}, {**STAR, "dec_deg": -95.0}]
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": records, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, records)
     errors = assert_names(
         r,
         ("stars[0].colour", "unknown field"),
@@ -432,10 +437,7 @@ def test_unknown_star_field_with_bad_values_in_every_form(client):
     )
     assert len(errors) == 3, errors
     columns = {k: [v, v] for k, v in STAR.items()} | {"dec_deg": [10.0, 95.0], "colour": [1, 2]}
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": columns, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, columns)
     assert_names(
         r, ("stars.colour", "unknown field"), ("stars.dec_deg[1]", "must be between -90 and 90")
     )
@@ -455,10 +457,7 @@ def test_misspelled_required_field_is_named_once(client):
     # "ra" is taken to stand for ra_deg (the message says so): ra_deg is not also called
     # required, and the other values are still judged.
     star = {"ra": 40.0, "dec_deg": 95.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 1.0}
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, [star])
     errors = assert_names(
         r,
         ("stars[0].ra", 'unknown field (did you mean "ra_deg"?)'),
@@ -467,10 +466,7 @@ def test_misspelled_required_field_is_named_once(client):
     assert set(errors) == {"stars[0].ra", "stars[0].dec_deg"}, errors
     # Another required field that no given name stands for is still called required.
     star = {"ra": 40.0, "dec_deg": 10.0, "pm_ra_cosdec_mas_yr": 1.0}
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, [star])
     errors = assert_names(r, ("stars[0].pm_dec_mas_yr", "is required"))
     assert "stars[0].ra_deg" not in errors, errors
 
@@ -481,20 +477,14 @@ def test_misspelled_correlation_is_not_judged_without_it(client):
     # that the client never meant: only the name is refused.
     star = {k: v for k, v in PSD_STAR.items() if k != "correlation_dec_parallax"}
     star["correlation_dec_parallx"] = 0.9
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, [star])
     errors = assert_names(
         r, ("stars[0].correlation_dec_parallx", 'unknown field (did you mean "correlation_dec')
     )
     assert len(errors) == 1, errors
     # Without the misspelled one, the two left are judged (and refused) as given.
     star = {k: v for k, v in PSD_STAR.items() if k != "correlation_dec_parallax"}
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, [star])
     assert_names(r, ("stars[0].correlation_*", "the correlations do not form"))
 
 
@@ -503,10 +493,7 @@ def test_columns_of_unequal_length_with_an_unknown_column(client):
     # length is not judged.
     columns = {"ra_deg": [40.0, 41.0], "dec_deg": [10.0], "pm_ra_cosdec_mas_yr": [1.0, 1.0],
                "pm_dec_mas_yr": [1.0, 1.0], "colour": [1.0, 2.0, 3.0]}  # fmt: skip
-    r = client.post(
-        "/v1/propagation",
-        json={"stars": columns, "catalogue_epoch": 2016.0, "target_epochs": [2020.0]},
-    )
+    r = _propagate(client, columns)
     errors = assert_names(
         r,
         ("stars.colour", "unknown field"),
