@@ -822,7 +822,8 @@ def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
         sites = sites or {}
         if spec not in sites:
             known = ", ".join(sorted(sites)) or "none configured"
-            raise ObservedInputError(f"{prefix}.name", f"unknown site {spec!r} (known: {known})")
+            shown = spec if len(spec) <= 64 else spec[:61] + "..."  # a client's text, cut
+            raise ObservedInputError(f"{prefix}.name", f"unknown site {shown!r} (known: {known})")
         entry = sites[spec]
         return make_site(
             entry["latitude_deg"],

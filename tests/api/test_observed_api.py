@@ -538,6 +538,16 @@ def test_span_of_an_instant_named_by_its_own_index_beside_an_unreadable_one(
 def test_unknown_site_names_the_field(client, observed_example):
     r = client.post(OBS, json=dict(observed_example, site="no-such-observatory"))
     assert_problem(r, 422, "site.name")
+    assert "unknown site 'no-such-observatory' (known: " in r.json["errors"][0]["message"]
+
+
+def test_unknown_site_name_is_quoted_short(client, observed_example):
+    # A client's own text in a message is cut (a 5,000-character name: its first 61).
+    r = client.post(OBS, json=dict(observed_example, site="s" * 5000))
+    assert_problem(r, 422, "site.name")
+    message = r.json["errors"][0]["message"]
+    assert message.startswith("unknown site '" + "s" * 61 + "...' (known: "), message
+    assert len(message) < 200
 
 
 def test_humidity_out_of_range_names_the_field(client, observed_example):
