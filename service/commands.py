@@ -545,11 +545,13 @@ def cmd_observed(args) -> int:
         )
     for line in observing_conditions(conditions):
         print(f"skydrift: {line}", file=sys.stderr)
-    # The motionless star asked for the conditions draws no warning of its own: any it gets
-    # is about the request, such as a pressure far from any weather at the site (a unit
-    # mistake that misplaces low targets by arcminutes). The CSV rows carry only its flag.
-    for w in conditions.get("warnings") or ():
-        print(f"skydrift: warning: {w['message']}", file=sys.stderr)
+    # A pressure far from any weather at the site (a unit mistake that misplaces low
+    # targets by arcminutes) is the request's: the answer says it once, in its refraction
+    # settings; the CSV rows carry only its flag. (The motionless star asked for the
+    # conditions draws no warning of its own.)
+    pressure_warning = conditions["refraction"].get("pressure_warning")
+    if pressure_warning:
+        print(f"skydrift: warning: {pressure_warning}", file=sys.stderr)
     # Always said, --quiet or not (it only stops the progress bar): a safety caution.
     print(
         "skydrift: Sun and horizon figures are advisory; the facility's own interlocks "

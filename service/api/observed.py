@@ -129,7 +129,8 @@ FLAG_MEANINGS = {
     "uncertain by as much, and below the horizon offset by it.",
     "pressure_implausible": "The pressure given is outside 0.83-1.15 times the standard "
     "atmosphere's at the site height, where no weather goes (probably a unit mistake; the "
-    "warning says which): refraction was computed with it as given, wrong in proportion.",
+    "answer's refraction.pressure_warning says which): refraction was computed with it as "
+    "given, wrong in proportion.",
 }
 
 
@@ -491,6 +492,14 @@ class RefractionOutSchema(ma.Schema):
     )
     wavelength_um = _out(ma.fields.Float, "Effective wavelength used, micrometres.")
     model = _out(ma.fields.String, "Refraction model.")
+    pressure_warning = _out(
+        ma.fields.String,
+        "Why the pressure given cannot be the air at the site (outside 0.83-1.15 times the "
+        "standard atmosphere's at its height), with both pressures and the likely mistake "
+        "(a unit, or a pressure reduced to sea level); null when it can. The places are "
+        "computed with the pressure as given and flagged pressure_implausible.",
+        allow_none=True,
+    )
 
 
 @always_present
@@ -592,8 +601,8 @@ class ObservedResponseSchema(ma.Schema):
         metadata={
             "description": "Stars whose inputs look like a unit mistake (proper motion above "
             "10.4 arcsec/yr, radial velocity above 5,000 km/s, parallax above 1,000 mas) or are "
-            "inconsistent, and every star of a request whose pressure does "
-            "(pressure_implausible); they are computed as given. " + WARNINGS_LIMIT_TEXT
+            "inconsistent; they are computed as given. A pressure that looks like one is "
+            "the request's, said once in refraction.pressure_warning. " + WARNINGS_LIMIT_TEXT
         },
     )
     stars = ma.fields.List(
@@ -793,9 +802,6 @@ def observed(args):
         )
     all_names = {x for lst in (*names, *input_names) for x in lst}
     r = res.refraction
-    if r.pressure_warning is not None:  # the request's pressure: every star flagged alike
-        bit = core.ObservedFlag.PRESSURE_IMPLAUSIBLE
-        warnings += flag_warnings(np.full(n, int(bit)), table, {bit: r.pressure_warning})
     body = {
         "advisory": ADVISORY,
         "site": {
@@ -812,6 +818,7 @@ def observed(args):
             "relative_humidity": r.relative_humidity,
             "wavelength_um": r.wavelength_um,
             "model": "A tan z + B tan^3 z, IAU SOFA refco/atioq",
+            "pressure_warning": r.pressure_warning,
         },
         "limits": {
             "horizon_limit_deg": float(horizon),

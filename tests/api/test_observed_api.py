@@ -625,7 +625,8 @@ def test_pressure_in_another_unit_is_flagged_and_warned_not_refused(
 ):
     # Unit factors: NIST SP 811 Appendix B.8; standard pressure: US Standard Atmosphere 1976
     # (core.standard_atmosphere). Computed as given (a pressure chamber may mean it), every
-    # place flagged, one warning per star giving both pressures and the likely unit. Dry
+    # place flagged, one warning for the request giving both pressures and the likely unit
+    # (in the refraction settings: not repeated for each star of a batch). Dry
     # air: humid air at about 1 hPa (atm) is refused, as water would boil there.
     site = {"latitude_deg": 20.0, "longitude_deg": 0.0, "height_m": height_m}
     atm = {"pressure_hpa": pressure_hpa, "temperature_c": 5.0, "relative_humidity": 0.0}
@@ -640,11 +641,12 @@ def test_pressure_in_another_unit_is_flagged_and_warned_not_refused(
         assert all("pressure_implausible" in a["flags"] for a in star["at_instants"])
     assert "unit mistake" in body["flag_meanings"]["pressure_implausible"]
     std = core.standard_atmosphere(height_m)[0]
-    messages = [w["message"] for w in body["warnings"] if "far from any weather" in w["message"]]
-    assert len(messages) == len(body["stars"])
-    assert f"pressure {pressure_hpa:g} hPa" in messages[0]
-    assert f"standard atmosphere there {std:.6g} hPa" in messages[0]
-    assert f"probably in {unit}" in messages[0]
+    message = body["refraction"]["pressure_warning"]
+    assert "far from any weather" in message
+    assert f"pressure {pressure_hpa:g} hPa" in message
+    assert f"standard atmosphere there {std:.6g} hPa" in message
+    assert f"probably in {unit}" in message
+    assert not any("far from any weather" in w["message"] for w in body["warnings"])
 
 
 def test_real_pressure_zero_or_missing_is_not_flagged(client, observed_example):
@@ -657,6 +659,7 @@ def test_real_pressure_zero_or_missing_is_not_flagged(client, observed_example):
         flags = {f for s in r.json["stars"] for a in s["at_instants"] for f in a["flags"]}
         assert "pressure_implausible" not in flags
         assert "pressure_implausible" not in r.json["flag_meanings"]
+        assert r.json["refraction"]["pressure_warning"] is None
         assert not any("far from any weather" in w["message"] for w in r.json["warnings"])
 
 
