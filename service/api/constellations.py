@@ -314,7 +314,9 @@ class CrossingsRequestSchema(ma.Schema):
         for name, value in (("start", start), ("end", end)):
             if cat is not None and value is not None:
                 if abs(value - cat) > core.MAX_CROSSING_WINDOW_YR:
-                    message = "must be within 100000 years of catalogue_epoch"
+                    message = (
+                        f"must be within {core.MAX_CROSSING_WINDOW_YR:.0f} years of catalogue_epoch"
+                    )
                     errors.setdefault(name, []).append(message)
         step = data.get("max_step_yr")
         if step is not None:
