@@ -184,6 +184,47 @@ def test_field_chart(demo_catalogue):
     assert image.imread(io.BytesIO(png))[..., :3].std() > 0.02
 
 
+def test_arrow_outlines_by_hand():
+    # Expected vertices worked by hand: an arrow along +x from (0, 0) to (10, 0), shaft 1
+    # wide, head 3 long and 4 wide; the same turned a quarter (along +y); a head longer
+    # than its arrow keeps its size and reaches back past the tail (no shaft); no head.
+    p0 = np.array([[0.0, 0.0], [0.0, 0.0], [0.0, 0.0], [0.0, 0.0]])
+    p1 = np.array([[10.0, 0.0], [0.0, 10.0], [2.0, 0.0], [10.0, 0.0]])
+    headed = np.array([True, True, True, False])
+    got = charts._arrow_outlines(p0, p1, headed, 1.0, 3.0, 4.0)
+    along_x = [(0, 0.5), (7, 0.5), (7, 2), (10, 0), (7, -2), (7, -0.5), (0, -0.5), (0, 0.5)]
+    along_y = [(-0.5, 0), (-0.5, 7), (-2, 7), (0, 10), (2, 7), (0.5, 7), (0.5, 0), (-0.5, 0)]
+    short = [(-1, 0.5), (-1, 0.5), (-1, 2), (2, 0), (-1, -2), (-1, -0.5), (-1, -0.5), (-1, 0.5)]
+    bare = [(0, 0.5), (10, 0.5), (10, 0.5), (10, 0), (10, -0.5), (10, -0.5), (0, -0.5), (0, 0.5)]
+    for k, want in enumerate([along_x, along_y, short, bare]):
+        np.testing.assert_allclose(got[k], want, atol=1e-12, err_msg=f"arrow {k}")
+
+
+def test_field_chart_arrows_are_drawn_in_png():
+    # The arrows are one artist per panel, outlined when drawn: the same stars with and
+    # without motion differ by the arrows' pixels (arrow colour), nothing else.
+    n = 40
+    rng = np.random.default_rng(7)
+    ra, dec = rng.uniform(0, 360, n), rng.uniform(-60, 60, n)
+    plx, rv = np.full(n, 50.0), np.zeros(n)
+
+    def arrow_pixels(pm):
+        chart = charts.star_field(ra, dec, plx, pm, pm, rv, catalogue_epoch_jyear=2016.0,
+                                  epochs_jyear=(2016.0, 12016.0))  # fmt: skip
+        png = charts.render_field(chart, image_format="png", label_fastest=0)
+        from matplotlib import image
+
+        rgb = image.imread(io.BytesIO(png))[..., :3]
+        want = np.array([int(charts.ARROW_COLOUR[i : i + 2], 16) / 255 for i in (1, 3, 5)])
+        return int(np.all(np.abs(rgb - want) < 0.03, axis=-1).sum())
+
+    still, moving = arrow_pixels(np.zeros(n)), arrow_pixels(np.full(n, 3000.0))
+    # 40 arrows of about 12 deg (3,000 mas/yr over 10,000 years on each axis) in each
+    # panel, some 30 pixels long at 150 dpi with a core of about one pixel in the arrow
+    # colour (the edges blend into the panel): some 2,500 pixels in all (2,680 measured).
+    assert moving - still > 1500, (still, moving)
+
+
 def test_bad_arguments(picked):
     a = astrometry(picked)
     with pytest.raises(ValueError):
