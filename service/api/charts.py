@@ -13,7 +13,7 @@ from .common import Blueprint, EpochField, StrictBoolean, StrictFloat
 from .examples import load_example
 from .observability import count_stars
 from .propagation import StarAstrometrySchema
-from .tables import RowCheck, StarTableField
+from .tables import IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
     "charts",
@@ -85,6 +85,7 @@ class TrackChartRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars (1 to 12), records or columns; ids label them."},
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )
@@ -145,6 +146,7 @@ class FieldChartRequestSchema(ma.Schema):
         required=True,
         metadata={"description": f"The stars (at most {MAX_FIELD_STARS}), records or columns."},
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )

@@ -38,7 +38,7 @@ from .examples import load_example
 from .frames import FrameSpecSchema, frame_from_spec
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
-from .tables import RowCheck, StarTableField
+from .tables import IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
     "constellations",
@@ -185,6 +185,7 @@ class LookupRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "Positions: a list of records, or an object of columns."},
     )
+    ignored_columns = IgnoredColumnsField()
     frame = ma.fields.Nested(
         FrameSpecSchema,
         load_default=lambda: {"name": "icrs"},
@@ -271,6 +272,7 @@ class CrossingsRequestSchema(ma.Schema):
             f"{MAX_CROSSING_STARS} per request."
         },
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )

@@ -34,7 +34,7 @@ from .examples import load_example
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
-from .tables import StarTableField
+from .tables import IgnoredColumnsField, StarTableField
 
 blp = Blueprint(
     "frames",
@@ -197,6 +197,7 @@ class FramesRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         required=True,
         metadata={"description": "Epoch at which the given positions hold (e.g. 'B1950.0')."},

@@ -51,7 +51,7 @@ from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
 from .spelling import unknown_name_text
-from .tables import StarTableField
+from .tables import IgnoredColumnsField, StarTableField
 
 ADVISORY = (
     "Advisory only: the Sun altitude, Sun separation and horizon figures are for information. "
@@ -369,6 +369,7 @@ class ObservedRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars (records or columns), astrometry at catalogue_epoch."},
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )

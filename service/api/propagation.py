@@ -42,7 +42,7 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .tables import MAX_ABS_MAS, RowCheck, StarTableField
+from .tables import MAX_ABS_MAS, IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
     "propagation",
@@ -280,6 +280,7 @@ class PropagationRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )

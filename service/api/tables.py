@@ -13,6 +13,10 @@ validates them with numpy, not element by element. Its column set, units, ranges
 descriptions come from an ordinary marshmallow schema of one record, which is also what the
 OpenAPI document shows. ``null`` (or an absent optional key) means unknown and becomes NaN;
 it never becomes zero.
+
+A request may list columns of its table to leave unread (``ignored_columns``, an
+:class:`IgnoredColumnsField`): a catalogue file's magnitudes, say. Any other name the table
+does not take is refused, so that a misspelt field never goes unnoticed.
 """
 
 from __future__ import annotations
@@ -50,6 +54,12 @@ QUOTED_NUMBER_MESSAGE = "must be a number (in the unit of the field name), writt
 _ID_TYPES = (str, int)
 #: Longest star identifier accepted, characters.
 MAX_ID_LENGTH = 64
+#: The request field that lists columns of the star table to leave unread, and the most
+#: names it may list.
+IGNORED_COLUMNS = "ignored_columns"
+MAX_IGNORED_COLUMNS = 200
+#: Longest column name ``ignored_columns`` may list, characters.
+MAX_COLUMN_NAME_LENGTH = 256
 
 
 @dataclass
@@ -417,17 +427,29 @@ class StarTableField(ma.fields.Field):
         from .arrowio import ArrowTable
         from .csvio import CsvTable
 
+        skip = self._ignored(data)
         if isinstance(value, CsvTable):
-            return self._from_csv(value)
+            return self._from_csv(value, skip)
         if isinstance(value, ArrowTable):
-            return self._from_arrow(value)
+            return self._from_arrow(value, skip)
         if isinstance(value, list):
-            return self._from_records(value)
+            return self._from_records(value, skip)
         if isinstance(value, dict):
-            return self._from_columns(value)
+            return self._from_columns(value, skip)
         raise ma.ValidationError(
             "must be a list of star records or an object of equal-length columns"
         )
+
+    def _ignored(self, data) -> frozenset:
+        """The names the request lists in ``ignored_columns`` that the table does not take
+        (as given: the field's own check names a list that is not one of names, and an
+        accepted name listed, which is read as usual)."""
+        if not isinstance(self.parent, ma.Schema) or IGNORED_COLUMNS not in self.parent.fields:
+            return frozenset()
+        value = data.get(IGNORED_COLUMNS) if isinstance(data, dict) else None
+        if not isinstance(value, list):
+            return frozenset()
+        return frozenset(v for v in value if isinstance(v, str)) - self.names
 
     def _limit(self, n: int) -> None:
         if n == 0:
@@ -446,7 +468,7 @@ class StarTableField(ma.fields.Field):
                 ],
             )
 
-    def _from_records(self, records: list) -> StarTable:
+    def _from_records(self, records: list, skip: frozenset) -> StarTable:
         self._limit(len(records))
         errors = TableErrors("records")
         not_obj = [i for i, r in enumerate(records) if type(r) is not dict]
@@ -455,7 +477,7 @@ class StarTableField(ma.fields.Field):
                 errors.add(f"[{i}]", "must be an object (a star record)")
             errors.more += len(not_obj[MAX_LISTED_ERRORS:])  # counted, not listed
             errors.raise_if_any()
-        keys = set().union(*records) if records else set()
+        keys = set().union(*records) - skip if records else set()
         unknown = keys - self.names
         if unknown:
             for k, name in enumerate(sorted(unknown)[:MAX_LISTED_ERRORS]):
@@ -470,9 +492,9 @@ class StarTableField(ma.fields.Field):
             columns[spec.name] = [r.get(spec.name) for r in records]
         return self._finish(columns, len(records), errors, keys)
 
-    def _from_columns(self, cols: dict) -> StarTable:
+    def _from_columns(self, cols: dict, skip: frozenset) -> StarTable:
         errors = TableErrors("columns")
-        unknown = sorted(set(cols) - self.names)
+        unknown = sorted(set(cols) - self.names - skip)
         for k, name in enumerate(unknown[:MAX_LISTED_ERRORS]):
             errors.add(errors.header_key(name), self._unknown_text(name, listed=k == 0))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
@@ -511,14 +533,14 @@ class StarTableField(ma.fields.Field):
             raise ma.ValidationError("at least one star is required")
         n = sizes.pop()
         self._limit(n)
-        return self._finish(cols, n, errors, set(cols))
+        return self._finish(cols, n, errors, set(cols) - skip)
 
-    def _from_csv(self, table) -> StarTable:
+    def _from_csv(self, table, skip: frozenset) -> StarTable:
         """A CSV body (text cells, empty = null); errors name the line of the file."""
         # A CSV table answers in the columns layout unless asked otherwise (it is the fast
         # one, and CSV answers are the same from either); errors name file lines.
         errors = TableErrors("columns", table.lines, table.header_line)
-        unknown = [h for h in table.header if h not in self.names]
+        unknown = [h for h in table.header if h not in self.names and h not in skip]
         for k, name in enumerate(unknown[:MAX_LISTED_ERRORS]):
             errors.add(errors.header_key(name), self._unknown_text(name, listed=k == 0))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
@@ -538,13 +560,14 @@ class StarTableField(ma.fields.Field):
             else:
                 cells = [c.strip() for c in cells]  # "1, 2.5": blanks around a number
                 raw[spec.name] = _csv_number_column(cells, spec, errors)
-        return self._finish(raw, table.size, errors, set(table.header), lines=table.lines)
+        given = set(table.header) - skip
+        return self._finish(raw, table.size, errors, given, lines=table.lines)
 
-    def _from_arrow(self, table) -> StarTable:
+    def _from_arrow(self, table, skip: frozenset) -> StarTable:
         """An Arrow IPC body (typed columns, null = unknown); errors name stars.<column>[<row>]
         as for the columns form, which it answers in unless asked otherwise."""
         errors = TableErrors("columns")
-        unknown = [h for h in table.names if h not in self.names]
+        unknown = [h for h in table.names if h not in self.names and h not in skip]
         for k, name in enumerate(unknown[:MAX_LISTED_ERRORS]):
             errors.add(errors.header_key(name), self._unknown_text(name, listed=k == 0))
         errors.more += len(unknown[MAX_LISTED_ERRORS:])
@@ -562,7 +585,7 @@ class StarTableField(ma.fields.Field):
                 raw[spec.name] = table.number_column(spec, errors)
         if any(v is None for v in raw.values()):
             errors.raise_if_any()  # a mistyped column (None) must not read as absent
-        return self._finish(raw, table.size, errors, set(table.names))
+        return self._finish(raw, table.size, errors, set(table.names) - skip)
 
     def _finish(
         self, raw: dict, n: int, errors: TableErrors, given: set, lines: list | None = None
@@ -611,6 +634,58 @@ class StarTableField(ma.fields.Field):
         names = [s.name for s in self.specs]
         listing = "accepted fields: " + ", ".join(names) if listed else None
         return unknown_name_text(name, names, listing)
+
+
+class IgnoredColumnsField(ma.fields.List):
+    """Names of columns (or record members) of the request's star table to leave unread.
+
+    Each must be a name the table does not take: an accepted name listed is refused, since
+    it would be read all the same. Names that are not in the table are no error (one list
+    can serve several files).
+    """
+
+    def __init__(self, **kwargs):
+        super().__init__(
+            ma.fields.String(
+                validate=ma.validate.Length(
+                    min=1, max=MAX_COLUMN_NAME_LENGTH, error="must be {min} to {max} characters"
+                )
+            ),
+            validate=ma.validate.Length(
+                max=MAX_IGNORED_COLUMNS, error="must list at most {max} names"
+            ),
+            metadata={
+                "description": "Columns of the star table (or members of its records) to "
+                "leave unread: a catalogue file's magnitudes or notes, say. Each must be a "
+                "name the table does not take; any other such name is still refused, so "
+                "that a misspelt field never goes unnoticed. Names absent from the table "
+                f"are no error. At most {MAX_IGNORED_COLUMNS} names."
+            },
+            **kwargs,
+        )
+
+    def _deserialize(self, value, attr, data, **kwargs) -> list:
+        tables = [f for f in self.parent.fields.values() if isinstance(f, StarTableField)]
+        accepted = tables[0].names if tables else set()
+        message = "is a field of the star table and is read; list only columns it does not take"
+        # Every listed name the table takes is named, with the list's other errors.
+        taken = {}
+        if isinstance(value, list):
+            taken = {
+                i: [message] for i, v in enumerate(value) if isinstance(v, str) and v in accepted
+            }
+        try:
+            names = super()._deserialize(value, attr, data, **kwargs)
+        except ma.ValidationError as exc:
+            if not taken or not isinstance(exc.messages, dict):
+                raise
+            merged = dict(exc.messages)
+            for i, messages in taken.items():
+                merged[i] = list(merged.get(i, [])) + messages
+            raise ma.ValidationError(dict(sorted(merged.items()))) from exc
+        if taken:
+            raise ma.ValidationError(taken)
+        return names
 
 
 def id_field_to_openapi(self, field, **kwargs) -> dict:

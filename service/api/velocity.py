@@ -49,7 +49,14 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .tables import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC, RowCheck, StarTableField
+from .tables import (
+    MAX_ABS_MAS,
+    MAX_DISTANCE_PC,
+    MIN_DISTANCE_PC,
+    IgnoredColumnsField,
+    RowCheck,
+    StarTableField,
+)
 
 blp = Blueprint(
     "velocity",
@@ -251,6 +258,7 @@ class VelocityRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
+    ignored_columns = IgnoredColumnsField()
     catalogue_epoch = EpochField(
         load_default=None,
         allow_none=True,
@@ -840,6 +848,7 @@ class ObservablesRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "The stars: a list of records, or an object of columns."},
     )
+    ignored_columns = IgnoredColumnsField()
     relative_to_lsr = StrictBoolean(
         load_default=False,
         metadata={
