@@ -6,17 +6,16 @@ and the answer is the one for the same table without it. A name the table takes 
 listed: it would be read all the same.
 """
 
-import io
 import json
 import pathlib
 
 import pyarrow as pa
 import pytest
 
+from tests.api.test_arrow import ARROW, stream_of
 from tests.conftest import DEMO_OPTIONS, DEMO_QUERY
 
 ROOT = pathlib.Path(__file__).resolve().parents[2]
-ARROW = "application/vnd.apache.arrow.stream"
 NOT_TAKEN = "is a field of the star table and is read; list only columns it does not take"
 
 
@@ -77,20 +76,14 @@ def test_csv_columns_listed_in_the_query_are_left_out(client):
     assert r.get_data(as_text=True) == plain.get_data(as_text=True)
 
 
-def _arrow(columns: dict) -> bytes:
-    table = pa.table(columns)
-    sink = io.BytesIO()
-    with pa.ipc.new_stream(sink, table.schema) as writer:
-        writer.write_table(table)
-    return sink.getvalue()
-
-
 def test_arrow_column_of_another_type_listed_is_left_out(client, demo_catalogue):
     stars = _stars(demo_catalogue)
     columns = {k: [s.get(k) for s in stars] for k in stars[0]}
-    plain = client.post("/v1/propagation" + DEMO_QUERY, data=_arrow(columns), content_type=ARROW)
+    plain = client.post(
+        "/v1/propagation" + DEMO_QUERY, data=stream_of(pa.table(columns)), content_type=ARROW
+    )
     assert plain.status_code == 200
-    body = _arrow(dict(columns, notes=["a", "b", None, "d"]))  # text: no number column
+    body = stream_of(pa.table(dict(columns, notes=["a", "b", None, "d"])))  # text: no number column
     refused = client.post("/v1/propagation" + DEMO_QUERY, data=body, content_type=ARROW)
     assert [f for f, _ in _fields(refused)] == ["stars.notes"]
     query = DEMO_QUERY + "&ignored_columns=notes"
