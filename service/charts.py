@@ -36,6 +36,7 @@ from __future__ import annotations
 import functools
 import io
 import math
+import re
 import threading
 from dataclasses import dataclass, field
 
@@ -70,8 +71,11 @@ TICK_LABEL_SPACING_FRACTION = 0.05
 LABEL_MIN_ROOM_FRACTION = 0.025
 #: Grid of probe points used to find the constellations present in the view.
 PROBE_GRID = 60
-#: PNG resolution, dots per inch.
+#: PNG resolution, dots per inch, unless a width in pixels is asked for.
 PNG_DPI = 150
+#: Widths in pixels an image may be asked for (``width_px``).
+MIN_WIDTH_PX = 400
+MAX_WIDTH_PX = 4000
 IMAGE_FORMATS = ("svg", "png")
 _SAVE_LOCK = threading.Lock()
 #: Motion arrows shorter than this are not drawn (the head would hide the star), radians.
@@ -427,11 +431,20 @@ def _figure(width_in: float, height_in: float):
     return Figure(figsize=(width_in, height_in), facecolor=PAGE_COLOUR, layout="constrained")
 
 
-def _save(fig, image_format: str) -> bytes:
+def _save(fig, image_format: str, width_px: int | None = None) -> bytes:
+    """The figure as SVG or PNG bytes. With ``width_px``, a PNG is drawn that many pixels
+    wide (text and lines scaled with it) and an SVG states that width, in pixels, and the
+    height that keeps its shape; without, a PNG has PNG_DPI and an SVG its size in points."""
     import matplotlib
 
     if image_format not in IMAGE_FORMATS:
         raise ValueError(f"image format must be one of {IMAGE_FORMATS}")
+    if width_px is not None and not MIN_WIDTH_PX <= width_px <= MAX_WIDTH_PX:
+        raise ValueError(f"width_px must be {MIN_WIDTH_PX} to {MAX_WIDTH_PX}")
+    width_in, height_in = fig.get_size_inches()
+    # Agg makes the canvas int(width_in * dpi) pixels wide: half a pixel more than asked
+    # keeps a rounding below the whole number from losing a pixel.
+    dpi = PNG_DPI if width_px is None else (width_px + 0.5) / width_in
     buf = io.BytesIO()
     rc = {"svg.fonttype": "none", "svg.hashsalt": "skydrift", "svg.id": "skydrift-chart"}
     # rc_context changes matplotlib's global settings: one chart at a time is written, so
@@ -440,8 +453,25 @@ def _save(fig, image_format: str) -> bytes:
         if image_format == "svg":
             fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": "Skydrift"})
         else:
-            fig.savefig(buf, format="png", dpi=PNG_DPI, metadata={"Software": "Skydrift"})
-    return buf.getvalue()
+            fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": "Skydrift"})
+    data = buf.getvalue()
+    if image_format == "svg" and width_px is not None:
+        data = _svg_size(data, width_px, width_px * height_in / width_in)
+    return data
+
+
+_SVG_SIZE = re.compile(rb'(<svg\b[^>]*?\swidth=")[0-9.]+pt("\s+height=")[0-9.]+pt(")')
+
+
+def _svg_size(svg: bytes, width_px: float, height_px: float) -> bytes:
+    """The SVG with the width and height of its root element in pixels (its viewBox, the
+    drawing's own coordinates, unchanged: the drawing is scaled to the new size)."""
+    sized, count = _SVG_SIZE.subn(
+        lambda m: b"%s%dpx%s%.1fpx%s" % (m[1], round(width_px), m[2], height_px, m[3]), svg, 1
+    )
+    if count != 1:  # pragma: no cover - matplotlib writes both, in points
+        raise RuntimeError("the SVG root element has no width and height in points")
+    return sized
 
 
 def _plain(text: str) -> str:
@@ -497,8 +527,10 @@ def render_tracks(
     title: str | None = None,
     image_format: str = "svg",
     size_in: tuple = (8.0, 7.0),
+    width_px: int | None = None,
 ) -> bytes:
-    """Draw a :class:`TrackChart`; returns the SVG or PNG bytes."""
+    """Draw a :class:`TrackChart`; returns the SVG or PNG bytes (``width_px``: see
+    :func:`_save`)."""
     from matplotlib.collections import LineCollection
     from matplotlib.ticker import FuncFormatter
 
@@ -669,7 +701,7 @@ def render_tracks(
             labelcolor=TEXT_COLOUR,
         )
         legend.set_gid("legend")
-    return _save(fig, image_format)
+    return _save(fig, image_format, width_px)
 
 
 def star_field(
@@ -847,8 +879,8 @@ def render_field(chart: FieldChart, **kwargs) -> bytes:
     """Draw a :class:`FieldChart`: two all-sky panels side by side with motion arrows.
 
     Keywords: ``title``, ``image_format`` ("svg" or "png"), ``label_fastest`` (how many of
-    the fastest stars are labelled), ``size_in``. Stars whose place could not be computed
-    are left out.
+    the fastest stars are labelled), ``size_in``, ``width_px`` (see :func:`_save`). Stars
+    whose place could not be computed are left out.
     """
     with np.errstate(invalid="ignore"):
         return _render_field(chart, **kwargs)
@@ -861,6 +893,7 @@ def _render_field(
     image_format: str = "svg",
     label_fastest: int = 3,
     size_in: tuple = (13.0, 4.6),
+    width_px: int | None = None,
 ) -> bytes:
     """Draw a :class:`FieldChart`: two all-sky panels side by side with motion arrows."""
     from matplotlib import patheffects
@@ -968,4 +1001,4 @@ def _render_field(
         color=MUTED_TEXT_COLOUR,
         fontsize=7,
     )
-    return _save(fig, image_format)
+    return _save(fig, image_format, width_px)

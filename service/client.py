@@ -1150,8 +1150,10 @@ class Client:
         image_format: str = "svg",
         boundaries: bool = True,
         title: str | None = None,
+        width_px: int | None = None,
     ) -> bytes:
-        """POST /v1/charts/track: the tracks of a few stars across the sky, as SVG or PNG."""
+        """POST /v1/charts/track: the tracks of a few stars across the sky, as SVG or PNG
+        (``width_px``: the image's width in pixels)."""
         body = {
             "stars": stars,
             "catalogue_epoch": catalogue_epoch,
@@ -1163,6 +1165,8 @@ class Client:
         }
         if title is not None:
             body["title"] = title
+        if width_px is not None:
+            body["width_px"] = width_px
         return self._image("/v1/charts/track", body)
 
     def chart_field(
@@ -1174,8 +1178,10 @@ class Client:
         arrow_years: float | None = None,
         image_format: str = "svg",
         title: str | None = None,
+        width_px: int | None = None,
     ) -> bytes:
-        """POST /v1/charts/field: a star field at two epochs side by side, motion arrows."""
+        """POST /v1/charts/field: a star field at two epochs side by side, motion arrows
+        (``width_px``: the image's width in pixels)."""
         body = {
             "stars": stars,
             "catalogue_epoch": catalogue_epoch,
@@ -1186,6 +1192,8 @@ class Client:
             body["arrow_years"] = arrow_years
         if title is not None:
             body["title"] = title
+        if width_px is not None:
+            body["width_px"] = width_px
         return self._image("/v1/charts/field", body)
 
     def _image(self, path: str, body: dict) -> bytes:

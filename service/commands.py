@@ -664,6 +664,7 @@ def cmd_chart_track(args) -> int:
         "boundaries": not args.no_boundaries,
         "format": _image_format(args),
         "title": args.title,
+        "width_px": args.width_px,
     }
     with make_client(args) as client, _errors_named_for(cat):
         text, lines = _select(cat, args.star)
@@ -686,6 +687,7 @@ def cmd_chart_field(args) -> int:
         "arrow_years": args.arrow_years,
         "format": _image_format(args),
         "title": args.title,
+        "width_px": args.width_px,
     }
     with make_client(args) as client, _errors_named_for(cat):
         data = _tolerant(
@@ -1072,3 +1074,10 @@ def _image_options(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument("--format", choices=("svg", "png"), help="image format (overrides the name)")
     p.add_argument("--title", help="chart title")
+    p.add_argument(
+        "--width-px",
+        type=whole,
+        metavar="N",
+        help="image width in pixels, the height following the chart's shape (PNG default: "
+        "150 dots per inch)",
+    )

@@ -78,6 +78,24 @@ def _title_field():
     )
 
 
+def _width_field(default_px: int):
+    from .. import charts
+
+    return ma.fields.Integer(
+        strict=True,
+        load_default=None,
+        allow_none=True,
+        validate=ma.validate.Range(min=charts.MIN_WIDTH_PX, max=charts.MAX_WIDTH_PX),
+        metadata={
+            "description": "Width of the image in pixels; the height follows the chart's "
+            "shape. A PNG is drawn that wide, its text and lines scaled with it (default "
+            f"{default_px} px, {charts.PNG_DPI} dots per inch); an SVG, drawn in vectors, "
+            "states that width and the matching height in pixels (default: its size in "
+            "points)."
+        },
+    )
+
+
 class TrackChartRequestSchema(ma.Schema):
     stars = StarTableField(
         StarAstrometrySchema,
@@ -109,6 +127,7 @@ class TrackChartRequestSchema(ma.Schema):
     )
     format = _format_field()
     title = _title_field()
+    width_px = _width_field(1200)
 
     @ma.validates_schema(skip_on_field_errors=False)
     def _span(self, data, **kwargs):
@@ -167,6 +186,7 @@ class FieldChartRequestSchema(ma.Schema):
     )
     format = _format_field()
     title = _title_field()
+    width_px = _width_field(1950)
 
     @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
     def _epochs_differ(self, data, original, **kwargs):
@@ -274,7 +294,9 @@ def track(args):
     image_format = _image_format(args)
     count_stars("/v1/charts/track", table.size)
     return _image(
-        charts.render_tracks(chart, title=args["title"], image_format=image_format),
+        charts.render_tracks(
+            chart, title=args["title"], image_format=image_format, width_px=args["width_px"]
+        ),
         image_format,
     )
 
@@ -312,7 +334,9 @@ def field(args):
     image_format = _image_format(args)
     count_stars("/v1/charts/field", table.size)
     return _image(
-        charts.render_field(chart, title=args["title"], image_format=image_format),
+        charts.render_field(
+            chart, title=args["title"], image_format=image_format, width_px=args["width_px"]
+        ),
         image_format,
     )
 

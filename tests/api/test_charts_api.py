@@ -1,5 +1,6 @@
 """POST /v1/charts/track and /v1/charts/field: images, formats, and bad input."""
 
+import io
 import json
 import xml.etree.ElementTree as ET
 
@@ -295,3 +296,43 @@ def test_a_chart_past_the_time_limit_does_not_break_later_charts():
     statuses = json.loads(out.stdout.strip().splitlines()[-1])
     assert [s[0] for s in statuses[:2]] == [503, 503]
     assert statuses[2] == [200, "image/svg+xml"]
+
+
+@pytest.mark.parametrize("path", ["/v1/charts/track", "/v1/charts/field"])
+def test_width_in_pixels(client, track_body, demo_catalogue, path):
+    # The image's size read back by Pillow (PNG) and from the SVG's root element: the width
+    # asked for, the height in the chart's own proportion (8 x 7 in for a track chart,
+    # 13 x 4.6 in for a field chart), and the default sizes unchanged.
+    from PIL import Image
+
+    if path.endswith("track"):
+        body, shape, default = dict(track_body, stop="J3016.0", boundaries=False), 7 / 8, 1200
+    else:
+        body = {"stars": demo_catalogue["stars"][:5], "catalogue_epoch": "J2016.0",
+                "epochs": ["J2016.0", "J3016.0"]}  # fmt: skip
+        shape, default = 4.6 / 13, 1950
+    for width in (None, 400, 777, 4000):
+        asked = {} if width is None else {"width_px": width}
+        r = client.post(path, json=dict(body, format="png", **asked))
+        assert r.status_code == 200, r.get_data(as_text=True)
+        w, h = Image.open(io.BytesIO(r.data)).size
+        assert w == (width or default)
+        assert abs(h - w * shape) <= 1.0
+    root = ET.fromstring(client.post(path, json=dict(body, width_px=800)).data)
+    assert root.get("width") == "800px"
+    assert abs(float(root.get("height").removesuffix("px")) - 800 * shape) <= 0.05
+    view = [float(v) for v in root.get("viewBox").split()]
+    assert view[2] / view[3] == pytest.approx(1 / shape, rel=1e-6)
+    plain = ET.fromstring(client.post(path, json=body).data)
+    assert plain.get("width").endswith("pt")  # no width asked: the size in points, as before
+
+
+@pytest.mark.parametrize(
+    ("width", "message"),
+    [(399, "must be between 400 and 4000"), (4001, "must be between 400 and 4000"),
+     (800.5, "must be a whole number"), ("800", "must be a whole number")],
+)  # fmt: skip
+def test_width_out_of_range_or_not_a_whole_number(client, track_body, width, message):
+    r = client.post("/v1/charts/track", json=dict(track_body, width_px=width))
+    assert r.status_code == 422
+    assert [(e["field"], e["message"]) for e in r.json["errors"]] == [("width_px", message)]

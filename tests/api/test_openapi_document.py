@@ -342,7 +342,7 @@ def test_error_descriptions_cover_the_answers_the_service_gives(doc, client):
 #: Unit suffixes of the project's field names (DEVELOPERS.md, Conventions: units are in
 #: names), as the schemas use them: a number so named carries its unit already.
 UNIT_SUFFIX = re.compile(
-    r"_(deg|deg2|sr|arcsec|mas|mas_yr|mas_yr2|km_s|km_s_yr|pc|yr|jyear|days|s|m|hpa|c|um|mjd)$"
+    r"_(deg|deg2|sr|arcsec|mas|mas_yr|mas_yr2|km_s|km_s_yr|pc|yr|jyear|days|s|m|hpa|c|um|mjd|px)$"
 )
 
 #: What a description of a number without a unit suffix must say: its unit, that it is

@@ -525,6 +525,24 @@ def test_chart_field_png(tmp_path):
     assert out.read_bytes().startswith(b"\x89PNG")
 
 
+def test_chart_width_in_pixels(tmp_path):
+    from PIL import Image
+
+    out = tmp_path / "track.png"
+    skydrift(
+        "chart", "track", str(DEMO / "catalogue.json"), "--star", "KRC 0017",
+        "--start", "J2016", "--stop", "J3016", "--no-boundaries", "--width-px", "640",
+        "-o", str(out),
+    )  # fmt: skip
+    with Image.open(out) as image:
+        assert image.size == (640, 560)  # 8 x 7 inches: 640 x 560 pixels
+    run = skydrift(
+        "chart", "track", str(DEMO / "catalogue.json"), "--star", "KRC 0017",
+        "--start", "J2016", "--stop", "J3016", "--width-px", "64_0", check=False,
+    )  # fmt: skip
+    assert run.returncode == 2 and "--width-px" in run.stderr.decode()
+
+
 @pytest.mark.parametrize(
     "args",
     [

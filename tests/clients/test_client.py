@@ -336,6 +336,13 @@ def test_chart_methods_return_images(sky, demo_catalogue):
         stars, catalogue_epoch="J2016.0", epochs=("J2016.0", "J12016.0"), image_format="png"
     )
     assert png.startswith(b"\x89PNG\r\n\x1a\n")
+    svg = sky.chart_track(
+        stars[16:17], catalogue_epoch="J2016.0", start="J2016.0", stop="J3016.0", width_px=600
+    )
+    assert ET.fromstring(svg).get("width") == "600px"
+    png = sky.chart_field(stars, catalogue_epoch="J2016.0", epochs=("J2016.0", "J12016.0"),
+                          image_format="png", width_px=500)  # fmt: skip
+    assert int.from_bytes(png[16:20], "big") == 500  # the PNG header's width (IHDR)
 
 
 def test_merge_answers_fills_columns_a_batch_lacks():
