@@ -441,9 +441,9 @@ class StarTableField(ma.fields.Field):
         )
 
     def _ignored(self, data) -> frozenset:
-        """The names the request lists in ``ignored_columns`` that the table does not take
-        (as given: the field's own check names a list that is not one of names, and an
-        accepted name listed, which is read as usual)."""
+        """The names listed in the request's ``ignored_columns`` that the table does not
+        take. A value that is no list of names is left to that field's own check, and so is
+        a listed name the table takes (which is read as usual)."""
         if not isinstance(self.parent, ma.Schema) or IGNORED_COLUMNS not in self.parent.fields:
             return frozenset()
         value = data.get(IGNORED_COLUMNS) if isinstance(data, dict) else None
