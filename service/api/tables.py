@@ -444,7 +444,7 @@ class StarTableField(ma.fields.Field):
         """The names listed in the request's ``ignored_columns`` that the table does not
         take. A value that is no list of names is left to that field's own check, and so is
         a listed name the table takes (which is read as usual)."""
-        if not isinstance(self.parent, ma.Schema) or IGNORED_COLUMNS not in self.parent.fields:
+        if not self._offers_ignoring():
             return frozenset()
         value = data.get(IGNORED_COLUMNS) if isinstance(data, dict) else None
         if not isinstance(value, list):
@@ -628,12 +628,20 @@ class StarTableField(ma.fields.Field):
         return table
 
     def _unknown_text(self, name, listed: bool) -> str:
-        """The message of an unknown column: the name it likely stands for, and with
+        """The message of an unknown column: the name it likely stands for, or, for a name
+        like no accepted one (a catalogue's magnitudes), how to leave it unread; and with
         ``listed`` (the first unknown column of a table: a catalogue file may bring a
-        hundred) every accepted name."""
+        hundred) every accepted name. A likely misspelling gets no word on leaving it
+        unread: a misspelt parallax left out would only move the error further on."""
         names = [s.name for s in self.specs]
         listing = "accepted fields: " + ", ".join(names) if listed else None
+        if closest_name(name, names) is None and self._offers_ignoring():
+            text = f"unknown field (to leave it unread, list it in {IGNORED_COLUMNS})"
+            return f"{text}; {listing}" if listing else text
         return unknown_name_text(name, names, listing)
+
+    def _offers_ignoring(self) -> bool:
+        return isinstance(self.parent, ma.Schema) and IGNORED_COLUMNS in self.parent.fields
 
 
 class IgnoredColumnsField(ma.fields.List):
