@@ -989,16 +989,15 @@ def _render_field(
             f"; {n:,} {'star has' if n == 1 else 'stars have'} no radial velocity or no "
             "positive parallax: radial motion left out"
         )
-    fig.text(
-        0.5,
-        0.01,
-        f"arrows: motion over the next {years} (straight-line model; "
-        "one running over the edge goes on from the other edge); "
-        "marker size grows with parallax; open circles: parallax unknown or not positive; "
-        f"right ascension increases to the left{radial}",
-        ha="center",
-        va="bottom",
+    # Two lines, placed by the layout (as a figure-wide x label): on one line, as a free
+    # text, its ends ran past the figure's edges and were cut off.
+    note = fig.supxlabel(
+        f"arrows: motion over the next {years} (straight-line model; one running over the "
+        "edge goes on from the other edge); right ascension increases to the left\n"
+        "marker size grows with parallax; open circles: parallax unknown or not positive"
+        f"{radial}",
         color=MUTED_TEXT_COLOUR,
         fontsize=7,
     )
+    note.set_gid("note")
     return _save(fig, image_format, width_px)

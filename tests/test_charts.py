@@ -225,6 +225,23 @@ def test_field_chart_arrows_are_drawn_in_png():
     assert moving - still > 1500, (still, moving)
 
 
+def test_field_chart_note_is_inside_the_image(demo_catalogue):
+    # The note under the panels ran past both edges of the image on one line ("arrows:
+    # motion over the n" cut off at the left). Its pixels (the muted text colour, in the
+    # bottom rows, where nothing else is drawn) must keep clear of the edges.
+    from matplotlib import image
+
+    stars = demo_catalogue["stars"]
+    chart = charts.star_field(*astrometry(stars), catalogue_epoch_jyear=2016.0,
+                              epochs_jyear=(2016.0, 12016.0))  # fmt: skip
+    rgb = image.imread(io.BytesIO(charts.render_field(chart, image_format="png")))[..., :3]
+    muted = np.array([int(charts.MUTED_TEXT_COLOUR[i : i + 2], 16) / 255 for i in (1, 3, 5)])
+    bottom = rgb[-int(0.08 * rgb.shape[0]) :]
+    columns = np.flatnonzero(np.any(np.all(np.abs(bottom - muted) < 0.05, axis=-1), axis=0))
+    assert columns.size > 500  # the note is there
+    assert columns.min() > 20 and columns.max() < rgb.shape[1] - 20, (columns.min(), columns.max())
+
+
 def test_bad_arguments(picked):
     a = astrometry(picked)
     with pytest.raises(ValueError):
