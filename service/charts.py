@@ -516,8 +516,19 @@ def _epoch_title(epoch: float) -> str:
     return text + "0" if text.endswith(".") else text
 
 
-def _epoch_text(epoch: float, step: float) -> str:
-    decimals = 0 if step >= 5 else 1 if step >= 0.5 else 2
+def _epoch_decimals(epochs, step: float) -> int:
+    """Decimals that write every tick epoch to within a hundredth of the step between them
+    (33.33-year steps from 2016: 2049.3, not 2049, a third of a step off), at most four."""
+    epochs = np.asarray(epochs, dtype=float)
+    epochs = epochs[np.isfinite(epochs)]
+    tolerance = 0.01 * abs(step) if step else 1e-4
+    for decimals in range(5):
+        if np.all(np.abs(np.round(epochs, decimals) - epochs) <= tolerance):
+            return decimals
+    return 4
+
+
+def _epoch_text(epoch: float, decimals: int) -> str:
     return f"{epoch:.{decimals}f}"
 
 
@@ -598,6 +609,7 @@ def render_tracks(
         )[0]
         ticks.set_gid(f"ticks-{k}")
         step = float(np.diff(t.tick_epochs_jyear).mean()) if t.tick_epochs_jyear.size > 1 else 1
+        decimals = _epoch_decimals(t.tick_epochs_jyear, step)
         offsets = _side_offsets(ax, x, t.dec_deg, tx, t.tick_dec_deg, chart.view, cosd)
         last = None
         for e, xx, yy, off in zip(t.tick_epochs_jyear, tx, t.tick_dec_deg, offsets, strict=True):
@@ -608,7 +620,7 @@ def render_tracks(
                 continue  # too close to the last labelled epoch to be read
             last = here
             ax.annotate(
-                _epoch_text(float(e), step),
+                _epoch_text(float(e), decimals),
                 (float(xx), float(yy)),
                 xytext=off,
                 textcoords="offset points",

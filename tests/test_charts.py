@@ -242,6 +242,23 @@ def test_field_chart_note_is_inside_the_image(demo_catalogue):
     assert columns.min() > 20 and columns.max() < rgb.shape[1] - 20, (columns.min(), columns.max())
 
 
+def test_tick_labels_name_their_epochs(picked):
+    # Four ticks over 100 years, 33.33 years apart: the one at 2082.67 was labelled 2083, a
+    # third of a year off. Every label must read as its tick's epoch to 0.05 year.
+    a = [x[:1] for x in astrometry(picked)]
+    span = {"start_jyear": 2016.0, "stop_jyear": 2116.0, "ticks": 4}
+    chart = charts.sky_tracks(
+        *a, catalogue_epoch_jyear=2016.0, labels=["x"], boundaries=False, **span
+    )
+    ticks = chart.tracks[0].tick_epochs_jyear
+    root = ET.fromstring(charts.render_tracks(chart))
+    texts = [t.text for t in root.iter(f"{SVG}text") if t.text]
+    labels = [float(t) for t in texts if t.replace(".", "", 1).isdigit()]
+    assert len(labels) >= 2, texts
+    for value in labels:
+        assert np.min(np.abs(ticks - value)) <= 0.05, (value, ticks)
+
+
 def test_bad_arguments(picked):
     a = astrometry(picked)
     with pytest.raises(ValueError):
