@@ -735,11 +735,13 @@ class Client:
         target_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
         model: str = "standard",
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> str:
         """POST /v1/propagation with a CSV table; the CSV answer (one row per star, epoch)."""
         params = _targets(
             {"catalogue_epoch": catalogue_epoch, "model": model}, target_epochs, target_range
         )
+        params["ignored_columns"] = list(ignored_columns)  # columns left unread
         return self.post_csv("/v1/propagation", csv_text, params, progress=progress)
 
     def propagate_arrow(
@@ -750,11 +752,13 @@ class Client:
         target_epochs: Iterable[Epoch] | None = None,
         target_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
         model: str = "standard",
+        ignored_columns: Iterable[str] = (),
     ):
         """POST /v1/propagation with an Arrow table (:meth:`post_arrow`); the Arrow answer."""
         params = _targets(
             {"catalogue_epoch": catalogue_epoch, "model": model}, target_epochs, target_range
         )
+        params["ignored_columns"] = list(ignored_columns)  # columns left unread
         return self.post_arrow("/v1/propagation", table, params)
 
     def velocity(
@@ -816,6 +820,7 @@ class Client:
         seed: int | None = None,
         low_snr_threshold: float | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> str:
         """POST /v1/velocity with a CSV table; the CSV answer (one row per star)."""
         params = self._velocity_options(
@@ -827,6 +832,7 @@ class Client:
             seed,
             low_snr_threshold,
         )
+        params["ignored_columns"] = list(ignored_columns)  # columns left unread
         return self.post_csv("/v1/velocity", csv_text, params, progress=progress)
 
     @staticmethod
@@ -928,6 +934,7 @@ class Client:
         reduction: str | None = None,
         frame: str | Mapping[str, Any] | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> str:
         """The constellations of a CSV table of stars, as CSV (one row per star); the
         options as for :meth:`constellations`."""
@@ -938,6 +945,7 @@ class Client:
         if frame is not None:
             params["frame"] = {k: v for k, v in _frame(frame).items() if v is not None}
         path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
+        params["ignored_columns"] = list(ignored_columns)  # columns left unread
         return self.post_csv(path, csv_text, params, progress=progress)
 
     @staticmethod
@@ -992,10 +1000,12 @@ class Client:
         max_step_yr: float | None = None,
         reduction: str | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> str:
         """Boundary crossings of a CSV table of stars, as CSV (one row per crossing)."""
         params = {"catalogue_epoch": catalogue_epoch, "start": start, "end": end}
         params.update({"max_step_yr": max_step_yr, "reduction": reduction})
+        params["ignored_columns"] = list(ignored_columns)  # columns left unread
         return self.post_csv(
             "/v1/constellations/crossings",
             csv_text,
@@ -1120,6 +1130,7 @@ class Client:
         horizon_limit_deg: float | None = None,
         sun_avoidance_deg: float | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> str:
         """Observed places of a CSV table of stars, as CSV (one row per star and instant).
 
@@ -1137,6 +1148,7 @@ class Client:
         params.update(
             {"horizon_limit_deg": horizon_limit_deg, "sun_avoidance_deg": sun_avoidance_deg}
         )
+        params["ignored_columns"] = list(ignored_columns)  # columns left unread
         return self.post_csv("/v1/observed", csv_text, params, progress=progress)
 
     def chart_track(

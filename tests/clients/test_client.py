@@ -117,6 +117,28 @@ def test_propagate_csv_batched_equals_whole(live_service):
     assert len(whole.splitlines()) == 1 + 30 * 2
 
 
+def test_csv_and_arrow_methods_leave_listed_columns_unread(sky, demo_catalogue):
+    # A catalogue export with a magnitude and a note: refused as it is, the same answer as
+    # without them when they are listed (sent in batches, each with the list).
+    import pyarrow as pa
+
+    text = (DEMO / "catalogue.csv").read_text()
+    lines = text.splitlines()
+    extra = "\n".join([lines[0] + ",vmag,notes"] + [f"{ln},4.5,ok" for ln in lines[1:]])
+    options = {"catalogue_epoch": "J2016.0", "target_epochs": EPOCHS}
+    with pytest.raises(SkydriftError) as refused:
+        sky.propagate_csv(extra, **options)
+    assert "vmag" in str(refused.value)
+    got = Client(sky.base_url, batch_size=7).propagate_csv(
+        extra, ignored_columns=["vmag", "notes"], **options
+    )
+    assert got == sky.propagate_csv(text, **options)
+    table = pa.table(columns_of(demo_catalogue["stars"]))
+    with_note = table.append_column("notes", pa.array(["ok"] * table.num_rows))
+    got = sky.propagate_arrow(with_note, ignored_columns=("notes",), **options)
+    assert got.equals(sky.propagate_arrow(table, **options))
+
+
 def test_now_is_one_instant_across_batches(live_service, demo_catalogue):
     """A call sent as several requests means one instant by "now": each request's "now" was
     its own clock reading, so 30 stars in batches of 7 were moved to five epochs a few ms
