@@ -353,6 +353,7 @@ def cmd_propagate(args) -> int:
             target_range=tuple(args.range) if args.range else None,
             model=args.model,
             progress=update,
+            ignored_columns=args.ignore_columns,
         ),
     )
     _write_text(text, args.output)
@@ -376,6 +377,7 @@ def cmd_velocities(args) -> int:
             seed=args.seed,
             low_snr_threshold=args.low_snr_threshold,
             progress=update,
+            ignored_columns=args.ignore_columns,
         ),
     )
     _write_text(text, args.output)
@@ -402,6 +404,7 @@ def cmd_constellations(args) -> int:
             near_boundary_arcsec=args.near_boundary_arcsec,
             reduction=args.reduction,
             progress=update,
+            ignored_columns=args.ignore_columns,
         ),
     )
     _write_text(text, args.output)
@@ -423,6 +426,7 @@ def cmd_crossings(args) -> int:
             max_step_yr=args.max_step_yr,
             reduction=args.reduction,
             progress=update,
+            ignored_columns=args.ignore_columns,
         ),
     )
     _write_text(text, args.output)
@@ -528,6 +532,7 @@ def cmd_observed(args) -> int:
                 horizon_limit_deg=args.horizon_limit_deg,
                 sun_avoidance_deg=args.sun_avoidance_deg,
                 progress=update,
+                ignored_columns=args.ignore_columns,
             ),
             client,
         )
@@ -665,6 +670,7 @@ def cmd_chart_track(args) -> int:
         "format": _image_format(args),
         "title": args.title,
         "width_px": args.width_px,
+        "ignored_columns": args.ignore_columns,
     }
     with make_client(args) as client, _errors_named_for(cat):
         text, lines = _select(cat, args.star)
@@ -688,6 +694,7 @@ def cmd_chart_field(args) -> int:
         "format": _image_format(args),
         "title": args.title,
         "width_px": args.width_px,
+        "ignored_columns": args.ignore_columns,
     }
     with make_client(args) as client, _errors_named_for(cat):
         data = _tolerant(
@@ -739,8 +746,25 @@ def _connection_options(p: argparse.ArgumentParser, batch: bool = True) -> None:
         p.set_defaults(batch_size=DEFAULT_BATCH_SIZE, progress=False, quiet=True)
 
 
+def _column_names(text: str) -> list[str]:
+    """--ignore-columns: comma-separated names (blanks around them are not part of them)."""
+    names = [n.strip() for n in text.split(",")]
+    if not all(names):
+        raise argparse.ArgumentTypeError("an empty column name")
+    return names
+
+
 def _catalogue_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("catalogue", help=CATALOGUE_HELP)
+    p.add_argument(
+        "--ignore-columns",
+        type=_column_names,
+        default=[],
+        metavar="NAMES",
+        help="comma-separated catalogue columns to leave unread (a magnitude, say; the "
+        "request's ignored_columns); any other column the command does not take is still "
+        "an error",
+    )
     p.add_argument(
         "--drop-unknown-columns",
         action="store_true",

@@ -138,6 +138,28 @@ def test_constellations_local_and_remote_identical(live_service):
     assert [r["constellation"] for r in rows][16] == "Tau"
 
 
+def test_ignore_columns_names_the_columns_to_leave_unread(live_service):
+    # The demo CSV's errors and correlations, which the lookup does not take: listed, the
+    # answer is the one --drop-unknown-columns gives, locally and from a service; a column
+    # left off the list is still an error, and so is listing a column the command reads.
+    header = (DEMO / "catalogue.csv").read_text().splitlines()[0].split(",")
+    extra = ",".join(h for h in header if "_error_" in h or h.startswith("correlation_"))
+    args = ["constellations", CATALOGUE, "--epoch", "J2026.0", "-q"]
+    dropped = skydrift(*args, "--drop-unknown-columns")
+    local = skydrift(*args, "--ignore-columns", extra)
+    assert local.stdout == dropped.stdout and local.stderr == b""
+    remote = skydrift(*args, "--ignore-columns", extra, "--url", live_service, "--batch-size", "7")
+    assert remote.stdout == local.stdout
+    partial = skydrift(*args, "--ignore-columns", extra.split(",", 1)[1], check=False)
+    assert (
+        partial.returncode == 1 and "line 1: ra_error_mas: unknown field" in partial.stderr.decode()
+    )
+    listed = skydrift(*args, "--ignore-columns", f"{extra},dec_deg", check=False)
+    assert listed.returncode == 2  # a bad command line, in the request's terms
+    said = listed.stderr.decode()
+    assert "bad command line: ignored_columns[10]: is a field of the star table" in said
+
+
 def test_near_boundary_margin_needs_margins():
     """The lookup measures no distance to a boundary, and the service refuses the option
     there: the command says so before sending, naming the option that makes it apply."""
