@@ -741,7 +741,7 @@ class Client:
         params = _targets(
             {"catalogue_epoch": catalogue_epoch, "model": model}, target_epochs, target_range
         )
-        params["ignored_columns"] = list(ignored_columns)  # columns left unread
+        params["ignored_columns"] = _names(ignored_columns)
         return self.post_csv("/v1/propagation", csv_text, params, progress=progress)
 
     def propagate_arrow(
@@ -758,7 +758,7 @@ class Client:
         params = _targets(
             {"catalogue_epoch": catalogue_epoch, "model": model}, target_epochs, target_range
         )
-        params["ignored_columns"] = list(ignored_columns)  # columns left unread
+        params["ignored_columns"] = _names(ignored_columns)
         return self.post_arrow("/v1/propagation", table, params)
 
     def velocity(
@@ -832,7 +832,7 @@ class Client:
             seed,
             low_snr_threshold,
         )
-        params["ignored_columns"] = list(ignored_columns)  # columns left unread
+        params["ignored_columns"] = _names(ignored_columns)
         return self.post_csv("/v1/velocity", csv_text, params, progress=progress)
 
     @staticmethod
@@ -945,7 +945,7 @@ class Client:
         if frame is not None:
             params["frame"] = {k: v for k, v in _frame(frame).items() if v is not None}
         path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
-        params["ignored_columns"] = list(ignored_columns)  # columns left unread
+        params["ignored_columns"] = _names(ignored_columns)
         return self.post_csv(path, csv_text, params, progress=progress)
 
     @staticmethod
@@ -1005,7 +1005,7 @@ class Client:
         """Boundary crossings of a CSV table of stars, as CSV (one row per crossing)."""
         params = {"catalogue_epoch": catalogue_epoch, "start": start, "end": end}
         params.update({"max_step_yr": max_step_yr, "reduction": reduction})
-        params["ignored_columns"] = list(ignored_columns)  # columns left unread
+        params["ignored_columns"] = _names(ignored_columns)
         return self.post_csv(
             "/v1/constellations/crossings",
             csv_text,
@@ -1148,7 +1148,7 @@ class Client:
         params.update(
             {"horizon_limit_deg": horizon_limit_deg, "sun_avoidance_deg": sun_avoidance_deg}
         )
-        params["ignored_columns"] = list(ignored_columns)  # columns left unread
+        params["ignored_columns"] = _names(ignored_columns)
         return self.post_csv("/v1/observed", csv_text, params, progress=progress)
 
     def chart_track(
@@ -1301,6 +1301,12 @@ def _now_text() -> str:
     import datetime as dt
 
     return dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _names(names: str | Iterable[str]) -> list[str]:
+    """Column names to leave unread as a list (one name given as a string is one name, not
+    its letters)."""
+    return [names] if isinstance(names, str) else list(names)
 
 
 def _query(params: Mapping[str, Any]) -> str:
