@@ -49,10 +49,8 @@ def render_plain(chart: charts.FieldChart, image_format: str) -> bytes:
     fig = Figure(figsize=(13.0, 4.6), layout="constrained")
     for k in range(2):
         ax = fig.add_subplot(1, 2, k + 1, projection="hammer")
-        x = -np.radians((chart.ra_deg[k] + 180.0) % 360.0 - 180.0)
-        y = np.radians(chart.dec_deg[k])
-        xe = -np.radians((chart.arrow_ra_deg[k] + 180.0) % 360.0 - 180.0)
-        ye = np.radians(chart.arrow_dec_deg[k])
+        x, xe = charts._hammer_x(chart.ra_deg[k]), charts._hammer_x(chart.arrow_ra_deg[k])
+        y, ye = np.radians(chart.dec_deg[k]), np.radians(chart.arrow_dec_deg[k])
         for i in range(x.size):
             if abs(xe[i] - x[i]) > math.pi:
                 continue  # over the edge: the baseline leaves it out
