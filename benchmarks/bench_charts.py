@@ -46,7 +46,7 @@ def render_plain(chart: charts.FieldChart, image_format: str) -> bytes:
     """The chart's stars and arrows drawn one annotation per arrow (the baseline)."""
     from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(13.0, 4.6), layout="constrained")
+    fig = Figure(figsize=charts.FIELD_SIZE_IN, layout="constrained")
     for k in range(2):
         ax = fig.add_subplot(1, 2, k + 1, projection="hammer")
         x, xe = charts._hammer_x(chart.ra_deg[k]), charts._hammer_x(chart.arrow_ra_deg[k])

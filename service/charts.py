@@ -73,6 +73,10 @@ LABEL_MIN_ROOM_FRACTION = 0.025
 PROBE_GRID = 60
 #: PNG resolution, dots per inch, unless a width in pixels is asked for.
 PNG_DPI = 150
+#: Sizes of the charts, inches (width, height): at PNG_DPI, 1,200 x 1,050 and 1,950 x 690
+#: pixels.
+TRACK_SIZE_IN = (8.0, 7.0)
+FIELD_SIZE_IN = (13.0, 4.6)
 #: Widths in pixels an image may be asked for (``width_px``).
 MIN_WIDTH_PX = 400
 MAX_WIDTH_PX = 4000
@@ -537,7 +541,7 @@ def render_tracks(
     *,
     title: str | None = None,
     image_format: str = "svg",
-    size_in: tuple = (8.0, 7.0),
+    size_in: tuple = TRACK_SIZE_IN,
     width_px: int | None = None,
 ) -> bytes:
     """Draw a :class:`TrackChart`; returns the SVG or PNG bytes (``width_px``: see
@@ -904,7 +908,7 @@ def _render_field(
     title: str | None = None,
     image_format: str = "svg",
     label_fastest: int = 3,
-    size_in: tuple = (13.0, 4.6),
+    size_in: tuple = FIELD_SIZE_IN,
     width_px: int | None = None,
 ) -> bytes:
     """Draw a :class:`FieldChart`: two all-sky panels side by side with motion arrows."""

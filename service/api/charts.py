@@ -9,6 +9,7 @@ import numpy as np
 from flask import Response, request
 from flask_smorest import abort
 
+from ..charts import FIELD_SIZE_IN, TRACK_SIZE_IN
 from .common import Blueprint, EpochField, StrictBoolean, StrictFloat
 from .examples import load_example
 from .observability import count_stars
@@ -78,8 +79,10 @@ def _title_field():
     )
 
 
-def _width_field(default_px: int):
+def _width_field(size_in: tuple):
     from .. import charts
+
+    default_px = round(size_in[0] * charts.PNG_DPI)
 
     return ma.fields.Integer(
         strict=True,
@@ -127,7 +130,7 @@ class TrackChartRequestSchema(ma.Schema):
     )
     format = _format_field()
     title = _title_field()
-    width_px = _width_field(1200)
+    width_px = _width_field(TRACK_SIZE_IN)
 
     @ma.validates_schema(skip_on_field_errors=False)
     def _span(self, data, **kwargs):
@@ -186,7 +189,7 @@ class FieldChartRequestSchema(ma.Schema):
     )
     format = _format_field()
     title = _title_field()
-    width_px = _width_field(1950)
+    width_px = _width_field(FIELD_SIZE_IN)
 
     @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
     def _epochs_differ(self, data, original, **kwargs):
