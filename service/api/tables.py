@@ -673,8 +673,10 @@ class IgnoredColumnsField(ma.fields.List):
         )
 
     def _deserialize(self, value, attr, data, **kwargs) -> list:
-        tables = [f for f in self.parent.fields.values() if isinstance(f, StarTableField)]
-        accepted = tables[0].names if tables else set()
+        from .csvio import table_field_name
+
+        table = table_field_name(self.parent)
+        accepted = self.parent.fields[table].names if table else set()
         message = "is a field of the star table and is read; list only columns it does not take"
         # Every listed name the table takes is named, with the list's other errors.
         taken = {}
