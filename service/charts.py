@@ -532,10 +532,6 @@ def _epoch_decimals(epochs, step: float) -> int:
     return 4
 
 
-def _epoch_text(epoch: float, decimals: int) -> str:
-    return f"{epoch:.{decimals}f}"
-
-
 def render_tracks(
     chart: TrackChart,
     *,
@@ -624,7 +620,7 @@ def render_tracks(
                 continue  # too close to the last labelled epoch to be read
             last = here
             ax.annotate(
-                _epoch_text(float(e), decimals),
+                f"{float(e):.{decimals}f}",
                 (float(xx), float(yy)),
                 xytext=off,
                 textcoords="offset points",
@@ -810,8 +806,9 @@ def _arrow_outlines(p0, p1, headed, shaft_px, head_length_px, head_width_px):
     """Outlines of straight arrows from ``p0`` to ``p1`` (display coordinates, (M, 2)):
     (M, 8, 2) vertices, the first repeated last. A shaft ``shaft_px`` wide; where
     ``headed``, a head ``head_length_px`` long and ``head_width_px`` wide with its tip at
-    ``p1``. The head keeps its size on an arrow shorter than it (it then reaches back past
-    ``p0``, out from under the star's marker, and shows the way a slow star moves)."""
+    ``p1``. The head keeps its size on an arrow shorter than it, as matplotlib's arrow heads
+    do: it then reaches back past ``p0``, and for a slow star its base may show behind the
+    star's marker."""
     d = p1 - p0
     length = np.hypot(d[:, 0], d[:, 1])
     safe = np.where(length > 0, length, 1.0)
