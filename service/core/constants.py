@@ -32,6 +32,10 @@ PC_KM = PC_AU * AU_M / 1000.0
 #: Speed of light, km/s (SI, exact).
 C_KM_S = 299_792.458
 
+#: Heliocentric gravitational constant, m^3 s^-2 (IAU 2015 Resolution B3, nominal solar mass
+#: parameter).
+GM_SUN_M3_S2 = 1.3271244e20
+
 #: Speed of light, au per Julian year (derived from exact values).
 C_AU_PER_JULIAN_YEAR = C_KM_S / AU_PER_JULIAN_YEAR_KM_S
 

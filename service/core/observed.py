@@ -35,8 +35,11 @@ from erfa import ufunc as erfa_ufunc
 from service.core.angles import atan2_into, latitude_into, wrap_two_pi
 from service.core.constants import ARCSEC_PER_RAD as _ARCSEC_PER_RAD
 from service.core.constants import (
+    AU_M,
     AU_PER_JULIAN_YEAR_KM_S,
+    C_KM_S,
     DEG_PER_RAD,
+    GM_SUN_M3_S2,
     MAS_PER_RAD,
     RAD_PER_DEG,
 )
@@ -2100,6 +2103,161 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
 
 
 # ---------------------------------------------------------------------------------------------
+# Rates for tracking: how fast the observed azimuth, altitude and parallactic angle change
+# ---------------------------------------------------------------------------------------------
+
+#: Rate of the Earth rotation angle, rad per second of UT1: 2 pi x 1.00273781191135448 per
+#: UT1 day (IERS Conventions 2010, eq. 5.15, as SOFA era00 computes the angle; quoted from
+#: memory, checked against pyerfa era00 in tests/core/test_tracking_rates.py).
+ERA_RATE_RAD_S = TWO_PI * 1.00273781191135448 / 86_400.0
+
+
+def _rotation_axis_aet(xpl, ypl, sphi, cphi):
+    """The Earth's rotation axis (the CIP) in the azimuth/elevation frame of SOFA atioq
+    (x south, y east, z up): A W z of :func:`_observing_matrix`, polar motion included."""
+    sx, cx, sy, cy = np.sin(xpl), np.cos(xpl), np.sin(ypl), np.cos(ypl)
+    return (sphi * sx - cphi * cx * cy, -cx * sy, cphi * sx + sphi * cx * cy)
+
+
+def _aberration_drift_aet(site: Site, m, ehp, axis):
+    """How the aberration moves every star within a second, in the azimuth/elevation frame:
+    the observer's acceleration over c, rad/s (the g of :func:`tracking_rates`).
+
+    Two accelerations count: the site's, turning with the Earth (omega^2 rho, rho its
+    distance from the axis, directed along P x east; 2.3e-5 arcsec/s at the equator), and
+    the Earth's toward the Sun (GM/r^2, 4e-6 arcsec/s). ``m`` is the observing matrix, ``ehp``
+    the Earth's heliocentric position (au), ``axis`` the rotation axis in the frame.
+    """
+    xyz = erfa.gd2gc(1, site.longitude_deg * RAD_PER_DEG, site.latitude_deg * RAD_PER_DEG,
+                     site.height_m)  # fmt: skip
+    k = ERA_RATE_RAD_S * ERA_RATE_RAD_S * math.hypot(xyz[0], xyz[1]) / (C_KM_S * 1000.0)
+    ehp = np.asarray(ehp, dtype=float)
+    dist = np.sqrt(np.sum(ehp * ehp, axis=-1, keepdims=True))
+    accel = ehp * (-GM_SUN_M3_S2 / (AU_M * AU_M * C_KM_S * 1000.0)) / dist**3
+    g = np.einsum("...ij,...j->...i", np.asarray(m, dtype=float), accel)
+    px, _, pz = axis
+    return (g[..., 0] - k * pz, g[..., 1], g[..., 2] + k * px)
+
+
+def _observed_zd_slope(r0, z, refa, refb):
+    """d(observed zenith distance) / d(unrefracted zenith distance) of SOFA atioq's
+    refraction, exactly as :func:`_refract` and the answers compute the observed zenith
+    distance, atan2(|f| r0, zaeo), its guards included (where a guard holds a term, its
+    derivative is zero); 1 with refraction off. ``r0`` and ``z`` are the sine and cosine
+    of the unrefracted zenith distance."""
+    unguarded_r = r0 > ATIOQ_CELMIN
+    unguarded_z = z > ATIOQ_SELMIN
+    r = np.maximum(r0, ATIOQ_CELMIN)
+    zz = np.maximum(z, ATIOQ_SELMIN)
+    dr = np.where(unguarded_r, z, 0.0)
+    dzz = np.where(unguarded_z, -r0, 0.0)
+    tz = r / zz
+    dtz = (dr - tz * dzz) / zz
+    w = refb * tz * tz
+    dw = 2.0 * refb * tz * dtz
+    inv_zz2 = 1.0 / (zz * zz)
+    den = 1.0 + (refa + 3.0 * w) * inv_zz2
+    dden = 3.0 * dw * inv_zz2 - 2.0 * (refa + 3.0 * w) * dzz * inv_zz2 / zz
+    dl = (refa + w) * tz / den
+    ddl = (dw * tz + (refa + w) * dtz - dl * dden) / den
+    cosdel = 1.0 - 0.5 * dl * dl
+    dcosdel = -dl * ddl
+    f = cosdel - dl * zz / r
+    df = dcosdel - (ddl * zz + dl * dzz) / r + dl * zz * dr / (r * r)
+    sign = np.where(f < 0.0, -1.0, 1.0)
+    x = sign * f * r0
+    dx = sign * (df * r0 + f * z)
+    y = cosdel * z + dl * r
+    dy = dcosdel * z - cosdel * r0 + ddl * r + dl * dr
+    return (y * dx - x * dy) / (x * x + y * y)
+
+
+def tracking_rates(
+    azimuth_deg, zenith_distance_deg, refraction_arcsec, axis, sphi, cphi, refa, refb,
+    drift=(0.0, 0.0, 0.0),
+):  # fmt: skip
+    """Rates of change of the observed azimuth, altitude and parallactic angle, arcsec/s.
+
+    Parameters
+    ----------
+    azimuth_deg, zenith_distance_deg, refraction_arcsec : array_like
+        The observed place as :func:`observed_places` gives it (the unrefracted zenith
+        distance is the observed one plus the refraction).
+    axis : sequence of three array_like
+        The Earth's rotation axis in the azimuth/elevation frame
+        (:func:`_rotation_axis_aet`).
+    sphi, cphi : array_like
+        Sine and cosine of the site's latitude (the pole of the observed hour angle and
+        declination, as SOFA atioq and hd2pa take it).
+    refa, refb : array_like
+        Refraction constants, radians (0 with refraction off).
+    drift : sequence of three array_like
+        The observer's acceleration over c in the same frame, rad/s
+        (:func:`_aberration_drift_aet`): how aberration moves the stars.
+
+    Returns
+    -------
+    azimuth_rate, altitude_rate, parallactic_angle_rate : ndarray
+        Arcsec per second of time; the azimuth's rate is that of the coordinate (times the
+        cosine of the altitude for the motion across the sky). NaN at the zenith, where
+        the azimuth and the parallactic angle are not defined.
+
+    Notes
+    -----
+    The unrefracted direction u turns with the Earth and is moved by the aberration of
+    the observer's changing velocity: du/dt = -omega P x u + g - (g.u) u, with omega the
+    rate of the Earth rotation angle (:data:`ERA_RATE_RAD_S`), P the rotation axis and g
+    the drift (first order in v/c). The refraction keeps the azimuth and changes the zenith
+    distance by the slope of :func:`_observed_zd_slope`; the parallactic angle's rate is
+    the derivative of the answer's own formula (SOFA hd2pa of the observed place) along
+    the observed direction's motion. Held within the second: precession-nutation, the
+    star's own motion and parallax, the Sun's light deflection (together about 1e-6
+    arcsec/s, up to 7e-6 within a degree of the Sun: tests/core/test_tracking_rates.py); a
+    UT1 second differs from an SI second by the excess length of day (about 1e-8 of the
+    rate).
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        az = np.asarray(azimuth_deg, dtype=float) * RAD_PER_DEG
+        zd_obs = np.asarray(zenith_distance_deg, dtype=float) * RAD_PER_DEG
+        zd0 = zd_obs + np.asarray(refraction_arcsec, dtype=float) / _ARCSEC_PER_RAD
+        sa, ca = np.sin(az), np.cos(az)
+        r0, z = np.sin(zd0), np.cos(zd0)
+        u = (-r0 * ca, r0 * sa, z)
+        px, py, pz = axis
+        w = -ERA_RATE_RAD_S
+        gx, gy, gz = drift
+        gu = gx * u[0] + gy * u[1] + gz * u[2]
+        ud = (
+            w * (py * u[2] - pz * u[1]) + gx - gu * u[0],
+            w * (pz * u[0] - px * u[2]) + gy - gu * u[1],
+            w * (px * u[1] - py * u[0]) + gz - gu * u[2],
+        )
+        az_rate = (ca * ud[1] + sa * ud[0]) / r0
+        zd_rate = -ud[2] / r0 * _observed_zd_slope(r0, z, refa, refb)
+        # The observed direction and its motion.
+        so, co = np.sin(zd_obs), np.cos(zd_obs)
+        o = (-so * ca, so * sa, co)
+        od = (
+            so * sa * az_rate - co * ca * zd_rate,
+            so * ca * az_rate + co * sa * zd_rate,
+            -so * zd_rate,
+        )
+        # hd2pa of the observed direction, as the answers' parallactic angle:
+        # q = atan2(n, d), n = -cos(phi) y, d = sin(phi) (v0^2 + y^2) - cos(phi) v2 v0.
+        v0 = sphi * o[0] + cphi * o[2]
+        v2 = sphi * o[2] - cphi * o[0]
+        v0d = sphi * od[0] + cphi * od[2]
+        v2d = sphi * od[2] - cphi * od[0]
+        n = -cphi * o[1]
+        d = sphi * (v0 * v0 + o[1] * o[1]) - cphi * v2 * v0
+        nd = -cphi * od[1]
+        dd = 2.0 * sphi * (v0 * v0d + o[1] * od[1]) - cphi * (v2d * v0 + v2 * v0d)
+        pa_rate = (d * nd - n * dd) / (n * n + d * d)
+    k = _ARCSEC_PER_RAD
+    return az_rate * k, -zd_rate * k, pa_rate * k
+
+
+# ---------------------------------------------------------------------------------------------
 # Instants
 # ---------------------------------------------------------------------------------------------
 
@@ -2316,6 +2474,9 @@ class ObservedPlaces:
         Limits used for the advisory flags.
     provenance : dict
         Tables used (names, spans, leap-second validity).
+    azimuth_rate_arcsec_s, altitude_rate_arcsec_s, parallactic_angle_rate_arcsec_s : ndarray
+        Rates of change of the observed azimuth, altitude and parallactic angle, arcsec per
+        second of time (:func:`tracking_rates`); None unless asked for (``rates``).
     """
 
     astrometric_ra_deg: np.ndarray
@@ -2343,6 +2504,9 @@ class ObservedPlaces:
     horizon_limit_deg: float
     sun_avoidance_deg: float
     provenance: dict = field(default_factory=dict)
+    azimuth_rate_arcsec_s: np.ndarray | None = None
+    altitude_rate_arcsec_s: np.ndarray | None = None
+    parallactic_angle_rate_arcsec_s: np.ndarray | None = None
 
 
 def _shaped(x, shape):
@@ -2512,6 +2676,7 @@ def observed_places(
     sun_avoidance_deg: float = DEFAULT_SUN_AVOIDANCE_DEG,
     geocentric: bool = True,
     hour_angle: bool = True,
+    rates: bool = False,
 ) -> ObservedPlaces:
     """Astrometric, apparent and observed places of stars at a site and instants.
 
@@ -2552,6 +2717,9 @@ def observed_places(
     hour_angle : bool
         Also compute the observed hour angle, declination, RA and the parallactic angle
         (default True); False fills them with NaN and saves their cost.
+    rates : bool
+        Also compute the rates of change of the observed azimuth, altitude and parallactic
+        angle, for tracking (:func:`tracking_rates`; default False: they are None).
 
     Returns
     -------
@@ -2676,6 +2844,22 @@ def observed_places(
         else:
             res["flags"] = _shaped(flags | instant_flags, shape).astype(np.uint32)
 
+    rate_values = {}
+    if rates:
+        astrom = st.astrom
+        sphi, cphi = astrom["sphi"], astrom["cphi"]
+        axis = _rotation_axis_aet(astrom["xpl"], astrom["ypl"], sphi, cphi)
+        az_rate, alt_rate, pa_rate = tracking_rates(
+            res["azimuth_deg"], res["zenith_distance_deg"], res["refraction_arcsec"],
+            axis, sphi, cphi, astrom["refa"], astrom["refb"],
+            _aberration_drift_aet(site, ins.m, st.ehp, axis),
+        )  # fmt: skip
+        rate_values = {
+            "azimuth_rate_arcsec_s": _shaped(az_rate, shape),
+            "altitude_rate_arcsec_s": _shaped(alt_rate, shape),
+            "parallactic_angle_rate_arcsec_s": _shaped(pa_rate, shape),
+        }
+
     return ObservedPlaces(
         astrometric_ra_deg=_shaped(a_ra, shape),
         astrometric_dec_deg=_shaped(a_dec, shape),
@@ -2692,6 +2876,7 @@ def observed_places(
         horizon_limit_deg=float(horizon_limit_deg),
         sun_avoidance_deg=float(sun_avoidance_deg),
         provenance=eop.describe(),
+        **rate_values,
     )
 
 
