@@ -1084,6 +1084,7 @@ class Client:
         horizon_limit_deg: float | None = None,
         sun_avoidance_deg: float | None = None,
         progress: Progress | None = None,
+        include_rates: bool = False,
     ) -> dict:
         """POST /v1/observed: observed places at a site, with advisory Sun/horizon figures.
 
@@ -1101,6 +1102,9 @@ class Client:
         horizon_limit_deg, sun_avoidance_deg : float, optional
             Limits for the advisory flags, degrees. The figures are advisory: the facility's
             own interlocks and safety rules decide where a telescope may point.
+        include_rates : bool
+            Also give how fast each place's azimuth, altitude and parallactic angle change
+            (arcsec per second of time), for tracking.
         """
         when = [instants] if isinstance(instants, str | float | int) else list(instants)
         body: dict = {
@@ -1114,6 +1118,7 @@ class Client:
             "atmosphere": atmosphere,
             "horizon_limit_deg": horizon_limit_deg,
             "sun_avoidance_deg": sun_avoidance_deg,
+            "include_rates": True if include_rates else None,
         }
         body.update({k: v for k, v in optional.items() if v is not None})
         return self.post_batched("/v1/observed", body, progress=progress)
@@ -1131,12 +1136,14 @@ class Client:
         sun_avoidance_deg: float | None = None,
         progress: Progress | None = None,
         ignored_columns: Iterable[str] = (),
+        include_rates: bool = False,
     ) -> str:
         """Observed places of a CSV table of stars, as CSV (one row per star and instant).
 
         ``site`` is a configured name or ``{"latitude_deg", "longitude_deg", "height_m"}``;
-        ``frame`` and ``atmosphere`` as for :meth:`observed` (default ICRS and the
-        service's atmosphere). The Sun and horizon figures and flags are advisory.
+        ``frame``, ``atmosphere`` and ``include_rates`` as for :meth:`observed` (default
+        ICRS, the service's atmosphere, no rates). The Sun and horizon figures and flags
+        are advisory.
         """
         when = [instants] if isinstance(instants, str | float | int) else list(instants)
         params: dict = {"catalogue_epoch": catalogue_epoch, "instants": when}
@@ -1149,6 +1156,8 @@ class Client:
             {"horizon_limit_deg": horizon_limit_deg, "sun_avoidance_deg": sun_avoidance_deg}
         )
         params["ignored_columns"] = _names(ignored_columns)
+        if include_rates:
+            params["include_rates"] = True
         return self.post_csv("/v1/observed", csv_text, params, progress=progress)
 
     def chart_track(

@@ -533,6 +533,7 @@ def cmd_observed(args) -> int:
                 sun_avoidance_deg=args.sun_avoidance_deg,
                 progress=update,
                 ignored_columns=args.ignore_columns,
+                include_rates=args.rates,
             ),
             client,
         )
@@ -1026,6 +1027,13 @@ def add_commands(sub) -> None:
         type=decimal,
         metavar="DEG",
         help="Sun separation below which a star is flagged (default: the service's setting)",
+    )
+    o.add_argument(
+        "--rates",
+        action="store_true",
+        help="also write how fast each place's azimuth, altitude and parallactic angle "
+        "change, arcsec per second of time (columns azimuth_rate_arcsec_s, "
+        "altitude_rate_arcsec_s, parallactic_angle_rate_arcsec_s), for tracking",
     )
     o.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(o)

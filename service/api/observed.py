@@ -30,6 +30,7 @@ from .common import (
     EpochField,
     EpochOutSchema,
     InstantField,
+    StrictBoolean,
     StrictFloat,
     WarningSchema,
     always_present,
@@ -88,6 +89,19 @@ PLACE_FIELDS = {
     "apparent_ra_deg": "deg, geocentric apparent, true equator and equinox of date",
     "apparent_dec_deg": "deg, geocentric apparent declination of date",
     "apparent_ra_cio_deg": "deg, geocentric apparent RA referred to the CIO (CIRS)",
+}
+
+#: Rates for tracking, per star and instant, with units (only where the request asks for
+#: them: include_rates).
+RATE_FIELDS = {
+    "azimuth_rate_arcsec_s": "arcsec/s, rate of change of the observed azimuth, per second "
+    "of time: of the coordinate (times cos(altitude) for the motion across the sky; it "
+    "grows without bound near the zenith); null at the zenith",
+    "altitude_rate_arcsec_s": "arcsec/s, rate of change of the observed (refracted) "
+    "altitude, per second of time, refraction's change included; null at the zenith",
+    "parallactic_angle_rate_arcsec_s": "arcsec/s, rate of change of the parallactic angle, "
+    "per second of time (the field's rotation seen at the focus of an alt-azimuth mount "
+    "without derotator, less any rotation the focus adds); null at the zenith",
 }
 
 #: Units of the numbers each instant has besides its epoch (instants[].utc_jd,
@@ -415,6 +429,17 @@ class ObservedRequestSchema(ma.Schema):
         lo=0.0,
         hi=180.0,
     )
+    include_rates = StrictBoolean(
+        load_default=False,
+        metadata={
+            "description": "Also give, for each place, how fast its azimuth, altitude and "
+            "parallactic angle change (arcsec per second of time): "
+            + ", ".join(RATE_FIELDS)
+            + ". The Earth's rotation, the refraction's change with altitude and the "
+            "aberration's change are included; they hold for the instant given (compute "
+            "places again rather than extrapolate far)."
+        },
+    )
 
     @ma.pre_load
     def _bound_instant_list(self, data, **kwargs):
@@ -543,12 +568,20 @@ ObservedPlaceSchema = always_present(
                 name: ma.fields.Float(allow_none=True, metadata={"description": f"{unit}."})
                 for name, unit in PLACE_FIELDS.items()
             },
+            **{
+                name: ma.fields.Float(
+                    allow_none=True,
+                    metadata={"description": f"{unit}. Present where include_rates is true."},
+                )
+                for name, unit in RATE_FIELDS.items()
+            },
             "flags": ma.fields.List(
                 ma.fields.String(), metadata={"description": "Names from flag_meanings."}
             ),
         },
         name="ObservedPlaceSchema",
-    )
+    ),
+    unless=tuple(RATE_FIELDS),
 )
 
 
@@ -747,6 +780,7 @@ def observed(args):
             eop=eop,
             horizon_limit_deg=horizon,
             sun_avoidance_deg=avoidance,
+            rates=args["include_rates"],
         )
     except core.ObservedInputError as exc:
         _core_error(exc)
@@ -756,7 +790,8 @@ def observed(args):
 
     # Each quantity as nested lists of Python floats (one tolist per column, not one numpy
     # scalar per value).
-    cols = [(name, grid(getattr(res, name)).tolist()) for name in PLACE_FIELDS]
+    place_fields = {**PLACE_FIELDS, **RATE_FIELDS} if args["include_rates"] else PLACE_FIELDS
+    cols = [(name, grid(getattr(res, name)).tolist()) for name in place_fields]
     flag_grid = grid(res.flags)
     names = flag_names(flag_grid.reshape(-1), core.ObservedFlag)
     ids = table.ids
@@ -831,7 +866,7 @@ def observed(args):
         "instants": inst_out,
         "earth_orientation_tables": res.provenance,
         "star_count": n,
-        "units": {**PLACE_FIELDS, **INSTANT_UNITS},
+        "units": {**place_fields, **INSTANT_UNITS},
         "flag_meanings": {
             k: v
             for k, v in (*FLAG_MEANINGS.items(), *_INPUT_FLAG_MEANINGS.items())

@@ -132,7 +132,11 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
         return
     stars = [{k: s.get(k) for k in ASTROMETRY} for s in catalogue["stars"]]
     answer = sky.observed(
-        stars, catalogue_epoch=catalogue["catalogue_epoch"], instants=[TONIGHT], site=SITE
+        stars,
+        catalogue_epoch=catalogue["catalogue_epoch"],
+        instants=[TONIGHT],
+        site=SITE,
+        include_rates=True,
     )
     print(answer.get("advisory", ""))
     limits = answer.get("limits") or {}
@@ -142,10 +146,11 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
         f"{limits.get('note', '')}"
     )
     sun = answer["instants"][0].get("sun") or {}
-    print(f"Sun altitude {_num(sun.get('altitude_deg'), '{:.1f}')} deg\n")
+    print(f"Sun altitude {_num(sun.get('altitude_deg'), '{:.1f}')} deg")
+    print("Tracking rates (how fast azimuth and altitude change): arcsec per second.\n")
     head = (
-        f"{'star':9} {'azimuth_deg':>11} {'altitude_deg':>12} {'airmass':>8} "
-        f"{'sun_sep_deg':>11}  flags"
+        f"{'star':9} {'azimuth_deg':>11} {'altitude_deg':>12} {'az_rate':>8} {'alt_rate':>8} "
+        f"{'airmass':>8} {'sun_sep_deg':>11}  flags"
     )
     print(head)
     print("-" * len(head))
@@ -153,6 +158,8 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
         at = res["at_instants"][0]
         print(
             f"{res['id']:9} {_num(at.get('azimuth_deg')):>11} {_num(at.get('altitude_deg')):>12} "
+            f"{_num(at.get('azimuth_rate_arcsec_s'), '{:.2f}'):>8} "
+            f"{_num(at.get('altitude_rate_arcsec_s'), '{:.2f}'):>8} "
             f"{_num(at.get('airmass')):>8} {_num(at.get('sun_separation_deg'), '{:.1f}'):>11}  "
             f"{', '.join(at.get('flags', []))}"
         )

@@ -207,6 +207,23 @@ def test_observed_local_and_remote_identical(live_service):
         assert flagged == (float(r["altitude_deg"]) < 15.0)
 
 
+def test_observed_rates_option_adds_the_rate_columns(live_service):
+    """--rates asks for the tracking rates: three more columns, the service's numbers
+    (the same locally and through a running service), and none without it."""
+    args = ["observed", CATALOGUE, "--at", "2026-12-02T22:00:00Z", "--site", "kestrel-ridge",
+            "--drop-unknown-columns", "-q"]  # fmt: skip
+    rates = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+    local = skydrift(*args, "--rates")
+    assert local.stdout == skydrift(*args, "--rates", "--url", live_service).stdout
+    with_rates = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    without = list(csv.DictReader(io.StringIO(skydrift(*args).stdout.decode())))
+    assert set(with_rates[0]) - set(without[0]) == set(rates)
+    for a, b in zip(with_rates, without, strict=True):
+        assert {k: v for k, v in a.items() if k not in rates} == b
+        # The altitude changes at most as fast as the Earth turns (15.04 arcsec/s).
+        assert abs(float(a["altitude_rate_arcsec_s"])) < 15.05
+
+
 def test_observed_states_the_refraction_and_earth_orientation_used(live_service, demo_catalogue):
     """The CSV has per-row refraction and flags only: which air and which Earth-orientation
     values were used (measured, predicted or unavailable; UT1-UTC) was nowhere in the output

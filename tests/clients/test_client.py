@@ -338,6 +338,30 @@ def test_frames_and_observed_methods(live_service, demo_catalogue):
     assert "advisory" in batched["advisory"].lower()
 
 
+def test_observed_methods_ask_for_rates(live_service, demo_catalogue):
+    """include_rates= on observed and observed_csv: the request's include_rates."""
+    rates = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]][:4]
+    when = {"catalogue_epoch": "J2016.0", "instants": "2026-12-02T22:00:00Z",
+            "site": "kestrel-ridge"}  # fmt: skip
+    with Client(live_service) as sky:
+        whole = sky.post("/v1/observed", {**when, "instants": [when["instants"]],
+                                          "stars": stars, "include_rates": True})  # fmt: skip
+        asked = sky.observed(stars, include_rates=True, **when)
+        plain = sky.observed(stars, **when)
+        text = "id,ra_deg,dec_deg,parallax_mas,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\n" + "".join(
+            f"{s['id']},{s['ra_deg']!r},{s['dec_deg']!r},{s['parallax_mas']!r},"
+            f"{s['pm_ra_cosdec_mas_yr']!r},{s['pm_dec_mas_yr']!r}\n"
+            for s in stars
+        )
+        rows = list(csv.DictReader(io.StringIO(sky.observed_csv(text, include_rates=True, **when))))
+        plain_rows = list(csv.DictReader(io.StringIO(sky.observed_csv(text, **when))))
+    assert asked == whole
+    assert all(set(rates) <= set(s["at_instants"][0]) for s in asked["stars"])
+    assert not set(rates) & set(plain["stars"][0]["at_instants"][0])
+    assert set(rows[0]) - set(plain_rows[0]) == set(rates)
+
+
 def test_unreachable_service_after_retries():
     waits = []
     c = Client(f"http://127.0.0.1:{free_port()}", retries=2, sleep=waits.append)
