@@ -277,20 +277,45 @@ _FIELDS_ALSO_FROM_THE_FILE = {
 }
 
 
-def _refused_options(exc: SkydriftError, args) -> str | None:
-    """The service's refusal of values given on the command line (an epoch it cannot read,
-    an unknown site, a count out of range), as one line; None when the answer is anything
-    else: about the catalogue's rows ("line 7: dec_deg", "stars[3].ra_deg"), or no refusal."""
+def _refuses_options(exc: SkydriftError, args) -> bool:
+    """Whether the service refused values given on the command line (an epoch it cannot
+    read, an unknown site, a count out of range), and nothing else: not the catalogue's
+    rows ("line 7: dec_deg", "stars[3].ra_deg"). ``exc`` names fields in the request's
+    terms."""
     if exc.status != 422 or not exc.errors:
-        return None
+        return False
     for e in exc.errors:
         base = re.split(r"[.\[]", e.field, maxsplit=1)[0]
         if not base.isidentifier() or base == "stars":
-            return None  # a row, cell or header line of the catalogue ("line 7"), "(more)"
+            return False  # a row, cell or header line of the catalogue ("line 7"), "(more)"
         options = _FIELDS_ALSO_FROM_THE_FILE.get(base)
         if options and all(getattr(args, o, None) is None for o in options):
-            return None
-    return "; ".join(f"{e.field}: {e.message}" for e in exc.errors)
+            return False
+    return True
+
+
+#: The service's hint for an unknown column, in the request's terms, and in the command
+#: line's (api/tables.py words the first).
+_UNREAD_HINT_REQUEST = "(to leave it unread, list it in ignored_columns)"
+_UNREAD_HINT_OPTIONS = (
+    "(to leave it unread, name it in --ignore-columns; --drop-unknown-columns leaves out "
+    "every such column)"
+)
+
+
+def _in_option_terms(errors: list, args) -> list:
+    """The service's refusals in the command line's terms: its hint for an unknown column
+    names the options, and an entry of the request's ignored_columns is the name given to
+    --ignore-columns."""
+    given = getattr(args, "ignore_columns", None) or []
+    out = []
+    for e in errors:
+        field, message = e.field, e.message.replace(_UNREAD_HINT_REQUEST, _UNREAD_HINT_OPTIONS)
+        m = re.fullmatch(r"ignored_columns\[(\d+)\]", field)
+        if m and int(m.group(1)) < len(given):
+            field = f"--ignore-columns {given[int(m.group(1))]}"
+        out.append(e if (field, message) == (e.field, e.message) else type(e)(field, message))
+    return out
 
 
 def _run(func):
@@ -304,9 +329,11 @@ def _run(func):
             print(f"skydrift: bad command line: {exc}", file=sys.stderr)
             return 2
         except SkydriftError as exc:
-            options = _refused_options(exc, args)
-            if options is not None:
-                print(f"skydrift: bad command line: {options}", file=sys.stderr)
+            options = _refuses_options(exc, args)
+            exc.errors = _in_option_terms(exc.errors, args)
+            if options:
+                said = "; ".join(f"{e.field}: {e.message}" for e in exc.errors)
+                print(f"skydrift: bad command line: {said}", file=sys.stderr)
                 return 2
             print(f"skydrift: {exc}", file=sys.stderr)
             return 1
