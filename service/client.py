@@ -696,6 +696,7 @@ class Client:
         model: str = "standard",
         layout: str | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> dict:
         """POST /v1/propagation: move stars to other epochs.
 
@@ -724,6 +725,7 @@ class Client:
         )
         if layout is not None:
             body["layout"] = layout
+        _leave_unread(body, ignored_columns)
         return self.post_batched("/v1/propagation", body, progress=progress)
 
     def propagate_csv(
@@ -774,6 +776,7 @@ class Client:
         low_snr_threshold: float | None = None,
         layout: str | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> dict:
         """POST /v1/velocity: transverse, radial, total velocity, U V W, closest approach.
 
@@ -806,6 +809,7 @@ class Client:
         body["stars"] = stars
         if layout is not None:
             body["layout"] = layout
+        _leave_unread(body, ignored_columns)
         return self.post_batched("/v1/velocity", body, progress=progress)
 
     def velocity_csv(
@@ -867,6 +871,7 @@ class Client:
         solar_motion_km_s: tuple[float, float, float] | None = None,
         layout: str | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> dict:
         """POST /v1/velocity/observables: proper motion and radial velocity from U V W.
 
@@ -879,6 +884,7 @@ class Client:
             body["solar_motion"] = {"u_km_s": u, "v_km_s": v, "w_km_s": w}
         if layout is not None:
             body["layout"] = layout
+        _leave_unread(body, ignored_columns)
         return self.post_batched("/v1/velocity/observables", body, progress=progress)
 
     def constellations(
@@ -893,6 +899,7 @@ class Client:
         frame: str | Mapping[str, Any] | None = None,
         layout: str | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> dict:
         """POST /v1/constellations/lookup (or /margins): the IAU constellation of each star.
 
@@ -921,6 +928,7 @@ class Client:
         if layout is not None:
             body["layout"] = layout
         path = "/v1/constellations/margins" if margins else "/v1/constellations/lookup"
+        _leave_unread(body, ignored_columns)
         return self.post_batched(path, body, progress=progress)
 
     def constellations_csv(
@@ -968,6 +976,7 @@ class Client:
         max_step_yr: float | None = None,
         reduction: str | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> dict:
         """POST /v1/constellations/crossings: every boundary crossing in a time window.
 
@@ -983,6 +992,7 @@ class Client:
             }
         )
         body["stars"] = stars
+        _leave_unread(body, ignored_columns)
         return self.post_batched(
             "/v1/constellations/crossings",
             body,
@@ -1052,6 +1062,7 @@ class Client:
         to_frame: str | Mapping[str, Any] = "icrs",
         target_epochs: Iterable[Epoch] | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
     ) -> dict:
         """POST /v1/frames: position, motion, parallax, radial velocity in another frame.
 
@@ -1070,6 +1081,7 @@ class Client:
                 [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
             )
             body["target_epochs"] = list(epochs)
+        _leave_unread(body, ignored_columns)
         return self.post_batched("/v1/frames", body, progress=progress)
 
     def observed(
@@ -1084,6 +1096,7 @@ class Client:
         horizon_limit_deg: float | None = None,
         sun_avoidance_deg: float | None = None,
         progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
         include_rates: bool = False,
     ) -> dict:
         """POST /v1/observed: observed places at a site, with advisory Sun/horizon figures.
@@ -1121,6 +1134,7 @@ class Client:
             "include_rates": True if include_rates else None,
         }
         body.update({k: v for k, v in optional.items() if v is not None})
+        _leave_unread(body, ignored_columns)
         return self.post_batched("/v1/observed", body, progress=progress)
 
     def observed_csv(
@@ -1310,6 +1324,13 @@ def _now_text() -> str:
     import datetime as dt
 
     return dt.datetime.now(dt.UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _leave_unread(body: dict, ignored_columns: str | Iterable[str]) -> None:
+    """The request's ``ignored_columns`` in a JSON body, where any are given."""
+    names = _names(ignored_columns)
+    if names:
+        body["ignored_columns"] = names
 
 
 def _names(names: str | Iterable[str]) -> list[str]:

@@ -139,6 +139,44 @@ def test_csv_and_arrow_methods_leave_listed_columns_unread(sky, demo_catalogue):
     assert got.equals(sky.propagate_arrow(table, **options))
 
 
+def test_json_methods_leave_listed_members_unread(sky, demo_catalogue):
+    """Records that carry members an endpoint does not take (a magnitude, a note), as a
+    catalogue export would: every typed JSON method takes ignored_columns= and answers as
+    for the records without them, in batches too; refused without it."""
+    plain = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]][:5]
+    extra = [dict(s, vmag=4.5, notes="ok") for s in plain]
+    when = "2026-12-02T22:00:00Z"
+    calls = {
+        "propagate": {"catalogue_epoch": "J2016.0", "target_epochs": EPOCHS},
+        "velocity": {},
+        "constellations": {"catalogue_epoch": "J2016.0", "epoch": "J2026.0"},
+        "constellation_crossings": {
+            "catalogue_epoch": "J2016.0",
+            "start": "J2016.0",
+            "end": "J3016.0",
+        },  # fmt: skip
+        "frames": {"catalogue_epoch": "J2016.0", "from_frame": "icrs", "to_frame": "galactic"},
+        "observed": {"catalogue_epoch": "J2016.0", "instants": when, "site": "kestrel-ridge"},
+    }
+    small = Client(sky.base_url, batch_size=2)
+    for name, options in calls.items():
+        with pytest.raises(SkydriftError) as refused:
+            getattr(sky, name)(extra, **options)
+        assert "vmag" in str(refused.value), name
+        # An observed place is the same in batches of other sizes to 1e-12 relative, not
+        # bit for bit (a batch of one star takes another path; README, Accuracy):
+        # compared unbatched.
+        client = sky if name == "observed" else small
+        got = getattr(client, name)(extra, ignored_columns=["vmag", "notes"], **options)
+        assert got == getattr(sky, name)(plain, **options), name
+    # The inverse of the velocities: its own members, with a note.
+    uvw = [{"ra_deg": 10.0, "dec_deg": 20.0, "parallax_mas": 50.0, "u_km_s": 10.0,
+            "v_km_s": -5.0, "w_km_s": 3.0}]  # fmt: skip
+    noted = [dict(uvw[0], notes="ok")]
+    got = sky.velocity_observables(noted, ignored_columns="notes")  # one name
+    assert got == sky.velocity_observables(uvw)
+
+
 def test_now_is_one_instant_across_batches(live_service, demo_catalogue):
     """A call sent as several requests means one instant by "now": each request's "now" was
     its own clock reading, so 30 stars in batches of 7 were moved to five epochs a few ms
