@@ -4,11 +4,12 @@ Run: ``PYTHONPATH=. python -m benchmarks.bench_observed`` (prints times and rati
 
 Figures: the core with the outputs astropy's AltAz gives (azimuth, altitude; plus our
 refraction, airmass, Sun separation and flags), the core with all observed quantities (hour
-angle, observed declination and RA, parallactic angle too), and with the geocentric places
-as well. Both sides get the same stars (ICRS positions with parallax, at the instant, no proper
-motion, since astropy's AltAz transform does not apply space motion), the same site, the same
-atmosphere and the same Earth-orientation table. Each figure is the best of several
-interleaved runs, so that load from other processes affects both sides alike.
+angle, observed declination and RA, parallactic angle too), with the tracking rates too
+(what asking for them costs, as a ratio to the same call without), and with the geocentric
+places as well. Both sides get the same stars (ICRS positions with parallax, at the
+instant, no proper motion, since astropy's AltAz transform does not apply space motion), the
+same site, the same atmosphere and the same Earth-orientation table. Each figure is the best
+of several interleaved runs, so that load from other processes affects both sides alike.
 
 Fairness: astropy recomputes its star-independent work (Earth position and velocity,
 precession-nutation, Earth rotation, refraction constants) in every call, so every timed
@@ -83,11 +84,11 @@ def main(n: int = 100_000, repeats: int = 15) -> dict:
     )
     epoch = float(instant.tt.jyear)
 
-    def ours(geocentric, hour_angle=True):
+    def ours(geocentric, hour_angle=True, rates=False):
         _forget_instants()
         return observed.observed_places(
             ra, dec, parallax, 0.0, 0.0, 0.0, epoch, instant.jd1, instant.jd2, site, atm,
-            eop=eop, geocentric=geocentric, hour_angle=hour_angle,
+            eop=eop, geocentric=geocentric, hour_angle=hour_angle, rates=rates,
         )  # fmt: skip
 
     def theirs():
@@ -116,10 +117,11 @@ def main(n: int = 100_000, repeats: int = 15) -> dict:
         warnings.simplefilter("ignore")
         theirs()
         ours(False)
-        t_obs = t_all = t_astropy = t_erfa = t_altaz = float("inf")
+        t_obs = t_all = t_astropy = t_erfa = t_altaz = t_rates = float("inf")
         for _ in range(repeats):
             t_altaz = min(t_altaz, _best(lambda: ours(False, False), 1))
             t_obs = min(t_obs, _best(lambda: ours(False), 1))
+            t_rates = min(t_rates, _best(lambda: ours(False, rates=True), 1))
             t_astropy = min(t_astropy, _best(theirs, 1))
             t_all = min(t_all, _best(lambda: ours(True), 1))
             t_erfa = min(t_erfa, _best(naive_erfa, 1) * n / n_erfa)
@@ -131,12 +133,14 @@ def main(n: int = 100_000, repeats: int = 15) -> dict:
         "core_altaz_refraction_safety_s": t_altaz,
         "core_observed_s": t_obs,
         "core_observed_and_geocentric_s": t_all,
+        "core_observed_with_rates_s": t_rates,
         "astropy_altaz_s": t_astropy,
         "erfa_atco13_per_star_s_scaled": t_erfa,
         "ratio_altaz_outputs_vs_astropy": t_astropy / t_altaz,
         "ratio_observed_vs_astropy": t_astropy / t_obs,
         "ratio_all_places_vs_astropy": t_astropy / t_all,
         "ratio_observed_vs_erfa_atco13": t_erfa / t_obs,
+        "ratio_with_rates_vs_without": t_rates / t_obs,
         "max_altitude_difference_mas": float(dalt.max()),
     }
     for key, val in out.items():

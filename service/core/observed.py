@@ -2145,12 +2145,10 @@ def _observed_zd_slope(r0, z, refa, refb):
     distance, atan2(|f| r0, zaeo), its guards included (where a guard holds a term, its
     derivative is zero); 1 with refraction off. ``r0`` and ``z`` are the sine and cosine
     of the unrefracted zenith distance."""
-    unguarded_r = r0 > ATIOQ_CELMIN
-    unguarded_z = z > ATIOQ_SELMIN
     r = np.maximum(r0, ATIOQ_CELMIN)
     zz = np.maximum(z, ATIOQ_SELMIN)
-    dr = np.where(unguarded_r, z, 0.0)
-    dzz = np.where(unguarded_z, -r0, 0.0)
+    dr = z * (r0 > ATIOQ_CELMIN)  # 0 where the guard holds r
+    dzz = -r0 * (z > ATIOQ_SELMIN)
     tz = r / zz
     dtz = (dr - tz * dzz) / zz
     w = refb * tz * tz
@@ -2164,7 +2162,7 @@ def _observed_zd_slope(r0, z, refa, refb):
     dcosdel = -dl * ddl
     f = cosdel - dl * zz / r
     df = dcosdel - (ddl * zz + dl * dzz) / r + dl * zz * dr / (r * r)
-    sign = np.where(f < 0.0, -1.0, 1.0)
+    sign = np.copysign(1.0, f)
     x = sign * f * r0
     dx = sign * (df * r0 + f * z)
     y = cosdel * z + dl * r
@@ -2585,7 +2583,9 @@ class _InstantState:
             | _bits(refr.pressure_warning is not None, ObservedFlag.PRESSURE_IMPLAUSIBLE)
         )
         self.instant_flags = instant_flags if instant_flags.any() else None
+        self.site = site
         self._geo = None
+        self._tracking = None
 
     def geocentric(self):
         """Star-independent quantities for the geocentric places (computed once).
@@ -2601,6 +2601,52 @@ class _InstantState:
                 geo["fast"].eo = float(self.eo)
             self._geo = geo
         return geo
+
+    def tracking(self) -> tuple:
+        """The star-independent terms of :func:`tracking_rates` (computed once): the
+        rotation axis, the sine and cosine of the latitude, the refraction constants and
+        the aberration's drift; Python floats for one instant."""
+        terms = self._tracking
+        if terms is None:
+            a = self.astrom
+            sphi, cphi = a["sphi"], a["cphi"]
+            axis = _rotation_axis_aet(a["xpl"], a["ypl"], sphi, cphi)
+            drift = _aberration_drift_aet(self.site, self.ins.m, self.ehp, axis)
+            terms = (axis, sphi, cphi, a["refa"], a["refb"], drift)
+            if np.ndim(sphi) == 0:
+                terms = tuple(
+                    tuple(float(c) for c in t) if isinstance(t, tuple) else float(t) for t in terms
+                )
+            self._tracking = terms
+        return terms
+
+
+#: Places per block of :func:`_rates_of` (its numpy temporaries then stay in the cache).
+RATES_BLOCK = 16384
+
+
+def _rates_of(res: dict, shape: tuple, terms: tuple) -> dict:
+    """:func:`tracking_rates` of the places in ``res`` (``_CHAIN_FIELDS`` arrays of
+    ``shape``) with the instant's ``terms`` (:meth:`_InstantState.tracking`): on Python
+    floats for one place (a one-star request makes some 100 numpy calls less costly), and
+    block by block for many stars at one instant."""
+    axis, sphi, cphi, refa, refb, drift = terms
+    places = [res[k] for k in ("azimuth_deg", "zenith_distance_deg", "refraction_arcsec")]
+    names = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+    one_instant = isinstance(sphi, float)
+    if one_instant and math.prod(shape) == 1:
+        rates = tracking_rates(*(float(np.reshape(x, -1)[0]) for x in places), *terms)
+        return {k: np.full(shape, r) for k, r in zip(names, rates, strict=True)}
+    if not one_instant or len(shape) != 1:
+        rates = tracking_rates(*places, *terms)
+        return {k: _shaped(r, shape) for k, r in zip(names, rates, strict=True)}
+    out = {k: np.empty(shape) for k in names}
+    for i in range(0, shape[0], RATES_BLOCK):
+        sl = slice(i, i + RATES_BLOCK)
+        rates = tracking_rates(*(x[sl] for x in places), *terms)
+        for k, r in zip(names, rates, strict=True):
+            out[k][sl] = r
+    return out
 
 
 class _ByIdentity:
@@ -2844,21 +2890,7 @@ def observed_places(
         else:
             res["flags"] = _shaped(flags | instant_flags, shape).astype(np.uint32)
 
-    rate_values = {}
-    if rates:
-        astrom = st.astrom
-        sphi, cphi = astrom["sphi"], astrom["cphi"]
-        axis = _rotation_axis_aet(astrom["xpl"], astrom["ypl"], sphi, cphi)
-        az_rate, alt_rate, pa_rate = tracking_rates(
-            res["azimuth_deg"], res["zenith_distance_deg"], res["refraction_arcsec"],
-            axis, sphi, cphi, astrom["refa"], astrom["refb"],
-            _aberration_drift_aet(site, ins.m, st.ehp, axis),
-        )  # fmt: skip
-        rate_values = {
-            "azimuth_rate_arcsec_s": _shaped(az_rate, shape),
-            "altitude_rate_arcsec_s": _shaped(alt_rate, shape),
-            "parallactic_angle_rate_arcsec_s": _shaped(pa_rate, shape),
-        }
+    rate_values = _rates_of(res, shape, st.tracking()) if rates else {}
 
     return ObservedPlaces(
         astrometric_ra_deg=_shaped(a_ra, shape),

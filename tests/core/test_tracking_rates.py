@@ -246,3 +246,25 @@ def test_rates_at_the_zenith_are_not_a_number_and_none_unless_asked():
     axis = O._rotation_axis_aet(0.0, 0.0, np.sin(0.7), np.cos(0.7))
     az, alt, pa = O.tracking_rates(0.0, 0.0, 0.0, axis, np.sin(0.7), np.cos(0.7), 0.0, 0.0)
     assert not np.isfinite(az) and not np.isfinite(pa) and not np.isfinite(alt)
+
+
+def test_rates_of_many_stars_block_by_block_equal_the_whole_arrays():
+    """Many stars at one instant are taken RATES_BLOCK at a time: the same rates as
+    tracking_rates on the whole arrays at once (to rounding, 1e-9 arcsec/s)."""
+    n = 2 * O.RATES_BLOCK + 123
+    s = _stars(n, seed=11)
+    site = O.make_site(-29.26, -70.73, 2400.0)
+    jd1, jd2 = erfa.dtf2d("UTC", 2026, 12, 4, 3, 0, 0.0)
+    res = _observe(s, jd1, jd2, site, rates=True)
+    state = O._instant_state_cached(
+        O._float_key(jd1), O._float_key(jd2), O._site_key(site),
+        O._refr_key(O.refraction_settings(site, None)), O._ByIdentity(O.earth_orientation()),
+    )  # fmt: skip
+    whole = O.tracking_rates(res.azimuth_deg, res.zenith_distance_deg, res.refraction_arcsec,
+                             *state.tracking())  # fmt: skip
+    for got, want in zip(
+        (res.azimuth_rate_arcsec_s, res.altitude_rate_arcsec_s,
+         res.parallactic_angle_rate_arcsec_s), whole, strict=True,
+    ):  # fmt: skip
+        assert got.shape == (n,)
+        assert np.abs(got - want).max() < 1e-9
