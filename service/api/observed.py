@@ -668,6 +668,8 @@ def observed(args):
     Earth-orientation table used, whether its values were measured, predicted or unavailable,
     and the accuracy class. A CSV or Arrow answer carries these figures of each instant on
     each of its rows (utc_jd, earth_orientation_<member>, sun_altitude_deg, sun_azimuth_deg).
+    With include_rates, each place also says how fast its azimuth, altitude and parallactic
+    angle change (arcsec per second of time), for a mount's tracking and a derotator.
     The Sun altitude, Sun separation and horizon flags are advisory: the facility's own
     interlocks and safety rules decide.
     """
