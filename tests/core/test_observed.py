@@ -170,16 +170,6 @@ def test_hd2pa_published_value_through_vector_form():
 # --- astropy, same Earth orientation and atmosphere -------------------------------------------
 
 
-@pytest.fixture(scope="module")
-def astropy_with_our_table():
-    from astropy.utils import iers
-
-    iers.conf.auto_download = False
-    table = iers.IERS_A.open(O.earth_orientation().primary.path)
-    with iers.earth_orientation_table.set(table):
-        yield
-
-
 @pytest.mark.parametrize("lat", [90.0, -90.0])
 def test_site_at_a_pole_matches_sofa_and_its_documented_conventions(lat):
     # At a site at latitude +-90 the zenith is the celestial pole: azimuth and hour angle

@@ -16,17 +16,6 @@ SECOND = 1.0 / 86_400.0  # days
 OMEGA = O.ERA_RATE_RAD_S * ARCSEC_PER_RAD  # arcsec of Earth rotation per second
 
 
-@pytest.fixture(scope="module")
-def astropy_with_our_table():
-    """astropy with the Earth-orientation table the core reads (never downloaded)."""
-    from astropy.utils import iers
-
-    iers.conf.auto_download = False
-    table = iers.IERS_A.open(O.earth_orientation().primary.path)
-    with iers.earth_orientation_table.set(table):
-        yield
-
-
 def _stars(n, seed):
     rng = np.random.default_rng(seed)
     return dict(
