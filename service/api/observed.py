@@ -100,8 +100,9 @@ RATE_FIELDS = {
     "altitude_rate_arcsec_s": "arcsec/s, rate of change of the observed (refracted) "
     "altitude, per second of time, refraction's change included; null at the zenith",
     "parallactic_angle_rate_arcsec_s": "arcsec/s, rate of change of the parallactic angle, "
-    "per second of time (the field's rotation seen at the focus of an alt-azimuth mount "
-    "without derotator, less any rotation the focus adds); null at the zenith",
+    "per second of time: the rate at which the field turns at the Cassegrain focus of an "
+    "alt-azimuth mount (at a Nasmyth focus the altitude's rate adds to it or is taken from "
+    "it, by the side); null at the zenith",
 }
 
 #: Units of the numbers each instant has besides its epoch (instants[].utc_jd,

@@ -2630,10 +2630,9 @@ def _rates_of(res: dict, shape: tuple, terms: tuple) -> dict:
     ``shape``) with the instant's ``terms`` (:meth:`_InstantState.tracking`): on Python
     floats for one place (a one-star request makes some 100 numpy calls less costly), and
     block by block for many stars at one instant."""
-    axis, sphi, cphi, refa, refb, drift = terms
     places = [res[k] for k in ("azimuth_deg", "zenith_distance_deg", "refraction_arcsec")]
     names = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
-    one_instant = isinstance(sphi, float)
+    one_instant = isinstance(terms[1], float)  # sin(latitude): a float for one instant
     if one_instant and math.prod(shape) == 1:
         rates = tracking_rates(*(float(np.reshape(x, -1)[0]) for x in places), *terms)
         return {k: np.full(shape, r) for k, r in zip(names, rates, strict=True)}
