@@ -139,3 +139,30 @@ def test_include_rates_in_a_query_must_be_true_or_false(client):
     )
     assert r.status_code == 422
     assert "include_rates" in [e["field"] for e in r.json["errors"]]
+
+
+def test_readme_example_of_the_rates_says_what_the_service_answers(client):
+    """The README's curl example of include_rates, sent as written, gives the figures the
+    README states (to their last digit, give or take what a newer Earth-orientation table
+    moves: 2e-4 deg, 20 ms of UT1, in the place; 1e-3 and 1e-2 arcsec/s in the rates)."""
+    import re
+
+    from tests.conftest import ROOT
+
+    text = (ROOT / "README.md").read_text()
+    start = text.index('"site": "kestrel-ridge", "include_rates": true')
+    body = text[text.rindex("-d '", 0, start) + 4 : text.index("}'", start) + 1]
+    place = client.post(OBS, json=json.loads(body)).json["stars"][0]["at_instants"][0]
+    said = text[start : start + 1500]
+    figures = re.search(
+        r"azimuth ([\d.]+) deg and altitude ([\d.]+) deg, moving at ([\d.]+) arcsec/s in\s+"
+        r"azimuth and ([\d.]+) arcsec/s in altitude, its field turning at ([\d.]+) arcsec/s",
+        said,
+    )
+    assert figures, "the README's sentence after the example changed"
+    az, alt, az_rate, alt_rate, pa_rate = (float(x) for x in figures.groups())
+    assert place["azimuth_deg"] == pytest.approx(az, abs=2e-4)
+    assert place["altitude_deg"] == pytest.approx(alt, abs=2e-4)
+    assert place["azimuth_rate_arcsec_s"] == pytest.approx(az_rate, abs=1e-3)
+    assert place["altitude_rate_arcsec_s"] == pytest.approx(alt_rate, abs=1e-3)
+    assert place["parallactic_angle_rate_arcsec_s"] == pytest.approx(pa_rate, abs=1e-2)
