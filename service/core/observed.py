@@ -2145,6 +2145,9 @@ def _observed_zd_slope(r0, z, refa, refb):
     distance, atan2(|f| r0, zaeo), its guards included (where a guard holds a term, its
     derivative is zero); 1 with refraction off. ``r0`` and ``z`` are the sine and cosine
     of the unrefracted zenith distance."""
+    # The values themselves from _refract (a vertical through azimuth 0), their
+    # derivatives here.
+    f, y, _, dl = _refract((-r0, 0.0 * r0, z), refa, refb)
     r = np.maximum(r0, ATIOQ_CELMIN)
     zz = np.maximum(z, ATIOQ_SELMIN)
     dr = z * (r0 > ATIOQ_CELMIN)  # 0 where the guard holds r
@@ -2156,16 +2159,13 @@ def _observed_zd_slope(r0, z, refa, refb):
     inv_zz2 = 1.0 / (zz * zz)
     den = 1.0 + (refa + 3.0 * w) * inv_zz2
     dden = 3.0 * dw * inv_zz2 - 2.0 * (refa + 3.0 * w) * dzz * inv_zz2 / zz
-    dl = (refa + w) * tz / den
     ddl = (dw * tz + (refa + w) * dtz - dl * dden) / den
     cosdel = 1.0 - 0.5 * dl * dl
     dcosdel = -dl * ddl
-    f = cosdel - dl * zz / r
     df = dcosdel - (ddl * zz + dl * dzz) / r + dl * zz * dr / (r * r)
     sign = np.copysign(1.0, f)
     x = sign * f * r0
     dx = sign * (df * r0 + f * z)
-    y = cosdel * z + dl * r
     dy = dcosdel * z - cosdel * r0 + ddl * r + dl * dr
     return (y * dx - x * dy) / (x * x + y * y)
 
