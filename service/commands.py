@@ -314,7 +314,7 @@ def _in_option_terms(errors: list, args) -> list:
         m = re.fullmatch(r"ignored_columns\[(\d+)\]", field)
         if m and int(m.group(1)) < len(given):
             field = f"--ignore-columns {given[int(m.group(1))]}"
-        out.append(e if (field, message) == (e.field, e.message) else type(e)(field, message))
+        out.append(type(e)(field, message))
     return out
 
 
