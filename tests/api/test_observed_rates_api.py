@@ -42,8 +42,9 @@ def test_rates_only_when_asked_for(client, request_body):
 def test_rates_agree_with_the_places_a_second_apart(client, request_body):
     """Through the whole service: each rate against the change of the answer's own place
     between instants 0.5 s before and after (central difference). The core's tests check
-    the rates to 1e-5 arcsec/s (tests/core/test_tracking_rates.py); here the tolerance is
-    1e-4 arcsec/s, times sin z for the azimuth (a place far from the zenith is chosen)."""
+    the rates to 2e-6 arcsec/s away from the Sun (tests/core/test_tracking_rates.py); here,
+    through JSON, measured within 5e-7; tolerance 5e-6 arcsec/s, times sin z for the
+    azimuth (places more than 5 deg from the zenith)."""
     body = dict(request_body, include_rates=True, instants=["2026-12-02T22:30:00Z"])
     at = client.post(OBS, json=body).json["stars"]
     before = client.post(OBS, json=dict(body, instants=["2026-12-02T22:29:59.5Z"])).json["stars"]
@@ -56,8 +57,8 @@ def test_rates_agree_with_the_places_a_second_apart(client, request_body):
         sin_z = np.sin(np.radians(p["zenith_distance_deg"]))
         d_az = ((pa_["azimuth_deg"] - pb["azimuth_deg"] + 180.0) % 360.0 - 180.0) * 3600.0
         d_alt = (pa_["altitude_deg"] - pb["altitude_deg"]) * 3600.0
-        assert abs(p["altitude_rate_arcsec_s"] - d_alt) < 1e-4
-        assert abs(p["azimuth_rate_arcsec_s"] - d_az) * sin_z < 1e-4
+        assert abs(p["altitude_rate_arcsec_s"] - d_alt) < 5e-6
+        assert abs(p["azimuth_rate_arcsec_s"] - d_az) * sin_z < 5e-6
         assert abs(p["altitude_rate_arcsec_s"]) + abs(p["azimuth_rate_arcsec_s"]) > 1.0
         checked += 1
     assert checked >= 2
