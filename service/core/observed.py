@@ -2199,6 +2199,11 @@ def tracking_rates(
         Arcsec per second of time; the azimuth's rate is that of the coordinate (times the
         cosine of the altitude for the motion across the sky). NaN at the zenith, where
         the azimuth and the parallactic angle are not defined.
+    hour_angle_rate, declination_rate : ndarray
+        Arcsec per second of time, of the observed hour angle and declination (the place
+        an equatorial mount points at, refraction included, as SOFA atioq gives them); the
+        hour angle's rate is that of the coordinate (times the cosine of the declination
+        for the motion across the sky). Not finite at the pole of the hour angle.
 
     Notes
     -----
@@ -2208,11 +2213,13 @@ def tracking_rates(
     the drift (first order in v/c). The refraction keeps the azimuth and changes the zenith
     distance by the slope of :func:`_observed_zd_slope`; the parallactic angle's rate is
     the derivative of the answer's own formula (SOFA hd2pa of the observed place) along
-    the observed direction's motion. Held within the second: precession-nutation, the
-    star's own motion and parallax, the Sun's light deflection (together about 1e-6
-    arcsec/s, up to 7e-6 within a degree of the Sun: tests/core/test_tracking_rates.py); a
-    UT1 second differs from an SI second by the excess length of day (about 1e-8 of the
-    rate).
+    the observed direction's motion, and so are the hour angle's and the declination's
+    (the observed direction turned to the site's equator, as atioq turns it). Held within
+    the second: precession-nutation, the star's own motion and parallax, the Sun's light
+    deflection (together about 1e-6 arcsec/s; the deflection's change grows as the inverse
+    square of the distance from the Sun, 7e-6 at a degree, 7e-5 at its limb:
+    tests/core/test_tracking_rates.py); a UT1 second differs from an SI second by the excess
+    length of day (about 1e-8 of the rate).
     """
     with np.errstate(divide="ignore", invalid="ignore"):
         az = np.asarray(azimuth_deg, dtype=float) * RAD_PER_DEG
@@ -2251,8 +2258,13 @@ def tracking_rates(
         nd = -cphi * od[1]
         dd = 2.0 * sphi * (v0 * v0d + o[1] * od[1]) - cphi * (v2d * v0 + v2 * v0d)
         pa_rate = (d * nd - n * dd) / (n * n + d * d)
+        # The observed hour angle atan2(-y, v0) and declination atan2(v2, sqrt(v0^2 + y^2))
+        # of the unit vector o, as the answers compute them.
+        h2 = v0 * v0 + o[1] * o[1]
+        ha_rate = (o[1] * v0d - v0 * od[1]) / h2
+        dec_rate = v2d / np.sqrt(h2)
     k = _ARCSEC_PER_RAD
-    return az_rate * k, -zd_rate * k, pa_rate * k
+    return az_rate * k, -zd_rate * k, pa_rate * k, ha_rate * k, dec_rate * k
 
 
 # ---------------------------------------------------------------------------------------------
@@ -2475,6 +2487,9 @@ class ObservedPlaces:
     azimuth_rate_arcsec_s, altitude_rate_arcsec_s, parallactic_angle_rate_arcsec_s : ndarray
         Rates of change of the observed azimuth, altitude and parallactic angle, arcsec per
         second of time (:func:`tracking_rates`); None unless asked for (``rates``).
+    hour_angle_rate_arcsec_s, observed_dec_rate_arcsec_s : ndarray
+        Rates of change of the observed hour angle and declination, arcsec per second of
+        time, for an equatorial mount; None unless asked for.
     """
 
     astrometric_ra_deg: np.ndarray
@@ -2505,6 +2520,8 @@ class ObservedPlaces:
     azimuth_rate_arcsec_s: np.ndarray | None = None
     altitude_rate_arcsec_s: np.ndarray | None = None
     parallactic_angle_rate_arcsec_s: np.ndarray | None = None
+    hour_angle_rate_arcsec_s: np.ndarray | None = None
+    observed_dec_rate_arcsec_s: np.ndarray | None = None
 
 
 def _shaped(x, shape):
@@ -2621,6 +2638,15 @@ class _InstantState:
         return terms
 
 
+#: The rates of :func:`tracking_rates`, in its order, as :class:`ObservedPlaces` names them.
+RATE_NAMES = (
+    "azimuth_rate_arcsec_s",
+    "altitude_rate_arcsec_s",
+    "parallactic_angle_rate_arcsec_s",
+    "hour_angle_rate_arcsec_s",
+    "observed_dec_rate_arcsec_s",
+)
+
 #: Places per block of :func:`_rates_of` (its numpy temporaries then stay in the cache).
 RATES_BLOCK = 16384
 
@@ -2631,7 +2657,7 @@ def _rates_of(res: dict, shape: tuple, terms: tuple) -> dict:
     floats for one place (a one-star request makes some 100 numpy calls less costly), and
     block by block for many stars at one instant."""
     places = [res[k] for k in ("azimuth_deg", "zenith_distance_deg", "refraction_arcsec")]
-    names = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+    names = RATE_NAMES
     one_instant = isinstance(terms[1], float)  # sin(latitude): a float for one instant
     if one_instant and math.prod(shape) == 1:
         rates = tracking_rates(*(float(np.reshape(x, -1)[0]) for x in places), *terms)
@@ -2763,8 +2789,9 @@ def observed_places(
         Also compute the observed hour angle, declination, RA and the parallactic angle
         (default True); False fills them with NaN and saves their cost.
     rates : bool
-        Also compute the rates of change of the observed azimuth, altitude and parallactic
-        angle, for tracking (:func:`tracking_rates`; default False: they are None).
+        Also compute the rates of change of the observed azimuth, altitude, parallactic
+        angle, hour angle and declination, for tracking (:func:`tracking_rates`; default
+        False: they are None).
 
     Returns
     -------
