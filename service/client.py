@@ -1116,8 +1116,8 @@ class Client:
             Limits for the advisory flags, degrees. The figures are advisory: the facility's
             own interlocks and safety rules decide where a telescope may point.
         include_rates : bool
-            Also give how fast each place's azimuth, altitude and parallactic angle change
-            (arcsec per second of time), for tracking.
+            Also give how fast each place's azimuth, altitude, parallactic angle, observed
+            hour angle and declination change (arcsec per second of time), for tracking.
         """
         when = [instants] if isinstance(instants, str | float | int) else list(instants)
         body: dict = {

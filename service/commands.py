@@ -1058,9 +1058,10 @@ def add_commands(sub) -> None:
     o.add_argument(
         "--rates",
         action="store_true",
-        help="also write how fast each place's azimuth, altitude and parallactic angle "
-        "change, arcsec per second of time (columns azimuth_rate_arcsec_s, "
-        "altitude_rate_arcsec_s, parallactic_angle_rate_arcsec_s), for tracking",
+        help="also write how fast each place's azimuth, altitude, parallactic angle, "
+        "observed hour angle and declination change, arcsec per second of time (columns "
+        "azimuth_rate_arcsec_s, altitude_rate_arcsec_s, parallactic_angle_rate_arcsec_s, "
+        "hour_angle_rate_arcsec_s, observed_dec_rate_arcsec_s), for tracking",
     )
     o.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(o)

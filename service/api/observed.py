@@ -103,6 +103,13 @@ RATE_FIELDS = {
     "per second of time: the rate at which the field turns at the Cassegrain focus of an "
     "alt-azimuth mount (at a Nasmyth focus the altitude's rate adds to it or is taken from "
     "it, by the side); null at the zenith",
+    "hour_angle_rate_arcsec_s": "arcsec/s, rate of change of the observed hour angle, per "
+    "second of time, for an equatorial mount's tracking: of the coordinate (times "
+    "cos(observed_dec) for the motion across the sky), about 15.04 (the Earth's rotation) "
+    "but for the refraction's change low in the sky; null at the celestial pole",
+    "observed_dec_rate_arcsec_s": "arcsec/s, rate of change of the observed declination, "
+    "per second of time: near zero but for the refraction's change (and the aberration's); "
+    "null at the celestial pole",
 }
 
 #: Units of the numbers each instant has besides its epoch (instants[].utc_jd,
@@ -433,8 +440,9 @@ class ObservedRequestSchema(ma.Schema):
     include_rates = StrictBoolean(
         load_default=False,
         metadata={
-            "description": "Also give, for each place, how fast its azimuth, altitude and "
-            "parallactic angle change (arcsec per second of time): "
+            "description": "Also give, for each place, how fast its azimuth, altitude, "
+            "parallactic angle, observed hour angle and declination change (arcsec per "
+            "second of time): "
             + ", ".join(RATE_FIELDS)
             + ". The Earth's rotation, the refraction's change with altitude and the "
             "aberration's change are included; they hold for the instant given (compute "
@@ -669,8 +677,9 @@ def observed(args):
     Earth-orientation table used, whether its values were measured, predicted or unavailable,
     and the accuracy class. A CSV or Arrow answer carries these figures of each instant on
     each of its rows (utc_jd, earth_orientation_<member>, sun_altitude_deg, sun_azimuth_deg).
-    With include_rates, each place also says how fast its azimuth, altitude and parallactic
-    angle change (arcsec per second of time), for a mount's tracking and a derotator.
+    With include_rates, each place also says how fast its azimuth, altitude, parallactic
+    angle, observed hour angle and declination change (arcsec per second of time), for a
+    mount's tracking (alt-azimuth or equatorial) and a derotator.
     The Sun altitude, Sun separation and horizon flags are advisory: the facility's own
     interlocks and safety rules decide.
     """

@@ -14,7 +14,13 @@ from tests.conftest import DEMO
 
 OBS = "/v1/observed"
 ARROW = "application/vnd.apache.arrow.stream"
-RATES = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+RATES = (
+    "azimuth_rate_arcsec_s",
+    "altitude_rate_arcsec_s",
+    "parallactic_angle_rate_arcsec_s",
+    "hour_angle_rate_arcsec_s",
+    "observed_dec_rate_arcsec_s",
+)
 
 
 @pytest.fixture(scope="module")
@@ -44,7 +50,7 @@ def test_rates_agree_with_the_places_a_second_apart(client, request_body):
     between instants 0.5 s before and after (central difference). The core's tests check
     the rates to 2e-6 arcsec/s away from the Sun (tests/core/test_tracking_rates.py); here,
     through JSON, measured within 5e-7; tolerance 5e-6 arcsec/s, times sin z for the
-    azimuth (places more than 5 deg from the zenith)."""
+    azimuth (places more than 5 deg from the zenith) and cos(dec) for the hour angle."""
     body = dict(request_body, include_rates=True, instants=["2026-12-02T22:30:00Z"])
     at = client.post(OBS, json=body).json["stars"]
     before = client.post(OBS, json=dict(body, instants=["2026-12-02T22:29:59.5Z"])).json["stars"]
@@ -60,6 +66,12 @@ def test_rates_agree_with_the_places_a_second_apart(client, request_body):
         assert abs(p["altitude_rate_arcsec_s"] - d_alt) < 5e-6
         assert abs(p["azimuth_rate_arcsec_s"] - d_az) * sin_z < 5e-6
         assert abs(p["altitude_rate_arcsec_s"]) + abs(p["azimuth_rate_arcsec_s"]) > 1.0
+        cos_dec = np.cos(np.radians(p["observed_dec_deg"]))
+        d_ha = ((pa_["hour_angle_deg"] - pb["hour_angle_deg"] + 180.0) % 360.0 - 180.0) * 3600.0
+        d_dec = (pa_["observed_dec_deg"] - pb["observed_dec_deg"]) * 3600.0
+        assert abs(p["hour_angle_rate_arcsec_s"] - d_ha) * cos_dec < 5e-6
+        assert abs(p["observed_dec_rate_arcsec_s"] - d_dec) < 5e-6
+        assert p["hour_angle_rate_arcsec_s"] == pytest.approx(15.04, abs=0.05)
         checked += 1
     assert checked >= 2
 
@@ -162,6 +174,17 @@ def test_readme_example_of_the_rates_says_what_the_service_answers(client):
     )
     assert figures, "the README's sentence after the example changed"
     az, alt, az_rate, alt_rate, pa_rate = (float(x) for x in figures.groups())
+    equatorial = re.search(
+        r"its hour angle\s+([-\d.]+) deg grows at ([\d.]+) arcsec/s and its observed "
+        r"declination\s+([-\d.]+) deg changes by\s+([-\d.]+) arcsec/s",
+        said,
+    )
+    assert equatorial, "the README's sentence on the hour angle changed"
+    ha, ha_rate, dec, dec_rate = (float(x) for x in equatorial.groups())
+    assert place["hour_angle_deg"] == pytest.approx(ha, abs=2e-4)
+    assert place["observed_dec_deg"] == pytest.approx(dec, abs=2e-4)
+    assert place["hour_angle_rate_arcsec_s"] == pytest.approx(ha_rate, abs=1e-4)
+    assert place["observed_dec_rate_arcsec_s"] == pytest.approx(dec_rate, abs=1e-4)
     assert place["azimuth_deg"] == pytest.approx(az, abs=2e-4)
     assert place["altitude_deg"] == pytest.approx(alt, abs=2e-4)
     assert place["azimuth_rate_arcsec_s"] == pytest.approx(az_rate, abs=1e-3)

@@ -12,6 +12,7 @@ import sys
 import pytest
 
 from service.cli import build_parser
+from service.core import observed as core_observed
 from tests.conftest import DEMO, ROOT
 
 CATALOGUE = str(DEMO / "catalogue.csv")
@@ -210,11 +211,11 @@ def test_observed_local_and_remote_identical(live_service):
 
 
 def test_observed_rates_option_adds_the_rate_columns(live_service):
-    """--rates asks for the tracking rates: three more columns, the service's numbers
+    """--rates asks for the tracking rates: five more columns, the service's numbers
     (the same locally and through a running service), and none without it."""
     args = ["observed", CATALOGUE, "--at", "2026-12-02T22:00:00Z", "--site", "kestrel-ridge",
             "--drop-unknown-columns", "-q"]  # fmt: skip
-    rates = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+    rates = core_observed.RATE_NAMES  # the five rates
     local = skydrift(*args, "--rates")
     assert local.stdout == skydrift(*args, "--rates", "--url", live_service).stdout
     with_rates = list(csv.DictReader(io.StringIO(local.stdout.decode())))

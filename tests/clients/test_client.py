@@ -14,6 +14,7 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 import pytest
 
 from service.client import Client, FieldError, SkydriftError, merge_answers
+from service.core import observed as core_observed
 from tests.conftest import DEMO, ROOT
 from tests.reliability.server import free_port
 
@@ -378,7 +379,7 @@ def test_frames_and_observed_methods(live_service, demo_catalogue):
 
 def test_observed_methods_ask_for_rates(live_service, demo_catalogue):
     """include_rates= on observed and observed_csv: the request's include_rates."""
-    rates = ("azimuth_rate_arcsec_s", "altitude_rate_arcsec_s", "parallactic_angle_rate_arcsec_s")
+    rates = core_observed.RATE_NAMES  # the five rates
     stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]][:4]
     when = {"catalogue_epoch": "J2016.0", "instants": "2026-12-02T22:00:00Z",
             "site": "kestrel-ridge"}  # fmt: skip
