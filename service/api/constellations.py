@@ -35,7 +35,7 @@ from .common import (
     units_field,
 )
 from .examples import load_example
-from .frames import FrameSpecSchema, frame_from_spec
+from .frames import FrameSpecSchema, frame_from_spec, frame_with_equinox
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .tables import IgnoredColumnsField, RowCheck, StarTableField
@@ -399,24 +399,17 @@ class OutlineQuerySchema(ma.Schema):
 
 def _outline_equinox(frame: str, equinox) -> float | None:
     """An outline's frame and OutlineEquinoxField value -> its equinox, a Besselian year
-    for fk4 and a Julian year for fk5 (None: none given); ValueError (its message for the
-    field) for a frame that takes none, or one outside the range taken."""
-    kind, value = equinox or (None, None)
-    if value is None:
+    for fk4 and a Julian year for fk5 (None: none given), as /v1/frames makes the frame;
+    ValueError (its message for the field) for a frame that takes none, or one outside the
+    range taken."""
+    if equinox is None or equinox[1] is None:
         return None
-    if frame == "fk4" and kind == "jyear":  # the FK4 frame takes a Besselian equinox
-        value = float(core_epochs.julian_epoch_to_besselian_epoch(value))
-    elif frame not in ("fk4", "fk5"):
+    if frame not in ("fk4", "fk5"):
         raise ValueError("only for frame fk5 or fk4")
-    # To 1e-9 year (0.03 s), as /v1/frames takes an equinox: the round trip through a
-    # Julian date leaves B1875.0 as 1874.9999999999998 (echoed so) and B1000.0, the range's
-    # end, as 999.9999999999999 (refused).
-    value = round(value, 9)
-    try:  # the range every frame with an equinox takes (core.frames.make_frame)
-        core_frames.make_frame(frame, value)
+    try:
+        return frame_with_equinox(frame, equinox).equinox
     except ValueError as exc:
         raise ValueError(str(exc).removeprefix("equinox ")) from None
-    return value
 
 
 @always_present

@@ -166,14 +166,17 @@ class FrameSpecSchema(ma.Schema):
         if "name" not in data or "equinox" not in data:  # refused already, for its own sake
             return
         try:
-            _make_frame(data["name"], data["equinox"])
+            frame_with_equinox(data["name"], data["equinox"])
         except ValueError as exc:
             raise ma.ValidationError(str(exc), "equinox") from None
 
 
-def _make_frame(name: str, equinox) -> core.Frame:
+def frame_with_equinox(name: str, equinox) -> core.Frame:
     """A frame name and an EquinoxField value -> core Frame (ValueError on a bad
-    combination: an equinox for a frame without one, or outside the range taken)."""
+    combination: an equinox for a frame without one, or outside the range taken). The
+    equinox is kept to 1e-9 year (0.03 s): the round trip through a Julian date leaves
+    B1875.0 as 1874.9999999999998 (echoed so) and B1000.0, the range's end, as
+    999.9999999999999 (refused)."""
     kind, value = equinox or (None, None)
     if kind is None:
         return core.make_frame(name)
@@ -188,7 +191,7 @@ def _make_frame(name: str, equinox) -> core.Frame:
 def frame_from_spec(spec: dict) -> core.Frame:
     """FrameSpecSchema data -> core Frame (the schema has checked that they make one, and
     named the field of a bad combination)."""
-    return _make_frame(spec["name"], spec.get("equinox"))
+    return frame_with_equinox(spec["name"], spec.get("equinox"))
 
 
 class FramesRequestSchema(ma.Schema):
