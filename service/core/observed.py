@@ -2631,7 +2631,8 @@ RATE_NAMES = (
     "observed_dec_rate_arcsec_s",
 )
 
-#: Places per block of :func:`_rates_of` (its numpy temporaries then stay in the cache).
+#: Places per block of :func:`_rates_of` (bounds its temporaries' memory; blocks of 2,048 to
+#: 16,384 measured alike for 100,000 places, within the runs' spread).
 RATES_BLOCK = 16384
 
 
@@ -2641,19 +2642,18 @@ def _rates_of(res: dict, shape: tuple, terms: tuple) -> dict:
     floats for one place (a one-star request makes some 100 numpy calls less costly), and
     block by block for many stars at one instant."""
     places = [res[k] for k in ("azimuth_deg", "zenith_distance_deg", "refraction_arcsec")]
-    names = RATE_NAMES
     one_instant = isinstance(terms[1], float)  # sin(latitude): a float for one instant
     if one_instant and math.prod(shape) == 1:
         rates = tracking_rates(*(float(np.reshape(x, -1)[0]) for x in places), *terms)
-        return {k: np.full(shape, r) for k, r in zip(names, rates, strict=True)}
+        return {k: np.full(shape, r) for k, r in zip(RATE_NAMES, rates, strict=True)}
     if not one_instant or len(shape) != 1:
         rates = tracking_rates(*places, *terms)
-        return {k: _shaped(r, shape) for k, r in zip(names, rates, strict=True)}
-    out = {k: np.empty(shape) for k in names}
+        return {k: _shaped(r, shape) for k, r in zip(RATE_NAMES, rates, strict=True)}
+    out = {k: np.empty(shape) for k in RATE_NAMES}
     for i in range(0, shape[0], RATES_BLOCK):
         sl = slice(i, i + RATES_BLOCK)
         rates = tracking_rates(*(x[sl] for x in places), *terms)
-        for k, r in zip(names, rates, strict=True):
+        for k, r in zip(RATE_NAMES, rates, strict=True):
             out[k][sl] = r
     return out
 
