@@ -147,10 +147,13 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
     )
     sun = answer["instants"][0].get("sun") or {}
     print(f"Sun altitude {_num(sun.get('altitude_deg'), '{:.1f}')} deg")
-    print("Tracking rates (how fast azimuth and altitude change): arcsec per second.\n")
+    print(
+        "Tracking rates (how fast azimuth, altitude and, for an equatorial mount, hour angle "
+        "change): arcsec per second.\n"
+    )
     head = (
         f"{'star':9} {'azimuth_deg':>11} {'altitude_deg':>12} {'az_rate':>8} {'alt_rate':>8} "
-        f"{'airmass':>8} {'sun_sep_deg':>11}  flags"
+        f"{'ha_rate':>8} {'airmass':>8} {'sun_sep_deg':>11}  flags"
     )
     print(head)
     print("-" * len(head))
@@ -160,6 +163,7 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
             f"{res['id']:9} {_num(at.get('azimuth_deg')):>11} {_num(at.get('altitude_deg')):>12} "
             f"{_num(at.get('azimuth_rate_arcsec_s'), '{:.2f}'):>8} "
             f"{_num(at.get('altitude_rate_arcsec_s'), '{:.2f}'):>8} "
+            f"{_num(at.get('hour_angle_rate_arcsec_s'), '{:.3f}'):>8} "
             f"{_num(at.get('airmass')):>8} {_num(at.get('sun_separation_deg'), '{:.1f}'):>11}  "
             f"{', '.join(at.get('flags', []))}"
         )
