@@ -234,6 +234,7 @@ def test_rates_match_the_closed_forms_of_spherical_astronomy():
         da/dt = omega cos(phi) sin(A)
         dA/dt = omega (sin(phi) - cos(phi) cos(A) tan(a))
         dq/dt = -omega cos(phi) cos(A) / cos(a)   (q, the parallactic angle)
+        dH/dt = omega, d(delta)/dt = 0            (hour angle and declination)
     omega from the Earth rotation angle (IERS Conventions 2010, eq. 5.15), checked here
     against pyerfa era00 over a day. Tolerance 3e-5 arcsec/s of motion on the sky (what the
     closed forms leave out: aberration's change, up to 2.3e-5 arcsec/s)."""
@@ -258,6 +259,10 @@ def test_rates_match_the_closed_forms_of_spherical_astronomy():
         assert (np.abs(res.azimuth_rate_arcsec_s - az_rate) * sin_z).max() < 3e-5
         sin_p = np.cos(np.radians(res.observed_dec_deg))
         assert (np.abs(res.parallactic_angle_rate_arcsec_s - pa_rate) * sin_z * sin_p).max() < 3e-5
+        # The hour angle of a fixed direction grows at the Earth's rate; its declination
+        # stays (dH/dt = omega, d(delta)/dt = 0).
+        assert (np.abs(res.hour_angle_rate_arcsec_s - OMEGA) * sin_p).max() < 3e-5
+        assert np.abs(res.observed_dec_rate_arcsec_s).max() < 3e-5
 
 
 @pytest.mark.parametrize("refraction", [True, False])
