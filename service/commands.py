@@ -329,9 +329,9 @@ def _run(func):
             print(f"skydrift: bad command line: {exc}", file=sys.stderr)
             return 2
         except SkydriftError as exc:
-            options = _refuses_options(exc, args)
+            refused = _refuses_options(exc, args)
             exc.errors = _in_option_terms(exc.errors, args)
-            if options:
+            if refused:
                 said = "; ".join(f"{e.field}: {e.message}" for e in exc.errors)
                 print(f"skydrift: bad command line: {said}", file=sys.stderr)
                 return 2

@@ -2087,7 +2087,8 @@ def _observe_block(stars, dt, ins: _Instant, limits, detail, out, ws: _Scratch, 
 
 
 # ---------------------------------------------------------------------------------------------
-# Rates for tracking: how fast the observed azimuth, altitude and parallactic angle change
+# Rates for tracking: how fast the observed azimuth, altitude, parallactic angle, hour angle
+# and declination change
 # ---------------------------------------------------------------------------------------------
 
 #: Rate of the Earth rotation angle, rad per second of UT1: 2 pi x 1.00273781191135448 per
@@ -2158,7 +2159,8 @@ def tracking_rates(
     azimuth_deg, zenith_distance_deg, refraction_arcsec, axis, sphi, cphi, refa, refb,
     drift=(0.0, 0.0, 0.0),
 ):  # fmt: skip
-    """Rates of change of the observed azimuth, altitude and parallactic angle, arcsec/s.
+    """Rates of change of the observed azimuth, altitude, parallactic angle, hour angle and
+    declination, arcsec/s.
 
     Parameters
     ----------
