@@ -360,6 +360,21 @@ def test_margin_index_keeps_the_nearest_segment():
     assert np.all(res.other_side_index != res.index)
 
 
+def test_margin_index_packed_words_unpack_to_its_tables():
+    # Each entry's packed word (what a point reads) holds the same start, count, first
+    # candidate and constellation as the index's separate tables; each cell's word is its
+    # first entry's.
+    mi = C._margin_index()
+    w = mi.entry_word
+    np.testing.assert_array_equal(w & 0xFFFFFFFF, mi.start)
+    np.testing.assert_array_equal((w >> C._WORD_SEG_SHIFT) & 0xFFFF, mi.flat[mi.start])
+    np.testing.assert_array_equal((w >> C._WORD_COUNT_SHIFT) & 0xFF, mi.count)
+    np.testing.assert_array_equal(w >> C._WORD_KEY_SHIFT, mi.key_x[:-1])
+    np.testing.assert_array_equal(mi.cell_word, w[mi.cell_first])
+    with pytest.raises(RuntimeError, match="packed word"):
+        C._pack_entries(mi.start[:1], np.array([256]), mi.flat, mi.key_x[:1])
+
+
 def test_other_side_is_the_neighbour():
     # Points 0.5 arcsec north and south of a constant-Dec boundary: each names the other.
     segs = C._segments()
