@@ -5,7 +5,7 @@
    positions (the naive route: a SkyCoord and one call).
 2. The cost of the boundary distance: lookup with margins against lookup alone.
 3. For scale: crossings of 1,000 moving stars over 20,000 years, and all 88 outlines in
-   ICRS as GeoJSON.
+   ICRS as GeoJSON (the first call, which computes every edge's vertices, and again).
 
 Run: PYTHONPATH=. .venv/bin/python -m benchmarks.bench_constellations [N]
 """
@@ -72,9 +72,12 @@ def main(n: int = 1_000_000) -> dict:
         ra[:m], dec[:m], plx, pma, pmd, rv, 2016.0, -8000.0, 12000.0
     )
     t_cross = time.process_time() - t0
+    # The first call densifies every edge; later ones reuse them (_densified_edges).
+    core._densified_edges.cache_clear()
     t0 = time.process_time()
     core.outline_collection(frame="icrs")
     t_outline = time.process_time() - t0
+    t_outline_again = _best(lambda: core.outline_collection(frame="icrs"))
 
     out = {
         "positions": n,
@@ -89,6 +92,7 @@ def main(n: int = 1_000_000) -> dict:
         "crossings_1000_stars_20000_yr_s": t_cross,
         "crossings_found": int(crossings.count.sum()),
         "outlines_88_icrs_s": t_outline,
+        "outlines_88_icrs_again_s": t_outline_again,
     }
     print("CPU seconds of this process (best of 5; astropy best of 2)")
     print(f"positions                          {n:,}")
@@ -102,7 +106,7 @@ def main(n: int = 1_000_000) -> dict:
     print(f"time margins add / lookup          {added:.2f}x   (target <= 3x)")
     print(f"disagreements with astropy         {differ} (all near boundaries; see README)")
     print(f"crossings, 1000 stars, 20,000 yr   {t_cross:.2f} s ({out['crossings_found']} found)")
-    print(f"all 88 outlines (ICRS GeoJSON)     {t_outline:.2f} s")
+    print(f"all 88 outlines (ICRS GeoJSON)     {t_outline:.2f} s, again {t_outline_again:.3f} s")
     return out
 
 

@@ -2484,6 +2484,23 @@ def _default_equinox(frame, equinox):
     return None
 
 
+#: Sets of outline settings whose densified edges are kept (about 1 MB each for all 88).
+_DENSIFIED_SETTINGS_KEPT = 8
+
+
+@functools.lru_cache(maxsize=_DENSIFIED_SETTINGS_KEPT)
+def _densified_edges(frame, equinox, reduction, tolerance_arcsec) -> dict:
+    """Edge id -> (t, lon_deg, lat_deg) of every edge densified so far with these settings
+    (filled by :func:`_outline_polygons`; ``equinox`` as :func:`_default_equinox` gives it).
+
+    An edge's vertices depend only on the edge and the settings (Note 2 of
+    :func:`outline`), so each is computed once per settings and shared by every outline,
+    chart and request after it; the settings least recently used are dropped beyond
+    _DENSIFIED_SETTINGS_KEPT.
+    """
+    return {}
+
+
 def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
     """GeoJSON polygon coordinate lists (list of rings, each list of [lon, lat]) per index."""
     if not MIN_OUTLINE_TOLERANCE_ARCSEC <= tolerance_arcsec <= MAX_OUTLINE_TOLERANCE_ARCSEC:
@@ -2505,7 +2522,13 @@ def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
 
     rings = {x: _rings(x) for x in indices}
     edge_ids = np.unique([e for x in indices for ring in rings[x] for e, _f in ring])
-    dense = _densify(edge_ids, project, tolerance_arcsec)
+    dense = _densified_edges(frame, _default_equinox(frame, equinox), reduction, tolerance_arcsec)
+    missing = [e for e in edge_ids.tolist() if e not in dense]
+    if missing:
+        for e, arrays in _densify(np.array(missing), project, tolerance_arcsec).items():
+            for a in arrays:
+                a.setflags(write=False)
+            dense[e] = arrays
     out = {}
     for x in indices:
         polys = []

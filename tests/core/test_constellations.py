@@ -892,6 +892,26 @@ def test_outline_of_one_constellation():
         C.outline("Xyz")
 
 
+@pytest.mark.parametrize("frame, equinox", [("icrs", None), ("fk5", 2031.5), ("fk4", 1900.0)])
+def test_outlines_the_same_whatever_was_drawn_before(frame, equinox):
+    # Densified edges are kept per settings and shared: outlines drawn after others (whose
+    # edges were then computed in other batches) equal those of a process that drew
+    # nothing before, exactly; and the kept edges cannot be changed through an answer.
+    def collection():
+        return C.outline_collection(frame=frame, equinox=equinox, tolerance_arcsec=0.2)
+
+    C._densified_edges.cache_clear()
+    cold = collection()
+    C._densified_edges.cache_clear()
+    for abbreviation in ("Ori", "Ser", "UMi", "Oct"):  # some edges first, in small batches
+        C.outline(abbreviation, frame=frame, equinox=equinox, tolerance_arcsec=0.2)
+    assert collection() == cold
+    assert collection() == cold  # every edge kept
+    kept = C._densified_edges(frame, C._default_equinox(frame, equinox), "fk4", 0.2)
+    assert kept and all(not a.flags.writeable for arrays in kept.values() for a in arrays)
+    assert C._densified_edges.cache_info().maxsize == C._DENSIFIED_SETTINGS_KEPT
+
+
 def test_outline_cut_at_the_antimeridian():
     # Virgo straddles RA 12h (longitude +-180): RFC 7946 section 3.1.9 cuts it in two, each
     # piece meeting the cut line exactly and together covering Virgo's area.
