@@ -393,6 +393,13 @@ class RowCheck:
     find: Callable[[StarTable, np.ndarray], Iterable[tuple[np.ndarray, str, str]]]
 
 
+#: Every column name that some star table of the service takes (filled as the tables are
+#: made, when the blueprints are imported). A column one table does not take but another
+#: does (the demo catalogue's standard errors sent for a constellation lookup) is no
+#: misspelling, and its message says so instead of naming a look-alike.
+SERVICE_COLUMN_NAMES: set[str] = set()
+
+
 class StarTableField(ma.fields.Field):
     """Marshmallow field for a table of stars (records or columns), validated with numpy.
 
@@ -416,6 +423,7 @@ class StarTableField(ma.fields.Field):
         self.specs = [ColumnSpec.from_field(n, f) for n, f in schema.fields.items()]
         self.names = {s.name for s in self.specs}
         self.numeric_names = frozenset(s.name for s in self.specs if s.kind == "number")
+        SERVICE_COLUMN_NAMES.update(self.names)
 
     def _max_rows(self) -> int | None:
         try:
@@ -628,15 +636,21 @@ class StarTableField(ma.fields.Field):
         return table
 
     def _unknown_text(self, name, listed: bool) -> str:
-        """The message of an unknown column: the name it likely stands for, or, for a name
-        like no accepted one (a catalogue's magnitudes), how to leave it unread; and with
+        """The message of an unknown column: that other endpoints take it (a name of
+        SERVICE_COLUMN_NAMES), the name it likely stands for, or, for a name like no
+        accepted one (a catalogue's magnitudes), how to leave it unread; and with
         ``listed`` (the first unknown column of a table: a catalogue file may bring a
         hundred) every accepted name. A likely misspelling gets no word on leaving it
         unread: a misspelt parallax left out would only move the error further on."""
         names = [s.name for s in self.specs]
         listing = "accepted fields: " + ", ".join(names) if listed else None
+        unread = f" (to leave it unread, list it in {IGNORED_COLUMNS})"
+        if name in SERVICE_COLUMN_NAMES:  # spelt right, for another endpoint
+            text = "unknown field here, though other endpoints take it"
+            text += unread if self._offers_ignoring() else ""
+            return f"{text}; {listing}" if listing else text
         if closest_name(name, names) is None and self._offers_ignoring():
-            text = f"unknown field (to leave it unread, list it in {IGNORED_COLUMNS})"
+            text = "unknown field" + unread
             return f"{text}; {listing}" if listing else text
         return unknown_name_text(name, names, listing)
 

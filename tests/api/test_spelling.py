@@ -197,3 +197,26 @@ def test_many_unknown_columns_give_a_small_answer(client):
     assert sum("accepted fields" in m for m in got.values()) == 1
     assert got["stars.(more)"] == "100 further invalid values not listed"
     assert len(r.get_data()) < 16_000
+
+
+def test_a_column_other_endpoints_take_is_said_to_be_one(client):
+    # The demo catalogue's standard errors and correlations are spelt right, for the
+    # propagation and velocity tables; sent for a constellation lookup or an observed
+    # place they are refused as columns other endpoints take, not as likely misspellings of
+    # a look-alike ("parallax_error_mas" is near "parallax_mas": renaming it would put the
+    # errors in the parallax's place).
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "parallax_error_mas": 0.1, "vmag": 5.0}
+    star |= {"correlation_ra_dec": 0.2, "paralax_mas": 3.0}
+    got = messages(client.post("/v1/constellations/lookup", json={"stars": [star]}))
+    here = "unknown field here, though other endpoints take it"
+    unread = " (to leave it unread, list it in ignored_columns)"
+    # (the first unknown column also lists the accepted fields)
+    assert got["stars[0].parallax_error_mas"].startswith(here + unread)
+    assert got["stars[0].correlation_ra_dec"].startswith(here + unread)
+    # a name no table takes, and a misspelling, are told as before
+    assert got["stars[0].vmag"].startswith("unknown field" + unread)
+    assert got["stars[0].paralax_mas"].startswith('unknown field (did you mean "parallax_mas"?)')
+    # the same names are accepted where they are taken
+    body = {"stars": [STAR | {"parallax_error_mas": 0.1, "correlation_ra_dec": 0.2}]}
+    body |= {"catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"]}
+    assert client.post("/v1/propagation", json=body).status_code == 200

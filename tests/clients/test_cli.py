@@ -126,7 +126,13 @@ def test_constellations_local_and_remote_identical(live_service):
     args = ["constellations", CATALOGUE, "--epoch", "J2026.0", "--margins"]
     strict = skydrift(*args, check=False)
     assert strict.returncode == 1  # the demo CSV has error columns this command does not take
-    assert "line 1: ra_error_mas: unknown field" in strict.stderr.decode()
+    said = strict.stderr.decode()
+    assert "line 1: ra_error_mas: unknown field" in said
+    # spelt right for the propagation: said so, with no look-alike offered in its place
+    assert (
+        "line 1: parallax_error_mas: unknown field here, though other endpoints take it (" in said
+    )
+    assert "did you mean" not in said
     args.append("--drop-unknown-columns")
     local = skydrift(*args)
     assert b"ra_error_mas" in local.stderr  # the columns left out are named
