@@ -2484,7 +2484,8 @@ def _default_equinox(frame, equinox):
     return None
 
 
-#: Sets of outline settings whose densified edges are kept (about 1 MB each for all 88).
+#: Sets of outline settings whose densified edges are kept (for all 88: 0.7 MB at the
+#: default tolerance, 2.5 MB at the finest, 0.001 arcsec).
 _DENSIFIED_SETTINGS_KEPT = 8
 
 
