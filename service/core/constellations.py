@@ -779,9 +779,7 @@ class _MarginIndex:
     cell_first: np.ndarray  # first entry of each coarse cell
     key_x: np.ndarray  # constellation of each entry (entries sorted by cell, then X)
     max_present: int  # most constellations present in one coarse cell
-    start: np.ndarray  # candidate list of each entry in ``flat``
-    count: np.ndarray
-    flat: np.ndarray  # candidate segment indices
+    flat: np.ndarray  # candidate segment indices, each entry's list in turn
     n_ra: int
     n_dec: int
     entry_word: np.ndarray  # each entry packed in one int64 (_pack_entries)
@@ -928,15 +926,11 @@ def _margin_index() -> _MarginIndex:
     cell_first = np.searchsorted(cell_id, np.arange(n_dec * n_ra), side="left").astype(np.int32)
     max_present = int(np.max(np.bincount(cell_id)))
     key_x = np.concatenate([cx, [-1]]).astype(np.int16)  # sentinel after the last entry
-    start = start.astype(np.int32)
-    count = count.astype(np.int16)
     entry_word = _pack_entries(start, count, flat, key_x[:-1])
     cell_word = entry_word[cell_first]
-    for a in (cell_first, key_x, start, count, flat, entry_word, cell_word):
+    for a in (cell_first, key_x, flat, entry_word, cell_word):
         a.setflags(write=False)
-    return _MarginIndex(
-        cell_first, key_x, max_present, start, count, flat, n_ra, n_dec, entry_word, cell_word
-    )
+    return _MarginIndex(cell_first, key_x, max_present, flat, n_ra, n_dec, entry_word, cell_word)
 
 
 @functools.cache
@@ -1106,12 +1100,13 @@ def _margins_block(xyz, ra_h, index):
        nearest caches, so their number decides much of the cost: a point's index entry
        (its constellation, number of candidates, first candidate and where its list
        starts) is one packed int64 (:func:`_pack_entries`), read for most points straight
-       from its cell (``cell_word``), and every read is ``ndarray.take`` with
-       pointer-sized indices (numpy's ``a[i]`` with int32 indices took 2.5x as long as
-       ``a.take(i)`` with intp ones here). For 1,000,000 random positions
-       (``benchmarks.bench_constellations``, two runs of each code, alternating) this took
-       the margins from 0.166 and 0.150 s to 0.105 and 0.103 s, 3.2x and 3.1x the lookup's
-       time to 2.05x and 2.07x, with the same answers bit for bit.
+       from its cell (``cell_word``), and the reads of the index and of the segments'
+       attributes are ``ndarray.take`` with pointer-sized indices (numpy's ``a[i]`` with
+       int32 indices took 2.5x as long as ``a.take(i)`` with intp ones here). For
+       1,000,000 random positions (``benchmarks.bench_constellations``, two runs of each
+       code, alternating) this took the margins from 0.166 and 0.150 s to 0.105 and 0.103
+       s, 3.2x and 3.1x the lookup's time to 2.05x and 2.07x, with the same answers bit
+       for bit.
     """
     mi = _margin_index()
     segs = _segments()

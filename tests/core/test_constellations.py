@@ -361,18 +361,21 @@ def test_margin_index_keeps_the_nearest_segment():
 
 
 def test_margin_index_packed_words_unpack_to_its_tables():
-    # Each entry's packed word (what a point reads) holds the same start, count, first
-    # candidate and constellation as the index's separate tables; each cell's word is its
-    # first entry's.
+    # Each entry's packed word (what a point reads) holds where its candidate list starts
+    # in ``flat``, its number of candidates, its first candidate and its constellation:
+    # the lists follow one another and cover ``flat`` exactly, the first candidate is the
+    # list's first, the constellation the entry's; each cell's word is its first entry's.
     mi = C._margin_index()
     w = mi.entry_word
-    np.testing.assert_array_equal(w & 0xFFFFFFFF, mi.start)
-    np.testing.assert_array_equal((w >> C._WORD_SEG_SHIFT) & 0xFFFF, mi.flat[mi.start])
-    np.testing.assert_array_equal((w >> C._WORD_COUNT_SHIFT) & 0xFF, mi.count)
+    start, count = w & 0xFFFFFFFF, (w >> C._WORD_COUNT_SHIFT) & 0xFF
+    assert start[0] == 0 and np.all(count >= 1)
+    np.testing.assert_array_equal(start[1:], (start + count)[:-1])
+    assert start[-1] + count[-1] == mi.flat.size
+    np.testing.assert_array_equal((w >> C._WORD_SEG_SHIFT) & 0xFFFF, mi.flat[start])
     np.testing.assert_array_equal(w >> C._WORD_KEY_SHIFT, mi.key_x[:-1])
     np.testing.assert_array_equal(mi.cell_word, w[mi.cell_first])
     with pytest.raises(RuntimeError, match="packed word"):
-        C._pack_entries(mi.start[:1], np.array([256]), mi.flat, mi.key_x[:1])
+        C._pack_entries(start[:1], np.array([256]), mi.flat, mi.key_x[:1])
 
 
 def test_other_side_is_the_neighbour():
