@@ -806,17 +806,19 @@ def _arrow_outlines(p0, p1, headed, shaft_px, head_length_px, head_width_px):
     """Outlines of straight arrows from ``p0`` to ``p1`` (display coordinates, (M, 2)):
     (M, 8, 2) vertices, the first repeated last. A shaft ``shaft_px`` wide; where
     ``headed``, a head ``head_length_px`` long and ``head_width_px`` wide with its tip at
-    ``p1``. The head keeps its size on an arrow shorter than it, as matplotlib's arrow heads
-    do: it then reaches back past ``p0``, and for a slow star its base may show behind the
-    star's marker."""
+    ``p1``. On an arrow shorter than its head the head shrinks to the arrow's length,
+    keeping its proportions (never narrower than the shaft): it then starts at ``p0`` and
+    stays under a slow star's marker, where a head of full size would reach back past the
+    star and show behind it."""
     d = p1 - p0
     length = np.hypot(d[:, 0], d[:, 1])
     safe = np.where(length > 0, length, 1.0)
     u = np.where((length > 0)[:, None], d / safe[:, None], [1.0, 0.0])
     n = np.stack([-u[:, 1], u[:, 0]], axis=1)
-    hl = np.where(headed, head_length_px, 0.0)[:, None]
-    hw = np.where(headed, 0.5 * head_width_px, 0.5 * shaft_px)[:, None]
     sw = 0.5 * shaft_px
+    head = np.where(headed, np.minimum(head_length_px, length), 0.0)
+    hl = head[:, None]
+    hw = np.where(headed, np.maximum(0.5 * head_width_px * head / head_length_px, sw), sw)[:, None]
     base = p1 - u * hl
     start = np.where((length[:, None] > hl), p0, base)  # no shaft behind a long head
     verts = [start + n * sw, base + n * sw, base + n * hw, p1, base - n * hw, base - n * sw]

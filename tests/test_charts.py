@@ -186,17 +186,21 @@ def test_field_chart(demo_catalogue):
 
 def test_arrow_outlines_by_hand():
     # Expected vertices worked by hand: an arrow along +x from (0, 0) to (10, 0), shaft 1
-    # wide, head 3 long and 4 wide; the same turned a quarter (along +y); a head longer
-    # than its arrow keeps its size and reaches back past the tail (no shaft); no head.
-    p0 = np.array([[0.0, 0.0], [0.0, 0.0], [0.0, 0.0], [0.0, 0.0]])
-    p1 = np.array([[10.0, 0.0], [0.0, 10.0], [2.0, 0.0], [10.0, 0.0]])
-    headed = np.array([True, True, True, False])
+    # wide, head 3 long and 4 wide; the same turned a quarter (along +y); an arrow 2 long,
+    # shorter than its head: the head shrinks to 2 long and 4 * 2/3 wide and starts at the
+    # tail (no shaft); one 0.3 long: its head 0.3 long, as wide as the shaft (0.4 would be
+    # narrower); no head.
+    p0 = np.zeros((5, 2))
+    p1 = np.array([[10.0, 0.0], [0.0, 10.0], [2.0, 0.0], [0.3, 0.0], [10.0, 0.0]])
+    headed = np.array([True, True, True, True, False])
     got = charts._arrow_outlines(p0, p1, headed, 1.0, 3.0, 4.0)
     along_x = [(0, 0.5), (7, 0.5), (7, 2), (10, 0), (7, -2), (7, -0.5), (0, -0.5), (0, 0.5)]
     along_y = [(-0.5, 0), (-0.5, 7), (-2, 7), (0, 10), (2, 7), (0.5, 7), (0.5, 0), (-0.5, 0)]
-    short = [(-1, 0.5), (-1, 0.5), (-1, 2), (2, 0), (-1, -2), (-1, -0.5), (-1, -0.5), (-1, 0.5)]
+    w = 4.0 / 3.0
+    short = [(0, 0.5), (0, 0.5), (0, w), (2, 0), (0, -w), (0, -0.5), (0, -0.5), (0, 0.5)]
+    tiny = [(0, 0.5), (0, 0.5), (0, 0.5), (0.3, 0), (0, -0.5), (0, -0.5), (0, -0.5), (0, 0.5)]
     bare = [(0, 0.5), (10, 0.5), (10, 0.5), (10, 0), (10, -0.5), (10, -0.5), (0, -0.5), (0, 0.5)]
-    for k, want in enumerate([along_x, along_y, short, bare]):
+    for k, want in enumerate([along_x, along_y, short, tiny, bare]):
         np.testing.assert_allclose(got[k], want, atol=1e-12, err_msg=f"arrow {k}")
 
 
