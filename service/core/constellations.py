@@ -2542,6 +2542,13 @@ def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
     return out
 
 
+def warm_up_outlines() -> None:
+    """Compute and keep the vertices of every boundary edge for the default outline
+    settings (ICRS, FK4 reduction, DEFAULT_OUTLINE_TOLERANCE_ARCSEC; about 0.2 s and 0.7 MB),
+    which web applications and charts ask for first (see :func:`_densified_edges`)."""
+    outline_collection()
+
+
 def outline_collection(
     *,
     frame: str = "icrs",

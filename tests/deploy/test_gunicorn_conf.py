@@ -205,6 +205,37 @@ def test_bad_application_setting_under_gunicorn_is_one_line(tmp_path):
     ]
 
 
+def test_served_process_keeps_the_default_outlines_from_the_start(tmp_path):
+    import os
+    import subprocess
+    import sys
+
+    # What gunicorn's master imports (preload_app): afterwards every boundary edge of the
+    # default outline settings is kept, and the default outlines need no new edge; the
+    # command line's local mode, which builds the application alone, keeps none.
+    code = (
+        "import sys\n"
+        "from service.core import constellations as C\n"
+        "if sys.argv[1] == 'served':\n"
+        "    import service.wsgi\n"
+        "else:\n"
+        "    from service.api import create_app; create_app()\n"
+        "kept = C._densified_edges('icrs', None, 'fk4', C.DEFAULT_OUTLINE_TOLERANCE_ARCSEC)\n"
+        "print(len(kept), C._edge_table()[0].size)\n"
+    )
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    counts = {}
+    for mode in ("served", "local"):
+        out = subprocess.run(
+            [sys.executable, "-c", code, mode], env=env, capture_output=True, text=True,
+            cwd=tmp_path, check=True,
+        )  # fmt: skip
+        counts[mode] = [int(x) for x in out.stdout.split()]
+    kept, edges = counts["served"]
+    assert kept == edges > 5000
+    assert counts["local"][0] == 0
+
+
 def test_post_fork_lowers_the_worker_priority(load):
     import os
     import subprocess
