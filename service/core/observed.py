@@ -2189,7 +2189,8 @@ def tracking_rates(
         Arcsec per second of time, of the observed hour angle and declination (the place
         an equatorial mount points at, refraction included, as SOFA atioq gives them); the
         hour angle's rate is that of the coordinate (times the cosine of the declination
-        for the motion across the sky). Not finite at the pole of the hour angle.
+        for the motion across the sky). Not finite at the pole of the hour angle, nor at
+        the exact zenith, where they are reckoned through the azimuth's rate.
 
     Notes
     -----
