@@ -2497,8 +2497,9 @@ def _densified_edges(frame, equinox, reduction, tolerance_arcsec) -> dict:
     return {}
 
 
-def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
-    """GeoJSON polygon coordinate lists (list of rings, each list of [lon, lat]) per index."""
+def _edges_of(indices, frame, equinox, reduction, tolerance_arcsec) -> tuple[dict, dict]:
+    """The rings of the constellations ``indices`` and the kept edges with these settings,
+    every edge of those rings computed (:func:`_densified_edges`)."""
     if not MIN_OUTLINE_TOLERANCE_ARCSEC <= tolerance_arcsec <= MAX_OUTLINE_TOLERANCE_ARCSEC:
         # Below the minimum the arcs are cut ever finer (at 0, until memory runs out).
         raise ValueError(
@@ -2525,6 +2526,12 @@ def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
             for a in arrays:
                 a.setflags(write=False)
             dense[e] = arrays
+    return rings, dense
+
+
+def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
+    """GeoJSON polygon coordinate lists (list of rings, each list of [lon, lat]) per index."""
+    rings, dense = _edges_of(indices, frame, equinox, reduction, tolerance_arcsec)
     out = {}
     for x in indices:
         polys = []
@@ -2544,9 +2551,10 @@ def _outline_polygons(indices, frame, equinox, reduction, tolerance_arcsec):
 
 def warm_up_outlines() -> None:
     """Compute and keep the vertices of every boundary edge for the default outline
-    settings (ICRS, FK4 reduction, DEFAULT_OUTLINE_TOLERANCE_ARCSEC; about 0.2 s and 0.7 MB),
+    settings (ICRS, FK4 reduction, DEFAULT_OUTLINE_TOLERANCE_ARCSEC; about 0.1 s and 0.7 MB),
     which web applications and charts ask for first (see :func:`_densified_edges`)."""
-    outline_collection()
+    every = range(len(boundary_table().abbreviations))
+    _edges_of(every, "icrs", None, "fk4", DEFAULT_OUTLINE_TOLERANCE_ARCSEC)
 
 
 def outline_collection(
