@@ -35,7 +35,7 @@ from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # no
 
 # Bounds shared with the batch jobs (re-exported for the endpoint schemas).
 from .errors import MORE_FIELD, WholePath, further
-from .spelling import closest_name, unknown_name_text
+from .spelling import closest_name
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
 #: where the record schema gives none (or only one side): no quantity the service takes
@@ -603,7 +603,7 @@ class StarTableField(ma.fields.Field):
         # Columns an unknown name given probably stands for ("ra" for "ra_deg"), absent:
         # its error says so, a "required" of the same column would only repeat it, and no
         # check of several values reads them (the client meant to give them).
-        meant = {closest_name(name, self.names) for name in given - self.names} - {None}
+        meant = {self._likely_column(name) for name in given - self.names} & self.names
         lost = meant - given  # columns refused as a whole: absent, meant or not numbers
         given = given & self.names
         for spec in self.specs:
@@ -635,24 +635,38 @@ class StarTableField(ma.fields.Field):
         errors.raise_if_any()
         return table
 
+    def _likely_column(self, name: str) -> str | None:
+        """The column of the service ``name`` most likely stands for (closest_name among
+        the columns of every table, SERVICE_COLUMN_NAMES), or None. A name of one letter is
+        matched among this table's columns only: a "V" column of a catalogue is more often
+        a magnitude than the velocity component that other endpoints take."""
+        pool = self.names if len(name) < 2 else self.names | SERVICE_COLUMN_NAMES
+        return closest_name(name, pool)
+
     def _unknown_text(self, name, listed: bool) -> str:
         """The message of an unknown column: that other endpoints take it (a name of
-        SERVICE_COLUMN_NAMES), the name it likely stands for, or, for a name like no
-        accepted one (a catalogue's magnitudes), how to leave it unread; and with
-        ``listed`` (the first unknown column of a table: a catalogue file may bring a
-        hundred) every accepted name. A likely misspelling gets no word on leaving it
-        unread: a misspelt parallax left out would only move the error further on."""
+        SERVICE_COLUMN_NAMES) or the name of theirs it likely stands for
+        ("Parallax_Error_Mas" sent for a constellation lookup), the name of this table it
+        likely stands for, or, for a name like no accepted one (a catalogue's magnitudes),
+        how to leave it unread; and with ``listed`` (the first unknown column of a table: a
+        catalogue file may bring a hundred) every accepted name. A likely misspelling of
+        this table's columns gets no word on leaving it unread: a misspelt parallax left out
+        would only move the error further on."""
         names = [s.name for s in self.specs]
         listing = "accepted fields: " + ", ".join(names) if listed else None
         unread = f" (to leave it unread, list it in {IGNORED_COLUMNS})"
-        if name in SERVICE_COLUMN_NAMES:  # spelt right, for another endpoint
-            text = "unknown field here, though other endpoints take it"
-            text += unread if self._offers_ignoring() else ""
-            return f"{text}; {listing}" if listing else text
-        if closest_name(name, names) is None and self._offers_ignoring():
+        unread = unread if self._offers_ignoring() else ""
+        likely = None if name in SERVICE_COLUMN_NAMES else self._likely_column(name)
+        if likely is None and name in SERVICE_COLUMN_NAMES:  # spelt right, for another endpoint
+            text = "unknown field here, though other endpoints take it" + unread
+        elif likely is not None and likely not in self.names:
+            text = f'unknown field here; it looks like "{likely}", which other endpoints take'
+            text += unread
+        elif likely is not None:
+            text = f'unknown field (did you mean "{likely}"?)'
+        else:
             text = "unknown field" + unread
-            return f"{text}; {listing}" if listing else text
-        return unknown_name_text(name, names, listing)
+        return f"{text}; {listing}" if listing else text
 
     def _offers_ignoring(self) -> bool:
         return isinstance(self.parent, ma.Schema) and IGNORED_COLUMNS in self.parent.fields

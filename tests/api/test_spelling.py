@@ -220,3 +220,42 @@ def test_a_column_other_endpoints_take_is_said_to_be_one(client):
     body = {"stars": [STAR | {"parallax_error_mas": 0.1, "correlation_ra_dec": 0.2}]}
     body |= {"catalogue_epoch": "J2016.0", "target_epochs": ["J2020.0"]}
     assert client.post("/v1/propagation", json=body).status_code == 200
+
+
+def test_a_column_other_endpoints_take_is_recognised_misspelt_or_in_capitals(client):
+    # Matched among the columns of every endpoint, a name in other letter case or with a
+    # typing error is told the other endpoints' column it stands for, not a look-alike of
+    # this endpoint's ("Parallax_Error_Mas" was answered: did you mean "parallax_mas"?).
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "Parallax_Error_Mas": 0.1, "pmra_error": 0.2}
+    star |= {"ra_dec_corr": 0.1, "paralax_mas": 3.0, "V": 5.1}
+    got = messages(client.post("/v1/constellations/lookup", json={"stars": [star]}))
+    other = 'unknown field here; it looks like "{}", which other endpoints take'
+    unread = " (to leave it unread, list it in ignored_columns)"
+    expected = {
+        "Parallax_Error_Mas": "parallax_error_mas",
+        "pmra_error": "pm_ra_cosdec_error_mas_yr",
+        "ra_dec_corr": "correlation_ra_dec",
+    }
+    for given, taken in expected.items():
+        assert got[f"stars[0].{given}"].startswith(other.format(taken) + unread)
+    # this endpoint's own columns are still offered for their misspellings
+    assert got["stars[0].paralax_mas"].startswith('unknown field (did you mean "parallax_mas"?)')
+    # one letter is too little to tell: "V" in a catalogue is usually a magnitude, not the
+    # velocity component the kinematics endpoints take as v_km_s
+    assert got["stars[0].V"].startswith("unknown field" + unread)
+    # where "V" is one of the table's own look-alikes, the hint stays
+    body = {"stars": [{"ra_deg": 1.0, "dec_deg": 2.0, "parallax_mas": 10.0, "U": 1, "V": 2}]}
+    got = messages(client.post("/v1/velocity/observables", json=body))
+    assert got["stars[0].V"] == 'unknown field (did you mean "v_km_s"?)'
+
+
+def test_a_misspelt_error_column_is_not_offered_as_the_value_it_is_the_error_of(client):
+    # "distance_err" is the other endpoints' distance_error_pc: offering this table's
+    # distance_pc (as before) would invite the client to send the error as the distance.
+    body = {"stars": [{"ra_deg": 1.0, "dec_deg": 2.0, "distance_err": 3.0}]}
+    body["stars"][0] |= {"u_km_s": 1.0, "v_km_s": 2.0, "w_km_s": 3.0}
+    got = messages(client.post("/v1/velocity/observables", json=body))
+    assert got["stars[0].distance_err"].startswith(
+        'unknown field here; it looks like "distance_error_pc", which other endpoints take'
+    )
+    assert "did you mean" not in got["stars[0].distance_err"]
