@@ -106,11 +106,10 @@ RATE_FIELDS = {
     "hour_angle_rate_arcsec_s": "arcsec/s, rate of change of the observed hour angle, per "
     "second of time, for an equatorial mount's tracking: of the coordinate (times "
     "cos(observed_dec) for the motion across the sky), about 15.04 (the Earth's rotation) "
-    "but for the refraction's change low in the sky; null at the celestial pole and at the "
-    "zenith itself",
+    "but for the refraction's change low in the sky; null at the celestial pole",
     "observed_dec_rate_arcsec_s": "arcsec/s, rate of change of the observed declination, "
     "per second of time: near zero but for the refraction's change (and the aberration's); "
-    "null at the celestial pole and at the zenith itself",
+    "null at the celestial pole",
 }
 
 #: Units of the numbers each instant has besides its epoch (instants[].utc_jd,

@@ -2189,8 +2189,8 @@ def tracking_rates(
         Arcsec per second of time, of the observed hour angle and declination (the place
         an equatorial mount points at, refraction included, as SOFA atioq gives them); the
         hour angle's rate is that of the coordinate (times the cosine of the declination
-        for the motion across the sky). Not finite at the pole of the hour angle, nor at
-        the exact zenith, where they are reckoned through the azimuth's rate.
+        for the motion across the sky). Not finite at the pole of the hour angle; finite
+        at the exact zenith too, where the azimuth's rate is not.
 
     Notes
     -----
@@ -2224,15 +2224,26 @@ def tracking_rates(
             w * (pz * u[0] - px * u[2]) + gy - gu * u[1],
             w * (px * u[1] - py * u[0]) + gz - gu * u[2],
         )
-        az_rate = (ca * ud[1] + sa * ud[0]) / r0
-        zd_rate = -ud[2] / r0 * _observed_zd_slope(r0, z, refa, refb)
+        across = ca * ud[1] + sa * ud[0]  # rad/s along the almucantar
+        slope = _observed_zd_slope(r0, z, refa, refb)
+        az_rate = across / r0
+        zd_rate = -ud[2] / r0 * slope
         # The observed direction and its motion.
         so, co = np.sin(zd_obs), np.cos(zd_obs)
         o = (-so * ca, so * sa, co)
+        so_az_rate, od_zd_rate = so * az_rate, zd_rate
+        zenith = r0 == 0.0
+        if np.any(zenith):
+            # Exactly at the zenith the azimuth and zenith distance have no rates, but the
+            # direction moves all the same: across the sky as everywhere, and by the
+            # refraction's slope (the limit of sin(zd_obs) / sin(zd0)) toward the azimuth
+            # the answer gives, whatever it is (the sum below is slope * ud, tangential).
+            so_az_rate = np.where(zenith, slope * across, so_az_rate)
+            od_zd_rate = np.where(zenith, slope * (sa * ud[1] - ca * ud[0]), od_zd_rate)
         od = (
-            so * sa * az_rate - co * ca * zd_rate,
-            so * ca * az_rate + co * sa * zd_rate,
-            -so * zd_rate,
+            so_az_rate * sa - co * ca * od_zd_rate,
+            so_az_rate * ca + co * sa * od_zd_rate,
+            -so * od_zd_rate,
         )
         # hd2pa of the observed direction, as the answers' parallactic angle:
         # q = atan2(n, d), n = -cos(phi) y, d = sin(phi) (v0^2 + y^2) - cos(phi) v2 v0.

@@ -308,21 +308,35 @@ def test_track_rates_equal_those_of_each_instant_alone():
             assert getattr(track, name)[k] == pytest.approx(getattr(one, name)[0], abs=1e-9)
 
 
-def test_rates_at_the_zenith_are_not_finite_and_none_unless_asked():
+def test_rates_at_the_zenith_and_none_unless_asked():
     site = O.make_site(38.4127, -7.6543, 1460.0)
     jd1, jd2 = erfa.dtf2d("UTC", 2026, 12, 4, 22, 0, 0.0)
     plain = O.observed_places(10.0, 20.0, 1.0, 0.0, 0.0, 0.0, 2016.0, jd1, jd2, site)
     assert plain.azimuth_rate_arcsec_s is None and plain.parallactic_angle_rate_arcsec_s is None
-    # The rates at the zenith, where azimuth and parallactic angle are not defined:
-    # tracking_rates on the zenith direction itself.
-    axis = O._rotation_axis_aet(0.0, 0.0, np.sin(0.7), np.cos(0.7))
-    rates = O.tracking_rates(0.0, 0.0, 0.0, axis, np.sin(0.7), np.cos(0.7), 0.0, 0.0)
-    assert not np.any(np.isfinite(rates))  # the hour angle's and declination's too (they
-    # are reckoned through the azimuth's), on a direction that is exactly the zenith
-    # A nanodegree from it, the hour angle and declination rates are finite and those of a
-    # direction that turns with the Earth (refraction off): omega and 0, to rounding.
+    # The rates at the zenith: tracking_rates on the zenith direction itself, at a latitude
+    # of 0.7 rad, with refraction off and on (refa, refb of a sea-level atmosphere, about
+    # 58 arcsec and -0.07 arcsec, from memory).
+    sphi, cphi = np.sin(0.7), np.cos(0.7)
+    axis = O._rotation_axis_aet(0.0, 0.0, sphi, cphi)
+    for refa, refb in ((0.0, 0.0), (2.8e-4, -3.3e-7)):
+        for az in (0.0, 77.0, 301.0):  # whatever azimuth the answer gives there
+            at = O.tracking_rates(az, 0.0, 0.0, axis, sphi, cphi, refa, refb)
+            # the azimuth, altitude and parallactic angle have no rate there
+            assert not np.any(np.isfinite(at[:3]))
+            # the hour angle and declination have: those a nanodegree away (its refraction
+            # as atioq's model gives it there, the zenith distance scaled by the slope),
+            # which are those of a direction that turns with the Earth (omega and 0) but for
+            # the refraction (offsets from the zenith, and their rates, scaled by 1 - refa)
+            slope = O._observed_zd_slope(0.0, 1.0, refa, refb)
+            refraction = 1e-9 * 3600.0 * (1.0 / slope - 1.0)
+            near = O.tracking_rates(az, 1e-9, refraction, axis, sphi, cphi, refa, refb)
+            assert at[3] == pytest.approx(near[3], abs=1e-9)
+            assert at[4] == pytest.approx(near[4], abs=1e-9)
+            assert at[3] == pytest.approx(OMEGA * (1.0 - refa), rel=1e-6) and abs(at[4]) < 1e-9
+    # Away from the zenith a nanodegree, all five rates are finite.
     for az in (0.0, 77.0, 301.0):
-        rates = O.tracking_rates(az, 1e-9, 0.0, axis, np.sin(0.7), np.cos(0.7), 0.0, 0.0)
+        rates = O.tracking_rates(az, 1e-9, 0.0, axis, sphi, cphi, 0.0, 0.0)
+        assert np.all(np.isfinite(rates))
         assert rates[3] == pytest.approx(OMEGA, abs=1e-9) and abs(rates[4]) < 1e-9
 
 
