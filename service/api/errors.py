@@ -123,6 +123,7 @@ def _worded(message: str) -> str:
 
 _LOCATIONS = ("json", "query", "form", "files", "headers", "view_args")
 _UNKNOWN = ["Unknown field."]
+_MISSING = ["Missing data for required field."]
 
 
 def with_likely_names(messages, schema):
@@ -132,7 +133,7 @@ def with_likely_names(messages, schema):
     if not isinstance(messages, dict) or not isinstance(schema, ma.Schema):
         return messages
     fields = schema.fields
-    out = {}
+    out, meant = {}, set()
     for key, value in messages.items():
         if key in _LOCATIONS and isinstance(value, dict):
             out[key] = with_likely_names(value, schema)
@@ -140,8 +141,14 @@ def with_likely_names(messages, schema):
             accepted = [f.data_key or name for name, f in fields.items() if not f.dump_only]
             likely = closest_name(key, accepted)
             out[key] = value if likely is None else [_unknown_field_text(likely)]
+            meant.add(likely)
         else:
             out[key] = _in_nested(fields.get(key), value)
+    # A required field an unknown name likely stands for ("from" for "from_frame") is not
+    # called missing as well: the name's own message says which it is, as in star tables.
+    for key in meant.intersection(out):
+        if out[key] == _MISSING:
+            del out[key]
     return out
 
 

@@ -25,7 +25,9 @@ WORD_ALIASES = {
 }
 
 #: Words of field names that give a unit (or, for cosdec, how a quantity is measured).
-UNIT_WORDS = frozenset({"deg", "mas", "yr", "km", "s", "m", "hpa", "c", "um", "pc", "cosdec"})
+UNIT_WORDS = frozenset(
+    {"deg", "mas", "arcsec", "yr", "km", "s", "m", "hpa", "c", "um", "pc", "px", "cosdec"}
+)
 
 #: Whole names that stand for another name of the same role.
 NAME_ALIASES = {"stop": ("end",), "end": ("stop",)}
@@ -60,8 +62,9 @@ def closest_name(given: str, accepted) -> str | None:
     catalogue short forms written as ours ("pmra" -> "pm_ra"), the shortest accepted name
     that holds the words of ``given`` (split at "_") as the starts of its own words, in
     order, and adds only units: "ra" -> "ra_deg", "pm_ra_mas_yr" -> "pm_ra_cosdec_mas_yr",
-    "ra_err" -> "ra_error_mas" (nothing for "pm" or "mas"). Otherwise the most similar name
-    by difflib, if similar enough (a typing error: "paralax_mas").
+    "ra_err" -> "ra_error_mas" (nothing for "pm" or "mas"); or else the only accepted name
+    whose first words are those of ``given``, whole ("from" -> "from_frame"). Otherwise the
+    most similar name by difflib, if similar enough (a typing error: "paralax_mas").
     """
     if not isinstance(given, str) or not given:
         return None
@@ -85,6 +88,12 @@ def closest_name(given: str, accepted) -> str | None:
     fits.sort()
     if fits:
         return names[fits[0][1]]
+    # The only name that begins with the given words, whole: "from" -> "from_frame",
+    # "monte_carlo" -> "monte_carlo_draws" (nothing for "target": target_epochs or
+    # target_range).
+    starts = [name for name in names if name.split("_")[: len(words)] == words]
+    if len(starts) == 1:
+        return names[starts[0]]
     close = difflib.get_close_matches(key, list(names), n=1, cutoff=SIMILARITY_CUTOFF)
     return names[close[0]] if close else None
 

@@ -72,6 +72,42 @@ def test_catalogue_column_names(given, likely):
 def test_two_alike_get_no_suggestion():
     assert closest_name("target_epoch", REQUEST_FIELDS) == "target_epochs"
     assert closest_name("epoch", REQUEST_FIELDS) is None  # catalogue_epoch or target_epochs?
+    assert closest_name("target", REQUEST_FIELDS) is None  # target_epochs or target_range?
+
+
+@pytest.mark.parametrize(
+    ("given", "accepted", "likely"),
+    [
+        # the only name that begins with the given words, whole
+        ("from", ["stars", "from_frame", "to_frame"], "from_frame"),
+        ("to", ["stars", "from_frame", "to_frame"], "to_frame"),
+        ("monte_carlo", ["monte_carlo_draws", "seed"], "monte_carlo_draws"),
+        ("sun", ["sun_avoidance_deg", "horizon_limit_deg"], "sun_avoidance_deg"),
+        ("fro", ["from_frame", "to_frame"], None),  # a part of a word is not enough
+        # units of the request fields: arcsec and px
+        ("near_boundary", ["near_boundary_arcsec", "epoch"], "near_boundary_arcsec"),
+        ("width", ["width_px", "title"], "width_px"),
+    ],
+)
+def test_the_only_name_that_begins_with_the_given_words(given, accepted, likely):
+    assert closest_name(given, accepted) == likely
+
+
+def test_a_required_field_an_unknown_name_stands_for_is_not_called_missing_too(client):
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
+    body = {"stars": [star], "catalogue_epoch": "B1950.0", "from": "fk4", "to": "icrs"}
+    got = messages(client.post("/v1/frames", json=body))
+    assert got == {  # (from_frame is required; to_frame is ICRS unless given)
+        "from": 'is not a field of this request (did you mean "from_frame"?)',
+        "to": 'is not a field of this request (did you mean "to_frame"?)',
+    }
+    # a required field no unknown name stands for is still called missing
+    body = {"stars": [star], "catalogue_epoch": "J2016.0", "instant": ["now"]}
+    got = messages(client.post("/v1/observed", json=body))
+    assert got == {
+        "instant": 'is not a field of this request (did you mean "instants"?)',
+        "site": "is required",
+    }
 
 
 @pytest.fixture(scope="module")
