@@ -71,12 +71,20 @@ blp = Blueprint(
 
 #: Place quantities per star and instant, with units.
 PLACE_FIELDS = {
-    "azimuth_deg": "deg, north = 0, east = 90, 0 to 360",
-    "altitude_deg": "deg, observed (refracted)",
-    "zenith_distance_deg": "deg, observed (refracted)",
-    "hour_angle_deg": "deg, observed, west positive, -180 to 180",
-    "observed_dec_deg": "deg, observed declination",
-    "observed_ra_cio_deg": "deg, observed right ascension referred to the CIO",
+    "azimuth_deg": "deg, observed (refracted), north = 0, east = 90, 0 to 360, in the "
+    "horizon of the site's geodetic vertical (the WGS84 ellipsoid's normal, polar motion "
+    "included)",
+    "altitude_deg": "deg, observed (refracted), above the horizon of the site's geodetic "
+    "vertical (a plumb line differs from it by the deflection of the vertical, which a "
+    "telescope's pointing model takes up)",
+    "zenith_distance_deg": "deg, observed (refracted): 90 minus altitude_deg",
+    "hour_angle_deg": "deg, observed (refraction and diurnal aberration included), west "
+    "positive, -180 to 180, from the site's meridian",
+    "observed_dec_deg": "deg, observed declination (refraction and diurnal aberration "
+    "included): with hour_angle_deg, the direction an equatorial mount points at (IAU SOFA "
+    "atioq)",
+    "observed_ra_cio_deg": "deg, observed right ascension referred to the CIO: the local "
+    "Earth rotation angle minus hour_angle_deg (IAU SOFA atioq)",
     "parallactic_angle_deg": "deg, position angle of the zenith at the target, from north "
     "(toward the celestial pole) through east, -180 to 180: positive west of the meridian, "
     "negative east (IAU SOFA hd2pa, of the observed hour angle and declination)",
@@ -84,11 +92,16 @@ PLACE_FIELDS = {
     "refraction_arcsec": "arcsec, unrefracted minus observed zenith distance",
     "sun_separation_deg": "deg, between the observed (refracted) places of the target and "
     "the Sun's centre, as their altitudes and azimuths give it (advisory)",
-    "astrometric_ra_deg": "deg, geocentric astrometric place (ICRS)",
-    "astrometric_dec_deg": "deg, geocentric astrometric place (ICRS)",
-    "apparent_ra_deg": "deg, geocentric apparent, true equator and equinox of date",
-    "apparent_dec_deg": "deg, geocentric apparent declination of date",
-    "apparent_ra_cio_deg": "deg, geocentric apparent RA referred to the CIO (CIRS)",
+    "astrometric_ra_deg": "deg, geocentric astrometric place (ICRS): the star moved to the "
+    "instant and seen from the Earth's centre (proper motion, parallax), without light "
+    "deflection or aberration",
+    "astrometric_dec_deg": "deg, geocentric astrometric place (ICRS), as astrometric_ra_deg",
+    "apparent_ra_deg": "deg, geocentric apparent place, true equator and equinox of date: "
+    "the astrometric place with the Sun's light deflection, annual aberration and "
+    "precession-nutation",
+    "apparent_dec_deg": "deg, geocentric apparent declination of date, as apparent_ra_deg",
+    "apparent_ra_cio_deg": "deg, geocentric apparent RA referred to the CIO (CIRS), as "
+    "apparent_ra_deg",
 }
 
 #: Rates for tracking, per star and instant, with units (only where the request asks for
