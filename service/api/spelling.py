@@ -29,8 +29,27 @@ UNIT_WORDS = frozenset(
     {"deg", "mas", "arcsec", "yr", "km", "s", "m", "hpa", "c", "um", "pc", "px", "cosdec"}
 )
 
-#: Whole names that stand for another name of the same role.
-NAME_ALIASES = {"stop": ("end",), "end": ("stop",)}
+#: Whole names that stand for another name of the same role (the first of those the request
+#: takes is offered): a span's ends, the instants or target epochs, the site, the air.
+_WHEN = ("instants", "target_epochs")
+NAME_ALIASES = {
+    "stop": ("end",),
+    "end": ("stop",),
+    "epochs": ("target_epochs", "instants"),
+    "times": _WHEN,
+    "time": _WHEN,
+    "dates": _WHEN,
+    "date": _WHEN,
+    "reference_epoch": ("catalogue_epoch",),
+    "ref_epoch": ("catalogue_epoch",),
+    "location": ("site",),
+    "observatory": ("site",),
+    "observer": ("site",),
+    "weather": ("atmosphere",),
+    "conditions": ("atmosphere",),
+    "rates": ("include_rates",),
+    "image_format": ("format",),
+}
 
 
 def _our_words(key: str) -> list[str]:

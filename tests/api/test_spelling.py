@@ -93,6 +93,33 @@ def test_the_only_name_that_begins_with_the_given_words(given, accepted, likely)
     assert closest_name(given, accepted) == likely
 
 
+OBSERVED_REQUEST = ["stars", "catalogue_epoch", "instants", "site", "atmosphere"]
+OBSERVED_REQUEST += ["include_rates", "frame"]
+
+
+@pytest.mark.parametrize(
+    ("given", "accepted", "likely"),
+    [
+        # other words for the same role
+        ("times", OBSERVED_REQUEST, "instants"),
+        ("date", OBSERVED_REQUEST, "instants"),
+        ("times", REQUEST_FIELDS, "target_epochs"),
+        ("epochs", REQUEST_FIELDS, "target_epochs"),
+        ("epochs", OBSERVED_REQUEST, "instants"),
+        ("reference_epoch", REQUEST_FIELDS, "catalogue_epoch"),
+        ("observatory", OBSERVED_REQUEST, "site"),
+        ("weather", OBSERVED_REQUEST, "atmosphere"),
+        ("rates", OBSERVED_REQUEST, "include_rates"),
+        ("image_format", ["stars", "format", "width_px"], "format"),
+        # none where the request takes no field of that role
+        ("observatory", REQUEST_FIELDS, None),
+        ("weather", STAR_FIELDS, None),
+    ],
+)
+def test_other_words_for_the_same_role(given, accepted, likely):
+    assert closest_name(given, accepted) == likely
+
+
 def test_a_required_field_an_unknown_name_stands_for_is_not_called_missing_too(client):
     star = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
     body = {"stars": [star], "catalogue_epoch": "B1950.0", "from": "fk4", "to": "icrs"}
