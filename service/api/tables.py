@@ -657,7 +657,7 @@ class StarTableField(ma.fields.Field):
         unread = f" (to leave it unread, list it in {IGNORED_COLUMNS})"
         unread = unread if self._offers_ignoring() else ""
         likely = None if name in SERVICE_COLUMN_NAMES else self._likely_column(name)
-        if likely is None and name in SERVICE_COLUMN_NAMES:  # spelt right, for another endpoint
+        if name in SERVICE_COLUMN_NAMES:  # spelt right, for another endpoint
             text = "unknown field here, though other endpoints take it" + unread
         elif likely is not None and likely not in self.names:
             text = f'unknown field here; it looks like "{likely}", which other endpoints take'
