@@ -233,6 +233,15 @@ class _Watchdog:
             with self.lock:
                 self.fired.discard(ident)
 
+    def answering(self) -> None:
+        """This thread's request is being answered with its time limit's 503: raise no more
+        in it. A raising while that answer is made (its after-request hooks, slow on a
+        starved machine) would turn it into a 500."""
+        with self.lock:
+            ident = threading.get_ident()
+            if ident in self.deadlines:
+                self.deadlines[ident] = math.inf
+
     def fired_here(self) -> bool:
         """Whether this thread's request ran past its deadline (until it is disarmed)."""
         with self.lock:
@@ -245,9 +254,10 @@ class _Watchdog:
             with self.lock:
                 for ident, deadline in list(self.deadlines.items()):
                     if now >= deadline:
-                        # Raised again every REFIRE_S until the request ends: Python prints
-                        # and drops an exception raised in a weakref callback or a __del__
-                        # (matplotlib's charts run many), and the request would run on.
+                        # Raised again every REFIRE_S until the request ends or its 503
+                        # is being made (answering): Python prints and drops an exception
+                        # raised in a weakref callback or a __del__ (matplotlib's charts
+                        # run many), and the request would run on.
                         self.deadlines[ident] = now + self.REFIRE_S
                         self.fired.add(ident)
                         _set_async_exc(ident, RequestTimeLimit)
@@ -260,6 +270,12 @@ def _set_async_exc(ident: int, exc_type) -> None:
 
 
 _watchdog = _Watchdog()
+
+
+def answering_time_limit() -> None:
+    """The request being served is answered with its time limit's 503 (the watchdog raises
+    RequestTimeLimit no more in it)."""
+    _watchdog.answering()
 
 
 def time_limit_passed() -> bool:

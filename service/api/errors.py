@@ -249,6 +249,11 @@ _TITLES = {413: "Content Too Large"}
 
 def handle_http_exception(error: HTTPException) -> Response:
     """Shape every HTTPException (including flask-smorest/webargs aborts) as problem+json."""
+    if error.code == 503:
+        from .access import RequestTimeLimit, answering_time_limit
+
+        if isinstance(error, RequestTimeLimit):
+            answering_time_limit()
     data = getattr(error, "data", None) or {}
     errors = None
     if "errors" in data:

@@ -541,6 +541,36 @@ def _app_with_slow_route(settings, seconds):
     return app.test_client()
 
 
+def test_a_slow_answer_past_the_time_limit_stays_the_time_limit_503(settings):
+    # The watchdog raises its exception again every second while a request runs on (one
+    # may be dropped). Once the time limit's 503 is being made it must raise no more: an
+    # answer whose after-request hooks take longer than that (a starved machine) was
+    # interrupted again and answered 500, its hooks run twice.
+    app = create_app({"SKYDRIFT_SETTINGS": dataclasses.replace(settings, request_timeout_s=0.2)})
+    hook_runs = {"started": 0, "finished": 0}
+
+    @app.get("/test-slow/<float:duration>")
+    def slow(duration):
+        end = time.monotonic() + duration
+        while time.monotonic() < end:
+            time.sleep(0.01)
+        return {"slept": duration}
+
+    @app.after_request
+    def slow_hook(resp):  # longer than the watchdog's REFIRE_S
+        hook_runs["started"] += 1
+        end = time.monotonic() + 1.3
+        while time.monotonic() < end:
+            time.sleep(0.01)
+        hook_runs["finished"] += 1
+        return resp
+
+    r = app.test_client().get("/test-slow/5.0")
+    assert_problem(r, 503)
+    assert "time limit" in r.json["detail"]
+    assert hook_runs == {"started": 1, "finished": 1}
+
+
 def test_request_time_limit(settings):
     c = _app_with_slow_route(settings, 0.2)
     started = time.monotonic()
