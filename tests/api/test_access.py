@@ -526,19 +526,31 @@ def test_batch_size_limit(client, settings):
 # --- request time limit --------------------------------------------------------------------
 
 
-def _app_with_slow_route(settings, seconds):
+def _wait(seconds):
+    """Wait in short sleeps, running Python code between them (where the time limit's
+    exception can arrive)."""
+    end = time.monotonic() + seconds
+    while time.monotonic() < end:
+        time.sleep(0.01)
+
+
+def _slow_app(settings, seconds):
+    """The application with a time limit of ``seconds`` and a route that takes as long as
+    asked (/test-slow/<seconds>)."""
     app = create_app(
         {"SKYDRIFT_SETTINGS": dataclasses.replace(settings, request_timeout_s=seconds)}
     )
 
     @app.get("/test-slow/<float:duration>")
     def slow(duration):
-        end = time.monotonic() + duration
-        while time.monotonic() < end:
-            time.sleep(0.01)
+        _wait(duration)
         return {"slept": duration}
 
-    return app.test_client()
+    return app
+
+
+def _app_with_slow_route(settings, seconds):
+    return _slow_app(settings, seconds).test_client()
 
 
 def test_a_slow_answer_past_the_time_limit_stays_the_time_limit_503(settings):
@@ -546,22 +558,13 @@ def test_a_slow_answer_past_the_time_limit_stays_the_time_limit_503(settings):
     # may be dropped). Once the time limit's 503 is being made it must raise no more: an
     # answer whose after-request hooks take longer than that (a starved machine) was
     # interrupted again and answered 500, its hooks run twice.
-    app = create_app({"SKYDRIFT_SETTINGS": dataclasses.replace(settings, request_timeout_s=0.2)})
+    app = _slow_app(settings, 0.2)
     hook_runs = {"started": 0, "finished": 0}
 
-    @app.get("/test-slow/<float:duration>")
-    def slow(duration):
-        end = time.monotonic() + duration
-        while time.monotonic() < end:
-            time.sleep(0.01)
-        return {"slept": duration}
-
     @app.after_request
-    def slow_hook(resp):  # longer than the watchdog's REFIRE_S
+    def slow_hook(resp):
         hook_runs["started"] += 1
-        end = time.monotonic() + 1.3
-        while time.monotonic() < end:
-            time.sleep(0.01)
+        _wait(access._Watchdog.REFIRE_S + 0.3)  # past the watchdog's next raising
         hook_runs["finished"] += 1
         return resp
 
