@@ -18,6 +18,7 @@ import marshmallow as ma
 from flask import Response, current_app, g
 from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntityTooLarge
 
+from ..core.epochs import EPOCH_FORMS
 from .jsonio import dumps
 from .spelling import closest_name
 
@@ -237,6 +238,27 @@ def _invalid_count(errors: list[dict]) -> int:
     return n
 
 
+#: The end of a message about an epoch that cannot be read: the forms taken.
+_EPOCH_FORMS_TAIL = f": {EPOCH_FORMS}"
+
+
+def _forms_told_once(errors: list[dict]) -> list[dict]:
+    """The forms of epoch taken, told in full with the first epoch that cannot be read and
+    referred to after it (300 bad epochs in a list: one help text, not 300)."""
+    first = None
+    out = []
+    for e in errors:
+        message = e.get("message")
+        if isinstance(message, str) and message.endswith(_EPOCH_FORMS_TAIL):
+            if first is None:
+                first = e.get("field")
+            else:
+                head = message[: -len(_EPOCH_FORMS_TAIL)]
+                e = {**e, "message": f"{head}: the forms taken are in the message for {first}"}
+        out.append(e)
+    return out
+
+
 def clip_echo(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
     """Text from the request echoed in an answer, cut to ``limit`` characters."""
     return text if len(text) <= limit else text[: limit - 3] + "..."
@@ -282,6 +304,8 @@ def handle_http_exception(error: HTTPException) -> Response:
             f"The request body exceeds the limit of {limit} bytes "
             "(setting SKYDRIFT_MAX_BODY_BYTES)."
         )
+    if errors:
+        errors = _forms_told_once(errors)
     if errors and len(errors) > MAX_LISTED_ERRORS:
         more = len(errors) - MAX_LISTED_ERRORS
         errors = errors[:MAX_LISTED_ERRORS] + [{"field": MORE_FIELD, "message": further(more)}]

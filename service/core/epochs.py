@@ -328,11 +328,15 @@ def _read(value, now: _dt.datetime | None) -> _Reading:
             f"cannot read epoch {value!r}: a space stands where the '+' of a UTC offset "
             "belongs; in a URL query string '+' reads as a space, write it as %2B"
         )
-    raise EpochError(
-        f"cannot read epoch {value!r}: write a Julian epoch (2016.0 or 'J2016.0'), "
-        "'B1950.0', 'JD2451545.0', 'MJD51544.5', an ISO 8601 UTC time "
-        "('2026-12-02T03:04:05Z') or 'now'"
-    )
+    raise EpochError(f"cannot read epoch {value!r}: {EPOCH_FORMS}")
+
+
+#: The forms of epoch taken, told with an epoch that cannot be read (an answer listing many
+#: such epochs tells them once: service.api.errors).
+EPOCH_FORMS = (
+    "write a Julian epoch (2016.0 or 'J2016.0'), 'B1950.0', 'JD2451545.0', 'MJD51544.5', "
+    "an ISO 8601 UTC time ('2026-12-02T03:04:05Z') or 'now'"
+)
 
 
 #: A UTC offset whose '+' became a space (a URL query string decodes '+' as a space).

@@ -596,6 +596,33 @@ def test_every_unknown_column_is_counted(client, form):
     assert answer["errors"][-1]["message"].startswith("250 further")
 
 
+def test_many_unreadable_epochs_tell_the_forms_once(client):
+    """90 epochs that cannot be read: the forms taken are told with the first and referred
+    to after it. Each entry repeated the whole help text (300 such epochs: 20 kB)."""
+    from service.core.epochs import EPOCH_FORMS
+
+    epochs = [f"x{i}" for i in range(90)]
+    answer = assert_problem(post(client, dict(BASE, stars=[STAR], target_epochs=epochs)), 422)
+    assert answer["detail"] == "The request has 90 invalid fields."
+    first, second, *_ = answer["errors"]
+    assert first == {
+        "field": "target_epochs[0]",
+        "message": f"cannot read epoch 'x0': {EPOCH_FORMS}",
+    }
+    assert second == {
+        "field": "target_epochs[1]",
+        "message": "cannot read epoch 'x1': the forms taken are in the message for "
+        "target_epochs[0]",
+    }
+    assert sum(EPOCH_FORMS in e["message"] for e in answer["errors"]) == 1
+    # An epoch's own reason (not the forms) is never shortened.
+    answer = assert_problem(
+        post(client, dict(BASE, stars=[STAR], target_epochs=["x", "2026-13-01T00:00:00Z"])), 422
+    )
+    assert EPOCH_FORMS in answer["errors"][0]["message"]
+    assert "month" in answer["errors"][1]["message"], answer["errors"]
+
+
 @pytest.mark.parametrize(
     ("url", "query"),
     [
