@@ -1024,6 +1024,10 @@ class Client:
             batch_size=min(self.batch_size, CROSSING_BATCH_SIZE),
         )
 
+    def site_list(self) -> dict:
+        """GET /v1/sites: the named sites, their coordinates and the limits requests get."""
+        return self.get("/v1/sites")
+
     def constellation_list(self) -> dict:
         """GET /v1/constellations: the 88 IAU constellations, names and areas."""
         return self.get("/v1/constellations")

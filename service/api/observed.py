@@ -14,7 +14,7 @@ import pathlib
 
 import marshmallow as ma
 import numpy as np
-from flask import current_app
+from flask import current_app, request
 from flask_smorest import abort
 
 from ..config import ConfigError
@@ -667,6 +667,18 @@ class ObservedResponseSchema(ma.Schema):
     )
 
 
+def _avoidance_setting_note(avoidance: float) -> str:
+    """Where the service's own Sun avoidance angle comes from, saying so when it is the
+    built-in placeholder."""
+    return "Sun avoidance angle from the service's " + (
+        "setting SKYDRIFT_SUN_AVOIDANCE_DEG."
+        if avoidance != core.DEFAULT_SUN_AVOIDANCE_DEG
+        else f"setting SKYDRIFT_SUN_AVOIDANCE_DEG, at its built-in default of "
+        f"{core.DEFAULT_SUN_AVOIDANCE_DEG:g} deg: a placeholder the operator must set to "
+        "the facility's own value."
+    )
+
+
 def _finite(x: float):
     """A Python float, or None where it is not finite (JSON has no NaN)."""
     return x if math.isfinite(x) else None
@@ -739,13 +751,7 @@ def observed(args):
         limits_note = f"Advisory. {horizon_note} Sun avoidance angle as given in the request."
     else:
         avoidance = settings.sun_avoidance_deg
-        limits_note = f"Advisory. {horizon_note} Sun avoidance angle from the service's " + (
-            "setting SKYDRIFT_SUN_AVOIDANCE_DEG."
-            if avoidance != core.DEFAULT_SUN_AVOIDANCE_DEG
-            else f"setting SKYDRIFT_SUN_AVOIDANCE_DEG, at its built-in default of "
-            f"{core.DEFAULT_SUN_AVOIDANCE_DEG:g} deg: a placeholder the operator must set to "
-            "the facility's own value."
-        )
+        limits_note = f"Advisory. {horizon_note} {_avoidance_setting_note(avoidance)}"
 
     epoch0 = float(args["catalogue_epoch"])
     c = table.columns
@@ -931,6 +937,103 @@ def _load_tables(path: str | None):
             "Earth-orientation tables unusable, serving degraded: %s", reason
         )
         return core.no_earth_orientation(), reason
+
+
+@always_present
+class ListedSiteSchema(ma.Schema):
+    name = _out(
+        ma.fields.String,
+        'The name a request gives as its site ("site": "<name>", or {"name": "<name>"}).',
+    )
+    full_name = _out(
+        ma.fields.String,
+        "The site list's longer name for the site (its entry's own name member); null where "
+        "the entry has none.",
+        allow_none=True,
+    )
+    latitude_deg = _out(ma.fields.Float, "Geodetic latitude, degrees, north positive.")
+    longitude_deg = _out(ma.fields.Float, "Longitude, degrees, east positive.")
+    height_m = _out(ma.fields.Float, "Height above the WGS84 ellipsoid, metres.")
+    horizon_limit_deg = _out(
+        ma.fields.Float,
+        "Altitude limit a request naming this site gets when it gives none, degrees (advisory).",
+    )
+    horizon_limit_source = _out(
+        ma.fields.String,
+        "site_list (the entry's own horizon_limit_deg) or setting "
+        "(SKYDRIFT_HORIZON_LIMIT_DEG, for entries without one).",
+    )
+
+
+@always_present
+class SiteListSchema(ma.Schema):
+    source = _out(
+        ma.fields.String,
+        "operator_list (the file of the setting SKYDRIFT_SITES_FILE) or demo_list (that "
+        "setting is empty: the demo scenario's fictional sites).",
+    )
+    count = _out(ma.fields.Integer, "Number of sites.")
+    sun_avoidance_deg = _out(
+        ma.fields.Float,
+        "Sun avoidance angle a request gets when it gives none, degrees (advisory).",
+    )
+    note = _out(ma.fields.String, "Where the limits come from.")
+    advisory = _out(ma.fields.String, "What the limits are for, and what decides.")
+    sites = ma.fields.List(
+        ma.fields.Nested(ListedSiteSchema),
+        metadata={"description": "The sites, in alphabetical order of name."},
+    )
+
+
+@blp.route("/sites", methods=["GET"])
+@blp.doc(operationId="listSites")
+@blp.response(200, SiteListSchema)
+def list_sites():
+    """List the named observing sites this service knows, with the limits requests get.
+
+    A request may name one of these as its site instead of giving latitude, longitude and
+    height. Check the coordinates here against the facility's own survey before relying on
+    a name: the list is the operator's configuration (SKYDRIFT_SITES_FILE), and a place
+    computed for a wrong longitude is wrong by the same angle in hour angle. The limits are
+    advisory: the facility's own interlocks and safety rules decide.
+    """
+    if request.args:  # no options here: a misspelt one must not pass unnoticed
+        abort(
+            422,
+            errors=[
+                {"field": key, "message": "is not a field of this request (it takes none)"}
+                for key in request.args
+            ],
+        )
+    settings = current_app.config["SKYDRIFT_SETTINGS"]
+    listed = []
+    for name, entry in sorted(_site_list().items()):
+        own = entry.get("horizon_limit_deg")
+        full_name = entry.get("name")
+        listed.append(
+            {
+                "name": name,
+                "full_name": full_name if isinstance(full_name, str) else None,
+                "latitude_deg": float(entry["latitude_deg"]),
+                "longitude_deg": float(entry["longitude_deg"]),
+                "height_m": float(entry["height_m"]),
+                "horizon_limit_deg": float(settings.horizon_limit_deg if own is None else own),
+                "horizon_limit_source": "setting" if own is None else "site_list",
+            }
+        )
+    avoidance = settings.sun_avoidance_deg
+    return current_app.json.response(
+        {
+            "source": "operator_list" if settings.sites_file else "demo_list",
+            "count": len(listed),
+            "sun_avoidance_deg": float(avoidance),
+            "note": "Advisory. A site's horizon limit is its entry's own, or else the "
+            "service's setting SKYDRIFT_HORIZON_LIMIT_DEG; a request may give its own "
+            f"(horizon_limit_deg). {_avoidance_setting_note(avoidance)}",
+            "advisory": ADVISORY,
+            "sites": listed,
+        }
+    )
 
 
 def _earth_orientation():

@@ -491,6 +491,68 @@ def test_a_good_sites_file_is_used(tmp_path, observed_example):
     assert r.json["site"]["latitude_deg"] == 10.0
 
 
+def test_the_site_list_is_served_as_requests_use_it(tmp_path, observed_example):
+    """GET /v1/sites: the operator's sites with the coordinates and limits a request naming
+    them gets, so that a client can check them against the facility's survey. Each listed
+    site is checked against the answer of POST /v1/observed naming it."""
+    from service.api import create_app
+    from service.config import Settings
+
+    path = tmp_path / "sites.json"
+    sites = {
+        "west-dome": dict(_GOOD_SITE, longitude_deg=-20.25, name="West Dome (test)"),
+        "east-hill": dict(_GOOD_SITE, horizon_limit_deg=12.5),
+    }
+    path.write_text(json.dumps({"sites": sites}))
+    settings = Settings.from_env(
+        {
+            "SKYDRIFT_SITES_FILE": str(path),
+            "SKYDRIFT_HORIZON_LIMIT_DEG": "7",
+            "SKYDRIFT_SUN_AVOIDANCE_DEG": "45",
+        }
+    )
+    c = create_app({"SKYDRIFT_SETTINGS": settings, "TESTING": True}).test_client()
+    r = c.get("/v1/sites")
+    assert r.status_code == 200, r.get_data(as_text=True)
+    body = r.json
+    assert body["source"] == "operator_list"
+    assert body["count"] == 2
+    assert [s["name"] for s in body["sites"]] == ["east-hill", "west-dome"]
+    assert body["sites"][0]["full_name"] is None
+    assert body["sites"][1]["full_name"] == "West Dome (test)"
+    assert body["sun_avoidance_deg"] == 45.0
+    assert "placeholder" not in body["note"]
+    assert "safety rules decide" in body["advisory"]
+    expected_limits = {"east-hill": (12.5, "site_list"), "west-dome": (7.0, "setting")}
+    for listed in body["sites"]:
+        name = listed["name"]
+        assert (listed["horizon_limit_deg"], listed["horizon_limit_source"]) == (
+            expected_limits[name]
+        )
+        for key in ("latitude_deg", "longitude_deg", "height_m"):
+            assert listed[key] == sites[name][key]
+        used = c.post(OBS, json=dict(observed_example, site=name))
+        assert used.status_code == 200, used.get_data(as_text=True)
+        assert used.json["site"] == {
+            k: listed[k] for k in ("name", "latitude_deg", "longitude_deg", "height_m")
+        }
+        assert used.json["limits"]["horizon_limit_deg"] == listed["horizon_limit_deg"]
+        assert used.json["limits"]["sun_avoidance_deg"] == body["sun_avoidance_deg"]
+
+
+def test_the_demo_site_list_by_default_and_no_options(client):
+    demo = json.loads((ROOT / "shared" / "demo" / "observatory.json").read_text())["sites"]
+    r = client.get("/v1/sites")
+    assert r.status_code == 200, r.get_data(as_text=True)
+    body = r.json
+    assert body["source"] == "demo_list"
+    assert [s["name"] for s in body["sites"]] == sorted(demo)
+    assert body["sites"][0]["latitude_deg"] == demo["kestrel-ridge"]["latitude_deg"]
+    # The built-in Sun avoidance angle is a placeholder, and the list says so.
+    assert "placeholder the operator must set" in body["note"]
+    assert_problem(client.get("/v1/sites?site=kestrel-ridge"), 422, "site")
+
+
 #: A star whose right ascension is refused by the schema (0 to 360): the first round of checks.
 _BAD_STAR = {"ra_deg": 400.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
 

@@ -373,8 +373,10 @@ def test_frames_and_observed_methods(live_service, demo_catalogue):
             stars, catalogue_epoch="J2016.0", instants="2026-12-02T22:00:00Z",
             site="kestrel-ridge",
         )  # fmt: skip
+        listed = {site["name"]: site for site in sky.site_list()["sites"]}
     assert batched == whole  # three batches joined as if sent at once
     assert "advisory" in batched["advisory"].lower()
+    assert listed["kestrel-ridge"]["longitude_deg"] == whole["site"]["longitude_deg"]
 
 
 def test_observed_methods_ask_for_rates(live_service, demo_catalogue):
