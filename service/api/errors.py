@@ -11,11 +11,12 @@ No stack trace ever reaches a client; unexpected failures are logged with the re
 
 from __future__ import annotations
 
+import difflib
 import logging
 import re
 
 import marshmallow as ma
-from flask import Response, current_app, g
+from flask import Response, current_app, g, has_request_context, request
 from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntityTooLarge
 
 from ..core.epochs import EPOCH_FORMS
@@ -259,6 +260,44 @@ def _forms_told_once(errors: list[dict]) -> list[dict]:
     return out
 
 
+def _paths() -> list[str]:
+    """The service's paths as the API reference writes them ("/v1/constellations/
+    {abbreviation}/outline")."""
+    return sorted(
+        {
+            re.sub(r"<(?:\w+:)?(\w+)>", r"{\1}", rule.rule)
+            for rule in current_app.url_map.iter_rules()
+            if rule.endpoint != "static"
+        }
+    )
+
+
+def _routing_detail(error: HTTPException) -> str | None:
+    """What a 404 or 405 of the routing says: the path or method a client likely meant.
+
+    werkzeug's words ("If you entered the URL manually please check your spelling") name
+    neither; a client that wrote /v1/propogation is told /v1/propagation."""
+    path = request.path
+    if error.code == 405:
+        methods = sorted(set(getattr(error, "valid_methods", None) or ()) - {"HEAD", "OPTIONS"})
+        if not methods:
+            return None
+        return (
+            f"{clip_echo(request.method, 20)} is not taken at {clip_echo(path, 100)}; "
+            f"it takes {' or '.join(methods)}."
+        )
+    known = _paths()
+    lowered = {p.lower(): p for p in known}
+    likely = lowered.get(path.lower().rstrip("/")) or next(
+        iter(difflib.get_close_matches(path.lower(), list(lowered), n=1, cutoff=0.8)), None
+    )
+    hint = f" Did you mean {lowered[likely] if likely in lowered else likely}?" if likely else ""
+    return (
+        f"No endpoint at {clip_echo(path, 100)}.{hint} The endpoints are listed at /docs "
+        "and /openapi.json."
+    )
+
+
 def clip_echo(text: str, limit: int = MAX_ECHOED_CHARS) -> str:
     """Text from the request echoed in an answer, cut to ``limit`` characters."""
     return text if len(text) <= limit else text[: limit - 3] + "..."
@@ -296,6 +335,8 @@ def handle_http_exception(error: HTTPException) -> Response:
         detail = f"The request has {n} invalid field{'s' if n != 1 else ''}."
     else:
         detail = data.get("message") or error.description
+    if error.code in (404, 405) and not data and has_request_context():
+        detail = _routing_detail(error) or detail
     if isinstance(error, RequestEntityTooLarge) and not data:
         # A body without a declared length (chunked) that grew past the limit while read:
         # werkzeug's words name no limit and no setting.

@@ -135,7 +135,7 @@ def test_reference_page_describes_every_response(client):
             line = f"<li><code>{code}</code> {html.escape(resp['description'])}</li>"
             assert line in section, (path, code)
             checked += 1
-    assert checked >= 100  # 15 operations, most with eight or more responses
+    assert checked >= 100  # 16 operations, most with eight or more responses
 
 
 def test_unknown_path_is_problem_json(client):
@@ -143,12 +143,37 @@ def test_unknown_path_is_problem_json(client):
     assert r.status_code == 404
     assert r.mimetype == "application/problem+json"
     assert r.json["status"] == 404
+    assert r.json["detail"] == (
+        "No endpoint at /no/such/thing. The endpoints are listed at /docs and /openapi.json."
+    )
+
+
+@pytest.mark.parametrize(
+    ("method", "path", "likely"),
+    [
+        ("POST", "/v1/propogation", "/v1/propagation"),  # a typing error
+        ("POST", "/propagation", "/v1/propagation"),  # the version left out
+        ("GET", "/V1/Constellations", "/v1/constellations"),  # letter case
+        ("GET", "/v1/sites/", "/v1/sites"),  # a trailing slash
+        ("POST", "/v1/velocity/observable", "/v1/velocity/observables"),
+    ],
+)
+def test_a_misspelt_path_is_told_the_likely_one(client, method, path, likely):
+    """werkzeug's 404 said "If you entered the URL manually please check your spelling"."""
+    r = client.open(path, method=method, json={} if method == "POST" else None)
+    assert r.status_code == 404
+    assert r.mimetype == "application/problem+json"
+    assert f"No endpoint at {path}. Did you mean {likely}?" in r.json["detail"]
 
 
 def test_wrong_method_is_problem_json(client):
     r = client.get("/v1/propagation")
     assert r.status_code == 405
     assert r.mimetype == "application/problem+json"
+    assert r.json["detail"] == "GET is not taken at /v1/propagation; it takes POST."
+    assert "POST" in r.headers["Allow"]
+    r = client.delete("/v1/sites")
+    assert r.json["detail"] == "DELETE is not taken at /v1/sites; it takes GET."
 
 
 def test_unexpected_error_gives_bare_500_without_trace(settings):
