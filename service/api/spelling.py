@@ -30,7 +30,8 @@ UNIT_WORDS = frozenset(
 )
 
 #: Whole names that stand for another name of the same role (the first of those the request
-#: takes is offered): a span's ends, the instants or target epochs, the site, the air.
+#: takes is offered): a span's ends, the instants or target epochs, the site, the air, the
+#: table of stars (positions too: every table is "stars").
 _WHEN = ("instants", "target_epochs")
 NAME_ALIASES = {
     "stop": ("end",),
@@ -47,6 +48,13 @@ NAME_ALIASES = {
     "observer": ("site",),
     "weather": ("atmosphere",),
     "conditions": ("atmosphere",),
+    "positions": ("stars",),
+    "coordinates": ("stars",),
+    "targets": ("stars",),
+    "objects": ("stars",),
+    "sources": ("stars",),
+    "catalogue": ("stars",),
+    "catalog": ("stars",),
     "rates": ("include_rates",),
     "image_format": ("format",),
 }

@@ -111,6 +111,8 @@ OBSERVED_REQUEST += ["include_rates", "frame"]
         ("weather", OBSERVED_REQUEST, "atmosphere"),
         ("rates", OBSERVED_REQUEST, "include_rates"),
         ("image_format", ["stars", "format", "width_px"], "format"),
+        ("positions", ["stars", "epoch", "frame"], "stars"),  # every table is "stars"
+        ("Catalog", REQUEST_FIELDS, "stars"),
         # none where the request takes no field of that role
         ("observatory", REQUEST_FIELDS, None),
         ("weather", STAR_FIELDS, None),
