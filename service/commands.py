@@ -595,6 +595,43 @@ def cmd_observed(args) -> int:
     return 0
 
 
+#: The columns `sites` writes, in order (GET /v1/sites, one row per site).
+SITE_COLUMNS = (
+    "name",
+    "full_name",
+    "latitude_deg",
+    "longitude_deg",
+    "height_m",
+    "horizon_limit_deg",
+    "horizon_limit_source",
+)
+
+
+@_run
+def cmd_sites(args) -> int:
+    with make_client(args) as client:
+        answer = client.site_list()
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(SITE_COLUMNS)
+    for site in answer["sites"]:
+        writer.writerow(["" if site[k] is None else site[k] for k in SITE_COLUMNS])
+    count = answer["count"]
+    print(
+        f"skydrift: {count} site{'' if count == 1 else 's'} ({answer['source']})", file=sys.stderr
+    )
+    print(f"skydrift: Sun avoidance angle {answer['sun_avoidance_deg']:g} deg", file=sys.stderr)
+    print(f"skydrift: {answer['note']}", file=sys.stderr)
+    print(
+        "skydrift: check the coordinates against the facility's own survey before relying "
+        "on a site's name; the facility's own interlocks and safety rules decide where a "
+        "telescope may point.",
+        file=sys.stderr,
+    )
+    _write_text(out.getvalue(), args.output)
+    return 0
+
+
 #: A motionless star at the origin of the frame: what `observed` asks the JSON answer for
 #: to state the conditions (refraction, Earth orientation), which depend on no star.
 CONDITIONS_STAR = {"ra_deg": 0.0, "dec_deg": 0.0, "pm_ra_cosdec_mas_yr": 0.0, "pm_dec_mas_yr": 0.0}
@@ -1066,6 +1103,21 @@ def add_commands(sub) -> None:
     o.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(o)
     o.set_defaults(func=cmd_observed)
+
+    st = sub.add_parser(
+        "sites",
+        help="the named sites of the service, with coordinates and limits (CSV out)",
+        description="List the named observing sites the service knows (its operator's "
+        "SKYDRIFT_SITES_FILE, else the demo scenario's fictional sites): name, full_name, "
+        "geodetic latitude_deg and east longitude_deg, height_m above the WGS84 ellipsoid, "
+        "and the horizon_limit_deg a request naming the site gets, with its "
+        "horizon_limit_source (site_list or setting). Standard error says the Sun avoidance "
+        "angle requests get and where the limits come from. The limits are ADVISORY: the "
+        "facility's own interlocks and safety rules decide where a telescope may point.",
+    )
+    st.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(st, batch=False)
+    st.set_defaults(func=cmd_sites)
 
     chart = sub.add_parser(
         "chart",

@@ -216,6 +216,32 @@ def test_observed_local_and_remote_identical(live_service):
         assert flagged == (float(r["altitude_deg"]) < 15.0)
 
 
+def test_sites_lists_the_service_sites_as_observed_uses_them(live_service, tmp_path):
+    """`skydrift sites`: the service's named sites as CSV, the same locally and through a
+    running service, with the coordinates `observed --site` then uses; the Sun avoidance
+    angle and the caution on standard error."""
+    local = skydrift("sites")
+    assert local.stdout == skydrift("sites", "--url", live_service).stdout
+    rows = list(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert [r["name"] for r in rows] == ["kestrel-ridge"]
+    demo = json.loads((DEMO / "observatory.json").read_text())["sites"]["kestrel-ridge"]
+    for key in ("latitude_deg", "longitude_deg", "height_m", "horizon_limit_deg"):
+        assert float(rows[0][key]) == demo[key]
+    assert rows[0]["horizon_limit_source"] == "site_list"
+    said = local.stderr.decode()
+    assert "1 site (demo_list)" in said and "Sun avoidance angle 30 deg" in said
+    assert "placeholder" in said and "safety rules decide" in said
+    # An operator's list, through the environment, in this process.
+    sites = tmp_path / "sites.json"
+    sites.write_text(json.dumps({"b-hill": {"latitude_deg": -30.5, "longitude_deg": 70.25,
+                                            "height_m": 2200.0}}))  # fmt: skip
+    env = dict(os.environ, PYTHONPATH=str(ROOT), SKYDRIFT_SITES_FILE=str(sites))
+    out = subprocess.run([sys.executable, "-m", "service.cli", "sites"], capture_output=True,
+                         env=env, cwd=ROOT, timeout=120, check=True)  # fmt: skip
+    assert out.stdout.decode().splitlines()[1] == "b-hill,,-30.5,70.25,2200.0,0.0,setting"
+    assert b"(operator_list)" in out.stderr
+
+
 def test_observed_rates_option_adds_the_rate_columns(live_service):
     """--rates asks for the tracking rates: five more columns, the service's numbers
     (the same locally and through a running service), and none without it."""
