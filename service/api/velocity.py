@@ -461,7 +461,9 @@ FLAG_MEANINGS = {
     "radial-velocity rate (v_t^2/d) given.",
     "distance_given": "distance_pc used instead of the parallax; parallax_snr is null.",
     "uncertainties_missing": "Some needed standard error not given: uncertainties are null "
-    "(and parallax_snr, without a parallax error).",
+    "(and parallax_snr, without a parallax error). They need parallax_error_mas (or "
+    "distance_error_pc with distance_pc), pm_ra_cosdec_error_mas_yr and "
+    "pm_dec_error_mas_yr, and with a radial velocity radial_velocity_error_km_s.",
     "proper_motion_implausible": PROPER_MOTION_IMPLAUSIBLE_MEANING,
     "radial_velocity_implausible": RADIAL_VELOCITY_IMPLAUSIBLE_MEANING,
     "space_velocity_implausible": "Space velocity above half the speed of light (from the "
