@@ -30,12 +30,19 @@ UNIT_WORDS = frozenset(
 )
 
 #: Whole names that stand for another name of the same role (the first of those the request
-#: takes is offered): a span's ends, the instants or target epochs, the site, the air, the
-#: table of stars (positions too: every table is "stars").
+#: takes is offered): a span's ends (or the range that holds them), the instants or target
+#: epochs, the site, the air, the table of stars (positions too: every table is "stars").
 _WHEN = ("instants", "target_epochs")
 NAME_ALIASES = {
-    "stop": ("end",),
-    "end": ("stop",),
+    "stop": ("end", "target_range"),
+    "end": ("stop", "target_range"),
+    "start": ("target_range",),
+    "count": ("target_range",),
+    "range": ("target_range",),
+    "epoch_range": ("target_range",),
+    "start_epoch": ("start", "target_range"),
+    "end_epoch": ("end", "target_range"),
+    "stop_epoch": ("end", "target_range"),
     "epochs": ("target_epochs", "instants"),
     "times": _WHEN,
     "time": _WHEN,

@@ -112,6 +112,12 @@ OBSERVED_REQUEST += ["include_rates", "frame"]
         ("rates", OBSERVED_REQUEST, "include_rates"),
         ("image_format", ["stars", "format", "width_px"], "format"),
         ("positions", ["stars", "epoch", "frame"], "stars"),  # every table is "stars"
+        # a range's members at the top level: the range ("start" was offered "stars")
+        ("start", REQUEST_FIELDS, "target_range"),
+        ("count", REQUEST_FIELDS, "target_range"),
+        ("start_epoch", REQUEST_FIELDS, "target_range"),  # was offered "target_epochs"
+        ("start_epoch", ["stars", "catalogue_epoch", "start", "end"], "start"),
+        ("stop_epoch", ["stars", "catalogue_epoch", "start", "end"], "end"),
         ("Catalog", REQUEST_FIELDS, "stars"),
         # none where the request takes no field of that role
         ("observatory", REQUEST_FIELDS, None),
