@@ -117,6 +117,18 @@ class Blueprint(flask_smorest.Blueprint):
         return mark
 
 
+def refuse_query_options() -> None:
+    """422 naming every query-string option of a request to an endpoint that takes none."""
+    if request.args:
+        abort(
+            422,
+            errors=[
+                {"field": key, "message": "is not a field of this request (it takes none)"}
+                for key in request.args
+            ],
+        )
+
+
 def _table_endpoint(answer: bool = False):
     """(table field name, nested answer members) of the current endpoint, or None; with
     ``answer=True`` None also for endpoints whose answer is not a table (images)."""

@@ -31,6 +31,7 @@ from .common import (
     index_field,
     layout_field,
     number_field,
+    refuse_query_options,
     star_count_field,
     units_field,
 )
@@ -796,14 +797,7 @@ def list_constellations():
     Abbreviation, name and solid angle (from the boundary table at B1875.0) of each, in
     alphabetical order of name. Use the abbreviations with the outline endpoint.
     """
-    if request.args:  # no options here: a misspelt one must not pass unnoticed
-        abort(
-            422,
-            errors=[
-                {"field": key, "message": "is not a field of this request (it takes none)"}
-                for key in request.args
-            ],
-        )
+    refuse_query_options()  # none here: a misspelt one must not pass unnoticed
     items = core.constellation_list()
     return _cacheable(current_app.json.response({"count": len(items), "constellations": items}))
 

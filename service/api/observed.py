@@ -14,7 +14,7 @@ import pathlib
 
 import marshmallow as ma
 import numpy as np
-from flask import current_app, request
+from flask import current_app
 from flask_smorest import abort
 
 from ..config import ConfigError
@@ -43,6 +43,7 @@ from .common import (
     id_field,
     index_field,
     instants_out,
+    refuse_query_options,
     star_count_field,
     units_field,
 )
@@ -997,14 +998,7 @@ def list_sites():
     computed for a wrong longitude is wrong by the same angle in hour angle. The limits are
     advisory: the facility's own interlocks and safety rules decide.
     """
-    if request.args:  # no options here: a misspelt one must not pass unnoticed
-        abort(
-            422,
-            errors=[
-                {"field": key, "message": "is not a field of this request (it takes none)"}
-                for key in request.args
-            ],
-        )
+    refuse_query_options()  # none here: a misspelt one must not pass unnoticed
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     listed = []
     for name, entry in sorted(_site_list().items()):
