@@ -286,16 +286,31 @@ def _routing_detail(error: HTTPException) -> str | None:
             f"{clip_echo(request.method, 20)} is not taken at {clip_echo(path, 100)}; "
             f"it takes {' or '.join(methods)}."
         )
-    known = _paths()
-    lowered = {p.lower(): p for p in known}
-    likely = lowered.get(path.lower().rstrip("/")) or next(
-        iter(difflib.get_close_matches(path.lower(), list(lowered), n=1, cutoff=0.8)), None
-    )
-    hint = f" Did you mean {lowered[likely] if likely in lowered else likely}?" if likely else ""
+    likely = _likely_path(path)
+    hint = f" Did you mean {likely}?" if likely else ""
     return (
         f"No endpoint at {clip_echo(path, 100)}.{hint} The endpoints are listed at /docs "
         "and /openapi.json."
     )
+
+
+def _likely_path(path: str) -> str | None:
+    """The service's path ``path`` most likely stands for: the same but for letter case or
+    a trailing slash, or else the most similar by difflib. A path parameter takes the given
+    path's segment there: /v1/constellations/Ori/outlines -> /v1/constellations/Ori/outline.
+    """
+    written = path.rstrip("/").split("/")
+    candidates = {}
+    for known in _paths():
+        parts = known.split("/")
+        if len(parts) == len(written):
+            parts = [w if p.startswith("{") else p for p, w in zip(parts, written, strict=True)]
+        candidates["/".join(parts).lower()] = "/".join(parts)
+    given = "/".join(written).lower()
+    if given in candidates:
+        return candidates[given]
+    close = difflib.get_close_matches(given, list(candidates), n=1, cutoff=0.8)
+    return candidates[close[0]] if close else None
 
 
 def clip_echo(text: str, limit: int = MAX_ECHOED_CHARS) -> str:

@@ -156,6 +156,8 @@ def test_unknown_path_is_problem_json(client):
         ("GET", "/V1/Constellations", "/v1/constellations"),  # letter case
         ("GET", "/v1/sites/", "/v1/sites"),  # a trailing slash
         ("POST", "/v1/velocity/observable", "/v1/velocity/observables"),
+        # a path parameter keeps what was written there (not /v1/constellations/outlines)
+        ("GET", "/v1/constellations/Ori/outlines", "/v1/constellations/Ori/outline"),
     ],
 )
 def test_a_misspelt_path_is_told_the_likely_one(client, method, path, likely):
