@@ -17,7 +17,7 @@ from .. import __version__
 from ..config import Settings
 from . import errors
 from .common import ProblemSchema, epoch_field_to_openapi
-from .frames import equinox_field_to_openapi
+from .frames import equinox_field_to_openapi, frame_field_to_openapi
 from .jsonio import OrjsonProvider
 from .openapi_errors import PROBLEM_MIMETYPE, ProblemResponsesPlugin
 from .tables import id_field_to_openapi, range_bounds_to_openapi, table_field_to_openapi
@@ -95,6 +95,7 @@ def create_app(config: dict | None = None) -> Flask:
     api.ma_plugin.converter.add_attribute_function(epoch_field_to_openapi)
     api.ma_plugin.converter.add_attribute_function(range_bounds_to_openapi)
     api.ma_plugin.converter.add_attribute_function(equinox_field_to_openapi)
+    api.ma_plugin.converter.add_attribute_function(frame_field_to_openapi)
     api.ma_plugin.converter.add_attribute_function(id_field_to_openapi)
     app.extensions["skydrift_api"] = api
     app.extensions["skydrift_ready_checks"] = {}

@@ -36,7 +36,7 @@ from .common import (
     units_field,
 )
 from .examples import load_example
-from .frames import FrameSpecSchema, frame_from_spec, frame_with_equinox
+from .frames import FrameField, frame_from_spec, frame_with_equinox
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .tables import IgnoredColumnsField, RowCheck, StarTableField
@@ -187,8 +187,7 @@ class LookupRequestSchema(ma.Schema):
         metadata={"description": "Positions: a list of records, or an object of columns."},
     )
     ignored_columns = IgnoredColumnsField()
-    frame = ma.fields.Nested(
-        FrameSpecSchema,
+    frame = FrameField(
         load_default=lambda: {"name": "icrs"},
         metadata={
             "description": "Frame of the given positions and motions (default ICRS). Other "

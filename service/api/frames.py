@@ -148,9 +148,9 @@ def equinox_field_to_openapi(self, field, **kwargs) -> dict:
 
 
 class FrameSpecSchema(ma.Schema):
-    # A frame given by its name alone ("galactic") is the usual slip: show the form.
+    # Anything but an object or a frame's name (FrameField): show both forms.
     error_messages = {
-        "type": 'must be an object such as {"name": "galactic"} or '
+        "type": 'must be a frame\'s name ("galactic") or an object such as '
         '{"name": "fk5", "equinox": "J2000.0"}'
     }
 
@@ -169,6 +169,45 @@ class FrameSpecSchema(ma.Schema):
             frame_with_equinox(data["name"], data["equinox"])
         except ValueError as exc:
             raise ma.ValidationError(str(exc), "equinox") from None
+
+
+class FrameField(ma.fields.Nested):
+    """A frame: an object (FrameSpecSchema), or its name alone for the frame at its default
+    equinox ("galactic" is {"name": "galactic"}, "fk4" is fk4 at B1950.0)."""
+
+    #: Added to each frame field's description.
+    FORMS_TEXT = (
+        ' A name alone ("galactic", "fk4") is the frame at its default equinox; an object '
+        'gives another ({"name": "fk5", "equinox": "J2000.0"}).'
+    )
+
+    def __init__(self, **kwargs):
+        metadata = dict(kwargs.pop("metadata", {}))
+        metadata["description"] = metadata.get("description", "") + self.FORMS_TEXT
+        super().__init__(FrameSpecSchema, metadata=metadata, **kwargs)
+
+    def _deserialize(self, value, attr, data, partial=None, **kwargs):
+        if isinstance(value, str):
+            if value not in core.FRAME_NAMES:
+                shown = value if len(value) <= 64 else value[:61] + "..."  # a client's text
+                raise ma.ValidationError(
+                    f"unknown frame {shown!r}: give {', '.join(core.FRAME_NAMES[:-1])} or "
+                    f"{core.FRAME_NAMES[-1]}, or an object with an equinox such as "
+                    '{"name": "fk4", "equinox": "B1950.0"}'
+                )
+            value = {"name": value}
+        return super()._deserialize(value, attr, data, partial=partial, **kwargs)
+
+
+def frame_field_to_openapi(self, field, ret=None, **kwargs) -> dict:
+    """A FrameField: a frame's name, or the object (apispec gave the object's reference)."""
+    if not isinstance(field, FrameField) or ret is None:
+        return {}
+    ref = ret.pop("$ref", None)
+    if ref is None:  # (OpenAPI 3.0 wraps it in allOf)
+        ref = ret.pop("allOf")[0]["$ref"]
+    names = {"type": "string", "enum": list(core.FRAME_NAMES)}
+    return {"oneOf": [names, {"$ref": ref}]}
 
 
 def frame_with_equinox(name: str, equinox) -> core.Frame:
@@ -205,13 +244,11 @@ class FramesRequestSchema(ma.Schema):
         required=True,
         metadata={"description": "Epoch at which the given positions hold (e.g. 'B1950.0')."},
     )
-    from_frame = ma.fields.Nested(
-        FrameSpecSchema,
+    from_frame = FrameField(
         required=True,
         metadata={"description": "Frame of the given positions and motions."},
     )
-    to_frame = ma.fields.Nested(
-        FrameSpecSchema,
+    to_frame = FrameField(
         load_default=lambda: {"name": "icrs"},
         metadata={"description": "Frame of the answer (default ICRS)."},
     )

@@ -48,7 +48,7 @@ from .common import (
     units_field,
 )
 from .examples import DEMO_DIR, load_example
-from .frames import FrameSpecSchema, FrameStarSchema, frame_from_spec
+from .frames import FrameField, FrameStarSchema, frame_from_spec
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
@@ -409,8 +409,7 @@ class ObservedRequestSchema(ma.Schema):
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )
-    frame = ma.fields.Nested(
-        FrameSpecSchema,
+    frame = FrameField(
         load_default=lambda: {"name": "icrs"},
         metadata={"description": "Frame of the given astrometry (default ICRS)."},
     )

@@ -752,11 +752,48 @@ def test_unknown_frame_names_the_field(client, frames_example):
     assert_problem(r, 422, "to_frame.name")
 
 
-def test_frame_given_as_a_name_alone_shows_the_form(client, frames_example):
-    r = client.post(FRAMES, json=dict(frames_example, to_frame="galactic"))
+def test_a_frame_given_by_its_name_alone_is_that_frame_at_its_default_equinox(
+    client, frames_example, observed_example
+):
+    """ "galactic" for {"name": "galactic"} on every request that takes a frame (it was
+    refused with the object form shown); the answers equal the object form's."""
+
+    def same(url, body, named, name):
+        by_name = client.post(url, json=dict(body, **{named: name}))
+        by_object = client.post(url, json=dict(body, **{named: {"name": name}}))
+        assert by_name.status_code == 200, by_name.get_data(as_text=True)
+        assert by_name.json["stars"] == by_object.json["stars"]
+
+    same(FRAMES, frames_example, "to_frame", "galactic")
+    same(FRAMES, dict(frames_example, catalogue_epoch="B1950.0"), "from_frame", "fk4")
+    same(OBS, observed_example, "frame", "icrs")
+    lookup = {"stars": [{"ra_deg": 120.0, "dec_deg": -10.0}]}
+    same("/v1/constellations/lookup", lookup, "frame", "galactic")
+    # and in the query string of a CSV body (it was frame.name=galactic only)
+    text = "ra_deg,dec_deg\n120.0,-10.0\n"
+    by_name, by_member = (
+        client.post(f"/v1/constellations/lookup?{query}", data=text, content_type="text/csv")
+        for query in ("frame=galactic", "frame.name=galactic")
+    )
+    assert by_name.status_code == 200, by_name.get_data(as_text=True)
+    assert by_name.json["columns"] == by_member.json["columns"]
+
+
+@pytest.mark.parametrize("name", ["B1950", "ICRS", "supergalactic"])
+def test_an_unknown_frame_name_alone_is_refused_with_the_names(client, frames_example, name):
+    r = client.post(FRAMES, json=dict(frames_example, to_frame=name))
     assert_problem(r, 422, "to_frame")
     (error,) = r.json["errors"]
-    assert error["message"].startswith('must be an object such as {"name": "galactic"}')
+    assert error["message"].startswith(
+        f"unknown frame '{name}': give icrs, fk5, fk4, galactic or ecliptic, or an object"
+    )
+
+
+def test_a_frame_of_another_json_type_shows_both_forms(client, frames_example):
+    r = client.post(FRAMES, json=dict(frames_example, to_frame=["galactic"]))
+    assert_problem(r, 422, "to_frame")
+    (error,) = r.json["errors"]
+    assert error["message"].startswith('must be a frame\'s name ("galactic") or an object')
 
 
 @pytest.mark.parametrize("equinox", [True, ["B1950.0"]])
