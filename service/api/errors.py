@@ -21,7 +21,7 @@ from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntit
 
 from ..core.epochs import EPOCH_FORMS
 from .jsonio import dumps
-from .spelling import closest_name
+from .spelling import likely_names
 
 log = logging.getLogger("skydrift.errors")
 
@@ -141,9 +141,10 @@ def with_likely_names(messages, schema):
             out[key] = with_likely_names(value, schema)
         elif value == _UNKNOWN and isinstance(key, str):
             accepted = [f.data_key or name for name, f in fields.items() if not f.dump_only]
-            likely = closest_name(key, accepted)
-            out[key] = value if likely is None else [_unknown_field_text(likely)]
-            meant.add(likely)
+            likely = likely_names(key, accepted)
+            out[key] = [_unknown_field_text(*likely)] if likely else value
+            if len(likely) == 1:
+                meant.add(likely[0])
         else:
             out[key] = _in_nested(fields.get(key), value)
     # A required field an unknown name likely stands for ("from" for "from_frame") is not
@@ -154,8 +155,9 @@ def with_likely_names(messages, schema):
     return out
 
 
-def _unknown_field_text(likely: str) -> str:
-    return f'is not a field of this request (did you mean "{likely}"?)'
+def _unknown_field_text(*likely: str) -> str:
+    named = " or ".join(f'"{name}"' for name in likely)
+    return f"is not a field of this request (did you mean {named}?)"
 
 
 def _in_nested(field, value):

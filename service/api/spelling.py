@@ -132,6 +132,39 @@ def closest_name(given: str, accepted) -> str | None:
     return names[close[0]] if close else None
 
 
+def names_holding(given: str, accepted) -> list[str]:
+    """The accepted names that hold the words of ``given`` whole and in a row (the last
+    one may take a plural "s"), in their order: "epoch" -> catalogue_epoch, target_epochs;
+    "frame" -> from_frame, to_frame. Nothing for units alone ("deg")."""
+    if not isinstance(given, str) or not given:
+        return []
+    words = _our_words(given.lower())
+    if UNIT_WORDS.issuperset(words):
+        return []
+    n = len(words)
+    out = []
+    for name in accepted:
+        parts = str(name).lower().split("_")
+        for i in range(len(parts) - n + 1):
+            run = parts[i : i + n]
+            if run[:-1] == words[:-1] and run[-1] in (words[-1], words[-1] + "s"):
+                out.append(str(name))
+                break
+    return out
+
+
+def likely_names(given: str, accepted) -> list[str]:
+    """The accepted names ``given`` likely stands for: one (:func:`closest_name`), or two or
+    three where it names what they share ("epoch" on a propagation: catalogue_epoch or
+    target_epochs), or none. A whole-name alias comes first ("epochs" -> target_epochs)."""
+    if isinstance(given, str) and given.lower() not in NAME_ALIASES:
+        holding = names_holding(given, accepted)
+        if 2 <= len(holding) <= 3:
+            return holding
+    likely = closest_name(given, accepted)
+    return [] if likely is None else [likely]
+
+
 def unknown_name_text(given: str, accepted, listing: str | None = None) -> str:
     """'unknown field (did you mean "x"?)' (when one is likely), then '; ' and ``listing``."""
     likely = closest_name(given, accepted)

@@ -14,7 +14,7 @@ import pytest
 
 from service.api.app import create_app
 from service.api.propagation import StarAstrometrySchema as PropagationStar
-from service.api.spelling import closest_name
+from service.api.spelling import closest_name, likely_names
 
 #: The star fields of POST /v1/propagation (id, ra_deg, ..., the 15 correlations).
 STAR_FIELDS = list(PropagationStar().fields)
@@ -73,6 +73,38 @@ def test_two_alike_get_no_suggestion():
     assert closest_name("target_epoch", REQUEST_FIELDS) == "target_epochs"
     assert closest_name("epoch", REQUEST_FIELDS) is None  # catalogue_epoch or target_epochs?
     assert closest_name("target", REQUEST_FIELDS) is None  # target_epochs or target_range?
+
+
+FRAMES_REQUEST = ["stars", "catalogue_epoch", "from_frame", "to_frame", "target_epochs"]
+
+
+@pytest.mark.parametrize(
+    ("given", "accepted", "likely"),
+    [
+        # two alike are both offered
+        ("epoch", REQUEST_FIELDS, ["catalogue_epoch", "target_epochs"]),
+        ("Target", REQUEST_FIELDS, ["target_epochs", "target_range"]),
+        ("frame", FRAMES_REQUEST, ["from_frame", "to_frame"]),  # was offered to_frame only
+        # one as before
+        ("from", FRAMES_REQUEST, ["from_frame"]),
+        ("epochs", REQUEST_FIELDS, ["target_epochs"]),  # the alias first
+        ("target_epoch", REQUEST_FIELDS, ["target_epochs"]),
+        # none for units alone or nothing alike
+        ("deg", ["horizon_limit_deg", "sun_avoidance_deg"], []),
+        ("colour", REQUEST_FIELDS, []),
+    ],
+)
+def test_likely_names_offer_two_alike(given, accepted, likely):
+    assert likely_names(given, accepted) == likely
+
+
+def test_an_unknown_field_for_two_alike_names_both(client):
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
+    got = messages(client.post("/v1/propagation", json={"stars": [star], "epoch": "J2016.0"}))
+    assert got["epoch"] == (
+        'is not a field of this request (did you mean "catalogue_epoch" or "target_epochs"?)'
+    )
+    assert got["catalogue_epoch"] == "is required"  # which was meant is not known
 
 
 @pytest.mark.parametrize(
