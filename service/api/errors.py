@@ -21,7 +21,7 @@ from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntit
 
 from ..core.epochs import EPOCH_FORMS
 from .jsonio import dumps
-from .spelling import likely_names
+from .spelling import did_you_mean, likely_names
 
 log = logging.getLogger("skydrift.errors")
 
@@ -142,7 +142,7 @@ def with_likely_names(messages, schema):
         elif value == _UNKNOWN and isinstance(key, str):
             accepted = [f.data_key or name for name, f in fields.items() if not f.dump_only]
             likely = likely_names(key, accepted)
-            out[key] = [_unknown_field_text(*likely)] if likely else value
+            out[key] = [_unknown_field_text(likely)] if likely else value
             if len(likely) == 1:
                 meant.add(likely[0])
         else:
@@ -155,9 +155,8 @@ def with_likely_names(messages, schema):
     return out
 
 
-def _unknown_field_text(*likely: str) -> str:
-    named = " or ".join(f'"{name}"' for name in likely)
-    return f"is not a field of this request (did you mean {named}?)"
+def _unknown_field_text(likely: list[str]) -> str:
+    return "is not a field of this request" + did_you_mean(likely)
 
 
 def _in_nested(field, value):

@@ -156,8 +156,12 @@ def names_holding(given: str, accepted) -> list[str]:
 def likely_names(given: str, accepted) -> list[str]:
     """The accepted names ``given`` likely stands for: one (:func:`closest_name`), or two or
     three where it names what they share ("epoch" on a propagation: catalogue_epoch or
-    target_epochs), or none. A whole-name alias comes first ("epochs" -> target_epochs)."""
-    if isinstance(given, str) and given.lower() not in NAME_ALIASES:
+    target_epochs), or none. A whole-name alias the request takes comes first ("epochs" ->
+    target_epochs)."""
+    if not isinstance(given, str):
+        return []
+    lowered = {str(a).lower() for a in accepted}
+    if not lowered.intersection(NAME_ALIASES.get(given.lower(), ())):
         holding = names_holding(given, accepted)
         if 2 <= len(holding) <= 3:
             return holding
@@ -165,8 +169,14 @@ def likely_names(given: str, accepted) -> list[str]:
     return [] if likely is None else [likely]
 
 
+def did_you_mean(likely: list[str]) -> str:
+    """' (did you mean "a"?)' or ' (did you mean "a" or "b"?)'; '' for none."""
+    named = " or ".join(f'"{name}"' for name in likely)
+    return f" (did you mean {named}?)" if likely else ""
+
+
 def unknown_name_text(given: str, accepted, listing: str | None = None) -> str:
-    """'unknown field (did you mean "x"?)' (when one is likely), then '; ' and ``listing``."""
-    likely = closest_name(given, accepted)
-    text = "unknown field" if likely is None else f'unknown field (did you mean "{likely}"?)'
+    """'unknown field (did you mean "x"?)' (when one or a few are likely,
+    :func:`likely_names`), then '; ' and ``listing``."""
+    text = "unknown field" + did_you_mean(likely_names(given, accepted))
     return f"{text}; {listing}" if listing else text

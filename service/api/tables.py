@@ -35,7 +35,7 @@ from ..core.constants import MAX_ABS_MAS, MAX_DISTANCE_PC, MIN_DISTANCE_PC  # no
 
 # Bounds shared with the batch jobs (re-exported for the endpoint schemas).
 from .errors import MORE_FIELD, WholePath, further
-from .spelling import closest_name
+from .spelling import closest_name, did_you_mean
 
 #: Default bound on every numeric column of every star table, in the column's own unit,
 #: where the record schema gives none (or only one side): no quantity the service takes
@@ -663,7 +663,7 @@ class StarTableField(ma.fields.Field):
             text = f'unknown field here; it looks like "{likely}", which other endpoints take'
             text += unread
         elif likely is not None:
-            text = f'unknown field (did you mean "{likely}"?)'
+            text = "unknown field" + did_you_mean([likely])
         else:
             text = "unknown field" + unread
         return f"{text}; {listing}" if listing else text
