@@ -875,6 +875,7 @@ def add_commands(sub) -> None:
     )
     p.add_argument(
         "--model",
+        type=str.lower,
         choices=("standard", "light_time"),
         default="standard",
         help="standard: Hipparcos straight-line model; light_time: with the light-time "
@@ -913,6 +914,7 @@ def add_commands(sub) -> None:
     )
     v.add_argument(
         "--uncertainties",
+        type=str.lower,
         choices=("linear", "monte_carlo", "auto"),
         default="linear",
         help="linear propagation, Monte Carlo draws, or draws only where the parallax is "
@@ -964,6 +966,7 @@ def add_commands(sub) -> None:
     )
     k.add_argument(
         "--reduction",
+        type=str.lower,
         choices=("fk4", "fk5", "fk5_iau1976"),
         help="reduction to the boundaries' equinox B1875.0 (default fk4)",
     )
@@ -993,6 +996,7 @@ def add_commands(sub) -> None:
     )
     x.add_argument(
         "--reduction",
+        type=str.lower,
         choices=("fk4", "fk5", "fk5_iau1976"),
         help="reduction to the boundaries' equinox B1875.0 (default fk4)",
     )
@@ -1184,7 +1188,12 @@ def _image_options(p: argparse.ArgumentParser) -> None:
         metavar="FILE",
         help="image file to write; a .png name gives PNG (default: SVG on stdout)",
     )
-    p.add_argument("--format", choices=("svg", "png"), help="image format (overrides the name)")
+    p.add_argument(
+        "--format",
+        type=str.lower,
+        choices=("svg", "png"),
+        help="image format (overrides the name)",
+    )
     p.add_argument("--title", help="chart title")
     p.add_argument(
         "--width-px",

@@ -10,7 +10,7 @@ from flask import Response, request
 from flask_smorest import abort
 
 from ..charts import FIELD_SIZE_IN, TRACK_SIZE_IN
-from .common import Blueprint, EpochField, StrictBoolean, StrictFloat
+from .common import Blueprint, Choice, EpochField, StrictBoolean, StrictFloat
 from .examples import load_example
 from .observability import count_stars
 from .propagation import StarAstrometrySchema
@@ -33,10 +33,10 @@ _FORMAT_DESCRIPTION = (
 
 
 def _format_field():
-    return ma.fields.String(
+    return Choice(
+        ("svg", "png"),
         load_default=None,
         allow_none=True,
-        validate=ma.validate.OneOf(("svg", "png")),
         metadata={"description": _FORMAT_DESCRIPTION},
     )
 

@@ -397,6 +397,24 @@ def flag_warnings(masks, table, texts: dict) -> list[dict]:
     return out
 
 
+class Choice(ma.fields.String):
+    """One word of a short list, taken in any letter case ("ICRS", "Icrs" and "icrs" are
+    icrs, "SVG" is svg) and passed on as listed: such a word names the same thing in any
+    case (a field's name does not: an unknown name is refused). The OpenAPI document lists
+    the words as written here."""
+
+    def __init__(self, choices, **kwargs):
+        self.choices = tuple(choices)
+        super().__init__(validate=ma.validate.OneOf(self.choices), **kwargs)
+        # a number, true or a list: the list of words, as for a word not in it
+        self.error_messages["invalid"] = "must be one of: " + ", ".join(self.choices)
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        text = super()._deserialize(value, attr, data, **kwargs)
+        folded = text.lower()
+        return folded if folded in self.choices else text
+
+
 class StrictFloat(ma.fields.Float):
     """A JSON number only: marshmallow's Float would also read the string "12.5"."""
 

@@ -17,6 +17,7 @@ from .common import (
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
+    Choice,
     EpochField,
     EpochOutSchema,
     QueryFloat,
@@ -209,9 +210,9 @@ class LookupRequestSchema(ma.Schema):
             "are first moved to it (straight-line motion). Default: catalogue_epoch."
         },
     )
-    reduction = ma.fields.String(
+    reduction = Choice(
+        core.REDUCTIONS,
         load_default="fk4",
-        validate=ma.validate.OneOf(core.REDUCTIONS),
         metadata={"description": REDUCTION_DESCRIPTION},
     )
     near_boundary_arcsec = StrictFloat(
@@ -225,10 +226,10 @@ class LookupRequestSchema(ma.Schema):
             "operator chose another."
         },
     )
-    layout = ma.fields.String(
+    layout = Choice(
+        ("records", "columns"),
         load_default=None,
         allow_none=True,
-        validate=ma.validate.OneOf(("records", "columns")),
         metadata={
             "description": "Response layout: one record per star, or columns. Default: the "
             "layout of the request's stars."
@@ -300,9 +301,9 @@ class CrossingsRequestSchema(ma.Schema):
             "boundary and the fastest it can move."
         },
     )
-    reduction = ma.fields.String(
+    reduction = Choice(
+        core.REDUCTIONS,
         load_default="fk4",
-        validate=ma.validate.OneOf(core.REDUCTIONS),
         metadata={"description": REDUCTION_DESCRIPTION},
     )
 
@@ -356,9 +357,9 @@ class OutlineEquinoxField(EpochField):
 
 
 class OutlineQuerySchema(ma.Schema):
-    frame = ma.fields.String(
+    frame = Choice(
+        core.OUTLINE_FRAMES,
         load_default="icrs",
-        validate=ma.validate.OneOf(core.OUTLINE_FRAMES),
         metadata={
             "description": "Frame of the coordinates: icrs (default); galactic; fk5 at "
             "`equinox` (default J2000.0); fk4 at `equinox` (default B1950.0, E-terms "
@@ -366,9 +367,9 @@ class OutlineQuerySchema(ma.Schema):
         },
     )
     equinox = OutlineEquinoxField(load_default=None)
-    reduction = ma.fields.String(
+    reduction = Choice(
+        core.REDUCTIONS,
         load_default="fk4",
-        validate=ma.validate.OneOf(core.REDUCTIONS),
         metadata={"description": REDUCTION_DESCRIPTION},
     )
     tolerance_arcsec = QueryFloat(

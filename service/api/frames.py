@@ -14,6 +14,7 @@ from ..core.flags import flag_names, present_flag_names
 from ..core.propagation import AT_POLE_RAD
 from .common import (
     Blueprint,
+    Choice,
     EpochField,
     EpochOutSchema,
     always_present,
@@ -154,9 +155,9 @@ class FrameSpecSchema(ma.Schema):
         '{"name": "fk5", "equinox": "J2000.0"}'
     }
 
-    name = ma.fields.String(
+    name = Choice(
+        core.FRAME_NAMES,
         required=True,
-        validate=ma.validate.OneOf(core.FRAME_NAMES),
         metadata={"description": "icrs, fk5, fk4, galactic or ecliptic."},
     )
     equinox = EquinoxField(load_default=None, allow_none=True)
@@ -188,7 +189,9 @@ class FrameField(ma.fields.Nested):
 
     def _deserialize(self, value, attr, data, partial=None, **kwargs):
         if isinstance(value, str):
-            if value not in core.FRAME_NAMES:
+            if value.lower() in core.FRAME_NAMES:  # in any letter case, as Choice
+                value = value.lower()
+            else:
                 shown = value if len(value) <= 64 else value[:61] + "..."  # a client's text
                 raise ma.ValidationError(
                     f"unknown frame {shown!r}: give {', '.join(core.FRAME_NAMES[:-1])} or "

@@ -22,6 +22,7 @@ from .common import (
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
+    Choice,
     EpochField,
     EpochOutSchema,
     WarningSchema,
@@ -293,9 +294,9 @@ class PropagationRequestSchema(ma.Schema):
         EpochRangeSchema,
         metadata={"description": "Evenly spaced target epochs (give this or target_epochs)."},
     )
-    model = ma.fields.String(
+    model = Choice(
+        core.MODELS,
         load_default="standard",
-        validate=ma.validate.OneOf(core.MODELS),
         metadata={
             "description": "standard: straight-line motion in the rigorous Hipparcos "
             "formulation (ESA 1997 Vol. 1 sec. 1.5.5), perspective acceleration included. "
@@ -303,10 +304,10 @@ class PropagationRequestSchema(ma.Schema):
             "routine pmsafe."
         },
     )
-    layout = ma.fields.String(
+    layout = Choice(
+        ("records", "columns"),
         load_default=None,
         allow_none=True,
-        validate=ma.validate.OneOf(("records", "columns")),
         metadata={
             "description": "Response layout: one record per star, or columns. Default: "
             "the layout of the request's stars."

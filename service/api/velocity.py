@@ -31,6 +31,7 @@ from .common import (
     RADIAL_VELOCITY_WARNING,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
+    Choice,
     EpochField,
     EpochOutSchema,
     StrictBoolean,
@@ -274,9 +275,9 @@ class VelocityRequestSchema(ma.Schema):
     solar_motion = ma.fields.Nested(
         SolarMotionSchema, load_default=None, metadata={"description": _SOLAR_MOTION_DESCRIPTION}
     )
-    uncertainty_method = ma.fields.String(
+    uncertainty_method = Choice(
+        ("linear", "monte_carlo", "auto"),
         load_default="linear",
-        validate=ma.validate.OneOf(("linear", "monte_carlo", "auto")),
         metadata={
             "description": "linear: first-order propagation of the covariance (exact for "
             "U, V, W as functions of the proper motion and radial velocity; poor where the "
@@ -318,10 +319,10 @@ class VelocityRequestSchema(ma.Schema):
             "unless its operator chose another."
         },
     )
-    layout = ma.fields.String(
+    layout = Choice(
+        ("records", "columns"),
         load_default=None,
         allow_none=True,
-        validate=ma.validate.OneOf(("records", "columns")),
         metadata={
             "description": "Response layout: one record per star, or columns. Default: "
             "the layout of the request's stars."

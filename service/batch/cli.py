@@ -30,6 +30,7 @@ def add_subcommands(sub) -> None:
     fields = jobs.add_parser("fields", help="list a job's input fields and output columns")
     fields.add_argument(
         "job",
+        type=str.lower,
         choices=sorted(JOBS),
         metavar="job",
         help="the job whose fields to list: " + ", ".join(sorted(JOBS)),
@@ -47,7 +48,9 @@ def _common_options(p) -> None:
     p.add_argument(
         "--keep", default="", help="input columns to copy to the output (comma-separated)"
     )
-    p.add_argument("--format", default="auto", choices=INPUT_FORMATS, help="input format")
+    p.add_argument(
+        "--format", default="auto", type=str.lower, choices=INPUT_FORMATS, help="input format"
+    )
     p.add_argument(
         "--blocksize", help="partition size for reading, e.g. 64MiB (default: 16MiB for Parquet)"
     )
@@ -58,6 +61,7 @@ def _common_options(p) -> None:
     p.add_argument(
         "--local",
         default="threads",
+        type=str.lower,
         choices=LOCAL_SCHEDULERS,
         help="local scheduler (default threads)",
     )

@@ -166,6 +166,7 @@ def _propagate_options(parser) -> None:
     parser.add_argument(
         "--model",
         default="standard",
+        type=str.lower,
         choices=_propagation.MODELS,
         help="motion model: standard (Hipparcos straight-line model) or light_time (SOFA "
         "pmsafe); default standard",
@@ -599,6 +600,7 @@ def _constellations_options(parser) -> None:
     parser.add_argument(
         "--reduction",
         default="fk4",
+        type=str.lower,
         choices=("fk4", "fk5"),
         help="reduction of ICRS positions to the boundaries' equinox B1875.0 (default fk4, "
         "as the boundaries were drawn); the other is compared and disagreements flagged",

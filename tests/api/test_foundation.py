@@ -298,6 +298,7 @@ def _checked_own_fields():
     return {
         common.StrictFloat,  # test_observed_api, test_charts_api: numbers in quotes
         common.StrictBoolean,  # test_charts_api: 0 and "yes" as booleans
+        common.Choice,  # test_observed_api: a word of a list given as a number or list
         common.EpochField,  # test_propagation_api: an epoch of another JSON type
         common.InstantField,  # test_observed_api: an instant of another JSON type
         frames.EquinoxField,  # test_observed_api: an equinox of another JSON type

@@ -779,7 +779,7 @@ def test_a_frame_given_by_its_name_alone_is_that_frame_at_its_default_equinox(
     assert by_name.json["columns"] == by_member.json["columns"]
 
 
-@pytest.mark.parametrize("name", ["B1950", "ICRS", "supergalactic"])
+@pytest.mark.parametrize("name", ["B1950", "icrs ", "supergalactic"])
 def test_an_unknown_frame_name_alone_is_refused_with_the_names(client, frames_example, name):
     r = client.post(FRAMES, json=dict(frames_example, to_frame=name))
     assert_problem(r, 422, "to_frame")
@@ -787,6 +787,72 @@ def test_an_unknown_frame_name_alone_is_refused_with_the_names(client, frames_ex
     assert error["message"].startswith(
         f"unknown frame '{name}': give icrs, fk5, fk4, galactic or ecliptic, or an object"
     )
+
+
+def test_a_word_of_a_list_is_taken_in_any_letter_case(client, frames_example):
+    """ "ICRS", "FK5", "Light_Time", "COLUMNS", "SVG": such a word names one thing in any
+    letter case (they were refused with the list of words); each answer equals that of the
+    word as listed, and says the word as listed."""
+
+    def same(url, body, **words):
+        given = client.post(url, json=dict(body, **words))
+        listed = client.post(url, json=dict(body, **lowered(words)))
+        assert given.status_code == 200, given.get_data(as_text=True)
+        assert given.get_data() == listed.get_data() or given.json == listed.json
+        return given
+
+    def lowered(words):
+        return {
+            k: {**v, "name": v["name"].lower()} if isinstance(v, dict) else v.lower()
+            for k, v in words.items()
+        }
+
+    same(FRAMES, frames_example, to_frame="Galactic", from_frame={"name": "ICRS"})
+    same(FRAMES, dict(frames_example, catalogue_epoch="B1950.0"), from_frame="FK4")
+    star = {"ra_deg": 120.0, "dec_deg": -10.0, "parallax_mas": 20.0, "pm_ra_cosdec_mas_yr": 300.0,
+            "pm_dec_mas_yr": -200.0, "radial_velocity_km_s": 30.0}  # fmt: skip
+    moved = same(
+        "/v1/propagation",
+        {"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2100.0]},
+        model="Light_Time",
+        layout="COLUMNS",
+    )
+    assert (moved.json["model"], moved.json["layout"]) == ("light_time", "columns")
+    same("/v1/constellations/lookup", {"stars": [star]}, reduction="FK5", frame="GALACTIC")
+    same("/v1/velocity", {"stars": [star]}, uncertainty_method="Linear")
+    outline = client.get("/v1/constellations/Ori/outline?frame=FK4&reduction=FK5_IAU1976")
+    assert outline.status_code == 200, outline.get_data(as_text=True)
+    assert (
+        outline.json
+        == client.get("/v1/constellations/ori/outline?frame=fk4&reduction=fk5_iau1976").json
+    )
+    assert (outline.json["properties"]["frame"], outline.json["properties"]["reduction"]) == (
+        "fk4",
+        "fk5_iau1976",
+    )
+    # in a CSV body's query string too
+    text = "ra_deg,dec_deg\n120.0,-10.0\n"
+    upper, lower = (
+        client.post(f"/v1/constellations/lookup?{q}", data=text, content_type="text/csv")
+        for q in ("frame=Galactic&reduction=FK4", "frame=galactic&reduction=fk4")
+    )
+    assert upper.status_code == 200, upper.get_data(as_text=True)
+    assert upper.json["columns"] == lower.json["columns"]
+    # a word still has to be one of the list: letter case is all that is free
+    r = client.post(FRAMES, json=dict(frames_example, to_frame={"name": "Galactic2"}))
+    assert_problem(r, 422, "to_frame.name")
+    assert r.json["errors"][0]["message"].startswith("must be one of: icrs, fk5")
+    # and a word of another JSON type is refused with the list (not read as text)
+    for word in (5, True, ["light_time"]):
+        r = client.post(
+            "/v1/propagation",
+            json={"stars": [star], "catalogue_epoch": 2016.0, "target_epochs": [2100.0],
+                  "model": word},
+        )  # fmt: skip
+        assert_problem(r, 422, "model")
+        assert r.json["errors"] == [
+            {"field": "model", "message": "must be one of: standard, light_time"}
+        ]
 
 
 def test_a_frame_of_another_json_type_shows_both_forms(client, frames_example):

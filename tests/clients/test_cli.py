@@ -840,3 +840,20 @@ def test_implausible_parallax_named_in_every_command_output(tmp_path):
     out = skydrift("batch", "constellations", str(cat), str(tmp_path / "out"), "--epoch",
                    "J2100.0", "--catalogue-epoch", "J2016.0", "--quiet")  # fmt: skip
     assert "implausible_input_flags: parallax_implausible 1" in out.stdout.decode()
+
+
+def test_every_option_of_a_word_list_takes_any_letter_case():
+    """--model LIGHT_TIME, --reduction FK5, --format SVG: read as listed (the API takes such
+    words in any letter case, and so does --frame; argparse refused them)."""
+    seen = 0
+    for path, parser in subcommand_parsers(build_parser()):
+        for action in parser._actions:
+            if not action.choices or isinstance(action, argparse._SubParsersAction):
+                continue
+            for word in action.choices:
+                assert action.type is not None, f"{' '.join(path)} {action.option_strings}"
+                assert action.type(word.upper()) == word
+            seen += 1
+    assert seen >= 6  # --model, --uncertainties, --reduction (two), --format (two charts)
+    args = build_parser().parse_args([*PROPAGATE, "--model", "Light_Time"])
+    assert args.model == "light_time"
