@@ -19,6 +19,7 @@ point somewhere.
 
 from __future__ import annotations
 
+import difflib
 import enum
 import functools
 import math
@@ -800,6 +801,52 @@ def make_site(latitude_deg, longitude_deg, height_m=0.0, name=None, *, prefix="s
     return Site(float(latitude_deg), float(longitude_deg), float(height_m), name)
 
 
+#: Up to this many names, an unknown site's message lists the whole site list.
+SITE_NAMES_LISTED = 12
+
+
+def listed_site_name(given: str, sites: dict, prefix: str = "site") -> str:
+    """The name of the site list that ``given`` stands for: itself, or the one listed name
+    that differs from it in letter case only ("Kestrel-Ridge" for "kestrel-ridge"): a
+    site's name names one place in any case.
+
+    Raises
+    ------
+    ObservedInputError
+        No such name (with the likely ones: the names it is close to, and the whole list
+        when it is short), or several names in other letter case (the list's own
+        ambiguity: both are named).
+    """
+    if given in sites:
+        return given
+    same = sorted(n for n in sites if n.casefold() == given.casefold())
+    if len(same) == 1:
+        return same[0]
+    shown = given if len(given) <= 64 else given[:61] + "..."  # a client's text, cut
+    if same:
+        raise ObservedInputError(
+            f"{prefix}.name",
+            f"site {shown!r} is in the site list in several letter cases ("
+            + ", ".join(repr(n) for n in same)
+            + "): give one as written there",
+        )
+    folded = {n.casefold(): n for n in sorted(sites, reverse=True)}  # alike: the first
+    near = difflib.get_close_matches(given.casefold(), folded, 3, 0.75)
+    score = {n: difflib.SequenceMatcher(None, given.casefold(), n).ratio() for n in near}
+    close = [folded[n] for n in sorted(near, key=lambda n: (-score[n], folded[n]))]
+    if not sites:
+        known = "known: none configured"
+    elif len(sites) <= SITE_NAMES_LISTED:
+        known = "known: " + ", ".join(sorted(sites))
+    else:
+        known = f"{len(sites)} sites are known: GET /v1/sites lists them"
+    hint = ""
+    if close:
+        others = ", ".join(repr(n) for n in close[:-1])
+        hint = f"did you mean {others + ' or ' if others else ''}{close[-1]!r}? "
+    raise ObservedInputError(f"{prefix}.name", f"unknown site {shown!r} ({hint}{known})")
+
+
 def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
     """A site from a name in the operator's list, or from latitude/longitude/height.
 
@@ -822,16 +869,13 @@ def resolve_site(spec, sites: dict | None = None, *, prefix="site") -> Site:
         spec = spec["name"]
     if isinstance(spec, str):
         sites = sites or {}
-        if spec not in sites:
-            known = ", ".join(sorted(sites)) or "none configured"
-            shown = spec if len(spec) <= 64 else spec[:61] + "..."  # a client's text, cut
-            raise ObservedInputError(f"{prefix}.name", f"unknown site {shown!r} (known: {known})")
-        entry = sites[spec]
+        name = listed_site_name(spec, sites, prefix)
+        entry = sites[name]
         return make_site(
             entry["latitude_deg"],
             entry["longitude_deg"],
             entry.get("height_m", 0.0),
-            name=spec,
+            name=name,
             prefix=prefix,
         )
     if isinstance(spec, dict):

@@ -603,6 +603,24 @@ def test_unknown_site_names_the_field(client, observed_example):
     assert "unknown site 'no-such-observatory' (known: " in r.json["errors"][0]["message"]
 
 
+def test_a_site_name_in_other_letter_case_is_the_listed_site(client, observed_example):
+    """ "Kestrel-Ridge" is the demo list's kestrel-ridge, with its own horizon limit (it was
+    an unknown site); the answer names the site as listed."""
+    asked, listed = (
+        client.post(OBS, json=dict(observed_example, site=name))
+        for name in ("Kestrel-Ridge", "kestrel-ridge")
+    )
+    assert asked.status_code == 200, asked.get_data(as_text=True)
+    assert asked.json == listed.json
+    assert asked.json["site"]["name"] == "kestrel-ridge"
+    assert "site list's entry for 'kestrel-ridge'" in asked.json["limits"]["note"]
+    misspelt = client.post(OBS, json=dict(observed_example, site="kestrel-rige"))
+    assert_problem(misspelt, 422, "site.name")
+    assert misspelt.json["errors"][0]["message"] == (
+        "unknown site 'kestrel-rige' (did you mean 'kestrel-ridge'? known: kestrel-ridge)"
+    )
+
+
 def test_unknown_site_name_is_quoted_short(client, observed_example):
     # A client's own text in a message is cut (a 5,000-character name: its first 61).
     r = client.post(OBS, json=dict(observed_example, site="s" * 5000))

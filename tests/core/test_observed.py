@@ -828,6 +828,51 @@ def test_site_by_name_and_inline():
         O.resolve_site({"latitude_deg": -5, "longitude_deg": 100}, sites)
 
 
+def test_a_site_name_in_other_letter_case_is_the_listed_site():
+    """ "Mt-Alder" and "MT-ALDER" are the listed "mt-alder" (they were unknown sites); a name
+    differing only in case from two listed names is refused naming both."""
+    place = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 300.0}
+    sites = {"mt-alder": place, "Kestrel-Ridge": dict(place, latitude_deg=-30.0)}
+    for asked, listed in [("Mt-Alder", "mt-alder"), ("MT-ALDER", "mt-alder"),
+                          ("kestrel-ridge", "Kestrel-Ridge")]:  # fmt: skip
+        site = O.resolve_site(asked, sites)
+        assert site.name == listed
+        assert site.latitude_deg == sites[listed]["latitude_deg"]
+    with pytest.raises(O.ObservedInputError) as info:
+        O.resolve_site("ridge", {"Ridge": place, "RIDGE": place})
+    assert str(info.value) == (
+        "site.name: site 'ridge' is in the site list in several letter cases ('RIDGE', "
+        "'Ridge'): give one as written there"
+    )
+    assert O.resolve_site("RIDGE", {"Ridge": place, "RIDGE": place}).name == "RIDGE"
+
+
+@pytest.mark.parametrize(
+    ("asked", "message"),
+    [
+        ("kestrel-rdge", "unknown site 'kestrel-rdge' (did you mean 'Kestrel-Ridge'? known: "
+         "Kestrel-Ridge, mt-alder)"),
+        ("nowhere", "unknown site 'nowhere' (known: Kestrel-Ridge, mt-alder)"),
+    ],
+)  # fmt: skip
+def test_an_unknown_site_name_gets_the_likely_one_and_the_list(asked, message):
+    place = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 300.0}
+    with pytest.raises(O.ObservedInputError) as info:
+        O.resolve_site(asked, {"mt-alder": place, "Kestrel-Ridge": place})
+    assert str(info.value) == "site.name: " + message
+
+
+def test_a_long_site_list_is_not_written_out_in_a_message():
+    place = {"latitude_deg": 10.0, "longitude_deg": 20.0, "height_m": 300.0}
+    sites = {f"pier-{i:02d}": place for i in range(30)}
+    with pytest.raises(O.ObservedInputError) as info:
+        O.resolve_site("pier-7", sites)
+    assert str(info.value) == (
+        "site.name: unknown site 'pier-7' (did you mean 'pier-07', 'pier-17' or 'pier-27'? "
+        "30 sites are known: GET /v1/sites lists them)"
+    )
+
+
 @pytest.mark.parametrize(
     ("call", "field"),
     [
