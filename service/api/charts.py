@@ -10,7 +10,7 @@ from flask import Response, request
 from flask_smorest import abort
 
 from ..charts import FIELD_SIZE_IN, TRACK_SIZE_IN
-from .common import Blueprint, Choice, EpochField, StrictBoolean, StrictFloat
+from .common import Blueprint, Choice, EpochField, EpochList, StrictBoolean, StrictFloat
 from .examples import load_example
 from .observability import count_stars
 from .propagation import StarAstrometrySchema
@@ -172,8 +172,9 @@ class FieldChartRequestSchema(ma.Schema):
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )
-    epochs = ma.fields.List(
+    epochs = EpochList(
         EpochField(),
+        example='["J2016.0", "J2100.0"]',
         required=True,
         validate=ma.validate.Length(equal=2),
         metadata={"description": "The two epochs shown side by side."},

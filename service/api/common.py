@@ -415,6 +415,15 @@ class Choice(ma.fields.String):
         return folded if folded in self.choices else text
 
 
+class EpochList(ma.fields.List):
+    """A list of epochs or instants: one given alone ("J2030.0" for ["J2030.0"]) is refused
+    with the list's form shown, as marshmallow's "Not a valid list." did not."""
+
+    def __init__(self, inner, *, example: str = '["J2030.0"] for one epoch', **kwargs):
+        super().__init__(inner, **kwargs)
+        self.error_messages["invalid"] = f"must be a list, such as {example}"
+
+
 class StrictFloat(ma.fields.Float):
     """A JSON number only: marshmallow's Float would also read the string "12.5"."""
 

@@ -40,6 +40,7 @@ from .examples import load_example
 from .frames import FrameField, frame_from_spec, frame_with_equinox
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
+from .spelling import meant_by_unknown_names
 from .tables import IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
@@ -247,6 +248,8 @@ class LookupRequestSchema(ma.Schema):
         # A catalogue_epoch given but refused for its own sake is not called missing.
         given = isinstance(original, dict) and original.get("catalogue_epoch") is not None
         if data.get("epoch") is not None and not given:
+            if "catalogue_epoch" in meant_by_unknown_names(original, self):
+                return  # "catalog_epoch": its own message says which it stands for
             raise ma.ValidationError(
                 "give catalogue_epoch (the epoch of the positions) with epoch", "catalogue_epoch"
             )

@@ -16,6 +16,7 @@ from .common import (
     Blueprint,
     Choice,
     EpochField,
+    EpochList,
     EpochOutSchema,
     always_present,
     bound_epoch_list,
@@ -255,7 +256,7 @@ class FramesRequestSchema(ma.Schema):
         load_default=lambda: {"name": "icrs"},
         metadata={"description": "Frame of the answer (default ICRS)."},
     )
-    target_epochs = ma.fields.List(
+    target_epochs = EpochList(
         EpochField(),
         validate=ma.validate.Length(min=1),
         metadata={

@@ -28,6 +28,7 @@ from .common import (
     WARNINGS_LIMIT_TEXT,
     Blueprint,
     EpochField,
+    EpochList,
     EpochOutSchema,
     InstantField,
     StrictBoolean,
@@ -413,8 +414,9 @@ class ObservedRequestSchema(ma.Schema):
         load_default=lambda: {"name": "icrs"},
         metadata={"description": "Frame of the given astrometry (default ICRS)."},
     )
-    instants = ma.fields.List(
+    instants = EpochList(
         InstantField(validate=_within_supported_span),
+        example='["now"] for one instant',
         required=True,
         validate=ma.validate.Length(min=1),
         metadata={

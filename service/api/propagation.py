@@ -24,6 +24,7 @@ from .common import (
     Blueprint,
     Choice,
     EpochField,
+    EpochList,
     EpochOutSchema,
     WarningSchema,
     always_present,
@@ -43,6 +44,7 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
+from .spelling import meant_by_unknown_names
 from .tables import MAX_ABS_MAS, IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
@@ -285,7 +287,7 @@ class PropagationRequestSchema(ma.Schema):
     catalogue_epoch = EpochField(
         required=True, metadata={"description": "Epoch of the given astrometry."}
     )
-    target_epochs = ma.fields.List(
+    target_epochs = EpochList(
         EpochField(),
         validate=ma.validate.Length(min=1),
         metadata={"description": "Epochs to move the stars to (give this or target_range)."},
@@ -325,6 +327,11 @@ class PropagationRequestSchema(ma.Schema):
         has_list = sent.get("target_epochs") is not None
         has_range = sent.get("target_range") is not None
         if has_list == has_range:
+            if not has_list and meant_by_unknown_names(sent, self) & {
+                "target_epochs",
+                "target_range",
+            }:
+                return  # "target_epoch": its own message says which it stands for
             raise ma.ValidationError(
                 "give exactly one of target_epochs or target_range", "target_epochs"
             )

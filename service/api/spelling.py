@@ -169,6 +169,22 @@ def likely_names(given: str, accepted) -> list[str]:
     return [] if likely is None else [likely]
 
 
+def meant_by_unknown_names(sent, schema) -> set[str]:
+    """The fields of ``schema`` that an unknown name of ``sent`` (a request body) stands
+    for, where it stands for one only (as the problem's hint names it): a check of several
+    fields that would call such a field missing keeps quiet, as "is required" does
+    (errors.with_likely_names), since the name's own message says which it is."""
+    if not isinstance(sent, dict):
+        return set()
+    accepted = [f.data_key or name for name, f in schema.fields.items() if not f.dump_only]
+    meant = set()
+    for key in set(sent).difference(accepted):
+        likely = likely_names(key, accepted)
+        if len(likely) == 1:
+            meant.add(likely[0])
+    return meant
+
+
 def did_you_mean(likely: list[str]) -> str:
     """' (did you mean "a"?)' or ' (did you mean "a" or "b"?)'; '' for none."""
     named = " or ".join(f'"{name}"' for name in likely)

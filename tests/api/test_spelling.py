@@ -177,6 +177,51 @@ def test_a_required_field_an_unknown_name_stands_for_is_not_called_missing_too(c
     }
 
 
+def test_a_check_of_two_fields_keeps_quiet_about_one_an_unknown_name_stands_for(client):
+    """ "target_epoch" (or "range") for the target, "catalog_epoch" for a lookup's epoch: the
+    name's message says which field it is; the check that one of two fields is given ("give
+    exactly one of target_epochs or target_range") or that a field comes with another ("give
+    catalogue_epoch ... with epoch") no longer calls it missing as well."""
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
+    base = {"stars": [star], "catalogue_epoch": "J2016.0"}
+    for name, value, meant in [("target_epoch", "J2030.0", "target_epochs"),
+                               ("range", {"start": 2016.0}, "target_range")]:  # fmt: skip
+        got = messages(client.post("/v1/propagation", json=dict(base, **{name: value})))
+        assert got == {name: f'is not a field of this request (did you mean "{meant}"?)'}
+    # with no such name, and with both given, the check speaks as before
+    for body in (base, dict(base, target_epochs=[2030.0], target_range={
+            "start": 2016.0, "stop": 2030.0, "count": 3})):  # fmt: skip
+        got = messages(client.post("/v1/propagation", json=body))
+        assert got == {"target_epochs": "give exactly one of target_epochs or target_range"}
+    lookup = {"stars": [star], "epoch": "J2100.0"}
+    got = messages(client.post("/v1/constellations/lookup", json=dict(lookup, catalog_epoch=2016)))
+    assert got == {
+        "catalog_epoch": 'is not a field of this request (did you mean "catalogue_epoch"?)'
+    }
+    got = messages(client.post("/v1/constellations/lookup", json=lookup))
+    assert got == {
+        "catalogue_epoch": "give catalogue_epoch (the epoch of the positions) with epoch"
+    }
+
+
+def test_an_epoch_given_alone_where_a_list_is_taken_is_shown_the_list_form(client):
+    """ "target_epochs": "J2030.0" was answered "must be a list" (marshmallow's words): the
+    answer shows the list's form, on every request that takes a list of epochs."""
+    star = {"ra_deg": 10.0, "dec_deg": 20.0, "pm_ra_cosdec_mas_yr": 1.0, "pm_dec_mas_yr": 2.0}
+    base = {"stars": [star], "catalogue_epoch": "J2016.0"}
+    one_epoch = 'must be a list, such as ["J2030.0"] for one epoch'
+    for path, body, expected in [
+        ("/v1/propagation", dict(base, target_epochs="J2030.0"), {"target_epochs": one_epoch}),
+        ("/v1/frames", dict(base, from_frame="icrs", target_epochs=2030.0),
+         {"target_epochs": one_epoch}),
+        ("/v1/observed", dict(base, site="kestrel-ridge", instants="now"),
+         {"instants": 'must be a list, such as ["now"] for one instant'}),
+        ("/v1/charts/field", dict(base, epochs="J2100.0"),
+         {"epochs": 'must be a list, such as ["J2016.0", "J2100.0"]'}),
+    ]:  # fmt: skip
+        assert messages(client.post(path, json=body)) == expected, path
+
+
 @pytest.fixture(scope="module")
 def client():
     return create_app().test_client()
