@@ -22,6 +22,30 @@ def openapi_json():
     return Response(dumps(openapi_document()), mimetype="application/json")
 
 
+@blp.route("/")
+def index():
+    """Where to start: the reference page, the OpenAPI document, the probes and every
+    operation (from the document, so the list cannot drift from it). Not an operation of
+    the document itself, as /docs and /openapi.json are not."""
+    spec = openapi_document()
+    operations = [
+        f"{method.upper()} {path}"
+        for path, ops in spec.get("paths", {}).items()
+        for method, op in ops.items()
+        if isinstance(op, dict) and "responses" in op
+    ]
+    body = {
+        "service": spec.get("info", {}).get("title", ""),
+        "version": spec.get("info", {}).get("version", ""),
+        "reference": "/docs",
+        "openapi": "/openapi.json",
+        "health": "/health",
+        "ready": "/ready",
+        "operations": operations,
+    }
+    return Response(dumps(body), mimetype="application/json")
+
+
 def _type_text(schema: dict) -> str:
     """The type of a JSON schema as the page shows it: "string or number", a schema name."""
     typ = schema.get("type", "")

@@ -303,6 +303,8 @@ def _likely_path(path: str) -> str | None:
     written = path.rstrip("/").split("/")
     candidates = {}
     for known in _paths():
+        if known == "/":  # the index: no misspelt path stands for it
+            continue
         parts = known.split("/")
         if len(parts) == len(written):
             parts = [w if p.startswith("{") else p for p, w in zip(parts, written, strict=True)]

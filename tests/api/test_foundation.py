@@ -20,6 +20,40 @@ def test_health(client):
     assert r.headers["X-Request-ID"]
 
 
+def test_the_root_points_to_the_reference_and_lists_the_operations(client):
+    """GET / was a 404: a client (or a browser) that starts at the root is told where the
+    reference, the OpenAPI document and the probes are, and every operation, as the
+    document lists them (each answers something other than a routing 404 or 405)."""
+    from service import __version__
+
+    r = client.get("/")
+    assert r.status_code == 200
+    assert r.mimetype == "application/json"
+    body = r.json
+    assert (body["service"], body["version"]) == ("Skydrift", __version__)
+    doc = client.get("/openapi.json").json
+    documented = {
+        f"{method.upper()} {path}"
+        for path, ops in doc["paths"].items()
+        for method in ops
+        if method != "parameters"  # (the path's own, not an operation)
+    }
+    assert set(body["operations"]) == documented
+    assert len(body["operations"]) == len(documented) >= 16
+    assert "/" not in doc["paths"]  # an index, as /docs is, not an operation
+    for key in ("reference", "openapi", "health", "ready"):
+        assert client.get(body[key]).status_code == 200, key
+    for operation in body["operations"]:
+        method, path = operation.split(" ", 1)
+        path = path.replace("{abbreviation}", "Ori")
+        answer = client.open(path, method=method, json={} if method == "POST" else None)
+        assert answer.status_code not in (404, 405), operation
+    # a path near none still gets the routing 404, and never "/" as its likely meaning
+    r = client.get("/x")
+    assert r.status_code == 404
+    assert "Did you mean" not in r.json["detail"]
+
+
 def test_request_id_echoed(client):
     r = client.get("/health", headers={"X-Request-ID": "abc-123"})
     assert r.headers["X-Request-ID"] == "abc-123"
