@@ -44,6 +44,7 @@ NAME_ALIASES = {
     "end_epoch": ("end", "target_range"),
     "stop_epoch": ("end", "target_range"),
     "epochs": ("target_epochs", "instants"),
+    "epoch": ("instants",),  # beside catalogue_epoch; where target_epochs is taken, both
     "times": _WHEN,
     "time": _WHEN,
     "dates": _WHEN,
@@ -161,11 +162,15 @@ def likely_names(given: str, accepted) -> list[str]:
     if not isinstance(given, str):
         return []
     lowered = {str(a).lower() for a in accepted}
-    if not lowered.intersection(NAME_ALIASES.get(given.lower(), ())):
-        holding = names_holding(given, accepted)
-        if 2 <= len(holding) <= 3:
-            return holding
+    aliased = lowered.intersection(NAME_ALIASES.get(given.lower(), ()))
+    holding = names_holding(given, accepted)
+    if not aliased and 2 <= len(holding) <= 3:
+        return holding
     likely = closest_name(given, accepted)
+    if len(holding) == 1 and holding[0] != likely and (likely is None or aliased):
+        # the one name holding it ("limit": horizon_limit_deg), beside an alias the request
+        # takes ("epoch" on an observed place: catalogue_epoch or instants)
+        return holding if likely is None else [holding[0], likely]
     return [] if likely is None else [likely]
 
 

@@ -76,6 +76,8 @@ def test_two_alike_get_no_suggestion():
 
 
 FRAMES_REQUEST = ["stars", "catalogue_epoch", "from_frame", "to_frame", "target_epochs"]
+OBSERVED_REQUEST = ["stars", "catalogue_epoch", "instants", "site", "atmosphere"]
+OBSERVED_REQUEST += ["include_rates", "frame"]
 
 
 @pytest.mark.parametrize(
@@ -89,6 +91,14 @@ FRAMES_REQUEST = ["stars", "catalogue_epoch", "from_frame", "to_frame", "target_
         ("from", FRAMES_REQUEST, ["from_frame"]),
         ("epochs", REQUEST_FIELDS, ["target_epochs"]),  # the alias first
         ("target_epoch", REQUEST_FIELDS, ["target_epochs"]),
+        # "epoch" on an observed place: the catalogue epoch or the instants (it was offered
+        # nothing), and on a request with one epoch field, that one
+        ("epoch", OBSERVED_REQUEST, ["catalogue_epoch", "instants"]),
+        ("Epoch", ["stars", "catalogue_epoch", "relative_to_lsr"], ["catalogue_epoch"]),
+        # the one name holding a word whole, where nothing else is likely (was nothing)
+        ("limit", OBSERVED_REQUEST + ["horizon_limit_deg"], ["horizon_limit_deg"]),
+        ("method", ["stars", "uncertainty_method", "layout"], ["uncertainty_method"]),
+        ("lsr", ["stars", "relative_to_lsr", "solar_motion"], ["relative_to_lsr"]),
         # none for units alone or nothing alike
         ("deg", ["horizon_limit_deg", "sun_avoidance_deg"], []),
         ("colour", REQUEST_FIELDS, []),
@@ -123,10 +133,6 @@ def test_an_unknown_field_for_two_alike_names_both(client):
 )
 def test_the_only_name_that_begins_with_the_given_words(given, accepted, likely):
     assert closest_name(given, accepted) == likely
-
-
-OBSERVED_REQUEST = ["stars", "catalogue_epoch", "instants", "site", "atmosphere"]
-OBSERVED_REQUEST += ["include_rates", "frame"]
 
 
 @pytest.mark.parametrize(
