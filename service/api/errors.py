@@ -290,7 +290,7 @@ def _routing_detail(error: HTTPException) -> str | None:
     likely = _likely_path(path)
     hint = f" Did you mean {likely}?" if likely else ""
     return (
-        f"No endpoint at {clip_echo(path, 100)}.{hint} The endpoints are listed at /docs "
+        f"No endpoint at {clip_echo(path, 100)}.{hint} The endpoints are listed at /, /docs "
         "and /openapi.json."
     )
 

@@ -178,7 +178,7 @@ def test_unknown_path_is_problem_json(client):
     assert r.mimetype == "application/problem+json"
     assert r.json["status"] == 404
     assert r.json["detail"] == (
-        "No endpoint at /no/such/thing. The endpoints are listed at /docs and /openapi.json."
+        "No endpoint at /no/such/thing. The endpoints are listed at /, /docs and /openapi.json."
     )
 
 
