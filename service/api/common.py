@@ -146,12 +146,17 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
         if name == table or fld.dump_only:
             continue
         description = fld.metadata.get("description", "")
+        param_schema = {"type": "string"}
+        if isinstance(fld, Choice):  # its words, as the JSON body's schema lists them
+            param_schema["enum"] = list(fld.choices)
+            if isinstance(fld.load_default, str):
+                param_schema["default"] = fld.load_default
         params.append(
             {
                 "name": name,
                 "in": "query",
                 "required": False,
-                "schema": {"type": "string"},
+                "schema": param_schema,
                 "description": "With a text/csv or Arrow stream body only (a JSON body "
                 "carries it inside): "
                 + description

@@ -80,6 +80,9 @@ def _schema_rows(spec: dict, schema: dict, depth: int = 0) -> list[str]:
     for name, prop in schema.get("properties", {}).items():
         typ = _type_text(prop)
         desc = prop.get("description", "")
+        words = [str(w) for w in prop.get("enum", ()) if w is not None]
+        if words:  # the words themselves (a description may only say what they mean)
+            desc += f" One of: {', '.join(words)}."
         rows.append(
             f"<tr><td style='padding-left:{depth * 1.5 + 0.3}em'><code>{html.escape(name)}"
             f"</code>{' *' if name in required else ''}</td><td>{html.escape(str(typ))}</td>"

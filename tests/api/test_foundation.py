@@ -381,6 +381,27 @@ def test_problem_detail_counts_the_invalid_values_not_listed(client, layout):
     assert problem["detail"] == "The request has 60 invalid fields."
 
 
+def test_the_words_of_a_list_are_shown_wherever_the_field_is(client):
+    """A field taking a word of a list (common.Choice) lists its words on the reference page
+    and, as a query option of a CSV or Arrow body, in the OpenAPI document: "layout" was
+    described as "one record per star, or columns" without the words records and columns,
+    and its query option had no enum."""
+    doc = client.get("/openapi.json").json
+    body = doc["components"]["schemas"]["PropagationRequest"]["properties"]
+    query = {p["name"]: p["schema"] for p in doc["paths"]["/v1/propagation"]["post"]["parameters"]}
+    for name in ("model", "layout"):
+        assert query[name]["enum"] == [w for w in body[name]["enum"] if w is not None], name
+    assert query["model"]["default"] == "standard"
+    lookup = {
+        p["name"]: p["schema"]
+        for p in doc["paths"]["/v1/constellations/lookup"]["post"]["parameters"]
+    }
+    assert lookup["reduction"]["enum"] == ["fk4", "fk5", "fk5_iau1976"]
+    text = html.unescape(client.get("/docs").get_data(as_text=True))
+    assert "the layout of the request's stars. One of: records, columns.</td>" in text
+    assert "pmsafe. One of: standard, light_time.</td>" in text
+
+
 def test_reference_page_gives_every_field_a_type(client):
     """Every field row of the reference page names its type. A field that may be null holds
     its schema in anyOf (the observed atmosphere, the velocities' solar_motion) and was shown
