@@ -148,9 +148,9 @@ def _csv_doc(schema, table: str, csv_answer: bool = True) -> dict:
         description = fld.metadata.get("description", "")
         param_schema = {"type": "string"}
         if isinstance(fld, Choice):  # its words, as the JSON body's schema lists them
+            # (no default: the option is for CSV and Arrow bodies only, and a client that
+            # fills in defaults would send it with a JSON body, which refuses it)
             param_schema["enum"] = list(fld.choices)
-            if isinstance(fld.load_default, str):
-                param_schema["default"] = fld.load_default
         params.append(
             {
                 "name": name,
