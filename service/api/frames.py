@@ -32,6 +32,7 @@ from .common import (
     star_count_field,
     units_field,
 )
+from .errors import clip_echo
 from .examples import load_example
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
@@ -190,14 +191,11 @@ class FrameField(ma.fields.Nested):
 
     def _deserialize(self, value, attr, data, partial=None, **kwargs):
         if isinstance(value, str):
-            if value.lower() in core.FRAME_NAMES:  # in any letter case, as Choice
-                value = value.lower()
-            else:
-                shown = value if len(value) <= 64 else value[:61] + "..."  # a client's text
+            if value.lower() not in core.FRAME_NAMES:  # (the name's Choice folds its case)
                 raise ma.ValidationError(
-                    f"unknown frame {shown!r}: give {', '.join(core.FRAME_NAMES[:-1])} or "
-                    f"{core.FRAME_NAMES[-1]}, or an object with an equinox such as "
-                    '{"name": "fk4", "equinox": "B1950.0"}'
+                    f"unknown frame {clip_echo(value, 64)!r}: give "
+                    f"{', '.join(core.FRAME_NAMES[:-1])} or {core.FRAME_NAMES[-1]}, or an "
+                    'object with an equinox such as {"name": "fk4", "equinox": "B1950.0"}'
                 )
             value = {"name": value}
         return super()._deserialize(value, attr, data, partial=partial, **kwargs)
