@@ -830,10 +830,14 @@ def listed_site_name(given: str, sites: dict, prefix: str = "site") -> str:
             + ", ".join(repr(n) for n in same)
             + "): give one as written there",
         )
-    folded = {n.casefold(): n for n in sorted(sites, reverse=True)}  # alike: the first
-    near = difflib.get_close_matches(given.casefold(), folded, 3, 0.75)
-    score = {n: difflib.SequenceMatcher(None, given.casefold(), n).ratio() for n in near}
-    close = [folded[n] for n in sorted(near, key=lambda n: (-score[n], folded[n]))]
+    # Up to three listed names as similar as the API's spelling hints ask (difflib's ratio
+    # of at least 0.75, letter case aside), the most similar first, ties alphabetical.
+    matcher = difflib.SequenceMatcher(b=given.casefold())
+    ranked = []
+    for name in sites:
+        matcher.set_seq1(name.casefold())
+        ranked.append((-matcher.ratio(), name))
+    close = [name for score, name in sorted(ranked) if -score >= 0.75][:3]
     if not sites:
         known = "known: none configured"
     elif len(sites) <= SITE_NAMES_LISTED:
