@@ -21,7 +21,7 @@ from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntit
 
 from ..core.epochs import EPOCH_FORMS
 from .jsonio import dumps
-from .spelling import did_you_mean, likely_names
+from .spelling import accepted_names, did_you_mean, likely_names
 
 log = logging.getLogger("skydrift.errors")
 
@@ -140,8 +140,7 @@ def with_likely_names(messages, schema):
         if key in _LOCATIONS and isinstance(value, dict):
             out[key] = with_likely_names(value, schema)
         elif value == _UNKNOWN and isinstance(key, str):
-            accepted = [f.data_key or name for name, f in fields.items() if not f.dump_only]
-            likely = likely_names(key, accepted)
+            likely = likely_names(key, accepted_names(schema))
             out[key] = [_unknown_field_text(likely)] if likely else value
             if len(likely) == 1:
                 meant.add(likely[0])

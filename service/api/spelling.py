@@ -174,6 +174,11 @@ def likely_names(given: str, accepted) -> list[str]:
     return [] if likely is None else [likely]
 
 
+def accepted_names(schema) -> list[str]:
+    """The names a request may give for the fields of a marshmallow ``schema``."""
+    return [f.data_key or name for name, f in schema.fields.items() if not f.dump_only]
+
+
 def meant_by_unknown_names(sent, schema) -> set[str]:
     """The fields of ``schema`` that an unknown name of ``sent`` (a request body) stands
     for, where it stands for one only (as the problem's hint names it): a check of several
@@ -181,7 +186,7 @@ def meant_by_unknown_names(sent, schema) -> set[str]:
     (errors.with_likely_names), since the name's own message says which it is."""
     if not isinstance(sent, dict):
         return set()
-    accepted = [f.data_key or name for name, f in schema.fields.items() if not f.dump_only]
+    accepted = accepted_names(schema)
     meant = set()
     for key in set(sent).difference(accepted):
         likely = likely_names(key, accepted)
