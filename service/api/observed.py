@@ -669,6 +669,16 @@ class ObservedResponseSchema(ma.Schema):
     )
 
 
+def _listed_horizon_limit(entry: dict, settings) -> tuple[float, str]:
+    """(degrees, source) of the horizon limit a request gets for the site list ``entry``
+    it names when it gives none: the entry's own ("site_list"), or else the service's
+    setting ("setting"; also for an inline site, ``entry`` {}). GET /v1/sites lists it."""
+    own = entry.get("horizon_limit_deg")
+    if own is None:
+        return float(settings.horizon_limit_deg), "setting"
+    return float(own), "site_list"
+
+
 def _avoidance_setting_note(avoidance: float) -> str:
     """Where the service's own Sun avoidance angle comes from, saying so when it is the
     built-in placeholder."""
@@ -741,13 +751,13 @@ def observed(args):
         # same name as a label, at other coordinates.
         spec = args["site"]
         by_name = isinstance(spec, str) or (isinstance(spec, dict) and set(spec) == {"name"})
-        own = sites.get(site.name, {}).get("horizon_limit_deg") if by_name else None
-        if own is None:
-            horizon = settings.horizon_limit_deg
-            horizon_note = "Horizon limit from the service's setting SKYDRIFT_HORIZON_LIMIT_DEG."
-        else:
-            horizon = float(own)
-            horizon_note = f"Horizon limit from the site list's entry for {site.name!r}."
+        entry = sites.get(site.name, {}) if by_name else {}
+        horizon, source = _listed_horizon_limit(entry, settings)
+        horizon_note = (
+            f"Horizon limit from the site list's entry for {site.name!r}."
+            if source == "site_list"
+            else "Horizon limit from the service's setting SKYDRIFT_HORIZON_LIMIT_DEG."
+        )
     avoidance = args.get("sun_avoidance_deg")
     if avoidance is not None:
         limits_note = f"Advisory. {horizon_note} Sun avoidance angle as given in the request."
@@ -1003,7 +1013,7 @@ def list_sites():
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     listed = []
     for name, entry in sorted(_site_list().items()):
-        own = entry.get("horizon_limit_deg")
+        horizon, source = _listed_horizon_limit(entry, settings)
         full_name = entry.get("name")
         listed.append(
             {
@@ -1012,8 +1022,8 @@ def list_sites():
                 "latitude_deg": float(entry["latitude_deg"]),
                 "longitude_deg": float(entry["longitude_deg"]),
                 "height_m": float(entry["height_m"]),
-                "horizon_limit_deg": float(settings.horizon_limit_deg if own is None else own),
-                "horizon_limit_source": "setting" if own is None else "site_list",
+                "horizon_limit_deg": horizon,
+                "horizon_limit_source": source,
             }
         )
     avoidance = settings.sun_avoidance_deg
