@@ -854,6 +854,6 @@ def test_every_option_of_a_word_list_takes_any_letter_case():
                 assert action.type is not None, f"{' '.join(path)} {action.option_strings}"
                 assert action.type(word.upper()) == word
             seen += 1
-    assert seen >= 6  # --model, --uncertainties, --reduction (two), --format (two charts)
+    assert seen >= 6  # --model, --uncertainties, --reduction, --format, and the batch jobs'
     args = build_parser().parse_args([*PROPAGATE, "--model", "Light_Time"])
     assert args.model == "light_time"
