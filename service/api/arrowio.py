@@ -115,7 +115,9 @@ class ArrowTable:
                 arr = np.where(bad, np.nan, arr)  # reported once, not again by the range check
         if nulls and not spec.allow_none:
             errors.add_indices(
-                np.flatnonzero(~_valid(col)), spec.name, "is required and may not be null"
+                np.flatnonzero(~_valid(col)),
+                spec.name,
+                spec.missing("is required and may not be null"),
             )
         return arr
 

@@ -20,6 +20,7 @@ from ..core.flags import flag_names
 from ..numbers import DECIMAL_TEXT
 from . import arrowio, csvio
 from .jsonio import BodyParser
+from .tables import MISSING_HINT_KEY
 
 JSON_MIMETYPES = ("application/json",)
 
@@ -477,20 +478,28 @@ EPOCH_DESCRIPTION = (
 )
 
 
-def number_field(description, *, required=False, lo=None, hi=None, **range_kw):
+def number_field(description, *, required=False, lo=None, hi=None, missing_hint="", **range_kw):
     """A float field of a record schema: described, bounded, null allowed unless required.
 
     ``lo``/``hi`` become a ``validate.Range`` (``range_kw`` passes min_inclusive and
     max_inclusive), which ``StarTableField`` also reads to validate whole columns with numpy.
+    ``missing_hint`` (a required field) says what to send instead of leaving the value out;
+    the table's "is required" errors add it.
     """
     validators = []
     if lo is not None or hi is not None:
         validators.append(ma.validate.Range(min=lo, max=hi, **range_kw))
+    metadata = {"description": description}
+    if missing_hint and required:
+        metadata = {
+            "description": f"{description} Required ({missing_hint}).",
+            MISSING_HINT_KEY: missing_hint,
+        }
     return ma.fields.Float(
         required=required,
         allow_none=not required,
         validate=validators,
-        metadata={"description": description},
+        metadata=metadata,
     )
 
 

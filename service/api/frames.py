@@ -37,7 +37,7 @@ from .examples import load_example
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
-from .tables import IgnoredColumnsField, StarTableField
+from .tables import NO_PROPER_MOTION_HINT, IgnoredColumnsField, StarTableField
 
 blp = Blueprint(
     "frames",
@@ -97,9 +97,12 @@ FrameStarSchema = ma.Schema.from_dict(
             "for FK4: convert tropical-century catalogue values first). At a pole (dec_deg "
             "+-90) east and north are those of the ra_deg given (flag at_pole).",
             required=True,
+            missing_hint=NO_PROPER_MOTION_HINT,
         ),
         "pm_dec_mas_yr": _num(
-            "Proper motion along the latitude, mas per Julian year.", required=True
+            "Proper motion along the latitude, mas per Julian year.",
+            required=True,
+            missing_hint=NO_PROPER_MOTION_HINT,
         ),
         "radial_velocity_km_s": _num(
             "Radial velocity, km/s, positive receding. Null if unknown.",

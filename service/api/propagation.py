@@ -45,7 +45,13 @@ from .common import (
 from .examples import load_example
 from .observability import count_stars
 from .spelling import meant_by_unknown_names
-from .tables import MAX_ABS_MAS, IgnoredColumnsField, RowCheck, StarTableField
+from .tables import (
+    MAX_ABS_MAS,
+    NO_PROPER_MOTION_HINT,
+    IgnoredColumnsField,
+    RowCheck,
+    StarTableField,
+)
 
 blp = Blueprint(
     "propagation",
@@ -117,11 +123,16 @@ _STAR_FIELDS = {
     "pm_ra_cosdec_mas_yr": _num(
         "Proper motion in right ascension times cos(dec), mas/yr.",
         required=True,
+        missing_hint=NO_PROPER_MOTION_HINT,
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
     "pm_dec_mas_yr": _num(
-        "Proper motion in declination, mas/yr.", required=True, lo=-MAX_ABS_MAS, hi=MAX_ABS_MAS
+        "Proper motion in declination, mas/yr.",
+        required=True,
+        missing_hint=NO_PROPER_MOTION_HINT,
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
     "radial_velocity_km_s": _num(
         "Radial velocity, km/s, positive receding. Null if unknown.",

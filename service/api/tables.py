@@ -62,6 +62,15 @@ MAX_IGNORED_COLUMNS = 200
 MAX_COLUMN_NAME_LENGTH = 256
 
 
+#: Metadata key of a record schema's field: what to send where the value is missing
+#: (:func:`.common.number_field`'s ``missing_hint``), said with "is required".
+MISSING_HINT_KEY = "missing_hint"
+#: The hint of the proper-motion fields where they are required.
+NO_PROPER_MOTION_HINT = (
+    "give 0 for a target without proper motion: a missing one is not taken as zero"
+)
+
+
 @dataclass
 class ColumnSpec:
     """What one column accepts, read from a marshmallow field of the record schema."""
@@ -74,11 +83,14 @@ class ColumnSpec:
     hi: float | None = None
     lo_inclusive: bool = True
     hi_inclusive: bool = True
+    #: What to send instead, said where a required value is missing (common.number_field).
+    missing_hint: str = ""
 
     @classmethod
     def from_field(cls, name: str, fld: ma.fields.Field) -> ColumnSpec:
         kind = "number" if isinstance(fld, ma.fields.Number) else "id"
         spec = cls(name, kind, bool(fld.required), bool(fld.allow_none))
+        spec.missing_hint = fld.metadata.get(MISSING_HINT_KEY, "")
         for v in fld.validators:  # several Range validators: their intersection
             if not isinstance(v, ma.validate.Range):
                 continue
@@ -95,6 +107,10 @@ class ColumnSpec:
                 )
                 spec.hi = v.max
         return spec
+
+    def missing(self, message: str) -> str:
+        """``message`` (a required value is missing), with the field's hint if it has one."""
+        return f"{message} ({self.missing_hint})" if self.missing_hint else message
 
     def range_text(self) -> str:
         if self.lo is not None and self.hi is not None:
@@ -239,7 +255,7 @@ def _number_column(values: list, spec: ColumnSpec, errors: TableErrors) -> np.nd
             errors.add_indices(other, spec.name, NUMBER_MESSAGE)
     if None in values and not spec.allow_none:
         nulls = [i for i, v in enumerate(values) if v is None]
-        errors.add_indices(nulls, spec.name, "is required and may not be null")
+        errors.add_indices(nulls, spec.name, spec.missing("is required and may not be null"))
     if bad:
         return np.full(len(values), np.nan)
     try:
@@ -314,7 +330,9 @@ def _csv_number_column(cells: list, spec: ColumnSpec, errors: TableErrors) -> np
         )
         arr[not_finite] = np.nan
     if empty.any() and not spec.allow_none:
-        errors.add_indices(np.flatnonzero(empty), spec.name, "is required; the cell is empty")
+        errors.add_indices(
+            np.flatnonzero(empty), spec.name, spec.missing("is required; the cell is empty")
+        )
     return arr
 
 
@@ -610,7 +628,7 @@ class StarTableField(ma.fields.Field):
             values = raw.get(spec.name)
             if values is None:
                 if spec.required and spec.name not in lost:
-                    errors.add(errors.header_key(spec.name), "is required")
+                    errors.add(errors.header_key(spec.name), spec.missing("is required"))
                     lost.add(spec.name)
                 continue
             if spec.kind == "id":

@@ -54,6 +54,7 @@ from .tables import (
     MAX_ABS_MAS,
     MAX_DISTANCE_PC,
     MIN_DISTANCE_PC,
+    NO_PROPER_MOTION_HINT,
     IgnoredColumnsField,
     RowCheck,
     StarTableField,
@@ -130,11 +131,16 @@ _VELOCITY_STAR_FIELDS = {
     "pm_ra_cosdec_mas_yr": _num(
         "Proper motion in right ascension times cos(dec), mas/yr.",
         required=True,
+        missing_hint=NO_PROPER_MOTION_HINT,
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
     "pm_dec_mas_yr": _num(
-        "Proper motion in declination, mas/yr.", required=True, lo=-MAX_ABS_MAS, hi=MAX_ABS_MAS
+        "Proper motion in declination, mas/yr.",
+        required=True,
+        missing_hint=NO_PROPER_MOTION_HINT,
+        lo=-MAX_ABS_MAS,
+        hi=MAX_ABS_MAS,
     ),
     "radial_velocity_km_s": _num(
         "Radial velocity, km/s, positive receding. Null if unknown (then U, V, W and the "

@@ -404,6 +404,18 @@ def test_missing_required_column(client):
     assert fields == [("stars.ra_deg", "is required")]
 
 
+def test_missing_proper_motion_says_to_give_zero(client):
+    hint = "(give 0 for a target without proper motion: a missing one is not taken as zero)"
+    t = small_table(pm_dec_mas_yr=pa.array([-1.0, None, -3.0]))
+    assert problem_fields(post_arrow(client, stream_of(t))) == [
+        ("stars.pm_dec_mas_yr[1]", f"is required and may not be null {hint}")
+    ]
+    no_pm = small_table(pm_ra_cosdec_mas_yr=None)
+    assert problem_fields(post_arrow(client, stream_of(no_pm))) == [
+        ("stars.pm_ra_cosdec_mas_yr", f"is required {hint}")
+    ]
+
+
 def test_repeated_column(client):
     t = small_table()
     t = t.append_column("ra_deg", pa.array([1.0, 2.0, 3.0]))

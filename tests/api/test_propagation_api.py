@@ -305,6 +305,58 @@ def test_missing_required_field(client):
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].dec_deg")
 
 
+NO_PM_HINT = "(give 0 for a target without proper motion: a missing one is not taken as zero)"
+
+
+def _messages(r, field):
+    body = assert_problem(r, 422, field)
+    return [e["message"] for e in body["errors"] if e["field"] == field]
+
+
+def test_missing_proper_motion_says_to_give_zero(client):
+    """A missing proper motion is refused (never taken as zero), and the answer says what to
+    send for a target that has none, in every layout; other missing fields say only that
+    they are required."""
+    no_pm = {k: v for k, v in STAR.items() if k != "pm_dec_mas_yr"}
+    r = post(client, dict(BASE, stars=[no_pm]))
+    assert _messages(r, "stars[0].pm_dec_mas_yr") == [f"is required {NO_PM_HINT}"]
+    r = post(client, dict(BASE, stars=[dict(STAR, pm_dec_mas_yr=None)]))
+    assert _messages(r, "stars[0].pm_dec_mas_yr") == [
+        f"is required and may not be null {NO_PM_HINT}"
+    ]
+    cols = columns_of([STAR], ["ra_deg", "dec_deg", "pm_ra_cosdec_mas_yr"])
+    r = post(client, dict(BASE, stars=cols))
+    assert _messages(r, "stars.pm_dec_mas_yr") == [f"is required {NO_PM_HINT}"]
+    csv = "ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\n10,5,100,\n"
+    r = client.post(
+        URL + "?catalogue_epoch=J2016.0&target_epochs=J2026.0", data=csv, content_type="text/csv"
+    )
+    assert _messages(r, "line 2: pm_dec_mas_yr") == [f"is required; the cell is empty {NO_PM_HINT}"]
+    no_dec = {k: v for k, v in STAR.items() if k != "dec_deg"}
+    assert _messages(post(client, dict(BASE, stars=[no_dec])), "stars[0].dec_deg") == [
+        "is required"
+    ]
+    described = client.get("/openapi.json").json["components"]["schemas"]
+    star = described["StarAstrometry"]["properties"]["pm_ra_cosdec_mas_yr"]["description"]
+    assert star.endswith(f"Required {NO_PM_HINT}.")
+
+
+@pytest.mark.parametrize(
+    "url, extra",
+    [
+        ("/v1/observed", {"instants": ["2026-12-05T22:00:00Z"], "site": "kestrel-ridge"}),
+        ("/v1/velocity", {}),
+        ("/v1/frames", {"from_frame": "icrs", "to_frame": "galactic"}),
+        ("/v1/constellations/crossings", {"start": "J2016.0", "stop": "J2100.0"}),
+    ],
+)
+def test_missing_proper_motion_hint_on_other_endpoints(client, url, extra):
+    no_pm = {k: v for k, v in STAR.items() if k != "pm_ra_cosdec_mas_yr"}
+    body = {"catalogue_epoch": "J2016.0", "stars": [dict(no_pm, parallax_mas=10.0)], **extra}
+    r = client.post(url, json=body)
+    assert _messages(r, "stars[0].pm_ra_cosdec_mas_yr") == [f"is required {NO_PM_HINT}"]
+
+
 def test_missing_catalogue_epoch(client):
     assert_problem(post(client, {"stars": [STAR], "target_epochs": [2020]}), 422, "catalogue_epoch")
 
