@@ -503,6 +503,42 @@ def test_blocked_covariance_equals_jacobian_sandwich():
     assert np.all(np.abs(np.nan_to_num(fused.covariance - sandwich)) <= tol)
 
 
+def test_sandwich_sums_each_entry_in_its_fixed_order():
+    """The block sandwich J C J^T gives, bit for bit, the sums written out one entry at a
+    time in the documented order (T = J C over J's nonzero columns in ascending order, then
+    the upper triangle of T J^T likewise, mirrored), for any number of stars: the promise
+    that a star's covariance does not depend on its batch rests on it."""
+    from service.core import propagation as prop
+
+    rng = np.random.default_rng(5)
+    b = 7
+    jac = np.zeros((6, 6, b))
+    for i, j in prop.JACOBIAN_NONZERO:
+        jac[i, j] = rng.normal(size=b) * 10.0 ** rng.integers(-3, 4, size=b)
+    g = rng.normal(size=(b, 6, 6))
+    cov = g @ np.swapaxes(g, -1, -2)
+    bufs = tuple(np.empty(n * b) for n in (36, 36, 36, 12))
+    out = np.empty((b, 6, 6))
+    unknown = np.zeros(b, dtype=bool)
+    prop._covariance_block(jac, cov, unknown, unknown, bufs, out)
+    rows = [[j for (i, j) in prop.JACOBIAN_NONZERO if i == r] for r in range(6)]
+    for s in range(b):
+        J, C = jac[:, :, s].tolist(), cov[s].tolist()  # Python floats: IEEE products, sums
+        T = [[0.0] * 6 for _ in range(6)]
+        for i in range(6):
+            for k in range(6):
+                acc = J[i][rows[i][0]] * C[rows[i][0]][k]
+                for j in rows[i][1:]:
+                    acc += J[i][j] * C[j][k]
+                T[i][k] = acc
+        for k in range(6):
+            for i in range(k + 1):
+                acc = T[i][rows[k][0]] * J[k][rows[k][0]]
+                for m in rows[k][1:]:
+                    acc += T[i][m] * J[k][m]
+                assert out[s, i, k] == acc and out[s, k, i] == acc, (s, i, k)
+
+
 def tangent_offsets_mas(ra_deg, dec_deg, ra0_deg, dec0_deg):
     """Offsets (alpha*, delta) in mas of directions from a reference, from unit vectors."""
     u0 = unit_vector(ra0_deg, dec0_deg)
