@@ -1088,6 +1088,32 @@ class Client:
         _leave_unread(body, ignored_columns)
         return self.post_batched("/v1/frames", body, progress=progress)
 
+    def frames_csv(
+        self,
+        csv_text: str,
+        *,
+        catalogue_epoch: Epoch,
+        from_frame: str | Mapping[str, Any],
+        to_frame: str | Mapping[str, Any] = "icrs",
+        target_epochs: Iterable[Epoch] | None = None,
+        progress: Progress | None = None,
+        ignored_columns: Iterable[str] = (),
+    ) -> str:
+        """A CSV table of stars in another frame, as CSV (one row per star and epoch);
+        frames and ``target_epochs`` as for :meth:`frames`."""
+        params: dict = {
+            "catalogue_epoch": catalogue_epoch,
+            "from_frame": {k: v for k, v in _frame(from_frame).items() if v is not None},
+            "to_frame": {k: v for k, v in _frame(to_frame).items() if v is not None},
+        }
+        if target_epochs is not None:
+            epochs = (
+                [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
+            )
+            params["target_epochs"] = list(epochs)
+        params["ignored_columns"] = _names(ignored_columns)
+        return self.post_csv("/v1/frames", csv_text, params, progress=progress)
+
     def observed(
         self,
         stars: Stars,

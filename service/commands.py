@@ -216,7 +216,7 @@ def read_catalogue(path: str, *, any_frame: bool = False) -> Catalogue:
             if not (any_frame or _is_icrs(frame)):
                 raise ValueError(
                     f"{path}: the catalogue's frame is {data['frame']!r}; this command takes "
-                    "ICRS astrometry (convert it first with the frames endpoint; skydrift "
+                    "ICRS astrometry (convert it first: skydrift frames FILE --to icrs; skydrift "
                     "observed takes any frame)"
                 )
         return Catalogue(buf.getvalue(), epoch, len(stars), from_json=True, frame=frame)
@@ -274,6 +274,7 @@ def _epoch_of(args, cat: Catalogue) -> str:
 _FIELDS_ALSO_FROM_THE_FILE = {
     "catalogue_epoch": ("catalogue_epoch",),
     "frame": ("frame", "equinox"),
+    "from_frame": ("from_frame",),
 }
 
 
@@ -452,6 +453,38 @@ def cmd_crossings(args) -> int:
             end=args.end,
             max_step_yr=args.max_step_yr,
             reduction=args.reduction,
+            progress=update,
+            ignored_columns=args.ignore_columns,
+        ),
+    )
+    _write_text(text, args.output)
+    return 0
+
+
+def _frame_option(text: str | None, option: str) -> dict | None:
+    if text is None:
+        return None
+    try:
+        return frame_spec(text, option)
+    except ValueError as exc:
+        raise UsageError(str(exc)) from None
+
+
+@_run
+def cmd_frames(args) -> int:
+    cat = read_catalogue(args.catalogue, any_frame=True)
+    from_frame = _frame_option(args.from_frame, "--from") or cat.frame or {"name": "icrs"}
+    to_frame = _frame_option(args.to_frame, "--to")
+    text = _table_command(
+        args,
+        cat,
+        "frames",
+        lambda client, body, update: client.frames_csv(
+            body,
+            catalogue_epoch=_epoch_of(args, cat),
+            from_frame=from_frame,
+            to_frame=to_frame,
+            target_epochs=args.epoch or None,
             progress=update,
             ignored_columns=args.ignore_columns,
         ),
@@ -1003,6 +1036,48 @@ def add_commands(sub) -> None:
     x.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
     _connection_options(x)
     x.set_defaults(func=cmd_crossings)
+
+    fr = sub.add_parser(
+        "frames",
+        help="a catalogue's astrometry in another frame, optionally at other epochs (CSV out)",
+        description="Convert every star of a catalogue (position, proper motion, parallax, "
+        "radial velocity) from one frame to another: ICRS, FK5 at any equinox, FK4 at any "
+        "equinox (B1950.0 by default; E-terms of aberration handled), galactic, ecliptic "
+        "(J2000.0, any equinox, or of date). With --epoch the stars are also moved to those "
+        "epochs: a B1950.0 FK4 catalogue comes out as ICRS at J2016.0 with --from fk4 "
+        "--catalogue-epoch B1950.0 --epoch J2016.0. Writes CSV: one row per star and epoch "
+        "with index, id, epoch_julian_tdb, epoch_iso_utc, ra_deg and dec_deg (longitude and "
+        "latitude in galactic and ecliptic), parallax_mas, pm_ra_cosdec_mas_yr, "
+        "pm_dec_mas_yr, radial_velocity_km_s and flags (';'-separated). Proper motions are "
+        "per Julian year in every frame, FK4 included.",
+        epilog=EPILOG,
+        formatter_class=fmt,
+    )
+    _catalogue_options(fr)
+    fr.add_argument(
+        "--from",
+        dest="from_frame",
+        metavar="FRAME",
+        help="frame of the catalogue: icrs, fk5, fk4, galactic or ecliptic, with an optional "
+        "equinox ('fk5 J1975.0'; ecliptic also 'ecliptic of_date'); default: the JSON "
+        "catalogue's 'frame', else icrs",
+    )
+    fr.add_argument(
+        "--to",
+        dest="to_frame",
+        metavar="FRAME",
+        default="icrs",
+        help="frame to write, in the same form (default icrs)",
+    )
+    fr.add_argument(
+        "--epoch",
+        action="append",
+        metavar="EPOCH",
+        help="epoch to write the stars at; repeat for several (default: the catalogue epoch)",
+    )
+    fr.add_argument("--output", "-o", metavar="FILE", help="CSV file to write (default stdout)")
+    _connection_options(fr)
+    fr.set_defaults(func=cmd_frames)
 
     o = sub.add_parser(
         "observed",

@@ -47,7 +47,7 @@ COMMANDS = [path for path, _ in subcommand_parsers(build_parser())]
 
 def test_every_command_is_listed():
     expected = {("propagate",), ("velocities",), ("constellations",), ("crossings",),
-                ("observed",), ("chart", "track"), ("chart", "field")}  # fmt: skip
+                ("frames",), ("observed",), ("chart", "track"), ("chart", "field")}  # fmt: skip
     assert expected <= set(COMMANDS)
 
 
@@ -372,6 +372,44 @@ def test_observed_fk4_catalogue_with_the_air_at_the_site_matches_erfa(tmp_path):
         < 0.01
     )
     assert abs((float(row["hour_angle_deg"]) - np.degrees(hob) + 180) % 360 - 180) * mas < 0.01
+
+
+def test_frames_fk4_catalogue_to_icrs_matches_erfa(tmp_path, live_service):
+    """A B1950.0 FK4 catalogue written out as ICRS at J2000.0 by `skydrift frames`, in this
+    process and through a service alike, against pyerfa run here: fk425 (FK4 B1950.0 ->
+    FK5 J2000.0, motions per tropical year in, per Julian year in the catalogue), then fk52h
+    (FK5 -> ICRS)."""
+    import erfa
+    import numpy as np
+
+    cat = tmp_path / "fk4.csv"
+    cat.write_text(",".join(FK4_STAR) + "\n" + ",".join(str(v) for v in FK4_STAR.values()))
+    args = ["frames", str(cat), "--from", "FK4", "--catalogue-epoch", "B1950.0",
+            "--epoch", "J2000.0"]  # fmt: skip
+    local = skydrift(*args)
+    assert skydrift(*args, "--url", live_service).stdout == local.stdout
+    row = next(csv.DictReader(io.StringIO(local.stdout.decode())))
+    assert (row["id"], row["epoch_julian_tdb"], row["flags"]) == ("F1", "2000.0", "")
+    trop = 365.242198781 / 365.25
+    ra, dec = np.radians(FK4_STAR["ra_deg"]), np.radians(FK4_STAR["dec_deg"])
+    fk5 = erfa.fk425(ra, dec, np.radians(-42.0 / 3.6e6) / np.cos(dec) * trop,
+                     np.radians(31.0 / 3.6e6) * trop, 0.0125, 0.0)  # fmt: skip
+    rh, dh, drh, ddh, pxh, _ = erfa.fk52h(*fk5)
+    mas = 3.6e6  # per degree
+    # Tolerances: 0.01 mas in each angle, 0.001 mas/yr, 1e-6 mas of parallax (measured: 0 mas,
+    # 1e-9 mas/yr, 2e-15 mas).
+    assert abs(float(row["ra_deg"]) - np.degrees(rh)) * np.cos(dh) * mas < 0.01
+    assert abs(float(row["dec_deg"]) - np.degrees(dh)) * mas < 0.01
+    pm_ra = np.degrees(drh) * np.cos(dh) * mas  # ICRS: per Julian year
+    assert abs(float(row["pm_ra_cosdec_mas_yr"]) - pm_ra) < 0.001
+    assert abs(float(row["pm_dec_mas_yr"]) - np.degrees(ddh) * mas) < 0.001
+    assert abs(float(row["parallax_mas"]) - pxh * 1000.0) < 1e-6
+    # The JSON catalogue's own frame is the one converted from, as --from would give it.
+    js = tmp_path / "fk4.json"
+    js.write_text(json.dumps({"catalogue_epoch": "B1950.0", "frame": "FK4", "stars": [FK4_STAR]}))
+    assert skydrift("frames", str(js), "--epoch", "J2000.0").stdout == local.stdout
+    bad = skydrift("frames", str(cat), "--to", "galactik", check=False)
+    assert bad.returncode == 2 and b"to_frame.name: must be one of" in bad.stderr
 
 
 def test_json_catalogue_frame_is_used_or_refused(tmp_path):
