@@ -1074,19 +1074,9 @@ class Client:
         ``{"name": "fk4", "equinox": "B1950.0"}``. With ``target_epochs`` the stars are also
         moved (straight-line model) to those epochs.
         """
-        body: dict = {
-            "stars": stars,
-            "catalogue_epoch": catalogue_epoch,
-            "from_frame": _frame(from_frame),
-            "to_frame": _frame(to_frame),
-        }
-        if target_epochs is not None:
-            epochs = (
-                [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
-            )
-            body["target_epochs"] = list(epochs)
+        body = {"stars": stars, **_frames_options(catalogue_epoch, from_frame, to_frame)}
         _leave_unread(body, ignored_columns)
-        return self.post_batched("/v1/frames", body, progress=progress)
+        return self.post_batched("/v1/frames", _with_epochs(body, target_epochs), progress=progress)
 
     def frames_csv(
         self,
@@ -1101,16 +1091,10 @@ class Client:
     ) -> str:
         """A CSV table of stars in another frame, as CSV (one row per star and epoch);
         frames and ``target_epochs`` as for :meth:`frames`."""
-        params: dict = {
-            "catalogue_epoch": catalogue_epoch,
-            "from_frame": {k: v for k, v in _frame(from_frame).items() if v is not None},
-            "to_frame": {k: v for k, v in _frame(to_frame).items() if v is not None},
-        }
-        if target_epochs is not None:
-            epochs = (
-                [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
-            )
-            params["target_epochs"] = list(epochs)
+        params = _frames_options(catalogue_epoch, from_frame, to_frame)
+        for key in ("from_frame", "to_frame"):  # as query options: members given only
+            params[key] = {k: v for k, v in params[key].items() if v is not None}
+        params = _with_epochs(params, target_epochs)
         params["ignored_columns"] = _names(ignored_columns)
         return self.post_csv("/v1/frames", csv_text, params, progress=progress)
 
@@ -1272,6 +1256,23 @@ class Client:
 
 def _frame(frame) -> dict:
     return {"name": frame} if isinstance(frame, str) else dict(frame)
+
+
+def _frames_options(catalogue_epoch, from_frame, to_frame) -> dict:
+    """The options of a frames request (:meth:`Client.frames`, :meth:`Client.frames_csv`)."""
+    return {
+        "catalogue_epoch": catalogue_epoch,
+        "from_frame": _frame(from_frame),
+        "to_frame": _frame(to_frame),
+    }
+
+
+def _with_epochs(options: dict, target_epochs) -> dict:
+    """``options`` with ``target_epochs`` (one epoch or several) as a list, if given."""
+    if target_epochs is None:
+        return options
+    epochs = [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
+    return {**options, "target_epochs": list(epochs)}
 
 
 def _outline_params(frame, equinox, reduction, tolerance_arcsec) -> dict:
