@@ -462,6 +462,7 @@ def cmd_crossings(args) -> int:
 
 
 def _frame_option(text: str | None, option: str) -> dict | None:
+    """A frame given on the command line (``option``), or None if not given."""
     if text is None:
         return None
     try:
@@ -550,12 +551,7 @@ def _tolerant(args, csv_text: str, call, lines: list[int] | None = None):
 @_run
 def cmd_observed(args) -> int:
     cat = read_catalogue(args.catalogue, any_frame=True)
-    frame = cat.frame
-    if args.frame is not None:
-        try:
-            frame = frame_spec(args.frame, "--frame")
-        except ValueError as exc:
-            raise UsageError(str(exc)) from None
+    frame = _frame_option(args.frame, "--frame") or cat.frame
     if args.equinox is not None:
         if frame is None:
             raise UsageError("--equinox needs --frame (or a catalogue that states its frame)")
