@@ -503,6 +503,21 @@ def number_field(description, *, required=False, lo=None, hi=None, missing_hint=
     )
 
 
+#: What a request without a required proper motion is told to send instead.
+NO_PROPER_MOTION_HINT = (
+    "give 0 for a target without proper motion: a missing one is not taken as zero"
+)
+
+
+def proper_motion_field(description, *, required=True, **range_kw):
+    """A proper-motion component of a record schema (:func:`number_field`): where it is
+    required, a star without it is refused with :data:`NO_PROPER_MOTION_HINT` (a missing
+    proper motion is never taken as zero)."""
+    return number_field(
+        description, required=required, missing_hint=NO_PROPER_MOTION_HINT, **range_kw
+    )
+
+
 class EpochField(ma.fields.Field):
     """An epoch in any accepted form; deserialises to a Julian epoch (TDB), years."""
 

@@ -32,6 +32,7 @@ from .common import (
     index_field,
     layout_field,
     number_field,
+    proper_motion_field,
     refuse_query_options,
     star_count_field,
     units_field,
@@ -41,7 +42,7 @@ from .frames import FrameField, frame_from_spec, frame_with_equinox
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .spelling import meant_by_unknown_names
-from .tables import NO_PROPER_MOTION_HINT, IgnoredColumnsField, RowCheck, StarTableField
+from .tables import IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
     "constellations",
@@ -133,16 +134,14 @@ def _star_fields(motion_required: bool) -> dict:
             "zero or negative values are accepted and flagged, and so are values above 1,000 "
             "mas (parallax_implausible: nearer than any known star)."
         ),
-        "pm_ra_cosdec_mas_yr": _num(
+        "pm_ra_cosdec_mas_yr": proper_motion_field(
             "Proper motion in right ascension times cos(dec), mas/yr. At a pole (dec_deg "
             "+-90) east and north are those of the ra_deg given (flag at_pole)." + pm_text,
             required=motion_required,
-            missing_hint=NO_PROPER_MOTION_HINT,
         ),
-        "pm_dec_mas_yr": _num(
+        "pm_dec_mas_yr": proper_motion_field(
             "Proper motion in declination, mas/yr." + pm_text,
             required=motion_required,
-            missing_hint=NO_PROPER_MOTION_HINT,
         ),
         "radial_velocity_km_s": _num(
             "Radial velocity, km/s, positive receding. Null if unknown (taken as zero).",

@@ -28,6 +28,7 @@ from .common import (
     id_field,
     index_field,
     number_field,
+    proper_motion_field,
     request_now,
     star_count_field,
     units_field,
@@ -37,7 +38,7 @@ from .examples import load_example
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
-from .tables import NO_PROPER_MOTION_HINT, IgnoredColumnsField, StarTableField
+from .tables import IgnoredColumnsField, StarTableField
 
 blp = Blueprint(
     "frames",
@@ -92,17 +93,13 @@ FrameStarSchema = ma.Schema.from_dict(
             "Parallax, mas. Null if unknown; <= 0 accepted and flagged, and so is a value above "
             "1,000 mas (parallax_implausible: nearer than any known star)."
         ),
-        "pm_ra_cosdec_mas_yr": _num(
+        "pm_ra_cosdec_mas_yr": proper_motion_field(
             "Proper motion along the longitude times cos(latitude), mas per Julian year (also "
             "for FK4: convert tropical-century catalogue values first). At a pole (dec_deg "
             "+-90) east and north are those of the ra_deg given (flag at_pole).",
-            required=True,
-            missing_hint=NO_PROPER_MOTION_HINT,
         ),
-        "pm_dec_mas_yr": _num(
+        "pm_dec_mas_yr": proper_motion_field(
             "Proper motion along the latitude, mas per Julian year.",
-            required=True,
-            missing_hint=NO_PROPER_MOTION_HINT,
         ),
         "radial_velocity_km_s": _num(
             "Radial velocity, km/s, positive receding. Null if unknown.",

@@ -39,19 +39,14 @@ from .common import (
     index_field,
     layout_field,
     number_field,
+    proper_motion_field,
     star_count_field,
     units_field,
 )
 from .examples import load_example
 from .observability import count_stars
 from .spelling import meant_by_unknown_names
-from .tables import (
-    MAX_ABS_MAS,
-    NO_PROPER_MOTION_HINT,
-    IgnoredColumnsField,
-    RowCheck,
-    StarTableField,
-)
+from .tables import MAX_ABS_MAS, IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
     "propagation",
@@ -120,17 +115,13 @@ _STAR_FIELDS = {
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
-    "pm_ra_cosdec_mas_yr": _num(
+    "pm_ra_cosdec_mas_yr": proper_motion_field(
         "Proper motion in right ascension times cos(dec), mas/yr.",
-        required=True,
-        missing_hint=NO_PROPER_MOTION_HINT,
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
-    "pm_dec_mas_yr": _num(
+    "pm_dec_mas_yr": proper_motion_field(
         "Proper motion in declination, mas/yr.",
-        required=True,
-        missing_hint=NO_PROPER_MOTION_HINT,
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),

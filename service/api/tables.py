@@ -65,10 +65,6 @@ MAX_COLUMN_NAME_LENGTH = 256
 #: Metadata key of a record schema's field: what to send where the value is missing
 #: (:func:`.common.number_field`'s ``missing_hint``), said with "is required".
 MISSING_HINT_KEY = "missing_hint"
-#: The hint of the proper-motion fields where they are required.
-NO_PROPER_MOTION_HINT = (
-    "give 0 for a target without proper motion: a missing one is not taken as zero"
-)
 
 
 @dataclass

@@ -45,6 +45,7 @@ from .common import (
     index_field,
     layout_field,
     number_field,
+    proper_motion_field,
     star_count_field,
     units_field,
 )
@@ -54,7 +55,6 @@ from .tables import (
     MAX_ABS_MAS,
     MAX_DISTANCE_PC,
     MIN_DISTANCE_PC,
-    NO_PROPER_MOTION_HINT,
     IgnoredColumnsField,
     RowCheck,
     StarTableField,
@@ -128,17 +128,13 @@ _VELOCITY_STAR_FIELDS = {
         lo=MIN_DISTANCE_PC,
         hi=MAX_DISTANCE_PC,
     ),
-    "pm_ra_cosdec_mas_yr": _num(
+    "pm_ra_cosdec_mas_yr": proper_motion_field(
         "Proper motion in right ascension times cos(dec), mas/yr.",
-        required=True,
-        missing_hint=NO_PROPER_MOTION_HINT,
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
-    "pm_dec_mas_yr": _num(
+    "pm_dec_mas_yr": proper_motion_field(
         "Proper motion in declination, mas/yr.",
-        required=True,
-        missing_hint=NO_PROPER_MOTION_HINT,
         lo=-MAX_ABS_MAS,
         hi=MAX_ABS_MAS,
     ),
