@@ -394,6 +394,70 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     return ast, flags, loc, usable, g
 
 
+#: Constants of the one-star path (:func:`_standard_one`), as the array path forms them.
+_INV_A = 1.0 / AU_PER_JULIAN_YEAR_KM_S
+_A_MAS_PER_RAD = AU_PER_JULIAN_YEAR_KM_S * MAS_PER_RAD
+
+
+def _standard_one(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
+    """:func:`_standard_outputs` of one star on Python floats: (ra, dec, parallax,
+    pm_ra_cosdec, pm_dec, radial velocity, flags), the last an int.
+
+    Notes
+    -----
+    1. The same IEEE operations in the same order as the array path, with numpy's own
+       ``sin``, ``cos`` and ``arctan2`` (whose last bits may differ from the C library's), so
+       each result equals the array path's bit for bit (tests/test_propagation.py compares
+       them on random stars and on every edge the array path handles). A dozen numpy calls
+       on one-element arrays cost ten times these operations: this is what a one-star
+       request (a telescope before a slew) waits for.
+    2. Python raises where numpy returns infinity or NaN; those cases are taken out by hand
+       as numpy gives them: 1/|s| at |s| = 0 (a star through the Sun) is infinite, and the
+       right ascension of a NaN or infinite input is NaN.
+    """
+    flags = _input_flags_one(plx, pma, pmd, rv)
+    usable = plx > 0.0 and math.isfinite(rv)
+    mur_mas = rv * plx * _INV_A if usable else 0.0
+    dec_rad = dec_deg * RAD_PER_DEG
+    sd = float(np.sin(dec_rad))
+    cd = float(np.cos(dec_rad))
+    mua = pma * _RAD_PER_MAS
+    mud = pmd * _RAD_PER_MAS
+    mur = mur_mas * _RAD_PER_MAS
+    sx = tau * mua
+    sy = tau * mud
+    sz = 1.0 + tau * mur
+    X = cd * sz - sd * sy
+    Z = cd * sy + sd * sz
+    h2 = X * X + sx * sx
+    s2 = h2 + Z * Z
+    H = math.sqrt(h2)
+    norm = math.sqrt(s2)
+    f = 1.0 / norm if norm != 0.0 else math.inf
+    hinv = 1.0 / H if H > 0.0 else 0.0  # at a pole (flag AT_POLE), as _advance_local
+    VX = cd * mur - sd * mud
+    VZ = cd * mud + sd * mur
+    pa = f * (X * mua - sx * VX) * hinv
+    pd = f * f * (VZ * h2 - Z * (X * VX + sx * mua)) * hinv
+    tpm2 = tau * (mua * mua + mud * mud)
+    ra = ra_deg + float(np.arctan2(sx, X)) * DEG_PER_RAD
+    if math.isfinite(ra):  # as _wrap_360 (where NaN and infinity give NaN)
+        ra1 = ra - 360.0 * math.floor(ra * (1.0 / 360.0))
+        if ra1 >= 360.0:
+            ra1 -= 360.0
+    else:
+        ra1 = math.nan
+    dec1 = float(np.arctan2(Z, H)) * DEG_PER_RAD
+    if usable:  # v_r1 = f g (Note 4 of propagate_standard); the parallax is positive here
+        transverse = 0.0 if tpm2 == 0.0 else _A_MAS_PER_RAD / plx * tpm2
+        rv1 = f * (transverse + rv * sz)
+    else:
+        rv1 = rv
+    if H * f < AT_POLE_RAD or cd < AT_POLE_RAD:
+        flags |= int(PropagationFlag.AT_POLE)
+    return ra1, dec1, plx * f, pa * MAS_PER_RAD, pd * MAS_PER_RAD, rv1, flags
+
+
 def propagate_standard(
     ra_deg,
     dec_deg,
@@ -896,6 +960,8 @@ def propagate(
        error of ra*cos(dec) and its correlations) of the covariance are NaN; for a star
        that moves onto a pole at the target, rows and columns 3 and 4 (the proper motions).
        Linear propagation would give them as about 1e16 times the input errors.
+    6. One star without covariance in the standard model is computed on Python floats
+       (:func:`_standard_one`), with the same result bit for bit as in an array of stars.
     """
     if model not in MODELS:
         raise ValueError(f"unknown model {model!r}; choose one of {MODELS}")
@@ -922,6 +988,11 @@ def propagate(
         e_from, e_to = (
             _flatten(np.asarray(e, dtype=float), shape) for e in (epoch_from_jyear, epoch_to_jyear)
         )
+    if model == "standard" and cov_flat is None and n == 1:
+        # One star (Note 6): on Python floats, bit for bit the array path's result.
+        *values, bits = _standard_one(*(x.item() for x in flat))
+        out = np.array(values).reshape((6,) + shape)
+        return PropagationResult(Astrometry(*out), np.full(shape, bits, dtype=np.int64), None)
     if model == "standard" and cov_flat is None and 0 < n <= max(int(block_size), 1):
         # One block, no covariance: the outputs are new arrays already (no copies needed).
         # (Division by zero and NaN results are already silent here: Note 4.)

@@ -1155,3 +1155,64 @@ def test_light_time_changes_the_covariance_by_about_v_over_c():
     with np.errstate(divide="ignore", invalid="ignore"):
         rel_all = np.abs(fd_light - analytic) / np.abs(analytic)
     assert np.nanmax(np.where((weight > 1e-4) & (weight < 1e-2), rel_all, np.nan)) > 1e-2
+
+
+def _same_bits(a, b):
+    """Equal bit for bit (the sign of a zero included); any two NaNs count as equal."""
+    a, b = np.asarray(a, dtype=float), np.asarray(b, dtype=float)
+    both_nan = np.isnan(a) & np.isnan(b)
+    return both_nan | (a.view(np.int64) == b.view(np.int64))
+
+
+def _star_through_the_sun():
+    """A star without proper motion whose radial motion brings it to the Sun at the target
+    epoch exactly (s = 0 in floating point): tau is stepped from -1/mu_r to the value that
+    makes 1 + tau mu_r zero."""
+    plx, rv = 100.0, -5.0e4
+    mur = rv * plx * (1.0 / AU_PER_JULIAN_YEAR_KM_S) * (1.0 / MAS_PER_RAD)
+    tau = -1.0 / mur
+    for _ in range(64):
+        if 1.0 + tau * mur == 0.0:
+            return 10.0, 20.0, plx, 0.0, 0.0, rv, tau
+        tau = np.nextafter(tau, np.inf if 1.0 + tau * mur < 0.0 else -np.inf)
+    raise AssertionError("no epoch found at which the star is at the Sun")
+
+
+def test_one_star_path_equals_the_array_path_bit_for_bit():
+    """One star without covariance is computed on Python floats (propagate, Note 6); every
+    output and flag must be the array path's, bit for bit, for random stars and for every
+    edge the array path handles (unknown, zero, negative, tiny and huge parallaxes, unknown
+    and infinite radial velocities, the poles, no motion, NaN and infinite inputs, a star
+    through the Sun)."""
+    rng = np.random.default_rng(2026)
+    cols = [list(x) for x in random_stars(rng, 3000)]
+    edges = {
+        0: [0.0, 359.9999999999999, -720.5, 1e300, np.nan, np.inf],
+        1: [90.0, -90.0, 89.99999999999, -0.0, np.nan],
+        2: [np.nan, 0.0, -0.0, -5.0, 1e-300, 5e-324, 1e300, np.inf],
+        3: [0.0, -0.0, 1e9, np.nan, np.inf],
+        4: [0.0, 1e9, -1e9, np.nan],
+        5: [np.nan, np.inf, -np.inf, 0.0, 1e7],
+        6: [0.0, -0.0, 1e6, -1e6, np.nan, np.inf],
+    }
+    base = [10.0, 20.0, 50.0, 300.0, -200.0, 30.0, 25.0]
+    for k, values in edges.items():
+        for v in values:
+            for star in (base, [10.0, 20.0, 50.0, 0.0, 0.0, 30.0, 25.0]):
+                star = list(star)
+                star[k] = v
+                for col, x in zip(cols, star, strict=True):
+                    col.append(x)
+    for col, x in zip(cols, _star_through_the_sun(), strict=True):
+        col.append(x)
+    ra, dec, plx, pma, pmd, rv, tau = (np.array(c) for c in cols)
+    # Epochs 0 and tau: the epoch difference is tau exactly.
+    many = propagate(ra, dec, plx, pma, pmd, rv, 0.0, tau)
+    assert np.isinf(many.astrometry.parallax_mas[-1])  # the star at the Sun
+    for i in range(ra.size):
+        one = propagate(ra[i], dec[i], plx[i], pma[i], pmd[i], rv[i], 0.0, tau[i])
+        assert one.flags.shape == () and int(one.flags) == int(many.flags[i]), i
+        for name in FIELDS:
+            value = getattr(one.astrometry, name)
+            assert value.shape == (), (i, name)
+            assert _same_bits(value, getattr(many.astrometry, name)[i]), (i, name)
