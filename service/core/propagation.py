@@ -419,8 +419,11 @@ def _standard_one(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     usable = plx > 0.0 and math.isfinite(rv)
     mur_mas = rv * plx * _INV_A if usable else 0.0
     dec_rad = dec_deg * RAD_PER_DEG
-    sd = float(np.sin(dec_rad))
-    cd = float(np.cos(dec_rad))
+    if math.isfinite(dec_rad):
+        sd = float(np.sin(dec_rad))
+        cd = float(np.cos(dec_rad))
+    else:  # numpy's NaN, without its warning (this path runs outside np.errstate)
+        sd = cd = math.nan
     mua = pma * _RAD_PER_MAS
     mud = pmd * _RAD_PER_MAS
     mur = mur_mas * _RAD_PER_MAS
@@ -891,7 +894,6 @@ def propagate_light_time(
 BLOCK_SIZE = 8192
 
 
-@overflow_to_infinity  # Note 4
 def propagate(
     ra_deg,
     dec_deg,
@@ -963,6 +965,71 @@ def propagate(
     6. One star without covariance in the standard model is computed on Python floats
        (:func:`_standard_one`), with the same result bit for bit as in an array of stars.
     """
+    if model == "standard" and covariance is None:
+        one = _one_star(
+            ra_deg,
+            dec_deg,
+            parallax_mas,
+            pm_ra_cosdec_mas_yr,
+            pm_dec_mas_yr,
+            radial_velocity_km_s,
+            epoch_from_jyear,
+            epoch_to_jyear,
+        )
+        if one is not None:
+            return one
+    return _propagate_arrays(
+        ra_deg,
+        dec_deg,
+        parallax_mas,
+        pm_ra_cosdec_mas_yr,
+        pm_dec_mas_yr,
+        radial_velocity_km_s,
+        epoch_from_jyear,
+        epoch_to_jyear,
+        model=model,
+        covariance=covariance,
+        block_size=block_size,
+    )
+
+
+def _one_star(*values) -> PropagationResult | None:
+    """The standard model for one star (Note 6 of :func:`propagate`), or None when the
+    arguments are not one star: each must be a float or a float64 array of one element.
+    The result has the shape they broadcast to, (1, 1) for arrays of shape (1, 1)."""
+    shape = ()
+    floats = []
+    for v in values:
+        if type(v) is np.ndarray and v.size == 1 and v.dtype == np.float64:
+            if v.ndim > len(shape):
+                shape = v.shape  # all ones: they broadcast to the longest
+            floats.append(v.item())
+        elif isinstance(v, float):  # numpy's float64 too
+            floats.append(float(v))
+        else:
+            return None
+    *star, epoch_from, epoch_to = floats
+    *out, bits = _standard_one(*star, epoch_to - epoch_from)
+    out = np.array(out).reshape((6,) + shape)
+    return PropagationResult(Astrometry(*out), np.full(shape, bits, dtype=np.int64), None)
+
+
+@overflow_to_infinity  # Note 4 of propagate
+def _propagate_arrays(
+    ra_deg,
+    dec_deg,
+    parallax_mas,
+    pm_ra_cosdec_mas_yr,
+    pm_dec_mas_yr,
+    radial_velocity_km_s,
+    epoch_from_jyear,
+    epoch_to_jyear,
+    *,
+    model: str,
+    covariance,
+    block_size: int,
+) -> PropagationResult:
+    """:func:`propagate` for any arrays (its parameters, results and Notes)."""
     if model not in MODELS:
         raise ValueError(f"unknown model {model!r}; choose one of {MODELS}")
     args = [
@@ -988,11 +1055,6 @@ def propagate(
         e_from, e_to = (
             _flatten(np.asarray(e, dtype=float), shape) for e in (epoch_from_jyear, epoch_to_jyear)
         )
-    if model == "standard" and cov_flat is None and n == 1:
-        # One star (Note 6): on Python floats, bit for bit the array path's result.
-        *values, bits = _standard_one(*(x.item() for x in flat))
-        out = np.array(values).reshape((6,) + shape)
-        return PropagationResult(Astrometry(*out), np.full(shape, bits, dtype=np.int64), None)
     if model == "standard" and cov_flat is None and 0 < n <= max(int(block_size), 1):
         # One block, no covariance: the outputs are new arrays already (no copies needed).
         # (Division by zero and NaN results are already silent here: Note 4.)
