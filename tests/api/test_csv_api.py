@@ -528,3 +528,31 @@ def test_instant_cells_do_not_overwrite_a_star_column():
             "flags": "",
         }
     ]
+
+
+@pytest.mark.parametrize(
+    ("before", "after"),
+    [
+        (None, "Accept"),
+        ("Origin", "Origin, Accept"),
+        ("Origin, accept", "Origin, accept"),
+        ("Accept-Encoding", "Accept-Encoding, Accept"),
+    ],
+)
+def test_answers_of_table_endpoints_vary_on_accept(before, after):
+    """An answer that differs by Accept (JSON, CSV or Arrow) says so in Vary, once, after
+    any names already there (RFC 9110 section 12.5.5), as werkzeug's ``vary.add`` writes it."""
+    from flask import Response
+
+    from service.api.common import _vary_on_accept
+
+    resp = Response()
+    if before is not None:
+        resp.headers["Vary"] = before
+    _vary_on_accept(resp)
+    assert resp.headers["Vary"] == after
+    if before is not None and "accept" not in before.lower().split(", "):
+        ref = Response()
+        ref.headers["Vary"] = before
+        ref.vary.add("Accept")
+        assert ref.headers["Vary"] == after
