@@ -155,3 +155,44 @@ def test_dropped_exception_with_an_unprintable_object_is_still_logged(caplog):
     with caplog.at_level(logging.WARNING, logger="skydrift.unraisable"):
         log_unraisable(args)
     assert caplog.messages == ["Exception ignored in: <object repr() failed>: KeyError"]
+
+
+def test_access_line_written_to_gunicorns_file_handler_as_logging_writes_it(logger, tmp_path):
+    """The access line goes straight to gunicorn's own handler (a file, message only)
+    without a log record: the file must hold what the logging module would have written,
+    one JSON object per line, lines of concurrent requests whole."""
+    path = tmp_path / "access.log"
+    handler = logging.FileHandler(path)
+    handler.setFormatter(logging.Formatter("%(message)s"))  # gunicorn's access format
+    logger.access_log.handlers[:] = [handler]
+    try:
+        logger.access(*_request())
+        logger.access(*_request(query="a=1", request_ids=("second",)))
+        entries = [json.loads(line) for line in path.read_text().splitlines()]
+        assert [e["request_id"] for e in entries] == ["abc-1", "second"]
+        # The logging module, given the same line, writes the same bytes.
+        path.write_text("")
+        text = json.dumps(entries[0], separators=(",", ":"), ensure_ascii=False)
+        logger._write_access(text)
+        direct = path.read_text()
+        path.write_text("")
+        logger.access_log.info(text)
+        assert direct == path.read_text() == text + "\n"
+    finally:
+        handler.close()
+
+
+def test_access_line_through_logging_for_other_handlers_and_formats(logger, tmp_path):
+    """A handler that is not gunicorn's plain one, or one with another format, gets the
+    line through the logging module (its format applied)."""
+    path = tmp_path / "access.log"
+    handler = logging.FileHandler(path)
+    handler.setFormatter(logging.Formatter("access %(levelname)s %(message)s"))
+    logger.access_log.handlers[:] = [handler]
+    try:
+        logger.access(*_request())
+        (line,) = path.read_text().splitlines()
+        assert line.startswith("access INFO {")
+        assert json.loads(line.removeprefix("access INFO "))["request_id"] == "abc-1"
+    finally:
+        handler.close()
