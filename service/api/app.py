@@ -39,6 +39,36 @@ safety rules decide whether a telescope may point somewhere.
 """
 
 
+class SkydriftFlask(Flask):
+    """Flask, with :meth:`ensure_sync`'s answer kept for each function it is asked about.
+
+    Flask asks it of every request hook and view on every request (some sixteen times for
+    one request here), and each answer takes ``inspect.iscoroutinefunction`` (about a
+    microsecond). The functions are the application's own, fixed once it is built; the
+    answers are kept for up to MAX_KEPT of them (any further ones are answered as before).
+    """
+
+    MAX_KEPT = 1024
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._sync_functions = {}
+
+    def ensure_sync(self, func):
+        kept = self._sync_functions
+        try:
+            return kept[func]
+        except (KeyError, TypeError):  # TypeError: a callable that cannot be hashed
+            pass
+        sync = super().ensure_sync(func)
+        if len(kept) < self.MAX_KEPT:
+            try:
+                kept[func] = sync
+            except TypeError:
+                pass
+        return sync
+
+
 class SkydriftApi(flask_smorest.Api):
     """flask-smorest Api whose errors are RFC 9457 problem details."""
 
@@ -69,7 +99,7 @@ def create_app(config: dict | None = None) -> Flask:
     """
     # No static folder: the reference page needs no assets, and Flask's default would serve
     # any file under ./static of the working directory (the import name is no package).
-    app = Flask("skydrift", static_folder=None)
+    app = SkydriftFlask("skydrift", static_folder=None)
     app.json = OrjsonProvider(app)
     settings = (config or {}).get("SKYDRIFT_SETTINGS") or Settings.from_env()
     app.config.update(

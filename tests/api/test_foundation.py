@@ -412,3 +412,40 @@ def test_reference_page_gives_every_field_a_type(client):
     assert [name for name, typ in rows if not typ.strip()] == []
     assert ("atmosphere", "Atmosphere or null") in rows
     assert ("solar_motion", "SolarMotion or null") in rows
+
+
+def test_ensure_sync_answers_are_kept_and_unchanged():
+    """SkydriftFlask keeps ensure_sync's answer per function: the same answers as Flask's
+    own (a plain function as it is; a coroutine function wrapped, or refused the same way
+    without Flask's async extra), and callables that cannot be hashed still answered."""
+    from flask import Flask
+
+    from service.api.app import SkydriftFlask
+
+    ours, flasks = SkydriftFlask("a"), Flask("b")
+
+    def plain():
+        return 1
+
+    async def coroutine():
+        return 2
+
+    class Unhashable:
+        __hash__ = None
+
+        def __call__(self):
+            return 3
+
+    assert ours.ensure_sync(plain) is plain
+    assert ours.ensure_sync(plain) is plain  # kept
+    assert plain in ours._sync_functions
+    odd = Unhashable()
+    assert ours.ensure_sync(odd) is odd is flasks.ensure_sync(odd)
+    try:
+        expected = flasks.ensure_sync(coroutine)()
+    except RuntimeError as exc:  # Flask without its async extra (asgiref)
+        with pytest.raises(RuntimeError, match=str(exc)[:20]):
+            ours.ensure_sync(coroutine)
+    else:
+        assert ours.ensure_sync(coroutine)() == expected == 2
+        assert ours.ensure_sync(coroutine) is not coroutine
