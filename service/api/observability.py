@@ -162,13 +162,39 @@ _RULE_VARIABLE = re.compile(r"<(?:[^:<>]+:)?([^<>]+)>")
 def _endpoint() -> str:
     """The route template in OpenAPI form (``/v1/constellations/{abbreviation}/outline``)."""
     rule = request.url_rule
-    return _RULE_VARIABLE.sub(r"{\1}", rule.rule) if rule is not None else UNMATCHED
+    if rule is None:
+        return UNMATCHED
+    label = _ENDPOINT_LABELS.get(rule.rule)
+    if label is None:
+        label = _ENDPOINT_LABELS[rule.rule] = _RULE_VARIABLE.sub(r"{\1}", rule.rule)
+    return label
+
+
+#: Endpoint labels by route rule (one per route of the application).
+_ENDPOINT_LABELS: dict[str, str] = {}
+
+#: Labelled metrics by (metric, labels), as ``labels()`` gives them, kept so that a request
+#: does not take the metric's lock and check its labels each time. The label sets are
+#: bounded (routes, methods, statuses), and so is this (MAX_KEPT_CHILDREN).
+_CHILDREN: dict[tuple, object] = {}
+MAX_KEPT_CHILDREN = 4096
+
+
+def _child(metric: str, *labels: str):
+    """``_metrics()[metric].labels(*labels)``, kept (_CHILDREN)."""
+    key = (metric, labels)
+    child = _CHILDREN.get(key)
+    if child is None:
+        child = _metrics()[metric].labels(*labels)
+        if len(_CHILDREN) < MAX_KEPT_CHILDREN:
+            _CHILDREN[key] = child
+    return child
 
 
 def count_stars(endpoint: str, n: int) -> None:
     """Add ``n`` stars computed by ``endpoint`` (route template, e.g. ``/v1/propagation``)."""
     if n > 0:
-        _metrics()["stars"].labels(endpoint).inc(n)
+        _child("stars", endpoint).inc(n)
 
 
 # --- Earth-orientation table age -------------------------------------------------------
@@ -323,11 +349,10 @@ def register(app) -> None:
             return resp
         endpoint = _endpoint()
         labels = (endpoint, request.method, str(resp.status_code))
-        metrics = _metrics()
-        metrics["requests"].labels(*labels).inc()
-        metrics["latency"].labels(*labels).observe(time.perf_counter() - start)
+        _child("requests", *labels).inc()
+        _child("latency", *labels).observe(time.perf_counter() - start)
         if resp.status_code in (400, 422):
-            metrics["invalid"].labels(endpoint).inc()
+            _child("invalid", endpoint).inc()
         if resp.status_code >= 500:
             access_log.warning("answered %s %s %d", request.method, endpoint, resp.status_code)
         return resp
