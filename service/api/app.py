@@ -6,8 +6,8 @@ Tests call it with a test configuration; gunicorn serves ``service.wsgi:app``.
 from __future__ import annotations
 
 import logging
+import os
 import time
-import uuid
 
 import flask_smorest
 from flask import Flask, g, request
@@ -37,6 +37,10 @@ Errors are RFC 9457 problem details (application/problem+json) listing each offe
 Safety: figures about the Sun and the horizon are advisory. The facility's own interlocks and
 safety rules decide whether a telescope may point somewhere.
 """
+
+
+def _new_id() -> str:
+    return os.urandom(16).hex()
 
 
 class SkydriftFlask(Flask):
@@ -138,7 +142,8 @@ def create_app(config: dict | None = None) -> Flask:
     def _start():
         g.start = time.perf_counter()
         given = request.headers.get("X-Request-ID", "")
-        g.request_id = given if 0 < len(given) <= 128 and given.isprintable() else uuid.uuid4().hex
+        # One made up: 128 random bits in hex (as uuid4().hex, at a quarter of its cost).
+        g.request_id = given if 0 < len(given) <= 128 and given.isprintable() else _new_id()
 
     @app.before_request
     def _refuse_encoded_bodies():

@@ -59,6 +59,16 @@ def test_request_id_echoed(client):
     assert r.headers["X-Request-ID"] == "abc-123"
 
 
+def test_request_id_made_up_when_none_is_given_or_it_is_unusable(client):
+    """128 random bits in hex, new for every request; a given id that is too long or not
+    printable is replaced too."""
+    made = [client.get("/health", headers=h).headers["X-Request-ID"]
+            for h in ({}, {}, {"X-Request-ID": "x" * 129}, {"X-Request-ID": "a\tb"})]  # fmt: skip
+    for rid in made:
+        assert re.fullmatch(r"[0-9a-f]{32}", rid), rid
+    assert len(set(made)) == len(made)
+
+
 def test_ready_lists_checks(client):
     r = client.get("/ready")
     assert r.status_code == 200
