@@ -506,12 +506,7 @@ class StarTableField(ma.fields.Field):
                 first = next(i for i, r in enumerate(records) if name in r)
                 errors.add(f"[{first}].{name}", self._unknown_text(name, listed=k == 0))
             errors.more += max(0, len(unknown) - MAX_LISTED_ERRORS)
-        columns = {}
-        for spec in self.specs:
-            if spec.name not in keys:
-                columns[spec.name] = None
-                continue
-            columns[spec.name] = [r.get(spec.name) for r in records]
+        columns = {name: [r.get(name) for r in records] for name in keys & self.names}
         return self._finish(columns, len(records), errors, keys)
 
     def _from_columns(self, cols: dict, skip: frozenset) -> StarTable:
@@ -641,7 +636,7 @@ class StarTableField(ma.fields.Field):
             if lost.intersection(check.reads):
                 continue
             usable = np.ones(n, dtype=bool)
-            for name in check.reads:
+            for name in check.reads if errors.invalid else ():
                 for indices in errors.invalid.get(name, ()):
                     usable[indices] = False
             for indices, name, message in check.find(table, usable):
