@@ -2572,9 +2572,17 @@ class ObservedPlaces:
 
 def _shaped(x, shape):
     """``x`` as an array of ``shape`` (a broadcast view only when needed)."""
+    if type(x) is np.ndarray:
+        return x if x.shape == shape else np.broadcast_to(x, shape)
+    if isinstance(x, np.generic):  # a numpy scalar (one star at one instant), shape ()
+        if shape == ():
+            return x
+        # A new one-element array, by the scalar's own method (np.reshape's dispatch costs
+        # three times as much, and this runs some twenty times per one-star call).
+        return x.reshape(shape) if math.prod(shape) == 1 else np.broadcast_to(x, shape)
     if np.shape(x) == shape:
         return x
-    if type(x) is not np.ndarray and math.prod(shape) == 1:
+    if math.prod(shape) == 1:
         return np.reshape(x, shape)  # one scalar: a new one-element array (cheaper)
     return np.broadcast_to(x, shape)
 
