@@ -965,28 +965,14 @@ def propagate(
     6. One star without covariance in the standard model is computed on Python floats
        (:func:`_standard_one`), with the same result bit for bit as in an array of stars.
     """
+    values = (ra_deg, dec_deg, parallax_mas, pm_ra_cosdec_mas_yr, pm_dec_mas_yr,
+              radial_velocity_km_s, epoch_from_jyear, epoch_to_jyear)  # fmt: skip
     if model == "standard" and covariance is None:
-        one = _one_star(
-            ra_deg,
-            dec_deg,
-            parallax_mas,
-            pm_ra_cosdec_mas_yr,
-            pm_dec_mas_yr,
-            radial_velocity_km_s,
-            epoch_from_jyear,
-            epoch_to_jyear,
-        )
+        one = _one_star(*values)
         if one is not None:
             return one
     return _propagate_arrays(
-        ra_deg,
-        dec_deg,
-        parallax_mas,
-        pm_ra_cosdec_mas_yr,
-        pm_dec_mas_yr,
-        radial_velocity_km_s,
-        epoch_from_jyear,
-        epoch_to_jyear,
+        *values,
         model=model,
         covariance=covariance,
         block_size=block_size,
