@@ -310,7 +310,10 @@ class _Local:
 
 
 def _advance_local(dec_rad, pma_mas, pmd_mas, mur_mas, tau) -> _Local:
-    """Evaluate the straight-line model in the local triad (see propagate_standard)."""
+    """Evaluate the straight-line model in the local triad (see propagate_standard).
+
+    :func:`_standard_one` repeats these operations, in this order, for one star on Python
+    floats: a change here must be made there too (a test compares the two bit for bit)."""
     sd = np.sin(dec_rad)
     cd = np.cos(dec_rad)
     mua = pma_mas * _RAD_PER_MAS
@@ -361,6 +364,7 @@ def _standard_outputs(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
 
     Returns (Astrometry, flags, _Local, usable, g): ``usable`` marks stars whose radial
     proper motion is used; ``g`` (km/s) is v_r1 / f there (Note 4 of propagate_standard).
+    :func:`_standard_one` is the same for one star on Python floats (change both).
     """
     flags = input_flags(plx, pma, pmd, rv)
     mur_mas, usable = _radial_proper_motion_mas_yr(plx, rv)
