@@ -109,5 +109,12 @@ log "running $IMAGE on 127.0.0.1:$PORT"
 docker run -d --name "$NAME" --network=host --read-only --tmpfs /tmp:rw,nosuid,nodev,size=64m \
     --cap-drop=ALL --security-opt=no-new-privileges \
     -e "SKYDRIFT_BIND=127.0.0.1:$PORT" -e SKYDRIFT_WORKERS=2 "$IMAGE" >/dev/null
-SMOKE_URL="http://127.0.0.1:$PORT" SMOKE_CONTAINER="$NAME" deploy/smoke.sh
+SMOKE_URL="http://127.0.0.1:$PORT" SMOKE_CONTAINER="$NAME" deploy/smoke.sh || {
+    # A private daemon's own word on the container's output (Docker gives the copy of a
+    # container's output a bounded time after it exits, and says when it ran out).
+    if [ -f "$WORK/dockerd.log" ]; then
+        grep -i -E "copier|truncat|log" "$WORK/dockerd.log" | grep -i -E "warn|error" | tail -5 >&2 || true
+    fi
+    exit 1
+}
 log "container test passed"

@@ -73,8 +73,11 @@ else
     [ "$code" = 0 ] || { docker logs --tail 30 "$container" >&2; fail "container exited $code"; }
     say "ok   container exited 0 after SIGTERM"
     docker logs "$container" >"${TMPDIR:-/tmp}/skydrift-smoke-$$.log" 2>&1
+    # On failure, the log's end: whether the lines written after the batch (the workers'
+    # and the master's exit) reached Docker tells a lost line from one never written.
     "$PYTHON" deploy/smoke.py --check-log "${TMPDIR:-/tmp}/skydrift-smoke-$$.log" \
-        || { rm -f "${TMPDIR:-/tmp}/skydrift-smoke-$$.log"; exit 1; }
+        || { tail -15 "${TMPDIR:-/tmp}/skydrift-smoke-$$.log" >&2
+             rm -f "${TMPDIR:-/tmp}/skydrift-smoke-$$.log"; exit 1; }
     rm -f "${TMPDIR:-/tmp}/skydrift-smoke-$$.log"
 fi
 say "smoke test passed"
