@@ -411,7 +411,7 @@ def _standard_one(ra_deg, dec_deg, plx, pma, pmd, rv, tau):
     -----
     1. The same IEEE operations in the same order as the array path, with numpy's own
        ``sin``, ``cos`` and ``arctan2`` (whose last bits may differ from the C library's), so
-       each result equals the array path's bit for bit (tests/test_propagation.py compares
+       each result equals the array path's bit for bit (tests/core/test_propagation.py compares
        them on random stars and on every edge the array path handles). A dozen numpy calls
        on one-element arrays cost ten times these operations: this is what a one-star
        request (a telescope before a slew) waits for.
