@@ -304,18 +304,91 @@ _UNREAD_HINT_OPTIONS = (
 )
 
 
+#: The request field each option sets: field (or field.member) -> (the option's attribute
+#: in the parsed command line, the option as written). A refused value is named by the
+#: option it was given with ("--epoch J20x6", not "target_epochs[0]"); a field the option
+#: was not given for (a catalogue epoch or frame from the JSON file) keeps its own name.
+_OPTION_OF_FIELD = {
+    "catalogue_epoch": ("catalogue_epoch", "--catalogue-epoch"),
+    "ignored_columns": ("ignore_columns", "--ignore-columns"),
+    "target_epochs": ("epoch", "--epoch"),
+    "epoch": ("epoch", "--epoch"),
+    "target_range.start": ("range", "--range START"),
+    "target_range.stop": ("range", "--range STOP"),
+    "target_range.count": ("range", "--range COUNT"),
+    "target_range": ("range", "--range"),
+    "model": ("model", "--model"),
+    "solar_motion.u_km_s": ("solar_motion", "--solar-motion U"),
+    "solar_motion.v_km_s": ("solar_motion", "--solar-motion V"),
+    "solar_motion.w_km_s": ("solar_motion", "--solar-motion W"),
+    "solar_motion": ("solar_motion", "--solar-motion"),
+    "uncertainty_method": ("uncertainties", "--uncertainties"),
+    "monte_carlo_draws": ("draws", "--draws"),
+    "seed": ("seed", "--seed"),
+    "low_snr_threshold": ("low_snr_threshold", "--low-snr-threshold"),
+    "near_boundary_arcsec": ("near_boundary_arcsec", "--near-boundary-arcsec"),
+    "reduction": ("reduction", "--reduction"),
+    "start": ("start", "--start"),
+    "stop": ("stop", "--stop"),
+    "end": ("end", "--end"),
+    "max_step_yr": ("max_step_yr", "--max-step-yr"),
+    "from_frame": ("from_frame", "--from"),
+    "to_frame": ("to_frame", "--to"),
+    "frame.equinox": ("equinox", "--equinox"),
+    "frame": ("frame", "--frame"),
+    "instants": ("at", "--at"),
+    "site.latitude_deg": ("position", "--position LAT"),
+    "site.longitude_deg": ("position", "--position LON"),
+    "site.height_m": ("position", "--position HEIGHT"),
+    "site": ("site", "--site"),
+    "atmosphere.pressure_hpa": ("pressure_hpa", "--pressure-hpa"),
+    "atmosphere.temperature_c": ("temperature_c", "--temperature-c"),
+    "atmosphere.relative_humidity": ("relative_humidity", "--relative-humidity"),
+    "atmosphere.wavelength_um": ("wavelength_um", "--wavelength-um"),
+    "horizon_limit_deg": ("horizon_limit_deg", "--horizon-limit-deg"),
+    "sun_avoidance_deg": ("sun_avoidance_deg", "--sun-avoidance-deg"),
+    "ticks": ("ticks", "--ticks"),
+    "epochs": ("epochs", "--epochs"),
+    "arrow_years": ("arrow_years", "--arrow-years"),
+    "title": ("title", "--title"),
+    "width_px": ("width_px", "--width-px"),
+}
+
+#: A request field's path as the service names it: name, optional [index], optional .member.
+_FIELD_PATH = re.compile(r"([a-z_]+)(?:\[(\d+)\])?(?:\.([a-z_]+))?")
+
+
+def _option_named(field: str, args) -> str:
+    """``field`` (the service's name of a refused value) as the option that gave it, with
+    the value for a repeated option ("--epoch J20x6"); ``field`` itself where no option
+    given on this command line set it."""
+    m = _FIELD_PATH.fullmatch(field)
+    if m is None:
+        return field
+    base, index, member = m.groups()
+    entry = _OPTION_OF_FIELD.get(f"{base}.{member}") if member else None
+    if entry is None or getattr(args, entry[0], None) is None:
+        entry = _OPTION_OF_FIELD.get(base)
+    if entry is None:
+        return field
+    given = getattr(args, entry[0], None)
+    if given is None or given is False:
+        return field
+    if index is None:
+        return entry[1]
+    if isinstance(given, list) and int(index) < len(given):
+        return f"{entry[1]} {given[int(index)]}"
+    return field
+
+
 def _in_option_terms(errors: list, args) -> list:
-    """The service's refusals in the command line's terms: its hint for an unknown column
-    names the options, and an entry of the request's ignored_columns is the name given to
-    --ignore-columns."""
-    given = getattr(args, "ignore_columns", None) or []
+    """The service's refusals in the command line's terms: a value given with an option is
+    named by that option (:data:`_OPTION_OF_FIELD`), and its hint for an unknown column
+    names the options."""
     out = []
     for e in errors:
-        field, message = e.field, e.message.replace(_UNREAD_HINT_REQUEST, _UNREAD_HINT_OPTIONS)
-        m = re.fullmatch(r"ignored_columns\[(\d+)\]", field)
-        if m and int(m.group(1)) < len(given):
-            field = f"--ignore-columns {given[int(m.group(1))]}"
-        out.append(type(e)(field, message))
+        message = e.message.replace(_UNREAD_HINT_REQUEST, _UNREAD_HINT_OPTIONS)
+        out.append(type(e)(_option_named(e.field, args), message))
     return out
 
 
