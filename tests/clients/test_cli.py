@@ -907,3 +907,25 @@ def test_every_option_of_a_word_list_takes_any_letter_case():
     assert seen >= 6  # --model, --uncertainties, --reduction, --format, and the batch jobs'
     args = build_parser().parse_args([*PROPAGATE, "--model", "Light_Time"])
     assert args.model == "light_time"
+
+
+def test_every_option_named_for_a_refused_field_is_an_option_of_the_command_line():
+    # commands._OPTION_OF_FIELD is written by hand: an option renamed in the parser and not
+    # there would name a refused value by an option that does not exist.
+    import argparse
+
+    from service.cli import build_parser
+    from service.commands import _OPTION_OF_FIELD
+
+    options, dests = set(), set()
+    parsers = [build_parser()]
+    while parsers:
+        p = parsers.pop()
+        for action in p._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                parsers.extend(action.choices.values())
+            options.update(action.option_strings)
+            dests.add(action.dest)
+    for field, (dest, written) in _OPTION_OF_FIELD.items():
+        assert written.split()[0] in options, field
+        assert dest in dests, field
