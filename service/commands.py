@@ -265,8 +265,32 @@ def _write_bytes(data: bytes, output: str | None) -> None:
         pathlib.Path(output).write_bytes(data)
 
 
-def _epoch_of(args, cat: Catalogue) -> str:
-    return args.catalogue_epoch or cat.catalogue_epoch or DEFAULT_CATALOGUE_EPOCH
+def _frame_options_given(args) -> tuple:
+    """The options that give a catalogue's frame, with their values (None: not given)."""
+    return (
+        ("--from", getattr(args, "from_frame", None)),
+        ("--frame", getattr(args, "frame", None)),
+    )
+
+
+def _epoch_of(args, cat: Catalogue, frame: dict | None = None) -> str:
+    """The catalogue epoch: --catalogue-epoch, else the JSON file's, else J2016.0 for a
+    catalogue in ICRS. A catalogue in another ``frame`` must say its epoch: an FK4 or FK5
+    catalogue is most often at its equinox (B1950.0, J2000.0), and taken at J2016.0 it would
+    come out wrong by its proper motion over the years between, and, for FK4, by the
+    frame's own rotation."""
+    epoch = args.catalogue_epoch or cat.catalogue_epoch
+    if epoch:
+        return epoch
+    if not _is_icrs(frame):
+        option = next((f"{o} {v}" for o, v in _frame_options_given(args) if v is not None), None)
+        raise UsageError(
+            f"--catalogue-epoch: needed for a catalogue in {frame['name'].upper()} "
+            f"({option or 'the frame the file states'}): {DEFAULT_CATALOGUE_EPOCH} is taken "
+            "only for ICRS catalogues; an FK4 catalogue's epoch is most often B1950.0, an "
+            "FK5 one's J2000.0"
+        )
+    return DEFAULT_CATALOGUE_EPOCH
 
 
 #: Request fields a catalogue file may set too (its catalogue_epoch and frame): an error in
@@ -549,13 +573,14 @@ def cmd_frames(args) -> int:
     cat = read_catalogue(args.catalogue, any_frame=True)
     from_frame = _frame_option(args.from_frame, "--from") or cat.frame or {"name": "icrs"}
     to_frame = _frame_option(args.to_frame, "--to")
+    epoch = _epoch_of(args, cat, from_frame)
     text = _table_command(
         args,
         cat,
         "frames",
         lambda client, body, update: client.frames_csv(
             body,
-            catalogue_epoch=_epoch_of(args, cat),
+            catalogue_epoch=epoch,
             from_frame=from_frame,
             to_frame=to_frame,
             target_epochs=args.epoch or None,
@@ -643,7 +668,7 @@ def cmd_observed(args) -> int:
         raise ValueError("give --site NAME or --position LAT LON HEIGHT")
     # "now" read once, so that the places and the conditions said below mean one instant.
     when = pin_now(
-        {"catalogue_epoch": _epoch_of(args, cat), "instants": args.at, "frame": frame},
+        {"catalogue_epoch": _epoch_of(args, cat, frame), "instants": args.at, "frame": frame},
         _now_text(),
     )
     with make_client(args) as client:
@@ -943,7 +968,8 @@ def _catalogue_options(p: argparse.ArgumentParser) -> None:
         "--catalogue-epoch",
         metavar="EPOCH",
         help="epoch of the catalogue's astrometry (default: the JSON file's "
-        f"catalogue_epoch, else {DEFAULT_CATALOGUE_EPOCH})",
+        f"catalogue_epoch, else {DEFAULT_CATALOGUE_EPOCH} for a catalogue in ICRS; one in "
+        "another frame must say it)",
     )
 
 

@@ -541,11 +541,39 @@ def test_catalogue_files_own_values_refused_are_still_exit_1(capsys, tmp_path):
     assert status == 1 and "catalogue_epoch: cannot read epoch" in err
     assert "--catalogue-epoch" not in err  # no option gave it: named as the file names it
     frame = tmp_path / "frame.json"
-    frame.write_text(json.dumps({"frame": "fk9", "stars": [star]}))
+    frame.write_text(json.dumps({"frame": "fk9", "catalogue_epoch": "J2000", "stars": [star]}))
     status, err = _in_process(capsys, "observed", str(frame), *AT_SITE)
     assert status == 1 and "frame.name" in err and "--frame" not in err
     # ...and --frame decides over the file's frame
-    status, _ = _in_process(capsys, "observed", str(frame), *AT_SITE, "--frame", "fk4")
+    status, _ = _in_process(
+        capsys, "observed", str(frame), *AT_SITE, "--frame", "fk4", "--catalogue-epoch", "B1950"
+    )
+    assert status == 0
+
+
+@pytest.mark.parametrize(
+    ("args", "said"),
+    [
+        (("frames", CATALOGUE, "--from", "fk4", "--drop-unknown-columns"), "FK4 (--from fk4)"),
+        (("frames", CATALOGUE, "--from", "galactic", "--drop-unknown-columns"), "GALACTIC"),
+        (("observed", CATALOGUE, *AT_SITE, "--frame", "fk5 J2000", "--drop-unknown-columns"),
+         "FK5 (--frame fk5 J2000)"),
+        (("frames", "FK4_FILE"), "FK4 (the frame the file states)"),
+        (("observed", "FK4_FILE", *AT_SITE), "FK4 (the frame the file states)"),
+    ],
+)  # fmt: skip
+def test_a_catalogue_not_in_icrs_must_say_its_epoch(capsys, tmp_path, args, said):
+    # Without a catalogue epoch the command line took J2016.0 whatever the frame: an FK4
+    # B1950.0 catalogue given with --from fk4 alone came out moved by 66 years of proper
+    # motion (and the FK4 frame's rotation). An ICRS catalogue still defaults to J2016.0.
+    fk4 = tmp_path / "fk4.json"
+    fk4.write_text(json.dumps({"frame": "FK4", "stars": [FK4_STAR]}))
+    args = [str(fk4) if a == "FK4_FILE" else a for a in args]
+    status, err = _in_process(capsys, *args)
+    assert status == 2
+    assert f"--catalogue-epoch: needed for a catalogue in {said}" in err, err
+    assert "J2016.0 is taken only for ICRS catalogues" in err
+    status, _ = _in_process(capsys, *args, "--catalogue-epoch", "B1950.0", "-o", os.devnull)
     assert status == 0
 
 
