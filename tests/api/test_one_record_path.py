@@ -3,6 +3,7 @@ values pass their checks; anything amiss goes the general way, which names the f
 short path must accept only what the general way accepts, and give the same table."""
 
 import math
+import zlib
 
 import marshmallow as ma
 import numpy as np
@@ -34,7 +35,7 @@ def test_every_star_table_of_the_service_is_covered():
 
 def _valid_value(spec, rng):
     if spec.kind == "id":
-        return rng.choice(["KRC 0001", 17, None, "x" * MAX_ID_LENGTH])
+        return ["KRC 0001", 17, None, "x" * MAX_ID_LENGTH][rng.integers(4)]
     lo = -1e3 if spec.lo is None else spec.lo
     hi = 1e3 if spec.hi is None else spec.hi
     lo, hi = max(lo, -1e3), min(hi, 1e3)
@@ -100,7 +101,7 @@ def _same(a, b) -> bool:
 
 @pytest.mark.parametrize(("where", "fld"), FIELDS, ids=[w for w, _ in FIELDS])
 def test_one_record_path_gives_the_general_table_or_steps_aside(where, fld):
-    rng = np.random.default_rng(abs(hash(where)) % 2**32)
+    rng = np.random.default_rng(zlib.crc32(where.encode()))  # the same records in every run
     taken = refused = 0
     for rec in _records(fld, rng, 200):
         short = fld._one_plain_record(rec)
