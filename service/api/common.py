@@ -519,7 +519,8 @@ def number_field(description, *, required=False, lo=None, hi=None, missing_hint=
 
 #: What a request without a required proper motion is told to send instead.
 NO_PROPER_MOTION_HINT = (
-    "give 0 for a target without proper motion: a missing one is not taken as zero"
+    "give 0 where the target has no proper motion along this axis: "
+    "a missing value is not taken as zero"
 )
 
 

@@ -405,7 +405,10 @@ def test_missing_required_column(client):
 
 
 def test_missing_proper_motion_says_to_give_zero(client):
-    hint = "(give 0 for a target without proper motion: a missing one is not taken as zero)"
+    hint = (
+        "(give 0 where the target has no proper motion along this axis: "
+        "a missing value is not taken as zero)"
+    )
     t = small_table(pm_dec_mas_yr=pa.array([-1.0, None, -3.0]))
     assert problem_fields(post_arrow(client, stream_of(t))) == [
         ("stars.pm_dec_mas_yr[1]", f"is required and may not be null {hint}")

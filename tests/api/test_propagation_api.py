@@ -305,7 +305,10 @@ def test_missing_required_field(client):
     assert_problem(post(client, dict(BASE, stars=[star])), 422, "stars[0].dec_deg")
 
 
-NO_PM_HINT = "(give 0 for a target without proper motion: a missing one is not taken as zero)"
+NO_PM_HINT = (
+    "(give 0 where the target has no proper motion along this axis: "
+    "a missing value is not taken as zero)"
+)
 
 
 def _messages(r, field):
