@@ -17,7 +17,12 @@ import re
 
 import marshmallow as ma
 from flask import Response, current_app, g, has_request_context, request
-from werkzeug.exceptions import HTTPException, InternalServerError, RequestEntityTooLarge
+from werkzeug.exceptions import (
+    HTTPException,
+    InternalServerError,
+    MethodNotAllowed,
+    RequestEntityTooLarge,
+)
 
 from ..core.epochs import EPOCH_FORMS
 from .jsonio import dumps
@@ -287,11 +292,27 @@ def _routing_detail(error: HTTPException) -> str | None:
             f"it takes {' or '.join(methods)}."
         )
     likely = _likely_path(path)
-    hint = f" Did you mean {likely}?" if likely else ""
+    hint = f" Did you mean {likely}?{_methods_note(likely)}" if likely else ""
     return (
         f"No endpoint at {clip_echo(path, 100)}.{hint} The endpoints are listed at /, /docs "
         "and /openapi.json."
     )
+
+
+def _methods_note(path: str) -> str:
+    """ " It takes GET, not POST." where the request's method is not taken at ``path`` (a
+    likely path for a misspelt one), else "": POST /v1/site is told that /v1/sites is read
+    with GET, rather than sent there to meet a 405."""
+    adapter = current_app.url_map.bind("localhost")
+    try:
+        adapter.match(path, method=request.method)
+    except MethodNotAllowed as exc:
+        methods = sorted(set(exc.valid_methods or ()) - {"HEAD", "OPTIONS"})
+        if methods:
+            return f" It takes {' or '.join(methods)}, not {clip_echo(request.method, 20)}."
+    except HTTPException:  # not matched after all (a redirect, a converter's refusal)
+        pass
+    return ""
 
 
 def _likely_path(path: str) -> str | None:

@@ -212,6 +212,25 @@ def test_a_misspelt_path_is_told_the_likely_one(client, method, path, likely):
     assert f"No endpoint at {path}. Did you mean {likely}?" in r.json["detail"]
 
 
+@pytest.mark.parametrize(
+    ("method", "path", "said"),
+    [
+        ("POST", "/v1/site", "Did you mean /v1/sites? It takes GET, not POST."),
+        ("GET", "/v1/propagaton", "Did you mean /v1/propagation? It takes POST, not GET."),
+        ("POST", "/v1/constellations/Ori/outlines",
+         "Did you mean /v1/constellations/Ori/outline? It takes GET, not POST."),
+        # the method is taken there: the path alone is told
+        ("GET", "/v1/site", "Did you mean /v1/sites? The endpoints"),
+        ("POST", "/v1/observd", "Did you mean /v1/observed? The endpoints"),
+    ],
+)  # fmt: skip
+def test_a_misspelt_path_is_told_the_method_the_likely_one_takes(client, method, path, said):
+    # A client that sent POST /v1/site was offered /v1/sites, and sending there met a 405.
+    r = client.open(path, method=method, json={} if method == "POST" else None)
+    assert r.status_code == 404
+    assert said in r.json["detail"], r.json["detail"]
+
+
 def test_wrong_method_is_problem_json(client):
     r = client.get("/v1/propagation")
     assert r.status_code == 405
