@@ -300,9 +300,9 @@ def _routing_detail(error: HTTPException) -> str | None:
 
 
 def _methods_note(path: str) -> str:
-    """ " It takes GET, not POST." where the request's method is not taken at ``path`` (a
-    likely path for a misspelt one), else "": POST /v1/site is told that /v1/sites is read
-    with GET, rather than sent there to meet a 405."""
+    """The sentence "It takes GET, not POST." (after a space) where the request's method is
+    not taken at ``path``, the likely path for a misspelt one; else nothing. POST /v1/site
+    is told that /v1/sites is read with GET, rather than sent there to meet a 405."""
     adapter = current_app.url_map.bind("localhost")
     try:
         adapter.match(path, method=request.method)
