@@ -284,12 +284,12 @@ def _routing_detail(error: HTTPException) -> str | None:
     neither; a client that wrote /v1/propogation is told /v1/propagation."""
     path = request.path
     if error.code == 405:
-        methods = sorted(set(getattr(error, "valid_methods", None) or ()) - {"HEAD", "OPTIONS"})
+        methods = _methods_taken(error)
         if not methods:
             return None
         return (
             f"{clip_echo(request.method, 20)} is not taken at {clip_echo(path, 100)}; "
-            f"it takes {' or '.join(methods)}."
+            f"it takes {methods}."
         )
     likely = _likely_path(path)
     hint = f" Did you mean {likely}?{_methods_note(likely)}" if likely else ""
@@ -299,17 +299,23 @@ def _routing_detail(error: HTTPException) -> str | None:
     )
 
 
+def _methods_taken(error: HTTPException) -> str:
+    """The methods a 405 names, as "GET or POST" (HEAD and OPTIONS, which every route
+    answers, left out); "" where it names none."""
+    methods = set(getattr(error, "valid_methods", None) or ()) - {"HEAD", "OPTIONS"}
+    return " or ".join(sorted(methods))
+
+
 def _methods_note(path: str) -> str:
     """The sentence "It takes GET, not POST." (after a space) where the request's method is
     not taken at ``path``, the likely path for a misspelt one; else nothing. POST /v1/site
     is told that /v1/sites is read with GET, rather than sent there to meet a 405."""
-    adapter = current_app.url_map.bind("localhost")
     try:
-        adapter.match(path, method=request.method)
+        current_app.create_url_adapter(request).match(path, method=request.method)
     except MethodNotAllowed as exc:
-        methods = sorted(set(exc.valid_methods or ()) - {"HEAD", "OPTIONS"})
+        methods = _methods_taken(exc)
         if methods:
-            return f" It takes {' or '.join(methods)}, not {clip_echo(request.method, 20)}."
+            return f" It takes {methods}, not {clip_echo(request.method, 20)}."
     except HTTPException:  # not matched after all (a redirect, a converter's refusal)
         pass
     return ""
