@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import datetime as dt
 import warnings
+from fractions import Fraction
 
 import erfa
 import numpy as np
@@ -30,6 +31,7 @@ from service.core.epochs import (
     TimeNote,
     besselian_epoch_to_julian_epoch,
     epoch_range,
+    instant_range,
     jd_to_julian_epoch,
     julian_epoch_to_besselian_epoch,
     julian_epoch_to_jd,
@@ -411,6 +413,96 @@ def test_instant_on_other_scales_matches_erfa_and_astropy():
     got = parse_instant(2026.9171)
     assert abs((got.utc_jd1 - t.jd1) + (got.utc_jd2 - t.jd2)) * 86400.0 < 1e-9
     assert got.julian_epoch_tdb == 2026.9171
+
+
+#: Instants of a range against exact rational arithmetic on ERFA's TAI dates, seconds.
+RANGE_TOL_S = 1e-9
+
+RANGES = [
+    ("2026-12-06T18:00:00Z", "2026-12-07T06:00:00Z", 73),  # a night, every 10 minutes
+    ("2016-12-31T23:00:00Z", "2017-01-01T01:00:00Z", 7),  # across the leap second
+    ("2017-01-01T01:00:00Z", "2016-12-31T23:00:00Z", 7),  # the same, backwards
+    ("1972-06-30T23:59:59.5Z", "1972-07-01T00:00:00.5Z", 5),  # the 1972 leap second
+    ("1985-03-01T00:00:00.125Z", "2028-10-01T12:00:00Z", 1001),  # 43 years, 16 leaps
+    ("JD2461381.437499988 UTC", "2026-12-08T00:00:00Z", 10),  # parts split otherwise
+]
+
+
+def _tai_fraction(utc_jd1, utc_jd2):
+    """A UTC date as TAI (ERFA utctai), as an exact rational number of days."""
+    t1, t2 = erfa.utctai(utc_jd1, utc_jd2)
+    return Fraction(float(t1)) + Fraction(float(t2))
+
+
+@pytest.mark.parametrize("start, stop, count", RANGES)
+def test_instant_range_steps_equal_elapsed_time_exactly(start, stop, count):
+    # Each instant k of n + 1 lies k/n of the elapsed TAI time from the start: checked in
+    # exact rationals (fractions.Fraction) on ERFA's TAI of the start, stop and instants.
+    got = instant_range(parse_instant(start), parse_instant(stop), count)
+    assert len(got) == count
+    a = _tai_fraction(got[0].utc_jd1, got[0].utc_jd2)
+    span = _tai_fraction(got[-1].utc_jd1, got[-1].utc_jd2) - a
+    n = count - 1
+    for k, t in enumerate(got):
+        miss = _tai_fraction(t.utc_jd1, t.utc_jd2) - a - span * k / n
+        assert abs(float(miss)) * 86400.0 < RANGE_TOL_S, k
+    # The ends are the instants given, untouched.
+    assert got[0] == parse_instant(start) and got[-1] == parse_instant(stop)
+
+
+@pytest.mark.parametrize("start, stop, count", RANGES[:5])
+def test_instant_range_matches_astropy_time_arithmetic(start, stop, count):
+    # astropy Time differences and sums of UTC times are taken on TAI (astropy.time
+    # documentation, "Time Deltas"): an independent count of elapsed seconds. Its product of
+    # a TimeDelta by a float rounds to about 2**-53 of the span (0.15 us over 43 years), so
+    # the tolerance is that or 1 ns, whichever is larger.
+    got = instant_range(parse_instant(start), parse_instant(stop), count)
+    a, b = Time(start.rstrip("Z"), scale="utc"), Time(stop.rstrip("Z"), scale="utc")
+    want = a + (b - a) * np.linspace(0.0, 1.0, count)
+    u1 = np.array([t.utc_jd1 for t in got])
+    u2 = np.array([t.utc_jd2 for t in got])
+    miss_s = np.abs((u1 - want.jd1) + (u2 - want.jd2)) * 86400.0
+    tol_s = max(RANGE_TOL_S, 2.0**-52 * abs((b - a).sec))
+    assert miss_s.max() < tol_s
+    # The Julian epochs (TDB) of the instants, as astropy's TDB of the same instants.
+    tdb = want.tdb.jyear
+    assert np.abs(np.array([t.julian_epoch_tdb for t in got]) - tdb).max() < JYEAR_TOL
+
+
+def test_instant_range_inside_a_leap_second_is_second_60():
+    got = instant_range(
+        parse_instant("2016-12-31T23:59:59Z"), parse_instant("2017-01-01T00:00:01Z"), 5
+    )
+    # Elapsed seconds 0, 0.75, 1.5, 2.25, 3 from 23:59:59 on a day of 86,401 s (ERFA d2dtf).
+    labels = [erfa.d2dtf("UTC", 3, t.utc_jd1, t.utc_jd2) for t in got]
+    assert [tuple(int(x) for x in hms) for _, _, _, hms in labels] == [
+        (23, 59, 59, 0),
+        (23, 59, 59, 750),
+        (23, 59, 60, 500),
+        (0, 0, 0, 250),
+        (0, 0, 1, 0),
+    ]
+
+
+def test_instant_range_notes_as_the_same_instant_written():
+    # Beyond the leap-second table UTC is approximate (TimeNote.UTC_APPROXIMATE), for an
+    # instant of a range as for the same instant written out: 2029-12-06 is halfway.
+    got = instant_range(
+        parse_instant("2026-12-06T00:00:00Z"), parse_instant("2032-12-06T00:00:00Z"), 3
+    )
+    written = parse_instant("2029-12-06T00:00:00Z")
+    assert got[1].notes == written.notes == int(TimeNote.UTC_APPROXIMATE)
+    assert abs((got[1].utc_jd1 - written.utc_jd1) + (got[1].utc_jd2 - written.utc_jd2)) < 1e-14
+    assert got[0].notes == 0
+
+
+def test_instant_range_count_one_only_for_one_instant():
+    t = parse_instant("2026-12-06T18:00:00Z")
+    assert instant_range(t, parse_instant("JD2461381.25 UTC"), 1) == [t]
+    with pytest.raises(EpochError, match="at least 2"):
+        instant_range(t, parse_instant("2026-12-06T18:00:00.000001Z"), 1)
+    with pytest.raises(EpochError, match="at least 1"):
+        instant_range(t, t, 0)
 
 
 def test_instant_refuses_what_parse_epoch_refuses():
