@@ -239,6 +239,20 @@ def _split_decimal(text: str) -> tuple[float, float]:
     return float(whole), float(d - whole)
 
 
+#: The tropical year of ERFA epb2jd (Lieske 1979), days.
+_BESSELIAN_YEAR_DAYS = 365.242198781
+
+
+def _check_rough(rough: float) -> None:
+    """EpochError where a Julian epoch, roughly (to a year), is outside the supported range:
+    refused before any exact conversion, which may overflow far outside it."""
+    if not (EPOCH_MIN_JYEAR - 1.0 <= rough <= EPOCH_MAX_JYEAR + 1.0):
+        raise EpochError(
+            f"epoch {rough:g} is outside the supported range {EPOCH_MIN_JYEAR:g} to "
+            f"{EPOCH_MAX_JYEAR:g} (Julian years)"
+        )
+
+
 def _read(value, now: _dt.datetime | None) -> _Reading:
     """Parse one epoch (see :func:`parse_epoch`) into a :class:`_Reading`."""
     if isinstance(value, bool):
@@ -283,14 +297,11 @@ def _read(value, now: _dt.datetime | None) -> _Reading:
         if kind == "J":
             return _Reading(num, 0)
         if kind == "B":
+            # Refused before ERFA epb2jd, which overflows (with a warning) near 1e305 years.
+            _check_rough(2000.0 + (num - 2000.0) * (_BESSELIAN_YEAR_DAYS / JULIAN_YEAR_DAYS))
             return _Reading(float(besselian_epoch_to_julian_epoch(num)), 0)
         jd1, jd2 = (MJD_ZERO_JD, num) if kind == "MJD" else (num, 0.0)
-        rough = 2000.0 + ((jd1 - JD_J2000) + jd2) / JULIAN_YEAR_DAYS
-        if not (EPOCH_MIN_JYEAR - 1.0 <= rough <= EPOCH_MAX_JYEAR + 1.0):
-            raise EpochError(
-                f"epoch {rough:g} is outside the supported range {EPOCH_MIN_JYEAR:g} to "
-                f"{EPOCH_MAX_JYEAR:g} (Julian years)"
-            )
+        _check_rough(2000.0 + ((jd1 - JD_J2000) + jd2) / JULIAN_YEAR_DAYS)
         whole, part = _split_decimal(m.group("num"))
         jd1, jd2 = (MJD_ZERO_JD + whole, part) if kind == "MJD" else (whole, part)
         if scale == "TDB":
