@@ -1103,7 +1103,7 @@ class Client:
         stars: Stars,
         *,
         catalogue_epoch: Epoch,
-        instants: Iterable[Epoch] | Epoch,
+        instants: Iterable[Epoch] | Epoch | None = None,
         site: str | Mapping[str, float],
         frame: str | Mapping[str, Any] | None = None,
         atmosphere: Mapping[str, float | None] | None = None,
@@ -1112,6 +1112,7 @@ class Client:
         progress: Progress | None = None,
         ignored_columns: Iterable[str] = (),
         include_rates: bool = False,
+        instant_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
     ) -> dict:
         """POST /v1/observed: observed places at a site, with advisory Sun/horizon figures.
 
@@ -1119,8 +1120,12 @@ class Client:
         ----------
         stars : list of dict or dict of columns
             Astrometry at ``catalogue_epoch`` (in ``frame``, default ICRS).
-        instants : epoch or list of epochs
-            Instants of observation (ISO 8601 UTC or any epoch form).
+        instants : epoch or list of epochs, optional
+            Instants of observation (ISO 8601 UTC or any epoch form). Give this or
+            ``instant_range``.
+        instant_range : (start, stop, count) or dict of those, optional
+            ``count`` instants from ``start`` to ``stop``, both included, in equal steps of
+            elapsed time (a track for the night).
         site : str or dict
             A configured site name (the demo's "kestrel-ridge") or ``{"latitude_deg",
             "longitude_deg", "height_m"}``.
@@ -1133,13 +1138,9 @@ class Client:
             Also give how fast each place's azimuth, altitude, parallactic angle, observed
             hour angle and declination change (arcsec per second of time), for tracking.
         """
-        when = [instants] if isinstance(instants, str | float | int) else list(instants)
-        body: dict = {
-            "stars": stars,
-            "catalogue_epoch": catalogue_epoch,
-            "instants": when,
-            "site": site,
-        }
+        body: dict = {"stars": stars, "catalogue_epoch": catalogue_epoch}
+        _list_or_range(body, "instants", instants, "instant_range", instant_range)
+        body["site"] = site
         optional = {
             "frame": None if frame is None else _frame(frame),
             "atmosphere": atmosphere,
@@ -1156,7 +1157,7 @@ class Client:
         csv_text: str,
         *,
         catalogue_epoch: Epoch,
-        instants: Iterable[Epoch] | Epoch,
+        instants: Iterable[Epoch] | Epoch | None = None,
         site: str | Mapping[str, float],
         frame: str | Mapping[str, Any] | None = None,
         atmosphere: Mapping[str, float | None] | None = None,
@@ -1165,16 +1166,19 @@ class Client:
         progress: Progress | None = None,
         ignored_columns: Iterable[str] = (),
         include_rates: bool = False,
+        instant_range: tuple[Epoch, Epoch, int] | Mapping[str, Any] | None = None,
     ) -> str:
         """Observed places of a CSV table of stars, as CSV (one row per star and instant).
 
         ``site`` is a configured name or ``{"latitude_deg", "longitude_deg", "height_m"}``;
-        ``frame``, ``atmosphere`` and ``include_rates`` as for :meth:`observed` (default
-        ICRS, the service's atmosphere, no rates). The Sun and horizon figures and flags
-        are advisory.
+        ``instants`` or ``instant_range``, ``frame``, ``atmosphere`` and ``include_rates``
+        as for :meth:`observed` (default ICRS, the service's atmosphere, no rates). The Sun
+        and horizon figures and flags are advisory.
         """
-        when = [instants] if isinstance(instants, str | float | int) else list(instants)
-        params: dict = {"catalogue_epoch": catalogue_epoch, "instants": when}
+        params: dict = _list_or_range(
+            {"catalogue_epoch": catalogue_epoch}, "instants", instants, "instant_range",
+            instant_range,
+        )  # fmt: skip
         params["site"] = site if isinstance(site, str) else json.dumps(dict(site))
         if frame is not None:
             params["frame"] = {k: v for k, v in _frame(frame).items() if v is not None}
@@ -1286,22 +1290,28 @@ def _outline_params(frame, equinox, reduction, tolerance_arcsec) -> dict:
 
 
 def _targets(body: dict, target_epochs, target_range) -> dict:
-    if (target_epochs is None) == (target_range is None):
-        raise ValueError("give exactly one of target_epochs or target_range")
-    if target_epochs is not None:
-        epochs = [target_epochs] if isinstance(target_epochs, str | float | int) else target_epochs
-        body["target_epochs"] = list(epochs)
+    return _list_or_range(body, "target_epochs", target_epochs, "target_range", target_range)
+
+
+def _list_or_range(body: dict, list_key: str, listed, range_key: str, rng) -> dict:
+    """``body`` with exactly one of the list of epochs (or instants) ``listed`` under
+    ``list_key`` and the range ``rng`` ((start, stop, count) or a dict of those) under
+    ``range_key``."""
+    if (listed is None) == (rng is None):
+        raise ValueError(f"give exactly one of {list_key} or {range_key}")
+    if listed is not None:
+        body[list_key] = [listed] if isinstance(listed, str | float | int) else list(listed)
     else:
-        if isinstance(target_range, Mapping):  # the API's own form
-            extra = set(target_range) - {"start", "stop", "count"}
-            if extra or len(target_range) != 3:
+        if isinstance(rng, Mapping):  # the API's own form
+            extra = set(rng) - {"start", "stop", "count"}
+            if extra or len(rng) != 3:
                 raise ValueError(
-                    "target_range: give start, stop and count (as (start, stop, count) or "
-                    f"a dict of those three), not {sorted(target_range)}"
+                    f"{range_key}: give start, stop and count (as (start, stop, count) or "
+                    f"a dict of those three), not {sorted(rng)}"
                 )
-            target_range = (target_range["start"], target_range["stop"], target_range["count"])
-        start, stop, count = target_range
-        body["target_range"] = {"start": start, "stop": stop, "count": _whole(count)}
+            rng = (rng["start"], rng["stop"], rng["count"])
+        start, stop, count = rng
+        body[range_key] = {"start": start, "stop": stop, "count": _whole(count)}
     return body
 
 
@@ -1326,7 +1336,7 @@ _EPOCH_KEYS = frozenset(
     {"catalogue_epoch", "target_epochs", "instants", "epochs", "epoch", "start", "stop", "end",
      "equinox"}
 )  # fmt: skip
-_EPOCH_HOLDERS = frozenset({"target_range", "frame", "from_frame", "to_frame"})
+_EPOCH_HOLDERS = frozenset({"target_range", "instant_range", "frame", "from_frame", "to_frame"})
 
 
 def _is_now(value) -> bool:

@@ -361,6 +361,10 @@ _OPTION_OF_FIELD = {
     "frame.equinox": ("equinox", "--equinox"),
     "frame": ("frame", "--frame"),
     "instants": ("at", "--at"),
+    "instant_range.start": ("range", "--range START"),
+    "instant_range.stop": ("range", "--range STOP"),
+    "instant_range.count": ("range", "--range COUNT"),
+    "instant_range": ("range", "--range"),
     "site.latitude_deg": ("position", "--position LAT"),
     "site.longitude_deg": ("position", "--position LON"),
     "site.height_m": ("position", "--position HEIGHT"),
@@ -666,9 +670,21 @@ def cmd_observed(args) -> int:
         site = {"latitude_deg": lat, "longitude_deg": lon, "height_m": height}
     if site is None:
         raise ValueError("give --site NAME or --position LAT LON HEIGHT")
+    if args.range:
+        try:
+            whole(args.range[2])
+        except argparse.ArgumentTypeError as exc:
+            raise UsageError(f"--range COUNT: {exc}") from None
     # "now" read once, so that the places and the conditions said below mean one instant.
     when = pin_now(
-        {"catalogue_epoch": _epoch_of(args, cat, frame), "instants": args.at, "frame": frame},
+        {
+            "catalogue_epoch": _epoch_of(args, cat, frame),
+            "instants": args.at,
+            "instant_range": dict(zip(("start", "stop", "count"), args.range, strict=True))
+            if args.range
+            else None,
+            "frame": frame,
+        },
         _now_text(),
     )
     with make_client(args) as client:
@@ -680,6 +696,7 @@ def cmd_observed(args) -> int:
                 body,
                 catalogue_epoch=when["catalogue_epoch"],
                 instants=when["instants"],
+                instant_range=when["instant_range"],
                 site=site,
                 frame=when["frame"],
                 atmosphere=atmosphere,
@@ -699,6 +716,7 @@ def cmd_observed(args) -> int:
             [CONDITIONS_STAR],
             catalogue_epoch=when["catalogue_epoch"],
             instants=when["instants"],
+            instant_range=when["instant_range"],
             site=site,
             frame=when["frame"],
             atmosphere=atmosphere,
@@ -1196,12 +1214,19 @@ def add_commands(sub) -> None:
         formatter_class=fmt,
     )
     _catalogue_options(o)
-    o.add_argument(
+    when = o.add_mutually_exclusive_group(required=True)
+    when.add_argument(
         "--at",
         action="append",
-        required=True,
         metavar="INSTANT",
         help="instant of observation (ISO 8601 UTC or any epoch form); repeat for several",
+    )
+    when.add_argument(
+        "--range",
+        nargs=3,
+        metavar=("START", "STOP", "COUNT"),
+        help="COUNT instants from START to STOP, both included, in equal steps of elapsed "
+        "time (a track for the night: --range 2026-12-06T18:00Z 2026-12-07T06:00Z 73)",
     )
     place = o.add_mutually_exclusive_group(required=True)
     place.add_argument(

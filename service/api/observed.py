@@ -18,6 +18,7 @@ from flask import current_app
 from flask_smorest import abort
 
 from ..config import ConfigError
+from ..core import epochs as core_epochs
 from ..core import frames as core_frames
 from ..core import observed as core
 from ..core import propagation as core_prop
@@ -53,7 +54,7 @@ from .frames import FrameField, FrameStarSchema, frame_from_spec
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
-from .spelling import unknown_name_text
+from .spelling import meant_by_unknown_names, unknown_name_text
 from .tables import IgnoredColumnsField, StarTableField
 
 ADVISORY = (
@@ -400,6 +401,37 @@ def _within_supported_span(instant) -> None:
         raise ma.ValidationError(core.SUPPORTED_SPAN_TEXT)
 
 
+class InstantRangeSchema(ma.Schema):
+    start = InstantField(
+        required=True,
+        validate=_within_supported_span,
+        metadata={"description": 'First instant (ISO 8601 UTC, "now" or any epoch form).'},
+    )
+    stop = InstantField(
+        required=True,
+        validate=_within_supported_span,
+        metadata={"description": "Last instant (it may come before start)."},
+    )
+    count = ma.fields.Integer(
+        strict=True,  # 2.5 is refused, not truncated to 2
+        required=True,
+        validate=ma.validate.Range(min=1),
+        metadata={"description": "Number of instants, start and stop included."},
+    )
+
+    @ma.validates_schema
+    def _start_and_stop_included(self, data, **kwargs):
+        if data["count"] == 1:
+            try:
+                core_epochs.instant_range(data["start"], data["stop"], 1)
+            except core_epochs.EpochError:
+                raise ma.ValidationError(
+                    "must be at least 2 to include both start and stop (count 1 only where "
+                    "start equals stop)",
+                    "count",
+                ) from None
+
+
 class ObservedRequestSchema(ma.Schema):
     stars = StarTableField(
         FrameStarSchema,
@@ -417,15 +449,24 @@ class ObservedRequestSchema(ma.Schema):
     instants = EpochList(
         InstantField(validate=_within_supported_span),
         example='["now"] for one instant',
-        required=True,
         validate=ma.validate.Length(min=1),
         metadata={
             "description": "Instants of observation (ISO 8601 UTC such as "
-            "'2026-12-02T22:30:00.250Z', or any epoch form). Many stars at one instant, one "
-            "star at many instants (a track), or every star at every instant. A UTC instant "
-            "is used as written, to the microsecond and below (the Earth turns 15 arcsec a "
-            "second); a Julian epoch given as a number resolves 7 microseconds near the "
-            "present."
+            "'2026-12-02T22:30:00.250Z', or any epoch form); give this or instant_range. "
+            "Many stars at one instant, one star at many instants (a track), or every star "
+            "at every instant. A UTC instant is used as written, to the microsecond and "
+            "below (the Earth turns 15 arcsec a second); a Julian epoch given as a number "
+            "resolves 7 microseconds near the present."
+        },
+    )
+    instant_range = ma.fields.Nested(
+        InstantRangeSchema,
+        metadata={
+            "description": "Evenly spaced instants (give this or instants), such as a track "
+            "for the night: count instants from start to stop inclusive, in equal steps of "
+            "elapsed time (TAI, SI seconds; a leap second inside the range counts as a "
+            "second like any other, so the UTC times of day may not step evenly across it). "
+            "The first and last are start and stop as given."
         },
     )
     site = SiteField(required=True)
@@ -468,6 +509,20 @@ class ObservedRequestSchema(ma.Schema):
     @ma.pre_load
     def _bound_instant_list(self, data, **kwargs):
         return bound_epoch_list(data, "instants", per="instants")
+
+    @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
+    def _one_kind_of_instants(self, data, original, **kwargs):
+        # Judged on what was sent: an instant list refused for its own sake is still given.
+        sent = original if isinstance(original, dict) else {}
+        has_list = sent.get("instants") is not None
+        has_range = sent.get("instant_range") is not None
+        if has_list == has_range:
+            if not has_list and meant_by_unknown_names(sent, self) & {
+                "instants",
+                "instant_range",
+            }:
+                return  # "times": its own message says which it stands for
+            raise ma.ValidationError("give exactly one of instants or instant_range", "instants")
 
     @ma.validates_schema(skip_on_field_errors=False)
     def _checks_across_members(self, data, **kwargs):
@@ -723,13 +778,19 @@ def observed(args):
     settings = current_app.config["SKYDRIFT_SETTINGS"]
     table = args["stars"]
     n = table.size
-    given = args["instants"]
-    instants = np.array([t.julian_epoch_tdb for t in given])  # for the space motion
-    m = instants.size
     # Each check names only the setting exceeded: fewer stars per request cure the second
     # (the Python client halves its batches on it), never the first.
-    check_epoch_count(m, "instants", per="instants")
-    check_result_count(n, m, "instants", per="instants")
+    if args.get("instant_range") is not None:
+        rng = args["instant_range"]
+        check_epoch_count(rng["count"], "instant_range.count", per="instants")
+        check_result_count(n, rng["count"], "instant_range.count", per="instants")
+        given = core_epochs.instant_range(rng["start"], rng["stop"], rng["count"])
+    else:
+        given = args["instants"]
+        check_epoch_count(len(given), "instants", per="instants")
+        check_result_count(n, len(given), "instants", per="instants")
+    instants = np.array([t.julian_epoch_tdb for t in given])  # for the space motion
+    m = instants.size
     # The UTC dates as given, in full, for the Earth's rotation (core.epochs.Instant).
     utc1 = np.array([t.utc_jd1 for t in given])
     utc2 = np.array([t.utc_jd2 for t in given])

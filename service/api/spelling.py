@@ -33,18 +33,24 @@ UNIT_WORDS = frozenset(
 #: takes is offered): a span's ends (or the range that holds them), the instants or target
 #: epochs, the site, the air, the table of stars (positions too: every table is "stars").
 _WHEN = ("instants", "target_epochs")
+_RANGE = ("target_range", "instant_range")
 NAME_ALIASES = {
-    "stop": ("end", "target_range"),
-    "end": ("stop", "target_range"),
-    "start": ("target_range",),
-    "count": ("target_range",),
-    "range": ("target_range",),
-    "epoch_range": ("target_range",),
-    "start_epoch": ("start", "target_range"),
-    "end_epoch": ("end", "target_range"),
-    "stop_epoch": ("end", "target_range"),
+    "stop": ("end", *_RANGE),
+    "end": ("stop", *_RANGE),
+    "start": _RANGE,
+    "count": _RANGE,
+    "range": _RANGE,
+    "epoch_range": _RANGE,
+    "time_range": ("instant_range",),
+    "start_epoch": ("start", *_RANGE),
+    "end_epoch": ("end", *_RANGE),
+    "stop_epoch": ("end", *_RANGE),
+    "start_time": ("start", "instant_range"),
+    "end_time": ("end", "instant_range"),
+    "stop_time": ("end", "instant_range"),
     "epochs": ("target_epochs", "instants"),
     "epoch": ("instants",),  # beside catalogue_epoch; where target_epochs is taken, both
+    "instant": ("instants",),  # not instant_range, which holds the word too
     "times": _WHEN,
     "time": _WHEN,
     "dates": _WHEN,

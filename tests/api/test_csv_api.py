@@ -390,6 +390,27 @@ def test_site_by_dotted_members_in_the_query(client):
     assert [f for f, _ in problem_fields(both)] == ["site"]
 
 
+def test_instant_range_by_dotted_members_in_the_query(client):
+    # A night's track for a CSV table: the range's members as dotted names, as the README says.
+    body = (HEADER + "\nA,10,20,,1,1,\n").encode()
+    base = "/v1/observed?catalogue_epoch=J2016&site=kestrel-ridge&"
+    rng = "instant_range.start=2026-12-06T18:00:00Z&instant_range.stop=2026-12-07T06:00:00Z"
+    r = client.post(base + rng + "&instant_range.count=5", data=body, content_type="text/csv")
+    assert r.status_code == 200, r.get_json()
+    assert [i["epoch"]["iso_utc"][11:16] for i in r.json["instants"]] == [
+        "18:00", "21:00", "00:00", "03:00", "06:00"
+    ]  # fmt: skip
+    text = client.post(
+        base + rng + "&instant_range.count=5",
+        data=body,
+        content_type="text/csv",
+        headers={"Accept": "text/csv"},
+    ).get_data(as_text=True)
+    assert len(text.strip().splitlines()) == 1 + 5  # the header, a row per instant
+    bad = client.post(base + rng + "&instant_range.count=1", data=body, content_type="text/csv")
+    assert [f for f, _ in problem_fields(bad)] == ["instant_range.count"]
+
+
 def test_header_column_without_a_name(client):
     # A trailing comma made a nameless column, reported as "line 1: " with "column given
     # twice" or "unknown field".

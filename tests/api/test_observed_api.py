@@ -222,6 +222,87 @@ def test_track_of_one_star_over_many_instants(client, observed_example):
     assert one["stars"][0]["at_instants"][0]["altitude_deg"] == pytest.approx(alts[3], abs=1e-9)
 
 
+def test_track_given_as_an_instant_range(client, observed_example):
+    """A night's track as start, stop and count: the instants those of the list written out
+    (ERFA dtf2d of each hour, run here), the places the same to 1e-9 deg (3.6 uas)."""
+    body = dict(observed_example, stars=observed_example["stars"][:1])
+    del body["instants"]
+    hours = [(6, 18), (6, 21), (7, 0), (7, 3), (7, 6)]
+    rng = {"start": "2026-12-06T18:00:00Z", "stop": "2026-12-07T06:00:00Z", "count": 5}
+    r = client.post(OBS, json=dict(body, instant_range=rng))
+    assert r.status_code == 200, r.get_data(as_text=True)
+    listed = [f"2026-12-{d:02d}T{h:02d}:00:00Z" for d, h in hours]
+    w = client.post(OBS, json=dict(body, instants=listed)).json
+    for got, want, (d, h) in zip(r.json["instants"], w["instants"], hours, strict=True):
+        u1, u2 = erfa.dtf2d("UTC", 2026, 12, d, h, 0, 0.0)
+        assert abs((got["utc_jd"][0] - u1) + (got["utc_jd"][1] - u2)) * 86400.0 < 1e-9
+        assert got["epoch"]["iso_utc"] == want["epoch"]["iso_utc"]
+        assert got["epoch"]["julian_epoch_tdb"] == pytest.approx(
+            want["epoch"]["julian_epoch_tdb"], abs=1e-12
+        )
+    at, want_at = r.json["stars"][0]["at_instants"], w["stars"][0]["at_instants"]
+    for name in ("azimuth_deg", "altitude_deg", "hour_angle_deg", "parallactic_angle_deg"):
+        for a, b in zip(at, want_at, strict=True):
+            assert a[name] == pytest.approx(b[name], abs=1e-9), name
+    assert [a["flags"] for a in at] == [b["flags"] for b in want_at]
+    # Every star at every instant: 2 stars x 3 instants, from a range that goes backwards.
+    back = {"start": "2026-12-07T00:00:00Z", "stop": "2026-12-06T22:00:00Z", "count": 3}
+    r = client.post(OBS, json=dict(body, stars=observed_example["stars"][:2], instant_range=back))
+    assert r.status_code == 200
+    assert [i["epoch"]["iso_utc"] for i in r.json["instants"]] == [
+        "2026-12-07T00:00:00.000Z",
+        "2026-12-06T23:00:00.000Z",
+        "2026-12-06T22:00:00.000Z",
+    ]
+    assert [len(s["at_instants"]) for s in r.json["stars"]] == [3, 3]
+
+
+@pytest.mark.parametrize(
+    "change, status, field, needle",
+    [
+        ({"count": 1}, 422, "instant_range.count", "at least 2 to include both"),
+        ({"count": 0}, 422, "instant_range.count", "must be >= 1"),
+        ({"count": 2.5}, 422, "instant_range.count", "whole number"),
+        ({"count": "3"}, 422, "instant_range.count", ""),
+        ({"stop": None}, 422, "instant_range.stop", ""),
+        ({"start": "1950-01-01T00:00:00Z"}, 422, "instant_range.start", "must lie between"),
+        ({"stop": "soon"}, 422, "instant_range.stop", "cannot read"),
+        ({"count": 10**9}, 413, "instant_range.count", "SKYDRIFT_MAX_EPOCHS"),
+    ],
+)
+def test_bad_instant_range_names_the_member(
+    client, observed_example, change, status, field, needle
+):
+    rng = {"start": "2026-12-06T18:00:00Z", "stop": "2026-12-07T06:00:00Z", "count": 5}
+    body = dict(observed_example, instant_range={**rng, **change})
+    del body["instants"]
+    r = client.post(OBS, json=body)
+    assert_problem(r, status, field)
+    assert needle in next(e["message"] for e in r.json["errors"] if e["field"] == field)
+
+
+def test_instants_or_instant_range_exactly_one(client, observed_example):
+    rng = {"start": "now", "stop": "now", "count": 1}  # "now" read once: start equals stop
+    r = client.post(OBS, json=dict(observed_example, instant_range=rng))
+    assert_problem(r, 422, "instants")
+    assert r.json["errors"][0]["message"] == "give exactly one of instants or instant_range"
+    body = dict(observed_example)
+    del body["instants"]
+    r = client.post(OBS, json=body)
+    assert r.json["errors"] == [
+        {"field": "instants", "message": "give exactly one of instants or instant_range"}
+    ]
+    assert client.post(OBS, json=dict(body, instant_range=rng)).status_code == 200
+    # A range's member given at the top level is pointed to the range.
+    r = client.post(OBS, json=dict(body, start="now"))
+    assert r.json["errors"] == [
+        {
+            "field": "start",
+            "message": 'is not a field of this request (did you mean "instant_range"?)',
+        }
+    ]
+
+
 def test_low_altitudes_flag_refraction_uncertain_with_its_meaning(client, observed_example):
     # A demo star over a day: the instants where it is observed below 5 deg carry the flag
     # (SOFA atioq Note 2: refraction good only to arcminutes near the horizon), no others.

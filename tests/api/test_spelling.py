@@ -77,7 +77,7 @@ def test_two_alike_get_no_suggestion():
 
 FRAMES_REQUEST = ["stars", "catalogue_epoch", "from_frame", "to_frame", "target_epochs"]
 OBSERVED_REQUEST = ["stars", "catalogue_epoch", "instants", "site", "atmosphere"]
-OBSERVED_REQUEST += ["include_rates", "frame"]
+OBSERVED_REQUEST += ["include_rates", "frame", "instant_range"]
 
 
 @pytest.mark.parametrize(
@@ -157,6 +157,11 @@ def test_the_only_name_that_begins_with_the_given_words(given, accepted, likely)
         ("start_epoch", ["stars", "catalogue_epoch", "start", "end"], "start"),
         ("stop_epoch", ["stars", "catalogue_epoch", "start", "end"], "end"),
         ("Catalog", REQUEST_FIELDS, "stars"),
+        # a range of instants: its members, and "instant" for the list
+        ("start", OBSERVED_REQUEST, "instant_range"),
+        ("time_range", OBSERVED_REQUEST, "instant_range"),
+        ("end_time", OBSERVED_REQUEST, "instant_range"),
+        ("instant", OBSERVED_REQUEST, "instants"),
         # none where the request takes no field of that role
         ("observatory", REQUEST_FIELDS, None),
         ("weather", STAR_FIELDS, None),

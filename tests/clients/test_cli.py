@@ -216,6 +216,31 @@ def test_observed_local_and_remote_identical(live_service):
         assert flagged == (float(r["altitude_deg"]) < 15.0)
 
 
+def test_observed_range_is_the_same_track_as_the_instants_listed(live_service):
+    """--range START STOP COUNT: the rows of the instants --at lists one by one (every 3 hours
+    of a night), locally and through a running service; a bad count is named by its option."""
+    base = ["observed", CATALOGUE, "--site", "kestrel-ridge", "--drop-unknown-columns", "-q"]
+    ranged = skydrift(*base, "--range", "2026-12-06T18:00:00Z", "2026-12-07T06:00:00Z", "5")
+    assert ranged.stdout == skydrift(
+        *base, "--range", "2026-12-06T18:00:00Z", "2026-12-07T06:00:00Z", "5",
+        "--url", live_service,
+    ).stdout  # fmt: skip
+    at = [f"2026-12-0{6 + (h // 24)}T{h % 24:02d}:00:00Z" for h in range(18, 31, 3)]
+    listed = skydrift(*base, *(a for t in at for a in ("--at", t)))
+    rows = list(csv.DictReader(io.StringIO(ranged.stdout.decode())))
+    want = list(csv.DictReader(io.StringIO(listed.stdout.decode())))
+    assert len(rows) == len(want) == 30 * 5
+    for a, b in zip(rows, want, strict=True):
+        assert a["epoch_iso_utc"] == b["epoch_iso_utc"] and a["flags"] == b["flags"]
+        assert abs(float(a["altitude_deg"]) - float(b["altitude_deg"])) < 1e-9
+    bad = skydrift(*base, "--range", "2026-12-06T18:00:00Z", "2026-12-07T06:00:00Z", "1",
+                   check=False)  # fmt: skip
+    assert bad.returncode == 2
+    assert b"--range COUNT" in bad.stderr and b"at least 2" in bad.stderr
+    both = skydrift(*base, "--at", "now", "--range", "now", "now", "1", check=False)
+    assert both.returncode == 2 and b"not allowed with argument" in both.stderr
+
+
 def test_sites_lists_the_service_sites_as_observed_uses_them(live_service, tmp_path):
     """`skydrift sites`: the service's named sites as CSV, the same locally and through a
     running service, with the coordinates `observed --site` then uses; the Sun avoidance

@@ -379,6 +379,38 @@ def test_frames_and_observed_methods(live_service, demo_catalogue):
     assert listed["kestrel-ridge"]["longitude_deg"] == whole["site"]["longitude_deg"]
 
 
+def test_observed_methods_take_an_instant_range(live_service, demo_catalogue):
+    """instant_range= on observed and observed_csv, as a tuple or the API's dict: the
+    request's instant_range; batches of stars each get the whole range; exactly one of
+    instants and instant_range."""
+    stars = [{k: s.get(k) for k in ASTROMETRY} for s in demo_catalogue["stars"]][:5]
+    rng = ("2026-12-06T18:00:00Z", "2026-12-07T06:00:00Z", 4)
+    with Client(live_service, batch_size=2) as sky:
+        whole = sky.post("/v1/observed", {
+            "stars": stars, "catalogue_epoch": "J2016.0", "site": "kestrel-ridge",
+            "instant_range": dict(zip(("start", "stop", "count"), rng, strict=True))})  # fmt: skip
+        batched = sky.observed(
+            stars, catalogue_epoch="J2016.0", instant_range=rng, site="kestrel-ridge"
+        )
+        as_dict = sky.observed(
+            stars, catalogue_epoch="J2016.0", site="kestrel-ridge",
+            instant_range={"start": rng[0], "stop": rng[1], "count": "4"},
+        )  # fmt: skip
+        text = "id,ra_deg,dec_deg,pm_ra_cosdec_mas_yr,pm_dec_mas_yr\nA,10,20,1,1\n"
+        answer = sky.observed_csv(
+            text, catalogue_epoch="J2016.0", instant_range=rng, site="kestrel-ridge"
+        )
+        rows = list(csv.DictReader(io.StringIO(answer)))
+        with pytest.raises(ValueError, match="exactly one of instants or instant_range"):
+            sky.observed(stars, catalogue_epoch="J2016.0", site="kestrel-ridge")
+        with pytest.raises(ValueError, match="instant_range: give start, stop and count"):
+            sky.observed(stars, catalogue_epoch="J2016.0", site="kestrel-ridge",
+                         instant_range={"start": rng[0], "stop": rng[1]})  # fmt: skip
+    assert batched == whole == as_dict  # three batches joined as if sent at once
+    assert len(whole["instants"]) == 4
+    assert [r["epoch_iso_utc"][11:16] for r in rows] == ["18:00", "22:00", "02:00", "06:00"]
+
+
 def test_observed_methods_ask_for_rates(live_service, demo_catalogue):
     """include_rates= on observed and observed_csv: the request's include_rates."""
     rates = core_observed.RATE_NAMES  # the five rates
