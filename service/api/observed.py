@@ -765,10 +765,12 @@ def observed(args):
     The stars' catalogue astrometry is first moved to each instant (standard straight-line
     model), then carried through the IAU 2006/2000A chain of the SOFA routines (light
     deflection by the Sun, not by the planets; aberration, precession-nutation, Earth
-    rotation, polar motion, diurnal aberration, refraction). Each instant states the
-    Earth-orientation table used, whether its values were measured, predicted or unavailable,
-    and the accuracy class. A CSV or Arrow answer carries these figures of each instant on
-    each of its rows (utc_jd, earth_orientation_<member>, sun_altitude_deg, sun_azimuth_deg).
+    rotation, polar motion, diurnal aberration, refraction). The instants are listed
+    (instants), or evenly spaced for a track (instant_range: start, stop, count, in equal
+    steps of elapsed time). Each instant states the Earth-orientation table used, whether
+    its values were measured, predicted or unavailable, and the accuracy class. A CSV or
+    Arrow answer carries these figures of each instant on each of its rows (utc_jd,
+    earth_orientation_<member>, sun_altitude_deg, sun_azimuth_deg).
     With include_rates, each place also says how fast its azimuth, altitude, parallactic
     angle, observed hour angle and declination change (arcsec per second of time), for a
     mount's tracking (alt-azimuth or equatorial) and a derotator.
