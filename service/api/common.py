@@ -20,6 +20,7 @@ from ..core.flags import flag_names
 from ..numbers import DECIMAL_TEXT
 from . import arrowio, csvio
 from .jsonio import BodyParser
+from .spelling import meant_by_unknown_names
 from .tables import MISSING_HINT_KEY
 
 JSON_MIMETYPE = "application/json"
@@ -608,6 +609,27 @@ def bound_epoch_list(data, field: str, per: str = "epochs"):
     if isinstance(value, list):
         check_epoch_count(len(value), field, per)
     return data
+
+
+#: A range's count of 1 where its start and stop differ (numpy's linspace would answer the
+#: start alone, dropping the stop without a word).
+COUNT_OF_ONE_TEXT = (
+    "must be at least 2 to include both start and stop (count 1 only where start equals stop)"
+)
+
+
+def check_list_or_range(schema, sent, list_key: str, range_key: str) -> None:
+    """For a schema's ``validates_schema(pass_original=True)``: exactly one of a list of
+    epochs (or instants), ``list_key``, and a range of them, ``range_key``, was sent; else
+    a ValidationError on ``list_key``. Judged on what was sent (a list refused for its own
+    sake is still given), and quiet where neither was sent but an unknown name stands for
+    one of them ("target_epoch", "times"): that name's own message says which it is."""
+    sent = sent if isinstance(sent, dict) else {}
+    has_list = sent.get(list_key) is not None
+    if has_list == (sent.get(range_key) is not None):
+        if not has_list and meant_by_unknown_names(sent, schema) & {list_key, range_key}:
+            return
+        raise ma.ValidationError(f"give exactly one of {list_key} or {range_key}", list_key)
 
 
 def check_result_count(n: int, m: int, field: str, per: str = "epochs") -> None:

@@ -25,6 +25,7 @@ from ..core import propagation as core_prop
 from ..core.flags import flag_names
 from ..core.propagation import AT_POLE_RAD
 from .common import (
+    COUNT_OF_ONE_TEXT,
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
@@ -38,6 +39,7 @@ from .common import (
     always_present,
     bound_epoch_list,
     check_epoch_count,
+    check_list_or_range,
     check_result_count,
     epochs_out,
     flag_meanings_field,
@@ -54,7 +56,7 @@ from .frames import FrameField, FrameStarSchema, frame_from_spec
 from .observability import count_stars
 from .propagation import IMPLAUSIBLE_INPUT_MEANINGS as _INPUT_FLAG_MEANINGS
 from .propagation import input_flags
-from .spelling import meant_by_unknown_names, unknown_name_text
+from .spelling import unknown_name_text
 from .tables import IgnoredColumnsField, StarTableField
 
 ADVISORY = (
@@ -425,11 +427,7 @@ class InstantRangeSchema(ma.Schema):
             try:
                 core_epochs.instant_range(data["start"], data["stop"], 1)
             except core_epochs.EpochError:
-                raise ma.ValidationError(
-                    "must be at least 2 to include both start and stop (count 1 only where "
-                    "start equals stop)",
-                    "count",
-                ) from None
+                raise ma.ValidationError(COUNT_OF_ONE_TEXT, "count") from None
 
 
 class ObservedRequestSchema(ma.Schema):
@@ -512,17 +510,7 @@ class ObservedRequestSchema(ma.Schema):
 
     @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
     def _one_kind_of_instants(self, data, original, **kwargs):
-        # Judged on what was sent: an instant list refused for its own sake is still given.
-        sent = original if isinstance(original, dict) else {}
-        has_list = sent.get("instants") is not None
-        has_range = sent.get("instant_range") is not None
-        if has_list == has_range:
-            if not has_list and meant_by_unknown_names(sent, self) & {
-                "instants",
-                "instant_range",
-            }:
-                return  # "times": its own message says which it stands for
-            raise ma.ValidationError("give exactly one of instants or instant_range", "instants")
+        check_list_or_range(self, original, "instants", "instant_range")
 
     @ma.validates_schema(skip_on_field_errors=False)
     def _checks_across_members(self, data, **kwargs):

@@ -19,6 +19,7 @@ from ..core.flags import (
     present_flag_names,
 )
 from .common import (
+    COUNT_OF_ONE_TEXT,
     PROPAGATION_WARNINGS,
     WARNINGS_LIMIT_TEXT,
     Blueprint,
@@ -30,6 +31,7 @@ from .common import (
     always_present,
     bound_epoch_list,
     check_epoch_count,
+    check_list_or_range,
     check_result_count,
     epochs_out,
     flag_meanings_field,
@@ -45,7 +47,6 @@ from .common import (
 )
 from .examples import load_example
 from .observability import count_stars
-from .spelling import meant_by_unknown_names
 from .tables import MAX_ABS_MAS, IgnoredColumnsField, RowCheck, StarTableField
 
 blp = Blueprint(
@@ -269,13 +270,8 @@ class EpochRangeSchema(ma.Schema):
 
     @ma.validates_schema
     def _start_and_stop_included(self, data, **kwargs):
-        # numpy's linspace would answer the start alone, dropping the stop without a word.
         if data["count"] == 1 and data["start"] != data["stop"]:
-            raise ma.ValidationError(
-                "must be at least 2 to include both start and stop (count 1 only where start "
-                "equals stop)",
-                "count",
-            )
+            raise ma.ValidationError(COUNT_OF_ONE_TEXT, "count")
 
 
 class PropagationRequestSchema(ma.Schema):
@@ -324,19 +320,7 @@ class PropagationRequestSchema(ma.Schema):
 
     @ma.validates_schema(skip_on_field_errors=False, pass_original=True)
     def _one_target(self, data, original, **kwargs):
-        # Judged on what was sent: a target list refused for its own sake is still given.
-        sent = original if isinstance(original, dict) else {}
-        has_list = sent.get("target_epochs") is not None
-        has_range = sent.get("target_range") is not None
-        if has_list == has_range:
-            if not has_list and meant_by_unknown_names(sent, self) & {
-                "target_epochs",
-                "target_range",
-            }:
-                return  # "target_epoch": its own message says which it stands for
-            raise ma.ValidationError(
-                "give exactly one of target_epochs or target_range", "target_epochs"
-            )
+        check_list_or_range(self, original, "target_epochs", "target_range")
 
 
 @always_present
