@@ -618,6 +618,16 @@ COUNT_OF_ONE_TEXT = (
 )
 
 
+def range_count_field(per: str = "epochs") -> ma.fields.Integer:
+    """The count of a range of epochs (or instants), its start and stop included."""
+    return ma.fields.Integer(
+        strict=True,  # 2.5 is refused, not truncated to 2
+        required=True,
+        validate=ma.validate.Range(min=1),
+        metadata={"description": f"Number of {per}, start and stop included."},
+    )
+
+
 def check_list_or_range(schema, sent, list_key: str, range_key: str) -> None:
     """For a schema's ``validates_schema(pass_original=True)``: exactly one of a list of
     epochs (or instants), ``list_key``, and a range of them, ``range_key``, was sent; else

@@ -47,6 +47,7 @@ from .common import (
     id_field,
     index_field,
     instants_out,
+    range_count_field,
     refuse_query_options,
     star_count_field,
     units_field,
@@ -414,12 +415,7 @@ class InstantRangeSchema(ma.Schema):
         validate=_within_supported_span,
         metadata={"description": "Last instant (it may come before start)."},
     )
-    count = ma.fields.Integer(
-        strict=True,  # 2.5 is refused, not truncated to 2
-        required=True,
-        validate=ma.validate.Range(min=1),
-        metadata={"description": "Number of instants, start and stop included."},
-    )
+    count = range_count_field("instants")
 
     @ma.validates_schema
     def _start_and_stop_included(self, data, **kwargs):

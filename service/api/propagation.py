@@ -42,6 +42,7 @@ from .common import (
     layout_field,
     number_field,
     proper_motion_field,
+    range_count_field,
     star_count_field,
     units_field,
 )
@@ -261,12 +262,7 @@ STAR_CHECKS = (
 class EpochRangeSchema(ma.Schema):
     start = EpochField(required=True, metadata={"description": "First target epoch."})
     stop = EpochField(required=True, metadata={"description": "Last target epoch."})
-    count = ma.fields.Integer(
-        strict=True,  # 2.5 is refused, not truncated to 2
-        required=True,
-        validate=ma.validate.Range(min=1),
-        metadata={"description": "Number of epochs, start and stop included."},
-    )
+    count = range_count_field()
 
     @ma.validates_schema
     def _start_and_stop_included(self, data, **kwargs):
