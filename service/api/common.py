@@ -572,7 +572,8 @@ def _refuse_bare_date(value) -> None:
     if type(value) in (int, float):
         number = float(value)
     elif type(value) is str and core_epochs.PLAIN_NUMBER.match(value.strip()):
-        number = float(value)
+        # str.strip takes away what float() does not (the separators \x1c to \x1f).
+        number = float(value.strip())
     else:
         return
     if number >= BARE_EPOCH_LIMIT:
