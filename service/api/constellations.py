@@ -357,7 +357,7 @@ class OutlineEquinoxField(EpochField):
                 "fk4 and a Julian year for fk5)"
             ) from None
         if isinstance(value, str) and core_epochs.PLAIN_NUMBER.match(value.strip()):
-            return ("number", float(value))
+            return ("number", float(value.strip()))
         return ("jyear", jyear)
 
 

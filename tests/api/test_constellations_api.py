@@ -250,6 +250,11 @@ def test_bare_number_outline_equinox_is_read_as_the_frames_read_it(client, frame
         for equinox in (float(number), epoch)
     ]
     assert answers[0] == answers[1]
+    # A separator character (\x1f, URL-encoded) around the number is stripped as around an
+    # epoch (float() keeps it: a 500 before, as the fuzzing run found for epochs).
+    padded = client.get(f"{BASE}/Ori/outline?frame={frame}&equinox=%1F{number}")
+    assert padded.status_code == 200, padded.get_data(as_text=True)
+    assert padded.json == by_number.json
 
 
 def test_bad_outline_equinox_says_what_a_number_means_there(client):
