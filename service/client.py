@@ -234,8 +234,8 @@ def _whole(value) -> int:
     if isinstance(value, int) and not isinstance(value, bool):
         return value
     if isinstance(value, str) and WHOLE_TEXT.match(value.strip()):
-        return int(value)
-    raise ValueError(f"target range count: {value!r} is not a whole number in ASCII digits")
+        return int(value.strip())
+    raise ValueError(f"range count: {value!r} is not a whole number in ASCII digits")
 
 
 def _loads(content: bytes):

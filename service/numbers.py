@@ -41,11 +41,11 @@ def decimal(text: str) -> float:
         raise argparse.ArgumentTypeError(
             f"{text!r} is not a number written with ASCII digits (such as 12.5 or 2e-3)"
         )
-    return float(text)
+    return float(text.strip())  # float() keeps what strip() takes away (\x1c to \x1f)
 
 
 def whole(text: str) -> int:
     """argparse type: a whole number written with ASCII digits ("12", "-3")."""
     if not WHOLE_TEXT.match(text.strip()):
         raise argparse.ArgumentTypeError(f"{text!r} is not a whole number in ASCII digits")
-    return int(text)
+    return int(text.strip())
