@@ -169,6 +169,35 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
         )
 
 
+def night_track(sky: Client, catalogue: dict, paths: dict) -> None:
+    """One star through the night at the demo site: a range of instants, every hour."""
+    start, stop, count = "2026-12-02T18:00:00Z", "2026-12-03T06:00:00Z", 13
+    heading(f"{CROSSING_STAR} through the night at Kestrel Ridge: {start} to {stop}, hourly")
+    if "/v1/observed" not in paths:
+        print("(this service has no observed-place endpoint yet; skipped)")
+        return
+    star = next(s for s in catalogue["stars"] if s["id"] == CROSSING_STAR)
+    answer = sky.observed(
+        [{k: star.get(k) for k in ASTROMETRY}],
+        catalogue_epoch=catalogue["catalogue_epoch"],
+        instant_range=(start, stop, count),
+        site=SITE,
+    )
+    head = (
+        f"{'utc':17} {'azimuth_deg':>11} {'altitude_deg':>12} {'airmass':>8} "
+        f"{'sun_alt_deg':>11}  flags"
+    )
+    print(head)
+    print("-" * len(head))
+    for instant, at in zip(answer["instants"], answer["stars"][0]["at_instants"], strict=True):
+        print(
+            f"{instant['epoch']['iso_utc'][:16]:17} {_num(at.get('azimuth_deg')):>11} "
+            f"{_num(at.get('altitude_deg')):>12} {_num(at.get('airmass')):>8} "
+            f"{_num(instant['sun'].get('altitude_deg'), '{:.1f}'):>11}  "
+            f"{', '.join(at.get('flags', []))}"
+        )
+
+
 def _num(x, fmt="{:.3f}") -> str:
     return "-" if x is None else fmt.format(x)
 
@@ -264,6 +293,7 @@ def main() -> int:
             paths = sky.openapi()["paths"]
             propagate_tonight(sky, catalogue)
             observed_places(sky, catalogue, paths)
+            night_track(sky, catalogue, paths)
             constellations(sky, catalogue, paths)
             velocities(sky, catalogue, paths)
             charts(sky, catalogue, out)
