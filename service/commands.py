@@ -463,13 +463,18 @@ def _table_command(args, cat, label: str, call, client: Client | None = None) ->
                 bar.close()
 
 
-@_run
-def cmd_propagate(args) -> int:
+def _check_range_count(args) -> None:
+    """Exit 2 naming --range COUNT where it is not a whole number (before any request)."""
     if args.range:
         try:
             whole(args.range[2])
         except argparse.ArgumentTypeError as exc:
             raise UsageError(f"--range COUNT: {exc}") from None
+
+
+@_run
+def cmd_propagate(args) -> int:
+    _check_range_count(args)
     cat = read_catalogue(args.catalogue)
     text = _table_command(
         args,
@@ -670,11 +675,7 @@ def cmd_observed(args) -> int:
         site = {"latitude_deg": lat, "longitude_deg": lon, "height_m": height}
     if site is None:
         raise ValueError("give --site NAME or --position LAT LON HEIGHT")
-    if args.range:
-        try:
-            whole(args.range[2])
-        except argparse.ArgumentTypeError as exc:
-            raise UsageError(f"--range COUNT: {exc}") from None
+    _check_range_count(args)
     # "now" read once, so that the places and the conditions said below mean one instant.
     when = pin_now(
         {
