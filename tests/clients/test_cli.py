@@ -232,7 +232,8 @@ def test_observed_range_is_the_same_track_as_the_instants_listed(live_service):
     assert len(rows) == len(want) == 30 * 5
     for a, b in zip(rows, want, strict=True):
         assert a["epoch_iso_utc"] == b["epoch_iso_utc"] and a["flags"] == b["flags"]
-        assert abs(float(a["altitude_deg"]) - float(b["altitude_deg"])) < 1e-9
+        # the same instants, their dates split otherwise: the last bits only (3e-13 deg seen)
+        assert abs(float(a["altitude_deg"]) - float(b["altitude_deg"])) < 1e-11
     bad = skydrift(*base, "--range", "2026-12-06T18:00:00Z", "2026-12-07T06:00:00Z", "1",
                    check=False)  # fmt: skip
     assert bad.returncode == 2
