@@ -612,11 +612,8 @@ def bound_epoch_list(data, field: str, per: str = "epochs"):
     return data
 
 
-#: A range's count of 1 where its start and stop differ (numpy's linspace would answer the
-#: start alone, dropping the stop without a word).
-COUNT_OF_ONE_TEXT = (
-    "must be at least 2 to include both start and stop (count 1 only where start equals stop)"
-)
+#: A range's count of 1 where its start and stop differ (the core's words).
+COUNT_OF_ONE_TEXT = core_epochs.COUNT_OF_ONE_TEXT
 
 
 def range_count_field(per: str = "epochs") -> ma.fields.Integer:

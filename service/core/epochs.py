@@ -486,6 +486,13 @@ def parse_instant(value, *, now: _dt.datetime | None = None) -> Instant:
     return Instant(r.jyear, float(u1), float(u2), r.notes)
 
 
+#: What is wrong with a range's count of 1 where its start and stop differ (numpy's linspace
+#: would answer the start alone, dropping the stop without a word).
+COUNT_OF_ONE_TEXT = (
+    "must be at least 2 to include both start and stop (count 1 only where start equals stop)"
+)
+
+
 def instant_range(start: Instant, stop: Instant, count: int) -> list[Instant]:
     """``count`` instants from ``start`` to ``stop`` inclusive, in equal steps of elapsed
     time (a track for the night, say).
@@ -513,10 +520,7 @@ def instant_range(start: Instant, stop: Instant, count: int) -> list[Instant]:
     rest = float((b1 - a1) - whole) + float(b2 - a2)
     if count == 1:
         if whole + rest != 0.0:
-            raise EpochError(
-                "count must be at least 2 to include both start and stop (count 1 only where "
-                "start equals stop)"
-            )
+            raise EpochError(f"count {COUNT_OF_ONE_TEXT}")
         return [start]
     # Step k of n = count - 1 is whole k / n + rest k / n days: the whole days of the first
     # term by integer division go to the large part of the two-part date, exactly; the
