@@ -39,6 +39,8 @@ from service.client import Client, SkydriftError  # noqa: E402
 
 #: Tonight in the scenario: the observing night at Kestrel Ridge, UTC.
 TONIGHT = "2026-12-02T22:00:00Z"
+#: The whole of that night, dusk to dawn, as an instant range: start, stop, count (hourly).
+NIGHT = ("2026-12-02T18:00:00Z", "2026-12-03T06:00:00Z", 13)
 #: The star whose future boundary crossing the scenario follows.
 CROSSING_STAR = "KRC 0017"
 SITE = "kestrel-ridge"
@@ -171,7 +173,7 @@ def observed_places(sky: Client, catalogue: dict, paths: dict) -> None:
 
 def night_track(sky: Client, catalogue: dict, paths: dict) -> None:
     """One star through the night at the demo site: a range of instants, every hour."""
-    start, stop, count = "2026-12-02T18:00:00Z", "2026-12-03T06:00:00Z", 13
+    start, stop, _ = NIGHT
     heading(f"{CROSSING_STAR} through the night at Kestrel Ridge: {start} to {stop}, hourly")
     if "/v1/observed" not in paths:
         print("(this service has no observed-place endpoint yet; skipped)")
@@ -180,7 +182,7 @@ def night_track(sky: Client, catalogue: dict, paths: dict) -> None:
     answer = sky.observed(
         [{k: star.get(k) for k in ASTROMETRY}],
         catalogue_epoch=catalogue["catalogue_epoch"],
-        instant_range=(start, stop, count),
+        instant_range=NIGHT,
         site=SITE,
     )
     head = (
